@@ -1,0 +1,1 @@
+"""Pure functions on a decoded piece: key, meter, statistics, shingles."""

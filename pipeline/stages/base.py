@@ -1,0 +1,199 @@
+"""The stage interface: what a stage declares and what it returns.
+
+A stage is a class with a ``name``, a ``kind`` (``"file"``: sees one decoded piece at a time in a
+worker process; ``"corpus"``: sees all survivors at once in the main process), a table of
+``options`` (name, type, default, check, doc) and a ``version`` (bump it when the stage's logic
+changes so cached results are recomputed).
+
+Per-file stages implement ``process(piece, ctx)``. Corpus stages implement ``prepare(piece, ctx)``
+(per file, in the worker; its arrays are cached in the ledger) and ``run_corpus(members, state)``.
+Every verdict is a ``StageResult``; the runner, not the stage, keeps counts, logs and caches.
+
+Results must be pure functions of the source file bytes and the stage's own options (analyses
+describe the source file whatever the stage order), which is what makes per-(sha256, stage,
+options-fingerprint) caching correct.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass, field
+from typing import Any, Callable, ClassVar
+
+import numpy as np
+
+from ..score import Piece
+
+
+@dataclass(frozen=True)
+class Option:
+    """One configurable option of a stage.
+
+    ``kind`` is the expected Python type (or tuple of types) after YAML loading; ``check``
+    returns an error sentence for a bad value, or None. ``doc`` is the README text.
+    """
+
+    name: str
+    kind: type | tuple[type, ...]
+    default: Any
+    doc: str
+    check: Callable[[Any], str | None] | None = None
+
+
+@dataclass
+class StageResult:
+    """A stage's verdict on one file.
+
+    ``values`` are the measured values that go into the manifest (flat, JSON-serialisable);
+    ``thresholds`` maps a measure name to the limit it was held against (for ``explain``).
+    ``reason`` is None when kept; otherwise a reason code from the README table.
+    """
+
+    kept: bool
+    reason: str | None = None
+    detail: str = ""
+    values: dict[str, Any] = field(default_factory=dict)
+    thresholds: dict[str, Any] = field(default_factory=dict)
+
+    @classmethod
+    def keep(cls, detail: str = "", values: dict | None = None,
+             thresholds: dict | None = None) -> "StageResult":
+        return cls(True, None, detail, values or {}, thresholds or {})
+
+    @classmethod
+    def drop(cls, reason: str, detail: str, values: dict | None = None,
+             thresholds: dict | None = None) -> "StageResult":
+        return cls(False, reason, detail, values or {}, thresholds or {})
+
+    def to_json(self) -> dict:
+        return {"kept": self.kept, "reason": self.reason, "detail": self.detail,
+                "values": self.values, "thresholds": self.thresholds}
+
+    @classmethod
+    def from_json(cls, d: dict) -> "StageResult":
+        return cls(d["kept"], d["reason"], d["detail"], d.get("values", {}), d.get("thresholds", {}))
+
+
+class FileContext:
+    """Per-file memo shared by the per-file stages of one worker task.
+
+    ``analysis(name, fn)`` computes an analysis of the *source* piece once and returns the
+    cached value afterwards, so ``transpose`` and ``key_meter`` share one key estimate whatever
+    their order.
+    """
+
+    def __init__(self, piece: Piece, source: str = "", sha256: str = ""):
+        self.piece = piece
+        self.source = source
+        self.sha256 = sha256
+        self._memo: dict[str, Any] = {}
+
+    def analysis(self, name: str, fn: Callable[[Piece], Any]) -> Any:
+        if name not in self._memo:
+            self._memo[name] = fn(self.piece)
+        return self._memo[name]
+
+
+@dataclass
+class Member:
+    """A file that reached a corpus stage.
+
+    ``values`` holds every manifest value measured so far (e.g. ``notes``, ``duration_s``);
+    ``artifacts`` maps a corpus stage name to what its ``prepare`` returned for this file;
+    ``group`` is an id shared by outputs that must travel together (augmentation copies).
+    """
+
+    id: str
+    sha256: str
+    source: str
+    values: dict[str, Any]
+    artifacts: dict[str, dict[str, Any]]
+    outputs: list[str] = field(default_factory=list)
+
+
+class CorpusState:
+    """Persistent JSON state a corpus stage keeps between runs (backed by the ledger).
+
+    ``previous`` holds what the stage saved in the last completed run; ``save`` records what
+    this run's state will be once the run completes. ``upstream`` maps an earlier corpus
+    stage's name to its results of this run, keyed by member id.
+    """
+
+    def __init__(self, previous: dict[str, Any] | None = None,
+                 upstream: dict[str, dict[str, StageResult]] | None = None,
+                 flags: dict[str, Any] | None = None):
+        self.previous = previous or {}
+        self.current: dict[str, Any] = {}
+        self.upstream = upstream or {}
+        self.flags = flags or {}
+        self.notes: list[str] = []
+
+    def save(self, key: str, value: Any) -> None:
+        self.current[key] = value
+
+    def report(self, line: str) -> None:
+        """A line for the run summary (e.g. a file that moved between split parts)."""
+        self.notes.append(line)
+
+
+class Stage:
+    """Base class of all stages. Instantiate with validated options (a dict)."""
+
+    name: ClassVar[str] = ""
+    kind: ClassVar[str] = "file"
+    version: ClassVar[int] = 1
+    options: ClassVar[tuple[Option, ...]] = ()
+    doc: ClassVar[str] = ""
+
+    def __init__(self, opts: dict[str, Any] | None = None):
+        merged = {o.name: o.default for o in self.options}
+        merged.update(opts or {})
+        self.opts = merged
+
+    @property
+    def fingerprint(self) -> str:
+        """Hash of the stage name, version and options: the cache key of its results."""
+        return options_fingerprint(self.name, self.version, self.opts)
+
+    # per-file stages
+    def process(self, piece: Piece, ctx: FileContext) -> StageResult:  # pragma: no cover
+        raise NotImplementedError
+
+    # corpus stages
+    def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
+        """Per-file work for a corpus stage, run in the worker. Returns numpy arrays/scalars."""
+        return {}
+
+    def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:  # pragma: no cover
+        raise NotImplementedError
+
+
+def _canonical(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _canonical(value[k]) for k in sorted(value)}
+    if isinstance(value, (list, tuple)):
+        return [_canonical(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def options_fingerprint(name: str, version: int, opts: dict[str, Any]) -> str:
+    """A stable 16-hex-digit hash of a stage's identity and options."""
+    blob = json.dumps({"stage": name, "version": version, "options": _canonical(opts)},
+                      sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+REGISTRY: dict[str, type[Stage]] = {}
+
+#: The six stage names of the contract, in their usual order.
+STAGE_NAMES = ("validate", "transpose", "key_meter", "dedup", "filter", "split")
+
+
+def register(cls: type[Stage]) -> type[Stage]:
+    """Class decorator that makes a stage known to the config loader and the runner."""
+    if not cls.name:
+        raise TypeError(f"{cls.__name__} has no stage name")
+    REGISTRY[cls.name] = cls
+    return cls
