@@ -197,3 +197,22 @@ def register(cls: type[Stage]) -> type[Stage]:
         raise TypeError(f"{cls.__name__} has no stage name")
     REGISTRY[cls.name] = cls
     return cls
+
+
+# Small option checkers: each returns an error sentence or None (STYLE: one checker per rule).
+def positive(value: float) -> str | None:
+    return None if value > 0 else "must be greater than 0"
+
+
+def non_negative(value: float) -> str | None:
+    return None if value >= 0 else "must be 0 or greater"
+
+
+def unit_interval(value: float) -> str | None:
+    return None if 0 < value <= 1 else "must be in (0, 1]"
+
+
+def one_of(*choices: Any) -> Callable[[Any], str | None]:
+    def check(value: Any) -> str | None:
+        return None if value in choices else f"must be one of {', '.join(map(repr, choices))}"
+    return check

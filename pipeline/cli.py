@@ -1,0 +1,107 @@
+"""Argument parsing only: turns argv into calls. Exit codes: 0 ok, 1 runtime failure, 2 bad usage/config."""
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from .errors import ConfigError, MidisiftError, UsageError
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="midisift", description="Prepare MIDI training corpora.")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    r = sub.add_parser("run", help="run a config over its input folder")
+    r.add_argument("config", help="YAML config file, e.g. configs/default.yaml")
+    r.add_argument("--input", help="input folder (overrides the config)")
+    r.add_argument("--output", help="output folder (overrides the config)")
+    r.add_argument("--workers", help="'auto' or a number of worker processes (overrides the config)")
+    r.add_argument("--fresh", action="store_true", help="ignore cached results and recompute everything")
+    r.add_argument("--quiet", action="store_true", help="no progress bars and no summary table")
+    r.add_argument("--reassign", action="store_true", help="recompute the split from scratch (files may change part)")
+    r.add_argument("--retry-failed", action="store_true",
+                   help="recompute files that failed with timeout or decoder_crash in an earlier run")
+
+    e = sub.add_parser("explain", help="print the whole decision trail of one file")
+    e.add_argument("file", help="source path (as in the manifest, or under the input folder) or an id")
+    e.add_argument("--output", default="out/demo", help="output folder of the run (default: out/demo)")
+
+    s = sub.add_parser("synth", help="generate a demo/benchmark corpus with planted cases and truth.json")
+    s.add_argument("dir")
+    s.add_argument("--count", type=int, default=80)
+    s.add_argument("--seed", type=int, default=0)
+    s.add_argument("--profile", choices=("small", "large"), default="small")
+
+    lk = sub.add_parser("leakage", help="audit a split for near-duplicates across its parts")
+    lk.add_argument("output", nargs="?", help="an output folder of ours (splits/*.txt)")
+    lk.add_argument("--part", action="append", default=[], metavar="NAME=LIST",
+                    help="a part of your own split: a text file with one MIDI path per line (repeat)")
+    lk.add_argument("--threshold", type=float, help="similarity that counts as a leak")
+    lk.add_argument("--json", dest="json_out", help="also write the report as JSON to this file")
+
+    b = sub.add_parser("bench", help="side-by-side throughput benchmark; prints a table, writes bench.json")
+    b.add_argument("--quick", action="store_true", help="small corpora (a smoke run, minutes not tens of minutes)")
+    b.add_argument("--out", default="bench-out", help="scratch folder for corpora and outputs")
+    b.add_argument("--json", dest="json_out", default="bench.json")
+    b.add_argument("--only", action="append", default=[], help="run only the named sections (repeat)")
+    return p
+
+
+def _run(args: argparse.Namespace) -> int:
+    from .config import load_config
+    from .runner import Runner
+    cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers)
+    report = Runner(cfg, fresh=args.fresh, quiet=args.quiet, reassign=args.reassign,
+                    retry_failed=args.retry_failed).run()
+    if not args.quiet:
+        print(report.table())
+    return 0
+
+
+def _explain(args: argparse.Namespace) -> int:
+    from .explain import explain
+    print(explain(Path(args.output), args.file))
+    return 0
+
+
+def _synth(args: argparse.Namespace) -> int:
+    from .synth import main_synth
+    if args.count < 1:
+        raise UsageError(f"--count must be at least 1, got {args.count}")
+    main_synth(Path(args.dir), args.count, args.seed, args.profile)
+    return 0
+
+
+def _leakage(args: argparse.Namespace) -> int:
+    from .leakage import main_leakage
+    if not args.output and not args.part:
+        raise UsageError("give an output folder or at least two --part NAME=LIST options")
+    return main_leakage(args)
+
+
+def _bench(args: argparse.Namespace) -> int:
+    from .bench import main_bench
+    return main_bench(args)
+
+
+COMMANDS = {"run": _run, "explain": _explain, "synth": _synth, "leakage": _leakage, "bench": _bench}
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        return COMMANDS[args.command](args)
+    except (ConfigError, UsageError) as e:
+        print(f"midisift: error: {e.message}", file=sys.stderr)
+        return 2
+    except MidisiftError as e:
+        print(f"midisift: {e.message}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("midisift: interrupted; rerun the same command to continue where it stopped", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,206 @@
+"""YAML config -> typed, validated ``Config``. Every error names its key path.
+
+The file is loaded with ``yaml.safe_load`` (no object construction). Relative ``input`` and
+``output`` paths are taken relative to the current directory, as the README's commands run from
+the repository root. Stage options are checked against each stage's ``options`` table: unknown
+names get a "did you mean" suggestion, wrong types and out-of-range values state the rule.
+"""
+from __future__ import annotations
+
+import difflib
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .errors import ConfigError
+from .stages import Stage, known_stages, stage_class
+
+TOP_KEYS = ("input", "output", "workers", "stages")
+
+
+@dataclass
+class StageConfig:
+    """One entry of ``stages:``: its name, validated options and position."""
+
+    name: str
+    options: dict[str, Any]
+    index: int
+
+    def build(self) -> Stage:
+        return stage_class(self.name)(self.options)
+
+
+@dataclass
+class Config:
+    """A validated run configuration."""
+
+    input: Path
+    output: Path
+    workers: int
+    stages: list[StageConfig]
+    path: Path | None = None
+    raw: dict[str, Any] = field(default_factory=dict)
+
+    def stage(self, name: str) -> StageConfig | None:
+        return next((s for s in self.stages if s.name == name), None)
+
+
+def suggest(name: str, valid: list[str] | tuple[str, ...]) -> str:
+    """A ' (did you mean X?)' suffix for the nearest valid name, or a list of valid names."""
+    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.5)
+    if close:
+        return f"; did you mean '{close[0]}'?"
+    return f"; valid names are: {', '.join(valid)}"
+
+
+def _type_name(kind: type | tuple[type, ...]) -> str:
+    kinds = kind if isinstance(kind, tuple) else (kind,)
+    names = {int: "an integer", float: "a number", bool: "true or false", str: "a string",
+             list: "a list", dict: "a mapping", type(None): "null"}
+    return " or ".join(names.get(k, k.__name__) for k in kinds)
+
+
+def check_type(value: Any, kind: type | tuple[type, ...]) -> bool:
+    """YAML-aware type check: bools are not numbers, ints are acceptable floats."""
+    kinds = kind if isinstance(kind, tuple) else (kind,)
+    for k in kinds:
+        if k is bool and isinstance(value, bool):
+            return True
+        if k is int and isinstance(value, int) and not isinstance(value, bool):
+            return True
+        if k is float and isinstance(value, (int, float)) and not isinstance(value, bool):
+            return True
+        if k not in (bool, int, float) and isinstance(value, k):
+            return True
+    return False
+
+
+def _stage_entry(entry: Any, path: str) -> tuple[str, Any]:
+    if isinstance(entry, str):
+        return entry, {}
+    if isinstance(entry, dict) and len(entry) == 1:
+        (name, opts), = entry.items()
+        return str(name), opts
+    raise ConfigError(
+        f"each stage must be a name or a one-key mapping like '- filter: {{min_seconds: 8}}', got {entry!r}",
+        location=path)
+
+
+def validate_stage_options(name: str, opts: Any, path: str) -> dict[str, Any]:
+    """Check one stage's options against its table; return them with defaults filled in."""
+    cls = stage_class(name)
+    if opts is None:
+        opts = {}
+    if not isinstance(opts, dict):
+        raise ConfigError(f"options of stage '{name}' must be a mapping, got {opts!r}", location=path)
+    table = {o.name: o for o in cls.options}
+    out: dict[str, Any] = {}
+    for key, value in opts.items():
+        kpath = f"{path}.{key}"
+        if key not in table:
+            raise ConfigError(f"unknown option '{key}' for stage '{name}'{suggest(str(key), list(table))}",
+                              location=kpath)
+        opt = table[key]
+        if not check_type(value, opt.kind):
+            raise ConfigError(f"expected {_type_name(opt.kind)}, got {value!r}", location=kpath)
+        if isinstance(value, int) and not isinstance(value, bool) and opt.kind is float:
+            value = float(value)
+        if opt.check is not None:
+            problem = opt.check(value)
+            if problem:
+                raise ConfigError(f"{problem} (got {value!r})", location=kpath)
+        out[key] = value
+    merged = {o.name: o.default for o in cls.options}
+    merged.update(out)
+    check_all = getattr(cls, "check_options", None)
+    if check_all is not None:
+        problem = check_all(merged)
+        if problem:
+            raise ConfigError(problem, location=path)
+    return merged
+
+
+def parse_workers(value: Any, location: str = "workers") -> int:
+    """``auto`` (CPU count) or a whole number >= 1."""
+    if value is None or value == "auto":
+        return max(1, os.cpu_count() or 1)
+    if isinstance(value, str) and value.isdigit():
+        value = int(value)
+    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+        raise ConfigError(f"workers must be 'auto' or a whole number >= 1, got {value!r}", location=location)
+    return value
+
+
+def parse_config(raw: Any, *, source: str | None = None) -> Config:
+    """Validate a loaded YAML mapping (see module docstring)."""
+    if not isinstance(raw, dict):
+        raise ConfigError(f"the config must be a mapping with keys {', '.join(TOP_KEYS)}, got {type(raw).__name__}",
+                          file=source)
+    for key in raw:
+        if key not in TOP_KEYS:
+            raise ConfigError(f"unknown key '{key}'{suggest(str(key), TOP_KEYS)}", file=source, location=str(key))
+    for key in ("input", "output"):
+        if not isinstance(raw.get(key), str) or not raw.get(key):
+            raise ConfigError(f"'{key}' must be a folder path (a string), got {raw.get(key)!r}",
+                              file=source, location=key)
+    try:
+        workers = parse_workers(raw.get("workers", "auto"))
+    except ConfigError as e:
+        e.file = source
+        raise
+    entries = raw.get("stages")
+    if not isinstance(entries, list) or not entries:
+        raise ConfigError("'stages' must be a non-empty list, e.g. '- validate: {}'", file=source, location="stages")
+    stages: list[StageConfig] = []
+    seen: set[str] = set()
+    for i, entry in enumerate(entries):
+        name, opts = _stage_entry(entry, f"stages[{i}]")
+        path = f"stages[{i}].{name}"
+        known = known_stages()
+        if name not in known:
+            raise ConfigError(f"unknown stage '{name}'{suggest(name, known)}", file=source, location=f"stages[{i}]")
+        if name in seen:
+            raise ConfigError(f"stage '{name}' appears twice; list each stage once", file=source, location=path)
+        seen.add(name)
+        try:
+            options = validate_stage_options(name, opts, path)
+        except ConfigError as e:
+            e.file = source
+            raise
+        stages.append(StageConfig(name, options, i))
+    if stages[0].name != "validate":
+        raise ConfigError(f"the first stage must be 'validate' (it decodes the files), got '{stages[0].name}'",
+                          file=source, location="stages[0]")
+    if "split" in seen and stages[-1].name != "split":
+        raise ConfigError("'split' must be the last stage (it places the files that survived every other stage)",
+                          file=source, location=f"stages[{[s.name for s in stages].index('split')}]")
+    return Config(input=Path(raw["input"]), output=Path(raw["output"]), workers=workers,
+                  stages=stages, path=Path(source) if source else None, raw=raw)
+
+
+def load_config(path: str | Path, *, input: str | None = None, output: str | None = None,
+                workers: str | int | None = None) -> Config:
+    """Read a YAML config file, apply CLI overrides, validate everything."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as e:
+        raise ConfigError(f"cannot read the config file ({e.strerror}); check the path", file=str(p)) from None
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as e:
+        mark = getattr(e, "problem_mark", None)
+        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else None
+        raise ConfigError(f"not valid YAML: {getattr(e, 'problem', e)}", file=str(p), location=where) from None
+    if isinstance(raw, dict):
+        raw = dict(raw)
+        if input is not None:
+            raw["input"] = input
+        if output is not None:
+            raw["output"] = output
+        if workers is not None:
+            raw["workers"] = workers
+    return parse_config(raw, source=str(p))

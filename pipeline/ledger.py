@@ -1,0 +1,259 @@
+"""The SQLite state of an output folder (``OUTPUT/state.sqlite``): the only module that speaks SQL.
+
+Tables
+  sources    path -> size, mtime_ns, sha256 (cheap re-fingerprinting: hash only when size or
+             mtime changed)
+  results    (sha256, stage, fingerprint) -> verdict, reason, detail, values, thresholds
+             (per-file stage results; a rerun reuses every row whose key matches)
+  artifacts  (sha256, stage, fingerprint, name) -> a scalar (JSON) or a numpy array (raw bytes
+             + dtype + shape; never pickle) from a corpus stage's per-file ``prepare``
+  state      (stage, key) -> JSON saved by a corpus stage in the last completed run
+  decisions  source -> the whole decision trail of the last completed run (for ``explain``)
+  outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
+  runs       one row per run: when, config, counts, status
+
+The database runs in WAL mode; every batch of writes is one transaction, so a killed run never
+leaves a half-written result and the next run picks up what was committed.
+"""
+from __future__ import annotations
+
+import json
+import sqlite3
+import time
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+import numpy as np
+
+from .errors import LedgerError
+
+SCHEMA_VERSION = 1
+#: Artifact name recorded when a corpus stage's ``prepare`` returned nothing for a file.
+EMPTY = "~"
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS sources (
+    path TEXT PRIMARY KEY, size INTEGER NOT NULL, mtime_ns INTEGER NOT NULL, sha256 TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS results (
+    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    kept INTEGER NOT NULL, reason TEXT, detail TEXT NOT NULL,
+    vals TEXT NOT NULL, thresholds TEXT NOT NULL,
+    PRIMARY KEY (sha256, stage, fingerprint)) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS artifacts (
+    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL, name TEXT NOT NULL,
+    dtype TEXT, shape TEXT, data BLOB,
+    PRIMARY KEY (sha256, stage, fingerprint, name)) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS state (
+    stage TEXT NOT NULL, key TEXT NOT NULL, value TEXT NOT NULL, PRIMARY KEY (stage, key));
+CREATE TABLE IF NOT EXISTS decisions (
+    source TEXT PRIMARY KEY, sha256 TEXT, status TEXT NOT NULL, trail TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS outputs (
+    path TEXT PRIMARY KEY, sha256 TEXT NOT NULL, fingerprint TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS runs (
+    id INTEGER PRIMARY KEY AUTOINCREMENT, started REAL NOT NULL, finished REAL,
+    status TEXT NOT NULL, config TEXT NOT NULL, counts TEXT);
+"""
+
+
+def _dumps(value: Any) -> str:
+    return json.dumps(value, sort_keys=True, separators=(",", ":"), default=_json_default)
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
+
+
+class Ledger:
+    """An open ``state.sqlite``. Use as a context manager; writes go through ``batch()``."""
+
+    def __init__(self, path: Path):
+        self.path = Path(path)
+        try:
+            self.db = sqlite3.connect(str(self.path), isolation_level=None, timeout=30)
+            self.db.execute("PRAGMA journal_mode=WAL")
+            self.db.execute("PRAGMA synchronous=NORMAL")
+            self.db.executescript(_SCHEMA)
+            row = self.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
+            if row is None:
+                self.db.execute("INSERT INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
+            elif int(row[0]) != SCHEMA_VERSION:
+                raise LedgerError(
+                    f"state schema version {row[0]} is not {SCHEMA_VERSION}; rerun with --fresh into a new output folder",
+                    file=str(self.path))
+        except sqlite3.DatabaseError as e:
+            raise LedgerError(f"cannot open the state database ({e}); if it is corrupt, move it away and rerun",
+                              file=str(self.path)) from None
+
+    def close(self) -> None:
+        self.db.close()
+
+    def __enter__(self) -> "Ledger":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    # -- transactions ------------------------------------------------------------------
+    def batch(self) -> "_Batch":
+        """A transaction: ``with ledger.batch(): ...`` commits at the end or rolls back."""
+        return _Batch(self.db)
+
+    # -- sources -------------------------------------------------------------------------
+    def sources(self) -> dict[str, tuple[int, int, str]]:
+        """path -> (size, mtime_ns, sha256) as recorded by the last fingerprinting."""
+        return {p: (s, m, h) for p, s, m, h in self.db.execute("SELECT path, size, mtime_ns, sha256 FROM sources")}
+
+    def put_sources(self, rows: Iterable[tuple[str, int, int, str]]) -> None:
+        self.db.executemany("INSERT OR REPLACE INTO sources VALUES (?,?,?,?)", rows)
+
+    def forget_sources(self, paths: Iterable[str]) -> None:
+        self.db.executemany("DELETE FROM sources WHERE path=?", ((p,) for p in paths))
+
+    # -- per-file results ------------------------------------------------------------------
+    def results_for(self, stage: str, fingerprint: str) -> dict[str, dict]:
+        """sha256 -> result dict (kept, reason, detail, values, thresholds) of one stage."""
+        out = {}
+        for sha, kept, reason, detail, vals, thr in self.db.execute(
+                "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?",
+                (stage, fingerprint)):
+            out[sha] = {"kept": bool(kept), "reason": reason, "detail": detail,
+                        "values": json.loads(vals), "thresholds": json.loads(thr)}
+        return out
+
+    def put_results(self, rows: Iterable[tuple[str, str, str, dict]]) -> None:
+        """rows of (sha256, stage, fingerprint, result dict)."""
+        self.db.executemany(
+            "INSERT OR REPLACE INTO results VALUES (?,?,?,?,?,?,?,?)",
+            ((sha, stage, fp, int(r["kept"]), r["reason"], r["detail"], _dumps(r["values"]),
+              _dumps(r["thresholds"])) for sha, stage, fp, r in rows))
+
+    # -- artifacts ---------------------------------------------------------------------------
+    def artifact_keys(self, stage: str, fingerprint: str) -> set[str]:
+        return {sha for (sha,) in self.db.execute(
+            "SELECT DISTINCT sha256 FROM artifacts WHERE stage=? AND fingerprint=?", (stage, fingerprint))}
+
+    def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None) -> dict[str, dict[str, Any]]:
+        """sha256 -> {name: value}; arrays come back as read-only numpy arrays."""
+        out: dict[str, dict[str, Any]] = {}
+        for sha, name, dtype, shape, data in self.db.execute(
+                "SELECT sha256, name, dtype, shape, data FROM artifacts WHERE stage=? AND fingerprint=?",
+                (stage, fingerprint)):
+            if shas is not None and sha not in shas:
+                continue
+            entry = out.setdefault(sha, {})
+            if name != EMPTY:
+                entry[name] = _decode_artifact(dtype, shape, data)
+        return out
+
+    def put_artifacts(self, rows: Iterable[tuple[str, str, str, dict[str, Any]]]) -> None:
+        """rows of (sha256, stage, fingerprint, {name: array or JSON scalar})."""
+        flat = []
+        for sha, stage, fp, items in rows:
+            if not items:  # remember that prepare ran and returned nothing
+                flat.append((sha, stage, fp, EMPTY, None, None, "null"))
+            for name, value in items.items():
+                flat.append((sha, stage, fp, name, *_encode_artifact(value)))
+        self.db.executemany("INSERT OR REPLACE INTO artifacts VALUES (?,?,?,?,?,?,?)", flat)
+
+    # -- corpus-stage state ------------------------------------------------------------------
+    def state_for(self, stage: str) -> dict[str, Any]:
+        return {k: json.loads(v) for k, v in self.db.execute("SELECT key, value FROM state WHERE stage=?", (stage,))}
+
+    def put_state(self, stage: str, values: dict[str, Any]) -> None:
+        self.db.execute("DELETE FROM state WHERE stage=?", (stage,))
+        self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, _dumps(v)) for k, v in values.items()))
+
+    # -- decisions (explain) -------------------------------------------------------------------
+    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, list]]) -> None:
+        """Replace the trails with this run's: rows of (source, sha256, status, trail)."""
+        self.db.execute("DELETE FROM decisions")
+        self.db.executemany("INSERT INTO decisions VALUES (?,?,?,?)",
+                            ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
+
+    def decision_statuses(self) -> Iterator[tuple[str, str]]:
+        """(sha256, 'kept'|'dropped') of the last completed run; 'kept' wins for shared contents."""
+        return self.db.execute(
+            "SELECT sha256, MAX(status) FROM decisions GROUP BY sha256")  # 'kept' > 'dropped'
+
+    def decision(self, source: str) -> tuple[str | None, list] | None:
+        row = self.db.execute("SELECT sha256, trail FROM decisions WHERE source=?", (source,)).fetchone()
+        return None if row is None else (row[0], json.loads(row[1]))
+
+    def decisions_by_sha_prefix(self, prefix: str) -> list[tuple[str, str | None, list]]:
+        return [(s, h, json.loads(t)) for s, h, t in self.db.execute(
+            "SELECT source, sha256, trail FROM decisions WHERE sha256 LIKE ? ORDER BY source", (prefix + "%",))]
+
+    # -- outputs ---------------------------------------------------------------------------------
+    def outputs(self) -> dict[str, tuple[str, str]]:
+        return {p: (h, f) for p, h, f in self.db.execute("SELECT path, sha256, fingerprint FROM outputs")}
+
+    def put_outputs(self, rows: Iterable[tuple[str, str, str]]) -> None:
+        self.db.executemany("INSERT OR REPLACE INTO outputs VALUES (?,?,?)", rows)
+
+    def forget_outputs(self, paths: Iterable[str]) -> None:
+        self.db.executemany("DELETE FROM outputs WHERE path=?", ((p,) for p in paths))
+
+    # -- runs --------------------------------------------------------------------------------------
+    def start_run(self, config: dict) -> int:
+        cur = self.db.execute("INSERT INTO runs (started, status, config) VALUES (?, 'running', ?)",
+                              (time.time(), _dumps(config)))
+        return int(cur.lastrowid)
+
+    def finish_run(self, run_id: int, counts: dict) -> None:
+        self.db.execute("UPDATE runs SET finished=?, status='complete', counts=? WHERE id=?",
+                        (time.time(), _dumps(counts), run_id))
+
+    def last_run(self) -> dict | None:
+        row = self.db.execute(
+            "SELECT id, started, finished, config, counts FROM runs WHERE status='complete' ORDER BY id DESC LIMIT 1"
+        ).fetchone()
+        if row is None:
+            return None
+        return {"id": row[0], "started": row[1], "finished": row[2], "config": json.loads(row[3]),
+                "counts": json.loads(row[4] or "{}")}
+
+    def clear_cache(self) -> None:
+        """Forget cached per-file results and artifacts (``--fresh``); keeps history of runs."""
+        self.db.execute("DELETE FROM results")
+        self.db.execute("DELETE FROM artifacts")
+
+
+class _Batch:
+    def __init__(self, db: sqlite3.Connection):
+        self.db = db
+
+    def __enter__(self) -> sqlite3.Connection:
+        self.db.execute("BEGIN IMMEDIATE")
+        return self.db
+
+    def __exit__(self, exc_type: Any, *rest: Any) -> None:
+        if exc_type is None:
+            self.db.execute("COMMIT")
+        else:
+            self.db.execute("ROLLBACK")
+
+
+def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
+    if isinstance(value, np.ndarray):
+        arr = np.ascontiguousarray(value)
+        return arr.dtype.str, _dumps(list(arr.shape)), arr.tobytes()
+    return None, None, _dumps(value)
+
+
+def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:
+    if dtype is None:
+        return json.loads(data)
+    arr = np.frombuffer(data, dtype=np.dtype(dtype))
+    return arr.reshape(json.loads(shape))
+
+
+def iter_chunks(items: list, size: int) -> Iterator[list]:
+    for i in range(0, len(items), size):
+        yield items[i:i + size]

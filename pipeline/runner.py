@@ -1,0 +1,535 @@
+"""Plans the stages, feeds files through them, reuses cached results, shows progress.
+
+A run has four steps:
+
+1. **discover + fingerprint**: every ``.mid .midi .kar .rmi`` file under the input folder (case
+   insensitive, symlinks not followed, the output folder excluded); a file whose size and mtime
+   match the ledger keeps its recorded sha256, any other is hashed.
+2. **per-file pass**: for each distinct content (sha256) the runner works out which stage results
+   are missing from the ledger (key: sha256, stage, options fingerprint) and sends only those
+   files to the workers, which decode once and run the per-file stages in order (stopping at the
+   first drop), the ``prepare`` step of each corpus stage, and render the normalized output into
+   a staging folder. Results are committed to the ledger in batches.
+3. **stage walk**: stages are applied in config order over the files still alive: per-file
+   verdicts come from the ledger, corpus stages (dedup, split) run over the survivors in the main
+   process. A dropped file never reaches a later stage.
+4. **outputs**: normalized files placed under ``midi/<part>/``, split lists, manifest, summary.
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from . import outputs
+from .config import Config
+from .errors import LedgerError, MidisiftError
+from .executor import run_tasks
+from .ledger import Ledger
+from .lock import OutputLock
+from .stages import CorpusState, FileContext, Member, Stage, StageResult
+
+MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
+BATCH = 256
+#: Stage names of the byte-identical shortcut and of the runner's own state.
+RUNNER_STATE = "_runner"
+
+
+@dataclass
+class SourceFile:
+    """One input file: path relative to the input folder (POSIX form) and its fingerprint."""
+
+    rel: str
+    path: Path
+    size: int
+    mtime_ns: int
+    sha256: str = ""
+
+
+@dataclass
+class StagePlan:
+    """What a worker needs to know of one stage for one file."""
+
+    name: str
+    options: dict[str, Any]
+    kind: str
+    compute: bool
+    cached: dict | None = None  # cached per-file verdict when not computing
+
+
+@dataclass
+class FileTask:
+    """Plain-data description of the per-file work for one content."""
+
+    sha256: str
+    path: str
+    source: str
+    stages: list[StagePlan]
+    render: str | None  # staging folder for normalized output, or None
+    output_fp: str = ""
+
+
+@dataclass
+class FileOutcome:
+    """What a worker returns: results and artifacts of the stages it computed, staged outputs."""
+
+    sha256: str
+    results: dict[str, dict] = field(default_factory=dict)
+    artifacts: dict[str, dict[str, Any]] = field(default_factory=dict)
+    staged: list[tuple[str, str]] = field(default_factory=list)  # (suffix, staging path)
+    seconds: float = 0.0
+
+
+@dataclass
+class RunReport:
+    """What a run did: counts per stage and reason, timings, where outputs went."""
+
+    output: Path
+    files: int
+    kept: int
+    dropped: dict[tuple[str, str], int]
+    timings: dict[str, float]
+    computed: int
+    cached: int
+    parts: dict[str, int]
+    notes: list[str]
+
+    def table(self) -> str:
+        lines = [f"{'files in':<34}{self.files:>8}", f"{'kept':<34}{self.kept:>8}"]
+        for (stage, reason), n in sorted(self.dropped.items(), key=lambda kv: (-kv[1], kv[0])):
+            lines.append(f"{'dropped  ' + stage + ' / ' + reason:<34}{n:>8}")
+        for part, n in self.parts.items():
+            lines.append(f"{'split  ' + part:<34}{n:>8}")
+        lines.append(f"{'contents decoded / reused':<34}{self.computed:>8} / {self.cached}")
+        lines.append(f"{'seconds':<34}{self.timings.get('total', 0.0):>8.2f}")
+        lines.append(f"output: {self.output}")
+        lines.extend(self.notes)
+        return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------------------------
+# discovery and fingerprints
+
+def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[SourceFile], list[str]]:
+    """All MIDI files below ``input_dir`` sorted by relative path, plus notes for the user."""
+    input_dir = input_dir.resolve()
+    out_res = output_dir.resolve() if output_dir is not None else None
+    notes: list[str] = []
+    found: list[SourceFile] = []
+    for root, dirs, names in os.walk(input_dir, followlinks=False):
+        rootp = Path(root)
+        if out_res is not None and (rootp == out_res or out_res in rootp.parents):
+            dirs[:] = []
+            continue
+        dirs.sort()
+        if out_res is not None:
+            kept_dirs = []
+            for d in dirs:
+                if (rootp / d).resolve() == out_res:
+                    notes.append(f"note: the output folder {out_res} lies inside the input folder; it is not searched")
+                    continue
+                kept_dirs.append(d)
+            dirs[:] = kept_dirs
+        for name in names:
+            if not name.lower().endswith(MIDI_SUFFIXES):
+                continue
+            p = rootp / name
+            try:
+                if p.is_symlink():
+                    target = p.resolve()
+                    if input_dir not in target.parents:
+                        notes.append(f"note: skipped symlink {p.relative_to(input_dir)} pointing outside the input folder")
+                        continue
+                st = p.stat()
+            except OSError as e:
+                notes.append(f"note: cannot stat {p}: {e.strerror}")
+                continue
+            if not p.is_file():
+                continue
+            found.append(SourceFile(p.relative_to(input_dir).as_posix(), p, st.st_size, st.st_mtime_ns))
+    found.sort(key=lambda f: f.rel)
+    return found, notes
+
+
+def fingerprint(files: list[SourceFile], known: dict[str, tuple[int, int, str]]) -> list[tuple[str, int, int, str]]:
+    """Fill ``sha256`` of each file; hash only files whose size or mtime changed. Returns new rows."""
+    changed = []
+    for f in files:
+        rec = known.get(f.rel)
+        if rec is not None and rec[0] == f.size and rec[1] == f.mtime_ns:
+            f.sha256 = rec[2]
+            continue
+        h = hashlib.sha256()
+        with open(f.path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+        f.sha256 = h.hexdigest()
+        changed.append((f.rel, f.size, f.mtime_ns, f.sha256))
+    return changed
+
+
+# ---------------------------------------------------------------------------------------------
+# the worker side
+
+_STAGE_CACHE: dict[tuple[str, str], Stage] = {}
+
+
+def _stage(plan: StagePlan) -> Stage:
+    """Build (once per worker process) the stage object for a plan entry."""
+    from .stages import stage_class
+    from .stages.base import options_fingerprint
+    key = (plan.name, options_fingerprint(plan.name, 0, plan.options))
+    st = _STAGE_CACHE.get(key)
+    if st is None:
+        st = stage_class(plan.name)(plan.options)
+        _STAGE_CACHE[key] = st
+    return st
+
+
+def process_file(task: FileTask) -> FileOutcome:
+    """Decode one file once and compute what the task asks for. Never raises for bad input."""
+    t0 = time.perf_counter()
+    out = FileOutcome(task.sha256)
+    validate_plan = task.stages[0]
+    with open(task.path, "rb") as fh:
+        data = fh.read(int(validate_plan.options.get("max_bytes", 16_000_000)) + 1)
+    result, piece = _stage(validate_plan).check(data, task.source)
+    if validate_plan.compute:
+        out.results[validate_plan.name] = result.to_json()
+    if piece is None or not result.kept:
+        out.seconds = time.perf_counter() - t0
+        return out
+    ctx = FileContext(piece, task.source, task.sha256)
+    survived = True
+    transpose_values = None
+    for plan in task.stages[1:]:
+        st = _stage(plan)
+        if plan.kind == "corpus":
+            if plan.compute:
+                out.artifacts[plan.name] = st.prepare(piece, ctx)
+            continue
+        if plan.compute:
+            r = _run_file_stage(st, piece, ctx, task.source)
+            out.results[plan.name] = r.to_json()
+            rj = r.to_json()
+        else:
+            rj = plan.cached or {"kept": True, "values": {}}
+        if plan.name == "transpose":
+            transpose_values = rj.get("values", {})
+        if not rj["kept"]:
+            survived = False
+            break
+    if survived and task.render:
+        out.staged = outputs.render(piece, task.stages, transpose_values, task.render,
+                                    f"{task.sha256[:16]}_{task.output_fp[:8]}")
+    out.seconds = time.perf_counter() - t0
+    return out
+
+
+def _run_file_stage(st: Stage, piece: Any, ctx: FileContext, source: str) -> StageResult:
+    try:
+        return st.process(piece, ctx)
+    except MidisiftError as e:
+        return StageResult.drop("stage_error", f"stage {st.name} failed: {e.reason}")
+    except Exception as e:  # a bug in a stage must not stop the run; the file says why
+        return StageResult.drop("stage_error", f"stage {st.name} raised {type(e).__name__}: {e}")
+
+
+# ---------------------------------------------------------------------------------------------
+# the main side
+
+class Runner:
+    """One run of a config over its input folder."""
+
+    def __init__(self, config: Config, *, fresh: bool = False, quiet: bool = False,
+                 reassign: bool = False, retry_failed: bool = False):
+        self.config = config
+        self.fresh = fresh
+        self.quiet = quiet
+        self.reassign = reassign
+        self.retry_failed = retry_failed
+        self.stages: list[Stage] = [sc.build() for sc in config.stages]
+        self.output_fp = outputs.output_fingerprint(self.stages)
+
+    # progress -----------------------------------------------------------------------------
+    def _bar(self, desc: str, total: int, position: int = 0):
+        from tqdm import tqdm
+        disable = self.quiet or not sys.stderr.isatty()
+        return tqdm(total=total, desc=f"{desc:<10}", unit="file", disable=disable, position=position,
+                    leave=True, dynamic_ncols=True)
+
+    def run(self) -> RunReport:
+        t_start = time.perf_counter()
+        cfg = self.config
+        if not cfg.input.is_dir():
+            raise MidisiftError(f"the input folder does not exist or is not a folder; check 'input' in the config "
+                                f"or --input", file=str(cfg.input))
+        out = cfg.output
+        try:
+            out.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            raise LedgerError(f"cannot create the output folder ({e.strerror})", file=str(out)) from None
+        with OutputLock(out):
+            with Ledger(out / "state.sqlite") as ledger:
+                return self._run(ledger, t_start)
+
+    def _run(self, ledger: Ledger, t_start: float) -> RunReport:
+        cfg = self.config
+        timings: dict[str, float] = {}
+        run_id = ledger.start_run({"config": cfg.raw, "stages": [[s.name, s.opts] for s in self.stages]})
+        if self.fresh:
+            with ledger.batch():
+                ledger.clear_cache()
+
+        t = time.perf_counter()
+        files, notes = discover(cfg.input, cfg.output)
+        known = ledger.sources()
+        changed = fingerprint(files, known)
+        present = {f.rel for f in files}
+        with ledger.batch():
+            ledger.put_sources(changed)
+            ledger.forget_sources([p for p in known if p not in present])
+        timings["discover"] = time.perf_counter() - t
+
+        # distinct contents, each represented by its first source path
+        rep: dict[str, str] = {}
+        for f in files:
+            rep.setdefault(f.sha256, f.rel)
+        path_of = {f.rel: f.path for f in files}
+
+        t = time.perf_counter()
+        cache = {s.name: ledger.results_for(s.name, s.fingerprint) for s in self.stages if s.kind == "file"}
+        art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) for s in self.stages if s.kind == "corpus"}
+        existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp)
+        last_status = {sha: status for sha, status in ledger.decision_statuses()}
+        tasks = []
+        for sha, rel in rep.items():
+            task = self._plan(sha, rel, path_of[rel], cache, art_keys, existing_out, last_status)
+            if task is not None:
+                tasks.append(task)
+        computed = len(tasks)
+        self._execute(ledger, tasks, cache)
+        timings["per_file"] = time.perf_counter() - t
+
+        # stage walk
+        t = time.perf_counter()
+        walk = self._walk(ledger, rep, cache, timings)
+        timings["corpus"] = time.perf_counter() - t
+
+        # late renders: contents kept now that have no output (e.g. a cluster's new representative)
+        t = time.perf_counter()
+        kept_shas = [sha for sha in rep if walk.status[sha] is None]
+        missing = [sha for sha in kept_shas
+                   if sha not in existing_out and sha not in walk.staged]
+        if missing:
+            late = [self._render_task(sha, rep[sha], path_of[rep[sha]], cache) for sha in missing]
+            self._execute(ledger, late, cache, walk.staged)
+        placed = outputs.place(ledger, cfg.output, walk, rep, existing_out, self.output_fp)
+        timings["outputs"] = time.perf_counter() - t
+
+        rows, counts = outputs.build_manifest(files, rep, walk, placed, self.stages)
+        timings["total"] = time.perf_counter() - t_start
+        summary = outputs.build_summary(rows, walk, self.stages, timings, computed, len(rep) - computed,
+                                        placed, cfg)
+        outputs.write_all(cfg.output, rows, placed, summary)
+        with ledger.batch():
+            ledger.put_decisions((f.rel, f.sha256, "kept" if walk.final(f.rel, f.sha256) is None else "dropped",
+                                  walk.trail_of(f.rel, f.sha256)) for f in files)
+            for name, st in walk.states.items():
+                ledger.put_state(name, st)
+            ledger.finish_run(run_id, summary["counts"])
+        parts = {p: len(v) for p, v in placed.parts.items()}
+        return RunReport(cfg.output, len(files), counts["kept"], counts["dropped_by"], timings, computed,
+                         len(rep) - computed, parts, notes + walk.notes)
+
+    # planning -------------------------------------------------------------------------------
+    def _plan(self, sha: str, rel: str, path: Path, cache: dict, art_keys: dict, existing_out: dict,
+              last_status: dict) -> FileTask | None:
+        plans: list[StagePlan] = []
+        uncertain = False
+        need = False
+        fate_known_dropped = False
+        for st in self.stages:
+            if st.kind == "corpus":
+                compute = sha not in art_keys[st.name]
+                plans.append(StagePlan(st.name, st.opts, st.kind, compute))
+                if compute:
+                    need = True
+                continue
+            cached = cache[st.name].get(sha)
+            if cached is not None and self.retry_failed and cached["reason"] in RETRYABLE:
+                cached = None
+            if cached is None:
+                plans.append(StagePlan(st.name, st.opts, st.kind, True))
+                uncertain = need = True
+                continue
+            plans.append(StagePlan(st.name, st.opts, st.kind, False, cached))
+            if not cached["kept"] and not uncertain:
+                fate_known_dropped = True
+                break
+        # render the normalized output now when the file will probably be kept
+        render = None
+        if not fate_known_dropped and sha not in existing_out and last_status.get(sha, "kept") == "kept":
+            render = str(self.config.output / outputs.STAGING)
+            need = True
+        if not need:
+            return None
+        return FileTask(sha, str(path), rel, plans, render, self.output_fp)
+
+    def _render_task(self, sha: str, rel: str, path: Path, cache: dict) -> FileTask:
+        plans = [StagePlan(st.name, st.opts, st.kind, False, cache.get(st.name, {}).get(sha)) for st in self.stages]
+        return FileTask(sha, str(path), rel, plans, str(self.config.output / outputs.STAGING), self.output_fp)
+
+    def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict,
+                 staged: dict[str, list[tuple[str, str]]] | None = None) -> None:
+        if not tasks:
+            return
+        if staged is None:
+            staged = self._staged = {}
+        bar = self._bar("decode", len(tasks))
+        pending_r, pending_a = [], []
+        fps = {s.name: s.fingerprint for s in self.stages}
+        last = time.monotonic()
+        try:
+            for oc in run_tasks(process_file, tasks, self.config.workers):
+                for name, r in oc.results.items():
+                    cache[name][oc.sha256] = r
+                    pending_r.append((oc.sha256, name, fps[name], r))
+                for name, arts in oc.artifacts.items():
+                    pending_a.append((oc.sha256, name, fps[name], arts))
+                if oc.staged:
+                    staged[oc.sha256] = oc.staged
+                bar.update(1)
+                if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
+                    self._flush(ledger, pending_r, pending_a)
+                    last = time.monotonic()
+        finally:
+            self._flush(ledger, pending_r, pending_a)
+            bar.close()
+
+    @staticmethod
+    def _flush(ledger: Ledger, results: list, artifacts: list) -> None:
+        if not results and not artifacts:
+            return
+        with ledger.batch():
+            ledger.put_results(results)
+            ledger.put_artifacts(artifacts)
+        results.clear()
+        artifacts.clear()
+
+    # the stage walk ---------------------------------------------------------------------------
+    def _walk(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict) -> "Walk":
+        walk = Walk(staged=getattr(self, "_staged", {}))
+        alive = list(rep)  # contents in first-source order (sorted paths)
+        values: dict[str, dict] = {sha: {} for sha in rep}
+        trails: dict[str, list] = {sha: [] for sha in rep}
+        upstream: dict[str, dict[str, StageResult]] = {}
+        for st in self.stages:
+            t = time.perf_counter()
+            if st.kind == "file":
+                survivors = []
+                for sha in alive:
+                    r = cache[st.name].get(sha)
+                    if r is None:  # cannot happen unless a worker died; keep the file's trail honest
+                        r = {"kept": False, "reason": "decoder_crash", "detail": "the worker processing this file "
+                             "did not return a result", "values": {}, "thresholds": {}}
+                    trails[sha].append({"stage": st.name, **r})
+                    values[sha].update(r["values"])
+                    if r["kept"]:
+                        survivors.append(sha)
+                    else:
+                        walk.status[sha] = (st.name, r["reason"])
+                alive = survivors
+            else:
+                arts = ledger.artifacts_for(st.name, st.fingerprint, set(alive))
+                members = [Member(sha[:16], sha, rep[sha], dict(values[sha]), {st.name: arts.get(sha, {})})
+                           for sha in alive]
+                for m in members:  # artifacts of earlier corpus stages travel along
+                    for prev, res in walk.artifacts.items():
+                        if m.sha256 in res:
+                            m.artifacts[prev] = res[m.sha256]
+                walk.artifacts[st.name] = {m.sha256: m.artifacts[st.name] for m in members}
+                state = CorpusState(ledger.state_for(st.name), upstream,
+                                    {"fresh": self.fresh, "reassign": self.reassign})
+                bar = self._bar(st.name, len(members))
+                res = st.run_corpus(members, state) if members else {}
+                bar.update(len(members))
+                bar.close()
+                upstream[st.name] = res
+                walk.states[st.name] = state.current
+                walk.notes.extend(state.notes)
+                survivors = []
+                for sha in alive:
+                    r = res.get(sha[:16]) or StageResult.keep()
+                    rj = r.to_json()
+                    trails[sha].append({"stage": st.name, **rj})
+                    values[sha].update(rj["values"])
+                    if r.kept:
+                        survivors.append(sha)
+                    else:
+                        walk.status[sha] = (st.name, r.reason)
+                alive = survivors
+            timings[f"stage:{st.name}"] = time.perf_counter() - t
+        for sha in alive:
+            walk.status[sha] = None
+        walk.values = values
+        walk.trails = trails
+        walk.byte_copy_stage = "dedup" if any(s.name == "dedup" for s in self.stages) else None
+        walk.rep = rep
+        return walk
+
+
+#: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file).
+RETRYABLE = ("timeout", "decoder_crash", "stage_error", "too_large_memory")
+
+
+@dataclass
+class Walk:
+    """The outcome of the stage walk, per content (sha256)."""
+
+    staged: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
+    status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
+    values: dict[str, dict] = field(default_factory=dict)
+    trails: dict[str, list] = field(default_factory=dict)
+    artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)
+    states: dict[str, dict] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    byte_copy_stage: str | None = None
+    rep: dict[str, str] = field(default_factory=dict)
+
+    def is_byte_copy(self, rel: str, sha: str) -> bool:
+        """A source whose bytes equal an earlier source's (it is not the representative)."""
+        return self.rep.get(sha) != rel
+
+    def trail_of(self, rel: str, sha: str) -> list:
+        trail = list(self.trails.get(sha, []))
+        if self.is_byte_copy(rel, sha) and self.byte_copy_stage:
+            cut = [s for s in trail if s["stage"] != self.byte_copy_stage]
+            idx = next((i for i, s in enumerate(trail) if s["stage"] == self.byte_copy_stage), None)
+            if idx is not None:
+                cut = trail[:idx]
+                cut.append(byte_copy_result(self.rep[sha], sha, trail[idx]))
+            trail = cut
+        return trail
+
+    def final(self, rel: str, sha: str) -> tuple[str, str] | None:
+        """(stage, reason) that dropped this source, or None when kept."""
+        st = self.status.get(sha)
+        if st is None and self.is_byte_copy(rel, sha) and self.byte_copy_stage:
+            if any(s["stage"] == self.byte_copy_stage for s in self.trails.get(sha, [])):
+                return (self.byte_copy_stage, "exact_duplicate")
+        return st
+
+
+def byte_copy_result(rep_rel: str, sha: str, rep_result: dict) -> dict:
+    """The dedup verdict of a byte-identical copy of a file that reached dedup."""
+    vals = dict(rep_result.get("values", {}))
+    kept_id = vals.get("duplicate_of") if not rep_result.get("kept", True) and vals.get("duplicate_of") else sha[:16]
+    vals.update({"duplicate_of": kept_id, "similarity": 1.0, "duplicate_kind": "bytes"})
+    return {"stage": "dedup", "kept": False, "reason": "exact_duplicate",
+            "detail": f"byte-identical copy of {sha[:16]} ({rep_rel}); sha256 equal", "values": vals,
+            "thresholds": rep_result.get("thresholds", {})}

@@ -1,0 +1,107 @@
+"""Config loading: every error names its key path, the value, the rule, and a near match."""
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.config import load_config, parse_config
+from pipeline.errors import ConfigError
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _cfg(stages, **top):
+    raw = {"input": "sample_corpus", "output": "out/x", "stages": stages}
+    raw.update(top)
+    return raw
+
+
+def test_default_config_loads_all_six_stages():
+    cfg = load_config(ROOT / "configs" / "default.yaml")
+    assert [s.name for s in cfg.stages] == ["validate", "transpose", "key_meter", "dedup", "filter", "split"]
+    assert cfg.workers >= 1
+
+
+@pytest.mark.parametrize("name", ["default.yaml", "validate-only.yaml", "piano-augmented.yaml"])
+def test_shipped_configs_are_valid(name):
+    load_config(ROOT / "configs" / name)
+
+
+def test_unknown_top_key_suggests_nearest():
+    with pytest.raises(ConfigError, match=r"unknown key 'stagse'.*did you mean 'stages'"):
+        parse_config({"input": "a", "output": "b", "stagse": []})
+
+
+def test_unknown_stage_suggests_nearest():
+    with pytest.raises(ConfigError, match=r"stages\[1\].*unknown stage 'dedupe'.*did you mean 'dedup'"):
+        parse_config(_cfg([{"validate": {}}, {"dedupe": {}}]))
+
+
+def test_unknown_option_names_key_path_and_suggests():
+    with pytest.raises(ConfigError, match=r"stages\[0\]\.validate\.max_byte.*did you mean 'max_bytes'"):
+        parse_config(_cfg([{"validate": {"max_byte": 10}}]))
+
+
+def test_wrong_type_names_expected_type_and_value():
+    with pytest.raises(ConfigError, match=r"stages\[0\]\.validate\.max_bytes: expected an integer, got 'big'"):
+        parse_config(_cfg([{"validate": {"max_bytes": "big"}}]))
+
+
+def test_bool_is_not_a_number():
+    with pytest.raises(ConfigError, match=r"expected an integer, got True"):
+        parse_config(_cfg([{"validate": {"max_bytes": True}}]))
+
+
+def test_out_of_range_value_states_rule():
+    with pytest.raises(ConfigError, match=r"stages\[0\]\.validate\.max_bytes: must be greater than 0 \(got -5\)"):
+        parse_config(_cfg([{"validate": {"max_bytes": -5}}]))
+
+
+def test_zero_workers_is_an_error():
+    with pytest.raises(ConfigError, match=r"workers must be 'auto' or a whole number >= 1, got 0"):
+        parse_config(_cfg([{"validate": {}}], workers=0))
+
+
+def test_validate_must_come_first():
+    with pytest.raises(ConfigError, match=r"first stage must be 'validate'"):
+        parse_config(_cfg([{"key_meter": {}}, {"validate": {}}]))
+
+
+def test_stage_listed_twice():
+    with pytest.raises(ConfigError, match=r"stage 'validate' appears twice"):
+        parse_config(_cfg([{"validate": {}}, {"validate": {}}]))
+
+
+def test_bare_stage_name_is_accepted():
+    cfg = parse_config(_cfg(["validate"]))
+    assert cfg.stages[0].options["max_bytes"] > 0
+
+
+def test_yaml_syntax_error_names_line(tmp_path):
+    p = tmp_path / "bad.yaml"
+    p.write_text("input: a\nstages: [validate\n")
+    with pytest.raises(ConfigError, match=r"bad.yaml: line \d+, column \d+: not valid YAML"):
+        load_config(p)
+
+
+def test_yaml_is_loaded_safely(tmp_path):
+    # yaml.safe_load refuses python object tags (PyYAML documentation, "Loading YAML").
+    p = tmp_path / "evil.yaml"
+    p.write_text("input: !!python/object/apply:os.system ['echo hi']\noutput: o\nstages: [validate]\n")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_config(p)
+
+
+def test_cli_bad_config_exits_2_and_writes_nothing(tmp_path):
+    out = tmp_path / "out"
+    p = tmp_path / "c.yaml"
+    p.write_text(yaml.safe_dump(_cfg([{"validate": {"max_bytes": -1}}], output=str(out))))
+    proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "run", str(p)], capture_output=True, text=True,
+                          cwd=ROOT)
+    assert proc.returncode == 2
+    assert "stages[0].validate.max_bytes" in proc.stderr
+    assert not out.exists()
