@@ -1,0 +1,217 @@
+"""End-to-end runs of the pipeline on the demo corpus and on small generated corpora.
+
+The demo corpus is invented (sample_corpus/README.md); these tests check the pipeline against the
+corpus's own truth file, not against outside references. Outside references are in the stage and
+decoder tests.
+"""
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import sqlite3
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.cli import main
+from pipeline.config import load_config
+from pipeline.runner import Runner
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "sample_corpus"
+
+
+def _manifest(out: Path) -> list[dict]:
+    return [json.loads(line) for line in (out / "manifest.jsonl").read_text(encoding="utf-8").splitlines()]
+
+
+def _run(out: Path, input_dir: Path = DEMO, workers: int = 1, config: Path | None = None, **flags):
+    cfg = load_config(config or ROOT / "configs" / "default.yaml", input=str(input_dir), output=str(out),
+                      workers=workers)
+    return Runner(cfg, quiet=True, **flags).run()
+
+
+@pytest.fixture(scope="module")
+def demo_out(tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("demo") / "out"
+    _run(out)
+    return out
+
+
+def test_one_manifest_line_per_input_file(demo_out):
+    truth = json.loads((DEMO / "truth.json").read_text())["files"]
+    rows = _manifest(demo_out)
+    assert sorted(r["source"] for r in rows) == sorted(truth)
+    assert [r["source"] for r in rows] == sorted(r["source"] for r in rows)
+    assert all(r["status"] in ("kept", "dropped") for r in rows)
+
+
+def test_every_planted_case_gets_the_expected_verdict(demo_out):
+    truth = json.loads((DEMO / "truth.json").read_text())["files"]
+    got = {r["source"]: r for r in _manifest(demo_out)}
+    wrong = []
+    for src, t in truth.items():
+        r = got[src]
+        verdict = "kept" if r["status"] == "kept" else r["reason"]
+        if verdict != t["expect"]:
+            wrong.append((src, t["expect"], verdict, r["detail"]))
+    assert not wrong, "\n".join(map(str, wrong))
+
+
+def test_tolerated_quirks_are_kept(demo_out):
+    truth = json.loads((DEMO / "truth.json").read_text())["files"]
+    got = {r["source"]: r for r in _manifest(demo_out)}
+    rmid = [s for s in truth if s.lower().endswith(".rmi")]
+    assert rmid, "the demo corpus should hold a RIFF-wrapped file"
+    for s in rmid:
+        assert got[s]["status"] == "kept" or got[s]["reason"] in ("exact_duplicate", "near_duplicate")
+
+
+def test_outputs_match_manifest(demo_out):
+    rows = _manifest(demo_out)
+    kept = [r for r in rows if r["status"] == "kept"]
+    listed = set()
+    for p in (demo_out / "splits").glob("*.txt"):
+        lines = p.read_text().splitlines()
+        assert lines == sorted(lines)
+        for line in lines:
+            assert line.startswith(f"midi/{p.stem}/")
+            assert (demo_out / line).is_file()
+        listed.update(lines)
+    assert {r["output"] for r in kept} <= listed
+    on_disk = {p.relative_to(demo_out).as_posix() for p in (demo_out / "midi").rglob("*.mid")}
+    assert on_disk == listed
+    summary = json.loads((demo_out / "summary.json").read_text())
+    assert summary["counts"]["files"] == len(rows)
+    assert summary["counts"]["kept"] == len(kept)
+
+
+def test_outputs_decode_with_reference_decoder(demo_out):
+    mido = pytest.importorskip("mido")  # mido: reference decoder
+    for p in sorted((demo_out / "midi").rglob("*.mid"))[:20]:
+        mf = mido.MidiFile(p)
+        assert any(m.type == "note_on" and m.velocity > 0 for t in mf.tracks for m in t)
+
+
+def test_rerun_with_nothing_changed_recomputes_nothing(tmp_path):
+    out = tmp_path / "out"
+    first = _run(out)
+    before = (out / "manifest.jsonl").read_bytes()
+    splits = {p.name: p.read_bytes() for p in (out / "splits").glob("*.txt")}
+    again = _run(out)
+    assert first.computed > 0
+    assert again.computed == 0
+    assert (out / "manifest.jsonl").read_bytes() == before
+    assert {p.name: p.read_bytes() for p in (out / "splits").glob("*.txt")} == splits
+
+
+def test_changing_one_stage_recomputes_only_that_stage(tmp_path):
+    out = tmp_path / "out"
+    _run(out)
+    db = sqlite3.connect(out / "state.sqlite")
+    count = lambda stage: db.execute("SELECT COUNT(*) FROM results WHERE stage=?", (stage,)).fetchone()[0]
+    before = {s: count(s) for s in ("validate", "transpose", "key_meter", "filter")}
+    raw = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text())
+    for entry in raw["stages"]:
+        if "filter" in entry:
+            entry["filter"]["min_seconds"] = 20
+    cfg_path = tmp_path / "c.yaml"
+    cfg_path.write_text(yaml.safe_dump(raw))
+    _run(out, config=cfg_path)
+    after = {s: count(s) for s in ("validate", "transpose", "key_meter", "filter")}
+    db.close()
+    assert {s: after[s] for s in ("validate", "transpose", "key_meter")} == \
+        {s: before[s] for s in ("validate", "transpose", "key_meter")}
+    assert after["filter"] > before["filter"]  # new rows under the new options fingerprint
+
+
+def test_one_and_two_workers_give_byte_identical_outputs(tmp_path):
+    a, b = tmp_path / "a", tmp_path / "b"
+    _run(a, workers=1)
+    _run(b, workers=2)
+    assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
+    for p in (a / "splits").glob("*.txt"):
+        assert p.read_bytes() == (b / "splits" / p.name).read_bytes()
+    for p in (a / "midi").rglob("*.mid"):
+        assert p.read_bytes() == (b / p.relative_to(a)).read_bytes()
+
+
+def test_adding_files_computes_only_the_new_ones(tmp_path):
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    extra = sorted(p for p in corpus.rglob("*.mid"))[:3]
+    holding = tmp_path / "later"
+    holding.mkdir()
+    for i, p in enumerate(extra):
+        shutil.move(p, holding / f"{i}_{p.name}")
+    out = tmp_path / "out"
+    _run(out, input_dir=corpus)
+    old = {r["source"]: r for r in _manifest(out)}
+    new_dir = corpus / "added"
+    new_dir.mkdir()
+    for p in holding.iterdir():
+        shutil.copy(p, new_dir / p.name)
+    report = _run(out, input_dir=corpus)
+    assert report.computed <= 3
+    rows = {r["source"]: r for r in _manifest(out)}
+    assert len(rows) == len(old) + 3
+    moved = [s for s, r in old.items() if r["status"] == "kept" and rows[s]["split"] not in (r["split"], None)]
+    summary = json.loads((out / "summary.json").read_text())
+    for s in moved:  # a move is allowed only when it is reported
+        assert any(rows[s]["id"] in note for note in summary["notes"]), s
+
+
+def test_explain_a_dropped_demo_file(demo_out, capsys):
+    rows = _manifest(demo_out)
+    dropped = next(r for r in rows if r["status"] == "dropped" and r["stage"] == "dedup")
+    assert main(["explain", dropped["source"], "--output", str(demo_out)]) == 0
+    text = capsys.readouterr().out
+    assert f"dropped by dedup: {dropped['reason']}" in text
+    assert dropped["duplicate_of"] in text
+    for stage in ("validate", "transpose", "key_meter", "dedup"):
+        assert f"[{stage}]" in text
+    assert "[filter]" not in text  # a dropped file never reaches a later stage
+
+
+def test_explain_by_id_and_unknown_file(demo_out, capsys):
+    row = next(r for r in _manifest(demo_out) if r["status"] == "dropped" and r["stage"] == "validate")
+    assert main(["explain", row["id"], "--output", str(demo_out)]) == 0
+    text = capsys.readouterr().out
+    assert row["reason"] in text and row["source"] in text
+    assert main(["explain", "no/such/file.mid", "--output", str(demo_out)]) == 1
+    assert "no such file" in capsys.readouterr().err
+
+
+def test_byte_identical_copies_share_id_and_one_is_kept(demo_out):
+    rows = _manifest(demo_out)
+    by_sha: dict[str, list[dict]] = {}
+    for r in rows:
+        by_sha.setdefault(r["sha256"], []).append(r)
+    groups = [g for g in by_sha.values() if len(g) > 1]
+    assert groups, "the demo corpus has byte-identical copies"
+    for g in groups:
+        assert len({r["id"] for r in g}) == 1
+        copies = [r for r in g if r["reason"] == "exact_duplicate"]
+        assert len(copies) >= len(g) - 1
+
+
+def test_readme_and_ci_run_the_same_two_commands():
+    readme = (ROOT / "README.md").read_text()
+    ci = (ROOT / ".ci" / "run").read_text()
+    quick = readme.split("## Quick start", 1)[1].split("\n## ", 1)[0]
+    commands = re.findall(r"```\n(.+?)\n```", quick)
+    assert commands[:2] == ["pip install . && midisift run configs/default.yaml",
+                            "pip install '.[test]' && pytest"]
+    ci_lines = [line.strip() for line in ci.splitlines() if line.strip() and not line.strip().startswith("#")]
+    for c in commands[:2]:
+        assert c in ci_lines
+
+
+def test_missing_input_folder_is_a_clear_error(tmp_path, capsys):
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(tmp_path / "nope"), "output": str(tmp_path / "o"),
+                                   "stages": ["validate"]}))
+    assert main(["run", str(cfg), "--quiet"]) == 1
+    assert "nope" in capsys.readouterr().err
