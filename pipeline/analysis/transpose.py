@@ -1,0 +1,44 @@
+"""Transposition of a note table: the shift that moves a tonic to a target, and the shift itself.
+
+Drum-channel notes (channel 9, "channel 10") are unpitched in General MIDI and never move.
+Notes pushed outside MIDI's 0..127 are folded back by whole octaves (keeping their pitch
+class, so the transposed pitch-class histogram is still an exact rotation) and counted.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..score import DRUM_CHANNEL
+
+DIRECTIONS = ("nearest", "up", "down")
+
+
+def smallest_shift(tonic_pc: int, target_pc: int, direction: str = "nearest") -> int:
+    """Semitones that move ``tonic_pc`` onto ``target_pc``.
+
+    ``nearest``: -6..+5 (a tritone goes down); ``up``: 0..11; ``down``: -11..0.
+    """
+    d = (int(target_pc) - int(tonic_pc)) % 12
+    if direction == "nearest":
+        return d - 12 if d >= 6 else d
+    if direction == "up":
+        return d
+    if direction == "down":
+        return d - 12 if d else 0
+    raise ValueError(f"direction must be one of {', '.join(DIRECTIONS)}, not {direction!r}")
+
+
+def shift_notes(notes: np.ndarray, semitones: int) -> tuple[np.ndarray, int]:
+    """A copy of ``notes`` with pitched notes moved by ``semitones``; returns (notes, folded),
+    ``folded`` being the number of notes folded back into 0..127 by octaves."""
+    out = notes.copy()
+    if semitones == 0 or len(out) == 0:
+        return out, 0
+    pitched = out["channel"] != DRUM_CHANNEL
+    p = out["pitch"].astype(np.int64) + np.where(pitched, int(semitones), 0)
+    high = p > 127
+    low = p < 0
+    p = np.where(high, p - 12 * ((p - 127 + 11) // 12), p)
+    p = np.where(low, p + 12 * ((-p + 11) // 12), p)
+    out["pitch"] = p.astype(out["pitch"].dtype)
+    return out, int(np.count_nonzero(high | low))

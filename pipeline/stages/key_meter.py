@@ -1,0 +1,111 @@
+"""Stage ``key_meter``: key and meter of the source file, plus tempo and quantization.
+
+Never drops a file. The key estimate is memoized in the file context under a name that includes
+every option that changes it, so ``transpose`` (before or after this stage) reuses it.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+from ..analysis import key as keymod
+from ..analysis import meter as metermod
+from ..score import Piece
+from .base import FileContext, Option, Stage, StageResult, register
+
+
+def _check_profile(value: Any) -> str | None:
+    try:
+        keymod.resolve_profile(value)
+    except ValueError as exc:
+        return str(exc)
+    return None
+
+
+def _check_weight(value: Any) -> str | None:
+    if isinstance(value, bool) or value < 0:
+        return f"must be a number >= 0, not {value!r}"
+    return None
+
+
+#: Options shared by ``key_meter`` and ``transpose`` (same names, same defaults), so that both
+#: stages compute, and share, the same estimate unless a config sets them differently.
+KEY_OPTIONS: tuple[Option, ...] = (
+    Option("profile", str, keymod.DEFAULT_PROFILE,
+           "Key profile for the Krumhansl-Schmuckler correlation: "
+           + ", ".join(sorted(keymod.PROFILES)) + " (default chosen by measurement).",
+           _check_profile),
+    Option("bass_weight", (int, float), keymod.DEFAULT_BASS_WEIGHT,
+           "Extra weight (multiple of its duration) for the lowest note of each onset; 0 = plain method.",
+           _check_weight),
+    Option("final_weight", (int, float), keymod.DEFAULT_FINAL_WEIGHT,
+           "Extra weight for notes sounding in the last 4 beats; 0 = off.", _check_weight),
+    Option("trust_file_key", bool, False,
+           "Report (and transpose by) the key-signature event of the file instead of the "
+           "estimate when the file declares one."),
+)
+
+
+def key_memo_name(opts: dict[str, Any]) -> str:
+    """The ``FileContext.analysis`` name of the key estimate for these options."""
+    return (f"key:{keymod.resolve_profile(opts['profile'])}:"
+            f"{float(opts['bass_weight']):g}:{float(opts['final_weight']):g}")
+
+
+def shared_key_estimate(ctx: FileContext, opts: dict[str, Any]) -> keymod.KeyEstimate:
+    """The (memoized) key estimate of the source piece for these options."""
+    profile = keymod.resolve_profile(opts["profile"])
+    bass, final = float(opts["bass_weight"]), float(opts["final_weight"])
+    return ctx.analysis(key_memo_name(opts),
+                        lambda p: keymod.estimate_key(p, profile, bass_weight=bass, final_weight=final))
+
+
+def reported_key(piece: Piece, estimate: keymod.KeyEstimate, trust_file_key: bool) -> tuple[int, str, str]:
+    """(tonic_pc, mode, source) of the key to report: the estimate, or the file's declared key
+    when ``trust_file_key`` is set and the file declares one."""
+    declared = keymod.declared_key(piece)
+    if trust_file_key and declared is not None:
+        pc, mode = keymod.parse_key(declared)
+        return pc, mode, "file"
+    return estimate.tonic_pc, estimate.mode, "estimated"
+
+
+@register
+class KeyMeter(Stage):
+    """Detect key (tonic, mode, confidence) and meter; measure tempo and quantization."""
+
+    name = "key_meter"
+    kind = "file"
+    version = 1
+    options = KEY_OPTIONS
+    doc = ("Estimates key (Krumhansl-Schmuckler key profiles) and meter (onset accent template "
+           "matching), records what the file declares, the average tempo and the fraction of "
+           "onsets on a 16th/triplet grid. Never drops a file.")
+
+    def process(self, piece: Piece, ctx: FileContext) -> StageResult:
+        est = shared_key_estimate(ctx, self.opts)
+        declared = keymod.declared_key(piece)
+        pc, mode, source = reported_key(piece, est, bool(self.opts["trust_file_key"]))
+        agrees = None
+        if declared is not None:
+            agrees = keymod.parse_key(declared) == (est.tonic_pc, est.mode)
+        meter_est = ctx.analysis("meter", metermod.estimate_meter)
+        file_meter = metermod.meter_from_file(piece)
+        names = keymod.MAJOR_TONIC_NAMES if mode == "major" else keymod.MINOR_TONIC_NAMES
+        values = {
+            "tonic": names[pc],
+            "tonic_pc": pc,
+            "mode": mode,
+            "key_source": source,
+            "key_confidence": round(est.confidence, 4),
+            "key_runner_up": est.runner_up,
+            "key_declared": declared,
+            "key_agrees": agrees,
+            "meter": file_meter or meter_est.meter,
+            "meter_source": "file" if file_meter else "estimated",
+            "meter_estimated": meter_est.meter,
+            "meter_confidence": round(meter_est.confidence, 4),
+            "bpm": round(metermod.tempo_bpm(piece), 2),
+            "grid_fraction": round(metermod.grid_fraction(piece), 4),
+        }
+        detail = f"{values['tonic']} {mode} ({source}), {values['meter']} ({values['meter_source']})"
+        return StageResult.keep(detail=detail, values=values)

@@ -1,0 +1,99 @@
+"""Stage ``transpose``: move each piece so its tonic becomes the target for its mode.
+
+The key comes from the same memoized estimate as ``key_meter`` (same option names and
+defaults); the manifest's key fields keep describing the source file. ``output_notes`` gives
+the writer the shifted note tables: the normalized piece and one copy per ``augment`` shift.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ..analysis import key as keymod
+from ..analysis.transpose import DIRECTIONS, shift_notes, smallest_shift
+from ..score import Piece, sort_notes
+from .base import FileContext, Option, Stage, StageResult, register
+from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
+
+
+def _check_note(value: Any) -> str | None:
+    try:
+        keymod.note_name_to_pc(value)
+    except ValueError as exc:
+        return str(exc)
+    return None
+
+
+def _check_direction(value: Any) -> str | None:
+    if value not in DIRECTIONS:
+        return f"must be one of {', '.join(DIRECTIONS)}, not {value!r}"
+    return None
+
+
+def _check_augment(value: Any) -> str | None:
+    if not isinstance(value, (list, tuple)):
+        return f"must be a list of whole semitone shifts, e.g. [-5, -4, 1, 2], not {value!r}"
+    bad = [v for v in value if isinstance(v, bool) or not isinstance(v, int) or not -11 <= v <= 11]
+    if bad:
+        return f"shifts must be whole numbers in -11..11, got {bad!r}"
+    return None
+
+
+def augment_shifts(value: list[int]) -> list[int]:
+    """The extra shifts actually written: distinct, sorted, without 0 (that is the main copy)."""
+    return sorted({int(v) for v in value} - {0})
+
+
+def augment_suffix(shift: int) -> str:
+    """Output-name suffix of an augmentation copy, e.g. ``.t+3``, ``.t-5``."""
+    return f".t{shift:+d}"
+
+
+@register
+class Transpose(Stage):
+    """Transpose-normalize to a target tonic per mode; optional transposed copies."""
+
+    name = "transpose"
+    kind = "file"
+    version = 1
+    options = (
+        Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
+               _check_note),
+        Option("minor_to", str, "A", "Target tonic for minor pieces.", _check_note),
+        Option("direction", str, "nearest",
+               "nearest (-6..+5 semitones), up (0..11) or down (-11..0).", _check_direction),
+        Option("augment", list, [],
+               "Extra semitone shifts (relative to the normalized piece) written as additional "
+               "copies of each kept file, e.g. [-5, -4, -3, -2, -1, 1, 2, 3, 4, 5, 6]; all copies "
+               "share the source's group id.", _check_augment),
+    ) + KEY_OPTIONS
+    doc = ("Shifts pitched notes so the estimated tonic becomes major_to/minor_to; drum channel "
+           "untouched; notes beyond 0..127 folded by octaves and counted.")
+
+    def process(self, piece: Piece, ctx: FileContext) -> StageResult:
+        est = shared_key_estimate(ctx, self.opts)
+        pc, mode, _ = reported_key(piece, est, bool(self.opts["trust_file_key"]))
+        target = keymod.note_name_to_pc(self.opts["major_to" if mode == "major" else "minor_to"])
+        shift = smallest_shift(pc, target, self.opts["direction"])
+        _, folded = shift_notes(piece.notes, shift)
+        extra = augment_shifts(self.opts["augment"])
+        folded_aug = sum(shift_notes(piece.notes, shift + e)[1] for e in extra)
+        values = {"transpose": shift, "transpose_folded": folded, "augment": extra,
+                  "augment_folded": folded_aug}
+        detail = f"{keymod.key_name(pc, mode)} shifted {shift:+d} semitones"
+        if folded:
+            detail += f", {folded} notes folded by octaves"
+        return StageResult.keep(detail=detail, values=values)
+
+    @staticmethod
+    def output_notes(piece: Piece, values: dict) -> list[tuple[str, np.ndarray]]:
+        """(suffix, notes) for the normalized output (suffix "") and each augmentation copy,
+        each computed from the source notes by one total shift (so folding happens once),
+        in canonical note order."""
+        shift = int(values.get("transpose") or 0)
+        out = [("", sort_notes(shift_notes(piece.notes, shift)[0]))]
+        for extra in values.get("augment") or []:
+            out.append((augment_suffix(int(extra)),
+                        sort_notes(shift_notes(piece.notes, shift + int(extra))[0])))
+        return out

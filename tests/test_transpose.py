@@ -1,0 +1,169 @@
+"""Tests of transpose-normalization: shift choice, note shifting, the stage and its outputs."""
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+
+from pipeline.analysis import key as keymod
+from pipeline.analysis.transpose import shift_notes, smallest_shift
+from pipeline.score import DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
+from pipeline.stages.base import FileContext
+from pipeline.stages.key_meter import KeyMeter
+from pipeline.stages.transpose import Transpose
+
+from music21_fixtures import chorales, decode
+
+
+def make_piece(pitches, channels=None, starts=None, dur=480) -> Piece:
+    n = len(pitches)
+    notes = empty_notes(n)
+    notes["pitch"] = pitches
+    notes["channel"] = channels if channels is not None else 0
+    notes["start"] = starts if starts is not None else np.arange(n) * dur
+    notes["end"] = notes["start"] + dur
+    notes["velocity"] = 80
+    notes["start_s"] = notes["start"] / 960.0
+    notes["end_s"] = notes["end"] / 960.0
+    return Piece(notes=sort_notes(notes), ticks_per_beat=480,
+                 tempos=np.array([(0, 500_000)], dtype=TEMPO_DTYPE),
+                 time_signatures=np.zeros(0, dtype=METER_DTYPE),
+                 key_signatures=np.zeros(0, dtype=KEY_DTYPE))
+
+
+def pc_hist(notes: np.ndarray) -> np.ndarray:
+    pitched = notes[notes["channel"] != DRUM_CHANNEL]
+    return np.bincount(pitched["pitch"] % 12, weights=pitched["end"] - pitched["start"], minlength=12)
+
+
+# --- smallest_shift ------------------------------------------------------------------------
+
+@pytest.mark.parametrize("tonic,target,direction,want", [
+    (7, 0, "nearest", 5),     # G -> C: up a fourth (5) is smaller than down a fifth (-7)
+    (2, 0, "nearest", -2),    # D -> C
+    (6, 0, "nearest", -6),    # F# -> C: the tritone goes down (range -6..+5)
+    (0, 0, "nearest", 0),
+    (9, 9, "up", 0), (2, 0, "up", 10), (2, 0, "down", -2), (10, 0, "down", -10),
+    (0, 0, "down", 0),
+])
+def test_smallest_shift_examples(tonic, target, direction, want):
+    assert smallest_shift(tonic, target, direction) == want
+
+
+@given(st.integers(0, 11), st.integers(0, 11))
+def test_smallest_shift_ranges_and_lands_on_target(tonic, target):
+    for direction, lo, hi in (("nearest", -6, 5), ("up", 0, 11), ("down", -11, 0)):
+        s = smallest_shift(tonic, target, direction)
+        assert lo <= s <= hi
+        assert (tonic + s) % 12 == target
+    # nearest is the shortest move: no other shift in -11..11 landing on target is smaller
+    s = smallest_shift(tonic, target)
+    assert all(abs(s) <= abs(o) for o in range(-11, 12) if (tonic + o) % 12 == target)
+
+
+def test_smallest_shift_rejects_bad_direction():
+    with pytest.raises(ValueError, match="nearest, up, down"):
+        smallest_shift(0, 1, "sideways")
+
+
+# --- shift_notes ---------------------------------------------------------------------------
+
+@settings(max_examples=60)
+@given(st.lists(st.integers(0, 127), min_size=1, max_size=40), st.integers(-11, 11),
+       st.randoms(use_true_random=False))
+def test_shift_rotates_histogram_and_keeps_drums(pitches, semis, rnd):
+    channels = [DRUM_CHANNEL if rnd.random() < 0.3 else rnd.randrange(0, 9) for _ in pitches]
+    piece = make_piece(pitches, channels=channels)
+    shifted, folded = shift_notes(piece.notes, semis)
+    # a pitch-class histogram rotated by the shift equals the shifted piece's
+    assert np.array_equal(np.roll(pc_hist(piece.notes), semis), pc_hist(shifted))
+    drums = piece.notes["channel"] == DRUM_CHANNEL
+    assert np.array_equal(shifted["pitch"][drums], piece.notes["pitch"][drums])
+    assert shifted["pitch"].min() >= 0 and shifted["pitch"].max() <= 127
+    raw = piece.notes["pitch"].astype(int) + np.where(drums, 0, semis)
+    assert folded == int(np.count_nonzero((raw < 0) | (raw > 127)))
+    unfolded = (raw >= 0) & (raw <= 127)
+    assert np.array_equal(shifted["pitch"][unfolded], raw[unfolded])
+    # every other field untouched
+    for f in ("start", "end", "velocity", "channel", "program", "track"):
+        assert np.array_equal(shifted[f], piece.notes[f])
+
+
+def test_fold_by_octaves_examples():
+    piece = make_piece([126, 2, 60])
+    up, n_up = shift_notes(piece.notes, 5)
+    assert sorted(up["pitch"].tolist()) == [7, 65, 119] and n_up == 1   # 131 -> 119
+    down, n_down = shift_notes(piece.notes, -5)
+    assert sorted(down["pitch"].tolist()) == [9, 55, 121] and n_down == 1  # -3 -> 9
+
+
+# --- the stage -----------------------------------------------------------------------------
+
+def test_stage_moves_estimated_tonic_to_target_and_shares_estimate():
+    # G major scale with tonic emphasis (invented, not an outside reference)
+    g_major = [67, 69, 71, 72, 74, 76, 78, 79, 67, 74, 67, 55]
+    piece = make_piece(g_major)
+    ctx = FileContext(piece)
+    tr = Transpose().process(piece, ctx)
+    km = KeyMeter().process(piece, ctx)
+    assert km.values["tonic"] == "G" and km.values["mode"] == "major"   # source key kept
+    assert tr.values["transpose"] == 5 and tr.values["transpose_folded"] == 0
+    assert len([k for k in ctx._memo if k.startswith("key:")]) == 1     # one shared estimate
+    (suffix, notes), = Transpose.output_notes(piece, tr.values)
+    assert suffix == ""
+    assert keymod.estimate_key(Piece(**{**piece.__dict__, "notes": notes})).tonic == "C"
+
+
+def test_stage_targets_and_augment_copies():
+    piece = make_piece([57, 60, 64, 69, 71, 72, 69, 64, 57, 45], channels=[0] * 9 + [DRUM_CHANNEL])
+    stage = Transpose({"minor_to": "E", "direction": "up", "augment": [3, 0, -5, 3]})
+    res = stage.process(piece, FileContext(piece))
+    est = keymod.estimate_key(piece)
+    assert est.mode == "minor"
+    want = smallest_shift(est.tonic_pc, 4, "up")
+    assert res.values["transpose"] == want and res.values["augment"] == [-5, 3]
+    outs = Transpose.output_notes(piece, res.values)
+    assert [s for s, _ in outs] == ["", ".t-5", ".t+3"]
+    for (_, notes), extra in zip(outs, (0, -5, 3)):
+        expect = sort_notes(shift_notes(piece.notes, want + extra)[0])
+        assert np.array_equal(notes, expect)
+        assert notes[notes["channel"] == DRUM_CHANNEL]["pitch"].tolist() == [45]
+
+
+@pytest.mark.parametrize("opts,match", [
+    ({"major_to": "H"}, "not a note name.*C, C#"),
+    ({"minor_to": "Ax"}, "not a note name"),
+    ({"direction": "sideways"}, "nearest, up, down"),
+    ({"augment": [1, 2.5]}, "whole numbers"),
+    ({"augment": 3}, "must be a list"),
+    ({"profile": "nonesuch"}, "valid profiles: aarden_essen"),
+])
+def test_option_checks_name_the_rule(opts, match):
+    (name, value), = opts.items()
+    option = next(o for o in Transpose.options if o.name == name)
+    message = option.check(value)
+    assert message is not None and re.search(match, message)
+
+
+@pytest.mark.parametrize("name,pc", [("C", 0), ("Eb", 3), ("D#", 3), ("F#", 6), ("Gb", 6),
+                                     ("Cb", 11), ("E#", 5), ("bb", 10)])
+def test_note_names_with_flats_and_sharps(name, pc):
+    assert keymod.note_name_to_pc(name) == pc
+
+
+# --- round trip through the written file ---------------------------------------------------
+
+def test_written_file_decodes_to_shifted_notes():
+    """Encode the normalized notes of real chorales (music21 corpus) with the project's
+    writer and decode them with the reference decoder (mido-based, in music21_fixtures)."""
+    encode = pytest.importorskip("pipeline.encode").encode
+    from music21_fixtures import decode_with_mido
+    for work in chorales()[:5]:
+        piece = decode(work["midi"])
+        values = Transpose({"augment": [2]}).process(piece, FileContext(piece)).values
+        for _, notes in Transpose.output_notes(piece, values):
+            back = decode_with_mido(encode(piece, notes)).notes
+            for f in ("start", "end", "pitch", "velocity", "channel"):
+                assert np.array_equal(back[f], notes[f]), f
