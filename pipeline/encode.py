@@ -1,0 +1,184 @@
+"""Normalized SMF writer: ``Piece`` (or a transposed note table) -> deterministic bytes.
+
+Layout: format 1; track 0 is the conductor track (title as track name, then time signatures,
+key signatures and the tempo map); then one track per (source track, channel) group, in that
+order, holding program changes and notes. Note-offs are written as note-on with velocity 0,
+which lets a whole group track use running status (common practice; smallest files). At equal
+ticks a group track writes note-offs (by pitch), then note-ons in (start, pitch) order, each
+preceded by a program change when its program differs from the previous note-on's. So the
+bytes are a pure function of the note table, and the decoder reads back exactly the same notes
+(a note-off never closes the note that starts at its own tick). Each group track carries its
+source track's name. Zero-length notes are not written (the decoder drops them too).
+
+SMPTE pieces are re-based on 480 ticks per beat at one 120 BPM tempo (960 ticks per second)
+from their exact seconds. Limits: overlapping notes of one pitch and channel in one group cannot
+be told apart in MIDI; they read back under the decoder's stacking policy (see pipeline.smf).
+"""
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from .errors import OutputError
+from .score import DEFAULT_TEMPO, Piece
+
+__all__ = ["encode", "write_atomic", "SMPTE_TICKS_PER_BEAT"]
+
+SMPTE_TICKS_PER_BEAT = 480
+
+
+def _vlq(value: int) -> bytes:
+    """A variable-length quantity (SMF 1.0: 7 bits per byte, high bit = more follow)."""
+    if value < 0 or value > 0x0FFFFFFF:
+        raise ValueError(f"a delta time must be 0..0x0FFFFFFF, got {value}")
+    out = [value & 0x7F]
+    value >>= 7
+    while value:
+        out.append(0x80 | (value & 0x7F))
+        value >>= 7
+    return bytes(reversed(out))
+
+
+def _chunk(name: bytes, body: bytes) -> bytes:
+    return name + len(body).to_bytes(4, "big") + body
+
+
+def _track(events: list[tuple[int, bytes]]) -> bytes:
+    """Meta events (absolute tick, bytes), already in order -> an MTrk chunk with EOT."""
+    out = bytearray()
+    last = 0
+    for tick, msg in events:
+        out += _vlq(tick - last)
+        last = tick
+        out += msg
+    out += b"\x00\xff\x2f\x00"
+    return _chunk(b"MTrk", bytes(out))
+
+
+def _meta(kind: int, payload: bytes) -> bytes:
+    return bytes((0xFF, kind)) + _vlq(len(payload)) + payload
+
+
+def encode(piece: Piece, notes: np.ndarray | None = None) -> bytes:
+    """The piece as a normalized format-1 SMF; ``notes`` replaces its note table (e.g.
+    transposed notes). The same input always gives the same bytes."""
+    notes = piece.notes if notes is None else notes
+    if piece.smpte:
+        tpb = SMPTE_TICKS_PER_BEAT
+        per_s = 2.0 * tpb  # ticks per second at 120 BPM
+        starts = np.rint(notes["start_s"] * per_s).astype(np.int64)
+        ends = np.rint(notes["end_s"] * per_s).astype(np.int64)
+        ends = np.maximum(ends, starts + 1)  # keep every note audible after rounding
+        rebase = lambda t: np.rint(piece.ticks_to_seconds(t) * per_s).astype(np.int64)  # noqa: E731
+        tempos = [(0, DEFAULT_TEMPO)]
+    else:
+        tpb = piece.ticks_per_beat
+        starts = notes["start"].astype(np.int64)
+        ends = notes["end"].astype(np.int64)
+        rebase = lambda t: np.asarray(t, dtype=np.int64)  # noqa: E731
+        if (ends < starts).any():
+            raise ValueError("a note ends before it starts; the note table is corrupt")
+        audible = ends > starts
+        if not audible.all():
+            notes, starts, ends = notes[audible], starts[audible], ends[audible]
+        tempos = [(int(t), int(u)) for t, u in zip(piece.tempos["tick"], piece.tempos["us_per_beat"])]
+
+    cond: list[tuple[int, int, bytes]] = []  # (tick, order, bytes)
+    if piece.title:
+        cond.append((0, 0, _meta(0x03, piece.title.encode("latin-1", "replace"))))
+    ts = piece.time_signatures
+    for t, num, den in zip(rebase(ts["tick"]).tolist(), ts["numerator"].tolist(),
+                           ts["denominator"].tolist()):
+        cond.append((t, 1, _meta(0x58, bytes((num, int(den).bit_length() - 1, 24, 8)))))
+    ks = piece.key_signatures
+    for t, sf, mi in zip(rebase(ks["tick"]).tolist(), ks["sharps"].tolist(), ks["minor"].tolist()):
+        cond.append((t, 2, _meta(0x59, bytes((sf & 0xFF, mi)))))
+    for t, us in tempos:
+        cond.append((t, 3, _meta(0x51, int(us).to_bytes(3, "big"))))
+    cond.sort(key=lambda e: (e[0], e[1]))
+    tracks = [_track([(t, m) for t, _, m in cond])]
+
+    if len(notes):
+        tr = notes["track"].astype(np.int64)
+        group = tr * 16 + notes["channel"].astype(np.int64)
+        names = piece.track_names
+        for g in np.unique(group).tolist():
+            idx = np.flatnonzero(group == g)
+            src, c = divmod(g, 16)
+            head = b""
+            if src < len(names) and names[src]:
+                head = b"\x00" + _meta(0x03, names[src].encode("latin-1", "replace"))
+            body = _group_events(starts[idx], ends[idx], notes["pitch"][idx].astype(np.int64),
+                                 notes["velocity"][idx].astype(np.int64),
+                                 notes["program"][idx].astype(np.int64), c)
+            tracks.append(_chunk(b"MTrk", head + body + b"\x00\xff\x2f\x00"))
+
+    header = _chunk(b"MThd", (1).to_bytes(2, "big") + len(tracks).to_bytes(2, "big")
+                    + int(tpb).to_bytes(2, "big"))
+    return header + b"".join(tracks)
+
+
+def _group_events(start: np.ndarray, end: np.ndarray, pitch: np.ndarray, vel: np.ndarray,
+                  prog: np.ndarray, channel: int) -> bytes:
+    """Event bytes of one (track, channel) group, vectorized.
+
+    Order: by tick; at one tick note-offs first (by pitch), then note-ons in (start, pitch)
+    order, each preceded by a program change when its program differs from the previous
+    note-on's. Running status: a status byte is written only where it changes.
+    """
+    o = np.lexsort((pitch, start))
+    start, end, pitch, vel, prog = start[o], end[o], pitch[o], vel[o], prog[o]
+    n = len(o)
+    pc = np.ones(n, dtype=bool)
+    pc[1:] = prog[1:] != prog[:-1]
+    seq = np.arange(n, dtype=np.int64) * 2
+    n_pc = int(pc.sum())
+    # columns of all events: tick, class, tie key, status, data1, data2, has data2
+    tick = np.concatenate((start[pc], start, end))
+    cls = np.concatenate((np.ones(n_pc + n, np.int64), np.zeros(n, np.int64)))
+    tie = np.concatenate((seq[pc], seq + 1, pitch))
+    status = np.concatenate((np.full(n_pc, 0xC0 | channel), np.full(2 * n, 0x90 | channel)))
+    d1 = np.concatenate((prog[pc], pitch, pitch))
+    d2 = np.concatenate((np.zeros(n_pc, np.int64), vel, np.zeros(n, np.int64)))
+    order = np.lexsort((tie, cls, tick))
+    tick, status, d1, d2 = tick[order], status[order], d1[order], d2[order]
+    delta = np.diff(tick, prepend=0)
+    if len(delta) and (delta.min() < 0 or delta.max() > 0x0FFFFFFF):
+        raise ValueError("note times must be 0..0x0FFFFFFF ticks apart and not negative")
+    is_pc = status == (0xC0 | channel)
+    need_status = np.ones(len(tick), dtype=bool)
+    need_status[1:] = status[1:] != status[:-1]
+    table = np.stack([((delta >> 21) & 0x7F) | 0x80, ((delta >> 14) & 0x7F) | 0x80,
+                      ((delta >> 7) & 0x7F) | 0x80, delta & 0x7F, status, d1, d2], axis=1)
+    mask = np.stack([delta >= 1 << 21, delta >= 1 << 14, delta >= 1 << 7,
+                     np.ones(len(tick), dtype=bool), need_status,
+                     np.ones(len(tick), dtype=bool), ~is_pc], axis=1)
+    return table.astype(np.uint8)[mask].tobytes()
+
+
+def write_atomic(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so readers see the old file or the new one, never a part:
+    a temp file in the same folder, fsync, then ``os.replace``."""
+    path = Path(path)
+    tmp = None
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+        tmp = None
+    except OSError as exc:
+        raise OutputError(f"cannot write the file ({exc.strerror or exc}); check free disk space "
+                          "and permissions of the output folder", file=str(path)) from exc
+    finally:
+        if tmp is not None:
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass

@@ -1,0 +1,76 @@
+"""The ``validate`` stage: decode the file bytes and keep only files that are readable MIDI.
+
+The runner calls ``check(data, source)`` with the file bytes; it returns the verdict and the
+decoded ``Piece`` (None when dropped). A ``DecodeError`` becomes a drop with its reason code
+(``not_midi``, ``truncated``, ``bad_chunk``, ``bad_event``, ``unsupported_format``,
+``too_large``) and the decoder's sentence; a readable file without notes drops as ``no_notes``.
+
+``allow_repairs`` (default true): the decoder's narrow named tolerances (see
+``pipeline.smf.REPAIRS``: hanging notes closed, missing end-of-track, RIFF unwrapped, ...) are
+accepted and listed in the detail. When false, any repair drops the file as ``needs_repair``,
+for corpora that must hold only files that follow SMF 1.0 to the letter.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+from ..errors import DecodeError
+from ..score import Piece
+from ..smf import decode, describe_repairs
+from .base import FileContext, Option, Stage, StageResult, positive, register
+
+
+@register
+class Validate(Stage):
+    """Decode each file; drop unreadable, empty, oversized (or, if asked, repaired) files."""
+
+    name = "validate"
+    kind = "file"
+    version = 1
+    doc = ("Decodes every file with the project's SMF reader and drops files that are not MIDI, "
+           "cut off, damaged, of an unsupported format, over the size limits, or without notes.")
+    options = (
+        Option("max_bytes", int, 16_000_000, "largest file size read, in bytes", positive),
+        Option("max_events", int, 2_000_000, "most MIDI events read from one file", positive),
+        Option("max_tracks", int, 1024, "most track chunks a file may declare", positive),
+        Option("allow_repairs", bool, True,
+               "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
+               "...); when false such files drop as needs_repair"),
+    )
+
+    def check(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
+        """Decode ``data`` and judge it; returns the verdict and the piece (None if dropped)."""
+        try:
+            piece = decode(data, source=source, max_bytes=self.opts["max_bytes"],
+                           max_events=self.opts["max_events"], max_tracks=self.opts["max_tracks"])
+        except DecodeError as err:
+            values = {"offset": err.offset, "track": err.track}
+            return StageResult.drop(err.code, err.message, values, self._thresholds()), None
+        result = self.judge(piece)
+        return result, (piece if result.kept else None)
+
+    def process(self, piece: Piece, ctx: FileContext) -> StageResult:
+        """The verdict for an already-decoded piece (same as ``check`` gives after decoding)."""
+        return self.judge(piece)
+
+    def judge(self, piece: Piece) -> StageResult:
+        values = {"format": piece.format, "tracks": piece.n_tracks,
+                  "ticks_per_beat": piece.ticks_per_beat, "smpte": piece.smpte,
+                  "repairs": dict(sorted(piece.repairs.items()))}
+        timing = ("SMPTE timing (nominal " if piece.smpte else "") + \
+            f"{piece.ticks_per_beat} ticks per beat" + (")" if piece.smpte else "")
+        detail = f"SMF format {piece.format}, {piece.n_tracks} tracks, {timing}"
+        fixes = describe_repairs(piece.repairs)
+        if len(piece.notes) == 0:
+            return StageResult.drop("no_notes", f"{detail}, but no notes: a file needs at least "
+                                    "one note-on with its note-off to be used", values,
+                                    self._thresholds())
+        if fixes and not self.opts["allow_repairs"]:
+            return StageResult.drop("needs_repair", f"{detail}; it needs repairs ({fixes}) and "
+                                    "allow_repairs is false; set it to true to accept them",
+                                    values, self._thresholds())
+        return StageResult.keep(f"{detail}; {fixes}" if fixes else detail, values,
+                                self._thresholds())
+
+    def _thresholds(self) -> dict[str, Any]:
+        return {k: self.opts[k] for k in ("max_bytes", "max_events", "max_tracks")}
