@@ -1,0 +1,236 @@
+"""The ``split`` stage: a leakage-free train/valid/test split that stays put when files are added.
+
+Which files travel together (one group, never split across parts):
+
+* near-duplicates at ``group_threshold`` (lower than dedup's removal threshold, so near-misses
+  that survived dedup still travel together), found on dedup's stored signatures and shingles
+  (``Member.artifacts["dedup"]``); members of one dedup ``cluster`` too;
+* all augmentation copies of one source: they are one ``Member`` with several outputs, so they
+  travel together by construction and weigh as many files as they write in the ratios
+  (``output_count``);
+* optionally files in the same folder (``group_by_folder``; files at the top of the input folder
+  are not grouped by it), with the same normalized title (``group_by_title``) or the same
+  normalized value of other manifest fields (``group_fields``, e.g. ``[composer]``).
+
+The assignment itself is ``pipeline.grouping.assign_groups`` (placement rules documented
+there). Reruns keep every file's previous part; files dropped by dedup in favour of a new file
+pass their part on to it (they stay in the saved state, weightless), so the new representative
+of a test piece stays in test. ``state.flags["reassign"]`` recomputes from scratch.
+"""
+from __future__ import annotations
+
+import re
+import unicodedata
+from pathlib import PurePosixPath
+from typing import Any
+
+import numpy as np
+
+from ..errors import ConfigError
+from ..grouping import achieved_ratios, assign_groups, build_groups, group_by_key, near_links
+from .base import CorpusState, Member, Option, Stage, StageResult, register
+
+_PART_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
+DEFAULT_RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
+
+
+def check_ratios(v: Any) -> str | None:
+    """Error sentence for a bad ``ratios`` mapping, else None."""
+    if not isinstance(v, dict) or not v:
+        return f"ratios must map part names to shares, e.g. {DEFAULT_RATIOS}"
+    for name, share in v.items():
+        if not isinstance(name, str) or not _PART_NAME.match(name):
+            return (f"part name {name!r} must be a plain file name (letters, digits, '_', '-', "
+                    "'.'), since it names splits/<part>.txt and midi/<part>/")
+        if isinstance(share, bool) or not isinstance(share, (int, float)) or share <= 0:
+            return f"ratio of part {name!r} must be a number > 0, got {share!r}"
+    total = sum(v.values())
+    if abs(total - 1.0) > 1e-6:
+        return f"ratios must sum to 1 (within 1e-6) but sum to {total:.6g}; rescale them"
+    return None
+
+
+def _check_threshold(v: Any) -> str | None:
+    if v is None:
+        return None
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 < v <= 1:
+        return f"group_threshold must be in (0, 1] or null (no near-duplicate grouping)"
+    return None
+
+
+def _check_fields(v: Any) -> str | None:
+    if not isinstance(v, (list, tuple)) or not all(isinstance(x, str) for x in v):
+        return f"group_fields must be a list of manifest field names"
+    return None
+
+
+def normalize_text(value: Any) -> str | None:
+    """Casefolded, accent-free words of a title or metadata value; None when nothing is left."""
+    if value is None:
+        return None
+    text = unicodedata.normalize("NFKD", str(value))
+    text = "".join(ch for ch in text if not unicodedata.combining(ch)).casefold()
+    words = re.findall(r"[^\W_]+", text)
+    return " ".join(words) or None
+
+
+def folder_of(source: str) -> str | None:
+    """The folder of a source path relative to the input folder (None at the top level)."""
+    parent = PurePosixPath(source.replace("\\", "/")).parent.as_posix()
+    return None if parent in ("", ".") else parent
+
+
+def output_count(m: Member) -> float:
+    """Files a member writes: its outputs if known, else 1 plus its augmentation copies
+    (``values["augment"]``, the extra shifts of the transpose stage)."""
+    augment = m.values.get("augment") or []
+    return float(max(1, len(m.outputs), 1 + len(augment)))
+
+
+@register
+class Split(Stage):
+    """Split kept files into parts, keeping every near-duplicate group whole and reruns stable."""
+
+    name = "split"
+    kind = "corpus"
+    version = 1
+    doc = "Leakage-free, rerun-stable split of the kept files into parts."
+    options = (
+        Option("ratios", dict, dict(DEFAULT_RATIOS), "Part name -> share of the kept files "
+               "(positive, summing to 1). Parts may be renamed or added.", check_ratios),
+        Option("seed", int, 0, "Seed of the placement order of new groups."),
+        Option("group_threshold", (int, float, type(None)), 0.5, "Similarity at which files "
+               "travel together (below dedup's removal threshold, so near-misses that survive "
+               "dedup still share a part); null turns near-duplicate grouping off.",
+               _check_threshold),
+        Option("group_by_folder", bool, False, "Files in the same folder share a part (files at "
+               "the top of the input folder are not grouped by this)."),
+        Option("group_by_title", bool, False, "Files with the same normalized title (casefolded, "
+               "accents and punctuation removed) share a part."),
+        Option("group_fields", (list, tuple), [], "Other manifest fields whose normalized equal "
+               "values tie files together, e.g. [composer].", _check_fields),
+        Option("freeze", (str, type(None)), "test", "When a new file links groups sitting in "
+               "different parts, the merged group joins this part if any member was there "
+               "(null: the part that held most members). Ignored if no such part is configured "
+               "and left at its default."),
+    )
+
+    def __init__(self, opts: dict[str, Any] | None = None):
+        super().__init__(opts)
+        problem = self.check_options(self.opts)
+        if problem:
+            raise ConfigError(problem, location="split.freeze")
+
+    @classmethod
+    def check_options(cls, opts: dict[str, Any]) -> str | None:
+        """Cross-option rule: ``freeze`` names a configured part (the default ``"test"`` is
+        simply inactive when no part is called test)."""
+        freeze, parts = opts.get("freeze"), opts.get("ratios") or {}
+        if freeze is not None and freeze != "test" and freeze not in parts:
+            return (f"freeze names part {freeze!r}, which ratios does not define (parts: "
+                    f"{', '.join(parts)}); name one of them or set freeze: null")
+        return None
+
+    def _freeze(self) -> str | None:
+        freeze = self.opts["freeze"]
+        return freeze if freeze in self.opts["ratios"] else None
+
+    def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
+        ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
+        saved = dict(state.previous.get("assignments", {}))
+        previous = {} if state.flags.get("reassign") else saved
+        ids = sorted(m.id for m in members)
+        sizes = {m.id: output_count(m) for m in members}
+        links, ghosts = self._links(members, state, previous)
+        for g in ghosts:
+            sizes[g] = 0.0
+        groups = build_groups(ids + sorted(ghosts), links, self._forced(members))
+        assignment, moves = assign_groups(groups, ratios, self.opts["seed"], previous,
+                                          self._freeze(), sizes)
+        real = set(ids)
+        moved = {m: (old, new, why) for m, old, new, why in moves if m in real}
+        group_of: dict[str, tuple[str, int]] = {}   # member -> (smallest member id, size)
+        for grp in groups.values():
+            inside = [m for m in grp if m in real]
+            for m in inside:
+                group_of[m] = (inside[0], len(inside))
+        results = {}
+        for m in ids:
+            key, size = group_of[m]
+            values = {"split": assignment[m], "group": key, "group_size": size}
+            detail = ""
+            if m in moved:
+                old, new, why = moved[m]
+                values["moved_from"] = old
+                detail = f"moved from {old} to {new}: {why}"
+                state.report(f"split: {m} moved from {old} to {new}: {why}")
+            results[m] = StageResult.keep(detail=detail, values=values)
+        if self.opts["group_threshold"] is not None and members and not any(
+                "dedup" in m.artifacts for m in members):
+            state.report("split: no dedup signatures reached the split (is dedup before split?); "
+                         "near-duplicate grouping was skipped")
+        kept_assign = {m: assignment[m] for m in ids}
+        state.save("assignments", {**previous, **kept_assign})
+        state.save("summary", split_summary(kept_assign, ratios, sizes, len(moved),
+                                            self.opts["group_threshold"], len(groups)))
+        return results
+
+    def _links(self, members: list[Member], state: CorpusState,
+               previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str]]:
+        """Near-duplicate links among members, and links to dedup cluster-mates that left the
+        split but carry a previous part (the ghosts)."""
+        links: list[tuple[str, str]] = []
+        threshold = self.opts["group_threshold"]
+        sigs, shingles = {}, {}
+        for m in members:
+            art = m.artifacts.get("dedup") or {}
+            if art.get("signature") is not None:
+                sigs[m.id] = np.asarray(art["signature"], dtype=np.uint32)
+                if art.get("shingles") is not None:
+                    shingles[m.id] = np.asarray(art["shingles"], dtype=np.uint64)
+        if threshold is not None and len(sigs) > 1:
+            use_sh = shingles if len(shingles) == len(sigs) else None
+            links += [(a, b) for a, b, _ in near_links(sigs, threshold, use_sh)]
+        ghosts: set[str] = set()
+        dedup = state.upstream.get("dedup") or {}
+        by_cluster: dict[Any, list[str]] = {}
+        for mid, res in dedup.items():
+            c = res.values.get("cluster") if res is not None else None
+            if c is not None:
+                by_cluster.setdefault(c, []).append(mid)
+        here = {m.id for m in members}
+        for mates in by_cluster.values():
+            inside = sorted(x for x in mates if x in here)
+            if not inside:
+                continue
+            for x in mates:
+                if x not in here and x in previous:
+                    ghosts.add(x)
+                if x != inside[0] and (x in here or x in ghosts):
+                    links.append((inside[0], x))
+        return links, ghosts
+
+    def _forced(self, members: list[Member]) -> list[list[str]]:
+        forced: list[list[str]] = []
+        if self.opts["group_by_folder"]:
+            forced += group_by_key({m.id: folder_of(m.source) for m in members})
+        fields = list(self.opts["group_fields"])
+        if self.opts["group_by_title"] and "title" not in fields:
+            fields.insert(0, "title")
+        for f in fields:
+            forced += group_by_key({m.id: normalize_text(m.values.get(f)) for m in members})
+        return forced
+
+
+def split_summary(assignment: dict[str, str], ratios: dict[str, float], sizes: dict[str, float],
+                  moved: int, group_threshold: float | None, groups: int) -> dict[str, Any]:
+    """Counts and achieved ratios per part (files weighted by their outputs) for summary.json."""
+    counts = dict.fromkeys(ratios, 0)
+    files = dict.fromkeys(ratios, 0)
+    for m, p in assignment.items():
+        counts[p] += 1
+        files[p] += int(sizes.get(m, 1))
+    achieved = achieved_ratios(assignment, ratios, sizes)
+    return {"members": counts, "files": files, "target": dict(ratios),
+            "achieved": {p: round(v, 6) for p, v in achieved.items()},
+            "moved": moved, "groups": groups, "group_threshold": group_threshold}

@@ -1,0 +1,204 @@
+"""Tests of pipeline.grouping: groups from links, and the grouped, rerun-stable assignment.
+
+The grouped-split properties are the ones general-purpose libraries document for group-aware
+splitters: scikit-learn's GroupShuffleSplit / GroupKFold guarantee that "the same group will not
+appear in two different" parts (scikit-learn user guide, "Cross-validation iterators for grouped
+data"; quoted from memory). Checked property-based on random group structures with hypothesis.
+"""
+from __future__ import annotations
+
+import random
+from collections import defaultdict
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from pipeline.grouping import (achieved_ratios, assign_groups, band_candidates, build_groups,
+                               group_by_key, lsh_rows, near_links)
+
+RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
+
+
+def components(nodes, edges):
+    """Independent reference: connected components by breadth-first search."""
+    adj = defaultdict(set)
+    for a, b in edges:
+        adj[a].add(b)
+        adj[b].add(a)
+    seen, comps = set(), []
+    for n in sorted(nodes):
+        if n in seen:
+            continue
+        comp, todo = [], [n]
+        seen.add(n)
+        while todo:
+            x = todo.pop()
+            comp.append(x)
+            for y in adj[x] - seen:
+                seen.add(y)
+                todo.append(y)
+        comps.append(sorted(comp))
+    return sorted(comps)
+
+
+@st.composite
+def structures(draw):
+    n = draw(st.integers(1, 120))
+    ids = [f"{i:04x}" for i in range(n)]
+    edges = draw(st.lists(st.tuples(st.sampled_from(ids), st.sampled_from(ids)), max_size=n))
+    forced = draw(st.lists(st.lists(st.sampled_from(ids), min_size=1, max_size=5), max_size=5))
+    return ids, edges, forced
+
+
+@settings(max_examples=200, deadline=None)
+@given(structures())
+def test_groups_are_connected_components(s):
+    ids, edges, forced = s
+    groups = build_groups(ids, edges, forced)
+    extra = [(g[0], x) for g in forced for x in g[1:]]
+    assert sorted(groups.values()) == components(ids, edges + extra)
+    assert all(key == min(members) for key, members in groups.items())
+
+
+ratio_sets = st.sampled_from([RATIOS, {"train": 0.5, "test": 0.5},
+                              {"train": 0.7, "dev": 0.15, "eval": 0.15},
+                              {"a": 0.6, "b": 0.2, "c": 0.1, "d": 0.1}])
+
+
+@settings(max_examples=200, deadline=None)
+@given(structures(), ratio_sets, st.integers(0, 10_000), st.randoms(use_true_random=False))
+def test_assignment_properties_from_scratch(s, ratios, seed, rnd):
+    ids, edges, forced = s
+    groups = build_groups(ids, edges, forced)
+    assignment, moves = assign_groups(groups, ratios, seed)
+    assert moves == []
+    assert sorted(assignment) == sorted(ids) and set(assignment.values()) <= set(ratios)
+    # No group in two parts (the GroupShuffleSplit guarantee).
+    for members in groups.values():
+        assert len({assignment[m] for m in members}) == 1
+    # Deterministic whatever the input order (shuffled links, groups and member lists).
+    e2, ids2 = list(edges), list(ids)
+    rnd.shuffle(e2)
+    rnd.shuffle(ids2)
+    g2 = build_groups(ids2, e2, forced)
+    g2 = {k: g2[k] for k in sorted(g2, key=lambda _: rnd.random())}
+    assert assign_groups(g2, ratios, seed)[0] == assignment
+    # Documented balance bound: over by < w_max / N, under by <= (k - 1) * w_max / N.
+    w_max = max(len(g) for g in groups.values())
+    n, k = len(ids), len(ratios)
+    got = achieved_ratios(assignment, ratios)
+    for part, target in ratios.items():
+        assert got[part] - target < w_max / n + 1e-9
+        assert target - got[part] <= (k - 1) * w_max / n + 1e-9
+
+
+@settings(max_examples=200, deadline=None)
+@given(structures(), st.integers(0, 1000), st.data())
+def test_rerun_keeps_parts_and_reports_every_move(s, seed, data):
+    ids, edges, forced = s
+    # First run on a subset, second run with all members and all links.
+    old_ids = [m for m in ids if data.draw(st.booleans())]
+    old_edges = [(a, b) for a, b in edges if a in old_ids and b in old_ids]
+    first, _ = assign_groups(build_groups(old_ids, old_edges), RATIOS, seed)
+    groups = build_groups(ids, edges, forced)
+    second, moves = assign_groups(groups, RATIOS, seed, previous=first)
+    moved = {m: (old, new) for m, old, new, _ in moves}
+    for m, part in first.items():
+        if m in moved:
+            assert moved[m] == (part, second[m])
+        else:
+            assert second[m] == part, "an earlier assignment changed without a reported move"
+    for members in groups.values():
+        assert len({second[m] for m in members}) == 1
+        before = {first[m] for m in members if m in first}
+        if len(before) > 1 and "test" in before:
+            assert second[members[0]] == "test"   # the frozen part keeps merged groups
+        if len(before) <= 1:
+            assert not any(m in moved for m in members)
+
+
+def test_merge_rules_freeze_and_majority():
+    groups = {"a": ["a", "b", "c", "d"]}
+    prev = {"a": "train", "b": "train", "c": "train", "d": "test"}
+    got, moves = assign_groups(groups, RATIOS, 0, prev, freeze="test")
+    assert set(got.values()) == {"test"}
+    assert [(m, f, t) for m, f, t, _ in moves] == [("a", "train", "test"), ("b", "train", "test"),
+                                                   ("c", "train", "test")]
+    assert "frozen part 'test'" in moves[0][3]
+    got, moves = assign_groups(groups, RATIOS, 0, prev, freeze=None)
+    assert set(got.values()) == {"train"} and [m for m, *_ in moves] == ["d"]
+    # A part that is no longer configured: the member is placed afresh and reported.
+    got, moves = assign_groups({"x": ["x"]}, {"train": 0.5, "dev": 0.5}, 0, {"x": "valid"})
+    assert moves[0][:2] == ("x", "valid") and "no longer configured" in moves[0][3]
+
+
+def test_seed_changes_placement_and_sizes_weigh():
+    groups = {f"{i:03d}": [f"{i:03d}"] for i in range(200)}
+    a0, _ = assign_groups(groups, RATIOS, 0)
+    a1, _ = assign_groups(groups, RATIOS, 1)
+    assert a0 != a1
+    assert achieved_ratios(a0, RATIOS) == pytest.approx(RATIOS)
+    # Weights: a member with 8 outputs counts 8 files in the ratios.
+    sizes = {m: (8.0 if m == "000" else 1.0) for m in groups}
+    a, _ = assign_groups(groups, RATIOS, 0, sizes=sizes)
+    got = achieved_ratios(a, RATIOS, sizes)
+    assert all(abs(got[p] - RATIOS[p]) <= 8 / 207 for p in RATIOS)
+
+
+def test_group_by_key_skips_none():
+    assert group_by_key({"a": "x", "b": "x", "c": None, "d": None, "e": "y"}) == [["a", "b"]]
+
+
+def test_lsh_rows_meets_recall():
+    # Candidate probability 1 - (1 - s^r)^(n/r) (Mining of Massive Datasets, ch. 3).
+    for t in (0.3, 0.5, 0.8):
+        r = lsh_rows(t, 128)
+        assert 1 - (1 - t ** r) ** (128 // r) >= 0.99
+        assert 128 % r == 0
+
+
+def test_near_links_finds_every_pair_above_threshold_and_no_other():
+    """Against brute-force exact Jaccard on random shingle sets with planted overlaps."""
+    from pipeline.similarity import minhash
+
+    rng = np.random.default_rng(7)
+    base = {f"b{i}": rng.choice(2**40, 300, replace=False).astype(np.uint64) for i in range(40)}
+    sets = dict(base)
+    for i, keep in enumerate([0.95, 0.85, 0.75, 0.7, 0.66, 0.4, 0.3, 0.2]):
+        src = base[f"b{i}"]
+        n_keep = int(len(src) * keep)
+        fresh = rng.choice(2**40, len(src) - n_keep, replace=False).astype(np.uint64) + np.uint64(2**41)
+        sets[f"v{i}"] = np.concatenate([src[:n_keep], fresh])
+    sets = {k: np.unique(v) for k, v in sets.items()}
+    sigs = {k: minhash(v) for k, v in sets.items()}
+    got = {(a, b): s for a, b, s in near_links(sigs, 0.5, sets)}
+    keys = sorted(sets)
+    for i, a in enumerate(keys):
+        for b in keys[i + 1:]:
+            inter = len(np.intersect1d(sets[a], sets[b]))
+            jac = inter / (len(sets[a]) + len(sets[b]) - inter)
+            cont = inter / min(len(sets[a]), len(sets[b]))   # equal sizes: containment = overlap share
+            sim = max(jac, cont)
+            if sim >= 0.55:
+                assert (a, b) in got, (a, b, sim)
+            if (a, b) in got:
+                assert got[(a, b)] == pytest.approx(sim) and sim >= 0.5
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1))
+def test_band_candidates_equal_lsh_index(n, bands, seed):
+    """The vectorized candidate search equals pipeline.similarity.LSHIndex's per-bucket loop,
+    on signatures with small value ranges (many shared bands, runs longer than two)."""
+    from pipeline.similarity import LSHIndex
+
+    rng = np.random.default_rng(seed)
+    sig = rng.integers(0, 3, (n, 32), dtype=np.uint32)
+    keys = [f"{i:03d}" for i in range(n)]
+    index = LSHIndex(32, bands)
+    for k, row in zip(keys, sig):
+        index.add(k, row)
+    got = sorted((keys[i], keys[j]) for i, j in band_candidates(sig, bands).tolist())
+    assert got == index.candidates()
