@@ -16,16 +16,12 @@ be told apart in MIDI; they read back under the decoder's stacking policy (see p
 """
 from __future__ import annotations
 
-import os
-import tempfile
-from pathlib import Path
 
 import numpy as np
 
-from .errors import OutputError
 from .score import DEFAULT_TEMPO, Piece
 
-__all__ = ["encode", "write_atomic", "SMPTE_TICKS_PER_BEAT"]
+__all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 
 SMPTE_TICKS_PER_BEAT = 480
 
@@ -157,28 +153,3 @@ def _group_events(start: np.ndarray, end: np.ndarray, pitch: np.ndarray, vel: np
                      np.ones(len(tick), dtype=bool), need_status,
                      np.ones(len(tick), dtype=bool), ~is_pc], axis=1)
     return table.astype(np.uint8)[mask].tobytes()
-
-
-def write_atomic(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so readers see the old file or the new one, never a part:
-    a temp file in the same folder, fsync, then ``os.replace``."""
-    path = Path(path)
-    tmp = None
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-        tmp = None
-    except OSError as exc:
-        raise OutputError(f"cannot write the file ({exc.strerror or exc}); check free disk space "
-                          "and permissions of the output folder", file=str(path)) from exc
-    finally:
-        if tmp is not None:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass

@@ -18,9 +18,11 @@ import json
 import os
 import shutil
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Iterable
+
+import numpy as np
 
 from .errors import OutputError
 
@@ -36,8 +38,10 @@ CONTRACT_FIELDS = (
 )
 
 
-def write_atomic(path: Path, data: bytes | str) -> None:
-    """Write to a temporary name in the same folder, fsync, then rename over ``path``."""
+def write_atomic(path: Path, data: bytes | str, *, fsync: bool = True) -> None:
+    """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
+    see the old file or the new one, never a part. ``fsync=False`` for staged files, which the
+    run flushes with one ``os.sync()`` before it records them."""
     path = Path(path)
     raw = data.encode("utf-8") if isinstance(data, str) else data
     try:
@@ -46,8 +50,9 @@ def write_atomic(path: Path, data: bytes | str) -> None:
         try:
             with os.fdopen(fd, "wb") as fh:
                 fh.write(raw)
-                fh.flush()
-                os.fsync(fh.fileno())
+                if fsync:
+                    fh.flush()
+                    os.fsync(fh.fileno())
             os.replace(tmp, path)
         except BaseException:
             try:
@@ -70,20 +75,34 @@ def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging
            ) -> list[tuple[str, str]]:
     """Encode the normalized output(s) of one piece into the staging folder (worker side)."""
     from .encode import encode
-    versions: list[tuple[str, Any]]
+    versions: list[tuple[str, Any, int]]
     tplan = next((p for p in stage_plans if p.name == "transpose"), None)
     if tplan is not None and transpose_values is not None:
         from .stages.transpose import Transpose
-        versions = Transpose(tplan.options).output_notes(piece, transpose_values)
+        versions = Transpose.output_notes(piece, transpose_values)
     else:
-        versions = [("", piece.notes)]
+        versions = [("", piece.notes, 0)]
     staged = []
     folder = Path(staging)
-    for suffix, notes in versions:
+    for suffix, notes, semitones in versions:
         dst = folder / f"{stem}{suffix}.mid"
-        write_atomic(dst, encode(piece, notes))
+        out_piece = piece if semitones == 0 else replace(
+            piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones))
+        write_atomic(dst, encode(out_piece, notes), fsync=False)
         staged.append((suffix, str(dst)))
     return staged
+
+
+def shift_key_signatures(keys: Any, semitones: int) -> Any:
+    """Key-signature events of a piece transposed by ``semitones``, so a normalized file declares
+    the key it is now in. A signature's major tonic is ``7 * sharps`` (mod 12) on the circle of
+    fifths (minor shares its relative major's signature), so the new signature is
+    ``sharps + 7 * semitones`` (mod 12), written in the range -5..+6 (F# major, not Gb)."""
+    out = keys.copy()
+    if len(out):
+        s = (out["sharps"].astype(int) + 7 * semitones) % 12
+        out["sharps"] = np.where(s > 6, s - 12, s)
+    return out
 
 
 def existing_outputs(ledger: Any, out_dir: Path, fp: str) -> dict[str, list[str]]:
@@ -141,6 +160,8 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
             placed.main[sha] = paths[0]
             placed.all_of[sha] = paths
             placed.parts.setdefault(part, []).extend(paths)
+    if rows:
+        os.sync()  # staged files were written without fsync; flush them once before recording them
     keep = {r[0] for r in rows}
     midi = out_dir / "midi"
     if midi.is_dir():
@@ -234,6 +255,8 @@ def build_summary(rows: list[dict], walk: Any, stages: list, timings: dict, comp
                   "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
     if split_stage is not None:
         split_info["targets"] = split_stage.opts.get("ratios")
+        split_info.update(walk.states.get("split", {}).get("summary", {}) and
+                          {"stage": walk.states["split"]["summary"]})
     counts = {"files": len(rows), "kept": len(kept_rows), "dropped": len(rows) - len(kept_rows),
               "contents": len({r["sha256"] for r in rows}), "computed": computed, "reused": reused}
     return {

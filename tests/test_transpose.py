@@ -111,7 +111,7 @@ def test_stage_moves_estimated_tonic_to_target_and_shares_estimate():
     assert km.values["tonic"] == "G" and km.values["mode"] == "major"   # source key kept
     assert tr.values["transpose"] == 5 and tr.values["transpose_folded"] == 0
     assert len([k for k in ctx._memo if k.startswith("key:")]) == 1     # one shared estimate
-    (suffix, notes), = Transpose.output_notes(piece, tr.values)
+    (suffix, notes, _), = Transpose.output_notes(piece, tr.values)
     assert suffix == ""
     assert keymod.estimate_key(Piece(**{**piece.__dict__, "notes": notes})).tonic == "C"
 
@@ -125,8 +125,9 @@ def test_stage_targets_and_augment_copies():
     want = smallest_shift(est.tonic_pc, 4, "up")
     assert res.values["transpose"] == want and res.values["augment"] == [-5, 3]
     outs = Transpose.output_notes(piece, res.values)
-    assert [s for s, _ in outs] == ["", ".t-5", ".t+3"]
-    for (_, notes), extra in zip(outs, (0, -5, 3)):
+    assert [s for s, _, _ in outs] == ["", ".t-5", ".t+3"]
+    for (_, notes, total), extra in zip(outs, (0, -5, 3)):
+        assert total == want + extra
         expect = sort_notes(shift_notes(piece.notes, want + extra)[0])
         assert np.array_equal(notes, expect)
         assert notes[notes["channel"] == DRUM_CHANNEL]["pitch"].tolist() == [45]
@@ -163,7 +164,7 @@ def test_written_file_decodes_to_shifted_notes():
     for work in chorales()[:5]:
         piece = decode(work["midi"])
         values = Transpose({"augment": [2]}).process(piece, FileContext(piece)).values
-        for _, notes in Transpose.output_notes(piece, values):
+        for _, notes, _ in Transpose.output_notes(piece, values):
             back = decode_with_mido(encode(piece, notes)).notes
             for f in ("start", "end", "pitch", "velocity", "channel"):
                 assert np.array_equal(back[f], notes[f]), f

@@ -87,13 +87,13 @@ class Transpose(Stage):
         return StageResult.keep(detail=detail, values=values)
 
     @staticmethod
-    def output_notes(piece: Piece, values: dict) -> list[tuple[str, np.ndarray]]:
-        """(suffix, notes) for the normalized output (suffix "") and each augmentation copy,
-        each computed from the source notes by one total shift (so folding happens once),
-        in canonical note order."""
+    def output_notes(piece: Piece, values: dict) -> list[tuple[str, np.ndarray, int]]:
+        """(suffix, notes, total semitones) for the normalized output (suffix "") and each
+        augmentation copy, each computed from the source notes by one total shift (so folding
+        happens once), in canonical note order."""
         shift = int(values.get("transpose") or 0)
-        out = [("", sort_notes(shift_notes(piece.notes, shift)[0]))]
+        out = [("", sort_notes(shift_notes(piece.notes, shift)[0]), shift)]
         for extra in values.get("augment") or []:
-            out.append((augment_suffix(int(extra)),
-                        sort_notes(shift_notes(piece.notes, shift + int(extra))[0])))
+            total = shift + int(extra)
+            out.append((augment_suffix(int(extra)), sort_notes(shift_notes(piece.notes, total)[0]), total))
         return out

@@ -1,0 +1,35 @@
+"""Output helpers: atomic writes, key signatures of transposed outputs, output fingerprints."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipeline.outputs import shift_key_signatures, write_atomic
+from pipeline.score import KEY_DTYPE
+
+
+def _keys(*pairs):
+    return np.array([(0, s, m) for s, m in pairs], dtype=KEY_DTYPE)
+
+
+@pytest.mark.parametrize("sharps,minor,semitones,expect", [
+    # Circle of fifths (common practice; any harmony handbook): C=0, G=1, D=2, ..., F=-1, Bb=-2, Eb=-3.
+    (-3, 0, -3, 0),    # Eb major down 3 semitones -> C major, no accidentals
+    (0, 1, 0, 0),      # A minor unchanged
+    (3, 1, -6, -3),    # F# minor (3 sharps) down 6 -> C minor (3 flats)
+    (1, 0, 2, 3),      # G major up 2 -> A major (3 sharps)
+    (-1, 0, 1, 6),     # F major up 1 -> F# major (6 sharps; written as F#, not Gb)
+    (4, 1, 12, 4),     # an octave changes nothing
+])
+def test_key_signature_follows_transposition(sharps, minor, semitones, expect):
+    out = shift_key_signatures(_keys((sharps, minor)), semitones)
+    assert out["sharps"].tolist() == [expect]
+    assert out["minor"].tolist() == [minor]
+
+
+def test_write_atomic_leaves_no_temp_file(tmp_path):
+    p = tmp_path / "a" / "b.txt"
+    write_atomic(p, "one")
+    write_atomic(p, b"two", fsync=False)
+    assert p.read_bytes() == b"two"
+    assert [x.name for x in p.parent.iterdir()] == ["b.txt"]
