@@ -31,7 +31,11 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("dir")
     s.add_argument("--count", type=int, default=80)
     s.add_argument("--seed", type=int, default=0)
-    s.add_argument("--profile", choices=("small", "large"), default="small")
+    s.add_argument("--profile", choices=("small", "large"), default="small",
+                   help="small: ~5 KB, ~500 notes; large: ~60 KB, ~8,000 notes per file")
+    s.add_argument("--naming", choices=("plain", "workshop"), default="plain",
+                   help="file names: plain numbered folders, or the demo corpus's invented workshop library")
+    s.add_argument("--planted", type=float, help="fraction of files that are planted cases (default: the generator's mix)")
 
     lk = sub.add_parser("leakage", help="audit a split for near-duplicates across its parts")
     lk.add_argument("output", nargs="?", help="an output folder of ours (splits/*.txt)")
@@ -69,7 +73,9 @@ def _synth(args: argparse.Namespace) -> int:
     from .synth import main_synth
     if args.count < 1:
         raise UsageError(f"--count must be at least 1, got {args.count}")
-    main_synth(Path(args.dir), args.count, args.seed, args.profile)
+    if args.planted is not None and not 0 <= args.planted <= 1:
+        raise UsageError(f"--planted is a fraction from 0 to 1, got {args.planted}")
+    main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming, planted=args.planted)
     return 0
 
 
