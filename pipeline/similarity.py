@@ -1,0 +1,325 @@
+"""MinHash signatures, LSH banding, verification and union-find: the reusable dedup core.
+
+* ``minhash`` is a numpy implementation of datasketch's ``MinHash`` (scheme ``affine32``,
+  datasketch >= 2.0): each 32-bit input hash is pre-mixed with the MurmurHash3 finalizer, then
+  permuted by ``a*h + b mod 2**32`` with ``(a, b)`` drawn from ``numpy.random.RandomState(seed)``
+  exactly as datasketch draws them, and the column minimum is the signature. The tests check
+  that it equals ``datasketch.MinHash(...).digest()`` for the same seed and tokens.
+* ``LSHIndex`` bands a signature into ``bands`` bands of ``num_perm // bands`` rows; two
+  signatures are candidates when any band is identical, with probability
+  ``1 - (1 - s**r)**b`` for Jaccard ``s`` (Leskovec, Rajaraman, Ullman, Mining of Massive
+  Datasets, ch. 3).
+* Candidates are verified on the stored shingle sets (exact Jaccard, or containment of the
+  smaller set when the sizes are close enough to be an excerpt) before they are linked.
+* ``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
+  themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Iterable
+
+import numpy as np
+
+from .analysis.shingles import ShingleSpec, content_hash, fmix64, shingle_hashes
+from .score import Piece
+
+_U32_MAX = np.uint32(0xFFFFFFFF)
+_ROLL = np.uint64(0x9E3779B97F4A7C15)
+# MurmurHash3 fmix32 constants, as in datasketch.minhash._FMIX_CONSTANTS[32].
+_F32 = (np.uint32(16), np.uint32(0x85EBCA6B), np.uint32(13), np.uint32(0xC2B2AE35), np.uint32(16))
+
+_PERMUTATIONS: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}
+
+
+def permutations(num_perm: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """The ``(a, b)`` uint32 arrays datasketch's affine32 ``MinHash`` draws for this seed."""
+    key = (num_perm, seed)
+    if key not in _PERMUTATIONS:
+        gen = np.random.RandomState(seed)
+        a = gen.randint(0, 1 << 31, num_perm, dtype=np.uint32) * np.uint32(2) + np.uint32(1)
+        b = gen.randint(0, 1 << 32, num_perm, dtype=np.uint32)
+        _PERMUTATIONS[key] = (a, b)
+    return _PERMUTATIONS[key]
+
+
+def fold32(shingles: np.ndarray) -> np.ndarray:
+    """The 32-bit MinHash input for each 64-bit shingle hash (xor of its halves)."""
+    s = np.asarray(shingles, dtype=np.uint64)
+    return ((s ^ (s >> np.uint64(32))) & np.uint64(0xFFFFFFFF)).astype(np.uint32)
+
+
+def _fmix32(h: np.ndarray) -> np.ndarray:
+    s1, m1, s2, m2, s3 = _F32
+    with np.errstate(over="ignore"):
+        h = h ^ (h >> s1)
+        h = h * m1
+        h = h ^ (h >> s2)
+        h = h * m2
+        return h ^ (h >> s3)
+
+
+def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1) -> np.ndarray:
+    """MinHash signature (uint32, ``num_perm``) of a set of 64-bit shingle hashes.
+
+    Equals ``datasketch.MinHash(num_perm, seed, hashfunc=int).update_batch(fold32(shingles))``;
+    an empty set gives all ``2**32 - 1`` (datasketch's empty value), which ``is_empty`` detects.
+    """
+    a, b = permutations(num_perm, seed)
+    if len(shingles) == 0:
+        return np.full(num_perm, _U32_MAX, dtype=np.uint32)
+    h = _fmix32(fold32(shingles))
+    with np.errstate(over="ignore"):
+        return (h[:, None] * a[None, :] + b[None, :]).min(axis=0)
+
+
+def is_empty(signature: np.ndarray) -> bool:
+    """True for the signature of an empty shingle set (never a candidate)."""
+    return bool(np.all(signature == _U32_MAX))
+
+
+def estimate_jaccard(sig_a: np.ndarray, sig_b: np.ndarray) -> float:
+    """Fraction of equal MinHash values: an unbiased estimate of Jaccard (Broder 1997)."""
+    if len(sig_a) != len(sig_b):
+        raise ValueError(f"signatures of different lengths ({len(sig_a)} vs {len(sig_b)}) "
+                         "cannot be compared: were they made with the same num_perm?")
+    return float(np.mean(sig_a == sig_b))
+
+
+def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = 0.75,
+                   cap: int = ShingleSpec().max_shingles) -> tuple[float, str]:
+    """Exact similarity of two sorted unique shingle arrays: ``(value, measure)``.
+
+    ``measure`` is ``"jaccard"`` or ``"containment"`` (intersection over the smaller set, used
+    when the smaller set has at least ``min_size_ratio`` of the larger one's size and scores
+    higher: an excerpt of 80 % or more of a piece is contained in it). Sets cut at ``cap``
+    (smallest hashes kept) are compared on their common hash range, a consistent sample.
+    """
+    if len(a) == 0 or len(b) == 0:
+        return 0.0, "jaccard"
+    if len(a) >= cap or len(b) >= cap:
+        limit = min(a[-1], b[-1])
+        a, b = a[a <= limit], b[b <= limit]
+    inter = len(np.intersect1d(a, b, assume_unique=True))
+    la, lb = len(a), len(b)
+    jac = inter / (la + lb - inter)
+    small, large = min(la, lb), max(la, lb)
+    if min_size_ratio < 1.0 and small >= min_size_ratio * large:
+        cont = inter / small
+        if cont > jac:
+            return float(cont), "containment"
+    return float(jac), "jaccard"
+
+
+class UnionFind:
+    """Disjoint sets over hashable keys, with path halving and union by size."""
+
+    def __init__(self, keys: Iterable[Any] = ()):
+        self.parent: dict[Any, Any] = {}
+        self.size: dict[Any, int] = {}
+        for k in keys:
+            self.add(k)
+
+    def add(self, key: Any) -> None:
+        if key not in self.parent:
+            self.parent[key] = key
+            self.size[key] = 1
+
+    def find(self, key: Any) -> Any:
+        parent = self.parent
+        while parent[key] != key:
+            parent[key] = parent[parent[key]]
+            key = parent[key]
+        return key
+
+    def union(self, a: Any, b: Any) -> bool:
+        """Join the sets of ``a`` and ``b``; False if they were already one set."""
+        ra, rb = self.find(a), self.find(b)
+        if ra == rb:
+            return False
+        if self.size[ra] < self.size[rb]:
+            ra, rb = rb, ra
+        self.parent[rb] = ra
+        self.size[ra] += self.size[rb]
+        return True
+
+    def groups(self) -> list[list[Any]]:
+        """All sets, each sorted, ordered by their smallest member."""
+        out: dict[Any, list[Any]] = {}
+        for k in self.parent:
+            out.setdefault(self.find(k), []).append(k)
+        return sorted((sorted(g) for g in out.values()), key=lambda g: g[0])
+
+
+def check_banding(num_perm: int, bands: int) -> str | None:
+    """An error sentence if ``bands`` cannot split ``num_perm`` rows evenly, else None."""
+    if num_perm < 1 or bands < 1:
+        return f"num_perm ({num_perm}) and bands ({bands}) must be positive"
+    if num_perm % bands:
+        divisors = [d for d in range(1, num_perm + 1) if num_perm % d == 0]
+        return (f"bands ({bands}) must divide num_perm ({num_perm}) so every band has the same "
+                f"number of rows; choose bands from {divisors}")
+    return None
+
+
+def candidate_probability(s: float | np.ndarray, bands: int, rows: int) -> float | np.ndarray:
+    """Probability that a pair of Jaccard ``s`` shares a band: ``1 - (1 - s**r)**b``
+    (Mining of Massive Datasets, ch. 3)."""
+    return 1.0 - (1.0 - np.asarray(s, dtype=np.float64) ** rows) ** bands
+
+
+def band_keys(signatures: np.ndarray, bands: int) -> np.ndarray:
+    """``(N, bands)`` uint64 keys; equal keys mean equal bands (up to 64-bit collisions)."""
+    n, num_perm = signatures.shape
+    err = check_banding(num_perm, bands)
+    if err:
+        raise ValueError(err)
+    rows = num_perm // bands
+    sig = signatures.reshape(n, bands, rows).astype(np.uint64)
+    h = np.full((n, bands), np.uint64(rows), dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for j in range(rows):
+            h = fmix64(h * _ROLL + sig[:, :, j])
+        h = h + np.arange(bands, dtype=np.uint64)[None, :] * _ROLL  # keep bands apart
+    return h
+
+
+@dataclass
+class LSHIndex:
+    """Banded index over signatures; built from stored signatures (nothing persisted but them)."""
+
+    num_perm: int = 128
+    bands: int = 64
+
+    def __post_init__(self):
+        err = check_banding(self.num_perm, self.bands)
+        if err:
+            raise ValueError(err)
+        self.ids: list[str] = []
+        self._sigs: list[np.ndarray] = []
+
+    def add(self, key: str, signature: np.ndarray) -> None:
+        if len(signature) != self.num_perm:
+            raise ValueError(f"signature of {key} has {len(signature)} values, index expects "
+                             f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
+        if not is_empty(signature):
+            self.ids.append(key)
+            self._sigs.append(np.asarray(signature, dtype=np.uint32))
+
+    def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
+        """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
+        if len(self.ids) < 2:
+            return []
+        keys = band_keys(np.vstack(self._sigs), self.bands)
+        n = len(self.ids)
+        is_new = (np.ones(n, dtype=bool) if new is None
+                  else np.array([k in new for k in self.ids]))
+        found = [_band_pairs(keys[:, band], is_new) for band in range(self.bands)]
+        codes = np.unique(np.concatenate(found)) if found else np.zeros(0, dtype=np.int64)
+        ids = self.ids
+        return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
+
+
+#: Buckets up to this size are paired by vectorized offsets; bigger ones one by one.
+_SMALL_BUCKET = 32
+
+
+def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
+    """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band."""
+    n = len(col)
+    order = np.argsort(col, kind="stable")
+    sc = col[order]
+    starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
+    sizes = np.diff(np.append(starts, n))
+    out: list[np.ndarray] = []
+    for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
+        same = sc[:-d] == sc[d:]
+        if not same.any():
+            break
+        out.append(np.stack([order[:-d][same], order[d:][same]], axis=1))
+    for st, sz in zip(starts[sizes > _SMALL_BUCKET], sizes[sizes > _SMALL_BUCKET]):
+        members = order[st:st + sz]
+        i, j = np.triu_indices(sz, _SMALL_BUCKET)  # offsets below _SMALL_BUCKET are done above
+        out.append(np.stack([members[i], members[j]], axis=1))
+    if not out:
+        return np.zeros(0, dtype=np.int64)
+    pairs = np.concatenate(out).astype(np.int64)
+    pairs.sort(axis=1)
+    pairs = pairs[is_new[pairs[:, 0]] | is_new[pairs[:, 1]]]
+    return pairs[:, 0] * n + pairs[:, 1]
+
+
+def verify_pairs(pairs: list[tuple[str, str]], shingles: dict[str, np.ndarray] | None,
+                 threshold: float, *, signatures: dict[str, np.ndarray] | None = None,
+                 min_size_ratio: float = 0.75, skip: UnionFind | None = None
+                 ) -> list[tuple[str, str, float]]:
+    """Keep the candidate pairs whose similarity reaches ``threshold``: ``(a, b, sim)``.
+
+    Similarity is ``set_similarity`` on the shingle sets when given, else the MinHash
+    estimate from ``signatures``. With ``skip`` (a UnionFind), pairs already in one set are not
+    verified and verified pairs are unioned (enough for clustering, fewer comparisons).
+    """
+    if shingles is None and signatures is None:
+        raise ValueError("verify_pairs needs shingles (exact) or signatures (estimate)")
+    out = []
+    for a, b in pairs:
+        if skip is not None and skip.find(a) == skip.find(b):
+            continue
+        if shingles is not None:
+            sim, _ = set_similarity(shingles[a], shingles[b], min_size_ratio=min_size_ratio)
+        else:
+            sim = estimate_jaccard(signatures[a], signatures[b])
+        if sim >= threshold:
+            out.append((a, b, sim))
+            if skip is not None:
+                skip.union(a, b)
+    return out
+
+
+def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm: int = 128,
+               bands: int = 64, shingles: dict[str, np.ndarray] | None = None,
+               min_size_ratio: float = 0.75, skip: UnionFind | None = None
+               ) -> list[tuple[str, str, float]]:
+    """Verified near pairs ``(a, b, similarity)`` with ``a < b``, sorted.
+
+    Candidates come from LSH banding; each is verified on the exact shingle sets when
+    ``shingles`` is given (Jaccard or excerpt containment, see ``set_similarity``), else on the
+    MinHash estimate. With ``skip`` (a UnionFind), pairs already in one set are not verified
+    and verified pairs are unioned: enough for clustering, fewer comparisons.
+    """
+    index = LSHIndex(num_perm, bands)
+    for key in sorted(signatures):
+        index.add(key, signatures[key])
+    return verify_pairs(index.candidates(), shingles, threshold, signatures=signatures,
+                        min_size_ratio=min_size_ratio, skip=skip)
+
+
+def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], threshold: float, *,
+                       num_perm: int = 128, bands: int = 64,
+                       shingles: dict[str, np.ndarray] | None = None,
+                       min_size_ratio: float = 0.75, skip: UnionFind | None = None
+                       ) -> list[tuple[str, str, float]]:
+    """Incremental form: pairs new-vs-old and new-vs-new only (old-vs-old are not recomputed)."""
+    index = LSHIndex(num_perm, bands)
+    for key in sorted(old):
+        index.add(key, old[key])
+    for key in sorted(new):
+        index.add(key, new[key])
+    allsigs = {**old, **new}
+    return verify_pairs(index.candidates(set(new)), shingles, threshold, signatures=allsigs,
+                        min_size_ratio=min_size_ratio, skip=skip)
+
+
+def signature_of(piece: Piece, opts: dict[str, Any] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, str]:
+    """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece.
+
+    ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and ``max_shingles``.
+    """
+    o = opts or {}
+    spec = ShingleSpec(ngram=int(o.get("ngram", ShingleSpec.ngram)),
+                       grid=int(o.get("grid", ShingleSpec.grid)),
+                       max_shingles=int(o.get("max_shingles", ShingleSpec.max_shingles)))
+    sh = shingle_hashes(piece, spec)
+    sig = minhash(sh, int(o.get("num_perm", 128)), int(o.get("seed", 1)))
+    return sig, sh, content_hash(piece)

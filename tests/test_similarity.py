@@ -1,0 +1,155 @@
+"""MinHash, LSH banding, verification and union-find, checked against datasketch and theory."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from datasketch import MinHash, MinHashLSH
+
+from pipeline.similarity import (LSHIndex, UnionFind, band_keys, candidate_probability, check_banding,
+                                 estimate_jaccard, fold32, minhash, near_pairs, near_pairs_between,
+                                 set_similarity, verify_pairs)
+
+
+def pair_with_jaccard(rng: np.random.Generator, j: float, union: int = 400) -> tuple[np.ndarray, np.ndarray]:
+    """Two sets of random 64-bit hashes whose exact Jaccard is round(j*union)/union."""
+    u = np.unique(rng.integers(0, 2**63, union + 20, dtype=np.uint64))[:union]
+    rng.shuffle(u)
+    inter = int(round(j * union))
+    rest = union - inter
+    a = np.concatenate([u[:inter], u[inter:inter + rest // 2]])
+    b = np.concatenate([u[:inter], u[inter + rest // 2:]])
+    return np.sort(a), np.sort(b)
+
+
+@pytest.mark.parametrize("num_perm,seed", [(128, 1), (64, 7), (256, 42)])
+def test_numpy_minhash_equals_datasketch_digest(num_perm, seed):
+    # Reference: datasketch.MinHash (scheme affine32, datasketch >= 2.0) with an identity hash
+    # over our 32-bit folded shingles must give the same digest as our numpy implementation.
+    rng = np.random.default_rng(seed)
+    sh = np.unique(rng.integers(0, 2**63, 300, dtype=np.uint64))
+    ref = MinHash(num_perm=num_perm, seed=seed, hashfunc=int)
+    ref.update_batch([int(x) for x in fold32(sh)])
+    assert np.array_equal(minhash(sh, num_perm, seed), ref.digest())
+    empty = MinHash(num_perm=num_perm, seed=seed, hashfunc=int)
+    assert np.array_equal(minhash(np.zeros(0, np.uint64), num_perm, seed), empty.digest())
+
+
+def test_estimate_error_follows_broder_standard_deviation():
+    # Broder 1997, "On the resemblance and containment of documents": the fraction of equal
+    # min-hashes is an unbiased estimate of J with variance J(1-J)/k for k permutations.
+    rng = np.random.default_rng(0)
+    k = 128
+    z = []
+    for i in range(300):
+        j = float(rng.uniform(0.1, 0.9))
+        a, b = pair_with_jaccard(rng, j)
+        exact = len(np.intersect1d(a, b)) / len(np.union1d(a, b))
+        est = estimate_jaccard(minhash(a, k, seed=i), minhash(b, k, seed=i))
+        z.append((est - exact) / np.sqrt(exact * (1 - exact) / k))
+    z = np.array(z)
+    assert abs(z.mean()) < 0.25            # unbiased: mean of 300 z-scores is ~N(0, 1/300)
+    assert 0.7 < np.mean(z ** 2) < 1.35    # variance matches J(1-J)/k
+    assert np.mean(np.abs(z) <= 2) > 0.9   # ~95% within two standard deviations
+
+
+@pytest.mark.parametrize("bands,rows", [(16, 4), (32, 2)])
+def test_lsh_candidate_probability_follows_banding_formula(bands, rows):
+    # Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3: P = 1 - (1 - s^r)^b.
+    rng = np.random.default_rng(bands)
+    trials = 300
+    for s in (0.2, 0.35, 0.5, 0.7):
+        hits = 0
+        for t in range(trials):
+            a, b = pair_with_jaccard(rng, s)
+            keys = band_keys(np.vstack([minhash(a, bands * rows, seed=t), minhash(b, bands * rows, seed=t)]), bands)
+            hits += bool(np.any(keys[0] == keys[1]))
+        p = float(candidate_probability(s, bands, rows))
+        sd = np.sqrt(p * (1 - p) / trials)
+        assert abs(hits / trials - p) <= 4 * sd + 0.02, (s, hits / trials, p)
+
+
+def test_lsh_index_finds_the_pairs_datasketch_lsh_finds():
+    # Reference: datasketch.MinHashLSH with the same banding (params=(b, r)) on the same digests.
+    rng = np.random.default_rng(5)
+    sets = {}
+    for c in range(40):
+        base = np.unique(rng.integers(0, 2**63, 200, dtype=np.uint64))
+        for v in range(3):
+            keep = base[rng.random(len(base)) > 0.1 * v]
+            sets[f"c{c:02d}v{v}"] = np.unique(np.concatenate([keep, rng.integers(0, 2**63, 5 * v, dtype=np.uint64)]))
+    bands, rows = 32, 4
+    lsh = MinHashLSH(num_perm=bands * rows, params=(bands, rows))
+    index = LSHIndex(bands * rows, bands)
+    mh = {}
+    for key, sh in sets.items():
+        m = MinHash(num_perm=bands * rows, seed=1, hashfunc=int)
+        m.update_batch([int(x) for x in fold32(sh)])
+        mh[key] = m
+        lsh.insert(key, m)
+        index.add(key, minhash(sh, bands * rows, 1))
+    theirs = {tuple(sorted((k, o))) for k, m in mh.items() for o in lsh.query(m) if o != k}
+    assert set(index.candidates()) == theirs
+    assert len(theirs) >= 80
+
+
+def test_set_similarity_jaccard_and_containment():
+    a = np.arange(100, dtype=np.uint64)
+    assert set_similarity(a, a) == (1.0, "jaccard")
+    excerpt = a[:85]
+    assert set_similarity(a, excerpt) == (1.0, "containment")
+    assert set_similarity(a, excerpt, min_size_ratio=0.9) == (0.85, "jaccard")
+    half = np.arange(50, 150, dtype=np.uint64)
+    assert set_similarity(a, half) == (0.5, "containment")           # 50 shared of 100
+    assert set_similarity(a, half, min_size_ratio=1.0) == (pytest.approx(50 / 150), "jaccard")
+    assert set_similarity(a, np.zeros(0, np.uint64)) == (0.0, "jaccard")
+
+
+def test_capped_sets_compare_on_their_common_hash_range():
+    rng = np.random.default_rng(9)
+    a, b = pair_with_jaccard(rng, 0.6, union=6000)
+    exact = set_similarity(a, b, min_size_ratio=1.0, cap=10**9)[0]
+    capped = set_similarity(a[:2000], b[:2000], min_size_ratio=1.0, cap=2000)[0]
+    assert abs(capped - exact) < 0.05
+
+
+def test_near_pairs_verifies_and_incremental_form_matches():
+    rng = np.random.default_rng(3)
+    sets, sigs = {}, {}
+    for c in range(30):
+        base = np.unique(rng.integers(0, 2**63, 150, dtype=np.uint64))
+        sets[f"o{c:02d}"] = base
+        sets[f"d{c:02d}"] = np.unique(np.concatenate([base[10:], rng.integers(0, 2**63, 5, dtype=np.uint64)]))
+    for k, v in sets.items():
+        sigs[k] = minhash(v)
+    pairs = near_pairs(sigs, 0.7, num_perm=128, bands=32, shingles=sets)
+    assert [(a, b) for a, b, _ in pairs] == sorted((f"d{c:02d}", f"o{c:02d}") for c in range(30))
+    old = {k: v for k, v in sigs.items() if k < "o15"}
+    new = {k: v for k, v in sigs.items() if k >= "o15"}
+    inc = near_pairs_between(new, old, 0.7, num_perm=128, bands=32, shingles=sets)
+    assert inc == [p for p in pairs if p[1] >= "o15"]
+    est = near_pairs(sigs, 0.7, num_perm=128, bands=32)  # estimate-verified
+    assert {(a, b) for a, b, _ in est} == {(a, b) for a, b, _ in pairs}
+
+
+def test_verify_skips_pairs_already_joined():
+    sh = {k: np.arange(10, dtype=np.uint64) for k in "abc"}
+    uf = UnionFind("abc")
+    out = verify_pairs([("a", "b"), ("a", "c"), ("b", "c")], sh, 0.9, skip=uf)
+    assert [(a, b) for a, b, _ in out] == [("a", "b"), ("a", "c")]
+    assert uf.groups() == [["a", "b", "c"]]
+
+
+def test_union_find_groups():
+    uf = UnionFind(range(6))
+    uf.union(4, 1)
+    uf.union(1, 3)
+    assert uf.union(3, 4) is False
+    assert uf.groups() == [[0], [1, 3, 4], [2], [5]]
+
+
+def test_banding_errors_name_the_values():
+    assert check_banding(128, 32) is None
+    msg = check_banding(128, 30)
+    assert "bands (30) must divide num_perm (128)" in msg and "32" in msg
+    with pytest.raises(ValueError, match="bands \\(30\\)"):
+        LSHIndex(128, 30)
