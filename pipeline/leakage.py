@@ -23,7 +23,7 @@ from .errors import MidisiftError, UsageError
 
 #: The grouping threshold of the split stage's default config (used when an output folder does
 #: not record its own).
-DEFAULT_THRESHOLD = 0.5
+DEFAULT_THRESHOLD = 0.2
 
 
 @dataclass(frozen=True)

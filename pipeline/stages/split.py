@@ -99,7 +99,7 @@ class Split(Stage):
         Option("ratios", dict, dict(DEFAULT_RATIOS), "Part name -> share of the kept files "
                "(positive, summing to 1). Parts may be renamed or added.", check_ratios),
         Option("seed", int, 0, "Seed of the placement order of new groups."),
-        Option("group_threshold", (int, float, type(None)), 0.5, "Similarity at which files "
+        Option("group_threshold", (int, float, type(None)), 0.2, "Similarity at which files "
                "travel together (below dedup's removal threshold, so near-misses that survive "
                "dedup still share a part); null turns near-duplicate grouping off.",
                _check_threshold),
