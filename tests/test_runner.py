@@ -215,3 +215,24 @@ def test_missing_input_folder_is_a_clear_error(tmp_path, capsys):
                                    "stages": ["validate"]}))
     assert main(["run", str(cfg), "--quiet"]) == 1
     assert "nope" in capsys.readouterr().err
+
+
+def test_generated_corpus_verdicts_match_its_truth(tmp_path):
+    # The generator's planted cases (pipeline/synth.py, truth.json) through the default config:
+    # every verdict and every duplicate_of must match what was planted.
+    from pipeline.synth import generate
+    corpus = tmp_path / "corpus"
+    truth = generate(corpus, 300, seed=11)["files"]
+    out = tmp_path / "out"
+    _run(out, input_dir=corpus, workers=2)
+    rows = {r["source"]: r for r in _manifest(out)}
+    ids = {src: r["id"] for src, r in rows.items()}
+    wrong = []
+    for src, t in truth.items():
+        r = rows[src]
+        verdict = r["reason"] or "kept"
+        if verdict != t["expect"]:
+            wrong.append((src, t["expect"], verdict))
+        elif verdict == "near_duplicate" and r["duplicate_of"] != ids[t["duplicate_of"]]:
+            wrong.append((src, "duplicate_of", t["duplicate_of"], r["duplicate_of"]))
+    assert not wrong, wrong[:10]
