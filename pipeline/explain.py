@@ -22,8 +22,9 @@ def _fmt(value: Any) -> str:
 
 def _threshold_text(limit: Any) -> str:
     if isinstance(limit, dict):
-        words = {"min": ">=", "max": "<=", "low": ">=", "high": "<=", "gt": ">", "lt": "<"}
-        parts = [f"{words.get(k, k)} {_fmt(v)}" for k, v in limit.items() if v is not None]
+        words = {"min": ">=", "low": ">=", "gt": ">", "max": "<=", "high": "<=", "lt": "<"}
+        order = sorted(limit, key=lambda k: (list(words).index(k) if k in words else len(words), k))
+        parts = [f"{words.get(k, k)} {_fmt(limit[k])}" for k in order if limit[k] is not None]
         return ", ".join(parts) if parts else "no limit"
     if isinstance(limit, (list, tuple)) and len(limit) == 2:
         return f"within [{_fmt(limit[0])}, {_fmt(limit[1])}]"
