@@ -1,0 +1,65 @@
+"""The command line: exit codes, the summary table, synth and leakage wiring."""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from pipeline.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_run_prints_summary_table(tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(["run", str(ROOT / "configs" / "validate-only.yaml"), "--output", str(out), "--workers", "1"]) == 0
+    text = capsys.readouterr().out
+    assert "files in" in text and "kept" in text and "dropped  validate / not_midi" in text
+    assert (out / "manifest.jsonl").is_file() and (out / "splits" / "all.txt").is_file()
+
+
+def test_bad_usage_exits_2():
+    proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "run"], capture_output=True, text=True, cwd=ROOT)
+    assert proc.returncode == 2
+    assert "config" in proc.stderr
+
+
+def test_bad_workers_override_exits_2(tmp_path, capsys):
+    assert main(["run", str(ROOT / "configs" / "default.yaml"), "--workers", "0",
+                 "--output", str(tmp_path / "o")]) == 2
+    assert "workers must be 'auto' or a whole number >= 1, got 0" in capsys.readouterr().err
+    assert not (tmp_path / "o").exists()
+
+
+def test_synth_writes_files_and_truth(tmp_path):
+    assert main(["synth", str(tmp_path / "c"), "--count", "12", "--seed", "3"]) == 0
+    truth = json.loads((tmp_path / "c" / "truth.json").read_text())
+    assert len(truth["files"]) == 12
+    for rel in truth["files"]:
+        assert (tmp_path / "c" / rel).is_file()
+
+
+def test_synth_rejects_bad_count(capsys, tmp_path):
+    assert main(["synth", str(tmp_path / "c"), "--count", "0"]) == 2
+    assert "--count must be at least 1" in capsys.readouterr().err
+
+
+def test_leakage_exit_codes(tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(["run", str(ROOT / "configs" / "default.yaml"), "--output", str(out), "--quiet"]) == 0
+    assert main(["leakage", str(out)]) == 0
+    assert "no cross-part near-duplicates" in capsys.readouterr().out
+    train = [str(out / p) for p in (out / "splits" / "train.txt").read_text().splitlines()]
+    (tmp_path / "a.txt").write_text("\n".join(train[:10]) + "\n")
+    (tmp_path / "b.txt").write_text("\n".join(train[5:12]) + "\n")  # 5 files in both parts
+    report = tmp_path / "leaks.json"
+    code = main(["leakage", "--part", f"a={tmp_path / 'a.txt'}", "--part", f"b={tmp_path / 'b.txt'}",
+                 "--json", str(report)])
+    assert code == 1
+    data = json.loads(report.read_text())
+    assert len(data["leaks"]) >= 5
+    with pytest.raises(SystemExit):
+        main(["leakage", "--threshold"])
