@@ -226,18 +226,46 @@ class Ledger:
 
 
 class _Batch:
+    """One transaction; any SQLite failure (disk full, I/O error) becomes a LedgerError naming
+    the database, and the transaction is rolled back so no half-written result remains."""
+
     def __init__(self, db: sqlite3.Connection):
         self.db = db
 
     def __enter__(self) -> sqlite3.Connection:
-        self.db.execute("BEGIN IMMEDIATE")
+        try:
+            self.db.execute("BEGIN IMMEDIATE")
+        except sqlite3.Error as e:
+            raise _ledger_error(self.db, e) from None
         return self.db
 
-    def __exit__(self, exc_type: Any, *rest: Any) -> None:
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> bool:
         if exc_type is None:
-            self.db.execute("COMMIT")
-        else:
+            try:
+                self.db.execute("COMMIT")
+                return False
+            except sqlite3.Error as e:
+                self._rollback()
+                raise _ledger_error(self.db, e) from None
+        self._rollback()
+        if isinstance(exc, sqlite3.Error):
+            raise _ledger_error(self.db, exc) from None
+        return False
+
+    def _rollback(self) -> None:
+        try:
             self.db.execute("ROLLBACK")
+        except sqlite3.Error:
+            pass
+
+
+def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
+    try:
+        path = next((row[2] for row in db.execute("PRAGMA database_list") if row[1] == "main"), None)
+    except sqlite3.Error:
+        path = None
+    return LedgerError(f"the state database could not be written ({e}); check free space and "
+                       "permissions, then rerun: committed results are kept", file=path)
 
 
 def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:

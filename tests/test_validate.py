@@ -18,7 +18,7 @@ def test_registered_with_documented_options():
     opts = {o.name: o for o in Validate.options}
     assert {k: o.default for k, o in opts.items()} == {
         "max_bytes": 16_000_000, "max_events": 2_000_000, "max_tracks": 1024,
-        "allow_repairs": True}
+        "allow_repairs": True, "timeout_s": 60.0, "max_memory_mb": 2048}
     for name in ("max_bytes", "max_events", "max_tracks"):
         assert opts[name].kind is int
         assert opts[name].check(1) is None
@@ -30,7 +30,7 @@ def test_kept_file_values_and_detail():
     data = random_midi(1, n_notes=80, n_tracks=3)
     result, piece = Validate().check(data, "a.mid")
     assert result.kept and isinstance(piece, Piece)
-    assert result.values == {"format": 1, "tracks": 4, "ticks_per_beat": 480, "smpte": False,
+    assert result.values == {"format": 1, "track_chunks": 4, "ticks_per_beat": 480, "smpte": False,
                              "repairs": {}}
     assert result.detail == "SMF format 1, 4 tracks, 480 ticks per beat"
     json.dumps(result.to_json())  # manifest-ready

@@ -24,7 +24,8 @@ from __future__ import annotations
 import argparse
 import io
 import os
-import pickle
+import base64
+import json
 import tempfile
 import time
 from pathlib import Path
@@ -55,18 +56,44 @@ def cache_dir() -> Path:
     return d
 
 
+def _to_json(value: Any) -> Any:
+    """Tagged JSON for the cache: bytes and tuples survive, nothing can run code on load."""
+    if isinstance(value, bytes):
+        return {"__bytes__": base64.b64encode(value).decode("ascii")}
+    if isinstance(value, tuple):
+        return {"__tuple__": [_to_json(v) for v in value]}
+    if isinstance(value, list):
+        return [_to_json(v) for v in value]
+    if isinstance(value, dict):
+        return {"__dict__": [[_to_json(k), _to_json(v)] for k, v in value.items()]}
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def _from_json(value: Any) -> Any:
+    if isinstance(value, list):
+        return [_from_json(v) for v in value]
+    if isinstance(value, dict):
+        if "__bytes__" in value:
+            return base64.b64decode(value["__bytes__"])
+        if "__tuple__" in value:
+            return tuple(_from_json(v) for v in value["__tuple__"])
+        return {_from_json(k): _from_json(v) for k, v in value["__dict__"]}
+    return value
+
+
 def _cached(name: str, build):
-    path = cache_dir() / f"{name}.pkl"
+    """``build()``'s value, cached as tagged JSON (never pickle: the folder is shared)."""
+    path = cache_dir() / f"{name}.json"
     if path.exists():
         try:
-            with open(path, "rb") as fh:
-                return pickle.load(fh)
-        except Exception:  # a torn or stale cache file: rebuild it
+            return _from_json(json.loads(path.read_text(encoding="utf-8")))
+        except (OSError, ValueError, KeyError, TypeError):  # a torn or stale cache file: rebuild it
             pass
     value = build()
     tmp = path.with_suffix(f".tmp{os.getpid()}")
-    with open(tmp, "wb") as fh:
-        pickle.dump(value, fh)
+    tmp.write_text(json.dumps(_to_json(value)), encoding="utf-8")
     os.replace(tmp, path)
     return value
 

@@ -20,6 +20,10 @@ from ..smf import decode, describe_repairs
 from .base import FileContext, Option, Stage, StageResult, positive, register
 
 
+def _positive_seconds(value: float) -> str | None:  # reliability option timeout_s: finite, > 0
+    return None if 0 < value < float("inf") else "must be a finite number of seconds above 0"
+
+
 @register
 class Validate(Stage):
     """Decode each file; drop unreadable, empty, oversized (or, if asked, repaired) files."""
@@ -36,6 +40,13 @@ class Validate(Stage):
         Option("allow_repairs", bool, True,
                "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
                "...); when false such files drop as needs_repair"),
+        # reliability options: enforced by the supervised worker pool (pipeline.executor)
+        Option("timeout_s", float, 60.0,
+               "most seconds one file may take (decode and per-file stages); a file that takes "
+               "longer is dropped as timeout and its worker replaced", _positive_seconds),
+        Option("max_memory_mb", int, 2048,
+               "most memory (MB, above the worker's size at start) one file may need; a file "
+               "that needs more is dropped as too_large and its worker replaced", positive),
     )
 
     def check(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
@@ -54,7 +65,7 @@ class Validate(Stage):
         return self.judge(piece)
 
     def judge(self, piece: Piece) -> StageResult:
-        values = {"format": piece.format, "tracks": piece.n_tracks,
+        values = {"format": piece.format, "track_chunks": piece.n_tracks,
                   "ticks_per_beat": piece.ticks_per_beat, "smpte": piece.smpte,
                   "repairs": dict(sorted(piece.repairs.items()))}
         timing = ("SMPTE timing (nominal " if piece.smpte else "") + \

@@ -1,0 +1,117 @@
+"""Tests of pipeline.executor: the supervised worker pool turns hangs, crashes and memory
+blow-ups into per-task faults, replaces the worker, and gives the same results for 1 and N
+workers."""
+from __future__ import annotations
+
+import multiprocessing as mp
+import os
+import signal
+import time
+
+import pytest
+
+from pipeline.errors import OutputError, UsageError
+from pipeline.executor import FAULT_ENV, Fault, Limits, parse_fault_hook, run_tasks
+
+
+def square(x: int) -> int:
+    return x * x
+
+
+def misbehave(x: int) -> int:
+    """Tasks 3, 5, 7, 11, 13 misbehave in different ways; the rest are squared."""
+    if x == 3:
+        time.sleep(60)  # hang
+    if x == 5:
+        os.kill(os.getpid(), signal.SIGSEGV)  # as a crashing C extension would
+    if x == 7:
+        os._exit(3)
+    if x == 11:
+        bytearray(1 << 30)  # 1 GiB, over a 64 MB limit
+    if x == 13:
+        raise KeyError("boom")
+    return x * x
+
+
+def on_fault(task: int, fault: Fault) -> tuple[str, int, str]:
+    return ("fault", task, fault.reason + ": " + fault.detail)
+
+
+def outcomes(fn, tasks, workers, limits=Limits(timeout_s=1.5, max_memory_mb=64)):
+    return sorted(run_tasks(fn, tasks, workers, limits=limits, on_fault=on_fault),
+                  key=lambda r: r[1] if isinstance(r, tuple) else r)
+
+
+def test_same_results_for_one_and_many_workers():
+    tasks = list(range(40))
+    one = sorted(run_tasks(square, tasks, 1))
+    many = sorted(run_tasks(square, tasks, 3))
+    assert one == many == [x * x for x in tasks]
+
+
+def test_every_fault_kind_costs_one_task_and_the_run_goes_on():
+    tasks = list(range(16))
+    for workers in (1, 2):
+        res = outcomes(misbehave, tasks, workers)
+        faults = {r[1]: r[2] for r in res if isinstance(r, tuple)}
+        values = sorted(r for r in res if not isinstance(r, tuple))
+        assert values == [x * x for x in tasks if x not in (3, 5, 7, 11, 13)]
+        assert faults[3].startswith("timeout: ") and "timeout_s = 1.5 s" in faults[3]
+        assert faults[5].startswith("decoder_crash: ") and "SIGSEGV" in faults[5]
+        assert faults[7].startswith("decoder_crash: ") and "exited with status 3" in faults[7]
+        assert faults[11].startswith("too_large: ") and "max_memory_mb = 64 MB" in faults[11]
+        assert faults[13].startswith("decoder_crash: ") and "KeyError" in faults[13]
+        assert "test_executor.py" in faults[13]  # the innermost frame is named
+
+
+def test_tasks_queued_behind_a_crash_are_not_lost():
+    # one worker, the first task kills it while the next ones wait in its pipe
+    res = outcomes(misbehave, [5] + list(range(20, 30)), 1)
+    assert [r for r in res if isinstance(r, tuple)][0][:2] == ("fault", 5)
+    assert sorted(r for r in res if not isinstance(r, tuple)) == [x * x for x in range(20, 30)]
+
+
+def square_or_fail_writing(x: int) -> int:
+    if x == 4:
+        raise OutputError("cannot write (No space left on device)", file="/out/.staging/x.mid")
+    return x * x
+
+
+def test_environment_errors_stop_the_run_with_their_path():
+    with pytest.raises(OutputError, match="No space left") as err:
+        list(run_tasks(square_or_fail_writing, range(8), 2, on_fault=on_fault))
+    assert err.value.file == "/out/.staging/x.mid"
+    assert not mp.active_children()
+
+
+def test_no_worker_left_after_the_consumer_stops_early():
+    gen = run_tasks(square, range(100), 2)
+    next(gen)
+    gen.close()
+    assert not mp.active_children()
+
+
+def test_fault_hook_parsing(monkeypatch):
+    assert parse_fault_hook("crash:a b.mid; hang:x") == (("crash", "a b.mid"), ("hang", "x"))
+    with pytest.raises(ValueError, match="kind one of"):
+        parse_fault_hook("explode:a")
+    monkeypatch.setenv(FAULT_ENV, "crash")
+    with pytest.raises(UsageError, match=FAULT_ENV):
+        list(run_tasks(square, [1, 2], 1))
+
+
+class Item:
+    def __init__(self, source: str):
+        self.source = source
+
+
+def source_len(item: Item) -> int:
+    return len(item.source)
+
+
+def test_fault_hook_hits_only_matching_sources(monkeypatch):
+    monkeypatch.setenv(FAULT_ENV, "exit:bad;raise:worse")
+    items = [Item("good.mid"), Item("bad.mid"), Item("worse.mid"), Item("fine.mid")]
+    res = list(run_tasks(source_len, items, 2, on_fault=lambda t, f: (t.source, f.reason)))
+    assert sorted(map(str, res)) == sorted(["8", "('bad.mid', 'decoder_crash')",
+                                            "('worse.mid', 'decoder_crash')", "8"])

@@ -1,0 +1,384 @@
+"""Faults a run must survive: worker crash, hang, busy loop, unbounded allocation, a decoder
+exception, kill -9 of the run at several points, disk full and an unwritable output folder.
+
+Each fault is injected (the MIDISIFT_FAULT worker hook of pipeline.executor, SIGKILL from a
+driver script that wraps runner/outputs/ledger functions, monkeypatched OSError/sqlite errors)
+and the run is checked against an uninterrupted run of the same corpus: nothing lost, manifest
+and split lists byte-identical after recovery, no partial file under a final name.
+"""
+from __future__ import annotations
+
+import errno
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline import cli, outputs
+from pipeline.config import load_config
+from pipeline.errors import LedgerError, OutputError
+from pipeline.executor import FAULT_ENV
+from pipeline.ledger import Ledger
+from pipeline.runner import Runner
+from pipeline.smf import decode
+from pipeline.synth import main_synth
+
+REPO = Path(__file__).resolve().parents[1]
+COUNT = 160
+
+
+@pytest.fixture(scope="module")
+def corpus(tmp_path_factory) -> Path:
+    d = tmp_path_factory.mktemp("corpus")
+    main_synth(d, COUNT, seed=7)
+    return d
+
+
+@pytest.fixture(scope="module")
+def config(tmp_path_factory) -> Path:
+    """configs/default.yaml with short per-file limits (so a hang costs two seconds)."""
+    raw = yaml.safe_load((REPO / "configs" / "default.yaml").read_text())
+    for entry in raw["stages"]:
+        if "validate" in entry:
+            entry["validate"] = {**(entry["validate"] or {}), "timeout_s": 2.0, "max_memory_mb": 256}
+    p = tmp_path_factory.mktemp("cfg") / "faults.yaml"
+    p.write_text(yaml.safe_dump(raw))
+    return p
+
+
+def run(config: Path, inp: Path, out: Path, workers: int = 2, **flags):
+    cfg = load_config(config, input=str(inp), output=str(out), workers=workers)
+    return Runner(cfg, quiet=True, **flags).run()
+
+
+def snapshot(out: Path) -> dict[str, bytes]:
+    """The contract files compared byte for byte: manifest.jsonl and splits/*.txt."""
+    files = {"manifest.jsonl": (out / "manifest.jsonl").read_bytes()}
+    for p in sorted((out / "splits").glob("*.txt")):
+        files[f"splits/{p.name}"] = p.read_bytes()
+    return files
+
+
+def manifest(out: Path) -> dict[str, dict]:
+    return {r["source"]: r for r in map(json.loads, (out / "manifest.jsonl").read_text().splitlines())}
+
+
+def assert_clean(out: Path) -> None:
+    """No temporary or partial file left; every placed MIDI file decodes; lists match disk."""
+    leftovers = [p for p in out.rglob("*") if p.name.endswith(".tmp") or ".staging" in p.parts]
+    assert leftovers == []
+    listed = set()
+    for p in (out / "splits").glob("*.txt"):
+        listed |= set(p.read_text().split())
+    on_disk = {p.relative_to(out).as_posix() for p in (out / "midi").rglob("*.mid")}
+    assert listed == on_disk
+    for rel in on_disk:
+        assert len(decode((out / rel).read_bytes()).notes) > 0
+
+
+@pytest.fixture(scope="module")
+def baseline(corpus, config, tmp_path_factory) -> dict[str, bytes]:
+    out = tmp_path_factory.mktemp("baseline") / "out"
+    run(config, corpus, out)
+    assert_clean(out)
+    return snapshot(out)
+
+
+# --- worker faults ------------------------------------------------------------------------
+
+FAULTS = {"crash": "decoder_crash", "abort": "decoder_crash", "exit": "decoder_crash",
+          "raise": "decoder_crash", "hang": "timeout", "loop": "timeout", "alloc": "too_large"}
+
+
+def test_worker_faults_cost_one_file_each_and_are_not_retried(corpus, config, baseline, tmp_path,
+                                                              monkeypatch):
+    out = tmp_path / "out"
+    clean = {r["source"]: r for r in map(json.loads, baseline["manifest.jsonl"].decode().splitlines())}
+    kept = sorted(s for s, r in clean.items() if r["status"] == "kept" and "\n" not in s)
+    # one distinct kept file per fault kind, spread over the corpus
+    victims = dict(zip(FAULTS, kept[::len(kept) // len(FAULTS)]))
+    monkeypatch.setenv(FAULT_ENV, ";".join(f"{k}:{s}" for k, s in victims.items()))
+    report = run(config, corpus, out)
+    rows = manifest(out)
+    assert sorted(rows) == sorted(clean)  # every input file has its one row
+    for kind, src in victims.items():
+        r = rows[src]
+        assert (r["status"], r["stage"], r["reason"]) == ("dropped", "validate", FAULTS[kind]), kind
+        assert r["detail"]
+    # only the victims (and byte-identical copies of them: work is done per content) faulted
+    victim_shas = {rows[s]["sha256"] for s in victims.values()}
+    assert ({s for s, r in rows.items() if r["reason"] in FAULTS.values()}
+            == {s for s, r in rows.items() if r["sha256"] in victim_shas})
+    assert_clean(out)
+
+    # a rerun does not retry them (the hook is still armed: a retry would fault again)
+    again = run(config, corpus, out)
+    assert again.computed == 0
+    assert manifest(out) == rows
+
+    # --retry-failed (hook off) recomputes the retryable ones: time, crash and memory-limit drops
+    # (a too_large from a size cap is the file's own fault and is not retried)
+    monkeypatch.delenv(FAULT_ENV)
+    retried = run(config, corpus, out, retry_failed=True)
+    retryable = list(FAULTS)
+    assert retried.computed == len(retryable)
+    rows = manifest(out)
+    for kind in retryable:  # a real verdict now (dedup may keep the copy kept meanwhile)
+        assert rows[victims[kind]]["reason"] not in FAULTS.values(), (kind, rows[victims[kind]])
+        assert rows[victims[kind]]["stage"] != "validate", kind
+
+
+def test_memory_error_inside_a_stage_is_too_large_not_stage_error(corpus, config, tmp_path,
+                                                                    monkeypatch):
+    # e.g. an analysis sizing an array by the file's last tick (found by the long fuzz run)
+    from pipeline.stages.key_meter import KeyMeter
+    real = KeyMeter.process
+
+    def greedy(self, piece, ctx):  # inherited by the forked workers
+        if ctx.source.endswith("5.mid"):
+            raise MemoryError("Unable to allocate 24.0 GiB for an array")
+        return real(self, piece, ctx)
+    monkeypatch.setattr(KeyMeter, "process", greedy)
+    run(config, corpus, tmp_path / "out")
+    rows = manifest(tmp_path / "out")
+    hit = [r for s, r in rows.items() if s.endswith("5.mid") and r["stage"] in ("validate", "key_meter")
+           and r["reason"] not in ("not_midi", "truncated", "bad_chunk", "bad_event",
+                                   "unsupported_format", "no_notes")]
+    assert hit and all(r["reason"] == "too_large" and "max_memory_mb = 256 MB" in r["detail"]
+                       and "in greedy" in r["detail"] for r in hit)
+    assert not any(r["reason"] == "stage_error" for r in rows.values())
+
+
+def test_one_and_two_workers_give_identical_outputs(corpus, config, baseline, tmp_path):
+    out = tmp_path / "one"
+    run(config, corpus, out, workers=1)
+    assert snapshot(out) == baseline
+
+
+# --- kill -9 of the run ---------------------------------------------------------------------
+
+DRIVER = textwrap.dedent('''
+    """Run the CLI, but SIGKILL this process at the N-th call of a chosen function."""
+    import os, signal, sys
+    from pipeline import cli, ledger, outputs, runner
+
+    point, n = sys.argv[1].split(":")
+    n, calls, me = int(n), [0], os.getpid()
+
+    def hit():
+        if os.getpid() == me:
+            calls[0] += 1
+            if calls[0] >= n:
+                os.kill(me, signal.SIGKILL)
+
+    def before(obj, name):
+        orig = getattr(obj, name)
+        def wrapper(*a, **k):
+            hit()
+            return orig(*a, **k)
+        setattr(obj, name, wrapper)
+
+    if point == "sources":        # inside the transaction that records the fingerprints
+        before(ledger.Ledger, "put_sources")
+    elif point == "in_batch":     # inside the N-th results transaction (results written, not committed)
+        before(ledger.Ledger, "put_artifacts")
+    elif point == "outcome":      # the parent received N outcomes (results not all committed)
+        orig_run = runner.run_tasks
+        def counting(*a, **k):
+            for oc in orig_run(*a, **k):
+                yield oc
+                hit()
+        runner.run_tasks = counting
+    elif point == "place":        # the N-th normalized file being moved into midi/<part>/
+        orig_place, orig_replace, armed = outputs.place, os.replace, [False]
+        def replace(src, dst):
+            if armed[0]:
+                hit()
+            return orig_replace(src, dst)
+        def place(*a, **k):
+            armed[0] = True
+            return orig_place(*a, **k)
+        os.replace, outputs.place = replace, place
+    elif point == "write_all":    # just before the manifest is written
+        before(outputs, "write_all")
+    elif point == "write_atomic": # the N-th atomic write of manifest/splits/summary
+        orig_all = outputs.write_all
+        def write_all(*a, **k):
+            before(outputs, "write_atomic")
+            return orig_all(*a, **k)
+        outputs.write_all = write_all
+    elif point == "decisions":    # outputs written, final ledger transaction not yet
+        before(ledger.Ledger, "put_decisions")
+    sys.exit(cli.main(sys.argv[2:]))
+''')
+
+
+def cli_run(driver: Path, point: str, config: Path, inp: Path, out: Path) -> subprocess.CompletedProcess:
+    args = [sys.executable, str(driver), point, "run", str(config), "--input", str(inp),
+            "--output", str(out), "--workers", "2", "--quiet"]
+    return subprocess.run(args, capture_output=True, text=True, timeout=300, cwd=REPO)
+
+
+def orphans(out: Path) -> list[int]:
+    """Processes still running with this output folder on their command line."""
+    found = []
+    for d in Path("/proc").iterdir():
+        if d.name.isdigit():
+            try:
+                if str(out).encode() in (d / "cmdline").read_bytes():
+                    found.append(int(d.name))
+            except OSError:
+                pass
+    return found
+
+
+@pytest.fixture()
+def driver(tmp_path) -> Path:
+    p = tmp_path / "driver.py"
+    p.write_text(DRIVER)
+    return p
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="uses /proc and SIGKILL")
+def test_kill_9_at_every_phase_then_rerun_is_lossless(corpus, config, baseline, driver, tmp_path):
+    out = tmp_path / "out"
+    # one output folder killed again and again, each time later in the run
+    for point in ("sources:1", "in_batch:2", "outcome:15", "outcome:80", "place:20", "write_all:1",
+                  "write_atomic:2", "decisions:1"):
+        proc = cli_run(driver, point, config, corpus, out)
+        assert proc.returncode == -signal.SIGKILL, (point, proc.returncode, proc.stderr[-2000:])
+        assert (out / ".midisift.lock").exists()  # the dead run's lock is left behind
+        # the workers died with their parent (PR_SET_PDEATHSIG): none lingers
+        for _ in range(50):
+            if not orphans(out):
+                break
+            time.sleep(0.1)
+        assert orphans(out) == [], point
+    proc = cli_run(driver, "none:0", config, corpus, out)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert snapshot(out) == baseline
+    assert_clean(out)
+    with Ledger(out / "state.sqlite") as led:
+        assert led.db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="uses SIGKILL")
+@pytest.mark.parametrize("point", ["write_atomic:2"])
+def test_single_kill_then_rerun_is_lossless(corpus, config, baseline, driver, tmp_path, point):
+    out = tmp_path / "out"
+    assert cli_run(driver, point, config, corpus, out).returncode == -signal.SIGKILL
+    if point == "write_atomic:2":  # the manifest is complete (renamed), the split lists not yet
+        assert (out / "manifest.jsonl").read_bytes() == baseline["manifest.jsonl"]
+        assert not (out / "splits").exists() or not list((out / "splits").glob("*.txt"))
+    assert cli_run(driver, "none:0", config, corpus, out).returncode == 0
+    assert snapshot(out) == baseline
+    assert_clean(out)
+
+
+# --- disk full and unwritable folders --------------------------------------------------------
+
+def enospc(*_a, **_k):
+    raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+
+def test_disk_full_writing_the_manifest(corpus, config, baseline, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    real_replace = os.replace
+
+    def replace(src, dst):
+        if str(dst).endswith("manifest.jsonl"):
+            enospc()
+        return real_replace(src, dst)
+    monkeypatch.setattr(os, "replace", replace)
+    with pytest.raises(OutputError, match="No space left on device") as err:
+        run(config, corpus, out)
+    assert err.value.file == str(out / "manifest.jsonl")
+    assert not (out / "manifest.jsonl").exists()
+    assert not list(out.glob(".*.tmp"))  # the temporary was removed
+    with Ledger(out / "state.sqlite") as led:
+        assert led.last_run() is None  # the run is not recorded as complete
+    monkeypatch.setattr(os, "replace", real_replace)
+    run(config, corpus, out)
+    assert snapshot(out) == baseline
+    assert_clean(out)
+
+
+def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    calls = []
+
+    def full(self, rows):
+        calls.append(1)
+        if len(calls) == 2:
+            raise sqlite3.OperationalError("database or disk is full")
+        return real(self, rows)
+    real = Ledger.put_results
+    monkeypatch.setattr(Ledger, "put_results", full)
+    with pytest.raises(LedgerError, match="database or disk is full") as err:
+        run(config, corpus, out)
+    assert err.value.file == str(out / "state.sqlite")
+    assert "check free space" in err.value.message
+    monkeypatch.setattr(Ledger, "put_results", real)
+    run(config, corpus, out)
+    assert snapshot(out) == baseline
+
+
+def test_disk_full_in_a_worker_rendering_outputs(corpus, config, baseline, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    real = outputs.write_atomic
+
+    def write_atomic(path, data, *a, **k):  # inherited by the forked workers
+        if outputs.STAGING in Path(path).parts:
+            raise OutputError("cannot write (No space left on device); check free space", file=str(path))
+        return real(path, data, *a, **k)
+    monkeypatch.setattr(outputs, "write_atomic", write_atomic)
+    with pytest.raises(OutputError, match="No space left") as err:
+        run(config, corpus, out)
+    assert outputs.STAGING in Path(err.value.file).parts
+    monkeypatch.setattr(outputs, "write_atomic", real)
+    run(config, corpus, out)
+    assert snapshot(out) == baseline  # no file was dropped for the disk's fault
+
+
+def test_output_folder_that_cannot_be_created(corpus, config, tmp_path, capsys):
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    code = cli.main(["run", str(config), "--input", str(corpus), "--output", str(blocker / "out"),
+                     "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 1
+    assert str(blocker / "out") in err and "Traceback" not in err
+
+
+def test_lock_file_that_cannot_be_created(corpus, config, tmp_path, monkeypatch):
+    # chmod cannot make a folder unwritable for root (CI runs as root), so the refusal of the
+    # file system is simulated where the run first writes: the lock file
+    import pipeline.lock as lock
+
+    def denied(path, *a, **k):
+        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(path))
+    monkeypatch.setattr(lock.os, "open", denied)
+    with pytest.raises(LedgerError, match="Permission denied.*writable") as err:
+        run(config, corpus, tmp_path / "out")
+    assert err.value.file.endswith(".midisift.lock")
+
+
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0,
+                    reason="root ignores folder permissions")
+def test_read_only_output_folder(corpus, config, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    out.chmod(0o500)
+    try:
+        with pytest.raises(LedgerError, match=str(out)):
+            run(config, corpus, out)
+    finally:
+        out.chmod(0o700)

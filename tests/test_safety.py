@@ -1,0 +1,268 @@
+"""Safety: inputs are never modified, one run per output folder, no escape from the input or the
+output folder, awkward file names work, configs are safe YAML with checked values, nothing is
+unpickled from disk."""
+from __future__ import annotations
+
+import json
+import multiprocessing as mp
+import os
+import re
+import signal
+import sqlite3
+import time
+from pathlib import Path
+
+import pytest
+
+from pipeline import cli
+from pipeline.config import load_config, parse_config
+from pipeline.errors import ConfigError, LedgerError, UsageError
+from pipeline.ledger import Ledger
+from pipeline.lock import LOCK_NAME, OutputLock
+from pipeline.runner import Runner, discover
+from pipeline.synth import main_synth
+
+REPO = Path(__file__).resolve().parents[1]
+CONFIG = REPO / "configs" / "default.yaml"
+
+#: Awkward but legal POSIX file names: spaces, unicode (NFC and NFD), a newline, leading
+#: dashes, shell metacharacters, a name that looks like a path traversal once joined.
+AWKWARD = ["with space.mid", "ünïcødé 日本.mid", "Cafe\u0301.mid", "line\nbreak.mid", "-rf.mid",
+           "--help.mid", "$(touch pwned).mid", "..mid", "a;b|c&.MID"]
+
+
+def run(inp: Path, out: Path, workers: int = 2, **flags):
+    cfg = load_config(CONFIG, input=str(inp), output=str(out), workers=workers)
+    return Runner(cfg, quiet=True, **flags).run()
+
+
+def tree_state(root: Path) -> dict[str, tuple[bytes, int, int]]:
+    """path -> (bytes, mtime_ns, mode) of every file (symlinks by their own stat)."""
+    state = {}
+    for dirpath, dirs, files in os.walk(root):
+        for name in files + dirs:
+            p = Path(dirpath) / name
+            st = p.lstat()
+            data = p.read_bytes() if p.is_file() and not p.is_symlink() else os.fsencode(
+                os.readlink(p)) if p.is_symlink() else b""
+            state[str(p.relative_to(root))] = (data, st.st_mtime_ns, st.st_mode)
+    return state
+
+
+@pytest.fixture(scope="module")
+def awkward_corpus(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("input")
+    main_synth(root / "synth", 40, seed=3)
+    src = sorted((root / "synth").rglob("*.mid"))
+    for name, s in zip(AWKWARD, src):
+        (root / name).write_bytes(s.read_bytes())
+    os.symlink(str(src[-1]), root / "inside_link.mid")  # inside the input folder: followed
+    outside = tmp_path_factory.mktemp("elsewhere") / "secret.mid"
+    outside.write_bytes(src[-2].read_bytes())
+    os.symlink(str(outside), root / "outside_link.mid")  # points outside: not followed
+    os.symlink("loop_b.mid", root / "loop_a.mid")
+    os.symlink("loop_a.mid", root / "loop_b.mid")
+    os.symlink("/nonexistent/dangling.mid", root / "dangling.mid")
+    (root / "notes.txt").write_text("not a MIDI file, not ours")
+    (root / os.fsdecode(b"latin1 caf\xe9.mid")).write_bytes(src[-3].read_bytes())
+    return root
+
+
+def test_inputs_untouched_and_awkward_names_work(awkward_corpus, tmp_path):
+    before = tree_state(awkward_corpus)
+    out = tmp_path / "out"
+    report = run(awkward_corpus, out)
+    run(awkward_corpus, out)  # and a rerun
+    assert tree_state(awkward_corpus) == before  # bytes, mtimes and modes identical
+    rows = {r["source"]: r for r in map(json.loads, (out / "manifest.jsonl").read_text().splitlines())}
+    for name in AWKWARD:
+        assert name in rows, name
+    assert "inside_link.mid" in rows
+    for skipped in ("outside_link.mid", "loop_a.mid", "dangling.mid"):
+        assert skipped not in rows
+    assert not any("caf" in s and "latin1" in s for s in rows)
+    notes = "\n".join(report.notes)
+    assert "outside_link.mid pointing outside the input folder" in notes
+    assert "not valid UTF-8" in notes and "loop_a.mid" in notes
+    # output names come from content ids only
+    for p in out.rglob("*"):
+        rel = p.relative_to(out).as_posix()
+        assert re.fullmatch(r"(manifest\.jsonl|summary\.json|state\.sqlite(-wal|-shm)?|splits|"
+                            r"splits/\w+\.txt|midi|midi/\w+|midi/\w+/[0-9a-f]{16}(\.[\w+-]+)?\.mid)",
+                            rel), rel
+
+
+def test_output_inside_input_is_not_searched(tmp_path):
+    inp = tmp_path / "in"
+    main_synth(inp, 20, seed=5)
+    before = tree_state(inp)
+    out = inp / "derived" / "out"
+    n_inputs = sum(1 for p in inp.rglob("*") if p.suffix.lower() in (".mid", ".midi", ".kar", ".rmi"))
+    first = run(inp, out)
+    assert any((out / "midi").rglob("*.mid"))
+    second = run(inp, out)  # its own outputs are not picked up as inputs
+    assert first.files == second.files == n_inputs
+    assert any("lies inside the input folder; it is not searched" in n for n in first.notes)
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    assert not any(r["source"].startswith("derived/") for r in rows)
+    after = tree_state(inp)
+    assert {k: v for k, v in after.items() if not k.startswith("derived")} == before
+
+
+@pytest.mark.parametrize("where", ["same", "parent"])
+def test_output_that_is_or_contains_the_input_is_refused(tmp_path, where):
+    inp = tmp_path / "music" / "in"
+    main_synth(inp, 5, seed=5)
+    before = tree_state(inp)
+    out = inp if where == "same" else inp.parent
+    with pytest.raises(UsageError, match="is, or contains, the input folder"):
+        discover(inp, out)
+    with pytest.raises(UsageError):
+        run(inp, out)
+    assert {k: v for k, v in tree_state(inp).items() if k in before} == before
+    assert not (inp / "midi").exists() and not (inp / "manifest.jsonl").exists()
+
+
+# --- one run per output folder ------------------------------------------------------------
+
+def _hold(out: str, ready, release) -> None:
+    with OutputLock(Path(out)):
+        ready.set()
+        release.wait(30)
+
+
+def test_second_run_refuses_naming_the_holder(tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    ctx = mp.get_context("fork")
+    ready, release = ctx.Event(), ctx.Event()
+    holder = ctx.Process(target=_hold, args=(str(out), ready, release))
+    holder.start()
+    try:
+        assert ready.wait(20)
+        inp = tmp_path / "in"
+        main_synth(inp, 3, seed=1)
+        with pytest.raises(LedgerError, match=f"another run holds this output folder \\(pid {holder.pid} on "):
+            run(inp, out)
+    finally:
+        release.set()
+        holder.join(20)
+    with OutputLock(out) as lock:  # free again once the holder is done
+        assert lock.took_over is None
+
+
+def test_stale_lock_of_a_killed_run_is_taken_over(tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    ctx = mp.get_context("fork")
+    ready, release = ctx.Event(), ctx.Event()
+    holder = ctx.Process(target=_hold, args=(str(out), ready, release))
+    holder.start()
+    assert ready.wait(20)
+    os.kill(holder.pid, signal.SIGKILL)
+    holder.join(20)
+    assert (out / LOCK_NAME).exists()
+    (out / ".manifest.jsonl.abc123.tmp").write_text("half a manifest")  # left by the dead run
+    with OutputLock(out) as lock:
+        assert lock.took_over["pid"] == holder.pid
+        assert [p.name for p in lock.swept] == [".manifest.jsonl.abc123.tmp"]
+
+
+def test_lock_recorded_with_our_own_pid_is_stale(tmp_path):
+    # after a kill -9 the new run may get the dead run's pid: a pid check alone would refuse
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / LOCK_NAME).write_text(json.dumps({"pid": os.getpid(), "host": os.uname().nodename,
+                                             "since": time.time()}))
+    with OutputLock(out):
+        pass
+
+
+def test_forked_worker_does_not_keep_the_lock(tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    lock = OutputLock(out).__enter__()
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # a worker outliving its run (the at-fork handler has run by now)
+        os.write(w, b"x")
+        time.sleep(10)
+        os._exit(0)
+    os.read(r, 1)
+    try:
+        os.close(lock.fd)  # the run dies without cleaning up (as with SIGKILL)
+        with OutputLock(out) as again:
+            assert again.took_over["pid"] == os.getpid()
+    finally:
+        os.kill(pid, signal.SIGKILL)
+        os.waitpid(pid, 0)
+
+
+# --- configs ----------------------------------------------------------------------------
+
+def test_yaml_tags_are_not_executed(tmp_path):
+    marker = tmp_path / "pwned"
+    cfg = tmp_path / "evil.yaml"
+    cfg.write_text(f"input: !!python/object/apply:os.system ['touch {marker}']\noutput: out\n"
+                   "stages: [validate]\n")
+    assert cli.main(["run", str(cfg)]) == 2
+    assert not marker.exists()
+
+
+BASE = {"input": "in", "output": "out", "workers": 2,
+        "stages": [{"validate": {}}, {"dedup": {}}, {"split": {}}]}
+
+
+@pytest.mark.parametrize("path,value,match", [
+    (("workers",), 0, "workers"),
+    (("workers",), -3, "workers"),
+    (("stages", 0, "validate", "timeout_s"), 0, "timeout_s"),
+    (("stages", 0, "validate", "timeout_s"), -1.5, "timeout_s"),
+    (("stages", 0, "validate", "timeout_s"), float("inf"), "timeout_s"),
+    (("stages", 0, "validate", "max_memory_mb"), 0, "max_memory_mb"),
+    (("stages", 0, "validate", "max_bytes"), -1, "max_bytes"),
+    (("stages", 1, "dedup", "threshold"), 1.5, "threshold"),
+    (("stages", 1, "dedup", "threshold"), -0.2, "threshold"),
+    (("stages", 2, "split", "ratios"), {"train": 1.2, "test": -0.2}, "ratios"),
+    (("stages", 2, "split", "ratios"), {"../../etc": 0.5, "test": 0.5}, "ratios"),
+])
+def test_absurd_values_are_errors(path, value, match):
+    raw = json.loads(json.dumps(BASE))
+    node = raw
+    for key in path[:-1]:
+        node = node[key]
+    node[path[-1]] = value
+    with pytest.raises(ConfigError, match=match):
+        parse_config(raw)
+
+
+def test_reliability_options_have_safe_defaults():
+    cfg = parse_config(json.loads(json.dumps(BASE)))
+    opts = cfg.stages[0].options
+    assert opts["timeout_s"] == 60.0 and opts["max_memory_mb"] == 2048
+
+
+# --- nothing unpickled from disk --------------------------------------------------------------
+
+UNSAFE = re.compile(r"pickle\.loads?\(|cPickle|shelve|marshal\.loads?\(|yaml\.load\(|"
+                    r"yaml\.unsafe_load|full_load|allow_pickle\s*=\s*True|joblib|dill")
+
+
+def test_no_unpickling_or_unsafe_yaml_in_the_package():
+    hits = []
+    for p in sorted((REPO / "pipeline").rglob("*.py")):
+        for i, line in enumerate(p.read_text().splitlines(), 1):
+            if UNSAFE.search(line.split("#")[0]):
+                hits.append(f"{p.relative_to(REPO)}:{i}: {line.strip()}")
+    assert hits == []
+
+
+def test_object_arrays_in_the_ledger_are_refused(tmp_path):
+    # a tampered artifact row claiming dtype object must not turn into Python objects
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.db.execute("INSERT INTO artifacts VALUES (?,?,?,?,?,?,?)",
+                           ("ab" * 32, "dedup", "fp", "sig", "|O", "[1]", b"\x00" * 8))
+        with pytest.raises((ValueError, TypeError)):
+            led.artifacts_for("dedup", "fp")
+    assert sqlite3.connect(tmp_path / "state.sqlite").execute("SELECT count(*) FROM artifacts").fetchone() == (1,)
