@@ -101,15 +101,14 @@ def encode(piece: Piece, notes: np.ndarray | None = None) -> bytes:
         tr = notes["track"].astype(np.int64)
         group = tr * 16 + notes["channel"].astype(np.int64)
         names = piece.track_names
-        for g in np.unique(group).tolist():
-            idx = np.flatnonzero(group == g)
-            src, c = divmod(g, 16)
+        bodies = _all_group_events(group, starts, ends, notes["pitch"].astype(np.int64),
+                                   notes["velocity"].astype(np.int64),
+                                   notes["program"].astype(np.int64))
+        for g, body in bodies:
+            src = g // 16
             head = b""
             if src < len(names) and names[src]:
                 head = b"\x00" + _meta(0x03, names[src].encode("latin-1", "replace"))
-            body = _group_events(starts[idx], ends[idx], notes["pitch"][idx].astype(np.int64),
-                                 notes["velocity"][idx].astype(np.int64),
-                                 notes["program"][idx].astype(np.int64), c)
             tracks.append(_chunk(b"MTrk", head + body + b"\x00\xff\x2f\x00"))
 
     header = _chunk(b"MThd", (1).to_bytes(2, "big") + len(tracks).to_bytes(2, "big")
@@ -153,3 +152,56 @@ def _group_events(start: np.ndarray, end: np.ndarray, pitch: np.ndarray, vel: np
                      np.ones(len(tick), dtype=bool), need_status,
                      np.ones(len(tick), dtype=bool), ~is_pc], axis=1)
     return table.astype(np.uint8)[mask].tobytes()
+
+
+def _all_group_events(group: np.ndarray, start: np.ndarray, end: np.ndarray, pitch: np.ndarray,
+                      vel: np.ndarray, prog: np.ndarray) -> list[tuple[int, bytes]]:
+    """``_group_events`` for every (track, channel) group of a note table in one vectorized
+    pass: ``(group, event bytes)`` in ascending group order, byte for byte what
+    ``_group_events`` gives for each group's notes (in their table order) on its own.
+
+    The same sort keys with the group as the leading key keep each group's events in the
+    order the per-group sort gives (lexsort is stable and each group's events keep their
+    relative order in the concatenation); deltas and running status restart at each group."""
+    o = np.lexsort((pitch, start, group))
+    group, start, end, pitch, vel, prog = group[o], start[o], end[o], pitch[o], vel[o], prog[o]
+    n = len(o)
+    new_group = np.ones(n, dtype=bool)
+    new_group[1:] = group[1:] != group[:-1]
+    pc = new_group.copy()
+    pc[1:] |= prog[1:] != prog[:-1]
+    seq = np.arange(n, dtype=np.int64) * 2
+    n_pc = int(pc.sum())
+    channel = group & 0x0F
+    # columns of all events: group, tick, class, tie key, status, data1, data2, is program change
+    gid = np.concatenate((group[pc], group, group))
+    tick = np.concatenate((start[pc], start, end))
+    cls = np.concatenate((np.ones(n_pc + n, np.int64), np.zeros(n, np.int64)))
+    tie = np.concatenate((seq[pc], seq + 1, pitch))
+    status = np.concatenate((0xC0 | channel[pc], 0x90 | channel, 0x90 | channel))
+    d1 = np.concatenate((prog[pc], pitch, pitch))
+    d2 = np.concatenate((np.zeros(n_pc, np.int64), vel, np.zeros(n, np.int64)))
+    is_pc = np.concatenate((np.ones(n_pc, dtype=bool), np.zeros(2 * n, dtype=bool)))
+    order = np.lexsort((tie, cls, tick, gid))
+    gid, tick, status, d1, d2, is_pc = (gid[order], tick[order], status[order], d1[order],
+                                        d2[order], is_pc[order])
+    m = len(tick)
+    first = np.ones(m, dtype=bool)
+    first[1:] = gid[1:] != gid[:-1]
+    delta = np.diff(tick, prepend=0)
+    delta[first] = tick[first]
+    if m and (delta.min() < 0 or delta.max() > 0x0FFFFFFF):
+        raise ValueError("note times must be 0..0x0FFFFFFF ticks apart and not negative")
+    need_status = first.copy()
+    need_status[1:] |= status[1:] != status[:-1]
+    table = np.stack([((delta >> 21) & 0x7F) | 0x80, ((delta >> 14) & 0x7F) | 0x80,
+                      ((delta >> 7) & 0x7F) | 0x80, delta & 0x7F, status, d1, d2], axis=1)
+    ones = np.ones(m, dtype=bool)
+    mask = np.stack([delta >= 1 << 21, delta >= 1 << 14, delta >= 1 << 7, ones, need_status,
+                     ones, ~is_pc], axis=1)
+    flat = table.astype(np.uint8)[mask].tobytes()
+    ends = np.cumsum(mask.sum(axis=1))
+    starts_at = np.flatnonzero(first)
+    cut = [0] + ends[np.append(starts_at[1:], m) - 1].tolist()
+    return [(g, flat[cut[i]:cut[i + 1]]) for i, g in enumerate(gid[starts_at].tolist())]
+

@@ -133,6 +133,8 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     """Move staged/existing normalized files to ``midi/<part>/`` and drop everything else."""
     placed = Placed()
     rows = []
+    from_staging = False
+    made: set[Path] = set()
     for sha in rep:
         if walk.status.get(sha) is not None:
             continue
@@ -150,34 +152,55 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
             src = sources[suffix]
             if src != dst:
                 try:
-                    dst.parent.mkdir(parents=True, exist_ok=True)
+                    if dst.parent not in made:
+                        dst.parent.mkdir(parents=True, exist_ok=True)
+                        made.add(dst.parent)
                     os.replace(src, dst)
                 except OSError as e:
                     raise OutputError(f"cannot move a normalized file into place ({e.strerror})", file=str(dst)) from None
+                from_staging = True
             paths.append(rel)
             rows.append((rel, sha, fp))
         if paths:
             placed.main[sha] = paths[0]
             placed.all_of[sha] = paths
             placed.parts.setdefault(part, []).extend(paths)
-    if rows:
+    if from_staging:
         os.sync()  # staged files were written without fsync; flush them once before recording them
     keep = {r[0] for r in rows}
     midi = out_dir / "midi"
     if midi.is_dir():
-        for p in sorted(midi.rglob("*")):
-            if p.is_file() and p.relative_to(out_dir).as_posix() not in keep:
-                p.unlink()
-        for d in sorted((d for d in midi.rglob("*") if d.is_dir()), reverse=True):
-            if not any(d.iterdir()):
-                d.rmdir()
+        _prune(midi, "midi", keep)
     shutil.rmtree(out_dir / STAGING, ignore_errors=True)
-    with ledger.batch():
-        ledger.forget_outputs(list(ledger.outputs()))
-        ledger.put_outputs(rows)
+    recorded = ledger.outputs()
+    if recorded != {rel: (sha, ofp) for rel, sha, ofp in rows}:  # unchanged: nothing to write
+        with ledger.batch():
+            ledger.forget_outputs(list(recorded))
+            ledger.put_outputs(rows)
     for part in placed.parts:
         placed.parts[part].sort()
     return placed
+
+
+def _prune(folder: Path, rel: str, keep: set[str]) -> bool:
+    """Remove every file below ``folder`` whose path relative to OUTPUT (``rel`` is the
+    folder's) is not in ``keep``, then the folders left empty; True if ``folder`` is now empty.
+    Symlinks are removed like files and never followed (as ``Path.rglob`` does not)."""
+    empty = True
+    with os.scandir(folder) as it:
+        entries = sorted(it, key=lambda e: e.name)
+    for e in entries:
+        path = f"{rel}/{e.name}"
+        if e.is_dir(follow_symlinks=False):
+            if _prune(Path(e.path), path, keep):
+                os.rmdir(e.path)
+            else:
+                empty = False
+        elif path in keep:
+            empty = False
+        else:
+            os.unlink(e.path)
+    return empty
 
 
 def _kept_detail(trail: list, part: str | None) -> str:

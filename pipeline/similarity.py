@@ -17,7 +17,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Iterable
+from typing import Any, Iterable, Iterator
 
 import numpy as np
 
@@ -208,16 +208,33 @@ class LSHIndex:
 
     def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
         """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
-        if len(self.ids) < 2:
-            return []
-        keys = band_keys(np.vstack(self._sigs), self.bands)
+        codes = self.candidate_codes(new)
+        n, ids = len(self.ids), self.ids
+        return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
+
+    def candidate_codes(self, new: set[str] | None = None) -> np.ndarray:
+        """The candidate pairs of ``candidates`` as sorted unique codes ``i * n + j`` (``i < j``
+        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings."""
         n = len(self.ids)
+        if n < 2:
+            return np.zeros(0, dtype=np.int64)
         is_new = (np.ones(n, dtype=bool) if new is None
                   else np.array([k in new for k in self.ids]))
+        if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
+            return np.zeros(0, dtype=np.int64)
+        keys = band_keys(np.vstack(self._sigs), self.bands)
         found = [_band_pairs(keys[:, band], is_new) for band in range(self.bands)]
-        codes = np.unique(np.concatenate(found)) if found else np.zeros(0, dtype=np.int64)
+        return np.unique(np.concatenate(found)) if found else np.zeros(0, dtype=np.int64)
+
+    def iter_sorted_pairs(self, codes: np.ndarray) -> Iterator[tuple[str, str]]:
+        """``candidates`` lazily, in the same order, when the ids were added in sorted order
+        (then code order is (id_a, id_b) order); raises ValueError otherwise."""
         ids = self.ids
-        return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
+        if any(ids[k] >= ids[k + 1] for k in range(len(ids) - 1)):
+            raise ValueError("iter_sorted_pairs needs ids added in strictly increasing order")
+        n = len(ids)
+        for c in codes.tolist():
+            yield ids[c // n], ids[c % n]
 
 
 #: Buckets up to this size are paired by vectorized offsets; bigger ones one by one.

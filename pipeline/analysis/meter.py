@@ -147,29 +147,46 @@ def _template(spec: MeterSpec) -> np.ndarray:
 _TEMPLATES = {m.name: _template(m) for m in METERS}
 
 
+def _rolled(t: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+    """Centred template, its norm, and all its rotations (row p: downbeat at bin p), built
+    once per candidate instead of once per file."""
+    tc = t - t.mean()
+    return tc, np.linalg.norm(tc), np.stack([np.roll(tc, p) for p in range(len(tc))])
+
+
+_ROLLED = {name: _rolled(t) for name, t in _TEMPLATES.items()}
+
+
 def _autocorr(acc: np.ndarray, lag: int) -> float:
     """Normalized autocorrelation of the accent function at ``lag`` bins."""
-    if lag >= len(acc):
-        return 0.0
+    return _autocorrs(acc, (lag,))[0]
+
+
+def _autocorrs(acc: np.ndarray, lags: tuple[int, ...]) -> list[float]:
+    """``_autocorr`` at several lags, centring the accent function once.
+
+    The products are summed by numpy (pairwise summation), not by a BLAS dot product: BLAS
+    switches to several threads for long vectors (above about 10,000 bins, i.e. long pieces),
+    which costs milliseconds of thread start-up per call in a busy worker and makes the last
+    bits depend on the machine's thread count."""
     a = acc - acc.mean()
-    denom = float(a @ a)
-    return float(a[:-lag] @ a[lag:]) / denom if denom > 0 else 0.0
+    denom = float(np.add.reduce(a * a))
+    return [0.0 if lag >= len(acc) else
+            (float(np.add.reduce(a[:-lag] * a[lag:])) / denom if denom > 0 else 0.0)
+            for lag in lags]
 
 
 def _fold_match(acc: np.ndarray, spec: MeterSpec) -> tuple[float, int]:
     """Best Pearson correlation of the bar-folded accent histogram with the meter's
     metrical-hierarchy template (a position's weight is the number of levels with a beat
     there) over all phases; returns (correlation, phase in bins). Used for the downbeat phase."""
-    t = _TEMPLATES[spec.name]
-    n = len(t)
+    tc, tc_norm, rolled = _ROLLED[spec.name]
+    n = len(tc)
     folded = np.bincount(np.arange(len(acc)) % n, weights=acc, minlength=n)
     f = folded - folded.mean()
-    tc = t - t.mean()
-    denom = np.linalg.norm(f) * np.linalg.norm(tc)
+    denom = np.linalg.norm(f) * tc_norm
     if denom == 0:
         return 0.0, 0
-    # row p: template rotated so its downbeat sits at bin p
-    rolled = np.stack([np.roll(tc, p) for p in range(n)])
     corr = rolled @ f / denom
     p = int(np.argmax(corr))
     return float(corr[p]), p
@@ -184,6 +201,12 @@ def meter_lags(spec: MeterSpec) -> tuple[tuple[float, ...], tuple[float, ...]]:
 
 
 _METER_LAGS = {m.name: meter_lags(m) for m in METERS}
+_LAG_BINS = tuple(int(round(lag * BINS_PER_BEAT)) for lag in LAGS)
+
+
+def _mean(values: list[float]) -> float:
+    """``float(np.mean(values))`` without its per-call overhead (the same sum and division)."""
+    return float(np.add.reduce(np.array(values, dtype=np.float64)) / len(values))
 
 
 def estimate_meter(piece: Piece) -> MeterEstimate:
@@ -191,13 +214,13 @@ def estimate_meter(piece: Piece) -> MeterEstimate:
     acc = accent_function(piece)
     if len(acc) == 0 or not acc.any():
         return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-    r = {lag: _autocorr(acc, int(round(lag * BINS_PER_BEAT))) for lag in LAGS}
+    r = dict(zip(LAGS, _autocorrs(acc, _LAG_BINS)))
     scores: dict[str, tuple[float, int]] = {}
     for spec in METERS:
         strong, weak = _METER_LAGS[spec.name]
-        score = float(np.mean([r[lag] for lag in strong]))
+        score = _mean([r[lag] for lag in strong])
         if weak:
-            score -= WEAK_WEIGHT * float(np.mean([r[lag] for lag in weak]))
+            score -= WEAK_WEIGHT * _mean([r[lag] for lag in weak])
         scores[spec.name] = (score + spec.prior, 0)
     _resolve_alla_breve(piece, scores)
     ranked = sorted(scores, key=lambda k: -scores[k][0])

@@ -42,3 +42,12 @@ def shift_notes(notes: np.ndarray, semitones: int) -> tuple[np.ndarray, int]:
     p = np.where(low, p + 12 * ((-p + 11) // 12), p)
     out["pitch"] = p.astype(out["pitch"].dtype)
     return out, int(np.count_nonzero(high | low))
+
+
+def fold_count(notes: np.ndarray, semitones: int) -> int:
+    """How many notes ``shift_notes(notes, semitones)`` folds back into 0..127, without
+    building the shifted table (the transpose stage only reports the count)."""
+    if semitones == 0 or len(notes) == 0:
+        return 0
+    p = notes["pitch"][notes["channel"] != DRUM_CHANNEL].astype(np.int64) + int(semitones)
+    return int(np.count_nonzero((p > 127) | (p < 0)))

@@ -200,7 +200,10 @@ class Dedup(Stage):
             if len(facts[k]["shingles"]) >= min_sh:
                 index.add(k, facts[k]["signature"])
         new_reps = {k for k in rep_ids if k not in old}
-        cands = index.candidates(new_reps if reusable else None)
+        # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
+        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
+        codes = index.candidate_codes(new_reps if reusable else None)
+        cands = index.iter_sorted_pairs(codes)
         shingles = {k: facts[k]["shingles"] for k in rep_ids}
         verified = verify_pairs(cands, shingles, threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
         for a, b, sim in verified:
@@ -209,7 +212,7 @@ class Dedup(Stage):
             near_links.append([a, b, round(sim, 6)])
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
-                     f"{len(cands)} LSH candidate pairs, {len(verified)} verified links")
+                     f"{len(codes)} LSH candidate pairs, {len(verified)} verified links")
 
         # 3. clusters and kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]

@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 
 from ..analysis import key as keymod
-from ..analysis.transpose import DIRECTIONS, shift_notes, smallest_shift
+from ..analysis.transpose import DIRECTIONS, fold_count, shift_notes, smallest_shift
 from ..score import Piece, sort_notes
 from .base import FileContext, Option, Stage, StageResult, register
 from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
@@ -76,9 +76,9 @@ class Transpose(Stage):
         pc, mode, _ = reported_key(piece, est, bool(self.opts["trust_file_key"]))
         target = keymod.note_name_to_pc(self.opts["major_to" if mode == "major" else "minor_to"])
         shift = smallest_shift(pc, target, self.opts["direction"])
-        _, folded = shift_notes(piece.notes, shift)
+        folded = fold_count(piece.notes, shift)
         extra = augment_shifts(self.opts["augment"])
-        folded_aug = sum(shift_notes(piece.notes, shift + e)[1] for e in extra)
+        folded_aug = sum(fold_count(piece.notes, shift + e) for e in extra)
         values = {"transpose": shift, "transpose_folded": folded, "augment": extra,
                   "augment_folded": folded_aug}
         detail = f"{keymod.key_name(pc, mode)} shifted {shift:+d} semitones"
