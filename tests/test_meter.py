@@ -169,3 +169,24 @@ def test_empty_piece(chorale_works):
     assert metermod.grid_fraction(empty) == 1.0
     values = KeyMeter().process(empty, FileContext(empty)).values
     assert values["meter_source"] == "estimated"
+
+
+def test_a_long_silence_does_not_blow_up_the_accent_function():
+    # Found by the fuzzer (pipeline/fuzz.py): a valid 197-byte file, 1 tick per beat, with a note
+    # at tick 268,761,124 made the accent function ask for 24 GiB. Silence is now squeezed by
+    # whole common bars, which keeps every onset's position in every candidate bar.
+    from pipeline.analysis.meter import COMMON_BAR_BINS, _squeeze_gaps, accent_function
+    from pipeline.smf import decode
+    data = bytes.fromhex(
+        "4d546864000000060000000100014d54726b000000af00ff0302bacd82139f6a3c078f6a0c825d9f6c65529f5d257e"
+        "8f6c13229f0a0b2f8f5d2483108f0a3d8bdf519f5d6f349f627481668f5d6450cf6081019f2774298f6274ffffff7f"
+        "8f273d83e65d9f1a713c9f5a630e9f2f19019f4917748f5a64459f2748658f27181d9f1f670d8f2f46358f4941189f"
+        "08505f8f08518209ff0104504b0304228f1a7282538f1f3c6abf3e54848a79cf728200df428130ef5d3f81099f706e"
+        "81608f700102ff2f00")
+    piece = decode(data)
+    assert len(accent_function(piece)) < 100 * COMMON_BAR_BINS
+    bins = np.array([0, 12, 30, 10_000, 10_012, 5_000_000_000])
+    squeezed = _squeeze_gaps(bins)
+    assert ((squeezed - bins) % COMMON_BAR_BINS == 0).all()       # bar positions kept
+    assert (np.diff(squeezed)[:2] == np.diff(bins)[:2]).all()     # short gaps untouched
+    assert squeezed.max() < 10 * COMMON_BAR_BINS

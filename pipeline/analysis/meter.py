@@ -114,6 +114,25 @@ class MeterEstimate:
     phase_beats: float  # offset of the first downbeat from tick 0, in quarter-note beats
 
 
+def _squeeze_gaps(bins: np.ndarray) -> np.ndarray:
+    """Shorten silent stretches longer than two common bars by whole common bars.
+
+    The common bar is the least common multiple of every candidate bar length, so each onset
+    keeps its position in every candidate bar and the lags the method looks at (up to two bars)
+    see the same onsets; what is removed is silence. This bounds the accent function by the
+    number of onsets, not by the file's tick span (a valid 197-byte file with one note at tick
+    268 million would otherwise ask for gigabytes)."""
+    if len(bins) == 0:
+        return bins
+    order = np.argsort(bins, kind="stable")
+    b = bins[order]
+    gaps = np.diff(b, prepend=0)
+    excess = np.where(gaps > 2 * COMMON_BAR_BINS, (gaps - COMMON_BAR_BINS) // COMMON_BAR_BINS, 0)
+    out = np.empty_like(bins)
+    out[order] = b - np.cumsum(excess) * COMMON_BAR_BINS
+    return out
+
+
 def accent_function(piece: Piece) -> np.ndarray:
     """Accent strength per grid bin (1/12 quarter) of the pitched notes' onsets."""
     notes = piece.notes
@@ -121,7 +140,7 @@ def accent_function(piece: Piece) -> np.ndarray:
     if len(notes) == 0:
         return np.zeros(0)
     tpb = float(piece.ticks_per_beat)
-    bins = np.rint(notes["start"] / tpb * BINS_PER_BEAT).astype(np.int64)
+    bins = _squeeze_gaps(np.rint(notes["start"] / tpb * BINS_PER_BEAT).astype(np.int64))
     dur = np.minimum((notes["end"] - notes["start"]) / tpb, ACCENT_CAP_BEATS)
     acc = np.bincount(bins, weights=dur)
     # bass accent: the lowest note of each onset bin
@@ -145,6 +164,8 @@ def _template(spec: MeterSpec) -> np.ndarray:
 
 
 _TEMPLATES = {m.name: _template(m) for m in METERS}
+#: Least common multiple of all candidate bar lengths, in bins (see ``_squeeze_gaps``).
+COMMON_BAR_BINS = int(np.lcm.reduce([len(t) for t in _TEMPLATES.values()]))
 
 
 def _rolled(t: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
