@@ -219,10 +219,20 @@ def band_candidates(sig: "np.ndarray", bands: int) -> "np.ndarray":
     return np.stack((codes // n, codes % n), axis=1)
 
 
+#: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
+#: 0.9 gives 2-row bands at 0.2 with 128 permutations (0.93 at 0.2, above 0.99 from 0.26); on
+#: a 1,816-file generated corpus it found the same 455 links as 1-row bands (recall 0.99), 33
+#: times faster, and 1-row bands make the candidate count grow with the square of the corpus
+#: (a 100,000-file run ran out of memory).
+GROUP_RECALL = 0.9
+
+
 def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
-               shingles: Mapping[str, "np.ndarray"] | None = None, *, recall: float = 0.99,
-               margin_sigmas: float = 4.0) -> list[tuple[str, str, float]]:
+               shingles: Mapping[str, "np.ndarray"] | None = None, *, recall: float = GROUP_RECALL,
+               margin_sigmas: float = 4.0, only: "set[str] | None" = None) -> list[tuple[str, str, float]]:
     """All pairs at or above ``threshold`` similarity: ``(a, b, similarity)`` with ``a < b``.
+    With ``only``, just the pairs with at least one member in it (incremental reruns: the new
+    files against everything).
 
     Grouping must not miss pairs (a missed pair is a leak), so this is stricter than dedup's
     search: LSH bands chosen for ``recall`` at the threshold itself, then a vectorized MinHash
@@ -242,6 +252,11 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     pairs = band_candidates(sig, num_perm // lsh_rows(threshold, num_perm, recall))
     if not len(pairs):
         return []
+    if only is not None:
+        wanted = np.array([k in only for k in keys])
+        pairs = pairs[wanted[pairs[:, 0]] | wanted[pairs[:, 1]]]
+        if not len(pairs):
+            return []
     ia, ib = pairs[:, 0], pairs[:, 1]
     est = (sig[ia] == sig[ib]).mean(axis=1)
     # An excerpt pair scores containment c with Jaccard as low as c / (1 + 1/0.75 - c) (the

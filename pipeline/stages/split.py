@@ -27,7 +27,8 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..grouping import achieved_ratios, assign_groups, build_groups, group_by_key, near_links
+from ..grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups, group_by_key,
+                        near_links)
 from .base import CorpusState, Member, Option, Stage, StageResult, register
 
 _PART_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
@@ -190,7 +191,7 @@ class Split(Stage):
                     shingles[m.id] = np.asarray(art["shingles"], dtype=np.uint64)
         if threshold is not None and len(sigs) > 1:
             use_sh = shingles if len(shingles) == len(sigs) else None
-            links += [(a, b) for a, b, _ in near_links(sigs, threshold, use_sh)]
+            links += self._near_links(sigs, use_sh, state)
         ghosts: set[str] = set()
         dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
@@ -209,6 +210,25 @@ class Split(Stage):
                 if x != inside[0] and (x in here or x in ghosts):
                     links.append((inside[0], x))
         return links, ghosts
+
+    def _near_links(self, sigs: dict[str, np.ndarray], shingles: dict[str, np.ndarray] | None,
+                    state: CorpusState) -> list[tuple[str, str]]:
+        """Near-duplicate links at ``group_threshold``, incrementally: links among files seen by
+        the last run under the same signature settings are reused, and only pairs with a new
+        file are searched. The links are saved for the next run."""
+        threshold = self.opts["group_threshold"]
+        first = next(iter(sigs.values()))
+        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}"
+        prev = state.previous.get("links") or {}
+        fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
+        here = set(sigs)
+        known = set() if fresh else set(prev.get("members", [])) & here
+        reused = [] if fresh else [(a, b) for a, b in prev.get("links", []) if a in here and b in here]
+        new = here - known
+        found = near_links(sigs, threshold, shingles, only=new) if new else []
+        links = sorted(set(reused) | {(a, b) for a, b, _ in found})
+        state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
+        return links
 
     def _forced(self, members: list[Member]) -> list[list[str]]:
         forced: list[list[str]] = []
