@@ -321,4 +321,9 @@ def write_all(out_dir: Path, rows: list[dict], placed: Placed, summary: dict) ->
             p.unlink()
     for part, paths in sorted(placed.parts.items()):
         write_atomic(splits / f"{part}.txt", "".join(p + "\n" for p in sorted(paths)))
+    write_summary(out_dir, summary)
+
+
+def write_summary(out_dir: Path, summary: dict) -> None:
+    """Write summary.json (atomically)."""
     write_atomic(out_dir / "summary.json", json.dumps(summary, indent=2, sort_keys=True, default=_default) + "\n")
