@@ -1,0 +1,91 @@
+"""Smoke test of pipeline/bench.py on a tiny scale: the sections run, bench.json holds what the
+table reports, and the runs it times did the work they claim (no timing is asserted).
+
+Checks against something outside the bench: the synth truth file (which files a decoder must
+reject), the runner's own summary (a rerun with nothing changed computes nothing) and the
+determinism contract of DESIGN.md (1 worker and N workers write the same manifest).
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from pipeline import bench
+
+TINY = bench.Scale(small=12, large=0, peer_small=2, peer_large=0, mem=(10, 20), dedup_sizes=(),
+                   dedup_settings=False)
+
+
+@pytest.fixture(scope="module")
+def doc(tmp_path_factory: pytest.TempPathFactory) -> dict:
+    scratch = tmp_path_factory.mktemp("bench")
+    out = scratch / "bench.json"
+    result = bench.run_bench(["small", "peer", "rerun"], TINY, scratch, out, log=lambda s: None)
+    result["scratch"] = scratch
+    result["written"] = json.loads(out.read_text())
+    return result
+
+
+def test_json_matches_the_returned_results(doc: dict) -> None:
+    written = doc["written"]
+    assert written["table"] == doc["table"]
+    assert set(written["results"]) == {"small", "peer", "rerun"}
+    assert written["info"]["machine"]["cores"] >= 1
+    for row in written["targets"]:
+        assert isinstance(row["met"], bool)
+        assert row["gap"] == "" if row["met"] else row["gap"].startswith("missed")
+
+
+def test_small_section_times_complete_runs(doc: dict) -> None:
+    small = doc["results"]["small"]
+    files = small["corpus"]["files"]
+    assert files == TINY.small
+    for key in ("pipeline_1", "pipeline_all"):
+        run = small[key]
+        assert run["files"] == files and run["counts"]["computed"] > 0
+        assert run["wall_s"] > 0 and run["peak_rss_main_mb"] > 0
+    # the issue: a default run does not pay music21's import time
+    assert small["run_imports_music21"] is False
+    # DESIGN.md: byte-identical manifest for 1 worker and N workers
+    runs = doc["scratch"] / "runs" / "small"
+    assert (runs / "w1" / "manifest.jsonl").read_bytes() == (runs / "wall" / "manifest.jsonl").read_bytes()
+
+
+def test_decode_only_rejects_exactly_what_the_truth_says(doc: dict) -> None:
+    folder = doc["scratch"] / "corpora" / f"small_{TINY.small}"
+    truth = json.loads((folder / "truth.json").read_text())["files"]
+    # files the validate stage drops for a decoding reason (no_notes files decode fine)
+    undecodable = sum(1 for t in truth.values() if t["stage"] == "validate" and t["expect"] != "no_notes")
+    for key in ("decode_1", "decode_all"):
+        assert doc["results"]["small"][key]["decoded"] == len(truth) - undecodable
+
+
+def test_reruns_reuse_the_ledger(doc: dict) -> None:
+    r = doc["results"]["rerun"]
+    assert r["full"]["files"] == TINY.mem[0]
+    assert r["new_1pct"]["files"] == TINY.mem[0] + r["new_files"]
+    assert 0 < r["new_1pct"]["counts"]["computed"] <= r["new_files"]
+    assert r["unchanged"]["counts"]["computed"] == 0
+    assert r["unchanged"]["counts"]["reused"] == r["unchanged"]["counts"]["contents"]
+
+
+def test_peer_accounts_for_every_file(doc: dict) -> None:
+    peer = doc["results"]["peer"]["small"]["peer"]
+    assert peer["files"] == TINY.peer_small
+    assert peer["invalid"] + peer["duplicates"] + sum(peer["parts"].values()) == peer["files"]
+    assert doc["results"]["peer"]["small"]["ours_same_files_all"]["files"] == TINY.peer_small
+
+
+def test_targets_are_judged_in_the_right_direction() -> None:
+    rows = bench.check_targets({"small": {"files_per_s_all": 500.0}, "rerun": {"unchanged_fraction": 0.01}})
+    by = {r["key"]: r for r in rows}
+    assert not by["small.files_per_s_all"]["met"] and "2.0x short" in by["small.files_per_s_all"]["gap"]
+    assert by["rerun.unchanged_fraction"]["met"]
+
+
+def test_unknown_section_is_a_usage_error(tmp_path: Path) -> None:
+    from pipeline.errors import UsageError
+    with pytest.raises(UsageError, match="unknown bench section"):
+        bench.run_bench(["smal"], TINY, tmp_path, None)
