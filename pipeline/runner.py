@@ -61,6 +61,7 @@ class StagePlan:
     kind: str
     compute: bool
     cached: dict | None = None  # cached per-file verdict when not computing
+    fingerprint: str = ""       # the stage's options fingerprint, computed once in the main process
 
 
 @dataclass
@@ -221,7 +222,7 @@ def _stage(plan: StagePlan) -> Stage:
     """Build (once per worker process) the stage object for a plan entry."""
     from .stages import stage_class
     from .stages.base import options_fingerprint
-    key = (plan.name, options_fingerprint(plan.name, 0, plan.options))
+    key = (plan.name, plan.fingerprint or options_fingerprint(plan.name, 0, plan.options))
     st = _STAGE_CACHE.get(key)
     if st is None:
         st = stage_class(plan.name)(plan.options)
@@ -339,6 +340,7 @@ class Runner:
         self.reassign = reassign
         self.retry_failed = retry_failed
         self.stages: list[Stage] = [sc.build() for sc in config.stages]
+        self._fps = {s.name: s.fingerprint for s in self.stages}
         self.output_fp = outputs.output_fingerprint(self.stages)
 
     # progress -----------------------------------------------------------------------------
@@ -503,7 +505,7 @@ class Runner:
                 compute = sha not in art_keys[st.name]
                 key = (st.name, compute)
                 if key not in common:
-                    common[key] = StagePlan(st.name, st.opts, st.kind, compute)
+                    common[key] = StagePlan(st.name, st.opts, st.kind, compute, fingerprint=self._fps[st.name])
                 plans.append(common[key])
                 if compute:
                     need = True
@@ -516,11 +518,11 @@ class Runner:
             if cached is None:
                 key = (st.name, True)
                 if key not in common:
-                    common[key] = StagePlan(st.name, st.opts, st.kind, True)
+                    common[key] = StagePlan(st.name, st.opts, st.kind, True, fingerprint=self._fps[st.name])
                 plans.append(common[key])
                 uncertain = need = True
                 continue
-            plans.append(StagePlan(st.name, st.opts, st.kind, False, cached))
+            plans.append(StagePlan(st.name, st.opts, st.kind, False, cached, self._fps[st.name]))
             if not cached["kept"] and not uncertain:
                 fate_known_dropped = True
                 break
@@ -539,7 +541,8 @@ class Runner:
         return memo.setdefault(stage, {})
 
     def _render_task(self, sha: str, rel: str, path: Path, cache: dict) -> FileTask:
-        plans = [StagePlan(st.name, st.opts, st.kind, False, cache.get(st.name, {}).get(sha)) for st in self.stages]
+        plans = [StagePlan(st.name, st.opts, st.kind, False, cache.get(st.name, {}).get(sha), self._fps[st.name])
+                 for st in self.stages]
         return FileTask(sha, str(path), rel, plans, str(self.config.output / outputs.STAGING), self.output_fp)
 
     def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict,
@@ -548,7 +551,11 @@ class Runner:
             return
         if staged is None:
             staged = self._staged = {}
-        bar = self._bar("decode", len(tasks))
+        # one bar per per-file stage (files/s): validate's counts every file decoded, the others
+        # the files whose result for that stage came back (a dropped file stops early)
+        file_stages = [s.name for s in self.stages if s.kind == "file"]
+        bar = self._bar(file_stages[0], len(tasks))
+        stage_bars = {name: self._bar(name, len(tasks), i) for i, name in enumerate(file_stages) if i}
         pending_r, pending_a = [], []
         fps = {s.name: s.fingerprint for s in self.stages}
         last = time.monotonic()
@@ -567,12 +574,17 @@ class Runner:
                 if oc.staged:
                     staged[oc.sha256] = oc.staged
                 bar.update(1)
+                for name in oc.results:
+                    if name in stage_bars:
+                        stage_bars[name].update(1)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
                     self._flush(ledger, pending_r, pending_a)
                     last = time.monotonic()
         finally:
             self._flush(ledger, pending_r, pending_a)
             bar.close()
+            for b in stage_bars.values():
+                b.close()
 
     @staticmethod
     def _flush(ledger: Ledger, results: list, artifacts: list) -> None:
