@@ -107,6 +107,11 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("midisift: interrupted; rerun the same command to continue where it stopped", file=sys.stderr)
         return 1
+    except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
+        import os
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover
