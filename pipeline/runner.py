@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from . import outputs
+from . import __version__, outputs
 from .config import Config
 from .errors import LedgerError, MidisiftError, UsageError
 from .executor import Fault, Limits, run_tasks
@@ -450,13 +450,15 @@ class Runner:
     # the nothing-changed shortcut ------------------------------------------------------------
     def _state_key(self, files: list[SourceFile]) -> str:
         """Hash of everything a run's outputs depend on: every (source, sha256), every stage's
-        options fingerprint (which includes its version) and the output fingerprint."""
+        options fingerprint (which includes its version), the output fingerprint and the
+        package version."""
         h = hashlib.sha256()
         for f in files:
             h.update(f"{f.rel}\0{f.sha256}\n".encode("utf-8", "surrogateescape"))
         for st in self.stages:
             h.update(f"{st.name}:{st.fingerprint}\n".encode())
         h.update(self.output_fp.encode())
+        h.update(f"midisift {__version__}".encode())
         return h.hexdigest()
 
     def _unchanged(self, ledger: Ledger, state_key: str) -> dict | None:
