@@ -9,6 +9,8 @@ import random
 import mido
 import numpy as np
 
+from pipeline.fuzz import reference_rows
+
 
 def parse_hexdump(hexdump: str) -> bytes:
     """Bytes from an inline commented hexdump (mido's test style: '4d 54 68 64  # MThd')."""
@@ -90,35 +92,12 @@ def mido_rows(data: bytes) -> list[tuple]:
     """Note rows read with mido (reference decoder), using the documented policy of
     pipeline.smf: program at note-on, stacked same-key notes closed together by the next
     note-off except those started at that tick, zero-length notes dropped, hanging notes
-    closed at the track's last event tick."""
-    mid = mido.MidiFile(file=io.BytesIO(data))
-    rows = []
-    for ti, track in enumerate(mid.tracks):
-        tick = 0
-        progs = [0] * 16
-        opened: dict[tuple[int, int], list] = {}
-        for msg in track:
-            tick += msg.time
-            if msg.type == "program_change":
-                progs[msg.channel] = msg.program
-            elif msg.type == "note_on" and msg.velocity > 0:
-                opened.setdefault((msg.channel, msg.note), []).append(
-                    (tick, msg.velocity, progs[msg.channel]))
-            elif msg.type in ("note_on", "note_off"):
-                cur = opened.pop((msg.channel, msg.note), None)
-                if not cur:
-                    continue
-                closed = [c for c in cur if c[0] != tick]
-                keep = [c for c in cur if c[0] == tick]
-                for s, v, g in closed:
-                    rows.append((s, tick, msg.note, v, msg.channel, g, ti))
-                if closed and keep:
-                    opened[(msg.channel, msg.note)] = keep
-        for (ch, pitch), cur in opened.items():
-            for s, v, g in cur:
-                if s != tick:
-                    rows.append((s, tick, pitch, v, ch, g, ti))
-    return sorted(rows)
+    closed at the track's last event tick. One implementation, shared with the fuzzer
+    (``pipeline.fuzz.reference_rows``); here mido's own error is raised for a file it cannot read."""
+    rows = reference_rows(data)
+    if rows is None:
+        mido.MidiFile(file=io.BytesIO(data))  # raises mido's error
+    return rows
 
 
 def pretty_midi_rows(data: bytes) -> list[tuple]:
