@@ -26,7 +26,7 @@ __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 SMPTE_TICKS_PER_BEAT = 480
 
 
-def _vlq(value: int) -> bytes:
+def vlq(value: int) -> bytes:
     """A variable-length quantity (SMF 1.0: 7 bits per byte, high bit = more follow)."""
     if value < 0 or value > 0x0FFFFFFF:
         raise ValueError(f"a delta time must be 0..0x0FFFFFFF, got {value}")
@@ -47,7 +47,7 @@ def _track(events: list[tuple[int, bytes]]) -> bytes:
     out = bytearray()
     last = 0
     for tick, msg in events:
-        out += _vlq(tick - last)
+        out += vlq(tick - last)
         last = tick
         out += msg
     out += b"\x00\xff\x2f\x00"
@@ -55,7 +55,7 @@ def _track(events: list[tuple[int, bytes]]) -> bytes:
 
 
 def _meta(kind: int, payload: bytes) -> bytes:
-    return bytes((0xFF, kind)) + _vlq(len(payload)) + payload
+    return bytes((0xFF, kind)) + vlq(len(payload)) + payload
 
 
 def encode(piece: Piece, notes: np.ndarray | None = None) -> bytes:

@@ -37,6 +37,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Protocol
 
+from .encode import vlq
+
 #: Reason codes the validate stage may give (the decoder's DecodeError codes + its own).
 VALIDATE_REASONS = frozenset({"not_midi", "truncated", "bad_chunk", "bad_event", "unsupported_format",
                               "too_large", "no_notes", "needs_repair"})
@@ -91,15 +93,6 @@ class HypothesisDraw:
 
 # ---------------------------------------------------------------------------------------------
 # valid files
-
-def vlq(n: int) -> bytes:
-    """SMF variable-length quantity (SMF 1.0, "Conventions"): 7 bits per byte, high bit = more."""
-    out = [n & 0x7F]
-    n >>= 7
-    while n:
-        out.append(0x80 | (n & 0x7F))
-        n >>= 7
-    return bytes(reversed(out))
 
 
 @dataclass

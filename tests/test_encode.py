@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from fixtures_midi import bach_chorale_midi, mido_rows, parse_hexdump, piece_rows, random_midi
-from pipeline.encode import _vlq, encode
+from pipeline.encode import encode, vlq
 from pipeline.outputs import write_atomic
 from pipeline.errors import OutputError
 from pipeline.smf import decode
@@ -18,12 +18,12 @@ from test_smf import VLQ_EXAMPLES
 @pytest.mark.parametrize("value,encoded", VLQ_EXAMPLES)
 def test_vlq_spec_examples(value, encoded):
     # Source: SMF 1.0 spec, variable-length quantity table.
-    assert _vlq(value) == bytes.fromhex(encoded)
+    assert vlq(value) == bytes.fromhex(encoded)
 
 
 def test_vlq_out_of_range():
     with pytest.raises(ValueError, match="0..0x0FFFFFFF"):
-        _vlq(0x10000000)
+        vlq(0x10000000)
 
 
 def test_spec_example_encodes_to_spec_layout():
