@@ -7,6 +7,7 @@ import random
 import numpy as np
 import pytest
 
+from pipeline.config import validate_stage_options
 from pipeline.errors import ConfigError
 from pipeline.stages.base import CorpusState, FileContext, Member
 from pipeline.stages.dedup import KEEP_POLICIES, Dedup
@@ -202,13 +203,14 @@ def test_keep_policies_are_deterministic(corpus):
 
 @pytest.mark.parametrize("opts,match", [
     ({"bands": 30}, r"bands \(30\) must divide num_perm \(128\)"),
-    ({"threshold": 1.5}, r"threshold must be in \(0, 1\], got 1.5"),
-    ({"keep_policy": "biggest"}, r"keep_policy must be one of"),
-    ({"num_perm": 4}, r"num_perm must be between 8 and 1024, got 4"),
+    ({"threshold": 1.5}, r"threshold: must be in \(0, 1\] \(got 1.5\)"),
+    ({"keep_policy": "biggest"}, r"keep_policy: must be one of"),
+    ({"num_perm": 4}, r"num_perm: must be between 8 and 1024 \(got 4\)"),
 ])
 def test_bad_options_say_the_rule_and_value(opts, match):
+    # the config loader checks every option of the table and then the stage's check_options
     with pytest.raises(ConfigError, match=match):
-        Dedup(opts)
+        validate_stage_options("dedup", opts, "stages[3].dedup")
 
 
 def test_prepare_returns_compact_plain_data(corpus):

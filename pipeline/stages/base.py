@@ -212,6 +212,12 @@ def unit_interval(value: float) -> str | None:
     return None if 0 < value <= 1 else "must be in (0, 1]"
 
 
+def in_range(lo: float, hi: float) -> Callable[[Any], str | None]:
+    def check(value: Any) -> str | None:
+        return None if lo <= value <= hi else f"must be between {lo} and {hi}"
+    return check
+
+
 def one_of(*choices: Any) -> Callable[[Any], str | None]:
     def check(value: Any) -> str | None:
         return None if value in choices else f"must be one of {', '.join(map(repr, choices))}"

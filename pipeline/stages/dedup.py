@@ -20,11 +20,11 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import ShingleSpec, duration_beats
-from ..errors import ConfigError
 from ..score import Piece
 from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, signature_of,
                           verify_pairs)
-from .base import CorpusState, FileContext, Member, Option, Stage, StageResult, options_fingerprint, register
+from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
+                   options_fingerprint, positive, register, unit_interval)
 
 
 def _key_most_notes(m: dict) -> tuple:
@@ -65,28 +65,8 @@ DEFAULT_BANDS = 64
 DEFAULT_NGRAM = 4
 
 
-def _in_unit(v: Any) -> str | None:
-    return None if 0.0 < float(v) <= 1.0 else f"must be in (0, 1], got {v}"
-
-
-def _num_perm_ok(v: Any) -> str | None:
-    return None if 8 <= int(v) <= 1024 else f"must be between 8 and 1024, got {v}"
-
-
-def _positive(v: Any) -> str | None:
-    return None if int(v) >= 1 else f"must be a positive integer, got {v}"
-
-
-def _ngram_ok(v: Any) -> str | None:
-    return None if 1 <= int(v) <= 16 else f"must be between 1 and 16 tokens, got {v}"
-
-
-def _policy_ok(v: Any) -> str | None:
-    return None if v in KEEP_POLICIES else f"must be one of {sorted(KEEP_POLICIES)}, got {v!r}"
-
-
-def _ratio_ok(v: Any) -> str | None:
-    return None if 0.0 < float(v) <= 1.0 else f"must be in (0, 1] (1 disables containment), got {v}"
+def _containment_ratio(v: Any) -> str | None:
+    return None if 0.0 < float(v) <= 1.0 else "must be in (0, 1] (1 disables containment)"
 
 
 #: Options that change links (a change invalidates the links stored by the previous run).
@@ -103,35 +83,30 @@ class Dedup(Stage):
     options = (
         Option("threshold", float, DEFAULT_THRESHOLD,
                "Similarity (Jaccard, or containment for excerpts) at or above which two files are "
-               "linked as near-duplicates.", _in_unit),
-        Option("num_perm", int, DEFAULT_NUM_PERM, "MinHash signature length.", _num_perm_ok),
+               "linked as near-duplicates.", unit_interval),
+        Option("num_perm", int, DEFAULT_NUM_PERM, "MinHash signature length.", in_range(8, 1024)),
         Option("bands", int, DEFAULT_BANDS,
-               "LSH bands; must divide num_perm (rows per band = num_perm / bands).", _positive),
-        Option("ngram", int, DEFAULT_NGRAM, "Melody tokens (interval, onset gap) per shingle.", _ngram_ok),
-        Option("grid", int, ShingleSpec.grid, "Onset grid steps per beat for shingles.", _positive),
+               "LSH bands; must divide num_perm (rows per band = num_perm / bands).", positive),
+        Option("ngram", int, DEFAULT_NGRAM, "Melody tokens (interval, onset gap) per shingle.", in_range(1, 16)),
+        Option("grid", int, ShingleSpec.grid, "Onset grid steps per beat for shingles.", positive),
         Option("seed", int, 1, "MinHash permutation seed.", None),
         Option("min_size_ratio", float, 0.75,
                "Containment (for excerpts) is used only when the smaller shingle set has at least "
-               "this fraction of the larger one's size; 1 disables it.", _ratio_ok),
+               "this fraction of the larger one's size; 1 disables it.", _containment_ratio),
         Option("min_shingles", int, 16,
                "Files with fewer distinct shingles are only exact-deduplicated: such short sets "
-               "cannot tell a copy from a shared figure (a scale, an arpeggio).", _positive),
+               "cannot tell a copy from a shared figure (a scale, an arpeggio).", positive),
         Option("keep_policy", str, "most_notes",
                "Which cluster member is kept: " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
-               _policy_ok),
+               one_of(*KEEP_POLICIES)),
         Option("displace_kept", bool, False,
                "On a rerun, let a newcomer replace a member kept by the previous run.", None),
     )
 
-    def __init__(self, opts: dict[str, Any] | None = None):
-        super().__init__(opts)
-        for opt in self.options:
-            err = opt.check(self.opts[opt.name]) if opt.check else None
-            if err:
-                raise ConfigError(f"{opt.name} {err}", location=f"dedup.{opt.name}")
-        err = check_banding(int(self.opts["num_perm"]), int(self.opts["bands"]))
-        if err:
-            raise ConfigError(err, location="dedup.bands")
+    @classmethod
+    def check_options(cls, opts: dict[str, Any]) -> str | None:
+        """The rule between options (the config loader checks each option on its own)."""
+        return check_banding(int(opts["num_perm"]), int(opts["bands"]))
 
     # -- per file ---------------------------------------------------------------------------
     def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
