@@ -697,14 +697,12 @@ class Walk:
         return self.rep.get(sha) != rel
 
     def trail_of(self, rel: str, sha: str) -> list:
+        """The trail of one source: its content's, cut at dedup for a byte-identical copy."""
         trail = list(self.trails.get(sha, []))
         if self.is_byte_copy(rel, sha) and self.byte_copy_stage:
-            cut = [s for s in trail if s["stage"] != self.byte_copy_stage]
             idx = next((i for i, s in enumerate(trail) if s["stage"] == self.byte_copy_stage), None)
             if idx is not None:
-                cut = trail[:idx]
-                cut.append(byte_copy_result(self.rep[sha], sha, trail[idx]))
-            trail = cut
+                trail = trail[:idx] + [byte_copy_result(self.rep[sha], sha, trail[idx])]
         return trail
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
