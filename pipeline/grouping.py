@@ -186,37 +186,37 @@ def lsh_rows(threshold: float, num_perm: int, recall: float = 0.99) -> int:
     return best
 
 
-def band_candidates(sig: "np.ndarray", bands: int) -> "np.ndarray":
-    """Index pairs ``(i, j)``, ``i < j``, sharing at least one band: an ``(M, 2)`` int64 array.
+def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None) -> "np.ndarray":
+    """Index pairs ``(i, j)``, ``i < j``, sharing at least one band: an ``(M, 2)`` int64 array,
+    sorted. With ``only`` (a boolean mask over the rows), just the pairs with at least one
+    row in it (incremental reruns pair the new files against everything, not all with all).
 
-    Vectorized over all bands at once: rows are sorted by (band, band key), and equal runs are
-    paired by offsets 1, 2, ... up to the longest run (all pairs of every run). Empty signatures
-    (no shingles) never pair.
+    One band at a time (``pipeline.similarity._band_pairs``), merged every few bands: memory
+    stays near the number of distinct pairs instead of rows x bands x run length (a
+    100,000-file run held several GB in the all-bands-at-once form). Empty signatures (no
+    shingles) never pair.
     """
     import numpy as np
 
-    from .similarity import band_keys, is_empty
+    from .similarity import _U32_MAX, _band_pairs, band_keys
 
     n = len(sig)
-    live = np.flatnonzero([not is_empty(row) for row in sig])
+    live = np.flatnonzero(~np.all(np.asarray(sig) == _U32_MAX, axis=1)) if n else np.zeros(0, np.int64)
     if len(live) < 2:
         return np.zeros((0, 2), np.int64)
-    keys = band_keys(sig[live], bands)                         # (L, bands)
-    band = np.repeat(np.arange(bands)[None, :], len(live), axis=0).ravel()
-    flat, who = keys.ravel(), np.repeat(live, bands)
-    order = np.lexsort((who, flat, band))
-    fb, fk, fw = band[order], flat[order], who[order]
-    adjacent = (fb[1:] == fb[:-1]) & (fk[1:] == fk[:-1])
-    same, found, d = adjacent, [], 1
-    while same.any():   # same[k]: rows k and k + d lie in one run
-        i = np.flatnonzero(same)
-        found.append(fw[i] * n + fw[i + d])
-        same = same[:-1] & adjacent[d:]
-        d += 1
-    if not found:
+    is_new = np.ones(len(live), dtype=bool) if only is None else np.asarray(only, dtype=bool)[live]
+    if not is_new.any():
         return np.zeros((0, 2), np.int64)
-    codes = np.unique(np.concatenate(found))
-    return np.stack((codes // n, codes % n), axis=1)
+    keys = band_keys(sig[live], bands)                         # (L, bands)
+    m = len(live)
+    codes = np.zeros(0, dtype=np.int64)
+    found: list = []
+    for band in range(bands):
+        found.append(_band_pairs(keys[:, band], is_new))
+        if len(found) == 8 or band == bands - 1:
+            codes = np.unique(np.concatenate([codes, *found]))
+            found = []
+    return np.stack((live[codes // m], live[codes % m]), axis=1).astype(np.int64)
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
@@ -249,14 +249,10 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
         return []
     sig = np.vstack([np.asarray(signatures[k], dtype=np.uint32) for k in keys])
     num_perm = sig.shape[1]
-    pairs = band_candidates(sig, num_perm // lsh_rows(threshold, num_perm, recall))
+    wanted = None if only is None else np.array([k in only for k in keys])
+    pairs = band_candidates(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)
     if not len(pairs):
         return []
-    if only is not None:
-        wanted = np.array([k in only for k in keys])
-        pairs = pairs[wanted[pairs[:, 0]] | wanted[pairs[:, 1]]]
-        if not len(pairs):
-            return []
     ia, ib = pairs[:, 0], pairs[:, 1]
     est = (sig[ia] == sig[ib]).mean(axis=1)
     # An excerpt pair scores containment c with Jaccard as low as c / (1 + 1/0.75 - c) (the

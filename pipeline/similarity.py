@@ -223,8 +223,15 @@ class LSHIndex:
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
         keys = band_keys(np.vstack(self._sigs), self.bands)
-        found = [_band_pairs(keys[:, band], is_new) for band in range(self.bands)]
-        return np.unique(np.concatenate(found)) if found else np.zeros(0, dtype=np.int64)
+        # memory: merged every 8 bands, so a pair found in many bands is held about once
+        codes = np.zeros(0, dtype=np.int64)
+        found: list[np.ndarray] = []
+        for band in range(self.bands):
+            found.append(_band_pairs(keys[:, band], is_new))
+            if len(found) == 8 or band == self.bands - 1:
+                codes = np.unique(np.concatenate([codes, *found]))
+                found = []
+        return codes
 
     def iter_sorted_pairs(self, codes: np.ndarray) -> Iterator[tuple[str, str]]:
         """``candidates`` lazily, in the same order, when the ids were added in sorted order
@@ -248,6 +255,16 @@ def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
     sc = col[order]
     starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
     sizes = np.diff(np.append(starts, n))
+    if not is_new.all():
+        # incremental: only buckets holding a new row can give a wanted pair; drop the others
+        # before pairing (a rerun with 1% new files then pairs ~1% of the buckets)
+        wanted = np.maximum.reduceat(is_new[order].astype(np.int8), starts).astype(bool) & (sizes > 1)
+        if not wanted.any():
+            return np.zeros(0, dtype=np.int64)
+        rows = np.repeat(wanted, sizes)
+        order, sc = order[rows], sc[rows]
+        sizes = sizes[wanted]
+        starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
     out: list[np.ndarray] = []
     for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
         same = sc[:-d] == sc[d:]

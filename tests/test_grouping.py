@@ -188,17 +188,34 @@ def test_near_links_finds_every_pair_above_threshold_and_no_other():
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1))
-def test_band_candidates_equal_lsh_index(n, bands, seed):
-    """The vectorized candidate search equals pipeline.similarity.LSHIndex's per-bucket loop,
-    on signatures with small value ranges (many shared bands, runs longer than two)."""
-    from pipeline.similarity import LSHIndex
+@given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1), st.booleans())
+def test_band_candidates_equal_brute_force(n, bands, seed, incremental):
+    """The banded candidate search equals the definition of LSH banding (Mining of Massive
+    Datasets, ch. 3: a pair is a candidate when any band of its two signatures is equal),
+    checked pair by pair on signatures with small value ranges (many shared bands, runs longer
+    than two, some empty signatures); with ``only``, the pairs touching a marked row. The
+    per-file LSHIndex must give the same pairs."""
+    from pipeline.similarity import LSHIndex, _U32_MAX
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 32), dtype=np.uint32)
+    sig[rng.random(n) < 0.1] = _U32_MAX  # empty shingle sets never pair
+    only = rng.random(n) < 0.2 if incremental else None
+    rows = 32 // bands
+    want = []
+    for i in range(n):
+        for j in range(i + 1, n):
+            if (sig[i] == _U32_MAX).all() or (sig[j] == _U32_MAX).all():
+                continue
+            if only is not None and not (only[i] or only[j]):
+                continue
+            if any((sig[i, b * rows:(b + 1) * rows] == sig[j, b * rows:(b + 1) * rows]).all()
+                   for b in range(bands)):
+                want.append((i, j))
+    assert [tuple(p) for p in band_candidates(sig, bands, only).tolist()] == want
     keys = [f"{i:03d}" for i in range(n)]
     index = LSHIndex(32, bands)
     for k, row in zip(keys, sig):
         index.add(k, row)
-    got = sorted((keys[i], keys[j]) for i, j in band_candidates(sig, bands).tolist())
-    assert got == index.candidates()
+    new = None if only is None else {keys[i] for i in range(n) if only[i]}
+    assert index.candidates(new) == [(keys[i], keys[j]) for i, j in want]
