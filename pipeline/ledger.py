@@ -21,7 +21,7 @@ import json
 import sqlite3
 import time
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
 
@@ -117,14 +117,27 @@ class Ledger:
         self.db.executemany("DELETE FROM sources WHERE path=?", ((p,) for p in paths))
 
     # -- per-file results ------------------------------------------------------------------
-    def results_for(self, stage: str, fingerprint: str) -> dict[str, dict]:
-        """sha256 -> result dict (kept, reason, detail, values, thresholds) of one stage."""
-        out = {}
+    def results_for(self, stage: str, fingerprint: str,
+                    make: Callable[[bool, str | None, str, dict, dict], Any] | None = None) -> dict[str, Any]:
+        """sha256 -> result dict (kept, reason, detail, values, thresholds) of one stage, or
+        what ``make(kept, reason, detail, values, thresholds)`` builds of each row (the runner
+        keeps compact records: no dict per row is built first)."""
+        out: dict[str, Any] = {}
+        loads = json.loads
+        if make is None:
+            def make(kept, reason, detail, values, thresholds):  # noqa: E306
+                return {"kept": kept, "reason": reason, "detail": detail, "values": values,
+                        "thresholds": thresholds}
+        limits: dict[str, dict] = {}  # a stage's thresholds come from its options: few distinct texts
         for sha, kept, reason, detail, vals, thr in self.db.execute(
                 "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?",
                 (stage, fingerprint)):
-            out[sha] = {"kept": bool(kept), "reason": reason, "detail": detail,
-                        "values": json.loads(vals), "thresholds": json.loads(thr)}
+            t = limits.get(thr)
+            if t is None:
+                t = loads(thr)
+                if len(limits) < 256:
+                    limits[thr] = t
+            out[sha] = make(bool(kept), reason, detail, loads(vals), t)
         return out
 
     def put_results(self, rows: Iterable[tuple[str, str, str, dict]]) -> None:
@@ -171,9 +184,12 @@ class Ledger:
         self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, _dumps(v)) for k, v in values.items()))
 
     # -- decisions (explain) -------------------------------------------------------------------
-    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, list]]) -> None:
-        """Replace the trails with this run's: rows of (source, sha256, status, trail)."""
-        self.db.execute("DELETE FROM decisions")
+    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, list]], *, replace: bool = True) -> None:
+        """Replace the trails with this run's: rows of (source, sha256, status, trail). With
+        ``replace=False`` the rows are added to those already written in this transaction (a
+        run writes its trails in chunks while the manifest streams past)."""
+        if replace:
+            self.db.execute("DELETE FROM decisions")
         self.db.executemany("INSERT INTO decisions VALUES (?,?,?,?)",
                             ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
 
@@ -278,8 +294,30 @@ def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
 def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:
     if dtype is None:
         return json.loads(data)
-    arr = np.frombuffer(data, dtype=np.dtype(dtype))
-    return arr.reshape(json.loads(shape))
+    arr = np.frombuffer(data, dtype=_dtype(dtype))
+    dims = _shape(shape)
+    # memory: a 1-D array is returned as read, not as a second (reshaped) view of it
+    return arr if len(dims) == 1 and dims[0] == len(arr) else arr.reshape(dims)
+
+
+_DTYPES: dict[str, np.dtype] = {}
+_SHAPES: dict[str, tuple[int, ...]] = {}
+
+
+def _dtype(text: str) -> np.dtype:
+    d = _DTYPES.get(text)
+    if d is None:
+        d = _DTYPES[text] = np.dtype(text)
+    return d
+
+
+def _shape(text: str | None) -> tuple[int, ...]:
+    dims = _SHAPES.get(text or "")
+    if dims is None:
+        dims = tuple(json.loads(text)) if text else ()
+        if len(_SHAPES) < 4096:
+            _SHAPES[text or ""] = dims
+    return dims
 
 
 def iter_chunks(items: list, size: int) -> Iterator[list]:

@@ -20,7 +20,7 @@ import shutil
 import tempfile
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
 
@@ -38,18 +38,31 @@ CONTRACT_FIELDS = (
 )
 
 
-def write_atomic(path: Path, data: bytes | str, *, fsync: bool = True) -> None:
+def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool = True) -> None:
     """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
-    see the old file or the new one, never a part. ``fsync=False`` for staged files, which the
-    run flushes with one ``os.sync()`` before it records them."""
+    see the old file or the new one, never a part. ``data`` may be an iterable of text chunks
+    (streamed: the manifest of a million files is never one string in memory). ``fsync=False``
+    for staged files, which the run flushes with one ``os.sync()`` before it records them."""
     path = Path(path)
-    raw = data.encode("utf-8") if isinstance(data, str) else data
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
         try:
             with os.fdopen(fd, "wb") as fh:
-                fh.write(raw)
+                if isinstance(data, (bytes, bytearray, memoryview)):
+                    fh.write(data)
+                elif isinstance(data, str):
+                    fh.write(data.encode("utf-8"))
+                else:
+                    buf: list[str] = []
+                    size = 0
+                    for chunk in data:
+                        buf.append(chunk)
+                        size += len(chunk)
+                        if size >= 1 << 20:
+                            fh.write("".join(buf).encode("utf-8"))
+                            buf, size = [], 0
+                    fh.write("".join(buf).encode("utf-8"))
                 if fsync:
                     fh.flush()
                     os.fsync(fh.fileno())
@@ -108,8 +121,10 @@ def shift_key_signatures(keys: Any, semitones: int) -> Any:
 def existing_outputs(ledger: Any, out_dir: Path, fp: str) -> dict[str, list[str]]:
     """sha256 -> output paths (relative to OUTPUT) already on disk with this fingerprint."""
     found: dict[str, list[str]] = {}
+    base = str(out_dir)
+    isfile = os.path.isfile
     for rel, (sha, ofp) in ledger.outputs().items():
-        if ofp == fp and (out_dir / rel).is_file():
+        if ofp == fp and isfile(os.path.join(base, rel)):
             found.setdefault(sha, []).append(rel)
     return found
 
@@ -124,7 +139,7 @@ class Placed:
 
 
 def _suffix_of(rel: str) -> str:
-    name = Path(rel).name
+    name = rel.rsplit("/", 1)[-1]
     return name[16:-4]
 
 
@@ -134,30 +149,32 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     placed = Placed()
     rows = []
     from_staging = False
-    made: set[Path] = set()
+    made: set[str] = set()
+    base = str(out_dir)  # speed: plain strings, no Path object per file
     for sha in rep:
         if walk.status.get(sha) is not None:
             continue
-        part = walk.values[sha].get("split") or DEFAULT_PART
-        sources: dict[str, Path] = {}
+        part = walk.value_of(sha, "split") or DEFAULT_PART
+        sources: dict[str, str] = {}
         for rel in existing.get(sha, []):
-            sources[_suffix_of(rel)] = out_dir / rel
+            sources[_suffix_of(rel)] = os.path.join(base, rel)
         for suffix, staged in walk.staged.get(sha, []):
             if suffix not in sources:
-                sources[suffix] = Path(staged)
+                sources[suffix] = str(staged)
         paths = []
         for suffix in sorted(sources, key=lambda s: (s != "", s)):
             rel = f"midi/{part}/{sha[:16]}{suffix}.mid"
-            dst = out_dir / rel
+            dst = os.path.join(base, rel)
             src = sources[suffix]
             if src != dst:
                 try:
-                    if dst.parent not in made:
-                        dst.parent.mkdir(parents=True, exist_ok=True)
-                        made.add(dst.parent)
+                    parent = os.path.dirname(dst)
+                    if parent not in made:
+                        os.makedirs(parent, exist_ok=True)
+                        made.add(parent)
                     os.replace(src, dst)
                 except OSError as e:
-                    raise OutputError(f"cannot move a normalized file into place ({e.strerror})", file=str(dst)) from None
+                    raise OutputError(f"cannot move a normalized file into place ({e.strerror})", file=dst) from None
                 from_staging = True
             paths.append(rel)
             rows.append((rel, sha, fp))
@@ -209,8 +226,8 @@ def _kept_detail(trail: list, part: str | None) -> str:
     return f"kept: passed {stages}{where}"
 
 
-def manifest_row(f: Any, walk: Any, placed: Placed) -> dict[str, Any]:
-    """The manifest object of one source file."""
+def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], list]:
+    """The manifest object of one source file, and the trail it was made from."""
     sha = f.sha256
     trail = walk.trail_of(f.rel, sha)
     final = walk.final(f.rel, sha)
@@ -234,44 +251,57 @@ def manifest_row(f: Any, walk: Any, placed: Placed) -> dict[str, Any]:
                    split=None, output=None)
     for k in sorted(extras):
         row[k] = extras[k]
-    return row
+    return row, trail
 
 
-def build_manifest(files: list, rep: dict, walk: Any, placed: Placed, stages: list
-                   ) -> tuple[list[dict], dict[str, Any]]:
-    """Manifest rows sorted by source, plus kept/dropped counts."""
-    rows = [manifest_row(f, walk, placed) for f in files]
-    rows.sort(key=lambda r: r["source"])
-    dropped: dict[tuple[str, str], int] = {}
-    kept = 0
-    for r in rows:
-        if r["status"] == "kept":
-            kept += 1
+@dataclass
+class Tally:
+    """What the summary counts, gathered while the manifest rows stream past."""
+
+    files: int = 0
+    kept: int = 0
+    dropped_by: dict[tuple[str, str], int] = field(default_factory=dict)
+    reached: dict[str, int] = field(default_factory=dict)
+    parts: dict[str, int] = field(default_factory=dict)
+    contents: set[str] = field(default_factory=set)
+
+    def add(self, row: dict[str, Any], trail: list) -> None:
+        self.files += 1
+        self.contents.add(row["sha256"])
+        for step in trail:
+            self.reached[step["stage"]] = self.reached.get(step["stage"], 0) + 1
+        if row["status"] == "kept":
+            self.kept += 1
+            self.parts[row["split"]] = self.parts.get(row["split"], 0) + 1
         else:
-            key = (r["stage"], r["reason"])
-            dropped[key] = dropped.get(key, 0) + 1
-    return rows, {"kept": kept, "dropped_by": dropped}
+            key = (row["stage"], row["reason"])
+            self.dropped_by[key] = self.dropped_by.get(key, 0) + 1
 
 
-def build_summary(rows: list[dict], walk: Any, stages: list, timings: dict, computed: int, reused: int,
+def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
+                  on_trail: Callable[[Any, dict, list], None] | None = None) -> Iterator[dict[str, Any]]:
+    """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
+    into ``tally``; ``on_trail(file, row, trail)`` sees each file's trail as it passes (the
+    runner records the decisions in the same pass)."""
+    for f in files:
+        row, trail = manifest_row(f, walk, placed)
+        tally.add(row, trail)
+        if on_trail is not None:
+            on_trail(f, row, trail)
+        yield row
+
+
+def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed: int, reused: int,
                   placed: Placed, cfg: Any) -> dict[str, Any]:
     """summary.json: counts per stage and reason, split counts and ratios, timings, fingerprints."""
     per_stage: dict[str, dict[str, Any]] = {}
-    reached: dict[str, int] = {s.name: 0 for s in stages}
-    for r in rows:
-        for step in walk.trail_of(r["source"], r["sha256"]):
-            reached[step["stage"]] = reached.get(step["stage"], 0) + 1
     for s in stages:
-        per_stage[s.name] = {"reached": reached.get(s.name, 0), "dropped": {}}
-    for r in rows:
-        if r["status"] == "dropped":
-            d = per_stage.setdefault(r["stage"], {"reached": 0, "dropped": {}})["dropped"]
-            d[r["reason"]] = d.get(r["reason"], 0) + 1
-    kept_rows = [r for r in rows if r["status"] == "kept"]
-    part_counts: dict[str, int] = {}
-    for r in kept_rows:
-        part_counts[r["split"]] = part_counts.get(r["split"], 0) + 1
-    total_kept = max(1, len(kept_rows))
+        per_stage[s.name] = {"reached": tally.reached.get(s.name, 0), "dropped": {}}
+    for (stage, reason), n in sorted(tally.dropped_by.items()):
+        d = per_stage.setdefault(stage, {"reached": 0, "dropped": {}})["dropped"]
+        d[reason] = d.get(reason, 0) + n
+    part_counts = dict(sorted(tally.parts.items()))
+    total_kept = max(1, tally.kept)
     split_stage = next((s for s in stages if s.name == "split"), None)
     split_info = {"files": part_counts,
                   "outputs": {p: len(v) for p, v in sorted(placed.parts.items())},
@@ -280,8 +310,8 @@ def build_summary(rows: list[dict], walk: Any, stages: list, timings: dict, comp
         split_info["targets"] = split_stage.opts.get("ratios")
         split_info.update(walk.states.get("split", {}).get("summary", {}) and
                           {"stage": walk.states["split"]["summary"]})
-    counts = {"files": len(rows), "kept": len(kept_rows), "dropped": len(rows) - len(kept_rows),
-              "contents": len({r["sha256"] for r in rows}), "computed": computed, "reused": reused}
+    counts = {"files": tally.files, "kept": tally.kept, "dropped": tally.files - tally.kept,
+              "contents": len(tally.contents), "computed": computed, "reused": reused}
     return {
         "counts": counts,
         "stages": per_stage,
@@ -294,8 +324,8 @@ def build_summary(rows: list[dict], walk: Any, stages: list, timings: dict, comp
     }
 
 
-def _jsonl(rows: Iterable[dict]) -> str:
-    return "".join(json.dumps(r, ensure_ascii=False, separators=(", ", ": "), default=_default) + "\n" for r in rows)
+def _jsonl(rows: Iterable[dict]) -> Iterator[str]:
+    return (json.dumps(r, ensure_ascii=False, separators=(", ", ": "), default=_default) + "\n" for r in rows)
 
 
 def _default(value: Any) -> Any:
@@ -310,8 +340,11 @@ def _default(value: Any) -> Any:
     raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
 
 
-def write_all(out_dir: Path, rows: list[dict], placed: Placed, summary: dict) -> None:
-    """Write manifest, split lists and summary (each atomically; stale split lists removed)."""
+def write_all(out_dir: Path, rows: Iterable[dict], placed: Placed,
+              summary_of: Callable[[], dict]) -> dict:
+    """Write the manifest (streamed from ``rows``), the split lists, then the summary that
+    ``summary_of`` builds once the rows are counted; each file atomically, stale split lists
+    removed. Returns the summary."""
     write_atomic(out_dir / "manifest.jsonl", _jsonl(rows))
     splits = out_dir / "splits"
     splits.mkdir(parents=True, exist_ok=True)
@@ -321,7 +354,9 @@ def write_all(out_dir: Path, rows: list[dict], placed: Placed, summary: dict) ->
             p.unlink()
     for part, paths in sorted(placed.parts.items()):
         write_atomic(splits / f"{part}.txt", "".join(p + "\n" for p in sorted(paths)))
+    summary = summary_of()
     write_summary(out_dir, summary)
+    return summary
 
 
 def write_summary(out_dir: Path, summary: dict) -> None:

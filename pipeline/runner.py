@@ -21,6 +21,7 @@ import hashlib
 import json
 import os
 import sqlite3
+import stat as stat_mod
 import sys
 import time
 from dataclasses import dataclass, field
@@ -33,6 +34,7 @@ from .errors import LedgerError, MidisiftError, UsageError
 from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger
 from .lock import OutputLock
+from .records import Compactor, TrailValues
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
 MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
@@ -41,18 +43,18 @@ BATCH = 256
 RUNNER_STATE = "_runner"
 
 
-@dataclass
+@dataclass(slots=True)  # memory: one per file, no __dict__
 class SourceFile:
     """One input file: path relative to the input folder (POSIX form) and its fingerprint."""
 
     rel: str
-    path: Path
+    path: str  # memory: a str, not a Path (a Path object costs several hundred bytes)
     size: int
     mtime_ns: int
     sha256: str = ""
 
 
-@dataclass
+@dataclass(slots=True)
 class StagePlan:
     """What a worker needs to know of one stage for one file."""
 
@@ -64,7 +66,7 @@ class StagePlan:
     fingerprint: str = ""       # the stage's options fingerprint, computed once in the main process
 
 
-@dataclass
+@dataclass(slots=True)  # memory: one per file, no __dict__
 class FileTask:
     """Plain-data description of the per-file work for one content."""
 
@@ -76,7 +78,7 @@ class FileTask:
     output_fp: str = ""
 
 
-@dataclass
+@dataclass(slots=True)  # memory: one per file, no __dict__
 class FileOutcome:
     """What a worker returns: results and artifacts of the stages it computed, staged outputs."""
 
@@ -153,34 +155,37 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
                     continue
                 kept_dirs.append(d)
             dirs[:] = kept_dirs
+        rel_root = os.path.relpath(root, input_dir)
+        prefix = "" if rel_root == "." else rel_root.replace(os.sep, "/") + "/"
         for name in names:
             if not name.lower().endswith(MIDI_SUFFIXES):
                 continue
-            p = rootp / name
+            full = os.path.join(root, name)
+            rel = prefix + name
             try:
-                rel = p.relative_to(input_dir).as_posix()
                 rel.encode("utf-8")
             except UnicodeEncodeError:
-                notes.append(f"note: skipped {os.fsencode(p.relative_to(input_dir))!r}: its name is not "
+                notes.append(f"note: skipped {os.fsencode(rel)!r}: its name is not "
                              "valid UTF-8 (rename it to include it)")
                 continue
-            try:
-                if p.is_symlink():
-                    target = p.resolve()
+            try:  # speed: one lstat per plain file (a stat more for a symlink), no Path objects
+                st = os.lstat(full)
+                if stat_mod.S_ISLNK(st.st_mode):
+                    target = Path(full).resolve()
                     if input_dir not in target.parents or (out_res is not None and out_res in target.parents):
                         notes.append(f"note: skipped symlink {rel} pointing outside the input folder "
                                      "(or into the output folder)")
                         continue
-                st = p.stat()
+                    st = os.stat(full)
             except (OSError, RuntimeError) as e:  # RuntimeError: a symlink loop (Python < 3.13)
                 notes.append(f"note: cannot stat {rel}: {getattr(e, 'strerror', None) or e}")
                 continue
-            if not p.is_file():
+            if not stat_mod.S_ISREG(st.st_mode):
                 continue
-            if not os.access(p, os.R_OK):
+            if not os.access(full, os.R_OK):
                 notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
                 continue
-            found.append(SourceFile(rel, p, st.st_size, st.st_mtime_ns))
+            found.append(SourceFile(rel, full, st.st_size, st.st_mtime_ns))
     found.sort(key=lambda f: f.rel)
     return found, notes
 
@@ -284,37 +289,6 @@ def fault_outcome(task: FileTask, fault: Fault) -> FileOutcome:
     return out
 
 
-def compact_result(r: dict, shared: dict) -> dict:
-    """The same result with its keys (and short string values) interned and its ``thresholds``
-    shared with the stage's previous result when equal (they come from the stage options, so
-    nearly always). A run holds every result of every file until the manifest is written;
-    per-file copies of the same keys and limits made the main process grow by about 8 KB per
-    small-class file during the per-file pass, about 3 KB with this (10,000-file run)."""
-    t = r.get("thresholds")
-    if t is not None:
-        last = shared.get("thresholds")
-        if last is not None and t == last:
-            t = last
-        else:
-            shared["thresholds"] = t
-    v = r.get("values")
-    if v:
-        v = {_key(k): (_intern(x) if type(x) is str and len(x) <= 32 else x) for k, x in v.items()}
-    out = {_key(k): x for k, x in r.items()}
-    if "values" in out:
-        out["values"] = v
-    if "thresholds" in out:
-        out["thresholds"] = t
-    return out
-
-
-_intern = sys.intern
-
-
-def _key(k: Any) -> Any:
-    return sys.intern(k) if type(k) is str else k
-
-
 def _run_file_stage(st: Stage, piece: Any, ctx: FileContext, source: str) -> StageResult:
     try:
         return st.process(piece, ctx)
@@ -402,7 +376,8 @@ class Runner:
         path_of = {f.rel: f.path for f in files}
 
         t = time.perf_counter()
-        cache = {s.name: ledger.results_for(s.name, s.fingerprint) for s in self.stages if s.kind == "file"}
+        cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make)
+                 for s in self.stages if s.kind == "file"}
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) for s in self.stages if s.kind == "corpus"}
         existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp)
         last_status = {sha: status for sha, status in ledger.decision_statuses()}
@@ -431,20 +406,29 @@ class Runner:
         placed = outputs.place(ledger, cfg.output, walk, rep, existing_out, self.output_fp)
         timings["outputs"] = time.perf_counter() - t
 
-        rows, counts = outputs.build_manifest(files, rep, walk, placed, self.stages)
-        timings["total"] = time.perf_counter() - t_start
-        summary = outputs.build_summary(rows, walk, self.stages, timings, computed, len(rep) - computed,
-                                        placed, cfg)
-        summary["counts"]["state_key"] = state_key
-        outputs.write_all(cfg.output, rows, placed, summary)
+        tally = outputs.Tally()
+
+        def summary_of() -> dict:
+            timings["total"] = time.perf_counter() - t_start
+            summary = outputs.build_summary(tally, walk, self.stages, timings, computed,
+                                            len(rep) - computed, placed, cfg)
+            summary["counts"]["state_key"] = state_key
+            return summary
+
+        # one pass over the files writes the manifest and records the trails for explain, all
+        # in the run's last transaction (a run killed before its commit leaves the previous
+        # run's decisions in place)
         with ledger.batch():
-            ledger.put_decisions((f.rel, f.sha256, "kept" if walk.final(f.rel, f.sha256) is None else "dropped",
-                                  walk.trail_of(f.rel, f.sha256)) for f in files)
+            decisions = _DecisionSink(ledger)
+            summary = outputs.write_all(
+                cfg.output, outputs.manifest_rows(files, walk, placed, tally, decisions.add),
+                placed, summary_of)
+            decisions.flush()
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             ledger.finish_run(run_id, summary["counts"])
         parts = {p: len(v) for p, v in placed.parts.items()}
-        return RunReport(cfg.output, len(files), counts["kept"], counts["dropped_by"], timings, computed,
+        return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes)
 
     # the nothing-changed shortcut ------------------------------------------------------------
@@ -481,7 +465,8 @@ class Runner:
         parts = summary.get("split", {}).get("outputs", {})
         if any(not (out / "splits" / f"{p}.txt").is_file() for p in parts):
             return None
-        if any(not (out / rel).is_file() for rel in ledger.outputs()):
+        base, isfile = str(out), os.path.isfile
+        if any(not isfile(os.path.join(base, rel)) for rel in ledger.outputs()):
             return None
         return summary
 
@@ -494,8 +479,10 @@ class Runner:
                          notes + ["nothing changed since the last run: outputs are up to date"])
 
     # planning -------------------------------------------------------------------------------
-    def _plan(self, sha: str, rel: str, path: Path, cache: dict, art_keys: dict, existing_out: dict,
+    def _plan(self, sha: str, rel: str, path: str, cache: dict, art_keys: dict, existing_out: dict,
               last_status: dict) -> FileTask | None:
+        if not self._needs_work(sha, cache, art_keys, existing_out, last_status):
+            return None  # a rerun's known files: no plan objects are built for them
         plans: list[StagePlan] = []
         uncertain = False
         need = False
@@ -513,8 +500,6 @@ class Runner:
                     need = True
                 continue
             cached = cache[st.name].get(sha)
-            if cached is not None:  # memory: loaded results share keys and thresholds
-                cached = cache[st.name][sha] = compact_result(cached, self._shared(st.name))
             if cached is not None and self.retry_failed and is_retryable(cached):
                 cached = None
             if cached is None:
@@ -537,12 +522,29 @@ class Runner:
             return None
         return FileTask(sha, str(path), rel, plans, render, self.output_fp)
 
-    def _shared(self, stage: str) -> dict:
-        """The per-stage memo of ``compact_result`` (one per run)."""
-        memo = self.__dict__.setdefault("_compact_memo", {})
-        return memo.setdefault(stage, {})
+    def _needs_work(self, sha: str, cache: dict, art_keys: dict, existing_out: dict,
+                    last_status: dict) -> bool:
+        """Whether ``_plan`` would make a task for this content (the same rules, no objects)."""
+        for st in self.stages:
+            if st.kind == "corpus":
+                if sha not in art_keys[st.name]:
+                    return True
+                continue
+            cached = cache[st.name].get(sha)
+            if cached is None or (self.retry_failed and is_retryable(cached)):
+                return True
+            if not cached.kept:
+                return False  # dropped by a cached verdict: nothing after it is needed
+        return sha not in existing_out and last_status.get(sha, "kept") == "kept"
 
-    def _render_task(self, sha: str, rel: str, path: Path, cache: dict) -> FileTask:
+    def _compactor(self, stage: str) -> Compactor:
+        """The stage's maker of compact result records (one per stage and run)."""
+        memo = self.__dict__.setdefault("_compactors", {})
+        if stage not in memo:
+            memo[stage] = Compactor()
+        return memo[stage]
+
+    def _render_task(self, sha: str, rel: str, path: str, cache: dict) -> FileTask:
         plans = [StagePlan(st.name, st.opts, st.kind, False, cache.get(st.name, {}).get(sha), self._fps[st.name])
                  for st in self.stages]
         return FileTask(sha, str(path), rel, plans, str(self.config.output / outputs.STAGING), self.output_fp)
@@ -568,7 +570,7 @@ class Runner:
             for oc in run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                 on_fault=fault_outcome):
                 for name, r in oc.results.items():
-                    r = compact_result(r, self._shared(name))
+                    r = self._compactor(name).of(r)
                     cache[name][oc.sha256] = r
                     pending_r.append((oc.sha256, name, fps[name], r))
                 for name, arts in oc.artifacts.items():
@@ -605,22 +607,25 @@ class Runner:
 
     # the stage walk ---------------------------------------------------------------------------
     def _walk(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict) -> "Walk":
-        walk = Walk(staged=getattr(self, "_staged", {}))
+        names = [st.name for st in self.stages]
+        walk = Walk(staged=getattr(self, "_staged", {}), stage_names=names)
         alive = list(rep)  # contents in first-source order (sorted paths)
-        values: dict[str, dict] = {sha: {} for sha in rep}
+        # memory: a trail holds the cached result records themselves (no copies, no merged
+        # values dict per file); trail_of and value_of build what a reader needs one file at a time
         trails: dict[str, list] = {sha: [] for sha in rep}
         upstream: dict[str, dict[str, StageResult]] = {}
         for st in self.stages:
             t = time.perf_counter()
             if st.kind == "file":
                 survivors = []
+                stage_cache = cache[st.name]
                 for sha in alive:
-                    r = cache[st.name].get(sha)
+                    r = stage_cache.get(sha)
                     if r is None:  # cannot happen unless a worker died; keep the file's trail honest
-                        r = {"kept": False, "reason": "decoder_crash", "detail": "the worker processing this file "
-                             "did not return a result", "values": {}, "thresholds": {}}
-                    trails[sha].append({"stage": st.name, **r})
-                    values[sha].update(r["values"])
+                        r = self._compactor(st.name).make(
+                            False, "decoder_crash", "the worker processing this file did not "
+                            "return a result", {}, {})
+                    trails[sha].append(r)
                     if r["kept"]:
                         survivors.append(sha)
                     else:
@@ -628,8 +633,9 @@ class Runner:
                 alive = survivors
             else:
                 arts = ledger.artifacts_for(st.name, st.fingerprint, set(alive))
-                members = [Member(sha[:16], sha, rep[sha], dict(values[sha]), {st.name: arts.get(sha, {})})
-                           for sha in alive]
+                members = [Member(sha[:16], sha, rep[sha], TrailValues(trails[sha]),
+                                  {st.name: arts.pop(sha, {})}) for sha in alive]
+                del arts
                 for m in members:  # artifacts of earlier corpus stages travel along
                     for prev, res in walk.artifacts.items():
                         if m.sha256 in res:
@@ -639,30 +645,55 @@ class Runner:
                                     {"fresh": self.fresh, "reassign": self.reassign})
                 bar = self._bar(st.name, len(members))
                 res = st.run_corpus(members, state) if members else {}
-                bar.update(len(members))
+                del members
+                bar.update(len(alive))
                 bar.close()
                 upstream[st.name] = res
                 walk.states[st.name] = state.current
                 walk.notes.extend(state.notes)
                 survivors = []
+                make = self._compactor(st.name).make
+                keep = make(True, None, "", {}, {})
                 for sha in alive:
-                    r = res.get(sha[:16]) or StageResult.keep()
-                    rj = r.to_json()
-                    trails[sha].append({"stage": st.name, **rj})
-                    values[sha].update(rj["values"])
-                    if r.kept:
+                    r = res.get(sha[:16])
+                    rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
+                    trails[sha].append(rec)
+                    if rec.kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = (st.name, r.reason)
+                        walk.status[sha] = (st.name, rec.reason)
                 alive = survivors
             timings[f"stage:{st.name}"] = time.perf_counter() - t
+        walk.artifacts.clear()  # memory: signatures and shingles are not needed after the walk
         for sha in alive:
             walk.status[sha] = None
-        walk.values = values
         walk.trails = trails
-        walk.byte_copy_stage = "dedup" if any(s.name == "dedup" for s in self.stages) else None
+        walk.byte_copy_stage = "dedup" if "dedup" in names else None
         walk.rep = rep
         return walk
+
+
+class _DecisionSink:
+    """Buffers the decision rows of a run and writes them in chunks (the first chunk replaces
+    the previous run's rows)."""
+
+    CHUNK = 2000
+
+    def __init__(self, ledger: Ledger):
+        self.ledger = ledger
+        self.rows: list[tuple[str, str, str, list]] = []
+        self.first = True
+
+    def add(self, f: SourceFile, row: dict, trail: list) -> None:
+        self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped", trail))
+        if len(self.rows) >= self.CHUNK:
+            self.flush()
+
+    def flush(self) -> None:
+        if self.rows or self.first:
+            self.ledger.put_decisions(self.rows, replace=self.first)
+            self.first = False
+            self.rows = []
 
 
 #: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file).
@@ -680,27 +711,46 @@ def is_retryable(result: dict) -> bool:
 
 @dataclass
 class Walk:
-    """The outcome of the stage walk, per content (sha256)."""
+    """The outcome of the stage walk, per content (sha256).
+
+    ``trails[sha]`` lists the content's results (``pipeline.records.Result``: ``kept``,
+    ``reason``, ``detail``, ``values``, ``thresholds``) in stage order, one per stage it
+    reached; ``stage_names`` names them. They are the result cache's own records."""
 
     staged: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
     status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
-    values: dict[str, dict] = field(default_factory=dict)
     trails: dict[str, list] = field(default_factory=dict)
     artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)
     states: dict[str, dict] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     byte_copy_stage: str | None = None
     rep: dict[str, str] = field(default_factory=dict)
+    stage_names: list[str] = field(default_factory=list)
 
     def is_byte_copy(self, rel: str, sha: str) -> bool:
         """A source whose bytes equal an earlier source's (it is not the representative)."""
         return self.rep.get(sha) != rel
 
+    def value_of(self, sha: str, key: str, default: Any = None) -> Any:
+        """One value of a content's trail (the latest stage that set it)."""
+        return TrailValues(self.trails.get(sha, ())).get(key, default)
+
+    def _reached(self, sha: str, stage: str) -> int | None:
+        """Position of ``stage`` in the content's trail, or None when it did not reach it."""
+        try:
+            i = self.stage_names.index(stage)
+        except ValueError:
+            return None
+        return i if i < len(self.trails.get(sha, ())) else None
+
     def trail_of(self, rel: str, sha: str) -> list:
-        """The trail of one source: its content's, cut at dedup for a byte-identical copy."""
-        trail = list(self.trails.get(sha, []))
-        if self.is_byte_copy(rel, sha) and self.byte_copy_stage:
-            idx = next((i for i, s in enumerate(trail) if s["stage"] == self.byte_copy_stage), None)
+        """The trail of one source, each step with its ``stage`` name: its content's, cut at
+        dedup for a byte-identical copy."""
+        trail = [{"stage": name, "kept": r.kept, "reason": r.reason, "detail": r.detail,
+                  "values": r.values, "thresholds": r.thresholds}
+                 for name, r in zip(self.stage_names, self.trails.get(sha, ()))]
+        if self.byte_copy_stage and self.is_byte_copy(rel, sha):
+            idx = self._reached(sha, self.byte_copy_stage)
             if idx is not None:
                 trail = trail[:idx] + [byte_copy_result(self.rep[sha], sha, trail[idx])]
         return trail
@@ -708,8 +758,8 @@ class Walk:
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
         """(stage, reason) that dropped this source, or None when kept."""
         st = self.status.get(sha)
-        if st is None and self.is_byte_copy(rel, sha) and self.byte_copy_stage:
-            if any(s["stage"] == self.byte_copy_stage for s in self.trails.get(sha, [])):
+        if st is None and self.byte_copy_stage and self.is_byte_copy(rel, sha):
+            if self._reached(sha, self.byte_copy_stage) is not None:
                 return (self.byte_copy_stage, "exact_duplicate")
         return st
 

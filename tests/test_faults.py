@@ -215,7 +215,7 @@ DRIVER = textwrap.dedent('''
             before(outputs, "write_atomic")
             return orig_all(*a, **k)
         outputs.write_all = write_all
-    elif point == "decisions":    # outputs written, final ledger transaction not yet
+    elif point == "decisions":    # outputs written, the last ledger transaction not committed
         before(ledger.Ledger, "put_decisions")
     sys.exit(cli.main(sys.argv[2:]))
 ''')

@@ -94,7 +94,7 @@ class FileContext:
         return self._memo[name]
 
 
-@dataclass
+@dataclass(slots=True)  # memory: one per file that reaches a corpus stage
 class Member:
     """A file that reached a corpus stage.
 

@@ -15,6 +15,7 @@ signature. Over the corpus (``run_corpus``):
 """
 from __future__ import annotations
 
+from collections import defaultdict
 from typing import Any, Callable
 
 import numpy as np
@@ -25,6 +26,23 @@ from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, si
                           verify_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
+
+
+class _Facts:
+    """What dedup knows of one member (read as ``facts[k]["notes"]``, like a dict); a slotted
+    object instead of a dict per file (memory)."""
+
+    __slots__ = ("id", "source", "sha256", "content_hash", "signature", "shingles", "notes",
+                 "duration_beats")
+
+    def __init__(self, id: str, source: str, sha256: str, content_hash: str, signature: np.ndarray,
+                 shingles: np.ndarray, notes: int, duration_beats: float):
+        self.id, self.source, self.sha256, self.content_hash = id, source, sha256, content_hash
+        self.signature, self.shingles = signature, shingles
+        self.notes, self.duration_beats = notes, duration_beats
+
+    def __getitem__(self, name: str) -> Any:
+        return getattr(self, name)
 
 
 def _key_most_notes(m: dict) -> tuple:
@@ -122,21 +140,21 @@ class Dedup(Stage):
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
         o = self.opts
         threshold = float(o["threshold"])
-        facts: dict[str, dict] = {}
+        facts: dict[str, _Facts] = {}
         for m in members:
             art = m.artifacts.get(self.name)
             if not art:
                 raise ValueError(f"member {m.id} ({m.source}) has no dedup artifacts: "
                                  "prepare() must run for every file that reaches dedup")
-            facts[m.id] = {"id": m.id, "source": m.source, "sha256": m.sha256,
-                           "content_hash": str(art["content_hash"]),
-                           "signature": np.asarray(art["signature"], dtype=np.uint32),
-                           "shingles": np.asarray(art["shingles"], dtype=np.uint64),
-                           "notes": int(art["notes"]), "duration_beats": float(art["duration_beats"])}
+            facts[m.id] = _Facts(m.id, m.source, m.sha256, str(art["content_hash"]),
+                                 np.asarray(art["signature"], dtype=np.uint32),
+                                 np.asarray(art["shingles"], dtype=np.uint64),
+                                 int(art["notes"]), float(art["duration_beats"]))
         ids = sorted(facts)
         prev = {} if state.flags.get("fresh") else (state.previous or {})
         uf = UnionFind(ids)
-        links: dict[str, list[tuple[str, float, str]]] = {k: [] for k in ids}
+        # memory: lists only for members that get a link (most files have none)
+        links: defaultdict[str, list[tuple[str, float, str]]] = defaultdict(list)
 
         def link(a: str, b: str, sim: float, kind: str) -> None:
             uf.union(a, b)
@@ -205,7 +223,7 @@ class Dedup(Stage):
         state.save("kept", sorted(kept_ids))
         return results
 
-    def _cluster_results(self, group: list[str], kept: str, facts: dict[str, dict],
+    def _cluster_results(self, group: list[str], kept: str, facts: dict[str, _Facts],
                          links: dict[str, list], threshold: float) -> dict[str, StageResult]:
         k = facts[kept]
         size = len(group)
@@ -246,7 +264,7 @@ class Dedup(Stage):
         return out
 
     @staticmethod
-    def _chain(mid: str, links: dict[str, list], facts: dict[str, dict]) -> str:
+    def _chain(mid: str, links: dict[str, list], facts: dict[str, _Facts]) -> str:
         """Explain an indirect cluster member: its strongest direct link."""
         if not links[mid]:
             return ""

@@ -1,0 +1,65 @@
+"""The compact result records read exactly like the result dicts they replace.
+
+The oracle is the plain dict form (``StageResult.to_json()``): every way the runner, the ledger,
+the workers and the manifest read a result must give the same answer from a ``Result``.
+"""
+from __future__ import annotations
+
+import pickle
+
+from pipeline.records import Compactor, Result, TrailValues
+from pipeline.stages import StageResult
+
+PLAIN = [
+    StageResult.keep("G minor (estimated), 12/8 (file)", values={
+        "tonic": "G", "tonic_pc": 7, "mode": "minor", "key_confidence": 0.2991, "bpm": 65.1,
+        "key_declared": None, "augment": []}).to_json(),
+    StageResult.drop("too_short", "8.0 s < min_seconds 10", values={"duration_s": 8.0},
+                     thresholds={"min_seconds": 10}).to_json(),
+    StageResult.keep().to_json(),
+]
+
+
+def test_result_reads_like_its_dict():
+    c = Compactor()
+    for d in PLAIN:
+        r = c.of(d)
+        assert {**r} == d
+        assert r.to_json() == d
+        assert r == d
+        for k, v in d.items():
+            assert r[k] == v and r.get(k) == v
+        assert r.get("nope", 5) == 5
+        for k, v in d["values"].items():
+            assert r.value(k) == v
+        assert r.value("nope", "x") == "x"
+        back = pickle.loads(pickle.dumps(r))
+        assert back.to_json() == d
+
+
+def test_values_are_a_fresh_dict_each_time():
+    r = Compactor().of(PLAIN[0])
+    r["values"]["tonic"] = "changed"
+    assert r.value("tonic") == "G"
+
+
+def test_compactor_shares_names_and_equal_thresholds():
+    c = Compactor()
+    a = c.of(StageResult.keep(values={"x": 1.0, "y": "short"}, thresholds={"t": 1}).to_json())
+    b = c.of(StageResult.keep(values={"x": 2.0, "y": "short"}, thresholds={"t": 1}).to_json())
+    assert a.names is b.names
+    assert a.thresholds is b.thresholds
+    assert a.vals[1] is b.vals[1]  # short strings interned
+
+
+def test_trail_values_later_stages_win():
+    c = Compactor()
+    first = c.of(StageResult.keep(values={"a": 1, "b": 2}).to_json())
+    second = Compactor().of(StageResult.keep(values={"b": 3, "c": 4}).to_json())
+    tv = TrailValues([first, second])
+    merged = {}
+    for r in (first, second):
+        merged.update(r["values"])
+    assert dict(tv) == merged == {"a": 1, "b": 3, "c": 4}
+    assert tv.get("b") == 3 and tv.get("zzz") is None
+    assert list(tv) == ["a", "b", "c"]
