@@ -222,7 +222,7 @@ class LSHIndex:
                   else np.array([k in new for k in self.ids]))
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
-        keys = band_keys(np.vstack(self._sigs), self.bands)
+        keys = band_keys(self.matrix(), self.bands)
         # memory: merged every 8 bands, so a pair found in many bands is held about once
         codes = np.zeros(0, dtype=np.int64)
         found: list[np.ndarray] = []
@@ -232,6 +232,55 @@ class LSHIndex:
                 codes = np.unique(np.concatenate([codes, *found]))
                 found = []
         return codes
+
+    def matrix(self) -> np.ndarray:
+        """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
+        m = getattr(self, "_matrix", None)
+        if m is None or len(m) != len(self._sigs):
+            m = self._matrix = (np.vstack(self._sigs) if self._sigs
+                                else np.zeros((0, self.num_perm), dtype=np.uint32))
+        return m
+
+    def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
+                        min_size_ratio: float = 0.75, cap: int = ShingleSpec().max_shingles,
+                        margin_sigmas: float = 4.0) -> np.ndarray:
+        """The candidate codes whose MinHash estimate leaves ``set_similarity`` a chance to
+        reach ``threshold``; the rest need no exact comparison.
+
+        A pair can pass only if its Jaccard is at least ``threshold``, or, when containment
+        applies (smaller set >= ``min_size_ratio`` of the larger, size ratio ``p``), at least
+        ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard). The estimate (the
+        share of equal MinHash values) has standard deviation ``sqrt(J (1 - J) / num_perm)``
+        (Broder 1997); a pair is dropped only when its estimate lies more than
+        ``margin_sigmas`` of them below that bound. Pairs with a set cut at ``cap`` are always
+        kept (their exact comparison uses a sub-range, not the signed sets). ``set_sizes``
+        holds the shingle-set size of each id, in insertion order.
+
+        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on,
+        while at the default threshold a real link has about 19 or more: most candidates of a
+        large corpus are unrelated pieces sharing one band, and this removes them without
+        touching their shingles."""
+        n = len(self.ids)
+        if not len(codes):
+            return codes
+        sig = self.matrix()
+        sizes = np.asarray(set_sizes, dtype=np.float64)
+        keep = np.empty(len(codes), dtype=bool)
+        t = float(threshold)
+        for lo in range(0, len(codes), 1 << 16):  # memory: bounded (pairs x num_perm) gathers
+            c = codes[lo:lo + (1 << 16)]
+            i, j = c // n, c % n
+            est = (sig[i] == sig[j]).mean(axis=1)
+            si, sj = sizes[i], sizes[j]
+            small, large = np.minimum(si, sj), np.maximum(si, sj)
+            rho = small / np.maximum(large, 1.0)
+            bound = np.full(len(c), t)
+            if min_size_ratio < 1.0:
+                cont = small >= min_size_ratio * large
+                bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))
+            sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / sig.shape[1])
+            keep[lo:lo + len(c)] = (est >= bound - margin_sigmas * sd) | (large >= cap)
+        return codes[keep]
 
     def iter_sorted_pairs(self, codes: np.ndarray) -> Iterator[tuple[str, str]]:
         """``candidates`` lazily, in the same order, when the ids were added in sorted order

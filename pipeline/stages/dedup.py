@@ -196,6 +196,9 @@ class Dedup(Stage):
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
         codes = index.candidate_codes(new_reps if reusable else None)
+        n_candidates = len(codes)
+        codes = index.plausible_codes(codes, np.array([len(facts[k]["shingles"]) for k in index.ids]),
+                                      threshold, min_size_ratio=float(o["min_size_ratio"]))
         cands = index.iter_sorted_pairs(codes)
         shingles = {k: facts[k]["shingles"] for k in rep_ids}
         verified = verify_pairs(cands, shingles, threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
@@ -205,7 +208,8 @@ class Dedup(Stage):
             near_links.append([a, b, round(sim, 6)])
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
-                     f"{len(codes)} LSH candidate pairs, {len(verified)} verified links")
+                     f"{n_candidates} LSH candidate pairs, {len(codes)} plausible by their MinHash "
+                     f"estimate, {len(verified)} verified links")
 
         # 3. clusters and kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]
