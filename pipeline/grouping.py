@@ -268,13 +268,13 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     # below that bound, minus the estimate's sampling error sqrt(J(1-J)/num_perm).
     low = threshold / (1.0 + 1.0 / 0.75 - threshold) if shingles is not None else threshold
     floor = low - margin_sigmas * (max(low * (1 - low), 1e-4) / num_perm) ** 0.5
+    # memory: only the pairs the estimate lets through become Python objects
+    sel = est >= (threshold if shingles is None else floor)
     out = []
-    for i, j, e in zip(ia.tolist(), ib.tolist(), est.tolist()):
+    for i, j, e in zip(ia[sel].tolist(), ib[sel].tolist(), est[sel].tolist()):
         a, b = keys[i], keys[j]
         if shingles is None:
             sim = e
-        elif e < floor:
-            continue
         else:
             sim, _ = set_similarity(shingles[a], shingles[b])
         if sim >= threshold:

@@ -613,7 +613,7 @@ class Runner:
         # memory: a trail holds the cached result records themselves (no copies, no merged
         # values dict per file); trail_of and value_of build what a reader needs one file at a time
         trails: dict[str, list] = {sha: [] for sha in rep}
-        upstream: dict[str, dict[str, StageResult]] = {}
+        upstream: dict[str, dict[str, Any]] = {}  # stage -> id -> Result (reads like StageResult)
         for st in self.stages:
             t = time.perf_counter()
             if st.kind == "file":
@@ -648,20 +648,30 @@ class Runner:
                 del members
                 bar.update(len(alive))
                 bar.close()
-                upstream[st.name] = res
                 walk.states[st.name] = state.current
                 walk.notes.extend(state.notes)
                 survivors = []
                 make = self._compactor(st.name).make
                 keep = make(True, None, "", {}, {})
+                compact: dict[str, Any] = {}
                 for sha in alive:
                     r = res.get(sha[:16])
                     rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
+                    if r is not None:
+                        compact[sha[:16]] = rec
                     trails[sha].append(rec)
                     if rec.kept:
                         survivors.append(sha)
                     else:
                         walk.status[sha] = (st.name, rec.reason)
+                # memory: later stages read this stage's verdicts as the compact records (same
+                # attributes as StageResult), and a dropped file's artifacts are let go
+                upstream[st.name] = compact
+                del res
+                gone = set(alive) - set(survivors)
+                for arts_of in walk.artifacts.values():
+                    for sha in gone:
+                        arts_of.pop(sha, None)
                 alive = survivors
             timings[f"stage:{st.name}"] = time.perf_counter() - t
         walk.artifacts.clear()  # memory: signatures and shingles are not needed after the walk

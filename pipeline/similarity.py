@@ -289,8 +289,9 @@ class LSHIndex:
         if any(ids[k] >= ids[k + 1] for k in range(len(ids) - 1)):
             raise ValueError("iter_sorted_pairs needs ids added in strictly increasing order")
         n = len(ids)
-        for c in codes.tolist():
-            yield ids[c // n], ids[c % n]
+        for lo in range(0, len(codes), 1 << 16):  # memory: a chunk of Python ints at a time
+            for c in codes[lo:lo + (1 << 16)].tolist():
+                yield ids[c // n], ids[c % n]
 
 
 #: Buckets up to this size are paired by vectorized offsets; bigger ones one by one.
