@@ -46,17 +46,22 @@ def permutations(num_perm: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
 def fold32(shingles: np.ndarray) -> np.ndarray:
     """The 32-bit MinHash input for each 64-bit shingle hash (xor of its halves)."""
     s = np.asarray(shingles, dtype=np.uint64)
-    return ((s ^ (s >> np.uint64(32))) & np.uint64(0xFFFFFFFF)).astype(np.uint32)
+    # the low 32 bits of s ^ (s >> 32): the cast to uint32 keeps exactly those (the mask
+    # & 0xFFFFFFFF is implied)
+    return (s ^ (s >> np.uint64(32))).astype(np.uint32)
 
 
 def _fmix32(h: np.ndarray) -> np.ndarray:
+    """MurmurHash3's 32-bit finalizer of uint32 ``h`` (a new array; ``h`` is not changed)."""
     s1, m1, s2, m2, s3 = _F32
+    out = h >> s1
     with np.errstate(over="ignore"):
-        h = h ^ (h >> s1)
-        h = h * m1
-        h = h ^ (h >> s2)
-        h = h * m2
-        return h ^ (h >> s3)
+        out ^= h
+        out *= m1
+        out ^= out >> s2
+        out *= m2
+        out ^= out >> s3
+    return out
 
 
 def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1) -> np.ndarray:
@@ -70,7 +75,19 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1) -> np.ndar
         return np.full(num_perm, _U32_MAX, dtype=np.uint32)
     h = _fmix32(fold32(shingles))
     with np.errstate(over="ignore"):
-        return (h[:, None] * a[None, :] + b[None, :]).min(axis=0)
+        # the (shingle x permutation) table is filled in place (one buffer, no temporaries);
+        # from a few hundred shingles on, permutation-major rows reduce faster
+        if len(h) < _PERM_MAJOR_FROM:
+            table = np.multiply.outer(h, a)
+            table += b
+            return table.min(axis=0)
+        table = np.multiply.outer(a, h)
+        table += b[:, None]
+        return table.min(axis=1)
+
+
+#: Shingle count from which ``minhash`` lays its table out one row per permutation.
+_PERM_MAJOR_FROM = 256
 
 
 def is_empty(signature: np.ndarray) -> bool:

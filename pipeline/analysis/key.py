@@ -18,6 +18,7 @@ choice: "favor F#", "favor eb minor").
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -174,24 +175,45 @@ def pitch_class_histogram(piece: Piece, bass_weight: float = 0.0, final_weight: 
     ``final_weight`` adds that multiple for notes sounding in the last ``final_beats`` beats.
     """
     notes = piece.notes
-    notes = notes[notes["channel"] != DRUM_CHANNEL]
-    if len(notes) == 0:
+    drum = notes["channel"] == DRUM_CHANNEL
+    if drum.any():  # columns of the pitched notes (no copy of whole structured rows)
+        keep = ~drum
+        start, end, pitch = notes["start"][keep], notes["end"][keep], notes["pitch"][keep]
+    else:
+        start, end, pitch = (np.ascontiguousarray(notes[f]) for f in ("start", "end", "pitch"))
+    if len(start) == 0:
         return np.zeros(12)
     tpb = float(piece.ticks_per_beat)
-    dur = (notes["end"] - notes["start"]).astype(np.float64) / tpb
-    weight = np.ones(len(notes))
+    dur = (end - start) / tpb  # int64 / float: each difference as float64, then divided
+    # weight 1, plus bass_weight for each onset's lowest note, plus final_weight for the final
+    # notes: the same sums (1.0 + bass_weight, then + final_weight) as adding them in place
     if bass_weight:
-        start = notes["start"]
-        # lowest pitch among the notes that start at the same tick (vectorized group-min)
-        order = np.lexsort((notes["pitch"], start))
+        weight = np.where(_lowest_of_each_onset(start, pitch), 1.0 + float(bass_weight), 1.0)
+    else:
+        weight = np.ones(len(start))
+    if final_weight:
+        last = end.max()
+        final = end > last - final_beats * tpb
+        weight[final] += final_weight
+    return np.bincount(pitch % 12, weights=dur * weight, minlength=12)
+
+
+def _lowest_of_each_onset(start: np.ndarray, pitch: np.ndarray) -> np.ndarray:
+    """Mask of the lowest note among the notes starting at each tick (the first such note on a
+    tie): the group minimum of a stable lexsort by (start, pitch). Notes already in (start,
+    pitch) order, as the decoder gives them, need no sort: then it is each onset's first note."""
+    ds = start[1:] - start[:-1]
+    if len(ds) and (ds.min() < 0 or np.logical_or.reduce(pitch[1:] < pitch[:-1], where=ds == 0)):
+        order = np.lexsort((pitch, start))
         s_sorted = start[order]
         first = np.ones(len(order), dtype=bool)
         first[1:] = s_sorted[1:] != s_sorted[:-1]
-        weight[order[first]] += bass_weight
-    if final_weight:
-        last = notes["end"].max()
-        weight[notes["end"] > last - final_beats * tpb] += final_weight
-    return np.bincount(notes["pitch"] % 12, weights=dur * weight, minlength=12)
+        lowest = np.zeros(len(start), dtype=bool)
+        lowest[order[first]] = True
+        return lowest
+    first = np.ones(len(start), dtype=bool)
+    first[1:] = ds != 0
+    return first
 
 
 def estimate_key_from_histogram(hist: np.ndarray, profile: str = DEFAULT_PROFILE) -> KeyEstimate:
@@ -201,20 +223,20 @@ def estimate_key_from_histogram(hist: np.ndarray, profile: str = DEFAULT_PROFILE
     """
     profile = resolve_profile(profile)
     h = np.asarray(hist, dtype=np.float64)
-    h = h - h.mean()
-    norm = np.linalg.norm(h)
-    scores = _MATRICES[profile] @ (h / norm) if norm > 0 else np.zeros(24)
-    # argsort is stable: ties resolve to the lower index (major before minor, C first)
-    order = np.argsort(-scores, kind="stable")
-    best, second = int(order[0]), int(order[1])
+    h = h - np.add.reduce(h) / len(h)  # h.mean(): the same sum and division
+    norm = math.sqrt(h.dot(h))  # np.linalg.norm(h) computes sqrt(h.dot(h)) too
+    scores = (_MATRICES[profile] @ (h / norm) if norm > 0 else np.zeros(24)).tolist()
+    # the first maximum, then the first maximum of the rest: a stable argsort of -scores,
+    # so ties resolve to the lower index (major before minor, C first)
+    best = max(range(24), key=scores.__getitem__)
+    second = max((i for i in range(24) if i != best), key=scores.__getitem__)
     mode = MODES[best // 12]
     pc = best % 12
     names = MAJOR_TONIC_NAMES if mode == "major" else MINOR_TONIC_NAMES
     return KeyEstimate(tonic=names[pc], tonic_pc=pc, mode=mode,
-                       confidence=float(scores[best] - scores[second]),
+                       confidence=scores[best] - scores[second],
                        runner_up=key_name(second % 12, MODES[second // 12]),
-                       correlation=float(scores[best]), profile=profile,
-                       scores=tuple(float(x) for x in scores))
+                       correlation=scores[best], profile=profile, scores=tuple(scores))
 
 
 def estimate_key(piece: Piece, profile: str = DEFAULT_PROFILE,
@@ -237,8 +259,9 @@ def declared_key(piece: Piece) -> str | None:
     ks = piece.key_signatures
     if len(ks) == 0:
         return None
-    first = ks[np.argmin(ks["tick"])]
-    sharps = int(np.clip(first["sharps"], -7, 7))
+    ticks = ks["tick"].tolist()
+    first = ks[ticks.index(min(ticks))]  # the first earliest, like argmin
+    sharps = min(max(int(first["sharps"]), -7), 7)
     if first["minor"]:
         return f"{MINOR_BY_SHARPS[sharps]} minor"
     return f"{MAJOR_BY_SHARPS[sharps]} major"

@@ -24,6 +24,8 @@ Aird's Airs books 1-3; the README figures are measured on held-out folk tunes as
 """
 from __future__ import annotations
 
+import bisect
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -95,11 +97,16 @@ def meter_from_file(piece: Piece) -> str | None:
     ts = piece.time_signatures
     if len(ts) == 0:
         return None
-    ts = ts[np.argsort(ts["tick"], kind="stable")]
-    end = max(int(piece.end_tick), int(ts["tick"].max()) + 1,
+    if len(ts) == 1:  # the usual case: one declaration governs the whole piece
+        return f"{int(ts['numerator'][0])}/{int(ts['denominator'][0])}"
+    # a handful of events: plain Python ints (exact) instead of numpy calls on tiny arrays
+    ticks = ts["tick"].tolist()
+    order = sorted(range(len(ticks)), key=ticks.__getitem__)  # stable, like argsort "stable"
+    ticks = [ticks[i] for i in order]
+    end = max(int(piece.end_tick), ticks[-1] + 1,
               int(piece.notes["end"].max()) if len(piece.notes) else 0)
-    spans = np.diff(np.append(ts["tick"], end))
-    i = int(np.argmax(spans))
+    spans = [b - a for a, b in zip(ticks, ticks[1:] + [end])]
+    i = order[spans.index(max(spans))]  # first longest, like argmax
     return f"{int(ts['numerator'][i])}/{int(ts['denominator'][i])}"
 
 
@@ -133,24 +140,71 @@ def _squeeze_gaps(bins: np.ndarray) -> np.ndarray:
     return out
 
 
+def _pitched_columns(notes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Contiguous ``start``, ``end``, ``pitch`` of the pitched notes (no structured-row copy)."""
+    drum = notes["channel"] == DRUM_CHANNEL
+    if drum.any():
+        keep = ~drum
+        return notes["start"][keep], notes["end"][keep], notes["pitch"][keep]
+    return (np.ascontiguousarray(notes["start"]), np.ascontiguousarray(notes["end"]),
+            np.ascontiguousarray(notes["pitch"]))
+
+
 def accent_function(piece: Piece) -> np.ndarray:
     """Accent strength per grid bin (1/12 quarter) of the pitched notes' onsets."""
-    notes = piece.notes
-    notes = notes[notes["channel"] != DRUM_CHANNEL]
-    if len(notes) == 0:
+    start, end, pitch = _pitched_columns(piece.notes)
+    return _accent(start, end, pitch, float(piece.ticks_per_beat), _start_steps(start))
+
+
+def _start_steps(start: np.ndarray) -> np.ndarray | None:
+    """``start[1:] - start[:-1]`` when the onsets are in time order (as the decoder gives
+    them), else None."""
+    steps = start[1:] - start[:-1]
+    return steps if len(steps) == 0 or steps.min() >= 0 else None
+
+
+def _accent(start: np.ndarray, end: np.ndarray, pitch: np.ndarray, tpb: float,
+            steps: np.ndarray | None) -> np.ndarray:
+    """``accent_function`` on the pitched columns; ``steps`` from ``_start_steps``.
+
+    For onsets in time order (``steps`` given) the bins are already sorted, so the sort of
+    ``_squeeze_gaps`` is the identity and is skipped, and when each bin's notes are in pitch
+    order (the decoder sorts by start, then pitch) the lowest note of a bin is its first one,
+    so the lexsort is skipped too. The sums are the same ``bincount``s in the same order."""
+    if len(start) == 0:
         return np.zeros(0)
-    tpb = float(piece.ticks_per_beat)
-    bins = _squeeze_gaps(np.rint(notes["start"] / tpb * BINS_PER_BEAT).astype(np.int64))
-    dur = np.minimum((notes["end"] - notes["start"]) / tpb, ACCENT_CAP_BEATS)
+    bins = np.rint(start / tpb * BINS_PER_BEAT).astype(np.int64)
+    dur = np.minimum((end - start) / tpb, ACCENT_CAP_BEATS)
+    if steps is None:  # not in time order: the general path
+        bins = _squeeze_gaps(bins)
+        order = np.lexsort((pitch, bins))
+        b_sorted = bins[order]
+        first = np.ones(len(order), dtype=bool)
+        first[1:] = b_sorted[1:] != b_sorted[:-1]
+        low = order[first]
+    else:
+        gaps = bins[1:] - bins[:-1]  # >= 0: rint(start / tpb * 12) keeps the time order
+        if bins[0] > 2 * COMMON_BAR_BINS or (len(gaps) and gaps.max() > 2 * COMMON_BAR_BINS):
+            bins = _squeeze_sorted(bins, gaps)  # keeps equal bins equal, distinct distinct
+        same = gaps == 0
+        low = np.ones(len(bins), dtype=bool)
+        np.logical_not(same, out=low[1:])  # the first note of each bin
+        if np.logical_or.reduce(pitch[1:] < pitch[:-1], where=same):  # a bin not in pitch order
+            order = np.lexsort((pitch, bins))
+            b_sorted = bins[order]
+            first = np.ones(len(order), dtype=bool)
+            first[1:] = b_sorted[1:] != b_sorted[:-1]
+            low = order[first]
     acc = np.bincount(bins, weights=dur)
-    # bass accent: the lowest note of each onset bin
-    order = np.lexsort((notes["pitch"], bins))
-    b_sorted = bins[order]
-    first = np.ones(len(order), dtype=bool)
-    first[1:] = b_sorted[1:] != b_sorted[:-1]
-    acc += BASS_ACCENT * np.bincount(bins[order[first]], weights=dur[order[first]],
-                                     minlength=len(acc))
+    acc += BASS_ACCENT * np.bincount(bins[low], weights=dur[low], minlength=len(acc))
     return acc
+
+
+def _squeeze_sorted(bins: np.ndarray, gaps: np.ndarray) -> np.ndarray:
+    """``_squeeze_gaps`` for sorted ``bins`` whose successive differences are ``gaps``."""
+    gaps = np.concatenate((bins[:1], gaps))
+    excess = np.where(gaps > 2 * COMMON_BAR_BINS, (gaps - COMMON_BAR_BINS) // COMMON_BAR_BINS, 0)
+    return bins - np.cumsum(excess) * COMMON_BAR_BINS
 
 
 def _template(spec: MeterSpec) -> np.ndarray:
@@ -190,10 +244,12 @@ def _autocorrs(acc: np.ndarray, lags: tuple[int, ...]) -> list[float]:
     switches to several threads for long vectors (above about 10,000 bins, i.e. long pieces),
     which costs milliseconds of thread start-up per call in a busy worker and makes the last
     bits depend on the machine's thread count."""
-    a = acc - acc.mean()
+    n = len(acc)
+    a = acc - np.add.reduce(acc) / n  # acc.mean(): the same sum and division
     denom = float(np.add.reduce(a * a))
-    return [0.0 if lag >= len(acc) else
-            (float(np.add.reduce(a[:-lag] * a[lag:])) / denom if denom > 0 else 0.0)
+    if not denom > 0:
+        return [0.0] * len(lags)
+    return [0.0 if lag >= n else float(np.add.reduce(a[:-lag] * a[lag:])) / denom
             for lag in lags]
 
 
@@ -204,8 +260,8 @@ def _fold_match(acc: np.ndarray, spec: MeterSpec) -> tuple[float, int]:
     tc, tc_norm, rolled = _ROLLED[spec.name]
     n = len(tc)
     folded = np.bincount(np.arange(len(acc)) % n, weights=acc, minlength=n)
-    f = folded - folded.mean()
-    denom = np.linalg.norm(f) * tc_norm
+    f = folded - np.add.reduce(folded) / n  # folded.mean(): the same sum and division
+    denom = math.sqrt(f.dot(f)) * tc_norm  # np.linalg.norm(f) computes sqrt(f.dot(f)) too
     if denom == 0:
         return 0.0, 0
     corr = rolled @ f / denom
@@ -222,40 +278,74 @@ def meter_lags(spec: MeterSpec) -> tuple[tuple[float, ...], tuple[float, ...]]:
 
 
 _METER_LAGS = {m.name: meter_lags(m) for m in METERS}
+_METER_BY_NAME = {m.name: m for m in METERS}
 _LAG_BINS = tuple(int(round(lag * BINS_PER_BEAT)) for lag in LAGS)
+#: Per candidate: (positions in ``LAGS`` of its strong lags, of its weak lags, prior).
+_SCORE_PLAN = tuple((m.name, tuple(LAGS.index(x) for x in _METER_LAGS[m.name][0]),
+                     tuple(LAGS.index(x) for x in _METER_LAGS[m.name][1]), m.prior)
+                    for m in METERS)
+#: numpy's float sum adds fewer than this many values one after the other, from 0.0 (pairwise
+#: summation starts at blocks of 8), so a plain Python loop gives the same bits below it.
+_SEQUENTIAL_SUM_BELOW = 8
 
 
 def _mean(values: list[float]) -> float:
-    """``float(np.mean(values))`` without its per-call overhead (the same sum and division)."""
-    return float(np.add.reduce(np.array(values, dtype=np.float64)) / len(values))
+    """``float(np.mean(values))`` without its per-call overhead (the same sum and division):
+    below 8 values numpy adds them in order starting from 0.0, which the loop repeats."""
+    if len(values) >= _SEQUENTIAL_SUM_BELOW:
+        return float(np.add.reduce(np.array(values, dtype=np.float64)) / len(values))
+    total = 0.0
+    for v in values:
+        total += v
+    return total / len(values)
 
 
 def estimate_meter(piece: Piece) -> MeterEstimate:
     """Estimate the meter from note onsets (see the module docstring for the method)."""
-    acc = accent_function(piece)
+    start, end, pitch = _pitched_columns(piece.notes)
+    tpb = float(piece.ticks_per_beat)
+    steps = _start_steps(start)
+    acc = _accent(start, end, pitch, tpb, steps)
     if len(acc) == 0 or not acc.any():
         return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-    r = dict(zip(LAGS, _autocorrs(acc, _LAG_BINS)))
+    r = _autocorrs(acc, _LAG_BINS)
     scores: dict[str, tuple[float, int]] = {}
-    for spec in METERS:
-        strong, weak = _METER_LAGS[spec.name]
-        score = _mean([r[lag] for lag in strong])
+    for name, strong, weak, prior in _SCORE_PLAN:
+        score = _mean([r[i] for i in strong])
         if weak:
-            score -= WEAK_WEIGHT * _mean([r[lag] for lag in weak])
-        scores[spec.name] = (score + spec.prior, 0)
-    _resolve_alla_breve(piece, scores)
-    ranked = sorted(scores, key=lambda k: -scores[k][0])
-    best, second = ranked[0], ranked[1]
-    _, phase = _fold_match(acc, next(m for m in METERS if m.name == best))
+            score -= WEAK_WEIGHT * _mean([r[i] for i in weak])
+        scores[name] = (score + prior, 0)
+    _resolve_alla_breve(_alla_breve(start, steps, tpb), scores)
+    # best and runner-up of a stable sort by descending score: the first maximum, then the
+    # first maximum of the others (ties keep the order of METERS)
+    best = max(scores, key=lambda k: scores[k][0])
+    second = max((k for k in scores if k != best), key=lambda k: scores[k][0])
+    _, phase = _fold_match(acc, _METER_BY_NAME[best])
     return MeterEstimate(best, scores[best][0], scores[best][0] - scores[second][0], second,
                          phase / BINS_PER_BEAT)
 
 
-def _resolve_alla_breve(piece: Piece, scores: dict[str, tuple[float, int]]) -> None:
+def _alla_breve(start: np.ndarray, steps: np.ndarray | None, tpb: float) -> bool:
+    """Whether the median inter-onset interval of the pitched onsets ``start`` is at least
+    ``ALLA_BREVE_MIN_IOI`` quarters (``steps`` from ``_start_steps``).
+
+    The same value as ``np.median(np.diff(np.unique(start)) / tpb)``: for onsets in time order
+    the gaps between distinct onsets are the non-zero steps; the median is the middle value,
+    or the mean of the middle two (added, then halved, as ``np.mean`` does)."""
+    gaps = steps[steps != 0] if steps is not None else np.diff(np.unique(start))
+    m = len(gaps)
+    if m == 0:
+        return False
+    gaps.sort()
+    if m % 2:
+        median = gaps[m // 2] / tpb  # numpy scalars: the array's int64 -> float64 division
+    else:
+        median = (gaps[m // 2 - 1] / tpb + gaps[m // 2] / tpb) / 2
+    return bool(median >= ALLA_BREVE_MIN_IOI)
+
+
+def _resolve_alla_breve(alla_breve: bool, scores: dict[str, tuple[float, int]]) -> None:
     """4/4 and 2/2 share a bar: keep one of them, by the prevailing note motion."""
-    onsets = np.unique(piece.pitched["start"])
-    ioi = np.diff(onsets) / float(piece.ticks_per_beat)
-    alla_breve = len(ioi) > 0 and float(np.median(ioi)) >= ALLA_BREVE_MIN_IOI
     best = max(scores["4/4"][0], scores["2/2"][0])
     keep, drop = ("2/2", "4/4") if alla_breve else ("4/4", "2/2")
     scores[keep] = (best, scores[keep][1])
@@ -271,8 +361,35 @@ def tempo_bpm(piece: Piece) -> float:
     if end <= 0:
         us = float(tempos["us_per_beat"][0]) if len(tempos) else 500_000.0
         return 60e6 / us
-    seconds = float(piece.ticks_to_seconds(np.array([end]))[0])
+    seconds = _seconds_at(end, tempos, piece.ticks_per_beat)
+    if seconds is None:
+        seconds = float(piece.ticks_to_seconds(np.array([end]))[0])
     return (end / piece.ticks_per_beat) / (seconds / 60.0) if seconds > 0 else 0.0
+
+
+#: Tempo maps up to this many events are walked in plain Python by ``_seconds_at``.
+_SCALAR_TEMPO_EVENTS = 64
+
+
+def _seconds_at(tick: int, tempos: np.ndarray, ticks_per_beat: int) -> float | None:
+    """``score.ticks_to_seconds`` at one tick, for a short tempo map in tick order: the same
+    operations in the same order on Python floats (IEEE doubles, as numpy's), without a dozen
+    numpy calls on arrays of a few elements. None for a long or unsorted map."""
+    if not 0 < len(tempos) <= _SCALAR_TEMPO_EVENTS or not ticks_per_beat > 0:
+        return None
+    ticks = tempos["tick"].tolist()
+    if any(b < a for a, b in zip(ticks, ticks[1:])):
+        return None
+    us = [float(u) for u in tempos["us_per_beat"].tolist()]
+    scale = 1e6 * ticks_per_beat
+    i = min(max(bisect.bisect_right(ticks, tick) - 1, 0), len(ticks) - 1)
+    # start_sec[i]: 0.0, then the running sum of the segment seconds (np.cumsum's order)
+    start_sec = 0.0
+    if i > 0:
+        start_sec = float(ticks[1] - ticks[0]) * us[0] / scale
+        for k in range(1, i):
+            start_sec = start_sec + float(ticks[k + 1] - ticks[k]) * us[k] / scale
+    return start_sec + float(tick - ticks[i]) * us[i] / scale
 
 
 #: Metrical grid for ``grid_fraction``: 16th notes and 8th-note triplets (divisions of a quarter).
@@ -290,12 +407,47 @@ def grid_fraction(piece: Piece, divisions: tuple[int, ...] = GRID_DIVISIONS,
     An empty piece gives 1.0."""
     if len(piece.notes) == 0:
         return 1.0
-    tpb = float(piece.ticks_per_beat)
+    start = piece.notes["start"]
+    table = _grid_table(int(piece.ticks_per_beat), tuple(divisions), float(tolerance_beats))
+    if table is not None and 0 <= start.min() and start.max() < 2 ** 53:
+        return np.count_nonzero(table[start % len(table)]) / len(start)
+    return _grid_fraction_float(start.astype(np.float64), float(piece.ticks_per_beat),
+                                divisions, tolerance_beats)
+
+
+#: On-grid flag per tick position within a beat, by (ticks per beat, divisions, tolerance).
+_GRID_TABLES: dict[tuple[int, tuple[int, ...], float], np.ndarray] = {}
+
+
+def _grid_table(tpb: int, divisions: tuple[int, ...], tolerance_beats: float) -> np.ndarray | None:
+    """Whether each tick position ``0..tpb-1`` within a beat is on the grid, when every grid
+    step is a whole number of ticks (then an onset's flag depends only on ``start % tpb``, and
+    the float remainders ``_grid_fraction_float`` takes of whole-number floats are exact, so
+    the table gives the same flags). None when a step is fractional."""
+    key = (tpb, divisions, tolerance_beats)
+    table = _GRID_TABLES.get(key)
+    if table is None:
+        if tpb <= 0 or any(d <= 0 or tpb % d for d in divisions):
+            return None
+        table = _grid_flags(np.arange(tpb, dtype=np.float64), float(tpb), divisions,
+                            tolerance_beats)
+        if len(_GRID_TABLES) < 256:
+            _GRID_TABLES[key] = table
+    return table
+
+
+def _grid_flags(start: np.ndarray, tpb: float, divisions: tuple[int, ...],
+                tolerance_beats: float) -> np.ndarray:
     tol = tolerance_beats * tpb
-    start = piece.notes["start"].astype(np.float64)
     on = np.zeros(len(start), dtype=bool)
     for d in divisions:
         step = tpb / d
         r = np.mod(start, step)
         on |= np.minimum(r, step - r) <= tol + 1e-9
-    return float(on.mean())
+    return on
+
+
+def _grid_fraction_float(start: np.ndarray, tpb: float, divisions: tuple[int, ...],
+                         tolerance_beats: float) -> float:
+    """``grid_fraction`` on float onsets (any resolution)."""
+    return float(_grid_flags(start, tpb, divisions, tolerance_beats).mean())

@@ -51,38 +51,53 @@ class ShingleSpec:
     max_shingles: int = 4096
 
 
+_S33 = np.uint64(33)
+
+
 def fmix64(x: np.ndarray) -> np.ndarray:
     """MurmurHash3's 64-bit finalizer (an avalanching bijection), vectorized."""
-    x = x.astype(np.uint64, copy=True)
     with np.errstate(over="ignore"):
-        x ^= x >> np.uint64(33)
-        x *= _MIX1
-        x ^= x >> np.uint64(33)
-        x *= _MIX2
-        x ^= x >> np.uint64(33)
+        return _fmix64_inplace(x.astype(np.uint64, copy=True))
+
+
+def _fmix64_inplace(x: np.ndarray) -> np.ndarray:
+    """``fmix64`` overwriting ``x``, a uint64 array the caller owns, so no copy is made.
+    Integer array arithmetic wraps modulo 2**64 without a warning (only numpy scalars warn)."""
+    x ^= x >> _S33
+    x *= _MIX1
+    x ^= x >> _S33
+    x *= _MIX2
+    x ^= x >> _S33
     return x
 
 
 def melody_tokens(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarray:
     """One int64 token per onset after the first: interval of the skyline and grid IOI."""
     notes = piece.notes
-    pitched = notes["channel"] != DRUM_CHANNEL
-    start = notes["start"][pitched]
+    drum = notes["channel"] == DRUM_CHANNEL
+    if drum.any():
+        keep = ~drum
+        start, pitch = notes["start"][keep], notes["pitch"][keep]
+    else:
+        start, pitch = notes["start"], notes["pitch"]
     if len(start) < 2:
         return np.zeros(0, dtype=np.int64)
-    pitch = notes["pitch"][pitched].astype(np.int64)
     tpb = int(piece.ticks_per_beat)
     q = (start * (2 * spec.grid) + tpb) // (2 * tpb)  # round half up to the grid, in integers
-    if np.any(q[1:] < q[:-1]):  # the decoder sorts by start; stay correct if a caller did not
+    step = q[1:] - q[:-1]
+    if step.min() < 0:  # the decoder sorts by start; stay correct if a caller did not
         order = np.argsort(q, kind="stable")
         q, pitch = q[order], pitch[order]
-    first = np.flatnonzero(np.concatenate(([True], q[1:] != q[:-1])))
+        step = q[1:] - q[:-1]
+    new = step != 0
+    first = np.flatnonzero(np.concatenate(([True], new)))
     if len(first) < 2:
         return np.zeros(0, dtype=np.int64)
-    top = np.maximum.reduceat(pitch, first)
-    onset = q[first]
-    interval = np.clip(np.diff(top), -spec.max_interval, spec.max_interval)
-    ioi = np.minimum(np.diff(onset), int(spec.max_ioi_beats * spec.grid))
+    top = np.maximum.reduceat(pitch, first).astype(np.int64)
+    # np.clip(np.diff(top), lo, hi) is minimum(maximum(diff, lo), hi); the gaps between
+    # successive onsets (np.diff(q[first])) are the non-zero steps
+    interval = np.minimum(np.maximum(top[1:] - top[:-1], -spec.max_interval), spec.max_interval)
+    ioi = np.minimum(step[new], int(spec.max_ioi_beats * spec.grid))
     return (interval + 128) * 4096 + ioi
 
 
@@ -92,19 +107,25 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     A piece with fewer tokens than ``ngram`` gets one shingle of all its tokens (if any), so
     short pieces still compare; a piece with none (drums only, one onset) gets an empty set.
     """
-    tokens = melody_tokens(piece, spec).astype(np.uint64)
+    tokens = melody_tokens(piece, spec).view(np.uint64)  # int64 -> uint64: the same bits
     n = min(spec.ngram, len(tokens))
     if n == 0:
         return np.zeros(0, dtype=np.uint64)
     count = len(tokens) - n + 1
     h = np.full(count, np.uint64(n), dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for j in range(n):
-            h = h * _ROLL + tokens[j:j + count]
-    out = np.unique(fmix64(h))
-    if len(out) > spec.max_shingles:
-        out = out[:spec.max_shingles]
-    return out
+    for j in range(n):  # array arithmetic wraps modulo 2**64
+        h *= _ROLL
+        h += tokens[j:j + count]
+    h = _fmix64_inplace(h)
+    h.sort()  # np.unique: sorted, then the first of each run of equal values
+    if len(h) > 1:
+        keep = np.empty(len(h), dtype=bool)
+        keep[0] = True
+        keep[1:] = h[1:] != h[:-1]
+        h = h[keep]
+    if len(h) > spec.max_shingles:
+        h = h[:spec.max_shingles]
+    return h
 
 
 def content_hash(piece: Piece) -> str:
@@ -117,15 +138,21 @@ def content_hash(piece: Piece) -> str:
     """
     n = piece.notes
     tpb = int(piece.ticks_per_beat)
-    s = (n["start"] * (2 * CONTENT_STEPS_PER_BEAT) + tpb) // (2 * tpb)
-    e = (n["end"] * (2 * CONTENT_STEPS_PER_BEAT) + tpb) // (2 * tpb)
-    row = fmix64(s.astype(np.uint64))
-    with np.errstate(over="ignore"):
-        row = fmix64(row * _ROLL + e.astype(np.uint64))
-        code = n["pitch"].astype(np.uint64) * np.uint64(2) + (n["channel"] == DRUM_CHANNEL).astype(np.uint64)
-        row = fmix64(row * _ROLL + code)
+    # start and end rounded in one pass: positions in 1/960 beat, rounded half up in integers
+    se = (np.concatenate((n["start"], n["end"])) * (2 * CONTENT_STEPS_PER_BEAT) + tpb) // (2 * tpb)
+    se = se.view(np.uint64)  # int64 -> uint64 keeps the bits, as astype does, without a copy
+    row = _fmix64_inplace(se[:len(n)])
+    row *= _ROLL
+    row += se[len(n):]
+    row = _fmix64_inplace(row)
+    code = n["pitch"].astype(np.uint64)
+    code *= np.uint64(2)
+    code += n["channel"] == DRUM_CHANNEL  # + 1 for a drum note
+    row *= _ROLL
+    row += code
+    row = _fmix64_inplace(row)
     row.sort()
-    return hashlib.sha256(row.astype("<u8").tobytes()).hexdigest()[:32]
+    return hashlib.sha256(np.ascontiguousarray(row, dtype="<u8")).hexdigest()[:32]
 
 
 def duration_beats(piece: Piece) -> float:

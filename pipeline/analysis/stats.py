@@ -55,57 +55,92 @@ def piece_stats(piece: Piece) -> dict:
                 "max_polyphony": 0, "mean_polyphony": 0.0, "drum_fraction": 0.0,
                 "longest_silence_s": 0.0, "tracks": 0, "instruments": 0,
                 "longest_note_s": 0.0, "programs": [], "has_drums": False}
-    duration = float(notes["end_s"].max())
+    every = _Columns(notes)
+    duration = float(every.end_s.max())
     drum = notes["channel"] == DRUM_CHANNEL
     n_drum = int(np.count_nonzero(drum))
-    pitched = notes[~drum] if n_drum else notes
-    programs = np.flatnonzero(np.bincount(pitched["program"], minlength=128))
-    max_poly, mean_poly = _polyphony(pitched)
+    pitched = _Columns(notes, ~drum) if n_drum else every
+    programs = np.flatnonzero(np.bincount(pitched.get("program"), minlength=128))
+    lengths = pitched.end_s - pitched.start_s
+    max_poly, mean_poly = _polyphony_of(pitched.start, pitched.end, pitched.start_s,
+                                        pitched.end_s, lengths)
     return {
         "duration_s": duration,
         "notes": n,
         "notes_per_s": n / duration if duration > 0 else 0.0,
-        "pitches": int(np.count_nonzero(np.bincount(pitched["pitch"], minlength=128))),
+        "pitches": int(np.count_nonzero(np.bincount(pitched.get("pitch"), minlength=128))),
         "max_polyphony": max_poly,
         "mean_polyphony": mean_poly,
         "drum_fraction": n_drum / n,
-        "longest_silence_s": _longest_silence(notes, duration),
-        "tracks": int(np.count_nonzero(np.bincount(notes["track"]))),
+        "longest_silence_s": _silence_of(every.start, every.end, every.start_s, every.end_s,
+                                         duration),
+        "tracks": int(np.count_nonzero(np.bincount(every.get("track")))),
         "instruments": int(len(programs)) + (1 if n_drum else 0),
-        "longest_note_s": float((pitched["end_s"] - pitched["start_s"]).max()) if len(pitched) else 0.0,
+        "longest_note_s": float(lengths.max()) if len(lengths) else 0.0,
         "programs": programs.tolist(),
         "has_drums": n_drum > 0,
     }
 
 
-def _polyphony(notes: np.ndarray) -> tuple[int, float]:
-    """(max, sounding-time-weighted mean) number of notes sounding at once.
+class _Columns:
+    """Contiguous columns of the note table, or of the rows selected by ``keep``: one small
+    copy per column used, instead of a copy of whole structured rows (or strided reads)."""
+
+    def __init__(self, notes: np.ndarray, keep: np.ndarray | None = None):
+        self._notes, self._keep = notes, keep
+        self.start, self.end = self.get("start"), self.get("end")
+        self.start_s, self.end_s = self.get("start_s"), self.get("end_s")
+
+    def get(self, name: str) -> np.ndarray:
+        col = self._notes[name]
+        return np.ascontiguousarray(col) if self._keep is None else col[self._keep]
+
+
+#: Ticks below this (in magnitude) fit the sweep's combined sort key ``2 * tick + is_on``.
+_KEY_TICK_LIMIT = 2 ** 61
+
+
+def _polyphony_of(start: np.ndarray, end: np.ndarray, start_s: np.ndarray, end_s: np.ndarray,
+                  lengths: np.ndarray) -> tuple[int, float]:
+    """(max, sounding-time-weighted mean) number of notes sounding at once (``lengths`` is
+    ``end_s - start_s``).
 
     A sweep over note-on (+1) and note-off (-1) events ordered by tick, offs before ons at the
-    same tick, so touching notes do not overlap and a zero-length note never counts.
-    """
-    n = len(notes)
+    same tick, so touching notes do not overlap and a zero-length note never counts. The
+    events are ordered by one stable sort of ``2 * tick + (1 for an on, 0 for an off)``: the
+    order of a stable lexsort by (tick, delta), equal keys keeping their index order in both,
+    so the same seconds are summed in the same order."""
+    n = len(start)
     if n == 0:
         return 0, 0.0
-    ticks = np.concatenate((notes["start"], notes["end"]))
-    secs = np.concatenate((notes["start_s"], notes["end_s"]))
-    delta = np.concatenate((np.ones(n, np.int64), -np.ones(n, np.int64)))
-    order = np.lexsort((delta, ticks))
-    running = np.cumsum(delta[order])
-    seg = np.diff(secs[order])
+    ticks = np.concatenate((start, end))
+    secs = np.concatenate((start_s, end_s))
+    if -_KEY_TICK_LIMIT < ticks.min() and ticks.max() < _KEY_TICK_LIMIT:
+        key = ticks * 2
+        key[:n] += 1
+        order = np.argsort(key, kind="stable")
+    else:
+        delta = np.concatenate((np.ones(n, np.int64), -np.ones(n, np.int64)))
+        order = np.lexsort((delta, ticks))
+    step = np.where(order < n, 1, -1)  # delta[order]
+    running = np.cumsum(step)
+    s = secs[order]
+    seg = s[1:] - s[:-1]  # np.diff
     sounding = float(seg[running[:-1] > 0].sum())
-    note_seconds = float((notes["end_s"] - notes["start_s"]).sum())
+    note_seconds = float(lengths.sum())
     mean = note_seconds / sounding if sounding > 0 else 0.0
     return int(running.max()), mean
 
 
-def _longest_silence(notes: np.ndarray, duration: float) -> float:
+def _silence_of(start: np.ndarray, end: np.ndarray, start_s: np.ndarray, end_s: np.ndarray,
+                duration: float) -> float:
     """Longest stretch of ``[0, duration]`` with nothing sounding (notes sorted by start;
     zero-length notes never sound, so they do not break a silence)."""
-    sounding = notes[notes["end"] > notes["start"]]
-    if len(sounding) == 0:
+    sounds = end > start
+    if not sounds.all():
+        start_s, end_s = start_s[sounds], end_s[sounds]
+    if len(start_s) == 0:
         return duration
-    start_s, end_s = sounding["start_s"], sounding["end_s"]
     covered = np.maximum.accumulate(end_s)
     inner = float((start_s[1:] - covered[:-1]).max()) if len(start_s) > 1 else 0.0
     return max(float(start_s[0]), inner, duration - float(covered[-1]), 0.0)

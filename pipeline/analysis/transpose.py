@@ -34,8 +34,20 @@ def shift_notes(notes: np.ndarray, semitones: int) -> tuple[np.ndarray, int]:
     out = notes.copy()
     if semitones == 0 or len(out) == 0:
         return out, 0
+    pitch = out["pitch"]  # a view into ``out``
+    s = int(semitones)
+    lo, hi = int(pitch.min()), int(pitch.max())
+    if min(lo, lo + s) >= 0 and max(hi, hi + s) <= 127:
+        # every note is in 0..127 before and after (drums included), so nothing folds: add
+        # in place (the usual case)
+        drum = out["channel"] == DRUM_CHANNEL
+        if drum.any():
+            pitch[~drum] += s
+        else:
+            pitch += s
+        return out, 0
     pitched = out["channel"] != DRUM_CHANNEL
-    p = out["pitch"].astype(np.int64) + np.where(pitched, int(semitones), 0)
+    p = pitch.astype(np.int64) + np.where(pitched, s, 0)
     high = p > 127
     low = p < 0
     p = np.where(high, p - 12 * ((p - 127 + 11) // 12), p)
@@ -44,10 +56,44 @@ def shift_notes(notes: np.ndarray, semitones: int) -> tuple[np.ndarray, int]:
     return out, int(np.count_nonzero(high | low))
 
 
+def in_canonical_order(notes: np.ndarray) -> bool:
+    """Whether ``notes`` are in ``score.sort_notes`` order (start, pitch, track, channel, end),
+    i.e. whether that stable sort would return the rows unchanged. Cheaper than the sort: one
+    pass over the starts, the other keys compared only where starts tie."""
+    if len(notes) < 2:
+        return True
+    start = notes["start"]
+    ds = start[1:] - start[:-1]
+    if ds.min() < 0:
+        return False
+    tie = ds == 0
+    if not tie.any():
+        return True
+    # (pitch, track, channel) as one number: each int16 offset to 0..65535 in its own 16 bits
+    key = notes["pitch"].astype(np.int64)
+    key += 32768
+    for field in ("track", "channel"):
+        key <<= 16
+        key += notes[field]
+        key += 32768
+    dk = key[1:] - key[:-1]
+    if np.logical_or.reduce(dk < 0, where=tie):
+        return False
+    same = tie & (dk == 0)
+    if not same.any():
+        return True
+    end = notes["end"]
+    return not np.logical_or.reduce(end[1:] < end[:-1], where=same)
+
+
 def fold_count(notes: np.ndarray, semitones: int) -> int:
     """How many notes ``shift_notes(notes, semitones)`` folds back into 0..127, without
     building the shifted table (the transpose stage only reports the count)."""
     if semitones == 0 or len(notes) == 0:
         return 0
-    p = notes["pitch"][notes["channel"] != DRUM_CHANNEL].astype(np.int64) + int(semitones)
+    pitch = notes["pitch"]
+    s = int(semitones)
+    if int(pitch.min()) + s >= 0 and int(pitch.max()) + s <= 127:
+        return 0  # even every note shifted (drums too) stays in 0..127: the usual case
+    p = pitch[notes["channel"] != DRUM_CHANNEL].astype(np.int64) + s
     return int(np.count_nonzero((p > 127) | (p < 0)))

@@ -10,6 +10,7 @@ Every limit accepts ``null`` to switch its rule off.
 """
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 from typing import Any, Callable
 
@@ -244,7 +245,16 @@ class Filter(Stage):
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         stats = ctx.analysis("stats", piece_stats)
-        return judge(stats, self.opts)
+        return judge(stats, self.opts, self._thresholds())
+
+    def _thresholds(self) -> dict[str, Any]:
+        """``thresholds_of(self.opts)``, built once per option setting instead of once per
+        file (results treat it as read-only, as ``records`` does when it shares equal ones)."""
+        cached = self.__dict__.get("_thresholds_for")
+        if cached is None or cached[0] != self.opts:
+            cached = (copy.deepcopy(self.opts), thresholds_of(self.opts))
+            self._thresholds_for = cached
+        return cached[1]
 
 
 def thresholds_of(opts: dict) -> dict[str, Any]:
@@ -269,11 +279,13 @@ def thresholds_of(opts: dict) -> dict[str, Any]:
     return out
 
 
-def judge(stats: dict, opts: dict) -> StageResult:
-    """Hold ``stats`` against the limits in ``opts``; the verdict with every failure listed."""
+def judge(stats: dict, opts: dict, thresholds: dict[str, Any] | None = None) -> StageResult:
+    """Hold ``stats`` against the limits in ``opts``; the verdict with every failure listed.
+    ``thresholds`` is ``thresholds_of(opts)`` when the caller has it already."""
     values = {m: stats[m] for m in MEASURES}
     values["programs"] = list(stats["programs"]) + ([DRUMS] if stats["has_drums"] else [])
-    thresholds = thresholds_of(opts)
+    if thresholds is None:
+        thresholds = thresholds_of(opts)
     failures = [(r.reason, msg) for r in RULES if (msg := r.fails(stats, opts))]
     if not failures:
         return StageResult.keep(values=values, thresholds=thresholds)

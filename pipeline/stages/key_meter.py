@@ -62,8 +62,8 @@ def shared_key_estimate(ctx: FileContext, opts: dict[str, Any]) -> keymod.KeyEst
 def reported_key(piece: Piece, estimate: keymod.KeyEstimate, trust_file_key: bool) -> tuple[int, str, str]:
     """(tonic_pc, mode, source) of the key to report: the estimate, or the file's declared key
     when ``trust_file_key`` is set and the file declares one."""
-    declared = keymod.declared_key(piece)
-    if trust_file_key and declared is not None:
+    declared = keymod.declared_key(piece) if trust_file_key else None
+    if declared is not None:
         pc, mode = keymod.parse_key(declared)
         return pc, mode, "file"
     return estimate.tonic_pc, estimate.mode, "estimated"

@@ -11,8 +11,9 @@ from typing import Any
 import numpy as np
 
 from ..analysis import key as keymod
-from ..analysis.transpose import DIRECTIONS, fold_count, shift_notes, smallest_shift
-from ..score import Piece, sort_notes
+from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, shift_notes,
+                                  smallest_shift)
+from ..score import DRUM_CHANNEL, Piece, sort_notes
 from .base import FileContext, Option, Stage, StageResult, register
 from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
 
@@ -92,8 +93,20 @@ class Transpose(Stage):
         augmentation copy, each computed from the source notes by one total shift (so folding
         happens once), in canonical note order."""
         shift = int(values.get("transpose") or 0)
-        out = [("", sort_notes(shift_notes(piece.notes, shift)[0]), shift)]
+        notes = piece.notes
+        # a shift moves pitched notes past the drum notes of their onsets, so a shifted table
+        # with drums is rarely in order: sort it; others are checked first (and kept as they
+        # are when in order, as the stable sort would keep them)
+        has_drums = bool((notes["channel"] == DRUM_CHANNEL).any())
+
+        def ordered(total: int) -> np.ndarray:
+            table = shift_notes(notes, total)[0]
+            if total and has_drums:
+                return sort_notes(table)
+            return table if in_canonical_order(table) else sort_notes(table)
+
+        out = [("", ordered(shift), shift)]
         for extra in values.get("augment") or []:
             total = shift + int(extra)
-            out.append((augment_suffix(int(extra)), sort_notes(shift_notes(piece.notes, total)[0]), total))
+            out.append((augment_suffix(int(extra)), ordered(total), total))
         return out
