@@ -101,9 +101,26 @@ def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging
         dst = folder / f"{stem}{suffix}.mid"
         out_piece = piece if semitones == 0 else replace(
             piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones))
-        write_atomic(dst, encode(out_piece, notes), fsync=False)
+        _write_staged(dst, encode(out_piece, notes))
         staged.append((suffix, str(dst)))
     return staged
+
+
+def _write_staged(path: Path, data: bytes) -> None:
+    """A staged file is written in place, without the temporary name of ``write_atomic``: it
+    is used only once its worker has returned (a file left half-written by a killed worker is
+    never placed, and the staging folder is removed after placing)."""
+    try:
+        try:
+            fh = open(path, "wb")
+        except FileNotFoundError:  # the first file of a run makes the staging folder
+            path.parent.mkdir(parents=True, exist_ok=True)
+            fh = open(path, "wb")
+        with fh:
+            fh.write(data)
+    except OSError as e:
+        raise OutputError(f"cannot write ({e.strerror}); check free space and permissions of the output folder",
+                          file=str(path)) from None
 
 
 def shift_key_signatures(keys: Any, semitones: int) -> Any:

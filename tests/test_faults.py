@@ -333,17 +333,17 @@ def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch
 
 def test_disk_full_in_a_worker_rendering_outputs(corpus, config, baseline, tmp_path, monkeypatch):
     out = tmp_path / "out"
-    real = outputs.write_atomic
+    real = outputs._write_staged  # how a worker writes a rendered file into the staging folder
 
-    def write_atomic(path, data, *a, **k):  # inherited by the forked workers
+    def write_staged(path, data, *a, **k):  # inherited by the forked workers
         if outputs.STAGING in Path(path).parts:
             raise OutputError("cannot write (No space left on device); check free space", file=str(path))
         return real(path, data, *a, **k)
-    monkeypatch.setattr(outputs, "write_atomic", write_atomic)
+    monkeypatch.setattr(outputs, "_write_staged", write_staged)
     with pytest.raises(OutputError, match="No space left") as err:
         run(config, corpus, out)
     assert outputs.STAGING in Path(err.value.file).parts
-    monkeypatch.setattr(outputs, "write_atomic", real)
+    monkeypatch.setattr(outputs, "_write_staged", real)
     run(config, corpus, out)
     assert snapshot(out) == baseline  # no file was dropped for the disk's fault
 
