@@ -13,12 +13,17 @@ source track's name. Zero-length notes are not written (the decoder drops them t
 SMPTE pieces are re-based on 480 ticks per beat at one 120 BPM tempo (960 ticks per second)
 from their exact seconds. Limits: overlapping notes of one pitch and channel in one group cannot
 be told apart in MIDI; they read back under the decoder's stacking policy (see pipeline.smf).
+
+The group tracks' event bytes come from the compiled ``_smf_accel.group_events`` when it is
+built and ``pipeline.smf.USE_ACCEL`` is on (``MIDISIFT_PURE_PYTHON=1`` turns both off), else
+from the numpy ``_all_group_events``; the bytes are identical (tests/test_smf_accel.py).
 """
 from __future__ import annotations
 
 
 import numpy as np
 
+from . import smf
 from .score import DEFAULT_TEMPO, Piece
 
 __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
@@ -58,9 +63,15 @@ def _meta(kind: int, payload: bytes) -> bytes:
     return bytes((0xFF, kind)) + vlq(len(payload)) + payload
 
 
-def encode(piece: Piece, notes: np.ndarray | None = None) -> bytes:
+def encode(piece: Piece, notes: np.ndarray | None = None, *,
+           accelerated: bool | None = None) -> bytes:
     """The piece as a normalized format-1 SMF; ``notes`` replaces its note table (e.g.
-    transposed notes). The same input always gives the same bytes."""
+    transposed notes). The same input always gives the same bytes. ``accelerated`` as in
+    ``smf.decode``: None follows ``smf.USE_ACCEL``; both paths give the same bytes."""
+    if accelerated is None:
+        accelerated = smf.USE_ACCEL
+    elif accelerated and not smf.HAVE_ACCEL:
+        raise ValueError("accelerated=True, but pipeline._smf_accel is not built; pass False")
     notes = piece.notes if notes is None else notes
     if piece.smpte:
         tpb = SMPTE_TICKS_PER_BEAT
@@ -101,9 +112,10 @@ def encode(piece: Piece, notes: np.ndarray | None = None) -> bytes:
         tr = notes["track"].astype(np.int64)
         group = tr * 16 + notes["channel"].astype(np.int64)
         names = piece.track_names
-        bodies = _all_group_events(group, starts, ends, notes["pitch"].astype(np.int64),
-                                   notes["velocity"].astype(np.int64),
-                                   notes["program"].astype(np.int64))
+        group_events = smf._smf_accel.group_events if accelerated else _all_group_events
+        bodies = group_events(group, np.ascontiguousarray(starts), np.ascontiguousarray(ends),
+                              notes["pitch"].astype(np.int64), notes["velocity"].astype(np.int64),
+                              notes["program"].astype(np.int64))
         for g, body in bodies:
             src = g // 16
             head = b""
