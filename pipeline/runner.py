@@ -38,7 +38,7 @@ from .records import Compactor, TrailValues
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
 MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
-BATCH = 256
+BATCH = 256  # results + artifacts per ledger transaction (also flushed every 2 s)
 #: Stage names of the byte-identical shortcut and of the runner's own state.
 RUNNER_STATE = "_runner"
 
@@ -331,10 +331,11 @@ class Runner:
         self.output_fp = outputs.output_fingerprint(self.stages)
 
     # progress -----------------------------------------------------------------------------
-    def _bar(self, desc: str, total: int, position: int = 0):
+    def _bar(self, desc: str, total: int, position: int = 0) -> Any:
+        if self.quiet or not sys.stderr.isatty():
+            return _NoBar()  # a disabled tqdm still starts its monitor thread
         from tqdm import tqdm
-        disable = self.quiet or not sys.stderr.isatty()
-        return tqdm(total=total, desc=f"{desc:<10}", unit="file", disable=disable, position=position,
+        return tqdm(total=total, desc=f"{desc:<10}", unit="file", position=position,
                     leave=True, dynamic_ncols=True)
 
     def run(self) -> RunReport:
@@ -694,6 +695,16 @@ class Runner:
         walk.byte_copy_stage = "dedup" if "dedup" in names else None
         walk.rep = rep
         return walk
+
+
+class _NoBar:
+    """The progress bar of a quiet run (or one whose stderr is not a terminal)."""
+
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
 
 
 class _DecisionSink:
