@@ -198,7 +198,7 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     """
     import numpy as np
 
-    from .similarity import _U32_MAX, _band_pairs, band_keys
+    from .similarity import _U32_MAX, _band_pairs, band_key, check_banding
 
     n = len(sig)
     live = np.flatnonzero(~np.all(np.asarray(sig) == _U32_MAX, axis=1)) if n else np.zeros(0, np.int64)
@@ -207,12 +207,15 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     is_new = np.ones(len(live), dtype=bool) if only is None else np.asarray(only, dtype=bool)[live]
     if not is_new.any():
         return np.zeros((0, 2), np.int64)
-    keys = band_keys(sig[live], bands)                         # (L, bands)
+    err = check_banding(sig.shape[1], bands)
+    if err:
+        raise ValueError(err)
+    rows = sig[live]
     m = len(live)
     codes = np.zeros(0, dtype=np.int64)
     found: list = []
     for band in range(bands):
-        found.append(_band_pairs(keys[:, band], is_new))
+        found.append(_band_pairs(band_key(rows, bands, band), is_new))
         if len(found) == 8 or band == bands - 1:
             codes = np.unique(np.concatenate([codes, *found]))
             found = []

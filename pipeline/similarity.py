@@ -191,13 +191,23 @@ def band_keys(signatures: np.ndarray, bands: int) -> np.ndarray:
     err = check_banding(num_perm, bands)
     if err:
         raise ValueError(err)
-    rows = num_perm // bands
-    sig = signatures.reshape(n, bands, rows).astype(np.uint64)
-    h = np.full((n, bands), np.uint64(rows), dtype=np.uint64)
+    out = np.empty((n, bands), dtype=np.uint64)
+    for band in range(bands):
+        out[:, band] = band_key(signatures, bands, band)
+    return out
+
+
+def band_key(signatures: np.ndarray, bands: int, band: int) -> np.ndarray:
+    """The ``(N,)`` uint64 keys of one band (column ``band`` of ``band_keys``). Corpus stages
+    key one band at a time: the whole ``(N, bands)`` table and its uint64 temporaries were
+    several hundred MB at 100,000 files."""
+    rows = signatures.shape[1] // bands
+    cols = signatures[:, band * rows:(band + 1) * rows]
+    h = np.full(len(signatures), np.uint64(rows), dtype=np.uint64)
     with np.errstate(over="ignore"):
         for j in range(rows):
-            h = fmix64(h * _ROLL + sig[:, :, j])
-        h = h + np.arange(bands, dtype=np.uint64)[None, :] * _ROLL  # keep bands apart
+            h = fmix64(h * _ROLL + cols[:, j].astype(np.uint64))
+        h = h + np.uint64(band) * _ROLL  # keep bands apart
     return h
 
 
@@ -239,12 +249,13 @@ class LSHIndex:
                   else np.array([k in new for k in self.ids]))
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
-        keys = band_keys(self.matrix(), self.bands)
-        # memory: merged every 8 bands, so a pair found in many bands is held about once
+        sig = self.matrix()
+        # memory: one band's keys at a time, merged every 8 bands, so a pair found in many
+        # bands is held about once
         codes = np.zeros(0, dtype=np.int64)
         found: list[np.ndarray] = []
         for band in range(self.bands):
-            found.append(_band_pairs(keys[:, band], is_new))
+            found.append(_band_pairs(band_key(sig, self.bands, band), is_new))
             if len(found) == 8 or band == self.bands - 1:
                 codes = np.unique(np.concatenate([codes, *found]))
                 found = []

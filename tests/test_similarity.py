@@ -207,3 +207,28 @@ def test_plausible_codes_drop_unrelated_pairs():
     codes = np.array([(2 * p) * n + 2 * p + 1 for p in range(500)], dtype=np.int64)
     kept = index.plausible_codes(codes, np.array(sizes), 0.3)
     assert len(kept) < 0.05 * len(codes)
+
+
+def test_band_keys_one_band_at_a_time_equal_the_whole_table():
+    """The per-band keys (what the corpus stages compute, one band at a time) equal the
+    all-bands-at-once formulation they replace, kept here as the oracle."""
+    from pipeline.similarity import _ROLL, band_key
+    from pipeline.analysis.shingles import fmix64
+
+    def whole_table(signatures, bands):
+        n, num_perm = signatures.shape
+        rows = num_perm // bands
+        sig = signatures.reshape(n, bands, rows).astype(np.uint64)
+        h = np.full((n, bands), np.uint64(rows), dtype=np.uint64)
+        with np.errstate(over="ignore"):
+            for j in range(rows):
+                h = fmix64(h * _ROLL + sig[:, :, j])
+            return h + np.arange(bands, dtype=np.uint64)[None, :] * _ROLL
+
+    rng = np.random.default_rng(3)
+    for bands, num_perm in ((64, 128), (32, 128), (16, 64), (128, 128)):
+        sig = rng.integers(0, 2**32, (300, num_perm), dtype=np.uint64).astype(np.uint32)
+        want = whole_table(sig, bands)
+        assert (band_keys(sig, bands) == want).all()
+        for b in (0, bands // 2, bands - 1):
+            assert (band_key(sig, bands, b) == want[:, b]).all()
