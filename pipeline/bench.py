@@ -352,8 +352,9 @@ def run_pipeline(config: Path, inp: Path, out: Path, workers: str, fresh_output:
 # ---------------------------------------------------------------------------------------------
 # decode-only floor
 
-def decode_paths(paths: list[str]) -> tuple[int, int]:
-    """Read and decode each file with our decoder; (decoded files, notes). The floor."""
+def decode_paths(paths: list[str], accelerated: bool | None = None) -> tuple[int, int]:
+    """Read and decode each file with our decoder; (decoded files, notes). The floor.
+    ``accelerated=False``: the pure-Python decoder (the floor without the C fast path)."""
     from .errors import DecodeError
     from .smf import decode
     ok = notes = 0
@@ -361,7 +362,7 @@ def decode_paths(paths: list[str]) -> tuple[int, int]:
         with open(p, "rb") as fh:
             data = fh.read()
         try:
-            piece = decode(data, source=p)
+            piece = decode(data, source=p, accelerated=accelerated)
         except DecodeError:
             continue
         ok += 1
@@ -369,15 +370,15 @@ def decode_paths(paths: list[str]) -> tuple[int, int]:
     return ok, notes
 
 
-def decode_only(paths: list[Path], workers: int) -> dict[str, Any]:
+def decode_only(paths: list[Path], workers: int, accelerated: bool | None = None) -> dict[str, Any]:
     """Decode-only wall time in one process, or spread over ``workers`` forked processes."""
     names = [str(p) for p in paths]
     import resource
-    decode_paths(names[:2])  # imports and first-call costs out of the measurement
+    decode_paths(names[:2], accelerated)  # imports and first-call costs out of the measurement
     t0 = time.perf_counter()
     if workers <= 1:
         c0 = time.process_time()
-        ok, notes = decode_paths(names)
+        ok, notes = decode_paths(names, accelerated)
         cpu = time.process_time() - c0
     else:
         import multiprocessing as mp
@@ -566,11 +567,15 @@ class Bench:
         paths = midi_files(folder)
         d1 = decode_only(paths, 1)
         dn = decode_only(paths, self.workers_all)
+        from .smf import HAVE_ACCEL
+        d1_pure = decode_only(paths, 1, accelerated=False) if HAVE_ACCEL else d1
         self.log(f"[{cls}] decode-only: {d1['files_per_s']} files/s (1), {dn['files_per_s']} ({self.workers_all})")
         sample = paths[:: max(1, len(paths) // 300)]
         parts = component_times(self.config, sample, self.scratch / "runs" / cls)
         res = {"corpus": facts, "pipeline_1": one, "pipeline_all": allw, "decode_1": d1,
-               "decode_all": dn, "workers_all": self.workers_all, "component_ms": parts,
+               "decode_all": dn, "decode_1_pure": d1_pure, "accelerated": HAVE_ACCEL,
+               "x_decode_pure_1": _times(one, d1_pure),
+               "workers_all": self.workers_all, "component_ms": parts,
                "component_files": len(sample),
                "files_per_s_1": one["files_per_s"], "files_per_s_all": allw["files_per_s"],
                "x_decode_1": _times(one, d1), "x_decode_all": _times(allw, dn),
@@ -795,7 +800,11 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
         add(f"  pipeline, {r['workers_all']} workers (files/s)", r["files_per_s_all"])
         add("  decode-only, 1 process (files/s)", r["decode_1"]["files_per_s"])
         add(f"  decode-only, {r['workers_all']} processes (files/s)", r["decode_all"]["files_per_s"])
+        if r.get("accelerated"):
+            add("  decode-only, pure Python, 1 process (files/s)", r["decode_1_pure"]["files_per_s"])
         add("  pipeline / decode-only, 1 worker (x)", r["x_decode_1"])
+        if r.get("accelerated"):
+            add("  pipeline / pure-Python decode-only, 1 worker (x)", r.get("x_decode_pure_1"))
         add(f"  pipeline / decode-only, {r['workers_all']} workers (x)", r["x_decode_all"])
         if "run_imports_music21" in r:
             add("  music21 imported by a default run", "yes" if r["run_imports_music21"] else "no")
