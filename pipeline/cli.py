@@ -53,6 +53,14 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _run(args: argparse.Namespace) -> int:
+    if not (args.fresh or args.reassign or args.retry_failed):
+        # an up-to-date rerun is recognised before the stages (and numpy) are even imported
+        from .uptodate import check_up_to_date
+        report = check_up_to_date(args.config, input=args.input, output=args.output)
+        if report is not None:
+            if not args.quiet:
+                print(report.table())
+            return 0
     from .config import load_config
     from .runner import Runner
     cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers)

@@ -23,9 +23,10 @@ import time
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
-import numpy as np
-
 from .errors import LedgerError
+
+# numpy is imported where arrays are (de)serialised: the nothing-changed check opens the ledger
+# without paying numpy's import time
 
 SCHEMA_VERSION = 1
 #: Artifact name recorded when a corpus stage's ``prepare`` returned nothing for a file.
@@ -61,6 +62,7 @@ def _dumps(value: Any) -> str:
 
 
 def _json_default(value: Any) -> Any:
+    import numpy as np
     if isinstance(value, np.generic):
         return value.item()
     if isinstance(value, np.ndarray):
@@ -288,6 +290,7 @@ def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
 
 
 def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
+    import numpy as np
     if isinstance(value, np.ndarray):
         arr = np.ascontiguousarray(value)
         return arr.dtype.str, _dumps(list(arr.shape)), arr.tobytes()
@@ -297,19 +300,21 @@ def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
 def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:
     if dtype is None:
         return json.loads(data)
+    import numpy as np
     arr = np.frombuffer(data, dtype=_dtype(dtype))
     dims = _shape(shape)
     # memory: a 1-D array is returned as read, not as a second (reshaped) view of it
     return arr if len(dims) == 1 and dims[0] == len(arr) else arr.reshape(dims)
 
 
-_DTYPES: dict[str, np.dtype] = {}
+_DTYPES: dict[str, Any] = {}
 _SHAPES: dict[str, tuple[int, ...]] = {}
 
 
-def _dtype(text: str) -> np.dtype:
+def _dtype(text: str) -> Any:
     d = _DTYPES.get(text)
     if d is None:
+        import numpy as np
         d = _DTYPES[text] = np.dtype(text)
     return d
 

@@ -22,8 +22,6 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
-import numpy as np
-
 from .errors import OutputError
 
 STAGING = ".staging"
@@ -128,6 +126,7 @@ def shift_key_signatures(keys: Any, semitones: int) -> Any:
     the key it is now in. A signature's major tonic is ``7 * sharps`` (mod 12) on the circle of
     fifths (minor shares its relative major's signature), so the new signature is
     ``sharps + 7 * semitones`` (mod 12), written in the range -5..+6 (F# major, not Gb)."""
+    import numpy as np
     out = keys.copy()
     if len(out):
         s = (out["sharps"].astype(int) + 7 * semitones) % 12

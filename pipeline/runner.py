@@ -18,26 +18,23 @@ A run has four steps:
 from __future__ import annotations
 
 import hashlib
-import json
-import os
 import sqlite3
-import stat as stat_mod
 import sys
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
-from . import __version__, outputs
+from . import __version__, outputs, uptodate
 from .config import Config
-from .errors import LedgerError, MidisiftError, UsageError
+from .errors import LedgerError, MidisiftError
 from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger
 from .lock import OutputLock
 from .records import Compactor, TrailValues
+from .report import RunReport
+from .sources import MIDI_SUFFIXES, SourceFile, check_folders, discover, fingerprint  # noqa: F401 (re-exported)
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
-MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
 BATCH = 256  # results + artifacts per ledger transaction (also flushed every 2 s)
 #: Stage names of the byte-identical shortcut and of the runner's own state.
 RUNNER_STATE = "_runner"
@@ -48,17 +45,6 @@ def _reduce_by_fields(obj: Any) -> tuple:
     goes through Python-level __getstate__/__setstate__ and made every task and outcome sent
     to and from the workers 4-5 times slower to pickle."""
     return (type(obj), tuple(getattr(obj, name) for name in obj.__slots__))
-
-
-@dataclass(slots=True)  # memory: one per file, no __dict__
-class SourceFile:
-    """One input file: path relative to the input folder (POSIX form) and its fingerprint."""
-
-    rel: str
-    path: str  # memory: a str, not a Path (a Path object costs several hundred bytes)
-    size: int
-    mtime_ns: int
-    sha256: str = ""
 
 
 @dataclass(slots=True)
@@ -100,134 +86,6 @@ class FileOutcome:
     artifacts: dict[str, dict[str, Any]] = field(default_factory=dict)
     staged: list[tuple[str, str]] = field(default_factory=list)  # (suffix, staging path)
     seconds: float = 0.0
-
-
-@dataclass
-class RunReport:
-    """What a run did: counts per stage and reason, timings, where outputs went."""
-
-    output: Path
-    files: int
-    kept: int
-    dropped: dict[tuple[str, str], int]
-    timings: dict[str, float]
-    computed: int
-    cached: int
-    parts: dict[str, int]
-    notes: list[str]
-
-    def table(self) -> str:
-        lines = [f"{'files in':<34}{self.files:>8}", f"{'kept':<34}{self.kept:>8}"]
-        for (stage, reason), n in sorted(self.dropped.items(), key=lambda kv: (-kv[1], kv[0])):
-            lines.append(f"{'dropped  ' + stage + ' / ' + reason:<34}{n:>8}")
-        for part, n in self.parts.items():
-            lines.append(f"{'split  ' + part:<34}{n:>8}")
-        lines.append(f"{'contents decoded / reused':<34}{self.computed:>8} / {self.cached}")
-        lines.append(f"{'seconds':<34}{self.timings.get('total', 0.0):>8.2f}")
-        lines.append(f"output: {self.output}")
-        lines.extend(self.notes)
-        return "\n".join(lines)
-
-
-# ---------------------------------------------------------------------------------------------
-# discovery and fingerprints
-
-def check_folders(input_dir: Path, output_dir: Path) -> None:
-    """Refuse an output folder that is, or contains, the input folder (a run rewrites its output
-    folder); checked before anything is created."""
-    input_dir, out_res = input_dir.resolve(), output_dir.resolve()
-    if out_res == input_dir or out_res in input_dir.parents:
-        raise UsageError(f"the output folder {out_res} is, or contains, the input folder {input_dir}; "
-                         "a run rewrites its output folder, so choose an output folder outside the input")
-
-
-def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[SourceFile], list[str]]:
-    """All MIDI files below ``input_dir`` sorted by relative path, plus notes for the user.
-
-    Reliability/safety: an output folder that is, or contains, the input folder is refused (the
-    run cleans its own folder); one inside the input folder is not searched. Symlinks are not
-    followed out of the input folder; unreadable files and names that are not valid UTF-8 are
-    skipped with a note."""
-    input_dir = input_dir.resolve()
-    out_res = output_dir.resolve() if output_dir is not None else None
-    if output_dir is not None:
-        check_folders(input_dir, output_dir)
-    notes: list[str] = []
-    found: list[SourceFile] = []
-    for root, dirs, names in os.walk(input_dir, followlinks=False):
-        rootp = Path(root)
-        if out_res is not None and (rootp == out_res or out_res in rootp.parents):
-            dirs[:] = []
-            continue
-        dirs.sort()
-        if out_res is not None:
-            kept_dirs = []
-            for d in dirs:
-                if (rootp / d).resolve() == out_res:
-                    notes.append(f"note: the output folder {out_res} lies inside the input folder; it is not searched")
-                    continue
-                kept_dirs.append(d)
-            dirs[:] = kept_dirs
-        rel_root = os.path.relpath(root, input_dir)
-        prefix = "" if rel_root == "." else rel_root.replace(os.sep, "/") + "/"
-        for name in names:
-            if not name.lower().endswith(MIDI_SUFFIXES):
-                continue
-            full = os.path.join(root, name)
-            rel = prefix + name
-            try:
-                rel.encode("utf-8")
-            except UnicodeEncodeError:
-                notes.append(f"note: skipped {os.fsencode(rel)!r}: its name is not "
-                             "valid UTF-8 (rename it to include it)")
-                continue
-            try:  # speed: one lstat per plain file (a stat more for a symlink), no Path objects
-                st = os.lstat(full)
-                if stat_mod.S_ISLNK(st.st_mode):
-                    target = Path(full).resolve()
-                    if input_dir not in target.parents or (out_res is not None and out_res in target.parents):
-                        notes.append(f"note: skipped symlink {rel} pointing outside the input folder "
-                                     "(or into the output folder)")
-                        continue
-                    st = os.stat(full)
-            except (OSError, RuntimeError) as e:  # RuntimeError: a symlink loop (Python < 3.13)
-                notes.append(f"note: cannot stat {rel}: {getattr(e, 'strerror', None) or e}")
-                continue
-            if not stat_mod.S_ISREG(st.st_mode):
-                continue
-            if not os.access(full, os.R_OK):
-                notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
-                continue
-            found.append(SourceFile(rel, full, st.st_size, st.st_mtime_ns))
-    found.sort(key=lambda f: f.rel)
-    return found, notes
-
-
-def fingerprint(files: list[SourceFile], known: dict[str, tuple[int, int, str]]) -> list[tuple[str, int, int, str]]:
-    """Fill ``sha256`` of each file; hash only files whose size or mtime changed. Returns new rows.
-
-    A file that vanished or became unreadable since discovery is removed from ``files`` (in
-    place), so it is simply not part of this run."""
-    changed = []
-    gone = []
-    for f in files:
-        rec = known.get(f.rel)
-        if rec is not None and rec[0] == f.size and rec[1] == f.mtime_ns:
-            f.sha256 = rec[2]
-            continue
-        h = hashlib.sha256()
-        try:
-            with open(f.path, "rb") as fh:
-                for block in iter(lambda: fh.read(1 << 20), b""):
-                    h.update(block)
-        except OSError:  # reliability: removed or made unreadable during the run
-            gone.append(f)
-            continue
-        f.sha256 = h.hexdigest()
-        changed.append((f.rel, f.size, f.mtime_ns, f.sha256))
-    if gone:
-        files[:] = [f for f in files if f not in gone]
-    return changed
 
 
 # ---------------------------------------------------------------------------------------------
@@ -373,15 +231,17 @@ class Runner:
         timings["discover"] = time.perf_counter() - t
 
         state_key = self._state_key(files)
+        qkey = uptodate.quick_key(cfg.raw, files)
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
+            unchanged["counts"]["quick_key"] = qkey  # the config may be written differently
             unchanged["counts"].update(computed=0, reused=unchanged["counts"].get("contents", 0))
             unchanged["timings_s"] = {"discover": round(timings["discover"], 4),
                                       "total": round(time.perf_counter() - t_start, 4)}
             unchanged["unchanged_since_last_run"] = True
             outputs.write_summary(cfg.output, unchanged)
             ledger.finish_run(run_id, unchanged["counts"])
-            return self._report_from(unchanged, time.perf_counter() - t_start, notes)
+            return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)
 
         # distinct contents, each represented by its first source path
         rep: dict[str, str] = {}
@@ -427,6 +287,7 @@ class Runner:
             summary = outputs.build_summary(tally, walk, self.stages, timings, computed,
                                             len(rep) - computed, placed, cfg)
             summary["counts"]["state_key"] = state_key
+            summary["counts"]["quick_key"] = qkey
             return summary
 
         # one pass over the files writes the manifest and records the trails for explain, all
@@ -451,8 +312,7 @@ class Runner:
         options fingerprint (which includes its version), the output fingerprint and the
         package version."""
         h = hashlib.sha256()
-        for f in files:
-            h.update(f"{f.rel}\0{f.sha256}\n".encode("utf-8", "surrogateescape"))
+        uptodate.files_digest(h, files)
         for st in self.stages:
             h.update(f"{st.name}:{st.fingerprint}\n".encode())
         h.update(self.output_fp.encode())
@@ -460,37 +320,11 @@ class Runner:
         return h.hexdigest()
 
     def _unchanged(self, ledger: Ledger, state_key: str) -> dict | None:
-        """The last run's summary when this run would reproduce it exactly, else None.
-
-        True when the last completed run had the same state key, no flag asks for new work, and
-        its outputs are all still in place (manifest, split lists, every normalized file)."""
+        """The last run's summary when this run would reproduce it exactly, else None (no flag
+        may ask for new work; see ``pipeline.uptodate``)."""
         if self.fresh or self.reassign or self.retry_failed:
             return None
-        last = ledger.last_run()
-        if last is None or last["counts"].get("state_key") != state_key:
-            return None
-        out = self.config.output
-        try:
-            summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            return None
-        if summary.get("counts", {}).get("state_key") != state_key or not (out / "manifest.jsonl").is_file():
-            return None
-        parts = summary.get("split", {}).get("outputs", {})
-        if any(not (out / "splits" / f"{p}.txt").is_file() for p in parts):
-            return None
-        base, isfile = str(out), os.path.isfile
-        if any(not isfile(os.path.join(base, rel)) for rel in ledger.outputs()):
-            return None
-        return summary
-
-    def _report_from(self, summary: dict, seconds: float, notes: list[str]) -> RunReport:
-        dropped = {(stage, reason): n for stage, info in summary.get("stages", {}).items()
-                   for reason, n in info.get("dropped", {}).items()}
-        counts = summary["counts"]
-        return RunReport(self.config.output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
-                         counts.get("contents", 0), dict(summary.get("split", {}).get("outputs", {})),
-                         notes + ["nothing changed since the last run: outputs are up to date"])
+        return uptodate.last_summary_if(ledger, self.config.output, "state_key", state_key)
 
     # planning -------------------------------------------------------------------------------
     def _plan(self, sha: str, rel: str, path: str, cache: dict, art_keys: dict, existing_out: dict,

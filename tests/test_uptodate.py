@@ -1,0 +1,127 @@
+"""The nothing-changed shortcut of ``midisift run`` (pipeline.uptodate).
+
+An up-to-date rerun must be recognised without building the stages (no numpy import), leave
+every output byte as it was, and never hide a change: a changed option, a new or removed file or
+a missing output sends the run down the normal path. The corpus is the invented demo corpus:
+these are checks of our own contract, not of outside references.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.cli import main
+from pipeline.sources import MIDI_SUFFIXES
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "sample_corpus"
+
+
+def _summary(out: Path) -> dict:
+    return json.loads((out / "summary.json").read_text(encoding="utf-8"))
+
+
+def _runs(out: Path) -> int:
+    with sqlite3.connect(out / "state.sqlite") as db:
+        return db.execute("SELECT COUNT(*) FROM runs WHERE status='complete'").fetchone()[0]
+
+
+def _cli(config: Path, inp: Path, out: Path, *extra: str) -> int:
+    return main(["run", str(config), "--input", str(inp), "--output", str(out), "--quiet", *extra])
+
+
+@pytest.fixture()
+def corpus(tmp_path) -> Path:
+    inp = tmp_path / "in"
+    shutil.copytree(DEMO / "sessions", inp / "sessions")
+    shutil.copytree(DEMO / "practice", inp / "practice")
+    return inp
+
+
+@pytest.fixture()
+def config(tmp_path) -> Path:
+    raw = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text())
+    p = tmp_path / "cfg.yaml"
+    p.write_text(yaml.safe_dump(raw))
+    return p
+
+
+def _snapshot(out: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(out)): p.read_bytes() for p in sorted(out.rglob("*"))
+            if p.is_file() and p.name not in ("summary.json",) and not p.name.startswith("state.sqlite")}
+
+
+def test_up_to_date_rerun_imports_no_stage_and_changes_nothing(corpus, config, tmp_path):
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out, "--workers", "2") == 0
+    before = _snapshot(out)
+    runs = _runs(out)
+    # a fresh interpreter: the shortcut must not import numpy or any stage module
+    code = ("import sys; from pipeline.cli import main; "
+            f"rc = main(['run', {str(config)!r}, '--input', {str(corpus)!r}, '--output', {str(out)!r}, "
+            "'--quiet', '--workers', '1']); "
+            "print(rc, 'numpy' in sys.modules, any(m.startswith('pipeline.stages') for m in sys.modules))")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, check=True)
+    assert proc.stdout.split() == ["0", "False", "False"], proc.stdout + proc.stderr
+    assert _snapshot(out) == before
+    summary = _summary(out)
+    assert summary["unchanged_since_last_run"] is True
+    assert summary["counts"]["computed"] == 0
+    assert _runs(out) == runs + 1  # the rerun is logged like any run
+
+
+def test_touched_file_with_the_same_bytes_stays_up_to_date(corpus, config, tmp_path):
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    victim = next(p for p in sorted(corpus.rglob("*.mid")))
+    st = victim.stat()
+    os.utime(victim, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+    assert _cli(config, corpus, out) == 0
+    assert _summary(out).get("unchanged_since_last_run") is True
+    rel = victim.relative_to(corpus).as_posix()
+    with sqlite3.connect(out / "state.sqlite") as db:
+        (mtime,) = db.execute("SELECT mtime_ns FROM sources WHERE path=?", (rel,)).fetchone()
+    assert mtime == st.st_mtime_ns + 10**9  # the new mtime is recorded: no rehash next time
+
+
+@pytest.mark.parametrize("change", ["option", "new_file", "removed_file", "missing_output", "fresh"])
+def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    assert _cli(config, corpus, out) == 0
+    assert _summary(out).get("unchanged_since_last_run") is True
+    extra: tuple[str, ...] = ()
+    if change == "option":
+        raw = yaml.safe_load(config.read_text())
+        for entry in raw["stages"]:
+            if "filter" in entry:
+                entry["filter"] = dict(entry["filter"] or {}, min_notes=40)
+        config.write_text(yaml.safe_dump(raw))
+    elif change == "new_file":
+        src = next(p for p in sorted(corpus.rglob("*.mid")))
+        shutil.copy2(src, corpus / "a_new_copy.mid")
+    elif change == "removed_file":
+        next(p for p in sorted(corpus.rglob("*.mid"))).unlink()
+    elif change == "missing_output":
+        next(p for p in sorted((out / "midi").rglob("*.mid"))).unlink()
+    else:
+        extra = ("--fresh",)
+    assert _cli(config, corpus, out, *extra) == 0
+    summary = _summary(out)
+    assert not summary.get("unchanged_since_last_run")
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    assert sorted(r["source"] for r in rows) == sorted(
+        p.relative_to(corpus).as_posix() for p in corpus.rglob("*") if p.suffix.lower() in MIDI_SUFFIXES)
+    if change == "missing_output":  # the normal run puts the file back
+        kept = [r for r in rows if r["status"] == "kept"]
+        assert all((out / r["output"]).is_file() for r in kept)
+    if change == "option":
+        assert summary["options"]["filter"]["min_notes"] == 40
