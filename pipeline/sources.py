@@ -50,6 +50,8 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
         check_folders(input_dir, output_dir)
     notes: list[str] = []
     found: list[SourceFile] = []
+    # speed: the superuser reads every file it can stat (one access() call per file less)
+    is_root = hasattr(os, "geteuid") and os.geteuid() == 0
     for root, dirs, names in os.walk(input_dir, followlinks=False):
         rootp = Path(root)
         if out_res is not None and (rootp == out_res or out_res in rootp.parents):
@@ -64,12 +66,13 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
                     continue
                 kept_dirs.append(d)
             dirs[:] = kept_dirs
+        root_sep = root + os.sep
         rel_root = os.path.relpath(root, input_dir)
         prefix = "" if rel_root == "." else rel_root.replace(os.sep, "/") + "/"
         for name in names:
             if not name.lower().endswith(MIDI_SUFFIXES):
                 continue
-            full = os.path.join(root, name)
+            full = root_sep + name
             rel = prefix + name
             try:
                 rel.encode("utf-8")
@@ -91,7 +94,7 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
                 continue
             if not stat_mod.S_ISREG(st.st_mode):
                 continue
-            if not os.access(full, os.R_OK):
+            if not (is_root or os.access(full, os.R_OK)):
                 notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
                 continue
             found.append(SourceFile(rel, full, st.st_size, st.st_mtime_ns))
