@@ -82,9 +82,16 @@ def output_fingerprint(stages: list) -> str:
     return hashlib.sha256(f"encoder{ENCODER_VERSION}:{tr}".encode()).hexdigest()[:16]
 
 
-def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging: str, stem: str
-           ) -> list[tuple[str, str]]:
-    """Encode the normalized output(s) of one piece into the staging folder (worker side)."""
+def staged_path(staging: str, sha: str, output_fp: str, suffix: str) -> str:
+    """Where a worker stages one normalized output of a content (the name ties it to the
+    content and the output fingerprint; ``suffix`` is "" or an augmentation copy's, e.g. ".t+3")."""
+    return os.path.join(staging, f"{sha[:16]}_{output_fp[:8]}{suffix}.mid")
+
+
+def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging: str, sha: str,
+           output_fp: str) -> tuple[str, ...]:
+    """Encode the normalized output(s) of one piece into the staging folder (worker side);
+    returns their suffixes (``staged_path`` gives each file's path)."""
     from .encode import encode
     versions: list[tuple[str, Any, int]]
     tplan = next((p for p in stage_plans if p.name == "transpose"), None)
@@ -93,15 +100,11 @@ def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging
         versions = Transpose.output_notes(piece, transpose_values)
     else:
         versions = [("", piece.notes, 0)]
-    staged = []
-    folder = Path(staging)
     for suffix, notes, semitones in versions:
-        dst = folder / f"{stem}{suffix}.mid"
         out_piece = piece if semitones == 0 else replace(
             piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones))
-        _write_staged(dst, encode(out_piece, notes))
-        staged.append((suffix, str(dst)))
-    return staged
+        _write_staged(Path(staged_path(staging, sha, output_fp, suffix)), encode(out_piece, notes))
+    return tuple(suffix for suffix, _, _ in versions)
 
 
 def _write_staged(path: Path, data: bytes) -> None:
@@ -167,6 +170,7 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     from_staging = False
     made: set[str] = set()
     base = str(out_dir)  # speed: plain strings, no Path object per file
+    staging = str(out_dir / STAGING)
     for sha in rep:
         if walk.status.get(sha) is not None:
             continue
@@ -174,9 +178,9 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
         sources: dict[str, str] = {}
         for rel in existing.get(sha, []):
             sources[_suffix_of(rel)] = os.path.join(base, rel)
-        for suffix, staged in walk.staged.get(sha, []):
+        for suffix in walk.staged.get(sha, ()):
             if suffix not in sources:
-                sources[suffix] = str(staged)
+                sources[suffix] = staged_path(staging, sha, fp, suffix)
         paths = []
         for suffix in sorted(sources, key=lambda s: (s != "", s)):
             rel = f"midi/{part}/{sha[:16]}{suffix}.mid"

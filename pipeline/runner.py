@@ -84,7 +84,7 @@ class FileOutcome:
     sha256: str
     results: dict[str, dict] = field(default_factory=dict)
     artifacts: dict[str, dict[str, Any]] = field(default_factory=dict)
-    staged: list[tuple[str, str]] = field(default_factory=list)  # (suffix, staging path)
+    staged: tuple[str, ...] = ()  # suffixes of the staged outputs (outputs.staged_path)
     seconds: float = 0.0
 
 
@@ -141,7 +141,7 @@ def process_file(task: FileTask) -> FileOutcome:
             break
     if survived and task.render:
         out.staged = outputs.render(piece, task.stages, transpose_values, task.render,
-                                    f"{task.sha256[:16]}_{task.output_fp[:8]}")
+                                    task.sha256, task.output_fp)
     out.seconds = time.perf_counter() - t0
     return out
 
@@ -262,6 +262,7 @@ class Runner:
                 tasks.append(task)
         computed = len(tasks)
         self._execute(ledger, tasks, cache)
+        del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
@@ -398,11 +399,12 @@ class Runner:
         return FileTask(sha, str(path), rel, plans, str(self.config.output / outputs.STAGING), self.output_fp)
 
     def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict,
-                 staged: dict[str, list[tuple[str, str]]] | None = None) -> None:
+                 staged: dict[str, tuple[str, ...]] | None = None) -> None:
         if not tasks:
             return
         if staged is None:
             staged = self._staged = {}
+        suffixes: dict[tuple[str, ...], tuple[str, ...]] = {}
         # one bar per per-file stage (files/s): validate's counts every file decoded, the others
         # the files whose result for that stage came back (a dropped file stops early)
         file_stages = [s.name for s in self.stages if s.kind == "file"]
@@ -423,8 +425,8 @@ class Runner:
                     pending_r.append((oc.sha256, name, fps[name], r))
                 for name, arts in oc.artifacts.items():
                     pending_a.append((oc.sha256, name, fps[name], arts))
-                if oc.staged:
-                    staged[oc.sha256] = oc.staged
+                if oc.staged:  # memory: the same few suffix tuples, shared (paths are derived)
+                    staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
                 bar.update(1)
                 for name in oc.results:
                     if name in stage_bars:
@@ -585,7 +587,7 @@ class Walk:
     ``reason``, ``detail``, ``values``, ``thresholds``) in stage order, one per stage it
     reached; ``stage_names`` names them. They are the result cache's own records."""
 
-    staged: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
+    staged: dict[str, tuple[str, ...]] = field(default_factory=dict)  # sha -> staged suffixes
     status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
     trails: dict[str, list] = field(default_factory=dict)
     artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)
