@@ -41,9 +41,8 @@ RUNNER_STATE = "_runner"
 
 
 def _reduce_by_fields(obj: Any) -> tuple:
-    """Pickle a slotted dataclass as (class, field values): the default for slotted classes
-    goes through Python-level __getstate__/__setstate__ and made every task and outcome sent
-    to and from the workers 4-5 times slower to pickle."""
+    """Pickle a slotted dataclass as (class, field values) instead of the default state dicts
+    of slotted classes: about half the bytes per task (a stage plan: 175 instead of 328)."""
     return (type(obj), tuple(getattr(obj, name) for name in obj.__slots__))
 
 
