@@ -191,14 +191,13 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     sorted. With ``only`` (a boolean mask over the rows), just the pairs with at least one
     row in it (incremental reruns pair the new files against everything, not all with all).
 
-    One band at a time (``pipeline.similarity._band_pairs``), merged every few bands: memory
-    stays near the number of distinct pairs instead of rows x bands x run length (a
-    100,000-file run held several GB in the all-bands-at-once form). Empty signatures (no
-    shingles) never pair.
+    One band at a time (``pipeline.similarity.banded_pair_codes``): memory stays near the
+    number of distinct pairs instead of rows x bands x run length (a 100,000-file run held
+    several GB in the all-bands-at-once form). Empty signatures (no shingles) never pair.
     """
     import numpy as np
 
-    from .similarity import _U32_MAX, _band_pairs, band_key, check_banding
+    from .similarity import _U32_MAX, banded_pair_codes, check_banding
 
     n = len(sig)
     live = np.flatnonzero(~np.all(np.asarray(sig) == _U32_MAX, axis=1)) if n else np.zeros(0, np.int64)
@@ -210,20 +209,10 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     err = check_banding(sig.shape[1], bands)
     if err:
         raise ValueError(err)
-    rows = sig[live]
     m = len(live)
-    codes = np.zeros(0, dtype=np.int64)
-    found: list = []
-    for band in range(bands):
-        found.append(_band_pairs(band_key(rows, bands, band), is_new))
-        if len(found) == 8 or band == bands - 1:
-            codes = np.unique(np.concatenate([codes, *found]))
-            found = []
+    codes = banded_pair_codes(sig[live], bands, is_new)
     return np.stack((live[codes // m], live[codes % m]), axis=1).astype(np.int64)
 
-
-#: Candidate pairs whose MinHash estimate is computed at once (bounds the gathers to ~32 MB).
-_EST_CHUNK = 1 << 16
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
 #: 0.9 gives 2-row bands at 0.2 with 128 permutations (0.93 at 0.2, above 0.99 from 0.26); on
@@ -248,7 +237,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .similarity import set_similarity
+    from .similarity import pair_estimates, set_similarity
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -260,12 +249,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     if not len(pairs):
         return []
     ia, ib = pairs[:, 0], pairs[:, 1]
-    # memory: the estimate in chunks (two (pairs x num_perm) gathers of millions of candidate
-    # pairs were the peak of a 100,000-file run)
-    est = np.empty(len(pairs), dtype=np.float64)
-    for lo in range(0, len(pairs), _EST_CHUNK):
-        hi = lo + _EST_CHUNK
-        est[lo:hi] = (sig[ia[lo:hi]] == sig[ib[lo:hi]]).mean(axis=1)
+    est = pair_estimates(sig, ia, ib)
     # An excerpt pair scores containment c with Jaccard as low as c / (1 + 1/0.75 - c) (the
     # smaller set holds >= 0.75 of the larger, see set_similarity), so the estimate floor sits
     # below that bound, minus the estimate's sampling error sqrt(J(1-J)/num_perm).

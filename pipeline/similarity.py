@@ -249,17 +249,7 @@ class LSHIndex:
                   else np.array([k in new for k in self.ids]))
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
-        sig = self.matrix()
-        # memory: one band's keys at a time, merged every 8 bands, so a pair found in many
-        # bands is held about once
-        codes = np.zeros(0, dtype=np.int64)
-        found: list[np.ndarray] = []
-        for band in range(self.bands):
-            found.append(_band_pairs(band_key(sig, self.bands, band), is_new))
-            if len(found) == 8 or band == self.bands - 1:
-                codes = np.unique(np.concatenate([codes, *found]))
-                found = []
-        return codes
+        return banded_pair_codes(self.matrix(), self.bands, is_new)
 
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
@@ -295,10 +285,10 @@ class LSHIndex:
         sizes = np.asarray(set_sizes, dtype=np.float64)
         keep = np.empty(len(codes), dtype=bool)
         t = float(threshold)
-        for lo in range(0, len(codes), 1 << 16):  # memory: bounded (pairs x num_perm) gathers
-            c = codes[lo:lo + (1 << 16)]
+        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+            c = codes[lo:lo + PAIR_CHUNK]
             i, j = c // n, c % n
-            est = (sig[i] == sig[j]).mean(axis=1)
+            est = pair_estimates(sig, i, j)
             si, sj = sizes[i], sizes[j]
             small, large = np.minimum(si, sj), np.maximum(si, sj)
             rho = small / np.maximum(large, 1.0)
@@ -317,9 +307,40 @@ class LSHIndex:
         if any(ids[k] >= ids[k + 1] for k in range(len(ids) - 1)):
             raise ValueError("iter_sorted_pairs needs ids added in strictly increasing order")
         n = len(ids)
-        for lo in range(0, len(codes), 1 << 16):  # memory: a chunk of Python ints at a time
-            for c in codes[lo:lo + (1 << 16)].tolist():
+        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: a chunk of Python ints at a time
+            for c in codes[lo:lo + PAIR_CHUNK].tolist():
                 yield ids[c // n], ids[c % n]
+
+
+#: Candidate pairs handled at once where a step makes per-pair arrays (bounds the
+#: (pairs x num_perm) gathers of ``pair_estimates`` to about 32 MB).
+PAIR_CHUNK = 1 << 16
+
+
+def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """MinHash Jaccard estimates (share of equal values) of the row pairs ``(i[k], j[k])`` of
+    a signature matrix, in chunks of ``PAIR_CHUNK`` (memory: two full gathers of millions of
+    candidate pairs were the peak of a 100,000-file run)."""
+    est = np.empty(len(i), dtype=np.float64)
+    for lo in range(0, len(i), PAIR_CHUNK):
+        hi = lo + PAIR_CHUNK
+        est[lo:hi] = (sig[i[lo:hi]] == sig[j[lo:hi]]).mean(axis=1)
+    return est
+
+
+def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray) -> np.ndarray:
+    """Sorted unique codes ``i * n + j`` (``i < j``) of the rows of ``sig`` sharing a band,
+    keeping pairs with at least one ``is_new`` row. One band's keys at a time, merged every
+    8 bands, so a pair found in many bands is held about once (the whole (rows x bands) key
+    table and its temporaries were several hundred MB at 100,000 files)."""
+    codes = np.zeros(0, dtype=np.int64)
+    found: list[np.ndarray] = []
+    for band in range(bands):
+        found.append(_band_pairs(band_key(sig, bands, band), is_new))
+        if len(found) == 8 or band == bands - 1:
+            codes = np.unique(np.concatenate([codes, *found]))
+            found = []
+    return codes
 
 
 #: Buckets up to this size are paired by vectorized offsets; bigger ones one by one.
