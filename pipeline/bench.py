@@ -128,7 +128,7 @@ def _corpus_ok(folder: Path, count: int, seed: int) -> bool:
 
 def midi_files(folder: Path) -> list[Path]:
     """The MIDI files of a corpus in path order (same suffixes as the runner)."""
-    from .runner import MIDI_SUFFIXES
+    from .sources import MIDI_SUFFIXES
     return sorted(p for p in folder.rglob("*") if p.suffix.lower() in MIDI_SUFFIXES and p.is_file())
 
 

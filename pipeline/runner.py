@@ -32,7 +32,7 @@ from .ledger import Ledger
 from .lock import OutputLock
 from .records import Compactor, TrailValues
 from .report import RunReport
-from .sources import MIDI_SUFFIXES, SourceFile, check_folders, discover, fingerprint  # noqa: F401 (re-exported)
+from .sources import SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
 BATCH = 256  # results + artifacts per ledger transaction (also flushed every 2 s)
@@ -233,13 +233,8 @@ class Runner:
         qkey = uptodate.quick_key(cfg.raw, files)
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
-            unchanged["counts"]["quick_key"] = qkey  # the config may be written differently
-            unchanged["counts"].update(computed=0, reused=unchanged["counts"].get("contents", 0))
-            unchanged["timings_s"] = {"discover": round(timings["discover"], 4),
-                                      "total": round(time.perf_counter() - t_start, 4)}
-            unchanged["unchanged_since_last_run"] = True
-            outputs.write_summary(cfg.output, unchanged)
-            ledger.finish_run(run_id, unchanged["counts"])
+            uptodate.record_unchanged(ledger, cfg.output, unchanged, run_id, qkey,
+                                      timings["discover"], t_start)
             return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)
 
         # distinct contents, each represented by its first source path

@@ -19,10 +19,9 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import time
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any
 
 from . import __version__
 from .report import RunReport
@@ -61,29 +60,11 @@ def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
     parts = summary.get("split", {}).get("outputs", {})
     if any(not (out / "splits" / f"{p}.txt").is_file() for p in parts):
         return None
-    if not outputs_present(out, ledger.outputs()):
+    from .outputs import present_files
+    recorded = ledger.outputs()
+    if len(present_files(out, recorded)) != len(recorded):
         return None
     return summary
-
-
-def outputs_present(out: Path, rels: Iterable[str]) -> bool:
-    """Whether every path (relative to ``out``) is a file, listing each folder once instead of
-    one stat per file (an up-to-date rerun of 100,000 files checks them all)."""
-    listed: dict[str, set[str]] = {}
-    base = str(out)
-    for rel in rels:
-        folder, _, name = rel.rpartition("/")
-        names = listed.get(folder)
-        if names is None:
-            try:
-                with os.scandir(os.path.join(base, folder) if folder else base) as it:
-                    names = {e.name for e in it if e.is_file()}
-            except OSError:
-                return False
-            listed[folder] = names
-        if name not in names:
-            return False
-    return True
 
 
 def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -> RunReport:
@@ -96,11 +77,13 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
                      notes + [NOTE])
 
 
-def record_unchanged(ledger: Any, out: Path, summary: dict, config: dict, seconds_discover: float,
-                     t_start: float) -> None:
-    """Log the run and refresh summary.json's timings (the rest of it stays as it was)."""
+def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,
+                     seconds_discover: float, t_start: float) -> None:
+    """Finish the logged run ``run_id`` that found nothing to do: summary.json keeps the last
+    run's content with fresh timings and this run's ``quick_key`` (the config may be written
+    differently)."""
     from .outputs import write_summary
-    run_id = ledger.start_run(config)
+    summary["counts"]["quick_key"] = quick
     summary["counts"].update(computed=0, reused=summary["counts"].get("contents", 0))
     summary["timings_s"] = {"discover": round(seconds_discover, 4),
                             "total": round(time.perf_counter() - t_start, 4)}
@@ -152,11 +135,14 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
                 return None  # files added or removed: the normal run records them
             changed = fingerprint(files, known)
             seconds_discover = time.perf_counter() - t
-            summary = last_summary_if(ledger, out, "quick_key", quick_key(raw, files))
+            if changed:  # touched or edited files: keep their hashes for whichever run goes on
+                with ledger.batch():
+                    ledger.put_sources(changed)
+            quick = quick_key(raw, files)
+            summary = last_summary_if(ledger, out, "quick_key", quick)
             if summary is None:
                 return None
             with ledger.batch():
-                ledger.put_sources(changed)  # touched files with the same bytes: new mtimes
-                record_unchanged(ledger, out, summary, {"config": raw, "stages": last["config"].get("stages")},
-                                 seconds_discover, t_start)
+                run_id = ledger.start_run({"config": raw, "stages": last["config"].get("stages")})
+                record_unchanged(ledger, out, summary, run_id, quick, seconds_discover, t_start)
     return report_from(summary, out, time.perf_counter() - t_start, notes)
