@@ -328,7 +328,6 @@ class Runner:
             return None  # a rerun's known files: no plan objects are built for them
         plans: list[StagePlan] = []
         uncertain = False
-        need = False
         fate_known_dropped = False
         # memory: plans without a cached result are the same for every file, so tasks share them
         common = self.__dict__.setdefault("_common_plans", {})
@@ -339,8 +338,6 @@ class Runner:
                 if key not in common:
                     common[key] = StagePlan(st.name, st.opts, st.kind, compute, fingerprint=self._fps[st.name])
                 plans.append(common[key])
-                if compute:
-                    need = True
                 continue
             cached = cache[st.name].get(sha)
             if cached is not None and self.retry_failed and is_retryable(cached):
@@ -350,7 +347,7 @@ class Runner:
                 if key not in common:
                     common[key] = StagePlan(st.name, st.opts, st.kind, True, fingerprint=self._fps[st.name])
                 plans.append(common[key])
-                uncertain = need = True
+                uncertain = True
                 continue
             plans.append(StagePlan(st.name, st.opts, st.kind, False, cached, self._fps[st.name]))
             if not cached["kept"] and not uncertain:
@@ -360,14 +357,13 @@ class Runner:
         render = None
         if not fate_known_dropped and sha not in existing_out and last_status.get(sha, "kept") == "kept":
             render = str(self.config.output / outputs.STAGING)
-            need = True
-        if not need:
-            return None
         return FileTask(sha, str(path), rel, plans, render, self.output_fp)
 
     def _needs_work(self, sha: str, cache: dict, art_keys: dict, existing_out: dict,
                     last_status: dict) -> bool:
-        """Whether ``_plan`` would make a task for this content (the same rules, no objects)."""
+        """Whether this content needs a task: a corpus stage's artifacts or a per-file result is
+        missing (or is a fault that ``--retry-failed`` retries), or the file will probably be
+        kept and has no output yet. ``_plan`` builds the task only then."""
         for st in self.stages:
             if st.kind == "corpus":
                 if sha not in art_keys[st.name]:
