@@ -167,6 +167,20 @@ def _excerpt_pair(rng: np.random.Generator, containment: float, ratio: float,
     return np.sort(a), np.sort(big)
 
 
+def _plausible_of(pairs: list[tuple[np.ndarray, np.ndarray]], threshold: float
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Index each pair's two sets side by side; (the pairs' codes, those the pre-filter keeps)."""
+    index = LSHIndex(128, 64)
+    sizes = []
+    for p, (a, b) in enumerate(pairs):
+        for k, s in ((f"{p:05d}a", a), (f"{p:05d}b", b)):
+            index.add(k, minhash(s))
+            sizes.append(len(s))
+    n = len(index.ids)
+    codes = np.array([(2 * p) * n + 2 * p + 1 for p in range(len(pairs))], dtype=np.int64)
+    return codes, index.plausible_codes(codes, np.array(sizes), threshold)
+
+
 @pytest.mark.parametrize("kind", ["jaccard", "containment"])
 def test_plausible_codes_keep_pairs_at_the_threshold(kind):
     """The MinHash pre-filter must not drop a pair whose exact similarity reaches the threshold.
@@ -176,36 +190,18 @@ def test_plausible_codes_keep_pairs_at_the_threshold(kind):
     (normal tail), so 0 or 1 misses in 1,500 pairs; a wrong bound (Jaccard 0.3 applied to the
     excerpts, min_size_ratio=1) drops about a third of them (526 of 1,500 when measured)."""
     rng = np.random.default_rng(5)
-    index = LSHIndex(128, 64)
-    sizes = []
-    for p in range(1500):
-        if kind == "jaccard":
-            a, b = pair_with_jaccard(rng, 0.3)
-        else:
-            a, b = _excerpt_pair(rng, 0.3, 0.75)
+    pairs = [pair_with_jaccard(rng, 0.3) if kind == "jaccard" else _excerpt_pair(rng, 0.3, 0.75)
+             for _ in range(1500)]
+    for a, b in pairs:
         assert set_similarity(a, b)[0] >= 0.3 - 1e-9
-        for k, s in ((f"{p:05d}a", a), (f"{p:05d}b", b)):
-            index.add(k, minhash(s))
-            sizes.append(len(s))
-    n = len(index.ids)
-    codes = np.array([(2 * p) * n + 2 * p + 1 for p in range(1500)], dtype=np.int64)
-    kept = index.plausible_codes(codes, np.array(sizes), 0.3)
+    codes, kept = _plausible_of(pairs, 0.3)
     assert len(codes) - len(kept) <= 1
 
 
 def test_plausible_codes_drop_unrelated_pairs():
     """Pairs of unrelated sets (Jaccard about 0.02) are dropped: the filter does its job."""
     rng = np.random.default_rng(6)
-    index = LSHIndex(128, 64)
-    sizes = []
-    for p in range(500):
-        a, b = pair_with_jaccard(rng, 0.02)
-        for k, s in ((f"{p:05d}a", a), (f"{p:05d}b", b)):
-            index.add(k, minhash(s))
-            sizes.append(len(s))
-    n = len(index.ids)
-    codes = np.array([(2 * p) * n + 2 * p + 1 for p in range(500)], dtype=np.int64)
-    kept = index.plausible_codes(codes, np.array(sizes), 0.3)
+    codes, kept = _plausible_of([pair_with_jaccard(rng, 0.02) for _ in range(500)], 0.3)
     assert len(kept) < 0.05 * len(codes)
 
 
