@@ -9,6 +9,8 @@ Tables
              + dtype + shape; never pickle) from a corpus stage's per-file ``prepare``
   state      (stage, key) -> JSON saved by a corpus stage in the last completed run
   decisions  source -> the whole decision trail of the last completed run (for ``explain``)
+  row_digests source -> digest of what its manifest row and trail were made from in the last
+             completed run (a rerun reuses the rows whose digest is unchanged)
   outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
   runs       one row per run: when, config, counts, status
 
@@ -49,6 +51,8 @@ CREATE TABLE IF NOT EXISTS state (
     stage TEXT NOT NULL, key TEXT NOT NULL, value TEXT NOT NULL, PRIMARY KEY (stage, key));
 CREATE TABLE IF NOT EXISTS decisions (
     source TEXT PRIMARY KEY, sha256 TEXT, status TEXT NOT NULL, trail TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS row_digests (
+    source TEXT PRIMARY KEY, digest TEXT NOT NULL) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS outputs (
     path TEXT PRIMARY KEY, sha256 TEXT NOT NULL, fingerprint TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS runs (
@@ -123,16 +127,18 @@ class Ledger:
 
     # -- per-file results ------------------------------------------------------------------
     def results_for(self, stage: str, fingerprint: str,
-                    make: Callable[[bool, str | None, str, dict, dict], Any] | None = None) -> dict[str, Any]:
+                    make: Callable[[bool, str | None, str, dict, dict], Any] | None = None, *,
+                    values_as_text: bool = False) -> dict[str, Any]:
         """sha256 -> result dict (kept, reason, detail, values, thresholds) of one stage, or
         what ``make(kept, reason, detail, values, thresholds)`` builds of each row (the runner
-        keeps compact records: no dict per row is built first)."""
+        keeps compact records: no dict per row is built first). With ``values_as_text`` the
+        values reach ``make`` as their stored JSON text (an object with sorted keys), unparsed."""
         out: dict[str, Any] = {}
         loads = json.loads
         if make is None:
             def make(kept, reason, detail, values, thresholds):  # noqa: E306
-                return {"kept": kept, "reason": reason, "detail": detail, "values": values,
-                        "thresholds": thresholds}
+                return {"kept": kept, "reason": reason, "detail": detail,
+                        "values": loads(values) if values_as_text else values, "thresholds": thresholds}
         limits: dict[str, dict] = {}  # a stage's thresholds come from its options: few distinct texts
         for sha, kept, reason, detail, vals, thr in self.db.execute(
                 "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?",
@@ -142,7 +148,7 @@ class Ledger:
                 t = loads(thr)
                 if len(limits) < 256:
                     limits[thr] = t
-            out[sha] = make(bool(kept), reason, detail, loads(vals), t)
+            out[sha] = make(bool(kept), reason, detail, vals if values_as_text else loads(vals), t)
         return out
 
     def put_results(self, rows: Iterable[tuple[str, str, str, dict]]) -> None:
@@ -198,6 +204,28 @@ class Ledger:
         self.db.executemany("INSERT INTO decisions VALUES (?,?,?,?)",
                             ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
 
+    def update_decisions(self, rows: Iterable[tuple[str, str | None, str, list]],
+                         gone: Iterable[str]) -> None:
+        """Replace the trails of some sources (rows as for ``put_decisions``) and forget the
+        sources in ``gone``; the other trails stay as the last run wrote them."""
+        self.db.executemany("DELETE FROM decisions WHERE source=?", ((s,) for s in gone))
+        self.db.executemany("INSERT OR REPLACE INTO decisions VALUES (?,?,?,?)",
+                            ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
+
+    def row_digests(self) -> dict[str, str]:
+        """source -> digest of its manifest row in the last completed run."""
+        return dict(self.db.execute("SELECT source, digest FROM row_digests"))
+
+    def put_row_digests(self, rows: Iterable[tuple[str, str]], gone: Iterable[str] = (), *,
+                        replace: bool = False) -> None:
+        """Record (source, digest) rows; ``replace`` forgets all others first, else only those
+        in ``gone``."""
+        if replace:
+            self.db.execute("DELETE FROM row_digests")
+        else:
+            self.db.executemany("DELETE FROM row_digests WHERE source=?", ((s,) for s in gone))
+        self.db.executemany("INSERT OR REPLACE INTO row_digests VALUES (?,?)", rows)
+
     def decision_statuses(self) -> Iterator[tuple[str, str]]:
         """(sha256, 'kept'|'dropped') of the last completed run; 'kept' wins for shared contents."""
         return self.db.execute(
@@ -244,6 +272,7 @@ class Ledger:
         """Forget cached per-file results and artifacts (``--fresh``); keeps history of runs."""
         self.db.execute("DELETE FROM results")
         self.db.execute("DELETE FROM artifacts")
+        self.db.execute("DELETE FROM row_digests")
 
 
 class _Batch:

@@ -307,28 +307,51 @@ class Tally:
     contents: set[str] = field(default_factory=set)
 
     def add(self, row: dict[str, Any], trail: list) -> None:
+        """Count a row built in this run."""
+        final = None if row["status"] == "kept" else (row["stage"], row["reason"])
+        self.count(row["sha256"], final, row["split"], [step["stage"] for step in trail])
+
+    def count(self, sha: str, final: tuple[str, str] | None, part: str | None,
+              reached: Iterable[str]) -> None:
+        """Count one source: its content, its final (stage, reason) or None when kept, its part
+        and the stages it reached."""
         self.files += 1
-        self.contents.add(row["sha256"])
-        for step in trail:
-            self.reached[step["stage"]] = self.reached.get(step["stage"], 0) + 1
-        if row["status"] == "kept":
+        self.contents.add(sha)
+        for stage in reached:
+            self.reached[stage] = self.reached.get(stage, 0) + 1
+        if final is None:
             self.kept += 1
-            self.parts[row["split"]] = self.parts.get(row["split"], 0) + 1
+            self.parts[part] = self.parts.get(part, 0) + 1
         else:
-            key = (row["stage"], row["reason"])
-            self.dropped_by[key] = self.dropped_by.get(key, 0) + 1
+            self.dropped_by[final] = self.dropped_by.get(final, 0) + 1
 
 
 def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
-                  on_trail: Callable[[Any, dict, list], None] | None = None) -> Iterator[dict[str, Any]]:
+                  on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
+                  reuse: Any = None, corpus_positions: tuple[int, ...] = ()) -> Iterator[dict[str, Any] | str]:
     """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
-    into ``tally``; ``on_trail(file, row, trail)`` sees each file's trail as it passes (the
-    runner records the decisions in the same pass)."""
+    into ``tally``; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it
+    passes (the runner records the decisions in the same pass). With ``reuse`` (a
+    ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line
+    (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded."""
+    from .rowreuse import line_prefix, row_digest
+    old_lines = reuse.lines() if reuse is not None and reuse.usable else None
+    pending = next(old_lines, None) if old_lines is not None else None
     for f in files:
+        digest = row_digest(f, walk, placed, corpus_positions) if reuse is not None else None
+        if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
+            while pending is not None and pending[0] < f.rel:
+                pending = next(old_lines, None)
+            if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
+                final = walk.final(f.rel, f.sha256)
+                part = (walk.value_of(f.sha256, "split") or DEFAULT_PART) if final is None else None
+                tally.count(f.sha256, final, part, walk.reached_names(f.rel, f.sha256))
+                yield pending[1]
+                continue
         row, trail = manifest_row(f, walk, placed)
         tally.add(row, trail)
         if on_trail is not None:
-            on_trail(f, row, trail)
+            on_trail(f, row, trail, digest)
         yield row
 
 
@@ -365,8 +388,11 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
     }
 
 
-def _jsonl(rows: Iterable[dict]) -> Iterator[str]:
-    return (json.dumps(r, ensure_ascii=False, separators=(", ", ": "), default=_default) + "\n" for r in rows)
+def _jsonl(rows: Iterable[dict | str]) -> Iterator[str]:
+    """JSON lines of the rows; a str is a line reused as it is (it ends in a newline)."""
+    dumps = json.dumps
+    for r in rows:
+        yield r if type(r) is str else dumps(r, ensure_ascii=False, separators=(", ", ": "), default=_default) + "\n"
 
 
 def _default(value: Any) -> Any:
@@ -381,7 +407,7 @@ def _default(value: Any) -> Any:
     raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
 
 
-def write_all(out_dir: Path, rows: Iterable[dict], placed: Placed,
+def write_all(out_dir: Path, rows: Iterable[dict | str], placed: Placed,
               summary_of: Callable[[], dict]) -> dict:
     """Write the manifest (streamed from ``rows``), the split lists, then the summary that
     ``summary_of`` builds once the rows are counted; each file atomically, stale split lists

@@ -11,6 +11,7 @@ A ``Result`` reads like the result dict it replaces (``r["kept"]``, ``r["values"
 """
 from __future__ import annotations
 
+import json
 import sys
 from collections.abc import Mapping
 from typing import Any, Iterator
@@ -18,6 +19,8 @@ from typing import Any, Iterator
 __all__ = ["Result", "Compactor", "TrailValues"]
 
 _FIELDS = ("kept", "reason", "detail", "values", "thresholds")
+#: Value-name tuples shared by the results expanded from stored JSON (few distinct ones).
+_SHARED_NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}
 _MISSING = object()
 _intern = sys.intern
 
@@ -25,12 +28,17 @@ _intern = sys.intern
 class Result:
     """One stage's verdict on one file: ``kept``, ``reason``, ``detail``, ``values``,
     ``thresholds``. Read-only; ``values`` builds a new dict on each access (use ``value`` for
-    one name)."""
+    one name).
+
+    A result read from the ledger keeps its values as the stored JSON text until they are first
+    needed (``Compactor.make_stored``): a rerun reads every stored result to know what is kept,
+    but needs the values only of the rows it rebuilds. ``names`` and ``vals`` are then
+    ``None`` and the text; ``expand()`` parses them."""
 
     __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds")
 
-    def __init__(self, kept: bool, reason: str | None, detail: str, names: tuple[str, ...],
-                 vals: tuple, thresholds: dict[str, Any]):
+    def __init__(self, kept: bool, reason: str | None, detail: str, names: tuple[str, ...] | None,
+                 vals: tuple | str, thresholds: dict[str, Any]):
         self.kept = kept
         self.reason = reason
         self.detail = detail
@@ -38,12 +46,28 @@ class Result:
         self.vals = vals
         self.thresholds = thresholds
 
+    def expand(self) -> "Result":
+        """Parse values still held as stored JSON text (no-op otherwise); returns self."""
+        if self.names is None:
+            values = json.loads(self.vals)
+            names = tuple(values)
+            self.names = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
+            self.vals = _compact_values(values)
+        return self
+
     @property
     def values(self) -> dict[str, Any]:
+        if self.names is None:
+            self.expand()
         return dict(zip(self.names, self.vals))
 
     def value(self, name: str, default: Any = None) -> Any:
         """One value by name, without building the values dict."""
+        if self.names is None:
+            # stored JSON has every key as '"name":'; a name not in the text is not a value
+            if f'"{name}":' not in self.vals:
+                return default
+            self.expand()
         try:
             return self.vals[self.names.index(name)]
         except ValueError:
@@ -84,10 +108,16 @@ class Result:
     __hash__ = None  # type: ignore[assignment]
 
     def __reduce__(self) -> tuple:  # plain pickling to and from the workers
+        self.expand()
         return (Result, (self.kept, self.reason, self.detail, self.names, self.vals, self.thresholds))
 
     def __repr__(self) -> str:
         return f"Result({self.to_json()!r})"
+
+
+def _compact_values(values: Mapping[str, Any]) -> tuple:
+    """The values as a tuple, short strings interned (shared between results)."""
+    return tuple(_intern(v) if type(v) is str and len(v) <= 32 else v for v in values.values())
 
 
 class Compactor:
@@ -103,17 +133,27 @@ class Compactor:
         shared = self._names.get(names)
         if shared is None:
             shared = self._names[names] = tuple(_intern(k) for k in names)
-        vals = tuple(_intern(v) if type(v) is str and len(v) <= 32 else v for v in values.values())
+        return Result(bool(kept), _intern(reason) if reason else reason, detail, shared,
+                      _compact_values(values), self._shared_thresholds(thresholds))
+
+    def make_stored(self, kept: bool, reason: str | None, detail: str, values_json: str,
+                    thresholds: dict[str, Any] | None) -> Result:
+        """A result read from the ledger, its values left as the stored JSON text (a JSON
+        object written with sorted keys) until first read."""
+        return Result(bool(kept), _intern(reason) if reason else reason, detail, None,
+                      values_json, self._shared_thresholds(thresholds))
+
+    def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
         t = thresholds if thresholds is not None else {}
         if self._thresholds is not None and t == self._thresholds:
-            t = self._thresholds
-        else:
-            self._thresholds = t
-        return Result(bool(kept), _intern(reason) if reason else reason, detail, shared, vals, t)
+            return self._thresholds
+        self._thresholds = t
+        return t
 
     def of(self, r: Mapping[str, Any] | Result) -> Result:
         """The compact form of a result dict (a ``Result`` is compacted again, sharing more)."""
         if isinstance(r, Result):
+            r.expand()
             return self.make(r.kept, r.reason, r.detail, dict(zip(r.names, r.vals)), r.thresholds)
         return self.make(r["kept"], r.get("reason"), r.get("detail", ""), r.get("values") or {},
                          r.get("thresholds"))
@@ -138,7 +178,7 @@ class TrailValues(Mapping):
     def __iter__(self) -> Iterator[str]:
         seen: dict[str, None] = {}
         for r in self._trail:
-            seen.update(dict.fromkeys(r.names))
+            seen.update(dict.fromkeys(r.expand().names))
         return iter(seen)
 
     def __len__(self) -> int:

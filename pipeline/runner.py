@@ -32,6 +32,7 @@ from .ledger import Ledger
 from .lock import OutputLock
 from .records import Compactor, TrailValues
 from .report import RunReport
+from .rowreuse import RowReuse
 from .sources import SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
@@ -186,6 +187,7 @@ class Runner:
         self.stages: list[Stage] = [sc.build() for sc in config.stages]
         self._fps = {s.name: s.fingerprint for s in self.stages}
         self.output_fp = outputs.output_fingerprint(self.stages)
+        self._recomputed: set[str] = set()  # contents whose per-file results this run computed
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -244,7 +246,9 @@ class Runner:
         path_of = {f.rel: f.path for f in files}
 
         t = time.perf_counter()
-        cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make)
+        # speed: stored values stay JSON text until a row that needs them is rebuilt
+        cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
+                                            values_as_text=True)
                  for s in self.stages if s.kind == "file"}
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) for s in self.stages if s.kind == "corpus"}
         existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp)
@@ -288,12 +292,16 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
+        reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
+        corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger)
+            decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None)
             summary = outputs.write_all(
-                cfg.output, outputs.manifest_rows(files, walk, placed, tally, decisions.add),
+                cfg.output, outputs.manifest_rows(files, walk, placed, tally, decisions.add,
+                                                  reuse, corpus_positions),
                 placed, summary_of)
             decisions.flush()
+            reuse.save(ledger, len(files))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             ledger.finish_run(run_id, summary["counts"])
@@ -312,6 +320,15 @@ class Runner:
             h.update(f"{st.name}:{st.fingerprint}\n".encode())
         h.update(self.output_fp.encode())
         h.update(f"midisift {__version__}".encode())
+        return h.hexdigest()
+
+    def _rows_base(self) -> str:
+        """What every manifest row depends on besides its own file: the stages, their options
+        fingerprints, the output fingerprint and the package version (``pipeline.rowreuse``)."""
+        h = hashlib.sha256()
+        for st in self.stages:
+            h.update(f"{st.name}:{st.kind}:{st.fingerprint}\n".encode())
+        h.update(f"{self.output_fp}\nmidisift {__version__}".encode())
         return h.hexdigest()
 
     def _unchanged(self, ledger: Ledger, state_key: str) -> dict | None:
@@ -409,6 +426,8 @@ class Runner:
         try:
             for oc in run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                 on_fault=fault_outcome):
+                if oc.results:
+                    self._recomputed.add(oc.sha256)
                 for name, r in oc.results.items():
                     r = self._compactor(name).of(r)
                     cache[name][oc.sha256] = r
@@ -534,26 +553,41 @@ class _NoBar:
 
 
 class _DecisionSink:
-    """Buffers the decision rows of a run and writes them in chunks (the first chunk replaces
-    the previous run's rows)."""
+    """Buffers the decision rows (trail and row digest) of a run and writes them in chunks.
+
+    Without ``gone`` the first chunk replaces the previous run's rows; with it (the list of the
+    previous run's sources that are gone), only the rows passed in are replaced, those sources
+    are forgotten, and every other row stays as the previous run wrote it (``rowreuse``)."""
 
     CHUNK = 2000
 
-    def __init__(self, ledger: Ledger):
+    def __init__(self, ledger: Ledger, gone: list[str] | None = None):
         self.ledger = ledger
         self.rows: list[tuple[str, str, str, list]] = []
+        self.digests: list[tuple[str, str]] = []
+        self.gone = gone
         self.first = True
 
-    def add(self, f: SourceFile, row: dict, trail: list) -> None:
+    def add(self, f: SourceFile, row: dict, trail: list, digest: str | None = None) -> None:
         self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped", trail))
+        if digest is not None:
+            self.digests.append((f.rel, digest))
         if len(self.rows) >= self.CHUNK:
             self.flush()
 
     def flush(self) -> None:
-        if self.rows or self.first:
+        if not (self.rows or self.first):
+            return
+        if self.gone is None:
             self.ledger.put_decisions(self.rows, replace=self.first)
-            self.first = False
-            self.rows = []
+            self.ledger.put_row_digests(self.digests, replace=self.first)
+        else:
+            gone = self.gone if self.first else ()
+            self.ledger.update_decisions(self.rows, gone)
+            self.ledger.put_row_digests(self.digests, gone)
+        self.first = False
+        self.rows = []
+        self.digests = []
 
 
 #: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file).
@@ -602,6 +636,15 @@ class Walk:
         except ValueError:
             return None
         return i if i < len(self.trails.get(sha, ())) else None
+
+    def reached_names(self, rel: str, sha: str) -> list[str]:
+        """The stages this source's trail (``trail_of``) has a step for."""
+        n = len(self.trails.get(sha, ()))
+        if self.byte_copy_stage and self.is_byte_copy(rel, sha):
+            idx = self._reached(sha, self.byte_copy_stage)
+            if idx is not None:
+                n = idx + 1
+        return self.stage_names[:n]
 
     def trail_of(self, rel: str, sha: str) -> list:
         """The trail of one source, each step with its ``stage`` name: its content's, cut at

@@ -350,6 +350,30 @@ _SMALL_BUCKET = 32
 def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
     """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band."""
     n = len(col)
+    n_new = int(np.count_nonzero(is_new))
+    if n_new * _FEW_NEW <= n:
+        # incremental: the rows whose key a new row has, found by binary search in the few new
+        # keys instead of sorting the whole band (a rerun with 1% new files)
+        new_keys = np.unique(col[is_new])
+        pos = np.minimum(np.searchsorted(new_keys, col), len(new_keys) - 1)
+        rows = np.flatnonzero(new_keys[pos] == col)
+        if len(rows) < 2:
+            return np.zeros(0, dtype=np.int64)
+        sub = rows[_band_pairs_sorted(col[rows], is_new[rows])]
+        sub.sort(axis=1)
+        return sub[:, 0] * n + sub[:, 1]
+    pairs = _band_pairs_sorted(col, is_new)
+    return pairs[:, 0] * n + pairs[:, 1]
+
+
+#: Below one new row in this many, a band pairs only the buckets a new row is in.
+_FEW_NEW = 16
+
+
+def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
+    """Row pairs ``(i, j)``, ``i < j``, of rows with equal keys ``col``, at least one of them
+    ``is_new``: an ``(M, 2)`` int64 array (by sorting the band)."""
+    n = len(col)
     order = np.argsort(col, kind="stable")
     sc = col[order]
     starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
@@ -359,7 +383,7 @@ def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
         # before pairing (a rerun with 1% new files then pairs ~1% of the buckets)
         wanted = np.maximum.reduceat(is_new[order].astype(np.int8), starts).astype(bool) & (sizes > 1)
         if not wanted.any():
-            return np.zeros(0, dtype=np.int64)
+            return np.zeros((0, 2), dtype=np.int64)
         rows = np.repeat(wanted, sizes)
         order, sc = order[rows], sc[rows]
         sizes = sizes[wanted]
@@ -375,11 +399,10 @@ def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
         i, j = np.triu_indices(sz, _SMALL_BUCKET)  # offsets below _SMALL_BUCKET are done above
         out.append(np.stack([members[i], members[j]], axis=1))
     if not out:
-        return np.zeros(0, dtype=np.int64)
+        return np.zeros((0, 2), dtype=np.int64)
     pairs = np.concatenate(out).astype(np.int64)
     pairs.sort(axis=1)
-    pairs = pairs[is_new[pairs[:, 0]] | is_new[pairs[:, 1]]]
-    return pairs[:, 0] * n + pairs[:, 1]
+    return pairs[is_new[pairs[:, 0]] | is_new[pairs[:, 1]]]
 
 
 def verify_pairs(pairs: list[tuple[str, str]], shingles: dict[str, np.ndarray] | None,

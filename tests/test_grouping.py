@@ -188,19 +188,26 @@ def test_near_links_finds_every_pair_above_threshold_and_no_other():
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1), st.booleans())
-def test_band_candidates_equal_brute_force(n, bands, seed, incremental):
+@given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1),
+       st.sampled_from(["all", "a fifth", "one"]))
+def test_band_candidates_equal_brute_force(n, bands, seed, marked):
     """The banded candidate search equals the definition of LSH banding (Mining of Massive
     Datasets, ch. 3: a pair is a candidate when any band of its two signatures is equal),
     checked pair by pair on signatures with small value ranges (many shared bands, runs longer
-    than two, some empty signatures); with ``only``, the pairs touching a marked row. The
-    per-file LSHIndex must give the same pairs."""
+    than two, some empty signatures); with ``only``, the pairs touching a marked row (a fifth
+    of the rows takes the path that sorts each band, one row among 16 or more the path that
+    searches the new rows' keys). The per-file LSHIndex must give the same pairs."""
     from pipeline.similarity import LSHIndex, _U32_MAX
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 32), dtype=np.uint32)
     sig[rng.random(n) < 0.1] = _U32_MAX  # empty shingle sets never pair
-    only = rng.random(n) < 0.2 if incremental else None
+    only = None
+    if marked == "a fifth":
+        only = rng.random(n) < 0.2
+    elif marked == "one":
+        only = np.zeros(n, dtype=bool)
+        only[rng.integers(n)] = True
     rows = 32 // bands
     want = []
     for i in range(n):

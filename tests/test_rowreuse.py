@@ -1,0 +1,140 @@
+"""A rerun reuses the manifest lines and decision trails of files whose rows did not change
+(``pipeline.rowreuse``); what it writes must equal what rebuilding every row writes.
+
+The oracle is the same rerun with every row rebuilt (its old manifest removed, so nothing can be
+reused): manifest bytes, split lists, the ``explain`` trails and the row digests must be equal.
+The corpus is the invented demo corpus (sample_corpus/README.md), changed the ways a user
+changes a corpus: duplicates of kept files added (their clusters' rows change), a byte-identical
+copy added under a name sorting first (it becomes the representative), a file removed.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sqlite3
+from pathlib import Path
+
+import pytest
+
+from pipeline import outputs
+from pipeline.config import load_config
+from pipeline.runner import Runner
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "sample_corpus"
+
+
+def _run(inp: Path, out: Path):
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(inp), output=str(out), workers=1)
+    return Runner(cfg, quiet=True).run()
+
+
+def _tables(out: Path) -> tuple[list, list]:
+    db = sqlite3.connect(out / "state.sqlite")
+    try:
+        return (db.execute("SELECT source, sha256, status, trail FROM decisions ORDER BY source").fetchall(),
+                db.execute("SELECT source, digest FROM row_digests ORDER BY source").fetchall())
+    finally:
+        db.close()
+
+
+def _splits(out: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted((out / "splits").glob("*.txt"))}
+
+
+@pytest.fixture(scope="module")
+def first(tmp_path_factory):
+    """The demo corpus without some of its dedup drops, run once; and the changed corpus."""
+    tmp = tmp_path_factory.mktemp("reuse")
+    probe = tmp / "probe"
+    _run(DEMO, probe)
+    rows = [json.loads(line) for line in (probe / "manifest.jsonl").read_text().splitlines()]
+    held = [r["source"] for r in rows if r["stage"] == "dedup" and r["reason"] == "near_duplicate"][:3]
+    kept = [r["source"] for r in rows if r["status"] == "kept"]
+    assert len(held) == 3 and len(kept) > 10
+    corpus = tmp / "corpus"
+    shutil.copytree(DEMO, corpus, ignore=shutil.ignore_patterns("*.json", "*.md"))
+    hold = tmp / "hold"
+    for rel in held:
+        (hold / rel).parent.mkdir(parents=True, exist_ok=True)
+        shutil.move(corpus / rel, hold / rel)
+    base = tmp / "base"
+    _run(corpus, base)
+    # the changes of the rerun
+    for rel in held:
+        shutil.move(hold / rel, corpus / rel)
+    shutil.copy(corpus / kept[5], corpus / "0000_first_copy.mid")
+    (corpus / kept[-1]).unlink()
+    return corpus, base
+
+
+def _rerun(corpus: Path, base: Path, dest: Path, prepare=None, monkeypatch=None) -> int:
+    shutil.copytree(base, dest)
+    if prepare is not None:
+        prepare(dest)
+    built = []
+    real = outputs.manifest_row
+    if monkeypatch is not None:
+        monkeypatch.setattr(outputs, "manifest_row", lambda f, *a: built.append(f.rel) or real(f, *a))
+    _run(corpus, dest)
+    if monkeypatch is not None:
+        monkeypatch.setattr(outputs, "manifest_row", real)
+    return len(built)
+
+
+def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
+    corpus, base = first
+    built = _rerun(corpus, base, tmp_path / "reuse", monkeypatch=monkeypatch)
+    rebuilt = _rerun(corpus, base, tmp_path / "rebuild",
+                     prepare=lambda d: (d / "manifest.jsonl").unlink(), monkeypatch=monkeypatch)
+    files = len((tmp_path / "rebuild" / "manifest.jsonl").read_text().splitlines())
+    assert rebuilt == files  # the oracle rebuilt every row
+    assert 3 < built < files // 2  # the rerun rebuilt the changed rows only
+    a, b = tmp_path / "reuse", tmp_path / "rebuild"
+    assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
+    assert _splits(a) == _splits(b)
+    assert _tables(a) == _tables(b)
+
+
+def test_manifest_changed_behind_the_ledger_is_rebuilt(first, tmp_path, monkeypatch):
+    """Lines out of place (two swapped, size and mtime restored) are rebuilt, not reused; a
+    manifest whose stat differs from the recorded one is not trusted at all."""
+    corpus, base = first
+
+    def swap(d: Path) -> None:
+        path = d / "manifest.jsonl"
+        st = path.stat()
+        lines = path.read_text(encoding="utf-8").splitlines(keepends=True)
+        lines[1], lines[2] = lines[2], lines[1]
+        path.write_text("".join(lines), encoding="utf-8")
+        os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+
+    def touch(d: Path) -> None:
+        path = d / "manifest.jsonl"
+        st = path.stat()
+        os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+
+    swapped = _rerun(corpus, base, tmp_path / "swapped", prepare=swap, monkeypatch=monkeypatch)
+    plain = _rerun(corpus, base, tmp_path / "plain", monkeypatch=monkeypatch)
+    touched = _rerun(corpus, base, tmp_path / "touched", prepare=touch, monkeypatch=monkeypatch)
+    files = len((tmp_path / "plain" / "manifest.jsonl").read_text().splitlines())
+    assert plain < swapped < files
+    assert touched == files
+    for d in ("swapped", "touched"):
+        assert (tmp_path / d / "manifest.jsonl").read_bytes() == (tmp_path / "plain" / "manifest.jsonl").read_bytes()
+        assert _tables(tmp_path / d) == _tables(tmp_path / "plain")
+
+
+def test_changed_options_rebuild_every_row(first, tmp_path, monkeypatch):
+    """Another stage fingerprint changes the base key: no old row is trusted."""
+    corpus, base = first
+    dest = tmp_path / "opts"
+    shutil.copytree(base, dest)
+    built = []
+    real = outputs.manifest_row
+    monkeypatch.setattr(outputs, "manifest_row", lambda f, *a: built.append(f.rel) or real(f, *a))
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(corpus), output=str(dest), workers=1)
+    cfg.stages[-2].options["min_seconds"] = 9  # filter
+    Runner(cfg, quiet=True).run()
+    assert len(built) == len((dest / "manifest.jsonl").read_text().splitlines())
