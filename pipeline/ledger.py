@@ -20,6 +20,7 @@ leaves a half-written result and the next run picks up what was committed.
 from __future__ import annotations
 
 import json
+import math
 import sqlite3
 import time
 from pathlib import Path
@@ -63,6 +64,13 @@ CREATE TABLE IF NOT EXISTS runs (
 
 def _dumps(value: Any) -> str:
     return json.dumps(value, sort_keys=True, separators=(",", ":"), default=_json_default)
+
+
+def stored_result(r: Any) -> tuple[int, str | None, str, str, str]:
+    """A stage result (dict or ``records.Result``) as the ledger stores it: (kept, reason,
+    detail, values JSON, thresholds JSON). Workers make it, so the main process neither
+    serialises nor compacts per-file values (``records.Compactor.from_stored`` reads it)."""
+    return (int(r["kept"]), r["reason"], r["detail"], _dumps(r["values"]), _dumps(r["thresholds"]))
 
 
 def _json_default(value: Any) -> Any:
@@ -151,12 +159,12 @@ class Ledger:
             out[sha] = make(bool(kept), reason, detail, vals if values_as_text else loads(vals), t)
         return out
 
-    def put_results(self, rows: Iterable[tuple[str, str, str, dict]]) -> None:
-        """rows of (sha256, stage, fingerprint, result dict)."""
+    def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
+        """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
+        (``stored_result``: what the workers send, values already JSON text)."""
         self.db.executemany(
             "INSERT OR REPLACE INTO results VALUES (?,?,?,?,?,?,?,?)",
-            ((sha, stage, fp, int(r["kept"]), r["reason"], r["detail"], _dumps(r["values"]),
-              _dumps(r["thresholds"])) for sha, stage, fp, r in rows))
+            ((sha, stage, fp, *(r if type(r) is tuple else stored_result(r))) for sha, stage, fp, r in rows))
 
     # -- artifacts ---------------------------------------------------------------------------
     def artifact_keys(self, stage: str, fingerprint: str) -> set[str]:
@@ -166,14 +174,17 @@ class Ledger:
     def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None) -> dict[str, dict[str, Any]]:
         """sha256 -> {name: value}; arrays come back as read-only numpy arrays."""
         out: dict[str, dict[str, Any]] = {}
+        scalar, array = _scalar, _decode_array  # speed: a rerun reads a few rows per file
         for sha, name, dtype, shape, data in self.db.execute(
                 "SELECT sha256, name, dtype, shape, data FROM artifacts WHERE stage=? AND fingerprint=?",
                 (stage, fingerprint)):
             if shas is not None and sha not in shas:
                 continue
-            entry = out.setdefault(sha, {})
+            entry = out.get(sha)
+            if entry is None:
+                entry = out[sha] = {}
             if name != EMPTY:
-                entry[name] = _decode_artifact(dtype, shape, data)
+                entry[name] = scalar(data) if dtype is None else array(dtype, shape, data)
         return out
 
     def put_artifacts(self, rows: Iterable[tuple[str, str, str, dict[str, Any]]]) -> None:
@@ -319,6 +330,9 @@ def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
 
 
 def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
+    t = type(value)
+    if t is str or t is int or t is float:
+        return None, None, _scalar_text(value)
     import numpy as np
     if isinstance(value, np.ndarray):
         arr = np.ascontiguousarray(value)
@@ -326,14 +340,56 @@ def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
     return None, None, _dumps(value)
 
 
+def _scalar_text(value: Any) -> str:
+    """``_dumps`` of a str, int or float, with shortcuts for the plain forms (the inverse of
+    ``_scalar``): a string of printable ASCII without quotes or backslashes needs no escape, an
+    int is its digits, a finite float its ``repr`` (what the json module writes for both)."""
+    t = type(value)
+    if t is str:
+        if value.isascii() and value.isprintable() and '"' not in value and "\\" not in value:
+            return '"' + value + '"'
+    elif t is int:
+        return str(value)
+    elif t is float and math.isfinite(value):
+        return repr(value)
+    return _dumps(value)
+
+
 def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:
-    if dtype is None:
-        return json.loads(data)
-    import numpy as np
-    arr = np.frombuffer(data, dtype=_dtype(dtype))
+    return _scalar(data) if dtype is None else _decode_array(dtype, shape, data)
+
+
+def _decode_array(dtype: str, shape: str | None, data: bytes) -> Any:
+    arr = _frombuffer()(data, dtype=_dtype(dtype))
     dims = _shape(shape)
     # memory: a 1-D array is returned as read, not as a second (reshaped) view of it
     return arr if len(dims) == 1 and dims[0] == len(arr) else arr.reshape(dims)
+
+
+def _scalar(text: str) -> Any:
+    """A JSON scalar as ``json.loads`` reads it, with shortcuts for the common forms (a plain
+    string, an integer, a decimal number): a rerun reads a few per file."""
+    c = text[:1]
+    if c == '"':
+        if "\\" not in text:
+            return text[1:-1]
+    elif c.isdigit() or c == "-":
+        try:
+            return float(text) if ("." in text or "e" in text or "E" in text) else int(text)
+        except ValueError:
+            pass
+    return json.loads(text)
+
+
+_NUMPY: list = []
+
+
+def _frombuffer() -> Any:
+    """``numpy.frombuffer``, imported on first use (see the note on numpy above)."""
+    if not _NUMPY:
+        import numpy as np
+        _NUMPY.append(np.frombuffer)
+    return _NUMPY[0]
 
 
 _DTYPES: dict[str, Any] = {}

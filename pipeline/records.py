@@ -126,6 +126,7 @@ class Compactor:
     def __init__(self) -> None:
         self._names: dict[tuple[str, ...], tuple[str, ...]] = {}
         self._thresholds: dict[str, Any] | None = None
+        self._thr_texts: dict[str, dict[str, Any]] = {}
 
     def make(self, kept: bool, reason: str | None, detail: str, values: Mapping[str, Any],
              thresholds: dict[str, Any] | None) -> Result:
@@ -142,6 +143,16 @@ class Compactor:
         object written with sorted keys) until first read."""
         return Result(bool(kept), _intern(reason) if reason else reason, detail, None,
                       values_json, self._shared_thresholds(thresholds))
+
+    def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
+        """The result of a stored form (``ledger.stored_result``), its values left as text."""
+        kept, reason, detail, values_json, thresholds_json = stored
+        t = self._thr_texts.get(thresholds_json)
+        if t is None:
+            t = json.loads(thresholds_json)
+            if len(self._thr_texts) < 256:  # a stage's thresholds come from its options: few texts
+                self._thr_texts[thresholds_json] = t
+        return self.make_stored(kept, reason, detail, values_json, t)
 
     def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
         t = thresholds if thresholds is not None else {}

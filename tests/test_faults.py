@@ -22,7 +22,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pipeline import cli, outputs
+from pipeline import cli, outputs, runner
 from pipeline.config import load_config
 from pipeline.errors import LedgerError, OutputError
 from pipeline.executor import FAULT_ENV
@@ -172,6 +172,7 @@ DRIVER = textwrap.dedent('''
 
     point, n = sys.argv[1].split(":")
     n, calls, me = int(n), [0], os.getpid()
+    runner.BATCH = 256  # the batch size these kill points were laid out for (several batches)
 
     def hit():
         if os.getpid() == me:
@@ -314,6 +315,7 @@ def test_disk_full_writing_the_manifest(corpus, config, baseline, tmp_path, monk
 def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch):
     out = tmp_path / "out"
     calls = []
+    monkeypatch.setattr(runner, "BATCH", 64)  # several results transactions on this small corpus
 
     def full(self, rows):
         calls.append(1)

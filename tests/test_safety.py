@@ -266,3 +266,25 @@ def test_object_arrays_in_the_ledger_are_refused(tmp_path):
         with pytest.raises((ValueError, TypeError)):
             led.artifacts_for("dedup", "fp")
     assert sqlite3.connect(tmp_path / "state.sqlite").execute("SELECT count(*) FROM artifacts").fetchone() == (1,)
+
+
+def test_artifact_scalars_read_back_as_the_json_module_reads_them(tmp_path):
+    # the ledger's shortcuts for plain strings and numbers must write what json.dumps writes
+    # and read what json.loads reads (Python's json module is the reference), type included
+    import json
+    import math
+    values = ["abc", 'a"b', "a\\b", "é", "", "\u2028", "tab\there", "del\x7f",
+              0, -3, -2**70, 10**20, 1.5, -0.0, 1e-7, 1e300,
+              float("inf"), float("-inf"), float("nan"), True, False, None, [1, 2.5], {"a": 1}]
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([("ab" * 32, "dedup", "fp", {f"v{i}": v for i, v in enumerate(values)})])
+        got = led.artifacts_for("dedup", "fp")["ab" * 32]
+        stored = dict(led.db.execute("SELECT name, data FROM artifacts"))
+    for i, v in enumerate(values):
+        assert stored[f"v{i}"] == json.dumps(v, sort_keys=True, separators=(",", ":")), v
+        want = json.loads(stored[f"v{i}"])
+        if isinstance(v, float) and math.isnan(v):
+            assert math.isnan(got[f"v{i}"])
+            continue
+        assert got[f"v{i}"] == want and type(got[f"v{i}"]) is type(want), (v, stored[f"v{i}"])
