@@ -53,10 +53,12 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _run(args: argparse.Namespace) -> int:
+    seen: list = []  # the up-to-date check's listing of the input folder, reused by the run
     if not (args.fresh or args.reassign or args.retry_failed):
         # an up-to-date rerun is recognised before the stages (and numpy) are even imported
         from .uptodate import check_up_to_date
-        report = check_up_to_date(args.config, input=args.input, output=args.output)
+        report = check_up_to_date(args.config, input=args.input, output=args.output,
+                                  on_discover=seen.append)
         if report is not None:
             if not args.quiet:
                 print(report.table())
@@ -65,7 +67,7 @@ def _run(args: argparse.Namespace) -> int:
     from .runner import Runner
     cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers)
     report = Runner(cfg, fresh=args.fresh, quiet=args.quiet, reassign=args.reassign,
-                    retry_failed=args.retry_failed).run()
+                    retry_failed=args.retry_failed, discovered=seen[0] if seen else None).run()
     if not args.quiet:
         print(report.table())
     return 0

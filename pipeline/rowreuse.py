@@ -82,8 +82,15 @@ class RowReuse:
 
 
 def line_prefix(f: Any) -> str:
-    """How a manifest line of this source starts (the id and source fields come first)."""
-    return '{"id": ' + json.dumps(f.sha256[:16]) + ', "source": ' + json.dumps(f.rel, ensure_ascii=False) + ", "
+    """How a manifest line of this source starts (the id and source fields come first, written
+    by ``json.dumps(..., ensure_ascii=False)``, which escapes only quotes, backslashes and
+    control characters: a printable path without the first two is written as it is)."""
+    rel = f.rel
+    if rel.isprintable() and '"' not in rel and "\\" not in rel:
+        source = '"' + rel + '"'
+    else:
+        source = json.dumps(rel, ensure_ascii=False)
+    return '{"id": "' + f.sha256[:16] + '", "source": ' + source + ", "
 
 
 def _stat(path: Path) -> list[int] | None:

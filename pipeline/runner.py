@@ -33,7 +33,7 @@ from .lock import OutputLock
 from .records import Compactor, TrailValues
 from .report import RunReport
 from .rowreuse import RowReuse
-from .sources import SourceFile, check_folders, discover, fingerprint
+from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult
 
 BATCH = 2048  # results + artifacts per ledger transaction (also flushed every 2 s): about 300
@@ -178,8 +178,10 @@ class Runner:
     """One run of a config over its input folder."""
 
     def __init__(self, config: Config, *, fresh: bool = False, quiet: bool = False,
-                 reassign: bool = False, retry_failed: bool = False):
+                 reassign: bool = False, retry_failed: bool = False,
+                 discovered: Discovery | None = None):
         self.config = config
+        self.discovered = discovered  # a listing of the input folder made moments ago (cli)
         self.fresh = fresh
         self.quiet = quiet
         self.reassign = reassign
@@ -222,7 +224,11 @@ class Runner:
                 ledger.clear_cache()
 
         t = time.perf_counter()
-        files, notes = discover(cfg.input, cfg.output)
+        d, self.discovered = self.discovered, None
+        if d is not None and d.matches(cfg.input, cfg.output):
+            files, notes = d.files, d.notes
+        else:
+            files, notes = discover(cfg.input, cfg.output)
         known = ledger.sources()
         changed = fingerprint(files, known)
         present = {f.rel for f in files}

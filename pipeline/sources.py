@@ -28,6 +28,20 @@ class SourceFile:
     sha256: str = ""
 
 
+@dataclass(slots=True)
+class Discovery:
+    """The files found under ``input`` (an output folder ``output`` excluded) with their notes;
+    the up-to-date check hands its discovery over to the run that follows it."""
+
+    input: Path
+    output: Path
+    files: list[SourceFile]
+    notes: list[str]
+
+    def matches(self, input_dir: Path, output_dir: Path) -> bool:
+        return self.input == input_dir.resolve() and self.output == output_dir.resolve()
+
+
 def check_folders(input_dir: Path, output_dir: Path) -> None:
     """Refuse an output folder that is, or contains, the input folder (a run rewrites its output
     folder); checked before anything is created."""

@@ -21,7 +21,7 @@ import hashlib
 import json
 import time
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 from . import __version__
 from .report import RunReport
@@ -93,9 +93,11 @@ def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: 
 
 
 def check_up_to_date(config_path: str | Path, *, input: str | None = None,
-                     output: str | None = None) -> RunReport | None:
+                     output: str | None = None,
+                     on_discover: Callable[[Any], None] | None = None) -> RunReport | None:
     """The report of an up-to-date rerun, done without building the stages; None when the
-    normal run must decide (see the module docstring)."""
+    normal run must decide (see the module docstring). ``on_discover`` receives the
+    ``sources.Discovery`` made on the way, for the run that follows (no second listing)."""
     t_start = time.perf_counter()
     import yaml
     try:
@@ -117,7 +119,7 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
     from .errors import MidisiftError
     from .ledger import Ledger
     from .lock import OutputLock
-    from .sources import check_folders, discover, fingerprint
+    from .sources import Discovery, check_folders, discover, fingerprint
     try:
         check_folders(inp, out)
     except MidisiftError:
@@ -129,6 +131,8 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
                 return None
             t = time.perf_counter()
             files, notes = discover(inp, out)
+            if on_discover is not None:
+                on_discover(Discovery(inp.resolve(), out.resolve(), files, notes))
             known = ledger.sources()
             present = {f.rel for f in files}
             if len(present) != len(known) or any(p not in known for p in present):

@@ -138,3 +138,14 @@ def test_changed_options_rebuild_every_row(first, tmp_path, monkeypatch):
     cfg.stages[-2].options["min_seconds"] = 9  # filter
     Runner(cfg, quiet=True).run()
     assert len(built) == len((dest / "manifest.jsonl").read_text().splitlines())
+
+
+@pytest.mark.parametrize("rel", ["a/b.mid", "é/ü.mid", 'a"b.mid', "a\\b.mid", "tab\t.mid",
+                                 "\u2028x.mid", "日本/曲.mid", "\x7f.mid", "sp ace.mid"])
+def test_line_prefix_is_what_json_writes(rel):
+    # the reference is Python's json module, as the manifest writer calls it
+    from types import SimpleNamespace
+    from pipeline.rowreuse import line_prefix
+    f = SimpleNamespace(rel=rel, sha256="0123456789abcdef" * 4)
+    row = {"id": f.sha256[:16], "source": rel, "sha256": f.sha256}
+    assert json.dumps(row, ensure_ascii=False, separators=(", ", ": ")).startswith(line_prefix(f))

@@ -125,3 +125,24 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
         assert all((out / r["output"]).is_file() for r in kept)
     if change == "option":
         assert summary["options"]["filter"]["min_notes"] == 40
+
+
+def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, monkeypatch):
+    """When the up-to-date check finds work to do, the run that follows uses the check's
+    listing of the input folder instead of walking it a second time."""
+    from pipeline import runner, sources
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    shutil.copy2(next(p for p in sorted(corpus.rglob("*.mid"))), corpus / "a_new_copy.mid")
+    calls = []
+    real = sources.discover
+
+    def counting(*a, **k):
+        calls.append(a[0])
+        return real(*a, **k)
+    monkeypatch.setattr(sources, "discover", counting)
+    monkeypatch.setattr(runner, "discover", counting)
+    assert _cli(config, corpus, out) == 0
+    assert len(calls) == 1
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    assert "a_new_copy.mid" in {r["source"] for r in rows}
