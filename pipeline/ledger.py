@@ -70,7 +70,28 @@ def stored_result(r: Any) -> tuple[int, str | None, str, str, str]:
     """A stage result (dict or ``records.Result``) as the ledger stores it: (kept, reason,
     detail, values JSON, thresholds JSON). Workers make it, so the main process neither
     serialises nor compacts per-file values (``records.Compactor.from_stored`` reads it)."""
-    return (int(r["kept"]), r["reason"], r["detail"], _dumps(r["values"]), _dumps(r["thresholds"]))
+    values = r.values_json() if hasattr(r, "values_json") else _dumps(r["values"])
+    return (int(r["kept"]), r["reason"], r["detail"], values, thresholds_json(r["thresholds"]))
+
+
+def canonical_json(value: Any) -> str:
+    """The JSON text the ledger stores for a value (sorted keys, no spaces)."""
+    return _dumps(value)
+
+
+_THRESHOLD_TEXTS: dict[int, tuple[Any, str]] = {}
+
+
+def thresholds_json(thresholds: dict[str, Any]) -> str:
+    """``canonical_json`` of a thresholds dict, remembered per object: a stage's results share
+    a few such dicts (the memo keeps each alive, so its id is not reused)."""
+    hit = _THRESHOLD_TEXTS.get(id(thresholds))
+    if hit is not None and hit[0] is thresholds:
+        return hit[1]
+    text = _dumps(thresholds)
+    if len(_THRESHOLD_TEXTS) < 4096:
+        _THRESHOLD_TEXTS[id(thresholds)] = (thresholds, text)
+    return text
 
 
 def _json_default(value: Any) -> Any:
@@ -165,6 +186,10 @@ class Ledger:
         self.db.executemany(
             "INSERT OR REPLACE INTO results VALUES (?,?,?,?,?,?,?,?)",
             ((sha, stage, fp, *(r if type(r) is tuple else stored_result(r))) for sha, stage, fp, r in rows))
+
+    def forget_results(self, stage: str, fingerprint: str) -> None:
+        """Forget every stored result of one stage under one fingerprint."""
+        self.db.execute("DELETE FROM results WHERE stage=? AND fingerprint=?", (stage, fingerprint))
 
     # -- artifacts ---------------------------------------------------------------------------
     def artifact_keys(self, stage: str, fingerprint: str) -> set[str]:

@@ -19,6 +19,7 @@ from typing import Any, Iterator
 __all__ = ["Result", "Compactor", "TrailValues"]
 
 _FIELDS = ("kept", "reason", "detail", "values", "thresholds")
+_DECODER = json.JSONDecoder()
 #: Value-name tuples shared by the results expanded from stored JSON (few distinct ones).
 _SHARED_NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}
 _MISSING = object()
@@ -35,7 +36,7 @@ class Result:
     but needs the values only of the rows it rebuilds. ``names`` and ``vals`` are then
     ``None`` and the text; ``expand()`` parses them."""
 
-    __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds")
+    __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds", "text")
 
     def __init__(self, kept: bool, reason: str | None, detail: str, names: tuple[str, ...] | None,
                  vals: tuple | str, thresholds: dict[str, Any]):
@@ -45,6 +46,7 @@ class Result:
         self.names = names
         self.vals = vals
         self.thresholds = thresholds
+        self.text: str | None = vals if names is None else None  # the values as stored JSON
 
     def expand(self) -> "Result":
         """Parse values still held as stored JSON text (no-op otherwise); returns self."""
@@ -55,6 +57,15 @@ class Result:
             self.vals = _compact_values(values)
         return self
 
+    def values_json(self) -> str:
+        """The values as the ledger stores them (JSON, sorted keys), made once and kept: the
+        form in which a record read back from the ledger and one computed in this run compare
+        equal (``pipeline.rowreuse``)."""
+        if self.text is None:
+            from .ledger import canonical_json
+            self.text = canonical_json(self.values)
+        return self.text
+
     @property
     def values(self) -> dict[str, Any]:
         if self.names is None:
@@ -64,9 +75,15 @@ class Result:
     def value(self, name: str, default: Any = None) -> Any:
         """One value by name, without building the values dict."""
         if self.names is None:
-            # stored JSON has every key as '"name":'; a name not in the text is not a value
-            if f'"{name}":' not in self.vals:
-                return default
+            # stored JSON has every key as '"name":' (a quote inside a string is escaped, so
+            # the pattern is a key); a name not in the text is not a value
+            text = self.vals
+            if name.isascii() and name.isprintable() and '"' not in name and "\\" not in name:
+                at = text.find(f'"{name}":')  # written as it is (no escapes)
+                if at < 0:
+                    return default
+                if text.count("{") == 1:  # a flat object: the key is a top-level one; read its value only
+                    return _DECODER.raw_decode(text, at + len(name) + 3)[0]
             self.expand()
         try:
             return self.vals[self.names.index(name)]

@@ -22,6 +22,8 @@ import os
 from pathlib import Path
 from typing import Any, Iterator
 
+from .ledger import thresholds_json
+
 STATE = "_rows"  # the ledger state entry: base key and the manifest's size and mtime
 
 
@@ -33,8 +35,9 @@ def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]
     parts = [f.rel, sha, str(len(trail)), walk.rep.get(sha, "") if walk.is_byte_copy(f.rel, sha) else ""]
     for i in corpus_positions:
         if i < len(trail):
-            r = trail[i]
-            parts.append(repr((r.kept, r.reason, r.detail, r.names, r.vals, r.thresholds)))
+            r = trail[i]  # in stored form: a record read back and one computed now hash alike
+            parts.append(f"{r.kept}\0{r.reason}\0{r.detail}\0{r.values_json()}\0"
+                         f"{thresholds_json(r.thresholds)}")
     parts.append(repr(placed.all_of.get(sha)))
     return hashlib.blake2b("\0".join(parts).encode("utf-8", "surrogateescape"), digest_size=12).hexdigest()
 

@@ -21,6 +21,7 @@ import hashlib
 import sqlite3
 import sys
 import time
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -30,7 +31,7 @@ from .errors import LedgerError, MidisiftError
 from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger, stored_result
 from .lock import OutputLock
-from .records import Compactor, TrailValues
+from .records import Compactor, Result, TrailValues
 from .report import RunReport
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
@@ -188,6 +189,12 @@ class Runner:
         self.retry_failed = retry_failed
         self.stages: list[Stage] = [sc.build() for sc in config.stages]
         self._fps = {s.name: s.fingerprint for s in self.stages}
+        # a stage's results depend on its options and on every stage before it
+        self._chains: dict[str, str] = {}
+        h = hashlib.sha256()
+        for s in self.stages:
+            h.update(f"{s.name}:{s.fingerprint};".encode())
+            self._chains[s.name] = h.hexdigest()[:16]
         self.output_fp = outputs.output_fingerprint(self.stages)
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
 
@@ -310,6 +317,11 @@ class Runner:
             reuse.save(ledger, len(files))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
+            for name, (replace, rows) in walk.corpus_rows.items():
+                fp = _last_fingerprint(self._fps[name])
+                if replace:
+                    ledger.forget_results(name, fp)
+                ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
         parts = {p: len(v) for p, v in placed.parts.items()}
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
@@ -505,22 +517,31 @@ class Runner:
                         if m.sha256 in res:
                             m.artifacts[prev] = res[m.sha256]
                 walk.artifacts[st.name] = {m.sha256: m.artifacts[st.name] for m in members}
-                state = CorpusState(ledger.state_for(st.name), upstream,
-                                    {"fresh": self.fresh, "reassign": self.reassign})
+                saved = ledger.state_for(st.name)
+                last = None  # the last run's results of this stage, when it stored them
+                if not self.fresh and saved.get(CORPUS_RESULTS) == self._chains[st.name]:
+                    last = _LastResults(ledger, st.name, st.fingerprint, self._compactor(st.name))
+                state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
+                                                      "previous_results": last})
                 bar = self._bar(st.name, len(members))
                 res = st.run_corpus(members, state) if members else {}
                 del members
                 bar.update(len(alive))
                 bar.close()
-                walk.states[st.name] = state.current
+                walk.states[st.name] = {**state.current, CORPUS_RESULTS: self._chains[st.name]}
                 walk.notes.extend(state.notes)
                 survivors = []
                 make = self._compactor(st.name).make
                 keep = make(True, None, "", {}, {})
                 compact: dict[str, Any] = {}
+                new_rows: list[tuple[str, Any]] = []  # results this run computed (to store)
                 for sha in alive:
                     r = res.get(sha[:16])
-                    rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
+                    if type(r) is Result:  # the last run's record, returned as it is
+                        rec = r
+                    else:
+                        rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
+                        new_rows.append((sha, rec))
                     if r is not None:
                         compact[sha[:16]] = rec
                     trails[sha].append(rec)
@@ -531,6 +552,8 @@ class Runner:
                 # memory: later stages read this stage's verdicts as the compact records (same
                 # attributes as StageResult), and a dropped file's artifacts are let go
                 upstream[st.name] = compact
+                # all rows anew, or (when some were reused) only the new ones
+                walk.corpus_rows[st.name] = (len(new_rows) == len(alive), new_rows)
                 del res
                 gone = set(alive) - set(survivors)
                 for arts_of in walk.artifacts.values():
@@ -545,6 +568,46 @@ class Runner:
         walk.byte_copy_stage = "dedup" if "dedup" in names else None
         walk.rep = rep
         return walk
+
+
+#: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
+#: before it) under which its results of the last run were stored.
+CORPUS_RESULTS = "_results"
+
+
+def _last_fingerprint(fp: str) -> str:
+    """Ledger key of a corpus stage's stored results of the last run (beside per-file results)."""
+    return f"{fp}:last-run"
+
+
+class _LastResults(Mapping):
+    """A corpus stage's results of the last run, by member id, read from the ledger on first
+    use (values stay JSON text until read). A stage returns such a record as it is for a member
+    whose result did not change; the runner then neither compacts nor stores it again."""
+
+    def __init__(self, ledger: Ledger, stage: str, fingerprint: str, compactor: Compactor):
+        self._args = (ledger, stage, fingerprint, compactor)
+        self._rows: dict[str, Result] | None = None
+
+    def _load(self) -> dict[str, Result]:
+        if self._rows is None:
+            ledger, stage, fp, compactor = self._args
+            rows = ledger.results_for(stage, _last_fingerprint(fp), compactor.make_stored,
+                                      values_as_text=True)
+            self._rows = {sha[:16]: r for sha, r in rows.items()}
+        return self._rows
+
+    def __getitem__(self, key: str) -> Result:
+        return self._load()[key]
+
+    def __contains__(self, key: object) -> bool:
+        return key in self._load()
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._load())
+
+    def __len__(self) -> int:
+        return len(self._load())
 
 
 class _NoBar:
@@ -617,6 +680,8 @@ class Walk:
     reached; ``stage_names`` names them. They are the result cache's own records."""
 
     staged: dict[str, tuple[str, ...]] = field(default_factory=dict)  # sha -> staged suffixes
+    #: corpus stage -> (replace all stored rows, [(sha, record)] this run computed)
+    corpus_rows: dict[str, tuple[bool, list]] = field(default_factory=dict)
     status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
     trails: dict[str, list] = field(default_factory=dict)
     artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)

@@ -295,3 +295,41 @@ def test_bach_chorales_sharing_a_tune(chorales):
     low = {tuple(sorted(p)) for p in low}
     assert ("bwv114.7", "bwv258") in low and ("bwv256", "bwv258") in low
     assert all(tune_of[chorales[a][1].id] == tune_of[chorales[b][1].id] for a, b in low), low
+
+
+def _changes(members, truth):
+    """A first corpus and the changed second one: variants of kept originals arrive (their
+    clusters grow), an excerpt of a piece kept alone arrives, an unrelated piece arrives, and
+    one member of a cluster and one lone member are now read under another source path."""
+    first = [m for m in members if truth[m.id][2] not in ("excerpt", "edited", "tempo")]
+    stage = Dedup()
+    arrived = [m for m in members if truth[m.id][2] in ("excerpt", "edited", "tempo")]
+    lone = compose(family(1), seed=101)  # piece 1 of family 1: alone in the first corpus
+    arrived.append(member("new/f1p1-excerpt.mid", [r for r in lone if r[0] < 60 * TPB], stage))
+    arrived.append(member("new/unrelated.mid", compose(family(9), seed=999), stage))
+    renamed = {next(m.id for m in first if truth[m.id] == (2, 0, "transposed")): "0/renamed.mid",
+               next(m.id for m in first if truth[m.id] == (0, 2, "original")): "0/lone.mid"}
+    second = [Member(m.id, m.sha256, renamed.get(m.id, m.source), m.values, m.artifacts)
+              for m in first] + arrived
+    return first, second
+
+
+@pytest.mark.parametrize("opts", [{}, {"displace_kept": True}, {"keep_policy": "smallest_id"}])
+def test_clusters_as_last_run_keep_their_results_and_the_rest_equals_a_full_computation(corpus, opts):
+    """With the last run's results at hand, dedup returns them (the same objects) for clusters
+    with no new member and no changed source, and recomputes the others; every result and the
+    saved state must equal what the computation without them gives (the oracle)."""
+    members, truth = corpus
+    first, second = _changes(members, truth)
+    res1, st1 = run(first, opts)
+    full, st_full = run(second, opts, previous=st1.current)
+    inc, st_inc = run(second, opts, previous=st1.current, flags={"previous_results": res1})
+    assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in full.items()}
+    assert st_inc.current == st_full.current and st_inc.notes == st_full.notes
+    reused = [k for k in inc if inc[k] is res1.get(k)]
+    changed = {k for k in full if k not in res1 or full[k].to_json() != res1[k].to_json()}
+    assert reused and not changed & set(reused)
+    assert {m.id for m in second} - set(reused) == changed  # only what changed was recomputed
+    # a source read under another path is never reused (details name sources)
+    moved = {m.id for m in second if m.source.startswith("0/")}
+    assert not moved & {k for k in reused if full[k].values["cluster_size"] > 1}

@@ -63,3 +63,31 @@ def test_trail_values_later_stages_win():
     assert dict(tv) == merged == {"a": 1, "b": 3, "c": 4}
     assert tv.get("b") == 3 and tv.get("zzz") is None
     assert list(tv) == ["a", "b", "c"]
+
+
+def test_stored_records_read_like_their_dict_without_parsing_everything():
+    """A record read back from the ledger (values still JSON text) gives, name by name, what the
+    json module's parse of the text gives (the reference), including names that appear in
+    nested objects or inside strings, and for names the text does not have."""
+    import json
+
+    from pipeline.ledger import canonical_json, stored_result
+    values = [
+        {"augment": [], "augment_folded": 0, "transpose": 2, "transpose_folded": 0},
+        {"augment": [3, -5], "x": 'a"augment":1', "y": {"augment": 9}},
+        {"x": "{", "augment": [1]},
+        {"cluster": "abcdef0123456789", "cluster_size": 3},
+        {"a": 1.5e-7, "b": None, "c": True, "d": "é\u2028", "e": [[1, 2], {"f": 1}]},
+        {"y": {"augment": 9}},
+        {"ключ": 1, 'q"uote': 2},
+    ]
+    c = Compactor()
+    for v in values:
+        d = StageResult.keep("kept", values=v, thresholds={"t": 1}).to_json()
+        stored = stored_result(d)
+        want = json.loads(stored[3])
+        for name in [*v, "augment", "missing", "f", "ключ"]:
+            r = c.from_stored(stored)
+            assert r.value(name, "default") == want.get(name, "default"), (v, name)
+        r = c.from_stored(stored)
+        assert r.to_json() == d and r.values_json() == canonical_json(v) == stored[3]

@@ -1,8 +1,10 @@
 """A rerun reuses the manifest lines and decision trails of files whose rows did not change
-(``pipeline.rowreuse``); what it writes must equal what rebuilding every row writes.
+(``pipeline.rowreuse``), and the corpus stages' results of clusters that did not change; what
+it writes must equal what rebuilding everything writes.
 
-The oracle is the same rerun with every row rebuilt (its old manifest removed, so nothing can be
-reused): manifest bytes, split lists, the ``explain`` trails and the row digests must be equal.
+The oracle is the same rerun with nothing to reuse (its old manifest and the stored corpus-stage
+results removed): manifest bytes, split lists, the ``explain`` trails and the row digests must
+be equal.
 The corpus is the invented demo corpus (sample_corpus/README.md), changed the ways a user
 changes a corpus: duplicates of kept files added (their clusters' rows change), a byte-identical
 copy added under a name sorting first (it becomes the representative), a file removed.
@@ -69,6 +71,16 @@ def first(tmp_path_factory):
     return corpus, base
 
 
+def _forget_last_run(out: Path) -> None:
+    """Leave nothing of the last run's rows to reuse: no manifest, no stored corpus-stage results."""
+    (out / "manifest.jsonl").unlink()
+    db = sqlite3.connect(out / "state.sqlite")
+    with db:
+        n = db.execute("DELETE FROM results WHERE fingerprint LIKE '%:last-run'").rowcount
+    db.close()
+    assert n > 0
+
+
 def _rerun(corpus: Path, base: Path, dest: Path, prepare=None, monkeypatch=None) -> int:
     shutil.copytree(base, dest)
     if prepare is not None:
@@ -86,8 +98,7 @@ def _rerun(corpus: Path, base: Path, dest: Path, prepare=None, monkeypatch=None)
 def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
     corpus, base = first
     built = _rerun(corpus, base, tmp_path / "reuse", monkeypatch=monkeypatch)
-    rebuilt = _rerun(corpus, base, tmp_path / "rebuild",
-                     prepare=lambda d: (d / "manifest.jsonl").unlink(), monkeypatch=monkeypatch)
+    rebuilt = _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run, monkeypatch=monkeypatch)
     files = len((tmp_path / "rebuild" / "manifest.jsonl").read_text().splitlines())
     assert rebuilt == files  # the oracle rebuilt every row
     assert 3 < built < files // 2  # the rerun rebuilt the changed rows only

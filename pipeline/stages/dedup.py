@@ -45,6 +45,36 @@ class _Facts:
         return getattr(self, name)
 
 
+class _LazyFacts(dict):
+    """member id -> ``_Facts``, each built from the member's artifacts when first read (a rerun
+    reads the facts of the clusters it recomputes, not of every member)."""
+
+    def __init__(self, by_id: dict[str, Member], arts: dict[str, dict[str, Any]]):
+        super().__init__()
+        self._by_id, self._arts = by_id, arts
+
+    def __missing__(self, k: str) -> _Facts:
+        m, art = self._by_id[k], self._arts[k]
+        f = _Facts(k, m.source, m.sha256, str(art["content_hash"]),
+                   np.asarray(art["signature"], dtype=np.uint32),
+                   np.asarray(art["shingles"], dtype=np.uint64),
+                   int(art["notes"]), float(art["duration_beats"]))
+        self[k] = f
+        return f
+
+
+class _Shingles:
+    """member id -> shingle set, read through the lazy facts (what ``verify_pairs`` needs)."""
+
+    __slots__ = ("_facts",)
+
+    def __init__(self, facts: _LazyFacts):
+        self._facts = facts
+
+    def __getitem__(self, k: str) -> np.ndarray:
+        return self._facts[k].shingles
+
+
 def _key_most_notes(m: dict) -> tuple:
     return (-m["notes"], -m["duration_beats"], m["id"], m["source"])
 
@@ -138,19 +168,25 @@ class Dedup(Stage):
         return options_fingerprint(self.name, self.version, {k: self.opts[k] for k in _LINK_OPTIONS})
 
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
+        """Results for every member. With ``state.flags["previous_results"]`` (the last run's
+        results by member id, given by the runner when it stored them), a cluster none of whose
+        members is new and none of whose sources changed keeps the last run's results as they
+        are (the same objects are returned): its members, links and kept member are the last
+        run's, so recomputing would give the same. Everything that decides which clusters
+        exist is computed over the whole corpus each time, as without them."""
         o = self.opts
         threshold = float(o["threshold"])
-        facts: dict[str, _Facts] = {}
+        arts: dict[str, dict[str, Any]] = {}
+        by_id: dict[str, Member] = {}
         for m in members:
             art = m.artifacts.get(self.name)
             if not art:
                 raise ValueError(f"member {m.id} ({m.source}) has no dedup artifacts: "
                                  "prepare() must run for every file that reaches dedup")
-            facts[m.id] = _Facts(m.id, m.source, m.sha256, str(art["content_hash"]),
-                                 np.asarray(art["signature"], dtype=np.uint32),
-                                 np.asarray(art["shingles"], dtype=np.uint64),
-                                 int(art["notes"]), float(art["duration_beats"]))
-        ids = sorted(facts)
+            arts[m.id] = art
+            by_id[m.id] = m
+        facts = _LazyFacts(by_id, arts)  # speed: facts are built for the members that need them
+        ids = sorted(arts)
         prev = {} if state.flags.get("fresh") else (state.previous or {})
         uf = UnionFind(ids)
         # memory: lists only for members that get a link (most files have none)
@@ -162,19 +198,18 @@ class Dedup(Stage):
             links[b].append((a, sim, kind))
 
         # 1. exact: bytes, then canonical note content
-        for field, kind in (("sha256", "bytes"), ("content_hash", "content")):
+        exact = (("bytes", {k: by_id[k].sha256 for k in ids}),
+                 ("content", {k: str(arts[k]["content_hash"]) for k in ids}))
+        for kind, value_of in exact:
             first: dict[str, str] = {}
             for k in ids:
-                v = facts[k][field]
+                v = value_of[k]
                 if v in first:
                     if uf.find(first[v]) != uf.find(k):
                         link(first[v], k, 1.0, kind)
                 else:
                     first[v] = k
-        reps: dict[str, str] = {}
-        for k in ids:
-            reps.setdefault(facts[k]["content_hash"], k)
-        rep_ids = sorted(reps.values())
+        rep_ids = sorted(first.values())  # the first member of each note content
 
         # 2. near: reuse last run's links when nothing they depend on changed
         present = set(ids)
@@ -190,18 +225,18 @@ class Dedup(Stage):
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
         for k in rep_ids:
-            if len(facts[k]["shingles"]) >= min_sh:
-                index.add(k, facts[k]["signature"])
+            if len(arts[k]["shingles"]) >= min_sh:
+                index.add(k, np.asarray(arts[k]["signature"], dtype=np.uint32))
         new_reps = {k for k in rep_ids if k not in old}
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
         codes = index.candidate_codes(new_reps if reusable else None)
         n_candidates = len(codes)
-        codes = index.plausible_codes(codes, np.array([len(facts[k]["shingles"]) for k in index.ids]),
+        codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         cands = index.iter_sorted_pairs(codes)
-        shingles = {k: facts[k]["shingles"] for k in rep_ids}
-        verified = verify_pairs(cands, shingles, threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
+        verified = verify_pairs(cands, _Shingles(facts), threshold,
+                                min_size_ratio=float(o["min_size_ratio"]), skip=uf)
         for a, b, sim in verified:
             links[a].append((b, sim, "near"))
             links[b].append((a, sim, "near"))
@@ -214,9 +249,20 @@ class Dedup(Stage):
         # 3. clusters and kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
-        results: dict[str, StageResult] = {}
+        last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
+        last_sources = prev.get("cluster_sources", {}) if last is not None else {}
+        last_kept = set(prev.get("kept", []))
+        results: dict[str, Any] = {}
         kept_ids: list[str] = []
+        cluster_sources: dict[str, str] = {}
         for group in uf.groups():
+            if len(group) > 1:
+                for k in group:
+                    cluster_sources[k] = by_id[k].source
+            if last is not None and self._as_last_run(group, old, last, last_sources, by_id):
+                results.update((k, last[k]) for k in group)
+                kept_ids.extend(k for k in group if k in last_kept)
+                continue
             pool = [k for k in group if k in previously_kept] or group
             kept = min(pool, key=lambda k: key(facts[k]))
             kept_ids.append(kept)
@@ -225,7 +271,23 @@ class Dedup(Stage):
         state.save("members", ids)
         state.save("links", sorted(near_links))
         state.save("kept", sorted(kept_ids))
+        state.save("cluster_sources", cluster_sources)
         return results
+
+    @staticmethod
+    def _as_last_run(group: list[str], old: set[str], last: Any, last_sources: dict[str, str],
+                     by_id: dict[str, Member]) -> bool:
+        """Whether a cluster is the last run's and reads as it did: no new member, every member
+        with a stored result, and (in a cluster of several, whose details name sources) every
+        member still represented by the same source path."""
+        for k in group:
+            if k not in old or k not in last:
+                return False
+        if len(group) > 1:
+            for k in group:
+                if last_sources.get(k) != by_id[k].source:
+                    return False
+        return True
 
     def _cluster_results(self, group: list[str], kept: str, facts: dict[str, _Facts],
                          links: dict[str, list], threshold: float) -> dict[str, StageResult]:

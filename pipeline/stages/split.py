@@ -27,6 +27,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
+from ..records import Result
 from ..grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups, group_by_key,
                         near_links)
 from .base import CorpusState, Member, Option, Stage, StageResult, register
@@ -79,6 +80,12 @@ def folder_of(source: str) -> str | None:
     """The folder of a source path relative to the input folder (None at the top level)."""
     parent = PurePosixPath(source.replace("\\", "/")).parent.as_posix()
     return None if parent in ("", ".") else parent
+
+
+def _value(result: Any, name: str) -> Any:
+    """One value of an upstream result: a compact record (``records.Result``, read without
+    parsing the others) or a StageResult."""
+    return result.value(name) if isinstance(result, Result) else result.values.get(name)
 
 
 def output_count(m: Member) -> float:
@@ -196,7 +203,7 @@ class Split(Stage):
         dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
         for mid, res in dedup.items():
-            c = res.values.get("cluster") if res is not None else None
+            c = _value(res, "cluster") if res is not None else None
             if c is not None:
                 by_cluster.setdefault(c, []).append(mid)
         here = {m.id for m in members}
