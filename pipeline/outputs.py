@@ -176,6 +176,7 @@ class Placed:
     parts: dict[str, list[str]] = field(default_factory=dict)  # part -> output paths
     main: dict[str, str] = field(default_factory=dict)  # sha -> main output path
     all_of: dict[str, list[str]] = field(default_factory=dict)  # sha -> every output path
+    part_of: dict[str, str] = field(default_factory=dict)  # sha -> part, for every kept content
 
 
 def _suffix_of(rel: str) -> str:
@@ -195,7 +196,7 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     for sha in rep:
         if walk.status.get(sha) is not None:
             continue
-        part = walk.value_of(sha, "split") or DEFAULT_PART
+        part = placed.part_of[sha] = walk.value_of(sha, "split") or DEFAULT_PART
         sources: dict[str, str] = {}
         for rel in existing.get(sha, []):
             sources[_suffix_of(rel)] = os.path.join(base, rel)
@@ -344,7 +345,9 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
                 pending = next(old_lines, None)
             if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
                 final = walk.final(f.rel, f.sha256)
-                part = (walk.value_of(f.sha256, "split") or DEFAULT_PART) if final is None else None
+                part = None
+                if final is None:
+                    part = placed.part_of.get(f.sha256) or walk.value_of(f.sha256, "split") or DEFAULT_PART
                 tally.count(f.sha256, final, part, walk.reached_names(f.rel, f.sha256))
                 yield pending[1]
                 continue

@@ -231,7 +231,18 @@ class LSHIndex:
                              f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
         if not is_empty(signature):
             self.ids.append(key)
-            self._sigs.append(np.asarray(signature, dtype=np.uint32))
+            self._sigs.append(np.asarray(signature, dtype=np.uint32)[None, :])
+
+    def extend(self, keys: list[str], signatures: np.ndarray) -> None:
+        """``add`` for many keys at once: ``signatures`` is their ``(len(keys), num_perm)``
+        array (one emptiness test for all rows instead of one per signature)."""
+        sig = np.asarray(signatures, dtype=np.uint32)
+        if sig.ndim != 2 or len(sig) != len(keys) or (len(sig) and sig.shape[1] != self.num_perm):
+            raise ValueError(f"signatures of shape {sig.shape} do not fit {len(keys)} keys of "
+                             f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
+        live = ~np.all(sig == _U32_MAX, axis=1)
+        self.ids.extend(k for k, ok in zip(keys, live.tolist()) if ok)
+        self._sigs.append(sig[live])
 
     def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
         """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
@@ -254,7 +265,7 @@ class LSHIndex:
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
         m = getattr(self, "_matrix", None)
-        if m is None or len(m) != len(self._sigs):
+        if m is None or len(m) != len(self.ids):
             m = self._matrix = (np.vstack(self._sigs) if self._sigs
                                 else np.zeros((0, self.num_perm), dtype=np.uint32))
         return m

@@ -90,6 +90,13 @@ def test_lsh_index_finds_the_pairs_datasketch_lsh_finds():
     theirs = {tuple(sorted((k, o))) for k, m in mh.items() for o in lsh.query(m) if o != k}
     assert set(index.candidates()) == theirs
     assert len(theirs) >= 80
+    # the same index built in one call (with an empty signature, which never pairs)
+    keys = sorted(sets) + ["zz-empty"]
+    sigs = np.vstack([minhash(sets[k], bands * rows, 1) for k in keys[:-1]] +
+                     [minhash(np.zeros(0, dtype=np.uint64), bands * rows, 1)])
+    whole = LSHIndex(bands * rows, bands)
+    whole.extend(keys, sigs)
+    assert whole.ids == sorted(sets) and set(whole.candidates()) == theirs
 
 
 def test_set_similarity_jaccard_and_containment():

@@ -214,3 +214,33 @@ def test_dedup_replacement_inherits_the_part():
     r2, s2 = run([c.member(m) for m in kept], previous=s1.current, upstream=upstream)
     assert parts(r2)[rep] == "test" and old not in r2
     assert s2.current["assignments"][old] == "test"   # kept in the state for later reruns
+
+
+def test_last_run_results_are_returned_for_members_whose_split_did_not_change():
+    """With the last run's results at hand (as the runner hands them over), a member whose
+    part, group and group size are unchanged gets that result object back; every result and
+    the saved state must equal what the computation without them gives (the oracle). The
+    rerun of ``test_incremental_rerun``: a new near-duplicate grows a group, a bridge moves
+    a train file into test, and the file moved last run is not reused (its detail changes)."""
+    c = Corpus(4)
+    base = [c.fresh() for _ in range(200)]
+    pairs = [c.near(base[i], 0.7) for i in range(10)]
+    first_members = [c.member(m) for m in base + pairs]
+    r1, s1 = run(first_members)
+    first = parts(r1)
+    test_file = next(m for m in base if first[m] == "test")
+    train_file = next(m for m in base if first[m] == "train" and m not in base[:10])
+    near_test, link = c.near(test_file, 0.7), c.bridge(train_file, test_file)
+    members = first_members + [c.member(m) for m in [near_test, link] + [c.fresh() for _ in range(30)]]
+    r2, s2 = run(members, previous=s1.current)
+    for last, previous in ((r1, s1.current), (r2, s2.current)):
+        again = members + [c.member(c.fresh())]
+        full, st_full = run(again, previous=previous)
+        inc, st_inc = run(again, previous=previous, flags={"previous_results": last})
+        assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in full.items()}
+        assert st_inc.current == st_full.current and st_inc.notes == st_full.notes
+        reused = {k for k in inc if inc[k] is last.get(k)}
+        assert reused and all(full[k].to_json() == last[k].to_json() for k in reused)
+        assert {k for k in last if full.get(k) is not None
+                and full[k].to_json() == last[k].to_json()} == reused
+    assert train_file not in reused  # moved in the second run: its result then said so

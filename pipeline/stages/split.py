@@ -88,6 +88,15 @@ def _value(result: Any, name: str) -> Any:
     return result.value(name) if isinstance(result, Result) else result.values.get(name)
 
 
+def _same_split(r: Any, part: str, group: str, size: int) -> bool:
+    """Whether a last-run result has exactly these values (and no ``moved_from``). A stored
+    record is compared as its stored JSON text (sorted keys; member ids are hex and part names
+    plain, so nothing needs escaping), without parsing it."""
+    if isinstance(r, Result):
+        return r.values_json() == f'{{"group":"{group}","group_size":{size},"split":"{part}"}}'
+    return r.values == {"split": part, "group": group, "group_size": size}
+
+
 def output_count(m: Member) -> float:
     """Files a member writes: its outputs if known, else 1 plus its augmentation copies
     (``values["augment"]``, the extra shifts of the transpose stage)."""
@@ -162,9 +171,17 @@ class Split(Stage):
             inside = [m for m in grp if m in real]
             for m in inside:
                 group_of[m] = (inside[0], len(inside))
-        results = {}
+        # the last run's result of a member whose part, group and group size did not change
+        # is returned as it is (see the runner's reuse of corpus-stage results)
+        last = state.flags.get("previous_results")
+        results: dict[str, Any] = {}
         for m in ids:
             key, size = group_of[m]
+            if last is not None and m not in moved:
+                r = last.get(m)
+                if r is not None and r.kept and not r.detail and _same_split(r, assignment[m], key, size):
+                    results[m] = r
+                    continue
             values = {"split": assignment[m], "group": key, "group_size": size}
             detail = ""
             if m in moved:
