@@ -145,24 +145,33 @@ def test_augmentation_copies_weigh_their_outputs():
     assert output_count(m) == 4.0
 
 
-def test_incremental_rerun():
-    """Run, add files (one near-duplicate of a test file, one that links a train group with a
-    test group, and 60 ordinary new files), rerun: earlier assignments unchanged except the
-    reported moves, zero cross-part near-duplicates, ratios within 0.02 of the targets."""
+def _first_run_and_changes(n_new: int):
+    """200 pieces and 10 near-duplicates, run once; then the changed corpus: a near-duplicate
+    of a test file, a file linking a train file with that test file, ``n_new`` new files.
+    Returns (corpus, first results, first state, changed members, test file, train file,
+    near-duplicate, link)."""
     c = Corpus(4)
     base = [c.fresh() for _ in range(200)]
     pairs = [c.near(base[i], 0.7) for i in range(10)]
     first_members = [c.member(m) for m in base + pairs]
     r1, s1 = run(first_members)
     first = parts(r1)
-    saved = s1.current
     test_file = next(m for m in base if first[m] == "test")
     train_file = next(m for m in base if first[m] == "train" and m not in base[:10])
     near_test = c.near(test_file, 0.7)
     link = c.bridge(train_file, test_file)
-    new = [c.fresh() for _ in range(60)]
+    new = [c.fresh() for _ in range(n_new)]
     members = first_members + [c.member(m) for m in [near_test, link] + new]
-    r2, s2 = run(members, previous=saved)
+    return c, r1, s1, members, test_file, train_file, near_test, link
+
+
+def test_incremental_rerun():
+    """Run, add files (one near-duplicate of a test file, one that links a train group with a
+    test group, and 60 ordinary new files), rerun: earlier assignments unchanged except the
+    reported moves, zero cross-part near-duplicates, ratios within 0.02 of the targets."""
+    c, r1, s1, members, test_file, train_file, near_test, link = _first_run_and_changes(60)
+    first = parts(r1)
+    r2, s2 = run(members, previous=s1.current)
     second = parts(r2)
     assert second[near_test] == "test"
     assert second[link] == "test" and second[train_file] == "test"
@@ -222,16 +231,7 @@ def test_last_run_results_are_returned_for_members_whose_split_did_not_change():
     the saved state must equal what the computation without them gives (the oracle). The
     rerun of ``test_incremental_rerun``: a new near-duplicate grows a group, a bridge moves
     a train file into test, and the file moved last run is not reused (its detail changes)."""
-    c = Corpus(4)
-    base = [c.fresh() for _ in range(200)]
-    pairs = [c.near(base[i], 0.7) for i in range(10)]
-    first_members = [c.member(m) for m in base + pairs]
-    r1, s1 = run(first_members)
-    first = parts(r1)
-    test_file = next(m for m in base if first[m] == "test")
-    train_file = next(m for m in base if first[m] == "train" and m not in base[:10])
-    near_test, link = c.near(test_file, 0.7), c.bridge(train_file, test_file)
-    members = first_members + [c.member(m) for m in [near_test, link] + [c.fresh() for _ in range(30)]]
+    c, r1, s1, members, _, train_file, _, _ = _first_run_and_changes(30)
     r2, s2 = run(members, previous=s1.current)
     for last, previous in ((r1, s1.current), (r2, s2.current)):
         again = members + [c.member(c.fresh())]
