@@ -55,6 +55,7 @@ class Result:
             names = tuple(values)
             self.names = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
             self.vals = _compact_values(values)
+            self.text = None  # memory: one form at a time (``values_json`` makes it again)
         return self
 
     def values_json(self) -> str:
