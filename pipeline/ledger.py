@@ -74,6 +74,15 @@ def stored_result(r: Any) -> tuple[int, str | None, str, str, str]:
     return (int(r["kept"]), r["reason"], r["detail"], values, thresholds_json(r["thresholds"]))
 
 
+def stored_artifacts(items: dict[str, Any]) -> tuple[tuple[str, str | None, str | None, Any], ...]:
+    """A corpus stage's ``prepare`` output as the ledger stores it: (name, dtype, shape, data)
+    per item, or one ``EMPTY`` row when there is none (remembering that prepare ran). Workers
+    make it, so the main process neither receives numpy arrays nor encodes them."""
+    if not items:
+        return ((EMPTY, None, None, "null"),)
+    return tuple((name, *_encode_artifact(value)) for name, value in items.items())
+
+
 def canonical_json(value: Any) -> str:
     """The JSON text the ledger stores for a value (sorted keys, no spaces)."""
     return _dumps(value)
@@ -212,14 +221,13 @@ class Ledger:
                 entry[name] = scalar(data) if dtype is None else array(dtype, shape, data)
         return out
 
-    def put_artifacts(self, rows: Iterable[tuple[str, str, str, dict[str, Any]]]) -> None:
-        """rows of (sha256, stage, fingerprint, {name: array or JSON scalar})."""
+    def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
+        """rows of (sha256, stage, fingerprint, items): items as ``{name: array or JSON
+        scalar}``, or in their stored form (``stored_artifacts``, what the workers send)."""
         flat = []
         for sha, stage, fp, items in rows:
-            if not items:  # remember that prepare ran and returned nothing
-                flat.append((sha, stage, fp, EMPTY, None, None, "null"))
-            for name, value in items.items():
-                flat.append((sha, stage, fp, name, *_encode_artifact(value)))
+            for stored in (items if type(items) is tuple else stored_artifacts(items)):
+                flat.append((sha, stage, fp, *stored))
         self.db.executemany("INSERT OR REPLACE INTO artifacts VALUES (?,?,?,?,?,?,?)", flat)
 
     # -- corpus-stage state ------------------------------------------------------------------
@@ -361,7 +369,8 @@ def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
     import numpy as np
     if isinstance(value, np.ndarray):
         arr = np.ascontiguousarray(value)
-        return arr.dtype.str, _dumps(list(arr.shape)), arr.tobytes()
+        # the shape as _dumps writes a list of ints
+        return arr.dtype.str, "[" + ",".join(map(str, arr.shape)) + "]", arr.tobytes()
     return None, None, _dumps(value)
 
 

@@ -29,7 +29,7 @@ from . import __version__, outputs, uptodate
 from .config import Config
 from .errors import LedgerError, MidisiftError
 from .executor import Fault, Limits, run_tasks
-from .ledger import Ledger, stored_result
+from .ledger import Ledger, stored_artifacts, stored_result
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
 from .report import RunReport
@@ -85,7 +85,7 @@ class FileOutcome:
 
     sha256: str
     results: dict[str, tuple] = field(default_factory=dict)  # stage -> ledger.stored_result form
-    artifacts: dict[str, dict[str, Any]] = field(default_factory=dict)
+    artifacts: dict[str, tuple] = field(default_factory=dict)  # stage -> ledger.stored_artifacts form
     staged: tuple[str, ...] = ()  # suffixes of the staged outputs (outputs.staged_path)
     seconds: float = 0.0
 
@@ -128,7 +128,7 @@ def process_file(task: FileTask) -> FileOutcome:
         st = _stage(plan)
         if plan.kind == "corpus":
             if plan.compute:
-                out.artifacts[plan.name] = st.prepare(piece, ctx)
+                out.artifacts[plan.name] = stored_artifacts(st.prepare(piece, ctx))
             continue
         if plan.compute:
             rj = _run_file_stage(st, piece, ctx, task.source).to_json()
