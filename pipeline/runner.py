@@ -18,6 +18,7 @@ A run has four steps:
 from __future__ import annotations
 
 import hashlib
+import pickle
 import sqlite3
 import sys
 import time
@@ -49,9 +50,45 @@ def _reduce_by_fields(obj: Any) -> tuple:
     return (type(obj), tuple(getattr(obj, name) for name in obj.__slots__))
 
 
+#: Pickled plan lists of tasks whose plans carry no cached verdict, by the plans' object ids:
+#: such lists are the same few for every task (each entry keeps its plans alive, so their ids
+#: are not reused).
+_SHARED_PLAN_BYTES: dict[tuple[int, ...], tuple[list, bytes]] = {}
+
+
+def _reduce_task(task: "FileTask") -> tuple:
+    """Pickle a task; a plan list without cached verdicts is pickled once and sent as those
+    bytes (about 15 us less per task in the main process), and the worker decodes each
+    distinct byte string once (``_task_with_shared_plans``)."""
+    plans = task.stages
+    if any(p.cached is not None for p in plans):
+        return _reduce_by_fields(task)
+    key = tuple(map(id, plans))
+    hit = _SHARED_PLAN_BYTES.get(key)
+    if hit is None or any(a is not b for a, b in zip(hit[0], plans)):
+        hit = _SHARED_PLAN_BYTES[key] = (list(plans), pickle.dumps(plans))
+    return (_task_with_shared_plans, (task.sha256, task.path, task.source, hit[1], task.render,
+                                      task.output_fp))
+
+
+_DECODED_PLANS: dict[bytes, list] = {}
+
+
+def _task_with_shared_plans(sha256: str, path: str, source: str, plans: bytes, render: str | None,
+                            output_fp: str) -> "FileTask":
+    """The task pickled by ``_reduce_task`` (worker side; a cache of decoded plan lists, which
+    the worker only reads)."""
+    decoded = _DECODED_PLANS.get(plans)
+    if decoded is None:
+        if len(_DECODED_PLANS) > 256:
+            _DECODED_PLANS.clear()
+        decoded = _DECODED_PLANS[plans] = pickle.loads(plans)
+    return FileTask(sha256, path, source, decoded, render, output_fp)
+
+
 @dataclass(slots=True)
 class StagePlan:
-    """What a worker needs to know of one stage for one file."""
+    """What a worker needs to know of one stage for one file (read-only in the worker)."""
 
     __reduce__ = _reduce_by_fields
 
@@ -67,7 +104,7 @@ class StagePlan:
 class FileTask:
     """Plain-data description of the per-file work for one content."""
 
-    __reduce__ = _reduce_by_fields
+    __reduce__ = _reduce_task
 
     sha256: str
     path: str

@@ -275,3 +275,29 @@ def test_split_links_are_incremental_and_equal_a_full_search(tmp_path):
     full = sorted((a, b) for a, b, _ in near_links(sigs, split.opts["group_threshold"], shingles))
     assert len(full) >= 2
     assert sorted(map(tuple, saved["links"])) == full
+
+
+def test_tasks_travel_to_workers_unchanged():
+    """A task survives pickling field for field, whether its plans carry cached verdicts (sent
+    one by one) or not (the shared plan list, sent as bytes pickled once and decoded once)."""
+    import pickle
+    from multiprocessing.reduction import ForkingPickler
+
+    from pipeline.records import Compactor
+    from pipeline.runner import FileTask, StagePlan
+
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output="/tmp/x", workers=1)
+    runner = Runner(cfg, quiet=True)
+    shared = [StagePlan(s.name, s.opts, s.kind, True, fingerprint=s.fingerprint) for s in runner.stages]
+    cached = Compactor().make(True, None, "ok", {"tonic": "C", "augment": []}, {"min": 1})
+    mixed = [shared[0], StagePlan("transpose", {}, "file", False, cached, "fp")] + shared[2:]
+
+    def fields(task):
+        return [task.sha256, task.path, task.source, task.render, task.output_fp,
+                [(p.name, p.options, p.kind, p.compute, p.cached, p.fingerprint) for p in task.stages]]
+
+    for plans in (shared, mixed, shared):
+        for n in range(2):  # the second task reuses the shared bytes (sender) and list (receiver)
+            task = FileTask("ab" * 32, f"/in/{n}.mid", f"{n}.mid", list(plans), "/out/.staging", "fp16")
+            back = pickle.loads(ForkingPickler.dumps(task))
+            assert fields(back) == fields(task)
