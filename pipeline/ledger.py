@@ -20,7 +20,6 @@ leaves a half-written result and the next run picks up what was committed.
 from __future__ import annotations
 
 import json
-import math
 import sqlite3
 import time
 from pathlib import Path
@@ -34,6 +33,8 @@ from .errors import LedgerError
 SCHEMA_VERSION = 1
 #: Artifact name recorded when a corpus stage's ``prepare`` returned nothing for a file.
 EMPTY = "~"
+#: Artifact name of the row holding all of a file's scalar artifacts of one stage (a JSON object).
+SCALARS = "~scalars"
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -76,11 +77,22 @@ def stored_result(r: Any) -> tuple[int, str | None, str, str, str]:
 
 def stored_artifacts(items: dict[str, Any]) -> tuple[tuple[str, str | None, str | None, Any], ...]:
     """A corpus stage's ``prepare`` output as the ledger stores it: (name, dtype, shape, data)
-    per item, or one ``EMPTY`` row when there is none (remembering that prepare ran). Workers
-    make it, so the main process neither receives numpy arrays nor encodes them."""
+    rows, one per array and one (``SCALARS``) holding every JSON scalar as an object, or one
+    ``EMPTY`` row when there is nothing (remembering that prepare ran). Workers make it, so the
+    main process neither receives numpy arrays nor encodes them."""
     if not items:
         return ((EMPTY, None, None, "null"),)
-    return tuple((name, *_encode_artifact(value)) for name, value in items.items())
+    import numpy as np
+    rows = []
+    scalars = {}
+    for name, value in items.items():
+        if isinstance(value, np.ndarray):
+            rows.append((name, *_encode_artifact(value)))
+        else:
+            scalars[name] = value
+    if scalars:  # speed: one row for all of them (a row costs more than its bytes)
+        rows.append((SCALARS, None, None, _dumps(scalars)))
+    return tuple(rows)
 
 
 def canonical_json(value: Any) -> str:
@@ -217,8 +229,12 @@ class Ledger:
             entry = out.get(sha)
             if entry is None:
                 entry = out[sha] = {}
-            if name != EMPTY:
-                entry[name] = scalar(data) if dtype is None else array(dtype, shape, data)
+            if dtype is not None:
+                entry[name] = array(dtype, shape, data)
+            elif name == SCALARS:
+                entry.update(json.loads(data))
+            elif name != EMPTY:
+                entry[name] = scalar(data)  # a scalar stored on its own row
         return out
 
     def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
@@ -363,30 +379,12 @@ def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
 
 
 def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
-    t = type(value)
-    if t is str or t is int or t is float:
-        return None, None, _scalar_text(value)
     import numpy as np
     if isinstance(value, np.ndarray):
         arr = np.ascontiguousarray(value)
         # the shape as _dumps writes a list of ints
         return arr.dtype.str, "[" + ",".join(map(str, arr.shape)) + "]", arr.tobytes()
     return None, None, _dumps(value)
-
-
-def _scalar_text(value: Any) -> str:
-    """``_dumps`` of a str, int or float, with shortcuts for the plain forms (the inverse of
-    ``_scalar``): a string of printable ASCII without quotes or backslashes needs no escape, an
-    int is its digits, a finite float its ``repr`` (what the json module writes for both)."""
-    t = type(value)
-    if t is str:
-        if value.isascii() and value.isprintable() and '"' not in value and "\\" not in value:
-            return '"' + value + '"'
-    elif t is int:
-        return str(value)
-    elif t is float and math.isfinite(value):
-        return repr(value)
-    return _dumps(value)
 
 
 def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:

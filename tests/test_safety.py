@@ -269,22 +269,30 @@ def test_object_arrays_in_the_ledger_are_refused(tmp_path):
 
 
 def test_artifact_scalars_read_back_as_the_json_module_reads_them(tmp_path):
-    # the ledger's shortcuts for plain strings and numbers must write what json.dumps writes
-    # and read what json.loads reads (Python's json module is the reference), type included
+    # scalars are stored as one JSON object per file and stage, or (rows written by earlier
+    # versions) one row each, read with shortcuts for plain strings and numbers: both must read
+    # what json.loads reads (Python's json module is the reference), type included
     import json
     import math
+
+    from pipeline.ledger import SCALARS
     values = ["abc", 'a"b', "a\\b", "é", "", "\u2028", "tab\there", "del\x7f",
               0, -3, -2**70, 10**20, 1.5, -0.0, 1e-7, 1e300,
               float("inf"), float("-inf"), float("nan"), True, False, None, [1, 2.5], {"a": 1}]
+    items = {f"v{i}": v for i, v in enumerate(values)}
     with Ledger(tmp_path / "state.sqlite") as led:
         with led.batch():
-            led.put_artifacts([("ab" * 32, "dedup", "fp", {f"v{i}": v for i, v in enumerate(values)})])
-        got = led.artifacts_for("dedup", "fp")["ab" * 32]
-        stored = dict(led.db.execute("SELECT name, data FROM artifacts"))
-    for i, v in enumerate(values):
-        assert stored[f"v{i}"] == json.dumps(v, sort_keys=True, separators=(",", ":")), v
-        want = json.loads(stored[f"v{i}"])
-        if isinstance(v, float) and math.isnan(v):
-            assert math.isnan(got[f"v{i}"])
-            continue
-        assert got[f"v{i}"] == want and type(got[f"v{i}"]) is type(want), (v, stored[f"v{i}"])
+            led.put_artifacts([("ab" * 32, "dedup", "fp", items)])
+            led.db.executemany("INSERT INTO artifacts VALUES (?,?,?,?,?,?,?)",
+                               [("cd" * 32, "dedup", "fp", k, None, None, json.dumps(v))
+                                for k, v in items.items()])
+        packed = led.db.execute("SELECT name, data FROM artifacts WHERE sha256=?", ("ab" * 32,)).fetchall()
+        got = led.artifacts_for("dedup", "fp")
+    assert [name for name, _ in packed] == [SCALARS]
+    for sha in ("ab" * 32, "cd" * 32):
+        for k, v in items.items():
+            want = json.loads(json.dumps(v))
+            if isinstance(v, float) and math.isnan(v):
+                assert math.isnan(got[sha][k])
+                continue
+            assert got[sha][k] == want and type(got[sha][k]) is type(want), (sha, v)
