@@ -279,7 +279,7 @@ def test_split_links_are_incremental_and_equal_a_full_search(tmp_path):
 
 def test_tasks_travel_to_workers_unchanged():
     """A task survives pickling field for field, whether its plans carry cached verdicts (sent
-    one by one) or not (the shared plan list, sent as bytes pickled once and decoded once)."""
+    one by one) or not (the shared plan list, sent as plain tuples made once)."""
     import pickle
     from multiprocessing.reduction import ForkingPickler
 
@@ -297,7 +297,7 @@ def test_tasks_travel_to_workers_unchanged():
                 [(p.name, p.options, p.kind, p.compute, p.cached, p.fingerprint) for p in task.stages]]
 
     for plans in (shared, mixed, shared):
-        for n in range(2):  # the second task reuses the shared bytes (sender) and list (receiver)
+        for n in range(2):  # the second task reuses the tuples made for the first
             task = FileTask("ab" * 32, f"/in/{n}.mid", f"{n}.mid", list(plans), "/out/.staging", "fp16")
             back = pickle.loads(ForkingPickler.dumps(task))
             assert fields(back) == fields(task)
