@@ -34,13 +34,14 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import selectors
 import signal
 import sys
 import time
 import traceback
 from collections import deque
 from dataclasses import dataclass
-from multiprocessing.connection import Connection, wait
+from multiprocessing.connection import Connection
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
 T = TypeVar("T")
@@ -298,15 +299,23 @@ class _Pool:
         self.fn, self.n, self.limits = fn, n, limits
         self.ctx = _context()
         self.workers: list[_Worker] = []
+        # speed: one selector for the whole run, each worker's pipe and sentinel registered
+        # once (``multiprocessing.connection.wait`` builds a selector on every call, a few
+        # times per file)
+        self.selector = selectors.DefaultSelector()
 
     def _spawn(self) -> _Worker:
         w = _Worker(self.ctx, self.fn, self.limits)
         self.workers.append(w)
+        self.selector.register(w.conn, selectors.EVENT_READ, w)
+        self.selector.register(w.proc.sentinel, selectors.EVENT_READ, w)
         return w
 
     def _retire(self, w: _Worker, kill: bool) -> list[tuple[int, Any]]:
         """Stop a worker; return the tasks it had not answered (its head excluded by callers)."""
         self.workers.remove(w)
+        self.selector.unregister(w.conn)
+        self.selector.unregister(w.proc.sentinel)
         w.stop(kill)
         return list(w.queue)
 
@@ -327,12 +336,15 @@ class _Pool:
             now = time.monotonic()
             busy = [w for w in self.workers if w.queue]
             nearest = min(w.started + lim.timeout_s for w in busy) - now
-            ready = wait([w.conn for w in busy] + [w.proc.sentinel for w in busy], max(0.0, nearest))
-            for w in list(busy):
-                if w.conn in ready or w.proc.sentinel in ready:
-                    for item in self._drain(w, todo):
-                        remaining -= 1
-                        yield item
+            ready = {key.data for key, _ in self.selector.select(max(0.0, nearest))}
+            for w in [w for w in self.workers if w in ready]:
+                if not w.queue:  # nothing asked of it: only its death can wake us; replace it
+                    if not w.proc.is_alive():
+                        self._retire(w, kill=True)
+                    continue
+                for item in self._drain(w, todo):
+                    remaining -= 1
+                    yield item
             now = time.monotonic()
             for w in list(self.workers):
                 if w.queue and now - w.started > lim.timeout_s and not w.conn.poll():
@@ -385,3 +397,4 @@ class _Pool:
     def close(self) -> None:
         for w in list(self.workers):
             self._retire(w, kill=bool(w.queue))
+        self.selector.close()
