@@ -291,7 +291,9 @@ class Runner:
         cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
                                             values_as_text=True)
                  for s in self.stages if s.kind == "file"}
-        art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) for s in self.stages if s.kind == "corpus"}
+        # a corpus stage without a prepare step (split) has nothing to store per file
+        art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
+                    for s in self.stages if s.kind == "corpus"}
         existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp)
         last_status = {sha: status for sha, status in ledger.decision_statuses()}
         tasks = []
@@ -536,7 +538,7 @@ class Runner:
                         walk.status[sha] = (st.name, r["reason"])
                 alive = survivors
             else:
-                arts = ledger.artifacts_for(st.name, st.fingerprint, set(alive))
+                arts = ledger.artifacts_for(st.name, st.fingerprint, set(alive)) if _prepares(st) else {}
                 members = [Member(sha[:16], sha, rep[sha], TrailValues(trails[sha]),
                                   {st.name: arts.pop(sha, {})}) for sha in alive]
                 del arts
@@ -596,6 +598,21 @@ class Runner:
         walk.byte_copy_stage = "dedup" if "dedup" in names else None
         walk.rep = rep
         return walk
+
+
+def _prepares(stage: Stage) -> bool:
+    """Whether a corpus stage has a per-file ``prepare`` step of its own."""
+    return type(stage).prepare is not Stage.prepare
+
+
+class _Everything:
+    """The artifact keys of a corpus stage without a prepare step: every content has them."""
+
+    def __contains__(self, sha: object) -> bool:
+        return True
+
+
+_EVERY = _Everything()
 
 
 #: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
