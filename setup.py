@@ -3,6 +3,13 @@
 ``optional=True``: where no C compiler is available the build of the extension is skipped
 with a warning and midisift installs and runs on its pure-Python decoder (pipeline.smf).
 """
+import sys
+
 from setuptools import Extension, setup
 
-setup(ext_modules=[Extension("pipeline._smf_accel", ["pipeline/_smf_accel.c"], optional=True)])
+# The analyses in the extension must round every product before adding it, as numpy does:
+# no fused multiply-add contraction (GCC and Clang; MSVC does not contract by default).
+_NO_CONTRACT = [] if sys.platform == "win32" else ["-ffp-contract=off"]
+
+setup(ext_modules=[Extension("pipeline._smf_accel", ["pipeline/_smf_accel.c"], optional=True,
+                             extra_compile_args=_NO_CONTRACT)])

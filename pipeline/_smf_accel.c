@@ -1,4 +1,5 @@
-/* Compiled fast path of pipeline.smf: the per-track event loop of ``smf._read_track``.
+/* Compiled fast path of pipeline.smf: the per-track event loop of ``smf._read_track`` (and, at
+ * the end, the per-file analyses of pipeline.analysis on the decoded note table).
  *
  * Same semantics as the pure-Python loop (running status kept across meta and sysex events,
  * 4-byte delta-time limit, same-key note stacking, zero-length drop counting, hanging notes
@@ -11,6 +12,7 @@
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <math.h>
 #include <stdint.h>
 #include <string.h>
 
@@ -461,41 +463,45 @@ static inline int row_less(const Row *a, const Row *b) {
     return a->idx < b->idx;
 }
 
-/* stable merge sort (insertion sort on runs of 16, then bottom-up merges) */
-static void sort_rows(Row *a, Row *tmp, Py_ssize_t n) {
-    const Py_ssize_t RUN = 16;
-    for (Py_ssize_t lo = 0; lo < n; lo += RUN) {
-        Py_ssize_t hi = lo + RUN < n ? lo + RUN : n;
-        for (Py_ssize_t i = lo + 1; i < hi; i++) {
-            Row x = a[i];
-            Py_ssize_t j = i;
-            while (j > lo && row_less(&x, &a[j - 1])) {
-                a[j] = a[j - 1];
-                j--;
-            }
-            a[j] = x;
-        }
-    }
-    Row *src = a, *dst = tmp;
-    for (Py_ssize_t width = RUN; width < n; width *= 2) {
-        for (Py_ssize_t lo = 0; lo < n; lo += 2 * width) {
-            Py_ssize_t mid = lo + width < n ? lo + width : n;
-            Py_ssize_t hi = lo + 2 * width < n ? lo + 2 * width : n;
-            Py_ssize_t i = lo, j = mid, k = lo;
-            if (mid >= hi || !row_less(&src[mid], &src[mid - 1])) { /* already in order */
-                memcpy(dst + lo, src + lo, (size_t)(hi - lo) * sizeof(Row));
-                continue;
-            }
-            while (i < mid && j < hi) dst[k++] = row_less(&src[j], &src[i]) ? src[j++] : src[i++];
-            while (i < mid) dst[k++] = src[i++];
-            while (j < hi) dst[k++] = src[j++];
-        }
-        Row *sw = src;
-        src = dst;
-        dst = sw;
-    }
-    if (src != a) memcpy(a, src, (size_t)n * sizeof(Row));
+/* A stable merge sort of T by LESS (insertion sort on runs of 16, then bottom-up merges into
+ * tmp, a buffer of n elements), defined once per element type. */
+#define DEFINE_STABLE_SORT(NAME, T, LESS)                                                       \
+static void NAME(T *a, T *tmp, Py_ssize_t n) {                                                  \
+    const Py_ssize_t RUN = 16;                                                                  \
+    for (Py_ssize_t lo = 0; lo < n; lo += RUN) {                                                \
+        Py_ssize_t hi = lo + RUN < n ? lo + RUN : n;                                            \
+        for (Py_ssize_t i = lo + 1; i < hi; i++) {                                              \
+            T x = a[i];                                                                         \
+            Py_ssize_t j = i;                                                                   \
+            while (j > lo && LESS(&x, &a[j - 1])) {                                             \
+                a[j] = a[j - 1];                                                                \
+                j--;                                                                            \
+            }                                                                                   \
+            a[j] = x;                                                                           \
+        }                                                                                       \
+    }                                                                                           \
+    T *src = a, *dst = tmp;                                                                     \
+    for (Py_ssize_t width = RUN; width < n; width *= 2) {                                       \
+        for (Py_ssize_t lo = 0; lo < n; lo += 2 * width) {                                      \
+            Py_ssize_t mid = lo + width < n ? lo + width : n;                                   \
+            Py_ssize_t hi = lo + 2 * width < n ? lo + 2 * width : n;                            \
+            Py_ssize_t i = lo, j = mid, k = lo;                                                 \
+            if (mid >= hi || !LESS(&src[mid], &src[mid - 1])) { /* already in order */          \
+                memcpy(dst + lo, src + lo, (size_t)(hi - lo) * sizeof(T));                      \
+                continue;                                                                       \
+            }                                                                                   \
+            while (i < mid && j < hi) dst[k++] = LESS(&src[j], &src[i]) ? src[j++] : src[i++];  \
+            while (i < mid) dst[k++] = src[i++];                                                \
+            while (j < hi) dst[k++] = src[j++];                                                 \
+        }                                                                                       \
+        T *sw = src;                                                                            \
+        src = dst;                                                                              \
+        dst = sw;                                                                               \
+    }                                                                                           \
+    if (src != a) memcpy(a, src, (size_t)n * sizeof(T));                                        \
 }
+
+DEFINE_STABLE_SORT(sort_rows, Row, row_less)
 
 typedef struct {
     const int64_t *tick; /* tempo map: tick, us per beat pairs (TEMPO_DTYPE bytes) */
@@ -677,23 +683,74 @@ PyDoc_STRVAR(group_events_doc,
 "encode._all_group_events on 1-d int64 arrays: (group, event bytes) in ascending group order.\n"
 "Raises ValueError when a delta falls outside 0..0x0FFFFFFF, as the numpy version does.");
 
-static PyObject *group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
-    (void)self;
-    if (nargs != 6) {
-        PyErr_SetString(PyExc_TypeError, "group_events takes 6 columns");
-        return NULL;
+/* The two sorts of group_events for a table of few groups (at most 64): the rows are first
+ * put into their group's block (stably), then each block is sorted on its own. The sort
+ * order is total (the note index breaks ties), so this is the permutation of the one-pass
+ * sort; it is faster because a canonical note table is already in order within a group.
+ * Returns 0 (nothing done) for more groups; on[n..2n) and off[n..2n) are scratch space. */
+static int sort_by_group(Row *on, Row *off, Py_ssize_t n) {
+    enum { MAX_GROUPS = 64 };
+    int64_t gv[MAX_GROUPS];
+    Py_ssize_t count[MAX_GROUPS + 1];
+    int g_n = 0, last = 0;
+    unsigned char *gi = (unsigned char *)PyMem_Malloc((size_t)n);
+    if (!gi) return 0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        int64_t g = on[i].start;
+        if (g_n && gv[last] == g) {
+            gi[i] = (unsigned char)last;
+            continue;
+        }
+        int k = 0;
+        while (k < g_n && gv[k] != g) k++;
+        if (k == g_n) {
+            if (g_n == MAX_GROUPS) {
+                PyMem_Free(gi);
+                return 0;
+            }
+            gv[g_n++] = g;
+        }
+        gi[i] = (unsigned char)k;
+        last = k;
     }
-    Column col[6];
-    Py_ssize_t n = -1;
+    int rank[MAX_GROUPS], order[MAX_GROUPS];
+    for (int k = 0; k < g_n; k++) order[k] = k;
+    for (int k = 1; k < g_n; k++) { /* groups in ascending value */
+        int x = order[k], j = k;
+        while (j > 0 && gv[order[j - 1]] > gv[x]) {
+            order[j] = order[j - 1];
+            j--;
+        }
+        order[j] = x;
+    }
+    for (int k = 0; k < g_n; k++) rank[order[k]] = k;
+    memset(count, 0, sizeof count);
+    for (Py_ssize_t i = 0; i < n; i++) count[rank[gi[i]] + 1]++;
+    for (int k = 0; k < g_n; k++) count[k + 1] += count[k];
+    Py_ssize_t pos[MAX_GROUPS];
+    Row *on_b = on + n, *off_b = off + n;
+    memcpy(pos, count, sizeof pos);
+    for (Py_ssize_t i = 0; i < n; i++) on_b[pos[rank[gi[i]]]++] = on[i];
+    memcpy(pos, count, sizeof pos);
+    for (Py_ssize_t i = 0; i < n; i++) off_b[pos[rank[gi[i]]]++] = off[i];
+    PyMem_Free(gi);
+    memcpy(on, on_b, (size_t)n * sizeof(Row));
+    memcpy(off, off_b, (size_t)n * sizeof(Row));
+    for (int k = 0; k < g_n; k++) {
+        Py_ssize_t lo = count[k], len = count[k + 1] - count[k];
+        sort_rows(on + lo, on_b + lo, len);
+        sort_rows(off + lo, off_b + lo, len);
+    }
+    return 1;
+}
+
+/* the group tracks of n notes given as int64 columns (group = track * 16 + channel) */
+static PyObject *group_events_of(Py_ssize_t n, const int64_t *grp, const int64_t *st,
+                                 const int64_t *en, const int64_t *pi, const int64_t *ve,
+                                 const int64_t *pr) {
     PyObject *out = NULL;
     Row *on = NULL, *off = NULL;
     unsigned char *buf = NULL;
-    int c;
-    for (c = 0; c < 6; c++) col[c].ok = 0;
-    for (c = 0; c < 6; c++)
-        if (column_get(args[c], &col[c], &n) < 0) goto done;
-    const int64_t *grp = col[0].v, *st = col[1].v, *en = col[2].v, *pi = col[3].v,
-                  *ve = col[4].v, *pr = col[5].v;
     if (n == 0) {
         out = PyList_New(0);
         goto done;
@@ -717,8 +774,10 @@ static PyObject *group_events(PyObject *self, PyObject *const *args, Py_ssize_t 
     }
     /* Row reused as sort keys: start = group, k2 = tick, end = pitch, idx = note index;
      * on[0..n) with scratch on[n..2n), off = on[2n..3n) with scratch on[3n..4n) */
-    sort_rows(on, on + n, n);   /* (group, start, pitch, index) */
-    sort_rows(off, off + n, n); /* (group, end, pitch, index) */
+    if (!sort_by_group(on, off, n)) {
+        sort_rows(on, on + n, n);   /* (group, start, pitch, index) */
+        sort_rows(off, off + n, n); /* (group, end, pitch, index) */
+    }
     out = PyList_New(0);
     if (!out) goto done;
     unsigned char *o = buf;
@@ -778,10 +837,939 @@ static PyObject *group_events(PyObject *self, PyObject *const *args, Py_ssize_t 
                         "note times must be 0..0x0FFFFFFF ticks apart and not negative");
     }
 done:
-    for (c = 0; c < 6; c++)
-        if (col[c].ok) PyBuffer_Release(&col[c].view);
     PyMem_Free(on);
     PyMem_Free(buf);
+    return out;
+}
+
+static PyObject *group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 6) {
+        PyErr_SetString(PyExc_TypeError, "group_events takes 6 columns");
+        return NULL;
+    }
+    Column col[6];
+    Py_ssize_t n = -1;
+    PyObject *out = NULL;
+    int c;
+    for (c = 0; c < 6; c++) col[c].ok = 0;
+    for (c = 0; c < 6; c++)
+        if (column_get(args[c], &col[c], &n) < 0) goto done;
+    out = group_events_of(n, col[0].v, col[1].v, col[2].v, col[3].v, col[4].v, col[5].v);
+done:
+    for (c = 0; c < 6; c++)
+        if (col[c].ok) PyBuffer_Release(&col[c].view);
+    return out;
+}
+
+/* ---------------------------------------------------------------------------------------------
+ * Per-file analyses (pipeline.analysis): the same IEEE double operations, in the same order,
+ * as the numpy formulations, on the NOTE_DTYPE table of one file. Sums that numpy takes with
+ * ``np.add.reduce`` use numpy's pairwise summation (``pairwise_sum`` below); ``np.bincount``
+ * sums in index order. Each function returns None where the numpy version takes a general
+ * path (notes out of time order, values outside the ranges checked) or would raise: the
+ * caller then runs the numpy code, which stays the specification (tests/test_smf_accel.py).
+ * The build turns off multiply-add contraction (setup.py), so every product is rounded
+ * before it is added, as numpy does.
+ */
+
+typedef struct {
+    Py_buffer view;
+    const unsigned char *b;
+    Py_ssize_t n;
+    int ok;
+} Notes;
+
+static int notes_get(PyObject *obj, Notes *t) {
+    t->ok = 0;
+    if (PyObject_GetBuffer(obj, &t->view, PyBUF_C_CONTIGUOUS) < 0) return -1;
+    t->ok = 1;
+    if (t->view.len % NOTE_SIZE) {
+        PyErr_SetString(PyExc_ValueError, "a NOTE_DTYPE table is expected");
+        return -1;
+    }
+    t->b = (const unsigned char *)t->view.buf;
+    t->n = t->view.len / NOTE_SIZE;
+    return 0;
+}
+
+static void notes_release(Notes *t) {
+    if (t->ok) PyBuffer_Release(&t->view);
+    t->ok = 0;
+}
+
+/* notes_get, releasing what it took when it fails */
+static int notes_open(PyObject *obj, Notes *t) {
+    if (notes_get(obj, t) < 0) {
+        notes_release(t);
+        return -1;
+    }
+    return 0;
+}
+
+static inline int64_t f_i64(const Notes *t, Py_ssize_t i, int off) {
+    int64_t v;
+    memcpy(&v, t->b + i * NOTE_SIZE + off, 8);
+    return v;
+}
+static inline double f_f64(const Notes *t, Py_ssize_t i, int off) {
+    double v;
+    memcpy(&v, t->b + i * NOTE_SIZE + off, 8);
+    return v;
+}
+static inline int f_i16(const Notes *t, Py_ssize_t i, int off) {
+    int16_t v;
+    memcpy(&v, t->b + i * NOTE_SIZE + off, 2);
+    return v;
+}
+#define O_START 0
+#define O_END 8
+#define O_START_S 16
+#define O_END_S 24
+#define O_PITCH 32
+#define O_VELOCITY 34
+#define O_CHANNEL 36
+#define O_PROGRAM 38
+#define O_TRACK 40
+#define DRUM 9
+
+/* numpy's pairwise summation of n doubles (numpy/_core/src/umath/loops_utils.h.src) */
+static double pairwise_sum(const double *a, Py_ssize_t n) {
+    if (n < 8) {
+        double res = 0.;
+        for (Py_ssize_t i = 0; i < n; i++) res += a[i];
+        return res;
+    }
+    if (n <= 128) {
+        double r[8], res;
+        Py_ssize_t i;
+        for (int j = 0; j < 8; j++) r[j] = a[j];
+        for (i = 8; i < n - (n % 8); i += 8)
+            for (int j = 0; j < 8; j++) r[j] += a[i + j];
+        res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]));
+        for (; i < n; i++) res += a[i];
+        return res;
+    }
+    Py_ssize_t n2 = n / 2;
+    n2 -= n2 % 8;
+    return pairwise_sum(a, n2) + pairwise_sum(a + n2, n - n2);
+}
+
+/* np.add.reduce of a float64 array: the identity 0.0 plus the pairwise sum */
+static inline double np_sum(const double *a, Py_ssize_t n) {
+    double acc = 0.0;
+    acc += pairwise_sum(a, n);
+    return acc;
+}
+
+static PyObject *py_sum(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 1) {
+        PyErr_SetString(PyExc_TypeError, "add_reduce takes one float64 buffer");
+        return NULL;
+    }
+    Py_buffer v;
+    if (PyObject_GetBuffer(args[0], &v, PyBUF_C_CONTIGUOUS) < 0) return NULL;
+    double s = np_sum((const double *)v.buf, v.len / 8);
+    PyBuffer_Release(&v);
+    return PyFloat_FromDouble(s);
+}
+
+/* numpy's floor division of int64 by a positive divisor */
+static inline int64_t floordiv_pos(int64_t a, int64_t b) {
+    int64_t q = a / b;
+    if ((a % b) != 0 && a < 0) q--;
+    return q;
+}
+/* int64 arithmetic that wraps modulo 2**64, as numpy's integer arrays do */
+static inline int64_t wrap_mul(int64_t a, int64_t b) { return (int64_t)((uint64_t)a * (uint64_t)b); }
+static inline int64_t wrap_add(int64_t a, int64_t b) { return (int64_t)((uint64_t)a + (uint64_t)b); }
+static inline int64_t wrap_sub(int64_t a, int64_t b) { return (int64_t)((uint64_t)a - (uint64_t)b); }
+
+static inline uint64_t fmix64(uint64_t x) {
+    x ^= x >> 33;
+    x *= 0xFF51AFD7ED558CCDULL;
+    x ^= x >> 33;
+    x *= 0xC4CEB9FE1A85EC53ULL;
+    x ^= x >> 33;
+    return x;
+}
+#define ROLL 0x9E3779B97F4A7C15ULL
+
+/* ascending sort of n uint64 (LSD radix, 8 bits a pass; ``tmp`` holds n values); -1 without
+ * memory. Equal values are indistinguishable, so any correct sort gives the same bytes. */
+static int sort_u64(uint64_t *a, Py_ssize_t n) {
+    if (n < 2) return 0;
+    uint64_t *tmp = (uint64_t *)PyMem_Malloc((size_t)n * sizeof(uint64_t));
+    if (!tmp) return -1;
+    uint64_t *src = a, *dst = tmp;
+    for (int shift = 0; shift < 64; shift += 8) {
+        Py_ssize_t count[257] = {0};
+        for (Py_ssize_t i = 0; i < n; i++) count[((src[i] >> shift) & 0xFF) + 1]++;
+        if (count[((src[0] >> shift) & 0xFF) + 1] == n) continue; /* one digit value: no move */
+        for (int d = 0; d < 256; d++) count[d + 1] += count[d];
+        for (Py_ssize_t i = 0; i < n; i++) dst[count[(src[i] >> shift) & 0xFF]++] = src[i];
+        uint64_t *sw = src;
+        src = dst;
+        dst = sw;
+    }
+    if (src != a) memcpy(a, src, (size_t)n * sizeof(uint64_t));
+    PyMem_Free(tmp);
+    return 0;
+}
+static int cmp_i64(const void *a, const void *b) {
+    int64_t x = *(const int64_t *)a, y = *(const int64_t *)b;
+    return (x > y) - (x < y);
+}
+
+PyDoc_STRVAR(content_rows_doc,
+"content_rows(notes, ticks_per_beat, steps_per_beat) -> bytes\n\n"
+"shingles.content_hash's sorted uint64 row hashes (little-endian bytes) of a NOTE_DTYPE table.");
+
+static PyObject *content_rows(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 3) {
+        PyErr_SetString(PyExc_TypeError, "content_rows takes 3 arguments");
+        return NULL;
+    }
+    int64_t tpb = PyLong_AsLongLong(args[1]), steps = PyLong_AsLongLong(args[2]);
+    if (PyErr_Occurred()) return NULL;
+    if (tpb <= 0 || tpb > ((int64_t)1 << 40) || steps <= 0 || steps > ((int64_t)1 << 20)) Py_RETURN_NONE;
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = PyBytes_FromStringAndSize(NULL, t.n * 8);
+    if (out) {
+        uint64_t *row = (uint64_t *)PyBytes_AS_STRING(out);
+        int64_t mul = 2 * steps, add = tpb, div = 2 * tpb;
+        for (Py_ssize_t i = 0; i < t.n; i++) {
+            uint64_t s = (uint64_t)floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_START), mul), add), div);
+            uint64_t e = (uint64_t)floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_END), mul), add), div);
+            uint64_t r = fmix64(s);
+            r = r * ROLL + e;
+            r = fmix64(r);
+            uint64_t code = (uint64_t)(int64_t)f_i16(&t, i, O_PITCH) * 2u
+                            + (f_i16(&t, i, O_CHANNEL) == DRUM ? 1u : 0u);
+            r = r * ROLL + code;
+            row[i] = fmix64(r);
+        }
+        if (sort_u64(row, t.n) < 0) {
+            Py_CLEAR(out);
+            PyErr_NoMemory();
+        }
+    }
+    notes_release(&t);
+    return out;
+}
+
+PyDoc_STRVAR(shingles_doc,
+"shingles(notes, ticks_per_beat, grid, max_ioi_steps, max_interval, ngram, max_shingles)\n"
+"    -> bytes | None\n\n"
+"shingles.shingle_hashes of a NOTE_DTYPE table (sorted unique uint64, little-endian bytes);\n"
+"None where melody_tokens would sort the onsets first.");
+
+static PyObject *shingles(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 7) {
+        PyErr_SetString(PyExc_TypeError, "shingles takes 7 arguments");
+        return NULL;
+    }
+    int64_t v[6];
+    for (int k = 0; k < 6; k++) v[k] = PyLong_AsLongLong(args[k + 1]);
+    if (PyErr_Occurred()) return NULL;
+    int64_t tpb = v[0], grid = v[1], max_ioi = v[2], max_int = v[3], ngram = v[4], max_sh = v[5];
+    if (tpb <= 0 || tpb > ((int64_t)1 << 40) || grid <= 0 || grid > ((int64_t)1 << 20) || ngram <= 0
+        || max_sh < 0 || max_int < 0 || max_int > 1000000)
+        Py_RETURN_NONE;
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL;
+    int64_t *q = (int64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int64_t));
+    int *pi = (int *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int));
+    uint64_t *tok = (uint64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(uint64_t));
+    if (!q || !pi || !tok) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    Py_ssize_t m = 0;
+    int64_t mul = 2 * grid, div = 2 * tpb;
+    for (Py_ssize_t i = 0; i < t.n; i++) {
+        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+        q[m] = floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_START), mul), tpb), div);
+        pi[m] = f_i16(&t, i, O_PITCH);
+        if (m && q[m] < q[m - 1]) { /* not in time order: numpy sorts first */
+            out = Py_None;
+            Py_INCREF(out);
+            goto done;
+        }
+        m++;
+    }
+    /* tokens: per onset after the first, skyline interval and capped grid step */
+    Py_ssize_t nt = 0;
+    if (m >= 2) {
+        int top_prev = 0, top = pi[0], have_prev = 0;
+        int64_t step = 0;
+        for (Py_ssize_t i = 1; i <= m; i++) {
+            if (i < m && q[i] == q[i - 1]) {
+                if (pi[i] > top) top = pi[i];
+                continue;
+            }
+            /* the onset group that ended at i - 1 has skyline ``top`` */
+            if (have_prev) {
+                int64_t iv = (int64_t)top - top_prev;
+                if (iv < -max_int) iv = -max_int;
+                if (iv > max_int) iv = max_int;
+                int64_t ioi = step < max_ioi ? step : max_ioi;
+                tok[nt++] = (uint64_t)((iv + 128) * 4096 + ioi);
+            }
+            if (i < m) {
+                step = q[i] - q[i - 1];
+                top_prev = top;
+                have_prev = 1;
+                top = pi[i];
+            }
+        }
+    }
+    Py_ssize_t n = ngram < nt ? (Py_ssize_t)ngram : nt;
+    if (n == 0) {
+        out = PyBytes_FromStringAndSize(NULL, 0);
+        goto done;
+    }
+    Py_ssize_t count = nt - n + 1;
+    uint64_t *h = (uint64_t *)q; /* reuse: count <= m */
+    for (Py_ssize_t i = 0; i < count; i++) {
+        uint64_t x = (uint64_t)n;
+        for (Py_ssize_t j = 0; j < n; j++) x = x * ROLL + tok[i + j];
+        h[i] = fmix64(x);
+    }
+    if (sort_u64(h, count) < 0) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    Py_ssize_t u = 0;
+    for (Py_ssize_t i = 0; i < count; i++)
+        if (i == 0 || h[i] != h[i - 1]) h[u++] = h[i];
+    if (u > max_sh) u = (Py_ssize_t)max_sh;
+    out = PyBytes_FromStringAndSize((const char *)h, u * 8);
+done:
+    PyMem_Free(q);
+    PyMem_Free(pi);
+    PyMem_Free(tok);
+    notes_release(&t);
+    return out;
+}
+
+PyDoc_STRVAR(pc_histogram_doc,
+"pc_histogram(notes, ticks_per_beat, bass_weight, final_weight, final_beats) -> bytes | None\n\n"
+"key.pitch_class_histogram of a NOTE_DTYPE table (12 float64, native bytes); None for notes\n"
+"out of time order.");
+
+static PyObject *pc_histogram(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 5) {
+        PyErr_SetString(PyExc_TypeError, "pc_histogram takes 5 arguments");
+        return NULL;
+    }
+    double tpb = PyFloat_AsDouble(args[1]), bw = PyFloat_AsDouble(args[2]),
+           fw = PyFloat_AsDouble(args[3]), fb = PyFloat_AsDouble(args[4]);
+    if (PyErr_Occurred()) return NULL;
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    double hist[12] = {0};
+    int ok = 1;
+    int64_t last = 0, prev_start = 0;
+    int have = 0;
+    Py_ssize_t k = 0;
+    for (Py_ssize_t i = 0; i < t.n; i++) { /* pitched notes in time order; the last end */
+        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+        int64_t s = f_i64(&t, i, O_START), e = f_i64(&t, i, O_END);
+        if (have && s < prev_start) { ok = 0; break; }
+        if (!have || e > last) last = e;
+        prev_start = s;
+        have = 1;
+        k++;
+    }
+    if (ok && k) {
+        double w_bass = 1.0 + bw;
+        double final_from = (double)last - fb * tpb;
+        int64_t onset = 0;
+        int low_pitch = 0;
+        Py_ssize_t i = 0;
+        while (i < t.n) {
+            if (f_i16(&t, i, O_CHANNEL) == DRUM) { i++; continue; }
+            onset = f_i64(&t, i, O_START);
+            /* the onset's rows: i .. j-1 (pitched ones); its lowest pitch, first on a tie */
+            Py_ssize_t j = i, low = -1;
+            low_pitch = 0;
+            for (; j < t.n; j++) {
+                if (f_i16(&t, j, O_CHANNEL) == DRUM) continue;
+                if (f_i64(&t, j, O_START) != onset) break;
+                int p = f_i16(&t, j, O_PITCH);
+                if (low < 0 || p < low_pitch) { low = j; low_pitch = p; }
+            }
+            for (Py_ssize_t r = i; r < j; r++) {
+                if (f_i16(&t, r, O_CHANNEL) == DRUM) continue;
+                int64_t s = f_i64(&t, r, O_START), e = f_i64(&t, r, O_END);
+                double dur = (double)wrap_sub(e, s) / tpb;
+                double w = (bw != 0.0) ? (r == low ? w_bass : 1.0) : 1.0;
+                if (fw != 0.0 && (double)e > final_from) w += fw;
+                int p = f_i16(&t, r, O_PITCH) % 12;
+                if (p < 0) p += 12;
+                hist[p] += dur * w;
+            }
+            i = j;
+        }
+    }
+    notes_release(&t);
+    if (!ok) Py_RETURN_NONE;
+    return PyBytes_FromStringAndSize((const char *)hist, sizeof hist);
+}
+
+PyDoc_STRVAR(meter_accents_doc,
+"meter_accents(notes, ticks_per_beat, lags, common_bar) -> (bytes, list[float], bool) | None\n\n"
+"meter's accent function (float64 bytes), its normalized autocorrelations at ``lags`` (bins)\n"
+"and the alla-breve test, for pitched onsets in time order (else None, as for no onsets).");
+
+static PyObject *meter_accents(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 4 || !PyTuple_Check(args[2])) {
+        PyErr_SetString(PyExc_TypeError, "meter_accents takes notes, tpb, a tuple of lags, common bar");
+        return NULL;
+    }
+    double tpb = PyFloat_AsDouble(args[1]);
+    int64_t cb = PyLong_AsLongLong(args[3]);
+    if (PyErr_Occurred()) return NULL;
+    Py_ssize_t n_lags = PyTuple_GET_SIZE(args[2]);
+    if (n_lags > 64 || cb <= 0) Py_RETURN_NONE;
+    int64_t lags[64];
+    for (Py_ssize_t k = 0; k < n_lags; k++) {
+        lags[k] = PyLong_AsLongLong(PyTuple_GET_ITEM(args[2], k));
+        if (lags[k] <= 0) {
+            if (PyErr_Occurred()) return NULL;
+            Py_RETURN_NONE;
+        }
+    }
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL;
+    Py_ssize_t cap = t.n ? t.n : 1;
+    int64_t *bins = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    int64_t *gaps = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    double *dur = (double *)PyMem_Malloc((size_t)cap * sizeof(double));
+    int *pi = (int *)PyMem_Malloc((size_t)cap * sizeof(int));
+    double *acc = NULL, *a = NULL;
+    if (!bins || !gaps || !dur || !pi) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    Py_ssize_t m = 0, n_gaps = 0;
+    int64_t prev = 0;
+    for (Py_ssize_t i = 0; i < t.n; i++) {
+        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+        int64_t s = f_i64(&t, i, O_START), e = f_i64(&t, i, O_END);
+        if (m && s < prev) goto none; /* not in time order: the general path */
+        if (m && s != prev) gaps[n_gaps++] = s - prev; /* onset steps for the alla-breve test */
+        prev = s;
+        double b = nearbyint((double)s / tpb * 12.0);
+        if (!(b >= 0.0 && b < 9.0e15)) goto none; /* numpy's bincount refuses negatives */
+        bins[m] = (int64_t)b;
+        double d = (double)wrap_sub(e, s) / tpb;
+        dur[m] = (d <= 2.0 || d != d) ? d : 2.0; /* np.minimum(d, ACCENT_CAP_BEATS) */
+        pi[m] = f_i16(&t, i, O_PITCH);
+        m++;
+    }
+    if (m == 0) goto none;
+    /* squeeze silences longer than two common bars (``_squeeze_sorted``) */
+    {
+        int squeeze = bins[0] > 2 * cb;
+        for (Py_ssize_t i = 1; i < m && !squeeze; i++) squeeze = bins[i] - bins[i - 1] > 2 * cb;
+        if (squeeze) {
+            int64_t total = 0, last = 0;
+            for (Py_ssize_t i = 0; i < m; i++) {
+                int64_t g = i ? bins[i] - last : bins[i];
+                last = bins[i];
+                if (g > 2 * cb) total += floordiv_pos(g - cb, cb);
+                bins[i] = bins[i] - total * cb;
+            }
+        }
+    }
+    Py_ssize_t n_acc = (Py_ssize_t)bins[m - 1] + 1;
+    acc = (double *)PyMem_Calloc((size_t)n_acc, sizeof(double));
+    a = (double *)PyMem_Malloc((size_t)n_acc * sizeof(double));
+    double *low = (double *)PyMem_Calloc((size_t)n_acc, sizeof(double));
+    if (!acc || !a || !low) {
+        PyMem_Free(low);
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (Py_ssize_t i = 0; i < m; i++) acc[bins[i]] += dur[i];
+    for (Py_ssize_t i = 0; i < m;) { /* the lowest note of each bin (the first on a tie) */
+        Py_ssize_t j = i + 1, lo = i;
+        for (; j < m && bins[j] == bins[i]; j++)
+            if (pi[j] < pi[lo]) lo = j;
+        low[bins[i]] += dur[lo];
+        i = j;
+    }
+    for (Py_ssize_t b = 0; b < n_acc; b++) acc[b] += 0.5 * low[b];
+    PyMem_Free(low);
+    /* normalized autocorrelations (``_autocorrs``) */
+    PyObject *r = PyList_New(n_lags);
+    if (!r) goto done;
+    double mean = np_sum(acc, n_acc) / (double)n_acc;
+    for (Py_ssize_t b = 0; b < n_acc; b++) a[b] = acc[b] - mean;
+    double *prod = (double *)PyMem_Malloc((size_t)n_acc * sizeof(double));
+    if (!prod) {
+        Py_DECREF(r);
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (Py_ssize_t b = 0; b < n_acc; b++) prod[b] = a[b] * a[b];
+    double denom = np_sum(prod, n_acc);
+    for (Py_ssize_t k = 0; k < n_lags; k++) {
+        double v = 0.0;
+        if (denom > 0 && lags[k] < n_acc) {
+            Py_ssize_t len = n_acc - (Py_ssize_t)lags[k];
+            for (Py_ssize_t b = 0; b < len; b++) prod[b] = a[b] * a[b + lags[k]];
+            v = np_sum(prod, len) / denom;
+        }
+        PyList_SET_ITEM(r, k, PyFloat_FromDouble(v));
+    }
+    PyMem_Free(prod);
+    /* alla breve: the median gap between distinct onsets, in beats, at least one beat */
+    int alla = 0;
+    if (n_gaps) {
+        qsort(gaps, (size_t)n_gaps, 8, cmp_i64);
+        double median;
+        if (n_gaps % 2) median = (double)gaps[n_gaps / 2] / tpb;
+        else median = ((double)gaps[n_gaps / 2 - 1] / tpb + (double)gaps[n_gaps / 2] / tpb) / 2;
+        alla = median >= 1.0;
+    }
+    PyObject *buf = PyBytes_FromStringAndSize((const char *)acc, n_acc * 8);
+    out = buf ? Py_BuildValue("(NNO)", buf, r, alla ? Py_True : Py_False) : NULL;
+    if (!buf) Py_DECREF(r);
+    goto done;
+none:
+    out = Py_None;
+    Py_INCREF(out);
+done:
+    PyMem_Free(bins);
+    PyMem_Free(gaps);
+    PyMem_Free(dur);
+    PyMem_Free(pi);
+    PyMem_Free(acc);
+    PyMem_Free(a);
+    notes_release(&t);
+    return out;
+}
+
+typedef struct {
+    int64_t key;
+    Py_ssize_t idx;
+} Ev;
+
+static inline int ev_less(const Ev *a, const Ev *b) {
+    return a->key < b->key || (a->key == b->key && a->idx < b->idx);
+}
+
+DEFINE_STABLE_SORT(sort_events, Ev, ev_less)
+
+static inline int plain_double(double x) { return x == x && !(x == 0.0 && signbit(x)); }
+
+PyDoc_STRVAR(note_stats_doc,
+"note_stats(notes) -> tuple | None\n\n"
+"stats.piece_stats of a non-empty NOTE_DTYPE table: (duration_s, drum notes, programs\n"
+"(sorted list), max_polyphony, mean_polyphony, pitches, longest_silence_s, tracks,\n"
+"longest_note_s); None for values the numpy version treats otherwise (NaN or -0.0 seconds,\n"
+"pitches or programs outside 0..127, negative tracks, ticks beyond 2**61).");
+
+static PyObject *note_stats(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 1) {
+        PyErr_SetString(PyExc_TypeError, "note_stats takes a note table");
+        return NULL;
+    }
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL;
+    Py_ssize_t n = t.n;
+    Ev *ev = (Ev *)PyMem_Malloc((size_t)(2 * n + 1) * sizeof(Ev));
+    Ev *tmp = (Ev *)PyMem_Malloc((size_t)(2 * n + 1) * sizeof(Ev));
+    double *secs = (double *)PyMem_Malloc((size_t)(2 * n + 1) * sizeof(double));
+    double *buf = (double *)PyMem_Malloc((size_t)(2 * n + 1) * sizeof(double));
+    if (!ev || !tmp || !secs || !buf) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    if (n == 0) goto none;
+    const int64_t LIM = (int64_t)1 << 61;
+    unsigned char progs[128] = {0}, pitches[128] = {0};
+    int64_t max_track = -1;
+    double duration = 0.0, longest = 0.0;
+    Py_ssize_t n_drum = 0, np_ = 0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        double ss = f_f64(&t, i, O_START_S), es = f_f64(&t, i, O_END_S);
+        if (!plain_double(ss) || !plain_double(es)) goto none;
+        if (i == 0 || es > duration) duration = es;
+        int tr = f_i16(&t, i, O_TRACK);
+        if (tr < 0) goto none;
+        if (tr > max_track) max_track = tr;
+        if (f_i16(&t, i, O_CHANNEL) == DRUM) {
+            n_drum++;
+            continue;
+        }
+        int p = f_i16(&t, i, O_PITCH), pr = f_i16(&t, i, O_PROGRAM);
+        if (p < 0 || p > 127 || pr < 0 || pr > 127) goto none;
+        pitches[p] = 1;
+        progs[pr] = 1;
+        int64_t s = f_i64(&t, i, O_START), e = f_i64(&t, i, O_END);
+        if (!(-LIM < s && s < LIM && -LIM < e && e < LIM)) goto none;
+        double len = es - ss;
+        if (np_ == 0 || len > longest) longest = len;
+        buf[np_] = len;
+        np_++;
+    }
+    int64_t max_poly = 0;
+    double mean_poly = 0.0;
+    if (np_) {
+        double note_seconds = np_sum(buf, np_);
+        /* events: ons (2 * start + 1, index k), offs (2 * end, index np_ + k); stable by key */
+        Py_ssize_t k = 0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+            ev[k].key = 2 * f_i64(&t, i, O_START) + 1;
+            ev[k].idx = k;
+            secs[k] = f_f64(&t, i, O_START_S);
+            ev[np_ + k].key = 2 * f_i64(&t, i, O_END);
+            ev[np_ + k].idx = np_ + k;
+            secs[np_ + k] = f_f64(&t, i, O_END_S);
+            k++;
+        }
+        Py_ssize_t m = 2 * np_, n_seg = 0;
+        int ons_sorted = 1;
+        for (Py_ssize_t j = 1; j < np_ && ons_sorted; j++) ons_sorted = ev[j - 1].key <= ev[j].key;
+        if (ons_sorted) { /* note-ons in order (the decoder's): sort the offs, then merge */
+            sort_events(ev + np_, tmp, np_);
+            Py_ssize_t a = 0, b = np_, k2 = 0;
+            while (a < np_ && b < m) tmp[k2++] = ev_less(&ev[b], &ev[a]) ? ev[b++] : ev[a++];
+            while (a < np_) tmp[k2++] = ev[a++];
+            while (b < m) tmp[k2++] = ev[b++];
+            memcpy(ev, tmp, (size_t)m * sizeof(Ev));
+        } else {
+            sort_events(ev, tmp, m);
+        }
+        int64_t running = 0;
+        for (Py_ssize_t j = 0; j < m; j++) {
+            running += ev[j].idx < np_ ? 1 : -1;
+            if (running > max_poly || j == 0) max_poly = running;
+            if (j + 1 < m && running > 0) buf[n_seg++] = secs[ev[j + 1].idx] - secs[ev[j].idx];
+        }
+        double sounding = np_sum(buf, n_seg);
+        mean_poly = sounding > 0 ? note_seconds / sounding : 0.0;
+    }
+    /* longest silence over the sounding notes (end > start), leading silence included */
+    double silence;
+    {
+        Py_ssize_t c = 0;
+        double covered = 0.0, inner = 0.0, first = 0.0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            if (!(f_i64(&t, i, O_END) > f_i64(&t, i, O_START))) continue;
+            double ss = f_f64(&t, i, O_START_S), es = f_f64(&t, i, O_END_S);
+            if (c == 0) {
+                first = ss;
+                covered = es;
+            } else {
+                double gap = ss - covered;
+                if (c == 1 || gap > inner) inner = gap;
+                if (es > covered) covered = es;
+            }
+            c++;
+        }
+        if (c == 0) silence = duration;
+        else {
+            if (c == 1) inner = 0.0;
+            double tail = duration - covered;
+            silence = first;
+            if (inner > silence) silence = inner;
+            if (tail > silence) silence = tail;
+            if (0.0 > silence) silence = 0.0;
+        }
+    }
+    Py_ssize_t n_tracks = 0;
+    {
+        unsigned char *seen = (unsigned char *)PyMem_Calloc((size_t)max_track + 1, 1);
+        if (!seen) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        for (Py_ssize_t i = 0; i < n; i++) {
+            int tr = f_i16(&t, i, O_TRACK);
+            if (!seen[tr]) {
+                seen[tr] = 1;
+                n_tracks++;
+            }
+        }
+        PyMem_Free(seen);
+    }
+    Py_ssize_t n_pitches = 0;
+    for (int p = 0; p < 128; p++) n_pitches += pitches[p];
+    PyObject *plist = PyList_New(0);
+    for (int p = 0; p < 128 && plist; p++) {
+        if (!progs[p]) continue;
+        PyObject *v = PyLong_FromLong(p);
+        if (!v || PyList_Append(plist, v) < 0) Py_CLEAR(plist);
+        Py_XDECREF(v);
+    }
+    if (!plist) goto done;
+    out = Py_BuildValue("(dnNLdndnd)", duration, n_drum, plist, (long long)max_poly, mean_poly,
+                        n_pitches, silence, n_tracks, np_ ? longest : 0.0);
+    goto done;
+none:
+    out = Py_None;
+    Py_INCREF(out);
+done:
+    PyMem_Free(ev);
+    PyMem_Free(tmp);
+    PyMem_Free(secs);
+    PyMem_Free(buf);
+    notes_release(&t);
+    return out;
+}
+
+
+PyDoc_STRVAR(shift_sort_doc,
+"shift_sort(notes, semitones) -> (bytearray, int) | None\n\n"
+"sort_notes(shift_notes(notes, semitones)[0]) as NOTE_DTYPE bytes, and the number of notes\n"
+"folded back into 0..127; None for tracks or channels outside 0..65535 / 0..15.");
+
+static PyObject *shift_sort(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 2) {
+        PyErr_SetString(PyExc_TypeError, "shift_sort takes a note table and a shift");
+        return NULL;
+    }
+    long long s = PyLong_AsLongLong(args[1]);
+    if (s == -1 && PyErr_Occurred()) return NULL;
+    if (s < -(1LL << 40) || s > (1LL << 40)) Py_RETURN_NONE;
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL, *buf = NULL;
+    Py_ssize_t n = t.n, folded = 0;
+    Row *rows = (Row *)PyMem_Malloc((size_t)(n ? n : 1) * sizeof(Row));
+    Row *tmp = (Row *)PyMem_Malloc((size_t)(n ? n : 1) * sizeof(Row));
+    if (!rows || !tmp) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (Py_ssize_t i = 0; i < n; i++) {
+        int ch = f_i16(&t, i, O_CHANNEL), tr = f_i16(&t, i, O_TRACK);
+        if (ch < 0 || ch > 15 || tr < 0) {
+            out = Py_None;
+            Py_INCREF(out);
+            goto done;
+        }
+        int64_t p = f_i16(&t, i, O_PITCH);
+        if (s != 0) { /* shift_notes: pitched notes moved, then any note folded by octaves */
+            if (ch != DRUM) p += s;
+            if (p > 127) {
+                p -= 12 * floordiv_pos(p - 127 + 11, 12);
+                folded++;
+            } else if (p < 0) {
+                p += 12 * floordiv_pos(-p + 11, 12);
+                folded++;
+            }
+        }
+        if (p < 0 || p > 127) { /* s == 0 and a pitch outside 0..127: beyond the packed key */
+            out = Py_None;
+            Py_INCREF(out);
+            goto done;
+        }
+        rows[i].start = f_i64(&t, i, O_START);
+        rows[i].end = f_i64(&t, i, O_END);
+        rows[i].info = p;
+        rows[i].k2 = (p << 20) | ((int64_t)tr << 4) | ch;
+        rows[i].idx = i;
+    }
+    sort_rows(rows, tmp, n);
+    buf = PyByteArray_FromStringAndSize(NULL, n * NOTE_SIZE);
+    if (!buf) goto done;
+    unsigned char *o = (unsigned char *)PyByteArray_AS_STRING(buf);
+    for (Py_ssize_t k = 0; k < n; k++) {
+        memcpy(o + k * NOTE_SIZE, t.b + rows[k].idx * NOTE_SIZE, NOTE_SIZE);
+        int16_t p = (int16_t)rows[k].info;
+        memcpy(o + k * NOTE_SIZE + O_PITCH, &p, 2);
+    }
+    out = Py_BuildValue("(Nn)", buf, folded);
+done:
+    PyMem_Free(rows);
+    PyMem_Free(tmp);
+    notes_release(&t);
+    return out;
+}
+
+
+PyDoc_STRVAR(table_group_events_doc,
+"table_group_events(notes) -> list[tuple[int, bytes]] | None\n\n"
+"group_events on the columns of a NOTE_DTYPE table (group = track * 16 + channel), for a\n"
+"table whose every note ends after it starts; None otherwise (encode then filters or\n"
+"refuses the table itself).");
+
+static PyObject *table_group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 1) {
+        PyErr_SetString(PyExc_TypeError, "table_group_events takes a note table");
+        return NULL;
+    }
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL;
+    Py_ssize_t n = t.n;
+    int64_t *c = (int64_t *)PyMem_Malloc((size_t)(6 * (n ? n : 1)) * sizeof(int64_t));
+    if (!c) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (Py_ssize_t i = 0; i < n; i++) {
+        int64_t s = f_i64(&t, i, O_START), e = f_i64(&t, i, O_END);
+        if (!(e > s)) {
+            out = Py_None;
+            Py_INCREF(out);
+            goto done;
+        }
+        c[i] = (int64_t)f_i16(&t, i, O_TRACK) * 16 + f_i16(&t, i, O_CHANNEL);
+        c[n + i] = s;
+        c[2 * n + i] = e;
+        c[3 * n + i] = f_i16(&t, i, O_PITCH);
+        c[4 * n + i] = f_i16(&t, i, O_VELOCITY);
+        c[5 * n + i] = f_i16(&t, i, O_PROGRAM);
+    }
+    out = group_events_of(n, c, c + n, c + 2 * n, c + 3 * n, c + 4 * n, c + 5 * n);
+done:
+    PyMem_Free(c);
+    notes_release(&t);
+    return out;
+}
+
+
+PyDoc_STRVAR(grid_count_doc,
+"grid_count(notes, flags: bytes) -> int | None\n\n"
+"How many notes start on a tick whose flags[start % len(flags)] is set (meter.grid_fraction);\n"
+"None when a start is negative or not below 2**53 (numpy then takes its float path).");
+
+static PyObject *grid_count(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 2 || !PyBytes_Check(args[1]) || PyBytes_GET_SIZE(args[1]) == 0) {
+        PyErr_SetString(PyExc_TypeError, "grid_count takes a note table and non-empty flag bytes");
+        return NULL;
+    }
+    const unsigned char *flags = (const unsigned char *)PyBytes_AS_STRING(args[1]);
+    int64_t len = (int64_t)PyBytes_GET_SIZE(args[1]);
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    Py_ssize_t count = 0;
+    int ok = 1;
+    for (Py_ssize_t i = 0; i < t.n; i++) {
+        int64_t st = f_i64(&t, i, O_START);
+        if (st < 0 || st >= ((int64_t)1 << 53)) {
+            ok = 0;
+            break;
+        }
+        count += flags[st % len] != 0;
+    }
+    notes_release(&t);
+    if (!ok) Py_RETURN_NONE;
+    return PyLong_FromSsize_t(count);
+}
+
+
+PyDoc_STRVAR(fold_count_doc,
+"fold_count(notes, semitones) -> int\n\n"
+"transpose.fold_count: pitched notes whose pitch plus semitones falls outside 0..127.");
+
+static PyObject *fold_count(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 2) {
+        PyErr_SetString(PyExc_TypeError, "fold_count takes a note table and a shift");
+        return NULL;
+    }
+    long long s = PyLong_AsLongLong(args[1]);
+    if (s == -1 && PyErr_Occurred()) return NULL;
+    if (s < -(1LL << 40) || s > (1LL << 40)) Py_RETURN_NONE;
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    Py_ssize_t count = 0;
+    if (s != 0)
+        for (Py_ssize_t i = 0; i < t.n; i++) {
+            if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+            long long p = f_i16(&t, i, O_PITCH) + s;
+            count += p > 127 || p < 0;
+        }
+    notes_release(&t);
+    return PyLong_FromSsize_t(count);
+}
+
+
+PyDoc_STRVAR(minhash32_doc,
+"minhash32(shingles, a, b) -> bytes\n\n"
+"similarity.minhash of a non-empty uint64 shingle array with the uint32 permutations a, b:\n"
+"for each permutation j the least (a[j] * fmix32(fold32(s)) + b[j]) mod 2**32 over the\n"
+"shingles s, as uint32 native bytes. (Offered to similarity.minhash; integer arithmetic, so\n"
+"any order of the work gives the same values.)");
+
+static PyObject *minhash32(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 3) {
+        PyErr_SetString(PyExc_TypeError, "minhash32 takes shingles, a, b");
+        return NULL;
+    }
+    Py_buffer sv, av, bv;
+    if (PyObject_GetBuffer(args[0], &sv, PyBUF_C_CONTIGUOUS) < 0) return NULL;
+    if (PyObject_GetBuffer(args[1], &av, PyBUF_C_CONTIGUOUS) < 0) {
+        PyBuffer_Release(&sv);
+        return NULL;
+    }
+    if (PyObject_GetBuffer(args[2], &bv, PyBUF_C_CONTIGUOUS) < 0) {
+        PyBuffer_Release(&sv);
+        PyBuffer_Release(&av);
+        return NULL;
+    }
+    PyObject *out = NULL;
+    Py_ssize_t n = sv.len / 8, k = av.len / 4;
+    uint32_t *h = NULL;
+    if (sv.len % 8 || av.len % 4 || bv.len != av.len) {
+        PyErr_SetString(PyExc_ValueError, "minhash32: uint64 shingles and equal uint32 a, b");
+        goto done;
+    }
+    h = (uint32_t *)PyMem_Malloc((size_t)(n ? n : 1) * sizeof(uint32_t));
+    out = PyBytes_FromStringAndSize(NULL, k * 4);
+    if (!h || !out) {
+        Py_CLEAR(out);
+        if (!h) PyErr_NoMemory();
+        goto done;
+    }
+    const uint64_t *sh = (const uint64_t *)sv.buf;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        uint32_t x = (uint32_t)(sh[i] ^ (sh[i] >> 32)); /* fold32 */
+        x ^= x >> 16;                                   /* fmix32 */
+        x *= 0x85EBCA6Bu;
+        x ^= x >> 13;
+        x *= 0xC2B2AE35u;
+        x ^= x >> 16;
+        h[i] = x;
+    }
+    const uint32_t *a = (const uint32_t *)av.buf, *b = (const uint32_t *)bv.buf;
+    uint32_t *sig = (uint32_t *)PyBytes_AS_STRING(out);
+    for (Py_ssize_t j = 0; j < k; j++) {
+        uint32_t m = 0xFFFFFFFFu, aj = a[j], bj = b[j];
+        for (Py_ssize_t i = 0; i < n; i++) {
+            uint32_t v = h[i] * aj + bj;
+            m = v < m ? v : m;
+        }
+        sig[j] = m;
+    }
+done:
+    PyMem_Free(h);
+    PyBuffer_Release(&sv);
+    PyBuffer_Release(&av);
+    PyBuffer_Release(&bv);
     return out;
 }
 
@@ -789,6 +1777,19 @@ static PyMethodDef methods[] = {
     {"read_track", (PyCFunction)(void (*)(void))read_track, METH_FASTCALL, read_track_doc},
     {"note_table", (PyCFunction)(void (*)(void))note_table, METH_FASTCALL, note_table_doc},
     {"group_events", (PyCFunction)(void (*)(void))group_events, METH_FASTCALL, group_events_doc},
+    {"add_reduce", (PyCFunction)(void (*)(void))py_sum, METH_FASTCALL,
+     "add_reduce(float64 buffer) -> float: np.add.reduce's pairwise sum (for the tests)."},
+    {"content_rows", (PyCFunction)(void (*)(void))content_rows, METH_FASTCALL, content_rows_doc},
+    {"shingles", (PyCFunction)(void (*)(void))shingles, METH_FASTCALL, shingles_doc},
+    {"pc_histogram", (PyCFunction)(void (*)(void))pc_histogram, METH_FASTCALL, pc_histogram_doc},
+    {"meter_accents", (PyCFunction)(void (*)(void))meter_accents, METH_FASTCALL, meter_accents_doc},
+    {"note_stats", (PyCFunction)(void (*)(void))note_stats, METH_FASTCALL, note_stats_doc},
+    {"shift_sort", (PyCFunction)(void (*)(void))shift_sort, METH_FASTCALL, shift_sort_doc},
+    {"grid_count", (PyCFunction)(void (*)(void))grid_count, METH_FASTCALL, grid_count_doc},
+    {"fold_count", (PyCFunction)(void (*)(void))fold_count, METH_FASTCALL, fold_count_doc},
+    {"minhash32", (PyCFunction)(void (*)(void))minhash32, METH_FASTCALL, minhash32_doc},
+    {"table_group_events", (PyCFunction)(void (*)(void))table_group_events, METH_FASTCALL,
+     table_group_events_doc},
     {NULL, NULL, 0, NULL},
 };
 

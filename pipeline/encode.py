@@ -16,7 +16,9 @@ be told apart in MIDI; they read back under the decoder's stacking policy (see p
 
 The group tracks' event bytes come from the compiled ``_smf_accel.group_events`` when it is
 built and ``pipeline.smf.USE_ACCEL`` is on (``MIDISIFT_PURE_PYTHON=1`` turns both off), else
-from the numpy ``_all_group_events``; the bytes are identical (tests/test_smf_accel.py).
+from the numpy ``_all_group_events``; the bytes are identical (tests/test_smf_accel.py). A
+contiguous note table whose notes all end after they start goes to the compiled code whole
+(``table_group_events``: the same columns taken in C).
 """
 from __future__ import annotations
 
@@ -24,15 +26,20 @@ from __future__ import annotations
 import numpy as np
 
 from . import smf
-from .score import DEFAULT_TEMPO, Piece
+from .score import DEFAULT_TEMPO, Piece, compiled_analyses
 
 __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 
 SMPTE_TICKS_PER_BEAT = 480
 
 
+_ONE_BYTE = tuple(bytes((i,)) for i in range(0x80))
+
+
 def vlq(value: int) -> bytes:
     """A variable-length quantity (SMF 1.0: 7 bits per byte, high bit = more follow)."""
+    if 0 <= value < 0x80:  # one byte: the usual delta and meta length
+        return _ONE_BYTE[value]
     if value < 0 or value > 0x0FFFFFFF:
         raise ValueError(f"a delta time must be 0..0x0FFFFFFF, got {value}")
     out = [value & 0x7F]
@@ -73,6 +80,15 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
     elif accelerated and not smf.HAVE_ACCEL:
         raise ValueError("accelerated=True, but pipeline._smf_accel is not built; pass False")
     notes = piece.notes if notes is None else notes
+    bodies = None  # the group tracks' event bytes, straight from the table when compiled
+    deferred = None  # their error, raised where the group tracks are made (after the conductor)
+    if accelerated and not piece.smpte and len(notes):
+        accel = compiled_analyses(notes)
+        if accel is not None:  # None back: a note that does not end after it starts
+            try:
+                bodies = accel.table_group_events(notes)
+            except ValueError as exc:
+                deferred = exc
     if piece.smpte:
         tpb = SMPTE_TICKS_PER_BEAT
         per_s = 2.0 * tpb  # ticks per second at 120 BPM
@@ -83,15 +99,16 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
         tempos = [(0, DEFAULT_TEMPO)]
     else:
         tpb = piece.ticks_per_beat
-        starts = notes["start"].astype(np.int64)
-        ends = notes["end"].astype(np.int64)
         rebase = lambda t: np.asarray(t, dtype=np.int64)  # noqa: E731
-        if (ends < starts).any():
-            raise ValueError("a note ends before it starts; the note table is corrupt")
-        audible = ends > starts
-        if not audible.all():
-            notes, starts, ends = notes[audible], starts[audible], ends[audible]
-        tempos = [(int(t), int(u)) for t, u in zip(piece.tempos["tick"], piece.tempos["us_per_beat"])]
+        if bodies is None:
+            starts = notes["start"].astype(np.int64)
+            ends = notes["end"].astype(np.int64)
+            if (ends < starts).any():
+                raise ValueError("a note ends before it starts; the note table is corrupt")
+            audible = ends > starts
+            if not audible.all():
+                notes, starts, ends = notes[audible], starts[audible], ends[audible]
+        tempos = list(zip(piece.tempos["tick"].tolist(), piece.tempos["us_per_beat"].tolist()))
 
     cond: list[tuple[int, int, bytes]] = []  # (tick, order, bytes)
     if piece.title:
@@ -108,14 +125,18 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
     cond.sort(key=lambda e: (e[0], e[1]))
     tracks = [_track([(t, m) for t, _, m in cond])]
 
-    if len(notes):
-        tr = notes["track"].astype(np.int64)
-        group = tr * 16 + notes["channel"].astype(np.int64)
+    if bodies is not None or len(notes):
         names = piece.track_names
-        group_events = smf._smf_accel.group_events if accelerated else _all_group_events
-        bodies = group_events(group, np.ascontiguousarray(starts), np.ascontiguousarray(ends),
-                              notes["pitch"].astype(np.int64), notes["velocity"].astype(np.int64),
-                              notes["program"].astype(np.int64))
+        if deferred is not None:
+            raise deferred
+        if bodies is None:
+            tr = notes["track"].astype(np.int64)
+            group = tr * 16 + notes["channel"].astype(np.int64)
+            group_events = smf._smf_accel.group_events if accelerated else _all_group_events
+            bodies = group_events(group, np.ascontiguousarray(starts), np.ascontiguousarray(ends),
+                                  notes["pitch"].astype(np.int64),
+                                  notes["velocity"].astype(np.int64),
+                                  notes["program"].astype(np.int64))
         for g, body in bodies:
             src = g // 16
             head = b""

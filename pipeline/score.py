@@ -11,6 +11,7 @@ beats are nominal.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -94,3 +95,29 @@ def sort_notes(notes: np.ndarray) -> np.ndarray:
     """Notes in the canonical order: start, pitch, track, channel, end."""
     order = np.lexsort((notes["end"], notes["channel"], notes["track"], notes["pitch"], notes["start"]))
     return notes[order]
+
+
+_SMF: Any = None  # pipeline.smf, imported on first use (it imports this module)
+
+
+def compiled_analyses(notes: np.ndarray) -> Any:
+    """The compiled module whose per-file analyses may run on ``notes`` (a C-contiguous
+    NOTE_DTYPE table, the compiled path on: ``pipeline.smf.USE_ACCEL``), else None. The numpy
+    formulations stay the specification; the compiled ones return None where those take a
+    general path, and the caller then runs them."""
+    global _SMF
+    if _SMF is None:
+        from . import smf
+        _SMF = smf
+    if not _SMF.USE_ACCEL or notes.dtype != NOTE_DTYPE or not notes.flags.c_contiguous:
+        return None
+    mod = _SMF._smf_accel
+    if _CHECKED[0] is not mod:  # a build from before the analyses were compiled has none
+        _CHECKED[:] = [mod, all(hasattr(mod, f) for f in _ANALYSES)]
+    return mod if _CHECKED[1] else None
+
+
+#: The compiled analyses the modules above call (pipeline/_smf_accel.c).
+_ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "shingles",
+             "content_rows", "shift_sort", "fold_count", "table_group_events")
+_CHECKED: list = [None, False]  # (the module last checked, whether it has them all)

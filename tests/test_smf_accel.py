@@ -491,3 +491,175 @@ def test_encoder_delta_length_boundaries():
     piece = smf.decode(random_midi(1, n_notes=10), accelerated=False)
     out = assert_same_encoding(piece, notes, "vlq edges")
     assert smf.decode(out).notes["start"].tolist() == edges
+
+
+# --- the per-file analyses ----------------------------------------------------------------------
+# The compiled analyses (pc_histogram, meter_accents, note_stats, shingles, content_rows,
+# shift_sort, table_group_events) against the numpy formulations they stand in for, which stay
+# the specification: every value equal to the last bit, on decoded pieces and on the variants
+# of tests/test_speed_equivalence.py that take each general path, plus tables the compiled
+# code must hand back (None) because numpy treats them otherwise.
+
+def _analysis_pieces() -> list[Piece]:
+    from test_speed_equivalence import _variants
+    decoded = [smf.decode(random_midi(seed, n_notes=n, n_tracks=tracks))
+               for seed, n, tracks in ((1, 60, 1), (2, 500, 3), (3, 500, 4), (4, 1500, 5),
+                                       (5, 200, 2), (6, 40, 3), (7, 3000, 8))]
+    decoded.append(smf.decode(one_track("00 90 3c 64  83 60 80 3c 40  00 ff 2f 00",
+                                        header="4d 54 68 64 00 00 00 06  00 00 00 01 e7 28")))
+    out = [v for p in decoded for v in _variants(p)]
+    rep = dataclasses.replace
+    p = decoded[1]
+    for field, value in (("start_s", np.nan), ("start_s", -0.0), ("end_s", -0.0),
+                         ("pitch", 200), ("pitch", -3), ("program", 130), ("track", -1),
+                         ("channel", 20), ("start", -480), ("start", 2 ** 62)):
+        m = p.notes.copy()  # one value the compiled code must refuse or treat like numpy
+        m[field][3] = value
+        if field == "start":
+            m["end"][3] = max(int(m["end"][3]), value + 1)
+        out.append(rep(p, notes=m))
+    m = p.notes.copy()
+    m["pitch"][m["channel"] != 9] = 127  # one pitch everywhere: ties on every key
+    out.append(rep(p, notes=m))
+    out.append(rep(p, notes=p.notes[::2]))  # not contiguous: the numpy path only
+    return out
+
+
+@pytest.fixture(scope="module")
+def analysis_pieces() -> list[Piece]:
+    return _analysis_pieces()
+
+
+def _both_paths(monkeypatch, pieces, fn) -> None:
+    """``fn(piece)`` with the compiled analyses and without: identical values or errors."""
+    from test_speed_equivalence import identical
+    for i, p in enumerate(pieces):
+        monkeypatch.setattr(smf, "USE_ACCEL", False)
+        try:
+            want = fn(p)
+        except (ValueError, IndexError) as exc:
+            monkeypatch.setattr(smf, "USE_ACCEL", True)
+            with pytest.raises(type(exc)):
+                fn(p)
+            continue
+        monkeypatch.setattr(smf, "USE_ACCEL", True)
+        got = fn(p)
+        if isinstance(want, np.generic):  # a numpy scalar: its type and its bytes
+            assert type(got) is type(want) and got.tobytes() == want.tobytes(), f"piece {i}"
+            continue
+        assert identical(got, want), f"piece {i}: {got!r:.200} != {want!r:.200}"
+
+
+def test_pairwise_sum_is_numpys():
+    # numpy's float64 add.reduce: pairwise summation in blocks of 8 up to 128 values
+    # (numpy/_core/src/umath/loops_utils.h.src); every size up to 300 and around the block edges
+    rng = np.random.default_rng(8)
+    for n in list(range(300)) + [1000, 1023, 1024, 1025, 8191, 8192, 8193, 20000, 100001]:
+        a = rng.standard_normal(n) * 10.0 ** rng.integers(-6, 6, n)
+        assert (np.float64(smf._smf_accel.add_reduce(a)).tobytes()
+                == np.float64(np.add.reduce(a)).tobytes()), n
+    assert np.float64(smf._smf_accel.add_reduce(np.array([-0.0]))).tobytes() == \
+        np.float64(np.add.reduce(np.array([-0.0]))).tobytes()
+
+
+@pytest.mark.parametrize("weights", [(0.0, 0.0, 4.0), (1.0, 2.0, 4.0), (0.37, 0.0, 3.0),
+                                     (0.0, 3.5, 1.0)])
+def test_compiled_key_histogram(monkeypatch, analysis_pieces, weights):
+    from pipeline.analysis import key as keymod
+    _both_paths(monkeypatch, analysis_pieces,
+                lambda p: keymod.pitch_class_histogram(p, *weights))
+    _both_paths(monkeypatch, analysis_pieces[:40], keymod.estimate_key)
+
+
+def test_compiled_meter(monkeypatch, analysis_pieces):
+    from pipeline.analysis import meter as metermod
+    _both_paths(monkeypatch, analysis_pieces, metermod.accent_function)
+    _both_paths(monkeypatch, analysis_pieces, metermod.estimate_meter)
+    _both_paths(monkeypatch, analysis_pieces, metermod.grid_fraction)
+    _both_paths(monkeypatch, analysis_pieces, lambda p: metermod.grid_fraction(p, (4, 3, 5), 1 / 96))
+
+
+def test_compiled_stats(monkeypatch, analysis_pieces):
+    from pipeline.analysis import stats as statsmod
+    _both_paths(monkeypatch, analysis_pieces, statsmod.piece_stats)
+
+
+def test_compiled_shingles_and_content_hash(monkeypatch, analysis_pieces):
+    from pipeline.analysis import shingles as shmod
+    for spec in (shmod.ShingleSpec(), shmod.ShingleSpec(ngram=3, grid=8),
+                 shmod.ShingleSpec(ngram=1, grid=2, max_shingles=50),
+                 shmod.ShingleSpec(ngram=9, grid=3, max_interval=5, max_ioi_beats=0.5)):
+        _both_paths(monkeypatch, analysis_pieces, lambda p: shmod.shingle_hashes(p, spec))
+    _both_paths(monkeypatch, analysis_pieces, shmod.content_hash)
+
+
+def test_compiled_output_notes(monkeypatch, analysis_pieces):
+    from pipeline.analysis.transpose import fold_count
+    from pipeline.stages.transpose import Transpose
+    for shift in (-70, -11, -6, -1, 0, 1, 5, 11, 40):
+        _both_paths(monkeypatch, analysis_pieces, lambda p: fold_count(p.notes, shift))
+    for values in ({"transpose": 0}, {"transpose": 3, "augment": [-11, -4, 1, 8]},
+                   {"transpose": -6, "augment": [40, -70]}):
+        _both_paths(monkeypatch, analysis_pieces, lambda p: Transpose.output_notes(p, values))
+
+
+def test_compiled_encoder_from_the_table(monkeypatch, analysis_pieces):
+    # encode's table path (table_group_events) against its numpy path, and against the
+    # compiled column path (group_events) on the same columns
+    def both(p):
+        try:
+            return encode(p)
+        except ValueError as exc:
+            return str(exc)
+    _both_paths(monkeypatch, analysis_pieces, both)
+    def outcome(fn, *args):
+        try:
+            return fn(*args)
+        except ValueError as exc:
+            return str(exc)
+    for p in analysis_pieces:
+        n = p.notes
+        got = outcome(smf._smf_accel.table_group_events, np.ascontiguousarray(n))
+        if got is None:
+            assert not (n["end"] > n["start"]).all()
+            continue
+        cols = [n["track"].astype(np.int64) * 16 + n["channel"]] + \
+            [np.ascontiguousarray(n[f].astype(np.int64))
+             for f in ("start", "end", "pitch", "velocity", "program")]
+        assert got == outcome(smf._smf_accel.group_events, *cols)
+
+
+def test_compiled_analyses_hand_back_what_numpy_treats_otherwise():
+    from pipeline.score import compiled_analyses
+    p = smf.decode(random_midi(2, n_notes=200, n_tracks=3))
+    accel = smf._smf_accel
+    assert (compiled_analyses(p.notes) is accel) == smf.USE_ACCEL
+    shuffled = p.notes[np.random.default_rng(1).permutation(len(p.notes))]
+    if (np.diff(shuffled["start"][shuffled["channel"] != 9]) < 0).any():
+        assert accel.meter_accents(shuffled, 480.0, (6, 12), 144) is None
+        assert accel.pc_histogram(shuffled, 480.0, 1.0, 2.0, 4.0) is None
+    bad = p.notes.copy()
+    bad["start_s"][0] = np.nan
+    assert accel.note_stats(bad) is None
+    zero = p.notes.copy()
+    zero["end"][0] = zero["start"][0]
+    assert accel.table_group_events(zero) is None
+    assert compiled_analyses(p.notes[::2]) is None
+
+
+def test_compiled_minhash_equals_similarity_minhash():
+    # minhash32 (offered to similarity.minhash) against it, both table layouts, and datasketch
+    from datasketch import MinHash
+    from pipeline.similarity import fold32, minhash, permutations
+    rng = np.random.default_rng(4)
+    for size in (1, 2, 100, 255, 256, 257, 4096):
+        sh = np.unique(rng.integers(0, 2 ** 64, size, dtype=np.uint64))
+        for num_perm, seed in ((128, 1), (64, 9), (8, 3)):
+            a, b = permutations(num_perm, seed)
+            got = np.frombuffer(smf._smf_accel.minhash32(sh, a, b), dtype=np.uint32)
+            assert got.tobytes() == minhash(sh, num_perm, seed).tobytes(), (size, num_perm)
+    ref = MinHash(num_perm=128, seed=1, hashfunc=int)  # datasketch affine32, identity hash
+    ref.update_batch([int(v) for v in fold32(sh)])
+    a, b = permutations(128, 1)
+    assert np.array_equal(np.frombuffer(smf._smf_accel.minhash32(sh, a, b), dtype=np.uint32),
+                          ref.digest())

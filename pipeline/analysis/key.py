@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece
+from ..score import DRUM_CHANNEL, Piece, compiled_analyses
 
 # ---------------------------------------------------------------------------------------------
 # Profile tables: name -> (major[12], minor[12]), index 0 = tonic, ascending semitones.
@@ -175,6 +175,12 @@ def pitch_class_histogram(piece: Piece, bass_weight: float = 0.0, final_weight: 
     ``final_weight`` adds that multiple for notes sounding in the last ``final_beats`` beats.
     """
     notes = piece.notes
+    accel = compiled_analyses(notes)
+    if accel is not None:  # the same sums in the same order (tests/test_smf_accel.py)
+        got = accel.pc_histogram(notes, float(piece.ticks_per_beat), float(bass_weight),
+                                 float(final_weight), float(final_beats))
+        if got is not None:
+            return np.frombuffer(got, dtype=np.float64).copy()
     drum = notes["channel"] == DRUM_CHANNEL
     if drum.any():  # columns of the pitched notes (no copy of whole structured rows)
         keep = ~drum
@@ -228,8 +234,14 @@ def estimate_key_from_histogram(hist: np.ndarray, profile: str = DEFAULT_PROFILE
     scores = (_MATRICES[profile] @ (h / norm) if norm > 0 else np.zeros(24)).tolist()
     # the first maximum, then the first maximum of the rest: a stable argsort of -scores,
     # so ties resolve to the lower index (major before minor, C first)
-    best = max(range(24), key=scores.__getitem__)
-    second = max((i for i in range(24) if i != best), key=scores.__getitem__)
+    best = 0  # max(range(24), key=scores.__getitem__): replaced only by a greater score
+    for i in range(1, 24):
+        if scores[i] > scores[best]:
+            best = i
+    second = 1 if best == 0 else 0
+    for i in range(second + 1, 24):
+        if i != best and scores[i] > scores[second]:
+            second = i
     mode = MODES[best // 12]
     pc = best % 12
     names = MAJOR_TONIC_NAMES if mode == "major" else MINOR_TONIC_NAMES

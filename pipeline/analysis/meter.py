@@ -30,7 +30,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece
+from ..score import DRUM_CHANNEL, Piece, compiled_analyses
 
 #: Grid resolution of the onset function, in bins per quarter note.
 BINS_PER_BEAT = 12
@@ -152,8 +152,26 @@ def _pitched_columns(notes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndar
 
 def accent_function(piece: Piece) -> np.ndarray:
     """Accent strength per grid bin (1/12 quarter) of the pitched notes' onsets."""
+    fast = _compiled_accents(piece)
+    if fast is not None:
+        return fast[0]
     start, end, pitch = _pitched_columns(piece.notes)
     return _accent(start, end, pitch, float(piece.ticks_per_beat), _start_steps(start))
+
+
+def _compiled_accents(piece: Piece) -> tuple[np.ndarray, list[float], bool] | None:
+    """(accent function, ``_autocorrs`` at ``_LAG_BINS``, ``_alla_breve``) from the compiled
+    module, for pitched onsets in time order; None where the numpy code must run (no compiled
+    module, no pitched onsets, onsets out of order). The same values, bit for bit
+    (tests/test_smf_accel.py)."""
+    accel = compiled_analyses(piece.notes)
+    if accel is None:
+        return None
+    got = accel.meter_accents(piece.notes, float(piece.ticks_per_beat), _LAG_BINS, COMMON_BAR_BINS)
+    if got is None:
+        return None
+    acc, r, alla_breve = got
+    return np.frombuffer(acc, dtype=np.float64).copy(), r, alla_breve
 
 
 def _start_steps(start: np.ndarray) -> np.ndarray | None:
@@ -302,24 +320,49 @@ def _mean(values: list[float]) -> float:
 
 def estimate_meter(piece: Piece) -> MeterEstimate:
     """Estimate the meter from note onsets (see the module docstring for the method)."""
-    start, end, pitch = _pitched_columns(piece.notes)
-    tpb = float(piece.ticks_per_beat)
-    steps = _start_steps(start)
-    acc = _accent(start, end, pitch, tpb, steps)
-    if len(acc) == 0 or not acc.any():
-        return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-    r = _autocorrs(acc, _LAG_BINS)
+    fast = _compiled_accents(piece)
+    if fast is not None:
+        acc, r, alla_breve = fast
+        if not acc.any():
+            return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
+    else:
+        start, end, pitch = _pitched_columns(piece.notes)
+        tpb = float(piece.ticks_per_beat)
+        steps = _start_steps(start)
+        acc = _accent(start, end, pitch, tpb, steps)
+        if len(acc) == 0 or not acc.any():
+            return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
+        r = _autocorrs(acc, _LAG_BINS)
+        alla_breve = _alla_breve(start, steps, tpb)
     scores: dict[str, tuple[float, int]] = {}
     for name, strong, weak, prior in _SCORE_PLAN:
-        score = _mean([r[i] for i in strong])
+        # _mean of the strong and of the weak lags, its loop written out (fewer than 8 each)
+        if len(strong) < _SEQUENTIAL_SUM_BELOW:
+            total = 0.0
+            for i in strong:
+                total += r[i]
+            score = total / len(strong)
+        else:
+            score = _mean([r[i] for i in strong])
         if weak:
-            score -= WEAK_WEIGHT * _mean([r[i] for i in weak])
+            if len(weak) < _SEQUENTIAL_SUM_BELOW:
+                total = 0.0
+                for i in weak:
+                    total += r[i]
+                score -= WEAK_WEIGHT * (total / len(weak))
+            else:
+                score -= WEAK_WEIGHT * _mean([r[i] for i in weak])
         scores[name] = (score + prior, 0)
-    _resolve_alla_breve(_alla_breve(start, steps, tpb), scores)
+    _resolve_alla_breve(alla_breve, scores)
     # best and runner-up of a stable sort by descending score: the first maximum, then the
-    # first maximum of the others (ties keep the order of METERS)
-    best = max(scores, key=lambda k: scores[k][0])
-    second = max((k for k in scores if k != best), key=lambda k: scores[k][0])
+    # first maximum of the others (ties keep the order of METERS), as max() picks them
+    best = second = None
+    for k, (v, _) in scores.items():
+        if best is None or v > scores[best][0]:
+            best = k
+    for k, (v, _) in scores.items():
+        if k != best and (second is None or v > scores[second][0]):
+            second = k
     _, phase = _fold_match(acc, _METER_BY_NAME[best])
     return MeterEstimate(best, scores[best][0], scores[best][0] - scores[second][0], second,
                          phase / BINS_PER_BEAT)
@@ -407,8 +450,19 @@ def grid_fraction(piece: Piece, divisions: tuple[int, ...] = GRID_DIVISIONS,
     An empty piece gives 1.0."""
     if len(piece.notes) == 0:
         return 1.0
+    key = (int(piece.ticks_per_beat), tuple(divisions), float(tolerance_beats))
+    table = _grid_table(*key)
+    accel = compiled_analyses(piece.notes) if table is not None else None
+    if accel is not None:  # the same count (tests/test_smf_accel.py)
+        flags = _GRID_BYTES.get(key)
+        if flags is None:
+            flags = table.tobytes()
+            if len(_GRID_BYTES) < 256:
+                _GRID_BYTES[key] = flags
+        got = accel.grid_count(piece.notes, flags)
+        if got is not None:  # a numpy float, as count_nonzero(...) / len gives
+            return np.float64(got / len(piece.notes))
     start = piece.notes["start"]
-    table = _grid_table(int(piece.ticks_per_beat), tuple(divisions), float(tolerance_beats))
     if table is not None and 0 <= start.min() and start.max() < 2 ** 53:
         return np.count_nonzero(table[start % len(table)]) / len(start)
     return _grid_fraction_float(start.astype(np.float64), float(piece.ticks_per_beat),
@@ -417,6 +471,8 @@ def grid_fraction(piece: Piece, divisions: tuple[int, ...] = GRID_DIVISIONS,
 
 #: On-grid flag per tick position within a beat, by (ticks per beat, divisions, tolerance).
 _GRID_TABLES: dict[tuple[int, tuple[int, ...], float], np.ndarray] = {}
+#: The same flags as bytes, for the compiled count.
+_GRID_BYTES: dict[tuple[int, tuple[int, ...], float], bytes] = {}
 
 
 def _grid_table(tpb: int, divisions: tuple[int, ...], tolerance_beats: float) -> np.ndarray | None:

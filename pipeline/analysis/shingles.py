@@ -23,11 +23,12 @@ metadata, velocities, programs, tempo events, resolution or format hash equal.
 from __future__ import annotations
 
 import hashlib
+import sys
 from dataclasses import dataclass
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece
+from ..score import DRUM_CHANNEL, Piece, compiled_analyses
 
 _M64 = np.uint64(0xFFFFFFFFFFFFFFFF)
 _MIX1 = np.uint64(0xFF51AFD7ED558CCD)
@@ -107,6 +108,14 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     A piece with fewer tokens than ``ngram`` gets one shingle of all its tokens (if any), so
     short pieces still compare; a piece with none (drums only, one onset) gets an empty set.
     """
+    accel = compiled_analyses(piece.notes)
+    if accel is not None:
+        args = (int(piece.ticks_per_beat), spec.grid, int(spec.max_ioi_beats * spec.grid),
+                spec.max_interval, spec.ngram, spec.max_shingles)
+        if all(type(a) is int for a in args):
+            got = accel.shingles(piece.notes, *args)
+            if got is not None:  # the same hashes (tests/test_smf_accel.py)
+                return np.frombuffer(got, dtype=np.uint64).copy()
     tokens = melody_tokens(piece, spec).view(np.uint64)  # int64 -> uint64: the same bits
     n = min(spec.ngram, len(tokens))
     if n == 0:
@@ -138,6 +147,11 @@ def content_hash(piece: Piece) -> str:
     """
     n = piece.notes
     tpb = int(piece.ticks_per_beat)
+    accel = compiled_analyses(n) if sys.byteorder == "little" else None
+    if accel is not None:
+        got = accel.content_rows(n, tpb, CONTENT_STEPS_PER_BEAT)
+        if got is not None:  # the same sorted row hashes, as little-endian bytes
+            return hashlib.sha256(got).hexdigest()[:32]
     # start and end rounded in one pass: positions in 1/960 beat, rounded half up in integers
     se = (np.concatenate((n["start"], n["end"])) * (2 * CONTENT_STEPS_PER_BEAT) + tpb) // (2 * tpb)
     se = se.view(np.uint64)  # int64 -> uint64 keeps the bits, as astype does, without a copy
