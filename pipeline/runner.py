@@ -35,7 +35,8 @@ from .records import Compactor, Result, TrailValues
 from .report import RunReport
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
-from .stages import CorpusState, FileContext, Member, Stage, StageResult
+from .stages import CorpusState, FileContext, Member, Stage, StageResult, stage_class
+from .stages.base import options_fingerprint
 
 BATCH = 2048  # results + artifacts per ledger transaction (also flushed every 2 s): about 300
 #               files; each commit costs a WAL write of its pages, about 1.5 ms
@@ -126,8 +127,6 @@ _STAGE_CACHE: dict[tuple[str, str], Stage] = {}
 
 def _stage(plan: StagePlan) -> Stage:
     """Build (once per worker process) the stage object for a plan entry."""
-    from .stages import stage_class
-    from .stages.base import options_fingerprint
     key = (plan.name, plan.fingerprint or options_fingerprint(plan.name, 0, plan.options))
     st = _STAGE_CACHE.get(key)
     if st is None:

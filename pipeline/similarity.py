@@ -64,15 +64,22 @@ def _fmix32(h: np.ndarray) -> np.ndarray:
     return out
 
 
-def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1) -> np.ndarray:
+def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1, *,
+            compiled: bool = True) -> np.ndarray:
     """MinHash signature (uint32, ``num_perm``) of a set of 64-bit shingle hashes.
 
     Equals ``datasketch.MinHash(num_perm, seed, hashfunc=int).update_batch(fold32(shingles))``;
     an empty set gives all ``2**32 - 1`` (datasketch's empty value), which ``is_empty`` detects.
+    With the compiled path on, the same integer arithmetic runs in C; ``compiled=False`` runs
+    the numpy formulation below, the specification (tests/test_smf_accel.py holds them equal).
     """
     a, b = permutations(num_perm, seed)
     if len(shingles) == 0:
         return np.full(num_perm, _U32_MAX, dtype=np.uint32)
+    compiled = _compiled_minhash() if compiled else None
+    if compiled is not None:
+        return np.frombuffer(compiled(np.ascontiguousarray(shingles, dtype=np.uint64), a, b),
+                             dtype=np.uint32).copy()
     h = _fmix32(fold32(shingles))
     with np.errstate(over="ignore"):
         # the (shingle x permutation) table is filled in place (one buffer, no temporaries);
@@ -84,6 +91,18 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1) -> np.ndar
         table = np.multiply.outer(a, h)
         table += b[:, None]
         return table.min(axis=1)
+
+
+_MINHASH32: list = []
+
+
+def _compiled_minhash() -> Any:
+    """``_smf_accel.minhash32`` when the compiled path is on (``pipeline.smf.USE_ACCEL``) and
+    the build has it, else None (the numpy formulation below is the specification)."""
+    if not _MINHASH32:
+        from . import smf
+        _MINHASH32.append(getattr(smf._smf_accel, "minhash32", None) if smf.USE_ACCEL else None)
+    return _MINHASH32[0]
 
 
 #: Shingle count from which ``minhash`` lays its table out one row per permutation.

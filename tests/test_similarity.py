@@ -29,9 +29,11 @@ def test_numpy_minhash_equals_datasketch_digest(num_perm, seed):
     sh = np.unique(rng.integers(0, 2**63, 300, dtype=np.uint64))
     ref = MinHash(num_perm=num_perm, seed=seed, hashfunc=int)
     ref.update_batch([int(x) for x in fold32(sh)])
-    assert np.array_equal(minhash(sh, num_perm, seed), ref.digest())
     empty = MinHash(num_perm=num_perm, seed=seed, hashfunc=int)
-    assert np.array_equal(minhash(np.zeros(0, np.uint64), num_perm, seed), empty.digest())
+    for compiled in (False, True):  # the numpy formulation, and the C path where it is built
+        assert np.array_equal(minhash(sh, num_perm, seed, compiled=compiled), ref.digest())
+        assert np.array_equal(minhash(np.zeros(0, np.uint64), num_perm, seed, compiled=compiled),
+                              empty.digest())
 
 
 def test_estimate_error_follows_broder_standard_deviation():
