@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import select
 import selectors
 import signal
 import sys
@@ -254,6 +255,17 @@ class _Worker:
         child.close()
         self.queue: deque[tuple[int, Any]] = deque()  # (seq, task) sent, not yet answered
         self.started = time.monotonic()  # when the head of the queue began
+        # speed: Connection.poll() builds a selector on every call; one poller, made once
+        # (where the platform has poll(2); elsewhere Connection.poll is used)
+        self._poller = select.poll() if hasattr(select, "poll") else None
+        if self._poller is not None:
+            self._poller.register(self.conn.fileno(), select.POLLIN)
+
+    def has_reply(self) -> bool:
+        """Whether the worker's pipe has something to read (or is closed), without waiting."""
+        if self._poller is None:
+            return self.conn.poll()
+        return bool(self._poller.poll(0))
 
     def send(self, seq: int, task: Any) -> None:
         if not self.queue:
@@ -347,7 +359,7 @@ class _Pool:
                     yield item
             now = time.monotonic()
             for w in list(self.workers):
-                if w.queue and now - w.started > lim.timeout_s and not w.conn.poll():
+                if w.queue and now - w.started > lim.timeout_s and not w.has_reply():
                     # (a reply that arrived while the caller was busy is read first, not a timeout)
                     (seq, task), *rest = self._retire(w, kill=True)
                     todo.extendleft(reversed(rest))
@@ -360,7 +372,7 @@ class _Pool:
         """Read every reply a worker has sent; handle its death. Yields (task, value)."""
         while w.queue:
             try:
-                if not w.conn.poll():
+                if not w.has_reply():
                     if w.proc.is_alive():
                         return
                     raise EOFError
