@@ -69,8 +69,8 @@ class Result:
 
     @property
     def values(self) -> dict[str, Any]:
-        if self.names is None:
-            self.expand()
+        if self.names is None:  # parsed for the reader, the record stays text (memory, speed)
+            return json.loads(self.vals)
         return dict(zip(self.names, self.vals))
 
     def value(self, name: str, default: Any = None) -> Any:
