@@ -84,13 +84,8 @@ def output_fingerprint(stages: list) -> str:
 
 def staged_path(staging: str, sha: str, output_fp: str, suffix: str) -> str:
     """Where a worker stages one normalized output of a content (the name ties it to the
-    content and the output fingerprint; ``suffix`` is "" or an augmentation copy's, e.g. ".t+3").
-
-    Staged files are spread over 256 subfolders by the first two hex digits of the id: creating
-    a file in a folder of 10,000 entries cost about 5 times as much as in one of 40 on this
-    machine's ext4 (105 against 22 us; the final ``midi/<part>/`` folders are filled by renames,
-    which cost little)."""
-    return os.path.join(staging, sha[:2], f"{sha[:16]}_{output_fp[:8]}{suffix}.mid")
+    content and the output fingerprint; ``suffix`` is "" or an augmentation copy's, e.g. ".t+3")."""
+    return os.path.join(staging, f"{sha[:16]}_{output_fp[:8]}{suffix}.mid")
 
 
 def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging: str, sha: str,
@@ -119,7 +114,7 @@ def _write_staged(path: Path, data: bytes) -> None:
     try:
         try:
             fh = open(path, "wb")
-        except FileNotFoundError:  # the first file of a subfolder makes it (and the staging folder)
+        except FileNotFoundError:  # the first file of a run makes the staging folder
             path.parent.mkdir(parents=True, exist_ok=True)
             fh = open(path, "wb")
         with fh:
