@@ -58,8 +58,8 @@ _SHARED_PLAN_FIELDS: dict[tuple[int, ...], tuple[list, tuple]] = {}
 
 def _reduce_task(task: "FileTask") -> tuple:
     """Pickle a task; a plan list without cached verdicts goes as nested tuples of plain
-    values, made once (pickled in C, without a Python ``__reduce__`` call per plan: a task
-    pickles in about half the time)."""
+    values, made once (pickled in C, without a Python ``__reduce__`` call per plan: 19 instead
+    of 29 us per task in one measurement)."""
     plans = task.stages
     if any(p.cached is not None for p in plans):
         return _reduce_by_fields(task)
