@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import json
 import os
-import socket
 import time
 from pathlib import Path
 
@@ -86,7 +85,7 @@ class OutputLock:
         self.swept: list[Path] = []
 
     def __enter__(self) -> "OutputLock":
-        me = {"pid": os.getpid(), "host": socket.gethostname(), "since": time.time()}
+        me = {"pid": os.getpid(), "host": _hostname(), "since": time.time()}
         if fcntl is not None:
             self._take_flock(me)
         else:  # pragma: no cover - Windows
@@ -180,3 +179,12 @@ class OutputLock:
             self.fd = None
         else:  # pragma: no cover - Windows
             self.path.unlink(missing_ok=True)
+
+
+def _hostname() -> str:
+    """This machine's name (``socket.gethostname()`` without importing socket: the up-to-date
+    check takes the lock and should cost little more than Python's start-up)."""
+    if hasattr(os, "uname"):
+        return os.uname().nodename
+    import socket
+    return socket.gethostname()
