@@ -293,7 +293,8 @@ class Runner:
         # a corpus stage without a prepare step (split) has nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
-        existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp)
+        recorded_out = ledger.outputs()
+        existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp, recorded_out)
         last_status = {sha: status for sha, status in ledger.decision_statuses()}
         tasks = []
         for sha, rel in rep.items():
@@ -318,7 +319,8 @@ class Runner:
         if missing:
             late = [self._render_task(sha, rep[sha], path_of[rep[sha]], cache) for sha in missing]
             self._execute(ledger, late, cache, walk.staged)
-        placed = outputs.place(ledger, cfg.output, walk, rep, existing_out, self.output_fp)
+        placed = outputs.place(ledger, cfg.output, walk, rep, existing_out, self.output_fp, recorded_out)
+        del recorded_out
         timings["outputs"] = time.perf_counter() - t
 
         tally = outputs.Tally()

@@ -33,3 +33,38 @@ def test_write_atomic_leaves_no_temp_file(tmp_path):
     write_atomic(p, b"two", fsync=False)
     assert p.read_bytes() == b"two"
     assert [x.name for x in p.parent.iterdir()] == ["b.txt"]
+
+
+def test_placed_files_are_flushed_one_by_one_or_with_one_sync(tmp_path, monkeypatch):
+    """A few newly placed files are fsynced one by one (and their folders); many, with one
+    os.sync(); a file that cannot be flushed is an OutputError naming it (fsync(2) reports
+    write-back errors such as EIO)."""
+    import errno
+    import os
+
+    from pipeline import outputs
+    from pipeline.errors import OutputError
+    files = []
+    for i in range(3):
+        p = tmp_path / "midi" / "train" / f"{i}.mid"
+        p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_bytes(b"MThd")
+        files.append(str(p))
+    synced, whole = [], []
+    real_fsync = os.fsync
+    monkeypatch.setattr(os, "fsync", lambda fd: synced.append(fd) or real_fsync(fd))
+    monkeypatch.setattr(os, "sync", lambda: whole.append(1))
+    outputs._flush_moved(files, set())
+    assert len(synced) == 4 and whole == []  # three files and their folder
+    synced.clear()
+    monkeypatch.setattr(outputs, "FSYNC_EACH_UP_TO", 2)
+    outputs._flush_moved(files, set())
+    assert synced == [] and whole == [1]
+    monkeypatch.setattr(outputs, "FSYNC_EACH_UP_TO", 256)
+
+    def failing(fd):
+        raise OSError(errno.EIO, "Input/output error")
+    monkeypatch.setattr(os, "fsync", failing)
+    with pytest.raises(OutputError) as err:
+        outputs._flush_moved(files, set())
+    assert err.value.file == files[0] and "Input/output error" in err.value.message
