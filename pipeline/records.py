@@ -174,6 +174,8 @@ class Compactor:
 
     def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
         t = thresholds if thresholds is not None else {}
+        if t is self._thresholds:  # speed: the ledger hands out one dict per distinct text
+            return t
         if self._thresholds is not None and t == self._thresholds:
             return self._thresholds
         self._thresholds = t
