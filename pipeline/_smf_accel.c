@@ -955,11 +955,34 @@ static double pairwise_sum(const double *a, Py_ssize_t n) {
     return pairwise_sum(a, n2) + pairwise_sum(a + n2, n - n2);
 }
 
-/* np.add.reduce of a float64 array: the identity 0.0 plus the pairwise sum */
+/* How this process's numpy reduces a long contiguous float64 array: 0 when in one pairwise
+ * pass (numpy 2.4), else in chunks of this many values added in order (numpy 2.2 reduces
+ * through its 8192-value buffer). Set once by score.compiled_analyses, which compares
+ * add_reduce with np.add.reduce on probe arrays (set_reduce_chunk). */
+static Py_ssize_t reduce_chunk = 0;
+
+/* np.add.reduce of a float64 array: the identity 0.0 plus the pairwise sum of each chunk */
 static inline double np_sum(const double *a, Py_ssize_t n) {
     double acc = 0.0;
-    acc += pairwise_sum(a, n);
+    if (reduce_chunk <= 0 || n <= reduce_chunk) {
+        acc += pairwise_sum(a, n);
+        return acc;
+    }
+    for (Py_ssize_t lo = 0; lo < n; lo += reduce_chunk)
+        acc += pairwise_sum(a + lo, n - lo < reduce_chunk ? n - lo : reduce_chunk);
     return acc;
+}
+
+static PyObject *set_reduce_chunk(PyObject *self, PyObject *arg) {
+    (void)self;
+    Py_ssize_t n = PyLong_AsSsize_t(arg);
+    if (n == -1 && PyErr_Occurred()) return NULL;
+    if (n < 0) {
+        PyErr_SetString(PyExc_ValueError, "set_reduce_chunk takes a count >= 0");
+        return NULL;
+    }
+    reduce_chunk = n;
+    Py_RETURN_NONE;
 }
 
 static PyObject *py_sum(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
@@ -1777,6 +1800,8 @@ static PyMethodDef methods[] = {
     {"read_track", (PyCFunction)(void (*)(void))read_track, METH_FASTCALL, read_track_doc},
     {"note_table", (PyCFunction)(void (*)(void))note_table, METH_FASTCALL, note_table_doc},
     {"group_events", (PyCFunction)(void (*)(void))group_events, METH_FASTCALL, group_events_doc},
+    {"set_reduce_chunk", (PyCFunction)set_reduce_chunk, METH_O,
+     "set_reduce_chunk(n): numpy reduces long arrays in chunks of n values (0: in one pass)."},
     {"add_reduce", (PyCFunction)(void (*)(void))py_sum, METH_FASTCALL,
      "add_reduce(float64 buffer) -> float: np.add.reduce's pairwise sum (for the tests)."},
     {"content_rows", (PyCFunction)(void (*)(void))content_rows, METH_FASTCALL, content_rows_doc},

@@ -113,8 +113,26 @@ def compiled_analyses(notes: np.ndarray) -> Any:
         return None
     mod = _SMF._smf_accel
     if _CHECKED[0] is not mod:  # a build from before the analyses were compiled has none
-        _CHECKED[:] = [mod, all(hasattr(mod, f) for f in _ANALYSES)]
+        _CHECKED[:] = [mod, all(hasattr(mod, f) for f in _ANALYSES) and _sums_follow_numpy(mod)]
     return mod if _CHECKED[1] else None
+
+
+def _sums_follow_numpy(mod: Any) -> bool:
+    """Make the compiled sums follow this numpy's ``np.add.reduce``, bit for bit: numpy 2.4
+    sums a long contiguous array in one pairwise pass, numpy 2.2 in chunks of its 8192-value
+    buffer. The chunking under which probe arrays sum alike is set in the module; when none
+    does, the compiled analyses are not used (the numpy code runs)."""
+    if not hasattr(mod, "set_reduce_chunk"):
+        return False
+    rng = np.random.default_rng(20261202)
+    probes = [rng.standard_normal(n) * 10.0 ** rng.integers(-6, 6, n) for n in (8193, 16385, 20001, 65536)]
+    for chunk in (0, 8192):
+        mod.set_reduce_chunk(chunk)
+        if all(np.float64(mod.add_reduce(p)).tobytes() == np.float64(np.add.reduce(p)).tobytes()
+               for p in probes):
+            return True
+    mod.set_reduce_chunk(0)
+    return False
 
 
 #: The compiled analyses the modules above call (pipeline/_smf_accel.c).

@@ -552,7 +552,10 @@ def _both_paths(monkeypatch, pieces, fn) -> None:
 
 def test_pairwise_sum_is_numpys():
     # numpy's float64 add.reduce: pairwise summation in blocks of 8 up to 128 values
-    # (numpy/_core/src/umath/loops_utils.h.src); every size up to 300 and around the block edges
+    # (numpy/_core/src/umath/loops_utils.h.src); every size up to 300 and around the block edges,
+    # and beyond numpy 2.2's 8192-value buffer, once the module follows this numpy's chunking
+    from pipeline.score import _sums_follow_numpy
+    assert _sums_follow_numpy(smf._smf_accel), f"numpy {np.__version__}: no chunking matches"
     rng = np.random.default_rng(8)
     for n in list(range(300)) + [1000, 1023, 1024, 1025, 8191, 8192, 8193, 20000, 100001]:
         a = rng.standard_normal(n) * 10.0 ** rng.integers(-6, 6, n)
