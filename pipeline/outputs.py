@@ -40,7 +40,7 @@ def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool =
     """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
     see the old file or the new one, never a part. ``data`` may be an iterable of text chunks
     (streamed: the manifest of a million files is never one string in memory). ``fsync=False``
-    for staged files, which the run flushes with one ``os.sync()`` before it records them."""
+    skips the flush where the file may be lost to a power cut (the up-to-date summary)."""
     path = Path(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
@@ -471,6 +471,8 @@ def write_all(out_dir: Path, rows: Iterable[dict | str], placed: Placed,
     return summary
 
 
-def write_summary(out_dir: Path, summary: dict) -> None:
-    """Write summary.json (atomically)."""
-    write_atomic(out_dir / "summary.json", json.dumps(summary, indent=2, sort_keys=True, default=_default) + "\n")
+def write_summary(out_dir: Path, summary: dict, *, fsync: bool = True) -> None:
+    """Write summary.json (atomically; ``fsync=False`` where losing it to a power cut loses
+    nothing but fresh timings)."""
+    write_atomic(out_dir / "summary.json", json.dumps(summary, indent=2, sort_keys=True, default=_default) + "\n",
+                 fsync=fsync)

@@ -88,7 +88,9 @@ def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: 
     summary["timings_s"] = {"discover": round(seconds_discover, 4),
                             "total": round(time.perf_counter() - t_start, 4)}
     summary["unchanged_since_last_run"] = True
-    write_summary(out, summary)
+    # the same summary with fresh timings: no fsync, which waits for whatever else the disk is
+    # writing (after a power cut the previous summary, equal but for the timings, is there)
+    write_summary(out, summary, fsync=False)
     ledger.finish_run(run_id, summary["counts"])
 
 
