@@ -255,22 +255,25 @@ class Ledger:
         self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, _dumps(v)) for k, v in values.items()))
 
     # -- decisions (explain) -------------------------------------------------------------------
-    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, list]], *, replace: bool = True) -> None:
-        """Replace the trails with this run's: rows of (source, sha256, status, trail). With
+    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, Any]], *, replace: bool = True) -> None:
+        """Replace the trails with this run's: rows of (source, sha256, status, trail), the trail
+        a list or its ``canonical_json`` text. With
         ``replace=False`` the rows are added to those already written in this transaction (a
         run writes its trails in chunks while the manifest streams past)."""
         if replace:
             self.db.execute("DELETE FROM decisions")
         self.db.executemany("INSERT INTO decisions VALUES (?,?,?,?)",
-                            ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
+                            ((src, sha, status, trail if type(trail) is str else _dumps(trail))
+                             for src, sha, status, trail in rows))
 
-    def update_decisions(self, rows: Iterable[tuple[str, str | None, str, list]],
+    def update_decisions(self, rows: Iterable[tuple[str, str | None, str, Any]],
                          gone: Iterable[str]) -> None:
         """Replace the trails of some sources (rows as for ``put_decisions``) and forget the
         sources in ``gone``; the other trails stay as the last run wrote them."""
         self.db.executemany("DELETE FROM decisions WHERE source=?", ((s,) for s in gone))
         self.db.executemany("INSERT OR REPLACE INTO decisions VALUES (?,?,?,?)",
-                            ((src, sha, status, _dumps(trail)) for src, sha, status, trail in rows))
+                            ((src, sha, status, trail if type(trail) is str else _dumps(trail))
+                             for src, sha, status, trail in rows))
 
     def row_digests(self) -> dict[str, str]:
         """source -> digest of its manifest row in the last completed run."""

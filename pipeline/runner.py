@@ -23,13 +23,14 @@ import sys
 import time
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
+from json.encoder import encode_basestring_ascii as _json_string
 from typing import Any
 
 from . import __version__, outputs, uptodate
 from .config import Config
 from .errors import LedgerError, MidisiftError
 from .executor import Fault, Limits, run_tasks
-from .ledger import Ledger, stored_artifacts, stored_result
+from .ledger import Ledger, canonical_json, stored_artifacts, stored_result, thresholds_json
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
 from .report import RunReport
@@ -339,7 +340,8 @@ class Runner:
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None)
+            decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None,
+                                      walk.trail_json)
             summary = outputs.write_all(
                 cfg.output, outputs.manifest_rows(files, walk, placed, tally, decisions.add,
                                                   reuse, corpus_positions),
@@ -675,14 +677,18 @@ class _DecisionSink:
 
     CHUNK = 2000
 
-    def __init__(self, ledger: Ledger, gone: list[str] | None = None):
+    def __init__(self, ledger: Ledger, gone: list[str] | None = None,
+                 trail_json: Any = None):
         self.ledger = ledger
-        self.rows: list[tuple[str, str, str, list]] = []
+        self.trail_json = trail_json  # (source, sha256) -> the trail's JSON text, else the list is stored
+        self.rows: list[tuple[str, str, str, Any]] = []
         self.digests: list[tuple[str, str]] = []
         self.gone = gone
         self.first = True
 
     def add(self, f: SourceFile, row: dict, trail: list, digest: str | None = None) -> None:
+        if self.trail_json is not None:
+            trail = self.trail_json(f.rel, f.sha256)
         self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped", trail))
         if digest is not None:
             self.digests.append((f.rel, digest))
@@ -773,6 +779,24 @@ class Walk:
             if idx is not None:
                 trail = trail[:idx] + [byte_copy_result(self.rep[sha], sha, trail[idx])]
         return trail
+
+    def trail_json(self, rel: str, sha: str) -> str:
+        """``trail_of`` as the ledger stores it (``ledger.canonical_json``), assembled from the
+        records' stored texts: no values are parsed or serialised again (a byte-identical
+        copy's trail, whose dedup step is rewritten, goes through the json module)."""
+        if self.byte_copy_stage and self.is_byte_copy(rel, sha) and \
+                self._reached(sha, self.byte_copy_stage) is not None:
+            return canonical_json(self.trail_of(rel, sha))
+        esc = _json_string
+        steps = [
+            # the keys in sorted order, as canonical_json writes them
+            '{"detail":' + ("null" if r.detail is None else esc(r.detail))
+            + ',"kept":' + ("true" if r.kept else "false")
+            + ',"reason":' + ("null" if r.reason is None else esc(r.reason))
+            + ',"stage":' + esc(name) + ',"thresholds":' + thresholds_json(r.thresholds)
+            + ',"values":' + r.values_json() + "}"
+            for name, r in zip(self.stage_names, self.trails.get(sha, ()))]
+        return "[" + ",".join(steps) + "]"
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
         """(stage, reason) that dropped this source, or None when kept."""

@@ -160,3 +160,25 @@ def test_line_prefix_is_what_json_writes(rel):
     f = SimpleNamespace(rel=rel, sha256="0123456789abcdef" * 4)
     row = {"id": f.sha256[:16], "source": rel, "sha256": f.sha256}
     assert json.dumps(row, ensure_ascii=False, separators=(", ", ": ")).startswith(line_prefix(f))
+
+
+def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch):
+    """The decision trail assembled from the records' stored texts equals the json module's
+    serialisation of the trail (the reference), for every source of a rerun (reused and new
+    records, byte-identical copies included)."""
+    import json
+
+    from pipeline.runner import Runner
+    corpus, base = first
+    dest = tmp_path / "trail"
+    shutil.copytree(base, dest)
+    walks = []
+    real = Runner._walk
+    monkeypatch.setattr(Runner, "_walk", lambda self, *a: walks.append(real(self, *a)) or walks[-1])
+    _run(corpus, dest)
+    walk = walks[0]
+    rows = [json.loads(line) for line in (dest / "manifest.jsonl").read_text().splitlines()]
+    assert any(r["reason"] == "exact_duplicate" for r in rows)
+    for r in rows:
+        want = json.dumps(walk.trail_of(r["source"], r["sha256"]), sort_keys=True, separators=(",", ":"))
+        assert walk.trail_json(r["source"], r["sha256"]) == want, r["source"]
