@@ -2,9 +2,11 @@
 
 A run keeps one result per (file, stage) from the per-file pass until the manifest is written:
 at 100,000 files and four per-file stages that is 400,000 results. As plain dicts (an outer
-dict, a values dict, a thresholds dict) they cost about 3.4 KB per file; a ``Result`` keeps the
-value names as one tuple shared by every result of the stage, the values as a tuple, and the
-thresholds shared with the stage's previous result when equal, for about a third of that.
+dict, a values dict, a thresholds dict) they cost about 3.4 KB per file. A ``Result`` keeps the
+values either as the JSON text the ledger stores (results from workers and from the ledger:
+parsed only when read) or as a tuple under a value-name tuple shared by every result of the
+stage (results made in the main process), and the thresholds shared with the stage's previous
+result when equal.
 
 A ``Result`` reads like the result dict it replaces (``r["kept"]``, ``r["values"]``,
 ``{**r}``, ``r.get("thresholds")``), so the ledger, the workers and the manifest need not know.
