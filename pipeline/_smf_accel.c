@@ -1404,14 +1404,10 @@ PyDoc_STRVAR(note_stats_doc,
 "longest_note_s); None for values the numpy version treats otherwise (NaN or -0.0 seconds,\n"
 "pitches or programs outside 0..127, negative tracks, ticks beyond 2**61).");
 
-static PyObject *note_stats(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+static PyObject *note_stats(PyObject *self, PyObject *table) {
     (void)self;
-    if (nargs != 1) {
-        PyErr_SetString(PyExc_TypeError, "note_stats takes a note table");
-        return NULL;
-    }
     Notes t;
-    if (notes_open(args[0], &t) < 0) return NULL;
+    if (notes_open(table, &t) < 0) return NULL;
     PyObject *out = NULL;
     Py_ssize_t n = t.n;
     Ev *ev = (Ev *)PyMem_Malloc((size_t)(2 * n + 1) * sizeof(Ev));
@@ -1635,14 +1631,10 @@ PyDoc_STRVAR(table_group_events_doc,
 "table whose every note ends after it starts; None otherwise (encode then filters or\n"
 "refuses the table itself).");
 
-static PyObject *table_group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+static PyObject *table_group_events(PyObject *self, PyObject *table) {
     (void)self;
-    if (nargs != 1) {
-        PyErr_SetString(PyExc_TypeError, "table_group_events takes a note table");
-        return NULL;
-    }
     Notes t;
-    if (notes_open(args[0], &t) < 0) return NULL;
+    if (notes_open(table, &t) < 0) return NULL;
     PyObject *out = NULL;
     Py_ssize_t n = t.n;
     int64_t *c = (int64_t *)PyMem_Malloc((size_t)(6 * (n ? n : 1)) * sizeof(int64_t));
@@ -1808,12 +1800,12 @@ static PyMethodDef methods[] = {
     {"shingles", (PyCFunction)(void (*)(void))shingles, METH_FASTCALL, shingles_doc},
     {"pc_histogram", (PyCFunction)(void (*)(void))pc_histogram, METH_FASTCALL, pc_histogram_doc},
     {"meter_accents", (PyCFunction)(void (*)(void))meter_accents, METH_FASTCALL, meter_accents_doc},
-    {"note_stats", (PyCFunction)(void (*)(void))note_stats, METH_FASTCALL, note_stats_doc},
+    {"note_stats", (PyCFunction)note_stats, METH_O, note_stats_doc},
     {"shift_sort", (PyCFunction)(void (*)(void))shift_sort, METH_FASTCALL, shift_sort_doc},
     {"grid_count", (PyCFunction)(void (*)(void))grid_count, METH_FASTCALL, grid_count_doc},
     {"fold_count", (PyCFunction)(void (*)(void))fold_count, METH_FASTCALL, fold_count_doc},
     {"minhash32", (PyCFunction)(void (*)(void))minhash32, METH_FASTCALL, minhash32_doc},
-    {"table_group_events", (PyCFunction)(void (*)(void))table_group_events, METH_FASTCALL,
+    {"table_group_events", (PyCFunction)table_group_events, METH_O,
      table_group_events_doc},
     {NULL, NULL, 0, NULL},
 };
