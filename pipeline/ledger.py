@@ -87,7 +87,7 @@ def stored_artifacts(items: dict[str, Any]) -> tuple[tuple[str, str | None, str 
     scalars = {}
     for name, value in items.items():
         if isinstance(value, np.ndarray):
-            rows.append((name, *_encode_artifact(value)))
+            rows.append((name, *_encode_array(value)))
         else:
             scalars[name] = value
     if scalars:  # speed: one row for all of them (a row costs more than its bytes)
@@ -113,6 +113,20 @@ def thresholds_json(thresholds: dict[str, Any]) -> str:
     if len(_THRESHOLD_TEXTS) < 4096:
         _THRESHOLD_TEXTS[id(thresholds)] = (thresholds, text)
     return text
+
+
+_THRESHOLD_DICTS: dict[str, dict[str, Any]] = {}
+
+
+def thresholds_from_json(text: str) -> dict[str, Any]:
+    """The thresholds dict of a stored text, one shared (read-only) dict per distinct text: a
+    stage's thresholds come from its options, so a run sees few of them."""
+    t = _THRESHOLD_DICTS.get(text)
+    if t is None:
+        t = json.loads(text)
+        if len(_THRESHOLD_DICTS) < 4096:
+            _THRESHOLD_DICTS[text] = t
+    return t
 
 
 def _json_default(value: Any) -> Any:
@@ -189,16 +203,12 @@ class Ledger:
             def make(kept, reason, detail, values, thresholds):  # noqa: E306
                 return {"kept": kept, "reason": reason, "detail": detail,
                         "values": loads(values) if values_as_text else values, "thresholds": thresholds}
-        limits: dict[str, dict] = {}  # a stage's thresholds come from its options: few distinct texts
+        thresholds_of = thresholds_from_json
         for sha, kept, reason, detail, vals, thr in self.db.execute(
                 "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?",
                 (stage, fingerprint)):
-            t = limits.get(thr)
-            if t is None:
-                t = loads(thr)
-                if len(limits) < 256:
-                    limits[thr] = t
-            out[sha] = make(bool(kept), reason, detail, vals if values_as_text else loads(vals), t)
+            out[sha] = make(bool(kept), reason, detail, vals if values_as_text else loads(vals),
+                            thresholds_of(thr))
         return out
 
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
@@ -220,7 +230,7 @@ class Ledger:
     def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None) -> dict[str, dict[str, Any]]:
         """sha256 -> {name: value}; arrays come back as read-only numpy arrays."""
         out: dict[str, dict[str, Any]] = {}
-        scalar, array = _scalar, _decode_array  # speed: a rerun reads a few rows per file
+        array = _decode_array
         for sha, name, dtype, shape, data in self.db.execute(
                 "SELECT sha256, name, dtype, shape, data FROM artifacts WHERE stage=? AND fingerprint=?",
                 (stage, fingerprint)):
@@ -234,7 +244,7 @@ class Ledger:
             elif name == SCALARS:
                 entry.update(json.loads(data))
             elif name != EMPTY:
-                entry[name] = scalar(data)  # a scalar stored on its own row
+                entry[name] = json.loads(data)  # a scalar on its own row (earlier versions)
         return out
 
     def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
@@ -381,17 +391,11 @@ def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
                        "permissions, then rerun: committed results are kept", file=path)
 
 
-def _encode_artifact(value: Any) -> tuple[str | None, str | None, bytes | str]:
+def _encode_array(value: Any) -> tuple[str, str, bytes]:
+    """(dtype, shape, bytes) of a numpy array as stored (the shape as ``_dumps`` writes a list)."""
     import numpy as np
-    if isinstance(value, np.ndarray):
-        arr = np.ascontiguousarray(value)
-        # the shape as _dumps writes a list of ints
-        return arr.dtype.str, "[" + ",".join(map(str, arr.shape)) + "]", arr.tobytes()
-    return None, None, _dumps(value)
-
-
-def _decode_artifact(dtype: str | None, shape: str | None, data: Any) -> Any:
-    return _scalar(data) if dtype is None else _decode_array(dtype, shape, data)
+    arr = np.ascontiguousarray(value)
+    return arr.dtype.str, "[" + ",".join(map(str, arr.shape)) + "]", arr.tobytes()
 
 
 def _decode_array(dtype: str, shape: str | None, data: bytes) -> Any:
@@ -399,21 +403,6 @@ def _decode_array(dtype: str, shape: str | None, data: bytes) -> Any:
     dims = _shape(shape)
     # memory: a 1-D array is returned as read, not as a second (reshaped) view of it
     return arr if len(dims) == 1 and dims[0] == len(arr) else arr.reshape(dims)
-
-
-def _scalar(text: str) -> Any:
-    """A JSON scalar as ``json.loads`` reads it, with shortcuts for the common forms (a plain
-    string, an integer, a decimal number): a rerun reads a few per file."""
-    c = text[:1]
-    if c == '"':
-        if "\\" not in text:
-            return text[1:-1]
-    elif c.isdigit() or c == "-":
-        try:
-            return float(text) if ("." in text or "e" in text or "E" in text) else int(text)
-        except ValueError:
-            pass
-    return json.loads(text)
 
 
 _NUMPY: list = []

@@ -18,6 +18,8 @@ import sys
 from collections.abc import Mapping
 from typing import Any, Iterator
 
+from .ledger import canonical_json, thresholds_from_json
+
 __all__ = ["Result", "Compactor", "TrailValues"]
 
 _FIELDS = ("kept", "reason", "detail", "values", "thresholds")
@@ -65,7 +67,6 @@ class Result:
         form in which a record read back from the ledger and one computed in this run compare
         equal (``pipeline.rowreuse``)."""
         if self.text is None:
-            from .ledger import canonical_json
             self.text = canonical_json(self.values)
         return self.text
 
@@ -146,7 +147,6 @@ class Compactor:
     def __init__(self) -> None:
         self._names: dict[tuple[str, ...], tuple[str, ...]] = {}
         self._thresholds: dict[str, Any] | None = None
-        self._thr_texts: dict[str, dict[str, Any]] = {}
 
     def make(self, kept: bool, reason: str | None, detail: str, values: Mapping[str, Any],
              thresholds: dict[str, Any] | None) -> Result:
@@ -167,12 +167,7 @@ class Compactor:
     def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
         """The result of a stored form (``ledger.stored_result``), its values left as text."""
         kept, reason, detail, values_json, thresholds_json = stored
-        t = self._thr_texts.get(thresholds_json)
-        if t is None:
-            t = json.loads(thresholds_json)
-            if len(self._thr_texts) < 256:  # a stage's thresholds come from its options: few texts
-                self._thr_texts[thresholds_json] = t
-        return self.make_stored(kept, reason, detail, values_json, t)
+        return self.make_stored(kept, reason, detail, values_json, thresholds_from_json(thresholds_json))
 
     def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
         t = thresholds if thresholds is not None else {}
