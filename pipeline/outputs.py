@@ -137,15 +137,13 @@ def shift_key_signatures(keys: Any, semitones: int) -> Any:
     return out
 
 
-def existing_outputs(ledger: Any, out_dir: Path, fp: str,
-                     recorded: dict[str, tuple[str, str]] | None = None) -> dict[str, list[str]]:
-    """sha256 -> output paths (relative to OUTPUT) already on disk with this fingerprint
-    (``recorded``: the ledger's table of outputs, read if None)."""
+def existing_outputs(out_dir: Path, fp: str, recorded: dict[str, tuple[str, str]]) -> dict[str, list[str]]:
+    """sha256 -> output paths (relative to OUTPUT) already on disk with this fingerprint, of
+    those the ledger records (``recorded``: path -> (sha256, fingerprint))."""
     found: dict[str, list[str]] = {}
-    recorded = {rel: sha for rel, (sha, ofp) in (recorded if recorded is not None else ledger.outputs()).items()
-                if ofp == fp}
-    on_disk = present_files(out_dir, recorded)
-    for rel, sha in recorded.items():
+    mine = {rel: sha for rel, (sha, ofp) in recorded.items() if ofp == fp}
+    on_disk = present_files(out_dir, mine)
+    for rel, sha in mine.items():
         if rel in on_disk:
             found.setdefault(sha, []).append(rel)
     return found
@@ -188,9 +186,9 @@ def _suffix_of(rel: str) -> str:
 
 
 def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: dict[str, list[str]],
-          fp: str, recorded: dict[str, tuple[str, str]] | None = None) -> Placed:
+          fp: str, recorded: dict[str, tuple[str, str]]) -> Placed:
     """Move staged/existing normalized files to ``midi/<part>/`` and drop everything else;
-    ``recorded`` is the ledger's table of outputs as the run found it (read again if None)."""
+    ``recorded`` is the ledger's table of outputs as the run found it."""
     placed = Placed()
     rows = []
     moved: list[str] = []
@@ -234,8 +232,6 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     if midi.is_dir():
         _prune(midi, "midi", keep)
     shutil.rmtree(out_dir / STAGING, ignore_errors=True)
-    if recorded is None:
-        recorded = ledger.outputs()
     wanted = {rel: (sha, ofp) for rel, sha, ofp in rows}
     if recorded != wanted:  # write only what changed (a rerun adds a few outputs to thousands)
         with ledger.batch():

@@ -295,7 +295,7 @@ class Runner:
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
         recorded_out = ledger.outputs()
-        existing_out = outputs.existing_outputs(ledger, cfg.output, self.output_fp, recorded_out)
+        existing_out = outputs.existing_outputs(cfg.output, self.output_fp, recorded_out)
         last_status = {sha: status for sha, status in ledger.decision_statuses()}
         tasks = []
         for sha, rel in rep.items():
@@ -362,15 +362,12 @@ class Runner:
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _state_key(self, files: list[SourceFile]) -> str:
-        """Hash of everything a run's outputs depend on: every (source, sha256), every stage's
-        options fingerprint (which includes its version), the output fingerprint and the
-        package version."""
+        """Hash of everything a run's outputs depend on: every (source, sha256) and what every
+        row depends on besides its own file (``_rows_base``: the stages' options fingerprints,
+        which include their versions, the output fingerprint, the package version)."""
         h = hashlib.sha256()
         uptodate.files_digest(h, files)
-        for st in self.stages:
-            h.update(f"{st.name}:{st.fingerprint}\n".encode())
-        h.update(self.output_fp.encode())
-        h.update(f"midisift {__version__}".encode())
+        h.update(self._rows_base().encode())
         return h.hexdigest()
 
     def _rows_base(self) -> str:
