@@ -244,3 +244,17 @@ def test_last_run_results_are_returned_for_members_whose_split_did_not_change():
         assert {k for k in last if full.get(k) is not None
                 and full[k].to_json() == last[k].to_json()} == reused
     assert train_file not in reused  # moved in the second run: its result then said so
+
+
+def test_a_stored_split_result_is_recognised_without_parsing():
+    """The split compares a stored record's JSON text with the text it expects; that text must
+    be what the ledger writes for those values (canonical JSON: the json module, sorted keys),
+    or no stored result would ever be reused."""
+    from pipeline.ledger import stored_result
+    from pipeline.records import Compactor
+    from pipeline.stages.split import _same_split
+    values = {"split": "train", "group": "00000000000000ab", "group_size": 3}
+    stored = Compactor().from_stored(stored_result(StageResult.keep(values=values).to_json()))
+    assert _same_split(stored, "train", "00000000000000ab", 3)
+    assert not _same_split(stored, "test", "00000000000000ab", 3)
+    assert not _same_split(stored, "train", "00000000000000ab", 4)
