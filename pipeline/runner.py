@@ -674,19 +674,19 @@ class _DecisionSink:
 
     CHUNK = 2000
 
-    def __init__(self, ledger: Ledger, gone: list[str] | None = None,
-                 trail_json: Any = None):
+    def __init__(self, ledger: Ledger, gone: list[str] | None, trail_json: Any):
         self.ledger = ledger
-        self.trail_json = trail_json  # (source, sha256) -> the trail's JSON text, else the list is stored
-        self.rows: list[tuple[str, str, str, Any]] = []
+        self.trail_json = trail_json  # (source, sha256) -> the trail's stored JSON text
+        self.rows: list[tuple[str, str, str, str]] = []
         self.digests: list[tuple[str, str]] = []
         self.gone = gone
         self.first = True
 
     def add(self, f: SourceFile, row: dict, trail: list, digest: str | None = None) -> None:
-        if self.trail_json is not None:
-            trail = self.trail_json(f.rel, f.sha256)
-        self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped", trail))
+        """Record one built row's trail (``trail`` is the manifest's list form; the stored text
+        comes from ``trail_json``)."""
+        self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped",
+                          self.trail_json(f.rel, f.sha256)))
         if digest is not None:
             self.digests.append((f.rel, digest))
         if len(self.rows) >= self.CHUNK:
