@@ -24,8 +24,9 @@ outcome type (the runner caches it as a drop, which is what stops a bad file fro
 on every rerun). Errors of the environment (``OutputError``, ``LedgerError``: disk full, an
 unwritable folder) are not the file's fault: they stop the run with their message in the parent.
 
-Workers never touch the parent's SQLite connection (a forked copy they never use: they only run
-``fn`` and leave through ``os._exit``, so no SQLite finalizer runs in them), drop their copy of
+Workers hold no database handle: a forked worker first turns every regular file it inherited
+open (the parent's SQLite files) into /dev/null, and it only runs ``fn`` and
+leaves through ``os._exit``, so no SQLite finalizer runs in it. Workers also drop their copy of
 the run's lock (``pipeline.lock``), ignore SIGINT (the parent handles Ctrl-C and stops them), and
 on Linux die with the parent (``PR_SET_PDEATHSIG``), so a killed run leaves no worker behind.
 The results are the same for 1 and N workers: each task is computed alone, in a fresh state.
@@ -37,6 +38,7 @@ import os
 import select
 import selectors
 import signal
+import stat
 import sys
 import time
 import traceback
@@ -184,6 +186,40 @@ def _die_with_parent() -> None:
         pass
 
 
+def _release_inherited_files() -> None:
+    """A forked worker lets go of the regular files it inherited open (the parent's SQLite
+    database with its WAL and shared-memory files): each descriptor above stderr that names a
+    regular file becomes /dev/null.
+
+    Replaced rather than closed: the parent's objects that owned them (the SQLite connection)
+    still exist in the worker's copy of memory, and the numbers stay taken, so nothing the
+    worker opens later can be reached through such an object. Pipes and sockets are left alone:
+    one of them is the write end whose closing tells the parent this worker ended. A spawned
+    worker (not Linux) inherits no such files."""
+    if not sys.platform.startswith("linux"):
+        return
+    try:
+        fds = [int(name) for name in os.listdir("/proc/self/fd")]
+    except OSError:  # pragma: no cover - no /proc
+        return
+    null = -1
+    try:
+        for fd in fds:
+            if fd <= 2:
+                continue
+            try:
+                mode = os.fstat(fd).st_mode  # (the listing's own descriptor is closed by now)
+            except OSError:
+                continue
+            if stat.S_ISREG(mode):
+                if null < 0:
+                    null = os.open(os.devnull, os.O_RDWR)
+                os.dup2(null, fd, inheritable=False)
+    finally:
+        if null >= 0:
+            os.close(null)
+
+
 def _where(exc: BaseException) -> str:
     """'file.py:123 in func' of the innermost frame of an exception."""
     tb = traceback.extract_tb(exc.__traceback__)
@@ -196,6 +232,7 @@ def _where(exc: BaseException) -> str:
 def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits) -> None:
     """Loop: receive (seq, task), send (seq, kind, payload) until the pipe closes."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _release_inherited_files()
     import faulthandler
     faulthandler.disable()  # a crash is reported as a fault of its task, not as a stack dump
     _die_with_parent()

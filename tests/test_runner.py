@@ -301,3 +301,29 @@ def test_tasks_travel_to_workers_unchanged():
             task = FileTask("ab" * 32, f"/in/{n}.mid", f"{n}.mid", list(plans), "/out/.staging", "fp16")
             back = pickle.loads(ForkingPickler.dumps(task))
             assert fields(back) == fields(task)
+
+
+@pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="needs /proc (Linux)")
+def test_pipeline_workers_hold_no_handle_on_the_state_database(tmp_path, monkeypatch):
+    # the executor contract of the throughput issue: no open database handle in a worker
+    import os
+    from pipeline.stages.key_meter import KeyMeter
+    real = KeyMeter.process
+    seen = tmp_path / "seen.txt"
+
+    def looking(self, piece, ctx):  # inherited by the forked workers
+        with open(seen, "a", encoding="utf-8") as fh:
+            fh.write(f"probe {os.getpid()}\n")
+            for name in os.listdir("/proc/self/fd"):
+                try:
+                    fh.write(os.readlink(f"/proc/self/fd/{name}") + "\n")
+                except OSError:
+                    pass
+        return real(self, piece, ctx)
+    monkeypatch.setattr(KeyMeter, "process", looking)
+    out = tmp_path / "out"
+    _run(out, workers=2)
+    opened = seen.read_text(encoding="utf-8").splitlines()
+    probes = {p for p in opened if p.startswith("probe ")}
+    assert probes and f"probe {os.getpid()}" not in probes  # it ran, in the workers
+    assert not [p for p in opened if "state.sqlite" in p or ".midisift.lock" in p]
