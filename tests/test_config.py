@@ -66,6 +66,45 @@ def test_zero_workers_is_an_error():
         parse_config(_cfg([{"validate": {}}], workers=0))
 
 
+def test_auto_workers_are_the_usable_cpus(monkeypatch):
+    from pipeline import config
+    monkeypatch.setattr(config, "usable_cpus", lambda: 5)
+    assert parse_config(_cfg([{"validate": {}}], workers="auto")).workers == 5
+
+
+def _affinity(monkeypatch, n):
+    import os
+    if hasattr(os, "process_cpu_count"):
+        monkeypatch.setattr(os, "process_cpu_count", lambda: n)
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: set(range(n)), raising=False)
+
+
+def test_usable_cpus_follow_the_affinity_mask_and_the_cgroup_quota(tmp_path, monkeypatch):
+    # file formats from the Linux kernel documentation: cgroup v2 cpu.max "<quota> <period>"
+    # or "max <period>" (admin-guide/cgroup-v2.rst); v1 cpu.cfs_quota_us / cpu.cfs_period_us,
+    # quota -1 meaning none (scheduler/sched-bwc.rst)
+    from pipeline.config import cgroup_cpu_quota, usable_cpus
+    _affinity(monkeypatch, 6)  # e.g. taskset -c 0-5 on a bigger host
+    assert cgroup_cpu_quota(str(tmp_path)) is None
+    assert usable_cpus(str(tmp_path)) == 6
+    v2 = tmp_path / "v2"
+    v2.mkdir()
+    for text, quota in (("max 100000", None), ("150000 100000", 2), ("200000 100000", 2),
+                        ("50000 100000", 1), ("800000 100000", 8), ("garbage", None)):
+        (v2 / "cpu.max").write_text(text + "\n")
+        assert cgroup_cpu_quota(str(v2)) == quota, text
+    (v2 / "cpu.max").write_text("150000 100000\n")
+    assert usable_cpus(str(v2)) == 2  # a container given 1.5 CPUs: 2 workers, not 6
+    (v2 / "cpu.max").write_text("800000 100000\n")
+    assert usable_cpus(str(v2)) == 6  # a quota above the mask does not add CPUs
+    v1 = tmp_path / "v1"
+    (v1 / "cpu").mkdir(parents=True)
+    (v1 / "cpu" / "cpu.cfs_period_us").write_text("100000\n")
+    for text, quota in (("-1", None), ("300000", 3), ("250000", 3)):
+        (v1 / "cpu" / "cpu.cfs_quota_us").write_text(text + "\n")
+        assert cgroup_cpu_quota(str(v1)) == quota, text
+
+
 def test_validate_must_come_first():
     with pytest.raises(ConfigError, match=r"first stage must be 'validate'"):
         parse_config(_cfg([{"key_meter": {}}, {"validate": {}}]))
