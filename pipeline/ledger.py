@@ -30,25 +30,31 @@ from .errors import LedgerError
 # numpy is imported where arrays are (de)serialised: the nothing-changed check opens the ledger
 # without paying numpy's import time
 
-SCHEMA_VERSION = 1
+#: 2: results and artifacts keyed by (stage, fingerprint, sha256, ...) instead of sha256
+#: first, so reading one stage's rows is a range of the table, not a scan of every stage's
+#: rows; a version-1 database is migrated when opened (``_migrate_from_1``)
+SCHEMA_VERSION = 2
 #: Artifact name recorded when a corpus stage's ``prepare`` returned nothing for a file.
 EMPTY = "~"
 #: Artifact name of the row holding all of a file's scalar artifacts of one stage (a JSON object).
 SCALARS = "~scalars"
 
+#: Columns and keys of the two tables a rerun reads by stage (see SCHEMA_VERSION).
+_KEYED_BY_STAGE = {
+    "results": """sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    kept INTEGER NOT NULL, reason TEXT, detail TEXT NOT NULL, vals TEXT NOT NULL,
+    thresholds TEXT NOT NULL, PRIMARY KEY (stage, fingerprint, sha256)""",
+    "artifacts": """sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    name TEXT NOT NULL, dtype TEXT, shape TEXT, data BLOB,
+    PRIMARY KEY (stage, fingerprint, sha256, name)""",
+}
+
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS sources (
     path TEXT PRIMARY KEY, size INTEGER NOT NULL, mtime_ns INTEGER NOT NULL, sha256 TEXT NOT NULL);
-CREATE TABLE IF NOT EXISTS results (
-    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
-    kept INTEGER NOT NULL, reason TEXT, detail TEXT NOT NULL,
-    vals TEXT NOT NULL, thresholds TEXT NOT NULL,
-    PRIMARY KEY (sha256, stage, fingerprint)) WITHOUT ROWID;
-CREATE TABLE IF NOT EXISTS artifacts (
-    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL, name TEXT NOT NULL,
-    dtype TEXT, shape TEXT, data BLOB,
-    PRIMARY KEY (sha256, stage, fingerprint, name)) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS results ({results}) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS artifacts ({artifacts}) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS state (
     stage TEXT NOT NULL, key TEXT NOT NULL, value TEXT NOT NULL, PRIMARY KEY (stage, key));
 CREATE TABLE IF NOT EXISTS decisions (
@@ -60,7 +66,7 @@ CREATE TABLE IF NOT EXISTS outputs (
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY AUTOINCREMENT, started REAL NOT NULL, finished REAL,
     status TEXT NOT NULL, config TEXT NOT NULL, counts TEXT);
-"""
+""".format(**_KEYED_BY_STAGE)
 
 
 def _dumps(value: Any) -> str:
@@ -161,6 +167,8 @@ class Ledger:
             row = self.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
             if row is None:
                 self.db.execute("INSERT INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
+            elif int(row[0]) == 1:
+                _migrate_from_1(self.db)
             elif int(row[0]) != SCHEMA_VERSION:
                 raise LedgerError(
                     f"state schema version {row[0]} is not {SCHEMA_VERSION}; rerun with --fresh into a new output folder",
@@ -351,6 +359,25 @@ class Ledger:
         self.db.execute("DELETE FROM results")
         self.db.execute("DELETE FROM artifacts")
         self.db.execute("DELETE FROM row_digests")
+
+
+def _migrate_from_1(db: sqlite3.Connection) -> None:
+    """Rebuild the results and artifacts tables of a version-1 database (keyed sha256 first)
+    with version 2's keys (same columns, same rows), in one transaction: a run killed meanwhile
+    leaves version 1."""
+    db.execute("BEGIN IMMEDIATE")
+    try:
+        for table, spec in _KEYED_BY_STAGE.items():
+            columns = [r[1] for r in db.execute(f"PRAGMA table_info({table})")]
+            db.execute(f"CREATE TABLE {table}_v2 ({spec}) WITHOUT ROWID")
+            db.execute(f"INSERT INTO {table}_v2 ({', '.join(columns)}) SELECT {', '.join(columns)} FROM {table}")
+            db.execute(f"DROP TABLE {table}")
+            db.execute(f"ALTER TABLE {table}_v2 RENAME TO {table}")
+        db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
+        db.execute("COMMIT")
+    except BaseException:
+        db.execute("ROLLBACK")
+        raise
 
 
 class _Batch:

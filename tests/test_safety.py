@@ -296,3 +296,74 @@ def test_artifact_scalars_read_back_as_the_json_module_reads_them(tmp_path):
                 assert math.isnan(got[sha][k])
                 continue
             assert got[sha][k] == want and type(got[sha][k]) is type(want), (sha, v)
+
+
+# the version-1 tables, as that version created them (sha256 first in both keys)
+_V1_TABLES = """
+CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+INSERT INTO meta VALUES ('schema', '1');
+CREATE TABLE results (
+    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    kept INTEGER NOT NULL, reason TEXT, detail TEXT NOT NULL,
+    vals TEXT NOT NULL, thresholds TEXT NOT NULL,
+    PRIMARY KEY (sha256, stage, fingerprint)) WITHOUT ROWID;
+CREATE TABLE artifacts (
+    sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL, name TEXT NOT NULL,
+    dtype TEXT, shape TEXT, data BLOB,
+    PRIMARY KEY (sha256, stage, fingerprint, name)) WITHOUT ROWID;
+"""
+
+
+def _key_order(db: sqlite3.Connection, table: str) -> list[str]:
+    # PRAGMA table_info's pk column is the column's 1-based position in the primary key
+    # (SQLite documentation, "PRAGMA table_info")
+    cols = [(pk, name) for _, name, _, _, _, pk in db.execute(f"PRAGMA table_info({table})") if pk]
+    return [name for _, name in sorted(cols)]
+
+
+def _plan(db: sqlite3.Connection, sql: str) -> str:
+    return " ".join(str(r[-1]) for r in db.execute("EXPLAIN QUERY PLAN " + sql, ("s", "f")))
+
+
+def test_a_version_1_ledger_is_migrated_and_reads_one_stage_as_a_range(tmp_path):
+    path = tmp_path / "state.sqlite"
+    old = sqlite3.connect(path)
+    old.executescript(_V1_TABLES)
+    rows = [("%064x" % i, stage, "fp", i % 2, None if i % 2 else "too_short", f"d{i}",
+             json.dumps({"i": i}), "{}") for i in range(50) for stage in ("validate", "filter")]
+    old.executemany("INSERT INTO results VALUES (?,?,?,?,?,?,?,?)", rows)
+    old.execute("INSERT INTO artifacts VALUES (?,?,?,?,?,?,?)", ("%064x" % 3, "dedup", "fp", "~scalars",
+                                                                 None, None, '{"notes": 7}'))
+    old.commit()
+    assert "SCAN" in _plan(old, "SELECT sha256 FROM results WHERE stage=? AND fingerprint=?")
+    old.close()
+    with Ledger(path) as led:
+        got = led.results_for("filter", "fp")
+        arts = led.artifacts_for("dedup", "fp")
+        db = led.db
+        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("2",)
+        assert _key_order(db, "results") == ["stage", "fingerprint", "sha256"]
+        assert _key_order(db, "artifacts") == ["stage", "fingerprint", "sha256", "name"]
+        for sql in ("SELECT sha256 FROM results WHERE stage=? AND fingerprint=?",
+                    "SELECT sha256 FROM artifacts WHERE stage=? AND fingerprint=?"):
+            plan = _plan(db, sql)
+            assert "SEARCH" in plan and "PRIMARY KEY" in plan and "SCAN" not in plan, plan
+        assert db.execute("SELECT count(*) FROM results").fetchone() == (100,)
+    assert sorted(got) == ["%064x" % i for i in range(50)]
+    assert got["%064x" % 4] == {"kept": False, "reason": "too_short", "detail": "d4",
+                                "values": {"i": 4}, "thresholds": {}}
+    assert arts == {"%064x" % 3: {"notes": 7}}
+    with Ledger(path) as led:  # opening again changes nothing
+        assert led.db.execute("SELECT count(*) FROM results").fetchone() == (100,)
+
+
+def test_a_ledger_of_a_newer_version_is_refused(tmp_path):
+    path = tmp_path / "state.sqlite"
+    with Ledger(path):
+        pass
+    db = sqlite3.connect(path)
+    db.execute("UPDATE meta SET value='3' WHERE key='schema'")
+    db.commit()
+    db.close()
+    with pytest.raises(LedgerError, match="state schema version 3 is not 2"):
+        Ledger(path)
