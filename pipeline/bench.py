@@ -43,6 +43,8 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, Callable
 
+from .executor import usable_cpus
+
 SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup")
 
 
@@ -89,11 +91,6 @@ SEEDS = {"small": 11, "large": 12, "mem": 100, "rerun_new": 900}
 # ---------------------------------------------------------------------------------------------
 # corpora
 
-def _usable_cpus() -> int:
-    from .config import usable_cpus  # (the config module imports every stage)
-    return usable_cpus()
-
-
 def ensure_corpus(folder: Path, count: int, seed: int, profile: str = "small") -> Path:
     """A synth corpus in ``folder`` (reused when its truth.json says it was made the same way)."""
     from .synth import generate
@@ -119,7 +116,7 @@ def ensure_chunked(folder: Path, total: int, chunk: int, seed: int) -> list[Path
     if todo:
         import multiprocessing as mp
         with mp.get_context("fork" if sys.platform.startswith("linux") else "spawn").Pool(
-                min(len(todo), _usable_cpus())) as pool:
+                min(len(todo), usable_cpus())) as pool:
             pool.starmap(ensure_corpus, todo)
     return [j[0] for j in jobs]
 
@@ -553,7 +550,7 @@ class Bench:
         self.results: dict[str, Any] = {}
         self.scratch.mkdir(parents=True, exist_ok=True)
         self.config = default_config(self.scratch)
-        self.workers_all = _usable_cpus()  # what ``workers: auto`` starts
+        self.workers_all = usable_cpus()  # what ``workers: auto`` starts
 
     def corpus(self, cls: str) -> Path:
         count = self.scale.small if cls == "small" else self.scale.large
@@ -781,7 +778,7 @@ def machine() -> dict[str, Any]:
     except (ValueError, OSError, AttributeError):
         pass
     import numpy
-    return {"cpu": cpu, "cores": os.cpu_count(), "usable_cpus": _usable_cpus(),
+    return {"cpu": cpu, "cores": os.cpu_count(), "usable_cpus": usable_cpus(),
             "memory_gb": mem_gb, "os": platform.platform(),
             "python": platform.python_version(), "numpy": numpy.__version__,
             "load_average": list(os.getloadavg()) if hasattr(os, "getloadavg") else None}
