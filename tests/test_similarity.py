@@ -5,9 +5,11 @@ import numpy as np
 import pytest
 from datasketch import MinHash, MinHashLSH
 
+from pipeline import smf
 from pipeline.similarity import (LSHIndex, UnionFind, band_keys, candidate_probability, check_banding,
                                  estimate_jaccard, fold32, minhash, near_pairs, near_pairs_between,
-                                 set_similarity, verify_pairs)
+                                 pair_similarities, set_similarity, sorted_unique, verify_index_pairs,
+                                 verify_pairs)
 
 
 def pair_with_jaccard(rng: np.random.Generator, j: float, union: int = 400) -> tuple[np.ndarray, np.ndarray]:
@@ -119,6 +121,101 @@ def test_capped_sets_compare_on_their_common_hash_range():
     exact = set_similarity(a, b, min_size_ratio=1.0, cap=10**9)[0]
     capped = set_similarity(a[:2000], b[:2000], min_size_ratio=1.0, cap=2000)[0]
     assert abs(capped - exact) < 0.05
+
+
+def _python_set_similarity(a: np.ndarray, b: np.ndarray, cap: int, ratio: float) -> float:
+    """Reference: Jaccard |A & B| / |A | B| and containment |A & B| / min(|A|, |B|) with
+    Python's built-in sets (a general-purpose implementation, not ours), on the common hash
+    range when a set was cut at ``cap``; containment only for sizes within ``ratio``."""
+    A, B = {int(x) for x in a}, {int(x) for x in b}
+    if not A or not B:
+        return 0.0
+    if len(A) >= cap or len(B) >= cap:
+        limit = min(max(A), max(B))
+        A, B = {x for x in A if x <= limit}, {x for x in B if x <= limit}
+    inter = len(A & B)
+    jac = inter / len(A | B)
+    small, large = min(len(A), len(B)), max(len(A), len(B))
+    if ratio < 1.0 and small >= ratio * large and inter / small > jac:
+        return inter / small
+    return jac
+
+
+def _random_sets(rng: np.random.Generator, n: int, cap: int) -> list[np.ndarray]:
+    """Sorted unique uint64 sets of mixed sizes (empty, small, at and above ``cap``), many of
+    them sharing values, so every branch of the comparison is taken."""
+    pool = rng.integers(0, 2**64, 4 * cap, dtype=np.uint64)
+    out = []
+    for k in range(n):
+        size = int(rng.choice([0, 1, 5, cap // 3, cap - 1, cap, cap + 40]))
+        out.append(sorted_unique(rng.choice(pool, size=size))[:cap] if size else np.zeros(0, np.uint64))
+    return out
+
+
+@pytest.mark.parametrize("ratio", [0.75, 1.0, 0.3])
+def test_pair_similarities_equal_python_sets_and_set_similarity(ratio):
+    # Reference: Python's set operations (_python_set_similarity). Both paths of
+    # pair_similarities (the numpy specification and the C kernel where it is built) must give
+    # exactly set_similarity's float for every pair, and that the reference's value.
+    rng = np.random.default_rng(11)
+    cap = 60
+    sets = _random_sets(rng, 40, cap)
+    # an excerpt of exactly 0.75 of a set (containment applies at the default ratio, to the bit)
+    sets += [np.arange(40, dtype=np.uint64), np.arange(30, dtype=np.uint64)]
+    i = np.append(rng.integers(0, len(sets), 600), [40, 41])
+    j = np.append(rng.integers(0, len(sets), 600), [41, 40])
+    want = np.array([set_similarity(sets[x], sets[y], min_size_ratio=ratio, cap=cap)[0]
+                     for x, y in zip(i, j)])
+    ref = np.array([_python_set_similarity(sets[x], sets[y], cap, ratio) for x, y in zip(i, j)])
+    assert np.allclose(want, ref, rtol=0, atol=1e-15)
+    paths = (False, True) if smf.USE_ACCEL else (False,)
+    for compiled in paths:
+        got = pair_similarities(sets, i, j, min_size_ratio=ratio, cap=cap, compiled=compiled)
+        assert got.dtype == np.float64 and np.array_equal(got, want), compiled
+    assert len(pair_similarities(sets, i[:0], j[:0])) == 0
+
+
+@pytest.mark.skipif(not smf.USE_ACCEL, reason="the compiled kernels are not built")
+def test_overlap_kernel_names_bad_input():
+    kernel = smf._smf_accel.overlap_counts
+    sets = [np.arange(4, dtype=np.uint64)]
+    with pytest.raises(IndexError, match="set index 3 outside 0..0"):
+        kernel(sets, np.array([0], np.int64), np.array([3], np.int64), 10)
+    with pytest.raises(ValueError, match="not a uint64 array"):
+        kernel([np.arange(3, dtype=np.uint8)], np.array([0], np.int64), np.array([0], np.int64), 10)
+    with pytest.raises(ValueError, match="one length"):
+        kernel(sets, np.array([0, 0], np.int64), np.array([0], np.int64), 10)
+
+
+def test_verify_index_pairs_equals_verify_pairs():
+    # The index form must give verify_pairs' result exactly (same links, same order, same
+    # union-find decisions), on candidate pairs in code order as LSHIndex makes them.
+    rng = np.random.default_rng(5)
+    keys = [f"k{n:03d}" for n in range(60)]
+    base = [np.unique(rng.integers(0, 2**63, 120, dtype=np.uint64)) for _ in range(12)]
+    sets = {k: np.unique(np.concatenate([base[n % 12][rng.integers(0, 10):],
+                                         rng.integers(0, 2**63, 8, dtype=np.uint64)]))
+            for n, k in enumerate(keys)}
+    codes = np.unique(rng.integers(0, 60 * 60, 900))
+    i, j = codes // 60, codes % 60
+    keep = i < j
+    i, j = i[keep], j[keep]
+    pairs = [(keys[a], keys[b]) for a, b in zip(i, j)]
+    for skip in (False, True):
+        uf1, uf2 = (UnionFind(keys), UnionFind(keys)) if skip else (None, None)
+        want = verify_pairs(pairs, sets, 0.5, skip=uf1)
+        got = verify_index_pairs(keys, i, j, sets, 0.5, skip=uf2)
+        assert got == want and len(want) > 10
+        if skip:
+            assert uf1.groups() == uf2.groups()
+
+
+def test_sorted_unique_equals_numpy_unique():
+    # Reference: numpy.unique (sorted distinct values).
+    rng = np.random.default_rng(2)
+    for n in (0, 1, 2, 1000):
+        a = rng.integers(0, max(n // 3, 1), n)
+        assert np.array_equal(sorted_unique(a), np.unique(a))
 
 
 def test_near_pairs_verifies_and_incremental_form_matches():

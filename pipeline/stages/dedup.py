@@ -23,7 +23,7 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..score import Piece
 from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, signature_of,
-                          verify_pairs)
+                          verify_index_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -238,9 +238,9 @@ class Dedup(Stage):
         n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
-        cands = index.iter_sorted_pairs(codes)
-        verified = verify_pairs(cands, _Shingles(facts), threshold,
-                                min_size_ratio=float(o["min_size_ratio"]), skip=uf)
+        n_ids = len(index.ids)
+        verified = verify_index_pairs(index.ids, codes // n_ids, codes % n_ids, _Shingles(facts),
+                                      threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
         for a, b, sim in verified:
             links[a].append((b, sim, "near"))
             links[b].append((a, sim, "near"))
@@ -268,7 +268,8 @@ class Dedup(Stage):
                 kept_ids.extend(k for k in group if k in last_kept)
                 continue
             pool = [k for k in group if k in previously_kept] or group
-            kept = min(pool, key=lambda k: key(facts[k]))
+            # speed: a member alone needs no facts (most clusters have one member)
+            kept = pool[0] if len(pool) == 1 else min(pool, key=lambda k: key(facts[k]))
             kept_ids.append(kept)
             results.update(self._cluster_results(group, kept, facts, links, threshold))
         state.save("link_fingerprint", self._link_fingerprint())
@@ -295,8 +296,8 @@ class Dedup(Stage):
 
     def _cluster_results(self, group: list[str], kept: str, facts: dict[str, _Facts],
                          links: dict[str, list], threshold: float) -> dict[str, StageResult]:
-        k = facts[kept]
         size = len(group)
+        k = facts[kept] if size > 1 else None
         out: dict[str, StageResult] = {}
         others = []
         limits = {"similarity": threshold}
