@@ -17,11 +17,13 @@ A run has four steps:
 """
 from __future__ import annotations
 
+import gc
 import hashlib
 import sqlite3
 import sys
 import time
 from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
 from typing import Any
@@ -248,7 +250,10 @@ class Runner:
             raise LedgerError(f"cannot create the output folder ({e.strerror})", file=str(out)) from None
         with OutputLock(out):
             with Ledger(out / "state.sqlite") as ledger:
-                return self._run(ledger, t_start)
+                try:
+                    return self._run(ledger, t_start)
+                finally:
+                    gc.unfreeze()  # the run's frozen objects are the collector's again
 
     def _run(self, ledger: Ledger, t_start: float) -> RunReport:
         cfg = self.config
@@ -287,10 +292,11 @@ class Runner:
         path_of = {f.rel: f.path for f in files}
 
         t = time.perf_counter()
-        # speed: stored values stay JSON text until a row that needs them is rebuilt
-        cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
-                                            values_as_text=True)
-                 for s in self.stages if s.kind == "file"}
+        with _bulk_data():
+            # speed: stored values stay JSON text until a row that needs them is rebuilt
+            cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
+                                                values_as_text=True)
+                     for s in self.stages if s.kind == "file"}
         # a corpus stage without a prepare step (split) has nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
@@ -303,13 +309,15 @@ class Runner:
             if task is not None:
                 tasks.append(task)
         computed = len(tasks)
-        self._execute(ledger, tasks, cache)
+        with _bulk_data():
+            self._execute(ledger, tasks, cache)
         del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
         t = time.perf_counter()
-        walk = self._walk(ledger, rep, cache, timings)
+        with _bulk_data():
+            walk = self._walk(ledger, rep, cache, timings)
         timings["corpus"] = time.perf_counter() - t
 
         # late renders: contents kept now that have no output (e.g. a cluster's new representative)
@@ -598,6 +606,31 @@ class Runner:
         walk.byte_copy_stage = "dedup" if "dedup" in names else None
         walk.rep = rep
         return walk
+
+
+def _settle() -> None:
+    """Exempt the objects made so far (the run's result records, trails, members) from the
+    cyclic collector's passes until the run ends (``gc.freeze``; reference counting still
+    frees them, and ``Runner.run`` unfreezes them at its end). Speed: each full pass walks
+    every live object, and the heap grows through a run: on a cached 100,000-file run 14 full
+    passes took 3.2 of 42 s, on a 1%-new rerun of 10,000 files 0.18 of 1.9 s."""
+    gc.freeze()
+
+
+@contextmanager
+def _bulk_data() -> Iterator[None]:
+    """A phase that builds many long-lived, acyclic records (the result cache, the per-file
+    results coming back from the workers, the members and results of the corpus stages): no
+    cyclic collection inside it (cyclic garbage made in it is collected after it), and what
+    it built is settled (``_settle``) when it ends."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        _settle()
+        if enabled:
+            gc.enable()
 
 
 def _prepares(stage: Stage) -> bool:

@@ -327,3 +327,26 @@ def test_pipeline_workers_hold_no_handle_on_the_state_database(tmp_path, monkeyp
     probes = {p for p in opened if p.startswith("probe ")}
     assert probes and f"probe {os.getpid()}" not in probes  # it ran, in the workers
     assert not [p for p in opened if "state.sqlite" in p or ".midisift.lock" in p]
+
+
+def test_a_run_leaves_the_cyclic_collector_as_it_found_it(tmp_path, monkeypatch):
+    # A run holds its records out of the collector's passes (gc.freeze, speed) and must give
+    # them back: a program that runs the pipeline, then goes on, keeps a normal collector.
+    import gc
+    assert gc.isenabled()
+    _run(tmp_path / "a")
+    assert gc.isenabled() and gc.get_freeze_count() == 0
+    gc.disable()
+    try:
+        _run(tmp_path / "b")
+        assert not gc.isenabled() and gc.get_freeze_count() == 0  # a caller's choice is kept
+    finally:
+        gc.enable()
+    from pipeline.stages.split import Split
+
+    def failing(self, members, state):
+        raise RuntimeError("planted failure inside the stage walk")
+    monkeypatch.setattr(Split, "run_corpus", failing)
+    with pytest.raises(RuntimeError, match="planted failure"):
+        _run(tmp_path / "c")
+    assert gc.isenabled() and gc.get_freeze_count() == 0
