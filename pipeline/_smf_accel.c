@@ -1813,13 +1813,23 @@ static int set_view(PyObject *sets, Py_ssize_t n_sets, long long k, Py_buffer *v
         PyErr_Format(PyExc_IndexError, "overlap_counts: set index %lld outside 0..%zd", k, n_sets - 1);
         return -1;
     }
-    if (PyObject_GetBuffer(PyList_GET_ITEM(sets, k), view, PyBUF_C_CONTIGUOUS) < 0) return -1;
-    if (view->len % 8) {
+    if (PyObject_GetBuffer(PyList_GET_ITEM(sets, k), view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0)
+        return -1;
+    const char *f = view->format ? view->format : "B";
+    char code = f[0] ? f[strlen(f) - 1] : 'B';
+    if (view->itemsize != 8 || (code != 'L' && code != 'Q') || view->len % 8) {
         PyBuffer_Release(view);
         PyErr_Format(PyExc_ValueError, "overlap_counts: set %lld is not a uint64 array", k);
         return -1;
     }
     return 0;
+}
+
+/* a buffer of signed 8-byte integers (numpy int64: format "l" or "q") */
+static int is_int64(const Py_buffer *v) {
+    const char *f = v->format ? v->format : "B";
+    char code = f[0] ? f[strlen(f) - 1] : 'B';
+    return v->itemsize == 8 && (code == 'l' || code == 'q') && v->len % 8 == 0;
 }
 
 static PyObject *overlap_counts(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
@@ -1833,13 +1843,13 @@ static PyObject *overlap_counts(PyObject *self, PyObject *const *args, Py_ssize_
     PyObject *sets = args[0];
     Py_ssize_t n_sets = PyList_GET_SIZE(sets);
     Py_buffer iv, jv;
-    if (PyObject_GetBuffer(args[1], &iv, PyBUF_C_CONTIGUOUS) < 0) return NULL;
-    if (PyObject_GetBuffer(args[2], &jv, PyBUF_C_CONTIGUOUS) < 0) {
+    if (PyObject_GetBuffer(args[1], &iv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
+    if (PyObject_GetBuffer(args[2], &jv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) {
         PyBuffer_Release(&iv);
         return NULL;
     }
     PyObject *out = NULL;
-    if (iv.len % 8 || jv.len != iv.len) {
+    if (!is_int64(&iv) || !is_int64(&jv) || jv.len != iv.len) {
         PyErr_SetString(PyExc_ValueError, "overlap_counts: i and j must be int64 arrays of one length");
         goto done;
     }

@@ -237,7 +237,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .similarity import pair_estimates, pair_similarities
+    from .similarity import VERIFY_CHUNK, pair_estimates, pair_similarities
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -257,11 +257,13 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     floor = low - margin_sigmas * (max(low * (1 - low), 1e-4) / num_perm) ** 0.5
     sel = est >= (threshold if shingles is None else floor)
     ia, ib, est = ia[sel], ib[sel], est[sel]
-    if shingles is None:
-        sim = est
-    else:  # one shingle list, in key order, read by index (speed: no Python work per pair)
-        sim = pair_similarities([shingles[k] for k in keys], ia, ib)
-    hit = sim >= threshold
-    # memory: only the linked pairs become Python objects
-    return [(keys[i], keys[j], float(v))
-            for i, j, v in zip(ia[hit].tolist(), ib[hit].tolist(), sim[hit].tolist())]
+    sets = None if shingles is None else [shingles[k] for k in keys]  # read by index
+    out: list[tuple[str, str, float]] = []
+    for lo in range(0, len(ia), VERIFY_CHUNK):  # memory: per-pair arrays a chunk at a time
+        i, j = ia[lo:lo + VERIFY_CHUNK], ib[lo:lo + VERIFY_CHUNK]
+        sim = est[lo:lo + VERIFY_CHUNK] if sets is None else pair_similarities(sets, i, j)
+        hit = sim >= threshold
+        # memory: only the linked pairs become Python objects
+        out += [(keys[a], keys[b], float(v))
+                for a, b, v in zip(i[hit].tolist(), j[hit].tolist(), sim[hit].tolist())]
+    return out

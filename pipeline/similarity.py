@@ -163,15 +163,14 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
     numbers to the last bit: the counts come from one compiled call when the extension is
     built (speed: 1.4 million pairs of a 100,000-file split took 12 s through
     ``np.intersect1d`` one pair at a time), and the divisions are the same float64 ones.
-    ``compiled=False`` counts with ``overlap_counts``, the specification."""
+    ``compiled=False`` counts with ``overlap_counts``, the specification. ``sets`` is a list
+    of uint64 arrays (the kernel refuses other types, naming the set)."""
     i = np.ascontiguousarray(i, dtype=np.int64)
     j = np.ascontiguousarray(j, dtype=np.int64)
     if not len(i):
         return np.zeros(0, dtype=np.float64)
     kernel = _compiled("overlap_counts") if compiled else None
-    if kernel is not None:  # a list of contiguous uint64 arrays, as the kernel reads them
-        sets = [x if type(x) is np.ndarray and x.dtype == np.uint64 and x.flags.c_contiguous
-                else np.ascontiguousarray(x, dtype=np.uint64) for x in sets]
+    if kernel is not None:
         counts = np.frombuffer(kernel(sets, i, j, int(cap)), dtype=np.int64).reshape(-1, 3)
     else:
         counts = np.array([overlap_counts(sets[x], sets[y], cap) for x, y in zip(i.tolist(), j.tolist())],

@@ -185,6 +185,10 @@ def test_overlap_kernel_names_bad_input():
         kernel([np.arange(3, dtype=np.uint8)], np.array([0], np.int64), np.array([0], np.int64), 10)
     with pytest.raises(ValueError, match="one length"):
         kernel(sets, np.array([0, 0], np.int64), np.array([0], np.int64), 10)
+    with pytest.raises(ValueError, match="int64 arrays"):
+        kernel(sets, np.array([0.0]), np.array([0.0]), 10)
+    with pytest.raises(ValueError, match="not a uint64 array"):
+        kernel([np.arange(4, dtype=np.float64)], np.array([0], np.int64), np.array([0], np.int64), 10)
 
 
 def test_verify_index_pairs_equals_verify_pairs():
