@@ -33,6 +33,7 @@ The results are the same for 1 and N workers: each task is computed alone, in a 
 """
 from __future__ import annotations
 
+import gc
 import multiprocessing as mp
 import os
 import select
@@ -273,6 +274,9 @@ def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits
     """Loop: receive (seq, task), send (seq, kind, payload) until the pipe closes."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _release_inherited_files()
+    # a worker collects its own cyclic garbage, whatever the parent's collector was doing when
+    # it forked (the runner turns it off while it builds its records)
+    gc.enable()
     import faulthandler
     faulthandler.disable()  # a crash is reported as a fault of its task, not as a stack dump
     _die_with_parent()
