@@ -608,27 +608,21 @@ class Runner:
         return walk
 
 
-def _settle() -> None:
-    """Exempt the objects made so far (the run's result records, trails, members) from the
-    cyclic collector's passes until the run ends (``gc.freeze``; reference counting still
-    frees them, and ``Runner.run`` unfreezes them at its end). Speed: each full pass walks
-    every live object, and the heap grows through a run: on a cached 100,000-file run 14 full
-    passes took 3.2 of 42 s, on a 1%-new rerun of 10,000 files 0.18 of 1.9 s."""
-    gc.freeze()
-
-
 @contextmanager
 def _bulk_data() -> Iterator[None]:
     """A phase that builds many long-lived, acyclic records (the result cache, the per-file
     results coming back from the workers, the members and results of the corpus stages): no
-    cyclic collection inside it (cyclic garbage made in it is collected after it), and what
-    it built is settled (``_settle``) when it ends."""
+    cyclic collection inside it (cyclic garbage made in it is collected after it), and what it
+    built is exempted from the collector's passes until the run ends (``gc.freeze``; reference
+    counting still frees it, and ``Runner.run`` unfreezes at its end). Speed: each full pass
+    walks every live object, and the heap grows through a run: on a cached 100,000-file run 14
+    full passes took 3.2 of 42 s, on a 1%-new rerun of 10,000 files 0.18 of 1.9 s."""
     enabled = gc.isenabled()
     gc.disable()
     try:
         yield
     finally:
-        _settle()
+        gc.freeze()
         if enabled:
             gc.enable()
 

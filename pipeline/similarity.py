@@ -17,7 +17,6 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from itertools import islice
 from typing import Any, Iterable, Iterator
 
 import numpy as np
@@ -485,77 +484,66 @@ def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: flo
                  ) -> list[tuple[str, str, float]]:
     """Keep the candidate pairs whose similarity reaches ``threshold``: ``(a, b, sim)``.
 
-    Similarity is ``set_similarity`` on the shingle sets when given (``shingles[key]``), else
-    the MinHash estimate from ``signatures``. With ``skip`` (a UnionFind), pairs already in one
-    set are not linked again and verified pairs are unioned (enough for clustering). Pairs are
-    compared ``VERIFY_CHUNK`` at a time (``pair_similarities``), then taken in order, so the
-    result is the one a pair-by-pair pass gives."""
+    Similarity is ``set_similarity`` on the shingle sets when given (``shingles[key]``, compared
+    by ``verify_index_pairs``), else the MinHash estimate from ``signatures``. With ``skip`` (a
+    UnionFind), pairs already in one set are not linked again and verified pairs are unioned
+    (enough for clustering)."""
     if shingles is None and signatures is None:
         raise ValueError("verify_pairs needs shingles (exact) or signatures (estimate)")
-    out: list[tuple[str, str, float]] = []
-    it = iter(pairs)
-    while True:
-        chunk = list(islice(it, VERIFY_CHUNK))
-        if not chunk:
-            return out
-        if shingles is not None:
-            sims = _chunk_similarities(chunk, shingles, min_size_ratio).tolist()
-        else:
-            sims = [estimate_jaccard(signatures[a], signatures[b]) for a, b in chunk]
-        for (a, b), sim in zip(chunk, sims):
-            if sim < threshold or (skip is not None and skip.find(a) == skip.find(b)):
-                continue
-            out.append((a, b, sim))
-            if skip is not None:
-                skip.union(a, b)
+    pairs = list(pairs)
+    if shingles is None:
+        return _link_in_order(((a, b, estimate_jaccard(signatures[a], signatures[b])) for a, b in pairs),
+                              threshold, skip)
+    pos: dict[str, int] = {}
+    index = np.array([pos.setdefault(k, len(pos)) for pair in pairs for k in pair],
+                     dtype=np.int64).reshape(-1, 2)
+    return verify_index_pairs(list(pos), index[:, 0], index[:, 1], shingles, threshold,
+                              min_size_ratio=min_size_ratio, skip=skip)
 
 
 def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any,
                        threshold: float, *, min_size_ratio: float = 0.75,
                        skip: UnionFind | None = None) -> list[tuple[str, str, float]]:
     """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays (LSH
-    candidate codes): the same result, without a Python tuple per candidate. Only the sets of
-    keys in some pair are read (``shingles[key]``, e.g. lazily built facts on a rerun)."""
+    candidate codes), without a Python tuple per candidate: ``VERIFY_CHUNK`` pairs per
+    ``pair_similarities`` call, then the pairs that reach ``threshold`` taken in order, so the
+    result is the one a pair-by-pair pass gives. Only the sets of keys in some pair are read
+    (``shingles[key]``, e.g. lazily built facts on a rerun)."""
     i = np.asarray(i, dtype=np.int64)
     j = np.asarray(j, dtype=np.int64)
-    out: list[tuple[str, str, float]] = []
     if not len(i):
-        return out
+        return []
     involved = sorted_unique(np.concatenate([i, j]))
     sets = [shingles[keys[p]] for p in involved.tolist()]
     li, lj = np.searchsorted(involved, i), np.searchsorted(involved, j)
+    hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
         sims = pair_similarities(sets, li[lo:hi], lj[lo:hi], min_size_ratio=min_size_ratio)
         hit = np.flatnonzero(sims >= threshold)
-        for a, b, sim in zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist()):
-            ka, kb = keys[a], keys[b]
-            if skip is not None:
-                if skip.find(ka) == skip.find(kb):
-                    continue
-                skip.union(ka, kb)
-            out.append((ka, kb, sim))
-    return out
+        hits += [(keys[a], keys[b], sim) for a, b, sim in
+                 zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist())]
+    return _link_in_order(hits, threshold, skip)
 
 
-#: Candidate pairs compared per ``pair_similarities`` call in ``verify_pairs``.
+#: Candidate pairs compared per ``pair_similarities`` call in ``verify_index_pairs``.
 VERIFY_CHUNK = 1 << 14
 
 
-def _chunk_similarities(chunk: list[tuple[str, str]], shingles: Any, min_size_ratio: float) -> np.ndarray:
-    """``set_similarity`` values of a list of key pairs: each key's set is looked up once."""
-    pos: dict[str, int] = {}
-    sets: list[np.ndarray] = []
-    i = np.empty(len(chunk), dtype=np.int64)
-    j = np.empty(len(chunk), dtype=np.int64)
-    for k, (a, b) in enumerate(chunk):
-        for key, side in ((a, i), (b, j)):
-            p = pos.get(key)
-            if p is None:
-                p = pos[key] = len(sets)
-                sets.append(shingles[key])
-            side[k] = p
-    return pair_similarities(sets, i, j, min_size_ratio=min_size_ratio)
+def _link_in_order(scored: Iterable[tuple[str, str, float]], threshold: float,
+                   skip: UnionFind | None) -> list[tuple[str, str, float]]:
+    """The scored pairs at or above ``threshold``, in order; with ``skip``, a pair whose ends
+    are already in one set is passed over and each kept pair joins its ends."""
+    out: list[tuple[str, str, float]] = []
+    for a, b, sim in scored:
+        if sim < threshold:
+            continue
+        if skip is not None:
+            if skip.find(a) == skip.find(b):
+                continue
+            skip.union(a, b)
+        out.append((a, b, sim))
+    return out
 
 
 def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm: int = 128,

@@ -191,9 +191,24 @@ def test_overlap_kernel_names_bad_input():
         kernel([np.arange(4, dtype=np.float64)], np.array([0], np.int64), np.array([0], np.int64), 10)
 
 
+def _pair_by_pair(pairs, sets, threshold, skip):
+    """The plain loop both verify functions must equal: set_similarity one pair at a time,
+    skipping pairs already joined."""
+    out = []
+    for a, b in pairs:
+        if skip is not None and skip.find(a) == skip.find(b):
+            continue
+        sim, _ = set_similarity(sets[a], sets[b])
+        if sim >= threshold:
+            out.append((a, b, sim))
+            if skip is not None:
+                skip.union(a, b)
+    return out
+
+
 def test_verify_index_pairs_equals_verify_pairs():
-    # The index form must give verify_pairs' result exactly (same links, same order, same
-    # union-find decisions), on candidate pairs in code order as LSHIndex makes them.
+    # Both forms must give the pair-by-pair loop's result exactly (same links, same order,
+    # same union-find decisions), on candidate pairs in code order as LSHIndex makes them.
     rng = np.random.default_rng(5)
     keys = [f"k{n:03d}" for n in range(60)]
     base = [np.unique(rng.integers(0, 2**63, 120, dtype=np.uint64)) for _ in range(12)]
@@ -206,12 +221,14 @@ def test_verify_index_pairs_equals_verify_pairs():
     i, j = i[keep], j[keep]
     pairs = [(keys[a], keys[b]) for a, b in zip(i, j)]
     for skip in (False, True):
-        uf1, uf2 = (UnionFind(keys), UnionFind(keys)) if skip else (None, None)
+        uf0, uf1, uf2 = (UnionFind(keys), UnionFind(keys), UnionFind(keys)) if skip else (None,) * 3
+        reference = _pair_by_pair(pairs, sets, 0.5, uf0)
         want = verify_pairs(pairs, sets, 0.5, skip=uf1)
         got = verify_index_pairs(keys, i, j, sets, 0.5, skip=uf2)
+        assert want == reference
         assert got == want and len(want) > 10
         if skip:
-            assert uf1.groups() == uf2.groups()
+            assert uf1.groups() == uf2.groups() == uf0.groups()
 
 
 def test_sorted_unique_equals_numpy_unique():
