@@ -237,7 +237,8 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .similarity import VERIFY_CHUNK, pair_estimates, pair_similarities
+    from .ledger import load_arrays
+    from .similarity import VERIFY_CHUNK, pair_estimates, pair_similarities, sorted_unique
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -257,11 +258,19 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     floor = low - margin_sigmas * (max(low * (1 - low), 1e-4) / num_perm) ** 0.5
     sel = est >= (threshold if shingles is None else floor)
     ia, ib, est = ia[sel], ib[sel], est[sel]
-    sets = None if shingles is None else [shingles[k] for k in keys]  # read by index
+    sets, li, lj = None, ia, ib
+    if shingles is not None and len(ia):
+        # only the sets of files in some pair are read, those still in the ledger (a rerun's,
+        # ledger.StoredArray) in one go; pairs index them by position in ``involved``
+        involved = sorted_unique(np.concatenate([ia, ib]))
+        sets = [np.asarray(x, dtype=np.uint64)
+                for x in load_arrays([shingles[keys[p]] for p in involved.tolist()])]
+        li, lj = np.searchsorted(involved, ia), np.searchsorted(involved, ib)
     out: list[tuple[str, str, float]] = []
     for lo in range(0, len(ia), VERIFY_CHUNK):  # memory: per-pair arrays a chunk at a time
         i, j = ia[lo:lo + VERIFY_CHUNK], ib[lo:lo + VERIFY_CHUNK]
-        sim = est[lo:lo + VERIFY_CHUNK] if sets is None else pair_similarities(sets, i, j)
+        sim = (est[lo:lo + VERIFY_CHUNK] if sets is None
+               else pair_similarities(sets, li[lo:lo + VERIFY_CHUNK], lj[lo:lo + VERIFY_CHUNK]))
         hit = sim >= threshold
         # memory: only the linked pairs become Python objects
         out += [(keys[a], keys[b], float(v))

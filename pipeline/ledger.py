@@ -240,20 +240,29 @@ class Ledger:
         return {sha for (sha,) in self.db.execute(
             "SELECT DISTINCT sha256 FROM artifacts WHERE stage=? AND fingerprint=?", (stage, fingerprint))}
 
-    def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None) -> dict[str, dict[str, Any]]:
-        """sha256 -> {name: value}; arrays come back as read-only numpy arrays."""
+    def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None, *,
+                      defer: tuple[str, ...] = ()) -> dict[str, dict[str, Any]]:
+        """sha256 -> {name: value}; arrays come back as read-only numpy arrays, those named in
+        ``defer`` as ``StoredArray`` handles (length and shape known, bytes read when loaded,
+        ``load_arrays`` reads many at once). Speed and memory: a rerun's dedup reads the
+        shingle sets of the files it compares, not of every file (about 0.9 KB each)."""
         out: dict[str, dict[str, Any]] = {}
         array = _decode_array
+        deferred = {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer}
+        # the bytes of a deferred array are not selected (its row is still read for the shape)
+        blob = ("CASE WHEN name IN (%s) THEN NULL ELSE data END" % ",".join("?" * len(defer))
+                if defer else "data")
         for sha, name, dtype, shape, data in self.db.execute(
-                "SELECT sha256, name, dtype, shape, data FROM artifacts WHERE stage=? AND fingerprint=?",
-                (stage, fingerprint)):
+                f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts WHERE stage=? AND fingerprint=?",
+                (*defer, stage, fingerprint)):
             if shas is not None and sha not in shas:
                 continue
             entry = out.get(sha)
             if entry is None:
                 entry = out[sha] = {}
             if dtype is not None:
-                entry[name] = array(dtype, shape, data)
+                rows = deferred.get(name)
+                entry[name] = array(dtype, shape, data) if rows is None else StoredArray(rows, sha, dtype, shape)
             elif name == SCALARS:
                 entry.update(json.loads(data))
             elif name != EMPTY:
@@ -467,6 +476,85 @@ def _shape(text: str | None) -> tuple[int, ...]:
         if len(_SHAPES) < 4096:
             _SHAPES[text or ""] = dims
     return dims
+
+
+class _ArrayRows:
+    """Where the deferred arrays of one artifact name of one stage and fingerprint are read."""
+
+    __slots__ = ("db", "key")
+
+    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, name: str):
+        self.db, self.key = db, (stage, fingerprint, name)
+
+    def fetch(self, shas: list[str]) -> dict[str, bytes]:
+        """sha256 -> stored bytes, in queries of ``FETCH_CHUNK`` keys."""
+        stage, fp, name = self.key
+        got: dict[str, bytes] = {}
+        for chunk in iter_chunks(shas, FETCH_CHUNK):
+            got.update(self.db.execute(
+                f"SELECT sha256, data FROM artifacts WHERE stage=? AND fingerprint=? AND name=? "
+                f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, name, *chunk)))
+        return got
+
+
+#: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).
+FETCH_CHUNK = 500
+
+
+class StoredArray:
+    """A numpy array artifact left in the ledger until it is read (``artifacts_for(defer=)``):
+    ``len()`` and ``shape`` come from the stored shape, ``load()`` reads the bytes once (the
+    array is kept: dedup and split compare many of the same files); the ledger must still be
+    open."""
+
+    __slots__ = ("_rows", "sha256", "dtype", "_shape", "_array")
+
+    def __init__(self, rows: _ArrayRows, sha256: str, dtype: str, shape: str | None):
+        self._rows, self.sha256, self.dtype, self._shape = rows, sha256, dtype, shape
+        self._array: Any = None
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return _shape(self._shape)
+
+    def __len__(self) -> int:
+        dims = self.shape
+        if not dims:
+            raise TypeError("len() of a 0-d stored array")
+        return dims[0]
+
+    def load(self) -> Any:
+        return load_arrays([self])[0]
+
+    def __repr__(self) -> str:
+        return f"StoredArray({self._rows.key[2]} of {self.sha256[:16]}, {self.dtype}, {self.shape})"
+
+
+def load_arrays(values: list) -> list:
+    """The arrays of ``values``: numpy arrays (or anything else) as they are, ``StoredArray``
+    handles read from the ledger, those sharing a table in one query per ``FETCH_CHUNK``."""
+    out = list(values)
+    groups: dict[int, tuple[_ArrayRows, list[int]]] = {}
+    for i, v in enumerate(out):
+        if type(v) is StoredArray:
+            if v._array is not None:
+                out[i] = v._array
+            else:
+                groups.setdefault(id(v._rows), (v._rows, []))[1].append(i)
+    for rows, where in groups.values():
+        got = rows.fetch(sorted({out[i].sha256 for i in where}))
+        for i in where:
+            v = out[i]
+            if v._array is None:  # (a handle listed twice is read once)
+                data = got.get(v.sha256)
+                if data is None:
+                    path = rows.db.execute("PRAGMA database_list").fetchone()[2] or None
+                    raise LedgerError(f"the {rows.key[2]} artifact of {v.sha256} is no longer in "
+                                      "the state database (another process changed it during "
+                                      "the run?); rerun", file=path)
+                v._array = _decode_array(v.dtype, v._shape, data)
+            out[i] = v._array
+    return out
 
 
 def iter_chunks(items: list, size: int) -> Iterator[list]:

@@ -546,7 +546,10 @@ class Runner:
                         walk.status[sha] = (st.name, r["reason"])
                 alive = survivors
             else:
-                arts = ledger.artifacts_for(st.name, st.fingerprint, set(alive)) if _prepares(st) else {}
+                # speed, memory: the large per-file arrays a stage compares only in pairs stay
+                # in the ledger until compared (Stage.deferred_artifacts)
+                arts = (ledger.artifacts_for(st.name, st.fingerprint, set(alive), defer=st.deferred_artifacts)
+                        if _prepares(st) else {})
                 members = [Member(sha[:16], sha, rep[sha], TrailValues(trails[sha]),
                                   {st.name: arts.pop(sha, {})}) for sha in alive]
                 del arts

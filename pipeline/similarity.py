@@ -22,6 +22,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from .analysis.shingles import ShingleSpec, content_hash, fmix64, shingle_hashes
+from .ledger import load_arrays
 from .score import Piece
 
 _U32_MAX = np.uint32(0xFFFFFFFF)
@@ -514,7 +515,8 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
     if not len(i):
         return []
     involved = sorted_unique(np.concatenate([i, j]))
-    sets = [shingles[keys[p]] for p in involved.tolist()]
+    # sets still in the ledger (a rerun's, ledger.StoredArray) are read in one go
+    sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
     li, lj = np.searchsorted(involved, i), np.searchsorted(involved, j)
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk

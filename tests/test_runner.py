@@ -350,3 +350,34 @@ def test_a_run_leaves_the_cyclic_collector_as_it_found_it(tmp_path, monkeypatch)
     with pytest.raises(RuntimeError, match="planted failure"):
         _run(tmp_path / "c")
     assert gc.isenabled() and gc.get_freeze_count() == 0
+
+
+def test_a_rerun_reads_the_shingle_sets_of_compared_files_only(tmp_path, monkeypatch):
+    # Shingle sets (dedup's largest artifact) stay in the ledger until a pair or a cluster of
+    # several needs them; a rerun adding files must not read every file's set, and its outputs
+    # must be those of a run that read them all (the pre-deferral behaviour, forced here).
+    from pipeline.ledger import _ArrayRows
+    from pipeline.stages.dedup import Dedup
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    held = tmp_path / "held"
+    held.mkdir()
+    for i, p in enumerate(sorted(corpus.rglob("*.mid"))[:2]):
+        shutil.move(p, held / f"{i}_{p.name}")
+    out, eager_out = tmp_path / "out", tmp_path / "eager"
+    _run(out, input_dir=corpus)
+    shutil.copytree(out, eager_out)
+    (corpus / "added").mkdir()
+    for p in held.iterdir():
+        shutil.copy(p, corpus / "added" / p.name)
+    fetched: list[str] = []
+    real_fetch = _ArrayRows.fetch
+    monkeypatch.setattr(_ArrayRows, "fetch", lambda self, shas: fetched.extend(shas) or real_fetch(self, shas))
+    _run(out, input_dir=corpus)
+    reached = {r["sha256"] for r in _manifest(out) if r.get("cluster") is not None}  # dedup's members
+    assert fetched, "no shingle set was read from the ledger (deferral off, or nothing compared)"
+    assert set(fetched) <= reached and len(set(fetched)) <= len(reached) // 4, (len(set(fetched)), len(reached))
+    monkeypatch.setattr(Dedup, "deferred_artifacts", ())
+    _run(eager_out, input_dir=corpus)
+    for name in ("manifest.jsonl", "splits/train.txt", "splits/valid.txt", "splits/test.txt"):
+        assert (out / name).read_bytes() == (eager_out / name).read_bytes(), name

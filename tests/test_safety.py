@@ -268,6 +268,48 @@ def test_object_arrays_in_the_ledger_are_refused(tmp_path):
     assert sqlite3.connect(tmp_path / "state.sqlite").execute("SELECT count(*) FROM artifacts").fetchone() == (1,)
 
 
+def test_deferred_artifact_arrays_read_back_as_the_eager_ones(tmp_path, monkeypatch):
+    # artifacts_for(defer=...) leaves an array in the ledger until load_arrays reads it: the
+    # bytes, dtype and shape must be those of the eager read (numpy's own array equality is
+    # the reference), reads are batched across FETCH_CHUNK, and plain arrays pass through
+    import numpy as np
+
+    from pipeline import ledger as ledger_mod
+    from pipeline.ledger import StoredArray, load_arrays
+    monkeypatch.setattr(ledger_mod, "FETCH_CHUNK", 3)  # several queries for 7 keys
+    rng = np.random.default_rng(0)
+    items = {"%064x" % k: {"shingles": rng.integers(0, 2**63, size=k, dtype=np.uint64),
+                           "signature": rng.integers(0, 2**32, size=4, dtype=np.uint32), "notes": k}
+             for k in range(7)}
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        eager = led.artifacts_for("dedup", "fp")
+        lazy = led.artifacts_for("dedup", "fp", defer=("shingles",))
+        shas = sorted(items)
+        assert all(type(lazy[sha]["shingles"]) is StoredArray for sha in shas)
+        assert [len(lazy[sha]["shingles"]) for sha in shas] == list(range(7))
+        assert all(type(lazy[sha]["signature"]) is np.ndarray and lazy[sha]["notes"] == items[sha]["notes"]
+                   for sha in shas)
+        plain = np.arange(3, dtype=np.uint64)
+        mixed = [lazy[sha]["shingles"] for sha in reversed(shas)] + [plain, lazy[shas[2]]["shingles"]]
+        got = load_arrays(mixed)
+        want = [eager[sha]["shingles"] for sha in reversed(shas)] + [plain, eager[shas[2]]["shingles"]]
+        for g, w in zip(got, want):
+            assert g.dtype == np.uint64 and g.shape == w.shape and np.array_equal(g, w)
+        assert got[-2] is plain
+        assert np.array_equal(lazy[shas[5]]["shingles"].load(), items[shas[5]]["shingles"])
+        # a loaded array is kept; a row removed behind a handle not yet read is an error
+        # naming the database
+        handle = lazy[shas[4]]["shingles"]
+        assert handle.load() is handle.load()
+        lazy = led.artifacts_for("dedup", "fp", defer=("shingles",))
+        with led.batch():
+            led.db.execute("DELETE FROM artifacts WHERE sha256=? AND name='shingles'", (shas[4],))
+        with pytest.raises(LedgerError, match="state.sqlite: the shingles artifact of " + shas[4]):
+            load_arrays([lazy[shas[4]]["shingles"]])
+
+
 def test_artifact_scalars_read_back_as_the_json_module_reads_them(tmp_path):
     # scalars are stored as one JSON object per file and stage, or (rows written by earlier
     # versions) one row each, read with shortcuts for plain strings and numbers: both must read

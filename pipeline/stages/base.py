@@ -144,6 +144,10 @@ class Stage:
     version: ClassVar[int] = 1
     options: ClassVar[tuple[Option, ...]] = ()
     doc: ClassVar[str] = ""
+    #: Names of ``prepare`` arrays a corpus stage reads only for some members (e.g. the sets it
+    #: compares in pairs): they reach ``run_corpus`` as ``ledger.StoredArray`` handles, read
+    #: with ``ledger.load_arrays``.
+    deferred_artifacts: ClassVar[tuple[str, ...]] = ()
 
     def __init__(self, opts: dict[str, Any] | None = None):
         merged = {o.name: o.default for o in self.options}

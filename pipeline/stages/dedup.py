@@ -21,6 +21,7 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import ShingleSpec, duration_beats
+from ..ledger import load_arrays
 from ..score import Piece
 from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, signature_of,
                           verify_index_pairs)
@@ -47,32 +48,45 @@ class _Facts:
 
 class _LazyFacts(dict):
     """member id -> ``_Facts``, each built from the member's artifacts when first read (a rerun
-    reads the facts of the clusters it recomputes, not of every member)."""
+    reads the facts of the clusters it recomputes, not of every member). The shingle sets may
+    still be in the ledger (``ledger.StoredArray``): ``prefetch`` reads many in one query."""
 
     def __init__(self, by_id: dict[str, Member], arts: dict[str, dict[str, Any]]):
         super().__init__()
         self._by_id, self._arts = by_id, arts
 
+    def prefetch(self, ids: list[str]) -> None:
+        """Build the facts of these members, reading their shingle sets together."""
+        todo = [k for k in ids if k not in self]
+        for k, sh in zip(todo, load_arrays([self._arts[k]["shingles"] for k in todo])):
+            self._build(k, sh)
+
     def __missing__(self, k: str) -> _Facts:
+        return self._build(k, load_arrays([self._arts[k]["shingles"]])[0])
+
+    def _build(self, k: str, shingles: Any) -> _Facts:
         m, art = self._by_id[k], self._arts[k]
         f = _Facts(k, m.source, m.sha256, str(art["content_hash"]),
                    np.asarray(art["signature"], dtype=np.uint32),
-                   np.asarray(art["shingles"], dtype=np.uint64),
+                   np.asarray(shingles, dtype=np.uint64),
                    int(art["notes"]), float(art["duration_beats"]))
         self[k] = f
         return f
 
 
 class _Shingles:
-    """member id -> shingle set, read through the lazy facts (what ``verify_pairs`` needs)."""
+    """member id -> shingle set (what ``verify_index_pairs`` reads): a fact's set when the
+    facts are built, else the artifact as it is (``verify_index_pairs`` loads the stored ones
+    in one go)."""
 
     __slots__ = ("_facts",)
 
     def __init__(self, facts: _LazyFacts):
         self._facts = facts
 
-    def __getitem__(self, k: str) -> np.ndarray:
-        return self._facts[k].shingles
+    def __getitem__(self, k: str) -> Any:
+        f = self._facts.get(k)
+        return f.shingles if f is not None else self._facts._arts[k]["shingles"]
 
 
 def _key_most_notes(m: dict) -> tuple:
@@ -128,6 +142,9 @@ class Dedup(Stage):
     kind = "corpus"
     version = 1
     doc = "Drop exact and near duplicates (MinHash LSH over transposition-invariant note shingles)."
+    #: shingle sets are read for the members in candidate pairs and in clusters of several
+    #: (split reads them for its candidate pairs too), not for every member
+    deferred_artifacts = ("shingles",)
     options = (
         Option("threshold", float, DEFAULT_THRESHOLD,
                "Similarity (Jaccard, or containment for excerpts) at or above which two files are "
@@ -259,16 +276,20 @@ class Dedup(Stage):
         results: dict[str, Any] = {}
         kept_ids: list[str] = []
         cluster_sources: dict[str, str] = {}
-        for group in uf.groups():
+        groups = uf.groups()
+        as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
+        # speed: the facts of the clusters of several that are recomputed, read together (a
+        # member alone needs none, and most clusters have one)
+        facts.prefetch([k for g, same in zip(groups, as_last) if len(g) > 1 and not same for k in g])
+        for group, same in zip(groups, as_last):
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
-            if last is not None and self._as_last_run(group, old, last, last_sources, by_id):
+            if same:
                 results.update((k, last[k]) for k in group)
                 kept_ids.extend(k for k in group if k in last_kept)
                 continue
             pool = [k for k in group if k in previously_kept] or group
-            # speed: a member alone needs no facts (most clusters have one member)
             kept = pool[0] if len(pool) == 1 else min(pool, key=lambda k: key(facts[k]))
             kept_ids.append(kept)
             results.update(self._cluster_results(group, kept, facts, links, threshold))

@@ -211,8 +211,8 @@ class Split(Stage):
             art = m.artifacts.get("dedup") or {}
             if art.get("signature") is not None:
                 sigs[m.id] = np.asarray(art["signature"], dtype=np.uint32)
-                if art.get("shingles") is not None:
-                    shingles[m.id] = np.asarray(art["shingles"], dtype=np.uint64)
+                if art.get("shingles") is not None:  # may still be in the ledger (read if compared)
+                    shingles[m.id] = art["shingles"]
         if threshold is not None and len(sigs) > 1:
             use_sh = shingles if len(shingles) == len(sigs) else None
             links += self._near_links(sigs, use_sh, state)
