@@ -237,8 +237,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .ledger import load_arrays
-    from .similarity import VERIFY_CHUNK, pair_estimates, pair_similarities, sorted_unique
+    from .similarity import VERIFY_CHUNK, involved_sets, pair_estimates, pair_similarities
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -259,13 +258,9 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     sel = est >= (threshold if shingles is None else floor)
     ia, ib, est = ia[sel], ib[sel], est[sel]
     sets, li, lj = None, ia, ib
-    if shingles is not None and len(ia):
-        # only the sets of files in some pair are read, those still in the ledger (a rerun's,
-        # ledger.StoredArray) in one go; pairs index them by position in ``involved``
-        involved = sorted_unique(np.concatenate([ia, ib]))
-        sets = [np.asarray(x, dtype=np.uint64)
-                for x in load_arrays([shingles[keys[p]] for p in involved.tolist()])]
-        li, lj = np.searchsorted(involved, ia), np.searchsorted(involved, ib)
+    if shingles is not None and len(ia):  # only the sets of files in some pair are read
+        sets, li, lj = involved_sets(keys, ia, ib, shingles)
+        sets = [np.asarray(x, dtype=np.uint64) for x in sets]
     out: list[tuple[str, str, float]] = []
     for lo in range(0, len(ia), VERIFY_CHUNK):  # memory: per-pair arrays a chunk at a time
         i, j = ia[lo:lo + VERIFY_CHUNK], ib[lo:lo + VERIFY_CHUNK]

@@ -514,10 +514,7 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
-    involved = sorted_unique(np.concatenate([i, j]))
-    # sets still in the ledger (a rerun's, ledger.StoredArray) are read in one go
-    sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
-    li, lj = np.searchsorted(involved, i), np.searchsorted(involved, j)
+    sets, li, lj = involved_sets(keys, i, j, shingles)
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
@@ -526,6 +523,16 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
         hits += [(keys[a], keys[b], sim) for a, b, sim in
                  zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist())]
     return _link_in_order(hits, threshold, skip)
+
+
+def involved_sets(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any
+                  ) -> tuple[list, np.ndarray, np.ndarray]:
+    """The sets ``shingles[keys[p]]`` of the keys in some pair ``(i[k], j[k])`` only, those
+    still in the ledger (``ledger.StoredArray``) read in one go, and the pairs as positions in
+    that list (what ``pair_similarities`` takes)."""
+    involved = sorted_unique(np.concatenate([i, j]))
+    sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
+    return sets, np.searchsorted(involved, i), np.searchsorted(involved, j)
 
 
 #: Candidate pairs compared per ``pair_similarities`` call in ``verify_index_pairs``.

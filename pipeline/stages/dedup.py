@@ -61,6 +61,12 @@ class _LazyFacts(dict):
         for k, sh in zip(todo, load_arrays([self._arts[k]["shingles"] for k in todo])):
             self._build(k, sh)
 
+    def shingles_of(self, k: str) -> Any:
+        """A member's shingle set: its fact's when built, else the artifact as it is (maybe a
+        ``StoredArray``, for the caller to read with others)."""
+        f = self.get(k)
+        return f.shingles if f is not None else self._arts[k]["shingles"]
+
     def __missing__(self, k: str) -> _Facts:
         return self._build(k, load_arrays([self._arts[k]["shingles"]])[0])
 
@@ -85,8 +91,7 @@ class _Shingles:
         self._facts = facts
 
     def __getitem__(self, k: str) -> Any:
-        f = self._facts.get(k)
-        return f.shingles if f is not None else self._facts._arts[k]["shingles"]
+        return self._facts.shingles_of(k)
 
 
 def _key_most_notes(m: dict) -> tuple:
