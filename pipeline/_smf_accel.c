@@ -1888,6 +1888,136 @@ done:
     return out;
 }
 
+PyDoc_STRVAR(band_pair_codes_doc,
+"band_pair_codes(sig, bands, band_lo, band_hi, is_new) -> bytes\n\n"
+"similarity._band_pairs for the bands band_lo..band_hi-1 at once: sig is a C-contiguous\n"
+"(n, num_perm) uint32 signature matrix, is_new n bytes (0 or 1). For each band, the rows\n"
+"whose band key (similarity.band_key) equals the key of a new row are bucketed by key, and\n"
+"every pair i < j of a bucket with a new member gives the code i * n + j, as int64 native\n"
+"bytes, band after band (a pair found in several bands appears once per band; callers merge\n"
+"with similarity.sorted_unique). Integer hashing and exact key equality only, so exactly\n"
+"the pairs of the numpy formulation.");
+
+typedef struct { uint64_t key; int64_t row; } KeyRow;
+
+static int keyrow_cmp(const void *x, const void *y) {
+    const KeyRow *a = (const KeyRow *)x, *b = (const KeyRow *)y;
+    if (a->key != b->key) return a->key < b->key ? -1 : 1;
+    return (a->row > b->row) - (a->row < b->row);
+}
+
+/* similarity.band_key of one row */
+static inline uint64_t row_band_key(const uint32_t *row, Py_ssize_t rows, Py_ssize_t band) {
+    uint64_t h = (uint64_t)rows;
+    const uint32_t *c = row + band * rows;
+    for (Py_ssize_t j = 0; j < rows; j++) h = fmix64(h * ROLL + (uint64_t)c[j]);
+    return h + (uint64_t)band * ROLL;
+}
+
+static PyObject *band_pair_codes(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 5) {
+        PyErr_SetString(PyExc_TypeError, "band_pair_codes takes sig, bands, band_lo, band_hi, is_new");
+        return NULL;
+    }
+    Py_ssize_t bands = PyLong_AsSsize_t(args[1]), lo = PyLong_AsSsize_t(args[2]),
+               hi = PyLong_AsSsize_t(args[3]);
+    if (PyErr_Occurred()) return NULL;
+    Py_buffer sv, nv;
+    if (PyObject_GetBuffer(args[0], &sv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_ND) < 0) return NULL;
+    if (PyObject_GetBuffer(args[4], &nv, PyBUF_C_CONTIGUOUS) < 0) {
+        PyBuffer_Release(&sv);
+        return NULL;
+    }
+    PyObject *out = NULL;
+    KeyRow *hits = NULL;
+    uint64_t *table = NULL;
+    unsigned char *used = NULL;
+    int64_t *codes = NULL;
+    const char *f = sv.format ? sv.format : "B";
+    char code = f[0] ? f[strlen(f) - 1] : 'B';
+    if (sv.ndim != 2 || sv.itemsize != 4 || (code != 'I' && code != 'L')) {
+        PyErr_SetString(PyExc_ValueError, "band_pair_codes: sig must be a 2-d uint32 array");
+        goto done;
+    }
+    Py_ssize_t n = sv.shape[0], perm = sv.shape[1];
+    if (bands <= 0 || perm % bands || lo < 0 || hi > bands || lo > hi || nv.len != n) {
+        PyErr_SetString(PyExc_ValueError, "band_pair_codes: bands must divide num_perm, "
+                        "0 <= band_lo <= band_hi <= bands, and is_new hold one byte per row");
+        goto done;
+    }
+    Py_ssize_t rows = perm / bands;
+    const uint32_t *sig = (const uint32_t *)sv.buf;
+    const unsigned char *is_new = (const unsigned char *)nv.buf;
+    Py_ssize_t n_new = 0;
+    for (Py_ssize_t i = 0; i < n; i++) n_new += is_new[i] != 0;
+    Py_ssize_t cap = 1;  /* open-addressing set of the new rows' keys, at most half full */
+    while (cap < 2 * n_new) cap <<= 1;
+    int shift = 64;
+    for (Py_ssize_t c = cap; c > 1; c >>= 1) shift--;
+    table = (uint64_t *)PyMem_Malloc((size_t)cap * sizeof(uint64_t));
+    used = (unsigned char *)PyMem_Malloc((size_t)cap);
+    hits = (KeyRow *)PyMem_Malloc((size_t)(n ? n : 1) * sizeof(KeyRow));
+    Py_ssize_t n_codes = 0, room = 1024;
+    codes = (int64_t *)PyMem_Malloc((size_t)room * sizeof(int64_t));
+    if (!table || !used || !hits || !codes) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    for (Py_ssize_t band = lo; band < hi && n_new; band++) {
+        memset(used, 0, (size_t)cap);
+        for (Py_ssize_t i = 0; i < n; i++) {
+            if (!is_new[i]) continue;
+            uint64_t k = row_band_key(sig + i * perm, rows, band);
+            size_t s = shift < 64 ? (size_t)((k * ROLL) >> shift) : 0;
+            while (used[s] && table[s] != k) s = (s + 1) & (size_t)(cap - 1);
+            used[s] = 1;
+            table[s] = k;
+        }
+        Py_ssize_t m = 0;
+        for (Py_ssize_t i = 0; i < n; i++) {
+            uint64_t k = row_band_key(sig + i * perm, rows, band);
+            size_t s = shift < 64 ? (size_t)((k * ROLL) >> shift) : 0;
+            while (used[s] && table[s] != k) s = (s + 1) & (size_t)(cap - 1);
+            if (used[s]) {
+                hits[m].key = k;
+                hits[m].row = (int64_t)i;
+                m++;
+            }
+        }
+        qsort(hits, (size_t)m, sizeof(KeyRow), keyrow_cmp);
+        for (Py_ssize_t a = 0; a < m;) {
+            Py_ssize_t b = a + 1;
+            while (b < m && hits[b].key == hits[a].key) b++;
+            for (Py_ssize_t x = a; x < b; x++)
+                for (Py_ssize_t y = x + 1; y < b; y++) {
+                    if (!is_new[hits[x].row] && !is_new[hits[y].row]) continue;
+                    if (n_codes == room) {
+                        room *= 2;
+                        int64_t *grown = (int64_t *)PyMem_Realloc(codes, (size_t)room * sizeof(int64_t));
+                        if (!grown) {
+                            PyErr_NoMemory();
+                            goto done;
+                        }
+                        codes = grown;
+                    }
+                    codes[n_codes++] = hits[x].row * (int64_t)n + hits[y].row;
+                }
+            a = b;
+        }
+    }
+    out = PyBytes_FromStringAndSize((const char *)codes, n_codes * (Py_ssize_t)sizeof(int64_t));
+done:
+    PyMem_Free(table);
+    PyMem_Free(used);
+    PyMem_Free(hits);
+    PyMem_Free(codes);
+    PyBuffer_Release(&sv);
+    PyBuffer_Release(&nv);
+    return out;
+}
+
+
 static PyMethodDef methods[] = {
     {"read_track", (PyCFunction)(void (*)(void))read_track, METH_FASTCALL, read_track_doc},
     {"note_table", (PyCFunction)(void (*)(void))note_table, METH_FASTCALL, note_table_doc},
@@ -1905,6 +2035,8 @@ static PyMethodDef methods[] = {
     {"grid_count", (PyCFunction)(void (*)(void))grid_count, METH_FASTCALL, grid_count_doc},
     {"fold_count", (PyCFunction)(void (*)(void))fold_count, METH_FASTCALL, fold_count_doc},
     {"minhash32", (PyCFunction)(void (*)(void))minhash32, METH_FASTCALL, minhash32_doc},
+    {"band_pair_codes", (PyCFunction)(void (*)(void))band_pair_codes, METH_FASTCALL,
+     band_pair_codes_doc},
     {"overlap_counts", (PyCFunction)(void (*)(void))overlap_counts, METH_FASTCALL,
      overlap_counts_doc},
     {"table_group_events", (PyCFunction)table_group_events, METH_O,

@@ -389,19 +389,35 @@ def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
     return est
 
 
-def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray) -> np.ndarray:
+def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
+                      compiled: bool = True) -> np.ndarray:
     """Sorted unique codes ``i * n + j`` (``i < j``) of the rows of ``sig`` sharing a band,
     keeping pairs with at least one ``is_new`` row. One band's keys at a time, merged every
-    8 bands, so a pair found in many bands is held about once (the whole (rows x bands) key
-    table and its temporaries were several hundred MB at 100,000 files)."""
+    ``_MERGE_BANDS`` bands, so a pair found in many bands is held about once (the whole
+    (rows x bands) key table and its temporaries were several hundred MB at 100,000 files).
+    With few new rows (a rerun) and the extension built, ``_smf_accel.band_pair_codes`` does
+    each block of bands in one call (the same codes: integer hashing and key equality);
+    ``compiled=False`` runs the numpy formulation, the specification. Speed: a rerun's dedup
+    and split each band every stored signature; 10,000 signatures with 100 new took 42 ms in
+    numpy and 12 ms in the kernel. With many new rows numpy's sort is faster (57 vs 87 ms)."""
+    few_new = int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
+    kernel = _compiled("band_pair_codes") if compiled and few_new else None
+    if kernel is not None:
+        sig = np.ascontiguousarray(sig, dtype=np.uint32)
+        new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)
     codes = np.zeros(0, dtype=np.int64)
-    found: list[np.ndarray] = []
-    for band in range(bands):
-        found.append(_band_pairs(band_key(sig, bands, band), is_new))
-        if len(found) == 8 or band == bands - 1:
-            codes = sorted_unique(np.concatenate([codes, *found]))
-            found = []
+    for lo in range(0, bands, _MERGE_BANDS):
+        hi = min(bands, lo + _MERGE_BANDS)
+        if kernel is not None:
+            found = [np.frombuffer(kernel(sig, bands, lo, hi, new_bytes), dtype=np.int64)]
+        else:
+            found = [_band_pairs(band_key(sig, bands, band), is_new) for band in range(lo, hi)]
+        codes = sorted_unique(np.concatenate([codes, *found]))
     return codes
+
+
+#: Bands whose pair codes are merged at once (a pair shares many bands: memory).
+_MERGE_BANDS = 8
 
 
 def sorted_unique(a: np.ndarray) -> np.ndarray:

@@ -191,6 +191,52 @@ def test_overlap_kernel_names_bad_input():
         kernel([np.arange(4, dtype=np.float64)], np.array([0], np.int64), np.array([0], np.int64), 10)
 
 
+def _banded_brute_force(sig, bands, is_new):
+    """LSH banding by its definition (Mining of Massive Datasets, ch. 3: a pair is a candidate
+    when any band of its two signatures is equal), pair by pair, as codes i * n + j."""
+    n, rows = len(sig), sig.shape[1] // bands
+    return [i * n + j for i in range(n) for j in range(i + 1, n)
+            if (is_new[i] or is_new[j])
+            and any((sig[i, b * rows:(b + 1) * rows] == sig[j, b * rows:(b + 1) * rows]).all()
+                    for b in range(bands))]
+
+
+@pytest.mark.parametrize("n,bands,seed", [(40, 16, 0), (120, 32, 1), (300, 64, 2)])
+def test_incremental_banding_kernel_equals_the_definition_and_numpy(n, bands, seed):
+    """With few new rows (one in 16 or fewer) ``banded_pair_codes`` takes the compiled kernel
+    when built; its codes equal the numpy formulation's and banding's definition, on
+    signatures with small value ranges (buckets of many rows, pairs sharing many bands)."""
+    from pipeline.similarity import banded_pair_codes
+
+    rng = np.random.default_rng(seed)
+    sig = rng.integers(0, 3, (n, 128), dtype=np.uint32)
+    for few in (1, max(1, n // 16)):
+        is_new = np.zeros(n, dtype=bool)
+        is_new[rng.choice(n, few, replace=False)] = True
+        want = _banded_brute_force(sig, bands, is_new)
+        assert banded_pair_codes(sig, bands, is_new, compiled=False).tolist() == want
+        assert banded_pair_codes(sig, bands, is_new).tolist() == want
+        # not C-contiguous (a column slice): the same codes
+        wide = np.hstack([sig, sig])[:, :128]
+        assert banded_pair_codes(wide, bands, is_new).tolist() == want
+    assert banded_pair_codes(sig, bands, np.zeros(n, dtype=bool)).tolist() == []
+
+
+@pytest.mark.skipif(not smf.USE_ACCEL, reason="the compiled kernels are not built")
+def test_banding_kernel_names_bad_input():
+    kernel = smf._smf_accel.band_pair_codes
+    sig = np.zeros((4, 8), dtype=np.uint32)
+    new = np.zeros(4, dtype=np.uint8)
+    with pytest.raises(ValueError, match="2-d uint32"):
+        kernel(sig.astype(np.uint64), 4, 0, 4, new)
+    with pytest.raises(ValueError, match="bands must divide num_perm"):
+        kernel(sig, 3, 0, 3, new)
+    with pytest.raises(ValueError, match="one byte per row"):
+        kernel(sig, 4, 0, 4, new[:3])
+    with pytest.raises(ValueError, match="band_lo <= band_hi"):
+        kernel(sig, 4, 2, 5, new)
+
+
 def _pair_by_pair(pairs, sets, threshold, skip):
     """The plain loop both verify functions must equal: set_similarity one pair at a time,
     skipping pairs already joined."""
