@@ -81,6 +81,9 @@ TARGETS: tuple[tuple[str, str, str, float], ...] = (
     ("large.x_decode_all", "large: pipeline time / decode-only time, all workers (x)", "<=", 4.0),
     ("rerun.new_1pct_fraction", "rerun with 1% new files / full run", "<=", 0.05),
     ("rerun.unchanged_fraction", "rerun with nothing changed / full run", "<=", 0.02),
+    ("memory.rerun_large.new_1pct_fraction", "rerun with 1% new files / full run, larger memory size", "<=", 0.05),
+    ("memory.rerun_large.unchanged_fraction", "rerun with nothing changed / full run, larger memory size",
+     "<=", 0.02),
     ("memory.peak_mb_large", "peak memory of the full run at the larger size (MB)", "<=", 1024.0),
 )
 
@@ -647,8 +650,6 @@ class Bench:
     def rerun(self) -> dict[str, Any]:
         base_n = self.scale.mem[0]
         base = ensure_chunked(self.scratch / "corpora" / "mem", base_n, base_n, SEEDS["mem"])[0]
-        n_new = max(1, base_n // 100)
-        new = ensure_corpus(self.scratch / "corpora" / f"rerun_new_{n_new}", n_new, SEEDS["rerun_new"])
         root = self.scratch / "runs" / "rerun"
         shutil.rmtree(root, ignore_errors=True)
         inp, out = root / "input", root / "output"
@@ -656,13 +657,23 @@ class Bench:
         full = run_pipeline(self.config, inp, out, "auto",
                            timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
         self.log(f"[rerun] full run of {full['files']} files: {full['wall_s']} s")
+        return self._reruns(full, inp, out, base_n)
+
+    def _reruns(self, full: dict[str, Any], inp: Path, out: Path, base_n: int) -> dict[str, Any]:
+        """After a full run of ``base_n`` files from ``inp`` into ``out``: a rerun with 1% new
+        files added to ``inp``, then one with nothing changed, as fractions of the full run."""
+        n_new = max(1, base_n // 100)
+        new = ensure_corpus(self.scratch / "corpora" / f"rerun_new_{n_new}", n_new, SEEDS["rerun_new"])
+        if full.get("timed_out"):
+            return {"full": full, "new_files": n_new, "new_1pct_fraction": None,
+                    "unchanged_fraction": None}
         link_tree(new, inp / "new")
         added = run_pipeline(self.config, inp, out, "auto", fresh_output=False,
                            timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
-        self.log(f"[rerun] +{n_new} new files: {added['wall_s']} s")
+        self.log(f"[rerun] {full['files']} files +{n_new} new: {added['wall_s']} s")
         same = run_pipeline(self.config, inp, out, "auto", fresh_output=False,
                            timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
-        self.log(f"[rerun] nothing changed: {same['wall_s']} s")
+        self.log(f"[rerun] {full['files'] + n_new} files, nothing changed: {same['wall_s']} s")
         done = not any(r.get("timed_out") for r in (full, added, same))
         return {"full": full, "new_1pct": added, "unchanged": same, "new_files": n_new,
                 "new_1pct_fraction": round(added["wall_s"] / full["wall_s"], 4) if done else None,
@@ -672,7 +683,10 @@ class Bench:
         small_n, large_n = self.scale.mem
         chunks = ensure_chunked(self.scratch / "corpora" / "mem", large_n, small_n, SEEDS["mem"])
         runs = {}
-        for n, inp in ((small_n, chunks[0]), (large_n, chunks[0].parent)):
+        large_input = self.scratch / "runs" / f"mem_{large_n}_input"
+        shutil.rmtree(large_input, ignore_errors=True)
+        link_tree(chunks[0].parent, large_input / "base")  # the reruns below add files to it
+        for n, inp in ((small_n, chunks[0]), (large_n, large_input)):
             r = run_pipeline(self.config, inp, self.scratch / "runs" / f"mem_{n}", "auto",
                            timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
             r["peak_mb"] = max(r["peak_pss_tree_mb"], r["peak_rss_main_mb"])
@@ -683,11 +697,15 @@ class Bench:
         a, b = runs[str(small_n)], runs[str(large_n)]
         per_file_kb = ((b["peak_mb"] - a["peak_mb"]) * 1024 / (b["files"] - a["files"])
                        if b["files"] > a["files"] else None)
+        # the reruns of the issue's users' corpus size, after the larger full run
+        reruns = self._reruns(b, large_input, self.scratch / "runs" / f"mem_{large_n}", large_n)
+        reruns.pop("full")
         # a run stopped at the time limit had not reached its peak: its figure is a lower bound
         return {"runs": runs, "peak_mb_small": a["peak_mb"],
                 "peak_mb_large": b["peak_mb"], "large_timed_out": bool(b.get("timed_out")),
                 "sizes": [small_n, large_n],
-                "kb_per_file": round(per_file_kb, 2) if per_file_kb is not None else None}
+                "kb_per_file": round(per_file_kb, 2) if per_file_kb is not None else None,
+                "rerun_large": reruns}
 
     def dedup(self) -> dict[str, Any]:
         try:
@@ -858,6 +876,15 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
                 f"{run['peak_rss_main_mb']:,.0f} / {run['peak_rss_worker_mb']:,.0f}")
             add(f"    throughput (files/s)", run["files_per_s"])
         add("  growth per file (KB)", m["kb_per_file"])
+        rl = m.get("rerun_large") or {}
+        if rl.get("new_1pct_fraction") is not None:
+            full = m["runs"][str(m["sizes"][1])]
+            rows.append((f"reruns on {full['files']:,} files (after the full run above, "
+                         f"{full['wall_s']:,.1f} s)", ""))
+            add(f"  rerun with {rl['new_files']:,} new files (s)", rl["new_1pct"]["wall_s"])
+            add("  ... as a fraction of the full run", f"{100 * rl['new_1pct_fraction']:.1f}%")
+            add("  rerun with nothing changed (s)", rl["unchanged"]["wall_s"])
+            add("  ... as a fraction of the full run", f"{100 * rl['unchanged_fraction']:.1f}%")
     d = results.get("dedup")
     width = max([len(a) for a, _ in rows] + [40]) + 2
     lines = [f"midisift bench  {info['date']}  {info['machine']['cpu']} ({info['machine']['cores']} cores, "

@@ -22,7 +22,7 @@ import hashlib
 import sqlite3
 import sys
 import time
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
@@ -561,7 +561,7 @@ class Runner:
                 saved = ledger.state_for(st.name)
                 last = None  # the last run's results of this stage, when it stored them
                 if not self.fresh and saved.get(CORPUS_RESULTS) == self._chains[st.name]:
-                    last = _LastResults(ledger, st.name, st.fingerprint, self._compactor(st.name))
+                    last = _last_results(ledger, st.name, st.fingerprint, self._compactor(st.name))
                 state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
                                                       "previous_results": last})
                 bar = self._bar(st.name, len(members))
@@ -655,34 +655,14 @@ def _last_fingerprint(fp: str) -> str:
     return f"{fp}:last-run"
 
 
-class _LastResults(Mapping):
-    """A corpus stage's results of the last run, by member id, read from the ledger on first
-    use (values stay JSON text until read). A stage returns such a record as it is for a member
-    whose result did not change; the runner then neither compacts nor stores it again."""
-
-    def __init__(self, ledger: Ledger, stage: str, fingerprint: str, compactor: Compactor):
-        self._args = (ledger, stage, fingerprint, compactor)
-        self._rows: dict[str, Result] | None = None
-
-    def _load(self) -> dict[str, Result]:
-        if self._rows is None:
-            ledger, stage, fp, compactor = self._args
-            rows = ledger.results_for(stage, _last_fingerprint(fp), compactor.make_stored,
-                                      values_as_text=True)
-            self._rows = {sha[:16]: r for sha, r in rows.items()}
-        return self._rows
-
-    def __getitem__(self, key: str) -> Result:
-        return self._load()[key]
-
-    def __contains__(self, key: object) -> bool:
-        return key in self._load()
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self._load())
-
-    def __len__(self) -> int:
-        return len(self._load())
+def _last_results(ledger: Ledger, stage: str, fingerprint: str, compactor: Compactor) -> dict[str, Result]:
+    """A corpus stage's results of the last run, by member id (values stay JSON text until
+    read). A stage returns such a record as it is for a member whose result did not change;
+    the runner then neither compacts nor stores it again. Read when the stage starts: a stage
+    given them looks up nearly every member."""
+    rows = ledger.results_for(stage, _last_fingerprint(fingerprint), compactor.make_stored,
+                              values_as_text=True)
+    return {sha[:16]: r for sha, r in rows.items()}
 
 
 class _NoBar:

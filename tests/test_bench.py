@@ -22,7 +22,7 @@ TINY = bench.Scale(small=12, large=0, peer_small=2, peer_large=0, mem=(10, 20), 
 def doc(tmp_path_factory: pytest.TempPathFactory) -> dict:
     scratch = tmp_path_factory.mktemp("bench")
     out = scratch / "bench.json"
-    result = bench.run_bench(["small", "peer", "rerun"], TINY, scratch, out, log=lambda s: None)
+    result = bench.run_bench(["small", "peer", "rerun", "memory"], TINY, scratch, out, log=lambda s: None)
     result["scratch"] = scratch
     result["written"] = json.loads(out.read_text())
     return result
@@ -31,7 +31,7 @@ def doc(tmp_path_factory: pytest.TempPathFactory) -> dict:
 def test_json_matches_the_returned_results(doc: dict) -> None:
     written = doc["written"]
     assert written["table"] == doc["table"]
-    assert set(written["results"]) == {"small", "peer", "rerun"}
+    assert set(written["results"]) == {"small", "peer", "rerun", "memory"}
     assert written["info"]["machine"]["cores"] >= 1
     for row in written["targets"]:
         assert isinstance(row["met"], bool)
@@ -69,6 +69,20 @@ def test_reruns_reuse_the_ledger(doc: dict) -> None:
     assert 0 < r["new_1pct"]["counts"]["computed"] <= r["new_files"]
     assert r["unchanged"]["counts"]["computed"] == 0
     assert r["unchanged"]["counts"]["reused"] == r["unchanged"]["counts"]["contents"]
+
+
+def test_memory_section_reruns_its_larger_run(doc: dict) -> None:
+    m = doc["results"]["memory"]
+    small_n, large_n = TINY.mem
+    assert [m["runs"][str(n)]["files"] for n in (small_n, large_n)] == [small_n, large_n]
+    r = m["rerun_large"]
+    assert r["new_1pct"]["files"] == large_n + r["new_files"]
+    assert 0 < r["new_1pct"]["counts"]["computed"] <= r["new_files"]
+    assert r["unchanged"]["counts"]["computed"] == 0
+    assert r["new_1pct_fraction"] == round(r["new_1pct"]["wall_s"] / m["runs"][str(large_n)]["wall_s"], 4)
+    assert f"reruns on {large_n} files" in doc["table"]
+    # the corpus the memory runs read was not touched by the files the rerun added
+    assert len(bench.midi_files(doc["scratch"] / "corpora" / "mem")) == large_n
 
 
 def test_peer_accounts_for_every_file(doc: dict) -> None:
