@@ -878,9 +878,9 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
                 add(f"  {int(n):,} files (MB)", f">= {_num(run['peak_mb'])} ({_unfinished(run)})")
                 continue
             add(f"  {int(n):,} files (MB)", run["peak_mb"])
-            add(f"    main process RSS / largest worker RSS (MB)",
+            add("    main process RSS / largest worker RSS (MB)",
                 f"{run['peak_rss_main_mb']:,.0f} / {run['peak_rss_worker_mb']:,.0f}")
-            add(f"    throughput (files/s)", run["files_per_s"])
+            add("    throughput (files/s)", run["files_per_s"])
         add("  growth per file (KB)", m["kb_per_file"])
         rl = m.get("rerun_large") or {}
         if rl.get("new_1pct_fraction") is not None:

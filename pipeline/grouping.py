@@ -29,7 +29,10 @@ from __future__ import annotations
 
 import hashlib
 from collections import defaultdict
-from typing import Hashable, Iterable, Mapping
+from typing import TYPE_CHECKING, Hashable, Iterable, Mapping
+
+if TYPE_CHECKING:  # the annotations' numpy; the functions on arrays import it themselves
+    import numpy as np
 
 Move = tuple[str, str, str, str]   # (member_id, from_part, to_part, reason)
 

@@ -240,8 +240,8 @@ class Runner:
         t_start = time.perf_counter()
         cfg = self.config
         if not cfg.input.is_dir():
-            raise MidisiftError(f"the input folder does not exist or is not a folder; check 'input' in the config "
-                                f"or --input", file=str(cfg.input))
+            raise MidisiftError("the input folder does not exist or is not a folder; check 'input' in the config "
+                                "or --input", file=str(cfg.input))
         check_folders(cfg.input, cfg.output)
         out = cfg.output
         try:

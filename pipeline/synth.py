@@ -288,7 +288,6 @@ def compose(rng: random.Random, style: Style, *, target_notes: int | None = None
     pulse = tpb * 4 // den
     bar = pulse * num
     beat = pulse * per_beat
-    beats_per_bar = num // per_beat
     scale = _scale(style.mode, style.harmonic)
     tonic = style.tonic_pc
     seventh = rng.random() < 0.6

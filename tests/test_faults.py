@@ -109,6 +109,7 @@ def test_worker_faults_cost_one_file_each_and_are_not_retried(corpus, config, ba
     report = run(config, corpus, out)
     rows = manifest(out)
     assert sorted(rows) == sorted(clean)  # every input file has its one row
+    assert report.files == len(clean)
     for kind, src in victims.items():
         r = rows[src]
         assert (r["status"], r["stage"], r["reason"]) == ("dropped", "validate", FAULTS[kind]), kind
@@ -117,6 +118,9 @@ def test_worker_faults_cost_one_file_each_and_are_not_retried(corpus, config, ba
     victim_shas = {rows[s]["sha256"] for s in victims.values()}
     assert ({s for s, r in rows.items() if r["reason"] in FAULTS.values()}
             == {s for s, r in rows.items() if r["sha256"] in victim_shas})
+    # the printed report counts the faulted files as the manifest does
+    assert (sum(n for (_, reason), n in report.dropped.items() if reason in FAULTS.values())
+            == sum(1 for r in rows.values() if r["reason"] in FAULTS.values()))
     assert_clean(out)
 
     # a rerun does not retry them (the hook is still armed: a retry would fault again)

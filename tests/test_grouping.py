@@ -7,7 +7,6 @@ data"; quoted from memory). Checked property-based on random group structures wi
 """
 from __future__ import annotations
 
-import random
 from collections import defaultdict
 
 import numpy as np

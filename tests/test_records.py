@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import pickle
 
-from pipeline.records import Compactor, Result, TrailValues
+from pipeline.records import Compactor, TrailValues
 from pipeline.stages import StageResult
 
 PLAIN = [

@@ -3,8 +3,6 @@ from __future__ import annotations
 
 import json
 
-import pytest
-
 from fixtures_midi import random_midi
 from pipeline.score import Piece
 from pipeline.stages.base import REGISTRY, FileContext

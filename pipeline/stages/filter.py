@@ -47,7 +47,7 @@ def _fraction(v: Any) -> str | None:
     if v is None:
         return None
     if not _is_num(v) or not 0 <= v <= 1:
-        return f"max_drum_fraction must be between 0 and 1 or null (off)"
+        return "max_drum_fraction must be between 0 and 1 or null (off)"
     return None
 
 
@@ -56,7 +56,7 @@ def _range_pair(v: Any) -> str | None:
         return None
     if (not isinstance(v, (list, tuple)) or len(v) != 2
             or not all(x is None or (_is_num(x) and x >= 0) for x in v)):
-        return f"notes_per_s must be a [low, high] pair of numbers >= 0 (null for no bound)"
+        return "notes_per_s must be a [low, high] pair of numbers >= 0 (null for no bound)"
     lo, hi = v
     if lo is not None and hi is not None and lo > hi:
         return f"notes_per_s low {lo} is above high {hi}; write [low, high]"

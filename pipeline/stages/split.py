@@ -56,13 +56,13 @@ def _check_threshold(v: Any) -> str | None:
     if v is None:
         return None
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 < v <= 1:
-        return f"group_threshold must be in (0, 1] or null (no near-duplicate grouping)"
+        return "group_threshold must be in (0, 1] or null (no near-duplicate grouping)"
     return None
 
 
 def _check_fields(v: Any) -> str | None:
     if not isinstance(v, (list, tuple)) or not all(isinstance(x, str) for x in v):
-        return f"group_fields must be a list of manifest field names"
+        return "group_fields must be a list of manifest field names"
     return None
 
 
