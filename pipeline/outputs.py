@@ -413,6 +413,8 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
                   "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
     if split_stage is not None:
         split_info["targets"] = split_stage.opts.get("ratios")
+        # the parts in the config's order (summary.json is written with sorted keys)
+        split_info["part_order"] = list(split_stage.opts.get("ratios") or ())
         split_info.update(walk.states.get("split", {}).get("summary", {}) and
                           {"stage": walk.states["split"]["summary"]})
     counts = {"files": tally.files, "kept": tally.kept, "dropped": tally.files - tally.kept,

@@ -4,6 +4,14 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Iterable
+
+
+def in_part_order(counts: dict[str, int], configured: Iterable[str] | None) -> dict[str, int]:
+    """Per-part counts in the order the config names the parts (others after, sorted), so a
+    run and the nothing-changed check that follows it print the parts alike."""
+    order = [p for p in (configured or ()) if p in counts]
+    return {p: counts[p] for p in order + sorted(p for p in counts if p not in order)}
 
 
 @dataclass
@@ -21,13 +29,15 @@ class RunReport:
     notes: list[str]
 
     def table(self) -> str:
-        lines = [f"{'files in':<34}{self.files:>8}", f"{'kept':<34}{self.kept:>8}"]
-        for (stage, reason), n in sorted(self.dropped.items(), key=lambda kv: (-kv[1], kv[0])):
-            lines.append(f"{'dropped  ' + stage + ' / ' + reason:<34}{n:>8}")
-        for part, n in self.parts.items():
-            lines.append(f"{'split  ' + part:<34}{n:>8}")
-        lines.append(f"{'contents decoded / reused':<34}{self.computed:>8} / {self.cached}")
-        lines.append(f"{'seconds':<34}{self.timings.get('total', 0.0):>8.2f}")
+        drops = [(f"dropped  {stage} / {reason}", n)
+                 for (stage, reason), n in sorted(self.dropped.items(), key=lambda kv: (-kv[1], kv[0]))]
+        parts = [(f"split  {part}", n) for part, n in self.parts.items()]
+        # the label column fits the longest label (a long reason code or part name)
+        w = max([34] + [len(label) + 2 for label, _ in drops + parts])
+        lines = [f"{'files in':<{w}}{self.files:>8}", f"{'kept':<{w}}{self.kept:>8}"]
+        lines += [f"{label:<{w}}{n:>8}" for label, n in drops + parts]
+        lines.append(f"{'contents decoded / reused':<{w}}{self.computed:>8} / {self.cached}")
+        lines.append(f"{'seconds':<{w}}{self.timings.get('total', 0.0):>8.2f}")
         lines.append(f"output: {self.output}")
         lines.extend(self.notes)
         return "\n".join(lines)

@@ -35,7 +35,7 @@ from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger, canonical_json, stored_artifacts, stored_result, thresholds_json
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
-from .report import RunReport
+from .report import RunReport, in_part_order
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult, stage_class
@@ -364,7 +364,9 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
-        parts = {p: len(v) for p, v in placed.parts.items()}
+        split = next((s for s in self.stages if s.name == "split"), None)
+        parts = in_part_order({p: len(v) for p, v in placed.parts.items()},
+                              split.opts.get("ratios") if split is not None else None)
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes)
 

@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from . import __version__
-from .report import RunReport
+from .report import RunReport, in_part_order
 
 NOTE = "nothing changed since the last run: outputs are up to date"
 
@@ -72,9 +72,10 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
     dropped = {(stage, reason): n for stage, info in summary.get("stages", {}).items()
                for reason, n in info.get("dropped", {}).items()}
     counts = summary["counts"]
+    split = summary.get("split", {})
+    parts = in_part_order(dict(split.get("outputs", {})), split.get("part_order"))
     return RunReport(output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
-                     counts.get("contents", 0), dict(summary.get("split", {}).get("outputs", {})),
-                     notes + [NOTE])
+                     counts.get("contents", 0), parts, notes + [NOTE])
 
 
 def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,

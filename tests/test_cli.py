@@ -21,6 +21,25 @@ def test_run_prints_summary_table(tmp_path, capsys):
     assert (out / "manifest.jsonl").is_file() and (out / "splits" / "all.txt").is_file()
 
 
+def test_run_and_up_to_date_tables_align_and_list_parts_in_config_order(tmp_path, capsys):
+    """The table a run prints and the one of the nothing-changed rerun after it: one column of
+    counts whatever the length of a reason code, parts in the order the config names them
+    (here not alphabetical: train, valid, test)."""
+    out = tmp_path / "out"
+    args = ["run", str(ROOT / "configs" / "default.yaml"), "--input", str(ROOT / "sample_corpus"),
+            "--output", str(out), "--workers", "1"]
+    tables = []
+    for _ in range(2):
+        assert main(args) == 0
+        tables.append(capsys.readouterr().out)
+    assert "nothing changed" in tables[1]
+    for text in tables:
+        rows = [line for line in text.splitlines() if line.startswith(("files in", "kept", "dropped", "split"))]
+        assert any("unsupported_format" in r for r in rows)  # the demo corpus's longest reason code
+        assert len({len(r) for r in rows}) == 1, rows  # counts right-aligned in one column
+        assert [r.split()[1] for r in rows if r.startswith("split")] == ["train", "valid", "test"]
+
+
 def test_bad_usage_exits_2():
     proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "run"], capture_output=True, text=True, cwd=ROOT)
     assert proc.returncode == 2
