@@ -100,6 +100,24 @@ def test_files_mido_misreads_are_not_compared():
     assert decode(data).notes["start"][0] == 100
 
 
+def test_running_status_after_a_sysex_is_not_compared():
+    # SMF 1.0: a sysex event cancels running status; pipeline/smf.py keeps the channel status
+    # in force (its documented policy), mido 1.3.3 takes 0xF0 as the running status and reads
+    # the byte after the data byte as a sysex length. Found by the long fuzz run (seed 0): a
+    # note whose note-off came by running status after a sysex; mido left it hanging.
+    body = (b"\x00\x90\x3c\x64" + b"\x30\xf0\x02\x7e\xf7" + b"\x30\x3c\x00"
+            + b"\x40\xff\x2f\x00")  # note on at 0, sysex at 48, note-off at 96, end at 160
+    data = fuzz.Doc(0, 96, [[(b"", body)]]).to_bytes()
+    from pipeline.smf import decode
+    assert decode(data).notes["end"].tolist() == [96]  # our policy: the note-off counts
+    assert mido_rows(data) == [(0, 160, 0x3C, 0x64, 0, 0, 0)]  # mido: hanging to the end
+    verdict = CHECKER.check(data)
+    assert verdict.reason == "kept" and not verdict.compared
+    # the same note-off with its status byte is compared (and agrees)
+    plain = fuzz.Doc(0, 96, [[(b"", body.replace(b"\x30\x3c\x00", b"\x30\x90\x3c\x00"))]]).to_bytes()
+    assert CHECKER.check(plain).compared
+
+
 def test_fuzzed_corpus_through_a_whole_run(tmp_path):
     inp = tmp_path / "in"
     inp.mkdir()
