@@ -1914,6 +1914,15 @@ static inline uint64_t row_band_key(const uint32_t *row, Py_ssize_t rows, Py_ssi
     return h + (uint64_t)band * ROLL;
 }
 
+/* the slot of key k in an open-addressing table of cap = 2**(64 - shift) slots: its own slot
+ * if k is there, else the free slot where it would go (the table is never full) */
+static inline size_t key_slot(const uint64_t *table, const unsigned char *used, Py_ssize_t cap,
+                              int shift, uint64_t k) {
+    size_t s = shift < 64 ? (size_t)((k * ROLL) >> shift) : 0;
+    while (used[s] && table[s] != k) s = (s + 1) & (size_t)(cap - 1);
+    return s;
+}
+
 static PyObject *band_pair_codes(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
     if (nargs != 5) {
@@ -1969,17 +1978,14 @@ static PyObject *band_pair_codes(PyObject *self, PyObject *const *args, Py_ssize
         for (Py_ssize_t i = 0; i < n; i++) {
             if (!is_new[i]) continue;
             uint64_t k = row_band_key(sig + i * perm, rows, band);
-            size_t s = shift < 64 ? (size_t)((k * ROLL) >> shift) : 0;
-            while (used[s] && table[s] != k) s = (s + 1) & (size_t)(cap - 1);
+            size_t s = key_slot(table, used, cap, shift, k);
             used[s] = 1;
             table[s] = k;
         }
         Py_ssize_t m = 0;
         for (Py_ssize_t i = 0; i < n; i++) {
             uint64_t k = row_band_key(sig + i * perm, rows, band);
-            size_t s = shift < 64 ? (size_t)((k * ROLL) >> shift) : 0;
-            while (used[s] && table[s] != k) s = (s + 1) & (size_t)(cap - 1);
-            if (used[s]) {
+            if (used[key_slot(table, used, cap, shift, k)]) {
                 hits[m].key = k;
                 hits[m].row = (int64_t)i;
                 m++;

@@ -364,9 +364,8 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
-        split = next((s for s in self.stages if s.name == "split"), None)
         parts = in_part_order({p: len(v) for p, v in placed.parts.items()},
-                              split.opts.get("ratios") if split is not None else None)
+                              summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes)
 
