@@ -36,6 +36,9 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--naming", choices=("plain", "workshop"), default="plain",
                    help="file names: plain numbered folders, or the demo corpus's invented workshop library")
     s.add_argument("--planted", type=float, help="fraction of files that are planted cases (default: the generator's mix)")
+    s.add_argument("--force", action="store_true",
+                   help="write into a folder that is not empty (files of the same names are "
+                        "overwritten; nothing is deleted)")
 
     lk = sub.add_parser("leakage", help="audit a split for near-duplicates across its parts")
     lk.add_argument("output", nargs="?", help="an output folder of ours (splits/*.txt)")
@@ -85,7 +88,8 @@ def _synth(args: argparse.Namespace) -> int:
         raise UsageError(f"--count must be at least 1, got {args.count}")
     if args.planted is not None and not 0 <= args.planted <= 1:
         raise UsageError(f"--planted is a fraction from 0 to 1, got {args.planted}")
-    main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming, planted=args.planted)
+    main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming, planted=args.planted,
+               force=args.force)
     return 0
 
 

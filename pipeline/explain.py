@@ -72,7 +72,7 @@ def explain(out_dir: Path, query: str) -> str:
     if not db.is_file():
         raise MidisiftError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
                             file=str(out_dir))
-    with Ledger(db) as ledger:
+    with Ledger(db, read_only=True) as ledger:
         last = ledger.last_run()
         input_dir = None
         if last is not None:

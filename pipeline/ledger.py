@@ -154,8 +154,13 @@ _ENCODE = json.JSONEncoder(sort_keys=True, separators=(",", ":"), default=_json_
 class Ledger:
     """An open ``state.sqlite``. Use as a context manager; writes go through ``batch()``."""
 
-    def __init__(self, path: Path):
+    def __init__(self, path: Path, *, read_only: bool = False):
+        """Open (and create or migrate) the ledger; ``read_only`` opens an existing one for
+        reading only (explain, leakage), which also works in a folder the user cannot write."""
         self.path = Path(path)
+        if read_only:
+            self.db = self._open_read_only()
+            return
         try:
             self.db = sqlite3.connect(str(self.path), isolation_level=None, timeout=30)
             self.db.execute("PRAGMA journal_mode=WAL")
@@ -176,6 +181,27 @@ class Ledger:
         except sqlite3.DatabaseError as e:
             raise LedgerError(f"cannot open the state database ({e}); if it is corrupt, move it away and rerun",
                               file=str(self.path)) from None
+
+    def _open_read_only(self) -> sqlite3.Connection:
+        """A read-only connection. In a folder the user cannot write, SQLite cannot create the
+        WAL index it needs for ``mode=ro``; the database is then opened as immutable (a
+        completed run leaves no WAL behind: the last connection to close checkpoints it)."""
+        uri = self.path.resolve().as_uri()
+        try:
+            try:
+                db = sqlite3.connect(f"{uri}?mode=ro", uri=True, isolation_level=None, timeout=30)
+                db.execute("SELECT 1 FROM meta LIMIT 1").fetchall()
+            except sqlite3.OperationalError:
+                db = sqlite3.connect(f"{uri}?mode=ro&immutable=1", uri=True, isolation_level=None)
+            row = db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
+        except sqlite3.DatabaseError as e:
+            raise LedgerError(f"cannot read the state database ({e}); if it is corrupt, move it "
+                              "away and rerun", file=str(self.path)) from None
+        if row is None or int(row[0]) != SCHEMA_VERSION:
+            raise LedgerError(f"state schema version {row[0] if row else 'unknown'} is not "
+                              f"{SCHEMA_VERSION}; rerun 'midisift run' on this folder first",
+                              file=str(self.path))
+        return db
 
     def close(self) -> None:
         self.db.close()

@@ -13,6 +13,7 @@ output folder is ours.
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import os
@@ -36,6 +37,15 @@ CONTRACT_FIELDS = (
 )
 
 
+@functools.cache
+def _file_mode() -> int:
+    """The mode a plain ``open()`` gives a new file: 0o666 less the process's umask (read once;
+    os.umask can only be read by setting it). ``mkstemp`` would leave 0o600."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
 def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool = True) -> None:
     """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
     see the old file or the new one, never a part. ``data`` may be an iterable of text chunks
@@ -46,6 +56,8 @@ def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool =
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
         try:
+            if hasattr(os, "fchmod"):
+                os.fchmod(fd, _file_mode())  # follow the umask like any tool's output
             with os.fdopen(fd, "wb") as fh:
                 if isinstance(data, (bytes, bytearray, memoryview)):
                     fh.write(data)

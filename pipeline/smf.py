@@ -142,6 +142,9 @@ def _looks_like(data: bytes) -> str:
         return "it is an audio file, not MIDI"
     if data.startswith(b"RIFF"):
         return f"it is a RIFF file of type {data[8:12]!r}, not RMID"
+    if data[:1] == b"\xf0":
+        return ("it starts with a SysEx message (byte f0): a raw SysEx dump (.syx) saved under "
+                "a MIDI name, not a Standard MIDI File")
     if head and all(32 <= c < 127 or c in (9, 10, 13) for c in head[:256]):
         return "it looks like a text file"
     return f"it starts with bytes {data[:4].hex(' ')}"
@@ -197,6 +200,10 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
     if data[:4] == b"RIFF":
         pos, end = _unwrap_riff(data, source)
         repairs["riff_unwrapped"] = 1
+    if data[pos:pos + 8] == b"SMF2CLIP":
+        raise DecodeError("unsupported_format", "this is a MIDI 2.0 clip file (it starts with "
+                          "'SMF2CLIP'), not a Standard MIDI File; only SMF formats 0 and 1 are "
+                          "read", file=source, offset=pos)
     if data[pos:pos + 4] != b"MThd":
         raise DecodeError("not_midi", "a MIDI file must start with 'MThd', but "
                           f"{_looks_like(data[pos:end])}", file=source, offset=pos)
@@ -491,8 +498,9 @@ def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, co
                         p += ln
                     else:
                         raise DecodeError(
-                            "bad_event", f"status byte 0x{st:02x} (a system common/real-time "
-                            "message) is not allowed in a MIDI file; the track is damaged",
+                            "bad_event", f"the track holds status byte 0x{st:02x}, a system "
+                            "common/real-time message that a Standard MIDI File does not allow "
+                            "(SMF stores only channel, meta and sysex events)",
                             file=source, offset=base + p - 1, track=ti)
                     n_events += 1
                     continue

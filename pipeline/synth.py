@@ -69,6 +69,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Iterable
 
+from .errors import UsageError
+
 VERSION = 1
 TONIC_NAMES = ("C", "Db", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")
 #: Key-signature sharps (negative = flats) of each major tonic pitch class.
@@ -1232,7 +1234,6 @@ def generate(out_dir: Path, count: int, seed: int = 0, profile: str = "small",
     rel_of = {id(o): rel for o, rel in zip(outs, paths)}
     for members in clusters:
         settle_cluster([(m, rel_of[id(m)]) for m in members])
-    _remove_previous(out_dir, set(paths))
     files: dict[str, dict] = {}
     for o, rel in zip(outs, paths):
         files[rel] = dict(o.truth)
@@ -1250,25 +1251,21 @@ def generate(out_dir: Path, count: int, seed: int = 0, profile: str = "small",
     return truth
 
 
-def _remove_previous(out_dir: Path, keep: set[str]) -> None:
-    """Delete the files an earlier run listed in out_dir/truth.json and this run does not
-    write again (so regenerating in place leaves no stale files); nothing else is touched."""
-    old = out_dir / "truth.json"
-    if not old.is_file():
-        return
-    try:
-        listed = json.loads(old.read_text(encoding="utf-8"))["files"]
-    except (ValueError, KeyError, TypeError):
-        return
-    for rel in listed:
-        path = out_dir / rel
-        if rel not in keep and path.is_file() and out_dir.resolve() in path.resolve().parents:
-            path.unlink()
-
-
 def main_synth(out_dir: Path, count: int, seed: int, profile: str = "small",
-               naming: str = "plain", planted: float | None = None) -> dict:
-    """CLI entry: generate and return a short summary (counts per expected outcome)."""
+               naming: str = "plain", planted: float | None = None, *, force: bool = False) -> dict:
+    """CLI entry: generate and return a short summary (counts per expected outcome).
+
+    A folder that already holds anything is refused unless ``force``: generating writes
+    ``truth.json`` and numbered files that would overwrite a user's own. Nothing is ever
+    deleted, with or without ``force``."""
+    out_dir = Path(out_dir)
+    if not force and out_dir.is_dir() and any(out_dir.iterdir()):
+        raise UsageError(f"the folder is not empty; synth writes truth.json and {count} files "
+                         "into it and would overwrite files of the same names. Choose a new "
+                         "folder, or pass --force to write into it anyway (nothing is deleted)",
+                         file=str(out_dir))
+    if out_dir.exists() and not out_dir.is_dir():
+        raise UsageError("this path is a file, not a folder", file=str(out_dir))
     truth = generate(Path(out_dir), count, seed, profile, naming=naming, planted=planted)
     summary: dict[str, int] = {}
     for t in truth["files"].values():

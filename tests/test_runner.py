@@ -184,6 +184,43 @@ def test_explain_by_id_and_unknown_file(demo_out, capsys):
     assert "no such file" in capsys.readouterr().err
 
 
+def test_explain_reads_a_folder_it_cannot_write(demo_out, tmp_path, capsys):
+    """explain opens the ledger read-only: it works on a copy of the output folder whose files
+    and folder are read-only, and a read-only ledger refuses writes (sqlite3 URI mode=ro)."""
+    import stat
+
+    from pipeline.ledger import Ledger
+    frozen = tmp_path / "frozen"
+    shutil.copytree(demo_out, frozen)
+    before = sorted(p.name for p in frozen.iterdir())
+    for p in [*frozen.rglob("*"), frozen]:
+        p.chmod(p.stat().st_mode & ~(stat.S_IWUSR | stat.S_IWGRP | stat.S_IWOTH))
+    try:
+        row = next(r for r in _manifest(frozen) if r["status"] == "dropped")
+        assert main(["explain", row["source"], "--output", str(frozen)]) == 0
+        assert row["reason"] in capsys.readouterr().out
+        assert sorted(p.name for p in frozen.iterdir()) == before  # no WAL or lock file left
+        with Ledger(frozen / "state.sqlite", read_only=True) as ledger:
+            with pytest.raises(sqlite3.OperationalError, match="readonly"):
+                ledger.db.execute("DELETE FROM meta")
+    finally:
+        for p in [frozen, *frozen.rglob("*")]:
+            p.chmod(p.stat().st_mode | stat.S_IWUSR)
+
+
+def test_output_files_follow_the_umask(demo_out):
+    """Written files get 0o666 less the umask, as a plain open() gives them (POSIX open(2),
+    mode argument and umask), not mkstemp's private 0o600."""
+    import os
+    mask = os.umask(0o022)
+    os.umask(mask)
+    files = [demo_out / "manifest.jsonl", demo_out / "summary.json",
+             *(demo_out / "splits").glob("*.txt"), *(demo_out / "midi").rglob("*.mid")]
+    assert len(files) > 5
+    for p in files:
+        assert p.stat().st_mode & 0o777 == 0o666 & ~mask, p
+
+
 def test_byte_identical_copies_share_id_and_one_is_kept(demo_out):
     rows = _manifest(demo_out)
     by_sha: dict[str, list[dict]] = {}

@@ -159,12 +159,28 @@ def test_header_fields_and_metadata_match_mido():
     (bytes.fromhex("89504e470d0a1a0a0000000d49484452"), "PNG"),
     (b"This is a plain text file, not a song.\n", "text file"),
     (b"RIFF\x10\x00\x00\x00WAVEfmt ", "RIFF file of type b'WAVE'"),
+    # A SysEx dump: F0 ... F7 (MIDI 1.0 Detailed Specification, System Exclusive)
+    (bytes.fromhex("f0 43 10 4c 00 00 7e 00 f7"), "raw SysEx dump"),
 ])
 def test_not_midi(data, match):
     with pytest.raises(DecodeError, match=match) as exc:
         decode(data, source="x.mid")
     assert exc.value.code == "not_midi"
     assert exc.value.file == "x.mid"
+
+
+def test_midi2_clip_file_is_unsupported_format():
+    # MIDI 2.0 Clip File header: the 8 ASCII bytes "SMF2CLIP" (MIDI Association, M2-116-U)
+    with pytest.raises(DecodeError, match="MIDI 2.0 clip file") as exc:
+        decode(b"SMF2CLIP" + bytes(16), source="clip.midi2")
+    assert exc.value.code == "unsupported_format" and exc.value.offset == 0
+
+
+def test_system_message_in_track_names_the_smf_rule():
+    # SMF allows only channel, meta and sysex events in a track (SMF 1.0, "Track Chunks")
+    with pytest.raises(DecodeError, match="does not allow") as exc:
+        decode(smf(mtrk("00 f5 00 ff 2f 00")))
+    assert exc.value.code == "bad_event" and "damaged" not in str(exc.value)
 
 
 def test_bad_header_length():

@@ -481,10 +481,23 @@ def test_planted_fraction_is_configurable(tmp_path):
         synth.generate(tmp_path / "x", 10, planted=0.9)
 
 
-def test_regenerating_in_place_removes_only_its_own_stale_files(tmp_path):
+def test_regenerating_in_place_deletes_nothing(tmp_path):
+    """Generating again over a folder overwrites its own names and deletes no file (a user's
+    files and the first run's files that the second does not write stay)."""
     first = synth.generate(tmp_path, 40, seed=1)
     (tmp_path / "notes.txt").write_text("mine")
     second = synth.generate(tmp_path, 40, seed=2)
     on_disk = {p.relative_to(tmp_path).as_posix() for p in tmp_path.rglob("*") if p.is_file()}
-    assert on_disk == set(second["files"]) | {"truth.json", "notes.txt"}
-    assert set(first["files"]) != set(second["files"]) or first != second
+    assert on_disk == set(first["files"]) | set(second["files"]) | {"truth.json", "notes.txt"}
+    assert (tmp_path / "notes.txt").read_text() == "mine"
+
+
+def test_synth_command_refuses_a_folder_that_is_not_empty(tmp_path, capsys):
+    from pipeline.cli import main
+    (tmp_path / "truth.json").write_text('{"mine": true}')
+    assert main(["synth", str(tmp_path), "--count", "5"]) == 2
+    err = capsys.readouterr().err
+    assert "not empty" in err and "--force" in err and str(tmp_path) in err
+    assert (tmp_path / "truth.json").read_text() == '{"mine": true}'
+    assert main(["synth", str(tmp_path), "--count", "5", "--force"]) == 0
+    assert json.loads((tmp_path / "truth.json").read_text())["generator"]["count"] == 5
