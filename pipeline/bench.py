@@ -43,6 +43,7 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, Callable
 
+from .errors import UsageError
 from .executor import usable_cpus
 
 SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup")
@@ -933,7 +934,6 @@ def run_bench(sections: list[str] | tuple[str, ...], scale: Scale, scratch: Path
     """Run the named sections in the canonical order; write ``json_out``; return everything."""
     unknown = [s for s in sections if s not in SECTIONS]
     if unknown:
-        from .errors import UsageError
         raise UsageError(f"unknown bench section(s) {', '.join(unknown)}; sections are {', '.join(SECTIONS)}")
     bytecode = byte_compile_package()
     bench = Bench(scratch, scale, log)
@@ -955,10 +955,26 @@ def run_bench(sections: list[str] | tuple[str, ...], scale: Scale, scratch: Path
     return doc
 
 
+#: What the hand-written peer imports beyond midisift's own dependencies.
+PEER_LIBRARIES = ("pretty_midi", "music21", "datasketch", "mido")
+
+
+def _require_peer_libraries() -> None:
+    """Fail before any work, with the install command, when the peer cannot be imported."""
+    import importlib.util
+    missing = [m for m in PEER_LIBRARIES if importlib.util.find_spec(m) is None]
+    if missing:
+        raise UsageError(f"the bench's 'peer' section needs {', '.join(missing)}, which is not "
+                         "installed; install the test extra (pip install '.[test]' from the "
+                         "source folder) or leave the section out with --only")
+
+
 def main_bench(args: Any) -> int:
     """CLI entry (``midisift bench [--quick] [--out DIR] [--json FILE] [--only SECTION]``)."""
     scale = SCALES["quick" if args.quick else "full"]
     sections = list(args.only) or list(SECTIONS)
+    if "peer" in sections:
+        _require_peer_libraries()
     doc = run_bench(sections, scale, Path(args.out), Path(args.json_out),
                     log=lambda s: print(s, file=sys.stderr, flush=True))
     print(doc["table"])

@@ -8,8 +8,18 @@ from pathlib import Path
 from .errors import ConfigError, MidisiftError, UsageError
 
 
+def _version() -> str:
+    """The installed distribution's version (the package metadata, not a copy of it)."""
+    from importlib.metadata import PackageNotFoundError, version
+    try:
+        return version("midisift")
+    except PackageNotFoundError:
+        return "unknown (not installed)"
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="midisift", description="Prepare MIDI training corpora.")
+    p.add_argument("--version", action="version", version=f"midisift {_version()}")
     sub = p.add_subparsers(dest="command", required=True)
 
     r = sub.add_parser("run", help="run a config over its input folder")
@@ -27,10 +37,11 @@ def _parser() -> argparse.ArgumentParser:
     e.add_argument("file", help="source path (as in the manifest, or under the input folder) or an id")
     e.add_argument("--output", default="out/demo", help="output folder of the run (default: out/demo)")
 
-    s = sub.add_parser("synth", help="generate a demo/benchmark corpus with planted cases and truth.json")
+    s = sub.add_parser("synth", help="generate a demo/benchmark corpus with planted cases and truth.json",
+                       formatter_class=argparse.ArgumentDefaultsHelpFormatter)
     s.add_argument("dir")
-    s.add_argument("--count", type=int, default=80)
-    s.add_argument("--seed", type=int, default=0)
+    s.add_argument("--count", type=int, default=80, help="number of files")
+    s.add_argument("--seed", type=int, default=0, help="random seed (the same seed gives the same files)")
     s.add_argument("--profile", choices=("small", "large"), default="small",
                    help="small: ~5 KB, ~500 notes; large: ~60 KB, ~8,000 notes per file")
     s.add_argument("--naming", choices=("plain", "workshop"), default="plain",

@@ -103,3 +103,19 @@ def test_unknown_section_is_a_usage_error(tmp_path: Path) -> None:
     from pipeline.errors import UsageError
     with pytest.raises(UsageError, match="unknown bench section"):
         bench.run_bench(["smal"], TINY, tmp_path, None)
+
+
+def test_missing_peer_library_names_the_extra(monkeypatch: pytest.MonkeyPatch, tmp_path: Path,
+                                              capsys: pytest.CaptureFixture) -> None:
+    """After a plain `pip install .` the peer's libraries (the test extra) may be missing: the
+    command says which extra to install and exits 2 before any work."""
+    import importlib.util
+
+    from pipeline.cli import main
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec",
+                        lambda name, *a: None if name == "pretty_midi" else real(name, *a))
+    assert main(["bench", "--quick", "--out", str(tmp_path / "b")]) == 2
+    err = capsys.readouterr().err
+    assert "pretty_midi" in err and "'.[test]'" in err
+    assert not (tmp_path / "b").exists()

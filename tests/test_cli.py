@@ -82,3 +82,15 @@ def test_leakage_exit_codes(tmp_path, capsys):
     assert len(data["leaks"]) >= 5
     with pytest.raises(SystemExit):
         main(["leakage", "--threshold"])
+
+
+def test_version_and_synth_help_show_defaults(capsys):
+    from importlib.metadata import version
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0
+    assert capsys.readouterr().out.strip() == f"midisift {version('midisift')}"
+    with pytest.raises(SystemExit):
+        main(["synth", "--help"])
+    text = capsys.readouterr().out
+    assert "(default: 80)" in text and "(default: 0)" in text and "(default: small)" in text
