@@ -94,3 +94,17 @@ def test_version_and_synth_help_show_defaults(capsys):
         main(["synth", "--help"])
     text = capsys.readouterr().out
     assert "(default: 80)" in text and "(default: 0)" in text and "(default: small)" in text
+
+
+def test_a_run_imports_only_the_runtime_dependencies(tmp_path):
+    """pyproject's `dependencies` are what a run imports; music21, datasketch, mido and
+    pretty_midi are extras (evaluation, bench peer, fuzzer), so a default run must not import
+    them."""
+    code = ("import sys; from pipeline.cli import main; "
+            f"rc = main(['run', {str(ROOT / 'configs' / 'default.yaml')!r}, '--input', "
+            f"{str(ROOT / 'sample_corpus')!r}, '--output', {str(tmp_path / 'o')!r}, '--quiet', "
+            "'--workers', '1']); "
+            "print(rc, sorted(m for m in ('music21', 'datasketch', 'mido', 'pretty_midi') "
+            "if m in sys.modules))")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=tmp_path)
+    assert proc.stdout.split("\n")[-2] == "0 []", proc.stdout + proc.stderr
