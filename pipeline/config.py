@@ -14,7 +14,7 @@ from typing import Any
 
 import yaml
 
-from .errors import ConfigError
+from .errors import ConfigError, ConfigErrors
 from .executor import usable_cpus
 from .stages import Stage, known_stages, stage_class
 
@@ -90,37 +90,51 @@ def _stage_entry(entry: Any, path: str) -> tuple[str, Any]:
 
 
 def validate_stage_options(name: str, opts: Any, path: str) -> dict[str, Any]:
-    """Check one stage's options against its table; return them with defaults filled in."""
+    """Check one stage's options against its table; return them with defaults filled in.
+    Raises the first problem (``stage_option_problems`` lists them all)."""
+    merged, problems = stage_option_problems(name, opts, path)
+    if problems:
+        raise problems[0]
+    return merged
+
+
+def stage_option_problems(name: str, opts: Any, path: str) -> tuple[dict[str, Any], list[ConfigError]]:
+    """Every problem of one stage's options (unknown names, types, ranges, then the stage's
+    cross-option rules when each option alone is fine), and the options with defaults."""
     cls = stage_class(name)
     if opts is None:
         opts = {}
     if not isinstance(opts, dict):
-        raise ConfigError(f"options of stage '{name}' must be a mapping, got {opts!r}", location=path)
+        return {}, [ConfigError(f"options of stage '{name}' must be a mapping, got {opts!r}", location=path)]
     table = {o.name: o for o in cls.options}
     out: dict[str, Any] = {}
+    problems: list[ConfigError] = []
     for key, value in opts.items():
         kpath = f"{path}.{key}"
         if key not in table:
-            raise ConfigError(f"unknown option '{key}' for stage '{name}'{suggest(str(key), list(table))}",
-                              location=kpath)
+            problems.append(ConfigError(
+                f"unknown option '{key}' for stage '{name}'{suggest(str(key), list(table))}", location=kpath))
+            continue
         opt = table[key]
         if not check_type(value, opt.kind):
-            raise ConfigError(f"expected {_type_name(opt.kind)}, got {value!r}", location=kpath)
+            problems.append(ConfigError(f"expected {_type_name(opt.kind)}, got {value!r}", location=kpath))
+            continue
         if isinstance(value, int) and not isinstance(value, bool) and opt.kind is float:
             value = float(value)
         if opt.check is not None:
             problem = opt.check(value)
             if problem:
-                raise ConfigError(f"{problem} (got {value!r})", location=kpath)
+                problems.append(ConfigError(f"{problem} (got {value!r})", location=kpath))
+                continue
         out[key] = value
     merged = {o.name: o.default for o in cls.options}
     merged.update(out)
     check_all = getattr(cls, "check_options", None)
-    if check_all is not None:
+    if check_all is not None and not problems:
         problem = check_all(merged)
         if problem:
-            raise ConfigError(problem, location=path)
-    return merged
+            problems.append(ConfigError(problem, location=path))
+    return merged, problems
 
 
 def parse_workers(value: Any, location: str = "workers") -> int:
@@ -135,50 +149,71 @@ def parse_workers(value: Any, location: str = "workers") -> int:
 
 
 def parse_config(raw: Any, *, source: str | None = None) -> Config:
-    """Validate a loaded YAML mapping (see module docstring)."""
+    """Validate a loaded YAML mapping (see module docstring). Every problem is collected and
+    raised together (``ConfigErrors`` when there are several)."""
+    if raw is None:
+        raise ConfigError("the config file is empty; it needs at least 'input', 'output' and "
+                          "'stages' (see configs/default.yaml)", file=source)
     if not isinstance(raw, dict):
-        raise ConfigError(f"the config must be a mapping with keys {', '.join(TOP_KEYS)}, got {type(raw).__name__}",
-                          file=source)
+        raise ConfigError(f"the config must be a mapping with keys {', '.join(TOP_KEYS)}, "
+                          f"got {type(raw).__name__}", file=source)
+    problems: list[ConfigError] = []
     for key in raw:
         if key not in TOP_KEYS:
-            raise ConfigError(f"unknown key '{key}'{suggest(str(key), TOP_KEYS)}", file=source, location=str(key))
+            problems.append(ConfigError(f"unknown key '{key}'{suggest(str(key), TOP_KEYS)}", location=str(key)))
     for key in ("input", "output"):
         if not isinstance(raw.get(key), str) or not raw.get(key):
-            raise ConfigError(f"'{key}' must be a folder path (a string), got {raw.get(key)!r}",
-                              file=source, location=key)
+            problems.append(ConfigError(f"'{key}' must be a folder path (a string), got {raw.get(key)!r}",
+                                        location=key))
+    workers = 1
     try:
         workers = parse_workers(raw.get("workers", "auto"))
     except ConfigError as e:
-        e.file = source
-        raise
-    entries = raw.get("stages")
-    if not isinstance(entries, list) or not entries:
-        raise ConfigError("'stages' must be a non-empty list, e.g. '- validate: {}'", file=source, location="stages")
-    stages: list[StageConfig] = []
-    seen: set[str] = set()
-    for i, entry in enumerate(entries):
-        name, opts = _stage_entry(entry, f"stages[{i}]")
-        path = f"stages[{i}].{name}"
-        known = known_stages()
-        if name not in known:
-            raise ConfigError(f"unknown stage '{name}'{suggest(name, known)}", file=source, location=f"stages[{i}]")
-        if name in seen:
-            raise ConfigError(f"stage '{name}' appears twice; list each stage once", file=source, location=path)
-        seen.add(name)
-        try:
-            options = validate_stage_options(name, opts, path)
-        except ConfigError as e:
-            e.file = source
-            raise
-        stages.append(StageConfig(name, options, i))
-    if stages[0].name != "validate":
-        raise ConfigError(f"the first stage must be 'validate' (it decodes the files), got '{stages[0].name}'",
-                          file=source, location="stages[0]")
-    if "split" in seen and stages[-1].name != "split":
-        raise ConfigError("'split' must be the last stage (it places the files that survived every other stage)",
-                          file=source, location=f"stages[{[s.name for s in stages].index('split')}]")
+        problems.append(e)
+    stages = _parse_stages(raw.get("stages"), problems)
+    for p in problems:
+        p.file = source
+    if len(problems) == 1:
+        raise problems[0]
+    if problems:
+        raise ConfigErrors(problems, file=source)
     return Config(input=Path(raw["input"]), output=Path(raw["output"]), workers=workers,
                   stages=stages, path=Path(source) if source else None, raw=raw)
+
+
+def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig]:
+    """The ``stages:`` list; problems are appended, not raised."""
+    if not isinstance(entries, list) or not entries:
+        problems.append(ConfigError("'stages' must be a non-empty list, e.g. '- validate: {}'", location="stages"))
+        return []
+    stages: list[StageConfig] = []
+    seen: set[str] = set()
+    known = known_stages()
+    for i, entry in enumerate(entries):
+        try:
+            name, opts = _stage_entry(entry, f"stages[{i}]")
+        except ConfigError as e:
+            problems.append(e)
+            continue
+        path = f"stages[{i}].{name}"
+        if name not in known:
+            problems.append(ConfigError(f"unknown stage '{name}'{suggest(name, known)}", location=f"stages[{i}]"))
+            continue
+        if name in seen:
+            problems.append(ConfigError(f"stage '{name}' appears twice; list each stage once", location=path))
+            continue
+        seen.add(name)
+        options, found = stage_option_problems(name, opts, path)
+        problems.extend(found)
+        stages.append(StageConfig(name, options, i))
+    if stages and stages[0].name != "validate":
+        problems.append(ConfigError(f"the first stage must be 'validate' (it decodes the files), got "
+                                    f"'{stages[0].name}'", location=f"stages[{stages[0].index}]"))
+    if "split" in seen and stages[-1].name != "split":
+        at = next(s.index for s in stages if s.name == "split")
+        problems.append(ConfigError("'split' must be the last stage (it places the files that "
+                                    "survived every other stage)", location=f"stages[{at}]"))
+    return stages
 
 
 def load_config(path: str | Path, *, input: str | None = None, output: str | None = None,

@@ -27,6 +27,16 @@ class ConfigError(MidisiftError):
     ``stages[3].filter.min_seconds``."""
 
 
+class ConfigErrors(ConfigError):
+    """Several config problems found in one pass; the message lists each on its own line,
+    with its key path, so a user fixes them all at once."""
+
+    def __init__(self, problems: list[ConfigError], *, file: str | None = None):
+        self.problems = problems
+        lines = [p.message for p in problems]
+        super().__init__(f"{len(problems)} problems:\n  " + "\n  ".join(lines), file=file)
+
+
 class UsageError(MidisiftError):
     """Bad command-line usage (exit code 2)."""
 

@@ -144,3 +144,42 @@ def test_cli_bad_config_exits_2_and_writes_nothing(tmp_path):
     assert proc.returncode == 2
     assert "stages[0].validate.max_bytes" in proc.stderr
     assert not out.exists()
+
+
+def test_every_problem_is_reported_at_once_with_its_key_path():
+    from pipeline.errors import ConfigErrors
+    raw = _cfg([{"validate": {"max_byte": 10}}, {"dedupe": {}},
+                {"filter": {"min_seconds": "long", "min_notes": 32.5}}], workers=0, colour=1)
+    with pytest.raises(ConfigErrors) as exc:
+        parse_config(raw, source="c.yaml")
+    where = [p.location for p in exc.value.problems]
+    assert where == ["colour", "workers", "stages[0].validate.max_byte", "stages[1]",
+                     "stages[2].filter.min_seconds", "stages[2].filter.min_notes"]
+    text = exc.value.message
+    assert text.startswith("c.yaml: 6 problems:") and "did you mean 'dedup'" in text
+    assert "min_notes must be a whole number" in text
+
+
+@pytest.mark.parametrize("stage,opts,match", [
+    ("filter", {"min_seconds": 60, "max_seconds": 30}, "min_seconds 60 is above max_seconds 30"),
+    ("filter", {"notes_per_s": [10, 2]}, "low 10 is above high 2"),
+    ("filter", {"min_pitches": 2.5}, "min_pitches must be a whole number"),
+    ("transpose", {"augment": [1, 2, 2]}, r"\[2\] appear more than once"),
+    ("transpose", {"augment": [0, 3]}, "0 is the normalized file itself"),
+])
+def test_cross_option_rules(stage, opts, match):
+    with pytest.raises(ConfigError, match=match):
+        parse_config(_cfg([{"validate": {}}, {stage: opts}]))
+
+
+def test_whole_number_counts_accept_yaml_floats_such_as_32_0():
+    cfg = parse_config(_cfg([{"validate": {}}, {"filter": {"min_notes": 32.0}}]))
+    assert cfg.stage("filter").options["min_notes"] == 32.0
+
+
+def test_empty_config_file_says_it_is_empty(tmp_path):
+    p = tmp_path / "empty.yaml"
+    p.write_text("# nothing yet\n")
+    with pytest.raises(ConfigError, match="the config file is empty") as exc:
+        load_config(p)
+    assert exc.value.file == str(p)

@@ -43,6 +43,17 @@ def _nonneg(name: str) -> Callable[[Any], str | None]:
     return check
 
 
+def _count(name: str) -> Callable[[Any], str | None]:
+    """A count of notes or pitches: a whole number >= 0 (YAML ``32.0`` is accepted), or null."""
+    def check(v: Any) -> str | None:
+        if v is None:
+            return None
+        if not _is_num(v) or v < 0 or v != int(v):
+            return f"{name} must be a whole number >= 0 or null (off)"
+        return None
+    return check
+
+
 def _fraction(v: Any) -> str | None:
     if v is None:
         return None
@@ -215,7 +226,7 @@ class Filter(Stage):
                "dropped as too_long (20 minutes: past a long symphonic movement).",
                _nonneg("max_seconds")),
         Option("min_notes", _NUM, 32, "Fewest notes (drums included) kept; fewer is too_few_notes.",
-               _nonneg("min_notes")),
+               _count("min_notes")),
         Option("max_drum_fraction", _NUM, 0.9, "Largest fraction of notes on the drum channel "
                "(channel 10); above it the file is dropped as drums_only (a pure drum file has "
                "1.0). Lower it (e.g. 0.5) to drop mostly-drum files too.", _fraction),
@@ -223,10 +234,10 @@ class Filter(Stage):
                "second; below low is too_sparse, above high is too_dense (dense 'black MIDI' "
                "runs into the hundreds).", _range_pair),
         Option("min_pitches", _NUM, 5, "Fewest distinct pitches (drum notes excluded); fewer is "
-               "too_few_pitches.", _nonneg("min_pitches")),
+               "too_few_pitches.", _count("min_pitches")),
         Option("max_polyphony", _NUM, 48, "Most pitched notes sounding at once; more is "
                "too_polyphonic (well above an orchestral tutti; catches note clusters).",
-               _nonneg("max_polyphony")),
+               _count("max_polyphony")),
         Option("max_silence_s", _NUM, 30.0, "Longest stretch with no note sounding, leading "
                "silence included; longer is long_silence (often two pieces in one file, or a "
                "bad offset).", _nonneg("max_silence_s")),
@@ -242,6 +253,15 @@ class Filter(Stage):
                "listed instrument is dropped as program_excluded (same items as programs_allow).",
                _program_list("programs_deny")),
     )
+
+    @classmethod
+    def check_options(cls, opts: dict[str, Any]) -> str | None:
+        """Limits that contradict each other would drop every file."""
+        lo, hi = opts["min_seconds"], opts["max_seconds"]
+        if lo is not None and hi is not None and lo > hi:
+            return (f"min_seconds {lo:g} is above max_seconds {hi:g}: every file would be "
+                    "dropped; swap them or raise max_seconds")
+        return None
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         stats = ctx.analysis("stats", piece_stats)

@@ -38,6 +38,11 @@ def _check_augment(value: Any) -> str | None:
     bad = [v for v in value if isinstance(v, bool) or not isinstance(v, int) or not -11 <= v <= 11]
     if bad:
         return f"shifts must be whole numbers in -11..11, got {bad!r}"
+    if 0 in value:
+        return "0 is the normalized file itself, written anyway; remove it from augment"
+    twice = sorted({v for v in value if value.count(v) > 1})
+    if twice:
+        return f"each shift may appear once, but {twice} appear more than once"
     return None
 
 
