@@ -26,9 +26,22 @@ def test_default_config_loads_all_six_stages():
     assert cfg.workers >= 1
 
 
-@pytest.mark.parametrize("name", ["default.yaml", "validate-only.yaml", "piano-augmented.yaml"])
+@pytest.mark.parametrize("name", ["default.yaml", "validate-only.yaml", "augmented.yaml"])
 def test_shipped_configs_are_valid(name):
     load_config(ROOT / "configs" / name)
+
+
+@pytest.mark.parametrize("name", sorted(p.name for p in (ROOT / "configs").glob("*.yaml")))
+def test_every_shipped_config_keeps_files_of_the_demo_corpus(name, tmp_path):
+    """A worked example must show its effect: each config keeps files and writes outputs."""
+    import json
+
+    from pipeline.cli import main
+    out = tmp_path / "out"
+    assert main(["run", str(ROOT / "configs" / name), "--input", str(ROOT / "sample_corpus"),
+                 "--output", str(out), "--workers", "1", "--quiet"]) == 0
+    kept = [json.loads(line) for line in (out / "manifest.jsonl").open() if '"status": "kept"' in line]
+    assert kept and all((out / r["output"]).is_file() for r in kept if r.get("output"))
 
 
 def test_unknown_top_key_suggests_nearest():
