@@ -807,12 +807,14 @@ class Walk:
         return "[" + ",".join(steps) + "]"
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
-        """(stage, reason) that dropped this source, or None when kept."""
-        st = self.status.get(sha)
-        if st is None and self.byte_copy_stage and self.is_byte_copy(rel, sha):
+        """(stage, reason) that dropped this source, or None when kept. A byte-identical copy
+        whose content reached dedup is dropped there as ``exact_duplicate`` of its twin, whatever
+        later stages did to the twin: its trail ends at dedup (``trail_of``), so manifest,
+        explain and summary tell the same story."""
+        if self.byte_copy_stage and self.is_byte_copy(rel, sha):
             if self._reached(sha, self.byte_copy_stage) is not None:
                 return (self.byte_copy_stage, "exact_duplicate")
-        return st
+        return self.status.get(sha)
 
 
 def byte_copy_result(rep_rel: str, sha: str, rep_result: dict) -> dict:

@@ -418,3 +418,32 @@ def test_a_rerun_reads_the_shingle_sets_of_compared_files_only(tmp_path, monkeyp
     _run(eager_out, input_dir=corpus)
     for name in ("manifest.jsonl", "splits/train.txt", "splits/valid.txt", "splits/test.txt"):
         assert (out / name).read_bytes() == (eager_out / name).read_bytes(), name
+
+
+def test_byte_identical_copies_tell_one_story(tmp_path, capsys):
+    """A byte-identical copy is dropped by dedup as exact_duplicate of its twin even when a
+    later stage drops the twin; manifest, explain and summary agree; a copy's detail never
+    names its twin's path (the verdict of a content is shared by every path holding it)."""
+    from fixtures_midi import random_midi
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    short = random_midi(3, n_notes=40)  # a few seconds: filter drops it as too_short
+    for name in ("twin_a.mid", "twin_b.mid"):
+        (corpus / name).write_bytes(short)
+    for name in ("text_a.mid", "text_b.mid"):
+        (corpus / name).write_text("not a midi file at all")
+    out = tmp_path / "out"
+    _run(out, input_dir=corpus)
+    rows = {r["source"]: r for r in _manifest(out)}
+    assert (rows["twin_a.mid"]["stage"], rows["twin_a.mid"]["reason"]) == ("filter", "too_short")
+    copy = rows["twin_b.mid"]
+    assert (copy["stage"], copy["reason"]) == ("dedup", "exact_duplicate")
+    assert copy["detail"].startswith("byte-identical copy of")
+    stages = json.loads((out / "summary.json").read_text())["stages"]
+    assert stages["dedup"]["dropped"] == {"exact_duplicate": 1}
+    assert stages["filter"] == {"dropped": {"too_short": 1}, "reached": 1}
+    assert main(["explain", "twin_b.mid", "--output", str(out)]) == 0
+    assert "dropped by dedup: exact_duplicate" in capsys.readouterr().out
+    for name in ("text_a.mid", "text_b.mid"):
+        assert rows[name]["reason"] == "not_midi"
+        assert "text_a" not in rows[name]["detail"] and "text_b" not in rows[name]["detail"]

@@ -30,7 +30,7 @@ class Validate(Stage):
 
     name = "validate"
     kind = "file"
-    version = 1
+    version = 2
     doc = ("Decodes every file with the project's SMF reader and drops files that are not MIDI, "
            "cut off, damaged, of an unsupported format, over the size limits, or without notes.")
     options = (
@@ -56,7 +56,10 @@ class Validate(Stage):
                            max_events=self.opts["max_events"], max_tracks=self.opts["max_tracks"])
         except DecodeError as err:
             values = {"offset": err.offset, "track": err.track}
-            return StageResult.drop(err.code, err.message, values, self._thresholds()), None
+            # The verdict belongs to the content (byte-identical copies share it, a later run
+            # reuses it under another path): the sentence names the place, never a file path.
+            detail = f"{err.location}: {err.reason}" if err.location else err.reason
+            return StageResult.drop(err.code, detail, values, self._thresholds()), None
         result = self.judge(piece)
         return result, (piece if result.kept else None)
 
