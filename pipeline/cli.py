@@ -119,8 +119,32 @@ def _bench(args: argparse.Namespace) -> int:
 COMMANDS = {"run": _run, "explain": _explain, "synth": _synth, "leakage": _leakage, "bench": _bench}
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM (a batch scheduler's stop, `kill`): handled like Ctrl-C, so finished work is
+    saved, with the shell's exit status for that signal."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    raise _Terminated()
+
+
 def main(argv: list[str] | None = None) -> int:
+    import signal
     args = _parser().parse_args(argv)
+    previous = None
+    try:
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:  # not the main thread (an embedding program): leave its handler alone
+        pass
+    try:
+        return _dispatch(args)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    """Run one command; map errors and interruptions to exit codes."""
     try:
         return COMMANDS[args.command](args)
     except (ConfigError, UsageError) as e:
@@ -129,9 +153,11 @@ def main(argv: list[str] | None = None) -> int:
     except MidisiftError as e:
         print(f"midisift: {e.message}", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print("midisift: interrupted; rerun the same command to continue where it stopped", file=sys.stderr)
-        return 1
+    except KeyboardInterrupt as e:
+        what = "stopped by SIGTERM" if isinstance(e, _Terminated) else "interrupted"
+        print(f"midisift: {what}; finished work is saved: rerun the same command to continue "
+              "where it stopped", file=sys.stderr)
+        return 143 if isinstance(e, _Terminated) else 130  # 128 + the signal, as shells report
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
         import os
         devnull = os.open(os.devnull, os.O_WRONLY)

@@ -272,7 +272,8 @@ def _where(exc: BaseException) -> str:
 
 def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits) -> None:
     """Loop: receive (seq, task), send (seq, kind, payload) until the pipe closes."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)  # not the parent's handler, inherited by fork
     _release_inherited_files()
     # a worker collects its own cyclic garbage, whatever the parent's collector was doing when
     # it forked (the runner turns it off while it builds its records)

@@ -100,6 +100,52 @@ def staged_path(staging: str, sha: str, output_fp: str, suffix: str) -> str:
     return os.path.join(staging, f"{sha[:16]}_{output_fp[:8]}{suffix}.mid")
 
 
+#: In the staging folder: one line per content whose staged outputs are complete
+#: ("sha256<TAB>output fingerprint<TAB>suffix,suffix..."), appended by the main process after a
+#: worker returned them, so a run that was stopped leaves its finished renders usable.
+STAGED_LIST = "staged.txt"
+
+
+def record_staged(out_dir: Path, fp: str, items: Iterable[tuple[str, tuple[str, ...]]]) -> None:
+    """Append finished staged outputs to the staging folder's list (no fsync: a line lost to
+    a power cut only means that content is rendered again)."""
+    lines = "".join(f"{sha}\t{fp}\t{','.join(suffixes)}\n" for sha, suffixes in items)
+    if not lines:
+        return
+    path = out_dir / STAGING / STAGED_LIST
+    try:
+        with open(path, "a", encoding="utf-8") as fh:
+            fh.write(lines)
+    except OSError as e:
+        raise OutputError(f"cannot write ({e.strerror}); check free space and permissions of the "
+                          "output folder", file=str(path)) from None
+
+
+def staged_outputs(out_dir: Path, fp: str) -> dict[str, tuple[str, ...]]:
+    """sha256 -> suffixes of the complete staged outputs an interrupted run left for output
+    fingerprint ``fp`` (listed in ``STAGED_LIST`` and all still on disk); other leftovers are
+    ignored and removed when the run places its outputs."""
+    path = out_dir / STAGING / STAGED_LIST
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return {}
+    staging = str(out_dir / STAGING)
+    try:
+        on_disk = set(os.listdir(staging))
+    except OSError:
+        return {}
+    found: dict[str, tuple[str, ...]] = {}
+    for line in text.splitlines():
+        parts = line.split("\t")
+        if len(parts) != 3 or parts[1] != fp or len(parts[0]) != 64:
+            continue  # another fingerprint, or a line cut short when the run stopped
+        sha, suffixes = parts[0], tuple(parts[2].split(",")) if parts[2] else ("",)
+        if all(os.path.basename(staged_path(staging, sha, fp, x)) in on_disk for x in suffixes):
+            found[sha] = suffixes
+    return found
+
+
 def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging: str, sha: str,
            output_fp: str) -> tuple[str, ...]:
     """Encode the normalized output(s) of one piece into the staging folder (worker side);

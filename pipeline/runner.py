@@ -302,10 +302,13 @@ class Runner:
                     for s in self.stages if s.kind == "corpus"}
         recorded_out = ledger.outputs()
         existing_out = outputs.existing_outputs(cfg.output, self.output_fp, recorded_out)
+        # outputs a stopped run rendered and did not place yet are used, not rendered again
+        self._staged = outputs.staged_outputs(cfg.output, self.output_fp)
+        has_out = existing_out.keys() | self._staged.keys() if self._staged else existing_out
         last_status = {sha: status for sha, status in ledger.decision_statuses()}
         tasks = []
         for sha, rel in rep.items():
-            task = self._plan(sha, rel, path_of[rel], cache, art_keys, existing_out, last_status)
+            task = self._plan(sha, rel, path_of[rel], cache, art_keys, has_out, last_status)
             if task is not None:
                 tasks.append(task)
         computed = len(tasks)
@@ -467,14 +470,14 @@ class Runner:
         if not tasks:
             return
         if staged is None:
-            staged = self._staged = {}
+            staged = self._staged
         suffixes: dict[tuple[str, ...], tuple[str, ...]] = {}
         # one bar per per-file stage (files/s): validate's counts every file decoded, the others
         # the files whose result for that stage came back (a dropped file stops early)
         file_stages = [s.name for s in self.stages if s.kind == "file"]
         bar = self._bar(file_stages[0], len(tasks))
         stage_bars = {name: self._bar(name, len(tasks), i) for i, name in enumerate(file_stages) if i}
-        pending_r, pending_a = [], []
+        pending_r, pending_a, pending_s = [], [], []
         fps = {s.name: s.fingerprint for s in self.stages}
         last = time.monotonic()
         # reliability: per-file limits are validate options; a fault becomes a cached drop
@@ -492,22 +495,24 @@ class Runner:
                     pending_a.append((oc.sha256, name, fps[name], arts))
                 if oc.staged:  # memory: the same few suffix tuples, shared (paths are derived)
                     staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
+                    pending_s.append((oc.sha256, oc.staged))
                 bar.update(1)
                 for name in oc.results:
                     if name in stage_bars:
                         stage_bars[name].update(1)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
-                    self._flush(ledger, pending_r, pending_a)
+                    self._flush(ledger, pending_r, pending_a, pending_s)
                     last = time.monotonic()
-        finally:
-            self._flush(ledger, pending_r, pending_a)
+        finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
+            self._flush(ledger, pending_r, pending_a, pending_s)
             bar.close()
             for b in stage_bars.values():
                 b.close()
 
-    @staticmethod
-    def _flush(ledger: Ledger, results: list, artifacts: list) -> None:
-        if not results and not artifacts:
+    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list) -> None:
+        """Commit finished results and artifacts, then list the finished staged outputs (a
+        listed output's results are always in the ledger)."""
+        if not results and not artifacts and not staged:
             return
         try:
             with ledger.batch():
@@ -519,11 +524,13 @@ class Runner:
                               "are kept)", file=str(ledger.path)) from None
         results.clear()
         artifacts.clear()
+        outputs.record_staged(self.config.output, self.output_fp, staged)
+        staged.clear()
 
     # the stage walk ---------------------------------------------------------------------------
     def _walk(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict) -> "Walk":
         names = [st.name for st in self.stages]
-        walk = Walk(staged=getattr(self, "_staged", {}), stage_names=names)
+        walk = Walk(staged=self._staged, stage_names=names)
         alive = list(rep)  # contents in first-source order (sorted paths)
         # memory: a trail holds the cached result records themselves (no copies, no merged
         # values dict per file); trail_of and value_of build what a reader needs one file at a time

@@ -388,3 +388,41 @@ def test_read_only_output_folder(corpus, config, tmp_path):
             run(config, corpus, out)
     finally:
         out.chmod(0o700)
+
+
+@pytest.mark.parametrize("sig,status", [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_a_stopped_run_keeps_its_finished_work(corpus, tmp_path, sig, status):
+    """Ctrl-C or SIGTERM mid-run: the results and rendered outputs that workers finished are
+    saved, so the rerun computes only what was left (plus nothing else), and ends with the same
+    outputs as an uninterrupted run. Exit status 128 + signal, as shells report (POSIX
+    shell "Exit Status"; common practice for command-line tools)."""
+    out = tmp_path / "out"
+    config = REPO / "configs" / "default.yaml"  # timeout_s 60: no hang times out in the test
+    # the files from f000100 on hang, so the run is still in its per-file pass when stopped
+    env = {**os.environ, FAULT_ENV: "hang:f0001"}
+    proc = subprocess.Popen([sys.executable, "-m", "pipeline.cli", "run", str(config), "--input",
+                             str(corpus), "--output", str(out), "--quiet", "--workers", "2"],
+                            cwd=REPO, env=env, stderr=subprocess.PIPE, text=True)
+    db = out / "state.sqlite"
+    staging = out / outputs.STAGING
+    rendered = 0  # workers write their renders at once; the ledger is written every 2 s
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and rendered < COUNT // 4:
+        time.sleep(0.1)
+        rendered = len(list(staging.glob("*.mid"))) if staging.is_dir() else 0
+    assert rendered >= COUNT // 4, "the run did not get going"
+    time.sleep(0.5)  # the files in flight before the hanging ones come back
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == status, err
+    assert "finished work is saved" in err
+    with sqlite3.connect(f"file:{db}?mode=ro", uri=True) as con:
+        saved = con.execute("SELECT count(*) FROM results WHERE stage='validate'").fetchone()[0]
+    report = run(config, corpus, out)
+    run(config, corpus, tmp_path / "uninterrupted")
+    contents = report.computed + report.cached
+    assert report.cached >= saved >= rendered
+    assert report.computed <= contents - saved
+    assert snapshot(out) == snapshot(tmp_path / "uninterrupted")
+    assert_clean(out)
+
