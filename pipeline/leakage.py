@@ -244,8 +244,15 @@ def format_report(report: LeakReport) -> str:
         lines.append(f"  {lk.similarity:.3f}  {lk.part_a}: {a}  <->  {lk.part_b}: {b}")
     for part, path, reason in report.failed:
         lines.append(f"  unreadable ({part}): {path}: {reason}")
-    verdict = (f"{len(report.leaks)} cross-part near-duplicate pair(s) found" if report.leaks
-               else "no cross-part near-duplicates")
+    filled = [p for p, n in report.parts.items() if n]
+    if report.leaks:
+        verdict = f"{len(report.leaks)} cross-part near-duplicate pair(s) found"
+    elif not filled:
+        verdict = "nothing to audit: every part is empty (did the run keep any file?)"
+    elif len(filled) == 1:
+        verdict = f"nothing to compare: only part '{filled[0]}' holds files"
+    else:
+        verdict = "no cross-part near-duplicates"
     if report.failed:
         verdict += f"; {len(report.failed)} file(s) could not be read"
     lines.append(verdict)

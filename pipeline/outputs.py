@@ -454,6 +454,24 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
         yield row
 
 
+def configured_parts(stages: list) -> list[str]:
+    """The parts a run writes, in the config's order: the split's ratios, or the one
+    ``DEFAULT_PART`` without a split stage."""
+    split = next((s for s in stages if s.name == "split"), None)
+    return list(split.opts.get("ratios") or ()) if split is not None else [DEFAULT_PART]
+
+
+def run_warnings(files: int, kept: int, part_files: dict[str, int], parts: list[str]) -> list[str]:
+    """What a user must not miss although the run succeeded (exit 0): nothing in, nothing
+    kept, a configured part left empty."""
+    if files == 0:
+        return ["the input folder holds no .mid, .midi, .kar or .rmi file: nothing was done"]
+    if kept == 0:
+        return ["no file was kept: every file was dropped (see the table above, or summary.json)"]
+    return [f"part '{p}' is empty: no kept file was placed in it (too few groups for its ratio?)"
+            for p in parts if not part_files.get(p)]
+
+
 def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed: int, reused: int,
                   placed: Placed, cfg: Any) -> dict[str, Any]:
     """summary.json: counts per stage and reason, split counts and ratios, timings, fingerprints."""
@@ -463,11 +481,12 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
     for (stage, reason), n in sorted(tally.dropped_by.items()):
         d = per_stage.setdefault(stage, {"reached": 0, "dropped": {}})["dropped"]
         d[reason] = d.get(reason, 0) + n
-    part_counts = dict(sorted(tally.parts.items()))
+    every_part = sorted({*configured_parts(stages), *tally.parts, *placed.parts})
+    part_counts = {p: tally.parts.get(p, 0) for p in every_part}  # an empty part counts 0
     total_kept = max(1, tally.kept)
     split_stage = next((s for s in stages if s.name == "split"), None)
     split_info = {"files": part_counts,
-                  "outputs": {p: len(v) for p, v in sorted(placed.parts.items())},
+                  "outputs": {p: len(placed.parts.get(p, ())) for p in every_part},
                   "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
     if split_stage is not None:
         split_info["targets"] = split_stage.opts.get("ratios")
@@ -479,6 +498,7 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
               "contents": len(tally.contents), "computed": computed, "reused": reused}
     return {
         "counts": counts,
+        "warnings": run_warnings(tally.files, tally.kept, part_counts, configured_parts(stages)),
         "stages": per_stage,
         "split": split_info,
         "notes": walk.notes,
@@ -509,18 +529,19 @@ def _default(value: Any) -> Any:
 
 
 def write_all(out_dir: Path, rows: Iterable[dict | str], placed: Placed,
-              summary_of: Callable[[], dict]) -> dict:
+              summary_of: Callable[[], dict], configured: Iterable[str] = ()) -> dict:
     """Write the manifest (streamed from ``rows``), the split lists, then the summary that
     ``summary_of`` builds once the rows are counted; each file atomically, stale split lists
     removed. Returns the summary."""
     write_atomic(out_dir / "manifest.jsonl", _jsonl(rows))
     splits = out_dir / "splits"
     splits.mkdir(parents=True, exist_ok=True)
-    wanted = {f"{p}.txt" for p in placed.parts}
+    lists = {part: [] for part in configured} | placed.parts  # an empty part gets its empty list
+    wanted = {f"{p}.txt" for p in lists}
     for p in splits.glob("*.txt"):
         if p.name not in wanted:
             p.unlink()
-    for part, paths in sorted(placed.parts.items()):
+    for part, paths in sorted(lists.items()):
         write_atomic(splits / f"{part}.txt", "".join(p + "\n" for p in sorted(paths)))
     summary = summary_of()
     write_summary(out_dir, summary)

@@ -2,7 +2,7 @@
 prints it too)."""
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
@@ -27,6 +27,7 @@ class RunReport:
     cached: int
     parts: dict[str, int]
     notes: list[str]
+    warnings: list[str] = field(default_factory=list)
 
     def table(self) -> str:
         drops = [(f"dropped  {stage} / {reason}", n)
@@ -39,5 +40,6 @@ class RunReport:
         lines.append(f"{'contents decoded / reused':<{w}}{self.computed:>8} / {self.cached}")
         lines.append(f"{'seconds':<{w}}{self.timings.get('total', 0.0):>8.2f}")
         lines.append(f"output: {self.output}")
+        lines.extend(f"warning: {w}" for w in self.warnings)
         lines.extend(self.notes)
         return "\n".join(lines)

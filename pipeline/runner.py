@@ -356,7 +356,7 @@ class Runner:
             summary = outputs.write_all(
                 cfg.output, outputs.manifest_rows(files, walk, placed, tally, decisions.add,
                                                   reuse, corpus_positions),
-                placed, summary_of)
+                placed, summary_of, outputs.configured_parts(self.stages))
             decisions.flush()
             reuse.save(ledger, len(files))
             for name, st in walk.states.items():
@@ -367,10 +367,12 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
-        parts = in_part_order({p: len(v) for p, v in placed.parts.items()},
+        configured = outputs.configured_parts(self.stages)
+        parts = in_part_order({p: len(placed.parts.get(p, ())) for p in {*configured, *placed.parts}},
                               summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
-                         len(rep) - computed, parts, notes + walk.notes)
+                         len(rep) - computed, parts, notes + walk.notes,
+                         summary.get("warnings", []))
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _state_key(self, files: list[SourceFile]) -> str:

@@ -75,7 +75,7 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
     split = summary.get("split", {})
     parts = in_part_order(dict(split.get("outputs", {})), split.get("part_order"))
     return RunReport(output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
-                     counts.get("contents", 0), parts, notes + [NOTE])
+                     counts.get("contents", 0), parts, notes + [NOTE], summary.get("warnings", []))
 
 
 def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,

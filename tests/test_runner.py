@@ -447,3 +447,35 @@ def test_byte_identical_copies_tell_one_story(tmp_path, capsys):
     for name in ("text_a.mid", "text_b.mid"):
         assert rows[name]["reason"] == "not_midi"
         assert "text_a" not in rows[name]["detail"] and "text_b" not in rows[name]["detail"]
+
+
+def test_empty_input_and_empty_parts_are_warned_about(tmp_path, capsys):
+    """Exit 0, but the table and summary.json say what a user must not miss; every
+    configured part gets its (possibly empty) list; leakage says there is nothing to audit."""
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    out = tmp_path / "out"
+    args = ["run", str(ROOT / "configs" / "default.yaml"), "--input", str(empty), "--output", str(out),
+            "--workers", "1"]
+    assert main(args) == 0
+    assert "warning: the input folder holds no" in capsys.readouterr().out
+    assert sorted(p.name for p in (out / "splits").iterdir()) == ["test.txt", "train.txt", "valid.txt"]
+    assert main(["leakage", str(out)]) == 0
+    assert "nothing to audit" in capsys.readouterr().out
+
+    from fixtures_midi import random_midi
+    one = tmp_path / "one"
+    one.mkdir()
+    (one / "a.mid").write_bytes(random_midi(5, n_notes=400))
+    out1 = tmp_path / "out1"
+    assert main(["run", str(ROOT / "configs" / "default.yaml"), "--input", str(one), "--output", str(out1),
+                 "--workers", "1"]) == 0
+    text = capsys.readouterr().out
+    summary = json.loads((out1 / "summary.json").read_text())
+    assert summary["counts"]["kept"] == 1  # one file fills one part; the two others are empty
+    empty_parts = [p for p, n in summary["split"]["files"].items() if n == 0]
+    assert len(empty_parts) == 2
+    assert all(f"warning: part '{p}' is empty" in text for p in empty_parts)
+    assert all((out1 / "splits" / f"{p}.txt").read_text() == "" for p in empty_parts)
+    assert summary["warnings"] and summary["warnings"] == [
+        line[len("warning: "):] for line in text.splitlines() if line.startswith("warning: ")]
