@@ -233,7 +233,8 @@ class Runner:
         if self.quiet or not sys.stderr.isatty():
             return _NoBar()  # a disabled tqdm still starts its monitor thread
         from tqdm import tqdm
-        return tqdm(total=total, desc=f"{desc:<10}", unit="file", position=position,
+        # the per-file pass works once per distinct content (the table's "contents decoded")
+        return tqdm(total=total, desc=f"{desc:<10}", unit="content", position=position,
                     leave=True, dynamic_ncols=True)
 
     def run(self) -> RunReport:
@@ -499,9 +500,11 @@ class Runner:
                     staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
                     pending_s.append((oc.sha256, oc.staged))
                 bar.update(1)
-                for name in oc.results:
-                    if name in stage_bars:
-                        stage_bars[name].update(1)
+                for name, stage_bar in stage_bars.items():
+                    if name in oc.results:
+                        stage_bar.update(1)
+                    else:  # dropped before this stage (or its verdict was cached): not coming
+                        _shrink(stage_bar)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
                     self._flush(ledger, pending_r, pending_a, pending_s)
                     last = time.monotonic()
@@ -673,6 +676,13 @@ def _last_results(ledger: Ledger, stage: str, fingerprint: str, compactor: Compa
     rows = ledger.results_for(stage, _last_fingerprint(fingerprint), compactor.make_stored,
                               values_as_text=True)
     return {sha[:16]: r for sha, r in rows.items()}
+
+
+def _shrink(bar: Any) -> None:
+    """One item fewer to wait for, so a stage's bar ends at 100% when files drop earlier."""
+    if getattr(bar, "total", None):
+        bar.total -= 1
+        bar.refresh()
 
 
 class _NoBar:

@@ -479,3 +479,31 @@ def test_empty_input_and_empty_parts_are_warned_about(tmp_path, capsys):
     assert all((out1 / "splits" / f"{p}.txt").read_text() == "" for p in empty_parts)
     assert summary["warnings"] and summary["warnings"] == [
         line[len("warning: "):] for line in text.splitlines() if line.startswith("warning: ")]
+
+
+def test_progress_bars_end_full_and_count_what_the_table_counts(tmp_path, monkeypatch):
+    """Each per-file bar ends at its total although files drop at earlier stages; the first
+    bar's total is the table's "contents decoded"; bars are made in config order."""
+    made = []
+
+    class Bar:
+        def __init__(self, desc, total, position=0):
+            self.desc, self.total, self.n = desc, total, 0
+            made.append(self)
+
+        def update(self, n=1):
+            self.n += n
+
+        def refresh(self):
+            pass
+
+        def close(self):
+            pass
+
+    monkeypatch.setattr(Runner, "_bar", lambda self, desc, total, position=0: Bar(desc, total, position))
+    report = _run(tmp_path / "out")
+    # the per-file stages' bars while workers run, then the corpus stages' bars
+    assert [b.desc for b in made] == ["validate", "transpose", "key_meter", "filter", "dedup", "split"]
+    assert made[0].total == report.computed
+    assert all(b.n == b.total for b in made[:4]), [(b.desc, b.n, b.total) for b in made]
+    assert made[3].total < made[0].total  # files dropped by validate never reach filter
