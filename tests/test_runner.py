@@ -483,7 +483,7 @@ def test_empty_input_and_empty_parts_are_warned_about(tmp_path, capsys):
 
 def test_progress_bars_end_full_and_count_what_the_table_counts(tmp_path, monkeypatch):
     """Each per-file bar ends at its total although files drop at earlier stages; the first
-    bar's total is the table's "contents decoded"; bars are made in config order."""
+    bar's total is the table's "contents decoded"."""
     made = []
 
     class Bar:
