@@ -299,7 +299,7 @@ class Runner:
                                                 values_as_text=True)
                      for s in self.stages if s.kind == "file"}
         # a corpus stage without a prepare step (split) has nothing to store per file
-        art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
+        art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
         recorded_out = ledger.outputs()
         existing_out = outputs.existing_outputs(cfg.output, self.output_fp, recorded_out)
@@ -482,6 +482,7 @@ class Runner:
         stage_bars = {name: self._bar(name, len(tasks), i) for i, name in enumerate(file_stages) if i}
         pending_r, pending_a, pending_s = [], [], []
         fps = {s.name: s.fingerprint for s in self.stages}
+        art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         # reliability: per-file limits are validate options; a fault becomes a cached drop
         vopts = self.stages[0].opts
@@ -495,7 +496,7 @@ class Runner:
                     cache[name][oc.sha256] = self._compactor(name).from_stored(stored)
                     pending_r.append((oc.sha256, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
-                    pending_a.append((oc.sha256, name, fps[name], arts))
+                    pending_a.append((oc.sha256, name, art_fps[name], arts))
                 if oc.staged:  # memory: the same few suffix tuples, shared (paths are derived)
                     staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
                     pending_s.append((oc.sha256, oc.staged))
@@ -561,7 +562,8 @@ class Runner:
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
                 # in the ledger until compared (Stage.deferred_artifacts)
-                arts = (ledger.artifacts_for(st.name, st.fingerprint, set(alive), defer=st.deferred_artifacts)
+                arts = (ledger.artifacts_for(st.name, st.artifact_fingerprint, set(alive),
+                                             defer=st.deferred_artifacts)
                         if _prepares(st) else {})
                 members = [Member(sha[:16], sha, rep[sha], TrailValues(trails[sha]),
                                   {st.name: arts.pop(sha, {})}) for sha in alive]

@@ -306,7 +306,7 @@ def test_split_links_are_incremental_and_equal_a_full_search(tmp_path):
     kept = {r["sha256"] for r in _manifest(out) if r["status"] == "kept"}
     with Ledger(out / "state.sqlite") as ledger:
         saved = ledger.state_for("split")["links"]
-        arts = ledger.artifacts_for("dedup", dedup.fingerprint, kept)
+        arts = ledger.artifacts_for("dedup", dedup.artifact_fingerprint, kept)
     sigs = {sha[:16]: np.asarray(a["signature"], dtype=np.uint32) for sha, a in arts.items()}
     shingles = {sha[:16]: np.asarray(a["shingles"], dtype=np.uint64) for sha, a in arts.items()}
     full = sorted((a, b) for a, b, _ in near_links(sigs, split.opts["group_threshold"], shingles))
@@ -507,3 +507,23 @@ def test_progress_bars_end_full_and_count_what_the_table_counts(tmp_path, monkey
     assert made[0].total == report.computed
     assert all(b.n == b.total for b in made[:4]), [(b.desc, b.n, b.total) for b in made]
     assert made[3].total < made[0].total  # files dropped by validate never reach filter
+
+
+def test_changing_a_corpus_step_option_decodes_nothing(tmp_path):
+    """A per-file result is a pure function of the source and its stage's options; dedup's
+    per-file artifacts depend only on the options its prepare step reads, so a new threshold
+    re-runs the corpus step alone (and still changes its verdicts)."""
+    raw = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text())
+    out = tmp_path / "out"
+    counts = []
+    for threshold in (0.3, 0.9):
+        for entry in raw["stages"]:
+            if "dedup" in entry:
+                entry["dedup"] = {**(entry["dedup"] or {}), "threshold": threshold}
+        cfg_path = tmp_path / f"cfg{threshold}.yaml"
+        cfg_path.write_text(yaml.safe_dump(raw))
+        report = _run(out, config=cfg_path)
+        counts.append((report.computed, report.dropped.get(("dedup", "near_duplicate"), 0)))
+    (first_computed, near_low), (second_computed, near_high) = counts
+    assert first_computed > 0 and second_computed == 0
+    assert near_high < near_low

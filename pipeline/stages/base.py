@@ -159,6 +159,19 @@ class Stage:
         """Hash of the stage name, version and options: the cache key of its results."""
         return options_fingerprint(self.name, self.version, self.opts)
 
+    #: A corpus stage's options that its per-file ``prepare`` reads (None: all of them).
+    #: Its stored artifacts are keyed by these alone, so changing an option that only the
+    #: corpus step reads (a threshold) re-decodes no file.
+    prepare_options: tuple[str, ...] | None = None
+
+    @property
+    def artifact_fingerprint(self) -> str:
+        """The cache key of the stage's per-file ``prepare`` artifacts."""
+        if self.prepare_options is None:
+            return self.fingerprint
+        return options_fingerprint(f"{self.name}.prepare", self.version,
+                                   {k: self.opts[k] for k in self.prepare_options})
+
     # per-file stages
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:  # pragma: no cover
         raise NotImplementedError

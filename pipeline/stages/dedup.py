@@ -150,6 +150,8 @@ class Dedup(Stage):
     #: shingle sets are read for the members in candidate pairs and in clusters of several
     #: (split reads them for its candidate pairs too), not for every member
     deferred_artifacts = ("shingles",)
+    #: what ``prepare`` reads (``signature_of``): the other options only steer the corpus step
+    prepare_options = ("ngram", "grid", "num_perm", "seed")
     options = (
         Option("threshold", float, DEFAULT_THRESHOLD,
                "Similarity (Jaccard, or containment for excerpts) at or above which two files are "
