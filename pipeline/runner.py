@@ -35,11 +35,11 @@ from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger, canonical_json, stored_artifacts, stored_result, thresholds_json
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
-from .report import RunReport, in_part_order
+from .report import RunReport, grouping_off, in_part_order
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult, stage_class
-from .stages.base import options_fingerprint
+from .stages.base import bind_stages, options_fingerprint
 
 BATCH = 2048  # results + artifacts per ledger transaction (also flushed every 2 s): about 300
 #               files; each commit costs a WAL write of its pages, about 1.5 ms
@@ -217,7 +217,7 @@ class Runner:
         self.quiet = quiet
         self.reassign = reassign
         self.retry_failed = retry_failed
-        self.stages: list[Stage] = [sc.build() for sc in config.stages]
+        self.stages: list[Stage] = bind_stages([sc.build() for sc in config.stages])
         self._fps = {s.name: s.fingerprint for s in self.stages}
         # a stage's results depend on its options and on every stage before it
         self._chains: dict[str, str] = {}
@@ -297,7 +297,8 @@ class Runner:
             cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
                                                 values_as_text=True)
                      for s in self.stages if s.kind == "file"}
-        # a corpus stage without a prepare step (split) has nothing to store per file
+        # a corpus stage without a prepare step (the split reading dedup's signatures) has
+        # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
         recorded_out = ledger.outputs()
@@ -367,7 +368,8 @@ class Runner:
         parts = in_part_order({p: len(v) for p, v in placed.parts.items()},
                               summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
-                         len(rep) - computed, parts, notes + walk.notes)
+                         len(rep) - computed, parts, notes + walk.notes,
+                         grouping_off(summary["split"].get("stage")))
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _state_key(self, files: list[SourceFile]) -> str:
@@ -632,8 +634,9 @@ def _bulk_data() -> Iterator[None]:
 
 
 def _prepares(stage: Stage) -> bool:
-    """Whether a corpus stage has a per-file ``prepare`` step of its own."""
-    return type(stage).prepare is not Stage.prepare
+    """Whether a corpus stage has a per-file ``prepare`` step of its own to run (the split has
+    none when it reads dedup's signatures or does not group near-duplicates)."""
+    return stage.has_prepare()
 
 
 class _Everything:
