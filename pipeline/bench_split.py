@@ -26,6 +26,10 @@ For each it reports:
   file (single linkage would have dropped all but one, some only through other members);
 * the run's seconds (one worker).
 
+``--corpus FOLDER`` measures a real collection instead: its ``labels.json`` gives each file's
+group (``song``: the files of one song are the pairs that must share a part), e.g. the POP909
+half in ../shared/data/pop909-dev (arrangements of one song by several arrangers).
+
 Run: ``python -m pipeline.bench_split --count 2000 --seed 0 --work /tmp/bench-split``.
 """
 from __future__ import annotations
@@ -82,14 +86,25 @@ def run_config(corpus: Path, out: Path, stages: list[dict[str, Any]], workers: i
     return {"rows": rows, "summary": summary, "seconds": seconds, "table": report.table()}
 
 
-def planted_pairs(rows: dict[str, dict], truth: dict[str, dict]) -> tuple[int, int, list]:
-    """``(pairs across parts, kept pairs, examples)`` over pairs of kept files of one truth
-    cluster. Byte-identical copies are one content (one id, always one part) and count once."""
+def load_groups(corpus: Path) -> dict[str, str | None]:
+    """source -> group of a corpus: the truth ``cluster`` of a synth corpus (truth.json; None
+    for a piece with no planted copy), else the ``song`` of a labelled collection
+    (labels.json)."""
+    if (corpus / "truth.json").is_file():
+        files = json.loads((corpus / "truth.json").read_text())["files"]
+        return {src: t.get("cluster") for src, t in files.items()}
+    files = json.loads((corpus / "labels.json").read_text())["files"]
+    return {src: str(t["song"]) for src, t in files.items()}
+
+
+def planted_pairs(rows: dict[str, dict], groups: dict[str, str | None]) -> tuple[int, int, list]:
+    """``(pairs across parts, kept pairs, examples)`` over pairs of kept files of one group.
+    Byte-identical copies are one content (one id, always one part) and count once."""
     by_cluster: dict[str, dict[str, str]] = defaultdict(dict)
-    for src, t in truth.items():
+    for src, g in groups.items():
         r = rows.get(src)
-        if t.get("cluster") and r is not None and r.get("status") == "kept" and r.get("split"):
-            by_cluster[t["cluster"]].setdefault(r["id"], r["split"])
+        if g and r is not None and r.get("status") == "kept" and r.get("split"):
+            by_cluster[g].setdefault(r["id"], r["split"])
     across, total, examples = 0, 0, []
     for cluster, parts in sorted(by_cluster.items()):
         for (a, pa), (b, pb) in combinations(sorted(parts.items()), 2):
@@ -145,18 +160,25 @@ def clusters_keeping_several(rows: dict[str, dict]) -> tuple[int, int]:
 
 
 def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: str | Path | None = None,
-        planted: float | None = None) -> dict[str, Any]:
+        planted: float | None = None, corpus: str | Path | None = None) -> dict[str, Any]:
     """Measure every config on one synth corpus (``planted``: the share of planted files,
-    default the generator's mix); write JSON to ``out`` when given."""
+    default the generator's mix), or on ``corpus`` (a labelled collection); write JSON to
+    ``out`` when given."""
     from .synth import generate
     with tempfile.TemporaryDirectory(prefix="midisift-bench-split-") as tmp:
         base = Path(work) if work is not None else Path(tmp)
-        tag = f"{count}_seed{seed}" + (f"_planted{planted}" if planted is not None else "")
-        corpus = base / f"corpus_{tag}"
-        if not (corpus / "truth.json").is_file():
-            generate(corpus, count, seed=seed, planted=planted)
-        truth = json.loads((corpus / "truth.json").read_text())["files"]
-        result: dict[str, Any] = {"files": len(truth), "seed": seed, "planted": planted, "configs": {}}
+        labelled = corpus is not None
+        if labelled:
+            corpus = Path(corpus).resolve()
+            tag = corpus.name
+        else:
+            tag = f"{count}_seed{seed}" + (f"_planted{planted}" if planted is not None else "")
+            corpus = base / f"corpus_{tag}"
+            if not (corpus / "truth.json").is_file():
+                generate(corpus, count, seed=seed, planted=planted)
+        truth = load_groups(corpus)
+        result: dict[str, Any] = {"files": len(truth), "seed": seed, "planted": planted,
+                                  "labelled": str(corpus) if labelled else None, "configs": {}}
         for name, stages in configs().items():
             slug = "".join(ch if ch.isalnum() else "_" for ch in name)
             res = run_config(corpus, base / f"out_{tag}_{slug}", stages)
@@ -182,7 +204,10 @@ def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: s
 
 def format_table(result: dict[str, Any]) -> str:
     share = "the generator's mix" if result.get("planted") is None else f"{result['planted']:.0%}"
-    lines = [f"{result['files']} generated files (seed {result['seed']}, planted share: {share})",
+    head = (f"{result['files']} files of {result['labelled']} (pairs: files of one labelled group)"
+            if result.get("labelled") else
+            f"{result['files']} generated files (seed {result['seed']}, planted share: {share})")
+    lines = [head,
              f"{'config':34} {'kept':>5} {'planted pairs across parts':>27} {'near drops':>10} "
              f"{'below thr':>9} {'multi-kept clusters':>19} {'seconds':>7}  grouping"]
     for name, r in result["configs"].items():
@@ -203,8 +228,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default=None, help="write the JSON result here")
     ap.add_argument("--planted", type=float, default=None,
                     help="share of planted files (default: the generator's mix, about a third)")
+    ap.add_argument("--corpus", default=None,
+                    help="a labelled collection (labels.json with a song per file) instead of a synth corpus")
     a = ap.parse_args(argv)
-    print(format_table(run(a.count, a.seed, a.work, a.out, a.planted)))
+    print(format_table(run(a.count, a.seed, a.work, a.out, a.planted, a.corpus)))
     return 0
 
 

@@ -141,7 +141,9 @@ class Split(Stage):
         Option("seed", int, 0, "Seed of the placement order of new groups."),
         Option("group_threshold", (int, float, type(None)), 0.2, "Similarity at which files "
                "travel together (below dedup's removal threshold, so near-misses that survive "
-               "dedup still share a part); null turns near-duplicate grouping off.",
+               "dedup still share a part); measured on dedup's signatures when a dedup stage at "
+               "its default signature settings runs before the split, else on the split's own. "
+               "null turns near-duplicate grouping off (the run's table and summary.json say so).",
                _check_threshold),
         Option("group_by_folder", bool, False, "Files in the same folder share a part (files at "
                "the top of the input folder are not grouped by this)."),
