@@ -810,19 +810,28 @@ class Walk:
         return "[" + ",".join(steps) + "]"
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
-        """(stage, reason) that dropped this source, or None when kept."""
-        st = self.status.get(sha)
-        if st is None and self.byte_copy_stage and self.is_byte_copy(rel, sha):
-            if self._reached(sha, self.byte_copy_stage) is not None:
-                return (self.byte_copy_stage, "exact_duplicate")
-        return st
+        """(stage, reason) that dropped this source, or None when kept. A byte-identical copy
+        that reached dedup ends there, with the verdict of ``byte_copy_result``."""
+        if self.byte_copy_stage and self.is_byte_copy(rel, sha):
+            idx = self._reached(sha, self.byte_copy_stage)
+            if idx is not None:
+                r = self.trails[sha][idx]
+                return (self.byte_copy_stage, "exact_duplicate" if r.kept else r.reason)
+        return self.status.get(sha)
 
 
 def byte_copy_result(rep_rel: str, sha: str, rep_result: dict) -> dict:
-    """The dedup verdict of a byte-identical copy of a file that reached dedup."""
+    """The dedup verdict of a byte-identical copy of a file that reached dedup: an exact
+    duplicate of it when dedup kept it; when dedup dropped it as the duplicate of another
+    file, the same verdict (same reason, ``duplicate_of`` and ``similarity``: the copy's own
+    pair with that file is the same bytes' pair)."""
     vals = dict(rep_result.get("values", {}))
-    kept_id = vals.get("duplicate_of") if not rep_result.get("kept", True) and vals.get("duplicate_of") else sha[:16]
-    vals.update({"duplicate_of": kept_id, "similarity": 1.0, "duplicate_kind": "bytes"})
+    if not rep_result.get("kept", True):
+        return {"stage": "dedup", "kept": False, "reason": rep_result.get("reason"),
+                "detail": f"byte-identical copy of {sha[:16]} ({rep_rel}), which dedup dropped: "
+                          f"{rep_result.get('detail')}", "values": vals,
+                "thresholds": rep_result.get("thresholds", {})}
+    vals.update({"duplicate_of": sha[:16], "similarity": 1.0, "duplicate_kind": "bytes"})
     return {"stage": "dedup", "kept": False, "reason": "exact_duplicate",
             "detail": f"byte-identical copy of {sha[:16]} ({rep_rel}); sha256 equal", "values": vals,
             "thresholds": rep_result.get("thresholds", {})}

@@ -439,3 +439,38 @@ def test_a_bridge_arriving_later_keeps_both_ends_and_equals_a_full_computation()
     assert full[a.id].kept and full[c.id].kept and not full[b.id].kept
     again, _ = run([a, b, c], previous=st_full.current, flags={"previous_results": full})
     assert all(again[k] is full[k] for k in full)   # nothing new: the last results as they are
+
+
+def test_a_byte_copy_of_a_dropped_file_carries_that_files_own_pair(tmp_path):
+    """End to end: B (an edited copy of A, dropped as its near duplicate) and B2, B's
+    byte-identical copy. B2's manifest line and its decision trail agree, and name A with B's
+    own similarity (the same bytes' pair), not 1.0; A's byte copy is an exact duplicate."""
+    import json
+
+    import yaml
+
+    from pipeline.config import load_config
+    from pipeline.explain import explain
+    from pipeline.runner import Runner
+    from test_split import _midi_bytes
+    rows = compose(family(2), seed=77)
+    edited, _ = variants(rows, seed=2)["edited"]
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    for name, data in (("a.mid", _midi_bytes(rows)), ("a2.mid", _midi_bytes(rows)),
+                       ("b.mid", _midi_bytes(edited)), ("b2.mid", _midi_bytes(edited))):
+        (corpus / name).write_bytes(data)
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1,
+                                   "stages": [{"validate": {}}, {"dedup": {}}]}))
+    Runner(load_config(cfg), quiet=True).run()
+    got = {json.loads(x)["source"]: json.loads(x)
+           for x in (tmp_path / "out" / "manifest.jsonl").read_text().splitlines()}
+    a, a2, b, b2 = (got[n] for n in ("a.mid", "a2.mid", "b.mid", "b2.mid"))
+    assert a["status"] == "kept" and b["reason"] == "near_duplicate" and b["duplicate_of"] == a["id"]
+    assert 0.3 <= b["similarity"] < 1.0
+    assert (b2["reason"], b2["duplicate_of"], b2["similarity"], b2["duplicate_kind"]) == \
+        ("near_duplicate", a["id"], b["similarity"], "near")
+    assert (a2["reason"], a2["duplicate_of"], a2["similarity"]) == ("exact_duplicate", a["id"], 1.0)
+    trail = explain(tmp_path / "out", "b2.mid")
+    assert "near_duplicate" in trail and "byte-identical copy" in trail
