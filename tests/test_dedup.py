@@ -374,7 +374,7 @@ def test_a_chain_drops_nothing_through_other_members():
     # one cluster (leakage is transitive: the split keeps it in one part), named by A
     assert {r.values["cluster"] for r in res.values()} == {a.id}
     assert {r.values["cluster_size"] for r in res.values()} == {3}
-    assert "2 kept members" in res[c.id].detail and "below threshold" not in res[b.id].detail
+    assert "cluster of 3 that keeps 2" in res[c.id].detail and "below threshold" not in res[b.id].detail
     assert sorted(state.current["kept"]) == sorted([a.id, c.id])
     # the order decides who is kept, never the chain: with B richest, A and C are its duplicates
     b2 = planted("b.mid", pool[150:450], notes=900)

@@ -364,9 +364,9 @@ class Dedup(Stage):
                           f"also in it: {shown}")
             else:
                 others = [x for x in kept if x != k]
-                detail = (f"kept (policy {policy}) in a cluster of {size} with {len(kept)} kept "
-                          f"members: none is similar to another at threshold {threshold:.2f}; "
-                          f"its duplicates: {shown or 'none'}; the other kept: "
+                detail = (f"kept (policy {policy}) in a cluster of {size} that keeps {len(kept)}: "
+                          f"no two of them are similar at threshold {threshold:.2f} (other "
+                          f"members link them); its duplicates: {shown or 'none'}; the other kept: "
                           + ", ".join(f"{x} ({facts[x]['source']})" for x in others[:8])
                           + (f" and {len(others) - 8} more" if len(others) > 8 else ""))
             out[k] = StageResult.keep(detail, values={"cluster": name, "cluster_size": size},
