@@ -17,6 +17,8 @@ For each it reports:
 
 * ``planted pairs across parts``: pairs of kept files of one truth cluster (a piece and its
   planted copies and variants) sitting in different parts, out of all such kept pairs;
+  ``groups across``: truth clusters (or labelled groups) with kept files in more than one part,
+  out of those keeping two or more files;
 * ``drops below threshold``: files dropped as ``near_duplicate`` whose own similarity to the
   kept file they name (``duplicate_of``), recomputed here from the two files (decoded again,
   signed with ``similarity.signature_of`` at the dedup stage's options, compared with
@@ -100,11 +102,7 @@ def load_groups(corpus: Path) -> dict[str, str | None]:
 def planted_pairs(rows: dict[str, dict], groups: dict[str, str | None]) -> tuple[int, int, list]:
     """``(pairs across parts, kept pairs, examples)`` over pairs of kept files of one group.
     Byte-identical copies are one content (one id, always one part) and count once."""
-    by_cluster: dict[str, dict[str, str]] = defaultdict(dict)
-    for src, g in groups.items():
-        r = rows.get(src)
-        if g and r is not None and r.get("status") == "kept" and r.get("split"):
-            by_cluster[g].setdefault(r["id"], r["split"])
+    by_cluster = kept_parts(rows, groups)
     across, total, examples = 0, 0, []
     for cluster, parts in sorted(by_cluster.items()):
         for (a, pa), (b, pb) in combinations(sorted(parts.items()), 2):
@@ -114,6 +112,23 @@ def planted_pairs(rows: dict[str, dict], groups: dict[str, str | None]) -> tuple
                 if len(examples) < 10:
                     examples.append((cluster, a, pa, b, pb))
     return across, total, examples
+
+
+def groups_across(rows: dict[str, dict], groups: dict[str, str | None]) -> tuple[int, int]:
+    """``(groups with kept files in more than one part, groups keeping two or more files)``."""
+    parts = kept_parts(rows, groups)
+    several = [set(p.values()) for p in parts.values() if len(p) > 1]
+    return sum(len(p) > 1 for p in several), len(several)
+
+
+def kept_parts(rows: dict[str, dict], groups: dict[str, str | None]) -> dict[str, dict[str, str]]:
+    """group -> {kept content id: its part}."""
+    by_cluster: dict[str, dict[str, str]] = defaultdict(dict)
+    for src, g in groups.items():
+        r = rows.get(src)
+        if g and r is not None and r.get("status") == "kept" and r.get("split"):
+            by_cluster[g].setdefault(r["id"], r["split"])
+    return by_cluster
 
 
 def drops_below_threshold(corpus: Path, rows: dict[str, dict], dedup_opts: dict[str, Any]
@@ -184,8 +199,10 @@ def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: s
             res = run_config(corpus, base / f"out_{tag}_{slug}", stages)
             rows = res["rows"]
             across, total, examples = planted_pairs(rows, truth)
+            g_across, g_several = groups_across(rows, truth)
             dedup_opts = next((s["dedup"] for s in stages if "dedup" in s), None)
             row: dict[str, Any] = {"planted_pairs_across": across, "planted_pairs_kept": total,
+                                   "groups_across": g_across, "groups_keeping_several": g_several,
                                    "leak_examples": examples, "seconds": round(res["seconds"], 2),
                                    "kept": sum(r["status"] == "kept" for r in rows.values()),
                                    "grouping": res["summary"]["split"].get("stage", {}).get("near_duplicate_grouping"),
@@ -208,7 +225,7 @@ def format_table(result: dict[str, Any]) -> str:
             if result.get("labelled") else
             f"{result['files']} generated files (seed {result['seed']}, planted share: {share})")
     lines = [head,
-             f"{'config':34} {'kept':>5} {'planted pairs across parts':>27} {'near drops':>10} "
+             f"{'config':34} {'kept':>5} {'planted pairs across parts':>27} {'groups across':>13} {'near drops':>10} "
              f"{'below thr':>9} {'multi-kept clusters':>19} {'seconds':>7}  grouping"]
     for name, r in result["configs"].items():
         pairs = f"{r['planted_pairs_across']} of {r['planted_pairs_kept']}"
@@ -216,7 +233,8 @@ def format_table(result: dict[str, Any]) -> str:
         multi = f"{r['clusters_keeping_several']} ({r['files_kept_in_them']} files)" if "near_drops" in r else "-"
         grouping = (f"on ({r['signatures']} signatures)" if r["grouping"]
                     else "off" + (", the run's table says so" if r["table_says_off"] else ", NOT in the table"))
-        lines.append(f"{name:34} {r['kept']:>5} {pairs:>27} {drops} {multi:>19} {r['seconds']:>7.1f}  {grouping}")
+        groups = f"{r['groups_across']} of {r['groups_keeping_several']}"
+        lines.append(f"{name:34} {r['kept']:>5} {pairs:>27} {groups:>13} {drops} {multi:>19} {r['seconds']:>7.1f}  {grouping}")
     return "\n".join(lines)
 
 

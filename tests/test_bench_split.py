@@ -28,6 +28,7 @@ def test_bench_split_counts_what_the_outputs_show(tmp_path):
     assert off["planted_pairs_kept"] == len(pairs) > 0
     assert off["planted_pairs_across"] == sum(a != b for a, b in pairs)
     assert off["grouping"] is False and off["table_says_off"]
+    assert 0 < off["groups_across"] <= off["groups_keeping_several"] == sum(len(p) > 1 for p in by.values())
     for name, r in res["configs"].items():
         if name != "no dedup, group_threshold null":
             assert r["grouping"] is True and r["planted_pairs_across"] == 0, name
