@@ -26,7 +26,7 @@ For each it reports:
   ``similarity``; the target is 0;
 * ``clusters keeping several``: dedup clusters (connected components) that keep more than one
   file (single linkage would have dropped all but one, some only through other members);
-* the run's seconds (one worker).
+* the run's seconds (one worker, an empty output folder, so nothing cached).
 
 ``--corpus FOLDER`` measures a real collection instead: its ``labels.json`` gives each file's
 group (``song``: the files of one song are the pairs that must share a part), e.g. the POP909
@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import shutil
 import tempfile
 import time
 from collections import defaultdict
@@ -69,11 +70,12 @@ def configs() -> dict[str, list[dict[str, Any]]]:
 
 
 def run_config(corpus: Path, out: Path, stages: list[dict[str, Any]], workers: int = 1) -> dict[str, Any]:
-    """Run the pipeline over ``corpus`` into ``out`` (from scratch); the manifest rows by
-    source, the summary and the seconds."""
+    """Run the pipeline over ``corpus`` into ``out`` (emptied first: a whole run, nothing
+    cached); the manifest rows by source, the summary and the seconds."""
     from .config import load_config
     from .runner import Runner
-    out.mkdir(parents=True, exist_ok=True)
+    shutil.rmtree(out, ignore_errors=True)  # a whole run: nothing cached from an earlier one
+    out.mkdir(parents=True)
     cfg_path = out.parent / f"{out.name}.yaml"
     cfg_path.write_text(yaml.safe_dump({"input": str(corpus), "output": str(out), "workers": workers,
                                         "stages": stages}, sort_keys=False))
