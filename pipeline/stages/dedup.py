@@ -199,7 +199,7 @@ class Dedup(Stage):
         """Results for every member. With ``state.flags["previous_results"]`` (the last run's
         results by member id, given by the runner when it stored them), a cluster none of whose
         members is new and none of whose sources changed keeps the last run's results as they
-        are (the same objects are returned): its members, links and kept member are the last
+        are (the same objects are returned): its members, links and kept members are the last
         run's, so recomputing would give the same. Everything that decides which clusters
         exist is computed over the whole corpus each time, as without them."""
         o = self.opts
