@@ -443,3 +443,19 @@ def bind_stages_of(cfg_path):
     from pipeline.config import load_config
     from pipeline.stages.base import bind_stages
     return bind_stages([sc.build() for sc in load_config(cfg_path).stages])
+
+
+def test_files_dedup_keeps_in_one_cluster_share_a_part():
+    """Dedup keeps both ends of a chain A ~ B ~ C (A and C unlike, B dropped): they are one
+    cluster (leakage is transitive), so the split keeps them in one part although A and C share
+    no shingle."""
+    c = Corpus(8)
+    base = [c.fresh() for _ in range(40)]
+    a, z = base[0], base[1]
+    members = [c.member(m) for m in base]
+    assert set_similarity(c.sets[a], c.sets[z])[0] == 0.0
+    for seed in range(6):   # several placements: without the cluster link some would split them
+        upstream = {"dedup": {m: StageResult.keep(values={"cluster": m}) for m in base}}
+        upstream["dedup"][z] = StageResult.keep(values={"cluster": a})
+        got = parts(run(members, upstream=upstream, seed=seed, ratios={"x": 0.5, "y": 0.5})[0])
+        assert got[a] == got[z]
