@@ -26,7 +26,10 @@ For each it reports:
   ``similarity``; the target is 0;
 * ``clusters keeping several``: dedup clusters (connected components) that keep more than one
   file (single linkage would have dropped all but one, some only through other members);
-* the run's seconds (one worker, an empty output folder, so nothing cached).
+* the run's seconds (one worker, an empty output folder, so nothing cached);
+* ``prepare ms/file``: CPU milliseconds per file of ``Dedup.prepare`` and of ``Split.prepare``
+  (what the split adds per file when it signs files itself), side by side on the same decoded
+  files (the first 500 that decode, three rounds, the fastest kept).
 
 ``--corpus FOLDER`` measures a real collection instead: its ``labels.json`` gives each file's
 group (``song``: the files of one song are the pairs that must share a part), e.g. the POP909
@@ -176,6 +179,34 @@ def clusters_keeping_several(rows: dict[str, dict]) -> tuple[int, int]:
     return len(several), sum(several)
 
 
+def prepare_costs(corpus: Path, limit: int = 500, rounds: int = 3) -> dict[str, float]:
+    """CPU ms per file of dedup's and the split's ``prepare`` on the same decoded files."""
+    from .errors import DecodeError
+    from .smf import decode
+    from .stages.base import FileContext
+    from .stages.dedup import Dedup
+    from .stages.split import Split
+    pieces = []
+    for path in sorted(corpus.rglob("*.mid")):
+        if len(pieces) >= limit:
+            break
+        try:
+            piece = decode(path.read_bytes(), source=str(path))
+        except DecodeError:
+            continue
+        if len(piece.notes):
+            pieces.append(piece)
+    best: dict[str, float] = {}
+    for _ in range(rounds):
+        for name, stage in (("dedup.prepare", Dedup()), ("split.prepare", Split())):
+            t = time.process_time()
+            for piece in pieces:
+                stage.prepare(piece, FileContext(piece))
+            ms = 1000 * (time.process_time() - t) / max(1, len(pieces))
+            best[name] = min(best.get(name, ms), ms)
+    return {k: round(v, 4) for k, v in best.items()}
+
+
 def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: str | Path | None = None,
         planted: float | None = None, corpus: str | Path | None = None) -> dict[str, Any]:
     """Measure every config on one synth corpus (``planted``: the share of planted files,
@@ -216,6 +247,7 @@ def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: s
                 row.update(near_drops=n, drops_below_threshold=bad, bad_drop_examples=bad_examples,
                            clusters_keeping_several=several, files_kept_in_them=files)
             result["configs"][name] = row
+        result["prepare_ms_per_file"] = prepare_costs(corpus)
     if out:
         Path(out).write_text(json.dumps(result, indent=1) + "\n")
     return result
@@ -237,6 +269,9 @@ def format_table(result: dict[str, Any]) -> str:
                     else "off" + (", the run's table says so" if r["table_says_off"] else ", NOT in the table"))
         groups = f"{r['groups_across']} of {r['groups_keeping_several']}"
         lines.append(f"{name:34} {r['kept']:>5} {pairs:>27} {groups:>13} {drops} {multi:>19} {r['seconds']:>7.1f}  {grouping}")
+    costs = result.get("prepare_ms_per_file")
+    if costs:
+        lines.append("prepare, CPU ms per file: " + ", ".join(f"{k} {v:.3f}" for k, v in costs.items()))
     return "\n".join(lines)
 
 

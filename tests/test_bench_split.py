@@ -36,4 +36,5 @@ def test_bench_split_counts_what_the_outputs_show(tmp_path):
             assert r["drops_below_threshold"] == 0 and r["near_drops"] > 0, name
     assert res["configs"]["no dedup"]["signatures"] == "split"
     assert res["configs"]["dedup + split"]["signatures"] == "dedup"
-    assert "no dedup" in format_table(res)
+    assert set(res["prepare_ms_per_file"]) == {"dedup.prepare", "split.prepare"}
+    assert "no dedup" in format_table(res) and "split.prepare" in format_table(res)
