@@ -413,9 +413,10 @@ def component_times(config: Path, paths: list[Path], scratch: Path) -> dict[str,
     from .config import load_config
     from .outputs import render
     from .stages import FileContext
+    from .stages.base import bind_stages
     from .runner import StagePlan
     cfg = load_config(config, input=str(scratch), output=str(scratch / "out"), workers=1)
-    stages = [sc.build() for sc in cfg.stages]
+    stages = bind_stages([sc.build() for sc in cfg.stages])
     plans = [StagePlan(s.name, s.opts, s.kind, True) for s in stages]
     spent: dict[str, float] = {"read+decode": 0.0}
     staging = scratch / "component_staging"
@@ -434,6 +435,8 @@ def component_times(config: Path, paths: list[Path], scratch: Path) -> dict[str,
         for st in stages[1:]:
             t = clock()
             if st.kind == "corpus":
+                if not st.has_prepare():  # as the runner: the split may read dedup's arrays
+                    continue
                 st.prepare(piece, ctx)
                 label = f"{st.name}.prepare"
             else:

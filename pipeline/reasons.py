@@ -20,7 +20,7 @@ REASONS: dict[str, tuple[str, str]] = {
     "stage_error": ("any", "a stage raised an unexpected error on this file (a bug: please report it with the file)"),
     "exact_duplicate": ("dedup", "byte-identical to the kept file, or the same notes with other metadata, programs, "
                                  "velocities, tempo events, resolution or SMF format"),
-    "near_duplicate": ("dedup", "similarity to the kept member of its cluster at or above threshold (transposed, "
+    "near_duplicate": ("dedup", "its own similarity to the kept file it names (duplicate_of) at or above threshold (transposed, "
                                 "re-tempoed, re-orchestrated, re-quantized, edited or cut-short copies)"),
     "too_short": ("filter", "duration below min_seconds"),
     "too_long": ("filter", "duration above max_seconds"),

@@ -14,6 +14,17 @@ def in_part_order(counts: dict[str, int], configured: Iterable[str] | None) -> d
     return {p: counts[p] for p in order + sorted(p for p in counts if p not in order)}
 
 
+def grouping_off(split_summary: dict | None) -> bool:
+    """Whether the split of a run did not group near-duplicates (``group_threshold: null``),
+    read from its summary (summary.json's ``split.stage``)."""
+    return bool(split_summary) and split_summary.get("near_duplicate_grouping") is False
+
+
+#: The table's line for a split that did not group near-duplicates.
+GROUPING_OFF = ("split  near-duplicate grouping OFF (group_threshold: null): near-duplicates "
+                "may sit in different parts")
+
+
 @dataclass
 class RunReport:
     """What a run did: counts per stage and reason, timings, where outputs went."""
@@ -28,6 +39,7 @@ class RunReport:
     parts: dict[str, int]
     notes: list[str]
     warnings: list[str] = field(default_factory=list)
+    grouping_off: bool = False
 
     def table(self) -> str:
         drops = [(f"dropped  {stage} / {reason}", n)
@@ -37,6 +49,8 @@ class RunReport:
         w = max([34] + [len(label) + 2 for label, _ in drops + parts])
         lines = [f"{'files in':<{w}}{self.files:>8}", f"{'kept':<{w}}{self.kept:>8}"]
         lines += [f"{label:<{w}}{n:>8}" for label, n in drops + parts]
+        if self.grouping_off:
+            lines.append(GROUPING_OFF)
         lines.append(f"{'contents decoded / reused':<{w}}{self.computed:>8} / {self.cached}")
         lines.append(f"{'seconds':<{w}}{self.timings.get('total', 0.0):>8.2f}")
         lines.append(f"output: {self.output}")

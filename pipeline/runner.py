@@ -35,11 +35,11 @@ from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger, canonical_json, stored_artifacts, stored_result, thresholds_json
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
-from .report import RunReport, in_part_order
+from .report import RunReport, grouping_off, in_part_order
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
 from .stages import CorpusState, FileContext, Member, Stage, StageResult, stage_class
-from .stages.base import options_fingerprint
+from .stages.base import bind_stages, options_fingerprint
 
 BATCH = 2048  # results + artifacts per ledger transaction (also flushed every 2 s): about 300
 #               files; each commit costs a WAL write of its pages, about 1.5 ms
@@ -217,7 +217,7 @@ class Runner:
         self.quiet = quiet
         self.reassign = reassign
         self.retry_failed = retry_failed
-        self.stages: list[Stage] = [sc.build() for sc in config.stages]
+        self.stages: list[Stage] = bind_stages([sc.build() for sc in config.stages])
         self._fps = {s.name: s.fingerprint for s in self.stages}
         # a stage's results depend on its options and on every stage before it
         self._chains: dict[str, str] = {}
@@ -298,7 +298,8 @@ class Runner:
             cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
                                                 values_as_text=True)
                      for s in self.stages if s.kind == "file"}
-        # a corpus stage without a prepare step (split) has nothing to store per file
+        # a corpus stage without a prepare step (the split reading dedup's signatures) has
+        # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if _prepares(s) else _EVERY
                     for s in self.stages if s.kind == "corpus"}
         recorded_out = ledger.outputs()
@@ -373,7 +374,8 @@ class Runner:
                               summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
-                         summary.get("warnings", []))
+                         summary.get("warnings", []),
+                         grouping_off=grouping_off(summary["split"].get("stage")))
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _state_key(self, files: list[SourceFile]) -> str:
@@ -646,8 +648,9 @@ def _bulk_data() -> Iterator[None]:
 
 
 def _prepares(stage: Stage) -> bool:
-    """Whether a corpus stage has a per-file ``prepare`` step of its own."""
-    return type(stage).prepare is not Stage.prepare
+    """Whether a corpus stage has a per-file ``prepare`` step of its own to run (the split has
+    none when it reads dedup's signatures or does not group near-duplicates)."""
+    return stage.has_prepare()
 
 
 class _Everything:
@@ -829,20 +832,27 @@ class Walk:
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
         """(stage, reason) that dropped this source, or None when kept. A byte-identical copy
-        whose content reached dedup is dropped there as ``exact_duplicate`` of its twin, whatever
-        later stages did to the twin: its trail ends at dedup (``trail_of``), so manifest,
-        explain and summary tell the same story."""
+        that reached dedup ends there, with the verdict of ``byte_copy_result``."""
         if self.byte_copy_stage and self.is_byte_copy(rel, sha):
-            if self._reached(sha, self.byte_copy_stage) is not None:
-                return (self.byte_copy_stage, "exact_duplicate")
+            idx = self._reached(sha, self.byte_copy_stage)
+            if idx is not None:
+                r = self.trails[sha][idx]
+                return (self.byte_copy_stage, "exact_duplicate" if r.kept else r.reason)
         return self.status.get(sha)
 
 
 def byte_copy_result(rep_rel: str, sha: str, rep_result: dict) -> dict:
-    """The dedup verdict of a byte-identical copy of a file that reached dedup."""
+    """The dedup verdict of a byte-identical copy of a file that reached dedup: an exact
+    duplicate of it when dedup kept it; when dedup dropped it as the duplicate of another
+    file, the same verdict (same reason, ``duplicate_of`` and ``similarity``: the copy's own
+    pair with that file is the same bytes' pair)."""
     vals = dict(rep_result.get("values", {}))
-    kept_id = vals.get("duplicate_of") if not rep_result.get("kept", True) and vals.get("duplicate_of") else sha[:16]
-    vals.update({"duplicate_of": kept_id, "similarity": 1.0, "duplicate_kind": "bytes"})
+    if not rep_result.get("kept", True):
+        return {"stage": "dedup", "kept": False, "reason": rep_result.get("reason"),
+                "detail": f"byte-identical copy of {sha[:16]} ({rep_rel}), which dedup dropped: "
+                          f"{rep_result.get('detail')}", "values": vals,
+                "thresholds": rep_result.get("thresholds", {})}
+    vals.update({"duplicate_of": sha[:16], "similarity": 1.0, "duplicate_kind": "bytes"})
     return {"stage": "dedup", "kept": False, "reason": "exact_duplicate",
             "detail": f"byte-identical copy of {sha[:16]} ({rep_rel}); sha256 equal", "values": vals,
             "thresholds": rep_result.get("thresholds", {})}

@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from . import __version__
-from .report import RunReport, in_part_order
+from .report import RunReport, grouping_off, in_part_order
 
 NOTE = "nothing changed since the last run: outputs are up to date"
 
@@ -75,7 +75,8 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
     split = summary.get("split", {})
     parts = in_part_order(dict(split.get("outputs", {})), split.get("part_order"))
     return RunReport(output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
-                     counts.get("contents", 0), parts, notes + [NOTE], summary.get("warnings", []))
+                     counts.get("contents", 0), parts, notes + [NOTE], summary.get("warnings", []),
+                     grouping_off=grouping_off(split.get("stage")))
 
 
 def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,

@@ -333,3 +333,144 @@ def test_clusters_as_last_run_keep_their_results_and_the_rest_equals_a_full_comp
     # a source read under another path is never reused (details name sources)
     moved = {m.id for m in second if m.source.startswith("0/")}
     assert not moved & {k for k in reused if full[k].values["cluster_size"] > 1}
+
+
+# --- No chaining: every drop is justified by its own pair -----------------------------------------
+def planted(name: str, shingles: np.ndarray, notes: int) -> Member:
+    """A member whose dedup artifacts are given directly: a shingle set (sorted unique uint64)
+    signed as ``prepare`` signs it, so the test decides the pair similarities exactly."""
+    from pipeline.similarity import minhash
+    sh = np.unique(np.asarray(shingles, dtype=np.uint64))
+    mid = hashlib.sha256(name.encode()).hexdigest()[:16]
+    art = {"content_hash": "content-" + name, "signature": minhash(sh), "shingles": sh,
+           "notes": notes, "duration_beats": float(notes)}
+    return Member(mid, hashlib.sha256(name.encode()).hexdigest(), name, {}, {"dedup": art})
+
+
+def jaccard_or_containment(a: np.ndarray, b: np.ndarray, min_size_ratio: float = 0.75) -> float:
+    """Jaccard |A & B| / |A | B| (Broder 1997), or the containment |A & B| / min(|A|, |B|)
+    when the sizes are within ``min_size_ratio`` and it is higher, computed on Python sets
+    (independently of pipeline.similarity)."""
+    sa, sb = set(a.tolist()), set(b.tolist())
+    inter = len(sa & sb)
+    jac = inter / len(sa | sb)
+    small, large = sorted((len(sa), len(sb)))
+    return max(jac, inter / small) if small >= min_size_ratio * large else jac
+
+
+def test_a_chain_drops_nothing_through_other_members():
+    """A ~ B ~ C with A and C disjoint: B shares half of A and half of C (containment 0.5 with
+    each), so single linkage makes one cluster of three, but C is not a duplicate of A."""
+    pool = np.arange(1, 601, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    a = planted("a.mid", pool[:300], notes=500)          # kept first (most notes)
+    b = planted("b.mid", pool[150:450], notes=400)
+    c = planted("c.mid", pool[300:], notes=300)
+    res, state = run([a, b, c])
+    assert jaccard_or_containment(pool[:300], pool[300:]) == 0.0
+    assert res[a.id].kept and res[c.id].kept, res[c.id].detail
+    assert not res[b.id].kept and res[b.id].reason == "near_duplicate"
+    assert res[b.id].values["duplicate_of"] in (a.id, c.id)
+    assert res[b.id].values["similarity"] == 0.5 == jaccard_or_containment(pool[150:450], pool[:300])
+    # one cluster (leakage is transitive: the split keeps it in one part), named by A
+    assert {r.values["cluster"] for r in res.values()} == {a.id}
+    assert {r.values["cluster_size"] for r in res.values()} == {3}
+    assert "cluster of 3 that keeps 2" in res[c.id].detail and "below threshold" not in res[b.id].detail
+    assert sorted(state.current["kept"]) == sorted([a.id, c.id])
+    # the order decides who is kept, never the chain: with B richest, A and C are its duplicates
+    b2 = planted("b.mid", pool[150:450], notes=900)
+    res2, _ = run([a, b2, c])
+    assert res2[b2.id].kept and not res2[a.id].kept and not res2[c.id].kept
+    assert res2[a.id].values["similarity"] == res2[c.id].values["similarity"] == 0.5
+
+
+def test_a_drop_names_its_most_similar_kept_member():
+    """D links to two kept members (which do not link to each other): it names the closer."""
+    pool = np.arange(1, 1001, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    a = planted("a.mid", pool[:300], notes=500)
+    c = planted("c.mid", pool[500:800], notes=400)
+    d = planted("d.mid", np.concatenate([pool[100:200], pool[500:700]]), notes=100)
+    res, _ = run([a, c, d])
+    assert res[a.id].kept and res[c.id].kept
+    assert res[d.id].values["duplicate_of"] == c.id
+    assert res[d.id].values["similarity"] == round(jaccard_or_containment(d.artifacts["dedup"]["shingles"],
+                                                                          pool[500:800]), 4)
+
+
+def test_every_drop_on_the_corpus_reaches_the_threshold_with_its_own_pair(corpus):
+    members, _ = corpus
+    by_id = {m.id: m for m in members}
+    for opts in ({}, {"threshold": 0.6}, {"keep_policy": "smallest_id"}):
+        res, _ = run(members, opts)
+        t = opts.get("threshold", 0.3)
+        for mid, r in res.items():
+            if r.kept:
+                continue
+            own = jaccard_or_containment(by_id[mid].artifacts["dedup"]["shingles"],
+                                         by_id[r.values["duplicate_of"]].artifacts["dedup"]["shingles"])
+            assert r.values["similarity"] == round(own, 4) and own >= t, r.detail
+            assert res[r.values["duplicate_of"]].kept
+
+
+def test_musical_chain_keeps_both_ends():
+    """Piece A, piece C of another style family, and B = A's first 16 bars then C's last 16:
+    B duplicates A or C, but C is no duplicate of A."""
+    stage = Dedup()
+    ra, rc = compose(family(0), seed=11, bars=36), compose(family(5), seed=12)
+    half = 16 * 4 * TPB
+    rb = [r for r in ra if r[0] < half] + [r for r in rc if r[0] >= half]
+    a, b, c = member("a.mid", ra, stage), member("b.mid", rb, stage), member("c.mid", rc, stage)
+    res, _ = run([a, b, c])
+    assert res[a.id].kept and res[c.id].kept, res[c.id].detail
+    assert not res[b.id].kept and res[b.id].values["similarity"] >= 0.3
+
+
+def test_a_bridge_arriving_later_keeps_both_ends_and_equals_a_full_computation():
+    """A and C kept alone in the first run; B bridging them arrives: both stay kept, B is
+    dropped, and the results with the last run's results equal those computed without."""
+    pool = np.arange(1, 601, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    a = planted("a.mid", pool[:300], notes=300)
+    c = planted("c.mid", pool[300:], notes=300)
+    b = planted("b.mid", pool[150:450], notes=900)   # richest: would be kept first from scratch
+    res1, st1 = run([a, c])
+    full, st_full = run([a, b, c], previous=st1.current)
+    inc, st_inc = run([a, b, c], previous=st1.current, flags={"previous_results": res1})
+    assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in full.items()}
+    assert st_inc.current == st_full.current
+    assert full[a.id].kept and full[c.id].kept and not full[b.id].kept
+    again, _ = run([a, b, c], previous=st_full.current, flags={"previous_results": full})
+    assert all(again[k] is full[k] for k in full)   # nothing new: the last results as they are
+
+
+def test_a_byte_copy_of_a_dropped_file_carries_that_files_own_pair(tmp_path):
+    """End to end: B (an edited copy of A, dropped as its near duplicate) and B2, B's
+    byte-identical copy. B2's manifest line and its decision trail agree, and name A with B's
+    own similarity (the same bytes' pair), not 1.0; A's byte copy is an exact duplicate."""
+    import json
+
+    import yaml
+
+    from pipeline.config import load_config
+    from pipeline.explain import explain
+    from pipeline.runner import Runner
+    from test_split import _midi_bytes
+    rows = compose(family(2), seed=77)
+    edited, _ = variants(rows, seed=2)["edited"]
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    for name, data in (("a.mid", _midi_bytes(rows)), ("a2.mid", _midi_bytes(rows)),
+                       ("b.mid", _midi_bytes(edited)), ("b2.mid", _midi_bytes(edited))):
+        (corpus / name).write_bytes(data)
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1,
+                                   "stages": [{"validate": {}}, {"dedup": {}}]}))
+    Runner(load_config(cfg), quiet=True).run()
+    got = {json.loads(x)["source"]: json.loads(x)
+           for x in (tmp_path / "out" / "manifest.jsonl").read_text().splitlines()}
+    a, a2, b, b2 = (got[n] for n in ("a.mid", "a2.mid", "b.mid", "b2.mid"))
+    assert a["status"] == "kept" and b["reason"] == "near_duplicate" and b["duplicate_of"] == a["id"]
+    assert 0.3 <= b["similarity"] < 1.0
+    assert (b2["reason"], b2["duplicate_of"], b2["similarity"], b2["duplicate_kind"]) == \
+        ("near_duplicate", a["id"], b["similarity"], "near")
+    assert (a2["reason"], a2["duplicate_of"], a2["similarity"]) == ("exact_duplicate", a["id"], 1.0)
+    trail = explain(tmp_path / "out", "b2.mid")
+    assert "near_duplicate" in trail and "byte-identical copy" in trail

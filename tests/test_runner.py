@@ -527,3 +527,20 @@ def test_changing_a_corpus_step_option_decodes_nothing(tmp_path):
     (first_computed, near_low), (second_computed, near_high) = counts
     assert first_computed > 0 and second_computed == 0
     assert near_high < near_low
+
+
+def test_changing_the_split_seed_without_dedup_decodes_nothing(tmp_path):
+    """Without dedup the split signs files itself; its signatures depend on what it signs
+    with, not on its ratios or seed, so a new seed only re-runs the corpus step."""
+    raw = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text())
+    raw["stages"] = [e for e in raw["stages"] if "dedup" not in e]
+    out = tmp_path / "out"
+    computed = []
+    for seed in (0, 5):
+        for entry in raw["stages"]:
+            if "split" in entry:
+                entry["split"] = {**(entry["split"] or {}), "seed": seed}
+        cfg_path = tmp_path / f"cfg{seed}.yaml"
+        cfg_path.write_text(yaml.safe_dump(raw))
+        computed.append(_run(out, config=cfg_path).computed)
+    assert computed[0] > 0 and computed[1] == 0

@@ -4,6 +4,7 @@ overlap, signed with pipeline.similarity.minhash as the dedup stage would store 
 "zero cross-part near-duplicates" check is a brute-force exact comparison of all pairs."""
 from __future__ import annotations
 
+import hashlib
 import random
 
 import numpy as np
@@ -258,3 +259,203 @@ def test_a_stored_split_result_is_recognised_without_parsing():
     assert _same_split(stored, "train", "00000000000000ab", 3)
     assert not _same_split(stored, "test", "00000000000000ab", 3)
     assert not _same_split(stored, "train", "00000000000000ab", 4)
+
+
+# --- The split groups near-duplicates on its own ----------------------------------------------------
+def _compose_and_variants():
+    """Pieces composed in code (tests/test_dedup.py: melody, block chords, bass, drums) and each
+    piece's planted variants (transposed, re-tempoed, re-orchestrated, re-quantized, edited,
+    excerpt): ``[(name, rows, piece keywords, piece number)]``."""
+    from test_dedup import compose, family, variants
+    out = []
+    for k in range(8):
+        rows = compose(family(k), seed=300 + k)
+        out.append((f"p{k}/original.mid", rows, {}, k))
+        if k < 6:
+            for kind, (vrows, kw) in variants(rows, seed=k).items():
+                if kind != "same_content":
+                    out.append((f"p{k}/{kind}.mid", vrows, dict(kw), k))
+    return out
+
+
+def test_the_split_signs_files_unless_dedup_stores_what_it_needs():
+    from pipeline.stages.base import bind_stages
+    from pipeline.stages.dedup import Dedup
+    alone = bind_stages([Split()])[0]
+    assert alone.borrows is None and alone.has_prepare()
+    after = bind_stages([Dedup(), Split()])[1]
+    assert after.borrows == "dedup" and not after.has_prepare()
+    # a removal setting of dedup does not change its signatures; a shingle setting does
+    assert bind_stages([Dedup({"threshold": 0.95}), Split()])[1].borrows == "dedup"
+    assert bind_stages([Dedup({"ngram": 3}), Split()])[1].has_prepare()
+    assert bind_stages([Dedup({"num_perm": 64, "bands": 32}), Split()])[1].has_prepare()
+    # grouping off: nothing to sign
+    assert not bind_stages([Split({"group_threshold": None})])[0].has_prepare()
+
+
+def test_split_without_dedup_groups_planted_near_duplicates():
+    """Members carrying only the split's own arrays (``Split.prepare``, as the runner stores
+    them when no dedup stage runs): every planted variant shares its original's part."""
+    from pipeline.stages.base import FileContext
+    from test_shingles import make_piece
+    stage = Split({"ratios": {"a": 0.5, "b": 0.5}})
+    members, piece_of = [], {}
+    for name, rows, kw, k in _compose_and_variants():
+        tpb = kw.pop("tpb", 480)
+        piece = make_piece(rows, tpb=tpb, **kw)
+        mid = hashlib.sha256(name.encode()).hexdigest()[:16]
+        art = stage.prepare(piece, FileContext(piece, name, mid))
+        assert set(art) == {"signature", "shingles"}
+        members.append(Member(mid, mid * 4, name, {}, {"split": art}))
+        piece_of[mid] = k
+    state = CorpusState()
+    got = parts(stage.run_corpus(members, state))
+    for k in range(8):
+        assert len({got[m] for m in got if piece_of[m] == k}) == 1, k
+    assert len(set(got.values())) == 2     # the groups were spread over both parts
+    summary = state.current["summary"]
+    assert summary["near_duplicate_grouping"] is True and summary["near_duplicate_signatures"] == "split"
+    # with grouping off, the same members are split as single files (and the summary says so)
+    off_state = CorpusState()
+    off = parts(Split({"ratios": {"a": 0.5, "b": 0.5}, "group_threshold": None}).run_corpus(members, off_state))
+    assert any(len({off[m] for m in off if piece_of[m] == k}) > 1 for k in range(6))
+    assert off_state.current["summary"]["near_duplicate_grouping"] is False
+
+
+def _midi_bytes(rows, tpb=480, tempos=((0, 500_000),)) -> bytes:
+    """A format-1 SMF written with mido (the outside writer): one track per row track index,
+    notes as note_on / note_off pairs, a program change per channel, the tempo map."""
+    import io
+
+    import mido
+    mid = mido.MidiFile(type=1, ticks_per_beat=tpb)
+    cond = mido.MidiTrack()
+    last = 0
+    for tick, tempo in tempos:
+        cond.append(mido.MetaMessage("set_tempo", tempo=tempo, time=tick - last))
+        last = tick
+    mid.tracks.append(cond)
+    for tr in sorted({r[5] for r in rows}):
+        events = []
+        programs = {}
+        for s, e, p, ch, prog, _, vel in (r for r in rows if r[5] == tr):
+            programs.setdefault(ch, prog)
+            events.append((s, 1, mido.Message("note_on", channel=ch, note=p, velocity=vel)))
+            events.append((e, 0, mido.Message("note_off", channel=ch, note=p, velocity=0)))
+        track = mido.MidiTrack([mido.Message("program_change", channel=ch, program=prog)
+                                for ch, prog in sorted(programs.items())])
+        now = 0
+        for t, _, msg in sorted(events, key=lambda x: (x[0], x[1])):
+            track.append(msg.copy(time=t - now))
+            now = t
+        mid.tracks.append(track)
+    buf = io.BytesIO()
+    mid.save(file=buf)
+    return buf.getvalue()
+
+
+def test_a_run_without_dedup_keeps_planted_variants_in_one_part(tmp_path):
+    """End to end (files written by mido, config without a dedup stage): the split signs the
+    files itself, every planted variant shares its original's part; with group_threshold null
+    the run's table and summary.json say grouping was off."""
+    import json
+
+    import yaml
+
+    from pipeline.config import load_config
+    from pipeline.runner import Runner
+    from pipeline.uptodate import check_up_to_date
+    corpus = tmp_path / "corpus"
+    piece_of = {}
+    for name, rows, kw, k in _compose_and_variants():
+        path = corpus / name
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(_midi_bytes(rows, **kw))
+        piece_of[name] = k
+
+    def run_with(split_opts: dict, out: str):
+        cfg_path = tmp_path / f"{out}.yaml"
+        cfg_path.write_text(yaml.safe_dump({
+            "input": str(corpus), "output": str(tmp_path / out), "workers": 1,
+            "stages": [{"validate": {}}, {"split": {"ratios": {"a": 0.5, "b": 0.5}, **split_opts}}]}))
+        report = Runner(load_config(cfg_path), quiet=True).run()
+        rows = [json.loads(line) for line in (tmp_path / out / "manifest.jsonl").read_text().splitlines()]
+        summary = json.loads((tmp_path / out / "summary.json").read_text())
+        return cfg_path, report, {r["source"]: r["split"] for r in rows}, summary
+
+    _, report, got, summary = run_with({}, "grouped")
+    assert len(got) == len(piece_of) and all(got.values())
+    for k in range(8):
+        assert len({got[n] for n in got if piece_of[n] == k}) == 1, k
+    assert len(set(got.values())) == 2
+    assert summary["split"]["stage"]["near_duplicate_grouping"] is True
+    assert summary["split"]["stage"]["near_duplicate_signatures"] == "split"
+    assert "grouping OFF" not in report.table()
+
+    cfg_path, report, off, summary = run_with({"group_threshold": None}, "ungrouped")
+    assert summary["split"]["stage"]["near_duplicate_grouping"] is False
+    assert "near-duplicate grouping OFF (group_threshold: null)" in report.table()
+    # the nothing-changed rerun prints the same table line from summary.json
+    again = check_up_to_date(cfg_path)
+    assert again is not None and "near-duplicate grouping OFF" in again.table()
+
+
+def test_a_rerun_without_dedup_ends_with_the_links_of_a_full_search(tmp_path):
+    """Files arrive in two runs (config without dedup): the links the split keeps after the
+    second run equal a full search over every file's stored arrays (pipeline.grouping.near_links)."""
+    import yaml
+
+    from pipeline.config import load_config
+    from pipeline.grouping import near_links
+    from pipeline.ledger import Ledger, load_arrays
+    from pipeline.runner import Runner
+    corpus = tmp_path / "corpus"
+    later = []
+    for name, rows, kw, k in _compose_and_variants():
+        path = corpus / name
+        path.parent.mkdir(parents=True, exist_ok=True)
+        data = _midi_bytes(rows, **kw)
+        if k % 2 and "original" not in name:
+            later.append((path, data))
+        else:
+            path.write_bytes(data)
+    cfg_path = tmp_path / "c.yaml"
+    cfg_path.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1,
+                                        "stages": [{"validate": {}}, {"split": {}}]}))
+    Runner(load_config(cfg_path), quiet=True).run()
+    for path, data in later:
+        path.write_bytes(data)
+    Runner(load_config(cfg_path), quiet=True).run()
+    split = bind_stages_of(cfg_path)[-1]
+    with Ledger(tmp_path / "out" / "state.sqlite") as ledger:
+        saved = ledger.state_for("split")["links"]
+        arts = ledger.artifacts_for("split", split.artifact_fingerprint, set(ledger.artifact_keys("split", split.artifact_fingerprint)))
+        sigs = {sha[:16]: np.asarray(a["signature"], dtype=np.uint32) for sha, a in arts.items()}
+        keys = sorted(arts)
+        sets = load_arrays([arts[sha]["shingles"] for sha in keys])
+    shingles = {sha[:16]: np.asarray(s, dtype=np.uint64) for sha, s in zip(keys, sets)}
+    full = sorted((a, b) for a, b, _ in near_links(sigs, split.opts["group_threshold"], shingles))
+    assert len(full) >= 20 and len(sigs) == len(_compose_and_variants())
+    assert sorted(map(tuple, saved["links"])) == full
+
+
+def bind_stages_of(cfg_path):
+    from pipeline.config import load_config
+    from pipeline.stages.base import bind_stages
+    return bind_stages([sc.build() for sc in load_config(cfg_path).stages])
+
+
+def test_files_dedup_keeps_in_one_cluster_share_a_part():
+    """Dedup keeps both ends of a chain A ~ B ~ C (A and C unlike, B dropped): they are one
+    cluster (leakage is transitive), so the split keeps them in one part although A and C share
+    no shingle."""
+    c = Corpus(8)
+    base = [c.fresh() for _ in range(40)]
+    a, z = base[0], base[1]
+    members = [c.member(m) for m in base]
+    assert set_similarity(c.sets[a], c.sets[z])[0] == 0.0
+    for seed in range(6):   # several placements: without the cluster link some would split them
+        upstream = {"dedup": {m: StageResult.keep(values={"cluster": m}) for m in base}}
+        upstream["dedup"][z] = StageResult.keep(values={"cluster": a})
+        got = parts(run(members, upstream=upstream, seed=seed, ratios={"x": 0.5, "y": 0.5})[0])
+        assert got[a] == got[z]

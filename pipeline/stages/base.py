@@ -176,10 +176,18 @@ class Stage:
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:  # pragma: no cover
         raise NotImplementedError
 
+    def bind(self, earlier: list["Stage"]) -> None:
+        """Called once by whoever runs a config, with the stages configured before this one
+        (e.g. the split reads dedup's signatures when they are the ones it needs)."""
+
     # corpus stages
     def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
         """Per-file work for a corpus stage, run in the worker. Returns numpy arrays/scalars."""
         return {}
+
+    def has_prepare(self) -> bool:
+        """Whether this corpus stage has per-file ``prepare`` work to run and store."""
+        return type(self).prepare is not Stage.prepare
 
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:  # pragma: no cover
         raise NotImplementedError
@@ -200,6 +208,13 @@ def options_fingerprint(name: str, version: int, opts: dict[str, Any]) -> str:
     blob = json.dumps({"stage": name, "version": version, "options": _canonical(opts)},
                       sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+def bind_stages(stages: list[Stage]) -> list[Stage]:
+    """Tell each stage of a config which stages come before it (``Stage.bind``); returns them."""
+    for i, st in enumerate(stages):
+        st.bind(stages[:i])
+    return stages
 
 
 REGISTRY: dict[str, type[Stage]] = {}

@@ -9,9 +9,15 @@ signature. Over the corpus (``run_corpus``):
 2. one representative per content group goes through LSH banding; each candidate pair is
    verified on the exact shingle sets (Jaccard, or containment for excerpts) and linked when
    the similarity reaches ``threshold`` (``near_duplicate``);
-3. clusters are the connected components of the links (union-find); one member per cluster is
-   kept by ``keep_policy``; on a rerun a member kept last time stays kept unless
-   ``displace_kept`` is set, and only new files are compared (stored links are reused).
+3. clusters are the connected components of the links (union-find; they are transitive, as
+   leakage is, and the split keeps each one in one part). Removal is not transitive: in each
+   cluster, members are taken in ``keep_policy`` order (on a rerun, members kept last time
+   first unless ``displace_kept`` is set); a member with a direct link to a member already
+   kept is dropped, else it is kept too. Each dropped member names the kept member it is most
+   similar to among those it links to directly (``duplicate_of``, ``similarity``), so every
+   drop is justified by its own pair, never through other members (a chain A~B~C where A and
+   C are unlike keeps both A and C). Only new files are compared on a rerun (stored links are
+   reused).
 """
 from __future__ import annotations
 
@@ -23,8 +29,7 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..ledger import load_arrays
 from ..score import Piece
-from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, signature_of,
-                          verify_index_pairs)
+from ..similarity import LSHIndex, UnionFind, check_banding, signature_of, verify_index_pairs
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -145,7 +150,7 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 1
+    version = 2
     doc = "Drop exact and near duplicates (MinHash LSH over transposition-invariant note shingles)."
     #: shingle sets are read for the members in candidate pairs and in clusters of several
     #: (split reads them for its candidate pairs too), not for every member
@@ -169,7 +174,8 @@ class Dedup(Stage):
                "Files with fewer distinct shingles are only exact-deduplicated: such short sets "
                "cannot tell a copy from a shared figure (a scale, an arpeggio).", positive),
         Option("keep_policy", str, "most_notes",
-               "Which cluster member is kept: " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
+               "Order in which a cluster's members are kept (the first always; a later one unless "
+               "it is a direct duplicate of one kept before it): " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
                one_of(*KEEP_POLICIES)),
         Option("displace_kept", bool, False,
                "On a rerun, let a newcomer replace a member kept by the previous run.", None),
@@ -195,7 +201,7 @@ class Dedup(Stage):
         """Results for every member. With ``state.flags["previous_results"]`` (the last run's
         results by member id, given by the runner when it stored them), a cluster none of whose
         members is new and none of whose sources changed keeps the last run's results as they
-        are (the same objects are returned): its members, links and kept member are the last
+        are (the same objects are returned): its members, links and kept members are the last
         run's, so recomputing would give the same. Everything that decides which clusters
         exist is computed over the whole corpus each time, as without them."""
         o = self.opts
@@ -213,15 +219,10 @@ class Dedup(Stage):
         ids = sorted(arts)
         prev = {} if state.flags.get("fresh") else (state.previous or {})
         uf = UnionFind(ids)
-        # memory: lists only for members that get a link (most files have none)
-        links: defaultdict[str, list[tuple[str, float, str]]] = defaultdict(list)
 
-        def link(a: str, b: str, sim: float, kind: str) -> None:
-            uf.union(a, b)
-            links[a].append((b, sim, kind))
-            links[b].append((a, sim, kind))
-
-        # 1. exact: bytes, then canonical note content
+        # 1. exact: bytes, then canonical note content (a member's content representative is
+        # the first member with its note content; near links are found between those)
+        content_rep: dict[str, str] = {}
         exact = (("bytes", {k: by_id[k].sha256 for k in ids}),
                  ("content", {k: str(arts[k]["content_hash"]) for k in ids}))
         for kind, value_of in exact:
@@ -229,22 +230,26 @@ class Dedup(Stage):
             for k in ids:
                 v = value_of[k]
                 if v in first:
-                    if uf.find(first[v]) != uf.find(k):
-                        link(first[v], k, 1.0, kind)
+                    uf.union(first[v], k)
                 else:
                     first[v] = k
+        for k in ids:
+            content_rep[k] = first[str(arts[k]["content_hash"])]
         rep_ids = sorted(first.values())  # the first member of each note content
 
-        # 2. near: reuse last run's links when nothing they depend on changed
+        # 2. near: every verified pair of content representatives at or above the threshold
+        # (all of them, not only those that join clusters: a drop needs its own pair); last
+        # run's links are reused when nothing they depend on changed
         present = set(ids)
         reusable = (prev.get("link_fingerprint") == self._link_fingerprint()
                     and set(prev.get("members", [])) <= present)
         old = set(prev.get("members", [])) if reusable else set()
+        near = _NearLinks(content_rep)
         near_links: list[list] = []
         if reusable:
             for a, b, sim in prev.get("links", []):
-                if uf.find(a) != uf.find(b):
-                    link(a, b, float(sim), "near")
+                near.add(a, b, float(sim))
+                uf.union(a, b)
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
@@ -264,17 +269,17 @@ class Dedup(Stage):
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
         verified = verify_index_pairs(index.ids, codes // n_ids, codes % n_ids, _Shingles(facts),
-                                      threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
+                                      threshold, min_size_ratio=float(o["min_size_ratio"]))
         for a, b, sim in verified:
-            links[a].append((b, sim, "near"))
-            links[b].append((a, sim, "near"))
+            near.add(a, b, sim)
+            uf.union(a, b)
             near_links.append([a, b, round(sim, 6)])
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
                      f"{n_candidates} LSH candidate pairs, {len(codes)} plausible by their MinHash "
                      f"estimate, {len(verified)} verified links")
 
-        # 3. clusters and kept members
+        # 3. clusters and their kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
         last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
@@ -296,10 +301,16 @@ class Dedup(Stage):
                 results.update((k, last[k]) for k in group)
                 kept_ids.extend(k for k in group if k in last_kept)
                 continue
-            pool = [k for k in group if k in previously_kept] or group
-            kept = pool[0] if len(pool) == 1 else min(pool, key=lambda k: key(facts[k]))
-            kept_ids.append(kept)
-            results.update(self._cluster_results(group, kept, facts, links, threshold))
+            if len(group) == 1:
+                kept_ids.append(group[0])
+                results[group[0]] = StageResult.keep(
+                    "no duplicate found at threshold %.2f" % threshold, values={
+                        "cluster": group[0], "cluster_size": 1}, thresholds={"similarity": threshold})
+                continue
+            order = sorted(group, key=lambda k: (k not in previously_kept, key(facts[k])))
+            kept, dropped = choose_kept(order, facts, near)
+            kept_ids.extend(kept)
+            results.update(self._cluster_results(order, kept, dropped, facts, threshold))
         state.save("link_fingerprint", self._link_fingerprint())
         state.save("members", ids)
         state.save("links", sorted(near_links))
@@ -322,51 +333,105 @@ class Dedup(Stage):
                     return False
         return True
 
-    def _cluster_results(self, group: list[str], kept: str, facts: dict[str, _Facts],
-                         links: dict[str, list], threshold: float) -> dict[str, StageResult]:
-        size = len(group)
-        k = facts[kept] if size > 1 else None
-        out: dict[str, StageResult] = {}
-        others = []
+    def _cluster_results(self, order: list[str], kept: list[str],
+                         dropped: dict[str, tuple[str, float, str]], facts: dict[str, _Facts],
+                         threshold: float) -> dict[str, StageResult]:
+        """The results of one cluster of several: ``order`` its members in keep order,
+        ``kept`` the kept ones (the first names the cluster), ``dropped`` member -> (kept
+        member it duplicates, their own similarity, kind) (see ``choose_kept``)."""
+        size, name = len(order), kept[0]
         limits = {"similarity": threshold}
-        for mid in group:
-            if mid == kept:
+        out: dict[str, StageResult] = {}
+        dups: dict[str, list[str]] = {k: [] for k in kept}
+        for mid in order:
+            if mid not in dropped:
                 continue
-            f = facts[mid]
-            if f["sha256"] == k["sha256"]:
-                kind, sim, measure = "bytes", 1.0, "identical bytes"
-            elif f["content_hash"] == k["content_hash"]:
-                kind, sim, measure = "content", 1.0, "identical note content"
-            else:
-                kind = "near"
-                sim, measure = set_similarity(f["shingles"], k["shingles"],
-                                              min_size_ratio=float(self.opts["min_size_ratio"]))
-            reason = "near_duplicate" if kind == "near" else "exact_duplicate"
+            rep, sim, kind = dropped[mid]
             if kind == "near":
-                how = f"{measure} {sim:.2f}"
-                how += f" >= threshold {threshold:.2f}" if sim >= threshold else self._chain(mid, links, facts)
+                how = f"similarity {sim:.2f} >= threshold {threshold:.2f}"
             else:
-                how = measure
-            detail = f"{'near' if kind == 'near' else 'exact'} duplicate of {kept} ({k['source']}), {how}; cluster of {size}"
-            out[mid] = StageResult.drop(reason, detail, values={
-                "cluster": kept, "cluster_size": size, "duplicate_of": kept,
-                "similarity": round(float(sim), 4), "duplicate_kind": kind}, thresholds=limits)
-            others.append(f"{mid} ({f['source']}, {kind} {sim:.2f})")
-        if size == 1:
-            detail = "no duplicate found at threshold %.2f" % threshold
-        else:
-            shown = ", ".join(others[:8]) + (f" and {len(others) - 8} more" if len(others) > 8 else "")
-            detail = (f"kept as the representative of a cluster of {size} "
-                      f"(policy {self.opts['keep_policy']}); also in it: {shown}")
-        out[kept] = StageResult.keep(detail, values={"cluster": kept, "cluster_size": size},
-                                     thresholds=limits)
+                how = "identical bytes" if kind == "bytes" else "identical note content"
+            detail = (f"{'near' if kind == 'near' else 'exact'} duplicate of {rep} "
+                      f"({facts[rep]['source']}), {how}; cluster of {size}")
+            out[mid] = StageResult.drop(
+                "near_duplicate" if kind == "near" else "exact_duplicate", detail, values={
+                    "cluster": name, "cluster_size": size, "duplicate_of": rep,
+                    "similarity": round(float(sim), 4), "duplicate_kind": kind}, thresholds=limits)
+            dups[rep].append(f"{mid} ({facts[mid]['source']}, {kind} {sim:.2f})")
+        policy = self.opts["keep_policy"]
+        for k in kept:
+            shown = ", ".join(dups[k][:8]) + (f" and {len(dups[k]) - 8} more" if len(dups[k]) > 8 else "")
+            if len(kept) == 1:
+                detail = (f"kept as the representative of a cluster of {size} (policy {policy}); "
+                          f"also in it: {shown}")
+            else:
+                others = [x for x in kept if x != k]
+                detail = (f"kept (policy {policy}) in a cluster of {size} that keeps {len(kept)}: "
+                          f"no two of them are similar at threshold {threshold:.2f} (other "
+                          f"members link them); its duplicates: {shown or 'none'}; the other kept: "
+                          + ", ".join(f"{x} ({facts[x]['source']})" for x in others[:8])
+                          + (f" and {len(others) - 8} more" if len(others) > 8 else ""))
+            out[k] = StageResult.keep(detail, values={"cluster": name, "cluster_size": size},
+                                      thresholds=limits)
         return out
 
-    @staticmethod
-    def _chain(mid: str, links: dict[str, list], facts: dict[str, _Facts]) -> str:
-        """Explain an indirect cluster member: its strongest direct link."""
-        if not links[mid]:
-            return ""
-        other, sim, kind = max(links[mid], key=lambda t: (t[1], t[0]))
-        return (f" (below threshold directly; linked through {other} ({facts[other]['source']}), "
-                f"{'similarity' if kind == 'near' else kind} {sim:.2f})")
+
+class _NearLinks:
+    """The verified near links, between note contents: members with one note content (its
+    representative is ``content_rep[member]``) share their links and their similarities."""
+
+    __slots__ = ("content_rep", "_adj")
+
+    def __init__(self, content_rep: dict[str, str]):
+        self.content_rep = content_rep
+        # memory: entries only for contents with a link (most files have none)
+        self._adj: defaultdict[str, dict[str, float]] = defaultdict(dict)
+
+    def add(self, a: str, b: str, sim: float) -> None:
+        ca, cb = self.content_rep[a], self.content_rep[b]
+        if ca != cb:
+            self._adj[ca][cb] = sim
+            self._adj[cb][ca] = sim
+
+    def of(self, member: str) -> dict[str, float]:
+        """Content representative -> similarity, for every content linked to the member's."""
+        return self._adj.get(self.content_rep[member], {})
+
+
+def choose_kept(order: list[str], facts: Any, near: _NearLinks
+                ) -> tuple[list[str], dict[str, tuple[str, float, str]]]:
+    """The kept members of one cluster, and for each other member the kept member it
+    duplicates: ``(kept, {member: (kept member, similarity, kind)})``.
+
+    Members are taken in ``order`` (the keep order): one with a direct link to a member kept
+    before it (same bytes, same note content, or a verified near link at the threshold) is
+    dropped, else it is kept. A dropped member then names, among all kept members it links to
+    directly, the most similar (exact before near at equal similarity, then the first in
+    ``order``). So no drop rests on a chain through other members, and no two kept members
+    are linked directly (a rerun that puts last run's kept members first keeps them all)."""
+    rank = {k: i for i, k in enumerate(order)}
+    kept: list[str] = []
+    kept_content: dict[str, str] = {}  # content representative -> the kept member with it
+
+    def links_to_kept(k: str) -> list[tuple[float, str, str]]:
+        found = []
+        same = kept_content.get(near.content_rep[k])
+        if same is not None:
+            kind = "bytes" if facts[k]["sha256"] == facts[same]["sha256"] else "content"
+            found.append((1.0, kind, same))
+        for c, sim in near.of(k).items():
+            if c in kept_content:
+                found.append((sim, "near", kept_content[c]))
+        return found
+
+    for k in order:
+        if not links_to_kept(k):
+            kept.append(k)
+            kept_content[near.content_rep[k]] = k
+    dropped: dict[str, tuple[str, float, str]] = {}
+    for k in order:
+        if kept_content.get(near.content_rep[k]) == k:
+            continue
+        sim, kind, rep = max(links_to_kept(k), key=lambda t: (t[0], t[1] != "near", -rank[t[2]]))
+        dropped[k] = (rep, sim, kind)
+    return kept, dropped

@@ -3,8 +3,14 @@
 Which files travel together (one group, never split across parts):
 
 * near-duplicates at ``group_threshold`` (lower than dedup's removal threshold, so near-misses
-  that survived dedup still travel together), found on dedup's stored signatures and shingles
-  (``Member.artifacts["dedup"]``); members of one dedup ``cluster`` too;
+  that survived dedup still travel together), found on MinHash signatures and shingle sets made
+  by the function dedup's ``prepare`` uses (``pipeline.similarity.signature_of``) at dedup's
+  default settings, on which ``group_threshold`` is calibrated. When a dedup stage with those
+  settings runs before the split, the split reads its stored arrays
+  (``Member.artifacts["dedup"]``); without one (or with dedup at other settings) the split's own
+  ``prepare`` makes them, so the split groups near-duplicates on its own. Only
+  ``group_threshold: null`` turns this off, and the run's table and summary.json then say so;
+* members of one dedup ``cluster`` (a connected component of dedup's links) too;
 * all augmentation copies of one source: they are one ``Member`` with several outputs, so they
   travel together by construction and weigh as many files as they write in the ratios
   (``output_count``);
@@ -30,10 +36,21 @@ from ..errors import ConfigError
 from ..records import Result
 from ..grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups, group_by_key,
                         near_links)
-from .base import CorpusState, Member, Option, Stage, StageResult, register
+from ..score import Piece
+from ..similarity import signature_of
+from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
+                   options_fingerprint, register)
+from .dedup import Dedup
 
 _PART_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
 DEFAULT_RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
+
+def signature_options() -> dict[str, Any]:
+    """The settings the split signs files with: dedup's defaults for every option its
+    ``prepare`` reads (``Dedup.prepare_options``; ``group_threshold`` is calibrated on them).
+    A dedup stage before the split with these settings stores the arrays the split reads."""
+    defaults = {o.name: o.default for o in Dedup.options}
+    return {k: defaults[k] for k in Dedup.prepare_options}
 
 
 def check_ratios(v: Any) -> str | None:
@@ -110,15 +127,19 @@ class Split(Stage):
 
     name = "split"
     kind = "corpus"
-    version = 1
+    version = 2
     doc = "Leakage-free, rerun-stable split of the kept files into parts."
+    #: shingle sets are read for the members in candidate pairs only
+    deferred_artifacts = ("shingles",)
     options = (
         Option("ratios", dict, dict(DEFAULT_RATIOS), "Part name -> share of the kept files "
                "(positive, summing to 1). Parts may be renamed or added.", check_ratios),
         Option("seed", int, 0, "Seed of the placement order of new groups."),
         Option("group_threshold", (int, float, type(None)), 0.2, "Similarity at which files "
                "travel together (below dedup's removal threshold, so near-misses that survive "
-               "dedup still share a part); null turns near-duplicate grouping off.",
+               "dedup still share a part); measured on dedup's signatures when a dedup stage at "
+               "its default signature settings runs before the split, else on the split's own. "
+               "null turns near-duplicate grouping off (the run's table and summary.json say so).",
                _check_threshold),
         Option("group_by_folder", bool, False, "Files in the same folder share a part (files at "
                "the top of the input folder are not grouped by this)."),
@@ -137,6 +158,39 @@ class Split(Stage):
         problem = self.check_options(self.opts)
         if problem:
             raise ConfigError(problem, location="split.freeze")
+        #: "dedup" when a dedup stage before the split stores the signatures it needs
+        #: (``bind``); None: the split's own ``prepare`` makes them
+        self.borrows: str | None = None
+
+    @property
+    def fingerprint(self) -> str:
+        """The options' fingerprint, plus what the split signs files with (dedup's version and
+        default signature settings): a change there re-signs the files."""
+        return options_fingerprint(self.name, self.version, {
+            **self.opts, "signatures": {"dedup_version": Dedup.version, **signature_options()}})
+
+    @property
+    def artifact_fingerprint(self) -> str:
+        """The split's own signatures depend only on what it signs with, not on its options:
+        new ratios or a new seed re-sign no file."""
+        return options_fingerprint(f"{self.name}.prepare", self.version,
+                                   {"dedup_version": Dedup.version, **signature_options()})
+
+    def bind(self, earlier: list[Stage]) -> None:
+        """Read dedup's stored signatures when a dedup stage before the split makes them with
+        the settings the split needs; else sign the files in ``prepare``."""
+        wanted = signature_options()
+        self.borrows = next((st.name for st in earlier if isinstance(st, Dedup)
+                             and all(st.opts.get(k) == v for k, v in wanted.items())), None)
+
+    def has_prepare(self) -> bool:
+        return self.opts["group_threshold"] is not None and self.borrows is None
+
+    def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
+        """MinHash signature and shingle set of one piece, by dedup's function at dedup's
+        default settings (when no dedup stage before the split stores them)."""
+        sig, sh, _ = signature_of(piece, signature_options())
+        return {"signature": sig, "shingles": sh}
 
     @classmethod
     def check_options(cls, opts: dict[str, Any]) -> str | None:
@@ -158,7 +212,7 @@ class Split(Stage):
         previous = {} if state.flags.get("reassign") else saved
         ids = sorted(m.id for m in members)
         sizes = {m.id: output_count(m) for m in members}
-        links, ghosts = self._links(members, state, previous)
+        links, ghosts, signed = self._links(members, state, previous)
         for g in ghosts:
             sizes[g] = 0.0
         groups = build_groups(ids + sorted(ghosts), links, self._forced(members))
@@ -190,32 +244,40 @@ class Split(Stage):
                 detail = f"moved from {old} to {new}: {why}"
                 state.report(f"split: {m} moved from {old} to {new}: {why}")
             results[m] = StageResult.keep(detail=detail, values=values)
-        if self.opts["group_threshold"] is not None and members and not any(
-                "dedup" in m.artifacts for m in members):
-            state.report("split: no dedup signatures reached the split (is dedup before split?); "
-                         "near-duplicate grouping was skipped")
+        grouping = self.opts["group_threshold"] is not None
+        if grouping and members and not signed:
+            grouping = False
+            state.report("split: no file reached the split with a signature; near-duplicate "
+                         "grouping was skipped")
         kept_assign = {m: assignment[m] for m in ids}
         state.save("assignments", {**previous, **kept_assign})
         state.save("summary", split_summary(kept_assign, ratios, sizes, len(moved),
-                                            self.opts["group_threshold"], len(groups)))
+                                            self.opts["group_threshold"], len(groups), grouping,
+                                            signed))
         return results
 
     def _links(self, members: list[Member], state: CorpusState,
-               previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str]]:
+               previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str], str | None]:
         """Near-duplicate links among members, and links to dedup cluster-mates that left the
-        split but carry a previous part (the ghosts)."""
+        split but carry a previous part (the ghosts); and the stage whose signatures were
+        compared (None when grouping is off or no member has one)."""
         links: list[tuple[str, str]] = []
         threshold = self.opts["group_threshold"]
         sigs, shingles = {}, {}
+        signed_by: set[str] = set()
         for m in members:
-            art = m.artifacts.get("dedup") or {}
+            # the split's own arrays, else those dedup stored (``bind``)
+            source = self.name if m.artifacts.get(self.name) else "dedup"
+            art = m.artifacts.get(source) or {}
             if art.get("signature") is not None:
+                signed_by.add(source)
                 sigs[m.id] = np.asarray(art["signature"], dtype=np.uint32)
                 if art.get("shingles") is not None:  # may still be in the ledger (read if compared)
                     shingles[m.id] = art["shingles"]
+        signed = ", ".join(sorted(signed_by)) if threshold is not None and signed_by else None
         if threshold is not None and len(sigs) > 1:
             use_sh = shingles if len(shingles) == len(sigs) else None
-            links += self._near_links(sigs, use_sh, state)
+            links += self._near_links(sigs, use_sh, state, signed)
         ghosts: set[str] = set()
         dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
@@ -233,16 +295,17 @@ class Split(Stage):
                     ghosts.add(x)
                 if x != inside[0] and (x in here or x in ghosts):
                     links.append((inside[0], x))
-        return links, ghosts
+        return links, ghosts, signed
 
     def _near_links(self, sigs: dict[str, np.ndarray], shingles: dict[str, np.ndarray] | None,
-                    state: CorpusState) -> list[tuple[str, str]]:
+                    state: CorpusState, signed: str | None) -> list[tuple[str, str]]:
         """Near-duplicate links at ``group_threshold``, incrementally: links among files seen by
         the last run under the same signature settings are reused, and only pairs with a new
         file are searched. The links are saved for the next run."""
         threshold = self.opts["group_threshold"]
         first = next(iter(sigs.values()))
-        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}"
+        signer = options_fingerprint("signatures", Dedup.version, {"by": signed, **signature_options()})
+        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
         here = set(sigs)
@@ -267,8 +330,12 @@ class Split(Stage):
 
 
 def split_summary(assignment: dict[str, str], ratios: dict[str, float], sizes: dict[str, float],
-                  moved: int, group_threshold: float | None, groups: int) -> dict[str, Any]:
-    """Counts and achieved ratios per part (files weighted by their outputs) for summary.json."""
+                  moved: int, group_threshold: float | None, groups: int, grouping: bool = True,
+                  signatures: str | None = None) -> dict[str, Any]:
+    """Counts and achieved ratios per part (files weighted by their outputs) for summary.json,
+    and whether near-duplicates were grouped (``near_duplicate_grouping``; false with
+    ``group_threshold: null``) and on whose signatures (``near_duplicate_signatures``: the
+    stage that made them, ``dedup`` or ``split``)."""
     counts = dict.fromkeys(ratios, 0)
     files = dict.fromkeys(ratios, 0)
     for m, p in assignment.items():
@@ -277,4 +344,5 @@ def split_summary(assignment: dict[str, str], ratios: dict[str, float], sizes: d
     achieved = achieved_ratios(assignment, ratios, sizes)
     return {"members": counts, "files": files, "target": dict(ratios),
             "achieved": {p: round(v, 6) for p, v in achieved.items()},
-            "moved": moved, "groups": groups, "group_threshold": group_threshold}
+            "moved": moved, "groups": groups, "group_threshold": group_threshold,
+            "near_duplicate_grouping": grouping, "near_duplicate_signatures": signatures if grouping else None}
