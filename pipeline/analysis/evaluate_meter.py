@@ -164,7 +164,7 @@ def _corpus_file(path: Path) -> dict[str, Any] | None:
             return {}
     root = str(path).split("/corpus/", 1)[-1].replace("/", "-")
     rec = _cached_json("file-" + root, build)
-    return rec or None
+    return {**rec, "name": str(path).split("/corpus/", 1)[-1]} if rec else None
 
 
 def folk(split: str) -> list[dict[str, Any]]:
@@ -187,23 +187,45 @@ def chorales(split: str, limit: int = 120) -> list[dict[str, Any]]:
     return [r for r in map(_corpus_file, paths) if r is not None]
 
 
+#: Preferred encoding when a corpus work comes in several (the same notes twice would put one
+#: work on both sides of the development / held-out split).
+_SUFFIX_ORDER = (".mxl", ".xml", ".musicxml", ".krn")
+
+
 def classical_paths() -> list[Path]:
+    """The classical set's files: one encoding per work (``_SUFFIX_ORDER``), no ``_old``
+    duplicates, size-limited."""
     from music21 import corpus
     root = Path(corpus.getComposer("bach")[0]).parents[1]
-    paths = []
+    chosen: dict[tuple[Path, str], Path] = {}
     for d in CLASSICAL_DIRS:
         for p in sorted((root / d).rglob("*")):
-            if (p.suffix in (".mxl", ".xml", ".musicxml", ".krn") and p.is_file()
+            if (p.suffix in _SUFFIX_ORDER and p.is_file() and not p.stem.endswith("_old")
                     and p.stat().st_size <= CLASSICAL_MAX_BYTES
                     and not any(r in str(p) for r in RESERVED)):
-                paths.append(p)
-    return paths
+                key = (p.parent, p.stem)
+                if key not in chosen or _SUFFIX_ORDER.index(p.suffix) < \
+                        _SUFFIX_ORDER.index(chosen[key].suffix):
+                    chosen[key] = p
+    return sorted(chosen.values())
+
+
+def _distinct(works: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The works whose note lists differ from every earlier one's (the corpus holds a few
+    works twice under different names)."""
+    seen, out = set(), []
+    for w in works:
+        key = hash(tuple(map(tuple, w["notes"])))
+        if key not in seen:
+            seen.add(key)
+            out.append(w)
+    return out
 
 
 def classical(split: str) -> list[dict[str, Any]]:
     """Single-meter movements of the other corpus works; alternate files dev / held."""
-    paths = classical_paths()[(0 if split == "dev" else 1)::2]
-    return [r for r in map(_corpus_file, paths) if r is not None]
+    works = _distinct([r for r in map(_corpus_file, classical_paths()) if r is not None])
+    return works[(0 if split == "dev" else 1)::2]
 
 
 # ---------------------------------------------------------------------------------------------
