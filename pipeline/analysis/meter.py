@@ -155,7 +155,8 @@ def _squeeze_gaps(bins: np.ndarray) -> np.ndarray:
 
     The common bar is the least common multiple of every candidate bar length, so each onset
     keeps its position in every candidate bar and the lags the method looks at (up to two bars)
-    see the same onsets; what is removed is silence. This bounds the accent function by the
+    see the same onsets (the longest lag, 32 quarters, is shorter than a common bar); what is
+    removed is silence. This bounds the accent function by the
     number of onsets, not by the file's tick span (a valid 197-byte file with one note at tick
     268 million would otherwise ask for gigabytes)."""
     if len(bins) == 0:
@@ -359,25 +360,49 @@ def meter_features(acc: np.ndarray, r: list[float], median_ioi: float) -> np.nda
     return _features(bar_fold(acc), r, median_ioi)
 
 
-def _contrast_matrix() -> tuple[np.ndarray, np.ndarray]:
-    """The downbeat contrasts as one linear map of the common-bar fold: row (c, j) gives, for
-    contrast c and position j of its bar, the accent at j minus the mean accent at the same
-    position of the bar's other beats; the contrast is the largest of its rows (``starts``:
-    first row of each contrast)."""
-    rows, starts = [], []
+def _contrast_plan() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Index arrays that compute every downbeat contrast from one ``np.bincount``.
+
+    Folding the common-bar fold at each bar length n and beat length n/k used by ``CONTRASTS``
+    gives, for contrast (n, k) and position j of its bar, the accent at j (``h_n[j]``) and its
+    sum over the k beats at that position (``h_{n/k}[j mod n/k]``); the contrast row is
+    ``h_n[j] * k/(k-1) - h_{n/k}[j mod n/k] / (k-1)`` (the accent at j minus the mean of the
+    other beats) and the contrast the largest of its rows. Returns (fold index, its length,
+    row positions in the folds, beat-sum positions, the two coefficients per row, first row
+    of each contrast)."""
+    bars = [(int(round(bar * BINS_PER_BEAT)), beats) for bar, beats in CONTRASTS]
+    lengths = sorted({n for n, _ in bars} | {n // k for n, k in bars})
+    offset, total = {}, 0
+    for n in lengths:
+        offset[n] = total
+        total += n
     pos = np.arange(COMMON_BAR_BINS)
-    for bar, beats in CONTRASTS:
-        n = int(round(bar * BINS_PER_BEAT))
-        step = n // beats
-        starts.append(len(rows))
+    fold_index = np.concatenate([offset[n] + pos % n for n in lengths])
+    at, col, ca, cb, starts = [], [], [], [], []
+    for n, k in bars:
+        starts.append(len(at))
         for j in range(n):
-            at = (pos % n == j).astype(np.float64)
-            same = (pos % step == j % step).astype(np.float64)
-            rows.append(at - (same - at) / (beats - 1))
-    return np.array(rows), np.array(starts)
+            at.append(offset[n] + j)
+            col.append(offset[n // k] + j % (n // k))
+            ca.append(k / (k - 1))
+            cb.append(1 / (k - 1))
+    return (fold_index, len(lengths), np.array(at), np.array(col),
+            np.array([ca, cb]), np.array(starts))
 
 
-_CONTRAST_M, _CONTRAST_STARTS = _contrast_matrix()
+_FOLD_INDEX, _N_FOLDS, _ROW_AT, _ROW_BEATS, _ROW_COEF, _CONTRAST_STARTS = _contrast_plan()
+
+
+def _contrasts(fold: np.ndarray) -> np.ndarray:
+    """The downbeat contrasts of a common-bar fold (not divided by its total), see
+    ``_contrast_plan``. One ``bincount`` and a few vector operations: no BLAS call, whose
+    threads would cost start-up time in a busy worker and make the last bits depend on the
+    machine."""
+    h = np.bincount(_FOLD_INDEX, weights=np.tile(fold, _N_FOLDS))
+    rows = h[_ROW_AT] * _ROW_COEF[0] - h[_ROW_BEATS] * _ROW_COEF[1]
+    return np.maximum.reduceat(rows, _CONTRAST_STARTS)
+
+
 #: Positions within the quarter read as grid features, relative to the strongest position.
 _GRID_POS = np.array([0, 6, 4, 8, 3, 9])
 
@@ -389,7 +414,7 @@ def _features(fold: np.ndarray, r: list[float], median_ioi: float) -> np.ndarray
         return np.zeros(len(FEATURE_NAMES))
     q = np.add.reduce(fold.reshape(-1, BINS_PER_BEAT), axis=0)
     grid = q[(_GRID_POS + int(np.argmax(q))) % BINS_PER_BEAT] / total
-    contrasts = np.maximum.reduceat(_CONTRAST_M @ fold, _CONTRAST_STARTS) / total
+    contrasts = _contrasts(fold) / total
     ioi = math.log2(min(max(median_ioi, 1 / 16), 8.0))
     return np.concatenate((r, (ioi,), grid, contrasts))
 

@@ -1,7 +1,12 @@
 """Stage ``key_meter``: key and meter of the source file, plus tempo and quantization.
 
-Never drops a file. The key estimate is memoized in the file context under a name that includes
-every option that changes it, so ``transpose`` (before or after this stage) reuses it.
+Never drops a file. Declared values are kept as the file says them (``key_declared``,
+``meter_declared``) and flagged when they look like sequencer defaults: a one-beat time
+signature such as 1/4 (then ``meter`` is the estimate), a C major key signature on a piece whose
+estimated key has another signature; a declared meter whose family the estimate rules out is
+replaced by the estimate too. The key estimate is memoized in the file context under a name
+that includes every option that changes it, so ``transpose`` (before or after this stage)
+reuses it.
 """
 from __future__ import annotations
 
