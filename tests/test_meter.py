@@ -395,3 +395,14 @@ def test_fit_logistic_learns_a_separable_problem():
     x = centres[y] + rng.standard_normal((len(y), 2)) * 0.5
     W, B = ev.fit_logistic(x, y, np.ones(len(y)), 3, l2=1e-3, steps=500)
     assert (np.argmax(x @ W.T + B, axis=1) == y).mean() >= 0.98
+
+
+def test_meter_contradiction_option_is_checked():
+    from pipeline.config import validate_stage_options
+    from pipeline.errors import ConfigError
+    with pytest.raises(ConfigError, match="meter_contradiction"):
+        validate_stage_options("key_meter", {"meter_contradiction": 1.5}, "stages[0].key_meter")
+    opts = validate_stage_options("key_meter", {"meter_contradiction": 0.2}, "stages[0].key_meter")
+    assert opts["meter_contradiction"] == 0.2
+    assert validate_stage_options("key_meter", {}, "k")["meter_contradiction"] == \
+        metermod.CONTRADICTION_PROBABILITY

@@ -1,6 +1,7 @@
 """Reproduce the meter-estimation figures of the README across genres.
 
-    python -m pipeline.analysis.evaluate_meter [--pop /work/shared/data/pop909-dev] [--sets ...]
+    python -m pipeline.analysis.evaluate_meter [--pop FOLDER] [--sets ...] [--speed]
+    python -m pipeline.analysis.evaluate_meter --train --pop FOLDER   # refit meter_weights.py
 
 Sets (truth = the meter the score notates; the estimate never sees it: pieces are built
 without time-signature events, and the pop files' declared time signatures are removed):
@@ -11,7 +12,8 @@ without time-signature events, and the pop files' declared time signatures are r
 - ``chorales``: Bach chorales (declared time signature), even-numbered files for development,
   odd-numbered held out (``chorales-dev`` / ``chorales-held``);
 - ``classical``: the other single-meter movements of music21's corpus (string quartets, songs,
-  piano pieces, Monteverdi madrigals), every other file held out (``classical-dev`` / -held);
+  piano pieces, Monteverdi madrigals; one encoding per work, repeated works once), every
+  other work held out (``classical-dev`` / ``classical-held``);
 - ``pop``: the pop-arrangement dev set given by ``--pop`` (``labels.json``: ``meter_exact``);
   songs whose number is 1 mod 4 for development, 3 mod 4 held out. In its 6/8 songs the
   file's quarter note carries the dotted-quarter beat and the annotated downbeats are four
@@ -19,7 +21,8 @@ without time-signature events, and the pop files' declared time signatures are r
 
 music21's folders ``oneills1850``, ``essenFolksong`` and ``ryansMammoth`` are reserved for
 independent evaluation and never read. music21 parses are cached as JSON under
-``/tmp/meter-cache/<music21 version>`` (the first run takes a few minutes; later runs seconds).
+``/tmp/meter-cache/<music21 version>`` (the first run takes about 20 minutes on a shared
+2-core machine; later runs about two).
 Tied notes are merged (``stripTies``); chord symbols and grace notes are not played notes and
 are left out.
 """

@@ -15,7 +15,7 @@ from typing import Any
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
 from ..score import Piece
-from .base import FileContext, Option, Stage, StageResult, register
+from .base import FileContext, Option, Stage, StageResult, in_range, register
 
 
 def _check_profile(value: Any) -> str | None:
@@ -64,12 +64,6 @@ def shared_key_estimate(ctx: FileContext, opts: dict[str, Any]) -> keymod.KeyEst
                         lambda p: keymod.estimate_key(p, profile, bass_weight=bass, final_weight=final))
 
 
-def _check_probability(value: Any) -> str | None:
-    if isinstance(value, bool) or not 0 <= value <= 1:
-        return f"must be a number from 0 to 1, not {value!r}"
-    return None
-
-
 def key_declared_suspect(declared: str | None, estimate: keymod.KeyEstimate) -> bool | None:
     """Whether a declared key looks like a sequencer default: a C major signature (no sharps
     or flats, major) on a piece whose estimated key has another signature. A piece estimated in
@@ -104,7 +98,7 @@ class KeyMeter(Stage):
         Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
                "The declared meter is replaced by the estimate when the estimate gives the "
                "declared meter's family (duple, triple, compound) less than this probability; "
-               "0 = keep every declared meter that is not a default.", _check_probability),
+               "0 = keep every declared meter that is not a default.", in_range(0, 1)),
     )
     doc = ("Estimates key (Krumhansl-Schmuckler key profiles) and meter (a classifier over onset "
            "accent autocorrelation and position features), records what the file declares and "
