@@ -1248,9 +1248,9 @@ static PyObject *pc_histogram(PyObject *self, PyObject *const *args, Py_ssize_t 
 }
 
 PyDoc_STRVAR(meter_accents_doc,
-"meter_accents(notes, ticks_per_beat, lags, common_bar) -> (bytes, list[float], bool) | None\n\n"
+"meter_accents(notes, ticks_per_beat, lags, common_bar) -> (bytes, list[float], float) | None\n\n"
 "meter's accent function (float64 bytes), its normalized autocorrelations at ``lags`` (bins)\n"
-"and the alla-breve test, for pitched onsets in time order (else None, as for no onsets).");
+"and the median inter-onset interval in beats, for pitched onsets in time order (else None).");
 
 static PyObject *meter_accents(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
@@ -1357,17 +1357,15 @@ static PyObject *meter_accents(PyObject *self, PyObject *const *args, Py_ssize_t
         PyList_SET_ITEM(r, k, PyFloat_FromDouble(v));
     }
     PyMem_Free(prod);
-    /* alla breve: the median gap between distinct onsets, in beats, at least one beat */
-    int alla = 0;
+    /* the median gap between distinct onsets, in beats (``_median_ioi``; 0.0 without gaps) */
+    double median = 0.0;
     if (n_gaps) {
         qsort(gaps, (size_t)n_gaps, 8, cmp_i64);
-        double median;
         if (n_gaps % 2) median = (double)gaps[n_gaps / 2] / tpb;
         else median = ((double)gaps[n_gaps / 2 - 1] / tpb + (double)gaps[n_gaps / 2] / tpb) / 2;
-        alla = median >= 1.0;
     }
     PyObject *buf = PyBytes_FromStringAndSize((const char *)acc, n_acc * 8);
-    out = buf ? Py_BuildValue("(NNO)", buf, r, alla ? Py_True : Py_False) : NULL;
+    out = buf ? Py_BuildValue("(NNd)", buf, r, median) : NULL;
     if (!buf) Py_DECREF(r);
     goto done;
 none:

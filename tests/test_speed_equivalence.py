@@ -129,10 +129,6 @@ def _plain_autocorrs(acc, lags):
             for lag in lags]
 
 
-def _plain_mean(values):
-    return float(np.add.reduce(np.array(values, dtype=np.float64)) / len(values))
-
-
 def _plain_fold_phase(acc, spec):
     tc, tc_norm, rolled = metermod._ROLLED[spec.name]
     n = len(tc)
@@ -147,27 +143,18 @@ def _plain_fold_phase(acc, spec):
 def plain_estimate_meter(piece):
     acc = plain_accent_function(piece)
     if len(acc) == 0 or not acc.any():
-        return metermod.MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-    r = dict(zip(metermod.LAGS, _plain_autocorrs(acc, metermod._LAG_BINS)))
-    scores = {}
-    for spec in metermod.METERS:
-        strong, weak = metermod.meter_lags(spec)
-        score = _plain_mean([r[lag] for lag in strong])
-        if weak:
-            score -= metermod.WEAK_WEIGHT * _plain_mean([r[lag] for lag in weak])
-        scores[spec.name] = (score + spec.prior, 0)
+        return metermod.MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0, ())
+    r = _plain_autocorrs(acc, metermod._LAG_BINS)
     onsets = np.unique(piece.pitched["start"])
     ioi = np.diff(onsets) / float(piece.ticks_per_beat)
-    alla_breve = len(ioi) > 0 and float(np.median(ioi)) >= metermod.ALLA_BREVE_MIN_IOI
-    best = max(scores["4/4"][0], scores["2/2"][0])
-    keep, drop = ("2/2", "4/4") if alla_breve else ("4/4", "2/2")
-    scores[keep] = (best, 0)
-    scores[drop] = (-np.inf, 0)
-    ranked = sorted(scores, key=lambda k: -scores[k][0])
-    best, second = ranked[0], ranked[1]
+    median = float(np.median(ioi)) if len(ioi) else 0.0
+    p = metermod._classify(metermod.meter_features(acc, r, median))
+    ranked = sorted(range(len(p)), key=lambda i: -p[i])
+    best, second = metermod.CLASSES[ranked[0]], metermod.CLASSES[ranked[1]]
     phase = _plain_fold_phase(acc, next(m for m in metermod.METERS if m.name == best))
-    return metermod.MeterEstimate(best, scores[best][0], scores[best][0] - scores[second][0],
-                                  second, phase / metermod.BINS_PER_BEAT)
+    return metermod.MeterEstimate(best, float(p[ranked[0]]), float(p[ranked[0]] - p[ranked[1]]),
+                                  second, phase / metermod.BINS_PER_BEAT,
+                                  tuple(float(v) for v in p))
 
 
 def plain_tempo_bpm(piece):
@@ -480,17 +467,6 @@ def test_declared_key_and_meter_from_file(pieces):
 def test_accent_function_and_meter_estimate(pieces):
     _check(pieces, metermod.accent_function, plain_accent_function)
     _check(pieces, metermod.estimate_meter, plain_estimate_meter)
-
-
-def test_mean_adds_like_numpy():
-    # numpy's float sum starts at 0.0 and adds fewer than 8 values in order (pairwise summation
-    # begins at blocks of 8); the loop in ``_mean`` relies on it.
-    rng = np.random.default_rng(0)
-    for _ in range(2000):
-        values = (rng.standard_normal(int(rng.integers(1, 12)))
-                  * 10.0 ** rng.integers(-8, 9)).tolist()
-        assert identical(metermod._mean(values), _plain_mean(values))
-    assert identical(metermod._mean([-0.0]), _plain_mean([-0.0]))
 
 
 def test_tempo_and_grid(pieces):

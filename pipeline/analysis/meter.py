@@ -1,36 +1,39 @@
 """Meter: the declared time signature, an estimate from note onsets, tempo and quantization.
 
-Meter estimate (autocorrelation of an accent function, after Brown 1993, "Determination of the
-meter of musical scores by autocorrelation", JASA 94(4), and Toiviainen & Eerola 2006,
-"Autocorrelation in meter induction: the role of accent structure", JASA 119(2)):
+Meter estimate: a linear classifier over autocorrelation and accent-position features, the
+approach of Toiviainen & Eerola 2006 ("Autocorrelation in meter induction: the role of accent
+structure", JASA 119(2), discriminant functions over autocorrelation values), with the
+autocorrelation of an accent function after Brown 1993 ("Determination of the meter of musical
+scores by autocorrelation", JASA 94(4)):
 
 1. Onsets of pitched notes go on a grid of 1/12 quarter note (holds 16ths and 8th-note
    triplets exactly). Each onset's accent is the summed duration of its notes, capped at a
    half note (a durational accent, Parncutt 1994, Music Perception 11(4)), plus a bonus for
    the lowest note of the onset (bass).
-2. The normalized autocorrelation r(lag) of that function is taken at beat-level lags of
-   0.5, 1, 1.5, 2, 3, 4, 4.5 and 6 quarter notes (``LAGS``).
-3. Each candidate meter predicts which lags are strong: its metrical levels (bar, beat,
-   subdivision; ``MeterSpec.levels``) and which are weak: the other lags that are not a whole
-   number of its bars. Its score is mean r(strong) - ``WEAK_WEIGHT`` * mean r(weak), plus a
-   small prior (``MeterSpec.prior``; common practice: 4/4, 3/4, 6/8 are the usual notated
-   meters). Counting the weak lags is what stops the long bars (3/2, 12/8, whose bar of six
-   quarters is a multiple of both duple and triple bars) from winning everywhere.
+2. Features (``meter_features``): the normalized autocorrelation of that function at beat and
+   bar lags from a 16th to 12 quarters; the median inter-onset interval; where in the quarter
+   note the accent falls; and downbeat contrasts (the accent function folded at each
+   candidate bar: does one beat of the bar stand out, or do the halves look alike?). The
+   contrasts carry the evidence against doubled or halved periods (6/8 vs 12/8, 2/4 vs 4/4)
+   and between triple and compound (3/4 vs 6/8).
+3. A multinomial logistic regression (weights in ``meter_weights.py``, trained by
+   ``python -m pipeline.analysis.evaluate_meter --train`` on development parts of four
+   genres; see that module) gives a probability per candidate meter; the most probable wins.
+   Its intercepts are the priors that favour the common meter when the evidence is ambiguous.
 
-4/4 and 2/2 predict the same lags; 2/2 is chosen only when the median inter-onset interval
-is at least a quarter note (``ALLA_BREVE_MIN_IOI``), i.e. when the music moves in quarters and
-halves, the notational habit for alla breve. The constants were set on Bach chorales and on
-Aird's Airs books 1-3; the README figures are measured on held-out folk tunes as well.
+The downbeat phase comes from matching the bar-folded accents with the chosen meter's
+metrical-hierarchy template.
 """
 from __future__ import annotations
 
 import bisect
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from ..score import DRUM_CHANNEL, Piece, compiled_analyses
+from . import meter_weights as _weights
 
 #: Grid resolution of the onset function, in bins per quarter note.
 BINS_PER_BEAT = 12
@@ -38,12 +41,11 @@ BINS_PER_BEAT = 12
 
 @dataclass(frozen=True)
 class MeterSpec:
-    """A candidate meter: bar length and metrical levels in quarter-note beats, and a prior."""
+    """A candidate meter: bar length and metrical levels in quarter-note beats."""
 
     name: str
     family: str           # duple | triple | compound
     levels: tuple[float, ...]  # periods from bar down to the smallest subdivision, in quarters
-    prior: float
 
     @property
     def bar(self) -> float:
@@ -53,29 +55,21 @@ class MeterSpec:
 #: The candidates (data). ``family``: simple duple/quadruple -> duple; simple triple -> triple;
 #: compound (beats divided in three) -> compound (common practice classification).
 METERS: tuple[MeterSpec, ...] = (
-    MeterSpec("2/4", "duple", (2, 1, 0.5, 0.25), 0.02),
-    MeterSpec("4/4", "duple", (4, 2, 1, 0.5, 0.25), 0.04),
-    MeterSpec("2/2", "duple", (4, 2, 1, 0.5), 0.0),
-    MeterSpec("3/4", "triple", (3, 1, 0.5, 0.25), 0.03),
-    MeterSpec("3/8", "triple", (1.5, 0.5, 0.25), 0.0),
-    MeterSpec("3/2", "triple", (6, 2, 1, 0.5), 0.0),
-    MeterSpec("6/8", "compound", (3, 1.5, 0.5, 0.25), 0.03),
-    MeterSpec("9/8", "compound", (4.5, 1.5, 0.5, 0.25), 0.0),
-    MeterSpec("12/8", "compound", (6, 3, 1.5, 0.5, 0.25), 0.0),
+    MeterSpec("2/4", "duple", (2, 1, 0.5, 0.25)),
+    MeterSpec("4/4", "duple", (4, 2, 1, 0.5, 0.25)),
+    MeterSpec("2/2", "duple", (4, 2, 1, 0.5)),
+    MeterSpec("3/4", "triple", (3, 1, 0.5, 0.25)),
+    MeterSpec("3/8", "triple", (1.5, 0.5, 0.25)),
+    MeterSpec("3/2", "triple", (6, 2, 1, 0.5)),
+    MeterSpec("6/8", "compound", (3, 1.5, 0.5, 0.25)),
+    MeterSpec("9/8", "compound", (4.5, 1.5, 0.5, 0.25)),
+    MeterSpec("12/8", "compound", (6, 3, 1.5, 0.5, 0.25)),
 )
 METER_FAMILY = {m.name: m.family for m in METERS}
-#: Lags (quarter notes) at which the accent autocorrelation is compared.
-LAGS = (0.5, 1.0, 1.5, 2.0, 3.0, 4.0, 4.5, 6.0)
-#: Smallest metrical level counted among a meter's strong lags (16ths are shared by all).
-MIN_LEVEL = 0.5
-#: Weight of the mean autocorrelation at the lags a meter predicts to be weak.
-WEAK_WEIGHT = 0.5
 #: Accent of one note is its duration in beats, capped here (a whole note is no stronger).
 ACCENT_CAP_BEATS = 2.0
 #: Extra accent (multiple of its duration) for the lowest note of each onset.
 BASS_ACCENT = 0.5
-#: Median inter-onset interval (quarters) from which a 4-quarter bar is read as 2/2.
-ALLA_BREVE_MIN_IOI = 1.0
 
 #: ``family`` of a meter string not among the candidates: by numerator (common practice).
 _COMPOUND_NUMERATORS = {6, 9, 12}
@@ -110,6 +104,36 @@ def meter_from_file(piece: Piece) -> str | None:
     return f"{int(ts['numerator'][i])}/{int(ts['denominator'][i])}"
 
 
+#: Declared meters that look like sequencer defaults rather than the music's meter: a bar of
+#: one beat (1/4, also 1/8, 1/2) is no meter; many sequencers write 1/4 when no meter was set
+#: (693 of the 909 songs of the pop-arrangement collection declare it).
+def is_default_meter(meter: str) -> bool:
+    """Whether a declared meter looks like a sequencer default (numerator 1, e.g. ``1/4``)."""
+    return meter.split("/")[0] == "1"
+
+
+#: Default of ``declared_meter_issue``'s ``min_family_probability``, chosen on the development
+#: sets (README, meter section).
+CONTRADICTION_PROBABILITY = 0.01
+
+
+def declared_meter_issue(declared: str | None, estimate: "MeterEstimate",
+                         min_family_probability: float = CONTRADICTION_PROBABILITY) -> str | None:
+    """Why a declared meter should not be reported: ``"default"`` (``is_default_meter``),
+    ``"contradicted"`` (the classifier gives the declared meter's family, duple, triple or
+    compound, less than ``min_family_probability``), else None (also without a declaration).
+    Within a family the notation is an editor's choice (2/4, 4/4 and 2/2 of one march), so a
+    declared meter is only overruled across families."""
+    if declared is None:
+        return None
+    if is_default_meter(declared):
+        return "default"
+    if estimate.probabilities and \
+            estimate.family_probability(meter_family(declared)) < min_family_probability:
+        return "contradicted"
+    return None
+
+
 @dataclass(frozen=True)
 class MeterEstimate:
     """An estimated meter with its score and the margin over the runner-up candidate."""
@@ -119,6 +143,11 @@ class MeterEstimate:
     confidence: float
     runner_up: str
     phase_beats: float  # offset of the first downbeat from tick 0, in quarter-note beats
+    probabilities: tuple[float, ...] = field(default=(), repr=False)  # per ``CLASSES``
+
+    def family_probability(self, family: str) -> float:
+        """Probability the classifier gives to the meters of one family (0.0 without onsets)."""
+        return sum(p for c, p in zip(CLASSES, self.probabilities) if meter_family(c) == family)
 
 
 def _squeeze_gaps(bins: np.ndarray) -> np.ndarray:
@@ -126,7 +155,8 @@ def _squeeze_gaps(bins: np.ndarray) -> np.ndarray:
 
     The common bar is the least common multiple of every candidate bar length, so each onset
     keeps its position in every candidate bar and the lags the method looks at (up to two bars)
-    see the same onsets; what is removed is silence. This bounds the accent function by the
+    see the same onsets (the longest lag, 32 quarters, is shorter than a common bar); what is
+    removed is silence. This bounds the accent function by the
     number of onsets, not by the file's tick span (a valid 197-byte file with one note at tick
     268 million would otherwise ask for gigabytes)."""
     if len(bins) == 0:
@@ -159,8 +189,8 @@ def accent_function(piece: Piece) -> np.ndarray:
     return _accent(start, end, pitch, float(piece.ticks_per_beat), _start_steps(start))
 
 
-def _compiled_accents(piece: Piece) -> tuple[np.ndarray, list[float], bool] | None:
-    """(accent function, ``_autocorrs`` at ``_LAG_BINS``, ``_alla_breve``) from the compiled
+def _compiled_accents(piece: Piece) -> tuple[np.ndarray, list[float], float] | None:
+    """(accent function, ``_autocorrs`` at ``_LAG_BINS``, ``_median_ioi``) from the compiled
     module, for pitched onsets in time order; None where the numpy code must run (no compiled
     module, no pitched onsets, onsets out of order). The same values, bit for bit
     (tests/test_smf_accel.py)."""
@@ -170,8 +200,8 @@ def _compiled_accents(piece: Piece) -> tuple[np.ndarray, list[float], bool] | No
     got = accel.meter_accents(piece.notes, float(piece.ticks_per_beat), _LAG_BINS, COMMON_BAR_BINS)
     if got is None:
         return None
-    acc, r, alla_breve = got
-    return np.frombuffer(acc, dtype=np.float64).copy(), r, alla_breve
+    acc, r, median_ioi = got
+    return np.frombuffer(acc, dtype=np.float64).copy(), r, median_ioi
 
 
 def _start_steps(start: np.ndarray) -> np.ndarray | None:
@@ -271,13 +301,24 @@ def _autocorrs(acc: np.ndarray, lags: tuple[int, ...]) -> list[float]:
             for lag in lags]
 
 
-def _fold_match(acc: np.ndarray, spec: MeterSpec) -> tuple[float, int]:
-    """Best Pearson correlation of the bar-folded accent histogram with the meter's
-    metrical-hierarchy template (a position's weight is the number of levels with a beat
-    there) over all phases; returns (correlation, phase in bins). Used for the downbeat phase."""
+def bar_fold(acc: np.ndarray) -> np.ndarray:
+    """The accent function folded at the common bar (``COMMON_BAR_BINS``): the summed accent
+    at each position of it. Every candidate bar and beat divides the common bar, so any of
+    their folds is a sum of this one's rows (``fold.reshape(-1, n).sum(0)``)."""
+    k = -(-len(acc) // COMMON_BAR_BINS) * COMMON_BAR_BINS
+    buf = np.zeros(k)
+    buf[:len(acc)] = acc
+    return np.add.reduce(buf.reshape(-1, COMMON_BAR_BINS), axis=0)
+
+
+def _fold_match(fold: np.ndarray, spec: MeterSpec) -> tuple[float, int]:
+    """Best Pearson correlation of the bar-folded accent histogram (from ``bar_fold``) with
+    the meter's metrical-hierarchy template (a position's weight is the number of levels with
+    a beat there) over all phases; returns (correlation, phase in bins). Used for the downbeat
+    phase."""
     tc, tc_norm, rolled = _ROLLED[spec.name]
     n = len(tc)
-    folded = np.bincount(np.arange(len(acc)) % n, weights=acc, minlength=n)
+    folded = np.add.reduce(fold.reshape(-1, n), axis=0)
     f = folded - np.add.reduce(folded) / n  # folded.mean(): the same sum and division
     denom = math.sqrt(f.dot(f)) * tc_norm  # np.linalg.norm(f) computes sqrt(f.dot(f)) too
     if denom == 0:
@@ -287,90 +328,150 @@ def _fold_match(acc: np.ndarray, spec: MeterSpec) -> tuple[float, int]:
     return float(corr[p]), p
 
 
-def meter_lags(spec: MeterSpec) -> tuple[tuple[float, ...], tuple[float, ...]]:
-    """(strong lags, weak lags) that a candidate meter predicts, in quarter notes."""
-    strong = tuple(lv for lv in spec.levels if lv >= MIN_LEVEL)
-    weak = tuple(lag for lag in LAGS if lag not in spec.levels
-                 and abs(lag / spec.bar - round(lag / spec.bar)) > 1e-9)
-    return strong, weak
+#: Lags (quarter notes) at which the accent autocorrelation is taken as a feature: the
+#: subdivisions (16th, triplet 8th, 8th, dotted 8th), the beats (quarter, dotted quarter, half)
+#: and the bars and bar pairs of every candidate.
+FEATURE_LAGS = (0.25, 1 / 3, 0.5, 2 / 3, 0.75, 1.0, 1.5, 2.0, 3.0, 4.0, 4.5, 6.0, 8.0, 9.0, 12.0,
+                16.0, 24.0, 32.0)
+_LAG_BINS = tuple(int(round(lag * BINS_PER_BEAT)) for lag in FEATURE_LAGS)
+#: (bar length in quarters, number of equal beats) whose downbeat contrast is a feature.
+CONTRASTS = ((1.0, 2), (1.0, 3), (1.5, 3), (2.0, 2), (3.0, 3), (3.0, 2), (4.0, 2), (4.0, 4),
+             (4.5, 3), (6.0, 2), (6.0, 3), (9.0, 2))
+FEATURE_NAMES = (tuple(f"r({lag:.3g})" for lag in FEATURE_LAGS)
+                 + ("log2 median ioi", "grid on", "grid 8th", "grid 1st triplet",
+                    "grid 2nd triplet", "grid 1st 16th", "grid 3rd 16th")
+                 + tuple(f"contrast {bar:g}/{k}" for bar, k in CONTRASTS))
 
 
-_METER_LAGS = {m.name: meter_lags(m) for m in METERS}
+def meter_features(acc: np.ndarray, r: list[float], median_ioi: float) -> np.ndarray:
+    """The feature vector of the meter classifier (``FEATURE_NAMES``) from the accent
+    function, its autocorrelations at ``FEATURE_LAGS`` and the median inter-onset interval.
+
+    - autocorrelation at beat and bar lags (Brown 1993; Toiviainen & Eerola 2006, who
+      classified duple and triple meters by discriminant functions over such values);
+    - the median inter-onset interval in quarters (log2): the notated level of the beat;
+    - the share of accent at each position of the quarter note, the strongest position taken
+      as the beat (quantized files are not needed): on the beat, 8th, triplet 8ths, 16ths;
+    - downbeat contrasts: folding the accent function at a bar of k equal beats, how much the
+      strongest position exceeds the same position in the other beats (share of all accent).
+      A 6/8 jig folded at 6 quarters shows equal halves (no 12/8 downbeat); a waltz folded at
+      3 quarters shows one strong beat in three, not two dotted halves.
+    """
+    return _features(bar_fold(acc), r, median_ioi)
+
+
+def _contrast_plan() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Index arrays that compute every downbeat contrast from one ``np.bincount``.
+
+    Folding the common-bar fold at each bar length n and beat length n/k used by ``CONTRASTS``
+    gives, for contrast (n, k) and position j of its bar, the accent at j (``h_n[j]``) and its
+    sum over the k beats at that position (``h_{n/k}[j mod n/k]``); the contrast row is
+    ``h_n[j] * k/(k-1) - h_{n/k}[j mod n/k] / (k-1)`` (the accent at j minus the mean of the
+    other beats) and the contrast the largest of its rows. Returns (fold index, its length,
+    row positions in the folds, beat-sum positions, the two coefficients per row, first row
+    of each contrast)."""
+    bars = [(int(round(bar * BINS_PER_BEAT)), beats) for bar, beats in CONTRASTS]
+    lengths = sorted({n for n, _ in bars} | {n // k for n, k in bars})
+    offset, total = {}, 0
+    for n in lengths:
+        offset[n] = total
+        total += n
+    pos = np.arange(COMMON_BAR_BINS)
+    fold_index = np.concatenate([offset[n] + pos % n for n in lengths])
+    at, col, ca, cb, starts = [], [], [], [], []
+    for n, k in bars:
+        starts.append(len(at))
+        for j in range(n):
+            at.append(offset[n] + j)
+            col.append(offset[n // k] + j % (n // k))
+            ca.append(k / (k - 1))
+            cb.append(1 / (k - 1))
+    return (fold_index, len(lengths), np.array(at), np.array(col),
+            np.array([ca, cb]), np.array(starts))
+
+
+_FOLD_INDEX, _N_FOLDS, _ROW_AT, _ROW_BEATS, _ROW_COEF, _CONTRAST_STARTS = _contrast_plan()
+
+
+def _contrasts(fold: np.ndarray) -> np.ndarray:
+    """The downbeat contrasts of a common-bar fold (not divided by its total), see
+    ``_contrast_plan``. One ``bincount`` and a few vector operations: no BLAS call, whose
+    threads would cost start-up time in a busy worker and make the last bits depend on the
+    machine."""
+    h = np.bincount(_FOLD_INDEX, weights=np.tile(fold, _N_FOLDS))
+    rows = h[_ROW_AT] * _ROW_COEF[0] - h[_ROW_BEATS] * _ROW_COEF[1]
+    return np.maximum.reduceat(rows, _CONTRAST_STARTS)
+
+
+#: Positions within the quarter read as grid features, relative to the strongest position.
+_GRID_POS = np.array([0, 6, 4, 8, 3, 9])
+
+
+def _features(fold: np.ndarray, r: list[float], median_ioi: float) -> np.ndarray:
+    """``meter_features`` from the common-bar fold."""
+    total = float(np.add.reduce(fold))
+    if not total > 0:
+        return np.zeros(len(FEATURE_NAMES))
+    q = np.add.reduce(fold.reshape(-1, BINS_PER_BEAT), axis=0)
+    grid = q[(_GRID_POS + int(np.argmax(q))) % BINS_PER_BEAT] / total
+    contrasts = _contrasts(fold) / total
+    ioi = math.log2(min(max(median_ioi, 1 / 16), 8.0))
+    return np.concatenate((r, (ioi,), grid, contrasts))
+
+
+def _classify(x: np.ndarray) -> np.ndarray:
+    """Class probabilities (``meter_weights.CLASSES``) of a feature vector: multinomial
+    logistic regression with the shipped weights."""
+    z = _W @ ((x - _MEAN) / _SCALE) + _B
+    z = np.exp(z - z.max())
+    return z / np.add.reduce(z)
+
+
 _METER_BY_NAME = {m.name: m for m in METERS}
-_LAG_BINS = tuple(int(round(lag * BINS_PER_BEAT)) for lag in LAGS)
-#: Per candidate: (positions in ``LAGS`` of its strong lags, of its weak lags, prior).
-_SCORE_PLAN = tuple((m.name, tuple(LAGS.index(x) for x in _METER_LAGS[m.name][0]),
-                     tuple(LAGS.index(x) for x in _METER_LAGS[m.name][1]), m.prior)
-                    for m in METERS)
-#: numpy's float sum adds fewer than this many values one after the other, from 0.0 (pairwise
-#: summation starts at blocks of 8), so a plain Python loop gives the same bits below it.
-_SEQUENTIAL_SUM_BELOW = 8
+_W = np.array(_weights.W, dtype=np.float64)
+_B = np.array(_weights.B, dtype=np.float64)
+_MEAN = np.array(_weights.MEAN, dtype=np.float64)
+_SCALE = np.array(_weights.SCALE, dtype=np.float64)
+CLASSES: tuple[str, ...] = tuple(_weights.CLASSES)
 
 
-def _mean(values: list[float]) -> float:
-    """``float(np.mean(values))`` without its per-call overhead (the same sum and division):
-    below 8 values numpy adds them in order starting from 0.0, which the loop repeats."""
-    if len(values) >= _SEQUENTIAL_SUM_BELOW:
-        return float(np.add.reduce(np.array(values, dtype=np.float64)) / len(values))
-    total = 0.0
-    for v in values:
-        total += v
-    return total / len(values)
+def piece_features(piece: Piece) -> np.ndarray | None:
+    """``meter_features`` of a piece; None when it has no pitched onset with accent."""
+    got = _accents_lags_ioi(piece)
+    return None if got is None else meter_features(*got)
+
+
+def _accents_lags_ioi(piece: Piece) -> tuple[np.ndarray, list[float], float] | None:
+    fast = _compiled_accents(piece)
+    if fast is not None:
+        acc, r, median = fast
+        return (acc, r, median) if acc.any() else None
+    start, end, pitch = _pitched_columns(piece.notes)
+    tpb = float(piece.ticks_per_beat)
+    steps = _start_steps(start)
+    acc = _accent(start, end, pitch, tpb, steps)
+    if len(acc) == 0 or not acc.any():
+        return None
+    return acc, _autocorrs(acc, _LAG_BINS), _median_ioi(start, steps, tpb)
 
 
 def estimate_meter(piece: Piece) -> MeterEstimate:
     """Estimate the meter from note onsets (see the module docstring for the method)."""
-    fast = _compiled_accents(piece)
-    if fast is not None:
-        acc, r, alla_breve = fast
-        if not acc.any():
-            return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-    else:
-        start, end, pitch = _pitched_columns(piece.notes)
-        tpb = float(piece.ticks_per_beat)
-        steps = _start_steps(start)
-        acc = _accent(start, end, pitch, tpb, steps)
-        if len(acc) == 0 or not acc.any():
-            return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0)
-        r = _autocorrs(acc, _LAG_BINS)
-        alla_breve = _alla_breve(start, steps, tpb)
-    scores: dict[str, tuple[float, int]] = {}
-    for name, strong, weak, prior in _SCORE_PLAN:
-        # _mean of the strong and of the weak lags, its loop written out (fewer than 8 each)
-        if len(strong) < _SEQUENTIAL_SUM_BELOW:
-            total = 0.0
-            for i in strong:
-                total += r[i]
-            score = total / len(strong)
-        else:
-            score = _mean([r[i] for i in strong])
-        if weak:
-            if len(weak) < _SEQUENTIAL_SUM_BELOW:
-                total = 0.0
-                for i in weak:
-                    total += r[i]
-                score -= WEAK_WEIGHT * (total / len(weak))
-            else:
-                score -= WEAK_WEIGHT * _mean([r[i] for i in weak])
-        scores[name] = (score + prior, 0)
-    _resolve_alla_breve(alla_breve, scores)
-    # best and runner-up of a stable sort by descending score: the first maximum, then the
-    # first maximum of the others (ties keep the order of METERS), as max() picks them
-    best = second = None
-    for k, (v, _) in scores.items():
-        if best is None or v > scores[best][0]:
-            best = k
-    for k, (v, _) in scores.items():
-        if k != best and (second is None or v > scores[second][0]):
-            second = k
-    _, phase = _fold_match(acc, _METER_BY_NAME[best])
-    return MeterEstimate(best, scores[best][0], scores[best][0] - scores[second][0], second,
-                         phase / BINS_PER_BEAT)
+    got = _accents_lags_ioi(piece)
+    if got is None:
+        return MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0, ())
+    fold = bar_fold(got[0])
+    p = _classify(_features(fold, got[1], got[2]))
+    order = np.argsort(-p, kind="stable")
+    best, second = CLASSES[int(order[0])], CLASSES[int(order[1])]
+    _, phase = _fold_match(fold, _METER_BY_NAME[best])
+    return MeterEstimate(best, float(p[order[0]]), float(p[order[0]] - p[order[1]]), second,
+                         phase / BINS_PER_BEAT, tuple(float(v) for v in p))
 
 
-def _alla_breve(start: np.ndarray, steps: np.ndarray | None, tpb: float) -> bool:
-    """Whether the median inter-onset interval of the pitched onsets ``start`` is at least
-    ``ALLA_BREVE_MIN_IOI`` quarters (``steps`` from ``_start_steps``).
+def _median_ioi(start: np.ndarray, steps: np.ndarray | None, tpb: float) -> float:
+    """Median interval between distinct pitched onsets ``start``, in quarters (0.0 with
+    fewer than two onsets); ``steps`` from ``_start_steps``.
 
     The same value as ``np.median(np.diff(np.unique(start)) / tpb)``: for onsets in time order
     the gaps between distinct onsets are the non-zero steps; the median is the middle value,
@@ -378,21 +479,11 @@ def _alla_breve(start: np.ndarray, steps: np.ndarray | None, tpb: float) -> bool
     gaps = steps[steps != 0] if steps is not None else np.diff(np.unique(start))
     m = len(gaps)
     if m == 0:
-        return False
+        return 0.0
     gaps.sort()
     if m % 2:
-        median = gaps[m // 2] / tpb  # numpy scalars: the array's int64 -> float64 division
-    else:
-        median = (gaps[m // 2 - 1] / tpb + gaps[m // 2] / tpb) / 2
-    return bool(median >= ALLA_BREVE_MIN_IOI)
-
-
-def _resolve_alla_breve(alla_breve: bool, scores: dict[str, tuple[float, int]]) -> None:
-    """4/4 and 2/2 share a bar: keep one of them, by the prevailing note motion."""
-    best = max(scores["4/4"][0], scores["2/2"][0])
-    keep, drop = ("2/2", "4/4") if alla_breve else ("4/4", "2/2")
-    scores[keep] = (best, scores[keep][1])
-    scores[drop] = (-np.inf, 0)
+        return float(gaps[m // 2] / tpb)  # numpy scalars: int64 -> float64 division
+    return float((gaps[m // 2 - 1] / tpb + gaps[m // 2] / tpb) / 2)
 
 
 def tempo_bpm(piece: Piece) -> float:

@@ -1,7 +1,12 @@
 """Stage ``key_meter``: key and meter of the source file, plus tempo and quantization.
 
-Never drops a file. The key estimate is memoized in the file context under a name that includes
-every option that changes it, so ``transpose`` (before or after this stage) reuses it.
+Never drops a file. Declared values are kept as the file says them (``key_declared``,
+``meter_declared``) and flagged when they look like sequencer defaults: a one-beat time
+signature such as 1/4 (then ``meter`` is the estimate), a C major key signature on a piece whose
+estimated key has another signature; a declared meter whose family the estimate rules out is
+replaced by the estimate too. The key estimate is memoized in the file context under a name
+that includes every option that changes it, so ``transpose`` (before or after this stage)
+reuses it.
 """
 from __future__ import annotations
 
@@ -10,7 +15,7 @@ from typing import Any
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
 from ..score import Piece
-from .base import FileContext, Option, Stage, StageResult, register
+from .base import FileContext, Option, Stage, StageResult, in_range, register
 
 
 def _check_profile(value: Any) -> str | None:
@@ -59,6 +64,19 @@ def shared_key_estimate(ctx: FileContext, opts: dict[str, Any]) -> keymod.KeyEst
                         lambda p: keymod.estimate_key(p, profile, bass_weight=bass, final_weight=final))
 
 
+def key_declared_suspect(declared: str | None, estimate: keymod.KeyEstimate) -> bool | None:
+    """Whether a declared key looks like a sequencer default: a C major signature (no sharps
+    or flats, major) on a piece whose estimated key has another signature. A piece estimated in
+    A minor fits the signature (its relative major is C), so it is not flagged. None when the
+    file declares no key."""
+    if declared is None:
+        return None
+    if keymod.parse_key(declared) != (0, "major"):
+        return False
+    relative_major = estimate.tonic_pc if estimate.mode == "major" else (estimate.tonic_pc + 3) % 12
+    return relative_major != 0
+
+
 def reported_key(piece: Piece, estimate: keymod.KeyEstimate, trust_file_key: bool) -> tuple[int, str, str]:
     """(tonic_pc, mode, source) of the key to report: the estimate, or the file's declared key
     when ``trust_file_key`` is set and the file declares one."""
@@ -75,11 +93,17 @@ class KeyMeter(Stage):
 
     name = "key_meter"
     kind = "file"
-    version = 1
-    options = KEY_OPTIONS
-    doc = ("Estimates key (Krumhansl-Schmuckler key profiles) and meter (onset accent template "
-           "matching), records what the file declares, the average tempo and the fraction of "
-           "onsets on a 16th/triplet grid. Never drops a file.")
+    version = 2
+    options = KEY_OPTIONS + (
+        Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
+               "The declared meter is replaced by the estimate when the estimate gives the "
+               "declared meter's family (duple, triple, compound) less than this probability; "
+               "0 = keep every declared meter that is not a default.", in_range(0, 1)),
+    )
+    doc = ("Estimates key (Krumhansl-Schmuckler key profiles) and meter (a classifier over onset "
+           "accent autocorrelation and position features), records what the file declares and "
+           "flags declared values that look like sequencer defaults, the average tempo and the "
+           "fraction of onsets on a 16th/triplet grid. Never drops a file.")
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         est = shared_key_estimate(ctx, self.opts)
@@ -90,6 +114,9 @@ class KeyMeter(Stage):
             agrees = keymod.parse_key(declared) == (est.tonic_pc, est.mode)
         meter_est = ctx.analysis("meter", metermod.estimate_meter)
         file_meter = metermod.meter_from_file(piece)
+        meter_issue = metermod.declared_meter_issue(file_meter, meter_est,
+                                                    float(self.opts["meter_contradiction"]))
+        use_file = file_meter is not None and meter_issue is None
         names = keymod.MAJOR_TONIC_NAMES if mode == "major" else keymod.MINOR_TONIC_NAMES
         values = {
             "tonic": names[pc],
@@ -100,8 +127,11 @@ class KeyMeter(Stage):
             "key_runner_up": est.runner_up,
             "key_declared": declared,
             "key_agrees": agrees,
-            "meter": file_meter or meter_est.meter,
-            "meter_source": "file" if file_meter else "estimated",
+            "key_declared_suspect": key_declared_suspect(declared, est),
+            "meter": file_meter if use_file else meter_est.meter,
+            "meter_source": "file" if use_file else "estimated",
+            "meter_declared": file_meter,
+            "meter_declared_suspect": meter_issue,
             "meter_estimated": meter_est.meter,
             "meter_confidence": round(meter_est.confidence, 4),
             "bpm": round(metermod.tempo_bpm(piece), 2),
