@@ -15,10 +15,11 @@ from typing import Any
 import yaml
 
 from .errors import ConfigError, ConfigErrors
+from .metadata import Metadata, load_metadata
 from .executor import usable_cpus
 from .stages import Stage, known_stages, stage_class
 
-TOP_KEYS = ("input", "output", "workers", "stages")
+TOP_KEYS = ("input", "output", "workers", "metadata", "stages")
 
 
 @dataclass
@@ -43,6 +44,7 @@ class Config:
     stages: list[StageConfig]
     path: Path | None = None
     raw: dict[str, Any] = field(default_factory=dict)
+    metadata: Metadata = field(default_factory=Metadata)
 
     def stage(self, name: str) -> StageConfig | None:
         return next((s for s in self.stages if s.name == name), None)
@@ -171,14 +173,40 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
     except ConfigError as e:
         problems.append(e)
     stages = _parse_stages(raw.get("stages"), problems)
+    metadata = Metadata()
+    if raw.get("metadata") is not None:
+        if not isinstance(raw["metadata"], str) or not raw["metadata"]:
+            problems.append(ConfigError(f"'metadata' must be the path of a CSV table, got "
+                                        f"{raw['metadata']!r}", location="metadata"))
+        else:
+            try:
+                metadata = load_metadata(raw["metadata"])
+            except ConfigError as e:
+                problems.append(e)
+    problems.extend(_check_group_fields(stages, metadata))
     for p in problems:
-        p.file = source
+        p.file = p.file or source
     if len(problems) == 1:
         raise problems[0]
     if problems:
         raise ConfigErrors(problems, file=source)
     return Config(input=Path(raw["input"]), output=Path(raw["output"]), workers=workers,
-                  stages=stages, path=Path(source) if source else None, raw=raw)
+                  stages=stages, path=Path(source) if source else None, raw=raw, metadata=metadata)
+
+
+def _check_group_fields(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
+    """``split.group_fields`` must name a manifest field or a metadata column: a misspelt
+    field would silently group nothing."""
+    from .outputs import CONTRACT_FIELDS
+    split = next((s for s in stages if s.name == "split"), None)
+    if split is None:
+        return []
+    known = [*CONTRACT_FIELDS, "title", *metadata.columns]
+    where = f"stages[{split.index}].split.group_fields"
+    hint = "" if metadata.columns else " (add a 'metadata: TABLE.csv' with such a column)"
+    return [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
+                        f"{suggest(str(f), known)}{hint}", location=where)
+            for f in split.options.get("group_fields", []) if f not in known]
 
 
 def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig]:

@@ -31,7 +31,7 @@ DEFAULT_PART = "all"
 
 #: Manifest fields of the contract, in the order they are written; other measures follow sorted.
 CONTRACT_FIELDS = (
-    "id", "source", "sha256", "status", "stage", "reason", "detail",
+    "id", "source", "title", "sha256", "status", "stage", "reason", "detail",
     "tonic", "tonic_pc", "mode", "key_confidence", "meter", "meter_source", "transpose",
     "duration_s", "notes", "notes_per_s", "cluster", "duplicate_of", "similarity", "split", "output",
 )
@@ -364,6 +364,16 @@ def _kept_detail(trail: list, part: str | None) -> str:
     return f"kept: passed {stages}{where}"
 
 
+def source_fields(rel: str, file_title: Any, metadata: Any) -> dict[str, Any]:
+    """The fields of a source path rather than of its content: the metadata table's columns
+    and ``title`` (the table's title, else the file's own track name, else the file name's
+    stem)."""
+    row = dict(metadata.of(rel)) if metadata is not None else {}
+    stem = rel.rsplit("/", 1)[-1].rsplit(".", 1)[0]
+    row["title"] = row.get("title") or file_title or stem
+    return row
+
+
 def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], list]:
     """The manifest object of one source file, and the trail it was made from."""
     sha = f.sha256
@@ -376,6 +386,9 @@ def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], lis
     extras = {k: v for k, v in vals.items() if k not in row}
     row.update({k: v for k, v in vals.items() if k in row})
     row.update(id=sha[:16], source=f.rel, sha256=sha)
+    extras.pop("file_title", None)
+    for k, v in source_fields(f.rel, vals.get("file_title"), walk.metadata).items():
+        (row if k in row else extras)[k] = v
     if final is None:
         part = vals.get("split") or DEFAULT_PART
         row.update(status="kept", stage=None, reason=None, detail=_kept_detail(trail, part),

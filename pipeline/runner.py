@@ -277,6 +277,11 @@ class Runner:
             ledger.put_sources(changed)
             ledger.forget_sources([p for p in known if p not in present])
         timings["discover"] = time.perf_counter() - t
+        unknown = cfg.metadata.unknown_sources(present)
+        if unknown:
+            notes = [*notes, f"metadata: {len(unknown)} row(s) of {cfg.metadata.path} name no input "
+                             f"file (paths are relative to the input folder, '/'-separated), e.g. "
+                             + ", ".join(repr(u) for u in unknown[:3])]
 
         state_key = self._state_key(files)
         qkey = uptodate.quick_key(cfg.raw, files)
@@ -394,6 +399,7 @@ class Runner:
         for st in self.stages:
             h.update(f"{st.name}:{st.kind}:{st.fingerprint}\n".encode())
         h.update(f"{self.output_fp}\nmidisift {__version__}".encode())
+        h.update(f"\nmetadata {self.config.metadata.digest}".encode())  # its columns are in rows
         return h.hexdigest()
 
     def _unchanged(self, ledger: Ledger, state_key: str) -> dict | None:
@@ -538,7 +544,7 @@ class Runner:
     # the stage walk ---------------------------------------------------------------------------
     def _walk(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict) -> "Walk":
         names = [st.name for st in self.stages]
-        walk = Walk(staged=self._staged, stage_names=names)
+        walk = Walk(staged=self._staged, stage_names=names, metadata=self.config.metadata)
         alive = list(rep)  # contents in first-source order (sorted paths)
         # memory: a trail holds the cached result records themselves (no copies, no merged
         # values dict per file); trail_of and value_of build what a reader needs one file at a time
@@ -567,8 +573,12 @@ class Runner:
                 arts = (ledger.artifacts_for(st.name, st.artifact_fingerprint, set(alive),
                                              defer=st.deferred_artifacts)
                         if _prepares(st) else {})
-                members = [Member(sha[:16], sha, rep[sha], TrailValues(trails[sha]),
-                                  {st.name: arts.pop(sha, {})}) for sha in alive]
+                members = []
+                for sha in alive:
+                    values = TrailValues(trails[sha])
+                    members.append(Member(sha[:16], sha, rep[sha], values, {st.name: arts.pop(sha, {})},
+                                          meta=outputs.source_fields(rep[sha], values.get("file_title"),
+                                                                     self.config.metadata)))
                 del arts
                 for m in members:  # artifacts of earlier corpus stages travel along
                     for prev, res in walk.artifacts.items():
@@ -773,6 +783,7 @@ class Walk:
     notes: list[str] = field(default_factory=list)
     byte_copy_stage: str | None = None
     rep: dict[str, str] = field(default_factory=dict)
+    metadata: Any = None  # the config's metadata table (``pipeline.metadata``)
     stage_names: list[str] = field(default_factory=list)
 
     def is_byte_copy(self, rel: str, sha: str) -> bool:

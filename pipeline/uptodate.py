@@ -42,6 +42,9 @@ def quick_key(raw: dict[str, Any], files: list) -> str:
     settings = {k: v for k, v in raw.items() if k != "workers"}
     h.update(json.dumps(settings, sort_keys=True, default=str).encode("utf-8", "surrogateescape"))
     h.update(f"midisift {__version__}".encode())
+    if isinstance(raw.get("metadata"), str):  # an edited table changes the manifest
+        from .metadata import table_digest
+        h.update(f"metadata {table_digest(Path(raw['metadata']))}".encode())
     return h.hexdigest()
 
 

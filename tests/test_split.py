@@ -459,3 +459,129 @@ def test_files_dedup_keeps_in_one_cluster_share_a_part():
         upstream["dedup"][z] = StageResult.keep(values={"cluster": a})
         got = parts(run(members, upstream=upstream, seed=seed, ratios={"x": 0.5, "y": 0.5})[0])
         assert got[a] == got[z]
+
+
+# --- title and the metadata table (group_by_title, group_fields) ------------------------------
+
+def _titled_corpus(tmp_path):
+    """Twelve distinct pieces (mido-written, seeds 20-31): the conductor track of each is named
+    "Piece <seed>" by fixtures_midi.random_midi, so file titles are distinct."""
+    from fixtures_midi import random_midi
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    for i in range(12):
+        (corpus / f"tune_{i:02d}.mid").write_bytes(random_midi(20 + i, n_notes=300))
+    return corpus
+
+
+def _run_cfg(tmp_path, corpus, split_opts, metadata=None, name="out"):
+    import json
+    import yaml
+
+    from pipeline.cli import main
+    raw = {"input": str(corpus), "output": str(tmp_path / name), "workers": 1,
+           "stages": ["validate", {"split": {"ratios": {"a": 0.5, "b": 0.5}, **split_opts}}]}
+    if metadata is not None:
+        raw["metadata"] = str(metadata)
+    cfg = tmp_path / f"{name}.yaml"
+    cfg.write_text(yaml.safe_dump(raw))
+    rc = main(["run", str(cfg), "--quiet"])
+    rows = [json.loads(line) for line in (tmp_path / name / "manifest.jsonl").read_text().splitlines()]
+    return rc, {r["source"]: r for r in rows}
+
+
+def test_title_is_the_files_track_name_or_its_stem(tmp_path):
+    import mido
+    corpus = _titled_corpus(tmp_path)
+    mid = mido.MidiFile(type=0, ticks_per_beat=96)  # no track name, no text event
+    track = mido.MidiTrack()
+    for i in range(40):
+        track += [mido.Message("note_on", note=60 + i % 12, velocity=80, time=0 if i == 0 else 48),
+                  mido.Message("note_off", note=60 + i % 12, velocity=0, time=48)]
+    mid.tracks.append(track)
+    mid.save(str(corpus / "untitled take.mid"))
+    rc, rows = _run_cfg(tmp_path, corpus, {})
+    assert rc == 0
+    assert rows["tune_03.mid"]["title"] == "Piece 23"
+    assert rows["untitled take.mid"]["title"] == "untitled take"
+    assert list(rows["tune_03.mid"])[:4] == ["id", "source", "title", "sha256"]
+
+
+def test_metadata_columns_reach_the_manifest_and_group_the_split(tmp_path):
+    corpus = _titled_corpus(tmp_path)
+    table = tmp_path / "meta.csv"
+    lines = ["source,composer,licence"]
+    lines += [f"tune_{i:02d}.mid,Composer {i % 4},{'CC-BY' if i % 2 else 'CC0'}" for i in range(12)]
+    table.write_text("\n".join(lines) + "\n")
+    rc, rows = _run_cfg(tmp_path, corpus, {"group_fields": ["composer"]}, table)
+    assert rc == 0
+    assert rows["tune_05.mid"]["composer"] == "Composer 1" and rows["tune_05.mid"]["licence"] == "CC-BY"
+    by_composer: dict[str, set] = {}
+    for r in rows.values():
+        by_composer.setdefault(r["composer"], set()).add(r["split"])
+    assert all(len(parts) == 1 for parts in by_composer.values()), by_composer
+    # titles: each composer's pieces get one title through the table, and group_by_title ties them
+    lines = ["source,title"] + [f"tune_{i:02d}.mid,Song {i % 3}" for i in range(12)]
+    table.write_text("\n".join(lines) + "\n")
+    rc, rows = _run_cfg(tmp_path, corpus, {"group_by_title": True}, table, name="out2")
+    by_title: dict[str, set] = {}
+    for r in rows.values():
+        by_title.setdefault(r["title"], set()).add(r["split"])
+    assert sorted(by_title) == ["Song 0", "Song 1", "Song 2"]
+    assert all(len(parts) == 1 for parts in by_title.values()), by_title
+
+
+def test_an_edited_metadata_table_is_not_nothing_changed(tmp_path):
+    corpus = _titled_corpus(tmp_path)
+    table = tmp_path / "meta.csv"
+    table.write_text("source,composer\ntune_00.mid,A\n")
+    _run_cfg(tmp_path, corpus, {}, table)
+    table.write_text("source,composer\ntune_00.mid,B\n")
+    _, rows = _run_cfg(tmp_path, corpus, {}, table)
+    assert rows["tune_00.mid"]["composer"] == "B"
+
+
+@pytest.mark.parametrize("text,match", [
+    ("path,composer\nx.mid,A\n", "needs a 'source' column"),
+    ("source,composer\nx.mid,A\nx.mid,B\n", r"line 3.*'x.mid' has a row already \(line 2\)"),
+    ("source,composer\nx.mid,A,extra\n", "line 2.*3 fields but the header has 2"),
+    ("source,notes\nx.mid,A\n", "notes would overwrite"),
+    ('source,composer\n"x.mid,A\n', "not a valid CSV table"),
+])
+def test_bad_metadata_tables_are_config_errors_naming_the_line(tmp_path, text, match):
+    from pipeline.config import parse_config
+    from pipeline.errors import ConfigError
+    table = tmp_path / "meta.csv"
+    table.write_text(text)
+    with pytest.raises(ConfigError, match=match):
+        parse_config({"input": "in", "output": "out", "metadata": str(table),
+                      "stages": ["validate", "split"]})
+
+
+def test_group_fields_must_exist_and_suggest_the_nearest(tmp_path):
+    from pipeline.config import parse_config
+    from pipeline.errors import ConfigError
+    table = tmp_path / "meta.csv"
+    table.write_text("source,composer\nx.mid,A\n")
+    raw = {"input": "in", "output": "out", "stages": ["validate", {"split": {"group_fields": ["composr"]}}]}
+    with pytest.raises(ConfigError, match="'composr' is neither a manifest field.*add a 'metadata"):
+        parse_config(raw)
+    with pytest.raises(ConfigError, match="did you mean 'composer'"):
+        parse_config({**raw, "metadata": str(table)})
+    parse_config({**raw, "metadata": str(table),
+                  "stages": ["validate", {"split": {"group_fields": ["composer"]}}]})
+
+
+def test_metadata_rows_for_missing_files_are_reported(tmp_path, capsys):
+    corpus = _titled_corpus(tmp_path)
+    table = tmp_path / "meta.csv"
+    table.write_text("source,composer\ntune_00.mid,A\nno/such.mid,B\n")
+    import yaml
+
+    from pipeline.cli import main
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "o"), "workers": 1,
+                                   "metadata": str(table), "stages": ["validate", "split"]}))
+    assert main(["run", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    assert "1 row(s) of" in out and "'no/such.mid'" in out

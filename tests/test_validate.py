@@ -28,8 +28,10 @@ def test_kept_file_values_and_detail():
     data = random_midi(1, n_notes=80, n_tracks=3)
     result, piece = Validate().check(data, "a.mid")
     assert result.kept and isinstance(piece, Piece)
+    # random_midi names its conductor track "Piece <seed>" (a track_name meta event, as mido
+    # writes it): the file's own title
     assert result.values == {"format": 1, "track_chunks": 4, "ticks_per_beat": 480, "smpte": False,
-                             "repairs": {}}
+                             "repairs": {}, "file_title": "Piece 1"}
     assert result.detail == "SMF format 1, 4 tracks, 480 ticks per beat"
     json.dumps(result.to_json())  # manifest-ready
 

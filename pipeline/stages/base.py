@@ -109,6 +109,8 @@ class Member:
     values: dict[str, Any]
     artifacts: dict[str, dict[str, Any]]
     outputs: list[str] = field(default_factory=list)
+    #: per-source fields beside the measured values: ``title`` and the metadata table's columns
+    meta: dict[str, Any] = field(default_factory=dict)
 
 
 class CorpusState:

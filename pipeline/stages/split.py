@@ -324,8 +324,9 @@ class Split(Stage):
         fields = list(self.opts["group_fields"])
         if self.opts["group_by_title"] and "title" not in fields:
             fields.insert(0, "title")
-        for f in fields:
-            forced += group_by_key({m.id: normalize_text(m.values.get(f)) for m in members})
+        for f in fields:  # a source's own fields (title, metadata columns) first
+            forced += group_by_key({m.id: normalize_text(m.meta[f] if f in m.meta else m.values.get(f))
+                                    for m in members})
         return forced
 
 

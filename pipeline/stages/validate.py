@@ -30,7 +30,7 @@ class Validate(Stage):
 
     name = "validate"
     kind = "file"
-    version = 2
+    version = 3
     doc = ("Decodes every file with the project's SMF reader and drops files that are not MIDI, "
            "cut off, damaged, of an unsupported format, over the size limits, or without notes.")
     options = (
@@ -70,7 +70,9 @@ class Validate(Stage):
     def judge(self, piece: Piece) -> StageResult:
         values = {"format": piece.format, "track_chunks": piece.n_tracks,
                   "ticks_per_beat": piece.ticks_per_beat, "smpte": piece.smpte,
-                  "repairs": dict(sorted(piece.repairs.items()))}
+                  "repairs": dict(sorted(piece.repairs.items())),
+                  # the manifest's ``title`` falls back to the file name when this is empty
+                  "file_title": " ".join(piece.title.split())[:200]}
         timing = ("SMPTE timing (nominal " if piece.smpte else "") + \
             f"{piece.ticks_per_beat} ticks per beat" + (")" if piece.smpte else "")
         detail = f"SMF format {piece.format}, {piece.n_tracks} tracks, {timing}"
