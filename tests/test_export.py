@@ -93,21 +93,25 @@ def test_pianoroll_agrees_with_pretty_midi_on_every_demo_piece(demo_out, roll_ex
 
 def _merged_reference(notes: list[tuple[float, float, int]], step: float) -> list[tuple[float, float, int]]:
     """The notes the encoding can hold (its module doc): per pitch, the union of the notes'
-    sounding times, struck again at every onset; times rounded to the step, a note at least one
-    step long. Written as a plain loop over the reference's notes."""
-    by_pitch: dict[int, list[tuple[int, int]]] = {}
+    sounding times, struck again at every onset (a note at least one step long, decided on
+    times rounded to the step). Written as a plain loop over the reference's notes; the times
+    returned are the reference's own, not rounded."""
+    by_pitch: dict[int, list[tuple[int, int, float, float]]] = {}
     for s, e, p in notes:
         on = round(s / step)
-        by_pitch.setdefault(p, []).append((on, max(round(e / step), on + 1)))
+        by_pitch.setdefault(p, []).append((on, max(round(e / step), on + 1), s, e))
     out = []
     for p, ns in by_pitch.items():
         ns.sort()
-        reach = -1
-        for i, (on, off) in enumerate(ns):
-            reach = max(reach, off)
-            end = min(reach, ns[i + 1][0] if i + 1 < len(ns) else reach)
+        reach, reach_s = -1, 0.0
+        for i, (on, off, s, e) in enumerate(ns):
+            if off > reach:
+                reach, reach_s = off, e
+            end, end_s = reach, reach_s
+            if i + 1 < len(ns) and ns[i + 1][0] < end:
+                end, end_s = ns[i + 1][0], ns[i + 1][2]
             if end > on:
-                out.append((on * step, end * step, p))
+                out.append((s, end_s, p))
     return sorted(out, key=lambda r: (round(r[0] / step), r[2]))
 
 
