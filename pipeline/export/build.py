@@ -21,6 +21,7 @@ import hashlib
 import json
 import os
 import time
+import zipfile
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any, Iterator
@@ -238,12 +239,17 @@ def arrays_of(path: Path, opts: ExportOptions) -> tuple[np.ndarray, np.ndarray |
 
 
 def _save_shard(path: Path, arrays: dict[str, np.ndarray]) -> None:
-    """Write a compressed .npz atomically (a temporary name, then rename)."""
+    """Write an .npz atomically (a temporary name, then rename): a zip of ``<key>.npy``
+    members as ``np.savez_compressed`` writes them, but at deflate level 1 instead of 6: on
+    piano rolls a third of the time, for files twice as large (still ~40 times smaller than
+    the arrays; README figures)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp")
     try:
-        with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
+        with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=1) as zf:
+            for key, arr in arrays.items():
+                with zf.open(f"{key}.npy", "w", force_zip64=True) as fh:
+                    np.lib.format.write_array(fh, np.asanyarray(arr), allow_pickle=False)
         os.replace(tmp, path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
