@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import json
+import math
 import shutil
 from pathlib import Path
 
@@ -93,13 +94,16 @@ def test_pianoroll_agrees_with_pretty_midi_on_every_demo_piece(demo_out, roll_ex
 
 def _merged_reference(notes: list[tuple[float, float, int]], step: float) -> list[tuple[float, float, int]]:
     """The notes the encoding can hold (its module doc): per pitch, the union of the notes'
-    sounding times, struck again at every onset (a note at least one step long, decided on
-    times rounded to the step). Written as a plain loop over the reference's notes; the times
+    sounding times, struck again at every onset (decided on times rounded to the step; a note
+    that rounds to nothing takes the step its start falls in). Written as a plain loop over the reference's notes; the times
     returned are the reference's own, not rounded."""
     by_pitch: dict[int, list[tuple[int, int, float, float]]] = {}
     for s, e, p in notes:
-        on = round(s / step)
-        by_pitch.setdefault(p, []).append((on, max(round(e / step), on + 1), s, e))
+        on, off = round(s / step), round(e / step)
+        if off <= on:  # a note that rounds to nothing: the step its start falls in
+            on = math.floor(s / step)
+            off = on + 1
+        by_pitch.setdefault(p, []).append((on, off, s, e))
     out = []
     for p, ns in by_pitch.items():
         ns.sort()
@@ -155,6 +159,14 @@ def test_events_round_trip_exact_notes_onsets_and_velocity_bins():
     # 0.5 s of the last note
     shifts = [t - 256 + 1 for t in tokens.tolist() if 256 <= t < 356]
     assert shifts[-4:] == [100, 100, 50, 50]
+
+
+def test_a_note_shorter_than_a_step_keeps_both_ends_within_one_step():
+    # 0.05 ms long, starting just past half a step: rounding would make it vanish
+    tokens = encode_events(np.array([0.0050001]), np.array([0.00505]), np.array([60]), np.array([64]),
+                           step=0.01, max_shift_steps=100, velocity_bins=32)
+    got = decode_events(tokens, step=0.01, max_shift_steps=100, velocity_bins=32)
+    assert np.allclose(got[:, :3], [(0.0, 0.01, 60)])
 
 
 def test_vocabulary_is_the_published_388_tokens_by_default():

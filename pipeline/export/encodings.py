@@ -9,7 +9,8 @@ the frame of its start, so no note vanishes; where notes overlap a cell keeps th
 **Performance events** (Oore, Simon, Dieleman, Eck, Simonyan 2018, "This time with feeling:
 learning expressive musical performance"): 128 NOTE_ON, 128 NOTE_OFF, TIME_SHIFT tokens of 1 to
 ``max_shift_steps`` steps and VELOCITY tokens of ``velocity_bins`` bins (the paper: 10 ms steps up
-to 1 s, 32 bins: 388 tokens). Times are rounded to the step; a note lasts at least one step; at
+to 1 s, 32 bins: 388 tokens). Times are rounded to the step; a note that would round to nothing
+takes the step its start falls in, so no note is lost and both its ends stay within a step; at
 one time, note-offs come before note-ons (each in pitch order); a VELOCITY token comes before a
 NOTE_ON only when the bin changes. The encoding has one voice per pitch, so the notes of a pitch
 (from every track and channel) become the union of their sounding times, struck again at every
@@ -115,7 +116,12 @@ def encode_events(start_s: np.ndarray, end_s: np.ndarray, pitch: np.ndarray, vel
                   step: float, max_shift_steps: int, velocity_bins: int) -> np.ndarray:
     """Notes (seconds, pitch, velocity) as an int16 token sequence (see the module doc)."""
     on = np.rint(np.asarray(start_s) / step).astype(np.int64)
-    off = np.maximum(np.rint(np.asarray(end_s) / step).astype(np.int64), on + 1)
+    off = np.rint(np.asarray(end_s) / step).astype(np.int64)
+    # a note that rounds to nothing takes the step its start falls in (both ends stay within
+    # one step of the note's)
+    short = off <= on
+    on[short] = np.floor(np.asarray(start_s)[short] / step).astype(np.int64)
+    off[short] = on[short] + 1
     pitch = np.asarray(pitch).astype(np.int64)
     vel = np.clip(np.asarray(velocity).astype(np.int64), 0, 127)
     # one stream per pitch: the union of its notes, struck again at every onset (a note ends
