@@ -273,7 +273,7 @@ def export_output(out_dir: Path | str, opts: ExportOptions, *,
                 raise MidisiftError(f"a file of the split lists cannot be read ({e.strerror}); the "
                                     "output folder changed since its last finished run: rerun "
                                     "`midisift run`", file=str(out_dir / w.midi)) from None
-        result = _write(folder, wanted, opts, progress)
+        result = _write(out_dir, folder, wanted, opts, progress)
     result.seconds = time.perf_counter() - t0
     return result
 
@@ -283,7 +283,7 @@ def _fingerprint(opts: ExportOptions) -> str:
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
-def _write(folder: Path, wanted: list[Wanted], opts: ExportOptions, progress: Any) -> ExportResult:
+def _write(out_dir: Path, folder: Path, wanted: list[Wanted], opts: ExportOptions, progress: Any) -> ExportResult:
     fp = _fingerprint(opts)
     recorded = opts.recorded()
     old = _read_index(folder, fp)
@@ -337,7 +337,7 @@ def _write(folder: Path, wanted: list[Wanted], opts: ExportOptions, progress: An
         if w.part != current_part:
             flush()
             current_part = w.part
-        arr, drums = arrays_of(out_dir_of(folder) / w.midi, opts)
+        arr, drums = arrays_of(out_dir / w.midi, opts)
         line = {"id": w.id, "source": w.source, "part": w.part, "file": None, "key": w.key,
                 "shape": list(arr.shape), "dtype": str(arr.dtype), "options": recorded,
                 "midi": w.midi, "digest": w.digest}
@@ -363,21 +363,27 @@ def _write(folder: Path, wanted: list[Wanted], opts: ExportOptions, progress: An
     lines = [kept_lines.get(w.key) or new_lines[w.key] for w in wanted]
     for line in lines:
         result.parts[line["part"]] = result.parts.get(line["part"], 0) + 1
-    write_atomic(folder / "index.jsonl", "".join(json.dumps(line, sort_keys=False) + "\n" for line in lines))
+    _write_if_changed(folder / "index.jsonl", "".join(json.dumps(line) + "\n" for line in lines))
     meta = {"format": opts.format, "options": recorded, "fingerprint": fp, "encoding_version": ENCODING_VERSION,
             "pieces": len(lines), "parts": result.parts}
-    write_atomic(folder / "export.json", json.dumps(meta, indent=2) + "\n")
+    _write_if_changed(folder / "export.json", json.dumps(meta, indent=2) + "\n")
     if opts.format == "events":
-        write_atomic(folder / "vocabulary.json",
-                     json.dumps(vocabulary(opts.max_shift_steps, opts.velocity_bins, opts.step), indent=1) + "\n")
+        _write_if_changed(folder / "vocabulary.json",
+                          json.dumps(vocabulary(opts.max_shift_steps, opts.velocity_bins, opts.step), indent=1) + "\n")
     else:
-        _previews(folder, wanted[:opts.previews], {w.key for w in todo}, opts)
+        _previews(out_dir, folder, wanted[:opts.previews], {w.key for w in todo}, opts)
     return result
 
 
-def out_dir_of(folder: Path) -> Path:
-    """OUTPUT of ``OUTPUT/export/<format>``."""
-    return folder.parent.parent
+def _write_if_changed(path: Path, text: str) -> None:
+    """Write ``text`` atomically unless the file already holds it (a rerun with nothing new
+    leaves every file of the export untouched)."""
+    try:
+        if path.read_text(encoding="utf-8") == text:
+            return
+    except (OSError, UnicodeDecodeError):
+        pass
+    write_atomic(path, text)
 
 
 def _remove_strays(folder: Path, shards: set[str]) -> None:
@@ -388,7 +394,7 @@ def _remove_strays(folder: Path, shards: set[str]) -> None:
             path.unlink()
 
 
-def _previews(folder: Path, first: list[Wanted], computed: set[str], opts: ExportOptions) -> None:
+def _previews(out_dir: Path, folder: Path, first: list[Wanted], computed: set[str], opts: ExportOptions) -> None:
     """PNG previews (time x pitch) of the first pieces; others' previews are removed."""
     pdir = folder / "previews"
     names = {f"{w.key}.png" for w in first}
@@ -400,16 +406,8 @@ def _previews(folder: Path, first: list[Wanted], computed: set[str], opts: Expor
         target = pdir / f"{w.key}.png"
         if w.key in computed or not target.is_file():
             # the preview shows the whole piece, not its windows
-            roll, _ = arrays_of(out_dir_of(folder) / w.midi, replace(opts, window=None, hop=None))
+            roll, _ = arrays_of(out_dir / w.midi, replace(opts, window=None, hop=None))
             write_atomic(target, png_bytes(roll_image(roll)))
-
-
-def iter_index(folder: Path) -> Iterator[dict]:
-    """The lines of an export's index.jsonl."""
-    with open(folder / "index.jsonl", encoding="utf-8") as fh:
-        for line in fh:
-            if line.strip():
-                yield json.loads(line)
 
 
 __all__ = ["ExportOptions", "ExportResult", "export_output", "FORMATS", "DRUMS"]
