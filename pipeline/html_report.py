@@ -120,8 +120,9 @@ def paired_bars(labels: list[str], a: list[int], b: list[int], names: tuple[str,
 
 
 def thumbnail(path: Path | None, semitones: int) -> str:
-    """An <img> of the piano roll of a MIDI file moved by ``semitones`` (so members of a cluster
-    are shown in one key), or a note that the file is not available."""
+    """An <img> of the piano roll of a MIDI file moved by ``semitones`` (its normalization's
+    transposition, so the members of a cluster stand in one key), or a note that the file is
+    not available."""
     if path is None or not path.is_file():
         return '<span class="muted">file not available</span>'
     from .errors import MidisiftError
@@ -284,7 +285,8 @@ def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
     out = ["<h2>Near-duplicate clusters</h2>",
            f'<p>{fmt(len(members))} clusters of two or more files; sizes: '
            + ", ".join(f"{n} of {k}" for k, n in sorted(sizes.items())) + ". The largest, each with "
-           "its kept member and one dropped member (both shown in the kept member's normalized key):</p>"]
+           "its kept member and one dropped member, each moved by the transposition normalization applied to "
+           "it (so both stand in the common key):</p>"]
     for cid, ms in largest:
         kept = next((m for m in ms if m["id"] == cid and not m["duplicate_of"]), None)
         dropped = sorted((m for m in ms if m["duplicate_of"]), key=lambda m: (m["similarity"] or 0, m["source"]))
@@ -318,7 +320,7 @@ def _timings_section(summary: dict) -> str:
             f'computed in this run: {cell_inline(c["computed"], "counts.computed")}; reused from earlier runs: '
             f'{cell_inline(c["reused"], "counts.reused")}.</p>'
             f'<div class="row"><div><h4>Phases (s)</h4>{bars(items, width=420, label_w=90, unit=" s")}</div>'
-            f'<div><h4>Corpus stages in the stage walk (s)</h4>{bars(stage_items, width=420, label_w=90, unit=" s")}</div></div>'
+            f'<div><h4>Stages in the stage walk (s)</h4>{bars(stage_items, width=420, label_w=90, unit=" s")}</div></div>'
             f'<details><summary>all timings (summary.json)</summary><table>{body}</table></details>')
 
 
