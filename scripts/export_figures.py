@@ -31,7 +31,7 @@ def main() -> None:
     from pipeline.export import ExportOptions, export_output, open_export
     from pipeline.export.encodings import decode_events
     from pipeline.html_report import write_report
-    from test_export import _merged_reference
+    from test_export import _merged_reference, _roll_agreement
 
     for out in args.outputs:
         shutil.rmtree(out / "export", ignore_errors=True)
@@ -51,17 +51,7 @@ def main() -> None:
 
         ex = open_export(out, "pianoroll")
         entries = ex.entries[:args.agreement or None]
-        shares = []
-        for e in entries:
-            roll = ex.load(e["key"])
-            ref = pretty_midi.PrettyMIDI(str(out / e["midi"])).get_piano_roll(fs=20).T > 0
-            frames = max(len(ref), len(roll))
-            a = np.zeros((frames, 128), bool)
-            a[:len(roll)] = roll > 0
-            b = np.zeros((frames, 128), bool)
-            b[:len(ref)] = ref
-            shares.append((a == b).mean())
-        s = np.array(shares)
+        s = np.array([_roll_agreement(ex.load(e["key"]), out / e["midi"]) for e in entries])
         print(f"pianoroll vs pretty_midi get_piano_roll(fs=20): {len(s)} pieces, cells agreeing min "
               f"{s.min():.4%}, mean {s.mean():.4%}, pieces at 100% {int((s == 1).sum())}")
 
