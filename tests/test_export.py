@@ -231,6 +231,22 @@ def test_pitch_range_windows_and_drums_apart(tmp_path, demo_out):
     assert main(["export", str(out), "--format", "pianoroll", "--previews", "3", "--quiet"]) == 0
 
 
+def test_windows_in_beats_with_per_beat_frames(demo_out, tmp_path):
+    out = tmp_path / "out"
+    shutil.copytree(demo_out, out, ignore=shutil.ignore_patterns("export"))
+    export_output(out, ExportOptions("pianoroll", per_beat=4, window=8, hop=4))
+    ex = open_export(out, "pianoroll")
+    for e in ex.entries[:5]:
+        arr = ex.load(e["key"])
+        piece = decode((out / e["midi"]).read_bytes())
+        roll, _ = pianoroll(piece, per_beat=4)
+        assert arr.shape[1:] == (32, 128)  # 8 beats of 4 frames; a window every 16 frames
+        assert np.array_equal(windows(roll, 32, 16), arr)
+        # the roll spans the piece's last note end, in beats (ticks / ticks per beat)
+        assert len(roll) == int(np.floor(piece.notes["end"][piece.notes["channel"] != 9].max() * 4
+                                         / piece.ticks_per_beat + 1e-9))
+
+
 def test_windows_cover_the_roll_and_pad_the_last():
     roll = np.arange(10 * 3, dtype=np.uint8).reshape(10, 3)
     w = windows(roll, 4, 3)
