@@ -155,11 +155,12 @@ class Facts:
         self.estimated: dict[str, int] = {}
         self.meter_both = self.meter_agree = 0
         self.group_sizes: dict[int, int] = {}  # group size -> kept files in groups of that size
-        self.clusters: dict[str, list[dict]] = {}  # cluster id -> its members (clusters of 2+)
+        self.clusters: dict[str, list[dict]] = {}  # kept member's id -> its dropped duplicates
+        self.representatives: dict[str, dict] = {}  # kept member's id -> its row (shown clusters only)
 
     def add(self, r: dict[str, Any]) -> None:
-        if r.get("cluster") and (r.get("cluster_size") or 0) > 1:
-            self.clusters.setdefault(r["cluster"], []).append({k: r.get(k) for k in CLUSTER_FIELDS})
+        if r.get("duplicate_of"):
+            self.clusters.setdefault(r["duplicate_of"], []).append({k: r.get(k) for k in CLUSTER_FIELDS})
         if r.get("status") != "kept":
             return
         for f, vs in self.values.items():
@@ -189,13 +190,28 @@ CLUSTER_FIELDS = ("id", "source", "status", "transpose", "output", "duplicate_of
 
 
 def read_manifest(path: Path) -> Facts:
-    """The facts of a manifest.jsonl, read one line at a time."""
+    """The facts of a manifest.jsonl, read one line at a time; then, in a second quick pass,
+    the rows of the kept members of the clusters the page shows."""
     facts = Facts()
     loads, add = json.loads, facts.add
     with open(path, encoding="utf-8") as fh:
         for line in fh:
             add(loads(line))
+    shown = {cid for cid, _ in largest_clusters(facts)}
+    if shown:
+        prefix = len('{"id": "')  # every line starts with its id (outputs.CONTRACT_FIELDS)
+        with open(path, encoding="utf-8") as fh:
+            for line in fh:
+                if line[prefix:prefix + 16] in shown:
+                    r = loads(line)
+                    if not r.get("duplicate_of"):  # not a byte-identical copy of the kept file
+                        facts.representatives.setdefault(r["id"], {k: r.get(k) for k in CLUSTER_FIELDS})
     return facts
+
+
+def largest_clusters(facts: Facts) -> list[tuple[str, list[dict]]]:
+    """The clusters the page shows: the largest (most dropped members), then by id."""
+    return sorted(facts.clusters.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:CLUSTERS_SHOWN]
 
 
 def stage_order(summary: dict, stages: Iterable[str] | None) -> list[str]:
@@ -275,23 +291,21 @@ def _split_section(summary: dict, facts: Facts) -> str:
 
 
 def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
-    members = facts.clusters
-    if not members:
+    if not facts.clusters:
         return "<h2>Near-duplicate clusters</h2><p class=\"muted\">No cluster of two or more files.</p>"
-    largest = sorted(members.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:CLUSTERS_SHOWN]
     sizes: dict[int, int] = {}
-    for m in members.values():
-        sizes[len(m)] = sizes.get(len(m), 0) + 1
+    for dropped in facts.clusters.values():
+        sizes[len(dropped) + 1] = sizes.get(len(dropped) + 1, 0) + 1
     out = ["<h2>Near-duplicate clusters</h2>",
-           f'<p>{fmt(len(members))} clusters of two or more files; sizes: '
-           + ", ".join(f"{n} of {k}" for k, n in sorted(sizes.items())) + ". The largest, each with "
+           f'<p>{fmt(len(facts.clusters))} clusters of two or more files (exact and near duplicates); sizes: '
+           + ", ".join(f"{fmt(n)} of {k}" for k, n in sorted(sizes.items())) + ". The largest, each with "
            "its kept member and one dropped member, each moved by the transposition normalization applied to "
            "it (so both stand in the common key):</p>"]
-    for cid, ms in largest:
-        kept = next((m for m in ms if m["id"] == cid and not m["duplicate_of"]), None)
-        dropped = sorted((m for m in ms if m["duplicate_of"]), key=lambda m: (m["similarity"] or 0, m["source"]))
+    for cid, dropped in largest_clusters(facts):
+        kept = facts.representatives.get(cid)
+        dropped = sorted(dropped, key=lambda m: (m["similarity"] or 0, m["source"]))
         near = [m for m in dropped if m["duplicate_kind"] == "near"] or dropped
-        other = near[0] if near else None
+        other = near[0]
 
         def show(m: dict | None, label: str) -> str:
             if m is None:
@@ -305,7 +319,7 @@ def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
             kind = f" ({m['duplicate_kind']} duplicate)" if m["duplicate_kind"] else ""
             return (f'<div class="thumb"><b>{label}</b>{esc(kind + sim)}<br><code>{esc(m["source"])}</code><br>'
                     f'{thumbnail(path, shift)}</div>')
-        out.append(f'<div class="cluster"><h4>cluster {esc(cid)}: {len(ms)} files</h4><div class="row">'
+        out.append(f'<div class="cluster"><h4>cluster {esc(cid)}: {len(dropped) + 1} files</h4><div class="row">'
                    f'{show(kept, "kept")}{show(other, "dropped")}</div></div>')
     return "".join(out)
 
