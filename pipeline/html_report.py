@@ -131,8 +131,10 @@ def thumbnail(path: Path | None, semitones: int) -> str:
     from .smf import decode_file
     try:
         piece = decode_file(path)
-    except MidisiftError as e:
+    except MidisiftError as e:  # e.g. the source changed since the run read it
         return f'<span class="muted">cannot decode: {esc(e.reason)}</span>'
+    except OSError as e:
+        return f'<span class="muted">cannot read: {esc(e.strerror)}</span>'
     if semitones:
         notes = piece.notes.copy()
         notes["pitch"] = (notes["pitch"].astype(int) + semitones * (notes["channel"] != 9)).clip(0, 127)
