@@ -58,6 +58,25 @@ def _parser() -> argparse.ArgumentParser:
     lk.add_argument("--threshold", type=float, help="similarity that counts as a leak")
     lk.add_argument("--json", dest="json_out", help="also write the report as JSON to this file")
 
+    x = sub.add_parser("export", help="write a finished run's files as piano-roll or event-token shards")
+    x.add_argument("output", help="the output folder of a finished run")
+    x.add_argument("--format", required=True, metavar="FORMAT", help="pianoroll or events")
+    x.add_argument("--step", type=float, metavar="S", help="seconds per frame (pianoroll, default 0.05) or per "
+                   "time-shift step (events, default 0.01)")
+    x.add_argument("--per-beat", type=int, metavar="N", help="pianoroll: frames per quarter-note beat instead of --step")
+    x.add_argument("--pitch-low", type=int, metavar="P", default=0, help="pianoroll: lowest pitch kept (default 0)")
+    x.add_argument("--pitch-high", type=int, metavar="P", default=127, help="pianoroll: highest pitch kept (default 127)")
+    x.add_argument("--drums", default="omit", metavar="omit|apart", help="omit (default): leave the drum channel out; "
+                   "apart: write it as its own array beside each piece's")
+    x.add_argument("--window", type=float, metavar="W", help="pianoroll: fixed windows of this length (seconds, "
+                   "or beats with --per-beat)")
+    x.add_argument("--hop", type=float, metavar="H", help="pianoroll: a window starts every HOP (default: the window)")
+    x.add_argument("--max-shift", type=float, metavar="S", default=1.0, help="events: longest time shift, seconds (default 1)")
+    x.add_argument("--velocity-bins", type=int, metavar="N", default=32, help="events: velocity bins (default 32)")
+    x.add_argument("--previews", type=int, metavar="N", default=0, help="pianoroll: PNG previews of the first N pieces")
+    x.add_argument("--shard-mb", type=float, metavar="MB", default=64.0, help="bound of a shard's array bytes (default 64)")
+    x.add_argument("--quiet", action="store_true", help="print nothing")
+
     b = sub.add_parser("bench", help="side-by-side throughput benchmark; prints a table, writes bench.json")
     b.add_argument("--quick", action="store_true", help="small corpora (a smoke run, minutes not tens of minutes)")
     b.add_argument("--out", default="bench-out", help="scratch folder for corpora and outputs")
@@ -111,12 +130,25 @@ def _leakage(args: argparse.Namespace) -> int:
     return main_leakage(args)
 
 
+def _export(args: argparse.Namespace) -> int:
+    from .export import ExportOptions, export_output
+    opts = ExportOptions(args.format, step=args.step, per_beat=args.per_beat, pitch_low=args.pitch_low,
+                         pitch_high=args.pitch_high, drums=args.drums, window=args.window, hop=args.hop,
+                         max_shift=args.max_shift, velocity_bins=args.velocity_bins,
+                         previews=args.previews, shard_mb=args.shard_mb)
+    result = export_output(Path(args.output), opts)
+    if not args.quiet:
+        print(result.table())
+    return 0
+
+
 def _bench(args: argparse.Namespace) -> int:
     from .bench import main_bench
     return main_bench(args)
 
 
-COMMANDS = {"run": _run, "explain": _explain, "synth": _synth, "leakage": _leakage, "bench": _bench}
+COMMANDS = {"run": _run, "explain": _explain, "synth": _synth, "leakage": _leakage, "export": _export,
+            "bench": _bench}
 
 
 class _Terminated(KeyboardInterrupt):

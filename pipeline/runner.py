@@ -374,6 +374,8 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
+        from .html_report import write_report  # the run's page, from what was just written
+        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input)
         configured = outputs.configured_parts(self.stages)
         parts = in_part_order({p: len(placed.parts.get(p, ())) for p in {*configured, *placed.parts}},
                               summary["split"].get("part_order"))

@@ -87,7 +87,7 @@ def test_inputs_untouched_and_awkward_names_work(awkward_corpus, tmp_path):
     # output names come from content ids only
     for p in out.rglob("*"):
         rel = p.relative_to(out).as_posix()
-        assert re.fullmatch(r"(manifest\.jsonl|summary\.json|state\.sqlite(-wal|-shm)?|splits|"
+        assert re.fullmatch(r"(manifest\.jsonl|summary\.json|report\.html|state\.sqlite(-wal|-shm)?|splits|"
                             r"splits/\w+\.txt|midi|midi/\w+|midi/\w+/[0-9a-f]{16}(\.[\w+-]+)?\.mid)",
                             rel), rel
 
