@@ -6,6 +6,7 @@ import sys
 from pathlib import Path
 
 from .errors import ConfigError, MidisiftError, UsageError
+from .reasons import RETRYABLE
 
 
 def _version() -> str:
@@ -31,11 +32,15 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--quiet", action="store_true", help="no progress bars and no summary table")
     r.add_argument("--reassign", action="store_true", help="recompute the split from scratch (files may change part)")
     r.add_argument("--retry-failed", action="store_true",
-                   help="recompute files that failed with timeout or decoder_crash in an earlier run")
+                   help=f"recompute files that failed in an earlier run with {', '.join(RETRYABLE)} "
+                        "or too_large against the per-file memory limit max_memory_mb (such "
+                        "verdicts are cached otherwise)")
 
     e = sub.add_parser("explain", help="print the whole decision trail of one file")
     e.add_argument("file", help="source path (as in the manifest, or under the input folder) or an id")
-    e.add_argument("--output", default="out/demo", help="output folder of the run (default: out/demo)")
+    e.add_argument("--output", default="out/demo",
+                   help="output folder of the run (default: out/demo, the output of configs/default.yaml)")
+    e.add_argument("--json", action="store_true", help="print the trail as JSON (the same steps as data)")
 
     s = sub.add_parser("synth", help="generate a demo/benchmark corpus with planted cases and truth.json",
                        formatter_class=argparse.ArgumentDefaultsHelpFormatter)
@@ -108,7 +113,7 @@ def _run(args: argparse.Namespace) -> int:
 
 def _explain(args: argparse.Namespace) -> int:
     from .explain import explain
-    print(explain(Path(args.output), args.file))
+    print(explain(Path(args.output), args.file, as_json=args.json))
     return 0
 
 

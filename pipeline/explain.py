@@ -66,8 +66,10 @@ def _cluster_members(out_dir: Path, cluster: Any) -> list[dict]:
     return members
 
 
-def explain(out_dir: Path, query: str) -> str:
-    """The printable trail; raises MidisiftError (exit 1) for an unknown file."""
+def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
+    """The printable trail (or, ``as_json``, the same trail as a JSON list: one object per
+    matching source with ``source``, ``id``, ``sha256``, ``status``, ``stage``, ``reason`` and
+    its ``trail`` of stage steps); raises MidisiftError (exit 1) for an unknown file."""
     db = out_dir / "state.sqlite"
     if not db.is_file():
         raise MidisiftError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
@@ -83,7 +85,19 @@ def explain(out_dir: Path, query: str) -> str:
     if not hits:
         raise MidisiftError("no such file in the last run (give the path as in the manifest's 'source', "
                             "a path under the input folder, or an id of at least 6 hex digits)", file=query)
+    if as_json:
+        return json.dumps([_as_data(src, sha, trail) for src, sha, trail in hits], indent=1,
+                          ensure_ascii=False)
     return "\n\n".join(_one(out_dir, src, sha, trail) for src, sha, trail in hits)
+
+
+def _as_data(source: str, sha: str | None, trail: list) -> dict:
+    """One source's trail as data: the same steps the text shows, and its verdict."""
+    final = next((s for s in trail if not s["kept"]), None)
+    return {"source": source, "id": (sha or "")[:16], "sha256": sha,
+            "status": "kept" if final is None else "dropped",
+            "stage": final and final["stage"], "reason": final and final["reason"],
+            "trail": trail}
 
 
 def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:

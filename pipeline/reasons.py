@@ -34,3 +34,8 @@ REASONS: dict[str, tuple[str, str]] = {
     "stuck_note": ("filter", "a pitched note longer than max_note_s"),
     "program_excluded": ("filter", "an instrument outside programs_allow, or inside programs_deny"),
 }
+
+
+#: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file),
+#: besides ``too_large`` against the per-file memory limit ``max_memory_mb``.
+RETRYABLE = ("timeout", "decoder_crash", "stage_error")

@@ -35,6 +35,7 @@ from .executor import Fault, Limits, run_tasks
 from .ledger import Ledger, canonical_json, stored_artifacts, stored_result, thresholds_json
 from .lock import OutputLock
 from .records import Compactor, Result, TrailValues
+from .reasons import RETRYABLE
 from .report import RunReport, grouping_off, in_part_order
 from .rowreuse import RowReuse
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
@@ -752,10 +753,6 @@ class _DecisionSink:
         self.first = False
         self.rows = []
         self.digests = []
-
-
-#: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file).
-RETRYABLE = ("timeout", "decoder_crash", "stage_error")
 
 
 def is_retryable(result: dict) -> bool:

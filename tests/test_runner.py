@@ -544,3 +544,21 @@ def test_changing_the_split_seed_without_dedup_decodes_nothing(tmp_path):
         cfg_path.write_text(yaml.safe_dump(raw))
         computed.append(_run(out, config=cfg_path).computed)
     assert computed[0] > 0 and computed[1] == 0
+
+
+def test_explain_json_is_the_same_trail_as_data(demo_out, capsys):
+    row = next(r for r in _manifest(demo_out) if r["status"] == "dropped" and r["stage"] == "dedup")
+    assert main(["explain", row["source"], "--output", str(demo_out), "--json"]) == 0
+    (data,) = json.loads(capsys.readouterr().out)
+    assert (data["source"], data["id"], data["status"], data["stage"], data["reason"]) == \
+        (row["source"], row["id"], "dropped", "dedup", row["reason"])
+    assert [s["stage"] for s in data["trail"]] == ["validate", "transpose", "key_meter", "dedup"]
+    assert data["trail"][-1]["values"]["duplicate_of"] == row["duplicate_of"]
+
+
+def test_run_help_lists_every_reason_retry_failed_covers(capsys):
+    from pipeline.reasons import RETRYABLE
+    with pytest.raises(SystemExit):
+        main(["run", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert all(code in text for code in (*RETRYABLE, "too_large"))
