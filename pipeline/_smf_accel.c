@@ -4,7 +4,8 @@
  * Same semantics as the pure-Python loop (running status kept across meta and sysex events,
  * 4-byte delta-time limit, same-key note stacking, zero-length drop counting, hanging notes
  * closed at the track's last tick, program at note-on reset per track, tempo / meter / key /
- * track-name / first-text extraction, unknown-meta and event counting). It builds no error
+ * track-name / first-text extraction, the other channel events as CONTROL_DTYPE records and the
+ * text-like metas, unknown-meta and event counting). It builds no error
  * messages: on anything the Python loop raises for, ``read_track`` returns None and the caller
  * re-runs the pure-Python loop on that track, which raises the exact DecodeError.
  *
@@ -136,6 +137,9 @@ static PyObject *pairs_list(const Vec *a, int width) {
     }
     return list;
 }
+
+/* score.CONTROL_DTYPE, packed: tick int64, track int16, channel, kind, data1, data2 uint8 */
+#define CONTROL_SIZE 14
 
 /* Result codes of the loop: 0 ok, 1 the Python loop would raise (re-run it), -1 MemoryError. */
 #define FAIL_DECODE 1
@@ -370,20 +374,29 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
 }
 
 PyDoc_STRVAR(read_track_doc,
-"read_track(data: bytes, start: int, length: int) -> tuple | None\n\n"
+"read_track(data: bytes, start: int, length: int, track: int = 0) -> tuple | None\n\n"
 "Parse the MTrk body data[start:start+length] like pipeline.smf._read_track. Returns\n"
 "(last tick, saw end-of-track, track name or None, first text, events, zero-length notes\n"
 "dropped, hanging notes closed, unknown metas, notes, tempos, meters, keys, controls, texts),\n"
-"where notes is bytes of native int64 (start, end, info) triples, controls bytes of int64\n"
-"(tick, status << 16 | data1 << 8 | data2) pairs, tempos/meters/keys lists of (tick, ...)\n"
+"where notes is bytes of native int64 (start, end, info) triples, controls bytes of\n"
+"score.CONTROL_DTYPE records (track = ``track``), tempos/meters/keys lists of (tick, ...)\n"
 "tuples and texts a list of (tick, meta type, payload bytes); or None where the pure-Python\n"
 "loop would raise a DecodeError.");
 
 static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
-    if (nargs != 3) {
-        PyErr_SetString(PyExc_TypeError, "read_track(data, start, length) takes 3 arguments");
+    if (nargs != 3 && nargs != 4) {
+        PyErr_SetString(PyExc_TypeError, "read_track(data, start, length, track=0) takes 3 or 4 arguments");
         return NULL;
+    }
+    long track = 0;
+    if (nargs == 4) {
+        track = PyLong_AsLong(args[3]);
+        if (track == -1 && PyErr_Occurred()) return NULL;
+        if (track < -32768 || track > 32767) {
+            PyErr_SetString(PyExc_ValueError, "read_track: track outside int16");
+            return NULL;
+        }
     }
     if (!PyBytes_Check(args[0])) {
         PyErr_SetString(PyExc_TypeError, "read_track: data must be bytes");
@@ -437,8 +450,21 @@ static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t na
         PyObject *tempos = pairs_list(&r.tempos, 2);
         PyObject *meters = pairs_list(&r.meters, 3);
         PyObject *keys = pairs_list(&r.keys, 3);
-        PyObject *ctls = PyBytes_FromStringAndSize((const char *)r.ctls.v,
-                                                   r.ctls.n * (Py_ssize_t)sizeof(int64_t));
+        Py_ssize_t n_ctls = r.ctls.n / 2;
+        PyObject *ctls = PyBytes_FromStringAndSize(NULL, n_ctls * CONTROL_SIZE);
+        if (ctls) {
+            unsigned char *o = (unsigned char *)PyBytes_AS_STRING(ctls);
+            int16_t tr16 = (int16_t)track;
+            for (Py_ssize_t i = 0; i < n_ctls; i++, o += CONTROL_SIZE) {
+                int64_t tk = r.ctls.v[2 * i], m = r.ctls.v[2 * i + 1];
+                memcpy(o, &tk, 8);
+                memcpy(o + 8, &tr16, 2);
+                o[10] = (unsigned char)((m >> 16) & 0x0F);
+                o[11] = (unsigned char)((m >> 16) & 0xF0);
+                o[12] = (unsigned char)((m >> 8) & 0x7F);
+                o[13] = (unsigned char)(m & 0x7F);
+            }
+        }
         Py_ssize_t n_texts = r.texts.n / 3;
         PyObject *texts = PyList_New(n_texts);
         for (Py_ssize_t i = 0; texts && i < n_texts; i++) {
@@ -1677,36 +1703,73 @@ done:
 
 
 PyDoc_STRVAR(table_group_events_doc,
-"table_group_events(notes[, cgroup, ctick, cmsg]) -> list[tuple[int, bytes]] | None\n\n"
-"group_events on the columns of a NOTE_DTYPE table (group = track * 16 + channel) and the\n"
-"optional columns of other channel events, for a\n"
+"table_group_events(notes[, controls]) -> list[tuple[int, bytes]] | None\n\n"
+"group_events on the columns of a NOTE_DTYPE table (group = track * 16 + channel) and of an\n"
+"optional CONTROL_DTYPE table (stably sorted by group and tick, as encode does), for a\n"
 "table whose every note ends after it starts; None otherwise (encode then filters or\n"
 "refuses the table itself).");
 
 static PyObject *table_group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
-    if (nargs != 1 && nargs != 4) {
+    if (nargs != 1 && nargs != 2) {
         PyErr_SetString(PyExc_TypeError, "table_group_events takes a note table and optionally "
-                        "3 columns of other events");
+                        "a control table");
         return NULL;
     }
-    Column col[3];
-    Py_ssize_t nc = nargs == 4 ? -1 : 0;
-    int k;
-    for (k = 0; k < 3; k++) col[k].ok = 0;
-    for (k = 1; k < nargs; k++)
-        if (column_get(args[k], &col[k - 1], &nc) < 0) {
-            for (k = 0; k < 3; k++)
-                if (col[k].ok) PyBuffer_Release(&col[k].view);
+    Py_buffer cv;
+    int c_ok = 0;
+    Py_ssize_t nc = 0;
+    int64_t *cc = NULL;
+    Row *crow = NULL;
+    if (nargs == 2) {
+        if (PyObject_GetBuffer(args[1], &cv, PyBUF_C_CONTIGUOUS) < 0) return NULL;
+        c_ok = 1;
+        if (cv.len % CONTROL_SIZE) {
+            PyBuffer_Release(&cv);
+            PyErr_SetString(PyExc_ValueError, "a CONTROL_DTYPE table is expected");
             return NULL;
         }
+        nc = cv.len / CONTROL_SIZE;
+    }
     Notes t;
     if (notes_open(args[0], &t) < 0) {
-        for (k = 0; k < 3; k++)
-            if (col[k].ok) PyBuffer_Release(&col[k].view);
+        if (c_ok) PyBuffer_Release(&cv);
         return NULL;
     }
     PyObject *out = NULL;
+    if (nc) { /* (group, tick, message) columns, stably sorted by (group, tick) */
+        const unsigned char *b = (const unsigned char *)cv.buf;
+        cc = (int64_t *)PyMem_Malloc((size_t)(3 * nc) * sizeof(int64_t));
+        crow = (Row *)PyMem_Malloc((size_t)(2 * nc) * sizeof(Row));
+        if (!cc || !crow) {
+            PyErr_NoMemory();
+            PyMem_Free(cc);
+            PyMem_Free(crow);
+            PyBuffer_Release(&cv);
+            notes_release(&t);
+            return NULL;
+        }
+        for (Py_ssize_t i = 0; i < nc; i++, b += CONTROL_SIZE) {
+            int64_t tk;
+            int16_t tr;
+            memcpy(&tk, b, 8);
+            memcpy(&tr, b + 8, 2);
+            crow[i].start = (int64_t)tr * 16 + b[10];
+            crow[i].k2 = tk;
+            crow[i].end = 0;
+            crow[i].info = ((int64_t)(b[11] | b[10]) << 16) | ((int64_t)b[12] << 8) | b[13];
+            crow[i].idx = i;
+        }
+        sort_rows(crow, crow + nc, nc);
+        for (Py_ssize_t i = 0; i < nc; i++) {
+            cc[i] = crow[i].start;
+            cc[nc + i] = crow[i].k2;
+            cc[2 * nc + i] = crow[i].info;
+        }
+        PyMem_Free(crow);
+        PyBuffer_Release(&cv);
+        c_ok = 0;
+    }
     Py_ssize_t n = t.n;
     int64_t *c = (int64_t *)PyMem_Malloc((size_t)(6 * (n ? n : 1)) * sizeof(int64_t));
     if (!c) {
@@ -1728,13 +1791,11 @@ static PyObject *table_group_events(PyObject *self, PyObject *const *args, Py_ss
         c[5 * n + i] = f_i16(&t, i, O_PROGRAM);
     }
     out = group_events_of(n, c, c + n, c + 2 * n, c + 3 * n, c + 4 * n, c + 5 * n, nc,
-                          nargs == 4 ? col[0].v : NULL, nargs == 4 ? col[1].v : NULL,
-                          nargs == 4 ? col[2].v : NULL);
+                          cc, nc ? cc + nc : NULL, nc ? cc + 2 * nc : NULL);
 done:
     PyMem_Free(c);
+    PyMem_Free(cc);
     notes_release(&t);
-    for (k = 0; k < 3; k++)
-        if (col[k].ok) PyBuffer_Release(&col[k].view);
     return out;
 }
 

@@ -1,14 +1,18 @@
 """Normalized SMF writer: ``Piece`` (or a transposed note table) -> deterministic bytes.
 
 Layout: format 1; track 0 is the conductor track (title as track name, then time signatures,
-key signatures and the tempo map); then one track per (source track, channel) group, in that
-order, holding program changes and notes. Note-offs are written as note-on with velocity 0,
-which lets a whole group track use running status (common practice; smallest files). At equal
-ticks a group track writes note-offs (by pitch), then note-ons in (start, pitch) order, each
-preceded by a program change when its program differs from the previous note-on's. So the
-bytes are a pure function of the note table, and the decoder reads back exactly the same notes
-(a note-off never closes the note that starts at its own tick). Each group track carries its
-source track's name. Zero-length notes are not written (the decoder drops them too).
+key signatures, the tempo map and the piece's text-like metas: lyrics, text, markers, cue
+points, copyright, after the conductor's own events at a tick, by source track); then one track
+per (source track, channel) group, in that order, holding its notes and the piece's other
+channel events of that group (``Piece.controls``: control changes, pitch bends, aftertouch,
+program changes). Note-offs are written as note-on with velocity 0, which lets a whole group
+track use running status (common practice; smallest files). At equal ticks a group track
+writes note-offs (by pitch), then the other channel events (in file order), then note-ons in
+(start, pitch) order, each preceded by a program change when the program in force in the
+track (the last program change written) is not the note's. So the bytes are a pure function of
+the piece, and the decoder reads back exactly the same notes and controls (a note-off never
+closes the note that starts at its own tick). Each group track carries its source track's name.
+Zero-length notes are not written (the decoder drops them too).
 
 SMPTE pieces are re-based on 480 ticks per beat at one 120 BPM tempo (960 ticks per second)
 from their exact seconds. Limits: overlapping notes of one pitch and channel in one group cannot
@@ -26,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import smf
-from .score import DEFAULT_TEMPO, Piece, compiled_analyses
+from .score import CONTROL_DTYPE, DEFAULT_TEMPO, Piece, compiled_analyses
 
 __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 
@@ -86,23 +90,24 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
     else:
         rebase = lambda t: np.asarray(t, dtype=np.int64)  # noqa: E731
     ctl = piece.controls
+    bodies = None  # the group tracks' event bytes, straight from the tables when compiled
+    deferred = None  # their error, raised where the group tracks are made (after the conductor)
+    if accelerated and not piece.smpte and len(notes) and ctl.dtype == CONTROL_DTYPE:
+        accel = compiled_analyses(notes)
+        if accel is not None:  # None back: a note that does not end after it starts
+            try:
+                bodies = (accel.table_group_events(notes, np.ascontiguousarray(ctl)) if len(ctl)
+                          else accel.table_group_events(notes))
+            except ValueError as exc:
+                deferred = exc
     extra: tuple = ()  # the other channel events as columns (group, tick, message), sorted
-    if len(ctl):
+    if bodies is None and len(ctl):
         cgroup = ctl["track"].astype(np.int64) * 16 + ctl["channel"]
         ctick = rebase(ctl["tick"])
         o = np.lexsort((ctick, cgroup))  # stable: file order within a tick
         cmsg = ((ctl["kind"].astype(np.int64) | ctl["channel"]) << 16
                 | ctl["data1"].astype(np.int64) << 8 | ctl["data2"])
         extra = (cgroup[o], np.ascontiguousarray(ctick[o]), cmsg[o])
-    bodies = None  # the group tracks' event bytes, straight from the table when compiled
-    deferred = None  # their error, raised where the group tracks are made (after the conductor)
-    if accelerated and not piece.smpte and len(notes):
-        accel = compiled_analyses(notes)
-        if accel is not None:  # None back: a note that does not end after it starts
-            try:
-                bodies = accel.table_group_events(notes, *extra)
-            except ValueError as exc:
-                deferred = exc
     if piece.smpte:
         tpb = SMPTE_TICKS_PER_BEAT
         per_s = 2.0 * tpb  # ticks per second at 120 BPM

@@ -206,12 +206,12 @@ def shift_controls(controls: Any, semitones: int) -> Any:
     carries a key number (data1), moved as its notes are on pitched channels (beyond 0..127
     folded back by octaves, as ``analysis.transpose.shift_notes`` folds notes); controller
     values, pitch bends and the drum channel stay as they are."""
+    if not semitones or not len(controls) or not (controls["kind"] == 0xA0).any():
+        return controls  # the usual case: no polyphonic aftertouch
     import numpy as np
 
     from .score import DRUM_CHANNEL
     poly = (controls["kind"] == 0xA0) & (controls["channel"] != DRUM_CHANNEL)
-    if not semitones or not poly.any():
-        return controls
     out = controls.copy()
     p = out["data1"][poly].astype(np.int64) + int(semitones)
     p = np.where(p > 127, p - 12 * ((p - 127 + 11) // 12), p)

@@ -50,8 +50,13 @@ Policies (chosen to match pretty_midi 0.2.x ``_load_instruments``, the reference
 * Running status is kept across meta and sysex events (as mido does for meta events), because
   real files rely on it; the spec says those cancel it.
 
+Kept besides notes (for the normalized output): the other channel events (control change,
+pitch bend, channel and polyphonic aftertouch, program change) as ``Piece.controls``, in file
+order per track, and the text-like metas (``score.TEXT_METAS``: text, copyright, lyric, marker,
+cue point; .kar files are plain SMF) as ``Piece.texts``, payloads as bytes.
+
 Legal features handled without counting: running status, velocity-0 note-offs, sysex and
-escape events (skipped, length bounded), lyric and text metas (.kar files are plain SMF),
+escape events (skipped, length bounded),
 SMPTE division (``smpte=True``; seconds = ticks / (frames/s x ticks/frame) exactly, with
 ``ticks_per_beat`` = half the ticks per second so one 120 BPM tempo reproduces them; for 29.97
 fps the single tempo is the nearest whole microsecond). The counted repairs are in ``REPAIRS``.
@@ -262,7 +267,7 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
     meters: list[tuple[int, int, int]] = []
     keys: list[tuple[int, int, int]] = []
     ctl: list[int] = []       # flat control columns: tick, status << 16 | data1 << 8 | data2
-    ctl_chunks: list[bytes] = []  # the same as int64 bytes, per track (compiled loop)
+    ctl_chunks: list[bytes] = []  # CONTROL_DTYPE records, per track (compiled loop)
     ctl_tracks: list[int] = []  # (track index, number of controls) pairs, flat
     texts: list[tuple[int, int, int, bytes]] = []
     names: list[str] = []
@@ -298,15 +303,15 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
         base = pos + 8
         pos = base + clen
         if accelerated:
-            got = _smf_accel.read_track(data, base, clen)
+            got = _smf_accel.read_track(data, base, clen, ti)
             if got is None:  # the Python loop raises the exact DecodeError
                 got = _read_track_alone(data, base, clen, ti, pos == end, source)
             tick, eot, name, text, n_ev, z, h, u, nb, t_ev, m_ev, k_ev, cb, x_ev = got
             chunks.append(nb)
             chunk_tracks.append(ti)
             k_track = len(nb) // 24
-            c_track = len(cb) // 16
-            if c_track:
+            c_track = 0  # the records carry their track
+            if cb:
                 ctl_chunks.append(cb)
             if x_ev:
                 texts += [(tk, ti, mt, payload) for tk, mt, payload in x_ev]
@@ -383,8 +388,11 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
             notes["start_s"] = secs[:k]
             notes["end_s"] = secs[k:]
     title = names[0] if names and names[0] else first_text
-    controls = _control_table(np.frombuffer(b"".join(ctl_chunks), dtype=np.int64) if accelerated
-                              else np.array(ctl, dtype=np.int64), ctl_tracks)
+    if accelerated:
+        controls = (np.frombuffer(bytearray(b"".join(ctl_chunks)), dtype=CONTROL_DTYPE)
+                    if ctl_chunks else np.zeros(0, dtype=CONTROL_DTYPE))
+    else:
+        controls = _control_table(np.array(ctl, dtype=np.int64), ctl_tracks)
     return Piece(notes=notes, ticks_per_beat=tpb, tempos=tempo_arr,
                  time_signatures=_events(meters, METER_DTYPE),
                  key_signatures=_events(keys, KEY_DTYPE), format=fmt, n_tracks=ti,
@@ -611,7 +619,8 @@ def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, co
 def _read_track_alone(data: bytes, base: int, clen: int, ti: int, at_file_end: bool,
                       source: str) -> tuple:
     """``_read_track`` on one track with its own lists, in the compiled loop's result shape
-    (notes as int64 bytes). Called where the compiled loop gave up: it raises there."""
+    (notes as int64 bytes, controls as CONTROL_DTYPE records). Called where the compiled loop
+    gave up: it raises there."""
     cols: list[int] = []
     tempos: list = []
     meters: list = []
@@ -621,7 +630,7 @@ def _read_track_alone(data: bytes, base: int, clen: int, ti: int, at_file_end: b
     head = _read_track(data[base:base + clen], base, ti, at_file_end, source, cols, tempos,
                        meters, keys, ctl, texts)
     return (*head, np.array(cols, dtype=np.int64).tobytes(), tempos, meters, keys,
-            np.array(ctl, dtype=np.int64).tobytes(), texts)
+            _control_table(np.array(ctl, dtype=np.int64), [ti, len(ctl) // 2]).tobytes(), texts)
 
 
 def _smpte_seconds(notes: np.ndarray, ticks_per_second: float) -> None:

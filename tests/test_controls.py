@@ -278,6 +278,12 @@ def test_shift_controls_moves_only_pitched_poly_aftertouch():
     assert shift_controls(c, 0) is c
 
 
+def test_control_layout_is_what_the_compiled_code_writes():
+    # pipeline/_smf_accel.c writes and reads CONTROL_DTYPE records packed, 14 bytes each
+    assert CONTROL_DTYPE.itemsize == 14
+    assert [CONTROL_DTYPE.fields[f][1] for f in CONTROL_DTYPE.names] == [0, 8, 10, 11, 12, 13]
+
+
 def test_compiled_encoder_with_controls_equals_numpy():
     # pipeline/_smf_accel.c group_events with the other events against encode._all_group_events
     if not smf.HAVE_ACCEL:
@@ -289,6 +295,20 @@ def test_compiled_encoder_with_controls_equals_numpy():
         only.notes = only.notes[:0]  # controls and texts without a note
         assert encode(only, accelerated=True) == encode(only, accelerated=False)
         assert streams(encode(only)) == streams(rich_midi(seed))
+    # format 0 (every channel in one track: the controls must be regrouped) and SMPTE time
+    mf = mido.MidiFile(file=io.BytesIO(rich_midi(7)))
+    zero = mido.MidiFile(type=0, ticks_per_beat=mf.ticks_per_beat)
+    zero.tracks.append(mido.merge_tracks(mf.tracks))
+    buf = io.BytesIO()
+    zero.save(file=buf)
+    for data in (buf.getvalue(), rich_midi(8, fps=25)):
+        p = smf.decode(data)
+        out = encode(p, accelerated=True)
+        assert out == encode(p, accelerated=False)
+        if not p.smpte:  # per channel, the same streams (mido)
+            per_channel = lambda d: Counter((k[1], t, f) for k, v in streams(d).items()  # noqa: E731
+                                            for t, f in v if dict(f)["type"] != "program_change")
+            assert per_channel(out) == per_channel(data)
 
 
 @pytest.mark.parametrize("notes_only", [False, True])
