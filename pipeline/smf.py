@@ -389,7 +389,7 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
             notes["end_s"] = secs[k:]
     title = names[0] if names and names[0] else first_text
     if accelerated:
-        controls = (np.frombuffer(bytearray(b"".join(ctl_chunks)), dtype=CONTROL_DTYPE)
+        controls = (np.frombuffer(bytearray().join(ctl_chunks), dtype=CONTROL_DTYPE)
                     if ctl_chunks else np.zeros(0, dtype=CONTROL_DTYPE))
     else:
         controls = _control_table(np.array(ctl, dtype=np.int64), ctl_tracks)
