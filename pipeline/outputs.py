@@ -163,10 +163,12 @@ def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging
         versions = Transpose.output_notes(piece, transpose_values)
     else:
         versions = [("", piece.notes, 0)]
+    # only polyphonic aftertouch moves with a transposition; most pieces have none
+    poly = bool(len(piece.controls)) and bool((piece.controls["kind"] == 0xA0).any())
     for suffix, notes, semitones in versions:
         out_piece = piece if semitones == 0 else replace(
             piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones),
-            controls=shift_controls(piece.controls, semitones))
+            controls=shift_controls(piece.controls, semitones) if poly else piece.controls)
         _write_staged(Path(staged_path(staging, sha, output_fp, suffix)), encode(out_piece, notes))
     return tuple(suffix for suffix, _, _ in versions)
 
