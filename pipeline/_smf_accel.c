@@ -4,7 +4,8 @@
  * Same semantics as the pure-Python loop (running status kept across meta and sysex events,
  * 4-byte delta-time limit, same-key note stacking, zero-length drop counting, hanging notes
  * closed at the track's last tick, program at note-on reset per track, tempo / meter / key /
- * track-name / first-text extraction, unknown-meta and event counting). It builds no error
+ * track-name / first-text extraction, the other channel events as CONTROL_DTYPE records and the
+ * text-like metas, unknown-meta and event counting). It builds no error
  * messages: on anything the Python loop raises for, ``read_track`` returns None and the caller
  * re-runs the pure-Python loop on that track, which raises the exact DecodeError.
  *
@@ -137,6 +138,9 @@ static PyObject *pairs_list(const Vec *a, int width) {
     return list;
 }
 
+/* score.CONTROL_DTYPE, packed: tick int64, track int16, channel, kind, data1, data2 uint8 */
+#define CONTROL_SIZE 14
+
 /* Result codes of the loop: 0 ok, 1 the Python loop would raise (re-run it), -1 MemoryError. */
 #define FAIL_DECODE 1
 
@@ -146,7 +150,14 @@ typedef struct {
     Py_ssize_t name_a, name_b; /* first track-name meta, name_a < 0: none */
     Py_ssize_t text_a, text_b; /* first non-empty text meta, stripped; text_a < 0: none */
     Vec cols, tempos, meters, keys;
+    Vec ctls;  /* other channel events: (tick, status << 16 | data1 << 8 | data2) */
+    Vec texts; /* text-like metas: (tick, type << 40 | payload offset, payload length) */
 } Track;
+
+/* meta types kept as Piece.texts (score.TEXT_METAS): text, copyright, lyric, marker, cue */
+static int text_meta(unsigned int mt) {
+    return mt == 0x01 || mt == 0x02 || mt == 0x05 || mt == 0x06 || mt == 0x07;
+}
 
 static int known_meta(int mt) {
     return mt <= 0x0F || mt == 0x20 || mt == 0x21 || mt == 0x2F || mt == 0x51 || mt == 0x54 ||
@@ -261,8 +272,10 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
                         if (sf > 127) sf -= 256;
                         if (sf < -7 || sf > 7 || mi > 1) return FAIL_DECODE;
                         if (vec_push(&r->keys, tick, sf, mi, 3) < 0) return -1;
-                    } else if (mt == 0x01) {
-                        if (r->text_a < 0) {
+                    } else if (text_meta(mt)) {
+                        if (vec_push(&r->texts, tick, ((int64_t)mt << 40) | (int64_t)p, L, 3) < 0)
+                            return -1;
+                        if (mt == 0x01 && r->text_a < 0) {
                             Py_ssize_t a = p, e = p + L;
                             strip_ws(t, &a, &e);
                             if (e > a) {
@@ -323,15 +336,19 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
             unsigned int a = t[p++];
             if (a > 0x7F) return FAIL_DECODE;
             progs[st & 0x0F] = a;
+            if (vec_push(&r->ctls, tick, ((int64_t)st << 16) | ((int64_t)a << 8), 0, 2) < 0) return -1;
         } else if (hi == 0xD0) {
             NEED(1);
             unsigned int a = t[p++];
             if (a > 0x7F) return FAIL_DECODE;
+            if (vec_push(&r->ctls, tick, ((int64_t)st << 16) | ((int64_t)a << 8), 0, 2) < 0) return -1;
         } else {
             NEED(2);
             unsigned int a = t[p], v = t[p + 1];
             p += 2;
             if ((a | v) > 0x7F) return FAIL_DECODE;
+            if (vec_push(&r->ctls, tick, ((int64_t)st << 16) | ((int64_t)a << 8) | v, 0, 2) < 0)
+                return -1;
         }
     }
 #undef NEED
@@ -357,18 +374,29 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
 }
 
 PyDoc_STRVAR(read_track_doc,
-"read_track(data: bytes, start: int, length: int) -> tuple | None\n\n"
+"read_track(data: bytes, start: int, length: int, track: int = 0) -> tuple | None\n\n"
 "Parse the MTrk body data[start:start+length] like pipeline.smf._read_track. Returns\n"
 "(last tick, saw end-of-track, track name or None, first text, events, zero-length notes\n"
-"dropped, hanging notes closed, unknown metas, notes, tempos, meters, keys), where notes is\n"
-"bytes of native int64 (start, end, info) triples and tempos/meters/keys are lists of\n"
-"(tick, ...) tuples; or None where the pure-Python loop would raise a DecodeError.");
+"dropped, hanging notes closed, unknown metas, notes, tempos, meters, keys, controls, texts),\n"
+"where notes is bytes of native int64 (start, end, info) triples, controls bytes of\n"
+"score.CONTROL_DTYPE records (track = ``track``), tempos/meters/keys lists of (tick, ...)\n"
+"tuples and texts a list of (tick, meta type, payload bytes); or None where the pure-Python\n"
+"loop would raise a DecodeError.");
 
 static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
-    if (nargs != 3) {
-        PyErr_SetString(PyExc_TypeError, "read_track(data, start, length) takes 3 arguments");
+    if (nargs != 3 && nargs != 4) {
+        PyErr_SetString(PyExc_TypeError, "read_track(data, start, length, track=0) takes 3 or 4 arguments");
         return NULL;
+    }
+    long track = 0;
+    if (nargs == 4) {
+        track = PyLong_AsLong(args[3]);
+        if (track == -1 && PyErr_Occurred()) return NULL;
+        if (track < -32768 || track > 32767) {
+            PyErr_SetString(PyExc_ValueError, "read_track: track outside int16");
+            return NULL;
+        }
     }
     if (!PyBytes_Check(args[0])) {
         PyErr_SetString(PyExc_TypeError, "read_track: data must be bytes");
@@ -422,12 +450,42 @@ static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t na
         PyObject *tempos = pairs_list(&r.tempos, 2);
         PyObject *meters = pairs_list(&r.meters, 3);
         PyObject *keys = pairs_list(&r.keys, 3);
-        if (name && text && notes && tempos && meters && keys) {
-            out = Py_BuildValue("(LOOOLLLLOOOO)", (long long)r.tick, r.eot ? Py_True : Py_False,
+        Py_ssize_t n_ctls = r.ctls.n / 2;
+        PyObject *ctls = PyBytes_FromStringAndSize(NULL, n_ctls * CONTROL_SIZE);
+        if (ctls) {
+            unsigned char *o = (unsigned char *)PyBytes_AS_STRING(ctls);
+            int16_t tr16 = (int16_t)track;
+            for (Py_ssize_t i = 0; i < n_ctls; i++, o += CONTROL_SIZE) {
+                int64_t tk = r.ctls.v[2 * i], m = r.ctls.v[2 * i + 1];
+                memcpy(o, &tk, 8);
+                memcpy(o + 8, &tr16, 2);
+                o[10] = (unsigned char)((m >> 16) & 0x0F);
+                o[11] = (unsigned char)((m >> 16) & 0xF0);
+                o[12] = (unsigned char)((m >> 8) & 0x7F);
+                o[13] = (unsigned char)(m & 0x7F);
+            }
+        }
+        Py_ssize_t n_texts = r.texts.n / 3;
+        PyObject *texts = PyList_New(n_texts);
+        for (Py_ssize_t i = 0; texts && i < n_texts; i++) {
+            const int64_t *x = r.texts.v + 3 * i;
+            PyObject *tup = Py_BuildValue("(Lly#)", (long long)x[0], (long)(x[1] >> 40),
+                                          (const char *)t + (x[1] & (((int64_t)1 << 40) - 1)),
+                                          (Py_ssize_t)x[2]);
+            if (!tup) {
+                Py_CLEAR(texts);
+                break;
+            }
+            PyList_SET_ITEM(texts, i, tup);
+        }
+        if (name && text && notes && tempos && meters && keys && ctls && texts) {
+            out = Py_BuildValue("(LOOOLLLLOOOOOO)", (long long)r.tick, r.eot ? Py_True : Py_False,
                                 name, text, (long long)r.n_events, (long long)r.zero,
                                 (long long)r.hanging, (long long)r.unknown_meta, notes, tempos,
-                                meters, keys);
+                                meters, keys, ctls, texts);
         }
+        Py_XDECREF(ctls);
+        Py_XDECREF(texts);
         Py_XDECREF(name);
         Py_XDECREF(text);
         Py_XDECREF(notes);
@@ -439,6 +497,8 @@ static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t na
     PyMem_Free(r.tempos.v);
     PyMem_Free(r.meters.v);
     PyMem_Free(r.keys.v);
+    PyMem_Free(r.ctls.v);
+    PyMem_Free(r.texts.v);
     return out;
 }
 
@@ -679,9 +739,11 @@ static inline unsigned char *put_event(unsigned char *o, int64_t delta, unsigned
 }
 
 PyDoc_STRVAR(group_events_doc,
-"group_events(group, start, end, pitch, velocity, program) -> list[tuple[int, bytes]]\n\n"
-"encode._all_group_events on 1-d int64 arrays: (group, event bytes) in ascending group order.\n"
-"Raises ValueError when a delta falls outside 0..0x0FFFFFFF, as the numpy version does.");
+"group_events(group, start, end, pitch, velocity, program[, cgroup, ctick, cmsg])\n"
+"    -> list[tuple[int, bytes]]\n\n"
+"encode._all_group_events on 1-d int64 arrays: (group, event bytes) in ascending group order;\n"
+"the optional other channel events come in (group, tick, file) order. Raises ValueError when\n"
+"a delta falls outside 0..0x0FFFFFFF, as the numpy version does.");
 
 /* The two sorts of group_events for a table of few groups (at most 64): the rows are first
  * put into their group's block (stably), then each block is sorted on its own. The sort
@@ -744,19 +806,22 @@ static int sort_by_group(Row *on, Row *off, Py_ssize_t n) {
     return 1;
 }
 
-/* the group tracks of n notes given as int64 columns (group = track * 16 + channel) */
+/* the group tracks of n notes given as int64 columns (group = track * 16 + channel) and of nc
+ * other channel events (cg group, ct tick, cm = status << 16 | data1 << 8 | data2), these in
+ * (group, tick, file) order */
 static PyObject *group_events_of(Py_ssize_t n, const int64_t *grp, const int64_t *st,
                                  const int64_t *en, const int64_t *pi, const int64_t *ve,
-                                 const int64_t *pr) {
+                                 const int64_t *pr, Py_ssize_t nc, const int64_t *cg,
+                                 const int64_t *ct, const int64_t *cm) {
     PyObject *out = NULL;
     Row *on = NULL, *off = NULL;
     unsigned char *buf = NULL;
-    if (n == 0) {
+    if (n == 0 && nc == 0) {
         out = PyList_New(0);
         goto done;
     }
-    on = (Row *)PyMem_Malloc((size_t)(4 * n) * sizeof(Row));
-    buf = (unsigned char *)PyMem_Malloc((size_t)(21 * n));
+    on = (Row *)PyMem_Malloc((size_t)(4 * n + 1) * sizeof(Row));
+    buf = (unsigned char *)PyMem_Malloc((size_t)(21 * n + 7 * nc + 1));
     if (!on || !buf) {
         PyErr_NoMemory();
         goto done;
@@ -774,7 +839,7 @@ static PyObject *group_events_of(Py_ssize_t n, const int64_t *grp, const int64_t
     }
     /* Row reused as sort keys: start = group, k2 = tick, end = pitch, idx = note index;
      * on[0..n) with scratch on[n..2n), off = on[2n..3n) with scratch on[3n..4n) */
-    if (!sort_by_group(on, off, n)) {
+    if (n && !sort_by_group(on, off, n)) {
         sort_rows(on, on + n, n);   /* (group, start, pitch, index) */
         sort_rows(off, off + n, n); /* (group, end, pitch, index) */
     }
@@ -782,41 +847,48 @@ static PyObject *group_events_of(Py_ssize_t n, const int64_t *grp, const int64_t
     if (!out) goto done;
     unsigned char *o = buf;
     int bad = 0;
-    for (Py_ssize_t a = 0, b = 0; a < n && !bad;) {
-        int64_t g = on[a].start;
-        Py_ssize_t a_end = a, b_end = b;
+    for (Py_ssize_t a = 0, b = 0, c = 0; (a < n || c < nc) && !bad;) {
+        int64_t g = a < n ? on[a].start : cg[c];
+        if (c < nc && cg[c] < g) g = cg[c];
+        Py_ssize_t a_end = a, b_end = b, c_end = c;
         while (a_end < n && on[a_end].start == g) a_end++;
         while (b_end < n && off[b_end].start == g) b_end++;
+        while (c_end < nc && cg[c_end] == g) c_end++;
         unsigned char *g0 = o;
         unsigned int run = 0x100; /* no status yet: the first event writes one */
         unsigned int ch = (unsigned int)(g & 0x0F);
-        int64_t last = 0, prev_prog = 0;
-        int pc_done = 0; /* the program change of note ``a`` is written */
-        Py_ssize_t first_a = a;
-        while (a < a_end || b < b_end) {
-            int take_off;
-            if (a >= a_end) take_off = 1;
-            else if (b >= b_end) take_off = 0;
-            else take_off = off[b].k2 <= on[a].k2;
+        int64_t last = 0, prog = 0;
+        int has_prog = 0; /* a program change was written in this track */
+        /* at one tick: note-offs, then the other events, then note-ons */
+        while (a < a_end || b < b_end || c < c_end) {
             int64_t tick;
-            if (take_off) {
+            if (b < b_end && (a >= a_end || off[b].k2 <= on[a].k2) && (c >= c_end || off[b].k2 <= ct[c])) {
                 tick = off[b].k2;
                 if (tick - last < 0 || tick - last > 0x0FFFFFFF) { bad = 1; break; }
                 o = put_event(o, tick - last, 0x90 | ch, &run, off[b].end, 0, 1);
                 b++;
+            } else if (c < c_end && (a >= a_end || ct[c] <= on[a].k2)) {
+                tick = ct[c];
+                if (tick - last < 0 || tick - last > 0x0FFFFFFF) { bad = 1; break; }
+                unsigned int status = (unsigned int)((cm[c] >> 16) & 0xFF);
+                int64_t d1 = (cm[c] >> 8) & 0xFF;
+                if ((status & 0xF0) == 0xC0) {
+                    prog = d1;
+                    has_prog = 1;
+                }
+                o = put_event(o, tick - last, status, &run, d1, cm[c] & 0xFF, (status & 0xE0) != 0xC0);
+                c++;
             } else {
                 Py_ssize_t i = on[a].idx;
                 tick = on[a].k2;
                 if (tick - last < 0 || tick - last > 0x0FFFFFFF) { bad = 1; break; }
-                if (!pc_done && (a == first_a || pr[i] != prev_prog)) {
+                if (!has_prog || pr[i] != prog) { /* the note's program, right before it */
                     o = put_event(o, tick - last, 0xC0 | ch, &run, pr[i], 0, 0);
-                    pc_done = 1;
                     last = tick;
-                    continue; /* the note-on follows, after any note-off at this tick */
                 }
                 o = put_event(o, tick - last, 0x90 | ch, &run, pi[i], ve[i], 1);
-                prev_prog = pr[i];
-                pc_done = 0;
+                prog = pr[i];
+                has_prog = 1;
                 a++;
             }
             last = tick;
@@ -844,20 +916,25 @@ done:
 
 static PyObject *group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
-    if (nargs != 6) {
-        PyErr_SetString(PyExc_TypeError, "group_events takes 6 columns");
+    if (nargs != 6 && nargs != 9) {
+        PyErr_SetString(PyExc_TypeError, "group_events takes 6 note columns and optionally 3 "
+                        "columns of other events");
         return NULL;
     }
-    Column col[6];
-    Py_ssize_t n = -1;
+    Column col[9];
+    Py_ssize_t n = -1, nc = nargs == 9 ? -1 : 0;
     PyObject *out = NULL;
     int c;
-    for (c = 0; c < 6; c++) col[c].ok = 0;
+    for (c = 0; c < 9; c++) col[c].ok = 0;
     for (c = 0; c < 6; c++)
         if (column_get(args[c], &col[c], &n) < 0) goto done;
-    out = group_events_of(n, col[0].v, col[1].v, col[2].v, col[3].v, col[4].v, col[5].v);
+    for (c = 6; c < nargs; c++)
+        if (column_get(args[c], &col[c], &nc) < 0) goto done;
+    out = group_events_of(n, col[0].v, col[1].v, col[2].v, col[3].v, col[4].v, col[5].v, nc,
+                          nargs == 9 ? col[6].v : NULL, nargs == 9 ? col[7].v : NULL,
+                          nargs == 9 ? col[8].v : NULL);
 done:
-    for (c = 0; c < 6; c++)
+    for (c = 0; c < 9; c++)
         if (col[c].ok) PyBuffer_Release(&col[c].view);
     return out;
 }
@@ -1624,16 +1701,73 @@ done:
 
 
 PyDoc_STRVAR(table_group_events_doc,
-"table_group_events(notes) -> list[tuple[int, bytes]] | None\n\n"
-"group_events on the columns of a NOTE_DTYPE table (group = track * 16 + channel), for a\n"
+"table_group_events(notes[, controls]) -> list[tuple[int, bytes]] | None\n\n"
+"group_events on the columns of a NOTE_DTYPE table (group = track * 16 + channel) and of an\n"
+"optional CONTROL_DTYPE table (stably sorted by group and tick, as encode does), for a\n"
 "table whose every note ends after it starts; None otherwise (encode then filters or\n"
 "refuses the table itself).");
 
-static PyObject *table_group_events(PyObject *self, PyObject *table) {
+static PyObject *table_group_events(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
+    if (nargs != 1 && nargs != 2) {
+        PyErr_SetString(PyExc_TypeError, "table_group_events takes a note table and optionally "
+                        "a control table");
+        return NULL;
+    }
+    Py_buffer cv;
+    int c_ok = 0;
+    Py_ssize_t nc = 0;
+    int64_t *cc = NULL;
+    Row *crow = NULL;
+    if (nargs == 2) {
+        if (PyObject_GetBuffer(args[1], &cv, PyBUF_C_CONTIGUOUS) < 0) return NULL;
+        c_ok = 1;
+        if (cv.len % CONTROL_SIZE) {
+            PyBuffer_Release(&cv);
+            PyErr_SetString(PyExc_ValueError, "a CONTROL_DTYPE table is expected");
+            return NULL;
+        }
+        nc = cv.len / CONTROL_SIZE;
+    }
     Notes t;
-    if (notes_open(table, &t) < 0) return NULL;
+    if (notes_open(args[0], &t) < 0) {
+        if (c_ok) PyBuffer_Release(&cv);
+        return NULL;
+    }
     PyObject *out = NULL;
+    if (nc) { /* (group, tick, message) columns, stably sorted by (group, tick) */
+        const unsigned char *b = (const unsigned char *)cv.buf;
+        cc = (int64_t *)PyMem_Malloc((size_t)(3 * nc) * sizeof(int64_t));
+        crow = (Row *)PyMem_Malloc((size_t)(2 * nc) * sizeof(Row));
+        if (!cc || !crow) {
+            PyErr_NoMemory();
+            PyMem_Free(cc);
+            PyMem_Free(crow);
+            PyBuffer_Release(&cv);
+            notes_release(&t);
+            return NULL;
+        }
+        for (Py_ssize_t i = 0; i < nc; i++, b += CONTROL_SIZE) {
+            int64_t tk;
+            int16_t tr;
+            memcpy(&tk, b, 8);
+            memcpy(&tr, b + 8, 2);
+            crow[i].start = (int64_t)tr * 16 + b[10];
+            crow[i].k2 = tk;
+            crow[i].end = 0;
+            crow[i].info = ((int64_t)(b[11] | b[10]) << 16) | ((int64_t)b[12] << 8) | b[13];
+            crow[i].idx = i;
+        }
+        sort_rows(crow, crow + nc, nc);
+        for (Py_ssize_t i = 0; i < nc; i++) {
+            cc[i] = crow[i].start;
+            cc[nc + i] = crow[i].k2;
+            cc[2 * nc + i] = crow[i].info;
+        }
+        PyMem_Free(crow);
+        PyBuffer_Release(&cv);
+        c_ok = 0;
+    }
     Py_ssize_t n = t.n;
     int64_t *c = (int64_t *)PyMem_Malloc((size_t)(6 * (n ? n : 1)) * sizeof(int64_t));
     if (!c) {
@@ -1654,9 +1788,11 @@ static PyObject *table_group_events(PyObject *self, PyObject *table) {
         c[4 * n + i] = f_i16(&t, i, O_VELOCITY);
         c[5 * n + i] = f_i16(&t, i, O_PROGRAM);
     }
-    out = group_events_of(n, c, c + n, c + 2 * n, c + 3 * n, c + 4 * n, c + 5 * n);
+    out = group_events_of(n, c, c + n, c + 2 * n, c + 3 * n, c + 4 * n, c + 5 * n, nc,
+                          cc, nc ? cc + nc : NULL, nc ? cc + 2 * nc : NULL);
 done:
     PyMem_Free(c);
+    PyMem_Free(cc);
     notes_release(&t);
     return out;
 }
@@ -2043,7 +2179,7 @@ static PyMethodDef methods[] = {
      band_pair_codes_doc},
     {"overlap_counts", (PyCFunction)(void (*)(void))overlap_counts, METH_FASTCALL,
      overlap_counts_doc},
-    {"table_group_events", (PyCFunction)table_group_events, METH_O,
+    {"table_group_events", (PyCFunction)(void (*)(void))table_group_events, METH_FASTCALL,
      table_group_events_doc},
     {NULL, NULL, 0, NULL},
 };

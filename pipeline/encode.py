@@ -1,14 +1,18 @@
 """Normalized SMF writer: ``Piece`` (or a transposed note table) -> deterministic bytes.
 
 Layout: format 1; track 0 is the conductor track (title as track name, then time signatures,
-key signatures and the tempo map); then one track per (source track, channel) group, in that
-order, holding program changes and notes. Note-offs are written as note-on with velocity 0,
-which lets a whole group track use running status (common practice; smallest files). At equal
-ticks a group track writes note-offs (by pitch), then note-ons in (start, pitch) order, each
-preceded by a program change when its program differs from the previous note-on's. So the
-bytes are a pure function of the note table, and the decoder reads back exactly the same notes
-(a note-off never closes the note that starts at its own tick). Each group track carries its
-source track's name. Zero-length notes are not written (the decoder drops them too).
+key signatures, the tempo map and the piece's text-like metas: lyrics, text, markers, cue
+points, copyright, after the conductor's own events at a tick, by source track); then one track
+per (source track, channel) group, in that order, holding its notes and the piece's other
+channel events of that group (``Piece.controls``: control changes, pitch bends, aftertouch,
+program changes). Note-offs are written as note-on with velocity 0, which lets a whole group
+track use running status (common practice; smallest files). At equal ticks a group track
+writes note-offs (by pitch), then the other channel events (in file order), then note-ons in
+(start, pitch) order, each preceded by a program change when the program in force in the
+track (the last program change written) is not the note's. So the bytes are a pure function of
+the piece, and the decoder reads back exactly the same notes and controls (a note-off never
+closes the note that starts at its own tick). Each group track carries its source track's name.
+Zero-length notes are not written (the decoder drops them too).
 
 SMPTE pieces are re-based on 480 ticks per beat at one 120 BPM tempo (960 ticks per second)
 from their exact seconds. Limits: overlapping notes of one pitch and channel in one group cannot
@@ -26,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import smf
-from .score import DEFAULT_TEMPO, Piece, compiled_analyses
+from .score import CONTROL_DTYPE, DEFAULT_TEMPO, Piece, compiled_analyses
 
 __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 
@@ -80,26 +84,39 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
     elif accelerated and not smf.HAVE_ACCEL:
         raise ValueError("accelerated=True, but pipeline._smf_accel is not built; pass False")
     notes = piece.notes if notes is None else notes
-    bodies = None  # the group tracks' event bytes, straight from the table when compiled
+    if piece.smpte:
+        per_s = 2.0 * SMPTE_TICKS_PER_BEAT  # ticks per second at 120 BPM
+        rebase = lambda t: np.rint(piece.ticks_to_seconds(t) * per_s).astype(np.int64)  # noqa: E731
+    else:
+        rebase = lambda t: np.asarray(t, dtype=np.int64)  # noqa: E731
+    ctl = piece.controls
+    bodies = None  # the group tracks' event bytes, straight from the tables when compiled
     deferred = None  # their error, raised where the group tracks are made (after the conductor)
-    if accelerated and not piece.smpte and len(notes):
+    if accelerated and not piece.smpte and len(notes) and ctl.dtype == CONTROL_DTYPE:
         accel = compiled_analyses(notes)
         if accel is not None:  # None back: a note that does not end after it starts
             try:
-                bodies = accel.table_group_events(notes)
+                bodies = (accel.table_group_events(notes, np.ascontiguousarray(ctl)) if len(ctl)
+                          else accel.table_group_events(notes))
             except ValueError as exc:
                 deferred = exc
+    extra: tuple = ()  # the other channel events as columns (group, tick, message), sorted
+    if bodies is None and len(ctl):
+        cgroup = ctl["track"].astype(np.int64) * 16 + ctl["channel"]
+        ctick = rebase(ctl["tick"])
+        o = np.lexsort((ctick, cgroup))  # stable: file order within a tick
+        cmsg = ((ctl["kind"].astype(np.int64) | ctl["channel"]) << 16
+                | ctl["data1"].astype(np.int64) << 8 | ctl["data2"])
+        extra = (cgroup[o], np.ascontiguousarray(ctick[o]), cmsg[o])
     if piece.smpte:
         tpb = SMPTE_TICKS_PER_BEAT
         per_s = 2.0 * tpb  # ticks per second at 120 BPM
         starts = np.rint(notes["start_s"] * per_s).astype(np.int64)
         ends = np.rint(notes["end_s"] * per_s).astype(np.int64)
         ends = np.maximum(ends, starts + 1)  # keep every note audible after rounding
-        rebase = lambda t: np.rint(piece.ticks_to_seconds(t) * per_s).astype(np.int64)  # noqa: E731
         tempos = [(0, DEFAULT_TEMPO)]
     else:
         tpb = piece.ticks_per_beat
-        rebase = lambda t: np.asarray(t, dtype=np.int64)  # noqa: E731
         if bodies is None:
             starts = notes["start"].astype(np.int64)
             ends = notes["end"].astype(np.int64)
@@ -122,10 +139,15 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
         cond.append((t, 2, _meta(0x59, bytes((sf & 0xFF, mi)))))
     for t, us in tempos:
         cond.append((t, 3, _meta(0x51, int(us).to_bytes(3, "big"))))
+    if piece.texts:  # after the conductor's own events at a tick, by (tick, source track)
+        xt = rebase(np.array([x[0] for x in piece.texts], dtype=np.int64)).tolist()
+        texts = sorted(zip(xt, (x[1] for x in piece.texts), range(len(xt)),
+                           (x[2] for x in piece.texts), (x[3] for x in piece.texts)))
+        cond += [(t, 4, _meta(kind, payload)) for t, _, _, kind, payload in texts]
     cond.sort(key=lambda e: (e[0], e[1]))
     tracks = [_track([(t, m) for t, _, m in cond])]
 
-    if bodies is not None or len(notes):
+    if bodies is not None or len(notes) or extra:
         names = piece.track_names
         if deferred is not None:
             raise deferred
@@ -136,7 +158,7 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
             bodies = group_events(group, np.ascontiguousarray(starts), np.ascontiguousarray(ends),
                                   notes["pitch"].astype(np.int64),
                                   notes["velocity"].astype(np.int64),
-                                  notes["program"].astype(np.int64))
+                                  notes["program"].astype(np.int64), *extra)
         for g, body in bodies:
             src = g // 16
             head = b""
@@ -188,37 +210,61 @@ def _group_events(start: np.ndarray, end: np.ndarray, pitch: np.ndarray, vel: np
 
 
 def _all_group_events(group: np.ndarray, start: np.ndarray, end: np.ndarray, pitch: np.ndarray,
-                      vel: np.ndarray, prog: np.ndarray) -> list[tuple[int, bytes]]:
-    """``_group_events`` for every (track, channel) group of a note table in one vectorized
-    pass: ``(group, event bytes)`` in ascending group order, byte for byte what
-    ``_group_events`` gives for each group's notes (in their table order) on its own.
+                      vel: np.ndarray, prog: np.ndarray, cgroup: np.ndarray | None = None,
+                      ctick: np.ndarray | None = None,
+                      cmsg: np.ndarray | None = None) -> list[tuple[int, bytes]]:
+    """The event bytes of every (track, channel) group of a note table, in one vectorized
+    pass: ``(group, event bytes)`` in ascending group order.
 
-    The same sort keys with the group as the leading key keep each group's events in the
-    order the per-group sort gives (lexsort is stable and each group's events keep their
-    relative order in the concatenation); deltas and running status restart at each group."""
+    Notes give note-on/note-off pairs; ``cgroup``/``ctick``/``cmsg`` (optional, in (group,
+    tick, file) order) give the other channel events, ``cmsg`` = status << 16 | data1 << 8 |
+    data2. Order within a group: by tick; at one tick note-offs (by pitch), then the other
+    events (in their given order), then note-ons in (start, pitch) order. A note-on is preceded
+    by a program change when the program in force in the track (set by the last program change
+    written, given or added) is not the note's, so every note reads back with its program.
+    Running status: a status byte is written only where it changes; deltas restart per group.
+    Without other events this is byte for byte ``_group_events`` of each group on its own."""
     o = np.lexsort((pitch, start, group))
     group, start, end, pitch, vel, prog = group[o], start[o], end[o], pitch[o], vel[o], prog[o]
     n = len(o)
-    new_group = np.ones(n, dtype=bool)
-    new_group[1:] = group[1:] != group[:-1]
-    pc = new_group.copy()
-    pc[1:] |= prog[1:] != prog[:-1]
-    seq = np.arange(n, dtype=np.int64) * 2
-    n_pc = int(pc.sum())
-    channel = group & 0x0F
-    # columns of all events: group, tick, class, tie key, status, data1, data2, is program change
-    gid = np.concatenate((group[pc], group, group))
-    tick = np.concatenate((start[pc], start, end))
-    cls = np.concatenate((np.ones(n_pc + n, np.int64), np.zeros(n, np.int64)))
-    tie = np.concatenate((seq[pc], seq + 1, pitch))
-    status = np.concatenate((0xC0 | channel[pc], 0x90 | channel, 0x90 | channel))
-    d1 = np.concatenate((prog[pc], pitch, pitch))
-    d2 = np.concatenate((np.zeros(n_pc, np.int64), vel, np.zeros(n, np.int64)))
-    is_pc = np.concatenate((np.ones(n_pc, dtype=bool), np.zeros(2 * n, dtype=bool)))
+    if cgroup is None:
+        cgroup = ctick = cmsg = np.zeros(0, dtype=np.int64)
+    nc = len(cgroup)
+    seq = np.arange(n, dtype=np.int64)
+    cstatus = cmsg >> 16
+    # columns of the notes' and the given events: group, tick, class, tie key, status, data1,
+    # data2, program carried, whether it carries one
+    gid = np.concatenate((group, cgroup, group))
+    tick = np.concatenate((end, ctick, start))
+    cls = np.concatenate((np.zeros(n, np.int64), np.ones(nc, np.int64), np.full(n, 2, np.int64)))
+    tie = np.concatenate((pitch, np.arange(nc, dtype=np.int64), seq))
+    status = np.concatenate((0x90 | (group & 0x0F), cstatus, 0x90 | (group & 0x0F)))
+    d1 = np.concatenate((pitch, (cmsg >> 8) & 0xFF, pitch))
+    d2 = np.concatenate((np.zeros(n, np.int64), cmsg & 0xFF, vel))
+    carried = np.concatenate((np.zeros(n, np.int64), (cmsg >> 8) & 0xFF, prog))
+    carrier = np.concatenate((np.zeros(n, bool), (cstatus & 0xF0) == 0xC0, np.ones(n, bool)))
     order = np.lexsort((tie, cls, tick, gid))
-    gid, tick, status, d1, d2, is_pc = (gid[order], tick[order], status[order], d1[order],
-                                        d2[order], is_pc[order])
+    gid, tick, status, d1, d2, carried, carrier = (
+        gid[order], tick[order], status[order], d1[order], d2[order], carried[order],
+        carrier[order])
     m = len(tick)
+    # the program in force before each event: that of the last carrier before it (a note-on
+    # leaves its own program in force, whether or not a program change was added for it)
+    at = np.where(carrier, np.arange(m), -1)
+    last = np.maximum.accumulate(at) if m else at
+    before = np.concatenate(([-1], last[:-1]))
+    is_on = order >= n + nc
+    prev_ok = (before >= 0) & (gid[np.maximum(before, 0)] == gid)
+    need = is_on & ~(prev_ok & (carried[np.maximum(before, 0)] == carried))
+    where = np.flatnonzero(need)
+    if len(where):  # a program change right before each of those note-ons
+        g_at = gid[where]
+        gid = np.insert(gid, where, g_at)
+        tick = np.insert(tick, where, tick[where])
+        d1 = np.insert(d1, where, carried[where])
+        d2 = np.insert(d2, where, 0)
+        status = np.insert(status, where, 0xC0 | (g_at & 0x0F))
+        m = len(tick)
     first = np.ones(m, dtype=bool)
     first[1:] = gid[1:] != gid[:-1]
     delta = np.diff(tick, prepend=0)
@@ -227,14 +273,14 @@ def _all_group_events(group: np.ndarray, start: np.ndarray, end: np.ndarray, pit
         raise ValueError("note times must be 0..0x0FFFFFFF ticks apart and not negative")
     need_status = first.copy()
     need_status[1:] |= status[1:] != status[:-1]
+    one_byte = (status & 0xE0) == 0xC0  # program change, channel aftertouch
     table = np.stack([((delta >> 21) & 0x7F) | 0x80, ((delta >> 14) & 0x7F) | 0x80,
                       ((delta >> 7) & 0x7F) | 0x80, delta & 0x7F, status, d1, d2], axis=1)
     ones = np.ones(m, dtype=bool)
     mask = np.stack([delta >= 1 << 21, delta >= 1 << 14, delta >= 1 << 7, ones, need_status,
-                     ones, ~is_pc], axis=1)
+                     ones, ~one_byte], axis=1)
     flat = table.astype(np.uint8)[mask].tobytes()
     ends = np.cumsum(mask.sum(axis=1))
     starts_at = np.flatnonzero(first)
     cut = [0] + ends[np.append(starts_at[1:], m) - 1].tolist()
     return [(g, flat[cut[i]:cut[i + 1]]) for i, g in enumerate(gid[starts_at].tolist())]
-

@@ -26,7 +26,7 @@ from typing import Any, Callable, Iterable, Iterator
 from .errors import OutputError
 
 STAGING = ".staging"
-ENCODER_VERSION = 1
+ENCODER_VERSION = 2
 DEFAULT_PART = "all"
 
 #: Manifest fields of the contract, in the order they are written; other measures follow sorted.
@@ -149,18 +149,26 @@ def staged_outputs(out_dir: Path, fp: str) -> dict[str, tuple[str, ...]]:
 def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging: str, sha: str,
            output_fp: str) -> tuple[str, ...]:
     """Encode the normalized output(s) of one piece into the staging folder (worker side);
-    returns their suffixes (``staged_path`` gives each file's path)."""
+    returns their suffixes (``staged_path`` gives each file's path). The outputs keep the
+    piece's control, pitch-bend, aftertouch and program-change events and its text-like metas
+    unless transpose's ``notes_only`` is set; a transposition moves only notes (and the key
+    numbers of polyphonic aftertouch on pitched channels) and key signatures."""
     from .encode import encode
     versions: list[tuple[str, Any, int]]
     tplan = next((p for p in stage_plans if p.name == "transpose"), None)
+    if tplan is not None and tplan.options.get("notes_only"):
+        piece = replace(piece, controls=piece.controls[:0], texts=())
     if tplan is not None and transpose_values is not None:
         from .stages.transpose import Transpose
         versions = Transpose.output_notes(piece, transpose_values)
     else:
         versions = [("", piece.notes, 0)]
+    # only polyphonic aftertouch moves with a transposition; most pieces have none
+    poly = bool(len(piece.controls)) and bool((piece.controls["kind"] == 0xA0).any())
     for suffix, notes, semitones in versions:
         out_piece = piece if semitones == 0 else replace(
-            piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones))
+            piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones),
+            controls=shift_controls(piece.controls, semitones) if poly else piece.controls)
         _write_staged(Path(staged_path(staging, sha, output_fp, suffix)), encode(out_piece, notes))
     return tuple(suffix for suffix, _, _ in versions)
 
@@ -192,6 +200,25 @@ def shift_key_signatures(keys: Any, semitones: int) -> Any:
     if len(out):
         s = (out["sharps"].astype(int) + 7 * semitones) % 12
         out["sharps"] = np.where(s > 6, s - 12, s)
+    return out
+
+
+def shift_controls(controls: Any, semitones: int) -> Any:
+    """Channel events of a piece transposed by ``semitones``: only polyphonic aftertouch
+    carries a key number (data1), moved as its notes are on pitched channels (beyond 0..127
+    folded back by octaves, as ``analysis.transpose.shift_notes`` folds notes); controller
+    values, pitch bends and the drum channel stay as they are."""
+    if not semitones or not len(controls) or not (controls["kind"] == 0xA0).any():
+        return controls  # the usual case: no polyphonic aftertouch
+    import numpy as np
+
+    from .score import DRUM_CHANNEL
+    poly = (controls["kind"] == 0xA0) & (controls["channel"] != DRUM_CHANNEL)
+    out = controls.copy()
+    p = out["data1"][poly].astype(np.int64) + int(semitones)
+    p = np.where(p > 127, p - 12 * ((p - 127 + 11) // 12), p)
+    p = np.where(p < 0, p + 12 * ((-p + 11) // 12), p)
+    out["data1"][poly] = p
     return out
 
 

@@ -32,6 +32,15 @@ METER_DTYPE = np.dtype([("tick", np.int64), ("numerator", np.int16), ("denominat
 #: Key-signature events as declared: ``sharps`` -7..7 (negative = flats), ``minor`` 0/1.
 KEY_DTYPE = np.dtype([("tick", np.int64), ("sharps", np.int16), ("minor", np.int16)])
 
+#: Channel events other than notes, in file order per track (so ticks ascend within a track):
+#: ``kind`` is the status high nibble (0xA0 polyphonic aftertouch, 0xB0 control change, 0xC0
+#: program change, 0xD0 channel aftertouch, 0xE0 pitch bend); ``data1``/``data2`` are the data
+#: bytes as written (``data2`` 0 for the one-byte kinds; a pitch bend is data1 | data2 << 7).
+CONTROL_DTYPE = np.dtype([("tick", np.int64), ("track", np.int16), ("channel", np.uint8),
+                          ("kind", np.uint8), ("data1", np.uint8), ("data2", np.uint8)])
+#: Meta event types kept as ``Piece.texts``: text, copyright, lyric, marker, cue point.
+TEXT_METAS = (0x01, 0x02, 0x05, 0x06, 0x07)
+
 DRUM_CHANNEL = 9
 DEFAULT_TEMPO = 500_000
 
@@ -54,6 +63,11 @@ class Piece:
     #: Narrow, named tolerances the decoder applied, with counts, e.g.
     #: ``{"hanging_notes_closed": 2, "missing_end_of_track": 1, "riff_unwrapped": 1}``.
     repairs: dict[str, int] = field(default_factory=dict)
+    #: Control changes, pitch bends, aftertouch and program changes (``CONTROL_DTYPE``).
+    controls: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=CONTROL_DTYPE))
+    #: Text-like meta events (types ``TEXT_METAS``) as (tick, track, type, payload bytes), in
+    #: file order per track; payloads are kept as bytes (a .kar file's encoding is unknown).
+    texts: tuple[tuple[int, int, int, bytes], ...] = ()
 
     @property
     def duration_s(self) -> float:

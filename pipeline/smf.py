@@ -50,8 +50,13 @@ Policies (chosen to match pretty_midi 0.2.x ``_load_instruments``, the reference
 * Running status is kept across meta and sysex events (as mido does for meta events), because
   real files rely on it; the spec says those cancel it.
 
+Kept besides notes (for the normalized output): the other channel events (control change,
+pitch bend, channel and polyphonic aftertouch, program change) as ``Piece.controls``, in file
+order per track, and the text-like metas (``score.TEXT_METAS``: text, copyright, lyric, marker,
+cue point; .kar files are plain SMF) as ``Piece.texts``, payloads as bytes.
+
 Legal features handled without counting: running status, velocity-0 note-offs, sysex and
-escape events (skipped, length bounded), lyric and text metas (.kar files are plain SMF),
+escape events (skipped, length bounded),
 SMPTE division (``smpte=True``; seconds = ticks / (frames/s x ticks/frame) exactly, with
 ``ticks_per_beat`` = half the ticks per second so one 120 BPM tempo reproduces them; for 29.97
 fps the single tempo is the nearest whole microsecond). The counted repairs are in ``REPAIRS``.
@@ -68,8 +73,8 @@ from pathlib import Path
 import numpy as np
 
 from .errors import DecodeError
-from .score import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, NOTE_DTYPE, TEMPO_DTYPE, Piece,
-                    ticks_to_seconds)
+from .score import (CONTROL_DTYPE, DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, NOTE_DTYPE, TEXT_METAS,
+                    TEMPO_DTYPE, Piece, ticks_to_seconds)
 
 try:
     from . import _smf_accel
@@ -261,6 +266,10 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
     tempos: list[tuple[int, int]] = []
     meters: list[tuple[int, int, int]] = []
     keys: list[tuple[int, int, int]] = []
+    ctl: list[int] = []       # flat control columns: tick, status << 16 | data1 << 8 | data2
+    ctl_chunks: list[bytes] = []  # CONTROL_DTYPE records, per track (compiled loop)
+    ctl_tracks: list[int] = []  # (track index, number of controls) pairs, flat
+    texts: list[tuple[int, int, int, bytes]] = []
     names: list[str] = []
     first_text = ""
     end_tick = 0
@@ -294,13 +303,18 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
         base = pos + 8
         pos = base + clen
         if accelerated:
-            got = _smf_accel.read_track(data, base, clen)
+            got = _smf_accel.read_track(data, base, clen, ti)
             if got is None:  # the Python loop raises the exact DecodeError
                 got = _read_track_alone(data, base, clen, ti, pos == end, source)
-            tick, eot, name, text, n_ev, z, h, u, nb, t_ev, m_ev, k_ev = got
+            tick, eot, name, text, n_ev, z, h, u, nb, t_ev, m_ev, k_ev, cb, x_ev = got
             chunks.append(nb)
             chunk_tracks.append(ti)
             k_track = len(nb) // 24
+            c_track = 0  # the records carry their track
+            if cb:
+                ctl_chunks.append(cb)
+            if x_ev:
+                texts += [(tk, ti, mt, payload) for tk, mt, payload in x_ev]
             if t_ev:
                 tempos += t_ev
             if m_ev:
@@ -308,10 +322,14 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
             if k_ev:
                 keys += k_ev
         else:
-            n0 = len(cols)
+            n0, c0, x0 = len(cols), len(ctl), len(texts)
             tick, eot, name, text, n_ev, z, h, u = _read_track(
-                data[base:base + clen], base, ti, pos == end, source, cols, tempos, meters, keys)
+                data[base:base + clen], base, ti, pos == end, source, cols, tempos, meters, keys,
+                ctl, texts)
             k_track = (len(cols) - n0) // 3
+            c_track = (len(ctl) - c0) // 2
+            if len(texts) > x0:
+                texts[x0:] = [(tk, ti, mt, payload) for tk, mt, payload in texts[x0:]]
         n_events += n_ev
         zero += z
         hanging += h
@@ -325,6 +343,8 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
         if not eot:
             no_eot += 1
         note_tracks += (ti, k_track)
+        if c_track:
+            ctl_tracks += (ti, c_track)
         names.append((name or "").strip(" \t\r\n\x00"))
         if tick > end_tick:
             end_tick = tick
@@ -368,19 +388,25 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
             notes["start_s"] = secs[:k]
             notes["end_s"] = secs[k:]
     title = names[0] if names and names[0] else first_text
+    if accelerated:
+        controls = (np.frombuffer(bytearray().join(ctl_chunks), dtype=CONTROL_DTYPE)
+                    if ctl_chunks else np.zeros(0, dtype=CONTROL_DTYPE))
+    else:
+        controls = _control_table(np.array(ctl, dtype=np.int64), ctl_tracks)
     return Piece(notes=notes, ticks_per_beat=tpb, tempos=tempo_arr,
                  time_signatures=_events(meters, METER_DTYPE),
                  key_signatures=_events(keys, KEY_DTYPE), format=fmt, n_tracks=ti,
                  end_tick=end_tick, track_names=tuple(names), title=title, smpte=smpte,
-                 repairs=repairs)
+                 repairs=repairs, controls=controls, texts=tuple(texts))
 
 
 def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, cols: list,
-                tempos: list, meters: list, keys: list) -> tuple:
+                tempos: list, meters: list, keys: list, ctl: list, texts: list) -> tuple:
     """Parse one MTrk body ``t`` (starting at absolute byte ``base``) in one tight loop.
 
-    Appends notes to ``cols`` (start, end, info triples) and tempo, meter and key events to
-    their lists; returns (last tick, saw end-of-track, track name or None, first text,
+    Appends notes to ``cols`` (start, end, info triples), tempo, meter and key events to
+    their lists, the other channel events to ``ctl`` (tick, status << 16 | data1 << 8 | data2
+    pairs) and text-like metas (``TEXT_METAS``) to ``texts`` as (tick, type, payload); returns (last tick, saw end-of-track, track name or None, first text,
     events, zero-length notes dropped, hanging notes closed, unknown metas).
     """
     n_events = zero = hanging = unknown_meta = 0
@@ -476,8 +502,9 @@ def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, co
                                     f"mode 0 or 1, but it has {sf} and {mi}; the event is damaged",
                                     file=source, offset=base + ev_start, track=ti)
                             keys.append((tick, sf, mi))
-                        elif mt == 0x01:
-                            if not text:
+                        elif mt in TEXT_METAS:
+                            texts.append((tick, mt, t[p:p + ln]))
+                            if mt == 0x01 and not text:
                                 text = t[p:p + ln].decode("latin-1").strip(" \t\r\n\x00")
                         elif mt not in _KNOWN_META:
                             unknown_meta += 1
@@ -556,17 +583,20 @@ def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, co
                 if a > 0x7F:
                     raise _bad_data(source, base + p - 1, ti, st, a, 0)
                 progs[st & 0x0F] = a
+                ctl += (tick, (st << 16) | (a << 8))
             elif hi == 0xD0:
                 a = t[p]
                 p += 1
                 if a > 0x7F:
                     raise _bad_data(source, base + p - 1, ti, st, a, 0)
+                ctl += (tick, (st << 16) | (a << 8))
             else:
                 a = t[p]
                 v = t[p + 1]
                 p += 2
                 if (a | v) > 0x7F:
                     raise _bad_data(source, base + p - 2, ti, st, a, v)
+                ctl += (tick, (st << 16) | (a << 8) | v)
     except IndexError:
         if at_file_end:
             raise DecodeError("truncated", f"the file ends inside an event of track {ti} that "
@@ -589,14 +619,18 @@ def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, co
 def _read_track_alone(data: bytes, base: int, clen: int, ti: int, at_file_end: bool,
                       source: str) -> tuple:
     """``_read_track`` on one track with its own lists, in the compiled loop's result shape
-    (notes as int64 bytes). Called where the compiled loop gave up: it raises there."""
+    (notes as int64 bytes, controls as CONTROL_DTYPE records). Called where the compiled loop
+    gave up: it raises there."""
     cols: list[int] = []
     tempos: list = []
     meters: list = []
     keys: list = []
+    ctl: list[int] = []
+    texts: list = []
     head = _read_track(data[base:base + clen], base, ti, at_file_end, source, cols, tempos,
-                       meters, keys)
-    return (*head, np.array(cols, dtype=np.int64).tobytes(), tempos, meters, keys)
+                       meters, keys, ctl, texts)
+    return (*head, np.array(cols, dtype=np.int64).tobytes(), tempos, meters, keys,
+            _control_table(np.array(ctl, dtype=np.int64), [ti, len(ctl) // 2]).tobytes(), texts)
 
 
 def _smpte_seconds(notes: np.ndarray, ticks_per_second: float) -> None:
@@ -634,6 +668,25 @@ def _note_table(cols: np.ndarray, note_tracks: list[int]) -> np.ndarray:
     notes["program"] = info >> 18
     notes["track"] = track[order]
     return notes
+
+
+def _control_table(flat: np.ndarray, ctl_tracks: list[int]) -> np.ndarray:
+    """Flat int64 (tick, status << 16 | data1 << 8 | data2) pairs -> CONTROL_DTYPE rows, in
+    file order (track by track, ticks ascending within a track)."""
+    k = len(flat) // 2
+    out = np.zeros(k, dtype=CONTROL_DTYPE)
+    if not k:
+        return out
+    pairs = flat.reshape(k, 2)
+    msg = pairs[:, 1]
+    out["tick"] = pairs[:, 0]
+    out["track"] = np.repeat(np.array(ctl_tracks[0::2], dtype=np.int64),
+                             np.array(ctl_tracks[1::2], dtype=np.int64))
+    out["channel"] = (msg >> 16) & 0x0F
+    out["kind"] = (msg >> 16) & 0xF0
+    out["data1"] = (msg >> 8) & 0x7F
+    out["data2"] = msg & 0x7F
+    return out
 
 
 def _tempo_map(tempos: list[tuple[int, int]]) -> np.ndarray:

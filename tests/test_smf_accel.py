@@ -41,17 +41,17 @@ def outcome(data: bytes, accelerated: bool, **limits: int) -> Piece | DecodeErro
 
 class TrackSpy:
     """Stands in for the extension module: every ``read_track`` result is checked against the
-    pure-Python loop on the same track (all twelve fields, or both giving up), so a C loop
+    pure-Python loop on the same track (all fourteen fields, or both giving up), so a C loop
     that gives up where Python would not, which the fallback would hide, is caught too."""
 
     def __init__(self, real):
         self.real, self.calls, self.gave_up = real, 0, 0
         self.note_table = real.note_table
 
-    def read_track(self, data: bytes, start: int, length: int):
-        got = self.real.read_track(data, start, length)
+    def read_track(self, data: bytes, start: int, length: int, track: int = 0):
+        got = self.real.read_track(data, start, length, track)
         try:
-            want = smf._read_track_alone(data, start, length, 0, False, "")
+            want = smf._read_track_alone(data, start, length, track, False, "")
         except DecodeError:
             want = None
         assert (got is None) == (want is None), f"C loop gave {got!r:.60}, Python {want!r:.60}"
@@ -383,7 +383,7 @@ def test_fallback_when_the_compiled_loop_gives_up(monkeypatch):
     real = smf._smf_accel
 
     class GivesUp:
-        read_track = staticmethod(lambda data, start, length: None)
+        read_track = staticmethod(lambda data, start, length, track=0: None)
         note_table = staticmethod(real.note_table)
     data = random_midi(4, n_notes=120, n_tracks=3, hanging=2)
     want = smf.decode(data, accelerated=False)

@@ -73,6 +73,11 @@ class Transpose(Stage):
                "Extra semitone shifts (relative to the normalized piece) written as additional "
                "copies of each kept file, e.g. [-5, -4, -3, -2, -1, 1, 2, 3, 4, 5, 6]; all copies "
                "share the source's group id.", _check_augment),
+        Option("notes_only", bool, False,
+               "Write only notes (with the program changes they need) and the tempo, meter and "
+               "key events to the normalized MIDI. false keeps the control changes (pedal, "
+               "volume...), pitch bends, aftertouch, program changes, lyrics, text and markers, "
+               "at their times; only notes and polyphonic-aftertouch keys are transposed."),
     ) + KEY_OPTIONS
     doc = ("Shifts pitched notes so the estimated tonic becomes major_to/minor_to; drum channel "
            "untouched; notes beyond 0..127 folded by octaves and counted.")
