@@ -195,18 +195,26 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
 
 
 def _check_group_fields(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
-    """``split.group_fields`` must name a manifest field or a metadata column: a misspelt
-    field would silently group nothing."""
+    """``split.group_fields`` must name a manifest field or a metadata column, and
+    ``filter.metadata_exclude`` a metadata column: a misspelt name would silently do nothing."""
     from .outputs import CONTRACT_FIELDS
+    problems = []
+    filt = next((s for s in stages if s.name == "filter"), None)
+    for column in (filt.options.get("metadata_exclude") or {}) if filt else ():
+        if column not in ("title", *metadata.columns):
+            problems.append(ConfigError(
+                f"'{column}' is not a column of the metadata table"
+                f"{suggest(str(column), ['title', *metadata.columns])}",
+                location=f"stages[{filt.index}].filter.metadata_exclude"))
     split = next((s for s in stages if s.name == "split"), None)
     if split is None:
-        return []
+        return problems
     known = [*CONTRACT_FIELDS, "title", *metadata.columns]
     where = f"stages[{split.index}].split.group_fields"
     hint = "" if metadata.columns else " (add a 'metadata: TABLE.csv' with such a column)"
-    return [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
-                        f"{suggest(str(f), known)}{hint}", location=where)
-            for f in split.options.get("group_fields", []) if f not in known]
+    return problems + [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
+                                   f"{suggest(str(f), known)}{hint}", location=where)
+                       for f in split.options.get("group_fields", []) if f not in known]
 
 
 def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig]:

@@ -33,6 +33,7 @@ REASONS: dict[str, tuple[str, str]] = {
     "long_silence": ("filter", "a stretch with no note sounding longer than max_silence_s"),
     "stuck_note": ("filter", "a pitched note longer than max_note_s"),
     "program_excluded": ("filter", "an instrument outside programs_allow, or inside programs_deny"),
+    "metadata_excluded": ("filter", "a column of the metadata table holds a value that metadata_exclude lists"),
 }
 
 

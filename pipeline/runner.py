@@ -544,6 +544,18 @@ class Runner:
         outputs.record_staged(self.config.output, self.output_fp, staged)
         staged.clear()
 
+    def _source_verdict(self, st: Stage, kept: Any, trail: list, source: str) -> Any:
+        """The stage's verdict on the source's own fields (metadata, title); a drop replaces
+        the content's kept result in this run's trail only (it is never stored as the
+        content's result: another path may hold the same bytes)."""
+        file_title = TrailValues(trail).get("file_title")
+        drop = st.source_verdict(outputs.source_fields(source, file_title, self.config.metadata))
+        if drop is None:
+            return kept
+        values = {**kept.values, **drop.values}
+        return self._compactor(st.name).make(False, drop.reason, drop.detail, values,
+                                             {**kept.thresholds, **drop.thresholds})
+
     # the stage walk ---------------------------------------------------------------------------
     def _walk(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict) -> "Walk":
         names = [st.name for st in self.stages]
@@ -564,6 +576,8 @@ class Runner:
                         r = self._compactor(st.name).make(
                             False, "decoder_crash", "the worker processing this file did not "
                             "return a result", {}, {})
+                    elif st.judges_sources and r["kept"]:
+                        r = self._source_verdict(st, r, trails[sha], rep[sha])
                     trails[sha].append(r)
                     if r["kept"]:
                         survivors.append(sha)

@@ -585,3 +585,30 @@ def test_metadata_rows_for_missing_files_are_reported(tmp_path, capsys):
     assert main(["run", str(cfg)]) == 0
     out = capsys.readouterr().out
     assert "1 row(s) of" in out and "'no/such.mid'" in out
+
+
+def test_filter_drops_by_a_metadata_column(tmp_path):
+    import json
+    """filter.metadata_exclude: a licence column drops its files as metadata_excluded; a
+    misspelt column is a config error (exit 2)."""
+    import yaml
+
+    from pipeline.cli import main
+    corpus = _titled_corpus(tmp_path)
+    table = tmp_path / "meta.csv"
+    table.write_text("source,licence\n" + "".join(
+        f"tune_{i:02d}.mid,{'CC-BY-NC' if i < 3 else 'CC0'}\n" for i in range(12)))
+    raw = {"input": str(corpus), "output": str(tmp_path / "o"), "workers": 1, "metadata": str(table),
+           "stages": ["validate", {"filter": {"metadata_exclude": {"licence": ["cc-by-nc "]},
+                                              "min_seconds": 0}}, "split"]}
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump(raw))
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    rows = {r["source"]: r for r in map(json.loads, (tmp_path / "o" / "manifest.jsonl").read_text().splitlines())}
+    for i in range(12):
+        r = rows[f"tune_{i:02d}.mid"]
+        assert (r["status"], r["reason"]) == (("dropped", "metadata_excluded") if i < 3 else ("kept", None)), r
+    assert rows["tune_01.mid"]["detail"] == "licence is 'CC-BY-NC', which metadata_exclude lists"
+    raw["stages"][1]["filter"]["metadata_exclude"] = {"licnce": ["x"]}
+    cfg.write_text(yaml.safe_dump(raw))
+    assert main(["run", str(cfg), "--quiet"]) == 2

@@ -161,6 +161,17 @@ class Stage:
         """Hash of the stage name, version and options: the cache key of its results."""
         return options_fingerprint(self.name, self.version, self.opts)
 
+    @property
+    def judges_sources(self) -> bool:
+        """True when this per-file stage also judges each source's own fields (``title``, the
+        metadata table's columns) with ``source_verdict``, after its content's verdict."""
+        return False
+
+    def source_verdict(self, fields: dict[str, Any]) -> StageResult | None:
+        """A drop for one source whose content this stage kept, judged on fields of the path
+        rather than the bytes (so never cached with the content's result), or None."""
+        return None
+
     #: A corpus stage's options that its per-file ``prepare`` reads (None: all of them).
     #: Its stored artifacts are keyed by these alone, so changing an option that only the
     #: corpus step reads (a threshold) re-decodes no file.

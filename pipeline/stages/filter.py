@@ -43,6 +43,15 @@ def _nonneg(name: str) -> Callable[[Any], str | None]:
     return check
 
 
+def _exclusions(v: Any) -> str | None:
+    if v is None:
+        return None
+    if not all(isinstance(k, str) and isinstance(vals, list) and vals
+               and all(isinstance(x, (str, int, float)) for x in vals) for k, vals in v.items()):
+        return "metadata_exclude maps a column name to a list of values, e.g. {licence: [CC-BY-NC]}"
+    return None
+
+
 def _count(name: str) -> Callable[[Any], str | None]:
     """A count of notes or pitches: a whole number >= 0 (YAML ``32.0`` is accepted), or null."""
     def check(v: Any) -> str | None:
@@ -252,7 +261,25 @@ class Filter(Stage):
         Option("programs_deny", (list, tuple, type(None)), None, "If set, a piece using any "
                "listed instrument is dropped as program_excluded (same items as programs_allow).",
                _program_list("programs_deny")),
+        Option("metadata_exclude", (dict, type(None)), None, "Columns of the metadata table and "
+               "the values that drop a file as metadata_excluded, e.g. {licence: [CC-BY-NC, "
+               "unknown]} (compared casefolded, spaces trimmed; `title` may be used too).",
+               _exclusions),
     )
+
+    @property
+    def judges_sources(self) -> bool:
+        return bool(self.opts["metadata_exclude"])
+
+    def source_verdict(self, fields: dict[str, Any]) -> StageResult | None:
+        """metadata_excluded when one of the source's fields holds an excluded value."""
+        for column, values in self.opts["metadata_exclude"].items():
+            value = fields.get(column)
+            if value is not None and str(value).strip().casefold() in {str(v).strip().casefold() for v in values}:
+                return StageResult.drop("metadata_excluded", f"{column} is {value!r}, which "
+                                        f"metadata_exclude lists", {column: value},
+                                        {column: {"exclude": list(values)}})
+        return None
 
     @classmethod
     def check_options(cls, opts: dict[str, Any]) -> str | None:
