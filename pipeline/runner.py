@@ -235,7 +235,7 @@ class Runner:
             return _NoBar()  # a disabled tqdm still starts its monitor thread
         from tqdm import tqdm
         # the per-file pass works once per distinct content (the table's "contents decoded")
-        return tqdm(total=total, desc=f"{desc:<10}", unit="content", position=position,
+        return tqdm(total=total, desc=f"{desc:<17}", unit="content", position=position,
                     leave=True, dynamic_ncols=True)
 
     def run(self) -> RunReport:
@@ -488,7 +488,9 @@ class Runner:
         suffixes: dict[tuple[str, ...], tuple[str, ...]] = {}
         # one bar per per-file stage (files/s): validate's counts every file decoded, the others
         # the files whose result for that stage came back (a dropped file stops early)
-        file_stages = [s.name for s in self.stages if s.kind == "file"]
+        # in config order: the per-file stages and the per-file step of corpus stages (dedup's
+        # signatures); the corpus steps get their own bars in the walk
+        file_stages = [s.name for s in self.stages if s.kind == "file" or _prepares(s)]
         bar = self._bar(file_stages[0], len(tasks))
         stage_bars = {name: self._bar(name, len(tasks), i) for i, name in enumerate(file_stages) if i}
         pending_r, pending_a, pending_s = [], [], []
@@ -513,7 +515,7 @@ class Runner:
                     pending_s.append((oc.sha256, oc.staged))
                 bar.update(1)
                 for name, stage_bar in stage_bars.items():
-                    if name in oc.results:
+                    if name in oc.results or name in oc.artifacts:
                         stage_bar.update(1)
                     else:  # dropped before this stage (or its verdict was cached): not coming
                         _shrink(stage_bar)
@@ -608,7 +610,7 @@ class Runner:
                     last = _last_results(ledger, st.name, st.fingerprint, self._compactor(st.name))
                 state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
                                                       "previous_results": last})
-                bar = self._bar(st.name, len(members))
+                bar = self._bar(f"{st.name} (corpus)", len(members))
                 res = st.run_corpus(members, state) if members else {}
                 del members
                 bar.update(len(alive))

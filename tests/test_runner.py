@@ -502,11 +502,13 @@ def test_progress_bars_end_full_and_count_what_the_table_counts(tmp_path, monkey
 
     monkeypatch.setattr(Runner, "_bar", lambda self, desc, total, position=0: Bar(desc, total, position))
     report = _run(tmp_path / "out")
-    # the per-file stages' bars while workers run, then the corpus stages' bars
-    assert [b.desc for b in made] == ["validate", "transpose", "key_meter", "filter", "dedup", "split"]
+    # in config order while workers run (dedup's per-file signatures in its place), then the
+    # corpus steps of the corpus stages
+    assert [b.desc for b in made] == ["validate", "transpose", "key_meter", "dedup", "filter",
+                                      "dedup (corpus)", "split (corpus)"]
     assert made[0].total == report.computed
-    assert all(b.n == b.total for b in made[:4]), [(b.desc, b.n, b.total) for b in made]
-    assert made[3].total < made[0].total  # files dropped by validate never reach filter
+    assert all(b.n == b.total for b in made[:5]), [(b.desc, b.n, b.total) for b in made]
+    assert made[4].total < made[0].total  # files dropped by validate never reach filter
 
 
 def test_changing_a_corpus_step_option_decodes_nothing(tmp_path):
