@@ -26,6 +26,11 @@ from .ledger import load_arrays
 from .score import Piece
 
 _U32_MAX = np.uint32(0xFFFFFFFF)
+#: Containment (intersection over the smaller set) counts when the smaller set has at least
+#: this share of the larger one's size: low enough that a melody-only or chords-only file is
+#: found inside its full arrangement (a subset of the voices), not so low that a short figure
+#: is "contained" in every long piece (files below ``min_shingles`` are never compared).
+MIN_SIZE_RATIO = 0.1
 _ROLL = np.uint64(0x9E3779B97F4A7C15)
 # MurmurHash3 fmix32 constants, as in datasketch.minhash._FMIX_CONSTANTS[32].
 _F32 = (np.uint32(16), np.uint32(0x85EBCA6B), np.uint32(13), np.uint32(0xC2B2AE35), np.uint32(16))
@@ -135,15 +140,18 @@ def overlap_counts(a: np.ndarray, b: np.ndarray, cap: int = ShingleSpec().max_sh
     return len(np.intersect1d(a, b, assume_unique=True)), len(a), len(b)
 
 
-def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = 0.75,
-                   cap: int = ShingleSpec().max_shingles) -> tuple[float, str]:
+def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = MIN_SIZE_RATIO,
+                   cap: int = ShingleSpec().max_shingles, generic: np.ndarray | None = None
+                   ) -> tuple[float, str]:
     """Exact similarity of two sorted unique shingle arrays: ``(value, measure)``.
 
     ``measure`` is ``"jaccard"`` or ``"containment"`` (intersection over the smaller set, used
     when the smaller set has at least ``min_size_ratio`` of the larger one's size and scores
     higher: an excerpt of 80 % or more of a piece is contained in it). Sets cut at ``cap``
     (smallest hashes kept) are compared on their common hash range (``overlap_counts``).
+    ``generic`` shingles (``generic_shingles``) are left out of both sets first.
     """
+    a, b = drop_generic(a, generic), drop_generic(b, generic)
     if len(a) == 0 or len(b) == 0:
         return 0.0, "jaccard"
     inter, la, lb = overlap_counts(a, b, cap)
@@ -156,8 +164,43 @@ def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = 0.75
     return float(jac), "jaccard"
 
 
+#: A shingle is generic when at least this share of the sampled files holds it, and at least
+#: ``GENERIC_MIN_FILES`` of them (see ``generic_shingles``).
+GENERIC_SHARE = 0.01
+GENERIC_MIN_FILES = 10
+#: Files whose shingle sets are counted for the document frequencies (a consistent sample:
+#: generic material is common by definition, so a sample finds it; memory stays bounded).
+GENERIC_SAMPLE = 2000
+
+
+def generic_shingles(sets: list[np.ndarray], *, share: float = GENERIC_SHARE,
+                     min_files: int = GENERIC_MIN_FILES) -> np.ndarray:
+    """Sorted uint64 shingles held by at least ``max(min_files, share * len(sets))`` of the
+    sets (document frequency): figures shared by many unrelated files (a walking bass over a
+    common progression, a stock arpeggio), which must not link two pieces. Files of one
+    piece share their shingles too, so the count must lie above the number of versions a
+    piece may have in the corpus."""
+    need = max(int(min_files), int(np.ceil(share * len(sets))))
+    if len(sets) < need or not len(sets):
+        return np.zeros(0, dtype=np.uint64)
+    allh = np.sort(np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets]))
+    if not len(allh):
+        return allh
+    start = np.flatnonzero(np.concatenate(([True], allh[1:] != allh[:-1])))
+    count = np.diff(np.append(start, len(allh)))
+    return allh[start[count >= need]]
+
+
+def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray:
+    """``shingles`` without the ``generic`` ones (both sorted unique uint64)."""
+    if generic is None or not len(generic) or not len(shingles):
+        return shingles
+    pos = np.minimum(np.searchsorted(generic, shingles), len(generic) - 1)
+    return shingles[generic[pos] != shingles]
+
+
 def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
-                      min_size_ratio: float = 0.75, cap: int = ShingleSpec().max_shingles,
+                      min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
                       compiled: bool = True) -> np.ndarray:
     """``set_similarity`` values (float64) of the pairs ``(sets[i[k]], sets[j[k]])``, the same
     numbers to the last bit: the counts come from one compiled call when the extension is
@@ -329,7 +372,7 @@ class LSHIndex:
         return m
 
     def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
-                        min_size_ratio: float = 0.75, cap: int = ShingleSpec().max_shingles,
+                        min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
                         margin_sigmas: float = 4.0) -> np.ndarray:
         """The candidate codes whose MinHash estimate leaves ``set_similarity`` a chance to
         reach ``threshold``; the rest need no exact comparison.
@@ -497,8 +540,8 @@ def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
 
 def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: float, *,
                  signatures: dict[str, np.ndarray] | None = None,
-                 min_size_ratio: float = 0.75, skip: UnionFind | None = None
-                 ) -> list[tuple[str, str, float]]:
+                 min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None,
+                 generic: np.ndarray | None = None) -> list[tuple[str, str, float]]:
     """Keep the candidate pairs whose similarity reaches ``threshold``: ``(a, b, sim)``.
 
     Similarity is ``set_similarity`` on the shingle sets when given (``shingles[key]``, compared
@@ -515,22 +558,26 @@ def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: flo
     index = np.array([pos.setdefault(k, len(pos)) for pair in pairs for k in pair],
                      dtype=np.int64).reshape(-1, 2)
     return verify_index_pairs(list(pos), index[:, 0], index[:, 1], shingles, threshold,
-                              min_size_ratio=min_size_ratio, skip=skip)
+                              min_size_ratio=min_size_ratio, skip=skip, generic=generic)
 
 
 def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any,
-                       threshold: float, *, min_size_ratio: float = 0.75,
-                       skip: UnionFind | None = None) -> list[tuple[str, str, float]]:
+                       threshold: float, *, min_size_ratio: float = MIN_SIZE_RATIO,
+                       skip: UnionFind | None = None, generic: np.ndarray | None = None
+                       ) -> list[tuple[str, str, float]]:
     """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays (LSH
     candidate codes), without a Python tuple per candidate: ``VERIFY_CHUNK`` pairs per
     ``pair_similarities`` call, then the pairs that reach ``threshold`` taken in order, so the
     result is the one a pair-by-pair pass gives. Only the sets of keys in some pair are read
-    (``shingles[key]``, e.g. lazily built facts on a rerun)."""
+    (``shingles[key]``, e.g. lazily built facts on a rerun). ``generic`` shingles are left
+    out of every set first (``drop_generic``)."""
     i = np.asarray(i, dtype=np.int64)
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
     sets, li, lj = involved_sets(keys, i, j, shingles)
+    if generic is not None and len(generic):
+        sets = [drop_generic(np.asarray(x, dtype=np.uint64), generic) for x in sets]
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
@@ -573,7 +620,7 @@ def _link_in_order(scored: Iterable[tuple[str, str, float]], threshold: float,
 
 def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm: int = 128,
                bands: int = 64, shingles: dict[str, np.ndarray] | None = None,
-               min_size_ratio: float = 0.75, skip: UnionFind | None = None
+               min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
                ) -> list[tuple[str, str, float]]:
     """Verified near pairs ``(a, b, similarity)`` with ``a < b``, sorted.
 
@@ -592,7 +639,7 @@ def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm:
 def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], threshold: float, *,
                        num_perm: int = 128, bands: int = 64,
                        shingles: dict[str, np.ndarray] | None = None,
-                       min_size_ratio: float = 0.75, skip: UnionFind | None = None
+                       min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
                        ) -> list[tuple[str, str, float]]:
     """Incremental form: pairs new-vs-old and new-vs-new only (old-vs-old are not recomputed)."""
     index = LSHIndex(num_perm, bands)

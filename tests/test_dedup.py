@@ -282,7 +282,8 @@ def test_bach_chorales_sharing_a_tune(chorales):
     assert ["bwv20.11", "bwv20.7"] in linked
     assert ["bwv120.8-a", "bwv137.5"] in linked             # transposed setting
     assert ["bwv245.11", "bwv395"] in linked
-    assert ["bwv114.7", "bwv256", "bwv258"] in linked       # 256-114.7 only through 258
+    # the three "Wo Gott" settings share the soprano but not the other three voices: every
+    # voice counts, so they score 0.23-0.28, below removal and above the split's grouping
     passion = next(c for c in linked if "bwv244.15" in c)
     assert {"bwv244.15", "bwv244.17", "bwv244.44", "bwv244.54", "bwv271"} <= set(passion)
     # no cluster mixes two tunes
@@ -293,7 +294,7 @@ def test_bach_chorales_sharing_a_tune(chorales):
     shingles = {m.id: m.artifacts["dedup"]["shingles"] for m in members}
     low = {(name_of[a], name_of[b]) for a, b, _ in near_pairs(sigs, 0.2, shingles=shingles)}
     low = {tuple(sorted(p)) for p in low}
-    assert ("bwv114.7", "bwv258") in low and ("bwv256", "bwv258") in low
+    assert {("bwv114.7", "bwv258"), ("bwv256", "bwv258"), ("bwv114.7", "bwv256")} <= low
     assert all(tune_of[chorales[a][1].id] == tune_of[chorales[b][1].id] for a, b in low), low
 
 

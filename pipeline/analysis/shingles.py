@@ -1,24 +1,33 @@
-"""Note shingles for near-duplicate detection, invariant by construction.
+"""Note shingles for piece identity, invariant by construction.
 
-What a shingle sees, and why:
+A piece is represented by what makes it that piece in each of its voices; every shingle is the
+hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
 
-* **Pitch as intervals.** Each onset contributes the interval of its highest sounding pitch
-  (the "skyline", common practice for melody extraction) from the previous onset's highest
-  pitch, so any transposition leaves every shingle unchanged.
-* **Time in beats on a grid.** Onsets are ``ticks / ticks_per_beat`` rounded to ``grid`` steps per
-  beat, so tempo events, the file's resolution and small timing jitter (humanized or
-  re-quantized notes) do not change the tokens; inter-onset intervals are capped at
-  ``max_ioi_beats`` so a long rest is one token.
-* **Tracks merged, drums excluded.** All pitched notes are merged by onset whatever their track,
-  channel or program, so re-orchestration and format 0/1 differences vanish; the drum channel
-  is left out (a drum groove is shared by many distinct pieces).
-* **Melody over harmony.** The skyline follows the tune, not the accompaniment, which keeps
-  distinct pieces that share a key, meter and chord progression apart.
+* **Voice lines** (kind ``line``): one line per pitched voice, a voice being a (track, channel)
+  stream (so a format-0 file's channels and a format-1 file's tracks give the same voices),
+  following the voice's highest note at each onset. A melody keeps its shingles whatever the
+  accompaniment beside it, and a melody-only or chords-only file holds a subset of its full
+  arrangement's shingles.
+* **Bass line** (kind ``bass``): the lowest pitched note at each onset of all voices merged,
+  so a bass played by any instrument (a piano's left hand, a bass track) compares.
+* **Harmony** (kind ``harmony``): per beat, the pitch-class set of the notes sounding in it,
+  taken relative to its lowest note, with the bass's move from the previous chord; repeated
+  chords are one token, so only changes count (and a chord held for twice as many beats is the
+  same token).
 
-A token is ``(interval, ioi)``; a shingle is the hash of ``ngram`` consecutive tokens
-(vectorized numpy arithmetic; no per-note Python loop). The canonical content hash, by contrast,
-keeps absolute pitch and exact beat positions: two files with the same notes but other
-metadata, velocities, programs, tempo events, resolution or format hash equal.
+Invariances: pitch enters as intervals (transposition); onsets are ``ticks / ticks_per_beat`` on
+a grid of ``2 * grid`` steps per beat (tempo events, resolution, small timing jitter); a line's
+onset gaps are counted in quarters of its most common gap, its *unit* (so the same line encoded
+at double or half time gives the same tokens); programs, velocities and channel numbers are not
+read; drums are left out (a groove is shared by many pieces).
+
+Generic material: a window whose tokens take at most ``min_distinct`` distinct values (a
+repeated note or chord, a two-note alternation, an even scale run, a repeated block chord) is
+dropped: such figures are shared by unrelated pieces and carry little of a piece's identity.
+
+The canonical content hash, by contrast, keeps absolute pitch and exact beat positions: two
+files with the same notes but other metadata, velocities, programs, tempo events, resolution or
+format hash equal.
 """
 from __future__ import annotations
 
@@ -41,15 +50,28 @@ CONTENT_STEPS_PER_BEAT = 960
 
 @dataclass(frozen=True)
 class ShingleSpec:
-    """How shingles are cut. ``grid``: onset steps per beat; ``ngram``: tokens per shingle;
-    ``max_ioi_beats``: inter-onset intervals longer than this are one token; ``max_shingles``:
-    at most this many shingles are kept (the smallest hashes, a consistent sample)."""
+    """How shingles are cut. ``ngram``: tokens per shingle; ``grid``: onset steps per beat (the
+    grid onsets are rounded to has twice as many, so a line at half time still fits);
+    ``max_units``: onset gaps longer than this many units are one token; ``min_distinct``:
+    windows with at most this many distinct tokens are dropped (generic figures);
+    ``max_shingles``: at most this many shingles are kept (the smallest hashes, a consistent
+    sample); ``kinds``: the line kinds emitted."""
 
     ngram: int = 4
     grid: int = 4
-    max_ioi_beats: float = 4.0
+    max_units: int = 8
     max_interval: int = 24
+    min_distinct: int = 2
+    pitch_extra: int = 2
+    bass_below: int = 48
     max_shingles: int = 4096
+    kinds: tuple[str, ...] = ("line", "pitch")
+
+
+#: Tag of each kind, mixed into its shingles' hashes so kinds never match each other.
+KIND_TAGS = {"line": 1, "bass": 2, "harmony": 3, "top": 4, "pitch": 5}
+#: A held note counts in at most this many beats of the harmony (memory: long pads).
+_HELD_BEATS = 4
 
 
 _S33 = np.uint64(33)
@@ -72,59 +94,182 @@ def _fmix64_inplace(x: np.ndarray) -> np.ndarray:
     return x
 
 
-def melody_tokens(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarray:
-    """One int64 token per onset after the first: interval of the skyline and grid IOI."""
+def _grid(ticks: np.ndarray, tpb: int, steps: int) -> np.ndarray:
+    """Tick positions rounded (half up, in integers) to ``steps`` per beat."""
+    return (ticks * (2 * steps) + tpb) // (2 * tpb)
+
+
+def _pitched(piece: Piece) -> np.ndarray:
     notes = piece.notes
     drum = notes["channel"] == DRUM_CHANNEL
-    if drum.any():
-        keep = ~drum
-        start, pitch = notes["start"][keep], notes["pitch"][keep]
+    return notes[~drum] if drum.any() else notes
+
+
+def line_tokens(q: np.ndarray, pitch: np.ndarray, voice: np.ndarray, spec: ShingleSpec,
+                lowest: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Tokens of the lines of each voice: ``(tokens, line id of each token)``, the tokens of
+    one line consecutive and in time order.
+
+    A line follows its voice's highest note per onset (``lowest``: the lowest). A token is
+    ``(interval + 128) * 4096 + gap``: the pitch interval from the previous onset (clipped to
+    ``max_interval``) and the onset gap in quarters of the line's unit (its most common gap;
+    ties to the shorter), capped at ``max_units`` units."""
+    empty = np.zeros(0, dtype=np.int64)
+    if len(q) < 2:
+        return empty, empty
+    order = np.lexsort((pitch, q, voice))
+    v, qq, p = voice[order], q[order], pitch[order].astype(np.int64)
+    new = np.empty(len(v), dtype=bool)
+    new[0] = True
+    new[1:] = (v[1:] != v[:-1]) | (qq[1:] != qq[:-1])
+    first = np.flatnonzero(new)
+    if lowest:
+        gp = p[first]
     else:
-        start, pitch = notes["start"], notes["pitch"]
-    if len(start) < 2:
+        gp = p[np.append(first[1:] - 1, len(v) - 1)]
+    gv, gq = v[first], qq[first]
+    same = gv[1:] == gv[:-1]
+    if not same.any():
+        return empty, empty
+    interval = np.clip(gp[1:] - gp[:-1], -spec.max_interval, spec.max_interval)[same]
+    step = (gq[1:] - gq[:-1])[same]
+    line = gv[1:][same]
+    unit = _mode_per_line(line, step)
+    gap = np.minimum((8 * step + unit) // (2 * unit), 4 * spec.max_units)
+    return (interval + 128) * 4096 + gap, line
+
+
+def _mode_per_line(line: np.ndarray, step: np.ndarray) -> np.ndarray:
+    """For each token, the most common onset gap of its line (ties: the shorter gap)."""
+    capped = np.minimum(step, (1 << 31) - 1)
+    key = np.sort(line.astype(np.int64) * (1 << 32) + capped)
+    start = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
+    uniq = key[start]
+    count = np.diff(np.append(start, len(key)))
+    kl, ks = uniq >> 32, uniq & 0xFFFFFFFF
+    best = np.lexsort((ks, -count, kl))
+    first = best[np.concatenate(([True], kl[best][1:] != kl[best][:-1]))]
+    lines, units = kl[first], ks[first]
+    return units[np.searchsorted(lines, line.astype(np.int64))]
+
+
+def harmony_tokens(q_start: np.ndarray, q_end: np.ndarray, pitch: np.ndarray, steps: int
+                   ) -> np.ndarray:
+    """One token per chord change: the pitch-class set of the notes sounding in a beat,
+    relative to their lowest note (a 12-bit mask), and the move of that lowest note's pitch
+    class from the previous chord; beats with the same chord as the one before are one chord.
+    A note counts in the beats it sounds in (at most ``_HELD_BEATS``)."""
+    if len(pitch) < 2:
         return np.zeros(0, dtype=np.int64)
-    tpb = int(piece.ticks_per_beat)
-    q = (start * (2 * spec.grid) + tpb) // (2 * tpb)  # round half up to the grid, in integers
-    step = q[1:] - q[:-1]
-    if step.min() < 0:  # the decoder sorts by start; stay correct if a caller did not
-        order = np.argsort(q, kind="stable")
-        q, pitch = q[order], pitch[order]
-        step = q[1:] - q[:-1]
-    new = step != 0
-    first = np.flatnonzero(np.concatenate(([True], new)))
-    if len(first) < 2:
+    b0 = q_start // steps
+    b1 = np.maximum(b0, (np.maximum(q_end, q_start + 1) - 1) // steps)
+    span = np.minimum(b1 - b0, _HELD_BEATS - 1) + 1
+    idx = np.repeat(np.arange(len(pitch)), span)
+    offset = np.arange(len(idx)) - np.repeat(np.cumsum(span) - span, span)
+    beat = b0[idx] + offset
+    p = pitch[idx].astype(np.int64)
+    order = np.lexsort((p, beat))
+    beat, p = beat[order], p[order]
+    first = np.flatnonzero(np.concatenate(([True], beat[1:] != beat[:-1])))
+    sizes = np.diff(np.append(first, len(beat)))
+    bass = p[first]
+    mask = np.bitwise_or.reduceat(np.left_shift(1, (p - np.repeat(bass, sizes)) % 12), first)
+    chord = mask * 16 + bass % 12
+    change = np.concatenate(([True], chord[1:] != chord[:-1]))
+    bass, mask = bass[change], mask[change]
+    if len(bass) < 2:
         return np.zeros(0, dtype=np.int64)
-    top = np.maximum.reduceat(pitch, first).astype(np.int64)
-    # np.clip(np.diff(top), lo, hi) is minimum(maximum(diff, lo), hi); the gaps between
-    # successive onsets (np.diff(q[first])) are the non-zero steps
-    interval = np.minimum(np.maximum(top[1:] - top[:-1], -spec.max_interval), spec.max_interval)
-    ioi = np.minimum(step[new], int(spec.max_ioi_beats * spec.grid))
-    return (interval + 128) * 4096 + ioi
+    return mask[1:] * 16 + (bass[1:] - bass[:-1]) % 12
+
+
+def _bass_voices(voice: np.ndarray, pitch: np.ndarray, below: int) -> np.ndarray:
+    """The voices whose median pitch lies below ``below`` (the bass register)."""
+    if not len(voice):
+        return voice
+    order = np.lexsort((pitch, voice))
+    v, p = voice[order], pitch[order]
+    start = np.flatnonzero(np.concatenate(([True], v[1:] != v[:-1])))
+    size = np.diff(np.append(start, len(v)))
+    median = p[start + (size - 1) // 2]
+    return v[start][median < below]
+
+
+def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
+             n: int | None = None) -> np.ndarray:
+    """Hashes (uint64, not yet mixed) of the ``n``-token windows (default ``ngram``) inside
+    one line, the generic ones (at most ``min_distinct`` distinct tokens) left out."""
+    n = n or spec.ngram
+    if len(tokens) < n:
+        return np.zeros(0, dtype=np.uint64)
+    count = len(tokens) - n + 1
+    ok = line[:count] == line[n - 1:]
+    distinct = np.ones(count, dtype=np.int64)
+    for j in range(1, n):
+        fresh = np.ones(count, dtype=bool)
+        for i in range(j):
+            fresh &= tokens[j:j + count] != tokens[i:i + count]
+        distinct += fresh
+    ok &= distinct > spec.min_distinct
+    t = tokens.view(np.uint64)
+    h = np.full(count, _seed(n, kind), dtype=np.uint64)
+    for j in range(n):  # array arithmetic wraps modulo 2**64
+        h *= _ROLL
+        h += t[j:j + count]
+    return h[ok]
+
+
+def _seed(n: int, kind: str) -> np.uint64:
+    """The start value of a window hash: its length and its kind's tag, modulo 2**64."""
+    return np.uint64((n + KIND_TAGS[kind] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF)
 
 
 def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarray:
-    """The piece's shingle set: sorted unique uint64 hashes of ``ngram``-token windows.
+    """The piece's shingle set: sorted unique uint64 hashes of the windows of every line kind
+    in ``spec.kinds`` (see the module docstring).
 
-    A piece with fewer tokens than ``ngram`` gets one shingle of all its tokens (if any), so
-    short pieces still compare; a piece with none (drums only, one onset) gets an empty set.
+    A piece whose lines are all shorter than ``ngram`` gets one shingle of its first line's
+    tokens (if any), so short pieces still compare; a piece with none (drums only, one onset)
+    gets an empty set.
     """
-    accel = compiled_analyses(piece.notes)
-    if accel is not None:
-        args = (int(piece.ticks_per_beat), spec.grid, int(spec.max_ioi_beats * spec.grid),
-                spec.max_interval, spec.ngram, spec.max_shingles)
-        if all(type(a) is int for a in args):
-            got = accel.shingles(piece.notes, *args)
-            if got is not None:  # the same hashes (tests/test_smf_accel.py)
-                return np.frombuffer(got, dtype=np.uint64).copy()
-    tokens = melody_tokens(piece, spec).view(np.uint64)  # int64 -> uint64: the same bits
-    n = min(spec.ngram, len(tokens))
-    if n == 0:
-        return np.zeros(0, dtype=np.uint64)
-    count = len(tokens) - n + 1
-    h = np.full(count, np.uint64(n), dtype=np.uint64)
-    for j in range(n):  # array arithmetic wraps modulo 2**64
-        h *= _ROLL
-        h += tokens[j:j + count]
+    notes = _pitched(piece)
+    tpb = int(piece.ticks_per_beat)
+    steps = 2 * spec.grid
+    q = _grid(notes["start"], tpb, steps)
+    pitch = notes["pitch"]
+    parts = []
+    if "line" in spec.kinds:
+        voice = notes["track"].astype(np.int64) * 16 + notes["channel"]
+        low = _bass_voices(voice, pitch, spec.bass_below)
+        if len(low):
+            upper = ~np.isin(voice, low)
+            tok, line = line_tokens(q[upper], pitch[upper], voice[upper], spec)
+        else:
+            tok, line = line_tokens(q, pitch, voice, spec)
+        parts.append(_windows(tok, line, "line", spec))
+        if not len(parts[-1]) and len(tok):  # every line shorter than ngram: one shingle
+            t = tok[line == line[0]][:spec.ngram].view(np.uint64)
+            h = np.full(1, _seed(len(t), "line"), dtype=np.uint64)
+            for x in t:
+                h *= _ROLL
+                h += x
+            parts[-1] = h
+        if "pitch" in spec.kinds:
+            interval = tok // 4096
+            moved = interval != 128
+            parts.append(_windows(interval[moved], line[moved], "pitch", spec, spec.ngram + spec.pitch_extra))
+    zero = np.zeros(len(q), dtype=np.int64)
+    if "top" in spec.kinds:
+        tok, line = line_tokens(q, pitch, zero, spec)
+        parts.append(_windows(tok, line, "top", spec))
+    if "bass" in spec.kinds:
+        tok, line = line_tokens(q, pitch, zero, spec, lowest=True)
+        parts.append(_windows(tok, line, "bass", spec))
+    if "harmony" in spec.kinds:
+        tok = harmony_tokens(q, _grid(notes["end"], tpb, steps), pitch, steps)
+        parts.append(_windows(tok, np.zeros(len(tok), dtype=np.int64), "harmony", spec))
+    h = np.concatenate(parts) if parts else np.zeros(0, dtype=np.uint64)
+    if not len(h):
+        return h
     h = _fmix64_inplace(h)
     h.sort()  # np.unique: sorted, then the first of each run of equal values
     if len(h) > 1:

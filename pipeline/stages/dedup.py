@@ -23,8 +23,8 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..ledger import load_arrays
 from ..score import Piece
-from ..similarity import (LSHIndex, UnionFind, check_banding, set_similarity, signature_of,
-                          verify_index_pairs)
+from ..similarity import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex, UnionFind, check_banding,
+                          generic_shingles, set_similarity, signature_of, verify_index_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -138,14 +138,14 @@ def _containment_ratio(v: Any) -> str | None:
 
 #: Options that change links (a change invalidates the links stored by the previous run).
 _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min_size_ratio",
-                 "min_shingles")
+                 "min_shingles", "generic_share")
 
 
 @register
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 1
+    version = 2
     doc = "Drop exact and near duplicates (MinHash LSH over transposition-invariant note shingles)."
     #: shingle sets are read for the members in candidate pairs and in clusters of several
     #: (split reads them for its candidate pairs too), not for every member
@@ -160,12 +160,17 @@ class Dedup(Stage):
         Option("ngram", int, DEFAULT_NGRAM, "Melody tokens (interval, onset gap) per shingle.", in_range(1, 16)),
         Option("grid", int, ShingleSpec.grid, "Onset grid steps per beat for shingles.", positive),
         Option("seed", int, 1, "MinHash permutation seed.", None),
-        Option("min_size_ratio", float, 0.75,
-               "Containment (for excerpts) is used only when the smaller shingle set has at least "
-               "this fraction of the larger one's size; 1 disables it.", _containment_ratio),
+        Option("min_size_ratio", float, MIN_SIZE_RATIO,
+               "Containment (an excerpt, or a subset of the voices such as a melody-only file) is "
+               "used only when the smaller shingle set has at least this fraction of the larger "
+               "one's size; 1 disables it.", _containment_ratio),
         Option("min_shingles", int, 16,
                "Files with fewer distinct shingles are only exact-deduplicated: such short sets "
                "cannot tell a copy from a shared figure (a scale, an arpeggio).", positive),
+        Option("generic_share", float, GENERIC_SHARE,
+               "Shingles held by at least this share of the files (and by 10 or more) are generic "
+               "(a stock bass or accompaniment figure) and are left out when files are compared; "
+               "1 keeps every shingle.", unit_interval),
         Option("keep_policy", str, "most_notes",
                "Which cluster member is kept: " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
                one_of(*KEEP_POLICIES)),
@@ -258,11 +263,13 @@ class Dedup(Stage):
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
         codes = index.candidate_codes(new_reps if reusable else None)
         n_candidates = len(codes)
+        self._generic = self._generic_shingles(indexed, arts)
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
         verified = verify_index_pairs(index.ids, codes // n_ids, codes % n_ids, _Shingles(facts),
-                                      threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf)
+                                      threshold, min_size_ratio=float(o["min_size_ratio"]), skip=uf,
+                                      generic=self._generic)
         for a, b, sim in verified:
             links[a].append((b, sim, "near"))
             links[b].append((a, sim, "near"))
@@ -270,7 +277,8 @@ class Dedup(Stage):
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
                      f"{n_candidates} LSH candidate pairs, {len(codes)} plausible by their MinHash "
-                     f"estimate, {len(verified)} verified links")
+                     f"estimate, {len(verified)} verified links; {len(self._generic)} generic "
+                     "shingles left out")
 
         # 3. clusters and kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]
@@ -305,6 +313,15 @@ class Dedup(Stage):
         state.save("cluster_sources", cluster_sources)
         return results
 
+    def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
+        """The generic shingles (``similarity.generic_shingles``) of the compared files, counted
+        on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
+        share = float(self.opts["generic_share"])
+        if share >= 1.0:
+            return np.zeros(0, dtype=np.uint64)
+        sample = load_arrays([arts[k]["shingles"] for k in indexed[:GENERIC_SAMPLE]])
+        return generic_shingles(sample, share=share)
+
     @staticmethod
     def _as_last_run(group: list[str], old: set[str], last: Any, last_sources: dict[str, str],
                      by_id: dict[str, Member]) -> bool:
@@ -338,7 +355,8 @@ class Dedup(Stage):
             else:
                 kind = "near"
                 sim, measure = set_similarity(f["shingles"], k["shingles"],
-                                              min_size_ratio=float(self.opts["min_size_ratio"]))
+                                              min_size_ratio=float(self.opts["min_size_ratio"]),
+                                              generic=getattr(self, "_generic", None))
             reason = "near_duplicate" if kind == "near" else "exact_duplicate"
             if kind == "near":
                 how = f"{measure} {sim:.2f}"

@@ -1,0 +1,240 @@
+"""Piece identity on real collections with group labels, and on music21's Bach chorales.
+
+``python -m pipeline.bench_dedup --real DIR --labels DIR/labels.json`` runs the dedup and split
+stages at their defaults (``prepare`` per file, then ``run_corpus``, as a run does) over every
+MIDI file of a labelled collection (``labels.json``: ``{"files": {path: {"song": id, ...}}}``,
+the layout of the POP909 development set) and reports:
+
+* songs whose kept files lie in more than one part, ours against random splits of the same kept
+  files with the same ratios (several seeds);
+* songs keeping two files that share a melody track (the track named ``MELODY``; two tracks are
+  the same when the aligned similarity of their pitch-interval sequences, difflib's
+  ``SequenceMatcher.ratio``, is at least ``SAME_MELODY``);
+* every link between files of different songs (dedup drops and split grouping links), with its
+  similarity and the melody-track similarity, so a person can check each;
+* dedup drops whose own similarity to the kept file they name is below the threshold;
+* files per second of ``prepare`` + dedup + split (decoding excluded).
+
+``--chorales`` compares the Bach chorales bundled with music21 that share a title (the same
+hymn tune harmonized several times): pairs of one tune linked, pairs of different tunes linked.
+"""
+from __future__ import annotations
+
+import difflib
+import json
+import random
+import time
+from collections import Counter, defaultdict
+from itertools import combinations
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .stages.base import CorpusState, FileContext, Member
+
+#: Aligned interval similarity from which two melody tracks count as the same melody.
+SAME_MELODY = 0.8
+#: Split ratios of the default configuration.
+RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
+
+
+def melody_intervals(piece: Any, track_name: str = "MELODY") -> list[int]:
+    """Pitch intervals between successive onsets of the track named ``track_name`` (its top
+    note per onset); empty when the file has no such track."""
+    names = [n.strip().upper() for n in piece.track_names]
+    if track_name not in names:
+        return []
+    t = names.index(track_name)
+    n = piece.notes[piece.notes["track"] == t]
+    if len(n) < 2:
+        return []
+    order = np.lexsort((-n["pitch"], n["start"]))
+    start, pitch = n["start"][order], n["pitch"][order]
+    first = np.concatenate(([True], start[1:] != start[:-1]))
+    top = pitch[first].astype(int)
+    return np.diff(top).tolist()
+
+
+def melody_similarity(a: list[int], b: list[int]) -> float:
+    """Aligned similarity of two interval sequences (difflib ratio: 2 * matched / total)."""
+    if not a or not b:
+        return 0.0
+    return difflib.SequenceMatcher(None, a, b, autojunk=False).ratio()
+
+
+def load_collection(folder: Path, labels: Path) -> list[dict]:
+    """Decode every labelled file: records with ``rel``, ``sha256``, ``piece``, ``song``."""
+    import hashlib
+    from .errors import DecodeError
+    from .smf import decode
+    files = json.loads(Path(labels).read_text())["files"]
+    recs = []
+    seen: Counter = Counter()
+    for rel in sorted(files):
+        data = (folder / rel).read_bytes()
+        try:
+            piece = decode(data, source=rel)
+        except DecodeError:
+            continue
+        sha = hashlib.sha256(data).hexdigest()
+        base = sha[:16]
+        rid = base if not seen[base] else f"{base}.{seen[base]}"
+        seen[base] += 1
+        recs.append({"rel": rel, "sha256": sha, "piece": piece, "song": str(files[rel]["song"]),
+                     "id": rid})
+    return recs
+
+
+def run_stages(recs: list[dict], dedup_opts: dict | None = None, split_opts: dict | None = None
+               ) -> dict[str, Any]:
+    """Dedup then split, as a run does; returns results, kept ids, parts, links and seconds."""
+    from .stages.dedup import Dedup
+    from .stages.split import Split
+    dedup = Dedup(dedup_opts or {})
+    split = Split(split_opts or {})
+    t0 = time.perf_counter()
+    members = []
+    for r in recs:
+        art = dedup.prepare(r["piece"], FileContext(r["piece"], r["rel"], r["sha256"]))
+        members.append(Member(r["id"], r["sha256"], r["rel"], {"notes": len(r["piece"].notes)},
+                              {"dedup": art}, [r["rel"]]))
+    t1 = time.perf_counter()
+    dstate = CorpusState()
+    dres = dedup.run_corpus(members, dstate)
+    t2 = time.perf_counter()
+    kept = [m for m in members if dres[m.id].kept]
+    sstate = CorpusState(upstream={"dedup": dres})
+    sres = split.run_corpus(kept, sstate)
+    t3 = time.perf_counter()
+    links = sstate.current.get("links", {}).get("links", [])
+    return {"dedup": dres, "split": sres, "kept": [m.id for m in kept], "group_links": links,
+            "members": {m.id: m for m in members}, "threshold": float(dedup.opts["threshold"]),
+            "group_threshold": split.opts["group_threshold"],
+            "seconds": {"prepare": t1 - t0, "dedup": t2 - t1, "split": t3 - t2}}
+
+
+def songs_across_parts(part_of: dict[str, str], song_of: dict[str, str]) -> int:
+    """Songs whose files (the keys of ``part_of``) lie in more than one part."""
+    parts: dict[str, set[str]] = defaultdict(set)
+    for k, p in part_of.items():
+        parts[song_of[k]].add(p)
+    return sum(1 for s in parts.values() if len(s) > 1)
+
+
+def random_split(ids: list[str], seed: int, ratios: dict[str, float] = RATIOS) -> dict[str, str]:
+    """A plain random split of ``ids`` with the given part shares."""
+    ids = sorted(ids)
+    random.Random(seed).shuffle(ids)
+    out, lo = {}, 0
+    names = list(ratios)
+    for i, name in enumerate(names):
+        hi = len(ids) if i == len(names) - 1 else lo + int(round(ratios[name] * len(ids)))
+        out.update((k, name) for k in ids[lo:hi])
+        lo = hi
+    return out
+
+
+def evaluate(recs: list[dict], dedup_opts: dict | None = None, split_opts: dict | None = None,
+             seeds: int = 5) -> dict[str, Any]:
+    """Every figure of the module docstring for one collection."""
+    from .similarity import set_similarity
+    run = run_stages(recs, dedup_opts, split_opts)
+    by_id = {r["id"]: r for r in recs}
+    song_of = {r["id"]: r["song"] for r in recs}
+    mel = {r["id"]: melody_intervals(r["piece"]) for r in recs}
+    kept = run["kept"]
+    part_of = {k: run["split"][k].values["split"] for k in kept}
+    ours = songs_across_parts(part_of, song_of)
+    rand = [songs_across_parts(random_split(kept, s), song_of) for s in range(seeds)]
+    # songs keeping two files with the same melody track
+    kept_by_song: dict[str, list[str]] = defaultdict(list)
+    for k in kept:
+        kept_by_song[song_of[k]].append(k)
+    same_melody_songs = []
+    for song, ks in sorted(kept_by_song.items()):
+        best = max((melody_similarity(mel[a], mel[b]) for a, b in combinations(ks, 2)), default=0.0)
+        if best >= SAME_MELODY:
+            same_melody_songs.append((song, round(best, 3)))
+    # pairs of one song sharing a melody, and what our similarity says of them
+    within = []
+    by_song: dict[str, list[str]] = defaultdict(list)
+    for r in recs:
+        by_song[r["song"]].append(r["id"])
+    members = run["members"]
+    for ks in by_song.values():
+        for a, b in combinations(ks, 2):
+            ms = melody_similarity(mel[a], mel[b])
+            if ms >= SAME_MELODY:
+                sim, _ = set_similarity(members[a].artifacts["dedup"]["shingles"],
+                                        members[b].artifacts["dedup"]["shingles"],
+                                        **_measure_kwargs(dedup_opts))
+                within.append(sim)
+    # links between different songs: dedup drops and split links
+    threshold = run["threshold"]
+    cross, below, drops = [], 0, 0
+    for k, res in run["dedup"].items():
+        if res.kept:
+            continue
+        drops += 1
+        other = res.values.get("duplicate_of")
+        sim = float(res.values.get("similarity", 1.0))
+        if res.reason == "near_duplicate" and sim < threshold - 1e-9:
+            below += 1
+        if other and song_of[other] != song_of[k]:
+            cross.append({"kind": f"dedup {res.reason}", "a": by_id[k]["rel"], "b": by_id[other]["rel"],
+                          "similarity": round(sim, 3),
+                          "melody_similarity": round(melody_similarity(mel[k], mel[other]), 3)})
+    for a, b in run["group_links"]:
+        if song_of[a] != song_of[b]:
+            sim, _ = set_similarity(members[a].artifacts["dedup"]["shingles"],
+                                    members[b].artifacts["dedup"]["shingles"],
+                                    **_measure_kwargs(dedup_opts))
+            cross.append({"kind": "split link", "a": by_id[a]["rel"], "b": by_id[b]["rel"],
+                          "similarity": round(float(sim), 3),
+                          "melody_similarity": round(melody_similarity(mel[a], mel[b]), 3)})
+    secs = run["seconds"]
+    total = sum(secs.values())
+    within_arr = np.array(within) if within else np.zeros(1)
+    return {"files": len(recs), "songs": len(by_song), "kept": len(kept), "dropped": drops,
+            "songs_across_parts": ours, "random_split_songs_across_parts": rand,
+            "songs_keeping_same_melody": same_melody_songs,
+            "songs_with_two_kept": sum(1 for ks in kept_by_song.values() if len(ks) > 1),
+            "same_melody_pairs": len(within),
+            "same_melody_pair_similarity": {
+                "min": float(within_arr.min()), "median": float(np.median(within_arr)),
+                "below_threshold": int(np.sum(within_arr < threshold))},
+            "cross_song_links": cross, "drops_below_threshold": below,
+            "seconds": secs, "files_per_s": len(recs) / total if total else float("inf"),
+            "prepare_ms_per_file": 1000 * secs["prepare"] / max(1, len(recs))}
+
+
+def _measure_kwargs(dedup_opts: dict | None) -> dict[str, Any]:
+    """The measure options ``set_similarity`` shares with the dedup stage's defaults."""
+    from .stages.dedup import Dedup
+    o = Dedup(dedup_opts or {}).opts
+    return {"min_size_ratio": float(o["min_size_ratio"])}
+
+
+def format_real(res: dict[str, Any]) -> str:
+    """The real-collection figures as plain text lines."""
+    s = res["same_melody_pair_similarity"]
+    lines = [
+        f"{res['files']} files, {res['songs']} songs; kept {res['kept']}, dropped {res['dropped']}",
+        f"songs with kept files in more than one part: ours {res['songs_across_parts']}, "
+        f"random split {', '.join(map(str, res['random_split_songs_across_parts']))}",
+        f"songs keeping two files with the same melody track: {len(res['songs_keeping_same_melody'])} "
+        f"of {res['songs']} ({100 * len(res['songs_keeping_same_melody']) / max(1, res['songs']):.1f}%) "
+        f"{[s for s, _ in res['songs_keeping_same_melody']][:20]}",
+        f"songs keeping two or more files: {res['songs_with_two_kept']}",
+        f"pairs of one song sharing a melody track: {res['same_melody_pairs']}; our similarity "
+        f"min {s['min']:.3f}, median {s['median']:.3f}, {s['below_threshold']} below the dedup threshold",
+        f"dedup drops below threshold: {res['drops_below_threshold']}",
+        f"files/s (prepare + dedup + split): {res['files_per_s']:.0f}; prepare "
+        f"{res['prepare_ms_per_file']:.3f} ms/file; seconds {json.dumps({k: round(v, 3) for k, v in res['seconds'].items()})}",
+        f"links between different songs: {len(res['cross_song_links'])}",
+    ]
+    for c in res["cross_song_links"]:
+        lines.append(f"  {c['kind']}: {c['a']} ~ {c['b']} similarity {c['similarity']:.3f}, "
+                     f"melody-track similarity {c['melody_similarity']:.3f}")
+    return "\n".join(lines)
