@@ -294,7 +294,10 @@ def test_bach_chorales_sharing_a_tune(chorales):
     shingles = {m.id: m.artifacts["dedup"]["shingles"] for m in members}
     low = {(name_of[a], name_of[b]) for a, b, _ in near_pairs(sigs, 0.2, shingles=shingles)}
     low = {tuple(sorted(p)) for p in low}
-    assert {("bwv114.7", "bwv258"), ("bwv256", "bwv258"), ("bwv114.7", "bwv256")} <= low
+    from pipeline.similarity import set_similarity
+    wo_gott = {n: chorales[n][1].artifacts["dedup"]["shingles"] for n in BACH_TUNES["wo_gott"]}
+    for a, b in (("bwv114.7", "bwv258"), ("bwv256", "bwv258"), ("bwv114.7", "bwv256")):
+        assert 0.2 <= set_similarity(wo_gott[a], wo_gott[b])[0] < 0.3, (a, b)
     assert all(tune_of[chorales[a][1].id] == tune_of[chorales[b][1].id] for a, b in low), low
 
 

@@ -15,6 +15,8 @@ tests; ``test_minhash_layouts_equal_datasketch`` repeats datasketch at the sizes
 """
 from __future__ import annotations
 
+from collections import Counter
+
 import dataclasses
 import hashlib
 
@@ -244,26 +246,70 @@ def plain_piece_stats(piece):
     }
 
 
-def plain_melody_tokens(piece, spec):
-    notes = piece.notes
-    pitched = notes["channel"] != DRUM_CHANNEL
-    start = notes["start"][pitched]
-    if len(start) < 2:
-        return np.zeros(0, dtype=np.int64)
-    pitch = notes["pitch"][pitched].astype(np.int64)
+def plain_line_tokens(onsets, spec):
+    """One voice's line tokens, one Python step per onset: ``onsets`` are (grid step, pitch)."""
+    top = {}
+    for q, p in onsets:
+        top[q] = max(top.get(q, p), p)
+    keys = sorted(top)
+    steps = [b - a for a, b in zip(keys, keys[1:])]
+    if not steps:
+        return []
+    counts = Counter(steps)
+    unit = min(x for x in counts if counts[x] == max(counts.values()))
+    out = []
+    for k in range(1, len(keys)):
+        interval = max(-spec.max_interval, min(spec.max_interval, top[keys[k]] - top[keys[k - 1]]))
+        gap = min((8 * steps[k - 1] + unit) // (2 * unit), 4 * spec.max_units)
+        out.append((interval + 128) * 4096 + gap)
+    return out
+
+
+def plain_window_hashes(tokens, n, kind, spec, keep_all=False):
+    mask = (1 << 64) - 1
+    out = []
+    for k in range(len(tokens) - n + 1):
+        w = tokens[k:k + n]
+        if not keep_all and len(set(w)) <= min(spec.min_distinct, n - 2):
+            continue
+        h = (n + shmod.KIND_TAGS[kind] * 0x632BE59BD9B4E019) & mask
+        for t in w:
+            h = (h * int(shmod._ROLL) + t) & mask
+        out.append(h)
+    return out
+
+
+def plain_shingle_hashes(piece, spec):
+    """Line and pitch shingles of every voice, voice by voice and window by window."""
     tpb = int(piece.ticks_per_beat)
-    q = (start * (2 * spec.grid) + tpb) // (2 * tpb)
-    if np.any(q[1:] < q[:-1]):
-        order = np.argsort(q, kind="stable")
-        q, pitch = q[order], pitch[order]
-    first = np.flatnonzero(np.concatenate(([True], q[1:] != q[:-1])))
-    if len(first) < 2:
-        return np.zeros(0, dtype=np.int64)
-    top = np.maximum.reduceat(pitch, first)
-    onset = q[first]
-    interval = np.clip(np.diff(top), -spec.max_interval, spec.max_interval)
-    ioi = np.minimum(np.diff(onset), int(spec.max_ioi_beats * spec.grid))
-    return (interval + 128) * 4096 + ioi
+    voices = {}
+    # the grid step in numpy's int64 arithmetic, as every analysis rounds ticks (it wraps for
+    # ticks near 2**63, identically in both)
+    grid_q = (piece.notes["start"] * (4 * spec.grid) + tpb) // (2 * tpb)
+    for n, q in zip(piece.notes, grid_q.tolist()):
+        if n["channel"] == DRUM_CHANNEL:
+            continue
+        voices.setdefault(int(n["track"]) * 16 + int(n["channel"]), []).append((q, int(n["pitch"])))
+    hashes, first_line = [], None
+    pitch_hashes = []
+    for v in sorted(voices):
+        pitches = sorted(p for _, p in voices[v])
+        if pitches[(len(pitches) - 1) // 2] < spec.bass_below:
+            continue
+        toks = plain_line_tokens(voices[v], spec)
+        if toks and first_line is None:
+            first_line = toks
+        hashes += plain_window_hashes(toks, spec.ngram, "line", spec)
+        moved = [t // 4096 for t in toks if t // 4096 != 128]
+        pitch_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "pitch", spec)
+    if not hashes and first_line:
+        w = first_line[:spec.ngram]
+        hashes = plain_window_hashes(w, len(w), "line", spec, keep_all=True)
+    hashes += pitch_hashes
+    if not hashes:
+        return np.zeros(0, dtype=np.uint64)
+    out = np.unique(plain_fmix64(np.array(hashes, dtype=np.uint64)))
+    return out[:spec.max_shingles] if len(out) > spec.max_shingles else out
 
 
 def plain_fmix64(x):
@@ -275,20 +321,6 @@ def plain_fmix64(x):
         x *= shmod._MIX2
         x ^= x >> np.uint64(33)
     return x
-
-
-def plain_shingle_hashes(piece, spec):
-    tokens = plain_melody_tokens(piece, spec).astype(np.uint64)
-    n = min(spec.ngram, len(tokens))
-    if n == 0:
-        return np.zeros(0, dtype=np.uint64)
-    count = len(tokens) - n + 1
-    h = np.full(count, np.uint64(n), dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for j in range(n):
-            h = h * shmod._ROLL + tokens[j:j + count]
-    out = np.unique(plain_fmix64(h))
-    return out[:spec.max_shingles] if len(out) > spec.max_shingles else out
 
 
 def plain_content_hash(piece):
@@ -510,7 +542,6 @@ def test_piece_stats(pieces):
                                   shmod.ShingleSpec(ngram=1, grid=2, max_shingles=50),
                                   shmod.ShingleSpec(ngram=9, grid=3, max_interval=5)])
 def test_shingles(pieces, spec):
-    _check(pieces, lambda p: shmod.melody_tokens(p, spec), lambda p: plain_melody_tokens(p, spec))
     _check(pieces, lambda p: shmod.shingle_hashes(p, spec),
            lambda p: plain_shingle_hashes(p, spec))
 

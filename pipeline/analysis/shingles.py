@@ -53,7 +53,10 @@ class ShingleSpec:
     """How shingles are cut. ``ngram``: tokens per shingle; ``grid``: onset steps per beat (the
     grid onsets are rounded to has twice as many, so a line at half time still fits);
     ``max_units``: onset gaps longer than this many units are one token; ``min_distinct``:
-    windows with at most this many distinct tokens are dropped (generic figures);
+    windows with at most this many distinct tokens are dropped (generic figures; at most
+    ``ngram - 2``, so short windows are all kept); ``pitch_extra``: pitch-only windows are this
+    many tokens longer; ``bass_below``: voices whose median pitch lies below it (the bass
+    register) make no line shingles;
     ``max_shingles``: at most this many shingles are kept (the smallest hashes, a consistent
     sample); ``kinds``: the line kinds emitted."""
 
@@ -209,7 +212,7 @@ def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
         for i in range(j):
             fresh &= tokens[j:j + count] != tokens[i:i + count]
         distinct += fresh
-    ok &= distinct > spec.min_distinct
+    ok &= distinct > min(spec.min_distinct, n - 2)  # short windows: no filter
     t = tokens.view(np.uint64)
     h = np.full(count, _seed(n, kind), dtype=np.uint64)
     for j in range(n):  # array arithmetic wraps modulo 2**64
