@@ -236,7 +236,18 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default=None, help="write the JSON result here")
     ap.add_argument("--work", default=None, help="keep (and reuse) the generated corpora here")
     ap.add_argument("--defaults-only", action="store_true", help="skip the extra settings")
+    ap.add_argument("--real", default=None, help="a real collection folder (with --labels): "
+                    "songs across parts, kept same-melody files, cross-song links, files/s")
+    ap.add_argument("--labels", default=None, help="labels.json of --real ({files: {path: {song}}})")
     a = ap.parse_args(argv)
+    if a.real:
+        from .bench_identity import evaluate, format_real, load_collection
+        recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
+        res = evaluate(recs)
+        if a.out:
+            Path(a.out).write_text(json.dumps(res, indent=1, default=str) + "\n")
+        print(format_real(res))
+        return 0
     res = run(tuple(int(x) for x in a.sizes.split(",")), a.out, a.seed,
               {} if a.defaults_only else None, a.work)
     print(format_table(res))

@@ -263,7 +263,13 @@ class Dedup(Stage):
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
         codes = index.candidate_codes(new_reps if reusable else None)
         n_candidates = len(codes)
-        self._generic = self._generic_shingles(indexed, arts)
+        # the generic shingles are counted once and kept while the links are reused (a rerun
+        # must not read every file's set; its new pairs are verified as the old ones were)
+        if reusable and "generic" in prev:
+            self._generic = np.array(prev["generic"], dtype=np.uint64)
+        else:
+            self._generic = self._generic_shingles(indexed, arts)
+        state.save("generic", self._generic.tolist())
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
