@@ -1084,103 +1084,6 @@ static PyObject *content_rows(PyObject *self, PyObject *const *args, Py_ssize_t 
     return out;
 }
 
-PyDoc_STRVAR(shingles_doc,
-"shingles(notes, ticks_per_beat, grid, max_ioi_steps, max_interval, ngram, max_shingles)\n"
-"    -> bytes | None\n\n"
-"shingles.shingle_hashes of a NOTE_DTYPE table (sorted unique uint64, little-endian bytes);\n"
-"None where melody_tokens would sort the onsets first.");
-
-static PyObject *shingles(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
-    (void)self;
-    if (nargs != 7) {
-        PyErr_SetString(PyExc_TypeError, "shingles takes 7 arguments");
-        return NULL;
-    }
-    int64_t v[6];
-    for (int k = 0; k < 6; k++) v[k] = PyLong_AsLongLong(args[k + 1]);
-    if (PyErr_Occurred()) return NULL;
-    int64_t tpb = v[0], grid = v[1], max_ioi = v[2], max_int = v[3], ngram = v[4], max_sh = v[5];
-    if (tpb <= 0 || tpb > ((int64_t)1 << 40) || grid <= 0 || grid > ((int64_t)1 << 20) || ngram <= 0
-        || max_sh < 0 || max_int < 0 || max_int > 1000000)
-        Py_RETURN_NONE;
-    Notes t;
-    if (notes_open(args[0], &t) < 0) return NULL;
-    PyObject *out = NULL;
-    int64_t *q = (int64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int64_t));
-    int *pi = (int *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int));
-    uint64_t *tok = (uint64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(uint64_t));
-    if (!q || !pi || !tok) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    Py_ssize_t m = 0;
-    int64_t mul = 2 * grid, div = 2 * tpb;
-    for (Py_ssize_t i = 0; i < t.n; i++) {
-        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
-        q[m] = floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_START), mul), tpb), div);
-        pi[m] = f_i16(&t, i, O_PITCH);
-        if (m && q[m] < q[m - 1]) { /* not in time order: numpy sorts first */
-            out = Py_None;
-            Py_INCREF(out);
-            goto done;
-        }
-        m++;
-    }
-    /* tokens: per onset after the first, skyline interval and capped grid step */
-    Py_ssize_t nt = 0;
-    if (m >= 2) {
-        int top_prev = 0, top = pi[0], have_prev = 0;
-        int64_t step = 0;
-        for (Py_ssize_t i = 1; i <= m; i++) {
-            if (i < m && q[i] == q[i - 1]) {
-                if (pi[i] > top) top = pi[i];
-                continue;
-            }
-            /* the onset group that ended at i - 1 has skyline ``top`` */
-            if (have_prev) {
-                int64_t iv = (int64_t)top - top_prev;
-                if (iv < -max_int) iv = -max_int;
-                if (iv > max_int) iv = max_int;
-                int64_t ioi = step < max_ioi ? step : max_ioi;
-                tok[nt++] = (uint64_t)((iv + 128) * 4096 + ioi);
-            }
-            if (i < m) {
-                step = q[i] - q[i - 1];
-                top_prev = top;
-                have_prev = 1;
-                top = pi[i];
-            }
-        }
-    }
-    Py_ssize_t n = ngram < nt ? (Py_ssize_t)ngram : nt;
-    if (n == 0) {
-        out = PyBytes_FromStringAndSize(NULL, 0);
-        goto done;
-    }
-    Py_ssize_t count = nt - n + 1;
-    uint64_t *h = (uint64_t *)q; /* reuse: count <= m */
-    for (Py_ssize_t i = 0; i < count; i++) {
-        uint64_t x = (uint64_t)n;
-        for (Py_ssize_t j = 0; j < n; j++) x = x * ROLL + tok[i + j];
-        h[i] = fmix64(x);
-    }
-    if (sort_u64(h, count) < 0) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    Py_ssize_t u = 0;
-    for (Py_ssize_t i = 0; i < count; i++)
-        if (i == 0 || h[i] != h[i - 1]) h[u++] = h[i];
-    if (u > max_sh) u = (Py_ssize_t)max_sh;
-    out = PyBytes_FromStringAndSize((const char *)h, u * 8);
-done:
-    PyMem_Free(q);
-    PyMem_Free(pi);
-    PyMem_Free(tok);
-    notes_release(&t);
-    return out;
-}
-
 PyDoc_STRVAR(pc_histogram_doc,
 "pc_histogram(notes, ticks_per_beat, bass_weight, final_weight, final_beats) -> bytes | None\n\n"
 "key.pitch_class_histogram of a NOTE_DTYPE table (12 float64, native bytes); None for notes\n"
@@ -2033,7 +1936,6 @@ static PyMethodDef methods[] = {
     {"add_reduce", (PyCFunction)(void (*)(void))py_sum, METH_FASTCALL,
      "add_reduce(float64 buffer) -> float: np.add.reduce's pairwise sum (for the tests)."},
     {"content_rows", (PyCFunction)(void (*)(void))content_rows, METH_FASTCALL, content_rows_doc},
-    {"shingles", (PyCFunction)(void (*)(void))shingles, METH_FASTCALL, shingles_doc},
     {"pc_histogram", (PyCFunction)(void (*)(void))pc_histogram, METH_FASTCALL, pc_histogram_doc},
     {"meter_accents", (PyCFunction)(void (*)(void))meter_accents, METH_FASTCALL, meter_accents_doc},
     {"note_stats", (PyCFunction)note_stats, METH_O, note_stats_doc},

@@ -21,7 +21,7 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from .analysis.shingles import ShingleSpec, content_hash, fmix64, shingle_hashes
+from .analysis.shingles import LEAD_LIMIT, ShingleSpec, content_hash, fmix64, shingle_hashes
 from .ledger import load_arrays
 from .score import Piece
 
@@ -147,11 +147,25 @@ def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = MIN_
 
     ``measure`` is ``"jaccard"`` or ``"containment"`` (intersection over the smaller set, used
     when the smaller set has at least ``min_size_ratio`` of the larger one's size and scores
-    higher: an excerpt of 80 % or more of a piece is contained in it). Sets cut at ``cap``
-    (smallest hashes kept) are compared on their common hash range (``overlap_counts``).
-    ``generic`` shingles (``generic_shingles``) are left out of both sets first.
+    higher: an excerpt, or a subset of the voices such as a melody-only file), of the whole
+    sets or, prefixed ``"lead "``, of their lead-voice parts (``lead_part``; counted when both
+    hold ``MIN_LEAD`` shingles), whichever is higher: a tune under a new accompaniment keeps
+    its lead. Sets cut at ``cap`` (smallest hashes kept) are compared on their common hash
+    range (``overlap_counts``). ``generic`` shingles (``generic_shingles``) are left out of
+    both sets first.
     """
     a, b = drop_generic(a, generic), drop_generic(b, generic)
+    best = _measure(a, b, min_size_ratio, cap)
+    la, lb = lead_part(a), lead_part(b)
+    if len(la) >= MIN_LEAD and len(lb) >= MIN_LEAD:
+        lead = _measure(la, lb, min_size_ratio, cap)
+        if lead[0] > best[0]:
+            return lead[0], "lead " + lead[1]
+    return best
+
+
+def _measure(a: np.ndarray, b: np.ndarray, min_size_ratio: float, cap: int) -> tuple[float, str]:
+    """Jaccard, or containment where ``set_similarity`` allows it, of two sorted sets."""
     if len(a) == 0 or len(b) == 0:
         return 0.0, "jaccard"
     inter, la, lb = overlap_counts(a, b, cap)
@@ -162,6 +176,15 @@ def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = MIN_
         if cont > jac:
             return float(cont), "containment"
     return float(jac), "jaccard"
+
+
+#: Fewest lead-voice shingles in each set for the leads to be compared on their own.
+MIN_LEAD = 16
+
+
+def lead_part(shingles: np.ndarray) -> np.ndarray:
+    """The lead voice's shingles of a sorted set: its prefix below ``LEAD_LIMIT`` (a view)."""
+    return shingles[:int(np.searchsorted(shingles, LEAD_LIMIT))]
 
 
 #: A shingle is generic when at least this share of the sampled files holds it, and at least
@@ -212,6 +235,19 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
     j = np.ascontiguousarray(j, dtype=np.int64)
     if not len(i):
         return np.zeros(0, dtype=np.float64)
+    sim = _pair_measure(sets, i, j, min_size_ratio, cap, compiled)
+    leads = [lead_part(np.asarray(x)) for x in sets]
+    sizes = np.array([len(x) for x in leads], dtype=np.int64)
+    both = np.flatnonzero((sizes[i] >= MIN_LEAD) & (sizes[j] >= MIN_LEAD))
+    if len(both):
+        lead = _pair_measure(leads, i[both], j[both], min_size_ratio, cap, compiled)
+        sim[both] = np.maximum(sim[both], lead)
+    return sim
+
+
+def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size_ratio: float,
+                  cap: int, compiled: bool) -> np.ndarray:
+    """``_measure`` of many pairs: counts in one compiled call (or ``overlap_counts``)."""
     kernel = _compiled("overlap_counts") if compiled else None
     if kernel is not None:
         counts = np.frombuffer(kernel(sets, i, j, int(cap)), dtype=np.int64).reshape(-1, 3)
@@ -373,34 +409,39 @@ class LSHIndex:
 
     def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
                         min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
-                        margin_sigmas: float = 4.0) -> np.ndarray:
-        """The candidate codes whose MinHash estimate leaves ``set_similarity`` a chance to
+                        margin_sigmas: float = 3.0) -> np.ndarray:
+        """The candidate codes whose MinHash estimates leave ``set_similarity`` a chance to
         reach ``threshold``; the rest need no exact comparison.
 
-        A pair can pass only if its Jaccard is at least ``threshold``, or, when containment
-        applies (smaller set >= ``min_size_ratio`` of the larger, size ratio ``p``), at least
-        ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard). The estimate (the
-        share of equal MinHash values) has standard deviation ``sqrt(J (1 - J) / num_perm)``
-        (Broder 1997); a pair is dropped only when its estimate lies more than
-        ``margin_sigmas`` of them below that bound. Pairs with a set cut at ``cap`` are always
-        kept (their exact comparison uses a sub-range, not the signed sets). ``set_sizes``
-        holds the shingle-set size of each id, in insertion order.
+        A pair can pass on the whole sets only if their Jaccard is at least ``threshold``, or,
+        when containment applies (smaller set >= ``min_size_ratio`` of the larger, size ratio
+        ``p``), at least ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard); on
+        the leads only if theirs is at least ``t / (2 - t)`` (containment ``t`` between leads
+        of one size). Each half of a signature (``signature_of``: leads, whole sets) estimates
+        its Jaccard with standard deviation ``sqrt(J (1 - J) / (num_perm / 2))`` (Broder
+        1997); a pair is dropped only when both estimates lie more than ``margin_sigmas`` of
+        them below their bounds. Pairs with a set cut at ``cap`` are always kept (their exact
+        comparison uses a sub-range, not the signed sets). ``set_sizes`` holds the
+        shingle-set size of each id, in insertion order.
 
-        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on,
-        while at the default threshold a real link has about 19 or more: most candidates of a
-        large corpus are unrelated pieces sharing one band, and this removes them without
-        touching their shingles."""
+        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on: most
+        candidates of a large corpus are unrelated pieces sharing one band, and this removes
+        most of them without touching their shingles."""
         n = len(self.ids)
         if not len(codes):
             return codes
         sig = self.matrix()
+        half = sig.shape[1] // 2
         sizes = np.asarray(set_sizes, dtype=np.float64)
         keep = np.empty(len(codes), dtype=bool)
         t = float(threshold)
+        lead_bound = t / (2.0 - t)
+        lead_floor = lead_bound - margin_sigmas * np.sqrt(max(lead_bound * (1 - lead_bound), 1e-4) / half)
         for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
             c = codes[lo:lo + PAIR_CHUNK]
             i, j = c // n, c % n
-            est = pair_estimates(sig, i, j)
+            est_lead = pair_estimates(sig[:, :half], i, j)
+            est = pair_estimates(sig[:, half:], i, j)
             si, sj = sizes[i], sizes[j]
             small, large = np.minimum(si, sj), np.maximum(si, sj)
             rho = small / np.maximum(large, 1.0)
@@ -408,8 +449,9 @@ class LSHIndex:
             if min_size_ratio < 1.0:
                 cont = small >= min_size_ratio * large
                 bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))
-            sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / sig.shape[1])
-            keep[lo:lo + len(c)] = (est >= bound - margin_sigmas * sd) | (large >= cap)
+            sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / half)
+            keep[lo:lo + len(c)] = ((est >= bound - margin_sigmas * sd) | (est_lead >= lead_floor)
+                                    | (large >= cap))
         return codes[keep]
 
 
@@ -430,6 +472,16 @@ def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
         hi = lo + PAIR_CHUNK
         est[lo:hi] = (sig[i[lo:hi]] == sig[j[lo:hi]]).mean(axis=1)
     return est
+
+
+def pair_estimates_halves(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """The larger of the MinHash estimates of each signature half (``signature_of``: the lead
+    voices' half and the whole sets' half) for the row pairs ``(i[k], j[k])``: a pair may
+    pass on its leads alone, so neither half may rule it out."""
+    half = sig.shape[1] // 2
+    if half < 1:
+        return pair_estimates(sig, i, j)
+    return np.maximum(pair_estimates(sig[:, :half], i, j), pair_estimates(sig[:, half:], i, j))
 
 
 def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
@@ -654,14 +706,24 @@ def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], t
 
 def signature_of(piece: Piece, opts: dict[str, Any] | None = None
                  ) -> tuple[np.ndarray, np.ndarray, str]:
-    """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece.
+    """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece: the one
+    entry point for a file's identity artifacts (dedup's ``prepare``, the split, ``leakage``).
 
-    ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and ``max_shingles``.
+    The signature's second half is the MinHash of the whole set; its first half the MinHash
+    (``num_perm // 2`` permutations) of the lead voice's part (``lead_part``) when that holds
+    ``MIN_LEAD`` shingles, else of the whole set too. LSH bands over the first half so find
+    files sharing a lead under different accompaniments; ``pair_estimates_halves`` reads
+    each half on its own. ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and
+    ``max_shingles``.
     """
     o = opts or {}
     spec = ShingleSpec(ngram=int(o.get("ngram", ShingleSpec.ngram)),
                        grid=int(o.get("grid", ShingleSpec.grid)),
                        max_shingles=int(o.get("max_shingles", ShingleSpec.max_shingles)))
     sh = shingle_hashes(piece, spec)
-    sig = minhash(sh, int(o.get("num_perm", 128)), int(o.get("seed", 1)))
+    num_perm, seed = int(o.get("num_perm", 128)), int(o.get("seed", 1))
+    sig = minhash(sh, num_perm, seed)
+    lead = lead_part(sh)
+    if len(lead) >= MIN_LEAD:
+        sig[:num_perm // 2] = minhash(lead, num_perm // 2, seed)
     return sig, sh, content_hash(piece)

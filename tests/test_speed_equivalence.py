@@ -15,6 +15,7 @@ tests; ``test_minhash_layouts_equal_datasketch`` repeats datasketch at the sizes
 """
 from __future__ import annotations
 
+import re
 from collections import Counter
 
 import dataclasses
@@ -290,25 +291,33 @@ def plain_shingle_hashes(piece, spec):
         if n["channel"] == DRUM_CHANNEL:
             continue
         voices.setdefault(int(n["track"]) * 16 + int(n["channel"]), []).append((q, int(n["pitch"])))
-    hashes, first_line = [], None
-    pitch_hashes = []
-    for v in sorted(voices):
-        pitches = sorted(p for _, p in voices[v])
-        if pitches[(len(pitches) - 1) // 2] < spec.bass_below:
-            continue
+    stats = {}
+    for v, onsets in voices.items():
+        pitches = sorted(p for _, p in onsets)
+        stats[v] = (pitches[(len(pitches) - 1) // 2], len(onsets), len({q for q, _ in onsets}))
+    upper = [v for v in sorted(voices) if stats[v][0] >= spec.bass_below]
+    lead = plain_lead_voice(upper, stats, piece.track_names, spec)
+    hashes, first_line, pitch_hashes, lead_hashes = [], None, [], []
+    for v in upper:
         toks = plain_line_tokens(voices[v], spec)
         if toks and first_line is None:
             first_line = toks
         hashes += plain_window_hashes(toks, spec.ngram, "line", spec)
         moved = [t // 4096 for t in toks if t // 4096 != 128]
         pitch_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "pitch", spec)
+        if v == lead:
+            lead_hashes += plain_window_hashes(toks, spec.ngram, "lead", spec)
+            lead_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "lead_pitch", spec)
     if not hashes and first_line:
         w = first_line[:spec.ngram]
         hashes = plain_window_hashes(w, len(w), "line", spec, keep_all=True)
     hashes += pitch_hashes
-    if not hashes:
+    top = 1 << 63
+    out = [int(h) | top for h in plain_fmix64(np.array(hashes, dtype=np.uint64))]
+    out += [int(h) & (top - 1) for h in plain_fmix64(np.array(lead_hashes, dtype=np.uint64))]
+    if not out:
         return np.zeros(0, dtype=np.uint64)
-    out = np.unique(plain_fmix64(np.array(hashes, dtype=np.uint64)))
+    out = np.unique(np.array(out, dtype=np.uint64))
     return out[:spec.max_shingles] if len(out) > spec.max_shingles else out
 
 
@@ -321,6 +330,22 @@ def plain_fmix64(x):
         x *= shmod._MIX2
         x ^= x >> np.uint64(33)
     return x
+
+
+def plain_lead_voice(upper, stats, track_names, spec):
+    """The lead voice by the rules of shingles.lead_voice, written out voice by voice."""
+    cand = [v for v in upper if stats[v][2] > spec.ngram]
+    for t, name in enumerate(track_names):
+        words = set(re.findall(r"[a-z]+", name.casefold()))
+        named = [v for v in cand if v // 16 == t]
+        if words & set(shmod.LEAD_NAMES) and named:
+            return max(named, key=lambda v: (stats[v][2], -v))
+    mono = [v for v in cand if stats[v][2] >= spec.lead_monophony * stats[v][1]]
+    if not mono:
+        return None
+    busiest = max(stats[v][2] for v in mono)
+    busy = [v for v in mono if 2 * stats[v][2] >= busiest]
+    return min(busy, key=lambda v: (-stats[v][0], -stats[v][2], v))
 
 
 def plain_content_hash(piece):
@@ -552,8 +577,18 @@ def test_content_hash_and_signature(pieces):
         spec = shmod.ShingleSpec(ngram=int(opts.get("ngram", 4)), grid=int(opts.get("grid", 4)))
         num_perm, seed = int(opts.get("num_perm", 128)), int(opts.get("seed", 1))
         _check(pieces, lambda p: signature_of(p, opts),
-               lambda p: (plain_minhash(plain_shingle_hashes(p, spec), num_perm, seed),
+               lambda p: (plain_signature(plain_shingle_hashes(p, spec), num_perm, seed),
                           plain_shingle_hashes(p, spec), plain_content_hash(p)))
+
+
+def plain_signature(shingles, num_perm, seed):
+    """signature_of's layout: the whole set's MinHash, its first half replaced by the lead
+    voice's (the shingles below 2**63) when it has 16 or more."""
+    sig = plain_minhash(shingles, num_perm, seed)
+    lead = shingles[shingles < np.uint64(1 << 63)]
+    if len(lead) >= 16:
+        sig[:num_perm // 2] = plain_minhash(lead, num_perm // 2, seed)
+    return sig
 
 
 def test_fmix64_keeps_shape_and_input():

@@ -32,6 +32,7 @@ format hash equal.
 from __future__ import annotations
 
 import hashlib
+import re
 import sys
 from dataclasses import dataclass
 
@@ -67,12 +68,17 @@ class ShingleSpec:
     min_distinct: int = 2
     pitch_extra: int = 2
     bass_below: int = 48
+    lead_monophony: float = 0.9
     max_shingles: int = 4096
-    kinds: tuple[str, ...] = ("line", "pitch")
+    kinds: tuple[str, ...] = ("line", "pitch", "lead")
 
 
 #: Tag of each kind, mixed into its shingles' hashes so kinds never match each other.
-KIND_TAGS = {"line": 1, "bass": 2, "harmony": 3, "top": 4, "pitch": 5}
+KIND_TAGS = {"line": 1, "bass": 2, "harmony": 3, "top": 4, "pitch": 5, "lead": 6, "lead_pitch": 7}
+#: Shingles of the lead voice (also present as ordinary line shingles) are marked by a clear top
+#: bit, every other shingle by a set one: a sorted set holds the lead's copies first, so a
+#: comparison of the leads alone reads a prefix of each set (``similarity.lead_part``).
+LEAD_LIMIT = np.uint64(1 << 63)
 #: A held note counts in at most this many beats of the harmony (memory: long pads).
 _HELD_BEATS = 4
 
@@ -185,16 +191,55 @@ def harmony_tokens(q_start: np.ndarray, q_end: np.ndarray, pitch: np.ndarray, st
     return mask[1:] * 16 + (bass[1:] - bass[:-1]) % 12
 
 
-def _bass_voices(voice: np.ndarray, pitch: np.ndarray, below: int) -> np.ndarray:
-    """The voices whose median pitch lies below ``below`` (the bass register)."""
+def voice_stats(voice: np.ndarray, q: np.ndarray, pitch: np.ndarray) -> dict[str, np.ndarray]:
+    """Per voice (sorted ids): ``voice``, ``median`` pitch (the lower middle note), ``notes``
+    and ``onsets`` (distinct grid steps)."""
     if not len(voice):
-        return voice
+        z = np.zeros(0, dtype=np.int64)
+        return {"voice": z, "median": z, "notes": z, "onsets": z}
     order = np.lexsort((pitch, voice))
     v, p = voice[order], pitch[order]
     start = np.flatnonzero(np.concatenate(([True], v[1:] != v[:-1])))
     size = np.diff(np.append(start, len(v)))
-    median = p[start + (size - 1) // 2]
-    return v[start][median < below]
+    order = np.lexsort((q, voice))
+    v2, q2 = voice[order], q[order]
+    onset = np.concatenate(([True], (v2[1:] != v2[:-1]) | (q2[1:] != q2[:-1])))
+    onsets = np.add.reduceat(onset.astype(np.int64), start)
+    return {"voice": v[start], "median": p[start + (size - 1) // 2].astype(np.int64),
+            "notes": size, "onsets": onsets}
+
+
+#: Words of a track name that mark the tune's track (common practice in MIDI files, e.g.
+#: "Melody", "Lead Vocal", "Soprano"); matched as whole words, casefolded.
+LEAD_NAMES = ("melody", "melodie", "lead", "vocal", "vocals", "voice", "soprano")
+
+
+def lead_voice(stats: dict[str, np.ndarray], spec: ShingleSpec,
+               track_names: tuple[str, ...] = ()) -> int | None:
+    """The voice that carries the tune, or None.
+
+    A track named like the tune's (``LEAD_NAMES``) wins when one of its voices has more than
+    ``ngram`` onsets (the first such track; its busiest voice). Otherwise: among the voices
+    above the bass register that are nearly monophonic (at least ``lead_monophony`` of their
+    notes start alone) and have at least half the onsets of the busiest such voice, the highest
+    (by median pitch; then more onsets, then the smaller id): the melody-on-top rule (common
+    practice, the "skyline"), applied to whole voices so an accompaniment rising above the
+    tune now and then does not take over."""
+    ok = (stats["median"] >= spec.bass_below) & (stats["onsets"] > spec.ngram)
+    if not ok.any():
+        return None
+    for t, name in enumerate(track_names):
+        if set(re.findall(r"[a-z]+", name.casefold())) & set(LEAD_NAMES):
+            mine = np.flatnonzero(ok & (stats["voice"] // 16 == t))
+            if len(mine):
+                return int(stats["voice"][mine[np.argmax(stats["onsets"][mine])]])
+    ok &= stats["onsets"] >= spec.lead_monophony * stats["notes"]
+    if not ok.any():
+        return None
+    ok &= 2 * stats["onsets"] >= stats["onsets"][ok].max()
+    idx = np.flatnonzero(ok)
+    best = idx[np.lexsort((stats["voice"][idx], -stats["onsets"][idx], -stats["median"][idx]))[0]]
+    return int(stats["voice"][best])
 
 
 def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
@@ -239,15 +284,17 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     steps = 2 * spec.grid
     q = _grid(notes["start"], tpb, steps)
     pitch = notes["pitch"]
-    parts = []
+    parts, lead_parts = [], []
     if "line" in spec.kinds:
         voice = notes["track"].astype(np.int64) * 16 + notes["channel"]
-        low = _bass_voices(voice, pitch, spec.bass_below)
-        if len(low):
-            upper = ~np.isin(voice, low)
-            tok, line = line_tokens(q[upper], pitch[upper], voice[upper], spec)
+        stats = voice_stats(voice, q, pitch)
+        upper = stats["median"] >= spec.bass_below
+        if not upper.all():
+            keep = np.isin(voice, stats["voice"][upper])
+            q_l, p_l, v_l = q[keep], pitch[keep], voice[keep]
         else:
-            tok, line = line_tokens(q, pitch, voice, spec)
+            q_l, p_l, v_l = q, pitch, voice
+        tok, line = line_tokens(q_l, p_l, v_l, spec)
         parts.append(_windows(tok, line, "line", spec))
         if not len(parts[-1]) and len(tok):  # every line shorter than ngram: one shingle
             t = tok[line == line[0]][:spec.ngram].view(np.uint64)
@@ -256,10 +303,17 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
                 h *= _ROLL
                 h += x
             parts[-1] = h
+        interval = tok // 4096
+        moved = interval != 128
         if "pitch" in spec.kinds:
-            interval = tok // 4096
-            moved = interval != 128
             parts.append(_windows(interval[moved], line[moved], "pitch", spec, spec.ngram + spec.pitch_extra))
+        lead = lead_voice(stats, spec, tuple(piece.track_names))
+        if lead is not None and "lead" in spec.kinds:
+            mine = line == lead
+            lead_parts.append(_windows(tok[mine], line[mine], "lead", spec))
+            mine &= moved
+            lead_parts.append(_windows(interval[mine], line[mine], "lead_pitch", spec,
+                                       spec.ngram + spec.pitch_extra))
     zero = np.zeros(len(q), dtype=np.int64)
     if "top" in spec.kinds:
         tok, line = line_tokens(q, pitch, zero, spec)
@@ -271,9 +325,14 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
         tok = harmony_tokens(q, _grid(notes["end"], tpb, steps), pitch, steps)
         parts.append(_windows(tok, np.zeros(len(tok), dtype=np.int64), "harmony", spec))
     h = np.concatenate(parts) if parts else np.zeros(0, dtype=np.uint64)
+    h = _fmix64_inplace(h)
+    h |= LEAD_LIMIT  # the lead's copies take the lower half of the hash range
+    if lead_parts:
+        lead_h = _fmix64_inplace(np.concatenate(lead_parts))
+        lead_h &= ~LEAD_LIMIT
+        h = np.concatenate((lead_h, h))
     if not len(h):
         return h
-    h = _fmix64_inplace(h)
     h.sort()  # np.unique: sorted, then the first of each run of equal values
     if len(h) > 1:
         keep = np.empty(len(h), dtype=bool)
