@@ -238,3 +238,86 @@ def format_real(res: dict[str, Any]) -> str:
         lines.append(f"  {c['kind']}: {c['a']} ~ {c['b']} similarity {c['similarity']:.3f}, "
                      f"melody-track similarity {c['melody_similarity']:.3f}")
     return "\n".join(lines)
+
+
+# --- music21's Bach chorales --------------------------------------------------------------------
+
+#: Soprano similarity (aligned intervals) from which two chorales carry the same tune, and
+#: below which they carry different tunes (between the two: variants, counted in neither).
+SAME_TUNE, OTHER_TUNE = 0.8, 0.5
+
+
+def render_chorales(cache: Path | None = None) -> list[dict[str, Any]]:
+    """Every ``bach/bwv*`` chorale of music21's corpus as MIDI bytes (one track per part,
+    named by music21) with its soprano's pitch intervals; cached as JSON in ``cache``."""
+    import base64
+    if cache is not None and Path(cache).exists():
+        return [dict(r, midi=base64.b64decode(r["midi"])) for r in json.loads(Path(cache).read_text())]
+    from music21 import corpus, midi
+    out = []
+    for path in sorted(p for p in corpus.getComposer("bach") if p.name.startswith("bwv")):
+        score = corpus.parse(str(path))
+        sop = [p for p in score.parts if (p.partName or "").lower().startswith("soprano")]
+        if not sop:
+            continue
+        pitches = [max(x.pitches).midi for x in sop[0].flatten().notes]
+        data = midi.translate.streamToMidiFile(score).writestr()
+        out.append({"name": path.name, "midi": data,
+                    "soprano": [b - a for a, b in zip(pitches, pitches[1:])]})
+    if cache is not None:
+        Path(cache).write_text(json.dumps([dict(r, midi=base64.b64encode(r["midi"]).decode())
+                                           for r in out]))
+    return out
+
+
+def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
+                  group_threshold: float = 0.2) -> dict[str, Any]:
+    """Pairs of chorales with one tune (soprano similarity >= ``SAME_TUNE``) linked by dedup
+    (its clusters) and at ``group_threshold``; every linked pair of different tunes (soprano
+    similarity < ``OTHER_TUNE``) listed."""
+    import hashlib
+    from .grouping import near_links
+    from .smf import decode
+    from .stages.dedup import Dedup
+    recs = []
+    for w in works:
+        sha = hashlib.sha256(w["midi"]).hexdigest()
+        recs.append({"rel": w["name"], "sha256": sha, "id": sha[:16], "piece": decode(w["midi"]),
+                     "soprano": w["soprano"]})
+    stage = Dedup(dedup_opts or {})
+    members = [Member(r["id"], r["sha256"], r["rel"], {},
+                      {"dedup": stage.prepare(r["piece"], FileContext(r["piece"], r["rel"], r["sha256"]))})
+               for r in recs]
+    res = stage.run_corpus(members, CorpusState())
+    cluster = {k: v.values["cluster"] for k, v in res.items()}
+    arts = {m.id: m.artifacts["dedup"] for m in members}
+    low = near_links({k: a["signature"] for k, a in arts.items()}, group_threshold,
+                     {k: a["shingles"] for k, a in arts.items()})
+    low_pairs = {(min(a, b), max(a, b)): s for a, b, s in low}
+    by_id = {r["id"]: r for r in recs}
+    same, same_linked, same_grouped, wrong = 0, 0, 0, []
+    for a, b in combinations(sorted(by_id), 2):
+        ms = melody_similarity(by_id[a]["soprano"], by_id[b]["soprano"])
+        linked = cluster[a] == cluster[b]
+        grouped = (a, b) in low_pairs
+        if ms >= SAME_TUNE:
+            same += 1
+            same_linked += linked
+            same_grouped += grouped or linked
+        elif ms < OTHER_TUNE and (linked or grouped):
+            wrong.append({"a": by_id[a]["rel"], "b": by_id[b]["rel"], "soprano_similarity": round(ms, 3),
+                          "kind": "dedup cluster" if linked else f"link at {group_threshold}",
+                          "similarity": round(low_pairs.get((a, b), 0.0), 3)})
+    return {"chorales": len(recs), "same_tune_pairs": same, "same_tune_linked_by_dedup": same_linked,
+            "same_tune_linked_at_group_threshold": same_grouped, "different_tunes_linked": wrong}
+
+
+def format_chorales(res: dict[str, Any]) -> str:
+    lines = [f"{res['chorales']} chorales; {res['same_tune_pairs']} pairs with one tune (soprano "
+             f"similarity >= {SAME_TUNE}): {res['same_tune_linked_by_dedup']} in one dedup cluster, "
+             f"{res['same_tune_linked_at_group_threshold']} linked at the split's threshold",
+             f"pairs of different tunes (soprano similarity < {OTHER_TUNE}) linked: "
+             f"{len(res['different_tunes_linked'])}"]
+    lines += [f"  {w['kind']}: {w['a']} ~ {w['b']} similarity {w['similarity']}, soprano "
+              f"{w['soprano_similarity']}" for w in res["different_tunes_linked"]]
+    return "\n".join(lines)

@@ -212,3 +212,37 @@ def test_generic_shingles_are_those_many_files_hold():
     # with the generic shingles left out, two of the tunes share (next to) nothing
     assert set_similarity(sets[0], sets[1], generic=generic)[0] < 0.1
     assert set_similarity(sets[0], sets[0], generic=generic)[0] == 1.0
+
+
+def _lead_of(rows, names=()) -> int | None:
+    from pipeline.analysis.shingles import _grid, lead_voice, voice_stats
+    p = make_piece(rows)
+    n = p.notes
+    stats = voice_stats(n["track"].astype(np.int64) * 16 + n["channel"], _grid(n["start"], TPB, 8), n["pitch"])
+    return lead_voice(stats, ShingleSpec(), tuple(names))
+
+
+def test_lead_voice_is_the_named_track_else_the_highest_busy_single_line():
+    tune_rows = melody(51)
+    bars = bars_of(tune_rows)
+    # a higher single line (a descant) with as many onsets would be taken by the register
+    # rule; a track named like the tune's wins (common practice: "Melody", "Lead Vocal")
+    descant = [(s, e, p + 12, 4, 73, 3, 60) for s, e, p, *_ in melody(52)]
+    rows = tune_rows + comping(8, bars) + descant
+    assert _lead_of(rows) == 3 * 16 + 4
+    assert _lead_of(rows, ("MELODY", "Piano", "", "Descant")) == 0
+    # chords (several notes per onset) are never the lead; a sparse high fill is not either
+    fill = [(s, e, 96, 5, 0, 4, 60) for s, e, *_ in tune_rows[::8]]
+    assert _lead_of(tune_rows + comping(8, bars) + fill) == 0
+    assert _lead_of(comping(8, bars)) is None
+
+
+def test_lead_voices_are_compared_on_their_own():
+    # the same tune, one arrangement with a busy second accompaniment: the whole sets share
+    # little, the leads everything (measure "lead ...")
+    tune_rows = melody(61)
+    bars = bars_of(tune_rows)
+    one = tune_rows + comping(1, bars) + comping(9, bars, channel=4, track=3)
+    other = tune_rows + comping(2, bars, channel=3, track=2)
+    value, measure = set_similarity(shingle_hashes(make_piece(one)), shingle_hashes(make_piece(other)))
+    assert measure.startswith("lead") and value == 1.0
