@@ -242,8 +242,9 @@ def format_real(res: dict[str, Any]) -> str:
 
 # --- music21's Bach chorales --------------------------------------------------------------------
 
-#: Soprano similarity (aligned intervals) from which two chorales carry the same tune, and
-#: below which they carry different tunes (between the two: variants, counted in neither).
+#: Soprano similarity (aligned beat-to-beat moves, ``soprano_beats``) from which two chorales
+#: carry the same tune, and below which they carry different tunes (between: counted in
+#: neither, listed when linked).
 SAME_TUNE, OTHER_TUNE = 0.8, 0.5
 
 
@@ -270,6 +271,26 @@ def render_chorales(cache: Path | None = None) -> list[dict[str, Any]]:
     return out
 
 
+def soprano_beats(piece: Any) -> list[int]:
+    """The soprano's moves from beat to beat: the pitch sounding at each quarter-note beat of
+    the track named Soprano, successive differences, repeated pitches left out (passing and
+    neighbour notes between beats, which harmonizations of one tune vary, are not seen)."""
+    names = [n.strip().lower() for n in piece.track_names]
+    tracks = [t for t, name in enumerate(names) if name.startswith("soprano")]
+    if not tracks:
+        return []
+    n = piece.notes[piece.notes["track"] == tracks[0]]
+    if not len(n):
+        return []
+    tpb = piece.ticks_per_beat
+    beats = np.arange(0, int(n["end"].max()), tpb)
+    idx = np.searchsorted(n["start"], beats, side="right") - 1
+    ok = (idx >= 0) & (n["end"][np.maximum(idx, 0)] > beats)
+    pitches = n["pitch"][idx[ok]].astype(int)
+    moves = np.diff(pitches)
+    return moves[moves != 0].tolist()
+
+
 def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
                   group_threshold: float = 0.2) -> dict[str, Any]:
     """Pairs of chorales with one tune (soprano similarity >= ``SAME_TUNE``) linked by dedup
@@ -282,8 +303,9 @@ def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
     recs = []
     for w in works:
         sha = hashlib.sha256(w["midi"]).hexdigest()
-        recs.append({"rel": w["name"], "sha256": sha, "id": sha[:16], "piece": decode(w["midi"]),
-                     "soprano": w["soprano"]})
+        piece = decode(w["midi"])
+        recs.append({"rel": w["name"], "sha256": sha, "id": sha[:16], "piece": piece,
+                     "soprano": soprano_beats(piece)})
     stage = Dedup(dedup_opts or {})
     members = [Member(r["id"], r["sha256"], r["rel"], {},
                       {"dedup": stage.prepare(r["piece"], FileContext(r["piece"], r["rel"], r["sha256"]))})
@@ -296,7 +318,8 @@ def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
     low_pairs = {(min(a, b), max(a, b)): s for a, b, s in low}
     by_id = {r["id"]: r for r in recs}
     same, same_linked, same_grouped, wrong = 0, 0, 0, []
-    for a, b in combinations(sorted(by_id), 2):
+    known = sorted(k for k, r in by_id.items() if r["soprano"])  # a soprano part was found
+    for a, b in combinations(known, 2):
         ms = melody_similarity(by_id[a]["soprano"], by_id[b]["soprano"])
         linked = cluster[a] == cluster[b]
         grouped = (a, b) in low_pairs
@@ -308,12 +331,13 @@ def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
             wrong.append({"a": by_id[a]["rel"], "b": by_id[b]["rel"], "soprano_similarity": round(ms, 3),
                           "kind": "dedup cluster" if linked else f"link at {group_threshold}",
                           "similarity": round(low_pairs.get((a, b), 0.0), 3)})
-    return {"chorales": len(recs), "same_tune_pairs": same, "same_tune_linked_by_dedup": same_linked,
+    return {"chorales": len(recs), "with_soprano": len(known), "same_tune_pairs": same, "same_tune_linked_by_dedup": same_linked,
             "same_tune_linked_at_group_threshold": same_grouped, "different_tunes_linked": wrong}
 
 
 def format_chorales(res: dict[str, Any]) -> str:
-    lines = [f"{res['chorales']} chorales; {res['same_tune_pairs']} pairs with one tune (soprano "
+    lines = [f"{res['chorales']} chorales ({res['with_soprano']} with a part named Soprano, "
+             f"compared); {res['same_tune_pairs']} pairs with one tune (soprano "
              f"similarity >= {SAME_TUNE}): {res['same_tune_linked_by_dedup']} in one dedup cluster, "
              f"{res['same_tune_linked_at_group_threshold']} linked at the split's threshold",
              f"pairs of different tunes (soprano similarity < {OTHER_TUNE}) linked: "

@@ -158,28 +158,33 @@ def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = MIN_
     best = _measure(a, b, min_size_ratio, cap)
     la, lb = lead_part(a), lead_part(b)
     if len(la) >= MIN_LEAD and len(lb) >= MIN_LEAD:
-        lead = _measure(la, lb, min_size_ratio, cap)
+        lead = _measure(la, lb, min_size_ratio, cap, LEAD_CONTAINED)
         if lead[0] > best[0]:
             return lead[0], "lead " + lead[1]
     return best
 
 
-def _measure(a: np.ndarray, b: np.ndarray, min_size_ratio: float, cap: int) -> tuple[float, str]:
-    """Jaccard, or containment where ``set_similarity`` allows it, of two sorted sets."""
+def _measure(a: np.ndarray, b: np.ndarray, min_size_ratio: float, cap: int,
+             min_contained: int = 0) -> tuple[float, str]:
+    """Jaccard, or containment where ``set_similarity`` allows it (and the smaller set holds
+    ``min_contained`` shingles or more), of two sorted sets."""
     if len(a) == 0 or len(b) == 0:
         return 0.0, "jaccard"
     inter, la, lb = overlap_counts(a, b, cap)
     jac = inter / (la + lb - inter)
     small, large = min(la, lb), max(la, lb)
-    if min_size_ratio < 1.0 and small >= min_size_ratio * large:
+    if min_size_ratio < 1.0 and small >= min_size_ratio * large and small >= min_contained:
         cont = inter / small
         if cont > jac:
             return float(cont), "containment"
     return float(jac), "jaccard"
 
 
-#: Fewest lead-voice shingles in each set for the leads to be compared on their own.
+#: Fewest lead-voice shingles in each set for the leads to be compared on their own, and in
+#: the smaller lead for containment to count there (below it, Jaccard only): a short tune is
+#: "contained" by chance in another of the same idiom (hymn tunes: steps, cadence formulas).
 MIN_LEAD = 16
+LEAD_CONTAINED = 64
 
 
 def lead_part(shingles: np.ndarray) -> np.ndarray:
@@ -240,13 +245,13 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
     sizes = np.array([len(x) for x in leads], dtype=np.int64)
     both = np.flatnonzero((sizes[i] >= MIN_LEAD) & (sizes[j] >= MIN_LEAD))
     if len(both):
-        lead = _pair_measure(leads, i[both], j[both], min_size_ratio, cap, compiled)
+        lead = _pair_measure(leads, i[both], j[both], min_size_ratio, cap, compiled, LEAD_CONTAINED)
         sim[both] = np.maximum(sim[both], lead)
     return sim
 
 
 def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size_ratio: float,
-                  cap: int, compiled: bool) -> np.ndarray:
+                  cap: int, compiled: bool, min_contained: int = 0) -> np.ndarray:
     """``_measure`` of many pairs: counts in one compiled call (or ``overlap_counts``)."""
     kernel = _compiled("overlap_counts") if compiled else None
     if kernel is not None:
@@ -261,7 +266,8 @@ def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size
         if min_size_ratio < 1.0:
             small, large = np.minimum(la, lb), np.maximum(la, lb)
             cont = np.where(small > 0, inter / np.maximum(small, 1), 0.0)
-            sim = np.where((small >= min_size_ratio * large) & (cont > sim), cont, sim)
+            sim = np.where((small >= min_size_ratio * large) & (small >= min_contained) & (cont > sim),
+                           cont, sim)
     return sim
 
 

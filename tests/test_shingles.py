@@ -4,8 +4,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.analysis.shingles import (ShingleSpec, content_hash, duration_beats, line_tokens,
-                                        shingle_hashes)
+from pipeline.analysis.shingles import (RATIO_FIRST, ShingleSpec, content_hash, duration_beats,
+                                        line_tokens, ratio_class, shingle_hashes)
 from pipeline.similarity import drop_generic, generic_shingles, set_similarity
 from pipeline.score import DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes, ticks_to_seconds
 
@@ -77,17 +77,17 @@ def test_small_jitter_is_absorbed_by_the_grid():
     assert np.array_equal(shingle_hashes(make_piece(rows)), shingle_hashes(make_piece(jit)))
 
 
-def test_tokens_follow_each_voice_top_note_interval_and_gap_in_units():
+def test_tokens_follow_each_voice_top_note_interval_and_gap_ratio():
     # voice 0: C5 quarter, E5 eighth (a chord below it in voice 1), D5: intervals +4, -2; onset
-    # gaps 8 and 4 steps of 1/8 beat; the line's unit (most common gap, ties to the shorter) is
-    # 4 steps, so the gaps are 8 and 4 quarters of a unit. Voice 1 has one onset: no token.
+    # gaps 8 and 4 steps of 1/8 beat: the first gap has no previous one (RATIO_FIRST), the
+    # second is half the first, -2 half octaves (stored + 16). Voice 1 has one onset: no token.
     rows = [(0, 480, 72, 0, 0, 0, 90), (480, 720, 76, 0, 0, 0, 90), (480, 960, 60, 1, 0, 1, 90),
             (720, 960, 74, 0, 0, 0, 90)]
     p = make_piece(rows)
     n = p.notes
     q = (n["start"] * 16 + 480) // 960
     tok, line = line_tokens(q, n["pitch"], n["track"].astype(np.int64) * 16 + n["channel"], ShingleSpec())
-    assert tok.tolist() == [(4 + 128) * 4096 + 8, (-2 + 128) * 4096 + 4]
+    assert tok.tolist() == [(4 + 128) * 4096 + RATIO_FIRST, (-2 + 128) * 4096 + 14]
     assert line.tolist() == [0, 0]
 
 
@@ -246,3 +246,12 @@ def test_lead_voices_are_compared_on_their_own():
     other = tune_rows + comping(2, bars, channel=3, track=2)
     value, measure = set_similarity(shingle_hashes(make_piece(one)), shingle_hashes(make_piece(other)))
     assert measure.startswith("lead") and value == 1.0
+
+
+def test_gap_ratio_classes_are_rounded_half_octaves():
+    # round(2 log2 r): 1 -> 0, 2 -> 2, 1/2 -> -2, 3 -> 3 (3.17), 3/2 -> 1 (1.17), 4/3 -> 1 (0.83),
+    # 3/4 -> -1, 8 -> 6, 100 -> 6 (clipped), 1/100 -> -6 (Python's math.log2 as the reference)
+    import math
+    ratios = np.array([1, 2, 0.5, 3, 1.5, 4 / 3, 0.75, 8, 100, 0.01])
+    want = [max(-6, min(6, round(2 * math.log2(r)))) for r in ratios]
+    assert ratio_class(ratios, 6).tolist() == want

@@ -127,15 +127,16 @@ def _python_set_similarity(a: np.ndarray, b: np.ndarray, cap: int, ratio: float)
     """Reference: Jaccard |A & B| / |A | B| and containment |A & B| / min(|A|, |B|) with
     Python's built-in sets (a general-purpose implementation, not ours), on the common hash
     range when a set was cut at ``cap``; containment only for sizes within ``ratio``. The same
-    measure of the lead parts (values below 2**63) counts too when both hold 16 or more."""
+    measure of the lead parts (values below 2**63) counts too when both hold 16 or more
+    (containment there only from 64 in the smaller)."""
     whole = _python_measure({int(x) for x in a}, {int(x) for x in b}, cap, ratio)
     A, B = {int(x) for x in a if int(x) < 1 << 63}, {int(x) for x in b if int(x) < 1 << 63}
     if len(A) >= 16 and len(B) >= 16:
-        return max(whole, _python_measure(A, B, cap, ratio))
+        return max(whole, _python_measure(A, B, cap, ratio, 64))
     return whole
 
 
-def _python_measure(A: set, B: set, cap: int, ratio: float) -> float:
+def _python_measure(A: set, B: set, cap: int, ratio: float, min_contained: int = 0) -> float:
     if not A or not B:
         return 0.0
     if len(A) >= cap or len(B) >= cap:
@@ -144,7 +145,7 @@ def _python_measure(A: set, B: set, cap: int, ratio: float) -> float:
     inter = len(A & B)
     jac = inter / len(A | B)
     small, large = min(len(A), len(B)), max(len(A), len(B))
-    if ratio < 1.0 and small >= ratio * large and inter / small > jac:
+    if ratio < 1.0 and small >= ratio * large and small >= min_contained and inter / small > jac:
         return inter / small
     return jac
 

@@ -256,13 +256,18 @@ def plain_line_tokens(onsets, spec):
     steps = [b - a for a, b in zip(keys, keys[1:])]
     if not steps:
         return []
-    counts = Counter(steps)
-    unit = min(x for x in counts if counts[x] == max(counts.values()))
     out = []
     for k in range(1, len(keys)):
         interval = max(-spec.max_interval, min(spec.max_interval, top[keys[k]] - top[keys[k - 1]]))
-        gap = min((8 * steps[k - 1] + unit) // (2 * unit), 4 * spec.max_units)
-        out.append((interval + 128) * 4096 + gap)
+        if k == 1:
+            rhythm = shmod.RATIO_FIRST
+        else:  # round(2 log2(ratio)) by the class boundaries 2 ** ((c + 0.5) / 2)
+            ratio = float(steps[k - 1]) / float(steps[k - 2])  # as float64s, as numpy divides
+            c = -spec.max_ratio
+            while c < spec.max_ratio and ratio >= 2.0 ** ((c + 0.5) / 2):
+                c += 1
+            rhythm = c + 16
+        out.append((interval + 128) * 4096 + rhythm)
     return out
 
 
@@ -307,7 +312,6 @@ def plain_shingle_hashes(piece, spec):
         pitch_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "pitch", spec)
         if v == lead:
             lead_hashes += plain_window_hashes(toks, spec.ngram, "lead", spec)
-            lead_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "lead_pitch", spec)
     if not hashes and first_line:
         w = first_line[:spec.ngram]
         hashes = plain_window_hashes(w, len(w), "line", spec, keep_all=True)

@@ -16,10 +16,10 @@ hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
   same token).
 
 Invariances: pitch enters as intervals (transposition); onsets are ``ticks / ticks_per_beat`` on
-a grid of ``2 * grid`` steps per beat (tempo events, resolution, small timing jitter); a line's
-onset gaps are counted in quarters of its most common gap, its *unit* (so the same line encoded
-at double or half time gives the same tokens); programs, velocities and channel numbers are not
-read; drums are left out (a groove is shared by many pieces).
+a grid of ``2 * grid`` steps per beat (tempo events, resolution, small timing jitter); rhythm
+enters as the ratio of each onset gap to the one before (so the same line encoded at double or
+half time gives the same tokens); programs, velocities and channel numbers are not read; drums
+are left out (a groove is shared by many pieces).
 
 Generic material: a window whose tokens take at most ``min_distinct`` distinct values (a
 repeated note or chord, a two-note alternation, an even scale run, a repeated block chord) is
@@ -53,7 +53,8 @@ CONTENT_STEPS_PER_BEAT = 960
 class ShingleSpec:
     """How shingles are cut. ``ngram``: tokens per shingle; ``grid``: onset steps per beat (the
     grid onsets are rounded to has twice as many, so a line at half time still fits);
-    ``max_units``: onset gaps longer than this many units are one token; ``min_distinct``:
+    ``max_ratio``: ratios of successive onset gaps beyond this many half octaves are one
+    token; ``min_distinct``:
     windows with at most this many distinct tokens are dropped (generic figures; at most
     ``ngram - 2``, so short windows are all kept); ``pitch_extra``: pitch-only windows are this
     many tokens longer; ``bass_below``: voices whose median pitch lies below it (the bass
@@ -63,7 +64,7 @@ class ShingleSpec:
 
     ngram: int = 4
     grid: int = 4
-    max_units: int = 8
+    max_ratio: int = 6
     max_interval: int = 24
     min_distinct: int = 2
     pitch_extra: int = 2
@@ -120,9 +121,12 @@ def line_tokens(q: np.ndarray, pitch: np.ndarray, voice: np.ndarray, spec: Shing
     one line consecutive and in time order.
 
     A line follows its voice's highest note per onset (``lowest``: the lowest). A token is
-    ``(interval + 128) * 4096 + gap``: the pitch interval from the previous onset (clipped to
-    ``max_interval``) and the onset gap in quarters of the line's unit (its most common gap;
-    ties to the shorter), capped at ``max_units`` units."""
+    ``(interval + 128) * 4096 + rhythm``: the pitch interval from the previous onset (clipped to
+    ``max_interval``) and the ratio of this onset gap to the previous one, in half octaves
+    (``round(2 log2(gap / previous gap))``, clipped to +-``max_ratio``; ``RATIO_FIRST`` for a
+    line's first gap). Only ratios of gaps enter, so the same line at double or half time (or
+    any tempo scale) gives the same tokens, and a changed note changes the tokens next to it
+    only."""
     empty = np.zeros(0, dtype=np.int64)
     if len(q) < 2:
         return empty, empty
@@ -143,23 +147,21 @@ def line_tokens(q: np.ndarray, pitch: np.ndarray, voice: np.ndarray, spec: Shing
     interval = np.clip(gp[1:] - gp[:-1], -spec.max_interval, spec.max_interval)[same]
     step = (gq[1:] - gq[:-1])[same]
     line = gv[1:][same]
-    unit = _mode_per_line(line, step)
-    gap = np.minimum((8 * step + unit) // (2 * unit), 4 * spec.max_units)
-    return (interval + 128) * 4096 + gap, line
+    rhythm = np.full(len(step), RATIO_FIRST, dtype=np.int64)
+    cont = np.flatnonzero(line[1:] == line[:-1]) + 1  # tokens with a previous gap in their line
+    rhythm[cont] = ratio_class(step[cont] / step[cont - 1], spec.max_ratio) + 16
+    return (interval + 128) * 4096 + rhythm, line
 
 
-def _mode_per_line(line: np.ndarray, step: np.ndarray) -> np.ndarray:
-    """For each token, the most common onset gap of its line (ties: the shorter gap)."""
-    capped = np.minimum(step, (1 << 31) - 1)
-    key = np.sort(line.astype(np.int64) * (1 << 32) + capped)
-    start = np.flatnonzero(np.concatenate(([True], key[1:] != key[:-1])))
-    uniq = key[start]
-    count = np.diff(np.append(start, len(key)))
-    kl, ks = uniq >> 32, uniq & 0xFFFFFFFF
-    best = np.lexsort((ks, -count, kl))
-    first = best[np.concatenate(([True], kl[best][1:] != kl[best][:-1]))]
-    lines, units = kl[first], ks[first]
-    return units[np.searchsorted(lines, line.astype(np.int64))]
+def ratio_class(ratio: np.ndarray, max_ratio: int) -> np.ndarray:
+    """``round(2 log2(ratio))`` clipped to +-``max_ratio``, by comparing with the class
+    boundaries ``2 ** ((c + 0.5) / 2)`` (exact float comparisons, no logarithm)."""
+    bounds = np.array([2.0 ** ((c + 0.5) / 2) for c in range(-max_ratio, max_ratio)])
+    return np.searchsorted(bounds, ratio, side="right").astype(np.int64) - max_ratio
+
+
+#: The rhythm part of a line's first token (no previous gap to compare with).
+RATIO_FIRST = 64
 
 
 def harmony_tokens(q_start: np.ndarray, q_end: np.ndarray, pitch: np.ndarray, steps: int
@@ -243,27 +245,34 @@ def lead_voice(stats: dict[str, np.ndarray], spec: ShingleSpec,
 
 
 def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
-             n: int | None = None) -> np.ndarray:
+             n: int | None = None, lead: int | None = None, lead_kind: str = ""
+             ) -> tuple[np.ndarray, np.ndarray]:
     """Hashes (uint64, not yet mixed) of the ``n``-token windows (default ``ngram``) inside
-    one line, the generic ones (at most ``min_distinct`` distinct tokens) left out."""
+    one line, the generic ones (at most ``min_distinct`` distinct tokens) left out; and the
+    windows of line ``lead`` hashed as ``lead_kind`` (empty without ``lead``). A window hash
+    is linear in its start value, so the lead's hashes are the line hashes plus a constant."""
     n = n or spec.ngram
+    empty = np.zeros(0, dtype=np.uint64)
     if len(tokens) < n:
-        return np.zeros(0, dtype=np.uint64)
+        return empty, empty
     count = len(tokens) - n + 1
     ok = line[:count] == line[n - 1:]
-    distinct = np.ones(count, dtype=np.int64)
-    for j in range(1, n):
-        fresh = np.ones(count, dtype=bool)
-        for i in range(j):
-            fresh &= tokens[j:j + count] != tokens[i:i + count]
-        distinct += fresh
-    ok &= distinct > min(spec.min_distinct, n - 2)  # short windows: no filter
+    limit = min(spec.min_distinct, n - 2)  # short windows: no filter
+    if limit >= 1:
+        # distinct tokens per window: 1 + the changes along each sorted window
+        srt = np.sort(np.lib.stride_tricks.sliding_window_view(tokens, n), axis=1)
+        ok &= np.count_nonzero(srt[:, 1:] != srt[:, :-1], axis=1) >= limit
     t = tokens.view(np.uint64)
     h = np.full(count, _seed(n, kind), dtype=np.uint64)
     for j in range(n):  # array arithmetic wraps modulo 2**64
         h *= _ROLL
         h += t[j:j + count]
-    return h[ok]
+    if lead is None:
+        return h[ok], empty
+    mine = h[ok & (line[:count] == lead)]
+    mine += np.uint64(((int(_seed(n, lead_kind)) - int(_seed(n, kind))) * pow(int(_ROLL), n, 1 << 64))
+                      % (1 << 64))
+    return h[ok], mine
 
 
 def _seed(n: int, kind: str) -> np.uint64:
@@ -290,44 +299,46 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
         stats = voice_stats(voice, q, pitch)
         upper = stats["median"] >= spec.bass_below
         if not upper.all():
-            keep = np.isin(voice, stats["voice"][upper])
+            kept_voices = stats["voice"][upper]  # sorted
+            pos = np.minimum(np.searchsorted(kept_voices, voice), max(len(kept_voices) - 1, 0))
+            keep = kept_voices[pos] == voice if len(kept_voices) else np.zeros(len(voice), bool)
             q_l, p_l, v_l = q[keep], pitch[keep], voice[keep]
         else:
             q_l, p_l, v_l = q, pitch, voice
         tok, line = line_tokens(q_l, p_l, v_l, spec)
-        parts.append(_windows(tok, line, "line", spec))
-        if not len(parts[-1]) and len(tok):  # every line shorter than ngram: one shingle
+        lead = lead_voice(stats, spec, tuple(piece.track_names)) if "lead" in spec.kinds else None
+        h, lead_h = _windows(tok, line, "line", spec, lead=lead, lead_kind="lead")
+        parts.append(h)
+        lead_parts.append(lead_h)
+        if not len(h) and len(tok):  # every line shorter than ngram: one shingle
             t = tok[line == line[0]][:spec.ngram].view(np.uint64)
             h = np.full(1, _seed(len(t), "line"), dtype=np.uint64)
             for x in t:
                 h *= _ROLL
                 h += x
             parts[-1] = h
-        interval = tok // 4096
-        moved = interval != 128
         if "pitch" in spec.kinds:
-            parts.append(_windows(interval[moved], line[moved], "pitch", spec, spec.ngram + spec.pitch_extra))
-        lead = lead_voice(stats, spec, tuple(piece.track_names))
-        if lead is not None and "lead" in spec.kinds:
-            mine = line == lead
-            lead_parts.append(_windows(tok[mine], line[mine], "lead", spec))
-            mine &= moved
-            lead_parts.append(_windows(interval[mine], line[mine], "lead_pitch", spec,
-                                       spec.ngram + spec.pitch_extra))
+            interval = tok // 4096
+            moved = interval != 128
+            h, lead_h = _windows(interval[moved], line[moved], "pitch", spec,
+                                 spec.ngram + spec.pitch_extra,
+                                 lead if "lead_pitch" in spec.kinds else None, "lead_pitch")
+            parts.append(h)
+            lead_parts.append(lead_h)
     zero = np.zeros(len(q), dtype=np.int64)
     if "top" in spec.kinds:
         tok, line = line_tokens(q, pitch, zero, spec)
-        parts.append(_windows(tok, line, "top", spec))
+        parts.append(_windows(tok, line, "top", spec)[0])
     if "bass" in spec.kinds:
         tok, line = line_tokens(q, pitch, zero, spec, lowest=True)
-        parts.append(_windows(tok, line, "bass", spec))
+        parts.append(_windows(tok, line, "bass", spec)[0])
     if "harmony" in spec.kinds:
         tok = harmony_tokens(q, _grid(notes["end"], tpb, steps), pitch, steps)
-        parts.append(_windows(tok, np.zeros(len(tok), dtype=np.int64), "harmony", spec))
+        parts.append(_windows(tok, np.zeros(len(tok), dtype=np.int64), "harmony", spec)[0])
     h = np.concatenate(parts) if parts else np.zeros(0, dtype=np.uint64)
     h = _fmix64_inplace(h)
     h |= LEAD_LIMIT  # the lead's copies take the lower half of the hash range
-    if lead_parts:
+    if lead_parts and sum(len(x) for x in lead_parts):
         lead_h = _fmix64_inplace(np.concatenate(lead_parts))
         lead_h &= ~LEAD_LIMIT
         h = np.concatenate((lead_h, h))

@@ -1,14 +1,17 @@
 """Stage ``dedup``: drop exact and near duplicates, corpus-wide, and record the clusters.
 
-Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set
-(melody intervals x beat-grid rhythm, see ``pipeline.analysis.shingles``) and its MinHash
-signature. Over the corpus (``run_corpus``):
+Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set (the
+lines of every voice above the bass register, interval x onset gap in units of the line, and
+their pitch-only contours; the lead voice's again, marked; see ``pipeline.analysis.shingles``)
+and its MinHash signature (``similarity.signature_of``). Over the corpus (``run_corpus``):
 
 1. byte-identical files (equal sha256) and files with identical note content (equal content
    hash) are linked first, with no MinHash work (``exact_duplicate``);
 2. one representative per content group goes through LSH banding; each candidate pair is
-   verified on the exact shingle sets (Jaccard, or containment for excerpts) and linked when
-   the similarity reaches ``threshold`` (``near_duplicate``);
+   verified on the exact shingle sets, generic shingles (held by ``generic_share`` of the
+   files) left out (Jaccard, or containment for excerpts and voice subsets, of the whole sets
+   or of the lead voices) and linked when the similarity reaches ``threshold``
+   (``near_duplicate``);
 3. clusters are the connected components of the links (union-find); one member per cluster is
    kept by ``keep_policy``; on a rerun a member kept last time stays kept unless
    ``displace_kept`` is set, and only new files are compared (stored links are reused).
@@ -146,7 +149,8 @@ class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
     version = 2
-    doc = "Drop exact and near duplicates (MinHash LSH over transposition-invariant note shingles)."
+    doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
+           "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
     #: (split reads them for its candidate pairs too), not for every member
     deferred_artifacts = ("shingles",)
@@ -157,7 +161,8 @@ class Dedup(Stage):
         Option("num_perm", int, DEFAULT_NUM_PERM, "MinHash signature length.", in_range(8, 1024)),
         Option("bands", int, DEFAULT_BANDS,
                "LSH bands; must divide num_perm (rows per band = num_perm / bands).", positive),
-        Option("ngram", int, DEFAULT_NGRAM, "Melody tokens (interval, onset gap) per shingle.", in_range(1, 16)),
+        Option("ngram", int, DEFAULT_NGRAM, "Line tokens (interval, onset gap in units of the line) "
+               "per shingle (pitch-only shingles take 2 more).", in_range(1, 16)),
         Option("grid", int, ShingleSpec.grid, "Onset grid steps per beat for shingles.", positive),
         Option("seed", int, 1, "MinHash permutation seed.", None),
         Option("min_size_ratio", float, MIN_SIZE_RATIO,
