@@ -116,10 +116,15 @@ def run_stages(recs: list[dict], dedup_opts: dict | None = None, split_opts: dic
 
 def songs_across_parts(part_of: dict[str, str], song_of: dict[str, str]) -> int:
     """Songs whose files (the keys of ``part_of``) lie in more than one part."""
+    return len(split_songs(part_of, song_of))
+
+
+def split_songs(part_of: dict[str, str], song_of: dict[str, str]) -> list[str]:
+    """The songs whose files (the keys of ``part_of``) lie in more than one part, sorted."""
     parts: dict[str, set[str]] = defaultdict(set)
     for k, p in part_of.items():
         parts[song_of[k]].add(p)
-    return sum(1 for s in parts.values() if len(s) > 1)
+    return sorted(s for s, ps in parts.items() if len(ps) > 1)
 
 
 def random_split(ids: list[str], seed: int, ratios: dict[str, float] = RATIOS) -> dict[str, str]:
@@ -197,7 +202,8 @@ def evaluate(recs: list[dict], dedup_opts: dict | None = None, split_opts: dict 
     total = sum(secs.values())
     within_arr = np.array(within) if within else np.zeros(1)
     return {"files": len(recs), "songs": len(by_song), "kept": len(kept), "dropped": drops,
-            "songs_across_parts": ours, "random_split_songs_across_parts": rand,
+            "songs_across_parts": ours, "split_songs": split_songs(part_of, song_of),
+            "random_split_songs_across_parts": rand,
             "songs_keeping_same_melody": same_melody_songs,
             "songs_with_two_kept": sum(1 for ks in kept_by_song.values() if len(ks) > 1),
             "same_melody_pairs": len(within),
@@ -222,7 +228,8 @@ def format_real(res: dict[str, Any]) -> str:
     lines = [
         f"{res['files']} files, {res['songs']} songs; kept {res['kept']}, dropped {res['dropped']}",
         f"songs with kept files in more than one part: ours {res['songs_across_parts']}, "
-        f"random split {', '.join(map(str, res['random_split_songs_across_parts']))}",
+        f"random split {', '.join(map(str, res['random_split_songs_across_parts']))}; "
+        f"ours: {res['split_songs']}",
         f"songs keeping two files with the same melody track: {len(res['songs_keeping_same_melody'])} "
         f"of {res['songs']} ({100 * len(res['songs_keeping_same_melody']) / max(1, res['songs']):.1f}%) "
         f"{[s for s, _ in res['songs_keeping_same_melody']][:20]}",

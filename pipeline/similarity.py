@@ -1,4 +1,4 @@
-"""MinHash signatures, LSH banding, verification and union-find: the reusable dedup core.
+"""Piece identity: signatures, LSH banding, verification and union-find (dedup, split, leakage).
 
 * ``minhash`` is a numpy implementation of datasketch's ``MinHash`` (scheme ``affine32``,
   datasketch >= 2.0): each 32-bit input hash is pre-mixed with the MurmurHash3 finalizer, then
@@ -9,8 +9,13 @@
   signatures are candidates when any band is identical, with probability
   ``1 - (1 - s**r)**b`` for Jaccard ``s`` (Leskovec, Rajaraman, Ullman, Mining of Massive
   Datasets, ch. 3).
-* Candidates are verified on the stored shingle sets (exact Jaccard, or containment of the
-  smaller set when the sizes are close enough to be an excerpt) before they are linked.
+* ``signature_of`` is the one entry point for a file's identity artifacts (shingle set,
+  signature, content hash): dedup's ``prepare``, the split and ``leakage`` use it. The
+  signature's first half signs the lead voice's shingles, the second half the whole set.
+* Candidates are verified on the stored shingle sets (``set_similarity``, ``pair_similarities``:
+  Jaccard, or containment of the smaller set from ``MIN_SIZE_RATIO`` of the larger's size, of
+  the whole sets and of the lead voices, the higher counting), generic shingles (held by many
+  files of the corpus, ``generic_shingles``) left out, before they are linked.
 * ``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
   themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples.
 """
@@ -480,16 +485,6 @@ def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
     return est
 
 
-def pair_estimates_halves(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-    """The larger of the MinHash estimates of each signature half (``signature_of``: the lead
-    voices' half and the whole sets' half) for the row pairs ``(i[k], j[k])``: a pair may
-    pass on its leads alone, so neither half may rule it out."""
-    half = sig.shape[1] // 2
-    if half < 1:
-        return pair_estimates(sig, i, j)
-    return np.maximum(pair_estimates(sig[:, :half], i, j), pair_estimates(sig[:, half:], i, j))
-
-
 def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
                       compiled: bool = True) -> np.ndarray:
     """Sorted unique codes ``i * n + j`` (``i < j``) of the rows of ``sig`` sharing a band,
@@ -718,7 +713,7 @@ def signature_of(piece: Piece, opts: dict[str, Any] | None = None
     The signature's second half is the MinHash of the whole set; its first half the MinHash
     (``num_perm // 2`` permutations) of the lead voice's part (``lead_part``) when that holds
     ``MIN_LEAD`` shingles, else of the whole set too. LSH bands over the first half so find
-    files sharing a lead under different accompaniments; ``pair_estimates_halves`` reads
+    files sharing a lead under different accompaniments; ``LSHIndex.plausible_codes`` reads
     each half on its own. ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and
     ``max_shingles``.
     """

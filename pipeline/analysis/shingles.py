@@ -3,17 +3,21 @@
 A piece is represented by what makes it that piece in each of its voices; every shingle is the
 hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
 
-* **Voice lines** (kind ``line``): one line per pitched voice, a voice being a (track, channel)
-  stream (so a format-0 file's channels and a format-1 file's tracks give the same voices),
-  following the voice's highest note at each onset. A melody keeps its shingles whatever the
-  accompaniment beside it, and a melody-only or chords-only file holds a subset of its full
-  arrangement's shingles.
-* **Bass line** (kind ``bass``): the lowest pitched note at each onset of all voices merged,
-  so a bass played by any instrument (a piano's left hand, a bass track) compares.
-* **Harmony** (kind ``harmony``): per beat, the pitch-class set of the notes sounding in it,
-  taken relative to its lowest note, with the bass's move from the previous chord; repeated
-  chords are one token, so only changes count (and a chord held for twice as many beats is the
-  same token).
+* **Voice lines** (kind ``line``): one line per pitched voice above the bass register, a voice
+  being a (track, channel) stream (so a format-0 file's channels and a format-1 file's tracks
+  give the same voices), following the voice's highest note at each onset. A melody keeps its
+  shingles whatever the accompaniment beside it, and a melody-only or chords-only file holds a
+  subset of its full arrangement's shingles. Bass voices (median pitch below ``bass_below``)
+  make none: bass lines over common progressions are shared by many distinct pieces.
+* **Contours** (kind ``pitch``): the same lines' intervals alone, repeated notes left out, in
+  windows ``pitch_extra`` tokens longer: a tune re-notated with other note values keeps them.
+* **The lead** (kind ``lead``): the line shingles of the voice that carries the tune
+  (``lead_voice``) once more, marked by a clear top bit (``LEAD_LIMIT``) so they form the
+  prefix of the sorted set; ``pipeline.similarity`` compares files on them on their own too.
+* Measured and not used by default (``ShingleSpec.kinds``): ``bass``, the lowest note at each
+  onset of all voices merged; ``harmony``, per beat the pitch-class set of the notes sounding,
+  relative to their lowest note, one token per chord change; ``top``, the highest note of all
+  voices merged (the skyline of dedup version 1).
 
 Invariances: pitch enters as intervals (transposition); onsets are ``ticks / ticks_per_beat`` on
 a grid of ``2 * grid`` steps per beat (tempo events, resolution, small timing jitter); rhythm

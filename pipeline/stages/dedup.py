@@ -119,7 +119,8 @@ KEEP_POLICIES: dict[str, tuple[Callable[[dict], tuple], str]] = {
 }
 
 #: Defaults chosen by measurement on the dedup benchmark (``python -m pipeline.bench_dedup``,
-#: synth corpora of 1,000 and 20,000 files, seed 0):
+#: synth corpora of 1,000 and 20,000 files, seed 0), with version 1's shingles (the skyline);
+#: version 2 (every voice, the lead, ratios of gaps) keeps them: README, Near-duplicate removal.
 #: * ``ngram`` 4: n=3 catches every edited copy too but lets distinct pieces reach 0.35
 #:   (18x more LSH candidates, 4x slower corpus step); n=5 loses edited copies (recall 0.95).
 #: * ``threshold`` 0.3: the lowest edited copies score 0.29-0.38 and the highest pair of distinct
