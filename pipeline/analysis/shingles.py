@@ -113,10 +113,14 @@ def _grid(ticks: np.ndarray, tpb: int, steps: int) -> np.ndarray:
     return (ticks * (2 * steps) + tpb) // (2 * tpb)
 
 
-def _pitched(piece: Piece) -> np.ndarray:
+def _pitched(piece: Piece, *fields: str) -> list[np.ndarray]:
+    """The columns ``fields`` of the notes not on the drum channel (no copy of the table)."""
     notes = piece.notes
     drum = notes["channel"] == DRUM_CHANNEL
-    return notes[~drum] if drum.any() else notes
+    if not drum.any():
+        return [notes[f] for f in fields]
+    keep = ~drum
+    return [notes[f][keep] for f in fields]
 
 
 def line_tokens(q: np.ndarray, pitch: np.ndarray, voice: np.ndarray, spec: ShingleSpec,
@@ -292,14 +296,13 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     tokens (if any), so short pieces still compare; a piece with none (drums only, one onset)
     gets an empty set.
     """
-    notes = _pitched(piece)
+    start, pitch, track, channel = _pitched(piece, "start", "pitch", "track", "channel")
     tpb = int(piece.ticks_per_beat)
     steps = 2 * spec.grid
-    q = _grid(notes["start"], tpb, steps)
-    pitch = notes["pitch"]
+    q = _grid(start, tpb, steps)
     parts, lead_parts = [], []
     if "line" in spec.kinds:
-        voice = notes["track"].astype(np.int64) * 16 + notes["channel"]
+        voice = track.astype(np.int64) * 16 + channel
         stats = voice_stats(voice, q, pitch)
         upper = stats["median"] >= spec.bass_below
         if not upper.all():
@@ -337,7 +340,7 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
         tok, line = line_tokens(q, pitch, zero, spec, lowest=True)
         parts.append(_windows(tok, line, "bass", spec)[0])
     if "harmony" in spec.kinds:
-        tok = harmony_tokens(q, _grid(notes["end"], tpb, steps), pitch, steps)
+        tok = harmony_tokens(q, _grid(_pitched(piece, "end")[0], tpb, steps), pitch, steps)
         parts.append(_windows(tok, np.zeros(len(tok), dtype=np.int64), "harmony", spec)[0])
     h = np.concatenate(parts) if parts else np.zeros(0, dtype=np.uint64)
     h = _fmix64_inplace(h)
