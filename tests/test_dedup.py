@@ -333,3 +333,36 @@ def test_clusters_as_last_run_keep_their_results_and_the_rest_equals_a_full_comp
     # a source read under another path is never reused (details name sources)
     moved = {m.id for m in second if m.source.startswith("0/")}
     assert not moved & {k for k in reused if full[k].values["cluster_size"] > 1}
+
+
+# --- Generic material counted over the corpus (issue 20, item 2) -------------------------------
+def _tunes_over_one_accompaniment(count: int):
+    """``count`` different tunes (test_shingles.melody) over one and the same accompaniment
+    (test_shingles.comping(7)): the accompaniment is generic in this corpus, the tunes are not."""
+    from test_shingles import comping, melody
+    stage = Dedup()
+    members = []
+    for k in range(count):
+        piece = make_piece(melody(300 + k) + comping(7, 30))
+        sha = hashlib.sha256(f"tune {k}".encode()).hexdigest()
+        members.append(Member(sha[:16], sha, f"tune{k}.mid", {},
+                              {"dedup": stage.prepare(piece, FileContext(piece, f"tune{k}.mid"))}))
+    return members
+
+
+def test_a_shared_accompaniment_does_not_link_different_tunes():
+    members = _tunes_over_one_accompaniment(12)
+    res, state = run(members)
+    assert all(r.kept for r in res.values()), [r.detail for r in res.values() if not r.kept]
+    assert len(state.current["generic"]) > 0
+    # the mechanism matters: with every shingle kept, the shared accompaniment links them
+    res, _ = run(members, {"generic_share": 1.0})
+    assert sum(not r.kept for r in res.values()) > 0
+
+
+def test_a_rerun_reuses_the_generic_shingles_it_counted():
+    members = _tunes_over_one_accompaniment(12)
+    _, first = run(members[:11])
+    res, again = run(members, previous=first.current)
+    assert again.current["generic"] == first.current["generic"]
+    assert all(r.kept for r in res.values())
