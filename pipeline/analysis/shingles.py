@@ -283,6 +283,34 @@ def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
     return h[ok], mine
 
 
+#: The kinds the compiled kernel (``_smf_accel.voice_shingles``) computes.
+_COMPILED_KINDS = ("line", "pitch", "lead")
+
+
+def _compiled_shingles(piece: Piece, spec: ShingleSpec) -> np.ndarray | None:
+    """``shingle_hashes`` through the compiled kernel when it applies (default kinds, the
+    extension built, a little-endian machine), else None. The numpy code below is the
+    specification; tests/test_smf_accel.py holds both paths equal."""
+    if spec.kinds != _COMPILED_KINDS or sys.byteorder != "little":
+        return None
+    accel = compiled_analyses(piece.notes)
+    if accel is None:
+        return None
+    m = spec.max_ratio
+    bounds = np.array([2.0 ** ((c + 0.5) / 2) for c in range(-m, m)])
+    named = tuple(t for t, name in enumerate(piece.track_names)
+                  if set(re.findall(r"[a-z]+", name.casefold())) & set(LEAD_NAMES))
+    base = {k: (KIND_TAGS[k] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF for k in ("line", "pitch", "lead")}
+    args = (int(piece.ticks_per_beat), 2 * spec.grid, spec.max_interval, spec.max_ratio, bounds,
+            spec.bass_below, spec.ngram, spec.ngram + spec.pitch_extra, spec.min_distinct,
+            float(spec.lead_monophony), named, base["line"], base["pitch"], base["lead"],
+            spec.max_shingles)
+    if not all(type(a) is int for a in args[:4] + args[5:9] + args[14:]):
+        return None
+    got = accel.voice_shingles(piece.notes, *args)
+    return None if got is None else np.frombuffer(got, dtype=np.uint64).copy()
+
+
 def _seed(n: int, kind: str) -> np.uint64:
     """The start value of a window hash: its length and its kind's tag, modulo 2**64."""
     return np.uint64((n + KIND_TAGS[kind] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF)
@@ -296,6 +324,9 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     tokens (if any), so short pieces still compare; a piece with none (drums only, one onset)
     gets an empty set.
     """
+    got = _compiled_shingles(piece, spec)
+    if got is not None:  # the same hashes (tests/test_smf_accel.py)
+        return got
     start, pitch, track, channel = _pitched(piece, "start", "pitch", "track", "channel")
     tpb = int(piece.ticks_per_beat)
     steps = 2 * spec.grid
