@@ -1122,6 +1122,258 @@ static int cmp_i64(const void *a, const void *b) {
     return (x > y) - (x < y);
 }
 
+/* ---- shingles.shingle_hashes at the default kinds (line, pitch, lead) ------------------- */
+typedef struct {
+    int64_t voice, q;
+    int pitch;
+} VNote;
+
+static int cmp_vnote(const void *a, const void *b) {
+    const VNote *x = (const VNote *)a, *y = (const VNote *)b;
+    if (x->voice != y->voice) return x->voice < y->voice ? -1 : 1;
+    if (x->q != y->q) return x->q < y->q ? -1 : 1;
+    return (x->pitch > y->pitch) - (x->pitch < y->pitch);
+}
+static int cmp_int(const void *a, const void *b) {
+    int x = *(const int *)a, y = *(const int *)b;
+    return (x > y) - (x < y);
+}
+
+/* windows of ``n`` tokens inside one line (``line`` ids), hashed from ``base + n``; those with
+ * at most ``limit`` distinct tokens left out when limit >= 1; the hashes are appended to out
+ * (fmix and the top bit: ``top`` 1 sets it, 0 clears it). Lead copies (line == lead) go to
+ * lead_out the same way from lead_base. Returns the number of windows kept in out. */
+static Py_ssize_t vs_windows(const uint64_t *tok, const int64_t *line, Py_ssize_t nt, Py_ssize_t n,
+                             int64_t limit, uint64_t base, int64_t lead, uint64_t lead_base,
+                             uint64_t *out, Py_ssize_t *nout, uint64_t *lead_out, Py_ssize_t *nlead) {
+    Py_ssize_t kept = 0;
+    if (nt < n) return 0;
+    uint64_t w[64];
+    for (Py_ssize_t i = 0; i + n <= nt; i++) {
+        if (line[i] != line[i + n - 1]) continue;
+        if (limit >= 1) {
+            for (Py_ssize_t j = 0; j < n; j++) w[j] = tok[i + j];
+            /* insertion sort of n <= 64 values, then count changes */
+            for (Py_ssize_t a = 1; a < n; a++) {
+                uint64_t v = w[a];
+                Py_ssize_t b = a;
+                while (b > 0 && (int64_t)w[b - 1] > (int64_t)v) { w[b] = w[b - 1]; b--; }
+                w[b] = v;
+            }
+            int64_t changes = 0;
+            for (Py_ssize_t j = 1; j < n; j++) changes += w[j] != w[j - 1];
+            if (changes < limit) continue;
+        }
+        uint64_t x = base + (uint64_t)n, y = lead_base + (uint64_t)n;
+        for (Py_ssize_t j = 0; j < n; j++) {
+            x = x * ROLL + tok[i + j];
+            y = y * ROLL + tok[i + j];
+        }
+        out[(*nout)++] = fmix64(x) | 0x8000000000000000ULL;
+        kept++;
+        if (lead >= 0 && line[i] == lead) lead_out[(*nlead)++] = fmix64(y) & 0x7FFFFFFFFFFFFFFFULL;
+    }
+    return kept;
+}
+
+PyDoc_STRVAR(voice_shingles_doc,
+"voice_shingles(notes, tpb, steps, max_interval, max_ratio, bounds, bass_below, ngram,\n"
+"               pitch_ngram, min_distinct, lead_monophony, named_tracks, line_base,\n"
+"               pitch_base, lead_base, max_shingles) -> bytes | None\n\n"
+"shingles.shingle_hashes of a NOTE_DTYPE table at the kinds (line, pitch, lead): sorted unique\n"
+"uint64, little-endian bytes. ``bounds``: the ratio class boundaries (float64 bytes);\n"
+"``named_tracks``: track indices whose names mark the lead, ascending; the bases: each\n"
+"kind's tag times the seed constant, modulo 2**64. None where a window would be too long.");
+
+static PyObject *voice_shingles(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
+    (void)self;
+    if (nargs != 16) {
+        PyErr_SetString(PyExc_TypeError, "voice_shingles takes 16 arguments");
+        return NULL;
+    }
+    int64_t tpb = PyLong_AsLongLong(args[1]), steps = PyLong_AsLongLong(args[2]);
+    int64_t max_int = PyLong_AsLongLong(args[3]), max_ratio = PyLong_AsLongLong(args[4]);
+    int64_t bass_below = PyLong_AsLongLong(args[6]), ngram = PyLong_AsLongLong(args[7]);
+    int64_t pngram = PyLong_AsLongLong(args[8]), min_distinct = PyLong_AsLongLong(args[9]);
+    double mono = PyFloat_AsDouble(args[10]);
+    uint64_t line_base = PyLong_AsUnsignedLongLong(args[12]);
+    uint64_t pitch_base = PyLong_AsUnsignedLongLong(args[13]);
+    uint64_t lead_base = PyLong_AsUnsignedLongLong(args[14]);
+    int64_t max_sh = PyLong_AsLongLong(args[15]);
+    if (PyErr_Occurred()) return NULL;
+    if (tpb <= 0 || tpb > ((int64_t)1 << 40) || steps <= 0 || steps > ((int64_t)1 << 20)
+        || ngram < 1 || ngram > 64 || pngram < 1 || pngram > 64 || max_sh < 0 || max_int < 0
+        || max_int > 1000000 || max_ratio < 0 || max_ratio > 1000)
+        Py_RETURN_NONE;
+    Py_buffer bv;
+    if (PyObject_GetBuffer(args[5], &bv, PyBUF_C_CONTIGUOUS) < 0) return NULL;
+    Py_ssize_t nb = bv.len / 8;
+    double bounds[2048];
+    if (nb != 2 * max_ratio || nb > 2048) {
+        PyBuffer_Release(&bv);
+        Py_RETURN_NONE;
+    }
+    memcpy(bounds, bv.buf, (size_t)nb * 8);
+    PyBuffer_Release(&bv);
+    PyObject *named = args[11];
+    if (!PyTuple_Check(named)) {
+        PyErr_SetString(PyExc_TypeError, "voice_shingles: named_tracks must be a tuple");
+        return NULL;
+    }
+    Notes t;
+    if (notes_open(args[0], &t) < 0) return NULL;
+    PyObject *out = NULL;
+    Py_ssize_t cap = t.n ? t.n : 1;
+    VNote *vn = (VNote *)PyMem_Malloc((size_t)cap * sizeof(VNote));
+    int *pbuf = (int *)PyMem_Malloc((size_t)cap * sizeof(int));
+    uint64_t *tok = (uint64_t *)PyMem_Malloc((size_t)cap * sizeof(uint64_t));
+    uint64_t *ptok = (uint64_t *)PyMem_Malloc((size_t)cap * sizeof(uint64_t));
+    int64_t *tline = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    int64_t *pline = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    uint64_t *h = (uint64_t *)PyMem_Malloc((size_t)(3 * cap + 1) * sizeof(uint64_t));
+    /* per voice: first note, notes, onsets, median, upper */
+    int64_t *vid = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    Py_ssize_t *vfirst = (Py_ssize_t *)PyMem_Malloc((size_t)(cap + 1) * sizeof(Py_ssize_t));
+    int64_t *vons = (int64_t *)PyMem_Malloc((size_t)cap * sizeof(int64_t));
+    int *vmed = (int *)PyMem_Malloc((size_t)cap * sizeof(int));
+    if (!vn || !pbuf || !tok || !ptok || !tline || !pline || !h || !vid || !vfirst || !vons || !vmed) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    Py_ssize_t m = 0;
+    int64_t mul = 2 * steps, div = 2 * tpb;
+    for (Py_ssize_t i = 0; i < t.n; i++) {
+        int ch = f_i16(&t, i, O_CHANNEL);
+        if (ch == DRUM) continue;
+        vn[m].voice = (int64_t)f_i16(&t, i, O_TRACK) * 16 + ch;
+        vn[m].q = floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_START), mul), tpb), div);
+        vn[m].pitch = f_i16(&t, i, O_PITCH);
+        m++;
+    }
+    qsort(vn, (size_t)m, sizeof(VNote), cmp_vnote);
+    /* voices */
+    Py_ssize_t nv = 0;
+    for (Py_ssize_t i = 0; i < m; i++)
+        if (i == 0 || vn[i].voice != vn[i - 1].voice) { vid[nv] = vn[i].voice; vfirst[nv++] = i; }
+    vfirst[nv] = m;
+    for (Py_ssize_t v = 0; v < nv; v++) {
+        Py_ssize_t a = vfirst[v], b = vfirst[v + 1];
+        int64_t ons = 0;
+        for (Py_ssize_t i = a; i < b; i++) {
+            pbuf[i - a] = vn[i].pitch;
+            ons += (i == a || vn[i].q != vn[i - 1].q);
+        }
+        qsort(pbuf, (size_t)(b - a), sizeof(int), cmp_int);
+        vmed[v] = pbuf[(b - a - 1) / 2];
+        vons[v] = ons;
+    }
+    /* the lead (shingles.lead_voice) */
+    int64_t lead = -1;
+    {
+        int any = 0;
+        for (Py_ssize_t v = 0; v < nv; v++) any |= (vmed[v] >= bass_below && vons[v] > ngram);
+        if (any) {
+            for (Py_ssize_t k = 0; k < PyTuple_GET_SIZE(named) && lead < 0; k++) {
+                int64_t tr = PyLong_AsLongLong(PyTuple_GET_ITEM(named, k));
+                if (tr == -1 && PyErr_Occurred()) goto done;
+                int64_t best = -1;
+                for (Py_ssize_t v = 0; v < nv; v++) {
+                    if (!(vmed[v] >= bass_below && vons[v] > ngram)) continue;
+                    if (floordiv_pos(vid[v], 16) != tr) continue;
+                    if (best < 0 || vons[v] > vons[best]) best = v;
+                }
+                if (best >= 0) lead = vid[best];
+            }
+            if (lead < 0) {
+                int64_t busiest = -1;
+                for (Py_ssize_t v = 0; v < nv; v++) {
+                    int ok = vmed[v] >= bass_below && vons[v] > ngram
+                             && (double)vons[v] >= mono * (double)(vfirst[v + 1] - vfirst[v]);
+                    if (ok && vons[v] > busiest) busiest = vons[v];
+                }
+                int64_t best = -1;
+                for (Py_ssize_t v = 0; v < nv && busiest >= 0; v++) {
+                    int ok = vmed[v] >= bass_below && vons[v] > ngram
+                             && (double)vons[v] >= mono * (double)(vfirst[v + 1] - vfirst[v])
+                             && 2 * vons[v] >= busiest;
+                    if (!ok) continue;
+                    if (best < 0 || vmed[v] > vmed[best] || (vmed[v] == vmed[best] && vons[v] > vons[best]))
+                        best = v;
+                }
+                if (best >= 0) lead = vid[best];
+            }
+        }
+    }
+    /* tokens of the upper voices' lines, and their contours */
+    Py_ssize_t nt = 0, np_ = 0;
+    for (Py_ssize_t v = 0; v < nv; v++) {
+        if (vmed[v] < bass_below) continue;
+        Py_ssize_t a = vfirst[v], b = vfirst[v + 1];
+        int have = 0, first_tok = 1, top_prev = 0, top = vn[a].pitch;
+        int64_t q_prev = 0, step_prev = 0;
+        for (Py_ssize_t i = a; i <= b; i++) {
+            if (i < b && i > a && vn[i].q == vn[i - 1].q) { top = vn[i].pitch; continue; }
+            /* the onset group that ended at i - 1 (top: its highest pitch) */
+            if (i > a) {
+                if (have) {
+                    int64_t iv = (int64_t)top - top_prev;
+                    if (iv < -max_int) iv = -max_int;
+                    if (iv > max_int) iv = max_int;
+                    int64_t step = wrap_sub(vn[i - 1].q, q_prev);
+                    int64_t rhythm;
+                    if (first_tok) rhythm = 64;
+                    else {
+                        double r = (double)step / (double)step_prev;
+                        int64_t c = 0;
+                        while (c < nb && bounds[c] <= r) c++;
+                        rhythm = c - max_ratio + 16;
+                    }
+                    first_tok = 0;
+                    step_prev = step;
+                    tok[nt] = (uint64_t)((iv + 128) * 4096 + rhythm);
+                    tline[nt++] = vid[v];
+                    if (iv != 0) { ptok[np_] = (uint64_t)(iv + 128); pline[np_++] = vid[v]; }
+                }
+                have = 1;
+                top_prev = top;
+                q_prev = vn[i - 1].q;
+            }
+            if (i < b) top = vn[i].pitch;
+        }
+    }
+    Py_ssize_t nh = 0, nl = 0;
+    uint64_t *lead_h = h + 2 * cap + 1;
+    int64_t lim1 = min_distinct < ngram - 2 ? min_distinct : ngram - 2;
+    int64_t lim2 = min_distinct < pngram - 2 ? min_distinct : pngram - 2;
+    Py_ssize_t kept = vs_windows(tok, tline, nt, (Py_ssize_t)ngram, lim1, line_base, lead, lead_base,
+                                 h, &nh, lead_h, &nl);
+    if (kept == 0 && nt > 0) { /* every line shorter than ngram: one shingle of the first */
+        Py_ssize_t k = 0;
+        while (k < nt && k < ngram && tline[k] == tline[0]) k++;
+        uint64_t x = line_base + (uint64_t)k;
+        for (Py_ssize_t j = 0; j < k; j++) x = x * ROLL + tok[j];
+        h[nh++] = fmix64(x) | 0x8000000000000000ULL;
+    }
+    vs_windows(ptok, pline, np_, (Py_ssize_t)pngram, lim2, pitch_base, -1, 0, h, &nh, NULL, NULL);
+    memmove(h + nh, lead_h, (size_t)nl * sizeof(uint64_t));
+    nh += nl;
+    if (sort_u64(h, nh) < 0) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    Py_ssize_t u = 0;
+    for (Py_ssize_t i = 0; i < nh; i++)
+        if (i == 0 || h[i] != h[i - 1]) h[u++] = h[i];
+    if (u > max_sh) u = (Py_ssize_t)max_sh;
+    out = PyBytes_FromStringAndSize((const char *)h, u * 8);
+done:
+    PyMem_Free(vn); PyMem_Free(pbuf); PyMem_Free(tok); PyMem_Free(ptok); PyMem_Free(tline);
+    PyMem_Free(pline); PyMem_Free(h); PyMem_Free(vid); PyMem_Free(vfirst); PyMem_Free(vons);
+    PyMem_Free(vmed);
+    notes_release(&t);
+    return out;
+}
+
 PyDoc_STRVAR(content_rows_doc,
 "content_rows(notes, ticks_per_beat, steps_per_beat) -> bytes\n\n"
 "shingles.content_hash's sorted uint64 row hashes (little-endian bytes) of a NOTE_DTYPE table.");
@@ -1157,103 +1409,6 @@ static PyObject *content_rows(PyObject *self, PyObject *const *args, Py_ssize_t 
             PyErr_NoMemory();
         }
     }
-    notes_release(&t);
-    return out;
-}
-
-PyDoc_STRVAR(shingles_doc,
-"shingles(notes, ticks_per_beat, grid, max_ioi_steps, max_interval, ngram, max_shingles)\n"
-"    -> bytes | None\n\n"
-"shingles.shingle_hashes of a NOTE_DTYPE table (sorted unique uint64, little-endian bytes);\n"
-"None where melody_tokens would sort the onsets first.");
-
-static PyObject *shingles(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
-    (void)self;
-    if (nargs != 7) {
-        PyErr_SetString(PyExc_TypeError, "shingles takes 7 arguments");
-        return NULL;
-    }
-    int64_t v[6];
-    for (int k = 0; k < 6; k++) v[k] = PyLong_AsLongLong(args[k + 1]);
-    if (PyErr_Occurred()) return NULL;
-    int64_t tpb = v[0], grid = v[1], max_ioi = v[2], max_int = v[3], ngram = v[4], max_sh = v[5];
-    if (tpb <= 0 || tpb > ((int64_t)1 << 40) || grid <= 0 || grid > ((int64_t)1 << 20) || ngram <= 0
-        || max_sh < 0 || max_int < 0 || max_int > 1000000)
-        Py_RETURN_NONE;
-    Notes t;
-    if (notes_open(args[0], &t) < 0) return NULL;
-    PyObject *out = NULL;
-    int64_t *q = (int64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int64_t));
-    int *pi = (int *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(int));
-    uint64_t *tok = (uint64_t *)PyMem_Malloc((size_t)(t.n ? t.n : 1) * sizeof(uint64_t));
-    if (!q || !pi || !tok) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    Py_ssize_t m = 0;
-    int64_t mul = 2 * grid, div = 2 * tpb;
-    for (Py_ssize_t i = 0; i < t.n; i++) {
-        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
-        q[m] = floordiv_pos(wrap_add(wrap_mul(f_i64(&t, i, O_START), mul), tpb), div);
-        pi[m] = f_i16(&t, i, O_PITCH);
-        if (m && q[m] < q[m - 1]) { /* not in time order: numpy sorts first */
-            out = Py_None;
-            Py_INCREF(out);
-            goto done;
-        }
-        m++;
-    }
-    /* tokens: per onset after the first, skyline interval and capped grid step */
-    Py_ssize_t nt = 0;
-    if (m >= 2) {
-        int top_prev = 0, top = pi[0], have_prev = 0;
-        int64_t step = 0;
-        for (Py_ssize_t i = 1; i <= m; i++) {
-            if (i < m && q[i] == q[i - 1]) {
-                if (pi[i] > top) top = pi[i];
-                continue;
-            }
-            /* the onset group that ended at i - 1 has skyline ``top`` */
-            if (have_prev) {
-                int64_t iv = (int64_t)top - top_prev;
-                if (iv < -max_int) iv = -max_int;
-                if (iv > max_int) iv = max_int;
-                int64_t ioi = step < max_ioi ? step : max_ioi;
-                tok[nt++] = (uint64_t)((iv + 128) * 4096 + ioi);
-            }
-            if (i < m) {
-                step = q[i] - q[i - 1];
-                top_prev = top;
-                have_prev = 1;
-                top = pi[i];
-            }
-        }
-    }
-    Py_ssize_t n = ngram < nt ? (Py_ssize_t)ngram : nt;
-    if (n == 0) {
-        out = PyBytes_FromStringAndSize(NULL, 0);
-        goto done;
-    }
-    Py_ssize_t count = nt - n + 1;
-    uint64_t *h = (uint64_t *)q; /* reuse: count <= m */
-    for (Py_ssize_t i = 0; i < count; i++) {
-        uint64_t x = (uint64_t)n;
-        for (Py_ssize_t j = 0; j < n; j++) x = x * ROLL + tok[i + j];
-        h[i] = fmix64(x);
-    }
-    if (sort_u64(h, count) < 0) {
-        PyErr_NoMemory();
-        goto done;
-    }
-    Py_ssize_t u = 0;
-    for (Py_ssize_t i = 0; i < count; i++)
-        if (i == 0 || h[i] != h[i - 1]) h[u++] = h[i];
-    if (u > max_sh) u = (Py_ssize_t)max_sh;
-    out = PyBytes_FromStringAndSize((const char *)h, u * 8);
-done:
-    PyMem_Free(q);
-    PyMem_Free(pi);
-    PyMem_Free(tok);
     notes_release(&t);
     return out;
 }
@@ -2167,7 +2322,7 @@ static PyMethodDef methods[] = {
     {"add_reduce", (PyCFunction)(void (*)(void))py_sum, METH_FASTCALL,
      "add_reduce(float64 buffer) -> float: np.add.reduce's pairwise sum (for the tests)."},
     {"content_rows", (PyCFunction)(void (*)(void))content_rows, METH_FASTCALL, content_rows_doc},
-    {"shingles", (PyCFunction)(void (*)(void))shingles, METH_FASTCALL, shingles_doc},
+    {"voice_shingles", (PyCFunction)(void (*)(void))voice_shingles, METH_FASTCALL, voice_shingles_doc},
     {"pc_histogram", (PyCFunction)(void (*)(void))pc_histogram, METH_FASTCALL, pc_histogram_doc},
     {"meter_accents", (PyCFunction)(void (*)(void))meter_accents, METH_FASTCALL, meter_accents_doc},
     {"note_stats", (PyCFunction)note_stats, METH_O, note_stats_doc},

@@ -1,5 +1,8 @@
 """Dedup benchmark with ground truth: precision/recall per planted variant kind, and cost.
 
+``--real DIR --labels FILE`` and ``--chorales CACHE`` run the real-collection and chorale
+checks of ``pipeline.bench_identity`` instead.
+
 Builds corpora with ``pipeline.synth.generate`` (every planted variant kind, style families of
 distinct pieces sharing key, meter and chord progression), decodes them with
 ``pipeline.smf.decode`` and runs, side by side on the same decoded pieces:
@@ -236,7 +239,25 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--out", default=None, help="write the JSON result here")
     ap.add_argument("--work", default=None, help="keep (and reuse) the generated corpora here")
     ap.add_argument("--defaults-only", action="store_true", help="skip the extra settings")
+    ap.add_argument("--real", default=None, help="a real collection folder (with --labels): "
+                    "songs across parts, kept same-melody files, cross-song links, files/s")
+    ap.add_argument("--labels", default=None, help="labels.json of --real ({files: {path: {song}}})")
+    ap.add_argument("--chorales", default=None, metavar="CACHE",
+                    help="music21's Bach chorales (rendered once, cached as JSON in CACHE): same "
+                    "tune linked, different tunes never")
     a = ap.parse_args(argv)
+    if a.chorales:
+        from .bench_identity import chorale_check, format_chorales, render_chorales
+        print(format_chorales(chorale_check(render_chorales(Path(a.chorales)))))
+        return 0
+    if a.real:
+        from .bench_identity import evaluate, format_real, load_collection
+        recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
+        res = evaluate(recs)
+        if a.out:
+            Path(a.out).write_text(json.dumps(res, indent=1, default=str) + "\n")
+        print(format_real(res))
+        return 0
     res = run(tuple(int(x) for x in a.sizes.split(",")), a.out, a.seed,
               {} if a.defaults_only else None, a.work)
     print(format_table(res))

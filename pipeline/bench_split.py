@@ -136,8 +136,17 @@ def kept_parts(rows: dict[str, dict], groups: dict[str, str | None]) -> dict[str
     return by_cluster
 
 
-def drops_below_threshold(corpus: Path, rows: dict[str, dict], dedup_opts: dict[str, Any]
-                          ) -> tuple[int, int, list]:
+def generic_of(out: Path) -> Any:
+    """The generic shingles the run's dedup left out of its comparisons (its saved state)."""
+    import numpy as np
+
+    from .ledger import Ledger
+    with Ledger(out / "state.sqlite", read_only=True) as ledger:
+        return np.array(ledger.state_for("dedup").get("generic", []), dtype=np.uint64)
+
+
+def drops_below_threshold(corpus: Path, rows: dict[str, dict], dedup_opts: dict[str, Any],
+                          generic: Any = None) -> tuple[int, int, list]:
     """``(bad drops, near_duplicate drops, examples)``: a drop is bad when its own similarity
     to the file it names, recomputed from the two files, is below the threshold or is not the
     manifest's ``similarity`` (to its 4 decimals)."""
@@ -159,7 +168,7 @@ def drops_below_threshold(corpus: Path, rows: dict[str, dict], dedup_opts: dict[
             continue
         n += 1
         own, _ = set_similarity(shingles(src), shingles(source_of[r["duplicate_of"]]),
-                                min_size_ratio=float(opts["min_size_ratio"]))
+                                min_size_ratio=float(opts["min_size_ratio"]), generic=generic)
         if own < float(opts["threshold"]) or round(own, 4) != r["similarity"]:
             bad += 1
             if len(examples) < 10:
@@ -242,7 +251,8 @@ def run(count: int = 2000, seed: int = 0, work: str | Path | None = None, out: s
                                    "signatures": res["summary"]["split"].get("stage", {}).get("near_duplicate_signatures"),
                                    "table_says_off": "grouping OFF" in res["table"]}
             if dedup_opts is not None:
-                bad, n, bad_examples = drops_below_threshold(corpus, rows, dedup_opts)
+                bad, n, bad_examples = drops_below_threshold(corpus, rows, dedup_opts,
+                                                             generic_of(base / f"out_{tag}_{slug}"))
                 several, files = clusters_keeping_several(rows)
                 row.update(near_drops=n, drops_below_threshold=bad, bad_drop_examples=bad_examples,
                            clusters_keeping_several=several, files_kept_in_them=files)

@@ -240,7 +240,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .similarity import VERIFY_CHUNK, involved_sets, pair_estimates, pair_similarities
+    from .similarity import VERIFY_CHUNK, involved_sets, pair_estimates, pair_similarities, plausible_pairs
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -253,12 +253,11 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
         return []
     ia, ib = pairs[:, 0], pairs[:, 1]
     est = pair_estimates(sig, ia, ib)
-    # An excerpt pair scores containment c with Jaccard as low as c / (1 + 1/0.75 - c) (the
-    # smaller set holds >= 0.75 of the larger, see set_similarity), so the estimate floor sits
-    # below that bound, minus the estimate's sampling error sqrt(J(1-J)/num_perm).
-    low = threshold / (1.0 + 1.0 / 0.75 - threshold) if shingles is not None else threshold
-    floor = low - margin_sigmas * (max(low * (1 - low), 1e-4) / num_perm) ** 0.5
-    sel = est >= (threshold if shingles is None else floor)
+    if shingles is None:  # the estimate decides
+        sel = est >= threshold
+    else:  # the bounds dedup uses (containment, lead voices), with a wider margin
+        sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
+        sel = plausible_pairs(sig, ia, ib, sizes, threshold, margin_sigmas=margin_sigmas)
     ia, ib, est = ia[sel], ib[sel], est[sel]
     sets, li, lj = None, ia, ib
     if shingles is not None and len(ia):  # only the sets of files in some pair are read

@@ -150,6 +150,6 @@ def _sums_follow_numpy(mod: Any) -> bool:
 
 
 #: The compiled analyses the modules above call (pipeline/_smf_accel.c).
-_ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "shingles",
+_ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "voice_shingles",
              "content_rows", "shift_sort", "fold_count", "table_group_events")
 _CHECKED: list = [None, False]  # (the module last checked, whether it has them all)

@@ -1,4 +1,4 @@
-"""MinHash signatures, LSH banding, verification and union-find: the reusable dedup core.
+"""Piece identity: signatures, LSH banding, verification and union-find (dedup, split, leakage).
 
 * ``minhash`` is a numpy implementation of datasketch's ``MinHash`` (scheme ``affine32``,
   datasketch >= 2.0): each 32-bit input hash is pre-mixed with the MurmurHash3 finalizer, then
@@ -9,8 +9,13 @@
   signatures are candidates when any band is identical, with probability
   ``1 - (1 - s**r)**b`` for Jaccard ``s`` (Leskovec, Rajaraman, Ullman, Mining of Massive
   Datasets, ch. 3).
-* Candidates are verified on the stored shingle sets (exact Jaccard, or containment of the
-  smaller set when the sizes are close enough to be an excerpt) before they are linked.
+* ``signature_of`` is the one entry point for a file's identity artifacts (shingle set,
+  signature, content hash): dedup's ``prepare``, the split and ``leakage`` use it. The
+  signature's first half signs the lead voice's shingles, the second half the whole set.
+* Candidates are verified on the stored shingle sets (``set_similarity``, ``pair_similarities``:
+  Jaccard, or containment of the smaller set from ``MIN_SIZE_RATIO`` of the larger's size, of
+  the whole sets and of the lead voices, the higher counting), generic shingles (held by many
+  files of the corpus, ``generic_shingles``) left out, before they are linked.
 * ``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
   themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples.
 """
@@ -21,11 +26,16 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from .analysis.shingles import ShingleSpec, content_hash, fmix64, shingle_hashes
+from .analysis.shingles import LEAD_LIMIT, ShingleSpec, content_hash, fmix64, shingle_hashes
 from .ledger import load_arrays
 from .score import Piece
 
 _U32_MAX = np.uint32(0xFFFFFFFF)
+#: Containment (intersection over the smaller set) counts when the smaller set has at least
+#: this share of the larger one's size: low enough that a melody-only or chords-only file is
+#: found inside its full arrangement (a subset of the voices), not so low that a short figure
+#: is "contained" in every long piece (files below ``min_shingles`` are never compared).
+MIN_SIZE_RATIO = 0.1
 _ROLL = np.uint64(0x9E3779B97F4A7C15)
 # MurmurHash3 fmix32 constants, as in datasketch.minhash._FMIX_CONSTANTS[32].
 _F32 = (np.uint32(16), np.uint32(0x85EBCA6B), np.uint32(13), np.uint32(0xC2B2AE35), np.uint32(16))
@@ -135,29 +145,95 @@ def overlap_counts(a: np.ndarray, b: np.ndarray, cap: int = ShingleSpec().max_sh
     return len(np.intersect1d(a, b, assume_unique=True)), len(a), len(b)
 
 
-def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = 0.75,
-                   cap: int = ShingleSpec().max_shingles) -> tuple[float, str]:
+def set_similarity(a: np.ndarray, b: np.ndarray, *, min_size_ratio: float = MIN_SIZE_RATIO,
+                   cap: int = ShingleSpec().max_shingles, generic: np.ndarray | None = None
+                   ) -> tuple[float, str]:
     """Exact similarity of two sorted unique shingle arrays: ``(value, measure)``.
 
     ``measure`` is ``"jaccard"`` or ``"containment"`` (intersection over the smaller set, used
     when the smaller set has at least ``min_size_ratio`` of the larger one's size and scores
-    higher: an excerpt of 80 % or more of a piece is contained in it). Sets cut at ``cap``
-    (smallest hashes kept) are compared on their common hash range (``overlap_counts``).
+    higher: an excerpt, or a subset of the voices such as a melody-only file), of the whole
+    sets or, prefixed ``"lead "``, of their lead-voice parts (``lead_part``; counted when both
+    hold ``MIN_LEAD`` shingles), whichever is higher: a tune under a new accompaniment keeps
+    its lead. Sets cut at ``cap`` (smallest hashes kept) are compared on their common hash
+    range (``overlap_counts``). ``generic`` shingles (``generic_shingles``) are left out of
+    both sets first.
     """
+    a, b = drop_generic(a, generic), drop_generic(b, generic)
+    best = _measure(a, b, min_size_ratio, cap)
+    la, lb = lead_part(a), lead_part(b)
+    if len(la) >= MIN_LEAD and len(lb) >= MIN_LEAD:
+        lead = _measure(la, lb, min_size_ratio, cap, LEAD_CONTAINED)
+        if lead[0] > best[0]:
+            return lead[0], "lead " + lead[1]
+    return best
+
+
+def _measure(a: np.ndarray, b: np.ndarray, min_size_ratio: float, cap: int,
+             min_contained: int = 0) -> tuple[float, str]:
+    """Jaccard, or containment where ``set_similarity`` allows it (and the smaller set holds
+    ``min_contained`` shingles or more), of two sorted sets."""
     if len(a) == 0 or len(b) == 0:
         return 0.0, "jaccard"
     inter, la, lb = overlap_counts(a, b, cap)
     jac = inter / (la + lb - inter)
     small, large = min(la, lb), max(la, lb)
-    if min_size_ratio < 1.0 and small >= min_size_ratio * large:
+    if min_size_ratio < 1.0 and small >= min_size_ratio * large and small >= min_contained:
         cont = inter / small
         if cont > jac:
             return float(cont), "containment"
     return float(jac), "jaccard"
 
 
+#: Fewest lead-voice shingles in each set for the leads to be compared on their own, and in
+#: the smaller lead for containment to count there (below it, Jaccard only): a short tune is
+#: "contained" by chance in another of the same idiom (hymn tunes: steps, cadence formulas).
+MIN_LEAD = 16
+LEAD_CONTAINED = 64
+
+
+def lead_part(shingles: np.ndarray) -> np.ndarray:
+    """The lead voice's shingles of a sorted set: its prefix below ``LEAD_LIMIT`` (a view)."""
+    return shingles[:int(np.searchsorted(shingles, LEAD_LIMIT))]
+
+
+#: A shingle is generic when at least this share of the sampled files holds it, and at least
+#: ``GENERIC_MIN_FILES`` of them (see ``generic_shingles``).
+GENERIC_SHARE = 0.01
+GENERIC_MIN_FILES = 10
+#: Files whose shingle sets are counted for the document frequencies (a consistent sample:
+#: generic material is common by definition, so a sample finds it; memory stays bounded).
+GENERIC_SAMPLE = 2000
+
+
+def generic_shingles(sets: list[np.ndarray], *, share: float = GENERIC_SHARE,
+                     min_files: int = GENERIC_MIN_FILES) -> np.ndarray:
+    """Sorted uint64 shingles held by at least ``max(min_files, share * len(sets))`` of the
+    sets (document frequency): figures shared by many unrelated files (a walking bass over a
+    common progression, a stock arpeggio), which must not link two pieces. Files of one
+    piece share their shingles too, so the count must lie above the number of versions a
+    piece may have in the corpus."""
+    need = max(int(min_files), int(np.ceil(share * len(sets))))
+    if len(sets) < need or not len(sets):
+        return np.zeros(0, dtype=np.uint64)
+    allh = np.sort(np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets]))
+    if not len(allh):
+        return allh
+    start = np.flatnonzero(np.concatenate(([True], allh[1:] != allh[:-1])))
+    count = np.diff(np.append(start, len(allh)))
+    return allh[start[count >= need]]
+
+
+def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray:
+    """``shingles`` without the ``generic`` ones (both sorted unique uint64)."""
+    if generic is None or not len(generic) or not len(shingles):
+        return shingles
+    pos = np.minimum(np.searchsorted(generic, shingles), len(generic) - 1)
+    return shingles[generic[pos] != shingles]
+
+
 def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
-                      min_size_ratio: float = 0.75, cap: int = ShingleSpec().max_shingles,
+                      min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
                       compiled: bool = True) -> np.ndarray:
     """``set_similarity`` values (float64) of the pairs ``(sets[i[k]], sets[j[k]])``, the same
     numbers to the last bit: the counts come from one compiled call when the extension is
@@ -169,6 +245,19 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
     j = np.ascontiguousarray(j, dtype=np.int64)
     if not len(i):
         return np.zeros(0, dtype=np.float64)
+    sim = _pair_measure(sets, i, j, min_size_ratio, cap, compiled)
+    leads = [lead_part(np.asarray(x)) for x in sets]
+    sizes = np.array([len(x) for x in leads], dtype=np.int64)
+    both = np.flatnonzero((sizes[i] >= MIN_LEAD) & (sizes[j] >= MIN_LEAD))
+    if len(both):
+        lead = _pair_measure(leads, i[both], j[both], min_size_ratio, cap, compiled, LEAD_CONTAINED)
+        sim[both] = np.maximum(sim[both], lead)
+    return sim
+
+
+def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size_ratio: float,
+                  cap: int, compiled: bool, min_contained: int = 0) -> np.ndarray:
+    """``_measure`` of many pairs: counts in one compiled call (or ``overlap_counts``)."""
     kernel = _compiled("overlap_counts") if compiled else None
     if kernel is not None:
         counts = np.frombuffer(kernel(sets, i, j, int(cap)), dtype=np.int64).reshape(-1, 3)
@@ -182,7 +271,8 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
         if min_size_ratio < 1.0:
             small, large = np.minimum(la, lb), np.maximum(la, lb)
             cont = np.where(small > 0, inter / np.maximum(small, 1), 0.0)
-            sim = np.where((small >= min_size_ratio * large) & (cont > sim), cont, sim)
+            sim = np.where((small >= min_size_ratio * large) & (small >= min_contained) & (cont > sim),
+                           cont, sim)
     return sim
 
 
@@ -329,45 +419,61 @@ class LSHIndex:
         return m
 
     def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
-                        min_size_ratio: float = 0.75, cap: int = ShingleSpec().max_shingles,
-                        margin_sigmas: float = 4.0) -> np.ndarray:
-        """The candidate codes whose MinHash estimate leaves ``set_similarity`` a chance to
+                        min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
+                        margin_sigmas: float = 3.0) -> np.ndarray:
+        """The candidate codes whose MinHash estimates leave ``set_similarity`` a chance to
         reach ``threshold``; the rest need no exact comparison.
 
-        A pair can pass only if its Jaccard is at least ``threshold``, or, when containment
-        applies (smaller set >= ``min_size_ratio`` of the larger, size ratio ``p``), at least
-        ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard). The estimate (the
-        share of equal MinHash values) has standard deviation ``sqrt(J (1 - J) / num_perm)``
-        (Broder 1997); a pair is dropped only when its estimate lies more than
-        ``margin_sigmas`` of them below that bound. Pairs with a set cut at ``cap`` are always
-        kept (their exact comparison uses a sub-range, not the signed sets). ``set_sizes``
-        holds the shingle-set size of each id, in insertion order.
+        A pair can pass on the whole sets only if their Jaccard is at least ``threshold``, or,
+        when containment applies (smaller set >= ``min_size_ratio`` of the larger, size ratio
+        ``p``), at least ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard); on
+        the leads only if theirs is at least ``t / (2 - t)`` (containment ``t`` between leads
+        of one size). Each half of a signature (``signature_of``: leads, whole sets) estimates
+        its Jaccard with standard deviation ``sqrt(J (1 - J) / (num_perm / 2))`` (Broder
+        1997); a pair is dropped only when both estimates lie more than ``margin_sigmas`` of
+        them below their bounds. Pairs with a set cut at ``cap`` are always kept (their exact
+        comparison uses a sub-range, not the signed sets). ``set_sizes`` holds the
+        shingle-set size of each id, in insertion order.
 
-        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on,
-        while at the default threshold a real link has about 19 or more: most candidates of a
-        large corpus are unrelated pieces sharing one band, and this removes them without
-        touching their shingles."""
+        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on: most
+        candidates of a large corpus are unrelated pieces sharing one band, and this removes
+        most of them without touching their shingles."""
         n = len(self.ids)
         if not len(codes):
             return codes
-        sig = self.matrix()
-        sizes = np.asarray(set_sizes, dtype=np.float64)
         keep = np.empty(len(codes), dtype=bool)
-        t = float(threshold)
+        sig = self.matrix()
         for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
             c = codes[lo:lo + PAIR_CHUNK]
-            i, j = c // n, c % n
-            est = pair_estimates(sig, i, j)
-            si, sj = sizes[i], sizes[j]
-            small, large = np.minimum(si, sj), np.maximum(si, sj)
-            rho = small / np.maximum(large, 1.0)
-            bound = np.full(len(c), t)
-            if min_size_ratio < 1.0:
-                cont = small >= min_size_ratio * large
-                bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))
-            sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / sig.shape[1])
-            keep[lo:lo + len(c)] = (est >= bound - margin_sigmas * sd) | (large >= cap)
+            keep[lo:lo + len(c)] = plausible_pairs(sig, c // n, c % n, set_sizes, threshold,
+                                                   min_size_ratio=min_size_ratio, cap=cap,
+                                                   margin_sigmas=margin_sigmas)
         return codes[keep]
+
+
+def plausible_pairs(sig: np.ndarray, i: np.ndarray, j: np.ndarray, set_sizes: Any, threshold: float, *,
+                    min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
+                    margin_sigmas: float = 3.0) -> np.ndarray:
+    """Mask of the pairs (rows ``i``, ``j`` of the signature matrix ``sig``) whose MinHash
+    estimates leave ``set_similarity`` a chance to reach ``threshold`` (see
+    ``LSHIndex.plausible_codes``, which dedup uses; the split's grouping uses it with a wider
+    margin). ``set_sizes`` holds each row's shingle-set size."""
+    half = sig.shape[1] // 2
+    sizes = np.asarray(set_sizes, dtype=np.float64)
+    t = float(threshold)
+    lead_bound = t / (2.0 - t)
+    lead_floor = lead_bound - margin_sigmas * np.sqrt(max(lead_bound * (1 - lead_bound), 1e-4) / half)
+    est_lead = pair_estimates(sig[:, :half], i, j)
+    est = pair_estimates(sig[:, half:], i, j)
+    si, sj = sizes[i], sizes[j]
+    small, large = np.minimum(si, sj), np.maximum(si, sj)
+    rho = small / np.maximum(large, 1.0)
+    bound = np.full(len(i), t)
+    if min_size_ratio < 1.0:
+        cont = small >= min_size_ratio * large
+        bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))
+    sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / half)
+    return (est >= bound - margin_sigmas * sd) | (est_lead >= lead_floor) | (large >= cap)
 
 
 #: Candidate pairs handled at once where a step makes per-pair arrays: the two (pairs x
@@ -497,8 +603,8 @@ def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
 
 def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: float, *,
                  signatures: dict[str, np.ndarray] | None = None,
-                 min_size_ratio: float = 0.75, skip: UnionFind | None = None
-                 ) -> list[tuple[str, str, float]]:
+                 min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None,
+                 generic: np.ndarray | None = None) -> list[tuple[str, str, float]]:
     """Keep the candidate pairs whose similarity reaches ``threshold``: ``(a, b, sim)``.
 
     Similarity is ``set_similarity`` on the shingle sets when given (``shingles[key]``, compared
@@ -515,22 +621,26 @@ def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: flo
     index = np.array([pos.setdefault(k, len(pos)) for pair in pairs for k in pair],
                      dtype=np.int64).reshape(-1, 2)
     return verify_index_pairs(list(pos), index[:, 0], index[:, 1], shingles, threshold,
-                              min_size_ratio=min_size_ratio, skip=skip)
+                              min_size_ratio=min_size_ratio, skip=skip, generic=generic)
 
 
 def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any,
-                       threshold: float, *, min_size_ratio: float = 0.75,
-                       skip: UnionFind | None = None) -> list[tuple[str, str, float]]:
+                       threshold: float, *, min_size_ratio: float = MIN_SIZE_RATIO,
+                       skip: UnionFind | None = None, generic: np.ndarray | None = None
+                       ) -> list[tuple[str, str, float]]:
     """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays (LSH
     candidate codes), without a Python tuple per candidate: ``VERIFY_CHUNK`` pairs per
     ``pair_similarities`` call, then the pairs that reach ``threshold`` taken in order, so the
     result is the one a pair-by-pair pass gives. Only the sets of keys in some pair are read
-    (``shingles[key]``, e.g. lazily built facts on a rerun)."""
+    (``shingles[key]``, e.g. lazily built facts on a rerun). ``generic`` shingles are left
+    out of every set first (``drop_generic``)."""
     i = np.asarray(i, dtype=np.int64)
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
     sets, li, lj = involved_sets(keys, i, j, shingles)
+    if generic is not None and len(generic):
+        sets = [drop_generic(np.asarray(x, dtype=np.uint64), generic) for x in sets]
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
@@ -573,7 +683,7 @@ def _link_in_order(scored: Iterable[tuple[str, str, float]], threshold: float,
 
 def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm: int = 128,
                bands: int = 64, shingles: dict[str, np.ndarray] | None = None,
-               min_size_ratio: float = 0.75, skip: UnionFind | None = None
+               min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
                ) -> list[tuple[str, str, float]]:
     """Verified near pairs ``(a, b, similarity)`` with ``a < b``, sorted.
 
@@ -592,7 +702,7 @@ def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm:
 def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], threshold: float, *,
                        num_perm: int = 128, bands: int = 64,
                        shingles: dict[str, np.ndarray] | None = None,
-                       min_size_ratio: float = 0.75, skip: UnionFind | None = None
+                       min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
                        ) -> list[tuple[str, str, float]]:
     """Incremental form: pairs new-vs-old and new-vs-new only (old-vs-old are not recomputed)."""
     index = LSHIndex(num_perm, bands)
@@ -607,14 +717,24 @@ def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], t
 
 def signature_of(piece: Piece, opts: dict[str, Any] | None = None
                  ) -> tuple[np.ndarray, np.ndarray, str]:
-    """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece.
+    """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece: the one
+    entry point for a file's identity artifacts (dedup's ``prepare``, the split, ``leakage``).
 
-    ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and ``max_shingles``.
+    The signature's second half is the MinHash of the whole set; its first half the MinHash
+    (``num_perm // 2`` permutations) of the lead voice's part (``lead_part``) when that holds
+    ``MIN_LEAD`` shingles, else of the whole set too. LSH bands over the first half so find
+    files sharing a lead under different accompaniments; ``LSHIndex.plausible_codes`` reads
+    each half on its own. ``opts`` may set ``ngram``, ``grid``, ``num_perm``, ``seed`` and
+    ``max_shingles``.
     """
     o = opts or {}
     spec = ShingleSpec(ngram=int(o.get("ngram", ShingleSpec.ngram)),
                        grid=int(o.get("grid", ShingleSpec.grid)),
                        max_shingles=int(o.get("max_shingles", ShingleSpec.max_shingles)))
     sh = shingle_hashes(piece, spec)
-    sig = minhash(sh, int(o.get("num_perm", 128)), int(o.get("seed", 1)))
+    num_perm, seed = int(o.get("num_perm", 128)), int(o.get("seed", 1))
+    sig = minhash(sh, num_perm, seed)
+    lead = lead_part(sh)
+    if len(lead) >= MIN_LEAD:
+        sig[:num_perm // 2] = minhash(lead, num_perm // 2, seed)
     return sig, sh, content_hash(piece)

@@ -494,7 +494,7 @@ def test_encoder_delta_length_boundaries():
 
 
 # --- the per-file analyses ----------------------------------------------------------------------
-# The compiled analyses (pc_histogram, meter_accents, note_stats, shingles, content_rows,
+# The compiled analyses (pc_histogram, meter_accents, note_stats, voice_shingles, content_rows,
 # shift_sort, table_group_events) against the numpy formulations they stand in for, which stay
 # the specification: every value equal to the last bit, on decoded pieces and on the variants
 # of tests/test_speed_equivalence.py that take each general path, plus tables the compiled
@@ -591,7 +591,8 @@ def test_compiled_shingles_and_content_hash(monkeypatch, analysis_pieces):
     from pipeline.analysis import shingles as shmod
     for spec in (shmod.ShingleSpec(), shmod.ShingleSpec(ngram=3, grid=8),
                  shmod.ShingleSpec(ngram=1, grid=2, max_shingles=50),
-                 shmod.ShingleSpec(ngram=9, grid=3, max_interval=5, max_ioi_beats=0.5)):
+                 shmod.ShingleSpec(ngram=9, grid=3, max_interval=5, max_ratio=2, min_distinct=4),
+                 shmod.ShingleSpec(bass_below=0, lead_monophony=0.5, pitch_extra=0)):
         _both_paths(monkeypatch, analysis_pieces, lambda p: shmod.shingle_hashes(p, spec))
     _both_paths(monkeypatch, analysis_pieces, shmod.content_hash)
 

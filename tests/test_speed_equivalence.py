@@ -15,6 +15,9 @@ tests; ``test_minhash_layouts_equal_datasketch`` repeats datasketch at the sizes
 """
 from __future__ import annotations
 
+import re
+from collections import Counter
+
 import dataclasses
 import hashlib
 
@@ -231,26 +234,82 @@ def plain_piece_stats(piece):
     }
 
 
-def plain_melody_tokens(piece, spec):
-    notes = piece.notes
-    pitched = notes["channel"] != DRUM_CHANNEL
-    start = notes["start"][pitched]
-    if len(start) < 2:
-        return np.zeros(0, dtype=np.int64)
-    pitch = notes["pitch"][pitched].astype(np.int64)
+def plain_line_tokens(onsets, spec):
+    """One voice's line tokens, one Python step per onset: ``onsets`` are (grid step, pitch)."""
+    top = {}
+    for q, p in onsets:
+        top[q] = max(top.get(q, p), p)
+    keys = sorted(top)
+    steps = [b - a for a, b in zip(keys, keys[1:])]
+    if not steps:
+        return []
+    out = []
+    for k in range(1, len(keys)):
+        interval = max(-spec.max_interval, min(spec.max_interval, top[keys[k]] - top[keys[k - 1]]))
+        if k == 1:
+            rhythm = shmod.RATIO_FIRST
+        else:  # round(2 log2(ratio)) by the class boundaries 2 ** ((c + 0.5) / 2)
+            ratio = float(steps[k - 1]) / float(steps[k - 2])  # as float64s, as numpy divides
+            c = -spec.max_ratio
+            while c < spec.max_ratio and ratio >= 2.0 ** ((c + 0.5) / 2):
+                c += 1
+            rhythm = c + 16
+        out.append((interval + 128) * 4096 + rhythm)
+    return out
+
+
+def plain_window_hashes(tokens, n, kind, spec, keep_all=False):
+    mask = (1 << 64) - 1
+    out = []
+    for k in range(len(tokens) - n + 1):
+        w = tokens[k:k + n]
+        if not keep_all and len(set(w)) <= min(spec.min_distinct, n - 2):
+            continue
+        h = (n + shmod.KIND_TAGS[kind] * 0x632BE59BD9B4E019) & mask
+        for t in w:
+            h = (h * int(shmod._ROLL) + t) & mask
+        out.append(h)
+    return out
+
+
+def plain_shingle_hashes(piece, spec):
+    """Line and pitch shingles of every voice, voice by voice and window by window."""
     tpb = int(piece.ticks_per_beat)
-    q = (start * (2 * spec.grid) + tpb) // (2 * tpb)
-    if np.any(q[1:] < q[:-1]):
-        order = np.argsort(q, kind="stable")
-        q, pitch = q[order], pitch[order]
-    first = np.flatnonzero(np.concatenate(([True], q[1:] != q[:-1])))
-    if len(first) < 2:
-        return np.zeros(0, dtype=np.int64)
-    top = np.maximum.reduceat(pitch, first)
-    onset = q[first]
-    interval = np.clip(np.diff(top), -spec.max_interval, spec.max_interval)
-    ioi = np.minimum(np.diff(onset), int(spec.max_ioi_beats * spec.grid))
-    return (interval + 128) * 4096 + ioi
+    voices = {}
+    # the grid step in numpy's int64 arithmetic, as every analysis rounds ticks (it wraps for
+    # ticks near 2**63, identically in both)
+    grid_q = (piece.notes["start"] * (4 * spec.grid) + tpb) // (2 * tpb)
+    for n, q in zip(piece.notes, grid_q.tolist()):
+        if n["channel"] == DRUM_CHANNEL:
+            continue
+        voices.setdefault(int(n["track"]) * 16 + int(n["channel"]), []).append((q, int(n["pitch"])))
+    stats = {}
+    for v, onsets in voices.items():
+        pitches = sorted(p for _, p in onsets)
+        stats[v] = (pitches[(len(pitches) - 1) // 2], len(onsets), len({q for q, _ in onsets}))
+    upper = [v for v in sorted(voices) if stats[v][0] >= spec.bass_below]
+    lead = plain_lead_voice(upper, stats, piece.track_names, spec)
+    hashes, first_line, pitch_hashes, lead_hashes = [], None, [], []
+    for v in upper:
+        toks = plain_line_tokens(voices[v], spec)
+        if toks and first_line is None:
+            first_line = toks
+        hashes += plain_window_hashes(toks, spec.ngram, "line", spec)
+        moved = [t // 4096 for t in toks if t // 4096 != 128]
+        pitch_hashes += plain_window_hashes(moved, spec.ngram + spec.pitch_extra, "pitch", spec)
+        if v == lead:
+            lead_hashes += plain_window_hashes(toks, spec.ngram, "lead", spec)
+    if not hashes and first_line:
+        w = first_line[:spec.ngram]
+        hashes = plain_window_hashes(w, len(w), "line", spec, keep_all=True)
+    hashes += pitch_hashes
+    top = 1 << 63
+    out = [int(h) | top for h in plain_fmix64(np.array(hashes, dtype=np.uint64))]
+    out += [int(h) & (top - 1) for h in plain_fmix64(np.array(lead_hashes, dtype=np.uint64))]
+    if not out:
+        return np.zeros(0, dtype=np.uint64)
+    out = np.unique(np.array(out, dtype=np.uint64))
+    return out[:spec.max_shingles] if len(out) > spec.max_shingles else out
 
 
 def plain_fmix64(x):
@@ -264,18 +323,20 @@ def plain_fmix64(x):
     return x
 
 
-def plain_shingle_hashes(piece, spec):
-    tokens = plain_melody_tokens(piece, spec).astype(np.uint64)
-    n = min(spec.ngram, len(tokens))
-    if n == 0:
-        return np.zeros(0, dtype=np.uint64)
-    count = len(tokens) - n + 1
-    h = np.full(count, np.uint64(n), dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for j in range(n):
-            h = h * shmod._ROLL + tokens[j:j + count]
-    out = np.unique(plain_fmix64(h))
-    return out[:spec.max_shingles] if len(out) > spec.max_shingles else out
+def plain_lead_voice(upper, stats, track_names, spec):
+    """The lead voice by the rules of shingles.lead_voice, written out voice by voice."""
+    cand = [v for v in upper if stats[v][2] > spec.ngram]
+    for t, name in enumerate(track_names):
+        words = set(re.findall(r"[a-z]+", name.casefold()))
+        named = [v for v in cand if v // 16 == t]
+        if words & set(shmod.LEAD_NAMES) and named:
+            return max(named, key=lambda v: (stats[v][2], -v))
+    mono = [v for v in cand if stats[v][2] >= spec.lead_monophony * stats[v][1]]
+    if not mono:
+        return None
+    busiest = max(stats[v][2] for v in mono)
+    busy = [v for v in mono if 2 * stats[v][2] >= busiest]
+    return min(busy, key=lambda v: (-stats[v][0], -stats[v][2], v))
 
 
 def plain_content_hash(piece):
@@ -486,7 +547,6 @@ def test_piece_stats(pieces):
                                   shmod.ShingleSpec(ngram=1, grid=2, max_shingles=50),
                                   shmod.ShingleSpec(ngram=9, grid=3, max_interval=5)])
 def test_shingles(pieces, spec):
-    _check(pieces, lambda p: shmod.melody_tokens(p, spec), lambda p: plain_melody_tokens(p, spec))
     _check(pieces, lambda p: shmod.shingle_hashes(p, spec),
            lambda p: plain_shingle_hashes(p, spec))
 
@@ -497,8 +557,18 @@ def test_content_hash_and_signature(pieces):
         spec = shmod.ShingleSpec(ngram=int(opts.get("ngram", 4)), grid=int(opts.get("grid", 4)))
         num_perm, seed = int(opts.get("num_perm", 128)), int(opts.get("seed", 1))
         _check(pieces, lambda p: signature_of(p, opts),
-               lambda p: (plain_minhash(plain_shingle_hashes(p, spec), num_perm, seed),
+               lambda p: (plain_signature(plain_shingle_hashes(p, spec), num_perm, seed),
                           plain_shingle_hashes(p, spec), plain_content_hash(p)))
+
+
+def plain_signature(shingles, num_perm, seed):
+    """signature_of's layout: the whole set's MinHash, its first half replaced by the lead
+    voice's (the shingles below 2**63) when it has 16 or more."""
+    sig = plain_minhash(shingles, num_perm, seed)
+    lead = shingles[shingles < np.uint64(1 << 63)]
+    if len(lead) >= 16:
+        sig[:num_perm // 2] = plain_minhash(lead, num_perm // 2, seed)
+    return sig
 
 
 def test_fmix64_keeps_shape_and_input():

@@ -1,14 +1,17 @@
 """Stage ``dedup``: drop exact and near duplicates, corpus-wide, and record the clusters.
 
-Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set
-(melody intervals x beat-grid rhythm, see ``pipeline.analysis.shingles``) and its MinHash
-signature. Over the corpus (``run_corpus``):
+Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set (the
+lines of every voice above the bass register, interval x onset gap in units of the line, and
+their pitch-only contours; the lead voice's again, marked; see ``pipeline.analysis.shingles``)
+and its MinHash signature (``similarity.signature_of``). Over the corpus (``run_corpus``):
 
 1. byte-identical files (equal sha256) and files with identical note content (equal content
    hash) are linked first, with no MinHash work (``exact_duplicate``);
 2. one representative per content group goes through LSH banding; each candidate pair is
-   verified on the exact shingle sets (Jaccard, or containment for excerpts) and linked when
-   the similarity reaches ``threshold`` (``near_duplicate``);
+   verified on the exact shingle sets, generic shingles (held by ``generic_share`` of the
+   files) left out (Jaccard, or containment for excerpts and voice subsets, of the whole sets
+   or of the lead voices) and linked when the similarity reaches ``threshold``
+   (``near_duplicate``);
 3. clusters are the connected components of the links (union-find; they are transitive, as
    leakage is, and the split keeps each one in one part). Removal is not transitive: in each
    cluster, members are taken in ``keep_policy`` order (on a rerun, members kept last time
@@ -29,7 +32,8 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..ledger import load_arrays
 from ..score import Piece
-from ..similarity import LSHIndex, UnionFind, check_banding, signature_of, verify_index_pairs
+from ..similarity import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex, UnionFind, check_banding,
+                          generic_shingles, signature_of, verify_index_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -121,7 +125,8 @@ KEEP_POLICIES: dict[str, tuple[Callable[[dict], tuple], str]] = {
 }
 
 #: Defaults chosen by measurement on the dedup benchmark (``python -m pipeline.bench_dedup``,
-#: synth corpora of 1,000 and 20,000 files, seed 0):
+#: synth corpora of 1,000 and 20,000 files, seed 0), with version 1's shingles (the skyline);
+#: version 2 (every voice, the lead, ratios of gaps) keeps them: README, Near-duplicate removal.
 #: * ``ngram`` 4: n=3 catches every edited copy too but lets distinct pieces reach 0.35
 #:   (18x more LSH candidates, 4x slower corpus step); n=5 loses edited copies (recall 0.95).
 #: * ``threshold`` 0.3: the lowest edited copies score 0.29-0.38 and the highest pair of distinct
@@ -143,7 +148,7 @@ def _containment_ratio(v: Any) -> str | None:
 
 #: Options that change links (a change invalidates the links stored by the previous run).
 _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min_size_ratio",
-                 "min_shingles")
+                 "min_shingles", "generic_share")
 
 
 @register
@@ -151,7 +156,8 @@ class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
     version = 2
-    doc = "Drop exact and near duplicates (MinHash LSH over transposition-invariant note shingles)."
+    doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
+           "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
     #: (split reads them for its candidate pairs too), not for every member
     deferred_artifacts = ("shingles",)
@@ -164,15 +170,21 @@ class Dedup(Stage):
         Option("num_perm", int, DEFAULT_NUM_PERM, "MinHash signature length.", in_range(8, 1024)),
         Option("bands", int, DEFAULT_BANDS,
                "LSH bands; must divide num_perm (rows per band = num_perm / bands).", positive),
-        Option("ngram", int, DEFAULT_NGRAM, "Melody tokens (interval, onset gap) per shingle.", in_range(1, 16)),
+        Option("ngram", int, DEFAULT_NGRAM, "Line tokens (interval, onset gap in units of the line) "
+               "per shingle (pitch-only shingles take 2 more).", in_range(1, 16)),
         Option("grid", int, ShingleSpec.grid, "Onset grid steps per beat for shingles.", positive),
         Option("seed", int, 1, "MinHash permutation seed.", None),
-        Option("min_size_ratio", float, 0.75,
-               "Containment (for excerpts) is used only when the smaller shingle set has at least "
-               "this fraction of the larger one's size; 1 disables it.", _containment_ratio),
+        Option("min_size_ratio", float, MIN_SIZE_RATIO,
+               "Containment (an excerpt, or a subset of the voices such as a melody-only file) is "
+               "used only when the smaller shingle set has at least this fraction of the larger "
+               "one's size; 1 disables it.", _containment_ratio),
         Option("min_shingles", int, 16,
                "Files with fewer distinct shingles are only exact-deduplicated: such short sets "
                "cannot tell a copy from a shared figure (a scale, an arpeggio).", positive),
+        Option("generic_share", float, GENERIC_SHARE,
+               "Shingles held by at least this share of the files (and by 10 or more) are generic "
+               "(a stock bass or accompaniment figure) and are left out when files are compared; "
+               "1 keeps every shingle.", unit_interval),
         Option("keep_policy", str, "most_notes",
                "Order in which a cluster's members are kept (the first always; a later one unless "
                "it is a direct duplicate of one kept before it): " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
@@ -265,11 +277,19 @@ class Dedup(Stage):
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
         codes = index.candidate_codes(new_reps if reusable else None)
         n_candidates = len(codes)
+        # the generic shingles are counted once and kept while the links are reused (a rerun
+        # must not read every file's set; its new pairs are verified as the old ones were)
+        if reusable and "generic" in prev:
+            self._generic = np.array(prev["generic"], dtype=np.uint64)
+        else:
+            self._generic = self._generic_shingles(indexed, arts)
+        state.save("generic", self._generic.tolist())
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
         verified = verify_index_pairs(index.ids, codes // n_ids, codes % n_ids, _Shingles(facts),
-                                      threshold, min_size_ratio=float(o["min_size_ratio"]))
+                                      threshold, min_size_ratio=float(o["min_size_ratio"]),
+                                      generic=self._generic)
         for a, b, sim in verified:
             near.add(a, b, sim)
             uf.union(a, b)
@@ -277,7 +297,8 @@ class Dedup(Stage):
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
                      f"{n_candidates} LSH candidate pairs, {len(codes)} plausible by their MinHash "
-                     f"estimate, {len(verified)} verified links")
+                     f"estimate, {len(verified)} verified links; {len(self._generic)} generic "
+                     "shingles left out")
 
         # 3. clusters and their kept members
         key, _ = KEEP_POLICIES[o["keep_policy"]]
@@ -317,6 +338,15 @@ class Dedup(Stage):
         state.save("kept", sorted(kept_ids))
         state.save("cluster_sources", cluster_sources)
         return results
+
+    def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
+        """The generic shingles (``similarity.generic_shingles``) of the compared files, counted
+        on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
+        share = float(self.opts["generic_share"])
+        if share >= 1.0:
+            return np.zeros(0, dtype=np.uint64)
+        sample = load_arrays([arts[k]["shingles"] for k in indexed[:GENERIC_SAMPLE]])
+        return generic_shingles(sample, share=share)
 
     @staticmethod
     def _as_last_run(group: list[str], old: set[str], last: Any, last_sources: dict[str, str],
