@@ -476,15 +476,15 @@ def key_probabilities(features: np.ndarray, weights: np.ndarray | None = None) -
 def estimate_from_probabilities(probs: np.ndarray) -> KeyEstimate:
     """The KeyEstimate of 24 key probabilities: the most probable key (the first on a tie),
     its probability as confidence."""
-    order = np.argsort(-probs, kind="stable")
-    best, second = int(order[0]), int(order[1])
+    scores = probs.tolist()
+    best = scores.index(max(scores))
+    second = max((i for i in range(24) if i != best), key=scores.__getitem__)
     mode = MODES[best // 12]
     pc = best % 12
     names = MAJOR_TONIC_NAMES if mode == "major" else MINOR_TONIC_NAMES
-    return KeyEstimate(tonic=names[pc], tonic_pc=pc, mode=mode, confidence=float(probs[best]),
+    return KeyEstimate(tonic=names[pc], tonic_pc=pc, mode=mode, confidence=scores[best],
                        runner_up=key_name(second % 12, MODES[second // 12]),
-                       correlation=float(probs[best]), profile=LEARNED,
-                       scores=tuple(float(p) for p in probs))
+                       correlation=scores[best], profile=LEARNED, scores=tuple(scores))
 
 
 def estimate_key_learned(piece: Piece, weights: np.ndarray | None = None) -> KeyEstimate:
