@@ -317,8 +317,9 @@ def parse_key(text: str) -> tuple[int, str]:
 #:   on a beat;
 #: - ``first_bass``, ``last_bass``, ``last_top``: one-hot pitch class of the lowest note of the
 #:   first onset, the lowest and the highest note of the last onset;
-#: - ``major_triads`` / ``minor_triads``: per root, the share of beats in which a major / minor
-#:   triad on that root sounds (all three pitch classes sound at some point in the beat);
+#: - ``major_triads`` / ``minor_triads``: per root, the share of the beats where a note starts
+#:   in which a major / minor triad on that root sounds (all three pitch classes sound at some
+#:   point in the beat);
 #:   ``first_major_triad`` ... ``last_minor_triad``: the roots of the triads of the first and
 #:   of the last beat that holds one; ``cadence_major`` / ``cadence_minor``: per root, how
 #:   often a major / minor triad on it follows a major triad on its fifth (V-I, common practice)
@@ -400,12 +401,17 @@ def key_features(piece: Piece) -> np.ndarray:
     out[6, pitch[first].min() % 12] = 1.0
     out[7, pitch[last].min() % 12] = 1.0
     out[8, pitch[last].max() % 12] = 1.0
-    # pitch classes sounding in each beat: +1 at the note's first beat, -1 after its last
+    # pitch classes sounding in each beat where a note starts (other beats only lose notes):
+    # over those beats in order, +1 at the note's first beat, -1 at the first one after its
+    # last (numbered by rank, so huge tick values cost nothing)
     b0 = start // tpb
     b1 = np.maximum(b0, (end - 1) // tpb) + 1
-    beats = int(b1.max()) + 1
-    count = (np.bincount(b0 * 12 + pc, minlength=beats * 12)
-             - np.bincount(b1 * 12 + pc, minlength=beats * 12)).reshape(beats, 12)
+    beats = np.unique(b0)
+    first_beat = np.searchsorted(beats, b0)
+    after_beat = np.searchsorted(beats, b1)
+    size = (len(beats) + 1) * 12
+    count = (np.bincount(first_beat * 12 + pc, minlength=size)
+             - np.bincount(after_beat * 12 + pc, minlength=size)).reshape(-1, 12)[:-1]
     # each beat's set of sounding pitch classes as a 12-bit number, then its triads by table
     sets = (np.cumsum(count, axis=0) > 0).astype(np.int64) @ _BITS
     triads = _TRIADS[sets]  # (beats, 24): major roots, then minor roots
