@@ -66,7 +66,7 @@ def cache_dir() -> Path:
 
 
 def _cached_work(set_name: str, ident: str, build: Callable[[], dict | None]) -> dict | None:
-    """``build()``'s work cached in one JSON file (bytes as base64 hex-free tags)."""
+    """``build()``'s work, cached as one tagged-JSON file per work (bytes as base64)."""
     from .evaluate_key import _from_json, _to_json
     import music21
     digest = hashlib.sha1(f"{CACHE_VERSION}:{music21.__version__}:{ident}".encode()).hexdigest()[:20]
