@@ -82,8 +82,8 @@ class KeyMeter(Stage):
     kind = "file"
     version = 2
     options = KEY_OPTIONS
-    doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles) and meter (onset accent template "
-           "matching), records what the file declares, the average tempo and the fraction of "
+    doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles) and "
+           "meter (onset accent template matching), records what the file declares, the average tempo and the fraction of "
            "onsets on a 16th/triplet grid. Never drops a file.")
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
