@@ -18,6 +18,8 @@ REASONS: dict[str, tuple[str, str]] = {
     "needs_repair": ("validate", "with allow_repairs: false, a file that needed one of the decoder's named repairs"),
     "no_notes": ("validate", "a readable file without a single note"),
     "stage_error": ("any", "a stage raised an unexpected error on this file (a bug: please report it with the file)"),
+    "key_uncertain": ("transpose", "with below_confidence: drop, the key was estimated with a key_confidence below "
+                                   "min_key_confidence, so the file could not be transposed reliably"),
     "exact_duplicate": ("dedup", "byte-identical to the kept file, or the same notes with other metadata, programs, "
                                  "velocities, tempo events, resolution or SMF format"),
     "near_duplicate": ("dedup", "its own similarity to the kept file it names (duplicate_of) at or above threshold (transposed, "

@@ -10,11 +10,12 @@ import pytest
 from pipeline.analysis import key as keymod
 from pipeline.analysis.evaluate_key import (agreement_with_music21, key_table, mirex_score,
                                             render_chorale)
-from pipeline.score import KEY_DTYPE, Piece
+from pipeline.analysis.eval_sets import abc_key
+from pipeline.score import KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
 from pipeline.stages.base import FileContext
 from pipeline.stages.key_meter import KeyMeter
 
-from music21_fixtures import chorales, decode
+from music21_fixtures import RESERVED, chorale_paths, chorales, decode
 
 
 @pytest.fixture(scope="session")
@@ -153,22 +154,147 @@ def test_declared_key_from_key_signature_event(mido_key, declared):
 
 def test_drums_and_empty_pieces(works):
     piece = decode(works[0]["midi"])
-    base = keymod.estimate_key(piece)
     drums = piece.notes.copy()
     drums["channel"] = 9
-    drummed = Piece(**{**piece.__dict__, "notes": np.concatenate([piece.notes, drums])})
-    assert keymod.estimate_key(drummed) == base
+    drummed = Piece(**{**piece.__dict__, "notes": sort_notes(np.concatenate([piece.notes, drums]))})
     empty = Piece(**{**piece.__dict__, "notes": piece.notes[:0]})
-    assert keymod.estimate_key(empty).confidence == 0.0
+    for profile in ("learned", "simple"):
+        base = keymod.estimate_key(piece, profile)
+        assert keymod.estimate_key(drummed, profile).scores == pytest.approx(base.scores)
+    # no evidence: every key equally likely (learned), a zero margin (correlation)
+    assert keymod.estimate_key(empty).confidence == pytest.approx(1 / 24)
+    assert keymod.estimate_key(empty, "simple").confidence == 0.0
 
 
 def test_confidence_and_runner_up(works):
-    est = keymod.estimate_key(decode(works[3]["midi"]))
+    piece = decode(works[3]["midi"])
+    est = keymod.estimate_key(piece, "simple")
     scores = np.array(est.scores)
     second = np.argsort(-scores)[1]
     assert est.runner_up == keymod.key_name(int(second % 12), ("major", "minor")[second // 12])
     assert est.confidence == pytest.approx(scores.max() - scores[second])
     assert est.confidence > 0
+    # learned: the scores are the 24 key probabilities, the confidence the chosen key's
+    learned = keymod.estimate_key(piece)
+    probs = np.array(learned.scores)
+    assert probs.sum() == pytest.approx(1.0) and (probs >= 0).all()
+    assert learned.confidence == pytest.approx(probs.max())
+    second = np.argsort(-probs)[1]
+    assert learned.runner_up == keymod.key_name(int(second % 12), ("major", "minor")[second // 12])
+
+
+# --- the learned method ----------------------------------------------------------------------
+
+def _notes_piece(rows) -> Piece:
+    """A piece from (start, end, pitch) rows at 480 ticks per beat."""
+    notes = empty_notes(len(rows))
+    for i, (start, end, pitch) in enumerate(rows):
+        notes[i]["start"], notes[i]["end"], notes[i]["pitch"] = start, end, pitch
+    notes["velocity"] = 80
+    return Piece(notes=sort_notes(notes), ticks_per_beat=480,
+                 tempos=np.array([(0, 500_000)], dtype=TEMPO_DTYPE),
+                 time_signatures=np.zeros(0, dtype=METER_DTYPE),
+                 key_signatures=np.zeros(0, dtype=KEY_DTYPE))
+
+
+def test_key_features_worked_example():
+    # invented fixture, worked by hand: beat 0 a C major triad (C3 E4 G4, 1 beat); beat 1
+    # G3 (2 beats) under B4 D5 (1 beat); beats 3-4 C3 C5 E5 (2 beats)
+    piece = _notes_piece([(0, 480, 48), (0, 480, 64), (0, 480, 67),
+                          (480, 1440, 55), (480, 960, 71), (480, 960, 74),
+                          (1440, 2400, 48), (1440, 2400, 72), (1440, 2400, 76)])
+    f = dict(zip(keymod.FEATURES, keymod.key_features(piece)))
+
+    def dist(**weights):
+        v = np.zeros(12)
+        for name, w in weights.items():
+            v[keymod.note_name_to_pc(name)] = w
+        return v / v.sum()
+    assert np.allclose(f["duration"], dist(C=5, E=3, G=3, B=1, D=1))
+    assert np.allclose(f["on_beat"], f["duration"])           # every note starts on a beat
+    assert np.allclose(f["onsets"], dist(C=3, E=2, G=2, B=1, D=1))
+    assert np.allclose(f["bass"], dist(C=3, G=2))              # C3, G3 (2 beats), C3 (2)
+    assert np.allclose(f["top"], dist(G=1, D=1, E=2))          # G4, D5, E5 (2 beats)
+    # the last 4 beats (after tick 480): G3, B4, D5 and the last chord
+    assert np.allclose(f["final"], dist(C=4, E=2, G=2, B=1, D=1))
+    for name, note in (("first_bass", "C"), ("last_bass", "C"), ("last_top", "E")):
+        assert np.allclose(f[name], dist(**{note: 1}))
+    # triads in the beats where a note starts: C major (beat 0), G major (beat 1), and beat 3
+    # holds C and E without a fifth: no triad. The last beat with a triad is beat 1.
+    assert np.allclose(f["major_triads"], dist(C=1, G=1))
+    assert not f["minor_triads"].any() and not f["last_minor_triad"].any()
+    assert np.allclose(f["last_major_triad"], dist(G=1))
+
+
+def test_learned_is_transposition_invariant(works):
+    # key finding commutes with transposition (common practice): shifting a piece by k
+    # semitones rotates its 24 key probabilities by k within each mode
+    from pipeline.analysis.transpose import shift_notes
+    piece = decode(works[5]["midi"])
+    base = np.array(keymod.estimate_key(piece).scores)
+    for k in (1, 5, 6, 11):
+        moved = Piece(**{**piece.__dict__, "notes": sort_notes(shift_notes(piece.notes, k)[0])})
+        got = np.array(keymod.estimate_key(moved).scores)
+        assert np.allclose(np.roll(base[:12], k), got[:12])
+        assert np.allclose(np.roll(base[12:], k), got[12:])
+
+
+def test_confidence_falls_as_the_key_evidence_is_destroyed(works):
+    # invented degradation of real pieces: a growing share of each chorale's notes gets a
+    # random pitch (times and durations kept). The mean probability of the piece's own key
+    # must fall at every step; the accuracy against the truth (noisier, 36 trials a step)
+    # must end lower than it starts.
+    rated = [w for w in works if w["truth"] is not None][:12]
+    means, accuracy, confidence, correct = [], [], [], []
+    for share in (0.0, 0.2, 0.4, 0.6, 0.8):
+        probs, right = [], []
+        for work in rated:
+            piece = decode(work["midi"])
+            own = keymod.estimate_key(piece)
+            idx = own.tonic_pc + (12 if own.mode == "minor" else 0)
+            for seed in range(3):
+                rng = np.random.default_rng(seed)
+                notes = piece.notes.copy()
+                hit = rng.random(len(notes)) < share
+                notes["pitch"][hit] = rng.integers(48, 84, int(hit.sum()))
+                est = keymod.estimate_key(Piece(**{**piece.__dict__, "notes": sort_notes(notes)}))
+                probs.append(est.scores[idx])
+                right.append((est.tonic_pc, est.mode) == tuple(work["truth"]))
+                confidence.append(est.confidence)
+                correct.append(right[-1])
+        means.append(float(np.mean(probs)))
+        accuracy.append(float(np.mean(right)))
+    assert all(a > b for a, b in zip(means, means[1:])), means
+    assert accuracy[-1] < accuracy[0], accuracy
+    # over all 180 estimates, right answers come with higher confidence than wrong ones, and
+    # the more confident half is right more often than the less confident half
+    conf, ok = np.array(confidence), np.array(correct)
+    assert 0 < ok.sum() < len(ok) and conf[ok].mean() > conf[~ok].mean()
+    order = np.argsort(conf, kind="stable")
+    assert ok[order[len(ok) // 2:]].mean() > ok[order[:len(ok) // 2]].mean()
+
+
+def test_weights_file_names_its_training_sets():
+    import json
+    from pathlib import Path
+    data = json.loads(Path(keymod.__file__).with_name("key_weights.json").read_text())
+    assert tuple(data["features"]) == keymod.FEATURES
+    assert len(data["weights"]) == keymod.N_CLASS_FEATURES
+    files = [f for s in data["trained_on"].values() for f in s["files"]]
+    assert files and not any(r in f for f in files for r in RESERVED)
+    # the chorale evaluation subset of the tests and the README is not trained on
+    evaluation = {f"bach/{p.name}" for p in chorale_paths(100, 0)}
+    assert not evaluation & set(data["trained_on"]["chorales"]["files"])
+
+
+@pytest.mark.parametrize("field,want", [
+    # the abc music standard 2.1, section 3.1.14 (K: key): tonic, accidental, mode name
+    ("G", (7, "major")), ("Em", (4, "minor")), ("E Minor", (4, "minor")), ("Bb", (10, "major")),
+    ("F#min", (6, "minor")), ("A Aeolian", (9, "minor")), ("D Ionian", (2, "major")),
+    ("A Dorian", None), ("D Mixolydian", None), ("Hp", None), ("", None),
+])
+def test_abc_key_field(field, want):
+    assert abc_key(field) == want
 
 
 def test_key_meter_stage_declared_and_trust(works):

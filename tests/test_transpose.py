@@ -139,7 +139,7 @@ def test_stage_targets_and_augment_copies():
     ({"direction": "sideways"}, "nearest, up, down"),
     ({"augment": [1, 2.5]}, "whole numbers"),
     ({"augment": 3}, "must be a list"),
-    ({"profile": "nonesuch"}, "valid profiles: aarden_essen"),
+    ({"profile": "nonesuch"}, "valid profiles: learned, aarden_essen"),
 ])
 def test_option_checks_name_the_rule(opts, match):
     (name, value), = opts.items()
@@ -168,3 +168,72 @@ def test_written_file_decodes_to_shifted_notes():
             back = decode_with_mido(encode(piece, notes)).notes
             for f in ("start", "end", "pitch", "velocity", "channel"):
                 assert np.array_equal(back[f], notes[f]), f
+
+
+# --- the confidence guard ------------------------------------------------------------------
+
+def _ambiguous_and_clear():
+    """Two invented fixtures: a clear G major cadence (scale, tonic triads, final G) and a
+    chromatic run of all twelve pitch classes with equal durations, which supports no key."""
+    clear = make_piece([55, 59, 62, 67, 69, 71, 72, 74, 76, 78, 79, 74, 71, 67, 62, 59, 55, 43],
+                       starts=np.arange(18) * 480)
+    chromatic = make_piece(list(range(60, 72)) * 2)
+    return clear, chromatic
+
+
+def test_guard_off_by_default_transposes_and_says_so():
+    clear, _ = _ambiguous_and_clear()
+    res = Transpose().process(clear, FileContext(clear))
+    assert res.kept and res.values["transpose_held_back"] is False
+    assert res.values["transpose"] == 5  # G -> C, up a fourth
+
+
+def test_guard_holds_back_below_threshold_and_records_why():
+    clear, chromatic = _ambiguous_and_clear()
+    est_clear = keymod.estimate_key(clear)
+    est_chromatic = keymod.estimate_key(chromatic)
+    # the fixture without a key gets a lower confidence than the clear cadence
+    assert est_chromatic.confidence < est_clear.confidence
+    limit = (est_chromatic.confidence + est_clear.confidence) / 2
+    stage = Transpose({"min_key_confidence": limit, "augment": [2]})
+    held = stage.process(chromatic, FileContext(chromatic))
+    assert held.kept and held.values["transpose"] == 0 and held.values["transpose_held_back"]
+    assert "below min_key_confidence" in held.detail
+    assert held.thresholds == {"key_confidence": limit}
+    # the written files are the untransposed notes (and the augment copy shifts those)
+    outs = Transpose.output_notes(chromatic, held.values)
+    assert np.array_equal(outs[0][1], chromatic.notes)
+    assert np.array_equal(outs[1][1], sort_notes(shift_notes(chromatic.notes, 2)[0]))
+    applied = stage.process(clear, FileContext(clear))
+    assert applied.values["transpose_held_back"] is False and applied.values["transpose"] == 5
+
+
+def test_guard_drops_with_reason_when_asked():
+    from pipeline.reasons import REASONS
+    _, chromatic = _ambiguous_and_clear()
+    res = Transpose({"min_key_confidence": 1.0, "below_confidence": "drop"}).process(
+        chromatic, FileContext(chromatic))
+    assert not res.kept and res.reason == "key_uncertain" and res.reason in REASONS
+    assert REASONS["key_uncertain"][0] == "transpose"
+    assert res.values["transpose_held_back"] is True
+    assert res.values["key_confidence"] < 1.0
+
+
+def test_guard_does_not_apply_to_a_key_the_file_declares():
+    _, chromatic = _ambiguous_and_clear()
+    declared = Piece(**{**chromatic.__dict__,
+                        "key_signatures": np.array([(0, 1, 0)], dtype=KEY_DTYPE)})  # G major
+    res = Transpose({"min_key_confidence": 1.0, "below_confidence": "drop",
+                     "trust_file_key": True}).process(declared, FileContext(declared))
+    assert res.kept and res.values["transpose"] == 5 and not res.values["transpose_held_back"]
+
+
+@pytest.mark.parametrize("opts,match", [
+    ({"min_key_confidence": 1.5}, "0..1"), ({"min_key_confidence": True}, "0..1"),
+    ({"below_confidence": "skip"}, "keep .* or drop"),
+])
+def test_guard_option_checks(opts, match):
+    (name, value), = opts.items()
+    option = next(o for o in Transpose.options if o.name == name)
+    message = option.check(value)
+    assert message is not None and re.search(match, message)

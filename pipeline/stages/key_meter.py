@@ -36,14 +36,19 @@ def _check_weight(value: Any) -> str | None:
 #: stages compute, and share, the same estimate unless a config sets them differently.
 KEY_OPTIONS: tuple[Option, ...] = (
     Option("profile", str, keymod.DEFAULT_PROFILE,
-           "Key profile for the Krumhansl-Schmuckler correlation: "
-           + ", ".join(sorted(keymod.PROFILES)) + " (default chosen by measurement).",
+           "Key method: learned (the trained key classifier; key_confidence is the probability "
+           "that the key is right) or a published profile for the Krumhansl-Schmuckler "
+           "correlation: " + ", ".join(sorted(keymod.PROFILES))
+           + " (key_confidence is then the correlation margin). Default chosen by "
+           "cross-validation across genres.",
            _check_profile),
     Option("bass_weight", (int, float), keymod.DEFAULT_BASS_WEIGHT,
-           "Extra weight (multiple of its duration) for the lowest note of each onset; 0 = plain method.",
+           "Published profiles only: extra weight (multiple of its duration) for the lowest note "
+           "of each onset; 0 = plain method.",
            _check_weight),
     Option("final_weight", (int, float), keymod.DEFAULT_FINAL_WEIGHT,
-           "Extra weight for notes sounding in the last 4 beats; 0 = off.", _check_weight),
+           "Published profiles only: extra weight for notes sounding in the last 4 beats; 0 = off.",
+           _check_weight),
     Option("trust_file_key", bool, False,
            "Report (and transpose by) the key-signature event of the file instead of the "
            "estimate when the file declares one."),
@@ -93,15 +98,15 @@ class KeyMeter(Stage):
 
     name = "key_meter"
     kind = "file"
-    version = 2
+    version = 3
     options = KEY_OPTIONS + (
         Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
                "The declared meter is replaced by the estimate when the estimate gives the "
                "declared meter's family (duple, triple, compound) less than this probability; "
                "0 = keep every declared meter that is not a default.", in_range(0, 1)),
     )
-    doc = ("Estimates key (Krumhansl-Schmuckler key profiles) and meter (a classifier over onset "
-           "accent autocorrelation and position features), records what the file declares and "
+    doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles) and meter "
+           "(a classifier over onset accent autocorrelation and position features), records what the file declares and "
            "flags declared values that look like sequencer defaults, the average tempo and the "
            "fraction of onsets on a 16th/triplet grid. Never drops a file.")
 

@@ -46,6 +46,23 @@ def _check_augment(value: Any) -> str | None:
     return None
 
 
+def _check_confidence(value: Any) -> str | None:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 1:
+        return f"must be a number in 0..1 (a key_confidence), not {value!r}"
+    return None
+
+
+#: What transpose does with a file whose key_confidence is below min_key_confidence.
+BELOW_CONFIDENCE = ("keep", "drop")
+
+
+def _check_below(value: Any) -> str | None:
+    if value not in BELOW_CONFIDENCE:
+        return (f"must be keep (write the file untransposed) or drop (drop it as "
+                f"key_uncertain), not {value!r}")
+    return None
+
+
 def augment_shifts(value: list[int]) -> list[int]:
     """The extra shifts actually written: distinct, sorted, without 0 (that is the main copy)."""
     return sorted({int(v) for v in value} - {0})
@@ -62,7 +79,7 @@ class Transpose(Stage):
 
     name = "transpose"
     kind = "file"
-    version = 1
+    version = 2
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),
@@ -78,21 +95,49 @@ class Transpose(Stage):
                "key events to the normalized MIDI. false keeps the control changes (pedal, "
                "volume...), pitch bends, aftertouch, program changes, lyrics, text and markers, "
                "at their times; only notes and polyphonic-aftertouch keys are transposed."),
+        Option("min_key_confidence", (int, float), 0.0,
+               "Transpose only files whose estimated key_confidence is at least this (0..1, the "
+               "probability that the key is right with the default profile); 0 = always.",
+               _check_confidence),
+        Option("below_confidence", str, "keep",
+               "What to do below min_key_confidence: keep (write the file untransposed, "
+               "transpose 0, transpose_held_back true) or drop (reason key_uncertain).",
+               _check_below),
     ) + KEY_OPTIONS
     doc = ("Shifts pitched notes so the estimated tonic becomes major_to/minor_to; drum channel "
-           "untouched; notes beyond 0..127 folded by octaves and counted.")
+           "untouched; notes beyond 0..127 folded by octaves and counted. A key estimated with "
+           "a confidence below min_key_confidence is not applied: the file is kept untransposed "
+           "or dropped, as below_confidence says.")
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         est = shared_key_estimate(ctx, self.opts)
-        pc, mode, _ = reported_key(piece, est, bool(self.opts["trust_file_key"]))
+        pc, mode, source = reported_key(piece, est, bool(self.opts["trust_file_key"]))
+        extra = augment_shifts(self.opts["augment"])
+        limit = float(self.opts["min_key_confidence"])
+        # a key declared by the file (trust_file_key) is not an estimate: no guard
+        uncertain = source == "estimated" and est.confidence < limit
+        key = keymod.key_name(pc, mode)
+        if uncertain:
+            why = (f"key {key} estimated with confidence {est.confidence:.3f}, below "
+                   f"min_key_confidence {limit:g}")
+            thresholds = {"key_confidence": limit}
+            if self.opts["below_confidence"] == "drop":
+                return StageResult.drop("key_uncertain", why,
+                                        values={"key_confidence": round(est.confidence, 4),
+                                                "transpose_held_back": True},
+                                        thresholds=thresholds)
+            values = {"transpose": 0, "transpose_held_back": True, "transpose_folded": 0,
+                      "augment": extra,
+                      "augment_folded": sum(fold_count(piece.notes, e) for e in extra)}
+            return StageResult.keep(detail=f"not transposed: {why}", values=values,
+                                    thresholds=thresholds)
         target = keymod.note_name_to_pc(self.opts["major_to" if mode == "major" else "minor_to"])
         shift = smallest_shift(pc, target, self.opts["direction"])
         folded = fold_count(piece.notes, shift)
-        extra = augment_shifts(self.opts["augment"])
         folded_aug = sum(fold_count(piece.notes, shift + e) for e in extra)
-        values = {"transpose": shift, "transpose_folded": folded, "augment": extra,
-                  "augment_folded": folded_aug}
-        detail = f"{keymod.key_name(pc, mode)} shifted {shift:+d} semitones"
+        values = {"transpose": shift, "transpose_held_back": False, "transpose_folded": folded,
+                  "augment": extra, "augment_folded": folded_aug}
+        detail = f"{key} shifted {shift:+d} semitones"
         if folded:
             detail += f", {folded} notes folded by octaves"
         return StageResult.keep(detail=detail, values=values)

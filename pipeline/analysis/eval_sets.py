@@ -1,0 +1,340 @@
+"""Evaluation sets for key (and meter) detection across genres, with music21's analyses.
+
+Each loader returns a list of *works*, plain dicts::
+
+    {"set": "folk", "name": "airdsAirs/book4.abc#12",
+     "midi": bytes,            # the MIDI file without key-signature events (pop: as on disk)
+     "midi_no_meter": bytes,   # also without time-signature events (corpus sets only)
+     "truth": (tonic_pc, "major"|"minor") | None,   # None: no major/minor truth (modal tune...)
+     "meter": "6/8" | None,    # the notated meter (meter evaluations reuse the same works)
+     "modulates": bool | None, # the annotation says the piece changes key (pop: n_keys > 1)
+     "music21": {method: (tonic_pc, mode)}, "music21_seconds": {method: s}}
+
+Sets:
+
+- ``chorales``: music21's bundled Bach chorales (``bach/bwv*``, evenly spaced subsets); truth =
+  key signature plus final bass note (common practice in key-finding evaluation).
+- ``folk``: every tune of music21's *unreserved* folk books ``airdsAirs`` (books 1-6) and
+  ``miscFolk`` (two opuses); truth = the tune's ABC ``K:`` field (major/minor/ionian/aeolian
+  only; modal tunes get no key truth) and ``M:`` field.
+- ``classical``: the string quartets, piano and vocal pieces of the corpus (Beethoven, Mozart,
+  Haydn, Schumann, Chopin, Joplin, ...); truth = the stated key signature plus the final bass note,
+  as for chorales (pieces whose ending fits neither reading get no truth).
+- ``pop``: the POP909 development folder passed as an argument (``labels.json``: ``tonic_pc``,
+  ``mode``, ``n_keys``, ``meter_exact``); the main arrangement of each song.
+
+music21's ``oneills1850``, ``essenFolksong`` and ``ryansMammoth`` are reserved and never read.
+music21's analyzers run on music21's own parse of the *same* MIDI bytes. Rendering and music21
+parses are slow, so each work is cached as tagged JSON (never pickle) in ``cache_dir()``:
+``$MIDISIFT_CACHE_DIR`` or ``<tmp>/midisift-music21-cache``, one file per work, so larger
+samples reuse smaller ones.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import re
+import time
+from pathlib import Path
+from typing import Any, Callable
+
+#: music21's analyzers run side by side: its default ``analyze('key')`` and its single profiles.
+MUSIC21_KEY_METHODS = ("key", "key.krumhanslschmuckler", "key.aardenessen",
+                       "key.temperleykostkapayne", "key.bellmanbudge", "key.simple")
+
+RESERVED = ("oneills1850", "essenFolksong", "ryansMammoth")
+
+FOLK_FILES = tuple(f"airdsAirs/book{i}.abc" for i in range(1, 7)) + (
+    "miscFolk/americanfifeopus.abc", "miscFolk/northumbrianminstrelsyopus.abc")
+
+#: Corpus folders of the classical set (every score file inside, one file per movement).
+CLASSICAL_FOLDERS = ("beethoven", "mozart", "haydn", "schubert", "schumann_robert",
+                     "schumann_clara", "chopin", "handel", "corelli", "cpebach", "joplin",
+                     "weber", "verdi", "beach", "liliuokalani", "johnson_j_r")
+
+#: Bump when the rendering or a truth rule changes, to invalidate cached works.
+CACHE_VERSION = 1
+
+
+def cache_dir() -> Path:
+    import tempfile
+    d = Path(os.environ.get("MIDISIFT_CACHE_DIR")
+             or Path(tempfile.gettempdir()) / "midisift-music21-cache")
+    d.mkdir(parents=True, exist_ok=True)
+    return d
+
+
+def _cached_work(set_name: str, ident: str, build: Callable[[], dict | None]) -> dict | None:
+    """``build()``'s work, cached as one tagged-JSON file per work (bytes as base64)."""
+    from .evaluate_key import _from_json, _to_json
+    import music21
+    digest = hashlib.sha1(f"{CACHE_VERSION}:{music21.__version__}:{ident}".encode()).hexdigest()[:20]
+    path = cache_dir() / f"eval-{set_name}" / f"{digest}.json"
+    if path.exists():
+        try:
+            return _from_json(json.loads(path.read_text(encoding="utf-8")))
+        except (OSError, ValueError, KeyError, TypeError):  # torn or stale: rebuild
+            pass
+    value = build()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(f".tmp{os.getpid()}")
+    tmp.write_text(json.dumps(_to_json(value)), encoding="utf-8")
+    os.replace(tmp, path)
+    return value
+
+
+def music21_keys(data: bytes) -> tuple[dict, dict]:
+    """music21's key analyses of its own parse of MIDI bytes, and the seconds each took
+    (the parse itself is timed under ``"parse"``)."""
+    from music21 import converter
+    t0 = time.perf_counter()
+    parsed = converter.parse(data, format="midi")
+    times = {"parse": time.perf_counter() - t0}
+    keys = {}
+    for method in MUSIC21_KEY_METHODS:
+        t0 = time.perf_counter()
+        k = parsed.analyze(method)
+        times[method] = time.perf_counter() - t0
+        keys[method] = (k.tonic.pitchClass, k.mode)
+    return keys, times
+
+
+def _render(score) -> tuple[bytes, bytes]:
+    from music21 import midi
+    from .evaluate_key import strip_meta
+    data = midi.translate.streamToMidiFile(score).writestr()
+    return (strip_meta(data, ("key_signature",)),
+            strip_meta(data, ("key_signature", "time_signature")))
+
+
+def _work(set_name: str, name: str, midi: bytes, midi_no_meter: bytes | None, truth, meter,
+          modulates=None, with_music21: bool = True) -> dict:
+    keys, times = music21_keys(midi) if with_music21 else ({}, {})
+    return {"set": set_name, "name": name, "midi": midi, "midi_no_meter": midi_no_meter,
+            "truth": truth, "meter": meter, "modulates": modulates,
+            "music21": keys, "music21_seconds": times}
+
+
+def _parallel_map(fn: Callable, items: list, workers: int | None = None) -> list:
+    """``[fn(x) for x in items]`` in worker processes (music21 is CPU-bound)."""
+    workers = workers or int(os.environ.get("MIDISIFT_EVAL_WORKERS", "2"))
+    if workers < 2 or len(items) < 4:
+        return [fn(x) for x in items]
+    from concurrent.futures import ProcessPoolExecutor
+    with ProcessPoolExecutor(workers) as pool:
+        return list(pool.map(fn, items, chunksize=2))
+
+
+def _spaced(items: list, count: int | None) -> list:
+    """A deterministic, evenly spaced subset of ``count`` items (all when None or larger)."""
+    if count is None or count >= len(items):
+        return list(items)
+    step = len(items) / count
+    return [items[int(i * step)] for i in range(count)]
+
+
+# ---------------------------------------------------------------------------------------------
+# Score-based truth (chorales, classical)
+
+def truth_from_signature_and_bass(score) -> tuple[int, str] | None:
+    """Key signature of the first part plus the final bass note: the final lowest pitch class
+    must be the major or the relative-minor tonic of the signature, else None (modal or
+    half-cadence ending). Common practice in key-finding evaluation, no single source."""
+    ks = score.parts[0].flatten().getElementsByClass("KeySignature") if score.parts else []
+    if not ks:
+        ks = score.flatten().getElementsByClass("KeySignature")
+    if not ks:
+        return None
+    sharps = ks[0].sharps
+    last_offset, final_pc = None, None
+    for part in score.parts or [score]:
+        notes = part.flatten().notes
+        if not notes:
+            continue
+        last = notes[-1]
+        end = last.offset + last.quarterLength
+        low = min(p.midi for p in last.pitches)
+        if last_offset is None or end > last_offset + 1e-6 or (
+                abs(end - last_offset) <= 1e-6 and low < final_pc[1]):
+            last_offset, final_pc = end, (low % 12, low)
+    if final_pc is None:
+        return None
+    pc = final_pc[0]
+    major_pc = (7 * sharps) % 12
+    if pc == major_pc:
+        return major_pc, "major"
+    if pc == (major_pc + 9) % 12:
+        return pc, "minor"
+    return None
+
+
+def _render_score_path(item: tuple[str, str, str]) -> dict | None:
+    set_name, rel, path = item
+
+    def build():
+        from music21 import converter
+        try:
+            score = converter.parse(path)
+            if hasattr(score, "scores"):  # an opus: take its first score
+                score = score.scores[0]
+            ts = score.flatten().getElementsByClass("TimeSignature")
+            midi, no_meter = _render(score)
+            truth = truth_from_signature_and_bass(score)
+        except Exception as exc:  # a few corpus files do not parse or render: skip them
+            return {"set": set_name, "name": rel, "error": f"{type(exc).__name__}: {exc}"}
+        meter = ts[0].ratioString if ts and len({t.ratioString for t in ts}) == 1 else None
+        return _work(set_name, rel, midi, no_meter, truth, meter)
+    work = _cached_work(set_name, rel, build)
+    return None if work is None or "error" in work else work
+
+
+def chorales(count: int = 100, offset: int = 0) -> list[dict]:
+    """Evenly spaced Bach chorales (``offset`` shifts the subset; 0 and 2 share no piece)."""
+    from music21 import corpus
+    paths = sorted(p for p in corpus.getComposer("bach") if p.name.startswith("bwv"))
+    step = max(1, len(paths) // count)
+    chosen = paths[offset::step][:count]
+    items = [("chorales", f"bach/{p.name}", str(p)) for p in chosen]
+    return [w for w in _parallel_map(_render_score_path, items) if w]
+
+
+#: Classical files above this size (bytes on disk: whole multi-movement quartets, long songs)
+#: are skipped to bound the evaluation's run time (music21 takes minutes on each).
+CLASSICAL_MAX_BYTES = 120_000
+
+
+def classical(count: int | None = None, max_bytes: int = CLASSICAL_MAX_BYTES) -> list[dict]:
+    """The classical pieces of the corpus (see ``CLASSICAL_FOLDERS``), one work per file of at
+    most ``max_bytes``; files of the same piece in two formats count once (the first format in
+    name order)."""
+    from music21 import corpus
+    root = Path(corpus.getWork("bach/bwv66.6")).parent.parent
+    seen, items = set(), []
+    for folder in CLASSICAL_FOLDERS:
+        for p in sorted((root / folder).rglob("*")):
+            if (p.suffix not in (".mxl", ".xml", ".musicxml", ".krn") or "__" in str(p)
+                    or p.stat().st_size > max_bytes):
+                continue
+            stem = str(p.relative_to(root).with_suffix(""))
+            if stem in seen:
+                continue
+            seen.add(stem)
+            items.append(("classical", str(p.relative_to(root)), str(p)))
+    return [w for w in _parallel_map(_render_score_path, _spaced(items, count)) if w]
+
+
+# ---------------------------------------------------------------------------------------------
+# Folk tunes in ABC: K: and M: fields as truth
+
+_ABC_MODES = {"": "major", "maj": "major", "major": "major", "ion": "major", "ionian": "major",
+              "m": "minor", "min": "minor", "minor": "minor", "aeo": "minor", "aeolian": "minor"}
+_ABC_METERS = {"C": "4/4", "C|": "2/2"}
+_NOTE_PC = {"C": 0, "D": 2, "E": 4, "F": 5, "G": 7, "A": 9, "B": 11}
+
+
+def abc_field(text: str, name: str) -> str | None:
+    """The first header value of an ABC field (``K``, ``M``), comment stripped."""
+    for line in text.splitlines():
+        if line.startswith(f"{name}:"):
+            return line[2:].split("%")[0].strip()
+    return None
+
+
+def abc_key(value: str | None) -> tuple[int, str] | None:
+    """``K:`` value -> (tonic_pc, mode); None for modal keys (dorian, mixolydian...), highland
+    pipe keys and anything unreadable. E.g. ``G`` -> (7, major), ``Bbm`` -> (10, minor),
+    ``F#min`` -> (6, minor), ``Ador`` -> None."""
+    if not value:
+        return None
+    m = re.match(r"^([A-Ga-g])([#b]?)\s*([A-Za-z]*)", value)
+    if not m:
+        return None
+    pc = (_NOTE_PC[m.group(1).upper()] + {"#": 1, "b": -1, "": 0}[m.group(2)]) % 12
+    mode = _ABC_MODES.get(m.group(3).lower())
+    if mode is None:
+        return None
+    return pc, mode
+
+
+def abc_meter(value: str | None) -> str | None:
+    if not value:
+        return None
+    value = _ABC_METERS.get(value, value)
+    return value if re.fullmatch(r"\d+/\d+", value) else None
+
+
+def folk_tunes_text() -> list[tuple[str, str]]:
+    """(name, ABC text) of every tune in ``FOLK_FILES``, in file order."""
+    from music21 import corpus
+    out = []
+    for rel in FOLK_FILES:
+        assert not any(r in rel for r in RESERVED)
+        text = Path(corpus.getWork(rel)).read_text(encoding="latin-1")
+        chunks = text.split("\nX:")
+        for i, c in enumerate(chunks):
+            c = "X:" + c if i else c
+            if "\nK:" in c or c.startswith("K:"):
+                out.append((f"{rel}#{i}", c))
+    return out
+
+
+def _render_folk(item: tuple[str, str]) -> dict | None:
+    name, text = item
+
+    def build():
+        from music21 import converter
+        try:
+            score = converter.parse(text, format="abc")
+            if len(score.flatten().notes) < 8:
+                return {"set": "folk", "name": name, "error": "fewer than 8 notes"}
+            midi, no_meter = _render(score)
+        except Exception as exc:  # music21's ABC parser rejects a few tunes: skip them
+            return {"set": "folk", "name": name, "error": f"{type(exc).__name__}: {exc}"}
+        body_keys = sum(1 for line in text.splitlines() if line.startswith("K:"))
+        return _work("folk", name, midi, no_meter, abc_key(abc_field(text, "K")),
+                     abc_meter(abc_field(text, "M")), modulates=body_keys > 1)
+    work = _cached_work("folk", name + hashlib.sha1(text.encode()).hexdigest(), build)
+    return None if work is None or "error" in work else work
+
+
+def folk(count: int | None = 400) -> list[dict]:
+    """``count`` evenly spaced tunes of the folk books (all when None)."""
+    return [w for w in _parallel_map(_render_folk, _spaced(folk_tunes_text(), count)) if w]
+
+
+# ---------------------------------------------------------------------------------------------
+# Pop dev set from a folder
+
+def _render_pop(item: tuple[str, str, dict, bool]) -> dict:
+    root, rel, label, with_music21 = item
+    data = (Path(root) / rel).read_bytes()
+    truth = (int(label["tonic_pc"]), label["mode"])
+    meter = label.get("meter_exact")
+    modulates = int(label.get("n_keys", 1)) > 1
+    if not with_music21:
+        return _work("pop", rel, data, None, truth, meter, modulates, with_music21=False)
+
+    def build():
+        w = _work("pop", rel, b"", None, truth, meter, modulates, with_music21=False)
+        w["music21"], w["music21_seconds"] = music21_keys(data)
+        return w
+    work = _cached_work("pop", rel + hashlib.sha1(data).hexdigest(), build)
+    return {**work, "midi": data}
+
+
+def pop(folder: str | Path, count: int | None = None, music21_count: int | None = 150) -> list[dict]:
+    """The main arrangement of each song in a POP909-style folder (``labels.json``);
+    ``count`` evenly spaced songs (all when None); music21 runs on the first ``music21_count``
+    of an evenly spaced sample (its parse takes seconds per song), the others have
+    ``music21 == {}``."""
+    folder = Path(folder)
+    labels = json.loads((folder / "labels.json").read_text(encoding="utf-8"))["files"]
+    mains = sorted(rel for rel, lab in labels.items() if lab.get("role") == "main")
+    chosen = _spaced(mains, count)
+    with_m21 = set(_spaced(chosen, music21_count)) if music21_count else set()
+    items = [(str(folder), rel, labels[rel], rel in with_m21) for rel in chosen]
+    slow = _parallel_map(_render_pop, [i for i in items if i[3]])
+    fast = [_render_pop(i) for i in items if not i[3]]
+    by_name = {w["name"]: w for w in slow + fast}
+    return [by_name[rel] for rel in chosen]
