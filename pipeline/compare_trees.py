@@ -2,7 +2,7 @@
 checkout, side by side in one process (alternating rounds on the same files; the minimum
 over rounds, which a busy shared machine inflates least).
 
-    python scripts/compare_trees.py BASE_CHECKOUT 'CORPUS/**/*.mid' [ROUNDS]
+    python -m pipeline.compare_trees BASE_CHECKOUT 'CORPUS/**/*.mid' [ROUNDS]
 
 BASE_CHECKOUT is a checkout of the other commit with its extension built in place
 (``git archive COMMIT | tar -x -C DIR`` then ``python setup.py build_ext --inplace`` there).
@@ -40,6 +40,8 @@ def render_all(m: dict, pieces: list) -> None:
 
 
 def main() -> None:
+    if len(sys.argv) < 3:
+        raise SystemExit("usage: python -m pipeline.compare_trees BASE_CHECKOUT 'CORPUS/**/*.mid' [ROUNDS]")
     base, pattern = Path(sys.argv[1]), sys.argv[2]
     rounds = int(sys.argv[3]) if len(sys.argv) > 3 else 9
     tmp = Path(tempfile.mkdtemp(prefix="compare_trees_"))

@@ -1,6 +1,6 @@
 """The README's export and report figures, measured on finished output folders.
 
-    python scripts/export_figures.py OUTPUT [OUTPUT ...] [--agreement N]
+    python -m pipeline.export_figures OUTPUT [OUTPUT ...] [--agreement N]
 
 For each output folder: export throughput (pieces/s) of both formats, fresh and as a rerun with
 nothing changed; the time to write report.html; and the reference checks of the export tests on
