@@ -163,12 +163,10 @@ def render(piece: Any, stage_plans: list, transpose_values: dict | None, staging
         versions = Transpose.output_notes(piece, transpose_values)
     else:
         versions = [("", piece.notes, 0)]
-    # only polyphonic aftertouch moves with a transposition; most pieces have none
-    poly = bool(len(piece.controls)) and bool((piece.controls["kind"] == 0xA0).any())
     for suffix, notes, semitones in versions:
         out_piece = piece if semitones == 0 else replace(
             piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones),
-            controls=shift_controls(piece.controls, semitones) if poly else piece.controls)
+            controls=shift_controls(piece.controls, semitones))
         _write_staged(Path(staged_path(staging, sha, output_fp, suffix)), encode(out_piece, notes))
     return tuple(suffix for suffix, _, _ in versions)
 
@@ -215,10 +213,8 @@ def shift_controls(controls: Any, semitones: int) -> Any:
     from .score import DRUM_CHANNEL
     poly = (controls["kind"] == 0xA0) & (controls["channel"] != DRUM_CHANNEL)
     out = controls.copy()
-    p = out["data1"][poly].astype(np.int64) + int(semitones)
-    p = np.where(p > 127, p - 12 * ((p - 127 + 11) // 12), p)
-    p = np.where(p < 0, p + 12 * ((-p + 11) // 12), p)
-    out["data1"][poly] = p
+    from .analysis.transpose import fold_octaves
+    out["data1"][poly] = fold_octaves(out["data1"][poly].astype(np.int64) + int(semitones))
     return out
 
 
@@ -521,7 +517,8 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
     for (stage, reason), n in sorted(tally.dropped_by.items()):
         d = per_stage.setdefault(stage, {"reached": 0, "dropped": {}})["dropped"]
         d[reason] = d.get(reason, 0) + n
-    every_part = sorted({*configured_parts(stages), *tally.parts, *placed.parts})
+    configured = configured_parts(stages)
+    every_part = sorted({*configured, *tally.parts, *placed.parts})
     part_counts = {p: tally.parts.get(p, 0) for p in every_part}  # an empty part counts 0
     total_kept = max(1, tally.kept)
     split_stage = next((s for s in stages if s.name == "split"), None)
@@ -538,7 +535,7 @@ def build_summary(tally: Tally, walk: Any, stages: list, timings: dict, computed
               "contents": len(tally.contents), "computed": computed, "reused": reused}
     return {
         "counts": counts,
-        "warnings": run_warnings(tally.files, tally.kept, part_counts, configured_parts(stages)),
+        "warnings": run_warnings(tally.files, tally.kept, part_counts, configured),
         "stages": per_stage,
         "split": split_info,
         "notes": walk.notes,

@@ -377,9 +377,7 @@ class Runner:
             ledger.finish_run(run_id, summary["counts"])
         from .html_report import write_report  # the run's page, from what was just written
         write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input)
-        configured = outputs.configured_parts(self.stages)
-        parts = in_part_order({p: len(placed.parts.get(p, ())) for p in {*configured, *placed.parts}},
-                              summary["split"].get("part_order"))
+        parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
                          summary.get("warnings", []),
@@ -578,7 +576,7 @@ class Runner:
                         r = self._compactor(st.name).make(
                             False, "decoder_crash", "the worker processing this file did not "
                             "return a result", {}, {})
-                    elif st.judges_sources and r["kept"]:
+                    elif st.uses_source_fields and r["kept"]:
                         r = self._source_verdict(st, r, trails[sha], rep[sha])
                     trails[sha].append(r)
                     if r["kept"]:
@@ -595,9 +593,10 @@ class Runner:
                 members = []
                 for sha in alive:
                     values = TrailValues(trails[sha])
+                    meta = (outputs.source_fields(rep[sha], values.get("file_title"), self.config.metadata)
+                            if st.uses_source_fields else {})
                     members.append(Member(sha[:16], sha, rep[sha], values, {st.name: arts.pop(sha, {})},
-                                          meta=outputs.source_fields(rep[sha], values.get("file_title"),
-                                                                     self.config.metadata)))
+                                          meta=meta))
                 del arts
                 for m in members:  # artifacts of earlier corpus stages travel along
                     for prev, res in walk.artifacts.items():

@@ -48,12 +48,16 @@ def shift_notes(notes: np.ndarray, semitones: int) -> tuple[np.ndarray, int]:
         return out, 0
     pitched = out["channel"] != DRUM_CHANNEL
     p = pitch.astype(np.int64) + np.where(pitched, s, 0)
-    high = p > 127
-    low = p < 0
-    p = np.where(high, p - 12 * ((p - 127 + 11) // 12), p)
-    p = np.where(low, p + 12 * ((-p + 11) // 12), p)
-    out["pitch"] = p.astype(out["pitch"].dtype)
-    return out, int(np.count_nonzero(high | low))
+    folded = int(np.count_nonzero((p > 127) | (p < 0)))
+    out["pitch"] = fold_octaves(p).astype(out["pitch"].dtype)
+    return out, folded
+
+
+def fold_octaves(p: np.ndarray) -> np.ndarray:
+    """Key numbers moved back into 0..127 by whole octaves (a transposed note, or the key of
+    a polyphonic aftertouch event, that left the MIDI range)."""
+    p = np.where(p > 127, p - 12 * ((p - 127 + 11) // 12), p)
+    return np.where(p < 0, p + 12 * ((-p + 11) // 12), p)
 
 
 def in_canonical_order(notes: np.ndarray) -> bool:

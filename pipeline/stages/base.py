@@ -162,9 +162,10 @@ class Stage:
         return options_fingerprint(self.name, self.version, self.opts)
 
     @property
-    def judges_sources(self) -> bool:
-        """True when this per-file stage also judges each source's own fields (``title``, the
-        metadata table's columns) with ``source_verdict``, after its content's verdict."""
+    def uses_source_fields(self) -> bool:
+        """True when the stage reads each source's own fields (``title``, the metadata table's
+        columns): a per-file stage through ``source_verdict``, after its content's verdict; a
+        corpus stage through ``Member.meta`` (left empty otherwise)."""
         return False
 
     def source_verdict(self, fields: dict[str, Any]) -> StageResult | None:

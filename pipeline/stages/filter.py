@@ -268,7 +268,7 @@ class Filter(Stage):
     )
 
     @property
-    def judges_sources(self) -> bool:
+    def uses_source_fields(self) -> bool:
         return bool(self.opts["metadata_exclude"])
 
     def source_verdict(self, fields: dict[str, Any]) -> StageResult | None:

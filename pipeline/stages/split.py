@@ -176,6 +176,11 @@ class Split(Stage):
         return options_fingerprint(f"{self.name}.prepare", self.version,
                                    {"dedup_version": Dedup.version, **signature_options()})
 
+    @property
+    def uses_source_fields(self) -> bool:
+        """Titles and metadata columns are read only to group by them."""
+        return bool(self.opts["group_by_title"] or self.opts["group_fields"])
+
     def bind(self, earlier: list[Stage]) -> None:
         """Read dedup's stored signatures when a dedup stage before the split makes them with
         the settings the split needs; else sign the files in ``prepare``."""
