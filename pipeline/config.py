@@ -15,8 +15,8 @@ from typing import Any
 import yaml
 
 from .errors import ConfigError, ConfigErrors
-from .metadata import Metadata, load_metadata
 from .executor import usable_cpus
+from .metadata import Metadata, load_metadata
 from .stages import Stage, known_stages, stage_class
 
 TOP_KEYS = ("input", "output", "workers", "metadata", "stages")
@@ -183,7 +183,7 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
                 metadata = load_metadata(raw["metadata"])
             except ConfigError as e:
                 problems.append(e)
-    problems.extend(_check_group_fields(stages, metadata))
+    problems.extend(_check_field_names(stages, metadata))
     for p in problems:
         p.file = p.file or source
     if len(problems) == 1:
@@ -194,7 +194,7 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
                   stages=stages, path=Path(source) if source else None, raw=raw, metadata=metadata)
 
 
-def _check_group_fields(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
+def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
     """``split.group_fields`` must name a manifest field or a metadata column, and
     ``filter.metadata_exclude`` a metadata column: a misspelt name would silently do nothing."""
     from .outputs import CONTRACT_FIELDS
