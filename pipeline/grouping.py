@@ -252,13 +252,15 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     if not len(pairs):
         return []
     ia, ib = pairs[:, 0], pairs[:, 1]
-    est = pair_estimates(sig, ia, ib)
+    est = None
     if shingles is None:  # the estimate decides
+        est = pair_estimates(sig, ia, ib)
         sel = est >= threshold
+        est = est[sel]
     else:  # the bounds dedup uses (containment, lead voices), with a wider margin
         sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
         sel = plausible_pairs(sig, ia, ib, sizes, threshold, margin_sigmas=margin_sigmas)
-    ia, ib, est = ia[sel], ib[sel], est[sel]
+    ia, ib = ia[sel], ib[sel]
     sets, li, lj = None, ia, ib
     if shingles is not None and len(ia):  # only the sets of files in some pair are read
         sets, li, lj = involved_sets(keys, ia, ib, shingles)
