@@ -94,7 +94,7 @@ def _run(args: argparse.Namespace) -> int:
     seen: list = []  # the up-to-date check's listing of the input folder, reused by the run
     if not (args.fresh or args.reassign or args.retry_failed):
         # an up-to-date rerun is recognised before the stages (and numpy) are even imported
-        from .uptodate import check_up_to_date
+        from .engine.uptodate import check_up_to_date
         report = check_up_to_date(args.config, input=args.input, output=args.output,
                                   on_discover=seen.append)
         if report is not None:
@@ -102,7 +102,7 @@ def _run(args: argparse.Namespace) -> int:
                 print(report.table())
             return 0
     from .config import load_config
-    from .runner import Runner
+    from .engine.runner import Runner
     cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers)
     report = Runner(cfg, fresh=args.fresh, quiet=args.quiet, reassign=args.reassign,
                     retry_failed=args.retry_failed, discovered=seen[0] if seen else None).run()
@@ -112,13 +112,13 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _explain(args: argparse.Namespace) -> int:
-    from .explain import explain
+    from .audit.explain import explain
     print(explain(Path(args.output), args.file, as_json=args.json))
     return 0
 
 
 def _synth(args: argparse.Namespace) -> int:
-    from .synth import main_synth
+    from .tools.synth import main_synth
     if args.count < 1:
         raise UsageError(f"--count must be at least 1, got {args.count}")
     if args.planted is not None and not 0 <= args.planted <= 1:
@@ -129,7 +129,7 @@ def _synth(args: argparse.Namespace) -> int:
 
 
 def _leakage(args: argparse.Namespace) -> int:
-    from .leakage import main_leakage
+    from .audit.leakage import main_leakage
     if not args.output and not args.part:
         raise UsageError("give an output folder or at least two --part NAME=LIST options")
     return main_leakage(args)
@@ -148,7 +148,7 @@ def _export(args: argparse.Namespace) -> int:
 
 
 def _bench(args: argparse.Namespace) -> int:
-    from .bench import main_bench
+    from .tools.bench import main_bench
     return main_bench(args)
 
 

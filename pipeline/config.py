@@ -15,7 +15,7 @@ from typing import Any
 import yaml
 
 from .errors import ConfigError, ConfigErrors
-from .executor import usable_cpus
+from .engine.executor import usable_cpus
 from .metadata import Metadata, load_metadata
 from .stages import Stage, known_stages, stage_class
 
@@ -197,7 +197,7 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
 def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
     """``split.group_fields`` must name a manifest field or a metadata column, and
     ``filter.metadata_exclude`` a metadata column: a misspelt name would silently do nothing."""
-    from .outputs import CONTRACT_FIELDS
+    from .outputs.manifest import CONTRACT_FIELDS
     problems = []
     filt = next((s for s in stages if s.name == "filter"), None)
     for column in (filt.options.get("metadata_exclude") or {}) if filt else ():

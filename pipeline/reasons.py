@@ -1,6 +1,6 @@
 """Every reason code a run can write, with the stage that writes it and what it means.
 
-This table is the README's reason-code table (``python -m pipeline.docs`` prints it) and a test
+This table is the README's reason-code table (``python -m pipeline.tools.docs`` prints it) and a test
 checks that every code the stages can produce is listed here.
 """
 from __future__ import annotations

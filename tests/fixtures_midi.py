@@ -9,7 +9,7 @@ import random
 import mido
 import numpy as np
 
-from pipeline.fuzz import reference_rows
+from pipeline.tools.fuzz import reference_rows
 
 
 def parse_hexdump(hexdump: str) -> bytes:
@@ -90,10 +90,10 @@ def piece_rows(piece) -> list[tuple]:
 
 def mido_rows(data: bytes) -> list[tuple]:
     """Note rows read with mido (reference decoder), using the documented policy of
-    pipeline.smf: program at note-on, stacked same-key notes closed together by the next
+    pipeline.midi.decode: program at note-on, stacked same-key notes closed together by the next
     note-off except those started at that tick, zero-length notes dropped, hanging notes
     closed at the track's last event tick. One implementation, shared with the fuzzer
-    (``pipeline.fuzz.reference_rows``); here mido's own error is raised for a file it cannot read."""
+    (``pipeline.tools.fuzz.reference_rows``); here mido's own error is raised for a file it cannot read."""
     rows = reference_rows(data)
     if rows is None:
         mido.MidiFile(file=io.BytesIO(data))  # raises mido's error

@@ -4,6 +4,6 @@ The rendering, ground truth and disk cache live in ``pipeline.analysis.evaluate_
 script that reproduces the README figures), so the tests and the figures use the same files.
 Reserved music21 folders (``oneills1850``, ``essenFolksong``, ``ryansMammoth``) are never used.
 """
-from pipeline.analysis.evaluate_key import (ABC_EVAL_FILES, MUSIC21_KEY_METHODS, RESERVED,  # noqa: F401
-                                            abc_tunes, cache_dir, chorale_paths, chorales, decode,
+from pipeline.analysis.evaluate_key import (ABC_EVAL_FILES, MUSIC21_KEY_METHODS, RESERVED,
+                                            cache_dir, chorale_paths, chorales, decode,
                                             decode_with_mido, meter_works, strip_meta)

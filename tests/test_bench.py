@@ -1,4 +1,4 @@
-"""Smoke test of pipeline/bench.py on a tiny scale: the sections run, bench.json holds what the
+"""Smoke test of pipeline/tools/bench.py on a tiny scale: the sections run, bench.json holds what the
 table reports, and the runs it times did the work they claim (no timing is asserted).
 
 Checks against something outside the bench: the synth truth file (which files a decoder must
@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import bench
+from pipeline.tools import bench
 
 TINY = bench.Scale(small=12, large=0, peer_small=2, peer_large=0, mem=(10, 20), dedup_sizes=(),
                    dedup_settings=False)

@@ -1,11 +1,11 @@
-"""python -m pipeline.bench_split on a small generated corpus: the figures it reports are
+"""python -m pipeline.tools.bench_split on a small generated corpus: the figures it reports are
 recounted here from the outputs it leaves (manifest lines, truth.json)."""
 from __future__ import annotations
 
 import json
 from itertools import combinations
 
-from pipeline.bench_split import format_table, run
+from pipeline.tools.bench_split import format_table, run
 
 
 def test_bench_split_counts_what_the_outputs_show(tmp_path):

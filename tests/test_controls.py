@@ -20,11 +20,13 @@ import pretty_midi
 import pytest
 
 from fixtures_midi import random_midi
-from pipeline import smf
-from pipeline.encode import encode
-from pipeline.outputs import render, shift_controls, staged_path
-from pipeline.runner import StagePlan
-from pipeline.score import CONTROL_DTYPE
+from pipeline.midi import decode as smf
+from pipeline.midi.encode import encode
+from pipeline.outputs.render import render
+from pipeline.outputs.render import shift_controls
+from pipeline.outputs.files import staged_path
+from pipeline.engine.runner import StagePlan
+from pipeline.midi.piece import CONTROL_DTYPE
 
 CHANNEL_TYPES = ("control_change", "pitchwheel", "aftertouch", "polytouch", "program_change")
 DRUMS = 9  # General MIDI percussion channel ("channel 10"; GM 1 specification)
@@ -60,7 +62,7 @@ def rich_midi(seed: int, tpb: int = 480, fps: int | None = None) -> bytes:
             pitch = rng.randint(40, 80) if ch != DRUMS else rng.choice([36, 38, 42, 46])
             dur = rng.choice([tpb // 4, tpb // 2, tpb])
             if ch == 1 and i == 30:  # before the note-on of its tick (pretty_midi reads the
-                # program at note-off, pipeline.smf at note-on: a change after a note-on at its
+                # program at note-off, pipeline.midi.decode at note-on: a change after a note-on at its
                 # own tick is where the two differ)
                 ev.append((tick, mido.Message("program_change", channel=ch, program=rng.randrange(128))))
             ev.append((tick, mido.Message("note_on", channel=ch, note=pitch, velocity=rng.randint(20, 120))))
@@ -245,7 +247,7 @@ def test_random_midi_control_changes_round_trip():
 
 def test_smpte_controls_rebased_like_notes(tmp_path):
     # SMPTE 25 fps x 40 ticks/frame = 1000 ticks per second (SMF 1.0, division); the output
-    # is re-based on 960 ticks per second (pipeline.encode); a control keeps its time in seconds
+    # is re-based on 960 ticks per second (pipeline.midi.encode); a control keeps its time in seconds
     src = rich_midi(8, fps=25)
     out = render_outputs(tmp_path, src, {}, {"transpose": 0})[""]
     mf = mido.MidiFile(file=io.BytesIO(out))
@@ -279,15 +281,15 @@ def test_shift_controls_moves_only_pitched_poly_aftertouch():
 
 
 def test_control_layout_is_what_the_compiled_code_writes():
-    # pipeline/_smf_accel.c writes and reads CONTROL_DTYPE records packed, 14 bytes each
+    # pipeline/midi/_smf_accel.c writes and reads CONTROL_DTYPE records packed, 14 bytes each
     assert CONTROL_DTYPE.itemsize == 14
     assert [CONTROL_DTYPE.fields[f][1] for f in CONTROL_DTYPE.names] == [0, 8, 10, 11, 12, 13]
 
 
 def test_compiled_encoder_with_controls_equals_numpy():
-    # pipeline/_smf_accel.c group_events with the other events against encode._all_group_events
+    # pipeline/midi/_smf_accel.c group_events with the other events against encode._all_group_events
     if not smf.HAVE_ACCEL:
-        pytest.skip("pipeline._smf_accel is not built")
+        pytest.skip("pipeline.midi._smf_accel is not built")
     for seed in range(6):
         p = smf.decode(rich_midi(seed))
         assert encode(p, accelerated=True) == encode(p, accelerated=False)
@@ -315,7 +317,7 @@ def test_compiled_encoder_with_controls_equals_numpy():
 def test_a_run_writes_them_unless_notes_only(tmp_path, notes_only):
     # the option goes from the config to the worker that renders (config -> StagePlan -> render)
     from pipeline.config import load_config
-    from pipeline.runner import Runner
+    from pipeline.engine.runner import Runner
     (tmp_path / "in").mkdir()
     src = rich_midi(9)
     (tmp_path / "in" / "song.kar").write_bytes(src)  # .kar: a plain SMF (common practice)
@@ -335,7 +337,7 @@ def test_generated_corpus_round_trip_with_mido():
     # lyrics, SMPTE, RMID, running status, controller-only tracks...): mido reads the same
     # control changes, pitch bends and aftertouch per channel in the normalized output, at the
     # same ticks (SMPTE: the nearest output tick), and the same lyric/text/marker payloads
-    from pipeline import synth
+    from pipeline.tools import synth
     from pipeline.errors import DecodeError
     outs, _ = synth.build(200, 3, "small", None)
     types = ("control_change", "pitchwheel", "aftertouch", "polytouch")

@@ -4,7 +4,7 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
-from pipeline.docs import config_reference, reason_table
+from pipeline.tools.docs import config_reference, reason_table
 from pipeline.reasons import REASONS
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -12,7 +12,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def test_readme_holds_the_generated_config_reference():
     assert config_reference() in (ROOT / "README.md").read_text(encoding="utf-8"), \
-        "README is out of date: paste the output of 'python -m pipeline.docs'"
+        "README is out of date: paste the output of 'python -m pipeline.tools.docs'"
 
 
 def test_readme_holds_the_generated_reason_table():

@@ -1,4 +1,4 @@
-"""Tests of pipeline.encode: SMF layout per the spec, round trips through mido and our decoder."""
+"""Tests of pipeline.midi.encode: SMF layout per the spec, round trips through mido and our decoder."""
 from __future__ import annotations
 
 import io
@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 
 from fixtures_midi import bach_chorale_midi, mido_rows, parse_hexdump, piece_rows, random_midi
-from pipeline.encode import encode, vlq
-from pipeline.outputs import write_atomic
+from pipeline.midi.encode import encode, vlq
+from pipeline.outputs.files import write_atomic
 from pipeline.errors import OutputError
-from pipeline.smf import decode
+from pipeline.midi.decode import decode
 from test_smf import VLQ_EXAMPLES
 
 

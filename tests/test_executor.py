@@ -1,4 +1,4 @@
-"""Tests of pipeline.executor: the supervised worker pool turns hangs, crashes and memory
+"""Tests of pipeline.engine.executor: the supervised worker pool turns hangs, crashes and memory
 blow-ups into per-task faults, replaces the worker, and gives the same results for 1 and N
 workers."""
 from __future__ import annotations
@@ -11,7 +11,7 @@ import time
 import pytest
 
 from pipeline.errors import OutputError, UsageError
-from pipeline.executor import FAULT_ENV, Fault, Limits, parse_fault_hook, run_tasks
+from pipeline.engine.executor import FAULT_ENV, Fault, Limits, parse_fault_hook, run_tasks
 
 
 def square(x: int) -> int:

@@ -21,8 +21,8 @@ from pipeline.config import load_config
 from pipeline.export import ExportOptions, export_output, open_export
 from pipeline.export.encodings import decode_events, encode_events, pianoroll, vocabulary, windows
 from pipeline.export.png import png_bytes, roll_image
-from pipeline.runner import Runner
-from pipeline.smf import decode
+from pipeline.engine.runner import Runner
+from pipeline.midi.decode import decode
 
 from fixtures_midi import random_midi
 

@@ -1,7 +1,7 @@
 """Faults a run must survive: worker crash, hang, busy loop, unbounded allocation, a decoder
 exception, kill -9 of the run at several points, disk full and an unwritable output folder.
 
-Each fault is injected (the MIDISIFT_FAULT worker hook of pipeline.executor, SIGKILL from a
+Each fault is injected (the MIDISIFT_FAULT worker hook of pipeline.engine.executor, SIGKILL from a
 driver script that wraps runner/outputs/ledger functions, monkeypatched OSError/sqlite errors)
 and the run is checked against an uninterrupted run of the same corpus: nothing lost, manifest
 and split lists byte-identical after recovery, no partial file under a final name.
@@ -22,14 +22,17 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pipeline import cli, outputs, runner
+from pipeline import cli
+from pipeline.outputs import render as rendering
+from pipeline.outputs.files import STAGING
+from pipeline.engine import runner
 from pipeline.config import load_config
 from pipeline.errors import LedgerError, OutputError
-from pipeline.executor import FAULT_ENV
-from pipeline.ledger import Ledger
-from pipeline.runner import Runner
-from pipeline.smf import decode
-from pipeline.synth import main_synth
+from pipeline.engine.executor import FAULT_ENV
+from pipeline.store.ledger import Ledger
+from pipeline.engine.runner import Runner
+from pipeline.midi.decode import decode
+from pipeline.tools.synth import main_synth
 
 REPO = Path(__file__).resolve().parents[1]
 COUNT = 160
@@ -172,7 +175,10 @@ def test_one_and_two_workers_give_identical_outputs(corpus, config, baseline, tm
 DRIVER = textwrap.dedent('''
     """Run the CLI, but SIGKILL this process at the N-th call of a chosen function."""
     import os, signal, sys
-    from pipeline import cli, ledger, outputs, runner
+    from pipeline import cli
+    from pipeline.outputs import files as outfiles, manifest, summary
+    from pipeline.store import ledger
+    from pipeline.engine import runner
 
     point, n = sys.argv[1].split(":")
     n, calls, me = int(n), [0], os.getpid()
@@ -203,7 +209,7 @@ DRIVER = textwrap.dedent('''
                 hit()
         runner.run_tasks = counting
     elif point == "place":        # the N-th normalized file being moved into midi/<part>/
-        orig_place, orig_replace, armed = outputs.place, os.replace, [False]
+        orig_place, orig_replace, armed = outfiles.place, os.replace, [False]
         def replace(src, dst):
             if armed[0]:
                 hit()
@@ -211,15 +217,16 @@ DRIVER = textwrap.dedent('''
         def place(*a, **k):
             armed[0] = True
             return orig_place(*a, **k)
-        os.replace, outputs.place = replace, place
+        os.replace, outfiles.place = replace, place
     elif point == "write_all":    # just before the manifest is written
-        before(outputs, "write_all")
+        before(manifest, "write_all")
     elif point == "write_atomic": # the N-th atomic write of manifest/splits/summary
-        orig_all = outputs.write_all
+        orig_all = manifest.write_all
         def write_all(*a, **k):
-            before(outputs, "write_atomic")
+            before(manifest, "write_atomic")
+            before(summary, "write_atomic")
             return orig_all(*a, **k)
-        outputs.write_all = write_all
+        manifest.write_all = write_all
     elif point == "decisions":    # outputs written, the last ledger transaction not committed
         before(ledger.Ledger, "put_decisions")
     sys.exit(cli.main(sys.argv[2:]))
@@ -339,17 +346,17 @@ def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch
 
 def test_disk_full_in_a_worker_rendering_outputs(corpus, config, baseline, tmp_path, monkeypatch):
     out = tmp_path / "out"
-    real = outputs._write_staged  # how a worker writes a rendered file into the staging folder
+    real = rendering._write_staged  # how a worker writes a rendered file into the staging folder
 
     def write_staged(path, data, *a, **k):  # inherited by the forked workers
-        if outputs.STAGING in Path(path).parts:
+        if STAGING in Path(path).parts:
             raise OutputError("cannot write (No space left on device); check free space", file=str(path))
         return real(path, data, *a, **k)
-    monkeypatch.setattr(outputs, "_write_staged", write_staged)
+    monkeypatch.setattr(rendering, "_write_staged", write_staged)
     with pytest.raises(OutputError, match="No space left") as err:
         run(config, corpus, out)
-    assert outputs.STAGING in Path(err.value.file).parts
-    monkeypatch.setattr(outputs, "_write_staged", real)
+    assert STAGING in Path(err.value.file).parts
+    monkeypatch.setattr(rendering, "_write_staged", real)
     run(config, corpus, out)
     assert snapshot(out) == baseline  # no file was dropped for the disk's fault
 
@@ -367,7 +374,7 @@ def test_output_folder_that_cannot_be_created(corpus, config, tmp_path, capsys):
 def test_lock_file_that_cannot_be_created(corpus, config, tmp_path, monkeypatch):
     # chmod cannot make a folder unwritable for root (CI runs as root), so the refusal of the
     # file system is simulated where the run first writes: the lock file
-    import pipeline.lock as lock
+    import pipeline.store.lock as lock
 
     def denied(path, *a, **k):
         raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(path))
@@ -404,7 +411,7 @@ def test_a_stopped_run_keeps_its_finished_work(corpus, tmp_path, sig, status):
                              str(corpus), "--output", str(out), "--quiet", "--workers", "2"],
                             cwd=REPO, env=env, stderr=subprocess.PIPE, text=True)
     db = out / "state.sqlite"
-    staging = out / outputs.STAGING
+    staging = out / STAGING
     rendered = 0  # workers write their renders at once; the ledger is written every 2 s
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline and rendered < COUNT // 4:

@@ -1,17 +1,17 @@
-"""Property-based fuzzing of the decoder and the per-file stages (pipeline.fuzz).
+"""Property-based fuzzing of the decoder and the per-file stages (pipeline.tools.fuzz).
 
 Valid SMF files are generated with hypothesis and mutated (bit flips, truncation, lying chunk
 lengths, huge variable-length deltas, running status without a status, zero-length tracks,
 garbage after the last track, ...). Every file must get exactly one verdict, no exception may
 escape, and a file that is still valid after the mutation must decode to the same notes as the
-reference decoder: mido (``pipeline.fuzz.reference_rows``, the suite's one mido reader, also
-behind ``fixtures_midi.mido_rows``) read under the note policy documented in pipeline.smf; a
+reference decoder: mido (``pipeline.tools.fuzz.reference_rows``, the suite's one mido reader, also
+behind ``fixtures_midi.mido_rows``) read under the note policy documented in pipeline.midi.decode; a
 file mido refuses (e.g. a sysex payload byte above 0x7F, which our decoder skips by its declared
 length) is not compared.
 
 CI tries 400 + 150 hypothesis cases, 275 seeded cases (25 per mutation kind, forced), 40
 cross-checks of the long run's reference, a 60-file fuzzed corpus through a whole run and a
-0.6-second smoke run of ``python -m pipeline.fuzz``: about 925 cases plus the smoke run.
+0.6-second smoke run of ``python -m pipeline.tools.fuzz``: about 925 cases plus the smoke run.
 """
 from __future__ import annotations
 
@@ -23,9 +23,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 
 from fixtures_midi import mido_rows
-from pipeline import fuzz
+from pipeline.tools import fuzz
 from pipeline.config import load_config
-from pipeline.runner import Runner
+from pipeline.engine.runner import Runner
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -96,19 +96,19 @@ def test_files_mido_misreads_are_not_compared():
     assert mido_rows(data)[0][:2] == (0, 96)  # mido: the 100 ticks are lost
     verdict = CHECKER.check(data)
     assert verdict.reason == "kept" and not verdict.compared
-    from pipeline.smf import decode
+    from pipeline.midi.decode import decode
     assert decode(data).notes["start"][0] == 100
 
 
 def test_running_status_after_a_sysex_is_not_compared():
-    # SMF 1.0: a sysex event cancels running status; pipeline/smf.py keeps the channel status
+    # SMF 1.0: a sysex event cancels running status; pipeline/midi/decode.py keeps the channel status
     # in force (its documented policy), mido 1.3.3 takes 0xF0 as the running status and reads
     # the byte after the data byte as a sysex length. Found by the long fuzz run (seed 0): a
     # note whose note-off came by running status after a sysex; mido left it hanging.
     body = (b"\x00\x90\x3c\x64" + b"\x30\xf0\x02\x7e\xf7" + b"\x30\x3c\x00"
             + b"\x40\xff\x2f\x00")  # note on at 0, sysex at 48, note-off at 96, end at 160
     data = fuzz.Doc(0, 96, [[(b"", body)]]).to_bytes()
-    from pipeline.smf import decode
+    from pipeline.midi.decode import decode
     assert decode(data).notes["end"].tolist() == [96]  # our policy: the note-off counts
     assert mido_rows(data) == [(0, 160, 0x3C, 0x64, 0, 0, 0)]  # mido: hanging to the end
     verdict = CHECKER.check(data)

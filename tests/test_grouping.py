@@ -1,4 +1,4 @@
-"""Tests of pipeline.grouping: groups from links, and the grouped, rerun-stable assignment.
+"""Tests of pipeline.similarity.grouping: groups from links, and the grouped, rerun-stable assignment.
 
 The grouped-split properties are the ones general-purpose libraries document for group-aware
 splitters: scikit-learn's GroupShuffleSplit / GroupKFold guarantee that "the same group will not
@@ -14,8 +14,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.grouping import (achieved_ratios, assign_groups, band_candidates, build_groups,
-                               group_by_key, lsh_rows, near_links)
+from pipeline.similarity.grouping import (achieved_ratios, assign_groups, band_candidates,
+                                                  build_groups, group_by_key, lsh_rows, near_links)
 
 RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
 
@@ -160,7 +160,7 @@ def test_lsh_rows_meets_recall():
 
 def test_near_links_finds_every_pair_above_threshold_and_no_other():
     """Against brute-force exact Jaccard on random shingle sets with planted overlaps."""
-    from pipeline.similarity import minhash
+    from pipeline.similarity.measure import minhash
 
     rng = np.random.default_rng(7)
     base = {f"b{i}": rng.choice(2**40, 300, replace=False).astype(np.uint64) for i in range(40)}
@@ -196,7 +196,7 @@ def test_band_candidates_equal_brute_force(n, bands, seed, marked):
     than two, some empty signatures); with ``only``, the pairs touching a marked row (a fifth
     of the rows takes the path that sorts each band, one row among 16 or more the path that
     searches the new rows' keys). The per-file LSHIndex must give the same pairs."""
-    from pipeline.similarity import LSHIndex, _U32_MAX
+    from pipeline.similarity.measure import LSHIndex, _U32_MAX
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 32), dtype=np.uint32)

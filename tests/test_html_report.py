@@ -18,8 +18,8 @@ from pathlib import Path
 import pytest
 
 from pipeline.config import load_config
-from pipeline.html_report import read_manifest
-from pipeline.runner import Runner
+from pipeline.outputs.page import read_manifest
+from pipeline.engine.runner import Runner
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"

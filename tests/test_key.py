@@ -11,7 +11,7 @@ from pipeline.analysis import key as keymod
 from pipeline.analysis.evaluate_key import (agreement_with_music21, key_table, mirex_score,
                                             render_chorale)
 from pipeline.analysis.eval_sets import abc_key
-from pipeline.score import KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
+from pipeline.midi.piece import KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
 from pipeline.stages.base import FileContext
 from pipeline.stages.key_meter import KeyMeter
 

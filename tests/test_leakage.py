@@ -1,5 +1,5 @@
-"""Tests of pipeline.leakage: the audit finds planted cross-part duplicates in a user-provided
-split of the demo corpus (pipeline.synth, whose truth file names every planted variant) and
+"""Tests of pipeline.audit.leakage: the audit finds planted cross-part duplicates in a user-provided
+split of the demo corpus (pipeline.tools.synth, whose truth file names every planted variant) and
 finds none in a split made by our split stage."""
 from __future__ import annotations
 
@@ -13,11 +13,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pipeline import synth
+from pipeline.tools import synth
 from pipeline.errors import DecodeError, UsageError
-from pipeline.leakage import add_arguments, audit, audit_output, format_report, main_leakage
-from pipeline.similarity import signature_of
-from pipeline.smf import decode_file
+from pipeline.audit.leakage import add_arguments, audit, audit_output, format_report, main_leakage
+from pipeline.similarity.measure import signature_of
+from pipeline.midi.decode import decode_file
 from pipeline.stages.base import CorpusState, Member
 from pipeline.stages.split import Split
 

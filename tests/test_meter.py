@@ -15,8 +15,8 @@ import pytest
 
 from pipeline.analysis import evaluate_meter as ev
 from pipeline.analysis import meter as metermod
-from pipeline.score import METER_DTYPE, Piece
-from pipeline.smf import decode
+from pipeline.midi.piece import METER_DTYPE, Piece
+from pipeline.midi.decode import decode
 from pipeline.stages.base import FileContext
 from pipeline.stages.key_meter import KeyMeter
 
@@ -347,11 +347,11 @@ def test_empty_piece(chorale_works):
 
 
 def test_a_long_silence_does_not_blow_up_the_accent_function():
-    # Found by the fuzzer (pipeline/fuzz.py): a valid 197-byte file, 1 tick per beat, with a note
+    # Found by the fuzzer (pipeline/tools/fuzz.py): a valid 197-byte file, 1 tick per beat, with a note
     # at tick 268,761,124 made the accent function ask for 24 GiB. Silence is now squeezed by
     # whole common bars, which keeps every onset's position in every candidate bar.
     from pipeline.analysis.meter import COMMON_BAR_BINS, _squeeze_gaps, accent_function
-    from pipeline.smf import decode
+    from pipeline.midi.decode import decode
     data = bytes.fromhex(
         "4d546864000000060000000100014d54726b000000af00ff0302bacd82139f6a3c078f6a0c825d9f6c65529f5d257e"
         "8f6c13229f0a0b2f8f5d2483108f0a3d8bdf519f5d6f349f627481668f5d6450cf6081019f2774298f6274ffffff7f"

@@ -4,8 +4,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.outputs import shift_key_signatures, write_atomic
-from pipeline.score import KEY_DTYPE
+from pipeline.outputs.render import shift_key_signatures
+from pipeline.outputs.files import write_atomic
+from pipeline.midi.piece import KEY_DTYPE
 
 
 def _keys(*pairs):
@@ -42,7 +43,7 @@ def test_placed_files_are_flushed_one_by_one_or_with_one_sync(tmp_path, monkeypa
     import errno
     import os
 
-    from pipeline import outputs
+    from pipeline.outputs import files as outputs
     from pipeline.errors import OutputError
     files = []
     for i in range(3):

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import pickle
 
-from pipeline.records import Compactor, TrailValues
+from pipeline.store.records import Compactor, TrailValues
 from pipeline.stages import StageResult
 
 PLAIN = [
@@ -71,7 +71,7 @@ def test_stored_records_read_like_their_dict_without_parsing_everything():
     nested objects or inside strings, and for names the text does not have."""
     import json
 
-    from pipeline.ledger import canonical_json, stored_result
+    from pipeline.store.codec import canonical_json, stored_result
     values = [
         {"augment": [], "augment_folded": 0, "transpose": 2, "transpose_folded": 0},
         {"augment": [3, -5], "x": 'a"augment":1', "y": {"augment": 9}},

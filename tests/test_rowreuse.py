@@ -1,5 +1,5 @@
 """A rerun reuses the manifest lines and decision trails of files whose rows did not change
-(``pipeline.rowreuse``), and the corpus stages' results of clusters that did not change; what
+(``pipeline.outputs.rowreuse``), and the corpus stages' results of clusters that did not change; what
 it writes must equal what rebuilding everything writes.
 
 The oracle is the same rerun with nothing to reuse (its old manifest and the stored corpus-stage
@@ -19,9 +19,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import outputs
+from pipeline.outputs import manifest as outputs
 from pipeline.config import load_config
-from pipeline.runner import Runner
+from pipeline.engine.runner import Runner
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"
@@ -156,7 +156,7 @@ def test_changed_options_rebuild_every_row(first, tmp_path, monkeypatch):
 def test_line_prefix_is_what_json_writes(rel):
     # the reference is Python's json module, as the manifest writer calls it
     from types import SimpleNamespace
-    from pipeline.rowreuse import line_prefix
+    from pipeline.outputs.rowreuse import line_prefix
     f = SimpleNamespace(rel=rel, sha256="0123456789abcdef" * 4)
     row = {"id": f.sha256[:16], "source": rel, "sha256": f.sha256}
     assert json.dumps(row, ensure_ascii=False, separators=(", ", ": ")).startswith(line_prefix(f))
@@ -168,7 +168,7 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     records, byte-identical copies included)."""
     import json
 
-    from pipeline.runner import Runner
+    from pipeline.engine.runner import Runner
     corpus, base = first
     dest = tmp_path / "trail"
     shutil.copytree(base, dest)

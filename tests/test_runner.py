@@ -17,7 +17,7 @@ import yaml
 
 from pipeline.cli import main
 from pipeline.config import load_config
-from pipeline.runner import Runner
+from pipeline.engine.runner import Runner
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"
@@ -189,7 +189,7 @@ def test_explain_reads_a_folder_it_cannot_write(demo_out, tmp_path, capsys):
     and folder are read-only, and a read-only ledger refuses writes (sqlite3 URI mode=ro)."""
     import stat
 
-    from pipeline.ledger import Ledger
+    from pipeline.store.ledger import Ledger
     frozen = tmp_path / "frozen"
     shutil.copytree(demo_out, frozen)
     before = sorted(p.name for p in frozen.iterdir())
@@ -255,9 +255,9 @@ def test_missing_input_folder_is_a_clear_error(tmp_path, capsys):
 
 
 def test_generated_corpus_verdicts_match_its_truth(tmp_path):
-    # The generator's planted cases (pipeline/synth.py, truth.json) through the default config:
+    # The generator's planted cases (pipeline/tools/synth.py, truth.json) through the default config:
     # every verdict and every duplicate_of must match what was planted.
-    from pipeline.synth import generate
+    from pipeline.tools.synth import generate
     corpus = tmp_path / "corpus"
     truth = generate(corpus, 300, seed=11)["files"]
     out = tmp_path / "out"
@@ -277,10 +277,10 @@ def test_generated_corpus_verdicts_match_its_truth(tmp_path):
 
 def test_split_links_are_incremental_and_equal_a_full_search(tmp_path):
     # A rerun searches only pairs with a new file; the links it ends with must equal a search
-    # over everything from scratch (pipeline.grouping.near_links over all kept files).
+    # over everything from scratch (pipeline.similarity.grouping.near_links over all kept files).
     import numpy as np
-    from pipeline.grouping import near_links
-    from pipeline.ledger import Ledger
+    from pipeline.similarity.grouping import near_links
+    from pipeline.store.ledger import Ledger
     corpus = tmp_path / "corpus"
     shutil.copytree(DEMO, corpus)
     later = sorted(corpus.rglob("*.mid"))[::7]
@@ -320,8 +320,8 @@ def test_tasks_travel_to_workers_unchanged():
     import pickle
     from multiprocessing.reduction import ForkingPickler
 
-    from pipeline.records import Compactor
-    from pipeline.runner import FileTask, StagePlan
+    from pipeline.store.records import Compactor
+    from pipeline.engine.runner import FileTask, StagePlan
 
     cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output="/tmp/x", workers=1)
     runner = Runner(cfg, quiet=True)
@@ -393,7 +393,7 @@ def test_a_rerun_reads_the_shingle_sets_of_compared_files_only(tmp_path, monkeyp
     # Shingle sets (dedup's largest artifact) stay in the ledger until a pair or a cluster of
     # several needs them; a rerun adding files must not read every file's set, and its outputs
     # must be those of a run that read them all (the pre-deferral behaviour, forced here).
-    from pipeline.ledger import _ArrayRows
+    from pipeline.store.ledger import _ArrayRows
     from pipeline.stages.dedup import Dedup
     corpus = tmp_path / "corpus"
     shutil.copytree(DEMO, corpus)

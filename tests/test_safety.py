@@ -17,10 +17,10 @@ import pytest
 from pipeline import cli
 from pipeline.config import load_config, parse_config
 from pipeline.errors import ConfigError, LedgerError, UsageError
-from pipeline.ledger import Ledger
-from pipeline.lock import LOCK_NAME, OutputLock
-from pipeline.runner import Runner, discover
-from pipeline.synth import main_synth
+from pipeline.store.ledger import Ledger
+from pipeline.store.lock import LOCK_NAME, OutputLock
+from pipeline.engine.runner import Runner, discover
+from pipeline.tools.synth import main_synth
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "configs" / "default.yaml"
@@ -274,8 +274,8 @@ def test_deferred_artifact_arrays_read_back_as_the_eager_ones(tmp_path, monkeypa
     # the reference), reads are batched across FETCH_CHUNK, and plain arrays pass through
     import numpy as np
 
-    from pipeline import ledger as ledger_mod
-    from pipeline.ledger import StoredArray, load_arrays
+    from pipeline.store import ledger as ledger_mod
+    from pipeline.store.ledger import StoredArray, load_arrays
     monkeypatch.setattr(ledger_mod, "FETCH_CHUNK", 3)  # several queries for 7 keys
     rng = np.random.default_rng(0)
     items = {"%064x" % k: {"shingles": rng.integers(0, 2**63, size=k, dtype=np.uint64),
@@ -317,7 +317,7 @@ def test_artifact_scalars_read_back_as_the_json_module_reads_them(tmp_path):
     import json
     import math
 
-    from pipeline.ledger import SCALARS
+    from pipeline.store.codec import SCALARS
     values = ["abc", 'a"b', "a\\b", "é", "", "\u2028", "tab\there", "del\x7f",
               0, -3, -2**70, 10**20, 1.5, -0.0, 1e-7, 1e300,
               float("inf"), float("-inf"), float("nan"), True, False, None, [1, 2.5], {"a": 1}]

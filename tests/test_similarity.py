@@ -5,11 +5,13 @@ import numpy as np
 import pytest
 from datasketch import MinHash, MinHashLSH
 
-from pipeline import smf
-from pipeline.similarity import (LSHIndex, UnionFind, band_keys, candidate_probability, check_banding,
-                                 estimate_jaccard, fold32, minhash, near_pairs, near_pairs_between,
-                                 pair_similarities, set_similarity, sorted_unique, verify_index_pairs,
-                                 verify_pairs)
+from pipeline.midi import decode as smf
+from pipeline.similarity.measure import (LSHIndex, UnionFind, band_keys,
+                                                 candidate_probability, check_banding,
+                                                 estimate_jaccard, fold32, minhash, near_pairs,
+                                                 near_pairs_between, pair_similarities,
+                                                 set_similarity, sorted_unique, verify_index_pairs,
+                                                 verify_pairs)
 
 
 def pair_with_jaccard(rng: np.random.Generator, j: float, union: int = 400) -> tuple[np.ndarray, np.ndarray]:
@@ -215,7 +217,7 @@ def test_incremental_banding_kernel_equals_the_definition_and_numpy(n, bands, se
     """With few new rows (one in 16 or fewer) ``banded_pair_codes`` takes the compiled kernel
     when built; its codes equal the numpy formulation's and banding's definition, on
     signatures with small value ranges (buckets of many rows, pairs sharing many bands)."""
-    from pipeline.similarity import banded_pair_codes
+    from pipeline.similarity.measure import banded_pair_codes
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 128), dtype=np.uint32)
@@ -396,7 +398,7 @@ def test_plausible_codes_drop_unrelated_pairs():
 def test_band_keys_one_band_at_a_time_equal_the_whole_table():
     """The per-band keys (what the corpus stages compute, one band at a time) equal the
     all-bands-at-once formulation they replace, kept here as the oracle."""
-    from pipeline.similarity import _ROLL, band_key
+    from pipeline.similarity.measure import _ROLL, band_key
     from pipeline.analysis.shingles import fmix64
 
     def whole_table(signatures, bands):

@@ -1,4 +1,4 @@
-"""Tests of pipeline.smf.decode against the SMF 1.0 spec, mido and pretty_midi."""
+"""Tests of pipeline.midi.decode.decode against the SMF 1.0 spec, mido and pretty_midi."""
 from __future__ import annotations
 
 import random
@@ -9,8 +9,8 @@ import pytest
 from fixtures_midi import (bach_chorale_midi, mido_rows, parse_hexdump, piece_rows,
                            piece_seconds_rows, pretty_midi_rows, random_midi)
 from pipeline.errors import DecodeError
-from pipeline.score import sort_notes
-from pipeline.smf import REPAIRS, decode, decode_file
+from pipeline.midi.piece import sort_notes
+from pipeline.midi.decode import REPAIRS, decode, decode_file
 
 HEADER_1TRK = """
 4d 54 68 64 00 00 00 06  # MThd, header length 6

@@ -1,9 +1,9 @@
-"""Differential tests of the compiled decoder path (pipeline/_smf_accel.c) against the
-pure-Python one in pipeline.smf: the same ``Piece`` (every field, array dtypes and bytes, repairs
+"""Differential tests of the compiled decoder path (pipeline/midi/_smf_accel.c) against the
+pure-Python one in pipeline.midi.decode: the same ``Piece`` (every field, array dtypes and bytes, repairs
 in order) or the same ``DecodeError`` (code, message, offset, track, file) on the demo corpus,
-a generated corpus with every planted defect, mutated files from pipeline.fuzz, a fuzzer aimed
+a generated corpus with every planted defect, mutated files from pipeline.tools.fuzz, a fuzzer aimed
 at the track loop itself and hand-built edge cases. Every decoded piece is also encoded both
-ways (pipeline.encode: compiled ``group_events`` vs numpy ``_all_group_events``): same bytes. The outside references (mido, pretty_midi,
+ways (pipeline.midi.encode: compiled ``group_events`` vs numpy ``_all_group_events``): same bytes. The outside references (mido, pretty_midi,
 the SMF 1.0 examples) are checked in tests/test_smf.py, which runs on the accelerated path by
 default; a few mido checks here pin the accelerated path to the reference directly.
 """
@@ -20,15 +20,16 @@ import numpy as np
 import pytest
 
 from fixtures_midi import mido_rows, parse_hexdump, piece_rows, random_midi
-from pipeline import fuzz, smf, synth
-from pipeline.encode import encode, vlq
+from pipeline.tools import fuzz, synth
+from pipeline.midi import decode as smf
+from pipeline.midi.encode import encode, vlq
 from pipeline.errors import DecodeError
-from pipeline.score import NOTE_DTYPE, TEMPO_DTYPE, Piece, ticks_to_seconds
+from pipeline.midi.piece import NOTE_DTYPE, TEMPO_DTYPE, Piece, ticks_to_seconds
 
 REPO = Path(__file__).resolve().parents[1]
 
 pytestmark = pytest.mark.skipif(
-    not smf.HAVE_ACCEL, reason="pipeline._smf_accel is not built (no C compiler at install "
+    not smf.HAVE_ACCEL, reason="pipeline.midi._smf_accel is not built (no C compiler at install "
     "time); the pure-Python decoder is in use and tested by test_smf.py")
 
 
@@ -111,7 +112,7 @@ def test_the_accelerated_path_is_the_default_unless_switched_off():
 
 
 def test_environment_switch_forces_pure_python():
-    code = "import pipeline.smf as s; print(s.HAVE_ACCEL, s.USE_ACCEL)"
+    code = "import pipeline.midi.decode as s; print(s.HAVE_ACCEL, s.USE_ACCEL)"
     env = {**os.environ, "MIDISIFT_PURE_PYTHON": "1"}
     here = Path(smf.__file__).resolve().parents[1]  # the same package this process imported
     out = subprocess.run([sys.executable, "-c", code], env=env, cwd=here, check=True,
@@ -439,7 +440,7 @@ def _random_notes(rng: np.random.Generator, n: int, wide: bool = False) -> np.nd
 
 
 def test_encoder_on_random_and_transposed_note_tables():
-    from pipeline.score import sort_notes
+    from pipeline.midi.piece import sort_notes
     from pipeline.stages.transpose import Transpose
     rng = np.random.default_rng(11)
     base = smf.decode(random_midi(2, n_notes=50, n_tracks=3), accelerated=False)
@@ -554,7 +555,7 @@ def test_pairwise_sum_is_numpys():
     # numpy's float64 add.reduce: pairwise summation in blocks of 8 up to 128 values
     # (numpy/_core/src/umath/loops_utils.h.src); every size up to 300 and around the block edges,
     # and beyond numpy 2.2's 8192-value buffer, once the module follows this numpy's chunking
-    from pipeline.score import _sums_follow_numpy
+    from pipeline.midi.piece import _sums_follow_numpy
     assert _sums_follow_numpy(smf._smf_accel), f"numpy {np.__version__}: no chunking matches"
     rng = np.random.default_rng(8)
     for n in list(range(300)) + [1000, 1023, 1024, 1025, 8191, 8192, 8193, 20000, 100001]:
@@ -634,7 +635,7 @@ def test_compiled_encoder_from_the_table(monkeypatch, analysis_pieces):
 
 
 def test_compiled_analyses_hand_back_what_numpy_treats_otherwise():
-    from pipeline.score import compiled_analyses
+    from pipeline.midi.piece import compiled_analyses
     p = smf.decode(random_midi(2, n_notes=200, n_tracks=3))
     accel = smf._smf_accel
     assert (compiled_analyses(p.notes) is accel) == smf.USE_ACCEL
@@ -654,7 +655,7 @@ def test_compiled_analyses_hand_back_what_numpy_treats_otherwise():
 def test_compiled_minhash_equals_similarity_minhash():
     # minhash32 (offered to similarity.minhash) against it, both table layouts, and datasketch
     from datasketch import MinHash
-    from pipeline.similarity import fold32, minhash, permutations
+    from pipeline.similarity.measure import fold32, minhash, permutations
     rng = np.random.default_rng(4)
     for size in (1, 2, 100, 255, 256, 257, 4096):
         sh = np.unique(rng.integers(0, 2 ** 64, size, dtype=np.uint64))

@@ -30,10 +30,10 @@ from pipeline.analysis import meter as metermod
 from pipeline.analysis import shingles as shmod
 from pipeline.analysis import stats as statsmod
 from pipeline.analysis import transpose as trmod
-from pipeline.score import (DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                            sort_notes)
-from pipeline.similarity import fold32, minhash, permutations, signature_of
-from pipeline.smf import decode
+from pipeline.midi.piece import (DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece,
+                                 empty_notes, sort_notes)
+from pipeline.similarity.measure import fold32, minhash, permutations, signature_of
+from pipeline.midi.decode import decode
 from pipeline.stages.transpose import Transpose
 
 from fixtures_midi import random_midi

@@ -1,6 +1,6 @@
 """Tests of the split stage's ``run_corpus`` with simulated runs (``CorpusState(previous=...)``
 carrying what the previous run saved). Near-duplicates are planted as shingle sets with a known
-overlap, signed with pipeline.similarity.minhash as the dedup stage would store them; every
+overlap, signed with pipeline.similarity.measure.minhash as the dedup stage would store them; every
 "zero cross-part near-duplicates" check is a brute-force exact comparison of all pairs."""
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from pipeline.errors import ConfigError
-from pipeline.similarity import minhash, set_similarity
+from pipeline.similarity.measure import minhash, set_similarity
 from pipeline.stages.base import CorpusState, Member, StageResult
 from pipeline.stages.split import Split, check_ratios, normalize_text, output_count
 
@@ -251,8 +251,8 @@ def test_a_stored_split_result_is_recognised_without_parsing():
     """The split compares a stored record's JSON text with the text it expects; that text must
     be what the ledger writes for those values (canonical JSON: the json module, sorted keys),
     or no stored result would ever be reused."""
-    from pipeline.ledger import stored_result
-    from pipeline.records import Compactor
+    from pipeline.store.codec import stored_result
+    from pipeline.store.records import Compactor
     from pipeline.stages.split import _same_split
     values = {"split": "train", "group": "00000000000000ab", "group_size": 3}
     stored = Compactor().from_stored(stored_result(StageResult.keep(values=values).to_json()))
@@ -363,8 +363,8 @@ def test_a_run_without_dedup_keeps_planted_variants_in_one_part(tmp_path):
     import yaml
 
     from pipeline.config import load_config
-    from pipeline.runner import Runner
-    from pipeline.uptodate import check_up_to_date
+    from pipeline.engine.runner import Runner
+    from pipeline.engine.uptodate import check_up_to_date
     corpus = tmp_path / "corpus"
     piece_of = {}
     for name, rows, kw, k in _compose_and_variants():
@@ -402,13 +402,13 @@ def test_a_run_without_dedup_keeps_planted_variants_in_one_part(tmp_path):
 
 def test_a_rerun_without_dedup_ends_with_the_links_of_a_full_search(tmp_path):
     """Files arrive in two runs (config without dedup): the links the split keeps after the
-    second run equal a full search over every file's stored arrays (pipeline.grouping.near_links)."""
+    second run equal a full search over every file's stored arrays (pipeline.similarity.grouping.near_links)."""
     import yaml
 
     from pipeline.config import load_config
-    from pipeline.grouping import near_links
-    from pipeline.ledger import Ledger, load_arrays
-    from pipeline.runner import Runner
+    from pipeline.similarity.grouping import near_links
+    from pipeline.store.ledger import Ledger, load_arrays
+    from pipeline.engine.runner import Runner
     corpus = tmp_path / "corpus"
     later = []
     for name, rows, kw, k in _compose_and_variants():

@@ -14,7 +14,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.analysis.stats import MEASURES, piece_stats
-from pipeline.score import KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes, ticks_to_seconds
+from pipeline.midi.piece import (KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
+                                 sort_notes, ticks_to_seconds)
 
 TPB = 480
 
@@ -169,7 +170,7 @@ def test_worked_example_seconds_agree_with_pretty_midi():
 def test_decoded_files_agree_with_pretty_midi():
     """On seeded random SMF files: duration, note count, drum fraction, distinct pitches and
     programs as pretty_midi reads them (reference library)."""
-    smf = pytest.importorskip("pipeline.smf")
+    smf = pytest.importorskip("pipeline.midi.decode")
     from fixtures_midi import random_midi
 
     for seed in range(8):

@@ -1,4 +1,4 @@
-"""Tests of pipeline/synth.py: the generated files read back with mido (the reference decoder)
+"""Tests of pipeline/tools/synth.py: the generated files read back with mido (the reference decoder)
 and agree with truth.json; planted defects fail where the SMF spec says they must; the demo
 corpus is reproducible byte for byte.
 
@@ -17,7 +17,7 @@ import mido
 import numpy as np
 import pytest
 
-from pipeline import synth
+from pipeline.tools import synth
 
 REPO = Path(__file__).resolve().parents[1]
 SAMPLE = REPO / "sample_corpus"

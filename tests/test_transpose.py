@@ -9,7 +9,8 @@ from hypothesis import given, settings, strategies as st
 
 from pipeline.analysis import key as keymod
 from pipeline.analysis.transpose import shift_notes, smallest_shift
-from pipeline.score import DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
+from pipeline.midi.piece import (DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece,
+                                 empty_notes, sort_notes)
 from pipeline.stages.base import FileContext
 from pipeline.stages.key_meter import KeyMeter
 from pipeline.stages.transpose import Transpose
@@ -159,7 +160,7 @@ def test_note_names_with_flats_and_sharps(name, pc):
 def test_written_file_decodes_to_shifted_notes():
     """Encode the normalized notes of real chorales (music21 corpus) with the project's
     writer and decode them with the reference decoder (mido-based, in music21_fixtures)."""
-    encode = pytest.importorskip("pipeline.encode").encode
+    encode = pytest.importorskip("pipeline.midi.encode").encode
     from music21_fixtures import decode_with_mido
     for work in chorales()[:5]:
         piece = decode(work["midi"])

@@ -1,4 +1,4 @@
-"""The nothing-changed shortcut of ``midisift run`` (pipeline.uptodate).
+"""The nothing-changed shortcut of ``midisift run`` (pipeline.engine.uptodate).
 
 An up-to-date rerun must be recognised without building the stages (no numpy import), leave
 every output byte as it was, and never hide a change: a changed option, a new or removed file or
@@ -19,7 +19,7 @@ import pytest
 import yaml
 
 from pipeline.cli import main
-from pipeline.sources import MIDI_SUFFIXES
+from pipeline.engine.sources import MIDI_SUFFIXES
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"
@@ -130,7 +130,7 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
 def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, monkeypatch):
     """When the up-to-date check finds work to do, the run that follows uses the check's
     listing of the input folder instead of walking it a second time."""
-    from pipeline import runner, sources
+    from pipeline.engine import runner, sources
     out = tmp_path / "out"
     assert _cli(config, corpus, out) == 0
     shutil.copy2(next(p for p in sorted(corpus.rglob("*.mid"))), corpus / "a_new_copy.mid")

@@ -4,7 +4,7 @@ from __future__ import annotations
 import json
 
 from fixtures_midi import random_midi
-from pipeline.score import Piece
+from pipeline.midi.piece import Piece
 from pipeline.stages.base import REGISTRY, FileContext
 from pipeline.stages.validate import Validate
 from test_smf import ONE_NOTE, mtrk, smf

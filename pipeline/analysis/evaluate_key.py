@@ -43,8 +43,8 @@ from typing import Any, Callable
 import mido
 import numpy as np
 
-from ..score import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece,
-                     empty_notes, sort_notes, ticks_to_seconds)
+from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
+                          sort_notes, ticks_to_seconds)
 from . import key as keymod
 from . import meter as metermod
 
@@ -113,7 +113,7 @@ def _cached(name: str, build):
 def decode(data: bytes) -> Piece:
     """Decode MIDI bytes: the project's decoder when present, else the mido-based one below."""
     try:
-        from ..smf import decode as smf_decode  # written by another helper
+        from ..midi.decode import decode as smf_decode  # written by another helper
     except ImportError:
         return decode_with_mido(data)
     return smf_decode(data)

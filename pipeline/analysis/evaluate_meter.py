@@ -38,8 +38,8 @@ from typing import Any, Callable, Iterable
 
 import numpy as np
 
-from ..score import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                     sort_notes)
+from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
+                          sort_notes)
 from . import key as keymod
 from . import meter as metermod
 
@@ -238,7 +238,7 @@ def pop(folder: str | Path, split: str) -> list[dict[str, Any]]:
     """Files of the pop dev set with their indexed meter; songs 1 mod 4 ``dev``, 3 mod 4
     ``held``. Each record holds the decoded Piece (time signatures removed) and the declared
     meter of the file."""
-    from ..smf import decode
+    from ..midi.decode import decode
     folder = Path(folder)
     labels = json.loads((folder / "labels.json").read_text(encoding="utf-8"))["files"]
     want = 1 if split == "dev" else 3

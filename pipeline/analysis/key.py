@@ -32,7 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
 
 # ---------------------------------------------------------------------------------------------
 # Profile tables: name -> (major[12], minor[12]), index 0 = tonic, ascending semitones.

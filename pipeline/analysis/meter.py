@@ -32,7 +32,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
 from . import meter_weights as _weights
 
 #: Grid resolution of the onset function, in bins per quarter note.

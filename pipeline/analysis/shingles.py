@@ -13,7 +13,7 @@ hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
   windows ``pitch_extra`` tokens longer: a tune re-notated with other note values keeps them.
 * **The lead** (kind ``lead``): the line shingles of the voice that carries the tune
   (``lead_voice``) once more, marked by a clear top bit (``LEAD_LIMIT``) so they form the
-  prefix of the sorted set; ``pipeline.similarity`` compares files on them on their own too.
+  prefix of the sorted set; ``pipeline.similarity.measure`` compares files on them on their own too.
 * Measured and not used by default (``ShingleSpec.kinds``): ``bass``, the lowest note at each
   onset of all voices merged; ``harmony``, per beat the pitch-class set of the notes sounding,
   relative to their lowest note, one token per chord change; ``top``, the highest note of all
@@ -42,7 +42,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
 
 _M64 = np.uint64(0xFFFFFFFFFFFFFFFF)
 _MIX1 = np.uint64(0xFF51AFD7ED558CCD)

@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
 
 #: The measures ``piece_stats`` returns, in the order the README lists them.
 MEASURES = ("duration_s", "notes", "notes_per_s", "pitches", "max_polyphony", "mean_polyphony",

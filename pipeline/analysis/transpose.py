@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, compiled_analyses
 
 DIRECTIONS = ("nearest", "up", "down")
 

@@ -29,9 +29,9 @@ from typing import Any, Iterator
 import numpy as np
 
 from ..errors import MidisiftError, UsageError
-from ..lock import OutputLock
-from ..outputs import write_atomic
-from ..smf import decode_file
+from ..store.lock import OutputLock
+from ..outputs.files import write_atomic
+from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
 from .png import png_bytes, roll_image
 

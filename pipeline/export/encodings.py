@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from ..score import DRUM_CHANNEL, Piece
+from ..midi.piece import DRUM_CHANNEL, Piece
 
 #: Bump when the arrays an encoding gives for the same file and options change.
 ENCODING_VERSION = 1

@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import importlib
 
-from .base import (REGISTRY, STAGE_NAMES, CorpusState, FileContext, Member, Option, Stage, StageResult,
-                   register)
+from .base import (REGISTRY, STAGE_NAMES, CorpusState, FileContext, Member, Option, Stage,
+                   StageResult, register)
 
 #: Module (under pipeline.stages) of each contract stage name.
 STAGE_MODULES = {"validate": "validate", "transpose": "transpose", "key_meter": "key_meter",

@@ -16,13 +16,12 @@ options-fingerprint) caching correct.
 from __future__ import annotations
 
 import hashlib
-import json
 from dataclasses import dataclass, field
 from typing import Any, Callable, ClassVar
 
-import numpy as np
 
-from ..score import Piece
+from ..midi.piece import Piece
+from ..store.codec import canonical_json
 
 
 @dataclass(frozen=True)
@@ -207,20 +206,9 @@ class Stage:
         raise NotImplementedError
 
 
-def _canonical(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _canonical(value[k]) for k in sorted(value)}
-    if isinstance(value, (list, tuple)):
-        return [_canonical(v) for v in value]
-    if isinstance(value, np.generic):
-        return value.item()
-    return value
-
-
 def options_fingerprint(name: str, version: int, opts: dict[str, Any]) -> str:
     """A stable 16-hex-digit hash of a stage's identity and options."""
-    blob = json.dumps({"stage": name, "version": version, "options": _canonical(opts)},
-                      sort_keys=True, separators=(",", ":"))
+    blob = canonical_json({"stage": name, "version": version, "options": opts})
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 

@@ -30,10 +30,11 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import ShingleSpec, duration_beats
-from ..ledger import load_arrays
-from ..score import Piece
-from ..similarity import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex, UnionFind, check_banding,
-                          generic_shingles, signature_of, verify_index_pairs)
+from ..store.ledger import load_arrays
+from ..midi.piece import Piece
+from ..similarity.measure import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex,
+                                  UnionFind, check_banding, generic_shingles, signature_of,
+                                  verify_index_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -124,7 +125,7 @@ KEEP_POLICIES: dict[str, tuple[Callable[[dict], tuple], str]] = {
     "smallest_id": (_key_smallest_id, "smallest id (first 16 hex of the sha256)"),
 }
 
-#: Defaults chosen by measurement on the dedup benchmark (``python -m pipeline.bench_dedup``,
+#: Defaults chosen by measurement on the dedup benchmark (``python -m pipeline.tools.bench_dedup``,
 #: synth corpora of 1,000 and 20,000 files, seed 0), with version 1's shingles (the skyline);
 #: version 2 (every voice, the lead, ratios of gaps) keeps them: README, Near-duplicate removal.
 #: * ``ngram`` 4: n=3 catches every edited copy too but lets distinct pieces reach 0.35

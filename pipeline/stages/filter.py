@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 from ..analysis.stats import MEASURES, piece_stats
-from ..score import Piece
+from ..midi.piece import Piece
 from .base import FileContext, Option, Stage, StageResult, register
 
 #: General MIDI Level 1 instrument families: 16 blocks of 8 programs. Source: MIDI Manufacturers

@@ -14,7 +14,7 @@ from typing import Any
 
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
-from ..score import Piece
+from ..midi.piece import Piece
 from .base import FileContext, Option, Stage, StageResult, in_range, register
 
 

@@ -4,7 +4,7 @@ Which files travel together (one group, never split across parts):
 
 * near-duplicates at ``group_threshold`` (lower than dedup's removal threshold, so near-misses
   that survived dedup still travel together), found on MinHash signatures and shingle sets made
-  by the function dedup's ``prepare`` uses (``pipeline.similarity.signature_of``) at dedup's
+  by the function dedup's ``prepare`` uses (``pipeline.similarity.measure.signature_of``) at dedup's
   default settings, on which ``group_threshold`` is calibrated. When a dedup stage with those
   settings runs before the split, the split reads its stored arrays
   (``Member.artifacts["dedup"]``); without one (or with dedup at other settings) the split's own
@@ -18,7 +18,7 @@ Which files travel together (one group, never split across parts):
   are not grouped by it), with the same normalized title (``group_by_title``) or the same
   normalized value of other manifest fields (``group_fields``, e.g. ``[composer]``).
 
-The assignment itself is ``pipeline.grouping.assign_groups`` (placement rules documented
+The assignment itself is ``pipeline.similarity.grouping.assign_groups`` (placement rules documented
 there). Reruns keep every file's previous part; files dropped by dedup in favour of a new file
 pass their part on to it (they stay in the saved state, weightless), so the new representative
 of a test piece stays in test. ``state.flags["reassign"]`` recomputes from scratch.
@@ -33,11 +33,11 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..records import Result
-from ..grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups, group_by_key,
-                        near_links)
-from ..score import Piece
-from ..similarity import signature_of
+from ..store.records import Result
+from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups,
+                                   group_by_key, near_links)
+from ..midi.piece import Piece
+from ..similarity.measure import signature_of
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
 from .dedup import Dedup

@@ -6,7 +6,7 @@ decoded ``Piece`` (None when dropped). A ``DecodeError`` becomes a drop with its
 ``too_large``) and the decoder's sentence; a readable file without notes drops as ``no_notes``.
 
 ``allow_repairs`` (default true): the decoder's narrow named tolerances (see
-``pipeline.smf.REPAIRS``: hanging notes closed, missing end-of-track, RIFF unwrapped, ...) are
+``pipeline.midi.decode.REPAIRS``: hanging notes closed, missing end-of-track, RIFF unwrapped, ...) are
 accepted and listed in the detail. When false, any repair drops the file as ``needs_repair``,
 for corpora that must hold only files that follow SMF 1.0 to the letter.
 """
@@ -15,8 +15,8 @@ from __future__ import annotations
 from typing import Any
 
 from ..errors import DecodeError
-from ..score import Piece
-from ..smf import decode, describe_repairs
+from ..midi.piece import Piece
+from ..midi.decode import decode, describe_repairs
 from .base import FileContext, Option, Stage, StageResult, positive, register
 
 
@@ -40,7 +40,7 @@ class Validate(Stage):
         Option("allow_repairs", bool, True,
                "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
                "...); when false such files drop as needs_repair"),
-        # reliability options: enforced by the supervised worker pool (pipeline.executor)
+        # reliability options: enforced by the supervised worker pool (pipeline.engine.executor)
         Option("timeout_s", float, 60.0,
                "most seconds one file may take (decode and per-file stages); a file that takes "
                "longer is dropped as timeout and its worker replaced", _positive_seconds),

@@ -1,0 +1,133 @@
+"""``midisift explain``: the whole decision trail of one file, from the ledger of an output folder."""
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+from ..errors import MidisiftError
+from ..store.ledger import Ledger
+
+
+def _fmt(value: Any) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_fmt(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{k}: {_fmt(v)}" for k, v in value.items()) + "}"
+    return "null" if value is None else str(value)
+
+
+def _threshold_text(limit: Any) -> str:
+    if isinstance(limit, dict):
+        words = {"min": ">=", "low": ">=", "gt": ">", "max": "<=", "high": "<=", "lt": "<"}
+        order = sorted(limit, key=lambda k: (list(words).index(k) if k in words else len(words), k))
+        parts = [f"{words.get(k, k)} {_fmt(limit[k])}" for k in order if limit[k] is not None]
+        return ", ".join(parts) if parts else "no limit"
+    if isinstance(limit, (list, tuple)) and len(limit) == 2:
+        return f"within [{_fmt(limit[0])}, {_fmt(limit[1])}]"
+    return _fmt(limit)
+
+
+def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[str, str | None, list]]:
+    """Find the decisions matching a source path (as given, or relative to the input folder) or an id."""
+    hit = ledger.decision(query)
+    if hit is not None:
+        return [(query, *hit)]
+    candidates = []
+    p = Path(query)
+    if input_dir is not None:
+        try:
+            candidates.append(p.resolve().relative_to(input_dir.resolve()).as_posix())
+        except ValueError:
+            pass
+        candidates.append(p.as_posix())
+    for c in candidates:
+        hit = ledger.decision(c)
+        if hit is not None:
+            return [(c, *hit)]
+    if re.fullmatch(r"[0-9a-fA-F]{6,64}", query):
+        return ledger.decisions_by_sha_prefix(query.lower())
+    return []
+
+
+def _cluster_members(out_dir: Path, cluster: Any) -> list[dict]:
+    manifest = out_dir / "manifest.jsonl"
+    if cluster is None or not manifest.is_file():
+        return []
+    members = []
+    with open(manifest, encoding="utf-8") as fh:
+        for line in fh:
+            row = json.loads(line)
+            if row.get("cluster") == cluster:
+                members.append(row)
+    return members
+
+
+def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
+    """The printable trail (or, ``as_json``, the same trail as a JSON list: one object per
+    matching source with ``source``, ``id``, ``sha256``, ``status``, ``stage``, ``reason`` and
+    its ``trail`` of stage steps); raises MidisiftError (exit 1) for an unknown file."""
+    db = out_dir / "state.sqlite"
+    if not db.is_file():
+        raise MidisiftError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
+                            file=str(out_dir))
+    with Ledger(db, read_only=True) as ledger:
+        last = ledger.last_run()
+        input_dir = None
+        if last is not None:
+            raw = last["config"].get("config", {})
+            if isinstance(raw, dict) and raw.get("input"):
+                input_dir = Path(raw["input"])
+        hits = resolve(ledger, query, input_dir)
+    if not hits:
+        raise MidisiftError("no such file in the last run (give the path as in the manifest's 'source', "
+                            "a path under the input folder, or an id of at least 6 hex digits)", file=query)
+    if as_json:
+        return json.dumps([_as_data(src, sha, trail) for src, sha, trail in hits], indent=1,
+                          ensure_ascii=False)
+    return "\n\n".join(_one(out_dir, src, sha, trail) for src, sha, trail in hits)
+
+
+def _as_data(source: str, sha: str | None, trail: list) -> dict:
+    """One source's trail as data: the same steps the text shows, and its verdict."""
+    final = next((s for s in trail if not s["kept"]), None)
+    return {"source": source, "id": (sha or "")[:16], "sha256": sha,
+            "status": "kept" if final is None else "dropped",
+            "stage": final and final["stage"], "reason": final and final["reason"],
+            "trail": trail}
+
+
+def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
+    lines = [f"source   {source}", f"id       {(sha or '')[:16]}", f"sha256   {sha}"]
+    final = next((s for s in trail if not s["kept"]), None)
+    if final is None:
+        split = next((s["values"].get("split") for s in trail if s["stage"] == "split"), None)
+        lines.append(f"status   kept{' in ' + split if split else ''}")
+    else:
+        lines.append(f"status   dropped by {final['stage']}: {final['reason']}")
+        lines.append(f"why      {final['detail']}")
+    for step in trail:
+        verdict = "kept" if step["kept"] else f"DROPPED ({step['reason']})"
+        lines.append("")
+        lines.append(f"[{step['stage']}] {verdict}")
+        if step.get("detail"):
+            lines.append(f"    {step['detail']}")
+        thresholds = step.get("thresholds", {}) or {}
+        for key, value in step.get("values", {}).items():
+            limit = f"   (limit: {_threshold_text(thresholds[key])})" if key in thresholds else ""
+            lines.append(f"    {key:<20} {_fmt(value)}{limit}")
+        if step["stage"] == "dedup":
+            cluster = step.get("values", {}).get("cluster")
+            members = _cluster_members(out_dir, cluster)
+            if len(members) > 1:
+                lines.append(f"    cluster members ({len(members)}):")
+                for m in members:
+                    role = "kept" if m["status"] == "kept" or m.get("stage") != "dedup" else \
+                        f"dropped, similarity {_fmt(m.get('similarity'))}"
+                    if m["status"] == "dropped" and m.get("stage") != "dedup":
+                        role = f"dropped later by {m['stage']}"
+                    lines.append(f"      {m['id']}  {m['source']}  ({role})")
+    return "\n".join(lines)

@@ -1,0 +1,159 @@
+"""The nothing-changed shortcut: a rerun whose inputs, options and outputs are all as the last
+completed run left them does no work beyond proving it.
+
+Two keys are stored with every completed run (in its counts, in the ledger and summary.json):
+
+* ``state_key`` (made by the runner): every (source, sha256), every stage's options fingerprint,
+  the output fingerprint and the package version;
+* ``quick_key``: every (source, sha256), the config as written (CLI overrides applied, ``workers``
+  left out: it changes no output) and the package version.
+
+The same config text and package version give the same fingerprints, so ``quick_key`` decides
+as ``state_key`` does, without building the stages. ``midisift run`` checks it first
+(``check_up_to_date``) with nothing heavier than YAML and SQLite: no numpy, no stage module, so
+an up-to-date rerun costs little more than Python's start-up. Anything unusual (a config it
+cannot read, a missing output folder, a changed file) returns None and the normal run takes over
+and reports it.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import time
+from pathlib import Path
+from typing import Any, Callable
+
+from .. import __version__
+from ..outputs.table import RunReport, grouping_off, in_part_order
+
+NOTE = "nothing changed since the last run: outputs are up to date"
+
+
+def files_digest(h: Any, files: list) -> None:
+    """Feed every (source, sha256) pair into the hash ``h``."""
+    for f in files:
+        h.update(f"{f.rel}\0{f.sha256}\n".encode("utf-8", "surrogateescape"))
+
+
+def quick_key(raw: dict[str, Any], files: list) -> str:
+    """Hash of the sources, the config as written (without ``workers``) and the version."""
+    h = hashlib.sha256()
+    files_digest(h, files)
+    settings = {k: v for k, v in raw.items() if k != "workers"}
+    h.update(json.dumps(settings, sort_keys=True, default=str).encode("utf-8", "surrogateescape"))
+    h.update(f"midisift {__version__}".encode())
+    if isinstance(raw.get("metadata"), str):  # an edited table changes the manifest
+        from ..metadata import table_digest
+        h.update(f"metadata {table_digest(Path(raw['metadata']))}".encode())
+    return h.hexdigest()
+
+
+def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
+    """The last completed run's summary when its key ``name`` equals ``key`` and its outputs
+    are all still in place (manifest, split lists, every normalized file), else None."""
+    last = ledger.last_run()
+    if last is None or last["counts"].get(name) != key:
+        return None
+    try:
+        summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if summary.get("counts", {}).get(name) != key or not (out / "manifest.jsonl").is_file():
+        return None
+    parts = summary.get("split", {}).get("outputs", {})
+    if any(not (out / "splits" / f"{p}.txt").is_file() for p in parts):
+        return None
+    from ..outputs.files import present_files
+    recorded = ledger.outputs()
+    if len(present_files(out, recorded)) != len(recorded):
+        return None
+    return summary
+
+
+def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -> RunReport:
+    """The table of a run that found nothing to do."""
+    dropped = {(stage, reason): n for stage, info in summary.get("stages", {}).items()
+               for reason, n in info.get("dropped", {}).items()}
+    counts = summary["counts"]
+    split = summary.get("split", {})
+    parts = in_part_order(dict(split.get("outputs", {})), split.get("part_order"))
+    return RunReport(output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
+                     counts.get("contents", 0), parts, notes + [NOTE], summary.get("warnings", []),
+                     grouping_off=grouping_off(split.get("stage")))
+
+
+def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,
+                     seconds_discover: float, t_start: float) -> None:
+    """Finish the logged run ``run_id`` that found nothing to do: summary.json keeps the last
+    run's content with fresh timings and this run's ``quick_key`` (the config may be written
+    differently)."""
+    from ..outputs.summary import write_summary
+    summary["counts"]["quick_key"] = quick
+    summary["counts"].update(computed=0, reused=summary["counts"].get("contents", 0))
+    summary["timings_s"] = {"discover": round(seconds_discover, 4),
+                            "total": round(time.perf_counter() - t_start, 4)}
+    summary["unchanged_since_last_run"] = True
+    # the same summary with fresh timings: no fsync, which waits for whatever else the disk is
+    # writing (after a power cut the previous summary, equal but for the timings, is there)
+    write_summary(out, summary, fsync=False)
+    ledger.finish_run(run_id, summary["counts"])
+
+
+def check_up_to_date(config_path: str | Path, *, input: str | None = None,
+                     output: str | None = None,
+                     on_discover: Callable[[Any], None] | None = None) -> RunReport | None:
+    """The report of an up-to-date rerun, done without building the stages; None when the
+    normal run must decide (see the module docstring). ``on_discover`` receives the
+    ``sources.Discovery`` made on the way, for the run that follows (no second listing)."""
+    t_start = time.perf_counter()
+    import yaml
+    try:
+        raw = yaml.safe_load(Path(config_path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, yaml.YAMLError):
+        return None
+    if not isinstance(raw, dict):
+        return None
+    raw = dict(raw)
+    if input is not None:
+        raw["input"] = input
+    if output is not None:
+        raw["output"] = output
+    if not isinstance(raw.get("input"), str) or not isinstance(raw.get("output"), str):
+        return None
+    inp, out = Path(raw["input"]), Path(raw["output"])
+    if not inp.is_dir() or not (out / "state.sqlite").is_file() or not (out / "summary.json").is_file():
+        return None
+    from ..errors import MidisiftError
+    from ..store.ledger import Ledger
+    from ..store.lock import OutputLock
+    from .sources import Discovery, check_folders, discover, fingerprint
+    try:
+        check_folders(inp, out)
+    except MidisiftError:
+        return None
+    with OutputLock(out):
+        with Ledger(out / "state.sqlite") as ledger:
+            last = ledger.last_run()
+            if last is None or "quick_key" not in last["counts"]:
+                return None
+            t = time.perf_counter()
+            files, notes = discover(inp, out)
+            if on_discover is not None:
+                on_discover(Discovery(inp.resolve(), out.resolve(), files, notes))
+            known = ledger.sources()
+            present = {f.rel for f in files}
+            if len(present) != len(known) or any(p not in known for p in present):
+                return None  # files added or removed: the normal run records them
+            changed = fingerprint(files, known)
+            seconds_discover = time.perf_counter() - t
+            if changed:  # touched or edited files: keep their hashes for whichever run goes on
+                with ledger.batch():
+                    ledger.put_sources(changed)
+            quick = quick_key(raw, files)
+            summary = last_summary_if(ledger, out, "quick_key", quick)
+            if summary is None:
+                return None
+            with ledger.batch():
+                run_id = ledger.start_run({"config": raw, "stages": last["config"].get("stages")})
+                record_unchanged(ledger, out, summary, run_id, quick, seconds_discover, t_start)
+    return report_from(summary, out, time.perf_counter() - t_start, notes)

@@ -1,0 +1,1 @@
+"""Everything a run writes into the output folder (each file written atomically)."""

@@ -1,0 +1,155 @@
+"""manifest.jsonl (one JSON object per input file, kept and dropped, sorted by source) and the
+split lists (``splits/<part>.txt``: one kept output path, relative to OUTPUT, per line, sorted)."""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterable, Iterator
+
+from ..store.codec import json_default
+from .files import DEFAULT_PART, Placed, write_atomic
+from .summary import write_summary
+
+#: Manifest fields of the contract, in the order they are written; other measures follow sorted.
+CONTRACT_FIELDS = (
+    "id", "source", "title", "sha256", "status", "stage", "reason", "detail",
+    "tonic", "tonic_pc", "mode", "key_confidence", "meter", "meter_source", "transpose",
+    "duration_s", "notes", "notes_per_s", "cluster", "duplicate_of", "similarity", "split", "output",
+)
+
+
+def _kept_detail(trail: list, part: str | None) -> str:
+    stages = ", ".join(s["stage"] for s in trail)
+    where = f"; placed in {part}" if part else ""
+    return f"kept: passed {stages}{where}"
+
+
+def source_fields(rel: str, file_title: Any, metadata: Any) -> dict[str, Any]:
+    """The fields of a source path rather than of its content: the metadata table's columns
+    and ``title`` (the table's title, else the file's own track name, else the file name's
+    stem)."""
+    row = dict(metadata.of(rel)) if metadata is not None else {}
+    stem = rel.rsplit("/", 1)[-1].rsplit(".", 1)[0]
+    row["title"] = row.get("title") or file_title or stem
+    return row
+
+
+def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], list]:
+    """The manifest object of one source file, and the trail it was made from."""
+    sha = f.sha256
+    trail = walk.trail_of(f.rel, sha)
+    final = walk.final(f.rel, sha)
+    vals: dict[str, Any] = {}
+    for step in trail:
+        vals.update(step.get("values", {}))
+    row: dict[str, Any] = {k: None for k in CONTRACT_FIELDS}
+    extras = {k: v for k, v in vals.items() if k not in row}
+    row.update({k: v for k, v in vals.items() if k in row})
+    row.update(id=sha[:16], source=f.rel, sha256=sha)
+    extras.pop("file_title", None)
+    for k, v in source_fields(f.rel, vals.get("file_title"), walk.metadata).items():
+        (row if k in row else extras)[k] = v
+    if final is None:
+        part = vals.get("split") or DEFAULT_PART
+        row.update(status="kept", stage=None, reason=None, detail=_kept_detail(trail, part),
+                   split=part, output=placed.main.get(sha))
+        outs = placed.all_of.get(sha, [])
+        if len(outs) > 1:
+            extras["outputs"] = outs
+    else:
+        last = trail[-1] if trail else {}
+        row.update(status="dropped", stage=final[0], reason=final[1], detail=last.get("detail"),
+                   split=None, output=None)
+    for k in sorted(extras):
+        row[k] = extras[k]
+    return row, trail
+
+
+@dataclass
+class Tally:
+    """What the summary counts, gathered while the manifest rows stream past."""
+
+    files: int = 0
+    kept: int = 0
+    dropped_by: dict[tuple[str, str], int] = field(default_factory=dict)
+    reached: dict[str, int] = field(default_factory=dict)
+    parts: dict[str, int] = field(default_factory=dict)
+    contents: set[str] = field(default_factory=set)
+
+    def add(self, row: dict[str, Any], trail: list) -> None:
+        """Count a row built in this run."""
+        final = None if row["status"] == "kept" else (row["stage"], row["reason"])
+        self.count(row["sha256"], final, row["split"], [step["stage"] for step in trail])
+
+    def count(self, sha: str, final: tuple[str, str] | None, part: str | None,
+              reached: Iterable[str]) -> None:
+        """Count one source: its content, its final (stage, reason) or None when kept, its part
+        and the stages it reached."""
+        self.files += 1
+        self.contents.add(sha)
+        for stage in reached:
+            self.reached[stage] = self.reached.get(stage, 0) + 1
+        if final is None:
+            self.kept += 1
+            self.parts[part] = self.parts.get(part, 0) + 1
+        else:
+            self.dropped_by[final] = self.dropped_by.get(final, 0) + 1
+
+
+def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
+                  on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
+                  reuse: Any = None, corpus_positions: tuple[int, ...] = ()) -> Iterator[dict[str, Any] | str]:
+    """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
+    into ``tally``; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it
+    passes (the runner records the decisions in the same pass). With ``reuse`` (a
+    ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line
+    (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded."""
+    from .rowreuse import line_prefix, row_digest
+    old_lines = reuse.lines() if reuse is not None and reuse.usable else None
+    pending = next(old_lines, None) if old_lines is not None else None
+    for f in files:
+        digest = row_digest(f, walk, placed, corpus_positions) if reuse is not None else None
+        if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
+            while pending is not None and pending[0] < f.rel:
+                pending = next(old_lines, None)
+            if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
+                final = walk.final(f.rel, f.sha256)
+                part = None
+                if final is None:
+                    part = placed.part_of.get(f.sha256) or walk.value_of(f.sha256, "split") or DEFAULT_PART
+                tally.count(f.sha256, final, part, walk.reached_names(f.rel, f.sha256))
+                yield pending[1]
+                continue
+        row, trail = manifest_row(f, walk, placed)
+        tally.add(row, trail)
+        if on_trail is not None:
+            on_trail(f, row, trail, digest)
+        yield row
+
+
+def _jsonl(rows: Iterable[dict | str]) -> Iterator[str]:
+    """JSON lines of the rows; a str is a line reused as it is (it ends in a newline)."""
+    dumps = json.dumps
+    for r in rows:
+        yield r if type(r) is str else dumps(r, ensure_ascii=False, separators=(", ", ": "), default=json_default) + "\n"
+
+
+def write_all(out_dir: Path, rows: Iterable[dict | str], placed: Placed,
+              summary_of: Callable[[], dict], configured: Iterable[str] = ()) -> dict:
+    """Write the manifest (streamed from ``rows``), the split lists, then the summary that
+    ``summary_of`` builds once the rows are counted; each file atomically, stale split lists
+    removed. Returns the summary."""
+    write_atomic(out_dir / "manifest.jsonl", _jsonl(rows))
+    splits = out_dir / "splits"
+    splits.mkdir(parents=True, exist_ok=True)
+    lists = {part: [] for part in configured} | placed.parts  # an empty part gets its empty list
+    wanted = {f"{p}.txt" for p in lists}
+    for p in splits.glob("*.txt"):
+        if p.name not in wanted:
+            p.unlink()
+    for part, paths in sorted(lists.items()):
+        write_atomic(splits / f"{part}.txt", "".join(p + "\n" for p in sorted(paths)))
+    summary = summary_of()
+    write_summary(out_dir, summary)
+    return summary

@@ -1,0 +1,417 @@
+"""OUTPUT/report.html: one self-contained page showing what a run did, written at its end.
+
+Everything comes from the run's summary (counts, split, timings: the page shows the same
+numbers, and each such cell names its summary.json path in ``data-key``) and one pass over
+manifest.jsonl (the distributions). Figures are hand-written inline SVG; the near-duplicate
+thumbnails are small grayscale PNGs (``export.png``) inlined as data URIs. Nothing is loaded
+from the network, and no plotting package is needed.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import json
+import time
+from pathlib import Path
+from typing import Any, Iterable
+
+from .files import write_atomic
+from ..reasons import REASONS
+
+PITCH_NAMES = ("C", "C#", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")
+#: Manifest fields shown as histograms over the kept files: (field, title, unit).
+HISTOGRAMS = (("duration_s", "Duration", "s"), ("notes_per_s", "Notes per second", "/s"),
+              ("mean_polyphony", "Mean polyphony", "notes"), ("bpm", "Tempo", "BPM"))
+CLUSTERS_SHOWN = 6
+DEFAULT_ORDER = ("validate", "transpose", "key_meter", "dedup", "filter", "split")
+
+
+def esc(value: Any) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def fmt(value: Any) -> str:
+    if isinstance(value, float):
+        return f"{value:,.4g}" if abs(value) < 1000 else f"{value:,.0f}"
+    if isinstance(value, int):
+        return f"{value:,}"
+    return str(value)
+
+
+def cell(value: Any, key: str | None = None) -> str:
+    """A numeric table cell; ``key`` is the value's path in summary.json (a test compares)."""
+    attr = f' data-key="{esc(key)}" data-value="{esc(json.dumps(value))}"' if key else ""
+    return f'<td class="n"{attr}>{esc(fmt(value))}</td>'
+
+
+# figures --------------------------------------------------------------------------------------
+def bars(items: list[tuple[str, float]], *, width: int = 520, color: str = "#4a78b5",
+         label_w: int = 170, unit: str = "") -> str:
+    """Horizontal bars with labels and values, as inline SVG."""
+    if not items:
+        return '<p class="muted">nothing to show</p>'
+    top = max(v for _, v in items) or 1
+    h = 18
+    rows = []
+    for i, (label, v) in enumerate(items):
+        y = i * h
+        w = (width - label_w - 70) * v / top
+        rows.append(f'<text x="{label_w - 6}" y="{y + 13}" text-anchor="end">{esc(label)}</text>'
+                    f'<rect x="{label_w}" y="{y + 3}" width="{w:.1f}" height="{h - 6}" fill="{color}"/>'
+                    f'<text x="{label_w + w + 4:.1f}" y="{y + 13}">{esc(fmt(v))}{esc(unit)}</text>')
+    return f'<svg width="{width}" height="{len(items) * h + 4}" class="fig">{"".join(rows)}</svg>'
+
+
+def histogram(values: list[float], title: str, unit: str, *, bins: int = 24, width: int = 360,
+              height: int = 150) -> str:
+    """A histogram as inline SVG: equal bins from the smallest value to the 99th percentile;
+    the few values above it are counted in the last bin (said under the figure)."""
+    if not values:
+        return f'<div class="hist"><h4>{esc(title)}</h4><p class="muted">no values</p></div>'
+    vs = sorted(values)
+    lo, hi = vs[0], vs[min(len(vs) - 1, int(len(vs) * 0.99))]
+    if hi <= lo:
+        hi = lo + 1.0
+    counts = [0] * bins
+    for v in vs:
+        counts[min(bins - 1, max(0, int((v - lo) / (hi - lo) * bins)))] += 1
+    above = sum(1 for v in vs if v > hi)
+    top = max(counts)
+    pw, ph = width - 40, height - 30
+    bw = pw / bins
+    rects = "".join(
+        f'<rect x="{30 + i * bw:.1f}" y="{10 + ph - ph * c / top:.1f}" width="{bw - 1:.1f}" '
+        f'height="{ph * c / top:.1f}" fill="#4a78b5"><title>{fmt(lo + i * (hi - lo) / bins)}-'
+        f'{fmt(lo + (i + 1) * (hi - lo) / bins)} {esc(unit)}: {c}</title></rect>'
+        for i, c in enumerate(counts) if c)
+    axis = (f'<line x1="30" y1="{10 + ph}" x2="{30 + pw}" y2="{10 + ph}" stroke="#888"/>'
+            f'<text x="30" y="{height - 4}">{esc(fmt(lo))}</text>'
+            f'<text x="{30 + pw}" y="{height - 4}" text-anchor="end">{esc(fmt(hi))} {esc(unit)}</text>'
+            f'<text x="26" y="18" text-anchor="end">{top}</text>')
+    median = vs[len(vs) // 2]
+    note = f"{len(vs):,} files, median {fmt(median)} {unit}" + (f"; {above} above {fmt(hi)} in the last bin" if above else "")
+    return (f'<div class="hist"><h4>{esc(title)}</h4><svg width="{width}" height="{height}" class="fig">'
+            f'{rects}{axis}</svg><p class="muted">{esc(note)}</p></div>')
+
+
+def paired_bars(labels: list[str], a: list[int], b: list[int], names: tuple[str, str], *,
+                width: int = 720, height: int = 170) -> str:
+    """Two counts per label side by side (e.g. keys before and after normalization)."""
+    top = max(a + b + [1])
+    n = len(labels)
+    pw, ph = width - 40, height - 50
+    slot = pw / max(n, 1)
+    bw = slot * 0.4
+    parts = []
+    for i, label in enumerate(labels):
+        x = 30 + i * slot
+        for j, (v, color) in enumerate(((a[i], "#9bb3d6"), (b[i], "#1f4e8c"))):
+            hh = ph * v / top
+            parts.append(f'<rect x="{x + j * bw:.1f}" y="{10 + ph - hh:.1f}" width="{bw - 1:.1f}" height="{hh:.1f}" '
+                         f'fill="{color}"><title>{esc(label)} {esc(names[j])}: {v}</title></rect>')
+        parts.append(f'<text x="{x + bw:.1f}" y="{ph + 24}" text-anchor="middle" class="small">{esc(label)}</text>')
+    legend = (f'<rect x="30" y="{height - 14}" width="10" height="10" fill="#9bb3d6"/>'
+              f'<text x="44" y="{height - 5}">{esc(names[0])}</text>'
+              f'<rect x="200" y="{height - 14}" width="10" height="10" fill="#1f4e8c"/>'
+              f'<text x="214" y="{height - 5}">{esc(names[1])}</text>'
+              f'<text x="26" y="18" text-anchor="end">{top}</text>'
+              f'<line x1="30" y1="{10 + ph}" x2="{30 + pw}" y2="{10 + ph}" stroke="#888"/>')
+    return f'<svg width="{width}" height="{height}" class="fig">{"".join(parts)}{legend}</svg>'
+
+
+def thumbnail(path: Path | None, semitones: int) -> str:
+    """An <img> of the piano roll of a MIDI file moved by ``semitones`` (its normalization's
+    transposition, so the members of a cluster stand in one key), or a note that the file is
+    not available."""
+    if path is None or not path.is_file():
+        return '<span class="muted">file not available</span>'
+    from ..errors import MidisiftError
+    from ..export.encodings import pianoroll
+    from ..export.png import png_bytes, roll_image
+    from ..midi.decode import decode_file
+    try:
+        piece = decode_file(path)
+    except MidisiftError as e:  # e.g. the source changed since the run read it
+        return f'<span class="muted">cannot decode: {esc(e.reason)}</span>'
+    except OSError as e:
+        return f'<span class="muted">cannot read: {esc(e.strerror)}</span>'
+    if semitones:
+        notes = piece.notes.copy()
+        notes["pitch"] = (notes["pitch"].astype(int) + semitones * (notes["channel"] != 9)).clip(0, 127)
+        piece.notes = notes
+    roll, _ = pianoroll(piece, step=0.1)
+    data = base64.b64encode(png_bytes(roll_image(roll, max_width=320, row_px=2))).decode()
+    return f'<img alt="piano roll" src="data:image/png;base64,{data}">'
+
+
+# the page -------------------------------------------------------------------------------------
+class Facts:
+    """What the page shows from the manifest, gathered one row at a time (the rows are not
+    kept: at 100,000 files they would hold about 150 MB)."""
+
+    def __init__(self) -> None:
+        self.values: dict[str, list[float]] = {f: [] for f, _, _ in HISTOGRAMS}
+        self.key_before = [0] * 24
+        self.key_after = [0] * 24
+        self.declared: dict[str, int] = {}
+        self.estimated: dict[str, int] = {}
+        self.meter_both = self.meter_agree = 0
+        self.group_sizes: dict[int, int] = {}  # group size -> kept files in groups of that size
+        self.clusters: dict[str, list[dict]] = {}  # kept member's id -> its dropped duplicates
+        self.representatives: dict[str, dict] = {}  # kept member's id -> its row (shown clusters only)
+
+    def add(self, r: dict[str, Any]) -> None:
+        if r.get("duplicate_of"):
+            self.clusters.setdefault(r["duplicate_of"], []).append({k: r.get(k) for k in CLUSTER_FIELDS})
+        if r.get("status") != "kept":
+            return
+        for f, vs in self.values.items():
+            v = r.get(f)
+            if isinstance(v, (int, float)) and not isinstance(v, bool):
+                vs.append(float(v))
+        mode, pc = r.get("mode"), r.get("tonic_pc")
+        if pc is not None and mode in ("major", "minor"):
+            off = 0 if mode == "major" else 12
+            self.key_before[off + pc % 12] += 1
+            self.key_after[off + (pc + (r.get("transpose") or 0)) % 12] += 1
+        meter, est = r.get("meter"), r.get("meter_estimated")
+        if r.get("meter_source") == "file" and meter:
+            self.declared[meter] = self.declared.get(meter, 0) + 1
+            if est:
+                self.meter_both += 1
+                self.meter_agree += est == meter
+        if est:
+            self.estimated[est] = self.estimated.get(est, 0) + 1
+        g = r.get("group_size")
+        if g:
+            self.group_sizes[g] = self.group_sizes.get(g, 0) + 1
+
+
+#: The fields of a near-duplicate cluster member that the page shows.
+CLUSTER_FIELDS = ("id", "source", "status", "transpose", "output", "duplicate_of", "duplicate_kind", "similarity")
+
+
+def read_manifest(path: Path) -> Facts:
+    """The facts of a manifest.jsonl, read one line at a time; then, in a second quick pass,
+    the rows of the kept members of the clusters the page shows."""
+    facts = Facts()
+    loads, add = json.loads, facts.add
+    with open(path, encoding="utf-8") as fh:
+        for line in fh:
+            add(loads(line))
+    shown = {cid for cid, _ in largest_clusters(facts)}
+    if shown:
+        prefix = len('{"id": "')  # every line starts with its id (outputs.CONTRACT_FIELDS)
+        with open(path, encoding="utf-8") as fh:
+            for line in fh:
+                if line[prefix:prefix + 16] in shown:
+                    r = loads(line)
+                    if not r.get("duplicate_of"):  # not a byte-identical copy of the kept file
+                        facts.representatives.setdefault(r["id"], {k: r.get(k) for k in CLUSTER_FIELDS})
+    return facts
+
+
+def largest_clusters(facts: Facts) -> list[tuple[str, list[dict]]]:
+    """The clusters the page shows: the largest (most dropped members), then by id."""
+    return sorted(facts.clusters.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:CLUSTERS_SHOWN]
+
+
+def stage_order(summary: dict, stages: Iterable[str] | None) -> list[str]:
+    names = list(stages) if stages is not None else []
+    rest = [s for s in summary.get("stages", {}) if s not in names]
+    rest.sort(key=lambda s: (-summary["stages"][s].get("reached", 0),
+                             DEFAULT_ORDER.index(s) if s in DEFAULT_ORDER else 99, s))
+    return names + rest
+
+
+def _stages_section(summary: dict, order: list[str]) -> str:
+    rows = []
+    funnel = []
+    for name in order:
+        st = summary["stages"].get(name, {"reached": 0, "dropped": {}})
+        dropped = sum(st["dropped"].values())
+        rows.append(f'<tr class="stage"><th>{esc(name)}</th>{cell(st["reached"], f"stages.{name}.reached")}'
+                    f'{cell(st["reached"] - dropped)}{cell(dropped)}<td></td></tr>')
+        for reason, n in sorted(st["dropped"].items(), key=lambda kv: -kv[1]):
+            meaning = REASONS.get(reason, ("", "not a known reason code"))[1]
+            rows.append(f'<tr><td class="reason"><code>{esc(reason)}</code></td><td></td><td></td>'
+                        f'{cell(n, f"stages.{name}.dropped.{reason}")}<td class="meaning">{esc(meaning)}</td></tr>')
+        funnel.append((name, st["reached"] - dropped))
+    c = summary["counts"]
+    return (f'<h2>Files per stage</h2><table><tr><th>stage / reason</th><th>in</th><th>kept</th>'
+            f'<th>dropped</th><th>meaning</th></tr>{"".join(rows)}</table>'
+            f'<h4>Files left after each stage (of {fmt(c["files"])})</h4>'
+            f'{bars(funnel, color="#5b9b6b")}')
+
+
+def _key_section(facts: Facts) -> str:
+    labels = [f"{n}" for n in PITCH_NAMES] + [f"{n.lower()}m" for n in PITCH_NAMES]
+    return ("<h3>Keys of the kept files, before and after normalization</h3>"
+            '<p class="muted">The estimated key of each source file, and that key moved by the '
+            'transposition applied (upper case major, lower case minor).</p>'
+            + paired_bars(labels, facts.key_before, facts.key_after, ("source key", "normalized")))
+
+
+def _meter_section(facts: Facts) -> str:
+    declared, estimated = facts.declared, facts.estimated
+    labels = sorted(set(declared) | set(estimated), key=lambda m: (-(declared.get(m, 0) + estimated.get(m, 0)), m))[:16]
+    note = (f"{facts.meter_agree} of {facts.meter_both} kept files with a declared meter have the same estimate."
+            if facts.meter_both else "No kept file declares its meter.")
+    return ("<h3>Meters of the kept files: declared in the file vs estimated</h3>"
+            + paired_bars(labels, [declared.get(m, 0) for m in labels], [estimated.get(m, 0) for m in labels],
+                          ("declared", "estimated"), width=max(300, 60 * len(labels) + 60))
+            + f'<p class="muted">{esc(note)}</p>')
+
+
+def _split_section(summary: dict, facts: Facts) -> str:
+    sp = summary.get("split", {})
+    files = sp.get("files", {})
+    order = [p for p in sp.get("part_order") or () if p in files] + sorted(p for p in files if p not in (sp.get("part_order") or ()))
+    targets = sp.get("targets") or {}
+    body = []
+    for p in order:
+        target = targets.get(p)
+        body.append(f'<tr><th>{esc(p)}</th>{cell(files[p], f"split.files.{p}")}'
+                    f'{cell(sp.get("outputs", {}).get(p, 0), f"split.outputs.{p}")}'
+                    f'{cell(sp["ratios"][p], f"split.ratios.{p}")}'
+                    + (cell(target, f"split.targets.{p}") + cell(round(sp["ratios"][p] - target, 6))
+                       if target is not None else "<td></td><td></td>") + "</tr>")
+    stage = sp.get("stage") or {}
+    extra = ""
+    if "moved" in stage:
+        extra += (f'<p>Files moved to another part by this run: <b data-key="split.stage.moved" '
+                  f'data-value="{stage["moved"]}">{fmt(stage["moved"])}</b>; groups: '
+                  f'<b data-key="split.stage.groups" data-value="{stage.get("groups", 0)}">{fmt(stage.get("groups", 0))}</b>.</p>')
+    groups = [(f"{k} file{'s' if k > 1 else ''}", v // k if v % k == 0 else round(v / k, 1))
+              for k, v in sorted(facts.group_sizes.items())]
+    share = [(p, sp["ratios"][p] * 100) for p in order]
+    return (f'<h2>Split</h2><table><tr><th>part</th><th>files</th><th>outputs</th><th>share</th>'
+            f'<th>target</th><th>share - target</th></tr>{"".join(body)}</table>{extra}'
+            f'<div class="row"><div><h4>Share per part (%)</h4>{bars(share, width=420, label_w=80, unit="%")}</div>'
+            + (f'<div><h4>Groups by size (files that travel together)</h4>{bars(groups, width=420, label_w=80)}</div>'
+               if groups else "") + "</div>")
+
+
+def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
+    if not facts.clusters:
+        return "<h2>Near-duplicate clusters</h2><p class=\"muted\">No cluster of two or more files.</p>"
+    sizes: dict[int, int] = {}
+    for dropped in facts.clusters.values():
+        sizes[len(dropped) + 1] = sizes.get(len(dropped) + 1, 0) + 1
+    out = ["<h2>Near-duplicate clusters</h2>",
+           f'<p>{fmt(len(facts.clusters))} clusters of two or more files (exact and near duplicates); sizes: '
+           + ", ".join(f"{fmt(n)} of {k}" for k, n in sorted(sizes.items())) + ". The largest, each with "
+           "its kept member and one dropped member, each moved by the transposition normalization applied to "
+           "it (so both stand in the common key):</p>"]
+    for cid, dropped in largest_clusters(facts):
+        kept = facts.representatives.get(cid)
+        dropped = sorted(dropped, key=lambda m: (m["similarity"] or 0, m["source"]))
+        near = [m for m in dropped if m["duplicate_kind"] == "near"] or dropped
+        other = near[0]
+
+        def show(m: dict | None, label: str) -> str:
+            if m is None:
+                return f"<div class=\"thumb\"><b>{label}</b><br><span class=\"muted\">none</span></div>"
+            path = input_dir / m["source"]
+            if not path.is_file() and m["output"]:
+                path, shift = out_dir / m["output"], 0
+            else:
+                shift = m["transpose"] or 0
+            sim = f", similarity {m['similarity']:.2f}" if m["similarity"] is not None else ""
+            kind = f" ({m['duplicate_kind']} duplicate)" if m["duplicate_kind"] else ""
+            return (f'<div class="thumb"><b>{label}</b>{esc(kind + sim)}<br><code>{esc(m["source"])}</code><br>'
+                    f'{thumbnail(path, shift)}</div>')
+        out.append(f'<div class="cluster"><h4>cluster {esc(cid)}: {len(dropped) + 1} files</h4><div class="row">'
+                   f'{show(kept, "kept")}{show(other, "dropped")}</div></div>')
+    return "".join(out)
+
+
+def _timings_section(summary: dict) -> str:
+    t = summary.get("timings_s", {})
+    c = summary["counts"]
+    items = [(k, v) for k, v in t.items() if k != "total" and not k.startswith("stage:")]
+    stage_items = [(k[6:], v) for k, v in t.items() if k.startswith("stage:")]
+    body = "".join(f"<tr><th>{esc(k)}</th>{cell(v, f'timings_s.{k}')}</tr>" for k, v in sorted(t.items()))
+    return (f'<h2>Timings and reuse</h2><p>Distinct contents: {cell_inline(c["contents"], "counts.contents")}; '
+            f'computed in this run: {cell_inline(c["computed"], "counts.computed")}; reused from earlier runs: '
+            f'{cell_inline(c["reused"], "counts.reused")}.</p>'
+            f'<div class="row"><div><h4>Phases (s)</h4>{bars(items, width=420, label_w=90, unit=" s")}</div>'
+            f'<div><h4>Stages in the stage walk (s)</h4>{bars(stage_items, width=420, label_w=90, unit=" s")}</div></div>'
+            f'<details><summary>all timings (summary.json)</summary><table>{body}</table></details>')
+
+
+def cell_inline(value: Any, key: str) -> str:
+    return f'<b data-key="{esc(key)}" data-value="{esc(json.dumps(value))}">{esc(fmt(value))}</b>'
+
+
+CSS = """
+body{font:14px/1.45 system-ui,-apple-system,Segoe UI,Helvetica,Arial,sans-serif;margin:24px auto;max-width:1100px;color:#222;padding:0 16px}
+h1{font-size:22px;margin-bottom:4px}h2{font-size:18px;border-bottom:1px solid #ddd;padding-bottom:3px;margin-top:28px}
+h3{font-size:15px;margin:18px 0 4px}h4{font-size:13px;margin:10px 0 4px;color:#444}
+table{border-collapse:collapse;margin:6px 0}td,th{padding:2px 10px;border-bottom:1px solid #eee;text-align:left;vertical-align:top}
+td.n{text-align:right;font-variant-numeric:tabular-nums}tr.stage th{padding-top:8px}td.reason{padding-left:26px}
+td.meaning{color:#555;font-size:12px;max-width:520px}.muted{color:#777;font-size:12px}
+.row{display:flex;flex-wrap:wrap;gap:24px}.hist{width:370px}.fig text{font-size:11px;fill:#333}.fig text.small{font-size:10px}
+.cards{display:flex;gap:12px;flex-wrap:wrap}.card{border:1px solid #ddd;border-radius:6px;padding:8px 14px;min-width:110px}
+.card b{font-size:22px;display:block}.thumb{max-width:520px}.thumb img{border:1px solid #ccc;image-rendering:pixelated;max-width:500px}
+.cluster{border-top:1px dashed #ddd;margin-top:8px}code{font-size:12px}
+"""
+
+
+def render(summary: dict, facts: Facts, *, stages: Iterable[str] | None = None,
+           input_dir: Path | None = None, out_dir: Path | None = None) -> str:
+    """The report page as a string."""
+    c = summary["counts"]
+    order = stage_order(summary, stages)
+    input_dir = Path(input_dir if input_dir is not None else summary.get("input", "."))
+    out_dir = Path(out_dir if out_dir is not None else summary.get("output", "."))
+    cards = "".join(f'<div class="card">{esc(label)}{cell_inline(c[k], f"counts.{k}")}</div>'
+                    for label, k in (("files in", "files"), ("kept", "kept"), ("dropped", "dropped"),
+                                     ("distinct contents", "contents")))
+    hists = "".join(histogram(facts.values[f], title, unit) for f, title, unit in HISTOGRAMS)
+    parts = [
+        "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">",
+        f"<title>midisift report: {esc(out_dir)}</title><style>{CSS}</style></head><body>",
+        f"<h1>midisift run report</h1><p class=\"muted\">input <code>{esc(summary.get('input'))}</code> &rarr; "
+        f"output <code>{esc(summary.get('output'))}</code>; the numbers are those of summary.json.</p>",
+        f'<div class="cards">{cards}</div>',
+        _stages_section(summary, order),
+        f'<h2>The kept files</h2><div class="row">{hists}</div>',
+        _key_section(facts), _meter_section(facts),
+    ]
+    if summary.get("split", {}).get("files"):
+        parts.append(_split_section(summary, facts))
+    if "dedup" in summary.get("stages", {}):
+        parts.append(_clusters_section(facts, input_dir, out_dir))
+    parts.append(_timings_section(summary))
+    notes = summary.get("notes") or []
+    if notes:
+        parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>")
+    parts.append("</body></html>\n")
+    return "".join(parts)
+
+
+def write_report(out_dir: Path | str, summary: dict | None = None, stages: Iterable[str] | None = None,
+                 input_dir: Path | None = None) -> Path:
+    """Write OUTPUT/report.html from the run's summary (read from summary.json when not given)
+    and its manifest; ``stages`` gives the stage order, ``input_dir`` the folder the sources are
+    read from for the cluster thumbnails (default: the summary's input). Returns the path."""
+    t0 = time.perf_counter()
+    out_dir = Path(out_dir)
+    if summary is None:
+        summary = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))
+    facts = read_manifest(out_dir / "manifest.jsonl")
+    page = render(summary, facts, stages=stages, input_dir=input_dir, out_dir=out_dir)
+    elapsed = time.perf_counter() - t0
+    page = page.replace("</body></html>", f'<p class="muted">This page took {elapsed:.2f} s to write.</p></body></html>')
+    path = out_dir / "report.html"
+    write_atomic(path, page, fsync=False)
+    return path
+
+
+__all__ = ["write_report", "render", "read_manifest", "Facts"]
+
+
+if __name__ == "__main__":  # python -m pipeline.outputs.page OUTPUT: write the page again
+    import sys
+    print(write_report(Path(sys.argv[1])))

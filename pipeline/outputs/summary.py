@@ -1,0 +1,72 @@
+"""summary.json: counts per stage and reason, split counts and ratios, timings, options
+fingerprints, warnings."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+from ..store.codec import json_default
+from .files import DEFAULT_PART, Placed, write_atomic
+
+def configured_parts(stages: list) -> list[str]:
+    """The parts a run writes, in the config's order: the split's ratios, or the one
+    ``DEFAULT_PART`` without a split stage."""
+    split = next((s for s in stages if s.name == "split"), None)
+    return list(split.opts.get("ratios") or ()) if split is not None else [DEFAULT_PART]
+
+
+def run_warnings(files: int, kept: int, part_files: dict[str, int], parts: list[str]) -> list[str]:
+    """What a user must not miss although the run succeeded (exit 0): nothing in, nothing
+    kept, a configured part left empty."""
+    if files == 0:
+        return ["the input folder holds no .mid, .midi, .kar or .rmi file: nothing was done"]
+    if kept == 0:
+        return ["no file was kept: every file was dropped (see the table above, or summary.json)"]
+    return [f"part '{p}' is empty: no kept file was placed in it (too few groups for its ratio?)"
+            for p in parts if not part_files.get(p)]
+
+
+def build_summary(tally: Any, walk: Any, stages: list, timings: dict, computed: int, reused: int,
+                  placed: Placed, cfg: Any) -> dict[str, Any]:
+    """summary.json: counts per stage and reason, split counts and ratios, timings, fingerprints."""
+    per_stage: dict[str, dict[str, Any]] = {}
+    for s in stages:
+        per_stage[s.name] = {"reached": tally.reached.get(s.name, 0), "dropped": {}}
+    for (stage, reason), n in sorted(tally.dropped_by.items()):
+        d = per_stage.setdefault(stage, {"reached": 0, "dropped": {}})["dropped"]
+        d[reason] = d.get(reason, 0) + n
+    configured = configured_parts(stages)
+    every_part = sorted({*configured, *tally.parts, *placed.parts})
+    part_counts = {p: tally.parts.get(p, 0) for p in every_part}  # an empty part counts 0
+    total_kept = max(1, tally.kept)
+    split_stage = next((s for s in stages if s.name == "split"), None)
+    split_info = {"files": part_counts,
+                  "outputs": {p: len(placed.parts.get(p, ())) for p in every_part},
+                  "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
+    if split_stage is not None:
+        split_info["targets"] = split_stage.opts.get("ratios")
+        # the parts in the config's order (summary.json is written with sorted keys)
+        split_info["part_order"] = list(split_stage.opts.get("ratios") or ())
+        split_info.update(walk.states.get("split", {}).get("summary", {}) and
+                          {"stage": walk.states["split"]["summary"]})
+    counts = {"files": tally.files, "kept": tally.kept, "dropped": tally.files - tally.kept,
+              "contents": len(tally.contents), "computed": computed, "reused": reused}
+    return {
+        "counts": counts,
+        "warnings": run_warnings(tally.files, tally.kept, part_counts, configured),
+        "stages": per_stage,
+        "split": split_info,
+        "notes": walk.notes,
+        "timings_s": {k: round(v, 4) for k, v in timings.items()},
+        "fingerprints": {s.name: s.fingerprint for s in stages},
+        "options": {s.name: s.opts for s in stages},
+        "input": str(cfg.input), "output": str(cfg.output),
+    }
+
+
+def write_summary(out_dir: Path, summary: dict, *, fsync: bool = True) -> None:
+    """Write summary.json (atomically; ``fsync=False`` where losing it to a power cut loses
+    nothing but fresh timings)."""
+    write_atomic(out_dir / "summary.json", json.dumps(summary, indent=2, sort_keys=True, default=json_default) + "\n",
+                 fsync=fsync)

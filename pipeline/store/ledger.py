@@ -1,0 +1,456 @@
+"""The SQLite state of an output folder (``OUTPUT/state.sqlite``): the only module that speaks SQL.
+
+Tables
+  sources    path -> size, mtime_ns, sha256 (cheap re-fingerprinting: hash only when size or
+             mtime changed)
+  results    (sha256, stage, fingerprint) -> verdict, reason, detail, values, thresholds
+             (per-file stage results; a rerun reuses every row whose key matches)
+  artifacts  (sha256, stage, fingerprint, name) -> a scalar (JSON) or a numpy array (raw bytes
+             + dtype + shape; never pickle) from a corpus stage's per-file ``prepare``
+  state      (stage, key) -> JSON saved by a corpus stage in the last completed run
+  decisions  source -> the whole decision trail of the last completed run (for ``explain``)
+  row_digests source -> digest of what its manifest row and trail were made from in the last
+             completed run (a rerun reuses the rows whose digest is unchanged)
+  outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
+  runs       one row per run: when, config, counts, status
+
+The database runs in WAL mode; every batch of writes is one transaction, so a killed run never
+leaves a half-written result and the next run picks up what was committed.
+"""
+from __future__ import annotations
+
+import json
+import sqlite3
+import time
+from pathlib import Path
+from typing import Any, Callable, Iterable, Iterator
+
+from ..errors import LedgerError
+from .codec import (EMPTY, SCALARS, canonical_json, decode_array, shape_of, stored_artifacts,
+                    stored_result, thresholds_from_json)
+
+#: 2: results and artifacts keyed by (stage, fingerprint, sha256, ...) instead of sha256
+#: first, so reading one stage's rows is a range of the table, not a scan of every stage's
+#: rows; a version-1 database is migrated when opened (``_migrate_from_1``)
+SCHEMA_VERSION = 2
+#: Columns and keys of the two tables a rerun reads by stage (see SCHEMA_VERSION).
+_KEYED_BY_STAGE = {
+    "results": """sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    kept INTEGER NOT NULL, reason TEXT, detail TEXT NOT NULL, vals TEXT NOT NULL,
+    thresholds TEXT NOT NULL, PRIMARY KEY (stage, fingerprint, sha256)""",
+    "artifacts": """sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
+    name TEXT NOT NULL, dtype TEXT, shape TEXT, data BLOB,
+    PRIMARY KEY (stage, fingerprint, sha256, name)""",
+}
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS sources (
+    path TEXT PRIMARY KEY, size INTEGER NOT NULL, mtime_ns INTEGER NOT NULL, sha256 TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS results ({results}) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS artifacts ({artifacts}) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS state (
+    stage TEXT NOT NULL, key TEXT NOT NULL, value TEXT NOT NULL, PRIMARY KEY (stage, key));
+CREATE TABLE IF NOT EXISTS decisions (
+    source TEXT PRIMARY KEY, sha256 TEXT, status TEXT NOT NULL, trail TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS row_digests (
+    source TEXT PRIMARY KEY, digest TEXT NOT NULL) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS outputs (
+    path TEXT PRIMARY KEY, sha256 TEXT NOT NULL, fingerprint TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS runs (
+    id INTEGER PRIMARY KEY AUTOINCREMENT, started REAL NOT NULL, finished REAL,
+    status TEXT NOT NULL, config TEXT NOT NULL, counts TEXT);
+""".format(**_KEYED_BY_STAGE)
+
+
+
+class Ledger:
+    """An open ``state.sqlite``. Use as a context manager; writes go through ``batch()``."""
+
+    def __init__(self, path: Path, *, read_only: bool = False):
+        """Open (and create or migrate) the ledger; ``read_only`` opens an existing one for
+        reading only (explain, leakage), which also works in a folder the user cannot write."""
+        self.path = Path(path)
+        if read_only:
+            self.db = self._open_read_only()
+            return
+        try:
+            self.db = sqlite3.connect(str(self.path), isolation_level=None, timeout=30)
+            self.db.execute("PRAGMA journal_mode=WAL")
+            self.db.execute("PRAGMA synchronous=NORMAL")
+            # speed: checkpoint the WAL every ~40 MB instead of every 4 MB (each checkpoint
+            # syncs the database file; the per-file pass writes a few KB per file)
+            self.db.execute("PRAGMA wal_autocheckpoint=10000")
+            self.db.executescript(_SCHEMA)
+            row = self.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
+            if row is None:
+                self.db.execute("INSERT INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
+            elif int(row[0]) == 1:
+                _migrate_from_1(self.db)
+            elif int(row[0]) != SCHEMA_VERSION:
+                raise LedgerError(
+                    f"state schema version {row[0]} is not {SCHEMA_VERSION}; rerun with --fresh into a new output folder",
+                    file=str(self.path))
+        except sqlite3.DatabaseError as e:
+            raise LedgerError(f"cannot open the state database ({e}); if it is corrupt, move it away and rerun",
+                              file=str(self.path)) from None
+
+    def _open_read_only(self) -> sqlite3.Connection:
+        """A read-only connection. In a folder the user cannot write, SQLite cannot create the
+        WAL index it needs for ``mode=ro``; the database is then opened as immutable (a
+        completed run leaves no WAL behind: the last connection to close checkpoints it)."""
+        uri = self.path.resolve().as_uri()
+        try:
+            try:
+                db = sqlite3.connect(f"{uri}?mode=ro", uri=True, isolation_level=None, timeout=30)
+                db.execute("SELECT 1 FROM meta LIMIT 1").fetchall()
+            except sqlite3.OperationalError:
+                db = sqlite3.connect(f"{uri}?mode=ro&immutable=1", uri=True, isolation_level=None)
+            row = db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
+        except sqlite3.DatabaseError as e:
+            raise LedgerError(f"cannot read the state database ({e}); if it is corrupt, move it "
+                              "away and rerun", file=str(self.path)) from None
+        if row is None or int(row[0]) != SCHEMA_VERSION:
+            raise LedgerError(f"state schema version {row[0] if row else 'unknown'} is not "
+                              f"{SCHEMA_VERSION}; rerun 'midisift run' on this folder first",
+                              file=str(self.path))
+        return db
+
+    def close(self) -> None:
+        self.db.close()
+
+    def __enter__(self) -> "Ledger":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    # -- transactions ------------------------------------------------------------------
+    def batch(self) -> "_Batch":
+        """A transaction: ``with ledger.batch(): ...`` commits at the end or rolls back."""
+        return _Batch(self.db)
+
+    # -- sources -------------------------------------------------------------------------
+    def sources(self) -> dict[str, tuple[int, int, str]]:
+        """path -> (size, mtime_ns, sha256) as recorded by the last fingerprinting."""
+        return {p: (s, m, h) for p, s, m, h in self.db.execute("SELECT path, size, mtime_ns, sha256 FROM sources")}
+
+    def put_sources(self, rows: Iterable[tuple[str, int, int, str]]) -> None:
+        self.db.executemany("INSERT OR REPLACE INTO sources VALUES (?,?,?,?)", rows)
+
+    def forget_sources(self, paths: Iterable[str]) -> None:
+        self.db.executemany("DELETE FROM sources WHERE path=?", ((p,) for p in paths))
+
+    # -- per-file results ------------------------------------------------------------------
+    def results_for(self, stage: str, fingerprint: str,
+                    make: Callable[[bool, str | None, str, dict, dict], Any] | None = None, *,
+                    values_as_text: bool = False) -> dict[str, Any]:
+        """sha256 -> result dict (kept, reason, detail, values, thresholds) of one stage, or
+        what ``make(kept, reason, detail, values, thresholds)`` builds of each row (the runner
+        keeps compact records: no dict per row is built first). With ``values_as_text`` the
+        values reach ``make`` as their stored JSON text (an object with sorted keys), unparsed."""
+        out: dict[str, Any] = {}
+        loads = json.loads
+        if make is None:
+            def make(kept, reason, detail, values, thresholds):  # noqa: E306
+                return {"kept": kept, "reason": reason, "detail": detail,
+                        "values": loads(values) if values_as_text else values, "thresholds": thresholds}
+        thresholds_of = thresholds_from_json
+        for sha, kept, reason, detail, vals, thr in self.db.execute(
+                "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?",
+                (stage, fingerprint)):
+            out[sha] = make(bool(kept), reason, detail, vals if values_as_text else loads(vals),
+                            thresholds_of(thr))
+        return out
+
+    def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
+        """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
+        (``stored_result``: what the workers send, values already JSON text)."""
+        self.db.executemany(
+            "INSERT OR REPLACE INTO results VALUES (?,?,?,?,?,?,?,?)",
+            ((sha, stage, fp, *(r if type(r) is tuple else stored_result(r))) for sha, stage, fp, r in rows))
+
+    def forget_results(self, stage: str, fingerprint: str) -> None:
+        """Forget every stored result of one stage under one fingerprint."""
+        self.db.execute("DELETE FROM results WHERE stage=? AND fingerprint=?", (stage, fingerprint))
+
+    # -- artifacts ---------------------------------------------------------------------------
+    def artifact_keys(self, stage: str, fingerprint: str) -> set[str]:
+        return {sha for (sha,) in self.db.execute(
+            "SELECT DISTINCT sha256 FROM artifacts WHERE stage=? AND fingerprint=?", (stage, fingerprint))}
+
+    def artifacts_for(self, stage: str, fingerprint: str, shas: set[str] | None = None, *,
+                      defer: tuple[str, ...] = ()) -> dict[str, dict[str, Any]]:
+        """sha256 -> {name: value}; arrays come back as read-only numpy arrays, those named in
+        ``defer`` as ``StoredArray`` handles (length and shape known, bytes read when loaded,
+        ``load_arrays`` reads many at once). Speed and memory: a rerun's dedup reads the
+        shingle sets of the files it compares, not of every file (about 0.9 KB each)."""
+        out: dict[str, dict[str, Any]] = {}
+        array = decode_array
+        deferred = {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer}
+        # the bytes of a deferred array are not selected (its row is still read for the shape)
+        blob = ("CASE WHEN name IN (%s) THEN NULL ELSE data END" % ",".join("?" * len(defer))
+                if defer else "data")
+        for sha, name, dtype, shape, data in self.db.execute(
+                f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts WHERE stage=? AND fingerprint=?",
+                (*defer, stage, fingerprint)):
+            if shas is not None and sha not in shas:
+                continue
+            entry = out.get(sha)
+            if entry is None:
+                entry = out[sha] = {}
+            if dtype is not None:
+                rows = deferred.get(name)
+                entry[name] = array(dtype, shape, data) if rows is None else StoredArray(rows, sha, dtype, shape)
+            elif name == SCALARS:
+                entry.update(json.loads(data))
+            elif name != EMPTY:
+                entry[name] = json.loads(data)  # a scalar on its own row (earlier versions)
+        return out
+
+    def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
+        """rows of (sha256, stage, fingerprint, items): items as ``{name: array or JSON
+        scalar}``, or in their stored form (``stored_artifacts``, what the workers send)."""
+        flat = []
+        for sha, stage, fp, items in rows:
+            for stored in (items if type(items) is tuple else stored_artifacts(items)):
+                flat.append((sha, stage, fp, *stored))
+        self.db.executemany("INSERT OR REPLACE INTO artifacts VALUES (?,?,?,?,?,?,?)", flat)
+
+    # -- corpus-stage state ------------------------------------------------------------------
+    def state_for(self, stage: str) -> dict[str, Any]:
+        return {k: json.loads(v) for k, v in self.db.execute("SELECT key, value FROM state WHERE stage=?", (stage,))}
+
+    def put_state(self, stage: str, values: dict[str, Any]) -> None:
+        self.db.execute("DELETE FROM state WHERE stage=?", (stage,))
+        self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, canonical_json(v)) for k, v in values.items()))
+
+    # -- decisions (explain) -------------------------------------------------------------------
+    def put_decisions(self, rows: Iterable[tuple[str, str | None, str, Any]], *, replace: bool = True) -> None:
+        """Replace the trails with this run's: rows of (source, sha256, status, trail), the trail
+        a list or its ``canonical_json`` text. With
+        ``replace=False`` the rows are added to those already written in this transaction (a
+        run writes its trails in chunks while the manifest streams past)."""
+        if replace:
+            self.db.execute("DELETE FROM decisions")
+        self.db.executemany("INSERT INTO decisions VALUES (?,?,?,?)",
+                            ((src, sha, status, trail if type(trail) is str else canonical_json(trail))
+                             for src, sha, status, trail in rows))
+
+    def update_decisions(self, rows: Iterable[tuple[str, str | None, str, Any]],
+                         gone: Iterable[str]) -> None:
+        """Replace the trails of some sources (rows as for ``put_decisions``) and forget the
+        sources in ``gone``; the other trails stay as the last run wrote them."""
+        self.db.executemany("DELETE FROM decisions WHERE source=?", ((s,) for s in gone))
+        self.db.executemany("INSERT OR REPLACE INTO decisions VALUES (?,?,?,?)",
+                            ((src, sha, status, trail if type(trail) is str else canonical_json(trail))
+                             for src, sha, status, trail in rows))
+
+    def row_digests(self) -> dict[str, str]:
+        """source -> digest of its manifest row in the last completed run."""
+        return dict(self.db.execute("SELECT source, digest FROM row_digests"))
+
+    def put_row_digests(self, rows: Iterable[tuple[str, str]], gone: Iterable[str] = (), *,
+                        replace: bool = False) -> None:
+        """Record (source, digest) rows; ``replace`` forgets all others first, else only those
+        in ``gone``."""
+        if replace:
+            self.db.execute("DELETE FROM row_digests")
+        else:
+            self.db.executemany("DELETE FROM row_digests WHERE source=?", ((s,) for s in gone))
+        self.db.executemany("INSERT OR REPLACE INTO row_digests VALUES (?,?)", rows)
+
+    def decision_statuses(self) -> Iterator[tuple[str, str]]:
+        """(sha256, 'kept'|'dropped') of the last completed run; 'kept' wins for shared contents."""
+        return self.db.execute(
+            "SELECT sha256, MAX(status) FROM decisions GROUP BY sha256")  # 'kept' > 'dropped'
+
+    def decision(self, source: str) -> tuple[str | None, list] | None:
+        row = self.db.execute("SELECT sha256, trail FROM decisions WHERE source=?", (source,)).fetchone()
+        return None if row is None else (row[0], json.loads(row[1]))
+
+    def decisions_by_sha_prefix(self, prefix: str) -> list[tuple[str, str | None, list]]:
+        return [(s, h, json.loads(t)) for s, h, t in self.db.execute(
+            "SELECT source, sha256, trail FROM decisions WHERE sha256 LIKE ? ORDER BY source", (prefix + "%",))]
+
+    # -- outputs ---------------------------------------------------------------------------------
+    def outputs(self) -> dict[str, tuple[str, str]]:
+        return {p: (h, f) for p, h, f in self.db.execute("SELECT path, sha256, fingerprint FROM outputs")}
+
+    def put_outputs(self, rows: Iterable[tuple[str, str, str]]) -> None:
+        self.db.executemany("INSERT OR REPLACE INTO outputs VALUES (?,?,?)", rows)
+
+    def forget_outputs(self, paths: Iterable[str]) -> None:
+        self.db.executemany("DELETE FROM outputs WHERE path=?", ((p,) for p in paths))
+
+    # -- runs --------------------------------------------------------------------------------------
+    def start_run(self, config: dict) -> int:
+        cur = self.db.execute("INSERT INTO runs (started, status, config) VALUES (?, 'running', ?)",
+                              (time.time(), canonical_json(config)))
+        return int(cur.lastrowid)
+
+    def finish_run(self, run_id: int, counts: dict) -> None:
+        self.db.execute("UPDATE runs SET finished=?, status='complete', counts=? WHERE id=?",
+                        (time.time(), canonical_json(counts), run_id))
+
+    def last_run(self) -> dict | None:
+        row = self.db.execute(
+            "SELECT id, started, finished, config, counts FROM runs WHERE status='complete' ORDER BY id DESC LIMIT 1"
+        ).fetchone()
+        if row is None:
+            return None
+        return {"id": row[0], "started": row[1], "finished": row[2], "config": json.loads(row[3]),
+                "counts": json.loads(row[4] or "{}")}
+
+    def clear_cache(self) -> None:
+        """Forget cached per-file results and artifacts (``--fresh``); keeps history of runs."""
+        self.db.execute("DELETE FROM results")
+        self.db.execute("DELETE FROM artifacts")
+        self.db.execute("DELETE FROM row_digests")
+
+
+def _migrate_from_1(db: sqlite3.Connection) -> None:
+    """Rebuild the results and artifacts tables of a version-1 database (keyed sha256 first)
+    with version 2's keys (same columns, same rows), in one transaction: a run killed meanwhile
+    leaves version 1."""
+    db.execute("BEGIN IMMEDIATE")
+    try:
+        for table, spec in _KEYED_BY_STAGE.items():
+            columns = [r[1] for r in db.execute(f"PRAGMA table_info({table})")]
+            db.execute(f"CREATE TABLE {table}_v2 ({spec}) WITHOUT ROWID")
+            db.execute(f"INSERT INTO {table}_v2 ({', '.join(columns)}) SELECT {', '.join(columns)} FROM {table}")
+            db.execute(f"DROP TABLE {table}")
+            db.execute(f"ALTER TABLE {table}_v2 RENAME TO {table}")
+        db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
+        db.execute("COMMIT")
+    except BaseException:
+        db.execute("ROLLBACK")
+        raise
+
+
+class _Batch:
+    """One transaction; any SQLite failure (disk full, I/O error) becomes a LedgerError naming
+    the database, and the transaction is rolled back so no half-written result remains."""
+
+    def __init__(self, db: sqlite3.Connection):
+        self.db = db
+
+    def __enter__(self) -> sqlite3.Connection:
+        try:
+            self.db.execute("BEGIN IMMEDIATE")
+        except sqlite3.Error as e:
+            raise _ledger_error(self.db, e) from None
+        return self.db
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> bool:
+        if exc_type is None:
+            try:
+                self.db.execute("COMMIT")
+                return False
+            except sqlite3.Error as e:
+                self._rollback()
+                raise _ledger_error(self.db, e) from None
+        self._rollback()
+        if isinstance(exc, sqlite3.Error):
+            raise _ledger_error(self.db, exc) from None
+        return False
+
+    def _rollback(self) -> None:
+        try:
+            self.db.execute("ROLLBACK")
+        except sqlite3.Error:
+            pass
+
+
+def _ledger_error(db: sqlite3.Connection, e: Exception) -> LedgerError:
+    try:
+        path = next((row[2] for row in db.execute("PRAGMA database_list") if row[1] == "main"), None)
+    except sqlite3.Error:
+        path = None
+    return LedgerError(f"the state database could not be written ({e}); check free space and "
+                       "permissions, then rerun: committed results are kept", file=path)
+
+
+
+class _ArrayRows:
+    """Where the deferred arrays of one artifact name of one stage and fingerprint are read."""
+
+    __slots__ = ("db", "key")
+
+    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, name: str):
+        self.db, self.key = db, (stage, fingerprint, name)
+
+    def fetch(self, shas: list[str]) -> dict[str, bytes]:
+        """sha256 -> stored bytes, in queries of ``FETCH_CHUNK`` keys."""
+        stage, fp, name = self.key
+        got: dict[str, bytes] = {}
+        for chunk in iter_chunks(shas, FETCH_CHUNK):
+            got.update(self.db.execute(
+                f"SELECT sha256, data FROM artifacts WHERE stage=? AND fingerprint=? AND name=? "
+                f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, name, *chunk)))
+        return got
+
+
+#: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).
+FETCH_CHUNK = 500
+
+
+class StoredArray:
+    """A numpy array artifact left in the ledger until it is read (``artifacts_for(defer=)``):
+    ``len()`` and ``shape`` come from the stored shape, ``load()`` reads the bytes once (the
+    array is kept: dedup and split compare many of the same files); the ledger must still be
+    open."""
+
+    __slots__ = ("_rows", "sha256", "dtype", "_shape", "_array")
+
+    def __init__(self, rows: _ArrayRows, sha256: str, dtype: str, shape: str | None):
+        self._rows, self.sha256, self.dtype, self._shape = rows, sha256, dtype, shape
+        self._array: Any = None
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return shape_of(self._shape)
+
+    def __len__(self) -> int:
+        dims = self.shape
+        if not dims:
+            raise TypeError("len() of a 0-d stored array")
+        return dims[0]
+
+    def load(self) -> Any:
+        return load_arrays([self])[0]
+
+    def __repr__(self) -> str:
+        return f"StoredArray({self._rows.key[2]} of {self.sha256[:16]}, {self.dtype}, {self.shape})"
+
+
+def load_arrays(values: list) -> list:
+    """The arrays of ``values``: numpy arrays (or anything else) as they are, ``StoredArray``
+    handles read from the ledger, those sharing a table in one query per ``FETCH_CHUNK``."""
+    out = list(values)
+    groups: dict[int, tuple[_ArrayRows, list[int]]] = {}
+    for i, v in enumerate(out):
+        if type(v) is StoredArray:
+            if v._array is not None:
+                out[i] = v._array
+            else:
+                groups.setdefault(id(v._rows), (v._rows, []))[1].append(i)
+    for rows, where in groups.values():
+        got = rows.fetch(sorted({out[i].sha256 for i in where}))
+        for i in where:
+            v = out[i]
+            if v._array is None:  # (a handle listed twice is read once)
+                data = got.get(v.sha256)
+                if data is None:
+                    path = rows.db.execute("PRAGMA database_list").fetchone()[2] or None
+                    raise LedgerError(f"the {rows.key[2]} artifact of {v.sha256} is no longer in "
+                                      "the state database (another process changed it during "
+                                      "the run?); rerun", file=path)
+                v._array = decode_array(v.dtype, v._shape, data)
+            out[i] = v._array
+    return out
+
+
+def iter_chunks(items: list, size: int) -> Iterator[list]:
+    for i in range(0, len(items), size):
+        yield items[i:i + size]

@@ -1,0 +1,213 @@
+"""Compact in-memory form of per-file stage results, held by the main process for a whole run.
+
+A run keeps one result per (file, stage) from the per-file pass until the manifest is written:
+at 100,000 files and four per-file stages that is 400,000 results. As plain dicts (an outer
+dict, a values dict, a thresholds dict) they cost about 3.4 KB per file. A ``Result`` keeps the
+values either as the JSON text the ledger stores (results from workers and from the ledger:
+parsed only when read) or as a tuple under a value-name tuple shared by every result of the
+stage (results made in the main process), and the thresholds shared with the stage's previous
+result when equal.
+
+A ``Result`` reads like the result dict it replaces (``r["kept"]``, ``r["values"]``,
+``{**r}``, ``r.get("thresholds")``), so the ledger, the workers and the manifest need not know.
+"""
+from __future__ import annotations
+
+import json
+import sys
+from collections.abc import Mapping
+from typing import Any, Iterator
+
+from .codec import canonical_json, thresholds_from_json
+
+__all__ = ["Result", "Compactor", "TrailValues"]
+
+_FIELDS = ("kept", "reason", "detail", "values", "thresholds")
+_DECODER = json.JSONDecoder()
+#: Value-name tuples shared by the results expanded from stored JSON (few distinct ones).
+_SHARED_NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}
+_MISSING = object()
+_intern = sys.intern
+
+
+class Result:
+    """One stage's verdict on one file: ``kept``, ``reason``, ``detail``, ``values``,
+    ``thresholds``. Read-only; ``values`` builds a new dict on each access (use ``value`` for
+    one name).
+
+    A result read from the ledger keeps its values as the stored JSON text until they are first
+    needed (``Compactor.make_stored``): a rerun reads every stored result to know what is kept,
+    but needs the values only of the rows it rebuilds. ``names`` and ``vals`` are then
+    ``None`` and the text; ``expand()`` parses them."""
+
+    __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds", "text")
+
+    def __init__(self, kept: bool, reason: str | None, detail: str, names: tuple[str, ...] | None,
+                 vals: tuple | str, thresholds: dict[str, Any]):
+        self.kept = kept
+        self.reason = reason
+        self.detail = detail
+        self.names = names
+        self.vals = vals
+        self.thresholds = thresholds
+        self.text: str | None = vals if names is None else None  # the values as stored JSON
+
+    def expand(self) -> "Result":
+        """Parse values still held as stored JSON text (no-op otherwise); returns self."""
+        if self.names is None:
+            values = json.loads(self.vals)
+            names = tuple(values)
+            self.names = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
+            self.vals = _compact_values(values)
+            self.text = None  # memory: one form at a time (``values_json`` makes it again)
+        return self
+
+    def values_json(self) -> str:
+        """The values as the ledger stores them (JSON, sorted keys), made once and kept: the
+        form in which a record read back from the ledger and one computed in this run compare
+        equal (``pipeline.outputs.rowreuse``)."""
+        if self.text is None:
+            self.text = canonical_json(self.values)
+        return self.text
+
+    @property
+    def values(self) -> dict[str, Any]:
+        if self.names is None:  # parsed for the reader, the record stays text (memory, speed)
+            return json.loads(self.vals)
+        return dict(zip(self.names, self.vals))
+
+    def value(self, name: str, default: Any = None) -> Any:
+        """One value by name, without building the values dict."""
+        if self.names is None:
+            # stored JSON has every key as '"name":' (a quote inside a string is escaped, so
+            # the pattern is a key); a name not in the text is not a value
+            text = self.vals
+            if name.isascii() and name.isprintable() and '"' not in name and "\\" not in name:
+                at = text.find(f'"{name}":')  # written as it is (no escapes)
+                if at < 0:
+                    return default
+                if text.count("{") == 1:  # a flat object: the key is a top-level one; read its value only
+                    return _DECODER.raw_decode(text, at + len(name) + 3)[0]
+            self.expand()
+        try:
+            return self.vals[self.names.index(name)]
+        except ValueError:
+            return default
+
+    # the mapping protocol of the result dict it stands for ------------------------------------
+    def __getitem__(self, key: str) -> Any:
+        if key == "values":
+            return self.values
+        if key in _FIELDS:
+            return getattr(self, key)
+        raise KeyError(key)
+
+    def get(self, key: str, default: Any = None) -> Any:
+        return self[key] if key in _FIELDS else default
+
+    def keys(self) -> tuple[str, ...]:
+        return _FIELDS
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(_FIELDS)
+
+    def __len__(self) -> int:
+        return len(_FIELDS)
+
+    def __contains__(self, key: object) -> bool:
+        return key in _FIELDS
+
+    def to_json(self) -> dict[str, Any]:
+        return {"kept": self.kept, "reason": self.reason, "detail": self.detail,
+                "values": self.values, "thresholds": self.thresholds}
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, (Result, Mapping)):
+            return all(self[k] == other[k] for k in _FIELDS) if set(other.keys()) == set(_FIELDS) else False
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __reduce__(self) -> tuple:  # plain pickling to and from the workers
+        self.expand()
+        return (Result, (self.kept, self.reason, self.detail, self.names, self.vals, self.thresholds))
+
+    def __repr__(self) -> str:
+        return f"Result({self.to_json()!r})"
+
+
+def _compact_values(values: Mapping[str, Any]) -> tuple:
+    """The values as a tuple, short strings interned (shared between results)."""
+    return tuple(_intern(v) if type(v) is str and len(v) <= 32 else v for v in values.values())
+
+
+class Compactor:
+    """Makes ``Result`` records for one stage, sharing name tuples and thresholds among them."""
+
+    def __init__(self) -> None:
+        self._names: dict[tuple[str, ...], tuple[str, ...]] = {}
+        self._thresholds: dict[str, Any] | None = None
+
+    def make(self, kept: bool, reason: str | None, detail: str, values: Mapping[str, Any],
+             thresholds: dict[str, Any] | None) -> Result:
+        names = tuple(values)
+        shared = self._names.get(names)
+        if shared is None:
+            shared = self._names[names] = tuple(_intern(k) for k in names)
+        return Result(bool(kept), _intern(reason) if reason else reason, detail, shared,
+                      _compact_values(values), self._shared_thresholds(thresholds))
+
+    def make_stored(self, kept: bool, reason: str | None, detail: str, values_json: str,
+                    thresholds: dict[str, Any] | None) -> Result:
+        """A result read from the ledger, its values left as the stored JSON text (a JSON
+        object written with sorted keys) until first read."""
+        return Result(bool(kept), _intern(reason) if reason else reason, detail, None,
+                      values_json, self._shared_thresholds(thresholds))
+
+    def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
+        """The result of a stored form (``ledger.stored_result``), its values left as text."""
+        kept, reason, detail, values_json, thresholds_json = stored
+        return self.make_stored(kept, reason, detail, values_json, thresholds_from_json(thresholds_json))
+
+    def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
+        t = thresholds if thresholds is not None else {}
+        if t is self._thresholds:  # speed: the ledger hands out one dict per distinct text
+            return t
+        if self._thresholds is not None and t == self._thresholds:
+            return self._thresholds
+        self._thresholds = t
+        return t
+
+    def of(self, r: Mapping[str, Any] | Result) -> Result:
+        """The compact form of a result dict (a ``Result`` is compacted again, sharing more)."""
+        if isinstance(r, Result):
+            r.expand()
+            return self.make(r.kept, r.reason, r.detail, dict(zip(r.names, r.vals)), r.thresholds)
+        return self.make(r["kept"], r.get("reason"), r.get("detail", ""), r.get("values") or {},
+                         r.get("thresholds"))
+
+
+class TrailValues(Mapping):
+    """The values of a file's results in stage order as one read-only mapping, later stages
+    winning, without merging them into a dict (what a corpus stage's ``Member.values`` reads)."""
+
+    __slots__ = ("_trail",)
+
+    def __init__(self, trail: list[Result]):
+        self._trail = tuple(trail)
+
+    def __getitem__(self, name: str) -> Any:
+        for r in reversed(self._trail):
+            v = r.value(name, _MISSING)
+            if v is not _MISSING:
+                return v
+        raise KeyError(name)
+
+    def __iter__(self) -> Iterator[str]:
+        seen: dict[str, None] = {}
+        for r in self._trail:
+            seen.update(dict.fromkeys(r.expand().names))
+        return iter(seen)
+
+    def __len__(self) -> int:
+        return sum(1 for _ in self)
