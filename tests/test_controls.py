@@ -20,6 +20,7 @@ import pretty_midi
 import pytest
 
 from fixtures_midi import random_midi
+from pipeline.midi import accel
 from pipeline.midi import decode as smf
 from pipeline.midi.encode import encode
 from pipeline.outputs.render import render
@@ -229,7 +230,7 @@ def test_decoded_controls_match_mido():
                     ref.append((tick, ti, raw[0] & 0x0F, raw[0] & 0xF0, raw[1],
                                 raw[2] if len(raw) > 2 else 0))
         assert len(ref) > 50
-        for accelerated in (False, True) if smf.HAVE_ACCEL else (False,):
+        for accelerated in (False, True) if accel.HAVE_ACCEL else (False,):
             got = smf.decode(data, accelerated=accelerated).controls
             assert got.dtype == CONTROL_DTYPE
             assert [tuple(int(v) for v in r) for r in got] == ref
@@ -288,7 +289,7 @@ def test_control_layout_is_what_the_compiled_code_writes():
 
 def test_compiled_encoder_with_controls_equals_numpy():
     # pipeline/midi/_smf_accel.c group_events with the other events against encode._all_group_events
-    if not smf.HAVE_ACCEL:
+    if not accel.HAVE_ACCEL:
         pytest.skip("pipeline.midi._smf_accel is not built")
     for seed in range(6):
         p = smf.decode(rich_midi(seed))

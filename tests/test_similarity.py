@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 from datasketch import MinHash, MinHashLSH
 
+from pipeline.midi import accel
 from pipeline.midi import decode as smf
 from pipeline.similarity.measure import (LSHIndex, UnionFind, band_keys,
                                                  candidate_probability, check_banding,
@@ -179,16 +180,16 @@ def test_pair_similarities_equal_python_sets_and_set_similarity(ratio):
                      for x, y in zip(i, j)])
     ref = np.array([_python_set_similarity(sets[x], sets[y], cap, ratio) for x, y in zip(i, j)])
     assert np.allclose(want, ref, rtol=0, atol=1e-15)
-    paths = (False, True) if smf.USE_ACCEL else (False,)
+    paths = (False, True) if accel.USE_ACCEL else (False,)
     for compiled in paths:
         got = pair_similarities(sets, i, j, min_size_ratio=ratio, cap=cap, compiled=compiled)
         assert got.dtype == np.float64 and np.array_equal(got, want), compiled
     assert len(pair_similarities(sets, i[:0], j[:0])) == 0
 
 
-@pytest.mark.skipif(not smf.USE_ACCEL, reason="the compiled kernels are not built")
+@pytest.mark.skipif(not accel.USE_ACCEL, reason="the compiled kernels are not built")
 def test_overlap_kernel_names_bad_input():
-    kernel = smf._smf_accel.overlap_counts
+    kernel = accel.module.overlap_counts
     sets = [np.arange(4, dtype=np.uint64)]
     with pytest.raises(IndexError, match="set index 3 outside 0..0"):
         kernel(sets, np.array([0], np.int64), np.array([3], np.int64), 10)
@@ -233,9 +234,9 @@ def test_incremental_banding_kernel_equals_the_definition_and_numpy(n, bands, se
     assert banded_pair_codes(sig, bands, np.zeros(n, dtype=bool)).tolist() == []
 
 
-@pytest.mark.skipif(not smf.USE_ACCEL, reason="the compiled kernels are not built")
+@pytest.mark.skipif(not accel.USE_ACCEL, reason="the compiled kernels are not built")
 def test_banding_kernel_names_bad_input():
-    kernel = smf._smf_accel.band_pair_codes
+    kernel = accel.module.band_pair_codes
     sig = np.zeros((4, 8), dtype=np.uint32)
     new = np.zeros(4, dtype=np.uint8)
     with pytest.raises(ValueError, match="2-d uint32"):

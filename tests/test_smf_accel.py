@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from fixtures_midi import mido_rows, parse_hexdump, piece_rows, random_midi
+from pipeline.midi import accel
 from pipeline.tools import fuzz, synth
 from pipeline.midi import decode as smf
 from pipeline.midi.encode import encode, vlq
@@ -29,7 +30,7 @@ from pipeline.midi.piece import NOTE_DTYPE, TEMPO_DTYPE, Piece, ticks_to_seconds
 REPO = Path(__file__).resolve().parents[1]
 
 pytestmark = pytest.mark.skipif(
-    not smf.HAVE_ACCEL, reason="pipeline.midi._smf_accel is not built (no C compiler at install "
+    not accel.HAVE_ACCEL, reason="pipeline.midi._smf_accel is not built (no C compiler at install "
     "time); the pure-Python decoder is in use and tested by test_smf.py")
 
 
@@ -66,12 +67,12 @@ def assert_same(data: bytes, label: str = "", **limits: int) -> Piece | DecodeEr
     """Both paths give the same Piece, field by field, or the same DecodeError; and the C
     track loop agrees with the Python one on every track it was given."""
     ref = outcome(data, False, **limits)
-    spy = TrackSpy(smf._smf_accel)
-    smf._smf_accel = spy
+    spy = TrackSpy(accel.module)
+    accel.module = spy
     try:
         got = outcome(data, True, **limits)
     finally:
-        smf._smf_accel = spy.real
+        accel.module = spy.real
     assert spy.gave_up <= isinstance(ref, DecodeError), label
     if isinstance(ref, DecodeError):
         assert isinstance(got, DecodeError), f"{label}: accelerated decoded what pure rejects: {ref}"
@@ -108,11 +109,11 @@ def assert_same_encoding(piece: Piece, notes: np.ndarray | None = None, label: s
 
 def test_the_accelerated_path_is_the_default_unless_switched_off():
     forced = os.environ.get("MIDISIFT_PURE_PYTHON", "") not in ("", "0")
-    assert smf.USE_ACCEL is (not forced)
+    assert accel.USE_ACCEL is (not forced)
 
 
 def test_environment_switch_forces_pure_python():
-    code = "import pipeline.midi.decode as s; print(s.HAVE_ACCEL, s.USE_ACCEL)"
+    code = "import pipeline.midi.accel as s; print(s.HAVE_ACCEL, s.USE_ACCEL)"
     env = {**os.environ, "MIDISIFT_PURE_PYTHON": "1"}
     here = Path(smf.__file__).resolve().parents[1]  # the same package this process imported
     out = subprocess.run([sys.executable, "-c", code], env=env, cwd=here, check=True,
@@ -121,7 +122,7 @@ def test_environment_switch_forces_pure_python():
 
 
 def test_asking_for_a_missing_accelerator_is_an_error(monkeypatch):
-    monkeypatch.setattr(smf, "HAVE_ACCEL", False)
+    monkeypatch.setattr(accel, "HAVE_ACCEL", False)
     with pytest.raises(ValueError, match="not built"):
         smf.decode(random_midi(1, n_notes=20), accelerated=True)
 
@@ -381,14 +382,14 @@ def test_many_tracks_huge_ticks_and_event_limit():
 def test_fallback_when_the_compiled_loop_gives_up(monkeypatch):
     # Where the C loop returns None the Python loop runs; on a valid track (which the C loop
     # never gives up on) that must still give the same piece.
-    real = smf._smf_accel
+    real = accel.module
 
     class GivesUp:
         read_track = staticmethod(lambda data, start, length, track=0: None)
         note_table = staticmethod(real.note_table)
     data = random_midi(4, n_notes=120, n_tracks=3, hanging=2)
     want = smf.decode(data, accelerated=False)
-    monkeypatch.setattr(smf, "_smf_accel", GivesUp)
+    monkeypatch.setattr(accel, "module", GivesUp)
     got = smf.decode(data, accelerated=True)
     assert got.notes.tobytes() == want.notes.tobytes() and got.repairs == want.repairs
 
@@ -420,7 +421,7 @@ def test_note_table_against_numpy_sort_and_seconds():
         if len(want):
             secs = ticks_to_seconds(np.concatenate((want["start"], want["end"])), tempo, tpb)
             want["start_s"], want["end_s"] = secs[:len(want)], secs[len(want):]
-        got = np.frombuffer(smf._smf_accel.note_table(chunks, tracks, tempo.tobytes(), tpb),
+        got = np.frombuffer(accel.module.note_table(chunks, tracks, tempo.tobytes(), tpb),
                             dtype=NOTE_DTYPE)
         assert got.tobytes() == want.tobytes(), trial
 
@@ -535,15 +536,15 @@ def _both_paths(monkeypatch, pieces, fn) -> None:
     """``fn(piece)`` with the compiled analyses and without: identical values or errors."""
     from test_speed_equivalence import identical
     for i, p in enumerate(pieces):
-        monkeypatch.setattr(smf, "USE_ACCEL", False)
+        monkeypatch.setattr(accel, "USE_ACCEL", False)
         try:
             want = fn(p)
         except (ValueError, IndexError) as exc:
-            monkeypatch.setattr(smf, "USE_ACCEL", True)
+            monkeypatch.setattr(accel, "USE_ACCEL", True)
             with pytest.raises(type(exc)):
                 fn(p)
             continue
-        monkeypatch.setattr(smf, "USE_ACCEL", True)
+        monkeypatch.setattr(accel, "USE_ACCEL", True)
         got = fn(p)
         if isinstance(want, np.generic):  # a numpy scalar: its type and its bytes
             assert type(got) is type(want) and got.tobytes() == want.tobytes(), f"piece {i}"
@@ -555,14 +556,14 @@ def test_pairwise_sum_is_numpys():
     # numpy's float64 add.reduce: pairwise summation in blocks of 8 up to 128 values
     # (numpy/_core/src/umath/loops_utils.h.src); every size up to 300 and around the block edges,
     # and beyond numpy 2.2's 8192-value buffer, once the module follows this numpy's chunking
-    from pipeline.midi.piece import _sums_follow_numpy
-    assert _sums_follow_numpy(smf._smf_accel), f"numpy {np.__version__}: no chunking matches"
+    from pipeline.midi.accel import _sums_follow_numpy
+    assert _sums_follow_numpy(accel.module), f"numpy {np.__version__}: no chunking matches"
     rng = np.random.default_rng(8)
     for n in list(range(300)) + [1000, 1023, 1024, 1025, 8191, 8192, 8193, 20000, 100001]:
         a = rng.standard_normal(n) * 10.0 ** rng.integers(-6, 6, n)
-        assert (np.float64(smf._smf_accel.add_reduce(a)).tobytes()
+        assert (np.float64(accel.module.add_reduce(a)).tobytes()
                 == np.float64(np.add.reduce(a)).tobytes()), n
-    assert np.float64(smf._smf_accel.add_reduce(np.array([-0.0]))).tobytes() == \
+    assert np.float64(accel.module.add_reduce(np.array([-0.0]))).tobytes() == \
         np.float64(np.add.reduce(np.array([-0.0]))).tobytes()
 
 
@@ -624,31 +625,31 @@ def test_compiled_encoder_from_the_table(monkeypatch, analysis_pieces):
             return str(exc)
     for p in analysis_pieces:
         n = p.notes
-        got = outcome(smf._smf_accel.table_group_events, np.ascontiguousarray(n))
+        got = outcome(accel.module.table_group_events, np.ascontiguousarray(n))
         if got is None:
             assert not (n["end"] > n["start"]).all()
             continue
         cols = [n["track"].astype(np.int64) * 16 + n["channel"]] + \
             [np.ascontiguousarray(n[f].astype(np.int64))
              for f in ("start", "end", "pitch", "velocity", "program")]
-        assert got == outcome(smf._smf_accel.group_events, *cols)
+        assert got == outcome(accel.module.group_events, *cols)
 
 
 def test_compiled_analyses_hand_back_what_numpy_treats_otherwise():
-    from pipeline.midi.piece import compiled_analyses
+    from pipeline.midi.accel import compiled_analyses
     p = smf.decode(random_midi(2, n_notes=200, n_tracks=3))
-    accel = smf._smf_accel
-    assert (compiled_analyses(p.notes) is accel) == smf.USE_ACCEL
+    mod = accel.module
+    assert (compiled_analyses(p.notes) is mod) == accel.USE_ACCEL
     shuffled = p.notes[np.random.default_rng(1).permutation(len(p.notes))]
     if (np.diff(shuffled["start"][shuffled["channel"] != 9]) < 0).any():
-        assert accel.meter_accents(shuffled, 480.0, (6, 12), 144) is None
-        assert accel.pc_histogram(shuffled, 480.0, 1.0, 2.0, 4.0) is None
+        assert mod.meter_accents(shuffled, 480.0, (6, 12), 144) is None
+        assert mod.pc_histogram(shuffled, 480.0, 1.0, 2.0, 4.0) is None
     bad = p.notes.copy()
     bad["start_s"][0] = np.nan
-    assert accel.note_stats(bad) is None
+    assert mod.note_stats(bad) is None
     zero = p.notes.copy()
     zero["end"][0] = zero["start"][0]
-    assert accel.table_group_events(zero) is None
+    assert mod.table_group_events(zero) is None
     assert compiled_analyses(p.notes[::2]) is None
 
 
@@ -661,11 +662,11 @@ def test_compiled_minhash_equals_similarity_minhash():
         sh = np.unique(rng.integers(0, 2 ** 64, size, dtype=np.uint64))
         for num_perm, seed in ((128, 1), (64, 9), (8, 3)):
             a, b = permutations(num_perm, seed)
-            got = np.frombuffer(smf._smf_accel.minhash32(sh, a, b), dtype=np.uint32)
+            got = np.frombuffer(accel.module.minhash32(sh, a, b), dtype=np.uint32)
             assert got.tobytes() == minhash(sh, num_perm, seed, compiled=False).tobytes(), (size, num_perm)
             assert got.tobytes() == minhash(sh, num_perm, seed).tobytes()  # what the stages call
     ref = MinHash(num_perm=128, seed=1, hashfunc=int)  # datasketch affine32, identity hash
     ref.update_batch([int(v) for v in fold32(sh)])
     a, b = permutations(128, 1)
-    assert np.array_equal(np.frombuffer(smf._smf_accel.minhash32(sh, a, b), dtype=np.uint32),
+    assert np.array_equal(np.frombuffer(accel.module.minhash32(sh, a, b), dtype=np.uint32),
                           ref.digest())

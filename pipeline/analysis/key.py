@@ -32,7 +32,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece
 
 # ---------------------------------------------------------------------------------------------
 # Profile tables: name -> (major[12], minor[12]), index 0 = tonic, ascending semitones.

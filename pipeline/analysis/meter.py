@@ -32,7 +32,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece
 from . import meter_weights as _weights
 
 #: Grid resolution of the onset function, in bins per quarter note.

@@ -42,7 +42,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece
 
 _M64 = np.uint64(0xFFFFFFFFFFFFFFFF)
 _MIX1 = np.uint64(0xFF51AFD7ED558CCD)

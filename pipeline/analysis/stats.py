@@ -39,7 +39,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece
 
 #: The measures ``piece_stats`` returns, in the order the README lists them.
 MEASURES = ("duration_s", "notes", "notes_per_s", "pitches", "max_polyphony", "mean_polyphony",

@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, compiled_analyses
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL
 
 DIRECTIONS = ("nearest", "up", "down")
 

@@ -13,9 +13,9 @@ messages: where the Python loop would raise, it gives up and ``_read_track`` re-
 and raises the exact ``DecodeError``. ``MIDISIFT_PURE_PYTHON=1`` in the environment (read at
 import) forces the pure-Python path, for the decoder and the encoder's group tracks alike;
 ``decode(..., accelerated=False)`` (or ``True``) picks a path per call, so tests compare both in
-one process; ``HAVE_ACCEL`` says whether the extension is built, ``USE_ACCEL`` which path is
+one process; ``accel.HAVE_ACCEL`` says whether the extension is built, ``accel.USE_ACCEL`` which path is
 the default. tests/test_smf_accel.py holds both paths to the same ``Piece`` and errors.
-``USE_ACCEL`` also switches the compiled per-file analyses (``score.compiled_analyses``: key
+``accel.USE_ACCEL`` also switches the compiled per-file analyses (``accel.compiled_analyses``: key
 histogram, meter accents, filter measures, shingles, content hash, transposed tables), each
 equal bit for bit to its numpy formulation, which stays the specification.
 
@@ -67,34 +67,25 @@ work done before the check is bounded by ``max_bytes``).
 """
 from __future__ import annotations
 
-import os
+
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import DecodeError
+from . import accel
 from .piece import (CONTROL_DTYPE, DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, NOTE_DTYPE, TEXT_METAS,
                     TEMPO_DTYPE, Piece, ticks_to_seconds)
 
-try:
-    from . import _smf_accel
-except ImportError:  # not built (no C compiler at install time): the pure-Python loop only
-    _smf_accel = None
+__all__ = ["decode", "decode_file", "REPAIRS", "DEFAULT_LIMITS", "describe_repairs"]
 
-__all__ = ["decode", "decode_file", "REPAIRS", "DEFAULT_LIMITS", "describe_repairs",
-           "HAVE_ACCEL", "USE_ACCEL"]
-
-#: The compiled track loop (pipeline/midi/_smf_accel.c) is importable.
-HAVE_ACCEL: bool = _smf_accel is not None
-#: The record layout ``_smf_accel.note_table`` writes (packed, native): NOTE_DTYPE as it is.
+#: The record layout ``accel.module.note_table`` writes (packed, native): NOTE_DTYPE as it is.
 _C_NOTE_LAYOUT: bool = NOTE_DTYPE.itemsize == 42 and all(
     NOTE_DTYPE.fields[name][1] == off and NOTE_DTYPE.fields[name][0] == np.dtype(kind)
     for name, off, kind in (("start", 0, np.int64), ("end", 8, np.int64), ("start_s", 16, np.float64),
                             ("end_s", 24, np.float64), ("pitch", 32, np.int16),
                             ("velocity", 34, np.int16), ("channel", 36, np.int16),
                             ("program", 38, np.int16), ("track", 40, np.int16)))
-#: ``decode`` uses it by default; ``MIDISIFT_PURE_PYTHON=1`` (read at import) turns it off.
-USE_ACCEL: bool = HAVE_ACCEL and os.environ.get("MIDISIFT_PURE_PYTHON", "") in ("", "0")
 
 #: Repair name -> (what it means, how the sentence reads with a count ``{n}``; ``{s}`` is a
 #: plural "s").
@@ -183,12 +174,12 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
 
     Raises ``DecodeError`` with code ``not_midi``, ``bad_chunk``, ``truncated``, ``bad_event``,
     ``unsupported_format`` or ``too_large``; ``offset`` is the absolute byte offset in ``data``.
-    ``accelerated``: None uses ``USE_ACCEL``; True the compiled track loop (ValueError when it
+    ``accelerated``: None uses ``accel.USE_ACCEL``; True the compiled track loop (ValueError when it
     is not built); False the pure-Python loop. Both give the same ``Piece`` and errors.
     """
     if accelerated is None:
-        accelerated = USE_ACCEL
-    elif accelerated and not HAVE_ACCEL:
+        accelerated = accel.USE_ACCEL
+    elif accelerated and not accel.HAVE_ACCEL:
         raise ValueError("accelerated=True, but pipeline.midi._smf_accel is not built (no C compiler "
                          "when midisift was installed?); reinstall with a compiler or pass False")
     n_all = len(data)
@@ -303,7 +294,7 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
         base = pos + 8
         pos = base + clen
         if accelerated:
-            got = _smf_accel.read_track(data, base, clen, ti)
+            got = accel.module.read_track(data, base, clen, ti)
             if got is None:  # the Python loop raises the exact DecodeError
                 got = _read_track_alone(data, base, clen, ti, pos == end, source)
             tick, eot, name, text, n_ev, z, h, u, nb, t_ev, m_ev, k_ev, cb, x_ev = got
@@ -369,7 +360,7 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
     else:
         tempo_arr = _tempo_map(tempos)
     if accelerated and _C_NOTE_LAYOUT:  # sorted table and tempo-map seconds built in C
-        buf = _smf_accel.note_table(chunks, chunk_tracks, None if smpte else tempo_arr.tobytes(),
+        buf = accel.module.note_table(chunks, chunk_tracks, None if smpte else tempo_arr.tobytes(),
                                     tpb)
         notes = np.frombuffer(buf, dtype=NOTE_DTYPE) if buf else np.zeros(0, dtype=NOTE_DTYPE)
         if smpte and len(notes):

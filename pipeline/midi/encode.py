@@ -19,7 +19,7 @@ from their exact seconds. Limits: overlapping notes of one pitch and channel in 
 be told apart in MIDI; they read back under the decoder's stacking policy (see pipeline.midi.decode).
 
 The group tracks' event bytes come from the compiled ``_smf_accel.group_events`` when it is
-built and ``pipeline.midi.decode.USE_ACCEL`` is on (``MIDISIFT_PURE_PYTHON=1`` turns both off), else
+built and ``pipeline.midi.accel.USE_ACCEL`` is on (``MIDISIFT_PURE_PYTHON=1`` turns both off), else
 from the numpy ``_all_group_events``; the bytes are identical (tests/test_smf_accel.py). A
 contiguous note table whose notes all end after they start goes to the compiled code whole
 (``table_group_events``: the same columns taken in C).
@@ -29,8 +29,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import decode as smf
-from .piece import CONTROL_DTYPE, DEFAULT_TEMPO, Piece, compiled_analyses
+
+from . import accel
+from .accel import compiled_analyses
+from .piece import CONTROL_DTYPE, DEFAULT_TEMPO, Piece
 
 __all__ = ["encode", "SMPTE_TICKS_PER_BEAT"]
 
@@ -78,10 +80,10 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
            accelerated: bool | None = None) -> bytes:
     """The piece as a normalized format-1 SMF; ``notes`` replaces its note table (e.g.
     transposed notes). The same input always gives the same bytes. ``accelerated`` as in
-    ``smf.decode``: None follows ``smf.USE_ACCEL``; both paths give the same bytes."""
+    ``smf.decode``: None follows ``accel.USE_ACCEL``; both paths give the same bytes."""
     if accelerated is None:
-        accelerated = smf.USE_ACCEL
-    elif accelerated and not smf.HAVE_ACCEL:
+        accelerated = accel.USE_ACCEL
+    elif accelerated and not accel.HAVE_ACCEL:
         raise ValueError("accelerated=True, but pipeline.midi._smf_accel is not built; pass False")
     notes = piece.notes if notes is None else notes
     if piece.smpte:
@@ -93,11 +95,11 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
     bodies = None  # the group tracks' event bytes, straight from the tables when compiled
     deferred = None  # their error, raised where the group tracks are made (after the conductor)
     if accelerated and not piece.smpte and len(notes) and ctl.dtype == CONTROL_DTYPE:
-        accel = compiled_analyses(notes)
-        if accel is not None:  # None back: a note that does not end after it starts
+        compiled = compiled_analyses(notes)
+        if compiled is not None:  # None back: a note that does not end after it starts
             try:
-                bodies = (accel.table_group_events(notes, np.ascontiguousarray(ctl)) if len(ctl)
-                          else accel.table_group_events(notes))
+                bodies = (compiled.table_group_events(notes, np.ascontiguousarray(ctl)) if len(ctl)
+                          else compiled.table_group_events(notes))
             except ValueError as exc:
                 deferred = exc
     extra: tuple = ()  # the other channel events as columns (group, tick, message), sorted
@@ -154,7 +156,7 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
         if bodies is None:
             tr = notes["track"].astype(np.int64)
             group = tr * 16 + notes["channel"].astype(np.int64)
-            group_events = smf._smf_accel.group_events if accelerated else _all_group_events
+            group_events = accel.module.group_events if accelerated else _all_group_events
             bodies = group_events(group, np.ascontiguousarray(starts), np.ascontiguousarray(ends),
                                   notes["pitch"].astype(np.int64),
                                   notes["velocity"].astype(np.int64),

@@ -11,7 +11,6 @@ beats are nominal.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
@@ -109,47 +108,3 @@ def sort_notes(notes: np.ndarray) -> np.ndarray:
     """Notes in the canonical order: start, pitch, track, channel, end."""
     order = np.lexsort((notes["end"], notes["channel"], notes["track"], notes["pitch"], notes["start"]))
     return notes[order]
-
-
-_SMF: Any = None  # pipeline.midi.decode, imported on first use (it imports this module)
-
-
-def compiled_analyses(notes: np.ndarray) -> Any:
-    """The compiled module whose per-file analyses may run on ``notes`` (a C-contiguous
-    NOTE_DTYPE table, the compiled path on: ``pipeline.midi.decode.USE_ACCEL``), else None. The numpy
-    formulations stay the specification; the compiled ones return None where those take a
-    general path, and the caller then runs them."""
-    global _SMF
-    if _SMF is None:
-        from . import decode as smf
-        _SMF = smf
-    if not _SMF.USE_ACCEL or notes.dtype != NOTE_DTYPE or not notes.flags.c_contiguous:
-        return None
-    mod = _SMF._smf_accel
-    if _CHECKED[0] is not mod:  # a build from before the analyses were compiled has none
-        _CHECKED[:] = [mod, all(hasattr(mod, f) for f in _ANALYSES) and _sums_follow_numpy(mod)]
-    return mod if _CHECKED[1] else None
-
-
-def _sums_follow_numpy(mod: Any) -> bool:
-    """Make the compiled sums follow this numpy's ``np.add.reduce``, bit for bit: numpy 2.4
-    sums a long contiguous array in one pairwise pass, numpy 2.2 in chunks of its 8192-value
-    buffer. The chunking under which probe arrays sum alike is set in the module; when none
-    does, the compiled analyses are not used (the numpy code runs)."""
-    if not hasattr(mod, "set_reduce_chunk"):
-        return False
-    rng = np.random.default_rng(20261202)
-    probes = [rng.standard_normal(n) * 10.0 ** rng.integers(-6, 6, n) for n in (8193, 16385, 20001, 65536)]
-    for chunk in (0, 8192):
-        mod.set_reduce_chunk(chunk)
-        if all(np.float64(mod.add_reduce(p)).tobytes() == np.float64(np.add.reduce(p)).tobytes()
-               for p in probes):
-            return True
-    mod.set_reduce_chunk(0)
-    return False
-
-
-#: The compiled analyses the modules above call (pipeline/midi/_smf_accel.c).
-_ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "voice_shingles",
-             "content_rows", "shift_sort", "fold_count", "table_group_events")
-_CHECKED: list = [None, False]  # (the module last checked, whether it has them all)

@@ -28,6 +28,7 @@ import numpy as np
 
 from ..analysis.shingles import LEAD_LIMIT, ShingleSpec, content_hash, fmix64, shingle_hashes
 from ..store.ledger import load_arrays
+from ..midi.accel import kernel as compiled_kernel
 from ..midi.piece import Piece
 
 _U32_MAX = np.uint32(0xFFFFFFFF)
@@ -87,7 +88,7 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1, *,
     a, b = permutations(num_perm, seed)
     if len(shingles) == 0:
         return np.full(num_perm, _U32_MAX, dtype=np.uint32)
-    compiled = _compiled("minhash32") if compiled else None
+    compiled = compiled_kernel("minhash32") if compiled else None
     if compiled is not None:
         return np.frombuffer(compiled(np.ascontiguousarray(shingles, dtype=np.uint64), a, b),
                              dtype=np.uint32).copy()
@@ -102,18 +103,6 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1, *,
         table = np.multiply.outer(a, h)
         table += b[:, None]
         return table.min(axis=1)
-
-
-_COMPILED: dict[str, Any] = {}
-
-
-def _compiled(name: str) -> Any:
-    """The kernel ``_smf_accel.<name>`` when the compiled path is on (``pipeline.midi.decode.USE_ACCEL``)
-    and the build has it, else None (the numpy formulations here are the specification)."""
-    if name not in _COMPILED:
-        from ..midi import decode as smf
-        _COMPILED[name] = getattr(smf._smf_accel, name, None) if smf.USE_ACCEL else None
-    return _COMPILED[name]
 
 
 #: Shingle count from which ``minhash`` lays its table out one row per permutation.
@@ -258,7 +247,7 @@ def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
 def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size_ratio: float,
                   cap: int, compiled: bool, min_contained: int = 0) -> np.ndarray:
     """``_measure`` of many pairs: counts in one compiled call (or ``overlap_counts``)."""
-    kernel = _compiled("overlap_counts") if compiled else None
+    kernel = compiled_kernel("overlap_counts") if compiled else None
     if kernel is not None:
         counts = np.frombuffer(kernel(sets, i, j, int(cap)), dtype=np.int64).reshape(-1, 3)
     else:
@@ -507,7 +496,7 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
     and split each band every stored signature; 10,000 signatures with 100 new took 42 ms in
     numpy and 12 ms in the kernel. With many new rows numpy's sort is faster (57 vs 87 ms)."""
     few_new = int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
-    kernel = _compiled("band_pair_codes") if compiled and few_new else None
+    kernel = compiled_kernel("band_pair_codes") if compiled and few_new else None
     if kernel is not None:
         sig = np.ascontiguousarray(sig, dtype=np.uint32)
         new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)

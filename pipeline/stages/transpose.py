@@ -13,7 +13,8 @@ import numpy as np
 from ..analysis import key as keymod
 from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, shift_notes,
                                   smallest_shift)
-from ..midi.piece import DRUM_CHANNEL, Piece, compiled_analyses, sort_notes
+from ..midi.accel import compiled_analyses
+from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
 from .base import FileContext, Option, Stage, StageResult, register
 from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
 

@@ -584,7 +584,7 @@ class Bench:
         paths = midi_files(folder)
         d1 = decode_only(paths, 1)
         dn = decode_only(paths, self.workers_all)
-        from ..midi.decode import HAVE_ACCEL
+        from ..midi.accel import HAVE_ACCEL
         d1_pure = decode_only(paths, 1, accelerated=False) if HAVE_ACCEL else d1
         self.log(f"[{cls}] decode-only: {d1['files_per_s']} files/s (1), {dn['files_per_s']} ({self.workers_all})")
         sample = paths[:: max(1, len(paths) // 300)]
