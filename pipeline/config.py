@@ -242,7 +242,7 @@ def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig
         options, found = stage_option_problems(name, opts, path)
         problems.extend(found)
         stages.append(StageConfig(name, options, i))
-    if stages and stages[0].name != "validate":
+    if stages and stages[0].name in known_stages() and not stage_class(stages[0].name).reads_bytes:
         problems.append(ConfigError(f"the first stage must be 'validate' (it decodes the files), got "
                                     f"'{stages[0].name}'", location=f"stages[{stages[0].index}]"))
     if "split" in seen and stages[-1].name != "split":

@@ -196,3 +196,12 @@ def test_empty_config_file_says_it_is_empty(tmp_path):
     with pytest.raises(ConfigError, match="the config file is empty") as exc:
         load_config(p)
     assert exc.value.file == str(p)
+
+
+def test_the_tools_default_config_is_configs_default_yaml():
+    # bench, fuzz and the split benchmark keep the default config's text once (they also run
+    # from an installed package, without configs/); it must be the shipped file to the byte
+    from pipeline.tools.defaults import DEFAULT_CONFIG, default_stages
+    assert (ROOT / "configs" / "default.yaml").read_text(encoding="utf-8") == DEFAULT_CONFIG
+    assert [next(iter(s)) for s in default_stages()] == \
+        ["validate", "transpose", "key_meter", "dedup", "filter", "split"]

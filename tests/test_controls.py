@@ -24,9 +24,10 @@ from pipeline.midi import accel
 from pipeline.midi import decode as smf
 from pipeline.midi.encode import encode
 from pipeline.outputs.render import render
-from pipeline.outputs.render import shift_controls
+from pipeline.analysis.transpose import shift_controls
 from pipeline.outputs.files import staged_path
-from pipeline.engine.runner import StagePlan
+from pipeline.engine.worker import output_variants
+from pipeline.stages.transpose import Transpose
 from pipeline.midi.piece import CONTROL_DTYPE
 
 CHANNEL_TYPES = ("control_change", "pitchwheel", "aftertouch", "polytouch", "program_change")
@@ -128,12 +129,14 @@ def streams(data: bytes, types=CHANNEL_TYPES) -> dict[tuple, list]:
 
 
 def render_outputs(tmp_path: Path, data: bytes, options: dict, values: dict) -> dict[str, bytes]:
-    """The normalized outputs of one source, as the worker renders them (outputs.render)."""
+    """The normalized outputs of one source, as the worker renders them (the transpose stage's
+    output variants, encoded by outputs.render)."""
     piece = smf.decode(data)
-    plan = StagePlan("transpose", options, "file", True)
+    stage = Transpose(options)
+    variants = output_variants([stage], piece, {"transpose": {"values": values}})
     staging = str(tmp_path / "staging")
     sha, fp = "ab" * 32, "cd" * 8
-    suffixes = render(piece, [plan], values, staging, sha, fp)
+    suffixes = render(variants, staging, sha, fp)
     return {s: Path(staged_path(staging, sha, fp, s)).read_bytes() for s in suffixes}
 
 
@@ -316,7 +319,7 @@ def test_compiled_encoder_with_controls_equals_numpy():
 
 @pytest.mark.parametrize("notes_only", [False, True])
 def test_a_run_writes_them_unless_notes_only(tmp_path, notes_only):
-    # the option goes from the config to the worker that renders (config -> StagePlan -> render)
+    # the option goes from the config to the worker that renders (config -> StagePlan -> the stage's output variants)
     from pipeline.config import load_config
     from pipeline.engine.runner import Runner
     (tmp_path / "in").mkdir()

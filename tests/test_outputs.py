@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.outputs.render import shift_key_signatures
+from pipeline.analysis.transpose import shift_key_signatures
 from pipeline.outputs.files import write_atomic
 from pipeline.midi.piece import KEY_DTYPE
 

@@ -168,13 +168,13 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     records, byte-identical copies included)."""
     import json
 
-    from pipeline.engine.runner import Runner
+    from pipeline.engine.walk import StageWalk
     corpus, base = first
     dest = tmp_path / "trail"
     shutil.copytree(base, dest)
     walks = []
-    real = Runner._walk
-    monkeypatch.setattr(Runner, "_walk", lambda self, *a: walks.append(real(self, *a)) or walks[-1])
+    real = StageWalk.run
+    monkeypatch.setattr(StageWalk, "run", lambda self, *a: walks.append(real(self, *a)) or walks[-1])
     _run(corpus, dest)
     walk = walks[0]
     rows = [json.loads(line) for line in (dest / "manifest.jsonl").read_text().splitlines()]

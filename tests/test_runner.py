@@ -315,13 +315,13 @@ def test_split_links_are_incremental_and_equal_a_full_search(tmp_path):
 
 
 def test_tasks_travel_to_workers_unchanged():
-    """A task survives pickling field for field, whether its plans carry cached verdicts (sent
-    one by one) or not (the shared plan list, sent as plain tuples made once)."""
+    """A task survives pickling field for field, whether its plans carry cached verdicts or
+    not (the plan objects shared by many tasks)."""
     import pickle
     from multiprocessing.reduction import ForkingPickler
 
     from pipeline.store.records import Compactor
-    from pipeline.engine.runner import FileTask, StagePlan
+    from pipeline.engine.worker import FileTask, StagePlan
 
     cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output="/tmp/x", workers=1)
     runner = Runner(cfg, quiet=True)
@@ -334,7 +334,7 @@ def test_tasks_travel_to_workers_unchanged():
                 [(p.name, p.options, p.kind, p.compute, p.cached, p.fingerprint) for p in task.stages]]
 
     for plans in (shared, mixed, shared):
-        for n in range(2):  # the second task reuses the tuples made for the first
+        for n in range(2):
             task = FileTask("ab" * 32, f"/in/{n}.mid", f"{n}.mid", list(plans), "/out/.staging", "fp16")
             back = pickle.loads(ForkingPickler.dumps(task))
             assert fields(back) == fields(task)

@@ -6,6 +6,8 @@ class, so the transposed pitch-class histogram is still an exact rotation) and c
 """
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from ..midi.accel import compiled_analyses
@@ -107,3 +109,28 @@ def fold_count(notes: np.ndarray, semitones: int) -> int:
         return 0  # even every note shifted (drums too) stays in 0..127: the usual case
     p = pitch[notes["channel"] != DRUM_CHANNEL].astype(np.int64) + s
     return int(np.count_nonzero((p > 127) | (p < 0)))
+
+
+def shift_key_signatures(keys: Any, semitones: int) -> Any:
+    """Key-signature events of a piece transposed by ``semitones``, so a normalized file declares
+    the key it is now in. A signature's major tonic is ``7 * sharps`` (mod 12) on the circle of
+    fifths (minor shares its relative major's signature), so the new signature is
+    ``sharps + 7 * semitones`` (mod 12), written in the range -5..+6 (F# major, not Gb)."""
+    out = keys.copy()
+    if len(out):
+        s = (out["sharps"].astype(int) + 7 * semitones) % 12
+        out["sharps"] = np.where(s > 6, s - 12, s)
+    return out
+
+
+def shift_controls(controls: Any, semitones: int) -> Any:
+    """Channel events of a piece transposed by ``semitones``: only polyphonic aftertouch
+    carries a key number (data1), moved as its notes are on pitched channels (beyond 0..127
+    folded back by octaves, as ``shift_notes`` folds notes); controller
+    values, pitch bends and the drum channel stay as they are."""
+    if not semitones or not len(controls) or not (controls["kind"] == 0xA0).any():
+        return controls  # the usual case: no polyphonic aftertouch
+    poly = (controls["kind"] == 0xA0) & (controls["channel"] != DRUM_CHANNEL)
+    out = controls.copy()
+    out["data1"][poly] = fold_octaves(out["data1"][poly].astype(np.int64) + int(semitones))
+    return out

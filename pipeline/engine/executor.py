@@ -34,6 +34,7 @@ The results are the same for 1 and N workers: each task is computed alone, in a 
 from __future__ import annotations
 
 import gc
+import math
 import multiprocessing as mp
 import os
 import select
@@ -61,10 +62,16 @@ _GRACE_S = 2.0
 
 @dataclass(frozen=True)
 class Limits:
-    """Per-task limits: wall-clock seconds and memory above the worker's size at start."""
+    """Per-task limits: wall-clock seconds and memory (MB) above the worker's size at start;
+    the defaults set none. ``owner`` names where a user sets them (a stage), for the sentences."""
 
-    timeout_s: float = 60.0
-    max_memory_mb: int = 2048
+    timeout_s: float = math.inf
+    max_memory_mb: int | None = None
+    owner: str = ""
+
+    def option(self, name: str) -> str:
+        """How the config names one of the limits, e.g. ``validate.timeout_s``."""
+        return f"{self.owner}.{name}" if self.owner else name
 
 
 @dataclass(frozen=True)
@@ -284,7 +291,8 @@ def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits
     if os.getppid() != parent_pid:  # the parent died before PDEATHSIG was set
         os._exit(0)
     faults = parse_fault_hook(os.environ.get(FAULT_ENV, ""))
-    _set_memory_limit(limits.max_memory_mb)
+    if limits.max_memory_mb is not None:
+        _set_memory_limit(limits.max_memory_mb)
     while True:
         try:
             msg = conn.recv()
@@ -430,7 +438,8 @@ class _Pool:
             now = time.monotonic()
             busy = [w for w in self.workers if w.queue]
             nearest = min(w.started + lim.timeout_s for w in busy) - now
-            ready = {key.data for key, _ in self.selector.select(max(0.0, nearest))}
+            wait = None if math.isinf(nearest) else max(0.0, nearest)
+            ready = {key.data for key, _ in self.selector.select(wait)}
             for w in [w for w in self.workers if w in ready]:
                 if not w.queue:  # nothing asked of it: only its death can wake us; replace it
                     if not w.proc.is_alive():
@@ -448,7 +457,7 @@ class _Pool:
                     remaining -= 1
                     yield task, Fault("timeout", f"processing took longer than the per-file limit "
                                       f"timeout_s = {lim.timeout_s:g} s, so the worker was stopped; "
-                                      "raise validate.timeout_s or rerun with --retry-failed")
+                                      f"raise {lim.option('timeout_s')} or rerun with --retry-failed")
 
     def _drain(self, w: _Worker, todo: deque) -> Iterator[tuple[Any, Any]]:
         """Read every reply a worker has sent; handle its death. Yields (task, value)."""
@@ -477,7 +486,7 @@ class _Pool:
                 where = f" (at {payload})" if payload else ""
                 yield task, Fault("too_large", f"processing needed more memory than the per-file "
                                   f"limit max_memory_mb = {self.limits.max_memory_mb} MB{where}; "
-                                  "raise validate.max_memory_mb if such files are wanted")
+                                  f"raise {self.limits.option('max_memory_mb')} if such files are wanted")
                 return
             elif kind == "error":
                 yield task, Fault("decoder_crash", f"processing raised {payload}; this is a bug "

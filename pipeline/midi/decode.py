@@ -167,8 +167,8 @@ def _unwrap_riff(data: bytes, source: str) -> tuple[int, int]:
                       "MIDI file; it is probably damaged", file=source, offset=12)
 
 
-def decode(data: bytes, *, source: str = "", max_bytes: int = 16_000_000,
-           max_events: int = 2_000_000, max_tracks: int = 1024,
+def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["max_bytes"],
+           max_events: int = DEFAULT_LIMITS["max_events"], max_tracks: int = DEFAULT_LIMITS["max_tracks"],
            accelerated: bool | None = None) -> Piece:
     """Decode SMF bytes into a ``Piece``.
 

@@ -166,6 +166,8 @@ class Placed:
     main: dict[str, str] = field(default_factory=dict)  # sha -> main output path
     all_of: dict[str, list[str]] = field(default_factory=dict)  # sha -> every output path
     part_of: dict[str, str] = field(default_factory=dict)  # sha -> part, for every kept content
+    #: every output now in place: path -> (sha, output fingerprint), as the ledger records it
+    recorded: dict[str, tuple[str, str]] = field(default_factory=dict)
 
 
 def _suffix_of(rel: str) -> str:
@@ -173,10 +175,10 @@ def _suffix_of(rel: str) -> str:
     return name[16:-4]
 
 
-def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: dict[str, list[str]],
-          fp: str, recorded: dict[str, tuple[str, str]]) -> Placed:
+def place(out_dir: Path, walk: Any, rep: dict[str, str], existing: dict[str, list[str]],
+          fp: str) -> Placed:
     """Move staged/existing normalized files to ``midi/<part>/`` and drop everything else;
-    ``recorded`` is the ledger's table of outputs as the run found it."""
+    ``Placed.recorded`` lists what is now in place, for the runner to record."""
     placed = Placed()
     rows = []
     moved: list[str] = []
@@ -220,11 +222,7 @@ def place(ledger: Any, out_dir: Path, walk: Any, rep: dict[str, str], existing: 
     if midi.is_dir():
         _prune(midi, "midi", keep)
     shutil.rmtree(out_dir / STAGING, ignore_errors=True)
-    wanted = {rel: (sha, ofp) for rel, sha, ofp in rows}
-    if recorded != wanted:  # write only what changed (a rerun adds a few outputs to thousands)
-        with ledger.batch():
-            ledger.forget_outputs([rel for rel in recorded if rel not in wanted])
-            ledger.put_outputs([(rel, *v) for rel, v in wanted.items() if recorded.get(rel) != v])
+    placed.recorded = {rel: (sha, ofp) for rel, sha, ofp in rows}
     for part in placed.parts:
         placed.parts[part].sort()
     return placed

@@ -78,10 +78,10 @@ class RowReuse:
         """Sources of the last run that this run does not have."""
         return [s for s in self.old if s not in present]
 
-    def save(self, ledger: Any, rows: int) -> None:
-        """Record this run's base key, row count and manifest stat (in the run's last
-        transaction, after the manifest is written)."""
-        ledger.put_state(STATE, {"base": self.base, "rows": rows, "manifest": _stat(self.manifest)})
+    def state_of(self, rows: int) -> dict[str, Any]:
+        """This run's base key, row count and manifest stat, for the ledger's ``STATE`` entry
+        (recorded in the run's last transaction, after the manifest is written)."""
+        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest)}
 
 
 def line_prefix(f: Any) -> str:

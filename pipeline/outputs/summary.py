@@ -10,10 +10,13 @@ from ..store.codec import json_default
 from .files import DEFAULT_PART, Placed, write_atomic
 
 def configured_parts(stages: list) -> list[str]:
-    """The parts a run writes, in the config's order: the split's ratios, or the one
-    ``DEFAULT_PART`` without a split stage."""
-    split = next((s for s in stages if s.name == "split"), None)
-    return list(split.opts.get("ratios") or ()) if split is not None else [DEFAULT_PART]
+    """The parts a run writes, in the config's order: those of the stage that assigns parts
+    (``Stage.parts``: the split's ratios), or the one ``DEFAULT_PART`` without one."""
+    for s in stages:
+        parts = s.parts()
+        if parts is not None:
+            return parts
+    return [DEFAULT_PART]
 
 
 def run_warnings(files: int, kept: int, part_files: dict[str, int], parts: list[str]) -> list[str]:
@@ -40,19 +43,12 @@ def build_summary(tally: Any, walk: Any, stages: list, timings: dict, computed: 
     every_part = sorted({*configured, *tally.parts, *placed.parts})
     part_counts = {p: tally.parts.get(p, 0) for p in every_part}  # an empty part counts 0
     total_kept = max(1, tally.kept)
-    split_stage = next((s for s in stages if s.name == "split"), None)
     split_info = {"files": part_counts,
                   "outputs": {p: len(placed.parts.get(p, ())) for p in every_part},
                   "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
-    if split_stage is not None:
-        split_info["targets"] = split_stage.opts.get("ratios")
-        # the parts in the config's order (summary.json is written with sorted keys)
-        split_info["part_order"] = list(split_stage.opts.get("ratios") or ())
-        split_info.update(walk.states.get("split", {}).get("summary", {}) and
-                          {"stage": walk.states["split"]["summary"]})
     counts = {"files": tally.files, "kept": tally.kept, "dropped": tally.files - tally.kept,
               "contents": len(tally.contents), "computed": computed, "reused": reused}
-    return {
+    summary = {
         "counts": counts,
         "warnings": run_warnings(tally.files, tally.kept, part_counts, configured),
         "stages": per_stage,
@@ -63,6 +59,9 @@ def build_summary(tally: Any, walk: Any, stages: list, timings: dict, computed: 
         "options": {s.name: s.opts for s in stages},
         "input": str(cfg.input), "output": str(cfg.output),
     }
+    for s in stages:
+        s.add_to_summary(summary, walk.states.get(s.name, {}))
+    return summary
 
 
 def write_summary(out_dir: Path, summary: dict, *, fsync: bool = True) -> None:

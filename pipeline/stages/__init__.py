@@ -1,20 +1,15 @@
-"""The stages, one module each. ``load_all()`` imports them, which registers them."""
+"""The stages, one module each; ``stage_class`` imports a stage's module on first use, which
+registers it."""
 from __future__ import annotations
 
 import importlib
 
-from .base import (REGISTRY, STAGE_NAMES, CorpusState, FileContext, Member, Option, Stage,
+from .base import (REGISTRY, CorpusState, FileContext, Member, Option, Stage,
                    StageResult, register)
 
 #: Module (under pipeline.stages) of each contract stage name.
 STAGE_MODULES = {"validate": "validate", "transpose": "transpose", "key_meter": "key_meter",
                  "dedup": "dedup", "filter": "filter", "split": "split"}
-
-
-def load_all() -> None:
-    """Import every stage module of the contract (each registers its class)."""
-    for name in STAGE_MODULES:
-        stage_class(name)
 
 
 def known_stages() -> list[str]:
@@ -32,5 +27,5 @@ def stage_class(name: str) -> type[Stage]:
         raise KeyError(name) from None
 
 
-__all__ = ["REGISTRY", "STAGE_NAMES", "CorpusState", "FileContext", "Member", "Option", "Stage",
-           "StageResult", "register", "load_all", "known_stages", "stage_class"]
+__all__ = ["REGISTRY", "CorpusState", "FileContext", "Member", "Option", "Stage",
+           "StageResult", "register", "known_stages", "stage_class"]

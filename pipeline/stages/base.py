@@ -17,7 +17,9 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import Any, Callable, ClassVar
+from typing import Any, Callable, ClassVar, NamedTuple
+
+import numpy as np
 
 
 from ..midi.piece import Piece
@@ -205,6 +207,59 @@ class Stage:
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:  # pragma: no cover
         raise NotImplementedError
 
+    # hooks the engine calls, so that it names no stage ----------------------------------------
+    #: The stage that reads each file's bytes and makes the piece (``read``); the config's
+    #: first stage must be one.
+    reads_bytes: ClassVar[bool] = False
+
+    def read(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
+        """Decode a file's bytes: the verdict, and the piece when kept (a reading stage)."""
+        raise NotImplementedError(f"stage {self.name} does not read files")
+
+    def read_limit(self) -> int:
+        """Most bytes of a file that ``read`` needs (a reading stage); the worker reads one more."""
+        raise NotImplementedError(f"stage {self.name} does not read files")
+
+    def worker_limits(self) -> dict[str, Any]:
+        """Per-file limits this stage imposes on the workers: ``timeout_s`` (seconds) and
+        ``max_memory_mb``, both options of this stage (faults are its drops)."""
+        return {}
+
+    #: Whether the stage's results change the normalized output files (``output_variants``);
+    #: its options fingerprint is then part of the output fingerprint.
+    shapes_output: ClassVar[bool] = False
+
+    def output_variants(self, piece: Piece, values: dict[str, Any],
+                        variants: list["Variant"]) -> list["Variant"]:
+        """The normalized outputs of a kept piece, given the earlier stages' ``variants`` and
+        this stage's recorded ``values`` for it."""
+        return variants
+
+    #: Whether the stage judges byte-identical copies of a file it saw: a copy's trail ends at
+    #: this stage with ``byte_copy_verdict`` (one verdict per content is stored, not per path).
+    judges_byte_copies: ClassVar[bool] = False
+
+    def byte_copy_verdict(self, rep_source: str, sha: str, rep_result: dict) -> dict:
+        """The verdict (a trail step) of a byte-identical copy of ``rep_source``, whose own
+        verdict at this stage is ``rep_result``."""
+        raise NotImplementedError
+
+    def parts(self) -> list[str] | None:
+        """The output parts this stage assigns kept files to, in the config's order, or None."""
+        return None
+
+    def add_to_summary(self, summary: dict[str, Any], saved: dict[str, Any]) -> None:
+        """Add this stage's own entries to summary.json (``saved``: its corpus state of the run)."""
+
+
+class Variant(NamedTuple):
+    """One normalized output of a piece: its file name suffix ("" for the main output, e.g.
+    ".t+3" for an augmentation copy), the piece to write and its note table."""
+
+    suffix: str
+    piece: Piece
+    notes: np.ndarray
+
 
 def options_fingerprint(name: str, version: int, opts: dict[str, Any]) -> str:
     """A stable 16-hex-digit hash of a stage's identity and options."""
@@ -221,8 +276,6 @@ def bind_stages(stages: list[Stage]) -> list[Stage]:
 
 REGISTRY: dict[str, type[Stage]] = {}
 
-#: The six stage names of the contract, in their usual order.
-STAGE_NAMES = ("validate", "transpose", "key_meter", "dedup", "filter", "split")
 
 
 def register(cls: type[Stage]) -> type[Stage]:
@@ -236,10 +289,6 @@ def register(cls: type[Stage]) -> type[Stage]:
 # Small option checkers: each returns an error sentence or None (STYLE: one checker per rule).
 def positive(value: float) -> str | None:
     return None if value > 0 else "must be greater than 0"
-
-
-def non_negative(value: float) -> str | None:
-    return None if value >= 0 else "must be 0 or greater"
 
 
 def unit_interval(value: float) -> str | None:

@@ -210,6 +210,24 @@ class Dedup(Stage):
     def _link_fingerprint(self) -> str:
         return options_fingerprint(self.name, self.version, {k: self.opts[k] for k in _LINK_OPTIONS})
 
+    judges_byte_copies = True
+
+    def byte_copy_verdict(self, rep_source: str, sha: str, rep_result: dict) -> dict:
+        """A byte-identical copy of a file that reached dedup: an exact duplicate of it when
+        dedup kept it; when dedup dropped it as the duplicate of another file, the same verdict
+        (same reason, ``duplicate_of`` and ``similarity``: the copy's own pair with that file is
+        the same bytes' pair)."""
+        vals = dict(rep_result.get("values", {}))
+        if not rep_result.get("kept", True):
+            return {"stage": self.name, "kept": False, "reason": rep_result.get("reason"),
+                    "detail": f"byte-identical copy of {sha[:16]} ({rep_source}), which dedup "
+                              f"dropped: {rep_result.get('detail')}", "values": vals,
+                    "thresholds": rep_result.get("thresholds", {})}
+        vals.update({"duplicate_of": sha[:16], "similarity": 1.0, "duplicate_kind": "bytes"})
+        return {"stage": self.name, "kept": False, "reason": "exact_duplicate",
+                "detail": f"byte-identical copy of {sha[:16]} ({rep_source}); sha256 equal",
+                "values": vals, "thresholds": rep_result.get("thresholds", {})}
+
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
         """Results for every member. With ``state.flags["previous_results"]`` (the last run's
         results by member id, given by the runner when it stored them), a cluster none of whose

@@ -211,6 +211,18 @@ class Split(Stage):
         freeze = self.opts["freeze"]
         return freeze if freeze in self.opts["ratios"] else None
 
+    def parts(self) -> list[str]:
+        return list(self.opts.get("ratios") or ())
+
+    def add_to_summary(self, summary: dict[str, Any], saved: dict[str, Any]) -> None:
+        """summary.json's ``split``: the target ratios, the parts in the config's order (the
+        file is written with sorted keys) and the stage's own counts (``split_summary``)."""
+        section = summary.setdefault("split", {})
+        section["targets"] = self.opts.get("ratios")
+        section["part_order"] = self.parts()
+        if saved.get("summary"):
+            section["stage"] = saved["summary"]
+
     def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
         saved = dict(state.previous.get("assignments", {}))

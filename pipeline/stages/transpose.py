@@ -6,16 +6,17 @@ the writer the shifted note tables: the normalized piece and one copy per ``augm
 """
 from __future__ import annotations
 
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
 
 from ..analysis import key as keymod
-from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, shift_notes,
-                                  smallest_shift)
+from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, shift_controls,
+                                  shift_key_signatures, shift_notes, smallest_shift)
 from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
-from .base import FileContext, Option, Stage, StageResult, register
+from .base import FileContext, Option, Stage, StageResult, Variant, register
 from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
 
 
@@ -171,4 +172,21 @@ class Transpose(Stage):
         for extra in values.get("augment") or []:
             total = shift + int(extra)
             out.append((augment_suffix(int(extra)), ordered(total), total))
+        return out
+
+    shapes_output = True
+
+    def output_variants(self, piece: Piece, values: dict, variants: list[Variant]) -> list[Variant]:
+        """The normalized piece and one copy per ``augment`` shift (``output_notes``); a
+        transposition moves only notes, the key numbers of polyphonic aftertouch on pitched
+        channels and key signatures. With ``notes_only`` the outputs drop the control,
+        pitch-bend, aftertouch and program-change events and the text-like metas."""
+        if self.opts["notes_only"]:
+            piece = replace(piece, controls=piece.controls[:0], texts=())
+        out = []
+        for suffix, notes, semitones in self.output_notes(piece, values):
+            shifted = piece if semitones == 0 else replace(
+                piece, key_signatures=shift_key_signatures(piece.key_signatures, semitones),
+                controls=shift_controls(piece.controls, semitones))
+            out.append(Variant(suffix, shifted, notes))
         return out

@@ -1,6 +1,6 @@
 """The ``validate`` stage: decode the file bytes and keep only files that are readable MIDI.
 
-The runner calls ``check(data, source)`` with the file bytes; it returns the verdict and the
+It is the reading stage (``Stage.read``): a worker calls ``read(data, source)`` with the file bytes; it returns the verdict and the
 decoded ``Piece`` (None when dropped). A ``DecodeError`` becomes a drop with its reason code
 (``not_midi``, ``truncated``, ``bad_chunk``, ``bad_event``, ``unsupported_format``,
 ``too_large``) and the decoder's sentence; a readable file without notes drops as ``no_notes``.
@@ -16,7 +16,7 @@ from typing import Any
 
 from ..errors import DecodeError
 from ..midi.piece import Piece
-from ..midi.decode import decode, describe_repairs
+from ..midi.decode import DEFAULT_LIMITS, decode, describe_repairs
 from .base import FileContext, Option, Stage, StageResult, positive, register
 
 
@@ -34,9 +34,11 @@ class Validate(Stage):
     doc = ("Decodes every file with the project's SMF reader and drops files that are not MIDI, "
            "cut off, damaged, of an unsupported format, over the size limits, or without notes.")
     options = (
-        Option("max_bytes", int, 16_000_000, "largest file size read, in bytes", positive),
-        Option("max_events", int, 2_000_000, "most MIDI events read from one file", positive),
-        Option("max_tracks", int, 1024, "most track chunks a file may declare", positive),
+        Option("max_bytes", int, DEFAULT_LIMITS["max_bytes"], "largest file size read, in bytes", positive),
+        Option("max_events", int, DEFAULT_LIMITS["max_events"], "most MIDI events read from one file",
+               positive),
+        Option("max_tracks", int, DEFAULT_LIMITS["max_tracks"], "most track chunks a file may declare",
+               positive),
         Option("allow_repairs", bool, True,
                "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
                "...); when false such files drop as needs_repair"),
@@ -49,7 +51,15 @@ class Validate(Stage):
                "that needs more is dropped as too_large and its worker replaced", positive),
     )
 
-    def check(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
+    reads_bytes = True
+
+    def read_limit(self) -> int:
+        return int(self.opts["max_bytes"])
+
+    def worker_limits(self) -> dict[str, Any]:
+        return {"timeout_s": float(self.opts["timeout_s"]), "max_memory_mb": int(self.opts["max_memory_mb"])}
+
+    def read(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
         """Decode ``data`` and judge it; returns the verdict and the piece (None if dropped)."""
         try:
             piece = decode(data, source=source, max_bytes=self.opts["max_bytes"],
@@ -64,7 +74,7 @@ class Validate(Stage):
         return result, (piece if result.kept else None)
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
-        """The verdict for an already-decoded piece (same as ``check`` gives after decoding)."""
+        """The verdict for an already-decoded piece (same as ``read`` gives after decoding)."""
         return self.judge(piece)
 
     def judge(self, piece: Piece) -> StageResult:

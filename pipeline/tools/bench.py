@@ -44,6 +44,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from ..errors import UsageError
+from .defaults import write_default_config
 from ..engine.executor import usable_cpus
 
 SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup")
@@ -314,22 +315,6 @@ def _timed_process(cmd: list[str], cwd: Path | None = None, timeout: float | Non
     return wall, {**mem.result(), **cpu}, out
 
 
-def default_config(scratch: Path) -> Path:
-    """The repository's configs/default.yaml (the default pipeline), or the same stages written
-    into the scratch folder when the package runs without its repository."""
-    repo = Path(__file__).resolve().parents[1] / "configs" / "default.yaml"
-    if repo.is_file():
-        return repo
-    path = scratch / "default.yaml"
-    path.write_text("input: in\noutput: out\nworkers: auto\nstages:\n"
-                    "  - validate:   {max_bytes: 16000000, max_events: 2000000}\n"
-                    "  - transpose:  {major_to: C, minor_to: A}\n  - key_meter:  {}\n"
-                    "  - dedup:      {}\n"
-                    "  - filter:     {min_seconds: 8, max_seconds: 1200, min_notes: 32}\n"
-                    "  - split:      {ratios: {train: 0.8, valid: 0.1, test: 0.1}, seed: 0}\n")
-    return path
-
-
 def run_pipeline(config: Path, inp: Path, out: Path, workers: str, fresh_output: bool = True,
                  timeout: float | None = None, memory_mb: int | None = None) -> dict[str, Any]:
     """One ``midisift run`` in its own process: wall time, memory, what the summary says.
@@ -407,47 +392,38 @@ def decode_only(paths: list[Path], workers: int, accelerated: bool | None = None
 
 def component_times(config: Path, paths: list[Path], scratch: Path) -> dict[str, float]:
     """CPU milliseconds per file of each step of the per-file path, in this process, with the
-    default config's stage objects: where a worker's time goes (decode once, analyses shared
-    through one ``FileContext`` per file as in the runner, then the normalized output encoded
-    and written). Files that do not decode count only in ``read+decode``."""
+    default config's stage objects: where a worker's time goes (the worker's own pass,
+    ``engine.worker.file_pass``: decode once, analyses shared through one ``FileContext`` per
+    file, then the normalized output encoded and written). Files that do not decode count only
+    in ``read+decode``."""
     from ..config import load_config
+    from ..engine.worker import file_pass, output_variants
     from ..outputs.render import render
-    from ..stages import FileContext
     from ..stages.base import bind_stages
-    from ..engine.runner import StagePlan
     cfg = load_config(config, input=str(scratch), output=str(scratch / "out"), workers=1)
     stages = bind_stages([sc.build() for sc in cfg.stages])
-    plans = [StagePlan(s.name, s.opts, s.kind, True) for s in stages]
     spent: dict[str, float] = {"read+decode": 0.0}
     staging = scratch / "component_staging"
     shutil.rmtree(staging, ignore_errors=True)
     staging.mkdir(parents=True)
     clock = time.process_time
-    for n, path in enumerate(paths):
+    reader = stages[0].name
+
+    def step(label: str, t0: float) -> None:
+        label = "read+decode" if label == reader else label
+        spent[label] = spent.get(label, 0.0) + clock() - t0
+
+    for path in paths:
         t = clock()
         data = path.read_bytes()
-        result, piece = stages[0].check(data, path.name)
         spent["read+decode"] += clock() - t
-        if piece is None:
+        done = file_pass(stages, data, path.name, step=step)
+        if not done.survived:
             continue
-        ctx = FileContext(piece, path.name, "")
-        tvals = None
-        for st in stages[1:]:
-            t = clock()
-            if st.kind == "corpus":
-                if not st.has_prepare():  # as the runner: the split may read dedup's arrays
-                    continue
-                st.prepare(piece, ctx)
-                label = f"{st.name}.prepare"
-            else:
-                r = st.process(piece, ctx)
-                label = st.name
-                if st.name == "transpose":
-                    tvals = r.values
-            spent[label] = spent.get(label, 0.0) + clock() - t
         t = clock()
         # a content-like id: staged files spread over subfolders by its first hex digits
-        render(piece, plans, tvals, str(staging), hashlib.sha256(path.name.encode()).hexdigest(), "bench000")
+        render(output_variants(stages, done.piece, done.results), str(staging),
+               hashlib.sha256(path.name.encode()).hexdigest(), "bench000")
         spent["encode+write output"] = spent.get("encode+write output", 0.0) + clock() - t
     shutil.rmtree(staging, ignore_errors=True)
     return {k: round(1000 * v / max(1, len(paths)), 3) for k, v in spent.items()}
@@ -562,7 +538,7 @@ class Bench:
         self.log = log
         self.results: dict[str, Any] = {}
         self.scratch.mkdir(parents=True, exist_ok=True)
-        self.config = default_config(self.scratch)
+        self.config = write_default_config(self.scratch)
         self.workers_all = usable_cpus()  # what ``workers: auto`` starts
 
     def corpus(self, cls: str) -> Path:

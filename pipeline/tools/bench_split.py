@@ -51,22 +51,17 @@ from typing import Any
 
 import yaml
 
-#: name -> stage list of the config (the default config's stages, changed as the name says).
-DEFAULT_STAGES: list[dict[str, Any]] = [
-    {"validate": {}}, {"transpose": {"major_to": "C", "minor_to": "A"}}, {"key_meter": {}},
-    {"dedup": {}}, {"filter": {"min_seconds": 8, "max_seconds": 1200, "min_notes": 32}},
-    {"split": {"ratios": {"train": 0.8, "valid": 0.1, "test": 0.1}, "seed": 0}},
-]
-
+from .defaults import default_stages
 
 def configs() -> dict[str, list[dict[str, Any]]]:
-    """The configs measured, as stage lists."""
+    """The configs measured, as stage lists: the default config's, changed as the name says."""
+    default = default_stages()
     def with_dedup(opts: dict[str, Any]) -> list[dict[str, Any]]:
-        return [({"dedup": opts} if "dedup" in s else s) for s in DEFAULT_STAGES]
+        return [({"dedup": opts} if "dedup" in s else s) for s in default]
 
-    no_dedup = [s for s in DEFAULT_STAGES if "dedup" not in s]
+    no_dedup = [s for s in default if "dedup" not in s]
     off = [({"split": {**s["split"], "group_threshold": None}} if "split" in s else s) for s in no_dedup]
-    return {"dedup + split": DEFAULT_STAGES,
+    return {"dedup + split": default,
             "dedup t=0.95 + split": with_dedup({"threshold": 0.95}),
             "dedup n=3 t=0.95 + split": with_dedup({"ngram": 3, "threshold": 0.95}),
             "no dedup": no_dedup, "no dedup, group_threshold null": off}

@@ -402,34 +402,34 @@ class Checker:
 
     def __init__(self, stage_configs: list[tuple[str, dict]] | None = None,
                  reference: Callable[[bytes], list | None] = reference_rows):
-        from ..stages import stage_class
         from ..config import validate_stage_options
-        configs = stage_configs or DEFAULT_STAGES
-        self.stages = [stage_class(n)(validate_stage_options(n, o, n)) for n, o in configs]
+        from ..stages import stage_class
+        from ..stages.base import bind_stages
+        from .defaults import default_stages
+        # the default config's stages (its corpus stages only ``prepare`` here)
+        configs = stage_configs or [next(iter(s.items())) for s in default_stages()]
+        self.stages = bind_stages([stage_class(n)(validate_stage_options(n, o, n)) for n, o in configs])
         self.reference = reference
 
     def check(self, data: bytes) -> Verdict:
-        """Apply the properties to one file; an AssertionError or any exception is a finding."""
-        from ..stages import FileContext
-        validate = self.stages[0]
-        result, piece = validate.check(data, "fuzz.mid")
-        assert isinstance(result.kept, bool) and result.detail, "a verdict needs a sentence"
-        if not result.kept:
-            assert piece is None and result.reason in VALIDATE_REASONS, result.reason
-            return Verdict(result.reason, False)
-        assert piece is not None and result.reason is None
-        assert (piece.notes["end"] > piece.notes["start"]).all()
-        ctx = FileContext(piece, "fuzz.mid", "0" * 64)
+        """Apply the properties to one file (through the workers' own pass,
+        ``engine.worker.file_pass``); an AssertionError or any exception is a finding."""
+        from ..engine.worker import file_pass
         try:
-            for st in self.stages[1:]:
-                if st.kind == "corpus":
-                    st.prepare(piece, ctx)
-                else:
-                    st.process(piece, ctx)
+            done = file_pass(self.stages, data, "fuzz.mid", "0" * 64)
         except MemoryError:
             # in a run the worker's memory limit turns this into a too_large drop (not an
             # escape), but a small file that needs that much memory is worth a look
             return Verdict("too_large", False, memory=True)
+        result, piece = done.results[self.stages[0].name], done.piece
+        assert isinstance(result["kept"], bool) and result["detail"], "a verdict needs a sentence"
+        if not result["kept"]:
+            assert piece is None and result["reason"] in VALIDATE_REASONS, result["reason"]
+            return Verdict(result["reason"], False)
+        assert piece is not None and result["reason"] is None
+        assert (piece.notes["end"] > piece.notes["start"]).all()
+        errors = [r["detail"] for r in done.results.values() if r["reason"] == "stage_error"]
+        assert not errors, errors[0]
         compared = False
         if not piece.repairs:
             ref = self.reference(data)
@@ -439,13 +439,6 @@ class Checker:
                 assert ours == ref, "notes differ from the reference decoder (mido)"
                 compared = True
         return Verdict("kept", compared)
-
-
-#: The per-file part of configs/default.yaml (its corpus stages only ``prepare`` here).
-DEFAULT_STAGES: list[tuple[str, dict]] = [
-    ("validate", {}), ("transpose", {"major_to": "C", "minor_to": "A"}), ("key_meter", {}),
-    ("dedup", {}), ("filter", {"min_seconds": 8, "max_seconds": 1200, "min_notes": 32}),
-]
 
 
 # ---------------------------------------------------------------------------------------------
