@@ -19,7 +19,7 @@ from ..outputs.manifest import source_fields
 from ..stages import CorpusState, Member, Stage
 from ..store.codec import canonical_json, thresholds_json
 from ..store.ledger import Ledger
-from ..store.records import Compactor, Result, TrailValues
+from ..store.records import Compactor, TrailValues
 
 
 class StageWalk:
@@ -106,7 +106,8 @@ class StageWalk:
                 new_rows: list[tuple[str, Any]] = []  # results this run computed (to store)
                 for sha in alive:
                     r = res.get(sha[:16])
-                    if type(r) is Result:  # the last run's record, returned as it is
+                    if r is not None and last is not None and r is last.get(sha[:16]):
+                        # the last run's record, returned as it is
                         rec = r
                     else:
                         rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
@@ -162,7 +163,7 @@ def last_run_fingerprint(fp: str) -> str:
     return f"{fp}:last-run"
 
 
-def _last_results(ledger: Ledger, stage: str, fingerprint: str, compactor: Compactor) -> dict[str, Result]:
+def _last_results(ledger: Ledger, stage: str, fingerprint: str, compactor: Compactor) -> dict[str, Any]:
     """A corpus stage's results of the last run, by member id (values stay JSON text until
     read). A stage returns such a record as it is for a member whose result did not change;
     the runner then neither compacts nor stores it again. Read when the stage starts: a stage

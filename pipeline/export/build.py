@@ -24,7 +24,7 @@ import time
 import zipfile
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 import numpy as np
 

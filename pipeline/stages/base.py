@@ -24,6 +24,7 @@ import numpy as np
 
 from ..midi.piece import Piece
 from ..store.codec import canonical_json
+from ..store.records import Result
 
 
 @dataclass(frozen=True)
@@ -41,38 +42,11 @@ class Option:
     check: Callable[[Any], str | None] | None = None
 
 
-@dataclass
-class StageResult:
-    """A stage's verdict on one file.
-
-    ``values`` are the measured values that go into the manifest (flat, JSON-serialisable);
-    ``thresholds`` maps a measure name to the limit it was held against (for ``explain``).
-    ``reason`` is None when kept; otherwise a reason code from the README table.
-    """
-
-    kept: bool
-    reason: str | None = None
-    detail: str = ""
-    values: dict[str, Any] = field(default_factory=dict)
-    thresholds: dict[str, Any] = field(default_factory=dict)
-
-    @classmethod
-    def keep(cls, detail: str = "", values: dict | None = None,
-             thresholds: dict | None = None) -> "StageResult":
-        return cls(True, None, detail, values or {}, thresholds or {})
-
-    @classmethod
-    def drop(cls, reason: str, detail: str, values: dict | None = None,
-             thresholds: dict | None = None) -> "StageResult":
-        return cls(False, reason, detail, values or {}, thresholds or {})
-
-    def to_json(self) -> dict:
-        return {"kept": self.kept, "reason": self.reason, "detail": self.detail,
-                "values": self.values, "thresholds": self.thresholds}
-
-    @classmethod
-    def from_json(cls, d: dict) -> "StageResult":
-        return cls(d["kept"], d["reason"], d["detail"], d.get("values", {}), d.get("thresholds", {}))
+#: The verdict of a stage on one file (``keep``/``drop``; ``values`` go into the manifest,
+#: ``thresholds`` map a measure to the limit it was held against, for ``explain``; ``reason``
+#: is None when kept, else a reason code of the README's table). The same type carries the
+#: verdicts of earlier stages (``CorpusState.upstream``) and of the last run.
+StageResult = Result
 
 
 class FileContext:

@@ -33,7 +33,6 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..store.records import Result
 from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups,
                                    group_by_key, near_links)
 from ..midi.piece import Piece
@@ -99,19 +98,16 @@ def folder_of(source: str) -> str | None:
     return None if parent in ("", ".") else parent
 
 
-def _value(result: Any, name: str) -> Any:
-    """One value of an upstream result: a compact record (``records.Result``, read without
-    parsing the others) or a StageResult."""
-    return result.value(name) if isinstance(result, Result) else result.values.get(name)
+def _value(result: StageResult, name: str) -> Any:
+    """One value of an upstream result (read without parsing the others)."""
+    return result.value(name)
 
 
 def _same_split(r: Any, part: str, group: str, size: int) -> bool:
     """Whether a last-run result has exactly these values (and no ``moved_from``). A stored
     record is compared as its stored JSON text (sorted keys; member ids are hex and part names
     plain, so nothing needs escaping), without parsing it."""
-    if isinstance(r, Result):
-        return r.values_json() == f'{{"group":"{group}","group_size":{size},"split":"{part}"}}'
-    return r.values == {"split": part, "group": group, "group_size": size}
+    return r.values_json() == f'{{"group":"{group}","group_size":{size},"split":"{part}"}}'
 
 
 def output_count(m: Member) -> float:

@@ -1,4 +1,5 @@
-"""Compact in-memory form of per-file stage results, held by the main process for a whole run.
+"""The one result type: a stage's verdict on one file (``Result``, which stages know as
+``StageResult``), in a compact form the main process holds for a whole run.
 
 A run keeps one result per (file, stage) from the per-file pass until the manifest is written:
 at 100,000 files and four per-file stages that is 400,000 results. As plain dicts (an outer
@@ -51,6 +52,23 @@ class Result:
         self.vals = vals
         self.thresholds = thresholds
         self.text: str | None = vals if names is None else None  # the values as stored JSON
+
+    @classmethod
+    def keep(cls, detail: str = "", values: Mapping[str, Any] | None = None,
+             thresholds: dict[str, Any] | None = None) -> "Result":
+        """A kept verdict; ``values`` go into the manifest, ``thresholds`` name the limits held."""
+        return _plain(True, None, detail, values, thresholds)
+
+    @classmethod
+    def drop(cls, reason: str, detail: str, values: Mapping[str, Any] | None = None,
+             thresholds: dict[str, Any] | None = None) -> "Result":
+        """A dropped verdict with its reason code (README, Reason codes) and sentence."""
+        return _plain(False, reason, detail, values, thresholds)
+
+    @classmethod
+    def from_json(cls, d: Mapping[str, Any]) -> "Result":
+        """The result of its dict form (``to_json``)."""
+        return _plain(d["kept"], d.get("reason"), d.get("detail", ""), d.get("values"), d.get("thresholds"))
 
     def expand(self) -> "Result":
         """Parse values still held as stored JSON text (no-op otherwise); returns self."""
@@ -134,6 +152,17 @@ class Result:
 
     def __repr__(self) -> str:
         return f"Result({self.to_json()!r})"
+
+
+def _plain(kept: bool, reason: str | None, detail: str, values: Mapping[str, Any] | None,
+           thresholds: dict[str, Any] | None) -> Result:
+    """A result made by a stage (names shared with every result of the same value names)."""
+    values = values or {}
+    names = tuple(values)
+    shared = _SHARED_NAMES.get(names)
+    if shared is None:
+        shared = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
+    return Result(bool(kept), reason, detail, shared, _compact_values(values), thresholds or {})
 
 
 def _compact_values(values: Mapping[str, Any]) -> tuple:
