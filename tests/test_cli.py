@@ -108,3 +108,19 @@ def test_a_run_imports_only_the_runtime_dependencies(tmp_path):
             "if m in sys.modules))")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=tmp_path)
     assert proc.stdout.split("\n")[-2] == "0 []", proc.stdout + proc.stderr
+
+
+def test_the_run_path_never_imports_the_developer_tools(tmp_path):
+    """pipeline.tools (synth, bench, fuzz, docs, evaluations) and the read-side commands are
+    apart from the run path (DEVELOPERS.md, Architecture): a run, fresh and up to date, loads
+    none of them."""
+    code = ("import sys; from pipeline.cli import main; "
+            f"args = ['run', {str(ROOT / 'configs' / 'default.yaml')!r}, '--input', "
+            f"{str(ROOT / 'sample_corpus')!r}, '--output', {str(tmp_path / 'o')!r}, '--quiet', "
+            "'--workers', '1']; "
+            "rc = main(args) + main(args); "
+            "print(rc, sorted(m for m in sys.modules if m.startswith(('pipeline.tools', "
+            "'pipeline.audit', 'pipeline.analysis.evaluate', 'pipeline.analysis.train', "
+            "'pipeline.analysis.eval_sets'))))")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=tmp_path)
+    assert proc.stdout.split("\n")[-2] == "0 []", proc.stdout + proc.stderr

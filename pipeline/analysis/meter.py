@@ -507,7 +507,7 @@ _SCALAR_TEMPO_EVENTS = 64
 
 
 def _seconds_at(tick: int, tempos: np.ndarray, ticks_per_beat: int) -> float | None:
-    """``score.ticks_to_seconds`` at one tick, for a short tempo map in tick order: the same
+    """``piece.ticks_to_seconds`` at one tick, for a short tempo map in tick order: the same
     operations in the same order on Python floats (IEEE doubles, as numpy's), without a dozen
     numpy calls on arrays of a few elements. None for a long or unsorted map."""
     if not 0 < len(tempos) <= _SCALAR_TEMPO_EVENTS or not ticks_per_beat > 0:

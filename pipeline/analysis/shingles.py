@@ -83,7 +83,7 @@ class ShingleSpec:
 KIND_TAGS = {"line": 1, "bass": 2, "harmony": 3, "top": 4, "pitch": 5, "lead": 6, "lead_pitch": 7}
 #: Shingles of the lead voice (also present as ordinary line shingles) are marked by a clear top
 #: bit, every other shingle by a set one: a sorted set holds the lead's copies first, so a
-#: comparison of the leads alone reads a prefix of each set (``similarity.lead_part``).
+#: comparison of the leads alone reads a prefix of each set (``similarity.measure.lead_part``).
 LEAD_LIMIT = np.uint64(1 << 63)
 #: A held note counts in at most this many beats of the harmony (memory: long pads).
 _HELD_BEATS = 4

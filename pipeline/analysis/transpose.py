@@ -64,7 +64,7 @@ def fold_octaves(p: np.ndarray) -> np.ndarray:
 
 
 def in_canonical_order(notes: np.ndarray) -> bool:
-    """Whether ``notes`` are in ``score.sort_notes`` order (start, pitch, track, channel, end),
+    """Whether ``notes`` are in ``piece.sort_notes`` order (start, pitch, track, channel, end),
     i.e. whether that stable sort would return the rows unchanged. Cheaper than the sort: one
     pass over the starts, the other keys compared only where starts tie."""
     if len(notes) < 2:

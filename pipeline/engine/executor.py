@@ -53,8 +53,7 @@ T = TypeVar("T")
 R = TypeVar("R")
 
 #: Most tasks queued per worker (one running, the others waiting in its pipe), so workers
-#: keep busy while the parent commits a batch; measured: 8 matches multiprocessing.Pool's
-#: throughput, 2 was 14-24% slower.
+#: keep busy while the parent commits a batch (DEVELOPERS.md, Bench notes).
 PREFETCH = 8
 #: Seconds given to a worker to leave after its pipe is closed, before it is killed.
 _GRACE_S = 2.0

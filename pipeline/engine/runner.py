@@ -46,8 +46,9 @@ from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file
 
-BATCH = 2048  # results + artifacts per ledger transaction (also flushed every 2 s): about 300
-#               files; each commit costs a WAL write of its pages, about 1.5 ms
+#: Results + artifacts per ledger transaction (also flushed every 2 s): a few hundred files;
+#: each commit costs a WAL write of its pages.
+BATCH = 2048
 
 class Runner:
     """One run of a config over its input folder."""
@@ -353,8 +354,7 @@ def _bulk_data() -> Iterator[None]:
     cyclic collection inside it (cyclic garbage made in it is collected after it), and what it
     built is exempted from the collector's passes until the run ends (``gc.freeze``; reference
     counting still frees it, and ``Runner.run`` unfreezes at its end). Speed: each full pass
-    walks every live object, and the heap grows through a run: on a cached 100,000-file run 14
-    full passes took 3.2 of 42 s, on a 1%-new rerun of 10,000 files 0.18 of 1.9 s."""
+    walks every live object, and the heap grows through a run (DEVELOPERS.md, Bench notes)."""
     enabled = gc.isenabled()
     gc.disable()
     try:

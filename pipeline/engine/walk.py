@@ -238,7 +238,7 @@ class Walk:
         return trail
 
     def trail_json(self, rel: str, sha: str) -> str:
-        """``trail_of`` as the ledger stores it (``ledger.canonical_json``), assembled from the
+        """``trail_of`` as the ledger stores it (``codec.canonical_json``), assembled from the
         records' stored texts: no values are parsed or serialised again (a byte-identical
         copy's trail, whose dedup step is rewritten, goes through the json module)."""
         if self.byte_copy_stage and self.is_byte_copy(rel, sha) and \

@@ -1,4 +1,4 @@
-/* Compiled fast path of pipeline.smf: the per-track event loop of ``smf._read_track`` (and, at
+/* Compiled fast path of pipeline.midi: the per-track event loop of ``midi.track.read_track`` (and, at
  * the end, the per-file analyses of pipeline.analysis on the decoded note table).
  *
  * Same semantics as the pure-Python loop (running status kept across meta and sysex events,
@@ -138,7 +138,7 @@ static PyObject *pairs_list(const Vec *a, int width) {
     return list;
 }
 
-/* score.CONTROL_DTYPE, packed: tick int64, track int16, channel, kind, data1, data2 uint8 */
+/* midi.piece.CONTROL_DTYPE, packed: tick int64, track int16, channel, kind, data1, data2 uint8 */
 #define CONTROL_SIZE 14
 
 /* Result codes of the loop: 0 ok, 1 the Python loop would raise (re-run it), -1 MemoryError. */
@@ -154,7 +154,7 @@ typedef struct {
     Vec texts; /* text-like metas: (tick, type << 40 | payload offset, payload length) */
 } Track;
 
-/* meta types kept as Piece.texts (score.TEXT_METAS): text, copyright, lyric, marker, cue */
+/* meta types kept as Piece.texts (midi.piece.TEXT_METAS): text, copyright, lyric, marker, cue */
 static int text_meta(unsigned int mt) {
     return mt == 0x01 || mt == 0x02 || mt == 0x05 || mt == 0x06 || mt == 0x07;
 }
@@ -375,11 +375,11 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
 
 PyDoc_STRVAR(read_track_doc,
 "read_track(data: bytes, start: int, length: int, track: int = 0) -> tuple | None\n\n"
-"Parse the MTrk body data[start:start+length] like pipeline.smf._read_track. Returns\n"
+"Parse the MTrk body data[start:start+length] like pipeline.midi.track.read_track. Returns\n"
 "(last tick, saw end-of-track, track name or None, first text, events, zero-length notes\n"
 "dropped, hanging notes closed, unknown metas, notes, tempos, meters, keys, controls, texts),\n"
 "where notes is bytes of native int64 (start, end, info) triples, controls bytes of\n"
-"score.CONTROL_DTYPE records (track = ``track``), tempos/meters/keys lists of (tick, ...)\n"
+"midi.piece.CONTROL_DTYPE records (track = ``track``), tempos/meters/keys lists of (tick, ...)\n"
 "tuples and texts a list of (tick, meta type, payload bytes); or None where the pure-Python\n"
 "loop would raise a DecodeError.");
 
@@ -504,8 +504,8 @@ static PyObject *read_track(PyObject *self, PyObject *const *args, Py_ssize_t na
 
 /* ---------------------------------------------------------------------------------------------
  * The note table: the (start, end, info) triples of all tracks -> NOTE_DTYPE records in
- * ``score.sort_notes`` order, with seconds from the tempo map computed as
- * ``score.ticks_to_seconds`` does (the same IEEE double operations in the same order, so the
+ * ``midi.piece.sort_notes`` order, with seconds from the tempo map computed as
+ * ``midi.piece.ticks_to_seconds`` does (the same IEEE double operations in the same order, so the
  * same doubles: no product feeds an addition directly, so a compiler's multiply-add
  * contraction cannot change a result; the tests compare the bytes).
  */
@@ -570,7 +570,7 @@ typedef struct {
     double den; /* 1e6 * ticks_per_beat */
 } TempoMap;
 
-/* seconds at ``t`` like score.ticks_to_seconds (searchsorted right - 1, clipped) */
+/* seconds at ``t`` like midi.piece.ticks_to_seconds (searchsorted right - 1, clipped) */
 static inline double seconds_at(const TempoMap *m, int64_t t) {
     Py_ssize_t lo = 0, hi = m->n; /* first index with tick > t */
     while (lo < hi) {
@@ -584,7 +584,7 @@ static inline double seconds_at(const TempoMap *m, int64_t t) {
 }
 
 /* NOTE_DTYPE (pipeline.score): start, end int64; start_s, end_s float64; pitch, velocity,
- * channel, program, track int16; packed, 42 bytes (pipeline.smf checks the layout). */
+ * channel, program, track int16; packed, 42 bytes (pipeline.midi.decode checks the layout). */
 #define NOTE_SIZE 42
 
 PyDoc_STRVAR(note_table_doc,
@@ -592,7 +592,7 @@ PyDoc_STRVAR(note_table_doc,
 "    -> bytearray\n\n"
 "NOTE_DTYPE records of the int64 (start, end, info) triples in chunks (chunks[i] from MTrk\n"
 "tracks[i]), sorted by (start, pitch, track, channel, end), stable. With tempo (the\n"
-"TEMPO_DTYPE map as bytes), start_s/end_s as score.ticks_to_seconds gives; else 0.");
+"TEMPO_DTYPE map as bytes), start_s/end_s as midi.piece.ticks_to_seconds gives; else 0.");
 
 static PyObject *note_table(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
@@ -1034,7 +1034,7 @@ static double pairwise_sum(const double *a, Py_ssize_t n) {
 
 /* How this process's numpy reduces a long contiguous float64 array: 0 when in one pairwise
  * pass (numpy 2.4), else in chunks of this many values added in order (numpy 2.2 reduces
- * through its 8192-value buffer). Set once by score.compiled_analyses, which compares
+ * through its 8192-value buffer). Set once by midi.accel.compiled_analyses, which compares
  * add_reduce with np.add.reduce on probe arrays (set_reduce_chunk). */
 static Py_ssize_t reduce_chunk = 0;
 
@@ -2341,7 +2341,7 @@ static PyMethodDef methods[] = {
 
 static struct PyModuleDef module = {
     PyModuleDef_HEAD_INIT, "_smf_accel",
-    "Compiled fast path of pipeline.smf (see pipeline/_smf_accel.c).", -1, methods,
+    "Compiled fast path of pipeline.midi (see pipeline/midi/_smf_accel.c).", -1, methods,
     NULL, NULL, NULL, NULL,
 };
 

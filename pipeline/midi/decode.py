@@ -8,8 +8,8 @@ the global tempo map through the vectorized ``ticks_to_seconds``.
 Compiled fast path: where the optional C extension ``pipeline.midi._smf_accel`` (pipeline/midi/_smf_accel.c,
 built by setup.py when a C compiler is present; plain CPython C API, no dependency) imports, the
 per-track loop and the note table (sort and tempo-map seconds) run in C with exactly the
-semantics of ``_read_track``, ``_note_table`` and ``ticks_to_seconds``. The C loop builds no
-messages: where the Python loop would raise, it gives up and ``_read_track`` re-runs that track
+semantics of ``read_track``, ``_note_table`` and ``ticks_to_seconds``. The C loop builds no
+messages: where the Python loop would raise, it gives up and ``read_track`` re-runs that track
 and raises the exact ``DecodeError``. ``MIDISIFT_PURE_PYTHON=1`` in the environment (read at
 import) forces the pure-Python path, for the decoder and the encoder's group tracks alike;
 ``decode(..., accelerated=False)`` (or ``True``) picks a path per call, so tests compare both in
@@ -19,20 +19,11 @@ the default. tests/test_smf_accel.py holds both paths to the same ``Piece`` and 
 histogram, meter accents, filter measures, shingles, content hash, transposed tables), each
 equal bit for bit to its numpy formulation, which stays the specification.
 
-Why a decoder of our own, not a C++ backend (measured side by side in one run, CPU time per
-process, on the same 300 files of ~5 KB, 3-4 tracks, ~500 notes): the pure-Python loop ~1,550
-files/s per core; mido ``MidiFile`` + note extraction ~150 (10x slower);
-``symusic.Score.from_midi`` (0.6) alone ~24,000 (15x faster); a symusic-backed ``Piece`` (C++ parse,
-numpy tables built from its tracks) ~3,900 (2.5x faster). The symusic path cannot give the same
-``Piece``: it does not expose channels (0 of 300 files had the right channel column; only the
-drum flag survives) nor the MTrk index of a note, and it silently drops notes left hanging at
-the end of a track (0 of 20 such files matched). Channels, track indices and honest repair
-counts are part of our contract (drum handling, ``explain``), so this decoder is the single
-hot-path decoder, now with its own compiled loop; mido stays the reference in tests. Pure vs
-compiled, side by side in one process (CPU time per file read and decoded,
-``pipeline.tools.bench.decode_paths``, interleaved rounds, 2026-12-01, shared 2-core machine): small
-class (2,000 files, ~4.3 KB, ~510 notes) 0.86 ms vs 0.069 ms (12x, ~14,000 files/s per core);
-large class (300 files, ~61 KB, ~8,000 notes) 11.1 ms vs 0.54 ms (21x).
+Why a decoder of our own rather than a C++ backend: channels, track indices and honest repair
+counts are part of our contract (drum handling, ``explain``), and the backend tried does not
+expose channels nor track indices and silently drops hanging notes; mido stays the reference in
+tests. The measurements behind this, and pure against compiled, are in DEVELOPERS.md (Bench
+notes).
 
 Policies (chosen to match pretty_midi 0.2.x ``_load_instruments``, the reference in tests):
 
@@ -52,7 +43,7 @@ Policies (chosen to match pretty_midi 0.2.x ``_load_instruments``, the reference
 
 Kept besides notes (for the normalized output): the other channel events (control change,
 pitch bend, channel and polyphonic aftertouch, program change) as ``Piece.controls``, in file
-order per track, and the text-like metas (``score.TEXT_METAS``: text, copyright, lyric, marker,
+order per track, and the text-like metas (``piece.TEXT_METAS``: text, copyright, lyric, marker,
 cue point; .kar files are plain SMF) as ``Piece.texts``, payloads as bytes.
 
 Legal features handled without counting: running status, velocity-0 note-offs, sysex and
@@ -74,8 +65,9 @@ import numpy as np
 
 from ..errors import DecodeError
 from . import accel
-from .piece import (CONTROL_DTYPE, DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, NOTE_DTYPE, TEXT_METAS,
+from .piece import (CONTROL_DTYPE, DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, NOTE_DTYPE,
                     TEMPO_DTYPE, Piece, ticks_to_seconds)
+from .track import read_track
 
 __all__ = ["decode", "decode_file", "REPAIRS", "DEFAULT_LIMITS", "describe_repairs"]
 
@@ -111,7 +103,6 @@ REPAIRS: dict[str, tuple[str, str]] = {
 DEFAULT_LIMITS = {"max_bytes": 16_000_000, "max_events": 2_000_000, "max_tracks": 1024}
 
 #: Meta types defined by SMF 1.0 (+ RP-019 SMPTE offset, RP-017 port): skipped silently.
-_KNOWN_META = frozenset(list(range(0x00, 0x10)) + [0x20, 0x21, 0x2F, 0x51, 0x54, 0x58, 0x59, 0x7F])
 #: SMPTE frame-rate byte (negated) -> frames per second; 29 means 30 drop-frame = 29.97 fps.
 _SMPTE_FPS = {24: 24.0, 25: 25.0, 29: 30000 / 1001, 30: 30.0}
 
@@ -314,7 +305,7 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["ma
                 keys += k_ev
         else:
             n0, c0, x0 = len(cols), len(ctl), len(texts)
-            tick, eot, name, text, n_ev, z, h, u = _read_track(
+            tick, eot, name, text, n_ev, z, h, u = read_track(
                 data[base:base + clen], base, ti, pos == end, source, cols, tempos, meters, keys,
                 ctl, texts)
             k_track = (len(cols) - n0) // 3
@@ -391,225 +382,9 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["ma
                  repairs=repairs, controls=controls, texts=tuple(texts))
 
 
-def _read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, cols: list,
-                tempos: list, meters: list, keys: list, ctl: list, texts: list) -> tuple:
-    """Parse one MTrk body ``t`` (starting at absolute byte ``base``) in one tight loop.
-
-    Appends notes to ``cols`` (start, end, info triples), tempo, meter and key events to
-    their lists, the other channel events to ``ctl`` (tick, status << 16 | data1 << 8 | data2
-    pairs) and text-like metas (``TEXT_METAS``) to ``texts`` as (tick, type, payload); returns (last tick, saw end-of-track, track name or None, first text,
-    events, zero-length notes dropped, hanging notes closed, unknown metas).
-    """
-    n_events = zero = hanging = unknown_meta = 0
-    text = ""
-    nt = len(t)
-    p = 0
-    tick = 0
-    status = 0
-    eot = False
-    progs = [0] * 16
-    opened: list = [None] * 2048  # open notes per key = channel << 7 | pitch
-    name = None
-    ev_start = p
-    try:
-        while p < nt:
-            ev_start = p
-            b = t[p]
-            p += 1
-            if b < 0x80:
-                tick += b
-            else:
-                d = b & 0x7F
-                b = t[p]
-                p += 1
-                d = (d << 7) | (b & 0x7F)
-                if b > 0x7F:
-                    b = t[p]
-                    p += 1
-                    d = (d << 7) | (b & 0x7F)
-                    if b > 0x7F:
-                        b = t[p]
-                        p += 1
-                        d = (d << 7) | (b & 0x7F)
-                        if b > 0x7F:
-                            raise DecodeError(
-                                "bad_event", "a delta time is longer than the 4 bytes SMF "
-                                "allows; the track data is damaged", file=source,
-                                offset=base + ev_start, track=ti)
-                tick += d
-            st = t[p]
-            if st > 0x7F:
-                p += 1
-                if st >= 0xF0:
-                    if st == 0xFF:
-                        mt = t[p]
-                        b = t[p + 1]
-                        p += 2
-                        ln = b & 0x7F
-                        while b > 0x7F:
-                            b = t[p]
-                            p += 1
-                            ln = (ln << 7) | (b & 0x7F)
-                        if p + ln > nt:
-                            raise DecodeError(
-                                "bad_event", f"meta event 0x{mt:02x} declares {ln} bytes but "
-                                f"only {nt - p} remain in the track chunk; the track is damaged",
-                                file=source, offset=base + ev_start, track=ti)
-                        if mt == 0x51:
-                            if ln != 3:
-                                raise _bad_meta(source, base + ev_start, ti, "tempo", 3, ln)
-                            tempo = (t[p] << 16) | (t[p + 1] << 8) | t[p + 2]
-                            if tempo == 0:
-                                raise DecodeError(
-                                    "bad_event", "a tempo event sets 0 microseconds per beat, "
-                                    "which has no meaning; the file is damaged", file=source,
-                                    offset=base + ev_start, track=ti)
-                            tempos.append((tick, tempo))
-                        elif mt == 0x2F:
-                            eot = True
-                        elif mt == 0x03:
-                            if name is None:
-                                name = t[p:p + ln].decode("latin-1")
-                        elif mt == 0x58:
-                            if ln != 4:
-                                raise _bad_meta(source, base + ev_start, ti, "time signature", 4, ln)
-                            num, dd = t[p], t[p + 1]
-                            if num == 0 or dd > 6:
-                                raise DecodeError(
-                                    "bad_event", f"a time signature must have numerator >= 1 "
-                                    f"and denominator 2**0..2**6, but it is {num}/2**{dd}; the "
-                                    "event is damaged", file=source, offset=base + ev_start,
-                                    track=ti)
-                            meters.append((tick, num, 1 << dd))
-                        elif mt == 0x59:
-                            if ln != 2:
-                                raise _bad_meta(source, base + ev_start, ti, "key signature", 2, ln)
-                            sf, mi = t[p], t[p + 1]
-                            if sf > 127:
-                                sf -= 256
-                            if not -7 <= sf <= 7 or mi > 1:
-                                raise DecodeError(
-                                    "bad_event", f"a key signature must have -7..7 sharps and "
-                                    f"mode 0 or 1, but it has {sf} and {mi}; the event is damaged",
-                                    file=source, offset=base + ev_start, track=ti)
-                            keys.append((tick, sf, mi))
-                        elif mt in TEXT_METAS:
-                            texts.append((tick, mt, t[p:p + ln]))
-                            if mt == 0x01 and not text:
-                                text = t[p:p + ln].decode("latin-1").strip(" \t\r\n\x00")
-                        elif mt not in _KNOWN_META:
-                            unknown_meta += 1
-                        p += ln
-                    elif st == 0xF0 or st == 0xF7:
-                        b = t[p]
-                        p += 1
-                        ln = b & 0x7F
-                        while b > 0x7F:
-                            b = t[p]
-                            p += 1
-                            ln = (ln << 7) | (b & 0x7F)
-                        if p + ln > nt:
-                            raise DecodeError(
-                                "bad_event", f"sysex event declares {ln} bytes but only "
-                                f"{nt - p} remain in the track chunk; the track is damaged",
-                                file=source, offset=base + ev_start, track=ti)
-                        p += ln
-                    else:
-                        raise DecodeError(
-                            "bad_event", f"the track holds status byte 0x{st:02x}, a system "
-                            "common/real-time message that a Standard MIDI File does not allow "
-                            "(SMF stores only channel, meta and sysex events)",
-                            file=source, offset=base + p - 1, track=ti)
-                    n_events += 1
-                    continue
-                status = st
-            elif status:
-                st = status
-            else:
-                raise DecodeError(
-                    "bad_event", f"data byte 0x{st:02x} appears where a status byte is needed "
-                    "and no running status is in effect yet; the track is damaged",
-                    file=source, offset=base + p, track=ti)
-            n_events += 1
-            if st < 0xA0:  # note-off 0x8n or note-on 0x9n
-                a = t[p]
-                v = t[p + 1]
-                p += 2
-                if (a | v) > 0x7F:
-                    raise _bad_data(source, base + p - 2, ti, st, a, v)
-                key = ((st & 0x0F) << 7) | a
-                if v and st > 0x8F:
-                    # info packs pitch | channel << 7 | velocity << 11 | program << 18
-                    cur = opened[key]
-                    if cur is None:
-                        opened[key] = [tick, key | (v << 11) | (progs[st & 0x0F] << 18)]
-                    else:
-                        cur += (tick, key | (v << 11) | (progs[st & 0x0F] << 18))
-                else:
-                    cur = opened[key]
-                    if cur is not None:
-                        opened[key] = None
-                        if len(cur) == 2:
-                            if cur[0] != tick:
-                                cols += (cur[0], tick, cur[1])
-                            else:
-                                zero += 1
-                        else:
-                            keep = []
-                            for j in range(0, len(cur), 2):
-                                if cur[j] != tick:
-                                    cols += (cur[j], tick, cur[j + 1])
-                                else:
-                                    keep += (cur[j], cur[j + 1])
-                            if keep:
-                                if len(keep) < len(cur):
-                                    opened[key] = keep
-                                else:
-                                    zero += len(keep) // 2
-                continue
-            hi = st & 0xF0
-            if hi == 0xC0:
-                a = t[p]
-                p += 1
-                if a > 0x7F:
-                    raise _bad_data(source, base + p - 1, ti, st, a, 0)
-                progs[st & 0x0F] = a
-                ctl += (tick, (st << 16) | (a << 8))
-            elif hi == 0xD0:
-                a = t[p]
-                p += 1
-                if a > 0x7F:
-                    raise _bad_data(source, base + p - 1, ti, st, a, 0)
-                ctl += (tick, (st << 16) | (a << 8))
-            else:
-                a = t[p]
-                v = t[p + 1]
-                p += 2
-                if (a | v) > 0x7F:
-                    raise _bad_data(source, base + p - 2, ti, st, a, v)
-                ctl += (tick, (st << 16) | (a << 8) | v)
-    except IndexError:
-        if at_file_end:
-            raise DecodeError("truncated", f"the file ends inside an event of track {ti} that "
-                              f"starts at byte {base + ev_start}; it was probably cut off",
-                              file=source, offset=base + ev_start, track=ti) from None
-        raise DecodeError("bad_event", f"the event at byte {base + ev_start} runs past the end "
-                          f"of track {ti}'s chunk ({nt} bytes); the chunk length or the event "
-                          "is damaged", file=source, offset=base + ev_start, track=ti) from None
-    if opened.count(None) < 2048:
-        for cur in filter(None, opened):
-            for j in range(0, len(cur), 2):
-                if cur[j] != tick:
-                    cols += (cur[j], tick, cur[j + 1])
-                    hanging += 1
-                else:
-                    zero += 1
-    return tick, eot, name, text, n_events, zero, hanging, unknown_meta
-
-
 def _read_track_alone(data: bytes, base: int, clen: int, ti: int, at_file_end: bool,
                       source: str) -> tuple:
-    """``_read_track`` on one track with its own lists, in the compiled loop's result shape
+    """``read_track`` on one track with its own lists, in the compiled loop's result shape
     (notes as int64 bytes, controls as CONTROL_DTYPE records). Called where the compiled loop
     gave up: it raises there."""
     cols: list[int] = []
@@ -618,7 +393,7 @@ def _read_track_alone(data: bytes, base: int, clen: int, ti: int, at_file_end: b
     keys: list = []
     ctl: list[int] = []
     texts: list = []
-    head = _read_track(data[base:base + clen], base, ti, at_file_end, source, cols, tempos,
+    head = read_track(data[base:base + clen], base, ti, at_file_end, source, cols, tempos,
                        meters, keys, ctl, texts)
     return (*head, np.array(cols, dtype=np.int64).tobytes(), tempos, meters, keys,
             _control_table(np.array(ctl, dtype=np.int64), [ti, len(ctl) // 2]).tobytes(), texts)
@@ -634,7 +409,7 @@ def _note_table(cols: np.ndarray, note_tracks: list[int]) -> np.ndarray:
     """Flat int64 (start, end, info) columns -> NOTE_DTYPE table in ``sort_notes`` order.
 
     Sorting the plain int64 columns before filling the structured table gives the same order
-    as ``score.sort_notes`` (start, pitch, track, channel, end) at a fraction of its cost.
+    as ``piece.sort_notes`` (start, pitch, track, channel, end) at a fraction of its cost.
     """
     k = len(cols) // 3
     notes = np.zeros(k, dtype=NOTE_DTYPE)
@@ -691,18 +466,6 @@ def _tempo_map(tempos: list[tuple[int, int]]) -> np.ndarray:
 def _events(rows: list[tuple[int, int, int]], dtype: np.dtype) -> np.ndarray:
     rows = sorted(rows, key=lambda e: e[0])
     return np.array(rows, dtype=dtype) if rows else np.zeros(0, dtype=dtype)
-
-
-def _bad_meta(source: str, offset: int, track: int, what: str, want: int, got: int) -> DecodeError:
-    return DecodeError("bad_event", f"a {what} meta event must carry {want} bytes, but it carries "
-                       f"{got}; the event is damaged", file=source, offset=offset, track=track)
-
-
-def _bad_data(source: str, offset: int, track: int, st: int, a: int, v: int) -> DecodeError:
-    bad = a if a > 0x7F else v
-    return DecodeError("bad_event", f"data bytes of a channel message must be 0..127, but status "
-                       f"0x{st:02x} is followed by 0x{bad:02x}; the track is damaged or misaligned",
-                       file=source, offset=offset, track=track)
 
 
 def decode_file(path: str | Path, **limits: int) -> Piece:

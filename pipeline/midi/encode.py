@@ -80,7 +80,7 @@ def encode(piece: Piece, notes: np.ndarray | None = None, *,
            accelerated: bool | None = None) -> bytes:
     """The piece as a normalized format-1 SMF; ``notes`` replaces its note table (e.g.
     transposed notes). The same input always gives the same bytes. ``accelerated`` as in
-    ``smf.decode``: None follows ``accel.USE_ACCEL``; both paths give the same bytes."""
+    ``decode.decode``: None follows ``accel.USE_ACCEL``; both paths give the same bytes."""
     if accelerated is None:
         accelerated = accel.USE_ACCEL
     elif accelerated and not accel.HAVE_ACCEL:

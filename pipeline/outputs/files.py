@@ -235,8 +235,7 @@ FSYNC_EACH_UP_TO = 256
 def _flush_moved(moved: list[str], folders: set[str]) -> None:
     """Staged files are written without fsync; flush the ones just placed before the ledger
     records them. A rerun that adds a few files syncs those files and their folders (``os.sync``
-    also flushes everything else waiting for the disk: 130 ms after copying a 100 MB folder);
-    a run that placed many syncs once."""
+    also flushes everything else waiting for the disk); a run that placed many syncs once."""
     if not moved:
         return
     if len(moved) > FSYNC_EACH_UP_TO:

@@ -218,10 +218,9 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
-#: 0.9 gives 2-row bands at 0.2 with 128 permutations (0.93 at 0.2, above 0.99 from 0.26); on
-#: a 1,816-file generated corpus it found the same 455 links as 1-row bands (recall 0.99), 33
-#: times faster, and 1-row bands make the candidate count grow with the square of the corpus
-#: (a 100,000-file run ran out of memory).
+#: 0.9 gives 2-row bands at 0.2 with 128 permutations (0.93 at 0.2, above 0.99 from 0.26);
+#: 1-row bands make the candidate count grow with the square of the corpus (DEVELOPERS.md,
+#: Bench notes).
 GROUP_RECALL = 0.9
 
 

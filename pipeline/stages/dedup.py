@@ -3,7 +3,7 @@
 Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set (the
 lines of every voice above the bass register, interval x onset gap in units of the line, and
 their pitch-only contours; the lead voice's again, marked; see ``pipeline.analysis.shingles``)
-and its MinHash signature (``similarity.signature_of``). Over the corpus (``run_corpus``):
+and its MinHash signature (``similarity.measure.signature_of``). Over the corpus (``run_corpus``):
 
 1. byte-identical files (equal sha256) and files with identical note content (equal content
    hash) are linked first, with no MinHash work (``exact_duplicate``);
@@ -129,7 +129,7 @@ KEEP_POLICIES: dict[str, tuple[Callable[[dict], tuple], str]] = {
 #: synth corpora of 1,000 and 20,000 files, seed 0), with version 1's shingles (the skyline);
 #: version 2 (every voice, the lead, ratios of gaps) keeps them: README, Near-duplicate removal.
 #: * ``ngram`` 4: n=3 catches every edited copy too but lets distinct pieces reach 0.35
-#:   (18x more LSH candidates, 4x slower corpus step); n=5 loses edited copies (recall 0.95).
+#:   (many more LSH candidates); n=5 loses edited copies.
 #: * ``threshold`` 0.3: the lowest edited copies score 0.29-0.38 and the highest pair of distinct
 #:   pieces (same style family or not) 0.18 on the 20,000-file corpus; 0.3 sits between.
 #:   At 0.6 edited recall falls to 0.76, at 0.8 to 0.11.
@@ -359,7 +359,7 @@ class Dedup(Stage):
         return results
 
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
-        """The generic shingles (``similarity.generic_shingles``) of the compared files, counted
+        """The generic shingles (``similarity.measure.generic_shingles``) of the compared files, counted
         on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
         share = float(self.opts["generic_share"])
         if share >= 1.0:

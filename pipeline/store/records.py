@@ -194,7 +194,7 @@ class Compactor:
                       values_json, self._shared_thresholds(thresholds))
 
     def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
-        """The result of a stored form (``ledger.stored_result``), its values left as text."""
+        """The result of a stored form (``codec.stored_result``), its values left as text."""
         kept, reason, detail, values_json, thresholds_json = stored
         return self.make_stored(kept, reason, detail, values_json, thresholds_from_json(thresholds_json))
 

@@ -21,8 +21,8 @@ For each it reports:
   out of those keeping two or more files;
 * ``drops below threshold``: files dropped as ``near_duplicate`` whose own similarity to the
   kept file they name (``duplicate_of``), recomputed here from the two files (decoded again,
-  signed with ``similarity.signature_of`` at the dedup stage's options, compared with
-  ``similarity.set_similarity``), is below the dedup threshold, or differs from the manifest's
+  signed with ``similarity.measure.signature_of`` at the dedup stage's options, compared with
+  ``similarity.measure.set_similarity``), is below the dedup threshold, or differs from the manifest's
   ``similarity``; the target is 0;
 * ``clusters keeping several``: dedup clusters (connected components) that keep more than one
   file (single linkage would have dropped all but one, some only through other members);

@@ -8,7 +8,7 @@ BASE_CHECKOUT is a checkout of the other commit with its extension built in plac
 (``git archive COMMIT | tar -x -C DIR`` then ``python setup.py build_ext --inplace`` there).
 Its ``pipeline`` package is copied to a temporary folder as ``pipeline_base`` so both import
 in one process. "decode" is ``bench.decode_paths`` (read and decode each file); "render" is
-what ``outputs.render`` does for a piece transposed by +3 semitones, without the file write.
+what ``outputs.render.render`` does for a piece transposed by +3 semitones, without the file write.
 """
 from __future__ import annotations
 
