@@ -28,7 +28,6 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
 
-from .. import __version__
 from ..config import Config
 from ..errors import LedgerError, MidisiftError
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
@@ -128,7 +127,7 @@ class Runner:
                              f"file (paths are relative to the input folder, '/'-separated), e.g. "
                              + ", ".join(repr(u) for u in unknown[:3])]
 
-        state_key = self._state_key(files)
+        state_key = uptodate.state_key(files, self._rows_base())
         qkey = uptodate.quick_key(cfg.raw, files)
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
@@ -238,24 +237,9 @@ class Runner:
                          grouping_off=grouping_off(summary["split"].get("stage")))
 
     # the nothing-changed shortcut ------------------------------------------------------------
-    def _state_key(self, files: list[SourceFile]) -> str:
-        """Hash of everything a run's outputs depend on: every (source, sha256) and what every
-        row depends on besides its own file (``_rows_base``: the stages' options fingerprints,
-        which include their versions, the output fingerprint, the package version)."""
-        h = hashlib.sha256()
-        uptodate.files_digest(h, files)
-        h.update(self._rows_base().encode())
-        return h.hexdigest()
-
     def _rows_base(self) -> str:
-        """What every manifest row depends on besides its own file: the stages, their options
-        fingerprints, the output fingerprint and the package version (``pipeline.outputs.rowreuse``)."""
-        h = hashlib.sha256()
-        for st in self.stages:
-            h.update(f"{st.name}:{st.kind}:{st.fingerprint}\n".encode())
-        h.update(f"{self.output_fp}\nmidisift {__version__}".encode())
-        h.update(f"\nmetadata {self.config.metadata.digest}".encode())  # its columns are in rows
-        return h.hexdigest()
+        """What every manifest row depends on besides its own file (``uptodate.rows_base``)."""
+        return uptodate.rows_base(self.stages, self.output_fp, self.config.metadata.digest)
 
     def _unchanged(self, ledger: Ledger, state_key: str) -> dict | None:
         """The last run's summary when this run would reproduce it exactly, else None (no flag

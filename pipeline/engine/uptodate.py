@@ -3,8 +3,9 @@ completed run left them does no work beyond proving it.
 
 Two keys are stored with every completed run (in its counts, in the ledger and summary.json):
 
-* ``state_key`` (made by the runner): every (source, sha256), every stage's options fingerprint,
-  the output fingerprint and the package version;
+* ``state_key`` (made by the runner, which has built the stages): every (source, sha256), every
+  stage's options fingerprint, the output fingerprint, the package version and the metadata
+  table (``rows_base``, also the base of a rerun's row reuse);
 * ``quick_key``: every (source, sha256), the config as written (CLI overrides applied, ``workers``
   left out: it changes no output) and the package version.
 
@@ -33,6 +34,26 @@ def files_digest(h: Any, files: list) -> None:
     """Feed every (source, sha256) pair into the hash ``h``."""
     for f in files:
         h.update(f"{f.rel}\0{f.sha256}\n".encode("utf-8", "surrogateescape"))
+
+
+def rows_base(stages: list, output_fp: str, metadata_digest: str) -> str:
+    """What every manifest row depends on besides its own file: the stages, their options
+    fingerprints (which include their versions), the output fingerprint, the package version
+    and the metadata table (its columns are in the rows; ``pipeline.outputs.rowreuse``)."""
+    h = hashlib.sha256()
+    for st in stages:
+        h.update(f"{st.name}:{st.kind}:{st.fingerprint}\n".encode())
+    h.update(f"{output_fp}\nmidisift {__version__}".encode())
+    h.update(f"\nmetadata {metadata_digest}".encode())
+    return h.hexdigest()
+
+
+def state_key(files: list, base: str) -> str:
+    """Hash of everything a run's outputs depend on: every (source, sha256) and ``rows_base``."""
+    h = hashlib.sha256()
+    files_digest(h, files)
+    h.update(base.encode())
+    return h.hexdigest()
 
 
 def quick_key(raw: dict[str, Any], files: list) -> str:
