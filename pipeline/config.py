@@ -15,7 +15,7 @@ from typing import Any
 import yaml
 
 from .errors import ConfigError, ConfigErrors
-from .engine.executor import usable_cpus
+from .cpus import usable_cpus
 from .metadata import Metadata, load_metadata
 from .stages import Stage, known_stages, stage_class
 

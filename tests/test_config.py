@@ -96,7 +96,7 @@ def test_usable_cpus_follow_the_affinity_mask_and_the_cgroup_quota(tmp_path, mon
     # file formats from the Linux kernel documentation: cgroup v2 cpu.max "<quota> <period>"
     # or "max <period>" (admin-guide/cgroup-v2.rst); v1 cpu.cfs_quota_us / cpu.cfs_period_us,
     # quota -1 meaning none (scheduler/sched-bwc.rst)
-    from pipeline.engine.executor import cgroup_cpu_quota, usable_cpus
+    from pipeline.cpus import cgroup_cpu_quota, usable_cpus
     _affinity(monkeypatch, 6)  # e.g. taskset -c 0-5 on a bigger host
     assert cgroup_cpu_quota(str(tmp_path)) is None
     assert usable_cpus(str(tmp_path)) == 6

@@ -9,7 +9,7 @@ import pytest
 
 from fixtures_midi import bach_chorale_midi, mido_rows, parse_hexdump, piece_rows, random_midi
 from pipeline.midi.encode import encode, vlq
-from pipeline.outputs.files import write_atomic
+from pipeline.store.atomic import write_atomic
 from pipeline.errors import OutputError
 from pipeline.midi.decode import decode
 from test_smf import VLQ_EXAMPLES

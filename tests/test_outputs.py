@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from pipeline.analysis.transpose import shift_key_signatures
-from pipeline.outputs.files import write_atomic
+from pipeline.store.atomic import write_atomic
 from pipeline.midi.piece import KEY_DTYPE
 
 

@@ -30,7 +30,7 @@ import numpy as np
 
 from ..errors import MidisiftError, UsageError
 from ..store.lock import OutputLock
-from ..outputs.files import write_atomic
+from ..store.atomic import write_atomic
 from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
 from .png import png_bytes, roll_image

@@ -8,7 +8,8 @@ from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
 from ..store.codec import json_default
-from .files import DEFAULT_PART, Placed, write_atomic
+from ..store.atomic import write_atomic
+from .files import DEFAULT_PART, Placed
 from .summary import write_summary
 
 #: Manifest fields of the contract, in the order they are written; other measures follow sorted.

@@ -15,7 +15,7 @@ import time
 from pathlib import Path
 from typing import Any, Iterable
 
-from .files import write_atomic
+from ..store.atomic import write_atomic
 from ..reasons import REASONS
 
 PITCH_NAMES = ("C", "C#", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")

@@ -7,7 +7,8 @@ from pathlib import Path
 from typing import Any
 
 from ..store.codec import json_default
-from .files import DEFAULT_PART, Placed, write_atomic
+from ..store.atomic import write_atomic
+from .files import DEFAULT_PART, Placed
 
 def configured_parts(stages: list) -> list[str]:
     """The parts a run writes, in the config's order: those of the stage that assigns parts

@@ -8,7 +8,7 @@ does not exist (Windows) the file is created exclusively and a stale one is reco
 pid no longer running on this host.
 
 Taking the lock also sweeps the temporary files (``.NAME.XXXX.tmp``, see
-``outputs.files.write_atomic``) that a killed run may have left: no other run can be writing them, and
+``store.atomic.write_atomic``) that a killed run may have left: no other run can be writing them, and
 they never carry a final name, so removing them loses nothing.
 """
 from __future__ import annotations

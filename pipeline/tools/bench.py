@@ -45,7 +45,7 @@ from typing import Any, Callable
 
 from ..errors import UsageError
 from .defaults import write_default_config
-from ..engine.executor import usable_cpus
+from ..cpus import usable_cpus
 
 SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup")
 

@@ -1,0 +1,61 @@
+"""Atomic file writes: a reader sees the old file or the new one, never a part."""
+from __future__ import annotations
+
+import functools
+import os
+import tempfile
+from pathlib import Path
+from typing import Iterable
+
+from ..errors import OutputError
+
+
+@functools.cache
+def _file_mode() -> int:
+    """The mode a plain ``open()`` gives a new file: 0o666 less the process's umask (read once;
+    os.umask can only be read by setting it). ``mkstemp`` would leave 0o600."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool = True) -> None:
+    """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
+    see the old file or the new one, never a part. ``data`` may be an iterable of text chunks
+    (streamed: the manifest of a million files is never one string in memory). ``fsync=False``
+    skips the flush where the file may be lost to a power cut (the up-to-date summary)."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        try:
+            if hasattr(os, "fchmod"):
+                os.fchmod(fd, _file_mode())  # follow the umask like any tool's output
+            with os.fdopen(fd, "wb") as fh:
+                if isinstance(data, (bytes, bytearray, memoryview)):
+                    fh.write(data)
+                elif isinstance(data, str):
+                    fh.write(data.encode("utf-8"))
+                else:
+                    buf: list[str] = []
+                    size = 0
+                    for chunk in data:
+                        buf.append(chunk)
+                        size += len(chunk)
+                        if size >= 1 << 20:
+                            fh.write("".join(buf).encode("utf-8"))
+                            buf, size = [], 0
+                    fh.write("".join(buf).encode("utf-8"))
+                if fsync:
+                    fh.flush()
+                    os.fsync(fh.fileno())
+            os.replace(tmp, path)
+        except BaseException:
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
+            raise
+    except OSError as e:
+        raise OutputError(f"cannot write ({e.strerror}); check free space and permissions of the output folder",
+                          file=str(path)) from None
