@@ -338,3 +338,52 @@ def pop(folder: str | Path, count: int | None = None, music21_count: int | None 
     fast = [_render_pop(i) for i in items if not i[3]]
     by_name = {w["name"]: w for w in slow + fast}
     return [by_name[rel] for rel in chosen]
+
+
+# ---------------------------------------------------------------------------------------------
+# Modulation truth: key-signature changes in the notation
+
+def abc_key_changes(text: str) -> bool:
+    """Whether an ABC tune changes key signature in its body: a later ``K:`` field whose
+    major/minor key (read as its key signature: the relative major's tonic) differs from the
+    header's. Modal or unreadable ``K:`` fields count by their tonic and mode letters as written,
+    so ``K:G`` then ``K:Em`` is no change (one signature) and ``K:G`` then ``K:D`` is one."""
+    values = [line[2:].split("%")[0].strip() for line in text.splitlines() if line.startswith("K:")]
+    signatures = set()
+    for value in values:
+        key = abc_key(value)
+        signatures.add(((key[0] + (3 if key[1] == "minor" else 0)) % 12) if key else value)
+    return len(signatures) > 1
+
+
+def folk_key_changes() -> dict[str, bool]:
+    """``abc_key_changes`` of every folk tune, by work name."""
+    return {name: abc_key_changes(text) for name, text in folk_tunes_text()}
+
+
+def _score_signature_change(item: tuple[str, str]) -> tuple[str, bool | None]:
+    rel, path = item
+
+    def build():
+        from music21 import converter
+        try:
+            score = converter.parse(path)
+            if hasattr(score, "scores"):
+                score = score.scores[0]
+            part = score.parts[0] if score.parts else score
+            sharps = [ks.sharps for ks in part.flatten().getElementsByClass("KeySignature")]
+        except Exception as exc:  # files the key set skips too
+            return {"name": rel, "error": f"{type(exc).__name__}: {exc}"}
+        return {"name": rel, "changes": len(set(sharps)) > 1}
+    rec = _cached_work("classical-signatures", rel, build)
+    return rel, (None if rec is None or "error" in rec else rec["changes"])
+
+
+def signature_changes(works: list[dict]) -> dict[str, bool | None]:
+    """Whether the first part of each corpus-score work (chorales, classical) changes key
+    signature (a notated key change), by work name (music21 parse, cached like the works;
+    None for a file music21 cannot read)."""
+    from music21 import corpus
+    root = Path(corpus.getWork("bach/bwv66.6")).parent.parent
+    items = [(w["name"], str(root / w["name"])) for w in works]
+    return dict(_parallel_map(_score_signature_change, items))
