@@ -136,12 +136,24 @@ def key_path(sets: np.ndarray, switch_cost: float = SWITCH_COST) -> np.ndarray:
     return path
 
 
+def windowed_path(piece: Piece) -> tuple[np.ndarray, np.ndarray]:
+    """(segment sets, key path) at the default segment length and switch cost: what
+    ``key_regions`` reads, and what the learned key method reads as features."""
+    sets = segment_sets(piece)
+    return sets, key_path(sets)
+
+
 def key_regions(piece: Piece, main: int | None = None, window_beats: float = WINDOW_BEATS,
-                switch_cost: float = SWITCH_COST, min_share: float = MIN_SHARE) -> KeyRegions:
+                switch_cost: float = SWITCH_COST, min_share: float = MIN_SHARE,
+                windowed: tuple[np.ndarray, np.ndarray] | None = None) -> KeyRegions:
     """The windowed key estimate of a piece (see the module docstring). ``main``: the main
-    key's index (0-23), e.g. from ``key.estimate_key``; None: the key of the most segments."""
-    sets = segment_sets(piece, window_beats)
-    path = key_path(sets, switch_cost)
+    key's index (0-23), e.g. from ``key.estimate_key``; None: the key of the most segments.
+    ``windowed``: ``windowed_path(piece)`` when already computed (default lengths only)."""
+    if windowed is not None and (window_beats, switch_cost) == (WINDOW_BEATS, SWITCH_COST):
+        sets, path = windowed
+    else:
+        sets = segment_sets(piece, window_beats)
+        path = key_path(sets, switch_cost)
     sounding = sets != 0
     keys = path[sounding]
     if main is None:

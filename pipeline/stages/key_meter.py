@@ -125,7 +125,8 @@ class KeyMeter(Stage):
         if declared is not None:
             agrees = keymod.parse_key(declared) == (est.tonic_pc, est.mode)
         regions = modmod.key_regions(piece, est.tonic_pc + (12 if est.mode == "minor" else 0),
-                                     min_share=float(self.opts["modulation_share"]))
+                                     min_share=float(self.opts["modulation_share"]),
+                                     windowed=est.windowed)
         meter_est = ctx.analysis("meter", metermod.estimate_meter)
         file_meter = metermod.meter_from_file(piece)
         meter_issue = metermod.declared_meter_issue(file_meter, meter_est,
