@@ -126,11 +126,18 @@ def test_key_path_is_the_best_path():
 
 
 def test_segment_sets_count_sustained_notes_in_every_segment():
-    # a note held over three 8-beat segments, then a silent segment, then two notes
-    sets = modulation.segment_sets(_piece([(0, 20, 60), (32, 33, 62), (39, 41, 64)]))
-    assert sets.tolist() == [1 << 0, 1 << 0, 1 << 0, 0, (1 << 2) | (1 << 4), 1 << 4]
-    assert modulation.segment_sets(_piece([])).tolist() == []
+    # a note held over three 8-beat segments (0-2), a note in segment 1, nothing starting in
+    # segments 2-3, then two notes in segment 4 (the second held into segment 5)
+    numbers, sets = modulation.segment_sets(_piece([(0, 20, 60), (9, 10, 67), (32, 33, 62),
+                                                    (39, 41, 64)]))
+    assert numbers.tolist() == [0, 1, 4]  # segments where a note starts
+    assert sets.tolist() == [1 << 0, (1 << 0) | (1 << 7), (1 << 2) | (1 << 4)]
+    empty = modulation.segment_sets(_piece([]))
+    assert empty[0].tolist() == [] and empty[1].tolist() == []
     assert not modulation.key_regions(_piece([])).modulates
+    # huge tick values cost nothing: segments are numbered by rank
+    far = _piece([(0, 4, 60), (2.0 ** 52, 2.0 ** 52 + 4, 62)])
+    assert modulation.segment_sets(far)[1].tolist() == [1 << 0, 1 << 2]
 
 
 def test_key_meter_records_modulation():

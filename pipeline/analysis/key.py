@@ -327,7 +327,7 @@ def parse_key(text: str) -> tuple[int, str]:
 #:   of the last beat that holds one; ``cadence_major`` / ``cadence_minor``: per root, how
 #:   often a major / minor triad on it follows a major triad on its fifth (V-I, common practice)
 #:   from one beat with a triad to the next;
-#: - ``path_major`` / ``path_minor``: per tonic, the share of the sounding 8-beat segments the
+#: - ``path_major`` / ``path_minor``: per tonic, the share of the 8-beat segments the
 #:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it.
 FEATURES = ("duration", "onsets", "bass", "top", "final", "on_beat", "first_bass", "last_bass",
             "last_top", "major_triads", "minor_triads", "first_major_triad", "first_minor_triad",
@@ -378,7 +378,7 @@ def _onset_extremes(start: np.ndarray, pitch: np.ndarray) -> tuple[np.ndarray, n
     return first, last
 
 
-def key_features(piece: Piece, windowed: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -> np.ndarray:
     """(len(FEATURES), 12) distributions of the pitched notes (see FEATURES). ``windowed``:
     ``modulation.windowed_path(piece)`` when already computed."""
     notes = piece.notes
@@ -434,8 +434,7 @@ def key_features(piece: Piece, windowed: tuple[np.ndarray, np.ndarray] | None = 
     if windowed is None:
         from .modulation import windowed_path  # modulation imports this module
         windowed = windowed_path(piece)
-    sets, path = windowed
-    out[17:19] = np.bincount(path[sets != 0], minlength=24).reshape(2, 12)
+    out[17:19] = np.bincount(windowed[2], minlength=24).reshape(2, 12)
     total = out.sum(axis=1, keepdims=True)
     np.divide(out, total, out=out, where=total > 0)
     return out

@@ -9,7 +9,7 @@ the log-probability of the set of pitch classes it holds. The key sequence is th
 path (Viterbi) where changing key between segments costs ``switch_cost`` (a log-probability).
 
 A piece *modulates* when the path holds two key signatures for at least ``min_share`` of its
-sounding segments each (so a move to the relative major or minor is not counted: it changes
+segments each (so a move to the relative major or minor is not counted: it changes
 no pitch collection). The second key is the path's most frequent key among those two
 signatures' that is not of the main key's signature; the main key is given (the stage passes
 its whole-piece estimate) or is the key of the most segments. The path alone decides whether
@@ -57,9 +57,9 @@ class KeyRegions:
 
     ``segments``: (start beat, end beat, key index) runs of the path, key index as in
     ``KeyEstimate.scores`` (0-11 major on C..B, 12-23 minor); ``main``: the main key's index;
-    ``modulates``: two key signatures each hold at least ``min_share`` of the sounding
-    segments; ``second``: the most frequent key of the other of the path's two main signatures
-    (index), or None; ``second_share``: the share of the sounding segments held by the path's
+    ``modulates``: two key signatures each hold at least ``min_share`` of the
+    segments (those where a note starts); ``second``: the most frequent key of the other of the path's two main signatures
+    (index), or None; ``second_share``: the share of the segments held by the path's
     second signature.
     """
 
@@ -85,25 +85,30 @@ def signature_of(index: int) -> int:
 _SIGNATURES = np.array([signature_of(k) for k in range(24)])
 
 
-def segment_sets(piece: Piece, window_beats: float = WINDOW_BEATS) -> np.ndarray:
-    """The set of pitch classes sounding in each segment of ``window_beats`` beats, as 12-bit
-    numbers (0: a silent segment); a note counts in every segment it sounds in."""
+def segment_sets(piece: Piece, window_beats: float = WINDOW_BEATS) -> tuple[np.ndarray, np.ndarray]:
+    """(segment numbers, pitch-class sets): the segments of ``window_beats`` beats in which a
+    note starts, in time order (segment n covers beats [n * window_beats, (n + 1) *
+    window_beats)), and the set of pitch classes sounding in each, as 12-bit numbers; a note
+    counts in every such segment it sounds in. Segments where no note starts hold only notes
+    carried over and are left out, so huge tick values cost nothing (segments by rank)."""
     notes = piece.notes
     keep = notes["channel"] != DRUM_CHANNEL
     start, end, pitch = notes["start"][keep], notes["end"][keep], notes["pitch"][keep]
     if len(start) == 0:
-        return np.zeros(0, dtype=np.int64)
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
     size = window_beats * piece.ticks_per_beat
     first = (start // size).astype(np.int64)
     last = np.maximum(first, ((end - 1) // size).astype(np.int64))
-    count = int(last.max()) + 1
-    # +1 at a note's first segment, -1 after its last, cumulative sum: notes sounding per
-    # segment and pitch class
+    numbers = np.unique(first)
+    # +1 at a note's first segment's rank, -1 at the rank after its last segment, cumulative
+    # sum: notes sounding per segment and pitch class
+    a = np.searchsorted(numbers, first)
+    b = np.searchsorted(numbers, last, side="right")
     pc = (pitch % 12).astype(np.int64)
-    delta = (np.bincount(first * 12 + pc, minlength=(count + 1) * 12)
-             - np.bincount((last + 1) * 12 + pc, minlength=(count + 1) * 12))
-    sounding = np.cumsum(delta.reshape(-1, 12)[:count], axis=0) > 0
-    return sounding.astype(np.int64) @ _BITS
+    size12 = (len(numbers) + 1) * 12
+    delta = np.bincount(a * 12 + pc, minlength=size12) - np.bincount(b * 12 + pc, minlength=size12)
+    sounding = np.cumsum(delta.reshape(-1, 12)[:-1], axis=0) > 0
+    return numbers, sounding.astype(np.int64) @ _BITS
 
 
 def key_path(sets: np.ndarray, switch_cost: float = SWITCH_COST) -> np.ndarray:
@@ -136,43 +141,42 @@ def key_path(sets: np.ndarray, switch_cost: float = SWITCH_COST) -> np.ndarray:
     return path
 
 
-def windowed_path(piece: Piece) -> tuple[np.ndarray, np.ndarray]:
-    """(segment sets, key path) at the default segment length and switch cost: what
-    ``key_regions`` reads, and what the learned key method reads as features."""
-    sets = segment_sets(piece)
-    return sets, key_path(sets)
+def windowed_path(piece: Piece) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(segment numbers, segment sets, key path) at the default segment length and switch
+    cost: what ``key_regions`` reads, and what the learned key method reads as features."""
+    numbers, sets = segment_sets(piece)
+    return numbers, sets, key_path(sets)
 
 
 def key_regions(piece: Piece, main: int | None = None, window_beats: float = WINDOW_BEATS,
                 switch_cost: float = SWITCH_COST, min_share: float = MIN_SHARE,
-                windowed: tuple[np.ndarray, np.ndarray] | None = None) -> KeyRegions:
+                windowed: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> KeyRegions:
     """The windowed key estimate of a piece (see the module docstring). ``main``: the main
     key's index (0-23), e.g. from ``key.estimate_key``; None: the key of the most segments.
     ``windowed``: ``windowed_path(piece)`` when already computed (default lengths only)."""
     if windowed is not None and (window_beats, switch_cost) == (WINDOW_BEATS, SWITCH_COST):
-        sets, path = windowed
+        numbers, sets, path = windowed
     else:
-        sets = segment_sets(piece, window_beats)
+        numbers, sets = segment_sets(piece, window_beats)
         path = key_path(sets, switch_cost)
-    sounding = sets != 0
-    keys = path[sounding]
     if main is None:
-        main = int(np.bincount(keys, minlength=24).argmax()) if len(keys) else 0
-    segments = []
-    for i, k in enumerate(path.tolist()):
+        main = int(np.bincount(path, minlength=24).argmax()) if len(path) else 0
+    segments = []  # runs of one key; a segment where no note starts joins the run before it
+    for n, k in zip(numbers.tolist(), path.tolist()):
         if segments and segments[-1][2] == k:
-            segments[-1][1] = (i + 1) * window_beats
+            segments[-1][1] = (n + 1) * window_beats
         else:
-            segments.append([i * window_beats, (i + 1) * window_beats, k])
+            begin = segments[-1][1] if segments else n * window_beats
+            segments.append([begin, (n + 1) * window_beats, k])
     second, share = None, 0.0
-    if len(keys):
-        signatures = _SIGNATURES[keys]
+    if len(path):
+        signatures = _SIGNATURES[path]
         held = np.bincount(signatures, minlength=12)
         top_two = np.argsort(-held, kind="stable")[:2]
-        share = float(held[top_two[1]] / len(keys))
+        share = float(held[top_two[1]] / len(path))
         other = [int(s) for s in top_two if s != signature_of(main) and held[s]]
         if other:
-            in_sig = keys[signatures == other[0]]
+            in_sig = path[signatures == other[0]]
             second = int(np.bincount(in_sig, minlength=24).argmax())
     return KeyRegions(segments=tuple((float(a), float(b), int(k)) for a, b, k in segments),
                       main=int(main), modulates=share >= min_share and second is not None,
