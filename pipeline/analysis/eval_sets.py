@@ -1,4 +1,4 @@
-"""Evaluation sets for key (and meter) detection across genres, with music21's analyses.
+"""Evaluation sets for key and meter detection across genres, with music21's analyses.
 
 Each loader returns a list of *works*, plain dicts::
 
@@ -37,7 +37,14 @@ import os
 import re
 import time
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterable
+
+import numpy as np
+
+from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
+                     sort_notes)
+from . import key as keymod
+from . import meter as metermod
 
 #: music21's analyzers run side by side: its default ``analyze('key')`` and its single profiles.
 MUSIC21_KEY_METHODS = ("key", "key.krumhanslschmuckler", "key.aardenessen",
@@ -338,3 +345,300 @@ def pop(folder: str | Path, count: int | None = None, music21_count: int | None 
     fast = [_render_pop(i) for i in items if not i[3]]
     by_name = {w["name"]: w for w in slow + fast}
     return [by_name[rel] for rel in chosen]
+
+
+# ---------------------------------------------------------------------------------------------
+# Modulation truth: key-signature changes in the notation
+
+def abc_key_changes(text: str) -> bool:
+    """Whether an ABC tune changes key signature in its body: a later ``K:`` field whose
+    major/minor key (read as its key signature: the relative major's tonic) differs from the
+    header's. Modal or unreadable ``K:`` fields count by their tonic and mode letters as written,
+    so ``K:G`` then ``K:Em`` is no change (one signature) and ``K:G`` then ``K:D`` is one."""
+    values = [line[2:].split("%")[0].strip() for line in text.splitlines() if line.startswith("K:")]
+    signatures = set()
+    for value in values:
+        key = abc_key(value)
+        signatures.add(((key[0] + (3 if key[1] == "minor" else 0)) % 12) if key else value)
+    return len(signatures) > 1
+
+
+def folk_key_changes() -> dict[str, bool]:
+    """``abc_key_changes`` of every folk tune, by work name."""
+    return {name: abc_key_changes(text) for name, text in folk_tunes_text()}
+
+
+def _score_signature_change(item: tuple[str, str]) -> tuple[str, bool | None]:
+    rel, path = item
+
+    def build():
+        from music21 import converter
+        try:
+            score = converter.parse(path)
+            if hasattr(score, "scores"):
+                score = score.scores[0]
+            part = score.parts[0] if score.parts else score
+            sharps = [ks.sharps for ks in part.flatten().getElementsByClass("KeySignature")]
+        except Exception as exc:  # files the key set skips too
+            return {"name": rel, "error": f"{type(exc).__name__}: {exc}"}
+        return {"name": rel, "changes": len(set(sharps)) > 1}
+    rec = _cached_work("classical-signatures", rel, build)
+    return rel, (None if rec is None or "error" in rec else rec["changes"])
+
+
+def signature_changes(works: list[dict]) -> dict[str, bool | None]:
+    """Whether the first part of each corpus-score work (chorales, classical) changes key
+    signature (a notated key change), by work name (music21 parse, cached like the works;
+    None for a file music21 cannot read)."""
+    from music21 import corpus
+    root = Path(corpus.getWork("bach/bwv66.6")).parent.parent
+    items = [(w["name"], str(root / w["name"])) for w in works]
+    return dict(_parallel_map(_score_signature_change, items))
+
+
+# ---------------------------------------------------------------------------------------------
+# Meter sets (evaluate_meter): notated meters, music21 parses kept as plain note lists
+#
+# Folk tunes (``FOLK_BOOKS``, ``M:`` truth), Bach chorales and the classical movements with one
+# declared time signature, each split into a development and a held-out part, and the pop set's
+# indexed meters; cached as JSON under /tmp/meter-cache/<music21 version>.
+
+#: Bump when a loader's output changes, to invalidate the cache.
+METER_CACHE_VERSION = 1
+TPB = 480
+
+FOLK_BOOKS = ("airdsAirs/book1.abc", "airdsAirs/book2.abc", "airdsAirs/book3.abc",
+              "airdsAirs/book4.abc", "airdsAirs/book5.abc", "airdsAirs/book6.abc",
+              "miscFolk/americanfifeopus.abc", "miscFolk/northumbrianminstrelsyopus.abc")
+#: Corpus folders of the ``classical`` set (multi-movement works are folders of movements).
+CLASSICAL_DIRS = ("beethoven", "mozart", "haydn", "schubert", "schumann_robert",
+                  "schumann_clara", "chopin", "joplin", "weber", "verdi", "cpebach", "beach",
+                  "johnson_j_r", "liliuokalani", "monteverdi", "opus18no1", "opus59no1",
+                  "opus59no2", "opus59no3", "opus74no1", "opus1no1", "opus3no1", "opus17",
+                  "opus19", "opus41no1", "k155", "k156", "k458", "k545", "k80")
+#: Files larger than this are skipped in the classical set (parse time).
+METER_CLASSICAL_MAX_BYTES = 600_000
+
+
+def meter_cache_dir() -> Path:
+    import music21
+    d = Path("/tmp/meter-cache") / music21.__version__
+    d.mkdir(parents=True, exist_ok=True)
+    return d
+
+
+# ---------------------------------------------------------------------------------------------
+# music21 scores -> plain note lists (cached) -> Piece
+
+def score_record(score, name: str) -> dict[str, Any] | None:
+    """Notes (start, end in ticks at 480 per quarter; pitch; part) and the notated meter of a
+    music21 score; None without a time signature, with a meter change, or under 16 notes."""
+    from music21 import harmony
+    sigs = {ts.ratioString for ts in score.recurse().getElementsByClass("TimeSignature")}
+    if len(sigs) != 1:
+        return None
+    parts = list(score.parts) or [score]
+    rows = []
+    for pi, part in enumerate(parts):
+        flat = part.stripTies().flatten()
+        for n in flat.notes:
+            if isinstance(n, harmony.ChordSymbol) or n.duration.isGrace:
+                continue
+            ql = float(n.quarterLength)
+            if ql <= 0:
+                continue
+            start = int(round(float(n.getOffsetInHierarchy(flat)) * TPB))
+            end = start + max(1, int(round(ql * TPB)))
+            for p in n.pitches:
+                rows.append((start, end, int(p.midi), pi))
+    if len(rows) < 16:
+        return None
+    meter = sigs.pop()
+    return {"name": name, "meter": _normal_meter(meter), "notes": rows}
+
+
+def _normal_meter(meter: str) -> str:
+    return {"C": "4/4", "C|": "2/2"}.get(meter, meter)
+
+
+def piece_from_notes(rows: Iterable[tuple[int, int, int, int]], tpb: int = TPB) -> Piece:
+    """A Piece of the given (start, end, pitch, part) rows, without time or key signatures."""
+    rows = list(rows)
+    notes = empty_notes(len(rows))
+    if rows:
+        arr = np.array(rows, dtype=np.int64)
+        notes["start"], notes["end"], notes["pitch"] = arr[:, 0], arr[:, 1], arr[:, 2]
+        notes["track"] = arr[:, 3]
+        notes["channel"] = arr[:, 3] % 9
+        notes["velocity"] = 80
+        sec = 60.0 / 120 / tpb
+        notes["start_s"], notes["end_s"] = arr[:, 0] * sec, arr[:, 1] * sec
+    notes = sort_notes(notes)
+    return Piece(notes=notes, ticks_per_beat=tpb,
+                 tempos=np.array([(0, DEFAULT_TEMPO)], dtype=TEMPO_DTYPE),
+                 time_signatures=np.zeros(0, dtype=METER_DTYPE),
+                 key_signatures=np.zeros(0, dtype=KEY_DTYPE),
+                 end_tick=int(notes["end"].max()) if len(notes) else 0)
+
+
+def _cached_json(name: str, build: Callable[[], Any]) -> Any:
+    path = meter_cache_dir() / f"{name}-v{METER_CACHE_VERSION}.json"
+    if path.exists():
+        try:
+            return json.loads(path.read_text(encoding="utf-8"))
+        except ValueError:  # a torn file: rebuild
+            pass
+    value = build()
+    tmp = path.with_suffix(f".tmp{os.getpid()}")
+    tmp.write_text(json.dumps(value), encoding="utf-8")
+    os.replace(tmp, path)
+    return value
+
+
+def _abc_book(relpath: str) -> list[dict[str, Any]]:
+    """The tunes of one ABC file of music21's corpus, each with its ``M:`` meter."""
+    assert not any(r in relpath for r in RESERVED)
+
+    def build():
+        from music21 import corpus
+        opus = corpus.parse(relpath)
+        out = []
+        for i, score in enumerate(opus.scores):
+            try:
+                rec = score_record(score, f"{relpath}#{i}")
+            except Exception:  # a tune music21 cannot lay out: skipped
+                rec = None
+            if rec is not None:
+                out.append(rec)
+        return out
+    return _cached_json("abc-" + relpath.replace("/", "-"), build)
+
+
+def _corpus_file(path: Path) -> dict[str, Any] | None:
+    def build():
+        from music21 import converter
+        try:
+            score = converter.parse(str(path))
+            if hasattr(score, "scores"):  # an opus: its first score
+                score = score.scores[0]
+            return score_record(score, path.stem) or {}
+        except Exception:
+            return {}
+    root = str(path).split("/corpus/", 1)[-1].replace("/", "-")
+    rec = _cached_json("file-" + root, build)
+    return {**rec, "name": str(path).split("/corpus/", 1)[-1]} if rec else None
+
+
+def meter_folk(split: str) -> list[dict[str, Any]]:
+    """Folk tunes with notated meters: the even-numbered tunes of every book (``dev``) or the
+    odd-numbered ones (``held``), so both parts cover every book's style."""
+    want = 0 if split == "dev" else 1
+    return [t for rel in FOLK_BOOKS for t in _abc_book(rel)
+            if int(t["name"].rsplit("#", 1)[1]) % 2 == want]
+
+
+def chorale_paths() -> list[Path]:
+    from music21 import corpus
+    return sorted(p for p in corpus.getComposer("bach") if p.name.startswith("bwv")
+                  and p.suffix in (".mxl", ".xml", ".krn"))
+
+
+def meter_chorales(split: str, limit: int = 120) -> list[dict[str, Any]]:
+    """Bach chorales with one declared meter; even positions ``dev``, odd ``held``."""
+    paths = chorale_paths()[(0 if split == "dev" else 1)::2][:limit]
+    return [r for r in map(_corpus_file, paths) if r is not None]
+
+
+#: Preferred encoding when a corpus work comes in several (the same notes twice would put one
+#: work on both sides of the development / held-out split).
+_SUFFIX_ORDER = (".mxl", ".xml", ".musicxml", ".krn")
+
+
+def classical_paths() -> list[Path]:
+    """The classical set's files: one encoding per work (``_SUFFIX_ORDER``), no ``_old``
+    duplicates, size-limited."""
+    from music21 import corpus
+    root = Path(corpus.getComposer("bach")[0]).parents[1]
+    chosen: dict[tuple[Path, str], Path] = {}
+    for d in CLASSICAL_DIRS:
+        for p in sorted((root / d).rglob("*")):
+            if (p.suffix in _SUFFIX_ORDER and p.is_file() and not p.stem.endswith("_old")
+                    and p.stat().st_size <= METER_CLASSICAL_MAX_BYTES
+                    and not any(r in str(p) for r in RESERVED)):
+                key = (p.parent, p.stem)
+                if key not in chosen or _SUFFIX_ORDER.index(p.suffix) < \
+                        _SUFFIX_ORDER.index(chosen[key].suffix):
+                    chosen[key] = p
+    return sorted(chosen.values())
+
+
+def _distinct(works: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The works whose note lists differ from every earlier one's (the corpus holds a few
+    works twice under different names)."""
+    seen, out = set(), []
+    for w in works:
+        key = hash(tuple(map(tuple, w["notes"])))
+        if key not in seen:
+            seen.add(key)
+            out.append(w)
+    return out
+
+
+def meter_classical(split: str) -> list[dict[str, Any]]:
+    """Single-meter movements of the other corpus works; alternate files dev / held."""
+    works = _distinct([r for r in map(_corpus_file, classical_paths()) if r is not None])
+    return works[(0 if split == "dev" else 1)::2]
+
+
+# ---------------------------------------------------------------------------------------------
+# The pop dev set (passed as an argument)
+
+def meter_pop(folder: str | Path, split: str) -> list[dict[str, Any]]:
+    """Files of the pop dev set with their indexed meter; songs 1 mod 4 ``dev``, 3 mod 4
+    ``held``. Each record holds the decoded Piece (time signatures removed) and the declared
+    meter of the file."""
+    from ..midi.decode import decode
+    folder = Path(folder)
+    labels = json.loads((folder / "labels.json").read_text(encoding="utf-8"))["files"]
+    want = 1 if split == "dev" else 3
+    out = []
+    for rel, lab in sorted(labels.items()):
+        if int(lab["song"]) % 4 != want:
+            continue
+        piece = decode((folder / rel).read_bytes())
+        out.append({"name": rel, "meter": file_time_meter(lab), "label": lab["meter_exact"],
+                    "piece": _without_meter(piece), "declared": metermod.meter_from_file(piece),
+                    "key_declared": keymod.declared_key(piece),
+                    "key_truth": (lab["tonic_pc"], lab["mode"])})
+    return out
+
+
+def file_time_meter(label: dict[str, Any]) -> str:
+    """The pop set's meter in the file's own time base. Its 6/8 songs carry the dotted-quarter
+    beat on the file's quarter note and their annotated downbeats fall every
+    ``beat_midi_downbeat_gap`` (4) file quarters, as in the 4/4 songs: in the file they are bars
+    of four quarter-note beats, so their truth here is 4/4 (their compound division is not
+    visible in the time base)."""
+    if label["meter_exact"] == "6/8" and label.get("beat_midi_downbeat_gap") == 4:
+        return "4/4"
+    return label["meter_exact"]
+
+
+def _without_meter(piece: Piece) -> Piece:
+    return Piece(**{**piece.__dict__, "time_signatures": np.zeros(0, dtype=METER_DTYPE)})
+
+
+def load_meter_sets(names: list[str], pop_folder: str | None) -> dict[str, list[dict[str, Any]]]:
+    loaders: dict[str, Callable[[], list[dict[str, Any]]]] = {
+        "folk-dev": lambda: meter_folk("dev"), "folk-held": lambda: meter_folk("held"),
+        "chorales-dev": lambda: meter_chorales("dev"), "chorales-held": lambda: meter_chorales("held"),
+        "classical-dev": lambda: meter_classical("dev"), "classical-held": lambda: meter_classical("held"),
+    }
+    if pop_folder:
+        loaders["pop-dev"] = lambda: meter_pop(pop_folder, "dev")
+        loaders["pop-held"] = lambda: meter_pop(pop_folder, "held")
+    return {n: loaders[n]() for n in names if n in loaders}
+
+
+METER_SETS = ("folk-dev", "folk-held", "chorales-dev", "chorales-held", "classical-dev",
+            "classical-held", "pop-dev", "pop-held")

@@ -643,6 +643,11 @@ def main(argv: list[str] | None = None) -> None:
     for name, works in sets.items():
         learned = cross_validated_predictions(train, name, works) if train is not None else None
         print_report(genre_report(name, works, learned))
+    from .evaluate_modulation import modulation_report, pop_annotated_keys, print_modulation, truths
+    print()
+    for name, works in sets.items():  # the windowed estimate's modulation flag (key_modulates)
+        print_modulation(modulation_report(name, works, truths(name, works),
+                                           pop_annotated_keys(args.pop) if name == "pop" else None))
     cropped = pieces_of_500_notes([w for ws in sets.values() for w in ws])
     if cropped:
         print(f"\nkey time per 500-note piece ({len(cropped)} pieces cut to their first 500 "

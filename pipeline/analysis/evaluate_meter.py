@@ -19,6 +19,7 @@ without time-signature events, and the pop files' declared time signatures are r
   file's quarter note carries the dotted-quarter beat and the annotated downbeats are four
   file quarters apart: scored as 4/4, the meter in the file's time base (``file_time_meter``).
 
+The set loaders live in ``eval_sets`` (one module loads every evaluation set).
 music21's folders ``oneills1850``, ``essenFolksong`` and ``ryansMammoth`` are reserved for
 independent evaluation and never read. music21 parses are cached as JSON under
 ``/tmp/meter-cache/<music21 version>`` (the first run takes about 20 minutes on a shared
@@ -39,235 +40,21 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                          sort_notes)
+                     sort_notes)
 from . import key as keymod
 from . import meter as metermod
 
-RESERVED = ("oneills1850", "essenFolksong", "ryansMammoth")
-#: Bump when a loader's output changes, to invalidate the cache.
-CACHE_VERSION = 1
-TPB = 480
-
-FOLK_BOOKS = ("airdsAirs/book1.abc", "airdsAirs/book2.abc", "airdsAirs/book3.abc",
-              "airdsAirs/book4.abc", "airdsAirs/book5.abc", "airdsAirs/book6.abc",
-              "miscFolk/americanfifeopus.abc", "miscFolk/northumbrianminstrelsyopus.abc")
-#: Corpus folders of the ``classical`` set (multi-movement works are folders of movements).
-CLASSICAL_DIRS = ("beethoven", "mozart", "haydn", "schubert", "schumann_robert",
-                  "schumann_clara", "chopin", "joplin", "weber", "verdi", "cpebach", "beach",
-                  "johnson_j_r", "liliuokalani", "monteverdi", "opus18no1", "opus59no1",
-                  "opus59no2", "opus59no3", "opus74no1", "opus1no1", "opus3no1", "opus17",
-                  "opus19", "opus41no1", "k155", "k156", "k458", "k545", "k80")
-#: Files larger than this are skipped in the classical set (parse time).
-CLASSICAL_MAX_BYTES = 600_000
-
-
-def cache_dir() -> Path:
-    import music21
-    d = Path("/tmp/meter-cache") / music21.__version__
-    d.mkdir(parents=True, exist_ok=True)
-    return d
-
-
-# ---------------------------------------------------------------------------------------------
-# music21 scores -> plain note lists (cached) -> Piece
-
-def score_record(score, name: str) -> dict[str, Any] | None:
-    """Notes (start, end in ticks at 480 per quarter; pitch; part) and the notated meter of a
-    music21 score; None without a time signature, with a meter change, or under 16 notes."""
-    from music21 import harmony
-    sigs = {ts.ratioString for ts in score.recurse().getElementsByClass("TimeSignature")}
-    if len(sigs) != 1:
-        return None
-    parts = list(score.parts) or [score]
-    rows = []
-    for pi, part in enumerate(parts):
-        flat = part.stripTies().flatten()
-        for n in flat.notes:
-            if isinstance(n, harmony.ChordSymbol) or n.duration.isGrace:
-                continue
-            ql = float(n.quarterLength)
-            if ql <= 0:
-                continue
-            start = int(round(float(n.getOffsetInHierarchy(flat)) * TPB))
-            end = start + max(1, int(round(ql * TPB)))
-            for p in n.pitches:
-                rows.append((start, end, int(p.midi), pi))
-    if len(rows) < 16:
-        return None
-    meter = sigs.pop()
-    return {"name": name, "meter": _normal_meter(meter), "notes": rows}
-
-
-def _normal_meter(meter: str) -> str:
-    return {"C": "4/4", "C|": "2/2"}.get(meter, meter)
-
-
-def piece_from_notes(rows: Iterable[tuple[int, int, int, int]], tpb: int = TPB) -> Piece:
-    """A Piece of the given (start, end, pitch, part) rows, without time or key signatures."""
-    rows = list(rows)
-    notes = empty_notes(len(rows))
-    if rows:
-        arr = np.array(rows, dtype=np.int64)
-        notes["start"], notes["end"], notes["pitch"] = arr[:, 0], arr[:, 1], arr[:, 2]
-        notes["track"] = arr[:, 3]
-        notes["channel"] = arr[:, 3] % 9
-        notes["velocity"] = 80
-        sec = 60.0 / 120 / tpb
-        notes["start_s"], notes["end_s"] = arr[:, 0] * sec, arr[:, 1] * sec
-    notes = sort_notes(notes)
-    return Piece(notes=notes, ticks_per_beat=tpb,
-                 tempos=np.array([(0, DEFAULT_TEMPO)], dtype=TEMPO_DTYPE),
-                 time_signatures=np.zeros(0, dtype=METER_DTYPE),
-                 key_signatures=np.zeros(0, dtype=KEY_DTYPE),
-                 end_tick=int(notes["end"].max()) if len(notes) else 0)
-
-
-def _cached_json(name: str, build: Callable[[], Any]) -> Any:
-    path = cache_dir() / f"{name}-v{CACHE_VERSION}.json"
-    if path.exists():
-        try:
-            return json.loads(path.read_text(encoding="utf-8"))
-        except ValueError:  # a torn file: rebuild
-            pass
-    value = build()
-    tmp = path.with_suffix(f".tmp{os.getpid()}")
-    tmp.write_text(json.dumps(value), encoding="utf-8")
-    os.replace(tmp, path)
-    return value
-
-
-def _abc_book(relpath: str) -> list[dict[str, Any]]:
-    """The tunes of one ABC file of music21's corpus, each with its ``M:`` meter."""
-    assert not any(r in relpath for r in RESERVED)
-
-    def build():
-        from music21 import corpus
-        opus = corpus.parse(relpath)
-        out = []
-        for i, score in enumerate(opus.scores):
-            try:
-                rec = score_record(score, f"{relpath}#{i}")
-            except Exception:  # a tune music21 cannot lay out: skipped
-                rec = None
-            if rec is not None:
-                out.append(rec)
-        return out
-    return _cached_json("abc-" + relpath.replace("/", "-"), build)
-
-
-def _corpus_file(path: Path) -> dict[str, Any] | None:
-    def build():
-        from music21 import converter
-        try:
-            score = converter.parse(str(path))
-            if hasattr(score, "scores"):  # an opus: its first score
-                score = score.scores[0]
-            return score_record(score, path.stem) or {}
-        except Exception:
-            return {}
-    root = str(path).split("/corpus/", 1)[-1].replace("/", "-")
-    rec = _cached_json("file-" + root, build)
-    return {**rec, "name": str(path).split("/corpus/", 1)[-1]} if rec else None
-
-
-def folk(split: str) -> list[dict[str, Any]]:
-    """Folk tunes with notated meters: the even-numbered tunes of every book (``dev``) or the
-    odd-numbered ones (``held``), so both parts cover every book's style."""
-    want = 0 if split == "dev" else 1
-    return [t for rel in FOLK_BOOKS for t in _abc_book(rel)
-            if int(t["name"].rsplit("#", 1)[1]) % 2 == want]
-
-
-def chorale_paths() -> list[Path]:
-    from music21 import corpus
-    return sorted(p for p in corpus.getComposer("bach") if p.name.startswith("bwv")
-                  and p.suffix in (".mxl", ".xml", ".krn"))
-
-
-def chorales(split: str, limit: int = 120) -> list[dict[str, Any]]:
-    """Bach chorales with one declared meter; even positions ``dev``, odd ``held``."""
-    paths = chorale_paths()[(0 if split == "dev" else 1)::2][:limit]
-    return [r for r in map(_corpus_file, paths) if r is not None]
-
-
-#: Preferred encoding when a corpus work comes in several (the same notes twice would put one
-#: work on both sides of the development / held-out split).
-_SUFFIX_ORDER = (".mxl", ".xml", ".musicxml", ".krn")
-
-
-def classical_paths() -> list[Path]:
-    """The classical set's files: one encoding per work (``_SUFFIX_ORDER``), no ``_old``
-    duplicates, size-limited."""
-    from music21 import corpus
-    root = Path(corpus.getComposer("bach")[0]).parents[1]
-    chosen: dict[tuple[Path, str], Path] = {}
-    for d in CLASSICAL_DIRS:
-        for p in sorted((root / d).rglob("*")):
-            if (p.suffix in _SUFFIX_ORDER and p.is_file() and not p.stem.endswith("_old")
-                    and p.stat().st_size <= CLASSICAL_MAX_BYTES
-                    and not any(r in str(p) for r in RESERVED)):
-                key = (p.parent, p.stem)
-                if key not in chosen or _SUFFIX_ORDER.index(p.suffix) < \
-                        _SUFFIX_ORDER.index(chosen[key].suffix):
-                    chosen[key] = p
-    return sorted(chosen.values())
-
-
-def _distinct(works: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """The works whose note lists differ from every earlier one's (the corpus holds a few
-    works twice under different names)."""
-    seen, out = set(), []
-    for w in works:
-        key = hash(tuple(map(tuple, w["notes"])))
-        if key not in seen:
-            seen.add(key)
-            out.append(w)
-    return out
-
-
-def classical(split: str) -> list[dict[str, Any]]:
-    """Single-meter movements of the other corpus works; alternate files dev / held."""
-    works = _distinct([r for r in map(_corpus_file, classical_paths()) if r is not None])
-    return works[(0 if split == "dev" else 1)::2]
-
-
-# ---------------------------------------------------------------------------------------------
-# The pop dev set (passed as an argument)
-
-def pop(folder: str | Path, split: str) -> list[dict[str, Any]]:
-    """Files of the pop dev set with their indexed meter; songs 1 mod 4 ``dev``, 3 mod 4
-    ``held``. Each record holds the decoded Piece (time signatures removed) and the declared
-    meter of the file."""
-    from ..midi.decode import decode
-    folder = Path(folder)
-    labels = json.loads((folder / "labels.json").read_text(encoding="utf-8"))["files"]
-    want = 1 if split == "dev" else 3
-    out = []
-    for rel, lab in sorted(labels.items()):
-        if int(lab["song"]) % 4 != want:
-            continue
-        piece = decode((folder / rel).read_bytes())
-        out.append({"name": rel, "meter": file_time_meter(lab), "label": lab["meter_exact"],
-                    "piece": _without_meter(piece), "declared": metermod.meter_from_file(piece),
-                    "key_declared": keymod.declared_key(piece),
-                    "key_truth": (lab["tonic_pc"], lab["mode"])})
-    return out
-
-
-def file_time_meter(label: dict[str, Any]) -> str:
-    """The pop set's meter in the file's own time base. Its 6/8 songs carry the dotted-quarter
-    beat on the file's quarter note and their annotated downbeats fall every
-    ``beat_midi_downbeat_gap`` (4) file quarters, as in the 4/4 songs: in the file they are bars
-    of four quarter-note beats, so their truth here is 4/4 (their compound division is not
-    visible in the time base)."""
-    if label["meter_exact"] == "6/8" and label.get("beat_midi_downbeat_gap") == 4:
-        return "4/4"
-    return label["meter_exact"]
-
-
-def _without_meter(piece: Piece) -> Piece:
-    return Piece(**{**piece.__dict__, "time_signatures": np.zeros(0, dtype=METER_DTYPE)})
-
+from .eval_sets import (CLASSICAL_DIRS, FOLK_BOOKS, RESERVED, TPB,  # noqa: F401 (the loaders
+                        _abc_book, _corpus_file, _distinct, _normal_meter,  # live in eval_sets)
+                        _without_meter, chorale_paths, classical_paths, file_time_meter,
+                        piece_from_notes, score_record)
+from .eval_sets import METER_SETS as ALL_SETS
+from .eval_sets import load_meter_sets as load_sets
+from .eval_sets import meter_cache_dir as cache_dir  # noqa: F401
+from .eval_sets import meter_chorales as chorales
+from .eval_sets import meter_classical as classical  # noqa: F401
+from .eval_sets import meter_folk as folk
+from .eval_sets import meter_pop as pop  # noqa: F401
 
 # ---------------------------------------------------------------------------------------------
 # Scoring
@@ -354,24 +141,10 @@ def key_flag_table(works: list[dict[str, Any]]) -> dict[str, int]:
             "flagged_truly_other": flagged_other}
 
 
-def load_sets(names: list[str], pop_folder: str | None) -> dict[str, list[dict[str, Any]]]:
-    loaders: dict[str, Callable[[], list[dict[str, Any]]]] = {
-        "folk-dev": lambda: folk("dev"), "folk-held": lambda: folk("held"),
-        "chorales-dev": lambda: chorales("dev"), "chorales-held": lambda: chorales("held"),
-        "classical-dev": lambda: classical("dev"), "classical-held": lambda: classical("held"),
-    }
-    if pop_folder:
-        loaders["pop-dev"] = lambda: pop(pop_folder, "dev")
-        loaders["pop-held"] = lambda: pop(pop_folder, "held")
-    return {n: loaders[n]() for n in names if n in loaders}
-
-
-ALL_SETS = ("folk-dev", "folk-held", "chorales-dev", "chorales-held", "classical-dev",
-            "classical-held", "pop-dev", "pop-held")
-
 
 def speed_500(repeats: int = 20) -> tuple[float, float]:
-    """Milliseconds of ``estimate_meter`` and of ``key.estimate_key`` per 500-note piece (best
+    """Milliseconds of ``estimate_meter`` and of ``key.estimate_key`` with the modulation flag
+    (``modulation.key_regions``, as key_meter runs them) per 500-note piece (best
     of three passes, process CPU time, so other jobs on the machine count less): held-out folk
     tunes and chorales concatenated and cut into 500-note pieces."""
     works = folk("held")[:200] + chorales("held", 40)
@@ -385,8 +158,13 @@ def speed_500(repeats: int = 20) -> tuple[float, float]:
             t0 = min(s for s, _, _, _ in chunk[:500])
             pieces.append(piece_from_notes([(s - t0, e - t0, p, q) for s, e, p, q in chunk[:500]]))
             chunk = chunk[500:]
+    from .modulation import key_regions
+
+    def key_and_modulation(piece: Piece) -> None:  # what key_meter computes for the key
+        est = keymod.estimate_key(piece)
+        key_regions(piece, est.tonic_pc + (12 if est.mode == "minor" else 0), windowed=est.windowed)
     times = []
-    for fn in (metermod.estimate_meter, keymod.estimate_key):
+    for fn in (metermod.estimate_meter, key_and_modulation):
         best = None
         for _ in range(3):  # best of three passes of process CPU time: the machine is shared
             t0 = time.process_time()
@@ -591,7 +369,7 @@ def main(argv: list[str] | None = None) -> None:
     if args.speed:
         meter_ms, key_ms = speed_500()
         print(f"\nper 500-note piece, same run: estimate_meter {meter_ms:.3f} ms, "
-              f"estimate_key {key_ms:.3f} ms, together {meter_ms + key_ms:.3f} ms")
+              f"estimate_key with the modulation flag {key_ms:.3f} ms, together {meter_ms + key_ms:.3f} ms")
 
 
 if __name__ == "__main__":

@@ -28,7 +28,7 @@ choice: "favor F#", "favor eb minor").
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -176,6 +176,9 @@ class KeyEstimate:
     correlation: float
     profile: str
     scores: tuple[float, ...] = ()
+    #: The learned method's windowed key path (``modulation.windowed_path``), reused by
+    #: key_meter's modulation flag; None for the correlation methods.
+    windowed: tuple | None = field(default=None, compare=False, repr=False)
 
     @property
     def name(self) -> str:
@@ -324,10 +327,13 @@ def parse_key(text: str) -> tuple[int, str]:
 #:   ``first_major_triad`` ... ``last_minor_triad``: the roots of the triads of the first and
 #:   of the last beat that holds one; ``cadence_major`` / ``cadence_minor``: per root, how
 #:   often a major / minor triad on it follows a major triad on its fifth (V-I, common practice)
-#:   from one beat with a triad to the next.
+#:   from one beat with a triad to the next;
+#: - ``path_major`` / ``path_minor``: per tonic, the share of the 8-beat segments the
+#:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it.
 FEATURES = ("duration", "onsets", "bass", "top", "final", "on_beat", "first_bass", "last_bass",
             "last_top", "major_triads", "minor_triads", "first_major_triad", "first_minor_triad",
-            "last_major_triad", "last_minor_triad", "cadence_major", "cadence_minor")
+            "last_major_triad", "last_minor_triad", "cadence_major", "cadence_minor",
+            "path_major", "path_minor")
 #: Published profiles whose correlations (of the duration and of the bass distribution) with
 #: each candidate key are features too, in this order.
 CORRELATION_PROFILES = tuple(sorted(PROFILES))
@@ -373,8 +379,9 @@ def _onset_extremes(start: np.ndarray, pitch: np.ndarray) -> tuple[np.ndarray, n
     return first, last
 
 
-def key_features(piece: Piece) -> np.ndarray:
-    """(len(FEATURES), 12) distributions of the pitched notes (see FEATURES)."""
+def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -> np.ndarray:
+    """(len(FEATURES), 12) distributions of the pitched notes (see FEATURES). ``windowed``:
+    ``modulation.windowed_path(piece)`` when already computed."""
     notes = piece.notes
     keep = notes["channel"] != DRUM_CHANNEL
     if keep.all():
@@ -425,6 +432,10 @@ def key_features(piece: Piece) -> np.ndarray:
         before, after = triads[chord_beats[:-1]], triads[chord_beats[1:]]
         dominant = before[:, _FIFTH_ABOVE]  # column r: a major triad on r + 7 before
         out[15:17] = (after.reshape(-1, 2, 12) * dominant[:, None, :]).sum(axis=0)
+    if windowed is None:
+        from .modulation import windowed_path  # modulation imports this module
+        windowed = windowed_path(piece)
+    out[17:19] = np.bincount(windowed[2], minlength=24).reshape(2, 12)
     total = out.sum(axis=1, keepdims=True)
     np.divide(out, total, out=out, where=total > 0)
     return out
@@ -497,7 +508,9 @@ def estimate_from_probabilities(probs: np.ndarray) -> KeyEstimate:
 def estimate_key_learned(piece: Piece, weights: np.ndarray | None = None) -> KeyEstimate:
     """Key of a piece by the trained classifier. An empty piece gives C major with
     confidence 1/24 (no evidence either way)."""
-    feats = key_features(piece)
+    from .modulation import windowed_path  # modulation imports this module
+    windowed = windowed_path(piece)
+    feats = key_features(piece, windowed)
     if not feats.any():
-        return estimate_from_probabilities(np.full(24, 1.0 / 24))
-    return estimate_from_probabilities(key_probabilities(feats, weights))
+        return replace(estimate_from_probabilities(np.full(24, 1.0 / 24)), windowed=windowed)
+    return replace(estimate_from_probabilities(key_probabilities(feats, weights)), windowed=windowed)

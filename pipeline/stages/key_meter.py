@@ -1,6 +1,7 @@
 """Stage ``key_meter``: key and meter of the source file, plus tempo and quantization.
 
-Never drops a file. Declared values are kept as the file says them (``key_declared``,
+Never drops a file. A windowed key estimate (analysis.modulation) reports whether the piece
+modulates (``key_modulates``, ``key_second``). Declared values are kept as the file says them (``key_declared``,
 ``meter_declared``) and flagged when they look like sequencer defaults: a one-beat time
 signature such as 1/4 (then ``meter`` is the estimate), a C major key signature on a piece whose
 estimated key has another signature; a declared meter whose family the estimate rules out is
@@ -14,6 +15,7 @@ from typing import Any
 
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
+from ..analysis import modulation as modmod
 from ..midi.piece import Piece
 from .base import FileContext, Option, Stage, StageResult, in_range, register
 
@@ -98,14 +100,19 @@ class KeyMeter(Stage):
 
     name = "key_meter"
     kind = "file"
-    version = 3
+    version = 4
     options = KEY_OPTIONS + (
         Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
                "The declared meter is replaced by the estimate when the estimate gives the "
                "declared meter's family (duple, triple, compound) less than this probability; "
                "0 = keep every declared meter that is not a default.", in_range(0, 1)),
+        Option("modulation_share", (int, float), modmod.MIN_SHARE,
+               "key_modulates is true when the windowed key estimate (8-beat segments) holds "
+               "two key signatures for at least this share of the piece each.",
+               in_range(0, 1)),
     )
-    doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles) and meter "
+    doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles), whether "
+           "the piece modulates (a windowed key estimate) and meter "
            "(a classifier over onset accent autocorrelation and position features), records what the file declares and "
            "flags declared values that look like sequencer defaults, the average tempo and the "
            "fraction of onsets on a 16th/triplet grid. Never drops a file.")
@@ -117,6 +124,9 @@ class KeyMeter(Stage):
         agrees = None
         if declared is not None:
             agrees = keymod.parse_key(declared) == (est.tonic_pc, est.mode)
+        regions = modmod.key_regions(piece, est.tonic_pc + (12 if est.mode == "minor" else 0),
+                                     min_share=float(self.opts["modulation_share"]),
+                                     windowed=est.windowed)
         meter_est = ctx.analysis("meter", metermod.estimate_meter)
         file_meter = metermod.meter_from_file(piece)
         meter_issue = metermod.declared_meter_issue(file_meter, meter_est,
@@ -133,6 +143,8 @@ class KeyMeter(Stage):
             "key_declared": declared,
             "key_agrees": agrees,
             "key_declared_suspect": key_declared_suspect(declared, est),
+            "key_modulates": regions.modulates,
+            "key_second": regions.second_key if regions.modulates else None,
             "meter": file_meter if use_file else meter_est.meter,
             "meter_source": "file" if use_file else "estimated",
             "meter_declared": file_meter,
