@@ -121,6 +121,6 @@ def test_the_run_path_never_imports_the_developer_tools(tmp_path):
             "rc = main(args) + main(args); "
             "print(rc, sorted(m for m in sys.modules if m.startswith(('pipeline.tools', "
             "'pipeline.audit', 'pipeline.analysis.evaluate', 'pipeline.analysis.train', "
-            "'pipeline.analysis.eval_sets'))))")
+            "'pipeline.tools.eval_sets'))))")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=tmp_path)
     assert proc.stdout.split("\n")[-2] == "0 []", proc.stdout + proc.stderr

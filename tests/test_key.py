@@ -8,9 +8,10 @@ import numpy as np
 import pytest
 
 from pipeline.analysis import key as keymod
-from pipeline.analysis.evaluate_key import (agreement_with_music21, key_table, mirex_score,
-                                            render_chorale)
-from pipeline.analysis.eval_sets import abc_key
+from pipeline.analysis import key_profiles
+from pipeline.tools.evaluate_key import (agreement_with_music21, key_table, mirex_score,
+                                         render_chorale)
+from pipeline.tools.eval_sets import abc_key
 from pipeline.midi.piece import KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes, sort_notes
 from pipeline.stages.base import FileContext
 from pipeline.stages.key_meter import KeyMeter
@@ -132,7 +133,7 @@ def test_tonic_spelling_has_fewest_accidentals(mode):
     for pc in range(12):
         name = keymod.key_name(pc, mode).split()[0]
         ours = abs(m21key.Key(name.replace("b", "-") if len(name) > 1 else name, mode).sharps)
-        alts = [n for n in (keymod.PITCH_NAMES_SHARP[pc], keymod.PITCH_NAMES_FLAT[pc]) if n != name]
+        alts = [n for n in (key_profiles.PITCH_NAMES_SHARP[pc], key_profiles.PITCH_NAMES_FLAT[pc]) if n != name]
         for alt in alts:
             assert ours <= abs(m21key.Key(alt.replace("b", "-") if len(alt) > 1 else alt, mode).sharps)
         assert m21key.Key(name.replace("b", "-") if len(name) > 1 else name, mode).tonic.pitchClass == pc

@@ -13,8 +13,9 @@ import mido
 import numpy as np
 import pytest
 
-from pipeline.analysis import evaluate_meter as ev
+from pipeline.tools import evaluate_meter as ev
 from pipeline.analysis import meter as metermod
+from pipeline.analysis import timing
 from pipeline.midi.piece import METER_DTYPE, Piece
 from pipeline.midi.decode import decode
 from pipeline.stages.base import FileContext
@@ -304,7 +305,7 @@ def test_tempo_bpm_is_beats_over_minutes():
     msgs += [mido.Message("note_on", note=62, velocity=80, time=0),
              mido.Message("note_off", note=62, velocity=0, time=480 * 4)]
     piece = decode(_midi(msgs))
-    assert metermod.tempo_bpm(piece) == pytest.approx(80.0)
+    assert timing.tempo_bpm(piece) == pytest.approx(80.0)
     assert piece.duration_s == pytest.approx(6.0)
 
 
@@ -315,24 +316,24 @@ def test_tempo_bpm_matches_pretty_midi_for_constant_tempo(chorale_works):
     data = _with_meta([(s, e - s, p) for s, e, p, _ in work["notes"]], work["meter"])
     _, tempi = pretty_midi.PrettyMIDI(io.BytesIO(data)).get_tempo_changes()
     assert len(set(np.round(tempi, 6))) == 1
-    assert metermod.tempo_bpm(decode(data)) == pytest.approx(tempi[0])
+    assert timing.tempo_bpm(decode(data)) == pytest.approx(tempi[0])
 
 
 def test_grid_fraction():
     tpb = 480
     quantized = decode(_midi(_notes([i * 120 for i in range(32)] + [4000, 4160])))  # 16ths, triplet 8th
-    assert metermod.grid_fraction(quantized) == 1.0
+    assert timing.grid_fraction(quantized) == 1.0
     rng = np.random.default_rng(0)
     onsets = np.sort(rng.integers(0, 200 * tpb, 400))
     onsets = np.unique(onsets)
     jittered = decode(_midi(_notes([int(t) for t in onsets], dur=5)))
-    frac = metermod.grid_fraction(jittered)
+    frac = timing.grid_fraction(jittered)
     # random onsets land within 10 ticks of a 16th (every 120) or 8th-triplet (every 160) grid
     # line with probability about 0.28 (union of the two grids' +-10-tick windows)
     assert 0.15 < frac < 0.45
     off = decode(_midi(_notes([i * 480 + 30 for i in range(16)])))
-    assert metermod.grid_fraction(off) == 0.0
-    assert metermod.grid_fraction(off, tolerance_beats=30 / 480) == 1.0
+    assert timing.grid_fraction(off) == 0.0
+    assert timing.grid_fraction(off, tolerance_beats=30 / 480) == 1.0
 
 
 def test_empty_piece(chorale_works):
@@ -341,7 +342,7 @@ def test_empty_piece(chorale_works):
                      "time_signatures": np.zeros(0, dtype=METER_DTYPE)})
     est = metermod.estimate_meter(empty)
     assert est.meter == "4/4" and est.confidence == 0.0
-    assert metermod.grid_fraction(empty) == 1.0
+    assert timing.grid_fraction(empty) == 1.0
     values = KeyMeter().process(empty, FileContext(empty)).values
     assert values["meter_source"] == "estimated"
 

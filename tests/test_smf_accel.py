@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from fixtures_midi import mido_rows, parse_hexdump, piece_rows, random_midi
+from pipeline.analysis import timing
 from pipeline.midi import accel
 from pipeline.tools import fuzz, synth
 from pipeline.midi import decode as smf
@@ -580,8 +581,8 @@ def test_compiled_meter(monkeypatch, analysis_pieces):
     from pipeline.analysis import meter as metermod
     _both_paths(monkeypatch, analysis_pieces, metermod.accent_function)
     _both_paths(monkeypatch, analysis_pieces, metermod.estimate_meter)
-    _both_paths(monkeypatch, analysis_pieces, metermod.grid_fraction)
-    _both_paths(monkeypatch, analysis_pieces, lambda p: metermod.grid_fraction(p, (4, 3, 5), 1 / 96))
+    _both_paths(monkeypatch, analysis_pieces, timing.grid_fraction)
+    _both_paths(monkeypatch, analysis_pieces, lambda p: timing.grid_fraction(p, (4, 3, 5), 1 / 96))
 
 
 def test_compiled_stats(monkeypatch, analysis_pieces):

@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 from datasketch import MinHash
 
+from pipeline.analysis import timing
 from pipeline.analysis import key as keymod
 from pipeline.analysis import meter as metermod
 from pipeline.analysis import shingles as shmod
@@ -169,8 +170,8 @@ def plain_tempo_bpm(piece):
     return (end / piece.ticks_per_beat) / (seconds / 60.0) if seconds > 0 else 0.0
 
 
-def plain_grid_fraction(piece, divisions=metermod.GRID_DIVISIONS,
-                        tolerance_beats=metermod.GRID_TOLERANCE_BEATS):
+def plain_grid_fraction(piece, divisions=timing.GRID_DIVISIONS,
+                        tolerance_beats=timing.GRID_TOLERANCE_BEATS):
     if len(piece.notes) == 0:
         return 1.0
     tpb = float(piece.ticks_per_beat)
@@ -531,11 +532,11 @@ def test_accent_function_and_meter_estimate(pieces):
 
 
 def test_tempo_and_grid(pieces):
-    _check(pieces, metermod.tempo_bpm, plain_tempo_bpm)
-    _check(pieces, metermod.grid_fraction, plain_grid_fraction)
-    _check(pieces, lambda p: metermod.grid_fraction(p, (4, 3, 5), 1 / 96),
+    _check(pieces, timing.tempo_bpm, plain_tempo_bpm)
+    _check(pieces, timing.grid_fraction, plain_grid_fraction)
+    _check(pieces, lambda p: timing.grid_fraction(p, (4, 3, 5), 1 / 96),
            lambda p: plain_grid_fraction(p, (4, 3, 5), 1 / 96))
-    _check(pieces, lambda p: metermod.grid_fraction(p, (2,), 0.1),
+    _check(pieces, lambda p: timing.grid_fraction(p, (2,), 0.1),
            lambda p: plain_grid_fraction(p, (2,), 0.1))
 
 

@@ -13,7 +13,7 @@ notes sounding in the last few beats (pieces end on the tonic, common practice).
 change the histogram, so the correlation step stays one (24 x 12) matrix product.
 
 The default method, ``learned``, is a small multinomial logistic regression over 24 keys
-(trained with numpy by ``python -m pipeline.analysis.train_key``, weights shipped in
+(trained with numpy by ``python -m pipeline.tools.train_key``, weights shipped in
 ``key_weights.json`` with the sets they were trained on). Its per-key evidence is
 transposition-invariant: seven pitch-class distributions of the piece (duration, bass, final
 bars, onsets, on-beat notes, first and last bass note) read from the candidate tonic, plus the
@@ -35,49 +35,14 @@ import numpy as np
 from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece
 
-# ---------------------------------------------------------------------------------------------
-# Profile tables: name -> (major[12], minor[12]), index 0 = tonic, ascending semitones.
-PROFILES: dict[str, tuple[tuple[float, ...], tuple[float, ...]]] = {
-    # Krumhansl & Kessler (1982) probe-tone ratings, as tabulated in Krumhansl 1990,
-    # Cognitive Foundations of Musical Pitch, Table 2.1 (p. 30).
-    "krumhansl_kessler": (
-        (6.35, 2.23, 3.48, 2.33, 4.38, 4.09, 2.52, 5.19, 2.39, 3.66, 2.29, 2.88),
-        (6.33, 2.68, 3.52, 5.38, 2.60, 3.53, 2.54, 4.75, 3.98, 2.69, 3.34, 3.17),
-    ),
-    # Temperley 2007, Music and Probability, ch. 4: pitch-class proportions in the
-    # Kostka-Payne harmony textbook excerpts ("Temperley-Kostka-Payne").
-    "temperley_kostka_payne": (
-        (0.748, 0.060, 0.488, 0.082, 0.670, 0.460, 0.096, 0.715, 0.104, 0.366, 0.057, 0.400),
-        (0.712, 0.084, 0.474, 0.618, 0.049, 0.460, 0.105, 0.747, 0.404, 0.067, 0.133, 0.330),
-    ),
-    # Aarden 2003, Dynamic Melodic Expectancy (PhD dissertation, Ohio State University):
-    # pitch-class frequencies in the Essen folksong collection ("Aarden-Essen").
-    "aarden_essen": (
-        (17.7661, 0.145624, 14.9265, 0.160186, 19.8049, 11.3587,
-         0.291248, 22.062, 0.145624, 8.15494, 0.232998, 4.95122),
-        (18.2648, 0.737619, 14.0499, 16.8599, 0.702494, 14.4362,
-         0.702494, 18.6161, 4.56621, 1.93186, 7.37619, 1.75623),
-    ),
-    # Bellman 2005, "About the determination of key of a musical excerpt" (CMMR 2005,
-    # LNCS 3902): chord-based profiles ("Bellman-Budge").
-    "bellman_budge": (
-        (16.80, 0.86, 12.95, 1.41, 13.49, 11.93, 1.25, 20.28, 1.80, 8.04, 0.62, 10.57),
-        (18.16, 0.69, 12.99, 13.34, 1.07, 11.15, 1.38, 21.07, 7.49, 1.53, 0.92, 10.21),
-    ),
-    # Sapp 2011, Computational Methods for the Analysis of Musical Structure (PhD
-    # dissertation, Stanford), "simple" weights: tonic/dominant 2, other scale steps 1.
-    "simple": (
-        (2, 0, 1, 0, 1, 1, 0, 2, 0, 1, 0, 1),
-        (2, 0, 1, 1, 0, 1, 0, 2, 1, 0, 0.5, 0.5),
-    ),
-}
-PROFILE_ALIASES = {"kk": "krumhansl_kessler", "tkp": "temperley_kostka_payne",
-                   "aarden": "aarden_essen", "bb": "bellman_budge"}
+# the names of keys are part of this module's interface (callers read ``key.MODES``, ...)
+from .key_profiles import (LEARNED, MAJOR_BY_SHARPS, MAJOR_TONIC_NAMES, MINOR_BY_SHARPS,  # noqa: F401
+                           MINOR_TONIC_NAMES, MODES, PROFILES, key_name, note_name_to_pc,
+                           resolve_profile)
+from .modulation import windowed_path
 
-#: The name of the trained classifier among the ``profile`` choices.
-LEARNED = "learned"
 #: The default method, chosen by leave-one-genre-out cross-validation over four sets (README,
-#: Key detection; ``python -m pipeline.analysis.evaluate_key``).
+#: Key detection; ``python -m pipeline.tools.evaluate_key``).
 DEFAULT_PROFILE = LEARNED
 #: The weighting of the correlation methods when a published profile is chosen: measured on a
 #: development subset of 100 Bach chorales (``chorales(100, offset=2)``); the learned method
@@ -86,63 +51,6 @@ DEFAULT_BASS_WEIGHT = 1.0
 DEFAULT_FINAL_WEIGHT = 2.0
 #: Length of the "final" window in quarter-note beats (about the last bar in 4/4).
 FINAL_BEATS = 4.0
-
-PITCH_NAMES_SHARP = ("C", "C#", "D", "D#", "E", "F", "F#", "G", "G#", "A", "A#", "B")
-PITCH_NAMES_FLAT = ("C", "Db", "D", "Eb", "E", "F", "Gb", "G", "Ab", "A", "Bb", "B")
-#: Conventional tonic spelling per pitch class (fewest key-signature accidentals; ties at six
-#: accidentals go to F# major and Eb minor).
-MAJOR_TONIC_NAMES = ("C", "Db", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")
-MINOR_TONIC_NAMES = ("C", "C#", "D", "Eb", "E", "F", "F#", "G", "G#", "A", "Bb", "B")
-#: Key-signature spelling by number of sharps (-7..7), as a key-signature event declares it.
-MAJOR_BY_SHARPS = {-7: "Cb", -6: "Gb", -5: "Db", -4: "Ab", -3: "Eb", -2: "Bb", -1: "F", 0: "C",
-                   1: "G", 2: "D", 3: "A", 4: "E", 5: "B", 6: "F#", 7: "C#"}
-MINOR_BY_SHARPS = {-7: "Ab", -6: "Eb", -5: "Bb", -4: "F", -3: "C", -2: "G", -1: "D", 0: "A",
-                   1: "E", 2: "B", 3: "F#", 4: "C#", 5: "G#", 6: "D#", 7: "A#"}
-MODES = ("major", "minor")
-
-_NOTE_PC = {"C": 0, "D": 2, "E": 4, "F": 5, "G": 7, "A": 9, "B": 11}
-
-
-def note_name_to_pc(name: str) -> int:
-    """Pitch class of a note name such as ``C``, ``F#``, ``Bb``, ``Eb``, ``Cb`` or ``E#``.
-
-    Raises ValueError for anything else (the message lists the accepted form).
-    """
-    text = str(name).strip()
-    if not text or text[0].upper() not in _NOTE_PC:
-        raise ValueError(f"{name!r} is not a note name: use a letter A-G followed by optional "
-                         f"'#' or 'b' accidentals, e.g. one of {', '.join(VALID_NOTE_NAMES)}")
-    pc = _NOTE_PC[text[0].upper()]
-    for ch in text[1:]:
-        if ch == "#":
-            pc += 1
-        elif ch in "b-":
-            pc -= 1
-        else:
-            raise ValueError(f"{name!r} is not a note name: use a letter A-G followed by "
-                             f"optional '#' or 'b' accidentals, e.g. one of "
-                             f"{', '.join(VALID_NOTE_NAMES)}")
-    return pc % 12
-
-
-VALID_NOTE_NAMES = tuple(dict.fromkeys(PITCH_NAMES_SHARP + PITCH_NAMES_FLAT))
-
-
-def resolve_profile(name: str) -> str:
-    """The canonical profile name for ``name`` (aliases allowed; ``learned`` is the trained
-    classifier); ValueError if unknown."""
-    key = PROFILE_ALIASES.get(name, name)
-    if key not in PROFILES and key != LEARNED:
-        raise ValueError(f"unknown key profile {name!r}; valid profiles: {LEARNED}, "
-                         f"{', '.join(sorted(PROFILES))} (aliases: {', '.join(sorted(PROFILE_ALIASES))})")
-    return key
-
-
-def key_name(tonic_pc: int, mode: str) -> str:
-    """Conventional name of a key, e.g. ``key_name(3, "major") == "Eb major"``."""
-    names = MAJOR_TONIC_NAMES if mode == "major" else MINOR_TONIC_NAMES
-    return f"{names[tonic_pc % 12]} {mode}"
-
 
 def _rotation_matrix(profile: str) -> np.ndarray:
     """(24, 12) matrix: rows 0-11 major keys on tonic 0..11, rows 12-23 minor; each row
@@ -433,7 +341,6 @@ def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -
         dominant = before[:, _FIFTH_ABOVE]  # column r: a major triad on r + 7 before
         out[15:17] = (after.reshape(-1, 2, 12) * dominant[:, None, :]).sum(axis=0)
     if windowed is None:
-        from .modulation import windowed_path  # modulation imports this module
         windowed = windowed_path(piece)
     out[17:19] = np.bincount(windowed[2], minlength=24).reshape(2, 12)
     total = out.sum(axis=1, keepdims=True)
@@ -475,7 +382,7 @@ def learned_weights() -> np.ndarray:
         if tuple(data["features"]) != FEATURES or tuple(data["profiles"]) != CORRELATION_PROFILES:
             raise ValueError(f"{path}: weights were trained for features {data['features']} "
                              f"and profiles {data['profiles']}; retrain with "
-                             f"python -m pipeline.analysis.train_key")
+                             f"python -m pipeline.tools.train_key")
         w = np.asarray(data["weights"], dtype=np.float64)
         if w.shape != (N_CLASS_FEATURES,):
             raise ValueError(f"{path}: {w.shape[0]} weights, expected {N_CLASS_FEATURES}")
@@ -508,7 +415,6 @@ def estimate_from_probabilities(probs: np.ndarray) -> KeyEstimate:
 def estimate_key_learned(piece: Piece, weights: np.ndarray | None = None) -> KeyEstimate:
     """Key of a piece by the trained classifier. An empty piece gives C major with
     confidence 1/24 (no evidence either way)."""
-    from .modulation import windowed_path  # modulation imports this module
     windowed = windowed_path(piece)
     feats = key_features(piece, windowed)
     if not feats.any():

@@ -1,5 +1,5 @@
 """Weights of the meter classifier (``meter.estimate_meter``), written by
-``python -m pipeline.analysis.evaluate_meter --train --pop FOLDER``: multinomial logistic
+``python -m pipeline.tools.evaluate_meter --train --pop FOLDER``: multinomial logistic
 regression over ``meter.FEATURE_NAMES``, trained on the development sets
 folk-dev (674 works), chorales-dev (119 works), classical-dev (51 works), pop-dev (746 works), each set weighing the same; L2 strength 0.0003
 chosen by 5-fold cross-validation (mean accuracy over the sets). Do not edit by hand.

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..midi.piece import DRUM_CHANNEL, Piece
-from . import key as keymod
+from . import key_profiles as keymod
 
 #: Segment length in quarter-note beats (two 4/4 bars), switch cost and minimum share of the
 #: segments in another key signature: chosen across the pop, folk and classical sets

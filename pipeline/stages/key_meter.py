@@ -15,6 +15,7 @@ from typing import Any
 
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
+from ..analysis import timing
 from ..analysis import modulation as modmod
 from ..midi.piece import Piece
 from .base import FileContext, Option, Stage, StageResult, in_range, register
@@ -151,8 +152,8 @@ class KeyMeter(Stage):
             "meter_declared_suspect": meter_issue,
             "meter_estimated": meter_est.meter,
             "meter_confidence": round(meter_est.confidence, 4),
-            "bpm": round(metermod.tempo_bpm(piece), 2),
-            "grid_fraction": round(metermod.grid_fraction(piece), 4),
+            "bpm": round(timing.tempo_bpm(piece), 2),
+            "grid_fraction": round(timing.grid_fraction(piece), 4),
         }
         detail = f"{values['tonic']} {mode} ({source}), {values['meter']} ({values['meter_source']})"
         return StageResult.keep(detail=detail, values=values)

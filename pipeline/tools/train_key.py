@@ -1,6 +1,6 @@
 """Train the key classifier (``profile: learned``) and write ``key_weights.json``.
 
-    python -m pipeline.analysis.train_key --pop ../shared/data/pop909-dev --folk 600 [--l2 0.01]
+    python -m pipeline.tools.train_key --pop ../shared/data/pop909-dev --folk 600 [--l2 0.01]
 
 The model: multinomial logistic regression over the 24 keys whose per-key evidence is
 ``key.class_features`` (transposition-invariant, so one weight vector serves every tonic),
@@ -25,14 +25,14 @@ from pathlib import Path
 import numpy as np
 
 from . import eval_sets
-from . import key as keymod
+from ..analysis import key as keymod
 
 WEIGHTS_PATH = Path(keymod.__file__).with_name("key_weights.json")
 L2_GRID = (1e-4, 1e-3, 1e-2)
 
 
 def decode(data: bytes):
-    from .evaluate_key import decode as _decode
+    from .eval_midi import decode as _decode
     return _decode(data)
 
 
@@ -192,7 +192,7 @@ def main(argv: list[str] | None = None) -> None:
         "leave_one_genre_out_exact": {str(k): v for k, v in cv.items()},
         "leave_one_genre_out_log_loss": {str(k): v for k, v in loss.items()},
         "trained": datetime.date.today().isoformat(),
-        "command": ("python -m pipeline.analysis.train_key"
+        "command": ("python -m pipeline.tools.train_key"
                     + (" --pop ../shared/data/pop909-dev" if args.pop else "")
                     + (f" --folk {args.folk}" if args.folk else "")
                     + (f" --l2 {args.l2:g}" if args.l2 is not None else "")),

@@ -1,7 +1,7 @@
 """Reproduce the meter-estimation figures of the README across genres.
 
-    python -m pipeline.analysis.evaluate_meter [--pop FOLDER] [--sets ...] [--speed]
-    python -m pipeline.analysis.evaluate_meter --train --pop FOLDER   # refit meter_weights.py
+    python -m pipeline.tools.evaluate_meter [--pop FOLDER] [--sets ...] [--speed]
+    python -m pipeline.tools.evaluate_meter --train --pop FOLDER   # refit meter_weights.py
 
 Sets (truth = the meter the score notates; the estimate never sees it: pieces are built
 without time-signature events, and the pop files' declared time signatures are removed):
@@ -40,9 +40,9 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                     sort_notes)
-from . import key as keymod
-from . import meter as metermod
+                          sort_notes)
+from ..analysis import key as keymod
+from ..analysis import meter as metermod
 
 from .eval_sets import (CLASSICAL_DIRS, FOLK_BOOKS, RESERVED, TPB,  # noqa: F401 (the loaders
                         _abc_book, _corpus_file, _distinct, _normal_meter,  # live in eval_sets)
@@ -158,7 +158,7 @@ def speed_500(repeats: int = 20) -> tuple[float, float]:
             t0 = min(s for s, _, _, _ in chunk[:500])
             pieces.append(piece_from_notes([(s - t0, e - t0, p, q) for s, e, p, q in chunk[:500]]))
             chunk = chunk[500:]
-    from .modulation import key_regions
+    from ..analysis.modulation import key_regions
 
     def key_and_modulation(piece: Piece) -> None:  # what key_meter computes for the key
         est = keymod.estimate_key(piece)
@@ -187,7 +187,7 @@ TRAIN_SETS = ("folk-dev", "chorales-dev", "classical-dev", "pop-dev")
 TRAIN_CLASSES = ("2/4", "4/4", "2/2", "3/4", "3/8", "3/2", "6/8", "9/8", "12/8")
 #: Regularization strengths tried by cross-validation.
 L2_GRID = (0.0003, 0.001, 0.003, 0.01, 0.03, 0.1)
-WEIGHTS_PATH = Path(__file__).with_name("meter_weights.py")
+WEIGHTS_PATH = Path(metermod.__file__).with_name("meter_weights.py")
 
 
 def features_of(works: list[dict[str, Any]]) -> np.ndarray:
@@ -294,7 +294,7 @@ def write_weights(model: dict[str, Any], path: Path = WEIGHTS_PATH) -> None:
     sets = ", ".join(f"{k} ({v} works)" for k, v in model["sets"].items())
     lines = [
         '"""Weights of the meter classifier (``meter.estimate_meter``), written by',
-        "``python -m pipeline.analysis.evaluate_meter --train --pop FOLDER``: multinomial logistic",
+        "``python -m pipeline.tools.evaluate_meter --train --pop FOLDER``: multinomial logistic",
         "regression over ``meter.FEATURE_NAMES``, trained on the development sets",
         f"{sets}, each set weighing the same; L2 strength {model['l2']:g}",
         "chosen by 5-fold cross-validation (mean accuracy over the sets). Do not edit by hand.",

@@ -1,7 +1,7 @@
 """Score the windowed key estimate's modulation flag (``key_modulates``) against notated or
 annotated key changes, per set (README, Key detection: modulation).
 
-    python -m pipeline.analysis.evaluate_modulation [--pop ../shared/data/pop909-dev]
+    python -m pipeline.tools.evaluate_modulation [--pop ../shared/data/pop909-dev]
 
 Truth per set (``eval_sets``): pop, the annotation's ``n_keys > 1`` (key segments annotated
 from the recording); folk, a body ``K:`` field naming another key signature than the header's;
@@ -21,8 +21,8 @@ from typing import Any
 import numpy as np
 
 from . import eval_sets
-from . import key as keymod
-from . import modulation
+from ..analysis import key as keymod
+from ..analysis import modulation
 
 
 def key_index(tonic_pc: int, mode: str) -> int:
@@ -57,7 +57,7 @@ def modulation_report(name: str, works: list[dict], truth: dict[str, bool | None
     """Precision, recall and flag rate of ``key_regions(...).modulates`` on the works with a
     truth; for pop (``annotated`` key segments) also the true modulations that stay within one
     key signature (relative major/minor) and how often ``key_second`` is an annotated key."""
-    from .evaluate_key import decode
+    from .eval_midi import decode
     flags, right, second_hits, relative_only = [], [], 0, 0
     for w in works:
         t = truth.get(w["name"])

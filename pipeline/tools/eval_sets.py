@@ -42,9 +42,9 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                     sort_notes)
-from . import key as keymod
-from . import meter as metermod
+                          sort_notes)
+from ..analysis import key as keymod
+from ..analysis import meter as metermod
 
 #: music21's analyzers run side by side: its default ``analyze('key')`` and its single profiles.
 MUSIC21_KEY_METHODS = ("key", "key.krumhanslschmuckler", "key.aardenessen",
@@ -74,7 +74,7 @@ def cache_dir() -> Path:
 
 def _cached_work(set_name: str, ident: str, build: Callable[[], dict | None]) -> dict | None:
     """``build()``'s work, cached as one tagged-JSON file per work (bytes as base64)."""
-    from .evaluate_key import _from_json, _to_json
+    from .eval_midi import from_json as _from_json, to_json as _to_json
     import music21
     digest = hashlib.sha1(f"{CACHE_VERSION}:{music21.__version__}:{ident}".encode()).hexdigest()[:20]
     path = cache_dir() / f"eval-{set_name}" / f"{digest}.json"
@@ -109,7 +109,7 @@ def music21_keys(data: bytes) -> tuple[dict, dict]:
 
 def _render(score) -> tuple[bytes, bytes]:
     from music21 import midi
-    from .evaluate_key import strip_meta
+    from .eval_midi import strip_meta
     data = midi.translate.streamToMidiFile(score).writestr()
     return (strip_meta(data, ("key_signature",)),
             strip_meta(data, ("key_signature", "time_signature")))
