@@ -638,13 +638,14 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
-    sets, li, lj = involved_sets(keys, i, j, shingles)
+    sets, pos = involved_sets(keys, i, j, shingles)
     if generic is not None and len(generic):
-        sets = [drop_generic(np.asarray(x, dtype=np.uint64), generic) for x in sets]
+        for p, x in enumerate(sets):  # memory: each read set is let go as it is replaced
+            sets[p] = drop_generic(np.asarray(x, dtype=np.uint64), generic)
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
-        sims = pair_similarities(sets, li[lo:hi], lj[lo:hi], min_size_ratio=min_size_ratio)
+        sims = pair_similarities(sets, pos[i[lo:hi]], pos[j[lo:hi]], min_size_ratio=min_size_ratio)
         hit = np.flatnonzero(sims >= threshold)
         hits += [(keys[a], keys[b], sim) for a, b, sim in
                  zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist())]
@@ -652,13 +653,19 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
 
 
 def involved_sets(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any
-                  ) -> tuple[list, np.ndarray, np.ndarray]:
+                  ) -> tuple[list, np.ndarray]:
     """The sets ``shingles[keys[p]]`` of the keys in some pair ``(i[k], j[k])`` only, those
-    still in the ledger (``ledger.StoredArray``) read in one go, and the pairs as positions in
-    that list (what ``pair_similarities`` takes)."""
-    involved = sorted_unique(np.concatenate([i, j]))
+    still in the ledger (``ledger.StoredArray``) read in one go, and ``pos``: key index -> its
+    position in that list (``pos[i]``, ``pos[j]`` are what ``pair_similarities`` takes). A
+    mask over the keys rather than a sort of the pairs (memory: the pair arrays of millions of
+    candidates are not copied)."""
+    used = np.zeros(len(keys), dtype=bool)
+    used[i] = True
+    used[j] = True
+    involved = np.flatnonzero(used)
+    pos = np.cumsum(used, dtype=np.int64) - 1
     sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
-    return sets, np.searchsorted(involved, i), np.searchsorted(involved, j)
+    return sets, pos
 
 
 #: Candidate pairs compared per ``pair_similarities`` call in ``verify_index_pairs``.
