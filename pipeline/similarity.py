@@ -216,12 +216,23 @@ def generic_shingles(sets: list[np.ndarray], *, share: float = GENERIC_SHARE,
     need = max(int(min_files), int(np.ceil(share * len(sets))))
     if len(sets) < need or not len(sets):
         return np.zeros(0, dtype=np.uint64)
-    allh = np.sort(np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets]))
+    allh = np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets])
+    if not len(allh):
+        return allh
+    # speed: a shingle in ``need`` sets puts ``need`` or more values in its bucket of the low
+    # bits, so only the values of such buckets are sorted and counted exactly (sorting every
+    # value was most of the count)
+    bucket = (allh & np.uint64(_GENERIC_BUCKETS - 1)).astype(np.intp)
+    allh = np.sort(allh[np.bincount(bucket, minlength=_GENERIC_BUCKETS)[bucket] >= need])
     if not len(allh):
         return allh
     start = np.flatnonzero(np.concatenate(([True], allh[1:] != allh[:-1])))
     count = np.diff(np.append(start, len(allh)))
     return allh[start[count >= need]]
+
+
+#: Buckets (of the low bits of a shingle hash) in which ``generic_shingles`` counts first.
+_GENERIC_BUCKETS = 1 << 20
 
 
 def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray:

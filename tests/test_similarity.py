@@ -286,6 +286,43 @@ def test_verify_index_pairs_equals_verify_pairs():
             assert uf1.groups() == uf2.groups() == uf0.groups()
 
 
+def test_verify_with_generic_shingles_equals_set_similarity_and_leaves_the_sets_alone():
+    # Reference: set_similarity pair by pair with the same generic shingles left out; the
+    # caller's arrays are not changed (verification drops generic shingles from its own reads)
+    rng = np.random.default_rng(8)
+    keys = [f"k{n:02d}" for n in range(30)]
+    common = np.unique(rng.integers(0, 2**63, 60, dtype=np.uint64))
+    sets = {k: np.unique(np.concatenate([common[rng.integers(0, 20):], rng.integers(0, 2**63, 40, dtype=np.uint64)]))
+            for k in keys}
+    before = {k: v.copy() for k, v in sets.items()}
+    generic = common[::2].copy()
+    i, j = np.triu_indices(len(keys), 1)
+    got = verify_index_pairs(keys, i, j, sets, 0.375, generic=generic)
+    want = [(keys[a], keys[b], v) for a, b in zip(i.tolist(), j.tolist())
+            for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.375]
+    assert got == want and 0 < len(got) < len(i)
+    assert all(np.array_equal(sets[k], before[k]) for k in keys)
+
+
+def test_generic_shingles_count_files_exactly():
+    # Reference: a plain count of the files holding each value (collections.Counter); values
+    # sharing their low bits (the bucket the count starts from) must not be merged
+    from collections import Counter
+
+    from pipeline.similarity import generic_shingles
+    rng = np.random.default_rng(4)
+    low = rng.integers(0, 2**20, 30, dtype=np.uint64)
+    pool = np.unique(np.concatenate([low + (np.uint64(k) << np.uint64(40)) for k in range(1, 4)]
+                                    + [rng.integers(0, 2**63, 200, dtype=np.uint64)]))
+    sets = [np.unique(rng.choice(pool, rng.integers(5, 120), replace=False)) for _ in range(60)]
+    counts = Counter(v for x in sets for v in x.tolist())
+    for share, min_files in ((0.1, 10), (0.3, 3), (0.01, 1), (1.0, 60)):
+        need = max(min_files, int(np.ceil(share * len(sets))))
+        want = sorted(v for v, c in counts.items() if c >= need)
+        assert generic_shingles(sets, share=share, min_files=min_files).tolist() == want
+    assert generic_shingles(sets[:5], share=0.1, min_files=10).tolist() == []
+
+
 def test_sorted_unique_equals_numpy_unique():
     # Reference: numpy.unique (sorted distinct values).
     rng = np.random.default_rng(2)
