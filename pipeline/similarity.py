@@ -85,6 +85,13 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1, *,
     the numpy formulation below, the specification (tests/test_smf_accel.py holds them equal).
     """
     a, b = permutations(num_perm, seed)
+    return _minhash_with(shingles, a, b, compiled)
+
+
+def _minhash_with(shingles: np.ndarray, a: np.ndarray, b: np.ndarray, compiled: bool = True
+                  ) -> np.ndarray:
+    """``minhash`` under the permutations ``(a, b)`` (one value per permutation)."""
+    num_perm = len(a)
     if len(shingles) == 0:
         return np.full(num_perm, _U32_MAX, dtype=np.uint32)
     compiled = _compiled("minhash32") if compiled else None
@@ -751,8 +758,14 @@ def signature_of(piece: Piece, opts: dict[str, Any] | None = None
                        max_shingles=int(o.get("max_shingles", ShingleSpec.max_shingles)))
     sh = shingle_hashes(piece, spec)
     num_perm, seed = int(o.get("num_perm", 128)), int(o.get("seed", 1))
-    sig = minhash(sh, num_perm, seed)
     lead = lead_part(sh)
-    if len(lead) >= MIN_LEAD:
-        sig[:num_perm // 2] = minhash(lead, num_perm // 2, seed)
+    half = num_perm // 2
+    if len(lead) < MIN_LEAD:
+        return minhash(sh, num_perm, seed), sh, content_hash(piece)
+    # speed: the whole set is hashed only under the permutations of the second half, the
+    # values it keeps (the same values ``minhash(sh, num_perm, seed)[half:]`` gives)
+    a, b = permutations(num_perm, seed)
+    sig = np.empty(num_perm, dtype=np.uint32)
+    sig[:half] = minhash(lead, half, seed)
+    sig[half:] = _minhash_with(sh, a[half:], b[half:])
     return sig, sh, content_hash(piece)
