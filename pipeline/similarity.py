@@ -242,6 +242,34 @@ def generic_shingles(sets: list[np.ndarray], *, share: float = GENERIC_SHARE,
 _GENERIC_BUCKETS = 1 << 20
 
 
+def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
+    """``(rows, bands)`` booleans: the LSH bands of ``signature_of`` signatures whose every value
+    is the MinHash value of a ``generic`` shingle under that column's permutation. Such a band
+    key is made of generic material only: two unrelated files sharing it are what makes the
+    candidates of a large corpus grow with its square, and ``set_similarity`` leaves those
+    shingles out anyway. A column of the first half may come from the lead's permutations or
+    (lead too short) the whole set's: a value matching either counts."""
+    sig = np.asarray(sig, dtype=np.uint32)
+    n, num_perm = sig.shape
+    out = np.zeros((n, bands), dtype=bool)
+    if not n or not len(generic):
+        return out
+    half = num_perm // 2
+    h = _fmix32(fold32(generic))
+    a, b = permutations(num_perm, seed)
+    la, lb = permutations(half, seed)
+    hit = np.zeros(sig.shape, dtype=bool)
+    with np.errstate(over="ignore"):
+        for c in range(num_perm):
+            vals = h * a[c] + b[c]
+            if c < half:
+                vals = np.concatenate([vals, h * la[c] + lb[c]])
+            vals.sort()
+            pos = np.minimum(np.searchsorted(vals, sig[:, c]), len(vals) - 1)
+            hit[:, c] = vals[pos] == sig[:, c]
+    return hit.reshape(n, bands, num_perm // bands).all(axis=2)
+
+
 def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray:
     """``shingles`` without the ``generic`` ones (both sorted unique uint64)."""
     if generic is None or not len(generic) or not len(shingles):
@@ -416,9 +444,12 @@ class LSHIndex:
         n, ids = len(self.ids), self.ids
         return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
 
-    def candidate_codes(self, new: set[str] | None = None) -> np.ndarray:
+    def candidate_codes(self, new: set[str] | None = None, skip: np.ndarray | None = None
+                        ) -> np.ndarray:
         """The candidate pairs of ``candidates`` as sorted unique codes ``i * n + j`` (``i < j``
-        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings."""
+        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings.
+        ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
+        no row: each gets a key of its own row."""
         n = len(self.ids)
         if n < 2:
             return np.zeros(0, dtype=np.int64)
@@ -426,7 +457,17 @@ class LSHIndex:
                   else np.array([k in new for k in self.ids]))
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
-        return banded_pair_codes(self.matrix(), self.bands, is_new)
+        sig = self.matrix()
+        if skip is not None and skip.any():
+            rows, bands = np.nonzero(skip)
+            r = self.num_perm // self.bands
+            sig = sig.copy()
+            # the band's first value becomes the row number, the others one constant: a key no
+            # other row has (a real band equal to it only adds a candidate, which is verified)
+            sig[rows, bands * r] = rows.astype(np.uint32)
+            for k in range(1, r):
+                sig[rows, bands * r + k] = _U32_MAX - np.uint32(1)
+        return banded_pair_codes(sig, self.bands, is_new)
 
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""

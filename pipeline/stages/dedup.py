@@ -33,7 +33,7 @@ from ..analysis.shingles import ShingleSpec, duration_beats
 from ..ledger import load_arrays
 from ..score import Piece
 from ..similarity import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex, UnionFind, check_banding,
-                          generic_shingles, signature_of, verify_index_pairs)
+                          generic_bands, generic_shingles, signature_of, verify_index_pairs)
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
@@ -132,7 +132,7 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 2
+    version = 3
     doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
            "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
@@ -250,10 +250,6 @@ class Dedup(Stage):
             for k, x in zip(indexed, sigs):
                 index.add(k, x)  # names the member whose signature does not fit
         new_reps = {k for k in rep_ids if k not in old}
-        # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
-        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
-        codes = index.candidate_codes(new_reps if reusable else None)
-        n_candidates = len(codes)
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were)
         if reusable and "generic" in prev:
@@ -261,6 +257,13 @@ class Dedup(Stage):
         else:
             self._generic = self._generic_shingles(indexed, arts)
         state.save("generic", self._generic.tolist())
+        # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
+        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
+        # bands made of generic material only pair nothing
+        skip = generic_bands(index.matrix(), self._generic, index.bands, int(o["seed"]))
+        codes = index.candidate_codes(new_reps if reusable else None, skip=skip)
+        del skip
+        n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
