@@ -184,6 +184,12 @@ def test_near_links_finds_every_pair_above_threshold_and_no_other():
                 assert (a, b) in got, (a, b, sim)
             if (a, b) in got:
                 assert got[(a, b)] == pytest.approx(sim) and sim >= 0.5
+    # the plausibility bounds go a chunk of candidates at a time (memory): chunks of 3 pairs
+    # give the links one chunk gives
+    from pipeline.similarity import measure as similarity
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(similarity, "PAIR_CHUNK", 3)
+        assert {(a, b): s for a, b, s in near_links(sigs, 0.5, sets)} == got
 
 
 @settings(max_examples=60, deadline=None)

@@ -289,6 +289,77 @@ def test_verify_index_pairs_equals_verify_pairs():
             assert uf1.groups() == uf2.groups() == uf0.groups()
 
 
+def test_verify_with_generic_shingles_equals_set_similarity_and_leaves_the_sets_alone():
+    # Reference: set_similarity pair by pair with the same generic shingles left out; the
+    # caller's arrays are not changed (verification drops generic shingles from its own reads)
+    rng = np.random.default_rng(8)
+    keys = [f"k{n:02d}" for n in range(30)]
+    common = np.unique(rng.integers(0, 2**63, 60, dtype=np.uint64))
+    sets = {k: np.unique(np.concatenate([common[rng.integers(0, 20):], rng.integers(0, 2**63, 40, dtype=np.uint64)]))
+            for k in keys}
+    before = {k: v.copy() for k, v in sets.items()}
+    generic = common[::2].copy()
+    i, j = np.triu_indices(len(keys), 1)
+    got = verify_index_pairs(keys, i, j, sets, 0.375, generic=generic)
+    want = [(keys[a], keys[b], v) for a, b in zip(i.tolist(), j.tolist())
+            for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.375]
+    assert got == want and 0 < len(got) < len(i)
+    assert all(np.array_equal(sets[k], before[k]) for k in keys)
+
+
+def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():
+    # Reference: the MinHash value of a shingle under a column's permutation is the signature
+    # of the set holding only it (minhash([g]), which equals datasketch's digest: see
+    # test_numpy_minhash_equals_datasketch_digest); a band is generic when each of its values
+    # is such a value of a generic shingle (the first half under the lead's permutations or,
+    # lead too short, the whole set's)
+    from pipeline.similarity.measure import LSHIndex, generic_bands, minhash
+    rng = np.random.default_rng(11)
+    generic = np.unique(rng.integers(0, 2**63, 40, dtype=np.uint64))
+    own = [np.unique(rng.integers(0, 2**63, 30, dtype=np.uint64)) for _ in range(6)]
+    # rows 0-3: unrelated files made mostly of generic material; 4 and 5 share their own tune
+    sets = [np.unique(np.concatenate([generic[k:k + 30], own[k][:3]])) for k in range(4)]
+    sets += [np.unique(np.concatenate([own[4], generic[:5]])), np.unique(np.concatenate([own[4][:25], generic[5:9]]))]
+    sig = np.vstack([np.concatenate([minhash(x, 64, 1), minhash(x, 128, 1)[64:]]) for x in sets])
+    singles = np.vstack([minhash(np.array([g]), 128, 1) for g in generic])
+    lead_singles = np.vstack([minhash(np.array([g]), 64, 1) for g in generic])
+    want = np.zeros((len(sets), 64), dtype=bool)
+    for r in range(len(sets)):
+        for band in range(64):
+            cols = (2 * band, 2 * band + 1)
+            want[r, band] = all(sig[r, c] in singles[:, c] or (c < 64 and sig[r, c] in lead_singles[:, c])
+                                for c in cols)
+    got = generic_bands(sig, generic, 64, 1)
+    assert np.array_equal(got, want) and got[:4].sum() > 20
+    index = LSHIndex(128, 64)
+    index.extend([f"k{r}" for r in range(len(sets))], sig)
+    pairs = set(index.candidate_codes().tolist())
+    kept = set(index.candidate_codes(skip=got).tolist())
+    n = len(sets)
+    assert {(c // n, c % n) for c in pairs} >= {(0, 1), (1, 2), (4, 5)}  # generic bands pair the first ones
+    assert {(c // n, c % n) for c in kept} == {(4, 5)}  # left out, only the shared tune pairs
+    assert np.array_equal(generic_bands(sig, generic[:0], 64, 1), np.zeros((n, 64), dtype=bool))
+
+
+def test_generic_shingles_count_files_exactly():
+    # Reference: a plain count of the files holding each value (collections.Counter); values
+    # sharing their low bits (the bucket the count starts from) must not be merged
+    from collections import Counter
+
+    from pipeline.similarity.measure import generic_shingles
+    rng = np.random.default_rng(4)
+    low = rng.integers(0, 2**20, 30, dtype=np.uint64)
+    pool = np.unique(np.concatenate([low + (np.uint64(k) << np.uint64(40)) for k in range(1, 4)]
+                                    + [rng.integers(0, 2**63, 200, dtype=np.uint64)]))
+    sets = [np.unique(rng.choice(pool, rng.integers(5, 120), replace=False)) for _ in range(60)]
+    counts = Counter(v for x in sets for v in x.tolist())
+    for share, min_files in ((0.1, 10), (0.3, 3), (0.01, 1), (1.0, 60)):
+        need = max(min_files, int(np.ceil(share * len(sets))))
+        want = sorted(v for v, c in counts.items() if c >= need)
+        assert generic_shingles(sets, share=share, min_files=min_files).tolist() == want
+    assert generic_shingles(sets[:5], share=0.1, min_files=10).tolist() == []
+
+
 def test_sorted_unique_equals_numpy_unique():
     # Reference: numpy.unique (sorted distinct values).
     rng = np.random.default_rng(2)

@@ -515,7 +515,7 @@ def _analysis_pieces() -> list[Piece]:
     p = decoded[1]
     for field, value in (("start_s", np.nan), ("start_s", -0.0), ("end_s", -0.0),
                          ("pitch", 200), ("pitch", -3), ("program", 130), ("track", -1),
-                         ("channel", 20), ("start", -480), ("start", 2 ** 62)):
+                         ("channel", 20), ("start", -480), ("start", 2 ** 62), ("track", 30000)):
         m = p.notes.copy()  # one value the compiled code must refuse or treat like numpy
         m[field][3] = value
         if field == "start":

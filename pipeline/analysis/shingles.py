@@ -35,6 +35,7 @@ format hash equal.
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import re
 import sys
@@ -288,6 +289,23 @@ def _windows(tokens: np.ndarray, line: np.ndarray, kind: str, spec: ShingleSpec,
 _COMPILED_KINDS = ("line", "pitch", "lead")
 
 
+@functools.lru_cache(maxsize=16)
+def _kernel_constants(max_ratio: int) -> tuple[np.ndarray, dict[str, int]]:
+    """The kernel's rhythm-class bounds and the kinds' hash bases, made once per setting
+    (speed: not once per file)."""
+    bounds = np.array([2.0 ** ((c + 0.5) / 2) for c in range(-max_ratio, max_ratio)])
+    base = {k: (KIND_TAGS[k] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF for k in ("line", "pitch", "lead")}
+    return bounds, base
+
+
+@functools.lru_cache(maxsize=1024)
+def _named_lead_tracks(track_names: tuple[str, ...]) -> tuple[int, ...]:
+    """Indexes of the tracks named like a lead voice (``LEAD_NAMES``, whole words), for the
+    kernel (collections repeat the same few names)."""
+    return tuple(t for t, name in enumerate(track_names)
+                 if set(re.findall(r"[a-z]+", name.casefold())) & set(LEAD_NAMES))
+
+
 def _compiled_shingles(piece: Piece, spec: ShingleSpec) -> np.ndarray | None:
     """``shingle_hashes`` through the compiled kernel when it applies (default kinds, the
     extension built, a little-endian machine), else None. The numpy code below is the
@@ -297,11 +315,8 @@ def _compiled_shingles(piece: Piece, spec: ShingleSpec) -> np.ndarray | None:
     accel = compiled_analyses(piece.notes)
     if accel is None:
         return None
-    m = spec.max_ratio
-    bounds = np.array([2.0 ** ((c + 0.5) / 2) for c in range(-m, m)])
-    named = tuple(t for t, name in enumerate(piece.track_names)
-                  if set(re.findall(r"[a-z]+", name.casefold())) & set(LEAD_NAMES))
-    base = {k: (KIND_TAGS[k] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF for k in ("line", "pitch", "lead")}
+    bounds, base = _kernel_constants(spec.max_ratio)
+    named = _named_lead_tracks(tuple(piece.track_names))
     args = (int(piece.ticks_per_beat), 2 * spec.grid, spec.max_interval, spec.max_ratio, bounds,
             spec.bass_below, spec.ngram, spec.ngram + spec.pitch_extra, spec.min_distinct,
             float(spec.lead_monophony), named, base["line"], base["pitch"], base["lead"],

@@ -1139,6 +1139,75 @@ static int cmp_int(const void *a, const void *b) {
     return (x > y) - (x < y);
 }
 
+/* Sort vn[0..m) by (voice, q, pitch), the order qsort with cmp_vnote gives (records with equal
+ * keys are equal, so any correct sort gives the same bytes). Speed: decoded notes come in time
+ * order, so one stable counting pass by voice (voices are track * 16 + channel, dense) and an
+ * insertion sort of each run of equal onsets by pitch do it in linear time; any other input
+ * (onsets out of order within a voice, negative or very many voice ids) goes through qsort.
+ * Returns -1 without memory. */
+static int sort_vnotes(VNote *vn, Py_ssize_t m) {
+    if (m < 2) return 0;
+    int64_t top = 0;
+    int fast = 1;
+    for (Py_ssize_t i = 0; i < m && fast; i++) {
+        if (vn[i].voice < 0) fast = 0;
+        else if (vn[i].voice > top) top = vn[i].voice;
+    }
+    if (fast && top > 4 * (int64_t)m + 4096) fast = 0;
+    if (fast) {
+        Py_ssize_t nvoice = (Py_ssize_t)top + 1;
+        Py_ssize_t *start = (Py_ssize_t *)PyMem_Calloc((size_t)nvoice + 1, sizeof(Py_ssize_t));
+        VNote *tmp = (VNote *)PyMem_Malloc((size_t)m * sizeof(VNote));
+        if (!start || !tmp) {
+            PyMem_Free(start);
+            PyMem_Free(tmp);
+            return -1;
+        }
+        for (Py_ssize_t i = 0; i < m; i++) start[vn[i].voice + 1]++;
+        for (Py_ssize_t v = 0; v < nvoice; v++) start[v + 1] += start[v];
+        for (Py_ssize_t i = 0; i < m; i++) tmp[start[vn[i].voice]++] = vn[i];
+        PyMem_Free(start);
+        for (Py_ssize_t i = 1; i < m && fast; i++)
+            if (tmp[i].voice == tmp[i - 1].voice && tmp[i].q < tmp[i - 1].q) fast = 0;
+        if (fast) {
+            for (Py_ssize_t i = 1; i < m; i++) { /* equal onsets of one voice: by pitch */
+                VNote x = tmp[i];
+                Py_ssize_t j = i;
+                while (j > 0 && tmp[j - 1].voice == x.voice && tmp[j - 1].q == x.q
+                       && tmp[j - 1].pitch > x.pitch) {
+                    tmp[j] = tmp[j - 1];
+                    j--;
+                }
+                tmp[j] = x;
+            }
+            memcpy(vn, tmp, (size_t)m * sizeof(VNote));
+        }
+        PyMem_Free(tmp);
+        if (fast) return 0;
+    }
+    qsort(vn, (size_t)m, sizeof(VNote), cmp_vnote);
+    return 0;
+}
+
+/* The lower median (sorted[(n - 1) / 2]) of n > 0 pitches; counted when they lie in 0..127
+ * (MIDI pitches), else sorted in place. */
+static int median_pitch(int *p, Py_ssize_t n) {
+    Py_ssize_t hist[128] = {0};
+    for (Py_ssize_t i = 0; i < n; i++) {
+        if (p[i] < 0 || p[i] > 127) {
+            qsort(p, (size_t)n, sizeof(int), cmp_int);
+            return p[(n - 1) / 2];
+        }
+        hist[p[i]]++;
+    }
+    Py_ssize_t want = (n - 1) / 2, seen = 0;
+    for (int k = 0; k < 128; k++) {
+        seen += hist[k];
+        if (seen > want) return k;
+    }
+    return 127; /* not reached */
+}
+
 /* windows of ``n`` tokens inside one line (``line`` ids), hashed from ``base + n``; those with
  * at most ``limit`` distinct tokens left out when limit >= 1; the hashes are appended to out
  * (fmix and the top bit: ``top`` 1 sets it, 0 clears it). Lead copies (line == lead) go to
@@ -1250,7 +1319,10 @@ static PyObject *voice_shingles(PyObject *self, PyObject *const *args, Py_ssize_
         vn[m].pitch = f_i16(&t, i, O_PITCH);
         m++;
     }
-    qsort(vn, (size_t)m, sizeof(VNote), cmp_vnote);
+    if (sort_vnotes(vn, m) < 0) {
+        PyErr_NoMemory();
+        goto done;
+    }
     /* voices */
     Py_ssize_t nv = 0;
     for (Py_ssize_t i = 0; i < m; i++)
@@ -1263,8 +1335,7 @@ static PyObject *voice_shingles(PyObject *self, PyObject *const *args, Py_ssize_
             pbuf[i - a] = vn[i].pitch;
             ons += (i == a || vn[i].q != vn[i - 1].q);
         }
-        qsort(pbuf, (size_t)(b - a), sizeof(int), cmp_int);
-        vmed[v] = pbuf[(b - a - 1) / 2];
+        vmed[v] = median_pitch(pbuf, b - a);
         vons[v] = ons;
     }
     /* the lead (shingles.lead_voice) */

@@ -239,8 +239,8 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .measure import (VERIFY_CHUNK, involved_sets, pair_estimates, pair_similarities,
-                          plausible_pairs)
+    from .measure import (PAIR_CHUNK, VERIFY_CHUNK, involved_sets, pair_estimates,
+                          pair_similarities, plausible_pairs)
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -259,17 +259,21 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
         est = est[sel]
     else:  # the bounds dedup uses (containment, lead voices), with a wider margin
         sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
-        sel = plausible_pairs(sig, ia, ib, sizes, threshold, margin_sigmas=margin_sigmas)
+        sel = np.empty(len(ia), dtype=bool)
+        for lo in range(0, len(ia), PAIR_CHUNK):  # memory: a dozen per-pair arrays a chunk at a time
+            hi = lo + PAIR_CHUNK
+            sel[lo:hi] = plausible_pairs(sig, ia[lo:hi], ib[lo:hi], sizes, threshold,
+                                         margin_sigmas=margin_sigmas)
     ia, ib = ia[sel], ib[sel]
-    sets, li, lj = None, ia, ib
+    del pairs, sel  # memory: millions of candidates on a large corpus
+    sets = None
     if shingles is not None and len(ia):  # only the sets of files in some pair are read
-        sets, li, lj = involved_sets(keys, ia, ib, shingles)
+        sets, pos = involved_sets(keys, ia, ib, shingles)
         sets = [np.asarray(x, dtype=np.uint64) for x in sets]
     out: list[tuple[str, str, float]] = []
     for lo in range(0, len(ia), VERIFY_CHUNK):  # memory: per-pair arrays a chunk at a time
         i, j = ia[lo:lo + VERIFY_CHUNK], ib[lo:lo + VERIFY_CHUNK]
-        sim = (est[lo:lo + VERIFY_CHUNK] if sets is None
-               else pair_similarities(sets, li[lo:lo + VERIFY_CHUNK], lj[lo:lo + VERIFY_CHUNK]))
+        sim = est[lo:lo + VERIFY_CHUNK] if sets is None else pair_similarities(sets, pos[i], pos[j])
         hit = sim >= threshold
         # memory: only the linked pairs become Python objects
         out += [(keys[a], keys[b], float(v))

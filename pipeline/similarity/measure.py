@@ -86,6 +86,13 @@ def minhash(shingles: np.ndarray, num_perm: int = 128, seed: int = 1, *,
     the numpy formulation below, the specification (tests/test_smf_accel.py holds them equal).
     """
     a, b = permutations(num_perm, seed)
+    return _minhash_with(shingles, a, b, compiled)
+
+
+def _minhash_with(shingles: np.ndarray, a: np.ndarray, b: np.ndarray, compiled: bool = True
+                  ) -> np.ndarray:
+    """``minhash`` under the permutations ``(a, b)`` (one value per permutation)."""
+    num_perm = len(a)
     if len(shingles) == 0:
         return np.full(num_perm, _U32_MAX, dtype=np.uint32)
     compiled = compiled_kernel("minhash32") if compiled else None
@@ -205,12 +212,51 @@ def generic_shingles(sets: list[np.ndarray], *, share: float = GENERIC_SHARE,
     need = max(int(min_files), int(np.ceil(share * len(sets))))
     if len(sets) < need or not len(sets):
         return np.zeros(0, dtype=np.uint64)
-    allh = np.sort(np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets]))
+    allh = np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets])
+    if not len(allh):
+        return allh
+    # speed: a shingle in ``need`` sets puts ``need`` or more values in its bucket of the low
+    # bits, so only the values of such buckets are sorted and counted exactly (sorting every
+    # value was most of the count)
+    bucket = (allh & np.uint64(_GENERIC_BUCKETS - 1)).astype(np.intp)
+    allh = np.sort(allh[np.bincount(bucket, minlength=_GENERIC_BUCKETS)[bucket] >= need])
     if not len(allh):
         return allh
     start = np.flatnonzero(np.concatenate(([True], allh[1:] != allh[:-1])))
     count = np.diff(np.append(start, len(allh)))
     return allh[start[count >= need]]
+
+
+#: Buckets (of the low bits of a shingle hash) in which ``generic_shingles`` counts first.
+_GENERIC_BUCKETS = 1 << 20
+
+
+def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
+    """``(rows, bands)`` booleans: the LSH bands of ``signature_of`` signatures whose every value
+    is the MinHash value of a ``generic`` shingle under that column's permutation. Such a band
+    key is made of generic material only: two unrelated files sharing it are what makes the
+    candidates of a large corpus grow with its square, and ``set_similarity`` leaves those
+    shingles out anyway. A column of the first half may come from the lead's permutations or
+    (lead too short) the whole set's: a value matching either counts."""
+    sig = np.asarray(sig, dtype=np.uint32)
+    n, num_perm = sig.shape
+    out = np.zeros((n, bands), dtype=bool)
+    if not n or not len(generic):
+        return out
+    half = num_perm // 2
+    h = _fmix32(fold32(generic))
+    a, b = permutations(num_perm, seed)
+    la, lb = permutations(half, seed)
+    hit = np.zeros(sig.shape, dtype=bool)
+    with np.errstate(over="ignore"):
+        for c in range(num_perm):
+            vals = h * a[c] + b[c]
+            if c < half:
+                vals = np.concatenate([vals, h * la[c] + lb[c]])
+            vals.sort()
+            pos = np.minimum(np.searchsorted(vals, sig[:, c]), len(vals) - 1)
+            hit[:, c] = vals[pos] == sig[:, c]
+    return hit.reshape(n, bands, num_perm // bands).all(axis=2)
 
 
 def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray:
@@ -387,9 +433,12 @@ class LSHIndex:
         n, ids = len(self.ids), self.ids
         return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
 
-    def candidate_codes(self, new: set[str] | None = None) -> np.ndarray:
+    def candidate_codes(self, new: set[str] | None = None, skip: np.ndarray | None = None
+                        ) -> np.ndarray:
         """The candidate pairs of ``candidates`` as sorted unique codes ``i * n + j`` (``i < j``
-        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings."""
+        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings.
+        ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
+        no row: each gets a key of its own row."""
         n = len(self.ids)
         if n < 2:
             return np.zeros(0, dtype=np.int64)
@@ -397,7 +446,17 @@ class LSHIndex:
                   else np.array([k in new for k in self.ids]))
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
-        return banded_pair_codes(self.matrix(), self.bands, is_new)
+        sig = self.matrix()
+        if skip is not None and skip.any():
+            rows, bands = np.nonzero(skip)
+            r = self.num_perm // self.bands
+            sig = sig.copy()
+            # the band's first value becomes the row number, the others one constant: a key no
+            # other row has (a real band equal to it only adds a candidate, which is verified)
+            sig[rows, bands * r] = rows.astype(np.uint32)
+            for k in range(1, r):
+                sig[rows, bands * r + k] = _U32_MAX - np.uint32(1)
+        return banded_pair_codes(sig, self.bands, is_new)
 
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
@@ -627,13 +686,14 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
-    sets, li, lj = involved_sets(keys, i, j, shingles)
+    sets, pos = involved_sets(keys, i, j, shingles)
     if generic is not None and len(generic):
-        sets = [drop_generic(np.asarray(x, dtype=np.uint64), generic) for x in sets]
+        for p, x in enumerate(sets):  # memory: each read set is let go as it is replaced
+            sets[p] = drop_generic(np.asarray(x, dtype=np.uint64), generic)
     hits: list[tuple[str, str, float]] = []
     for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
         hi = lo + VERIFY_CHUNK
-        sims = pair_similarities(sets, li[lo:hi], lj[lo:hi], min_size_ratio=min_size_ratio)
+        sims = pair_similarities(sets, pos[i[lo:hi]], pos[j[lo:hi]], min_size_ratio=min_size_ratio)
         hit = np.flatnonzero(sims >= threshold)
         hits += [(keys[a], keys[b], sim) for a, b, sim in
                  zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist())]
@@ -641,13 +701,19 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
 
 
 def involved_sets(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any
-                  ) -> tuple[list, np.ndarray, np.ndarray]:
+                  ) -> tuple[list, np.ndarray]:
     """The sets ``shingles[keys[p]]`` of the keys in some pair ``(i[k], j[k])`` only, those
-    still in the ledger (``ledger.StoredArray``) read in one go, and the pairs as positions in
-    that list (what ``pair_similarities`` takes)."""
-    involved = sorted_unique(np.concatenate([i, j]))
+    still in the ledger (``ledger.StoredArray``) read in one go, and ``pos``: key index -> its
+    position in that list (``pos[i]``, ``pos[j]`` are what ``pair_similarities`` takes). A
+    mask over the keys rather than a sort of the pairs (memory: the pair arrays of millions of
+    candidates are not copied)."""
+    used = np.zeros(len(keys), dtype=bool)
+    used[i] = True
+    used[j] = True
+    involved = np.flatnonzero(used)
+    pos = np.cumsum(used, dtype=np.int64) - 1
     sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
-    return sets, np.searchsorted(involved, i), np.searchsorted(involved, j)
+    return sets, pos
 
 
 #: Candidate pairs compared per ``pair_similarities`` call in ``verify_index_pairs``.
@@ -722,8 +788,14 @@ def signature_of(piece: Piece, opts: dict[str, Any] | None = None
                        max_shingles=int(o.get("max_shingles", ShingleSpec.max_shingles)))
     sh = shingle_hashes(piece, spec)
     num_perm, seed = int(o.get("num_perm", 128)), int(o.get("seed", 1))
-    sig = minhash(sh, num_perm, seed)
     lead = lead_part(sh)
-    if len(lead) >= MIN_LEAD:
-        sig[:num_perm // 2] = minhash(lead, num_perm // 2, seed)
+    half = num_perm // 2
+    if len(lead) < MIN_LEAD:
+        return minhash(sh, num_perm, seed), sh, content_hash(piece)
+    # speed: the whole set is hashed only under the permutations of the second half, the
+    # values it keeps (the same values ``minhash(sh, num_perm, seed)[half:]`` gives)
+    a, b = permutations(num_perm, seed)
+    sig = np.empty(num_perm, dtype=np.uint32)
+    sig[:half] = minhash(lead, half, seed)
+    sig[half:] = _minhash_with(sh, a[half:], b[half:])
     return sig, sh, content_hash(piece)

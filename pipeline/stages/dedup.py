@@ -30,26 +30,24 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import ShingleSpec, duration_beats
-from ..store.ledger import load_arrays
 from ..midi.piece import Piece
 from ..similarity.measure import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex,
-                                  UnionFind, check_banding, generic_shingles, signature_of,
-                                  verify_index_pairs)
+                                  UnionFind, check_banding, generic_bands, generic_shingles,
+                                  signature_of, verify_index_pairs)
+from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
 
 
 class _Facts:
-    """What dedup knows of one member (read as ``facts[k]["notes"]``, like a dict); a slotted
-    object instead of a dict per file (memory)."""
+    """What dedup knows of one member when choosing the kept ones (read as
+    ``facts[k]["notes"]``, like a dict); a slotted object instead of a dict per file (memory).
+    Shingle sets are not among them: they are read only where pairs are verified."""
 
-    __slots__ = ("id", "source", "sha256", "content_hash", "signature", "shingles", "notes",
-                 "duration_beats")
+    __slots__ = ("id", "source", "sha256", "notes", "duration_beats")
 
-    def __init__(self, id: str, source: str, sha256: str, content_hash: str, signature: np.ndarray,
-                 shingles: np.ndarray, notes: int, duration_beats: float):
-        self.id, self.source, self.sha256, self.content_hash = id, source, sha256, content_hash
-        self.signature, self.shingles = signature, shingles
+    def __init__(self, id: str, source: str, sha256: str, notes: int, duration_beats: float):
+        self.id, self.source, self.sha256 = id, source, sha256
         self.notes, self.duration_beats = notes, duration_beats
 
     def __getitem__(self, name: str) -> Any:
@@ -58,50 +56,29 @@ class _Facts:
 
 class _LazyFacts(dict):
     """member id -> ``_Facts``, each built from the member's artifacts when first read (a rerun
-    reads the facts of the clusters it recomputes, not of every member). The shingle sets may
-    still be in the ledger (``ledger.StoredArray``): ``prefetch`` reads many in one query."""
+    reads the facts of the clusters it recomputes, not of every member)."""
 
     def __init__(self, by_id: dict[str, Member], arts: dict[str, dict[str, Any]]):
         super().__init__()
         self._by_id, self._arts = by_id, arts
 
-    def prefetch(self, ids: list[str]) -> None:
-        """Build the facts of these members, reading their shingle sets together."""
-        todo = [k for k in ids if k not in self]
-        for k, sh in zip(todo, load_arrays([self._arts[k]["shingles"] for k in todo])):
-            self._build(k, sh)
-
-    def shingles_of(self, k: str) -> Any:
-        """A member's shingle set: its fact's when built, else the artifact as it is (maybe a
-        ``StoredArray``, for the caller to read with others)."""
-        f = self.get(k)
-        return f.shingles if f is not None else self._arts[k]["shingles"]
-
     def __missing__(self, k: str) -> _Facts:
-        return self._build(k, load_arrays([self._arts[k]["shingles"]])[0])
-
-    def _build(self, k: str, shingles: Any) -> _Facts:
         m, art = self._by_id[k], self._arts[k]
-        f = _Facts(k, m.source, m.sha256, str(art["content_hash"]),
-                   np.asarray(art["signature"], dtype=np.uint32),
-                   np.asarray(shingles, dtype=np.uint64),
-                   int(art["notes"]), float(art["duration_beats"]))
-        self[k] = f
+        f = self[k] = _Facts(k, m.source, m.sha256, int(art["notes"]), float(art["duration_beats"]))
         return f
 
 
 class _Shingles:
-    """member id -> shingle set (what ``verify_index_pairs`` reads): a fact's set when the
-    facts are built, else the artifact as it is (``verify_index_pairs`` loads the stored ones
-    in one go)."""
+    """member id -> shingle set as stored (maybe a ``ledger.StoredArray``, which
+    ``verify_index_pairs`` reads with the others in one go)."""
 
-    __slots__ = ("_facts",)
+    __slots__ = ("_arts",)
 
-    def __init__(self, facts: _LazyFacts):
-        self._facts = facts
+    def __init__(self, arts: dict[str, dict[str, Any]]):
+        self._arts = arts
 
     def __getitem__(self, k: str) -> Any:
-        return self._facts.shingles_of(k)
+        return self._arts[k]["shingles"]
 
 
 def _key_most_notes(m: dict) -> tuple:
@@ -156,7 +133,7 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 2
+    version = 3
     doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
            "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
@@ -292,10 +269,6 @@ class Dedup(Stage):
             for k, x in zip(indexed, sigs):
                 index.add(k, x)  # names the member whose signature does not fit
         new_reps = {k for k in rep_ids if k not in old}
-        # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
-        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples
-        codes = index.candidate_codes(new_reps if reusable else None)
-        n_candidates = len(codes)
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were)
         if reusable and "generic" in prev:
@@ -303,10 +276,20 @@ class Dedup(Stage):
         else:
             self._generic = self._generic_shingles(indexed, arts)
         state.save("generic", self._generic.tolist())
+        # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
+        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
+        # bands made of generic material only pair nothing
+        skip = generic_bands(index.matrix(), self._generic, index.bands, int(o["seed"]))
+        codes = index.candidate_codes(new_reps if reusable else None, skip=skip)
+        del skip
+        n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_ids = len(index.ids)
-        verified = verify_index_pairs(index.ids, codes // n_ids, codes % n_ids, _Shingles(facts),
+        ia, ib = codes // n_ids, codes % n_ids
+        n_plausible = len(codes)
+        del codes  # memory: millions of candidates on a large corpus
+        verified = verify_index_pairs(index.ids, ia, ib, _Shingles(arts),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]),
                                       generic=self._generic)
         for a, b, sim in verified:
@@ -315,7 +298,7 @@ class Dedup(Stage):
             near_links.append([a, b, round(sim, 6)])
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
-                     f"{n_candidates} LSH candidate pairs, {len(codes)} plausible by their MinHash "
+                     f"{n_candidates} LSH candidate pairs, {n_plausible} plausible by their MinHash "
                      f"estimate, {len(verified)} verified links; {len(self._generic)} generic "
                      "shingles left out")
 
@@ -330,9 +313,6 @@ class Dedup(Stage):
         cluster_sources: dict[str, str] = {}
         groups = uf.groups()
         as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
-        # speed: the facts of the clusters of several that are recomputed, read together (a
-        # member alone needs none, and most clusters have one)
-        facts.prefetch([k for g, same in zip(groups, as_last) if len(g) > 1 and not same for k in g])
         for group, same in zip(groups, as_last):
             if len(group) > 1:
                 for k in group:

@@ -397,15 +397,15 @@ FETCH_CHUNK = 500
 
 class StoredArray:
     """A numpy array artifact left in the ledger until it is read (``artifacts_for(defer=)``):
-    ``len()`` and ``shape`` come from the stored shape, ``load()`` reads the bytes once (the
-    array is kept: dedup and split compare many of the same files); the ledger must still be
-    open."""
+    ``len()`` and ``shape`` come from the stored shape, ``load()`` reads the bytes; the ledger
+    must still be open. A read array is not kept on the handle (memory: a 100,000-file run
+    compares nearly every file in some candidate pair, and kept sets stayed for the whole
+    stage walk); whoever reads it holds it as long as it needs it."""
 
-    __slots__ = ("_rows", "sha256", "dtype", "_shape", "_array")
+    __slots__ = ("_rows", "sha256", "dtype", "_shape")
 
     def __init__(self, rows: _ArrayRows, sha256: str, dtype: str, shape: str | None):
         self._rows, self.sha256, self.dtype, self._shape = rows, sha256, dtype, shape
-        self._array: Any = None
 
     @property
     def shape(self) -> tuple[int, ...]:
@@ -426,28 +426,28 @@ class StoredArray:
 
 def load_arrays(values: list) -> list:
     """The arrays of ``values``: numpy arrays (or anything else) as they are, ``StoredArray``
-    handles read from the ledger, those sharing a table in one query per ``FETCH_CHUNK``."""
+    handles read from the ledger, those sharing a table in one query per ``FETCH_CHUNK`` (a
+    handle listed twice is read once and gives one array)."""
     out = list(values)
     groups: dict[int, tuple[_ArrayRows, list[int]]] = {}
     for i, v in enumerate(out):
         if type(v) is StoredArray:
-            if v._array is not None:
-                out[i] = v._array
-            else:
-                groups.setdefault(id(v._rows), (v._rows, []))[1].append(i)
+            groups.setdefault(id(v._rows), (v._rows, []))[1].append(i)
     for rows, where in groups.values():
         got = rows.fetch(sorted({out[i].sha256 for i in where}))
+        read: dict[int, Any] = {}
         for i in where:
             v = out[i]
-            if v._array is None:  # (a handle listed twice is read once)
+            arr = read.get(id(v))
+            if arr is None:
                 data = got.get(v.sha256)
                 if data is None:
                     path = rows.db.execute("PRAGMA database_list").fetchone()[2] or None
                     raise LedgerError(f"the {rows.key[2]} artifact of {v.sha256} is no longer in "
                                       "the state database (another process changed it during "
                                       "the run?); rerun", file=path)
-                v._array = decode_array(v.dtype, v._shape, data)
-            out[i] = v._array
+                arr = read[id(v)] = decode_array(v.dtype, v._shape, data)
+            out[i] = arr
     return out
 
 
