@@ -268,7 +268,7 @@ def chorales():
 
 
 def test_bach_chorales_sharing_a_tune(chorales):
-    from pipeline.similarity.measure import near_pairs
+    from pipeline.similarity.links import near_pairs
     members = [m for _, m in chorales.values()]
     name_of = {m.id: name for name, (_, m) in chorales.items()}
     tune_of = {m.id: tune for tune, m in chorales.values()}
@@ -339,7 +339,7 @@ def test_clusters_as_last_run_keep_their_results_and_the_rest_equals_a_full_comp
 def planted(name: str, shingles: np.ndarray, notes: int) -> Member:
     """A member whose dedup artifacts are given directly: a shingle set (sorted unique uint64)
     signed as ``prepare`` signs it, so the test decides the pair similarities exactly."""
-    from pipeline.similarity.measure import minhash
+    from pipeline.similarity.minhash import minhash
     sh = np.unique(np.asarray(shingles, dtype=np.uint64))
     mid = hashlib.sha256(name.encode()).hexdigest()[:16]
     art = {"content_hash": "content-" + name, "signature": minhash(sh), "shingles": sh,
@@ -349,7 +349,7 @@ def planted(name: str, shingles: np.ndarray, notes: int) -> Member:
 
 def jaccard_or_containment(a: np.ndarray, b: np.ndarray, generic: np.ndarray | None = None) -> float:
     """The similarity dedup documents (README, "How similarity is computed"), on Python sets,
-    independently of pipeline.similarity.measure: generic shingles left out; Jaccard |A & B| / |A | B|
+    independently of pipeline.similarity: generic shingles left out; Jaccard |A & B| / |A | B|
     (Broder 1997), or containment |A & B| / min(|A|, |B|) when the smaller set holds at least
     10% of the larger's size and it is higher; the same between the lead-voice parts (shingles
     below 2**63) when both hold 16 or more (containment there from 64), the higher counting."""

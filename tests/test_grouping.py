@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.similarity.grouping import (achieved_ratios, assign_groups, band_candidates,
-                                                  build_groups, group_by_key, lsh_rows, near_links)
+                                          build_groups, group_by_key, lsh_rows, near_links)
 
 RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
 
@@ -160,7 +160,7 @@ def test_lsh_rows_meets_recall():
 
 def test_near_links_finds_every_pair_above_threshold_and_no_other():
     """Against brute-force exact Jaccard on random shingle sets with planted overlaps."""
-    from pipeline.similarity.measure import minhash
+    from pipeline.similarity.minhash import minhash
 
     rng = np.random.default_rng(7)
     base = {f"b{i}": rng.choice(2**40, 300, replace=False).astype(np.uint64) for i in range(40)}
@@ -186,7 +186,7 @@ def test_near_links_finds_every_pair_above_threshold_and_no_other():
                 assert got[(a, b)] == pytest.approx(sim) and sim >= 0.5
     # the plausibility bounds go a chunk of candidates at a time (memory): chunks of 3 pairs
     # give the links one chunk gives
-    from pipeline.similarity import measure as similarity
+    from pipeline.similarity import lsh as similarity
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(similarity, "PAIR_CHUNK", 3)
         assert {(a, b): s for a, b, s in near_links(sigs, 0.5, sets)} == got
@@ -202,11 +202,12 @@ def test_band_candidates_equal_brute_force(n, bands, seed, marked):
     than two, some empty signatures); with ``only``, the pairs touching a marked row (a fifth
     of the rows takes the path that sorts each band, one row among 16 or more the path that
     searches the new rows' keys). The per-file LSHIndex must give the same pairs."""
-    from pipeline.similarity.measure import LSHIndex, _U32_MAX
+    from pipeline.similarity.lsh import LSHIndex
+    from pipeline.similarity.minhash import EMPTY_VALUE
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 32), dtype=np.uint32)
-    sig[rng.random(n) < 0.1] = _U32_MAX  # empty shingle sets never pair
+    sig[rng.random(n) < 0.1] = EMPTY_VALUE  # empty shingle sets never pair
     only = None
     if marked == "a fifth":
         only = rng.random(n) < 0.2
@@ -217,7 +218,7 @@ def test_band_candidates_equal_brute_force(n, bands, seed, marked):
     want = []
     for i in range(n):
         for j in range(i + 1, n):
-            if (sig[i] == _U32_MAX).all() or (sig[j] == _U32_MAX).all():
+            if (sig[i] == EMPTY_VALUE).all() or (sig[j] == EMPTY_VALUE).all():
                 continue
             if only is not None and not (only[i] or only[j]):
                 continue

@@ -16,7 +16,7 @@ import pytest
 from pipeline.tools import synth
 from pipeline.errors import DecodeError, UsageError
 from pipeline.audit.leakage import add_arguments, audit, audit_output, format_report, main_leakage
-from pipeline.similarity.measure import signature_of
+from pipeline.similarity.minhash import signature_of
 from pipeline.midi.decode import decode_file
 from pipeline.stages.base import CorpusState, Member
 from pipeline.stages.split import Split

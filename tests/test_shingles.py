@@ -6,7 +6,7 @@ import pytest
 
 from pipeline.analysis.shingles import (RATIO_FIRST, ShingleSpec, content_hash, duration_beats,
                                         line_tokens, ratio_class, shingle_hashes)
-from pipeline.similarity.measure import drop_generic, generic_shingles, set_similarity
+from pipeline.similarity.sets import drop_generic, generic_shingles, set_similarity
 from pipeline.midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece,
                                  empty_notes, sort_notes, ticks_to_seconds)
 

@@ -7,12 +7,12 @@ from datasketch import MinHash, MinHashLSH
 
 from pipeline.midi import accel
 from pipeline.midi import decode as smf
-from pipeline.similarity.measure import (LSHIndex, UnionFind, band_keys,
-                                                 candidate_probability, check_banding,
-                                                 estimate_jaccard, fold32, minhash, near_pairs,
-                                                 near_pairs_between, pair_similarities,
-                                                 set_similarity, sorted_unique, verify_index_pairs,
-                                                 verify_pairs)
+from pipeline.similarity.lsh import (LSHIndex, band_keys, candidate_probability, check_banding,
+                                     sorted_unique)
+from pipeline.similarity.links import (UnionFind, near_pairs, near_pairs_between,
+                                       verify_index_pairs, verify_pairs)
+from pipeline.similarity.minhash import estimate_jaccard, fold32, minhash
+from pipeline.similarity.sets import pair_similarities, set_similarity
 
 
 def pair_with_jaccard(rng: np.random.Generator, j: float, union: int = 400) -> tuple[np.ndarray, np.ndarray]:
@@ -218,7 +218,7 @@ def test_incremental_banding_kernel_equals_the_definition_and_numpy(n, bands, se
     """With few new rows (one in 16 or fewer) ``banded_pair_codes`` takes the compiled kernel
     when built; its codes equal the numpy formulation's and banding's definition, on
     signatures with small value ranges (buckets of many rows, pairs sharing many bands)."""
-    from pipeline.similarity.measure import banded_pair_codes
+    from pipeline.similarity.lsh import banded_pair_codes
 
     rng = np.random.default_rng(seed)
     sig = rng.integers(0, 3, (n, 128), dtype=np.uint32)
@@ -313,7 +313,8 @@ def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():
     # test_numpy_minhash_equals_datasketch_digest); a band is generic when each of its values
     # is such a value of a generic shingle (the first half under the lead's permutations or,
     # lead too short, the whole set's)
-    from pipeline.similarity.measure import LSHIndex, generic_bands, minhash
+    from pipeline.similarity.lsh import LSHIndex, generic_bands
+    from pipeline.similarity.minhash import minhash
     rng = np.random.default_rng(11)
     generic = np.unique(rng.integers(0, 2**63, 40, dtype=np.uint64))
     own = [np.unique(rng.integers(0, 2**63, 30, dtype=np.uint64)) for _ in range(6)]
@@ -346,7 +347,7 @@ def test_generic_shingles_count_files_exactly():
     # sharing their low bits (the bucket the count starts from) must not be merged
     from collections import Counter
 
-    from pipeline.similarity.measure import generic_shingles
+    from pipeline.similarity.sets import generic_shingles
     rng = np.random.default_rng(4)
     low = rng.integers(0, 2**20, 30, dtype=np.uint64)
     pool = np.unique(np.concatenate([low + (np.uint64(k) << np.uint64(40)) for k in range(1, 4)]
@@ -470,7 +471,7 @@ def test_plausible_codes_drop_unrelated_pairs():
 def test_band_keys_one_band_at_a_time_equal_the_whole_table():
     """The per-band keys (what the corpus stages compute, one band at a time) equal the
     all-bands-at-once formulation they replace, kept here as the oracle."""
-    from pipeline.similarity.measure import _ROLL, band_key
+    from pipeline.similarity.lsh import _ROLL, band_key
     from pipeline.analysis.shingles import fmix64
 
     def whole_table(signatures, bands):

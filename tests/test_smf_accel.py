@@ -657,7 +657,7 @@ def test_compiled_analyses_hand_back_what_numpy_treats_otherwise():
 def test_compiled_minhash_equals_similarity_minhash():
     # minhash32 (offered to similarity.minhash) against it, both table layouts, and datasketch
     from datasketch import MinHash
-    from pipeline.similarity.measure import fold32, minhash, permutations
+    from pipeline.similarity.minhash import fold32, minhash, permutations
     rng = np.random.default_rng(4)
     for size in (1, 2, 100, 255, 256, 257, 4096):
         sh = np.unique(rng.integers(0, 2 ** 64, size, dtype=np.uint64))

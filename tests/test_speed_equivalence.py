@@ -33,7 +33,7 @@ from pipeline.analysis import stats as statsmod
 from pipeline.analysis import transpose as trmod
 from pipeline.midi.piece import (DRUM_CHANNEL, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece,
                                  empty_notes, sort_notes)
-from pipeline.similarity.measure import fold32, minhash, permutations, signature_of
+from pipeline.similarity.minhash import fold32, minhash, permutations, signature_of
 from pipeline.midi.decode import decode
 from pipeline.stages.transpose import Transpose
 

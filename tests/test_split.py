@@ -1,6 +1,6 @@
 """Tests of the split stage's ``run_corpus`` with simulated runs (``CorpusState(previous=...)``
 carrying what the previous run saved). Near-duplicates are planted as shingle sets with a known
-overlap, signed with pipeline.similarity.measure.minhash as the dedup stage would store them; every
+overlap, signed with pipeline.similarity.minhash.minhash as the dedup stage would store them; every
 "zero cross-part near-duplicates" check is a brute-force exact comparison of all pairs."""
 from __future__ import annotations
 
@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 
 from pipeline.errors import ConfigError
-from pipeline.similarity.measure import minhash, set_similarity
+from pipeline.similarity.minhash import minhash
+from pipeline.similarity.sets import set_similarity
 from pipeline.stages.base import CorpusState, Member, StageResult
 from pipeline.stages.split import Split, check_ratios, normalize_text, output_count
 

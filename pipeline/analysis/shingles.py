@@ -13,7 +13,7 @@ hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
   windows ``pitch_extra`` tokens longer: a tune re-notated with other note values keeps them.
 * **The lead** (kind ``lead``): the line shingles of the voice that carries the tune
   (``lead_voice``) once more, marked by a clear top bit (``LEAD_LIMIT``) so they form the
-  prefix of the sorted set; ``pipeline.similarity.measure`` compares files on them on their own too.
+  prefix of the sorted set; ``pipeline.similarity.sets`` compares files on them on their own too.
 * Measured and not used by default (``ShingleSpec.kinds``): ``bass``, the lowest note at each
   onset of all voices merged; ``harmony``, per beat the pitch-class set of the notes sounding,
   relative to their lowest note, one token per chord change; ``top``, the highest note of all
@@ -84,7 +84,7 @@ class ShingleSpec:
 KIND_TAGS = {"line": 1, "bass": 2, "harmony": 3, "top": 4, "pitch": 5, "lead": 6, "lead_pitch": 7}
 #: Shingles of the lead voice (also present as ordinary line shingles) are marked by a clear top
 #: bit, every other shingle by a set one: a sorted set holds the lead's copies first, so a
-#: comparison of the leads alone reads a prefix of each set (``similarity.measure.lead_part``).
+#: comparison of the leads alone reads a prefix of each set (``similarity.sets.lead_part``).
 LEAD_LIMIT = np.uint64(1 << 63)
 #: A held note counts in at most this many beats of the harmony (memory: long pads).
 _HELD_BEATS = 4

@@ -2,7 +2,7 @@
 
 Works on our output folder (``splits/*.txt``, paths relative to the folder) or on a user's own
 split given as lists of MIDI paths, so a split made elsewhere can be audited. Each file is
-decoded with ``pipeline.midi.decode.decode`` and signed with ``pipeline.similarity.measure.signature_of``; pairs
+decoded with ``pipeline.midi.decode.decode`` and signed with ``pipeline.similarity.minhash.signature_of``; pairs
 come from ``pipeline.similarity.grouping.near_links`` (the same search the split stage groups with, so an
 output folder of ours audited at its grouping threshold must show none), plus equal content
 hashes (the same notes, e.g. one file listed in two parts, even when it has no melody to shingle).
@@ -79,7 +79,7 @@ def _default_decode(path: Path) -> Any:
 
 
 def _default_signer(opts: dict | None) -> Signer:
-    from ..similarity.measure import signature_of
+    from ..similarity.minhash import signature_of
     return lambda piece: signature_of(piece, opts)
 
 

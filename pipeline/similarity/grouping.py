@@ -194,16 +194,17 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     sorted. With ``only`` (a boolean mask over the rows), just the pairs with at least one
     row in it (incremental reruns pair the new files against everything, not all with all).
 
-    One band at a time (``pipeline.similarity.measure.banded_pair_codes``): memory stays near the
+    One band at a time (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the
     number of distinct pairs instead of rows x bands x run length (a 100,000-file run held
     several GB in the all-bands-at-once form). Empty signatures (no shingles) never pair.
     """
     import numpy as np
 
-    from .measure import _U32_MAX, banded_pair_codes, check_banding
+    from .minhash import EMPTY_VALUE
+    from .lsh import banded_pair_codes, check_banding
 
     n = len(sig)
-    live = np.flatnonzero(~np.all(np.asarray(sig) == _U32_MAX, axis=1)) if n else np.zeros(0, np.int64)
+    live = np.flatnonzero(~np.all(np.asarray(sig) == EMPTY_VALUE, axis=1)) if n else np.zeros(0, np.int64)
     if len(live) < 2:
         return np.zeros((0, 2), np.int64)
     is_new = np.ones(len(live), dtype=bool) if only is None else np.asarray(only, dtype=bool)[live]
@@ -235,12 +236,13 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     search: LSH bands chosen for ``recall`` at the threshold itself, then a vectorized MinHash
     estimate drops candidates more than ``margin_sigmas`` standard errors below the threshold,
     and the rest are verified exactly on the shingle sets (Jaccard or excerpt containment, as in
-    ``pipeline.similarity.measure.set_similarity``); without shingles the estimate decides.
+    ``pipeline.similarity.sets.set_similarity``); without shingles the estimate decides.
     """
     import numpy as np
 
-    from .measure import (PAIR_CHUNK, VERIFY_CHUNK, involved_sets, pair_estimates,
-                          pair_similarities, plausible_pairs)
+    from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
+    from .links import VERIFY_CHUNK, involved_sets
+    from .sets import pair_similarities
 
     keys = sorted(signatures)
     if len(keys) < 2:

@@ -3,7 +3,7 @@
 Per file (``prepare``, in the worker): the canonical note-content hash, the shingle set (the
 lines of every voice above the bass register, interval x onset gap in units of the line, and
 their pitch-only contours; the lead voice's again, marked; see ``pipeline.analysis.shingles``)
-and its MinHash signature (``similarity.measure.signature_of``). Over the corpus (``run_corpus``):
+and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus (``run_corpus``):
 
 1. byte-identical files (equal sha256) and files with identical note content (equal content
    hash) are linked first, with no MinHash work (``exact_duplicate``);
@@ -31,9 +31,10 @@ import numpy as np
 
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..midi.piece import Piece
-from ..similarity.measure import (GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, LSHIndex,
-                                  UnionFind, check_banding, generic_bands, generic_shingles,
-                                  signature_of, verify_index_pairs)
+from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, generic_shingles
+from ..similarity.lsh import LSHIndex, check_banding, generic_bands
+from ..similarity.links import UnionFind, verify_index_pairs
+from ..similarity.minhash import signature_of
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
@@ -339,7 +340,7 @@ class Dedup(Stage):
         return results
 
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
-        """The generic shingles (``similarity.measure.generic_shingles``) of the compared files, counted
+        """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
         on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
         share = float(self.opts["generic_share"])
         if share >= 1.0:

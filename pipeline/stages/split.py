@@ -4,7 +4,7 @@ Which files travel together (one group, never split across parts):
 
 * near-duplicates at ``group_threshold`` (lower than dedup's removal threshold, so near-misses
   that survived dedup still travel together), found on MinHash signatures and shingle sets made
-  by the function dedup's ``prepare`` uses (``pipeline.similarity.measure.signature_of``) at dedup's
+  by the function dedup's ``prepare`` uses (``pipeline.similarity.minhash.signature_of``) at dedup's
   default settings, on which ``group_threshold`` is calibrated. When a dedup stage with those
   settings runs before the split, the split reads its stored arrays
   (``Member.artifacts["dedup"]``); without one (or with dedup at other settings) the split's own
@@ -36,7 +36,7 @@ from ..errors import ConfigError
 from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups,
                                    group_by_key, near_links)
 from ..midi.piece import Piece
-from ..similarity.measure import signature_of
+from ..similarity.minhash import signature_of
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
 from .dedup import Dedup

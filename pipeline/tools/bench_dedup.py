@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from ..similarity.measure import UnionFind
+from ..similarity.links import UnionFind
 from ..stages.base import CorpusState, FileContext, Member
 from ..stages.dedup import Dedup
 

@@ -143,7 +143,7 @@ def random_split(ids: list[str], seed: int, ratios: dict[str, float] = RATIOS) -
 def evaluate(recs: list[dict], dedup_opts: dict | None = None, split_opts: dict | None = None,
              seeds: int = 5) -> dict[str, Any]:
     """Every figure of the module docstring for one collection."""
-    from ..similarity.measure import set_similarity
+    from ..similarity.sets import set_similarity
     run = run_stages(recs, dedup_opts, split_opts)
     by_id = {r["id"]: r for r in recs}
     song_of = {r["id"]: r["song"] for r in recs}

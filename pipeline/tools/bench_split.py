@@ -21,8 +21,8 @@ For each it reports:
   out of those keeping two or more files;
 * ``drops below threshold``: files dropped as ``near_duplicate`` whose own similarity to the
   kept file they name (``duplicate_of``), recomputed here from the two files (decoded again,
-  signed with ``similarity.measure.signature_of`` at the dedup stage's options, compared with
-  ``similarity.measure.set_similarity``), is below the dedup threshold, or differs from the manifest's
+  signed with ``similarity.minhash.signature_of`` at the dedup stage's options, compared with
+  ``similarity.sets.set_similarity``), is below the dedup threshold, or differs from the manifest's
   ``similarity``; the target is 0;
 * ``clusters keeping several``: dedup clusters (connected components) that keep more than one
   file (single linkage would have dropped all but one, some only through other members);
@@ -145,7 +145,8 @@ def drops_below_threshold(corpus: Path, rows: dict[str, dict], dedup_opts: dict[
     """``(bad drops, near_duplicate drops, examples)``: a drop is bad when its own similarity
     to the file it names, recomputed from the two files, is below the threshold or is not the
     manifest's ``similarity`` (to its 4 decimals)."""
-    from ..similarity.measure import set_similarity, signature_of
+    from ..similarity.sets import set_similarity
+    from ..similarity.minhash import signature_of
     from ..midi.decode import decode
     from ..stages.dedup import Dedup
     opts = Dedup(dedup_opts).opts

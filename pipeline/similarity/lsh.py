@@ -1,0 +1,345 @@
+"""Locality-sensitive hashing of MinHash signatures: candidate pairs.
+
+``LSHIndex`` bands a signature into ``bands`` bands of ``num_perm // bands`` rows; two
+signatures are candidates when any band is identical, with probability ``1 - (1 - s**r)**b``
+for Jaccard ``s`` (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3).
+``banded_pair_codes`` finds the pairs sharing a band in one pass over the bands (the split's
+grouping), ``plausible_pairs`` drops candidates whose signatures cannot reach a threshold.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..analysis.shingles import ShingleSpec, fmix64
+from ..midi.accel import kernel as compiled_kernel
+from .minhash import EMPTY_VALUE, _fmix32, fold32, is_empty, permutations
+from .sets import MIN_SIZE_RATIO
+
+
+_ROLL = np.uint64(0x9E3779B97F4A7C15)
+
+
+def check_banding(num_perm: int, bands: int) -> str | None:
+    """An error sentence if ``bands`` cannot split ``num_perm`` rows evenly, else None."""
+    if num_perm < 1 or bands < 1:
+        return f"num_perm ({num_perm}) and bands ({bands}) must be positive"
+    if num_perm % bands:
+        divisors = [d for d in range(1, num_perm + 1) if num_perm % d == 0]
+        return (f"bands ({bands}) must divide num_perm ({num_perm}) so every band has the same "
+                f"number of rows; choose bands from {divisors}")
+    return None
+
+
+def candidate_probability(s: float | np.ndarray, bands: int, rows: int) -> float | np.ndarray:
+    """Probability that a pair of Jaccard ``s`` shares a band: ``1 - (1 - s**r)**b``
+    (Mining of Massive Datasets, ch. 3)."""
+    return 1.0 - (1.0 - np.asarray(s, dtype=np.float64) ** rows) ** bands
+
+
+def band_keys(signatures: np.ndarray, bands: int) -> np.ndarray:
+    """``(N, bands)`` uint64 keys; equal keys mean equal bands (up to 64-bit collisions)."""
+    n, num_perm = signatures.shape
+    err = check_banding(num_perm, bands)
+    if err:
+        raise ValueError(err)
+    out = np.empty((n, bands), dtype=np.uint64)
+    for band in range(bands):
+        out[:, band] = band_key(signatures, bands, band)
+    return out
+
+
+def band_key(signatures: np.ndarray, bands: int, band: int) -> np.ndarray:
+    """The ``(N,)`` uint64 keys of one band (column ``band`` of ``band_keys``). Corpus stages
+    key one band at a time: the whole ``(N, bands)`` table and its uint64 temporaries were
+    several hundred MB at 100,000 files."""
+    rows = signatures.shape[1] // bands
+    cols = signatures[:, band * rows:(band + 1) * rows]
+    h = np.full(len(signatures), np.uint64(rows), dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for j in range(rows):
+            h = fmix64(h * _ROLL + cols[:, j].astype(np.uint64))
+        h = h + np.uint64(band) * _ROLL  # keep bands apart
+    return h
+
+
+@dataclass
+class LSHIndex:
+    """Banded index over signatures; built from stored signatures (nothing persisted but them)."""
+
+    num_perm: int = 128
+    bands: int = 64
+
+    def __post_init__(self):
+        err = check_banding(self.num_perm, self.bands)
+        if err:
+            raise ValueError(err)
+        self.ids: list[str] = []
+        self._sigs: list[np.ndarray] = []
+
+    def add(self, key: str, signature: np.ndarray) -> None:
+        if len(signature) != self.num_perm:
+            raise ValueError(f"signature of {key} has {len(signature)} values, index expects "
+                             f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
+        if not is_empty(signature):
+            self.ids.append(key)
+            self._sigs.append(np.asarray(signature, dtype=np.uint32)[None, :])
+
+    def extend(self, keys: list[str], signatures: np.ndarray) -> None:
+        """``add`` for many keys at once: ``signatures`` is their ``(len(keys), num_perm)``
+        array (one emptiness test for all rows instead of one per signature)."""
+        sig = np.asarray(signatures, dtype=np.uint32)
+        if sig.ndim != 2 or len(sig) != len(keys) or (len(sig) and sig.shape[1] != self.num_perm):
+            raise ValueError(f"signatures of shape {sig.shape} do not fit {len(keys)} keys of "
+                             f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
+        live = ~np.all(sig == EMPTY_VALUE, axis=1)
+        self.ids.extend(k for k, ok in zip(keys, live.tolist()) if ok)
+        self._sigs.append(sig[live])
+
+    def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
+        """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
+        codes = self.candidate_codes(new)
+        n, ids = len(self.ids), self.ids
+        return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
+
+    def candidate_codes(self, new: set[str] | None = None, skip: np.ndarray | None = None
+                        ) -> np.ndarray:
+        """The candidate pairs of ``candidates`` as sorted unique codes ``i * n + j`` (``i < j``
+        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings.
+        ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
+        no row: each gets a key of its own row."""
+        n = len(self.ids)
+        if n < 2:
+            return np.zeros(0, dtype=np.int64)
+        is_new = (np.ones(n, dtype=bool) if new is None
+                  else np.array([k in new for k in self.ids]))
+        if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
+            return np.zeros(0, dtype=np.int64)
+        sig = self.matrix()
+        if skip is not None and skip.any():
+            rows, bands = np.nonzero(skip)
+            r = self.num_perm // self.bands
+            sig = sig.copy()
+            # the band's first value becomes the row number, the others one constant: a key no
+            # other row has (a real band equal to it only adds a candidate, which is verified)
+            sig[rows, bands * r] = rows.astype(np.uint32)
+            for k in range(1, r):
+                sig[rows, bands * r + k] = EMPTY_VALUE - np.uint32(1)
+        return banded_pair_codes(sig, self.bands, is_new)
+
+    def matrix(self) -> np.ndarray:
+        """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
+        m = getattr(self, "_matrix", None)
+        if m is None or len(m) != len(self.ids):
+            m = self._matrix = (np.vstack(self._sigs) if self._sigs
+                                else np.zeros((0, self.num_perm), dtype=np.uint32))
+        return m
+
+    def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
+                        min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
+                        margin_sigmas: float = 3.0) -> np.ndarray:
+        """The candidate codes whose MinHash estimates leave ``set_similarity`` a chance to
+        reach ``threshold``; the rest need no exact comparison.
+
+        A pair can pass on the whole sets only if their Jaccard is at least ``threshold``, or,
+        when containment applies (smaller set >= ``min_size_ratio`` of the larger, size ratio
+        ``p``), at least ``t p / (p + 1 - t p)`` (containment ``t`` expressed as Jaccard); on
+        the leads only if theirs is at least ``t / (2 - t)`` (containment ``t`` between leads
+        of one size). Each half of a signature (``signature_of``: leads, whole sets) estimates
+        its Jaccard with standard deviation ``sqrt(J (1 - J) / (num_perm / 2))`` (Broder
+        1997); a pair is dropped only when both estimates lie more than ``margin_sigmas`` of
+        them below their bounds. Pairs with a set cut at ``cap`` are always kept (their exact
+        comparison uses a sub-range, not the signed sets). ``set_sizes`` holds the
+        shingle-set size of each id, in insertion order.
+
+        LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on: most
+        candidates of a large corpus are unrelated pieces sharing one band, and this removes
+        most of them without touching their shingles."""
+        n = len(self.ids)
+        if not len(codes):
+            return codes
+        keep = np.empty(len(codes), dtype=bool)
+        sig = self.matrix()
+        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+            c = codes[lo:lo + PAIR_CHUNK]
+            keep[lo:lo + len(c)] = plausible_pairs(sig, c // n, c % n, set_sizes, threshold,
+                                                   min_size_ratio=min_size_ratio, cap=cap,
+                                                   margin_sigmas=margin_sigmas)
+        return codes[keep]
+
+
+def plausible_pairs(sig: np.ndarray, i: np.ndarray, j: np.ndarray, set_sizes: Any, threshold: float, *,
+                    min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
+                    margin_sigmas: float = 3.0) -> np.ndarray:
+    """Mask of the pairs (rows ``i``, ``j`` of the signature matrix ``sig``) whose MinHash
+    estimates leave ``set_similarity`` a chance to reach ``threshold`` (see
+    ``LSHIndex.plausible_codes``, which dedup uses; the split's grouping uses it with a wider
+    margin). ``set_sizes`` holds each row's shingle-set size."""
+    half = sig.shape[1] // 2
+    sizes = np.asarray(set_sizes, dtype=np.float64)
+    t = float(threshold)
+    lead_bound = t / (2.0 - t)
+    lead_floor = lead_bound - margin_sigmas * np.sqrt(max(lead_bound * (1 - lead_bound), 1e-4) / half)
+    est_lead = pair_estimates(sig[:, :half], i, j)
+    est = pair_estimates(sig[:, half:], i, j)
+    si, sj = sizes[i], sizes[j]
+    small, large = np.minimum(si, sj), np.maximum(si, sj)
+    rho = small / np.maximum(large, 1.0)
+    bound = np.full(len(i), t)
+    if min_size_ratio < 1.0:
+        cont = small >= min_size_ratio * large
+        bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))
+    sd = np.sqrt(np.maximum(bound * (1.0 - bound), 1e-4) / half)
+    return (est >= bound - margin_sigmas * sd) | (est_lead >= lead_floor) | (large >= cap)
+
+
+#: Candidate pairs handled at once where a step makes per-pair arrays: the two (pairs x
+#: num_perm) gathers of ``pair_estimates`` then take about 4 MB at 128 permutations and stay
+#: in cache (DEVELOPERS.md, Bench notes).
+PAIR_CHUNK = 1 << 12
+
+
+def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """MinHash Jaccard estimates (share of equal values) of the row pairs ``(i[k], j[k])`` of
+    a signature matrix, in chunks of ``PAIR_CHUNK`` (memory: two full gathers of millions of
+    candidate pairs were the peak of a 100,000-file run)."""
+    est = np.empty(len(i), dtype=np.float64)
+    for lo in range(0, len(i), PAIR_CHUNK):
+        hi = lo + PAIR_CHUNK
+        est[lo:hi] = (sig[i[lo:hi]] == sig[j[lo:hi]]).mean(axis=1)
+    return est
+
+
+def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
+                      compiled: bool = True) -> np.ndarray:
+    """Sorted unique codes ``i * n + j`` (``i < j``) of the rows of ``sig`` sharing a band,
+    keeping pairs with at least one ``is_new`` row. One band's keys at a time, merged every
+    ``_MERGE_BANDS`` bands, so a pair found in many bands is held about once (the whole
+    (rows x bands) key table and its temporaries were several hundred MB at 100,000 files).
+    With few new rows (a rerun) and the extension built, ``_smf_accel.band_pair_codes`` does
+    each block of bands in one call (the same codes: integer hashing and key equality);
+    ``compiled=False`` runs the numpy formulation, the specification. Speed: a rerun's dedup
+    and split each band every stored signature, where the kernel is faster; with many new
+    rows numpy's sort is (DEVELOPERS.md, Bench notes)."""
+    few_new = int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
+    kernel = compiled_kernel("band_pair_codes") if compiled and few_new else None
+    if kernel is not None:
+        sig = np.ascontiguousarray(sig, dtype=np.uint32)
+        new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)
+    codes = np.zeros(0, dtype=np.int64)
+    for lo in range(0, bands, _MERGE_BANDS):
+        hi = min(bands, lo + _MERGE_BANDS)
+        if kernel is not None:
+            found = [np.frombuffer(kernel(sig, bands, lo, hi, new_bytes), dtype=np.int64)]
+        else:
+            found = [_band_pairs(band_key(sig, bands, band), is_new) for band in range(lo, hi)]
+        codes = sorted_unique(np.concatenate([codes, *found]))
+    return codes
+
+
+#: Bands whose pair codes are merged at once (a pair shares many bands: memory).
+_MERGE_BANDS = 8
+
+
+def sorted_unique(a: np.ndarray) -> np.ndarray:
+    """``np.unique(a)`` of a 1-d array, by one sort. Speed: numpy 2.3+ answers ``np.unique``
+    of integers through a hash table first, much slower here (DEVELOPERS.md, Bench notes)."""
+    s = np.sort(a)
+    if len(s) < 2:
+        return s
+    keep = np.empty(len(s), dtype=bool)
+    keep[0] = True
+    np.not_equal(s[1:], s[:-1], out=keep[1:])
+    return s[keep]
+
+
+#: Buckets up to this size are paired by vectorized offsets; bigger ones one by one.
+_SMALL_BUCKET = 32
+
+
+def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
+    """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band."""
+    n = len(col)
+    n_new = int(np.count_nonzero(is_new))
+    if n_new * _FEW_NEW <= n:
+        # incremental: the rows whose key a new row has, found by binary search in the few new
+        # keys instead of sorting the whole band (a rerun with 1% new files)
+        new_keys = sorted_unique(col[is_new])
+        pos = np.minimum(np.searchsorted(new_keys, col), len(new_keys) - 1)
+        rows = np.flatnonzero(new_keys[pos] == col)
+        if len(rows) < 2:
+            return np.zeros(0, dtype=np.int64)
+        sub = rows[_band_pairs_sorted(col[rows], is_new[rows])]
+        sub.sort(axis=1)
+        return sub[:, 0] * n + sub[:, 1]
+    pairs = _band_pairs_sorted(col, is_new)
+    return pairs[:, 0] * n + pairs[:, 1]
+
+
+#: Below one new row in this many, a band pairs only the buckets a new row is in.
+_FEW_NEW = 16
+
+
+def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
+    """Row pairs ``(i, j)``, ``i < j``, of rows with equal keys ``col``, at least one of them
+    ``is_new``: an ``(M, 2)`` int64 array (by sorting the band)."""
+    n = len(col)
+    order = np.argsort(col, kind="stable")
+    sc = col[order]
+    starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
+    sizes = np.diff(np.append(starts, n))
+    if not is_new.all():
+        # incremental: only buckets holding a new row can give a wanted pair; drop the others
+        # before pairing (a rerun with 1% new files then pairs ~1% of the buckets)
+        wanted = np.maximum.reduceat(is_new[order].astype(np.int8), starts).astype(bool) & (sizes > 1)
+        if not wanted.any():
+            return np.zeros((0, 2), dtype=np.int64)
+        rows = np.repeat(wanted, sizes)
+        order, sc = order[rows], sc[rows]
+        sizes = sizes[wanted]
+        starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
+    out: list[np.ndarray] = []
+    for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
+        same = sc[:-d] == sc[d:]
+        if not same.any():
+            break
+        out.append(np.stack([order[:-d][same], order[d:][same]], axis=1))
+    for st, sz in zip(starts[sizes > _SMALL_BUCKET], sizes[sizes > _SMALL_BUCKET]):
+        members = order[st:st + sz]
+        i, j = np.triu_indices(sz, _SMALL_BUCKET)  # offsets below _SMALL_BUCKET are done above
+        out.append(np.stack([members[i], members[j]], axis=1))
+    if not out:
+        return np.zeros((0, 2), dtype=np.int64)
+    pairs = np.concatenate(out).astype(np.int64)
+    pairs.sort(axis=1)
+    return pairs[is_new[pairs[:, 0]] | is_new[pairs[:, 1]]]
+
+
+def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
+    """``(rows, bands)`` booleans: the LSH bands of ``signature_of`` signatures whose every value
+    is the MinHash value of a ``generic`` shingle under that column's permutation. Such a band
+    key is made of generic material only: two unrelated files sharing it are what makes the
+    candidates of a large corpus grow with its square, and ``set_similarity`` leaves those
+    shingles out anyway. A column of the first half may come from the lead's permutations or
+    (lead too short) the whole set's: a value matching either counts."""
+    sig = np.asarray(sig, dtype=np.uint32)
+    n, num_perm = sig.shape
+    out = np.zeros((n, bands), dtype=bool)
+    if not n or not len(generic):
+        return out
+    half = num_perm // 2
+    h = _fmix32(fold32(generic))
+    a, b = permutations(num_perm, seed)
+    la, lb = permutations(half, seed)
+    hit = np.zeros(sig.shape, dtype=bool)
+    with np.errstate(over="ignore"):
+        for c in range(num_perm):
+            vals = h * a[c] + b[c]
+            if c < half:
+                vals = np.concatenate([vals, h * la[c] + lb[c]])
+            vals.sort()
+            pos = np.minimum(np.searchsorted(vals, sig[:, c]), len(vals) - 1)
+            hit[:, c] = vals[pos] == sig[:, c]
+    return hit.reshape(n, bands, num_perm // bands).all(axis=2)
