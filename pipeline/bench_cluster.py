@@ -1,0 +1,132 @@
+"""The bench's ``cluster`` section: the Dask executor on a ``distributed.LocalCluster`` of 2
+worker processes (one thread each, 127.0.0.1 only) against the local pool, on the same small-class
+corpus, each run a separate ``midisift run`` process timed from the outside.
+
+Reported: both wall times and their ratio (the cost of going through a scheduler on the same
+cores), whether the two output folders hold the same bytes (manifest, split lists, normalized
+MIDI), the same check on the demo corpus with the default config, the loopback bytes moved
+during the cluster run per file (an upper bound of the network volume: the counter also sees
+the scheduler's own messages and any other local traffic), and the ledger's size per file.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+#: Output files that hold timings, never compared byte for byte.
+_TIMED = {"summary.json", "report.html"}
+
+
+def _loopback_bytes() -> int | None:
+    """Received plus sent bytes of the loopback interface so far (Linux /proc/net/dev)."""
+    try:
+        for line in Path("/proc/net/dev").read_text().splitlines():
+            name, _, rest = line.partition(":")
+            if name.strip() == "lo":
+                f = rest.split()
+                return int(f[0]) + int(f[8])
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def same_outputs(a: Path, b: Path) -> bool:
+    """Whether two output folders hold the same bytes (the ledger and timed files aside)."""
+    def files(root: Path) -> dict[str, bytes]:
+        return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*"))
+                if p.is_file() and not p.name.startswith("state.sqlite") and p.name not in _TIMED}
+    return files(a) == files(b)
+
+
+def cluster_section(bench: Any) -> dict[str, Any]:
+    """Run the section for a ``bench.Bench``; returns its results."""
+    try:
+        from distributed import LocalCluster
+    except ImportError:
+        return {"skipped": "dask.distributed is not installed (pip install '.[dask]')"}
+    from .bench import SEEDS, corpus_facts, ensure_corpus, run_pipeline
+    n = bench.scale.cluster
+    folder = ensure_corpus(bench.scratch / "corpora" / f"small_{n}", n, SEEDS["small"], "small")
+    facts = corpus_facts(folder)
+    bench.log(f"[cluster] {facts['files']} files, mean {facts['mean_bytes']} B")
+    runs = bench.scratch / "runs" / "cluster"
+    workers = 2
+    local = run_pipeline(bench.config, folder, runs / "local", str(workers),
+                         timeout=bench.scale.run_timeout_s)
+    bench.log(f"[cluster] local pool, {workers} workers: {local['wall_s']} s")
+    t = time.perf_counter()
+    # daemonic worker processes under nannies, as `dask worker` starts them
+    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                           host="127.0.0.1", dashboard_address=None, silence_logs=40)
+    try:
+        start_s = time.perf_counter() - t
+        address = cluster.scheduler_address
+        net0 = _loopback_bytes()
+        remote = _run_remote(bench, folder, runs / "dask", address)
+        net1 = _loopback_bytes()
+        bench.log(f"[cluster] LocalCluster, {workers} workers: {remote['wall_s']} s")
+        demo_same = _demo_same(bench, runs, address)
+    finally:
+        cluster.close()
+    ledger_b = (runs / "dask" / "state.sqlite").stat().st_size
+    files = local["files"]
+    ratio = remote["wall_s"] / local["wall_s"] if local.get("wall_s") and remote.get("wall_s") else None
+    return {"files": files, "workers": workers, "cluster_start_s": round(start_s, 2),
+            "local": local, "dask": remote,
+            "overhead_x": round(ratio, 3) if ratio else None,
+            "same_bytes": same_outputs(runs / "local", runs / "dask"),
+            "demo_same_bytes": demo_same,
+            "loopback_bytes_per_file": (round((net1 - net0) / files) if net0 is not None
+                                        and net1 is not None and files else None),
+            "ledger_bytes_per_file": round(ledger_b / files) if files else None}
+
+
+def _run_remote(bench: Any, folder: Path, out: Path, address: str) -> dict[str, Any]:
+    """``run_pipeline`` through the scheduler (the ``--executor`` option added to its command)."""
+    from . import bench as b
+    shutil.rmtree(out, ignore_errors=True)
+    cmd = [sys.executable, "-m", "pipeline.cli", "run", str(bench.config), "--input", str(folder),
+           "--output", str(out), "--quiet", "--executor", address]
+    wall, mem, _ = b._timed_process(cmd, timeout=bench.scale.run_timeout_s)
+    summary = json.loads((out / "summary.json").read_text())
+    files = summary["counts"]["files"]
+    return {"files": files, "wall_s": round(wall, 3), "files_per_s": round(files / wall, 1),
+            "timings_s": summary["timings_s"], **mem}
+
+
+def _demo_same(bench: Any, runs: Path, address: str) -> bool | None:
+    """The default config on the demo corpus, locally and through the cluster: same bytes?"""
+    from .cli import main
+    root = Path(__file__).resolve().parent.parent
+    config, demo = root / "configs" / "default.yaml", root / "sample_corpus"
+    if not (config.is_file() and demo.is_dir()):
+        return None
+    outs = {}
+    for name, extra in (("demo_local", []), ("demo_dask", ["--executor", address])):
+        outs[name] = runs / name
+        shutil.rmtree(outs[name], ignore_errors=True)
+        rc = main(["run", str(config), "--input", str(demo), "--output", str(outs[name]),
+                   "--quiet", "--workers", "2", *extra])
+        if rc != 0:
+            return False
+    return same_outputs(outs["demo_local"], outs["demo_dask"])
+
+
+def table_rows(r: dict[str, Any]) -> list[tuple[str, Any]]:
+    """The section's rows of the bench table (label, value)."""
+    if r.get("skipped"):
+        return [(f"cluster: skipped ({r['skipped']})", None)]
+    return [
+        (f"Dask executor, LocalCluster {r['workers']} workers vs local pool, {r['files']} small files", None),
+        ("  local pool (s)", r["local"].get("wall_s")),
+        ("  LocalCluster (s)", r["dask"].get("wall_s")),
+        ("  overhead: LocalCluster / local pool (x)", r["overhead_x"]),
+        ("  same bytes (this corpus / demo corpus)", f"{r['same_bytes']} / {r['demo_same_bytes']}"),
+        ("  loopback bytes per file (upper bound)", r["loopback_bytes_per_file"]),
+        ("  ledger bytes per file", r["ledger_bytes_per_file"]),
+        ("  cluster start (s)", r["cluster_start_s"]),
+    ]
