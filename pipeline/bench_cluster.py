@@ -22,13 +22,13 @@ _TIMED = {"summary.json", "report.html"}
 
 
 def _loopback_bytes() -> int | None:
-    """Received plus sent bytes of the loopback interface so far (Linux /proc/net/dev)."""
+    """Bytes carried by the loopback interface so far (Linux /proc/net/dev; its received
+    count: every byte sent over loopback is also received there, so counted once)."""
     try:
         for line in Path("/proc/net/dev").read_text().splitlines():
             name, _, rest = line.partition(":")
             if name.strip() == "lo":
-                f = rest.split()
-                return int(f[0]) + int(f[8])
+                return int(rest.split()[0])
     except (OSError, ValueError, IndexError):
         pass
     return None

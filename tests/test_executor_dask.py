@@ -7,8 +7,9 @@ decision trails in the ledger). Corpora are made by ``midisift synth``.
 """
 from __future__ import annotations
 
+import io
 import os
-import shutil
+import re
 import socket
 import sqlite3
 import subprocess
@@ -100,13 +101,38 @@ def _set_worker_env(client, name: str, value: str | None) -> None:
     client.run(setenv, name, value)
 
 
-def test_a_cluster_run_writes_the_same_bytes_as_a_local_run(cluster, corpus, tmp_path):
+class _Terminal(io.StringIO):
+    """stderr as a terminal, so the runner draws its progress bars into it."""
+
+    def isatty(self) -> bool:
+        return True
+
+
+def _bars(config: Path, inp: Path, out: Path, executor: str | None) -> list[str]:
+    """Run; the final state of each progress bar ('validate ... 100%|...| 196/196')."""
+    from pipeline.config import load_config
+    from pipeline.runner import Runner
+    cfg = load_config(config, input=str(inp), output=str(out), workers="2", executor=executor)
+    err, old = _Terminal(), sys.stderr
+    sys.stderr = err
+    try:
+        Runner(cfg).run()
+    finally:
+        sys.stderr = old
+    ends = [re.sub(r"\s*\[.*", "", line).strip() for line in re.split(r"[\r\n]", err.getvalue())
+            if "100%" in line]
+    return list(dict.fromkeys(ends))  # a bar redrawn at its end counts once
+
+
+def test_a_cluster_run_writes_the_same_bytes_and_bars_as_a_local_run(cluster, corpus, tmp_path):
     address, _ = cluster
     config = _config(tmp_path)
-    assert _run(config, corpus, tmp_path / "local") == 0
-    assert _run(config, corpus, tmp_path / "dask", "--executor", address) == 0
+    local = _bars(config, corpus, tmp_path / "local", None)
+    remote = _bars(config, corpus, tmp_path / "dask", address)
     _assert_same(tmp_path / "local", tmp_path / "dask")
     assert len(list((tmp_path / "dask" / "midi").rglob("*.mid"))) > 50  # outputs were rendered
+    # every bar of the local run ends the same way (name, 100%, count) through the cluster
+    assert remote == local and any(b.startswith("validate") for b in local), (local, remote)
 
 
 def test_faults_in_a_file_map_as_locally(cluster, corpus, tmp_path, monkeypatch):
