@@ -186,9 +186,12 @@ class DaskExecutor:
                 if fut.status != "finished":
                     exc = fut.exception() if fut.status == "error" else None
                     fut.release()
+                    if exc is None:
+                        raise MidisiftError(f"a Dask task was {fut.status} (the scheduler restarted "
+                                            "or lost it); rerun to continue", location=self.address)
                     if not _killed_worker(exc):
-                        raise MidisiftError(f"a Dask task ended as {fut.status}: "
-                                            f"{type(exc).__name__}: {exc}", location=self.address)
+                        raise MidisiftError(f"a Dask task failed: {type(exc).__name__}: {exc}",
+                                            location=self.address)
                     if retry:  # the file's own retry killed a worker again
                         yield on_fault(chunk[0], Fault(
                             "decoder_crash", "the Dask worker process running this file died, "

@@ -108,8 +108,8 @@ class _Terminal(io.StringIO):
         return True
 
 
-def _bars(config: Path, inp: Path, out: Path, executor: str | None) -> list[str]:
-    """Run; the final state of each progress bar ('validate ... 100%|...| 196/196')."""
+def _bars(config: Path, inp: Path, out: Path, executor: str | None) -> list[tuple[str, str, str]]:
+    """Run; the bars that ended at 100%, as (name, count, total)."""
     from pipeline.config import load_config
     from pipeline.runner import Runner
     cfg = load_config(config, input=str(inp), output=str(out), workers="2", executor=executor)
@@ -119,9 +119,9 @@ def _bars(config: Path, inp: Path, out: Path, executor: str | None) -> list[str]
         Runner(cfg).run()
     finally:
         sys.stderr = old
-    ends = [re.sub(r"\s*\[.*", "", line).strip() for line in re.split(r"[\r\n]", err.getvalue())
-            if "100%" in line]
-    return list(dict.fromkeys(ends))  # a bar redrawn at its end counts once
+    # (bar name, count, total) of each bar drawn at 100%; a bar redrawn at its end counts once
+    return sorted(set(re.findall(r"([A-Za-z_]+(?: \(corpus\))?)\s*: 100%\|[^|]*\| (\d+)/(\d+)",
+                                 err.getvalue())))
 
 
 def test_a_cluster_run_writes_the_same_bytes_and_bars_as_a_local_run(cluster, corpus, tmp_path):
@@ -132,7 +132,8 @@ def test_a_cluster_run_writes_the_same_bytes_and_bars_as_a_local_run(cluster, co
     _assert_same(tmp_path / "local", tmp_path / "dask")
     assert len(list((tmp_path / "dask" / "midi").rglob("*.mid"))) > 50  # outputs were rendered
     # every bar of the local run ends the same way (name, 100%, count) through the cluster
-    assert remote == local and any(b.startswith("validate") for b in local), (local, remote)
+    names = [b[0] for b in local]
+    assert remote == local and {"validate", "dedup", "dedup (corpus)"} <= set(names), (local, remote)
 
 
 def test_faults_in_a_file_map_as_locally(cluster, corpus, tmp_path, monkeypatch):
