@@ -3,7 +3,8 @@ worker processes (one thread each, 127.0.0.1 only) against the local pool, on th
 corpus, each run a separate ``midisift run`` process timed from the outside.
 
 Reported: both wall times and their ratio (the cost of going through a scheduler on the same
-cores), whether the two output folders hold the same bytes (manifest, split lists, normalized
+cores), the CPU time of everything that worked in each run and its ratio (steadier than wall time
+on a shared machine), whether the two output folders hold the same bytes (manifest, split lists, normalized
 MIDI), the same check on the demo corpus with the default config, the loopback bytes moved
 during the cluster run per file (an upper bound of the network volume: the counter also sees
 the scheduler's own messages and any other local traffic), and the ledger's size per file.
@@ -65,9 +66,11 @@ def cluster_section(bench: Any) -> dict[str, Any]:
     try:
         start_s = time.perf_counter() - t
         address = cluster.scheduler_address
+        probe = _ClusterCpu(cluster)
         net0 = _loopback_bytes()
         remote = _run_remote(bench, folder, runs / "dask", address)
         net1 = _loopback_bytes()
+        cluster_cpu = probe.seconds()
         bench.log(f"[cluster] LocalCluster, {workers} workers: {remote['wall_s']} s")
         demo_same = _demo_same(bench, runs, address)
     finally:
@@ -75,7 +78,17 @@ def cluster_section(bench: Any) -> dict[str, Any]:
     ledger_b = (runs / "dask" / "state.sqlite").stat().st_size
     files = local["files"]
     ratio = remote["wall_s"] / local["wall_s"] if local.get("wall_s") and remote.get("wall_s") else None
-    return {"files": files, "workers": workers, "cluster_start_s": round(start_s, 2),
+    # CPU of everything that worked, which the neighbours on a shared machine move less than
+    # the wall time: the local run's process tree; the client's tree, the Dask workers with
+    # the processes they forked, and this process (scheduler and nannies)
+    local_cpu = local["cpu_user_s"] + local["cpu_sys_s"]
+    remote_cpu = remote["cpu_user_s"] + remote["cpu_sys_s"] + sum(cluster_cpu.values())
+    return {"cpu_ms_per_file": {"local": round(1000 * local_cpu / files, 3),
+                                "dask_total": round(1000 * remote_cpu / files, 3),
+                                **{f"dask_{k}": round(1000 * v / files, 3) for k, v in cluster_cpu.items()},
+                                "dask_client": round(1000 * (remote["cpu_user_s"] + remote["cpu_sys_s"]) / files, 3)},
+            "cpu_overhead_x": round(remote_cpu / local_cpu, 3) if local_cpu else None,
+            "files": files, "workers": workers, "cluster_start_s": round(start_s, 2),
             "local": local, "dask": remote,
             "overhead_x": round(ratio, 3) if ratio else None,
             "same_bytes": same_outputs(runs / "local", runs / "dask"),
@@ -83,6 +96,29 @@ def cluster_section(bench: Any) -> dict[str, Any]:
             "loopback_bytes_per_file": (round((net1 - net0) / files) if net0 is not None
                                         and net1 is not None and files else None),
             "ledger_bytes_per_file": round(ledger_b / files) if files else None}
+
+
+class _ClusterCpu:
+    """CPU seconds used by a LocalCluster's worker processes (with the children they forked
+    and waited for) and by this process (its scheduler and nannies) from now on."""
+
+    def __init__(self, cluster: Any):
+        import psutil  # a dependency of distributed
+        self.me = psutil.Process()
+        self.workers = [psutil.Process(w.process.pid) for w in cluster.workers.values()
+                        if getattr(getattr(w, "process", None), "pid", None)]
+        self.start = self._now()
+
+    def _now(self) -> dict[str, float]:
+        def total(p: Any, children: bool) -> float:
+            t = p.cpu_times()
+            return t.user + t.system + ((t.children_user + t.children_system) if children else 0.0)
+        return {"workers": sum(total(p, True) for p in self.workers),
+                "scheduler_nannies": total(self.me, False)}
+
+    def seconds(self) -> dict[str, float]:
+        end = self._now()
+        return {k: end[k] - self.start[k] for k in end}
 
 
 def _run_remote(bench: Any, folder: Path, out: Path, address: str) -> dict[str, Any]:
@@ -125,6 +161,12 @@ def table_rows(r: dict[str, Any]) -> list[tuple[str, Any]]:
         ("  local pool (s)", r["local"].get("wall_s")),
         ("  LocalCluster (s)", r["dask"].get("wall_s")),
         ("  overhead: LocalCluster / local pool (x)", r["overhead_x"]),
+        ("  CPU per file, local run / all of the cluster run (ms)",
+         f"{r['cpu_ms_per_file']['local']} / {r['cpu_ms_per_file']['dask_total']}"),
+        ("  ... the cluster run's client / workers / scheduler and nannies (ms)",
+         f"{r['cpu_ms_per_file']['dask_client']} / {r['cpu_ms_per_file']['dask_workers']} / "
+         f"{r['cpu_ms_per_file']['dask_scheduler_nannies']}"),
+        ("  CPU overhead: cluster run / local run (x)", r["cpu_overhead_x"]),
         ("  same bytes (this corpus / demo corpus)", f"{r['same_bytes']} / {r['demo_same_bytes']}"),
         ("  loopback bytes per file (upper bound)", r["loopback_bytes_per_file"]),
         ("  ledger bytes per file", r["ledger_bytes_per_file"]),
