@@ -7,7 +7,8 @@ cores), the CPU time of everything that worked in each run and its ratio (steadi
 on a shared machine), whether the two output folders hold the same bytes (manifest, split lists, normalized
 MIDI), the same check on the demo corpus with the default config, the loopback bytes moved
 during the cluster run per file (an upper bound of the network volume: the counter also sees
-the scheduler's own messages and any other local traffic), and the ledger's size per file.
+the scheduler's own messages and any other local traffic), the ledger's size per file, and two
+reruns of both (1% new files, then nothing changed) with their fraction of the full run.
 """
 from __future__ import annotations
 
@@ -49,12 +50,18 @@ def cluster_section(bench: Any) -> dict[str, Any]:
         from distributed import LocalCluster
     except ImportError:
         return {"skipped": "dask.distributed is not installed (pip install '.[dask]')"}
-    from .bench import SEEDS, corpus_facts, ensure_corpus, run_pipeline
+    from .bench import SEEDS, corpus_facts, ensure_corpus, link_tree, run_pipeline
     n = bench.scale.cluster
-    folder = ensure_corpus(bench.scratch / "corpora" / f"small_{n}", n, SEEDS["small"], "small")
-    facts = corpus_facts(folder)
+    corpus = ensure_corpus(bench.scratch / "corpora" / f"small_{n}", n, SEEDS["small"], "small")
+    facts = corpus_facts(corpus)
     bench.log(f"[cluster] {facts['files']} files, mean {facts['mean_bytes']} B")
     runs = bench.scratch / "runs" / "cluster"
+    # the reruns add 1% new files: to an input tree linked under runs/, never to corpora/
+    folder = runs / "input"
+    shutil.rmtree(folder, ignore_errors=True)
+    link_tree(corpus, folder / "base")
+    new = ensure_corpus(bench.scratch / "corpora" / f"cluster_new_{max(1, n // 100)}",
+                        max(1, n // 100), SEEDS["rerun_new"], "small")
     workers = 2
     local = run_pipeline(bench.config, folder, runs / "local", str(workers),
                          timeout=bench.scale.run_timeout_s)
@@ -72,7 +79,9 @@ def cluster_section(bench: Any) -> dict[str, Any]:
         net1 = _loopback_bytes()
         cluster_cpu = probe.seconds()
         bench.log(f"[cluster] LocalCluster, {workers} workers: {remote['wall_s']} s")
+        same = same_outputs(runs / "local", runs / "dask")
         demo_same = _demo_same(bench, runs, address)
+        reruns = _reruns(bench, folder, new, runs, address, local, remote)
     finally:
         cluster.close()
     ledger_b = (runs / "dask" / "state.sqlite").stat().st_size
@@ -91,11 +100,30 @@ def cluster_section(bench: Any) -> dict[str, Any]:
             "files": files, "workers": workers, "cluster_start_s": round(start_s, 2),
             "local": local, "dask": remote,
             "overhead_x": round(ratio, 3) if ratio else None,
-            "same_bytes": same_outputs(runs / "local", runs / "dask"),
+            "same_bytes": same, "reruns": reruns,
             "demo_same_bytes": demo_same,
             "loopback_bytes_per_file": (round((net1 - net0) / files) if net0 is not None
                                         and net1 is not None and files else None),
             "ledger_bytes_per_file": round(ledger_b / files) if files else None}
+
+
+def _reruns(bench: Any, folder: Path, new: Path, runs: Path, address: str,
+            local: dict[str, Any], remote: dict[str, Any]) -> dict[str, Any]:
+    """1% new files, then nothing changed, locally and through the cluster: seconds, their
+    fraction of the full run, and whether the outputs still hold the same bytes."""
+    from .bench import link_tree, run_pipeline
+    link_tree(new, folder / "new")
+    out: dict[str, Any] = {}
+    for case in ("new_1pct", "unchanged"):
+        lo = run_pipeline(bench.config, folder, runs / "local", "2", fresh_output=False)
+        da = _run_remote(bench, folder, runs / "dask", address, fresh_output=False)
+        out[case] = {"local_s": lo["wall_s"], "dask_s": da["wall_s"],
+                     "local_fraction": round(lo["wall_s"] / local["wall_s"], 4),
+                     "dask_fraction": round(da["wall_s"] / remote["wall_s"], 4),
+                     "computed": [lo["counts"].get("computed"), da["counts"].get("computed")],
+                     "same_bytes": same_outputs(runs / "local", runs / "dask")}
+        bench.log(f"[cluster] rerun {case}: local {lo['wall_s']} s, cluster {da['wall_s']} s")
+    return out
 
 
 class _ClusterCpu:
@@ -121,17 +149,19 @@ class _ClusterCpu:
         return {k: end[k] - self.start[k] for k in end}
 
 
-def _run_remote(bench: Any, folder: Path, out: Path, address: str) -> dict[str, Any]:
+def _run_remote(bench: Any, folder: Path, out: Path, address: str,
+                fresh_output: bool = True) -> dict[str, Any]:
     """``run_pipeline`` through the scheduler (the ``--executor`` option added to its command)."""
     from . import bench as b
-    shutil.rmtree(out, ignore_errors=True)
+    if fresh_output:
+        shutil.rmtree(out, ignore_errors=True)
     cmd = [sys.executable, "-m", "pipeline.cli", "run", str(bench.config), "--input", str(folder),
            "--output", str(out), "--quiet", "--executor", address]
     wall, mem, _ = b._timed_process(cmd, timeout=bench.scale.run_timeout_s)
     summary = json.loads((out / "summary.json").read_text())
     files = summary["counts"]["files"]
     return {"files": files, "wall_s": round(wall, 3), "files_per_s": round(files / wall, 1),
-            "timings_s": summary["timings_s"], **mem}
+            "timings_s": summary["timings_s"], "counts": summary["counts"], **mem}
 
 
 def _demo_same(bench: Any, runs: Path, address: str) -> bool | None:
@@ -169,6 +199,10 @@ def table_rows(r: dict[str, Any]) -> list[tuple[str, Any]]:
         ("  CPU overhead: cluster run / local run (x)", r["cpu_overhead_x"]),
         ("  same bytes (this corpus / demo corpus)", f"{r['same_bytes']} / {r['demo_same_bytes']}"),
         ("  loopback bytes per file (upper bound)", r["loopback_bytes_per_file"]),
+        *[(f"  rerun {case.replace('_', ' ')}: local / cluster (s)",
+           f"{v['local_s']} ({100 * v['local_fraction']:.1f}%) / {v['dask_s']} "
+           f"({100 * v['dask_fraction']:.1f}%), same bytes {v['same_bytes']}")
+          for case, v in r.get("reruns", {}).items()],
         ("  ledger bytes per file", r["ledger_bytes_per_file"]),
         ("  cluster start (s)", r["cluster_start_s"]),
     ]
