@@ -58,11 +58,6 @@ IN_FLIGHT_PER_THREAD = 3
 WORKER_FAULT_ENV = "MIDISIFT_DASK_FAULT"
 
 
-def is_remote(spec: str) -> bool:
-    """Whether an ``executor`` value names a scheduler (anything but ``local``)."""
-    return spec != "local"
-
-
 def _dask_missing() -> MidisiftError:
     return MidisiftError("the Dask executor needs dask.distributed, which is not installed; "
                          "install it with: pip install 'midisift[dask]' (or '.[dask]' from the "

@@ -206,6 +206,16 @@ def test_workers_of_another_version_are_refused(cluster, corpus, tmp_path, capsy
     assert not out.exists()
 
 
+def test_the_shared_folder_check_names_what_a_worker_does_not_see(tmp_path):
+    """The function each worker runs for ``check_shared`` (here in this process)."""
+    probe = tmp_path / "probe"
+    probe.write_text("token")
+    assert executor_dask._worker_sees(str(tmp_path), str(probe), "token") == ""
+    assert "no folder" in executor_dask._worker_sees(str(tmp_path / "elsewhere"), str(probe), "token")
+    assert "other content" in executor_dask._worker_sees(str(tmp_path), str(probe), "another")
+    assert "cannot read" in executor_dask._worker_sees(str(tmp_path), str(tmp_path / "gone"), "token")
+
+
 def test_executor_values_are_checked_with_the_other_config_errors():
     base = {"input": "in", "output": "out", "stages": ["validate"]}
     assert parse_config({**base, "executor": "tcp://127.0.0.1:8786"}).executor == "tcp://127.0.0.1:8786"
