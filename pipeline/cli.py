@@ -28,6 +28,9 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--input", help="input folder (overrides the config)")
     r.add_argument("--output", help="output folder (overrides the config)")
     r.add_argument("--workers", help="'auto' or a number of worker processes (overrides the config)")
+    r.add_argument("--executor", metavar="local|tcp://HOST:PORT",
+                   help="where the per-file work runs: 'local' worker processes or a Dask "
+                        "scheduler's address (overrides the config; needs the dask extra)")
     r.add_argument("--fresh", action="store_true", help="ignore cached results and recompute everything")
     r.add_argument("--quiet", action="store_true", help="no progress bars and no summary table")
     r.add_argument("--reassign", action="store_true", help="recompute the split from scratch (files may change part)")
@@ -103,7 +106,8 @@ def _run(args: argparse.Namespace) -> int:
             return 0
     from .config import load_config
     from .engine.runner import Runner
-    cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers)
+    cfg = load_config(args.config, input=args.input, output=args.output, workers=args.workers,
+                      executor=args.executor)
     report = Runner(cfg, fresh=args.fresh, quiet=args.quiet, reassign=args.reassign,
                     retry_failed=args.retry_failed, discovered=seen[0] if seen else None).run()
     if not args.quiet:

@@ -8,6 +8,7 @@ names get a "did you mean" suggestion, wrong types and out-of-range values state
 from __future__ import annotations
 
 import difflib
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -19,7 +20,7 @@ from .cpus import usable_cpus
 from .metadata import Metadata, load_metadata
 from .stages import Stage, known_stages, stage_class
 
-TOP_KEYS = ("input", "output", "workers", "metadata", "stages")
+TOP_KEYS = ("input", "output", "workers", "executor", "metadata", "stages")
 
 
 @dataclass
@@ -45,6 +46,7 @@ class Config:
     path: Path | None = None
     raw: dict[str, Any] = field(default_factory=dict)
     metadata: Metadata = field(default_factory=Metadata)
+    executor: str = "local"  # or a Dask scheduler's address, tcp://HOST:PORT
 
     def stage(self, name: str) -> StageConfig | None:
         return next((s for s in self.stages if s.name == name), None)
@@ -150,6 +152,20 @@ def parse_workers(value: Any, location: str = "workers") -> int:
     return value
 
 
+_SCHEDULER = re.compile(r"tcp://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9][A-Za-z0-9.-]*):([0-9]{1,5})")
+
+
+def parse_executor(value: Any, location: str = "executor") -> str:
+    """``local`` (worker processes on this machine) or a Dask scheduler, ``tcp://HOST:PORT``."""
+    if value is None or value == "local":
+        return "local"
+    m = _SCHEDULER.fullmatch(value) if isinstance(value, str) else None
+    if m is None or not 1 <= int(m.group(2)) <= 65535:
+        raise ConfigError(f"executor must be 'local' or a Dask scheduler's address "
+                          f"'tcp://HOST:PORT' (port 1-65535), got {value!r}", location=location)
+    return value
+
+
 def parse_config(raw: Any, *, source: str | None = None) -> Config:
     """Validate a loaded YAML mapping (see module docstring). Every problem is collected and
     raised together (``ConfigErrors`` when there are several)."""
@@ -172,6 +188,11 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
         workers = parse_workers(raw.get("workers", "auto"))
     except ConfigError as e:
         problems.append(e)
+    executor = "local"
+    try:
+        executor = parse_executor(raw.get("executor", "local"))
+    except ConfigError as e:
+        problems.append(e)
     stages = _parse_stages(raw.get("stages"), problems)
     metadata = Metadata()
     if raw.get("metadata") is not None:
@@ -191,7 +212,8 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
     if problems:
         raise ConfigErrors(problems, file=source)
     return Config(input=Path(raw["input"]), output=Path(raw["output"]), workers=workers,
-                  stages=stages, path=Path(source) if source else None, raw=raw, metadata=metadata)
+                  stages=stages, path=Path(source) if source else None, raw=raw, metadata=metadata,
+                  executor=executor)
 
 
 def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[ConfigError]:
@@ -253,7 +275,7 @@ def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig
 
 
 def load_config(path: str | Path, *, input: str | None = None, output: str | None = None,
-                workers: str | int | None = None) -> Config:
+                workers: str | int | None = None, executor: str | None = None) -> Config:
     """Read a YAML config file, apply CLI overrides, validate everything."""
     p = Path(path)
     try:
@@ -274,4 +296,6 @@ def load_config(path: str | Path, *, input: str | None = None, output: str | Non
             raw["output"] = output
         if workers is not None:
             raw["workers"] = workers
+        if executor is not None:
+            raw["executor"] = executor
     return parse_config(raw, source=str(p))

@@ -71,6 +71,7 @@ class Runner:
             self._chains[s.name] = h.hexdigest()[:16]
         self.output_fp = rendering.output_fingerprint(self.stages)
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
+        self._remote: Any = None  # the Dask executor while a run names a scheduler
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -89,16 +90,25 @@ class Runner:
                                 "or --input", file=str(cfg.input))
         check_folders(cfg.input, cfg.output)
         out = cfg.output
+        # a Dask scheduler is reached (and its workers checked) before anything is written
+        self._remote = _connect(cfg.executor)
         try:
-            out.mkdir(parents=True, exist_ok=True)
-        except OSError as e:
-            raise LedgerError(f"cannot create the output folder ({e.strerror})", file=str(out)) from None
-        with OutputLock(out):
-            with Ledger(out / "state.sqlite") as ledger:
-                try:
-                    return self._run(ledger, t_start)
-                finally:
-                    gc.unfreeze()  # the run's frozen objects are the collector's again
+            try:
+                out.mkdir(parents=True, exist_ok=True)
+            except OSError as e:
+                raise LedgerError(f"cannot create the output folder ({e.strerror})", file=str(out)) from None
+            if self._remote is not None:
+                self._remote.check_shared(str(cfg.input), str(out))
+            with OutputLock(out):
+                with Ledger(out / "state.sqlite") as ledger:
+                    try:
+                        return self._run(ledger, t_start)
+                    finally:
+                        gc.unfreeze()  # the run's frozen objects are the collector's again
+        finally:
+            if self._remote is not None:
+                self._remote.close()
+                self._remote = None
 
     def _run(self, ledger: Ledger, t_start: float) -> RunReport:
         cfg = self.config
@@ -286,8 +296,11 @@ class Runner:
         last = time.monotonic()
         limits = self._limits()
         try:
-            for oc in run_tasks(process_file, tasks, self.config.workers, limits=limits,
-                                on_fault=fault_outcome):
+            outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
+                        if self._remote is not None else
+                        run_tasks(process_file, tasks, self.config.workers, limits=limits,
+                                  on_fault=fault_outcome))
+            for oc in outcomes:
                 if oc.results:
                     self._recomputed.add(oc.sha256)
                 for name, stored in oc.results.items():
@@ -330,6 +343,15 @@ class Runner:
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)
         staged.clear()
+
+def _connect(executor: str) -> Any:
+    """None for local worker processes; for a scheduler's address, a connected
+    ``executor_dask.DaskExecutor`` (dask is imported only then)."""
+    if executor == "local":
+        return None
+    from .executor_dask import DaskExecutor
+    return DaskExecutor.connect(executor)
+
 
 @contextmanager
 def _bulk_data() -> Iterator[None]:

@@ -57,10 +57,11 @@ def state_key(files: list, base: str) -> str:
 
 
 def quick_key(raw: dict[str, Any], files: list) -> str:
-    """Hash of the sources, the config as written (without ``workers``) and the version."""
+    """Hash of the sources, the config as written (without ``workers`` and ``executor``, which
+    change where the work runs, not its results) and the version."""
     h = hashlib.sha256()
     files_digest(h, files)
-    settings = {k: v for k, v in raw.items() if k != "workers"}
+    settings = {k: v for k, v in raw.items() if k not in ("workers", "executor")}
     h.update(json.dumps(settings, sort_keys=True, default=str).encode("utf-8", "surrogateescape"))
     h.update(f"midisift {__version__}".encode())
     if isinstance(raw.get("metadata"), str):  # an edited table changes the manifest

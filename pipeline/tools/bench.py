@@ -22,6 +22,8 @@ Sections (``--only NAME``, repeatable):
 ``rerun``   a full run, a rerun with 1 % new files, a rerun with nothing changed
 ``memory``  peak memory (RSS) of the full run at two corpus sizes, and per file
 ``dedup``   ``pipeline.tools.bench_dedup`` (precision/recall and cost of near-duplicate removal)
+``cluster`` ``pipeline.tools.bench_cluster``: the Dask executor on a LocalCluster of 2 workers
+            against the local pool (overhead ratio, same bytes); needs the dask extra
 
 Targets (the issue's, for the 2-core machine) are data in ``TARGETS``; the table says for each
 whether it is met and by how much it is missed. Timings on a shared machine are noisy: the
@@ -47,7 +49,7 @@ from ..errors import UsageError
 from .defaults import write_default_config
 from ..cpus import usable_cpus
 
-SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup")
+SECTIONS = ("small", "large", "peer", "rerun", "memory", "dedup", "cluster")
 
 
 @dataclass(frozen=True)
@@ -64,13 +66,14 @@ class Scale:
     run_timeout_s: float = 3600.0  # a pipeline run still going after this is stopped and reported
     run_memory_mb: int = 8192  # address-space limit of a measured run: a runaway run fails with
     #                            MemoryError instead of waking the OOM killer on a shared machine
+    cluster: int = 10_000  # small-class files of the cluster section (Dask vs the local pool)
 
 
 SCALES: dict[str, Scale] = {
     "full": Scale(small=2000, large=300, peer_small=60, peer_large=4, mem=(10_000, 100_000),
                   dedup_sizes=(1000, 5000), dedup_settings=True, run_timeout_s=600.0),
     "quick": Scale(small=300, large=30, peer_small=6, peer_large=1, mem=(500, 2000),
-                   dedup_sizes=(300,), dedup_settings=False),
+                   dedup_sizes=(300,), dedup_settings=False, cluster=500),
 }
 
 #: (key in the results, label, comparison, target): the issue's targets on a 2-core machine.
@@ -693,6 +696,10 @@ class Bench:
                 "kb_per_file": round(per_file_kb, 2) if per_file_kb is not None else None,
                 "rerun_large": reruns}
 
+    def cluster(self) -> dict[str, Any]:
+        from .bench_cluster import cluster_section
+        return cluster_section(self)
+
     def dedup(self) -> dict[str, Any]:
         try:
             from . import bench_dedup
@@ -871,6 +878,10 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
             add("  ... as a fraction of the full run", f"{100 * rl['new_1pct_fraction']:.1f}%")
             add("  rerun with nothing changed (s)", rl["unchanged"]["wall_s"])
             add("  ... as a fraction of the full run", f"{100 * rl['unchanged_fraction']:.1f}%")
+    if results.get("cluster"):
+        from .bench_cluster import table_rows
+        rows.extend((a, "" if b is None else b if isinstance(b, str) else _num(b))
+                    for a, b in table_rows(results["cluster"]))
     d = results.get("dedup")
     width = max([len(a) for a, _ in rows] + [40]) + 2
     lines = [f"midisift bench  {info['date']}  {info['machine']['cpu']} ({info['machine']['cores']} cores, "
