@@ -11,8 +11,9 @@ from setuptools import Extension, setup
 # no fused multiply-add contraction (GCC and Clang; MSVC does not contract by default).
 _NO_CONTRACT = [] if sys.platform == "win32" else ["-ffp-contract=off"]
 
-# One extension module, pipeline.midi._smf_accel, from the units of pipeline/midi/csrc/ (what they
-# share is declared in accel.h; pyproject.toml ships the header with the sources).
+# One extension module, pipeline.midi._smf_accel, from the units of pipeline/midi/csrc/; what they
+# share is declared in accel.h, listed in ``depends`` so that a change to it rebuilds every unit
+# and the sdist and the wheel carry it with the units.
 _SRC = "pipeline/midi/csrc/"
 _UNITS = ["module.c", "common.c", "decode.c", "encode.c", "analyses.c", "shingles.c", "similarity.c"]
 
