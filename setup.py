@@ -11,5 +11,11 @@ from setuptools import Extension, setup
 # no fused multiply-add contraction (GCC and Clang; MSVC does not contract by default).
 _NO_CONTRACT = [] if sys.platform == "win32" else ["-ffp-contract=off"]
 
-setup(ext_modules=[Extension("pipeline.midi._smf_accel", ["pipeline/midi/_smf_accel.c"], optional=True,
-                             extra_compile_args=_NO_CONTRACT)])
+# One extension module, pipeline.midi._smf_accel, from the units of pipeline/midi/csrc/; what they
+# share is declared in accel.h, listed in ``depends`` so that a change to it rebuilds every unit
+# and the sdist and the wheel carry it with the units.
+_SRC = "pipeline/midi/csrc/"
+_UNITS = ["module.c", "common.c", "decode.c", "encode.c", "analyses.c", "shingles.c", "similarity.c"]
+
+setup(ext_modules=[Extension("pipeline.midi._smf_accel", [_SRC + unit for unit in _UNITS], optional=True,
+                             depends=[_SRC + "accel.h"], extra_compile_args=_NO_CONTRACT)])

@@ -285,13 +285,13 @@ def test_shift_controls_moves_only_pitched_poly_aftertouch():
 
 
 def test_control_layout_is_what_the_compiled_code_writes():
-    # pipeline/midi/_smf_accel.c writes and reads CONTROL_DTYPE records packed, 14 bytes each
+    # pipeline/midi/csrc/ (decode.c writes, encode.c reads) CONTROL_DTYPE records packed, 14 bytes each
     assert CONTROL_DTYPE.itemsize == 14
     assert [CONTROL_DTYPE.fields[f][1] for f in CONTROL_DTYPE.names] == [0, 8, 10, 11, 12, 13]
 
 
 def test_compiled_encoder_with_controls_equals_numpy():
-    # pipeline/midi/_smf_accel.c group_events with the other events against encode._all_group_events
+    # pipeline/midi/csrc/encode.c group_events with the other events against encode._all_group_events
     if not accel.HAVE_ACCEL:
         pytest.skip("pipeline.midi._smf_accel is not built")
     for seed in range(6):

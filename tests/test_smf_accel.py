@@ -1,4 +1,4 @@
-"""Differential tests of the compiled decoder path (pipeline/midi/_smf_accel.c) against the
+"""Differential tests of the compiled decoder path (pipeline/midi/csrc/) against the
 pure-Python one in pipeline.midi.decode: the same ``Piece`` (every field, array dtypes and bytes, repairs
 in order) or the same ``DecodeError`` (code, message, offset, track, file) on the demo corpus,
 a generated corpus with every planted defect, mutated files from pipeline.tools.fuzz, a fuzzer aimed

@@ -1,6 +1,6 @@
 """The one switch for the compiled fast path: the optional C extension ``_smf_accel``
-(pipeline/midi/_smf_accel.c, built by setup.py where a C compiler is present; plain CPython C
-API, no dependency).
+(its sources in pipeline/midi/csrc/, built by setup.py where a C compiler is present; plain
+CPython C API, no dependency).
 
 ``HAVE_ACCEL`` says whether it is built; ``USE_ACCEL`` whether the decoder, the encoder's group
 tracks, the per-file analyses and the similarity kernels use it by default
@@ -65,7 +65,8 @@ def _sums_follow_numpy(mod: Any) -> bool:
     return False
 
 
-#: The compiled analyses the modules above call (pipeline/midi/_smf_accel.c).
+#: The compiled analyses the modules above call (pipeline/midi/csrc/analyses.c, shingles.c and,
+#: for table_group_events, encode.c).
 _ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "voice_shingles",
              "content_rows", "shift_sort", "fold_count", "table_group_events")
 _CHECKED: list = [None, False]  # (the module last checked, whether it has them all)

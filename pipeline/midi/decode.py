@@ -5,8 +5,9 @@ read, every declared length bounded by the bytes that remain), then one tight ev
 MTrk chunk that builds flat note columns, converted to numpy once per file; seconds come from
 the global tempo map through the vectorized ``ticks_to_seconds``.
 
-Compiled fast path: where the optional C extension ``pipeline.midi._smf_accel`` (pipeline/midi/_smf_accel.c,
-built by setup.py when a C compiler is present; plain CPython C API, no dependency) imports, the
+Compiled fast path: where the optional C extension ``pipeline.midi._smf_accel`` (this part of it
+in pipeline/midi/csrc/decode.c, built by setup.py when a C compiler is present; plain CPython C
+API, no dependency) imports, the
 per-track loop and the note table (sort and tempo-map seconds) run in C with exactly the
 semantics of ``read_track``, ``_note_table`` and ``ticks_to_seconds``. The C loop builds no
 messages: where the Python loop would raise, it gives up and ``read_track`` re-runs that track
