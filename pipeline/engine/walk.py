@@ -81,8 +81,9 @@ class StageWalk:
                     members.append(Member(sha[:16], sha, rep[sha], values, {st.name: arts.pop(sha, {})},
                                           meta=meta))
                 del arts
-                for m in members:  # artifacts of earlier corpus stages travel along
-                    for prev, res in walk.artifacts.items():
+                for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
+                    res = walk.artifacts.get(prev, {})
+                    for m in members:
                         if m.sha256 in res:
                             m.artifacts[prev] = res[m.sha256]
                 walk.artifacts[st.name] = {m.sha256: m.artifacts[st.name] for m in members}

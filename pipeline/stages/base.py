@@ -218,6 +218,11 @@ class Stage:
         verdict at this stage is ``rep_result``."""
         raise NotImplementedError
 
+    def reads_from(self) -> tuple[str, ...]:
+        """The earlier corpus stages whose ``prepare`` artifacts this stage reads (they reach
+        ``run_corpus`` as ``Member.artifacts[name]``; decided in ``bind``)."""
+        return ()
+
     def parts(self) -> list[str] | None:
         """The output parts this stage assigns kept files to, in the config's order, or None."""
         return None

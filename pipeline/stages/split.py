@@ -187,6 +187,9 @@ class Split(Stage):
     def has_prepare(self) -> bool:
         return self.opts["group_threshold"] is not None and self.borrows is None
 
+    def reads_from(self) -> tuple[str, ...]:
+        return (self.borrows,) if self.borrows and self.opts["group_threshold"] is not None else ()
+
     def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
         """MinHash signature and shingle set of one piece, by dedup's function at dedup's
         default settings (when no dedup stage before the split stores them)."""
@@ -280,7 +283,7 @@ class Split(Stage):
         signed_by: set[str] = set()
         for m in members:
             # the split's own arrays, else those dedup stored (``bind``)
-            source = self.name if m.artifacts.get(self.name) else "dedup"
+            source = self.name if m.artifacts.get(self.name) else (self.borrows or Dedup.name)
             art = m.artifacts.get(source) or {}
             if art.get("signature") is not None:
                 signed_by.add(source)
