@@ -528,3 +528,16 @@ def test_demo_corpus_matches_pretty_midi():
             assert_same_as_pretty_midi(data, piece)
         compared += 1
     assert compared >= 50
+
+
+def test_distinct_is_numpy_unique():
+    # pipeline.midi.piece.distinct: numpy's np.unique (the reference) on ordered input (one pass
+    # over runs) and on unordered input (a sort)
+    from pipeline.midi.piece import distinct
+    rng = np.random.default_rng(5)
+    for n in (0, 1, 2, 7, 500):
+        ordered = np.sort(rng.integers(-3, 40, n)).astype(np.int64)
+        shuffled = rng.permutation(ordered)
+        for a in (ordered, shuffled, ordered[::-1].copy()):
+            got = distinct(a)
+            assert got.dtype == np.unique(a).dtype and np.array_equal(got, np.unique(a))

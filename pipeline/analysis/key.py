@@ -33,7 +33,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from ..midi.accel import compiled_analyses
-from ..midi.piece import DRUM_CHANNEL, Piece
+from ..midi.piece import DRUM_CHANNEL, Piece, distinct
 
 # the names of keys are part of this module's interface (callers read ``key.MODES``, ...)
 from .key_profiles import (LEARNED, MAJOR_BY_SHARPS, MAJOR_TONIC_NAMES, MINOR_BY_SHARPS,  # noqa: F401
@@ -322,7 +322,7 @@ def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -
     # last (numbered by rank, so huge tick values cost nothing)
     b0 = start // tpb
     b1 = np.maximum(b0, (end - 1) // tpb) + 1
-    beats = np.unique(b0)
+    beats = distinct(b0)
     first_beat = np.searchsorted(beats, b0)
     after_beat = np.searchsorted(beats, b1)
     size = (len(beats) + 1) * 12

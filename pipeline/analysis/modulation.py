@@ -21,7 +21,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..midi.piece import DRUM_CHANNEL, Piece
+from ..midi.piece import DRUM_CHANNEL, Piece, distinct
 from . import key_profiles as keymod
 
 #: Segment length in quarter-note beats (two 4/4 bars), switch cost and minimum share of the
@@ -99,7 +99,7 @@ def segment_sets(piece: Piece, window_beats: float = WINDOW_BEATS) -> tuple[np.n
     size = window_beats * piece.ticks_per_beat
     first = (start // size).astype(np.int64)
     last = np.maximum(first, ((end - 1) // size).astype(np.int64))
-    numbers = np.unique(first)
+    numbers = distinct(first)
     # +1 at a note's first segment's rank, -1 at the rank after its last segment, cumulative
     # sum: notes sounding per segment and pitch class
     a = np.searchsorted(numbers, first)

@@ -104,6 +104,17 @@ def empty_notes(n: int = 0) -> np.ndarray:
     return np.zeros(n, dtype=NOTE_DTYPE)
 
 
+def distinct(values: np.ndarray) -> np.ndarray:
+    """``np.unique(values)`` of a 1-d integer array; one pass over runs when the values are
+    already in order (columns derived from a piece's onsets are), a sort otherwise."""
+    if len(values) < 2:
+        return np.unique(values)
+    step = values[1:] != values[:-1]
+    if (values[1:] >= values[:-1]).all():
+        return values[np.concatenate(([True], step))]
+    return np.unique(values)
+
+
 def sort_notes(notes: np.ndarray) -> np.ndarray:
     """Notes in the canonical order: start, pitch, track, channel, end."""
     order = np.lexsort((notes["end"], notes["channel"], notes["track"], notes["pitch"], notes["start"]))
