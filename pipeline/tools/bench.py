@@ -911,7 +911,7 @@ def byte_compile_package() -> str:
     ``PYTHONDONTWRITEBYTECODE=1`` (set on some machines) each measured process compiled every
     pipeline module again: about 55 ms of start-up on the 2-core bench machine."""
     import compileall
-    package = Path(__file__).resolve().parent
+    package = Path(__file__).resolve().parents[1]  # pipeline/
     try:
         ok = compileall.compile_dir(str(package), quiet=1)
     except OSError:

@@ -166,18 +166,22 @@ def _run_remote(bench: Any, folder: Path, out: Path, address: str,
 
 def _demo_same(bench: Any, runs: Path, address: str) -> bool | None:
     """The default config on the demo corpus, locally and through the cluster: same bytes?"""
-    from ..cli import main
-    root = Path(__file__).resolve().parent.parent
+    from ..config import load_config
+    from ..engine.runner import Runner
+    from ..errors import MidisiftError
+    root = Path(__file__).resolve().parents[2]  # the repository (the demo is not installed)
     config, demo = root / "configs" / "default.yaml", root / "sample_corpus"
     if not (config.is_file() and demo.is_dir()):
         return None
     outs = {}
-    for name, extra in (("demo_local", []), ("demo_dask", ["--executor", address])):
+    for name, executor in (("demo_local", "local"), ("demo_dask", address)):
         outs[name] = runs / name
         shutil.rmtree(outs[name], ignore_errors=True)
-        rc = main(["run", str(config), "--input", str(demo), "--output", str(outs[name]),
-                   "--quiet", "--workers", "2", *extra])
-        if rc != 0:
+        try:
+            cfg = load_config(config, input=str(demo), output=str(outs[name]), workers="2",
+                              executor=executor)
+            Runner(cfg, quiet=True).run()
+        except MidisiftError:
             return False
     return same_outputs(outs["demo_local"], outs["demo_dask"])
 

@@ -22,20 +22,33 @@ from dataclasses import replace
 from pathlib import Path
 
 
+#: What is timed, by module: in today's layout and in the flat one before 2026-12-04 (so a
+#: checkout of either can be the base).
+LAYOUTS = (
+    {"bench": "tools.bench", "decode": "midi.decode", "encode": "midi.encode", "errors": "errors",
+     "transpose": "stages.transpose", "shifts": "analysis.transpose"},
+    {"bench": "bench", "decode": "smf", "encode": "encode", "errors": "errors",
+     "transpose": "stages.transpose", "shifts": "outputs"},
+)
+
+
 def load(name: str) -> dict:
-    mods = {m: importlib.import_module(f"{name}.{m}") for m in
-            ("bench", "smf", "encode", "outputs", "errors", "stages.transpose")}
-    return mods
+    for layout in LAYOUTS:
+        try:
+            return {role: importlib.import_module(f"{name}.{mod}") for role, mod in layout.items()}
+        except ModuleNotFoundError:
+            continue
+    raise SystemExit(f"{name}: neither layout of the package found")
 
 
 def render_all(m: dict, pieces: list) -> None:
-    out, enc = m["outputs"], m["encode"]
-    transpose = m["stages.transpose"].Transpose
+    shifts, enc = m["shifts"], m["encode"]
+    transpose = m["transpose"].Transpose
     for p in pieces:
         for _suffix, notes, semis in transpose.output_notes(p, {"transpose": 3}):
-            kw = {"key_signatures": out.shift_key_signatures(p.key_signatures, semis)}
-            if hasattr(out, "shift_controls"):
-                kw["controls"] = out.shift_controls(p.controls, semis)
+            kw = {"key_signatures": shifts.shift_key_signatures(p.key_signatures, semis)}
+            if hasattr(shifts, "shift_controls"):
+                kw["controls"] = shifts.shift_controls(p.controls, semis)
             enc.encode(replace(p, **kw), notes)
 
 
@@ -46,7 +59,7 @@ def main() -> None:
     rounds = int(sys.argv[3]) if len(sys.argv) > 3 else 9
     tmp = Path(tempfile.mkdtemp(prefix="compare_trees_"))
     shutil.copytree(base / "pipeline", tmp / "pipeline_base")
-    sys.path[:0] = [str(tmp), str(Path(__file__).resolve().parents[1])]
+    sys.path[:0] = [str(tmp), str(Path(__file__).resolve().parents[2])]
     trees = {"base": load("pipeline_base"), "this": load("pipeline")}
     paths = sorted(glob.glob(pattern, recursive=True))
     pieces = {}
@@ -54,7 +67,7 @@ def main() -> None:
         pieces[name] = []
         for path in paths:
             try:
-                pieces[name].append(m["smf"].decode(Path(path).read_bytes()))
+                pieces[name].append(m["decode"].decode(Path(path).read_bytes()))
             except m["errors"].DecodeError:
                 pass
     best = {name: [float("inf"), float("inf")] for name in trees}
