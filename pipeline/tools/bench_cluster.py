@@ -50,7 +50,7 @@ def cluster_section(bench: Any) -> dict[str, Any]:
         from distributed import LocalCluster
     except ImportError:
         return {"skipped": "dask.distributed is not installed (pip install '.[dask]')"}
-    from .bench import SEEDS, corpus_facts, ensure_corpus, link_tree, run_pipeline
+    from .bench_runs import SEEDS, corpus_facts, ensure_corpus, link_tree, run_pipeline
     n = bench.scale.cluster
     corpus = ensure_corpus(bench.scratch / "corpora" / f"small_{n}", n, SEEDS["small"], "small")
     facts = corpus_facts(corpus)
@@ -111,7 +111,7 @@ def _reruns(bench: Any, folder: Path, new: Path, runs: Path, address: str,
             local: dict[str, Any], remote: dict[str, Any]) -> dict[str, Any]:
     """1% new files, then nothing changed, locally and through the cluster: seconds, their
     fraction of the full run, and whether the outputs still hold the same bytes."""
-    from .bench import link_tree, run_pipeline
+    from .bench_runs import link_tree, run_pipeline
     link_tree(new, folder / "new")
     out: dict[str, Any] = {}
     for case in ("new_1pct", "unchanged"):
@@ -152,7 +152,7 @@ class _ClusterCpu:
 def _run_remote(bench: Any, folder: Path, out: Path, address: str,
                 fresh_output: bool = True) -> dict[str, Any]:
     """``run_pipeline`` through the scheduler (the ``--executor`` option added to its command)."""
-    from . import bench as b
+    from . import bench_runs as b
     if fresh_output:
         shutil.rmtree(out, ignore_errors=True)
     cmd = [sys.executable, "-m", "pipeline.cli", "run", str(bench.config), "--input", str(folder),
