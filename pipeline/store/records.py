@@ -25,7 +25,7 @@ __all__ = ["Result", "Compactor", "TrailValues"]
 
 _FIELDS = ("kept", "reason", "detail", "values", "thresholds")
 _DECODER = json.JSONDecoder()
-#: Value-name tuples shared by the results expanded from stored JSON (few distinct ones).
+#: Value-name tuples shared by every result with the same value names (few distinct ones).
 _SHARED_NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}
 _MISSING = object()
 _intern = sys.intern
@@ -74,8 +74,7 @@ class Result:
         """Parse values still held as stored JSON text (no-op otherwise); returns self."""
         if self.names is None:
             values = json.loads(self.vals)
-            names = tuple(values)
-            self.names = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
+            self.names = _shared_names(values)
             self.vals = _compact_values(values)
             self.text = None  # memory: one form at a time (``values_json`` makes it again)
         return self
@@ -158,11 +157,18 @@ def _plain(kept: bool, reason: str | None, detail: str, values: Mapping[str, Any
            thresholds: dict[str, Any] | None) -> Result:
     """A result made by a stage (names shared with every result of the same value names)."""
     values = values or {}
+    return Result(bool(kept), reason, detail, _shared_names(values), _compact_values(values),
+                  thresholds or {})
+
+
+def _shared_names(values: Mapping[str, Any]) -> tuple[str, ...]:
+    """The value names of ``values`` as one tuple shared by every result with the same names
+    (few distinct ones per run), each name interned."""
     names = tuple(values)
     shared = _SHARED_NAMES.get(names)
     if shared is None:
-        shared = _SHARED_NAMES.setdefault(names, tuple(_intern(k) for k in names))
-    return Result(bool(kept), reason, detail, shared, _compact_values(values), thresholds or {})
+        shared = _SHARED_NAMES[names] = tuple(_intern(k) for k in names)
+    return shared
 
 
 def _compact_values(values: Mapping[str, Any]) -> tuple:
@@ -174,17 +180,13 @@ class Compactor:
     """Makes ``Result`` records for one stage, sharing name tuples and thresholds among them."""
 
     def __init__(self) -> None:
-        self._names: dict[tuple[str, ...], tuple[str, ...]] = {}
         self._thresholds: dict[str, Any] | None = None
 
     def make(self, kept: bool, reason: str | None, detail: str, values: Mapping[str, Any],
              thresholds: dict[str, Any] | None) -> Result:
-        names = tuple(values)
-        shared = self._names.get(names)
-        if shared is None:
-            shared = self._names[names] = tuple(_intern(k) for k in names)
-        return Result(bool(kept), _intern(reason) if reason else reason, detail, shared,
-                      _compact_values(values), self._shared_thresholds(thresholds))
+        return Result(bool(kept), _intern(reason) if reason else reason, detail,
+                      _shared_names(values), _compact_values(values),
+                      self._shared_thresholds(thresholds))
 
     def make_stored(self, kept: bool, reason: str | None, detail: str, values_json: str,
                     thresholds: dict[str, Any] | None) -> Result:
