@@ -330,6 +330,22 @@ def _render_pop(item: tuple[str, str, dict, bool]) -> dict:
     return {**work, "midi": data}
 
 
+def key_sets(chorale_count: int, folk_count: int, classical_count: int, pop_folder: str | None,
+             pop_count: int | None = None, music21_pop: int | None = 0) -> dict[str, list[dict]]:
+    """The key evaluation sets by name; a count of 0 (or no pop folder) leaves a set out, a
+    negative count takes all of it (``pop_count`` None: every song)."""
+    sets: dict[str, list[dict]] = {}
+    if chorale_count:
+        sets["chorales"] = chorales(chorale_count, 0)
+    if folk_count:
+        sets["folk"] = folk(None if folk_count < 0 else folk_count)
+    if classical_count:
+        sets["classical"] = classical(None if classical_count < 0 else classical_count)
+    if pop_folder:
+        sets["pop"] = pop(pop_folder, pop_count, music21_pop)
+    return sets
+
+
 def pop(folder: str | Path, count: int | None = None, music21_count: int | None = 150) -> list[dict]:
     """The main arrangement of each song in a POP909-style folder (``labels.json``);
     ``count`` evenly spaced songs (all when None); music21 runs on the first ``music21_count``

@@ -31,23 +31,19 @@ analyses are cached on disk under the system temp dir, keyed by the music21 vers
 from __future__ import annotations
 
 import argparse
-import io
-import os
-import base64
 import json
+import os
 import tempfile
 import time
 from pathlib import Path
 from typing import Any, Callable
 
-import mido
 import numpy as np
 
-from ..midi.piece import (DEFAULT_TEMPO, KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
-                          sort_notes, ticks_to_seconds)
 from ..analysis import key as keymod
 from ..analysis import meter as metermod
-from .eval_midi import decode, decode_with_mido, from_json, strip_meta, to_json  # noqa: F401
+from ..midi.piece import Piece
+from .eval_midi import decode, from_json, strip_meta, to_json
 
 #: Bump when the rendering or the ground truth changes, to invalidate the disk cache.
 CACHE_VERSION = 2
@@ -367,17 +363,8 @@ def confidence_quartiles(conf: np.ndarray, right: np.ndarray) -> list[tuple[floa
 def genre_sets(args) -> dict[str, list[dict]]:
     """The evaluation sets named by the command line (see ``eval_sets``)."""
     from . import eval_sets
-    sets: dict[str, list[dict]] = {}
-    if args.chorales:
-        sets["chorales"] = eval_sets.chorales(args.chorales, 0)
-    if args.folk:
-        sets["folk"] = eval_sets.folk(None if args.folk < 0 else args.folk)
-    if args.classical:
-        sets["classical"] = eval_sets.classical(None if args.classical < 0 else args.classical)
-    if args.pop:
-        sets["pop"] = eval_sets.pop(args.pop, None if args.pop_count < 0 else args.pop_count,
-                                    args.music21_pop)
-    return sets
+    return eval_sets.key_sets(args.chorales, args.folk, args.classical, args.pop,
+                              None if args.pop_count < 0 else args.pop_count, args.music21_pop)
 
 
 Prediction = tuple[int, str, float]  # tonic_pc, mode, confidence

@@ -103,15 +103,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--chorales", type=int, default=100, help="Bach chorales (0 = skip)")
     ap.add_argument("--classical", type=int, default=-1, help="classical pieces (-1 = all)")
     args = ap.parse_args(argv)
-    sets: dict[str, list[dict]] = {}
-    if args.chorales:
-        sets["chorales"] = eval_sets.chorales(args.chorales, 0)
-    if args.folk:
-        sets["folk"] = eval_sets.folk(None if args.folk < 0 else args.folk)
-    if args.classical:
-        sets["classical"] = eval_sets.classical(None if args.classical < 0 else args.classical)
-    if args.pop:
-        sets["pop"] = eval_sets.pop(args.pop, None, music21_count=0)
+    sets = eval_sets.key_sets(args.chorales, args.folk, args.classical, args.pop)
     annotated = pop_annotated_keys(args.pop) if args.pop else None
     for name, works in sets.items():
         print_modulation(modulation_report(name, works, truths(name, works),
