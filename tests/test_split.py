@@ -14,7 +14,7 @@ from pipeline.errors import ConfigError
 from pipeline.similarity.minhash import minhash
 from pipeline.similarity.sets import set_similarity
 from pipeline.stages.base import CorpusState, Member, StageResult
-from pipeline.stages.split import Split, check_ratios, normalize_text, output_count
+from pipeline.stages.split import Split, check_ratios, folder_of, normalize_text, output_count
 
 RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
 SIZE = 300
@@ -131,6 +131,32 @@ def test_folder_title_and_field_grouping():
     assert normalize_text("  Grünsleeves ") == "grunsleeves"
     assert normalize_text("Greensleeves!") == normalize_text("GREENSLEEVES")
     assert normalize_text("...") is None
+
+
+def test_folder_depth_ties_a_piece_and_its_subfolders():
+    # A collection laid out as one folder per piece with a subfolder of other versions (the
+    # layout of the POP909 collection: NNN/NNN.mid and NNN/versions/NNN-vK.mid).
+    c = Corpus(5)
+    ids = [c.fresh() for _ in range(48)]
+    source = {m: (f"song{i % 8}/{m}.mid" if i % 2 else f"song{i % 8}/versions/{m}.mid")
+              for i, m in enumerate(ids)}
+    members = [c.member(m, source=source[m]) for m in ids]
+    by_top = parts(run(members, group_by_folder=1)[0])
+    for k in range(8):
+        assert len({by_top[m] for m in ids if source[m].startswith(f"song{k}/")}) == 1
+    # true keeps the file's own folder: a piece's versions/ is a folder of its own.
+    assert folder_of("song1/versions/a.mid") == "song1/versions"
+    assert folder_of("song1/versions/a.mid", 1) == "song1"
+    assert folder_of("song1/a.mid", 2) == "song1"
+    assert folder_of("a.mid") is None and folder_of("a.mid", 1) is None
+
+
+@pytest.mark.parametrize("value", [0, -1, 1.5, "yes"])
+def test_bad_folder_depth_is_a_config_error(value):
+    from pipeline.config import parse_config
+    with pytest.raises(ConfigError, match="group_by_folder"):
+        parse_config({"input": "in", "output": "out",
+                      "stages": ["validate", {"split": {"group_by_folder": value}}]})
 
 
 def test_augmentation_copies_weigh_their_outputs():

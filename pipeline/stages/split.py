@@ -14,8 +14,9 @@ Which files travel together (one group, never split across parts):
 * all augmentation copies of one source: they are one ``Member`` with several outputs, so they
   travel together by construction and weigh as many files as they write in the ratios
   (``output_count``);
-* optionally files in the same folder (``group_by_folder``; files at the top of the input folder
-  are not grouped by it), with the same normalized title (``group_by_title``) or the same
+* optionally files in the same folder (``group_by_folder: true``) or under the same first N
+  folder levels (``group_by_folder: N``; files at the top of the input folder are not grouped
+  by it), with the same normalized title (``group_by_title``) or the same
   normalized value of other manifest fields (``group_fields``, e.g. ``[composer]``).
 
 The assignment itself is ``pipeline.similarity.grouping.assign_groups`` (placement rules documented
@@ -92,10 +93,21 @@ def normalize_text(value: Any) -> str | None:
     return " ".join(words) or None
 
 
-def folder_of(source: str) -> str | None:
-    """The folder of a source path relative to the input folder (None at the top level)."""
-    parent = PurePosixPath(source.replace("\\", "/")).parent.as_posix()
-    return None if parent in ("", ".") else parent
+def _check_folder(v: Any) -> str | None:
+    if isinstance(v, bool) or (isinstance(v, int) and v >= 1):
+        return None
+    return ("group_by_folder must be true, false or a folder depth of at least 1; use 1 to tie "
+            "every file under one top-level folder of the input together")
+
+
+def folder_of(source: str, depth: int | None = None) -> str | None:
+    """The folder of a source path relative to the input folder (None at the top level); with
+    ``depth``, only its first ``depth`` levels (``a/b/c.mid`` at depth 1 is ``a``), so a piece
+    kept as ``song/main.mid`` beside ``song/versions/v1.mid`` is one folder."""
+    parts = PurePosixPath(source.replace("\\", "/")).parent.parts
+    if depth is not None:
+        parts = parts[:depth]
+    return "/".join(parts) if parts else None
 
 
 def _value(result: StageResult, name: str) -> Any:
@@ -137,8 +149,10 @@ class Split(Stage):
                "its default signature settings runs before the split, else on the split's own. "
                "null turns near-duplicate grouping off (the run's table and summary.json say so).",
                _check_threshold),
-        Option("group_by_folder", bool, False, "Files in the same folder share a part (files at "
-               "the top of the input folder are not grouped by this)."),
+        Option("group_by_folder", (bool, int), False, "true: files in the same folder share a "
+               "part; a number N: files under the same first N folder levels of the input share "
+               "a part (1: one top-level folder per piece, its subfolders included). Files at "
+               "the top of the input folder are not grouped by this.", _check_folder),
         Option("group_by_title", bool, False, "Files with the same normalized title (casefolded, "
                "accents and punctuation removed) share a part."),
         Option("group_fields", (list, tuple), [], "Other manifest fields whose normalized equal "
@@ -335,8 +349,10 @@ class Split(Stage):
 
     def _forced(self, members: list[Member]) -> list[list[str]]:
         forced: list[list[str]] = []
-        if self.opts["group_by_folder"]:
-            forced += group_by_key({m.id: folder_of(m.source) for m in members})
+        by_folder = self.opts["group_by_folder"]
+        if by_folder:
+            depth = None if by_folder is True else by_folder
+            forced += group_by_key({m.id: folder_of(m.source, depth) for m in members})
         fields = list(self.opts["group_fields"])
         if self.opts["group_by_title"] and "title" not in fields:
             fields.insert(0, "title")

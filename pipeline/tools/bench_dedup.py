@@ -232,6 +232,18 @@ def format_table(result: dict) -> str:
     return "\n".join(lines)
 
 
+def _options(pairs: list[str]) -> dict:
+    """NAME=VALUE pairs as an option dict (values read as YAML: 1, true, [a, b])."""
+    import yaml
+    out = {}
+    for pair in pairs:
+        name, sep, value = pair.partition("=")
+        if not sep:
+            raise SystemExit(f"--split-option {pair!r}: expected NAME=VALUE, e.g. group_by_folder=1")
+        out[name.strip()] = yaml.safe_load(value)
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="1000,20000", help="comma-separated corpus sizes")
@@ -242,6 +254,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--real", default=None, help="a real collection folder (with --labels): "
                     "songs across parts, kept same-melody files, cross-song links, files/s")
     ap.add_argument("--labels", default=None, help="labels.json of --real ({files: {path: {song}}})")
+    ap.add_argument("--split-option", action="append", default=[], metavar="NAME=VALUE",
+                    help="a split option for --real (VALUE read as YAML), e.g. group_by_folder=1")
     ap.add_argument("--chorales", default=None, metavar="CACHE",
                     help="music21's Bach chorales (rendered once, cached as JSON in CACHE): same "
                     "tune linked, different tunes never")
@@ -253,7 +267,7 @@ def main(argv: list[str] | None = None) -> int:
     if a.real:
         from .bench_identity import evaluate, format_real, load_collection
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
-        res = evaluate(recs)
+        res = evaluate(recs, split_opts=_options(a.split_option) or None)
         if a.out:
             Path(a.out).write_text(json.dumps(res, indent=1, default=str) + "\n")
         print(format_real(res))
