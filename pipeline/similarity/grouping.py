@@ -226,7 +226,8 @@ def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
     err = check_banding(sig.shape[1], bands)
     if err:
         raise ValueError(err)
-    return banded_pair_codes(sig[live], bands, is_new), live
+    # memory: no copy of the signature matrix when every row is live (the usual case)
+    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new), live
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.

@@ -118,16 +118,25 @@ class LSHIndex:
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
         sig = self.matrix()
-        if skip is not None and skip.any():
-            rows, bands = np.nonzero(skip)
-            r = self.num_perm // self.bands
+        if skip is None or not skip.any():
+            return banded_pair_codes(sig, self.bands, is_new)
+        if not sig.flags.writeable:  # e.g. one signature as read from the ledger
             sig = sig.copy()
-            # the band's first value becomes the row number, the others one constant: a key no
-            # other row has (a real band equal to it only adds a candidate, which is verified)
-            sig[rows, bands * r] = rows.astype(np.uint32)
-            for k in range(1, r):
-                sig[rows, bands * r + k] = EMPTY_VALUE - np.uint32(1)
-        return banded_pair_codes(sig, self.bands, is_new)
+        rows, bands = np.nonzero(skip)
+        r = self.num_perm // self.bands
+        cols = (bands[:, None] * r + np.arange(r)).ravel()
+        cells = (np.repeat(rows, r), cols)
+        saved = sig[cells]
+        # the band's first value becomes the row number, the others one constant: a key no
+        # other row has (a real band equal to it only adds a candidate, which is verified);
+        # memory: changed in place and put back, not on a copy of the whole matrix
+        fill = np.full((len(rows), r), EMPTY_VALUE - np.uint32(1), dtype=np.uint32)
+        fill[:, 0] = rows.astype(np.uint32)
+        try:
+            sig[cells] = fill.ravel()
+            return banded_pair_codes(sig, self.bands, is_new)
+        finally:
+            sig[cells] = saved
 
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
