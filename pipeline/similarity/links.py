@@ -2,7 +2,7 @@
 
 ``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
 themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples; the
-verification (``pair_values``) reads the stored shingle sets in bulk, a block at a time.
+verification (``code_similarities``) reads the stored shingle sets in bulk, a block at a time.
 """
 from __future__ import annotations
 
@@ -220,11 +220,11 @@ def _read_sets(keys: list[str], which: np.ndarray, shingles: Any, generic: np.nd
 _CODE_CHUNK = 1 << 20
 
 
-#: Candidate pairs compared per ``pair_similarities`` call in ``pair_values``.
+#: Candidate pairs compared per ``pair_similarities`` call in ``code_similarities``.
 VERIFY_CHUNK = 1 << 14
 
 
-#: Shingles held at once while candidate pairs are verified (``pair_values``): 8 bytes each,
+#: Shingles held at once while candidate pairs are verified (``code_similarities``): 8 bytes each,
 #: so about 32 MB of sets whatever the corpus size.
 VERIFY_SHINGLES = 1 << 22
 
