@@ -9,8 +9,8 @@ from pipeline.midi import accel
 from pipeline.midi import decode as smf
 from pipeline.similarity.lsh import (LSHIndex, band_keys, candidate_probability, check_banding,
                                      sorted_unique)
-from pipeline.similarity.links import (UnionFind, near_pairs, near_pairs_between,
-                                       verify_index_pairs, verify_pairs)
+from pipeline.similarity.links import (UnionFind, near_pairs, near_pairs_between, pair_values,
+                                       verify_codes, verify_index_pairs, verify_pairs)
 from pipeline.similarity.minhash import estimate_jaccard, fold32, minhash
 from pipeline.similarity.sets import pair_similarities, set_similarity
 
@@ -305,6 +305,53 @@ def test_verify_with_generic_shingles_equals_set_similarity_and_leaves_the_sets_
             for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.375]
     assert got == want and 0 < len(got) < len(i)
     assert all(np.array_equal(sets[k], before[k]) for k in keys)
+
+
+@pytest.mark.parametrize("budget", [1, 300, 2_000, None])
+def test_verification_in_blocks_equals_set_similarity(budget):
+    # Reference: set_similarity pair by pair (generic shingles left out). The verification
+    # reads the sets a block at a time (at most about ``budget`` shingles held; 1 makes every
+    # set a block of its own, None the default, one block here): the values must not depend on
+    # the blocks, for LSH codes (verify_codes) and for pairs in any order (pair_values), and
+    # every set is read only through the bulk reader, never held beyond the budget.
+    from pipeline.similarity import links
+    rng = np.random.default_rng(21)
+    keys = [f"k{n:02d}" for n in range(40)]
+    common = np.unique(rng.integers(0, 2**63, 50, dtype=np.uint64))
+    sets = {k: np.unique(np.concatenate([common[rng.integers(0, 25):],
+                                         rng.integers(0, 2**63, int(rng.integers(5, 90)), dtype=np.uint64)]))
+            for k in keys}
+    generic = common[::3].copy()
+    n = len(keys)
+    codes = sorted_unique(rng.integers(0, n * n, 500))
+    codes = codes[codes // n < codes % n]
+    want = [(keys[a], keys[b], v) for a, b in zip((codes // n).tolist(), (codes % n).tolist())
+            for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.3]
+    got = verify_codes(keys, codes, sets, 0.3, generic=generic, budget=budget)
+    assert got == want and 0 < len(got) < len(codes)
+    i = rng.integers(0, n, 300)
+    j = rng.integers(0, n, 300)
+    ref = np.array([set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]
+                    for a, b in zip(i.tolist(), j.tolist())])
+    assert np.array_equal(pair_values(keys, i, j, sets, generic=generic, budget=budget), ref)
+    held = []
+    real = links._read_sets
+
+    def spy(keys_, which, shingles, generic_):
+        held.append(sum(len(shingles[keys_[p]]) for p in which.tolist()))
+        return real(keys_, which, shingles, generic_)
+
+    links._read_sets = spy
+    try:
+        verify_codes(keys, codes, sets, 0.3, generic=generic, budget=budget)
+    finally:
+        links._read_sets = real
+    largest = max(len(x) for x in sets.values())
+    limit = (budget or links.VERIFY_SHINGLES) // 2 + largest  # a block: half the budget, plus its last set
+    assert max(held) <= limit
+    assert sum(held) >= sum(len(sets[k]) for k in keys)  # every set in a pair was read
+    if budget == 1:
+        assert len(held) > n  # blocks of one set: sets are read again for later blocks
 
 
 def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():

@@ -193,29 +193,41 @@ def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = N
     """Index pairs ``(i, j)``, ``i < j``, sharing at least one band: an ``(M, 2)`` int64 array,
     sorted. With ``only`` (a boolean mask over the rows), just the pairs with at least one
     row in it (incremental reruns pair the new files against everything, not all with all).
+    The pairs of ``band_codes``; empty signatures (no shingles) never pair."""
+    import numpy as np
 
-    One band at a time (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the
-    number of distinct pairs instead of rows x bands x run length (a 100,000-file run held
-    several GB in the all-bands-at-once form). Empty signatures (no shingles) never pair.
-    """
+    codes, live = band_codes(sig, bands, only)
+    m = len(live)
+    return np.stack((live[codes // m], live[codes % m]), axis=1).astype(np.int64)
+
+
+def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
+               ) -> tuple["np.ndarray", "np.ndarray"]:
+    """``(codes, live)``: the rows with a non-empty signature (``live``, indices into ``sig``)
+    and the sorted unique codes ``i * len(live) + j`` (``i < j`` index ``live``) of those
+    sharing at least one band, with ``only`` just those with a row in it. 8 bytes a pair
+    (memory: the split's candidates grow with the square of the corpus). One band at a time
+    (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the number of distinct
+    pairs instead of rows x bands x run length (a 100,000-file run held several GB in the
+    all-bands-at-once form)."""
     import numpy as np
 
     from .minhash import EMPTY_VALUE
     from .lsh import banded_pair_codes, check_banding
 
     n = len(sig)
-    live = np.flatnonzero(~np.all(np.asarray(sig) == EMPTY_VALUE, axis=1)) if n else np.zeros(0, np.int64)
+    none = np.zeros(0, np.int64)
+    live = np.flatnonzero(~np.all(np.asarray(sig) == EMPTY_VALUE, axis=1)) if n else none
     if len(live) < 2:
-        return np.zeros((0, 2), np.int64)
+        return none, live
     is_new = np.ones(len(live), dtype=bool) if only is None else np.asarray(only, dtype=bool)[live]
     if not is_new.any():
-        return np.zeros((0, 2), np.int64)
+        return none, live
     err = check_banding(sig.shape[1], bands)
     if err:
         raise ValueError(err)
-    m = len(live)
-    codes = banded_pair_codes(sig[live], bands, is_new)
-    return np.stack((live[codes // m], live[codes % m]), axis=1).astype(np.int64)
+    # memory: no copy of the signature matrix when every row is live (the usual case)
+    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new), live
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
@@ -241,8 +253,7 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     import numpy as np
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
-    from .links import VERIFY_CHUNK, involved_sets
-    from .sets import pair_similarities
+    from .links import verify_codes
 
     keys = sorted(signatures)
     if len(keys) < 2:
@@ -250,34 +261,30 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     sig = np.vstack([np.asarray(signatures[k], dtype=np.uint32) for k in keys])
     num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
-    pairs = band_candidates(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)
-    if not len(pairs):
+    codes, live = band_codes(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)
+    if not len(codes):
         return []
-    ia, ib = pairs[:, 0], pairs[:, 1]
-    est = None
-    if shingles is None:  # the estimate decides
-        est = pair_estimates(sig, ia, ib)
-        sel = est >= threshold
-        est = est[sel]
-    else:  # the bounds dedup uses (containment, lead voices), with a wider margin
-        sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
-        sel = np.empty(len(ia), dtype=bool)
-        for lo in range(0, len(ia), PAIR_CHUNK):  # memory: a dozen per-pair arrays a chunk at a time
-            hi = lo + PAIR_CHUNK
-            sel[lo:hi] = plausible_pairs(sig, ia[lo:hi], ib[lo:hi], sizes, threshold,
-                                         margin_sigmas=margin_sigmas)
-    ia, ib = ia[sel], ib[sel]
-    del pairs, sel  # memory: millions of candidates on a large corpus
-    sets = None
-    if shingles is not None and len(ia):  # only the sets of files in some pair are read
-        sets, pos = involved_sets(keys, ia, ib, shingles)
-        sets = [np.asarray(x, dtype=np.uint64) for x in sets]
-    out: list[tuple[str, str, float]] = []
-    for lo in range(0, len(ia), VERIFY_CHUNK):  # memory: per-pair arrays a chunk at a time
-        i, j = ia[lo:lo + VERIFY_CHUNK], ib[lo:lo + VERIFY_CHUNK]
-        sim = est[lo:lo + VERIFY_CHUNK] if sets is None else pair_similarities(sets, pos[i], pos[j])
-        hit = sim >= threshold
+    m = len(live)
+    sizes = None if shingles is None else np.array([len(shingles[k]) for k in keys], dtype=np.float64)
+    sel = np.empty(len(codes), dtype=bool)
+    est = np.empty(len(codes), dtype=np.float64) if shingles is None else None
+    for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+        c = codes[lo:lo + PAIR_CHUNK]
+        i, j = live[c // m], live[c % m]
+        if shingles is None:  # the estimate decides
+            est[lo:lo + len(c)] = pair_estimates(sig, i, j)
+            sel[lo:lo + len(c)] = est[lo:lo + len(c)] >= threshold
+        else:  # the bounds dedup uses (containment, lead voices), with a wider margin
+            sel[lo:lo + len(c)] = plausible_pairs(sig, i, j, sizes, threshold,
+                                                  margin_sigmas=margin_sigmas)
+    del sig
+    if not sel.all():
+        codes = codes[sel]  # memory: millions of candidates on a large corpus
+        est = None if est is None else est[sel]
+    del sel
+    keys = [keys[x] for x in live.tolist()]  # codes index the live rows
+    if shingles is None:
         # memory: only the linked pairs become Python objects
-        out += [(keys[a], keys[b], float(v))
-                for a, b, v in zip(i[hit].tolist(), j[hit].tolist(), sim[hit].tolist())]
-    return out
+        return [(keys[a], keys[b], float(v)) for a, b, v in
+                zip((codes // m).tolist(), (codes % m).tolist(), est.tolist())]
+    return verify_codes(keys, codes, shingles, threshold)

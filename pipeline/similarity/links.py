@@ -2,18 +2,18 @@
 
 ``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
 themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples; the
-verification reads the stored shingle sets in bulk (``involved_sets``).
+verification (``code_similarities``) reads the stored shingle sets in bulk, a block at a time.
 """
 from __future__ import annotations
 
-from typing import Any, Iterable
+from typing import Any, Iterable, Iterator
 
 import numpy as np
 
 from ..store.ledger import load_arrays
-from .lsh import LSHIndex
+from .lsh import LSHIndex, sorted_unique
 from .minhash import estimate_jaccard
-from .sets import MIN_SIZE_RATIO, drop_generic, pair_similarities
+from .sets import MIN_SIZE_RATIO, drop_generic, lead_part, pair_similarities
 
 
 class UnionFind:
@@ -83,48 +83,150 @@ def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: 
                        threshold: float, *, min_size_ratio: float = MIN_SIZE_RATIO,
                        skip: UnionFind | None = None, generic: np.ndarray | None = None
                        ) -> list[tuple[str, str, float]]:
-    """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays (LSH
-    candidate codes), without a Python tuple per candidate: ``VERIFY_CHUNK`` pairs per
-    ``pair_similarities`` call, then the pairs that reach ``threshold`` taken in order, so the
-    result is the one a pair-by-pair pass gives. Only the sets of keys in some pair are read
-    (``shingles[key]``, e.g. lazily built facts on a rerun). ``generic`` shingles are left
-    out of every set first (``drop_generic``)."""
+    """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays: the
+    similarities of all pairs (``pair_values``), then the pairs that reach ``threshold`` taken
+    in order, so the result is the one a pair-by-pair pass gives. ``generic`` shingles are
+    left out of every set first (``drop_generic``)."""
     i = np.asarray(i, dtype=np.int64)
     j = np.asarray(j, dtype=np.int64)
     if not len(i):
         return []
-    sets, pos = involved_sets(keys, i, j, shingles)
-    if generic is not None and len(generic):
-        for p, x in enumerate(sets):  # memory: each read set is let go as it is replaced
-            sets[p] = drop_generic(np.asarray(x, dtype=np.uint64), generic)
-    hits: list[tuple[str, str, float]] = []
-    for lo in range(0, len(i), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair in a chunk
-        hi = lo + VERIFY_CHUNK
-        sims = pair_similarities(sets, pos[i[lo:hi]], pos[j[lo:hi]], min_size_ratio=min_size_ratio)
-        hit = np.flatnonzero(sims >= threshold)
-        hits += [(keys[a], keys[b], sim) for a, b, sim in
-                 zip(i[lo:hi][hit].tolist(), j[lo:hi][hit].tolist(), sims[hit].tolist())]
+    sims = pair_values(keys, i, j, shingles, generic=generic, min_size_ratio=min_size_ratio)
+    hit = np.flatnonzero(sims >= threshold)
+    hits = [(keys[a], keys[b], sim) for a, b, sim in
+            zip(i[hit].tolist(), j[hit].tolist(), sims[hit].tolist())]
     return _link_in_order(hits, threshold, skip)
 
 
-def involved_sets(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any
-                  ) -> tuple[list, np.ndarray]:
-    """The sets ``shingles[keys[p]]`` of the keys in some pair ``(i[k], j[k])`` only, those
-    still in the ledger (``ledger.StoredArray``) read in one go, and ``pos``: key index -> its
-    position in that list (``pos[i]``, ``pos[j]`` are what ``pair_similarities`` takes). A
-    mask over the keys rather than a sort of the pairs (memory: the pair arrays of millions of
-    candidates are not copied)."""
-    used = np.zeros(len(keys), dtype=bool)
-    used[i] = True
-    used[j] = True
+def pair_values(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any, *,
+                generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
+                budget: int | None = None) -> np.ndarray:
+    """``set_similarity`` (float64) of every pair ``(keys[i[k]], keys[j[k]])``, in the order
+    given (``code_similarities`` on the pairs as sorted codes)."""
+    i = np.asarray(i, dtype=np.int64)
+    j = np.asarray(j, dtype=np.int64)
+    sims = np.zeros(len(i), dtype=np.float64)
+    if not len(i):
+        return sims
+    n = len(keys)
+    codes = np.minimum(i, j) * n + np.maximum(i, j)
+    order = np.argsort(codes, kind="stable")
+    codes = codes[order]
+    for at, val in code_similarities(keys, codes, shingles, generic=generic,
+                                     min_size_ratio=min_size_ratio, budget=budget):
+        sims[order[at]] = val
+    return sims
+
+
+def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,
+                 generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
+                 budget: int | None = None) -> list[tuple[str, str, float]]:
+    """The pairs of sorted codes ``i * len(keys) + j`` (``i < j``: LSH candidates) whose
+    similarity reaches ``threshold``: ``(keys[i], keys[j], similarity)`` in code order. The
+    one exact verification of candidate pairs (dedup's and the split's grouping's)."""
+    n = len(keys)
+    at_parts, val_parts = [], []
+    for at, val in code_similarities(keys, codes, shingles, generic=generic,
+                                     min_size_ratio=min_size_ratio, budget=budget):
+        hit = val >= threshold
+        at_parts.append(at[hit])
+        val_parts.append(val[hit])
+    if not at_parts:
+        return []
+    at = np.concatenate(at_parts)
+    val = np.concatenate(val_parts)
+    order = np.argsort(at, kind="stable")
+    c = codes[at[order]]
+    # memory: only the linked pairs become Python objects
+    return [(keys[x], keys[y], v) for x, y, v in
+            zip((c // n).tolist(), (c % n).tolist(), val[order].tolist())]
+
+
+def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
+                      generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
+                      budget: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """``(positions, similarities)`` for every pair of the sorted codes ``i * len(keys) + j``
+    (``i <= j``), block pair by block pair: ``codes[positions]`` are those pairs and
+    ``similarities`` their ``set_similarity`` values (float64), ``generic`` shingles left out.
+
+    Only the sets of keys in some pair are read (``shingles[key]``: arrays, or
+    ``ledger.StoredArray`` handles read in bulk), and about ``budget`` shingles
+    (``VERIFY_SHINGLES``) at most at once: the keys in pairs are cut, in key order, into blocks
+    of half of it, and the pairs are compared block pair by block pair, the later block of a
+    pair read when its pairs come (a block nested loop join). Memory: on a large corpus nearly
+    every file is in some candidate pair, and all their sets at once were the peak of a run; a
+    set is read again for each earlier block it pairs with. The values do not depend on the
+    blocks; per-pair arrays exist for one block's pairs at a time (codes are sorted by ``i``)."""
+    codes = np.asarray(codes, dtype=np.int64)
+    n = len(keys)
+    if not len(codes):
+        return
+    used = np.zeros(n, dtype=bool)
+    for lo in range(0, len(codes), _CODE_CHUNK):  # memory: no index arrays over all pairs
+        c = codes[lo:lo + _CODE_CHUNK]
+        used[c // n] = True
+        used[c % n] = True
     involved = np.flatnonzero(used)
-    pos = np.cumsum(used, dtype=np.int64) - 1
-    sets = load_arrays([shingles[keys[p]] for p in involved.tolist()])
-    return sets, pos
+    del used
+    sizes = np.array([len(shingles[keys[p]]) for p in involved.tolist()], dtype=np.int64)
+    half = max(1, int(VERIFY_SHINGLES if budget is None else budget) // 2)
+    start = (np.cumsum(sizes) - sizes) // half  # a block: the keys whose first shingle falls in one half budget
+    first = np.flatnonzero(np.concatenate(([True], start[1:] != start[:-1])))
+    block_of = np.full(n, -1, dtype=np.int32)
+    block_of[involved] = np.repeat(np.arange(len(first), dtype=np.int32), np.diff(np.append(first, len(start))))
+    # codes are sorted by i, and blocks follow key order: block a's pairs as the lower end
+    # (i in block a) form one range of codes
+    bounds = np.searchsorted(codes, np.append(involved[first], n) * n)
+    pos = np.full(n, -1, dtype=np.int64)  # key index -> its place among the held sets
+    for a in range(len(first)):
+        s0, s1 = int(bounds[a]), int(bounds[a + 1])
+        if s0 == s1:
+            continue
+        c = codes[s0:s1]
+        i, j = c // n, c % n
+        del c
+        hi = block_of[j]
+        outer_keys = sorted_unique(np.concatenate((i, j[hi == a])))
+        outer = _read_sets(keys, outer_keys, shingles, generic)
+        for b in sorted_unique(hi).tolist():
+            rows = np.flatnonzero(hi == b)
+            if b == a:
+                held, held_keys = outer, outer_keys
+            else:
+                inner_keys = sorted_unique(j[rows])
+                held = outer + _read_sets(keys, inner_keys, shingles, generic)
+                held_keys = np.concatenate((outer_keys, inner_keys))
+            pos[held_keys] = np.arange(len(held_keys))
+            leads = [lead_part(x) for x in held]
+            for lo in range(0, len(rows), VERIFY_CHUNK):  # memory: 24 bytes of counts per pair
+                r = rows[lo:lo + VERIFY_CHUNK]
+                yield s0 + r, pair_similarities(held, pos[i[r]], pos[j[r]], leads=leads,
+                                                min_size_ratio=min_size_ratio)
+            del held, leads  # memory: an inner block is let go before the next is read
+        del outer, i, j, hi
 
 
-#: Candidate pairs compared per ``pair_similarities`` call in ``verify_index_pairs``.
+def _read_sets(keys: list[str], which: np.ndarray, shingles: Any, generic: np.ndarray | None
+               ) -> list[np.ndarray]:
+    """The uint64 sets ``shingles[keys[p]]`` for ``p`` in ``which`` (read in bulk), without
+    the ``generic`` shingles."""
+    sets = load_arrays([shingles[keys[p]] for p in which.tolist()])
+    for p, x in enumerate(sets):  # memory: each read set is let go as it is replaced
+        sets[p] = drop_generic(np.asarray(x, dtype=np.uint64), generic)
+    return sets
+
+
+#: Codes handled at once where a pass over all candidate pairs needs index arrays.
+_CODE_CHUNK = 1 << 20
+
+
+#: Candidate pairs compared per ``pair_similarities`` call in ``code_similarities``.
 VERIFY_CHUNK = 1 << 14
+
+
+#: Shingles held at once while candidate pairs are verified (``code_similarities``): 8 bytes each,
+#: so about 32 MB of sets whatever the corpus size.
+VERIFY_SHINGLES = 1 << 22
 
 
 def _link_in_order(scored: Iterable[tuple[str, str, float]], threshold: float,

@@ -96,7 +96,7 @@ class LSHIndex:
                              f"num_perm={self.num_perm}; rebuild the signatures with the same num_perm")
         live = ~np.all(sig == EMPTY_VALUE, axis=1)
         self.ids.extend(k for k, ok in zip(keys, live.tolist()) if ok)
-        self._sigs.append(sig[live])
+        self._sigs.append(sig if live.all() else sig[live])  # memory: no copy when all are live
 
     def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
         """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
@@ -118,23 +118,37 @@ class LSHIndex:
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
         sig = self.matrix()
-        if skip is not None and skip.any():
-            rows, bands = np.nonzero(skip)
-            r = self.num_perm // self.bands
+        if skip is None or not skip.any():
+            return banded_pair_codes(sig, self.bands, is_new)
+        if not sig.flags.writeable:  # e.g. one signature as read from the ledger
             sig = sig.copy()
-            # the band's first value becomes the row number, the others one constant: a key no
-            # other row has (a real band equal to it only adds a candidate, which is verified)
-            sig[rows, bands * r] = rows.astype(np.uint32)
-            for k in range(1, r):
-                sig[rows, bands * r + k] = EMPTY_VALUE - np.uint32(1)
-        return banded_pair_codes(sig, self.bands, is_new)
+        rows, bands = np.nonzero(skip)
+        r = self.num_perm // self.bands
+        cols = (bands[:, None] * r + np.arange(r)).ravel()
+        cells = (np.repeat(rows, r), cols)
+        saved = sig[cells]
+        # the band's first value becomes the row number, the others one constant: a key no
+        # other row has (a real band equal to it only adds a candidate, which is verified);
+        # memory: changed in place and put back, not on a copy of the whole matrix
+        fill = np.full((len(rows), r), EMPTY_VALUE - np.uint32(1), dtype=np.uint32)
+        fill[:, 0] = rows.astype(np.uint32)
+        try:
+            sig[cells] = fill.ravel()
+            return banded_pair_codes(sig, self.bands, is_new)
+        finally:
+            sig[cells] = saved
 
     def matrix(self) -> np.ndarray:
         """The signatures as one ``(len(ids), num_perm)`` uint32 array, in insertion order."""
         m = getattr(self, "_matrix", None)
         if m is None or len(m) != len(self.ids):
-            m = self._matrix = (np.vstack(self._sigs) if self._sigs
-                                else np.zeros((0, self.num_perm), dtype=np.uint32))
+            if len(self._sigs) == 1 and self._sigs[0].ndim == 2:
+                m = self._sigs[0]  # memory: one ``extend`` needs no second copy
+            else:
+                m = (np.vstack(self._sigs) if self._sigs
+                     else np.zeros((0, self.num_perm), dtype=np.uint32))
+                self._sigs = [m]  # memory: the rows are held once
+            self._matrix = m
         return m
 
     def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
@@ -235,7 +249,11 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
             found = [np.frombuffer(kernel(sig, bands, lo, hi, new_bytes), dtype=np.int64)]
         else:
             found = [_band_pairs(band_key(sig, bands, band), is_new) for band in range(lo, hi)]
-        codes = sorted_unique(np.concatenate([codes, *found]))
+        merged = np.concatenate([codes, *found])
+        del codes, found  # memory: the split's candidates grow with the square of the corpus
+        merged.sort()  # in place: no sorted copy beside the merged codes
+        codes = sorted_unique(merged, is_sorted=True)
+        del merged
     return codes
 
 
@@ -243,10 +261,11 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
 _MERGE_BANDS = 8
 
 
-def sorted_unique(a: np.ndarray) -> np.ndarray:
-    """``np.unique(a)`` of a 1-d array, by one sort. Speed: numpy 2.3+ answers ``np.unique``
-    of integers through a hash table first, much slower here (DEVELOPERS.md, Bench notes)."""
-    s = np.sort(a)
+def sorted_unique(a: np.ndarray, is_sorted: bool = False) -> np.ndarray:
+    """``np.unique(a)`` of a 1-d array, by one sort (none when ``is_sorted``). Speed: numpy
+    2.3+ answers ``np.unique`` of integers through a hash table first, much slower here
+    (DEVELOPERS.md, Bench notes)."""
+    s = a if is_sorted else np.sort(a)
     if len(s) < 2:
         return s
     keep = np.empty(len(s), dtype=bool)

@@ -136,19 +136,21 @@ def drop_generic(shingles: np.ndarray, generic: np.ndarray | None) -> np.ndarray
 
 def pair_similarities(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, *,
                       min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
-                      compiled: bool = True) -> np.ndarray:
+                      compiled: bool = True, leads: list[np.ndarray] | None = None) -> np.ndarray:
     """``set_similarity`` values (float64) of the pairs ``(sets[i[k]], sets[j[k]])``, the same
     numbers to the last bit: the counts come from one compiled call when the extension is
     built (speed: not ``np.intersect1d`` one pair at a time; DEVELOPERS.md, Bench notes), and
     the divisions are the same float64 ones.
     ``compiled=False`` counts with ``overlap_counts``, the specification. ``sets`` is a list
-    of uint64 arrays (the kernel refuses other types, naming the set)."""
+    of uint64 arrays (the kernel refuses other types, naming the set); ``leads``, their
+    ``lead_part``s when the caller made them once for many calls."""
     i = np.ascontiguousarray(i, dtype=np.int64)
     j = np.ascontiguousarray(j, dtype=np.int64)
     if not len(i):
         return np.zeros(0, dtype=np.float64)
     sim = _pair_measure(sets, i, j, min_size_ratio, cap, compiled)
-    leads = [lead_part(np.asarray(x)) for x in sets]
+    if leads is None:
+        leads = [lead_part(np.asarray(x)) for x in sets]
     sizes = np.array([len(x) for x in leads], dtype=np.int64)
     both = np.flatnonzero((sizes[i] >= MIN_LEAD) & (sizes[j] >= MIN_LEAD))
     if len(both):

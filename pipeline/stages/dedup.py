@@ -33,7 +33,7 @@ from ..analysis.shingles import ShingleSpec, duration_beats
 from ..midi.piece import Piece
 from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, generic_shingles
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
-from ..similarity.links import UnionFind, verify_index_pairs
+from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
@@ -71,7 +71,7 @@ class _LazyFacts(dict):
 
 class _Shingles:
     """member id -> shingle set as stored (maybe a ``ledger.StoredArray``, which
-    ``verify_index_pairs`` reads with the others in one go)."""
+    ``verify_codes`` reads with the others in bulk)."""
 
     __slots__ = ("_arts",)
 
@@ -286,13 +286,10 @@ class Dedup(Stage):
         n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
-        n_ids = len(index.ids)
-        ia, ib = codes // n_ids, codes % n_ids
         n_plausible = len(codes)
+        verified = verify_codes(index.ids, codes, _Shingles(arts), threshold,
+                                min_size_ratio=float(o["min_size_ratio"]), generic=self._generic)
         del codes  # memory: millions of candidates on a large corpus
-        verified = verify_index_pairs(index.ids, ia, ib, _Shingles(arts),
-                                      threshold, min_size_ratio=float(o["min_size_ratio"]),
-                                      generic=self._generic)
         for a, b, sim in verified:
             near.add(a, b, sim)
             uf.union(a, b)
