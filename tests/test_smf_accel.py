@@ -600,7 +600,7 @@ def test_compiled_key_features_and_path(monkeypatch, analysis_pieces):
     # the compiled path ran on the ordered pieces (not only the fallback)
     ran = [p for p in pieces if p.notes.flags.c_contiguous and accel.module.key_features(
         p.notes, p.ticks_per_beat, keymod.FINAL_BEATS, 8 * p.ticks_per_beat,
-        modulation._TABLE, modulation.SWITCH_COST) is not None]
+        modulation._TABLE, modulation.SWITCH_COST, keymod.MELODY_MIN_SHARE) is not None]
     assert len(ran) > len(pieces) // 2
 
 
@@ -610,7 +610,7 @@ def test_compiled_key_features_hand_back_the_general_cases():
     mod, table = accel.module, modulation._TABLE
 
     def call(notes, tpb=480):
-        return mod.key_features(notes, tpb, 4.0, 8 * tpb, table, 12.0)
+        return mod.key_features(notes, tpb, 4.0, 8 * tpb, table, 12.0, 0.1)
     assert call(p.notes) is not None
     shuffled = p.notes[np.random.default_rng(1).permutation(len(p.notes))]
     assert call(shuffled) is None  # out of time order: numpy's general path
@@ -623,8 +623,14 @@ def test_compiled_key_features_hand_back_the_general_cases():
     drums = p.notes.copy()
     drums["channel"] = 9
     assert call(drums) is None  # no pitched note
+    voices = p.notes.copy()
+    voices["track"] = np.arange(len(voices)) % 65  # more voices than the compiled code keeps
+    voices["channel"] = 0
+    assert call(voices) is None
+    voices["track"] = np.arange(len(voices)) % 64
+    assert call(voices) is not None
     with pytest.raises(ValueError):
-        mod.key_features(p.notes, 480, 4.0, 3840, table[:10], 12.0)
+        mod.key_features(p.notes, 480, 4.0, 3840, table[:10], 12.0, 0.1)
 
 
 def test_compiled_meter(monkeypatch, analysis_pieces):

@@ -239,11 +239,17 @@ def parse_key(text: str) -> tuple[int, str]:
 #:   often a major / minor triad on it follows a major triad on its fifth (V-I, common practice)
 #:   from one beat with a triad to the next;
 #: - ``path_major`` / ``path_minor``: per tonic, the share of the 8-beat segments the
-#:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it.
+#:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it;
+#: - ``melody``: duration of the notes of the melody voice (``melody_voice``);
+#:   ``melody_last``: one-hot pitch class of its last note (the highest of its last onset).
 FEATURES = ("duration", "onsets", "bass", "top", "final", "on_beat", "first_bass", "last_bass",
             "last_top", "major_triads", "minor_triads", "first_major_triad", "first_minor_triad",
             "last_major_triad", "last_minor_triad", "cadence_major", "cadence_minor",
-            "path_major", "path_minor")
+            "path_major", "path_minor", "melody", "melody_last")
+#: The melody voice is the voice (track and channel) of the highest mean pitch among those
+#: holding at least this share of the pitched notes (the skyline-by-voice guess of common
+#: practice; 0.1 chosen against 0, README, Key detection).
+MELODY_MIN_SHARE = 0.1
 #: Published profiles whose correlations (of the duration and of the bass distribution) with
 #: each candidate key are features too, in this order.
 CORRELATION_PROFILES = tuple(sorted(PROFILES))
@@ -306,7 +312,7 @@ def features_and_path(piece: Piece) -> tuple[np.ndarray, tuple[np.ndarray, ...]]
     window = WINDOW_BEATS * piece.ticks_per_beat
     if accel is not None and window == int(window):
         got = accel.key_features(notes, int(piece.ticks_per_beat), FINAL_BEATS, int(window),
-                                 _PRESENCE_TABLE, SWITCH_COST)
+                                 _PRESENCE_TABLE, SWITCH_COST, MELODY_MIN_SHARE)
         if got is not None:
             sums, numbers, sets, path = (np.frombuffer(b, dtype=d) for b, d in
                                          zip(got, (np.float64, np.int64, np.int64, np.int64)))
@@ -376,7 +382,24 @@ def _feature_sums(piece: Piece, windowed: tuple[np.ndarray, ...]) -> np.ndarray:
         dominant = before[:, _FIFTH_ABOVE]  # column r: a major triad on r + 7 before
         out[15:17] = (after.reshape(-1, 2, 12) * dominant[:, None, :]).sum(axis=0)
     out[17:19] = np.bincount(windowed[2], minlength=24).reshape(2, 12)
+    track = notes["track"] if keep.all() else notes["track"][keep]
+    channel = notes["channel"] if keep.all() else notes["channel"][keep]
+    melody = melody_voice(track.astype(np.int64) * 16 + channel, pitch)
+    out[19] = np.bincount(pc[melody], weights=dur[melody], minlength=12)
+    last = melody & (start == start[melody].max())
+    out[20, pitch[last].max() % 12] = 1.0
     return out
+
+
+def melody_voice(voice: np.ndarray, pitch: np.ndarray) -> np.ndarray:
+    """Mask of the notes of the melody voice: of the voices (``voice``: one number per voice,
+    here track * 16 + channel) holding at least MELODY_MIN_SHARE of the notes, the one of the
+    highest mean pitch (the lowest voice number on a tie; the lowest voice number when none
+    holds that share)."""
+    voices, index, count = np.unique(voice, return_inverse=True, return_counts=True)
+    mean = np.bincount(index, weights=pitch) / count
+    mean[count < MELODY_MIN_SHARE * len(pitch)] = -np.inf
+    return index == int(np.argmax(mean))
 
 
 def class_features(features: np.ndarray) -> np.ndarray:

@@ -10,7 +10,8 @@
  * note) this returns None and the caller runs it. */
 #include "accel.h"
 
-#define N_ROWS 19 /* len(key.FEATURES) */
+#define N_ROWS 21 /* len(key.FEATURES) */
+#define MAX_VOICES 64 /* more voices: the numpy code runs */
 #define N_KEYS 24
 #define N_SETS 4096
 
@@ -150,25 +151,26 @@ static int viterbi(const int64_t *sets, Py_ssize_t n, const double *table, doubl
 }
 
 const char accel_key_features_doc[] = PyDoc_STR(
-"key_features(notes, ticks_per_beat, final_beats, window_ticks, table, switch_cost)\n"
-"    -> (bytearray, bytearray, bytearray, bytearray) | None\n\n"
-"The learned key method's 19 x 12 sums of a NOTE_DTYPE table (float64, key.key_features before\n"
+"key_features(notes, ticks_per_beat, final_beats, window_ticks, table, switch_cost,\n"
+"             melody_min_share) -> (bytearray, bytearray, bytearray, bytearray) | None\n\n"
+"The learned key method's 21 x 12 sums of a NOTE_DTYPE table (float64, key.key_features before\n"
 "each row is divided by its total) and the windowed key path (modulation.windowed_path at\n"
 "segments of window_ticks ticks, ``table`` its (4096, 24) float64 log-probabilities):\n"
 "segment numbers, sets and key path (int64 each). None where the numpy code takes a general\n"
 "path (no pitched note, notes out of time order or an onset out of pitch order, ticks outside\n"
-"0..2**53).");
+"0..2**53, more than 64 voices).");
 
 PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t nargs) {
     (void)self;
-    if (nargs != 6) {
-        PyErr_SetString(PyExc_TypeError, "key_features takes 6 arguments");
+    if (nargs != 7) {
+        PyErr_SetString(PyExc_TypeError, "key_features takes 7 arguments");
         return NULL;
     }
     int64_t tpb = PyLong_AsLongLong(args[1]);
     double final_beats = PyFloat_AsDouble(args[2]);
     int64_t window = PyLong_AsLongLong(args[3]);
     double cost = PyFloat_AsDouble(args[5]);
+    double min_share = PyFloat_AsDouble(args[6]);
     if (PyErr_Occurred()) return NULL;
     if (tpb <= 0 || window <= 0) Py_RETURN_NONE;
     if (!triads_ready) fill_triads();
@@ -196,7 +198,8 @@ PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t n
     Py_ssize_t *after = (Py_ssize_t *)PyMem_Malloc((size_t)n * sizeof(Py_ssize_t));
     int64_t *counts = (int64_t *)PyMem_Malloc((size_t)(n + 1) * 12 * sizeof(int64_t));
     int64_t *bsets = (int64_t *)PyMem_Malloc((size_t)n * sizeof(int64_t));
-    if (!s || !e || !pc || !v || !ranks || !first || !after || !counts || !bsets) {
+    unsigned char *vi = (unsigned char *)PyMem_Malloc((size_t)n); /* each note's voice slot */
+    if (!s || !e || !pc || !v || !ranks || !first || !after || !counts || !bsets || !vi) {
         PyErr_NoMemory();
         goto done;
     }
@@ -204,12 +207,30 @@ PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t n
     const int64_t LIM = (int64_t)1 << 53;
     Py_ssize_t m = 0;
     int prev_pitch = 0;
+    /* the voices (track * 16 + channel), their note counts and pitch sums in note order */
+    int64_t voice_id[MAX_VOICES], voice_n[MAX_VOICES];
+    double voice_sum[MAX_VOICES];
+    int n_voices = 0;
     for (Py_ssize_t i = 0; i < t.n; i++) {
-        if (f_i16(&t, i, O_CHANNEL) == DRUM) continue;
+        int ch = f_i16(&t, i, O_CHANNEL);
+        if (ch == DRUM) continue;
         int64_t si = f_i64(&t, i, O_START), ei = f_i64(&t, i, O_END);
         int p = f_i16(&t, i, O_PITCH);
         if (si < 0 || si > LIM || ei < 0 || ei > LIM) goto none;
         if (m && (si < s[m - 1] || (si == s[m - 1] && p < prev_pitch))) goto none;
+        int64_t id = (int64_t)f_i16(&t, i, O_TRACK) * 16 + ch;
+        int k = 0;
+        while (k < n_voices && voice_id[k] != id) k++;
+        if (k == n_voices) {
+            if (n_voices == MAX_VOICES) goto none;
+            voice_id[k] = id;
+            voice_n[k] = 0;
+            voice_sum[k] = 0.0;
+            n_voices++;
+        }
+        voice_n[k]++;
+        voice_sum[k] += (double)p;
+        vi[m] = (unsigned char)k;
         s[m] = si;
         e[m] = ei;
         pc[m] = pclass(p);
@@ -217,6 +238,18 @@ PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t n
         m++;
     }
     if (m == 0) goto none;
+    /* the melody voice (key.melody_voice): the highest mean pitch among the voices holding at
+     * least min_share of the notes, the lowest voice number on a tie or when none does */
+    int melody = 0;
+    double best_mean = 0.0;
+    for (int k = 0; k < n_voices; k++) {
+        double mean = (double)voice_n[k] < min_share * (double)m
+                          ? -INFINITY : voice_sum[k] / (double)voice_n[k];
+        if (k == 0 || mean > best_mean || (mean == best_mean && voice_id[k] < voice_id[melody])) {
+            melody = k;
+            best_mean = mean;
+        }
+    }
     feat = PyByteArray_FromStringAndSize(NULL, N_ROWS * 12 * sizeof(double));
     if (!feat) goto done;
     double (*f)[12] = (double (*)[12])PyByteArray_AS_STRING(feat);
@@ -237,6 +270,7 @@ PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t n
         if (i == m - 1 || s[i + 1] != s[i]) f[3][c] += dur; /* its highest */
         if ((double)e[i] > final_from) f[4][c] += dur;
         if (s[i] == v[i] * tpb) f[5][c] += dur; /* on a beat */
+        if (vi[i] == melody) f[19][c] += dur;
     }
     /* rows 6-8: lowest note of the first onset, lowest and highest of the last */
     Py_ssize_t last_onset = m - 1;
@@ -244,6 +278,10 @@ PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t n
     f[6][pc[0]] = 1.0;
     f[7][pc[last_onset]] = 1.0;
     f[8][pc[m - 1]] = 1.0;
+    /* row 20: the melody's last note (its last onset's highest: its last row here) */
+    Py_ssize_t last_melody = m - 1;
+    while (vi[last_melody] != melody) last_melody--;
+    f[20][pc[last_melody]] = 1.0;
     /* rows 9-16: triads of the beats where a note starts, first and last ones, cadences */
     int64_t prev_triads = -1;
     for (Py_ssize_t r = 0; r < nb; r++) {
@@ -291,6 +329,7 @@ done:
     PyMem_Free(after);
     PyMem_Free(counts);
     PyMem_Free(bsets);
+    PyMem_Free(vi);
     accel_notes_release(&t);
     PyBuffer_Release(&tb);
     return out;
