@@ -15,12 +15,14 @@ change the histogram, so the correlation step stays one (24 x 12) matrix product
 The default method, ``learned``, is a small multinomial logistic regression over 24 keys
 (trained with numpy by ``python -m pipeline.tools.train_key``, weights shipped in
 ``key_weights.json`` with the sets they were trained on). Its per-key evidence is
-transposition-invariant: seven pitch-class distributions of the piece (duration, bass, final
-bars, onsets, on-beat notes, first and last bass note) read from the candidate tonic, plus the
+transposition-invariant: the pitch-class distributions of ``FEATURES`` (duration, bass, final
+bars, onsets, on-beat notes, first and last bass note, triads and cadences, the windowed key
+path, the melody voice and its last note) read from the candidate tonic, plus the
 Krumhansl-Schmuckler correlations of the duration and bass distributions with the five published
 profiles. The distributions and the windowed path are summed in one pass by the compiled
-extension where it is built (``features_and_path``; the numpy code is the specification). Its confidence is the model's probability of the chosen key (0..1), calibrated by
-training across four genres (see README, Key detection).
+extension where it is built (``features_and_path``; the numpy code is the specification). Its
+confidence is the model's probability of the chosen key (0..1), calibrated by training across
+four genres (see README, Key detection).
 
 Tonic spelling rule: the spelling whose key signature has the fewest accidentals; the tie at
 six accidentals goes to F# major and Eb minor (music21's ``KeyWeightKeyAnalysis`` makes the same
