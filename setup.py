@@ -15,7 +15,8 @@ _NO_CONTRACT = [] if sys.platform == "win32" else ["-ffp-contract=off"]
 # share is declared in accel.h, listed in ``depends`` so that a change to it rebuilds every unit
 # and the sdist and the wheel carry it with the units.
 _SRC = "pipeline/midi/csrc/"
-_UNITS = ["module.c", "common.c", "decode.c", "encode.c", "analyses.c", "shingles.c", "similarity.c"]
+_UNITS = ["module.c", "common.c", "decode.c", "encode.c", "analyses.c", "shingles.c", "similarity.c",
+          "keyfeat.c"]
 
 setup(ext_modules=[Extension("pipeline.midi._smf_accel", [_SRC + unit for unit in _UNITS], optional=True,
                              depends=[_SRC + "accel.h"], extra_compile_args=_NO_CONTRACT)])

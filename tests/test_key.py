@@ -227,6 +227,41 @@ def test_key_features_worked_example():
     assert np.allclose(f["last_major_triad"], dist(G=1))
 
 
+def test_melody_voice_worked_example():
+    # invented fixture, worked by hand. Voices are (track, channel) pairs, the usual split of a
+    # MIDI file into instruments (common practice). Track 1: a tune in the top register
+    # (D5 E5 ... ending on C5); track 2: a chord on every beat below it; track 3: two very high
+    # notes, higher on average than the tune but 2 of 26 notes (under a tenth): not the melody.
+    tune = [(i * 480, (i + 1) * 480, p) for i, p in enumerate((74, 76, 77, 74, 71, 72))]
+    chords = [(i * 480, (i + 1) * 480, p) for i in range(6) for p in (48, 55, 64)]
+    rows = [r + (1, 0) for r in tune] + [r + (2, 1) for r in chords] + \
+        [(0, 480, 96, 3, 2), (960, 1440, 98, 3, 2)]
+    notes = empty_notes(len(rows))
+    for i, (start, end, pitch, track, channel) in enumerate(rows):
+        notes[i]["start"], notes[i]["end"], notes[i]["pitch"] = start, end, pitch
+        notes[i]["track"], notes[i]["channel"] = track, channel
+    notes = sort_notes(notes)
+    voice = notes["track"].astype(np.int64) * 16 + notes["channel"]
+    melody = keymod.melody_voice(voice, notes["pitch"].astype(np.int64))
+    assert (notes["track"][melody] == 1).all() and melody.sum() == 6
+    piece = Piece(notes=notes, ticks_per_beat=480, tempos=np.array([(0, 500_000)], dtype=TEMPO_DTYPE),
+                  time_signatures=np.zeros(0, dtype=METER_DTYPE),
+                  key_signatures=np.zeros(0, dtype=KEY_DTYPE))
+    f = dict(zip(keymod.FEATURES, keymod.key_features(piece)))
+    one = np.zeros(12)
+    one[0] = 1.0  # the tune ends on C
+    assert np.allclose(f["melody_last"], one)
+    want = np.zeros(12)
+    for name, beats in (("D", 2), ("E", 1), ("F", 1), ("B", 1), ("C", 1)):
+        want[keymod.note_name_to_pc(name)] = beats
+    assert np.allclose(f["melody"], want / want.sum())
+    # with the high voice holding a tenth of the notes or more it is the melody
+    assert keymod.melody_voice(voice, notes["pitch"].astype(np.int64))[notes["track"] == 3].sum() == 0
+    dense = np.concatenate([voice, np.full(3, 3 * 16 + 2)])
+    pitches = np.concatenate([notes["pitch"].astype(np.int64), np.full(3, 97)])
+    assert (dense[keymod.melody_voice(dense, pitches)] == 3 * 16 + 2).all()
+
+
 def test_learned_is_transposition_invariant(works):
     # key finding commutes with transposition (common practice): shifting a piece by k
     # semitones rotates its 24 key probabilities by k within each mode

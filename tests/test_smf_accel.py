@@ -577,6 +577,62 @@ def test_compiled_key_histogram(monkeypatch, analysis_pieces, weights):
     _both_paths(monkeypatch, analysis_pieces[:40], keymod.estimate_key)
 
 
+def test_compiled_key_features_and_path(monkeypatch, analysis_pieces):
+    # key_features (keyfeat.c: the learned key method's sums and the windowed key path in one
+    # pass) against key._feature_sums and modulation.windowed_path: the same features, segment
+    # numbers, sets and Viterbi path; then what key_meter derives from them (the estimate with
+    # its probabilities, the modulation flag). Random decoded pieces with the variants that
+    # take the general paths, and real-shaped ones: Bach chorales of music21's corpus.
+    from pipeline.analysis import key as keymod
+    from pipeline.analysis import modulation
+    from music21_fixtures import chorales, decode
+    pieces = analysis_pieces + [decode(w["midi"]) for w in chorales(100)[:20]]
+    rep = dataclasses.replace
+    pieces += [rep(p, ticks_per_beat=tpb) for p in pieces[-3:] for tpb in (97, 1, 7)]
+
+    def key_and_flag(p):
+        est = keymod.estimate_key(p)
+        regions = modulation.key_regions(p, est.tonic_pc + 12 * (est.mode == "minor"),
+                                         windowed=est.windowed)
+        return est, est.windowed, regions
+    _both_paths(monkeypatch, pieces, keymod.features_and_path)
+    _both_paths(monkeypatch, pieces, key_and_flag)
+    # the compiled path ran on the ordered pieces (not only the fallback)
+    ran = [p for p in pieces if p.notes.flags.c_contiguous and accel.module.key_features(
+        p.notes, p.ticks_per_beat, keymod.FINAL_BEATS, 8 * p.ticks_per_beat,
+        modulation._TABLE, modulation.SWITCH_COST, keymod.MELODY_MIN_SHARE) is not None]
+    assert len(ran) > len(pieces) // 2
+
+
+def test_compiled_key_features_hand_back_the_general_cases():
+    from pipeline.analysis import modulation
+    p = smf.decode(random_midi(3, n_notes=300, n_tracks=3))
+    mod, table = accel.module, modulation._TABLE
+
+    def call(notes, tpb=480):
+        return mod.key_features(notes, tpb, 4.0, 8 * tpb, table, 12.0, 0.1)
+    assert call(p.notes) is not None
+    shuffled = p.notes[np.random.default_rng(1).permutation(len(p.notes))]
+    assert call(shuffled) is None  # out of time order: numpy's general path
+    chord = p.notes.copy()
+    chord["start"] = 0
+    assert call(chord) is None  # one onset out of pitch order
+    far = p.notes.copy()
+    far["end"][5] = 2 ** 54  # beyond float64's exact integers
+    assert call(far) is None
+    drums = p.notes.copy()
+    drums["channel"] = 9
+    assert call(drums) is None  # no pitched note
+    voices = p.notes.copy()
+    voices["track"] = np.arange(len(voices)) % 65  # more voices than the compiled code keeps
+    voices["channel"] = 0
+    assert call(voices) is None
+    voices["track"] = np.arange(len(voices)) % 64
+    assert call(voices) is not None
+    with pytest.raises(ValueError):
+        mod.key_features(p.notes, 480, 4.0, 3840, table[:10], 12.0, 0.1)
+
+
 def test_compiled_meter(monkeypatch, analysis_pieces):
     from pipeline.analysis import meter as metermod
     _both_paths(monkeypatch, analysis_pieces, metermod.accent_function)

@@ -15,11 +15,14 @@ change the histogram, so the correlation step stays one (24 x 12) matrix product
 The default method, ``learned``, is a small multinomial logistic regression over 24 keys
 (trained with numpy by ``python -m pipeline.tools.train_key``, weights shipped in
 ``key_weights.json`` with the sets they were trained on). Its per-key evidence is
-transposition-invariant: seven pitch-class distributions of the piece (duration, bass, final
-bars, onsets, on-beat notes, first and last bass note) read from the candidate tonic, plus the
+transposition-invariant: the pitch-class distributions of ``FEATURES`` (duration, bass, final
+bars, onsets, on-beat notes, first and last bass note, triads and cadences, the windowed key
+path, the melody voice and its last note) read from the candidate tonic, plus the
 Krumhansl-Schmuckler correlations of the duration and bass distributions with the five published
-profiles. Its confidence is the model's probability of the chosen key (0..1), calibrated by
-training across four genres (see README, Key detection).
+profiles. The distributions and the windowed path are summed in one pass by the compiled
+extension where it is built (``features_and_path``; the numpy code is the specification). Its
+confidence is the model's probability of the chosen key (0..1), calibrated by training across
+four genres (see README, Key detection).
 
 Tonic spelling rule: the spelling whose key signature has the fewest accidentals; the tie at
 six accidentals goes to F# major and Eb minor (music21's ``KeyWeightKeyAnalysis`` makes the same
@@ -39,7 +42,8 @@ from ..midi.piece import DRUM_CHANNEL, Piece, distinct
 from .key_profiles import (LEARNED, MAJOR_BY_SHARPS, MAJOR_TONIC_NAMES, MINOR_BY_SHARPS,  # noqa: F401
                            MINOR_TONIC_NAMES, MODES, PROFILES, key_name, note_name_to_pc,
                            resolve_profile)
-from .modulation import windowed_path
+from .modulation import _TABLE as _PRESENCE_TABLE
+from .modulation import SWITCH_COST, WINDOW_BEATS, windowed_path
 
 #: The default method, chosen by leave-one-genre-out cross-validation over four sets (README,
 #: Key detection; ``python -m pipeline.tools.evaluate_key``).
@@ -237,11 +241,17 @@ def parse_key(text: str) -> tuple[int, str]:
 #:   often a major / minor triad on it follows a major triad on its fifth (V-I, common practice)
 #:   from one beat with a triad to the next;
 #: - ``path_major`` / ``path_minor``: per tonic, the share of the 8-beat segments the
-#:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it.
+#:   windowed key path (``modulation.windowed_path``) assigns to the major / minor key on it;
+#: - ``melody``: duration of the notes of the melody voice (``melody_voice``);
+#:   ``melody_last``: one-hot pitch class of its last note (the highest of its last onset).
 FEATURES = ("duration", "onsets", "bass", "top", "final", "on_beat", "first_bass", "last_bass",
             "last_top", "major_triads", "minor_triads", "first_major_triad", "first_minor_triad",
             "last_major_triad", "last_minor_triad", "cadence_major", "cadence_minor",
-            "path_major", "path_minor")
+            "path_major", "path_minor", "melody", "melody_last")
+#: The melody voice is the voice (track and channel) of the highest mean pitch among those
+#: holding at least this share of the pitched notes (the skyline-by-voice guess of common
+#: practice; 0.1 chosen against 0, README, Key detection).
+MELODY_MIN_SHARE = 0.1
 #: Published profiles whose correlations (of the duration and of the bass distribution) with
 #: each candidate key are features too, in this order.
 CORRELATION_PROFILES = tuple(sorted(PROFILES))
@@ -290,6 +300,39 @@ def _onset_extremes(start: np.ndarray, pitch: np.ndarray) -> tuple[np.ndarray, n
 def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -> np.ndarray:
     """(len(FEATURES), 12) distributions of the pitched notes (see FEATURES). ``windowed``:
     ``modulation.windowed_path(piece)`` when already computed."""
+    if windowed is None:
+        return features_and_path(piece)[0]
+    return _normalized(_feature_sums(piece, windowed))
+
+
+def features_and_path(piece: Piece) -> tuple[np.ndarray, tuple[np.ndarray, ...]]:
+    """(``key_features(piece)``, ``modulation.windowed_path(piece)``): from the compiled
+    module in one pass over the notes where it runs (the same values to the last bit,
+    tests/test_smf_accel.py), else from the numpy code, which stays the specification."""
+    notes = piece.notes
+    accel = compiled_analyses(notes)
+    window = WINDOW_BEATS * piece.ticks_per_beat
+    if accel is not None and window == int(window):
+        got = accel.key_features(notes, int(piece.ticks_per_beat), FINAL_BEATS, int(window),
+                                 _PRESENCE_TABLE, SWITCH_COST, MELODY_MIN_SHARE)
+        if got is not None:
+            sums, numbers, sets, path = (np.frombuffer(b, dtype=d) for b, d in
+                                         zip(got, (np.float64, np.int64, np.int64, np.int64)))
+            return _normalized(sums.reshape(len(FEATURES), 12)), (numbers, sets, path)
+    windowed = windowed_path(piece)
+    return _normalized(_feature_sums(piece, windowed)), windowed
+
+
+def _normalized(out: np.ndarray) -> np.ndarray:
+    """Each row of the feature sums divided by its total (rows without events stay zero)."""
+    total = out.sum(axis=1, keepdims=True)
+    np.divide(out, total, out=out, where=total > 0)
+    return out
+
+
+def _feature_sums(piece: Piece, windowed: tuple[np.ndarray, ...]) -> np.ndarray:
+    """``key_features`` before each row is divided by its total: durations in beats and
+    counts."""
     notes = piece.notes
     keep = notes["channel"] != DRUM_CHANNEL
     if keep.all():
@@ -340,12 +383,25 @@ def key_features(piece: Piece, windowed: tuple[np.ndarray, ...] | None = None) -
         before, after = triads[chord_beats[:-1]], triads[chord_beats[1:]]
         dominant = before[:, _FIFTH_ABOVE]  # column r: a major triad on r + 7 before
         out[15:17] = (after.reshape(-1, 2, 12) * dominant[:, None, :]).sum(axis=0)
-    if windowed is None:
-        windowed = windowed_path(piece)
     out[17:19] = np.bincount(windowed[2], minlength=24).reshape(2, 12)
-    total = out.sum(axis=1, keepdims=True)
-    np.divide(out, total, out=out, where=total > 0)
+    track = notes["track"] if keep.all() else notes["track"][keep]
+    channel = notes["channel"] if keep.all() else notes["channel"][keep]
+    melody = melody_voice(track.astype(np.int64) * 16 + channel, pitch)
+    out[19] = np.bincount(pc[melody], weights=dur[melody], minlength=12)
+    last = melody & (start == start[melody].max())
+    out[20, pitch[last].max() % 12] = 1.0
     return out
+
+
+def melody_voice(voice: np.ndarray, pitch: np.ndarray) -> np.ndarray:
+    """Mask of the notes of the melody voice: of the voices (``voice``: one number per voice,
+    here track * 16 + channel) holding at least MELODY_MIN_SHARE of the notes, the one of the
+    highest mean pitch (the lowest voice number on a tie; the lowest voice number when none
+    holds that share)."""
+    voices, index, count = np.unique(voice, return_inverse=True, return_counts=True)
+    mean = np.bincount(index, weights=pitch) / count
+    mean[count < MELODY_MIN_SHARE * len(pitch)] = -np.inf
+    return index == int(np.argmax(mean))
 
 
 def class_features(features: np.ndarray) -> np.ndarray:
@@ -415,8 +471,7 @@ def estimate_from_probabilities(probs: np.ndarray) -> KeyEstimate:
 def estimate_key_learned(piece: Piece, weights: np.ndarray | None = None) -> KeyEstimate:
     """Key of a piece by the trained classifier. An empty piece gives C major with
     confidence 1/24 (no evidence either way)."""
-    windowed = windowed_path(piece)
-    feats = key_features(piece, windowed)
+    feats, windowed = features_and_path(piece)
     if not feats.any():
         return replace(estimate_from_probabilities(np.full(24, 1.0 / 24)), windowed=windowed)
     return replace(estimate_from_probabilities(key_probabilities(feats, weights)), windowed=windowed)

@@ -65,8 +65,8 @@ def _sums_follow_numpy(mod: Any) -> bool:
     return False
 
 
-#: The compiled analyses the modules above call (pipeline/midi/csrc/analyses.c, shingles.c and,
-#: for table_group_events, encode.c).
+#: The compiled analyses the modules above call (pipeline/midi/csrc/analyses.c, shingles.c,
+#: keyfeat.c and, for table_group_events, encode.c).
 _ANALYSES = ("pc_histogram", "meter_accents", "grid_count", "note_stats", "voice_shingles",
-             "content_rows", "shift_sort", "fold_count", "table_group_events")
+             "content_rows", "shift_sort", "fold_count", "table_group_events", "key_features")
 _CHECKED: list = [None, False]  # (the module last checked, whether it has them all)

@@ -101,7 +101,7 @@ class KeyMeter(Stage):
 
     name = "key_meter"
     kind = "file"
-    version = 4
+    version = 5
     options = KEY_OPTIONS + (
         Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
                "The declared meter is replaced by the estimate when the estimate gives the "

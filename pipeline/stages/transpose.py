@@ -81,7 +81,7 @@ class Transpose(Stage):
 
     name = "transpose"
     kind = "file"
-    version = 3
+    version = 4
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),

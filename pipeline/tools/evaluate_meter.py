@@ -1,6 +1,7 @@
 """Reproduce the meter-estimation figures of the README across genres.
 
     python -m pipeline.tools.evaluate_meter [--pop FOLDER] [--sets ...] [--speed]
+    python -m pipeline.tools.evaluate_meter --speed-base CHECKOUT [--rounds 6]  # side by side
     python -m pipeline.tools.evaluate_meter --train --pop FOLDER   # refit meter_weights.py
 
 Sets (truth = the meter the score notates; the estimate never sees it: pieces are built
@@ -142,11 +143,9 @@ def key_flag_table(works: list[dict[str, Any]]) -> dict[str, int]:
 
 
 
-def speed_500(repeats: int = 20) -> tuple[float, float]:
-    """Milliseconds of ``estimate_meter`` and of ``key.estimate_key`` with the modulation flag
-    (``modulation.key_regions``, as key_meter runs them) per 500-note piece (best
-    of three passes, process CPU time, so other jobs on the machine count less): held-out folk
-    tunes and chorales concatenated and cut into 500-note pieces."""
+def pieces_500() -> list[Piece]:
+    """500-note pieces: held-out folk tunes and chorales concatenated and cut every 500
+    notes (53 pieces)."""
     works = folk("held")[:200] + chorales("held", 40)
     pieces, t_off = [], 0
     chunk = []
@@ -158,23 +157,64 @@ def speed_500(repeats: int = 20) -> tuple[float, float]:
             t0 = min(s for s, _, _, _ in chunk[:500])
             pieces.append(piece_from_notes([(s - t0, e - t0, p, q) for s, e, p, q in chunk[:500]]))
             chunk = chunk[500:]
-    from ..analysis.modulation import key_regions
+    return pieces
+
+
+def time_key_meter(package: str, pieces: list[Piece], repeats: int) -> tuple[float, float]:
+    """One timed pass (process CPU time, ms per piece) of ``estimate_meter`` and of the key
+    estimate with the modulation flag (``key.estimate_key`` then ``modulation.key_regions``,
+    as key_meter runs them), with the analysis modules of ``package`` (``pipeline``, or
+    another checkout's copy, see ``speed_side_by_side``)."""
+    import importlib
+    meter = importlib.import_module(f"{package}.analysis.meter")
+    key = importlib.import_module(f"{package}.analysis.key")
+    modulation = importlib.import_module(f"{package}.analysis.modulation")
 
     def key_and_modulation(piece: Piece) -> None:  # what key_meter computes for the key
-        est = keymod.estimate_key(piece)
-        key_regions(piece, est.tonic_pc + (12 if est.mode == "minor" else 0), windowed=est.windowed)
+        est = key.estimate_key(piece)
+        modulation.key_regions(piece, est.tonic_pc + (12 if est.mode == "minor" else 0),
+                               windowed=est.windowed)
     times = []
-    for fn in (metermod.estimate_meter, key_and_modulation):
-        best = None
-        for _ in range(3):  # best of three passes of process CPU time: the machine is shared
-            t0 = time.process_time()
-            for _ in range(repeats):
-                for p in pieces:
-                    fn(p)
-            dt = (time.process_time() - t0) / (repeats * len(pieces)) * 1e3
-            best = dt if best is None else min(best, dt)
-        times.append(best)
+    for fn in (meter.estimate_meter, key_and_modulation):
+        t0 = time.process_time()
+        for _ in range(repeats):
+            for p in pieces:
+                fn(p)
+        times.append((time.process_time() - t0) / (repeats * len(pieces)) * 1e3)
     return times[0], times[1]
+
+
+def speed_500(repeats: int = 20) -> tuple[float, float]:
+    """Milliseconds of ``estimate_meter`` and of the key estimate with the modulation flag
+    per 500-note piece (``pieces_500``): the best of three passes of process CPU time, so
+    other jobs on the machine count less."""
+    pieces = pieces_500()
+    passes = [time_key_meter("pipeline", pieces, repeats) for _ in range(3)]
+    return min(m for m, _ in passes), min(k for _, k in passes)
+
+
+def speed_side_by_side(base: str, rounds: int = 6, repeats: int = 10) -> dict[str, list]:
+    """``time_key_meter`` of this tree and of the checkout ``base`` (its extension built in
+    place), in alternating rounds in one process so both see the same load: {"base": [(meter
+    ms, key ms) per round], "this": [...]}. The base's ``pipeline`` is copied to a temporary
+    folder as ``pipeline_base`` so both import at once."""
+    import shutil
+    import sys
+    import tempfile
+    tmp = Path(tempfile.mkdtemp(prefix="key_meter_base_"))
+    try:
+        shutil.copytree(Path(base) / "pipeline", tmp / "pipeline_base")
+        sys.path.insert(0, str(tmp))
+        pieces = pieces_500()
+        out: dict[str, list] = {"base": [], "this": []}
+        for r in range(rounds):
+            order = ("base", "this") if r % 2 == 0 else ("this", "base")
+            for name in order:
+                package = "pipeline_base" if name == "base" else "pipeline"
+                out[name].append(time_key_meter(package, pieces, repeats))
+        return out
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -331,9 +371,22 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--pop", help="folder of the pop dev set (with labels.json)")
     ap.add_argument("--sets", nargs="*", default=list(ALL_SETS))
     ap.add_argument("--speed", action="store_true", help="also time a 500-note piece")
+    ap.add_argument("--speed-base", metavar="CHECKOUT",
+                    help="time a 500-note piece with this tree and with another checkout (its "
+                         "extension built in place) in alternating rounds, and stop")
+    ap.add_argument("--rounds", type=int, default=6, help="rounds of --speed-base (default 6)")
     ap.add_argument("--train", action="store_true",
                     help="retrain the classifier on the development sets and write meter_weights.py")
     args = ap.parse_args(argv)
+    if args.speed_base:
+        runs = speed_side_by_side(args.speed_base, args.rounds)
+        print(f"ms per 500-note piece (process CPU time), {args.rounds} alternating rounds, "
+              f"min-max: meter / key with the modulation flag / together")
+        for name, label in (("base", args.speed_base), ("this", "this tree")):
+            cols = [[r[0] for r in runs[name]], [r[1] for r in runs[name]],
+                    [r[0] + r[1] for r in runs[name]]]
+            print(f"{label}: " + " / ".join(f"{min(c):.3f}-{max(c):.3f}" for c in cols))
+        return
     if args.train:
         if not args.pop:
             ap.error("--train needs --pop (the pop development part is one of the genres)")

@@ -8,6 +8,7 @@
  *                 (add_reduce, set_reduce_chunk)
  *   shingles.c    voice_shingles and content_rows
  *   similarity.c  minhash32, overlap_counts and band_pair_codes
+ *   keyfeat.c     key_features (the learned key method's sums and the windowed key path)
  *   common.c      the stable row sort and the note-table view used by several units
  *   module.c      the method table and PyInit__smf_accel
  *
@@ -181,5 +182,8 @@ extern const char accel_minhash32_doc[], accel_overlap_counts_doc[], accel_band_
 PyObject *accel_minhash32(PyObject *self, PyObject *const *args, Py_ssize_t nargs);
 PyObject *accel_overlap_counts(PyObject *self, PyObject *const *args, Py_ssize_t nargs);
 PyObject *accel_band_pair_codes(PyObject *self, PyObject *const *args, Py_ssize_t nargs);
+/* keyfeat.c */
+extern const char accel_key_features_doc[];
+PyObject *accel_key_features(PyObject *self, PyObject *const *args, Py_ssize_t nargs);
 
 #endif /* MIDISIFT_SMF_ACCEL_H */

@@ -35,6 +35,8 @@ static PyMethodDef methods[] = {
      accel_overlap_counts_doc},
     {"table_group_events", (PyCFunction)(void (*)(void))accel_table_group_events, METH_FASTCALL,
      accel_table_group_events_doc},
+    {"key_features", (PyCFunction)(void (*)(void))accel_key_features, METH_FASTCALL,
+     accel_key_features_doc},
     {NULL, NULL, 0, NULL},
 };
 
