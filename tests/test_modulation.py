@@ -95,12 +95,12 @@ def test_presence_probabilities_are_temperley_kostka_payne():
     major, minor = keymod.PROFILES["temperley_kostka_payne"]
     c_e_g = (1 << 0) | (1 << 4) | (1 << 7)
     want = sum(np.log(p) if pc in (0, 4, 7) else np.log(1 - p) for pc, p in enumerate(major))
-    assert modulation._TABLE[c_e_g, _index("C major")] == pytest.approx(want)
+    assert modulation.PRESENCE_TABLE[c_e_g, _index("C major")] == pytest.approx(want)
     # the same set read in A minor: tonic A (pc 9), C is the minor third, E the fifth
     want = sum(np.log(minor[(pc - 9) % 12]) if pc in (0, 4, 9) else np.log(1 - minor[(pc - 9) % 12])
                for pc in range(12))
     a_c_e = (1 << 9) | (1 << 0) | (1 << 4)
-    assert modulation._TABLE[a_c_e, _index("A minor")] == pytest.approx(want)
+    assert modulation.PRESENCE_TABLE[a_c_e, _index("A minor")] == pytest.approx(want)
 
 
 def _viterbi_reference(emit: np.ndarray, switch_cost: float) -> float:
@@ -119,7 +119,7 @@ def test_key_path_is_the_best_path():
         sets = rng.integers(0, 4096, size=int(rng.integers(1, 30)))
         cost = float(rng.choice([0.5, 4.0, 20.0]))
         path = modulation.key_path(sets, cost)
-        emit = modulation._TABLE[sets]
+        emit = modulation.PRESENCE_TABLE[sets]
         emit[sets == 0] = 0.0
         got = emit[np.arange(len(sets)), path].sum() - cost * np.count_nonzero(np.diff(path))
         assert got == pytest.approx(_viterbi_reference(emit, cost))

@@ -600,14 +600,14 @@ def test_compiled_key_features_and_path(monkeypatch, analysis_pieces):
     # the compiled path ran on the ordered pieces (not only the fallback)
     ran = [p for p in pieces if p.notes.flags.c_contiguous and accel.module.key_features(
         p.notes, p.ticks_per_beat, keymod.FINAL_BEATS, 8 * p.ticks_per_beat,
-        modulation._TABLE, modulation.SWITCH_COST, keymod.MELODY_MIN_SHARE) is not None]
+        modulation.PRESENCE_TABLE, modulation.SWITCH_COST, keymod.MELODY_MIN_SHARE) is not None]
     assert len(ran) > len(pieces) // 2
 
 
 def test_compiled_key_features_hand_back_the_general_cases():
     from pipeline.analysis import modulation
     p = smf.decode(random_midi(3, n_notes=300, n_tracks=3))
-    mod, table = accel.module, modulation._TABLE
+    mod, table = accel.module, modulation.PRESENCE_TABLE
 
     def call(notes, tpb=480):
         return mod.key_features(notes, tpb, 4.0, 8 * tpb, table, 12.0, 0.1)

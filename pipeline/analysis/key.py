@@ -42,8 +42,7 @@ from ..midi.piece import DRUM_CHANNEL, Piece, distinct
 from .key_profiles import (LEARNED, MAJOR_BY_SHARPS, MAJOR_TONIC_NAMES, MINOR_BY_SHARPS,  # noqa: F401
                            MINOR_TONIC_NAMES, MODES, PROFILES, key_name, note_name_to_pc,
                            resolve_profile)
-from .modulation import _TABLE as _PRESENCE_TABLE
-from .modulation import SWITCH_COST, WINDOW_BEATS, windowed_path
+from .modulation import PRESENCE_TABLE, SWITCH_COST, WINDOW_BEATS, windowed_path
 
 #: The default method, chosen by leave-one-genre-out cross-validation over four sets (README,
 #: Key detection; ``python -m pipeline.tools.evaluate_key``).
@@ -314,7 +313,7 @@ def features_and_path(piece: Piece) -> tuple[np.ndarray, tuple[np.ndarray, ...]]
     window = WINDOW_BEATS * piece.ticks_per_beat
     if accel is not None and window == int(window):
         got = accel.key_features(notes, int(piece.ticks_per_beat), FINAL_BEATS, int(window),
-                                 _PRESENCE_TABLE, SWITCH_COST, MELODY_MIN_SHARE)
+                                 PRESENCE_TABLE, SWITCH_COST, MELODY_MIN_SHARE)
         if got is not None:
             sums, numbers, sets, path = (np.frombuffer(b, dtype=d) for b, d in
                                          zip(got, (np.float64, np.int64, np.int64, np.int64)))

@@ -47,7 +47,8 @@ def _presence_table() -> np.ndarray:
     return present @ np.log(prob).T + (1 - present) @ np.log(1 - prob).T
 
 
-_TABLE = _presence_table()
+#: (4096, 24) log-probability of each set of present pitch classes (bit i: pc i) in each key
+PRESENCE_TABLE = _presence_table()
 _BITS = 1 << np.arange(12, dtype=np.int64)
 
 
@@ -117,7 +118,7 @@ def key_path(sets: np.ndarray, switch_cost: float = SWITCH_COST) -> np.ndarray:
     n = len(sets)
     if n == 0:
         return np.zeros(0, dtype=np.int64)
-    emit = _TABLE[sets]
+    emit = PRESENCE_TABLE[sets]
     emit[sets == 0] = 0.0
     # a key change costs the same from any key, so each step needs only the best previous
     # key (``leader``) and, per key, whether staying beat switching from the leader
