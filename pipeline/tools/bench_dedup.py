@@ -282,8 +282,10 @@ def main(argv: list[str] | None = None) -> int:
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
         if a.lead_order:
             from .lead_order import MEASURES, real_lead_order
-            weak = real_lead_order(recs, below=a.weak_below or 0.4)
-            print(f"same-melody pairs of one song on the leads below {a.weak_below or 0.4}: {len(weak)}")
+            counts: dict[str, int] = {}
+            weak = real_lead_order(recs, below=a.weak_below or 0.4, counts=counts)
+            print(f"same-melody pairs of one song: {counts.get('pairs', 0)}, resting on the leads "
+                  f"{counts.get('on_leads', 0)}, of those below {a.weak_below or 0.4}: {len(weak)}")
             for p in weak:
                 print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
                       + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
@@ -302,8 +304,11 @@ def main(argv: list[str] | None = None) -> int:
                 folder = Path(a.work or tmp) / f"corpus_{n}_seed{a.seed}"
                 if not _same_corpus(folder, n, a.seed):
                     generate(folder, n, seed=a.seed)
-                weak = weak_lead_pairs(load_corpus(folder)[0], lambda r: r["truth"].get("cluster"), below)
-                print(f"{n} files: planted pairs on the leads below {below}: {len(weak)}")
+                counts: dict[str, int] = {}
+                weak = weak_lead_pairs(load_corpus(folder)[0], lambda r: r["truth"].get("cluster"),
+                                       below, counts=counts)
+                print(f"{n} files: planted pairs {counts.get('pairs', 0)}, resting on the leads "
+                      f"{counts.get('on_leads', 0)}, of those below {below}: {len(weak)}")
                 for p in weak:
                     print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
                           + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))

@@ -213,21 +213,24 @@ def chorale_lead_order(works: list[dict[str, Any]], group_threshold: float = 0.2
             "below": below, "links": sum(1 for x in links if x[2] >= group_threshold)}
 
 
-def real_lead_order(recs: list[dict], below: float = 0.4) -> list[dict[str, Any]]:
+def real_lead_order(recs: list[dict], below: float = 0.4, counts: dict[str, int] | None = None
+                    ) -> list[dict[str, Any]]:
     """Figures of the same-melody pairs of one song (``bench_identity.load_collection``
-    records) whose similarity rests on the leads and lies below ``below``."""
+    records) whose similarity rests on the leads and lies below ``below`` (``counts`` as in
+    ``weak_lead_pairs``)."""
     from .bench_identity import SAME_MELODY, melody_intervals, melody_similarity
     for r in recs:
         r.setdefault("_melody", melody_intervals(r["piece"]))
     return weak_lead_pairs(recs, lambda r: r["song"], below, lambda x, y: melody_similarity(
-        x["_melody"], y["_melody"]) >= SAME_MELODY)
+        x["_melody"], y["_melody"]) >= SAME_MELODY, counts)
 
 
-def weak_lead_pairs(recs: list[dict], group_of: Any, below: float, keep: Any = None
-                    ) -> list[dict[str, Any]]:
+def weak_lead_pairs(recs: list[dict], group_of: Any, below: float, keep: Any = None,
+                    counts: dict[str, int] | None = None) -> list[dict[str, Any]]:
     """Figures of the pairs of records of one group (``group_of(rec)``, None for none) that
     ``keep(x, y)`` accepts (default all) and whose similarity rests on the leads and lies below
-    ``below``."""
+    ``below``. ``counts``, when given, receives the pairs compared (``pairs``) and those
+    resting on the leads (``on_leads``)."""
     from collections import defaultdict
     from itertools import combinations
     from ..similarity.minhash import signature_of
@@ -244,6 +247,9 @@ def weak_lead_pairs(recs: list[dict], group_of: Any, below: float, keep: Any = N
                 if "_shingles" not in r:
                     r["_shingles"] = signature_of(r["piece"])[1]
             value, lead = _lead_based(x["_shingles"], y["_shingles"])
+            if counts is not None:
+                counts["pairs"] = counts.get("pairs", 0) + 1
+                counts["on_leads"] = counts.get("on_leads", 0) + lead
             if lead and value < below:
                 out.append({"a": x["rel"], "b": y["rel"], "similarity": value,
                             **order_figures(lead_tokens(x["piece"]), lead_tokens(y["piece"]))})
