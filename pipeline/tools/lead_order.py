@@ -128,8 +128,8 @@ def order_figures(ta: np.ndarray, tb: np.ndarray, spec: ShingleSpec = ShingleSpe
     shared = len({w for w in wa if w is not None} & {w for w in wb if w is not None})
     chain = ordered_chain(wa, wb)
     on = set(chain)
-    alone = [(i, j) for i, j in chain if (i - 1, j - 1) not in on and (i + 1, j + 1) not in on]
-    kept = [m for m in chain if m not in set(alone)]
+    # a lone match: no chain neighbour on its diagonal (one shared window, not a run)
+    kept = [(i, j) for i, j in chain if (i - 1, j - 1) in on or (i + 1, j + 1) in on]
     short_tokens, short_windows = max(1, min(len(a), len(b))), max(1, len(wa))
     run, local = longest_common_run(a, b), smith_waterman(a, b)
     return {"shared": shared, "chain": len(chain), "run": run, "local": local,
