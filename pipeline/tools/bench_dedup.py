@@ -259,18 +259,59 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--chorales", default=None, metavar="CACHE",
                     help="music21's Bach chorales (rendered once, cached as JSON in CACHE): same "
                     "tune linked, different tunes never")
+    ap.add_argument("--lead-order", action="store_true",
+                    help="with --chorales, --real or --sizes: ordered evidence (chain, run, local "
+                    "alignment) of the weak links resting on the leads (pipeline.tools.lead_order)")
+    ap.add_argument("--weak-below", type=float, default=None,
+                    help="with --lead-order: links below this count as weak (chorales 0.3, real 0.4)")
     a = ap.parse_args(argv)
     if a.chorales:
         from .bench_identity import chorale_check, format_chorales, render_chorales
+        if a.lead_order:
+            from .lead_order import chorale_lead_order, format_separation
+            res = chorale_lead_order(render_chorales(Path(a.chorales)), below=a.weak_below or 0.3)
+            print(format_separation(f"chorales: the split's {res['links']} links; those on the "
+                                    f"leads below {res['below']}: {len(res['good'])} of one tune, "
+                                    f"{len(res['bad'])} of different tunes", res["separation"], res["bad"],
+                                    res["near_misses"]))
+            return 0
         print(format_chorales(chorale_check(render_chorales(Path(a.chorales)))))
         return 0
     if a.real:
         from .bench_identity import evaluate, format_real, load_collection
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
+        if a.lead_order:
+            from .lead_order import MEASURES, real_lead_order
+            counts: dict[str, int] = {}
+            weak = real_lead_order(recs, below=a.weak_below or 0.4, counts=counts)
+            print(f"same-melody pairs of one song: {counts.get('pairs', 0)}, resting on the leads "
+                  f"{counts.get('on_leads', 0)}, of those below {a.weak_below or 0.4}: {len(weak)}")
+            for p in weak:
+                print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
+                      + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
+            return 0
         res = evaluate(recs, split_opts=_options(a.split_option) or None)
         if a.out:
             Path(a.out).write_text(json.dumps(res, indent=1, default=str) + "\n")
         print(format_real(res))
+        return 0
+    if a.lead_order:
+        from .lead_order import MEASURES, weak_lead_pairs
+        from .synth import generate
+        below = a.weak_below or 0.4
+        with tempfile.TemporaryDirectory(prefix="midisift-bench-dedup-") as tmp:
+            for n in (int(x) for x in a.sizes.split(",")):
+                folder = Path(a.work or tmp) / f"corpus_{n}_seed{a.seed}"
+                if not _same_corpus(folder, n, a.seed):
+                    generate(folder, n, seed=a.seed)
+                counts: dict[str, int] = {}
+                weak = weak_lead_pairs(load_corpus(folder)[0], lambda r: r["truth"].get("cluster"),
+                                       below, counts=counts)
+                print(f"{n} files: planted pairs {counts.get('pairs', 0)}, resting on the leads "
+                      f"{counts.get('on_leads', 0)}, of those below {below}: {len(weak)}")
+                for p in weak:
+                    print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
+                          + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
         return 0
     res = run(tuple(int(x) for x in a.sizes.split(",")), a.out, a.seed,
               {} if a.defaults_only else None, a.work)
