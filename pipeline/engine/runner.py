@@ -152,11 +152,12 @@ class Runner:
         path_of = {f.rel: f.path for f in files}
 
         t = time.perf_counter()
+        # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
+        self._values = {s.name: ledger.values_source(s.name, s.fingerprint)
+                        for s in self.stages if s.kind == "file"}
         with _bulk_data():
-            # speed: stored values stay JSON text until a row that needs them is rebuilt
-            cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
-                                                values_as_text=True)
-                     for s in self.stages if s.kind == "file"}
+            cache = {name: ledger.verdicts_for(source, rep, self._compactor(name).make_deferred)
+                     for name, source in self._values.items()}
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if s.has_prepare()
@@ -226,7 +227,7 @@ class Runner:
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, manifest.manifest_rows(files, walk, placed, tally, decisions.add,
-                                                  reuse, corpus_positions),
+                                                  reuse, corpus_positions, self._prefetch),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files)))
@@ -245,6 +246,12 @@ class Runner:
                          len(rep) - computed, parts, notes + walk.notes,
                          summary.get("warnings", []),
                          grouping_off=grouping_off(summary["split"].get("stage")))
+
+    def _prefetch(self, shas: list[str]) -> None:
+        """Read the stored values of the contents whose rows are built next, one query per
+        stage and few hundred files (each stage's values are left in the ledger)."""
+        for source in self._values.values():
+            source.prefetch(shas)
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _rows_base(self) -> str:
@@ -295,22 +302,24 @@ class Runner:
         art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         limits = self._limits()
+        canon = {t.sha256: t.sha256 for t in tasks}.get
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
                         run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                   on_fault=fault_outcome))
             for oc in outcomes:
+                sha = canon(oc.sha256, oc.sha256)  # memory: the task's string, not a copy
                 if oc.results:
-                    self._recomputed.add(oc.sha256)
+                    self._recomputed.add(sha)
                 for name, stored in oc.results.items():
-                    cache[name][oc.sha256] = self._compactor(name).from_stored(stored)
-                    pending_r.append((oc.sha256, name, fps[name], stored))
+                    cache[name][sha] = self._compactor(name).from_stored(stored)
+                    pending_r.append((sha, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
-                    pending_a.append((oc.sha256, name, art_fps[name], arts))
+                    pending_a.append((sha, name, art_fps[name], arts))
                 if oc.staged:  # memory: the same few suffix tuples, shared (paths are derived)
-                    staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
-                    pending_s.append((oc.sha256, oc.staged))
+                    staged[sha] = suffixes.setdefault(oc.staged, oc.staged)
+                    pending_s.append((sha, oc.staged))
                 bar.update(1)
                 for name, stage_bar in stage_bars.items():
                     if name in oc.results or name in oc.artifacts:
@@ -318,17 +327,18 @@ class Runner:
                     else:  # dropped before this stage (or its verdict was cached): not coming
                         _shrink(stage_bar)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
-                    self._flush(ledger, pending_r, pending_a, pending_s)
+                    self._flush(ledger, pending_r, pending_a, pending_s, cache)
                     last = time.monotonic()
         finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
-            self._flush(ledger, pending_r, pending_a, pending_s)
+            self._flush(ledger, pending_r, pending_a, pending_s, cache)
             bar.close()
             for b in stage_bars.values():
                 b.close()
 
-    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list) -> None:
+    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list, cache: dict) -> None:
         """Commit finished results and artifacts, then list the finished staged outputs (a
-        listed output's results are always in the ledger)."""
+        listed output's results are always in the ledger); the committed results' values are
+        left in the ledger (``Result.defer``)."""
         if not results and not artifacts and not staged:
             return
         try:
@@ -339,6 +349,8 @@ class Runner:
             raise LedgerError(f"cannot save results to the state database ({e}); check free space "
                               "and permissions of the output folder, then rerun (committed results "
                               "are kept)", file=str(ledger.path)) from None
+        for sha, name, _, _ in results:
+            cache[name][sha].defer(self._values[name], sha)
         results.clear()
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)

@@ -163,6 +163,27 @@ class Ledger:
                             thresholds_of(thr))
         return out
 
+    def verdicts_for(self, source: "StoredValues", shas: dict[str, Any],
+                     make: Callable[[bool, str | None, str, dict, "StoredValues", str], Any]) -> dict[str, Any]:
+        """sha256 -> what ``make(kept, reason, detail, thresholds, source, sha256)`` builds of
+        each stored result of the stage whose values ``source`` reads (``values_source``), for the contents in ``shas`` (keyed by its own key
+        objects: no second copy of each sha256 string), the values left in the ledger. Memory: a rerun holds a verdict per file and
+        stage, and reads the values of the rows it rebuilds."""
+        out: dict[str, Any] = {}
+        thresholds_of = thresholds_from_json
+        canon = {k: k for k in shas}.get
+        for sha, kept, reason, detail, thr in self.db.execute(
+                "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
+                source.key):
+            key = canon(sha)
+            if key is not None:
+                out[key] = make(bool(kept), reason, detail, thresholds_of(thr), source, key)
+        return out
+
+    def values_source(self, stage: str, fingerprint: str) -> "StoredValues":
+        """Where the stored values texts of one stage's per-file results are read."""
+        return StoredValues(self.db, stage, fingerprint)
+
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
         (``stored_result``: what the workers send, values already JSON text)."""
@@ -389,6 +410,41 @@ class _ArrayRows:
                 f"SELECT sha256, data FROM artifacts WHERE stage=? AND fingerprint=? AND name=? "
                 f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, name, *chunk)))
         return got
+
+
+class StoredValues:
+    """The stored values texts of one stage's per-file results (``records.Result.defer``):
+    ``prefetch`` reads those of many contents in one query per ``FETCH_CHUNK`` keys and holds
+    them until the next ``prefetch``; ``text`` answers from them, else reads one row."""
+
+    __slots__ = ("db", "key", "_held")
+
+    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str):
+        self.db, self.key = db, (stage, fingerprint)
+        self._held: dict[str, str] = {}
+
+    def text(self, sha256: str) -> str:
+        t = self._held.get(sha256)
+        if t is None:
+            row = self.db.execute("SELECT vals FROM results WHERE stage=? AND fingerprint=? AND sha256=?",
+                                  (*self.key, sha256)).fetchone()
+            if row is None:
+                path = self.db.execute("PRAGMA database_list").fetchone()[2] or None
+                raise LedgerError(f"the stored values of {self.key[0]} for content {sha256} are no "
+                                  "longer in the state database (another process changed it during "
+                                  "the run?); rerun", file=path)
+            t = row[0]
+        return t
+
+    def prefetch(self, shas: list[str]) -> None:
+        """Hold the texts of ``shas`` (and let go of those held before)."""
+        stage, fp = self.key
+        held: dict[str, str] = {}
+        for chunk in iter_chunks(shas, FETCH_CHUNK):
+            held.update(self.db.execute(
+                f"SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=? "
+                f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, *chunk)))
+        self._held = held
 
 
 #: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).
