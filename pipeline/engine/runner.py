@@ -72,6 +72,8 @@ class Runner:
         self.output_fp = rendering.output_fingerprint(self.stages)
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler
+        self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
+        self._index: dict[str, int] = {}  # sha256 -> content index, during the per-file pass
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -153,10 +155,14 @@ class Runner:
 
         t = time.perf_counter()
         # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
-        self._values = {s.name: ledger.values_source(s.name, s.fingerprint)
+        order = list(rep)
+        # content index by sha256 while results arrive (one int object per content, shared by
+        # the records of every stage)
+        self._index = dict(zip(order, range(len(order))))
+        self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
         with _bulk_data():
-            cache = {name: ledger.verdicts_for(source, rep, self._compactor(name).make_deferred)
+            cache = {name: ledger.verdicts_for(source, self._index, self._compactor(name).make_deferred)
                      for name, source in self._values.items()}
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
@@ -180,6 +186,7 @@ class Runner:
         with _bulk_data():
             self._execute(ledger, tasks, cache)
         del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
+        self._index = {}
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
@@ -302,14 +309,16 @@ class Runner:
         art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         limits = self._limits()
-        canon = {t.sha256: t.sha256 for t in tasks}.get
+        order = next(iter(self._values.values())).order if self._values else []
+        index = self._index
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
                         run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                   on_fault=fault_outcome))
             for oc in outcomes:
-                sha = canon(oc.sha256, oc.sha256)  # memory: the task's string, not a copy
+                i = index.get(oc.sha256)
+                sha = oc.sha256 if i is None else order[i]  # memory: the run's string, not a copy
                 if oc.results:
                     self._recomputed.add(sha)
                 for name, stored in oc.results.items():
@@ -349,8 +358,11 @@ class Runner:
             raise LedgerError(f"cannot save results to the state database ({e}); check free space "
                               "and permissions of the output folder, then rerun (committed results "
                               "are kept)", file=str(ledger.path)) from None
+        index = self._index
         for sha, name, _, _ in results:
-            cache[name][sha].defer(self._values[name], sha)
+            i = index.get(sha)
+            if i is not None:
+                cache[name][sha].defer(self._values[name], i)
         results.clear()
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)

@@ -163,26 +163,28 @@ class Ledger:
                             thresholds_of(thr))
         return out
 
-    def verdicts_for(self, source: "StoredValues", shas: dict[str, Any],
-                     make: Callable[[bool, str | None, str, dict, "StoredValues", str], Any]) -> dict[str, Any]:
-        """sha256 -> what ``make(kept, reason, detail, thresholds, source, sha256)`` builds of
-        each stored result of the stage whose values ``source`` reads (``values_source``), for the contents in ``shas`` (keyed by its own key
-        objects: no second copy of each sha256 string), the values left in the ledger. Memory: a rerun holds a verdict per file and
-        stage, and reads the values of the rows it rebuilds."""
+    def verdicts_for(self, source: "StoredValues", index: dict[str, int],
+                     make: Callable[[bool, str | None, str, dict, "StoredValues", int], Any]) -> dict[str, Any]:
+        """sha256 -> what ``make(kept, reason, detail, thresholds, source, i)`` builds of each
+        stored result of the stage whose values ``source`` reads (``values_source``), for the
+        contents in ``index`` (sha256 -> position in ``source.order``; keyed by the order's own
+        strings, no second copy of each sha256), the values left in the ledger. Memory: a rerun
+        holds a verdict per file and stage, and reads the values of the rows it rebuilds."""
         out: dict[str, Any] = {}
         thresholds_of = thresholds_from_json
-        canon = {k: k for k in shas}.get
+        order = source.order
         for sha, kept, reason, detail, thr in self.db.execute(
                 "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
                 source.key):
-            key = canon(sha)
-            if key is not None:
-                out[key] = make(bool(kept), reason, detail, thresholds_of(thr), source, key)
+            i = index.get(sha)
+            if i is not None:
+                out[order[i]] = make(bool(kept), reason, detail, thresholds_of(thr), source, i)
         return out
 
-    def values_source(self, stage: str, fingerprint: str) -> "StoredValues":
-        """Where the stored values texts of one stage's per-file results are read."""
-        return StoredValues(self.db, stage, fingerprint)
+    def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
+        """Where the stored values texts of one stage's per-file results are read, by index
+        into ``order`` (sha256s)."""
+        return StoredValues(self.db, stage, fingerprint, order)
 
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
@@ -413,27 +415,39 @@ class _ArrayRows:
 
 
 class StoredValues:
-    """The stored values texts of one stage's per-file results (``records.Result.defer``):
-    ``prefetch`` reads those of many contents in one query per ``FETCH_CHUNK`` keys and holds
-    them until the next ``prefetch``; ``text`` answers from them, else reads one row."""
+    """The stored values texts of one stage's per-file results (``records.Result.defer``),
+    read by content index (a position in ``order``, the run's contents in first-source order).
 
-    __slots__ = ("db", "key", "_held")
+    ``prefetch`` reads the texts of many contents in one query per ``FETCH_CHUNK`` keys and
+    holds them until the next read; ``text`` answers from them, else reads the next
+    ``FETCH_CHUNK`` contents from the missed one on (readers walk the contents in order: the
+    corpus stages' members, the placed outputs), or only the missed one when the last chunk
+    served few reads."""
 
-    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str):
-        self.db, self.key = db, (stage, fingerprint)
+    __slots__ = ("db", "key", "order", "_held", "_served")
+
+    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, order: list[str]):
+        self.db, self.key, self.order = db, (stage, fingerprint), order
         self._held: dict[str, str] = {}
+        self._served = SEQUENTIAL
 
-    def text(self, sha256: str) -> str:
-        t = self._held.get(sha256)
+    def text(self, index: int) -> str:
+        sha = self.order[index]
+        t = self._held.get(sha)
         if t is None:
-            row = self.db.execute("SELECT vals FROM results WHERE stage=? AND fingerprint=? AND sha256=?",
-                                  (*self.key, sha256)).fetchone()
-            if row is None:
-                path = self.db.execute("PRAGMA database_list").fetchone()[2] or None
-                raise LedgerError(f"the stored values of {self.key[0]} for content {sha256} are no "
-                                  "longer in the state database (another process changed it during "
-                                  "the run?); rerun", file=path)
-            t = row[0]
+            if self._served >= SEQUENTIAL:
+                self.prefetch(self.order[index:index + FETCH_CHUNK])
+                t = self._held.get(sha)
+            if t is None:
+                row = self.db.execute("SELECT vals FROM results WHERE stage=? AND fingerprint=? AND sha256=?",
+                                      (*self.key, sha)).fetchone()
+                if row is None:
+                    path = self.db.execute("PRAGMA database_list").fetchone()[2] or None
+                    raise LedgerError(f"the stored values of {self.key[0]} for content {sha} are no "
+                                      "longer in the state database (another process changed it "
+                                      "during the run?); rerun", file=path)
+                t = row[0]
+        self._served += 1
         return t
 
     def prefetch(self, shas: list[str]) -> None:
@@ -445,6 +459,12 @@ class StoredValues:
                 f"SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=? "
                 f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, *chunk)))
         self._held = held
+        self._served = 0
+
+
+#: Reads a held chunk of values must have served for a miss to read the next chunk (fewer:
+#: the reader jumps around, and a miss reads one row).
+SEQUENTIAL = 16
 
 
 #: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).

@@ -43,7 +43,7 @@ class Result:
 
     A per-file result whose row is in the ledger can leave even the text there (``defer``,
     ``Compactor.make_deferred``): ``names`` is then the stage's ``ValueSource`` (the ledger's
-    ``StoredValues``) and ``vals`` the content's sha256, and every read of the values reads the
+    ``StoredValues``) and ``vals`` the content's index there, and every read of the values reads the
     text from it (memory: the values text is about 0.9 KB per file over the per-file stages)."""
 
     __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds", "text")
@@ -75,11 +75,11 @@ class Result:
         """The result of its dict form (``to_json``)."""
         return _plain(d["kept"], d.get("reason"), d.get("detail", ""), d.get("values"), d.get("thresholds"))
 
-    def defer(self, source: "ValueSource", sha256: str) -> None:
+    def defer(self, source: "ValueSource", index: int) -> None:
         """Leave the values text in the ledger (its row is committed): read from ``source``
-        under ``sha256`` whenever needed. A result made in the main process is left as it is."""
+        (content ``index``) whenever needed. A result made in the main process is left as it is."""
         if self.names is None:
-            self.names, self.vals, self.text = source, sha256, None
+            self.names, self.vals, self.text = source, index, None
 
     def _stored_text(self) -> str | None:
         """The stored JSON text of values not parsed yet (kept or read from the ledger)."""
@@ -205,7 +205,7 @@ def _compact_values(values: Mapping[str, Any]) -> tuple:
 class ValueSource(Protocol):
     """Where a deferred result's values text is read (``ledger.StoredValues``)."""
 
-    def text(self, sha256: str) -> str: ...
+    def text(self, index: int) -> str: ...
 
 
 class Compactor:
@@ -228,11 +228,11 @@ class Compactor:
                       values_json, self._shared_thresholds(thresholds))
 
     def make_deferred(self, kept: bool, reason: str | None, detail: str, thresholds: dict[str, Any] | None,
-                      source: "ValueSource", sha256: str) -> Result:
+                      source: "ValueSource", index: int) -> Result:
         """A result read from the ledger without its values, which stay there (``Result.defer``)."""
         r = Result(bool(kept), _intern(reason) if reason else reason, detail, None, "",
                    self._shared_thresholds(thresholds))
-        r.defer(source, sha256)
+        r.defer(source, index)
         return r
 
     def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
