@@ -41,7 +41,7 @@ from ..store.records import Compactor
 from . import uptodate
 from .executor import Limits, run_tasks
 from .plan import Everything, Planner
-from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
+from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, source_path
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file
 
@@ -132,6 +132,7 @@ class Runner:
         with ledger.batch():
             ledger.put_sources(changed)
             ledger.forget_sources([p for p in known if p not in present])
+        del known, changed  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
         if unknown:
@@ -151,7 +152,7 @@ class Runner:
         rep: dict[str, str] = {}
         for f in files:
             rep.setdefault(f.sha256, f.rel)
-        path_of = {f.rel: f.path for f in files}
+        root = str(cfg.input.resolve())  # the folder discover searched (SourceFile.root)
 
         t = time.perf_counter()
         # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
@@ -179,7 +180,7 @@ class Runner:
                           retry_failed=self.retry_failed)
         tasks = []
         for sha, rel in rep.items():
-            task = planner.task(sha, rel, path_of[rel])
+            task = planner.task(sha, rel, source_path(root, rel))
             if task is not None:
                 tasks.append(task)
         computed = len(tasks)
@@ -203,7 +204,7 @@ class Runner:
         missing = [sha for sha in kept_shas
                    if sha not in existing_out and sha not in walk.staged]
         if missing:
-            late = [planner.render_task(sha, rep[sha], path_of[rep[sha]]) for sha in missing]
+            late = [planner.render_task(sha, rep[sha], source_path(root, rep[sha])) for sha in missing]
             self._execute(ledger, late, cache, walk.staged)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
