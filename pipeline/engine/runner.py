@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import gc
 import hashlib
+import json
 import sqlite3
 import sys
 import time
@@ -228,14 +229,17 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
+        from ..outputs.page import Facts, write_report  # the run's page, from what is written
+        facts = Facts()  # speed: gathered from the rows as they pass, not read back
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
-                cfg.output, manifest.manifest_rows(files, walk, placed, tally, decisions.add,
-                                                  reuse, corpus_positions, self._prefetch),
+                cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
+                                                        reuse, corpus_positions, self._prefetch),
+                                  facts.add),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files)))
@@ -247,8 +251,7 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
-        from ..outputs.page import write_report  # the run's page, from what was just written
-        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input)
+        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input, facts)
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
@@ -395,6 +398,14 @@ def _bulk_data() -> Iterator[None]:
         if enabled:
             gc.enable()
 
+
+
+def _seen(rows: Iterator[dict | str], see: Any) -> Iterator[dict | str]:
+    """The manifest rows, each shown to ``see`` as its dict (a reused line parsed) on its way."""
+    loads = json.loads
+    for r in rows:
+        see(loads(r) if type(r) is str else r)
+        yield r
 
 
 def _shrink(bar: Any) -> None:
