@@ -367,6 +367,8 @@ class Runner:
             i = index.get(sha)
             if i is not None:
                 cache[name][sha].defer(self._values[name], i)
+        for source in self._values.values():
+            source.rows_added()
         results.clear()
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)

@@ -424,12 +424,28 @@ class StoredValues:
     corpus stages' members, the placed outputs), or only the missed one when the last chunk
     served few reads."""
 
-    __slots__ = ("db", "key", "order", "_held", "_served")
+    __slots__ = ("db", "key", "order", "_held", "_served", "_keys")
 
     def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, order: list[str]):
         self.db, self.key, self.order = db, (stage, fingerprint), order
         self._held: dict[str, str] = {}
         self._served = SEQUENTIAL
+        self._keys: dict[str, bool] = {}
+
+    def may_have(self, name: str) -> bool:
+        """False when no stored text of the stage has the key ``name`` (``"name":`` appears in
+        none of them: one scan of the stage's rows, remembered). Speed: a reader looking for a
+        value another stage sets (the split's ``augment``) skips this stage's texts."""
+        found = self._keys.get(name)
+        if found is None:
+            found = self._keys[name] = self.db.execute(
+                "SELECT 1 FROM results WHERE stage=? AND fingerprint=? AND instr(vals, ?) > 0 LIMIT 1",
+                (*self.key, f'"{name}":')).fetchone() is not None
+        return found
+
+    def rows_added(self) -> None:
+        """Forget what ``may_have`` found: the stage's rows changed."""
+        self._keys.clear()
 
     def text(self, index: int) -> str:
         sha = self.order[index]

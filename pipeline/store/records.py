@@ -118,11 +118,15 @@ class Result:
 
     def value(self, name: str, default: Any = None) -> Any:
         """One value by name, without building the values dict."""
-        if type(self.names) is not tuple:
+        names = self.names
+        if type(names) is not tuple:
             # stored JSON has every key as '"name":' (a quote inside a string is escaped, so
             # the pattern is a key); a name not in the text is not a value
+            simple = name.isascii() and name.isprintable() and '"' not in name and "\\" not in name
+            if simple and names is not None and not names.may_have(name):
+                return default  # deferred, and no stored text of the stage has that key
             text = self._stored_text()
-            if name.isascii() and name.isprintable() and '"' not in name and "\\" not in name:
+            if simple:
                 at = text.find(f'"{name}":')  # written as it is (no escapes)
                 if at < 0:
                     return default
@@ -206,6 +210,11 @@ class ValueSource(Protocol):
     """Where a deferred result's values text is read (``ledger.StoredValues``)."""
 
     def text(self, index: int) -> str: ...
+
+    def may_have(self, name: str) -> bool:
+        """False when no stored values text of the stage has the key ``name`` (written as
+        ``"name":``), so no deferred record of it has that value."""
+        ...
 
 
 class Compactor:
