@@ -91,3 +91,40 @@ def test_stored_records_read_like_their_dict_without_parsing_everything():
             assert r.value(name, "default") == want.get(name, "default"), (v, name)
         r = c.from_stored(stored)
         assert r.to_json() == d and r.values_json() == canonical_json(v) == stored[3]
+
+
+def test_records_whose_values_stay_in_the_ledger_read_like_their_dict(tmp_path):
+    """A record left in the ledger (``Result.defer``) reads exactly like its dict: read back
+    from a store in chunks, one row at a time when the reader jumps, and after a prefetch; its
+    trail text is the stored one; pickling for a worker leaves it deferred."""
+    from pipeline.store.codec import stored_result
+    from pipeline.store.ledger import FETCH_CHUNK, SEQUENTIAL, Ledger
+    n = FETCH_CHUNK + 40
+    order = [f"{i:064x}" for i in range(n)]
+    plain = {sha: PLAIN[i % len(PLAIN)] for i, sha in enumerate(order)}
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        with ledger.batch():
+            ledger.put_results((sha, "key_meter", "fp", d) for sha, d in plain.items())
+        source = ledger.values_source("key_meter", "fp", order)
+        index = {sha: i for i, sha in enumerate(order)}
+        got = ledger.verdicts_for(source, index, Compactor().make_deferred)
+        assert set(got) == set(order)
+        for sha in order:  # in order: chunks of FETCH_CHUNK
+            r, d = got[sha], plain[sha]
+            assert r.to_json() == d and {**r} == d
+            assert r.values_json() == stored_result(d)[3]
+            for k, v in d["values"].items():
+                assert r.value(k) == v
+            assert r.value("nope", "x") == "x"
+        for i in range(n - 1, -1, -7):  # jumping backwards: single rows once a chunk serves few
+            assert got[order[i]].to_json() == plain[order[i]]
+        assert SEQUENTIAL > 1
+        source.prefetch(order[:3])
+        r = got[order[1]]
+        back = pickle.loads(pickle.dumps(r))
+        assert back.to_json() == plain[order[1]]
+        assert type(r.names) is not tuple  # still deferred: nothing of it kept in memory
+        # a record that held its text (from a worker) and is deferred once its row is committed
+        live = Compactor().from_stored(stored_result(plain[order[2]]))
+        live.defer(source, 2)
+        assert live.to_json() == plain[order[2]] and live.values_json() == stored_result(plain[order[2]])[3]

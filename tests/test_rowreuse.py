@@ -168,17 +168,27 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     records, byte-identical copies included)."""
     import json
 
+    from pipeline.engine import runner
     from pipeline.engine.walk import StageWalk
     corpus, base = first
     dest = tmp_path / "trail"
     shutil.copytree(base, dest)
-    walks = []
+    walks, checked = [], []
     real = StageWalk.run
     monkeypatch.setattr(StageWalk, "run", lambda self, *a: walks.append(real(self, *a)) or walks[-1])
+    real_write = runner.manifest.write_all
+
+    def write_all(*a, **k):  # checked while the run's ledger is open (per-file values stay in it)
+        summary = real_write(*a, **k)
+        walk = walks[0]
+        rows = [json.loads(line) for line in (dest / "manifest.jsonl").read_text().splitlines()]
+        assert any(r["reason"] == "exact_duplicate" for r in rows)
+        for r in rows:
+            want = json.dumps(walk.trail_of(r["source"], r["sha256"]), sort_keys=True, separators=(",", ":"))
+            assert walk.trail_json(r["source"], r["sha256"]) == want, r["source"]
+        checked.append(len(rows))
+        return summary
+
+    monkeypatch.setattr(runner.manifest, "write_all", write_all)
     _run(corpus, dest)
-    walk = walks[0]
-    rows = [json.loads(line) for line in (dest / "manifest.jsonl").read_text().splitlines()]
-    assert any(r["reason"] == "exact_duplicate" for r in rows)
-    for r in rows:
-        want = json.dumps(walk.trail_of(r["source"], r["sha256"]), sort_keys=True, separators=(",", ":"))
-        assert walk.trail_json(r["source"], r["sha256"]) == want, r["source"]
+    assert checked and checked[0] > 0

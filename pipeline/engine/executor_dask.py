@@ -178,11 +178,17 @@ class DaskExecutor:
         try:
             for fut in done:
                 chunk, retry = in_flight.pop(fut)
-                if fut.status != "finished":
-                    exc = fut.exception() if fut.status == "error" else None
+                status = fut.status
+                if status != "finished":
+                    exc = fut.exception() if status == "error" else None
                     fut.release()
+                    if exc is None and status in ("lost", "pending"):
+                        # its result was on a worker that died after the chunk finished (the
+                        # scheduler would compute it again): the chunk is sent again
+                        submit(chunk, retry)
+                        continue
                     if exc is None:
-                        raise MidisiftError(f"a Dask task was {fut.status} (the scheduler restarted "
+                        raise MidisiftError(f"a Dask task was {status} (the scheduler restarted "
                                             "or lost it); rerun to continue", location=self.address)
                     if not _killed_worker(exc):
                         raise MidisiftError(f"a Dask task failed: {type(exc).__name__}: {exc}",

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import gc
 import hashlib
+import json
 import sqlite3
 import sys
 import time
@@ -41,7 +42,7 @@ from ..store.records import Compactor
 from . import uptodate
 from .executor import Limits, run_tasks
 from .plan import Everything, Planner
-from .sources import Discovery, SourceFile, check_folders, discover, fingerprint
+from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, source_path
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file
 
@@ -72,6 +73,8 @@ class Runner:
         self.output_fp = rendering.output_fingerprint(self.stages)
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler
+        self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
+        self._index: dict[str, int] = {}  # sha256 -> content index, during the per-file pass
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -130,6 +133,7 @@ class Runner:
         with ledger.batch():
             ledger.put_sources(changed)
             ledger.forget_sources([p for p in known if p not in present])
+        del known, changed  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
         if unknown:
@@ -149,14 +153,19 @@ class Runner:
         rep: dict[str, str] = {}
         for f in files:
             rep.setdefault(f.sha256, f.rel)
-        path_of = {f.rel: f.path for f in files}
+        root = str(cfg.input.resolve())  # the folder discover searched (SourceFile.root)
 
         t = time.perf_counter()
+        # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
+        order = list(rep)
+        # content index by sha256 while results arrive (one int object per content, shared by
+        # the records of every stage)
+        self._index = dict(zip(order, range(len(order))))
+        self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
+                        for s in self.stages if s.kind == "file"}
         with _bulk_data():
-            # speed: stored values stay JSON text until a row that needs them is rebuilt
-            cache = {s.name: ledger.results_for(s.name, s.fingerprint, self._compactor(s.name).make_stored,
-                                                values_as_text=True)
-                     for s in self.stages if s.kind == "file"}
+            cache = {name: ledger.verdicts_for(source, self._index, self._compactor(name).make_deferred)
+                     for name, source in self._values.items()}
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if s.has_prepare()
@@ -172,13 +181,14 @@ class Runner:
                           retry_failed=self.retry_failed)
         tasks = []
         for sha, rel in rep.items():
-            task = planner.task(sha, rel, path_of[rel])
+            task = planner.task(sha, rel, source_path(root, rel))
             if task is not None:
                 tasks.append(task)
         computed = len(tasks)
         with _bulk_data():
             self._execute(ledger, tasks, cache)
         del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
+        self._index = {}
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
@@ -195,7 +205,7 @@ class Runner:
         missing = [sha for sha in kept_shas
                    if sha not in existing_out and sha not in walk.staged]
         if missing:
-            late = [planner.render_task(sha, rep[sha], path_of[rep[sha]]) for sha in missing]
+            late = [planner.render_task(sha, rep[sha], source_path(root, rep[sha])) for sha in missing]
             self._execute(ledger, late, cache, walk.staged)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
@@ -219,14 +229,17 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
+        from ..outputs.page import Facts, write_report  # the run's page, from what is written
+        facts = Facts()  # speed: gathered from the rows as they pass, not read back
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
-                cfg.output, manifest.manifest_rows(files, walk, placed, tally, decisions.add,
-                                                  reuse, corpus_positions),
+                cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
+                                                        reuse, corpus_positions, self._prefetch),
+                                  facts.add),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files)))
@@ -238,13 +251,18 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
             ledger.finish_run(run_id, summary["counts"])
-        from ..outputs.page import write_report  # the run's page, from what was just written
-        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input)
+        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input, facts)
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
                          summary.get("warnings", []),
                          grouping_off=grouping_off(summary["split"].get("stage")))
+
+    def _prefetch(self, shas: list[str]) -> None:
+        """Read the stored values of the contents whose rows are built next, one query per
+        stage and few hundred files (each stage's values are left in the ledger)."""
+        for source in self._values.values():
+            source.prefetch(shas)
 
     # the nothing-changed shortcut ------------------------------------------------------------
     def _rows_base(self) -> str:
@@ -295,22 +313,26 @@ class Runner:
         art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         limits = self._limits()
+        order = next(iter(self._values.values())).order if self._values else []
+        index = self._index
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
                         run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                   on_fault=fault_outcome))
             for oc in outcomes:
+                i = index.get(oc.sha256)
+                sha = oc.sha256 if i is None else order[i]  # memory: the run's string, not a copy
                 if oc.results:
-                    self._recomputed.add(oc.sha256)
+                    self._recomputed.add(sha)
                 for name, stored in oc.results.items():
-                    cache[name][oc.sha256] = self._compactor(name).from_stored(stored)
-                    pending_r.append((oc.sha256, name, fps[name], stored))
+                    cache[name][sha] = self._compactor(name).from_stored(stored)
+                    pending_r.append((sha, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
-                    pending_a.append((oc.sha256, name, art_fps[name], arts))
+                    pending_a.append((sha, name, art_fps[name], arts))
                 if oc.staged:  # memory: the same few suffix tuples, shared (paths are derived)
-                    staged[oc.sha256] = suffixes.setdefault(oc.staged, oc.staged)
-                    pending_s.append((oc.sha256, oc.staged))
+                    staged[sha] = suffixes.setdefault(oc.staged, oc.staged)
+                    pending_s.append((sha, oc.staged))
                 bar.update(1)
                 for name, stage_bar in stage_bars.items():
                     if name in oc.results or name in oc.artifacts:
@@ -318,17 +340,18 @@ class Runner:
                     else:  # dropped before this stage (or its verdict was cached): not coming
                         _shrink(stage_bar)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
-                    self._flush(ledger, pending_r, pending_a, pending_s)
+                    self._flush(ledger, pending_r, pending_a, pending_s, cache)
                     last = time.monotonic()
         finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
-            self._flush(ledger, pending_r, pending_a, pending_s)
+            self._flush(ledger, pending_r, pending_a, pending_s, cache)
             bar.close()
             for b in stage_bars.values():
                 b.close()
 
-    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list) -> None:
+    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list, cache: dict) -> None:
         """Commit finished results and artifacts, then list the finished staged outputs (a
-        listed output's results are always in the ledger)."""
+        listed output's results are always in the ledger); the committed results' values are
+        left in the ledger (``Result.defer``)."""
         if not results and not artifacts and not staged:
             return
         try:
@@ -339,6 +362,13 @@ class Runner:
             raise LedgerError(f"cannot save results to the state database ({e}); check free space "
                               "and permissions of the output folder, then rerun (committed results "
                               "are kept)", file=str(ledger.path)) from None
+        index = self._index
+        for sha, name, _, _ in results:
+            i = index.get(sha)
+            if i is not None:
+                cache[name][sha].defer(self._values[name], i)
+        for source in self._values.values():
+            source.rows_added()
         results.clear()
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)
@@ -370,6 +400,14 @@ def _bulk_data() -> Iterator[None]:
         if enabled:
             gc.enable()
 
+
+
+def _seen(rows: Iterator[dict | str], see: Any) -> Iterator[dict | str]:
+    """The manifest rows, each shown to ``see`` as its dict (a reused line parsed) on its way."""
+    loads = json.loads
+    for r in rows:
+        see(loads(r) if type(r) is str else r)
+        yield r
 
 
 def _shrink(bar: Any) -> None:

@@ -22,10 +22,21 @@ class SourceFile:
     """One input file: path relative to the input folder (POSIX form) and its fingerprint."""
 
     rel: str
-    path: str  # memory: a str, not a Path (a Path object costs several hundred bytes)
+    root: str  # the input folder, one string shared by every file (memory: no path per file)
     size: int
     mtime_ns: int
     sha256: str = ""
+
+    @property
+    def path(self) -> str:
+        """The file's path (a str, not a Path: a Path object costs several hundred bytes)."""
+        return source_path(self.root, self.rel)
+
+
+def source_path(root: str, rel: str) -> str:
+    """The path of the input file ``rel`` (POSIX form) in the input folder ``root``, as
+    ``discover`` found it."""
+    return root + os.sep + (rel if os.sep == "/" else rel.replace("/", os.sep))
 
 
 @dataclass(slots=True)
@@ -64,6 +75,7 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
         check_folders(input_dir, output_dir)
     notes: list[str] = []
     found: list[SourceFile] = []
+    top = str(input_dir)
     # speed: the superuser reads every file it can stat (one access() call per file less)
     is_root = hasattr(os, "geteuid") and os.geteuid() == 0
     for root, dirs, names in os.walk(input_dir, followlinks=False):
@@ -111,7 +123,7 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
             if not (is_root or os.access(full, os.R_OK)):
                 notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
                 continue
-            found.append(SourceFile(rel, full, st.st_size, st.st_mtime_ns))
+            found.append(SourceFile(rel, top, st.st_size, st.st_mtime_ns))
     found.sort(key=lambda f: f.rel)
     return found, notes
 

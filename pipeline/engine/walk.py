@@ -262,7 +262,12 @@ class Walk:
         if self.byte_copy_stage and self.is_byte_copy(rel, sha):
             idx = self._reached(sha, self.byte_copy_stage)
             if idx is not None:
-                step = self.trail_of(rel, sha)[idx]
+                # the judging step of ``trail_of`` alone (speed: the other steps' values may be
+                # read back from the ledger)
+                r = self.trails[sha][idx]
+                step = self.byte_copy_judge.byte_copy_verdict(self.rep[sha], sha, {
+                    "stage": self.stage_names[idx], "kept": r.kept, "reason": r.reason,
+                    "detail": r.detail, "values": r.values, "thresholds": r.thresholds})
                 return (step["stage"], step["reason"])
         return self.status.get(sha)
 

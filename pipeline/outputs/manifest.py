@@ -100,33 +100,50 @@ class Tally:
 
 def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
                   on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
-                  reuse: Any = None, corpus_positions: tuple[int, ...] = ()) -> Iterator[dict[str, Any] | str]:
+                  reuse: Any = None, corpus_positions: tuple[int, ...] = (),
+                  prefetch: Callable[[list[str]], None] | None = None) -> Iterator[dict[str, Any] | str]:
     """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
     into ``tally``; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it
     passes (the runner records the decisions in the same pass). With ``reuse`` (a
     ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line
-    (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded."""
+    (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded.
+    ``prefetch(sha256s)`` is told, ``ROWS_AHEAD`` files at a time, which contents' rows are
+    about to be built (the runner reads their stored values in a few queries)."""
     from .rowreuse import line_prefix, row_digest
     old_lines = reuse.lines() if reuse is not None and reuse.usable else None
     pending = next(old_lines, None) if old_lines is not None else None
-    for f in files:
-        digest = row_digest(f, walk, placed, corpus_positions) if reuse is not None else None
-        if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
-            while pending is not None and pending[0] < f.rel:
-                pending = next(old_lines, None)
-            if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
+    for start in range(0, len(files), ROWS_AHEAD):
+        chunk = files[start:start + ROWS_AHEAD]
+        ahead: list[tuple[Any, str | None, str | None]] = []  # (file, digest, reused line)
+        for f in chunk:
+            digest = row_digest(f, walk, placed, corpus_positions) if reuse is not None else None
+            line = None
+            if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
+                while pending is not None and pending[0] < f.rel:
+                    pending = next(old_lines, None)
+                if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
+                    line = pending[1]
+            ahead.append((f, digest, line))
+        if prefetch is not None:
+            prefetch([f.sha256 for f, _, line in ahead if line is None])
+        for f, digest, line in ahead:
+            if line is not None:
                 final = walk.final(f.rel, f.sha256)
                 part = None
                 if final is None:
                     part = placed.part_of.get(f.sha256) or walk.value_of(f.sha256, "split") or DEFAULT_PART
                 tally.count(f.sha256, final, part, walk.reached_names(f.rel, f.sha256))
-                yield pending[1]
+                yield line
                 continue
-        row, trail = manifest_row(f, walk, placed)
-        tally.add(row, trail)
-        if on_trail is not None:
-            on_trail(f, row, trail, digest)
-        yield row
+            row, trail = manifest_row(f, walk, placed)
+            tally.add(row, trail)
+            if on_trail is not None:
+                on_trail(f, row, trail, digest)
+            yield row
+
+
+#: Files whose rows are decided before they are built (``manifest_rows``' ``prefetch``).
+ROWS_AHEAD = 500
 
 
 def _jsonl(rows: Iterable[dict | str]) -> Iterator[str]:

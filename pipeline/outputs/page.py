@@ -191,14 +191,17 @@ class Facts:
 CLUSTER_FIELDS = ("id", "source", "status", "transpose", "output", "duplicate_of", "duplicate_kind", "similarity")
 
 
-def read_manifest(path: Path) -> Facts:
-    """The facts of a manifest.jsonl, read one line at a time; then, in a second quick pass,
-    the rows of the kept members of the clusters the page shows."""
-    facts = Facts()
-    loads, add = json.loads, facts.add
-    with open(path, encoding="utf-8") as fh:
-        for line in fh:
-            add(loads(line))
+def read_manifest(path: Path, facts: Facts | None = None) -> Facts:
+    """The facts of a manifest.jsonl, read one line at a time (or ``facts`` already gathered
+    from its rows, as the run writes them); then, in a second quick pass, the rows of the kept
+    members of the clusters the page shows."""
+    loads = json.loads
+    if facts is None:
+        facts = Facts()
+        add = facts.add
+        with open(path, encoding="utf-8") as fh:
+            for line in fh:
+                add(loads(line))
     shown = {cid for cid, _ in largest_clusters(facts)}
     if shown:
         prefix = len('{"id": "')  # every line starts with its id (outputs.CONTRACT_FIELDS)
@@ -392,15 +395,16 @@ def render(summary: dict, facts: Facts, *, stages: Iterable[str] | None = None,
 
 
 def write_report(out_dir: Path | str, summary: dict | None = None, stages: Iterable[str] | None = None,
-                 input_dir: Path | None = None) -> Path:
+                 input_dir: Path | None = None, facts: Facts | None = None) -> Path:
     """Write OUTPUT/report.html from the run's summary (read from summary.json when not given)
-    and its manifest; ``stages`` gives the stage order, ``input_dir`` the folder the sources are
-    read from for the cluster thumbnails (default: the summary's input). Returns the path."""
+    and its manifest (``facts``: gathered from its rows while they were written, else read
+    from it); ``stages`` gives the stage order, ``input_dir`` the folder the sources are read
+    from for the cluster thumbnails (default: the summary's input). Returns the path."""
     t0 = time.perf_counter()
     out_dir = Path(out_dir)
     if summary is None:
         summary = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))
-    facts = read_manifest(out_dir / "manifest.jsonl")
+    facts = read_manifest(out_dir / "manifest.jsonl", facts)
     page = render(summary, facts, stages=stages, input_dir=input_dir, out_dir=out_dir)
     elapsed = time.perf_counter() - t0
     page = page.replace("</body></html>", f'<p class="muted">This page took {elapsed:.2f} s to write.</p></body></html>')

@@ -163,6 +163,29 @@ class Ledger:
                             thresholds_of(thr))
         return out
 
+    def verdicts_for(self, source: "StoredValues", index: dict[str, int],
+                     make: Callable[[bool, str | None, str, dict, "StoredValues", int], Any]) -> dict[str, Any]:
+        """sha256 -> what ``make(kept, reason, detail, thresholds, source, i)`` builds of each
+        stored result of the stage whose values ``source`` reads (``values_source``), for the
+        contents in ``index`` (sha256 -> position in ``source.order``; keyed by the order's own
+        strings, no second copy of each sha256), the values left in the ledger. Memory: a rerun
+        holds a verdict per file and stage, and reads the values of the rows it rebuilds."""
+        out: dict[str, Any] = {}
+        thresholds_of = thresholds_from_json
+        order = source.order
+        for sha, kept, reason, detail, thr in self.db.execute(
+                "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
+                source.key):
+            i = index.get(sha)
+            if i is not None:
+                out[order[i]] = make(bool(kept), reason, detail, thresholds_of(thr), source, i)
+        return out
+
+    def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
+        """Where the stored values texts of one stage's per-file results are read, by index
+        into ``order`` (sha256s)."""
+        return StoredValues(self.db, stage, fingerprint, order)
+
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
         (``stored_result``: what the workers send, values already JSON text)."""
@@ -389,6 +412,75 @@ class _ArrayRows:
                 f"SELECT sha256, data FROM artifacts WHERE stage=? AND fingerprint=? AND name=? "
                 f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, name, *chunk)))
         return got
+
+
+class StoredValues:
+    """The stored values texts of one stage's per-file results (``records.Result.defer``),
+    read by content index (a position in ``order``, the run's contents in first-source order).
+
+    ``prefetch`` reads the texts of many contents in one query per ``FETCH_CHUNK`` keys and
+    holds them until the next read; ``text`` answers from them, else reads the next
+    ``FETCH_CHUNK`` contents from the missed one on (readers walk the contents in order: the
+    corpus stages' members, the placed outputs), or only the missed one when the last chunk
+    served few reads."""
+
+    __slots__ = ("db", "key", "order", "_held", "_served", "_keys")
+
+    def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, order: list[str]):
+        self.db, self.key, self.order = db, (stage, fingerprint), order
+        self._held: dict[str, str] = {}
+        self._served = SEQUENTIAL
+        self._keys: dict[str, bool] = {}
+
+    def may_have(self, name: str) -> bool:
+        """False when no stored text of the stage has the key ``name`` (``"name":`` appears in
+        none of them: one scan of the stage's rows, remembered). Speed: a reader looking for a
+        value another stage sets (the split's ``augment``) skips this stage's texts."""
+        found = self._keys.get(name)
+        if found is None:
+            found = self._keys[name] = self.db.execute(
+                "SELECT 1 FROM results WHERE stage=? AND fingerprint=? AND instr(vals, ?) > 0 LIMIT 1",
+                (*self.key, f'"{name}":')).fetchone() is not None
+        return found
+
+    def rows_added(self) -> None:
+        """Forget what ``may_have`` found: the stage's rows changed."""
+        self._keys.clear()
+
+    def text(self, index: int) -> str:
+        sha = self.order[index]
+        t = self._held.get(sha)
+        if t is None:
+            if self._served >= SEQUENTIAL:
+                self.prefetch(self.order[index:index + FETCH_CHUNK])
+                t = self._held.get(sha)
+            if t is None:
+                row = self.db.execute("SELECT vals FROM results WHERE stage=? AND fingerprint=? AND sha256=?",
+                                      (*self.key, sha)).fetchone()
+                if row is None:
+                    path = self.db.execute("PRAGMA database_list").fetchone()[2] or None
+                    raise LedgerError(f"the stored values of {self.key[0]} for content {sha} are no "
+                                      "longer in the state database (another process changed it "
+                                      "during the run?); rerun", file=path)
+                t = row[0]
+        self._served += 1
+        return t
+
+    def prefetch(self, shas: list[str]) -> None:
+        """Hold the texts of ``shas`` (and let go of those held before)."""
+        stage, fp = self.key
+        held: dict[str, str] = {}
+        for chunk in iter_chunks(shas, FETCH_CHUNK):
+            held.update(self.db.execute(
+                f"SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=? "
+                f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, *chunk)))
+        self._held = held
+        self._served = 0
+
+
+#: Reads a held chunk of values must have served for a miss to read the next chunk (fewer:
+#: the reader jumps around, and a miss reads one row).
+SEQUENTIAL = 16
 
 
 #: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).

@@ -17,7 +17,7 @@ from __future__ import annotations
 import json
 import sys
 from collections.abc import Mapping
-from typing import Any, Iterator
+from typing import Any, Iterator, Protocol
 
 from .codec import canonical_json, thresholds_from_json
 
@@ -39,7 +39,12 @@ class Result:
     A result read from the ledger keeps its values as the stored JSON text until they are first
     needed (``Compactor.make_stored``): a rerun reads every stored result to know what is kept,
     but needs the values only of the rows it rebuilds. ``names`` and ``vals`` are then
-    ``None`` and the text; ``expand()`` parses them."""
+    ``None`` and the text; ``expand()`` parses them.
+
+    A per-file result whose row is in the ledger can leave even the text there (``defer``,
+    ``Compactor.make_deferred``): ``names`` is then the stage's ``ValueSource`` (the ledger's
+    ``StoredValues``) and ``vals`` the content's index there, and every read of the values reads the
+    text from it (memory: the values text is about 0.9 KB per file over the per-file stages)."""
 
     __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds", "text")
 
@@ -70,10 +75,26 @@ class Result:
         """The result of its dict form (``to_json``)."""
         return _plain(d["kept"], d.get("reason"), d.get("detail", ""), d.get("values"), d.get("thresholds"))
 
-    def expand(self) -> "Result":
-        """Parse values still held as stored JSON text (no-op otherwise); returns self."""
+    def defer(self, source: "ValueSource", index: int) -> None:
+        """Leave the values text in the ledger (its row is committed): read from ``source``
+        (content ``index``) whenever needed. A result made in the main process is left as it is."""
         if self.names is None:
-            values = json.loads(self.vals)
+            self.names, self.vals, self.text = source, index, None
+
+    def _stored_text(self) -> str | None:
+        """The stored JSON text of values not parsed yet (kept or read from the ledger)."""
+        names = self.names
+        if names is None:
+            return self.vals
+        if type(names) is not tuple:  # deferred: the text is the ledger's
+            return names.text(self.vals)
+        return None
+
+    def expand(self) -> "Result":
+        """Parse values still held as stored JSON text or left in the ledger (no-op
+        otherwise); returns self."""
+        if type(self.names) is not tuple:
+            values = json.loads(self._stored_text())
             self.names = _shared_names(values)
             self.vals = _compact_values(values)
             self.text = None  # memory: one form at a time (``values_json`` makes it again)
@@ -84,22 +105,28 @@ class Result:
         form in which a record read back from the ledger and one computed in this run compare
         equal (``pipeline.outputs.rowreuse``)."""
         if self.text is None:
+            if type(self.names) is not tuple:  # deferred: read, not kept (memory)
+                return self._stored_text()
             self.text = canonical_json(self.values)
         return self.text
 
     @property
     def values(self) -> dict[str, Any]:
-        if self.names is None:  # parsed for the reader, the record stays text (memory, speed)
-            return json.loads(self.vals)
+        if type(self.names) is not tuple:  # parsed for the reader, the record stays text (memory, speed)
+            return json.loads(self._stored_text())
         return dict(zip(self.names, self.vals))
 
     def value(self, name: str, default: Any = None) -> Any:
         """One value by name, without building the values dict."""
-        if self.names is None:
+        names = self.names
+        if type(names) is not tuple:
             # stored JSON has every key as '"name":' (a quote inside a string is escaped, so
             # the pattern is a key); a name not in the text is not a value
-            text = self.vals
-            if name.isascii() and name.isprintable() and '"' not in name and "\\" not in name:
+            simple = name.isascii() and name.isprintable() and '"' not in name and "\\" not in name
+            if simple and names is not None and not names.may_have(name):
+                return default  # deferred, and no stored text of the stage has that key
+            text = self._stored_text()
+            if simple:
                 at = text.find(f'"{name}":')  # written as it is (no escapes)
                 if at < 0:
                     return default
@@ -146,7 +173,10 @@ class Result:
     __hash__ = None  # type: ignore[assignment]
 
     def __reduce__(self) -> tuple:  # plain pickling to and from the workers
-        self.expand()
+        if type(self.names) is not tuple:  # parsed for the pickle, the record stays as it is
+            values = json.loads(self._stored_text())
+            return (Result, (self.kept, self.reason, self.detail, _shared_names(values),
+                             _compact_values(values), self.thresholds))
         return (Result, (self.kept, self.reason, self.detail, self.names, self.vals, self.thresholds))
 
     def __repr__(self) -> str:
@@ -176,6 +206,17 @@ def _compact_values(values: Mapping[str, Any]) -> tuple:
     return tuple(_intern(v) if type(v) is str and len(v) <= 32 else v for v in values.values())
 
 
+class ValueSource(Protocol):
+    """Where a deferred result's values text is read (``ledger.StoredValues``)."""
+
+    def text(self, index: int) -> str: ...
+
+    def may_have(self, name: str) -> bool:
+        """False when no stored values text of the stage has the key ``name`` (written as
+        ``"name":``), so no deferred record of it has that value."""
+        ...
+
+
 class Compactor:
     """Makes ``Result`` records for one stage, sharing name tuples and thresholds among them."""
 
@@ -194,6 +235,14 @@ class Compactor:
         object written with sorted keys) until first read."""
         return Result(bool(kept), _intern(reason) if reason else reason, detail, None,
                       values_json, self._shared_thresholds(thresholds))
+
+    def make_deferred(self, kept: bool, reason: str | None, detail: str, thresholds: dict[str, Any] | None,
+                      source: "ValueSource", index: int) -> Result:
+        """A result read from the ledger without its values, which stay there (``Result.defer``)."""
+        r = Result(bool(kept), _intern(reason) if reason else reason, detail, None, "",
+                   self._shared_thresholds(thresholds))
+        r.defer(source, index)
+        return r
 
     def from_stored(self, stored: tuple[int, str | None, str, str, str]) -> Result:
         """The result of a stored form (``codec.stored_result``), its values left as text."""
