@@ -639,3 +639,41 @@ def test_filter_drops_by_a_metadata_column(tmp_path):
     raw["stages"][1]["filter"]["metadata_exclude"] = {"licnce": ["x"]}
     cfg.write_text(yaml.safe_dump(raw))
     assert main(["run", str(cfg), "--quiet"]) == 2
+
+
+class _Unread(dict):
+    """Values that must not be read (a rerun answers an old member's output count from the
+    split's saved counts)."""
+
+    def get(self, key, default=None):
+        raise AssertionError(f"values read: {key}")
+
+    __getitem__ = get
+
+
+def test_a_rerun_reads_output_counts_of_new_members_only():
+    """With the last run's results at hand (upstream options unchanged, so a member's
+    ``augment`` is the same), an old member's output count comes from the counts the split
+    saved; results and saved state equal those of the computation that reads every member's
+    values (the oracle, as in the test above). Without them, every member's values are read."""
+    c = Corpus(9)
+    ids = [c.fresh() for _ in range(60)]
+    aug = {m: {"augment": [-1, 2]} if k % 4 == 0 else {"augment": []} for k, m in enumerate(ids)}
+
+    def member(m, values=None):
+        out = c.member(m, values=aug[m])
+        if values is not None:
+            out.values = values
+        out.outputs = []  # as the walk builds them: counts from the transpose stage's values
+        return out
+
+    r1, s1 = run([member(m) for m in ids[:50]])
+    assert sum(s1.current["summary"]["files"].values()) == 50 + 2 * 13
+    assert set(s1.current["output_counts"]) == {m for m in ids[:50] if aug[m]["augment"]}
+    full, st_full = run([member(m) for m in ids], previous=s1.current)
+    inc, st_inc = run([member(m, _Unread()) for m in ids[:50]] + [member(m) for m in ids[50:]],
+                      previous=s1.current, flags={"previous_results": r1})
+    assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in full.items()}
+    assert st_inc.current == st_full.current
+    with pytest.raises(AssertionError, match="values read"):
+        run([member(m, _Unread()) for m in ids], previous=s1.current)

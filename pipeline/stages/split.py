@@ -241,7 +241,7 @@ class Split(Stage):
         saved = dict(state.previous.get("assignments", {}))
         previous = {} if state.flags.get("reassign") else saved
         ids = sorted(m.id for m in members)
-        sizes = {m.id: output_count(m) for m in members}
+        sizes = self._output_counts(members, state)
         links, ghosts, signed = self._links(members, state, previous)
         for g in ghosts:
             sizes[g] = 0.0
@@ -285,6 +285,23 @@ class Split(Stage):
                                             self.opts["group_threshold"], len(groups), grouping,
                                             signed))
         return results
+
+    def _output_counts(self, members: list[Member], state: CorpusState) -> dict[str, float]:
+        """``output_count`` of every member; a member of the last run is answered from the
+        counts it saved (those other than 1), valid when the runner hands over the last run's
+        results (``previous_results``: this stage's and every earlier stage's options are
+        unchanged, and a member id names its content, so its ``augment`` is the same). Speed:
+        a rerun reads ``augment`` from the ledger for the new members only."""
+        last = state.flags.get("previous_results")
+        saved = state.previous.get("output_counts") if last is not None else None
+        sizes: dict[str, float] = {}
+        for m in members:
+            if saved is not None and m.id in last and not m.outputs:
+                sizes[m.id] = float(saved.get(m.id, 1.0))
+            else:
+                sizes[m.id] = output_count(m)
+        state.save("output_counts", {k: v for k, v in sizes.items() if v != 1.0})
+        return sizes
 
     def _links(self, members: list[Member], state: CorpusState,
                previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str], str | None]:
