@@ -189,23 +189,12 @@ def lsh_rows(threshold: float, num_perm: int, recall: float = 0.99) -> int:
     return best
 
 
-def band_candidates(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None) -> "np.ndarray":
-    """Index pairs ``(i, j)``, ``i < j``, sharing at least one band: an ``(M, 2)`` int64 array,
-    sorted. With ``only`` (a boolean mask over the rows), just the pairs with at least one
-    row in it (incremental reruns pair the new files against everything, not all with all).
-    The pairs of ``band_codes``; empty signatures (no shingles) never pair."""
-    import numpy as np
-
-    codes, live = band_codes(sig, bands, only)
-    m = len(live)
-    return np.stack((live[codes // m], live[codes % m]), axis=1).astype(np.int64)
-
-
 def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
                ) -> tuple["np.ndarray", "np.ndarray"]:
     """``(codes, live)``: the rows with a non-empty signature (``live``, indices into ``sig``)
     and the sorted unique codes ``i * len(live) + j`` (``i < j`` index ``live``) of those
-    sharing at least one band, with ``only`` just those with a row in it. 8 bytes a pair
+    sharing at least one band, with ``only`` (a boolean mask over the rows) just those with a
+    row in it (incremental reruns pair the new files against everything, not all with all). 8 bytes a pair
     (memory: the split's candidates grow with the square of the corpus). One band at a time
     (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the number of distinct
     pairs instead of rows x bands x run length (a 100,000-file run held several GB in the
