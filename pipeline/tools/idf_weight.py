@@ -186,15 +186,26 @@ def chorales_side_by_side(works: list[dict[str, Any]]) -> str:
              f"idf-weighted verification ({table.files} files counted; {t_weighted:.1f} s):",
              format_chorales(weighted), ""]
 
+    def pair(a: str, b: str) -> tuple[float, float]:
+        return (sets.set_similarity(shingles[a], shingles[b])[0],
+                weighted_similarity(shingles[a], shingles[b], table)[0])
+
     def values(a: str, b: str) -> str:
-        plain_value = sets.set_similarity(shingles[a], shingles[b])[0]
-        return (f"{a} ~ {b}: {plain_value:.3f} as it is, "
-                f"{weighted_similarity(shingles[a], shingles[b], table)[0]:.3f} weighted")
+        shared = np.intersect1d(sets.lead_part(shingles[a]), sets.lead_part(shingles[b]))
+        df = table.df(shared)
+        held = f", held by {df.min()}-{df.max()} chorales" if len(df) else ""
+        return (f"{a} ~ {b}: {pair(a, b)[0]:.3f} as it is, {pair(a, b)[1]:.3f} weighted; "
+                f"{len(shared)} lead shingles shared{held}")
 
     from ..similarity import sets
     false = [(w["a"], w["b"]) for w in plain["different_tunes_linked"]]
     lines.append("pairs of different tunes linked as it is:")
     lines += [f"  {values(a, b)}" for a, b in false]
+    kept = [pair(a, b) for a, b in plain["same_tune_linked_pairs"]]
+    ratio = np.array([w / p for p, w in kept if p >= 0.2])
+    lines.append(f"pairs of one tune linked as it is with a value of 0.2 or more: {len(ratio)}; weighted "
+                 f"over as it is, 10th / 25th / 50th percentile: "
+                 + " / ".join(f"{v:.3f}" for v in np.percentile(ratio, [10, 25, 50])))
     lost = sorted(set(plain["same_tune_linked_pairs"]) - set(weighted["same_tune_linked_pairs"]))
     lines.append(f"pairs of one tune linked as it is and not weighted: {len(lost)}")
     lines += [f"  {values(a, b)}" for a, b in lost]
