@@ -268,7 +268,7 @@ def chorales():
 
 
 def test_bach_chorales_sharing_a_tune(chorales):
-    from pipeline.similarity.links import near_pairs
+    from pipeline.similarity.grouping import near_links
     members = [m for _, m in chorales.values()]
     name_of = {m.id: name for name, (_, m) in chorales.items()}
     tune_of = {m.id: tune for tune, m in chorales.values()}
@@ -288,10 +288,10 @@ def test_bach_chorales_sharing_a_tune(chorales):
     # no cluster mixes two tunes
     for c in clusters.values():
         assert len({tune_of[m.id] for n, (_, m) in chorales.items() if n in c}) == 1, c
-    # a lower grouping threshold (as the split stage uses) also joins more harmonizations
+    # the split stage's grouping search at its threshold (0.2) also joins more harmonizations
     sigs = {m.id: m.artifacts["dedup"]["signature"] for m in members}
     shingles = {m.id: m.artifacts["dedup"]["shingles"] for m in members}
-    low = {(name_of[a], name_of[b]) for a, b, _ in near_pairs(sigs, 0.2, shingles=shingles)}
+    low = {(name_of[a], name_of[b]) for a, b, _ in near_links(sigs, 0.2, shingles)}
     low = {tuple(sorted(p)) for p in low}
     assert ("bwv114.7", "bwv258") in low and ("bwv256", "bwv258") in low
     assert all(tune_of[chorales[a][1].id] == tune_of[chorales[b][1].id] for a, b in low), low

@@ -1,4 +1,5 @@
-"""MinHash, LSH banding, verification and union-find, checked against datasketch and theory."""
+"""MinHash, LSH banding, verification and union-find, checked against datasketch, theory and
+brute force (Python sets)."""
 from __future__ import annotations
 
 import numpy as np
@@ -7,11 +8,11 @@ from datasketch import MinHash, MinHashLSH
 
 from pipeline.midi import accel
 from pipeline.midi import decode as smf
+from pipeline.similarity.grouping import near_links
 from pipeline.similarity.lsh import (LSHIndex, band_keys, candidate_probability, check_banding,
-                                     sorted_unique)
-from pipeline.similarity.links import (UnionFind, near_pairs, near_pairs_between, pair_values,
-                                       verify_codes, verify_index_pairs, verify_pairs)
-from pipeline.similarity.minhash import estimate_jaccard, fold32, minhash
+                                     pair_estimates, sorted_unique)
+from pipeline.similarity.links import UnionFind, code_similarities, verify_codes
+from pipeline.similarity.minhash import fold32, minhash
 from pipeline.similarity.sets import pair_similarities, set_similarity
 
 
@@ -46,12 +47,14 @@ def test_estimate_error_follows_broder_standard_deviation():
     # min-hashes is an unbiased estimate of J with variance J(1-J)/k for k permutations.
     rng = np.random.default_rng(0)
     k = 128
+    # pair_estimates (the split's and dedup's MinHash estimates) on one pair per seed
     z = []
     for i in range(300):
         j = float(rng.uniform(0.1, 0.9))
         a, b = pair_with_jaccard(rng, j)
         exact = len(np.intersect1d(a, b)) / len(np.union1d(a, b))
-        est = estimate_jaccard(minhash(a, k, seed=i), minhash(b, k, seed=i))
+        sig = np.vstack([minhash(a, k, seed=i), minhash(b, k, seed=i)])
+        est = float(pair_estimates(sig, np.array([0]), np.array([1]))[0])
         z.append((est - exact) / np.sqrt(exact * (1 - exact) / k))
     z = np.array(z)
     assert abs(z.mean()) < 0.25            # unbiased: mean of 300 z-scores is ~N(0, 1/300)
@@ -249,48 +252,72 @@ def test_banding_kernel_names_bad_input():
         kernel(sig, 4, 2, 5, new)
 
 
-def _pair_by_pair(pairs, sets, threshold, skip):
-    """The plain loop both verify functions must equal: set_similarity one pair at a time,
-    skipping pairs already joined."""
-    out = []
-    for a, b in pairs:
-        if skip is not None and skip.find(a) == skip.find(b):
-            continue
-        sim, _ = set_similarity(sets[a], sets[b])
-        if sim >= threshold:
-            out.append((a, b, sim))
-            if skip is not None:
-                skip.union(a, b)
-    return out
+def _brute_force(x: np.ndarray, y: np.ndarray, generic: np.ndarray | None = None) -> float:
+    """Reference value of one pair at the verification's defaults (cap ``max_shingles``,
+    containment from ``MIN_SIZE_RATIO``): Python's set operations (``_python_set_similarity``)
+    on the two sets without the ``generic`` values."""
+    from pipeline.analysis.shingles import ShingleSpec
+    from pipeline.similarity.sets import MIN_SIZE_RATIO
+    g = set() if generic is None else {int(v) for v in generic}
+    x = np.array([v for v in x.tolist() if v not in g], dtype=np.uint64)
+    y = np.array([v for v in y.tolist() if v not in g], dtype=np.uint64)
+    return _python_set_similarity(x, y, ShingleSpec().max_shingles, MIN_SIZE_RATIO)
 
 
-def test_verify_index_pairs_equals_verify_pairs():
-    # Both forms must give the pair-by-pair loop's result exactly (same links, same order,
-    # same union-find decisions), on candidate pairs in code order as LSHIndex makes them.
+def _mixed_sets(rng: np.random.Generator, n: int, tunes: int) -> dict[str, np.ndarray]:
+    """``n`` sets, each a variant of one of ``tunes`` random sets (a random head cut off, 8
+    values of its own) plus 40 of 60 values all share (stock figures): values below 2**63
+    form a lead part (``lead_part``) and the rest the other voices, so whole sets and leads
+    are both compared."""
+    base = [np.unique(rng.integers(0, 2**64, 120, dtype=np.uint64)) for _ in range(tunes)]
+    common = rng.integers(0, 2**64, 60, dtype=np.uint64)
+    return {f"k{c:03d}": np.unique(np.concatenate([base[c % tunes][rng.integers(0, 10):],
+                                                   rng.integers(0, 2**64, 8, dtype=np.uint64),
+                                                   rng.choice(common, 40, replace=False)]))
+            for c in range(n)}
+
+
+def _signature(x: np.ndarray) -> np.ndarray:
+    """A signature as ``signature_of`` lays it out: the lead part's MinHash (64 permutations)
+    in the first half when it holds 16 or more shingles, the whole set's in the second."""
+    from pipeline.similarity.sets import lead_part
+    lead = lead_part(x)
+    first = minhash(lead, 64, 1) if len(lead) >= 16 else minhash(x, 128, 1)[:64]
+    return np.concatenate([first, minhash(x, 128, 1)[64:]])
+
+
+def test_verify_codes_equals_brute_force_on_any_codes_and_on_dedups_candidates():
+    # Reference: Jaccard / containment with Python sets, pair by pair (_brute_force). First on
+    # arbitrary sorted codes (every pair's value decides alone), then on the pairs dedup
+    # verifies: LSH candidates (LSHIndex, 64 bands of 2 rows) kept by the MinHash bounds
+    # (plausible_codes); those must be all pairs at or above the threshold.
     rng = np.random.default_rng(5)
-    keys = [f"k{n:03d}" for n in range(60)]
-    base = [np.unique(rng.integers(0, 2**63, 120, dtype=np.uint64)) for _ in range(12)]
-    sets = {k: np.unique(np.concatenate([base[n % 12][rng.integers(0, 10):],
-                                         rng.integers(0, 2**63, 8, dtype=np.uint64)]))
-            for n, k in enumerate(keys)}
-    codes = np.unique(rng.integers(0, 60 * 60, 900))
-    i, j = codes // 60, codes % 60
-    keep = i < j
-    i, j = i[keep], j[keep]
-    pairs = [(keys[a], keys[b]) for a, b in zip(i, j)]
-    for skip in (False, True):
-        uf0, uf1, uf2 = (UnionFind(keys), UnionFind(keys), UnionFind(keys)) if skip else (None,) * 3
-        reference = _pair_by_pair(pairs, sets, 0.5, uf0)
-        want = verify_pairs(pairs, sets, 0.5, skip=uf1)
-        got = verify_index_pairs(keys, i, j, sets, 0.5, skip=uf2)
-        assert want == reference
-        assert got == want and len(want) > 10
-        if skip:
-            assert uf1.groups() == uf2.groups() == uf0.groups()
+    sets = _mixed_sets(rng, 60, 12)
+    keys = sorted(sets)
+    n = len(keys)
+    codes = sorted_unique(rng.integers(0, n * n, 900))
+    codes = codes[codes // n < codes % n]
+    want = [(keys[a], keys[b], v) for a, b in zip((codes // n).tolist(), (codes % n).tolist())
+            for v in [_brute_force(sets[keys[a]], sets[keys[b]])] if v >= 0.5]
+    got = verify_codes(keys, codes, sets, 0.5)
+    assert got == want and 10 < len(got) < len(codes)
+    every = [(keys[a], keys[b], v) for a in range(n) for b in range(a + 1, n)
+             for v in [_brute_force(sets[keys[a]], sets[keys[b]])] if v >= 0.5]
+    index = LSHIndex(128, 64)
+    index.extend(keys, np.vstack([_signature(sets[k]) for k in keys]))
+    found = index.candidate_codes()
+    kept = index.plausible_codes(found, np.array([len(sets[k]) for k in keys]), 0.5)
+    assert len(kept) < len(found)  # the bounds drop pairs (of different tunes)
+    assert verify_codes(index.ids, kept, sets, 0.5) == every and len(every) > 100
+    # dedup's clusters: the union-find over the links are the tunes (variants of one base)
+    uf = UnionFind(keys)
+    for a, b, _ in every:
+        uf.union(a, b)
+    assert uf.groups() == [[k for k in keys if int(k[1:]) % 12 == t] for t in range(12)]
 
 
-def test_verify_with_generic_shingles_equals_set_similarity_and_leaves_the_sets_alone():
-    # Reference: set_similarity pair by pair with the same generic shingles left out; the
+def test_verify_with_generic_shingles_equals_brute_force_and_leaves_the_sets_alone():
+    # Reference: _brute_force with the same generic shingles left out, on every pair; the
     # caller's arrays are not changed (verification drops generic shingles from its own reads)
     rng = np.random.default_rng(8)
     keys = [f"k{n:02d}" for n in range(30)]
@@ -300,20 +327,22 @@ def test_verify_with_generic_shingles_equals_set_similarity_and_leaves_the_sets_
     before = {k: v.copy() for k, v in sets.items()}
     generic = common[::2].copy()
     i, j = np.triu_indices(len(keys), 1)
-    got = verify_index_pairs(keys, i, j, sets, 0.375, generic=generic)
+    codes = i * len(keys) + j
+    got = verify_codes(keys, codes, sets, 0.375, generic=generic)
     want = [(keys[a], keys[b], v) for a, b in zip(i.tolist(), j.tolist())
-            for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.375]
+            for v in [_brute_force(sets[keys[a]], sets[keys[b]], generic)] if v >= 0.375]
     assert got == want and 0 < len(got) < len(i)
     assert all(np.array_equal(sets[k], before[k]) for k in keys)
 
 
 @pytest.mark.parametrize("budget", [1, 300, 2_000, None])
-def test_verification_in_blocks_equals_set_similarity(budget):
-    # Reference: set_similarity pair by pair (generic shingles left out). The verification
+def test_verification_in_blocks_equals_brute_force(budget):
+    # Reference: _brute_force pair by pair (generic shingles left out). The verification
     # reads the sets a block at a time (at most about ``budget`` shingles held; 1 makes every
     # set a block of its own, None the default, one block here): the values must not depend on
-    # the blocks, for LSH codes (verify_codes) and for pairs in any order (pair_values), and
-    # every set is read only through the bulk reader, never held beyond the budget.
+    # the blocks, for the pairs kept (verify_codes) and for every pair's value
+    # (code_similarities, pairs of a file with itself included), and every set is read only
+    # through the bulk reader, never held beyond the budget.
     from pipeline.similarity import links
     rng = np.random.default_rng(21)
     keys = [f"k{n:02d}" for n in range(40)]
@@ -324,16 +353,19 @@ def test_verification_in_blocks_equals_set_similarity(budget):
     generic = common[::3].copy()
     n = len(keys)
     codes = sorted_unique(rng.integers(0, n * n, 500))
-    codes = codes[codes // n < codes % n]
-    want = [(keys[a], keys[b], v) for a, b in zip((codes // n).tolist(), (codes % n).tolist())
-            for v in [set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]] if v >= 0.3]
-    got = verify_codes(keys, codes, sets, 0.3, generic=generic, budget=budget)
-    assert got == want and 0 < len(got) < len(codes)
-    i = rng.integers(0, n, 300)
-    j = rng.integers(0, n, 300)
-    ref = np.array([set_similarity(sets[keys[a]], sets[keys[b]], generic=generic)[0]
-                    for a, b in zip(i.tolist(), j.tolist())])
-    assert np.array_equal(pair_values(keys, i, j, sets, generic=generic, budget=budget), ref)
+    codes = codes[codes // n <= codes % n]
+    ref = np.array([_brute_force(sets[keys[a]], sets[keys[b]], generic)
+                    for a, b in zip((codes // n).tolist(), (codes % n).tolist())])
+    low = codes // n < codes % n
+    want = [(keys[a], keys[b], v) for a, b, v in
+            zip((codes[low] // n).tolist(), (codes[low] % n).tolist(), ref[low].tolist()) if v >= 0.3]
+    got = verify_codes(keys, codes[low], sets, 0.3, generic=generic, budget=budget)
+    assert got == want and 0 < len(got) < low.sum()
+    values = np.full(len(codes), np.nan)
+    for at, val in code_similarities(keys, codes, sets, generic=generic, budget=budget):
+        assert np.isnan(values[at]).all()  # each pair once
+        values[at] = val
+    assert np.array_equal(values, ref) and (values[~low] == 1.0).all()
     held = []
     real = links._read_sets
 
@@ -416,31 +448,28 @@ def test_sorted_unique_equals_numpy_unique():
         assert np.array_equal(sorted_unique(a), np.unique(a))
 
 
-def test_near_pairs_verifies_and_incremental_form_matches():
+def test_near_links_equal_brute_force_and_the_incremental_form_matches():
+    # Reference: _brute_force over all pairs. The split's (and leakage's) search near_links
+    # must return exactly the pairs at or above the threshold with their values; with
+    # ``only`` (a rerun's new files) the pairs touching them; without shingle sets the MinHash
+    # estimate decides, on the same pairs here (variants near 0.9, other pairs near 0).
     rng = np.random.default_rng(3)
-    sets, sigs = {}, {}
+    sets = {}
     for c in range(30):
-        base = np.unique(rng.integers(0, 2**63, 150, dtype=np.uint64))
+        base = np.unique(rng.integers(0, 2**64, 150, dtype=np.uint64))
         sets[f"o{c:02d}"] = base
-        sets[f"d{c:02d}"] = np.unique(np.concatenate([base[10:], rng.integers(0, 2**63, 5, dtype=np.uint64)]))
-    for k, v in sets.items():
-        sigs[k] = minhash(v)
-    pairs = near_pairs(sigs, 0.7, num_perm=128, bands=32, shingles=sets)
+        sets[f"d{c:02d}"] = np.unique(np.concatenate([base[10:], rng.integers(0, 2**64, 5, dtype=np.uint64)]))
+    sigs = {k: _signature(v) for k, v in sets.items()}
+    keys = sorted(sets)
+    want = [(a, b, v) for x, a in enumerate(keys) for b in keys[x + 1:]
+            for v in [_brute_force(sets[a], sets[b])] if v >= 0.7]
+    pairs = near_links(sigs, 0.7, sets)
+    assert pairs == want
     assert [(a, b) for a, b, _ in pairs] == sorted((f"d{c:02d}", f"o{c:02d}") for c in range(30))
-    old = {k: v for k, v in sigs.items() if k < "o15"}
-    new = {k: v for k, v in sigs.items() if k >= "o15"}
-    inc = near_pairs_between(new, old, 0.7, num_perm=128, bands=32, shingles=sets)
-    assert inc == [p for p in pairs if p[1] >= "o15"]
-    est = near_pairs(sigs, 0.7, num_perm=128, bands=32)  # estimate-verified
+    new = {k for k in sigs if k >= "o15"}
+    assert near_links(sigs, 0.7, sets, only=new) == [p for p in want if p[0] in new or p[1] in new]
+    est = near_links(sigs, 0.7)  # estimate-verified
     assert {(a, b) for a, b, _ in est} == {(a, b) for a, b, _ in pairs}
-
-
-def test_verify_skips_pairs_already_joined():
-    sh = {k: np.arange(10, dtype=np.uint64) for k in "abc"}
-    uf = UnionFind("abc")
-    out = verify_pairs([("a", "b"), ("a", "c"), ("b", "c")], sh, 0.9, skip=uf)
-    assert [(a, b) for a, b, _ in out] == [("a", "b"), ("a", "c")]
-    assert uf.groups() == [["a", "b", "c"]]
 
 
 def test_union_find_groups():

@@ -4,7 +4,8 @@ Two steps:
 
 1. ``build_groups`` joins members that must travel together: near-duplicate links (any pair
    above the grouping threshold) and forced groupings (same folder, same normalized title, ...)
-   are merged transitively with a union-find, so a group is a connected component.
+   are merged transitively with a union-find (``links.UnionFind``), so a group is a connected
+   component.
 2. ``assign_groups`` puts every group, whole, into one part.
 
 Placement rule (deterministic whatever the input order):
@@ -37,28 +38,6 @@ if TYPE_CHECKING:  # the annotations' numpy; the functions on arrays import it t
 Move = tuple[str, str, str, str]   # (member_id, from_part, to_part, reason)
 
 
-class DisjointSet:
-    """Union-find with path halving; the representative of a set is its smallest element."""
-
-    def __init__(self, items: Iterable[str] = ()):
-        self.parent: dict[str, str] = {}
-        for it in items:
-            self.parent.setdefault(it, it)
-
-    def find(self, x: str) -> str:
-        p = self.parent.setdefault(x, x)
-        while p != self.parent[p]:
-            self.parent[p] = self.parent[self.parent[p]]
-            p = self.parent[p]
-        return p
-
-    def union(self, a: str, b: str) -> None:
-        ra, rb = self.find(a), self.find(b)
-        if ra != rb:
-            lo, hi = (ra, rb) if ra < rb else (rb, ra)
-            self.parent[hi] = lo
-
-
 def build_groups(members: Iterable[str], links: Iterable[tuple[str, str]] = (),
                  forced: Iterable[Iterable[str]] = ()) -> dict[str, list[str]]:
     """Connected components of ``members`` under ``links`` and ``forced`` groupings.
@@ -66,19 +45,18 @@ def build_groups(members: Iterable[str], links: Iterable[tuple[str, str]] = (),
     Returns ``{group_key: sorted member ids}`` where the key is the smallest member id, so keys
     do not depend on input order. Links or forced groups naming unknown ids are ignored.
     """
-    ds = DisjointSet(members)
-    known = ds.parent.keys()
+    from .links import UnionFind  # the one union-find (dedup's clusters too)
+
+    uf = UnionFind(members)
+    known = uf.parent.keys()
     for a, b in links:
         if a in known and b in known:
-            ds.union(a, b)
+            uf.union(a, b)
     for grp in forced:
         ids = [m for m in grp if m in known]
         for other in ids[1:]:
-            ds.union(ids[0], other)
-    groups: dict[str, list[str]] = defaultdict(list)
-    for m in sorted(known):
-        groups[ds.find(m)].append(m)
-    return dict(groups)
+            uf.union(ids[0], other)
+    return {g[0]: g for g in uf.groups()}
 
 
 def group_by_key(member_keys: Mapping[str, Hashable | None]) -> list[list[str]]:
@@ -237,7 +215,9 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     search: LSH bands chosen for ``recall`` at the threshold itself, then a vectorized MinHash
     estimate drops candidates more than ``margin_sigmas`` standard errors below the threshold,
     and the rest are verified exactly on the shingle sets (Jaccard or excerpt containment, as in
-    ``pipeline.similarity.sets.set_similarity``); without shingles the estimate decides.
+    ``pipeline.similarity.sets.set_similarity``) by ``links.verify_codes``, dedup's
+    verification; without shingles the estimate decides. The ``leakage`` audit searches with
+    this function too.
     """
     import numpy as np
 

@@ -1,8 +1,10 @@
 """Candidate pairs verified into links, and the union-find that joins them.
 
-``near_pairs`` (all against all) and ``near_pairs_between`` (new against old plus new among
-themselves, for cheap reruns) return verified ``(id_a, id_b, similarity)`` triples; the
-verification (``code_similarities``) reads the stored shingle sets in bulk, a block at a time.
+The one verification of candidate pairs (dedup's, the split's grouping's, and through
+``grouping.near_links`` the ``leakage`` audit's): ``verify_codes`` keeps the pairs of sorted
+LSH codes that reach a threshold, ``code_similarities`` gives every pair's value; both read the
+stored shingle sets in bulk, a block at a time. ``UnionFind`` is the one union-find (dedup's
+clusters, the split's groups).
 """
 from __future__ import annotations
 
@@ -11,8 +13,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from ..store.ledger import load_arrays
-from .lsh import LSHIndex, sorted_unique
-from .minhash import estimate_jaccard
+from .lsh import sorted_unique
 from .sets import MIN_SIZE_RATIO, drop_generic, lead_part, pair_similarities
 
 
@@ -54,68 +55,6 @@ class UnionFind:
         for k in self.parent:
             out.setdefault(self.find(k), []).append(k)
         return sorted((sorted(g) for g in out.values()), key=lambda g: g[0])
-
-
-def verify_pairs(pairs: Iterable[tuple[str, str]], shingles: Any, threshold: float, *,
-                 signatures: dict[str, np.ndarray] | None = None,
-                 min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None,
-                 generic: np.ndarray | None = None) -> list[tuple[str, str, float]]:
-    """Keep the candidate pairs whose similarity reaches ``threshold``: ``(a, b, sim)``.
-
-    Similarity is ``set_similarity`` on the shingle sets when given (``shingles[key]``, compared
-    by ``verify_index_pairs``), else the MinHash estimate from ``signatures``. With ``skip`` (a
-    UnionFind), pairs already in one set are not linked again and verified pairs are unioned
-    (enough for clustering)."""
-    if shingles is None and signatures is None:
-        raise ValueError("verify_pairs needs shingles (exact) or signatures (estimate)")
-    pairs = list(pairs)
-    if shingles is None:
-        return _link_in_order(((a, b, estimate_jaccard(signatures[a], signatures[b])) for a, b in pairs),
-                              threshold, skip)
-    pos: dict[str, int] = {}
-    index = np.array([pos.setdefault(k, len(pos)) for pair in pairs for k in pair],
-                     dtype=np.int64).reshape(-1, 2)
-    return verify_index_pairs(list(pos), index[:, 0], index[:, 1], shingles, threshold,
-                              min_size_ratio=min_size_ratio, skip=skip, generic=generic)
-
-
-def verify_index_pairs(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any,
-                       threshold: float, *, min_size_ratio: float = MIN_SIZE_RATIO,
-                       skip: UnionFind | None = None, generic: np.ndarray | None = None
-                       ) -> list[tuple[str, str, float]]:
-    """``verify_pairs`` of the pairs ``(keys[i[k]], keys[j[k]])`` given as index arrays: the
-    similarities of all pairs (``pair_values``), then the pairs that reach ``threshold`` taken
-    in order, so the result is the one a pair-by-pair pass gives. ``generic`` shingles are
-    left out of every set first (``drop_generic``)."""
-    i = np.asarray(i, dtype=np.int64)
-    j = np.asarray(j, dtype=np.int64)
-    if not len(i):
-        return []
-    sims = pair_values(keys, i, j, shingles, generic=generic, min_size_ratio=min_size_ratio)
-    hit = np.flatnonzero(sims >= threshold)
-    hits = [(keys[a], keys[b], sim) for a, b, sim in
-            zip(i[hit].tolist(), j[hit].tolist(), sims[hit].tolist())]
-    return _link_in_order(hits, threshold, skip)
-
-
-def pair_values(keys: list[str], i: np.ndarray, j: np.ndarray, shingles: Any, *,
-                generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
-                budget: int | None = None) -> np.ndarray:
-    """``set_similarity`` (float64) of every pair ``(keys[i[k]], keys[j[k]])``, in the order
-    given (``code_similarities`` on the pairs as sorted codes)."""
-    i = np.asarray(i, dtype=np.int64)
-    j = np.asarray(j, dtype=np.int64)
-    sims = np.zeros(len(i), dtype=np.float64)
-    if not len(i):
-        return sims
-    n = len(keys)
-    codes = np.minimum(i, j) * n + np.maximum(i, j)
-    order = np.argsort(codes, kind="stable")
-    codes = codes[order]
-    for at, val in code_similarities(keys, codes, shingles, generic=generic,
-                                     min_size_ratio=min_size_ratio, budget=budget):
-        sims[order[at]] = val
-    return sims
 
 
 def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,
@@ -227,53 +166,3 @@ VERIFY_CHUNK = 1 << 14
 #: Shingles held at once while candidate pairs are verified (``code_similarities``): 8 bytes each,
 #: so about 32 MB of sets whatever the corpus size.
 VERIFY_SHINGLES = 1 << 22
-
-
-def _link_in_order(scored: Iterable[tuple[str, str, float]], threshold: float,
-                   skip: UnionFind | None) -> list[tuple[str, str, float]]:
-    """The scored pairs at or above ``threshold``, in order; with ``skip``, a pair whose ends
-    are already in one set is passed over and each kept pair joins its ends."""
-    out: list[tuple[str, str, float]] = []
-    for a, b, sim in scored:
-        if sim < threshold:
-            continue
-        if skip is not None:
-            if skip.find(a) == skip.find(b):
-                continue
-            skip.union(a, b)
-        out.append((a, b, sim))
-    return out
-
-
-def near_pairs(signatures: dict[str, np.ndarray], threshold: float, *, num_perm: int = 128,
-               bands: int = 64, shingles: dict[str, np.ndarray] | None = None,
-               min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
-               ) -> list[tuple[str, str, float]]:
-    """Verified near pairs ``(a, b, similarity)`` with ``a < b``, sorted.
-
-    Candidates come from LSH banding; each is verified on the exact shingle sets when
-    ``shingles`` is given (Jaccard or excerpt containment, see ``set_similarity``), else on the
-    MinHash estimate. With ``skip`` (a UnionFind), pairs already in one set are not verified
-    and verified pairs are unioned: enough for clustering, fewer comparisons.
-    """
-    index = LSHIndex(num_perm, bands)
-    for key in sorted(signatures):
-        index.add(key, signatures[key])
-    return verify_pairs(index.candidates(), shingles, threshold, signatures=signatures,
-                        min_size_ratio=min_size_ratio, skip=skip)
-
-
-def near_pairs_between(new: dict[str, np.ndarray], old: dict[str, np.ndarray], threshold: float, *,
-                       num_perm: int = 128, bands: int = 64,
-                       shingles: dict[str, np.ndarray] | None = None,
-                       min_size_ratio: float = MIN_SIZE_RATIO, skip: UnionFind | None = None
-                       ) -> list[tuple[str, str, float]]:
-    """Incremental form: pairs new-vs-old and new-vs-new only (old-vs-old are not recomputed)."""
-    index = LSHIndex(num_perm, bands)
-    for key in sorted(old):
-        index.add(key, old[key])
-    for key in sorted(new):
-        index.add(key, new[key])
-    allsigs = {**old, **new}
-    return verify_pairs(index.candidates(set(new)), shingles, threshold, signatures=allsigs,
-                        min_size_ratio=min_size_ratio, skip=skip)

@@ -109,14 +109,6 @@ def is_empty(signature: np.ndarray) -> bool:
     return bool(np.all(signature == EMPTY_VALUE))
 
 
-def estimate_jaccard(sig_a: np.ndarray, sig_b: np.ndarray) -> float:
-    """Fraction of equal MinHash values: an unbiased estimate of Jaccard (Broder 1997)."""
-    if len(sig_a) != len(sig_b):
-        raise ValueError(f"signatures of different lengths ({len(sig_a)} vs {len(sig_b)}) "
-                         "cannot be compared: were they made with the same num_perm?")
-    return float(np.mean(sig_a == sig_b))
-
-
 def signature_of(piece: Piece, opts: dict[str, Any] | None = None
                  ) -> tuple[np.ndarray, np.ndarray, str]:
     """``(signature uint32[num_perm], shingles uint64[], content_hash)`` of a piece: the one

@@ -324,7 +324,7 @@ def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
                      {k: a["shingles"] for k, a in arts.items()})
     low_pairs = {(min(a, b), max(a, b)): s for a, b, s in low}
     by_id = {r["id"]: r for r in recs}
-    same, same_linked, same_grouped, wrong = 0, 0, 0, []
+    same, same_linked, same_grouped, wrong, same_found = 0, 0, 0, [], []
     known = sorted(k for k, r in by_id.items() if r["soprano"])  # a soprano part was found
     for a, b in combinations(known, 2):
         ms = melody_similarity(by_id[a]["soprano"], by_id[b]["soprano"])
@@ -334,12 +334,15 @@ def chorale_check(works: list[dict[str, Any]], dedup_opts: dict | None = None,
             same += 1
             same_linked += linked
             same_grouped += grouped or linked
+            if grouped or linked:
+                same_found.append((by_id[a]["rel"], by_id[b]["rel"]))
         elif ms < OTHER_TUNE and (linked or grouped):
             wrong.append({"a": by_id[a]["rel"], "b": by_id[b]["rel"], "soprano_similarity": round(ms, 3),
                           "kind": "dedup cluster" if linked else f"link at {group_threshold}",
                           "similarity": round(low_pairs.get((a, b), 0.0), 3)})
     return {"chorales": len(recs), "with_soprano": len(known), "same_tune_pairs": same, "same_tune_linked_by_dedup": same_linked,
-            "same_tune_linked_at_group_threshold": same_grouped, "different_tunes_linked": wrong}
+            "same_tune_linked_at_group_threshold": same_grouped, "different_tunes_linked": wrong,
+            "same_tune_linked_pairs": same_found}
 
 
 def format_chorales(res: dict[str, Any]) -> str:
