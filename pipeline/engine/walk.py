@@ -69,17 +69,18 @@ class StageWalk:
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
-                # in the ledger until compared (Stage.deferred_artifacts)
-                arts = (ledger.artifacts_for(st.name, st.artifact_fingerprint, set(alive),
-                                             defer=st.deferred_artifacts)
-                        if st.has_prepare() else {})
+                # in the ledger until compared (Stage.deferred_artifacts); the others are held
+                # as columns, each member's artifacts a row of them
+                arts = (ledger.artifact_columns(st.name, st.artifact_fingerprint, alive,
+                                                defer=st.deferred_artifacts)
+                        if st.has_prepare() else None)
                 members = []
-                for sha in alive:
+                for i, sha in enumerate(alive):
                     values = TrailValues(trails[sha])
                     meta = (source_fields(rep[sha], values.get("file_title"), self.metadata)
                             if st.uses_source_fields else {})
-                    members.append(Member(sha[:16], sha, rep[sha], values, {st.name: arts.pop(sha, {})},
-                                          meta=meta))
+                    members.append(Member(sha[:16], sha, rep[sha], values,
+                                          {st.name: arts.row(i) if arts is not None else {}}, meta=meta))
                 del arts
                 for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
                     res = walk.artifacts.get(prev, {})
@@ -106,7 +107,7 @@ class StageWalk:
                 compact: dict[str, Any] = {}
                 new_rows: list[tuple[str, Any]] = []  # results this run computed (to store)
                 for sha in alive:
-                    r = res.get(sha[:16])
+                    r = res.pop(sha[:16], None)  # memory: the stage's result goes once compacted
                     if r is not None and last is not None and r is last.get(sha[:16]):
                         # the last run's record, returned as it is
                         rec = r

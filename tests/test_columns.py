@@ -1,0 +1,79 @@
+"""The artifact column store (``Ledger.artifact_columns``) returns what the dict per file
+(``Ledger.artifacts_for``) returned: the same names, equal values of the same Python types,
+arrays of the same dtype, shape and bytes (numpy's own ``array_equal`` is the reference)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipeline.store.columns import ArtifactRow
+from pipeline.store.ledger import Ledger, StoredArray, load_arrays
+
+
+def _items(ragged: bool) -> dict[str, dict]:
+    rng = np.random.default_rng(1)
+    items = {}
+    for k in range(9):
+        items["%064x" % k] = {
+            "signature": rng.integers(0, 2**32, size=4, dtype=np.uint32),
+            "shingles": rng.integers(0, 2**63, size=k + 1, dtype=np.uint64),
+            "notes": int(rng.integers(0, 5000)),
+            "duration_beats": float(rng.random() * 100),
+            "content_hash": "%032x" % int(rng.integers(0, 2**62)),
+        }
+        if ragged:
+            items["%064x" % k]["mixed"] = [1, 2.5, "a", None, True, "é", "x\0", 3, 4][k]
+    if not ragged:
+        return items
+    # a signature of another length and dtype: that column falls back to a list of arrays
+    items["%064x" % 3]["signature"] = np.arange(5, dtype=np.uint64)
+    items["%064x" % 4] = {}  # prepare ran and returned nothing
+    del items["%064x" % 5]["notes"]  # a scalar some files lack
+    return items
+
+
+@pytest.mark.parametrize("ragged", [False, True])
+def test_rows_read_as_the_dicts_did(tmp_path, ragged):
+    items = _items(ragged)
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        order = sorted(items)[::-1]  # not in table order
+        if ragged:
+            order.append("f" * 64)  # a content never prepared
+        for defer in ((), ("shingles",)):
+            want = led.artifacts_for("dedup", "fp", defer=defer)
+            cols = led.artifact_columns("dedup", "fp", order, defer=defer)
+            for i, sha in enumerate(order):
+                row, exp = cols.row(i), want.get(sha, {})
+                assert type(row) is ArtifactRow
+                assert sorted(row) == sorted(exp) and len(row) == len(exp) and bool(row) == bool(exp)
+                for name, v in exp.items():
+                    got = row[name]
+                    if isinstance(v, np.ndarray):
+                        assert type(got) is np.ndarray and got.dtype == v.dtype and got.shape == v.shape
+                        assert np.array_equal(got, v) and not got.flags.writeable
+                    elif isinstance(v, StoredArray):
+                        assert type(got) is StoredArray and len(got) == len(v) and got.shape == v.shape
+                        a, b = load_arrays([got, v])
+                        assert a.dtype == b.dtype and np.array_equal(a, b)
+                    else:
+                        assert type(got) is type(v) and got == v
+                assert "nothing" not in row and row.get("nothing", 7) == 7
+                with pytest.raises(KeyError):
+                    row["nothing"]
+            if not ragged:  # the compact forms: one matrix, typed columns
+                c = cols._columns
+                assert c["signature"].matrix.shape == (len(order), 4) and c["signature"].rows is None
+                assert c["notes"].column.dtype == np.int64 and c["duration_beats"].column.dtype == np.float64
+                assert c["content_hash"].column.dtype.kind == "S"
+
+
+def test_object_arrays_are_refused_as_columns(tmp_path):
+    # a tampered artifact row claiming dtype object must not turn into Python objects
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.db.execute("INSERT INTO artifacts VALUES (?,?,?,?,?,?,?)",
+                           ("ab" * 32, "dedup", "fp", "sig", "|O", "[1]", b"\x00" * 8))
+        with pytest.raises((ValueError, TypeError)):
+            led.artifact_columns("dedup", "fp", ["ab" * 32])
