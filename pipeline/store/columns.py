@@ -4,20 +4,20 @@ instead of a dict of values per file (``Ledger.artifact_columns``).
 Memory: as a dict per file, dedup's artifacts cost about 1.3 KB per file in the main process
 (a dict, a 512-byte signature array with its own header, a shingle handle with its shape
 text, the parsed scalars); as columns, a signature is one row of one matrix, a number one
-cell of an int64 or float64 column, an ASCII text (the content hash) one cell of a bytes
-column, and a deferred array's handle is made when read. ``row(i)`` reads like the dict it
-replaces (``Member.artifacts[stage]``): the same names, and values equal to those the dict
-held (arrays read-only, numbers as Python ``int``/``float``, texts as ``str``).
+cell of an int64 or float64 column, and a deferred array's handle is made when read (texts
+stay ``str`` objects in a list). ``row(i)`` reads like the dict it replaces
+(``Member.artifacts[stage]``): the same names, and values equal to those the dict held
+(arrays read-only, numbers as Python ``int``/``float``).
 """
 from __future__ import annotations
 
 import sys
 from collections.abc import Mapping
-from typing import Any, Iterator
+from typing import Any, Callable, Iterator
 
 import numpy as np
 
-__all__ = ["ArtifactColumns", "ArtifactRow"]
+__all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "stacked"]
 
 _MISSING = object()
 
@@ -89,8 +89,8 @@ class _DeferredColumn:
 
 
 class _ScalarColumn:
-    """JSON scalars of one name: as an int64, float64 or ASCII bytes column when every file
-    has one of that one type, else as a list."""
+    """JSON scalars of one name: as an int64 or float64 column when every file has one of that
+    one type, else as a list."""
 
     __slots__ = ("values", "column", "kind")
 
@@ -112,10 +112,7 @@ class _ScalarColumn:
             self.column = np.array(vals, dtype=np.int64)
         elif kind is float:
             self.column = np.array(vals, dtype=np.float64)
-        elif kind is str and all(v.isascii() and not v.endswith("\0") for v in vals):
-            # numpy's bytes type drops trailing NULs, so a text ending in one stays a str
-            self.column = np.array([v.encode("ascii") for v in vals], dtype=bytes)
-        else:
+        else:  # texts stay str objects: a reader (dedup's content hash) would make one per read
             return
         self.kind, self.values = kind, None
 
@@ -123,7 +120,7 @@ class _ScalarColumn:
         if self.values is not None:
             return self.values[i]
         v = self.column[i]
-        return v.decode("ascii") if self.kind is str else self.kind(v)
+        return self.kind(v)
 
 
 class ArtifactColumns:
@@ -190,3 +187,37 @@ class ArtifactRow(Mapping):
 
     def __repr__(self) -> str:
         return f"ArtifactRow({self._cols.order[self._i][:16]}: {', '.join(self)})"
+
+
+def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
+    """A function giving the arrays ``rows[k][name]`` (of one shape) as the rows of one matrix.
+    Memory: when every row is an ``ArtifactRow`` of one ``ArtifactColumns`` that holds them as
+    one matrix, its rows are taken from it (no array object per row); otherwise they are
+    stacked from the values."""
+    if rows and all(type(r) is ArtifactRow for r in rows):
+        cols = rows[0]._cols
+        col = cols._columns.get(name)
+        if type(col) is _ArrayColumn and col.matrix is not None and all(r._cols is cols for r in rows):
+            at = np.array([r._i for r in rows], dtype=np.intp)
+            if col.has[at].all():
+                return lambda: col.matrix[at]
+    return lambda: np.vstack([np.asarray(r[name]) for r in rows])
+
+
+class ValuesOf(Mapping):
+    """key -> ``rows[key][name]``: one artifact of many files read when asked (memory: no
+    handle or array per file is made ahead)."""
+
+    __slots__ = ("_rows", "_name")
+
+    def __init__(self, rows: Mapping[str, Mapping], name: str):
+        self._rows, self._name = rows, name
+
+    def __getitem__(self, key: str) -> Any:
+        return self._rows[key][self._name]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._rows)
+
+    def __len__(self) -> int:
+        return len(self._rows)
