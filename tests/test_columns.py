@@ -67,3 +67,25 @@ def test_rows_read_as_the_dicts_did(tmp_path, ragged):
                 assert c["signature"].matrix.shape == (len(order), 4) and c["signature"].rows is None
                 assert c["notes"].column.dtype == np.int64 and c["duration_beats"].column.dtype == np.float64
 
+
+
+def test_stacked_rows_and_values_of_read_what_the_rows_hold(tmp_path):
+    # the split's readers of many members' signatures and shingle sets: numpy's vstack of the
+    # rows' own values is the reference, from the column's matrix and from plain dicts alike
+    from pipeline.store.columns import ValuesOf, stacked
+    items = _items(False)
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        order = sorted(items)
+        cols = led.artifact_columns("dedup", "fp", order, defer=("shingles",))
+        pick = [5, 0, 7, 2]
+        for rows in ([cols.row(i) for i in pick], [items[order[i]] for i in pick]):
+            got = stacked(rows, "signature")()
+            want = np.vstack([np.asarray(r["signature"]) for r in rows])
+            assert got.dtype == want.dtype and np.array_equal(got, want)
+        by_id = {order[i][-16:]: cols.row(i) for i in pick}
+        sh = ValuesOf(by_id, "shingles")
+        assert sorted(sh) == sorted(by_id) and len(sh) == len(pick)
+        for k, i in zip(by_id, pick):
+            assert np.array_equal(load_arrays([sh[k]])[0], items[order[i]]["shingles"])
