@@ -128,3 +128,15 @@ def test_records_whose_values_stay_in_the_ledger_read_like_their_dict(tmp_path):
         live = Compactor().from_stored(stored_result(plain[order[2]]))
         live.defer(source, 2)
         assert live.to_json() == plain[order[2]] and live.values_json() == stored_result(plain[order[2]])[3]
+
+
+def test_compactor_shares_equal_details():
+    # results arriving from workers carry their own copy of a detail sentence; the records of
+    # a stage hold one string per distinct sentence, and their verdicts read as before
+    c = Compactor()
+    texts = ["".join(["SMF format 1, ", "5 tracks"]) for _ in range(3)]
+    assert texts[0] is not texts[1]
+    made = [c.make_stored(True, None, t, "{}", {}) for t in texts]
+    made.append(c.make(True, None, "".join(["SMF format 1, ", "5 tracks"]), {}, {}))
+    assert all(r.detail == "SMF format 1, 5 tracks" for r in made)
+    assert all(r.detail is made[0].detail for r in made)

@@ -265,6 +265,8 @@ def test_object_arrays_in_the_ledger_are_refused(tmp_path):
                            ("ab" * 32, "dedup", "fp", "sig", "|O", "[1]", b"\x00" * 8))
         with pytest.raises((ValueError, TypeError)):
             led.artifacts_for("dedup", "fp")
+        with pytest.raises((ValueError, TypeError)):  # nor into a column (store/columns.py)
+            led.artifact_columns("dedup", "fp", ["ab" * 32])
     assert sqlite3.connect(tmp_path / "state.sqlite").execute("SELECT count(*) FROM artifacts").fetchone() == (1,)
 
 

@@ -136,6 +136,7 @@ class Runner:
         del known, changed  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
+        del present  # memory: a path per file, made again for the outputs
         if unknown:
             notes = [*notes, f"metadata: {len(unknown)} row(s) of {cfg.metadata.path} name no input "
                              f"file (paths are relative to the input folder, '/'-separated), e.g. "
@@ -234,7 +235,7 @@ class Runner:
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger, reuse.gone(present) if reuse.usable else None,
+            decisions = _DecisionSink(ledger, reuse.gone({f.rel for f in files}) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
@@ -249,7 +250,7 @@ class Runner:
                 fp = last_run_fingerprint(self._fps[name])
                 if replace:
                     ledger.forget_results(name, fp)
-                ledger.put_results((sha, name, fp, rec) for sha, rec in rows)
+                ledger.put_results((sha, name, fp, walk.corpus_record(name, sha)) for sha in rows)
             ledger.finish_run(run_id, summary["counts"])
         write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input, facts)
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))

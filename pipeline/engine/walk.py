@@ -69,17 +69,18 @@ class StageWalk:
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
-                # in the ledger until compared (Stage.deferred_artifacts)
-                arts = (ledger.artifacts_for(st.name, st.artifact_fingerprint, set(alive),
-                                             defer=st.deferred_artifacts)
-                        if st.has_prepare() else {})
+                # in the ledger until compared (Stage.deferred_artifacts); the others are held
+                # as columns, each member's artifacts a row of them
+                arts = (ledger.artifact_columns(st.name, st.artifact_fingerprint, alive,
+                                                defer=st.deferred_artifacts)
+                        if st.has_prepare() else None)
                 members = []
-                for sha in alive:
+                for i, sha in enumerate(alive):
                     values = TrailValues(trails[sha])
                     meta = (source_fields(rep[sha], values.get("file_title"), self.metadata)
                             if st.uses_source_fields else {})
-                    members.append(Member(sha[:16], sha, rep[sha], values, {st.name: arts.pop(sha, {})},
-                                          meta=meta))
+                    members.append(Member(sha[:16], sha, rep[sha], values,
+                                          {st.name: arts.row(i) if arts is not None else {}}, meta=meta))
                 del arts
                 for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
                     res = walk.artifacts.get(prev, {})
@@ -95,6 +96,7 @@ class StageWalk:
                                                       "previous_results": last})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
                 res = st.run_corpus(members, state) if members else {}
+                mids = [m.id for m in members]  # memory: the members' id strings, not new ones
                 del members
                 bar.update(len(alive))
                 bar.close()
@@ -104,17 +106,19 @@ class StageWalk:
                 make = self.compactor(st.name).make
                 keep = make(True, None, "", {}, {})
                 compact: dict[str, Any] = {}
-                new_rows: list[tuple[str, Any]] = []  # results this run computed (to store)
-                for sha in alive:
-                    r = res.get(sha[:16])
-                    if r is not None and last is not None and r is last.get(sha[:16]):
+                # the contents whose result this run computed (to store; the record is the
+                # last of the content's trail: memory, no (sha, record) pair per file)
+                new_rows: list[str] = []
+                for sha, mid in zip(alive, mids):
+                    r = res.pop(mid, None)  # memory: the stage's result goes once compacted
+                    if r is not None and last is not None and r is last.get(mid):
                         # the last run's record, returned as it is
                         rec = r
                     else:
                         rec = keep if r is None else make(r.kept, r.reason, r.detail, r.values, r.thresholds)
-                        new_rows.append((sha, rec))
+                        new_rows.append(sha)
                     if r is not None:
-                        compact[sha[:16]] = rec
+                        compact[mid] = rec
                     trails[sha].append(rec)
                     if rec.kept:
                         survivors.append(sha)
@@ -125,7 +129,7 @@ class StageWalk:
                 upstream[st.name] = compact
                 # all rows anew, or (when some were reused) only the new ones
                 walk.corpus_rows[st.name] = (len(new_rows) == len(alive), new_rows)
-                del res
+                del res, mids
                 gone = set(alive) - set(survivors)
                 for arts_of in walk.artifacts.values():
                     for sha in gone:
@@ -184,7 +188,8 @@ class Walk:
     reached; ``stage_names`` names them. They are the result cache's own records."""
 
     staged: dict[str, tuple[str, ...]] = field(default_factory=dict)  # sha -> staged suffixes
-    #: corpus stage -> (replace all stored rows, [(sha, record)] this run computed)
+    #: corpus stage -> (replace all stored rows, [sha] whose record this run computed: the
+    #: stage's step of the content's trail, ``corpus_record``)
     corpus_rows: dict[str, tuple[bool, list]] = field(default_factory=dict)
     status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
     trails: dict[str, list] = field(default_factory=dict)
@@ -204,6 +209,10 @@ class Walk:
     def is_byte_copy(self, rel: str, sha: str) -> bool:
         """A source whose bytes equal an earlier source's (it is not the representative)."""
         return self.rep.get(sha) != rel
+
+    def corpus_record(self, stage: str, sha: str) -> Any:
+        """The record a corpus stage gave a content in this run (its step of the trail)."""
+        return self.trails[sha][self.stage_names.index(stage)]
 
     def value_of(self, sha: str, key: str, default: Any = None) -> Any:
         """One value of a content's trail (the latest stage that set it)."""

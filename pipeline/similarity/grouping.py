@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import hashlib
 from collections import defaultdict
-from typing import TYPE_CHECKING, Hashable, Iterable, Mapping
+from typing import TYPE_CHECKING, Callable, Hashable, Iterable, Mapping
 
 if TYPE_CHECKING:  # the annotations' numpy; the functions on arrays import it themselves
     import numpy as np
@@ -221,13 +221,27 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
     """
     import numpy as np
 
-    from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
-    from .links import verify_codes
-
     keys = sorted(signatures)
     if len(keys) < 2:
         return []
-    sig = np.vstack([np.asarray(signatures[k], dtype=np.uint32) for k in keys])
+    return near_links_of(keys, lambda: np.vstack([np.asarray(signatures[k], dtype=np.uint32) for k in keys]),
+                         threshold, shingles, recall=recall, margin_sigmas=margin_sigmas, only=only)
+
+
+def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold: float,
+                  shingles: Mapping[str, "np.ndarray"] | None = None, *, recall: float = GROUP_RECALL,
+                  margin_sigmas: float = 4.0, only: "set[str] | None" = None) -> list[tuple[str, str, float]]:
+    """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
+    of one matrix (row ``k`` for ``keys[k]``). Memory: no array object per file is needed, and
+    the matrix, made here, is let go before the candidate pairs are verified."""
+    import numpy as np
+
+    from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
+    from .links import verify_codes
+
+    if len(keys) < 2:
+        return []
+    sig = np.asarray(matrix(), dtype=np.uint32)
     num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
     codes, live = band_codes(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)

@@ -269,6 +269,7 @@ class Dedup(Stage):
         else:
             for k, x in zip(indexed, sigs):
                 index.add(k, x)  # names the member whose signature does not fit
+        del sigs  # memory: the members' signatures may be views made for this list
         new_reps = {k for k in rep_ids if k not in old}
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were)

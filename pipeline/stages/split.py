@@ -31,13 +31,12 @@ import unicodedata
 from pathlib import PurePosixPath
 from typing import Any
 
-import numpy as np
-
 from ..errors import ConfigError
 from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups,
-                                   group_by_key, near_links)
+                                   group_by_key, near_links_of)
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
+from ..store.columns import ValuesOf, stacked
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
 from .dedup import Dedup
@@ -310,7 +309,10 @@ class Split(Stage):
         compared (None when grouping is off or no member has one)."""
         links: list[tuple[str, str]] = []
         threshold = self.opts["group_threshold"]
-        sigs, shingles = {}, {}
+        # memory: the members' artifacts (rows of the stage's columns), not an array or a
+        # handle per member; signatures and shingle sets are read from them when compared
+        signed_arts: dict[str, Any] = {}
+        with_shingles = 0
         signed_by: set[str] = set()
         for m in members:
             # the split's own arrays, else those dedup stored (``bind``)
@@ -318,13 +320,13 @@ class Split(Stage):
             art = m.artifacts.get(source) or {}
             if art.get("signature") is not None:
                 signed_by.add(source)
-                sigs[m.id] = np.asarray(art["signature"], dtype=np.uint32)
-                if art.get("shingles") is not None:  # may still be in the ledger (read if compared)
-                    shingles[m.id] = art["shingles"]
+                signed_arts[m.id] = art
+                # shingles may still be in the ledger (read if compared)
+                with_shingles += art.get("shingles") is not None
         signed = ", ".join(sorted(signed_by)) if threshold is not None and signed_by else None
-        if threshold is not None and len(sigs) > 1:
-            use_sh = shingles if len(shingles) == len(sigs) else None
-            links += self._near_links(sigs, use_sh, state, signed)
+        if threshold is not None and len(signed_arts) > 1:
+            use_sh = ValuesOf(signed_arts, "shingles") if with_shingles == len(signed_arts) else None
+            links += self._near_links(signed_arts, use_sh, state, signed)
         ghosts: set[str] = set()
         dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
@@ -344,22 +346,27 @@ class Split(Stage):
                     links.append((inside[0], x))
         return links, ghosts, signed
 
-    def _near_links(self, sigs: dict[str, np.ndarray], shingles: dict[str, np.ndarray] | None,
-                    state: CorpusState, signed: str | None) -> list[tuple[str, str]]:
-        """Near-duplicate links at ``group_threshold``, incrementally: links among files seen by
-        the last run under the same signature settings are reused, and only pairs with a new
-        file are searched. The links are saved for the next run."""
+    def _near_links(self, arts: dict[str, Any], shingles: Any, state: CorpusState,
+                    signed: str | None) -> list[tuple[str, str]]:
+        """Near-duplicate links at ``group_threshold`` among the members of ``arts`` (id -> the
+        artifacts holding its signature), incrementally: links among files seen by the last
+        run under the same signature settings are reused, and only pairs with a new file are
+        searched. The links are saved for the next run."""
         threshold = self.opts["group_threshold"]
-        first = next(iter(sigs.values()))
+        first = next(iter(arts.values()))["signature"]
         signer = options_fingerprint("signatures", Dedup.version, {"by": signed, **signature_options()})
         settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
-        here = set(sigs)
+        here = set(arts)
         known = set() if fresh else set(prev.get("members", [])) & here
         reused = [] if fresh else [(a, b) for a, b in prev.get("links", []) if a in here and b in here]
         new = here - known
-        found = near_links(sigs, threshold, shingles, only=new) if new else []
+        found = []
+        if new:
+            keys = sorted(arts)
+            found = near_links_of(keys, stacked([arts[k] for k in keys], "signature"), threshold,
+                                  shingles, only=new)
         links = sorted(set(reused) | {(a, b) for a, b, _ in found})
         state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
         return links

@@ -23,11 +23,14 @@ import json
 import sqlite3
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from ..errors import LedgerError
 from .codec import (EMPTY, SCALARS, canonical_json, decode_array, shape_of, stored_artifacts,
                     stored_result, thresholds_from_json)
+
+if TYPE_CHECKING:
+    from .columns import ArtifactColumns
 
 #: 2: results and artifacts keyed by (stage, fingerprint, sha256, ...) instead of sha256
 #: first, so reading one stage's rows is a range of the table, not a scan of every stage's
@@ -211,12 +214,7 @@ class Ledger:
         out: dict[str, dict[str, Any]] = {}
         array = decode_array
         deferred = {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer}
-        # the bytes of a deferred array are not selected (its row is still read for the shape)
-        blob = ("CASE WHEN name IN (%s) THEN NULL ELSE data END" % ",".join("?" * len(defer))
-                if defer else "data")
-        for sha, name, dtype, shape, data in self.db.execute(
-                f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts WHERE stage=? AND fingerprint=?",
-                (*defer, stage, fingerprint)):
+        for sha, name, dtype, shape, data in self._artifact_rows(stage, fingerprint, defer):
             if shas is not None and sha not in shas:
                 continue
             entry = out.get(sha)
@@ -230,6 +228,40 @@ class Ledger:
             elif name != EMPTY:
                 entry[name] = json.loads(data)  # a scalar on its own row (earlier versions)
         return out
+
+    def artifact_columns(self, stage: str, fingerprint: str, order: list[str], *,
+                         defer: tuple[str, ...] = ()) -> "ArtifactColumns":
+        """The artifacts of the contents ``order`` (sha256s) as columns, row ``i`` for
+        ``order[i]`` (``columns.ArtifactColumns``; ``row(i)`` reads like the dict
+        ``artifacts_for`` gives, deferred arrays as ``StoredArray`` handles). Memory: one
+        matrix per array name and one array per scalar name instead of a dict per file."""
+        from .columns import ArtifactColumns  # numpy: not imported by the nothing-changed check
+        index = dict(zip(order, range(len(order))))
+        cols = ArtifactColumns(order, {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer})
+        for sha, name, dtype, shape, data in self._artifact_rows(stage, fingerprint, defer):
+            i = index.get(sha)
+            if i is None:
+                continue
+            if dtype is not None:
+                if name in defer:
+                    cols.put_deferred(i, name, dtype, shape)
+                else:
+                    cols.put_array(i, name, decode_array(dtype, shape, data))
+            elif name == SCALARS:
+                for k, v in json.loads(data).items():
+                    cols.put_scalar(i, k, v)
+            elif name != EMPTY:
+                cols.put_scalar(i, name, json.loads(data))  # a scalar on its own row (earlier versions)
+        return cols.finish()
+
+    def _artifact_rows(self, stage: str, fingerprint: str, defer: tuple[str, ...]) -> Iterator[tuple]:
+        """(sha256, name, dtype, shape, data) of a stage's stored artifacts; the bytes of the
+        arrays named in ``defer`` are not selected (data None; the row still gives the shape)."""
+        blob = ("CASE WHEN name IN (%s) THEN NULL ELSE data END" % ",".join("?" * len(defer))
+                if defer else "data")
+        return self.db.execute(
+            f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts WHERE stage=? AND fingerprint=?",
+            (*defer, stage, fingerprint))
 
     def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, items): items as ``{name: array or JSON

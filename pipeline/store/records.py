@@ -217,15 +217,21 @@ class ValueSource(Protocol):
         ...
 
 
+#: Distinct details a ``Compactor`` shares (a stage whose details name files, as dedup's
+#: do, has one per file: past this many, new ones are kept as they come).
+SHARED_DETAILS = 4096
+
+
 class Compactor:
     """Makes ``Result`` records for one stage, sharing name tuples and thresholds among them."""
 
     def __init__(self) -> None:
         self._thresholds: dict[str, Any] | None = None
+        self._details: dict[str, str] = {}
 
     def make(self, kept: bool, reason: str | None, detail: str, values: Mapping[str, Any],
              thresholds: dict[str, Any] | None) -> Result:
-        return Result(bool(kept), _intern(reason) if reason else reason, detail,
+        return Result(bool(kept), _intern(reason) if reason else reason, self._shared_detail(detail),
                       _shared_names(values), _compact_values(values),
                       self._shared_thresholds(thresholds))
 
@@ -233,14 +239,14 @@ class Compactor:
                     thresholds: dict[str, Any] | None) -> Result:
         """A result read from the ledger, its values left as the stored JSON text (a JSON
         object written with sorted keys) until first read."""
-        return Result(bool(kept), _intern(reason) if reason else reason, detail, None,
-                      values_json, self._shared_thresholds(thresholds))
+        return Result(bool(kept), _intern(reason) if reason else reason, self._shared_detail(detail),
+                      None, values_json, self._shared_thresholds(thresholds))
 
     def make_deferred(self, kept: bool, reason: str | None, detail: str, thresholds: dict[str, Any] | None,
                       source: "ValueSource", index: int) -> Result:
         """A result read from the ledger without its values, which stay there (``Result.defer``)."""
-        r = Result(bool(kept), _intern(reason) if reason else reason, detail, None, "",
-                   self._shared_thresholds(thresholds))
+        r = Result(bool(kept), _intern(reason) if reason else reason, self._shared_detail(detail),
+                   None, "", self._shared_thresholds(thresholds))
         r.defer(source, index)
         return r
 
@@ -248,6 +254,17 @@ class Compactor:
         """The result of a stored form (``codec.stored_result``), its values left as text."""
         kept, reason, detail, values_json, thresholds_json = stored
         return self.make_stored(kept, reason, detail, values_json, thresholds_from_json(thresholds_json))
+
+    def _shared_detail(self, detail: str) -> str:
+        """One string per distinct detail of the stage (memory: a per-file stage writes few
+        distinct sentences, "SMF format 1, 5 tracks, 480 ticks per beat", but each result
+        arrives from a worker with its own copy); up to ``SHARED_DETAILS`` of them."""
+        shared = self._details.get(detail)
+        if shared is None:
+            if len(self._details) < SHARED_DETAILS:
+                self._details[detail] = detail
+            return detail
+        return shared
 
     def _shared_thresholds(self, thresholds: dict[str, Any] | None) -> dict[str, Any]:
         t = thresholds if thresholds is not None else {}

@@ -1,0 +1,223 @@
+"""A corpus stage's per-file artifacts as columns: one array per name for the whole run
+instead of a dict of values per file (``Ledger.artifact_columns``).
+
+Memory: as a dict per file, dedup's artifacts cost about 1.3 KB per file in the main process
+(a dict, a 512-byte signature array with its own header, a shingle handle with its shape
+text, the parsed scalars); as columns, a signature is one row of one matrix, a number one
+cell of an int64 or float64 column, and a deferred array's handle is made when read (texts
+stay ``str`` objects in a list). ``row(i)`` reads like the dict it replaces
+(``Member.artifacts[stage]``): the same names, and values equal to those the dict held
+(arrays read-only, numbers as Python ``int``/``float``).
+"""
+from __future__ import annotations
+
+import sys
+from collections.abc import Mapping
+from typing import Any, Callable, Iterator
+
+import numpy as np
+
+__all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "stacked"]
+
+_MISSING = object()
+
+
+class _ArrayColumn:
+    """Equal-shape arrays of one name as the rows of one matrix; arrays of several shapes or
+    dtypes as a list of arrays (the rare case: the matrix is given up for the list)."""
+
+    __slots__ = ("n", "matrix", "has", "rows")
+
+    def __init__(self, n: int):
+        self.n = n
+        self.matrix: np.ndarray | None = None
+        self.has: np.ndarray | None = None
+        self.rows: list | None = None
+
+    def put(self, i: int, arr: np.ndarray) -> None:
+        if self.rows is None:
+            if self.matrix is None:
+                self.matrix = np.zeros((self.n, *arr.shape), dtype=arr.dtype)
+                self.has = np.zeros(self.n, dtype=bool)
+            if arr.dtype == self.matrix.dtype and arr.shape == self.matrix.shape[1:]:
+                self.matrix[i] = arr
+                self.has[i] = True
+                return
+            self.rows = [self._row(j) if self.has[j] else None for j in range(self.n)]
+            self.matrix = self.has = None
+        self.rows[i] = arr
+
+    def _row(self, i: int) -> np.ndarray:
+        # a private copy when giving up the matrix (read-only like a stored array)
+        arr = self.matrix[i].copy()
+        arr.flags.writeable = False
+        return arr
+
+    def finish(self) -> None:
+        if self.matrix is not None:
+            self.matrix.flags.writeable = False  # as a stored array reads (numpy over bytes)
+
+    def get(self, i: int) -> Any:
+        if self.rows is not None:
+            v = self.rows[i]
+            return _MISSING if v is None else v
+        return self.matrix[i] if self.has[i] else _MISSING
+
+
+class _DeferredColumn:
+    """Arrays left in the ledger (``ledger.StoredArray``): the dtype and shape text of each
+    row (texts interned: few distinct ones), the handle made when the row is read."""
+
+    __slots__ = ("rows", "order", "dtypes", "shapes")
+
+    def __init__(self, rows: Any, order: list[str]):
+        self.rows, self.order = rows, order
+        self.dtypes: list = [None] * len(order)
+        self.shapes: list = [None] * len(order)
+
+    def put(self, i: int, dtype: str, shape: str | None) -> None:
+        self.dtypes[i] = sys.intern(dtype)
+        self.shapes[i] = None if shape is None else sys.intern(shape)
+
+    def finish(self) -> None:
+        pass
+
+    def get(self, i: int) -> Any:
+        from .ledger import StoredArray
+        dtype = self.dtypes[i]
+        return _MISSING if dtype is None else StoredArray(self.rows, self.order[i], dtype, self.shapes[i])
+
+
+class _ScalarColumn:
+    """JSON scalars of one name: as an int64 or float64 column when every file has one of that
+    one type, else as a list."""
+
+    __slots__ = ("values", "column", "kind")
+
+    def __init__(self, n: int):
+        self.values: list | None = [_MISSING] * n
+        self.column: np.ndarray | None = None
+        self.kind: type | None = None
+
+    def put(self, i: int, value: Any) -> None:
+        self.values[i] = value
+
+    def finish(self) -> None:
+        vals = self.values
+        kinds = {type(v) for v in vals}
+        if len(kinds) != 1 or not vals:
+            return
+        kind = kinds.pop()
+        if kind is int and all(-2**63 <= v < 2**63 for v in vals):
+            self.column = np.array(vals, dtype=np.int64)
+        elif kind is float:
+            self.column = np.array(vals, dtype=np.float64)
+        else:  # texts stay str objects: a reader (dedup's content hash) would make one per read
+            return
+        self.kind, self.values = kind, None
+
+    def get(self, i: int) -> Any:
+        if self.values is not None:
+            return self.values[i]
+        v = self.column[i]
+        return self.kind(v)
+
+
+class ArtifactColumns:
+    """The artifacts of one stage for the contents ``order`` (sha256s), row ``i`` for
+    ``order[i]``. Filled by ``Ledger.artifact_columns`` (``put_*``, then ``finish``)."""
+
+    def __init__(self, order: list[str], deferred_rows: dict[str, Any]):
+        self.order = order
+        self._deferred_rows = deferred_rows
+        self._columns: dict[str, Any] = {}  # name -> column, in the order names were first seen
+
+    def _column(self, name: str, make: Any) -> Any:
+        col = self._columns.get(name)
+        if col is None:
+            col = self._columns[name] = make()
+        return col
+
+    def put_array(self, i: int, name: str, arr: np.ndarray) -> None:
+        self._column(name, lambda: _ArrayColumn(len(self.order))).put(i, arr)
+
+    def put_deferred(self, i: int, name: str, dtype: str, shape: str | None) -> None:
+        self._column(name, lambda: _DeferredColumn(self._deferred_rows[name], self.order)).put(i, dtype, shape)
+
+    def put_scalar(self, i: int, name: str, value: Any) -> None:
+        self._column(name, lambda: _ScalarColumn(len(self.order))).put(i, value)
+
+    def finish(self) -> "ArtifactColumns":
+        for col in self._columns.values():
+            col.finish()
+        return self
+
+    def row(self, i: int) -> "ArtifactRow":
+        """Content ``i``'s artifacts as a read-only mapping name -> value."""
+        return ArtifactRow(self, i)
+
+    def value(self, i: int, name: str) -> Any:
+        col = self._columns.get(name)
+        v = _MISSING if col is None else col.get(i)
+        if v is _MISSING:
+            raise KeyError(name)
+        return v
+
+    def names(self, i: int) -> list[str]:
+        return [n for n, col in self._columns.items() if col.get(i) is not _MISSING]
+
+
+class ArtifactRow(Mapping):
+    """One content's artifacts (a row of ``ArtifactColumns``): reads like the dict
+    ``{name: value}`` it stands for; values are read from the columns on each access."""
+
+    __slots__ = ("_cols", "_i")
+
+    def __init__(self, cols: ArtifactColumns, i: int):
+        self._cols, self._i = cols, i
+
+    def __getitem__(self, name: str) -> Any:
+        return self._cols.value(self._i, name)
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._cols.names(self._i))
+
+    def __len__(self) -> int:
+        return len(self._cols.names(self._i))
+
+    def __repr__(self) -> str:
+        return f"ArtifactRow({self._cols.order[self._i][:16]}: {', '.join(self)})"
+
+
+def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
+    """A function giving the arrays ``rows[k][name]`` (of one shape) as the rows of one matrix.
+    Memory: when every row is an ``ArtifactRow`` of one ``ArtifactColumns`` that holds them as
+    one matrix, its rows are taken from it (no array object per row); otherwise they are
+    stacked from the values."""
+    if rows and all(type(r) is ArtifactRow for r in rows):
+        cols = rows[0]._cols
+        col = cols._columns.get(name)
+        if type(col) is _ArrayColumn and col.matrix is not None and all(r._cols is cols for r in rows):
+            at = np.array([r._i for r in rows], dtype=np.intp)
+            if col.has[at].all():
+                return lambda: col.matrix[at]
+    return lambda: np.vstack([np.asarray(r[name]) for r in rows])
+
+
+class ValuesOf(Mapping):
+    """key -> ``rows[key][name]``: one artifact of many files read when asked (memory: no
+    handle or array per file is made ahead)."""
+
+    __slots__ = ("_rows", "_name")
+
+    def __init__(self, rows: Mapping[str, Mapping], name: str):
+        self._rows, self._name = rows, name
+
+    def __getitem__(self, key: str) -> Any:
+        return self._rows[key][self._name]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._rows)
+
+    def __len__(self) -> int:
+        return len(self._rows)

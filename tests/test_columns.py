@@ -1,0 +1,91 @@
+"""The artifact column store (``Ledger.artifact_columns``) returns what the dict per file
+(``Ledger.artifacts_for``) returned: the same names, equal values of the same Python types,
+arrays of the same dtype, shape and bytes (numpy's own ``array_equal`` is the reference)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipeline.store.columns import ArtifactRow
+from pipeline.store.ledger import Ledger, StoredArray, load_arrays
+
+
+def _items(ragged: bool) -> dict[str, dict]:
+    rng = np.random.default_rng(1)
+    items = {}
+    for k in range(9):
+        items["%064x" % k] = {
+            "signature": rng.integers(0, 2**32, size=4, dtype=np.uint32),
+            "shingles": rng.integers(0, 2**63, size=k + 1, dtype=np.uint64),
+            "notes": int(rng.integers(0, 5000)),
+            "duration_beats": float(rng.random() * 100),
+            "content_hash": "%032x" % int(rng.integers(0, 2**62)),
+        }
+        if ragged:
+            items["%064x" % k]["mixed"] = [1, 2.5, "a", None, True, "é", "x\0", 3, 4][k]
+    if not ragged:
+        return items
+    # a signature of another length and dtype: that column falls back to a list of arrays
+    items["%064x" % 3]["signature"] = np.arange(5, dtype=np.uint64)
+    items["%064x" % 4] = {}  # prepare ran and returned nothing
+    del items["%064x" % 5]["notes"]  # a scalar some files lack
+    return items
+
+
+@pytest.mark.parametrize("ragged", [False, True])
+def test_rows_read_as_the_dicts_did(tmp_path, ragged):
+    items = _items(ragged)
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        order = sorted(items)[::-1]  # not in table order
+        if ragged:
+            order.append("f" * 64)  # a content never prepared
+        for defer in ((), ("shingles",)):
+            want = led.artifacts_for("dedup", "fp", defer=defer)
+            cols = led.artifact_columns("dedup", "fp", order, defer=defer)
+            for i, sha in enumerate(order):
+                row, exp = cols.row(i), want.get(sha, {})
+                assert type(row) is ArtifactRow
+                assert sorted(row) == sorted(exp) and len(row) == len(exp) and bool(row) == bool(exp)
+                for name, v in exp.items():
+                    got = row[name]
+                    if isinstance(v, np.ndarray):
+                        assert type(got) is np.ndarray and got.dtype == v.dtype and got.shape == v.shape
+                        assert np.array_equal(got, v) and not got.flags.writeable
+                    elif isinstance(v, StoredArray):
+                        assert type(got) is StoredArray and len(got) == len(v) and got.shape == v.shape
+                        a, b = load_arrays([got, v])
+                        assert a.dtype == b.dtype and np.array_equal(a, b)
+                    else:
+                        assert type(got) is type(v) and got == v
+                assert "nothing" not in row and row.get("nothing", 7) == 7
+                with pytest.raises(KeyError):
+                    row["nothing"]
+            if not ragged:  # the compact forms: one matrix, typed columns
+                c = cols._columns
+                assert c["signature"].matrix.shape == (len(order), 4) and c["signature"].rows is None
+                assert c["notes"].column.dtype == np.int64 and c["duration_beats"].column.dtype == np.float64
+
+
+
+def test_stacked_rows_and_values_of_read_what_the_rows_hold(tmp_path):
+    # the split's readers of many members' signatures and shingle sets: numpy's vstack of the
+    # rows' own values is the reference, from the column's matrix and from plain dicts alike
+    from pipeline.store.columns import ValuesOf, stacked
+    items = _items(False)
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        order = sorted(items)
+        cols = led.artifact_columns("dedup", "fp", order, defer=("shingles",))
+        pick = [5, 0, 7, 2]
+        for rows in ([cols.row(i) for i in pick], [items[order[i]] for i in pick]):
+            got = stacked(rows, "signature")()
+            want = np.vstack([np.asarray(r["signature"]) for r in rows])
+            assert got.dtype == want.dtype and np.array_equal(got, want)
+        by_id = {order[i][-16:]: cols.row(i) for i in pick}
+        sh = ValuesOf(by_id, "shingles")
+        assert sorted(sh) == sorted(by_id) and len(sh) == len(pick)
+        for k, i in zip(by_id, pick):
+            assert np.array_equal(load_arrays([sh[k]])[0], items[order[i]]["shingles"])
