@@ -342,7 +342,7 @@ def test_verification_in_blocks_equals_brute_force(budget):
     # set a block of its own, None the default, one block here): the values must not depend on
     # the blocks, for the pairs kept (verify_codes) and for every pair's value
     # (code_similarities, pairs of a file with itself included), and every set is read only
-    # through the bulk reader, never held beyond the budget.
+    # through the caller's bulk reader, never held beyond the budget.
     from pipeline.similarity import links
     rng = np.random.default_rng(21)
     keys = [f"k{n:02d}" for n in range(40)]
@@ -367,17 +367,12 @@ def test_verification_in_blocks_equals_brute_force(budget):
         values[at] = val
     assert np.array_equal(values, ref) and (values[~low] == 1.0).all()
     held = []
-    real = links._read_sets
 
-    def spy(keys_, which, shingles, generic_):
-        held.append(sum(len(shingles[keys_[p]]) for p in which.tolist()))
-        return real(keys_, which, shingles, generic_)
+    def spy(values):  # the caller's reader: sees every read of the verification
+        held.append(sum(len(x) for x in values))
+        return values
 
-    links._read_sets = spy
-    try:
-        verify_codes(keys, codes, sets, 0.3, generic=generic, budget=budget)
-    finally:
-        links._read_sets = real
+    verify_codes(keys, codes, sets, 0.3, generic=generic, budget=budget, read=spy)
     largest = max(len(x) for x in sets.values())
     limit = (budget or links.VERIFY_SHINGLES) // 2 + largest  # a block: half the budget, plus its last set
     assert max(held) <= limit

@@ -230,10 +230,12 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
 
 def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold: float,
                   shingles: Mapping[str, "np.ndarray"] | None = None, *, recall: float = GROUP_RECALL,
-                  margin_sigmas: float = 4.0, only: "set[str] | None" = None) -> list[tuple[str, str, float]]:
+                  margin_sigmas: float = 4.0, only: "set[str] | None" = None,
+                  read: "Callable[[list], list] | None" = None) -> list[tuple[str, str, float]]:
     """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
     of one matrix (row ``k`` for ``keys[k]``). Memory: no array object per file is needed, and
-    the matrix, made here, is let go before the candidate pairs are verified."""
+    the matrix, made here, is let go before the candidate pairs are verified. ``read`` turns
+    held shingle sets that are not arrays into arrays (``links.verify_codes``)."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
@@ -270,4 +272,4 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         # memory: only the linked pairs become Python objects
         return [(keys[a], keys[b], float(v)) for a, b, v in
                 zip((codes // m).tolist(), (codes % m).tolist(), est.tolist())]
-    return verify_codes(keys, codes, shingles, threshold)
+    return verify_codes(keys, codes, shingles, threshold, read=read)

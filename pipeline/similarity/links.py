@@ -3,16 +3,16 @@
 The one verification of candidate pairs (dedup's, the split's grouping's, and through
 ``grouping.near_links`` the ``leakage`` audit's): ``verify_codes`` keeps the pairs of sorted
 LSH codes that reach a threshold, ``code_similarities`` gives every pair's value; both read the
-stored shingle sets in bulk, a block at a time. ``UnionFind`` is the one union-find (dedup's
-clusters, the split's groups).
+shingle sets a block at a time, through the caller's ``read`` (a stage passes
+``ledger.load_arrays`` for sets still in its store: the core itself knows no store).
+``UnionFind`` is the one union-find (dedup's clusters, the split's groups).
 """
 from __future__ import annotations
 
-from typing import Any, Iterable, Iterator
+from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
 
-from ..store.ledger import load_arrays
 from .lsh import sorted_unique
 from .sets import MIN_SIZE_RATIO, drop_generic, lead_part, pair_similarities
 
@@ -59,14 +59,14 @@ class UnionFind:
 
 def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,
                  generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
-                 budget: int | None = None) -> list[tuple[str, str, float]]:
+                 budget: int | None = None, read: "Read | None" = None) -> list[tuple[str, str, float]]:
     """The pairs of sorted codes ``i * len(keys) + j`` (``i < j``: LSH candidates) whose
     similarity reaches ``threshold``: ``(keys[i], keys[j], similarity)`` in code order. The
     one exact verification of candidate pairs (dedup's and the split's grouping's)."""
     n = len(keys)
     at_parts, val_parts = [], []
     for at, val in code_similarities(keys, codes, shingles, generic=generic,
-                                     min_size_ratio=min_size_ratio, budget=budget):
+                                     min_size_ratio=min_size_ratio, budget=budget, read=read):
         hit = val >= threshold
         at_parts.append(at[hit])
         val_parts.append(val[hit])
@@ -83,13 +83,14 @@ def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: f
 
 def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
                       generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
-                      budget: int | None = None) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+                      budget: int | None = None, read: "Read | None" = None
+                      ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
     """``(positions, similarities)`` for every pair of the sorted codes ``i * len(keys) + j``
     (``i <= j``), block pair by block pair: ``codes[positions]`` are those pairs and
     ``similarities`` their ``set_similarity`` values (float64), ``generic`` shingles left out.
 
-    Only the sets of keys in some pair are read (``shingles[key]``: arrays, or
-    ``ledger.StoredArray`` handles read in bulk), and about ``budget`` shingles
+    Only the sets of keys in some pair are read (``shingles[key]``: arrays, or handles that
+    ``read`` turns into arrays, a list of them in one call), and about ``budget`` shingles
     (``VERIFY_SHINGLES``) at most at once: the keys in pairs are cut, in key order, into blocks
     of half of it, and the pairs are compared block pair by block pair, the later block of a
     pair read when its pairs come (a block nested loop join). Memory: on a large corpus nearly
@@ -126,14 +127,14 @@ def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
         del c
         hi = block_of[j]
         outer_keys = sorted_unique(np.concatenate((i, j[hi == a])))
-        outer = _read_sets(keys, outer_keys, shingles, generic)
+        outer = _read_sets(keys, outer_keys, shingles, generic, read)
         for b in sorted_unique(hi).tolist():
             rows = np.flatnonzero(hi == b)
             if b == a:
                 held, held_keys = outer, outer_keys
             else:
                 inner_keys = sorted_unique(j[rows])
-                held = outer + _read_sets(keys, inner_keys, shingles, generic)
+                held = outer + _read_sets(keys, inner_keys, shingles, generic, read)
                 held_keys = np.concatenate((outer_keys, inner_keys))
             pos[held_keys] = np.arange(len(held_keys))
             leads = [lead_part(x) for x in held]
@@ -145,14 +146,19 @@ def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
         del outer, i, j, hi
 
 
-def _read_sets(keys: list[str], which: np.ndarray, shingles: Any, generic: np.ndarray | None
-               ) -> list[np.ndarray]:
-    """The uint64 sets ``shingles[keys[p]]`` for ``p`` in ``which`` (read in bulk), without
-    the ``generic`` shingles."""
-    sets = load_arrays([shingles[keys[p]] for p in which.tolist()])
+def _read_sets(keys: list[str], which: np.ndarray, shingles: Any, generic: np.ndarray | None,
+               read: "Read | None") -> list[np.ndarray]:
+    """The uint64 sets ``shingles[keys[p]]`` for ``p`` in ``which`` (through ``read``, in
+    bulk), without the ``generic`` shingles."""
+    held = [shingles[keys[p]] for p in which.tolist()]
+    sets = held if read is None else read(held)
     for p, x in enumerate(sets):  # memory: each read set is let go as it is replaced
         sets[p] = drop_generic(np.asarray(x, dtype=np.uint64), generic)
     return sets
+
+
+#: Turns a list of held shingle sets (arrays, or a store's handles) into arrays, in one call.
+Read = Callable[[list], list]
 
 
 #: Codes handled at once where a pass over all candidate pairs needs index arrays.

@@ -289,7 +289,8 @@ class Dedup(Stage):
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         n_plausible = len(codes)
         verified = verify_codes(index.ids, codes, _Shingles(arts), threshold,
-                                min_size_ratio=float(o["min_size_ratio"]), generic=self._generic)
+                                min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
+                                read=load_arrays)
         del codes  # memory: millions of candidates on a large corpus
         for a, b, sim in verified:
             near.add(a, b, sim)

@@ -37,6 +37,7 @@ from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups,
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
 from ..store.columns import ValuesOf, stacked
+from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
 from .dedup import Dedup
@@ -366,7 +367,7 @@ class Split(Stage):
         if new:
             keys = sorted(arts)
             found = near_links_of(keys, stacked([arts[k] for k in keys], "signature"), threshold,
-                                  shingles, only=new)
+                                  shingles, only=new, read=load_arrays)
         links = sorted(set(reused) | {(a, b) for a, b, _ in found})
         state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
         return links
