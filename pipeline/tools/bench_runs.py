@@ -47,9 +47,17 @@ def ensure_chunked(folder: Path, total: int, chunk: int, seed: int) -> list[Path
     todo = [j for j in jobs if not _corpus_ok(*j)]
     if todo:
         import multiprocessing as mp
-        with mp.get_context("fork" if sys.platform.startswith("linux") else "spawn").Pool(
-                min(len(todo), usable_cpus())) as pool:
+        pool = mp.get_context("fork" if sys.platform.startswith("linux") else "spawn").Pool(
+            min(len(todo), usable_cpus()))
+        try:
             pool.starmap(ensure_corpus, todo)
+        except BaseException:
+            pool.terminate()
+            raise
+        # the workers leave on their own: terminate() would SIGTERM them, and they inherited
+        # the command's SIGTERM handler (a traceback each)
+        pool.close()
+        pool.join()
     return [j[0] for j in jobs]
 
 
