@@ -229,7 +229,7 @@ class TwoStage:
 
     def fit(self, parts: list[Part]) -> "TwoStage":
         d = self.data
-        self.linear = Linear(d, self.l2).fit(parts)
+        self.linear = Linear(d).fit(parts)  # the shipped model's L2; self.l2 is the mode model's
         xs, major, groups = [], [], []
         for name, idx in parts:
             y = d.y[name][idx]
