@@ -89,3 +89,29 @@ def test_stacked_rows_and_values_of_read_what_the_rows_hold(tmp_path):
         assert sorted(sh) == sorted(by_id) and len(sh) == len(pick)
         for k, i in zip(by_id, pick):
             assert np.array_equal(load_arrays([sh[k]])[0], items[order[i]]["shingles"])
+
+
+@pytest.mark.parametrize("ragged", [False, True])
+def test_column_reads_equal_row_reads(tmp_path, ragged):
+    # dedup's and the split's readers of one value of every member (column_of, lengths_of)
+    # against the stored items themselves: the same values and types as reading row by row,
+    # and numpy's len of each stored array; rows of plain dicts take the same path's fallback
+    from pipeline.store.columns import column_of, lengths_of
+    items = _items(ragged)
+    with Ledger(tmp_path / "state.sqlite") as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        order = sorted(items)[::-1]
+        for defer in ((), ("shingles",)):
+            cols = led.artifact_columns("dedup", "fp", order, defer=defer)
+            for pick in ([i for i, sha in enumerate(order) if items[sha]], [2, 0, 2]):
+                picked = [order[i] for i in pick if items[order[i]]]
+                for rows in ([cols.row(i) for i in pick if items[order[i]]], [items[s] for s in picked]):
+                    for name in ("content_hash", "duration_beats"):
+                        got = column_of(rows, name)
+                        assert got == [items[s][name] for s in picked]
+                        assert [type(v) for v in got] == [type(items[s][name]) for s in picked]
+                    assert lengths_of(rows, "shingles").tolist() == [len(items[s]["shingles"]) for s in picked]
+            if ragged:  # a member without the value: the error a row read gives
+                with pytest.raises(KeyError):
+                    column_of([cols.row(i) for i in range(len(order)) if items.get(order[i])], "notes")

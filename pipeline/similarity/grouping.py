@@ -231,11 +231,13 @@ def near_links(signatures: Mapping[str, "np.ndarray"], threshold: float,
 def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold: float,
                   shingles: Mapping[str, "np.ndarray"] | None = None, *, recall: float = GROUP_RECALL,
                   margin_sigmas: float = 4.0, only: "set[str] | None" = None,
-                  read: "Callable[[list], list] | None" = None) -> list[tuple[str, str, float]]:
+                  read: "Callable[[list], list] | None" = None, sizes: "np.ndarray | None" = None
+                  ) -> list[tuple[str, str, float]]:
     """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
     of one matrix (row ``k`` for ``keys[k]``). Memory: no array object per file is needed, and
     the matrix, made here, is let go before the candidate pairs are verified. ``read`` turns
-    held shingle sets that are not arrays into arrays (``links.verify_codes``)."""
+    held shingle sets that are not arrays into arrays (``links.verify_codes``); ``sizes``, the
+    sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
@@ -250,7 +252,12 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     if not len(codes):
         return []
     m = len(live)
-    sizes = None if shingles is None else np.array([len(shingles[k]) for k in keys], dtype=np.float64)
+    if shingles is None:
+        sizes = None
+    elif sizes is None:
+        sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
+    else:
+        sizes = np.asarray(sizes, dtype=np.float64)
     sel = np.empty(len(codes), dtype=bool)
     est = np.empty(len(codes), dtype=np.float64) if shingles is None else None
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time

@@ -35,6 +35,7 @@ from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, gen
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
+from ..store.columns import column_of, lengths_of
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
@@ -232,8 +233,8 @@ class Dedup(Stage):
         # 1. exact: bytes, then canonical note content (a member's content representative is
         # the first member with its note content; near links are found between those)
         content_rep: dict[str, str] = {}
-        exact = (("bytes", {k: by_id[k].sha256 for k in ids}),
-                 ("content", {k: str(arts[k]["content_hash"]) for k in ids}))
+        content_of = dict(zip(ids, map(str, column_of([arts[k] for k in ids], "content_hash"))))
+        exact = (("bytes", {k: by_id[k].sha256 for k in ids}), ("content", content_of))
         for kind, value_of in exact:
             first: dict[str, str] = {}
             for k in ids:
@@ -243,7 +244,7 @@ class Dedup(Stage):
                 else:
                     first[v] = k
         for k in ids:
-            content_rep[k] = first[str(arts[k]["content_hash"])]
+            content_rep[k] = first[content_of[k]]
         rep_ids = sorted(first.values())  # the first member of each note content
 
         # 2. near: every verified pair of content representatives at or above the threshold
@@ -262,7 +263,10 @@ class Dedup(Stage):
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
-        indexed = [k for k in rep_ids if len(arts[k]["shingles"]) >= min_sh]
+        sizes = lengths_of([arts[k] for k in rep_ids], "shingles")
+        indexed = [k for k, size in zip(rep_ids, sizes.tolist()) if size >= min_sh]
+        size_of = dict(zip(rep_ids, sizes.tolist()))
+        del sizes
         sigs = [arts[k]["signature"] for k in indexed]
         if all(len(x) == index.num_perm for x in sigs):  # speed: one array, one emptiness test
             index.extend(indexed, np.array(sigs, dtype=np.uint32).reshape(len(sigs), index.num_perm))
@@ -285,8 +289,9 @@ class Dedup(Stage):
         codes = index.candidate_codes(new_reps if reusable else None, skip=skip)
         del skip
         n_candidates = len(codes)
-        codes = index.plausible_codes(codes, np.array([len(arts[k]["shingles"]) for k in index.ids]),
+        codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
+        del size_of
         n_plausible = len(codes)
         verified = verify_codes(index.ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,

@@ -36,7 +36,7 @@ from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups,
                                    group_by_key, near_links_of)
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
-from ..store.columns import ValuesOf, stacked
+from ..store.columns import ValuesOf, lengths_of, stacked
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
@@ -366,8 +366,11 @@ class Split(Stage):
         found = []
         if new:
             keys = sorted(arts)
-            found = near_links_of(keys, stacked([arts[k] for k in keys], "signature"), threshold,
-                                  shingles, only=new, read=load_arrays)
+            rows = [arts[k] for k in keys]
+            found = near_links_of(keys, stacked(rows, "signature"), threshold, shingles, only=new,
+                                  read=load_arrays,
+                                  sizes=None if shingles is None else lengths_of(rows, "shingles"))
+            del rows
         links = sorted(set(reused) | {(a, b) for a, b, _ in found})
         state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
         return links

@@ -17,7 +17,7 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
-__all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "stacked"]
+__all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "column_of", "lengths_of", "stacked"]
 
 _MISSING = object()
 
@@ -63,15 +63,19 @@ class _ArrayColumn:
             return _MISSING if v is None else v
         return self.matrix[i] if self.has[i] else _MISSING
 
+    def holds(self, i: int) -> bool:
+        return self.rows[i] is not None if self.rows is not None else bool(self.has[i])
+
 
 class _DeferredColumn:
     """Arrays left in the ledger (``ledger.StoredArray``): the dtype and shape text of each
     row (texts interned: few distinct ones), the handle made when the row is read."""
 
-    __slots__ = ("rows", "order", "dtypes", "shapes")
+    __slots__ = ("rows", "order", "dtypes", "shapes", "handle")
 
     def __init__(self, rows: Any, order: list[str]):
-        self.rows, self.order = rows, order
+        from .ledger import StoredArray  # the ledger imports this module
+        self.rows, self.order, self.handle = rows, order, StoredArray
         self.dtypes: list = [None] * len(order)
         self.shapes: list = [None] * len(order)
 
@@ -83,9 +87,11 @@ class _DeferredColumn:
         pass
 
     def get(self, i: int) -> Any:
-        from .ledger import StoredArray
         dtype = self.dtypes[i]
-        return _MISSING if dtype is None else StoredArray(self.rows, self.order[i], dtype, self.shapes[i])
+        return _MISSING if dtype is None else self.handle(self.rows, self.order[i], dtype, self.shapes[i])
+
+    def holds(self, i: int) -> bool:
+        return self.dtypes[i] is not None
 
 
 class _ScalarColumn:
@@ -121,6 +127,9 @@ class _ScalarColumn:
             return self.values[i]
         v = self.column[i]
         return self.kind(v)
+
+    def holds(self, i: int) -> bool:
+        return self.values is None or self.values[i] is not _MISSING
 
 
 class ArtifactColumns:
@@ -164,7 +173,10 @@ class ArtifactColumns:
         return v
 
     def names(self, i: int) -> list[str]:
-        return [n for n, col in self._columns.items() if col.get(i) is not _MISSING]
+        return [n for n, col in self._columns.items() if col.holds(i)]
+
+    def holds_any(self, i: int) -> bool:
+        return any(col.holds(i) for col in self._columns.values())
 
 
 class ArtifactRow(Mapping):
@@ -185,8 +197,51 @@ class ArtifactRow(Mapping):
     def __len__(self) -> int:
         return len(self._cols.names(self._i))
 
+    def __bool__(self) -> bool:  # speed: a truth test (``if not art``) makes no value
+        return self._cols.holds_any(self._i)
+
     def __repr__(self) -> str:
         return f"ArtifactRow({self._cols.order[self._i][:16]}: {', '.join(self)})"
+
+
+def _one_table(rows: list[Mapping], name: str) -> tuple[Any, list[int]] | None:
+    """The column ``name`` and the row numbers of ``rows`` when every row is an
+    ``ArtifactRow`` of one ``ArtifactColumns`` holding that column; else None."""
+    if not rows or any(type(r) is not ArtifactRow for r in rows):
+        return None
+    cols = rows[0]._cols
+    col = cols._columns.get(name)
+    if col is None or any(r._cols is not cols for r in rows):
+        return None
+    return col, [r._i for r in rows]
+
+
+def column_of(rows: list[Mapping], name: str) -> list:
+    """``[r[name] for r in rows]`` for a name held as scalars, read from the column in one pass
+    when the rows share one (speed: a corpus stage reads one value of every member)."""
+    found = _one_table(rows, name)
+    if found is not None and type(found[0]) is _ScalarColumn:
+        col, at = found
+        if col.values is None:
+            return col.column[at].tolist()  # Python ints or floats, as row reads give
+        out = [col.values[i] for i in at]
+        if all(v is not _MISSING for v in out):
+            return out
+    return [r[name] for r in rows]
+
+
+def lengths_of(rows: list[Mapping], name: str) -> np.ndarray:
+    """``len(r[name])`` for every row (int64), for arrays left in the ledger read from their
+    stored shapes without making a handle per row."""
+    found = _one_table(rows, name)
+    if found is not None and type(found[0]) is _DeferredColumn:
+        col, at = found
+        if all(col.dtypes[i] is not None for i in at):
+            from .codec import shape_of
+            dims = [shape_of(col.shapes[i]) for i in at]
+            if all(dims):
+                return np.array([d[0] for d in dims], dtype=np.int64)
+    return np.array([len(r[name]) for r in rows], dtype=np.int64)
 
 
 def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
