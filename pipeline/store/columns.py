@@ -73,9 +73,8 @@ class _DeferredColumn:
 
     __slots__ = ("rows", "order", "dtypes", "shapes", "handle")
 
-    def __init__(self, rows: Any, order: list[str]):
-        from .ledger import StoredArray  # the ledger imports this module
-        self.rows, self.order, self.handle = rows, order, StoredArray
+    def __init__(self, rows: Any, order: list[str], handle: Callable[..., Any]):
+        self.rows, self.order, self.handle = rows, order, handle
         self.dtypes: list = [None] * len(order)
         self.shapes: list = [None] * len(order)
 
@@ -134,11 +133,15 @@ class _ScalarColumn:
 
 class ArtifactColumns:
     """The artifacts of one stage for the contents ``order`` (sha256s), row ``i`` for
-    ``order[i]``. Filled by ``Ledger.artifact_columns`` (``put_*``, then ``finish``)."""
+    ``order[i]``. Filled by ``Ledger.artifact_columns`` (``put_*``, then ``finish``); a deferred
+    array is read through ``handle(rows, sha256, dtype, shape)`` (``ledger.StoredArray``), with
+    ``rows`` the store's access to that name (``deferred_rows[name]``)."""
 
-    def __init__(self, order: list[str], deferred_rows: dict[str, Any]):
+    def __init__(self, order: list[str], deferred_rows: dict[str, Any],
+                 handle: Callable[..., Any] | None = None):
         self.order = order
         self._deferred_rows = deferred_rows
+        self._handle = handle
         self._columns: dict[str, Any] = {}  # name -> column, in the order names were first seen
 
     def _column(self, name: str, make: Any) -> Any:
@@ -151,7 +154,7 @@ class ArtifactColumns:
         self._column(name, lambda: _ArrayColumn(len(self.order))).put(i, arr)
 
     def put_deferred(self, i: int, name: str, dtype: str, shape: str | None) -> None:
-        self._column(name, lambda: _DeferredColumn(self._deferred_rows[name], self.order)).put(i, dtype, shape)
+        self._column(name, lambda: _DeferredColumn(self._deferred_rows[name], self.order, self._handle)).put(i, dtype, shape)
 
     def put_scalar(self, i: int, name: str, value: Any) -> None:
         self._column(name, lambda: _ScalarColumn(len(self.order))).put(i, value)

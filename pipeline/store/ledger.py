@@ -237,7 +237,8 @@ class Ledger:
         matrix per array name and one array per scalar name instead of a dict per file."""
         from .columns import ArtifactColumns  # numpy: not imported by the nothing-changed check
         index = dict(zip(order, range(len(order))))
-        cols = ArtifactColumns(order, {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer})
+        cols = ArtifactColumns(order, {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer},
+                               StoredArray)
         for sha, name, dtype, shape, data in self._artifact_rows(stage, fingerprint, defer):
             i = index.get(sha)
             if i is None:

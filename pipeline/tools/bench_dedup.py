@@ -1,9 +1,9 @@
 """Dedup benchmark with ground truth: precision/recall per planted variant kind, and cost.
 
 ``--real DIR --labels FILE`` and ``--chorales CACHE`` run the real-collection and chorale
-checks of ``pipeline.tools.bench_identity`` instead; ``--idf`` runs these (or the synthetic
-corpora) with the verification as it is and with idf-weighted shingles
-(``pipeline.tools.idf_weight``).
+checks of ``pipeline.tools.bench_identity`` instead (``python -m pipeline.tools.idf_weight``
+runs them, or the synthetic corpora, with the verification as it is and with idf-weighted
+shingles).
 
 Builds corpora with ``pipeline.tools.synth.generate`` (every planted variant kind, style families of
 distinct pieces sharing key, meter and chord progression), decodes them with
@@ -264,26 +264,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--lead-order", action="store_true",
                     help="with --chorales, --real or --sizes: ordered evidence (chain, run, local "
                     "alignment) of the weak links resting on the leads (pipeline.tools.lead_order)")
-    ap.add_argument("--idf", action="store_true",
-                    help="with --chorales, --real or --sizes: the figures with the verification as "
-                    "it is and with shingles weighted by inverse document frequency "
-                    "(pipeline.tools.idf_weight; measured, not used by the stages)")
     ap.add_argument("--weak-below", type=float, default=None,
                     help="with --lead-order: links below this count as weak (chorales 0.3, real 0.4)")
     a = ap.parse_args(argv)
-    if a.idf:
-        from . import idf_weight
-        if a.chorales:
-            from .bench_identity import render_chorales
-            print(idf_weight.chorales_side_by_side(render_chorales(Path(a.chorales))))
-        elif a.real:
-            from .bench_identity import load_collection
-            recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
-            print(idf_weight.real_side_by_side(recs, _options(a.split_option) or None))
-        else:
-            print(idf_weight.synthetic_side_by_side(tuple(int(x) for x in a.sizes.split(",")),
-                                                    a.work, a.seed))
-        return 0
     if a.chorales:
         from .bench_identity import chorale_check, format_chorales, render_chorales
         if a.lead_order:

@@ -13,8 +13,8 @@ measures the other way: every shingle weighs its inverse document frequency over
   from ``LEAD_CONTAINED``, the higher value counting; sets cut at ``cap`` compared on their
   common hash range; dedup still drops its generic shingles first.
 
-``python -m pipeline.tools.bench_dedup --idf`` (with ``--chorales``, ``--real`` or ``--sizes``)
-runs the benchmarks once with the verification as it is and once with ``weighted``: inside it
+``python -m pipeline.tools.idf_weight`` (with ``--chorales``, ``--real`` or ``--sizes``, as
+``pipeline.tools.bench_dedup`` takes them) runs the benchmarks once with the verification as it is and once with ``weighted``: inside it
 ``links.pair_similarities`` (the one place dedup, the split and ``leakage`` compute a candidate
 pair's value) and ``sets.set_similarity`` (the benchmarks' own per-pair figures) are replaced
 by the weighted forms, and the MinHash bounds that drop candidates before the exact comparison
@@ -24,7 +24,9 @@ never proposes stay unseen.
 """
 from __future__ import annotations
 
+import argparse
 import contextlib
+from pathlib import Path
 from typing import Any, Iterator
 
 import numpy as np
@@ -254,3 +256,32 @@ def synthetic_side_by_side(sizes: tuple[int, ...], work: str | None, seed: int =
                 "files": n, "decoded": len(recs), "median_notes": float(np.median(notes)),
                 "decode_ms_per_file": 1000 * decode_s / len(recs), "rows": rows}]}))
     return "\n".join(out)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--chorales", default=None, metavar="CACHE",
+                    help="music21's Bach chorales (rendered once, cached as JSON in CACHE)")
+    ap.add_argument("--real", default=None, help="a real collection folder (with --labels)")
+    ap.add_argument("--labels", default=None, help="labels.json of --real")
+    ap.add_argument("--split-option", action="append", default=[], metavar="NAME=VALUE",
+                    help="a split option for --real (VALUE read as YAML)")
+    ap.add_argument("--sizes", default="1000", help="synthetic corpus sizes, comma-separated")
+    ap.add_argument("--work", default=None, help="keep (and reuse) the generated corpora here")
+    ap.add_argument("--seed", type=int, default=0)
+    a = ap.parse_args(argv)
+    if a.chorales:
+        from .bench_identity import render_chorales
+        print(chorales_side_by_side(render_chorales(Path(a.chorales))))
+    elif a.real:
+        from .bench_dedup import _options
+        from .bench_identity import load_collection
+        recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
+        print(real_side_by_side(recs, _options(a.split_option) or None))
+    else:
+        print(synthetic_side_by_side(tuple(int(x) for x in a.sizes.split(",")), a.work, a.seed))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
