@@ -98,17 +98,11 @@ class LSHIndex:
         self.ids.extend(k for k, ok in zip(keys, live.tolist()) if ok)
         self._sigs.append(sig if live.all() else sig[live])  # memory: no copy when all are live
 
-    def candidates(self, new: set[str] | None = None) -> list[tuple[str, str]]:
-        """Pairs sharing a band, sorted; with ``new``, only pairs with at least one new id."""
-        codes = self.candidate_codes(new)
-        n, ids = len(self.ids), self.ids
-        return sorted(tuple(sorted((ids[c // n], ids[c % n]))) for c in codes.tolist())
-
     def candidate_codes(self, new: set[str] | None = None, skip: np.ndarray | None = None
                         ) -> np.ndarray:
-        """The candidate pairs of ``candidates`` as sorted unique codes ``i * n + j`` (``i < j``
-        index the ids in insertion order): 8 bytes a pair instead of a tuple of two strings.
-        ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
+        """The pairs of ids sharing a band (with ``new``, only pairs with at least one new id)
+        as sorted unique codes ``i * n + j`` (``i < j`` index the ids in insertion order): 8
+        bytes a pair instead of a tuple of two strings. ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
         no row: each gets a key of its own row."""
         n = len(self.ids)
         if n < 2:
