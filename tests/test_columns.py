@@ -3,6 +3,9 @@
 arrays of the same dtype, shape and bytes (numpy's own ``array_equal`` is the reference)."""
 from __future__ import annotations
 
+import contextlib
+from typing import Iterator
+
 import numpy as np
 import pytest
 
@@ -32,12 +35,19 @@ def _items(ragged: bool) -> dict[str, dict]:
     return items
 
 
-@pytest.mark.parametrize("ragged", [False, True])
-def test_rows_read_as_the_dicts_did(tmp_path, ragged):
-    items = _items(ragged)
+@contextlib.contextmanager
+def _stored(tmp_path, items: dict[str, dict]) -> Iterator[Ledger]:
+    """A ledger holding ``items`` as dedup's artifacts under fingerprint ``fp``."""
     with Ledger(tmp_path / "state.sqlite") as led:
         with led.batch():
             led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+        yield led
+
+
+@pytest.mark.parametrize("ragged", [False, True])
+def test_rows_read_as_the_dicts_did(tmp_path, ragged):
+    items = _items(ragged)
+    with _stored(tmp_path, items) as led:
         order = sorted(items)[::-1]  # not in table order
         if ragged:
             order.append("f" * 64)  # a content never prepared
@@ -74,9 +84,7 @@ def test_stacked_rows_and_values_of_read_what_the_rows_hold(tmp_path):
     # rows' own values is the reference, from the column's matrix and from plain dicts alike
     from pipeline.store.columns import ValuesOf, stacked
     items = _items(False)
-    with Ledger(tmp_path / "state.sqlite") as led:
-        with led.batch():
-            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+    with _stored(tmp_path, items) as led:
         order = sorted(items)
         cols = led.artifact_columns("dedup", "fp", order, defer=("shingles",))
         pick = [5, 0, 7, 2]
@@ -98,9 +106,7 @@ def test_column_reads_equal_row_reads(tmp_path, ragged):
     # and numpy's len of each stored array; rows of plain dicts take the same path's fallback
     from pipeline.store.columns import column_of, lengths_of
     items = _items(ragged)
-    with Ledger(tmp_path / "state.sqlite") as led:
-        with led.batch():
-            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+    with _stored(tmp_path, items) as led:
         order = sorted(items)[::-1]
         for defer in ((), ("shingles",)):
             cols = led.artifact_columns("dedup", "fp", order, defer=defer)

@@ -263,10 +263,8 @@ class Dedup(Stage):
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
-        sizes = lengths_of([arts[k] for k in rep_ids], "shingles")
-        indexed = [k for k, size in zip(rep_ids, sizes.tolist()) if size >= min_sh]
-        size_of = dict(zip(rep_ids, sizes.tolist()))
-        del sizes
+        size_of = dict(zip(rep_ids, lengths_of([arts[k] for k in rep_ids], "shingles").tolist()))
+        indexed = [k for k in rep_ids if size_of[k] >= min_sh]
         sigs = [arts[k]["signature"] for k in indexed]
         if all(len(x) == index.num_perm for x in sigs):  # speed: one array, one emptiness test
             index.extend(indexed, np.array(sigs, dtype=np.uint32).reshape(len(sigs), index.num_perm))

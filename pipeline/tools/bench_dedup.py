@@ -246,6 +246,17 @@ def _options(pairs: list[str]) -> dict:
     return out
 
 
+def _print_weak(what: str, counts: dict[str, int], below: float, weak: list[dict]) -> None:
+    """The ``--lead-order`` report: how many pairs rest on the leads, and each weak one with
+    its ordered-evidence measures."""
+    from .lead_order import MEASURES
+    print(f"{what} {counts.get('pairs', 0)}, resting on the leads {counts.get('on_leads', 0)}, "
+          f"of those below {below}: {len(weak)}")
+    for p in weak:
+        print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
+              + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="1000,20000", help="comma-separated corpus sizes")
@@ -283,14 +294,10 @@ def main(argv: list[str] | None = None) -> int:
         from .bench_identity import evaluate, format_real, load_collection
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
         if a.lead_order:
-            from .lead_order import MEASURES, real_lead_order
+            from .lead_order import real_lead_order
             counts: dict[str, int] = {}
             weak = real_lead_order(recs, below=a.weak_below or 0.4, counts=counts)
-            print(f"same-melody pairs of one song: {counts.get('pairs', 0)}, resting on the leads "
-                  f"{counts.get('on_leads', 0)}, of those below {a.weak_below or 0.4}: {len(weak)}")
-            for p in weak:
-                print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
-                      + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
+            _print_weak("same-melody pairs of one song:", counts, a.weak_below or 0.4, weak)
             return 0
         res = evaluate(recs, split_opts=_options(a.split_option) or None)
         if a.out:
@@ -298,7 +305,7 @@ def main(argv: list[str] | None = None) -> int:
         print(format_real(res))
         return 0
     if a.lead_order:
-        from .lead_order import MEASURES, weak_lead_pairs
+        from .lead_order import weak_lead_pairs
         from .synth import generate
         below = a.weak_below or 0.4
         with tempfile.TemporaryDirectory(prefix="midisift-bench-dedup-") as tmp:
@@ -309,11 +316,7 @@ def main(argv: list[str] | None = None) -> int:
                 counts: dict[str, int] = {}
                 weak = weak_lead_pairs(load_corpus(folder)[0], lambda r: r["truth"].get("cluster"),
                                        below, counts=counts)
-                print(f"{n} files: planted pairs {counts.get('pairs', 0)}, resting on the leads "
-                      f"{counts.get('on_leads', 0)}, of those below {below}: {len(weak)}")
-                for p in weak:
-                    print(f"  {p['a']} ~ {p['b']} at {p['similarity']:.3f}: "
-                          + ", ".join(f"{m} {p[m]:.2f}" for m in MEASURES))
+                _print_weak(f"{n} files: planted pairs", counts, below, weak)
         return 0
     res = run(tuple(int(x) for x in a.sizes.split(",")), a.out, a.seed,
               {} if a.defaults_only else None, a.work)
