@@ -90,6 +90,9 @@ def _parser() -> argparse.ArgumentParser:
     b.add_argument("--out", default="bench-out", help="scratch folder for corpora and outputs")
     b.add_argument("--json", dest="json_out", default="bench.json")
     b.add_argument("--only", action="append", default=[], help="run only the named sections (repeat)")
+    b.add_argument("--mem-sizes", metavar="N,N,...",
+                   help="file counts of the memory section's full runs, each a multiple of the first "
+                        "(default 10000,100000; --quick 500,2000); reruns at the second")
     return p
 
 

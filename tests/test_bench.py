@@ -14,7 +14,7 @@ import pytest
 
 from pipeline.tools import bench
 
-TINY = bench.Scale(small=12, large=0, peer_small=2, peer_large=0, mem=(10, 20), dedup_sizes=(),
+TINY = bench.Scale(small=12, large=0, peer_small=2, peer_large=0, mem=(10, 20, 30), dedup_sizes=(),
                    dedup_settings=False)
 
 
@@ -73,8 +73,8 @@ def test_reruns_reuse_the_ledger(doc: dict) -> None:
 
 def test_memory_section_reruns_its_larger_run(doc: dict) -> None:
     m = doc["results"]["memory"]
-    small_n, large_n = TINY.mem
-    assert [m["runs"][str(n)]["files"] for n in (small_n, large_n)] == [small_n, large_n]
+    small_n, large_n, extra_n = TINY.mem
+    assert [m["runs"][str(n)]["files"] for n in TINY.mem] == list(TINY.mem)
     r = m["rerun_large"]
     assert r["new_1pct"]["files"] == large_n + r["new_files"]
     assert 0 < r["new_1pct"]["counts"]["computed"] <= r["new_files"]
@@ -82,7 +82,27 @@ def test_memory_section_reruns_its_larger_run(doc: dict) -> None:
     assert r["new_1pct_fraction"] == round(r["new_1pct"]["wall_s"] / m["runs"][str(large_n)]["wall_s"], 4)
     assert f"reruns on {large_n} files" in doc["table"]
     # the corpus the memory runs read was not touched by the files the rerun added
-    assert len(bench.midi_files(doc["scratch"] / "corpora" / "mem")) == large_n
+    assert len(bench.midi_files(doc["scratch"] / "corpora" / "mem")) == extra_n
+
+
+def test_memory_growth_is_reported_between_sizes(doc: dict) -> None:
+    m = doc["results"]["memory"]
+    runs = m["runs"]
+    pairs = [(10, 20), (20, 30), (10, 30)]
+    assert [(g["from"], g["to"]) for g in m["growth"]] == pairs
+    for g, (a, b) in zip(m["growth"], pairs):
+        # the definition: MB of peak growth over the files added, in KB
+        want = (runs[str(b)]["peak_mb"] - runs[str(a)]["peak_mb"]) * 1024 / (b - a)
+        assert g["kb_per_file"] == pytest.approx(want, abs=0.01)
+        assert f"growth per file, {a:,} -> {b:,} files (KB)" in doc["table"]
+    assert m["kb_per_file"] == m["growth"][0]["kb_per_file"]
+
+
+def test_mem_sizes_are_parsed_and_checked() -> None:
+    assert bench.parse_mem_sizes("10000,100000,300_000") == (10_000, 100_000, 300_000)
+    for bad in ("10000", "10000,15000", "100000,10000", "a,b", "10000,10000"):
+        with pytest.raises(bench.UsageError, match="--mem-sizes"):
+            bench.parse_mem_sizes(bad)
 
 
 def test_peer_accounts_for_every_file(doc: dict) -> None:

@@ -20,7 +20,8 @@ Sections (``--only NAME``, repeatable):
             4-grams into ``MinHashLSH``, random split) on a subset of each class, and our
             pipeline on exactly the same files, side by side
 ``rerun``   a full run, a rerun with 1 % new files, a rerun with nothing changed
-``memory``  peak memory (RSS) of the full run at two corpus sizes, and per file
+``memory``  peak memory (RSS) of the full run at two corpus sizes (or those of ``--mem-sizes``),
+            growth per file, and the reruns at the second size
 ``dedup``   ``pipeline.tools.bench_dedup`` (precision/recall and cost of near-duplicate removal)
 ``cluster`` ``pipeline.tools.bench_cluster``: the Dask executor on a LocalCluster of 2 workers
             against the local pool (overhead ratio, same bytes); needs the dask extra
@@ -40,7 +41,7 @@ import shutil
 import subprocess
 import sys
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any, Callable
 
@@ -61,7 +62,8 @@ class Scale:
     large: int          # ~60 KB class
     peer_small: int     # subset of the small class run through the peer (music21 is slow)
     peer_large: int     # subset of the large class run through the peer
-    mem: tuple[int, int]  # full runs measured for peak memory; mem[0] is also the rerun base
+    mem: tuple[int, ...]  # full runs measured for peak memory (mem[0]: one chunk, also the
+    #                       rerun section's base; mem[1]: the memory section's reruns)
     dedup_sizes: tuple[int, ...]
     dedup_settings: bool  # also the dedup benchmark's extra settings (how defaults were chosen)
     run_timeout_s: float = 3600.0  # a pipeline run still going after this is stopped and reported
@@ -418,32 +420,43 @@ class Bench:
                 "unchanged_fraction": round(same["wall_s"] / full["wall_s"], 4) if done else None}
 
     def memory(self) -> dict[str, Any]:
-        small_n, large_n = self.scale.mem
-        chunks = ensure_chunked(self.scratch / "corpora" / "mem", large_n, small_n, SEEDS["mem"])
-        runs = {}
-        large_input = self.scratch / "runs" / f"mem_{large_n}_input"
-        shutil.rmtree(large_input, ignore_errors=True)
-        link_tree(chunks[0].parent, large_input / "base")  # the reruns below add files to it
-        for n, inp in ((small_n, chunks[0]), (large_n, large_input)):
+        """Peak memory of full runs at each size of ``scale.mem`` (the first size is one chunk
+        of the memory corpus, each larger one the first chunks of it), growth per file between
+        sizes, and the reruns at the second size."""
+        sizes = self.scale.mem
+        chunk = sizes[0]
+        chunks = ensure_chunked(self.scratch / "corpora" / "mem", max(sizes), chunk, SEEDS["mem"])
+        runs, reruns = {}, {}
+        for i, n in enumerate(sizes):
+            inp = chunks[0]
+            if i > 0:
+                inp = self.scratch / "runs" / f"mem_{n}_input"
+                shutil.rmtree(inp, ignore_errors=True)
+                for c in chunks[:n // chunk]:  # under base/: the reruns below add files beside it
+                    link_tree(c, inp / "base" / c.name)
+            # larger runs take longer: the time limit grows with the size past the second one
+            timeout = self.scale.run_timeout_s * max(1.0, n / sizes[min(1, len(sizes) - 1)])
             r = run_pipeline(self.config, inp, self.scratch / "runs" / f"mem_{n}", "auto",
-                           timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
+                             timeout=timeout, memory_mb=self.scale.run_memory_mb)
             r["peak_mb"] = max(r["peak_pss_tree_mb"], r["peak_rss_main_mb"])
             runs[str(n)] = r
             how = _unfinished(r) if r.get("timed_out") else f"{r['files_per_s']} files/s"
             self.log(f"[memory] {r['files']} files: peak {r['peak_mb']} MB (tree PSS "
                      f"{r['peak_pss_tree_mb']}, main RSS {r['peak_rss_main_mb']}), {how}")
-        a, b = runs[str(small_n)], runs[str(large_n)]
-        per_file_kb = ((b["peak_mb"] - a["peak_mb"]) * 1024 / (b["files"] - a["files"])
-                       if b["files"] > a["files"] else None)
-        # the reruns of the issue's users' corpus size, after the larger full run
-        reruns = self._reruns(b, large_input, self.scratch / "runs" / f"mem_{large_n}", large_n)
-        reruns.pop("full")
+            if i == 1:  # the reruns of the issue's users' corpus size, after its full run
+                reruns = self._reruns(r, inp, self.scratch / "runs" / f"mem_{n}", n)
+                reruns.pop("full")
+        growth = [{"from": a, "to": b, "kb_per_file": _growth_kb(runs[str(a)], runs[str(b)])}
+                  for a, b in zip(sizes, sizes[1:])]
+        if len(sizes) > 2:
+            growth.append({"from": sizes[0], "to": sizes[-1],
+                           "kb_per_file": _growth_kb(runs[str(sizes[0])], runs[str(sizes[-1])])})
         # a run stopped at the time limit had not reached its peak: its figure is a lower bound
-        return {"runs": runs, "peak_mb_small": a["peak_mb"],
-                "peak_mb_large": b["peak_mb"], "large_timed_out": bool(b.get("timed_out")),
-                "sizes": [small_n, large_n],
-                "kb_per_file": round(per_file_kb, 2) if per_file_kb is not None else None,
-                "rerun_large": reruns}
+        large = runs[str(sizes[min(1, len(sizes) - 1)])]
+        return {"runs": runs, "peak_mb_small": runs[str(sizes[0])]["peak_mb"],
+                "peak_mb_large": large["peak_mb"], "large_timed_out": bool(large.get("timed_out")),
+                "sizes": list(sizes), "kb_per_file": growth[0]["kb_per_file"] if growth else None,
+                "growth": growth, "rerun_large": reruns}
 
     def cluster(self) -> dict[str, Any]:
         from .bench_cluster import cluster_section
@@ -458,6 +471,13 @@ class Bench:
         res = bench_dedup.run(sizes=self.scale.dedup_sizes, settings=settings)
         res["table"] = bench_dedup.format_table(res)
         return res
+
+
+def _growth_kb(a: dict, b: dict) -> float | None:
+    """Peak memory growth per file from run ``a`` to the larger run ``b`` (KB), or None."""
+    if b["files"] <= a["files"]:
+        return None
+    return round((b["peak_mb"] - a["peak_mb"]) * 1024 / (b["files"] - a["files"]), 2)
 
 
 def _unfinished(run: dict) -> str:
@@ -617,7 +637,9 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
             add("    main process RSS / largest worker RSS (MB)",
                 f"{run['peak_rss_main_mb']:,.0f} / {run['peak_rss_worker_mb']:,.0f}")
             add("    throughput (files/s)", run["files_per_s"])
-        add("  growth per file (KB)", m["kb_per_file"])
+        for g in m.get("growth") or [{"from": m["sizes"][0], "to": m["sizes"][-1],
+                                       "kb_per_file": m["kb_per_file"]}]:
+            add(f"  growth per file, {g['from']:,} -> {g['to']:,} files (KB)", g["kb_per_file"])
         rl = m.get("rerun_large") or {}
         if rl.get("new_1pct_fraction") is not None:
             full = m["runs"][str(m["sizes"][1])]
@@ -708,9 +730,25 @@ def _require_peer_libraries() -> None:
                          "source folder) or leave the section out with --only")
 
 
+def parse_mem_sizes(text: str) -> tuple[int, ...]:
+    """``--mem-sizes`` "10000,100000,300000" -> sizes, each a multiple of the first."""
+    try:
+        sizes = tuple(int(t.replace("_", "")) for t in text.split(","))
+    except ValueError:
+        raise UsageError(f"--mem-sizes {text!r}: expected comma-separated file counts, "
+                         f"e.g. 10000,100000,300000") from None
+    if len(sizes) < 2 or any(n <= 0 or n % sizes[0] for n in sizes) or list(sizes) != sorted(set(sizes)):
+        raise UsageError(f"--mem-sizes {text!r}: give two or more increasing file counts, each a "
+                         f"multiple of the first (the corpus is built in chunks of the first), "
+                         f"e.g. 10000,100000,300000")
+    return sizes
+
+
 def main_bench(args: Any) -> int:
     """CLI entry (``midisift bench [--quick] [--out DIR] [--json FILE] [--only SECTION]``)."""
     scale = SCALES["quick" if args.quick else "full"]
+    if getattr(args, "mem_sizes", None):
+        scale = replace(scale, mem=parse_mem_sizes(args.mem_sizes))
     sections = list(args.only) or list(SECTIONS)
     if "peer" in sections:
         _require_peer_libraries()
