@@ -93,6 +93,9 @@ def _parser() -> argparse.ArgumentParser:
     b.add_argument("--mem-sizes", metavar="N,N,...",
                    help="file counts of the memory section's full runs, each a multiple of the first "
                         "(default 10000,100000; --quick 500,2000); reruns at the second")
+    b.add_argument("--run-timeout", type=float, metavar="S",
+                   help="stop a measured run after S seconds and report it unfinished (default 600, --quick "
+                        "3600; the memory section scales it with the size past its second)")
     return p
 
 

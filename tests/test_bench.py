@@ -98,6 +98,16 @@ def test_memory_growth_is_reported_between_sizes(doc: dict) -> None:
     assert m["kb_per_file"] == m["growth"][0]["kb_per_file"]
 
 
+def test_command_line_sets_the_scale() -> None:
+    from argparse import Namespace
+    scale = bench.scale_for(Namespace(quick=False, mem_sizes="10000,100000,300000", run_timeout=2400.0))
+    assert scale.mem == (10_000, 100_000, 300_000) and scale.run_timeout_s == 2400.0
+    assert scale.small == bench.SCALES["full"].small
+    assert bench.scale_for(Namespace(quick=True, mem_sizes=None, run_timeout=None)) == bench.SCALES["quick"]
+    with pytest.raises(bench.UsageError, match="--run-timeout"):
+        bench.scale_for(Namespace(quick=False, mem_sizes=None, run_timeout=0.0))
+
+
 def test_mem_sizes_are_parsed_and_checked() -> None:
     assert bench.parse_mem_sizes("10000,100000,300_000") == (10_000, 100_000, 300_000)
     for bad in ("10000", "10000,15000", "100000,10000", "a,b", "10000,10000"):

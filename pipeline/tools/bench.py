@@ -744,11 +744,21 @@ def parse_mem_sizes(text: str) -> tuple[int, ...]:
     return sizes
 
 
-def main_bench(args: Any) -> int:
-    """CLI entry (``midisift bench [--quick] [--out DIR] [--json FILE] [--only SECTION]``)."""
+def scale_for(args: Any) -> Scale:
+    """The bench's scale from its command line: ``--quick``, ``--mem-sizes``, ``--run-timeout``."""
     scale = SCALES["quick" if args.quick else "full"]
     if getattr(args, "mem_sizes", None):
         scale = replace(scale, mem=parse_mem_sizes(args.mem_sizes))
+    if getattr(args, "run_timeout", None) is not None:
+        if args.run_timeout <= 0:
+            raise UsageError(f"--run-timeout {args.run_timeout}: give a positive number of seconds")
+        scale = replace(scale, run_timeout_s=args.run_timeout)
+    return scale
+
+
+def main_bench(args: Any) -> int:
+    """CLI entry (``midisift bench [--quick] [--out DIR] [--json FILE] [--only SECTION]``)."""
+    scale = scale_for(args)
     sections = list(args.only) or list(SECTIONS)
     if "peer" in sections:
         _require_peer_libraries()
