@@ -26,7 +26,8 @@ The distributions (each 12 bins, normalized to sum 1 like ``key.key_features``' 
 Each variant appends some of these, read from the candidate tonic (``key._ROTATE``), as extra
 per-key columns (a major and a minor block, like ``class_features``) and is scored by
 ``key_variants.cross_validate`` (5-fold and leave-one-genre-out) with the shipped linear
-model. These are experiments: nothing here is on the run path.
+model; ``--only minor-errors`` prints where the phrase evidence sits in pop's minor songs
+called their relative major (README, Key detection, sixth round). These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations
 
@@ -169,11 +170,39 @@ VARIANTS = {
 }
 
 
+def minor_errors(data: PhraseData, rule: str = "rest1") -> None:
+    """Print where the phrase evidence sits in pop's minor songs, those the shipped model
+    (5-fold) calls right and those it calls their relative major: the mean share of the
+    phrase ends, of the bass under them and of the phrase starts on the minor tonic and on the
+    relative major's tonic, and of the two tonic triads at the phrase ends."""
+    probs = key_variants.cross_validate(data, lambda: key_variants.Linear(data))
+    y = data.y["pop"]
+    pred = probs[("5-fold", "pop")].argmax(1)
+    f = data.phrase[rule]["pop"]
+    n, tonic = np.arange(len(y)), y % 12
+    relative = (tonic + 3) % 12  # the relative major's tonic is a minor third up (its class index)
+    groups = {"right": (y >= 12) & (pred == y), "called relative major": (y >= 12) & (pred == relative)}
+    for feature in ("phrase_end", "phrase_end_bass", "phrase_start"):
+        a = f[n, PHRASE_FEATURES.index(feature), tonic]
+        b = f[n, PHRASE_FEATURES.index(feature), relative]
+        print(f"{rule} {feature}: " + "; ".join(
+            f"minor songs {g} ({m.sum()}): minor tonic {a[m].mean():.3f}, relative major tonic "
+            f"{b[m].mean():.3f}, minor tonic more in {(a[m] > b[m]).sum()}" for g, m in groups.items()))
+    i = f[n, PHRASE_FEATURES.index("phrase_end_minor"), tonic]
+    iii = f[n, PHRASE_FEATURES.index("phrase_end_major"), relative]
+    print(f"{rule} triads at the phrase ends: " + "; ".join(
+        f"{g}: minor tonic triad {i[m].mean():.3f}, relative major's {iii[m].mean():.3f}"
+        for g, m in groups.items()))
+
+
 def main(argv: list[str] | None = None) -> None:
     args = key_variants.arguments(__doc__, argv)
     t0 = time.process_time()
     data = PhraseData(args.pop, args.folk)
     print(f"features: {time.process_time() - t0:.0f} s CPU", flush=True)
+    if args.only == ["minor-errors"]:
+        minor_errors(data)
+        return
     key_variants.print_header(data)
     for name in args.only or list(VARIANTS):
         spec = VARIANTS[name]
