@@ -164,6 +164,8 @@ VARIANTS = {
                                                     "phrase_end_major", "phrase_end_minor")),
     "start-rest1-long2": ("rest1-long2", ("phrase_start",)),
     "bass+triads-rest1": ("rest1", ("phrase_end_bass", "phrase_end_major", "phrase_end_minor")),
+    "triads-rest1": ("rest1", ("phrase_end_major", "phrase_end_minor")),
+    "end+triads-rest1": ("rest1", ("phrase_end", "phrase_end_major", "phrase_end_minor")),
     "end-rest2": ("rest2", ("phrase_end",)),
     "end+bass+triads-rest2": ("rest2", ("phrase_end", "phrase_end_bass", "phrase_end_major",
                                         "phrase_end_minor")),
