@@ -88,3 +88,22 @@ def test_transposition_rotates_the_distributions_and_the_key_rows():
     # A minor's row reads the phrase ends from A: all on its tonic (bin 0) in the minor block
     m = len(key_phrase.PHRASE_FEATURES) * 12
     assert rows[12 + 9, m] == 2 / 3 and not rows[12 + 9, :m].any()
+
+
+def test_shuffled_keeps_each_piece_with_its_truth():
+    # another fold assignment moves whole pieces: each row keeps its features and its key,
+    # and the evaluation chorales (never in a fold) stay in place
+    data = key_phrase.PhraseData.__new__(key_phrase.PhraseData)
+    rng = np.random.default_rng(0)
+    data.sets = ["chorales", "folk", "pop"]
+    data.y = {s: np.arange(20) % 24 for s in data.sets + ["chorales_eval"]}
+    data.raw = {s: rng.random((20, 2, 12)) + data.y[s][:, None, None] for s in data.y}
+    data.phi = {s: data.raw[s][:, :, :3].copy() for s in data.y}
+    moved = key_phrase.shuffled(data, 1)
+    for s in data.y:
+        order = np.argsort(moved.y[s], kind="stable")
+        assert np.array_equal(moved.y[s][order], data.y[s])
+        assert np.array_equal(moved.raw[s][order], data.raw[s])
+        assert np.array_equal(moved.phi[s][order], data.phi[s])
+    assert not np.array_equal(moved.y["pop"], data.y["pop"])
+    assert np.array_equal(moved.y["chorales"], data.y["chorales"])

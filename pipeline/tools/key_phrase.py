@@ -27,7 +27,8 @@ Each variant appends some of these, read from the candidate tonic (``key._ROTATE
 per-key columns (a major and a minor block, like ``class_features``) and is scored by
 ``key_variants.cross_validate`` (5-fold and leave-one-genre-out) with the shipped linear
 model; ``--only minor-errors`` prints where the phrase evidence sits in pop's minor songs
-called their relative major (README, Key detection, sixth round). These are experiments: nothing here is on the run path.
+called their relative major, ``--fold-seeds`` also scores each variant under other fold
+assignments (README, Key detection, sixth round). These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations
 
@@ -149,6 +150,20 @@ class PhraseData(key_variants.Data):
         return out
 
 
+def shuffled(data: key_variants.Data, seed: int) -> key_variants.Data:
+    """A copy whose folk, classical and pop pieces are in a random order (``seed``), so that
+    ``cross_validate``'s folds (piece i in fold i % 5) are another assignment; the
+    leave-one-genre-out figures stay the same."""
+    out = copy.copy(data)
+    out.raw, out.phi, out.y = dict(data.raw), dict(data.phi), dict(data.y)
+    rng = np.random.default_rng(seed)
+    for s in data.sets:
+        if s != "chorales":
+            order = rng.permutation(len(data.y[s]))
+            out.raw[s], out.phi[s], out.y[s] = data.raw[s][order], data.phi[s][order], data.y[s][order]
+    return out
+
+
 #: The variants: (rule, phrase distributions appended).
 VARIANTS = {
     "linear": None,
@@ -198,7 +213,11 @@ def minor_errors(data: PhraseData, rule: str = "rest1") -> None:
 
 
 def main(argv: list[str] | None = None) -> None:
-    args = key_variants.arguments(__doc__, argv)
+    ap = key_variants.parser(__doc__)
+    ap.add_argument("--fold-seeds", type=int, nargs="*", default=[],
+                    help="also score each variant with each set's pieces shuffled by these seeds "
+                         "before the 5-fold split (other fold assignments)")
+    args = ap.parse_args(argv)
     t0 = time.process_time()
     data = PhraseData(args.pop, args.folk)
     print(f"features: {time.process_time() - t0:.0f} s CPU", flush=True)
@@ -210,6 +229,10 @@ def main(argv: list[str] | None = None) -> None:
         spec = VARIANTS[name]
         d = data if spec is None else data.with_features(*spec)
         key_variants.print_scores(name, d, lambda: key_variants.Linear(d))
+        for seed in args.fold_seeds:
+            moved = shuffled(d, seed)
+            key_variants.print_scores(f"{name} (folds {seed})", moved,
+                                      lambda: key_variants.Linear(moved))
 
 
 if __name__ == "__main__":

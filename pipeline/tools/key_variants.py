@@ -331,7 +331,7 @@ def variants(data: Data) -> dict[str, Callable[[], object]]:
 
 
 def main(argv: list[str] | None = None) -> None:
-    args = arguments(__doc__, argv)
+    args = parser(__doc__).parse_args(argv)
     data = Data(args.pop, args.folk)
     table = variants(data)
     print_header(data)
@@ -339,13 +339,13 @@ def main(argv: list[str] | None = None) -> None:
         print_scores(name, data, table[name])
 
 
-def arguments(doc: str, argv: list[str] | None) -> argparse.Namespace:
+def parser(doc: str) -> argparse.ArgumentParser:
     """The command line of a variants tool: --pop, --folk, --only."""
     ap = argparse.ArgumentParser(description=doc.splitlines()[0])
     ap.add_argument("--pop", help="POP909-style folder with labels.json")
     ap.add_argument("--folk", type=int, default=600, help="folk tunes, evenly spaced (as train_key)")
     ap.add_argument("--only", nargs="*", help="variant names (default: all)")
-    return ap.parse_args(argv)
+    return ap
 
 
 def print_header(data: Data) -> None:
