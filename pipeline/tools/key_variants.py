@@ -331,24 +331,39 @@ def variants(data: Data) -> dict[str, Callable[[], object]]:
 
 
 def main(argv: list[str] | None = None) -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    args = parser(__doc__).parse_args(argv)
+    data = Data(args.pop, args.folk)
+    table = variants(data)
+    print_header(data)
+    for name in args.only or list(table):
+        print_scores(name, data, table[name])
+
+
+def parser(doc: str) -> argparse.ArgumentParser:
+    """The command line of a variants tool: --pop, --folk, --only."""
+    ap = argparse.ArgumentParser(description=doc.splitlines()[0])
     ap.add_argument("--pop", help="POP909-style folder with labels.json")
     ap.add_argument("--folk", type=int, default=600, help="folk tunes, evenly spaced (as train_key)")
     ap.add_argument("--only", nargs="*", help="variant names (default: all)")
-    args = ap.parse_args(argv)
-    data = Data(args.pop, args.folk)
-    table = variants(data)
-    names = args.only or list(table)
+    return ap
+
+
+def print_header(data: Data) -> None:
+    """The header of the printed table: the sets under each cross-validation."""
     print(f"{'variant':<30} 5-fold " + " ".join(f"{s:>9}" for s in data.sets)
           + " | leave-one-genre-out " + " ".join(f"{s:>9}" for s in data.sets))
-    for name in names:
-        t0 = time.process_time()
-        probs = cross_validate(data, table[name])
-        exact = {k: float(np.mean(p.argmax(1) == data.y["chorales_eval" if k[1] == "chorales" else k[1]]))
-                 for k, p in probs.items()}
-        print(f"{name:<30} " + " ".join(f"{exact[('5-fold', s)]:9.3f}" for s in data.sets) + " | "
-              + " ".join(f"{exact[('leave-one-genre-out', s)]:9.3f}" for s in data.sets)
-              + f"  ({time.process_time() - t0:.0f} s CPU)", flush=True)
+
+
+def print_scores(name: str, data: Data, make: Callable[[], object]) -> None:
+    """One row of the printed table: the variant's exact accuracy per set, both
+    cross-validations, and the CPU time they took."""
+    t0 = time.process_time()
+    probs = cross_validate(data, make)
+    exact = {k: float(np.mean(p.argmax(1) == data.y["chorales_eval" if k[1] == "chorales" else k[1]]))
+             for k, p in probs.items()}
+    print(f"{name:<30} " + " ".join(f"{exact[('5-fold', s)]:9.3f}" for s in data.sets) + " | "
+          + " ".join(f"{exact[('leave-one-genre-out', s)]:9.3f}" for s in data.sets)
+          + f"  ({time.process_time() - t0:.0f} s CPU)", flush=True)
 
 
 if __name__ == "__main__":
