@@ -283,9 +283,9 @@ class Dedup(Stage):
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
-        skip = generic_bands(index.matrix(), self._generic, index.bands, int(o["seed"]))
-        codes = index.candidate_codes(new_reps if reusable else None, skip=skip)
-        del skip
+        # (a rerun marks the generic bands of the rows in its candidate pairs only)
+        codes = index.candidate_codes(new_reps if reusable else None,
+                                      skip=lambda rows: self._generic_bands(index.matrix(), rows))
         n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
@@ -317,6 +317,12 @@ class Dedup(Stage):
         groups = uf.groups()
         as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
         for group, same in zip(groups, as_last):
+            if same and len(group) == 1:  # speed: the bulk of a rerun, one member alone as last time
+                k = group[0]
+                results[k] = last[k]
+                if k in last_kept:
+                    kept_ids.append(k)
+                continue
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
@@ -341,6 +347,11 @@ class Dedup(Stage):
         state.save("cluster_sources", cluster_sources)
         return results
 
+    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
+        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
+        return generic_bands(sig if rows is None else sig[rows], self._generic,
+                             int(self.opts["bands"]), int(self.opts["seed"]))
+
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
         """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
         on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
@@ -356,6 +367,8 @@ class Dedup(Stage):
         """Whether a cluster is the last run's and reads as it did: no new member, every member
         with a stored result, and (in a cluster of several, whose details name sources) every
         member still represented by the same source path."""
+        if len(group) == 1:  # speed: most clusters
+            return group[0] in old and group[0] in last
         for k in group:
             if k not in old or k not in last:
                 return False
