@@ -35,7 +35,8 @@ from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, gen
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
-from ..store.columns import column_of, lengths_of
+from ..store.columns import column_of, lengths_of, stacked
+from ..store.columns import present as holding
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
@@ -218,13 +219,15 @@ class Dedup(Stage):
         threshold = float(o["threshold"])
         arts: dict[str, dict[str, Any]] = {}
         by_id: dict[str, Member] = {}
-        for m in members:
-            art = m.artifacts.get(self.name)
-            if not art:
+        rows = [m.artifacts.get(self.name) for m in members]
+        # speed: the columns' marks tell which members hold artifacts (no test made per row)
+        for m, art, ok in zip(members, rows, holding(rows, "content_hash")):
+            if not ok:
                 raise ValueError(f"member {m.id} ({m.source}) has no dedup artifacts: "
                                  "prepare() must run for every file that reaches dedup")
             arts[m.id] = art
             by_id[m.id] = m
+        del rows
         facts = _LazyFacts(by_id, arts)  # speed: facts are built for the members that need them
         ids = sorted(arts)
         prev = {} if state.flags.get("fresh") else (state.previous or {})
@@ -265,13 +268,17 @@ class Dedup(Stage):
         min_sh = int(o["min_shingles"])
         size_of = dict(zip(rep_ids, lengths_of([arts[k] for k in rep_ids], "shingles").tolist()))
         indexed = [k for k in rep_ids if size_of[k] >= min_sh]
-        sigs = [arts[k]["signature"] for k in indexed]
-        if all(len(x) == index.num_perm for x in sigs):  # speed: one array, one emptiness test
-            index.extend(indexed, np.array(sigs, dtype=np.uint32).reshape(len(sigs), index.num_perm))
+        rows = [arts[k] for k in indexed]
+        try:  # speed, memory: one array taken from the signature column, no view per member
+            sigs = np.asarray(stacked(rows, "signature")(), dtype=np.uint32) if rows else None
+        except ValueError:  # signatures of several lengths
+            sigs = None
+        if sigs is not None and sigs.ndim == 2 and sigs.shape[1] == index.num_perm:
+            index.extend(indexed, sigs)
         else:
-            for k, x in zip(indexed, sigs):
-                index.add(k, x)  # names the member whose signature does not fit
-        del sigs  # memory: the members' signatures may be views made for this list
+            for k, r in zip(indexed, rows):
+                index.add(k, r["signature"])  # names the member whose signature does not fit
+        del sigs, rows
         new_reps = {k for k in rep_ids if k not in old}
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were)
