@@ -298,7 +298,9 @@ class Dedup(Stage):
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         del size_of
         n_plausible = len(codes)
-        verified = verify_codes(index.ids, codes, _Shingles(arts), threshold,
+        index_ids = index.ids
+        del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
+        verified = verify_codes(index_ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
                                 read=load_arrays)
         del codes  # memory: millions of candidates on a large corpus
