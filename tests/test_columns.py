@@ -121,3 +121,23 @@ def test_column_reads_equal_row_reads(tmp_path, ragged):
             if ragged:  # a member without the value: the error a row read gives
                 with pytest.raises(KeyError):
                     column_of([cols.row(i) for i in range(len(order)) if items.get(order[i])], "notes")
+
+
+@pytest.mark.parametrize("ragged", [False, True])
+def test_present_equals_reading_each_row(tmp_path, ragged):
+    # the split's test of which members hold a signature and a shingle set (present) against
+    # the stored items themselves: a name is present where the item has a value for it
+    from pipeline.store.columns import present
+    items = _items(ragged)
+    with _stored(tmp_path, items) as led:
+        order = sorted(items)[::-1]
+        for defer in ((), ("shingles",), ("shingles", "signature")):
+            cols = led.artifact_columns("dedup", "fp", order, defer=defer)
+            for pick in (list(range(len(order))), [2, 0, 2]):
+                for rows in ([cols.row(i) for i in pick], [items[order[i]] for i in pick],
+                             [cols.row(i) for i in pick] + [None]):
+                    for name in ("signature", "shingles", "notes", "mixed", "absent"):
+                        want = [order[i] in items and items[order[i]].get(name) is not None for i in pick]
+                        if len(rows) > len(pick):
+                            want.append(False)
+                        assert present(rows, name) == want

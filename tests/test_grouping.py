@@ -236,3 +236,54 @@ def test_band_codes_equal_brute_force(n, bands, seed, marked):
     c, ids = index.candidate_codes(new), index.ids  # dedup's banding of the same signatures
     assert [(ids[a], ids[b]) for a, b in zip((c // len(ids)).tolist(), (c % len(ids)).tolist())] == \
         [(keys[i], keys[j]) for i, j in want]
+
+
+def reference_assign(groups, ratios, seed, previous, freeze, sizes):
+    """Independent reference of the placement rule in grouping's module docstring (every group
+    through the same steps, in plain Python): inherited groups in key order, then new groups
+    largest first (ties by the seeded rank) into the part with the largest deficit."""
+    from pipeline.similarity.grouping import seeded_rank
+    parts = list(ratios)
+    current = dict.fromkeys(parts, 0.0)
+    assignment, moves, fresh = {}, [], []
+
+    def place(ids, target, w):
+        current[target] += w
+        for m in ids:
+            assignment[m] = target
+            if previous.get(m) not in (None, target):
+                moves.append((m, previous[m], target))
+
+    for key in sorted(groups):
+        ids = groups[key]
+        w = sum(float(sizes.get(m, 1.0)) for m in ids)
+        counts = defaultdict(int)
+        for m in ids:
+            if previous.get(m) in parts:
+                counts[previous[m]] += 1
+        if not counts:
+            fresh.append((-w, seeded_rank(key, seed), key))
+        elif len(counts) > 1 and freeze in counts:
+            place(ids, freeze, w)
+        else:
+            place(ids, max(counts, key=lambda p: (counts[p], -parts.index(p))), w)
+    for neg_w, _, key in sorted(fresh):
+        total = sum(current.values()) - neg_w
+        place(groups[key], max(parts, key=lambda p: (ratios[p] * total - current[p], -parts.index(p))), -neg_w)
+    return assignment, sorted(moves)
+
+
+@settings(max_examples=150, deadline=None)
+@given(structures(), st.integers(0, 50), st.data())
+def test_rerun_assignment_equals_the_rule_stated_plainly(s, seed, data):
+    # Reference: reference_assign above, the documented rule with no shortcut (assign_groups
+    # takes one for a group of one member keeping its part, the bulk of a rerun)
+    ids, edges, forced = s
+    groups = build_groups(ids, edges, forced)
+    previous = {m: data.draw(st.sampled_from(["train", "valid", "test", "old"])) for m in ids
+                if data.draw(st.booleans())}
+    sizes = {m: float(data.draw(st.integers(0, 3))) for m in ids if data.draw(st.booleans())}
+    got, moves = assign_groups(groups, RATIOS, seed, previous, "test", sizes)
+    want, want_moves = reference_assign(groups, RATIOS, seed, previous, "test", sizes)
+    assert got == want
+    assert [(m, a, b) for m, a, b, _ in moves] == want_moves

@@ -568,3 +568,40 @@ def test_band_keys_one_band_at_a_time_equal_the_whole_table():
         assert (band_keys(sig, bands) == want).all()
         for b in (0, bands // 2, bands - 1):
             assert (band_key(sig, bands, b) == want[:, b]).all()
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_rerun_candidates_with_marks_of_paired_rows_only_equal_brute_force(seed):
+    # Reference: the LSH banding definition (Mining of Massive Datasets, ch. 3) in plain
+    # Python: a pair is a candidate when some band's values are equal in both rows; a band
+    # marked to pair nothing (generic_bands) in either row does not count. A rerun (few new
+    # rows) asks for the marks of the rows in its pairs only; the all-rows form agrees.
+    from pipeline.similarity.lsh import LSHIndex
+    rng = np.random.default_rng(seed)
+    n, num_perm, bands = 240, 32, 16
+    sig = rng.integers(0, 12, (n, num_perm)).astype(np.uint32)  # few values: many shared bands
+    marks = rng.random((n, bands)) < 0.3
+    new = {f"k{r:03d}" for r in rng.choice(n, 6, replace=False)}
+    index = LSHIndex(num_perm, bands)
+    index.extend([f"k{r:03d}" for r in range(n)], sig)
+    asked: list[np.ndarray] = []
+
+    def skip(rows):
+        asked.append(rows)
+        return marks if rows is None else marks[rows]
+
+    got = index.candidate_codes(new, skip=skip)
+    rows = num_perm // bands
+    want = set()
+    for i in range(n):
+        for j in range(i + 1, n):
+            if f"k{i:03d}" not in new and f"k{j:03d}" not in new:
+                continue
+            if any(not marks[i, b] and not marks[j, b]
+                   and list(sig[i, b * rows:(b + 1) * rows]) == list(sig[j, b * rows:(b + 1) * rows])
+                   for b in range(bands)):
+                want.add(i * n + j)
+    assert set(got.tolist()) == want and len(want) > 30
+    assert list(got) == sorted(got)
+    assert len(asked) == 1 and asked[0] is not None and len(asked[0]) < n  # marks of paired rows only
+    assert np.array_equal(index.candidate_codes(new, skip=marks), got)

@@ -91,8 +91,16 @@ def assign_groups(groups: Mapping[str, list[str]], ratios: Mapping[str, float], 
     assignment: dict[str, str] = {}
     moves: list[Move] = []
     fresh: list[tuple[float, str, str]] = []
+    configured = set(parts)
     for key in sorted(groups):
         ids = groups[key]
+        if len(ids) == 1 and previous.get(ids[0]) in configured:
+            # speed: a group of one member keeping its part (most groups of a rerun); what
+            # _inherited_part and _place give it, without their work (it moves nowhere)
+            m = ids[0]
+            current[previous[m]] += weight(m)
+            assignment[m] = previous[m]
+            continue
         w = sum(weight(m) for m in ids)
         target = _inherited_part(ids, previous, parts, freeze)
         if target is None:

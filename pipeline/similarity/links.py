@@ -9,6 +9,7 @@ shingle sets a block at a time, through the caller's ``read`` (a stage passes
 """
 from __future__ import annotations
 
+from operator import itemgetter
 from typing import Any, Callable, Iterable, Iterator
 
 import numpy as np
@@ -52,9 +53,16 @@ class UnionFind:
     def groups(self) -> list[list[Any]]:
         """All sets, each sorted, ordered by their smallest member."""
         out: dict[Any, list[Any]] = {}
-        for k in self.parent:
-            out.setdefault(self.find(k), []).append(k)
-        return sorted((sorted(g) for g in out.values()), key=lambda g: g[0])
+        alone: list[list[Any]] = []
+        size = self.size
+        for k, p in self.parent.items():
+            if p == k and size[k] == 1:  # speed: a set of one (most keys of a corpus)
+                alone.append([k])
+            else:
+                out.setdefault(self.find(k), []).append(k)
+        alone.extend(sorted(g) for g in out.values())
+        alone.sort(key=itemgetter(0))
+        return alone
 
 
 def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,

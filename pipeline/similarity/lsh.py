@@ -9,7 +9,7 @@ grouping), ``plausible_pairs`` drops candidates whose signatures cannot reach a 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -98,12 +98,15 @@ class LSHIndex:
         self.ids.extend(k for k, ok in zip(keys, live.tolist()) if ok)
         self._sigs.append(sig if live.all() else sig[live])  # memory: no copy when all are live
 
-    def candidate_codes(self, new: set[str] | None = None, skip: np.ndarray | None = None
+    def candidate_codes(self, new: set[str] | None = None,
+                        skip: np.ndarray | Callable[[np.ndarray | None], np.ndarray] | None = None
                         ) -> np.ndarray:
         """The pairs of ids sharing a band (with ``new``, only pairs with at least one new id)
         as sorted unique codes ``i * n + j`` (``i < j`` index the ids in insertion order): 8
         bytes a pair instead of a tuple of two strings. ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
-        no row: each gets a key of its own row."""
+        no row: each gets a key of its own row. ``skip`` may be a function of row numbers
+        (None: all rows) giving those marks: with few new ids (a rerun) it is asked only for
+        the rows of the pairs found without it (``unskipped_codes``)."""
         n = len(self.ids)
         if n < 2:
             return np.zeros(0, dtype=np.int64)
@@ -112,6 +115,11 @@ class LSHIndex:
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
         sig = self.matrix()
+        if callable(skip):
+            if int(np.count_nonzero(is_new)) * _FEW_NEW <= n:
+                # speed: a rerun marks the generic bands of the rows it pairs, not of every row
+                return unskipped_codes(sig, self.bands, banded_pair_codes(sig, self.bands, is_new), skip)
+            skip = skip(None)
         if skip is None or not skip.any():
             return banded_pair_codes(sig, self.bands, is_new)
         if not sig.flags.writeable:  # e.g. one signature as read from the ledger
@@ -249,6 +257,31 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
         codes = sorted_unique(merged, is_sorted=True)
         del merged
     return codes
+
+
+def unskipped_codes(sig: np.ndarray, bands: int, codes: np.ndarray,
+                    skip: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """The codes ``i * n + j`` (rows of ``sig``, e.g. from ``banded_pair_codes``) of the pairs
+    sharing a band key (``band_key``) in a band that neither row skips: ``skip(rows)`` gives
+    the ``(len(rows), bands)`` skip marks of the sorted rows asked for. The pairs
+    ``LSHIndex.candidate_codes`` finds with those marks given to every row (a skipped band
+    gets a key of its own row: the row number, then ``EMPTY_VALUE - 1``, the top of the
+    32-bit range, which the minimum of a compared set's hashes all but never reaches), found
+    from the marks of the rows in ``codes`` only."""
+    n = len(sig)
+    if not len(codes):
+        return codes
+    i, j = np.divmod(codes, n)
+    rows = sorted_unique(np.concatenate([i, j]))
+    li, lj = np.searchsorted(rows, i), np.searchsorted(rows, j)
+    marks = np.asarray(skip(rows), dtype=bool)
+    sub = sig[rows]
+    keep = np.zeros(len(codes), dtype=bool)
+    for band in range(bands):
+        key = band_key(sub, bands, band)
+        live = ~marks[:, band]
+        keep |= (key[li] == key[lj]) & live[li] & live[lj]
+    return codes[keep]
 
 
 #: Bands whose pair codes are merged at once (a pair shares many bands: memory).

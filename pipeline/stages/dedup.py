@@ -35,7 +35,8 @@ from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, gen
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
-from ..store.columns import column_of, lengths_of
+from ..store.columns import column_of, lengths_of, stacked
+from ..store.columns import present as holding
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
@@ -218,13 +219,15 @@ class Dedup(Stage):
         threshold = float(o["threshold"])
         arts: dict[str, dict[str, Any]] = {}
         by_id: dict[str, Member] = {}
-        for m in members:
-            art = m.artifacts.get(self.name)
-            if not art:
+        rows = [m.artifacts.get(self.name) for m in members]
+        # speed: the columns' marks tell which members hold artifacts (no test made per row)
+        for m, art, ok in zip(members, rows, holding(rows, "content_hash")):
+            if not ok:
                 raise ValueError(f"member {m.id} ({m.source}) has no dedup artifacts: "
                                  "prepare() must run for every file that reaches dedup")
             arts[m.id] = art
             by_id[m.id] = m
+        del rows
         facts = _LazyFacts(by_id, arts)  # speed: facts are built for the members that need them
         ids = sorted(arts)
         prev = {} if state.flags.get("fresh") else (state.previous or {})
@@ -265,13 +268,17 @@ class Dedup(Stage):
         min_sh = int(o["min_shingles"])
         size_of = dict(zip(rep_ids, lengths_of([arts[k] for k in rep_ids], "shingles").tolist()))
         indexed = [k for k in rep_ids if size_of[k] >= min_sh]
-        sigs = [arts[k]["signature"] for k in indexed]
-        if all(len(x) == index.num_perm for x in sigs):  # speed: one array, one emptiness test
-            index.extend(indexed, np.array(sigs, dtype=np.uint32).reshape(len(sigs), index.num_perm))
+        rows = [arts[k] for k in indexed]
+        try:  # speed, memory: one array taken from the signature column, no view per member
+            sigs = np.asarray(stacked(rows, "signature")(), dtype=np.uint32) if rows else None
+        except ValueError:  # signatures of several lengths
+            sigs = None
+        if sigs is not None and sigs.ndim == 2 and sigs.shape[1] == index.num_perm:
+            index.extend(indexed, sigs)
         else:
-            for k, x in zip(indexed, sigs):
-                index.add(k, x)  # names the member whose signature does not fit
-        del sigs  # memory: the members' signatures may be views made for this list
+            for k, r in zip(indexed, rows):
+                index.add(k, r["signature"])  # names the member whose signature does not fit
+        del sigs, rows
         new_reps = {k for k in rep_ids if k not in old}
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were)
@@ -283,15 +290,17 @@ class Dedup(Stage):
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
-        skip = generic_bands(index.matrix(), self._generic, index.bands, int(o["seed"]))
-        codes = index.candidate_codes(new_reps if reusable else None, skip=skip)
-        del skip
+        # (a rerun marks the generic bands of the rows in its candidate pairs only)
+        codes = index.candidate_codes(new_reps if reusable else None,
+                                      skip=lambda rows: self._generic_bands(index.matrix(), rows))
         n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
         del size_of
         n_plausible = len(codes)
-        verified = verify_codes(index.ids, codes, _Shingles(arts), threshold,
+        index_ids = index.ids
+        del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
+        verified = verify_codes(index_ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
                                 read=load_arrays)
         del codes  # memory: millions of candidates on a large corpus
@@ -317,6 +326,12 @@ class Dedup(Stage):
         groups = uf.groups()
         as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
         for group, same in zip(groups, as_last):
+            if same and len(group) == 1:  # speed: the bulk of a rerun, one member alone as last time
+                k = group[0]
+                results[k] = last[k]
+                if k in last_kept:
+                    kept_ids.append(k)
+                continue
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
@@ -341,6 +356,11 @@ class Dedup(Stage):
         state.save("cluster_sources", cluster_sources)
         return results
 
+    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
+        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
+        return generic_bands(sig if rows is None else sig[rows], self._generic,
+                             int(self.opts["bands"]), int(self.opts["seed"]))
+
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
         """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
         on the first ``GENERIC_SAMPLE`` of them by id (ids are hashes: a consistent sample)."""
@@ -356,6 +376,8 @@ class Dedup(Stage):
         """Whether a cluster is the last run's and reads as it did: no new member, every member
         with a stored result, and (in a cluster of several, whose details name sources) every
         member still represented by the same source path."""
+        if len(group) == 1:  # speed: most clusters
+            return group[0] in old and group[0] in last
         for k in group:
             if k not in old or k not in last:
                 return False

@@ -36,7 +36,7 @@ from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups,
                                    group_by_key, near_links_of)
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
-from ..store.columns import ValuesOf, lengths_of, stacked
+from ..store.columns import ValuesOf, lengths_of, present, stacked
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
@@ -315,15 +315,25 @@ class Split(Stage):
         signed_arts: dict[str, Any] = {}
         with_shingles = 0
         signed_by: set[str] = set()
+        sources: list[str] = []
+        rows: dict[str, list] = {}  # source -> the artifacts of the members it signs
         for m in members:
             # the split's own arrays, else those dedup stored (``bind``)
-            source = self.name if m.artifacts.get(self.name) else (self.borrows or Dedup.name)
-            art = m.artifacts.get(source) or {}
-            if art.get("signature") is not None:
+            own = m.artifacts.get(self.name)
+            source = self.name if own else (self.borrows or Dedup.name)
+            sources.append(source)
+            rows.setdefault(source, []).append(own if own else m.artifacts.get(source))
+        # speed: which members hold a signature and a shingle set, read from the columns'
+        # marks (no view or handle made per member); shingles may still be in the ledger
+        held = {source: iter(zip(arts, present(arts, "signature"), present(arts, "shingles")))
+                for source, arts in rows.items()}
+        for m, source in zip(members, sources):
+            art, signed, with_sh = next(held[source])
+            if signed:
                 signed_by.add(source)
                 signed_arts[m.id] = art
-                # shingles may still be in the ledger (read if compared)
-                with_shingles += art.get("shingles") is not None
+                with_shingles += with_sh
+        del rows, held
         signed = ", ".join(sorted(signed_by)) if threshold is not None and signed_by else None
         if threshold is not None and len(signed_arts) > 1:
             use_sh = ValuesOf(signed_arts, "shingles") if with_shingles == len(signed_arts) else None
