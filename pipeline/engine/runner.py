@@ -38,7 +38,7 @@ from ..stages import Stage
 from ..stages.base import bind_stages
 from ..store.ledger import Ledger
 from ..store.lock import OutputLock
-from ..store.records import Compactor
+from ..store.records import Compactor, Verdicts
 from . import uptodate
 from .executor import Limits, run_tasks
 from .plan import Everything, Planner
@@ -74,7 +74,8 @@ class Runner:
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler
         self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
-        self._index: dict[str, int] = {}  # sha256 -> content index, during the per-file pass
+        self._index: dict[str, int] = {}  # sha256 -> content index (position in ``_order``)
+        self._order: list[str] = []  # the run's contents in first-source order
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -159,13 +160,13 @@ class Runner:
         t = time.perf_counter()
         # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
         order = list(rep)
-        # content index by sha256 while results arrive (one int object per content, shared by
-        # the records of every stage)
-        self._index = dict(zip(order, range(len(order))))
+        # content index by sha256 for the whole run: the per-file stages' verdict columns
+        # (``records.Verdicts``) and the walk read by it
+        self._order, self._index = order, dict(zip(order, range(len(order))))
         self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
         with _bulk_data():
-            cache = {name: ledger.verdicts_for(source, self._index, self._compactor(name).make_deferred)
+            cache = {name: ledger.verdicts_for(Verdicts(source, self._index, self._compactor(name), len(order)))
                      for name, source in self._values.items()}
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
@@ -189,7 +190,6 @@ class Runner:
         with _bulk_data():
             self._execute(ledger, tasks, cache)
         del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
-        self._index = {}
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
@@ -197,7 +197,7 @@ class Runner:
         with _bulk_data():
             walk = StageWalk(self.stages, cfg.metadata, self._compactor, self._bar, self._chains,
                              fresh=self.fresh, reassign=self.reassign).run(ledger, rep, cache, timings,
-                                                                           self._staged)
+                                                                           self._staged, self._index)
         timings["corpus"] = time.perf_counter() - t
 
         # late renders: contents kept now that have no output (e.g. a cluster's new representative)
@@ -314,20 +314,19 @@ class Runner:
         art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         limits = self._limits()
-        order = next(iter(self._values.values())).order if self._values else []
-        index = self._index
+        order, index = self._order, self._index
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
                         run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                   on_fault=fault_outcome))
             for oc in outcomes:
-                i = index.get(oc.sha256)
-                sha = oc.sha256 if i is None else order[i]  # memory: the run's string, not a copy
+                i = index[oc.sha256]  # every task's content is one of the run's
+                sha = order[i]  # memory: the run's string, not a copy
                 if oc.results:
                     self._recomputed.add(sha)
                 for name, stored in oc.results.items():
-                    cache[name][sha] = self._compactor(name).from_stored(stored)
+                    cache[name].put_stored(i, stored)  # its values are read from the ledger
                     pending_r.append((sha, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
                     pending_a.append((sha, name, art_fps[name], arts))
@@ -352,7 +351,7 @@ class Runner:
     def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list, cache: dict) -> None:
         """Commit finished results and artifacts, then list the finished staged outputs (a
         listed output's results are always in the ledger); the committed results' values are
-        left in the ledger (``Result.defer``)."""
+        read from the ledger (``records.Verdicts``)."""
         if not results and not artifacts and not staged:
             return
         try:
@@ -363,11 +362,6 @@ class Runner:
             raise LedgerError(f"cannot save results to the state database ({e}); check free space "
                               "and permissions of the output folder, then rerun (committed results "
                               "are kept)", file=str(ledger.path)) from None
-        index = self._index
-        for sha, name, _, _ in results:
-            i = index.get(sha)
-            if i is not None:
-                cache[name][sha].defer(self._values[name], i)
         for source in self._values.values():
             source.rows_added()
         results.clear()

@@ -31,11 +31,11 @@ def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]
     """Digest of what one source's manifest row and trail are made from, beyond its content's
     per-file results (see the module docstring)."""
     sha = f.sha256
-    trail = walk.trails.get(sha, ())
-    parts = [f.rel, sha, str(len(trail)), walk.rep.get(sha, "") if walk.is_byte_copy(f.rel, sha) else ""]
+    n = walk.reached(sha)
+    parts = [f.rel, sha, str(n), walk.rep.get(sha, "") if walk.is_byte_copy(f.rel, sha) else ""]
     for i in corpus_positions:
-        if i < len(trail):
-            r = trail[i]  # in stored form: a record read back and one computed now hash alike
+        if i < n:
+            r = walk.step(i, sha)  # in stored form: a record read back and one computed now hash alike
             parts.append(f"{r.kept}\0{r.reason}\0{r.detail}\0{r.values_json()}\0"
                          f"{thresholds_json(r.thresholds)}")
     parts.append(repr(placed.all_of.get(sha)))
