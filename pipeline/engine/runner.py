@@ -230,20 +230,23 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
-        from ..outputs.page import Facts, write_report  # the run's page, from what is written
-        facts = Facts()  # speed: gathered from the rows as they pass, not read back
+        from ..outputs.page import RowFacts, read_manifest, write_report  # the run's page
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
+        # speed: gathered from the rows as they pass (a reused line from the last run's facts)
+        page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone({f.rel for f in files}) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
-                                                        reuse, corpus_positions, self._prefetch),
-                                  facts.add),
+                                                        reuse, corpus_positions, self._prefetch,
+                                                        page.unused),
+                                  page.row),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
-            ledger.put_state(ROWS_STATE, reuse.state_of(len(files)))
+            facts = page.facts() or read_manifest(cfg.output / "manifest.jsonl")
+            ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             for name, (replace, rows) in walk.corpus_rows.items():
@@ -398,10 +401,9 @@ def _bulk_data() -> Iterator[None]:
 
 
 def _seen(rows: Iterator[dict | str], see: Any) -> Iterator[dict | str]:
-    """The manifest rows, each shown to ``see`` as its dict (a reused line parsed) on its way."""
-    loads = json.loads
+    """The manifest rows, each shown to ``see`` on its way."""
     for r in rows:
-        see(loads(r) if type(r) is str else r)
+        see(r)
         yield r
 
 

@@ -10,6 +10,7 @@ walk writes nothing.
 from __future__ import annotations
 
 import time
+from types import MappingProxyType
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
 from collections.abc import Iterator, Mapping
@@ -85,9 +86,11 @@ class StageWalk:
                 for i, sha in enumerate(alive):
                     values = ContentValues(walk, sha)
                     meta = (source_fields(rep[sha], values.get("file_title"), self.metadata)
-                            if st.uses_source_fields else {})
+                            if st.uses_source_fields else _NOTHING)
+                    # memory: no list of outputs (a walk's member has none) nor empty dict each
                     members.append(Member(sha[:16], sha, rep[sha], values,
-                                          {st.name: arts.row(i) if arts is not None else {}}, meta=meta))
+                                          {st.name: arts.row(i) if arts is not None else _NOTHING},
+                                          outputs=(), meta=meta))
                 del arts
                 for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
                     res = walk.artifacts.get(prev, {})
@@ -344,3 +347,4 @@ class ContentValues(Mapping):
 
 
 _MISSING = object()
+_NOTHING: Mapping[str, Any] = MappingProxyType({})  # one read-only empty mapping, shared

@@ -51,6 +51,8 @@ class RowReuse:
         self.recomputed = recomputed
         self.old: dict[str, str] = {}
         self._order: list[str] = []
+        #: the page's facts of the old manifest (``page.Facts.to_state``), when it is trusted
+        self.facts: dict[str, Any] | None = None
         saved = ledger.state_for(STATE)
         if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
@@ -58,6 +60,7 @@ class RowReuse:
         if len(old) != saved.get("rows"):
             return
         self.old = old
+        self.facts = saved.get("facts")
         self._order = sorted(old)  # the manifest's line order (sources sorted as discover does)
 
     @property
@@ -78,10 +81,10 @@ class RowReuse:
         """Sources of the last run that this run does not have."""
         return [s for s in self.old if s not in present]
 
-    def state_of(self, rows: int) -> dict[str, Any]:
-        """This run's base key, row count and manifest stat, for the ledger's ``STATE`` entry
-        (recorded in the run's last transaction, after the manifest is written)."""
-        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest)}
+    def state_of(self, rows: int, facts: dict[str, Any]) -> dict[str, Any]:
+        """This run's base key, row count, manifest stat and page facts, for the ledger's
+        ``STATE`` entry (recorded in the run's last transaction, after the manifest is written)."""
+        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts}
 
 
 def line_prefix(f: Any) -> str:

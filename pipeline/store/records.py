@@ -320,7 +320,7 @@ class Verdicts:
     asks for, ``get`` by sha256 reads like the dict of records it replaces."""
 
     __slots__ = ("source", "index", "compactor", "state", "reason", "detail", "thresholds",
-                 "_reasons", "_details", "_thresholds", "_codes")
+                 "_reasons", "_details", "_thresholds", "_codes", "_triples")
 
     NONE, DROPPED, KEPT = 0, 1, 2
 
@@ -337,6 +337,8 @@ class Verdicts:
         self._details: list[str] = []
         self._thresholds: list[dict[str, Any]] = []
         self._codes: dict[tuple[int, Any], int] = {(0, None): 0}
+        # speed: (reason, detail, thresholds text) -> their three codes (a stage has few)
+        self._triples: dict[tuple, tuple[int, int, int]] = {}
 
     def _code(self, column: int, value: Any, table: list) -> int:
         code = self._codes.get((column, value))
@@ -348,9 +350,14 @@ class Verdicts:
     def put(self, i: int, kept: bool, reason: str | None, detail: str, thresholds_json: str) -> None:
         """Record content ``i``'s verdict (its values are, or are about to be, in the ledger)."""
         self.state[i] = self.KEPT if kept else self.DROPPED
-        self.reason[i] = self._code(0, reason, self._reasons)
-        self.detail[i] = self._code(1, detail, self._details)
-        self.thresholds[i] = self._code(2, thresholds_json, self._thresholds)
+        key = (reason, detail, thresholds_json)
+        codes = self._triples.get(key)
+        if codes is None:
+            codes = (self._code(0, reason, self._reasons), self._code(1, detail, self._details),
+                     self._code(2, thresholds_json, self._thresholds))
+            if len(self._triples) < SHARED_DETAILS:
+                self._triples[key] = codes
+        self.reason[i], self.detail[i], self.thresholds[i] = codes
 
     def put_stored(self, i: int, stored: tuple[int, str | None, str, str, str]) -> None:
         """Record a worker's result in stored form (``codec.stored_result``)."""
