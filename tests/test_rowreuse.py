@@ -194,7 +194,7 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     import json
 
     from pipeline.engine import runner
-    from pipeline.engine.walk import StageWalk
+    from pipeline.engine.walk import ContentValues, StageWalk
     corpus, base = first
     dest = tmp_path / "trail"
     shutil.copytree(base, dest)
@@ -211,6 +211,14 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
         for r in rows:
             want = json.dumps(walk.trail_of(r["source"], r["sha256"]), sort_keys=True, separators=(",", ":"))
             assert walk.trail_json(r["source"], r["sha256"]) == want, r["source"]
+            # the walk's records made from the verdict columns read like the trail's steps:
+            # one value each, later stages winning, as the manifest row merges them
+            merged = {}
+            for step in walk.trail_of(walk.rep[r["sha256"]], r["sha256"]):  # the content's own
+                merged.update(step["values"])
+            values = ContentValues(walk, r["sha256"])
+            assert {k: values[k] for k in values} == merged and len(values) == len(merged)
+            assert walk.reached(r["sha256"]) == len(walk.trail(r["sha256"]))
         checked.append(len(rows))
         return summary
 
