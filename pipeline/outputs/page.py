@@ -206,9 +206,11 @@ class Facts:
         if g:
             _tally(self.group_sizes, g, sign)
 
-    def settle(self) -> None:
+    def settle(self) -> bool:
         """Apply the removed values to the value lists (one pass over each) and put each
-        cluster's members in manifest (source) order, as a fresh count has them."""
+        cluster's members in manifest (source) order, as a fresh count has them. False when a
+        removed value was not in its list (a NaN never is: then count afresh)."""
+        found = True
         for f, gone in self._gone.items():
             kept = []
             for v in self.values[f]:
@@ -218,9 +220,11 @@ class Facts:
                 else:
                     kept.append(v)
             self.values[f] = kept
+            found = found and not any(gone.values())
         self._gone = {}
         for members in self.clusters.values():
             members.sort(key=lambda e: e["source"])
+        return found
 
     def to_state(self) -> dict[str, Any]:
         """The facts as JSON (without the representatives, read from the manifest each time)."""
@@ -284,9 +288,9 @@ class RowFacts:
             self.sound = False
 
     def facts(self) -> Facts | None:
-        if self.from_last and not (self.sound and self.old_seen == self.old_rows):
+        settled = self.counted.settle()
+        if self.from_last and not (self.sound and settled and self.old_seen == self.old_rows):
             return None
-        self.counted.settle()
         return self.counted
 
 
