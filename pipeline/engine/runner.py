@@ -207,7 +207,9 @@ class Runner:
                    if sha not in existing_out and sha not in walk.staged]
         if missing:
             late = [planner.render_task(sha, rep[sha], source_path(root, rep[sha])) for sha in missing]
-            self._execute(ledger, late, cache, walk.staged)
+            # the walk is done: a fault while rendering is stored for the next run, and this
+            # run's verdicts stay those it walked
+            self._execute(ledger, late, None, walk.staged)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
             with ledger.batch():
@@ -298,7 +300,7 @@ class Runner:
             memo[stage] = Compactor()
         return memo[stage]
 
-    def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict,
+    def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict | None,
                  staged: dict[str, tuple[str, ...]] | None = None) -> None:
         if not tasks:
             return
@@ -329,7 +331,8 @@ class Runner:
                 if oc.results:
                     self._recomputed.add(sha)
                 for name, stored in oc.results.items():
-                    cache[name].put_stored(i, stored)  # its values are read from the ledger
+                    if cache is not None:
+                        cache[name].put_stored(i, stored)  # its values are read from the ledger
                     pending_r.append((sha, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
                     pending_a.append((sha, name, art_fps[name], arts))
@@ -343,15 +346,15 @@ class Runner:
                     else:  # dropped before this stage (or its verdict was cached): not coming
                         _shrink(stage_bar)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
-                    self._flush(ledger, pending_r, pending_a, pending_s, cache)
+                    self._flush(ledger, pending_r, pending_a, pending_s)
                     last = time.monotonic()
         finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
-            self._flush(ledger, pending_r, pending_a, pending_s, cache)
+            self._flush(ledger, pending_r, pending_a, pending_s)
             bar.close()
             for b in stage_bars.values():
                 b.close()
 
-    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list, cache: dict) -> None:
+    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list) -> None:
         """Commit finished results and artifacts, then list the finished staged outputs (a
         listed output's results are always in the ledger); the committed results' values are
         read from the ledger (``records.Verdicts``)."""
