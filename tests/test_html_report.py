@@ -146,6 +146,31 @@ def test_clusters_show_the_kept_member_and_a_dropped_one_with_its_similarity(dem
         assert re.search(r"similarity (\d\.\d\d)", body).group(1) in sims
 
 
+def test_facts_with_rows_taken_back_equal_facts_of_the_rows_left(demo_out):
+    """``Facts.remove`` undoes ``add``: the demo's rows all added and every third taken back
+    count as the rows left added alone (value lists as multisets, clusters in source order);
+    a removed value that is not there (a NaN) makes ``settle`` say so."""
+    from pipeline.outputs.page import Facts
+    rows = [json.loads(line) for line in (demo_out / "manifest.jsonl").read_text().splitlines()]
+    gone, left = rows[::3], [r for i, r in enumerate(rows) if i % 3]
+    assert any(r.get("duplicate_of") for r in gone) and any(r["status"] == "kept" for r in gone)
+    both, alone = Facts(), Facts()
+    for r in rows:
+        both.add(r)
+    for r in gone:
+        both.remove(r)
+    for r in left:
+        alone.add(r)
+    assert both.settle() and alone.settle()
+    a, b = both.to_state(), alone.to_state()
+    a["values"] = {f: sorted(v) for f, v in a["values"].items()}
+    b["values"] = {f: sorted(v) for f, v in b["values"].items()}
+    assert a == b
+    kept = next(r for r in rows if r["status"] == "kept" and r.get("duration_s"))
+    both.remove({**kept, "duration_s": float("nan")})
+    assert not both.settle()
+
+
 def test_a_run_without_dedup_or_split_still_writes_its_page(tmp_path):
     out = tmp_path / "v"
     _run(out, "validate-only.yaml")

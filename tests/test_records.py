@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import pickle
 
-from pipeline.store.records import Compactor, TrailValues
+from pipeline.store.records import Compactor, TrailValues, Verdicts
 from pipeline.stages import StageResult
 
 PLAIN = [
@@ -107,8 +107,8 @@ def test_records_whose_values_stay_in_the_ledger_read_like_their_dict(tmp_path):
             ledger.put_results((sha, "key_meter", "fp", d) for sha, d in plain.items())
         source = ledger.values_source("key_meter", "fp", order)
         index = {sha: i for i, sha in enumerate(order)}
-        got = ledger.verdicts_for(source, index, Compactor().make_deferred)
-        assert set(got) == set(order)
+        got = ledger.verdicts_for(Verdicts(source, index, Compactor(), n))
+        assert len(got) == n and all(sha in got for sha in order)
         for sha in order:  # in order: chunks of FETCH_CHUNK
             r, d = got[sha], plain[sha]
             assert r.to_json() == d and {**r} == d
@@ -140,3 +140,31 @@ def test_compactor_shares_equal_details():
     made.append(c.make(True, None, "".join(["SMF format 1, ", "5 tracks"]), {}, {}))
     assert all(r.detail == "SMF format 1, 5 tracks" for r in made)
     assert all(r.detail is made[0].detail for r in made)
+
+
+def test_verdict_columns_read_like_the_records_they_replace(tmp_path):
+    """``Verdicts`` keeps a stage's verdicts as columns; each content's record made from them
+    equals the record the worker's stored form gives (``Compactor.from_stored``) and its plain
+    dict; a content without a verdict has none, and the states are the columns' own."""
+    from pipeline.store.codec import stored_result
+    from pipeline.store.ledger import Ledger
+    order = [f"{i:064x}" for i in range(9)]
+    plain = {sha: PLAIN[i % len(PLAIN)] for i, sha in enumerate(order[:-1])}  # the last: none
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        with ledger.batch():
+            ledger.put_results((sha, "filter", "fp", d) for sha, d in plain.items())
+        index = {sha: i for i, sha in enumerate(order)}
+        stored = Verdicts(ledger.values_source("filter", "fp", order), index, Compactor(), len(order))
+        ledger.verdicts_for(stored)
+        # the same verdicts put one by one in the form the workers return them
+        live = Verdicts(ledger.values_source("filter", "fp", order), index, Compactor(), len(order))
+        for sha, d in plain.items():
+            live.put_stored(index[sha], stored_result(d))
+        for cols in (stored, live):
+            for sha, d in plain.items():
+                r, want = cols.get(sha), Compactor().from_stored(stored_result(d))
+                assert r == want and r.to_json() == d and r.values_json() == want.values_json()
+                assert cols.kept_at(index[sha]) is d["kept"]
+                assert r.thresholds is cols.get(sha).thresholds  # one dict per distinct text
+            assert cols.get(order[-1]) is None and cols.kept_at(len(order) - 1) is None
+            assert order[-1] not in cols and len(cols) == len(plain)

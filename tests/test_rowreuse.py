@@ -71,6 +71,22 @@ def first(tmp_path_factory):
     return corpus, base
 
 
+def _saved_facts_are_the_manifests(out: Path) -> None:
+    """The page facts a run saved (a rerun: the last run's, the unused old lines taken back,
+    the built rows added) equal those read from its whole manifest (``page.read_manifest``)."""
+    from pipeline.outputs.page import read_manifest
+    db = sqlite3.connect(out / "state.sqlite")
+    try:
+        saved = json.loads(db.execute("SELECT value FROM state WHERE stage='_rows' AND key='facts'").fetchone()[0])
+    finally:
+        db.close()
+    want = json.loads(json.dumps(read_manifest(out / "manifest.jsonl").to_state()))
+    saved["values"] = {f: sorted(v) for f, v in saved["values"].items()}  # a multiset per field
+    want["values"] = {f: sorted(v) for f, v in want["values"].items()}
+    assert saved == want
+    assert want["clusters"] and want["group_sizes"]
+
+
 def _forget_last_run(out: Path) -> None:
     """Leave nothing of the last run's rows to reuse: no manifest, no stored corpus-stage results."""
     (out / "manifest.jsonl").unlink()
@@ -97,7 +113,13 @@ def _rerun(corpus: Path, base: Path, dest: Path, prepare=None, monkeypatch=None)
 
 def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
     corpus, base = first
+    from pipeline.outputs.page import RowFacts
+    counted, real_facts = [], RowFacts.facts
+    monkeypatch.setattr(RowFacts, "facts", lambda self: counted.append(
+        (self.from_last, self.old_seen, real_facts(self) is not None)) or real_facts(self))
     built = _rerun(corpus, base, tmp_path / "reuse", monkeypatch=monkeypatch)
+    # the last run's facts were updated, not read again from every line
+    assert counted[0][0] and counted[0][1] > 10 and counted[0][2]
     rebuilt = _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run, monkeypatch=monkeypatch)
     files = len((tmp_path / "rebuild" / "manifest.jsonl").read_text().splitlines())
     assert rebuilt == files  # the oracle rebuilt every row
@@ -106,6 +128,8 @@ def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
     assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
     assert _splits(a) == _splits(b)
     assert _tables(a) == _tables(b)
+    for d in (base, a, b):
+        _saved_facts_are_the_manifests(d)
 
 
 def test_manifest_changed_behind_the_ledger_is_rebuilt(first, tmp_path, monkeypatch):
@@ -135,6 +159,7 @@ def test_manifest_changed_behind_the_ledger_is_rebuilt(first, tmp_path, monkeypa
     for d in ("swapped", "touched"):
         assert (tmp_path / d / "manifest.jsonl").read_bytes() == (tmp_path / "plain" / "manifest.jsonl").read_bytes()
         assert _tables(tmp_path / d) == _tables(tmp_path / "plain")
+        _saved_facts_are_the_manifests(tmp_path / d)
 
 
 def test_changed_options_rebuild_every_row(first, tmp_path, monkeypatch):
@@ -169,7 +194,7 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     import json
 
     from pipeline.engine import runner
-    from pipeline.engine.walk import StageWalk
+    from pipeline.engine.walk import ContentValues, StageWalk
     corpus, base = first
     dest = tmp_path / "trail"
     shutil.copytree(base, dest)
@@ -186,6 +211,14 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
         for r in rows:
             want = json.dumps(walk.trail_of(r["source"], r["sha256"]), sort_keys=True, separators=(",", ":"))
             assert walk.trail_json(r["source"], r["sha256"]) == want, r["source"]
+            # the walk's records made from the verdict columns read like the trail's steps:
+            # one value each, later stages winning, as the manifest row merges them
+            merged = {}
+            for step in walk.trail_of(walk.rep[r["sha256"]], r["sha256"]):  # the content's own
+                merged.update(step["values"])
+            values = ContentValues(walk, r["sha256"])
+            assert {k: values[k] for k in values} == merged and len(values) == len(merged)
+            assert walk.reached(r["sha256"]) == len(walk.trail(r["sha256"]))
         checked.append(len(rows))
         return summary
 

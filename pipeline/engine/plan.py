@@ -31,7 +31,8 @@ def is_retryable(result: Any) -> bool:
 
 
 class Planner:
-    """Builds the tasks of one run. ``cache``: per-file stage -> sha256 -> cached record;
+    """Builds the tasks of one run. ``cache``: per-file stage -> its cached verdicts
+    (``records.Verdicts``);
     ``artifacts``: corpus stage -> the contents whose ``prepare`` artifacts are stored;
     ``has_output``: the contents with a normalized output in place or staged;
     ``last_status``: sha256 -> "kept"/"dropped" in the last run."""
@@ -41,6 +42,8 @@ class Planner:
                  output_fp: str, retry_failed: bool):
         self.stages = stages
         self.cache = cache
+        # sha256 -> content index of the verdict columns (``records.Verdicts``), shared by them
+        self.index = next(iter(cache.values())).index if cache else {}
         self.artifacts = artifacts
         self.has_output = has_output
         self.last_status = last_status
@@ -89,10 +92,10 @@ class Planner:
                 if sha not in self.artifacts[st.name]:
                     return True
                 continue
-            cached = self._cached(st, sha)
-            if cached is None:
+            kept = self.cache[st.name].kept_at(self.index[sha])  # speed: no record made
+            if kept is None or (self.retry_failed and not kept and self._cached(st, sha) is None):
                 return True
-            if not cached.kept:
+            if not kept:
                 return False  # dropped by a cached verdict: nothing after it is needed
         return self._wants_output(sha)
 

@@ -38,7 +38,7 @@ from ..stages import Stage
 from ..stages.base import bind_stages
 from ..store.ledger import Ledger
 from ..store.lock import OutputLock
-from ..store.records import Compactor
+from ..store.records import Compactor, Verdicts
 from . import uptodate
 from .executor import Limits, run_tasks
 from .plan import Everything, Planner
@@ -74,7 +74,8 @@ class Runner:
         self._recomputed: set[str] = set()  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler
         self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
-        self._index: dict[str, int] = {}  # sha256 -> content index, during the per-file pass
+        self._index: dict[str, int] = {}  # sha256 -> content index (position in ``_order``)
+        self._order: list[str] = []  # the run's contents in first-source order
 
     # progress -----------------------------------------------------------------------------
     def _bar(self, desc: str, total: int, position: int = 0) -> Any:
@@ -159,13 +160,13 @@ class Runner:
         t = time.perf_counter()
         # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
         order = list(rep)
-        # content index by sha256 while results arrive (one int object per content, shared by
-        # the records of every stage)
-        self._index = dict(zip(order, range(len(order))))
+        # content index by sha256 for the whole run: the per-file stages' verdict columns
+        # (``records.Verdicts``) and the walk read by it
+        self._order, self._index = order, dict(zip(order, range(len(order))))
         self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
         with _bulk_data():
-            cache = {name: ledger.verdicts_for(source, self._index, self._compactor(name).make_deferred)
+            cache = {name: ledger.verdicts_for(Verdicts(source, self._index, self._compactor(name), len(order)))
                      for name, source in self._values.items()}
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
@@ -189,7 +190,6 @@ class Runner:
         with _bulk_data():
             self._execute(ledger, tasks, cache)
         del tasks  # memory: a task per content (about 300 bytes each) is not needed any more
-        self._index = {}
         timings["per_file"] = time.perf_counter() - t
 
         # stage walk
@@ -197,7 +197,7 @@ class Runner:
         with _bulk_data():
             walk = StageWalk(self.stages, cfg.metadata, self._compactor, self._bar, self._chains,
                              fresh=self.fresh, reassign=self.reassign).run(ledger, rep, cache, timings,
-                                                                           self._staged)
+                                                                           self._staged, self._index)
         timings["corpus"] = time.perf_counter() - t
 
         # late renders: contents kept now that have no output (e.g. a cluster's new representative)
@@ -207,7 +207,9 @@ class Runner:
                    if sha not in existing_out and sha not in walk.staged]
         if missing:
             late = [planner.render_task(sha, rep[sha], source_path(root, rep[sha])) for sha in missing]
-            self._execute(ledger, late, cache, walk.staged)
+            # the walk is done: a fault while rendering is stored for the next run, and this
+            # run's verdicts stay those it walked
+            self._execute(ledger, late, None, walk.staged)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
             with ledger.batch():
@@ -230,20 +232,23 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
-        from ..outputs.page import Facts, write_report  # the run's page, from what is written
-        facts = Facts()  # speed: gathered from the rows as they pass, not read back
+        from ..outputs.page import RowFacts, read_manifest, write_report  # the run's page
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
+        # speed: gathered from the rows as they pass (a reused line from the last run's facts)
+        page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone({f.rel for f in files}) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
-                                                        reuse, corpus_positions, self._prefetch),
-                                  facts.add),
+                                                        reuse, corpus_positions, self._prefetch,
+                                                        page.unused),
+                                  page.row),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
-            ledger.put_state(ROWS_STATE, reuse.state_of(len(files)))
+            facts = page.facts() or read_manifest(cfg.output / "manifest.jsonl")
+            ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             for name, (replace, rows) in walk.corpus_rows.items():
@@ -295,7 +300,7 @@ class Runner:
             memo[stage] = Compactor()
         return memo[stage]
 
-    def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict,
+    def _execute(self, ledger: Ledger, tasks: list[FileTask], cache: dict | None,
                  staged: dict[str, tuple[str, ...]] | None = None) -> None:
         if not tasks:
             return
@@ -314,20 +319,20 @@ class Runner:
         art_fps = {s.name: s.artifact_fingerprint for s in self.stages}
         last = time.monotonic()
         limits = self._limits()
-        order = next(iter(self._values.values())).order if self._values else []
-        index = self._index
+        order, index = self._order, self._index
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
                         run_tasks(process_file, tasks, self.config.workers, limits=limits,
                                   on_fault=fault_outcome))
             for oc in outcomes:
-                i = index.get(oc.sha256)
-                sha = oc.sha256 if i is None else order[i]  # memory: the run's string, not a copy
+                i = index[oc.sha256]  # every task's content is one of the run's
+                sha = order[i]  # memory: the run's string, not a copy
                 if oc.results:
                     self._recomputed.add(sha)
                 for name, stored in oc.results.items():
-                    cache[name][sha] = self._compactor(name).from_stored(stored)
+                    if cache is not None:
+                        cache[name].put_stored(i, stored)  # its values are read from the ledger
                     pending_r.append((sha, name, fps[name], stored))
                 for name, arts in oc.artifacts.items():
                     pending_a.append((sha, name, art_fps[name], arts))
@@ -341,18 +346,18 @@ class Runner:
                     else:  # dropped before this stage (or its verdict was cached): not coming
                         _shrink(stage_bar)
                 if len(pending_r) + len(pending_a) >= BATCH or time.monotonic() - last > 2.0:
-                    self._flush(ledger, pending_r, pending_a, pending_s, cache)
+                    self._flush(ledger, pending_r, pending_a, pending_s)
                     last = time.monotonic()
         finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
-            self._flush(ledger, pending_r, pending_a, pending_s, cache)
+            self._flush(ledger, pending_r, pending_a, pending_s)
             bar.close()
             for b in stage_bars.values():
                 b.close()
 
-    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list, cache: dict) -> None:
+    def _flush(self, ledger: Ledger, results: list, artifacts: list, staged: list) -> None:
         """Commit finished results and artifacts, then list the finished staged outputs (a
         listed output's results are always in the ledger); the committed results' values are
-        left in the ledger (``Result.defer``)."""
+        read from the ledger (``records.Verdicts``)."""
         if not results and not artifacts and not staged:
             return
         try:
@@ -363,11 +368,6 @@ class Runner:
             raise LedgerError(f"cannot save results to the state database ({e}); check free space "
                               "and permissions of the output folder, then rerun (committed results "
                               "are kept)", file=str(ledger.path)) from None
-        index = self._index
-        for sha, name, _, _ in results:
-            i = index.get(sha)
-            if i is not None:
-                cache[name][sha].defer(self._values[name], i)
         for source in self._values.values():
             source.rows_added()
         results.clear()
@@ -404,10 +404,9 @@ def _bulk_data() -> Iterator[None]:
 
 
 def _seen(rows: Iterator[dict | str], see: Any) -> Iterator[dict | str]:
-    """The manifest rows, each shown to ``see`` as its dict (a reused line parsed) on its way."""
-    loads = json.loads
+    """The manifest rows, each shown to ``see`` on its way."""
     for r in rows:
-        see(loads(r) if type(r) is str else r)
+        see(r)
         yield r
 
 

@@ -10,8 +10,10 @@ walk writes nothing.
 from __future__ import annotations
 
 import time
+from types import MappingProxyType
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
+from collections.abc import Iterator, Mapping
 from typing import Any, Callable
 
 from ..metadata import Metadata
@@ -38,34 +40,40 @@ class StageWalk:
         self.reassign = reassign
 
     def run(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict,
-            staged: dict[str, tuple[str, ...]]) -> "Walk":
+            staged: dict[str, tuple[str, ...]], index: dict[str, int]) -> "Walk":
         """Apply the stages in order to the contents ``rep`` (sha256 -> first source): per-file
-        verdicts from ``cache`` (stage -> sha256 -> record), corpus stages run here."""
+        verdicts from ``cache`` (stage -> its ``records.Verdicts``, by content index: ``index``,
+        sha256 -> position in ``rep``), corpus stages run here."""
         names = [st.name for st in self.stages]
-        walk = Walk(staged=staged, stage_names=names, metadata=self.metadata)
+        walk = Walk(staged=staged, stage_names=names, metadata=self.metadata, index=index,
+                    verdicts={name: cache[name] for name in names if name in cache})
+        # memory: a content's trail is not held as a list of records: its per-file steps are
+        # the verdict columns, its corpus steps ``walk.corpus``, its length follows from where
+        # it was dropped; ``Walk.step`` makes a record when a reader asks
         alive = list(rep)  # contents in first-source order (sorted paths)
-        # memory: a trail holds the cached result records themselves (no copies, no merged
-        # values dict per file); trail_of and value_of build what a reader needs one file at a time
-        trails: dict[str, list] = {sha: [] for sha in rep}
         upstream: dict[str, dict[str, Any]] = {}  # stage -> id -> Result (reads like StageResult)
         for st in self.stages:
             t = time.perf_counter()
             if st.kind == "file":
                 survivors = []
-                stage_cache = cache[st.name]
+                verdicts = cache[st.name]
+                state, dropped, kept = verdicts.state, verdicts.DROPPED, verdicts.KEPT
                 for sha in alive:
-                    r = stage_cache.get(sha)
-                    if r is None:  # cannot happen unless a worker died; keep the file's trail honest
-                        r = self.compactor(st.name).make(
+                    s = state[index[sha]]
+                    if s == kept and st.uses_source_fields:
+                        r = self._source_verdict(st, walk.step(walk.stages_done, sha), walk, sha, rep[sha])
+                        if r is not None:
+                            walk.replaced[(st.name, sha)] = r
+                            s = dropped
+                    elif s != kept and s != dropped:
+                        # cannot happen unless a worker died; keep the file's trail honest
+                        walk.replaced[(st.name, sha)] = self.compactor(st.name).make(
                             False, "decoder_crash", "the worker processing this file did not "
                             "return a result", {}, {})
-                    elif st.uses_source_fields and r["kept"]:
-                        r = self._source_verdict(st, r, trails[sha], rep[sha])
-                    trails[sha].append(r)
-                    if r["kept"]:
+                    if s == kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = (st.name, r["reason"])
+                        walk.status[sha] = (st.name, walk.step(walk.stages_done, sha).reason)
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
@@ -76,11 +84,13 @@ class StageWalk:
                         if st.has_prepare() else None)
                 members = []
                 for i, sha in enumerate(alive):
-                    values = TrailValues(trails[sha])
+                    values = ContentValues(walk, sha)
                     meta = (source_fields(rep[sha], values.get("file_title"), self.metadata)
-                            if st.uses_source_fields else {})
+                            if st.uses_source_fields else _NOTHING)
+                    # memory: no list of outputs (a walk's member has none) nor empty dict each
                     members.append(Member(sha[:16], sha, rep[sha], values,
-                                          {st.name: arts.row(i) if arts is not None else {}}, meta=meta))
+                                          {st.name: arts.row(i) if arts is not None else _NOTHING},
+                                          outputs=(), meta=meta))
                 del arts
                 for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
                     res = walk.artifacts.get(prev, {})
@@ -106,8 +116,8 @@ class StageWalk:
                 make = self.compactor(st.name).make
                 keep = make(True, None, "", {}, {})
                 compact: dict[str, Any] = {}
-                # the contents whose result this run computed (to store; the record is the
-                # last of the content's trail: memory, no (sha, record) pair per file)
+                steps = walk.corpus[st.name] = {}  # sha -> the stage's record (its trail step)
+                # the contents whose result this run computed (to store)
                 new_rows: list[str] = []
                 for sha, mid in zip(alive, mids):
                     r = res.pop(mid, None)  # memory: the stage's result goes once compacted
@@ -119,7 +129,7 @@ class StageWalk:
                         new_rows.append(sha)
                     if r is not None:
                         compact[mid] = rec
-                    trails[sha].append(rec)
+                    steps[sha] = rec
                     if rec.kept:
                         survivors.append(sha)
                     else:
@@ -135,23 +145,23 @@ class StageWalk:
                     for sha in gone:
                         arts_of.pop(sha, None)
                 alive = survivors
+            walk.stages_done += 1
             timings[f"stage:{st.name}"] = time.perf_counter() - t
         walk.artifacts.clear()  # memory: signatures and shingles are not needed after the walk
         for sha in alive:
             walk.status[sha] = None
-        walk.trails = trails
         walk.byte_copy_judge = next((st for st in self.stages if st.judges_byte_copies), None)
         walk.rep = rep
         return walk
 
-    def _source_verdict(self, st: Stage, kept: Any, trail: list, source: str) -> Any:
-        """The stage's verdict on the source's own fields (metadata, title); a drop replaces
-        the content's kept result in this run's trail only (it is never stored as the
+    def _source_verdict(self, st: Stage, kept: Any, walk: "Walk", sha: str, source: str) -> Any:
+        """The stage's drop for the source's own fields (metadata, title), or None; a drop
+        replaces the content's kept result in this run's trail only (it is never stored as the
         content's result: another path may hold the same bytes)."""
-        file_title = TrailValues(trail).get("file_title")
+        file_title = ContentValues(walk, sha).get("file_title")
         drop = st.source_verdict(source_fields(source, file_title, self.metadata))
         if drop is None:
-            return kept
+            return None
         values = {**kept.values, **drop.values}
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
@@ -183,16 +193,24 @@ def _last_results(ledger: Ledger, stage: str, fingerprint: str, compactor: Compa
 class Walk:
     """The outcome of the stage walk, per content (sha256).
 
-    ``trails[sha]`` lists the content's results (``pipeline.store.records.Result``: ``kept``,
+    A content's trail lists its results (``pipeline.store.records.Result``: ``kept``,
     ``reason``, ``detail``, ``values``, ``thresholds``) in stage order, one per stage it
-    reached; ``stage_names`` names them. They are the result cache's own records."""
+    reached (``stage_names`` names them): ``trail(sha)`` makes it, ``step(i, sha)`` one step.
+    The per-file steps are read from the stages' verdict columns (``verdicts``, by content
+    index; ``replaced`` holds this run's own verdicts: a drop for a source's fields, a missing
+    result), the corpus steps are ``corpus[stage][sha]``; a content reached every stage up to
+    the one that dropped it (``status``)."""
 
     staged: dict[str, tuple[str, ...]] = field(default_factory=dict)  # sha -> staged suffixes
     #: corpus stage -> (replace all stored rows, [sha] whose record this run computed: the
     #: stage's step of the content's trail, ``corpus_record``)
     corpus_rows: dict[str, tuple[bool, list]] = field(default_factory=dict)
     status: dict[str, tuple[str, str] | None] = field(default_factory=dict)
-    trails: dict[str, list] = field(default_factory=dict)
+    index: dict[str, int] = field(default_factory=dict)  # sha256 -> content index
+    verdicts: dict[str, Any] = field(default_factory=dict)  # per-file stage -> records.Verdicts
+    replaced: dict[tuple[str, str], Any] = field(default_factory=dict)  # (stage, sha) -> record
+    corpus: dict[str, dict[str, Any]] = field(default_factory=dict)  # corpus stage -> sha -> record
+    stages_done: int = 0  # stages walked so far (a content still alive reached them all)
     artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)
     states: dict[str, dict] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
@@ -210,13 +228,35 @@ class Walk:
         """A source whose bytes equal an earlier source's (it is not the representative)."""
         return self.rep.get(sha) != rel
 
+    def reached(self, sha: str) -> int:
+        """How many stages the content's trail has a step for (0 for an unknown content)."""
+        if sha not in self.index:
+            return 0
+        status = self.status.get(sha, ())
+        if status is None or status == ():  # kept, or still alive during the walk
+            return self.stages_done
+        return self.stage_names.index(status[0]) + 1
+
+    def step(self, i: int, sha: str) -> Any:
+        """The content's record of stage ``i`` (it must have reached it)."""
+        name = self.stage_names[i]
+        steps = self.corpus.get(name)
+        if steps is not None:
+            return steps[sha]
+        r = self.replaced.get((name, sha))
+        return r if r is not None else self.verdicts[name].record(self.index[sha])
+
+    def trail(self, sha: str) -> list:
+        """The content's records in stage order (made on each call)."""
+        return [self.step(i, sha) for i in range(self.reached(sha))]
+
     def corpus_record(self, stage: str, sha: str) -> Any:
         """The record a corpus stage gave a content in this run (its step of the trail)."""
-        return self.trails[sha][self.stage_names.index(stage)]
+        return self.corpus[stage][sha]
 
     def value_of(self, sha: str, key: str, default: Any = None) -> Any:
         """One value of a content's trail (the latest stage that set it)."""
-        return TrailValues(self.trails.get(sha, ())).get(key, default)
+        return ContentValues(self, sha).get(key, default)
 
     def _reached(self, sha: str, stage: str) -> int | None:
         """Position of ``stage`` in the content's trail, or None when it did not reach it."""
@@ -224,11 +264,11 @@ class Walk:
             i = self.stage_names.index(stage)
         except ValueError:
             return None
-        return i if i < len(self.trails.get(sha, ())) else None
+        return i if i < self.reached(sha) else None
 
     def reached_names(self, rel: str, sha: str) -> list[str]:
         """The stages this source's trail (``trail_of``) has a step for."""
-        n = len(self.trails.get(sha, ()))
+        n = self.reached(sha)
         if self.byte_copy_stage and self.is_byte_copy(rel, sha):
             idx = self._reached(sha, self.byte_copy_stage)
             if idx is not None:
@@ -240,7 +280,7 @@ class Walk:
         dedup for a byte-identical copy."""
         trail = [{"stage": name, "kept": r.kept, "reason": r.reason, "detail": r.detail,
                   "values": r.values, "thresholds": r.thresholds}
-                 for name, r in zip(self.stage_names, self.trails.get(sha, ()))]
+                 for name, r in zip(self.stage_names, self.trail(sha))]
         if self.byte_copy_stage and self.is_byte_copy(rel, sha):
             idx = self._reached(sha, self.byte_copy_stage)
             if idx is not None:
@@ -262,7 +302,7 @@ class Walk:
             + ',"reason":' + ("null" if r.reason is None else esc(r.reason))
             + ',"stage":' + esc(name) + ',"thresholds":' + thresholds_json(r.thresholds)
             + ',"values":' + r.values_json() + "}"
-            for name, r in zip(self.stage_names, self.trails.get(sha, ()))]
+            for name, r in zip(self.stage_names, self.trail(sha))]
         return "[" + ",".join(steps) + "]"
 
     def final(self, rel: str, sha: str) -> tuple[str, str] | None:
@@ -273,7 +313,7 @@ class Walk:
             if idx is not None:
                 # the judging step of ``trail_of`` alone (speed: the other steps' values may be
                 # read back from the ledger)
-                r = self.trails[sha][idx]
+                r = self.step(idx, sha)
                 step = self.byte_copy_judge.byte_copy_verdict(self.rep[sha], sha, {
                     "stage": self.stage_names[idx], "kept": r.kept, "reason": r.reason,
                     "detail": r.detail, "values": r.values, "thresholds": r.thresholds})
@@ -281,3 +321,30 @@ class Walk:
         return self.status.get(sha)
 
 
+class ContentValues(Mapping):
+    """The values of a content's trail as one read-only mapping, later stages winning (what a
+    corpus stage's ``Member.values`` reads): each read makes the records it looks through,
+    latest first (memory: no record is held per member)."""
+
+    __slots__ = ("_walk", "_sha")
+
+    def __init__(self, walk: Walk, sha: str):
+        self._walk, self._sha = walk, sha
+
+    def __getitem__(self, name: str) -> Any:
+        walk, sha = self._walk, self._sha
+        for i in range(walk.reached(sha) - 1, -1, -1):
+            v = walk.step(i, sha).value(name, _MISSING)
+            if v is not _MISSING:
+                return v
+        raise KeyError(name)
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(TrailValues(self._walk.trail(self._sha)))
+
+    def __len__(self) -> int:
+        return len(TrailValues(self._walk.trail(self._sha)))
+
+
+_MISSING = object()
+_NOTHING: Mapping[str, Any] = MappingProxyType({})  # one read-only empty mapping, shared

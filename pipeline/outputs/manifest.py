@@ -101,14 +101,17 @@ class Tally:
 def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
                   on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
                   reuse: Any = None, corpus_positions: tuple[int, ...] = (),
-                  prefetch: Callable[[list[str]], None] | None = None) -> Iterator[dict[str, Any] | str]:
+                  prefetch: Callable[[list[str]], None] | None = None,
+                  on_unused: Callable[[str], None] | None = None) -> Iterator[dict[str, Any] | str]:
     """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
     into ``tally``; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it
     passes (the runner records the decisions in the same pass). With ``reuse`` (a
     ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line
     (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded.
     ``prefetch(sha256s)`` is told, ``ROWS_AHEAD`` files at a time, which contents' rows are
-    about to be built (the runner reads their stored values in a few queries)."""
+    about to be built (the runner reads their stored values in a few queries).
+    ``on_unused(line)`` sees every line of the old manifest that is not reused (its source is
+    gone or its row is built again), once all rows are through."""
     from .rowreuse import line_prefix, row_digest
     old_lines = reuse.lines() if reuse is not None and reuse.usable else None
     pending = next(old_lines, None) if old_lines is not None else None
@@ -120,9 +123,12 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
             line = None
             if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
                 while pending is not None and pending[0] < f.rel:
+                    if on_unused is not None:
+                        on_unused(pending[1])
                     pending = next(old_lines, None)
                 if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
                     line = pending[1]
+                    pending = next(old_lines, None)
             ahead.append((f, digest, line))
         if prefetch is not None:
             prefetch([f.sha256 for f, _, line in ahead if line is None])
@@ -140,6 +146,10 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
             if on_trail is not None:
                 on_trail(f, row, trail, digest)
             yield row
+    if on_unused is not None:
+        while pending is not None:
+            on_unused(pending[1])
+            pending = next(old_lines, None)
 
 
 #: Files whose rows are decided before they are built (``manifest_rows``' ``prefetch``).

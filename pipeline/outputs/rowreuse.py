@@ -31,11 +31,11 @@ def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]
     """Digest of what one source's manifest row and trail are made from, beyond its content's
     per-file results (see the module docstring)."""
     sha = f.sha256
-    trail = walk.trails.get(sha, ())
-    parts = [f.rel, sha, str(len(trail)), walk.rep.get(sha, "") if walk.is_byte_copy(f.rel, sha) else ""]
+    n = walk.reached(sha)
+    parts = [f.rel, sha, str(n), walk.rep.get(sha, "") if walk.is_byte_copy(f.rel, sha) else ""]
     for i in corpus_positions:
-        if i < len(trail):
-            r = trail[i]  # in stored form: a record read back and one computed now hash alike
+        if i < n:
+            r = walk.step(i, sha)  # in stored form: a record read back and one computed now hash alike
             parts.append(f"{r.kept}\0{r.reason}\0{r.detail}\0{r.values_json()}\0"
                          f"{thresholds_json(r.thresholds)}")
     parts.append(repr(placed.all_of.get(sha)))
@@ -51,6 +51,8 @@ class RowReuse:
         self.recomputed = recomputed
         self.old: dict[str, str] = {}
         self._order: list[str] = []
+        #: the page's facts of the old manifest (``page.Facts.to_state``), when it is trusted
+        self.facts: dict[str, Any] | None = None
         saved = ledger.state_for(STATE)
         if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
@@ -58,6 +60,7 @@ class RowReuse:
         if len(old) != saved.get("rows"):
             return
         self.old = old
+        self.facts = saved.get("facts")
         self._order = sorted(old)  # the manifest's line order (sources sorted as discover does)
 
     @property
@@ -78,10 +81,10 @@ class RowReuse:
         """Sources of the last run that this run does not have."""
         return [s for s in self.old if s not in present]
 
-    def state_of(self, rows: int) -> dict[str, Any]:
-        """This run's base key, row count and manifest stat, for the ledger's ``STATE`` entry
-        (recorded in the run's last transaction, after the manifest is written)."""
-        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest)}
+    def state_of(self, rows: int, facts: dict[str, Any]) -> dict[str, Any]:
+        """This run's base key, row count, manifest stat and page facts, for the ledger's
+        ``STATE`` entry (recorded in the run's last transaction, after the manifest is written)."""
+        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts}
 
 
 def line_prefix(f: Any) -> str:

@@ -166,23 +166,18 @@ class Ledger:
                             thresholds_of(thr))
         return out
 
-    def verdicts_for(self, source: "StoredValues", index: dict[str, int],
-                     make: Callable[[bool, str | None, str, dict, "StoredValues", int], Any]) -> dict[str, Any]:
-        """sha256 -> what ``make(kept, reason, detail, thresholds, source, i)`` builds of each
-        stored result of the stage whose values ``source`` reads (``values_source``), for the
-        contents in ``index`` (sha256 -> position in ``source.order``; keyed by the order's own
-        strings, no second copy of each sha256), the values left in the ledger. Memory: a rerun
-        holds a verdict per file and stage, and reads the values of the rows it rebuilds."""
-        out: dict[str, Any] = {}
-        thresholds_of = thresholds_from_json
-        order = source.order
+    def verdicts_for(self, verdicts: Any) -> Any:
+        """Fill ``verdicts`` (a ``records.Verdicts`` over the contents its ``source`` reads,
+        ``values_source``) with the stage's stored verdicts of those contents, in one query; the
+        values stay in the ledger. Memory: columns, no record per file and stage."""
+        index, put = verdicts.index, verdicts.put
         for sha, kept, reason, detail, thr in self.db.execute(
                 "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
-                source.key):
+                verdicts.source.key):
             i = index.get(sha)
             if i is not None:
-                out[order[i]] = make(bool(kept), reason, detail, thresholds_of(thr), source, i)
-        return out
+                put(i, bool(kept), reason, detail, thr)
+        return verdicts
 
     def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
         """Where the stored values texts of one stage's per-file results are read, by index

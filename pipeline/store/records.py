@@ -16,12 +16,13 @@ from __future__ import annotations
 
 import json
 import sys
+from array import array
 from collections.abc import Mapping
 from typing import Any, Iterator, Protocol
 
 from .codec import canonical_json, thresholds_from_json
 
-__all__ = ["Result", "Compactor", "TrailValues"]
+__all__ = ["Result", "Compactor", "TrailValues", "Verdicts"]
 
 _FIELDS = ("kept", "reason", "detail", "values", "thresholds")
 _DECODER = json.JSONDecoder()
@@ -308,3 +309,89 @@ class TrailValues(Mapping):
 
     def __len__(self) -> int:
         return sum(1 for _ in self)
+
+
+class Verdicts:
+    """One per-file stage's verdicts on a run's contents as columns (memory: a ``Result`` and a
+    dict entry per file and stage cost about 150 bytes; these columns 11): a state byte (none,
+    dropped, kept), and codes of the reason, the detail and the thresholds text among the
+    stage's distinct ones, by content index. The values stay in the ledger (``source``, a
+    ``ledger.StoredValues`` over the same contents); ``record`` makes the ``Result`` a reader
+    asks for, ``get`` by sha256 reads like the dict of records it replaces."""
+
+    __slots__ = ("source", "index", "compactor", "state", "reason", "detail", "thresholds",
+                 "_reasons", "_details", "_thresholds", "_codes", "_triples")
+
+    NONE, DROPPED, KEPT = 0, 1, 2
+
+    def __init__(self, source: ValueSource, index: dict[str, int], compactor: Compactor, n: int):
+        self.source = source
+        self.index = index  # sha256 -> content index (shared by every stage's columns)
+        self.compactor = compactor
+        self.state = bytearray(n)
+        self.reason = array("H", bytes(2 * n))
+        self.detail = array("I", bytes(4 * n))
+        self.thresholds = array("I", bytes(4 * n))
+        # the distinct values of the stage and their codes (code 0 of the reason is None)
+        self._reasons: list[str | None] = [None]
+        self._details: list[str] = []
+        self._thresholds: list[dict[str, Any]] = []
+        self._codes: dict[tuple[int, Any], int] = {(0, None): 0}
+        # speed: (reason, detail, thresholds text) -> their three codes (a stage has few)
+        self._triples: dict[tuple, tuple[int, int, int]] = {}
+
+    def _code(self, column: int, value: Any, table: list) -> int:
+        code = self._codes.get((column, value))
+        if code is None:
+            code = self._codes[(column, value)] = len(table)
+            table.append(value if column != 2 else thresholds_from_json(value))
+        return code
+
+    def put(self, i: int, kept: bool, reason: str | None, detail: str, thresholds_json: str) -> None:
+        """Record content ``i``'s verdict (its values are, or are about to be, in the ledger)."""
+        self.state[i] = self.KEPT if kept else self.DROPPED
+        key = (reason, detail, thresholds_json)
+        codes = self._triples.get(key)
+        if codes is None:
+            codes = (self._code(0, reason, self._reasons), self._code(1, detail, self._details),
+                     self._code(2, thresholds_json, self._thresholds))
+            if len(self._triples) < SHARED_DETAILS:
+                self._triples[key] = codes
+        self.reason[i], self.detail[i], self.thresholds[i] = codes
+
+    def put_stored(self, i: int, stored: tuple[int, str | None, str, str, str]) -> None:
+        """Record a worker's result in stored form (``codec.stored_result``)."""
+        kept, reason, detail, _, thresholds_json = stored
+        self.put(i, bool(kept), reason, detail, thresholds_json)
+
+    def kept_at(self, i: int) -> bool | None:
+        """Whether content ``i`` was kept (None: no verdict)."""
+        s = self.state[i]
+        return None if s == self.NONE else s == self.KEPT
+
+    def record(self, i: int) -> Result | None:
+        """Content ``i``'s verdict as a ``Result`` whose values are read from the ledger."""
+        s = self.state[i]
+        if s == self.NONE:
+            return None
+        return self.compactor.make_deferred(s == self.KEPT, self._reasons[self.reason[i]],
+                                            self._details[self.detail[i]],
+                                            self._thresholds[self.thresholds[i]], self.source, i)
+
+    def get(self, sha: str, default: Any = None) -> Result | None:
+        i = self.index.get(sha)
+        r = self.record(i) if i is not None else None
+        return default if r is None else r
+
+    def __getitem__(self, sha: str) -> Result:
+        r = self.get(sha)
+        if r is None:
+            raise KeyError(sha)
+        return r
+
+    def __contains__(self, sha: object) -> bool:
+        i = self.index.get(sha)  # type: ignore[arg-type]
+        return i is not None and self.state[i] != self.NONE
+
+    def __len__(self) -> int:
+        return len(self.state) - self.state.count(self.NONE)
