@@ -10,10 +10,10 @@ walk writes nothing.
 from __future__ import annotations
 
 import time
-from types import MappingProxyType
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
-from collections.abc import Iterator, Mapping
+from types import MappingProxyType
 from typing import Any, Callable
 
 from ..metadata import Metadata
