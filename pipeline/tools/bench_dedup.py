@@ -275,6 +275,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--lead-order", action="store_true",
                     help="with --chorales, --real or --sizes: ordered evidence (chain, run, local "
                     "alignment) of the weak links resting on the leads (pipeline.tools.lead_order)")
+    ap.add_argument("--split-recall", action="store_true",
+                    help="with --chorales or --real: the split's LSH search against every pair "
+                    "verified (recall, missed links, groups left apart; pipeline.tools.split_recall)")
     ap.add_argument("--weak-below", type=float, default=None,
                     help="with --lead-order: links below this count as weak (chorales 0.3, real 0.4)")
     a = ap.parse_args(argv)
@@ -288,11 +291,28 @@ def main(argv: list[str] | None = None) -> int:
                                     f"{len(res['bad'])} of different tunes", res["separation"], res["bad"],
                                     res["near_misses"]))
             return 0
+        if a.split_recall:
+            from ..stages.split import Split
+            from .split_recall import format_recall, sign_all, split_recall
+            works = render_chorales(Path(a.chorales))
+            res = split_recall(sign_all({w["name"]: w["midi"] for w in works}),
+                               float(Split().opts["group_threshold"]))
+            print(format_recall("chorales", res))
+            return 0
         print(format_chorales(chorale_check(render_chorales(Path(a.chorales)))))
         return 0
     if a.real:
         from .bench_identity import evaluate, format_real, load_collection
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
+        if a.split_recall:
+            from ..stages.split import Split
+            from .split_recall import format_recall, sign_all, split_recall
+            song = {r["rel"]: r["song"] for r in recs}
+            res = split_recall(sign_all({r["rel"]: (Path(a.real) / r["rel"]).read_bytes() for r in recs}),
+                               float(Split(_options(a.split_option) or None).opts["group_threshold"]),
+                               label_of=song.__getitem__)
+            print(format_recall(Path(a.real).name, res))
+            return 0
         if a.lead_order:
             from .lead_order import real_lead_order
             counts: dict[str, int] = {}
