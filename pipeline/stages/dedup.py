@@ -36,7 +36,7 @@ from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
 from ..store.columns import column_of, lengths_of, stacked
-from ..store.columns import present as holding
+from ..store.columns import present as holding  # run_corpus names its member set `present`
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult, in_range, one_of,
                    options_fingerprint, positive, register, unit_interval)
@@ -326,12 +326,6 @@ class Dedup(Stage):
         groups = uf.groups()
         as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
         for group, same in zip(groups, as_last):
-            if same and len(group) == 1:  # speed: the bulk of a rerun, one member alone as last time
-                k = group[0]
-                results[k] = last[k]
-                if k in last_kept:
-                    kept_ids.append(k)
-                continue
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
@@ -376,16 +370,9 @@ class Dedup(Stage):
         """Whether a cluster is the last run's and reads as it did: no new member, every member
         with a stored result, and (in a cluster of several, whose details name sources) every
         member still represented by the same source path."""
-        if len(group) == 1:  # speed: most clusters
-            return group[0] in old and group[0] in last
-        for k in group:
-            if k not in old or k not in last:
-                return False
-        if len(group) > 1:
-            for k in group:
-                if last_sources.get(k) != by_id[k].source:
-                    return False
-        return True
+        if any(k not in old or k not in last for k in group):
+            return False
+        return len(group) == 1 or all(last_sources.get(k) == by_id[k].source for k in group)
 
     def _cluster_results(self, order: list[str], kept: list[str],
                          dropped: dict[str, tuple[str, float, str]], facts: dict[str, _Facts],
