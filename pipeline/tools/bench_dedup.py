@@ -292,12 +292,9 @@ def main(argv: list[str] | None = None) -> int:
                                     res["near_misses"]))
             return 0
         if a.split_recall:
-            from ..stages.split import Split
-            from .split_recall import format_recall, sign_all, split_recall
+            from .split_recall import format_recall, split_recall_of
             works = render_chorales(Path(a.chorales))
-            res = split_recall(sign_all({w["name"]: w["midi"] for w in works}),
-                               float(Split().opts["group_threshold"]))
-            print(format_recall("chorales", res))
+            print(format_recall("chorales", split_recall_of({w["name"]: w["midi"] for w in works})))
             return 0
         print(format_chorales(chorale_check(render_chorales(Path(a.chorales)))))
         return 0
@@ -305,12 +302,10 @@ def main(argv: list[str] | None = None) -> int:
         from .bench_identity import evaluate, format_real, load_collection
         recs = load_collection(Path(a.real), Path(a.labels or Path(a.real) / "labels.json"))
         if a.split_recall:
-            from ..stages.split import Split
-            from .split_recall import format_recall, sign_all, split_recall
+            from .split_recall import format_recall, split_recall_of
             song = {r["rel"]: r["song"] for r in recs}
-            res = split_recall(sign_all({r["rel"]: (Path(a.real) / r["rel"]).read_bytes() for r in recs}),
-                               float(Split(_options(a.split_option) or None).opts["group_threshold"]),
-                               label_of=song.__getitem__)
+            res = split_recall_of({r["rel"]: (Path(a.real) / r["rel"]).read_bytes() for r in recs},
+                                  _options(a.split_option) or None, label_of=song.__getitem__)
             print(format_recall(Path(a.real).name, res))
             return 0
         if a.lead_order:

@@ -52,6 +52,14 @@ def split_recall(signed: Mapping[str, tuple[np.ndarray, np.ndarray]], threshold:
     return out
 
 
+def split_recall_of(named_midi: Mapping[str, bytes], split_opts: dict | None = None,
+                    label_of: Callable[[str], str] | None = None) -> dict[str, Any]:
+    """``split_recall`` of MIDI files (name -> bytes) at the split's ``group_threshold``."""
+    from ..stages.split import Split
+    threshold = float(Split(split_opts or {}).opts["group_threshold"])
+    return split_recall(sign_all(named_midi), threshold, label_of=label_of)
+
+
 def sign_all(named_midi: Mapping[str, bytes]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """name -> (signature, shingles) of MIDI bytes, at the split's signature options."""
     from ..midi.decode import decode
