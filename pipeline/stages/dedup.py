@@ -139,6 +139,10 @@ class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
     version = 4
+    #: The version of what ``prepare`` computes (content hash, shingles, signature): it keys the
+    #: stored artifacts and the split's signatures, so a change of the corpus step alone
+    #: (``version``) re-decodes no file. Bump it when ``prepare`` or what it calls changes.
+    signature_version = 3
     doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
            "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
@@ -187,6 +191,12 @@ class Dedup(Stage):
         sig, sh, chash = signature_of(piece, self.opts)
         return {"content_hash": chash, "signature": sig, "shingles": sh,
                 "notes": int(len(piece.notes)), "duration_beats": duration_beats(piece)}
+
+    @property
+    def artifact_fingerprint(self) -> str:
+        """The cache key of the ``prepare`` artifacts: ``signature_version``, not ``version``."""
+        return options_fingerprint(f"{self.name}.prepare", self.signature_version,
+                                   {k: self.opts[k] for k in self.prepare_options})
 
     # -- corpus -----------------------------------------------------------------------------
     def _link_fingerprint(self) -> str:
