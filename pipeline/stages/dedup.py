@@ -512,11 +512,11 @@ def choose_kept(order: list[str], facts: Any, near: _NearLinks
     kept_content: dict[str, str] = {}  # content representative -> the kept member with it
 
     def links_to_kept(k: str) -> list[tuple[float, str, str]]:
-        found = []
         same = kept_content.get(near.content_rep[k])
-        if same is not None:
+        if same is not None:  # 1.0 and exact: no near link can come before it
             kind = "bytes" if facts[k]["sha256"] == facts[same]["sha256"] else "content"
-            found.append((1.0, kind, same))
+            return [(1.0, kind, same)]
+        found = []
         for c in near.of(k):
             m = kept_content.get(c)
             if m is not None:
