@@ -118,3 +118,18 @@ def test_a_member_names_the_kept_file_its_own_pair_reaches_best():
     assert (res[r.id].values["duplicate_of"], res[r.id].values["similarity"]) == (k.id, 0.6)
     assert (res[m.id].values["duplicate_of"], res[m.id].values["similarity"]) == (k2.id, 0.8)
     assert res[m.id].reason == "near_duplicate"
+
+
+def test_a_member_with_too_few_shingles_is_not_near_dropped_on_its_mates_pair():
+    """``min_shingles`` (16): a file with fewer distinct shingles is only exact-deduplicated,
+    so a member of R's note content holding 12 shingles (all of them K's) is not dropped as
+    K's near duplicate through R's link; it is kept, and R is its exact (content) duplicate."""
+    pool = np.arange(1, 1001, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15) | np.uint64(1 << 63)
+    k = _planted("k.mid", pool[:100], 900, "content k")
+    first, second = sorted(("r.mid", "m.mid"), key=lambda n: hashlib.sha256(n.encode()).hexdigest())
+    r = _planted(first, pool[:80], 100, "content r")
+    m = _planted(second, pool[:12], 100, "content r")
+    res, state = run([k, r, m])
+    assert _own(m, k, state) == 1.0  # containment, were it counted
+    assert res[k.id].kept and res[m.id].kept
+    assert (res[r.id].reason, res[r.id].values["duplicate_of"]) == ("exact_duplicate", m.id)
