@@ -548,6 +548,26 @@ def test_changing_the_split_seed_without_dedup_decodes_nothing(tmp_path):
     assert computed[0] > 0 and computed[1] == 0
 
 
+def test_a_new_dedup_corpus_step_decodes_nothing_and_equals_a_fresh_run(tmp_path, monkeypatch):
+    """Dedup's stored per-file artifacts, and the split's signatures, are keyed by dedup's
+    ``signature_version`` (what ``prepare`` computes), not its ``version``: a new corpus step
+    re-runs over the stored signatures (links compared all against all again), decodes no file,
+    and writes what a fresh run writes; a new signature version re-signs the files."""
+    from pipeline.stages.dedup import Dedup
+    out, fresh = tmp_path / "out", tmp_path / "fresh"
+    _run(out)
+    monkeypatch.setattr(Dedup, "version", Dedup.version + 1)
+    again = _run(out)
+    assert again.computed == 0
+    assert any("dedup:" in n and "all against all" in n for n in again.notes), again.notes
+    _run(fresh)
+    assert _manifest(out) == _manifest(fresh)
+    assert [(out / "splits" / p).read_text() == (fresh / "splits" / p).read_text()
+            for p in ("train.txt", "valid.txt", "test.txt")] == [True] * 3
+    monkeypatch.setattr(Dedup, "signature_version", Dedup.signature_version + 1)
+    assert _run(out).computed > 0
+
+
 def test_explain_json_is_the_same_trail_as_data(demo_out, capsys):
     row = next(r for r in _manifest(demo_out) if r["status"] == "dropped" and r["stage"] == "dedup")
     assert main(["explain", row["source"], "--output", str(demo_out), "--json"]) == 0

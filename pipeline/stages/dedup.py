@@ -19,8 +19,10 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
    kept is dropped, else it is kept too. Each dropped member names the kept member it is most
    similar to among those it links to directly (``duplicate_of``, ``similarity``), so every
    drop is justified by its own pair, never through other members (a chain A~B~C where A and
-   C are unlike keeps both A and C). Only new files are compared on a rerun (stored links are
-   reused).
+   C are unlike keeps both A and C). Members of one note content may differ in layout, so in
+   shingles: a member's near link to a kept member is the pair the link was measured on, or
+   else their own pair, compared when needed (``_OwnPairs``). Only new files are compared on
+   a rerun (stored links are reused).
 """
 from __future__ import annotations
 
@@ -136,7 +138,11 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 3
+    version = 4
+    #: The version of what ``prepare`` computes (content hash, shingles, signature): it keys the
+    #: stored artifacts and the split's signatures, so a change of the corpus step alone
+    #: (``version``) re-decodes no file. Bump it when ``prepare`` or what it calls changes.
+    signature_version = 3
     doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
            "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several
@@ -185,6 +191,12 @@ class Dedup(Stage):
         sig, sh, chash = signature_of(piece, self.opts)
         return {"content_hash": chash, "signature": sig, "shingles": sh,
                 "notes": int(len(piece.notes)), "duration_beats": duration_beats(piece)}
+
+    @property
+    def artifact_fingerprint(self) -> str:
+        """The cache key of the ``prepare`` artifacts: ``signature_version``, not ``version``."""
+        return options_fingerprint(f"{self.name}.prepare", self.signature_version,
+                                   {k: self.opts[k] for k in self.prepare_options})
 
     # -- corpus -----------------------------------------------------------------------------
     def _link_fingerprint(self) -> str:
@@ -314,7 +326,10 @@ class Dedup(Stage):
                      f"estimate, {len(verified)} verified links; {len(self._generic)} generic "
                      "shingles left out")
 
-        # 3. clusters and their kept members
+        # 3. clusters and their kept members (a pair of members other than the one a link was
+        # measured on, as a member that is not its content's representative, is compared itself)
+        near.own = _OwnPairs(_Shingles(arts), threshold, float(o["min_size_ratio"]), min_sh,
+                             self._generic)
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
         last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
@@ -419,24 +434,64 @@ class Dedup(Stage):
 
 class _NearLinks:
     """The verified near links, between note contents: members with one note content (its
-    representative is ``content_rep[member]``) share their links and their similarities."""
+    representative is ``content_rep[member]``) share their links. A link's value is the
+    similarity of the two members it was measured on; ``pair`` gives any two members' own."""
 
-    __slots__ = ("content_rep", "_adj")
+    __slots__ = ("content_rep", "_adj", "own")
 
-    def __init__(self, content_rep: dict[str, str]):
+    def __init__(self, content_rep: dict[str, str],
+                 own: Callable[[str, str], float | None] | None = None):
         self.content_rep = content_rep
+        #: the own similarity of two members, None below the threshold (``_OwnPairs``)
+        self.own = own
         # memory: entries only for contents with a link (most files have none)
-        self._adj: defaultdict[str, dict[str, float]] = defaultdict(dict)
+        self._adj: defaultdict[str, dict[str, tuple[float, str, str]]] = defaultdict(dict)
 
     def add(self, a: str, b: str, sim: float) -> None:
         ca, cb = self.content_rep[a], self.content_rep[b]
         if ca != cb:
-            self._adj[ca][cb] = sim
-            self._adj[cb][ca] = sim
+            self._adj[ca][cb] = self._adj[cb][ca] = (sim, a, b)
 
-    def of(self, member: str) -> dict[str, float]:
-        """Content representative -> similarity, for every content linked to the member's."""
+    def of(self, member: str) -> dict[str, tuple[float, str, str]]:
+        """Content representative -> (similarity, the two members it was measured on), for
+        every content linked to the member's."""
         return self._adj.get(self.content_rep[member], {})
+
+    def pair(self, a: str, b: str) -> float | None:
+        """The own similarity of members ``a`` and ``b``, whose contents are linked: the link's
+        value when it was measured on them, else their own pair compared (``own``; None when it
+        falls below the threshold): members of one note content may differ in their voices'
+        layout, and so in their shingles."""
+        sim, x, y = self._adj[self.content_rep[a]][self.content_rep[b]]
+        if (a == x and b == y) or (a == y and b == x) or self.own is None:
+            return sim
+        return self.own(a, b)
+
+
+class _OwnPairs:
+    """The own similarity of two members whose note contents are linked through other members
+    (a member that is not its content's representative, or a kept member that is not): the
+    pair verified as every candidate pair is (``links.verify_codes``: the same measure, the
+    same generic shingles left out), None when it falls below the threshold or a set holds
+    fewer than ``min_shingles`` (such files are only exact-deduplicated). Values are cached."""
+
+    def __init__(self, shingles: "_Shingles", threshold: float, min_size_ratio: float,
+                 min_shingles: int, generic: np.ndarray):
+        self._shingles, self._threshold = shingles, threshold
+        self._min_size_ratio, self._min_shingles, self._generic = min_size_ratio, min_shingles, generic
+        self._done: dict[tuple[str, str], float | None] = {}
+
+    def __call__(self, a: str, b: str) -> float | None:
+        key = (a, b) if a < b else (b, a)
+        if key not in self._done:
+            sim = None
+            if min(len(self._shingles[a]), len(self._shingles[b])) >= self._min_shingles:
+                found = verify_codes(list(key), np.array([1], dtype=np.int64), self._shingles,
+                                     self._threshold, min_size_ratio=self._min_size_ratio,
+                                     generic=self._generic, read=load_arrays)
+                sim = found[0][2] if found else None
+            self._done[key] = sim
+        return self._done[key]
 
 
 def choose_kept(order: list[str], facts: Any, near: _NearLinks
@@ -445,24 +500,29 @@ def choose_kept(order: list[str], facts: Any, near: _NearLinks
     duplicates: ``(kept, {member: (kept member, similarity, kind)})``.
 
     Members are taken in ``order`` (the keep order): one with a direct link to a member kept
-    before it (same bytes, same note content, or a verified near link at the threshold) is
-    dropped, else it is kept. A dropped member then names, among all kept members it links to
-    directly, the most similar (exact before near at equal similarity, then the first in
-    ``order``). So no drop rests on a chain through other members, and no two kept members
-    are linked directly (a rerun that puts last run's kept members first keeps them all)."""
+    before it (same bytes, same note content, or its own pair with it verified at the
+    threshold, ``_NearLinks.pair``) is dropped, else it is kept. A dropped member then names,
+    among all kept members it links to directly, the most similar (exact before near at equal
+    similarity, then the first in ``order``). So no drop rests on a chain through other
+    members, nor on a pair of other members of its note content (whose voices, and so
+    shingles, may differ from its own), and no two kept members are linked directly (a rerun
+    that puts last run's kept members first keeps them all)."""
     rank = {k: i for i, k in enumerate(order)}
     kept: list[str] = []
     kept_content: dict[str, str] = {}  # content representative -> the kept member with it
 
     def links_to_kept(k: str) -> list[tuple[float, str, str]]:
-        found = []
         same = kept_content.get(near.content_rep[k])
-        if same is not None:
+        if same is not None:  # 1.0 and exact: no near link can come before it
             kind = "bytes" if facts[k]["sha256"] == facts[same]["sha256"] else "content"
-            found.append((1.0, kind, same))
-        for c, sim in near.of(k).items():
-            if c in kept_content:
-                found.append((sim, "near", kept_content[c]))
+            return [(1.0, kind, same)]
+        found = []
+        for c in near.of(k):
+            m = kept_content.get(c)
+            if m is not None:
+                sim = near.pair(k, m)
+                if sim is not None:
+                    found.append((sim, "near", m))
         return found
 
     for k in order:

@@ -174,17 +174,17 @@ class Split(Stage):
 
     @property
     def fingerprint(self) -> str:
-        """The options' fingerprint, plus what the split signs files with (dedup's version and
-        default signature settings): a change there re-signs the files."""
+        """The options' fingerprint, plus what the split signs files with (dedup's signature
+        version and default signature settings): a change there re-signs the files."""
         return options_fingerprint(self.name, self.version, {
-            **self.opts, "signatures": {"dedup_version": Dedup.version, **signature_options()}})
+            **self.opts, "signatures": {"dedup_version": Dedup.signature_version, **signature_options()}})
 
     @property
     def artifact_fingerprint(self) -> str:
         """The split's own signatures depend only on what it signs with, not on its options:
         new ratios or a new seed re-sign no file."""
         return options_fingerprint(f"{self.name}.prepare", self.version,
-                                   {"dedup_version": Dedup.version, **signature_options()})
+                                   {"dedup_version": Dedup.signature_version, **signature_options()})
 
     @property
     def uses_source_fields(self) -> bool:
@@ -365,7 +365,7 @@ class Split(Stage):
         searched. The links are saved for the next run."""
         threshold = self.opts["group_threshold"]
         first = next(iter(arts.values()))["signature"]
-        signer = options_fingerprint("signatures", Dedup.version, {"by": signed, **signature_options()})
+        signer = options_fingerprint("signatures", Dedup.signature_version, {"by": signed, **signature_options()})
         settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
