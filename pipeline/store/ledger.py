@@ -170,13 +170,9 @@ class Ledger:
         """Fill ``verdicts`` (a ``records.Verdicts`` over the contents its ``source`` reads,
         ``values_source``) with the stage's stored verdicts of those contents, in one query; the
         values stay in the ledger. Memory: columns, no record per file and stage."""
-        index, put = verdicts.index, verdicts.put
-        for sha, kept, reason, detail, thr in self.db.execute(
-                "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
-                verdicts.source.key):
-            i = index.get(sha)
-            if i is not None:
-                put(i, bool(kept), reason, detail, thr)
+        verdicts.fill(self.db.execute(
+            "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
+            verdicts.source.key))
         return verdicts
 
     def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
