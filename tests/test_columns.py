@@ -44,8 +44,14 @@ def _stored(tmp_path, items: dict[str, dict]) -> Iterator[Ledger]:
         yield led
 
 
+@pytest.mark.parametrize("chunk", [4096, 2, 3])
 @pytest.mark.parametrize("ragged", [False, True])
-def test_rows_read_as_the_dicts_did(tmp_path, ragged):
+def test_rows_read_as_the_dicts_did(tmp_path, monkeypatch, ragged, chunk):
+    # rows are handed to the columns a chunk at a time (arrays decoded from their joined
+    # bytes): small chunks put the odd-shaped signature in a chunk of its own or beside
+    # regular ones, after or before the matrix is made
+    from pipeline.store import ledger
+    monkeypatch.setattr(ledger, "ARTIFACT_CHUNK", chunk)
     items = _items(ragged)
     with _stored(tmp_path, items) as led:
         order = sorted(items)[::-1]  # not in table order

@@ -37,8 +37,8 @@ def test_write_atomic_leaves_no_temp_file(tmp_path):
 
 
 def test_placed_files_are_flushed_one_by_one_or_with_one_sync(tmp_path, monkeypatch):
-    """A few newly placed files are fsynced one by one (and their folders); many, with one
-    os.sync(); a file that cannot be flushed is an OutputError naming it (fsync(2) reports
+    """A few newly placed files are fsynced one by one (and their folders), as are more that are
+    few beside the outputs in place; many, with one os.sync(); a file that cannot be flushed is an OutputError naming it (fsync(2) reports
     write-back errors such as EIO)."""
     import errno
     import os
@@ -60,6 +60,14 @@ def test_placed_files_are_flushed_one_by_one_or_with_one_sync(tmp_path, monkeypa
     synced.clear()
     monkeypatch.setattr(outputs, "FSYNC_EACH_UP_TO", 2)
     outputs._flush_moved(files, set())
+    assert synced == [] and whole == [1]
+    # more than that, but few beside the outputs already in place (a rerun's new files): one
+    # by one; exactly at the share still one by one, past it one sync
+    whole.clear()
+    outputs._flush_moved(files, set(), in_place=48)
+    assert len(synced) == 4 and whole == []
+    synced.clear()
+    outputs._flush_moved(files, set(), in_place=47)
     assert synced == [] and whole == [1]
     monkeypatch.setattr(outputs, "FSYNC_EACH_UP_TO", 256)
 

@@ -218,6 +218,9 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
                 merged.update(step["values"])
             values = ContentValues(walk, r["sha256"])
             assert {k: values[k] for k in values} == merged and len(values) == len(merged)
+            # one value read from the walk directly (placing outputs reads the split's part)
+            assert all(walk.value_of(r["sha256"], k) == v for k, v in merged.items())
+            assert walk.value_of(r["sha256"], "no such value", 7) == 7
             assert walk.reached(r["sha256"]) == len(walk.trail(r["sha256"]))
         checked.append(len(rows))
         return summary

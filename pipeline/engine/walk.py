@@ -255,8 +255,14 @@ class Walk:
         return self.corpus[stage][sha]
 
     def value_of(self, sha: str, key: str, default: Any = None) -> Any:
-        """One value of a content's trail (the latest stage that set it)."""
-        return ContentValues(self, sha).get(key, default)
+        """One value of a content's trail (the latest stage that set it), as
+        ``ContentValues(self, sha).get(key, default)`` reads it (speed: placing the outputs
+        reads the split's part of every kept content)."""
+        for i in range(self.reached(sha) - 1, -1, -1):
+            v = self.step(i, sha).value(key, _MISSING)
+            if v is not _MISSING:
+                return v
+        return default
 
     def _reached(self, sha: str, stage: str) -> int | None:
         """Position of ``stage`` in the content's trail, or None when it did not reach it."""

@@ -163,7 +163,7 @@ def place(out_dir: Path, walk: Any, rep: dict[str, str], existing: dict[str, lis
             placed.main[sha] = paths[0]
             placed.all_of[sha] = paths
             placed.parts.setdefault(part, []).extend(paths)
-    _flush_moved(moved, made)
+    _flush_moved(moved, made, len(rows))
     keep = {r[0] for r in rows}
     midi = out_dir / "midi"
     if midi.is_dir():
@@ -175,17 +175,20 @@ def place(out_dir: Path, walk: Any, rep: dict[str, str], existing: dict[str, lis
     return placed
 
 
-#: Up to this many newly placed files are flushed one by one; more, with one ``os.sync()``.
+#: Up to this many newly placed files are flushed one by one, and so are more when they are at
+#: most ``FSYNC_EACH_SHARE`` of the outputs in place (a rerun's new files); else one ``os.sync()``.
 FSYNC_EACH_UP_TO = 256
+FSYNC_EACH_SHARE = 1 / 16
 
 
-def _flush_moved(moved: list[str], folders: set[str]) -> None:
+def _flush_moved(moved: list[str], folders: set[str], in_place: int = 0) -> None:
     """Staged files are written without fsync; flush the ones just placed before the ledger
-    records them. A rerun that adds a few files syncs those files and their folders (``os.sync``
-    also flushes everything else waiting for the disk); a run that placed many syncs once."""
+    records them. A rerun that adds few files, or few beside the ``in_place`` outputs, syncs
+    those files and their folders (``os.sync`` also flushes everything else waiting for the
+    disk, whatever its size); a run that placed many syncs once."""
     if not moved:
         return
-    if len(moved) > FSYNC_EACH_UP_TO:
+    if len(moved) > max(FSYNC_EACH_UP_TO, FSYNC_EACH_SHARE * in_place):
         os.sync()
         return
     for path in moved:

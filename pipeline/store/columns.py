@@ -47,6 +47,21 @@ class _ArrayColumn:
             self.matrix = self.has = None
         self.rows[i] = arr
 
+    def put_block(self, at: list[int], block: np.ndarray) -> None:
+        """Rows ``at`` set to the rows of ``block`` (arrays of one dtype and shape)."""
+        if self.rows is None and self.matrix is None:
+            self.matrix = np.zeros((self.n, *block.shape[1:]), dtype=block.dtype)
+            self.has = np.zeros(self.n, dtype=bool)
+        if self.rows is None and block.dtype == self.matrix.dtype and block.shape[1:] == self.matrix.shape[1:]:
+            idx = np.asarray(at, dtype=np.intp)
+            self.matrix[idx] = block
+            self.has[idx] = True
+            return
+        for i, arr in zip(at, block):  # another shape than the column's: one by one
+            arr = arr.copy()
+            arr.flags.writeable = False
+            self.put(i, arr)
+
     def _row(self, i: int) -> np.ndarray:
         # a private copy when giving up the matrix (read-only like a stored array)
         arr = self.matrix[i].copy()
@@ -168,6 +183,42 @@ class ArtifactColumns:
         if col is None:
             col = self._column(name, lambda: _ScalarColumn(len(self.order)))
         col.put(i, value)
+
+    def put_arrays(self, name: str, at: list[int], stored: list[tuple]) -> None:
+        """Arrays in their stored form (dtype, shape, bytes), row ``at[k]`` for ``stored[k]``:
+        when they share one dtype and shape and fit the column's matrix, decoded from their
+        joined bytes in one call (speed: no array object per row); else one by one."""
+        from .codec import decode_array, shape_of
+        col = self._columns.get(name)
+        if col is None:
+            col = self._column(name, lambda: _ArrayColumn(len(self.order)))
+        dtype, shape = stored[0][0], stored[0][1]
+        dims = shape_of(shape)
+        if dims and all(d == dtype and s == shape for d, s, _ in stored):
+            block = np.frombuffer(b"".join(data for _, _, data in stored), dtype=dtype)
+            if block.size == len(stored) * int(np.prod(dims, dtype=np.int64)):
+                col.put_block(at, block.reshape((len(stored), *dims)))
+                return
+        for i, (d, s, data) in zip(at, stored):
+            col.put(i, decode_array(d, s, data))
+
+    def put_deferred_many(self, name: str, at: list[int], shapes: list[tuple[str, str | None]]) -> None:
+        """Deferred arrays' (dtype, shape) texts, row ``at[k]`` for ``shapes[k]``."""
+        col = self._columns.get(name)
+        if col is None:
+            col = self._column(name, lambda: _DeferredColumn(self._deferred_rows[name], self.order, self._handle))
+        for i, (dtype, shape) in zip(at, shapes):
+            col.put(i, dtype, shape)
+
+    def put_scalar_objects(self, at: list[int], objects: list[dict[str, Any]]) -> None:
+        """Each row's JSON scalars, row ``at[k]`` for the object ``objects[k]``."""
+        columns = self._columns
+        for i, obj in zip(at, objects):
+            for k, v in obj.items():
+                col = columns.get(k)
+                if col is None:
+                    col = self._column(k, lambda: _ScalarColumn(len(self.order)))
+                col.values[i] = v
 
     def finish(self) -> "ArtifactColumns":
         for col in self._columns.values():

@@ -170,13 +170,9 @@ class Ledger:
         """Fill ``verdicts`` (a ``records.Verdicts`` over the contents its ``source`` reads,
         ``values_source``) with the stage's stored verdicts of those contents, in one query; the
         values stay in the ledger. Memory: columns, no record per file and stage."""
-        index, put = verdicts.index, verdicts.put
-        for sha, kept, reason, detail, thr in self.db.execute(
-                "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
-                verdicts.source.key):
-            i = index.get(sha)
-            if i is not None:
-                put(i, bool(kept), reason, detail, thr)
+        verdicts.fill(self.db.execute(
+            "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
+            verdicts.source.key))
         return verdicts
 
     def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
@@ -234,20 +230,26 @@ class Ledger:
         index = dict(zip(order, range(len(order))))
         cols = ArtifactColumns(order, {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer},
                                StoredArray)
+        # speed: rows are handed over a chunk at a time per name (arrays decoded from their
+        # joined bytes, scalar objects parsed as one JSON array); a chunk bounds what is held
+        pending: dict[str, tuple[list, list]] = {}  # name -> (row numbers, stored rows)
+        chunk = ARTIFACT_CHUNK
         for sha, name, dtype, shape, data in self._artifact_rows(stage, fingerprint, defer):
             i = index.get(sha)
-            if i is None:
+            if i is None or (dtype is None and name == EMPTY):
                 continue
-            if dtype is not None:
-                if name in defer:
-                    cols.put_deferred(i, name, dtype, shape)
-                else:
-                    cols.put_array(i, name, decode_array(dtype, shape, data))
-            elif name == SCALARS:
-                for k, v in json.loads(data).items():
-                    cols.put_scalar(i, k, v)
-            elif name != EMPTY:
-                cols.put_scalar(i, name, json.loads(data))  # a scalar on its own row (earlier versions)
+            at_rows = pending.get(name)
+            if at_rows is None:
+                at_rows = pending[name] = ([], [])
+            at, rows = at_rows
+            at.append(i)
+            rows.append((dtype, shape, data))
+            if len(at) >= chunk:
+                _put_columns(cols, name, at, rows, defer)
+                at.clear()
+                rows.clear()
+        for name, (at, rows) in pending.items():
+            _put_columns(cols, name, at, rows, defer)
         return cols.finish()
 
     def _artifact_rows(self, stage: str, fingerprint: str, defer: tuple[str, ...]) -> Iterator[tuple]:
@@ -513,6 +515,26 @@ SEQUENTIAL = 16
 
 #: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).
 FETCH_CHUNK = 500
+
+
+#: Stored artifact rows of one name handed to the columns at a time (``artifact_columns``).
+ARTIFACT_CHUNK = 4096
+
+
+def _put_columns(cols: Any, name: str, at: list[int], rows: list[tuple], defer: tuple[str, ...]) -> None:
+    """One chunk of stored rows (dtype, shape, data) of the artifact ``name`` into ``cols``,
+    row ``at[k]`` for ``rows[k]``."""
+    if not at:
+        return
+    if name in defer:
+        cols.put_deferred_many(name, at, [(dtype, shape) for dtype, shape, _ in rows])
+    elif rows[0][0] is not None:  # arrays (a name is stored as arrays or as scalars)
+        cols.put_arrays(name, at, rows)
+    elif name == SCALARS:
+        cols.put_scalar_objects(at, json.loads("[" + ",".join(data for _, _, data in rows) + "]"))
+    else:  # a scalar on its own row (earlier versions)
+        for i, (_, _, data) in zip(at, rows):
+            cols.put_scalar(i, name, json.loads(data))
 
 
 class StoredArray:

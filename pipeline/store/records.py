@@ -17,7 +17,7 @@ from __future__ import annotations
 import json
 import sys
 from array import array
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from typing import Any, Iterator, Protocol
 
 from .codec import canonical_json, thresholds_from_json
@@ -358,6 +358,24 @@ class Verdicts:
             if len(self._triples) < SHARED_DETAILS:
                 self._triples[key] = codes
         self.reason[i], self.detail[i], self.thresholds[i] = codes
+
+    def fill(self, rows: Iterable[tuple[str, int, str | None, str, str]]) -> None:
+        """``put`` for every stored row (sha256, kept, reason, detail, thresholds text) whose
+        content is one of the run's (speed: a rerun fills every stage's columns from the ledger;
+        one loop, no call per row)."""
+        index, triples, put = self.index, self._triples, self.put
+        state, reason_col, detail_col, thr_col = self.state, self.reason, self.detail, self.thresholds
+        kept_b, dropped_b = self.KEPT, self.DROPPED
+        for sha, kept, reason, detail, thr in rows:
+            i = index.get(sha)
+            if i is None:
+                continue
+            codes = triples.get((reason, detail, thr))
+            if codes is None:  # a triple not seen yet (or past the shared ones): the general way
+                put(i, bool(kept), reason, detail, thr)
+                continue
+            state[i] = kept_b if kept else dropped_b
+            reason_col[i], detail_col[i], thr_col[i] = codes
 
     def put_stored(self, i: int, stored: tuple[int, str | None, str, str, str]) -> None:
         """Record a worker's result in stored form (``codec.stored_result``)."""
