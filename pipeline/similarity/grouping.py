@@ -250,6 +250,7 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
     from .links import verify_codes
+    from .overlap_sketch import sketched_codes
 
     if len(keys) < 2:
         return []
@@ -266,6 +267,15 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
     else:
         sizes = np.asarray(sizes, dtype=np.float64)
+    live_keys = [keys[x] for x in live.tolist()]  # codes index the live rows
+    if shingles is not None:
+        # exact bounds from one bitmap per set first: at a low threshold most candidates share
+        # a little material and never reach it, and the estimates below cannot tell them
+        # (overlap_sketch; DEVELOPERS.md, Bench notes). It drops no pair at the threshold, so
+        # the links are those of the estimates and the exact comparison alone.
+        codes = sketched_codes(live_keys, codes, shingles, threshold, read=read)
+        if not len(codes):
+            return []
     sel = np.empty(len(codes), dtype=bool)
     est = np.empty(len(codes), dtype=np.float64) if shingles is None else None
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
@@ -282,7 +292,7 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         codes = codes[sel]  # memory: millions of candidates on a large corpus
         est = None if est is None else est[sel]
     del sel
-    keys = [keys[x] for x in live.tolist()]  # codes index the live rows
+    keys = live_keys
     if shingles is None:
         # memory: only the linked pairs become Python objects
         return [(keys[a], keys[b], float(v)) for a, b, v in
