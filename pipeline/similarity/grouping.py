@@ -175,7 +175,7 @@ def lsh_rows(threshold: float, num_perm: int, recall: float = 0.99) -> int:
     return best
 
 
-def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
+def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None, *, shifted: bool = False
                ) -> tuple["np.ndarray", "np.ndarray"]:
     """``(codes, live)``: the rows with a non-empty signature (``live``, indices into ``sig``)
     and the sorted unique codes ``i * len(live) + j`` (``i < j`` index ``live``) of those
@@ -184,7 +184,7 @@ def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
     (memory: the split's candidates grow with the square of the corpus). One band at a time
     (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the number of distinct
     pairs instead of rows x bands x run length (a 100,000-file run held several GB in the
-    all-bands-at-once form)."""
+    all-bands-at-once form). ``shifted``: each band taken again one row over (``banded_pair_codes``)."""
     import numpy as np
 
     from .minhash import EMPTY_VALUE
@@ -202,7 +202,7 @@ def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
     if err:
         raise ValueError(err)
     # memory: no copy of the signature matrix when every row is live (the usual case)
-    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new), live
+    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new, shifted=shifted), live
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
@@ -257,7 +257,12 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     sig = np.asarray(matrix(), dtype=np.uint32)
     num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
-    codes, live = band_codes(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)
+    rows = lsh_rows(threshold, num_perm, recall)
+    # recall: each half of a signature (the leads', the whole sets') holds half of the bands, so
+    # a pair alike in one half only is found with 1 - (1 - s^r)^(b/2); the same values banded
+    # again one row over give it as many bands more (README, "The split's search against every
+    # pair"); the exact bounds below keep the extra candidates cheap
+    codes, live = band_codes(sig, num_perm // rows, wanted, shifted=rows > 1)
     if not len(codes):
         return []
     m = len(live)

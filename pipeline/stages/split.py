@@ -135,7 +135,7 @@ class Split(Stage):
 
     name = "split"
     kind = "corpus"
-    version = 2
+    version = 3
     doc = "Leakage-free, rerun-stable split of the kept files into parts."
     #: shingle sets are read for the members in candidate pairs only
     deferred_artifacts = ("shingles",)
@@ -366,7 +366,7 @@ class Split(Stage):
         threshold = self.opts["group_threshold"]
         first = next(iter(arts.values()))["signature"]
         signer = options_fingerprint("signatures", Dedup.version, {"by": signed, **signature_options()})
-        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{signer}"
+        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:shifted:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
         here = set(arts)
