@@ -194,14 +194,16 @@ def test_near_links_finds_every_pair_above_threshold_and_no_other():
 
 @settings(max_examples=60, deadline=None)
 @given(st.integers(2, 60), st.sampled_from([4, 8, 16]), st.integers(0, 2**32 - 1),
-       st.sampled_from(["all", "a fifth", "one"]))
-def test_band_codes_equal_brute_force(n, bands, seed, marked):
+       st.sampled_from(["all", "a fifth", "one"]), st.booleans())
+def test_band_codes_equal_brute_force(n, bands, seed, marked, shifted):
     """The banded candidate search equals the definition of LSH banding (Mining of Massive
     Datasets, ch. 3: a pair is a candidate when any band of its two signatures is equal),
     checked pair by pair on signatures with small value ranges (many shared bands, runs longer
     than two, some empty signatures); with ``only``, the pairs touching a marked row (a fifth
     of the rows takes the path that sorts each band, one row among 16 or more the path that
-    searches the new rows' keys). The per-file LSHIndex must give the same pairs."""
+    searches the new rows' keys). The per-file LSHIndex must give the same pairs. With
+    ``shifted`` (the split's search), the bands taken again one row over count too: rows
+    ``b * r + 1 .. b * r + r``, the last band wrapping round to row 0."""
     from pipeline.similarity.lsh import LSHIndex
     from pipeline.similarity.minhash import EMPTY_VALUE
 
@@ -222,12 +224,14 @@ def test_band_codes_equal_brute_force(n, bands, seed, marked):
                 continue
             if only is not None and not (only[i] or only[j]):
                 continue
-            if any((sig[i, b * rows:(b + 1) * rows] == sig[j, b * rows:(b + 1) * rows]).all()
-                   for b in range(bands)):
+            starts = [b * rows for b in range(bands)] + ([b * rows + 1 for b in range(bands)] if shifted else [])
+            if any(all(sig[i, (s + k) % 32] == sig[j, (s + k) % 32] for k in range(rows)) for s in starts):
                 want.append((i, j))
-    codes, live = band_codes(sig, bands, only)
+    codes, live = band_codes(sig, bands, only, shifted=shifted)
     got = zip(live[codes // len(live)].tolist(), live[codes % len(live)].tolist()) if len(codes) else []
     assert list(got) == want
+    if shifted:
+        return  # dedup's index bands without the shifted copy
     keys = [f"{i:03d}" for i in range(n)]
     index = LSHIndex(32, bands)
     for k, row in zip(keys, sig):

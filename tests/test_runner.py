@@ -568,6 +568,25 @@ def test_a_new_dedup_corpus_step_decodes_nothing_and_equals_a_fresh_run(tmp_path
     assert _run(out).computed > 0
 
 
+def test_a_new_split_corpus_step_without_dedup_re_signs_no_file(tmp_path, monkeypatch):
+    """Without dedup the split signs files itself; those signatures are keyed by the split's
+    ``signature_version``, not its ``version``: a new corpus step decodes nothing and writes
+    what a fresh run writes; a new signature version re-signs the files."""
+    from pipeline.stages.split import Split
+    raw = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text())
+    raw["stages"] = [e for e in raw["stages"] if "dedup" not in e]
+    cfg_path = tmp_path / "cfg.yaml"
+    cfg_path.write_text(yaml.safe_dump(raw))
+    out, fresh = tmp_path / "out", tmp_path / "fresh"
+    assert _run(out, config=cfg_path).computed > 0
+    monkeypatch.setattr(Split, "version", Split.version + 1)
+    assert _run(out, config=cfg_path).computed == 0
+    _run(fresh, config=cfg_path)
+    assert _manifest(out) == _manifest(fresh)
+    monkeypatch.setattr(Split, "signature_version", Split.signature_version + 1)
+    assert _run(out, config=cfg_path).computed > 0
+
+
 def test_explain_json_is_the_same_trail_as_data(demo_out, capsys):
     row = next(r for r in _manifest(demo_out) if r["status"] == "dropped" and r["stage"] == "dedup")
     assert main(["explain", row["source"], "--output", str(demo_out), "--json"]) == 0

@@ -175,7 +175,7 @@ def lsh_rows(threshold: float, num_perm: int, recall: float = 0.99) -> int:
     return best
 
 
-def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
+def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None, *, shifted: bool = False
                ) -> tuple["np.ndarray", "np.ndarray"]:
     """``(codes, live)``: the rows with a non-empty signature (``live``, indices into ``sig``)
     and the sorted unique codes ``i * len(live) + j`` (``i < j`` index ``live``) of those
@@ -184,7 +184,7 @@ def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
     (memory: the split's candidates grow with the square of the corpus). One band at a time
     (``pipeline.similarity.lsh.banded_pair_codes``): memory stays near the number of distinct
     pairs instead of rows x bands x run length (a 100,000-file run held several GB in the
-    all-bands-at-once form)."""
+    all-bands-at-once form). ``shifted``: each band taken again one row over (``banded_pair_codes``)."""
     import numpy as np
 
     from .minhash import EMPTY_VALUE
@@ -202,7 +202,7 @@ def band_codes(sig: "np.ndarray", bands: int, only: "np.ndarray | None" = None
     if err:
         raise ValueError(err)
     # memory: no copy of the signature matrix when every row is live (the usual case)
-    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new), live
+    return banded_pair_codes(sig if len(live) == n else sig[live], bands, is_new, shifted=shifted), live
 
 
 #: Probability that the LSH banding proposes a pair lying exactly at the grouping threshold.
@@ -250,13 +250,19 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
     from .links import verify_codes
+    from .overlap_sketch import sketched_codes
 
     if len(keys) < 2:
         return []
     sig = np.asarray(matrix(), dtype=np.uint32)
     num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
-    codes, live = band_codes(sig, num_perm // lsh_rows(threshold, num_perm, recall), wanted)
+    rows = lsh_rows(threshold, num_perm, recall)
+    # recall: each half of a signature (the leads', the whole sets') holds half of the bands, so
+    # a pair alike in one half only is found with 1 - (1 - s^r)^(b/2); the same values banded
+    # again one row over give it as many bands more (README, "The split's search against every
+    # pair"); the exact bounds below keep the extra candidates cheap
+    codes, live = band_codes(sig, num_perm // rows, wanted, shifted=rows > 1)
     if not len(codes):
         return []
     m = len(live)
@@ -266,6 +272,15 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         sizes = np.array([len(shingles[k]) for k in keys], dtype=np.float64)
     else:
         sizes = np.asarray(sizes, dtype=np.float64)
+    live_keys = [keys[x] for x in live.tolist()]  # codes index the live rows
+    if shingles is not None:
+        # exact bounds from one bitmap per set first: at a low threshold most candidates share
+        # a little material and never reach it, and the estimates below cannot tell them
+        # (overlap_sketch; DEVELOPERS.md, Bench notes). It drops no pair at the threshold, so
+        # the links are those of the estimates and the exact comparison alone.
+        codes = sketched_codes(live_keys, codes, shingles, threshold, read=read)
+        if not len(codes):
+            return []
     sel = np.empty(len(codes), dtype=bool)
     est = np.empty(len(codes), dtype=np.float64) if shingles is None else None
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
@@ -282,7 +297,7 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         codes = codes[sel]  # memory: millions of candidates on a large corpus
         est = None if est is None else est[sel]
     del sel
-    keys = [keys[x] for x in live.tolist()]  # codes index the live rows
+    keys = live_keys
     if shingles is None:
         # memory: only the linked pairs become Python objects
         return [(keys[a], keys[b], float(v)) for a, b, v in

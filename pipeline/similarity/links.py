@@ -109,13 +109,7 @@ def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
     n = len(keys)
     if not len(codes):
         return
-    used = np.zeros(n, dtype=bool)
-    for lo in range(0, len(codes), _CODE_CHUNK):  # memory: no index arrays over all pairs
-        c = codes[lo:lo + _CODE_CHUNK]
-        used[c // n] = True
-        used[c % n] = True
-    involved = np.flatnonzero(used)
-    del used
+    involved = rows_in_codes(codes, n)
     sizes = np.array([len(shingles[keys[p]]) for p in involved.tolist()], dtype=np.int64)
     half = max(1, int(VERIFY_SHINGLES if budget is None else budget) // 2)
     start = (np.cumsum(sizes) - sizes) // half  # a block: the keys whose first shingle falls in one half budget
@@ -152,6 +146,16 @@ def code_similarities(keys: list[str], codes: np.ndarray, shingles: Any, *,
                                                 min_size_ratio=min_size_ratio)
             del held, leads  # memory: an inner block is let go before the next is read
         del outer, i, j, hi
+
+
+def rows_in_codes(codes: np.ndarray, n: int) -> np.ndarray:
+    """The sorted rows ``i`` and ``j`` of the codes ``i * n + j`` (the keys in some pair)."""
+    used = np.zeros(n, dtype=bool)
+    for lo in range(0, len(codes), _CODE_CHUNK):  # memory: no index arrays over all pairs
+        c = codes[lo:lo + _CODE_CHUNK]
+        used[c // n] = True
+        used[c % n] = True
+    return np.flatnonzero(used)
 
 
 def _read_sets(keys: list[str], which: np.ndarray, shingles: Any, generic: np.ndarray | None,

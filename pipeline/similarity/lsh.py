@@ -229,7 +229,7 @@ def pair_estimates(sig: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
 
 
 def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
-                      compiled: bool = True) -> np.ndarray:
+                      compiled: bool = True, shifted: bool = False) -> np.ndarray:
     """Sorted unique codes ``i * n + j`` (``i < j``) of the rows of ``sig`` sharing a band,
     keeping pairs with at least one ``is_new`` row. One band's keys at a time, merged every
     ``_MERGE_BANDS`` bands, so a pair found in many bands is held about once (the whole
@@ -238,19 +238,29 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
     each block of bands in one call (the same codes: integer hashing and key equality);
     ``compiled=False`` runs the numpy formulation, the specification. Speed: a rerun's dedup
     and split each band every stored signature, where the kernel is faster; with many new
-    rows numpy's sort is (DEVELOPERS.md, Bench notes)."""
+    rows numpy's sort is (DEVELOPERS.md, Bench notes). With ``shifted``, every band is taken a
+    second time one row over (rows ``1..r``, ``r+1..2r``, ..., the last wrapping round to row
+    0): as many bands again over the same values, read from the matrix itself (the compiled
+    path bands a rolled copy)."""
     few_new = int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
     kernel = compiled_kernel("band_pair_codes") if compiled and few_new else None
     if kernel is not None:
         sig = np.ascontiguousarray(sig, dtype=np.uint32)
         new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)
     codes = np.zeros(0, dtype=np.int64)
-    for lo in range(0, bands, _MERGE_BANDS):
+    rows = sig.shape[1] // bands
+    blocks = [(shift, lo) for shift in ((0, 1) if shifted else (0,)) for lo in range(0, bands, _MERGE_BANDS)]
+    for shift, lo in blocks:
         hi = min(bands, lo + _MERGE_BANDS)
         if kernel is not None:
-            found = [np.frombuffer(kernel(sig, bands, lo, hi, new_bytes), dtype=np.int64)]
-        else:
+            src = sig if not shift else np.ascontiguousarray(np.roll(sig, -1, axis=1))
+            found = [np.frombuffer(kernel(src, bands, lo, hi, new_bytes), dtype=np.int64)]
+            del src
+        elif not shift:
             found = [_band_pairs(band_key(sig, bands, band), is_new) for band in range(lo, hi)]
+        else:  # the band's rows one over: a copy of r columns, not of the matrix
+            found = [_band_pairs(band_key(sig[:, (band * rows + 1 + np.arange(rows)) % sig.shape[1]], 1, 0), is_new)
+                     for band in range(lo, hi)]
         merged = np.concatenate([codes, *found])
         del codes, found  # memory: the split's candidates grow with the square of the corpus
         merged.sort()  # in place: no sorted copy beside the merged codes

@@ -168,7 +168,14 @@ def _pair_measure(sets: list[np.ndarray], i: np.ndarray, j: np.ndarray, min_size
     else:
         counts = np.array([overlap_counts(sets[x], sets[y], cap) for x, y in zip(i.tolist(), j.tolist())],
                           dtype=np.int64).reshape(-1, 3)
-    inter, la, lb = counts[:, 0], counts[:, 1], counts[:, 2]
+    return measure_of_counts(counts[:, 0], counts[:, 1], counts[:, 2], min_size_ratio, min_contained)
+
+
+def measure_of_counts(inter: np.ndarray, la: np.ndarray, lb: np.ndarray, min_size_ratio: float = MIN_SIZE_RATIO,
+                      min_contained: int = 0) -> np.ndarray:
+    """``_measure`` (float64) from the counts: intersections and the two set sizes (int64
+    arrays). Non-decreasing in ``inter`` for fixed sizes, so a bound on the intersection bounds
+    the value (``overlap_sketch``)."""
     denom = la + lb - inter
     with np.errstate(divide="ignore", invalid="ignore"):
         sim = np.where(denom > 0, inter / np.maximum(denom, 1), 0.0)

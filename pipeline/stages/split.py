@@ -135,7 +135,11 @@ class Split(Stage):
 
     name = "split"
     kind = "corpus"
-    version = 2
+    version = 3
+    #: The version of what ``prepare`` computes (the split's own signatures, when no dedup stage
+    #: lends them): it keys those artifacts, so a change of the corpus step alone (``version``)
+    #: re-signs no file. Bump it when ``prepare`` or what it calls changes.
+    signature_version = 2
     doc = "Leakage-free, rerun-stable split of the kept files into parts."
     #: shingle sets are read for the members in candidate pairs only
     deferred_artifacts = ("shingles",)
@@ -174,16 +178,17 @@ class Split(Stage):
 
     @property
     def fingerprint(self) -> str:
-        """The options' fingerprint, plus what the split signs files with (dedup's signature
-        version and default signature settings): a change there re-signs the files."""
+        """The options' fingerprint, plus what the split signs files with (dedup's and its own
+        signature versions and default signature settings): a change there re-signs the files."""
         return options_fingerprint(self.name, self.version, {
-            **self.opts, "signatures": {"dedup_version": Dedup.signature_version, **signature_options()}})
+            **self.opts, "signatures": {"dedup_version": Dedup.signature_version,
+                                        "own_version": self.signature_version, **signature_options()}})
 
     @property
     def artifact_fingerprint(self) -> str:
         """The split's own signatures depend only on what it signs with, not on its options:
         new ratios or a new seed re-sign no file."""
-        return options_fingerprint(f"{self.name}.prepare", self.version,
+        return options_fingerprint(f"{self.name}.prepare", self.signature_version,
                                    {"dedup_version": Dedup.signature_version, **signature_options()})
 
     @property
@@ -366,7 +371,7 @@ class Split(Stage):
         threshold = self.opts["group_threshold"]
         first = next(iter(arts.values()))["signature"]
         signer = options_fingerprint("signatures", Dedup.signature_version, {"by": signed, **signature_options()})
-        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{signer}"
+        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:shifted:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
         here = set(arts)
