@@ -93,7 +93,7 @@ def test_near_links_at_the_split_threshold_equal_brute_force_and_the_search_with
     # threshold), here with a bitmap of 128 bits too (many collisions). The sets: tunes with
     # variants (a head cut off), melody-only excerpts (containment), pairs sharing exactly a
     # fifth of the smaller set (containment 0.2: just at the threshold) and unrelated sets.
-    # ``chunk``: sets sketched at once; 7 spreads the 68 sets over ten chunks, the last partial.
+    # ``chunk``: sets sketched at once; 7 spreads the sets in candidate pairs over several chunks.
     rng = np.random.default_rng(11)
     sets = {}
     for c in range(12):

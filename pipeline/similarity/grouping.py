@@ -244,9 +244,9 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
     of one matrix (row ``k`` for ``keys[k]``; it may be called twice and must give the same
     matrix each time). Memory: no array object per file is needed, and the matrix, made here,
-    is let go while the sets are sketched and before the candidate pairs are verified. ``read`` turns
-    held shingle sets that are not arrays into arrays (``links.verify_codes``); ``sizes``, the
-    sets' lengths in key order, is taken from ``shingles`` when not given."""
+    is let go while the sets are sketched and before the candidate pairs are verified.
+    ``read`` turns held shingle sets that are not arrays into arrays (``links.verify_codes``);
+    ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
