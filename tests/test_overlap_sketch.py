@@ -85,14 +85,15 @@ def test_sets_at_the_cap_are_kept():
     assert may_reach(sketch_sets([big, other]), np.array([0]), np.array([1]), 0.9).tolist() == [True]
 
 
-@pytest.mark.parametrize("bits", [128, 4096])
-def test_near_links_at_the_split_threshold_equal_brute_force_and_the_search_without_the_filter(bits):
+@pytest.mark.parametrize("bits, chunk", [(128, 7), (4096, 7), (4096, 256)])
+def test_near_links_at_the_split_threshold_equal_brute_force_and_the_search_without_the_filter(bits, chunk):
     # Reference: every pair compared with Python sets (_python_set_similarity). The search's
     # links at 0.2 are pairs of the brute force with their exact values; every pair found by
     # the search without the filter is found with it (the filter only removes pairs below the
     # threshold), here with a bitmap of 128 bits too (many collisions). The sets: tunes with
     # variants (a head cut off), melody-only excerpts (containment), pairs sharing exactly a
     # fifth of the smaller set (containment 0.2: just at the threshold) and unrelated sets.
+    # ``chunk``: sets sketched at once; 7 spreads the sets in candidate pairs over several chunks.
     rng = np.random.default_rng(11)
     sets = {}
     for c in range(12):
@@ -115,6 +116,7 @@ def test_near_links_at_the_split_threshold_equal_brute_force_and_the_search_with
         unfiltered = near_links(sigs, 0.2, sets)
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(overlap_sketch, "SKETCH_BITS", bits)
+        mp.setattr(overlap_sketch, "_READ_CHUNK", chunk)
         got = near_links(sigs, 0.2, sets)
     assert got == unfiltered
     assert all(brute.get((a, b)) == pytest.approx(v) for a, b, v in got)

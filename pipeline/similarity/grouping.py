@@ -242,10 +242,11 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
                   read: "Callable[[list], list] | None" = None, sizes: "np.ndarray | None" = None
                   ) -> list[tuple[str, str, float]]:
     """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
-    of one matrix (row ``k`` for ``keys[k]``). Memory: no array object per file is needed, and
-    the matrix, made here, is let go before the candidate pairs are verified. ``read`` turns
-    held shingle sets that are not arrays into arrays (``links.verify_codes``); ``sizes``, the
-    sets' lengths in key order, is taken from ``shingles`` when not given."""
+    of one matrix (row ``k`` for ``keys[k]``; it may be called twice and must give the same
+    matrix each time). Memory: no array object per file is needed, and the matrix, made here,
+    is let go while the sets are sketched and before the candidate pairs are verified.
+    ``read`` turns held shingle sets that are not arrays into arrays (``links.verify_codes``);
+    ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
@@ -278,9 +279,13 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         # a little material and never reach it, and the estimates below cannot tell them
         # (overlap_sketch; DEVELOPERS.md, Bench notes). It drops no pair at the threshold, so
         # the links are those of the estimates and the exact comparison alone.
+        # memory: the signatures are let go while the sketches are made (together they were
+        # the split's peak) and gathered again for the estimates
+        del sig
         codes = sketched_codes(live_keys, codes, shingles, threshold, read=read)
         if not len(codes):
             return []
+        sig = np.asarray(matrix(), dtype=np.uint32)
     sel = np.empty(len(codes), dtype=bool)
     est = np.empty(len(codes), dtype=np.float64) if shingles is None else None
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time

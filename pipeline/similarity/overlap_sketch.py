@@ -28,7 +28,7 @@ SKETCH_BITS = 4096
 
 
 #: Sets read and hashed at once (memory: the sets of one chunk only).
-_READ_CHUNK = 1024
+_READ_CHUNK = 256
 
 
 @dataclass

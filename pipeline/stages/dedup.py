@@ -280,6 +280,15 @@ class Dedup(Stage):
         min_sh = int(o["min_shingles"])
         size_of = dict(zip(rep_ids, lengths_of([arts[k] for k in rep_ids], "shingles").tolist()))
         indexed = [k for k in rep_ids if size_of[k] >= min_sh]
+        # the generic shingles are counted once and kept while the links are reused (a rerun
+        # must not read every file's set; its new pairs are verified as the old ones were);
+        # memory: counted before the index holds its copy of the signatures (the count's
+        # arrays are dedup's largest transient)
+        if reusable and "generic" in prev:
+            self._generic = np.array(prev["generic"], dtype=np.uint64)
+        else:
+            self._generic = self._generic_shingles(indexed, arts)
+        state.save("generic", self._generic.tolist())
         rows = [arts[k] for k in indexed]
         try:  # speed, memory: one array taken from the signature column, no view per member
             sigs = np.asarray(stacked(rows, "signature")(), dtype=np.uint32) if rows else None
@@ -292,13 +301,6 @@ class Dedup(Stage):
                 index.add(k, r["signature"])  # names the member whose signature does not fit
         del sigs, rows
         new_reps = {k for k in rep_ids if k not in old}
-        # the generic shingles are counted once and kept while the links are reused (a rerun
-        # must not read every file's set; its new pairs are verified as the old ones were)
-        if reusable and "generic" in prev:
-            self._generic = np.array(prev["generic"], dtype=np.uint64)
-        else:
-            self._generic = self._generic_shingles(indexed, arts)
-        state.save("generic", self._generic.tolist())
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
