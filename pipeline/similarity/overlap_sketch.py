@@ -25,7 +25,7 @@ from ..analysis.shingles import LEAD_LIMIT, ShingleSpec
 from .sets import LEAD_CONTAINED, MIN_LEAD, MIN_SIZE_RATIO, drop_generic, measure_of_counts
 
 
-#: Bits of each set's bitmap: 512 bytes a file while the split searches.
+#: Bits of each set's bitmap: 512 bytes a file in some pair while the pairs are bounded.
 SKETCH_BITS = 4096
 
 
