@@ -10,7 +10,9 @@ shingles lost to collisions within either set (``lost``: set size minus set bits
 holding ``x`` and ``y`` shingles of the two sets, at most ``min(x, y) <= 1 + min(x - 1, y - 1)``
 are common). ``set_similarity`` grows with the intersection for fixed set sizes
 (``sets.measure_of_counts``), so a pair whose bound stays below the threshold cannot reach it and
-needs no exact comparison; no pair at or above it is ever dropped.
+needs no exact comparison; no pair at or above it is ever dropped. Dedup (threshold 0.3) uses it
+too, on its sets without the generic shingles: there most plausible pairs by MinHash estimate
+lie below the threshold too, and reading their sets for the exact comparison was most of its step.
 """
 from __future__ import annotations
 
@@ -20,10 +22,10 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import LEAD_LIMIT, ShingleSpec
-from .sets import LEAD_CONTAINED, MIN_LEAD, MIN_SIZE_RATIO, measure_of_counts
+from .sets import LEAD_CONTAINED, MIN_LEAD, MIN_SIZE_RATIO, drop_generic, measure_of_counts
 
 
-#: Bits of each set's bitmap: 512 bytes a file while the split searches.
+#: Bits of each set's bitmap: 512 bytes a file in some pair while the pairs are bounded.
 SKETCH_BITS = 4096
 
 
@@ -87,11 +89,13 @@ def may_reach(sk: Sketches, i: np.ndarray, j: np.ndarray, threshold: float, *,
 
 
 def sketched_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,
-                   read: Callable[[list], list] | None = None, bits: int | None = None) -> np.ndarray:
+                   read: Callable[[list], list] | None = None, bits: int | None = None,
+                   generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO) -> np.ndarray:
     """The sorted codes ``i * len(keys) + j`` (candidate pairs) that ``may_reach`` keeps: every
     set in some pair is read once (``shingles[key]``, through ``read`` a chunk at a time, as in
     ``links.verify_codes``), then the pairs are bounded a chunk at a time. ``bits``: default
-    ``SKETCH_BITS``."""
+    ``SKETCH_BITS``. ``generic`` and ``min_size_ratio`` as ``links.verify_codes`` is given them
+    (the sets are sketched without the generic shingles, as they are compared)."""
     from .links import rows_in_codes
     from .lsh import PAIR_CHUNK
 
@@ -104,7 +108,8 @@ def sketched_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold:
     sk = Sketches(np.zeros((m, bits // 64), dtype=np.uint64), *(np.zeros(m, dtype=np.int64) for _ in range(4)))
     for lo in range(0, m, _READ_CHUNK):  # memory: one chunk's sets at a time
         held = [shingles[keys[p]] for p in involved[lo:lo + _READ_CHUNK].tolist()]
-        part = sketch_sets([np.asarray(x, dtype=np.uint64) for x in (held if read is None else read(held))], bits)
+        part = sketch_sets([drop_generic(np.asarray(x, dtype=np.uint64), generic)
+                            for x in (held if read is None else read(held))], bits)
         del held
         for f in ("bits", "size", "lead", "lost_lead", "lost_rest"):
             getattr(sk, f)[lo:lo + _READ_CHUNK] = getattr(part, f)
@@ -113,5 +118,5 @@ def sketched_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold:
     keep = np.empty(len(codes), dtype=bool)
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
         c = codes[lo:lo + PAIR_CHUNK]
-        keep[lo:lo + len(c)] = may_reach(sk, at[c // n], at[c % n], threshold)
+        keep[lo:lo + len(c)] = may_reach(sk, at[c // n], at[c % n], threshold, min_size_ratio=min_size_ratio)
     return codes[keep]

@@ -37,6 +37,7 @@ from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, gen
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
+from ..similarity.overlap_sketch import sketched_codes
 from ..store.columns import column_of, lengths_of, stacked
 from ..store.columns import present as holding  # run_corpus names its member set `present`
 from ..store.ledger import load_arrays
@@ -314,6 +315,12 @@ class Dedup(Stage):
         n_plausible = len(codes)
         index_ids = index.ids
         del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
+        # speed: exact bounds from one bitmap per set (generic shingles left out, as compared)
+        # drop the pairs that cannot reach the threshold before the exact comparison, which reads
+        # every set several times (overlap_sketch; DEVELOPERS.md, Bench notes): the same links
+        codes = sketched_codes(index_ids, codes, _Shingles(arts), threshold, read=load_arrays,
+                               generic=self._generic, min_size_ratio=float(o["min_size_ratio"]))
+        n_sketched = len(codes)
         verified = verify_codes(index_ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
                                 read=load_arrays)
@@ -325,8 +332,8 @@ class Dedup(Stage):
         state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
                      f"({'against stored signatures' if reusable else 'all against all'}); "
                      f"{n_candidates} LSH candidate pairs, {n_plausible} plausible by their MinHash "
-                     f"estimate, {len(verified)} verified links; {len(self._generic)} generic "
-                     "shingles left out")
+                     f"estimate, {n_sketched} by their exact bounds, {len(verified)} verified links; "
+                     f"{len(self._generic)} generic shingles left out")
 
         # 3. clusters and their kept members (a pair of members other than the one a link was
         # measured on, as a member that is not its content's representative, is compared itself)
