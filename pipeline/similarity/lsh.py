@@ -249,13 +249,14 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
         new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)
     codes = np.zeros(0, dtype=np.int64)
     rows = sig.shape[1] // bands
+    rolled = None  # the compiled path's copy one row over, made once for the shifted bands
     blocks = [(shift, lo) for shift in ((0, 1) if shifted else (0,)) for lo in range(0, bands, _MERGE_BANDS)]
     for shift, lo in blocks:
         hi = min(bands, lo + _MERGE_BANDS)
         if kernel is not None:
-            src = sig if not shift else np.ascontiguousarray(np.roll(sig, -1, axis=1))
-            found = [np.frombuffer(kernel(src, bands, lo, hi, new_bytes), dtype=np.int64)]
-            del src
+            if shift and rolled is None:
+                rolled = np.ascontiguousarray(np.roll(sig, -1, axis=1))
+            found = [np.frombuffer(kernel(rolled if shift else sig, bands, lo, hi, new_bytes), dtype=np.int64)]
         elif not shift:
             found = [_band_pairs(band_key(sig, bands, band), is_new) for band in range(lo, hi)]
         else:  # the band's rows one over: a copy of r columns, not of the matrix
