@@ -448,11 +448,11 @@ class _NearLinks:
 
     __slots__ = ("content_rep", "_adj", "own")
 
-    def __init__(self, content_rep: dict[str, str],
-                 own: Callable[[str, str], float | None] | None = None):
+    def __init__(self, content_rep: dict[str, str]):
         self.content_rep = content_rep
-        #: the own similarity of two members, None below the threshold (``_OwnPairs``)
-        self.own = own
+        #: the own similarity of two members, None below the threshold (``_OwnPairs``; set once
+        #: the generic shingles it leaves out are known)
+        self.own: Callable[[str, str], float | None] | None = None
         # memory: entries only for contents with a link (most files have none)
         self._adj: defaultdict[str, dict[str, tuple[float, str, str]]] = defaultdict(dict)
 

@@ -371,7 +371,7 @@ class Split(Stage):
         threshold = self.opts["group_threshold"]
         first = next(iter(arts.values()))["signature"]
         signer = options_fingerprint("signatures", Dedup.signature_version, {"by": signed, **signature_options()})
-        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:shifted:{signer}"
+        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{self.version}:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
         here = set(arts)
