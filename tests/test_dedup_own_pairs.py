@@ -10,7 +10,7 @@ import hashlib
 import numpy as np
 
 from pipeline.similarity.minhash import minhash
-from pipeline.stages.base import Member
+from pipeline.stages.base import CorpusState, Member
 from pipeline.stages.dedup import Dedup
 
 from test_dedup import TPB, compose, family, jaccard_or_containment, member, run, variants
@@ -133,3 +133,103 @@ def test_a_member_with_too_few_shingles_is_not_near_dropped_on_its_mates_pair():
     assert _own(m, k, state) == 1.0  # containment, were it counted
     assert res[k.id].kept and res[m.id].kept
     assert (res[r.id].reason, res[r.id].values["duplicate_of"]) == ("exact_duplicate", m.id)
+
+
+# --- Every member of a content is searched where its shingles differ (dedup version 5) -----------
+def _layout_members():
+    """The piece of ``_layouts`` as members: ``plain`` and ``alternate`` (the melody's odd bars
+    on a track of their own: one note content, other voices, so other shingles), ``k`` (an
+    edited copy of the plain layout with a drum track: the most notes), ``k_alt`` (the same
+    edited copy in the alternate layout, with 150 drum hits: another note content, fewer notes
+    than ``k``). The names are chosen (by their sha256, the members' ids) so that the alternate
+    layout is its content's representative (the first by id), which dedup version 4 alone
+    searched against the corpus."""
+    rows, other, k = _layouts()
+    edited, _ = variants(rows, seed=4)["edited"]
+    alt_of = lambda rs: [(s, e, p, ch, pr, 4 if ch == 0 and (s // BAR) % 2 else tr, v)
+                         for s, e, p, ch, pr, tr, v in rs]
+    k_alt = alt_of(edited) + [(i * TPB, i * TPB + 60, 42, 9, 0, 3, 80) for i in range(150)]
+    first, second = sorted(("alt.mid", "plain.mid"), key=lambda n: hashlib.sha256(n.encode()).hexdigest())
+    stage = Dedup()
+    alt, plain = member(first, other["alternate"], stage), member(second, rows, stage)
+    assert alt.id < plain.id
+    return plain, alt, member("k.mid", k, stage), member("k-alt.mid", k_alt, stage)
+
+
+def test_a_member_whose_own_pair_reaches_a_kept_file_joins_its_cluster():
+    """The content's representative (the alternate layout) does not reach K (0.08); its mate
+    (the plain layout) does (0.72): the mate is searched too, so the three are one cluster
+    (leakage is transitive: the representative holds the mate's notes). Removal stays on own
+    pairs: K and the representative are both kept (their own pair is below the threshold), the
+    mate is the exact (content) duplicate of the kept file of its note content. Dedup version 4
+    left K a cluster of its own, which the split could place apart from the others."""
+    plain, alt, k, _ = _layout_members()
+    res, state = run([alt, plain, k])
+    assert _own(plain, k, state) >= 0.3 > _own(alt, k, state)
+    assert {x.values["cluster_size"] for x in res.values()} == {3}
+    assert res[k.id].kept and res[alt.id].kept and "keeps 2" in res[k.id].detail
+    r = res[plain.id]
+    assert (r.reason, r.values["duplicate_of"], r.values["duplicate_kind"]) == ("exact_duplicate", alt.id, "content")
+
+
+def test_a_member_is_dropped_on_the_pair_only_its_own_search_finds():
+    """R (the plain layout) reaches K (its edited copy, 0.72), M (the alternate layout, R's
+    note content) reaches K-alt (the same edited copy in M's layout) but not K; R reaches K-alt
+    only below the threshold. R is dropped as K's near duplicate; M, searched on its own, as
+    K-alt's, at its own similarity. Dedup version 4 searched only R (the representative): M
+    reached no kept file through R's links and was kept."""
+    plain, alt, k, k_alt = _layout_members()
+    # the same names with the roles swapped: the plain layout first by id (the representative)
+    rep = Member(alt.id, plain.sha256, alt.source, {}, plain.artifacts)
+    mate = Member(plain.id, alt.sha256, plain.source, {}, alt.artifacts)
+    assert rep.id < mate.id
+    res, state = run([rep, mate, k, k_alt])
+    assert res[k.id].kept and res[k_alt.id].kept
+    assert _own(k, k_alt, state) < 0.3 and _own(rep, k_alt, state) < 0.3 and _own(mate, k, state) < 0.3
+    for m, named in ((rep, k), (mate, k_alt)):
+        own = _own(m, named, state)
+        r = res[m.id]
+        assert (r.reason, r.values["duplicate_of"], r.values["duplicate_kind"]) == ("near_duplicate", named.id, "near")
+        assert own >= 0.3 and r.values["similarity"] == round(own, 4), (m.source, r.values, own)
+    # the same verdicts under any order of the input, and on a rerun that adds the
+    # representative (which becomes its content's representative then; M's links are reused)
+    for order in ([k_alt, k, mate, rep], [mate, k_alt, rep, k]):
+        again, _ = run(order)
+        assert {i: x.to_json() for i, x in again.items()} == {i: x.to_json() for i, x in res.items()}
+    _, first = run([mate, k, k_alt])
+    again, _ = run([rep, mate, k, k_alt], previous=first.current)
+    assert {i: x.to_json() for i, x in again.items()} == {i: x.to_json() for i, x in res.items()}
+
+
+def test_members_with_one_content_and_one_shingle_set_are_searched_once():
+    """Members of one note content whose shingle sets are equal (another velocity, another
+    program: the same voices) need no search of their own: only the representative is
+    searched, as before; a member in another layout is."""
+    plain, alt, k, _ = _layout_members()
+    rows, _, _ = _layouts()
+    louder = member("louder.mid", [(s, e, p, ch, (pr + 5) % 128, tr, min(127, v + 20))
+                                   for s, e, p, ch, pr, tr, v in rows], Dedup())
+    assert np.array_equal(louder.artifacts["dedup"]["shingles"], plain.artifacts["dedup"]["shingles"])
+    _, state = run([plain, louder, k])
+    assert any("2 of 2 searched files compared (2 distinct note contents + 0 " in n for n in state.notes), state.notes
+    _, state = run([plain, louder, alt, k])
+    assert any("3 of 3 searched files compared (2 distinct note contents + 1 " in n for n in state.notes), state.notes
+
+
+def test_the_split_keeps_a_content_and_the_file_its_mate_reaches_in_one_part():
+    """Dedup then split (as a run chains them: the split reads dedup's clusters): the
+    representative kept by dedup (the alternate layout) and K (kept, reached by the
+    representative's mate only) share a part under every seed, with twenty unrelated pieces
+    around them (test_dedup.compose, other families)."""
+    from pipeline.stages.split import Split
+    plain, alt, k, _ = _layout_members()
+    stage = Dedup()
+    others = [member(f"other{i}.mid", compose(family(10 + i), seed=900 + i), stage) for i in range(20)]
+    members = [alt, plain, k] + others
+    res, _ = run(members)
+    kept = [m for m in members if res[m.id].kept]
+    assert alt in kept and k in kept
+    for seed in range(6):
+        state = CorpusState(upstream={"dedup": res})
+        parts = Split({"seed": seed, "ratios": {"x": 0.5, "y": 0.5}}).run_corpus(kept, state)
+        assert parts[alt.id].values["split"] == parts[k.id].values["split"], seed

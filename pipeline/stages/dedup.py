@@ -7,8 +7,9 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
 
 1. byte-identical files (equal sha256) and files with identical note content (equal content
    hash) are linked first, with no MinHash work (``exact_duplicate``);
-2. one representative per content group goes through LSH banding; each candidate pair is
-   verified on the exact shingle sets, generic shingles (held by ``generic_share`` of the
+2. one representative per content group goes through LSH banding, with each other member
+   of a content whose shingle set differs (another track layout: ``searched_members``); each
+   candidate pair of two contents is verified on the exact shingle sets, generic shingles (held by ``generic_share`` of the
    files) left out (Jaccard, or containment for excerpts and voice subsets, of the whole sets
    or of the lead voices) and linked when the similarity reaches ``threshold``
    (``near_duplicate``);
@@ -20,9 +21,9 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
    similar to among those it links to directly (``duplicate_of``, ``similarity``), so every
    drop is justified by its own pair, never through other members (a chain A~B~C where A and
    C are unlike keeps both A and C). Members of one note content may differ in layout, so in
-   shingles: a member's near link to a kept member is the pair the link was measured on, or
-   else their own pair, compared when needed (``_OwnPairs``). Only new files are compared on
-   a rerun (stored links are reused).
+   shingles: each is searched on its own (dedup version 5), and a member's near link to a
+   kept member is a pair measured in the search, or else their own pair, compared when
+   needed (``_OwnPairs``). Only new files are compared on a rerun (stored links are reused).
 """
 from __future__ import annotations
 
@@ -139,7 +140,7 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 4
+    version = 5
     #: The version of what ``prepare`` computes (content hash, shingles, signature): it keys the
     #: stored artifacts and the split's signatures, so a change of the corpus step alone
     #: (``version``) re-decodes no file. Bump it when ``prepare`` or what it calls changes.
@@ -262,6 +263,10 @@ class Dedup(Stage):
         for k in ids:
             content_rep[k] = first[content_of[k]]
         rep_ids = sorted(first.values())  # the first member of each note content
+        # the members searched against the corpus: each representative, and each other member
+        # whose shingle set differs from those of the searched members of its content before it
+        # (another track layout: other voices, so other pairs with the corpus)
+        searched = searched_members(ids, content_rep, arts)
 
         # 2. near: every verified pair of content representatives at or above the threshold
         # (all of them, not only those that join clusters: a drop needs its own pair); last
@@ -279,8 +284,8 @@ class Dedup(Stage):
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
-        size_of = dict(zip(rep_ids, lengths_of([arts[k] for k in rep_ids], "shingles").tolist()))
-        indexed = [k for k in rep_ids if size_of[k] >= min_sh]
+        size_of = dict(zip(searched, lengths_of([arts[k] for k in searched], "shingles").tolist()))
+        indexed = [k for k in searched if size_of[k] >= min_sh]
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were);
         # memory: counted before the index holds its copy of the signatures (the count's
@@ -288,7 +293,9 @@ class Dedup(Stage):
         if reusable and "generic" in prev:
             self._generic = np.array(prev["generic"], dtype=np.uint64)
         else:
-            self._generic = self._generic_shingles(indexed, arts)
+            # counted over note contents (their representatives), as before other members were
+            # searched: a content in two layouts is one piece
+            self._generic = self._generic_shingles([k for k in indexed if content_rep[k] == k], arts)
         state.save("generic", self._generic.tolist())
         rows = [arts[k] for k in indexed]
         try:  # speed, memory: one array taken from the signature column, no view per member
@@ -301,13 +308,15 @@ class Dedup(Stage):
             for k, r in zip(indexed, rows):
                 index.add(k, r["signature"])  # names the member whose signature does not fit
         del sigs, rows
-        new_reps = {k for k in rep_ids if k not in old}
+        new_reps = {k for k in searched if k not in old}
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
         # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
         codes = index.candidate_codes(new_reps if reusable else None,
                                       skip=lambda rows: self._generic_bands(index.matrix(), rows))
+        if len(searched) > len(rep_ids):  # two members of one content are no pair to verify
+            codes = other_content_codes(index.ids, codes, content_rep)
         n_candidates = len(codes)
         codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
                                       threshold, min_size_ratio=float(o["min_size_ratio"]))
@@ -329,8 +338,10 @@ class Dedup(Stage):
             near.add(a, b, sim)
             uf.union(a, b)
             near_links.append([a, b, round(sim, 6)])
-        state.report(f"dedup: {len(new_reps)} of {len(rep_ids)} distinct note contents compared "
-                     f"({'against stored signatures' if reusable else 'all against all'}); "
+        state.report(f"dedup: {len(new_reps)} of {len(searched)} searched files compared "
+                     f"({len(rep_ids)} distinct note contents + {len(searched) - len(rep_ids)} "
+                     f"members of a content with shingles of their own), "
+                     f"{'against stored signatures' if reusable else 'all against all'}; "
                      f"{n_candidates} LSH candidate pairs, {n_plausible} plausible by their MinHash "
                      f"estimate, {n_sketched} by their exact bounds, {len(verified)} verified links; "
                      f"{len(self._generic)} generic shingles left out")
@@ -443,10 +454,12 @@ class Dedup(Stage):
 
 class _NearLinks:
     """The verified near links, between note contents: members with one note content (its
-    representative is ``content_rep[member]``) share their links. A link's value is the
-    similarity of the two members it was measured on; ``pair`` gives any two members' own."""
+    representative is ``content_rep[member]``) share their links (for the clusters). A link's
+    value is the similarity of the two members it was measured on (two contents may be linked
+    by several measured pairs, when members besides the representatives are searched);
+    ``pair`` gives any two members' own."""
 
-    __slots__ = ("content_rep", "_adj", "own")
+    __slots__ = ("content_rep", "_adj", "_more", "own")
 
     def __init__(self, content_rep: dict[str, str]):
         self.content_rep = content_rep
@@ -455,10 +468,17 @@ class _NearLinks:
         self.own: Callable[[str, str], float | None] | None = None
         # memory: entries only for contents with a link (most files have none)
         self._adj: defaultdict[str, dict[str, tuple[float, str, str]]] = defaultdict(dict)
+        #: further measured pairs of two linked contents (members of a content searched
+        #: besides its representative), by (smaller id, larger id)
+        self._more: dict[tuple[str, str], float] = {}
 
     def add(self, a: str, b: str, sim: float) -> None:
         ca, cb = self.content_rep[a], self.content_rep[b]
-        if ca != cb:
+        if ca == cb:
+            return
+        if cb in self._adj.get(ca, ()):
+            self._more[(a, b) if a < b else (b, a)] = sim
+        else:
             self._adj[ca][cb] = self._adj[cb][ca] = (sim, a, b)
 
     def of(self, member: str) -> dict[str, tuple[float, str, str]]:
@@ -472,9 +492,59 @@ class _NearLinks:
         falls below the threshold): members of one note content may differ in their voices'
         layout, and so in their shingles."""
         sim, x, y = self._adj[self.content_rep[a]][self.content_rep[b]]
-        if (a == x and b == y) or (a == y and b == x) or self.own is None:
+        if (a == x and b == y) or (a == y and b == x):
             return sim
-        return self.own(a, b)
+        measured = self._more.get((a, b) if a < b else (b, a))
+        if measured is not None:
+            return measured
+        return sim if self.own is None else self.own(a, b)
+
+
+def searched_members(ids: list[str], content_rep: dict[str, str], arts: dict[str, dict[str, Any]]
+                     ) -> list[str]:
+    """The members dedup searches against the corpus (sorted): every note content's
+    representative (``content_rep``, its first member by id), and each other member of a
+    content whose shingle set differs from those of the searched members of its content
+    before it in id order. The content hash leaves the track layout out, the shingles follow
+    the voices: a member in another layout may reach a file its representative does not.
+    Members with one set need one search (equal sets give equal pairs). Sets are compared
+    exactly, read only where lengths and signatures are equal (a few shingles apart, MinHash
+    signatures are often equal)."""
+    mates: defaultdict[str, list[str]] = defaultdict(list)
+    for k in ids:
+        if content_rep[k] != k:
+            mates[content_rep[k]].append(k)
+    if not mates:  # every member is its content's representative
+        return list(ids)
+    extra: list[str] = []
+    for rep, others in mates.items():
+        chosen = [rep]
+        for k in others:  # ids are sorted, so each content's members are in id order
+            if not any(_same_set(arts[c], arts[k]) for c in chosen):
+                chosen.append(k)
+        extra.extend(chosen[1:])
+    return sorted([k for k in ids if content_rep[k] == k] + extra)
+
+
+def _same_set(a: dict[str, Any], b: dict[str, Any]) -> bool:
+    """Whether two members' shingle sets are equal (read only when their lengths and
+    signatures are)."""
+    if len(a["shingles"]) != len(b["shingles"]) or not np.array_equal(a["signature"], b["signature"]):
+        return False
+    x, y = load_arrays([a["shingles"], b["shingles"]])
+    return bool(np.array_equal(x, y))
+
+
+def other_content_codes(keys: list[str], codes: np.ndarray, content_rep: dict[str, str]) -> np.ndarray:
+    """The candidate codes ``i * len(keys) + j`` whose two members have other note contents
+    (two members of one content are exact duplicates already)."""
+    n = len(keys)
+    number: dict[str, int] = {}
+    cid = np.fromiter((number.setdefault(content_rep[k], len(number)) for k in keys),
+                      dtype=np.int64, count=n)
+    step = 1 << 20  # memory: index arrays for a block of codes at a time
+    keep = [c[cid[c // n] != cid[c % n]] for c in (codes[lo:lo + step] for lo in range(0, len(codes), step))]
+    return np.concatenate(keep) if keep else codes
 
 
 class _OwnPairs:
