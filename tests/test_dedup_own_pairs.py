@@ -11,6 +11,7 @@ import numpy as np
 
 from pipeline.similarity.minhash import minhash
 from pipeline.stages.base import CorpusState, Member
+from pipeline.stages import dedup as dedup_module
 from pipeline.stages.dedup import Dedup
 
 from test_dedup import TPB, compose, family, jaccard_or_containment, member, run, variants
@@ -199,6 +200,15 @@ def test_a_member_is_dropped_on_the_pair_only_its_own_search_finds():
     _, first = run([mate, k, k_alt])
     again, _ = run([rep, mate, k, k_alt], previous=first.current)
     assert {i: x.to_json() for i, x in again.items()} == {i: x.to_json() for i, x in res.items()}
+    # a rerun that adds K-alt, which only M (not the representative) reaches: M, searched by
+    # the last run, is searched against the new file (its links stored, it stays in the
+    # index). M was kept by the last run; with displace_kept the rerun equals a fresh run.
+    move = {"displace_kept": True}
+    _, first = run([rep, mate, k], opts=move)
+    assert first.current["searched_extra"] == [mate.id]
+    again, state = run([rep, mate, k, k_alt], opts=move, previous=first.current)
+    assert any("1 of 4 searched files compared" in n and "against stored" in n for n in state.notes), state.notes
+    assert {i: x.to_json() for i, x in again.items()} == {i: x.to_json() for i, x in res.items()}
 
 
 def test_members_with_one_content_and_one_shingle_set_are_searched_once():
@@ -212,8 +222,23 @@ def test_members_with_one_content_and_one_shingle_set_are_searched_once():
     assert np.array_equal(louder.artifacts["dedup"]["shingles"], plain.artifacts["dedup"]["shingles"])
     _, state = run([plain, louder, k])
     assert any("2 of 2 searched files compared (2 distinct note contents + 0 " in n for n in state.notes), state.notes
-    _, state = run([plain, louder, alt, k])
+    fresh, state = run([plain, louder, alt, k])
     assert any("3 of 3 searched files compared (2 distinct note contents + 1 " in n for n in state.notes), state.notes
+    # a rerun adding a member compares only its set with those of its content's searched
+    # members, reads no old member's set against another, and writes what a fresh run writes
+    for new in (louder, alt):
+        olds = [x for x in (plain, louder, alt, k) if x is not new]
+        _, first = run(olds)
+        compared = []
+        real = dedup_module._same_set
+        dedup_module._same_set = lambda a, b: compared.append((a["shingles"], b["shingles"])) or real(a, b)
+        try:
+            again, state = run([plain, louder, alt, k], previous=first.current)
+        finally:
+            dedup_module._same_set = real
+        assert all(b is new.artifacts["dedup"]["shingles"] for _, b in compared), new.source
+        assert {i: x.to_json() for i, x in again.items()} == {i: x.to_json() for i, x in fresh.items()}
+    assert any(" of 3 searched files compared" in n for n in state.notes), state.notes
 
 
 def test_the_split_keeps_a_content_and_the_file_its_mate_reaches_in_one_part():

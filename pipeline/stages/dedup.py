@@ -263,18 +263,19 @@ class Dedup(Stage):
         for k in ids:
             content_rep[k] = first[content_of[k]]
         rep_ids = sorted(first.values())  # the first member of each note content
-        # the members searched against the corpus: each representative, and each other member
-        # whose shingle set differs from those of the searched members of its content before it
-        # (another track layout: other voices, so other pairs with the corpus)
-        searched = searched_members(ids, content_rep, arts)
 
-        # 2. near: every verified pair of content representatives at or above the threshold
-        # (all of them, not only those that join clusters: a drop needs its own pair); last
-        # run's links are reused when nothing they depend on changed
+        # 2. near: every verified pair of searched members (each representative, and each other
+        # member whose shingle set differs from those of the searched members of its content:
+        # another track layout, other voices, so other pairs with the corpus) at or above the
+        # threshold (all of them, not only those that join clusters: a drop needs its own pair);
+        # last run's links are reused when nothing they depend on changed (its old members are
+        # then searched as it searched them)
         present = set(ids)
         reusable = (prev.get("link_fingerprint") == self._link_fingerprint()
                     and set(prev.get("members", [])) <= present)
         old = set(prev.get("members", [])) if reusable else set()
+        searched, extra = searched_members(ids, content_rep, arts, old,
+                                           set(prev.get("searched_extra", [])) if reusable else set())
         near = _NearLinks(content_rep)
         near_links: list[list] = []
         if reusable:
@@ -381,6 +382,7 @@ class Dedup(Stage):
         state.save("link_fingerprint", self._link_fingerprint())
         state.save("members", ids)
         state.save("links", sorted(near_links))
+        state.save("searched_extra", extra)
         state.save("kept", sorted(kept_ids))
         state.save("cluster_sources", cluster_sources)
         return results
@@ -500,30 +502,42 @@ class _NearLinks:
         return sim if self.own is None else self.own(a, b)
 
 
-def searched_members(ids: list[str], content_rep: dict[str, str], arts: dict[str, dict[str, Any]]
-                     ) -> list[str]:
-    """The members dedup searches against the corpus (sorted): every note content's
-    representative (``content_rep``, its first member by id), and each other member of a
-    content whose shingle set differs from those of the searched members of its content
-    before it in id order. The content hash leaves the track layout out, the shingles follow
-    the voices: a member in another layout may reach a file its representative does not.
-    Members with one set need one search (equal sets give equal pairs). Sets are compared
-    exactly, read only where lengths and signatures are equal (a few shingles apart, MinHash
-    signatures are often equal)."""
+def searched_members(ids: list[str], content_rep: dict[str, str], arts: dict[str, dict[str, Any]],
+                     old: set[str] | frozenset[str] = frozenset(),
+                     old_extra: set[str] | frozenset[str] = frozenset()) -> tuple[list[str], list[str]]:
+    """The members dedup searches against the corpus, sorted, and among them those that are not
+    the first of their note content (the ``extra`` ones, saved for a rerun).
+
+    The content hash leaves the track layout out, the shingles follow the voices: a member in
+    another layout may reach a file its content's representative (``content_rep``, the first
+    member by id) does not. So every note content is searched once per distinct shingle set
+    of its members: a member is searched when its set differs from those of the searched
+    members of its content before it in id order (equal sets give equal pairs). Sets are
+    compared exactly, read only where lengths and signatures are equal (a few shingles apart,
+    MinHash signatures are often equal).
+
+    On a rerun whose stored links are reused, ``old`` are the last run's members and
+    ``old_extra`` its extra searched ones: an old member is searched as it was (the first old
+    member of its content and the old extra ones: their pairs are stored, and they are
+    searched against the new members), and only new members are compared with the searched
+    members of their content (no old set is read again). A new member whose set equals an old
+    searched one is not searched: that member's pairs are its pairs."""
     mates: defaultdict[str, list[str]] = defaultdict(list)
     for k in ids:
         if content_rep[k] != k:
             mates[content_rep[k]].append(k)
-    if not mates:  # every member is its content's representative
-        return list(ids)
+    searched = [k for k in ids if content_rep[k] == k and k not in mates]  # contents of one member
     extra: list[str] = []
     for rep, others in mates.items():
-        chosen = [rep]
-        for k in others:  # ids are sorted, so each content's members are in id order
-            if not any(_same_set(arts[c], arts[k]) for c in chosen):
+        members = [rep] + others  # ids are sorted, so each content's members are in id order
+        olds = [k for k in members if k in old]
+        chosen = olds[:1] + [k for k in olds[1:] if k in old_extra]
+        for k in members:
+            if k not in old and not any(_same_set(arts[c], arts[k]) for c in chosen):
                 chosen.append(k)
-        extra.extend(chosen[1:])
-    return sorted([k for k in ids if content_rep[k] == k] + extra)
+        searched.extend(chosen)
+        extra.extend(k for k in chosen if k != rep)
+    return sorted(searched), sorted(extra)
 
 
 def _same_set(a: dict[str, Any], b: dict[str, Any]) -> bool:
