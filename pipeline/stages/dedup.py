@@ -27,7 +27,7 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
 """
 from __future__ import annotations
 
-from collections import defaultdict
+from collections import Counter, defaultdict
 from typing import Any, Callable
 
 import numpy as np
@@ -528,25 +528,45 @@ def searched_members(ids: list[str], content_rep: dict[str, str], arts: dict[str
             mates[content_rep[k]].append(k)
     searched = [k for k in ids if content_rep[k] == k and k not in mates]  # contents of one member
     extra: list[str] = []
+    block: list[tuple[list[str], list[str], dict[str, tuple]]] = []  # (members, chosen, keys)
+    wanted: list[str] = []
     for rep, others in mates.items():
         members = [rep] + others  # ids are sorted, so each content's members are in id order
         olds = [k for k in members if k in old]
         chosen = olds[:1] + [k for k in olds[1:] if k in old_extra]
-        for k in members:
-            if k not in old and not any(_same_set(arts[c], arts[k]) for c in chosen):
-                chosen.append(k)
-        searched.extend(chosen)
-        extra.extend(k for k in chosen if k != rep)
+        new = [k for k in members if k not in old]
+        keys = {k: (len(arts[k]["shingles"]), np.asarray(arts[k]["signature"]).tobytes())
+                for k in chosen + new}
+        count = Counter(keys.values())
+        new_keys = {keys[k] for k in new}
+        # the sets compared: those whose length and signature another one shares, a new one
+        wanted.extend(k for k in keys if count[keys[k]] > 1 and keys[k] in new_keys)
+        block.append((members, chosen, keys))
+        if len(wanted) >= SAME_SET_BLOCK:
+            _choose_searched(block, wanted, arts, old, searched, extra)
+            block, wanted = [], []
+    _choose_searched(block, wanted, arts, old, searched, extra)
     return sorted(searched), sorted(extra)
 
 
-def _same_set(a: dict[str, Any], b: dict[str, Any]) -> bool:
-    """Whether two members' shingle sets are equal (read only when their lengths and
-    signatures are)."""
-    if len(a["shingles"]) != len(b["shingles"]) or not np.array_equal(a["signature"], b["signature"]):
-        return False
-    x, y = load_arrays([a["shingles"], b["shingles"]])
-    return bool(np.array_equal(x, y))
+#: Shingle sets read at once (in one call) where members of one content are compared.
+SAME_SET_BLOCK = 2048
+
+
+def _choose_searched(block: list[tuple[list[str], list[str], dict[str, tuple]]], wanted: list[str],
+                     arts: dict[str, dict[str, Any]], old: set[str] | frozenset[str],
+                     searched: list[str], extra: list[str]) -> None:
+    """``searched_members`` for a block of contents, the ``wanted`` sets read in one call: each
+    new member of a content is searched unless its set equals that of a searched one (the old
+    searched members first, then the new ones chosen before it)."""
+    sets = dict(zip(wanted, load_arrays([arts[k]["shingles"] for k in wanted]))) if wanted else {}
+    for members, chosen, keys in block:
+        for k in members:
+            if k not in old and not any(keys[c] == keys[k] and np.array_equal(sets[c], sets[k])
+                                        for c in chosen):
+                chosen.append(k)
+        searched.extend(chosen)
+        extra.extend(k for k in chosen if k != members[0])
 
 
 def other_content_codes(keys: list[str], codes: np.ndarray, content_rep: dict[str, str]) -> np.ndarray:
