@@ -9,10 +9,10 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
    hash) are linked first, with no MinHash work (``exact_duplicate``);
 2. one representative per content group goes through LSH banding, with each other member
    of a content whose shingle set differs (another track layout: ``searched_members``); each
-   candidate pair of two contents is verified on the exact shingle sets, generic shingles (held by ``generic_share`` of the
-   files) left out (Jaccard, or containment for excerpts and voice subsets, of the whole sets
-   or of the lead voices) and linked when the similarity reaches ``threshold``
-   (``near_duplicate``);
+   candidate pair of two contents is verified on the exact shingle sets, generic shingles
+   (held by ``generic_share`` of the files) left out (Jaccard, or containment for excerpts
+   and voice subsets, of the whole sets or of the lead voices) and linked when the
+   similarity reaches ``threshold`` (``near_duplicate``);
 3. clusters are the connected components of the links (union-find; they are transitive, as
    leakage is, and the split keeps each one in one part). Removal is not transitive: in each
    cluster, members are taken in ``keep_policy`` order (on a rerun, members kept last time
@@ -309,12 +309,12 @@ class Dedup(Stage):
             for k, r in zip(indexed, rows):
                 index.add(k, r["signature"])  # names the member whose signature does not fit
         del sigs, rows
-        new_reps = {k for k in searched if k not in old}
+        new_searched = {k for k in searched if k not in old}
         # candidate pairs as compact codes, turned into (a, b) one at a time in sorted order
-        # (rep_ids are sorted, so code order is pair order): no list of millions of tuples;
+        # (the searched ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
-        codes = index.candidate_codes(new_reps if reusable else None,
+        codes = index.candidate_codes(new_searched if reusable else None,
                                       skip=lambda rows: self._generic_bands(index.matrix(), rows))
         if len(searched) > len(rep_ids):  # two members of one content are no pair to verify
             codes = other_content_codes(index.ids, codes, content_rep)
@@ -339,7 +339,7 @@ class Dedup(Stage):
             near.add(a, b, sim)
             uf.union(a, b)
             near_links.append([a, b, round(sim, 6)])
-        state.report(f"dedup: {len(new_reps)} of {len(searched)} searched files compared "
+        state.report(f"dedup: {len(new_searched)} of {len(searched)} searched files compared "
                      f"({len(rep_ids)} distinct note contents + {len(searched) - len(rep_ids)} "
                      f"members of a content with shingles of their own), "
                      f"{'against stored signatures' if reusable else 'all against all'}; "
