@@ -332,7 +332,7 @@ def test_split_without_dedup_groups_planted_near_duplicates():
         piece = make_piece(rows, tpb=tpb, **kw)
         mid = hashlib.sha256(name.encode()).hexdigest()[:16]
         art = stage.prepare(piece, FileContext(piece, name, mid))
-        assert set(art) == {"signature", "shingles"}
+        assert set(art) == {"signature", "shingles", "content_hash"}
         members.append(Member(mid, mid * 4, name, {}, {"split": art}))
         piece_of[mid] = k
     state = CorpusState()

@@ -10,6 +10,11 @@ Which files travel together (one group, never split across parts):
   (``Member.artifacts["dedup"]``); without one (or with dedup at other settings) the split's own
   ``prepare`` makes them, so the split groups near-duplicates on its own. Only
   ``group_threshold: null`` turns this off, and the run's table and summary.json then say so;
+* files of one note content (equal ``content_hash``, dedup's canonical content, made by the same
+  ``signature_of`` call; byte-identical files are one member), whatever their shingles: two
+  track layouts of one piece may share few shingles, but they are the same notes (dedup calls
+  them ``exact_duplicate``). When dedup runs, they are one dedup cluster already; without it
+  the split's own ``prepare`` keeps the hash. Also off with ``group_threshold: null``;
 * members of one dedup ``cluster`` (a connected component of dedup's links) too;
 * all augmentation copies of one source: they are one ``Member`` with several outputs, so they
   travel together by construction and weigh as many files as they write in the ratios
@@ -36,7 +41,7 @@ from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups,
                                    group_by_key, near_links_of)
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
-from ..store.columns import ValuesOf, lengths_of, present, stacked
+from ..store.columns import ValuesOf, column_of, lengths_of, present, stacked
 from ..store.ledger import load_arrays
 from .base import (CorpusState, FileContext, Member, Option, Stage, StageResult,
                    options_fingerprint, register)
@@ -135,11 +140,11 @@ class Split(Stage):
 
     name = "split"
     kind = "corpus"
-    version = 3
+    version = 4
     #: The version of what ``prepare`` computes (the split's own signatures, when no dedup stage
     #: lends them): it keys those artifacts, so a change of the corpus step alone (``version``)
     #: re-signs no file. Bump it when ``prepare`` or what it calls changes.
-    signature_version = 2
+    signature_version = 3
     doc = "Leakage-free, rerun-stable split of the kept files into parts."
     #: shingle sets are read for the members in candidate pairs only
     deferred_artifacts = ("shingles",)
@@ -210,10 +215,11 @@ class Split(Stage):
         return (self.borrows,) if self.borrows and self.opts["group_threshold"] is not None else ()
 
     def prepare(self, piece: Piece, ctx: FileContext) -> dict[str, Any]:
-        """MinHash signature and shingle set of one piece, by dedup's function at dedup's
-        default settings (when no dedup stage before the split stores them)."""
-        sig, sh, _ = signature_of(piece, signature_options())
-        return {"signature": sig, "shingles": sh}
+        """MinHash signature, shingle set and note-content hash of one piece, by dedup's
+        function at dedup's default settings (when no dedup stage before the split stores them):
+        files of one content travel together whatever their shingles."""
+        sig, sh, chash = signature_of(piece, signature_options())
+        return {"signature": sig, "shingles": sh, "content_hash": chash}
 
     @classmethod
     def check_options(cls, opts: dict[str, Any]) -> str | None:
@@ -310,7 +316,8 @@ class Split(Stage):
 
     def _links(self, members: list[Member], state: CorpusState,
                previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str], str | None]:
-        """Near-duplicate links among members, and links to dedup cluster-mates that left the
+        """Near-duplicate links among members (and links between members of one note
+        content, ``same_content_links``), and links to dedup cluster-mates that left the
         split but carry a previous part (the ghosts); and the stage whose signatures were
         compared (None when grouping is off or no member has one)."""
         links: list[tuple[str, str]] = []
@@ -343,6 +350,11 @@ class Split(Stage):
         if threshold is not None and len(signed_arts) > 1:
             use_sh = ValuesOf(signed_arts, "shingles") if with_shingles == len(signed_arts) else None
             links += self._near_links(signed_arts, use_sh, state, signed)
+            same = same_content_links(signed_arts)
+            if same:
+                state.report(f"split: {len(same)} files have the note content of another file "
+                             "(another track layout): each shares that file's part")
+            links += same
         ghosts: set[str] = set()
         dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
@@ -403,6 +415,21 @@ class Split(Stage):
             forced += group_by_key({m.id: normalize_text(m.meta[f] if f in m.meta else m.values.get(f))
                                     for m in members})
         return forced
+
+
+def same_content_links(arts: dict[str, Any]) -> list[tuple[str, str]]:
+    """Links tying the members of one note content (equal ``content_hash`` among ``arts``, id
+    -> the artifacts holding its signature) to the first of them by id: the same notes in
+    another track layout may share few shingles with it, and must not sit in another part."""
+    keys = sorted(arts)
+    rows = [arts[k] for k in keys]
+    held = [k for k, ok in zip(keys, present(rows, "content_hash")) if ok]
+    if len(held) < len(keys):
+        rows = [arts[k] for k in held]
+    links: list[tuple[str, str]] = []
+    for grp in group_by_key(dict(zip(held, map(str, column_of(rows, "content_hash"))))):
+        links.extend((grp[0], k) for k in grp[1:])
+    return links
 
 
 def split_summary(assignment: dict[str, str], ratios: dict[str, float], sizes: dict[str, float],
