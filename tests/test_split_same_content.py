@@ -131,8 +131,8 @@ def _no_dedup(**opts):
 
 
 def test_runs_without_dedup_keep_the_layouts_together_and_reruns_equal_fresh_runs(tmp_path):
-    """End to end (files written by mido): the alternate layout added in a rerun shares the
-    plain layout's part and the rerun writes what a fresh run writes; with ``group_threshold:
+    """End to end (files written by mido): the alternate layout (and a byte-identical copy of
+    it) added in a rerun shares the plain layout's part and the rerun writes what a fresh run writes; with ``group_threshold:
     null`` the layouts are split as single files and the table and summary.json say grouping
     was off; with dedup the two are one dedup cluster (one kept, the other an exact duplicate)."""
     corpus = tmp_path / "corpus"
@@ -148,8 +148,10 @@ def test_runs_without_dedup_keep_the_layouts_together_and_reruns_equal_fresh_run
     # in the rerun and in a fresh run
     first, _, _ = _run(tmp_path, corpus, _no_dedup(), "out", seed)
     (corpus / "alt.mid").write_bytes(data["alt.mid"])
+    (corpus / "copy").mkdir()
+    (corpus / "copy" / "alt.mid").write_bytes(data["alt.mid"])  # byte-identical: one content
     rerun, summary, _ = _run(tmp_path, corpus, _no_dedup(), "out", seed)
-    assert rerun["alt.mid"]["split"] == rerun["plain.mid"]["split"]
+    assert rerun["alt.mid"]["split"] == rerun["plain.mid"]["split"] == rerun["copy/alt.mid"]["split"]
     assert rerun["alt.mid"]["group"] == rerun["plain.mid"]["group"]
     assert all(rerun[n]["split"] == r["split"] for n, r in first.items())  # the stored parts stand
     # a fresh run of every file keeps them together too
@@ -168,3 +170,19 @@ def test_runs_without_dedup_keep_the_layouts_together_and_reruns_equal_fresh_run
     assert dd["alt.mid"]["cluster"] == dd["plain.mid"]["cluster"]
     assert sorted(r.get("reason") or "kept" for n, r in dd.items() if n in ("alt.mid", "plain.mid")) \
         == ["exact_duplicate", "kept"]
+
+
+def test_relayout_keeps_the_notes_and_moves_odd_bars_to_tracks_of_their_own():
+    """``pipeline.tools.relayout`` (the benchmark's other layouts): the same notes by mido, in
+    more tracks, and the same content hash by our decoder."""
+    import io
+
+    import mido
+
+    from pipeline.midi.decode import decode
+    from pipeline.tools.relayout import relayout
+    data = _midi_bytes(_pieces()[0][1])
+    other = relayout(data)
+    assert _notes_by_mido(other) == _notes_by_mido(data)
+    assert len(mido.MidiFile(file=io.BytesIO(other)).tracks) > len(mido.MidiFile(file=io.BytesIO(data)).tracks)
+    assert content_hash(decode(other)) == content_hash(decode(data))

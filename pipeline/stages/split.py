@@ -156,7 +156,9 @@ class Split(Stage):
                "travel together (below dedup's removal threshold, so near-misses that survive "
                "dedup still share a part); measured on dedup's signatures when a dedup stage at "
                "its default signature settings runs before the split, else on the split's own. "
-               "null turns near-duplicate grouping off (the run's table and summary.json say so).",
+               "Files of one note content (dedup's content hash) travel together whatever their "
+               "similarity. null turns near-duplicate and same-content grouping off (the run's "
+               "table and summary.json say so).",
                _check_threshold),
         Option("group_by_folder", (bool, int), False, "true: files in the same folder share a "
                "part; a number N: files under the same first N folder levels of the input share "
@@ -426,9 +428,14 @@ def same_content_links(arts: dict[str, Any]) -> list[tuple[str, str]]:
     held = [k for k, ok in zip(keys, present(rows, "content_hash")) if ok]
     if len(held) < len(keys):
         rows = [arts[k] for k in held]
+    first: dict[str, str] = {}  # content hash -> its first member
     links: list[tuple[str, str]] = []
-    for grp in group_by_key(dict(zip(held, map(str, column_of(rows, "content_hash"))))):
-        links.extend((grp[0], k) for k in grp[1:])
+    # speed, memory: one pass keeping each hash's first member (as dedup's exact step), not a
+    # list per content (group_by_key)
+    for k, h in zip(held, column_of(rows, "content_hash")):
+        rep = first.setdefault(str(h), k)
+        if rep != k:
+            links.append((rep, k))
     return links
 
 
