@@ -13,8 +13,9 @@ Which files travel together (one group, never split across parts):
 * files of one note content (equal ``content_hash``, dedup's canonical content, made by the same
   ``signature_of`` call; byte-identical files are one member), whatever their shingles: two
   track layouts of one piece may share few shingles, but they are the same notes (dedup calls
-  them ``exact_duplicate``). When dedup runs, they are one dedup cluster already; without it
-  the split's own ``prepare`` keeps the hash. Also off with ``group_threshold: null``;
+  them ``exact_duplicate``). When dedup lends its arrays, they are one dedup cluster already
+  and dedup keeps one of them; else the split's own ``prepare`` keeps the hash and the split
+  links them. Also off with ``group_threshold: null``;
 * members of one dedup ``cluster`` (a connected component of dedup's links) too;
 * all augmentation copies of one source: they are one ``Member`` with several outputs, so they
   travel together by construction and weigh as many files as they write in the ratios
@@ -352,7 +353,9 @@ class Split(Stage):
         if threshold is not None and len(signed_arts) > 1:
             use_sh = ValuesOf(signed_arts, "shingles") if with_shingles == len(signed_arts) else None
             links += self._near_links(signed_arts, use_sh, state, signed)
-            same = same_content_links(signed_arts)
+            # with a dedup stage lending its arrays, each note content reaches the split once
+            # (dedup keeps one file of a content, its cluster holds the others): nothing to link
+            same = same_content_links(signed_arts) if self.borrows is None else []
             if same:
                 state.report(f"split: {len(same)} files have the note content of another file "
                              "(another track layout): each shares that file's part")
