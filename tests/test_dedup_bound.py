@@ -113,6 +113,7 @@ def test_dedups_links_are_the_same_with_and_without_the_bound(corpus, monkeypatc
         assert kept < plausible
         with monkeypatch.context() as mp:
             mp.setattr(dedup_module, "sketched_codes", lambda keys, codes, *a, **k: codes)
+            mp.setattr(dedup_module, "bounded_codes", lambda sk, at, codes, *a, **k: codes)  # streamed
             plain, plain_state = run(members, opts)
         assert _counts(plain_state.notes)[1] == plausible
         assert with_state.current["links"] == plain_state.current["links"]

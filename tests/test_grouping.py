@@ -158,19 +158,26 @@ def test_lsh_rows_meets_recall():
         assert 128 % r == 0
 
 
+def planted_sets(seed: int, n_base: int, keeps, digits: int = 1) -> dict[str, np.ndarray]:
+    """Random shingle sets of 300 values (``b0``, ``b1``, ...) and, for each share in ``keeps``,
+    a variant ``vI`` of ``bI`` keeping that share of its values (the rest fresh ones): planted
+    overlaps at known Jaccard for the searches' tests. ``digits`` pads the numbers."""
+    rng = np.random.default_rng(seed)
+    base = {f"b{i:0{digits}d}": rng.choice(2**40, 300, replace=False).astype(np.uint64) for i in range(n_base)}
+    sets = dict(base)
+    for i, keep in enumerate(keeps):
+        src = base[f"b{i:0{digits}d}"]
+        n_keep = int(len(src) * keep)
+        fresh = rng.choice(2**40, len(src) - n_keep, replace=False).astype(np.uint64) + np.uint64(2**41)
+        sets[f"v{i:0{digits}d}"] = np.concatenate([src[:n_keep], fresh])
+    return {k: np.unique(v) for k, v in sets.items()}
+
+
 def test_near_links_finds_every_pair_above_threshold_and_no_other():
     """Against brute-force exact Jaccard on random shingle sets with planted overlaps."""
     from pipeline.similarity.minhash import minhash
 
-    rng = np.random.default_rng(7)
-    base = {f"b{i}": rng.choice(2**40, 300, replace=False).astype(np.uint64) for i in range(40)}
-    sets = dict(base)
-    for i, keep in enumerate([0.95, 0.85, 0.75, 0.7, 0.66, 0.4, 0.3, 0.2]):
-        src = base[f"b{i}"]
-        n_keep = int(len(src) * keep)
-        fresh = rng.choice(2**40, len(src) - n_keep, replace=False).astype(np.uint64) + np.uint64(2**41)
-        sets[f"v{i}"] = np.concatenate([src[:n_keep], fresh])
-    sets = {k: np.unique(v) for k, v in sets.items()}
+    sets = planted_sets(7, 40, [0.95, 0.85, 0.75, 0.7, 0.66, 0.4, 0.3, 0.2])
     sigs = {k: minhash(v) for k, v in sets.items()}
     got = {(a, b): s for a, b, s in near_links(sigs, 0.5, sets)}
     keys = sorted(sets)

@@ -249,6 +249,7 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
+    from .candidates import few_new
     from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
     from .links import verify_codes
     from .overlap_sketch import sketched_codes
@@ -259,6 +260,10 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
     rows = lsh_rows(threshold, num_perm, recall)
+    if shingles is not None and not few_new(np.ones(len(keys), dtype=bool) if wanted is None else wanted):
+        # memory: a full search streams its candidates a block of bands at a time, each block
+        # bounded at once (the same pairs: similarity.candidates)
+        return _streamed_links(keys, sig, threshold, shingles, rows, wanted, margin_sigmas, read, sizes)
     # recall: each half of a signature (the leads', the whole sets') holds half of the bands, so
     # a pair alike in one half only is found with 1 - (1 - s^r)^(b/2); the same values banded
     # again one row over give it as many bands more (README, "The split's search against every
@@ -308,3 +313,50 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
         return [(keys[a], keys[b], float(v)) for a, b, v in
                 zip((codes // m).tolist(), (codes % m).tolist(), est.tolist())]
     return verify_codes(keys, codes, shingles, threshold, read=read)
+
+
+def _streamed_links(keys: list[str], sig: "np.ndarray", threshold: float, shingles: Mapping[str, "np.ndarray"],
+                    rows: int, wanted: "np.ndarray | None", margin_sigmas: float,
+                    read: "Callable[[list], list] | None", sizes: "np.ndarray | None"
+                    ) -> list[tuple[str, str, float]]:
+    """``near_links_of``'s search with shingles, its candidates streamed (``similarity.candidates``):
+    the bands of ``rows`` rows and the same bands one row over, each block's new pairs bounded
+    exactly (``overlap_sketch``, every live set sketched up front) and by the MinHash bounds,
+    then the survivors verified: the links of banding every pair first."""
+    import numpy as np
+
+    from .candidates import streamed_pair_codes
+    from .links import verify_codes
+    from .lsh import PAIR_CHUNK, check_banding, plausible_pairs
+    from .minhash import EMPTY_VALUE
+    from .overlap_sketch import bounded_codes, sketch_rows
+
+    n, num_perm = sig.shape
+    err = check_banding(num_perm, num_perm // rows)
+    if err:
+        raise ValueError(err)
+    live = np.flatnonzero(~np.all(sig == EMPTY_VALUE, axis=1))
+    is_new = np.ones(len(live), dtype=bool) if wanted is None else wanted[live]
+    if len(live) < 2 or not is_new.any():
+        return []
+    if len(live) < n:
+        sig = sig[live]
+    sizes = (np.array([len(shingles[k]) for k in keys], dtype=np.float64) if sizes is None
+             else np.asarray(sizes, dtype=np.float64))[live]
+    live_keys = [keys[x] for x in live.tolist()]
+    m = len(live)
+    sk = sketch_rows(live_keys, np.arange(m), shingles, read=read)
+    at = np.arange(m)
+
+    def keep(codes: np.ndarray) -> np.ndarray:
+        codes = bounded_codes(sk, at, codes, threshold)
+        sel = np.empty(len(codes), dtype=bool)
+        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+            c = codes[lo:lo + PAIR_CHUNK]
+            sel[lo:lo + len(c)] = plausible_pairs(sig, c // m, c % m, sizes, threshold,
+                                                  margin_sigmas=margin_sigmas)
+        return codes[sel]
+
+    codes = streamed_pair_codes(sig, num_perm // rows, is_new, keep, shifted=rows > 1)
+    del sk, sig
+    return verify_codes(live_keys, codes, shingles, threshold, read=read)

@@ -97,24 +97,42 @@ def sketched_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold:
     ``SKETCH_BITS``. ``generic`` and ``min_size_ratio`` as ``links.verify_codes`` is given them
     (the sets are sketched without the generic shingles, as they are compared)."""
     from .links import rows_in_codes
-    from .lsh import PAIR_CHUNK
 
     n = len(keys)
     if not len(codes):
         return codes
-    bits = SKETCH_BITS if bits is None else bits
     involved = rows_in_codes(codes, n)
-    m = len(involved)
+    sk = sketch_rows(keys, involved, shingles, read=read, bits=bits, generic=generic)
+    at = np.full(n, -1, dtype=np.int64)  # key index -> its row of the sketches
+    at[involved] = np.arange(len(involved))
+    return bounded_codes(sk, at, codes, threshold, min_size_ratio=min_size_ratio)
+
+
+def sketch_rows(keys: list[str], rows: np.ndarray, shingles: Any, *,
+                read: Callable[[list], list] | None = None, bits: int | None = None,
+                generic: np.ndarray | None = None) -> Sketches:
+    """The sketches of the sets ``shingles[keys[p]]`` for ``p`` in ``rows``, in that order,
+    read and hashed ``_READ_CHUNK`` sets at a time (``sketched_codes``'s arguments)."""
+    bits = SKETCH_BITS if bits is None else bits
+    m = len(rows)
     sk = Sketches(np.zeros((m, bits // 64), dtype=np.uint64), *(np.zeros(m, dtype=np.int64) for _ in range(4)))
     for lo in range(0, m, _READ_CHUNK):  # memory: one chunk's sets at a time
-        held = [shingles[keys[p]] for p in involved[lo:lo + _READ_CHUNK].tolist()]
+        held = [shingles[keys[p]] for p in rows[lo:lo + _READ_CHUNK].tolist()]
         part = sketch_sets([drop_generic(np.asarray(x, dtype=np.uint64), generic)
                             for x in (held if read is None else read(held))], bits)
         del held
         for f in ("bits", "size", "lead", "lost_lead", "lost_rest"):
             getattr(sk, f)[lo:lo + _READ_CHUNK] = getattr(part, f)
-    at = np.full(n, -1, dtype=np.int64)  # key index -> its row of the sketches
-    at[involved] = np.arange(m)
+    return sk
+
+
+def bounded_codes(sk: Sketches, at: np.ndarray, codes: np.ndarray, threshold: float, *,
+                  min_size_ratio: float = MIN_SIZE_RATIO) -> np.ndarray:
+    """The codes ``i * len(at) + j`` that ``may_reach`` keeps, ``at[i]`` being key ``i``'s row
+    of ``sk``; a chunk of pairs at a time."""
+    from .lsh import PAIR_CHUNK
+
+    n = len(at)
     keep = np.empty(len(codes), dtype=bool)
     for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
         c = codes[lo:lo + PAIR_CHUNK]

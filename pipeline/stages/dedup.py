@@ -38,7 +38,8 @@ from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, gen
 from ..similarity.lsh import LSHIndex, check_banding, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
-from ..similarity.overlap_sketch import sketched_codes
+from ..similarity.candidates import few_new, streamed_pair_codes
+from ..similarity.overlap_sketch import bounded_codes, sketch_rows, sketched_codes
 from ..store.columns import column_of, lengths_of, stacked
 from ..store.columns import present as holding  # run_corpus names its member set `present`
 from ..store.ledger import load_arrays
@@ -314,23 +315,35 @@ class Dedup(Stage):
         # (the searched ids are sorted, so code order is pair order): no list of millions of tuples;
         # bands made of generic material only pair nothing
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
-        codes = index.candidate_codes(new_searched if reusable else None,
-                                      skip=lambda rows: self._generic_bands(index.matrix(), rows))
-        if len(searched) > len(rep_ids):  # two members of one content are no pair to verify
-            codes = other_content_codes(index.ids, codes, content_rep)
-        n_candidates = len(codes)
-        codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
-                                      threshold, min_size_ratio=float(o["min_size_ratio"]))
-        del size_of
-        n_plausible = len(codes)
-        index_ids = index.ids
-        del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
-        # speed: exact bounds from one bitmap per set (generic shingles left out, as compared)
-        # drop the pairs that cannot reach the threshold before the exact comparison, which reads
-        # every set several times (overlap_sketch; DEVELOPERS.md, Bench notes): the same links
-        codes = sketched_codes(index_ids, codes, _Shingles(arts), threshold, read=load_arrays,
-                               generic=self._generic, min_size_ratio=float(o["min_size_ratio"]))
-        n_sketched = len(codes)
+        is_new = np.array([k in new_searched for k in index.ids], dtype=bool)
+        # two members of one content are no pair to verify (they are exact duplicates already)
+        content = content_numbers(index.ids, content_rep) if len(searched) > len(rep_ids) else None
+        if len(index.ids) > 1 and is_new.any() and not few_new(is_new):
+            # memory: a full run streams its candidates a block of bands at a time, each block
+            # bounded at once (the same pairs and counts: similarity.candidates)
+            codes, (n_candidates, n_plausible, n_sketched) = self._streamed_candidates(
+                index, is_new, np.array([size_of[k] for k in index.ids]), arts, content)
+            del size_of
+            index_ids = index.ids
+            del index
+        else:
+            codes = index.candidate_codes(new_searched if reusable else None,
+                                          skip=lambda rows: self._generic_bands(index.matrix(), rows))
+            if content is not None:
+                codes = other_content_codes(codes, content)
+            n_candidates = len(codes)
+            codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
+                                          threshold, min_size_ratio=float(o["min_size_ratio"]))
+            del size_of
+            n_plausible = len(codes)
+            index_ids = index.ids
+            del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
+            # speed: exact bounds from one bitmap per set (generic shingles left out, as compared)
+            # drop the pairs that cannot reach the threshold before the exact comparison, which reads
+            # every set several times (overlap_sketch; DEVELOPERS.md, Bench notes): the same links
+            codes = sketched_codes(index_ids, codes, _Shingles(arts), threshold, read=load_arrays,
+                                   generic=self._generic, min_size_ratio=float(o["min_size_ratio"]))
+            n_sketched = len(codes)
         verified = verify_codes(index_ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
                                 read=load_arrays)
@@ -386,6 +399,36 @@ class Dedup(Stage):
         state.save("kept", sorted(kept_ids))
         state.save("cluster_sources", cluster_sources)
         return results
+
+    def _streamed_candidates(self, index: LSHIndex, is_new: np.ndarray, sizes: np.ndarray,
+                             arts: dict[str, dict[str, Any]],
+                             content: np.ndarray | None = None) -> tuple[np.ndarray, tuple[int, int, int]]:
+        """The codes of ``index``'s candidate pairs (generic bands skipped) kept by the MinHash
+        bounds and then the exact bounds, and the counts after banding and after each bound:
+        ``candidate_codes``, ``plausible_codes`` and ``sketched_codes`` in turn, a block of
+        bands at a time (``similarity.candidates``), every indexed set sketched up front; pairs
+        of one note content (equal ``content`` numbers) are left out first, as
+        ``other_content_codes`` does."""
+        o = self.opts
+        threshold, ratio = float(o["threshold"]), float(o["min_size_ratio"])
+        sig = index.matrix()
+        n = len(sig)
+        sk = sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays, generic=self._generic)
+        at = np.arange(n)
+        counts = [0, 0, 0]
+
+        def keep(codes: np.ndarray) -> np.ndarray:
+            if content is not None:
+                codes = other_content_codes(codes, content)
+            counts[0] += len(codes)
+            codes = index.plausible_codes(codes, sizes, threshold, min_size_ratio=ratio)
+            counts[1] += len(codes)
+            codes = bounded_codes(sk, at, codes, threshold, min_size_ratio=ratio)
+            counts[2] += len(codes)
+            return codes
+
+        codes = streamed_pair_codes(sig, index.bands, is_new, keep, skip=self._generic_bands(sig, None))
+        return codes, (counts[0], counts[1], counts[2])
 
     def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
         """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
@@ -569,15 +612,20 @@ def _choose_searched(block: list[tuple[list[str], list[str], dict[str, tuple]]],
         extra.extend(k for k in chosen if k != members[0])
 
 
-def other_content_codes(keys: list[str], codes: np.ndarray, content_rep: dict[str, str]) -> np.ndarray:
-    """The candidate codes ``i * len(keys) + j`` whose two members have other note contents
-    (two members of one content are exact duplicates already)."""
-    n = len(keys)
+def content_numbers(keys: list[str], content_rep: dict[str, str]) -> np.ndarray:
+    """One number per note content for each of ``keys`` (equal numbers: one content)."""
     number: dict[str, int] = {}
-    cid = np.fromiter((number.setdefault(content_rep[k], len(number)) for k in keys),
-                      dtype=np.int64, count=n)
+    return np.fromiter((number.setdefault(content_rep[k], len(number)) for k in keys),
+                       dtype=np.int64, count=len(keys))
+
+
+def other_content_codes(codes: np.ndarray, content: np.ndarray) -> np.ndarray:
+    """The candidate codes ``i * n + j`` (``n = len(content)``) whose two members have other
+    note contents (``content_numbers``; two members of one content are exact duplicates
+    already)."""
+    n = len(content)
     step = 1 << 20  # memory: index arrays for a block of codes at a time
-    keep = [c[cid[c // n] != cid[c % n]] for c in (codes[lo:lo + step] for lo in range(0, len(codes), step))]
+    keep = [c[content[c // n] != content[c % n]] for c in (codes[lo:lo + step] for lo in range(0, len(codes), step))]
     return np.concatenate(keep) if keep else codes
 
 

@@ -1,0 +1,160 @@
+"""Candidate pairs streamed block of bands by block of bands, each block filtered at once.
+
+``lsh.banded_pair_codes`` returns every candidate pair of a corpus as one sorted array of
+codes; the pairs that share a band grow with the square of the corpus (millions at 100,000
+files), and holding them all, with the merges that make them unique, was the main process's
+largest transient at 100,000 and 300,000 files (README, Throughput, reruns and memory). Here
+each band is banded on its own and its pairs made a bounded piece at a time, the pairs an
+earlier band already found are dropped by comparing the pair's signature values there (no set
+of the codes seen so far is kept), and the caller's ``keep`` filter (exact bounds, MinHash
+bounds) runs on each piece at once: only its survivors are held. The result is the codes of
+``banded_pair_codes`` that ``keep`` keeps, sorted and unique (tests/test_candidates.py checks
+it against brute-force banding and against ``banded_pair_codes`` filtered afterwards).
+"""
+from __future__ import annotations
+
+from typing import Callable, Iterator
+
+import numpy as np
+
+from .lsh import _SMALL_BUCKET, PAIR_CHUNK, band_key, check_banding, sorted_unique
+from .minhash import EMPTY_VALUE
+
+
+#: Pairs of one band handled at once (memory: a band's few large buckets held hundreds of
+#: thousands of pairs each at 100,000 files, and their count grows with the square of a bucket).
+STREAM_PAIRS = 1 << 16
+
+
+def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
+                        keep: Callable[[np.ndarray], np.ndarray], *, shifted: bool = False,
+                        skip: np.ndarray | None = None) -> np.ndarray:
+    """The sorted unique codes ``i * n + j`` (``i < j``, rows of ``sig``) of
+    ``banded_pair_codes(sig, bands, is_new, shifted=shifted)`` that ``keep`` keeps.
+
+    The bands are taken one at a time, and a band's pairs at most ``STREAM_PAIRS`` at a time;
+    ``keep(codes)`` gets each such piece's pairs not found in an earlier band (sorted unique
+    codes; each pair once over the whole call) and returns the ones to keep (a pure per-pair
+    filter, so filtering each piece gives what filtering all candidates would). ``skip``
+    (``(n, bands)`` booleans, as ``LSHIndex.candidate_codes`` takes them) marks bands that pair
+    no row: such a band of row ``i`` is keyed on the values ``(i, EMPTY_VALUE - 1, ...)``, as
+    there; not with ``shifted``. A pair is new to a band when no band before it holds equal
+    values in both rows; a pair found only through equal 64-bit band keys of unequal values
+    may then be met twice, which the final unique merge absorbs."""
+    n, num_perm = sig.shape
+    err = check_banding(num_perm, bands)
+    if err:
+        raise ValueError(err)
+    if skip is not None and shifted:
+        raise ValueError("skip marks apply to the plain bands only; shifted bands take none")
+    rows = num_perm // bands
+    # every band's columns in band order: the plain bands, then (shifted) each one row over
+    cols = [np.arange(b * rows, (b + 1) * rows) for b in range(bands)]
+    if shifted:
+        cols += [(c + 1) % num_perm for c in cols[:bands]]
+    kept: list[np.ndarray] = []
+    for b, c in enumerate(cols):
+        block = sig[:, c]  # memory: this band's columns only
+        if skip is not None:
+            _fill_skipped(block, skip[:, b:b + 1], rows, np.arange(n))
+        # keyed as band 0 of its own: the keys move by one constant, the pairs are the band's
+        key = band_key(block, 1, 0)
+        del block
+        for i, j in _equal_key_pairs(key, is_new):
+            codes = np.sort(i * n + j)
+            codes = codes[_first_found_in(sig, codes, cols, b, skip)]
+            if len(codes):
+                kept.append(keep(codes))
+            del codes
+    if not kept:
+        return np.zeros(0, dtype=np.int64)
+    return sorted_unique(np.concatenate(kept))
+
+
+def _equal_key_pairs(key: np.ndarray, is_new: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """The pairs ``(i, j)``, ``i < j``, of rows with equal ``key``, at least one ``is_new``, as
+    ``lsh._band_pairs_sorted`` finds them (offsets below ``_SMALL_BUCKET`` within the sorted
+    key, then the rest of each larger bucket), at most ``STREAM_PAIRS`` at a time."""
+    n = len(key)
+    order = np.argsort(key, kind="stable")
+    sc = key[order]
+    starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
+    sizes = np.diff(np.append(starts, n))
+    if not len(sizes) or sizes.max() < 2:
+        return
+    pieces: list[tuple[np.ndarray, np.ndarray]] = []
+    for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
+        at = np.flatnonzero(sc[:-d] == sc[d:])
+        if not len(at):
+            break
+        for lo in range(0, len(at), STREAM_PAIRS):
+            pieces.append((order[at[lo:lo + STREAM_PAIRS]], order[at[lo:lo + STREAM_PAIRS] + d]))
+        yield from _ordered_new(pieces, is_new)
+    for st, sz in zip(starts[sizes > _SMALL_BUCKET].tolist(), sizes[sizes > _SMALL_BUCKET].tolist()):
+        members = order[st:st + sz]
+        count = sz - _SMALL_BUCKET - np.arange(sz - _SMALL_BUCKET)  # partners of each row a
+        ends = np.cumsum(count)
+        a0 = 0
+        while a0 < len(count):  # rows a0..a1-1 with all their partners b >= a + _SMALL_BUCKET
+            a1 = max(a0 + 1, int(np.searchsorted(ends, (ends[a0 - 1] if a0 else 0) + STREAM_PAIRS, "right")))
+            a = np.repeat(np.arange(a0, a1), count[a0:a1])
+            first = np.repeat(ends[a0:a1] - count[a0:a1], count[a0:a1])
+            b = np.arange(len(a)) + (ends[a0 - 1] if a0 else 0) - first + a + _SMALL_BUCKET
+            pieces.append((members[a], members[b]))
+            yield from _ordered_new(pieces, is_new)
+            a0 = a1
+
+
+def _ordered_new(pieces: list[tuple[np.ndarray, np.ndarray]], is_new: np.ndarray
+                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Empties ``pieces``: each as ``(min, max)`` rows, only pairs with a new row."""
+    while pieces:
+        x, y = pieces.pop()
+        i, j = np.minimum(x, y), np.maximum(x, y)
+        if not is_new.all():
+            new = is_new[i] | is_new[j]
+            i, j = i[new], j[new]
+        if len(i):
+            yield i.astype(np.int64), j.astype(np.int64)
+
+
+def _fill_skipped(block: np.ndarray, marks: np.ndarray, rows: int, row_ids: np.ndarray) -> None:
+    """Writes into ``block`` (``(m, bands * rows)``, one row per ``row_ids``) the values of the
+    skipped bands ``marks`` (``(m, bands)``): the row's number, then ``EMPTY_VALUE - 1``."""
+    r, b = np.nonzero(marks)
+    if not len(r):
+        return
+    view = block.reshape(len(block), -1, rows)
+    view[r, b, :] = EMPTY_VALUE - np.uint32(1)
+    view[r, b, 0] = row_ids[r].astype(np.uint32)
+
+
+def _first_found_in(sig: np.ndarray, codes: np.ndarray, cols: list[np.ndarray], band: int,
+                    skip: np.ndarray | None) -> np.ndarray:
+    """Mask of the codes whose two rows hold different values in every band before ``band``
+    (``cols``: each band's columns, in band order; ``skip``: the plain bands' marks, filled as
+    ``streamed_pair_codes`` fills them), a chunk of pairs at a time."""
+    fresh = np.ones(len(codes), dtype=bool)
+    if not band or not len(codes):
+        return fresh
+    n = len(sig)
+    rows = len(cols[0])
+    earlier = np.concatenate(cols[:band])
+    for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+        i, j = np.divmod(codes[lo:lo + PAIR_CHUNK], n)
+        a, b = sig[i], sig[j]
+        if skip is not None:
+            _fill_skipped(a, skip[i], rows, i)
+            _fill_skipped(b, skip[j], rows, j)
+        same = (a[:, earlier] == b[:, earlier]).reshape(len(i), band, rows).all(axis=2).any(axis=1)
+        fresh[lo:lo + len(i)] = ~same
+    return fresh
+
+
+def few_new(is_new: np.ndarray) -> bool:
+    """Whether the rows marked new are few enough (a rerun) for the whole-corpus banding of
+    ``lsh.banded_pair_codes`` (its compiled path, dedup's generic bands of the paired rows
+    only, sets read for the paired rows only): then candidates are few and need no streaming."""
+    from .lsh import _FEW_NEW
+
+    return int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
