@@ -1,13 +1,17 @@
 """One ``midisift run`` inside this process, measured where the bench's process-level figures
 cannot look: the main process's memory by phase and by source line, or its time by function.
 
-    python -m pipeline.tools.trace_run rss|mem|prof CONFIG INPUT OUTPUT [--keep] [--profile FILE]
+    python -m pipeline.tools.trace_run rss|mem|prof|time CONFIG INPUT OUTPUT [--keep] [--profile FILE]
 
 ``rss`` samples the main process's resident memory every 0.1 s and reports its peak in each
 phase (per-file pass, stage walk, manifest); ``mem`` traces its allocations (tracemalloc; the
 workers are not traced) and prints the largest source lines after the per-file pass, when
 dedup and split start, after the walk and half-way through the manifest, with the peak inside
-each corpus stage; ``prof`` profiles the run (cProfile) and writes the profile to ``--profile``.
+each corpus stage; ``prof`` profiles the run (cProfile) and writes the profile to ``--profile``;
+``time`` measures the wall and CPU time of the main process in each of the run's named steps
+(``TIMED``: reads of stored state, the corpus stages and their searches, the outputs), without
+a profiler's slowdown (a step's time includes the steps it calls and about 1 us a call of
+the timer's own; calls are summed).
 Every mode prints the main process's and the workers' CPU time. ``--keep`` runs into OUTPUT as
 it is (a rerun); otherwise OUTPUT is emptied first. Tracing makes the run several times slower:
 keep the corpus bounded (20,000 small files take a few minutes on 2 cores).
@@ -18,9 +22,12 @@ import argparse
 import gc
 import resource
 import shutil
+import sys
 import threading
 import time
 import tracemalloc
+from collections import defaultdict
+from importlib import import_module
 from pathlib import Path
 from typing import Any, Callable
 
@@ -95,6 +102,63 @@ def _hook(phases: _Phases) -> None:
     executor._worker_main = untraced_worker
 
 
+#: The steps ``time`` measures: (module, attribute path). Chosen for a rerun: what reads every
+#: content's stored state, the corpus stages and their candidate searches, the outputs.
+TIMED = (
+    ("pipeline.engine.sources", "discover"), ("pipeline.store.ledger", "Ledger.sources"),
+    ("pipeline.store.ledger", "Ledger.verdicts_for"), ("pipeline.store.ledger", "Ledger.artifact_keys"),
+    ("pipeline.store.ledger", "Ledger.decision_statuses"), ("pipeline.store.ledger", "Ledger.outputs"),
+    ("pipeline.outputs.files", "existing_outputs"), ("pipeline.engine.plan", "Planner.task"),
+    ("pipeline.engine.runner", "Runner._execute"), ("pipeline.engine.runner", "Runner._flush"),
+    ("pipeline.engine.walk", "StageWalk.run"), ("pipeline.store.ledger", "Ledger.artifact_columns"),
+    ("pipeline.engine.walk", "_last_results"), ("pipeline.store.ledger", "Ledger.state_for"),
+    ("pipeline.stages.dedup", "Dedup.run_corpus"), ("pipeline.stages.split", "Split.run_corpus"),
+    ("pipeline.stages.split", "Split._near_links"), ("pipeline.similarity.lsh", "LSHIndex.candidate_codes"),
+    ("pipeline.similarity.overlap_sketch", "sketched_codes"), ("pipeline.similarity.links", "verify_codes"),
+    ("pipeline.outputs.files", "place"), ("pipeline.outputs.manifest", "write_all"),
+    ("pipeline.outputs.rowreuse", "row_digest"), ("pipeline.store.ledger", "Ledger.put_state"),
+    ("pipeline.outputs.page", "write_report"),
+)
+
+
+def time_steps() -> tuple[dict[str, list], Callable[[], None]]:
+    """Wrap each step of ``TIMED`` (also where another module imported it by name) so its
+    calls, wall and CPU time are summed: (label -> [calls, wall s, CPU s], a function that
+    puts the steps back as they were)."""
+    sums: dict[str, list] = defaultdict(lambda: [0, 0.0, 0.0])
+    undo: list[tuple[Any, str, Any]] = []
+    for module, path in TIMED:
+        owner: Any = import_module(module)
+        *outer, name = path.split(".")
+        for part in outer:
+            owner = getattr(owner, part)
+        fn = getattr(owner, name)
+        label = f"{module.rsplit('.', 1)[-1]}.{path}"
+
+        def timed(*a: Any, _fn: Callable = fn, _sum: list = sums[label], **k: Any) -> Any:
+            t, c = time.perf_counter(), time.process_time()
+            try:
+                return _fn(*a, **k)
+            finally:
+                _sum[0] += 1
+                _sum[1] += time.perf_counter() - t
+                _sum[2] += time.process_time() - c
+
+        undo.append((owner, name, owner.__dict__[name]))
+        setattr(owner, name, timed)
+        if not outer:  # a module's function: also under the names other modules import it by
+            for mod in list(sys.modules.values()):
+                if getattr(mod, "__name__", "").startswith("pipeline.") and getattr(mod, name, None) is fn:
+                    undo.append((mod, name, fn))
+                    setattr(mod, name, timed)
+
+    def restore() -> None:
+        for owner, name, original in reversed(undo):
+            setattr(owner, name, original)
+
+    return sums, restore
+
+
 def _traced_stage(fn: Callable, name: str, phases: _Phases) -> Callable:
     def run_corpus(self: Any, members: Any, state: Any) -> Any:
         phases.enter(f"{name} starts")
@@ -112,7 +176,7 @@ def _traced_stage(fn: Callable, name: str, phases: _Phases) -> Callable:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m pipeline.tools.trace_run", description=__doc__.split("\n\n")[0])
-    ap.add_argument("mode", choices=("rss", "mem", "prof"))
+    ap.add_argument("mode", choices=("rss", "mem", "prof", "time"))
     ap.add_argument("config")
     ap.add_argument("input")
     ap.add_argument("output")
@@ -130,6 +194,7 @@ def main(argv: list[str] | None = None) -> int:
         threading.Thread(target=phases.sample_rss, daemon=True).start()
     if args.mode == "mem":
         tracemalloc.start()
+    sums, untime = time_steps() if args.mode == "time" else (None, None)
     profile = None
     if args.mode == "prof":
         import cProfile
@@ -156,6 +221,12 @@ def main(argv: list[str] | None = None) -> int:
             for st in snap.statistics("lineno")[:args.lines]:
                 frame = st.traceback[0]
                 print(f"  {st.size / 2**20:8.2f} MB {st.count:9d}  {frame.filename}:{frame.lineno}")
+    if untime is not None:
+        untime()
+    if sums is not None:
+        print("steps of the main process (wall s, CPU s, calls), the slowest first:")
+        for label, (calls, wall_s, cpu_s) in sorted(sums.items(), key=lambda kv: -kv[1][1]):
+            print(f"  {wall_s:8.3f} {cpu_s:8.3f} {calls:8d}  {label}")
     if profile is not None:
         print(f"profile written to {args.profile} (python -m pstats {args.profile})")
     return 0
