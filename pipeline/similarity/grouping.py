@@ -256,14 +256,15 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
 
     if len(keys) < 2:
         return []
-    sig = np.asarray(matrix(), dtype=np.uint32)
-    num_perm = sig.shape[1]
     wanted = None if only is None else np.array([k in only for k in keys])
-    rows = lsh_rows(threshold, num_perm, recall)
     if shingles is not None and not few_new(np.ones(len(keys), dtype=bool) if wanted is None else wanted):
         # memory: a full search streams its candidates a block of bands at a time, each block
-        # bounded at once (the same pairs: similarity.candidates)
-        return _streamed_links(keys, sig, threshold, shingles, rows, wanted, margin_sigmas, read, sizes)
+        # bounded at once (the same pairs: similarity.candidates); it makes the matrix itself,
+        # so none is held here while its survivors are verified
+        return _streamed_links(keys, matrix, threshold, shingles, recall, wanted, margin_sigmas, read, sizes)
+    sig = np.asarray(matrix(), dtype=np.uint32)
+    num_perm = sig.shape[1]
+    rows = lsh_rows(threshold, num_perm, recall)
     # recall: each half of a signature (the leads', the whole sets') holds half of the bands, so
     # a pair alike in one half only is found with 1 - (1 - s^r)^(b/2); the same values banded
     # again one row over give it as many bands more (README, "The split's search against every
@@ -315,14 +316,15 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     return verify_codes(keys, codes, shingles, threshold, read=read)
 
 
-def _streamed_links(keys: list[str], sig: "np.ndarray", threshold: float, shingles: Mapping[str, "np.ndarray"],
-                    rows: int, wanted: "np.ndarray | None", margin_sigmas: float,
-                    read: "Callable[[list], list] | None", sizes: "np.ndarray | None"
+def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold: float,
+                    shingles: Mapping[str, "np.ndarray"], recall: float, wanted: "np.ndarray | None",
+                    margin_sigmas: float, read: "Callable[[list], list] | None", sizes: "np.ndarray | None"
                     ) -> list[tuple[str, str, float]]:
     """``near_links_of``'s search with shingles, its candidates streamed (``similarity.candidates``):
-    the bands of ``rows`` rows and the same bands one row over, each block's new pairs bounded
+    the bands of ``lsh_rows`` rows and the same bands one row over, each block's new pairs bounded
     exactly (``overlap_sketch``, every live set sketched up front) and by the MinHash bounds,
-    then the survivors verified: the links of banding every pair first."""
+    then the survivors verified, the signatures and sketches let go: the links of banding
+    every pair first."""
     import numpy as np
 
     from .candidates import streamed_pair_codes
@@ -331,7 +333,9 @@ def _streamed_links(keys: list[str], sig: "np.ndarray", threshold: float, shingl
     from .minhash import EMPTY_VALUE
     from .overlap_sketch import bounded_codes, sketch_rows
 
+    sig = np.asarray(matrix(), dtype=np.uint32)
     n, num_perm = sig.shape
+    rows = lsh_rows(threshold, num_perm, recall)
     err = check_banding(num_perm, num_perm // rows)
     if err:
         raise ValueError(err)

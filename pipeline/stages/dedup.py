@@ -413,6 +413,7 @@ class Dedup(Stage):
         threshold, ratio = float(o["threshold"]), float(o["min_size_ratio"])
         sig = index.matrix()
         n = len(sig)
+        skip = self._generic_bands(sig, None)  # memory: its transients go before the sketches come
         sk = sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays, generic=self._generic)
         at = np.arange(n)
         counts = [0, 0, 0]
@@ -427,7 +428,7 @@ class Dedup(Stage):
             counts[2] += len(codes)
             return codes
 
-        codes = streamed_pair_codes(sig, index.bands, is_new, keep, skip=self._generic_bands(sig, None))
+        codes = streamed_pair_codes(sig, index.bands, is_new, keep, skip=skip)
         return codes, (counts[0], counts[1], counts[2])
 
     def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
