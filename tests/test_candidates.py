@@ -8,8 +8,8 @@ import pytest
 from test_dedup import _tunes_over_one_accompaniment, corpus, run  # noqa: F401
 
 from pipeline.similarity import candidates
-from pipeline.similarity.candidates import few_new, streamed_pair_codes
-from pipeline.similarity.lsh import LSHIndex, banded_pair_codes
+from pipeline.similarity.candidates import streamed_pair_codes
+from pipeline.similarity.lsh import LSHIndex, banded_pair_codes, few_new
 from pipeline.similarity.minhash import EMPTY_VALUE
 
 
@@ -137,9 +137,10 @@ def test_dedup_streamed_equals_all_at_once_with_members_of_one_content(monkeypat
 
 def test_split_search_streamed_equals_all_at_once(monkeypatch):
     # Reference: near_links_of's all-at-once path (band_codes, sketched_codes, the MinHash
-    # bounds over every candidate), which a rerun with few new files still takes; forced here.
+    # bounds over every candidate), which a rerun with few new files still takes; forced here
+    # (lsh.few_new, the one rule every search asks, so the banding takes the rerun's path too).
     # Random sets with planted overlaps on both sides of the grouping threshold (0.2).
-    from pipeline.similarity import candidates
+    from pipeline.similarity import lsh
     from pipeline.similarity.grouping import near_links
     from pipeline.similarity.minhash import minhash
 
@@ -149,6 +150,6 @@ def test_split_search_streamed_equals_all_at_once(monkeypatch):
     sigs = {k: minhash(v) for k, v in sets.items()}
     streamed = near_links(sigs, 0.2, sets)
     with monkeypatch.context() as mp:
-        mp.setattr(candidates, "few_new", lambda is_new: True)
+        mp.setattr(lsh, "few_new", lambda is_new: True)
         whole = near_links(sigs, 0.2, sets)
     assert streamed == whole and len(whole) > 10

@@ -149,12 +149,3 @@ def _first_found_in(sig: np.ndarray, codes: np.ndarray, cols: list[np.ndarray], 
         same = (a[:, earlier] == b[:, earlier]).reshape(len(i), band, rows).all(axis=2).any(axis=1)
         fresh[lo:lo + len(i)] = ~same
     return fresh
-
-
-def few_new(is_new: np.ndarray) -> bool:
-    """Whether the rows marked new are few enough (a rerun) for the whole-corpus banding of
-    ``lsh.banded_pair_codes`` (its compiled path, dedup's generic bands of the paired rows
-    only, sets read for the paired rows only): then candidates are few and need no streaming."""
-    from .lsh import _FEW_NEW
-
-    return int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)

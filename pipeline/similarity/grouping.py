@@ -249,8 +249,7 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
-    from .candidates import few_new
-    from .lsh import PAIR_CHUNK, pair_estimates, plausible_pairs
+    from .lsh import PAIR_CHUNK, few_new, pair_estimates, plausible_pairs
     from .links import verify_codes
     from .overlap_sketch import sketched_codes
 

@@ -116,7 +116,7 @@ class LSHIndex:
             return np.zeros(0, dtype=np.int64)
         sig = self.matrix()
         if callable(skip):
-            if int(np.count_nonzero(is_new)) * _FEW_NEW <= n:
+            if few_new(is_new):
                 # speed: a rerun marks the generic bands of the rows it pairs, not of every row
                 return unskipped_codes(sig, self.bands, banded_pair_codes(sig, self.bands, is_new), skip)
             skip = skip(None)
@@ -242,8 +242,7 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
     second time one row over (rows ``1..r``, ``r+1..2r``, ..., the last wrapping round to row
     0): as many bands again over the same values, read from the matrix itself (the compiled
     path bands a rolled copy)."""
-    few_new = int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
-    kernel = compiled_kernel("band_pair_codes") if compiled and few_new else None
+    kernel = compiled_kernel("band_pair_codes") if compiled and few_new(is_new) else None
     if kernel is not None:
         sig = np.ascontiguousarray(sig, dtype=np.uint32)
         new_bytes = np.ascontiguousarray(is_new, dtype=bool).view(np.uint8)
@@ -319,8 +318,7 @@ _SMALL_BUCKET = 32
 def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
     """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band."""
     n = len(col)
-    n_new = int(np.count_nonzero(is_new))
-    if n_new * _FEW_NEW <= n:
+    if few_new(is_new):
         # incremental: the rows whose key a new row has, found by binary search in the few new
         # keys instead of sorting the whole band (a rerun with 1% new files)
         new_keys = sorted_unique(col[is_new])
@@ -337,6 +335,14 @@ def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
 
 #: Below one new row in this many, a band pairs only the buckets a new row is in.
 _FEW_NEW = 16
+
+
+def few_new(is_new: np.ndarray) -> bool:
+    """Whether the rows marked new are few (a rerun: one row in ``_FEW_NEW`` or fewer): then a
+    band pairs only the buckets a new row is in, the compiled banding runs, dedup marks the
+    generic bands of the paired rows only, and the candidates are few enough to need no
+    streaming (``candidates.streamed_pair_codes`` serves the other searches)."""
+    return int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
 
 
 def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:

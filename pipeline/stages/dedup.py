@@ -35,10 +35,10 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..midi.piece import Piece
 from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, generic_shingles
-from ..similarity.lsh import LSHIndex, check_banding, generic_bands
+from ..similarity.lsh import LSHIndex, check_banding, few_new, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
-from ..similarity.candidates import few_new, streamed_pair_codes
+from ..similarity.candidates import streamed_pair_codes
 from ..similarity.overlap_sketch import bounded_codes, sketch_rows, sketched_codes
 from ..store.columns import column_of, lengths_of, stacked
 from ..store.columns import present as holding  # run_corpus names its member set `present`
