@@ -22,6 +22,7 @@ from ..stages import CorpusState, Member, Stage
 from ..store.codec import canonical_json, thresholds_json
 from ..store.ledger import Ledger
 from ..store.records import Compactor, TrailValues
+from .heap import release_free_memory
 
 
 class StageWalk:
@@ -105,6 +106,7 @@ class StageWalk:
                 state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
                                                       "previous_results": last})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
+                release_free_memory()  # memory: what earlier steps freed is not kept beside this one
                 res = st.run_corpus(members, state) if members else {}
                 mids = [m.id for m in members]  # memory: the members' id strings, not new ones
                 del members
