@@ -7,7 +7,7 @@ import pytest
 
 from test_dedup import _tunes_over_one_accompaniment, corpus, run  # noqa: F401
 
-from pipeline.similarity import candidates
+from pipeline.similarity import lsh
 from pipeline.similarity.candidates import streamed_pair_codes
 from pipeline.similarity.lsh import LSHIndex, banded_pair_codes, few_new
 from pipeline.similarity.minhash import EMPTY_VALUE
@@ -61,8 +61,10 @@ def test_streamed_codes_are_the_banded_codes(n, num_perm, bands, values, shifted
             seen.extend(codes.tolist())
             return codes
 
-        for piece in (7, candidates.STREAM_PAIRS):
-            monkeypatch.setattr(candidates, "STREAM_PAIRS", piece)
+        for piece in (7, lsh.STREAM_PAIRS):
+            monkeypatch.setattr(lsh, "STREAM_PAIRS", piece)
+            # the whole-corpus banding pairs a band through the same pieces
+            assert banded_pair_codes(sig, bands, is_new, shifted=shifted, compiled=False).tolist() == want
             seen.clear()
             assert streamed_pair_codes(sig, bands, is_new, keep, shifted=shifted).tolist() == want
             assert sorted(seen) == want  # every pair handed to keep once
@@ -140,7 +142,6 @@ def test_split_search_streamed_equals_all_at_once(monkeypatch):
     # bounds over every candidate), which a rerun with few new files still takes; forced here
     # (lsh.few_new, the one rule every search asks, so the banding takes the rerun's path too).
     # Random sets with planted overlaps on both sides of the grouping threshold (0.2).
-    from pipeline.similarity import lsh
     from pipeline.similarity.grouping import near_links
     from pipeline.similarity.minhash import minhash
 

@@ -13,17 +13,12 @@ it against brute-force banding and against ``banded_pair_codes`` filtered afterw
 """
 from __future__ import annotations
 
-from typing import Callable, Iterator
+from typing import Callable
 
 import numpy as np
 
-from .lsh import _SMALL_BUCKET, PAIR_CHUNK, band_key, check_banding, sorted_unique
+from .lsh import PAIR_CHUNK, band_key, check_banding, equal_key_pairs, sorted_unique
 from .minhash import EMPTY_VALUE
-
-
-#: Pairs of one band handled at once (memory: a band's few large buckets held hundreds of
-#: thousands of pairs each at 100,000 files, and their count grows with the square of a bucket).
-STREAM_PAIRS = 1 << 16
 
 
 def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
@@ -32,7 +27,7 @@ def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
     """The sorted unique codes ``i * n + j`` (``i < j``, rows of ``sig``) of
     ``banded_pair_codes(sig, bands, is_new, shifted=shifted)`` that ``keep`` keeps.
 
-    The bands are taken one at a time, and a band's pairs at most ``STREAM_PAIRS`` at a time;
+    The bands are taken one at a time, and a band's pairs at most ``lsh.STREAM_PAIRS`` at a time;
     ``keep(codes)`` gets each such piece's pairs not found in an earlier band (sorted unique
     codes; each pair once over the whole call) and returns the ones to keep (a pure per-pair
     filter, so filtering each piece gives what filtering all candidates would). ``skip``
@@ -60,7 +55,7 @@ def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
         # keyed as band 0 of its own: the keys move by one constant, the pairs are the band's
         key = band_key(block, 1, 0)
         del block
-        for i, j in _equal_key_pairs(key, is_new):
+        for i, j in equal_key_pairs(key, is_new):
             codes = np.sort(i * n + j)
             codes = codes[_first_found_in(sig, codes, cols, b, skip)]
             if len(codes):
@@ -69,53 +64,6 @@ def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
     if not kept:
         return np.zeros(0, dtype=np.int64)
     return sorted_unique(np.concatenate(kept))
-
-
-def _equal_key_pairs(key: np.ndarray, is_new: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-    """The pairs ``(i, j)``, ``i < j``, of rows with equal ``key``, at least one ``is_new``, as
-    ``lsh._band_pairs_sorted`` finds them (offsets below ``_SMALL_BUCKET`` within the sorted
-    key, then the rest of each larger bucket), at most ``STREAM_PAIRS`` at a time."""
-    n = len(key)
-    order = np.argsort(key, kind="stable")
-    sc = key[order]
-    starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
-    sizes = np.diff(np.append(starts, n))
-    if not len(sizes) or sizes.max() < 2:
-        return
-    pieces: list[tuple[np.ndarray, np.ndarray]] = []
-    for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
-        at = np.flatnonzero(sc[:-d] == sc[d:])
-        if not len(at):
-            break
-        for lo in range(0, len(at), STREAM_PAIRS):
-            pieces.append((order[at[lo:lo + STREAM_PAIRS]], order[at[lo:lo + STREAM_PAIRS] + d]))
-        yield from _ordered_new(pieces, is_new)
-    for st, sz in zip(starts[sizes > _SMALL_BUCKET].tolist(), sizes[sizes > _SMALL_BUCKET].tolist()):
-        members = order[st:st + sz]
-        count = sz - _SMALL_BUCKET - np.arange(sz - _SMALL_BUCKET)  # partners of each row a
-        ends = np.cumsum(count)
-        a0 = 0
-        while a0 < len(count):  # rows a0..a1-1 with all their partners b >= a + _SMALL_BUCKET
-            a1 = max(a0 + 1, int(np.searchsorted(ends, (ends[a0 - 1] if a0 else 0) + STREAM_PAIRS, "right")))
-            a = np.repeat(np.arange(a0, a1), count[a0:a1])
-            first = np.repeat(ends[a0:a1] - count[a0:a1], count[a0:a1])
-            b = np.arange(len(a)) + (ends[a0 - 1] if a0 else 0) - first + a + _SMALL_BUCKET
-            pieces.append((members[a], members[b]))
-            yield from _ordered_new(pieces, is_new)
-            a0 = a1
-
-
-def _ordered_new(pieces: list[tuple[np.ndarray, np.ndarray]], is_new: np.ndarray
-                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-    """Empties ``pieces``: each as ``(min, max)`` rows, only pairs with a new row."""
-    while pieces:
-        x, y = pieces.pop()
-        i, j = np.minimum(x, y), np.maximum(x, y)
-        if not is_new.all():
-            new = is_new[i] | is_new[j]
-            i, j = i[new], j[new]
-        if len(i):
-            yield i.astype(np.int64), j.astype(np.int64)
 
 
 def _fill_skipped(block: np.ndarray, marks: np.ndarray, rows: int, row_ids: np.ndarray) -> None:

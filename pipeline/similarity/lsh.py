@@ -9,7 +9,7 @@ grouping), ``plausible_pairs`` drops candidates whose signatures cannot reach a 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 import numpy as np
 
@@ -316,68 +316,87 @@ _SMALL_BUCKET = 32
 
 
 def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
-    """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band."""
+    """Pair codes ``i * n + j`` (``i < j``) of rows with equal keys in one band, at least one
+    of them new."""
     n = len(col)
-    if few_new(is_new):
-        # incremental: the rows whose key a new row has, found by binary search in the few new
-        # keys instead of sorting the whole band (a rerun with 1% new files)
+    rows = None
+    if not is_new.all():
+        # incremental: only the rows whose key a new row has can pair with one, found by binary
+        # search in the new keys instead of pairing the whole band (a rerun with 1% new files)
         new_keys = sorted_unique(col[is_new])
         pos = np.minimum(np.searchsorted(new_keys, col), len(new_keys) - 1)
         rows = np.flatnonzero(new_keys[pos] == col)
         if len(rows) < 2:
             return np.zeros(0, dtype=np.int64)
-        sub = rows[_band_pairs_sorted(col[rows], is_new[rows])]
-        sub.sort(axis=1)
-        return sub[:, 0] * n + sub[:, 1]
-    pairs = _band_pairs_sorted(col, is_new)
-    return pairs[:, 0] * n + pairs[:, 1]
+        col, is_new = col[rows], is_new[rows]
+    codes = [(i if rows is None else rows[i]) * n + (j if rows is None else rows[j])
+             for i, j in equal_key_pairs(col, is_new)]  # rows ascend: i < j stays
+    return np.concatenate(codes) if codes else np.zeros(0, dtype=np.int64)
 
 
-#: Below one new row in this many, a band pairs only the buckets a new row is in.
+#: At or below one new row in this many, a search takes the rerun's path (``few_new``).
 _FEW_NEW = 16
 
 
 def few_new(is_new: np.ndarray) -> bool:
-    """Whether the rows marked new are few (a rerun: one row in ``_FEW_NEW`` or fewer): then a
-    band pairs only the buckets a new row is in, the compiled banding runs, dedup marks the
+    """Whether the rows marked new are few (a rerun: one row in ``_FEW_NEW`` or fewer): then
+    the compiled banding runs, dedup marks the
     generic bands of the paired rows only, and the candidates are few enough to need no
     streaming (``candidates.streamed_pair_codes`` serves the other searches)."""
     return int(np.count_nonzero(is_new)) * _FEW_NEW <= len(is_new)
 
 
-def _band_pairs_sorted(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
-    """Row pairs ``(i, j)``, ``i < j``, of rows with equal keys ``col``, at least one of them
-    ``is_new``: an ``(M, 2)`` int64 array (by sorting the band)."""
-    n = len(col)
-    order = np.argsort(col, kind="stable")
-    sc = col[order]
+#: Pairs of one band handled at once (memory: a band's few large buckets held hundreds of
+#: thousands of pairs each at 100,000 files, and their count grows with the square of a bucket).
+STREAM_PAIRS = 1 << 16
+
+
+def equal_key_pairs(key: np.ndarray, is_new: np.ndarray) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """The pairs ``(i, j)``, ``i < j``, of rows with equal ``key``, at least one ``is_new``, by
+    sorting the key (offsets below ``_SMALL_BUCKET`` within the sorted key, then the rest of
+    each larger bucket), at most ``STREAM_PAIRS`` at a time: the one pairing of a band, for
+    the whole-corpus banding (``_band_pairs``) and the streamed one (``candidates``)."""
+    n = len(key)
+    order = np.argsort(key, kind="stable")
+    sc = key[order]
     starts = np.flatnonzero(np.concatenate(([True], sc[1:] != sc[:-1])))
     sizes = np.diff(np.append(starts, n))
-    if not is_new.all():
-        # incremental: only buckets holding a new row can give a wanted pair; drop the others
-        # before pairing (a rerun with 1% new files then pairs ~1% of the buckets)
-        wanted = np.maximum.reduceat(is_new[order].astype(np.int8), starts).astype(bool) & (sizes > 1)
-        if not wanted.any():
-            return np.zeros((0, 2), dtype=np.int64)
-        rows = np.repeat(wanted, sizes)
-        order, sc = order[rows], sc[rows]
-        sizes = sizes[wanted]
-        starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
-    out: list[np.ndarray] = []
+    if not len(sizes) or sizes.max() < 2:
+        return
+    pieces: list[tuple[np.ndarray, np.ndarray]] = []
     for d in range(1, min(int(sizes.max()), _SMALL_BUCKET)):
-        same = sc[:-d] == sc[d:]
-        if not same.any():
+        at = np.flatnonzero(sc[:-d] == sc[d:])
+        if not len(at):
             break
-        out.append(np.stack([order[:-d][same], order[d:][same]], axis=1))
-    for st, sz in zip(starts[sizes > _SMALL_BUCKET], sizes[sizes > _SMALL_BUCKET]):
+        for lo in range(0, len(at), STREAM_PAIRS):
+            pieces.append((order[at[lo:lo + STREAM_PAIRS]], order[at[lo:lo + STREAM_PAIRS] + d]))
+        yield from _ordered_new(pieces, is_new)
+    for st, sz in zip(starts[sizes > _SMALL_BUCKET].tolist(), sizes[sizes > _SMALL_BUCKET].tolist()):
         members = order[st:st + sz]
-        i, j = np.triu_indices(sz, _SMALL_BUCKET)  # offsets below _SMALL_BUCKET are done above
-        out.append(np.stack([members[i], members[j]], axis=1))
-    if not out:
-        return np.zeros((0, 2), dtype=np.int64)
-    pairs = np.concatenate(out).astype(np.int64)
-    pairs.sort(axis=1)
-    return pairs[is_new[pairs[:, 0]] | is_new[pairs[:, 1]]]
+        count = sz - _SMALL_BUCKET - np.arange(sz - _SMALL_BUCKET)  # partners of each row a
+        ends = np.cumsum(count)
+        a0 = 0
+        while a0 < len(count):  # rows a0..a1-1 with all their partners b >= a + _SMALL_BUCKET
+            a1 = max(a0 + 1, int(np.searchsorted(ends, (ends[a0 - 1] if a0 else 0) + STREAM_PAIRS, "right")))
+            a = np.repeat(np.arange(a0, a1), count[a0:a1])
+            first = np.repeat(ends[a0:a1] - count[a0:a1], count[a0:a1])
+            b = np.arange(len(a)) + (ends[a0 - 1] if a0 else 0) - first + a + _SMALL_BUCKET
+            pieces.append((members[a], members[b]))
+            yield from _ordered_new(pieces, is_new)
+            a0 = a1
+
+
+def _ordered_new(pieces: list[tuple[np.ndarray, np.ndarray]], is_new: np.ndarray
+                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Empties ``pieces``: each as ``(min, max)`` rows, only pairs with a new row."""
+    while pieces:
+        x, y = pieces.pop()
+        i, j = np.minimum(x, y), np.maximum(x, y)
+        if not is_new.all():
+            new = is_new[i] | is_new[j]
+            i, j = i[new], j[new]
+        if len(i):
+            yield i.astype(np.int64), j.astype(np.int64)
 
 
 def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
