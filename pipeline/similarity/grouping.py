@@ -328,7 +328,7 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
 
     from .candidates import streamed_pair_codes
     from .links import verify_codes
-    from .lsh import PAIR_CHUNK, check_banding, plausible_pairs
+    from .lsh import check_banding, plausible_pair_codes
     from .minhash import EMPTY_VALUE
     from .overlap_sketch import bounded_codes, sketch_rows
 
@@ -353,12 +353,7 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
 
     def keep(codes: np.ndarray) -> np.ndarray:
         codes = bounded_codes(sk, at, codes, threshold)
-        sel = np.empty(len(codes), dtype=bool)
-        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
-            c = codes[lo:lo + PAIR_CHUNK]
-            sel[lo:lo + len(c)] = plausible_pairs(sig, c // m, c % m, sizes, threshold,
-                                                  margin_sigmas=margin_sigmas)
-        return codes[sel]
+        return plausible_pair_codes(sig, codes, sizes, threshold, margin_sigmas=margin_sigmas)
 
     codes = streamed_pair_codes(sig, num_perm // rows, is_new, keep, shifted=rows > 1)
     del sk, sig

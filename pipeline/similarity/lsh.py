@@ -173,17 +173,22 @@ class LSHIndex:
         LSH banding makes a pair with 2 rows per band a candidate from 2 equal values on: most
         candidates of a large corpus are unrelated pieces sharing one band, and this removes
         most of them without touching their shingles."""
-        n = len(self.ids)
         if not len(codes):
             return codes
-        keep = np.empty(len(codes), dtype=bool)
-        sig = self.matrix()
-        for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
-            c = codes[lo:lo + PAIR_CHUNK]
-            keep[lo:lo + len(c)] = plausible_pairs(sig, c // n, c % n, set_sizes, threshold,
-                                                   min_size_ratio=min_size_ratio, cap=cap,
-                                                   margin_sigmas=margin_sigmas)
-        return codes[keep]
+        return plausible_pair_codes(self.matrix(), codes, set_sizes, threshold, min_size_ratio=min_size_ratio,
+                                    cap=cap, margin_sigmas=margin_sigmas)
+
+
+def plausible_pair_codes(sig: np.ndarray, codes: np.ndarray, set_sizes: Any, threshold: float,
+                         **bounds: Any) -> np.ndarray:
+    """The codes ``i * len(sig) + j`` of ``codes`` that ``plausible_pairs`` keeps (its keyword
+    ``bounds``), a chunk of pairs at a time."""
+    n = len(sig)
+    keep = np.empty(len(codes), dtype=bool)
+    for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
+        c = codes[lo:lo + PAIR_CHUNK]
+        keep[lo:lo + len(c)] = plausible_pairs(sig, c // n, c % n, set_sizes, threshold, **bounds)
+    return codes[keep]
 
 
 def plausible_pairs(sig: np.ndarray, i: np.ndarray, j: np.ndarray, set_sizes: Any, threshold: float, *,
