@@ -423,7 +423,7 @@ def _touched_contents(changed: list[tuple[str, int, int, str]], gone: list[str],
     return touched
 
 
-def _unsettled_contents(touched: set[str], walk: StageWalk | Any, recorded: dict[str, tuple[str, str]],
+def _unsettled_contents(touched: set[str], walk: Any, recorded: dict[str, tuple[str, str]],
                         placed: dict[str, tuple[str, str]]) -> set[str]:
     """The contents whose manifest rows may differ from the last run's besides their per-file
     results (``RowReuse.settle``): ``touched`` sources, a corpus-stage record made in this run
