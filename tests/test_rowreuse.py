@@ -228,3 +228,90 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     monkeypatch.setattr(runner.manifest, "write_all", write_all)
     _run(corpus, dest)
     assert checked and checked[0] > 0
+
+
+def _checked_digests(monkeypatch) -> list[bool]:
+    """Wrap ``RowReuse.digest`` so every digest it returns is checked against the one
+    ``row_digest`` makes from the walk (the reference); returns, per row, whether it was taken
+    as settled (the last run's digest, not made)."""
+    from pipeline.outputs import rowreuse
+    settled: list[bool] = []
+    real = rowreuse.RowReuse.digest
+
+    def digest(self, f, walk, placed, positions):
+        got = real(self, f, walk, placed, positions)
+        settled.append(self._unsettled is not None and f.sha256 not in self._unsettled)
+        assert got == rowreuse.row_digest(f, walk, placed, positions), f.rel
+        return got
+    monkeypatch.setattr(rowreuse.RowReuse, "digest", digest)
+    return settled
+
+
+def test_settled_rows_keep_the_digest_a_rebuild_makes(first, tmp_path, monkeypatch):
+    """A rerun takes the last run's digest of a settled row (its content, sources, corpus-stage
+    records and placed outputs unchanged) without making it: every such digest equals the one
+    made from the walk, through the fixture's changes (near duplicates added, so clusters and
+    their rows change; a byte-identical copy under a name sorting first, which becomes its
+    content's representative; a file removed), and the outputs equal the rebuild's."""
+    corpus, base = first
+    settled = _checked_digests(monkeypatch)
+    _rerun(corpus, base, tmp_path / "reuse")
+    files = len((tmp_path / "reuse" / "manifest.jsonl").read_text().splitlines())
+    assert len(settled) == files
+    # a removed file makes dedup compute every cluster again (its records are new): only the
+    # rows of contents that stop at a per-file stage settle here
+    assert 0 < sum(settled) < files
+    _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run)
+    a, b = tmp_path / "reuse", tmp_path / "rebuild"
+    assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
+    assert _tables(a) == _tables(b)
+    # the next rerun adds one byte copy (its name sorts last): every other row settles
+    settled.clear()
+    shutil.copy(corpus / sorted(p.name for p in corpus.glob("*.mid"))[-1], corpus / "zzzz_late_copy.mid")
+    try:
+        _run(corpus, a)
+    finally:
+        (corpus / "zzzz_late_copy.mid").unlink()
+    # made: the rows of the copied content's sources (which of them represents it may change)
+    sha = json.loads([line for line in (a / "manifest.jsonl").read_text().splitlines()
+                      if '"zzzz_late_copy.mid"' in line][0])["sha256"]
+    shared = sum(f'"sha256": "{sha}"' in line for line in (a / "manifest.jsonl").read_text().splitlines())
+    assert shared >= 2 and len(settled) - sum(settled) == shared
+
+
+def test_rows_are_not_settled_after_a_stopped_run_or_over_an_older_output(first, tmp_path, monkeypatch):
+    """The sources and outputs tables may have been written by a run that stopped after the
+    last completed one (its row digests are older): no row settles then, and an output whose
+    saved rows' state has no version (written before it was kept) settles none either; both
+    reruns write what the rebuild writes."""
+    corpus, base = first
+    settled = _checked_digests(monkeypatch)
+    rebuild = tmp_path / "rebuild"
+    _rerun(corpus, base, rebuild, prepare=_forget_last_run)
+
+    def stopped(d: Path) -> None:  # a run started and never finished
+        db = sqlite3.connect(d / "state.sqlite")
+        with db:
+            db.execute("INSERT INTO runs (started, status, config) VALUES (0, 'running', '{}')")
+        db.close()
+
+    def older(d: Path) -> None:  # the rows' state as written before it had a version
+        db = sqlite3.connect(d / "state.sqlite")
+        with db:
+            n = db.execute("DELETE FROM state WHERE stage='_rows' AND key IN ('version', 'run')").rowcount
+        db.close()
+        assert n == 2
+
+    for name, prepare in (("stopped", stopped), ("older", older)):
+        settled.clear()
+        built = []
+        real = outputs.manifest_row
+        monkeypatch.setattr(outputs, "manifest_row", lambda f, *a: built.append(f.rel) or real(f, *a))
+        _rerun(corpus, base, tmp_path / name, prepare=prepare)
+        monkeypatch.setattr(outputs, "manifest_row", real)
+        files = len((rebuild / "manifest.jsonl").read_text().splitlines())
+        assert settled and not any(settled), name
+        assert 3 < len(built) < files // 2, name  # old lines are still reused
+        assert (tmp_path / name / "manifest.jsonl").read_bytes() == (rebuild / "manifest.jsonl").read_bytes()
+        assert _tables(tmp_path / name) == _tables(rebuild)
+        _saved_facts_are_the_manifests(tmp_path / name)

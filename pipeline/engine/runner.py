@@ -131,10 +131,15 @@ class Runner:
         known = ledger.sources()
         changed = fingerprint(files, known)
         present = {f.rel for f in files}
+        gone = [p for p in known if p not in present]
         with ledger.batch():
             ledger.put_sources(changed)
-            ledger.forget_sources([p for p in known if p not in present])
-        del known, changed  # memory: a row per file, written
+            ledger.forget_sources(gone)
+        # the contents of sources added, changed or removed (which source represents them may
+        # have changed: their rows are not settled, ``RowReuse.settle``); none to list on a
+        # first run, which reuses no row
+        touched = _touched_contents(changed, gone, known) if known else None
+        del known, changed, gone  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
         del present  # memory: a path per file, made again for the outputs
@@ -216,7 +221,9 @@ class Runner:
                 ledger.forget_outputs([rel for rel in recorded_out if rel not in placed.recorded])
                 ledger.put_outputs([(rel, *v) for rel, v in placed.recorded.items()
                                     if recorded_out.get(rel) != v])
-        del recorded_out
+        unsettled = (_unsettled_contents(touched, walk, recorded_out, placed.recorded)
+                     if touched is not None else None)
+        del recorded_out, touched
         timings["outputs"] = time.perf_counter() - t
 
         tally = manifest.Tally()
@@ -233,7 +240,9 @@ class Runner:
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
         from ..outputs.page import RowFacts, read_manifest, write_report  # the run's page
-        reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed)
+        reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed, run_id)
+        reuse.settle(unsettled)  # speed: a settled row's digest is the last run's, not made again
+        del unsettled
         # speed: gathered from the rows as they pass (a reused line from the last run's facts)
         page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
@@ -401,6 +410,33 @@ def _bulk_data() -> Iterator[None]:
         if enabled:
             gc.enable()
 
+
+
+def _touched_contents(changed: list[tuple[str, int, int, str]], gone: list[str],
+                      known: dict[str, tuple[int, int, str]]) -> set[str]:
+    """The contents (sha256) of the sources this run found new or changed (``changed``: the
+    fingerprinted rows), before and after, and of the sources gone since the last run."""
+    touched = {row[3] for row in changed}
+    for rel in [row[0] for row in changed] + gone:
+        if rel in known:
+            touched.add(known[rel][2])
+    return touched
+
+
+def _unsettled_contents(touched: set[str], walk: Any, recorded: dict[str, tuple[str, str]],
+                        placed: dict[str, tuple[str, str]]) -> set[str]:
+    """The contents whose manifest rows may differ from the last run's besides their per-file
+    results (``RowReuse.settle``): ``touched`` sources, a corpus-stage record made in this run
+    (not the last run's, as it is), a verdict of this run only (a source's fields, a missing
+    result), an output added, moved or removed (``recorded``: the outputs table as the last
+    run left it, ``placed``: as this run leaves it)."""
+    unsettled = set(touched)
+    for _replace, rows in walk.corpus_rows.values():  # all rows anew: every member is listed
+        unsettled.update(rows)
+    unsettled.update(sha for _stage, sha in walk.replaced)
+    unsettled.update(v[0] for rel, v in placed.items() if recorded.get(rel) != v)
+    unsettled.update(v[0] for rel, v in recorded.items() if placed.get(rel) != v)
+    return unsettled
 
 
 def _seen(rows: Iterator[dict | str], see: Any) -> Iterator[dict | str]:

@@ -112,14 +112,14 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
     about to be built (the runner reads their stored values in a few queries).
     ``on_unused(line)`` sees every line of the old manifest that is not reused (its source is
     gone or its row is built again), once all rows are through."""
-    from .rowreuse import line_prefix, row_digest
+    from .rowreuse import line_prefix
     old_lines = reuse.lines() if reuse is not None and reuse.usable else None
     pending = next(old_lines, None) if old_lines is not None else None
     for start in range(0, len(files), ROWS_AHEAD):
         chunk = files[start:start + ROWS_AHEAD]
         ahead: list[tuple[Any, str | None, str | None]] = []  # (file, digest, reused line)
         for f in chunk:
-            digest = row_digest(f, walk, placed, corpus_positions) if reuse is not None else None
+            digest = reuse.digest(f, walk, placed, corpus_positions) if reuse is not None else None
             line = None
             if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
                 while pending is not None and pending[0] < f.rel:

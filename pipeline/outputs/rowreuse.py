@@ -25,6 +25,9 @@ from typing import Any, Iterator
 from ..store.codec import thresholds_json
 
 STATE = "_rows"  # the ledger state entry: base key and the manifest's size and mtime
+#: What ``STATE`` holds: 2 adds the run that wrote it (``run``), which lets a rerun take the
+#: digest of a settled row as it is (``RowReuse.settle``); an older entry still reuses lines.
+STATE_VERSION = 2
 
 
 def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]) -> str:
@@ -45,14 +48,17 @@ def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]
 class RowReuse:
     """The last run's rows, as far as they can be trusted, for one rerun."""
 
-    def __init__(self, ledger: Any, out_dir: Path, base: str, recomputed: set[str]):
+    def __init__(self, ledger: Any, out_dir: Path, base: str, recomputed: set[str], run: int = 0):
         self.manifest = Path(out_dir) / "manifest.jsonl"
         self.base = base
         self.recomputed = recomputed
+        self.run = run  # this run's id (``Ledger.start_run``)
         self.old: dict[str, str] = {}
         self._order: list[str] = []
         #: the page's facts of the old manifest (``page.Facts.to_state``), when it is trusted
         self.facts: dict[str, Any] | None = None
+        #: contents whose rows may differ from the last run's (``settle``); None: any row may
+        self._unsettled: set[str] | None = None
         saved = ledger.state_for(STATE)
         if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
@@ -62,6 +68,11 @@ class RowReuse:
         self.old = old
         self.facts = saved.get("facts")
         self._order = sorted(old)  # the manifest's line order (sources sorted as discover does)
+        # the sources and outputs tables are those the digests were made beside only when every
+        # run started since the one that wrote them completed (a completed run either wrote
+        # them again or changed nothing); a stopped run may have written either table
+        last = saved.get("run") if saved.get("version") == STATE_VERSION else None
+        self._trusted_tables = type(last) is int and ledger.runs_unfinished(last, run) == 0
 
     @property
     def usable(self) -> bool:
@@ -77,6 +88,24 @@ class RowReuse:
         except (OSError, UnicodeDecodeError):
             return
 
+    def settle(self, unsettled: set[str] | None) -> None:
+        """Take the last run's digest, without computing it, for a source whose content is not
+        in ``unsettled``: the caller lists there every content that was computed, or whose
+        sources (which one represents it), corpus-stage records (a new record rather than the
+        last run's, as it is) or placed outputs (against the outputs table) changed in this run,
+        or that holds a verdict of this run only. Every other part of a row digest is then what
+        the last run hashed (its per-file results are fixed by ``base``). None: compute all."""
+        if self.old and self._trusted_tables and unsettled is not None:
+            self._unsettled = unsettled
+
+    def digest(self, f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]) -> str:
+        """The source's row digest: the last run's for a settled row (``settle``), else made."""
+        if self._unsettled is not None and f.sha256 not in self._unsettled:
+            old = self.old.get(f.rel)
+            if old is not None:
+                return old
+        return row_digest(f, walk, placed, corpus_positions)
+
     def gone(self, present: set[str]) -> list[str]:
         """Sources of the last run that this run does not have."""
         return [s for s in self.old if s not in present]
@@ -84,7 +113,8 @@ class RowReuse:
     def state_of(self, rows: int, facts: dict[str, Any]) -> dict[str, Any]:
         """This run's base key, row count, manifest stat and page facts, for the ledger's
         ``STATE`` entry (recorded in the run's last transaction, after the manifest is written)."""
-        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts}
+        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts,
+                "version": STATE_VERSION, "run": self.run}
 
 
 def line_prefix(f: Any) -> str:

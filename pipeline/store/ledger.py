@@ -346,6 +346,11 @@ class Ledger:
         self.db.execute("UPDATE runs SET finished=?, status='complete', counts=? WHERE id=?",
                         (time.time(), canonical_json(counts), run_id))
 
+    def runs_unfinished(self, after: int, before: int) -> int:
+        """How many runs started after run ``after`` and before run ``before`` did not complete."""
+        return self.db.execute("SELECT COUNT(*) FROM runs WHERE id>? AND id<? AND status!='complete'",
+                               (after, before)).fetchone()[0]
+
     def last_run(self) -> dict | None:
         row = self.db.execute(
             "SELECT id, started, finished, config, counts FROM runs WHERE status='complete' ORDER BY id DESC LIMIT 1"
