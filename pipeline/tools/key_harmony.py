@@ -36,7 +36,8 @@ Each variant appends some of these, read from the candidate tonic (``key._ROTATE
 per-key columns (a major and a minor block) and is scored by ``key_variants.cross_validate``
 (5-fold and leave-one-genre-out) with the shipped linear model; ``scaled`` fits the shipped
 features with each column divided by its standard deviation over the training rows (a
-genre-agnostic scale for the L2 penalty). ``--fold-seeds`` scores under other fold assignments
+genre-agnostic scale for the L2 penalty, at three strengths) and ``versions`` adds the other
+arrangements of the training songs (``NNN/versions/``) to the pop training rows. ``--fold-seeds`` scores under other fold assignments
 (README, Key detection, seventh round). These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations
@@ -269,6 +270,7 @@ VARIANTS = {
     "opening": ("opening",),
     "opening+closing": ("opening", "closing"),
     "opening-triads": ("opening_major", "opening_minor"),
+    "hyper8+opening-triads": ("hyper8_major", "hyper8_minor", "opening_major", "opening_minor"),
     "hyper8+step+change": ("hyper8_major", "hyper8_minor", "step_major", "step_minor",
                            "change_major", "change_minor"),
 }
