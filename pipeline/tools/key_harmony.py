@@ -4,7 +4,7 @@
         [--fold-seeds 1 2 3]
 
 In pop a minor song and its relative major share the chord set; what tells them apart is
-which chord opens the loop (a bar at the start of a 2-, 4- or 8-bar group), what the bass holds
+which chord opens the loop (a bar at the start of a 4- or 8-bar group), what the bass holds
 on the downbeats, and where progressions resolve (IV-V-I against the Aeolian bVI-bVII-i, the
 same two chords before a different target). The shipped features read triads per beat over the
 whole piece, the first and last triad and V-I cadences; none reads the bar or the hypermeter
@@ -34,11 +34,13 @@ each, by root or pitch class, normalized to sum 1 like ``key.key_features``' row
 
 Each variant appends some of these, read from the candidate tonic (``key._ROTATE``), as extra
 per-key columns (a major and a minor block) and is scored by ``key_variants.cross_validate``
-(5-fold and leave-one-genre-out) with the shipped linear model; ``scaled`` fits the shipped
-features with each column divided by its standard deviation over the training rows (a
+(5-fold and leave-one-genre-out) with the shipped linear model (``--only minor-errors`` prints
+where the evidence sits in pop's minor songs called their relative major); ``scaled`` fits the
+shipped features with each column divided by its standard deviation over the training rows (a
 genre-agnostic scale for the L2 penalty, at three strengths) and ``versions`` adds the other
-arrangements of the training songs (``NNN/versions/``) to the pop training rows. ``--fold-seeds`` scores under other fold assignments
-(README, Key detection, seventh round). These are experiments: nothing here is on the run path.
+arrangements of the training songs (``NNN/versions/``) to the pop training rows.
+``--fold-seeds`` scores under other fold assignments (README, Key detection, seventh round).
+These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations
 
@@ -278,6 +280,52 @@ MODELS = {"scaled": Scaled, "versions": WithVersions,
           "scaled-l2-0.03": lambda d: Scaled(d, l2=0.03), "scaled-l2-0.3": lambda d: Scaled(d, l2=0.3)}
 
 
+def minor_errors(data: HarmonyData, pop: str) -> None:
+    """Print where the harmony evidence sits in pop's minor songs that the shipped model
+    (5-fold) calls right and those it calls their relative major, how the same fold models
+    call those songs' other arrangements (``NNN/versions/``, never trained on with their song),
+    and how music21's analyzers (cached, evaluate_key's 150-song sample) call the songs."""
+    y = data.y["pop"]
+    n, every, v = len(y), {s: np.arange(len(data.y[s])) for s in data.sets}, data.versions
+    pred, pred_v = np.zeros(n, np.int64), np.zeros(len(v["y"]), np.int64)
+    for f in range(5):  # key_variants.cross_validate's pop folds
+        test = np.arange(n) % 5 == f
+        parts = [(s, every[s]) for s in data.sets if s != "pop"] + [("pop", np.flatnonzero(~test))]
+        model = key_variants.Linear(data).fit(parts)
+        pred[test] = model.proba("pop", np.flatnonzero(test)).argmax(1)
+        held = np.isin(v["song"], np.flatnonzero(test))
+        pred_v[held] = train_key.probabilities(v["phi"][held], model.w).argmax(1)
+    rows, tonic = np.arange(n), y % 12
+    relative = (tonic + 3) % 12  # the relative major's tonic (its class index)
+    groups = {"right": (y >= 12) & (pred == y), "called relative major": (y >= 12) & (pred == relative)}
+    h = data.harmony["pop"]
+    for feature, minor_row, major_row in (("hyper4 triads", "hyper4_minor", "hyper4_major"),
+                                          ("downbeat bass", "down_bass", "down_bass")):
+        a, b = h[rows, _HF[minor_row], tonic], h[rows, _HF[major_row], relative]
+        print(f"{feature}: " + "; ".join(
+            f"minor songs {g} ({m.sum()}): minor tonic {a[m].mean():.3f}, relative major "
+            f"{b[m].mean():.3f}, minor tonic more in {(a[m] > b[m]).sum()}" for g, m in groups.items()))
+    for g, m in groups.items():
+        songs = np.isin(v["song"], np.flatnonzero(m))
+        truth = v["y"][songs]
+        print(f"versions of the minor songs {g}: {songs.sum()}, right {(pred_v[songs] == truth).sum()}, "
+              f"relative major {(pred_v[songs] == (truth % 12 + 3) % 12).sum()}")
+    print(f"pop exact (5-fold): main files {np.mean(pred == y):.3f}, versions {np.mean(pred_v == v['y']):.3f}")
+    works = [w for w in eval_sets.pop(pop, None, music21_count=150) if w["truth"] is not None]
+    wrong = {works[i]["name"] for i in np.flatnonzero(groups["called relative major"])}
+    calls: dict[str, dict[str, int]] = {}
+    for w in works:
+        if w["name"] in wrong and w["music21"]:
+            tonic_pc, mode = w["truth"]
+            for method, (pc, m) in w["music21"].items():
+                said = ("annotated" if (pc, m) == (tonic_pc, mode) else "relative major"
+                        if (pc, m) == ((tonic_pc + 3) % 12, "major") else "other")
+                calls.setdefault(method, {}).setdefault(said, 0)
+                calls[method][said] += 1
+    for method, counts in calls.items():
+        print(f"music21 {method} on the songs called relative major in its sample: {counts}")
+
+
 def main(argv: list[str] | None = None) -> None:
     ap = key_variants.parser(__doc__)
     ap.add_argument("--fold-seeds", type=int, nargs="*", default=[],
@@ -287,6 +335,9 @@ def main(argv: list[str] | None = None) -> None:
     t0 = time.process_time()
     data = HarmonyData(args.pop, args.folk)
     print(f"features: {time.process_time() - t0:.0f} s CPU", flush=True)
+    if args.only == ["minor-errors"]:
+        minor_errors(data, args.pop)
+        return
     key_variants.print_header(data)
     for name in args.only or list(VARIANTS):
         spec = VARIANTS[name]
