@@ -29,7 +29,8 @@ each, by root or pitch class, normalized to sum 1 like ``key.key_features``' row
   (the harmonic rhythm: a chord counts once per arrival, however long it lasts);
 - ``opening`` / ``closing``: the duration distribution of the first / last 8 bars (Albrecht
   and Shanahan 2013, "The use of large corpora to train a new type of key-finding
-  algorithm", Music Perception 31(1): the start and the end of a piece state its key);
+  algorithm", Music Perception 31(1), cited from memory: the start and the end of a
+  piece state its key);
   ``opening_major`` / ``opening_minor``: the downbeat triads of the first 8 bars.
 
 Each variant appends some of these, read from the candidate tonic (``key._ROTATE``), as extra
