@@ -48,10 +48,12 @@ STEPS = (
 )
 
 
-def clock_steps() -> dict[str, list]:
-    """Wrap each step of ``STEPS`` (also where another module imported it by name); returns
-    label -> [calls, CPU seconds], summed while the wrappers stay in place."""
+def clock_steps() -> tuple[dict[str, list], Callable[[], None]]:
+    """Wrap each step of ``STEPS`` (also where another module imported it by name): (label ->
+    [calls, CPU seconds], summed while the wrappers stay in place; a function that puts the
+    steps back as they were)."""
     sums: dict[str, list] = defaultdict(lambda: [0, 0.0])
+    undo: list[tuple[Any, str, Any]] = []
     for module, path in STEPS:
         owner: Any = import_module(module)
         *outer, name = path.split(".")
@@ -67,12 +69,19 @@ def clock_steps() -> dict[str, list]:
                 _sum[0] += 1
                 _sum[1] += time.process_time() - c
 
+        undo.append((owner, name, owner.__dict__[name]))
         setattr(owner, name, timed)
         if not outer:
             for mod in list(sys.modules.values()):
                 if getattr(mod, "__name__", "").startswith("pipeline.") and getattr(mod, name, None) is fn:
+                    undo.append((mod, name, fn))
                     setattr(mod, name, timed)
-    return sums
+
+    def restore() -> None:
+        for owner, name, original in reversed(undo):
+            setattr(owner, name, original)
+
+    return sums, restore
 
 
 def _config(args: argparse.Namespace) -> Any:
@@ -80,13 +89,13 @@ def _config(args: argparse.Namespace) -> Any:
     return load_config(Path(args.config), input=args.input, output=args.output, workers="1")
 
 
-def steps(args: argparse.Namespace) -> None:
-    """The ``steps`` mode (module docstring)."""
+def steps(args: argparse.Namespace) -> dict[str, list]:
+    """The ``steps`` mode (module docstring); returns label -> [calls, CPU seconds]."""
     from pipeline.engine import runner
     import pipeline.stages  # noqa: F401 - the stage modules, so their steps can be wrapped
     for module in {m for m, _ in STEPS}:
         import_module(module)
-    sums = clock_steps()
+    sums, restore = clock_steps()
     moved = {"task alone": [0.0, 0], f"tasks {args.batch} a message": [0.0, 0], "outcome": [0.0, 0]}
 
     def pickled(label: str, obj: Any, count: int = 1) -> None:
@@ -106,14 +115,18 @@ def steps(args: argparse.Namespace) -> None:
             pickled("outcome", (i, "ok", outcome))
             yield outcome
 
-    runner.run_tasks = in_line
+    run_tasks, runner.run_tasks = runner.run_tasks, in_line
     cpu = 0.0
     files = 0
-    for _ in range(args.rounds):
-        shutil.rmtree(args.output, ignore_errors=True)
-        c = time.process_time()
-        files += runner.Runner(_config(args), quiet=True).run().files
-        cpu += time.process_time() - c
+    try:
+        for _ in range(args.rounds):
+            shutil.rmtree(args.output, ignore_errors=True)
+            c = time.process_time()
+            files += runner.Runner(_config(args), quiet=True).run().files
+            cpu += time.process_time() - c
+    finally:
+        runner.run_tasks = run_tasks
+        restore()
     shutil.rmtree(args.output, ignore_errors=True)
     print(f"{files} files in {args.rounds} round(s): the run's CPU {1000 * cpu / files:.3f} ms per file "
           "(one process, imports excluded)")
@@ -122,6 +135,7 @@ def steps(args: argparse.Namespace) -> None:
         print(f"  {1000 * spent / files:8.4f} {calls:8d}  {label}")
     for label, (spent, size) in moved.items():
         print(f"  pickled and unpickled, {label}: {1000 * spent / files:.4f} ms and {size / files:.0f} bytes per file")
+    return sums
 
 
 def executor_cost(args: argparse.Namespace) -> None:
@@ -133,12 +147,14 @@ def executor_cost(args: argparse.Namespace) -> None:
         tasks.extend(ts)
         return iter(())
 
-    runner.run_tasks = keep
+    run_tasks, runner.run_tasks = runner.run_tasks, keep
     shutil.rmtree(args.output, ignore_errors=True)
     try:
         runner.Runner(_config(args), quiet=True).run()
     except Exception:  # noqa: BLE001 - the run has no results to walk; its tasks are what we want
         pass
+    finally:
+        runner.run_tasks = run_tasks
     shutil.rmtree(args.output, ignore_errors=True)
     if not tasks:
         raise SystemExit("no tasks: the input folder has no MIDI file")
