@@ -7,8 +7,8 @@ process, and the cost of moving tasks and outcomes between processes.
 ``steps`` runs the whole run in this process, the workers' tasks in line (no fork), with a
 ``time.process_time`` clock around each step of ``STEPS`` (a few calls per file; no profiler,
 whose cost per call would distort the small steps), and pickles each task and each outcome as
-the executor sends them (one task per message and ``--batch`` per message), to report their
-cost. ``executor`` plans the run, records the outcomes of the first 200 tasks, and runs every
+the executor's pipes do (``multiprocessing``'s ``ForkingPickler``; one task per message and
+``--batch`` per message) and reads the bytes it just made back, to report their cost. ``executor`` plans the run, records the outcomes of the first 200 tasks, and runs every
 task through ``executor.run_tasks`` answered with a recorded outcome: the executor's own CPU
 per task, in the parent and in the workers.
 
@@ -19,13 +19,13 @@ it measures that checkout's code: the README's side-by-side figures were made th
 from __future__ import annotations
 
 import argparse
-import pickle
 import resource
 import shutil
 import sys
 import time
 from collections import defaultdict
 from importlib import import_module
+from multiprocessing.reduction import ForkingPickler
 from pathlib import Path
 from typing import Any, Callable, Iterator
 
@@ -98,10 +98,10 @@ def steps(args: argparse.Namespace) -> dict[str, list]:
     sums, restore = clock_steps()
     moved = {"task alone": [0.0, 0], f"tasks {args.batch} a message": [0.0, 0], "outcome": [0.0, 0]}
 
-    def pickled(label: str, obj: Any, count: int = 1) -> None:
+    def pickled(label: str, obj: Any) -> None:
         c = time.process_time()
-        data = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
-        pickle.loads(data)
+        data = ForkingPickler.dumps(obj)  # as Connection.send and recv do, in memory
+        ForkingPickler.loads(data)
         moved[label][0] += time.process_time() - c
         moved[label][1] += len(data)
 
