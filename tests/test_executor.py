@@ -71,6 +71,16 @@ def test_tasks_queued_behind_a_crash_are_not_lost():
     assert sorted(r for r in res if not isinstance(r, tuple)) == [x * x for x in range(20, 30)]
 
 
+def test_faults_inside_one_message_cost_only_their_task():
+    # one worker is sent several tasks per message (executor.PREFETCH); a crash, an exit and
+    # a memory blow-up in the middle of a message: the tasks after them are sent again to the
+    # fresh worker, and every other task is answered exactly once
+    tasks = [*range(20, 26), 5, *range(26, 30), 11, *range(30, 60), 7, *range(60, 64)]
+    res = outcomes(misbehave, tasks, 1)
+    assert sorted(r[1] for r in res if isinstance(r, tuple)) == [5, 7, 11]
+    assert sorted(r for r in res if not isinstance(r, tuple)) == [x * x for x in tasks if x not in (5, 7, 11)]
+
+
 def square_or_fail_writing(x: int) -> int:
     if x == 4:
         raise OutputError("cannot write (No space left on device)", file="/out/.staging/x.mid")

@@ -5,8 +5,9 @@ strings and numpy arrays; no database handle, no shared memory, no global settin
 engine (e.g. a distributed one) can take the same tasks.
 
 The pool is small and watched. Each of N worker processes (fork on Linux, spawn elsewhere) is
-fed tasks one by one over its own pipe, at most ``PREFETCH`` queued, and computes them in order;
-a task's clock starts when the reply to the one before it arrives. The parent waits on the pipes
+fed tasks over its own pipe, at most ``PREFETCH`` queued, several in one message once half of
+them are answered, and computes them in order, replying to each task on its own; a task's
+clock starts when the reply to the one before it arrives. The parent waits on the pipes
 and the process sentinels with a timeout equal to the nearest deadline, and turns every way a
 task can go wrong into a ``Fault`` for that task instead of an exception:
 
@@ -53,7 +54,9 @@ T = TypeVar("T")
 R = TypeVar("R")
 
 #: Most tasks queued per worker (one running, the others waiting in its pipe), so workers
-#: keep busy while the parent commits a batch (DEVELOPERS.md, Bench notes).
+#: keep busy while the parent commits a batch (DEVELOPERS.md, Bench notes). A worker's queue is
+#: topped up once it is down to half of this, all the missing tasks in one message: one pickle
+#: of the stage plans the tasks share, and one write, for several tasks.
 PREFETCH = 8
 #: Seconds given to a worker to leave after its pipe is closed, before it is killed.
 _GRACE_S = 2.0
@@ -237,7 +240,8 @@ def _where(exc: BaseException) -> str:
 
 
 def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits) -> None:
-    """Loop: receive (seq, task), send (seq, kind, payload) until the pipe closes."""
+    """Loop: receive a list of (seq, task), send (seq, kind, payload) for each task in
+    order, until the pipe closes."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
     signal.signal(signal.SIGTERM, signal.SIG_DFL)  # not the parent's handler, inherited by fork
     _release_inherited_files()
@@ -259,36 +263,43 @@ def _worker_main(conn: Connection, parent_pid: int, fn: Callable, limits: Limits
             break
         if msg is None:
             break
-        seq, task = msg
-        try:
-            if faults:
-                label = str(getattr(task, "source", task))
-                for kind, text in faults:
-                    if text in label:
-                        _inject_fault(kind)
-            reply = (seq, "ok", fn(task))
-        except MemoryError as exc:  # the hoard is freed when this handler ends, before the send
-            try:
-                reply = (seq, "memory", _where(exc))
-            except MemoryError:
-                reply = (seq, "memory", None)
-        except Exception as exc:  # noqa: BLE001 - any escape is this task's fault, reported
-            from ..errors import DecodeError, MidisiftError
-            if isinstance(exc, MidisiftError) and not isinstance(exc, DecodeError):
-                reply = (seq, "abort", (type(exc).__name__, exc.reason, exc.file, exc.location))
-            else:
-                reply = (seq, "error", f"{type(exc).__name__}: {exc} (at {_where(exc)})")
-        try:
-            conn.send(reply)
-        except MemoryError:
-            conn.send((seq, "memory", None))
-        except (OSError, ValueError):
-            break
-        except Exception as exc:  # e.g. a result that cannot be pickled
-            conn.send((seq, "error", f"the result could not be sent back: {type(exc).__name__}: {exc}"))
-        if reply[1] == "memory":
-            break  # the heap may be fragmented or half-built: start afresh
+        for seq, task in msg:
+            if not _answer(conn, fn, faults, seq, task):
+                os._exit(0)
     os._exit(0)
+
+
+def _answer(conn: Connection, fn: Callable, faults: tuple[tuple[str, str], ...], seq: int,
+            task: Any) -> bool:
+    """Compute one task and send its reply; False when the worker must stop (its pipe is
+    gone, or it ran out of memory: the heap may be fragmented or half-built)."""
+    try:
+        if faults:
+            label = str(getattr(task, "source", task))
+            for kind, text in faults:
+                if text in label:
+                    _inject_fault(kind)
+        reply = (seq, "ok", fn(task))
+    except MemoryError as exc:  # the hoard is freed when this handler ends, before the send
+        try:
+            reply = (seq, "memory", _where(exc))
+        except MemoryError:
+            reply = (seq, "memory", None)
+    except Exception as exc:  # noqa: BLE001 - any escape is this task's fault, reported
+        from ..errors import DecodeError, MidisiftError
+        if isinstance(exc, MidisiftError) and not isinstance(exc, DecodeError):
+            reply = (seq, "abort", (type(exc).__name__, exc.reason, exc.file, exc.location))
+        else:
+            reply = (seq, "error", f"{type(exc).__name__}: {exc} (at {_where(exc)})")
+    try:
+        conn.send(reply)
+    except MemoryError:
+        conn.send((seq, "memory", None))
+    except (OSError, ValueError):
+        return False
+    except Exception as exc:  # e.g. a result that cannot be pickled
+        conn.send((seq, "error", f"the result could not be sent back: {type(exc).__name__}: {exc}"))
+    return reply[1] != "memory"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -316,14 +327,16 @@ class _Worker:
             return self.conn.poll()
         return bool(self._poller.poll(0))
 
-    def send(self, seq: int, task: Any) -> None:
+    def send(self, items: list[tuple[int, Any]]) -> None:
+        """Queue (seq, task) pairs and send them in one message (speed: the stage plans the
+        tasks share are pickled once, README, Throughput)."""
         if not self.queue:
             self.started = time.monotonic()
-        self.queue.append((seq, task))
+        self.queue.extend(items)
         try:
-            self.conn.send((seq, task))
+            self.conn.send(items)
         except (OSError, ValueError):
-            pass  # the worker just died: its sentinel is ready and _drain requeues this task
+            pass  # the worker just died: its sentinel is ready and _drain requeues these tasks
 
     def stop(self, kill: bool) -> None:
         if kill:
@@ -392,8 +405,8 @@ class _Pool:
             while len(self.workers) < self.n and todo:
                 self._spawn()
             for w in self.workers:
-                while todo and len(w.queue) < depth:
-                    w.send(*todo.popleft())
+                if todo and len(w.queue) <= depth // 2:
+                    w.send([todo.popleft() for _ in range(min(len(todo), depth - len(w.queue)))])
             now = time.monotonic()
             busy = [w for w in self.workers if w.queue]
             nearest = min(w.started + lim.timeout_s for w in busy) - now

@@ -44,7 +44,7 @@ from .executor import Limits, run_tasks
 from .plan import Everything, Planner
 from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, source_path
 from .walk import StageWalk, last_run_fingerprint
-from .worker import FileTask, fault_outcome, process_file
+from .worker import FileTask, fault_outcome, process_file, warm_before_fork
 
 #: Results + artifacts per ledger transaction (also flushed every 2 s): a few hundred files;
 #: each commit costs a WAL write of its pages.
@@ -329,6 +329,8 @@ class Runner:
         last = time.monotonic()
         limits = self._limits()
         order, index = self._order, self._index
+        if self._remote is None:
+            warm_before_fork()
         try:
             outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
                         if self._remote is not None else
