@@ -264,6 +264,7 @@ class Dedup(Stage):
         for k in ids:
             content_rep[k] = first[content_of[k]]
         rep_ids = sorted(first.values())  # the first member of each note content
+        del exact, first, content_of, value_of  # memory: dicts of every member, not read again
 
         # 2. near: every verified pair of searched members (each representative, and each other
         # member whose shingle set differs from those of the searched members of its content:
@@ -274,6 +275,7 @@ class Dedup(Stage):
         present = set(ids)
         reusable = (prev.get("link_fingerprint") == self._link_fingerprint()
                     and set(prev.get("members", [])) <= present)
+        del present
         old = set(prev.get("members", [])) if reusable else set()
         searched, extra = searched_members(ids, content_rep, arts, old,
                                            set(prev.get("searched_extra", [])) if reusable else set())
