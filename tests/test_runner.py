@@ -628,3 +628,16 @@ def test_member_artifacts_read_and_write_like_the_dict_they_replace():
     a, b = MemberArtifacts("dedup", 1), MemberArtifacts("dedup", 2)
     a["split"], b["split"] = 3, 4
     assert a._names is b._names
+
+
+def test_content_marks_answer_membership_like_a_set():
+    # the contents a run computed are kept as a byte per content index (memory); a set of the
+    # marked hashes is the reference, for run contents and for hashes the run does not have
+    from pipeline.engine.runner import ContentMarks
+    order = ["%064x" % k for k in range(50)]
+    marks, want = ContentMarks(dict(zip(order, range(len(order)))), len(order)), set()
+    for i in (0, 7, 7, 49, 23):
+        marks.mark(i)
+        want.add(order[i])
+    for sha in order + ["%064x" % 99, ""]:
+        assert (sha in marks) == (sha in want)
