@@ -396,7 +396,7 @@ class Split(Stage):
         here = set(arts)
         known = set() if fresh else set(prev.get("members", [])) & here
         reused = [] if fresh else [(a, b) for a, b in prev.get("links", []) if a in here and b in here]
-        new = here - known
+        new = here - known if known else here  # memory: no second set of every member on a fresh search
         found = []
         if new:
             keys = sorted(arts)
