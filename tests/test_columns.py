@@ -105,6 +105,32 @@ def test_stacked_rows_and_values_of_read_what_the_rows_hold(tmp_path):
             assert np.array_equal(load_arrays([sh[k]])[0], items[order[i]]["shingles"])
 
 
+def test_stacked_distinct_rows_are_the_column_itself_reordered(tmp_path):
+    # dedup's and then the split's searches take their members' signatures from the column
+    # without a copy beside it (the column's matrix is reordered so they come first): numpy's
+    # vstack of the stored arrays is the reference, every row read stays equal to the stored
+    # array after each reordering, and rows asked twice still give a plain copy
+    from pipeline.store.columns import stacked
+    items = _items(False)
+    with _stored(tmp_path, items) as led:
+        order = sorted(items)
+        cols = led.artifact_columns("dedup", "fp", order, defer=("shingles",))
+        col = cols._columns["signature"]
+        for pick in ([5, 0, 7, 2], [5, 0, 7, 2], [1, 2, 3], [8, 7, 6, 5, 4, 3, 2, 1, 0], [4], [2, 0, 2]):
+            rows = [cols.row(i) for i in pick]
+            matrix = stacked(rows, "signature")
+            got = matrix()
+            want = np.vstack([items[order[i]]["signature"] for i in pick])
+            assert got.dtype == want.dtype and np.array_equal(got, want)
+            assert np.array_equal(matrix(), want)  # asked again: the same rows
+            if len(set(pick)) == len(pick):
+                assert np.shares_memory(got, col.matrix) and not got.flags.writeable
+            else:
+                assert not np.shares_memory(got, col.matrix)
+            for i, sha in enumerate(order):  # every row still reads its own stored array
+                assert np.array_equal(cols.row(i)["signature"], items[sha]["signature"])
+
+
 @pytest.mark.parametrize("ragged", [False, True])
 def test_column_reads_equal_row_reads(tmp_path, ragged):
     # dedup's and the split's readers of one value of every member (column_of, lengths_of)

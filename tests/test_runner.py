@@ -603,3 +603,41 @@ def test_run_help_lists_every_reason_retry_failed_covers(capsys):
         main(["run", "--help"])
     text = " ".join(capsys.readouterr().out.split())
     assert all(code in text for code in (*RETRYABLE, "too_large"))
+
+
+def test_member_artifacts_read_and_write_like_the_dict_they_replace():
+    # the walk's members hold their artifacts in a MemberArtifacts (memory); every operation a
+    # stage or the walk makes on it gives what a plain dict gives (the dict is the reference)
+    from pipeline.engine.walk import MemberArtifacts
+    got, want = MemberArtifacts("split", None), {"split": None}
+    steps = [("set", "dedup", 1), ("set", "split", 2), ("set", "filter", 3), ("del", "dedup", None),
+             ("set", "dedup", 4), ("del", "filter", None)]
+    for op, name, value in steps:
+        if op == "set":
+            got[name], want[name] = value, value
+        else:
+            del got[name], want[name]
+        assert dict(got) == want and list(got) == list(want) and len(got) == len(want)
+        for k in ("dedup", "split", "filter", "other"):
+            assert (k in got) == (k in want) and got.get(k, "none") == want.get(k, "none")
+    with pytest.raises(KeyError):
+        got["other"]
+    with pytest.raises(KeyError):
+        del got["other"]
+    # members that went through the same stages share one tuple of names
+    a, b = MemberArtifacts("dedup", 1), MemberArtifacts("dedup", 2)
+    a["split"], b["split"] = 3, 4
+    assert a._names is b._names
+
+
+def test_content_marks_answer_membership_like_a_set():
+    # the contents a run computed are kept as a byte per content index (memory); a set of the
+    # marked hashes is the reference, for run contents and for hashes the run does not have
+    from pipeline.engine.runner import ContentMarks
+    order = ["%064x" % k for k in range(50)]
+    marks, want = ContentMarks(dict(zip(order, range(len(order)))), len(order)), set()
+    for i in (0, 7, 7, 49, 23):
+        marks.mark(i)
+        want.add(order[i])
+    for sha in order + ["%064x" % 99, ""]:
+        assert (sha in marks) == (sha in want)

@@ -71,7 +71,7 @@ class Runner:
             h.update(f"{s.name}:{s.fingerprint};".encode())
             self._chains[s.name] = h.hexdigest()[:16]
         self.output_fp = rendering.output_fingerprint(self.stages)
-        self._recomputed: set[str] = set()  # contents whose per-file results this run computed
+        self._recomputed = ContentMarks({}, 0)  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler
         self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
         self._index: dict[str, int] = {}  # sha256 -> content index (position in ``_order``)
@@ -168,6 +168,7 @@ class Runner:
         # content index by sha256 for the whole run: the per-file stages' verdict columns
         # (``records.Verdicts``) and the walk read by it
         self._order, self._index = order, dict(zip(order, range(len(order))))
+        self._recomputed = ContentMarks(self._index, len(order))
         self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
         with _bulk_data():
@@ -340,7 +341,7 @@ class Runner:
                 i = index[oc.sha256]  # every task's content is one of the run's
                 sha = order[i]  # memory: the run's string, not a copy
                 if oc.results:
-                    self._recomputed.add(sha)
+                    self._recomputed.mark(i)
                 for name, stored in oc.results.items():
                     if cache is not None:
                         cache[name].put_stored(i, stored)  # its values are read from the ledger
@@ -385,6 +386,25 @@ class Runner:
         artifacts.clear()
         outfiles.record_staged(self.config.output, self.output_fp, staged)
         staged.clear()
+
+
+class ContentMarks:
+    """A set of the run's contents as one byte per content index (memory: a set of 300,000
+    hashes takes about 16 MB): ``mark(i)``, then ``sha in marks``."""
+
+    __slots__ = ("_index", "_marks")
+
+    def __init__(self, index: dict[str, int], n: int):
+        self._index = index  # sha256 -> content index
+        self._marks = bytearray(n)
+
+    def mark(self, i: int) -> None:
+        self._marks[i] = 1
+
+    def __contains__(self, sha: object) -> bool:
+        i = self._index.get(sha)  # type: ignore[arg-type]
+        return i is not None and self._marks[i] == 1
+
 
 def _connect(executor: str) -> Any:
     """None for local worker processes; for a scheduler's address, a connected

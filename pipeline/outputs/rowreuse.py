@@ -20,7 +20,7 @@ import hashlib
 import json
 import os
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Container, Iterator
 
 from ..store.codec import thresholds_json
 
@@ -48,7 +48,8 @@ def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]
 class RowReuse:
     """The last run's rows, as far as they can be trusted, for one rerun."""
 
-    def __init__(self, ledger: Any, out_dir: Path, base: str, recomputed: set[str], run: int = 0):
+    def __init__(self, ledger: Any, out_dir: Path, base: str, recomputed: Container[str],
+                 run: int = 0):
         self.manifest = Path(out_dir) / "manifest.jsonl"
         self.base = base
         self.recomputed = recomputed

@@ -264,6 +264,7 @@ class Dedup(Stage):
         for k in ids:
             content_rep[k] = first[content_of[k]]
         rep_ids = sorted(first.values())  # the first member of each note content
+        del exact, first, content_of, value_of  # memory: dicts of every member, not read again
 
         # 2. near: every verified pair of searched members (each representative, and each other
         # member whose shingle set differs from those of the searched members of its content:
@@ -274,6 +275,7 @@ class Dedup(Stage):
         present = set(ids)
         reusable = (prev.get("link_fingerprint") == self._link_fingerprint()
                     and set(prev.get("members", [])) <= present)
+        del present
         old = set(prev.get("members", [])) if reusable else set()
         searched, extra = searched_members(ids, content_rep, arts, old,
                                            set(prev.get("searched_extra", [])) if reusable else set())
@@ -316,14 +318,18 @@ class Dedup(Stage):
         # bands made of generic material only pair nothing
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
         is_new = np.array([k in new_searched for k in index.ids], dtype=bool)
+        n_new = len(new_searched)
+        # memory: the indexed sets' sizes as one array, the dict of every searched member goes
+        sizes = np.array([size_of[k] for k in index.ids])
+        del size_of
         # two members of one content are no pair to verify (they are exact duplicates already)
         content = content_numbers(index.ids, content_rep) if len(searched) > len(rep_ids) else None
         if len(index.ids) > 1 and is_new.any() and not few_new(is_new):
             # memory: a full run streams its candidates a block of bands at a time, each block
             # bounded at once (the same pairs and counts: similarity.candidates)
+            del new_searched  # memory: not read past here on this path
             codes, (n_candidates, n_plausible, n_sketched) = self._streamed_candidates(
-                index, is_new, np.array([size_of[k] for k in index.ids]), arts, content)
-            del size_of
+                index, is_new, sizes, arts, content)
             index_ids = index.ids
             del index
         else:
@@ -332,12 +338,11 @@ class Dedup(Stage):
             if content is not None:
                 codes = other_content_codes(codes, content)
             n_candidates = len(codes)
-            codes = index.plausible_codes(codes, np.array([size_of[k] for k in index.ids]),
+            codes = index.plausible_codes(codes, sizes,
                                           threshold, min_size_ratio=float(o["min_size_ratio"]))
-            del size_of
             n_plausible = len(codes)
             index_ids = index.ids
-            del index  # memory: its copy of the signatures goes before the pairs are verified (the peak)
+            del index  # memory: what it holds goes before the pairs are verified (the peak)
             # speed: exact bounds from one bitmap per set (generic shingles left out, as compared)
             # drop the pairs that cannot reach the threshold before the exact comparison, which reads
             # every set several times (overlap_sketch; DEVELOPERS.md, Bench notes): the same links
@@ -352,7 +357,7 @@ class Dedup(Stage):
             near.add(a, b, sim)
             uf.union(a, b)
             near_links.append([a, b, round(sim, 6)])
-        state.report(f"dedup: {len(new_searched)} of {len(searched)} searched files compared "
+        state.report(f"dedup: {n_new} of {len(searched)} searched files compared "
                      f"({len(rep_ids)} distinct note contents + {len(searched) - len(rep_ids)} "
                      f"members of a content with shingles of their own), "
                      f"{'against stored signatures' if reusable else 'all against all'}; "

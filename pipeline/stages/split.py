@@ -386,15 +386,17 @@ class Split(Stage):
         run under the same signature settings are reused, and only pairs with a new file are
         searched. The links are saved for the next run."""
         threshold = self.opts["group_threshold"]
-        first = next(iter(arts.values()))["signature"]
+        # memory: the width only (a row held here would keep the signature column's old matrix
+        # alive once the search reorders it: ``columns.stacked``)
+        width = len(next(iter(arts.values()))["signature"])
         signer = options_fingerprint("signatures", Dedup.signature_version, {"by": signed, **signature_options()})
-        settings = f"{threshold}:{len(first)}:{shingles is not None}:{GROUP_RECALL}:{self.version}:{signer}"
+        settings = f"{threshold}:{width}:{shingles is not None}:{GROUP_RECALL}:{self.version}:{signer}"
         prev = state.previous.get("links") or {}
         fresh = state.flags.get("fresh") or state.flags.get("reassign") or prev.get("settings") != settings
         here = set(arts)
         known = set() if fresh else set(prev.get("members", [])) & here
         reused = [] if fresh else [(a, b) for a, b in prev.get("links", []) if a in here and b in here]
-        new = here - known
+        new = here - known if known else here  # memory: no second set of every member on a fresh search
         found = []
         if new:
             keys = sorted(arts)

@@ -24,15 +24,20 @@ _MISSING = object()
 
 class _ArrayColumn:
     """Equal-shape arrays of one name as the rows of one matrix; arrays of several shapes or
-    dtypes as a list of arrays (the rare case: the matrix is given up for the list)."""
+    dtypes as a list of arrays (the rare case: the matrix is given up for the list). Row ``i``
+    is the matrix's row ``i``, or ``place[i]`` once ``first`` has reordered the matrix."""
 
-    __slots__ = ("n", "matrix", "has", "rows")
+    __slots__ = ("n", "matrix", "has", "rows", "place")
 
     def __init__(self, n: int):
         self.n = n
         self.matrix: np.ndarray | None = None
         self.has: np.ndarray | None = None
         self.rows: list | None = None
+        self.place: np.ndarray | None = None  # row -> its matrix row (None: the same)
+
+    def _at(self, i: Any) -> Any:
+        return i if self.place is None else self.place[i]
 
     def put(self, i: int, arr: np.ndarray) -> None:
         if self.rows is None:
@@ -40,11 +45,11 @@ class _ArrayColumn:
                 self.matrix = np.zeros((self.n, *arr.shape), dtype=arr.dtype)
                 self.has = np.zeros(self.n, dtype=bool)
             if arr.dtype == self.matrix.dtype and arr.shape == self.matrix.shape[1:]:
-                self.matrix[i] = arr
+                self.matrix[self._at(i)] = arr
                 self.has[i] = True
                 return
             self.rows = [self._row(j) if self.has[j] else None for j in range(self.n)]
-            self.matrix = self.has = None
+            self.matrix = self.has = self.place = None
         self.rows[i] = arr
 
     def put_block(self, at: list[int], block: np.ndarray) -> None:
@@ -54,7 +59,7 @@ class _ArrayColumn:
             self.has = np.zeros(self.n, dtype=bool)
         if self.rows is None and block.dtype == self.matrix.dtype and block.shape[1:] == self.matrix.shape[1:]:
             idx = np.asarray(at, dtype=np.intp)
-            self.matrix[idx] = block
+            self.matrix[self._at(idx)] = block
             self.has[idx] = True
             return
         for i, arr in zip(at, block):  # another shape than the column's: one by one
@@ -64,7 +69,7 @@ class _ArrayColumn:
 
     def _row(self, i: int) -> np.ndarray:
         # a private copy when giving up the matrix (read-only like a stored array)
-        arr = self.matrix[i].copy()
+        arr = self.matrix[self._at(i)].copy()
         arr.flags.writeable = False
         return arr
 
@@ -76,10 +81,30 @@ class _ArrayColumn:
         if self.rows is not None:
             v = self.rows[i]
             return _MISSING if v is None else v
-        return self.matrix[i] if self.has[i] else _MISSING
+        return self.matrix[self._at(i)] if self.has[i] else _MISSING
 
     def holds(self, i: int) -> bool:
         return self.rows[i] is not None if self.rows is not None else bool(self.has[i])
+
+    def first(self, at: np.ndarray) -> np.ndarray:
+        """The rows ``at`` (distinct, each held) as a read-only view of the first rows of the
+        matrix, which is reordered when they do not already lie there in that order. Memory:
+        a corpus step's search reads its members' signatures from the column itself, not from
+        a gathered copy beside it (the reordering copies the matrix once, and the old one goes
+        unless a reader still holds a row of it)."""
+        where = self._at(at)
+        k = len(where)
+        if not np.array_equal(where, np.arange(k)):
+            rest = np.ones(len(self.matrix), dtype=bool)
+            rest[where] = False
+            order = np.concatenate([where, np.flatnonzero(rest)])
+            matrix = self.matrix[order]
+            matrix.flags.writeable = False
+            moved = np.empty(len(order), dtype=np.intp)  # old matrix row -> new one
+            moved[order] = np.arange(len(order))
+            self.place = moved if self.place is None else moved[self.place]
+            self.matrix = matrix
+        return self.matrix[:k]
 
 
 class _DeferredColumn:
@@ -331,15 +356,20 @@ def lengths_of(rows: list[Mapping], name: str) -> np.ndarray:
 def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
     """A function giving the arrays ``rows[k][name]`` (of one shape) as the rows of one matrix.
     Memory: when every row is an ``ArtifactRow`` of one ``ArtifactColumns`` that holds them as
-    one matrix, its rows are taken from it (no array object per row); otherwise they are
-    stacked from the values."""
+    one matrix, its rows are taken from it (no array object per row): for distinct rows, as a
+    read-only view of the column's own matrix, reordered so they come first
+    (``_ArrayColumn.first``: no second copy of the signatures during a corpus step's search);
+    otherwise they are stacked from the values."""
     if rows and all(type(r) is ArtifactRow for r in rows):
         cols = rows[0]._cols
         col = cols._columns.get(name)
         if type(col) is _ArrayColumn and col.matrix is not None and all(r._cols is cols for r in rows):
             at = np.array([r._i for r in rows], dtype=np.intp)
             if col.has[at].all():
-                return lambda: col.matrix[at]
+                ordered = np.sort(at)
+                if (ordered[1:] != ordered[:-1]).all():
+                    return lambda: col.first(at)
+                return lambda: col.matrix[col._at(at)]  # a row twice: a copy
     return lambda: np.vstack([np.asarray(r[name]) for r in rows])
 
 
