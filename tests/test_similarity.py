@@ -241,6 +241,7 @@ def test_incremental_banding_kernel_equals_the_definition_and_numpy(n, bands, se
         wide = np.hstack([sig, sig])[:, :128]
         assert banded_pair_codes(wide, bands, is_new).tolist() == want
     assert banded_pair_codes(sig, bands, np.zeros(n, dtype=bool)).tolist() == []
+    assert banded_pair_codes(sig, bands, np.zeros(n, dtype=bool), compiled=False).tolist() == []
 
 
 @pytest.mark.skipif(not accel.USE_ACCEL, reason="the compiled kernels are not built")

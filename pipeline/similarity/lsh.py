@@ -325,6 +325,8 @@ def _band_pairs(col: np.ndarray, is_new: np.ndarray) -> np.ndarray:
     of them new."""
     n = len(col)
     rows = None
+    if not is_new.any():
+        return np.zeros(0, dtype=np.int64)  # no pair holds a new row
     if not is_new.all():
         # incremental: only the rows whose key a new row has can pair with one, found by binary
         # search in the new keys instead of pairing the whole band (a rerun with 1% new files)
