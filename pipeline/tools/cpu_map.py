@@ -21,9 +21,7 @@ from __future__ import annotations
 import argparse
 import resource
 import shutil
-import sys
 import time
-from collections import defaultdict
 from importlib import import_module
 from multiprocessing.reduction import ForkingPickler
 from pathlib import Path
@@ -49,39 +47,10 @@ STEPS = (
 
 
 def clock_steps() -> tuple[dict[str, list], Callable[[], None]]:
-    """Wrap each step of ``STEPS`` (also where another module imported it by name): (label ->
-    [calls, CPU seconds], summed while the wrappers stay in place; a function that puts the
-    steps back as they were)."""
-    sums: dict[str, list] = defaultdict(lambda: [0, 0.0])
-    undo: list[tuple[Any, str, Any]] = []
-    for module, path in STEPS:
-        owner: Any = import_module(module)
-        *outer, name = path.split(".")
-        for part in outer:
-            owner = getattr(owner, part)
-        fn = getattr(owner, name)
-
-        def timed(*a: Any, _fn: Callable = fn, _sum: list = sums[path], **k: Any) -> Any:
-            c = time.process_time()
-            try:
-                return _fn(*a, **k)
-            finally:
-                _sum[0] += 1
-                _sum[1] += time.process_time() - c
-
-        undo.append((owner, name, owner.__dict__[name]))
-        setattr(owner, name, timed)
-        if not outer:
-            for mod in list(sys.modules.values()):
-                if getattr(mod, "__name__", "").startswith("pipeline.") and getattr(mod, name, None) is fn:
-                    undo.append((mod, name, fn))
-                    setattr(mod, name, timed)
-
-    def restore() -> None:
-        for owner, name, original in reversed(undo):
-            setattr(owner, name, original)
-
-    return sums, restore
+    """The steps of ``STEPS``, clocked (``trace_run.clock``), labelled by their attribute path:
+    (label -> [calls, wall s, CPU s], a function that puts the steps back as they were)."""
+    from .trace_run import clock
+    return clock(STEPS, lambda module, path: path)
 
 
 def _config(args: argparse.Namespace) -> Any:
@@ -90,7 +59,7 @@ def _config(args: argparse.Namespace) -> Any:
 
 
 def steps(args: argparse.Namespace) -> dict[str, list]:
-    """The ``steps`` mode (module docstring); returns label -> [calls, CPU seconds]."""
+    """The ``steps`` mode (module docstring); returns label -> [calls, wall s, CPU s]."""
     from pipeline.engine import runner
     import pipeline.stages  # noqa: F401 - the stage modules, so their steps can be wrapped
     for module in {m for m, _ in STEPS}:
@@ -131,7 +100,7 @@ def steps(args: argparse.Namespace) -> dict[str, list]:
     print(f"{files} files in {args.rounds} round(s): the run's CPU {1000 * cpu / files:.3f} ms per file "
           "(one process, imports excluded)")
     print("CPU per file (ms), calls, step:")
-    for label, (calls, spent) in sums.items():
+    for label, (calls, _wall, spent) in sums.items():
         print(f"  {1000 * spent / files:8.4f} {calls:8d}  {label}")
     for label, (spent, size) in moved.items():
         print(f"  pickled and unpickled, {label}: {1000 * spent / files:.4f} ms and {size / files:.0f} bytes per file")

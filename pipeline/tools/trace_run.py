@@ -29,7 +29,7 @@ import tracemalloc
 from collections import defaultdict
 from importlib import import_module
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterable
 
 from ..config import load_config
 from ..engine import executor, runner
@@ -122,18 +122,24 @@ TIMED = (
 
 
 def time_steps() -> tuple[dict[str, list], Callable[[], None]]:
-    """Wrap each step of ``TIMED`` (also where another module imported it by name) so its
-    calls, wall and CPU time are summed: (label -> [calls, wall s, CPU s], a function that
-    puts the steps back as they were)."""
+    """The steps of ``TIMED``, clocked (``clock``), labelled ``module.path``."""
+    return clock(TIMED, lambda module, path: f"{module.rsplit('.', 1)[-1]}.{path}")
+
+
+def clock(steps: Iterable[tuple[str, str]], label_of: Callable[[str, str], str]
+          ) -> tuple[dict[str, list], Callable[[], None]]:
+    """Wrap each step (module, attribute path) of ``steps``, also where another module imported
+    it by name, so its calls, wall and CPU time are summed: (``label_of(module, path)`` ->
+    [calls, wall s, CPU s], a function that puts the steps back as they were)."""
     sums: dict[str, list] = defaultdict(lambda: [0, 0.0, 0.0])
     undo: list[tuple[Any, str, Any]] = []
-    for module, path in TIMED:
+    for module, path in steps:
         owner: Any = import_module(module)
         *outer, name = path.split(".")
         for part in outer:
             owner = getattr(owner, part)
         fn = getattr(owner, name)
-        label = f"{module.rsplit('.', 1)[-1]}.{path}"
+        label = label_of(module, path)
 
         def timed(*a: Any, _fn: Callable = fn, _sum: list = sums[label], **k: Any) -> Any:
             t, c = time.perf_counter(), time.process_time()
