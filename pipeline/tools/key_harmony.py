@@ -157,22 +157,14 @@ class HarmonyData(key_variants.Data):
     len(HARMONY_FEATURES), 12)), from the same decoded pieces."""
 
     def __init__(self, pop: str | None, folk: int) -> None:
-        from .eval_midi import decode
-        works = train_key.training_sets(pop, folk)
-        works["chorales_eval"] = eval_sets.chorales(100, 0)
-        self.raw, self.phi, self.y, self.harmony = {}, {}, {}, {}
-        for name, ws in works.items():
-            rated = [w for w in ws if w["truth"] is not None]
-            pieces = [decode(w["midi"]) for w in rated]
-            self.raw[name] = np.stack([keymod.key_features(p) for p in pieces])
-            self.phi[name] = np.stack([keymod.class_features(f) for f in self.raw[name]])
-            self.y[name] = np.array([pc + (12 if mode == "minor" else 0)
-                                     for pc, mode in (w["truth"] for w in rated)])
-            meters = [metermod.estimate_meter(p) for p in pieces]
-            self.harmony[name] = np.stack([harmony_features(p, m.meter, m.phase_beats)
-                                           for p, m in zip(pieces, meters)])
-        self.sets = [s for s in key_variants.SETS if s in self.y]
-        self.versions = pop_versions(pop, [w["name"] for w in works["pop"] if w["truth"]]) if pop else None
+        self.harmony = {}
+        super().__init__(pop, folk)
+        self.versions = pop_versions(pop, [w["name"] for w in self.works["pop"] if w["truth"]]) if pop else None
+
+    def add_features(self, name: str, pieces: list) -> None:
+        meters = [metermod.estimate_meter(p) for p in pieces]
+        self.harmony[name] = np.stack([harmony_features(p, m.meter, m.phase_beats)
+                                       for p, m in zip(pieces, meters)])
 
     def with_features(self, names: tuple[str, ...]) -> key_variants.Data:
         """A copy whose class rows carry the named harmony distributions too."""
@@ -328,10 +320,7 @@ def minor_errors(data: HarmonyData, pop: str) -> None:
 
 
 def main(argv: list[str] | None = None) -> None:
-    ap = key_variants.parser(__doc__)
-    ap.add_argument("--fold-seeds", type=int, nargs="*", default=[],
-                    help="also score each variant with each set's pieces shuffled by these seeds "
-                         "before the 5-fold split (other fold assignments)")
+    ap = key_variants.parser(__doc__, fold_seeds=True)
     args = ap.parse_args(argv)
     t0 = time.process_time()
     data = HarmonyData(args.pop, args.folk)

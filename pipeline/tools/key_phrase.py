@@ -37,7 +37,7 @@ import time
 
 import numpy as np
 
-from . import eval_sets, key_variants, train_key
+from . import key_variants
 from ..analysis import key as keymod
 from ..midi.piece import DRUM_CHANNEL, Piece
 
@@ -125,21 +125,12 @@ class PhraseData(key_variants.Data):
     (N, len(PHRASE_FEATURES), 12)), from the same decoded pieces."""
 
     def __init__(self, pop: str | None, folk: int) -> None:
-        from .eval_midi import decode
-        works = train_key.training_sets(pop, folk)
-        works["chorales_eval"] = eval_sets.chorales(100, 0)
-        self.raw, self.phi, self.y = {}, {}, {}
         self.phrase = {rule: {} for rule in RULES}
-        for name, ws in works.items():
-            rated = [w for w in ws if w["truth"] is not None]
-            pieces = [decode(w["midi"]) for w in rated]
-            self.raw[name] = np.stack([keymod.key_features(p) for p in pieces])
-            self.phi[name] = np.stack([keymod.class_features(f) for f in self.raw[name]])
-            self.y[name] = np.array([pc + (12 if mode == "minor" else 0)
-                                     for pc, mode in (w["truth"] for w in rated)])
-            for rule, (rest, long) in RULES.items():
-                self.phrase[rule][name] = np.stack([phrase_features(p, rest, long) for p in pieces])
-        self.sets = [s for s in key_variants.SETS if s in self.y]
+        super().__init__(pop, folk)
+
+    def add_features(self, name: str, pieces: list) -> None:
+        for rule, (rest, long) in RULES.items():
+            self.phrase[rule][name] = np.stack([phrase_features(p, rest, long) for p in pieces])
 
     def with_features(self, rule: str, names: tuple[str, ...]) -> key_variants.Data:
         """A copy whose class rows carry the named phrase distributions of ``rule`` too."""
@@ -213,10 +204,7 @@ def minor_errors(data: PhraseData, rule: str = "rest1") -> None:
 
 
 def main(argv: list[str] | None = None) -> None:
-    ap = key_variants.parser(__doc__)
-    ap.add_argument("--fold-seeds", type=int, nargs="*", default=[],
-                    help="also score each variant with each set's pieces shuffled by these seeds "
-                         "before the 5-fold split (other fold assignments)")
+    ap = key_variants.parser(__doc__, fold_seeds=True)
     args = ap.parse_args(argv)
     t0 = time.process_time()
     data = PhraseData(args.pop, args.folk)

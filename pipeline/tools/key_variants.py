@@ -48,14 +48,20 @@ class Data:
         from .eval_midi import decode
         works = train_key.training_sets(pop, folk)
         works["chorales_eval"] = eval_sets.chorales(100, 0)
+        self.works = works
         self.raw, self.phi, self.y = {}, {}, {}
         for name, ws in works.items():
             rated = [w for w in ws if w["truth"] is not None]
-            self.raw[name] = np.stack([keymod.key_features(decode(w["midi"])) for w in rated])
+            pieces = [decode(w["midi"]) for w in rated]
+            self.raw[name] = np.stack([keymod.key_features(p) for p in pieces])
             self.phi[name] = np.stack([keymod.class_features(f) for f in self.raw[name]])
             self.y[name] = np.array([pc + (12 if mode == "minor" else 0)
                                      for pc, mode in (w["truth"] for w in rated)])
+            self.add_features(name, pieces)
         self.sets = [s for s in SETS if s in self.y]
+
+    def add_features(self, name: str, pieces: list) -> None:
+        """More features of set ``name`` from its decoded pieces (a subclass's; none here)."""
 
 
 Part = tuple[str, np.ndarray]  # (set name, indexes of its pieces)
@@ -339,12 +345,17 @@ def main(argv: list[str] | None = None) -> None:
         print_scores(name, data, table[name])
 
 
-def parser(doc: str) -> argparse.ArgumentParser:
-    """The command line of a variants tool: --pop, --folk, --only."""
+def parser(doc: str, fold_seeds: bool = False) -> argparse.ArgumentParser:
+    """The command line of a variants tool: --pop, --folk, --only (and, with ``fold_seeds``,
+    --fold-seeds)."""
     ap = argparse.ArgumentParser(description=doc.splitlines()[0])
     ap.add_argument("--pop", help="POP909-style folder with labels.json")
     ap.add_argument("--folk", type=int, default=600, help="folk tunes, evenly spaced (as train_key)")
     ap.add_argument("--only", nargs="*", help="variant names (default: all)")
+    if fold_seeds:
+        ap.add_argument("--fold-seeds", type=int, nargs="*", default=[],
+                        help="also score each variant with each set's pieces shuffled by these "
+                             "seeds before the 5-fold split (other fold assignments)")
     return ap
 
 
