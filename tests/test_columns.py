@@ -129,6 +129,13 @@ def test_stacked_distinct_rows_are_the_column_itself_reordered(tmp_path):
                 assert not np.shares_memory(got, col.matrix)
             for i, sha in enumerate(order):  # every row still reads its own stored array
                 assert np.array_equal(cols.row(i)["signature"], items[sha]["signature"])
+        # the column stays writable after its matrix was reordered: a row put goes to its place
+        fresh = np.arange(col.matrix.shape[1], dtype=col.matrix.dtype)
+        col.put(3, fresh)
+        assert np.array_equal(cols.row(3)["signature"], fresh)
+        for i, sha in enumerate(order):
+            if i != 3:
+                assert np.array_equal(cols.row(i)["signature"], items[sha]["signature"])
 
 
 @pytest.mark.parametrize("ragged", [False, True])

@@ -99,12 +99,13 @@ class _ArrayColumn:
             rest[where] = False
             order = np.concatenate([where, np.flatnonzero(rest)])
             matrix = self.matrix[order]
-            matrix.flags.writeable = False
             moved = np.empty(len(order), dtype=np.intp)  # old matrix row -> new one
             moved[order] = np.arange(len(order))
             self.place = moved if self.place is None else moved[self.place]
             self.matrix = matrix
-        return self.matrix[:k]
+        view = self.matrix[:k]
+        view.flags.writeable = False  # the readers' view only: the column may still be written
+        return view
 
 
 class _DeferredColumn:
