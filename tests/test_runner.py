@@ -669,18 +669,3 @@ def test_content_marks_answer_membership_like_a_set():
         want.add(order[i])
     for sha in order + ["%064x" % 99, ""]:
         assert (sha in marks) == (sha in want)
-
-
-def test_kept_entries_follow_the_survivors():
-    # a corpus step's members reuse the ids an earlier step made, carried beside the contents
-    # still alive (memory); picking by a set of the survivors is the reference
-    import random
-    from pipeline.engine.walk import kept_entries
-    rng = random.Random(5)
-    for n in (0, 1, 7, 200):
-        alive = ["%064x" % rng.getrandbits(256) for _ in range(n)]
-        entries = [sha[:16] for sha in alive]
-        for share in (0.0, 0.3, 1.0):
-            survivors = [sha for sha in alive if rng.random() < share]
-            keep = set(survivors)
-            assert kept_entries(alive, entries, survivors) == [e for sha, e in zip(alive, entries) if sha in keep]

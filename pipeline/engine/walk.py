@@ -53,9 +53,6 @@ class StageWalk:
         # it was dropped; ``Walk.step`` makes a record when a reader asks
         alive = list(rep)  # contents in first-source order (sorted paths)
         upstream: dict[str, dict[str, Any]] = {}  # stage -> id -> Result (reads like StageResult)
-        # the member ids of ``alive`` once a corpus step made them (memory: a later step's
-        # members share those strings, which the earlier step's results hold anyway)
-        ids: list[str] | None = None
         for st in self.stages:
             t = time.perf_counter()
             if st.kind == "file":
@@ -78,8 +75,6 @@ class StageWalk:
                         survivors.append(sha)
                     else:
                         walk.status[sha] = (st.name, walk.step(walk.stages_done, sha).reason)
-                if ids is not None:
-                    ids = kept_entries(alive, ids, survivors)
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
@@ -93,7 +88,7 @@ class StageWalk:
                     meta = (source_fields(rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
                             if st.uses_source_fields else _NOTHING)
                     # memory: no list of outputs (a walk's member has none) nor empty dict each
-                    members.append(WalkMember(sha[:16] if ids is None else ids[i], sha, rep[sha], walk,
+                    members.append(WalkMember(sha[:16], sha, rep[sha], walk,
                                               MemberArtifacts(st.name, arts.row(i) if arts is not None else _NOTHING),
                                               meta))
                 del arts
@@ -119,7 +114,6 @@ class StageWalk:
                 walk.states[st.name] = {**state.current, CORPUS_RESULTS: self.chains[st.name]}
                 walk.notes.extend(state.notes)
                 survivors = []
-                ids = []
                 make = self.compactor(st.name).make
                 keep = make(True, None, "", {}, {})
                 compact: dict[str, Any] = {}
@@ -139,7 +133,6 @@ class StageWalk:
                     steps[sha] = rec
                     if rec.kept:
                         survivors.append(sha)
-                        ids.append(mid)
                     else:
                         walk.status[sha] = (st.name, rec.reason)
                 # memory: later stages read this stage's verdicts as the compact records (same
@@ -174,19 +167,6 @@ class StageWalk:
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
 
-
-
-def kept_entries(alive: list[str], entries: list, survivors: list[str]) -> list:
-    """The ``entries`` (one per content of ``alive``, in its order) of the ``survivors``, the
-    contents of ``alive`` a step kept, in the same order."""
-    out = []
-    it = iter(survivors)
-    nxt = next(it, None)
-    for sha, e in zip(alive, entries):
-        if sha == nxt:
-            out.append(e)
-            nxt = next(it, None)
-    return out
 
 
 #: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
