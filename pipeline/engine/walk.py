@@ -404,8 +404,8 @@ class MemberArtifacts(MutableMapping):
 
 class WalkMember(Member):
     """A member of a corpus step of the walk: its ``values`` (a ``ContentValues``, read-only)
-    are made when read, not held (memory: an object a member less; a stage reads them for few
-    members, e.g. the split's augmentation counts)."""
+    are made on each read, not held (memory: an object a member less; the split reads them
+    once a member, for its augmentation counts)."""
 
     __slots__ = ("_walk",)
 
