@@ -624,10 +624,38 @@ def test_member_artifacts_read_and_write_like_the_dict_they_replace():
         got["other"]
     with pytest.raises(KeyError):
         del got["other"]
+    # emptied and filled again (the first row is held apart from the others)
+    for name in list(want):
+        del got[name], want[name]
+    assert dict(got) == want == {} and len(got) == 0
+    got["split"], want["split"] = 5, 5
+    got["dedup"], want["dedup"] = 6, 6
+    assert dict(got) == want and list(got) == list(want)
     # members that went through the same stages share one tuple of names
     a, b = MemberArtifacts("dedup", 1), MemberArtifacts("dedup", 2)
     a["split"], b["split"] = 3, 4
     assert a._names is b._names
+
+
+def test_walk_member_reads_like_the_member_it_replaces():
+    # a walk's member makes its values (the content's trail) when read (memory); a Member
+    # holding the ContentValues of the same content is the reference, field by field
+    from pipeline.engine.walk import ContentValues, MemberArtifacts, Walk, WalkMember
+    from pipeline.stages import Member
+    from pipeline.store.records import Compactor
+    sha = "ab" * 32
+    walk = Walk(stage_names=["dedup"], index={sha: 0}, stages_done=1,
+                corpus={"dedup": {sha: Compactor().make(True, None, "", {"cluster": sha[:16], "cluster_size": 2}, {})}})
+    arts = MemberArtifacts("split", {"signature": 1})
+    got = WalkMember(sha[:16], sha, "a.mid", walk, arts, {"title": "A"})
+    want = Member(sha[:16], sha, "a.mid", ContentValues(walk, sha), arts, outputs=(), meta={"title": "A"})
+    assert isinstance(got, Member)
+    for f in ("id", "sha256", "source", "artifacts", "outputs", "meta"):
+        assert getattr(got, f) == getattr(want, f)
+    assert dict(got.values) == dict(want.values) == {"cluster": sha[:16], "cluster_size": 2}
+    assert got.values.get("augment") is None and got.values["cluster_size"] == 2
+    with pytest.raises(AttributeError):
+        got.other = 1  # slots: no per-member dict
 
 
 def test_content_marks_answer_membership_like_a_set():

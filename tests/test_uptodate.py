@@ -146,3 +146,23 @@ def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, mo
     assert len(calls) == 1
     rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
     assert "a_new_copy.mid" in {r["source"] for r in rows}
+
+
+def test_a_run_records_each_file_as_the_file_system_gives_it(corpus, config, tmp_path):
+    # the run lets go of the sizes and mtimes once fingerprinted (memory, sources.forget_stats):
+    # what it recorded for the next run's check must still be each file's own (os.stat is the
+    # reference), on the first run and on a run after a change
+    out = tmp_path / "out"
+    for round_ in range(2):
+        assert _cli(config, corpus, out) == 0
+        with sqlite3.connect(out / "state.sqlite") as db:
+            rows = {p: (s, m) for p, s, m in db.execute("SELECT path, size, mtime_ns FROM sources")}
+        want = {}
+        for p in corpus.rglob("*"):
+            if p.is_file() and p.suffix.lower() in MIDI_SUFFIXES:
+                st = p.stat()
+                want[p.relative_to(corpus).as_posix()] = (st.st_size, st.st_mtime_ns)
+        assert rows == want and want
+        victim = sorted(corpus.rglob("*.mid"))[0]
+        st = victim.stat()
+        os.utime(victim, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))

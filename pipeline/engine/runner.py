@@ -42,7 +42,7 @@ from ..store.records import Compactor, Verdicts
 from . import uptodate
 from .executor import Limits, run_tasks
 from .plan import Everything, Planner
-from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, source_path
+from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, forget_stats, source_path
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file, warm_before_fork
 
@@ -140,6 +140,7 @@ class Runner:
         # first run, which reuses no row
         touched = _touched_contents(changed, gone, known) if known else None
         del known, changed, gone  # memory: a row per file, written
+        forget_stats(files)  # memory: the fingerprints' integers are not read past here
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
         del present  # memory: a path per file, made again for the outputs

@@ -85,13 +85,12 @@ class StageWalk:
                         if st.has_prepare() else None)
                 members = []
                 for i, sha in enumerate(alive):
-                    values = ContentValues(walk, sha)
-                    meta = (source_fields(rep[sha], values.get("file_title"), self.metadata)
+                    meta = (source_fields(rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
                             if st.uses_source_fields else _NOTHING)
                     # memory: no list of outputs (a walk's member has none) nor empty dict each
-                    members.append(Member(sha[:16], sha, rep[sha], values,
-                                          MemberArtifacts(st.name, arts.row(i) if arts is not None else _NOTHING),
-                                          outputs=(), meta=meta))
+                    members.append(WalkMember(sha[:16], sha, rep[sha], walk,
+                                              MemberArtifacts(st.name, arts.row(i) if arts is not None else _NOTHING),
+                                              meta))
                 del arts
                 for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
                     res = walk.artifacts.get(prev, {})
@@ -357,37 +356,41 @@ class ContentValues(Mapping):
 class MemberArtifacts(MutableMapping):
     """A walk member's artifacts (``Member.artifacts``): corpus stage -> its row of artifacts,
     read and written like the dict ``{stage: row}`` it stands for (memory: the stage names are
-    one tuple shared by the members, the rows a tuple; about 100 bytes a member where a dict
-    of one or two entries took about 230)."""
+    one tuple shared by the members, the first row held as it is and any others in a tuple;
+    about 50 bytes a member where a dict of one or two entries took about 230)."""
 
-    __slots__ = ("_names", "_rows")
+    __slots__ = ("_names", "_first", "_more")
 
     def __init__(self, name: str, row: Any):
         self._names: tuple[str, ...] = _NAMES.setdefault((name,), (name,))
-        self._rows: tuple = (row,)
+        self._first: Any = row
+        self._more: tuple = ()  # the rows of the names after the first (one shared empty tuple)
+
+    def _put(self, names: tuple[str, ...], rows: tuple) -> None:
+        self._names = _NAMES.setdefault(names, names)
+        self._first, self._more = (rows[0], rows[1:]) if rows else (None, ())
 
     def __getitem__(self, name: str) -> Any:
         try:
-            return self._rows[self._names.index(name)]
+            i = self._names.index(name)
         except ValueError:
             raise KeyError(name) from None
+        return self._first if i == 0 else self._more[i - 1]
 
     def __setitem__(self, name: str, row: Any) -> None:
+        rows = (self._first, *self._more) if self._names else ()
         if name in self._names:
             i = self._names.index(name)
-            self._rows = self._rows[:i] + (row,) + self._rows[i + 1:]
+            self._put(self._names, rows[:i] + (row,) + rows[i + 1:])
         else:
-            names = self._names + (name,)
-            self._names = _NAMES.setdefault(names, names)
-            self._rows = self._rows + (row,)
+            self._put(self._names + (name,), rows + (row,))
 
     def __delitem__(self, name: str) -> None:
-        i = self._names.index(name) if name in self._names else None
-        if i is None:
+        if name not in self._names:
             raise KeyError(name)
-        names = self._names[:i] + self._names[i + 1:]
-        self._names = _NAMES.setdefault(names, names)
-        self._rows = self._rows[:i] + self._rows[i + 1:]
+        i = self._names.index(name)
+        rows = (self._first, *self._more)
+        self._put(self._names[:i] + self._names[i + 1:], rows[:i] + rows[i + 1:])
 
     def __iter__(self) -> Iterator[str]:
         return iter(self._names)
@@ -396,7 +399,24 @@ class MemberArtifacts(MutableMapping):
         return len(self._names)
 
     def __repr__(self) -> str:
-        return f"MemberArtifacts({dict(zip(self._names, self._rows))!r})"
+        return f"MemberArtifacts({dict(self.items())!r})"
+
+
+class WalkMember(Member):
+    """A member of a corpus step of the walk: its ``values`` (a ``ContentValues``, read-only)
+    are made on each read, not held (memory: an object a member less; the split reads them
+    once a member, for its augmentation counts)."""
+
+    __slots__ = ("_walk",)
+
+    def __init__(self, id: str, sha256: str, source: str, walk: "Walk", artifacts: MutableMapping,
+                 meta: Mapping[str, Any]):
+        self.id, self.sha256, self.source, self._walk = id, sha256, source, walk
+        self.artifacts, self.outputs, self.meta = artifacts, (), meta  # no outputs in a walk
+
+    @property
+    def values(self) -> Mapping[str, Any]:  # type: ignore[override]
+        return ContentValues(self._walk, self.sha256)
 
 
 _NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}  # the distinct name tuples, shared
