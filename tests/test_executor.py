@@ -6,7 +6,11 @@ from __future__ import annotations
 import multiprocessing as mp
 import os
 import signal
+import subprocess
+import sys
+import textwrap
 import time
+from pathlib import Path
 
 import pytest
 
@@ -99,6 +103,40 @@ def test_no_worker_left_after_the_consumer_stops_early():
     next(gen)
     gen.close()
     assert not mp.active_children()
+
+
+def test_a_signal_handled_outside_the_wait_still_stops_the_run(tmp_path):
+    """Ctrl-C whose low-level handler ran outside the parent's wait for replies (in another
+    thread, or in the instant before the wait began) does not interrupt that wait; Python then
+    runs the handler in the main thread only when it next runs Python code (Python docs, the
+    signal module: "Execution of Python signal handlers"). The parent must still stop within
+    moments, not when the nearest task timeout falls due (here 600 s). The signal is sent by a
+    helper thread to itself, which is the case made certain."""
+    script = tmp_path / "stop.py"
+    script.write_text(textwrap.dedent("""
+        import signal, threading, time
+        from pipeline.engine.executor import Limits, run_tasks
+
+        def hang(_):
+            time.sleep(600)
+
+        def interrupt():
+            time.sleep(1.0)
+            signal.pthread_kill(threading.get_ident(), signal.SIGINT)
+
+        threading.Thread(target=interrupt, daemon=True).start()
+        try:
+            list(run_tasks(hang, [1, 2], 2, limits=Limits(timeout_s=600)))
+        except KeyboardInterrupt:
+            print("stopped")
+    """))
+    repo = Path(__file__).resolve().parents[1]
+    try:
+        done = subprocess.run([sys.executable, str(script)], cwd=repo, capture_output=True,
+                              text=True, timeout=60)
+    except subprocess.TimeoutExpired:
+        pytest.fail("the parent waited on after Ctrl-C was handled in another thread")
+    assert done.stdout.strip() == "stopped", done.stderr
 
 
 def test_fault_hook_parsing(monkeypatch):

@@ -60,6 +60,10 @@ R = TypeVar("R")
 PREFETCH = 8
 #: Seconds given to a worker to leave after its pipe is closed, before it is killed.
 _GRACE_S = 2.0
+#: Longest wait for replies. A signal whose low-level handler ran outside the wait (in another
+#: thread, or just before the wait began) does not end it, and Python acts on the signal only
+#: once the main thread runs again: so Ctrl-C is acted on within this, not at a task's timeout.
+_LONGEST_WAIT_S = 1.0
 
 
 @dataclass(frozen=True)
@@ -410,7 +414,7 @@ class _Pool:
             now = time.monotonic()
             busy = [w for w in self.workers if w.queue]
             nearest = min(w.started + lim.timeout_s for w in busy) - now
-            wait = None if math.isinf(nearest) else max(0.0, nearest)
+            wait = min(_LONGEST_WAIT_S, max(0.0, nearest))
             ready = {key.data for key, _ in self.selector.select(wait)}
             for w in [w for w in self.workers if w in ready]:
                 if not w.queue:  # nothing asked of it: only its death can wake us; replace it
