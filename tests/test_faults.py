@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import errno
 import json
+import multiprocessing
 import os
 import signal
 import sqlite3
@@ -339,6 +340,7 @@ def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch
         run(config, corpus, out)
     assert err.value.file == str(out / "state.sqlite")
     assert "check free space" in err.value.message
+    assert not multiprocessing.active_children()  # the run's workers stopped with it
     monkeypatch.setattr(Ledger, "put_results", real)
     run(config, corpus, out)
     assert snapshot(out) == baseline

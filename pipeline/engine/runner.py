@@ -333,11 +333,11 @@ class Runner:
         order, index = self._order, self._index
         if self._remote is None:
             warm_before_fork()
+        outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
+                    if self._remote is not None else
+                    run_tasks(process_file, tasks, self.config.workers, limits=limits,
+                              on_fault=fault_outcome))
         try:
-            outcomes = (self._remote.run_tasks(process_file, tasks, limits=limits, on_fault=fault_outcome)
-                        if self._remote is not None else
-                        run_tasks(process_file, tasks, self.config.workers, limits=limits,
-                                  on_fault=fault_outcome))
             for oc in outcomes:
                 i = index[oc.sha256]  # every task's content is one of the run's
                 sha = order[i]  # memory: the run's string, not a copy
@@ -362,6 +362,7 @@ class Runner:
                     self._flush(ledger, pending_r, pending_a, pending_s)
                     last = time.monotonic()
         finally:  # also when the run is stopped (Ctrl-C, SIGTERM): finished work is kept
+            outcomes.close()  # the workers stop with the run, not when the generator is collected
             self._flush(ledger, pending_r, pending_a, pending_s)
             bar.close()
             for b in stage_bars.values():
