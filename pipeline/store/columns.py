@@ -107,6 +107,21 @@ class _ArrayColumn:
         view.flags.writeable = False  # the readers' view only: the column may still be written
         return view
 
+    def spill(self) -> None:
+        """The matrix moved to an unnamed temporary file and read back through a copy-on-write
+        memory map: a row is read from the file when asked (a page at a time) and a row written
+        stays in memory. Memory: the split's search, which reads the signatures from a spilled
+        copy of its own (``similarity.spilled``), lets the column's matrix go with it."""
+        if self.matrix is None or getattr(self.matrix, "_mmap", None) is not None or not self.matrix.size:
+            return
+        import tempfile
+        with tempfile.TemporaryFile() as f:
+            np.ascontiguousarray(self.matrix).tofile(f)
+            f.flush()
+            mapped = np.memmap(f, dtype=self.matrix.dtype, mode="c", shape=self.matrix.shape)
+        mapped.flags.writeable = self.matrix.flags.writeable
+        self.matrix = mapped
+
 
 class _DeferredColumn:
     """Arrays left in the ledger (``ledger.StoredArray``): the dtype and shape text of each
@@ -369,9 +384,26 @@ def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
             if col.has[at].all():
                 ordered = np.sort(at)
                 if (ordered[1:] != ordered[:-1]).all():
-                    return lambda: col.first(at)
+                    return _FirstRows(col, at)
                 return lambda: col.matrix[col._at(at)]  # a row twice: a copy
     return lambda: np.vstack([np.asarray(r[name]) for r in rows])
+
+
+class _FirstRows:
+    """``stacked``'s function over one column's matrix (``_ArrayColumn.first``); ``release()``
+    moves that matrix to a file when its caller no longer needs it whole in memory
+    (``_ArrayColumn.spill``)."""
+
+    __slots__ = ("col", "at")
+
+    def __init__(self, col: _ArrayColumn, at: np.ndarray):
+        self.col, self.at = col, at
+
+    def __call__(self) -> np.ndarray:
+        return self.col.first(self.at)
+
+    def release(self) -> None:
+        self.col.spill()
 
 
 class ValuesOf(Mapping):
