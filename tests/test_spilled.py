@@ -79,7 +79,7 @@ def test_plausible_codes_as_on_the_matrix(tmp_path):
 
 def test_stacked_release_spills_the_column():
     # Reference: the rows as put (plain numpy); after release the column reads the same rows
-    # from its file (a memory map) and still takes a new row.
+    # from its file, row by row and stacked again in another order, and still takes a new row.
     rng = np.random.default_rng(2)
     sig = rng.integers(0, 2**32, (9, 16), dtype=np.uint32)
     cols = ArtifactColumns([f"{k:064x}" for k in range(9)], {})
@@ -90,10 +90,17 @@ def test_stacked_release_spills_the_column():
     matrix = stacked(rows, "signature")
     assert np.array_equal(matrix(), sig[[7, 2, 5]])
     matrix.release()
-    assert isinstance(cols._columns["signature"].matrix, np.memmap)
-    assert np.array_equal(matrix(), sig[[7, 2, 5]])
+    col = cols._columns["signature"]
+    assert col.matrix is None and col.spilled is not None
     for k in range(9):
         assert np.array_equal(cols.row(k)["signature"], sig[k])
+    assert np.array_equal(stacked([cols.row(k) for k in (1, 8)], "signature")(), sig[[1, 8]])
+    assert col.spilled is None  # read back whole, in the new order
+    matrix.release()
+    assert np.array_equal(stacked([cols.row(k) for k in (3, 3)], "signature")(), sig[[3, 3]])
+    matrix.release()
+    assert np.array_equal(matrix(), sig[[7, 2, 5]])
+    matrix.release()
     cols.put_array(4, "signature", sig[0])
     assert np.array_equal(cols.row(4)["signature"], sig[0])
     assert np.array_equal(cols.row(3)["signature"], sig[3])
