@@ -4,6 +4,8 @@ by pair (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3: a pair 
 when any band of its two signatures is equal) and against ``lsh.banded_pair_codes``, MinHash
 bounds against ``lsh.plausible_pair_codes`` on the matrix (the share of equal values estimates
 Jaccard: Broder 1997), and the signature column let go to a file (columns.stacked)."""
+import os
+
 import numpy as np
 import pytest
 
@@ -77,7 +79,7 @@ def test_plausible_codes_as_on_the_matrix(tmp_path):
                 assert 0 < len(want) < len(codes)  # the check has pairs on both sides
 
 
-def test_stacked_release_spills_the_column():
+def test_stacked_release_spills_the_column(tmp_path):
     # Reference: the rows as put (plain numpy); after release the column reads the same rows
     # from its file, row by row and stacked again in another order, and still takes a new row.
     rng = np.random.default_rng(2)
@@ -85,13 +87,16 @@ def test_stacked_release_spills_the_column():
     cols = ArtifactColumns([f"{k:064x}" for k in range(9)], {})
     for k in range(9):
         cols.put_array(k, "signature", sig[k])
-    cols.finish() if hasattr(cols, "finish") else None
+    cols.finish()
+    cols.spill_folder = str(tmp_path)
     rows = [cols.row(k) for k in (7, 2, 5)]
     matrix = stacked(rows, "signature")
     assert np.array_equal(matrix(), sig[[7, 2, 5]])
     matrix.release()
     col = cols._columns["signature"]
     assert col.matrix is None and col.spilled is not None
+    assert os.fstat(col.spilled[0].fileno()).st_dev == os.stat(tmp_path).st_dev  # in the folder given
+    assert not list(tmp_path.iterdir())  # an unnamed file
     for k in range(9):
         assert np.array_equal(cols.row(k)["signature"], sig[k])
     assert np.array_equal(stacked([cols.row(k) for k in (1, 8)], "signature")(), sig[[1, 8]])

@@ -349,9 +349,10 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
              else np.asarray(sizes, dtype=np.float64))[live]
     live_keys = [keys[x] for x in live.tolist()]
     m = len(live)
-    # memory: the signatures go to a file, read back a band at a time, and the matrix is let
-    # go (``matrix.release``, e.g. ``columns.stacked``'s) before the sets are sketched
-    with SpilledColumns(sig) as store:
+    # memory: the signatures go to a file (in ``matrix.folder`` when given: the run's own
+    # folder), read back a band at a time, and the matrix is let go (``matrix.release``, e.g.
+    # ``columns.stacked``'s) before the sets are sketched
+    with SpilledColumns(sig, getattr(matrix, "folder", None)) as store:
         del sig
         release = getattr(matrix, "release", None)
         if release is not None:

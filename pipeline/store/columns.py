@@ -134,16 +134,17 @@ class _ArrayColumn:
             self._load()
         return self.matrix
 
-    def spill(self) -> None:
-        """The matrix moved to an unnamed temporary file, let go from memory: a row read is
-        read from the file, and the matrix is read back when a reader needs it whole or a row
-        is written. Memory: the split's search, which reads the signatures from a spilled copy
-        of its own (``similarity.spilled``), lets the column's matrix go with it (no memory
-        map: the pages of a mapped file read count in the process's resident memory)."""
+    def spill(self, folder: str | None = None) -> None:
+        """The matrix moved to an unnamed temporary file (in ``folder``, else the system's
+        temporary folder), let go from memory: a row read is read from the file, and the
+        matrix is read back when a reader needs it whole or a row is written. Memory: dedup's
+        full search lets the signature column go once banded, the split's once it holds a
+        column-major copy of its own (``similarity.spilled``); no memory map: the pages of a
+        mapped file read count in the process's resident memory."""
         if self.matrix is None or self.spilled is not None or not self.matrix.size:
             return
         import tempfile
-        f = tempfile.TemporaryFile()
+        f = tempfile.TemporaryFile(dir=folder)
         np.ascontiguousarray(self.matrix).tofile(f)
         f.flush()
         self.spilled = (f, self.matrix.shape, self.matrix.dtype)
@@ -256,6 +257,7 @@ class ArtifactColumns:
         self._deferred_rows = deferred_rows
         self._handle = handle
         self._columns: dict[str, Any] = {}  # name -> column, in the order names were first seen
+        self.spill_folder: str | None = None  # where a spilled matrix's file goes (None: the system's)
 
     def _column(self, name: str, make: Any) -> Any:
         col = self._columns.get(name)
@@ -442,26 +444,26 @@ def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
             if col.has[at].all():
                 ordered = np.sort(at)
                 if (ordered[1:] != ordered[:-1]).all():
-                    return _FirstRows(col, at)
+                    return _FirstRows(col, at, cols.spill_folder)
                 return lambda: col.whole()[col._at(at)]  # a row twice: a copy
     return lambda: np.vstack([np.asarray(r[name]) for r in rows])
 
 
 class _FirstRows:
     """``stacked``'s function over one column's matrix (``_ArrayColumn.first``); ``release()``
-    moves that matrix to a file when its caller no longer needs it whole in memory
-    (``_ArrayColumn.spill``)."""
+    moves that matrix to a file in ``folder`` when its caller no longer needs it whole in memory
+    (``_ArrayColumn.spill``); a caller spilling a copy of its own may put it there too."""
 
-    __slots__ = ("col", "at")
+    __slots__ = ("col", "at", "folder")
 
-    def __init__(self, col: _ArrayColumn, at: np.ndarray):
-        self.col, self.at = col, at
+    def __init__(self, col: _ArrayColumn, at: np.ndarray, folder: str | None = None):
+        self.col, self.at, self.folder = col, at, folder
 
     def __call__(self) -> np.ndarray:
         return self.col.first(self.at)
 
     def release(self) -> None:
-        self.col.spill()
+        self.col.spill(self.folder)
 
 
 class ValuesOf(Mapping):
