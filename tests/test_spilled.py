@@ -109,3 +109,35 @@ def test_stacked_release_spills_the_column(tmp_path):
     cols.put_array(4, "signature", sig[0])
     assert np.array_equal(cols.row(4)["signature"], sig[0])
     assert np.array_equal(cols.row(3)["signature"], sig[3])
+
+
+def test_full_search_through_the_column_equals_the_in_memory_search(tmp_path):
+    # Reference: grouping.near_links_of's rerun path (few new rows: the matrix held in memory,
+    # banded whole, no spill), asked once per key, whose union is every linked pair; and
+    # brute-force exact similarity on random sets with planted overlaps (test_grouping).
+    from test_grouping import planted_sets
+
+    from pipeline.similarity.grouping import near_links_of
+    from pipeline.similarity.minhash import minhash
+
+    sets = planted_sets(7, 40, [0.95, 0.85, 0.6, 0.4, 0.3, 0.25, 0.2, 0.1])
+    keys = sorted(sets)
+    cols = ArtifactColumns(keys, {})
+    for k, key in enumerate(keys):
+        cols.put_array(k, "signature", minhash(sets[key]))
+    cols.finish()
+    cols.spill_folder = str(tmp_path)
+    rows = [cols.row(k) for k in range(len(keys))]
+    full = near_links_of(keys, stacked(rows, "signature"), 0.2, sets)
+    assert cols._columns["signature"].spilled is not None  # the search let the column go
+    one_by_one = set()
+    for key in keys:
+        one_by_one |= set(near_links_of(keys, stacked(rows, "signature"), 0.2, sets, only={key}))
+    assert sorted(one_by_one) == full
+    got = {(a, b) for a, b, _ in full}
+    for i, a in enumerate(keys):
+        for b in keys[i + 1:]:
+            inter = len(np.intersect1d(sets[a], sets[b]))
+            if inter / (len(sets[a]) + len(sets[b]) - inter) >= 0.25:  # Jaccard well above 0.2
+                assert (a, b) in got, (a, b)
+    assert len(got) >= 6 and all(sim >= 0.2 for _, _, sim in full)

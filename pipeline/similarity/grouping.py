@@ -246,8 +246,9 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     matrix each time). Memory: no array object per file is needed, and the matrix, made here,
     is let go while the sets are sketched and before the candidate pairs are verified; a full
     search with shingles calls ``matrix.release()``, when it has one, once it has spilled the
-    matrix to a file (``columns.stacked``: the column's own matrix leaves memory). ``read`` turns held shingle sets that are not arrays into arrays (``links.verify_codes``);
-    ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
+    matrix to a file (``columns.stacked``: the column's own matrix leaves memory). ``read``
+    turns held shingle sets that are not arrays into arrays (``links.verify_codes``); ``sizes``,
+    the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, few_new, pair_estimates, plausible_pairs
