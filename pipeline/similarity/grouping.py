@@ -244,9 +244,11 @@ def near_links_of(keys: list[str], matrix: "Callable[[], np.ndarray]", threshold
     """``near_links`` over the sorted ``keys``, whose signatures ``matrix()`` gives as the rows
     of one matrix (row ``k`` for ``keys[k]``; it may be called twice and must give the same
     matrix each time). Memory: no array object per file is needed, and the matrix, made here,
-    is let go while the sets are sketched and before the candidate pairs are verified.
-    ``read`` turns held shingle sets that are not arrays into arrays (``links.verify_codes``);
-    ``sizes``, the sets' lengths in key order, is taken from ``shingles`` when not given."""
+    is let go while the sets are sketched and before the candidate pairs are verified; a full
+    search with shingles calls ``matrix.release()``, when it has one, once it has spilled the
+    matrix to a file (``columns.stacked``: the column's own matrix leaves memory). ``read``
+    turns held shingle sets that are not arrays into arrays (``links.verify_codes``); ``sizes``,
+    the sets' lengths in key order, is taken from ``shingles`` when not given."""
     import numpy as np
 
     from .lsh import PAIR_CHUNK, few_new, pair_estimates, plausible_pairs
@@ -319,18 +321,18 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
                     shingles: Mapping[str, "np.ndarray"], recall: float, wanted: "np.ndarray | None",
                     margin_sigmas: float, read: "Callable[[list], list] | None", sizes: "np.ndarray | None"
                     ) -> list[tuple[str, str, float]]:
-    """``near_links_of``'s search with shingles, its candidates streamed (``similarity.candidates``):
-    the bands of ``lsh_rows`` rows and the same bands one row over, each block's new pairs bounded
-    exactly (``overlap_sketch``, every live set sketched up front) and by the MinHash bounds,
-    then the survivors verified, the signatures and sketches let go: the links of banding
-    every pair first."""
+    """``near_links_of``'s search with shingles, its candidates streamed (``similarity.spilled``):
+    the signatures spilled to a file column by column and let go, the bands of ``lsh_rows`` rows
+    and the same bands one row over read back one at a time, each band's pairs bounded exactly
+    (``overlap_sketch``, every live set sketched up front), the survivors bounded by the MinHash
+    estimates (counted a column at a time) and verified: the links of banding every pair first."""
     import numpy as np
 
-    from .candidates import streamed_pair_codes
     from .links import verify_codes
-    from .lsh import check_banding, plausible_pair_codes
+    from .lsh import check_banding
     from .minhash import EMPTY_VALUE
     from .overlap_sketch import bounded_codes, sketch_rows
+    from .spilled import SpilledColumns, spilled_pair_codes
 
     sig = np.asarray(matrix(), dtype=np.uint32)
     n, num_perm = sig.shape
@@ -348,13 +350,18 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
              else np.asarray(sizes, dtype=np.float64))[live]
     live_keys = [keys[x] for x in live.tolist()]
     m = len(live)
-    sk = sketch_rows(live_keys, np.arange(m), shingles, read=read)
-    at = np.arange(m)
-
-    def keep(codes: np.ndarray) -> np.ndarray:
-        codes = bounded_codes(sk, at, codes, threshold)
-        return plausible_pair_codes(sig, codes, sizes, threshold, margin_sigmas=margin_sigmas)
-
-    codes = streamed_pair_codes(sig, num_perm // rows, is_new, keep, shifted=rows > 1)
-    del sk, sig
+    # memory: the signatures go to a file (in ``matrix.folder`` when given: the run's own
+    # folder), read back a band at a time, and the matrix is let go (``matrix.release``, e.g.
+    # ``columns.stacked``'s) before the sets are sketched
+    with SpilledColumns(sig, getattr(matrix, "folder", None)) as store:
+        del sig
+        release = getattr(matrix, "release", None)
+        if release is not None:
+            release()
+        sk = sketch_rows(live_keys, np.arange(m), shingles, read=read)
+        at = np.arange(m)
+        codes = spilled_pair_codes(store, num_perm // rows, is_new,
+                                   lambda c: bounded_codes(sk, at, c, threshold), shifted=rows > 1)
+        del sk
+        codes = store.plausible_codes(codes, sizes, threshold, margin_sigmas=margin_sigmas)
     return verify_codes(live_keys, codes, shingles, threshold, read=read)

@@ -200,15 +200,23 @@ def plausible_pairs(sig: np.ndarray, i: np.ndarray, j: np.ndarray, set_sizes: An
     margin). ``set_sizes`` holds each row's shingle-set size."""
     half = sig.shape[1] // 2
     sizes = np.asarray(set_sizes, dtype=np.float64)
+    return plausible_estimates(pair_estimates(sig[:, :half], i, j), pair_estimates(sig[:, half:], i, j),
+                               sizes[i], sizes[j], threshold, half, min_size_ratio=min_size_ratio,
+                               cap=cap, margin_sigmas=margin_sigmas)
+
+
+def plausible_estimates(est_lead: np.ndarray, est: np.ndarray, si: np.ndarray, sj: np.ndarray,
+                        threshold: float, half: int, *, min_size_ratio: float = MIN_SIZE_RATIO,
+                        cap: int = ShingleSpec().max_shingles, margin_sigmas: float = 3.0) -> np.ndarray:
+    """``plausible_pairs``'s mask from the pairs' MinHash estimates (``est_lead`` on the
+    signatures' first ``half`` values, ``est`` on the rest) and set sizes ``si``, ``sj``
+    (``spilled.SpilledColumns`` counts the estimates a column at a time)."""
     t = float(threshold)
     lead_bound = t / (2.0 - t)
     lead_floor = lead_bound - margin_sigmas * np.sqrt(max(lead_bound * (1 - lead_bound), 1e-4) / half)
-    est_lead = pair_estimates(sig[:, :half], i, j)
-    est = pair_estimates(sig[:, half:], i, j)
-    si, sj = sizes[i], sizes[j]
     small, large = np.minimum(si, sj), np.maximum(si, sj)
     rho = small / np.maximum(large, 1.0)
-    bound = np.full(len(i), t)
+    bound = np.full(len(est), t)
     if min_size_ratio < 1.0:
         cont = small >= min_size_ratio * large
         bound[cont] = np.minimum(t, t * rho[cont] / (rho[cont] + 1.0 - t * rho[cont]))

@@ -302,8 +302,9 @@ class Dedup(Stage):
             self._generic = self._generic_shingles([k for k in indexed if content_rep[k] == k], arts)
         state.save("generic", self._generic.tolist())
         rows = [arts[k] for k in indexed]
+        signatures = stacked(rows, "signature") if rows else None
         try:  # speed, memory: one array taken from the signature column, no view per member
-            sigs = np.asarray(stacked(rows, "signature")(), dtype=np.uint32) if rows else None
+            sigs = np.asarray(signatures(), dtype=np.uint32) if rows else None
         except ValueError:  # signatures of several lengths
             sigs = None
         if sigs is not None and sigs.ndim == 2 and sigs.shape[1] == index.num_perm:
@@ -332,6 +333,9 @@ class Dedup(Stage):
                 index, is_new, sizes, arts, content)
             index_ids = index.ids
             del index
+            # memory: the signature column goes to a file until the split reads it (its own
+            # search spills it again: similarity.spilled); nothing here reads it past the search
+            getattr(signatures, "release", lambda: None)()
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
                                           skip=lambda rows: self._generic_bands(index.matrix(), rows))

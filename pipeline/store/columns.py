@@ -25,9 +25,11 @@ _MISSING = object()
 class _ArrayColumn:
     """Equal-shape arrays of one name as the rows of one matrix; arrays of several shapes or
     dtypes as a list of arrays (the rare case: the matrix is given up for the list). Row ``i``
-    is the matrix's row ``i``, or ``place[i]`` once ``first`` has reordered the matrix."""
+    is the matrix's row ``i``, or ``place[i]`` once ``first`` has reordered the matrix. The
+    matrix may be ``spill``ed to a file (``spilled``: the file, the matrix's shape and dtype),
+    read back when a reader needs it whole or a row is written."""
 
-    __slots__ = ("n", "matrix", "has", "rows", "place")
+    __slots__ = ("n", "matrix", "has", "rows", "place", "spilled")
 
     def __init__(self, n: int):
         self.n = n
@@ -35,11 +37,14 @@ class _ArrayColumn:
         self.has: np.ndarray | None = None
         self.rows: list | None = None
         self.place: np.ndarray | None = None  # row -> its matrix row (None: the same)
+        self.spilled: tuple | None = None  # (file, shape, dtype) while the matrix is in a file
 
     def _at(self, i: Any) -> Any:
         return i if self.place is None else self.place[i]
 
     def put(self, i: int, arr: np.ndarray) -> None:
+        if self.spilled is not None:
+            self._load()
         if self.rows is None:
             if self.matrix is None:
                 self.matrix = np.zeros((self.n, *arr.shape), dtype=arr.dtype)
@@ -54,6 +59,8 @@ class _ArrayColumn:
 
     def put_block(self, at: list[int], block: np.ndarray) -> None:
         """Rows ``at`` set to the rows of ``block`` (arrays of one dtype and shape)."""
+        if self.spilled is not None:
+            self._load()
         if self.rows is None and self.matrix is None:
             self.matrix = np.zeros((self.n, *block.shape[1:]), dtype=block.dtype)
             self.has = np.zeros(self.n, dtype=bool)
@@ -81,7 +88,11 @@ class _ArrayColumn:
         if self.rows is not None:
             v = self.rows[i]
             return _MISSING if v is None else v
-        return self.matrix[self._at(i)] if self.has[i] else _MISSING
+        if not self.has[i]:
+            return _MISSING
+        if self.spilled is not None:
+            return self._spilled_rows(int(self._at(i)), 1)[0]
+        return self.matrix[self._at(i)]
 
     def holds(self, i: int) -> bool:
         return self.rows[i] is not None if self.rows is not None else bool(self.has[i])
@@ -91,21 +102,83 @@ class _ArrayColumn:
         matrix, which is reordered when they do not already lie there in that order. Memory:
         a corpus step's search reads its members' signatures from the column itself, not from
         a gathered copy beside it (the reordering copies the matrix once, and the old one goes
-        unless a reader still holds a row of it)."""
+        unless a reader still holds a row of it; a spilled matrix is read back in the new order)."""
         where = self._at(at)
         k = len(where)
+        total = self.n_matrix_rows()
         if not np.array_equal(where, np.arange(k)):
-            rest = np.ones(len(self.matrix), dtype=bool)
+            rest = np.ones(total, dtype=bool)
             rest[where] = False
             order = np.concatenate([where, np.flatnonzero(rest)])
-            matrix = self.matrix[order]
             moved = np.empty(len(order), dtype=np.intp)  # old matrix row -> new one
             moved[order] = np.arange(len(order))
+            if self.spilled is not None:
+                self._load(moved)
+                matrix = self.matrix
+            else:
+                matrix = self.matrix[order]
             self.place = moved if self.place is None else moved[self.place]
             self.matrix = matrix
+        elif self.spilled is not None:
+            self._load()
         view = self.matrix[:k]
         view.flags.writeable = False  # the readers' view only: the column may still be written
         return view
+
+    def n_matrix_rows(self) -> int:
+        return self.spilled[1][0] if self.spilled is not None else len(self.matrix)
+
+    def whole(self) -> np.ndarray:
+        """The matrix, read back first when spilled."""
+        if self.spilled is not None:
+            self._load()
+        return self.matrix
+
+    def spill(self, folder: str | None = None) -> None:
+        """The matrix moved to an unnamed temporary file (in ``folder``, else the system's
+        temporary folder), let go from memory: a row read is read from the file, and the
+        matrix is read back when a reader needs it whole or a row is written. Memory: dedup's
+        full search lets the signature column go once banded, the split's once it holds a
+        column-major copy of its own (``similarity.spilled``); no memory map: the pages of a
+        mapped file read count in the process's resident memory."""
+        if self.matrix is None or self.spilled is not None or not self.matrix.size:
+            return
+        import tempfile
+        f = tempfile.TemporaryFile(dir=folder)
+        np.ascontiguousarray(self.matrix).tofile(f)
+        f.flush()
+        self.spilled = (f, self.matrix.shape, self.matrix.dtype)
+        self.matrix = None
+
+    def _spilled_rows(self, lo: int, count: int) -> np.ndarray:
+        """Rows ``lo .. lo + count - 1`` of the spilled matrix (read-only)."""
+        import os
+        f, shape, dtype = self.spilled
+        width = int(np.prod(shape[1:], dtype=np.int64)) * np.dtype(dtype).itemsize
+        data = os.pread(f.fileno(), count * width, lo * width)
+        if len(data) != count * width:
+            raise OSError(f"{f.name}: rows {lo}..{lo + count - 1} of a spilled column read "
+                          f"{len(data)} of {count * width} bytes")
+        return np.frombuffer(data, dtype=dtype).reshape(count, *shape[1:])
+
+    def _load(self, moved: np.ndarray | None = None) -> None:
+        """The spilled matrix read back (file row ``r`` to row ``moved[r]`` when given), a block
+        of rows at a time (memory: no second copy of the whole matrix), and the file closed."""
+        f, shape, dtype = self.spilled
+        matrix = np.empty(shape, dtype=dtype)
+        for lo in range(0, shape[0], _LOAD_ROWS):
+            part = self._spilled_rows(lo, min(_LOAD_ROWS, shape[0] - lo))
+            if moved is None:
+                matrix[lo:lo + len(part)] = part
+            else:
+                matrix[moved[lo:lo + len(part)]] = part
+        f.close()
+        self.spilled = None
+        self.matrix = matrix
+
+
+#: Rows of a spilled column read back at once.
+_LOAD_ROWS = 1 << 13
 
 
 class _DeferredColumn:
@@ -184,6 +257,7 @@ class ArtifactColumns:
         self._deferred_rows = deferred_rows
         self._handle = handle
         self._columns: dict[str, Any] = {}  # name -> column, in the order names were first seen
+        self.spill_folder: str | None = None  # where a spilled matrix's file goes (None: the system's)
 
     def _column(self, name: str, make: Any) -> Any:
         col = self._columns.get(name)
@@ -364,14 +438,32 @@ def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
     if rows and all(type(r) is ArtifactRow for r in rows):
         cols = rows[0]._cols
         col = cols._columns.get(name)
-        if type(col) is _ArrayColumn and col.matrix is not None and all(r._cols is cols for r in rows):
+        if (type(col) is _ArrayColumn and (col.matrix is not None or col.spilled is not None)
+                and all(r._cols is cols for r in rows)):
             at = np.array([r._i for r in rows], dtype=np.intp)
             if col.has[at].all():
                 ordered = np.sort(at)
                 if (ordered[1:] != ordered[:-1]).all():
-                    return lambda: col.first(at)
-                return lambda: col.matrix[col._at(at)]  # a row twice: a copy
+                    return _FirstRows(col, at, cols.spill_folder)
+                return lambda: col.whole()[col._at(at)]  # a row twice: a copy
     return lambda: np.vstack([np.asarray(r[name]) for r in rows])
+
+
+class _FirstRows:
+    """``stacked``'s function over one column's matrix (``_ArrayColumn.first``); ``release()``
+    moves that matrix to a file in ``folder`` when its caller no longer needs it whole in memory
+    (``_ArrayColumn.spill``); a caller spilling a copy of its own may put it there too."""
+
+    __slots__ = ("col", "at", "folder")
+
+    def __init__(self, col: _ArrayColumn, at: np.ndarray, folder: str | None = None):
+        self.col, self.at, self.folder = col, at, folder
+
+    def __call__(self) -> np.ndarray:
+        return self.col.first(self.at)
+
+    def release(self) -> None:
+        self.col.spill(self.folder)
 
 
 class ValuesOf(Mapping):

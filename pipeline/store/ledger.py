@@ -230,6 +230,7 @@ class Ledger:
         index = dict(zip(order, range(len(order))))
         cols = ArtifactColumns(order, {name: _ArrayRows(self.db, stage, fingerprint, name) for name in defer},
                                StoredArray)
+        cols.spill_folder = str(self.path.parent)  # a spilled signature matrix: the run's own folder
         # speed: rows are handed over a chunk at a time per name (arrays decoded from their
         # joined bytes, scalar objects parsed as one JSON array); a chunk bounds what is held
         pending: dict[str, tuple[list, list]] = {}  # name -> (row numbers, stored rows)

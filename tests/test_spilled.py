@@ -1,0 +1,143 @@
+"""The spilled signature matrix (pipeline/similarity/spilled.py) against the in-memory matrix:
+columns and bands read back row by row, candidate pairs against banding by its definition pair
+by pair (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3: a pair is a candidate
+when any band of its two signatures is equal) and against ``lsh.banded_pair_codes``, MinHash
+bounds against ``lsh.plausible_pair_codes`` on the matrix (the share of equal values estimates
+Jaccard: Broder 1997), and the signature column let go to a file (columns.stacked)."""
+import os
+
+import numpy as np
+import pytest
+
+from test_candidates import _brute_force, _every_fifth_pair_dropped
+
+from pipeline.similarity import lsh
+from pipeline.similarity.lsh import banded_pair_codes, plausible_pair_codes
+from pipeline.similarity.spilled import SpilledColumns, spilled_pair_codes
+from pipeline.store.columns import ArtifactColumns, stacked
+
+
+def test_columns_read_back_as_written(tmp_path):
+    # Reference: the matrix itself, column by column and band by band (row by row equal).
+    rng = np.random.default_rng(0)
+    sig = rng.integers(0, 2**32, (37, 20), dtype=np.uint32)
+    with SpilledColumns(sig, tmp_path) as store:
+        assert (store.n, store.width) == sig.shape
+        for c in range(20):
+            assert np.array_equal(store.column(c), sig[:, c])
+        assert np.array_equal(store.columns([3, 4]), sig[:, 3:5])
+        assert np.array_equal(store.columns([19, 0]), sig[:, [19, 0]])
+        i, j = rng.integers(0, 37, 50), rng.integers(0, 37, 50)
+        assert store.equal_counts(i, j, range(20)).tolist() == (sig[i] == sig[j]).sum(axis=1).tolist()
+    assert not list(tmp_path.iterdir())  # an unnamed file: nothing left behind
+
+
+@pytest.mark.parametrize("n,num_perm,bands,values,shifted,seed", [
+    (30, 8, 4, 3, False, 0), (50, 16, 8, 3, True, 1), (80, 32, 16, 3, True, 2), (60, 128, 64, 3, False, 3),
+    (200, 8, 4, 2, True, 5)])
+def test_spilled_codes_are_the_banded_codes(n, num_perm, bands, values, shifted, seed, monkeypatch, tmp_path):
+    # Reference: _brute_force (the definition of banding) and banded_pair_codes filtered
+    # afterwards; small value ranges give buckets of many rows and pairs sharing many bands
+    # (each met once per band here); pieces of 7 pairs and of the default size.
+    rng = np.random.default_rng(seed)
+    sig = rng.integers(0, values, (n, num_perm), dtype=np.uint32)
+    with SpilledColumns(sig, tmp_path) as store:
+        for is_new in (np.ones(n, dtype=bool), rng.random(n) < 0.3, np.eye(1, n, 0, dtype=bool)[0]):
+            want = _brute_force(sig, bands, is_new, shifted=shifted)
+            assert banded_pair_codes(sig, bands, is_new, shifted=shifted).tolist() == want
+
+            def keep(codes):
+                assert codes.tolist() == sorted(set(codes.tolist()))  # sorted, unique
+                return _every_fifth_pair_dropped(codes)
+
+            filtered = _every_fifth_pair_dropped(np.array(want, dtype=np.int64)).tolist()
+            assert spilled_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
+            with monkeypatch.context() as mp:
+                mp.setattr(lsh, "STREAM_PAIRS", 7)
+                assert spilled_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
+
+
+def test_plausible_codes_as_on_the_matrix(tmp_path):
+    # Reference: lsh.plausible_pair_codes on the in-memory matrix (the estimates gathered row by
+    # row); near-equal rows and unrelated ones, sets of several sizes, two thresholds.
+    rng = np.random.default_rng(4)
+    n, num_perm = 120, 128
+    sig = rng.integers(0, 2**32, (n, num_perm), dtype=np.uint32)
+    for r in range(1, n, 2):  # every second row shares a random share of its values with the row before
+        same = rng.random(num_perm) < rng.random()
+        sig[r, same] = sig[r - 1, same]
+    sizes = rng.integers(5, 400, n).astype(np.float64)
+    codes = np.sort(rng.choice(n * n, 3000, replace=False)).astype(np.int64)
+    codes = codes[codes // n < codes % n]
+    codes = np.union1d(codes, (np.arange(0, n, 2) * n + np.arange(1, n, 2)).astype(np.int64))
+    with SpilledColumns(sig, tmp_path) as store:
+        for t, margin in ((0.2, 4.0), (0.5, 3.0)):
+            want = plausible_pair_codes(sig, codes, sizes, t, margin_sigmas=margin)
+            got = store.plausible_codes(codes, sizes, t, margin_sigmas=margin)
+            assert got.tolist() == want.tolist()
+            if t == 0.5:  # at 0.2 with 4 sigmas the lead's bound keeps every pair (README)
+                assert 0 < len(want) < len(codes)  # the check has pairs on both sides
+
+
+def test_stacked_release_spills_the_column(tmp_path):
+    # Reference: the rows as put (plain numpy); after release the column reads the same rows
+    # from its file, row by row and stacked again in another order, and still takes a new row.
+    rng = np.random.default_rng(2)
+    sig = rng.integers(0, 2**32, (9, 16), dtype=np.uint32)
+    cols = ArtifactColumns([f"{k:064x}" for k in range(9)], {})
+    for k in range(9):
+        cols.put_array(k, "signature", sig[k])
+    cols.finish()
+    cols.spill_folder = str(tmp_path)
+    rows = [cols.row(k) for k in (7, 2, 5)]
+    matrix = stacked(rows, "signature")
+    assert np.array_equal(matrix(), sig[[7, 2, 5]])
+    matrix.release()
+    col = cols._columns["signature"]
+    assert col.matrix is None and col.spilled is not None
+    assert os.fstat(col.spilled[0].fileno()).st_dev == os.stat(tmp_path).st_dev  # in the folder given
+    assert not list(tmp_path.iterdir())  # an unnamed file
+    for k in range(9):
+        assert np.array_equal(cols.row(k)["signature"], sig[k])
+    assert np.array_equal(stacked([cols.row(k) for k in (1, 8)], "signature")(), sig[[1, 8]])
+    assert col.spilled is None  # read back whole, in the new order
+    matrix.release()
+    assert np.array_equal(stacked([cols.row(k) for k in (3, 3)], "signature")(), sig[[3, 3]])
+    matrix.release()
+    assert np.array_equal(matrix(), sig[[7, 2, 5]])
+    matrix.release()
+    cols.put_array(4, "signature", sig[0])
+    assert np.array_equal(cols.row(4)["signature"], sig[0])
+    assert np.array_equal(cols.row(3)["signature"], sig[3])
+
+
+def test_full_search_through_the_column_equals_the_in_memory_search(tmp_path):
+    # Reference: grouping.near_links_of's rerun path (few new rows: the matrix held in memory,
+    # banded whole, no spill), asked once per key, whose union is every linked pair; and
+    # brute-force exact similarity on random sets with planted overlaps (test_grouping).
+    from test_grouping import planted_sets
+
+    from pipeline.similarity.grouping import near_links_of
+    from pipeline.similarity.minhash import minhash
+
+    sets = planted_sets(7, 40, [0.95, 0.85, 0.6, 0.4, 0.3, 0.25, 0.2, 0.1])
+    keys = sorted(sets)
+    cols = ArtifactColumns(keys, {})
+    for k, key in enumerate(keys):
+        cols.put_array(k, "signature", minhash(sets[key]))
+    cols.finish()
+    cols.spill_folder = str(tmp_path)
+    rows = [cols.row(k) for k in range(len(keys))]
+    full = near_links_of(keys, stacked(rows, "signature"), 0.2, sets)
+    assert cols._columns["signature"].spilled is not None  # the search let the column go
+    one_by_one = set()
+    for key in keys:
+        one_by_one |= set(near_links_of(keys, stacked(rows, "signature"), 0.2, sets, only={key}))
+    assert sorted(one_by_one) == full
+    got = {(a, b) for a, b, _ in full}
+    for i, a in enumerate(keys):
+        for b in keys[i + 1:]:
+            inter = len(np.intersect1d(sets[a], sets[b]))
+            if inter / (len(sets[a]) + len(sets[b]) - inter) >= 0.25:  # Jaccard well above 0.2
+                assert (a, b) in got, (a, b)
+    assert len(got) >= 6 and all(sim >= 0.2 for _, _, sim in full)
