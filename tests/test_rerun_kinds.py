@@ -1,0 +1,134 @@
+"""Every kind of rerun writes what rebuilding it writes (issue 24, part 3: a rerun touches known
+files only where they changed, through the last run's rows, corpus-stage results and outputs).
+
+For each way a user changes a corpus (files added, nothing changed, files removed, a file
+replaced by other bytes, a byte-identical copy added, an option changed), the rerun over a copy
+of the last run's output is compared with the same rerun given nothing to reuse (its old
+manifest and the corpus stages' stored results of the last run removed, so every row, trail
+and corpus-stage result is made anew): manifest bytes, split lists, the normalized MIDI files,
+summary.json (but its timings, the input and output folders' paths, the output's own key, and
+the notes of a rerun that had nothing to do), the decision trails and the
+row digests. The corpus is the invented demo corpus (sample_corpus/README.md); the oracle is
+the pipeline's own full computation, as in tests/test_rowreuse.py.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+import sqlite3
+from pathlib import Path
+from typing import Callable
+
+import pytest
+
+from pipeline.config import load_config
+from pipeline.engine.runner import Runner
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "sample_corpus"
+
+
+def _run(inp: Path, out: Path, change_options: Callable | None = None) -> None:
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(inp), output=str(out), workers=1)
+    if change_options is not None:
+        change_options(cfg)
+    Runner(cfg, quiet=True).run()
+
+
+def _written(out: Path) -> dict:
+    """What a run wrote that a rerun must reproduce."""
+    summary = json.loads((out / "summary.json").read_text())
+    summary.pop("timings_s", None)
+    summary.pop("output", None)  # the folder's own path
+    summary.pop("input", None)  # each test's copy of the corpus
+    summary.get("counts", {}).pop("quick_key", None)
+    db = sqlite3.connect(out / "state.sqlite")
+    try:
+        tables = (db.execute("SELECT source, sha256, status, trail FROM decisions ORDER BY source").fetchall(),
+                  db.execute("SELECT source, digest FROM row_digests ORDER BY source").fetchall())
+    finally:
+        db.close()
+    midi = {p.relative_to(out).as_posix(): p.read_bytes() for p in sorted((out / "midi").rglob("*.mid"))}
+    splits = {p.name: p.read_bytes() for p in sorted((out / "splits").glob("*.txt"))}
+    return {"manifest": (out / "manifest.jsonl").read_bytes(), "splits": splits, "midi": midi,
+            "summary": summary, "tables": tables}
+
+
+def _forget_last_run(out: Path) -> None:
+    """Nothing of the last run's rows to reuse: no manifest, no stored corpus-stage results."""
+    (out / "manifest.jsonl").unlink()
+    db = sqlite3.connect(out / "state.sqlite")
+    with db:
+        db.execute("DELETE FROM results WHERE fingerprint LIKE '%:last-run'")
+    db.close()
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory):
+    """The demo corpus less three of its near duplicates and one kept file, run once."""
+    tmp = tmp_path_factory.mktemp("kinds")
+    probe = tmp / "probe"
+    _run(DEMO, probe)
+    rows = [json.loads(line) for line in (probe / "manifest.jsonl").read_text().splitlines()]
+    held = [r["source"] for r in rows if r["stage"] == "dedup" and r["reason"] == "near_duplicate"][:3]
+    kept = [r["source"] for r in rows if r["status"] == "kept"]
+    assert len(held) == 3 and len(kept) > 10
+    corpus = tmp / "corpus"
+    shutil.copytree(DEMO, corpus, ignore=shutil.ignore_patterns("*.json", "*.md"))
+    hold = tmp / "hold"
+    for rel in held + kept[-1:]:
+        (hold / rel).parent.mkdir(parents=True, exist_ok=True)
+        shutil.move(corpus / rel, hold / rel)
+    out = tmp / "out"
+    _run(corpus, out)
+    return corpus, out, hold, held, kept[:-1]
+
+
+def _added(corpus: Path, hold: Path, held: list[str], kept: list[str]) -> None:
+    for rel in held:  # near duplicates of kept files come back (their clusters change)
+        shutil.copy(hold / rel, corpus / rel)
+
+
+def _removed(corpus: Path, hold: Path, held: list[str], kept: list[str]) -> None:
+    (corpus / kept[3]).unlink()
+    (corpus / kept[7]).unlink()
+
+
+def _replaced(corpus: Path, hold: Path, held: list[str], kept: list[str]) -> None:
+    new = next(p for p in hold.rglob("*") if p.is_file() and p.relative_to(hold).as_posix() not in held)
+    shutil.copy(new, corpus / kept[4])  # a kept file's path now holds another piece
+
+
+def _byte_copy(corpus: Path, hold: Path, held: list[str], kept: list[str]) -> None:
+    shutil.copy(corpus / kept[5], corpus / "0000_first_copy.mid")  # sorts first: the representative
+
+
+def _nothing(corpus: Path, hold: Path, held: list[str], kept: list[str]) -> None:
+    pass
+
+
+def _filter_option(cfg) -> None:
+    cfg.stages[-2].options["min_seconds"] = 9  # filter
+
+
+@pytest.mark.parametrize("change, options", [
+    (_added, None), (_nothing, None), (_removed, None), (_replaced, None), (_byte_copy, None),
+    (_added, _filter_option)], ids=["added", "nothing", "removed", "replaced", "byte_copy", "option"])
+def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, options):
+    corpus0, out, hold, held, kept = base
+    corpus = tmp_path / "corpus"
+    shutil.copytree(corpus0, corpus)
+    change(corpus, hold, held, kept)
+    rerun, rebuilt = tmp_path / "rerun", tmp_path / "rebuilt"
+    shutil.copytree(out, rerun)
+    shutil.copytree(out, rebuilt)
+    _forget_last_run(rebuilt)
+    _run(corpus, rerun, options)
+    _run(corpus, rebuilt, options)
+    a, b = _written(rerun), _written(rebuilt)
+    if change is _nothing and options is None:  # up to date: the last run's summary, as it was
+        assert a["summary"].pop("unchanged_since_last_run") is True
+        a["summary"].pop("notes"), b["summary"].pop("notes")
+    assert a["midi"] and a["splits"]
+    for key in a:
+        assert a[key] == b[key], key
