@@ -12,8 +12,9 @@ import pytest
 from test_candidates import _brute_force, _every_fifth_pair_dropped
 
 from pipeline.similarity import lsh
+from pipeline.similarity.candidates import streamed_pair_codes
 from pipeline.similarity.lsh import banded_pair_codes, plausible_pair_codes
-from pipeline.similarity.spilled import SpilledColumns, spilled_pair_codes
+from pipeline.similarity.spilled import SpilledColumns
 from pipeline.store.columns import ArtifactColumns, stacked
 
 
@@ -51,10 +52,40 @@ def test_spilled_codes_are_the_banded_codes(n, num_perm, bands, values, shifted,
                 return _every_fifth_pair_dropped(codes)
 
             filtered = _every_fifth_pair_dropped(np.array(want, dtype=np.int64)).tolist()
-            assert spilled_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
+            assert streamed_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
             with monkeypatch.context() as mp:
                 mp.setattr(lsh, "STREAM_PAIRS", 7)
-                assert spilled_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
+                assert streamed_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
+
+
+@pytest.mark.parametrize("shifted,skipped,seed", [(False, False, 0), (True, False, 1), (False, True, 2)])
+def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, seed, tmp_path):
+    # Reference: _brute_force (the definition of banding, skip marks as LSHIndex.candidate_codes
+    # gives them) on one matrix, banded by the one loop from the matrix and from its spilled
+    # store with the same filter; from the matrix each pair meets the filter once (the test of
+    # earlier bands), from the store once per band that finds it, no fewer: both filter the same
+    # set of pairs.
+    rng = np.random.default_rng(seed)
+    n, num_perm, bands = 90, 32, 16
+    sig = rng.integers(0, 3, (n, num_perm), dtype=np.uint32)
+    skip = rng.random((n, bands)) < 0.4 if skipped else None
+    is_new = rng.random(n) < 0.5
+    want = _brute_force(sig, bands, is_new, shifted=shifted, skip=skip)
+    filtered = _every_fifth_pair_dropped(np.array(want, dtype=np.int64)).tolist()
+    met = {"matrix": [], "store": []}
+
+    def keep_of(name):
+        def keep(codes):
+            met[name].extend(codes.tolist())
+            return _every_fifth_pair_dropped(codes)
+        return keep
+
+    with SpilledColumns(sig, tmp_path) as store:
+        from_store = streamed_pair_codes(store, bands, is_new, keep_of("store"), shifted=shifted, skip=skip)
+    from_matrix = streamed_pair_codes(sig, bands, is_new, keep_of("matrix"), shifted=shifted, skip=skip)
+    assert from_matrix.tolist() == from_store.tolist() == filtered and filtered
+    assert sorted(met["matrix"]) == want  # once each
+    assert sorted(set(met["store"])) == want and len(met["store"]) > len(want)  # pairs share bands here
 
 
 def test_plausible_codes_as_on_the_matrix(tmp_path):
@@ -73,7 +104,7 @@ def test_plausible_codes_as_on_the_matrix(tmp_path):
     with SpilledColumns(sig, tmp_path) as store:
         for t, margin in ((0.2, 4.0), (0.5, 3.0)):
             want = plausible_pair_codes(sig, codes, sizes, t, margin_sigmas=margin)
-            got = store.plausible_codes(codes, sizes, t, margin_sigmas=margin)
+            got = plausible_pair_codes(store, codes, sizes, t, margin_sigmas=margin)
             assert got.tolist() == want.tolist()
             if t == 0.5:  # at 0.2 with 4 sigmas the lead's bound keeps every pair (README)
                 assert 0 < len(want) < len(codes)  # the check has pairs on both sides

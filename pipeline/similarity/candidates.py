@@ -1,42 +1,55 @@
-"""Candidate pairs streamed block of bands by block of bands, each block filtered at once.
+"""Candidate pairs streamed band by band, each piece filtered at once: the one banding loop of a
+full search, over signatures in memory (dedup) or spilled to a file (the split).
 
 ``lsh.banded_pair_codes`` returns every candidate pair of a corpus as one sorted array of
 codes; the pairs that share a band grow with the square of the corpus (millions at 100,000
 files), and holding them all, with the merges that make them unique, was the main process's
 largest transient at 100,000 and 300,000 files (README, Throughput, reruns and memory). Here
-each band is banded on its own and its pairs made a bounded piece at a time, the pairs an
-earlier band already found are dropped by comparing the pair's signature values there (no set
-of the codes seen so far is kept), and the caller's ``keep`` filter (exact bounds, MinHash
-bounds) runs on each piece at once: only its survivors are held. The result is the codes of
-``banded_pair_codes`` that ``keep`` keeps, sorted and unique (tests/test_candidates.py checks
-it against brute-force banding and against ``banded_pair_codes`` filtered afterwards).
+each band is banded on its own, from its columns only (a matrix in memory, or
+``spilled.SpilledColumns``, read back a band at a time), and its pairs made a bounded piece at
+a time; the caller's ``keep`` filter (exact bounds, MinHash bounds) runs on each piece at once:
+only its survivors are held. Over a matrix in memory, the pairs an earlier band already found
+are dropped by comparing the pair's signature values there (no set of the codes seen so far is
+kept), so ``keep`` meets each pair once (dedup counts them); the spilled store cannot read
+rows cheaply (a row is spread over every column), so there a pair found in several bands is
+filtered once per band and made unique at the end. The result is the codes of
+``banded_pair_codes`` that ``keep`` keeps, sorted and unique (tests/test_candidates.py and
+tests/test_spilled.py check it against brute-force banding and against ``banded_pair_codes``
+filtered afterwards).
 """
 from __future__ import annotations
 
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
 import numpy as np
 
 from .lsh import PAIR_CHUNK, band_key, check_banding, equal_key_pairs, sorted_unique
 from .minhash import EMPTY_VALUE
 
+if TYPE_CHECKING:
+    from .spilled import SpilledColumns
 
-def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
+
+def streamed_pair_codes(source: "np.ndarray | SpilledColumns", bands: int, is_new: np.ndarray,
                         keep: Callable[[np.ndarray], np.ndarray], *, shifted: bool = False,
                         skip: np.ndarray | None = None) -> np.ndarray:
-    """The sorted unique codes ``i * n + j`` (``i < j``, rows of ``sig``) of
+    """The sorted unique codes ``i * n + j`` (``i < j``, rows of the signatures ``source``: an
+    ``(n, num_perm)`` matrix, or the same matrix spilled, ``spilled.SpilledColumns``) of
     ``banded_pair_codes(sig, bands, is_new, shifted=shifted)`` that ``keep`` keeps.
 
-    The bands are taken one at a time, and a band's pairs at most ``lsh.STREAM_PAIRS`` at a time;
-    ``keep(codes)`` gets each such piece's pairs not found in an earlier band (sorted unique
-    codes; each pair once over the whole call) and returns the ones to keep (a pure per-pair
-    filter, so filtering each piece gives what filtering all candidates would). ``skip``
+    The bands are taken one at a time (with ``shifted``, every band again one column over, the
+    last wrapping round to column 0), and a band's pairs at most ``lsh.STREAM_PAIRS`` at a
+    time; ``keep(codes)`` gets each such piece's pairs (sorted unique codes) and returns the
+    ones to keep (a pure per-pair filter, so filtering each piece gives what filtering all
+    candidates would). From a matrix it gets only the pairs not found in an earlier band (no
+    band before holds equal values in both rows: each pair once over the whole call, but for a
+    pair found only through equal 64-bit band keys of unequal values, which the final unique
+    merge absorbs); from the spilled store, a pair once per band that finds it. ``skip``
     (``(n, bands)`` booleans, as ``LSHIndex.candidate_codes`` takes them) marks bands that pair
     no row: such a band of row ``i`` is keyed on the values ``(i, EMPTY_VALUE - 1, ...)``, as
-    there; not with ``shifted``. A pair is new to a band when no band before it holds equal
-    values in both rows; a pair found only through equal 64-bit band keys of unequal values
-    may then be met twice, which the final unique merge absorbs."""
-    n, num_perm = sig.shape
+    there; not with ``shifted``."""
+    in_memory = isinstance(source, np.ndarray)
+    n, num_perm = source.shape
     err = check_banding(num_perm, bands)
     if err:
         raise ValueError(err)
@@ -49,7 +62,7 @@ def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
         cols += [(c + 1) % num_perm for c in cols[:bands]]
     kept: list[np.ndarray] = []
     for b, c in enumerate(cols):
-        block = sig[:, c]  # memory: this band's columns only
+        block = source[:, c] if in_memory else source.columns(c)  # memory: this band's columns only
         if skip is not None:
             _fill_skipped(block, skip[:, b:b + 1], rows, np.arange(n))
         # keyed as band 0 of its own: the keys move by one constant, the pairs are the band's
@@ -57,10 +70,12 @@ def streamed_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray,
         del block
         for i, j in equal_key_pairs(key, is_new):
             codes = np.sort(i * n + j)
-            codes = codes[_first_found_in(sig, codes, cols, b, skip)]
+            if in_memory:
+                codes = codes[_first_found_in(source, codes, cols, b, skip)]
             if len(codes):
                 kept.append(keep(codes))
             del codes
+        del key
     if not kept:
         return np.zeros(0, dtype=np.int64)
     return sorted_unique(np.concatenate(kept))

@@ -321,18 +321,19 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
                     shingles: Mapping[str, "np.ndarray"], recall: float, wanted: "np.ndarray | None",
                     margin_sigmas: float, read: "Callable[[list], list] | None", sizes: "np.ndarray | None"
                     ) -> list[tuple[str, str, float]]:
-    """``near_links_of``'s search with shingles, its candidates streamed (``similarity.spilled``):
-    the signatures spilled to a file column by column and let go, the bands of ``lsh_rows`` rows
-    and the same bands one row over read back one at a time, each band's pairs bounded exactly
+    """``near_links_of``'s search with shingles, its candidates streamed (``similarity.candidates``
+    over ``similarity.spilled``): the signatures spilled to a file column by column and let go,
+    the bands of ``lsh_rows`` rows and the same bands one row over read back one at a time, each band's pairs bounded exactly
     (``overlap_sketch``, every live set sketched up front), the survivors bounded by the MinHash
     estimates (counted a column at a time) and verified: the links of banding every pair first."""
     import numpy as np
 
+    from .candidates import streamed_pair_codes
     from .links import verify_codes
-    from .lsh import check_banding
+    from .lsh import check_banding, plausible_pair_codes
     from .minhash import EMPTY_VALUE
     from .overlap_sketch import bounded_codes, sketch_rows
-    from .spilled import SpilledColumns, spilled_pair_codes
+    from .spilled import SpilledColumns
 
     sig = np.asarray(matrix(), dtype=np.uint32)
     n, num_perm = sig.shape
@@ -360,8 +361,8 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
             release()
         sk = sketch_rows(live_keys, np.arange(m), shingles, read=read)
         at = np.arange(m)
-        codes = spilled_pair_codes(store, num_perm // rows, is_new,
-                                   lambda c: bounded_codes(sk, at, c, threshold), shifted=rows > 1)
+        codes = streamed_pair_codes(store, num_perm // rows, is_new,
+                                    lambda c: bounded_codes(sk, at, c, threshold), shifted=rows > 1)
         del sk
-        codes = store.plausible_codes(codes, sizes, threshold, margin_sigmas=margin_sigmas)
+        codes = plausible_pair_codes(store, codes, sizes, threshold, margin_sigmas=margin_sigmas)
     return verify_codes(live_keys, codes, shingles, threshold, read=read)

@@ -9,7 +9,7 @@ grouping), ``plausible_pairs`` drops candidates whose signatures cannot reach a 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable, Iterator
+from typing import TYPE_CHECKING, Any, Callable, Iterator
 
 import numpy as np
 
@@ -17,6 +17,9 @@ from ..analysis.shingles import ShingleSpec, fmix64
 from ..midi.accel import kernel as compiled_kernel
 from .minhash import EMPTY_VALUE, _fmix32, fold32, is_empty, permutations
 from .sets import MIN_SIZE_RATIO
+
+if TYPE_CHECKING:
+    from .spilled import SpilledColumns
 
 
 _ROLL = np.uint64(0x9E3779B97F4A7C15)
@@ -179,30 +182,42 @@ class LSHIndex:
                                     cap=cap, margin_sigmas=margin_sigmas)
 
 
-def plausible_pair_codes(sig: np.ndarray, codes: np.ndarray, set_sizes: Any, threshold: float,
-                         **bounds: Any) -> np.ndarray:
-    """The codes ``i * len(sig) + j`` of ``codes`` that ``plausible_pairs`` keeps (its keyword
-    ``bounds``), a chunk of pairs at a time."""
-    n = len(sig)
+def plausible_pair_codes(sig: "np.ndarray | SpilledColumns", codes: np.ndarray, set_sizes: Any,
+                         threshold: float, **bounds: Any) -> np.ndarray:
+    """The codes ``i * n + j`` of ``codes`` that ``plausible_pairs`` keeps (its keyword
+    ``bounds``; ``sig``: the ``(n, num_perm)`` signature matrix, or the same matrix spilled,
+    ``spilled.SpilledColumns``), a chunk of pairs at a time."""
+    n = sig.shape[0]
+    chunk = PAIR_CHUNK if isinstance(sig, np.ndarray) else sig.PAIRS_AT_ONCE
+    sizes = np.asarray(set_sizes, dtype=np.float64)  # speed: converted once, not per chunk
     keep = np.empty(len(codes), dtype=bool)
-    for lo in range(0, len(codes), PAIR_CHUNK):  # memory: per-pair arrays a chunk at a time
-        c = codes[lo:lo + PAIR_CHUNK]
-        keep[lo:lo + len(c)] = plausible_pairs(sig, c // n, c % n, set_sizes, threshold, **bounds)
+    for lo in range(0, len(codes), chunk):  # memory: per-pair arrays a chunk at a time
+        i, j = np.divmod(codes[lo:lo + chunk], n)
+        keep[lo:lo + len(i)] = plausible_pairs(sig, i, j, sizes, threshold, **bounds)
     return codes[keep]
 
 
-def plausible_pairs(sig: np.ndarray, i: np.ndarray, j: np.ndarray, set_sizes: Any, threshold: float, *,
-                    min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
-                    margin_sigmas: float = 3.0) -> np.ndarray:
-    """Mask of the pairs (rows ``i``, ``j`` of the signature matrix ``sig``) whose MinHash
-    estimates leave ``set_similarity`` a chance to reach ``threshold`` (see
-    ``LSHIndex.plausible_codes``, which dedup uses; the split's grouping uses it with a wider
-    margin). ``set_sizes`` holds each row's shingle-set size."""
-    half = sig.shape[1] // 2
+def plausible_pairs(sig: "np.ndarray | SpilledColumns", i: np.ndarray, j: np.ndarray, set_sizes: Any,
+                    threshold: float, **bounds: Any) -> np.ndarray:
+    """Mask of the pairs (rows ``i``, ``j`` of the signatures ``sig``, as
+    ``plausible_pair_codes`` takes them) whose MinHash estimates (``half_estimates``) leave
+    ``set_similarity`` a chance to reach ``threshold`` (``plausible_estimates``, its keyword
+    ``bounds``; see ``LSHIndex.plausible_codes``, which dedup uses; the split's grouping uses it
+    with a wider margin). ``set_sizes`` holds each row's shingle-set size."""
     sizes = np.asarray(set_sizes, dtype=np.float64)
-    return plausible_estimates(pair_estimates(sig[:, :half], i, j), pair_estimates(sig[:, half:], i, j),
-                               sizes[i], sizes[j], threshold, half, min_size_ratio=min_size_ratio,
-                               cap=cap, margin_sigmas=margin_sigmas)
+    est_lead, est = half_estimates(sig, i, j)
+    return plausible_estimates(est_lead, est, sizes[i], sizes[j], threshold, sig.shape[1] // 2, **bounds)
+
+
+def half_estimates(sig: "np.ndarray | SpilledColumns", i: np.ndarray, j: np.ndarray
+                   ) -> tuple[np.ndarray, np.ndarray]:
+    """The MinHash Jaccard estimates of the row pairs ``(i[k], j[k])`` on each half of the
+    signatures (``signature_of``: the leads', the whole sets'); the spilled store counts them
+    a column at a time."""
+    if not isinstance(sig, np.ndarray):
+        return sig.half_estimates(i, j)
+    half = sig.shape[1] // 2
+    return pair_estimates(sig[:, :half], i, j), pair_estimates(sig[:, half:], i, j)
 
 
 def plausible_estimates(est_lead: np.ndarray, est: np.ndarray, si: np.ndarray, sj: np.ndarray,
@@ -210,7 +225,7 @@ def plausible_estimates(est_lead: np.ndarray, est: np.ndarray, si: np.ndarray, s
                         cap: int = ShingleSpec().max_shingles, margin_sigmas: float = 3.0) -> np.ndarray:
     """``plausible_pairs``'s mask from the pairs' MinHash estimates (``est_lead`` on the
     signatures' first ``half`` values, ``est`` on the rest) and set sizes ``si``, ``sj``
-    (``spilled.SpilledColumns`` counts the estimates a column at a time)."""
+    (``half_estimates``)."""
     t = float(threshold)
     lead_bound = t / (2.0 - t)
     lead_floor = lead_bound - margin_sigmas * np.sqrt(max(lead_bound * (1 - lead_bound), 1e-4) / half)

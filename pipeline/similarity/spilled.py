@@ -9,31 +9,29 @@ the surviving pairs are counted column by column. Memory: the matrix (512 bytes 
 permutations) is not held while the sketches are (together they were the split's peak); the
 file's pages stay in the page cache, not in the process (no memory map).
 
-``spilled_pair_codes`` gives the codes of ``candidates.streamed_pair_codes`` (the same pairs:
-``banded_pair_codes`` filtered), without its test of earlier bands (that reads whole rows): a
-pair found in several bands is filtered once per band and made unique at the end
-(tests/test_spilled.py checks both against the in-memory forms).
+``candidates.streamed_pair_codes`` and ``lsh.plausible_pair_codes`` take the store where they
+take the matrix (tests/test_spilled.py checks both against the in-memory forms).
 """
 from __future__ import annotations
 
 import os
 import tempfile
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
-from .lsh import band_key, check_banding, equal_key_pairs, plausible_estimates, sorted_unique
 
 #: Columns written at once when spilling (memory: a transposed copy of this many columns).
 _WRITE_COLUMNS = 8
-
-#: Pairs whose estimates are counted at once (memory: about 20 bytes a pair).
-_COUNT_PAIRS = 1 << 20
 
 
 class SpilledColumns:
     """The ``(n, width)`` uint32 matrix ``sig`` in an unnamed temporary file (in ``folder``, or
     the system's temporary folder), column ``c`` at byte ``c * n * 4``. ``close()`` removes it."""
+
+    #: Pairs whose estimates are counted at once (memory: about 20 bytes a pair; every column
+    #: is read once per such chunk, so far more pairs than the matrix's ``lsh.PAIR_CHUNK``).
+    PAIRS_AT_ONCE = 1 << 20
 
     def __init__(self, sig: np.ndarray, folder: str | os.PathLike | None = None):
         sig = np.asarray(sig, dtype=np.uint32)
@@ -42,6 +40,11 @@ class SpilledColumns:
         for c in range(0, self.width, _WRITE_COLUMNS):
             self._file.write(np.ascontiguousarray(sig[:, c:c + _WRITE_COLUMNS].T).tobytes())
         self._file.flush()
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """``(n, width)``, as the matrix's."""
+        return self.n, self.width
 
     def column(self, c: int) -> np.ndarray:
         """Column ``c`` of the matrix (``(n,)`` uint32)."""
@@ -69,21 +72,12 @@ class SpilledColumns:
             count += v[i] == v[j]
         return count
 
-    def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float,
-                        **bounds: Any) -> np.ndarray:
-        """``lsh.plausible_pair_codes`` over the spilled matrix: the codes ``i * n + j`` whose
-        MinHash estimates (share of equal values in each half) leave ``set_similarity`` a chance
-        to reach ``threshold``; the same estimates, counted a column at a time."""
+    def half_estimates(self, i: np.ndarray, j: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``lsh.half_estimates`` of the row pairs ``(i[k], j[k])``: the share of equal values
+        in each half, counted a column at a time."""
         half = self.width // 2
-        sizes = np.asarray(set_sizes, dtype=np.float64)
-        keep = np.empty(len(codes), dtype=bool)
-        for lo in range(0, len(codes), _COUNT_PAIRS):  # memory: per-pair arrays a chunk at a time
-            i, j = np.divmod(codes[lo:lo + _COUNT_PAIRS], self.n)
-            est_lead = self.equal_counts(i, j, range(half)) / half
-            est = self.equal_counts(i, j, range(half, self.width)) / (self.width - half)
-            keep[lo:lo + len(i)] = plausible_estimates(est_lead, est, sizes[i], sizes[j], threshold,
-                                                       half, **bounds)
-        return codes[keep]
+        return (self.equal_counts(i, j, range(half)) / half,
+                self.equal_counts(i, j, range(half, self.width)) / (self.width - half))
 
     def close(self) -> None:
         self._file.close()
@@ -94,31 +88,3 @@ class SpilledColumns:
     def __exit__(self, *exc: Any) -> None:
         self.close()
 
-
-def spilled_pair_codes(store: SpilledColumns, bands: int, is_new: np.ndarray,
-                       keep: Callable[[np.ndarray], np.ndarray], *, shifted: bool = False) -> np.ndarray:
-    """The sorted unique codes ``i * n + j`` (``i < j``) of the pairs of ``store``'s rows sharing
-    a band, with at least one ``is_new`` row, that ``keep`` keeps: the pairs of
-    ``lsh.banded_pair_codes(sig, bands, is_new, shifted=shifted)`` filtered by ``keep`` (a pure
-    per-pair filter given sorted unique codes). A band's columns are read when it is banded,
-    its pairs ``lsh.STREAM_PAIRS`` at a time; with ``shifted`` every band is taken again one
-    column over (the last wrapping round to column 0)."""
-    n, width = store.n, store.width
-    err = check_banding(width, bands)
-    if err:
-        raise ValueError(err)
-    rows = width // bands
-    cols = [np.arange(b * rows, (b + 1) * rows) for b in range(bands)]
-    if shifted:
-        cols += [(c + 1) % width for c in cols[:bands]]
-    kept: list[np.ndarray] = []
-    for c in cols:
-        key = band_key(store.columns(c), 1, 0)
-        for i, j in equal_key_pairs(key, is_new):
-            codes = sorted_unique(i * n + j)
-            kept.append(keep(codes))
-            del codes
-        del key
-    if not kept:
-        return np.zeros(0, dtype=np.int64)
-    return sorted_unique(np.concatenate(kept))

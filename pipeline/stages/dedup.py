@@ -39,7 +39,7 @@ from ..similarity.lsh import LSHIndex, check_banding, few_new, generic_bands
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
 from ..similarity.candidates import streamed_pair_codes
-from ..similarity.overlap_sketch import bounded_codes, sketch_rows, sketched_codes
+from ..similarity.overlap_sketch import Sketches, bounded_codes, sketch_rows, sketched_codes
 from ..store.columns import column_of, lengths_of, stacked
 from ..store.columns import present as holding  # run_corpus names its member set `present`
 from ..store.ledger import load_arrays
@@ -325,12 +325,12 @@ class Dedup(Stage):
         del size_of
         # two members of one content are no pair to verify (they are exact duplicates already)
         content = content_numbers(index.ids, content_rep) if len(searched) > len(rep_ids) else None
+        counts = [0, 0, 0]  # pairs after banding, after the MinHash bounds, after the exact bounds
         if len(index.ids) > 1 and is_new.any() and not few_new(is_new):
             # memory: a full run streams its candidates a block of bands at a time, each block
             # bounded at once (the same pairs and counts: similarity.candidates)
             del new_searched  # memory: not read past here on this path
-            codes, (n_candidates, n_plausible, n_sketched) = self._streamed_candidates(
-                index, is_new, sizes, arts, content)
+            codes = self._streamed_candidates(index, is_new, sizes, arts, content, counts)
             index_ids = index.ids
             del index
             # memory: the signature column goes to a file until the split reads it (its own
@@ -339,20 +339,10 @@ class Dedup(Stage):
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
                                           skip=lambda rows: self._generic_bands(index.matrix(), rows))
-            if content is not None:
-                codes = other_content_codes(codes, content)
-            n_candidates = len(codes)
-            codes = index.plausible_codes(codes, sizes,
-                                          threshold, min_size_ratio=float(o["min_size_ratio"]))
-            n_plausible = len(codes)
+            codes = self._bounded_candidates(codes, index, sizes, arts, content, counts)
             index_ids = index.ids
             del index  # memory: what it holds goes before the pairs are verified (the peak)
-            # speed: exact bounds from one bitmap per set (generic shingles left out, as compared)
-            # drop the pairs that cannot reach the threshold before the exact comparison, which reads
-            # every set several times (overlap_sketch; DEVELOPERS.md, Bench notes): the same links
-            codes = sketched_codes(index_ids, codes, _Shingles(arts), threshold, read=load_arrays,
-                                   generic=self._generic, min_size_ratio=float(o["min_size_ratio"]))
-            n_sketched = len(codes)
+        n_candidates, n_plausible, n_sketched = counts
         verified = verify_codes(index_ids, codes, _Shingles(arts), threshold,
                                 min_size_ratio=float(o["min_size_ratio"]), generic=self._generic,
                                 read=load_arrays)
@@ -410,35 +400,44 @@ class Dedup(Stage):
         return results
 
     def _streamed_candidates(self, index: LSHIndex, is_new: np.ndarray, sizes: np.ndarray,
-                             arts: dict[str, dict[str, Any]],
-                             content: np.ndarray | None = None) -> tuple[np.ndarray, tuple[int, int, int]]:
-        """The codes of ``index``'s candidate pairs (generic bands skipped) kept by the MinHash
-        bounds and then the exact bounds, and the counts after banding and after each bound:
-        ``candidate_codes``, ``plausible_codes`` and ``sketched_codes`` in turn, a block of
-        bands at a time (``similarity.candidates``), every indexed set sketched up front; pairs
-        of one note content (equal ``content`` numbers) are left out first, as
-        ``other_content_codes`` does."""
-        o = self.opts
-        threshold, ratio = float(o["threshold"]), float(o["min_size_ratio"])
+                             arts: dict[str, dict[str, Any]], content: np.ndarray | None,
+                             counts: list[int]) -> np.ndarray:
+        """The codes of ``index``'s candidate pairs (generic bands skipped) that
+        ``_bounded_candidates`` keeps, found a band at a time (``similarity.candidates``), each
+        piece bounded at once against the sketches of every indexed set, made up front."""
         sig = index.matrix()
         n = len(sig)
         skip = self._generic_bands(sig, None)  # memory: its transients go before the sketches come
-        sk = sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays, generic=self._generic)
-        at = np.arange(n)
-        counts = [0, 0, 0]
+        sketches = (sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays,
+                                generic=self._generic), np.arange(n))
+        return streamed_pair_codes(sig, index.bands, is_new, lambda codes: self._bounded_candidates(
+            codes, index, sizes, arts, content, counts, sketches), skip=skip)
 
-        def keep(codes: np.ndarray) -> np.ndarray:
-            if content is not None:
-                codes = other_content_codes(codes, content)
-            counts[0] += len(codes)
-            codes = index.plausible_codes(codes, sizes, threshold, min_size_ratio=ratio)
-            counts[1] += len(codes)
-            codes = bounded_codes(sk, at, codes, threshold, min_size_ratio=ratio)
-            counts[2] += len(codes)
-            return codes
-
-        codes = streamed_pair_codes(sig, index.bands, is_new, keep, skip=skip)
-        return codes, (counts[0], counts[1], counts[2])
+    def _bounded_candidates(self, codes: np.ndarray, index: LSHIndex, sizes: np.ndarray,
+                            arts: dict[str, dict[str, Any]], content: np.ndarray | None, counts: list[int],
+                            sketches: tuple[Sketches, np.ndarray] | None = None) -> np.ndarray:
+        """The candidate codes (pairs of ``index``'s rows) that may reach the threshold: pairs
+        of one note content (equal ``content`` numbers) left out (``other_content_codes``), then
+        the MinHash bounds (``plausible_codes``), then the exact bounds from one bitmap per set
+        (``overlap_sketch``, generic shingles left out, as compared: the same links, fewer sets
+        read by the exact comparison); adds the pairs left after each to ``counts``.
+        ``sketches`` (the sketches and each row's place in them) are those of every indexed set,
+        made up front (a full search); without them only the sets of the pairs left are read and
+        sketched (``sketched_codes``: a rerun reads no other set)."""
+        o = self.opts
+        threshold, ratio = float(o["threshold"]), float(o["min_size_ratio"])
+        if content is not None:
+            codes = other_content_codes(codes, content)
+        counts[0] += len(codes)
+        codes = index.plausible_codes(codes, sizes, threshold, min_size_ratio=ratio)
+        counts[1] += len(codes)
+        if sketches is None:
+            codes = sketched_codes(index.ids, codes, _Shingles(arts), threshold, read=load_arrays,
+                                   generic=self._generic, min_size_ratio=ratio)
+        else:
+            codes = bounded_codes(*sketches, codes, threshold, min_size_ratio=ratio)
+        counts[2] += len(codes)
+        return codes
 
     def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
         """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
