@@ -16,6 +16,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
+import tempfile
 import textwrap
 import time
 from pathlib import Path
@@ -344,6 +345,33 @@ def test_disk_full_in_the_ledger(corpus, config, baseline, tmp_path, monkeypatch
     monkeypatch.setattr(Ledger, "put_results", real)
     run(config, corpus, out)
     assert snapshot(out) == baseline
+
+
+def test_disk_full_when_the_signatures_leave_memory(corpus, config, baseline, tmp_path, monkeypatch):
+    """The corpus steps move the signature matrix to an unnamed file in the output folder
+    (similarity/spilled.py); a full disk there is an OutputError naming that folder, and the
+    rerun loses nothing."""
+    out = tmp_path / "out"
+    real = tempfile.TemporaryFile
+
+    class Full:
+        def __init__(self, *a, **k):
+            self.f = real(*a, **k)
+        write = staticmethod(enospc)
+
+        def __getattr__(self, name):
+            return getattr(self.f, name)
+
+    monkeypatch.setattr(tempfile, "TemporaryFile", Full)
+    with pytest.raises(OutputError, match="No space left on device") as err:
+        run(config, corpus, out)
+    assert err.value.file == str(out)
+    assert "free space" in err.value.message
+    assert not multiprocessing.active_children()
+    monkeypatch.setattr(tempfile, "TemporaryFile", real)
+    run(config, corpus, out)
+    assert snapshot(out) == baseline
+    assert_clean(out)
 
 
 def test_disk_full_in_a_worker_rendering_outputs(corpus, config, baseline, tmp_path, monkeypatch):

@@ -16,13 +16,33 @@ from __future__ import annotations
 
 import os
 import tempfile
-from typing import Any
+from typing import IO, Any, Iterable
 
 import numpy as np
+
+from ..errors import OutputError
 
 
 #: Columns written at once when spilling (memory: a transposed copy of this many columns).
 _WRITE_COLUMNS = 8
+
+
+def spill_file(chunks: Iterable[bytes], folder: str | os.PathLike | None) -> IO[bytes]:
+    """An unnamed temporary file in ``folder`` (else the system's temporary folder) holding the
+    ``chunks`` one after the other; a failed write (a full disk) is an ``OutputError`` naming
+    the folder, the file is gone with it."""
+    f = tempfile.TemporaryFile(dir=folder)
+    try:
+        for chunk in chunks:
+            f.write(chunk)
+        f.flush()
+    except OSError as e:
+        f.close()
+        where = os.fspath(folder) if folder is not None else tempfile.gettempdir()
+        raise OutputError(f"cannot write the signatures to a temporary file ({e.strerror}): the "
+                          "corpus steps move them out of memory there; free space on that disk "
+                          "and rerun (finished work is kept)", file=where) from None
+    return f
 
 
 class SpilledColumns:
@@ -36,10 +56,8 @@ class SpilledColumns:
     def __init__(self, sig: np.ndarray, folder: str | os.PathLike | None = None):
         sig = np.asarray(sig, dtype=np.uint32)
         self.n, self.width = sig.shape
-        self._file = tempfile.TemporaryFile(dir=folder)
-        for c in range(0, self.width, _WRITE_COLUMNS):
-            self._file.write(np.ascontiguousarray(sig[:, c:c + _WRITE_COLUMNS].T).tobytes())
-        self._file.flush()
+        self._file = spill_file((np.ascontiguousarray(sig[:, c:c + _WRITE_COLUMNS].T).tobytes()
+                                 for c in range(0, self.width, _WRITE_COLUMNS)), folder)
 
     @property
     def shape(self) -> tuple[int, int]:

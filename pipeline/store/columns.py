@@ -17,6 +17,8 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
+from ..similarity.spilled import spill_file
+
 __all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "column_of", "lengths_of", "present", "stacked"]
 
 _MISSING = object()
@@ -143,11 +145,10 @@ class _ArrayColumn:
         mapped file read count in the process's resident memory."""
         if self.matrix is None or self.spilled is not None or not self.matrix.size:
             return
-        import tempfile
-        f = tempfile.TemporaryFile(dir=folder)
-        np.ascontiguousarray(self.matrix).tofile(f)
-        f.flush()
-        self.spilled = (f, self.matrix.shape, self.matrix.dtype)
+        m = self.matrix
+        f = spill_file((np.ascontiguousarray(m[lo:lo + _LOAD_ROWS]).tobytes()
+                        for lo in range(0, len(m), _LOAD_ROWS)), folder)
+        self.spilled = (f, m.shape, m.dtype)
         self.matrix = None
 
     def _spilled_rows(self, lo: int, count: int) -> np.ndarray:
