@@ -677,3 +677,22 @@ def test_a_rerun_reads_output_counts_of_new_members_only():
     assert st_inc.current == st_full.current
     with pytest.raises(AssertionError, match="values read"):
         run([member(m, _Unread()) for m in ids], previous=s1.current)
+
+
+def test_results_name_the_groups_of_the_saved_links_and_parts():
+    """The results, made a group at a time, say what the plain form says: each member's group is
+    its connected component under the links the split saved (``grouping.build_groups``), named
+    by its smallest id, with its size, and its part is the saved assignment's."""
+    from pipeline.similarity.grouping import build_groups
+
+    c = Corpus(11)
+    base = [c.fresh() for _ in range(120)]
+    nears = [c.near(base[i], 0.7) for i in range(25)] + [c.near(base[0], 0.75)]
+    results, state = run([c.member(m) for m in base + nears])
+    saved = state.current
+    groups = build_groups(sorted(results), [tuple(link) for link in saved["links"]["links"]])
+    assert any(len(g) == 3 for g in groups.values())
+    expect = {m: {"split": saved["assignments"][m], "group": key, "group_size": len(g)}
+              for key, g in groups.items() for m in g}
+    assert {m: r.values for m, r in results.items()} == expect
+    assert all(r.kept and r.detail == "" for r in results.values())
