@@ -172,3 +172,13 @@ def test_full_search_through_the_column_equals_the_in_memory_search(tmp_path):
             if inter / (len(sets[a]) + len(sets[b]) - inter) >= 0.25:  # Jaccard well above 0.2
                 assert (a, b) in got, (a, b)
     assert len(got) >= 6 and all(sim >= 0.2 for _, _, sim in full)
+
+
+def test_a_short_read_of_a_damaged_spill_file_is_an_error(tmp_path):
+    # Common practice: a read that returns fewer bytes than asked is reported, never taken as data.
+    sig = np.arange(40, dtype=np.uint32).reshape(10, 4)
+    with SpilledColumns(sig, tmp_path) as store:
+        os.ftruncate(store._file.fileno(), 50)  # column 1 now ends after 10 of its 40 bytes
+        assert np.array_equal(store.column(0), sig[:, 0])
+        with pytest.raises(OSError, match="column 1 of spilled signatures read 10 of 40 bytes"):
+            store.column(1)

@@ -45,6 +45,15 @@ def spill_file(chunks: Iterable[bytes], folder: str | os.PathLike | None) -> IO[
     return f
 
 
+def read_spilled(f: IO[bytes], size: int, offset: int, what: str) -> bytes:
+    """``size`` bytes at ``offset`` of a spill file (``os.pread``: no shared file position);
+    a short read, which only a damaged file gives, is an ``OSError`` saying ``what`` was read."""
+    data = os.pread(f.fileno(), size, offset)
+    if len(data) != size:
+        raise OSError(f"{f.name}: {what} of spilled signatures read {len(data)} of {size} bytes")
+    return data
+
+
 class SpilledColumns:
     """The ``(n, width)`` uint32 matrix ``sig`` in an unnamed temporary file (in ``folder``, or
     the system's temporary folder), column ``c`` at byte ``c * n * 4``. ``close()`` removes it."""
@@ -67,11 +76,7 @@ class SpilledColumns:
     def column(self, c: int) -> np.ndarray:
         """Column ``c`` of the matrix (``(n,)`` uint32)."""
         size = self.n * 4
-        data = os.pread(self._file.fileno(), size, c * size)
-        if len(data) != size:
-            raise OSError(f"{self._file.name}: column {c} of the spilled signatures read "
-                          f"{len(data)} of {size} bytes")
-        return np.frombuffer(data, dtype=np.uint32)
+        return np.frombuffer(read_spilled(self._file, size, c * size, f"column {c}"), dtype=np.uint32)
 
     def columns(self, cols: Any) -> np.ndarray:
         """The columns ``cols`` as an ``(n, len(cols))`` matrix."""

@@ -17,7 +17,7 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
-from ..similarity.spilled import spill_file
+from ..similarity.spilled import read_spilled, spill_file
 
 __all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "column_of", "lengths_of", "present", "stacked"]
 
@@ -153,13 +153,9 @@ class _ArrayColumn:
 
     def _spilled_rows(self, lo: int, count: int) -> np.ndarray:
         """Rows ``lo .. lo + count - 1`` of the spilled matrix (read-only)."""
-        import os
         f, shape, dtype = self.spilled
         width = int(np.prod(shape[1:], dtype=np.int64)) * np.dtype(dtype).itemsize
-        data = os.pread(f.fileno(), count * width, lo * width)
-        if len(data) != count * width:
-            raise OSError(f"{f.name}: rows {lo}..{lo + count - 1} of a spilled column read "
-                          f"{len(data)} of {count * width} bytes")
+        data = read_spilled(f, count * width, lo * width, f"rows {lo}..{lo + count - 1}")
         return np.frombuffer(data, dtype=dtype).reshape(count, *shape[1:])
 
     def _load(self, moved: np.ndarray | None = None) -> None:
