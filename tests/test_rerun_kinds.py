@@ -21,6 +21,8 @@ from typing import Callable
 
 import pytest
 
+from test_rowreuse import _splits, _tables, demo_less_some_drops
+
 from pipeline.config import load_config
 from pipeline.engine.runner import Runner
 
@@ -42,14 +44,9 @@ def _written(out: Path) -> dict:
     summary.pop("output", None)  # the folder's own path
     summary.pop("input", None)  # each test's copy of the corpus
     summary.get("counts", {}).pop("quick_key", None)
-    db = sqlite3.connect(out / "state.sqlite")
-    try:
-        tables = (db.execute("SELECT source, sha256, status, trail FROM decisions ORDER BY source").fetchall(),
-                  db.execute("SELECT source, digest FROM row_digests ORDER BY source").fetchall())
-    finally:
-        db.close()
+    tables = _tables(out)
     midi = {p.relative_to(out).as_posix(): p.read_bytes() for p in sorted((out / "midi").rglob("*.mid"))}
-    splits = {p.name: p.read_bytes() for p in sorted((out / "splits").glob("*.txt"))}
+    splits = _splits(out)
     return {"manifest": (out / "manifest.jsonl").read_bytes(), "splits": splits, "midi": midi,
             "summary": summary, "tables": tables}
 
@@ -67,18 +64,7 @@ def _forget_last_run(out: Path) -> None:
 def base(tmp_path_factory):
     """The demo corpus less three of its near duplicates and one kept file, run once."""
     tmp = tmp_path_factory.mktemp("kinds")
-    probe = tmp / "probe"
-    _run(DEMO, probe)
-    rows = [json.loads(line) for line in (probe / "manifest.jsonl").read_text().splitlines()]
-    held = [r["source"] for r in rows if r["stage"] == "dedup" and r["reason"] == "near_duplicate"][:3]
-    kept = [r["source"] for r in rows if r["status"] == "kept"]
-    assert len(held) == 3 and len(kept) > 10
-    corpus = tmp / "corpus"
-    shutil.copytree(DEMO, corpus, ignore=shutil.ignore_patterns("*.json", "*.md"))
-    hold = tmp / "hold"
-    for rel in held + kept[-1:]:
-        (hold / rel).parent.mkdir(parents=True, exist_ok=True)
-        shutil.move(corpus / rel, hold / rel)
+    corpus, hold, held, kept = demo_less_some_drops(tmp, kept_held=1)
     out = tmp / "out"
     _run(corpus, out)
     return corpus, out, hold, held, kept[:-1]

@@ -45,10 +45,10 @@ def _splits(out: Path) -> dict[str, bytes]:
     return {p.name: p.read_bytes() for p in sorted((out / "splits").glob("*.txt"))}
 
 
-@pytest.fixture(scope="module")
-def first(tmp_path_factory):
-    """The demo corpus without some of its dedup drops, run once; and the changed corpus."""
-    tmp = tmp_path_factory.mktemp("reuse")
+def demo_less_some_drops(tmp: Path, kept_held: int = 0) -> tuple[Path, Path, list[str], list[str]]:
+    """The demo corpus copied to ``tmp/corpus`` less three of its near duplicates and its last
+    ``kept_held`` kept files, which are moved to ``tmp/hold``; and the sources held and kept
+    (by a run of the whole demo corpus)."""
     probe = tmp / "probe"
     _run(DEMO, probe)
     rows = [json.loads(line) for line in (probe / "manifest.jsonl").read_text().splitlines()]
@@ -58,9 +58,17 @@ def first(tmp_path_factory):
     corpus = tmp / "corpus"
     shutil.copytree(DEMO, corpus, ignore=shutil.ignore_patterns("*.json", "*.md"))
     hold = tmp / "hold"
-    for rel in held:
+    for rel in held + kept[len(kept) - kept_held:]:
         (hold / rel).parent.mkdir(parents=True, exist_ok=True)
         shutil.move(corpus / rel, hold / rel)
+    return corpus, hold, held, kept
+
+
+@pytest.fixture(scope="module")
+def first(tmp_path_factory):
+    """The demo corpus without some of its dedup drops, run once; and the changed corpus."""
+    tmp = tmp_path_factory.mktemp("reuse")
+    corpus, hold, held, kept = demo_less_some_drops(tmp)
     base = tmp / "base"
     _run(corpus, base)
     # the changes of the rerun
