@@ -323,9 +323,10 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
                     ) -> list[tuple[str, str, float]]:
     """``near_links_of``'s search with shingles, its candidates streamed (``similarity.candidates``
     over ``similarity.spilled``): the signatures spilled to a file column by column and let go,
-    the bands of ``lsh_rows`` rows and the same bands one row over read back one at a time, each band's pairs bounded exactly
-    (``overlap_sketch``, every live set sketched up front), the survivors bounded by the MinHash
-    estimates (counted a column at a time) and verified: the links of banding every pair first."""
+    the bands of ``lsh_rows`` rows and the same bands one row over read back one at a time,
+    each band's pairs bounded exactly (``overlap_sketch``, every live set sketched up front),
+    the survivors bounded by the MinHash estimates (counted a column at a time) and verified:
+    the links of banding every pair first."""
     import numpy as np
 
     from .candidates import streamed_pair_codes
