@@ -329,14 +329,10 @@ def main(argv: list[str] | None = None) -> None:
         minor_errors(data, args.pop)
         return
     key_variants.print_header(data)
-    for name in args.only or list(VARIANTS):
-        spec = VARIANTS[name]
-        d = data if spec is None else data.with_features(spec)
-        model = MODELS.get(name, key_variants.Linear)
-        key_variants.print_scores(name, d, lambda: model(d))
-        for seed in args.fold_seeds:
-            moved = shuffled(d, seed)
-            key_variants.print_scores(f"{name} (folds {seed})", moved, lambda: model(moved))
+    key_variants.print_variants(
+        args.only or list(VARIANTS),
+        lambda name: data if VARIANTS[name] is None else data.with_features(VARIANTS[name]),
+        lambda name, d: MODELS.get(name, key_variants.Linear)(d), shuffled, args.fold_seeds)
 
 
 if __name__ == "__main__":

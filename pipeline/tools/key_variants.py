@@ -377,5 +377,19 @@ def print_scores(name: str, data: Data, make: Callable[[], object]) -> None:
           + f"  ({time.process_time() - t0:.0f} s CPU)", flush=True)
 
 
+def print_variants(names: list[str], variant: Callable[[str], Data],
+                   model: Callable[[str, Data], object],
+                   shuffle: Callable[[Data, int], Data], fold_seeds: list[int]) -> None:
+    """Rows of the printed table for the variants tools: each named variant's data
+    (``variant(name)``) scored with its model, then once per fold seed with the pieces
+    shuffled (``shuffle(data, seed)``: another fold assignment)."""
+    for name in names:
+        data = variant(name)
+        print_scores(name, data, lambda: model(name, data))
+        for seed in fold_seeds:
+            moved = shuffle(data, seed)
+            print_scores(f"{name} (folds {seed})", moved, lambda: model(name, moved))
+
+
 if __name__ == "__main__":
     main()
