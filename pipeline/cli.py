@@ -21,7 +21,8 @@ def _version() -> str:
 
 class _VersionAction(argparse.Action):
     """``--version``: the version is looked up only when asked for (speed: reading the package
-    metadata costs every command about 70 ms of start-up, README, Throughput)."""
+    metadata costs every command about 70 ms of start-up, DEVELOPERS.md, Measurement history,
+    Throughput)."""
 
     def __init__(self, option_strings: list[str], dest: str = argparse.SUPPRESS, **kwargs: Any):
         super().__init__(option_strings, dest=dest, nargs=0, default=argparse.SUPPRESS,

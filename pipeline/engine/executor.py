@@ -333,7 +333,7 @@ class _Worker:
 
     def send(self, items: list[tuple[int, Any]]) -> None:
         """Queue (seq, task) pairs and send them in one message (speed: the stage plans the
-        tasks share are pickled once, README, Throughput)."""
+        tasks share are pickled once, DEVELOPERS.md, Bench notes)."""
         if not self.queue:
             self.started = time.monotonic()
         self.queue.extend(items)

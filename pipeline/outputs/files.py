@@ -195,7 +195,8 @@ def _flush_moved(moved: list[str], folders: set[str], in_place: int = 0) -> None
         os.sync()
         return
     # speed: the flushes wait on the disk, not the interpreter; several in flight share its
-    # journal commits (README, Throughput, reruns and memory: 2026-12-05)
+    # journal commits (DEVELOPERS.md, Measurement history, Throughput, reruns and memory:
+    # 2026-12-05)
     with ThreadPoolExecutor(min(FSYNC_THREADS, len(moved))) as pool:
         for _ in pool.map(_fsync_file, moved):  # the first failure in list order is raised
             pass

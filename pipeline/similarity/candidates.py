@@ -4,7 +4,8 @@ full search, over signatures in memory (dedup) or spilled to a file (the split).
 ``lsh.banded_pair_codes`` returns every candidate pair of a corpus as one sorted array of
 codes; the pairs that share a band grow with the square of the corpus (millions at 100,000
 files), and holding them all, with the merges that make them unique, was the main process's
-largest transient at 100,000 and 300,000 files (README, Throughput, reruns and memory). Here
+largest transient at 100,000 and 300,000 files (DEVELOPERS.md, Measurement history, Throughput,
+reruns and memory). Here
 each band is banded on its own, from its columns only (a matrix in memory, or
 ``spilled.SpilledColumns``, read back a band at a time), and its pairs made a bounded piece at
 a time; the caller's ``keep`` filter (exact bounds, MinHash bounds) runs on each piece at once:

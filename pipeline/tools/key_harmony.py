@@ -40,7 +40,8 @@ where the evidence sits in pop's minor songs called their relative major); ``sca
 shipped features with each column divided by its standard deviation over the training rows (a
 genre-agnostic scale for the L2 penalty, at three strengths) and ``versions`` adds the other
 arrangements of the training songs (``NNN/versions/``) to the pop training rows.
-``--fold-seeds`` scores under other fold assignments (README, Key detection, seventh round).
+``--fold-seeds`` scores under other fold assignments (DEVELOPERS.md, Measurement
+history, Key detection, seventh round).
 These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations

@@ -28,7 +28,7 @@ per-key columns (a major and a minor block, like ``class_features``) and is scor
 ``key_variants.cross_validate`` (5-fold and leave-one-genre-out) with the shipped linear
 model; ``--only minor-errors`` prints where the phrase evidence sits in pop's minor songs
 called their relative major, ``--fold-seeds`` also scores each variant under other fold
-assignments (README, Key detection, sixth round). These are experiments: nothing here is on the run path.
+assignments (DEVELOPERS.md, Measurement history, Key detection, sixth round). These are experiments: nothing here is on the run path.
 """
 from __future__ import annotations
 

@@ -7,7 +7,7 @@ and is scored by the same two cross-validations as ``evaluate_key``: **5-fold** 
 classical and pop each in five folds, each fold predicted by a model trained on the other folds
 plus the other sets; the 82 evaluation chorales by a model trained on all four training sets)
 and **leave-one-genre-out** (trained on the three other sets). Each set weighs the same in
-training. The variants (README, Key detection, fifth round):
+training. The variants (DEVELOPERS.md, Measurement history, Key detection, fifth round):
 
 - ``linear``: the shipped multinomial logistic regression (``train_key.fit``);
 - ``network-*``: a one-hidden-layer network applied to each candidate key's feature row with
@@ -313,7 +313,7 @@ def cross_validate(data: Data, make: Callable[[], object], folds: int = 5
 
 
 def variants(data: Data) -> dict[str, Callable[[], object]]:
-    """The variants of the fifth round by name (README, Key detection)."""
+    """The variants of the fifth round by name (DEVELOPERS.md, Measurement history, Key detection)."""
     net = lambda **kw: (lambda: Network(data, **kw))  # noqa: E731
     two = lambda **kw: (lambda: TwoStage(data, **kw))  # noqa: E731
     return {
