@@ -389,7 +389,7 @@ def test_a_version_1_ledger_is_migrated_and_reads_one_stage_as_a_range(tmp_path)
         got = led.results_for("filter", "fp")
         arts = led.artifacts_for("dedup", "fp")
         db = led.db
-        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("2",)
+        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
         assert _key_order(db, "results") == ["stage", "fingerprint", "sha256"]
         assert _key_order(db, "artifacts") == ["stage", "fingerprint", "sha256", "name"]
         for sql in ("SELECT sha256 FROM results WHERE stage=? AND fingerprint=?",
@@ -410,8 +410,63 @@ def test_a_ledger_of_a_newer_version_is_refused(tmp_path):
     with Ledger(path):
         pass
     db = sqlite3.connect(path)
-    db.execute("UPDATE meta SET value='3' WHERE key='schema'")
+    db.execute("UPDATE meta SET value='4' WHERE key='schema'")
     db.commit()
     db.close()
-    with pytest.raises(LedgerError, match="state schema version 3 is not 2"):
+    with pytest.raises(LedgerError, match="state schema version 4 is not 3"):
         Ledger(path)
+
+
+def as_version_2(path: Path) -> None:
+    """Turn a ledger into the version-2 layout: every array's bytes in its artifacts row, no
+    artifact_data table (what version 2 of ledger.py wrote)."""
+    db = sqlite3.connect(path)
+    with db:
+        db.execute("UPDATE artifacts AS a SET data=(SELECT d.data FROM artifact_data AS d WHERE "
+                   "d.stage=a.stage AND d.fingerprint=a.fingerprint AND d.sha256=a.sha256 AND "
+                   "d.name=a.name) WHERE a.data IS NULL")
+        db.execute("DROP TABLE artifact_data")
+        db.execute("UPDATE meta SET value='2' WHERE key='schema'")
+    db.close()
+
+
+def test_a_version_2_ledger_is_migrated_with_every_artifact_kept(tmp_path):
+    import numpy as np
+
+    from pipeline.store.ledger import INLINE_BYTES, load_arrays
+    path = tmp_path / "state.sqlite"
+    rng = np.random.default_rng(5)
+    items = {"%064x" % i: {"shingles": np.sort(rng.integers(0, 2**63, size=20 * i, dtype=np.uint64)),
+                           "signature": rng.integers(0, 2**32, size=128, dtype=np.uint32),
+                           "notes": i} for i in range(12)}
+    order = sorted(items)
+    with Ledger(path) as led:
+        with led.batch():
+            led.put_artifacts([(sha, "dedup", "fp", it) for sha, it in items.items()])
+    as_version_2(path)
+    db = sqlite3.connect(path)
+    assert db.execute("SELECT count(*) FROM artifacts WHERE data IS NULL").fetchone() == (0,)
+    db.close()
+    with Ledger(path) as led:
+        db = led.db
+        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
+        # a signature (128 x 4 bytes) stays in its row, a shingle set of more bytes moves
+        moved = {sha for (sha,) in db.execute("SELECT sha256 FROM artifact_data WHERE name='shingles'")}
+        assert moved == {sha for sha, it in items.items() if it["shingles"].nbytes > INLINE_BYTES}
+        assert 0 < len(moved) < len(items)
+        assert db.execute("SELECT count(*) FROM artifacts WHERE data IS NULL").fetchone() == (len(moved),)
+        eager = led.artifacts_for("dedup", "fp")
+        lazy = led.artifacts_for("dedup", "fp", defer=("shingles",))
+        cols = led.artifact_columns("dedup", "fp", order, defer=("shingles",))
+        handles = [cols.row(i)["shingles"] for i in range(len(order))]
+        loaded = load_arrays([lazy[sha]["shingles"] for sha in order] + handles)
+        plain = led.artifact_columns("dedup", "fp", order)
+        for k, sha in enumerate(order):
+            want = items[sha]
+            for got in (eager[sha]["shingles"], loaded[k], loaded[len(order) + k], plain.row(k)["shingles"]):
+                assert np.array_equal(got, want["shingles"]) and got.dtype == want["shingles"].dtype
+            assert np.array_equal(eager[sha]["signature"], want["signature"])
+            assert np.array_equal(cols.row(k)["signature"], want["signature"])
+            assert eager[sha]["notes"] == cols.row(k)["notes"] == want["notes"]
+    with Ledger(path) as led:  # opening again changes nothing
+        assert led.db.execute("SELECT count(*) FROM artifact_data").fetchone() == (len(moved),)

@@ -6,7 +6,10 @@ Tables
   results    (sha256, stage, fingerprint) -> verdict, reason, detail, values, thresholds
              (per-file stage results; a rerun reuses every row whose key matches)
   artifacts  (sha256, stage, fingerprint, name) -> a scalar (JSON) or a numpy array (raw bytes
-             + dtype + shape; never pickle) from a corpus stage's per-file ``prepare``
+             + dtype + shape; never pickle) from a corpus stage's per-file ``prepare``; an
+             array of more than ``INLINE_BYTES`` has data NULL here and its bytes in
+  artifact_data (stage, fingerprint, sha256, name) -> those bytes (the shingle sets), so reading
+             the small artifacts and the keys of a stage does not page through them
   state      (stage, key) -> JSON saved by a corpus stage in the last completed run
   decisions  source -> the whole decision trail of the last completed run (for ``explain``)
   row_digests source -> digest of what its manifest row and trail were made from in the last
@@ -35,7 +38,12 @@ if TYPE_CHECKING:
 #: 2: results and artifacts keyed by (stage, fingerprint, sha256, ...) instead of sha256
 #: first, so reading one stage's rows is a range of the table, not a scan of every stage's
 #: rows; a version-1 database is migrated when opened (``_migrate_from_1``)
-SCHEMA_VERSION = 2
+#: 3: the bytes of arrays over ``INLINE_BYTES`` in their own table, ``artifact_data``; a
+#: version-2 database is migrated when opened (``_migrate_from_2``)
+SCHEMA_VERSION = 3
+#: An artifact array of at most this many bytes (a MinHash signature: 128 x 4) is stored in its
+#: artifacts row, a larger one (a shingle set) in ``artifact_data``.
+INLINE_BYTES = 512
 #: Columns and keys of the two tables a rerun reads by stage (see SCHEMA_VERSION).
 _KEYED_BY_STAGE = {
     "results": """sha256 TEXT NOT NULL, stage TEXT NOT NULL, fingerprint TEXT NOT NULL,
@@ -52,6 +60,9 @@ CREATE TABLE IF NOT EXISTS sources (
     path TEXT PRIMARY KEY, size INTEGER NOT NULL, mtime_ns INTEGER NOT NULL, sha256 TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS results ({results}) WITHOUT ROWID;
 CREATE TABLE IF NOT EXISTS artifacts ({artifacts}) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS artifact_data (
+    stage TEXT NOT NULL, fingerprint TEXT NOT NULL, sha256 TEXT NOT NULL, name TEXT NOT NULL,
+    data BLOB NOT NULL, PRIMARY KEY (stage, fingerprint, sha256, name));
 CREATE TABLE IF NOT EXISTS state (
     stage TEXT NOT NULL, key TEXT NOT NULL, value TEXT NOT NULL, PRIMARY KEY (stage, key));
 CREATE TABLE IF NOT EXISTS decisions (
@@ -88,8 +99,10 @@ class Ledger:
             row = self.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
             if row is None:
                 self.db.execute("INSERT INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
-            elif int(row[0]) == 1:
-                _migrate_from_1(self.db)
+            elif int(row[0]) in (1, 2):
+                if int(row[0]) == 1:
+                    _migrate_from_1(self.db)
+                _migrate_from_2(self.db)
             elif int(row[0]) != SCHEMA_VERSION:
                 raise LedgerError(
                     f"state schema version {row[0]} is not {SCHEMA_VERSION}; rerun with --fresh into a new output folder",
@@ -256,20 +269,25 @@ class Ledger:
     def _artifact_rows(self, stage: str, fingerprint: str, defer: tuple[str, ...]) -> Iterator[tuple]:
         """(sha256, name, dtype, shape, data) of a stage's stored artifacts; the bytes of the
         arrays named in ``defer`` are not selected (data None; the row still gives the shape)."""
-        blob = ("CASE WHEN name IN (%s) THEN NULL ELSE data END" % ",".join("?" * len(defer))
-                if defer else "data")
+        blob = (f"CASE WHEN name IN (%s) THEN NULL ELSE {_DATA} END" % ",".join("?" * len(defer))
+                if defer else _DATA)
         return self.db.execute(
-            f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts WHERE stage=? AND fingerprint=?",
+            f"SELECT sha256, name, dtype, shape, {blob} FROM artifacts AS a WHERE stage=? AND fingerprint=?",
             (*defer, stage, fingerprint))
 
     def put_artifacts(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, items): items as ``{name: array or JSON
         scalar}``, or in their stored form (``stored_artifacts``, what the workers send)."""
-        flat = []
+        flat, apart = [], []
+        inline = INLINE_BYTES
         for sha, stage, fp, items in rows:
-            for stored in (items if type(items) is tuple else stored_artifacts(items)):
-                flat.append((sha, stage, fp, *stored))
+            for name, dtype, shape, data in (items if type(items) is tuple else stored_artifacts(items)):
+                if dtype is not None and len(data) > inline:
+                    apart.append((stage, fp, sha, name, data))
+                    data = None
+                flat.append((sha, stage, fp, name, dtype, shape, data))
         self.db.executemany("INSERT OR REPLACE INTO artifacts VALUES (?,?,?,?,?,?,?)", flat)
+        self.db.executemany("INSERT OR REPLACE INTO artifact_data VALUES (?,?,?,?,?)", apart)
 
     # -- corpus-stage state ------------------------------------------------------------------
     def state_for(self, stage: str) -> dict[str, Any]:
@@ -365,6 +383,7 @@ class Ledger:
         """Forget cached per-file results and artifacts (``--fresh``); keeps history of runs."""
         self.db.execute("DELETE FROM results")
         self.db.execute("DELETE FROM artifacts")
+        self.db.execute("DELETE FROM artifact_data")
         self.db.execute("DELETE FROM row_digests")
 
 
@@ -380,11 +399,41 @@ def _migrate_from_1(db: sqlite3.Connection) -> None:
             db.execute(f"INSERT INTO {table}_v2 ({', '.join(columns)}) SELECT {', '.join(columns)} FROM {table}")
             db.execute(f"DROP TABLE {table}")
             db.execute(f"ALTER TABLE {table}_v2 RENAME TO {table}")
+        db.execute("UPDATE meta SET value='2' WHERE key='schema'")
+        db.execute("COMMIT")
+    except BaseException:
+        db.execute("ROLLBACK")
+        raise
+
+
+def _migrate_from_2(db: sqlite3.Connection) -> None:
+    """Move the bytes of a version-2 database's arrays over ``INLINE_BYTES`` into
+    ``artifact_data`` and rebuild the artifacts table without them (its pages then hold only
+    the small rows), in one transaction: a run killed meanwhile leaves version 2. Every stored
+    artifact is kept, so the next run reuses them as before."""
+    large = "dtype IS NOT NULL AND data IS NOT NULL AND length(data) > ?"
+    db.execute("BEGIN IMMEDIATE")
+    try:
+        db.execute("INSERT OR REPLACE INTO artifact_data SELECT stage, fingerprint, sha256, name, data "
+                   f"FROM artifacts WHERE {large}", (INLINE_BYTES,))
+        columns = [r[1] for r in db.execute("PRAGMA table_info(artifacts)")]
+        kept = ", ".join(f"CASE WHEN {large} THEN NULL ELSE data END" if c == "data" else c for c in columns)
+        db.execute(f"CREATE TABLE artifacts_v3 ({_KEYED_BY_STAGE['artifacts']}) WITHOUT ROWID")
+        db.execute(f"INSERT INTO artifacts_v3 ({', '.join(columns)}) SELECT {kept} FROM artifacts",
+                   (INLINE_BYTES,))
+        db.execute("DROP TABLE artifacts")
+        db.execute("ALTER TABLE artifacts_v3 RENAME TO artifacts")
         db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
         db.execute("COMMIT")
     except BaseException:
         db.execute("ROLLBACK")
         raise
+
+
+#: An artifacts row's bytes (``a``), read from ``artifact_data`` when stored there (data NULL;
+#: SQLite's coalesce runs the lookup only then).
+_DATA = ("coalesce(a.data, (SELECT d.data FROM artifact_data AS d WHERE d.stage=a.stage AND "
+         "d.fingerprint=a.fingerprint AND d.sha256=a.sha256 AND d.name=a.name))")
 
 
 class _Batch:
@@ -445,7 +494,7 @@ class _ArrayRows:
         got: dict[str, bytes] = {}
         for chunk in iter_chunks(shas, FETCH_CHUNK):
             got.update(self.db.execute(
-                f"SELECT sha256, data FROM artifacts WHERE stage=? AND fingerprint=? AND name=? "
+                f"SELECT sha256, {_DATA} FROM artifacts AS a WHERE stage=? AND fingerprint=? AND name=? "
                 f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, name, *chunk)))
         return got
 
