@@ -99,10 +99,10 @@ def _filter_option(cfg) -> None:
     cfg.stages[-2].options["min_seconds"] = 9  # filter
 
 
-@pytest.mark.parametrize("change, options", [
-    (_added, None), (_nothing, None), (_removed, None), (_replaced, None), (_byte_copy, None),
-    (_added, _filter_option)], ids=["added", "nothing", "removed", "replaced", "byte_copy", "option"])
-def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, options):
+def _rerun_and_rebuild(base, tmp_path: Path, change: Callable, options: Callable | None = None,
+                       prepare: Callable | None = None) -> tuple[RunReport, Path, dict, dict]:
+    """The rerun after ``change`` over a copy of the base output (``prepare``d first), and the
+    same rerun with nothing to reuse: its report, its folder and what each wrote."""
     corpus0, out, hold, held, kept = base
     corpus = tmp_path / "corpus"
     shutil.copytree(corpus0, corpus)
@@ -110,10 +110,19 @@ def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, option
     rerun, rebuilt = tmp_path / "rerun", tmp_path / "rebuilt"
     shutil.copytree(out, rerun)
     shutil.copytree(out, rebuilt)
+    if prepare is not None:
+        prepare(rerun)
     _forget_last_run(rebuilt)
-    _run(corpus, rerun, options)
+    report = _run(corpus, rerun, options)
     _run(corpus, rebuilt, options)
-    a, b = _written(rerun), _written(rebuilt)
+    return report, rerun, _written(rerun), _written(rebuilt)
+
+
+@pytest.mark.parametrize("change, options", [
+    (_added, None), (_nothing, None), (_removed, None), (_replaced, None), (_byte_copy, None),
+    (_added, _filter_option)], ids=["added", "nothing", "removed", "replaced", "byte_copy", "option"])
+def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, options):
+    _, _, a, b = _rerun_and_rebuild(base, tmp_path, change, options)
     if change is _nothing and options is None:  # up to date: the last run's summary, as it was
         assert a["summary"].pop("unchanged_since_last_run") is True
         a["summary"].pop("notes"), b["summary"].pop("notes")
@@ -125,22 +134,12 @@ def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, option
 def test_a_rerun_over_a_version_2_ledger_migrates_it_and_reuses_its_artifacts(base, tmp_path):
     # version 3 keeps the shingle sets' bytes in their own table; the last version's ledger is
     # migrated when opened: only the new files are decoded, and the outputs are the rebuild's
-    corpus0, out, hold, held, kept = base
-    corpus = tmp_path / "corpus"
-    shutil.copytree(corpus0, corpus)
-    _added(corpus, hold, held, kept)
-    rerun, rebuilt = tmp_path / "rerun", tmp_path / "rebuilt"
-    shutil.copytree(out, rerun)
-    shutil.copytree(out, rebuilt)
-    as_version_2(rerun / "state.sqlite")
-    _forget_last_run(rebuilt)
-    report = _run(corpus, rerun)
-    _run(corpus, rebuilt)
-    assert report.computed == len(held)
+    report, rerun, a, b = _rerun_and_rebuild(base, tmp_path, _added,
+                                             prepare=lambda out: as_version_2(out / "state.sqlite"))
+    assert report.computed == len(base[3])
     db = sqlite3.connect(rerun / "state.sqlite")
     assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
     assert db.execute("SELECT count(*) FROM artifact_data").fetchone()[0] > 0
     db.close()
-    a, b = _written(rerun), _written(rebuilt)
     for key in a:
         assert a[key] == b[key], key
