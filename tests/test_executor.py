@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import selectors
 import signal
 import subprocess
 import sys
@@ -14,6 +15,7 @@ from pathlib import Path
 
 import pytest
 
+from pipeline.engine import executor
 from pipeline.errors import OutputError, UsageError
 from pipeline.engine.executor import FAULT_ENV, Fault, Limits, parse_fault_hook, run_tasks
 
@@ -114,8 +116,10 @@ def test_a_signal_handled_outside_the_wait_still_stops_the_run(tmp_path):
     helper thread to itself, which is the case made certain."""
     script = tmp_path / "stop.py"
     script.write_text(textwrap.dedent("""
-        import signal, threading, time
+        import faulthandler, signal, sys, threading, time
         from pipeline.engine.executor import Limits, run_tasks
+
+        faulthandler.dump_traceback_later(45, file=sys.stderr)  # where it waits, if it hangs
 
         def hang(_):
             time.sleep(600)
@@ -128,15 +132,35 @@ def test_a_signal_handled_outside_the_wait_still_stops_the_run(tmp_path):
         try:
             list(run_tasks(hang, [1, 2], 2, limits=Limits(timeout_s=600)))
         except KeyboardInterrupt:
-            print("stopped")
+            print("stopped", flush=True)
     """))
     repo = Path(__file__).resolve().parents[1]
     try:
         done = subprocess.run([sys.executable, str(script)], cwd=repo, capture_output=True,
                               text=True, timeout=60)
-    except subprocess.TimeoutExpired:
-        pytest.fail("the parent waited on after Ctrl-C was handled in another thread")
+    except subprocess.TimeoutExpired as exc:
+        pytest.fail(f"the parent waited on after Ctrl-C was handled in another thread; its "
+                    f"threads after 45 s:\n{exc.stderr}\nits output: {exc.stdout!r}")
     assert done.stdout.strip() == "stopped", done.stderr
+
+
+def test_ctrl_c_while_a_worker_starts_ends_the_run_with_it(monkeypatch):
+    """A Ctrl-C that lands while the pool starts a worker (here raised by the selector as the
+    second worker is registered) ends the run with KeyboardInterrupt. Found under load: with
+    the worker listed before it was registered, the pool's close raised KeyError unregistering
+    it, which hid the Ctrl-C and left the workers after it running."""
+    calls = []
+
+    class Interrupting(selectors.DefaultSelector):
+        def register(self, *args, **kwargs):
+            calls.append(args)
+            if len(calls) == 3:  # the second worker's pipe (each worker registers two handles)
+                raise KeyboardInterrupt
+            return super().register(*args, **kwargs)
+
+    monkeypatch.setattr(executor.selectors, "DefaultSelector", Interrupting)
+    with pytest.raises(KeyboardInterrupt):
+        list(run_tasks(square, [1, 2, 3, 4], 2))
 
 
 def test_fault_hook_parsing(monkeypatch):

@@ -384,9 +384,12 @@ class _Pool:
 
     def _spawn(self) -> _Worker:
         w = _Worker(self.ctx, self.fn, self.limits)
-        self.workers.append(w)
+        # registered before it is listed: a Ctrl-C between the two steps must not leave a
+        # listed worker that ``close`` cannot unregister (it would raise there, and leave the
+        # workers after it running)
         self.selector.register(w.conn, selectors.EVENT_READ, w)
         self.selector.register(w.proc.sentinel, selectors.EVENT_READ, w)
+        self.workers.append(w)
         return w
 
     def _retire(self, w: _Worker, kill: bool) -> list[tuple[int, Any]]:
