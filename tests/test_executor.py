@@ -146,9 +146,9 @@ def test_a_signal_handled_outside_the_wait_still_stops_the_run(tmp_path):
 
 def test_ctrl_c_while_a_worker_starts_ends_the_run_with_it(monkeypatch):
     """A Ctrl-C that lands while the pool starts a worker (here raised by the selector as the
-    second worker is registered) ends the run with KeyboardInterrupt. Found under load: with
-    the worker listed before it was registered, the pool's close raised KeyError unregistering
-    it, which hid the Ctrl-C and left the workers after it running."""
+    second worker is registered) ends the run with KeyboardInterrupt and stops every worker
+    started. Found under load: the pool's close raised KeyError unregistering that worker,
+    which hid the Ctrl-C and left it running."""
     calls = []
 
     class Interrupting(selectors.DefaultSelector):
@@ -161,6 +161,7 @@ def test_ctrl_c_while_a_worker_starts_ends_the_run_with_it(monkeypatch):
     monkeypatch.setattr(executor.selectors, "DefaultSelector", Interrupting)
     with pytest.raises(KeyboardInterrupt):
         list(run_tasks(square, [1, 2, 3, 4], 2))
+    assert not mp.active_children()
 
 
 def test_fault_hook_parsing(monkeypatch):

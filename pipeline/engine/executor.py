@@ -384,19 +384,19 @@ class _Pool:
 
     def _spawn(self) -> _Worker:
         w = _Worker(self.ctx, self.fn, self.limits)
-        # registered before it is listed: a Ctrl-C between the two steps must not leave a
-        # listed worker that ``close`` cannot unregister (it would raise there, and leave the
-        # workers after it running)
+        self.workers.append(w)
         self.selector.register(w.conn, selectors.EVENT_READ, w)
         self.selector.register(w.proc.sentinel, selectors.EVENT_READ, w)
-        self.workers.append(w)
         return w
 
     def _retire(self, w: _Worker, kill: bool) -> list[tuple[int, Any]]:
         """Stop a worker; return the tasks it had not answered (its head excluded by callers)."""
         self.workers.remove(w)
-        self.selector.unregister(w.conn)
-        self.selector.unregister(w.proc.sentinel)
+        for handle in (w.conn, w.proc.sentinel):
+            try:
+                self.selector.unregister(handle)
+            except KeyError:  # a Ctrl-C came between listing the worker and registering it
+                pass
         w.stop(kill)
         return list(w.queue)
 
