@@ -18,6 +18,7 @@ import pytest
 from pipeline.engine import executor
 from pipeline.errors import OutputError, UsageError
 from pipeline.engine.executor import FAULT_ENV, Fault, Limits, parse_fault_hook, run_tasks
+from test_faults import hear_ctrl_c
 
 
 def square(x: int) -> int:
@@ -137,7 +138,7 @@ def test_a_signal_handled_outside_the_wait_still_stops_the_run(tmp_path):
     repo = Path(__file__).resolve().parents[1]
     try:
         done = subprocess.run([sys.executable, str(script)], cwd=repo, capture_output=True,
-                              text=True, timeout=60)
+                              text=True, timeout=60, preexec_fn=hear_ctrl_c)
     except subprocess.TimeoutExpired as exc:
         pytest.fail(f"the parent waited on after Ctrl-C was handled in another thread; its "
                     f"threads after 45 s:\n{exc.stderr}\nits output: {exc.stdout!r}")
