@@ -3,7 +3,8 @@ columns and bands read back row by row, candidate pairs against banding by its d
 by pair (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3: a pair is a candidate
 when any band of its two signatures is equal) and against ``lsh.banded_pair_codes``, MinHash
 bounds against ``lsh.plausible_pair_codes`` on the matrix (the share of equal values estimates
-Jaccard: Broder 1997), and the signature column let go to a file (columns.stacked)."""
+Jaccard: Broder 1997), the store's pairs met once each as the matrix's (dedup's full search bands
+from the store), and the signature column let go to a file (columns.stacked)."""
 import os
 
 import numpy as np
@@ -58,13 +59,22 @@ def test_spilled_codes_are_the_banded_codes(n, num_perm, bands, values, shifted,
                 assert streamed_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
 
 
-@pytest.mark.parametrize("shifted,skipped,seed", [(False, False, 0), (True, False, 1), (False, True, 2)])
-def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, seed, tmp_path):
+@pytest.mark.parametrize("shifted,skipped,once,gather,seed", [
+    (False, False, False, None, 0), (True, False, False, None, 1), (False, True, False, None, 2),
+    (False, False, True, 5, 0), (True, False, True, 1, 1), (False, True, True, 5, 2),
+    (False, True, True, 1 << 18, 3), (True, False, True, 64, 4)])
+def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, once, gather, seed, monkeypatch, tmp_path):
     # Reference: _brute_force (the definition of banding, skip marks as LSHIndex.candidate_codes
     # gives them) on one matrix, banded by the one loop from the matrix and from its spilled
     # store with the same filter; from the matrix each pair meets the filter once (the test of
-    # earlier bands), from the store once per band that finds it, no fewer: both filter the same
-    # set of pairs.
+    # earlier bands on the rows' values), from the store once per band that finds it, no fewer:
+    # both filter the same set of pairs; with ``once`` the store's filter meets each pair once
+    # too, gathered ``gather`` pairs at a time or all in one gathering, each gathering sorted
+    # (dedup's MinHash and exact bounds take sorted codes).
+    from pipeline.similarity import candidates
+
+    if gather is not None:
+        monkeypatch.setattr(candidates, "ONCE_PAIRS", gather)
     rng = np.random.default_rng(seed)
     n, num_perm, bands = 90, 32, 16
     sig = rng.integers(0, 3, (n, num_perm), dtype=np.uint32)
@@ -73,19 +83,28 @@ def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, seed, tm
     want = _brute_force(sig, bands, is_new, shifted=shifted, skip=skip)
     filtered = _every_fifth_pair_dropped(np.array(want, dtype=np.int64)).tolist()
     met = {"matrix": [], "store": []}
+    calls = []
 
     def keep_of(name):
         def keep(codes):
+            assert codes.tolist() == sorted(codes.tolist())
+            calls.append(name)
             met[name].extend(codes.tolist())
             return _every_fifth_pair_dropped(codes)
         return keep
 
     with SpilledColumns(sig, tmp_path) as store:
-        from_store = streamed_pair_codes(store, bands, is_new, keep_of("store"), shifted=shifted, skip=skip)
+        from_store = streamed_pair_codes(store, bands, is_new, keep_of("store"), shifted=shifted, skip=skip,
+                                         once=once)
     from_matrix = streamed_pair_codes(sig, bands, is_new, keep_of("matrix"), shifted=shifted, skip=skip)
     assert from_matrix.tolist() == from_store.tolist() == filtered and filtered
     assert sorted(met["matrix"]) == want  # once each
-    assert sorted(set(met["store"])) == want and len(met["store"]) > len(want)  # pairs share bands here
+    if once:
+        assert sorted(met["store"]) == want  # once each, the same pairs
+        if gather >= len(want) * bands:
+            assert calls.count("store") == 1  # one gathering held every piece
+    else:
+        assert sorted(set(met["store"])) == want and len(met["store"]) > len(want)  # pairs share bands here
 
 
 def test_plausible_codes_as_on_the_matrix(tmp_path):
