@@ -170,38 +170,3 @@ def test_verdict_columns_read_like_the_records_they_replace(tmp_path):
                 assert r.thresholds is cols.get(sha).thresholds  # one dict per distinct text
             assert cols.get(order[-1]) is None and cols.kept_at(len(order) - 1) is None
             assert order[-1] not in cols and len(cols) == len(plain)
-
-
-def test_large_values_encode_to_the_text_the_json_module_writes(monkeypatch):
-    """``codec.canonical_json_large`` (a large state encoded a piece at a time) writes what the
-    standard library's ``json.dumps(sort_keys=True, separators=(",", ":"))`` writes for the same
-    value: nested dicts and lists larger and smaller than a piece, tuples, non-text keys (sorted
-    by the json module before it converts them), texts to escape, floats, None and booleans."""
-    import json
-    import random
-
-    from pipeline.store import codec
-
-    monkeypatch.setattr(codec, "JSON_PIECE", 3)  # pieces of 3 entries: every branch is taken
-    rnd = random.Random(7)
-
-    def value(depth: int = 0):
-        r = rnd.random()
-        if depth > 3 or r < 0.3:
-            return rnd.choice([0, -7, 2.5, 1e300, -0.0, 0.1 + 0.2, "x\u00e9", 'a"b\\n', None, True, False])
-        if r < 0.55:
-            return [value(depth + 1) for _ in range(rnd.randint(0, 9))]
-        if r < 0.65:
-            return tuple(value(depth + 1) for _ in range(rnd.randint(0, 9)))
-        if r < 0.75:
-            return {rnd.randint(0, 20): value(depth + 1) for _ in range(rnd.randint(0, 6))}
-        return {rnd.choice("abcXYZ\u00e9") + str(rnd.randint(0, 30)): value(depth + 1)
-                for _ in range(rnd.randint(0, 12))}
-
-    for _ in range(2000):
-        v = value()
-        assert codec.canonical_json_large(v) == json.dumps(v, sort_keys=True, separators=(",", ":"))
-    # a state as the split saves it: a dict of one entry per member, a list of every member
-    big = {"assignments": {f"{i:016x}": rnd.choice(["train", "valid"]) for i in range(50)},
-           "links": {"members": [f"{i:016x}" for i in range(40)], "settings": "0.5:128"}}
-    assert codec.canonical_json_large(big) == json.dumps(big, sort_keys=True, separators=(",", ":"))

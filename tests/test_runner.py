@@ -669,23 +669,3 @@ def test_content_marks_answer_membership_like_a_set():
         want.add(order[i])
     for sha in order + ["%064x" % 99, ""]:
         assert (sha in marks) == (sha in want)
-
-
-def test_the_walk_hands_the_members_over_to_a_corpus_step(tmp_path, monkeypatch):
-    # Common practice (CPython): a list's reference count counts every holder; while a corpus
-    # step runs, its members list is held by the step's own frame only (and the count's
-    # argument), not by the walk, so a step that lets it go frees it (the split, before its search).
-    import sys
-
-    from pipeline.stages.split import Split
-
-    counts = []
-    real = Split.run_corpus
-
-    def run_corpus(self, members, state):
-        counts.append(sys.getrefcount(members))
-        return real(self, members, state)
-
-    monkeypatch.setattr(Split, "run_corpus", run_corpus)
-    _run(tmp_path / "out")
-    assert counts == [2]

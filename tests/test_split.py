@@ -696,33 +696,3 @@ def test_results_name_the_groups_of_the_saved_links_and_parts():
               for key, g in groups.items() for m in g}
     assert {m: r.values for m, r in results.items()} == expect
     assert all(r.kept and r.detail == "" for r in results.values())
-
-
-def test_the_split_lets_its_members_go_before_its_search(monkeypatch):
-    """The walk hands the list of members over (``StageWalk.run`` keeps no reference to it):
-    the split reads their sizes, forced groups and signed rows, then lets the list go before
-    its near-duplicate search (common practice: a weak reference dies with its object); the
-    results are those of the members held throughout."""
-    import weakref
-
-    class Members(list):  # a list that can be referenced weakly
-        pass
-
-    c = Corpus(12)
-    base = [c.fresh() for _ in range(30)]
-    made = [c.member(m) for m in base + [c.near(base[0], 0.8)]]
-    held_results, _ = run(list(made))
-    handed = [Members(made)]
-    members = weakref.ref(handed[0])
-    del made
-    search = Split._near_links
-    alive_then = []
-
-    def near_links(self, *args):
-        alive_then.append(members() is not None)
-        return search(self, *args)
-
-    monkeypatch.setattr(Split, "_near_links", near_links)
-    results = Split({}).run_corpus(handed.pop(), CorpusState())
-    assert alive_then == [False]
-    assert {k: r.to_json() for k, r in results.items()} == {k: r.to_json() for k, r in held_results.items()}

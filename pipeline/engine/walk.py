@@ -105,14 +105,10 @@ class StageWalk:
                 state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
                                                       "previous_results": last})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
-                mids = [m.id for m in members]  # memory: the members' id strings, not new ones
                 release_free_memory()  # memory: what earlier steps freed is not kept beside this one
-                # memory: the walk holds no reference to the list while the stage runs (the
-                # call takes the one ``handed`` holds), so a stage that lets its members go once
-                # read (the split, before its search) frees them
-                handed = [members]
+                res = st.run_corpus(members, state) if members else {}
+                mids = [m.id for m in members]  # memory: the members' id strings, not new ones
                 del members
-                res = st.run_corpus(handed.pop(), state) if mids else {}
                 bar.update(len(alive))
                 bar.close()
                 walk.states[st.name] = {**state.current, CORPUS_RESULTS: self.chains[st.name]}

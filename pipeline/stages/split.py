@@ -256,16 +256,10 @@ class Split(Stage):
         previous = {} if state.flags.get("reassign") else saved
         ids = sorted(m.id for m in members)
         sizes = self._output_counts(members, state)
-        forced = self._forced(members)
-        had_members = bool(members)
-        # memory: ``_links`` lets the members go once read, before its search (the walk holds
-        # no other reference to them: ``StageWalk.run``)
-        handed = [members]
-        del members
-        links, ghosts, signed = self._links(handed.pop(), state, previous)
+        links, ghosts, signed = self._links(members, state, previous)
         for g in ghosts:
             sizes[g] = 0.0
-        groups = build_groups(ids + sorted(ghosts), links, forced)
+        groups = build_groups(ids + sorted(ghosts), links, self._forced(members))
         assignment, moves = assign_groups(groups, ratios, self.opts["seed"], previous,
                                           self._freeze(), sizes)
         real = set(ids)
@@ -295,7 +289,7 @@ class Split(Stage):
                 state.report(f"split: {m} moved from {old} to {new}: {why}")
             results[m] = StageResult.keep(detail=detail, values=values)
         grouping = self.opts["group_threshold"] is not None
-        if grouping and had_members and not signed:
+        if grouping and members and not signed:
             grouping = False
             state.report("split: no file reached the split with a signature; near-duplicate "
                          "grouping was skipped")
@@ -328,8 +322,7 @@ class Split(Stage):
         """Near-duplicate links among members (and links between members of one note
         content, ``same_content_links``), and links to dedup cluster-mates that left the
         split but carry a previous part (the ghosts); and the stage whose signatures were
-        compared (None when grouping is off or no member has one). Memory: ``members`` (the
-        caller's only reference) is let go once read, before the search."""
+        compared (None when grouping is off or no member has one)."""
         links: list[tuple[str, str]] = []
         threshold = self.opts["group_threshold"]
         # memory: the members' artifacts (rows of the stage's columns), not an array or a
@@ -355,8 +348,7 @@ class Split(Stage):
                 signed_by.add(source)
                 signed_arts[m.id] = art
                 with_shingles += with_sh
-        here = {m.id for m in members}
-        del rows, held, members
+        del rows, held
         signed = ", ".join(sorted(signed_by)) if threshold is not None and signed_by else None
         if threshold is not None and len(signed_arts) > 1:
             use_sh = ValuesOf(signed_arts, "shingles") if with_shingles == len(signed_arts) else None
@@ -375,6 +367,7 @@ class Split(Stage):
             c = _value(res, "cluster") if res is not None else None
             if c is not None:
                 by_cluster.setdefault(c, []).append(mid)
+        here = {m.id for m in members}
         for mates in by_cluster.values():
             inside = sorted(x for x in mates if x in here)
             if not inside:

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from collections.abc import Iterator
 from typing import Any
 
 #: Artifact name recorded when a corpus stage's ``prepare`` returned nothing for a file.
@@ -75,72 +74,6 @@ def stored_artifacts(items: dict[str, Any]) -> tuple[tuple[str, str | None, str 
 def canonical_json(value: Any) -> str:
     """The JSON text the ledger stores for a value (sorted keys, no spaces)."""
     return _dumps(value)
-
-
-#: Entries of a dict or items of a list that ``canonical_json_large`` encodes in one piece.
-JSON_PIECE = 4096
-
-
-def canonical_json_large(value: Any) -> str:
-    """``canonical_json`` of a large value (a corpus stage's saved state, the page's facts),
-    the same text, encoded a piece of ``JSON_PIECE`` entries at a time and joined. Memory: the
-    json module's encoder holds each small text it writes (a number, a key: about 60-100 B
-    each) until it joins them all, about twice the text's own size beside it."""
-    return "".join(_json_pieces(value))
-
-
-def _json_pieces(value: Any) -> Iterator[str]:
-    big = _big_json(value)
-    if big is dict:
-        yield "{"
-        run: list[str] = []  # keys of small values in a row, encoded as one dict
-        sep = ""
-        for k in sorted(value):
-            v = value[k]
-            small = _big_json(v) is None
-            if small and len(run) < JSON_PIECE:
-                run.append(k)
-                continue
-            if run:
-                yield sep + _dumps({r: value[r] for r in run})[1:-1]
-                sep, run = ",", []
-            if small:
-                run.append(k)
-            else:
-                yield sep + _dumps(k) + ":"
-                yield from _json_pieces(v)
-                sep = ","
-        if run:
-            yield sep + _dumps({r: value[r] for r in run})[1:-1]
-        yield "}"
-    elif big is list:
-        yield "["
-        for start in range(0, len(value), JSON_PIECE):
-            piece = value[start:start + JSON_PIECE]
-            if start:
-                yield ","
-            if any(_big_json(v) is not None for v in piece):
-                for i, v in enumerate(piece):
-                    if i:
-                        yield ","
-                    yield from _json_pieces(v)
-            else:
-                yield _dumps(piece)[1:-1]
-        yield "]"
-    else:
-        yield _dumps(value)
-
-
-def _big_json(value: Any) -> type | None:
-    """``dict`` or ``list`` for a container ``_json_pieces`` splits (a dict only when its keys
-    are all texts: the json module sorts other keys before it converts them), else None."""
-    t = type(value)
-    if (t is list or t is tuple) and len(value) > JSON_PIECE:
-        return list
-    if t is dict and all(type(k) is str for k in value) and \
-            (len(value) > JSON_PIECE or any(_big_json(v) is not None for v in value.values())):
-        return dict
-    return None
 
 
 _THRESHOLD_TEXTS: dict[int, tuple[Any, str]] = {}

@@ -26,8 +26,8 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from ..errors import LedgerError
-from .codec import (EMPTY, SCALARS, canonical_json, canonical_json_large, decode_array, shape_of,
-                    stored_artifacts, stored_result, thresholds_from_json)
+from .codec import (EMPTY, SCALARS, canonical_json, decode_array, shape_of, stored_artifacts,
+                    stored_result, thresholds_from_json)
 
 if TYPE_CHECKING:
     from .columns import ArtifactColumns
@@ -277,9 +277,7 @@ class Ledger:
 
     def put_state(self, stage: str, values: dict[str, Any]) -> None:
         self.db.execute("DELETE FROM state WHERE stage=?", (stage,))
-        # memory: a stage's state and the page's facts hold a value or more per file
-        self.db.executemany("INSERT INTO state VALUES (?,?,?)",
-                            ((stage, k, canonical_json_large(v)) for k, v in values.items()))
+        self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, canonical_json(v)) for k, v in values.items()))
 
     # -- decisions (explain) -------------------------------------------------------------------
     def put_decisions(self, rows: Iterable[tuple[str, str | None, str, Any]], *, replace: bool = True) -> None:
