@@ -155,8 +155,8 @@ class _Gathered:
             return
         codes, bands = np.concatenate(self.codes), np.concatenate(self.bands)
         self.codes, self.bands, self.count = [], [], 0
-        fresh = _first_found_in_store(self.store, codes, bands, self.cols, self.skip)
-        codes, bands = codes[fresh], None
+        codes = codes[_first_found_in_store(self.store, codes, bands, self.cols, self.skip)]
+        del bands
         if len(codes):
             self.kept.append(self.keep(np.sort(codes)))
 
