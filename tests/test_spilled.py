@@ -3,7 +3,8 @@ columns and bands read back row by row, candidate pairs against banding by its d
 by pair (Leskovec, Rajaraman, Ullman, Mining of Massive Datasets, ch. 3: a pair is a candidate
 when any band of its two signatures is equal) and against ``lsh.banded_pair_codes``, MinHash
 bounds against ``lsh.plausible_pair_codes`` on the matrix (the share of equal values estimates
-Jaccard: Broder 1997), and the signature column let go to a file (columns.stacked)."""
+Jaccard: Broder 1997), the store's pairs met once each as the matrix's (dedup's full search bands
+from the store), and the signature column let go to a file (columns.stacked)."""
 import os
 
 import numpy as np
@@ -58,13 +59,38 @@ def test_spilled_codes_are_the_banded_codes(n, num_perm, bands, values, shifted,
                 assert streamed_pair_codes(store, bands, is_new, keep, shifted=shifted).tolist() == filtered
 
 
-@pytest.mark.parametrize("shifted,skipped,seed", [(False, False, 0), (True, False, 1), (False, True, 2)])
-def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, seed, tmp_path):
+def test_columns_written_from_row_blocks_are_the_matrix_columns(tmp_path):
+    # Reference: the matrix itself; its rows handed over in blocks of uneven sizes give the
+    # file written from the whole matrix, column by column; blocks of too few rows are an error.
+    rng = np.random.default_rng(5)
+    sig = rng.integers(0, 2**32, (53, 16), dtype=np.uint32)
+    cuts = [0, 1, 9, 10, 40, 53]
+    blocks = (sig[a:b] for a, b in zip(cuts, cuts[1:]))
+    with SpilledColumns(blocks, tmp_path, shape=sig.shape) as store, SpilledColumns(sig, tmp_path) as whole:
+        assert store.shape == sig.shape
+        for c in range(16):
+            assert np.array_equal(store.column(c), sig[:, c])
+            assert np.array_equal(whole.column(c), sig[:, c])
+    with pytest.raises(ValueError, match="blocks of 40 rows for a matrix of 53"):
+        SpilledColumns(iter([sig[:40]]), tmp_path, shape=sig.shape)
+
+
+@pytest.mark.parametrize("shifted,skipped,once,gather,seed", [
+    (False, False, False, None, 0), (True, False, False, None, 1), (False, True, False, None, 2),
+    (False, False, True, 5, 0), (True, False, True, 1, 1), (False, True, True, 5, 2),
+    (False, True, True, 1 << 18, 3), (True, False, True, 64, 4)])
+def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, once, gather, seed, monkeypatch, tmp_path):
     # Reference: _brute_force (the definition of banding, skip marks as LSHIndex.candidate_codes
     # gives them) on one matrix, banded by the one loop from the matrix and from its spilled
     # store with the same filter; from the matrix each pair meets the filter once (the test of
-    # earlier bands), from the store once per band that finds it, no fewer: both filter the same
-    # set of pairs.
+    # earlier bands on the rows' values), from the store once per band that finds it, no fewer:
+    # both filter the same set of pairs; with ``once`` the store's filter meets each pair once
+    # too, gathered ``gather`` pairs at a time or all in one gathering, each gathering sorted
+    # (dedup's MinHash and exact bounds take sorted codes).
+    from pipeline.similarity import candidates
+
+    if gather is not None:
+        monkeypatch.setattr(candidates, "ONCE_PAIRS", gather)
     rng = np.random.default_rng(seed)
     n, num_perm, bands = 90, 32, 16
     sig = rng.integers(0, 3, (n, num_perm), dtype=np.uint32)
@@ -73,19 +99,28 @@ def test_matrix_and_spilled_store_give_the_same_codes(shifted, skipped, seed, tm
     want = _brute_force(sig, bands, is_new, shifted=shifted, skip=skip)
     filtered = _every_fifth_pair_dropped(np.array(want, dtype=np.int64)).tolist()
     met = {"matrix": [], "store": []}
+    calls = []
 
     def keep_of(name):
         def keep(codes):
+            assert codes.tolist() == sorted(codes.tolist())
+            calls.append(name)
             met[name].extend(codes.tolist())
             return _every_fifth_pair_dropped(codes)
         return keep
 
     with SpilledColumns(sig, tmp_path) as store:
-        from_store = streamed_pair_codes(store, bands, is_new, keep_of("store"), shifted=shifted, skip=skip)
+        from_store = streamed_pair_codes(store, bands, is_new, keep_of("store"), shifted=shifted, skip=skip,
+                                         once=once)
     from_matrix = streamed_pair_codes(sig, bands, is_new, keep_of("matrix"), shifted=shifted, skip=skip)
     assert from_matrix.tolist() == from_store.tolist() == filtered and filtered
     assert sorted(met["matrix"]) == want  # once each
-    assert sorted(set(met["store"])) == want and len(met["store"]) > len(want)  # pairs share bands here
+    if once:
+        assert sorted(met["store"]) == want  # once each, the same pairs
+        if gather >= len(want) * bands:
+            assert calls.count("store") == 1  # one gathering held every piece
+    else:
+        assert sorted(set(met["store"])) == want and len(met["store"]) > len(want)  # pairs share bands here
 
 
 def test_plausible_codes_as_on_the_matrix(tmp_path):
@@ -110,16 +145,22 @@ def test_plausible_codes_as_on_the_matrix(tmp_path):
                 assert 0 < len(want) < len(codes)  # the check has pairs on both sides
 
 
+def _column_of(sig, folder):
+    """An ArtifactColumns holding the rows of ``sig`` as its signature column, spilling to ``folder``."""
+    cols = ArtifactColumns([f"{k:064x}" for k in range(len(sig))], {})
+    for k in range(len(sig)):
+        cols.put_array(k, "signature", sig[k])
+    cols.finish()
+    cols.spill_folder = str(folder)
+    return cols
+
+
 def test_stacked_release_spills_the_column(tmp_path):
     # Reference: the rows as put (plain numpy); after release the column reads the same rows
     # from its file, row by row and stacked again in another order, and still takes a new row.
     rng = np.random.default_rng(2)
     sig = rng.integers(0, 2**32, (9, 16), dtype=np.uint32)
-    cols = ArtifactColumns([f"{k:064x}" for k in range(9)], {})
-    for k in range(9):
-        cols.put_array(k, "signature", sig[k])
-    cols.finish()
-    cols.spill_folder = str(tmp_path)
+    cols = _column_of(sig, tmp_path)
     rows = [cols.row(k) for k in (7, 2, 5)]
     matrix = stacked(rows, "signature")
     assert np.array_equal(matrix(), sig[[7, 2, 5]])
@@ -142,6 +183,27 @@ def test_stacked_release_spills_the_column(tmp_path):
     assert np.array_equal(cols.row(3)["signature"], sig[3])
 
 
+def test_row_blocks_of_a_spilled_column_leave_it_in_its_file(tmp_path, monkeypatch):
+    # Reference: the rows as put (plain numpy), asked in an order with runs of consecutive rows
+    # and jumps, from the column in memory and spilled; the spilled column is never read back.
+    from pipeline.store import columns
+
+    monkeypatch.setattr(columns, "_LOAD_ROWS", 4)
+    rng = np.random.default_rng(3)
+    sig = rng.integers(0, 2**32, (15, 8), dtype=np.uint32)
+    cols = _column_of(sig, tmp_path)
+    order = [2, 3, 4, 9, 0, 1, 14, 13, 7, 8]
+    matrix = stacked([cols.row(k) for k in order], "signature")
+    assert np.array_equal(np.concatenate(list(matrix.row_blocks())), sig[order])
+    matrix.release()
+    col = cols._columns["signature"]
+    monkeypatch.setattr(type(col), "_load", lambda *a: pytest.fail("the spilled column was read back whole"))
+    blocks = list(matrix.row_blocks())
+    assert [len(b) for b in blocks] == [4, 4, 2]
+    assert np.array_equal(np.concatenate(blocks), sig[order])
+    assert col.matrix is None and col.spilled is not None
+
+
 def test_full_search_through_the_column_equals_the_in_memory_search(tmp_path):
     # Reference: grouping.near_links_of's rerun path (few new rows: the matrix held in memory,
     # banded whole, no spill), asked once per key, whose union is every linked pair; and
@@ -161,6 +223,16 @@ def test_full_search_through_the_column_equals_the_in_memory_search(tmp_path):
     rows = [cols.row(k) for k in range(len(keys))]
     full = near_links_of(keys, stacked(rows, "signature"), 0.2, sets)
     assert cols._columns["signature"].spilled is not None  # the search let the column go
+    # a search over the column already spilled (as dedup's search leaves it) reads its rows
+    # from the file, a block at a time, and finds the same links
+    reads = []
+    real = type(cols._columns["signature"])._spilled_rows
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(type(cols._columns["signature"]), "_load", lambda *a: pytest.fail("read back whole"))
+        mp.setattr(type(cols._columns["signature"]), "_spilled_rows",
+                   lambda self, lo, count: reads.append(count) or real(self, lo, count))
+        assert near_links_of(keys, stacked(rows, "signature"), 0.2, sets) == full
+    assert sum(reads) == 2 * len(keys)  # each row read twice: its emptiness, then its columns
     one_by_one = set()
     for key in keys:
         one_by_one |= set(near_links_of(keys, stacked(rows, "signature"), 0.2, sets, only={key}))

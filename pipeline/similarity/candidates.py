@@ -1,5 +1,6 @@
 """Candidate pairs streamed band by band, each piece filtered at once: the one banding loop of a
-full search, over signatures in memory (dedup) or spilled to a file (the split).
+full search, over signatures in memory or spilled to a file (the full searches of dedup and the
+split band from the file).
 
 ``lsh.banded_pair_codes`` returns every candidate pair of a corpus as one sorted array of
 codes; the pairs that share a band grow with the square of the corpus (millions at 100,000
@@ -13,7 +14,9 @@ only its survivors are held. Over a matrix in memory, the pairs an earlier band 
 are dropped by comparing the pair's signature values there (no set of the codes seen so far is
 kept), so ``keep`` meets each pair once (dedup counts them); the spilled store cannot read
 rows cheaply (a row is spread over every column), so there a pair found in several bands is
-filtered once per band and made unique at the end. The result is the codes of
+filtered once per band and made unique at the end, or, asked for (``once``: dedup's full
+search, which counts them), the pieces are gathered up to ``ONCE_PAIRS`` pairs and tested
+against the earlier bands' columns, each read once per gathering. The result is the codes of
 ``banded_pair_codes`` that ``keep`` keeps, sorted and unique (tests/test_candidates.py and
 tests/test_spilled.py check it against brute-force banding and against ``banded_pair_codes``
 filtered afterwards).
@@ -33,7 +36,7 @@ if TYPE_CHECKING:
 
 def streamed_pair_codes(source: "np.ndarray | SpilledColumns", bands: int, is_new: np.ndarray,
                         keep: Callable[[np.ndarray], np.ndarray], *, shifted: bool = False,
-                        skip: np.ndarray | None = None) -> np.ndarray:
+                        skip: np.ndarray | None = None, once: bool = False) -> np.ndarray:
     """The sorted unique codes ``i * n + j`` (``i < j``, rows of the signatures ``source``: an
     ``(n, num_perm)`` matrix, or the same matrix spilled, ``spilled.SpilledColumns``) of
     ``banded_pair_codes(sig, bands, is_new, shifted=shifted)`` that ``keep`` keeps.
@@ -45,7 +48,9 @@ def streamed_pair_codes(source: "np.ndarray | SpilledColumns", bands: int, is_ne
     candidates would). From a matrix it gets only the pairs not found in an earlier band (no
     band before holds equal values in both rows: each pair once over the whole call, but for a
     pair found only through equal 64-bit band keys of unequal values, which the final unique
-    merge absorbs); from the spilled store, a pair once per band that finds it. ``skip``
+    merge absorbs); from the spilled store, a pair once per band that finds it, or with
+    ``once`` as from a matrix (its pieces gathered, at most ``ONCE_PAIRS`` pairs and one
+    band's piece more, and handed over sorted, no longer one band's each). ``skip``
     (``(n, bands)`` booleans, as ``LSHIndex.candidate_codes`` takes them) marks bands that pair
     no row: such a band of row ``i`` is keyed on the values ``(i, EMPTY_VALUE - 1, ...)``, as
     there; not with ``shifted``."""
@@ -62,6 +67,7 @@ def streamed_pair_codes(source: "np.ndarray | SpilledColumns", bands: int, is_ne
     if shifted:
         cols += [(c + 1) % num_perm for c in cols[:bands]]
     kept: list[np.ndarray] = []
+    gathered = _Gathered(source, cols, skip, keep, kept) if once and not in_memory else None
     for b, c in enumerate(cols):
         block = source[:, c] if in_memory else source.columns(c)  # memory: this band's columns only
         if skip is not None:
@@ -73,10 +79,14 @@ def streamed_pair_codes(source: "np.ndarray | SpilledColumns", bands: int, is_ne
             codes = np.sort(i * n + j)
             if in_memory:
                 codes = codes[_first_found_in(source, codes, cols, b, skip)]
-            if len(codes):
+            if gathered is not None:
+                gathered.add(codes, b)
+            elif len(codes):
                 kept.append(keep(codes))
             del codes
         del key
+    if gathered is not None:
+        gathered.flush()
     if not kept:
         return np.zeros(0, dtype=np.int64)
     return sorted_unique(np.concatenate(kept))
@@ -113,3 +123,68 @@ def _first_found_in(sig: np.ndarray, codes: np.ndarray, cols: list[np.ndarray], 
         same = (a[:, earlier] == b[:, earlier]).reshape(len(i), band, rows).all(axis=2).any(axis=1)
         fresh[lo:lo + len(i)] = ~same
     return fresh
+
+
+#: Pairs gathered at once by ``streamed_pair_codes(once=True)`` over a spilled store (memory:
+#: about 40 bytes a pair while the earlier bands are read; each gathering reads every column
+#: at most twice, here and in dedup's MinHash bounds).
+ONCE_PAIRS = 1 << 18
+
+
+class _Gathered:
+    """The pieces of a spilled store's bands gathered for ``streamed_pair_codes(once=True)``:
+    when they hold ``ONCE_PAIRS`` pairs, those found in an earlier band than their own are
+    dropped (``_first_found_in_store``) and the rest, sorted, go to ``keep`` (its result to
+    ``kept``). Memory: the codes of one gathering and a band number each (``ONCE_PAIRS``)."""
+
+    def __init__(self, store: "SpilledColumns", cols: list[np.ndarray], skip: np.ndarray | None,
+                 keep: Callable[[np.ndarray], np.ndarray], kept: list[np.ndarray]):
+        self.store, self.cols, self.skip, self.keep, self.kept = store, cols, skip, keep, kept
+        self.codes: list[np.ndarray] = []
+        self.bands: list[np.ndarray] = []
+        self.count = 0
+
+    def add(self, codes: np.ndarray, band: int) -> None:
+        self.codes.append(codes)
+        self.bands.append(np.full(len(codes), band, dtype=np.int32))
+        self.count += len(codes)
+        if self.count >= ONCE_PAIRS:
+            self.flush()
+
+    def flush(self) -> None:
+        if not self.count:
+            return
+        codes, bands = np.concatenate(self.codes), np.concatenate(self.bands)
+        self.codes, self.bands, self.count = [], [], 0
+        codes = codes[_first_found_in_store(self.store, codes, bands, self.cols, self.skip)]
+        del bands
+        if len(codes):
+            self.kept.append(self.keep(np.sort(codes)))
+
+
+def _first_found_in_store(store: "SpilledColumns", codes: np.ndarray, found_in: np.ndarray,
+                          cols: list[np.ndarray], skip: np.ndarray | None) -> np.ndarray:
+    """``_first_found_in`` over the spilled store for codes of several bands (``found_in``:
+    each code's band): mask of the codes whose two rows hold different values in every band
+    before their own, the values of skipped bands as ``_fill_skipped`` writes them; each
+    earlier band's columns read once."""
+    n = store.n
+    i, j = np.divmod(codes, n)
+    seen = np.zeros(len(codes), dtype=bool)
+    fill = np.array([EMPTY_VALUE - np.uint32(1)], dtype=np.uint32)
+    for b in range(int(found_in.max(initial=0))):
+        same = found_in > b  # only pairs of a later band ask about band b
+        si = sj = None
+        if skip is not None:
+            si, sj = skip[i, b], skip[j, b]
+        for k, c in enumerate(cols[b].tolist()):
+            v = store.column(c)
+            vi, vj = v[i], v[j]
+            del v
+            if si is not None:
+                vi[si] = i[si].astype(np.uint32) if k == 0 else fill
+                vj[sj] = j[sj].astype(np.uint32) if k == 0 else fill
+            same &= vi == vj
+            del vi, vj
+        seen |= same
+    return ~seen

@@ -336,18 +336,22 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
     from .overlap_sketch import bounded_codes, sketch_rows
     from .spilled import SpilledColumns
 
-    sig = np.asarray(matrix(), dtype=np.uint32)
-    n, num_perm = sig.shape
+    # memory: the rows a block at a time where ``matrix`` gives them so (``columns.stacked``:
+    # the column's matrix, spilled by dedup's search, is not read back whole), else the matrix
+    held = [] if hasattr(matrix, "row_blocks") else [np.asarray(matrix(), dtype=np.uint32)]
+    blocks = matrix.row_blocks if not held else lambda: iter(held)
+    live_of, num_perm = [], 0
+    for b in blocks():
+        live_of.append(~np.all(b == EMPTY_VALUE, axis=1))
+        num_perm = b.shape[1]
     rows = lsh_rows(threshold, num_perm, recall)
     err = check_banding(num_perm, num_perm // rows)
     if err:
         raise ValueError(err)
-    live = np.flatnonzero(~np.all(sig == EMPTY_VALUE, axis=1))
+    live = np.flatnonzero(np.concatenate(live_of))
     is_new = np.ones(len(live), dtype=bool) if wanted is None else wanted[live]
     if len(live) < 2 or not is_new.any():
         return []
-    if len(live) < n:
-        sig = sig[live]
     sizes = (np.array([len(shingles[k]) for k in keys], dtype=np.float64) if sizes is None
              else np.asarray(sizes, dtype=np.float64))[live]
     live_keys = [keys[x] for x in live.tolist()]
@@ -355,8 +359,9 @@ def _streamed_links(keys: list[str], matrix: "Callable[[], np.ndarray]", thresho
     # memory: the signatures go to a file (in ``matrix.folder`` when given: the run's own
     # folder), read back a band at a time, and the matrix is let go (``matrix.release``, e.g.
     # ``columns.stacked``'s) before the sets are sketched
-    with SpilledColumns(sig, getattr(matrix, "folder", None)) as store:
-        del sig
+    live_rows = (b[ok] for b, ok in zip(blocks(), live_of))
+    with SpilledColumns(live_rows, getattr(matrix, "folder", None), shape=(m, num_perm)) as store:
+        del held[:], live_of
         release = getattr(matrix, "release", None)
         if release is not None:
             release()

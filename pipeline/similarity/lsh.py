@@ -156,6 +156,12 @@ class LSHIndex:
             self._matrix = m
         return m
 
+    def drop_signatures(self) -> None:
+        """Lets the signatures go (the ids stay): for a caller that searches them from a copy
+        of its own (dedup's full search, from a file: ``similarity.spilled``)."""
+        self._sigs = []
+        self._matrix = None
+
     def plausible_codes(self, codes: np.ndarray, set_sizes: np.ndarray, threshold: float, *,
                         min_size_ratio: float = MIN_SIZE_RATIO, cap: int = ShingleSpec().max_shingles,
                         margin_sigmas: float = 3.0) -> np.ndarray:

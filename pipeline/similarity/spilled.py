@@ -1,13 +1,14 @@
-"""A signature matrix spilled to a temporary file, column after column, for the split's search.
+"""A signature matrix spilled to a temporary file, column after column, for the full searches.
 
-The split's full search (``grouping._streamed_links``) bands the signatures one band at a time
-and bounds each band's pairs with the overlap sketches; the MinHash bounds (``lsh.plausible_pairs``)
-need the signature values of the few pairs the sketches keep. None of it needs the whole matrix
-in memory at once: here the matrix is written column-major to an unnamed temporary file, a
-band's columns are read back with ``os.pread`` when it is banded, and the MinHash estimates of
-the surviving pairs are counted column by column. Memory: the matrix (512 bytes a file at 128
-permutations) is not held while the sketches are (together they were the split's peak); the
-file's pages stay in the page cache, not in the process (no memory map).
+The full searches (dedup's, ``stages.dedup``; the split's, ``grouping._streamed_links``) band
+the signatures one band at a time and bound each band's pairs with the overlap sketches; the
+MinHash bounds (``lsh.plausible_pairs``) need the signature values of the pairs they are asked
+about. None of it needs the whole matrix in memory at once: here the matrix is written
+column-major to an unnamed temporary file (from the matrix, or from its rows a block at a time),
+a band's columns are read back with ``os.pread`` when it is banded, and the MinHash estimates
+are counted column by column. Memory: the matrix (512 bytes a file at 128 permutations) is not
+held while the sketches are (together they were the peak of each search); the file's pages stay
+in the page cache, not in the process (no memory map).
 
 ``candidates.streamed_pair_codes`` and ``lsh.plausible_pair_codes`` take the store where they
 take the matrix (tests/test_spilled.py checks both against the in-memory forms).
@@ -23,17 +24,20 @@ import numpy as np
 from ..errors import OutputError
 
 
-#: Columns written at once when spilling (memory: a transposed copy of this many columns).
-_WRITE_COLUMNS = 8
+#: Rows written at once when spilling a matrix (memory: a transposed copy of this many rows).
+_WRITE_ROWS = 1 << 13
 
 
-def spill_file(chunks: Iterable[bytes], folder: str | os.PathLike | None) -> IO[bytes]:
+def spill_file(chunks: Iterable[bytes | tuple[int, bytes]], folder: str | os.PathLike | None) -> IO[bytes]:
     """An unnamed temporary file in ``folder`` (else the system's temporary folder) holding the
-    ``chunks`` one after the other; a failed write (a full disk) is an ``OutputError`` naming
-    the folder, the file is gone with it."""
+    ``chunks`` one after the other (a chunk ``(offset, data)``: ``data`` at that offset); a
+    failed write (a full disk) is an ``OutputError`` naming the folder, the file is gone with it."""
     f = tempfile.TemporaryFile(dir=folder)
     try:
         for chunk in chunks:
+            if isinstance(chunk, tuple):
+                f.seek(chunk[0])
+                chunk = chunk[1]
             f.write(chunk)
         f.flush()
     except OSError as e:
@@ -62,11 +66,30 @@ class SpilledColumns:
     #: is read once per such chunk, so far more pairs than the matrix's ``lsh.PAIR_CHUNK``).
     PAIRS_AT_ONCE = 1 << 20
 
-    def __init__(self, sig: np.ndarray, folder: str | os.PathLike | None = None):
-        sig = np.asarray(sig, dtype=np.uint32)
-        self.n, self.width = sig.shape
-        self._file = spill_file((np.ascontiguousarray(sig[:, c:c + _WRITE_COLUMNS].T).tobytes()
-                                 for c in range(0, self.width, _WRITE_COLUMNS)), folder)
+    def __init__(self, sig: "np.ndarray | Iterable[np.ndarray]", folder: str | os.PathLike | None = None,
+                 shape: tuple[int, int] | None = None):
+        """``sig``: the matrix, or (with its ``shape``) its rows as blocks of consecutive rows,
+        each written as it comes (memory: a caller reading the rows from a file of its own
+        never holds the matrix whole: the split's search, ``columns.stacked``)."""
+        if shape is None:
+            matrix = np.asarray(sig, dtype=np.uint32)
+            shape = matrix.shape
+            sig = (matrix[lo:lo + _WRITE_ROWS] for lo in range(0, len(matrix), _WRITE_ROWS))
+        self.n, self.width = (int(x) for x in shape)
+        self._file = spill_file(self._pieces(sig), folder)
+
+    def _pieces(self, blocks: "Iterable[np.ndarray]") -> "Iterable[tuple[int, bytes]]":
+        """Each block's part of each column, at its place in the file."""
+        lo = 0
+        for block in blocks:
+            t = np.ascontiguousarray(np.asarray(block, dtype=np.uint32).T)  # memory: one block transposed
+            if len(t) != self.width:
+                raise ValueError(f"a block of {len(t)} columns for a matrix of {self.width}")
+            for c in range(self.width):
+                yield (c * self.n + lo) * 4, t[c].tobytes()
+            lo += t.shape[1]
+        if lo != self.n:
+            raise ValueError(f"blocks of {lo} rows for a matrix of {self.n}")
 
     @property
     def shape(self) -> tuple[int, int]:

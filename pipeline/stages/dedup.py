@@ -35,11 +35,12 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..midi.piece import Piece
 from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, generic_shingles
-from ..similarity.lsh import LSHIndex, check_banding, few_new, generic_bands
+from ..similarity.lsh import LSHIndex, check_banding, few_new, generic_bands, plausible_pair_codes
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
 from ..similarity.candidates import streamed_pair_codes
 from ..similarity.overlap_sketch import Sketches, bounded_codes, sketch_rows, sketched_codes
+from ..similarity.spilled import SpilledColumns
 from ..store.columns import column_of, lengths_of, stacked
 from ..store.columns import present as holding  # run_corpus names its member set `present`
 from ..store.ledger import load_arrays
@@ -330,12 +331,9 @@ class Dedup(Stage):
             # memory: a full run streams its candidates a block of bands at a time, each block
             # bounded at once (the same pairs and counts: similarity.candidates)
             del new_searched  # memory: not read past here on this path
-            codes = self._streamed_candidates(index, is_new, sizes, arts, content, counts)
+            codes = self._streamed_candidates(index, is_new, sizes, arts, content, counts, signatures)
             index_ids = index.ids
             del index
-            # memory: the signature column goes to a file until the split reads it (its own
-            # search spills it again: similarity.spilled); nothing here reads it past the search
-            getattr(signatures, "release", lambda: None)()
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
                                           skip=lambda rows: self._generic_bands(index.matrix(), rows))
@@ -401,21 +399,31 @@ class Dedup(Stage):
 
     def _streamed_candidates(self, index: LSHIndex, is_new: np.ndarray, sizes: np.ndarray,
                              arts: dict[str, dict[str, Any]], content: np.ndarray | None,
-                             counts: list[int]) -> np.ndarray:
+                             counts: list[int], signatures: Any) -> np.ndarray:
         """The codes of ``index``'s candidate pairs (generic bands skipped) that
-        ``_bounded_candidates`` keeps, found a band at a time (``similarity.candidates``), each
-        piece bounded at once against the sketches of every indexed set, made up front."""
+        ``_bounded_candidates`` keeps, found a band at a time (``similarity.candidates``) from
+        the signatures spilled to a file column by column (``similarity.spilled``), gathered
+        pieces bounded at once against the sketches of every indexed set, made up front.
+        Memory: the index's and the column's matrix (``signatures``, ``columns.stacked``'s
+        function: ``release()`` moves the column to a file until the split reads it) leave
+        memory before the sets are sketched; the signatures of the pairs' MinHash bounds are
+        read back a column at a time."""
         sig = index.matrix()
         n = len(sig)
         skip = self._generic_bands(sig, None)  # memory: its transients go before the sketches come
-        sketches = (sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays,
-                                generic=self._generic), np.arange(n))
-        return streamed_pair_codes(sig, index.bands, is_new, lambda codes: self._bounded_candidates(
-            codes, index, sizes, arts, content, counts, sketches), skip=skip)
+        with SpilledColumns(sig, getattr(signatures, "folder", None)) as store:
+            del sig
+            index.drop_signatures()
+            getattr(signatures, "release", lambda: None)()
+            sketches = (sketch_rows(index.ids, np.arange(n), _Shingles(arts), read=load_arrays,
+                                    generic=self._generic), np.arange(n))
+            return streamed_pair_codes(store, index.bands, is_new, lambda codes: self._bounded_candidates(
+                codes, index, sizes, arts, content, counts, sketches, store), skip=skip, once=True)
 
     def _bounded_candidates(self, codes: np.ndarray, index: LSHIndex, sizes: np.ndarray,
                             arts: dict[str, dict[str, Any]], content: np.ndarray | None, counts: list[int],
-                            sketches: tuple[Sketches, np.ndarray] | None = None) -> np.ndarray:
+                            sketches: tuple[Sketches, np.ndarray] | None = None,
+                            store: SpilledColumns | None = None) -> np.ndarray:
         """The candidate codes (pairs of ``index``'s rows) that may reach the threshold: pairs
         of one note content (equal ``content`` numbers) left out (``other_content_codes``), then
         the MinHash bounds (``plausible_codes``), then the exact bounds from one bitmap per set
@@ -423,13 +431,17 @@ class Dedup(Stage):
         read by the exact comparison); adds the pairs left after each to ``counts``.
         ``sketches`` (the sketches and each row's place in them) are those of every indexed set,
         made up front (a full search); without them only the sets of the pairs left are read and
-        sketched (``sketched_codes``: a rerun reads no other set)."""
+        sketched (``sketched_codes``: a rerun reads no other set). ``store``: the index's
+        signatures spilled (a full search), for the MinHash bounds."""
         o = self.opts
         threshold, ratio = float(o["threshold"]), float(o["min_size_ratio"])
         if content is not None:
             codes = other_content_codes(codes, content)
         counts[0] += len(codes)
-        codes = index.plausible_codes(codes, sizes, threshold, min_size_ratio=ratio)
+        if store is None:
+            codes = index.plausible_codes(codes, sizes, threshold, min_size_ratio=ratio)
+        elif len(codes):  # the bounds of ``plausible_codes``, their signatures read from the file
+            codes = plausible_pair_codes(store, codes, sizes, threshold, min_size_ratio=ratio)
         counts[1] += len(codes)
         if sketches is None:
             codes = sketched_codes(index.ids, codes, _Shingles(arts), threshold, read=load_arrays,

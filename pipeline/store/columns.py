@@ -127,6 +127,21 @@ class _ArrayColumn:
         view.flags.writeable = False  # the readers' view only: the column may still be written
         return view
 
+    def row_blocks(self, at: np.ndarray) -> Iterator[np.ndarray]:
+        """The rows ``at`` (each held), in that order, ``_LOAD_ROWS`` at a time; a spilled
+        matrix's rows are read from its file (memory: the matrix is not read back whole, nor
+        reordered)."""
+        where = self._at(at)
+        for lo in range(0, len(where), _LOAD_ROWS):
+            part = where[lo:lo + _LOAD_ROWS]
+            if self.spilled is None:
+                yield self.matrix[part]
+                continue
+            # a run of consecutive matrix rows is one read
+            cut = np.flatnonzero(np.diff(part) != 1) + 1
+            yield np.concatenate([self._spilled_rows(int(part[a]), int(b - a)) for a, b in
+                                  zip(np.append(0, cut).tolist(), np.append(cut, len(part)).tolist())])
+
     def n_matrix_rows(self) -> int:
         return self.spilled[1][0] if self.spilled is not None else len(self.matrix)
 
@@ -447,7 +462,8 @@ def stacked(rows: list[Mapping], name: str) -> Callable[[], np.ndarray]:
 
 
 class _FirstRows:
-    """``stacked``'s function over one column's matrix (``_ArrayColumn.first``); ``release()``
+    """``stacked``'s function over one column's matrix (``_ArrayColumn.first``), its rows also
+    given a block at a time (``row_blocks``); ``release()``
     moves that matrix to a file in ``folder`` when its caller no longer needs it whole in memory
     (``_ArrayColumn.spill``); a caller spilling a copy of its own may put it there too."""
 
@@ -458,6 +474,11 @@ class _FirstRows:
 
     def __call__(self) -> np.ndarray:
         return self.col.first(self.at)
+
+    def row_blocks(self) -> Iterator[np.ndarray]:
+        """The rows of ``__call__``'s matrix a block at a time, the column left as it is
+        (``_ArrayColumn.row_blocks``: a spilled one stays in its file)."""
+        return self.col.row_blocks(self.at)
 
     def release(self) -> None:
         self.col.spill(self.folder)
