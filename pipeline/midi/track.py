@@ -65,18 +65,8 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
                 if st >= 0xF0:
                     if st == 0xFF:
                         mt = t[p]
-                        b = t[p + 1]
-                        p += 2
-                        ln = b & 0x7F
-                        while b > 0x7F:
-                            b = t[p]
-                            p += 1
-                            ln = (ln << 7) | (b & 0x7F)
-                        if p + ln > nt:
-                            raise DecodeError(
-                                "bad_event", f"meta event 0x{mt:02x} declares {ln} bytes but "
-                                f"only {nt - p} remain in the track chunk; the track is damaged",
-                                file=source, offset=base + ev_start, track=ti)
+                        ln, p = _payload_length(t, p + 1, f"meta event 0x{mt:02x}", source,
+                                                base + ev_start, ti)
                         if mt == 0x51:
                             if ln != 3:
                                 raise _bad_meta(source, base + ev_start, ti, "tempo", 3, ln)
@@ -123,18 +113,7 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
                             unknown_meta += 1
                         p += ln
                     elif st == 0xF0 or st == 0xF7:
-                        b = t[p]
-                        p += 1
-                        ln = b & 0x7F
-                        while b > 0x7F:
-                            b = t[p]
-                            p += 1
-                            ln = (ln << 7) | (b & 0x7F)
-                        if p + ln > nt:
-                            raise DecodeError(
-                                "bad_event", f"sysex event declares {ln} bytes but only "
-                                f"{nt - p} remain in the track chunk; the track is damaged",
-                                file=source, offset=base + ev_start, track=ti)
+                        ln, p = _payload_length(t, p, "sysex event", source, base + ev_start, ti)
                         p += ln
                     else:
                         raise DecodeError(
@@ -227,6 +206,24 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
                 else:
                     zero += 1
     return tick, eot, name, text, n_events, zero, hanging, unknown_meta
+
+
+def _payload_length(t: bytes, p: int, what: str, source: str, offset: int,
+                    track: int) -> tuple[int, int]:
+    """The variable-length payload size of a meta or sysex event read at ``t[p]``: (size, the
+    payload's first byte). A size running past the chunk is an error naming the event."""
+    b = t[p]
+    p += 1
+    ln = b & 0x7F
+    while b > 0x7F:
+        b = t[p]
+        p += 1
+        ln = (ln << 7) | (b & 0x7F)
+    if p + ln > len(t):
+        raise DecodeError("bad_event", f"{what} declares {ln} bytes but only {len(t) - p} remain "
+                          "in the track chunk; the track is damaged", file=source, offset=offset,
+                          track=track)
+    return ln, p
 
 
 def _bad_meta(source: str, offset: int, track: int, what: str, want: int, got: int) -> DecodeError:
