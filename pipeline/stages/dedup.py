@@ -336,7 +336,7 @@ class Dedup(Stage):
             del index
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
-                                          skip=lambda rows: self._generic_bands(index.matrix(), rows))
+                                          skip=lambda rows, band: self._generic_bands(index.matrix(), rows, band))
             codes = self._bounded_candidates(codes, index, sizes, arts, content, counts)
             index_ids = index.ids
             del index  # memory: what it holds goes before the pairs are verified (the peak)
@@ -410,7 +410,7 @@ class Dedup(Stage):
         read back a column at a time."""
         sig = index.matrix()
         n = len(sig)
-        skip = self._generic_bands(sig, None)  # memory: its transients go before the sketches come
+        skip = self._generic_bands(sig, None, None)  # memory: its transients go before the sketches come
         with SpilledColumns(sig, getattr(signatures, "folder", None)) as store:
             del sig
             index.drop_signatures()
@@ -451,10 +451,11 @@ class Dedup(Stage):
         counts[2] += len(codes)
         return codes
 
-    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
-        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
+    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None, band: int | None) -> np.ndarray:
+        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy), of
+        every band or of band ``band``."""
         return generic_bands(sig if rows is None else sig[rows], self._generic,
-                             int(self.opts["bands"]), int(self.opts["seed"]))
+                             int(self.opts["bands"]), int(self.opts["seed"]), band)
 
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
         """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
