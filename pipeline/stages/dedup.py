@@ -364,21 +364,23 @@ class Dedup(Stage):
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
         last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
-        last_sources = prev.get("cluster_sources", {}) if last is not None else {}
-        last_kept = set(prev.get("kept", []))
-        results: dict[str, Any] = {}
-        kept_ids: list[str] = []
-        cluster_sources: dict[str, str] = {}
-        groups = uf.groups()
-        as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
-        for group, same in zip(groups, as_last):
+        if last is None:
+            groups = uf.groups()
+            results: dict[str, Any] = {}
+            kept_ids: list[str] = []
+            cluster_sources: dict[str, str] = {}
+        else:
+            # speed: only the clusters that may differ from the last run's are walked (see
+            # ``_changed_clusters``); the others keep its results, kept members and sources
+            groups = self._changed_clusters(uf, ids, old, last, prev["cluster_sources"], by_id)
+            again = {k for g in groups for k in g}
+            results = {k: last[k] for k in ids if k not in again}
+            kept_ids = [k for k in prev.get("kept", []) if k not in again]
+            cluster_sources = {k: v for k, v in prev["cluster_sources"].items() if k not in again}
+        for group in groups:
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
-            if same:
-                results.update((k, last[k]) for k in group)
-                kept_ids.extend(k for k in group if k in last_kept)
-                continue
             if len(group) == 1:
                 kept_ids.append(group[0])
                 results[group[0]] = StageResult.keep(
@@ -467,14 +469,16 @@ class Dedup(Stage):
         return generic_shingles(sample, share=share)
 
     @staticmethod
-    def _as_last_run(group: list[str], old: set[str], last: Any, last_sources: dict[str, str],
-                     by_id: dict[str, Member]) -> bool:
-        """Whether a cluster is the last run's and reads as it did: no new member, every member
-        with a stored result, and (in a cluster of several, whose details name sources) every
-        member still represented by the same source path."""
-        if any(k not in old or k not in last for k in group):
-            return False
-        return len(group) == 1 or all(last_sources.get(k) == by_id[k].source for k in group)
+    def _changed_clusters(uf: UnionFind, ids: list[str], old: set[str], last: Any,
+                          last_sources: dict[str, str], by_id: dict[str, Member]) -> list[list[str]]:
+        """The clusters (``uf``'s sets, as ``UnionFind.groups`` gives them) that may not be the
+        last run's as it wrote them: those holding a new member, a member without a stored
+        result (``last``), or a member of a cluster of several (whose details name sources)
+        no longer represented by the source path it had (``last_sources``). The others are the
+        last run's clusters: the stored links are reused, and every new link has a new member."""
+        changed = [k for k in ids if k not in old or k not in last]
+        changed += [k for k, source in last_sources.items() if k in by_id and by_id[k].source != source]
+        return uf.groups_of(changed)
 
     def _cluster_results(self, order: list[str], kept: list[str],
                          dropped: dict[str, tuple[str, float, str]], facts: dict[str, _Facts],
