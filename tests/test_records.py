@@ -170,3 +170,27 @@ def test_verdict_columns_read_like_the_records_they_replace(tmp_path):
                 assert r.thresholds is cols.get(sha).thresholds  # one dict per distinct text
             assert cols.get(order[-1]) is None and cols.kept_at(len(order) - 1) is None
             assert order[-1] not in cols and len(cols) == len(plain)
+
+
+def test_a_reader_of_scattered_contents_reads_no_chunk_after_one_that_served_it_nothing(tmp_path, monkeypatch):
+    """The values of contents far apart (the split reading its new members' ``augment``) come
+    back right; after the first chunk, which served one read, each miss reads its own row and
+    no further chunk of ``FETCH_CHUNK`` rows (a chunk read per few misses was most of it)."""
+    from pipeline.store.ledger import FETCH_CHUNK, Ledger, StoredValues
+    n = 4 * FETCH_CHUNK
+    order = [f"{i:064x}" for i in range(n)]
+    plain = {sha: PLAIN[i % len(PLAIN)] for i, sha in enumerate(order)}
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        with ledger.batch():
+            ledger.put_results((sha, "key_meter", "fp", d) for sha, d in plain.items())
+        source = ledger.values_source("key_meter", "fp", order)
+        got = ledger.verdicts_for(Verdicts(source, {sha: i for i, sha in enumerate(order)}, Compactor(), n))
+        chunks = []
+        prefetch = StoredValues.prefetch
+        monkeypatch.setattr(StoredValues, "prefetch", lambda self, shas: chunks.append(len(shas)) or prefetch(self, shas))
+        for i in range(0, n, 37):
+            assert got[order[i]].to_json() == plain[order[i]]
+        assert chunks == [FETCH_CHUNK]
+        for sha in order[:FETCH_CHUNK + 1]:  # in order again: a chunk that serves reads, then the next
+            assert got[sha].to_json() == plain[sha]
+        assert len(chunks) == 2

@@ -553,7 +553,7 @@ class StoredValues:
                     raise LedgerError(f"the stored values of {self.key[0]} for content {sha} are no "
                                       "longer in the state database (another process changed it "
                                       "during the run?); rerun", file=path)
-                t = row[0]
+                return row[0]  # a read past the held chunk: it served no read (``SEQUENTIAL``)
         self._served += 1
         return t
 
@@ -570,7 +570,8 @@ class StoredValues:
 
 
 #: Reads a held chunk of values must have served for a miss to read the next chunk (fewer:
-#: the reader jumps around, and a miss reads one row).
+#: the reader jumps around, and a miss reads one row; such rows count for no chunk, so a
+#: reader of scattered contents, as the split reading new members' values, reads no more chunks).
 SEQUENTIAL = 16
 
 
