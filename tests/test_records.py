@@ -195,3 +195,23 @@ def test_a_reader_of_scattered_contents_reads_no_chunk_after_one_that_served_it_
         for sha in order[:FETCH_CHUNK + 1]:  # in order again: a chunk that serves reads, then the next
             assert got[sha].to_json() == plain[sha]
         assert len(chunks) == 2
+
+
+def test_a_key_no_stored_text_has_is_scanned_for_only_once_many_contents_ask_for_it(tmp_path):
+    """A value no stored text holds (``composer`` here) reads as missing whether or
+    not the stage's texts were scanned for its key: a few readers read their own texts and no
+    scan runs (the split's new members on a rerun); from ``SCAN_AFTER`` reads on one scan
+    answers for all, once."""
+    from pipeline.store.ledger import SCAN_AFTER, Ledger
+    n = SCAN_AFTER + 50
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        order, plain, _, got = _stored_verdicts(ledger, n)
+        queries: list[str] = []
+        ledger.db.set_trace_callback(queries.append)
+        for sha in order[:20]:
+            assert got[sha].value("composer", "none") == "none"
+            assert got[sha].value("tonic") == plain[sha]["values"].get("tonic")
+        assert not any("instr(" in q for q in queries)
+        for sha in order:
+            assert got[sha].value("composer", "none") == "none"
+        assert sum("instr(" in q for q in queries) == 1

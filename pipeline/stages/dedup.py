@@ -251,21 +251,15 @@ class Dedup(Stage):
 
         # 1. exact: bytes, then canonical note content (a member's content representative is
         # the first member with its note content; near links are found between those)
-        content_rep: dict[str, str] = {}
-        content_of = dict(zip(ids, map(str, column_of([arts[k] for k in ids], "content_hash"))))
-        exact = (("bytes", {k: by_id[k].sha256 for k in ids}), ("content", content_of))
-        for kind, value_of in exact:
-            first: dict[str, str] = {}
-            for k in ids:
-                v = value_of[k]
-                if v in first:
-                    uf.union(first[v], k)
-                else:
-                    first[v] = k
-        for k in ids:
-            content_rep[k] = first[content_of[k]]
-        rep_ids = sorted(first.values())  # the first member of each note content
-        del exact, first, content_of, value_of  # memory: dicts of every member, not read again
+        same_bytes = _first_of_each(ids, [by_id[k].sha256 for k in ids])
+        same_content = _first_of_each(ids, list(map(str, column_of([arts[k] for k in ids], "content_hash"))))
+        for firsts in (same_bytes, same_content):
+            for k, first in zip(ids, firsts):
+                if first != k:
+                    uf.union(first, k)
+        content_rep = dict(zip(ids, same_content))
+        rep_ids = [k for k, first in zip(ids, same_content) if first == k]  # the first member of each note content
+        del same_bytes, same_content  # memory: lists of every member, not read again
 
         # 2. near: every verified pair of searched members (each representative, and each other
         # member whose shingle set differs from those of the searched members of its content:
@@ -289,8 +283,9 @@ class Dedup(Stage):
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
-        size_of = dict(zip(searched, lengths_of([arts[k] for k in searched], "shingles").tolist()))
-        indexed = [k for k in searched if size_of[k] >= min_sh]
+        lengths = lengths_of([arts[k] for k in searched], "shingles")
+        indexed = [k for k, ok in zip(searched, (lengths >= min_sh).tolist()) if ok]
+        lengths = lengths[lengths >= min_sh]  # the indexed sets' sizes
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were);
         # memory: counted before the index holds its copy of the signatures (the count's
@@ -321,9 +316,10 @@ class Dedup(Stage):
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
         is_new = np.array([k in new_searched for k in index.ids], dtype=bool)
         n_new = len(new_searched)
-        # memory: the indexed sets' sizes as one array, the dict of every searched member goes
-        sizes = np.array([size_of[k] for k in index.ids])
-        del size_of
+        # the indexed sets' sizes, of the ids the index holds (those with a signature)
+        sizes = (lengths if len(index.ids) == len(indexed)
+                 else lengths[np.isin(np.array(indexed), np.array(index.ids))])
+        del lengths
         # two members of one content are no pair to verify (they are exact duplicates already)
         content = content_numbers(index.ids, content_rep) if len(searched) > len(rep_ids) else None
         counts = [0, 0, 0]  # pairs after banding, after the MinHash bounds, after the exact bounds
@@ -636,6 +632,13 @@ def _choose_searched(block: list[tuple[list[str], list[str], dict[str, tuple]]],
                 chosen.append(k)
         searched.extend(chosen)
         extra.extend(k for k in chosen if k != members[0])
+
+
+def _first_of_each(ids: list[str], values: list[str]) -> list[str]:
+    """For each of ``ids`` (sorted), the first id with its value (``values[i]`` is that of
+    ``ids[i]``): the exact step's links and a member's content representative."""
+    first: dict[str, str] = {}
+    return [first.setdefault(v, k) for k, v in zip(ids, values)]
 
 
 def content_numbers(keys: list[str], content_rep: dict[str, str]) -> np.ndarray:
