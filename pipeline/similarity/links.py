@@ -22,10 +22,8 @@ class UnionFind:
     """Disjoint sets over hashable keys, with path halving and union by size."""
 
     def __init__(self, keys: Iterable[Any] = ()):
-        self.parent: dict[Any, Any] = {}
-        self.size: dict[Any, int] = {}
-        for k in keys:
-            self.add(k)
+        self.parent: dict[Any, Any] = {k: k for k in keys}
+        self.size: dict[Any, int] = dict.fromkeys(self.parent, 1)
 
     def add(self, key: Any) -> None:
         if key not in self.parent:
