@@ -371,8 +371,10 @@ class Dedup(Stage):
             groups = self._changed_clusters(uf, ids, old, last, prev["cluster_sources"], by_id)
             again = {k for g in groups for k in g}
             results = {k: last[k] for k in ids if k not in again}
-            kept_ids = [k for k in prev.get("kept", []) if k not in again]
-            cluster_sources = {k: v for k, v in prev["cluster_sources"].items() if k not in again}
+            # memory: the members' own id and source strings, not the saved state's copies
+            # (which go with it once the stage is done)
+            kept_ids = [by_id[k].id for k in prev.get("kept", []) if k not in again]
+            cluster_sources = {by_id[k].id: by_id[k].source for k in prev["cluster_sources"] if k not in again}
         for group in groups:
             if len(group) > 1:
                 for k in group:
