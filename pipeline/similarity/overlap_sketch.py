@@ -53,8 +53,8 @@ def sketch_sets(sets: list[np.ndarray], bits: int = SKETCH_BITS, generic: np.nda
     if bits < 128 or bits & (bits - 1):
         raise ValueError(f"bits ({bits}) must be a power of two of at least 128")
     n, words, half = len(sets), bits // 64, bits // 2
-    out = np.zeros((n, words), dtype=np.uint64)
     size = np.array([len(x) for x in sets], dtype=np.int64)
+    out = np.zeros((n, words), dtype=np.uint64)
     lead = np.zeros(n, dtype=np.int64)
     if n and size.sum():
         flat = np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets])
