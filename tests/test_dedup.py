@@ -371,6 +371,31 @@ def test_lone_members_as_last_run_equal_a_full_computation_after_any_change(corp
         assert not reused
 
 
+def test_a_newcomer_joining_two_old_clusters_and_a_missing_result_equal_a_full_computation():
+    """A rerun walks only the clusters that may differ from the last run's (a new member, a
+    member without a stored result, a moved source): a newcomer sharing half of each of two
+    old clusters merges them into one, and an old lone member whose stored result is gone is
+    made again; every result and the saved state equal the computation without the last
+    run's results (the oracle), and the untouched clusters keep the stored objects."""
+    pool = np.arange(1, 2001, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15) | np.uint64(1 << 63)
+    a, a2 = planted("a.mid", pool[:300], notes=500), planted("a2.mid", pool[:290], notes=450)
+    c, c2 = planted("c.mid", pool[300:600], notes=400), planted("c2.mid", pool[310:600], notes=350)
+    lone = [planted(f"lone{k}.mid", pool[700 + 200 * k:900 + 200 * k], notes=300) for k in range(4)]
+    first = [a, a2, c, c2, *lone]
+    res1, st1 = run(first)
+    assert res1[a.id].values["cluster_size"] == res1[c.id].values["cluster_size"] == 2
+    bridge = planted("new/bridge.mid", pool[150:450], notes=100)  # containment 0.5 with a and c
+    second = first + [bridge]
+    stored = {k: r for k, r in res1.items() if k != lone[0].id}  # its stored result is gone
+    full, st_full = run(second, previous=st1.current)
+    inc, st_inc = run(second, previous=st1.current, flags={"previous_results": stored})
+    assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in full.items()}
+    assert st_inc.current == st_full.current and st_inc.notes == st_full.notes
+    assert {full[k].values["cluster_size"] for k in (a.id, a2.id, c.id, c2.id, bridge.id)} == {5}
+    reused = {k for k in inc if inc[k] is stored.get(k)}
+    assert reused == {m.id for m in lone[1:]}
+
+
 # --- No chaining: every drop is justified by its own pair -----------------------------------------
 def planted(name: str, shingles: np.ndarray, notes: int) -> Member:
     """A member whose dedup artifacts are given directly: a shingle set (sorted unique uint64)

@@ -123,3 +123,27 @@ def test_near_links_at_the_split_threshold_equal_brute_force_and_the_search_with
     # the LSH search finds a pair with a probability below one; pairs at 0.5 and above are
     # found with probability above 0.9999 at 64 bands of 2 rows (Mining of Massive Datasets, ch. 3)
     assert {p for p, v in brute.items() if v >= 0.5} <= {(a, b) for a, b, _ in got}
+
+
+@pytest.mark.parametrize("bits", [128, 4096])
+def test_sketches_are_the_bits_of_the_sets_without_the_generic_shingles(bits):
+    # Reference: the bitmap's definition in plain Python (a shingle sets bit ``x % (bits / 2)``
+    # of the lead half when ``x < 2**63``, else that bit of the other half; bit p is bit
+    # ``p % 64`` of word ``p // 64``), over Python sets without the generic shingles; sizes,
+    # lead sizes and the shingles lost to collisions follow from the same sets.
+    rng = np.random.default_rng(3)
+    generic = _set_of(rng.integers(0, 2**64, 30, dtype=np.uint64).tolist())
+    sets = [_set_of(rng.integers(0, 2**64, k, dtype=np.uint64).tolist() + generic[:k // 3].tolist())
+            for k in (0, 1, 40, 300)] + [generic[:5].copy()]
+    sk = sketch_sets(sets, bits, generic)
+    half = bits // 2
+    for r, x in enumerate(sets):
+        own = set(x.tolist()) - set(generic.tolist())
+        on = {(v % half) + (0 if v < LEAD else half) for v in own}
+        want = [sum(1 << (p % 64) for p in on if p // 64 == w) for w in range(bits // 64)]
+        assert sk.bits[r].tolist() == want
+        lead = sum(v < LEAD for v in own)
+        assert (sk.size[r], sk.lead[r]) == (len(own), lead)
+        assert sk.lost_lead[r] == lead - sum(p < half for p in on)
+        assert sk.lost_rest[r] == len(own) - lead - sum(p >= half for p in on)
+    assert sketch_sets(sets, bits).size[3] > sk.size[3]  # without ``generic``: every shingle

@@ -93,6 +93,18 @@ def test_stored_records_read_like_their_dict_without_parsing_everything():
         assert r.to_json() == d and r.values_json() == canonical_json(v) == stored[3]
 
 
+def _stored_verdicts(ledger, n):
+    """``n`` key_meter results stored in ``ledger`` and read back as deferred records: (sha256s
+    in order, their dicts, the values source, the ``Verdicts``)."""
+    order = [f"{i:064x}" for i in range(n)]
+    plain = {sha: PLAIN[i % len(PLAIN)] for i, sha in enumerate(order)}
+    with ledger.batch():
+        ledger.put_results((sha, "key_meter", "fp", d) for sha, d in plain.items())
+    source = ledger.values_source("key_meter", "fp", order)
+    got = ledger.verdicts_for(Verdicts(source, {sha: i for i, sha in enumerate(order)}, Compactor(), n))
+    return order, plain, source, got
+
+
 def test_records_whose_values_stay_in_the_ledger_read_like_their_dict(tmp_path):
     """A record left in the ledger (``Result.defer``) reads exactly like its dict: read back
     from a store in chunks, one row at a time when the reader jumps, and after a prefetch; its
@@ -100,14 +112,8 @@ def test_records_whose_values_stay_in_the_ledger_read_like_their_dict(tmp_path):
     from pipeline.store.codec import stored_result
     from pipeline.store.ledger import FETCH_CHUNK, SEQUENTIAL, Ledger
     n = FETCH_CHUNK + 40
-    order = [f"{i:064x}" for i in range(n)]
-    plain = {sha: PLAIN[i % len(PLAIN)] for i, sha in enumerate(order)}
     with Ledger(tmp_path / "state.sqlite") as ledger:
-        with ledger.batch():
-            ledger.put_results((sha, "key_meter", "fp", d) for sha, d in plain.items())
-        source = ledger.values_source("key_meter", "fp", order)
-        index = {sha: i for i, sha in enumerate(order)}
-        got = ledger.verdicts_for(Verdicts(source, index, Compactor(), n))
+        order, plain, source, got = _stored_verdicts(ledger, n)
         assert len(got) == n and all(sha in got for sha in order)
         for sha in order:  # in order: chunks of FETCH_CHUNK
             r, d = got[sha], plain[sha]
@@ -170,3 +176,42 @@ def test_verdict_columns_read_like_the_records_they_replace(tmp_path):
                 assert r.thresholds is cols.get(sha).thresholds  # one dict per distinct text
             assert cols.get(order[-1]) is None and cols.kept_at(len(order) - 1) is None
             assert order[-1] not in cols and len(cols) == len(plain)
+
+
+def test_a_reader_of_scattered_contents_reads_no_chunk_after_one_that_served_it_nothing(tmp_path, monkeypatch):
+    """The values of contents far apart (the split reading its new members' ``augment``) come
+    back right; after the first chunk, which served one read, each miss reads its own row and
+    no further chunk of ``FETCH_CHUNK`` rows (a chunk read per few misses was most of it)."""
+    from pipeline.store.ledger import FETCH_CHUNK, Ledger, StoredValues
+    n = 4 * FETCH_CHUNK
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        order, plain, _, got = _stored_verdicts(ledger, n)
+        chunks = []
+        prefetch = StoredValues.prefetch
+        monkeypatch.setattr(StoredValues, "prefetch", lambda self, shas: chunks.append(len(shas)) or prefetch(self, shas))
+        for i in range(0, n, 37):
+            assert got[order[i]].to_json() == plain[order[i]]
+        assert chunks == [FETCH_CHUNK]
+        for sha in order[:FETCH_CHUNK + 1]:  # in order again: a chunk that serves reads, then the next
+            assert got[sha].to_json() == plain[sha]
+        assert len(chunks) == 2
+
+
+def test_a_key_no_stored_text_has_is_scanned_for_only_once_many_contents_ask_for_it(tmp_path):
+    """A value no stored text holds (``composer`` here) reads as missing whether or
+    not the stage's texts were scanned for its key: a few readers read their own texts and no
+    scan runs (the split's new members on a rerun); from ``SCAN_AFTER`` reads on one scan
+    answers for all, once."""
+    from pipeline.store.ledger import SCAN_AFTER, Ledger
+    n = SCAN_AFTER + 50
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        order, plain, _, got = _stored_verdicts(ledger, n)
+        queries: list[str] = []
+        ledger.db.set_trace_callback(queries.append)
+        for sha in order[:20]:
+            assert got[sha].value("composer", "none") == "none"
+            assert got[sha].value("tonic") == plain[sha]["values"].get("tonic")
+        assert not any("instr(" in q for q in queries)
+        for sha in order:
+            assert got[sha].value("composer", "none") == "none"
+        assert sum("instr(" in q for q in queries) == 1

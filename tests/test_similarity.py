@@ -413,6 +413,9 @@ def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():
                                 for c in cols)
     got = generic_bands(sig, generic, 64, 1)
     assert np.array_equal(got, want) and got[:4].sum() > 20
+    rows = np.array([0, 2, 5])
+    for band in (0, 17, 63):  # one band of some rows (a rerun's marks)
+        assert np.array_equal(generic_bands(sig[rows], generic, 64, 1, band), want[rows, band])
     index = LSHIndex(128, 64)
     index.extend([f"k{r}" for r in range(len(sets))], sig)
     pairs = set(index.candidate_codes().tolist())
@@ -585,11 +588,11 @@ def test_rerun_candidates_with_marks_of_paired_rows_only_equal_brute_force(seed)
     new = {f"k{r:03d}" for r in rng.choice(n, 6, replace=False)}
     index = LSHIndex(num_perm, bands)
     index.extend([f"k{r:03d}" for r in range(n)], sig)
-    asked: list[np.ndarray] = []
+    asked: list[tuple] = []
 
-    def skip(rows):
-        asked.append(rows)
-        return marks if rows is None else marks[rows]
+    def skip(rows, band):
+        asked.append((rows, band))
+        return marks[rows, band]
 
     got = index.candidate_codes(new, skip=skip)
     rows = num_perm // bands
@@ -604,5 +607,7 @@ def test_rerun_candidates_with_marks_of_paired_rows_only_equal_brute_force(seed)
                 want.add(i * n + j)
     assert set(got.tolist()) == want and len(want) > 30
     assert list(got) == sorted(got)
-    assert len(asked) == 1 and asked[0] is not None and len(asked[0]) < n  # marks of paired rows only
+    # marks of the rows sharing a band's key only, each band asked once at most
+    assert asked and all(rows is not None and band is not None for rows, band in asked)
+    assert len({band for _, band in asked}) == len(asked) and sum(len(r) for r, _ in asked) < n * bands
     assert np.array_equal(index.candidate_codes(new, skip=marks), got)

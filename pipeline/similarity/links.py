@@ -22,10 +22,8 @@ class UnionFind:
     """Disjoint sets over hashable keys, with path halving and union by size."""
 
     def __init__(self, keys: Iterable[Any] = ()):
-        self.parent: dict[Any, Any] = {}
-        self.size: dict[Any, int] = {}
-        for k in keys:
-            self.add(k)
+        self.parent: dict[Any, Any] = {k: k for k in keys}
+        self.size: dict[Any, int] = dict.fromkeys(self.parent, 1)
 
     def add(self, key: Any) -> None:
         if key not in self.parent:
@@ -63,6 +61,25 @@ class UnionFind:
         alone.extend(sorted(g) for g in out.values())
         alone.sort(key=itemgetter(0))
         return alone
+
+    def groups_of(self, keys: Iterable[Any]) -> list[list[Any]]:
+        """The sets holding any of ``keys``, as ``groups`` gives them (each sorted, ordered by
+        their smallest member). Speed: no list is made for the other sets."""
+        out: dict[Any, list[Any]] = {self.find(k): [] for k in keys}
+        if not out:
+            return []
+        size, find = self.size, self.find
+        for k, p in self.parent.items():
+            if p == k and size[k] == 1:
+                if k in out:
+                    out[k].append(k)
+            else:
+                r = find(k)
+                if r in out:
+                    out[r].append(k)
+        found = [sorted(g) for g in out.values()]
+        found.sort(key=itemgetter(0))
+        return found
 
 
 def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,

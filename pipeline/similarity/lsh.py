@@ -107,9 +107,10 @@ class LSHIndex:
         """The pairs of ids sharing a band (with ``new``, only pairs with at least one new id)
         as sorted unique codes ``i * n + j`` (``i < j`` index the ids in insertion order): 8
         bytes a pair instead of a tuple of two strings. ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
-        no row: each gets a key of its own row. ``skip`` may be a function of row numbers
-        (None: all rows) giving those marks: with few new ids (a rerun) it is asked only for
-        the rows of the pairs found without it (``unskipped_codes``)."""
+        no row: each gets a key of its own row. ``skip`` may be a function ``skip(rows, band)``
+        giving those marks (``rows`` None: all rows; ``band`` None: every band, else that
+        band's ``(len(rows),)`` marks): with few new ids (a rerun) it is asked only for the
+        rows sharing a band's key in the pairs found without it (``unskipped_codes``)."""
         n = len(self.ids)
         if n < 2:
             return np.zeros(0, dtype=np.int64)
@@ -122,7 +123,7 @@ class LSHIndex:
             if few_new(is_new):
                 # speed: a rerun marks the generic bands of the rows it pairs, not of every row
                 return unskipped_codes(sig, self.bands, banded_pair_codes(sig, self.bands, is_new), skip)
-            skip = skip(None)
+            skip = skip(None, None)
         if skip is None or not skip.any():
             return banded_pair_codes(sig, self.bands, is_new)
         if not sig.flags.writeable:  # e.g. one signature as read from the ledger
@@ -304,27 +305,33 @@ def banded_pair_codes(sig: np.ndarray, bands: int, is_new: np.ndarray, *,
 
 
 def unskipped_codes(sig: np.ndarray, bands: int, codes: np.ndarray,
-                    skip: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+                    skip: Callable[[np.ndarray, int], np.ndarray]) -> np.ndarray:
     """The codes ``i * n + j`` (rows of ``sig``, e.g. from ``banded_pair_codes``) of the pairs
-    sharing a band key (``band_key``) in a band that neither row skips: ``skip(rows)`` gives
-    the ``(len(rows), bands)`` skip marks of the sorted rows asked for. The pairs
-    ``LSHIndex.candidate_codes`` finds with those marks given to every row (a skipped band
-    gets a key of its own row: the row number, then ``EMPTY_VALUE - 1``, the top of the
+    sharing a band key (``band_key``) in a band that neither row skips: ``skip(rows, band)``
+    gives the ``(len(rows),)`` skip marks of band ``band`` of the sorted rows asked for. The
+    pairs ``LSHIndex.candidate_codes`` finds with those marks given to every row (a skipped
+    band gets a key of its own row: the row number, then ``EMPTY_VALUE - 1``, the top of the
     32-bit range, which the minimum of a compared set's hashes all but never reaches), found
-    from the marks of the rows in ``codes`` only."""
+    from the marks of the rows sharing a band's key in a pair not yet kept only (speed: most
+    pairs share one band, so a rerun marks about two cells a pair, not every band of a row)."""
     n = len(sig)
     if not len(codes):
         return codes
     i, j = np.divmod(codes, n)
     rows = sorted_unique(np.concatenate([i, j]))
     li, lj = np.searchsorted(rows, i), np.searchsorted(rows, j)
-    marks = np.asarray(skip(rows), dtype=bool)
     sub = sig[rows]
     keep = np.zeros(len(codes), dtype=bool)
+    marked = np.zeros(len(rows), dtype=bool)
     for band in range(bands):
         key = band_key(sub, bands, band)
-        live = ~marks[:, band]
-        keep |= (key[li] == key[lj]) & live[li] & live[lj]
+        at = np.flatnonzero((key[li] == key[lj]) & ~keep)
+        if not len(at):
+            continue
+        asked = sorted_unique(np.concatenate([li[at], lj[at]]))
+        marked[asked] = np.asarray(skip(rows[asked], band), dtype=bool)
+        keep[at] = ~(marked[li[at]] | marked[lj[at]])
+        marked[asked] = False
     return codes[keep]
 
 
@@ -435,29 +442,32 @@ def _ordered_new(pieces: list[tuple[np.ndarray, np.ndarray]], is_new: np.ndarray
             yield i.astype(np.int64), j.astype(np.int64)
 
 
-def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
+def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int,
+                  band: int | None = None) -> np.ndarray:
     """``(rows, bands)`` booleans: the LSH bands of ``signature_of`` signatures whose every value
     is the MinHash value of a ``generic`` shingle under that column's permutation. Such a band
     key is made of generic material only: two unrelated files sharing it are what makes the
     candidates of a large corpus grow with its square, and ``set_similarity`` leaves those
     shingles out anyway. A column of the first half may come from the lead's permutations or
-    (lead too short) the whole set's: a value matching either counts."""
+    (lead too short) the whole set's: a value matching either counts. With ``band``, only
+    that band's ``(rows,)`` booleans (its columns alone are compared)."""
     sig = np.asarray(sig, dtype=np.uint32)
     n, num_perm = sig.shape
-    out = np.zeros((n, bands), dtype=bool)
+    r = num_perm // bands
+    columns = range(num_perm) if band is None else range(band * r, (band + 1) * r)
     if not n or not len(generic):
-        return out
+        return np.zeros((n, bands) if band is None else n, dtype=bool)
     half = num_perm // 2
     h = _fmix32(fold32(generic))
     a, b = permutations(num_perm, seed)
     la, lb = permutations(half, seed)
-    hit = np.zeros(sig.shape, dtype=bool)
+    hit = np.zeros((n, len(columns)), dtype=bool)
     with np.errstate(over="ignore"):
-        for c in range(num_perm):
+        for at, c in enumerate(columns):
             vals = h * a[c] + b[c]
             if c < half:
                 vals = np.concatenate([vals, h * la[c] + lb[c]])
             vals.sort()
             pos = np.minimum(np.searchsorted(vals, sig[:, c]), len(vals) - 1)
-            hit[:, c] = vals[pos] == sig[:, c]
-    return hit.reshape(n, bands, num_perm // bands).all(axis=2)
+            hit[:, at] = vals[pos] == sig[:, c]
+    return hit.reshape(n, bands, r).all(axis=2) if band is None else hit.all(axis=1)

@@ -251,21 +251,15 @@ class Dedup(Stage):
 
         # 1. exact: bytes, then canonical note content (a member's content representative is
         # the first member with its note content; near links are found between those)
-        content_rep: dict[str, str] = {}
-        content_of = dict(zip(ids, map(str, column_of([arts[k] for k in ids], "content_hash"))))
-        exact = (("bytes", {k: by_id[k].sha256 for k in ids}), ("content", content_of))
-        for kind, value_of in exact:
-            first: dict[str, str] = {}
-            for k in ids:
-                v = value_of[k]
-                if v in first:
-                    uf.union(first[v], k)
-                else:
-                    first[v] = k
-        for k in ids:
-            content_rep[k] = first[content_of[k]]
-        rep_ids = sorted(first.values())  # the first member of each note content
-        del exact, first, content_of, value_of  # memory: dicts of every member, not read again
+        same_bytes = _first_of_each(ids, [by_id[k].sha256 for k in ids])
+        same_content = _first_of_each(ids, list(map(str, column_of([arts[k] for k in ids], "content_hash"))))
+        for firsts in (same_bytes, same_content):
+            for k, first in zip(ids, firsts):
+                if first != k:
+                    uf.union(first, k)
+        content_rep = dict(zip(ids, same_content))
+        rep_ids = [k for k, first in zip(ids, same_content) if first == k]  # the first member of each note content
+        del same_bytes, same_content  # memory: lists of every member, not read again
 
         # 2. near: every verified pair of searched members (each representative, and each other
         # member whose shingle set differs from those of the searched members of its content:
@@ -289,8 +283,9 @@ class Dedup(Stage):
                 near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
-        size_of = dict(zip(searched, lengths_of([arts[k] for k in searched], "shingles").tolist()))
-        indexed = [k for k in searched if size_of[k] >= min_sh]
+        lengths = lengths_of([arts[k] for k in searched], "shingles")
+        indexed = [k for k, ok in zip(searched, (lengths >= min_sh).tolist()) if ok]
+        lengths = lengths[lengths >= min_sh]  # the indexed sets' sizes
         # the generic shingles are counted once and kept while the links are reused (a rerun
         # must not read every file's set; its new pairs are verified as the old ones were);
         # memory: counted before the index holds its copy of the signatures (the count's
@@ -321,9 +316,10 @@ class Dedup(Stage):
         # (a rerun marks the generic bands of the rows in its candidate pairs only)
         is_new = np.array([k in new_searched for k in index.ids], dtype=bool)
         n_new = len(new_searched)
-        # memory: the indexed sets' sizes as one array, the dict of every searched member goes
-        sizes = np.array([size_of[k] for k in index.ids])
-        del size_of
+        # the indexed sets' sizes, of the ids the index holds (those with a signature)
+        sizes = (lengths if len(index.ids) == len(indexed)
+                 else lengths[np.isin(np.array(indexed), np.array(index.ids))])
+        del lengths
         # two members of one content are no pair to verify (they are exact duplicates already)
         content = content_numbers(index.ids, content_rep) if len(searched) > len(rep_ids) else None
         counts = [0, 0, 0]  # pairs after banding, after the MinHash bounds, after the exact bounds
@@ -336,7 +332,7 @@ class Dedup(Stage):
             del index
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
-                                          skip=lambda rows: self._generic_bands(index.matrix(), rows))
+                                          skip=lambda rows, band: self._generic_bands(index.matrix(), rows, band))
             codes = self._bounded_candidates(codes, index, sizes, arts, content, counts)
             index_ids = index.ids
             del index  # memory: what it holds goes before the pairs are verified (the peak)
@@ -364,21 +360,25 @@ class Dedup(Stage):
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
         last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
-        last_sources = prev.get("cluster_sources", {}) if last is not None else {}
-        last_kept = set(prev.get("kept", []))
-        results: dict[str, Any] = {}
-        kept_ids: list[str] = []
-        cluster_sources: dict[str, str] = {}
-        groups = uf.groups()
-        as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
-        for group, same in zip(groups, as_last):
+        if last is None:
+            groups = uf.groups()
+            results: dict[str, Any] = {}
+            kept_ids: list[str] = []
+            cluster_sources: dict[str, str] = {}
+        else:
+            # speed: only the clusters that may differ from the last run's are walked (see
+            # ``_changed_clusters``); the others keep its results, kept members and sources
+            groups = self._changed_clusters(uf, ids, old, last, prev["cluster_sources"], by_id)
+            again = {k for g in groups for k in g}
+            results = {k: last[k] for k in ids if k not in again}
+            # memory: the members' own id and source strings, not the saved state's copies
+            # (which go with it once the stage is done)
+            kept_ids = [by_id[k].id for k in prev.get("kept", []) if k not in again]
+            cluster_sources = {by_id[k].id: by_id[k].source for k in prev["cluster_sources"] if k not in again}
+        for group in groups:
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
-            if same:
-                results.update((k, last[k]) for k in group)
-                kept_ids.extend(k for k in group if k in last_kept)
-                continue
             if len(group) == 1:
                 kept_ids.append(group[0])
                 results[group[0]] = StageResult.keep(
@@ -410,7 +410,7 @@ class Dedup(Stage):
         read back a column at a time."""
         sig = index.matrix()
         n = len(sig)
-        skip = self._generic_bands(sig, None)  # memory: its transients go before the sketches come
+        skip = self._generic_bands(sig, None, None)  # memory: its transients go before the sketches come
         with SpilledColumns(sig, getattr(signatures, "folder", None)) as store:
             del sig
             index.drop_signatures()
@@ -451,10 +451,11 @@ class Dedup(Stage):
         counts[2] += len(codes)
         return codes
 
-    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
-        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy)."""
+    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None, band: int | None) -> np.ndarray:
+        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy), of
+        every band or of band ``band``."""
         return generic_bands(sig if rows is None else sig[rows], self._generic,
-                             int(self.opts["bands"]), int(self.opts["seed"]))
+                             int(self.opts["bands"]), int(self.opts["seed"]), band)
 
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
         """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
@@ -466,14 +467,16 @@ class Dedup(Stage):
         return generic_shingles(sample, share=share)
 
     @staticmethod
-    def _as_last_run(group: list[str], old: set[str], last: Any, last_sources: dict[str, str],
-                     by_id: dict[str, Member]) -> bool:
-        """Whether a cluster is the last run's and reads as it did: no new member, every member
-        with a stored result, and (in a cluster of several, whose details name sources) every
-        member still represented by the same source path."""
-        if any(k not in old or k not in last for k in group):
-            return False
-        return len(group) == 1 or all(last_sources.get(k) == by_id[k].source for k in group)
+    def _changed_clusters(uf: UnionFind, ids: list[str], old: set[str], last: Any,
+                          last_sources: dict[str, str], by_id: dict[str, Member]) -> list[list[str]]:
+        """The clusters (``uf``'s sets, as ``UnionFind.groups`` gives them) that may not be the
+        last run's as it wrote them: those holding a new member, a member without a stored
+        result (``last``), or a member of a cluster of several (whose details name sources)
+        no longer represented by the source path it had (``last_sources``). The others are the
+        last run's clusters: the stored links are reused, and every new link has a new member."""
+        changed = [k for k in ids if k not in old or k not in last]
+        changed += [k for k, source in last_sources.items() if k in by_id and by_id[k].source != source]
+        return uf.groups_of(changed)
 
     def _cluster_results(self, order: list[str], kept: list[str],
                          dropped: dict[str, tuple[str, float, str]], facts: dict[str, _Facts],
@@ -631,6 +634,13 @@ def _choose_searched(block: list[tuple[list[str], list[str], dict[str, tuple]]],
                 chosen.append(k)
         searched.extend(chosen)
         extra.extend(k for k in chosen if k != members[0])
+
+
+def _first_of_each(ids: list[str], values: list[str]) -> list[str]:
+    """For each of ``ids`` (sorted), the first id with its value (``values[i]`` is that of
+    ``ids[i]``): the exact step's links and a member's content representative."""
+    first: dict[str, str] = {}
+    return [first.setdefault(v, k) for k, v in zip(ids, values)]
 
 
 def content_numbers(keys: list[str], content_rep: dict[str, str]) -> np.ndarray:

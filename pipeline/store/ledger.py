@@ -521,14 +521,20 @@ class StoredValues:
         self.db, self.key, self.order = db, (stage, fingerprint), order
         self._held: dict[str, str] = {}
         self._served = SEQUENTIAL
-        self._keys: dict[str, bool] = {}
+        self._keys: dict[str, bool | int] = {}  # name -> found by the scan, or reads before it
 
     def may_have(self, name: str) -> bool:
         """False when no stored text of the stage has the key ``name`` (``"name":`` appears in
-        none of them: one scan of the stage's rows, remembered). Speed: a reader looking for a
-        value another stage sets (the split's ``augment``) skips this stage's texts."""
-        found = self._keys.get(name)
-        if found is None:
+        none of them: one scan of the stage's rows, remembered), asked from the
+        ``SCAN_AFTER``-th time on; True before (the reader reads the text). Speed: a reader
+        looking for a value another stage sets in every content (the split's ``augment`` of a
+        full run) skips this stage's texts, and one looking in a few (a rerun's new members)
+        does not scan a hundred thousand of them."""
+        found = self._keys.get(name, 0)
+        if type(found) is int:
+            if found < SCAN_AFTER:
+                self._keys[name] = found + 1
+                return True
             found = self._keys[name] = self.db.execute(
                 "SELECT 1 FROM results WHERE stage=? AND fingerprint=? AND instr(vals, ?) > 0 LIMIT 1",
                 (*self.key, f'"{name}":')).fetchone() is not None
@@ -553,7 +559,7 @@ class StoredValues:
                     raise LedgerError(f"the stored values of {self.key[0]} for content {sha} are no "
                                       "longer in the state database (another process changed it "
                                       "during the run?); rerun", file=path)
-                t = row[0]
+                return row[0]  # a read past the held chunk: it served no read (``SEQUENTIAL``)
         self._served += 1
         return t
 
@@ -570,8 +576,14 @@ class StoredValues:
 
 
 #: Reads a held chunk of values must have served for a miss to read the next chunk (fewer:
-#: the reader jumps around, and a miss reads one row).
+#: the reader jumps around, and a miss reads one row; such rows count for no chunk, so a
+#: reader of scattered contents, as the split reading new members' values, reads no more chunks).
 SEQUENTIAL = 16
+
+
+#: Reads of a key in one stage's stored values before ``StoredValues.may_have`` scans them for
+#: it (a scan reads every text of the stage: worth it for a reader of many contents only).
+SCAN_AFTER = 2000
 
 
 #: Keys per query when deferred arrays are read in bulk (SQLite allows 999 parameters in old builds).
