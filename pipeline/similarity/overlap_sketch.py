@@ -22,7 +22,7 @@ from typing import Any, Callable
 import numpy as np
 
 from ..analysis.shingles import LEAD_LIMIT, ShingleSpec
-from .sets import LEAD_CONTAINED, MIN_LEAD, MIN_SIZE_RATIO, measure_of_counts
+from .sets import LEAD_CONTAINED, MIN_LEAD, MIN_SIZE_RATIO, drop_generic, measure_of_counts
 
 
 #: Bits of each set's bitmap: 512 bytes a file in some pair while the pairs are bounded.
@@ -45,11 +45,9 @@ class Sketches:
     lost_rest: np.ndarray
 
 
-def sketch_sets(sets: list[np.ndarray], bits: int = SKETCH_BITS, generic: np.ndarray | None = None) -> Sketches:
-    """The sketches of sorted unique uint64 shingle sets (``bits``: a power of two, >= 128),
-    without the ``generic`` shingles (sorted unique, as ``sets.drop_generic`` leaves them
-    out). Speed: the sets are handled as one array (no array made per set) and the bits set in
-    one boolean array packed into the words."""
+def sketch_sets(sets: list[np.ndarray], bits: int = SKETCH_BITS) -> Sketches:
+    """The sketches of sorted unique uint64 shingle sets (``bits``: a power of two, >= 128), as
+    given (leave generic shingles out first: ``sets.drop_generic``)."""
     if bits < 128 or bits & (bits - 1):
         raise ValueError(f"bits ({bits}) must be a power of two of at least 128")
     n, words, half = len(sets), bits // 64, bits // 2
@@ -59,17 +57,9 @@ def sketch_sets(sets: list[np.ndarray], bits: int = SKETCH_BITS, generic: np.nda
     if n and size.sum():
         flat = np.concatenate([np.asarray(x, dtype=np.uint64) for x in sets])
         row = np.repeat(np.arange(n), size)
-        if generic is not None and len(generic):
-            pos = np.minimum(np.searchsorted(generic, flat), len(generic) - 1)
-            keep = generic[pos] != flat
-            flat, row = flat[keep], row[keep]
-            size = np.bincount(row, minlength=n).astype(np.int64)
         is_lead = flat < LEAD_LIMIT
         pos = (flat & np.uint64(half - 1)).astype(np.int64) + np.where(is_lead, 0, half)
-        flags = np.zeros((n, bits), dtype=bool)
-        flags[row, pos] = True
-        # bit ``p % 64`` of word ``p // 64`` is flag ``p``: little-endian bytes of little-endian bits
-        out = np.packbits(flags, axis=1, bitorder="little").view("<u8").astype(np.uint64, copy=False)
+        np.bitwise_or.at(out, (row, pos >> 6), np.left_shift(np.uint64(1), (pos & 63).astype(np.uint64)))
         lead = np.bincount(row[is_lead], minlength=n).astype(np.int64)
     set_lead = np.bitwise_count(out[:, :words // 2]).sum(axis=1, dtype=np.int64)
     set_rest = np.bitwise_count(out[:, words // 2:]).sum(axis=1, dtype=np.int64)
@@ -129,7 +119,8 @@ def sketch_rows(keys: list[str], rows: np.ndarray, shingles: Any, *,
     sk = Sketches(np.zeros((m, bits // 64), dtype=np.uint64), *(np.zeros(m, dtype=np.int64) for _ in range(4)))
     for lo in range(0, m, _READ_CHUNK):  # memory: one chunk's sets at a time
         held = [shingles[keys[p]] for p in rows[lo:lo + _READ_CHUNK].tolist()]
-        part = sketch_sets(held if read is None else read(held), bits, generic)
+        part = sketch_sets([drop_generic(np.asarray(x, dtype=np.uint64), generic)
+                            for x in (held if read is None else read(held))], bits)
         del held
         for f in ("bits", "size", "lead", "lost_lead", "lost_rest"):
             getattr(sk, f)[lo:lo + _READ_CHUNK] = getattr(part, f)
