@@ -16,46 +16,15 @@ take the matrix (tests/test_spilled.py checks both against the in-memory forms).
 from __future__ import annotations
 
 import os
-import tempfile
-from typing import IO, Any, Iterable
+from typing import Any, Iterable
 
 import numpy as np
 
-from ..errors import OutputError
+from ..store.spill import read_spilled, spill_file
 
 
 #: Rows written at once when spilling a matrix (memory: a transposed copy of this many rows).
 _WRITE_ROWS = 1 << 13
-
-
-def spill_file(chunks: Iterable[bytes | tuple[int, bytes]], folder: str | os.PathLike | None) -> IO[bytes]:
-    """An unnamed temporary file in ``folder`` (else the system's temporary folder) holding the
-    ``chunks`` one after the other (a chunk ``(offset, data)``: ``data`` at that offset); a
-    failed write (a full disk) is an ``OutputError`` naming the folder, the file is gone with it."""
-    f = tempfile.TemporaryFile(dir=folder)
-    try:
-        for chunk in chunks:
-            if isinstance(chunk, tuple):
-                f.seek(chunk[0])
-                chunk = chunk[1]
-            f.write(chunk)
-        f.flush()
-    except OSError as e:
-        f.close()
-        where = os.fspath(folder) if folder is not None else tempfile.gettempdir()
-        raise OutputError(f"cannot write the signatures to a temporary file ({e.strerror}): the "
-                          "corpus steps move them out of memory there; free space on that disk "
-                          "and rerun (finished work is kept)", file=where) from None
-    return f
-
-
-def read_spilled(f: IO[bytes], size: int, offset: int, what: str) -> bytes:
-    """``size`` bytes at ``offset`` of a spill file (``os.pread``: no shared file position);
-    a short read, which only a damaged file gives, is an ``OSError`` saying ``what`` was read."""
-    data = os.pread(f.fileno(), size, offset)
-    if len(data) != size:
-        raise OSError(f"{f.name}: {what} of spilled signatures read {len(data)} of {size} bytes")
-    return data
 
 
 class SpilledColumns:

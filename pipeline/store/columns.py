@@ -17,7 +17,7 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
-from ..similarity.spilled import read_spilled, spill_file
+from .spill import read_spilled, spill_file
 
 __all__ = ["ArtifactColumns", "ArtifactRow", "ValuesOf", "column_of", "lengths_of", "present", "stacked"]
 
