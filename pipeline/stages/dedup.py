@@ -371,6 +371,10 @@ class Dedup(Stage):
         cluster_sources: dict[str, str] = {}
         groups = uf.groups()
         as_last = [last is not None and self._as_last_run(g, old, last, last_sources, by_id) for g in groups]
+        # memory: one detail text and thresholds dict shared by the results of every member
+        # found alone (read-only), not one of each per member
+        alone = "no duplicate found at threshold %.2f" % threshold
+        alone_limits = {"similarity": threshold}
         for group, same in zip(groups, as_last):
             if len(group) > 1:
                 for k in group:
@@ -381,9 +385,8 @@ class Dedup(Stage):
                 continue
             if len(group) == 1:
                 kept_ids.append(group[0])
-                results[group[0]] = StageResult.keep(
-                    "no duplicate found at threshold %.2f" % threshold, values={
-                        "cluster": group[0], "cluster_size": 1}, thresholds={"similarity": threshold})
+                results[group[0]] = StageResult.keep(alone, values={"cluster": group[0], "cluster_size": 1},
+                                                     thresholds=alone_limits)
                 continue
             order = sorted(group, key=lambda k: (k not in previously_kept, key(facts[k])))
             kept, dropped = choose_kept(order, facts, near)
