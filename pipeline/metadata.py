@@ -15,6 +15,7 @@ from __future__ import annotations
 import csv
 import hashlib
 from dataclasses import dataclass, field
+from collections.abc import Container
 from pathlib import Path
 
 from .errors import ConfigError
@@ -41,7 +42,7 @@ class Metadata:
         """The values of one source (empty when the table has no row for it)."""
         return self.rows.get(source, {})
 
-    def unknown_sources(self, sources: set[str]) -> list[str]:
+    def unknown_sources(self, sources: Container[str]) -> list[str]:
         """Rows naming no input file, in table order."""
         return [s for s in self.rows if s not in sources]
 

@@ -638,16 +638,17 @@ def test_member_artifacts_read_and_write_like_the_dict_they_replace():
 
 
 def test_walk_member_reads_like_the_member_it_replaces():
-    # a walk's member makes its values (the content's trail) when read (memory); a Member
-    # holding the ContentValues of the same content is the reference, field by field
+    # a walk's member makes its values (the content's trail) and its source (the content's
+    # first source) when read (memory); a Member holding the ContentValues of the same content
+    # is the reference, field by field
     from pipeline.engine.walk import ContentValues, MemberArtifacts, Walk, WalkMember
     from pipeline.stages import Member
     from pipeline.store.records import Compactor
     sha = "ab" * 32
-    walk = Walk(stage_names=["dedup"], index={sha: 0}, stages_done=1,
+    walk = Walk(stage_names=["dedup"], index={sha: 0}, stages_done=1, rep={sha: "a.mid"},
                 corpus={"dedup": {sha: Compactor().make(True, None, "", {"cluster": sha[:16], "cluster_size": 2}, {})}})
     arts = MemberArtifacts("split", {"signature": 1})
-    got = WalkMember(sha[:16], sha, "a.mid", walk, arts, {"title": "A"})
+    got = WalkMember(sha[:16], sha, walk, arts, {"title": "A"})
     want = Member(sha[:16], sha, "a.mid", ContentValues(walk, sha), arts, outputs=(), meta={"title": "A"})
     assert isinstance(got, Member)
     for f in ("id", "sha256", "source", "artifacts", "outputs", "meta"):

@@ -149,8 +149,8 @@ def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, mo
 
 
 def test_a_run_records_each_file_as_the_file_system_gives_it(corpus, config, tmp_path):
-    # the run lets go of the sizes and mtimes once fingerprinted (memory, sources.forget_stats):
-    # what it recorded for the next run's check must still be each file's own (os.stat is the
+    # the run holds the sizes and mtimes as columns (memory, sources.SourceTable): what it
+    # recorded for the next run's check must still be each file's own (os.stat is the
     # reference), on the first run and on a run after a change
     out = tmp_path / "out"
     for round_ in range(2):

@@ -1,9 +1,11 @@
-"""Gives the C heap's free memory back to the system between corpus stages (memory).
+"""Gives the C heap's free memory back to the system between the steps of a run (memory).
 
 A corpus stage frees most of what it made (signature copies, sketches, candidate codes) when it
 ends, but glibc's allocator keeps freed heap pages for reuse: the next stage would start with
-them still counted in the process's resident memory and add its own on top. ``malloc_trim``
-returns them. Elsewhere (no glibc) this does nothing.
+them still counted in the process's resident memory and add its own on top (Python's small
+objects live in their own mapped arenas and do not reuse them). ``malloc_trim`` returns them:
+before each corpus stage, after the walk (before the outputs) and after the manifest (before
+the run's states are written). Elsewhere (no glibc) this does nothing.
 """
 from __future__ import annotations
 

@@ -41,8 +41,9 @@ from ..store.lock import OutputLock
 from ..store.records import Compactor, Verdicts
 from . import uptodate
 from .executor import Limits, run_tasks
+from .heap import release_free_memory
 from .plan import Everything, Planner
-from .sources import Discovery, SourceFile, check_folders, discover, fingerprint, forget_stats, source_path
+from .sources import Contents, Discovery, SourceFile, check_folders, discover, fingerprint, source_path
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file, warm_before_fork
 
@@ -130,7 +131,7 @@ class Runner:
             files, notes = discover(cfg.input, cfg.output)
         known = ledger.sources()
         changed = fingerprint(files, known)
-        present = {f.rel for f in files}
+        present = files.paths  # sorted: ``in`` bisects
         gone = [p for p in known if p not in present]
         with ledger.batch():
             ledger.put_sources(changed)
@@ -140,10 +141,8 @@ class Runner:
         # first run, which reuses no row
         touched = _touched_contents(changed, gone, known) if known else None
         del known, changed, gone  # memory: a row per file, written
-        forget_stats(files)  # memory: the fingerprints' integers are not read past here
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
-        del present  # memory: a path per file, made again for the outputs
         if unknown:
             notes = [*notes, f"metadata: {len(unknown)} row(s) of {cfg.metadata.path} name no input "
                              f"file (paths are relative to the input folder, '/'-separated), e.g. "
@@ -158,17 +157,15 @@ class Runner:
             return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)
 
         # distinct contents, each represented by its first source path
-        rep: dict[str, str] = {}
-        for f in files:
-            rep.setdefault(f.sha256, f.rel)
-        root = str(cfg.input.resolve())  # the folder discover searched (SourceFile.root)
+        rep = Contents(files)
+        root = files.root  # the folder discover searched
 
         t = time.perf_counter()
         # memory: per-file values stay in the ledger; a rebuilt row reads them (``_prefetch``)
-        order = list(rep)
+        order = rep.order
         # content index by sha256 for the whole run: the per-file stages' verdict columns
         # (``records.Verdicts``) and the walk read by it
-        self._order, self._index = order, dict(zip(order, range(len(order))))
+        self._order, self._index = order, rep.index
         self._recomputed = ContentMarks(self._index, len(order))
         self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
@@ -228,7 +225,7 @@ class Runner:
         del recorded_out, touched
         timings["outputs"] = time.perf_counter() - t
 
-        tally = manifest.Tally()
+        tally = manifest.Tally(contents=manifest.ContentCount(self._index))
 
         def summary_of() -> dict:
             timings["total"] = time.perf_counter() - t_start
@@ -249,7 +246,7 @@ class Runner:
         page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger, reuse.gone({f.rel for f in files}) if reuse.usable else None,
+            decisions = _DecisionSink(ledger, reuse.gone(files.paths) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
@@ -259,6 +256,7 @@ class Runner:
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
             facts = page.facts() or read_manifest(cfg.output / "manifest.jsonl")
+            release_free_memory()  # memory: what the rows freed is not kept beside the states' texts
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)

@@ -9,23 +9,28 @@ from __future__ import annotations
 import hashlib
 import os
 import stat as stat_mod
+from array import array
+from bisect import bisect_left
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import overload
 
 from ..errors import UsageError
 
 MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
 
 
-@dataclass(slots=True)  # memory: one per file, no __dict__
+@dataclass(slots=True)
 class SourceFile:
-    """One input file: path relative to the input folder (POSIX form) and its fingerprint."""
+    """One input file: path relative to the input folder (POSIX form) and its fingerprint (a
+    row of a ``SourceTable``, made when read)."""
 
     rel: str
-    root: str  # the input folder, one string shared by every file (memory: no path per file)
-    size: int  # size and mtime_ns: 0 once fingerprinted in a run (``forget_stats``)
+    root: str  # the input folder
+    size: int
     mtime_ns: int
-    sha256: str = ""
+    sha256: str = ""  # empty until fingerprinted
 
     @property
     def path(self) -> str:
@@ -46,11 +51,142 @@ class Discovery:
 
     input: Path
     output: Path
-    files: list[SourceFile]
+    files: SourceTable
     notes: list[str]
 
     def matches(self, input_dir: Path, output_dir: Path) -> bool:
         return self.input == input_dir.resolve() and self.output == output_dir.resolve()
+
+
+class SourceTable(Sequence[SourceFile]):
+    """The input files in path order, held as columns by file index: the paths as one UTF-8
+    text with end offsets, sizes and mtimes as integer arrays, the sha256 digests as one
+    byte string of 32 bytes a file. Reading an item makes its ``SourceFile``. Memory: about
+    70 bytes a file where a ``SourceFile`` object with its path and sha256 texts took about
+    270 (DEVELOPERS.md, Memory rounds)."""
+
+    __slots__ = ("root", "_paths", "_ends", "_sizes", "_mtimes", "_digests", "_hashed")
+
+    def __init__(self, root: str, rows: Iterable[tuple[str, int, int]] = ()):
+        """``rows``: (rel, size, mtime_ns) of each file, in path order (``discover``)."""
+        self.root = root  # the input folder, as ``discover`` searched it
+        paths = bytearray()
+        self._ends, self._sizes, self._mtimes = array("q"), array("q"), array("q")
+        for rel, size, mtime_ns in rows:
+            paths += rel.encode("utf-8")
+            self._ends.append(len(paths))
+            self._sizes.append(size)
+            self._mtimes.append(mtime_ns)
+        self._paths = bytes(paths)
+        self._digests = bytearray(32 * len(self._ends))
+        self._hashed = bytearray(len(self._ends))  # 1 once the file's sha256 is set
+
+    def __len__(self) -> int:
+        return len(self._ends)
+
+    @overload
+    def __getitem__(self, i: int) -> SourceFile: ...
+
+    @overload
+    def __getitem__(self, i: slice) -> list[SourceFile]: ...
+
+    def __getitem__(self, i: int | slice) -> SourceFile | list[SourceFile]:
+        if isinstance(i, slice):
+            return [self[j] for j in range(*i.indices(len(self)))]
+        if i < 0:
+            i += len(self)
+        return SourceFile(self.rel(i), self.root, self._sizes[i], self._mtimes[i], self.sha256(i))
+
+    def __iter__(self) -> Iterator[SourceFile]:
+        return (self[i] for i in range(len(self)))
+
+    def rel(self, i: int) -> str:
+        """The path of file ``i``, relative to the input folder (POSIX form)."""
+        if i < 0:
+            i += len(self._ends)
+        return self._paths[self._ends[i - 1] if i else 0:self._ends[i]].decode("utf-8")
+
+    def size(self, i: int) -> int:
+        return self._sizes[i]
+
+    def mtime_ns(self, i: int) -> int:
+        return self._mtimes[i]
+
+    def sha256(self, i: int) -> str:
+        """The sha256 of file ``i`` as hex text, or "" before ``set_sha256``."""
+        return self._digests[32 * i:32 * i + 32].hex() if self._hashed[i] else ""
+
+    def set_sha256(self, i: int, sha256: str) -> None:
+        self._digests[32 * i:32 * i + 32] = bytes.fromhex(sha256)
+        self._hashed[i] = 1
+
+    @property
+    def paths(self) -> "SourcePaths":
+        """The files' paths (``rel``) as a sorted sequence whose ``in`` is a binary search."""
+        return SourcePaths(self)
+
+    def without(self, gone: Iterable[int]) -> None:
+        """Remove the files at the indices ``gone`` (in place)."""
+        drop = set(gone)
+        keep = [i for i in range(len(self)) if i not in drop]
+        shas = [self.sha256(i) for i in keep]
+        rows = [(self.rel(i), self._sizes[i], self._mtimes[i]) for i in keep]
+        SourceTable.__init__(self, self.root, rows)
+        for i, sha in enumerate(shas):
+            if sha:
+                self.set_sha256(i, sha)
+
+
+class SourcePaths(Sequence[str]):
+    """The paths of a ``SourceTable`` in its (sorted) order; ``rel in paths`` bisects."""
+
+    __slots__ = ("_files",)
+
+    def __init__(self, files: SourceTable):
+        self._files = files
+
+    def __len__(self) -> int:
+        return len(self._files)
+
+    def __getitem__(self, i: int) -> str:  # type: ignore[override]
+        return self._files.rel(i)
+
+    def __contains__(self, rel: object) -> bool:
+        i = bisect_left(self, rel)
+        return i < len(self) and self[i] == rel
+
+
+class Contents(Mapping[str, str]):
+    """The run's distinct contents in first-source order: sha256 -> the path (rel) of its
+    first source, read from the ``SourceTable``. ``order`` lists the sha256 texts (one string
+    per content, shared by every map of the run), ``index`` gives each its content index.
+    Memory: no path string nor dict entry per content beside ``index``."""
+
+    __slots__ = ("order", "index", "_first", "_files")
+
+    def __init__(self, files: SourceTable):
+        self._files = files
+        self.order: list[str] = []
+        self.index: dict[str, int] = {}  # sha256 -> content index (position in ``order``)
+        self._first = array("q")  # content index -> its first source's file index
+        for i in range(len(files)):
+            sha = files.sha256(i)
+            if sha not in self.index:
+                self.index[sha] = len(self.order)
+                self.order.append(sha)
+                self._first.append(i)
+
+    def __getitem__(self, sha: str) -> str:
+        return self._files.rel(self._first[self.index[sha]])
+
+    def __contains__(self, sha: object) -> bool:
+        return sha in self.index
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.order)
+
+    def __len__(self) -> int:
+        return len(self.order)
 
 
 def check_folders(input_dir: Path, output_dir: Path) -> None:
@@ -62,7 +198,7 @@ def check_folders(input_dir: Path, output_dir: Path) -> None:
                          "a run rewrites its output folder, so choose an output folder outside the input")
 
 
-def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[SourceFile], list[str]]:
+def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTable, list[str]]:
     """All MIDI files below ``input_dir`` sorted by relative path, plus notes for the user.
 
     Reliability/safety: an output folder that is, or contains, the input folder is refused (the
@@ -74,7 +210,7 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
     if output_dir is not None:
         check_folders(input_dir, output_dir)
     notes: list[str] = []
-    found: list[SourceFile] = []
+    found: list[tuple[str, int, int]] = []  # (rel, size, mtime_ns)
     top = str(input_dir)
     # speed: the superuser reads every file it can stat (one access() call per file less)
     is_root = hasattr(os, "geteuid") and os.geteuid() == 0
@@ -123,41 +259,35 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[list[Sour
             if not (is_root or os.access(full, os.R_OK)):
                 notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
                 continue
-            found.append(SourceFile(rel, top, st.st_size, st.st_mtime_ns))
-    found.sort(key=lambda f: f.rel)
-    return found, notes
+            found.append((rel, st.st_size, st.st_mtime_ns))
+    found.sort(key=lambda row: row[0])
+    return SourceTable(top, found), notes
 
 
-def fingerprint(files: list[SourceFile], known: dict[str, tuple[int, int, str]]) -> list[tuple[str, int, int, str]]:
-    """Fill ``sha256`` of each file; hash only files whose size or mtime changed. Returns new rows.
+def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]]) -> list[tuple[str, int, int, str]]:
+    """Set the sha256 of each file; hash only files whose size or mtime changed. Returns new rows.
 
     A file that vanished or became unreadable since discovery is removed from ``files`` (in
     place), so it is simply not part of this run."""
     changed = []
     gone = []
-    for f in files:
-        rec = known.get(f.rel)
-        if rec is not None and rec[0] == f.size and rec[1] == f.mtime_ns:
-            f.sha256 = rec[2]
+    for i in range(len(files)):
+        rel, size, mtime_ns = files.rel(i), files.size(i), files.mtime_ns(i)
+        rec = known.get(rel)
+        if rec is not None and rec[0] == size and rec[1] == mtime_ns:
+            files.set_sha256(i, rec[2])
             continue
         h = hashlib.sha256()
         try:
-            with open(f.path, "rb") as fh:
+            with open(source_path(files.root, rel), "rb") as fh:
                 for block in iter(lambda: fh.read(1 << 20), b""):
                     h.update(block)
         except OSError:  # reliability: removed or made unreadable during the run
-            gone.append(f)
+            gone.append(i)
             continue
-        f.sha256 = h.hexdigest()
-        changed.append((f.rel, f.size, f.mtime_ns, f.sha256))
+        sha = h.hexdigest()
+        files.set_sha256(i, sha)
+        changed.append((rel, size, mtime_ns, sha))
     if gone:
-        files[:] = [f for f in files if f not in gone]
+        files.without(gone)
     return changed
-
-
-def forget_stats(files: list[SourceFile]) -> None:
-    """Let go of each file's size and mtime once ``fingerprint`` compared and recorded them
-    (they read 0 after): nothing later in a run reads them. Memory: two integer objects a
-    file (about 60 bytes), held through the whole run otherwise."""
-    for f in files:
-        f.size = f.mtime_ns = 0

@@ -163,7 +163,7 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
             if on_discover is not None:
                 on_discover(Discovery(inp.resolve(), out.resolve(), files, notes))
             known = ledger.sources()
-            present = {f.rel for f in files}
+            present = files.paths
             if len(present) != len(known) or any(p not in known for p in present):
                 return None  # files added or removed: the normal run records them
             changed = fingerprint(files, known)

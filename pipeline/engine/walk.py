@@ -40,13 +40,13 @@ class StageWalk:
         self.fresh = fresh
         self.reassign = reassign
 
-    def run(self, ledger: Ledger, rep: dict[str, str], cache: dict, timings: dict,
+    def run(self, ledger: Ledger, rep: Mapping[str, str], cache: dict, timings: dict,
             staged: dict[str, tuple[str, ...]], index: dict[str, int]) -> "Walk":
         """Apply the stages in order to the contents ``rep`` (sha256 -> first source): per-file
         verdicts from ``cache`` (stage -> its ``records.Verdicts``, by content index: ``index``,
         sha256 -> position in ``rep``), corpus stages run here."""
         names = [st.name for st in self.stages]
-        walk = Walk(staged=staged, stage_names=names, metadata=self.metadata, index=index,
+        walk = Walk(staged=staged, stage_names=names, metadata=self.metadata, index=index, rep=rep,
                     verdicts={name: cache[name] for name in names if name in cache})
         # memory: a content's trail is not held as a list of records: its per-file steps are
         # the verdict columns, its corpus steps ``walk.corpus``, its length follows from where
@@ -74,7 +74,7 @@ class StageWalk:
                     if s == kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = (st.name, walk.step(walk.stages_done, sha).reason)
+                        walk.status[sha] = _dropped(st.name, walk.step(walk.stages_done, sha).reason)
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
@@ -88,7 +88,7 @@ class StageWalk:
                     meta = (source_fields(rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
                             if st.uses_source_fields else _NOTHING)
                     # memory: no list of outputs (a walk's member has none) nor empty dict each
-                    members.append(WalkMember(sha[:16], sha, rep[sha], walk,
+                    members.append(WalkMember(sha[:16], sha, walk,
                                               MemberArtifacts(st.name, arts.row(i) if arts is not None else _NOTHING),
                                               meta))
                 del arts
@@ -134,7 +134,7 @@ class StageWalk:
                     if rec.kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = (st.name, rec.reason)
+                        walk.status[sha] = _dropped(st.name, rec.reason)
                 # memory: later stages read this stage's verdicts as the compact records (same
                 # attributes as StageResult), and a dropped file's artifacts are let go
                 upstream[st.name] = compact
@@ -149,10 +149,10 @@ class StageWalk:
             walk.stages_done += 1
             timings[f"stage:{st.name}"] = time.perf_counter() - t
         walk.artifacts.clear()  # memory: signatures and shingles are not needed after the walk
+        release_free_memory()  # memory: the last search's freed heap is not kept beside the outputs
         for sha in alive:
             walk.status[sha] = None
         walk.byte_copy_judge = next((st for st in self.stages if st.judges_byte_copies), None)
-        walk.rep = rep
         return walk
 
     def _source_verdict(self, st: Stage, kept: Any, walk: "Walk", sha: str, source: str) -> Any:
@@ -167,6 +167,16 @@ class StageWalk:
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
 
+
+
+def _dropped(stage: str, reason: str) -> tuple[str, str]:
+    """A dropped content's status, (stage, reason): one tuple per distinct pair, shared
+    (memory: a tuple per dropped content otherwise)."""
+    pair = (stage, reason)
+    return _STATUSES.setdefault(pair, pair)
+
+
+_STATUSES: dict[tuple[str, str], tuple[str, str]] = {}
 
 
 #: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
@@ -217,7 +227,7 @@ class Walk:
     notes: list[str] = field(default_factory=list)
     #: the stage that judges byte-identical copies (``Stage.judges_byte_copies``), if any
     byte_copy_judge: Any = None
-    rep: dict[str, str] = field(default_factory=dict)
+    rep: Mapping[str, str] = field(default_factory=dict)  # sha256 -> first source (``sources.Contents``)
     metadata: Any = None  # the config's metadata table (``pipeline.metadata``)
     stage_names: list[str] = field(default_factory=list)
 
@@ -404,15 +414,20 @@ class MemberArtifacts(MutableMapping):
 
 class WalkMember(Member):
     """A member of a corpus step of the walk: its ``values`` (a ``ContentValues``, read-only)
-    are made on each read, not held (memory: an object a member less; the split reads them
-    once a member, for its augmentation counts)."""
+    and its ``source`` (the content's first source, ``Walk.rep``) are made on each read, not
+    held (memory: an object and a path string a member less; the split reads its values once
+    a member, for its augmentation counts)."""
 
     __slots__ = ("_walk",)
 
-    def __init__(self, id: str, sha256: str, source: str, walk: "Walk", artifacts: MutableMapping,
+    def __init__(self, id: str, sha256: str, walk: "Walk", artifacts: MutableMapping,
                  meta: Mapping[str, Any]):
-        self.id, self.sha256, self.source, self._walk = id, sha256, source, walk
+        self.id, self.sha256, self._walk = id, sha256, walk
         self.artifacts, self.outputs, self.meta = artifacts, (), meta  # no outputs in a walk
+
+    @property
+    def source(self) -> str:  # type: ignore[override]
+        return self._walk.rep[self.sha256]
 
     @property
     def values(self) -> Mapping[str, Any]:  # type: ignore[override]

@@ -3,6 +3,7 @@ split lists (``splits/<part>.txt``: one kept output path, relative to OUTPUT, pe
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
@@ -76,7 +77,8 @@ class Tally:
     dropped_by: dict[tuple[str, str], int] = field(default_factory=dict)
     reached: dict[str, int] = field(default_factory=dict)
     parts: dict[str, int] = field(default_factory=dict)
-    contents: set[str] = field(default_factory=set)
+    #: the distinct contents counted (``add(sha)``, ``len``): a set, or ``ContentCount``
+    contents: Any = field(default_factory=set)
 
     def add(self, row: dict[str, Any], trail: list) -> None:
         """Count a row built in this run."""
@@ -150,6 +152,28 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
         while pending is not None:
             on_unused(pending[1])
             pending = next(old_lines, None)
+
+
+class ContentCount:
+    """The distinct contents among the run's (``index``: sha256 -> content index), counted as
+    one mark a content (memory: a source's sha256 text is made when read, so a set would hold
+    one more text per content)."""
+
+    __slots__ = ("_index", "_marks", "_n")
+
+    def __init__(self, index: Mapping[str, int]):
+        self._index = index
+        self._marks = bytearray(len(index))
+        self._n = 0
+
+    def add(self, sha: str) -> None:
+        i = self._index[sha]
+        if not self._marks[i]:
+            self._marks[i] = 1
+            self._n += 1
+
+    def __len__(self) -> int:
+        return self._n
 
 
 #: Files whose rows are decided before they are built (``manifest_rows``' ``prefetch``).

@@ -19,8 +19,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+from collections.abc import Container
 from pathlib import Path
-from typing import Any, Container, Iterator
+from typing import Any, Iterator
 
 from ..store.codec import thresholds_json
 
@@ -107,7 +108,7 @@ class RowReuse:
                 return old
         return row_digest(f, walk, placed, corpus_positions)
 
-    def gone(self, present: set[str]) -> list[str]:
+    def gone(self, present: Container[str]) -> list[str]:
         """Sources of the last run that this run does not have."""
         return [s for s in self.old if s not in present]
 

@@ -375,15 +375,18 @@ class Dedup(Stage):
             # (which go with it once the stage is done)
             kept_ids = [by_id[k].id for k in prev.get("kept", []) if k not in again]
             cluster_sources = {by_id[k].id: by_id[k].source for k in prev["cluster_sources"] if k not in again}
+        # memory: one detail text and thresholds dict shared by the results of every member
+        # found alone (read-only), not one of each per member
+        alone = "no duplicate found at threshold %.2f" % threshold
+        alone_limits = {"similarity": threshold}
         for group in groups:
             if len(group) > 1:
                 for k in group:
                     cluster_sources[k] = by_id[k].source
             if len(group) == 1:
                 kept_ids.append(group[0])
-                results[group[0]] = StageResult.keep(
-                    "no duplicate found at threshold %.2f" % threshold, values={
-                        "cluster": group[0], "cluster_size": 1}, thresholds={"similarity": threshold})
+                results[group[0]] = StageResult.keep(alone, values={"cluster": group[0], "cluster_size": 1},
+                                                     thresholds=alone_limits)
                 continue
             order = sorted(group, key=lambda k: (k not in previously_kept, key(facts[k])))
             kept, dropped = choose_kept(order, facts, near)

@@ -47,7 +47,7 @@ class Result:
     ``StoredValues``) and ``vals`` the content's index there, and every read of the values reads the
     text from it (memory: the values text is about 0.9 KB per file over the per-file stages)."""
 
-    __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds", "text")
+    __slots__ = ("kept", "reason", "detail", "names", "vals", "thresholds")
 
     def __init__(self, kept: bool, reason: str | None, detail: str, names: tuple[str, ...] | None,
                  vals: tuple | str, thresholds: dict[str, Any]):
@@ -57,7 +57,6 @@ class Result:
         self.names = names
         self.vals = vals
         self.thresholds = thresholds
-        self.text: str | None = vals if names is None else None  # the values as stored JSON
 
     @classmethod
     def keep(cls, detail: str = "", values: Mapping[str, Any] | None = None,
@@ -80,7 +79,7 @@ class Result:
         """Leave the values text in the ledger (its row is committed): read from ``source``
         (content ``index``) whenever needed. A result made in the main process is left as it is."""
         if self.names is None:
-            self.names, self.vals, self.text = source, index, None
+            self.names, self.vals = source, index
 
     def _stored_text(self) -> str | None:
         """The stored JSON text of values not parsed yet (kept or read from the ledger)."""
@@ -97,19 +96,18 @@ class Result:
         if type(self.names) is not tuple:
             values = json.loads(self._stored_text())
             self.names = _shared_names(values)
-            self.vals = _compact_values(values)
-            self.text = None  # memory: one form at a time (``values_json`` makes it again)
+            self.vals = _compact_values(values)  # memory: one form at a time
         return self
 
     def values_json(self) -> str:
-        """The values as the ledger stores them (JSON, sorted keys), made once and kept: the
-        form in which a record read back from the ledger and one computed in this run compare
-        equal (``pipeline.outputs.rowreuse``)."""
-        if self.text is None:
-            if type(self.names) is not tuple:  # deferred: read, not kept (memory)
-                return self._stored_text()
-            self.text = canonical_json(self.values)
-        return self.text
+        """The values as the ledger stores them (JSON, sorted keys): the form in which a record
+        read back from the ledger and one computed in this run compare equal
+        (``pipeline.outputs.rowreuse``). Made on each call for values held parsed (memory:
+        the text of every corpus-stage record, kept, stood beside its values at the run's
+        end; a call takes a few microseconds)."""
+        if type(self.names) is not tuple:  # stored text, or deferred: read, not kept (memory)
+            return self._stored_text()
+        return canonical_json(self.values)
 
     @property
     def values(self) -> dict[str, Any]:
@@ -189,7 +187,12 @@ def _plain(kept: bool, reason: str | None, detail: str, values: Mapping[str, Any
     """A result made by a stage (names shared with every result of the same value names)."""
     values = values or {}
     return Result(bool(kept), reason, detail, _shared_names(values), _compact_values(values),
-                  thresholds or {})
+                  thresholds or _NO_THRESHOLDS)
+
+
+#: The thresholds of a result that names none: one empty dict, shared (read-only; memory: a
+#: corpus stage makes a result per member)
+_NO_THRESHOLDS: dict[str, Any] = {}
 
 
 def _shared_names(values: Mapping[str, Any]) -> tuple[str, ...]:

@@ -1,0 +1,118 @@
+"""The input files as columns (pipeline.engine.sources.SourceTable, Contents).
+
+The references are outside the project: ``os.walk``/``os.stat`` for the paths, sizes and
+mtimes, ``hashlib`` for the digests, Python's sorted order and set membership for the paths.
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+from pathlib import Path
+
+from pipeline.engine.sources import Contents, SourceTable, discover, fingerprint
+
+NAMES = ["a.mid", "b/Café Nörthern.MID", "b/c/zoë ü 1.midi", "b/c/x.kar", "d e/f.rmi", "d e/g.mid",
+         "日本/曲.mid", "z/copy of a.mid", "z/copy 2 of a.mid", "0.mid"]
+
+
+def _tree(root: Path) -> dict[str, bytes]:
+    data = {}
+    for i, name in enumerate(NAMES):
+        p = root / name
+        p.parent.mkdir(parents=True, exist_ok=True)
+        body = b"MThd" + bytes([i]) * (7 * i + 1)
+        if "copy" in name:
+            body = data["a.mid"]  # byte-identical copies of a.mid
+        p.write_bytes(body)
+        data[name] = body
+    (root / "notes.txt").write_text("not a MIDI file")
+    return data
+
+
+def _walked(root: Path) -> dict[str, tuple[int, int, str]]:
+    """rel -> (size, mtime_ns, sha256) of every MIDI file, by os.walk, os.stat and hashlib."""
+    out = {}
+    for dirpath, _dirs, names in os.walk(root):
+        for name in names:
+            if name.lower().endswith((".mid", ".midi", ".kar", ".rmi")):
+                full = os.path.join(dirpath, name)
+                st = os.stat(full)
+                with open(full, "rb") as fh:
+                    sha = hashlib.sha256(fh.read()).hexdigest()
+                out[os.path.relpath(full, root).replace(os.sep, "/")] = (st.st_size, st.st_mtime_ns, sha)
+    return out
+
+
+def test_the_table_reads_back_every_path_size_mtime_and_sha256_as_the_file_system_gives_them(tmp_path):
+    root = tmp_path / "in"
+    _tree(root)
+    files, notes = discover(root)
+    assert notes == []
+    changed = fingerprint(files, {})
+    want = _walked(root)
+    assert len(files) == len(want) == len(NAMES)
+    assert [files.rel(i) for i in range(len(files))] == sorted(want)  # path (code point) order
+    for i, f in enumerate(files):
+        assert (f.size, f.mtime_ns, f.sha256) == want[f.rel]
+        assert (files.size(i), files.mtime_ns(i), files.sha256(i)) == want[f.rel]
+        assert f.root == str(root.resolve()) and Path(f.path) == root.resolve() / f.rel
+    assert sorted((rel, size, mtime, sha) for rel, size, mtime, sha in changed) == \
+        sorted((rel, *v) for rel, v in want.items())
+    assert [f.rel for f in files[2:5]] == sorted(want)[2:5] and files[-1].rel == sorted(want)[-1]
+
+
+def test_known_fingerprints_are_reused_and_a_vanished_file_is_left_out(tmp_path):
+    root = tmp_path / "in"
+    _tree(root)
+    files, _ = discover(root)
+    want = _walked(root)
+    # a recorded sha256 whose size and mtime match is taken as it is (not hashed again)
+    known = {"a.mid": (*want["a.mid"][:2], "f" * 64), "0.mid": (want["0.mid"][0] + 1, want["0.mid"][1], "e" * 64)}
+    (root / "d e" / "f.rmi").unlink()  # gone between discovery and fingerprinting
+    changed = fingerprint(files, known)
+    del want["d e/f.rmi"]
+    assert [f.rel for f in files] == sorted(want)
+    got = {f.rel: (f.size, f.mtime_ns, f.sha256) for f in files}
+    assert got == {**want, "a.mid": (*want["a.mid"][:2], "f" * 64)}
+    assert {row[0] for row in changed} == set(want) - {"a.mid"}
+
+
+def test_paths_membership_and_contents_follow_their_references(tmp_path):
+    root = tmp_path / "in"
+    data = _tree(root)
+    files, _ = discover(root)
+    fingerprint(files, {})
+    rels = sorted(data)
+    paths = files.paths
+    assert list(paths) == rels and len(paths) == len(rels)
+    for probe in rels + ["", "a", "a.mi", "b/", "zz.mid", "b/c/zoë ü 1.mid", "日本"]:
+        assert (probe in paths) == (probe in set(rels))
+    # each distinct content once, in first-source order, with its first source's path
+    contents = Contents(files)
+    first: dict[str, str] = {}
+    for rel in rels:
+        first.setdefault(hashlib.sha256(data[rel]).hexdigest(), rel)
+    assert dict(contents.items()) == first and list(contents) == list(first) == contents.order
+    assert contents.index == {sha: i for i, sha in enumerate(first)}
+    assert len(contents) == len(NAMES) - 2 and "0" * 64 not in contents
+
+
+def test_an_empty_folder_gives_an_empty_table(tmp_path):
+    files, notes = discover(tmp_path)
+    assert len(files) == 0 and list(files) == [] and "a.mid" not in files.paths
+    assert fingerprint(files, {}) == [] and len(Contents(files)) == 0
+    assert len(SourceTable("/x")) == 0
+
+
+def test_the_manifest_counts_distinct_contents_as_a_set_does():
+    # the run counts the distinct contents of its rows by content index (memory); a set of the
+    # hashes is the reference, with repeats and in any order
+    from pipeline.outputs.manifest import ContentCount
+    order = [hashlib.sha256(str(k).encode()).hexdigest() for k in range(40)]
+    count, want = ContentCount(dict(zip(order, range(len(order))))), set()
+    assert len(count) == 0
+    for k in [3, 3, 0, 39, 17, 3, 39, 22, 0]:
+        sha = hashlib.sha256(str(k).encode()).hexdigest()  # a new string, equal to the index's
+        count.add(sha)
+        want.add(sha)
+        assert len(count) == len(want)
