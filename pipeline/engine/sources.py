@@ -61,9 +61,8 @@ class Discovery:
 class SourceTable(Sequence[SourceFile]):
     """The input files in path order, held as columns by file index: the paths as one UTF-8
     text with end offsets, sizes and mtimes as integer arrays, the sha256 digests as one
-    byte string of 32 bytes a file. Reading an item makes its ``SourceFile``. Memory: about
-    70 bytes a file where a ``SourceFile`` object with its path and sha256 texts took about
-    270 (DEVELOPERS.md, Memory rounds)."""
+    byte string of 32 bytes a file. Reading an item makes its ``SourceFile``. Memory: no
+    Python object per file (the figures: DEVELOPERS.md, Memory rounds)."""
 
     __slots__ = ("root", "_paths", "_ends", "_sizes", "_mtimes", "_digests", "_hashed")
 
