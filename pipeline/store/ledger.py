@@ -515,13 +515,14 @@ class StoredValues:
     corpus stages' members, the placed outputs), or only the missed one when the last chunk
     served few reads."""
 
-    __slots__ = ("db", "key", "order", "_held", "_served", "_keys")
+    __slots__ = ("db", "key", "order", "_held", "_served", "_asked", "_found")
 
     def __init__(self, db: sqlite3.Connection, stage: str, fingerprint: str, order: list[str]):
         self.db, self.key, self.order = db, (stage, fingerprint), order
         self._held: dict[str, str] = {}
         self._served = SEQUENTIAL
-        self._keys: dict[str, bool | int] = {}  # name -> found by the scan, or reads before it
+        self._asked: dict[str, int] = {}  # name -> times ``may_have`` was asked before its scan
+        self._found: dict[str, bool] = {}  # name -> what its scan found
 
     def may_have(self, name: str) -> bool:
         """False when no stored text of the stage has the key ``name`` (``"name":`` appears in
@@ -530,19 +531,20 @@ class StoredValues:
         looking for a value another stage sets in every content (the split's ``augment`` of a
         full run) skips this stage's texts, and one looking in a few (a rerun's new members)
         does not scan a hundred thousand of them."""
-        found = self._keys.get(name, 0)
-        if type(found) is int:
-            if found < SCAN_AFTER:
-                self._keys[name] = found + 1
+        found = self._found.get(name)
+        if found is None:
+            asked = self._asked.get(name, 0)
+            if asked < SCAN_AFTER:
+                self._asked[name] = asked + 1
                 return True
-            found = self._keys[name] = self.db.execute(
+            found = self._found[name] = self.db.execute(
                 "SELECT 1 FROM results WHERE stage=? AND fingerprint=? AND instr(vals, ?) > 0 LIMIT 1",
                 (*self.key, f'"{name}":')).fetchone() is not None
         return found
 
     def rows_added(self) -> None:
         """Forget what ``may_have`` found: the stage's rows changed."""
-        self._keys.clear()
+        self._found.clear()
 
     def text(self, index: int) -> str:
         sha = self.order[index]
