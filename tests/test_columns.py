@@ -180,3 +180,27 @@ def test_present_equals_reading_each_row(tmp_path, ragged):
                         if len(rows) > len(pick):
                             want.append(False)
                         assert present(rows, name) == want
+
+
+@pytest.mark.parametrize("texts", [
+    ["%032x" % (k * 7919) for k in range(6)],  # one length, ASCII: held as fixed-width bytes
+    ["ab", "cd", "ef", "gh"],
+    ["ab", "c\0", "de"],  # a NUL: numpy's fixed-width bytes would drop a trailing one
+    ["ab", "é!", "cd"],  # not ASCII
+    ["ab", "abc", "d"],  # lengths differ
+    ["", "", ""],
+])
+def test_text_column_reads_the_texts_it_was_given(texts):
+    # a scalar column of texts reads back each text as the list it was made from holds it
+    # (Python's own str equality and type are the reference), by row and by column
+    from pipeline.store.columns import _ScalarColumn
+    col = _ScalarColumn(len(texts))
+    for i, t in enumerate(texts):
+        col.put(i, t)
+    col.finish()
+    got = [col.get(i) for i in range(len(texts))]
+    assert got == texts and all(type(g) is str for g in got)
+    at = list(range(len(texts)))[::-1]
+    read = col.read(at) if col.values is None else [col.values[i] for i in at]
+    assert read == [texts[i] for i in at] and all(type(g) is str for g in read)
+    assert (col.values is None) == (texts[0] == "%032x" % 0 or texts == ["ab", "cd", "ef", "gh"])

@@ -13,6 +13,7 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from types import MappingProxyType
 import yaml
 
 from pipeline.cli import main
@@ -638,23 +639,40 @@ def test_member_artifacts_read_and_write_like_the_dict_they_replace():
 
 
 def test_walk_member_reads_like_the_member_it_replaces():
-    # a walk's member makes its values (the content's trail) and its source (the content's
-    # first source) when read (memory); a Member holding the ContentValues of the same content
-    # is the reference, field by field
-    from pipeline.engine.walk import ContentValues, MemberArtifacts, Walk, WalkMember
+    # a corpus step's members are made when read, each making its values (the content's
+    # trail), source (the content's first source), artifacts (the stage's own row, then those
+    # of the stages it reads) and source fields when read (memory); a Member holding the same
+    # things is the reference, field by field
+    from pipeline.engine.walk import ContentValues, MemberArtifacts, StepMembers, Walk, WalkMember
+    from pipeline.metadata import Metadata
     from pipeline.stages import Member
+    from pipeline.stages.split import Split
     from pipeline.store.records import Compactor
-    sha = "ab" * 32
-    walk = Walk(stage_names=["dedup"], index={sha: 0}, stages_done=1, rep={sha: "a.mid"},
-                corpus={"dedup": {sha: Compactor().make(True, None, "", {"cluster": sha[:16], "cluster_size": 2}, {})}})
-    arts = MemberArtifacts("split", {"signature": 1})
-    got = WalkMember(sha[:16], sha, walk, arts, {"title": "A"})
-    want = Member(sha[:16], sha, "a.mid", ContentValues(walk, sha), arts, outputs=(), meta={"title": "A"})
-    assert isinstance(got, Member)
+    sha, other = "ab" * 32, "cd" * 32
+    walk = Walk(stage_names=["dedup", "split"], index={sha: 0, other: 1}, stages_done=1,
+                rep={sha: "a/x.mid", other: "b/y.mid"},
+                corpus={"dedup": {s: Compactor().make(True, None, "", {"cluster": s[:16], "cluster_size": 2}, {})
+                                  for s in (sha, other)}},
+                artifacts={"dedup": {sha: {"signature": 1}}})
+    split = Split({"group_fields": ["composer"]})
+    split.borrows = "dedup"
+    meta = Metadata(columns=("composer",), rows={"a/x.mid": {"composer": "Ann"}})
+    members = StepMembers(walk, split, [sha, other], meta)
+    assert len(members) == 2 and [m.id for m in members] == members.ids == [sha[:16], other[:16]]
+    got = members[0]
+    assert isinstance(got, WalkMember) and isinstance(got, Member) and members[-1].sha256 == other
+    arts = MemberArtifacts("split", MappingProxyType({}))
+    arts["dedup"] = {"signature": 1}
+    want = Member(sha[:16], sha, "a/x.mid", ContentValues(walk, sha), arts, outputs=(),
+                  meta={"composer": "Ann", "title": "x"})  # the title from the file name's stem
     for f in ("id", "sha256", "source", "artifacts", "outputs", "meta"):
         assert getattr(got, f) == getattr(want, f)
+    assert dict(members[1].artifacts) == {"split": {}}  # no dedup row for that content
+    assert members[1].meta == {"title": "y"}  # no table row for that source
     assert dict(got.values) == dict(want.values) == {"cluster": sha[:16], "cluster_size": 2}
     assert got.values.get("augment") is None and got.values["cluster_size"] == 2
+    with pytest.raises(IndexError):
+        members[2]
     with pytest.raises(AttributeError):
         got.other = 1  # slots: no per-member dict
 

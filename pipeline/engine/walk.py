@@ -10,7 +10,7 @@ walk writes nothing.
 from __future__ import annotations
 
 import time
-from collections.abc import Iterator, Mapping, MutableMapping
+from collections.abc import Iterator, Mapping, MutableMapping, Sequence
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
 from types import MappingProxyType
@@ -83,21 +83,10 @@ class StageWalk:
                 arts = (ledger.artifact_columns(st.name, st.artifact_fingerprint, alive,
                                                 defer=st.deferred_artifacts)
                         if st.has_prepare() else None)
-                members = []
-                for i, sha in enumerate(alive):
-                    meta = (source_fields(rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
-                            if st.uses_source_fields else _NOTHING)
-                    # memory: no list of outputs (a walk's member has none) nor empty dict each
-                    members.append(WalkMember(sha[:16], sha, walk,
-                                              MemberArtifacts(st.name, arts.row(i) if arts is not None else _NOTHING),
-                                              meta))
+                if arts is not None:
+                    walk.artifacts[st.name] = {sha: arts.row(i) for i, sha in enumerate(alive)}
                 del arts
-                for prev in st.reads_from():  # the earlier corpus stages' artifacts it reads
-                    res = walk.artifacts.get(prev, {})
-                    for m in members:
-                        if m.sha256 in res:
-                            m.artifacts[prev] = res[m.sha256]
-                walk.artifacts[st.name] = {m.sha256: m.artifacts[st.name] for m in members}
+                members = StepMembers(walk, st, alive, self.metadata)
                 saved = ledger.state_for(st.name)
                 last = None  # the last run's results of this stage, when it stored them
                 if not self.fresh and saved.get(CORPUS_RESULTS) == self.chains[st.name]:
@@ -107,7 +96,7 @@ class StageWalk:
                 bar = self.bar(f"{st.name} (corpus)", len(members))
                 release_free_memory()  # memory: what earlier steps freed is not kept beside this one
                 res = st.run_corpus(members, state) if members else {}
-                mids = [m.id for m in members]  # memory: the members' id strings, not new ones
+                mids = members.ids  # memory: the members' id strings, not new ones
                 del members
                 bar.update(len(alive))
                 bar.close()
@@ -412,26 +401,73 @@ class MemberArtifacts(MutableMapping):
         return f"MemberArtifacts({dict(self.items())!r})"
 
 
+class StepMembers(Sequence):
+    """The members of one corpus step of the walk (``Stage.run_corpus``'s ``members``), the
+    contents ``alive`` in order: member ``i`` is made when read (memory: nothing is held per
+    member but its id text; a stage that keeps members holds the ones it keeps)."""
+
+    def __init__(self, walk: "Walk", stage: Stage, alive: list[str], metadata: Metadata | None):
+        self.walk, self.stage, self.alive, self.metadata = walk, stage, alive, metadata
+        self.ids = [sha[:16] for sha in alive]
+        self.reads = tuple(stage.reads_from())  # the earlier corpus stages' artifacts it reads
+
+    def __len__(self) -> int:
+        return len(self.alive)
+
+    def __getitem__(self, i: int) -> "WalkMember":  # type: ignore[override]
+        if not -len(self.alive) <= i < len(self.alive):
+            raise IndexError(i)
+        return WalkMember(self, i % len(self.alive))
+
+    def __iter__(self) -> Iterator["WalkMember"]:
+        return (WalkMember(self, i) for i in range(len(self.alive)))
+
+    def artifacts(self, sha: str) -> MemberArtifacts:
+        """The content's artifacts: the stage's own row first (an empty mapping for a stage
+        without a ``prepare``), then those of the earlier stages it reads that hold one."""
+        walk = self.walk
+        own = walk.artifacts.get(self.stage.name)
+        arts = MemberArtifacts(self.stage.name, own[sha] if own is not None else _NOTHING)
+        for prev in self.reads:
+            res = walk.artifacts.get(prev)
+            if res is not None and sha in res:
+                arts[prev] = res[sha]
+        return arts
+
+    def meta(self, sha: str) -> Mapping[str, Any]:
+        """The source's own fields, for a stage that reads them (else an empty mapping)."""
+        if not self.stage.uses_source_fields:
+            return _NOTHING
+        walk = self.walk
+        return source_fields(walk.rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
+
+
 class WalkMember(Member):
-    """A member of a corpus step of the walk: its ``values`` (a ``ContentValues``, read-only)
-    and its ``source`` (the content's first source, ``Walk.rep``) are made on each read, not
-    held (memory: an object and a path string a member less; the split reads its values once
-    a member, for its augmentation counts)."""
+    """Member ``i`` of a corpus step (``StepMembers``): its ``id`` and ``sha256`` are the
+    step's texts; ``artifacts``, ``meta``, ``values`` (a ``ContentValues``, read-only) and
+    ``source`` (the content's first source, ``Walk.rep``) are made on each read, not held."""
 
-    __slots__ = ("_walk",)
+    __slots__ = ("_members",)
 
-    def __init__(self, id: str, sha256: str, walk: "Walk", artifacts: MutableMapping,
-                 meta: Mapping[str, Any]):
-        self.id, self.sha256, self._walk = id, sha256, walk
-        self.artifacts, self.outputs, self.meta = artifacts, (), meta  # no outputs in a walk
+    def __init__(self, members: StepMembers, i: int):
+        self.id, self.sha256, self._members = members.ids[i], members.alive[i], members
+        self.outputs = ()  # a walk's member has no outputs
 
     @property
     def source(self) -> str:  # type: ignore[override]
-        return self._walk.rep[self.sha256]
+        return self._members.walk.rep[self.sha256]
 
     @property
     def values(self) -> Mapping[str, Any]:  # type: ignore[override]
-        return ContentValues(self._walk, self.sha256)
+        return ContentValues(self._members.walk, self.sha256)
+
+    @property
+    def artifacts(self) -> MutableMapping:  # type: ignore[override]
+        return self._members.artifacts(self.sha256)
+
+    @property
+    def meta(self) -> Mapping[str, Any]:  # type: ignore[override]
+        return self._members.meta(self.sha256)
 
 
 _NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}  # the distinct name tuples, shared

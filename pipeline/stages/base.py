@@ -16,6 +16,7 @@ options-fingerprint) caching correct.
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any, Callable, ClassVar, NamedTuple
 
@@ -178,7 +179,9 @@ class Stage:
         """Whether this corpus stage has per-file ``prepare`` work to run and store."""
         return type(self).prepare is not Stage.prepare
 
-    def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:  # pragma: no cover
+    def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:  # pragma: no cover
+        """Results by member id for the files that reached this stage. ``members`` is read,
+        not changed: the walk's members are made as they are read (``walk.StepMembers``)."""
         raise NotImplementedError
 
     # hooks the engine calls, so that it names no stage ----------------------------------------

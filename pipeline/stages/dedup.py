@@ -28,6 +28,7 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
 from __future__ import annotations
 
 from collections import Counter, defaultdict
+from collections.abc import Sequence
 from typing import Any, Callable
 
 import numpy as np
@@ -224,7 +225,7 @@ class Dedup(Stage):
                 "detail": f"byte-identical copy of {sha[:16]} ({rep_source}); sha256 equal",
                 "values": vals, "thresholds": rep_result.get("thresholds", {})}
 
-    def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
+    def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         """Results for every member. With ``state.flags["previous_results"]`` (the last run's
         results by member id, given by the runner when it stored them), a cluster none of whose
         members is new and none of whose sources changed keeps the last run's results as they

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
+from collections.abc import Sequence
 from pathlib import PurePosixPath
 from typing import Any
 
@@ -250,7 +251,7 @@ class Split(Stage):
         if saved.get("summary"):
             section["stage"] = saved["summary"]
 
-    def run_corpus(self, members: list[Member], state: CorpusState) -> dict[str, StageResult]:
+    def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
         saved = dict(state.previous.get("assignments", {}))
         previous = {} if state.flags.get("reassign") else saved
@@ -300,7 +301,7 @@ class Split(Stage):
                                             signed))
         return results
 
-    def _output_counts(self, members: list[Member], state: CorpusState) -> dict[str, float]:
+    def _output_counts(self, members: Sequence[Member], state: CorpusState) -> dict[str, float]:
         """``output_count`` of every member; a member of the last run is answered from the
         counts it saved (those other than 1), valid when the runner hands over the last run's
         results (``previous_results``: this stage's and every earlier stage's options are
@@ -317,7 +318,7 @@ class Split(Stage):
         state.save("output_counts", {k: v for k, v in sizes.items() if v != 1.0})
         return sizes
 
-    def _links(self, members: list[Member], state: CorpusState,
+    def _links(self, members: Sequence[Member], state: CorpusState,
                previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str], str | None]:
         """Near-duplicate links among members (and links between members of one note
         content, ``same_content_links``), and links to dedup cluster-mates that left the
@@ -409,7 +410,7 @@ class Split(Stage):
         state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
         return links
 
-    def _forced(self, members: list[Member]) -> list[list[str]]:
+    def _forced(self, members: Sequence[Member]) -> list[list[str]]:
         forced: list[list[str]] = []
         by_folder = self.opts["group_by_folder"]
         if by_folder:
@@ -418,9 +419,11 @@ class Split(Stage):
         fields = list(self.opts["group_fields"])
         if self.opts["group_by_title"] and "title" not in fields:
             fields.insert(0, "title")
+        if fields:
+            metas = [m.meta for m in members]  # made on each read
         for f in fields:  # a source's own fields (title, metadata columns) first
-            forced += group_by_key({m.id: normalize_text(m.meta[f] if f in m.meta else m.values.get(f))
-                                    for m in members})
+            forced += group_by_key({m.id: normalize_text(meta[f] if f in meta else m.values.get(f))
+                                    for m, meta in zip(members, metas)})
         return forced
 
 

@@ -221,7 +221,8 @@ class _DeferredColumn:
 
 class _ScalarColumn:
     """JSON scalars of one name: as an int64 or float64 column when every file has one of that
-    one type, else as a list."""
+    one type, as a column of fixed-width bytes when every file has an ASCII text of one length
+    (dedup's content hash: 32 bytes a file where a str object took 81), else as a list."""
 
     __slots__ = ("values", "column", "kind")
 
@@ -243,7 +244,9 @@ class _ScalarColumn:
             self.column = np.array(vals, dtype=np.int64)
         elif kind is float:
             self.column = np.array(vals, dtype=np.float64)
-        else:  # texts stay str objects: a reader (dedup's content hash) would make one per read
+        elif kind is str and _fixed_ascii(vals):
+            self.column = np.array(vals, dtype=f"S{len(vals[0])}")
+        else:
             return
         self.kind, self.values = kind, None
 
@@ -251,10 +254,22 @@ class _ScalarColumn:
         if self.values is not None:
             return self.values[i]
         v = self.column[i]
-        return self.kind(v)
+        return v.decode("ascii") if self.kind is str else self.kind(v)
+
+    def read(self, at: list[int]) -> list:
+        """The values of rows ``at`` as Python objects (a column held as an array)."""
+        picked = self.column[at]
+        return picked.astype(str).tolist() if self.kind is str else picked.tolist()
 
     def holds(self, i: int) -> bool:
         return self.values is None or self.values[i] is not _MISSING
+
+
+def _fixed_ascii(texts: list[str]) -> bool:
+    """Every text non-empty, ASCII, of one length and without a NUL (numpy's fixed-width
+    bytes drop trailing NULs)."""
+    n = len(texts[0])
+    return n > 0 and all(len(t) == n and t.isascii() and "\x00" not in t for t in texts)
 
 
 class ArtifactColumns:
@@ -399,7 +414,7 @@ def column_of(rows: list[Mapping], name: str) -> list:
     if found is not None and type(found[0]) is _ScalarColumn:
         col, at = found
         if col.values is None:
-            return col.column[at].tolist()  # Python ints or floats, as row reads give
+            return col.read(at)  # Python ints, floats or texts, as row reads give
         out = [col.values[i] for i in at]
         if all(v is not _MISSING for v in out):
             return out
