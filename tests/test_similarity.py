@@ -394,7 +394,7 @@ def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():
     # test_numpy_minhash_equals_datasketch_digest); a band is generic when each of its values
     # is such a value of a generic shingle (the first half under the lead's permutations or,
     # lead too short, the whole set's)
-    from pipeline.similarity.lsh import LSHIndex, generic_bands
+    from pipeline.similarity.lsh import GenericBands, LSHIndex, generic_bands
     from pipeline.similarity.minhash import minhash
     rng = np.random.default_rng(11)
     generic = np.unique(rng.integers(0, 2**63, 40, dtype=np.uint64))
@@ -415,7 +415,8 @@ def test_generic_bands_are_bands_of_generic_values_and_pair_nothing():
     assert np.array_equal(got, want) and got[:4].sum() > 20
     rows = np.array([0, 2, 5])
     for band in (0, 17, 63):  # one band of some rows (a rerun's marks)
-        assert np.array_equal(generic_bands(sig[rows], generic, 64, 1, band), want[rows, band])
+        assert np.array_equal(GenericBands(lambda: sig, generic, 64, 1).band(rows, band), want[rows, band])
+    assert np.array_equal(GenericBands(lambda: sig, generic, 64, 1).every(), want)
     index = LSHIndex(128, 64)
     index.extend([f"k{r}" for r in range(len(sets))], sig)
     pairs = set(index.candidate_codes().tolist())
@@ -590,11 +591,16 @@ def test_rerun_candidates_with_marks_of_paired_rows_only_equal_brute_force(seed)
     index.extend([f"k{r:03d}" for r in range(n)], sig)
     asked: list[tuple] = []
 
-    def skip(rows, band):
-        asked.append((rows, band))
-        return marks[rows, band]
+    class Marks:  # lsh.BandMarks over the marks above, noting what was asked
+        def every(self):
+            asked.append((None, None))
+            return marks
 
-    got = index.candidate_codes(new, skip=skip)
+        def band(self, rows, band):
+            asked.append((rows, band))
+            return marks[rows, band]
+
+    got = index.candidate_codes(new, skip=Marks())
     rows = num_perm // bands
     want = set()
     for i in range(n):

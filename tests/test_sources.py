@@ -77,6 +77,19 @@ def test_known_fingerprints_are_reused_and_a_vanished_file_is_left_out(tmp_path)
     assert {row[0] for row in changed} == set(want) - {"a.mid"}
 
 
+def test_without_leaves_the_other_rows_as_they_were():
+    # Reference: the same rows as a list of tuples, the removed indices left out
+    rows = [(f"d/{k:02d}é.mid", 100 + k, 10**18 + k) for k in range(7)]
+    table = SourceTable("/in", rows)
+    shas = {k: "%064x" % (k * 977) for k in (0, 2, 3, 6)}  # 1, 4 and 5 not hashed
+    for k, sha in shas.items():
+        table.set_sha256(k, sha)
+    table.without([0, 4, 6])
+    want = [(*rows[k], shas.get(k, "")) for k in (1, 2, 3, 5)]
+    assert [(f.rel, f.size, f.mtime_ns, f.sha256) for f in table] == want
+    assert list(table.paths) == [w[0] for w in want]
+
+
 def test_paths_membership_and_contents_follow_their_references(tmp_path):
     root = tmp_path / "in"
     data = _tree(root)

@@ -128,12 +128,15 @@ class SourceTable(Sequence[SourceFile]):
         """Remove the files at the indices ``gone`` (in place)."""
         drop = set(gone)
         keep = [i for i in range(len(self)) if i not in drop]
-        shas = [self.sha256(i) for i in keep]
-        rows = [(self.rel(i), self._sizes[i], self._mtimes[i]) for i in keep]
-        SourceTable.__init__(self, self.root, rows)
-        for i, sha in enumerate(shas):
-            if sha:
-                self.set_sha256(i, sha)
+        paths, ends = bytearray(), array("q")
+        for i in keep:
+            paths += self._paths[self._ends[i - 1] if i else 0:self._ends[i]]
+            ends.append(len(paths))
+        self._paths, self._ends = bytes(paths), ends
+        self._sizes = array("q", (self._sizes[i] for i in keep))
+        self._mtimes = array("q", (self._mtimes[i] for i in keep))
+        self._digests = bytearray(b"".join(self._digests[32 * i:32 * i + 32] for i in keep))
+        self._hashed = bytearray(self._hashed[i] for i in keep)
 
 
 class SourcePaths(Sequence[str]):

@@ -74,7 +74,7 @@ class StageWalk:
                     if s == kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = _dropped(st.name, walk.step(walk.stages_done, sha).reason)
+                        walk.mark_dropped(sha, st.name, walk.step(walk.stages_done, sha).reason)
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
@@ -123,7 +123,7 @@ class StageWalk:
                     if rec.kept:
                         survivors.append(sha)
                     else:
-                        walk.status[sha] = _dropped(st.name, rec.reason)
+                        walk.mark_dropped(sha, st.name, rec.reason)
                 # memory: later stages read this stage's verdicts as the compact records (same
                 # attributes as StageResult), and a dropped file's artifacts are let go
                 upstream[st.name] = compact
@@ -155,17 +155,6 @@ class StageWalk:
         values = {**kept.values, **drop.values}
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
-
-
-
-def _dropped(stage: str, reason: str) -> tuple[str, str]:
-    """A dropped content's status, (stage, reason): one tuple per distinct pair, shared
-    (memory: a tuple per dropped content otherwise)."""
-    pair = (stage, reason)
-    return _STATUSES.setdefault(pair, pair)
-
-
-_STATUSES: dict[tuple[str, str], tuple[str, str]] = {}
 
 
 #: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
@@ -219,6 +208,13 @@ class Walk:
     rep: Mapping[str, str] = field(default_factory=dict)  # sha256 -> first source (``sources.Contents``)
     metadata: Any = None  # the config's metadata table (``pipeline.metadata``)
     stage_names: list[str] = field(default_factory=list)
+    #: the distinct (stage, reason) statuses, one tuple each (memory: not a tuple per content)
+    _statuses: dict[tuple[str, str], tuple[str, str]] = field(default_factory=dict, repr=False)
+
+    def mark_dropped(self, sha: str, stage: str, reason: str) -> None:
+        """Record that ``stage`` dropped the content for ``reason`` (its ``status``)."""
+        pair = (stage, reason)
+        self.status[sha] = self._statuses.setdefault(pair, pair)
 
     @property
     def byte_copy_stage(self) -> str | None:

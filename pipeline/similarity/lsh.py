@@ -9,7 +9,7 @@ grouping), ``plausible_pairs`` drops candidates whose signatures cannot reach a 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Callable, Iterator
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Protocol
 
 import numpy as np
 
@@ -102,15 +102,14 @@ class LSHIndex:
         self._sigs.append(sig if live.all() else sig[live])  # memory: no copy when all are live
 
     def candidate_codes(self, new: set[str] | None = None,
-                        skip: np.ndarray | Callable[[np.ndarray | None], np.ndarray] | None = None
-                        ) -> np.ndarray:
+                        skip: "np.ndarray | BandMarks | None" = None) -> np.ndarray:
         """The pairs of ids sharing a band (with ``new``, only pairs with at least one new id)
         as sorted unique codes ``i * n + j`` (``i < j`` index the ids in insertion order): 8
-        bytes a pair instead of a tuple of two strings. ``skip`` (``(len(ids), bands)`` booleans, e.g. ``generic_bands``) marks bands that pair
-        no row: each gets a key of its own row. ``skip`` may be a function ``skip(rows, band)``
-        giving those marks (``rows`` None: all rows; ``band`` None: every band, else that
-        band's ``(len(rows),)`` marks): with few new ids (a rerun) it is asked only for the
-        rows sharing a band's key in the pairs found without it (``unskipped_codes``)."""
+        bytes a pair instead of a tuple of two strings. ``skip`` (``(len(ids), bands)``
+        booleans, e.g. ``generic_bands``) marks bands that pair no row: each gets a key of its
+        own row. Given as ``BandMarks``, the marks are made when asked: with few new ids (a
+        rerun) only for the rows sharing a band's key in the pairs found without them
+        (``unskipped_codes``), else for every row at once."""
         n = len(self.ids)
         if n < 2:
             return np.zeros(0, dtype=np.int64)
@@ -119,11 +118,11 @@ class LSHIndex:
         if not is_new.any():  # every pair would be old-old: nothing to band (cheap reruns)
             return np.zeros(0, dtype=np.int64)
         sig = self.matrix()
-        if callable(skip):
+        if skip is not None and not isinstance(skip, np.ndarray):
             if few_new(is_new):
                 # speed: a rerun marks the generic bands of the rows it pairs, not of every row
-                return unskipped_codes(sig, self.bands, banded_pair_codes(sig, self.bands, is_new), skip)
-            skip = skip(None, None)
+                return unskipped_codes(sig, self.bands, banded_pair_codes(sig, self.bands, is_new), skip.band)
+            skip = skip.every()
         if skip is None or not skip.any():
             return banded_pair_codes(sig, self.bands, is_new)
         if not sig.flags.writeable:  # e.g. one signature as read from the ledger
@@ -442,26 +441,58 @@ def _ordered_new(pieces: list[tuple[np.ndarray, np.ndarray]], is_new: np.ndarray
             yield i.astype(np.int64), j.astype(np.int64)
 
 
-def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int,
-                  band: int | None = None) -> np.ndarray:
+class BandMarks(Protocol):
+    """Marks of the bands that pair no row (``LSHIndex.candidate_codes``), made when asked."""
+
+    def every(self) -> np.ndarray:
+        """``(rows, bands)`` booleans: every band of every row."""
+        ...
+
+    def band(self, rows: np.ndarray, band: int) -> np.ndarray:
+        """``(len(rows),)`` booleans: band ``band`` of the rows ``rows``."""
+        ...
+
+
+def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int) -> np.ndarray:
     """``(rows, bands)`` booleans: the LSH bands of ``signature_of`` signatures whose every value
     is the MinHash value of a ``generic`` shingle under that column's permutation. Such a band
     key is made of generic material only: two unrelated files sharing it are what makes the
     candidates of a large corpus grow with its square, and ``set_similarity`` leaves those
     shingles out anyway. A column of the first half may come from the lead's permutations or
-    (lead too short) the whole set's: a value matching either counts. With ``band``, only
-    that band's ``(rows,)`` booleans (its columns alone are compared)."""
+    (lead too short) the whole set's: a value matching either counts."""
+    n, num_perm = np.shape(sig)
+    return _generic_values(sig, generic, range(num_perm), seed).reshape(n, bands, num_perm // bands).all(axis=2)
+
+
+class GenericBands:
+    """``BandMarks`` of the bands ``generic_bands`` marks, for the signatures ``matrix()``
+    gives (e.g. an index's rows): all at once, or one band of some rows (only its columns
+    compared)."""
+
+    def __init__(self, matrix: Callable[[], np.ndarray], generic: np.ndarray, bands: int, seed: int):
+        self._matrix, self._generic, self._bands, self._seed = matrix, generic, bands, seed
+
+    def every(self) -> np.ndarray:
+        return generic_bands(self._matrix(), self._generic, self._bands, self._seed)
+
+    def band(self, rows: np.ndarray, band: int) -> np.ndarray:
+        sig = self._matrix()
+        r = sig.shape[1] // self._bands
+        return _generic_values(sig[rows], self._generic, range(band * r, (band + 1) * r), self._seed).all(axis=1)
+
+
+def _generic_values(sig: np.ndarray, generic: np.ndarray, columns: range, seed: int) -> np.ndarray:
+    """``(rows, len(columns))`` booleans: the signature values of ``columns`` that are the
+    MinHash value of a ``generic`` shingle (``generic_bands``)."""
     sig = np.asarray(sig, dtype=np.uint32)
     n, num_perm = sig.shape
-    r = num_perm // bands
-    columns = range(num_perm) if band is None else range(band * r, (band + 1) * r)
+    hit = np.zeros((n, len(columns)), dtype=bool)
     if not n or not len(generic):
-        return np.zeros((n, bands) if band is None else n, dtype=bool)
+        return hit
     half = num_perm // 2
     h = _fmix32(fold32(generic))
     a, b = permutations(num_perm, seed)
     la, lb = permutations(half, seed)
-    hit = np.zeros((n, len(columns)), dtype=bool)
     with np.errstate(over="ignore"):
         for at, c in enumerate(columns):
             vals = h * a[c] + b[c]
@@ -470,4 +501,4 @@ def generic_bands(sig: np.ndarray, generic: np.ndarray, bands: int, seed: int,
             vals.sort()
             pos = np.minimum(np.searchsorted(vals, sig[:, c]), len(vals) - 1)
             hit[:, at] = vals[pos] == sig[:, c]
-    return hit.reshape(n, bands, r).all(axis=2) if band is None else hit.all(axis=1)
+    return hit

@@ -36,7 +36,7 @@ import numpy as np
 from ..analysis.shingles import ShingleSpec, duration_beats
 from ..midi.piece import Piece
 from ..similarity.sets import GENERIC_SAMPLE, GENERIC_SHARE, MIN_SIZE_RATIO, generic_shingles
-from ..similarity.lsh import LSHIndex, check_banding, few_new, generic_bands, plausible_pair_codes
+from ..similarity.lsh import GenericBands, LSHIndex, check_banding, few_new, generic_bands, plausible_pair_codes
 from ..similarity.links import UnionFind, verify_codes
 from ..similarity.minhash import signature_of
 from ..similarity.candidates import streamed_pair_codes
@@ -333,7 +333,7 @@ class Dedup(Stage):
             del index
         else:
             codes = index.candidate_codes(new_searched if reusable else None,
-                                          skip=lambda rows, band: self._generic_bands(index.matrix(), rows, band))
+                                          skip=GenericBands(index.matrix, self._generic, *self._banding()))
             codes = self._bounded_candidates(codes, index, sizes, arts, content, counts)
             index_ids = index.ids
             del index  # memory: what it holds goes before the pairs are verified (the peak)
@@ -414,7 +414,7 @@ class Dedup(Stage):
         read back a column at a time."""
         sig = index.matrix()
         n = len(sig)
-        skip = self._generic_bands(sig, None, None)  # memory: its transients go before the sketches come
+        skip = generic_bands(sig, self._generic, *self._banding())  # memory: its transients go before the sketches come
         with SpilledColumns(sig, getattr(signatures, "folder", None)) as store:
             del sig
             index.drop_signatures()
@@ -455,11 +455,9 @@ class Dedup(Stage):
         counts[2] += len(codes)
         return codes
 
-    def _generic_bands(self, sig: np.ndarray, rows: np.ndarray | None, band: int | None) -> np.ndarray:
-        """``generic_bands`` of the signature rows ``rows`` (None: all, without a copy), of
-        every band or of band ``band``."""
-        return generic_bands(sig if rows is None else sig[rows], self._generic,
-                             int(self.opts["bands"]), int(self.opts["seed"]), band)
+    def _banding(self) -> tuple[int, int]:
+        """(bands, seed) of the signatures, as ``generic_bands`` takes them."""
+        return int(self.opts["bands"]), int(self.opts["seed"])
 
     def _generic_shingles(self, indexed: list[str], arts: dict[str, dict[str, Any]]) -> np.ndarray:
         """The generic shingles (``similarity.sets.generic_shingles``) of the compared files, counted
