@@ -677,6 +677,19 @@ def test_walk_member_reads_like_the_member_it_replaces():
         got.other = 1  # slots: no per-member dict
 
 
+def test_later_steps_take_the_ids_of_their_survivors():
+    # a later corpus step's members share the id texts an earlier step made (memory); the ids
+    # looked up by position in the earlier list are the reference, the very same objects
+    from pipeline.engine.walk import _ids_of
+    alive = ["%064x" % k for k in range(9)]
+    ids = [sha[:16] for sha in alive]
+    for survivors in ([], alive[:], alive[1::3], [alive[0], alive[8]]):
+        got = _ids_of(survivors, alive, ids)
+        want = [ids[alive.index(s)] for s in survivors]
+        assert got == want and all(g is w for g, w in zip(got, want))
+    assert _ids_of(alive[2:], alive, None) is None  # no corpus step yet: none made
+
+
 def test_content_marks_answer_membership_like_a_set():
     # the contents a run computed are kept as a byte per content index (memory); a set of the
     # marked hashes is the reference, for run contents and for hashes the run does not have

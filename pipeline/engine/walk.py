@@ -52,6 +52,7 @@ class StageWalk:
         # the verdict columns, its corpus steps ``walk.corpus``, its length follows from where
         # it was dropped; ``Walk.step`` makes a record when a reader asks
         alive = list(rep)  # contents in first-source order (sorted paths)
+        ids: list[str] | None = None  # the member ids of ``alive``, once a corpus step made them
         upstream: dict[str, dict[str, Any]] = {}  # stage -> id -> Result (reads like StageResult)
         for st in self.stages:
             t = time.perf_counter()
@@ -75,6 +76,7 @@ class StageWalk:
                         survivors.append(sha)
                     else:
                         walk.mark_dropped(sha, st.name, walk.step(walk.stages_done, sha).reason)
+                ids = _ids_of(survivors, alive, ids)
                 alive = survivors
             else:
                 # speed, memory: the large per-file arrays a stage compares only in pairs stay
@@ -86,7 +88,7 @@ class StageWalk:
                 if arts is not None:
                     walk.artifacts[st.name] = {sha: arts.row(i) for i, sha in enumerate(alive)}
                 del arts
-                members = StepMembers(walk, st, alive, self.metadata)
+                members = StepMembers(walk, st, alive, self.metadata, ids)
                 saved = ledger.state_for(st.name)
                 last = None  # the last run's results of this stage, when it stored them
                 if not self.fresh and saved.get(CORPUS_RESULTS) == self.chains[st.name]:
@@ -129,11 +131,12 @@ class StageWalk:
                 upstream[st.name] = compact
                 # all rows anew, or (when some were reused) only the new ones
                 walk.corpus_rows[st.name] = (len(new_rows) == len(alive), new_rows)
-                del res, mids
+                del res
                 gone = set(alive) - set(survivors)
                 for arts_of in walk.artifacts.values():
                     for sha in gone:
                         arts_of.pop(sha, None)
+                ids = _ids_of(survivors, alive, mids)
                 alive = survivors
             walk.stages_done += 1
             timings[f"stage:{st.name}"] = time.perf_counter() - t
@@ -155,6 +158,15 @@ class StageWalk:
         values = {**kept.values, **drop.values}
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
+
+
+def _ids_of(survivors: list[str], alive: list[str], ids: list[str] | None) -> list[str] | None:
+    """The ids of ``survivors`` (``alive`` in order, some left out), ``ids`` being those of
+    ``alive`` (memory: a later corpus step's members share the earlier step's id texts)."""
+    if ids is None:
+        return None
+    pairs = zip(alive, ids)
+    return [next(i for sha, i in pairs if sha == kept) for kept in survivors]
 
 
 #: Key of a corpus stage's saved state: the fingerprints (its own and those of the stages
@@ -402,9 +414,11 @@ class StepMembers(Sequence):
     contents ``alive`` in order: member ``i`` is made when read (memory: nothing is held per
     member but its id text; a stage that keeps members holds the ones it keeps)."""
 
-    def __init__(self, walk: "Walk", stage: Stage, alive: list[str], metadata: Metadata | None):
+    def __init__(self, walk: "Walk", stage: Stage, alive: list[str], metadata: Metadata | None,
+                 ids: list[str] | None = None):
+        """``ids``: the members' ids when an earlier step made them (``sha256[:16]``)."""
         self.walk, self.stage, self.alive, self.metadata = walk, stage, alive, metadata
-        self.ids = [sha[:16] for sha in alive]
+        self.ids = [sha[:16] for sha in alive] if ids is None else ids
         self.reads = tuple(stage.reads_from())  # the earlier corpus stages' artifacts it reads
 
     def __len__(self) -> int:
