@@ -677,6 +677,27 @@ def test_walk_member_reads_like_the_member_it_replaces():
         got.other = 1  # slots: no per-member dict
 
 
+def test_content_rows_read_like_the_dict_they_replace():
+    # a corpus stage's rows by content are a row number per content (memory); the dict
+    # {sha: row} they replace is the reference, through reads and contents leaving the walk
+    from pipeline.engine.walk import ContentRows
+
+    class Cols:  # the columns' rows: row k of the stage's contents
+        def row(self, k):
+            return ("row", k)
+
+    order = ["%064x" % k for k in range(8)]
+    index = {sha: i for i, sha in enumerate(order)}
+    alive = order[1::2] + [order[6]]
+    got, want = ContentRows(Cols(), alive, index), {sha: ("row", k) for k, sha in enumerate(alive)}
+    for gone in ([], [order[3]], [order[1], order[6]]):
+        got.discard(gone)
+        for sha in gone:
+            del want[sha]
+        for sha in order + ["f" * 64]:
+            assert got.get(sha) == want.get(sha) and got.get(sha, "none") == want.get(sha, "none")
+
+
 def test_later_steps_take_the_ids_of_their_survivors():
     # a later corpus step's members share the id texts an earlier step made (memory); the ids
     # looked up by position in the earlier list are the reference, the very same objects

@@ -10,7 +10,8 @@ walk writes nothing.
 from __future__ import annotations
 
 import time
-from collections.abc import Iterator, Mapping, MutableMapping, Sequence
+from array import array
+from collections.abc import Iterable, Iterator, Mapping, MutableMapping, Sequence
 from dataclasses import dataclass, field
 from json.encoder import encode_basestring_ascii as _json_string
 from types import MappingProxyType
@@ -86,7 +87,7 @@ class StageWalk:
                                                 defer=st.deferred_artifacts)
                         if st.has_prepare() else None)
                 if arts is not None:
-                    walk.artifacts[st.name] = {sha: arts.row(i) for i, sha in enumerate(alive)}
+                    walk.artifacts[st.name] = ContentRows(arts, alive, index)
                 del arts
                 members = StepMembers(walk, st, alive, self.metadata, ids)
                 saved = ledger.state_for(st.name)
@@ -134,8 +135,7 @@ class StageWalk:
                 del res
                 gone = set(alive) - set(survivors)
                 for arts_of in walk.artifacts.values():
-                    for sha in gone:
-                        arts_of.pop(sha, None)
+                    arts_of.discard(gone)
                 ids = _ids_of(survivors, alive, mids)
                 alive = survivors
             walk.stages_done += 1
@@ -212,7 +212,7 @@ class Walk:
     replaced: dict[tuple[str, str], Any] = field(default_factory=dict)  # (stage, sha) -> record
     corpus: dict[str, dict[str, Any]] = field(default_factory=dict)  # corpus stage -> sha -> record
     stages_done: int = 0  # stages walked so far (a content still alive reached them all)
-    artifacts: dict[str, dict[str, dict]] = field(default_factory=dict)
+    artifacts: dict[str, ContentRows] = field(default_factory=dict)  # corpus stage -> its rows
     states: dict[str, dict] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     #: the stage that judges byte-identical copies (``Stage.judges_byte_copies``), if any
@@ -409,6 +409,30 @@ class MemberArtifacts(MutableMapping):
         return f"MemberArtifacts({dict(self.items())!r})"
 
 
+class ContentRows:
+    """A corpus stage's artifacts by content (``Walk.artifacts[stage]``): sha256 -> the row of
+    the stage's columns (``columns.ArtifactRow``), made when read (memory: a row number per
+    content of the run, no dict entry or row object per member)."""
+
+    def __init__(self, cols: Any, alive: list[str], index: Mapping[str, int]):
+        """``cols``: the stage's ``ArtifactColumns``, row ``k`` for ``alive[k]``; ``index``: the
+        run's content index (sha256 -> position)."""
+        self._cols, self._index = cols, index
+        self._at = array("q", [-1]) * len(index)  # content index -> row, -1 for none
+        for k, sha in enumerate(alive):
+            self._at[index[sha]] = k
+
+    def get(self, sha: str, default: Any = None) -> Any:
+        i = self._index.get(sha)
+        k = -1 if i is None else self._at[i]
+        return default if k < 0 else self._cols.row(k)
+
+    def discard(self, shas: Iterable[str]) -> None:
+        """Forget the rows of ``shas`` (contents that left the walk)."""
+        for sha in shas:
+            self._at[self._index[sha]] = -1
+
+
 class StepMembers(Sequence):
     """The members of one corpus step of the walk (``Stage.run_corpus``'s ``members``), the
     contents ``alive`` in order: member ``i`` is made when read (memory: nothing is held per
@@ -437,11 +461,12 @@ class StepMembers(Sequence):
         without a ``prepare``), then those of the earlier stages it reads that hold one."""
         walk = self.walk
         own = walk.artifacts.get(self.stage.name)
-        arts = MemberArtifacts(self.stage.name, own[sha] if own is not None else _NOTHING)
+        arts = MemberArtifacts(self.stage.name, own.get(sha, _NOTHING) if own is not None else _NOTHING)
         for prev in self.reads:
             res = walk.artifacts.get(prev)
-            if res is not None and sha in res:
-                arts[prev] = res[sha]
+            row = res.get(sha) if res is not None else None
+            if row is not None:
+                arts[prev] = row
         return arts
 
     def meta(self, sha: str) -> Mapping[str, Any]:
