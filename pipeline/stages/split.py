@@ -335,10 +335,11 @@ class Split(Stage):
         rows: dict[str, list] = {}  # source -> the artifacts of the members it signs
         for m in members:
             # the split's own arrays, else those dedup stored (``bind``)
-            own = m.artifacts.get(self.name)
+            arts = m.artifacts  # made on each read (``walk.StepMembers``)
+            own = arts.get(self.name)
             source = self.name if own else (self.borrows or Dedup.name)
             sources.append(source)
-            rows.setdefault(source, []).append(own if own else m.artifacts.get(source))
+            rows.setdefault(source, []).append(own if own else arts.get(source))
         # speed: which members hold a signature and a shingle set, read from the columns'
         # marks (no view or handle made per member); shingles may still be in the ledger
         held = {source: iter(zip(arts, present(arts, "signature"), present(arts, "shingles")))
