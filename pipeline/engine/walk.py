@@ -128,7 +128,7 @@ class StageWalk:
                     else:
                         walk.mark_dropped(sha, st.name, rec.reason)
                 # memory: later stages read this stage's verdicts as the compact records (same
-                # attributes as StageResult), and a dropped file's artifacts are let go
+                # attributes as StageResult), and a dropped file's artifact rows are forgotten
                 upstream[st.name] = compact
                 # all rows anew, or (when some were reused) only the new ones
                 walk.corpus_rows[st.name] = (len(new_rows) == len(alive), new_rows)
