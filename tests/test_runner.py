@@ -673,6 +673,7 @@ def test_walk_member_reads_like_the_member_it_replaces():
     assert got.values.get("augment") is None and got.values["cluster_size"] == 2
     with pytest.raises(IndexError):
         members[2]
+    assert [m.sha256 for m in members[::-1]] == [other, sha] and members[5:] == []  # as a list slices
     with pytest.raises(AttributeError):
         got.other = 1  # slots: no per-member dict
 

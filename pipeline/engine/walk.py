@@ -448,7 +448,9 @@ class StepMembers(Sequence):
     def __len__(self) -> int:
         return len(self.alive)
 
-    def __getitem__(self, i: int) -> "WalkMember":  # type: ignore[override]
+    def __getitem__(self, i: int | slice) -> "WalkMember | list[WalkMember]":  # type: ignore[override]
+        if isinstance(i, slice):
+            return [WalkMember(self, k) for k in range(*i.indices(len(self.alive)))]
         if not -len(self.alive) <= i < len(self.alive):
             raise IndexError(i)
         return WalkMember(self, i % len(self.alive))
