@@ -484,6 +484,9 @@ def test_union_find_groups():
     uf.union(1, 3)
     assert uf.union(3, 4) is False
     assert uf.groups() == [[0], [1, 3, 4], [2], [5]]
+    # the sets holding some keys: those of groups() holding any of them, in the same order
+    for keys in ([], [3], [5, 4], [0, 1, 2, 3, 4, 5], [4, 4, 1]):
+        assert uf.groups_of(keys) == [g for g in uf.groups() if set(g) & set(keys)]
 
 
 def test_banding_errors_name_the_values():

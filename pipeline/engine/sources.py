@@ -103,7 +103,10 @@ class SourceTable(Sequence[SourceFile]):
         """The path of file ``i``, relative to the input folder (POSIX form)."""
         if i < 0:
             i += len(self._ends)
-        return self._paths[self._ends[i - 1] if i else 0:self._ends[i]].decode("utf-8")
+        return self._path_bytes(i).decode("utf-8")
+
+    def _path_bytes(self, i: int) -> bytes:
+        return self._paths[self._ends[i - 1] if i else 0:self._ends[i]]
 
     def size(self, i: int) -> int:
         return self._sizes[i]
@@ -130,7 +133,7 @@ class SourceTable(Sequence[SourceFile]):
         keep = [i for i in range(len(self)) if i not in drop]
         paths, ends = bytearray(), array("q")
         for i in keep:
-            paths += self._paths[self._ends[i - 1] if i else 0:self._ends[i]]
+            paths += self._path_bytes(i)
             ends.append(len(paths))
         self._paths, self._ends = bytes(paths), ends
         self._sizes = array("q", (self._sizes[i] for i in keep))

@@ -50,37 +50,31 @@ class UnionFind:
 
     def groups(self) -> list[list[Any]]:
         """All sets, each sorted, ordered by their smallest member."""
+        return self._sets(None)
+
+    def groups_of(self, keys: Iterable[Any]) -> list[list[Any]]:
+        """The sets holding any of ``keys``, as ``groups`` gives them. Speed: no list is made
+        for the other sets."""
+        roots = {self.find(k) for k in keys}
+        return self._sets(roots) if roots else []
+
+    def _sets(self, roots: set[Any] | None) -> list[list[Any]]:
+        """The sets whose root is in ``roots`` (None: all), each sorted, ordered by their
+        smallest member."""
         out: dict[Any, list[Any]] = {}
         alone: list[list[Any]] = []
-        size = self.size
+        size, find = self.size, self.find
         for k, p in self.parent.items():
             if p == k and size[k] == 1:  # speed: a set of one (most keys of a corpus)
-                alone.append([k])
+                if roots is None or k in roots:
+                    alone.append([k])
             else:
-                out.setdefault(self.find(k), []).append(k)
+                r = find(k)
+                if roots is None or r in roots:
+                    out.setdefault(r, []).append(k)
         alone.extend(sorted(g) for g in out.values())
         alone.sort(key=itemgetter(0))
         return alone
-
-    def groups_of(self, keys: Iterable[Any]) -> list[list[Any]]:
-        """The sets holding any of ``keys``, as ``groups`` gives them (each sorted, ordered by
-        their smallest member). Speed: no list is made for the other sets."""
-        out: dict[Any, list[Any]] = {self.find(k): [] for k in keys}
-        if not out:
-            return []
-        size, find = self.size, self.find
-        for k, p in self.parent.items():
-            if p == k and size[k] == 1:
-                if k in out:
-                    out[k].append(k)
-            else:
-                r = find(k)
-                if r in out:
-                    out[r].append(k)
-        found = [sorted(g) for g in out.values()]
-        found.sort(key=itemgetter(0))
-        return found
-
 
 def verify_codes(keys: list[str], codes: np.ndarray, shingles: Any, threshold: float, *,
                  generic: np.ndarray | None = None, min_size_ratio: float = MIN_SIZE_RATIO,
