@@ -225,7 +225,7 @@ class Runner:
         del recorded_out, touched
         timings["outputs"] = time.perf_counter() - t
 
-        tally = manifest.Tally(contents=manifest.ContentCount(self._index))
+        tally = manifest.Tally(manifest.ContentCount(self._index))
 
         def summary_of() -> dict:
             timings["total"] = time.perf_counter() - t_start

@@ -72,13 +72,12 @@ def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], lis
 class Tally:
     """What the summary counts, gathered while the manifest rows stream past."""
 
+    contents: "ContentCount"  # the distinct contents counted
     files: int = 0
     kept: int = 0
     dropped_by: dict[tuple[str, str], int] = field(default_factory=dict)
     reached: dict[str, int] = field(default_factory=dict)
     parts: dict[str, int] = field(default_factory=dict)
-    #: the distinct contents counted (``add(sha)``, ``len``): a set, or ``ContentCount``
-    contents: Any = field(default_factory=set)
 
     def add(self, row: dict[str, Any], trail: list) -> None:
         """Count a row built in this run."""
