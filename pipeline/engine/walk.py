@@ -362,9 +362,8 @@ class ContentValues(Mapping):
 
 class MemberArtifacts(MutableMapping):
     """A walk member's artifacts (``Member.artifacts``): corpus stage -> its row of artifacts,
-    read and written like the dict ``{stage: row}`` it stands for (memory: the stage names are
-    one tuple shared by the members, the first row held as it is and any others in a tuple;
-    about 50 bytes a member where a dict of one or two entries took about 230)."""
+    read and written like the dict ``{stage: row}`` it stands for, made on each read of it
+    (``StepMembers.artifacts``; the stage names are one tuple shared by the members)."""
 
     __slots__ = ("_names", "_first", "_more")
 
