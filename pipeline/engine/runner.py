@@ -131,7 +131,7 @@ class Runner:
             files, notes = discover(cfg.input, cfg.output)
         known = ledger.sources()
         changed = fingerprint(files, known)
-        present = files.paths  # sorted: ``in`` bisects
+        present = files.path_set()
         gone = [p for p in known if p not in present]
         with ledger.batch():
             ledger.put_sources(changed)
@@ -143,13 +143,16 @@ class Runner:
         del known, changed, gone  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
+        del present  # memory: a path text per file
         if unknown:
             notes = [*notes, f"metadata: {len(unknown)} row(s) of {cfg.metadata.path} name no input "
                              f"file (paths are relative to the input folder, '/'-separated), e.g. "
                              + ", ".join(repr(u) for u in unknown[:3])]
 
-        state_key = uptodate.state_key(files, self._rows_base())
-        qkey = uptodate.quick_key(cfg.raw, files)
+        files_h = uptodate.files_hash(files)
+        state_key = uptodate.state_key(files_h, self._rows_base())
+        qkey = uptodate.quick_key(cfg.raw, files_h)
+        del files_h
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
             uptodate.record_unchanged(ledger, cfg.output, unchanged, run_id, qkey,
@@ -246,7 +249,7 @@ class Runner:
         page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger, reuse.gone(files.paths) if reuse.usable else None,
+            decisions = _DecisionSink(ledger, reuse.gone(files.path_set()) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,

@@ -10,7 +10,6 @@ import hashlib
 import os
 import stat as stat_mod
 from array import array
-from bisect import bisect_left
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -122,10 +121,11 @@ class SourceTable(Sequence[SourceFile]):
         self._digests[32 * i:32 * i + 32] = bytes.fromhex(sha256)
         self._hashed[i] = 1
 
-    @property
-    def paths(self) -> "SourcePaths":
-        """The files' paths (``rel``) as a sorted sequence whose ``in`` is a binary search."""
-        return SourcePaths(self)
+    def path_set(self) -> set[str]:
+        """The files' paths (``rel``) as a set, for membership tests (made on each call: hold
+        it only while it is used). Speed: a rerun tests every known path; a binary search over
+        the table in Python was a few percent of it (DEVELOPERS.md, Rerun rounds)."""
+        return {self.rel(i) for i in range(len(self))}
 
     def without(self, gone: Iterable[int]) -> None:
         """Remove the files at the indices ``gone`` (in place)."""
@@ -140,25 +140,6 @@ class SourceTable(Sequence[SourceFile]):
         self._mtimes = array("q", (self._mtimes[i] for i in keep))
         self._digests = bytearray(b"".join(self._digests[32 * i:32 * i + 32] for i in keep))
         self._hashed = bytearray(self._hashed[i] for i in keep)
-
-
-class SourcePaths(Sequence[str]):
-    """The paths of a ``SourceTable`` in its (sorted) order; ``rel in paths`` bisects."""
-
-    __slots__ = ("_files",)
-
-    def __init__(self, files: SourceTable):
-        self._files = files
-
-    def __len__(self) -> int:
-        return len(self._files)
-
-    def __getitem__(self, i: int) -> str:  # type: ignore[override]
-        return self._files.rel(i)
-
-    def __contains__(self, rel: object) -> bool:
-        i = bisect_left(self, rel)
-        return i < len(self) and self[i] == rel
 
 
 class Contents(Mapping[str, str]):

@@ -30,10 +30,15 @@ from ..outputs.table import RunReport, grouping_off, in_part_order
 NOTE = "nothing changed since the last run: outputs are up to date"
 
 
-def files_digest(h: Any, files: list) -> None:
-    """Feed every (source, sha256) pair into the hash ``h``."""
-    for f in files:
-        h.update(f"{f.rel}\0{f.sha256}\n".encode("utf-8", "surrogateescape"))
+def files_hash(files: Any) -> Any:
+    """A sha256 hash fed with every (source, sha256) pair of ``files`` (a
+    ``sources.SourceTable``), for ``state_key`` and ``quick_key`` to extend (each extends a copy:
+    the files are hashed once a run)."""
+    h = hashlib.sha256()
+    rel, sha256 = files.rel, files.sha256
+    for i in range(len(files)):
+        h.update(f"{rel(i)}\0{sha256(i)}\n".encode("utf-8", "surrogateescape"))
+    return h
 
 
 def rows_base(stages: list, output_fp: str, metadata_digest: str) -> str:
@@ -48,19 +53,19 @@ def rows_base(stages: list, output_fp: str, metadata_digest: str) -> str:
     return h.hexdigest()
 
 
-def state_key(files: list, base: str) -> str:
-    """Hash of everything a run's outputs depend on: every (source, sha256) and ``rows_base``."""
-    h = hashlib.sha256()
-    files_digest(h, files)
+def state_key(files_h: Any, base: str) -> str:
+    """Hash of everything a run's outputs depend on: every (source, sha256) (``files_h``, made
+    by ``files_hash``) and ``rows_base``."""
+    h = files_h.copy()
     h.update(base.encode())
     return h.hexdigest()
 
 
-def quick_key(raw: dict[str, Any], files: list) -> str:
-    """Hash of the sources, the config as written (without ``workers`` and ``executor``, which
-    change where the work runs, not its results) and the version."""
-    h = hashlib.sha256()
-    files_digest(h, files)
+def quick_key(raw: dict[str, Any], files_h: Any) -> str:
+    """Hash of the sources (``files_h``, made by ``files_hash``), the config as written (without
+    ``workers`` and ``executor``, which change where the work runs, not its results) and the
+    version."""
+    h = files_h.copy()
     settings = {k: v for k, v in raw.items() if k not in ("workers", "executor")}
     h.update(json.dumps(settings, sort_keys=True, default=str).encode("utf-8", "surrogateescape"))
     h.update(f"midisift {__version__}".encode())
@@ -163,15 +168,14 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
             if on_discover is not None:
                 on_discover(Discovery(inp.resolve(), out.resolve(), files, notes))
             known = ledger.sources()
-            present = files.paths
-            if len(present) != len(known) or any(p not in known for p in present):
+            if len(files) != len(known) or any(files.rel(i) not in known for i in range(len(files))):
                 return None  # files added or removed: the normal run records them
             changed = fingerprint(files, known)
             seconds_discover = time.perf_counter() - t
             if changed:  # touched or edited files: keep their hashes for whichever run goes on
                 with ledger.batch():
                     ledger.put_sources(changed)
-            quick = quick_key(raw, files)
+            quick = quick_key(raw, files_hash(files))
             summary = last_summary_if(ledger, out, "quick_key", quick)
             if summary is None:
                 return None
