@@ -215,3 +215,85 @@ def test_a_key_no_stored_text_has_is_scanned_for_only_once_many_contents_ask_for
         for sha in order:
             assert got[sha].value("composer", "none") == "none"
         assert sum("instr(" in q for q in queries) == 1
+
+
+def _columns_state(v: Verdicts, order: list[str]) -> list:
+    """Every content's verdict as its record's plain dict (None without one)."""
+    return [None if v.get(sha) is None else v.get(sha).to_json() for sha in order]
+
+
+def test_verdicts_taken_from_the_last_runs_columns_equal_those_read_from_every_result(tmp_path):
+    """A rerun takes its known contents' verdicts from the columns the last run stored
+    (``Ledger.put_run_columns``) and reads the others: the records equal those of reading every
+    stored result, for contents the last run had in another order, contents it did not have
+    (stored by an earlier run, or new), contents without a verdict, and verdicts recorded
+    after. The oracle: ``Ledger.verdicts_for`` without columns."""
+    from pipeline.store.codec import stored_result
+    from pipeline.store.ledger import Ledger
+    drops = [StageResult.drop("too_long", f"{s} s > max_seconds 600", values={"duration_s": s},
+                              thresholds={"max_seconds": 600}).to_json() for s in (700, 900)]
+    kinds = PLAIN + drops
+    last = [f"{i:064x}" for i in range(40)]
+    older = [f"{i:064x}" for i in range(100, 105)]  # stored by a run before the last
+    results = {sha: kinds[i % len(kinds)] for i, sha in enumerate(last + older) if i % 7 != 3}
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        with ledger.batch():
+            ledger.put_results((sha, "filter", "fp", d) for sha, d in results.items())
+            run = ledger.start_run({})
+        index = {sha: i for i, sha in enumerate(last)}
+        cols = ledger.verdicts_for(Verdicts(ledger.values_source("filter", "fp", last), index, Compactor(), len(last)))
+        with ledger.batch():
+            ledger.put_run_columns(run, last, [cols])
+            ledger.finish_run(run, {})
+        # this run: the last run's contents reordered, some gone, the older ones back, new ones
+        now = [*older, *last[::-1][5:], f"{999:064x}"]
+        index = {sha: i for i, sha in enumerate(now)}
+        this = ledger.start_run({})
+        stored = ledger.run_columns(this, index)
+        assert stored is not None and len(stored.missing) == len(older) + 1
+        fast = ledger.verdicts_for(Verdicts(ledger.values_source("filter", "fp", now), index, Compactor(), len(now)),
+                                   stored)
+        slow = ledger.verdicts_for(Verdicts(ledger.values_source("filter", "fp", now), index, Compactor(), len(now)))
+        assert _columns_state(fast, now) == _columns_state(slow, now)
+        assert any(r is None for r in _columns_state(fast, now)) and len(fast) == len(slow)
+        # a verdict recorded afterwards (a new content's, from a worker) reads the same way
+        with ledger.batch():
+            ledger.put_results([(now[-1], "filter", "fp", drops[1])])
+        for v in (fast, slow):
+            v.put_stored(index[now[-1]], stored_result(drops[1]))
+        assert _columns_state(fast, now) == _columns_state(slow, now)
+        assert fast.get(now[-1]).to_json() == drops[1]
+        # another options fingerprint has no columns: every result is read
+        assert stored.verdicts("filter", "other") is None
+
+
+def test_stored_columns_are_not_taken_after_a_stopped_run_or_a_fresh_start(tmp_path):
+    """Columns hold what the results table held when their run completed: a run started since
+    and not completed may have stored results they lack, and ``--fresh`` forgets results;
+    in both cases every result is read."""
+    from pipeline.store.ledger import Ledger
+    order = [f"{i:064x}" for i in range(10)]
+    index = {sha: i for i, sha in enumerate(order)}
+    with Ledger(tmp_path / "state.sqlite") as ledger:
+        with ledger.batch():
+            ledger.put_results((sha, "filter", "fp", PLAIN[0]) for sha in order)
+            run = ledger.start_run({})
+        cols = ledger.verdicts_for(Verdicts(ledger.values_source("filter", "fp", order), index, Compactor(), 10))
+        with ledger.batch():
+            ledger.put_run_columns(run, order, [cols])
+            ledger.finish_run(run, {})
+        assert ledger.run_columns(run + 1, index) is not None  # the next run
+        ledger.start_run({})  # a run stopped before it completed
+        assert ledger.run_columns(ledger.start_run({}), index) is None
+    with Ledger(tmp_path / "state2.sqlite") as ledger:
+        with ledger.batch():
+            run = ledger.start_run({})
+            ledger.put_run_columns(run, order, [])
+            ledger.finish_run(run, {})
+        this = ledger.start_run({})
+        assert ledger.run_columns(this, index) is not None
+        # columns covering less than half of this run's contents are not taken
+        assert ledger.run_columns(this, index | {f"{i:064x}": i - 90 for i in range(100, 111)}) is None
+        with ledger.batch():
+            ledger.clear_cache()
+        assert ledger.run_columns(this, index) is None

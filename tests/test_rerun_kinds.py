@@ -27,6 +27,7 @@ from test_safety import as_version_2
 from pipeline.config import load_config
 from pipeline.engine.runner import Runner
 from pipeline.outputs.table import RunReport
+from pipeline.store.ledger import SCHEMA_VERSION
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"
@@ -54,11 +55,13 @@ def _written(out: Path) -> dict:
 
 
 def _forget_last_run(out: Path) -> None:
-    """Nothing of the last run's rows to reuse: no manifest, no stored corpus-stage results."""
+    """Nothing of the last run's rows to reuse: no manifest, no stored corpus-stage results, no
+    stored verdict columns (every stored result is read)."""
     (out / "manifest.jsonl").unlink()
     db = sqlite3.connect(out / "state.sqlite")
     with db:
         db.execute("DELETE FROM results WHERE fingerprint LIKE '%:last-run'")
+        db.execute("DELETE FROM run_columns")
     db.close()
 
 
@@ -131,6 +134,19 @@ def test_a_rerun_writes_what_rebuilding_it_writes(base, tmp_path, change, option
         assert a[key] == b[key], key
 
 
+def test_a_rerun_takes_its_known_contents_verdicts_from_the_last_runs_columns(base, tmp_path, monkeypatch):
+    # the rerun reads each per-file stage's verdicts of the files it knew from the columns the
+    # last run stored (the rebuild, without them, reads every stored result): the same outputs
+    from pipeline.store.records import Verdicts
+    taken = []
+    real = Verdicts.take_columns
+    monkeypatch.setattr(Verdicts, "take_columns", lambda self, *a: taken.append(self.source.key[0]) or real(self, *a))
+    _, _, a, b = _rerun_and_rebuild(base, tmp_path, _added)
+    assert sorted(taken) == ["filter", "key_meter", "transpose", "validate"]
+    for key in a:
+        assert a[key] == b[key], key
+
+
 def test_a_rerun_over_a_version_2_ledger_migrates_it_and_reuses_its_artifacts(base, tmp_path):
     # version 3 keeps the shingle sets' bytes in their own table; the last version's ledger is
     # migrated when opened: only the new files are decoded, and the outputs are the rebuild's
@@ -138,7 +154,7 @@ def test_a_rerun_over_a_version_2_ledger_migrates_it_and_reuses_its_artifacts(ba
                                              prepare=lambda out: as_version_2(out / "state.sqlite"))
     assert report.computed == len(base[3])
     db = sqlite3.connect(rerun / "state.sqlite")
-    assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
+    assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == (str(SCHEMA_VERSION),)
     assert db.execute("SELECT count(*) FROM artifact_data").fetchone()[0] > 0
     db.close()
     for key in a:

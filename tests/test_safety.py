@@ -17,7 +17,7 @@ import pytest
 from pipeline import cli
 from pipeline.config import load_config, parse_config
 from pipeline.errors import ConfigError, LedgerError, UsageError
-from pipeline.store.ledger import Ledger
+from pipeline.store.ledger import SCHEMA_VERSION, Ledger
 from pipeline.store.lock import LOCK_NAME, OutputLock
 from pipeline.engine.runner import Runner, discover
 from pipeline.tools.synth import main_synth
@@ -390,7 +390,7 @@ def test_a_version_1_ledger_is_migrated_and_reads_one_stage_as_a_range(tmp_path)
         got = led.results_for("filter", "fp")
         arts = led.artifacts_for("dedup", "fp")
         db = led.db
-        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
+        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == (str(SCHEMA_VERSION),)
         assert _key_order(db, "results") == ["stage", "fingerprint", "sha256"]
         assert _key_order(db, "artifacts") == ["stage", "fingerprint", "sha256", "name"]
         for sql in ("SELECT sha256 FROM results WHERE stage=? AND fingerprint=?",
@@ -411,10 +411,10 @@ def test_a_ledger_of_a_newer_version_is_refused(tmp_path):
     with Ledger(path):
         pass
     db = sqlite3.connect(path)
-    db.execute("UPDATE meta SET value='4' WHERE key='schema'")
+    db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION + 1),))
     db.commit()
     db.close()
-    with pytest.raises(LedgerError, match="state schema version 4 is not 3"):
+    with pytest.raises(LedgerError, match=f"state schema version {SCHEMA_VERSION + 1} is not {SCHEMA_VERSION}"):
         Ledger(path)
 
 
@@ -450,7 +450,7 @@ def test_a_version_2_ledger_is_migrated_with_every_artifact_kept(tmp_path):
     db.close()
     with Ledger(path) as led:
         db = led.db
-        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == ("3",)
+        assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == (str(SCHEMA_VERSION),)
         # a signature (128 x 4 bytes) stays in its row, a shingle set of more bytes moves
         moved = {sha for (sha,) in db.execute("SELECT sha256 FROM artifact_data WHERE name='shingles'")}
         assert moved == {sha for sha, it in items.items() if it["shingles"].nbytes > INLINE_BYTES}
@@ -471,3 +471,23 @@ def test_a_version_2_ledger_is_migrated_with_every_artifact_kept(tmp_path):
             assert eager[sha]["notes"] == cols.row(k)["notes"] == want["notes"]
     with Ledger(path) as led:  # opening again changes nothing
         assert led.db.execute("SELECT count(*) FROM artifact_data").fetchone() == (len(moved),)
+
+
+def test_a_version_3_ledger_gets_the_run_columns_table_and_keeps_its_rows(tmp_path):
+    # version 4 adds run_columns only: a version-3 ledger (without it) is opened as it is, the
+    # table created empty, so its first rerun reads every stored result, as version 3 did
+    path = tmp_path / "state.sqlite"
+    with Ledger(path) as led:
+        with led.batch():
+            led.put_results([("%064x" % 1, "filter", "fp", {"kept": True, "reason": None, "detail": "",
+                                                            "values": {}, "thresholds": {}})])
+    db = sqlite3.connect(path)
+    with db:
+        db.execute("DROP TABLE run_columns")
+        db.execute("UPDATE meta SET value='3' WHERE key='schema'")
+    db.close()
+    with Ledger(path) as led:
+        assert led.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == (str(SCHEMA_VERSION),)
+        assert led.db.execute("SELECT count(*) FROM run_columns").fetchone() == (0,)
+        assert list(led.results_for("filter", "fp")) == ["%064x" % 1]
+        assert led.run_columns(1, {"%064x" % 1: 0}) is None

@@ -172,9 +172,13 @@ class Runner:
         self._recomputed = ContentMarks(self._index, len(order))
         self._values = {s.name: ledger.values_source(s.name, s.fingerprint, order)
                         for s in self.stages if s.kind == "file"}
+        # speed: the last run's verdict columns, where they can be trusted (``Ledger.run_columns``)
+        stored = None if self.fresh else ledger.run_columns(run_id, self._index)
         with _bulk_data():
-            cache = {name: ledger.verdicts_for(Verdicts(source, self._index, self._compactor(name), len(order)))
+            cache = {name: ledger.verdicts_for(Verdicts(source, self._index, self._compactor(name), len(order)),
+                                               stored)
                      for name, source in self._values.items()}
+        del stored
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if s.has_prepare()
@@ -263,6 +267,7 @@ class Runner:
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
+            ledger.put_run_columns(run_id, self._order, cache.values())
             for name, (replace, rows) in walk.corpus_rows.items():
                 fp = last_run_fingerprint(self._fps[name])
                 if replace:

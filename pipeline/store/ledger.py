@@ -16,6 +16,10 @@ Tables
              completed run (a rerun reuses the rows whose digest is unchanged)
   outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
   runs       one row per run: when, config, counts, status
+  run_columns name -> columns over the contents of the last completed run, stored for the next
+             one: the contents' sha256 digests in the run's order, and each per-file stage's
+             verdict columns (``records.Verdicts``), so a rerun takes its known contents'
+             verdicts from them instead of reading every stored result
 
 The database runs in WAL mode; every batch of writes is one transaction, so a killed run never
 leaves a half-written result and the next run picks up what was committed.
@@ -40,7 +44,9 @@ if TYPE_CHECKING:
 #: rows; a version-1 database is migrated when opened (``_migrate_from_1``)
 #: 3: the bytes of arrays over ``INLINE_BYTES`` in their own table, ``artifact_data``; a
 #: version-2 database is migrated when opened (``_migrate_from_2``)
-SCHEMA_VERSION = 3
+#: 4: ``run_columns`` (a version-3 database gets the empty table; an older version of the
+#: program must not write results beside columns it does not keep up to date)
+SCHEMA_VERSION = 4
 #: An artifact array of at most this many bytes (a MinHash signature: 128 x 4) is stored in its
 #: artifacts row, a larger one (a shingle set) in ``artifact_data``.
 INLINE_BYTES = 512
@@ -74,6 +80,8 @@ CREATE TABLE IF NOT EXISTS outputs (
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY AUTOINCREMENT, started REAL NOT NULL, finished REAL,
     status TEXT NOT NULL, config TEXT NOT NULL, counts TEXT);
+CREATE TABLE IF NOT EXISTS run_columns (
+    name TEXT PRIMARY KEY, run INTEGER NOT NULL, meta TEXT NOT NULL, data BLOB NOT NULL);
 """.format(**_KEYED_BY_STAGE)
 
 
@@ -99,10 +107,13 @@ class Ledger:
             row = self.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
             if row is None:
                 self.db.execute("INSERT INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
-            elif int(row[0]) in (1, 2):
+            elif int(row[0]) in (1, 2, 3):
                 if int(row[0]) == 1:
                     _migrate_from_1(self.db)
-                _migrate_from_2(self.db)
+                if int(row[0]) <= 2:
+                    _migrate_from_2(self.db)
+                # version 3 -> 4: the run_columns table, created above, is all that is new
+                self.db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
             elif int(row[0]) != SCHEMA_VERSION:
                 raise LedgerError(
                     f"state schema version {row[0]} is not {SCHEMA_VERSION}; rerun with --fresh into a new output folder",
@@ -179,13 +190,24 @@ class Ledger:
                             thresholds_of(thr))
         return out
 
-    def verdicts_for(self, verdicts: Any) -> Any:
+    def verdicts_for(self, verdicts: Any, stored: "RunColumns | None" = None) -> Any:
         """Fill ``verdicts`` (a ``records.Verdicts`` over the contents its ``source`` reads,
-        ``values_source``) with the stage's stored verdicts of those contents, in one query; the
-        values stay in the ledger. Memory: columns, no record per file and stage."""
-        verdicts.fill(self.db.execute(
-            "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?",
-            verdicts.source.key))
+        ``values_source``) with the stage's stored verdicts of those contents; the values stay in
+        the ledger. Memory: columns, no record per file and stage. With ``stored`` (the last
+        run's columns, ``run_columns``) the contents they cover take their verdicts from them
+        and only the others are read (speed: a rerun does not read every stored result)."""
+        key = verdicts.source.key
+        select = "SELECT sha256, kept, reason, detail, thresholds FROM results WHERE stage=? AND fingerprint=?"
+        columns = stored.verdicts(*key) if stored is not None else None
+        if columns is None:
+            verdicts.fill(self.db.execute(select, key))
+            return verdicts
+        verdicts.take_columns(*columns, stored.rows, stored.at)
+        order = verdicts.source.order
+        missing = [order[i] for i in stored.missing.tolist()]
+        for chunk in iter_chunks(missing, FETCH_CHUNK):
+            verdicts.fill(self.db.execute(f"{select} AND sha256 IN ({','.join('?' * len(chunk))})",
+                                          (*key, *chunk)))
         return verdicts
 
     def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
@@ -379,12 +401,38 @@ class Ledger:
         return {"id": row[0], "started": row[1], "finished": row[2], "config": json.loads(row[3]),
                 "counts": json.loads(row[4] or "{}")}
 
+    # -- columns for the next run ---------------------------------------------------------
+    def put_run_columns(self, run: int, order: list[str], verdicts: Iterable[Any]) -> None:
+        """Store, for the next run, this run's contents (``order``, sha256s) and each per-file
+        stage's verdict columns over them (``records.Verdicts``); written in the run's last
+        transaction, so they hold what the results table holds when it commits."""
+        self.db.execute("DELETE FROM run_columns")
+        self.db.execute("INSERT INTO run_columns VALUES (?,?,?,?)",
+                        (_ORDER, run, json.dumps({"n": len(order)}), bytes.fromhex("".join(order))))
+        for v in verdicts:
+            meta, data = v.stored_columns()
+            self.db.execute("INSERT INTO run_columns VALUES (?,?,?,?)",
+                            (_verdicts_name(*v.source.key), run, json.dumps(meta), data))
+
+    def run_columns(self, run: int, index: dict[str, int]) -> "RunColumns | None":
+        """The columns the last completed run stored (``put_run_columns``), mapped onto run
+        ``run``'s contents (``index``: sha256 -> content index); None when a run started since
+        then did not complete (it may have stored results they do not hold) or when they cover
+        less than ``COLUMNS_COVER`` of the contents (reading every stored result is then as
+        quick)."""
+        row = self.db.execute("SELECT run, data FROM run_columns WHERE name=?", (_ORDER,)).fetchone()
+        if row is None or self.runs_unfinished(row[0], run):
+            return None
+        stored = RunColumns(self.db, row[1], index)
+        return stored if len(stored.at) >= COLUMNS_COVER * len(index) else None
+
     def clear_cache(self) -> None:
         """Forget cached per-file results and artifacts (``--fresh``); keeps history of runs."""
         self.db.execute("DELETE FROM results")
         self.db.execute("DELETE FROM artifacts")
         self.db.execute("DELETE FROM artifact_data")
         self.db.execute("DELETE FROM row_digests")
+        self.db.execute("DELETE FROM run_columns")
 
 
 def _migrate_from_1(db: sqlite3.Connection) -> None:
@@ -423,7 +471,7 @@ def _migrate_from_2(db: sqlite3.Connection) -> None:
                    (INLINE_BYTES,))
         db.execute("DROP TABLE artifacts")
         db.execute("ALTER TABLE artifacts_v3 RENAME TO artifacts")
-        db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
+        db.execute("UPDATE meta SET value='3' WHERE key='schema'")
         db.execute("COMMIT")
     except BaseException:
         db.execute("ROLLBACK")
@@ -434,6 +482,42 @@ def _migrate_from_2(db: sqlite3.Connection) -> None:
 #: SQLite's coalesce runs the lookup only then).
 _DATA = ("coalesce(a.data, (SELECT d.data FROM artifact_data AS d WHERE d.stage=a.stage AND "
          "d.fingerprint=a.fingerprint AND d.sha256=a.sha256 AND d.name=a.name))")
+
+
+#: ``run_columns``' row of the contents' order.
+_ORDER = "order"
+#: A rerun takes stored columns only when they cover at least this share of its contents.
+COLUMNS_COVER = 0.5
+
+
+def _verdicts_name(stage: str, fingerprint: str) -> str:
+    """``run_columns``' row of one per-file stage's verdicts under one options fingerprint."""
+    return f"verdicts {stage} {fingerprint}"
+
+
+class RunColumns:
+    """The columns the last completed run stored, as this run reads them: its row ``rows[k]``
+    is this run's content ``at[k]``; ``missing`` lists this run's contents (indices) they do
+    not hold (``Ledger.run_columns``)."""
+
+    def __init__(self, db: sqlite3.Connection, digests: bytes, index: dict[str, int]):
+        import numpy as np
+        n = len(digests) // 32
+        at = np.fromiter((index.get(digests[32 * k:32 * k + 32].hex(), -1) for k in range(n)),
+                         dtype=np.int64, count=n)
+        self.rows = np.flatnonzero(at >= 0)
+        self.at = at[self.rows]
+        held = np.zeros(len(index), dtype=bool)
+        held[self.at] = True
+        self.missing = np.flatnonzero(~held)
+        self.db = db
+
+    def verdicts(self, stage: str, fingerprint: str) -> tuple[dict[str, Any], bytes] | None:
+        """The stored verdict columns of one stage (``records.Verdicts.stored_columns``), or
+        None when the last run stored none under this fingerprint."""
+        row = self.db.execute("SELECT meta, data FROM run_columns WHERE name=?",
+                              (_verdicts_name(stage, fingerprint),)).fetchone()
+        return None if row is None else (json.loads(row[0]), row[1])
 
 
 class _Batch:

@@ -380,6 +380,44 @@ class Verdicts:
             state[i] = kept_b if kept else dropped_b
             reason_col[i], detail_col[i], thr_col[i] = codes
 
+    def stored_columns(self) -> tuple[dict[str, Any], bytes]:
+        """The verdicts as the next run reads them back (``take_columns``): the tables of the
+        distinct reasons, details and thresholds texts, and the state, reason, detail and
+        thresholds columns as little-endian bytes, by content index."""
+        import numpy as np
+        texts = [""] * len(self._thresholds)
+        for (column, value), code in self._codes.items():
+            if column == 2:
+                texts[code] = value
+        meta = {"n": len(self.state), "reasons": self._reasons, "details": self._details,
+                "thresholds": texts}
+        data = b"".join((bytes(self.state), np.asarray(self.reason, dtype="<u2").tobytes(),
+                         np.asarray(self.detail, dtype="<u4").tobytes(),
+                         np.asarray(self.thresholds, dtype="<u4").tobytes()))
+        return meta, data
+
+    def take_columns(self, meta: dict[str, Any], data: bytes, rows: Any, at: Any) -> None:
+        """Take the verdicts of an earlier run's ``stored_columns``: its row ``rows[k]`` for
+        this run's content ``at[k]`` (numpy index arrays). Called before any other verdict is
+        recorded: the stored tables become these columns' tables."""
+        import numpy as np
+        if len(self._details) or len(self._reasons) > 1:
+            raise ValueError("take_columns must come before any other verdict")
+        n = meta["n"]
+        self._reasons = list(meta["reasons"])
+        self._details = list(meta["details"])
+        self._thresholds = [thresholds_from_json(t) for t in meta["thresholds"]]
+        codes: dict[tuple[int, Any], int] = {}
+        for column, table in ((0, self._reasons), (1, self._details), (2, meta["thresholds"])):
+            codes.update(((column, value), code) for code, value in enumerate(table))
+        self._codes = codes
+        # this run's columns, written through numpy views of their buffers
+        for view, dtype, offset in ((np.frombuffer(self.state, dtype=np.uint8), np.uint8, 0),
+                                    (np.frombuffer(self.reason, dtype=np.uint16), "<u2", n),
+                                    (np.frombuffer(self.detail, dtype=np.uint32), "<u4", 3 * n),
+                                    (np.frombuffer(self.thresholds, dtype=np.uint32), "<u4", 7 * n)):
+            view[at] = np.frombuffer(data, dtype=dtype, count=n, offset=offset)[rows]
+
     def put_stored(self, i: int, stored: tuple[int, str | None, str, str, str]) -> None:
         """Record a worker's result in stored form (``codec.stored_result``)."""
         kept, reason, detail, _, thresholds_json = stored
