@@ -82,17 +82,24 @@ def first(tmp_path_factory):
 def _saved_facts_are_the_manifests(out: Path) -> None:
     """The page facts a run saved (a rerun: the last run's, the unused old lines taken back,
     the built rows added) equal those read from its whole manifest (``page.read_manifest``)."""
-    from pipeline.outputs.page import read_manifest
+    from pipeline.outputs.page import DEFAULT_ORDER, read_manifest
     db = sqlite3.connect(out / "state.sqlite")
     try:
         saved = json.loads(db.execute("SELECT value FROM state WHERE stage='_rows' AND key='facts'").fetchone()[0])
     finally:
         db.close()
-    want = json.loads(json.dumps(read_manifest(out / "manifest.jsonl").to_state()))
-    saved["values"] = {f: sorted(v) for f, v in saved["values"].items()}  # a multiset per field
-    want["values"] = {f: sorted(v) for f, v in want["values"].items()}
+    want = json.loads(json.dumps(read_manifest(out / "manifest.jsonl", stages=DEFAULT_ORDER).to_state()))
+    for facts in (saved, want):
+        facts["values"] = {f: sorted(v) for f, v in facts["values"].items()}  # a multiset per field
+        facts["dropped_by"] = sorted(facts["dropped_by"])
     assert saved == want
     assert want["clusters"] and want["group_sizes"]
+    # the summary's figures are those of the manifest's rows
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["counts"]["files"] == want["files"] and summary["counts"]["kept"] == want["kept"]
+    assert {s: v["reached"] for s, v in summary["stages"].items()} == want["reached"]
+    assert sorted([s, r, n] for s, v in summary["stages"].items() for r, n in v["dropped"].items()) == want["dropped_by"]
+    assert {p: n for p, n in summary["split"]["files"].items() if n} == want["parts"]
 
 
 def _forget_last_run(out: Path) -> None:
@@ -323,3 +330,31 @@ def test_rows_are_not_settled_after_a_stopped_run_or_over_an_older_output(first,
         assert (tmp_path / name / "manifest.jsonl").read_bytes() == (rebuild / "manifest.jsonl").read_bytes()
         assert _tables(tmp_path / name) == _tables(rebuild)
         _saved_facts_are_the_manifests(tmp_path / name)
+
+
+def test_facts_saved_without_the_summary_counts_are_counted_from_the_rows(first, tmp_path):
+    # facts saved before they held the summary's counts (files, kept, drops, reached, parts):
+    # the rerun counts every row, reused lines read back, and writes what the rebuild writes
+    corpus, base = first
+
+    def old_facts(out: Path) -> None:
+        db = sqlite3.connect(out / "state.sqlite")
+        with db:
+            (text,) = db.execute("SELECT value FROM state WHERE stage='_rows' AND key='facts'").fetchone()
+            facts = json.loads(text)
+            for key in ("files", "kept", "dropped_by", "reached", "parts"):
+                del facts[key]
+            db.execute("UPDATE state SET value=? WHERE stage='_rows' AND key='facts'", (json.dumps(facts),))
+        db.close()
+
+    _rerun(corpus, base, tmp_path / "old", prepare=old_facts)
+    _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run)
+    a, b = tmp_path / "old", tmp_path / "rebuild"
+    assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
+    summaries = [json.loads((d / "summary.json").read_text()) for d in (a, b)]
+    for s in summaries:
+        s.pop("timings_s"), s.pop("output")
+        for key in ("reused", "computed", "quick_key"):  # the config names each run's own folder
+            s["counts"].pop(key)
+    assert summaries[0] == summaries[1]
+    _saved_facts_are_the_manifests(a)

@@ -116,17 +116,3 @@ def test_an_empty_folder_gives_an_empty_table(tmp_path):
     assert len(files) == 0 and list(files) == [] and files.path_set() == set()
     assert fingerprint(files, {}) == [] and len(Contents(files)) == 0
     assert len(SourceTable("/x")) == 0
-
-
-def test_the_manifest_counts_distinct_contents_as_a_set_does():
-    # the run counts the distinct contents of its rows by content index (memory); a set of the
-    # hashes is the reference, with repeats and in any order
-    from pipeline.outputs.manifest import ContentCount
-    order = [hashlib.sha256(str(k).encode()).hexdigest() for k in range(40)]
-    count, want = ContentCount(dict(zip(order, range(len(order))))), set()
-    assert len(count) == 0
-    for k in [3, 3, 0, 39, 17, 3, 39, 22, 0]:
-        sha = hashlib.sha256(str(k).encode()).hexdigest()  # a new string, equal to the index's
-        count.add(sha)
-        want.add(sha)
-        assert len(count) == len(want)

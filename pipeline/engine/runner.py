@@ -232,11 +232,17 @@ class Runner:
         del recorded_out, touched
         timings["outputs"] = time.perf_counter() - t
 
-        tally = manifest.Tally(manifest.ContentCount(self._index))
+        from ..outputs.page import Facts, RowFacts, read_manifest, write_report  # the run's page
+        names = [s.name for s in self.stages]
+        counted: list[Facts] = []  # the run's facts, once its rows are through
 
         def summary_of() -> dict:
+            # the facts gathered from the rows, or read from the manifest just written when
+            # the last run's could not be completed (``RowFacts.facts``)
+            facts = page.facts() or read_manifest(cfg.output / "manifest.jsonl", stages=names)
+            counted.append(facts)
             timings["total"] = time.perf_counter() - t_start
-            summary = summaries.build_summary(tally, walk, self.stages, timings, computed,
+            summary = summaries.build_summary(facts, len(rep), walk, self.stages, timings, computed,
                                             len(rep) - computed, placed, cfg)
             summary["counts"]["state_key"] = state_key
             summary["counts"]["quick_key"] = qkey
@@ -245,24 +251,23 @@ class Runner:
         # one pass over the files writes the manifest and records the trails for explain, all
         # in the run's last transaction (a run killed before its commit leaves the previous
         # run's decisions in place)
-        from ..outputs.page import RowFacts, read_manifest, write_report  # the run's page
         reuse = RowReuse(ledger, cfg.output, self._rows_base(), self._recomputed, run_id)
         reuse.settle(unsettled)  # speed: a settled row's digest is the last run's, not made again
         del unsettled
         # speed: gathered from the rows as they pass (a reused line from the last run's facts)
-        page = RowFacts(reuse.facts, len(reuse.old)) if reuse.usable else RowFacts()
+        page = RowFacts(names, reuse.facts, len(reuse.old)) if reuse.usable else RowFacts(names)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone(files.path_set()) if reuse.usable else None,
                                       walk.trail_json)
             summary = manifest.write_all(
-                cfg.output, _seen(manifest.manifest_rows(files, walk, placed, tally, decisions.add,
+                cfg.output, _seen(manifest.manifest_rows(files, walk, placed, decisions.add,
                                                         reuse, corpus_positions, self._prefetch,
                                                         page.unused),
                                   page.row),
                 placed, summary_of, summaries.configured_parts(self.stages))
             decisions.flush()
-            facts = page.facts() or read_manifest(cfg.output / "manifest.jsonl")
+            facts = counted[0]
             release_free_memory()  # memory: what the rows freed is not kept beside the states' texts
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
             for name, st in walk.states.items():
@@ -274,9 +279,9 @@ class Runner:
                     ledger.forget_results(name, fp)
                 ledger.put_results((sha, name, fp, walk.corpus_record(name, sha)) for sha in rows)
             ledger.finish_run(run_id, summary["counts"])
-        write_report(cfg.output, summary, [s.name for s in self.stages], cfg.input, facts)
+        write_report(cfg.output, summary, names, cfg.input, facts)
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
-        return RunReport(cfg.output, len(files), tally.kept, tally.dropped_by, timings, computed,
+        return RunReport(cfg.output, len(files), facts.kept, facts.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
                          summary.get("warnings", []),
                          grouping_off=grouping_off(summary["split"].get("stage")))

@@ -3,8 +3,6 @@ split lists (``splits/<part>.txt``: one kept output path, relative to OUTPUT, pe
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator
 
@@ -68,47 +66,16 @@ def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], lis
     return row, trail
 
 
-@dataclass
-class Tally:
-    """What the summary counts, gathered while the manifest rows stream past."""
-
-    contents: "ContentCount"  # the distinct contents counted
-    files: int = 0
-    kept: int = 0
-    dropped_by: dict[tuple[str, str], int] = field(default_factory=dict)
-    reached: dict[str, int] = field(default_factory=dict)
-    parts: dict[str, int] = field(default_factory=dict)
-
-    def add(self, row: dict[str, Any], trail: list) -> None:
-        """Count a row built in this run."""
-        final = None if row["status"] == "kept" else (row["stage"], row["reason"])
-        self.count(row["sha256"], final, row["split"], [step["stage"] for step in trail])
-
-    def count(self, sha: str, final: tuple[str, str] | None, part: str | None,
-              reached: Iterable[str]) -> None:
-        """Count one source: its content, its final (stage, reason) or None when kept, its part
-        and the stages it reached."""
-        self.files += 1
-        self.contents.add(sha)
-        for stage in reached:
-            self.reached[stage] = self.reached.get(stage, 0) + 1
-        if final is None:
-            self.kept += 1
-            self.parts[part] = self.parts.get(part, 0) + 1
-        else:
-            self.dropped_by[final] = self.dropped_by.get(final, 0) + 1
-
-
-def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
+def manifest_rows(files: list, walk: Any, placed: Placed,
                   on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
                   reuse: Any = None, corpus_positions: tuple[int, ...] = (),
                   prefetch: Callable[[list[str]], None] | None = None,
                   on_unused: Callable[[str], None] | None = None) -> Iterator[dict[str, Any] | str]:
-    """Manifest rows in source order (``files`` is sorted by source), one at a time, counted
-    into ``tally``; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it
-    passes (the runner records the decisions in the same pass). With ``reuse`` (a
-    ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line
-    (a str) instead, and ``on_trail`` is not called for it: its trail is already recorded.
+    """Manifest rows in source order (``files`` is sorted by source), one at a time;
+    ``on_trail(file, row, trail, digest)`` sees each built row's trail as it passes (the
+    runner records the decisions in the same pass). With ``reuse`` (a ``rowreuse.RowReuse``) a
+    source whose row digest is unchanged gets its old manifest line (a str) instead, and
+    ``on_trail`` is not called for it: its trail is already recorded.
     ``prefetch(sha256s)`` is told, ``ROWS_AHEAD`` files at a time, which contents' rows are
     about to be built (the runner reads their stored values in a few queries).
     ``on_unused(line)`` sees every line of the old manifest that is not reused (its source is
@@ -135,15 +102,9 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
             prefetch([f.sha256 for f, _, line in ahead if line is None])
         for f, digest, line in ahead:
             if line is not None:
-                final = walk.final(f.rel, f.sha256)
-                part = None
-                if final is None:
-                    part = placed.part_of.get(f.sha256) or walk.value_of(f.sha256, "split") or DEFAULT_PART
-                tally.count(f.sha256, final, part, walk.reached_names(f.rel, f.sha256))
                 yield line
                 continue
             row, trail = manifest_row(f, walk, placed)
-            tally.add(row, trail)
             if on_trail is not None:
                 on_trail(f, row, trail, digest)
             yield row
@@ -151,28 +112,6 @@ def manifest_rows(files: list, walk: Any, placed: Placed, tally: Tally,
         while pending is not None:
             on_unused(pending[1])
             pending = next(old_lines, None)
-
-
-class ContentCount:
-    """The distinct contents among the run's (``index``: sha256 -> content index), counted as
-    one mark a content (memory: a source's sha256 text is made when read, so a set would hold
-    one more text per content)."""
-
-    __slots__ = ("_index", "_marks", "_n")
-
-    def __init__(self, index: Mapping[str, int]):
-        self._index = index
-        self._marks = bytearray(len(index))
-        self._n = 0
-
-    def add(self, sha: str) -> None:
-        i = self._index[sha]
-        if not self._marks[i]:
-            self._marks[i] = 1
-            self._n += 1
-
-    def __len__(self) -> int:
-        return self._n
 
 
 #: Files whose rows are decided before they are built (``manifest_rows``' ``prefetch``).

@@ -146,10 +146,19 @@ def thumbnail(path: Path | None, semitones: int) -> str:
 
 # the page -------------------------------------------------------------------------------------
 class Facts:
-    """What the page shows from the manifest, gathered one row at a time (the rows are not
-    kept: at 100,000 files they would hold about 150 MB)."""
+    """What the summary and the page count from the manifest, gathered one row at a time (the
+    rows are not kept: at 100,000 files they would hold about 150 MB): files, kept, drops by
+    (stage, reason), the stages each row reached (every stage up to the one that dropped it,
+    all for a kept row: ``stages`` in run order), files per part, and the page's histograms,
+    keys, meters, groups and clusters."""
 
-    def __init__(self) -> None:
+    def __init__(self, stages: Iterable[str] = ()) -> None:
+        self.stages = list(stages)
+        self._position = {name: i for i, name in enumerate(self.stages)}
+        self.files = self.kept = 0
+        self.dropped_by: dict[tuple[str, str], int] = {}
+        self.reached: dict[str, int] = {}
+        self.parts: dict[str, int] = {}  # part -> kept files placed in it
         self.values: dict[str, list[float]] = {f: [] for f, _, _ in HISTOGRAMS}
         self.key_before = [0] * 24
         self.key_after = [0] * 24
@@ -170,6 +179,16 @@ class Facts:
         self._count(r, -1)
 
     def _count(self, r: dict[str, Any], sign: int) -> None:
+        self.files += sign
+        if r.get("status") == "kept":
+            self.kept += sign
+            _tally(self.parts, r.get("split"), sign)
+            reached = len(self.stages)
+        else:
+            _tally(self.dropped_by, (r.get("stage"), r.get("reason")), sign)
+            reached = self._position.get(r.get("stage"), -1) + 1
+        for name in self.stages[:reached]:
+            _tally(self.reached, name, sign)
         if r.get("duplicate_of"):
             entry = {k: r.get(k) for k in CLUSTER_FIELDS}
             if sign > 0:
@@ -229,14 +248,20 @@ class Facts:
     def to_state(self) -> dict[str, Any]:
         """The facts as JSON (without the representatives, read from the manifest each time)."""
         self.settle()
-        return {"values": self.values, "key_before": self.key_before, "key_after": self.key_after,
+        return {"files": self.files, "kept": self.kept,
+                "dropped_by": [[stage, reason, n] for (stage, reason), n in self.dropped_by.items()],
+                "reached": self.reached, "parts": self.parts,
+                "values": self.values, "key_before": self.key_before, "key_after": self.key_after,
                 "declared": self.declared, "estimated": self.estimated, "meter_both": self.meter_both,
                 "meter_agree": self.meter_agree, "group_sizes": list(self.group_sizes.items()),
                 "clusters": self.clusters}
 
     @classmethod
-    def from_state(cls, saved: dict[str, Any]) -> "Facts":
-        facts = cls()
+    def from_state(cls, saved: dict[str, Any], stages: Iterable[str] = ()) -> "Facts":
+        facts = cls(stages)
+        facts.files, facts.kept = saved["files"], saved["kept"]
+        facts.dropped_by = {(stage, reason): n for stage, reason, n in saved["dropped_by"]}
+        facts.reached, facts.parts = saved["reached"], saved["parts"]
         facts.values = {f: [float(v) for v in saved["values"][f]] for f in facts.values}
         facts.key_before, facts.key_after = saved["key_before"], saved["key_after"]
         facts.declared, facts.estimated = saved["declared"], saved["estimated"]
@@ -255,15 +280,17 @@ def _tally(counts: dict, key: Any, sign: int) -> None:
 
 
 class RowFacts:
-    """A run's page facts gathered as its manifest rows pass (``row``). With the last run's
-    facts (``last``, saved with its rows: ``rowreuse``) a reused line is not read at all: the
-    old lines not reused are taken back (``unused``) and the built rows added. Speed: a
-    rerun parsed every reused line for the facts, about 10 us each. ``facts()`` is None when
-    the old lines seen do not add up to the last run's ``old_rows`` (then read the manifest)."""
+    """A run's facts gathered as its manifest rows pass (``row``). With the last run's facts
+    (``last``, saved with its rows: ``rowreuse``) a reused line is not read at all: the old
+    lines not reused are taken back (``unused``) and the built rows added. Speed: a rerun
+    parsed every reused line for the facts, about 10 us each, and counted the summary's figures
+    of each from the walk. ``facts()`` is None when the old lines seen do not add up to the last
+    run's ``old_rows`` (then read the manifest). Facts saved before they held the summary's
+    counts are not used."""
 
-    def __init__(self, last: dict[str, Any] | None = None, old_rows: int = 0):
-        self.from_last = last is not None
-        self.counted = Facts.from_state(last) if last is not None else Facts()
+    def __init__(self, stages: Iterable[str], last: dict[str, Any] | None = None, old_rows: int = 0):
+        self.from_last = last is not None and "files" in last
+        self.counted = Facts.from_state(last, stages) if self.from_last else Facts(stages)
         self.old_rows = old_rows
         self.old_seen = 0
         self.sound = True
@@ -298,13 +325,13 @@ class RowFacts:
 CLUSTER_FIELDS = ("id", "source", "status", "transpose", "output", "duplicate_of", "duplicate_kind", "similarity")
 
 
-def read_manifest(path: Path, facts: Facts | None = None) -> Facts:
+def read_manifest(path: Path, facts: Facts | None = None, stages: Iterable[str] = ()) -> Facts:
     """The facts of a manifest.jsonl, read one line at a time (or ``facts`` already gathered
-    from its rows, as the run writes them); then, in a second quick pass, the rows of the kept
-    members of the clusters the page shows."""
+    from its rows, as the run writes them; ``stages``: the run's stage names, in order); then,
+    in a second quick pass, the rows of the kept members of the clusters the page shows."""
     loads = json.loads
     if facts is None:
-        facts = Facts()
+        facts = Facts(stages)
         add = facts.add
         with open(path, encoding="utf-8") as fh:
             for line in fh:

@@ -31,27 +31,29 @@ def run_warnings(files: int, kept: int, part_files: dict[str, int], parts: list[
             for p in parts if not part_files.get(p)]
 
 
-def build_summary(tally: Any, walk: Any, stages: list, timings: dict, computed: int, reused: int,
-                  placed: Placed, cfg: Any) -> dict[str, Any]:
-    """summary.json: counts per stage and reason, split counts and ratios, timings, fingerprints."""
+def build_summary(facts: Any, contents: int, walk: Any, stages: list, timings: dict, computed: int,
+                  reused: int, placed: Placed, cfg: Any) -> dict[str, Any]:
+    """summary.json: counts per stage and reason, split counts and ratios, timings, fingerprints
+    (``facts``: the counts of the manifest's rows, ``page.Facts``; ``contents``: distinct
+    contents among the files)."""
     per_stage: dict[str, dict[str, Any]] = {}
     for s in stages:
-        per_stage[s.name] = {"reached": tally.reached.get(s.name, 0), "dropped": {}}
-    for (stage, reason), n in sorted(tally.dropped_by.items()):
+        per_stage[s.name] = {"reached": facts.reached.get(s.name, 0), "dropped": {}}
+    for (stage, reason), n in sorted(facts.dropped_by.items()):
         d = per_stage.setdefault(stage, {"reached": 0, "dropped": {}})["dropped"]
         d[reason] = d.get(reason, 0) + n
     configured = configured_parts(stages)
-    every_part = sorted({*configured, *tally.parts, *placed.parts})
-    part_counts = {p: tally.parts.get(p, 0) for p in every_part}  # an empty part counts 0
-    total_kept = max(1, tally.kept)
+    every_part = sorted({*configured, *facts.parts, *placed.parts})
+    part_counts = {p: facts.parts.get(p, 0) for p in every_part}  # an empty part counts 0
+    total_kept = max(1, facts.kept)
     split_info = {"files": part_counts,
                   "outputs": {p: len(placed.parts.get(p, ())) for p in every_part},
                   "ratios": {p: round(n / total_kept, 6) for p, n in sorted(part_counts.items())}}
-    counts = {"files": tally.files, "kept": tally.kept, "dropped": tally.files - tally.kept,
-              "contents": len(tally.contents), "computed": computed, "reused": reused}
+    counts = {"files": facts.files, "kept": facts.kept, "dropped": facts.files - facts.kept,
+              "contents": contents, "computed": computed, "reused": reused}
     summary = {
         "counts": counts,
-        "warnings": run_warnings(tally.files, tally.kept, part_counts, configured),
+        "warnings": run_warnings(facts.files, facts.kept, part_counts, configured),
         "stages": per_stage,
         "split": split_info,
         "notes": walk.notes,
