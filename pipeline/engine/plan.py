@@ -59,10 +59,8 @@ class Planner:
             self._common[key] = StagePlan(st.name, st.opts, st.kind, compute, fingerprint=st.fingerprint)
         return self._common[key]
 
-    def task(self, sha: str, rel: str, path: str) -> FileTask | None:
-        """The task of one content, or None when it needs no work."""
-        if not self.needs_work(sha):
-            return None
+    def task(self, sha: str, rel: str, path: str) -> FileTask:
+        """The task of one content that ``needs_work``."""
         plans: list[StagePlan] = []
         uncertain = False
         fate_known_dropped = False

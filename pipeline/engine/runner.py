@@ -193,10 +193,10 @@ class Runner:
                           staging=str(cfg.output / outfiles.STAGING), output_fp=self.output_fp,
                           retry_failed=self.retry_failed)
         tasks = []
-        for sha, rel in rep.items():
-            task = planner.task(sha, rel, source_path(root, rel))
-            if task is not None:
-                tasks.append(task)
+        for sha in rep:
+            if planner.needs_work(sha):  # speed: a content that needs none costs no path
+                rel = rep[sha]
+                tasks.append(planner.task(sha, rel, source_path(root, rel)))
         computed = len(tasks)
         with _bulk_data():
             self._execute(ledger, tasks, cache)
