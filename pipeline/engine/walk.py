@@ -280,15 +280,6 @@ class Walk:
             return None
         return i if i < self.reached(sha) else None
 
-    def reached_names(self, rel: str, sha: str) -> list[str]:
-        """The stages this source's trail (``trail_of``) has a step for."""
-        n = self.reached(sha)
-        if self.byte_copy_stage and self.is_byte_copy(rel, sha):
-            idx = self._reached(sha, self.byte_copy_stage)
-            if idx is not None:
-                n = idx + 1
-        return self.stage_names[:n]
-
     def trail_of(self, rel: str, sha: str) -> list:
         """The trail of one source, each step with its ``stage`` name: its content's, cut at
         dedup for a byte-identical copy."""
