@@ -474,8 +474,8 @@ def test_a_version_2_ledger_is_migrated_with_every_artifact_kept(tmp_path):
 
 
 def test_a_version_3_ledger_gets_the_run_columns_table_and_keeps_its_rows(tmp_path):
-    # version 4 adds run_columns only: a version-3 ledger (without it) is opened as it is, the
-    # table created empty, so its first rerun reads every stored result, as version 3 did
+    # version 4 adds run_columns only: a version-3 ledger (without it) is read as it is, and a
+    # run opening it creates the table empty, so its first rerun reads every stored result
     path = tmp_path / "state.sqlite"
     with Ledger(path) as led:
         with led.batch():
@@ -486,6 +486,8 @@ def test_a_version_3_ledger_gets_the_run_columns_table_and_keeps_its_rows(tmp_pa
         db.execute("DROP TABLE run_columns")
         db.execute("UPDATE meta SET value='3' WHERE key='schema'")
     db.close()
+    with Ledger(path, read_only=True) as led:  # explain and leakage read it as it is
+        assert list(led.results_for("filter", "fp")) == ["%064x" % 1]
     with Ledger(path) as led:
         assert led.db.execute("SELECT value FROM meta WHERE key='schema'").fetchone() == (str(SCHEMA_VERSION),)
         assert led.db.execute("SELECT count(*) FROM run_columns").fetchone() == (0,)

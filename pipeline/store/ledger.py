@@ -47,6 +47,9 @@ if TYPE_CHECKING:
 #: 4: ``run_columns`` (a version-3 database gets the empty table; an older version of the
 #: program must not write results beside columns it does not keep up to date)
 SCHEMA_VERSION = 4
+#: Versions a reader (explain, leakage: ``read_only``) opens as they are: version 3 lacks only
+#: ``run_columns``, which no reader uses.
+READABLE_VERSIONS = (3, 4)
 #: An artifact array of at most this many bytes (a MinHash signature: 128 x 4) is stored in its
 #: artifacts row, a larger one (a shingle set) in ``artifact_data``.
 INLINE_BYTES = 512
@@ -137,7 +140,7 @@ class Ledger:
         except sqlite3.DatabaseError as e:
             raise LedgerError(f"cannot read the state database ({e}); if it is corrupt, move it "
                               "away and rerun", file=str(self.path)) from None
-        if row is None or int(row[0]) != SCHEMA_VERSION:
+        if row is None or int(row[0]) not in READABLE_VERSIONS:
             raise LedgerError(f"state schema version {row[0] if row else 'unknown'} is not "
                               f"{SCHEMA_VERSION}; rerun 'midisift run' on this folder first",
                               file=str(self.path))
