@@ -208,9 +208,7 @@ class Ledger:
         verdicts.take_columns(*columns, stored.rows, stored.at)
         order = verdicts.source.order
         missing = [order[i] for i in stored.missing.tolist()]
-        for chunk in iter_chunks(missing, FETCH_CHUNK):
-            verdicts.fill(self.db.execute(f"{select} AND sha256 IN ({','.join('?' * len(chunk))})",
-                                          (*key, *chunk)))
+        verdicts.fill(rows_of_contents(self.db, select, key, missing))
         return verdicts
 
     def values_source(self, stage: str, fingerprint: str, order: list[str]) -> "StoredValues":
@@ -655,12 +653,8 @@ class StoredValues:
     def prefetch(self, shas: list[str]) -> None:
         """Hold the texts of ``shas`` (and let go of those held before)."""
         stage, fp = self.key
-        held: dict[str, str] = {}
-        for chunk in iter_chunks(shas, FETCH_CHUNK):
-            held.update(self.db.execute(
-                f"SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=? "
-                f"AND sha256 IN ({','.join('?' * len(chunk))})", (stage, fp, *chunk)))
-        self._held = held
+        self._held = dict(rows_of_contents(
+            self.db, "SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=?", (stage, fp), shas))
         self._served = 0
 
 
@@ -758,3 +752,10 @@ def load_arrays(values: list) -> list:
 def iter_chunks(items: list, size: int) -> Iterator[list]:
     for i in range(0, len(items), size):
         yield items[i:i + size]
+
+
+def rows_of_contents(db: sqlite3.Connection, select: str, params: tuple, shas: list[str]) -> Iterator[tuple]:
+    """The rows of ``select`` (a query ending in its WHERE conditions, ``params`` theirs) whose
+    ``sha256`` is one of ``shas``, in queries of ``FETCH_CHUNK`` keys."""
+    for chunk in iter_chunks(shas, FETCH_CHUNK):
+        yield from db.execute(f"{select} AND sha256 IN ({','.join('?' * len(chunk))})", (*params, *chunk))
