@@ -132,9 +132,14 @@ def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
     counted, real_facts = [], RowFacts.facts
     monkeypatch.setattr(RowFacts, "facts", lambda self: counted.append(
         (self.from_last, self.old_seen, real_facts(self) is not None)) or real_facts(self))
+    from pipeline.outputs.rowreuse import RowReuse
+    planned, real_plan = [], RowReuse.stretches
+    monkeypatch.setattr(RowReuse, "stretches", lambda self, files: planned.append(real_plan(self, files)) or planned[-1])
     built = _rerun(corpus, base, tmp_path / "reuse", monkeypatch=monkeypatch)
     # the last run's facts were updated, not read again from every line
     assert counted[0][0] and counted[0][1] > 10 and counted[0][2]
+    # the unchanged rows were copied in stretches of the old manifest
+    assert planned[0] is not None and any(kind == "copy" for kind, _, _ in planned[0])
     rebuilt = _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run, monkeypatch=monkeypatch)
     files = len((tmp_path / "rebuild" / "manifest.jsonl").read_text().splitlines())
     assert rebuilt == files  # the oracle rebuilt every row
@@ -248,17 +253,23 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
 def _checked_digests(monkeypatch) -> list[bool]:
     """Wrap ``RowReuse.digest`` so every digest it returns is checked against the one
     ``row_digest`` makes from the walk (the reference); returns, per row, whether it was taken
-    as settled (the last run's digest, not made)."""
+    as settled (the last run's digest, not made; a line copied in a stretch of the old manifest,
+    ``RowReuse.copied``, is a settled row whose digest is not even looked up)."""
     from pipeline.outputs import rowreuse
     settled: list[bool] = []
-    real = rowreuse.RowReuse.digest
+    real, real_copied = rowreuse.RowReuse.digest, rowreuse.RowReuse.copied
 
     def digest(self, f, walk, placed, positions):
         got = real(self, f, walk, placed, positions)
         settled.append(self._unsettled is not None and f.sha256 not in self._unsettled)
         assert got == rowreuse.row_digest(f, walk, placed, positions), f.rel
         return got
+
+    def copied(self, a, b):
+        settled.extend([True] * (b - a))
+        return real_copied(self, a, b)
     monkeypatch.setattr(rowreuse.RowReuse, "digest", digest)
+    monkeypatch.setattr(rowreuse.RowReuse, "copied", copied)
     return settled
 
 
@@ -358,3 +369,107 @@ def test_facts_saved_without_the_summary_counts_are_counted_from_the_rows(first,
             s["counts"].pop(key)
     assert summaries[0] == summaries[1]
     _saved_facts_are_the_manifests(a)
+
+
+class _Ledger:
+    """What ``RowReuse`` reads of the ledger: the rows' state and the row digests."""
+
+    def __init__(self, state: dict, digests: dict[str, str]):
+        self.state, self.digests = state, digests
+
+    def state_for(self, name: str) -> dict:
+        return self.state
+
+    def row_digests(self) -> dict[str, str]:
+        return dict(self.digests)
+
+    def runs_unfinished(self, last: int, run: int) -> int:
+        return 0
+
+
+def _planned_reuse(tmp: Path, old: list[str], new: list[str], sha_of: dict[str, str], unsettled: set[str],
+                   edit=None):
+    """A ``RowReuse`` over an old manifest of the sources ``old`` (one line each, as the writer
+    starts them; then changed by ``edit(path)``), settled but for ``unsettled``, and the
+    ``SourceTable`` of ``new``."""
+    import zlib
+    from types import SimpleNamespace
+    from pipeline.engine.sources import SourceTable
+    from pipeline.outputs.rowreuse import STATE_VERSION, RowReuse, _stat, line_prefix
+    path = tmp / "manifest.jsonl"
+    text = "".join(line_prefix(SimpleNamespace(rel=r, sha256=sha_of[r])) + '"n": %d}\n' % k for k, r in enumerate(old))
+    path.write_bytes(text.encode("utf-8"))
+    state = {"base": "b", "rows": len(old), "manifest": _stat(path), "facts": None,
+             "version": STATE_VERSION, "run": 1, "crc32": zlib.crc32(text.encode("utf-8"))}
+    if edit is not None:
+        edit(path)
+    reuse = RowReuse(_Ledger(state, {r: "d" for r in old}), tmp, "b", set(), run=2)
+    reuse.settle(unsettled)
+    files = SourceTable("/in", [(r, 1, 1) for r in new])
+    for i, r in enumerate(new):
+        files.set_sha256(i, sha_of[r])
+    return reuse, files
+
+
+def test_stretches_map_every_file_to_its_old_line(tmp_path):
+    """``RowReuse.stretches`` against the plain reference (each file's old line found by its
+    source; a file is looked at when its content is unsettled; an old line whose source is gone
+    is reported): random old and new source lists, sources added and removed at the start, in
+    the middle and at the end. A new source whose content is settled breaks the rule the plan
+    relies on (the runner lists a new source's content as unsettled): no plan then."""
+    import random
+    rng = random.Random(7)
+    for case in range(60):
+        universe = sorted(f"{rng.choice('abcxyz')}/{k:03d}.mid" for k in range(rng.randint(1, 40)))
+        old = sorted(r for r in universe if rng.random() < 0.8)
+        new = sorted(r for r in universe if (r in old and rng.random() < 0.85) or (r not in old and rng.random() < 0.7))
+        if not old or not new:
+            continue
+        sha_of = {r: "%064x" % rng.randrange(1 << 30) for r in universe}
+        added = [r for r in new if r not in old]
+        unsettled = {sha_of[r] for r in added} | {sha_of[r] for r in new if rng.random() < 0.1}
+        d = tmp_path / str(case)
+        d.mkdir()
+        reuse, files = _planned_reuse(d, old, new, sha_of, unsettled)
+        steps = reuse.stretches(files)
+        assert steps is not None, case
+        got, gone = [], []
+        for kind, a, b in steps:
+            if kind == "copy":
+                got += [("line", k) for k in range(a, b)]
+            elif kind == "gone":
+                gone.append(a)
+            else:
+                got.append(("file", a, b))
+        want = [("file", i, old.index(r) if r in old else -1) if sha_of[r] in unsettled else ("line", old.index(r))
+                for i, r in enumerate(new)]
+        assert got == want, case
+        assert gone == [k for k, r in enumerate(old) if r not in new], case
+        # each stretch's bytes are its old lines
+        lines = (d / "manifest.jsonl").read_text().splitlines(keepends=True)
+        for kind, a, b in steps:
+            if kind == "copy":
+                assert b"".join(reuse.copied(a, b).chunks()).decode() == "".join(lines[a:b])
+                assert list(reuse.copied(a, b).lines()) == lines[a:b]
+        if added:
+            reuse, files = _planned_reuse(d, old, new, sha_of, unsettled - {sha_of[added[0]]}
+                                          - {sha_of[r] for r in new if r in old})
+            assert reuse.stretches(files) is None, case
+
+
+def test_stretches_need_the_manifest_the_last_run_wrote(tmp_path):
+    """Two lines swapped behind the ledger (size and mtime restored): the CRC-32 differs, and
+    the rows are walked one by one (each line's prefix checked) instead."""
+    old = [f"{k:03d}.mid" for k in range(10)]
+    sha_of = {r: "%064x" % k for k, r in enumerate(old)}
+    reuse, files = _planned_reuse(tmp_path, old, old, sha_of, set())
+    assert reuse.stretches(files) == [("copy", 0, 10)]
+
+    def swap(path: Path) -> None:
+        st = path.stat()
+        lines = path.read_text().splitlines(keepends=True)
+        lines[3], lines[4] = lines[4], lines[3]
+        path.write_text("".join(lines))
+        os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    reuse, files = _planned_reuse(tmp_path, old, old, sha_of, set(), edit=swap)
+    assert reuse.usable and reuse.stretches(files) is None

@@ -32,7 +32,7 @@ from typing import Any
 from ..config import Config
 from ..errors import LedgerError, MidisiftError
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
-from ..outputs.rowreuse import STATE as ROWS_STATE, RowReuse
+from ..outputs.rowreuse import STATE as ROWS_STATE, ManifestCheck, RowReuse
 from ..outputs.table import RunReport, grouping_off, in_part_order
 from ..stages import Stage
 from ..stages.base import bind_stages
@@ -258,18 +258,19 @@ class Runner:
         page = RowFacts(names, reuse.facts, len(reuse.old)) if reuse.usable else RowFacts(names)
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
-            decisions = _DecisionSink(ledger, reuse.gone(files.path_set()) if reuse.usable else None,
+            decisions = _DecisionSink(ledger, reuse.gone(files) if reuse.usable else None,
                                       walk.trail_json)
+            check = ManifestCheck()
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, decisions.add,
                                                         reuse, corpus_positions, self._prefetch,
                                                         page.unused),
                                   page.row),
-                placed, summary_of, summaries.configured_parts(self.stages))
+                placed, summary_of, summaries.configured_parts(self.stages), check)
             decisions.flush()
             facts = counted[0]
             release_free_memory()  # memory: what the rows freed is not kept beside the states' texts
-            ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state()))
+            ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state(), check.value))
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             ledger.put_run_columns(run_id, self._order, cache.values())
@@ -403,7 +404,8 @@ class Runner:
 
 class ContentMarks:
     """A set of the run's contents as one byte per content index (memory: a set of 300,000
-    hashes takes about 16 MB): ``mark(i)``, then ``sha in marks``."""
+    hashes takes about 16 MB): ``mark(i)``, then ``sha in marks``; iterating gives the marked
+    contents."""
 
     __slots__ = ("_index", "_marks")
 
@@ -417,6 +419,12 @@ class ContentMarks:
     def __contains__(self, sha: object) -> bool:
         i = self._index.get(sha)  # type: ignore[arg-type]
         return i is not None and self._marks[i] == 1
+
+    def __iter__(self) -> Iterator[str]:
+        marks = self._marks
+        if 1 not in marks:  # speed: the usual rerun computed no known content again
+            return iter(())
+        return (sha for sha, i in self._index.items() if marks[i])
 
 
 def _connect(executor: str) -> Any:

@@ -127,6 +127,13 @@ class SourceTable(Sequence[SourceFile]):
         the table in Python was a few percent of it (DEVELOPERS.md, Rerun rounds)."""
         return {self.rel(i) for i in range(len(self))}
 
+    def indices_of(self, shas: Iterable[str]) -> list[int]:
+        """The indices of the files whose sha256 is one of ``shas``, in order (no text made
+        per file: a rerun looks for the few files of the contents that changed)."""
+        wanted = {bytes.fromhex(s) for s in shas if s}
+        digests, hashed = bytes(self._digests), self._hashed
+        return [i for i in range(len(self)) if hashed[i] and digests[32 * i:32 * i + 32] in wanted]
+
     def without(self, gone: Iterable[int]) -> None:
         """Remove the files at the indices ``gone`` (in place)."""
         drop = set(gone)

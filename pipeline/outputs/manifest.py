@@ -9,6 +9,7 @@ from typing import Any, Callable, Iterable, Iterator
 from ..store.codec import json_default
 from ..store.atomic import write_atomic
 from .files import DEFAULT_PART, Placed
+from .rowreuse import OldLines
 from .summary import write_summary
 
 #: Manifest fields of the contract, in the order they are written; other measures follow sorted.
@@ -66,27 +67,67 @@ def manifest_row(f: Any, walk: Any, placed: Placed) -> tuple[dict[str, Any], lis
     return row, trail
 
 
-def manifest_rows(files: list, walk: Any, placed: Placed,
+def manifest_rows(files: Any, walk: Any, placed: Placed,
                   on_trail: Callable[[Any, dict, list, str | None], None] | None = None,
                   reuse: Any = None, corpus_positions: tuple[int, ...] = (),
                   prefetch: Callable[[list[str]], None] | None = None,
-                  on_unused: Callable[[str], None] | None = None) -> Iterator[dict[str, Any] | str]:
-    """Manifest rows in source order (``files`` is sorted by source), one at a time;
-    ``on_trail(file, row, trail, digest)`` sees each built row's trail as it passes (the
-    runner records the decisions in the same pass). With ``reuse`` (a ``rowreuse.RowReuse``) a
-    source whose row digest is unchanged gets its old manifest line (a str) instead, and
-    ``on_trail`` is not called for it: its trail is already recorded.
-    ``prefetch(sha256s)`` is told, ``ROWS_AHEAD`` files at a time, which contents' rows are
-    about to be built (the runner reads their stored values in a few queries).
-    ``on_unused(line)`` sees every line of the old manifest that is not reused (its source is
-    gone or its row is built again), once all rows are through."""
+                  on_unused: Callable[[str], None] | None = None) -> Iterator[dict[str, Any] | str | OldLines]:
+    """Manifest rows in source order (``files``, a ``SourceTable``, is sorted by source), one
+    at a time; ``on_trail(file, row, trail, digest)`` sees each built row's trail as it passes
+    (the runner records the decisions in the same pass). With ``reuse`` (a
+    ``rowreuse.RowReuse``) a source whose row digest is unchanged gets its old manifest line (a
+    str) instead, or a stretch of such lines copied as they are (an ``OldLines``, when the rows
+    that may change are known: ``RowReuse.stretches``), and ``on_trail`` is not called for it:
+    its trail is already recorded. ``prefetch(sha256s)`` is told, ``ROWS_AHEAD`` files at a
+    time, which contents' rows are about to be built (the runner reads their stored values in a
+    few queries). ``on_unused(line)`` sees every line of the old manifest that is not reused
+    (its source is gone or its row is built again)."""
+    steps = reuse.stretches(files) if reuse is not None and reuse.usable else None
+    if steps is not None:
+        decided = _planned(steps, files, walk, placed, reuse, corpus_positions, on_unused)
+    else:
+        decided = _walked(files, walk, placed, reuse, corpus_positions, on_unused)
+    ahead: list[Any] = []
+    looked = 0
+    for item in decided:
+        ahead.append(item)
+        if type(item) is tuple:
+            looked += 1
+            if looked == ROWS_AHEAD:
+                yield from _rows_of(ahead, walk, placed, on_trail, prefetch)
+                ahead, looked = [], 0
+    yield from _rows_of(ahead, walk, placed, on_trail, prefetch)
+
+
+def _rows_of(ahead: list[Any], walk: Any, placed: Placed, on_trail: Callable | None,
+             prefetch: Callable[[list[str]], None] | None) -> Iterator[dict[str, Any] | str | OldLines]:
+    """The rows of ``ahead``'s decisions: (file, digest, reused line or None) tuples, the line
+    or a row built; stretches of old lines as they are."""
+    if prefetch is not None:
+        prefetch([it[0].sha256 for it in ahead if type(it) is tuple and it[2] is None])
+    for item in ahead:
+        if type(item) is not tuple:
+            yield item
+            continue
+        f, digest, line = item
+        if line is not None:
+            yield line
+            continue
+        row, trail = manifest_row(f, walk, placed)
+        if on_trail is not None:
+            on_trail(f, row, trail, digest)
+        yield row
+
+
+def _walked(files: Any, walk: Any, placed: Placed, reuse: Any, corpus_positions: tuple[int, ...],
+            on_unused: Callable[[str], None] | None) -> Iterator[tuple[Any, str | None, str | None]]:
+    """(file, row digest, its old line if reused) of every file, the old manifest read along
+    (each reused line must start with its file's id and source)."""
     from .rowreuse import line_prefix
     old_lines = reuse.lines() if reuse is not None and reuse.usable else None
     pending = next(old_lines, None) if old_lines is not None else None
     for start in range(0, len(files), ROWS_AHEAD):
-        chunk = files[start:start + ROWS_AHEAD]
-        ahead: list[tuple[Any, str | None, str | None]] = []  # (file, digest, reused line)
-        for f in chunk:
+        for f in files[start:start + ROWS_AHEAD]:
             digest = reuse.digest(f, walk, placed, corpus_positions) if reuse is not None else None
             line = None
             if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
@@ -97,40 +138,64 @@ def manifest_rows(files: list, walk: Any, placed: Placed,
                 if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
                     line = pending[1]
                     pending = next(old_lines, None)
-            ahead.append((f, digest, line))
-        if prefetch is not None:
-            prefetch([f.sha256 for f, _, line in ahead if line is None])
-        for f, digest, line in ahead:
-            if line is not None:
-                yield line
-                continue
-            row, trail = manifest_row(f, walk, placed)
-            if on_trail is not None:
-                on_trail(f, row, trail, digest)
-            yield row
+            yield f, digest, line
     if on_unused is not None:
         while pending is not None:
             on_unused(pending[1])
             pending = next(old_lines, None)
 
 
+def _planned(steps: list[tuple[str, int, int]], files: Any, walk: Any, placed: Placed, reuse: Any,
+             corpus_positions: tuple[int, ...],
+             on_unused: Callable[[str], None] | None) -> Iterator[tuple[Any, str | None, str | None] | OldLines]:
+    """The decisions of ``RowReuse.stretches``' steps: a stretch of old lines as it is, or
+    (file, row digest, its old line if reused) of a file whose row may change."""
+    from .rowreuse import line_prefix
+    for kind, a, b in steps:
+        if kind == "copy":
+            yield reuse.copied(a, b)
+        elif kind == "gone":
+            if on_unused is not None:
+                on_unused(reuse.old_line(a))
+        else:
+            f = files[a]
+            digest = reuse.digest(f, walk, placed, corpus_positions)
+            line = None
+            if b >= 0:
+                old = reuse.old_line(b)
+                if (reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed
+                        and old.startswith(line_prefix(f))):
+                    line = old
+                elif on_unused is not None:
+                    on_unused(old)
+            yield f, digest, line
+
+
 #: Files whose rows are decided before they are built (``manifest_rows``' ``prefetch``).
 ROWS_AHEAD = 500
 
 
-def _jsonl(rows: Iterable[dict | str]) -> Iterator[str]:
-    """JSON lines of the rows; a str is a line reused as it is (it ends in a newline)."""
+def _jsonl(rows: Iterable[dict | str | OldLines]) -> Iterator[str | bytes]:
+    """JSON lines of the rows; a str is a line reused as it is (it ends in a newline), an
+    ``OldLines`` a stretch of them, copied as bytes."""
     dumps = json.dumps
     for r in rows:
-        yield r if type(r) is str else dumps(r, ensure_ascii=False, separators=(", ", ": "), default=json_default) + "\n"
+        if type(r) is str:
+            yield r
+        elif type(r) is OldLines:
+            yield from r.chunks()
+        else:
+            yield dumps(r, ensure_ascii=False, separators=(", ", ": "), default=json_default) + "\n"
 
 
-def write_all(out_dir: Path, rows: Iterable[dict | str], placed: Placed,
-              summary_of: Callable[[], dict], configured: Iterable[str] = ()) -> dict:
+def write_all(out_dir: Path, rows: Iterable[dict | str | OldLines], placed: Placed,
+              summary_of: Callable[[], dict], configured: Iterable[str] = (),
+              check: Any = None) -> dict:
     """Write the manifest (streamed from ``rows``), the split lists, then the summary that
     ``summary_of`` builds once the rows are counted; each file atomically, stale split lists
-    removed. Returns the summary."""
-    write_atomic(out_dir / "manifest.jsonl", _jsonl(rows))
+    removed. ``check`` (a ``rowreuse.ManifestCheck``) is fed the manifest's bytes. Returns the
+    summary."""
+    write_atomic(out_dir / "manifest.jsonl", _jsonl(rows), check=check)
     splits = out_dir / "splits"
     splits.mkdir(parents=True, exist_ok=True)
     lists = {part: [] for part in configured} | placed.parts  # an empty part gets its empty list

@@ -295,14 +295,21 @@ class RowFacts:
         self.old_seen = 0
         self.sound = True
 
-    def row(self, r: dict[str, Any] | str) -> None:
-        """A manifest row: a built row (dict) or a reused line (str)."""
-        if type(r) is not str:
+    def row(self, r: Any) -> None:
+        """A manifest row: a built row (dict), a reused line (str) or a stretch of reused
+        lines (``rowreuse.OldLines``)."""
+        if type(r) is dict:
             self.counted.add(r)
+        elif type(r) is str:
+            if self.from_last:
+                self.old_seen += 1
+            else:
+                self.counted.add(json.loads(r))
         elif self.from_last:
-            self.old_seen += 1
+            self.old_seen += r.count
         else:
-            self.counted.add(json.loads(r))
+            for line in r.lines():
+                self.counted.add(json.loads(line))
 
     def unused(self, line: str) -> None:
         """A line of the last run's manifest that this run does not reuse."""

@@ -10,15 +10,19 @@ computed in this run (new, or retried with ``--retry-failed``) are never reused.
 
 The old manifest is trusted only when its size and mtime are the ones recorded by the last
 completed run (a run killed between writing the manifest and committing the ledger leaves a
-manifest the ledger does not know, and every row is rebuilt), and each reused line must start
-with its file's id and source. Lines are streamed from the old manifest in source order, never
-held all at once.
+manifest the ledger does not know, and every row is rebuilt). When its CRC-32 is also the
+recorded one and the settled rows are known (``RowReuse.settle``), the rerun copies the
+stretches of unchanged lines as bytes and looks only at the rows that may change
+(``RowReuse.stretches``); otherwise it walks every row, and each reused line must start with its
+file's id and source. Lines are streamed from the old manifest in source order, never held all
+at once.
 """
 from __future__ import annotations
 
 import hashlib
 import json
 import os
+import zlib
 from collections.abc import Container
 from pathlib import Path
 from typing import Any, Iterator
@@ -29,6 +33,8 @@ STATE = "_rows"  # the ledger state entry: base key and the manifest's size and 
 #: What ``STATE`` holds: 2 adds the run that wrote it (``run``), which lets a rerun take the
 #: digest of a settled row as it is (``RowReuse.settle``); an older entry still reuses lines.
 STATE_VERSION = 2
+#: The old manifest is scanned and copied this many bytes at a time.
+READ_CHUNK = 1 << 22
 
 
 def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]) -> str:
@@ -53,7 +59,7 @@ class RowReuse:
                  run: int = 0):
         self.manifest = Path(out_dir) / "manifest.jsonl"
         self.base = base
-        self.recomputed = recomputed
+        self.recomputed = recomputed  # iterating it gives its contents (``stretches``)
         self.run = run  # this run's id (``Ledger.start_run``)
         self.old: dict[str, str] = {}
         self._order: list[str] = []
@@ -61,6 +67,8 @@ class RowReuse:
         self.facts: dict[str, Any] | None = None
         #: contents whose rows may differ from the last run's (``settle``); None: any row may
         self._unsettled: set[str] | None = None
+        self._gone: list[int] | None = None  # positions in ``_order`` of sources gone (``gone``)
+        self._crc32: int | None = None  # the old manifest's, as the last run recorded it
         saved = ledger.state_for(STATE)
         if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
@@ -69,6 +77,7 @@ class RowReuse:
             return
         self.old = old
         self.facts = saved.get("facts")
+        self._crc32 = saved.get("crc32")
         self._order = sorted(old)  # the manifest's line order (sources sorted as discover does)
         # the sources and outputs tables are those the digests were made beside only when every
         # run started since the one that wrote them completed (a completed run either wrote
@@ -108,15 +117,141 @@ class RowReuse:
                 return old
         return row_digest(f, walk, placed, corpus_positions)
 
-    def gone(self, present: Container[str]) -> list[str]:
-        """Sources of the last run that this run does not have."""
-        return [s for s in self.old if s not in present]
+    def gone(self, files: Any) -> list[str]:
+        """Sources of the last run that this run does not have (``files``: the run's
+        ``SourceTable``), in source order."""
+        if self._gone is None:
+            present = files.path_set()
+            self._gone = [k for k, s in enumerate(self._order) if s not in present]
+        return [self._order[k] for k in self._gone]
 
-    def state_of(self, rows: int, facts: dict[str, Any]) -> dict[str, Any]:
-        """This run's base key, row count, manifest stat and page facts, for the ledger's
-        ``STATE`` entry (recorded in the run's last transaction, after the manifest is written)."""
+    def stretches(self, files: Any) -> list[tuple[str, int, int]] | None:
+        """The new manifest as steps over the old one, or None when it cannot be planned so
+        (then every row is walked). Steps, in source order: ``("copy", a, b)`` the old lines
+        ``a`` to ``b`` (exclusive) as they are; ``("file", i, k)`` file ``i`` of ``files``,
+        whose row may change (its content is not settled, or was computed in this run), with
+        its old line ``k`` (-1: a new source); ``("gone", k, 0)`` old line ``k``, whose source is
+        gone. Planned only when the rows are settled (``settle``) and the old manifest is the
+        one the last run wrote, byte for byte (its CRC-32, ``line_ends``): the other rows are
+        then those the last run wrote. Every file whose content is not listed is known to the
+        last run (a new source's content is unsettled); the two sides' counts are checked."""
+        if self._unsettled is None or self._crc32 is None:
+            return None
+        order, m, n = self._order, len(self._order), len(files)
+        look = files.indices_of(self._unsettled.union(self.recomputed))
+        self.gone(files)
+        gone = self._gone
+        steps: list[tuple[str, int, int]] = []
+        fi = oi = 0  # the next file, the next old line
+
+        def aligned(count: int) -> bool:
+            """The next ``count`` files are the next ``count`` old lines' sources, unchanged."""
+            nonlocal fi, oi
+            if count < 0 or fi + count > n or oi + count > m:
+                return False
+            if count:
+                if files.rel(fi) != order[oi] or files.rel(fi + count - 1) != order[oi + count - 1]:
+                    return False
+                steps.append(("copy", oi, oi + count))
+                fi, oi = fi + count, oi + count
+            return True
+
+        g = 0
+        for i in [*look, n]:  # n: the end, after the last gone sources
+            rel = files.rel(i) if i < n else None
+            while g < len(gone) and (rel is None or order[gone[g]] < rel):
+                if not aligned(gone[g] - oi):
+                    return None
+                steps.append(("gone", oi, 0))
+                oi, g = oi + 1, g + 1
+            if not aligned(i - fi):
+                return None
+            if rel is not None:
+                k = oi if oi < m and order[oi] == rel else -1
+                steps.append(("file", i, k))
+                fi, oi = fi + 1, oi + (k >= 0)
+        if fi != n or oi != m:
+            return None
+        return steps if self.line_ends() is not None else None
+
+    def line_ends(self) -> Any:
+        """The end offset of each line of the old manifest (a numpy array), read once, or None
+        when its CRC-32 is not the one recorded or its lines are not the last run's rows."""
+        if not hasattr(self, "_ends"):
+            import numpy as np
+            ends, crc, base = [], 0, 0
+            try:
+                with open(self.manifest, "rb") as fh:
+                    while chunk := fh.read(READ_CHUNK):
+                        crc = zlib.crc32(chunk, crc)
+                        ends.append(np.flatnonzero(np.frombuffer(chunk, np.uint8) == 10) + (base + 1))
+                        base += len(chunk)
+            except OSError:
+                ends = []
+            found = np.concatenate(ends) if ends else np.zeros(0, np.int64)
+            good = (ends and crc == self._crc32 and len(found) == len(self._order)
+                    and int(found[-1]) == base)
+            self._ends = found if good else None
+        return self._ends
+
+    def old_line(self, k: int) -> str:
+        """Line ``k`` of the old manifest (``stretches`` planned)."""
+        start = int(self._ends[k - 1]) if k else 0
+        with open(self.manifest, "rb") as fh:
+            fh.seek(start)
+            return fh.read(int(self._ends[k]) - start).decode("utf-8")
+
+    def copied(self, a: int, b: int) -> "OldLines":
+        """The old lines ``a`` to ``b`` (exclusive), to be copied as they are."""
+        return OldLines(self.manifest, int(self._ends[a - 1]) if a else 0, int(self._ends[b - 1]), b - a)
+
+    def state_of(self, rows: int, facts: dict[str, Any], crc32: int | None) -> dict[str, Any]:
+        """This run's base key, row count, manifest stat, CRC-32 (``ManifestCheck``) and page
+        facts, for the ledger's ``STATE`` entry (recorded in the run's last transaction, after
+        the manifest is written)."""
         return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts,
-                "version": STATE_VERSION, "run": self.run}
+                "version": STATE_VERSION, "run": self.run, "crc32": crc32}
+
+
+class OldLines:
+    """A stretch of the last run's manifest reused as it is: ``count`` lines, bytes ``start``
+    to ``end`` of the file, written by copying the bytes (``chunks``)."""
+
+    __slots__ = ("path", "start", "end", "count")
+
+    def __init__(self, path: Path, start: int, end: int, count: int):
+        self.path, self.start, self.end, self.count = path, start, end, count
+
+    def chunks(self) -> Iterator[bytes]:
+        """The stretch's bytes, ``READ_CHUNK`` at a time."""
+        with open(self.path, "rb") as fh:
+            fh.seek(self.start)
+            left = self.end - self.start
+            while left > 0:
+                chunk = fh.read(min(READ_CHUNK, left))
+                if not chunk:
+                    raise OSError(f"{self.path} ended before byte {self.end}")
+                left -= len(chunk)
+                yield chunk
+
+    def lines(self) -> Iterator[str]:
+        """The stretch's lines (each ends in a newline), one at a time."""
+        rest = b""
+        for chunk in self.chunks():
+            *whole, rest = (rest + chunk).split(b"\n")
+            for line in whole:
+                yield line.decode("utf-8") + "\n"
+
+
+class ManifestCheck:
+    """The CRC-32 of the bytes written (``update``, as hashlib's objects take them): recorded
+    with the rows, it tells a rerun that the manifest is still the one this run wrote."""
+
+    def __init__(self) -> None:
+        self.value = 0
+
+    def update(self, data: bytes) -> None:
+        self.value = zlib.crc32(data, self.value)
 
 
 def line_prefix(f: Any) -> str:

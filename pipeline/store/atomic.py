@@ -5,7 +5,7 @@ import functools
 import os
 import tempfile
 from pathlib import Path
-from typing import Iterable
+from typing import Any, Iterable
 
 from ..errors import OutputError
 
@@ -19,11 +19,21 @@ def _file_mode() -> int:
     return 0o666 & ~mask
 
 
-def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool = True) -> None:
+def _checked(write: Any, check: Any) -> Any:
+    """``write``, feeding ``check`` what it writes."""
+    def both(data: bytes) -> None:
+        check.update(data)
+        write(data)
+    return both
+
+
+def write_atomic(path: Path, data: bytes | str | Iterable[str | bytes], *, fsync: bool = True,
+                 check: Any = None) -> None:
     """Write to a temporary name in the same folder, fsync, then rename over ``path``: readers
-    see the old file or the new one, never a part. ``data`` may be an iterable of text chunks
-    (streamed: the manifest of a million files is never one string in memory). ``fsync=False``
-    skips the flush where the file may be lost to a power cut (the up-to-date summary)."""
+    see the old file or the new one, never a part. ``data`` may be an iterable of text or
+    bytes chunks (streamed: the manifest of a million files is never one string in memory).
+    ``fsync=False`` skips the flush where the file may be lost to a power cut (the up-to-date
+    summary). ``check.update(bytes)`` (a hashlib object, say) is fed the bytes written."""
     path = Path(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
@@ -32,20 +42,26 @@ def write_atomic(path: Path, data: bytes | str | Iterable[str], *, fsync: bool =
             if hasattr(os, "fchmod"):
                 os.fchmod(fd, _file_mode())  # follow the umask like any tool's output
             with os.fdopen(fd, "wb") as fh:
+                write = fh.write if check is None else _checked(fh.write, check)
                 if isinstance(data, (bytes, bytearray, memoryview)):
-                    fh.write(data)
+                    write(data)
                 elif isinstance(data, str):
-                    fh.write(data.encode("utf-8"))
+                    write(data.encode("utf-8"))
                 else:
                     buf: list[str] = []
                     size = 0
                     for chunk in data:
+                        if type(chunk) is bytes:
+                            write("".join(buf).encode("utf-8"))
+                            write(chunk)
+                            buf, size = [], 0
+                            continue
                         buf.append(chunk)
                         size += len(chunk)
                         if size >= 1 << 20:
-                            fh.write("".join(buf).encode("utf-8"))
+                            write("".join(buf).encode("utf-8"))
                             buf, size = [], 0
-                    fh.write("".join(buf).encode("utf-8"))
+                    write("".join(buf).encode("utf-8"))
                 if fsync:
                     fh.flush()
                     os.fsync(fh.fileno())
