@@ -132,14 +132,9 @@ def test_reused_rows_equal_rebuilt_rows(first, tmp_path, monkeypatch):
     counted, real_facts = [], RowFacts.facts
     monkeypatch.setattr(RowFacts, "facts", lambda self: counted.append(
         (self.from_last, self.old_seen, real_facts(self) is not None)) or real_facts(self))
-    from pipeline.outputs.rowreuse import RowReuse
-    planned, real_plan = [], RowReuse.stretches
-    monkeypatch.setattr(RowReuse, "stretches", lambda self, files: planned.append(real_plan(self, files)) or planned[-1])
     built = _rerun(corpus, base, tmp_path / "reuse", monkeypatch=monkeypatch)
     # the last run's facts were updated, not read again from every line
     assert counted[0][0] and counted[0][1] > 10 and counted[0][2]
-    # the unchanged rows were copied in stretches of the old manifest
-    assert planned[0] is not None and any(kind == "copy" for kind, _, _ in planned[0])
     rebuilt = _rerun(corpus, base, tmp_path / "rebuild", prepare=_forget_last_run, monkeypatch=monkeypatch)
     files = len((tmp_path / "rebuild" / "manifest.jsonl").read_text().splitlines())
     assert rebuilt == files  # the oracle rebuilt every row
@@ -254,10 +249,10 @@ def _checked_digests(monkeypatch) -> list[bool]:
     """Wrap ``RowReuse.digest`` so every digest it returns is checked against the one
     ``row_digest`` makes from the walk (the reference); returns, per row, whether it was taken
     as settled (the last run's digest, not made; a line copied in a stretch of the old manifest,
-    ``RowReuse.copied``, is a settled row whose digest is not even looked up)."""
+    ``OldManifest.stretch``, is a settled row whose digest is not even looked up)."""
     from pipeline.outputs import rowreuse
     settled: list[bool] = []
-    real, real_copied = rowreuse.RowReuse.digest, rowreuse.RowReuse.copied
+    real, real_copied = rowreuse.RowReuse.digest, rowreuse.OldManifest.stretch
 
     def digest(self, f, walk, placed, positions):
         got = real(self, f, walk, placed, positions)
@@ -269,7 +264,7 @@ def _checked_digests(monkeypatch) -> list[bool]:
         settled.extend([True] * (b - a))
         return real_copied(self, a, b)
     monkeypatch.setattr(rowreuse.RowReuse, "digest", digest)
-    monkeypatch.setattr(rowreuse.RowReuse, "copied", copied)
+    monkeypatch.setattr(rowreuse.OldManifest, "stretch", copied)
     return settled
 
 
@@ -291,18 +286,32 @@ def test_settled_rows_keep_the_digest_a_rebuild_makes(first, tmp_path, monkeypat
     a, b = tmp_path / "reuse", tmp_path / "rebuild"
     assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
     assert _tables(a) == _tables(b)
-    # the next rerun adds one byte copy (its name sorts last): every other row settles
+    # the next rerun adds one byte copy (its name sorts last): every other row settles, and
+    # their lines are copied in stretches of the old manifest (RowReuse.stretches); it writes
+    # what the rebuild writes
+    from pipeline.outputs.rowreuse import RowReuse
+    planned, real_plan = [], RowReuse.stretches
+    monkeypatch.setattr(RowReuse, "stretches", lambda self, files: planned.append(real_plan(self, files)) or planned[-1])
     settled.clear()
-    shutil.copy(corpus / sorted(p.name for p in corpus.glob("*.mid"))[-1], corpus / "zzzz_late_copy.mid")
+    shutil.copytree(a, tmp_path / "late-rebuild")
+    late = corpus / "zzzz_late_copy.mid"
+    shutil.copy(corpus / sorted(p.name for p in corpus.glob("*.mid"))[-1], late)
     try:
         _run(corpus, a)
+        # made: the rows of the copied content's sources (which of them represents it may change)
+        sha = json.loads([line for line in (a / "manifest.jsonl").read_text().splitlines()
+                          if '"zzzz_late_copy.mid"' in line][0])["sha256"]
+        shared = sum(f'"sha256": "{sha}"' in line for line in (a / "manifest.jsonl").read_text().splitlines())
+        assert shared >= 2 and len(settled) - sum(settled) == shared
+        assert planned[0] is not None and [kind for kind, _, _ in planned[0]].count("copy") >= 2
+        _forget_last_run(tmp_path / "late-rebuild")
+        _run(corpus, tmp_path / "late-rebuild")
     finally:
-        (corpus / "zzzz_late_copy.mid").unlink()
-    # made: the rows of the copied content's sources (which of them represents it may change)
-    sha = json.loads([line for line in (a / "manifest.jsonl").read_text().splitlines()
-                      if '"zzzz_late_copy.mid"' in line][0])["sha256"]
-    shared = sum(f'"sha256": "{sha}"' in line for line in (a / "manifest.jsonl").read_text().splitlines())
-    assert shared >= 2 and len(settled) - sum(settled) == shared
+        late.unlink()
+    b = tmp_path / "late-rebuild"
+    assert (a / "manifest.jsonl").read_bytes() == (b / "manifest.jsonl").read_bytes()
+    assert _splits(a) == _splits(b) and _tables(a) == _tables(b)
+    _saved_facts_are_the_manifests(a)
 
 
 def test_rows_are_not_settled_after_a_stopped_run_or_over_an_older_output(first, tmp_path, monkeypatch):
@@ -411,13 +420,16 @@ def _planned_reuse(tmp: Path, old: list[str], new: list[str], sha_of: dict[str, 
     return reuse, files
 
 
-def test_stretches_map_every_file_to_its_old_line(tmp_path):
+def test_stretches_map_every_file_to_its_old_line(tmp_path, monkeypatch):
     """``RowReuse.stretches`` against the plain reference (each file's old line found by its
     source; a file is looked at when its content is unsettled; an old line whose source is gone
     is reported): random old and new source lists, sources added and removed at the start, in
     the middle and at the end. A new source whose content is settled breaks the rule the plan
-    relies on (the runner lists a new source's content as unsettled): no plan then."""
+    relies on (the runner lists a new source's content as unsettled): no plan then. (Planned
+    whatever the share of files looked at; above ``LOOKED_AT_MOST`` of them the runner walks.)"""
     import random
+    from pipeline.outputs import rowreuse
+    monkeypatch.setattr(rowreuse, "LOOKED_AT_MOST", 1.0)
     rng = random.Random(7)
     for case in range(60):
         universe = sorted(f"{rng.choice('abcxyz')}/{k:03d}.mid" for k in range(rng.randint(1, 40)))
@@ -447,10 +459,15 @@ def test_stretches_map_every_file_to_its_old_line(tmp_path):
         assert gone == [k for k, r in enumerate(old) if r not in new], case
         # each stretch's bytes are its old lines
         lines = (d / "manifest.jsonl").read_text().splitlines(keepends=True)
-        for kind, a, b in steps:
-            if kind == "copy":
-                assert b"".join(reuse.copied(a, b).chunks()).decode() == "".join(lines[a:b])
-                assert list(reuse.copied(a, b).lines()) == lines[a:b]
+        with reuse.opened() as manifest:
+            for kind, a, b in steps:
+                if kind == "copy":
+                    assert b"".join(manifest.stretch(a, b).chunks()).decode() == "".join(lines[a:b])
+                    assert list(manifest.stretch(a, b).lines()) == lines[a:b]
+                elif kind == "gone":
+                    assert manifest.line(a) == lines[a]
+                elif b >= 0:  # a file known to the last run
+                    assert manifest.line(b) == lines[b]
         if added:
             reuse, files = _planned_reuse(d, old, new, sha_of, unsettled - {sha_of[added[0]]}
                                           - {sha_of[r] for r in new if r in old})
@@ -459,11 +476,17 @@ def test_stretches_map_every_file_to_its_old_line(tmp_path):
 
 def test_stretches_need_the_manifest_the_last_run_wrote(tmp_path):
     """Two lines swapped behind the ledger (size and mtime restored): the CRC-32 differs, and
-    the rows are walked one by one (each line's prefix checked) instead."""
+    the rows are walked one by one (each line's prefix checked) instead; so they are when more
+    than half the rows may change."""
     old = [f"{k:03d}.mid" for k in range(10)]
     sha_of = {r: "%064x" % k for k, r in enumerate(old)}
     reuse, files = _planned_reuse(tmp_path, old, old, sha_of, set())
     assert reuse.stretches(files) == [("copy", 0, 10)]
+    # most rows may change: walked one by one (each looked-at row would be a read of its own)
+    reuse, files = _planned_reuse(tmp_path, old, old, sha_of, {sha_of[r] for r in old[:6]})
+    assert reuse.stretches(files) is None
+    reuse, files = _planned_reuse(tmp_path, old, old, sha_of, {sha_of[r] for r in old[:5]})
+    assert reuse.stretches(files) == [("file", k, k) for k in range(5)] + [("copy", 5, 10)]
 
     def swap(path: Path) -> None:
         st = path.stat()

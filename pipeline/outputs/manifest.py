@@ -83,10 +83,19 @@ def manifest_rows(files: Any, walk: Any, placed: Placed,
     few queries). ``on_unused(line)`` sees every line of the old manifest that is not reused
     (its source is gone or its row is built again)."""
     steps = reuse.stretches(files) if reuse is not None and reuse.usable else None
-    if steps is not None:
-        decided = _planned(steps, files, walk, placed, reuse, corpus_positions, on_unused)
-    else:
-        decided = _walked(files, walk, placed, reuse, corpus_positions, on_unused)
+    if steps is None:
+        yield from _ahead(_walked(files, walk, placed, reuse, corpus_positions, on_unused),
+                          walk, placed, on_trail, prefetch)
+        return
+    with reuse.opened() as old:  # open while the stretches it gives are written
+        yield from _ahead(_planned(steps, files, walk, placed, reuse, old, corpus_positions, on_unused),
+                          walk, placed, on_trail, prefetch)
+
+
+def _ahead(decided: Iterator[Any], walk: Any, placed: Placed, on_trail: Callable | None,
+           prefetch: Callable[[list[str]], None] | None) -> Iterator[dict[str, Any] | str | OldLines]:
+    """The rows of the decisions, ``ROWS_AHEAD`` files' decisions taken before their rows are
+    built (``prefetch``)."""
     ahead: list[Any] = []
     looked = 0
     for item in decided:
@@ -146,23 +155,24 @@ def _walked(files: Any, walk: Any, placed: Placed, reuse: Any, corpus_positions:
 
 
 def _planned(steps: list[tuple[str, int, int]], files: Any, walk: Any, placed: Placed, reuse: Any,
-             corpus_positions: tuple[int, ...],
+             old_manifest: Any, corpus_positions: tuple[int, ...],
              on_unused: Callable[[str], None] | None) -> Iterator[tuple[Any, str | None, str | None] | OldLines]:
-    """The decisions of ``RowReuse.stretches``' steps: a stretch of old lines as it is, or
-    (file, row digest, its old line if reused) of a file whose row may change."""
+    """The decisions of ``RowReuse.stretches``' steps over ``old_manifest``
+    (``rowreuse.OldManifest``): a stretch of old lines as it is, or (file, row digest, its old
+    line if reused) of a file whose row may change."""
     from .rowreuse import line_prefix
     for kind, a, b in steps:
         if kind == "copy":
-            yield reuse.copied(a, b)
+            yield old_manifest.stretch(a, b)
         elif kind == "gone":
             if on_unused is not None:
-                on_unused(reuse.old_line(a))
+                on_unused(old_manifest.line(a))
         else:
             f = files[a]
             digest = reuse.digest(f, walk, placed, corpus_positions)
             line = None
             if b >= 0:
-                old = reuse.old_line(b)
+                old = old_manifest.line(b)
                 if (reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed
                         and old.startswith(line_prefix(f))):
                     line = old

@@ -35,6 +35,9 @@ STATE = "_rows"  # the ledger state entry: base key and the manifest's size and 
 STATE_VERSION = 2
 #: The old manifest is scanned and copied this many bytes at a time.
 READ_CHUNK = 1 << 22
+#: Above this share of rows that may change, the rows are walked one by one rather than planned
+#: (``RowReuse.stretches``): each looked-at row's old line is then a read of its own.
+LOOKED_AT_MOST = 0.5
 
 
 def row_digest(f: Any, walk: Any, placed: Any, corpus_positions: tuple[int, ...]) -> str:
@@ -133,12 +136,15 @@ class RowReuse:
         its old line ``k`` (-1: a new source); ``("gone", k, 0)`` old line ``k``, whose source is
         gone. Planned only when the rows are settled (``settle``) and the old manifest is the
         one the last run wrote, byte for byte (its CRC-32, ``line_ends``): the other rows are
-        then those the last run wrote. Every file whose content is not listed is known to the
-        last run (a new source's content is unsettled); the two sides' counts are checked."""
+        then those the last run wrote; and only when at most ``LOOKED_AT_MOST`` of the files
+        are looked at. Every file whose content is not listed is known to the last run (a new
+        source's content is unsettled); the two sides' counts are checked."""
         if self._unsettled is None or self._crc32 is None:
             return None
         order, m, n = self._order, len(self._order), len(files)
         look = files.indices_of(self._unsettled.union(self.recomputed))
+        if len(look) > n * LOOKED_AT_MOST:
+            return None  # speed: the walk reads the old manifest in one pass
         self.gone(files)
         gone = self._gone
         steps: list[tuple[str, int, int]] = []
@@ -194,16 +200,10 @@ class RowReuse:
             self._ends = found if good else None
         return self._ends
 
-    def old_line(self, k: int) -> str:
-        """Line ``k`` of the old manifest (``stretches`` planned)."""
-        start = int(self._ends[k - 1]) if k else 0
-        with open(self.manifest, "rb") as fh:
-            fh.seek(start)
-            return fh.read(int(self._ends[k]) - start).decode("utf-8")
-
-    def copied(self, a: int, b: int) -> "OldLines":
-        """The old lines ``a`` to ``b`` (exclusive), to be copied as they are."""
-        return OldLines(self.manifest, int(self._ends[a - 1]) if a else 0, int(self._ends[b - 1]), b - a)
+    def opened(self) -> "OldManifest":
+        """The old manifest open for reading its lines by number (after ``stretches`` planned
+        the rows; use as a context manager)."""
+        return OldManifest(self.manifest, self._ends)
 
     def state_of(self, rows: int, facts: dict[str, Any], crc32: int | None) -> dict[str, Any]:
         """This run's base key, row count, manifest stat, CRC-32 (``ManifestCheck``) and page
@@ -213,26 +213,52 @@ class RowReuse:
                 "version": STATE_VERSION, "run": self.run, "crc32": crc32}
 
 
+class OldManifest:
+    """The last run's manifest open for reading (one handle for the whole rerun), its lines by
+    number (``ends``: each line's end offset, ``RowReuse.line_ends``)."""
+
+    def __init__(self, path: Path, ends: Any):
+        self.path, self._ends = path, ends
+        self._fh = open(path, "rb")
+
+    def __enter__(self) -> "OldManifest":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self._fh.close()
+
+    def line(self, k: int) -> str:
+        """Line ``k`` (it ends in a newline)."""
+        return b"".join(self.read(int(self._ends[k - 1]) if k else 0, int(self._ends[k]))).decode("utf-8")
+
+    def stretch(self, a: int, b: int) -> "OldLines":
+        """Lines ``a`` to ``b`` (exclusive), to be copied as they are."""
+        return OldLines(self, int(self._ends[a - 1]) if a else 0, int(self._ends[b - 1]), b - a)
+
+    def read(self, start: int, end: int) -> Iterator[bytes]:
+        """Bytes ``start`` to ``end``, ``READ_CHUNK`` at a time."""
+        self._fh.seek(start)
+        left = end - start
+        while left > 0:
+            chunk = self._fh.read(min(READ_CHUNK, left))
+            if not chunk:
+                raise OSError(f"{self.path} ended before byte {end}")
+            left -= len(chunk)
+            yield chunk
+
+
 class OldLines:
     """A stretch of the last run's manifest reused as it is: ``count`` lines, bytes ``start``
     to ``end`` of the file, written by copying the bytes (``chunks``)."""
 
-    __slots__ = ("path", "start", "end", "count")
+    __slots__ = ("source", "start", "end", "count")
 
-    def __init__(self, path: Path, start: int, end: int, count: int):
-        self.path, self.start, self.end, self.count = path, start, end, count
+    def __init__(self, source: OldManifest, start: int, end: int, count: int):
+        self.source, self.start, self.end, self.count = source, start, end, count
 
     def chunks(self) -> Iterator[bytes]:
         """The stretch's bytes, ``READ_CHUNK`` at a time."""
-        with open(self.path, "rb") as fh:
-            fh.seek(self.start)
-            left = self.end - self.start
-            while left > 0:
-                chunk = fh.read(min(READ_CHUNK, left))
-                if not chunk:
-                    raise OSError(f"{self.path} ended before byte {self.end}")
-                left -= len(chunk)
-                yield chunk
+        return self.source.read(self.start, self.end)
 
     def lines(self) -> Iterator[str]:
         """The stretch's lines (each ends in a newline), one at a time."""
