@@ -132,19 +132,18 @@ def _walked(files: Any, walk: Any, placed: Placed, reuse: Any, corpus_positions:
             on_unused: Callable[[str], None] | None) -> Iterator[tuple[Any, str | None, str | None]]:
     """(file, row digest, its old line if reused) of every file, the old manifest read along
     (each reused line must start with its file's id and source)."""
-    from .rowreuse import line_prefix
     old_lines = reuse.lines() if reuse is not None and reuse.usable else None
     pending = next(old_lines, None) if old_lines is not None else None
     for start in range(0, len(files), ROWS_AHEAD):
         for f in files[start:start + ROWS_AHEAD]:
             digest = reuse.digest(f, walk, placed, corpus_positions) if reuse is not None else None
             line = None
-            if old_lines is not None and reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed:
+            if old_lines is not None and reuse.old.get(f.rel) == digest:
                 while pending is not None and pending[0] < f.rel:
                     if on_unused is not None:
                         on_unused(pending[1])
                     pending = next(old_lines, None)
-                if pending is not None and pending[0] == f.rel and pending[1].startswith(line_prefix(f)):
+                if pending is not None and pending[0] == f.rel and reuse.reusable(f, digest, pending[1]):
                     line = pending[1]
                     pending = next(old_lines, None)
             yield f, digest, line
@@ -160,7 +159,6 @@ def _planned(steps: list[tuple[str, int, int]], files: Any, walk: Any, placed: P
     """The decisions of ``RowReuse.stretches``' steps over ``old_manifest``
     (``rowreuse.OldManifest``): a stretch of old lines as it is, or (file, row digest, its old
     line if reused) of a file whose row may change."""
-    from .rowreuse import line_prefix
     for kind, a, b in steps:
         if kind == "copy":
             yield old_manifest.stretch(a, b)
@@ -173,8 +171,7 @@ def _planned(steps: list[tuple[str, int, int]], files: Any, walk: Any, placed: P
             line = None
             if b >= 0:
                 old = old_manifest.line(b)
-                if (reuse.old.get(f.rel) == digest and f.sha256 not in reuse.recomputed
-                        and old.startswith(line_prefix(f))):
+                if reuse.reusable(f, digest, old):
                     line = old
                 elif on_unused is not None:
                     on_unused(old)

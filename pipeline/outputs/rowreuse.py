@@ -72,6 +72,7 @@ class RowReuse:
         self._unsettled: set[str] | None = None
         self._gone: list[int] | None = None  # positions in ``_order`` of sources gone (``gone``)
         self._crc32: int | None = None  # the old manifest's, as the last run recorded it
+        self._ends: Any = None  # its lines' end offsets, once ``stretches`` planned the rows
         saved = ledger.state_for(STATE)
         if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
@@ -135,7 +136,7 @@ class RowReuse:
         whose row may change (its content is not settled, or was computed in this run), with
         its old line ``k`` (-1: a new source); ``("gone", k, 0)`` old line ``k``, whose source is
         gone. Planned only when the rows are settled (``settle``) and the old manifest is the
-        one the last run wrote, byte for byte (its CRC-32, ``line_ends``): the other rows are
+        one the last run wrote, byte for byte (its CRC-32, ``_line_ends``): the other rows are
         then those the last run wrote; and only when at most ``LOOKED_AT_MOST`` of the files
         are looked at. Every file whose content is not listed is known to the last run (a new
         source's content is unsettled); the two sides' counts are checked."""
@@ -178,27 +179,33 @@ class RowReuse:
                 fi, oi = fi + 1, oi + (k >= 0)
         if fi != n or oi != m:
             return None
-        return steps if self.line_ends() is not None else None
+        self._ends = self._line_ends()
+        return steps if self._ends is not None else None
 
-    def line_ends(self) -> Any:
-        """The end offset of each line of the old manifest (a numpy array), read once, or None
-        when its CRC-32 is not the one recorded or its lines are not the last run's rows."""
-        if not hasattr(self, "_ends"):
-            import numpy as np
-            ends, crc, base = [], 0, 0
-            try:
-                with open(self.manifest, "rb") as fh:
-                    while chunk := fh.read(READ_CHUNK):
-                        crc = zlib.crc32(chunk, crc)
-                        ends.append(np.flatnonzero(np.frombuffer(chunk, np.uint8) == 10) + (base + 1))
-                        base += len(chunk)
-            except OSError:
-                ends = []
-            found = np.concatenate(ends) if ends else np.zeros(0, np.int64)
-            good = (ends and crc == self._crc32 and len(found) == len(self._order)
-                    and int(found[-1]) == base)
-            self._ends = found if good else None
-        return self._ends
+    def _line_ends(self) -> Any:
+        """The end offset of each line of the old manifest (a numpy array), or None when its
+        CRC-32 is not the one recorded or its lines are not the last run's rows."""
+        import numpy as np
+        ends, crc, size = [], 0, 0
+        try:
+            with open(self.manifest, "rb") as fh:
+                while chunk := fh.read(READ_CHUNK):
+                    crc = zlib.crc32(chunk, crc)
+                    ends.append(np.flatnonzero(np.frombuffer(chunk, np.uint8) == 10) + (size + 1))
+                    size += len(chunk)
+        except OSError:
+            return None
+        found = np.concatenate(ends) if ends else np.zeros(0, np.int64)
+        if crc != self._crc32 or len(found) != len(self._order) or not len(found) or int(found[-1]) != size:
+            return None
+        return found
+
+    def reusable(self, f: Any, digest: str | None, line: str) -> bool:
+        """Whether the old ``line`` is the source's row as it would be built: its digest is
+        unchanged, its content's per-file results were not computed in this run, and the line
+        starts with its id and source."""
+        return (self.old.get(f.rel) == digest and f.sha256 not in self.recomputed
+                and line.startswith(line_prefix(f)))
 
     def opened(self) -> "OldManifest":
         """The old manifest open for reading its lines by number (after ``stretches`` planned
@@ -215,7 +222,7 @@ class RowReuse:
 
 class OldManifest:
     """The last run's manifest open for reading (one handle for the whole rerun), its lines by
-    number (``ends``: each line's end offset, ``RowReuse.line_ends``)."""
+    number (``ends``: each line's end offset, ``RowReuse._line_ends``)."""
 
     def __init__(self, path: Path, ends: Any):
         self.path, self._ends = path, ends
