@@ -367,8 +367,41 @@ def test_lone_members_as_last_run_equal_a_full_computation_after_any_change(corp
     reused = {k for k in inc if inc[k] is res1.get(k)}
     if change == "moved_lone":  # a lone member's result names no source: it is reused
         assert lone[1].id in reused
-    else:  # a member gone, or other link options: no link of the last run is trusted
+    elif change == "config":  # other link options: no link of the last run is trusted
         assert not reused
+    else:  # a member gone: the links among the members left are (test_a_rerun_after_removals...)
+        assert reused and lone[0].id not in reused
+
+
+@pytest.mark.parametrize("removed", ["lone", "kept", "dropped", "content", "several"])
+def test_a_rerun_after_removals_equals_a_search_of_every_pair(corpus, removed):
+    """Files removed since the last run: the links among the members left are reused, the
+    members of a note content that lost one are searched again, and the clusters that held a
+    removed member are decided again. Every result and the saved state must equal a search of
+    every pair with the same generic shingles (the oracle: the last run's generic shingles are
+    kept while its links are reused, as on a rerun that adds files), and the clusters that held
+    no removed member keep their stored results (the same objects)."""
+    members, truth = corpus
+    res1, st1 = run(members, flags={})
+    by_kind = {truth[m.id]: m.id for m in members}
+    content = sorted([by_kind[(0, 0, "original")], by_kind[(0, 0, "same_content")]])
+    assert res1[content[0]].values["cluster"] == res1[content[1]].values["cluster"]
+    assert any(set(content) <= set(c) for c in st1.current["contents"])  # one note content
+    lone = next(m.id for m in members if res1[m.id].values["cluster_size"] == 1)
+    kept = res1[by_kind[(1, 0, "original")]].values["cluster"]
+    dropped = by_kind[(2, 0, "transposed")]
+    assert not res1[dropped].kept and res1[kept].kept
+    gone = {"lone": [lone], "kept": [kept], "dropped": [dropped], "content": [content[0]],
+            "several": [lone, kept, content[0]]}[removed]
+    second = [m for m in members if m.id not in gone]
+    inc, st_inc = run(second, previous=st1.current, flags={"previous_results": res1})
+    oracle, st_oracle = run(second, previous={k: st1.current[k] for k in ("link_fingerprint", "generic")})
+    assert {k: v.to_json() for k, v in inc.items()} == {k: v.to_json() for k, v in oracle.items()}
+    assert st_inc.current == st_oracle.current
+    reused = {k for k in inc if inc[k] is res1.get(k)}
+    touched = {res1[g].values["cluster"] for g in gone}
+    assert reused and not {k for k in reused if res1[k].values["cluster"] in touched}
+    assert "against stored signatures" in st_inc.notes[0]
 
 
 def test_a_newcomer_joining_two_old_clusters_and_a_missing_result_equal_a_full_computation():

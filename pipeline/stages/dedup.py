@@ -176,7 +176,10 @@ class Dedup(Stage):
         Option("generic_share", float, GENERIC_SHARE,
                "Shingles held by at least this share of the files (and by 10 or more) are generic "
                "(a stock bass or accompaniment figure) and are left out when files are compared; "
-               "1 keeps every shingle.", unit_interval),
+               "1 keeps every shingle. They are counted when every pair is searched (a first run, "
+               "--fresh, other dedup options) and kept while a rerun reuses the stored links, with "
+               "files added or removed, so the pairs a rerun compares are compared as the stored "
+               "ones were.", unit_interval),
         Option("keep_policy", str, "most_notes",
                "Order in which a cluster's members are kept (the first always; a later one unless "
                "it is a direct duplicate of one kept before it): " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
@@ -228,10 +231,11 @@ class Dedup(Stage):
     def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         """Results for every member. With ``state.flags["previous_results"]`` (the last run's
         results by member id, given by the runner when it stored them), a cluster none of whose
-        members is new and none of whose sources changed keeps the last run's results as they
-        are (the same objects are returned): its members, links and kept members are the last
-        run's, so recomputing would give the same. Everything that decides which clusters
-        exist is computed over the whole corpus each time, as without them."""
+        members is new, none of whose sources changed and that held no removed member keeps
+        the last run's results as they are (the same objects are returned): its members, links
+        and kept members are the last run's, so recomputing would give the same. Everything
+        that decides which clusters exist is computed over the whole corpus each time, as
+        without them."""
         o = self.opts
         threshold = float(o["threshold"])
         arts: dict[str, dict[str, Any]] = {}
@@ -267,21 +271,27 @@ class Dedup(Stage):
         # another track layout, other voices, so other pairs with the corpus) at or above the
         # threshold (all of them, not only those that join clusters: a drop needs its own pair);
         # last run's links are reused when nothing they depend on changed (its old members are
-        # then searched as it searched them)
+        # then searched as it searched them; after removals, see ``_after_removal``)
         present = set(ids)
-        reusable = (prev.get("link_fingerprint") == self._link_fingerprint()
-                    and set(prev.get("members", [])) <= present)
+        same_links = prev.get("link_fingerprint") == self._link_fingerprint()
+        last_members = prev.get("members", []) if same_links else []
+        gone = {k for k in last_members if k not in present}
+        # after files were removed the links among the files left are reused too, when the last
+        # run saved its note contents of several members (``_after_removal``)
+        reusable = same_links and (not gone or "contents" in prev)
+        renewed, touched = self._after_removal(gone, prev, present) if reusable and gone else (set(), set())
         del present
-        old = set(prev.get("members", [])) if reusable else set()
+        old = set(last_members) - gone - renewed if reusable else set()
         searched, extra = searched_members(ids, content_rep, arts, old,
-                                           set(prev.get("searched_extra", [])) if reusable else set())
+                                           set(prev.get("searched_extra", [])) & old if reusable else set())
         near = _NearLinks(content_rep)
         near_links: list[list] = []
         if reusable:
             for a, b, sim in prev.get("links", []):
-                near.add(a, b, float(sim))
-                uf.union(a, b)
-                near_links.append([a, b, float(sim)])
+                if a in old and b in old:
+                    near.add(a, b, float(sim))
+                    uf.union(a, b)
+                    near_links.append([a, b, float(sim)])
         index = LSHIndex(int(o["num_perm"]), int(o["bands"]))
         min_sh = int(o["min_shingles"])
         lengths = lengths_of([arts[k] for k in searched], "shingles")
@@ -369,13 +379,14 @@ class Dedup(Stage):
         else:
             # speed: only the clusters that may differ from the last run's are walked (see
             # ``_changed_clusters``); the others keep its results, kept members and sources
-            groups = self._changed_clusters(uf, ids, old, last, prev["cluster_sources"], by_id)
+            groups = self._changed_clusters(uf, ids, old, last, prev["cluster_sources"], by_id, touched)
             again = {k for g in groups for k in g}
             results = {k: last[k] for k in ids if k not in again}
             # memory: the members' own id and source strings, not the saved state's copies
             # (which go with it once the stage is done)
-            kept_ids = [by_id[k].id for k in prev.get("kept", []) if k not in again]
-            cluster_sources = {by_id[k].id: by_id[k].source for k in prev["cluster_sources"] if k not in again}
+            kept_ids = [by_id[k].id for k in prev.get("kept", []) if k not in again and k in by_id]
+            cluster_sources = {by_id[k].id: by_id[k].source for k in prev["cluster_sources"]
+                               if k not in again and k in by_id}
         # memory: one detail text and thresholds dict shared by the results of every member
         # found alone (read-only), not one of each per member
         alone = "no duplicate found at threshold %.2f" % threshold
@@ -395,6 +406,7 @@ class Dedup(Stage):
             results.update(self._cluster_results(order, kept, dropped, facts, threshold))
         state.save("link_fingerprint", self._link_fingerprint())
         state.save("members", ids)
+        state.save("contents", _contents_of_several(content_rep))
         state.save("links", sorted(near_links))
         state.save("searched_extra", extra)
         state.save("kept", sorted(kept_ids))
@@ -469,15 +481,40 @@ class Dedup(Stage):
         return generic_shingles(sample, share=share)
 
     @staticmethod
+    def _after_removal(gone: set[str], prev: dict[str, Any], present: set[str]) -> tuple[set[str], set[str]]:
+        """After the last run's members ``gone`` were removed: the members left of its note
+        contents of several members that lost one (``renewed``: searched again as new ones, as
+        the removed member may have been the one whose pairs they shared, and their stored
+        links dropped), and the members left that a removed one was linked to (``touched``:
+        their clusters are decided again). Every other stored link joins two members left and
+        holds as it was measured; a cluster that held a removed member reaches one of these
+        through the links left (its other members were joined to the removed one through a
+        link or a note content)."""
+        renewed: set[str] = set()
+        for content in prev["contents"]:
+            if any(k in gone for k in content):
+                renewed.update(k for k in content if k in present)
+        touched: set[str] = set()
+        for a, b, _ in prev.get("links", []):
+            if a in gone and b in present:
+                touched.add(b)
+            elif b in gone and a in present:
+                touched.add(a)
+        return renewed, touched
+
+    @staticmethod
     def _changed_clusters(uf: UnionFind, ids: list[str], old: set[str], last: Any,
-                          last_sources: dict[str, str], by_id: dict[str, Member]) -> list[list[str]]:
+                          last_sources: dict[str, str], by_id: dict[str, Member],
+                          touched: set[str] = frozenset()) -> list[list[str]]:
         """The clusters (``uf``'s sets, as ``UnionFind.groups`` gives them) that may not be the
         last run's as it wrote them: those holding a new member, a member without a stored
-        result (``last``), or a member of a cluster of several (whose details name sources)
-        no longer represented by the source path it had (``last_sources``). The others are the
-        last run's clusters: the stored links are reused, and every new link has a new member."""
+        result (``last``), a member of a cluster of several (whose details name sources)
+        no longer represented by the source path it had (``last_sources``), or a member that
+        was linked to a removed one (``touched``). The others are the last run's clusters: the
+        stored links are reused, and every new link has a new member."""
         changed = [k for k in ids if k not in old or k not in last]
         changed += [k for k, source in last_sources.items() if k in by_id and by_id[k].source != source]
+        changed += sorted(touched)
         return uf.groups_of(changed)
 
     def _cluster_results(self, order: list[str], kept: list[str],
@@ -636,6 +673,16 @@ def _choose_searched(block: list[tuple[list[str], list[str], dict[str, tuple]]],
                 chosen.append(k)
         searched.extend(chosen)
         extra.extend(k for k in chosen if k != members[0])
+
+
+def _contents_of_several(content_rep: dict[str, str]) -> list[list[str]]:
+    """The note contents of several members (``content_rep``: member -> the first member of its
+    content), each as its members in id order, for the next run (``Dedup._after_removal``)."""
+    several: dict[str, list[str]] = {}
+    for k, rep in content_rep.items():
+        if rep != k:
+            several.setdefault(rep, [rep]).append(k)
+    return sorted(several.values())
 
 
 def _first_of_each(ids: list[str], values: list[str]) -> list[str]:
