@@ -69,6 +69,9 @@ def test_reruns_reuse_the_ledger(doc: dict) -> None:
     assert 0 < r["new_1pct"]["counts"]["computed"] <= r["new_files"]
     assert r["unchanged"]["counts"]["computed"] == 0
     assert r["unchanged"]["counts"]["reused"] == r["unchanged"]["counts"]["contents"]
+    # the new files removed again: the corpus of the full run, nothing to compute
+    assert r["removed_1pct"]["files"] == TINY.mem[0] and r["removed_1pct"]["counts"]["computed"] == 0
+    assert "new files removed again" in doc["table"]
 
 
 def test_memory_section_reruns_its_larger_run(doc: dict) -> None:

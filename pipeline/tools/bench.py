@@ -19,7 +19,8 @@ Sections (``--only NAME``, repeatable):
             pretty_midi notes, music21 ``analyze('key')``, datasketch MinHash of pitch-interval
             4-grams into ``MinHashLSH``, random split) on a subset of each class, and our
             pipeline on exactly the same files, side by side
-``rerun``   a full run, a rerun with 1 % new files, a rerun with nothing changed
+``rerun``   a full run, a rerun with 1 % new files, a rerun with nothing changed, a rerun
+            with the new files removed again
 ``memory``  peak memory (RSS) of the full run at two corpus sizes (or those of ``--mem-sizes``),
             growth per file, and the reruns at the second size
 ``dedup``   ``pipeline.tools.bench_dedup`` (precision/recall and cost of near-duplicate removal)
@@ -401,7 +402,8 @@ class Bench:
 
     def _reruns(self, full: dict[str, Any], inp: Path, out: Path, base_n: int) -> dict[str, Any]:
         """After a full run of ``base_n`` files from ``inp`` into ``out``: a rerun with 1% new
-        files added to ``inp``, then one with nothing changed, as fractions of the full run."""
+        files added to ``inp``, then one with nothing changed, then one with those files removed
+        again (``inp`` as it was), as fractions of the full run."""
         n_new = max(1, base_n // 100)
         new = ensure_corpus(self.scratch / "corpora" / f"rerun_new_{n_new}", n_new, SEEDS["rerun_new"])
         if full.get("timed_out"):
@@ -414,10 +416,15 @@ class Bench:
         same = run_pipeline(self.config, inp, out, "auto", fresh_output=False,
                            timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
         self.log(f"[rerun] {full['files'] + n_new} files, nothing changed: {same['wall_s']} s")
-        done = not any(r.get("timed_out") for r in (full, added, same))
-        return {"full": full, "new_1pct": added, "unchanged": same, "new_files": n_new,
+        shutil.rmtree(inp / "new")  # links to the new corpus's files
+        removed = run_pipeline(self.config, inp, out, "auto", fresh_output=False,
+                               timeout=self.scale.run_timeout_s, memory_mb=self.scale.run_memory_mb)
+        self.log(f"[rerun] {full['files']} files, the {n_new} new ones removed again: {removed['wall_s']} s")
+        done = not any(r.get("timed_out") for r in (full, added, same, removed))
+        return {"full": full, "new_1pct": added, "unchanged": same, "removed_1pct": removed, "new_files": n_new,
                 "new_1pct_fraction": round(added["wall_s"] / full["wall_s"], 4) if done else None,
-                "unchanged_fraction": round(same["wall_s"] / full["wall_s"], 4) if done else None}
+                "unchanged_fraction": round(same["wall_s"] / full["wall_s"], 4) if done else None,
+                "removed_1pct_fraction": round(removed["wall_s"] / full["wall_s"], 4) if done else None}
 
     def memory(self) -> dict[str, Any]:
         """Peak memory of full runs at each size of ``scale.mem`` (the first size is one chunk
@@ -492,6 +499,13 @@ def _times(run: dict, floor: dict) -> float | None:
     if run.get("timed_out") or not floor["wall_s"]:
         return None
     return round(run["wall_s"] / floor["wall_s"], 2)
+
+
+def _removed_rows(add: Callable[[str, Any], None], r: dict[str, Any]) -> None:
+    """The table's rows of the rerun with the new files removed again (benches before it had none)."""
+    if r.get("removed_1pct_fraction") is not None:
+        add(f"  rerun with the {r['new_files']:,} new files removed again (s)", r["removed_1pct"]["wall_s"])
+        add("  ... as a fraction of the full run", f"{100 * r['removed_1pct_fraction']:.1f}%")
 
 
 def _num(v: Any) -> str:
@@ -626,6 +640,7 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
         add("  ... as a fraction of the full run", f"{100 * r['new_1pct_fraction']:.1f}%")
         add("  rerun with nothing changed (s)", r["unchanged"]["wall_s"])
         add("  ... as a fraction of the full run", f"{100 * r['unchanged_fraction']:.1f}%")
+        _removed_rows(add, r)
     m = results.get("memory")
     if m:
         rows.append(("peak memory of the full run (all workers; max of tree PSS and main RSS)", ""))
@@ -649,6 +664,7 @@ def format_table(results: dict, targets: list[dict], info: dict) -> str:
             add("  ... as a fraction of the full run", f"{100 * rl['new_1pct_fraction']:.1f}%")
             add("  rerun with nothing changed (s)", rl["unchanged"]["wall_s"])
             add("  ... as a fraction of the full run", f"{100 * rl['unchanged_fraction']:.1f}%")
+            _removed_rows(add, rl)
     if results.get("cluster"):
         from .bench_cluster import table_rows
         rows.extend((a, "" if b is None else b if isinstance(b, str) else _num(b))
