@@ -70,7 +70,7 @@ class RowReuse:
         self.facts: dict[str, Any] | None = None
         #: contents whose rows may differ from the last run's (``settle``); None: any row may
         self._unsettled: set[str] | None = None
-        self._gone: list[int] | None = None  # positions in ``_order`` of sources gone (``gone``)
+        self._gone: list[int] | None = None  # positions in ``_order`` of sources gone (``_gone_lines``)
         self._crc32: int | None = None  # the old manifest's, as the last run recorded it
         self._ends: Any = None  # its lines' end offsets, once ``stretches`` planned the rows
         saved = ledger.state_for(STATE)
@@ -124,10 +124,14 @@ class RowReuse:
     def gone(self, files: Any) -> list[str]:
         """Sources of the last run that this run does not have (``files``: the run's
         ``SourceTable``), in source order."""
+        return [self._order[k] for k in self._gone_lines(files)]
+
+    def _gone_lines(self, files: Any) -> list[int]:
+        """The old manifest's lines (positions in ``_order``) whose source is gone; found once."""
         if self._gone is None:
             present = files.path_set()
             self._gone = [k for k, s in enumerate(self._order) if s not in present]
-        return [self._order[k] for k in self._gone]
+        return self._gone
 
     def stretches(self, files: Any) -> list[tuple[str, int, int]] | None:
         """The new manifest as steps over the old one, or None when it cannot be planned so
@@ -146,8 +150,7 @@ class RowReuse:
         look = files.indices_of(self._unsettled.union(self.recomputed))
         if len(look) > n * LOOKED_AT_MOST:
             return None  # speed: the walk reads the old manifest in one pass
-        self.gone(files)
-        gone = self._gone
+        gone = self._gone_lines(files)
         steps: list[tuple[str, int, int]] = []
         fi = oi = 0  # the next file, the next old line
 
