@@ -55,6 +55,7 @@ class StageWalk:
         alive = list(rep)  # contents in first-source order (sorted paths)
         ids: list[str] | None = None  # the member ids of ``alive``, once a corpus step made them
         upstream: dict[str, dict[str, Any]] = {}  # stage -> id -> Result (reads like StageResult)
+        stepped: dict[str, tuple[list[str], list[str]]] = {}  # corpus stage -> its (contents, member ids)
         for st in self.stages:
             t = time.perf_counter()
             if st.kind == "file":
@@ -94,12 +95,14 @@ class StageWalk:
                 last = None  # the last run's results of this stage, when it stored them
                 if not self.fresh and saved.get(CORPUS_RESULTS) == self.chains[st.name]:
                     last = _last_results(ledger, st.name, st.fingerprint, self.compactor(st.name))
-                state = CorpusState(saved, upstream, {"fresh": self.fresh, "reassign": self.reassign,
-                                                      "previous_results": last})
+                state = CorpusState(saved, upstream, {
+                    "fresh": self.fresh, "reassign": self.reassign, "previous_results": last,
+                    "sources_of": lambda name: _member_sources(stepped.get(name), rep)})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
                 release_free_memory()  # memory: what earlier steps freed is not kept beside this one
                 res = st.run_corpus(members, state) if members else {}
                 mids = members.ids  # memory: the members' id strings, not new ones
+                stepped[st.name] = (alive, mids)
                 del members
                 bar.update(len(alive))
                 bar.close()
@@ -158,6 +161,17 @@ class StageWalk:
         values = {**kept.values, **drop.values}
         return self.compactor(st.name).make(False, drop.reason, drop.detail, values,
                                              {**kept.thresholds, **drop.thresholds})
+
+
+def _member_sources(step: tuple[list[str], list[str]] | None,
+                    rep: Mapping[str, str]) -> Iterator[tuple[str, str]]:
+    """(member id, first source path) of each member of an earlier corpus step (``step``: its
+    contents and member ids; None: the stage did not run): a later stage may judge the layout
+    of every file that step saw, those it dropped included."""
+    if step is None:
+        return iter(())
+    alive, mids = step
+    return ((mid, rep[sha]) for sha, mid in zip(alive, mids))
 
 
 def _ids_of(survivors: list[str], alive: list[str], ids: list[str] | None) -> list[str] | None:

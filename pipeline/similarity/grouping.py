@@ -29,8 +29,9 @@ placed, so the chosen part's deficit is at least ``w / k``).
 from __future__ import annotations
 
 import hashlib
-from collections import defaultdict
-from typing import TYPE_CHECKING, Callable, Hashable, Iterable, Mapping
+from collections import Counter, defaultdict
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any, Callable, Hashable, Iterable, Mapping, Sequence
 
 if TYPE_CHECKING:  # the annotations' numpy; the functions on arrays import it themselves
     import numpy as np
@@ -66,6 +67,72 @@ def group_by_key(member_keys: Mapping[str, Hashable | None]) -> list[list[str]]:
         if k is not None:
             by[k].append(m)
     return [sorted(v) for v in by.values() if len(v) > 1]
+
+
+#: Folder depths ``group_by_folder: auto`` judges, shallowest first.
+FOLDER_DEPTHS = (1, 2, 3)
+#: The share of the files in folders of two or more that must lie in their folder's largest
+#: identity group for ``auto`` to take the folders as pieces (a project default: the layouts
+#: measured lie far on either side of it, README, Split leakage).
+FOLDER_SHARE = 0.8
+#: Folders of two or more files needed before ``auto`` judges a depth at all.
+FOLDER_MIN = 3
+
+
+@dataclass(frozen=True)
+class FolderLayout:
+    """What ``piece_folders`` found: the depth whose folders hold one piece each (None: no
+    depth qualifies), and at ``at`` (that depth, else the depth with the highest share) the
+    share of files lying in their folder's largest identity group and the folders of two or
+    more files it counts."""
+
+    depth: int | None
+    at: int | None
+    share: float
+    folders: int
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"depth": self.depth, "judged_depth": self.at, "share": round(self.share, 4),
+                "folders": self.folders}
+
+
+def piece_folders(files: Iterable[tuple[str, Hashable]], depths: Sequence[int] = FOLDER_DEPTHS,
+                  share: float = FOLDER_SHARE, min_folders: int = FOLDER_MIN) -> FolderLayout:
+    """Whether a collection is laid out one folder per piece, judged from its files' own
+    identity: ``files`` gives each file's path (relative, "/"-separated) and identity group
+    (files the notes link share one). At each depth (a file's first N folder levels, as
+    ``group_by_folder: N`` reads them; files at the top are not counted), the files of folders
+    holding two or more are counted, and with them those lying in their folder's largest group.
+    The shallowest depth with ``min_folders`` such folders and ``share`` of their files in
+    their largest group is returned; a folder that mixes pieces holds few files of any one
+    group (a folder of k different pieces, 1/k), so a layout by composer, session or source
+    stays far below it."""
+    by_parent: dict[str, Counter] = defaultdict(Counter)  # speed: one count per parent folder
+    for path, group in files:
+        parent = path.rpartition("/")[0]
+        if parent:
+            by_parent[parent][group] += 1
+    best = FolderLayout(None, None, 0.0, 0)
+    if not by_parent:  # every file at the top: no folder to judge
+        return best
+    seen: set[tuple[str, ...]] = set()
+    for depth in depths:
+        folders: dict[str, Counter] = defaultdict(Counter)
+        for parent, counts in by_parent.items():
+            folders["/".join(parent.split("/")[:depth])].update(counts)
+        layout = tuple(sorted(folders))
+        if layout in seen:  # no folder this deep: the same folders as a shallower depth
+            continue
+        seen.add(layout)
+        several = [c for c in folders.values() if sum(c.values()) >= 2]
+        total = sum(sum(c.values()) for c in several)
+        together = sum(max(c.values()) for c in several)
+        found = FolderLayout(None, depth, together / total if total else 0.0, len(several))
+        if found.folders >= min_folders and found.share >= share:
+            return FolderLayout(depth, depth, found.share, found.folders)
+        if found.share > best.share or best.at is None:
+            best = found
+    return best
 
 
 def seeded_rank(key: str, seed: int) -> str:

@@ -20,9 +20,12 @@ Which files travel together (one group, never split across parts):
 * all augmentation copies of one source: they are one ``Member`` with several outputs, so they
   travel together by construction and weigh as many files as they write in the ratios
   (``output_count``);
-* optionally files in the same folder (``group_by_folder: true``) or under the same first N
-  folder levels (``group_by_folder: N``; files at the top of the input folder are not grouped
-  by it), with the same normalized title (``group_by_title``) or the same
+* files under one folder when the input is laid out one folder per piece (``group_by_folder:
+  auto``, the default: ``grouping.piece_folders`` judges the layout from the files' own links,
+  so versions the notes do not link, a new melody over the same song, still share a part), or
+  always (``true``: the same folder; ``N``: the same first N folder levels; files at the top of
+  the input folder are not grouped by it);
+* optionally files with the same normalized title (``group_by_title``) or the same
   normalized value of other manifest fields (``group_fields``, e.g. ``[composer]``).
 
 The assignment itself is ``pipeline.similarity.grouping.assign_groups`` (placement rules documented
@@ -39,8 +42,9 @@ from pathlib import PurePosixPath
 from typing import Any
 
 from ..errors import ConfigError
-from ..similarity.grouping import (GROUP_RECALL, achieved_ratios, assign_groups, build_groups,
-                                   group_by_key, near_links_of)
+from ..similarity.grouping import (GROUP_RECALL, FolderLayout, achieved_ratios, assign_groups,
+                                   build_groups, group_by_key, near_links_of, piece_folders)
+from ..similarity.links import UnionFind
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
 from ..store.columns import ValuesOf, column_of, lengths_of, present, stacked
@@ -101,10 +105,10 @@ def normalize_text(value: Any) -> str | None:
 
 
 def _check_folder(v: Any) -> str | None:
-    if isinstance(v, bool) or (isinstance(v, int) and v >= 1):
+    if isinstance(v, bool) or (isinstance(v, int) and v >= 1) or v == "auto":
         return None
-    return ("group_by_folder must be true, false or a folder depth of at least 1; use 1 to tie "
-            "every file under one top-level folder of the input together")
+    return (f"group_by_folder must be auto, true, false or a folder depth of at least 1, not {v!r}; "
+            "use 1 to tie every file under one top-level folder of the input together")
 
 
 def folder_of(source: str, depth: int | None = None) -> str | None:
@@ -162,10 +166,16 @@ class Split(Stage):
                "similarity. null turns near-duplicate and same-content grouping off (the run's "
                "table and summary.json say so).",
                _check_threshold),
-        Option("group_by_folder", (bool, int), False, "true: files in the same folder share a "
-               "part; a number N: files under the same first N folder levels of the input share "
-               "a part (1: one top-level folder per piece, its subfolders included). Files at "
-               "the top of the input folder are not grouped by this.", _check_folder),
+        Option("group_by_folder", (bool, int, str), "auto", "auto: files under one folder share "
+               "a part when the input is laid out one folder per piece, judged from the notes: "
+               "at the shallowest folder depth (1 to 3) where at least 3 folders hold two or more "
+               "files and 80% of those files lie in their folder's largest near-duplicate group "
+               "(dedup's clusters, its dropped files included, and the split's links; off with "
+               "group_threshold: null); true: "
+               "files in the same folder share a part; a number N: files under the same first N "
+               "folder levels share a part (1: one top-level folder per piece, its subfolders "
+               "included); false: folders are not read. Files at the top of the input folder "
+               "are not grouped by this.", _check_folder),
         Option("group_by_title", bool, False, "Files with the same normalized title (casefolded, "
                "accents and punctuation removed) share a part."),
         Option("group_fields", (list, tuple), [], "Other manifest fields whose normalized equal "
@@ -257,10 +267,12 @@ class Split(Stage):
         previous = {} if state.flags.get("reassign") else saved
         ids = sorted(m.id for m in members)
         sizes = self._output_counts(members, state)
-        links, ghosts, signed = self._links(members, state, previous)
+        cluster_of = _dedup_clusters(state)
+        links, ghosts, signed = self._links(members, state, previous, cluster_of)
         for g in ghosts:
             sizes[g] = 0.0
-        groups = build_groups(ids + sorted(ghosts), links, self._forced(members))
+        by_folder, layout = self._folder_rule(members, links, state, cluster_of)
+        groups = build_groups(ids + sorted(ghosts), links, self._forced(members, by_folder))
         assignment, moves = assign_groups(groups, ratios, self.opts["seed"], previous,
                                           self._freeze(), sizes)
         real = set(ids)
@@ -296,9 +308,11 @@ class Split(Stage):
                          "grouping was skipped")
         kept_assign = {m: assignment[m] for m in ids}
         state.save("assignments", {**previous, **kept_assign})
-        state.save("summary", split_summary(kept_assign, ratios, sizes, len(moved),
-                                            self.opts["group_threshold"], len(groups), grouping,
-                                            signed))
+        summary = split_summary(kept_assign, ratios, sizes, len(moved), self.opts["group_threshold"],
+                                len(groups), grouping, signed)
+        summary["group_by_folder"] = {"option": self.opts["group_by_folder"], "applied": by_folder,
+                                      **(layout.as_dict() if layout is not None else {})}
+        state.save("summary", summary)
         return results
 
     def _output_counts(self, members: Sequence[Member], state: CorpusState) -> dict[str, float]:
@@ -318,12 +332,12 @@ class Split(Stage):
         state.save("output_counts", {k: v for k, v in sizes.items() if v != 1.0})
         return sizes
 
-    def _links(self, members: Sequence[Member], state: CorpusState,
-               previous: dict[str, str]) -> tuple[list[tuple[str, str]], set[str], str | None]:
+    def _links(self, members: Sequence[Member], state: CorpusState, previous: dict[str, str],
+               cluster_of: dict[str, Any]) -> tuple[list[tuple[str, str]], set[str], str | None]:
         """Near-duplicate links among members (and links between members of one note
-        content, ``same_content_links``), and links to dedup cluster-mates that left the
-        split but carry a previous part (the ghosts); and the stage whose signatures were
-        compared (None when grouping is off or no member has one)."""
+        content, ``same_content_links``), and links to dedup cluster-mates (``cluster_of``)
+        that left the split but carry a previous part (the ghosts); and the stage whose
+        signatures were compared (None when grouping is off or no member has one)."""
         links: list[tuple[str, str]] = []
         threshold = self.opts["group_threshold"]
         # memory: the members' artifacts (rows of the stage's columns), not an array or a
@@ -363,12 +377,9 @@ class Split(Stage):
                              "(another track layout): each shares that file's part")
             links += same
         ghosts: set[str] = set()
-        dedup = state.upstream.get("dedup") or {}
         by_cluster: dict[Any, list[str]] = {}
-        for mid, res in dedup.items():
-            c = _value(res, "cluster") if res is not None else None
-            if c is not None:
-                by_cluster.setdefault(c, []).append(mid)
+        for mid, c in cluster_of.items():
+            by_cluster.setdefault(c, []).append(mid)
         here = {m.id for m in members}
         for mates in by_cluster.values():
             inside = sorted(x for x in mates if x in here)
@@ -411,9 +422,50 @@ class Split(Stage):
         state.save("links", {"settings": settings, "members": sorted(here), "links": [list(l) for l in links]})
         return links
 
-    def _forced(self, members: Sequence[Member]) -> list[list[str]]:
+    def _folder_rule(self, members: Sequence[Member], links: list[tuple[str, str]], state: CorpusState,
+                     cluster_of: dict[str, Any]) -> tuple[bool | int, FolderLayout | None]:
+        """The folder grouping to apply (False, True or a depth) and, for ``auto``, what
+        ``grouping.piece_folders`` found. ``auto`` judges every file the corpus steps saw: a
+        dedup stage's members (the files it dropped are the best evidence that a folder holds
+        one piece) with dedup's clusters (``cluster_of``), else the split's members; identities
+        joined by the split's links. Off with ``group_threshold: null`` (no grouping by the
+        notes at all)."""
+        option = self.opts["group_by_folder"]
+        if option != "auto":
+            return option, None
+        if self.opts["group_threshold"] is None:  # grouping by the notes turned off: auto too
+            return False, None
+        dedup = state.upstream.get("dedup")
+        sources_of = state.flags.get("sources_of")
+        if dedup and sources_of is not None:
+            files = sources_of("dedup")  # memory: (id, path) pairs made as they are read
+            cluster = cluster_of
+        else:
+            files = ((m.id, m.source) for m in members)
+            cluster = {}
+        uf = UnionFind()
+        for a, b in links:
+            a, b = cluster.get(a, a), cluster.get(b, b)
+            uf.add(a)
+            uf.add(b)
+            uf.union(a, b)
+        known = uf.parent
+
+        def identity(mid: str) -> str:
+            key = cluster.get(mid, mid)
+            return uf.find(key) if key in known else key
+
+        layout = piece_folders((path, identity(mid)) for mid, path in files)
+        if layout.depth is None:
+            return False, layout
+        state.report(f"split: the input is laid out one folder per piece at folder depth "
+                     f"{layout.depth} ({layout.share:.1%} of the files in {layout.folders} folders of "
+                     "two or more lie in their folder's largest near-duplicate group): files under "
+                     "one such folder share a part (group_by_folder: auto)")
+        return layout.depth, layout
+
+    def _forced(self, members: Sequence[Member], by_folder: bool | int) -> list[list[str]]:
         forced: list[list[str]] = []
-        by_folder = self.opts["group_by_folder"]
         if by_folder:
             depth = None if by_folder is True else by_folder
             forced += group_by_key({m.id: folder_of(m.source, depth) for m in members})
@@ -426,6 +478,17 @@ class Split(Stage):
             forced += group_by_key({m.id: normalize_text(meta[f] if f in meta else m.values.get(f))
                                     for m, meta in zip(members, metas)})
         return forced
+
+
+def _dedup_clusters(state: CorpusState) -> dict[str, Any]:
+    """Member id -> dedup cluster, for the members of a dedup stage of this run that lie in one
+    (kept or dropped; read once, without parsing the rest of each result)."""
+    out: dict[str, Any] = {}
+    for mid, res in (state.upstream.get("dedup") or {}).items():
+        c = _value(res, "cluster") if res is not None else None
+        if c is not None:
+            out[mid] = c
+    return out
 
 
 def same_content_links(arts: dict[str, Any]) -> list[tuple[str, str]]:

@@ -104,11 +104,15 @@ def run_stages(recs: list[dict], dedup_opts: dict | None = None, split_opts: dic
     dres = dedup.run_corpus(members, dstate)
     t2 = time.perf_counter()
     kept = [m for m in members if dres[m.id].kept]
-    sstate = CorpusState(upstream={"dedup": dres})
+    # as a run's walk hands them over: every file dedup saw, with its path (the split's
+    # group_by_folder: auto judges the layout on them)
+    sstate = CorpusState(upstream={"dedup": dres}, flags={
+        "sources_of": lambda name: ((m.id, m.source) for m in members) if name == "dedup" else iter(())})
     sres = split.run_corpus(kept, sstate)
     t3 = time.perf_counter()
     links = sstate.current.get("links", {}).get("links", [])
     return {"dedup": dres, "split": sres, "kept": [m.id for m in kept], "group_links": links,
+            "folders": sstate.current.get("summary", {}).get("group_by_folder"),
             "members": {m.id: m for m in members}, "threshold": float(dedup.opts["threshold"]),
             "group_threshold": split.opts["group_threshold"],
             "seconds": {"prepare": t1 - t0, "dedup": t2 - t1, "split": t3 - t2}}
@@ -212,6 +216,7 @@ def evaluate(recs: list[dict], dedup_opts: dict | None = None, split_opts: dict 
                 "below_threshold": int(np.sum(within_arr < threshold))},
             "cross_song_links": cross, "drops_below_threshold": below,
             "seconds": secs, "files_per_s": len(recs) / total if total else float("inf"),
+            "split_folders": run["folders"],
             "prepare_ms_per_file": 1000 * secs["prepare"] / max(1, len(recs))}
 
 
@@ -234,6 +239,7 @@ def format_real(res: dict[str, Any]) -> str:
         f"of {res['songs']} ({100 * len(res['songs_keeping_same_melody']) / max(1, res['songs']):.1f}%) "
         f"{[s for s, _ in res['songs_keeping_same_melody']][:20]}",
         f"songs keeping two or more files: {res['songs_with_two_kept']}",
+        f"split group_by_folder: {json.dumps(res.get('split_folders'))}",
         f"pairs of one song sharing a melody track: {res['same_melody_pairs']}; our similarity "
         f"min {s['min']:.3f}, median {s['median']:.3f}, {s['below_threshold']} below the dedup threshold",
         f"dedup drops below threshold: {res['drops_below_threshold']}",

@@ -1,0 +1,143 @@
+"""The split's ``group_by_folder: auto``: a collection laid out one folder per piece is found
+from its files' own near-duplicate links, and then its folders share a part, so versions the
+notes do not link still travel together.
+
+The real-data checks use twelve files of POP909 (tests/data/pop909, MIT licence, Music X Lab
+2020: its README there says which): the collection's own folders and labels are the outside
+truth of which files are one song. The layout rule's own cases are built from invented paths.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.config import load_config
+from pipeline.engine.runner import Runner
+from pipeline.errors import ConfigError
+from pipeline.similarity.grouping import FOLDER_SHARE, piece_folders
+
+POP = Path(__file__).parent / "data" / "pop909"
+
+
+# --- the layout rule on invented paths ----------------------------------------------------
+
+def _piece_per_folder(n: int, versions: int = 2, stray: int = 0) -> list[tuple[str, str]]:
+    """``n`` folders, each a piece's main file and ``versions`` versions in a subfolder, all of
+    the piece's identity but ``stray`` versions of the first folder (another identity each)."""
+    files = []
+    for k in range(n):
+        files.append((f"song{k}/song{k}.mid", f"piece{k}"))
+        for v in range(versions):
+            odd = k == 0 and v < stray
+            files.append((f"song{k}/versions/v{v}.mid", f"odd{v}" if odd else f"piece{k}"))
+    return files
+
+
+def test_a_folder_per_piece_is_found_at_its_depth():
+    layout = piece_folders(_piece_per_folder(5))
+    assert (layout.depth, layout.share, layout.folders) == (1, 1.0, 5)
+    # under one top folder holding everything, the pieces are one level down
+    nested = [(f"collection/{p}", g) for p, g in _piece_per_folder(5)]
+    assert piece_folders(nested).depth == 2
+    # a version the notes do not link lowers the share, within the bar (14 of 15 files)
+    assert piece_folders(_piece_per_folder(5, stray=1)).depth == 1
+
+
+def test_folders_that_mix_pieces_are_not_pieces():
+    # by composer or session: each folder holds several pieces, one file each
+    mixed = [(f"composer{k % 4}/work{k}.mid", f"piece{k}") for k in range(40)]
+    layout = piece_folders(mixed)
+    assert layout.depth is None and layout.share == pytest.approx(0.1)
+    # one large folder of different pieces outweighs a few folders of one piece each (the share
+    # counts files, not folders)
+    big = _piece_per_folder(3) + [(f"inbox/f{k}.mid", f"x{k}") for k in range(40)]
+    assert piece_folders(big).depth is None
+    # too few folders of two or more to judge; files at the top are not counted
+    assert piece_folders(_piece_per_folder(2)).depth is None
+    assert piece_folders([(f"f{k}.mid", "same") for k in range(10)]).folders == 0
+
+
+def test_the_bar_is_the_share_of_files_in_their_folders_largest_group():
+    # 3 folders of 5 files: 4 of one identity in each is 0.8, at the bar; 3 in one of them is below
+    at_bar = [(f"s{k}/f{v}.mid", f"p{k}" if v < 4 else f"q{k}") for k in range(3) for v in range(5)]
+    assert piece_folders(at_bar).share == pytest.approx(FOLDER_SHARE) and piece_folders(at_bar).depth == 1
+    below = [(p, "other" if p == "s0/f3.mid" else g) for p, g in at_bar]
+    assert piece_folders(below).depth is None
+
+
+# --- POP909's own layout ------------------------------------------------------------------
+
+def _run(tmp_path: Path, corpus: Path, out: str, **split: object) -> tuple[list[dict], dict]:
+    cfg = tmp_path / f"{out}.yaml"
+    cfg.write_text(yaml.safe_dump({
+        "input": str(corpus), "output": str(tmp_path / out), "workers": 1,
+        "stages": [{"validate": {}}, {"key_meter": {}}, {"dedup": {}},
+                   {"split": {"ratios": {"train": 0.5, "valid": 0.25, "test": 0.25}, **split}}]}))
+    Runner(load_config(cfg), quiet=True).run()
+    rows = [json.loads(line) for line in (tmp_path / out / "manifest.jsonl").read_text().splitlines()]
+    summary = json.loads((tmp_path / out / "summary.json").read_text())["split"]["stage"]
+    return rows, summary
+
+
+def _song(source: str) -> str:
+    return Path(source).name[:3]  # the collection's file names begin with the song's number
+
+
+def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
+    rows, summary = _run(tmp_path, POP, "layout")
+    by = {r["source"]: r for r in rows}
+    # the notes alone: 703-v2 (another melody) is not in 703.mid's dedup cluster, so both stay
+    assert by["703/versions/703-v2.mid"]["cluster"] != by["703/703.mid"]["cluster"]
+    kept_703 = [r for r in rows if r["status"] == "kept" and _song(r["source"]) == "703"]
+    assert len(kept_703) >= 2
+    # the layout, judged on the 11 distinct contents (v2 and v3 are byte-identical): 10 lie in
+    # their folder's largest group (703: 4 of 5)
+    assert summary["group_by_folder"] == {"option": "auto", "applied": 1, "depth": 1, "judged_depth": 1,
+                                          "share": pytest.approx(10 / 11, abs=1e-4), "folders": 4}
+    assert len({(r["split"], r["group"]) for r in kept_703}) == 1
+    # every song of the collection lies in one part
+    parts: dict[str, set] = {}
+    for r in rows:
+        if r["status"] == "kept":
+            parts.setdefault(_song(r["source"]), set()).add(r["split"])
+    assert all(len(p) == 1 for p in parts.values())
+    # the user's word wins: no folder grouping, and 703's kept files are apart
+    rows_off, summary_off = _run(tmp_path, POP, "off", group_by_folder=False)
+    assert summary_off["group_by_folder"] == {"option": False, "applied": False}
+    groups = {r["group"] for r in rows_off if r["status"] == "kept" and _song(r["source"]) == "703"}
+    assert len(groups) >= 2
+
+
+def test_pop909_files_in_folders_that_mix_songs_are_not_grouped_by_folder(tmp_path):
+    # the same twelve files laid out by role: the songs' main files in one folder, every
+    # version in another (each folder holds several songs)
+    corpus = tmp_path / "by_role"
+    for src in POP.rglob("*.mid"):
+        rel = src.relative_to(POP)
+        dest = corpus / ("versions" if "versions" in rel.parts else "main") / src.name
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(src, dest)
+    rows, summary = _run(tmp_path, corpus, "by_role_out")
+    assert summary["group_by_folder"]["applied"] is False
+    assert summary["group_by_folder"]["share"] < FOLDER_SHARE
+    # and flat, there is no folder to read
+    flat = tmp_path / "flat"
+    flat.mkdir()
+    for src in POP.rglob("*.mid"):
+        shutil.copyfile(src, flat / src.name)
+    _, summary_flat = _run(tmp_path, flat, "flat_out")
+    assert summary_flat["group_by_folder"] == {"option": "auto", "applied": False, "depth": None,
+                                               "judged_depth": None, "share": 0.0, "folders": 0}
+
+
+def test_group_by_folder_names_what_it_takes():
+    from pipeline.config import parse_config
+    cfg = {"input": "in", "output": "out", "stages": ["validate", {"split": {"group_by_folder": "auto"}}]}
+    parse_config(cfg)  # accepted
+    cfg["stages"][1]["split"]["group_by_folder"] = "sometimes"
+    with pytest.raises(ConfigError, match="must be auto, true, false or a folder depth of at least 1, not 'sometimes'"):
+        parse_config(cfg)
