@@ -99,6 +99,11 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
     assert summary["group_by_folder"] == {"option": "auto", "applied": 1, "depth": 1, "judged_depth": 1,
                                           "share": pytest.approx(10 / 11, abs=1e-4), "folders": 4}
     assert len({(r["split"], r["group"]) for r in kept_703}) == 1
+    # explain names the group's members and the folder rule
+    from pipeline.audit.explain import explain
+    text = explain(tmp_path / "layout", "703/versions/703-v2.mid")
+    assert "group members (2)" in text and "703/versions/703-v4.mid" in text
+    assert "files under the same top-level folder share a part (group_by_folder: auto: 90.9%" in text
     # every song of the collection lies in one part
     parts: dict[str, set] = {}
     for r in rows:
@@ -110,6 +115,27 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
     assert summary_off["group_by_folder"] == {"option": False, "applied": False}
     groups = {r["group"] for r in rows_off if r["status"] == "kept" and _song(r["source"]) == "703"}
     assert len(groups) >= 2
+
+
+def test_pop909_versions_added_later_join_their_songs_part(tmp_path):
+    # the first run lacks 703's versions with another melody; a rerun adds them: they join the
+    # part the song's files already hold, and no file moves
+    corpus = tmp_path / "pop"
+    shutil.copytree(POP, corpus)
+    held = {name: (corpus / "703" / "versions" / name).read_bytes() for name in ("703-v2.mid", "703-v3.mid")}
+    for name in held:
+        (corpus / "703" / "versions" / name).unlink()
+    first, summary = _run(tmp_path, corpus, "grow")
+    assert summary["group_by_folder"]["applied"] == 1
+    part_703 = {r["split"] for r in first if r["status"] == "kept" and _song(r["source"]) == "703"}
+    assert len(part_703) == 1
+    for name, data in held.items():
+        (corpus / "703" / "versions" / name).write_bytes(data)
+    again, summary = _run(tmp_path, corpus, "grow")
+    assert summary["moved"] == 0
+    assert {r["split"] for r in again if r["status"] == "kept" and _song(r["source"]) == "703"} == part_703
+    before = {r["source"]: r["split"] for r in first}
+    assert all(r["split"] == before[r["source"]] for r in again if r["source"] in before)
 
 
 def test_pop909_files_in_folders_that_mix_songs_are_not_grouped_by_folder(tmp_path):

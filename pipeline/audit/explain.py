@@ -53,17 +53,37 @@ def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[st
     return []
 
 
-def _cluster_members(out_dir: Path, cluster: Any) -> list[dict]:
+def _rows_where(out_dir: Path, field: str, value: Any) -> list[dict]:
+    """The manifest rows whose ``field`` is ``value`` (a dedup cluster, a split group)."""
     manifest = out_dir / "manifest.jsonl"
-    if cluster is None or not manifest.is_file():
+    if value is None or not manifest.is_file():
         return []
     members = []
     with open(manifest, encoding="utf-8") as fh:
         for line in fh:
             row = json.loads(line)
-            if row.get("cluster") == cluster:
+            if row.get(field) == value:
                 members.append(row)
     return members
+
+
+def _folder_rule(out_dir: Path) -> str | None:
+    """How the split read the input's folders in the last run (summary.json), when it tied
+    files by folder; None otherwise."""
+    try:
+        rule = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))["split"]["stage"]["group_by_folder"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    applied = rule.get("applied")
+    if not applied:
+        return None
+    level = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
+             else f"the same first {applied} folder levels")
+    if rule.get("option") == "auto":
+        return (f"files under {level} share a part (group_by_folder: auto: {rule.get('share', 0):.1%} of "
+                f"the files in {rule.get('folders')} folders of two or more lie in their folder's largest "
+                "near-duplicate group)")
+    return f"files under {level} share a part (group_by_folder: {applied})"
 
 
 def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
@@ -119,9 +139,19 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
         for key, value in step.get("values", {}).items():
             limit = f"   (limit: {_threshold_text(thresholds[key])})" if key in thresholds else ""
             lines.append(f"    {key:<20} {_fmt(value)}{limit}")
+        if step["stage"] == "split":
+            members = _rows_where(out_dir, "group", step.get("values", {}).get("group"))
+            if len(members) > 1:
+                lines.append(f"    group members ({len(members)}): near-duplicates at the group "
+                             "threshold, dedup cluster-mates and the ties the split was given")
+                for m in members:
+                    lines.append(f"      {m['id']}  {m['source']}  ({m.get('split')})")
+            rule = _folder_rule(out_dir)
+            if rule:
+                lines.append(f"    {rule}")
         if step["stage"] == "dedup":
             cluster = step.get("values", {}).get("cluster")
-            members = _cluster_members(out_dir, cluster)
+            members = _rows_where(out_dir, "cluster", cluster)
             if len(members) > 1:
                 lines.append(f"    cluster members ({len(members)}):")
                 for m in members:
