@@ -267,11 +267,11 @@ class Split(Stage):
         previous = {} if state.flags.get("reassign") else saved
         ids = sorted(m.id for m in members)
         sizes = self._output_counts(members, state)
-        cluster_of = _dedup_clusters(state)
-        links, ghosts, signed = self._links(members, state, previous, cluster_of)
+        links, ghosts, signed, cluster_of = self._links(members, state, previous)
         for g in ghosts:
             sizes[g] = 0.0
         by_folder, layout = self._folder_rule(members, links, state, cluster_of)
+        del cluster_of
         groups = build_groups(ids + sorted(ghosts), links, self._forced(members, by_folder))
         assignment, moves = assign_groups(groups, ratios, self.opts["seed"], previous,
                                           self._freeze(), sizes)
@@ -332,12 +332,13 @@ class Split(Stage):
         state.save("output_counts", {k: v for k, v in sizes.items() if v != 1.0})
         return sizes
 
-    def _links(self, members: Sequence[Member], state: CorpusState, previous: dict[str, str],
-               cluster_of: dict[str, Any]) -> tuple[list[tuple[str, str]], set[str], str | None]:
+    def _links(self, members: Sequence[Member], state: CorpusState, previous: dict[str, str]
+               ) -> tuple[list[tuple[str, str]], set[str], str | None, dict[str, Any]]:
         """Near-duplicate links among members (and links between members of one note
-        content, ``same_content_links``), and links to dedup cluster-mates (``cluster_of``)
-        that left the split but carry a previous part (the ghosts); and the stage whose
-        signatures were compared (None when grouping is off or no member has one)."""
+        content, ``same_content_links``), and links to dedup cluster-mates that left the split
+        but carry a previous part (the ghosts); the stage whose signatures were compared (None
+        when grouping is off or no member has one); and each dedup member's cluster
+        (``_dedup_clusters``, read after the search: memory, it is not held beside it)."""
         links: list[tuple[str, str]] = []
         threshold = self.opts["group_threshold"]
         # memory: the members' artifacts (rows of the stage's columns), not an array or a
@@ -377,6 +378,7 @@ class Split(Stage):
                              "(another track layout): each shares that file's part")
             links += same
         ghosts: set[str] = set()
+        cluster_of = _dedup_clusters(state)
         by_cluster: dict[Any, list[str]] = {}
         for mid, c in cluster_of.items():
             by_cluster.setdefault(c, []).append(mid)
@@ -390,7 +392,7 @@ class Split(Stage):
                     ghosts.add(x)
                 if x != inside[0] and (x in here or x in ghosts):
                     links.append((inside[0], x))
-        return links, ghosts, signed
+        return links, ghosts, signed, cluster_of
 
     def _near_links(self, arts: dict[str, Any], shingles: Any, state: CorpusState,
                     signed: str | None) -> list[tuple[str, str]]:
