@@ -99,6 +99,11 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
     assert summary["group_by_folder"] == {"option": "auto", "applied": 1, "depth": 1, "judged_depth": 1,
                                           "share": pytest.approx(10 / 11, abs=1e-4), "folders": 4}
     assert len({(r["split"], r["group"]) for r in kept_703}) == 1
+    # the run's table says so
+    from pipeline.outputs.table import split_lines
+    assert split_lines(summary) == ["split  files under the same top-level folder share a part (group_by_folder: "
+                                    "auto: 90.9% of the files in 4 folders of two or more lie in their folder's "
+                                    "largest near-duplicate group)"]
     # explain names the group's members and the folder rule
     from pipeline.audit.explain import explain
     text = explain(tmp_path / "layout", "703/versions/703-v2.mid")

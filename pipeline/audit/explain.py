@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import MidisiftError
+from ..outputs.table import folder_rule_text
 from ..store.ledger import Ledger
 
 
@@ -74,16 +75,7 @@ def _folder_rule(out_dir: Path) -> str | None:
         rule = json.loads((out_dir / "summary.json").read_text(encoding="utf-8"))["split"]["stage"]["group_by_folder"]
     except (OSError, ValueError, KeyError, TypeError):
         return None
-    applied = rule.get("applied")
-    if not applied:
-        return None
-    level = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
-             else f"the same first {applied} folder levels")
-    if rule.get("option") == "auto":
-        return (f"files under {level} share a part (group_by_folder: auto: {rule.get('share', 0):.1%} of "
-                f"the files in {rule.get('folders')} folders of two or more lie in their folder's largest "
-                "near-duplicate group)")
-    return f"files under {level} share a part (group_by_folder: {applied})"
+    return folder_rule_text(rule)
 
 
 def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:

@@ -33,7 +33,7 @@ from ..config import Config
 from ..errors import LedgerError, MidisiftError
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
 from ..outputs.rowreuse import STATE as ROWS_STATE, ManifestCheck, RowReuse
-from ..outputs.table import RunReport, grouping_off, in_part_order
+from ..outputs.table import RunReport, in_part_order, split_lines
 from ..stages import Stage
 from ..stages.base import bind_stages
 from ..store.ledger import Ledger
@@ -285,7 +285,7 @@ class Runner:
         return RunReport(cfg.output, len(files), facts.kept, facts.dropped_by, timings, computed,
                          len(rep) - computed, parts, notes + walk.notes,
                          summary.get("warnings", []),
-                         grouping_off=grouping_off(summary["split"].get("stage")))
+                         split_lines=split_lines(summary["split"].get("stage")))
 
     def _prefetch(self, shas: list[str]) -> None:
         """Read the stored values of the contents whose rows are built next, one query per

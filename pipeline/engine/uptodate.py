@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from .. import __version__
-from ..outputs.table import RunReport, grouping_off, in_part_order
+from ..outputs.table import RunReport, in_part_order, split_lines
 
 NOTE = "nothing changed since the last run: outputs are up to date"
 
@@ -106,7 +106,7 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
     parts = in_part_order(dict(split.get("outputs", {})), split.get("part_order"))
     return RunReport(output, counts["files"], counts["kept"], dropped, {"total": seconds}, 0,
                      counts.get("contents", 0), parts, notes + [NOTE], summary.get("warnings", []),
-                     grouping_off=grouping_off(split.get("stage")))
+                     split_lines=split_lines(split.get("stage")))
 
 
 def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,

@@ -14,15 +14,37 @@ def in_part_order(counts: dict[str, int], configured: Iterable[str] | None) -> d
     return {p: counts[p] for p in order + sorted(p for p in counts if p not in order)}
 
 
-def grouping_off(split_summary: dict | None) -> bool:
-    """Whether the split of a run did not group near-duplicates (``group_threshold: null``),
-    read from its summary (summary.json's ``split.stage``)."""
-    return bool(split_summary) and split_summary.get("near_duplicate_grouping") is False
-
-
 #: The table's line for a split that did not group near-duplicates.
 GROUPING_OFF = ("split  near-duplicate grouping OFF (group_threshold: null): near-duplicates "
                 "may sit in different parts")
+
+
+def split_lines(split_summary: dict | None) -> list[str]:
+    """The table's lines on how the split grouped files, read from its summary (summary.json's
+    ``split.stage``): near-duplicate grouping turned off (``group_threshold: null``), files
+    tied by folder (``group_by_folder``, and what ``auto`` found)."""
+    if not split_summary:
+        return []
+    lines = [GROUPING_OFF] if split_summary.get("near_duplicate_grouping") is False else []
+    rule = folder_rule_text(split_summary.get("group_by_folder"))
+    if rule:
+        lines.append(f"split  {rule}")
+    return lines
+
+
+def folder_rule_text(rule: dict | None) -> str | None:
+    """What the split's ``group_by_folder`` did (summary.json's ``split.stage.group_by_folder``),
+    as a sentence; None when it tied no files by folder."""
+    applied = (rule or {}).get("applied")
+    if not applied:
+        return None
+    where = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
+             else f"the same first {applied} folder levels")
+    if rule.get("option") == "auto":
+        return (f"files under {where} share a part (group_by_folder: auto: {rule.get('share', 0):.1%} "
+                f"of the files in {rule.get('folders')} folders of two or more lie in their folder's "
+                "largest near-duplicate group)")
+    return f"files under {where} share a part (group_by_folder: {applied})"
 
 
 @dataclass
@@ -39,7 +61,7 @@ class RunReport:
     parts: dict[str, int]
     notes: list[str]
     warnings: list[str] = field(default_factory=list)
-    grouping_off: bool = False
+    split_lines: list[str] = field(default_factory=list)  # ``split_lines``
 
     def table(self) -> str:
         drops = [(f"dropped  {stage} / {reason}", n)
@@ -49,8 +71,7 @@ class RunReport:
         w = max([34] + [len(label) + 2 for label, _ in drops + parts])
         lines = [f"{'files in':<{w}}{self.files:>8}", f"{'kept':<{w}}{self.kept:>8}"]
         lines += [f"{label:<{w}}{n:>8}" for label, n in drops + parts]
-        if self.grouping_off:
-            lines.append(GROUPING_OFF)
+        lines.extend(self.split_lines)
         lines.append(f"{'contents decoded / reused':<{w}}{self.computed:>8} / {self.cached}")
         lines.append(f"{'seconds':<{w}}{self.timings.get('total', 0.0):>8.2f}")
         lines.append(f"output: {self.output}")
