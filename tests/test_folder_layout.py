@@ -104,6 +104,8 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
     assert split_lines(summary) == ["split  files under the same top-level folder share a part (group_by_folder: "
                                     "auto: 90.9% of the files in 4 folders of two or more lie in their folder's "
                                     "largest near-duplicate group)"]
+    assert ('data-key="split.stage.group_by_folder.applied" data-value="1">Files under the same top-level folder'
+            in (tmp_path / "layout" / "report.html").read_text(encoding="utf-8"))
     # explain names the group's members and the folder rule
     from pipeline.audit.explain import explain
     text = explain(tmp_path / "layout", "703/versions/703-v2.mid")

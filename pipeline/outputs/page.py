@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from ..store.atomic import write_atomic
+from .table import folder_rule_text
 from ..reasons import REASONS
 
 PITCH_NAMES = ("C", "C#", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")
@@ -427,6 +428,11 @@ def _split_section(summary: dict, facts: Facts) -> str:
         extra += (f'<p>Files moved to another part by this run: <b data-key="split.stage.moved" '
                   f'data-value="{stage["moved"]}">{fmt(stage["moved"])}</b>; groups: '
                   f'<b data-key="split.stage.groups" data-value="{stage.get("groups", 0)}">{fmt(stage.get("groups", 0))}</b>.</p>')
+    rule = folder_rule_text(stage.get("group_by_folder"))
+    if rule:
+        applied = stage["group_by_folder"]["applied"]
+        extra += (f'<p data-key="split.stage.group_by_folder.applied" data-value="{json.dumps(applied)}">'
+                  f'{esc(rule[0].upper() + rule[1:])}.</p>')
     groups = [(f"{k} file{'s' if k > 1 else ''}", v // k if v % k == 0 else round(v / k, 1))
               for k, v in sorted(facts.group_sizes.items())]
     share = [(p, sp["ratios"][p] * 100) for p in order]
