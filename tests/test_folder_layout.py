@@ -71,11 +71,11 @@ def test_the_bar_is_the_share_of_files_in_their_folders_largest_group():
 
 # --- POP909's own layout ------------------------------------------------------------------
 
-def _run(tmp_path: Path, corpus: Path, out: str, **split: object) -> tuple[list[dict], dict]:
+def _run(tmp_path: Path, corpus: Path, out: str, *, dedup: bool = True, **split: object) -> tuple[list[dict], dict]:
     cfg = tmp_path / f"{out}.yaml"
     cfg.write_text(yaml.safe_dump({
         "input": str(corpus), "output": str(tmp_path / out), "workers": 1,
-        "stages": [{"validate": {}}, {"key_meter": {}}, {"dedup": {}},
+        "stages": [{"validate": {}}, {"key_meter": {}}, *([{"dedup": {}}] if dedup else []),
                    {"split": {"ratios": {"train": 0.5, "valid": 0.25, "test": 0.25}, **split}}]}))
     Runner(load_config(cfg), quiet=True).run()
     rows = [json.loads(line) for line in (tmp_path / out / "manifest.jsonl").read_text().splitlines()]
@@ -122,6 +122,16 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
     assert summary_off["group_by_folder"] == {"option": False, "applied": False}
     groups = {r["group"] for r in rows_off if r["status"] == "kept" and _song(r["source"]) == "703"}
     assert len(groups) >= 2
+
+
+def test_without_dedup_the_split_judges_the_layout_on_its_own_links(tmp_path):
+    # every file reaches the split; its own signatures link the versions that share a melody
+    rows, summary = _run(tmp_path, POP, "no_dedup", dedup=False)
+    assert summary["group_by_folder"]["applied"] == 1 and summary["near_duplicate_signatures"] == "split"
+    parts: dict[str, set] = {}
+    for r in rows:
+        parts.setdefault(_song(r["source"]), set()).add(r["split"])
+    assert len(rows) == 12 and all(len(p) == 1 for p in parts.values())
 
 
 def test_pop909_versions_added_later_join_their_songs_part(tmp_path):
