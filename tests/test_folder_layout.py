@@ -69,6 +69,32 @@ def test_the_bar_is_the_share_of_files_in_their_folders_largest_group():
     assert piece_folders(below).depth is None
 
 
+def test_the_rule_counts_the_folders_group_by_folder_applies():
+    # on random layouts, each depth's share and folder count as a plain count over the folders
+    # that ``group_by_folder: N`` ties (``split.folder_of``), so what is judged is what is applied
+    import random
+    from collections import Counter, defaultdict
+    from pipeline.stages.split import folder_of
+    rng = random.Random(7)
+    for _ in range(40):
+        files = []
+        for k in range(rng.randint(0, 60)):
+            depth = rng.randint(0, 4)
+            parts = [rng.choice("abc") for _ in range(depth)]
+            files.append(("/".join(parts + [f"f{k}.mid"]), rng.choice("xyz") if rng.random() < 0.7 else f"g{k}"))
+        for depth in (1, 2, 3):
+            by = defaultdict(Counter)
+            for path, group in files:
+                folder = folder_of(path, depth)
+                if folder is not None:
+                    by[folder][group] += 1
+            several = [c for c in by.values() if sum(c.values()) >= 2]
+            total = sum(sum(c.values()) for c in several)
+            found = piece_folders(files, depths=(depth,), min_folders=0, share=2.0)  # never applied
+            assert found.folders == len(several)
+            assert found.share == pytest.approx(sum(max(c.values()) for c in several) / total if total else 0.0)
+
+
 # --- POP909's own layout ------------------------------------------------------------------
 
 def _run(tmp_path: Path, corpus: Path, out: str, *, dedup: bool = True, **split: object) -> tuple[list[dict], dict]:
