@@ -54,18 +54,21 @@ def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[st
     return []
 
 
-def _rows_where(out_dir: Path, field: str, value: Any) -> list[dict]:
-    """The manifest rows whose ``field`` is ``value`` (a dedup cluster, a split group)."""
+def _mates(out_dir: Path, wanted: dict[str, Any]) -> dict[str, list[dict]]:
+    """For each field of ``wanted`` (``cluster``: a dedup cluster, ``group``: a split group),
+    the manifest rows holding its value; the manifest read once."""
     manifest = out_dir / "manifest.jsonl"
-    if value is None or not manifest.is_file():
-        return []
-    members = []
+    wanted = {k: v for k, v in wanted.items() if v is not None}
+    found: dict[str, list[dict]] = {k: [] for k in wanted}
+    if not wanted or not manifest.is_file():
+        return found
     with open(manifest, encoding="utf-8") as fh:
         for line in fh:
             row = json.loads(line)
-            if row.get(field) == value:
-                members.append(row)
-    return members
+            for field, value in wanted.items():
+                if row.get(field) == value:
+                    found[field].append(row)
+    return found
 
 
 def _folder_rule(out_dir: Path) -> str | None:
@@ -112,6 +115,10 @@ def _as_data(source: str, sha: str | None, trail: list) -> dict:
             "trail": trail}
 
 
+#: The stage whose step names a file's mates by each field (``_mates``).
+_MATES_OF = {"cluster": "dedup", "group": "split"}
+
+
 def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
     lines = [f"source   {source}", f"id       {(sha or '')[:16]}", f"sha256   {sha}"]
     final = next((s for s in trail if not s["kept"]), None)
@@ -121,6 +128,8 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
     else:
         lines.append(f"status   dropped by {final['stage']}: {final['reason']}")
         lines.append(f"why      {final['detail']}")
+    mates = _mates(out_dir, {field: step.get("values", {}).get(field) for step in trail
+                             for field in ("cluster", "group") if step["stage"] == _MATES_OF[field]})
     for step in trail:
         verdict = "kept" if step["kept"] else f"DROPPED ({step['reason']})"
         lines.append("")
@@ -132,7 +141,7 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
             limit = f"   (limit: {_threshold_text(thresholds[key])})" if key in thresholds else ""
             lines.append(f"    {key:<20} {_fmt(value)}{limit}")
         if step["stage"] == "split":
-            members = _rows_where(out_dir, "group", step.get("values", {}).get("group"))
+            members = mates.get("group", [])
             if len(members) > 1:
                 lines.append(f"    group members ({len(members)}): near-duplicates at the group "
                              "threshold, dedup cluster-mates and the ties the split was given")
@@ -142,8 +151,7 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
             if rule:
                 lines.append(f"    {rule}")
         if step["stage"] == "dedup":
-            cluster = step.get("values", {}).get("cluster")
-            members = _rows_where(out_dir, "cluster", cluster)
+            members = mates.get("cluster", [])
             if len(members) > 1:
                 lines.append(f"    cluster members ({len(members)}):")
                 for m in members:

@@ -457,14 +457,10 @@ class Split(Stage):
             key = cluster.get(mid, mid)
             return uf.find(key) if key in known else key
 
+        # the run's table, report.html and explain say what was found (summary.json,
+        # ``outputs.table.folder_rule_text``)
         layout = piece_folders((path, identity(mid)) for mid, path in files)
-        if layout.depth is None:
-            return False, layout
-        state.report(f"split: the input is laid out one folder per piece at folder depth "
-                     f"{layout.depth} ({layout.share:.1%} of the files in {layout.folders} folders of "
-                     "two or more lie in their folder's largest near-duplicate group): files under "
-                     "one such folder share a part (group_by_folder: auto)")
-        return layout.depth, layout
+        return (False if layout.depth is None else layout.depth), layout
 
     def _forced(self, members: Sequence[Member], by_folder: bool | int) -> list[list[str]]:
         forced: list[list[str]] = []
