@@ -11,7 +11,8 @@ the same way. For each it prints the split's decision (``summary.json``,
 ``split.stage.group_by_folder``) and, at folder depths 1 to 3, the share of the files in folders
 of two or more that lie in their folder's largest near-duplicate group (``grouping.piece_folders``
 on the manifest's dedup clusters joined by the split's groups), with the folders counted.
-The reserved collections (``eval_sets.RESERVED``) are never read. Rendering takes a few minutes
+The reserved collections (``eval_sets.RESERVED``) are never read (the sets are those of
+the key and meter evaluations). Rendering takes a few minutes
 on 2 cores; rendered files are kept in WORK and reused.
 """
 from __future__ import annotations
@@ -24,7 +25,7 @@ from typing import Any
 import yaml
 
 from ..similarity.grouping import piece_folders
-from .eval_sets import CLASSICAL_FOLDERS, CLASSICAL_MAX_BYTES, FOLK_FILES, RESERVED, _parallel_map, _spaced
+from .eval_sets import _parallel_map, _spaced, chorale_paths, classical_paths, folk_tunes_text
 
 
 def _render_to(item: tuple[str, str, str]) -> str | None:
@@ -50,33 +51,21 @@ def _render_to(item: tuple[str, str, str]) -> str | None:
 
 
 def render_corpus_layout(work: Path, chorales: int, classical: int | None, folk: int) -> Path:
-    """The works, rendered under ``work / "by-composer"`` in the corpus's folders."""
+    """The works, rendered under ``work / "by-composer"`` in the corpus's folders: the chorales,
+    classical works and folk tunes the key and meter evaluations read (``eval_sets``: one
+    encoding per work), evenly spaced subsets."""
     from music21 import corpus
     root = Path(corpus.getWork("bach/bwv66.6")).parent.parent
     out = work / "by-composer"
     items: list[tuple[str, str, str]] = []
-    bach = sorted(p for p in (root / "bach").glob("bwv*") if p.suffix in (".mxl", ".xml", ".krn"))
-    for p in _spaced(bach, chorales):
+    for p in _spaced(chorale_paths(), chorales):
         items.append(("score", str(p), str(out / "bach" / (p.stem + ".mid"))))
-    scores = []
-    for folder in CLASSICAL_FOLDERS:
-        for p in sorted((root / folder).rglob("*")):
-            if p.suffix in (".mxl", ".xml", ".musicxml", ".krn") and "__" not in str(p) \
-                    and p.stat().st_size <= CLASSICAL_MAX_BYTES:
-                scores.append(p)
-    for p in _spaced(scores, classical):
+    for p in _spaced(classical_paths(), classical):
         items.append(("score", str(p), str(out / p.relative_to(root).with_suffix(".mid"))))
-    tunes = []
-    for rel in FOLK_FILES:
-        assert not any(r in rel for r in RESERVED)
-        text = Path(corpus.getWork(rel)).read_text(encoding="latin-1")
-        book = rel.replace("/", "-").removesuffix(".abc")
-        for i, chunk in enumerate(text.split("\nX:")):
-            chunk = "X:" + chunk if i else chunk
-            if "\nK:" in chunk:
-                tunes.append((book, i, chunk))
-    for book, i, chunk in _spaced(tunes, folk):
-        items.append(("abc", chunk, str(out / "folk" / book / f"tune{i:04d}.mid")))
+    for name, text in _spaced(folk_tunes_text(), folk):  # name: "book.abc#index"
+        book, index = name.rsplit("#", 1)
+        dest = out / "folk" / book.replace("/", "-").removesuffix(".abc") / f"tune{int(index):04d}.mid"
+        items.append(("abc", text, str(dest)))
     done = [d for d in _parallel_map(_render_to, items) if d]
     print(f"{len(done)} of {len(items)} works rendered under {out}")
     return out
