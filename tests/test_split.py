@@ -253,6 +253,33 @@ def test_dedup_replacement_inherits_the_part():
     assert s2.current["assignments"][old] == "test"   # kept in the state for later reruns
 
 
+
+def test_a_dropped_duplicate_that_becomes_kept_keeps_its_pieces_part():
+    """Found by an audit on POP909 (README, Split): a song's main file, dropped by dedup as a
+    copy of a version sitting in test, became kept in train when that version was removed
+    together with some train songs (the new member went to the part furthest below its share).
+    A file dedup dropped carries its cluster's part to the next run, so it stays in test."""
+    c = Corpus(6)
+    base = [c.fresh() for _ in range(50)]
+    first = parts(run([c.member(m) for m in base])[0])
+    old = next(m for m in base if first[m] == "test")
+    copy = c.near(old, 0.95)
+    dedup1 = {m: StageResult.keep(values={"cluster": m}) for m in base}
+    dedup1[copy] = StageResult.drop("near_duplicate", "", values={"cluster": old, "duplicate_of": old})
+    r1, s1 = run([c.member(m) for m in base], upstream={"dedup": dedup1})
+    assert parts(r1)[old] == "test" and s1.current["inherited"][copy] == "test"
+    # the test file and ten train files removed: train is now the part furthest below its share
+    gone = {old} | set([m for m in base if first[m] == "train"][:10])
+    left = [m for m in base if m not in gone] + [copy]
+    dedup2 = {m: StageResult.keep(values={"cluster": m}) for m in left}
+    r2, s2 = run([c.member(m) for m in left], previous=s1.current, upstream={"dedup": dedup2})
+    assert parts(r2)[copy] == "test"
+    assert copy not in s2.current["inherited"] and s2.current["assignments"][copy] == "test"
+    # without the part it carried the copy would have gone to train (what the test guards)
+    r3, _ = run([c.member(m) for m in left], previous={**s1.current, "inherited": {}},
+                upstream={"dedup": dedup2})
+    assert parts(r3)[copy] == "train"
+
 def test_last_run_results_are_returned_for_members_whose_split_did_not_change():
     """With the last run's results at hand (as the runner hands them over), a member whose
     part, group and group size are unchanged gets that result object back; every result and

@@ -31,7 +31,9 @@ Which files travel together (one group, never split across parts):
 The assignment itself is ``pipeline.similarity.grouping.assign_groups`` (placement rules documented
 there). Reruns keep every file's previous part; files dropped by dedup in favour of a new file
 pass their part on to it (they stay in the saved state, weightless), so the new representative
-of a test piece stays in test. ``state.flags["reassign"]`` recomputes from scratch.
+of a test piece stays in test; and a file dedup dropped carries its cluster's part to the next
+run (``inherited``), so when its kept copy leaves the input it stays where its piece was.
+``state.flags["reassign"]`` recomputes from scratch.
 """
 from __future__ import annotations
 
@@ -263,17 +265,22 @@ class Split(Stage):
 
     def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
-        saved = dict(state.previous.get("assignments", {}))
-        previous = {} if state.flags.get("reassign") else saved
+        reassign = state.flags.get("reassign")
+        previous = {} if reassign else dict(state.previous.get("assignments", {}))
+        # the parts that files dedup dropped took from their clusters (``_heirs``)
+        inherited = {} if reassign else state.previous.get("inherited", {})
         ids = sorted(m.id for m in members)
         sizes = self._output_counts(members, state)
         links, ghosts, signed, cluster_of = self._links(members, state, previous)
         for g in ghosts:
             sizes[g] = 0.0
         by_folder, layout = self._folder_rule(members, links, state, cluster_of)
+        heirs = _heirs(cluster_of, ids)
         del cluster_of
         groups = build_groups(ids + sorted(ghosts), links, self._forced(members, by_folder))
-        assignment, moves = assign_groups(groups, ratios, self.opts["seed"], previous,
+        # a member new to the split that dedup dropped last run starts from its cluster's part
+        prior = {**{m: inherited[m] for m in ids if m not in previous and m in inherited}, **previous}
+        assignment, moves = assign_groups(groups, ratios, self.opts["seed"], prior,
                                           self._freeze(), sizes)
         real = set(ids)
         moved = {m: (old, new, why) for m, old, new, why in moves if m in real}
@@ -308,6 +315,9 @@ class Split(Stage):
                          "grouping was skipped")
         kept_assign = {m: assignment[m] for m in ids}
         state.save("assignments", {**previous, **kept_assign})
+        carried = {m: p for m, p in inherited.items() if m not in kept_assign}
+        carried.update((m, assignment[rep]) for m, rep in heirs.items())
+        state.save("inherited", carried)
         summary = split_summary(kept_assign, ratios, sizes, len(moved), self.opts["group_threshold"],
                                 len(groups), grouping, signed)
         summary["group_by_folder"] = {"option": self.opts["group_by_folder"], "applied": by_folder,
@@ -487,6 +497,20 @@ def _dedup_clusters(state: CorpusState) -> dict[str, Any]:
         if c is not None:
             out[mid] = c
     return out
+
+
+def _heirs(cluster_of: dict[str, Any], ids: list[str]) -> dict[str, str]:
+    """For each member of a dedup cluster that is not a split member (dedup, or a stage after
+    it, dropped it), the cluster's first split member: the dropped file takes that member's
+    part into the saved state (``inherited``), so when it becomes kept on a later run (its
+    kept copy removed from the input) it starts in the part its piece was in, not in the
+    part a new piece would get."""
+    here = set(ids)
+    first: dict[Any, str] = {}
+    for mid, c in cluster_of.items():
+        if mid in here and (c not in first or mid < first[c]):
+            first[c] = mid
+    return {mid: first[c] for mid, c in cluster_of.items() if mid not in here and c in first}
 
 
 def same_content_links(arts: dict[str, Any]) -> list[tuple[str, str]]:
