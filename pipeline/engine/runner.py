@@ -68,9 +68,12 @@ class Runner:
         # a stage's results depend on its options and on every stage before it
         self._chains: dict[str, str] = {}
         h = hashlib.sha256()
-        for s in self.stages:
+        for i, s in enumerate(self.stages):
             h.update(f"{s.name}:{s.fingerprint};".encode())
             self._chains[s.name] = h.hexdigest()[:16]
+            if s.weighs_later_verdicts:  # and on the per-file stages after it (dedup's keep choice)
+                later = "".join(f"{t.name}:{t.fingerprint};" for t in self.stages[i + 1:] if t.kind == "file")
+                self._chains[s.name] = hashlib.sha256(f"{self._chains[s.name]}|{later}".encode()).hexdigest()[:16]
         self.output_fp = rendering.output_fingerprint(self.stages)
         self._recomputed = ContentMarks({}, 0)  # contents whose per-file results this run computed
         self._remote: Any = None  # the Dask executor while a run names a scheduler

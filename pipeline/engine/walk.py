@@ -97,7 +97,8 @@ class StageWalk:
                     last = _last_results(ledger, st.name, st.fingerprint, self.compactor(st.name))
                 state = CorpusState(saved, upstream, {
                     "fresh": self.fresh, "reassign": self.reassign, "previous_results": last,
-                    "sources_of": lambda name: _member_sources(stepped.get(name), rep)})
+                    "sources_of": lambda name: _member_sources(stepped.get(name), rep),
+                    "dropped_later": _later_drops(self.stages, st, cache, index)})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
                 release_free_memory()  # memory: what earlier steps freed is not kept beside this one
                 res = st.run_corpus(members, state) if members else {}
@@ -172,6 +173,23 @@ def _member_sources(step: tuple[list[str], list[str]] | None,
         return iter(())
     alive, mids = step
     return ((mid, rep[sha]) for sha, mid in zip(alive, mids))
+
+
+def _later_drops(stages: list[Stage], stage: Stage, cache: dict, index: Mapping[str, int]
+                 ) -> Callable[[str], tuple[str, str] | None]:
+    """``(stage, reason)`` of the first per-file stage after ``stage`` whose verdict drops a
+    content (by sha256), else None: every file's per-file verdicts are known before the corpus
+    steps, so dedup can keep, of a cluster, a file that the stages after it keep too."""
+    later = [(st.name, cache[st.name]) for st in stages[stages.index(stage) + 1:]
+             if st.kind == "file" and st.name in cache]
+
+    def dropped_later(sha: str) -> tuple[str, str] | None:
+        i = index[sha]
+        for name, verdicts in later:
+            if verdicts.state[i] == verdicts.DROPPED:
+                return name, verdicts.record(i).reason
+        return None
+    return dropped_later
 
 
 def _ids_of(survivors: list[str], alive: list[str], ids: list[str] | None) -> list[str] | None:

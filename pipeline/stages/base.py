@@ -212,6 +212,10 @@ class Stage:
         this stage's recorded ``values`` for it."""
         return variants
 
+    #: Whether a corpus stage reads the verdicts of the per-file stages after it
+    #: (``state.flags["dropped_later"]``): its results then depend on their options too.
+    weighs_later_verdicts: ClassVar[bool] = False
+
     #: Whether the stage judges byte-identical copies of a file it saw: a copy's trail ends at
     #: this stage with ``byte_copy_verdict`` (one verdict per content is stored, not per path).
     judges_byte_copies: ClassVar[bool] = False

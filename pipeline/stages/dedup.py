@@ -15,8 +15,9 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
    similarity reaches ``threshold`` (``near_duplicate``);
 3. clusters are the connected components of the links (union-find; they are transitive, as
    leakage is, and the split keeps each one in one part). Removal is not transitive: in each
-   cluster, members are taken in ``keep_policy`` order (on a rerun, members kept last time
-   first unless ``displace_kept`` is set); a member with a direct link to a member already
+   cluster, members are taken in ``keep_policy`` order, those a per-file stage after dedup
+   (filter) drops last (on a rerun, members kept last time first among the others unless
+   ``displace_kept`` is set); a member with a direct link to a member already
    kept is dropped, else it is kept too. Each dropped member names the kept member it is most
    similar to among those it links to directly (``duplicate_of``, ``similarity``), so every
    drop is justified by its own pair, never through other members (a chain A~B~C where A and
@@ -182,7 +183,8 @@ class Dedup(Stage):
                "ones were.", unit_interval),
         Option("keep_policy", str, "most_notes",
                "Order in which a cluster's members are kept (the first always; a later one unless "
-               "it is a direct duplicate of one kept before it): " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
+               "it is a direct duplicate of one kept before it), after the files that the "
+               "per-file stages after dedup (filter) keep: " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
                one_of(*KEEP_POLICIES)),
         Option("displace_kept", bool, False,
                "On a rerun, let a newcomer replace a member kept by the previous run.", None),
@@ -211,6 +213,8 @@ class Dedup(Stage):
         return options_fingerprint(self.name, self.version, {k: self.opts[k] for k in _LINK_OPTIONS})
 
     judges_byte_copies = True
+    #: of a cluster, a file the per-file stages after dedup (filter) keep is kept first
+    weighs_later_verdicts = True
 
     def byte_copy_verdict(self, rep_source: str, sha: str, rep_result: dict) -> dict:
         """A byte-identical copy of a file that reached dedup: an exact duplicate of it when
@@ -370,6 +374,9 @@ class Dedup(Stage):
                              self._generic)
         key, _ = KEEP_POLICIES[o["keep_policy"]]
         previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
+        # a file that a per-file stage after dedup drops (filter) is kept only when no file of
+        # its cluster passes them: else the piece would leave the corpus with it
+        later = state.flags.get("dropped_later") or (lambda sha: None)
         last = state.flags.get("previous_results") if reusable and "cluster_sources" in prev else None
         if last is None:
             groups = uf.groups()
@@ -400,10 +407,11 @@ class Dedup(Stage):
                 results[group[0]] = StageResult.keep(alone, values={"cluster": group[0], "cluster_size": 1},
                                                      thresholds=alone_limits)
                 continue
-            order = sorted(group, key=lambda k: (k not in previously_kept, key(facts[k])))
-            kept, dropped = choose_kept(order, facts, near)
+            fails = {k: later(by_id[k].sha256) for k in group}
+            order = sorted(group, key=lambda k: (fails[k] is not None, k not in previously_kept, key(facts[k])))
+            kept, dropped = choose_kept(order, facts, near, lambda k: fails[k] is not None)
             kept_ids.extend(kept)
-            results.update(self._cluster_results(order, kept, dropped, facts, threshold))
+            results.update(self._cluster_results(order, kept, dropped, facts, threshold, fails))
         state.save("link_fingerprint", self._link_fingerprint())
         state.save("members", ids)
         state.save("contents", _contents_of_several(content_rep))
@@ -519,10 +527,12 @@ class Dedup(Stage):
 
     def _cluster_results(self, order: list[str], kept: list[str],
                          dropped: dict[str, tuple[str, float, str]], facts: dict[str, _Facts],
-                         threshold: float) -> dict[str, StageResult]:
+                         threshold: float, fails: dict[str, tuple[str, str] | None]
+                         ) -> dict[str, StageResult]:
         """The results of one cluster of several: ``order`` its members in keep order,
         ``kept`` the kept ones (the first names the cluster), ``dropped`` member -> (kept
-        member it duplicates, their own similarity, kind) (see ``choose_kept``)."""
+        member it duplicates, their own similarity, kind) (see ``choose_kept``), ``fails``
+        member -> (stage, reason) of a per-file stage after dedup that drops it, or None."""
         size, name = len(order), kept[0]
         limits = {"similarity": threshold}
         out: dict[str, StageResult] = {}
@@ -537,12 +547,17 @@ class Dedup(Stage):
                 how = "identical bytes" if kind == "bytes" else "identical note content"
             detail = (f"{'near' if kind == 'near' else 'exact'} duplicate of {rep} "
                       f"({facts[rep]['source']}), {how}; cluster of {size}")
+            if fails[rep] is not None:  # then so does this file (choose_kept)
+                detail += (f"; {rep} is dropped later by {fails[rep][0]} ({fails[rep][1]}), as this "
+                           "file would be")
             out[mid] = StageResult.drop(
                 "near_duplicate" if kind == "near" else "exact_duplicate", detail, values={
                     "cluster": name, "cluster_size": size, "duplicate_of": rep,
                     "similarity": round(float(sim), 4), "duplicate_kind": kind}, thresholds=limits)
             dups[rep].append(f"{mid} ({facts[mid]['source']}, {kind} {sim:.2f})")
         policy = self.opts["keep_policy"]
+        if any(f is not None for f in fails.values()):
+            policy += ", files the stages after dedup keep first"
         for k in kept:
             shown = ", ".join(dups[k][:8]) + (f" and {len(dups[k]) - 8} more" if len(dups[k]) > 8 else "")
             if len(kept) == 1:
@@ -735,7 +750,8 @@ class _OwnPairs:
         return self._done[key]
 
 
-def choose_kept(order: list[str], facts: Any, near: _NearLinks
+def choose_kept(order: list[str], facts: Any, near: _NearLinks,
+                fails_later: Callable[[str], bool] = lambda k: False
                 ) -> tuple[list[str], dict[str, tuple[str, float, str]]]:
     """The kept members of one cluster, and for each other member the kept member it
     duplicates: ``(kept, {member: (kept member, similarity, kind)})``.
@@ -743,8 +759,9 @@ def choose_kept(order: list[str], facts: Any, near: _NearLinks
     Members are taken in ``order`` (the keep order): one with a direct link to a member kept
     before it (same bytes, same note content, or its own pair with it verified at the
     threshold, ``_NearLinks.pair``) is dropped, else it is kept. A dropped member then names,
-    among all kept members it links to directly, the most similar (exact before near at equal
-    similarity, then the first in ``order``). So no drop rests on a chain through other
+    among all kept members it links to directly, one that a later per-file stage does not
+    drop (``fails_later``) before one it drops, then the most similar (exact before near at
+    equal similarity, then the first in ``order``). So no drop rests on a chain through other
     members, nor on a pair of other members of its note content (whose voices, and so
     shingles, may differ from its own), and no two kept members are linked directly (a rerun
     that puts last run's kept members first keeps them all)."""
@@ -774,6 +791,7 @@ def choose_kept(order: list[str], facts: Any, near: _NearLinks
     for k in order:
         if kept_content.get(near.content_rep[k]) == k:
             continue
-        sim, kind, rep = max(links_to_kept(k), key=lambda t: (t[0], t[1] != "near", -rank[t[2]]))
+        sim, kind, rep = max(links_to_kept(k), key=lambda t: (not fails_later(t[2]), t[0], t[1] != "near",
+                                                               -rank[t[2]]))
         dropped[k] = (rep, sim, kind)
     return kept, dropped
