@@ -116,3 +116,21 @@ def test_an_empty_folder_gives_an_empty_table(tmp_path):
     assert len(files) == 0 and list(files) == [] and files.path_set() == set()
     assert fingerprint(files, {}) == [] and len(Contents(files)) == 0
     assert len(SourceTable("/x")) == 0
+
+
+def test_a_folder_holding_another_runs_output_is_not_input(tmp_path):
+    """An audit found that an output folder placed inside the input folder, once another run
+    wrote elsewhere, had its normalized copies read as input (141 of the kept files became
+    copies). A folder below the input that holds a run's ledger is skipped with a note; given
+    as the input folder itself it is read (a user may mean to)."""
+    (tmp_path / "in" / "songs").mkdir(parents=True)
+    (tmp_path / "in" / "songs" / "a.mid").write_bytes(b"MThd")
+    old = tmp_path / "in" / "old_out"
+    (old / "midi" / "train").mkdir(parents=True)
+    (old / "midi" / "train" / "0123456789abcdef.mid").write_bytes(b"MThd")
+    (old / "state.sqlite").write_bytes(b"")
+    table, notes = discover(tmp_path / "in", tmp_path / "out")
+    assert [table.rel(i) for i in range(len(table))] == ["songs/a.mid"]
+    assert any("skipped folder old_out" in n and "state.sqlite" in n for n in notes)
+    whole, _ = discover(old, tmp_path / "out2")
+    assert [whole.rel(i) for i in range(len(whole))] == ["midi/train/0123456789abcdef.mid"]

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import overload
 
 from ..errors import UsageError
+from ..store.ledger import LEDGER_NAME
 
 MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
 
@@ -195,7 +196,8 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTab
     """All MIDI files below ``input_dir`` sorted by relative path, plus notes for the user.
 
     Reliability/safety: an output folder that is, or contains, the input folder is refused (the
-    run cleans its own folder); one inside the input folder is not searched. Symlinks are not
+    run cleans its own folder); one inside the input folder is not searched, nor is any other
+    folder below the input that holds a run's output (its ledger, ``LEDGER_NAME``). Symlinks are not
     followed out of the input folder; unreadable files and names that are not valid UTF-8 are
     skipped with a note."""
     input_dir = input_dir.resolve()
@@ -213,17 +215,20 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTab
             dirs[:] = []
             continue
         dirs.sort()
-        if out_res is not None:
-            kept_dirs = []
-            for d in dirs:
-                if (rootp / d).resolve() == out_res:
-                    notes.append(f"note: the output folder {out_res} lies inside the input folder; it is not searched")
-                    continue
-                kept_dirs.append(d)
-            dirs[:] = kept_dirs
         root_sep = root + os.sep
         rel_root = os.path.relpath(root, input_dir)
         prefix = "" if rel_root == "." else rel_root.replace(os.sep, "/") + "/"
+        kept_dirs = []
+        for d in dirs:
+            if out_res is not None and (rootp / d).resolve() == out_res:
+                notes.append(f"note: the output folder {out_res} lies inside the input folder; it is not searched")
+            elif os.path.isfile(root_sep + d + os.sep + LEDGER_NAME):
+                notes.append(f"note: skipped folder {prefix}{d}: it holds the output of another run "
+                             f"({LEDGER_NAME}), whose normalized files are copies of input files; "
+                             "give it as the input folder to read them")
+            else:
+                kept_dirs.append(d)
+        dirs[:] = kept_dirs
         for name in names:
             if not name.lower().endswith(MIDI_SUFFIXES):
                 continue

@@ -47,6 +47,8 @@ if TYPE_CHECKING:
 #: 4: ``run_columns`` (a version-3 database gets the empty table; an older version of the
 #: program must not write results beside columns it does not keep up to date)
 SCHEMA_VERSION = 4
+#: The ledger's file name in an output folder.
+LEDGER_NAME = "state.sqlite"
 #: Versions a reader (explain, leakage: ``read_only``) opens as they are: version 3 lacks only
 #: ``run_columns``, which no reader uses.
 READABLE_VERSIONS = (3, 4)
