@@ -18,6 +18,7 @@ import yaml
 from pipeline.config import load_config
 from pipeline.engine.runner import Runner
 from pipeline.errors import ConfigError
+from pipeline.outputs.table import split_lines
 from pipeline.similarity.grouping import FOLDER_SHARE, piece_folders
 
 POP = Path(__file__).parent / "data" / "pop909"
@@ -126,7 +127,6 @@ def test_pop909_versions_the_notes_do_not_link_share_their_songs_part(tmp_path):
                                           "share": pytest.approx(10 / 11, abs=1e-4), "folders": 4}
     assert len({(r["split"], r["group"]) for r in kept_703}) == 1
     # the run's table says so
-    from pipeline.outputs.table import split_lines
     assert split_lines(summary) == ["split  files under the same top-level folder share a part (group_by_folder: "
                                     "auto: 90.9% of the files in 4 folders of two or more lie in their folder's "
                                     "largest near-duplicate group)"]
@@ -193,6 +193,13 @@ def test_pop909_files_in_folders_that_mix_songs_are_not_grouped_by_folder(tmp_pa
     rows, summary = _run(tmp_path, corpus, "by_role_out")
     assert summary["group_by_folder"]["applied"] is False
     assert summary["group_by_folder"]["share"] < FOLDER_SHARE
+    # the table says why (two folders are too few to judge)
+    assert split_lines(summary) == ["split  folders are not taken as pieces (group_by_folder: auto: "
+                                    "fewer than 3 folders hold two or more files)"]
+    three = {**summary["group_by_folder"], "folders": 3, "share": 0.5}
+    assert split_lines({"group_by_folder": three}) == [
+        "split  folders are not taken as pieces (group_by_folder: auto: at best 50.0% of the files "
+        "in 3 folders of two or more lie in their folder's largest near-duplicate group, below 80%)"]
     # and flat, there is no folder to read
     flat = tmp_path / "flat"
     flat.mkdir()
@@ -201,6 +208,7 @@ def test_pop909_files_in_folders_that_mix_songs_are_not_grouped_by_folder(tmp_pa
     _, summary_flat = _run(tmp_path, flat, "flat_out")
     assert summary_flat["group_by_folder"] == {"option": "auto", "applied": False, "depth": None,
                                                "judged_depth": None, "share": 0.0, "folders": 0}
+    assert split_lines(summary_flat) == []
 
 
 def test_group_by_folder_names_what_it_takes():

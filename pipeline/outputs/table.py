@@ -6,6 +6,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
+from ..similarity.grouping import FOLDER_MIN, FOLDER_SHARE
+
 
 def in_part_order(counts: dict[str, int], configured: Iterable[str] | None) -> dict[str, int]:
     """Per-part counts in the order the config names the parts (others after, sorted), so a
@@ -34,10 +36,19 @@ def split_lines(split_summary: dict | None) -> list[str]:
 
 def folder_rule_text(rule: dict | None) -> str | None:
     """What the split's ``group_by_folder`` did (summary.json's ``split.stage.group_by_folder``),
-    as a sentence; None when it tied no files by folder."""
+    as a sentence; None when it tied no files by folder and ``auto`` did not judge the layout
+    (another option, grouping by the notes off)."""
     applied = (rule or {}).get("applied")
     if not applied:
-        return None
+        if (rule or {}).get("option") != "auto" or rule.get("judged_depth") is None:
+            return None
+        if rule.get("folders", 0) < FOLDER_MIN:
+            why = f"fewer than {FOLDER_MIN} folders hold two or more files"
+        else:
+            why = (f"at best {rule.get('share', 0):.1%} of the files in {rule.get('folders')} folders "
+                   f"of two or more lie in their folder's largest near-duplicate group, below "
+                   f"{FOLDER_SHARE:.0%}")
+        return f"folders are not taken as pieces (group_by_folder: auto: {why})"
     where = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
              else f"the same first {applied} folder levels")
     if rule.get("option") == "auto":
