@@ -120,6 +120,7 @@ def _run(args: argparse.Namespace) -> int:
         # an up-to-date rerun is recognised before the stages (and numpy) are even imported
         from .engine.uptodate import check_up_to_date
         report = check_up_to_date(args.config, input=args.input, output=args.output,
+                                  workers=args.workers, executor=args.executor,
                                   on_discover=seen.append)
         if report is not None:
             if not args.quiet:
