@@ -6,7 +6,7 @@ import re
 from pathlib import Path
 from typing import Any
 
-from ..errors import MidisiftError
+from ..errors import UsageError
 from ..outputs.table import folder_rule_text
 from ..store.ledger import Ledger
 
@@ -84,10 +84,11 @@ def _folder_rule(out_dir: Path) -> str | None:
 def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
     """The printable trail (or, ``as_json``, the same trail as a JSON list: one object per
     matching source with ``source``, ``id``, ``sha256``, ``status``, ``stage``, ``reason`` and
-    its ``trail`` of stage steps); raises MidisiftError (exit 1) for an unknown file."""
+    its ``trail`` of stage steps); raises UsageError (exit 2) for a folder without a run's
+    ledger or a file that is not in it."""
     db = out_dir / "state.sqlite"
     if not db.is_file():
-        raise MidisiftError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
+        raise UsageError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
                             file=str(out_dir))
     with Ledger(db, read_only=True) as ledger:
         last = ledger.last_run()
@@ -98,7 +99,7 @@ def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
                 input_dir = Path(raw["input"])
         hits = resolve(ledger, query, input_dir)
     if not hits:
-        raise MidisiftError("no such file in the last run (give the path as in the manifest's 'source', "
+        raise UsageError("no such file in the last run (give the path as in the manifest's 'source', "
                             "a path under the input folder, or an id of at least 6 hex digits)", file=query)
     if as_json:
         return json.dumps([_as_data(src, sha, trail) for src, sha, trail in hits], indent=1,
