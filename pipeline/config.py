@@ -196,21 +196,26 @@ def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[Co
     from .outputs.manifest import CONTRACT_FIELDS
     problems = []
     filt = next((s for s in stages if s.name == "filter"), None)
+    columns = _once("title", *metadata.columns)  # a table may have a title column of its own
     for column in (filt.options.get("metadata_exclude") or {}) if filt else ():
-        if column not in ("title", *metadata.columns):
+        if column not in columns:
             problems.append(ConfigError(
-                f"'{column}' is not a column of the metadata table"
-                f"{suggest(str(column), ['title', *metadata.columns])}",
+                f"'{column}' is not a column of the metadata table{suggest(str(column), columns)}",
                 location=f"stages[{filt.index}].filter.metadata_exclude"))
     split = next((s for s in stages if s.name == "split"), None)
     if split is None:
         return problems
-    known = [*CONTRACT_FIELDS, "title", *metadata.columns]
+    known = _once(*CONTRACT_FIELDS, *columns)
     where = f"stages[{split.index}].split.group_fields"
     hint = "" if metadata.columns else " (add a 'metadata: TABLE.csv' with such a column)"
     return problems + [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
                                    f"{suggest(str(f), known)}{hint}", location=where)
                        for f in split.options.get("group_fields", []) if f not in known]
+
+
+def _once(*names: str) -> list[str]:
+    """``names`` in their order, each once (the manifest's fields include ``title``)."""
+    return list(dict.fromkeys(names))
 
 
 def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig]:
