@@ -222,9 +222,8 @@ def _dispatch(args: argparse.Namespace) -> int:
               "where it stopped", file=sys.stderr)
         return 143 if isinstance(e, _Terminated) else 130  # 128 + the signal, as shells report
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
-        import os
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
+        from .outputs.table import stdout_gone
+        stdout_gone()
         return 0
 
 
