@@ -8,28 +8,38 @@ from typing import Any
 
 from ..errors import UsageError
 from ..outputs.table import folder_rule_text
+from ..printed import digits_apart, number
 from ..store.ledger import Ledger
 
 
-def _fmt(value: Any) -> str:
-    if isinstance(value, float):
-        return f"{value:.4g}"
+#: Significant digits of a value printed on its own.
+DIGITS = 4
+
+
+def _fmt(value: Any, digits: int = DIGITS) -> str:
     if isinstance(value, (list, tuple)):
-        return "[" + ", ".join(_fmt(v) for v in value) + "]"
+        return "[" + ", ".join(_fmt(v, digits) for v in value) + "]"
     if isinstance(value, dict):
-        return "{" + ", ".join(f"{k}: {_fmt(v)}" for k, v in value.items()) + "}"
-    return "null" if value is None else str(value)
+        return "{" + ", ".join(f"{k}: {_fmt(v, digits)}" for k, v in value.items()) + "}"
+    return "null" if value is None else number(value, digits)
 
 
-def _threshold_text(limit: Any) -> str:
+def _limit_numbers(limit: Any) -> list[Any]:
+    """The numbers a value is held against in one of ``_threshold_text``'s limits."""
+    if isinstance(limit, dict):
+        return list(limit.values())
+    return list(limit) if isinstance(limit, (list, tuple)) else [limit]
+
+
+def _threshold_text(limit: Any, digits: int = DIGITS) -> str:
     if isinstance(limit, dict):
         words = {"min": ">=", "low": ">=", "gt": ">", "max": "<=", "high": "<=", "lt": "<"}
         order = sorted(limit, key=lambda k: (list(words).index(k) if k in words else len(words), k))
-        parts = [f"{words.get(k, k)} {_fmt(limit[k])}" for k in order if limit[k] is not None]
+        parts = [f"{words.get(k, k)} {_fmt(limit[k], digits)}" for k in order if limit[k] is not None]
         return ", ".join(parts) if parts else "no limit"
     if isinstance(limit, (list, tuple)) and len(limit) == 2:
-        return f"within [{_fmt(limit[0])}, {_fmt(limit[1])}]"
-    return _fmt(limit)
+        return f"within [{_fmt(limit[0], digits)}, {_fmt(limit[1], digits)}]"
+    return _fmt(limit, digits)
 
 
 def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[str, str | None, list]]:
@@ -139,8 +149,12 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
             lines.append(f"    {step['detail']}")
         thresholds = step.get("thresholds", {}) or {}
         for key, value in step.get("values", {}).items():
-            limit = f"   (limit: {_threshold_text(thresholds[key])})" if key in thresholds else ""
-            lines.append(f"    {key:<20} {_fmt(value)}{limit}")
+            limit = ""
+            digits = DIGITS
+            if key in thresholds:  # a value printed apart from each limit it is held against
+                digits = digits_apart(value, _limit_numbers(thresholds[key]), DIGITS)
+                limit = f"   (limit: {_threshold_text(thresholds[key], digits)})"
+            lines.append(f"    {key:<20} {_fmt(value, digits)}{limit}")
         if step["stage"] == "split":
             members = mates.get("group", [])
             if len(members) > 1:
