@@ -87,16 +87,16 @@ def _parser() -> argparse.ArgumentParser:
     x.add_argument("--step", type=float, metavar="S", help="seconds per frame (pianoroll, default 0.05) or per "
                    "time-shift step (events, default 0.01)")
     x.add_argument("--per-beat", type=int, metavar="N", help="pianoroll: frames per quarter-note beat instead of --step")
-    x.add_argument("--pitch-low", type=int, metavar="P", default=0, help="pianoroll: lowest pitch kept (default 0)")
-    x.add_argument("--pitch-high", type=int, metavar="P", default=127, help="pianoroll: highest pitch kept (default 127)")
+    x.add_argument("--pitch-low", type=int, metavar="P", help="pianoroll: lowest pitch kept (default 0)")
+    x.add_argument("--pitch-high", type=int, metavar="P", help="pianoroll: highest pitch kept (default 127)")
     x.add_argument("--drums", default="omit", metavar="omit|apart", help="omit (default): leave the drum channel out; "
                    "apart: write it as its own array beside each piece's")
     x.add_argument("--window", type=float, metavar="W", help="pianoroll: fixed windows of this length (seconds, "
                    "or beats with --per-beat)")
     x.add_argument("--hop", type=float, metavar="H", help="pianoroll: a window starts every HOP (default: the window)")
-    x.add_argument("--max-shift", type=float, metavar="S", default=1.0, help="events: longest time shift, seconds (default 1)")
-    x.add_argument("--velocity-bins", type=int, metavar="N", default=32, help="events: velocity bins (default 32)")
-    x.add_argument("--previews", type=int, metavar="N", default=0, help="pianoroll: PNG previews of the first N pieces")
+    x.add_argument("--max-shift", type=float, metavar="S", help="events: longest time shift, seconds (default 1)")
+    x.add_argument("--velocity-bins", type=int, metavar="N", help="events: velocity bins (default 32)")
+    x.add_argument("--previews", type=int, metavar="N", help="pianoroll: PNG previews of the first N pieces")
     x.add_argument("--shard-mb", type=float, metavar="MB", default=64.0, help="bound of a shard's array bytes (default 64)")
     x.add_argument("--quiet", action="store_true", help="print nothing")
 
@@ -120,6 +120,7 @@ def _run(args: argparse.Namespace) -> int:
         # an up-to-date rerun is recognised before the stages (and numpy) are even imported
         from .engine.uptodate import check_up_to_date
         report = check_up_to_date(args.config, input=args.input, output=args.output,
+                                  workers=args.workers, executor=args.executor,
                                   on_discover=seen.append)
         if report is not None:
             if not args.quiet:
@@ -221,9 +222,8 @@ def _dispatch(args: argparse.Namespace) -> int:
               "where it stopped", file=sys.stderr)
         return 143 if isinstance(e, _Terminated) else 130  # 128 + the signal, as shells report
     except BrokenPipeError:  # output piped into e.g. `head`, which stopped reading: not an error
-        import os
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
+        from .outputs.table import stdout_gone
+        stdout_gone()
         return 0
 
 

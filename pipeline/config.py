@@ -8,7 +8,6 @@ names get a "did you mean" suggestion, wrong types and out-of-range values state
 from __future__ import annotations
 
 import difflib
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -16,8 +15,8 @@ from typing import Any
 import yaml
 
 from .errors import ConfigError, ConfigErrors
-from .cpus import usable_cpus
 from .metadata import Metadata, load_metadata
+from .settings import parse_executor, parse_workers, with_overrides
 from .stages import Stage, known_stages, stage_class
 
 TOP_KEYS = ("input", "output", "workers", "executor", "metadata", "stages")
@@ -141,31 +140,6 @@ def stage_option_problems(name: str, opts: Any, path: str) -> tuple[dict[str, An
     return merged, problems
 
 
-def parse_workers(value: Any, location: str = "workers") -> int:
-    """``auto`` (the CPUs this process may use, ``usable_cpus``) or a whole number >= 1."""
-    if value is None or value == "auto":
-        return usable_cpus()
-    if isinstance(value, str) and value.isdigit():
-        value = int(value)
-    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
-        raise ConfigError(f"workers must be 'auto' or a whole number >= 1, got {value!r}", location=location)
-    return value
-
-
-_SCHEDULER = re.compile(r"tcp://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9][A-Za-z0-9.-]*):([0-9]{1,5})")
-
-
-def parse_executor(value: Any, location: str = "executor") -> str:
-    """``local`` (worker processes on this machine) or a Dask scheduler, ``tcp://HOST:PORT``."""
-    if value is None or value == "local":
-        return "local"
-    m = _SCHEDULER.fullmatch(value) if isinstance(value, str) else None
-    if m is None or not 1 <= int(m.group(2)) <= 65535:
-        raise ConfigError(f"executor must be 'local' or a Dask scheduler's address "
-                          f"'tcp://HOST:PORT' (port 1-65535), got {value!r}", location=location)
-    return value
-
-
 def parse_config(raw: Any, *, source: str | None = None) -> Config:
     """Validate a loaded YAML mapping (see module docstring). Every problem is collected and
     raised together (``ConfigErrors`` when there are several)."""
@@ -222,21 +196,26 @@ def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[Co
     from .outputs.manifest import CONTRACT_FIELDS
     problems = []
     filt = next((s for s in stages if s.name == "filter"), None)
+    columns = _once("title", *metadata.columns)  # a table may have a title column of its own
     for column in (filt.options.get("metadata_exclude") or {}) if filt else ():
-        if column not in ("title", *metadata.columns):
+        if column not in columns:
             problems.append(ConfigError(
-                f"'{column}' is not a column of the metadata table"
-                f"{suggest(str(column), ['title', *metadata.columns])}",
+                f"'{column}' is not a column of the metadata table{suggest(str(column), columns)}",
                 location=f"stages[{filt.index}].filter.metadata_exclude"))
     split = next((s for s in stages if s.name == "split"), None)
     if split is None:
         return problems
-    known = [*CONTRACT_FIELDS, "title", *metadata.columns]
+    known = _once(*CONTRACT_FIELDS, *columns)
     where = f"stages[{split.index}].split.group_fields"
     hint = "" if metadata.columns else " (add a 'metadata: TABLE.csv' with such a column)"
     return problems + [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
                                    f"{suggest(str(f), known)}{hint}", location=where)
                        for f in split.options.get("group_fields", []) if f not in known]
+
+
+def _once(*names: str) -> list[str]:
+    """``names`` in their order, each once (the manifest's fields include ``title``)."""
+    return list(dict.fromkeys(names))
 
 
 def _parse_stages(entries: Any, problems: list[ConfigError]) -> list[StageConfig]:
@@ -289,13 +268,5 @@ def load_config(path: str | Path, *, input: str | None = None, output: str | Non
         where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else None
         raise ConfigError(f"not valid YAML: {getattr(e, 'problem', e)}", file=str(p), location=where) from None
     if isinstance(raw, dict):
-        raw = dict(raw)
-        if input is not None:
-            raw["input"] = input
-        if output is not None:
-            raw["output"] = output
-        if workers is not None:
-            raw["workers"] = workers
-        if executor is not None:
-            raw["executor"] = executor
+        raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)
     return parse_config(raw, source=str(p))

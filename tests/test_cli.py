@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -125,3 +126,25 @@ def test_the_run_path_never_imports_the_developer_tools(tmp_path):
             "'pipeline.tools.eval_sets'))))")
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=tmp_path)
     assert proc.stdout.split("\n")[-2] == "0 []", proc.stdout + proc.stderr
+
+
+def test_leakage_writes_its_json_and_keeps_its_exit_status_when_stdout_is_closed(tmp_path):
+    """`midisift leakage ... --json FILE | head`: a reader that stops early must not cost the
+    JSON file (written before the table), and the exit status stays the documented one (README,
+    Commands: 1, leaks found) with no traceback. The reader here is gone before the command
+    starts (a pipe whose read end is closed), so the first write fails with EPIPE."""
+    files = sorted(str(p) for p in (ROOT / "sample_corpus").rglob("*.mid"))[:12]
+    (tmp_path / "a.txt").write_text("\n".join(files[:10]) + "\n")
+    (tmp_path / "b.txt").write_text("\n".join(files[5:]) + "\n")  # 5 files in both parts
+    report = tmp_path / "leaks.json"
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    try:
+        proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "leakage", "--part", f"a={tmp_path / 'a.txt'}",
+                               "--part", f"b={tmp_path / 'b.txt'}", "--json", str(report)],
+                              stdout=write_end, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+    finally:
+        os.close(write_end)
+    assert proc.returncode == 1, proc.stderr
+    assert proc.stderr == ""
+    assert len(json.loads(report.read_text())["leaks"]) >= 5

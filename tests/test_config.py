@@ -80,8 +80,8 @@ def test_zero_workers_is_an_error():
 
 
 def test_auto_workers_are_the_usable_cpus(monkeypatch):
-    from pipeline import config
-    monkeypatch.setattr(config, "usable_cpus", lambda: 5)
+    from pipeline import settings
+    monkeypatch.setattr(settings, "usable_cpus", lambda: 5)
     assert parse_config(_cfg([{"validate": {}}], workers="auto")).workers == 5
 
 

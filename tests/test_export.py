@@ -271,6 +271,22 @@ def test_bad_options_are_clear_errors_with_exit_2(demo_out, capsys, args, messag
     assert message in capsys.readouterr().err
 
 
+@pytest.mark.parametrize("fmt, flag, value", [
+    ("events", "--per-beat", "4"), ("events", "--pitch-low", "0"), ("events", "--pitch-high", "127"),
+    ("events", "--window", "4"), ("events", "--hop", "2"), ("events", "--previews", "0"),
+    ("pianoroll", "--max-shift", "1"), ("pianoroll", "--velocity-bins", "16"),
+    ("pianoroll", "--velocity-bins", "32"),
+])
+def test_an_option_of_the_other_format_exits_2_whatever_its_value(tmp_path, capsys, fmt, flag, value):
+    """README, Training arrays: an option of the other format exits 2 and says why; in both
+    directions, and also when the value given is the default (before, pianoroll took
+    --velocity-bins and --max-shift silently, and events took --pitch-low 0 or --previews 0).
+    The options are checked before the folder is read, so no run is needed."""
+    other = "pianoroll" if fmt == "events" else "events"
+    assert main(["export", str(tmp_path / "nowhere"), "--format", fmt, flag, value]) == 2
+    assert f"{flag} applies to --format {other} only" in capsys.readouterr().err
+
+
 def test_a_folder_without_a_finished_run_says_so(tmp_path, capsys):
     (tmp_path / "half").mkdir()
     (tmp_path / "half" / "state.sqlite").write_bytes(b"")

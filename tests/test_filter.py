@@ -171,3 +171,39 @@ def test_option_checks_and_program_names():
     assert "did you mean 'strings'" in opts["programs_allow"].check(["strngs"])
     assert opts["programs_deny"].check([128]) is not None
     assert resolve_programs(["Synth Lead", 3]) == frozenset(range(80, 88)) | {3}
+
+
+def test_a_value_just_under_a_limit_prints_apart_from_it():
+    # 32 notes every 240 ticks at 499,999 us a beat: 16 beats * 0.499999 s = 7.999984 s, under
+    # min_seconds 8 by 16 us. Three significant digits print both as "8", which reads as a
+    # contradiction; the detail prints as many digits as tell them apart.
+    r = verdict(line(32, 240), ((0, 499_999),))
+    assert (r.reason, r.values["duration_s"]) == ("too_short", pytest.approx(7.999984))
+    assert "duration_s 7.99998 s < min_seconds 8 s (too_short)" in r.detail
+    # the short form stays where the numbers differ at three digits
+    assert "duration_s 5 s < min_seconds 8 s" in verdict(line(40, 240), T240).detail
+
+
+def test_explain_prints_a_value_apart_from_its_limits(tmp_path, capsys):
+    """`midisift explain` on the file above: the why line (the stored detail) and the value
+    line both tell 7.999984 s from the limit 8 s; the limits themselves stay short."""
+    import mido  # writes the file; mido's own MIDI writer, not ours
+    import yaml
+    from pipeline.cli import main
+    mid = mido.MidiFile(ticks_per_beat=Q)
+    track = mido.MidiTrack([mido.MetaMessage("set_tempo", tempo=499_999, time=0)])
+    for i in range(32):
+        track.append(mido.Message("note_on", note=60 + i % 12, velocity=80, time=0))
+        track.append(mido.Message("note_off", note=60 + i % 12, velocity=0, time=240))
+    mid.tracks.append(track)
+    (tmp_path / "in").mkdir()
+    mid.save(str(tmp_path / "in" / "short.mid"))
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(tmp_path / "in"), "output": str(tmp_path / "out"),
+                                   "workers": 1, "stages": ["validate", "filter"]}))
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    assert main(["explain", "short.mid", "--output", str(tmp_path / "out")]) == 0
+    text = capsys.readouterr().out
+    assert "why      duration_s 7.99998 s < min_seconds 8 s (too_short)" in text
+    assert "duration_s           7.99998   (limit: >= 8, <= 1200)" in text
+    assert "notes                32   (limit: >= 32)" in text

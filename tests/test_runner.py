@@ -181,8 +181,12 @@ def test_explain_by_id_and_unknown_file(demo_out, capsys):
     assert main(["explain", row["id"], "--output", str(demo_out)]) == 0
     text = capsys.readouterr().out
     assert row["reason"] in text and row["source"] in text
-    assert main(["explain", "no/such/file.mid", "--output", str(demo_out)]) == 1
-    assert "no such file" in capsys.readouterr().err
+    # README, Commands: exit 2 is bad usage (a file the run never saw, a folder that is not an
+    # output folder), 1 a runtime failure
+    assert main(["explain", "no/such/file.mid", "--output", str(demo_out)]) == 2
+    assert "no/such/file.mid: no such file in the last run" in capsys.readouterr().err
+    assert main(["explain", row["id"], "--output", str(DEMO)]) == 2
+    assert "no state.sqlite here" in capsys.readouterr().err
 
 
 def test_explain_reads_a_folder_it_cannot_write(demo_out, tmp_path, capsys):
@@ -248,11 +252,18 @@ def test_readme_and_ci_run_the_same_two_commands():
 
 
 def test_missing_input_folder_is_a_clear_error(tmp_path, capsys):
+    # README, Commands: bad usage or config exits 2 and writes nothing (the config's input,
+    # --input naming no folder, --input naming a file)
     cfg = tmp_path / "c.yaml"
     cfg.write_text(yaml.safe_dump({"input": str(tmp_path / "nope"), "output": str(tmp_path / "o"),
                                    "stages": ["validate"]}))
-    assert main(["run", str(cfg), "--quiet"]) == 1
-    assert "nope" in capsys.readouterr().err
+    (tmp_path / "a_file.mid").write_bytes(b"MThd")
+    for extra in ((), ("--input", str(tmp_path / "also_nope")), ("--input", str(tmp_path / "a_file.mid"))):
+        assert main(["run", str(cfg), "--quiet", *extra]) == 2
+        err = capsys.readouterr().err
+        assert "the input folder does not exist or is not a folder" in err
+        assert (extra[-1] if extra else str(tmp_path / "nope")) in err
+        assert not (tmp_path / "o").exists()
 
 
 def test_generated_corpus_verdicts_match_its_truth(tmp_path):

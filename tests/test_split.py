@@ -626,6 +626,28 @@ def test_group_fields_must_exist_and_suggest_the_nearest(tmp_path):
                   "stages": ["validate", {"split": {"group_fields": ["composer"]}}]})
 
 
+def test_the_valid_names_listed_by_a_field_error_are_each_named_once(tmp_path):
+    """The list after "valid names are:" names each field once: ``title`` is a manifest field,
+    and a metadata table may have a title column of its own (before, it was listed twice, or
+    three times with such a table). Our own contract; nothing to cite."""
+    from pipeline.config import parse_config
+    from pipeline.errors import ConfigError
+    table = tmp_path / "meta.csv"
+    table.write_text("source,title,licence\nx.mid,A,cc0\n")
+    for stages, table_given in ((["validate", {"split": {"group_fields": ["xyzzy"]}}], False),
+                                (["validate", {"split": {"group_fields": ["xyzzy"]}}], True),
+                                (["validate", {"filter": {"metadata_exclude": {"xyzzy": ["a"]}}}], True)):
+        raw = {"input": "in", "output": "out", "stages": stages}
+        if table_given:
+            raw["metadata"] = str(table)
+        with pytest.raises(ConfigError) as err:
+            parse_config(raw)
+        listed = err.value.message.split("valid names are: ")[1].split(" (")[0].split(", ")
+        assert len(listed) == len(set(listed)) and "title" in listed, listed
+        if table_given:
+            assert "licence" in listed
+
+
 def test_metadata_rows_for_missing_files_are_reported(tmp_path, capsys):
     corpus = _titled_corpus(tmp_path)
     table = tmp_path / "meta.csv"

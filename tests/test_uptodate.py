@@ -166,3 +166,30 @@ def test_a_run_records_each_file_as_the_file_system_gives_it(corpus, config, tmp
         victim = sorted(corpus.rglob("*.mid"))[0]
         st = victim.stat()
         os.utime(victim, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+
+
+@pytest.mark.parametrize("where, key, value, message", [
+    ("config", "workers", "two", "workers must be 'auto' or a whole number >= 1, got 'two'"),
+    ("cli", "--workers", "abc", "workers must be 'auto' or a whole number >= 1, got 'abc'"),
+    ("cli", "--workers", "0", "workers must be 'auto' or a whole number >= 1, got 0"),
+    ("cli", "--executor", "bogus", "executor must be 'local' or a Dask scheduler's address"),
+    ("config", "executor", "bogus", "executor must be 'local' or a Dask scheduler's address")])
+def test_a_bad_workers_or_executor_exits_2_on_an_up_to_date_folder(where, key, value, message, corpus,
+                                                                    config, tmp_path, capsys):
+    """README, Commands: bad usage or bad config exits 2 and writes nothing. ``workers`` and
+    ``executor`` are left out of ``quick_key``, so before this check they passed as up to date
+    (exit 0) on a folder whose last run was complete, and exited 2 only on a new folder."""
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    before, runs = _snapshot(out), _runs(out)
+    extra: tuple[str, ...] = ()
+    if where == "config":
+        raw = yaml.safe_load(config.read_text())
+        raw[key] = value
+        config.write_text(yaml.safe_dump(raw))
+    else:
+        extra = (key, value)
+    capsys.readouterr()
+    assert _cli(config, corpus, out, *extra) == 2
+    assert message in capsys.readouterr().err
+    assert _snapshot(out) == before and _runs(out) == runs

@@ -6,30 +6,40 @@ import re
 from pathlib import Path
 from typing import Any
 
-from ..errors import MidisiftError
+from ..errors import UsageError
 from ..outputs.table import folder_rule_text
+from ..printed import digits_apart, number
 from ..store.ledger import Ledger
 
 
-def _fmt(value: Any) -> str:
-    if isinstance(value, float):
-        return f"{value:.4g}"
+#: Significant digits of a value printed on its own.
+DIGITS = 4
+
+
+def _fmt(value: Any, digits: int = DIGITS) -> str:
     if isinstance(value, (list, tuple)):
-        return "[" + ", ".join(_fmt(v) for v in value) + "]"
+        return "[" + ", ".join(_fmt(v, digits) for v in value) + "]"
     if isinstance(value, dict):
-        return "{" + ", ".join(f"{k}: {_fmt(v)}" for k, v in value.items()) + "}"
-    return "null" if value is None else str(value)
+        return "{" + ", ".join(f"{k}: {_fmt(v, digits)}" for k, v in value.items()) + "}"
+    return "null" if value is None else number(value, digits)
 
 
-def _threshold_text(limit: Any) -> str:
+def _limit_numbers(limit: Any) -> list[Any]:
+    """The numbers a value is held against in one of ``_threshold_text``'s limits."""
+    if isinstance(limit, dict):
+        return list(limit.values())
+    return list(limit) if isinstance(limit, (list, tuple)) else [limit]
+
+
+def _threshold_text(limit: Any, digits: int = DIGITS) -> str:
     if isinstance(limit, dict):
         words = {"min": ">=", "low": ">=", "gt": ">", "max": "<=", "high": "<=", "lt": "<"}
         order = sorted(limit, key=lambda k: (list(words).index(k) if k in words else len(words), k))
-        parts = [f"{words.get(k, k)} {_fmt(limit[k])}" for k in order if limit[k] is not None]
+        parts = [f"{words.get(k, k)} {_fmt(limit[k], digits)}" for k in order if limit[k] is not None]
         return ", ".join(parts) if parts else "no limit"
     if isinstance(limit, (list, tuple)) and len(limit) == 2:
-        return f"within [{_fmt(limit[0])}, {_fmt(limit[1])}]"
-    return _fmt(limit)
+        return f"within [{_fmt(limit[0], digits)}, {_fmt(limit[1], digits)}]"
+    return _fmt(limit, digits)
 
 
 def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[str, str | None, list]]:
@@ -84,10 +94,11 @@ def _folder_rule(out_dir: Path) -> str | None:
 def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
     """The printable trail (or, ``as_json``, the same trail as a JSON list: one object per
     matching source with ``source``, ``id``, ``sha256``, ``status``, ``stage``, ``reason`` and
-    its ``trail`` of stage steps); raises MidisiftError (exit 1) for an unknown file."""
+    its ``trail`` of stage steps); raises UsageError (exit 2) for a folder without a run's
+    ledger or a file that is not in it."""
     db = out_dir / "state.sqlite"
     if not db.is_file():
-        raise MidisiftError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
+        raise UsageError("no state.sqlite here: run 'midisift run CONFIG' first or pass --output",
                             file=str(out_dir))
     with Ledger(db, read_only=True) as ledger:
         last = ledger.last_run()
@@ -98,7 +109,7 @@ def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
                 input_dir = Path(raw["input"])
         hits = resolve(ledger, query, input_dir)
     if not hits:
-        raise MidisiftError("no such file in the last run (give the path as in the manifest's 'source', "
+        raise UsageError("no such file in the last run (give the path as in the manifest's 'source', "
                             "a path under the input folder, or an id of at least 6 hex digits)", file=query)
     if as_json:
         return json.dumps([_as_data(src, sha, trail) for src, sha, trail in hits], indent=1,
@@ -138,8 +149,12 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
             lines.append(f"    {step['detail']}")
         thresholds = step.get("thresholds", {}) or {}
         for key, value in step.get("values", {}).items():
-            limit = f"   (limit: {_threshold_text(thresholds[key])})" if key in thresholds else ""
-            lines.append(f"    {key:<20} {_fmt(value)}{limit}")
+            limit = ""
+            digits = DIGITS
+            if key in thresholds:  # a value printed apart from each limit it is held against
+                digits = digits_apart(value, _limit_numbers(thresholds[key]), DIGITS)
+                limit = f"   (limit: {_threshold_text(thresholds[key], digits)})"
+            lines.append(f"    {key:<20} {_fmt(value, digits)}{limit}")
         if step["stage"] == "split":
             members = mates.get("group", [])
             if len(members) > 1:

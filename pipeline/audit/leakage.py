@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from ..errors import MidisiftError, UsageError
+from ..outputs.table import stdout_gone
 
 #: The grouping threshold of the split stage's default config (used when an output folder does
 #: not record its own).
@@ -310,12 +311,16 @@ def main_leakage(args: argparse.Namespace, out=None) -> int:
                              "--part train=train.txt --part test=test.txt")
         report = audit(parts, args.threshold if args.threshold is not None else DEFAULT_THRESHOLD)
     json_path = getattr(args, "json_out", None) or getattr(args, "json", None)
-    if json_path == "-":
-        print(json.dumps(report.to_json(), indent=2), file=out)
-    else:
-        print(format_report(report), file=out)
-        if json_path:
-            _write_json(Path(json_path), report.to_json())
+    if json_path and json_path != "-":  # before the table: a reader that stops early (| head)
+        _write_json(Path(json_path), report.to_json())  # must not cost the file
+    text = json.dumps(report.to_json(), indent=2) if json_path == "-" else format_report(report)
+    try:
+        print(text, file=out)
+        out.flush()
+    except BrokenPipeError:
+        if out is not sys.stdout:
+            raise
+        stdout_gone()  # the verdict stands: exit 1 for leaks still
     return report.exit_code
 
 

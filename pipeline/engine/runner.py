@@ -30,7 +30,7 @@ from contextlib import contextmanager
 from typing import Any
 
 from ..config import Config
-from ..errors import LedgerError, MidisiftError
+from ..errors import LedgerError
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
 from ..outputs.rowreuse import STATE as ROWS_STATE, ManifestCheck, RowReuse
 from ..outputs.table import RunReport, in_part_order, split_lines
@@ -93,9 +93,6 @@ class Runner:
     def run(self) -> RunReport:
         t_start = time.perf_counter()
         cfg = self.config
-        if not cfg.input.is_dir():
-            raise MidisiftError("the input folder does not exist or is not a folder; check 'input' in the config "
-                                "or --input", file=str(cfg.input))
         check_folders(cfg.input, cfg.output)
         out = cfg.output
         # a Dask scheduler is reached (and its workers checked) before anything is written

@@ -184,8 +184,12 @@ class Contents(Mapping[str, str]):
 
 
 def check_folders(input_dir: Path, output_dir: Path) -> None:
-    """Refuse an output folder that is, or contains, the input folder (a run rewrites its output
-    folder); checked before anything is created."""
+    """Refuse an input that is not a folder and an output folder that is, or contains, the input
+    folder (a run rewrites its output folder): usage errors (exit 2), checked before anything is
+    created."""
+    if not input_dir.is_dir():
+        raise UsageError("the input folder does not exist or is not a folder; check 'input' in the "
+                         "config or --input", file=str(input_dir))
     input_dir, out_res = input_dir.resolve(), output_dir.resolve()
     if out_res == input_dir or out_res in input_dir.parents:
         raise UsageError(f"the output folder {out_res} is, or contains, the input folder {input_dir}; "

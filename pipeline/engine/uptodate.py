@@ -13,8 +13,8 @@ The same config text and package version give the same fingerprints, so ``quick_
 as ``state_key`` does, without building the stages. ``midisift run`` checks it first
 (``check_up_to_date``) with nothing heavier than YAML and SQLite: no numpy, no stage module, so
 an up-to-date rerun costs little more than Python's start-up. Anything unusual (a config it
-cannot read, a missing output folder, a changed file) returns None and the normal run takes over
-and reports it.
+cannot read, a bad ``workers`` or ``executor``, a missing output folder, a changed file) returns
+None and the normal run takes over and reports it.
 """
 from __future__ import annotations
 
@@ -127,10 +127,13 @@ def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: 
 
 
 def check_up_to_date(config_path: str | Path, *, input: str | None = None,
-                     output: str | None = None,
+                     output: str | None = None, workers: str | int | None = None,
+                     executor: str | None = None,
                      on_discover: Callable[[Any], None] | None = None) -> RunReport | None:
     """The report of an up-to-date rerun, done without building the stages; None when the
-    normal run must decide (see the module docstring). ``on_discover`` receives the
+    normal run must decide (see the module docstring), which includes a bad ``workers`` or
+    ``executor`` (the config's or the override given): they are not in ``quick_key``, so only
+    this check can keep them from passing as up to date. ``on_discover`` receives the
     ``sources.Discovery`` made on the way, for the run that follows (no second listing)."""
     t_start = time.perf_counter()
     import yaml
@@ -140,17 +143,19 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
         return None
     if not isinstance(raw, dict):
         return None
-    raw = dict(raw)
-    if input is not None:
-        raw["input"] = input
-    if output is not None:
-        raw["output"] = output
+    from ..errors import ConfigError, MidisiftError
+    from ..settings import parse_executor, parse_workers, with_overrides
+    raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)
+    try:  # the normal run reports a bad value (exit 2) before it writes anything
+        parse_workers(raw.get("workers"))
+        parse_executor(raw.get("executor"))
+    except ConfigError:
+        return None
     if not isinstance(raw.get("input"), str) or not isinstance(raw.get("output"), str):
         return None
     inp, out = Path(raw["input"]), Path(raw["output"])
     if not inp.is_dir() or not (out / "state.sqlite").is_file() or not (out / "summary.json").is_file():
         return None
-    from ..errors import MidisiftError
     from ..store.ledger import Ledger
     from ..store.lock import OutputLock
     from .sources import Discovery, check_folders, discover, fingerprint

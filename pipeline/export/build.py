@@ -38,24 +38,33 @@ from .png import png_bytes, roll_image
 FORMATS = ("pianoroll", "events")
 DRUMS = ("omit", "apart")
 DEFAULT_STEP = {"pianoroll": 0.05, "events": 0.01}
+#: Each format's own options: (field, command-line flag, default). Given to the other format,
+#: one is a usage error; not given (None), it takes the default.
+FORMAT_OPTIONS: dict[str, tuple[tuple[str, str, Any], ...]] = {
+    "pianoroll": (("per_beat", "--per-beat", None), ("pitch_low", "--pitch-low", 0),
+                  ("pitch_high", "--pitch-high", 127), ("window", "--window", None),
+                  ("hop", "--hop", None), ("previews", "--previews", 0)),
+    "events": (("max_shift", "--max-shift", 1.0), ("velocity_bins", "--velocity-bins", 32)),
+}
 
 
 @dataclass(frozen=True)
 class ExportOptions:
-    """What ``midisift export`` was asked for; ``checked()`` fills defaults and states each
-    broken rule with the value given."""
+    """What ``midisift export`` was asked for; ``checked()`` refuses an option of the other
+    format (``FORMAT_OPTIONS``), fills defaults and states each broken rule with the value
+    given. A format's own option left None takes its default."""
 
     format: str
     step: float | None = None  # seconds per frame (pianoroll) or per time-shift step (events)
     per_beat: int | None = None  # pianoroll: frames per quarter-note beat instead of seconds
-    pitch_low: int = 0  # pianoroll: lowest kept pitch
-    pitch_high: int = 127  # pianoroll: highest kept pitch
+    pitch_low: int | None = None  # pianoroll: lowest kept pitch (default 0)
+    pitch_high: int | None = None  # pianoroll: highest kept pitch (default 127)
     drums: str = "omit"  # omit: drum channel left out; apart: its own array beside the piece's
     window: float | None = None  # pianoroll: window length (seconds, or beats with per_beat)
     hop: float | None = None  # pianoroll: window start every hop (default: the window)
-    max_shift: float = 1.0  # events: longest single time shift, seconds
-    velocity_bins: int = 32  # events
-    previews: int = 0  # pianoroll: PNG previews of the first N pieces
+    max_shift: float | None = None  # events: longest single time shift, seconds (default 1)
+    velocity_bins: int | None = None  # events (default 32)
+    previews: int | None = None  # pianoroll: PNG previews of the first N pieces (default 0)
     shard_mb: float = 64.0  # bound of a shard's uncompressed array bytes
 
     def checked(self) -> "ExportOptions":
@@ -64,12 +73,16 @@ class ExportOptions:
         if self.drums not in DRUMS:
             raise UsageError(f"--drums must be one of {', '.join(DRUMS)}, got {self.drums!r}")
         roll = self.format == "pianoroll"
-        if not roll:
-            for name, value, default in (("--per-beat", self.per_beat, None), ("--window", self.window, None),
-                                         ("--hop", self.hop, None), ("--previews", self.previews, 0),
-                                         ("--pitch-low", self.pitch_low, 0), ("--pitch-high", self.pitch_high, 127)):
-                if value != default:
-                    raise UsageError(f"{name} applies to --format pianoroll only")
+        defaults = {}
+        for fmt, options in FORMAT_OPTIONS.items():
+            for name, flag, default in options:
+                if fmt != self.format and getattr(self, name) is not None:
+                    raise UsageError(f"{flag} applies to --format {fmt} only")
+                defaults[name] = default if getattr(self, name) is None else getattr(self, name)
+        return replace(self, **defaults)._checked(roll)
+
+    def _checked(self, roll: bool) -> "ExportOptions":
+        """The rules of the values, every option given or defaulted."""
         if self.per_beat is not None:
             if self.step is not None:
                 raise UsageError("give --step (seconds) or --per-beat (frames per beat), not both")

@@ -2,11 +2,22 @@
 prints it too)."""
 from __future__ import annotations
 
+import os
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
 from ..similarity.grouping import FOLDER_MIN, FOLDER_SHARE
+
+
+def stdout_gone() -> None:
+    """Standard output's reader stopped reading (``| head``): not an error. The descriptor is
+    pointed at /dev/null, so nothing written later, the interpreter's last flush included,
+    fails on it."""
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
 
 
 def in_part_order(counts: dict[str, int], configured: Iterable[str] | None) -> dict[str, int]:

@@ -16,6 +16,7 @@ from typing import Any, Callable
 
 from ..analysis.stats import MEASURES, piece_stats
 from ..midi.piece import Piece
+from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, register
 
 #: General MIDI Level 1 instrument families: 16 blocks of 8 programs. Source: MIDI Manufacturers
@@ -148,7 +149,8 @@ def _below(measure: str, opt: str, unit: str = "") -> Callable[[dict, dict], str
     def fails(s: dict, o: dict) -> str | None:
         lim = o[opt]
         if lim is not None and s[measure] < lim:
-            return f"{measure} {_fmt(s[measure])}{unit} < {opt} {_fmt(lim)}{unit}"
+            value, limit = compared(s[measure], lim)
+            return f"{measure} {value}{unit} < {opt} {limit}{unit}"
         return None
     return fails
 
@@ -157,7 +159,8 @@ def _above(measure: str, opt: str, unit: str = "") -> Callable[[dict, dict], str
     def fails(s: dict, o: dict) -> str | None:
         lim = o[opt]
         if lim is not None and s[measure] > lim:
-            return f"{measure} {_fmt(s[measure])}{unit} > {opt} {_fmt(lim)}{unit}"
+            value, limit = compared(s[measure], lim)
+            return f"{measure} {value}{unit} > {opt} {limit}{unit}"
         return None
     return fails
 
@@ -172,7 +175,8 @@ def _rate(bound: int) -> Callable[[dict, dict], str | None]:
         if (v < lim) if bound == 0 else (v > lim):
             side = "low" if bound == 0 else "high"
             op = "<" if bound == 0 else ">"
-            return f"notes_per_s {_fmt(v)} {op} notes_per_s {side} {_fmt(lim)}"
+            value, limit = compared(v, lim)
+            return f"notes_per_s {value} {op} notes_per_s {side} {limit}"
         return None
     return fails
 
@@ -194,10 +198,6 @@ def _names(progs: set) -> str:
     nums = sorted(p for p in progs if p != DRUMS)
     parts = [f"program {p}" for p in nums] + ([DRUMS] if DRUMS in progs else [])
     return ", ".join(parts)
-
-
-def _fmt(v: Any) -> str:
-    return f"{v:.3g}" if isinstance(v, float) else str(v)
 
 
 #: The rules in the documented order: the first failing one is the reason code.
@@ -225,7 +225,7 @@ class Filter(Stage):
 
     name = "filter"
     kind = "file"
-    version = 1
+    version = 2  # 2: a drop's detail prints a value apart from its limit (7.99998 s < 8 s)
     doc = ("Measures length and density of each piece and drops those outside the limits; "
            "every limit accepts null to switch its rule off.")
     options = (
