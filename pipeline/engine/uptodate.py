@@ -124,6 +124,11 @@ def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: 
     # writing (after a power cut the previous summary, equal but for the timings, is there)
     write_summary(out, summary, fsync=False)
     ledger.finish_run(run_id, summary["counts"])
+    # report.html's numbers are summary.json's: its part on the run itself follows (an audit
+    # found the page still giving the last run's counts and timings)
+    from ..outputs.page import rewrite_run_tail, write_report
+    if not rewrite_run_tail(out, summary):
+        write_report(out, summary)
 
 
 def check_up_to_date(config_path: str | Path, *, input: str | None = None,

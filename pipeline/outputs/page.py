@@ -534,12 +534,38 @@ def render(summary: dict, facts: Facts, *, stages: Iterable[str] | None = None,
         parts.append(_split_section(summary, facts))
     if "dedup" in summary.get("stages", {}):
         parts.append(_clusters_section(facts, input_dir, out_dir))
-    parts.append(_timings_section(summary))
-    notes = summary.get("notes") or []
-    if notes:
-        parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>")
-    parts.append("</body></html>\n")
+    parts.append(_run_tail(summary))
     return "".join(parts)
+
+
+#: Where the page's part that only this run's summary decides begins (``_run_tail``).
+_TAIL = "<h2>Timings and reuse</h2>"
+
+
+def _run_tail(summary: dict) -> str:
+    """The end of the page, from ``_TAIL``: what the run itself did (contents computed and
+    reused, timings, notes); the rest describes the outputs, which a nothing-changed rerun
+    leaves as they were."""
+    notes = summary.get("notes") or []
+    listed = "<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>" if notes else ""
+    return _timings_section(summary) + listed + "</body></html>\n"
+
+
+def rewrite_run_tail(out_dir: Path | str, summary: dict) -> bool:
+    """Give OUTPUT/report.html the counts and timings of a run that changed no output (a
+    nothing-changed rerun: its summary's), keeping the rest of the page; False, writing
+    nothing, when there is no page with that part to replace. Speed: no manifest read and no
+    thumbnail decoded, so the nothing-changed shortcut stays free of numpy."""
+    path = Path(out_dir) / "report.html"
+    try:
+        page = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return False
+    at = page.find(_TAIL)
+    if at < 0 or page.find(_TAIL, at + 1) >= 0:
+        return False
+    write_atomic(path, page[:at] + _run_tail(summary), fsync=False)
+    return True
 
 
 def write_report(out_dir: Path | str, summary: dict | None = None, stages: Iterable[str] | None = None,
