@@ -583,6 +583,9 @@ def test_a_byte_copy_of_a_dropped_file_carries_that_files_own_pair(tmp_path):
     assert (a2["reason"], a2["duplicate_of"], a2["similarity"]) == ("exact_duplicate", a["id"], 1.0)
     trail = explain(tmp_path / "out", "b2.mid")
     assert "near_duplicate" in trail and "byte-identical copy" in trail
+    # cluster_size counts contents (2: A and B), the manifest has four rows; explain gives both
+    assert a["cluster_size"] == 2 and sum(r["cluster"] == a["cluster"] for r in got.values()) == 4
+    assert "cluster members (4 files, 2 contents: byte-identical files share an id" in trail
 
 
 # --- Generic material counted over the corpus (issue 20, item 2) -------------------------------

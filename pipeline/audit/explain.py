@@ -168,7 +168,11 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
         if step["stage"] == "dedup":
             members = mates.get("cluster", [])
             if len(members) > 1:
-                lines.append(f"    cluster members ({len(members)}):")
+                contents = len({m["id"] for m in members})
+                counted = (f"{len(members)} files, {contents} contents: byte-identical files share "
+                           "an id and count once in cluster_size" if contents < len(members)
+                           else f"{len(members)}")
+                lines.append(f"    cluster members ({counted}):")
                 for m in members:
                     role = "kept" if m["status"] == "kept" or m.get("stage") != "dedup" else \
                         f"dropped, similarity {_fmt(m.get('similarity'))}"
