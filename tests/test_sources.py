@@ -9,6 +9,8 @@ import hashlib
 import os
 from pathlib import Path
 
+import pytest
+
 from pipeline.engine.sources import Contents, SourceTable, discover, fingerprint
 
 NAMES = ["a.mid", "b/Café Nörthern.MID", "b/c/zoë ü 1.midi", "b/c/x.kar", "d e/f.rmi", "d e/g.mid",
@@ -134,3 +136,43 @@ def test_a_folder_holding_another_runs_output_is_not_input(tmp_path):
     assert any("skipped folder old_out" in n and "state.sqlite" in n for n in notes)
     whole, _ = discover(old, tmp_path / "out2")
     assert [whole.rel(i) for i in range(len(whole))] == ["midi/train/0123456789abcdef.mid"]
+
+
+def test_a_run_refuses_a_folder_of_the_users_files_as_its_output(tmp_path):
+    """An audit lost a collection kept under OUTPUT/midi/: a run removes what it did not write
+    from its output folder. A folder that holds files but no ledger is refused before anything
+    is written (usage error, exit 2); an empty folder, or one holding only a stopped first
+    run's lock, is taken."""
+    from pipeline.engine.sources import check_folders
+    from pipeline.errors import UsageError
+    from pipeline.store.lock import LOCK_NAME
+
+    src = tmp_path / "in"
+    src.mkdir()
+    mine = tmp_path / "datasets"
+    (mine / "midi" / "my_collection").mkdir(parents=True)
+    (mine / "midi" / "my_collection" / "precious.mid").write_bytes(b"MThd")
+    with pytest.raises(UsageError, match=r"holds files \(midi\) but no state.sqlite"):
+        check_folders(src, mine)
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    check_folders(src, empty)
+    (empty / LOCK_NAME).write_text("{}")
+    check_folders(src, empty)
+    (mine / "state.sqlite").write_bytes(b"")  # a run's output folder: its own files
+    check_folders(src, mine)
+
+
+def test_the_cli_leaves_the_users_files_in_place(tmp_path):
+    import subprocess
+    import sys
+
+    root = Path(__file__).resolve().parents[1]
+    mine = tmp_path / "datasets"
+    (mine / "splits").mkdir(parents=True)
+    (mine / "splits" / "todo.txt").write_text("keep me\n")
+    proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "run", str(root / "configs" / "default.yaml"),
+                           "--input", str(root / "sample_corpus"), "--output", str(mine)],
+                          capture_output=True, text=True, cwd=root)
+    assert proc.returncode == 2 and "not a midisift output folder" in proc.stderr
+    assert sorted(p.name for p in mine.rglob("*")) == ["splits", "todo.txt"]

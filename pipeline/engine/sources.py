@@ -17,6 +17,7 @@ from typing import overload
 
 from ..errors import UsageError
 from ..store.ledger import LEDGER_NAME
+from ..store.lock import LOCK_NAME
 
 MIDI_SUFFIXES = (".mid", ".midi", ".kar", ".rmi")
 
@@ -194,6 +195,27 @@ def check_folders(input_dir: Path, output_dir: Path) -> None:
     if out_res == input_dir or out_res in input_dir.parents:
         raise UsageError(f"the output folder {out_res} is, or contains, the input folder {input_dir}; "
                          "a run rewrites its output folder, so choose an output folder outside the input")
+    check_output_folder(out_res)
+
+
+def check_output_folder(out_dir: Path) -> None:
+    """Refuse an existing folder that holds files but is no run's output folder (no ledger): a
+    run removes from its output folder what it did not write (``midi/``, ``splits/``, its
+    temporary files), which would be the user's own files there (an audit lost a collection
+    kept under ``midi/`` that way). A folder whose first run stopped before its ledger was made
+    holds at most the run's lock."""
+    try:
+        names = sorted(e.name for e in os.scandir(out_dir))
+    except (FileNotFoundError, NotADirectoryError):
+        return
+    except OSError:
+        return  # unreadable: creating the ledger there reports it
+    foreign = [n for n in names if n != LOCK_NAME]
+    if foreign and LEDGER_NAME not in names:
+        shown = ", ".join(foreign[:3]) + (f" and {len(foreign) - 3} more" if len(foreign) > 3 else "")
+        raise UsageError(f"the output folder {out_dir} holds files ({shown}) but no {LEDGER_NAME}: it is "
+                         "not a midisift output folder, and a run would remove what it did not write "
+                         "there (midi/, splits/); choose a new or empty output folder")
 
 
 def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTable, list[str]]:
