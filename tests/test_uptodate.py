@@ -103,7 +103,8 @@ def test_touched_file_with_the_same_bytes_stays_up_to_date(corpus, config, tmp_p
     assert mtime == st.st_mtime_ns + 10**9  # the new mtime is recorded: no rehash next time
 
 
-@pytest.mark.parametrize("change", ["option", "new_file", "removed_file", "missing_output", "fresh"])
+@pytest.mark.parametrize("change", ["option", "new_file", "removed_file", "missing_output", "fresh",
+                                    "split_line_added", "manifest_row_added"])
 def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
     out = tmp_path / "out"
     assert _cli(config, corpus, out) == 0
@@ -123,6 +124,12 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
         next(p for p in sorted(corpus.rglob("*.mid"))).unlink()
     elif change == "missing_output":
         next(p for p in sorted((out / "midi").rglob("*.mid"))).unlink()
+    elif change in ("split_line_added", "manifest_row_added"):  # found kept by an audit
+        listed = (out / "splits" / "train.txt") if change == "split_line_added" else out / "manifest.jsonl"
+        before = listed.read_bytes()
+        line = b"midi/train/0000000000000000.mid\n" if change == "split_line_added" else \
+            before.splitlines(keepends=True)[0].replace(b'"source": "', b'"source": "ghost/')
+        listed.write_bytes(before + line)
     else:
         extra = ("--fresh",)
     assert _cli(config, corpus, out, *extra) == 0
@@ -136,6 +143,10 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
         assert all((out / r["output"]).is_file() for r in kept)
     if change == "option":
         assert summary["options"]["filter"]["min_notes"] == 40
+    if change == "split_line_added":  # the normal run writes the list again
+        assert "0000000000000000" not in (out / "splits" / "train.txt").read_text()
+    if change == "manifest_row_added":
+        assert not any(r["source"].startswith("ghost/") for r in rows)
 
 
 def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, monkeypatch):

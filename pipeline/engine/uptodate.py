@@ -77,7 +77,9 @@ def quick_key(raw: dict[str, Any], files_h: Any) -> str:
 
 def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
     """The last completed run's summary when its key ``name`` equals ``key`` and its outputs
-    are all still in place (manifest, split lists, every normalized file), else None."""
+    are all still in place, else None: the manifest with the size and modification time the
+    run recorded, the split lists naming exactly the normalized files it recorded (an audit
+    found an added line kept), and every one of those files."""
     last = ledger.last_run()
     if last is None or last["counts"].get(name) != key:
         return None
@@ -87,11 +89,19 @@ def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
         return None
     if summary.get("counts", {}).get(name) != key or not (out / "manifest.jsonl").is_file():
         return None
-    parts = summary.get("split", {}).get("outputs", {})
-    if any(not (out / "splits" / f"{p}.txt").is_file() for p in parts):
+    from ..outputs.rowreuse import STATE as ROWS_STATE, file_stat
+    if ledger.state_for(ROWS_STATE).get("manifest") != file_stat(out / "manifest.jsonl"):
+        return None
+    recorded = ledger.outputs()
+    listed: list[str] = []
+    for part in summary.get("split", {}).get("outputs", {}):
+        try:
+            listed += (out / "splits" / f"{part}.txt").read_text(encoding="utf-8").splitlines()
+        except (OSError, UnicodeDecodeError):
+            return None
+    if listed and (len(listed) != len(recorded) or set(listed) != recorded.keys()):
         return None
     from ..outputs.files import present_files
-    recorded = ledger.outputs()
     if len(present_files(out, recorded)) != len(recorded):
         return None
     return summary

@@ -74,7 +74,7 @@ class RowReuse:
         self._crc32: int | None = None  # the old manifest's, as the last run recorded it
         self._ends: Any = None  # its lines' end offsets, once ``stretches`` planned the rows
         saved = ledger.state_for(STATE)
-        if saved.get("base") != base or saved.get("manifest") != _stat(self.manifest):
+        if saved.get("base") != base or saved.get("manifest") != file_stat(self.manifest):
             return  # another config, another version, or a manifest the ledger does not know
         old = ledger.row_digests()
         if len(old) != saved.get("rows"):
@@ -219,7 +219,7 @@ class RowReuse:
         """This run's base key, row count, manifest stat, CRC-32 (``ManifestCheck``) and page
         facts, for the ledger's ``STATE`` entry (recorded in the run's last transaction, after
         the manifest is written)."""
-        return {"base": self.base, "rows": rows, "manifest": _stat(self.manifest), "facts": facts,
+        return {"base": self.base, "rows": rows, "manifest": file_stat(self.manifest), "facts": facts,
                 "version": STATE_VERSION, "run": self.run, "crc32": crc32}
 
 
@@ -302,7 +302,8 @@ def line_prefix(f: Any) -> str:
     return '{"id": "' + f.sha256[:16] + '", "source": ' + source + ", "
 
 
-def _stat(path: Path) -> list[int] | None:
+def file_stat(path: Path) -> list[int] | None:
+    """[size, mtime_ns] of a file as the rows' state records it, None when it cannot be read."""
     try:
         st = os.stat(path)
     except OSError:
