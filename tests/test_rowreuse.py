@@ -404,11 +404,11 @@ def _planned_reuse(tmp: Path, old: list[str], new: list[str], sha_of: dict[str, 
     import zlib
     from types import SimpleNamespace
     from pipeline.engine.sources import SourceTable
-    from pipeline.outputs.rowreuse import STATE_VERSION, RowReuse, _stat, line_prefix
+    from pipeline.outputs.rowreuse import STATE_VERSION, RowReuse, file_stat, line_prefix
     path = tmp / "manifest.jsonl"
     text = "".join(line_prefix(SimpleNamespace(rel=r, sha256=sha_of[r])) + '"n": %d}\n' % k for k, r in enumerate(old))
     path.write_bytes(text.encode("utf-8"))
-    state = {"base": "b", "rows": len(old), "manifest": _stat(path), "facts": None,
+    state = {"base": "b", "rows": len(old), "manifest": file_stat(path), "facts": None,
              "version": STATE_VERSION, "run": 1, "crc32": zlib.crc32(text.encode("utf-8"))}
     if edit is not None:
         edit(path)
