@@ -44,6 +44,7 @@ def _written(out: Path) -> dict:
     """What a run wrote that a rerun must reproduce."""
     summary = json.loads((out / "summary.json").read_text())
     summary.pop("timings_s", None)
+    summary.pop("changes_since_last_run", None)  # what the run did against the last one, as timings
     summary.pop("output", None)  # the folder's own path
     summary.pop("input", None)  # each test's copy of the corpus
     summary.get("counts", {}).pop("quick_key", None)

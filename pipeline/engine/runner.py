@@ -32,6 +32,7 @@ from typing import Any
 from ..config import Config
 from ..errors import LedgerError
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
+from ..outputs.changes import change_lines, changes_since, last_parts
 from ..outputs.rowreuse import STATE as ROWS_STATE, ManifestCheck, RowReuse
 from ..outputs.table import RunReport, in_part_order, split_lines
 from ..stages import Stage
@@ -140,6 +141,8 @@ class Runner:
         # have changed: their rows are not settled, ``RowReuse.settle``); none to list on a
         # first run, which reuses no row
         touched = _touched_contents(changed, gone, known) if known else None
+        # files added, changed and removed since the last run (``outputs.changes``; a rerun's)
+        moved_files = _file_changes(changed, gone, known) if known else None
         del known, changed, gone  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
@@ -222,6 +225,9 @@ class Runner:
             # run's verdicts stay those it walked
             self._execute(ledger, late, None, walk.staged)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
+        changes = (changes_since(last_status, last_parts(recorded_out), rep, walk.status, placed.part_of,
+                                 *moved_files) if moved_files is not None else None)
+        del last_status
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
             with ledger.batch():
                 ledger.forget_outputs([rel for rel in recorded_out if rel not in placed.recorded])
@@ -246,6 +252,8 @@ class Runner:
                                             len(rep) - computed, placed, cfg)
             summary["counts"]["state_key"] = state_key
             summary["counts"]["quick_key"] = qkey
+            if changes is not None:
+                summary["changes_since_last_run"] = changes.as_dict()
             return summary
 
         # one pass over the files writes the manifest and records the trails for explain, all
@@ -283,7 +291,7 @@ class Runner:
         write_report(cfg.output, summary, names, cfg.input, facts)
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), facts.kept, facts.dropped_by, timings, computed,
-                         len(rep) - computed, parts, notes + walk.notes,
+                         len(rep) - computed, parts, change_lines(changes) + notes + walk.notes,
                          summary.get("warnings", []),
                          split_lines=split_lines(summary["split"].get("stage")))
 
@@ -453,6 +461,16 @@ def _bulk_data() -> Iterator[None]:
         if enabled:
             gc.enable()
 
+
+
+def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
+                  known: dict[str, tuple[int, int, str]]) -> tuple[int, int, int]:
+    """(added, changed, removed) source files: ``changed`` the fingerprinted rows that are new
+    or differ in size or time from ``known`` (the last run's sources by path; a file counts as
+    changed when its bytes did), ``gone`` the paths no longer there."""
+    added = sum(1 for row in changed if row[0] not in known)
+    edited = sum(1 for row in changed if row[0] in known and known[row[0]][2] != row[3])
+    return added, edited, len(gone)
 
 
 def _touched_contents(changed: list[tuple[str, int, int, str]], gone: list[str],

@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from .. import __version__
+from ..outputs.changes import Changes
 from ..outputs.table import RunReport, in_part_order, split_lines
 
 NOTE = "nothing changed since the last run: outputs are up to date"
@@ -130,6 +131,7 @@ def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: 
     summary["timings_s"] = {"discover": round(seconds_discover, 4),
                             "total": round(time.perf_counter() - t_start, 4)}
     summary["unchanged_since_last_run"] = True
+    summary["changes_since_last_run"] = Changes().as_dict()  # not the last run's changes
     # the same summary with fresh timings: no fsync, which waits for whatever else the disk is
     # writing (after a power cut the previous summary, equal but for the timings, is there)
     write_summary(out, summary, fsync=False)

@@ -1,0 +1,60 @@
+"""A rerun says what changed since the last run: files added, changed and removed, verdicts
+that turned and kept files that moved part (``pipeline.outputs.changes``). The real-data check
+runs on twelve POP909 files (tests/data/pop909, MIT licence, Music X Lab 2020): when a song's
+kept file is removed, the copy dedup dropped in its favour is kept now, in the song's part."""
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import yaml
+
+from pipeline.config import load_config
+from pipeline.engine.runner import Runner
+from pipeline.outputs.changes import Changes, change_lines, changes_since, last_parts
+
+POP = Path(__file__).parent / "data" / "pop909"
+
+
+def test_changes_against_the_last_runs_verdicts_and_parts():
+    last_status = {"a": "kept", "b": "dropped", "c": "kept", "d": "kept"}
+    recorded = {"midi/train/a.mid": ("a", "fp"), "midi/test/c.mid": ("c", "fp"), "midi/test/c.t+1.mid": ("c", "fp"),
+                "midi/valid/d.mid": ("d", "fp")}
+    rep = {"a": "a.mid", "b": "b.mid", "c": "c.mid", "d": "d.mid", "n": "new.mid"}
+    status = {"a": ("filter", "too_short"), "b": None, "c": None, "d": None, "n": None}
+    part_of = {"b": "valid", "c": "train", "d": "valid", "n": "train"}
+    got = changes_since(last_status, last_parts(recorded), rep, status, part_of, 1, 0, 2)
+    assert got.now_dropped == ["a.mid"] and got.now_kept == [("b.mid", "valid")]
+    assert got.moved == [("c.mid", "test", "train")]  # d stayed in valid; the new file is only added
+    assert change_lines(got) == ["since the last run: files 1 added, 0 changed, 2 removed; 1 now kept "
+                                 "(e.g. b.mid), 1 now dropped (e.g. a.mid), 1 moved to another part (e.g. c.mid)"]
+    assert change_lines(Changes()) == [] and change_lines(None) == []
+
+
+def _run(corpus: Path, out: Path) -> tuple[dict[str, dict], dict, str]:
+    cfg = out.parent / "c.yaml"
+    cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(out), "workers": 1, "stages": [
+        {"validate": {}}, {"key_meter": {}}, {"dedup": {}},
+        {"split": {"ratios": {"train": 0.5, "valid": 0.25, "test": 0.25}}}]}))
+    report = Runner(load_config(cfg), quiet=True).run()
+    rows = {r["source"]: r for r in map(json.loads, (out / "manifest.jsonl").read_text().splitlines())}
+    return rows, json.loads((out / "summary.json").read_text()), report.table()
+
+
+def test_a_rerun_names_the_copy_kept_now_in_its_songs_part(tmp_path):
+    corpus = tmp_path / "in"
+    shutil.copytree(POP, corpus, ignore=shutil.ignore_patterns("LICENSE", "README.md"))
+    rows, summary, _ = _run(corpus, tmp_path / "out")
+    assert "changes_since_last_run" not in summary  # a first run
+    kept = rows["051/051.mid"]
+    copy = rows["051/versions/051-v1.mid"]
+    assert kept["status"] == "kept" and copy["duplicate_of"] == kept["id"]
+    (corpus / "051" / "051.mid").unlink()
+    rows, summary, table = _run(corpus, tmp_path / "out")
+    assert rows["051/versions/051-v1.mid"]["split"] == kept["split"]  # the song stays in its part
+    changes = summary["changes_since_last_run"]
+    assert (changes["files_added"], changes["files_changed"], changes["files_removed"]) == (0, 0, 1)
+    assert (changes["now_kept"], changes["now_dropped"], changes["moved"]) == (1, 0, 0)
+    assert changes["examples"]["now_kept"] == [{"source": "051/versions/051-v1.mid", "split": kept["split"]}]
+    assert "since the last run: files 0 added, 0 changed, 1 removed; 1 now kept (e.g. 051/versions/051-v1.mid)" in table
