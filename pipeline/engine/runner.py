@@ -79,6 +79,9 @@ class Runner:
         self._remote: Any = None  # the Dask executor while a run names a scheduler
         self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
         self._index: dict[str, int] = {}  # sha256 -> content index (position in ``_order``)
+        #: contents a worker could not read as themselves (``FileOutcome.unread``): sha256 ->
+        #: (reason, detail), this run's verdicts only, never stored as the content's
+        self._unread: dict[str, tuple[str, str]] = {}
         self._order: list[str] = []  # the run's contents in first-source order
 
     # progress -----------------------------------------------------------------------------
@@ -208,7 +211,8 @@ class Runner:
         with _bulk_data():
             walk = StageWalk(self.stages, cfg.metadata, self._compactor, self._bar, self._chains,
                              fresh=self.fresh, reassign=self.reassign).run(ledger, rep, cache, timings,
-                                                                           self._staged, self._index)
+                                                                           self._staged, self._index,
+                                                                           unread=self._unread)
         timings["corpus"] = time.perf_counter() - t
 
         # late renders: contents kept now that have no output (e.g. a cluster's new representative)
@@ -221,6 +225,9 @@ class Runner:
             # the walk is done: a fault while rendering is stored for the next run, and this
             # run's verdicts stay those it walked
             self._execute(ledger, late, None, walk.staged)
+        # contents read in the per-file pass (their rows say so) and those only a late render
+        # could not read (kept, without an output in this run)
+        unread_late = sum(1 for sha in missing if sha in self._unread)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
             with ledger.batch():
@@ -244,8 +251,11 @@ class Runner:
             timings["total"] = time.perf_counter() - t_start
             summary = summaries.build_summary(facts, len(rep), walk, self.stages, timings, computed,
                                             len(rep) - computed, placed, cfg)
-            summary["counts"]["state_key"] = state_key
-            summary["counts"]["quick_key"] = qkey
+            # a run that could not read some files is not one a rerun may skip as unchanged:
+            # it reads them again
+            summary["counts"]["state_key"] = None if self._unread else state_key
+            summary["counts"]["quick_key"] = None if self._unread else qkey
+            summary["warnings"].extend(unread_warnings(self._unread, unread_late))
             return summary
 
         # one pass over the files writes the manifest and records the trails for explain, all
@@ -353,6 +363,9 @@ class Runner:
             for oc in outcomes:
                 i = index[oc.sha256]  # every task's content is one of the run's
                 sha = order[i]  # memory: the run's string, not a copy
+                if oc.unread is not None:  # not the content's verdict: nothing stored
+                    self._unread[sha] = oc.unread
+                    self._recomputed.mark(i)  # its last row is not this run's
                 if oc.results:
                     self._recomputed.mark(i)
                 for name, stored in oc.results.items():
@@ -453,6 +466,24 @@ def _bulk_data() -> Iterator[None]:
         if enabled:
             gc.enable()
 
+
+
+def unread_warnings(unread: dict[str, tuple[str, str]], late: int) -> list[str]:
+    """The summary's warnings about files a worker could not read as the content hashed when
+    the files were listed (``Runner._unread``; ``late`` of them only when rendering a kept
+    file's output)."""
+    if not unread:
+        return []
+    by_reason: dict[str, list[str]] = {}
+    for reason, detail in unread.values():
+        by_reason.setdefault(reason, []).append(detail)
+    out = []
+    for reason, details in sorted(by_reason.items()):
+        out.append(f"{len(details)} content(s) not read in this run ({reason}), e.g. {details[0]}")
+    if late:
+        out.append(f"{late} kept content(s) have no normalized output in this run: their file "
+                   "could not be read to render it; the next run renders it")
+    return out
 
 
 def _touched_contents(changed: list[tuple[str, int, int, str]], gone: list[str],
