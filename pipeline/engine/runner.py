@@ -133,7 +133,8 @@ class Runner:
         else:
             files, notes = discover(cfg.input, cfg.output)
         known = ledger.sources()
-        changed = fingerprint(files, known)
+        notes = list(notes)
+        changed = fingerprint(files, known, notes)
         present = files.path_set()
         gone = [p for p in known if p not in present]
         with ledger.batch():

@@ -180,7 +180,7 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
             known = ledger.sources()
             if len(files) != len(known) or any(files.rel(i) not in known for i in range(len(files))):
                 return None  # files added or removed: the normal run records them
-            changed = fingerprint(files, known)
+            changed = fingerprint(files, known, notes)
             seconds_discover = time.perf_counter() - t
             if changed:  # touched or edited files: keep their hashes for whichever run goes on
                 with ledger.batch():
