@@ -160,7 +160,7 @@ class Runner:
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
             uptodate.record_unchanged(ledger, cfg.output, unchanged, run_id, qkey,
-                                      timings["discover"], t_start)
+                                      timings["discover"], t_start, files.skipped)
             return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)
 
         # distinct contents, each represented by its first source path
@@ -257,6 +257,7 @@ class Runner:
             summary["counts"]["state_key"] = None if self._unread else state_key
             summary["counts"]["quick_key"] = None if self._unread else qkey
             summary["warnings"].extend(unread_warnings(self._unread, unread_late))
+            summary["skipped"] = summaries.skipped_summary(files.skipped)
             return summary
 
         # one pass over the files writes the manifest and records the trails for explain, all
@@ -282,6 +283,7 @@ class Runner:
             facts = counted[0]
             release_free_memory()  # memory: what the rows freed is not kept beside the states' texts
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state(), check.value))
+            ledger.put_skipped(files.skipped)
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             ledger.put_run_columns(run_id, self._order, cache.values())
