@@ -15,6 +15,10 @@ REASONS: dict[str, tuple[str, str]] = {
     "too_large": ("validate", "over max_bytes, max_events or max_tracks, or over the per-file memory limit"),
     "timeout": ("validate", "decoding and the per-file stages took longer than timeout_s; the worker was replaced"),
     "decoder_crash": ("validate", "the worker process died on this file (e.g. a crash in native code); it was replaced"),
+    "unreadable": ("validate", "the file could not be read (missing, permission denied, an I/O error: the detail names "
+                               "the OS error); not cached, the next run reads it again"),
+    "changed_during_run": ("validate", "the file's bytes changed between the listing (its sha256) and the reading; "
+                                       "not judged nor cached, the next run reads it again"),
     "needs_repair": ("validate", "with allow_repairs: false, a file that needed one of the decoder's named repairs"),
     "no_notes": ("validate", "a readable file without a single note"),
     "stage_error": ("any", "a stage raised an unexpected error on this file (a bug: please report it with the file)"),

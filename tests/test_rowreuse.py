@@ -215,7 +215,7 @@ def test_trail_text_is_what_the_json_module_writes(first, tmp_path, monkeypatch)
     shutil.copytree(base, dest)
     walks, checked = [], []
     real = StageWalk.run
-    monkeypatch.setattr(StageWalk, "run", lambda self, *a: walks.append(real(self, *a)) or walks[-1])
+    monkeypatch.setattr(StageWalk, "run", lambda self, *a, **k: walks.append(real(self, *a, **k)) or walks[-1])
     real_write = runner.manifest.write_all
 
     def write_all(*a, **k):  # checked while the run's ledger is open (per-file values stay in it)

@@ -92,6 +92,34 @@ def test_inputs_untouched_and_awkward_names_work(awkward_corpus, tmp_path):
                             rel), rel
 
 
+def test_skipped_entries_are_in_the_summary_and_explained(tmp_path):
+    """An audit found that entries skipped with a note left no trace in the output folder (the
+    note is printed only, and not with --quiet; explain said "no such file"). summary.json now
+    lists them, and explain names why, a nothing-changed rerun included."""
+    from pipeline.audit.explain import explain
+    inp = tmp_path / "in"
+    main_synth(inp / "synth", 6, seed=3)
+    os.symlink("/nonexistent/dangling.mid", inp / "dangling.mid")
+    os.symlink("synth", inp / "again")
+    os.mkfifo(inp / "fifo.mid")
+    out = tmp_path / "out"
+    for _ in range(2):  # the second run finds nothing changed
+        run(inp, out)
+        summary = json.loads((out / "summary.json").read_text())
+        listed = {e["source"]: e["why"] for e in summary["skipped"]["listed"]}
+        assert summary["skipped"]["count"] == 3 and set(listed) == {"dangling.mid", "again/", "fifo.mid"}
+        assert "pointing outside the input folder" in listed["dangling.mid"]
+        text = explain(out, "dangling.mid")
+        assert "skipped when the last run listed the input folder" in text and listed["dangling.mid"] in text
+        text = explain(out, str(inp / "again" / "x.mid"))
+        assert "(it lies in again/)" in text and "links to folders are not followed" in text
+        assert json.loads(explain(out, "fifo.mid", as_json=True)) == [
+            {"source": "fifo.mid", "status": "skipped", "why": "not a regular file (a FIFO)"}]
+    assert summary.get("unchanged_since_last_run")
+    with pytest.raises(UsageError, match="no such file"):
+        explain(out, "never_there.mid")
+
+
 def test_output_inside_input_is_not_searched(tmp_path):
     inp = tmp_path / "in"
     main_synth(inp, 20, seed=5)

@@ -176,3 +176,49 @@ def test_the_cli_leaves_the_users_files_in_place(tmp_path):
                           capture_output=True, text=True, cwd=root)
     assert proc.returncode == 2 and "not a midisift output folder" in proc.stderr
     assert sorted(p.name for p in mine.rglob("*")) == ["splits", "todo.txt"]
+
+
+def test_every_entry_left_out_is_named_with_why(tmp_path, monkeypatch):
+    """An audit found input entries left out without a trace: links to folders (inside and
+    outside the input), a folder that cannot be listed, a FIFO named *.mid, a path past
+    PATH_MAX, a file gone before it was hashed. Each is now in ``skipped`` with a note."""
+    inp, outside = tmp_path / "in", tmp_path / "outside"
+    (inp / "real").mkdir(parents=True)
+    outside.mkdir()
+    (inp / "a.mid").write_bytes(b"MThd a")
+    (inp / "real" / "r.mid").write_bytes(b"MThd r")
+    (outside / "o.mid").write_bytes(b"MThd o")
+    (inp / "locked").mkdir()
+    (inp / "locked" / "l.mid").write_bytes(b"MThd l")
+    os.symlink("real", inp / "link_in")
+    os.symlink(outside, inp / "link_out")
+    os.mkfifo(inp / "fifo.mid")
+    monkeypatch.chdir(inp)
+    for i in range(45):  # about 4,550 bytes of path: past PATH_MAX (4096), made step by step
+        name = f"{i:03d}" + "d" * 97
+        os.mkdir(name)
+        os.chdir(name)
+    Path("deep.mid").write_bytes(b"MThd deep")
+    monkeypatch.chdir(tmp_path)
+    real_scandir = os.scandir
+
+    def scandir(path="."):  # the superuser lists any folder: permission denied, as it is for others
+        if str(path).endswith("locked"):
+            raise PermissionError(13, "Permission denied", str(path))
+        return real_scandir(path)
+    monkeypatch.setattr(os, "scandir", scandir)
+    table, notes = discover(inp, tmp_path / "out")
+    monkeypatch.undo()
+    assert [table.rel(i) for i in range(len(table))] == ["a.mid", "real/r.mid"]
+    why = dict(table.skipped)
+    assert "symlink to a folder inside the input" in why["link_in/"]
+    assert "symlink to a folder outside the input" in why["link_out/"]
+    assert "Permission denied" in why["locked/"] and "cannot list" in why["locked/"]
+    assert why["fifo.mid"] == "not a regular file (a FIFO)"
+    assert any("File name too long" in w for w in why.values()), why
+    assert len(notes) == len(table.skipped) and all(n.startswith("note: ") for n in notes)
+    (inp / "a.mid").unlink()  # gone between the listing and the hashing
+    notes = []
+    fingerprint(table, {}, notes)
+    assert [table.rel(i) for i in range(len(table))] == ["real/r.mid"]
+    assert "could not be read to hash it" in dict(table.skipped)["a.mid"] and "a.mid" in notes[0]

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import os
 import re
 from pathlib import Path
 from typing import Any
@@ -47,21 +48,42 @@ def resolve(ledger: Ledger, query: str, input_dir: Path | None) -> list[tuple[st
     hit = ledger.decision(query)
     if hit is not None:
         return [(query, *hit)]
-    candidates = []
-    p = Path(query)
-    if input_dir is not None:
-        try:
-            candidates.append(p.resolve().relative_to(input_dir.resolve()).as_posix())
-        except ValueError:
-            pass
-        candidates.append(p.as_posix())
-    for c in candidates:
+    for c in _candidates(query, input_dir):
         hit = ledger.decision(c)
         if hit is not None:
             return [(c, *hit)]
     if re.fullmatch(r"[0-9a-fA-F]{6,64}", query):
         return ledger.decisions_by_sha_prefix(query.lower())
     return []
+
+
+def _candidates(query: str, input_dir: Path | None) -> list[str]:
+    """The source paths a query may name besides itself: relative to the input folder, as given."""
+    candidates = []
+    p = Path(query)
+    if input_dir is not None:
+        top = input_dir.resolve()
+        # links resolved, then as written (a path through a link the run did not follow)
+        for full in (p.resolve(), Path(os.path.abspath(p))):
+            try:
+                candidates.append(full.relative_to(top).as_posix())
+            except ValueError:
+                pass
+        candidates.append(p.as_posix())
+    return list(dict.fromkeys(candidates))
+
+
+def skipped(ledger: Ledger, query: str, input_dir: Path | None) -> tuple[str, str] | None:
+    """(path, why) when the last run left the queried path, or a folder holding it, out as it
+    listed the input (``Ledger.skipped_why``), else None."""
+    for c in dict.fromkeys([query, *_candidates(query, input_dir)]):
+        c = c.rstrip("/")
+        for path in [c, *(f"{parent.as_posix()}" for parent in Path(c).parents if parent.as_posix() != ".")]:
+            for key in (path, path + "/"):
+                why = ledger.skipped_why(key)
+                if why is not None:
+                    return key, why
+    return None
 
 
 def _mates(out_dir: Path, wanted: dict[str, Any]) -> dict[str, list[dict]]:
@@ -108,6 +130,16 @@ def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
             if isinstance(raw, dict) and raw.get("input"):
                 input_dir = Path(raw["input"])
         hits = resolve(ledger, query, input_dir)
+        left_out = None if hits else skipped(ledger, query, input_dir)
+    if left_out is not None:
+        path, why = left_out
+        if as_json:
+            return json.dumps([{"source": path, "status": "skipped", "why": why}], indent=1,
+                              ensure_ascii=False)
+        inside = (f" (it lies in {path})" if path.endswith("/") and
+                  not query.rstrip("/").endswith(path.rstrip("/")) else "")
+        return (f"{query}{inside}: skipped when the last run listed the input folder, so it has "
+                f"no manifest row: {why}")
     if not hits:
         raise UsageError("no such file in the last run (give the path as in the manifest's 'source', "
                             "a path under the input folder, or an id of at least 6 hex digits)", file=query)

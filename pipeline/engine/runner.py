@@ -80,6 +80,9 @@ class Runner:
         self._remote: Any = None  # the Dask executor while a run names a scheduler
         self._values: dict[str, Any] = {}  # file stage -> its ledger.StoredValues (during a run)
         self._index: dict[str, int] = {}  # sha256 -> content index (position in ``_order``)
+        #: contents a worker could not read as themselves (``FileOutcome.unread``): sha256 ->
+        #: (reason, detail), this run's verdicts only, never stored as the content's
+        self._unread: dict[str, tuple[str, str]] = {}
         self._order: list[str] = []  # the run's contents in first-source order
 
     # progress -----------------------------------------------------------------------------
@@ -131,7 +134,8 @@ class Runner:
         else:
             files, notes = discover(cfg.input, cfg.output)
         known = ledger.sources()
-        changed = fingerprint(files, known)
+        notes = list(notes)
+        changed = fingerprint(files, known, notes)
         present = files.path_set()
         gone = [p for p in known if p not in present]
         with ledger.batch():
@@ -159,7 +163,7 @@ class Runner:
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
             uptodate.record_unchanged(ledger, cfg.output, unchanged, run_id, qkey,
-                                      timings["discover"], t_start)
+                                      timings["discover"], t_start, files.skipped)
             return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)
 
         # distinct contents, each represented by its first source path
@@ -211,7 +215,8 @@ class Runner:
         with _bulk_data():
             walk = StageWalk(self.stages, cfg.metadata, self._compactor, self._bar, self._chains,
                              fresh=self.fresh, reassign=self.reassign).run(ledger, rep, cache, timings,
-                                                                           self._staged, self._index)
+                                                                           self._staged, self._index,
+                                                                           unread=self._unread)
         timings["corpus"] = time.perf_counter() - t
 
         # late renders: contents kept now that have no output (e.g. a cluster's new representative)
@@ -224,6 +229,9 @@ class Runner:
             # the walk is done: a fault while rendering is stored for the next run, and this
             # run's verdicts stay those it walked
             self._execute(ledger, late, None, walk.staged)
+        # contents read in the per-file pass (their rows say so) and those only a late render
+        # could not read (kept, without an output in this run)
+        unread_late = sum(1 for sha in missing if sha in self._unread)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
         changes = (changes_since(last_status, last_parts(recorded_out), rep, walk.status, placed.part_of,
                                  *moved_files) if moved_files is not None else None)
@@ -250,8 +258,12 @@ class Runner:
             timings["total"] = time.perf_counter() - t_start
             summary = summaries.build_summary(facts, len(rep), walk, self.stages, timings, computed,
                                             len(rep) - computed, placed, cfg)
-            summary["counts"]["state_key"] = state_key
-            summary["counts"]["quick_key"] = qkey
+            # a run that could not read some files is not one a rerun may skip as unchanged:
+            # it reads them again
+            summary["counts"]["state_key"] = None if self._unread else state_key
+            summary["counts"]["quick_key"] = None if self._unread else qkey
+            summary["warnings"].extend(unread_warnings(self._unread, unread_late))
+            summary["skipped"] = summaries.skipped_summary(files.skipped)
             if changes is not None:
                 summary["changes_since_last_run"] = changes.as_dict()
             return summary
@@ -279,6 +291,7 @@ class Runner:
             facts = counted[0]
             release_free_memory()  # memory: what the rows freed is not kept beside the states' texts
             ledger.put_state(ROWS_STATE, reuse.state_of(len(files), facts.to_state(), check.value))
+            ledger.put_skipped(files.skipped)
             for name, st in walk.states.items():
                 ledger.put_state(name, st)
             ledger.put_run_columns(run_id, self._order, cache.values())
@@ -361,6 +374,9 @@ class Runner:
             for oc in outcomes:
                 i = index[oc.sha256]  # every task's content is one of the run's
                 sha = order[i]  # memory: the run's string, not a copy
+                if oc.unread is not None:  # not the content's verdict: nothing stored
+                    self._unread[sha] = oc.unread
+                    self._recomputed.mark(i)  # its last row is not this run's
                 if oc.results:
                     self._recomputed.mark(i)
                 for name, stored in oc.results.items():
@@ -471,6 +487,24 @@ def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
     added = sum(1 for row in changed if row[0] not in known)
     edited = sum(1 for row in changed if row[0] in known and known[row[0]][2] != row[3])
     return added, edited, len(gone)
+
+
+def unread_warnings(unread: dict[str, tuple[str, str]], late: int) -> list[str]:
+    """The summary's warnings about files a worker could not read as the content hashed when
+    the files were listed (``Runner._unread``; ``late`` of them only when rendering a kept
+    file's output)."""
+    if not unread:
+        return []
+    by_reason: dict[str, list[str]] = {}
+    for reason, detail in unread.values():
+        by_reason.setdefault(reason, []).append(detail)
+    out = []
+    for reason, details in sorted(by_reason.items()):
+        out.append(f"{len(details)} content(s) not read in this run ({reason}), e.g. {details[0]}")
+    if late:
+        out.append(f"{late} kept content(s) have no normalized output in this run: their file "
+                   "could not be read to render it; the next run renders it")
+    return out
 
 
 def _touched_contents(changed: list[tuple[str, int, int, str]], gone: list[str],

@@ -65,11 +65,16 @@ class SourceTable(Sequence[SourceFile]):
     byte string of 32 bytes a file. Reading an item makes its ``SourceFile``. Memory: no
     Python object per file (the figures: DEVELOPERS.md, Memory rounds)."""
 
-    __slots__ = ("root", "_paths", "_ends", "_sizes", "_mtimes", "_digests", "_hashed")
+    __slots__ = ("root", "skipped", "_paths", "_ends", "_sizes", "_mtimes", "_digests", "_hashed")
 
-    def __init__(self, root: str, rows: Iterable[tuple[str, int, int]] = ()):
-        """``rows``: (rel, size, mtime_ns) of each file, in path order (``discover``)."""
+    def __init__(self, root: str, rows: Iterable[tuple[str, int, int]] = (),
+                 skipped: Iterable[tuple[str, str]] = ()):
+        """``rows``: (rel, size, mtime_ns) of each file, in path order (``discover``);
+        ``skipped``: (rel, why) of each entry left out (``discover``, ``fingerprint``)."""
         self.root = root  # the input folder, as ``discover`` searched it
+        #: the entries below the input that look like input and were left out, with why (a
+        #: folder's path ends with '/'): summary.json lists them, ``explain`` answers for them
+        self.skipped: list[tuple[str, str]] = list(skipped)
         paths = bytearray()
         self._ends, self._sizes, self._mtimes = array("q"), array("q"), array("q")
         for rel, size, mtime_ns in rows:
@@ -231,11 +236,26 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTab
     if output_dir is not None:
         check_folders(input_dir, output_dir)
     notes: list[str] = []
+    skipped: list[tuple[str, str]] = []  # (rel, why): ``SourceTable.skipped``
     found: list[tuple[str, int, int]] = []  # (rel, size, mtime_ns)
     top = str(input_dir)
+
+    def skip(rel: str, why: str, note: str | None = None) -> None:
+        """Leave ``rel`` out, with a note (``note``, else 'skipped REL: WHY')."""
+        shown = rel.encode("utf-8", "backslashreplace").decode("utf-8")  # a name not valid UTF-8
+        skipped.append((shown, why))
+        notes.append(note or f"note: skipped {shown}: {why}")
+
+    def unlisted(err: OSError) -> None:
+        # reliability: a folder os.walk cannot list (permissions, a path past PATH_MAX, EIO)
+        # is named, not passed over in silence
+        where = os.path.relpath(err.filename, input_dir) if err.filename else "a folder"
+        skip(where.replace(os.sep, "/") + "/", f"cannot list this folder ({err.strerror or err}); "
+             "its files are not part of this run")
+
     # speed: the superuser reads every file it can stat (one access() call per file less)
     is_root = hasattr(os, "geteuid") and os.geteuid() == 0
-    for root, dirs, names in os.walk(input_dir, followlinks=False):
+    for root, dirs, names in os.walk(input_dir, followlinks=False, onerror=unlisted):
         rootp = Path(root)
         if out_res is not None and (rootp == out_res or out_res in rootp.parents):
             dirs[:] = []
@@ -248,10 +268,17 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTab
         for d in dirs:
             if out_res is not None and (rootp / d).resolve() == out_res:
                 notes.append(f"note: the output folder {out_res} lies inside the input folder; it is not searched")
+            elif os.path.islink(root_sep + d):  # os.walk lists a link to a folder and does not enter it
+                target = Path(root_sep + d).resolve()
+                inside = target == input_dir or input_dir in target.parents
+                skip(f"{prefix}{d}/", "a symlink to a folder " + (
+                    "inside the input folder, which is read under its own path" if inside else
+                    "outside the input folder") + "; links to folders are not followed")
             elif os.path.isfile(root_sep + d + os.sep + LEDGER_NAME):
-                notes.append(f"note: skipped folder {prefix}{d}: it holds the output of another run "
-                             f"({LEDGER_NAME}), whose normalized files are copies of input files; "
-                             "give it as the input folder to read them")
+                skip(f"{prefix}{d}/", f"it holds the output of another run ({LEDGER_NAME})",
+                     f"note: skipped folder {prefix}{d}: it holds the output of another run "
+                     f"({LEDGER_NAME}), whose normalized files are copies of input files; "
+                     "give it as the input folder to read them")
             else:
                 kept_dirs.append(d)
         dirs[:] = kept_dirs
@@ -263,36 +290,53 @@ def discover(input_dir: Path, output_dir: Path | None = None) -> tuple[SourceTab
             try:
                 rel.encode("utf-8")
             except UnicodeEncodeError:
-                notes.append(f"note: skipped {os.fsencode(rel)!r}: its name is not "
-                             "valid UTF-8 (rename it to include it)")
+                skip(rel, "its name is not valid UTF-8 (rename it to include it)",
+                     f"note: skipped {os.fsencode(rel)!r}: its name is not "
+                     "valid UTF-8 (rename it to include it)")
                 continue
             try:  # speed: one lstat per plain file (a stat more for a symlink), no Path objects
                 st = os.lstat(full)
                 if stat_mod.S_ISLNK(st.st_mode):
                     target = Path(full).resolve()
                     if input_dir not in target.parents or (out_res is not None and out_res in target.parents):
-                        notes.append(f"note: skipped symlink {rel} pointing outside the input folder "
-                                     "(or into the output folder)")
+                        skip(rel, "a symlink pointing outside the input folder (or into the output folder)",
+                             f"note: skipped symlink {rel} pointing outside the input folder "
+                             "(or into the output folder)")
                         continue
                     st = os.stat(full)
             except (OSError, RuntimeError) as e:  # RuntimeError: a symlink loop (Python < 3.13)
-                notes.append(f"note: cannot stat {rel}: {getattr(e, 'strerror', None) or e}")
+                why = getattr(e, 'strerror', None) or str(e)
+                skip(rel, f"cannot stat it: {why}", f"note: cannot stat {rel}: {why}")
                 continue
             if not stat_mod.S_ISREG(st.st_mode):
+                skip(rel, f"not a regular file ({_kind(st.st_mode)})")
                 continue
             if not (is_root or os.access(full, os.R_OK)):
-                notes.append(f"note: skipped {rel}: it is not readable (check its permissions)")
+                skip(rel, "it is not readable (check its permissions)")
                 continue
             found.append((rel, st.st_size, st.st_mtime_ns))
     found.sort(key=lambda row: row[0])
-    return SourceTable(top, found), notes
+    skipped.sort()
+    return SourceTable(top, found, skipped), notes
 
 
-def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]]) -> list[tuple[str, int, int, str]]:
+def _kind(mode: int) -> str:
+    """What a file that is not a regular one is, for a note."""
+    for test, name in ((stat_mod.S_ISDIR, "a folder"), (stat_mod.S_ISFIFO, "a FIFO"),
+                       (stat_mod.S_ISCHR, "a character device"), (stat_mod.S_ISBLK, "a block device"),
+                       (stat_mod.S_ISSOCK, "a socket")):
+        if test(mode):
+            return name
+    return "not a plain file"
+
+
+def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
+                notes: list[str] | None = None) -> list[tuple[str, int, int, str]]:
     """Set the sha256 of each file; hash only files whose size or mtime changed. Returns new rows.
 
     A file that vanished or became unreadable since discovery is removed from ``files`` (in
-    place), so it is simply not part of this run."""
+    place) and listed in ``files.skipped`` (with a note in ``notes``), so it is not part of
+    this run, and says so."""
     changed = []
     gone = []
     for i in range(len(files)):
@@ -306,8 +350,12 @@ def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]]) -> l
             with open(source_path(files.root, rel), "rb") as fh:
                 for block in iter(lambda: fh.read(1 << 20), b""):
                     h.update(block)
-        except OSError:  # reliability: removed or made unreadable during the run
+        except OSError as e:  # reliability: removed or made unreadable during the run
             gone.append(i)
+            why = f"it could not be read to hash it ({e.strerror or e})"
+            files.skipped.append((rel, why))
+            if notes is not None:
+                notes.append(f"note: skipped {rel}: {why}")
             continue
         sha = h.hexdigest()
         files.set_sha256(i, sha)

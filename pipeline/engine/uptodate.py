@@ -121,11 +121,15 @@ def report_from(summary: dict, output: Path, seconds: float, notes: list[str]) -
 
 
 def record_unchanged(ledger: Any, out: Path, summary: dict, run_id: int, quick: str,
-                     seconds_discover: float, t_start: float) -> None:
+                     seconds_discover: float, t_start: float,
+                     skipped: list[tuple[str, str]]) -> None:
     """Finish the logged run ``run_id`` that found nothing to do: summary.json keeps the last
-    run's content with fresh timings and this run's ``quick_key`` (the config may be written
-    differently)."""
-    from ..outputs.summary import write_summary
+    run's content with fresh timings, this run's ``quick_key`` (the config may be written
+    differently) and the entries this run's listing left out (``skipped``: path, why; they
+    may have changed without any input file changing)."""
+    from ..outputs.summary import skipped_summary, write_summary
+    summary["skipped"] = skipped_summary(skipped)
+    ledger.put_skipped(skipped)
     summary["counts"]["quick_key"] = quick
     summary["counts"].update(computed=0, reused=summary["counts"].get("contents", 0))
     summary["timings_s"] = {"discover": round(seconds_discover, 4),
@@ -192,7 +196,7 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
             known = ledger.sources()
             if len(files) != len(known) or any(files.rel(i) not in known for i in range(len(files))):
                 return None  # files added or removed: the normal run records them
-            changed = fingerprint(files, known)
+            changed = fingerprint(files, known, notes)
             seconds_discover = time.perf_counter() - t
             if changed:  # touched or edited files: keep their hashes for whichever run goes on
                 with ledger.batch():
@@ -203,5 +207,6 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
                 return None
             with ledger.batch():
                 run_id = ledger.start_run({"config": raw, "stages": last["config"].get("stages")})
-                record_unchanged(ledger, out, summary, run_id, quick, seconds_discover, t_start)
+                record_unchanged(ledger, out, summary, run_id, quick, seconds_discover, t_start,
+                                 files.skipped)
     return report_from(summary, out, time.perf_counter() - t_start, notes)

@@ -42,10 +42,13 @@ class StageWalk:
         self.reassign = reassign
 
     def run(self, ledger: Ledger, rep: Mapping[str, str], cache: dict, timings: dict,
-            staged: dict[str, tuple[str, ...]], index: dict[str, int]) -> "Walk":
+            staged: dict[str, tuple[str, ...]], index: dict[str, int], *,
+            unread: Mapping[str, tuple[str, str]] | None = None) -> "Walk":
         """Apply the stages in order to the contents ``rep`` (sha256 -> first source): per-file
         verdicts from ``cache`` (stage -> its ``records.Verdicts``, by content index: ``index``,
-        sha256 -> position in ``rep``), corpus stages run here."""
+        sha256 -> position in ``rep``), corpus stages run here. ``unread``: the contents a
+        worker could not read (sha256 -> reason, detail), dropped by the first stage in this
+        run's trail only, whatever verdicts are stored for them."""
         names = [st.name for st in self.stages]
         walk = Walk(staged=staged, stage_names=names, metadata=self.metadata, index=index, rep=rep,
                     verdicts={name: cache[name] for name in names if name in cache})
@@ -62,9 +65,15 @@ class StageWalk:
                 survivors = []
                 verdicts = cache[st.name]
                 state, dropped, kept = verdicts.state, verdicts.DROPPED, verdicts.KEPT
+                not_read = unread if unread and walk.stages_done == 0 else None
                 for sha in alive:
                     s = state[index[sha]]
-                    if s == kept and st.uses_source_fields:
+                    if not_read is not None and sha in not_read:
+                        reason, detail = not_read[sha]
+                        walk.replaced[(st.name, sha)] = self.compactor(st.name).make(
+                            False, reason, detail, {}, {})
+                        s = dropped
+                    elif s == kept and st.uses_source_fields:
                         r = self._source_verdict(st, walk.step(walk.stages_done, sha), walk, sha, rep[sha])
                         if r is not None:
                             walk.replaced[(st.name, sha)] = r

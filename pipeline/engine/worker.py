@@ -8,6 +8,8 @@ one per-file loop: the benchmark times its steps and the fuzzer checks its verdi
 """
 from __future__ import annotations
 
+import errno
+import hashlib
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
@@ -55,6 +57,48 @@ class FileOutcome:
     artifacts: dict[str, tuple] = field(default_factory=dict)  # stage -> codec.stored_artifacts form
     staged: tuple[str, ...] = ()  # suffixes of the staged outputs (outputs.files.staged_path)
     seconds: float = 0.0
+    #: (reason, detail) when the file could not be read as the content ``sha256`` names
+    #: (``read_source``): no result then, and none is stored (it is not the content's verdict)
+    unread: tuple[str, str] | None = None
+
+
+#: Reason codes of a file the worker could not read as the content it was sent for; never
+#: cached (the next run reads the file again): an I/O error, or bytes that are not the ones
+#: hashed when the files were listed.
+UNREADABLE, CHANGED = "unreadable", "changed_during_run"
+
+
+class SourceUnread(Exception):
+    """``read_source`` could not give the content's bytes: ``reason`` (``UNREADABLE``,
+    ``CHANGED``) and a sentence."""
+
+    def __init__(self, reason: str, detail: str):
+        super().__init__(detail)
+        self.reason, self.detail = reason, detail
+
+
+def read_source(path: str, sha256: str, limit: int) -> bytes:
+    """The first ``limit + 1`` bytes of the file at ``path`` (the reading stage sees no more),
+    checked to be the content ``sha256``: the results are stored under that hash, so bytes
+    written after the file was hashed must not be judged in its name. The rest of a file
+    longer than that is hashed too, not kept. Raises ``SourceUnread``."""
+    try:
+        with open(path, "rb") as fh:
+            data = fh.read(limit + 1)
+            h = hashlib.sha256(data)
+            if len(data) > limit:
+                for block in iter(lambda: fh.read(1 << 20), b""):
+                    h.update(block)
+    except OSError as e:  # reliability: not the content's fault (moved away, a disk gone, EIO)
+        raise SourceUnread(UNREADABLE, f"cannot read the file: {e.strerror or e} (errno "
+                           f"{errno.errorcode.get(e.errno, e.errno)}); an I/O error is not "
+                           "the content's verdict: it is not cached, and the next run reads "
+                           "the file again") from None
+    if h.hexdigest() != sha256:
+        raise SourceUnread(CHANGED, "the file changed while the run was reading it (its bytes no "
+                           "longer have the sha256 taken when the files were listed); not "
+                           "judged nor cached in this run, the next run reads it again")
+    return data
 
 
 @dataclass
@@ -161,8 +205,11 @@ def process_file(task: FileTask) -> FileOutcome:
     """Decode one file once and compute what the task asks for. Never raises for bad input."""
     t0 = time.perf_counter()
     stages = [_stage(p) for p in task.stages]
-    with open(task.path, "rb") as fh:
-        data = fh.read(stages[0].read_limit() + 1)
+    try:
+        data = read_source(task.path, task.sha256, stages[0].read_limit())
+    except SourceUnread as e:
+        return FileOutcome(task.sha256, unread=(e.reason, f"{task.source}: {e.detail}"),
+                           seconds=time.perf_counter() - t0)
     done = file_pass(stages, data, task.source, task.sha256,
                      compute=[p.compute for p in task.stages], cached=[p.cached for p in task.stages])
     out = FileOutcome(task.sha256)

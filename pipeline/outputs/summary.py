@@ -67,6 +67,18 @@ def build_summary(facts: Any, contents: int, walk: Any, stages: list, timings: d
     return summary
 
 
+#: Most skipped input entries summary.json names (all are counted; the ledger keeps every one,
+#: for ``explain``).
+SKIPPED_LISTED = 1000
+
+
+def skipped_summary(skipped: list[tuple[str, str]]) -> dict[str, Any]:
+    """summary.json's ``skipped``: the entries the listing of the input left out
+    (``SourceTable.skipped``: path, why), counted, the first ``SKIPPED_LISTED`` named."""
+    return {"count": len(skipped),
+            "listed": [{"source": rel, "why": why} for rel, why in skipped[:SKIPPED_LISTED]]}
+
+
 def write_summary(out_dir: Path, summary: dict, *, fsync: bool = True) -> None:
     """Write summary.json (atomically; ``fsync=False`` where losing it to a power cut loses
     nothing but fresh timings)."""

@@ -49,6 +49,9 @@ if TYPE_CHECKING:
 SCHEMA_VERSION = 4
 #: The ledger's file name in an output folder.
 LEDGER_NAME = "state.sqlite"
+#: The ``state`` entry of the last run's skipped input entries (path -> why; no stage has
+#: this name): ``put_skipped``, ``skipped_why``.
+SKIPPED_STATE = "_skipped"
 #: Versions a reader (explain, leakage: ``read_only``) opens as they are: version 3 lacks only
 #: ``run_columns``, which no reader uses.
 READABLE_VERSIONS = (3, 4)
@@ -365,6 +368,17 @@ class Ledger:
     def decision(self, source: str) -> tuple[str | None, list] | None:
         row = self.db.execute("SELECT sha256, trail FROM decisions WHERE source=?", (source,)).fetchone()
         return None if row is None else (row[0], json.loads(row[1]))
+
+    def put_skipped(self, skipped: Iterable[tuple[str, str]]) -> None:
+        """Record the entries the run's discovery left out (path, why), replacing the last
+        run's (``SourceTable.skipped``)."""
+        self.put_state(SKIPPED_STATE, dict(skipped))
+
+    def skipped_why(self, source: str) -> str | None:
+        """Why the last run left ``source`` out when it listed the input, or None."""
+        row = self.db.execute("SELECT value FROM state WHERE stage=? AND key=?",
+                              (SKIPPED_STATE, source)).fetchone()
+        return None if row is None else json.loads(row[0])
 
     def decisions_by_sha_prefix(self, prefix: str) -> list[tuple[str, str | None, list]]:
         return [(s, h, json.loads(t)) for s, h, t in self.db.execute(
