@@ -11,11 +11,11 @@ more after one below) or struck while it is down sounds on up to the frame where
 (a value below 64), exclusive, as pretty_midi's ``get_piano_roll`` holds it (its default
 ``pedal_threshold=64``: the running maximum of each pitch between pedal-down and pedal-up, per
 instrument, i.e. per track, channel and program). A pedal is a track's and channel's, not the
-channel's alone as a synthesizer would merge it: POP909's MELODY and BRIDGE tracks often carry
-pedal values that never come up on the PIANO track's channel, and merged they cut its pedal
-short. A pedal that never comes up holds nothing, as in pretty_midi (files whose pedal events
-are all pedal-down exist: held, every note would sound to the end). The drum channel is never
-sustained.
+channel's alone as a synthesizer would merge it: in some POP909 files the MELODY and BRIDGE
+tracks share the PIANO track's channel and carry pedal values that never come up, and merged
+they cut its pedal short. A pedal that never comes up holds nothing, as in pretty_midi (files
+whose pedal events are all pedal-down exist: held, every note would sound to the end). The drum
+channel is never sustained.
 
 **Performance events** (Oore, Simon, Dieleman, Eck, Simonyan 2018, "This time with feeling:
 learning expressive musical performance"): 128 NOTE_ON, 128 NOTE_OFF, TIME_SHIFT tokens of 1 to
