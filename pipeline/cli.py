@@ -97,6 +97,8 @@ def _parser() -> argparse.ArgumentParser:
     x.add_argument("--max-shift", type=float, metavar="S", help="events: longest time shift, seconds (default 1)")
     x.add_argument("--velocity-bins", type=int, metavar="N", help="events: velocity bins (default 32)")
     x.add_argument("--previews", type=int, metavar="N", help="pianoroll: PNG previews of the first N pieces")
+    x.add_argument("--sustain", action="store_const", const=True, help="pianoroll: the sustain pedal "
+                   "(control change 64) holds notes until it comes up (default: ignored)")
     x.add_argument("--shard-mb", type=float, metavar="MB", default=64.0, help="bound of a shard's array bytes (default 64)")
     x.add_argument("--quiet", action="store_true", help="print nothing")
 
@@ -166,7 +168,7 @@ def _export(args: argparse.Namespace) -> int:
     opts = ExportOptions(args.format, step=args.step, per_beat=args.per_beat, pitch_low=args.pitch_low,
                          pitch_high=args.pitch_high, drums=args.drums, window=args.window, hop=args.hop,
                          max_shift=args.max_shift, velocity_bins=args.velocity_bins,
-                         previews=args.previews, shard_mb=args.shard_mb)
+                         previews=args.previews, shard_mb=args.shard_mb, sustain=args.sustain)
     result = export_output(Path(args.output), opts)
     if not args.quiet:
         print(result.table())

@@ -43,7 +43,7 @@ DEFAULT_STEP = {"pianoroll": 0.05, "events": 0.01}
 FORMAT_OPTIONS: dict[str, tuple[tuple[str, str, Any], ...]] = {
     "pianoroll": (("per_beat", "--per-beat", None), ("pitch_low", "--pitch-low", 0),
                   ("pitch_high", "--pitch-high", 127), ("window", "--window", None),
-                  ("hop", "--hop", None), ("previews", "--previews", 0)),
+                  ("hop", "--hop", None), ("previews", "--previews", 0), ("sustain", "--sustain", False)),
     "events": (("max_shift", "--max-shift", 1.0), ("velocity_bins", "--velocity-bins", 32)),
 }
 
@@ -66,6 +66,7 @@ class ExportOptions:
     velocity_bins: int | None = None  # events (default 32)
     previews: int | None = None  # pianoroll: PNG previews of the first N pieces (default 0)
     shard_mb: float = 64.0  # bound of a shard's uncompressed array bytes
+    sustain: bool | None = None  # pianoroll: the sustain pedal holds notes (default False)
 
     def checked(self) -> "ExportOptions":
         if self.format not in FORMATS:
@@ -118,7 +119,7 @@ class ExportOptions:
             raise UsageError(f"--shard-mb must be above 0, got {self.shard_mb}")
         return ExportOptions(self.format, step, self.per_beat, self.pitch_low, self.pitch_high, self.drums,
                              window, hop, float(self.max_shift), self.velocity_bins, self.previews,
-                             float(self.shard_mb))
+                             float(self.shard_mb), bool(self.sustain))
 
     def recorded(self) -> dict[str, Any]:
         """The options that shape the arrays (written on every index line)."""
@@ -128,8 +129,10 @@ class ExportOptions:
         if self.format == "pianoroll":
             for name in ("max_shift", "velocity_bins"):
                 d.pop(name)
+            if not self.sustain:  # recorded only when asked for: an export without it keeps
+                d.pop("sustain")  # the options (and fingerprint) it had before the option existed
         else:
-            for name in ("per_beat", "pitch_low", "pitch_high", "window", "hop"):
+            for name in ("per_beat", "pitch_low", "pitch_high", "window", "hop", "sustain"):
                 d.pop(name)
             d["max_shift_steps"] = self.max_shift_steps
         return d
@@ -243,7 +246,7 @@ def arrays_of(path: Path, opts: ExportOptions) -> tuple[np.ndarray, np.ndarray |
         return events(piece, step=opts.step, max_shift_steps=opts.max_shift_steps,  # type: ignore[arg-type]
                       velocity_bins=opts.velocity_bins, drums=opts.drums)
     roll, drums = pianoroll(piece, step=opts.step, per_beat=opts.per_beat, low=opts.pitch_low,
-                            high=opts.pitch_high, drums=opts.drums)
+                            high=opts.pitch_high, drums=opts.drums, sustain=bool(opts.sustain))
     if opts.window is not None:
         size, hop = opts.frames(opts.window), opts.frames(opts.hop)  # type: ignore[arg-type]
         roll = windows(roll, size, hop)

@@ -5,6 +5,17 @@ seconds, or ``1/per_beat`` of a quarter-note beat (counted in ticks, so tempo ch
 frames with the music). A note covers the frames from the one holding its start up to, not
 including, the one holding its end (as pretty_midi's ``get_piano_roll`` does), and at least
 the frame of its start, so no note vanishes; where notes overlap a cell keeps the loudest.
+The sustain pedal (control change 64) is ignored unless asked for (``sustain=True``): then a
+note sounding in the frame where its track's pedal on its channel goes down (a value of 64 or
+more after one below) or struck while it is down sounds on up to the frame where it comes up
+(a value below 64), exclusive, as pretty_midi's ``get_piano_roll`` holds it (its default
+``pedal_threshold=64``: the running maximum of each pitch between pedal-down and pedal-up, per
+instrument, i.e. per track, channel and program). A pedal is a track's and channel's, not the
+channel's alone as a synthesizer would merge it: in some POP909 files the MELODY and BRIDGE
+tracks share the PIANO track's channel and carry pedal values that never come up, and merged
+they cut its pedal short. A pedal that never comes up holds nothing, as in pretty_midi (files
+whose pedal events are all pedal-down exist: held, every note would sound to the end). The drum
+channel is never sustained.
 
 **Performance events** (Oore, Simon, Dieleman, Eck, Simonyan 2018, "This time with feeling:
 learning expressive musical performance"): 128 NOTE_ON, 128 NOTE_OFF, TIME_SHIFT tokens of 1 to
@@ -45,6 +56,61 @@ def note_frames(piece: Piece, notes: np.ndarray, *, step: float | None = None,
     return on, np.maximum(off, on + 1)
 
 
+#: A sustain-pedal value from which the pedal is down (the MIDI convention, and pretty_midi's
+#: default ``pedal_threshold``).
+PEDAL_DOWN = 64
+
+
+def tick_frames(piece: Piece, ticks: np.ndarray, *, step: float | None = None,
+                per_beat: int | None = None) -> np.ndarray:
+    """The frame holding each tick position, as ``note_frames`` places a note's start."""
+    ticks = np.asarray(ticks, dtype=np.int64)
+    if per_beat is not None:
+        return np.floor(ticks * (per_beat / float(piece.ticks_per_beat)) + 1e-9).astype(np.int64)
+    assert step is not None
+    return np.floor(piece.ticks_to_seconds(ticks) / step + 1e-9).astype(np.int64)
+
+
+def pedal_spans(piece: Piece, *, step: float | None = None,
+                per_beat: int | None = None) -> dict[tuple[int, int], tuple[np.ndarray, np.ndarray]]:
+    """Per (track, channel), the frames where the sustain pedal goes down and where it comes
+    up next (sorted, disjoint); a pedal never lifted is left out (module doc)."""
+    c = piece.controls
+    cc = c[(c["kind"] == 0xB0) & (c["data1"] == 64)]
+    out: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}
+    for track, ch in sorted(set(zip(cc["track"].tolist(), cc["channel"].tolist()))):
+        ev = cc[(cc["track"] == track) & (cc["channel"] == ch)]  # in file order: ticks ascend
+        down = ev["data2"] >= PEDAL_DOWN
+        before = np.concatenate(([False], down[:-1]))
+        ends = ev["tick"][~down & before]  # each comes after its own pedal-down
+        if not len(ends):
+            continue
+        starts = ev["tick"][down & ~before][:len(ends)]
+        out[(track, ch)] = (tick_frames(piece, starts, step=step, per_beat=per_beat),
+                        tick_frames(piece, ends, step=step, per_beat=per_beat))
+    return out
+
+
+def sustained(on: np.ndarray, off: np.ndarray, track: np.ndarray, channel: np.ndarray,
+              spans: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]]) -> np.ndarray:
+    """The end frames (exclusive) of notes given by frames once the pedal ``spans`` of their
+    (track, channel) hold them: a note that covers a frame of a span (sounding at its
+    pedal-down or struck before its pedal-up) ends no earlier than the span's pedal-up. A long
+    note may cross several spans; the last one it reaches decides."""
+    off = off.copy()
+    for (tr, ch), (down, up) in spans.items():
+        sel = np.flatnonzero((track == tr) & (channel == ch))
+        if not len(sel):
+            continue
+        k = np.searchsorted(down, off[sel], side="left") - 1  # last span starting before the end
+        reached = k >= 0
+        sel, k = sel[reached], k[reached]
+        held = up[k] > on[sel]  # ... and the note starts before its pedal-up
+        sel, k = sel[held], k[held]
+        off[sel] = np.maximum(off[sel], up[k])
+    return off
+
+
 def roll_of(on: np.ndarray, off: np.ndarray, pitch: np.ndarray, velocity: np.ndarray,
             frames: int, low: int = 0, high: int = 127) -> np.ndarray:
     """A frames x (high - low + 1) uint8 roll of notes given by frames; notes outside the
@@ -65,13 +131,20 @@ def roll_of(on: np.ndarray, off: np.ndarray, pitch: np.ndarray, velocity: np.nda
 
 
 def pianoroll(piece: Piece, *, step: float | None = None, per_beat: int | None = None,
-              low: int = 0, high: int = 127, drums: str = "omit") -> tuple[np.ndarray, np.ndarray | None]:
+              low: int = 0, high: int = 127, drums: str = "omit",
+              sustain: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
     """The piece's pitched roll (frames x pitches low..high) and, with ``drums="apart"``, its
-    drum-channel roll (frames x 128, by drum key) over the same frames; else None for drums."""
+    drum-channel roll (frames x 128, by drum key) over the same frames; else None for drums.
+    With ``sustain`` the pedal holds the pitched notes (module doc); the roll then reaches the
+    end of the last note as held (a pedal-up after the last note-off lengthens it)."""
     notes = piece.notes
     is_drum = notes["channel"] == DRUM_CHANNEL
     on, off = note_frames(piece, notes, step=step, per_beat=per_beat)
     counted = np.ones(len(notes), bool) if drums == "apart" else ~is_drum
+    if sustain:
+        spans = {k: v for k, v in pedal_spans(piece, step=step, per_beat=per_beat).items()
+                 if k[1] != DRUM_CHANNEL}
+        off = sustained(on, off, notes["track"], notes["channel"], spans)
     frames = int(off[counted].max()) if counted.any() else 0
     pitch, vel = notes["pitch"], notes["velocity"]
     p = ~is_drum
