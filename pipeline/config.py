@@ -1,6 +1,7 @@
 """YAML config -> typed, validated ``Config``. Every error names its key path.
 
-The file is loaded with ``yaml.safe_load`` (no object construction). Relative ``input`` and
+The file is loaded with ``settings.read_config`` (PyYAML's safe loader, no object construction,
+refusing a key given twice). Relative ``input`` and
 ``output`` paths are taken relative to the current directory, as the README's commands run from
 the repository root. Stage options are checked against each stage's ``options`` table: unknown
 names get a "did you mean" suggestion, wrong types and out-of-range values state the rule.
@@ -12,11 +13,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from .errors import ConfigError, ConfigErrors
 from .metadata import Metadata, load_metadata
-from .settings import parse_executor, parse_workers, with_overrides
+from .settings import parse_executor, parse_workers, read_config, with_overrides
 from .stages import Stage, known_stages, stage_class
 
 TOP_KEYS = ("input", "output", "workers", "executor", "metadata", "stages")
@@ -257,16 +256,7 @@ def load_config(path: str | Path, *, input: str | None = None, output: str | Non
                 workers: str | int | None = None, executor: str | None = None) -> Config:
     """Read a YAML config file, apply CLI overrides, validate everything."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as e:
-        raise ConfigError(f"cannot read the config file ({e.strerror}); check the path", file=str(p)) from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as e:
-        mark = getattr(e, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else None
-        raise ConfigError(f"not valid YAML: {getattr(e, 'problem', e)}", file=str(p), location=where) from None
+    raw = read_config(p)
     if isinstance(raw, dict):
         raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)
     return parse_config(raw, source=str(p))

@@ -205,3 +205,30 @@ def test_the_tools_default_config_is_configs_default_yaml():
     assert (ROOT / "configs" / "default.yaml").read_text(encoding="utf-8") == DEFAULT_CONFIG
     assert [next(iter(s)) for s in default_stages()] == \
         ["validate", "transpose", "key_meter", "dedup", "filter", "split"]
+
+
+def test_a_key_given_twice_names_both_lines(tmp_path):
+    """YAML 1.2, 3.2.1.1: the keys of a mapping are unique. PyYAML's safe_load kept the last
+    value without a word, so a second 'input:' ran over another folder."""
+    from pipeline.errors import ConfigErrors
+    p = tmp_path / "twice.yaml"
+    p.write_text("input: corpusA\noutput: out\nstages:\n  - validate\n"
+                 "  - filter: {min_notes: 32, min_notes: 100000}\ninput: corpusB\n")
+    with pytest.raises(ConfigErrors) as exc:
+        load_config(p)
+    second, first = exc.value.problems  # in the order of the second keys
+    assert first.location == "input" and first.file == str(p)
+    assert "key 'input' is given twice (line 1 and line 6)" in first.reason
+    assert second.location == "stages[1].filter.min_notes"
+    assert "(line 5, column 14 and line 5, column 29)" in second.reason
+    assert "delete one of them" in second.reason
+
+
+def test_a_config_that_is_not_utf8_names_the_byte_and_line(tmp_path):
+    # common practice: a Latin-1 editor's umlaut (0xfc) is not valid UTF-8
+    p = tmp_path / "latin1.yaml"
+    p.write_bytes(b"input: in\n# f\xfcr die Demo\noutput: out\nstages: [validate]\n")
+    with pytest.raises(ConfigError) as exc:
+        load_config(p)
+    assert exc.value.file == str(p) and exc.value.location == "line 2"
+    assert "not UTF-8 text (byte 13: 0xfc); save the file as UTF-8" in exc.value.reason
