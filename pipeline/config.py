@@ -9,6 +9,7 @@ names get a "did you mean" suggestion, wrong types and out-of-range values state
 from __future__ import annotations
 
 import difflib
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -80,6 +81,20 @@ def check_type(value: Any, kind: type | tuple[type, ...]) -> bool:
     return False
 
 
+def non_finite(value: Any) -> tuple[str, float] | None:
+    """The first NaN or infinity in an option's value, with its place below the option
+    (``''``, ``'.train'``, ``'[1]'``), else None: YAML's ``.nan`` and ``.inf`` are floats that
+    pass every ``x < limit`` check, so each number option is checked here, once for all."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return "", value
+    items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, (list, tuple)) else ()
+    for key, item in items:
+        bad = non_finite(item)
+        if bad is not None:
+            return (f"[{key}]" if isinstance(key, int) else f".{key}") + bad[0], bad[1]
+    return None
+
+
 def _stage_entry(entry: Any, path: str) -> tuple[str, Any]:
     if isinstance(entry, str):
         return entry, {}
@@ -123,6 +138,16 @@ def stage_option_problems(name: str, opts: Any, path: str) -> tuple[dict[str, An
             continue
         if isinstance(value, int) and not isinstance(value, bool) and opt.kind is float:
             value = float(value)
+        bad = non_finite(value)
+        if bad is not None:
+            where, number = bad
+            problems.append(ConfigError(
+                f"must be a finite number, got {number!r} (NaN fails every comparison and an "
+                "infinity bounds nothing: the rule would silently be off or take every file); "
+                "give a number"
+                + (" (null switches it off)" if check_type(None, opt.kind) else ""),
+                location=kpath + where))
+            continue
         if opt.check is not None:
             problem = opt.check(value)
             if problem:

@@ -232,3 +232,25 @@ def test_a_config_that_is_not_utf8_names_the_byte_and_line(tmp_path):
         load_config(p)
     assert exc.value.file == str(p) and exc.value.location == "line 2"
     assert "not UTF-8 text (byte 13: 0xfc); save the file as UTF-8" in exc.value.reason
+
+
+@pytest.mark.parametrize("stage, opts, where, shown", [
+    ("split", {"ratios": {"train": float("nan"), "test": 0.5}}, "split.ratios.train", "nan"),
+    ("split", {"ratios": {"train": 0.5, "test": float("inf")}}, "split.ratios.test", "inf"),
+    ("filter", {"min_seconds": float("nan")}, "filter.min_seconds", "nan"),
+    ("filter", {"max_note_s": float("nan")}, "filter.max_note_s", "nan"),
+    ("filter", {"min_notes": float("nan")}, "filter.min_notes", "nan"),
+    ("filter", {"max_polyphony": float("inf")}, "filter.max_polyphony", "inf"),
+    ("filter", {"notes_per_s": [float("nan"), 10]}, "filter.notes_per_s[0]", "nan"),
+    ("transpose", {"bass_weight": float("inf")}, "transpose.bass_weight", "inf"),
+    ("key_meter", {"final_weight": float("nan")}, "key_meter.final_weight", "nan"),
+    ("dedup", {"threshold": float("-inf")}, "dedup.threshold", "-inf")])
+def test_nan_and_infinities_are_refused_by_every_number_option(stage, opts, where, shown):
+    """IEEE 754 (common practice): NaN compares false with everything, so ``x < .nan`` switched
+    a filter rule off and NaN ratios passed 'sum to 1'; ``int(.nan)`` and ``int(.inf)`` raised
+    a traceback from the whole-number checks. One check refuses them with the key path."""
+    with pytest.raises(ConfigError) as exc:
+        parse_config(_cfg([{"validate": {}}, {stage: opts}]), source="c.yaml")
+    assert exc.value.location == f"stages[1].{where}"
+    assert f"must be a finite number, got {shown} (NaN fails every comparison" in exc.value.reason
+    assert ("(null switches it off)" in exc.value.reason) == (stage == "filter")
