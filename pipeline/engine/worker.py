@@ -8,6 +8,7 @@ one per-file loop: the benchmark times its steps and the fuzzer checks its verdi
 """
 from __future__ import annotations
 
+import os
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
@@ -76,19 +77,20 @@ StepClock = Callable[[str, float], None]
 
 def file_pass(stages: Sequence[Stage], data: bytes, source: str, sha256: str = "", *,
               compute: Sequence[bool] | None = None, cached: Sequence[Any] | None = None,
-              step: StepClock | None = None) -> FilePass:
+              step: StepClock | None = None, size: int | None = None) -> FilePass:
     """Run one file's bytes through ``stages`` (the first reads the bytes: ``Stage.read``).
 
     ``compute[i]`` false means stage ``i``'s verdict is ``cached[i]`` (a file stage; a corpus
     stage's ``prepare`` is then skipped); the pass stops at the first drop. ``step(label, t0)``
-    is told each step's label (the reader's name, a stage's, ``NAME.prepare``) after it ran."""
+    is told each step's label (the reader's name, a stage's, ``NAME.prepare``) after it ran.
+    ``size``: the file's size when ``data`` holds only the bytes the reader needs."""
     n = len(stages)
     compute = compute if compute is not None else [True] * n
     cached = cached if cached is not None else [None] * n
     clock = time.process_time
     t = clock()
     reader = stages[0]
-    result, piece = reader.read(data, source)
+    result, piece = reader.read(data, source, size)
     out = FilePass(piece)
     out.results[reader.name] = result.to_json()
     if compute[0]:
@@ -162,8 +164,11 @@ def process_file(task: FileTask) -> FileOutcome:
     t0 = time.perf_counter()
     stages = [_stage(p) for p in task.stages]
     with open(task.path, "rb") as fh:
-        data = fh.read(stages[0].read_limit() + 1)
-    done = file_pass(stages, data, task.source, task.sha256,
+        # the file's size bounds the buffer: read(n) allocates n bytes first, so a read_limit
+        # above the memory limit (validate.max_bytes: 3e9) dropped every file
+        size = os.fstat(fh.fileno()).st_size
+        data = fh.read(min(size, stages[0].read_limit()) + 1)
+    done = file_pass(stages, data, task.source, task.sha256, size=size,
                      compute=[p.compute for p in task.stages], cached=[p.cached for p in task.stages])
     out = FileOutcome(task.sha256)
     for name in done.computed:
