@@ -16,7 +16,7 @@ from typing import Any
 
 from .errors import ConfigError, ConfigErrors
 from .metadata import Metadata, load_metadata
-from .settings import parse_executor, parse_workers, read_config, with_overrides
+from .settings import check_overrides, parse_executor, parse_workers, read_config, with_overrides
 from .stages import Stage, known_stages, stage_class
 
 TOP_KEYS = ("input", "output", "workers", "executor", "metadata", "stages")
@@ -281,6 +281,7 @@ def load_config(path: str | Path, *, input: str | None = None, output: str | Non
                 workers: str | int | None = None, executor: str | None = None) -> Config:
     """Read a YAML config file, apply CLI overrides, validate everything."""
     p = Path(path)
+    check_overrides(workers=workers, executor=executor)
     raw = read_config(p)
     if isinstance(raw, dict):
         raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)

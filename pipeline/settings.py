@@ -91,6 +91,29 @@ def with_overrides(raw: dict[str, Any], **given: Any) -> dict[str, Any]:
     return {**raw, **{key: value for key, value in given.items() if value is not None}}
 
 
+#: The place a command-line value's error names (its ``file``), instead of the config file.
+COMMAND_LINE = "the command line"
+
+
+def check_overrides(*, workers: Any = None, executor: Any = None) -> None:
+    """Check the command line's ``--workers`` and ``--executor`` (those given) before they
+    replace the config's: an error names the option on the command line, not the config file
+    the value never came from."""
+    problems = []
+    for value, parse, option in ((workers, parse_workers, "--workers"),
+                                 (executor, parse_executor, "--executor")):
+        if value is not None:
+            try:
+                parse(value, location=option)
+            except ConfigError as e:
+                e.file = COMMAND_LINE
+                problems.append(e)
+    if len(problems) == 1:
+        raise problems[0]
+    if problems:
+        raise ConfigErrors(problems, file=COMMAND_LINE)
+
+
 def parse_workers(value: Any, location: str = "workers") -> int:
     """``auto`` (the CPUs this process may use, ``usable_cpus``) or a whole number >= 1."""
     if value is None or value == "auto":

@@ -254,3 +254,16 @@ def test_nan_and_infinities_are_refused_by_every_number_option(stage, opts, wher
     assert exc.value.location == f"stages[1].{where}"
     assert f"must be a finite number, got {shown} (NaN fails every comparison" in exc.value.reason
     assert ("(null switches it off)" in exc.value.reason) == (stage == "filter")
+
+
+@pytest.mark.parametrize("given, where", [({"workers": "abc"}, "--workers"),
+                                          ({"executor": "bogus://x"}, "--executor")])
+def test_a_bad_command_line_value_names_the_option_not_the_config(given, where, tmp_path):
+    """README, Commands: --workers and --executor override the config. Their bad values were
+    reported as '<config file>: workers: ...', pointing at a file that never held them."""
+    p = tmp_path / "c.yaml"
+    p.write_text(yaml.safe_dump(_cfg(["validate"])))
+    with pytest.raises(ConfigError) as exc:
+        load_config(p, **given)
+    assert exc.value.file == "the command line" and exc.value.location == where
+    assert str(p) not in exc.value.message
