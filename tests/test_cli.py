@@ -55,6 +55,19 @@ def test_bad_workers_override_exits_2(tmp_path, capsys):
     assert not (tmp_path / "o").exists()
 
 
+@pytest.mark.parametrize("below", [False, True])
+def test_an_output_path_that_is_a_file_exits_2_and_writes_nothing(below, tmp_path, capsys):
+    """README, Commands: bad usage exits 2 with nothing written. An output path naming an
+    existing file (or a folder below one) exited 1 with 'cannot create the output folder'."""
+    afile = tmp_path / "notes.txt"
+    afile.write_text("mine\n")
+    out = afile / "run" if below else afile
+    assert main(["run", str(ROOT / "configs" / "validate-only.yaml"), "--output", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert f"{afile}: this is a file, not a folder" in err and "must name a folder" in err
+    assert afile.read_text() == "mine\n" and sorted(tmp_path.iterdir()) == [afile]
+
+
 def test_synth_writes_files_and_truth(tmp_path):
     assert main(["synth", str(tmp_path / "c"), "--count", "12", "--seed", "3"]) == 0
     truth = json.loads((tmp_path / "c" / "truth.json").read_text())
