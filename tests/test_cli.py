@@ -81,6 +81,23 @@ def test_synth_rejects_bad_count(capsys, tmp_path):
     assert "--count must be at least 1" in capsys.readouterr().err
 
 
+@pytest.mark.parametrize("planted", ["0.6", "0.8", "1", "nan"])
+def test_synth_states_the_planted_rule_and_exits_2(planted, capsys, tmp_path):
+    """The command line let 0.6 to 1 through ('a fraction from 0 to 1'), then the generator
+    raised a ValueError traceback: it keeps the rest of the files as the originals its planted
+    variants copy (pipeline.tools.synth.scale_mix)."""
+    assert main(["synth", str(tmp_path / "c"), "--count", "5", "--planted", planted]) == 2
+    assert "--planted: the planted fraction must be from 0 to below 0.6" in capsys.readouterr().err
+    assert not (tmp_path / "c").exists()
+
+
+def test_synth_into_a_folder_it_cannot_create_exits_2(capsys, tmp_path):
+    (tmp_path / "afile").write_text("")
+    assert main(["synth", str(tmp_path / "afile" / "c"), "--count", "5"]) == 2
+    err = capsys.readouterr().err
+    assert f"{tmp_path / 'afile' / 'c'}: cannot create the folder (Not a directory)" in err
+
+
 def test_leakage_exit_codes(tmp_path, capsys):
     out = tmp_path / "out"
     assert main(["run", str(ROOT / "configs" / "default.yaml"), "--output", str(out), "--quiet"]) == 0
