@@ -190,9 +190,19 @@ def _on_sigterm(signum: int, frame: object) -> None:
     raise _Terminated()
 
 
+def _escape_what_stdout_cannot_take() -> None:
+    """Print what the terminal's encoding cannot hold (a file name in Unicode on an ASCII or
+    Latin-1 stdout; a name that is not UTF-8, held as surrogates) as backslash escapes rather
+    than raise UnicodeEncodeError: Python's stdout is strict by default, stderr already escapes."""
+    reconfigure = getattr(sys.stdout, "reconfigure", None)
+    if reconfigure is not None and getattr(sys.stdout, "errors", None) == "strict":
+        reconfigure(errors="backslashreplace")
+
+
 def main(argv: list[str] | None = None) -> int:
     import signal
     args = _parser().parse_args(argv)
+    _escape_what_stdout_cannot_take()
     previous = None
     try:
         previous = signal.signal(signal.SIGTERM, _on_sigterm)

@@ -178,3 +178,21 @@ def test_leakage_writes_its_json_and_keeps_its_exit_status_when_stdout_is_closed
     assert proc.returncode == 1, proc.stderr
     assert proc.stderr == ""
     assert len(json.loads(report.read_text())["leaks"]) >= 5
+
+
+def test_explain_escapes_what_a_non_utf8_stdout_cannot_take(tmp_path):
+    """Python's stdout is strict (PYTHONIOENCODING=ascii, a legacy locale: common practice), so
+    explain of a file with a non-ASCII name ended in a UnicodeEncodeError traceback (exit 1)."""
+    inp = tmp_path / "in" / "ünïcödé"
+    inp.mkdir(parents=True)
+    first = sorted((ROOT / "sample_corpus" / "sessions").rglob("*.mid"))[0]
+    (inp / "曲 №1.mid").write_bytes(first.read_bytes())
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(f"input: {tmp_path / 'in'}\noutput: {tmp_path / 'out'}\nworkers: 1\nstages: [validate]\n",
+                   encoding="utf-8")
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    env = {**os.environ, "PYTHONIOENCODING": "ascii", "PYTHONPATH": str(ROOT)}
+    proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "explain", "ünïcödé/曲 №1.mid",
+                           "--output", str(tmp_path / "out")], capture_output=True, cwd=ROOT, env=env)
+    assert proc.returncode == 0, proc.stderr
+    assert b"source   \\xfcn\\xefc\\xf6d\\xe9/\\u66f2 \\u21161.mid" in proc.stdout
