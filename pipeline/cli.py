@@ -1,4 +1,5 @@
-"""Argument parsing only: turns argv into calls. Exit codes: 0 ok, 1 runtime failure, 2 bad usage/config."""
+"""Argument parsing only: turns argv into calls. Exit codes: 0 ok, 1 runtime failure (leakage: leaks
+found), 2 bad usage/config, 3 a leakage audit that could not read every listed file."""
 from __future__ import annotations
 
 import argparse
