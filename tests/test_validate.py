@@ -137,3 +137,15 @@ def test_max_tracks_is_bounded_by_the_tracks_the_decoder_can_number():
         decode(header + b"MTrk\0\0\0\0" * 40000, max_tracks=65535)
     assert exc.value.code == "too_large"
     assert "over the limit max_tracks=32768; the decoder reads at most 32768 tracks" in exc.value.reason
+
+
+def test_no_notes_says_when_every_note_had_zero_length():
+    """A file of 64 notes whose note-off falls on the note-on's tick was told 'a file needs at
+    least one note-on with its note-off', which it has (an audit); the decoder drops such
+    notes (pipeline.midi.decode.REPAIRS: zero_length_notes_dropped) and the detail says so."""
+    notes = " ".join(f"78 90 {60 + i % 12:02x} 50 00 80 {60 + i % 12:02x} 00" for i in range(64))
+    result, piece = Validate().read(smf(mtrk(notes + " 00 ff 2f 00")), "z.mid")
+    assert piece is None and result.reason == "no_notes"
+    assert result.detail.endswith("but no notes: its 64 note(s) all end at the tick they start "
+                                  "(zero length, dropped)")
+    assert result.values["repairs"] == {"zero_length_notes_dropped": 64}

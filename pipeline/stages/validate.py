@@ -96,8 +96,10 @@ class Validate(Stage):
         detail = f"SMF format {piece.format}, {piece.n_tracks} tracks, {timing}"
         fixes = describe_repairs(piece.repairs)
         if len(piece.notes) == 0:
-            return StageResult.drop("no_notes", f"{detail}, but no notes: a file needs at least "
-                                    "one note-on with its note-off to be used", values,
+            zero = piece.repairs.get("zero_length_notes_dropped", 0)
+            why = (f"its {zero} note(s) all end at the tick they start (zero length, dropped)"
+                   if zero else "a file needs at least one note-on with its note-off to be used")
+            return StageResult.drop("no_notes", f"{detail}, but no notes: {why}", values,
                                     self._thresholds())
         if fixes and not self.opts["allow_repairs"]:
             return StageResult.drop("needs_repair", f"{detail}; it needs repairs ({fixes}) and "
