@@ -92,12 +92,14 @@ def test_process_gives_the_same_verdict_as_check():
 
 def _worker_verdict(tmp_path, data: bytes, **opts) -> tuple:
     """The validate verdict a worker stores for a file of ``data`` (kept, reason, detail, ...)."""
+    import hashlib
     from pipeline.config import validate_stage_options
     from pipeline.engine.worker import FileTask, StagePlan, process_file
     path = tmp_path / "f.mid"
     path.write_bytes(data)
     plan = StagePlan("validate", validate_stage_options("validate", opts, "validate"), "file", True)
-    return process_file(FileTask("ab" * 32, str(path), "f.mid", [plan], None)).results["validate"]
+    sha256 = hashlib.sha256(data).hexdigest()  # the content the task names, as a run hashes it
+    return process_file(FileTask(sha256, str(path), "f.mid", [plan], None)).results["validate"]
 
 
 def test_a_max_bytes_far_above_the_file_reads_only_the_file(tmp_path):
