@@ -1,4 +1,5 @@
-"""Argument parsing only: turns argv into calls. Exit codes: 0 ok, 1 runtime failure, 2 bad usage/config."""
+"""Argument parsing only: turns argv into calls. Exit codes: 0 ok, 1 runtime failure (leakage: leaks
+found), 2 bad usage/config, 3 a leakage audit that could not read every listed file."""
 from __future__ import annotations
 
 import argparse
@@ -69,7 +70,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="small: ~5 KB, ~500 notes; large: ~60 KB, ~8,000 notes per file")
     s.add_argument("--naming", choices=("plain", "workshop"), default="plain",
                    help="file names: plain numbered folders, or the demo corpus's invented workshop library")
-    s.add_argument("--planted", type=float, help="fraction of files that are planted cases (default: the generator's mix)")
+    s.add_argument("--planted", type=float, help="fraction of files that are planted cases, from 0 to below 0.6 (default: the "
+                   "generator's mix)")
     s.add_argument("--force", action="store_true",
                    help="write into a folder that is not empty (files of the same names are "
                         "overwritten; nothing is deleted)")
@@ -149,8 +151,6 @@ def _synth(args: argparse.Namespace) -> int:
     from .tools.synth import main_synth
     if args.count < 1:
         raise UsageError(f"--count must be at least 1, got {args.count}")
-    if args.planted is not None and not 0 <= args.planted <= 1:
-        raise UsageError(f"--planted is a fraction from 0 to 1, got {args.planted}")
     main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming, planted=args.planted,
                force=args.force)
     return 0
@@ -193,9 +193,19 @@ def _on_sigterm(signum: int, frame: object) -> None:
     raise _Terminated()
 
 
+def _escape_what_stdout_cannot_take() -> None:
+    """Print what the terminal's encoding cannot hold (a file name in Unicode on an ASCII or
+    Latin-1 stdout; a name that is not UTF-8, held as surrogates) as backslash escapes rather
+    than raise UnicodeEncodeError: Python's stdout is strict by default, stderr already escapes."""
+    reconfigure = getattr(sys.stdout, "reconfigure", None)
+    if reconfigure is not None and getattr(sys.stdout, "errors", None) == "strict":
+        reconfigure(errors="backslashreplace")
+
+
 def main(argv: list[str] | None = None) -> int:
     import signal
     args = _parser().parse_args(argv)
+    _escape_what_stdout_cannot_take()
     previous = None
     try:
         previous = signal.signal(signal.SIGTERM, _on_sigterm)

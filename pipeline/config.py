@@ -1,6 +1,7 @@
 """YAML config -> typed, validated ``Config``. Every error names its key path.
 
-The file is loaded with ``yaml.safe_load`` (no object construction). Relative ``input`` and
+The file is loaded with ``settings.read_config`` (PyYAML's safe loader, no object construction,
+refusing a key given twice). Relative ``input`` and
 ``output`` paths are taken relative to the current directory, as the README's commands run from
 the repository root. Stage options are checked against each stage's ``options`` table: unknown
 names get a "did you mean" suggestion, wrong types and out-of-range values state the rule.
@@ -8,15 +9,14 @@ names get a "did you mean" suggestion, wrong types and out-of-range values state
 from __future__ import annotations
 
 import difflib
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from .errors import ConfigError, ConfigErrors
 from .metadata import Metadata, load_metadata
-from .settings import parse_executor, parse_workers, with_overrides
+from .settings import check_overrides, parse_executor, parse_workers, read_config, with_overrides
 from .stages import Stage, known_stages, stage_class
 
 TOP_KEYS = ("input", "output", "workers", "executor", "metadata", "stages")
@@ -81,6 +81,20 @@ def check_type(value: Any, kind: type | tuple[type, ...]) -> bool:
     return False
 
 
+def non_finite(value: Any) -> tuple[str, float] | None:
+    """The first NaN or infinity in an option's value, with its place below the option
+    (``''``, ``'.train'``, ``'[1]'``), else None: YAML's ``.nan`` and ``.inf`` are floats that
+    pass every ``x < limit`` check, so each number option is checked here, once for all."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return "", value
+    items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, (list, tuple)) else ()
+    for key, item in items:
+        bad = non_finite(item)
+        if bad is not None:
+            return (f"[{key}]" if isinstance(key, int) else f".{key}") + bad[0], bad[1]
+    return None
+
+
 def _stage_entry(entry: Any, path: str) -> tuple[str, Any]:
     if isinstance(entry, str):
         return entry, {}
@@ -124,6 +138,16 @@ def stage_option_problems(name: str, opts: Any, path: str) -> tuple[dict[str, An
             continue
         if isinstance(value, int) and not isinstance(value, bool) and opt.kind is float:
             value = float(value)
+        bad = non_finite(value)
+        if bad is not None:
+            where, number = bad
+            problems.append(ConfigError(
+                f"must be a finite number, got {number!r} (NaN fails every comparison and an "
+                "infinity bounds nothing: the rule would silently be off or take every file); "
+                "give a number"
+                + (" (null switches it off)" if check_type(None, opt.kind) else ""),
+                location=kpath + where))
+            continue
         if opt.check is not None:
             problem = opt.check(value)
             if problem:
@@ -257,16 +281,8 @@ def load_config(path: str | Path, *, input: str | None = None, output: str | Non
                 workers: str | int | None = None, executor: str | None = None) -> Config:
     """Read a YAML config file, apply CLI overrides, validate everything."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as e:
-        raise ConfigError(f"cannot read the config file ({e.strerror}); check the path", file=str(p)) from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as e:
-        mark = getattr(e, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else None
-        raise ConfigError(f"not valid YAML: {getattr(e, 'problem', e)}", file=str(p), location=where) from None
+    check_overrides(workers=workers, executor=executor)
+    raw = read_config(p)
     if isinstance(raw, dict):
         raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)
     return parse_config(raw, source=str(p))

@@ -55,6 +55,19 @@ def test_bad_workers_override_exits_2(tmp_path, capsys):
     assert not (tmp_path / "o").exists()
 
 
+@pytest.mark.parametrize("below", [False, True])
+def test_an_output_path_that_is_a_file_exits_2_and_writes_nothing(below, tmp_path, capsys):
+    """README, Commands: bad usage exits 2 with nothing written. An output path naming an
+    existing file (or a folder below one) exited 1 with 'cannot create the output folder'."""
+    afile = tmp_path / "notes.txt"
+    afile.write_text("mine\n")
+    out = afile / "run" if below else afile
+    assert main(["run", str(ROOT / "configs" / "validate-only.yaml"), "--output", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert f"{afile}: this is a file, not a folder" in err and "must name a folder" in err
+    assert afile.read_text() == "mine\n" and sorted(tmp_path.iterdir()) == [afile]
+
+
 def test_synth_writes_files_and_truth(tmp_path):
     assert main(["synth", str(tmp_path / "c"), "--count", "12", "--seed", "3"]) == 0
     truth = json.loads((tmp_path / "c" / "truth.json").read_text())
@@ -66,6 +79,23 @@ def test_synth_writes_files_and_truth(tmp_path):
 def test_synth_rejects_bad_count(capsys, tmp_path):
     assert main(["synth", str(tmp_path / "c"), "--count", "0"]) == 2
     assert "--count must be at least 1" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("planted", ["0.6", "0.8", "1", "nan"])
+def test_synth_states_the_planted_rule_and_exits_2(planted, capsys, tmp_path):
+    """The command line let 0.6 to 1 through ('a fraction from 0 to 1'), then the generator
+    raised a ValueError traceback: it keeps the rest of the files as the originals its planted
+    variants copy (pipeline.tools.synth.scale_mix)."""
+    assert main(["synth", str(tmp_path / "c"), "--count", "5", "--planted", planted]) == 2
+    assert "--planted: the planted fraction must be from 0 to below 0.6" in capsys.readouterr().err
+    assert not (tmp_path / "c").exists()
+
+
+def test_synth_into_a_folder_it_cannot_create_exits_2(capsys, tmp_path):
+    (tmp_path / "afile").write_text("")
+    assert main(["synth", str(tmp_path / "afile" / "c"), "--count", "5"]) == 2
+    err = capsys.readouterr().err
+    assert f"{tmp_path / 'afile' / 'c'}: cannot create the folder (Not a directory)" in err
 
 
 def test_leakage_exit_codes(tmp_path, capsys):
@@ -148,3 +178,21 @@ def test_leakage_writes_its_json_and_keeps_its_exit_status_when_stdout_is_closed
     assert proc.returncode == 1, proc.stderr
     assert proc.stderr == ""
     assert len(json.loads(report.read_text())["leaks"]) >= 5
+
+
+def test_explain_escapes_what_a_non_utf8_stdout_cannot_take(tmp_path):
+    """Python's stdout is strict (PYTHONIOENCODING=ascii, a legacy locale: common practice), so
+    explain of a file with a non-ASCII name ended in a UnicodeEncodeError traceback (exit 1)."""
+    inp = tmp_path / "in" / "ünïcödé"
+    inp.mkdir(parents=True)
+    first = sorted((ROOT / "sample_corpus" / "sessions").rglob("*.mid"))[0]
+    (inp / "曲 №1.mid").write_bytes(first.read_bytes())
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(f"input: {tmp_path / 'in'}\noutput: {tmp_path / 'out'}\nworkers: 1\nstages: [validate]\n",
+                   encoding="utf-8")
+    assert main(["run", str(cfg), "--quiet"]) == 0
+    env = {**os.environ, "PYTHONIOENCODING": "ascii", "PYTHONPATH": str(ROOT)}
+    proc = subprocess.run([sys.executable, "-m", "pipeline.cli", "explain", "ünïcödé/曲 №1.mid",
+                           "--output", str(tmp_path / "out")], capture_output=True, cwd=ROOT, env=env)
+    assert proc.returncode == 0, proc.stderr
+    assert b"source   \\xfcn\\xefc\\xf6d\\xe9/\\u66f2 \\u21161.mid" in proc.stdout

@@ -205,3 +205,65 @@ def test_the_tools_default_config_is_configs_default_yaml():
     assert (ROOT / "configs" / "default.yaml").read_text(encoding="utf-8") == DEFAULT_CONFIG
     assert [next(iter(s)) for s in default_stages()] == \
         ["validate", "transpose", "key_meter", "dedup", "filter", "split"]
+
+
+def test_a_key_given_twice_names_both_lines(tmp_path):
+    """YAML 1.2, 3.2.1.1: the keys of a mapping are unique. PyYAML's safe_load kept the last
+    value without a word, so a second 'input:' ran over another folder."""
+    from pipeline.errors import ConfigErrors
+    p = tmp_path / "twice.yaml"
+    p.write_text("input: corpusA\noutput: out\nstages:\n  - validate\n"
+                 "  - filter: {min_notes: 32, min_notes: 100000}\ninput: corpusB\n")
+    with pytest.raises(ConfigErrors) as exc:
+        load_config(p)
+    second, first = exc.value.problems  # in the order of the second keys
+    assert first.location == "input" and first.file == str(p)
+    assert "key 'input' is given twice (line 1 and line 6)" in first.reason
+    assert second.location == "stages[1].filter.min_notes"
+    assert "(line 5, column 14 and line 5, column 29)" in second.reason
+    assert "delete one of them" in second.reason
+
+
+def test_a_config_that_is_not_utf8_names_the_byte_and_line(tmp_path):
+    # common practice: a Latin-1 editor's umlaut (0xfc) is not valid UTF-8
+    p = tmp_path / "latin1.yaml"
+    p.write_bytes(b"input: in\n# f\xfcr die Demo\noutput: out\nstages: [validate]\n")
+    with pytest.raises(ConfigError) as exc:
+        load_config(p)
+    assert exc.value.file == str(p) and exc.value.location == "line 2"
+    assert "not UTF-8 text (byte 13: 0xfc); save the file as UTF-8" in exc.value.reason
+
+
+@pytest.mark.parametrize("stage, opts, where, shown", [
+    ("split", {"ratios": {"train": float("nan"), "test": 0.5}}, "split.ratios.train", "nan"),
+    ("split", {"ratios": {"train": 0.5, "test": float("inf")}}, "split.ratios.test", "inf"),
+    ("filter", {"min_seconds": float("nan")}, "filter.min_seconds", "nan"),
+    ("filter", {"max_note_s": float("nan")}, "filter.max_note_s", "nan"),
+    ("filter", {"min_notes": float("nan")}, "filter.min_notes", "nan"),
+    ("filter", {"max_polyphony": float("inf")}, "filter.max_polyphony", "inf"),
+    ("filter", {"notes_per_s": [float("nan"), 10]}, "filter.notes_per_s[0]", "nan"),
+    ("transpose", {"bass_weight": float("inf")}, "transpose.bass_weight", "inf"),
+    ("key_meter", {"final_weight": float("nan")}, "key_meter.final_weight", "nan"),
+    ("dedup", {"threshold": float("-inf")}, "dedup.threshold", "-inf")])
+def test_nan_and_infinities_are_refused_by_every_number_option(stage, opts, where, shown):
+    """IEEE 754 (common practice): NaN compares false with everything, so ``x < .nan`` switched
+    a filter rule off and NaN ratios passed 'sum to 1'; ``int(.nan)`` and ``int(.inf)`` raised
+    a traceback from the whole-number checks. One check refuses them with the key path."""
+    with pytest.raises(ConfigError) as exc:
+        parse_config(_cfg([{"validate": {}}, {stage: opts}]), source="c.yaml")
+    assert exc.value.location == f"stages[1].{where}"
+    assert f"must be a finite number, got {shown} (NaN fails every comparison" in exc.value.reason
+    assert ("(null switches it off)" in exc.value.reason) == (stage == "filter")
+
+
+@pytest.mark.parametrize("given, where", [({"workers": "abc"}, "--workers"),
+                                          ({"executor": "bogus://x"}, "--executor")])
+def test_a_bad_command_line_value_names_the_option_not_the_config(given, where, tmp_path):
+    """README, Commands: --workers and --executor override the config. Their bad values were
+    reported as '<config file>: workers: ...', pointing at a file that never held them."""
+    p = tmp_path / "c.yaml"
+    p.write_text(yaml.safe_dump(_cfg(["validate"])))
+    with pytest.raises(ConfigError) as exc:
+        load_config(p, **given)
+    assert exc.value.file == "the command line" and exc.value.location == where
+    assert str(p) not in exc.value.message

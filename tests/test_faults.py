@@ -397,7 +397,8 @@ def test_output_folder_that_cannot_be_created(corpus, config, tmp_path, capsys):
     code = cli.main(["run", str(config), "--input", str(corpus), "--output", str(blocker / "out"),
                      "--quiet"])
     err = capsys.readouterr().err
-    assert code == 1
+    # an output below a file is bad usage (README, Commands: exit 2, nothing written)
+    assert code == 2
     assert str(blocker / "out") in err and "Traceback" not in err
 
 

@@ -173,6 +173,18 @@ def test_option_checks_and_program_names():
     assert resolve_programs(["Synth Lead", 3]) == frozenset(range(80, 88)) | {3}
 
 
+@pytest.mark.parametrize("item", [1.5, None, [1]])
+def test_a_program_that_is_neither_a_number_nor_a_name_states_the_rule(item):
+    """A fraction or null in programs_allow got 'unknown instrument family 1.5; did you mean
+    'bass'?' (an audit): a family name was suggested for what is not a name. GM programs are
+    numbered 1-128, here 0-127 (General MIDI 1 specification, program change numbering)."""
+    problem = {o.name: o for o in Filter.options}["programs_allow"].check([item])
+    assert problem == (f"programs_allow: {item!r} is not a program: give a GM program number, a "
+                       "whole number from 0 to 127, or a family name (piano, chromatic_percussion, "
+                       "organ, guitar, bass, strings, ensemble, brass, reed, pipe, synth_lead, "
+                       "synth_pad, synth_effects, ethnic, percussive, sound_effects, or 'drums')")
+
+
 def test_a_value_just_under_a_limit_prints_apart_from_it():
     # 32 notes every 240 ticks at 499,999 us a beat: 16 beats * 0.499999 s = 7.999984 s, under
     # min_seconds 8 by 16 us. Three significant digits print both as "8", which reads as a

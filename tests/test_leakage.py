@@ -167,7 +167,7 @@ def test_injected_functions_same_file_in_two_parts_and_failures():
 
 
 def test_usage_errors(tmp_path):
-    with pytest.raises(UsageError, match="either --output"):
+    with pytest.raises(UsageError, match=r"either an output folder of ours \('midisift leakage OUTPUT'"):
         main_leakage(parse([]))
     with pytest.raises(UsageError, match="NAME=LISTFILE"):
         main_leakage(parse(["--part", "train"]))
@@ -178,3 +178,20 @@ def test_usage_errors(tmp_path):
         main_leakage(parse(["--part", f"a={tmp_path / 'no.txt'}", "--part", f"b={tmp_path / 'a.txt'}"]))
     with pytest.raises(UsageError, match="no split lists"):
         audit_output(tmp_path)
+
+
+def test_an_audit_that_could_not_read_a_listed_file_does_not_pass(tmp_path):
+    """README, Commands: a CI gate reads the exit status. Part lists naming files that have
+    since moved (here one file listed in both parts) printed 'no cross-part near-duplicates;
+    2 file(s) could not be read' and exited 0, passing a split that was never checked."""
+    gone = tmp_path / "moved" / "piece.mid"
+    for part in ("train", "test"):
+        (tmp_path / f"{part}.txt").write_text(f"{gone}\n", encoding="utf-8")
+    out = io.StringIO()
+    code = main_leakage(parse(["--part", f"train={tmp_path / 'train.txt'}",
+                               "--part", f"test={tmp_path / 'test.txt'}"]), out=out)
+    assert code == 3
+    text = out.getvalue()
+    assert f"unreadable (test): {gone}: " in text and f"unreadable (train): {gone}: " in text
+    assert text.rstrip().endswith("2 file(s) could not be read (listed above), so the audit is "
+                                  "incomplete (exit 3)")

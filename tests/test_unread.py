@@ -123,8 +123,9 @@ def test_read_source_checks_the_whole_file_and_names_the_os_error(tmp_path):
     p = tmp_path / "x.mid"
     p.write_bytes(b"MThd" + bytes(100))
     sha = hashlib.sha256(p.read_bytes()).hexdigest()
-    assert read_source(str(p), sha, 1000) == p.read_bytes()
-    assert read_source(str(p), sha, 10) == p.read_bytes()[:11]  # past the limit: hashed, not kept
+    size = len(p.read_bytes())
+    assert read_source(str(p), sha, 1000) == (p.read_bytes(), size)
+    assert read_source(str(p), sha, 10) == (p.read_bytes()[:11], size)  # past the limit: hashed, not kept
     with pytest.raises(SourceUnread) as e:
         read_source(str(p), "0" * 64, 10)
     assert e.value.reason == "changed_during_run"

@@ -215,3 +215,22 @@ def test_a_bad_workers_or_executor_exits_2_on_an_up_to_date_folder(where, key, v
     assert _cli(config, corpus, out, *extra) == 2
     assert message in capsys.readouterr().err
     assert _snapshot(out) == before and _runs(out) == runs
+
+
+@pytest.mark.parametrize("text, message", [
+    (b"workers: 1\nworkers: 2\n", "workers: key 'workers' is given twice (line "),
+    (b"# \xfcber\n", ": 0xfc); save the file as UTF-8")])
+def test_a_config_the_loader_refuses_exits_2_on_an_up_to_date_folder(text, message, corpus, config,
+                                                                     tmp_path, capsys):
+    """The nothing-changed check reads the config through the same loader as the normal run, so
+    a key given twice (YAML 1.2, 3.2.1.1: keys are unique) or a byte that is not UTF-8 exits 2
+    with the file and line named, never a traceback, and writes nothing."""
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    before, runs = _snapshot(out), _runs(out)
+    config.write_bytes(config.read_bytes() + text)
+    capsys.readouterr()
+    assert _cli(config, corpus, out) == 2
+    err = capsys.readouterr().err
+    assert f"{config}: " in err and message in err
+    assert _snapshot(out) == before and _runs(out) == runs

@@ -6,7 +6,8 @@ decoded with ``pipeline.midi.decode.decode`` and signed with ``pipeline.similari
 come from ``pipeline.similarity.grouping.near_links`` (the same search the split stage groups with, so an
 output folder of ours audited at its grouping threshold must show none), plus equal content
 hashes (the same notes, e.g. one file listed in two parts, even when it has no melody to shingle).
-Files that fail to decode are listed, not fatal.
+Files that cannot be read or decoded are listed and end the audit with its own exit code
+(``INCOMPLETE``) when it found no leak: a CI gate must not pass a split it could not check.
 
 The signing and pairing functions are parameters, so tests and other callers can inject them.
 """
@@ -25,6 +26,9 @@ from ..outputs.table import stdout_gone
 #: The grouping threshold of the split stage's default config (used when an output folder does
 #: not record its own).
 DEFAULT_THRESHOLD = 0.2
+#: The exit code of an audit that found no leak among the files it read but could not read
+#: every listed file (1 is leaks found, 2 bad usage).
+INCOMPLETE = 3
 
 
 @dataclass(frozen=True)
@@ -54,8 +58,9 @@ class LeakReport:
 
     @property
     def exit_code(self) -> int:
-        """1 when leaks were found, else 0 (the CLI's exit code)."""
-        return 1 if self.leaks else 0
+        """The CLI's exit code: 1 when leaks were found, else ``INCOMPLETE`` when a listed file
+        could not be read (it was not checked), else 0."""
+        return 1 if self.leaks else INCOMPLETE if self.failed else 0
 
     def to_json(self) -> dict:
         leaks = []
@@ -255,7 +260,8 @@ def format_report(report: LeakReport) -> str:
     else:
         verdict = "no cross-part near-duplicates"
     if report.failed:
-        verdict += f"; {len(report.failed)} file(s) could not be read"
+        verdict += (f"; {len(report.failed)} file(s) could not be read (listed above), so the "
+                    "audit is incomplete" + ("" if report.leaks else f" (exit {INCOMPLETE})"))
     lines.append(verdict)
     return "\n".join(lines)
 
@@ -287,7 +293,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def main_leakage(args: argparse.Namespace, out=None) -> int:
-    """Run the audit the CLI asked for; returns the exit code (0 clean, 1 leaks found).
+    """Run the audit the CLI asked for; returns the exit code (0 clean, 1 leaks found,
+    ``INCOMPLETE`` no leak found but a listed file could not be read).
 
     Raises ``UsageError`` (exit code 2) for bad usage.
     """
@@ -295,8 +302,9 @@ def main_leakage(args: argparse.Namespace, out=None) -> int:
     specs = list(getattr(args, "part", []) or [])
     output = getattr(args, "output", None)
     if bool(specs) == bool(output):
-        raise UsageError("give either --output DIR (audit our split) or two or more "
-                         "--part NAME=LISTFILE (audit your own split), not both or neither")
+        raise UsageError("give either an output folder of ours ('midisift leakage OUTPUT': audit "
+                         "our split) or two or more --part NAME=LISTFILE (audit your own split), "
+                         "not both or neither")
     if output:
         report = audit_output(Path(output), args.threshold)
     else:
@@ -335,4 +343,4 @@ def _write_json(path: Path, data: dict) -> None:
 
 
 __all__ = ["Leak", "LeakReport", "audit", "audit_output", "format_report", "read_list",
-           "add_arguments", "main_leakage", "DEFAULT_THRESHOLD"]
+           "add_arguments", "main_leakage", "DEFAULT_THRESHOLD", "INCOMPLETE"]

@@ -190,12 +190,18 @@ class Contents(Mapping[str, str]):
 
 
 def check_folders(input_dir: Path, output_dir: Path) -> None:
-    """Refuse an input that is not a folder and an output folder that is, or contains, the input
-    folder (a run rewrites its output folder): usage errors (exit 2), checked before anything is
-    created."""
+    """Refuse an input that is not a folder, an output path that is (or lies below) a file and
+    an output folder that is, or contains, the input folder (a run rewrites its output folder):
+    usage errors (exit 2), checked before anything is created."""
     if not input_dir.is_dir():
         raise UsageError("the input folder does not exist or is not a folder; check 'input' in the "
                          "config or --input", file=str(input_dir))
+    existing = next((p for p in (output_dir, *output_dir.parents) if os.path.lexists(p)), None)
+    if existing is not None and not existing.is_dir():
+        below = "" if existing == output_dir else f" (the output folder {output_dir} would be below it)"
+        what = "a file, not a folder" if existing.is_file() else "not a folder"
+        raise UsageError(f"this is {what}{below}; 'output' in the config or --output "
+                         "must name a folder: a new one or an earlier run's output", file=str(existing))
     input_dir, out_res = input_dir.resolve(), output_dir.resolve()
     if out_res == input_dir or out_res in input_dir.parents:
         raise UsageError(f"the output folder {out_res} is, or contains, the input folder {input_dir}; "

@@ -157,15 +157,14 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
     this check can keep them from passing as up to date. ``on_discover`` receives the
     ``sources.Discovery`` made on the way, for the run that follows (no second listing)."""
     t_start = time.perf_counter()
-    import yaml
-    try:
-        raw = yaml.safe_load(Path(config_path).read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, yaml.YAMLError):
+    from ..errors import ConfigError, MidisiftError
+    from ..settings import parse_executor, parse_workers, read_config, with_overrides
+    try:  # the normal run reports a config it cannot read (exit 2), as config.load_config
+        raw = read_config(config_path)
+    except ConfigError:
         return None
     if not isinstance(raw, dict):
         return None
-    from ..errors import ConfigError, MidisiftError
-    from ..settings import parse_executor, parse_workers, with_overrides
     raw = with_overrides(raw, input=input, output=output, workers=workers, executor=executor)
     try:  # the normal run reports a bad value (exit 2) before it writes anything
         parse_workers(raw.get("workers"))

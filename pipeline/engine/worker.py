@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import errno
 import hashlib
+import os
 import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
@@ -77,14 +78,17 @@ class SourceUnread(Exception):
         self.reason, self.detail = reason, detail
 
 
-def read_source(path: str, sha256: str, limit: int) -> bytes:
-    """The first ``limit + 1`` bytes of the file at ``path`` (the reading stage sees no more),
-    checked to be the content ``sha256``: the results are stored under that hash, so bytes
-    written after the file was hashed must not be judged in its name. The rest of a file
-    longer than that is hashed too, not kept. Raises ``SourceUnread``."""
+def read_source(path: str, sha256: str, limit: int) -> tuple[bytes, int]:
+    """The first ``limit + 1`` bytes of the file at ``path`` (the reading stage sees no more)
+    and the file's size, checked to be the content ``sha256``: the results are stored under
+    that hash, so bytes written after the file was hashed must not be judged in its name. The
+    rest of a file longer than that is hashed too, not kept. Raises ``SourceUnread``."""
     try:
         with open(path, "rb") as fh:
-            data = fh.read(limit + 1)
+            # the file's size bounds the buffer: read(n) allocates n bytes first, so a limit
+            # above the memory limit (validate.max_bytes: 3e9) dropped every file
+            size = os.fstat(fh.fileno()).st_size
+            data = fh.read(min(size, limit) + 1)
             h = hashlib.sha256(data)
             if len(data) > limit:
                 for block in iter(lambda: fh.read(1 << 20), b""):
@@ -98,7 +102,7 @@ def read_source(path: str, sha256: str, limit: int) -> bytes:
         raise SourceUnread(CHANGED, "the file changed while the run was reading it (its bytes no "
                            "longer have the sha256 taken when the files were listed); not "
                            "judged nor cached in this run, the next run reads it again")
-    return data
+    return data, size
 
 
 @dataclass
@@ -120,19 +124,20 @@ StepClock = Callable[[str, float], None]
 
 def file_pass(stages: Sequence[Stage], data: bytes, source: str, sha256: str = "", *,
               compute: Sequence[bool] | None = None, cached: Sequence[Any] | None = None,
-              step: StepClock | None = None) -> FilePass:
+              step: StepClock | None = None, size: int | None = None) -> FilePass:
     """Run one file's bytes through ``stages`` (the first reads the bytes: ``Stage.read``).
 
     ``compute[i]`` false means stage ``i``'s verdict is ``cached[i]`` (a file stage; a corpus
     stage's ``prepare`` is then skipped); the pass stops at the first drop. ``step(label, t0)``
-    is told each step's label (the reader's name, a stage's, ``NAME.prepare``) after it ran."""
+    is told each step's label (the reader's name, a stage's, ``NAME.prepare``) after it ran.
+    ``size``: the file's size when ``data`` holds only the bytes the reader needs."""
     n = len(stages)
     compute = compute if compute is not None else [True] * n
     cached = cached if cached is not None else [None] * n
     clock = time.process_time
     t = clock()
     reader = stages[0]
-    result, piece = reader.read(data, source)
+    result, piece = reader.read(data, source, size)
     out = FilePass(piece)
     out.results[reader.name] = result.to_json()
     if compute[0]:
@@ -206,11 +211,11 @@ def process_file(task: FileTask) -> FileOutcome:
     t0 = time.perf_counter()
     stages = [_stage(p) for p in task.stages]
     try:
-        data = read_source(task.path, task.sha256, stages[0].read_limit())
+        data, size = read_source(task.path, task.sha256, stages[0].read_limit())
     except SourceUnread as e:
         return FileOutcome(task.sha256, unread=(e.reason, f"{task.source}: {e.detail}"),
                            seconds=time.perf_counter() - t0)
-    done = file_pass(stages, data, task.source, task.sha256,
+    done = file_pass(stages, data, task.source, task.sha256, size=size,
                      compute=[p.compute for p in task.stages], cached=[p.cached for p in task.stages])
     out = FileOutcome(task.sha256)
     for name in done.computed:

@@ -61,6 +61,7 @@ from __future__ import annotations
 
 
 from pathlib import Path
+from typing import NoReturn
 
 import numpy as np
 
@@ -102,6 +103,9 @@ REPAIRS: dict[str, tuple[str, str]] = {
 }
 
 DEFAULT_LIMITS = {"max_bytes": 16_000_000, "max_events": 2_000_000, "max_tracks": 1024}
+#: The most tracks a file may have, whatever ``max_tracks`` says: the note table numbers a
+#: note's track as a 16-bit signed integer (``NOTE_DTYPE``'s ``track``), tracks 0..32767.
+MOST_TRACKS = 32768
 
 #: Meta types defined by SMF 1.0 (+ RP-019 SMPTE offset, RP-017 port): skipped silently.
 #: SMPTE frame-rate byte (negated) -> frames per second; 29 means 30 drop-frame = 29.97 fps.
@@ -159,7 +163,8 @@ def _unwrap_riff(data: bytes, source: str) -> tuple[int, int]:
                       "MIDI file; it is probably damaged", file=source, offset=12)
 
 
-def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["max_bytes"],
+def decode(data: bytes, *, source: str = "", size: int | None = None,
+           max_bytes: int = DEFAULT_LIMITS["max_bytes"],
            max_events: int = DEFAULT_LIMITS["max_events"], max_tracks: int = DEFAULT_LIMITS["max_tracks"],
            accelerated: bool | None = None) -> Piece:
     """Decode SMF bytes into a ``Piece``.
@@ -168,6 +173,8 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["ma
     ``unsupported_format`` or ``too_large``; ``offset`` is the absolute byte offset in ``data``.
     ``accelerated``: None uses ``accel.USE_ACCEL``; True the compiled track loop (ValueError when it
     is not built); False the pure-Python loop. Both give the same ``Piece`` and errors.
+    ``size``: the file's size when ``data`` is only its first ``max_bytes + 1`` bytes (the size
+    a ``too_large`` verdict states).
     """
     if accelerated is None:
         accelerated = accel.USE_ACCEL
@@ -175,10 +182,8 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["ma
         raise ValueError("accelerated=True, but pipeline.midi._smf_accel is not built (no C compiler "
                          "when midisift was installed?); reinstall with a compiler or pass False")
     n_all = len(data)
-    if n_all > max_bytes:
-        raise DecodeError("too_large", f"the file has {n_all} bytes, over the limit max_bytes="
-                          f"{max_bytes}; raise max_bytes if such files are wanted",
-                          file=source, offset=0)
+    if max(n_all, size or 0) > max_bytes:
+        _over_max_bytes(max(n_all, size or 0), max_bytes, source)
     if n_all == 0:
         raise DecodeError("not_midi", "the file is empty (0 bytes); a MIDI file starts with "
                           "'MThd'", file=source, offset=0)
@@ -217,9 +222,12 @@ def decode(data: bytes, *, source: str = "", max_bytes: int = DEFAULT_LIMITS["ma
                 else f"format {fmt}, which SMF 1.0 does not define")
         raise DecodeError("unsupported_format", f"only SMF formats 0 and 1 are read, this file is "
                           f"{what}; convert it to format 1 first", file=source, offset=pos + 8)
-    if ntrks > max_tracks:
+    if ntrks > min(max_tracks, MOST_TRACKS):
+        fix = ("raise max_tracks if such files are wanted" if max_tracks < MOST_TRACKS else
+               f"the decoder reads at most {MOST_TRACKS} tracks (its note table numbers them "
+               "as 16-bit signed integers)")
         raise DecodeError("too_large", f"the header declares {ntrks} tracks, over the limit "
-                          f"max_tracks={max_tracks}; raise max_tracks if such files are wanted",
+                          f"max_tracks={min(max_tracks, MOST_TRACKS)}; {fix}",
                           file=source, offset=pos + 10)
     if fmt == 0 and ntrks > 1:
         repairs["format0_multitrack"] = 1
@@ -475,9 +483,12 @@ def decode_file(path: str | Path, **limits: int) -> Piece:
     max_bytes = limits.get("max_bytes", DEFAULT_LIMITS["max_bytes"])
     size = path.stat().st_size
     if size > max_bytes:
-        raise DecodeError("too_large", f"the file has {size} bytes, over the limit max_bytes="
-                          f"{max_bytes}; raise max_bytes if such files are wanted",
-                          file=str(path), offset=0)
+        _over_max_bytes(size, max_bytes, str(path))
     with open(path, "rb") as fh:
-        data = fh.read(max_bytes + 1)
-    return decode(data, source=str(path), **limits)
+        data = fh.read(min(size, max_bytes) + 1)
+    return decode(data, source=str(path), size=size, **limits)
+
+
+def _over_max_bytes(size: int, max_bytes: int, source: str) -> NoReturn:
+    raise DecodeError("too_large", f"the file has {size} bytes, over the limit max_bytes="
+                      f"{max_bytes}; raise max_bytes if such files are wanted", file=source, offset=0)

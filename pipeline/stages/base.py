@@ -189,8 +189,10 @@ class Stage:
     #: first stage must be one.
     reads_bytes: ClassVar[bool] = False
 
-    def read(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
-        """Decode a file's bytes: the verdict, and the piece when kept (a reading stage)."""
+    def read(self, data: bytes, source: str, size: int | None = None) -> tuple[StageResult, Piece | None]:
+        """Decode a file's bytes: the verdict, and the piece when kept (a reading stage).
+        ``size`` is the file's size when ``data`` holds only its first ``read_limit() + 1``
+        bytes (a verdict on its size states the file's, not the bytes read)."""
         raise NotImplementedError(f"stage {self.name} does not read files")
 
     def read_limit(self) -> int:

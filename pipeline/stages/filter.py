@@ -102,12 +102,15 @@ def _program_list(name: str) -> Callable[[Any], str | None]:
 def resolve_programs(items: list | tuple) -> frozenset:
     """GM program numbers (0-127) and family names -> a set of programs, plus ``"drums"``.
 
-    Raises ValueError for an unknown family name or an out-of-range number.
+    Raises ValueError for an unknown family name, an out-of-range number or any other value
+    (a fraction, null: no family name is suggested for what is not a name).
     """
     out: set = set()
     for item in items:
-        if isinstance(item, bool):
-            raise ValueError(f"{item!r} is not a program")
+        if isinstance(item, bool) or not isinstance(item, (int, str)):
+            raise ValueError(f"{item!r} is not a program: give a GM program number, a whole "
+                             f"number from 0 to 127, or a family name ({', '.join(GM_FAMILIES)}, "
+                             "or 'drums')")
         if isinstance(item, int):
             if not 0 <= item <= 127:
                 raise ValueError(f"program {item} is outside 0-127 (GM 1-128 minus one)")

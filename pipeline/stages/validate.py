@@ -16,12 +16,19 @@ from typing import Any
 
 from ..errors import DecodeError
 from ..midi.piece import Piece
-from ..midi.decode import DEFAULT_LIMITS, decode, describe_repairs
+from ..midi.decode import DEFAULT_LIMITS, MOST_TRACKS, decode, describe_repairs
 from .base import FileContext, Option, Stage, StageResult, positive, register
 
 
 def _positive_seconds(value: float) -> str | None:  # reliability option timeout_s: finite, > 0
     return None if 0 < value < float("inf") else "must be a finite number of seconds above 0"
+
+
+def _track_count(value: int) -> str | None:
+    if not 1 <= value <= MOST_TRACKS:
+        return (f"must be from 1 to {MOST_TRACKS}: the decoder numbers a file's tracks as 16-bit "
+                f"signed integers (0..{MOST_TRACKS - 1}), so a file with more cannot be read")
+    return None
 
 
 @register
@@ -37,8 +44,9 @@ class Validate(Stage):
         Option("max_bytes", int, DEFAULT_LIMITS["max_bytes"], "largest file size read, in bytes", positive),
         Option("max_events", int, DEFAULT_LIMITS["max_events"], "most MIDI events read from one file",
                positive),
-        Option("max_tracks", int, DEFAULT_LIMITS["max_tracks"], "most track chunks a file may declare",
-               positive),
+        Option("max_tracks", int, DEFAULT_LIMITS["max_tracks"], "most track chunks a file may "
+               f"declare, at most {MOST_TRACKS} (the decoder numbers tracks as 16-bit signed "
+               "integers)", _track_count),
         Option("allow_repairs", bool, True,
                "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
                "...); when false such files drop as needs_repair"),
@@ -59,10 +67,10 @@ class Validate(Stage):
     def worker_limits(self) -> dict[str, Any]:
         return {"timeout_s": float(self.opts["timeout_s"]), "max_memory_mb": int(self.opts["max_memory_mb"])}
 
-    def read(self, data: bytes, source: str) -> tuple[StageResult, Piece | None]:
+    def read(self, data: bytes, source: str, size: int | None = None) -> tuple[StageResult, Piece | None]:
         """Decode ``data`` and judge it; returns the verdict and the piece (None if dropped)."""
         try:
-            piece = decode(data, source=source, max_bytes=self.opts["max_bytes"],
+            piece = decode(data, source=source, size=size, max_bytes=self.opts["max_bytes"],
                            max_events=self.opts["max_events"], max_tracks=self.opts["max_tracks"])
         except DecodeError as err:
             values = {"offset": err.offset, "track": err.track}
@@ -88,8 +96,10 @@ class Validate(Stage):
         detail = f"SMF format {piece.format}, {piece.n_tracks} tracks, {timing}"
         fixes = describe_repairs(piece.repairs)
         if len(piece.notes) == 0:
-            return StageResult.drop("no_notes", f"{detail}, but no notes: a file needs at least "
-                                    "one note-on with its note-off to be used", values,
+            zero = piece.repairs.get("zero_length_notes_dropped", 0)
+            why = (f"its {zero} note(s) all end at the tick they start (zero length, dropped)"
+                   if zero else "a file needs at least one note-on with its note-off to be used")
+            return StageResult.drop("no_notes", f"{detail}, but no notes: {why}", values,
                                     self._thresholds())
         if fixes and not self.opts["allow_repairs"]:
             return StageResult.drop("needs_repair", f"{detail}; it needs repairs ({fixes}) and "

@@ -69,7 +69,7 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Iterable
 
-from ..errors import UsageError
+from ..errors import OutputError, UsageError
 
 VERSION = 1
 TONIC_NAMES = ("C", "Db", "D", "Eb", "E", "F", "F#", "G", "Ab", "A", "Bb", "B")
@@ -1208,11 +1208,23 @@ def name_files(outs: list[Out], naming: str, seed: int) -> list[str]:
 
 
 # ----------------------------------------------------------------------------- entry points
+#: ``planted`` is below this: the rest of the corpus are the originals the planted variants copy.
+PLANTED_MAX = 0.6
+
+
+def planted_problem(planted: float) -> str | None:
+    """Why ``planted`` cannot be used (it must be a fraction from 0 to below ``PLANTED_MAX``)."""
+    if 0 <= planted < PLANTED_MAX:
+        return None
+    return (f"the planted fraction must be from 0 to below {PLANTED_MAX}, got {planted}: the rest "
+            "of the files are the originals that the planted variants copy")
+
+
 def scale_mix(mix: dict[str, tuple[float, int]], planted: float) -> dict[str, tuple[float, int]]:
-    """The mix with its fractions scaled to add up to ``planted`` (0 <= planted < 0.6)."""
-    if not 0 <= planted < 0.6:
-        raise ValueError(f"planted fraction must be in [0, 0.6), got {planted}; the rest are "
-                         "the originals that variants copy")
+    """The mix with its fractions scaled to add up to ``planted`` (``planted_problem``)."""
+    problem = planted_problem(planted)
+    if problem:
+        raise ValueError(problem)
     total = sum(f for f, _ in mix.values())
     return {k: (f * planted / total, m if planted else 0) for k, (f, m) in mix.items()}
 
@@ -1266,7 +1278,19 @@ def main_synth(out_dir: Path, count: int, seed: int, profile: str = "small",
                          file=str(out_dir))
     if out_dir.exists() and not out_dir.is_dir():
         raise UsageError("this path is a file, not a folder", file=str(out_dir))
-    truth = generate(Path(out_dir), count, seed, profile, naming=naming, planted=planted)
+    problem = planted is not None and planted_problem(planted)
+    if problem:
+        raise UsageError(f"--planted: {problem}")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UsageError(f"cannot create the folder ({e.strerror}); choose a folder you may "
+                         "write to", file=str(out_dir)) from None
+    try:
+        truth = generate(Path(out_dir), count, seed, profile, naming=naming, planted=planted)
+    except OSError as e:
+        raise OutputError(f"cannot write the corpus ({e.strerror}); the files written so far "
+                          "stay", file=e.filename or str(out_dir)) from None
     summary: dict[str, int] = {}
     for t in truth["files"].values():
         summary[t["expect"]] = summary.get(t["expect"], 0) + 1
