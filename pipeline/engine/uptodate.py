@@ -91,7 +91,7 @@ def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
     if summary.get("counts", {}).get(name) != key or not (out / "manifest.jsonl").is_file():
         return None
     from ..outputs.rowreuse import STATE as ROWS_STATE, file_stat
-    if ledger.state_for(ROWS_STATE).get("manifest") != file_stat(out / "manifest.jsonl"):
+    if ledger.state_value(ROWS_STATE, "manifest") != file_stat(out / "manifest.jsonl"):
         return None
     recorded = ledger.outputs()
     listed: list[str] = []

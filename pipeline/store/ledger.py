@@ -321,6 +321,11 @@ class Ledger:
     def state_for(self, stage: str) -> dict[str, Any]:
         return {k: json.loads(v) for k, v in self.db.execute("SELECT key, value FROM state WHERE stage=?", (stage,))}
 
+    def state_value(self, stage: str, key: str) -> Any:
+        """One saved value of ``state_for(stage)`` (None when not saved), without reading the others."""
+        row = self.db.execute("SELECT value FROM state WHERE stage=? AND key=?", (stage, key)).fetchone()
+        return None if row is None else json.loads(row[0])
+
     def put_state(self, stage: str, values: dict[str, Any]) -> None:
         self.db.execute("DELETE FROM state WHERE stage=?", (stage,))
         self.db.executemany("INSERT INTO state VALUES (?,?,?)", ((stage, k, canonical_json(v)) for k, v in values.items()))
