@@ -209,6 +209,21 @@ def test_guard_holds_back_below_threshold_and_records_why():
     assert applied.values["transpose_held_back"] is False and applied.values["transpose"] == 5
 
 
+def test_a_confidence_just_below_the_limit_prints_apart_from_it(monkeypatch):
+    # found by an audit: "confidence 0.300, below min_key_confidence 0.3" for 0.29996 (the
+    # sentence now prints enough digits to tell the two apart; pipeline.printed)
+    import dataclasses
+
+    from pipeline.stages import transpose as tr
+    real = tr.shared_key_estimate
+    monkeypatch.setattr(tr, "shared_key_estimate",
+                        lambda ctx, opts: dataclasses.replace(real(ctx, opts), confidence=0.29996))
+    _, chromatic = _ambiguous_and_clear()
+    held = Transpose({"min_key_confidence": 0.3}).process(chromatic, FileContext(chromatic))
+    assert held.values["transpose_held_back"]
+    assert "with confidence 0.29996, below min_key_confidence 0.3" in held.detail, held.detail
+
+
 def test_guard_drops_with_reason_when_asked():
     from pipeline.reasons import REASONS
     _, chromatic = _ambiguous_and_clear()

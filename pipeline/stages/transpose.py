@@ -16,6 +16,7 @@ from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, sh
                                   shift_key_signatures, shift_notes, smallest_shift)
 from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
+from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, Variant, register
 from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
 
@@ -120,8 +121,8 @@ class Transpose(Stage):
         uncertain = source == "estimated" and est.confidence < limit
         key = keymod.key_name(pc, mode)
         if uncertain:
-            why = (f"key {key} estimated with confidence {est.confidence:.3f}, below "
-                   f"min_key_confidence {limit:g}")
+            shown, bar = compared(est.confidence, limit)  # never "0.300, below 0.3"
+            why = f"key {key} estimated with confidence {shown}, below min_key_confidence {bar}"
             thresholds = {"key_confidence": limit}
             if self.opts["below_confidence"] == "drop":
                 return StageResult.drop("key_uncertain", why,
