@@ -5,6 +5,7 @@ kept file is removed, the copy dedup dropped in its favour is kept now, in the s
 from __future__ import annotations
 
 import json
+import re
 import shutil
 from pathlib import Path
 
@@ -58,3 +59,8 @@ def test_a_rerun_names_the_copy_kept_now_in_its_songs_part(tmp_path):
     assert (changes["now_kept"], changes["now_dropped"], changes["moved"]) == (1, 0, 0)
     assert changes["examples"]["now_kept"] == [{"source": "051/versions/051-v1.mid", "split": kept["split"]}]
     assert "since the last run: files 0 added, 0 changed, 1 removed; 1 now kept (e.g. 051/versions/051-v1.mid)" in table
+    # report.html says it too, its numbers summary.json's
+    page = (tmp_path / "out" / "report.html").read_text()
+    keyed = dict(re.findall(r'data-key="changes_since_last_run\.([a-z_]+)" data-value="(\d+)"', page))
+    assert keyed == {k: str(v) for k, v in changes.items() if k != "examples"}
+    assert f"kept now: <code>051/versions/051-v1.mid</code> ({kept['split']})" in page

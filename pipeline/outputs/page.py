@@ -548,7 +548,26 @@ def _run_tail(summary: dict) -> str:
     leaves as they were."""
     notes = summary.get("notes") or []
     listed = "<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>" if notes else ""
-    return _timings_section(summary) + listed + "</body></html>\n"
+    return _timings_section(summary) + _changes_section(summary) + listed + "</body></html>\n"
+
+
+def _changes_section(summary: dict) -> str:
+    """What a rerun changed against the last run (summary.json's ``changes_since_last_run``,
+    ``outputs.changes``; nothing on a first run), with the sources it names."""
+    c = summary.get("changes_since_last_run")
+    if not c:
+        return ""
+    key = "changes_since_last_run."
+    counts = "; ".join(f"{label} {cell_inline(c[k], key + k)}" for label, k in (
+        ("files added", "files_added"), ("changed", "files_changed"), ("removed", "files_removed"),
+        ("contents kept now", "now_kept"), ("dropped now", "now_dropped"), ("moved to another part", "moved")))
+    ex = c.get("examples", {})
+    rows = ([f"<li>kept now: <code>{esc(e['source'])}</code> ({esc(e['split'])})</li>" for e in ex.get("now_kept", [])]
+            + [f"<li>dropped now: <code>{esc(src)}</code></li>" for src in ex.get("now_dropped", [])]
+            + [f"<li>moved: <code>{esc(e['source'])}</code> ({esc(e['from'])} &rarr; {esc(e['to'])})</li>"
+               for e in ex.get("moved", [])])
+    return (f"<h2>Since the last run</h2><p>{counts}.</p>"
+            + (f"<ul>{''.join(rows)}</ul>" if rows else ""))
 
 
 def rewrite_run_tail(out_dir: Path | str, summary: dict) -> bool:
