@@ -390,6 +390,18 @@ def test_windows_cover_the_roll_and_pad_the_last():
     (["--format", "events", "--window", "4"], "pianoroll only"),
     (["--format", "pianoroll", "--pitch-low", "90", "--pitch-high", "80"], "low <= high"),
     (["--format", "pianoroll", "--drums", "keep"], "--drums must be one of"),
+    # an audit: tracebacks, a 35 GiB allocation, a ten-minute run at 8 GB
+    (["--format", "pianoroll", "--step", "0.00001"], "--step must be above 0, from 0.001 to 10"),
+    (["--format", "events", "--step", "1e-300"], "--step must be above 0, from 0.001 to 10"),
+    (["--format", "pianoroll", "--step", "nan"], "--step must be above 0"),
+    (["--format", "pianoroll", "--per-beat", "1000000"], "--per-beat must be from 1 to 960"),
+    (["--format", "pianoroll", "--window", "inf"], "--window must be at most 3600 seconds"),
+    (["--format", "pianoroll", "--window", "nan"], "--window must be at most 3600"),
+    (["--format", "pianoroll", "--window", "1e300"], "--window must be at most 3600"),
+    (["--format", "pianoroll", "--window", "4", "--hop", "inf"], "--hop must be at most 3600"),
+    (["--format", "pianoroll", "--window", "4", "--hop", "nan"], "--hop must be at most 3600"),
+    (["--format", "events", "--max-shift", "inf"], "--max-shift must be at most 10 seconds"),
+    (["--format", "events", "--max-shift", "1e300"], "--max-shift must be at most 10 seconds"),
 ])
 def test_bad_options_are_clear_errors_with_exit_2(demo_out, capsys, args, message):
     assert main(["export", str(demo_out), *args]) == 2
