@@ -104,7 +104,8 @@ def test_touched_file_with_the_same_bytes_stays_up_to_date(corpus, config, tmp_p
 
 
 @pytest.mark.parametrize("change", ["option", "new_file", "removed_file", "missing_output", "fresh",
-                                    "split_line_added", "manifest_row_added"])
+                                    "split_line_added", "manifest_row_added", "stray_output",
+                                    "stray_split_list", "split_list_unsorted"])
 def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
     out = tmp_path / "out"
     assert _cli(config, corpus, out) == 0
@@ -130,6 +131,15 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
         line = b"midi/train/0000000000000000.mid\n" if change == "split_line_added" else \
             before.splitlines(keepends=True)[0].replace(b'"source": "', b'"source": "ghost/')
         listed.write_bytes(before + line)
+    elif change == "stray_output":  # the next three found kept by a second audit
+        (out / "midi" / "train" / "0000000000000000.mid").write_bytes(b"MThd")
+    elif change == "stray_split_list":
+        (out / "splits" / "extra.txt").write_text("midi/extra/0000000000000000.mid\n")
+    elif change == "split_list_unsorted":
+        train = out / "splits" / "train.txt"
+        lines = train.read_text().splitlines(keepends=True)
+        assert len(lines) > 1
+        train.write_text("".join(reversed(lines)))
     else:
         extra = ("--fresh",)
     assert _cli(config, corpus, out, *extra) == 0
@@ -147,6 +157,13 @@ def test_any_change_takes_the_normal_path(change, corpus, config, tmp_path):
         assert "0000000000000000" not in (out / "splits" / "train.txt").read_text()
     if change == "manifest_row_added":
         assert not any(r["source"].startswith("ghost/") for r in rows)
+    if change == "stray_output":  # the normal run removes what it did not write
+        assert not (out / "midi" / "train" / "0000000000000000.mid").exists()
+    if change == "stray_split_list":
+        assert not (out / "splits" / "extra.txt").exists()
+    if change == "split_list_unsorted":
+        lines = (out / "splits" / "train.txt").read_text().splitlines()
+        assert lines == sorted(lines)
 
 
 def test_the_run_after_the_check_reuses_its_listing(corpus, config, tmp_path, monkeypatch):

@@ -78,9 +78,10 @@ def quick_key(raw: dict[str, Any], files_h: Any) -> str:
 
 def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
     """The last completed run's summary when its key ``name`` equals ``key`` and its outputs
-    are all still in place, else None: the manifest with the size and modification time the
-    run recorded, the split lists naming exactly the normalized files it recorded (an audit
-    found an added line kept), and every one of those files."""
+    are all still as it wrote them, else None: the manifest with the size and modification time
+    the run recorded, the split lists (those of its parts, no other) naming in sorted order
+    exactly the normalized files it recorded, and ``midi/`` holding those files and no other
+    (audits found an added line, a list out of order, a stray list and a stray file kept)."""
     last = ledger.last_run()
     if last is None or last["counts"].get(name) != key:
         return None
@@ -94,16 +95,26 @@ def last_summary_if(ledger: Any, out: Path, name: str, key: str) -> dict | None:
     if ledger.state_value(ROWS_STATE, "manifest") != file_stat(out / "manifest.jsonl"):
         return None
     recorded = ledger.outputs()
+    parts = summary.get("split", {}).get("outputs", {})
+    try:
+        lists = {p.name for p in (out / "splits").glob("*.txt")}
+    except OSError:
+        return None
+    if lists != {f"{part}.txt" for part in parts}:  # a list the run did not write
+        return None
     listed: list[str] = []
-    for part in summary.get("split", {}).get("outputs", {}):
+    for part in parts:
         try:
-            listed += (out / "splits" / f"{part}.txt").read_text(encoding="utf-8").splitlines()
+            lines = (out / "splits" / f"{part}.txt").read_text(encoding="utf-8").splitlines()
         except (OSError, UnicodeDecodeError):
             return None
-    if listed and (len(listed) != len(recorded) or set(listed) != recorded.keys()):
+        if lines != sorted(lines) or not all(line.startswith(f"midi/{part}/") for line in lines):
+            return None
+        listed += lines
+    if len(listed) != len(recorded) or set(listed) != recorded.keys():
         return None
-    from ..outputs.files import present_files
-    if len(present_files(out, recorded)) != len(recorded):
+    from ..outputs.files import files_below
+    if files_below(out, "midi") != recorded.keys():  # each recorded file there, and no other
         return None
     return summary
 

@@ -85,6 +85,17 @@ def existing_outputs(out_dir: Path, fp: str, recorded: dict[str, tuple[str, str]
     return found
 
 
+def files_below(out_dir: Path, folder: str) -> set[str]:
+    """Every file below ``out_dir / folder``, as a path relative to ``out_dir`` ("/"-separated);
+    an empty set when the folder is missing."""
+    found: set[str] = set()
+    base = os.path.join(str(out_dir), folder)
+    for root, _, names in os.walk(base):
+        rel = os.path.relpath(root, str(out_dir)).replace(os.sep, "/")
+        found.update(f"{rel}/{name}" for name in names)
+    return found
+
+
 def present_files(out_dir: Path, rels: Iterable[str]) -> set[str]:
     """The paths (relative to ``out_dir``, "/"-separated) that are files on disk, listing each
     folder once instead of one stat per file (a rerun of 100,000 files checks them all)."""
