@@ -64,3 +64,29 @@ def test_a_rerun_names_the_copy_kept_now_in_its_songs_part(tmp_path):
     keyed = dict(re.findall(r'data-key="changes_since_last_run\.([a-z_]+)" data-value="(\d+)"', page))
     assert keyed == {k: str(v) for k, v in changes.items() if k != "examples"}
     assert f"kept now: <code>051/versions/051-v1.mid</code> ({kept['split']})" in page
+
+
+def test_after_a_run_that_stopped_the_changes_are_the_last_completed_runs(tmp_path, monkeypatch):
+    """Found by a second audit: a run that stopped early had already recorded the new list of
+    files, and the next run reported 0 files added and removed."""
+    from pipeline.engine import walk as walk_module
+
+    corpus = tmp_path / "in"
+    shutil.copytree(POP, corpus, ignore=shutil.ignore_patterns("LICENSE", "README.md"))
+    _run(corpus, tmp_path / "out")
+    shutil.copy(corpus / "089" / "089.mid", corpus / "copy_of_089.mid")
+    (corpus / "703" / "versions" / "703-v5.mid").unlink()
+
+    def stop(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    with monkeypatch.context() as m:
+        m.setattr(walk_module.StageWalk, "run", stop)
+        try:
+            _run(corpus, tmp_path / "out")
+        except KeyboardInterrupt:
+            pass
+    _, summary, table = _run(corpus, tmp_path / "out")
+    changes = summary["changes_since_last_run"]
+    assert (changes["files_added"], changes["files_changed"], changes["files_removed"]) == (1, 0, 1)
+    assert "since the last run: files 1 added, 0 changed, 1 removed" in table

@@ -145,8 +145,15 @@ class Runner:
         # have changed: their rows are not settled, ``RowReuse.settle``); none to list on a
         # first run, which reuses no row
         touched = _touched_contents(changed, gone, known) if known else None
-        # files added, changed and removed since the last run (``outputs.changes``; a rerun's)
-        moved_files = _file_changes(changed, gone, known) if known else None
+        # files added, changed and removed since the last completed run (``outputs.changes``):
+        # the sources table holds those of the last run started, which may have stopped early
+        last_done = ledger.last_run()
+        if last_done is None:
+            moved_files = None
+        elif ledger.runs_unfinished(last_done["id"], run_id) == 0:
+            moved_files = _file_changes(changed, gone, known)
+        else:
+            moved_files = _file_changes_since(files, ledger.decision_sources())
         del known, changed, gone  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
@@ -487,6 +494,19 @@ def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
     added = sum(1 for row in changed if row[0] not in known)
     edited = sum(1 for row in changed if row[0] in known and known[row[0]][2] != row[3])
     return added, edited, len(gone)
+
+
+def _file_changes_since(files: Any, last: dict[str, str]) -> tuple[int, int, int]:
+    """(added, changed, removed) source files against ``last`` (source -> sha256 of the last
+    completed run's files), after a run that stopped early rewrote the sources table."""
+    added = edited = 0
+    for i in range(len(files)):
+        old = last.get(files.rel(i))
+        if old is None:
+            added += 1
+        elif old != files.sha256(i):
+            edited += 1
+    return added, edited, len(last) - (len(files) - added)
 
 
 def unread_warnings(unread: dict[str, tuple[str, str]], late: int) -> list[str]:

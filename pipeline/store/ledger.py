@@ -370,6 +370,10 @@ class Ledger:
         return self.db.execute(
             "SELECT sha256, MAX(status) FROM decisions GROUP BY sha256")  # 'kept' > 'dropped'
 
+    def decision_sources(self) -> dict[str, str]:
+        """Source -> sha256 of every file of the last completed run (its trails' rows)."""
+        return dict(self.db.execute("SELECT source, sha256 FROM decisions"))
+
     def decision(self, source: str) -> tuple[str | None, list] | None:
         row = self.db.execute("SELECT sha256, trail FROM decisions WHERE source=?", (source,)).fetchone()
         return None if row is None else (row[0], json.loads(row[1]))
