@@ -152,7 +152,7 @@ def test_a_run_refuses_a_folder_of_the_users_files_as_its_output(tmp_path):
     mine = tmp_path / "datasets"
     (mine / "midi" / "my_collection").mkdir(parents=True)
     (mine / "midi" / "my_collection" / "precious.mid").write_bytes(b"MThd")
-    with pytest.raises(UsageError, match=r"holds files \(midi\) but no state.sqlite"):
+    with pytest.raises(UsageError, match=r"is not empty \(midi\) but holds no state.sqlite"):
         check_folders(src, mine)
     empty = tmp_path / "empty"
     empty.mkdir()

@@ -224,7 +224,7 @@ def check_output_folder(out_dir: Path) -> None:
     foreign = [n for n in names if n != LOCK_NAME]
     if foreign and LEDGER_NAME not in names:
         shown = ", ".join(foreign[:3]) + (f" and {len(foreign) - 3} more" if len(foreign) > 3 else "")
-        raise UsageError(f"the output folder {out_dir} holds files ({shown}) but no {LEDGER_NAME}: it is "
+        raise UsageError(f"the output folder {out_dir} is not empty ({shown}) but holds no {LEDGER_NAME}: it is "
                          "not a midisift output folder, and a run would remove what it did not write "
                          "there (midi/, splits/); choose a new or empty output folder")
 
