@@ -66,6 +66,19 @@ def test_a_rerun_names_the_copy_kept_now_in_its_songs_part(tmp_path):
     assert f"kept now: <code>051/versions/051-v1.mid</code> ({kept['split']})" in page
 
 
+def test_the_page_lists_what_the_listing_left_out(tmp_path):
+    import os
+
+    corpus = tmp_path / "in"
+    shutil.copytree(POP, corpus, ignore=shutil.ignore_patterns("LICENSE", "README.md"))
+    os.mkfifo(corpus / "pipe.mid")
+    _, summary, _ = _run(corpus, tmp_path / "out")
+    assert summary["skipped"]["count"] == 1
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert 'data-key="skipped.count" data-value="1"' in page
+    assert "<code>pipe.mid</code>: not a regular file (a FIFO)" in page
+
+
 def test_after_a_run_that_stopped_the_changes_are_the_last_completed_runs(tmp_path, monkeypatch):
     """Found by a second audit: a run that stopped early had already recorded the new list of
     files, and the next run reported 0 files added and removed."""

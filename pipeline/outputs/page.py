@@ -548,7 +548,26 @@ def _run_tail(summary: dict) -> str:
     leaves as they were."""
     notes = summary.get("notes") or []
     listed = "<h2>Notes</h2><ul>" + "".join(f"<li>{esc(n)}</li>" for n in notes) + "</ul>" if notes else ""
-    return _timings_section(summary) + _changes_section(summary) + listed + "</body></html>\n"
+    return (_timings_section(summary) + _changes_section(summary) + _skipped_section(summary) + listed
+            + "</body></html>\n")
+
+
+#: Skipped entries the page names (summary.json lists more, counts all).
+SKIPPED_SHOWN = 50
+
+
+def _skipped_section(summary: dict) -> str:
+    """The entries the listing of the input left out (summary.json's ``skipped``), with why:
+    the run's notes say it once, on the console."""
+    sk = summary.get("skipped") or {}
+    if not sk.get("count"):
+        return ""
+    rows = "".join(f"<li><code>{esc(e['source'])}</code>: {esc(e['why'])}</li>"
+                   for e in sk.get("listed", [])[:SKIPPED_SHOWN])
+    more = sk["count"] - min(len(sk.get("listed", [])), SKIPPED_SHOWN)
+    return (f"<h2>Left out of the run</h2><p>{cell_inline(sk['count'], 'skipped.count')} entries below the "
+            f"input folder were not read (not in the manifest; <code>midisift explain PATH</code> says "
+            f"why){f', {more:,} more in summary.json' if more > 0 else ''}:</p><ul>{rows}</ul>")
 
 
 def _changes_section(summary: dict) -> str:
