@@ -385,9 +385,7 @@ class Ledger:
 
     def skipped_why(self, source: str) -> str | None:
         """Why the last run left ``source`` out when it listed the input, or None."""
-        row = self.db.execute("SELECT value FROM state WHERE stage=? AND key=?",
-                              (SKIPPED_STATE, source)).fetchone()
-        return None if row is None else json.loads(row[0])
+        return self.state_value(SKIPPED_STATE, source)
 
     def decisions_by_sha_prefix(self, prefix: str) -> list[tuple[str, str | None, list]]:
         return [(s, h, json.loads(t)) for s, h, t in self.db.execute(
