@@ -208,9 +208,14 @@ def check_up_to_date(config_path: str | Path, *, input: str | None = None,
                 return None  # files added or removed: the normal run records them
             changed = fingerprint(files, known, notes)
             seconds_discover = time.perf_counter() - t
-            if changed:  # touched or edited files: keep their hashes for whichever run goes on
+            # files touched with their bytes unchanged: their new stat spares the next check a
+            # hash. A file whose bytes changed is left for the run to record: the run finds
+            # the changed files by their recorded hashes, and an audit found a swap of two
+            # files' contents passing unseen (stale manifest rows) once they were written here
+            touched = [row for row in changed if known[row[0]][2] == row[3]]
+            if touched:
                 with ledger.batch():
-                    ledger.put_sources(changed)
+                    ledger.put_sources(touched)
             quick = quick_key(raw, files_hash(files))
             summary = last_summary_if(ledger, out, "quick_key", quick)
             if summary is None:
