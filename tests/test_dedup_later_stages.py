@@ -9,6 +9,7 @@ The piece is a real arrangement, POP909 song 051 (tests/data/pop909, MIT licence
 """
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 from pathlib import Path
@@ -37,11 +38,12 @@ def _with_coda(src: Path, dst: Path, gap_beats: int = 200) -> None:
     mid.save(dst)
 
 
-def _rows(tmp_path: Path, corpus: Path, name: str, filter_opts: dict) -> dict[str, dict]:
+def _rows(tmp_path: Path, corpus: Path, name: str, filter_opts: dict,
+          dedup_opts: dict | None = None) -> dict[str, dict]:
     cfg = tmp_path / f"{name}.yaml"
     cfg.write_text(yaml.safe_dump({
         "input": str(corpus), "output": str(tmp_path / name), "workers": 1,
-        "stages": [{"validate": {}}, {"key_meter": {}}, {"dedup": {}}, {"filter": filter_opts},
+        "stages": [{"validate": {}}, {"key_meter": {}}, {"dedup": dedup_opts or {}}, {"filter": filter_opts},
                    {"split": {"ratios": {"train": 0.5, "test": 0.5}}}]}))
     Runner(load_config(cfg), quiet=True).run()
     lines = (tmp_path / name / "manifest.jsonl").read_text().splitlines()
@@ -78,6 +80,34 @@ def test_a_filter_option_changed_on_a_rerun_decides_the_kept_file_again(tmp_path
     again = _rows(tmp_path, corpus, "out", {"max_silence_s": 30.0})
     assert again["clean.mid"]["status"] == "kept"
     assert again["coda.mid"]["stage"] == "dedup" and again["coda.mid"]["duplicate_of"] == again["clean.mid"]["id"]
+    # and back: the limit relaxed, the policy's choice returns, as in a fresh run (an audit
+    # found the stand-in kept from the tightened run staying kept)
+    relaxed = _rows(tmp_path, corpus, "out", {"max_silence_s": 1000.0})
+    assert relaxed["coda.mid"]["status"] == "kept"
+    assert relaxed["clean.mid"]["duplicate_of"] == relaxed["coda.mid"]["id"]
+
+
+def test_a_keep_policy_changed_on_a_rerun_is_applied(tmp_path):
+    """The files kept last time stay kept before newcomers, but a rerun under another
+    keep_policy chooses by that policy, as a fresh run does (an audit found the new policy
+    named in summary.json and the old one's files kept)."""
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    shutil.copy(SONG, corpus / "clean.mid")
+    clean_id = hashlib.sha256((corpus / "clean.mid").read_bytes()).hexdigest()[:16]
+    gap = 200  # a copy with more notes (most_notes keeps it) and a larger id (smallest_id does not)
+    while True:
+        _with_coda(SONG, corpus / "coda.mid", gap)
+        if hashlib.sha256((corpus / "coda.mid").read_bytes()).hexdigest()[:16] > clean_id:
+            break
+        gap += 1
+    loose = {"max_silence_s": 1000.0}
+    first = _rows(tmp_path, corpus, "out", loose)
+    assert first["coda.mid"]["status"] == "kept" and first["clean.mid"]["status"] == "dropped"
+    by_id = _rows(tmp_path, corpus, "out", loose, {"keep_policy": "smallest_id"})
+    assert by_id["clean.mid"]["status"] == "kept" and by_id["coda.mid"]["status"] == "dropped"
+    fresh = _rows(tmp_path, corpus, "fresh", loose, {"keep_policy": "smallest_id"})
+    assert {k: r["status"] for k, r in fresh.items()} == {k: r["status"] for k, r in by_id.items()}
 
 
 def test_when_every_file_fails_the_filter_the_drop_says_so(tmp_path):

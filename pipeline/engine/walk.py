@@ -107,7 +107,10 @@ class StageWalk:
                 state = CorpusState(saved, upstream, {
                     "fresh": self.fresh, "reassign": self.reassign, "previous_results": last,
                     "sources_of": lambda name: _member_sources(stepped.get(name), rep),
-                    "dropped_later": _later_drops(self.stages, st, cache, index)})
+                    "dropped_later": _later_drops(self.stages, st, cache, index),
+                    # the stage's options, or those of the stages its results depend on, differ
+                    # from the last run's (its choices are then made as in a fresh run)
+                    "options_changed": saved.get(CORPUS_RESULTS) != self.chains[st.name]})
                 bar = self.bar(f"{st.name} (corpus)", len(members))
                 release_free_memory()  # memory: what earlier steps freed is not kept beside this one
                 res = st.run_corpus(members, state) if members else {}

@@ -16,8 +16,8 @@ and its MinHash signature (``similarity.minhash.signature_of``). Over the corpus
 3. clusters are the connected components of the links (union-find; they are transitive, as
    leakage is, and the split keeps each one in one part). Removal is not transitive: in each
    cluster, members are taken in ``keep_policy`` order, those a per-file stage after dedup
-   (filter) drops last (on a rerun, members kept last time first among the others unless
-   ``displace_kept`` is set); a member with a direct link to a member already
+   (filter) drops last (on a rerun with the last run's options, members kept last time first
+   among the others unless ``displace_kept`` is set); a member with a direct link to a member already
    kept is dropped, else it is kept too. Each dropped member names the kept member it is most
    similar to among those it links to directly (``duplicate_of``, ``similarity``), so every
    drop is justified by its own pair, never through other members (a chain A~B~C where A and
@@ -187,7 +187,8 @@ class Dedup(Stage):
                "per-file stages after dedup (filter) keep: " + "; ".join(f"{k}: {d}" for k, (_, d) in KEEP_POLICIES.items()) + ".",
                one_of(*KEEP_POLICIES)),
         Option("displace_kept", bool, False,
-               "On a rerun, let a newcomer replace a member kept by the previous run.", None),
+               "On a rerun, let a newcomer replace a member kept by the previous run (a rerun "
+               "with other options than the last run's chooses as a fresh run either way).", None),
     )
 
     @classmethod
@@ -373,7 +374,12 @@ class Dedup(Stage):
         near.own = _OwnPairs(_Shingles(arts), threshold, float(o["min_size_ratio"]), min_sh,
                              self._generic)
         key, _ = KEEP_POLICIES[o["keep_policy"]]
-        previously_kept = set() if o["displace_kept"] else set(prev.get("kept", []))
+        # the files kept last time stay kept before newcomers (a growing corpus keeps its
+        # training files), but not after a change of options: a changed keep_policy or filter
+        # limit decides as in a fresh run (an audit found a relaxed filter limit leaving the
+        # stand-in kept while it failed the limit, and a new keep_policy ignored)
+        sticky = not o["displace_kept"] and not state.flags.get("options_changed", False)
+        previously_kept = set(prev.get("kept", [])) if sticky else set()
         # a file that a per-file stage after dedup drops (filter) is kept only when no file of
         # its cluster passes them: else the piece would leave the corpus with it
         later = state.flags.get("dropped_later") or (lambda sha: None)
