@@ -14,7 +14,8 @@ from pipeline.errors import ConfigError
 from pipeline.similarity.minhash import minhash
 from pipeline.similarity.sets import set_similarity
 from pipeline.stages.base import CorpusState, Member, StageResult
-from pipeline.stages.split import Split, check_ratios, folder_of, normalize_text, output_count
+from pipeline.stages.split import (Split, check_ratios, folder_of, normalize_text, off_target_warnings,
+                                   output_count)
 
 RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
 SIZE = 300
@@ -745,3 +746,20 @@ def test_results_name_the_groups_of_the_saved_links_and_parts():
               for key, g in groups.items() for m in g}
     assert {m: r.values for m, r in results.items()} == expect
     assert all(r.kept and r.detail == "" for r in results.values())
+
+
+def test_parts_far_from_their_targets_are_warned_about():
+    """A run whose parts lie far from their target shares says so, with the way back (an
+    audit: one rerun with another folder grouping left train 6 files of 182, with no word
+    beyond an empty part). The bounds are ours (common practice): 0.15 and half the target."""
+    ratios = {"train": 0.8, "valid": 0.1, "test": 0.1}
+    collapsed = off_target_warnings({"train": 6, "valid": 0, "test": 176}, ratios, "test")
+    assert [w.split("'")[1] for w in collapsed] == ["train", "test"]
+    assert "3.3% of the kept files (6 of 182), its target 80%" in collapsed[0]
+    assert "'test' (freeze)" in collapsed[0] and "--reassign" in collapsed[0]
+    # a fresh split of few large groups within the bounds (valid 16.5% against 10%), and any
+    # split of fewer than 30 kept files, pass without a word
+    assert off_target_warnings({"train": 146, "valid": 30, "test": 6}, ratios, "test") == []
+    assert off_target_warnings({"train": 2, "valid": 0, "test": 20}, ratios, "test") == []
+    assert "the part holding most" in off_target_warnings({"train": 60, "test": 40},
+                                                          {"train": 0.9, "test": 0.1}, None)[0]

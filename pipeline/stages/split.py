@@ -142,6 +142,33 @@ def output_count(m: Member) -> float:
     return float(max(1, len(m.outputs), 1 + len(augment)))
 
 
+
+#: A part's share of the kept files is reported (a run warning) when it lies further than this
+#: from its target, absolutely, and than half its target; and only from this many kept files
+#: (with fewer, whole groups move shares more than that). Common practice, no source.
+OFF_TARGET = 0.15
+OFF_TARGET_MIN_FILES = 30
+
+
+def off_target_warnings(files: dict[str, int], ratios: dict[str, float], freeze: str | None) -> list[str]:
+    """Warnings for parts far from their target shares (``files``: kept files per part), with
+    the likely causes and the way back (an audit: one exploratory rerun with another folder
+    grouping merged groups across parts into ``freeze``, leaving train 6 files of 182)."""
+    total = sum(files.values())
+    if total < OFF_TARGET_MIN_FILES:
+        return []
+    out = []
+    for part, target in ratios.items():
+        n = files.get(part, 0)
+        share = n / total
+        if n and abs(share - target) > max(OFF_TARGET, target / 2):
+            merged = (f"'{freeze}' (freeze)" if freeze else "the part holding most of their files")
+            out.append(f"part '{part}' holds {share:.1%} of the kept files ({n:,} of {total:,}), "
+                       f"its target {float(target):.0%}: the groups are few or large (folders, "
+                       f"group fields), or reruns joined groups linked across parts to {merged}; `midisift run --reassign` places every group "
+                       "again (files may change part)")
+    return out
+
 @register
 class Split(Stage):
     """Split kept files into parts, keeping every near-duplicate group whole and reruns stable."""
@@ -262,6 +289,8 @@ class Split(Stage):
         section["part_order"] = self.parts()
         if saved.get("summary"):
             section["stage"] = saved["summary"]
+        summary.setdefault("warnings", []).extend(
+            off_target_warnings(section.get("files", {}), self.opts["ratios"], self._freeze()))
 
     def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
