@@ -7,6 +7,7 @@ these are checks of our own contract, not of outside references.
 """
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -286,3 +287,48 @@ def test_a_config_the_loader_refuses_exits_2_on_an_up_to_date_folder(text, messa
     err = capsys.readouterr().err
     assert f"{config}: " in err and message in err
     assert _snapshot(out) == before and _runs(out) == runs
+
+
+def _edit_keeping_stat(path: Path) -> None:
+    """One byte of ``path`` changed, its size and modification time as they were (as `touch
+    -r`, or `cp -p` of another file of the same size, leave a file)."""
+    st = path.stat()
+    data = bytearray(path.read_bytes())
+    at = data.index(b"MTrk") + 8 + 1  # inside the first track's first event
+    data[at] ^= 0x01
+    path.write_bytes(bytes(data))
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+
+
+def test_fresh_hashes_every_file_again(corpus, config, tmp_path):
+    """``--fresh`` trusts no recorded hash: a file whose bytes changed under a kept size and
+    modification time is read as it is (an audit: it was dropped as changed_during_run on
+    this and every later run)."""
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    victim = corpus / next(s for s, r in sorted(_rows(out).items()) if r["status"] == "kept")
+    _edit_keeping_stat(victim)
+    assert _cli(config, corpus, out, "--fresh") == 0
+    rel = victim.relative_to(corpus).as_posix()
+    row = _rows(out)[rel]
+    assert row["sha256"] == hashlib.sha256(victim.read_bytes()).hexdigest()
+    assert row["reason"] != "changed_during_run"
+
+
+def test_a_file_read_as_changed_is_hashed_again_next_run(corpus, config, tmp_path):
+    """A content found changed when a worker read it (``changed_during_run``) is not passed as
+    known by its stat on the next run, which hashes the file again and judges it."""
+    out = tmp_path / "out"
+    assert _cli(config, corpus, out) == 0
+    victim = corpus / next(s for s, r in sorted(_rows(out).items()) if r["status"] == "kept")
+    rel = victim.relative_to(corpus).as_posix()
+    _edit_keeping_stat(victim)
+    raw = yaml.safe_load(config.read_text())  # another validate option: every file read again
+    raw["stages"][0] = {"validate": {**(raw["stages"][0]["validate"] or {}), "max_events": 1999999}}
+    config.write_text(yaml.safe_dump(raw))
+    assert _cli(config, corpus, out) == 0
+    assert _rows(out)[rel]["reason"] == "changed_during_run"  # the recorded hash, then other bytes
+    assert _cli(config, corpus, out) == 0
+    row = _rows(out)[rel]
+    assert row["sha256"] == hashlib.sha256(victim.read_bytes()).hexdigest()
+    assert row["reason"] != "changed_during_run"

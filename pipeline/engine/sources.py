@@ -337,8 +337,9 @@ def _kind(mode: int) -> str:
 
 
 def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
-                notes: list[str] | None = None) -> list[tuple[str, int, int, str]]:
-    """Set the sha256 of each file; hash only files whose size or mtime changed. Returns new rows.
+                notes: list[str] | None = None, *, rehash: bool = False) -> list[tuple[str, int, int, str]]:
+    """Set the sha256 of each file; hash only files whose size or mtime changed (every file
+    with ``rehash``: ``--fresh`` trusts no recorded hash). Returns new rows.
 
     A file that vanished or became unreadable since discovery is removed from ``files`` (in
     place) and listed in ``files.skipped`` (with a note in ``notes``), so it is not part of
@@ -348,7 +349,7 @@ def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
     for i in range(len(files)):
         rel, size, mtime_ns = files.rel(i), files.size(i), files.mtime_ns(i)
         rec = known.get(rel)
-        if rec is not None and rec[0] == size and rec[1] == mtime_ns:
+        if not rehash and rec is not None and rec[0] == size and rec[1] == mtime_ns:
             files.set_sha256(i, rec[2])
             continue
         h = hashlib.sha256()
