@@ -233,6 +233,12 @@ def test_guard_drops_with_reason_when_asked():
     assert REASONS["key_uncertain"][0] == "transpose"
     assert res.values["transpose_held_back"] is True
     assert res.values["key_confidence"] < 1.0
+    # the key it found is recorded with the drop, as key_meter would record it (an audit found
+    # tonic and mode null in the manifest of such a file)
+    from pipeline.stages.key_meter import KeyMeter
+    km = KeyMeter({}).process(chromatic, FileContext(chromatic)).values
+    assert {k: res.values[k] for k in ("tonic", "tonic_pc", "mode", "key_source", "key_confidence")} == \
+        {k: km[k] for k in ("tonic", "tonic_pc", "mode", "key_source", "key_confidence")}
 
 
 def test_guard_does_not_apply_to_a_key_the_file_declares():

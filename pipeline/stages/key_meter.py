@@ -95,6 +95,15 @@ def reported_key(piece: Piece, estimate: keymod.KeyEstimate, trust_file_key: boo
     return estimate.tonic_pc, estimate.mode, "estimated"
 
 
+def key_fields(pc: int, mode: str, source: str, estimate: keymod.KeyEstimate) -> dict[str, Any]:
+    """The manifest's key fields of a reported key (``reported_key``), recorded by every stage
+    that reads the key (key_meter, transpose), so a file dropped by transpose or a run without
+    key_meter still says which key was found."""
+    names = keymod.MAJOR_TONIC_NAMES if mode == "major" else keymod.MINOR_TONIC_NAMES
+    return {"tonic": names[pc], "tonic_pc": pc, "mode": mode, "key_source": source,
+            "key_confidence": round(estimate.confidence, 4)}
+
+
 @register
 class KeyMeter(Stage):
     """Detect key (tonic, mode, confidence) and meter; measure tempo and quantization."""
@@ -133,13 +142,8 @@ class KeyMeter(Stage):
         meter_issue = metermod.declared_meter_issue(file_meter, meter_est,
                                                     float(self.opts["meter_contradiction"]))
         use_file = file_meter is not None and meter_issue is None
-        names = keymod.MAJOR_TONIC_NAMES if mode == "major" else keymod.MINOR_TONIC_NAMES
         values = {
-            "tonic": names[pc],
-            "tonic_pc": pc,
-            "mode": mode,
-            "key_source": source,
-            "key_confidence": round(est.confidence, 4),
+            **key_fields(pc, mode, source, est),
             "key_runner_up": est.runner_up,
             "key_declared": declared,
             "key_agrees": agrees,

@@ -18,7 +18,7 @@ from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
 from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, Variant, register
-from .key_meter import KEY_OPTIONS, reported_key, shared_key_estimate
+from .key_meter import KEY_OPTIONS, key_fields, reported_key, shared_key_estimate
 
 
 def _check_note(value: Any) -> str | None:
@@ -82,7 +82,8 @@ class Transpose(Stage):
 
     name = "transpose"
     kind = "file"
-    version = 4
+    #: 5: its results carry the key it read (``key_fields``), as key_meter's do
+    version = 5
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),
@@ -120,16 +121,16 @@ class Transpose(Stage):
         # a key declared by the file (trust_file_key) is not an estimate: no guard
         uncertain = source == "estimated" and est.confidence < limit
         key = keymod.key_name(pc, mode)
+        found = key_fields(pc, mode, source, est)
         if uncertain:
             shown, bar = compared(est.confidence, limit)  # never "0.300, below 0.3"
             why = f"key {key} estimated with confidence {shown}, below min_key_confidence {bar}"
             thresholds = {"key_confidence": limit}
             if self.opts["below_confidence"] == "drop":
                 return StageResult.drop("key_uncertain", why,
-                                        values={"key_confidence": round(est.confidence, 4),
-                                                "transpose_held_back": True},
+                                        values={**found, "transpose_held_back": True},
                                         thresholds=thresholds)
-            values = {"transpose": 0, "transpose_held_back": True, "transpose_folded": 0,
+            values = {**found, "transpose": 0, "transpose_held_back": True, "transpose_folded": 0,
                       "augment": extra,
                       "augment_folded": sum(fold_count(piece.notes, e) for e in extra)}
             return StageResult.keep(detail=f"not transposed: {why}", values=values,
@@ -138,7 +139,7 @@ class Transpose(Stage):
         shift = smallest_shift(pc, target, self.opts["direction"])
         folded = fold_count(piece.notes, shift)
         folded_aug = sum(fold_count(piece.notes, shift + e) for e in extra)
-        values = {"transpose": shift, "transpose_held_back": False, "transpose_folded": folded,
+        values = {**found, "transpose": shift, "transpose_held_back": False, "transpose_folded": folded,
                   "augment": extra, "augment_folded": folded_aug}
         detail = f"{key} shifted {shift:+d} semitones"
         if folded:
