@@ -3,6 +3,7 @@ takes to tell a value from the limit it was held against. No numpy and no stage:
 drop sentences and ``explain`` both print through it."""
 from __future__ import annotations
 
+import math
 from typing import Any, Iterable
 
 #: Significant digits that tell any two doubles apart (IEEE 754 binary64: 17).
@@ -10,9 +11,14 @@ ALL_DIGITS = 17
 
 
 def number(value: Any, digits: int = 3) -> str:
-    """A float with ``digits`` significant digits (``:g``: trailing zeros dropped); any other
-    value as ``str`` gives it (an int is exact)."""
-    return f"{value:.{digits}g}" if isinstance(value, float) else str(value)
+    """A float with ``digits`` significant digits (``:g``: trailing zeros dropped), its whole
+    part in full when that has more digits (1500, not 1.5e+03: an audit found limits printed
+    so); any other value as ``str`` gives it (an int is exact)."""
+    if not isinstance(value, float):
+        return str(value)
+    if math.isfinite(value) and abs(value) >= 10 ** digits:
+        return f"{value:.0f}"
+    return f"{value:.{digits}g}"
 
 
 def digits_apart(value: Any, limits: Iterable[Any], digits: int = 3) -> int:

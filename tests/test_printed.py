@@ -25,3 +25,11 @@ def test_a_value_against_several_limits_and_values_that_are_not_numbers():
     assert digits_apart(600.0, [8.0, 1200.0]) == 3
     assert digits_apart(7.999992, [8.0, None, [1, 2], True], 4) == 6
     assert digits_apart("C major", [8.0]) == 3
+
+
+def test_large_numbers_print_their_whole_part():
+    # an audit found the default max_seconds printed as 1.2e+03 in a drop sentence
+    assert compared(1500.0, 1200.0) == ("1500", "1200")
+    assert compared(1200.4, 1200.0) == ("1200.4", "1200")
+    assert number(2_000_000.0) == "2000000" and number(float("inf")) == "inf"
+    assert number(0.00012) == "0.00012"

@@ -228,7 +228,8 @@ class Filter(Stage):
 
     name = "filter"
     kind = "file"
-    version = 2  # 2: a drop's detail prints a value apart from its limit (7.99998 s < 8 s)
+    version = 3  # 2: a drop's detail prints a value apart from its limit (7.99998 s < 8 s); 3: large
+    # values with their whole part (1500 s > 1200 s, not 1.5e+03 s > 1.2e+03 s)
     doc = ("Measures length and density of each piece and drops those outside the limits; "
            "every limit accepts null to switch its rule off.")
     options = (
