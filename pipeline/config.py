@@ -192,17 +192,22 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
     except ConfigError as e:
         problems.append(e)
     stages = _parse_stages(raw.get("stages"), problems)
-    metadata = Metadata()
+    metadata: Metadata | None = Metadata()
     if raw.get("metadata") is not None:
         if not isinstance(raw["metadata"], str) or not raw["metadata"]:
             problems.append(ConfigError(f"'metadata' must be the path of a CSV table, got "
                                         f"{raw['metadata']!r}", location="metadata"))
+            metadata = None
         else:
             try:
                 metadata = load_metadata(raw["metadata"])
             except ConfigError as e:
                 problems.append(e)
-    problems.extend(_check_field_names(stages, metadata))
+                metadata = None  # its columns are unknown: names are not checked against them
+    if metadata is None:
+        metadata = Metadata()
+    else:  # an audit: one mistake in the table also gave a false "not a column" error
+        problems.extend(_check_field_names(stages, metadata))
     for p in problems:
         p.file = p.file or source
     if len(problems) == 1:

@@ -613,6 +613,25 @@ def test_bad_metadata_tables_are_config_errors_naming_the_line(tmp_path, text, m
                       "stages": ["validate", "split"]})
 
 
+def test_a_bad_metadata_table_is_reported_once(tmp_path):
+    """A mistake in the table is its one error: the names group_fields and metadata_exclude give
+    are not checked against columns the table's error left unknown (an audit found a false
+    "'composer' is neither a manifest field nor a metadata column" beside a path given twice)."""
+    from pipeline.config import parse_config
+    from pipeline.errors import ConfigError
+    table = tmp_path / "meta.csv"
+    table.write_text("source,composer\nx.mid,A\nx.mid,B\n")
+    with pytest.raises(ConfigError) as err:
+        parse_config({"input": "in", "output": "out", "metadata": str(table),
+                      "stages": ["validate", {"filter": {"metadata_exclude": {"composer": ["A"]}}},
+                                 {"split": {"group_fields": ["composer"]}}]})
+    assert type(err.value) is ConfigError and "has a row already" in err.value.reason
+    with pytest.raises(ConfigError) as err:  # a metadata value that is no path: the same
+        parse_config({"input": "in", "output": "out", "metadata": 3,
+                      "stages": ["validate", {"split": {"group_fields": ["composer"]}}]})
+    assert type(err.value) is ConfigError and "must be the path of a CSV table" in err.value.reason
+
+
 def test_group_fields_must_exist_and_suggest_the_nearest(tmp_path):
     from pipeline.config import parse_config
     from pipeline.errors import ConfigError
