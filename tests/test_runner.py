@@ -734,3 +734,17 @@ def test_content_marks_answer_membership_like_a_set():
         want.add(order[i])
     for sha in order + ["%064x" % 99, ""]:
         assert (sha in marks) == (sha in want)
+
+
+def test_a_run_without_the_compiled_decoder_says_so(tmp_path, monkeypatch):
+    """Without a C compiler the package installs with the pure-Python decoder, and pip shows
+    its build warning only with -v (an audit): the run's table says it, every run."""
+    import pipeline.engine.runner as runner_module
+    inp = tmp_path / "in"
+    shutil.copytree(DEMO / "practice", inp)
+    monkeypatch.setattr(runner_module, "HAVE_ACCEL", False)
+    report = _run(tmp_path / "out", inp)
+    assert any("compiled decoder is not installed" in n for n in report.notes)
+    monkeypatch.setattr(runner_module, "HAVE_ACCEL", True)
+    report = _run(tmp_path / "out2", inp)
+    assert not any("compiled decoder" in n for n in report.notes)
