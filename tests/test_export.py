@@ -702,6 +702,37 @@ def test_open_export_refuses_another_format_and_load_gives_drum_arrays(demo_out,
         open_export(out, "events").load(f"{e['key']}.drums")
 
 
+# time options are whole steps --------------------------------------------------------------
+@pytest.mark.parametrize("args, message", [
+    # before: --step 6 --max-shift 10 made 12 s shifts; windows and hops were rounded to frames
+    (["--format", "events", "--step", "6", "--max-shift", "10"],
+     "--max-shift 10 s is not a whole multiple of the step (--step 6 s); the nearest valid value is 6 s"),
+    (["--format", "events", "--step", "0.025", "--max-shift", "0.04"],
+     "--max-shift 0.04 s is not a whole multiple of the step (--step 0.025 s); the nearest valid values "
+     "are 0.025 and 0.05 s"),
+    (["--format", "events", "--step", "0.03", "--max-shift", "0.1"], "the nearest valid values are 0.09 and 0.12 s"),
+    (["--format", "pianoroll", "--window", "1.03", "--hop", "0.1"],
+     "--window 1.03 seconds is not a whole multiple of the frame (--step 0.05 s); the nearest valid values "
+     "are 1 and 1.05 seconds"),
+    (["--format", "pianoroll", "--window", "1", "--hop", "0.125"], "--hop 0.125 seconds is not a whole multiple"),
+    (["--format", "pianoroll", "--per-beat", "4", "--window", "1.1"],
+     "--window 1.1 beats is not a whole multiple of the frame (--per-beat 4: 0.25 beats); the nearest valid "
+     "values are 1 and 1.25 beats"),
+])
+def test_time_options_that_are_not_whole_steps_exit_2(tmp_path, capsys, args, message):
+    assert main(["export", str(tmp_path / "nowhere"), *args]) == 2
+    assert message in capsys.readouterr().err
+
+
+def test_whole_step_time_options_are_accepted_despite_float_error_and_recorded_in_frames():
+    opts = ExportOptions("pianoroll", step=0.1, window=0.3, hop=0.7).checked()  # 0.3 / 0.1 = 2.9999...
+    assert (opts.recorded()["window_frames"], opts.recorded()["hop_frames"]) == (3, 7)
+    opts = ExportOptions("events", step=0.03, max_shift=0.09).checked()
+    assert opts.max_shift_steps == 3
+    assert ExportOptions("events", step=0.001, max_shift=10).checked().max_shift_steps == 10_000
+    assert ExportOptions("pianoroll", per_beat=3, window=1 / 3 * 5).checked().recorded()["window_frames"] == 5
+
+
 # pieces with no pitched note, error texts ----------------------------------------------------
 def _drums_only_midi() -> bytes:
     import mido  # reference writer: mido

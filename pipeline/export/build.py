@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import time
 import zipfile
@@ -124,17 +125,22 @@ class ExportOptions:
         for flag, value in (("--window", window), ("--hop", hop)):
             if value is not None and not value <= MAX_WINDOW:  # NaN and inf fail too
                 raise UsageError(f"{flag} must be at most {MAX_WINDOW:g} {unit}, got {value}")
+        frame_name = (f"the {'frame' if roll else 'step'} (--step {step:g} s)" if step is not None
+                      else f"the frame (--per-beat {self.per_beat}: {frame:g} beats)")
         if window is not None:
             if window < frame - 1e-12:
                 raise UsageError(f"--window ({window} {unit}) is shorter than one frame ({frame:g} {unit})")
             hop = window if hop is None else hop
             if hop < frame - 1e-12:
                 raise UsageError(f"--hop ({hop} {unit}) is shorter than one frame ({frame:g} {unit})")
+            _whole_steps("--window", window, frame, frame_name, unit, MAX_WINDOW)
+            _whole_steps("--hop", hop, frame, frame_name, unit, MAX_WINDOW)
         if not roll:
             if not self.max_shift >= step:  # type: ignore[operator]
                 raise UsageError(f"--max-shift ({self.max_shift} s) must be at least one step ({step} s)")
             if not self.max_shift <= MAX_SHIFT_S:  # inf fails too
                 raise UsageError(f"--max-shift must be at most {MAX_SHIFT_S:g} seconds, got {self.max_shift}")
+            _whole_steps("--max-shift", self.max_shift, step, frame_name, "s", MAX_SHIFT_S)  # type: ignore[arg-type]
             if not 1 <= self.velocity_bins <= 128:
                 raise UsageError(f"--velocity-bins must be from 1 to 128, got {self.velocity_bins}")
         if self.previews < 0:
@@ -153,6 +159,8 @@ class ExportOptions:
         if self.format == "pianoroll":
             for name in ("max_shift", "velocity_bins"):
                 d.pop(name)
+            if self.window is not None:  # the frame counts the windows are cut with
+                d["window_frames"], d["hop_frames"] = self.frames(self.window), self.frames(self.hop)  # type: ignore[arg-type]
             if not self.sustain:  # recorded only when asked for: an export without it keeps
                 d.pop("sustain")  # the options (and fingerprint) it had before the option existed
         else:
@@ -169,6 +177,25 @@ class ExportOptions:
         """A length in seconds (or beats with per_beat) as a whole number of frames (>= 1)."""
         per = self.per_beat if self.per_beat is not None else 1.0 / self.step  # type: ignore[operator]
         return max(1, int(round(length * per)))
+
+
+#: Relative tolerance for "a whole number of steps": float error of values such as 0.3 / 0.1.
+WHOLE_TOLERANCE = 1e-9
+
+
+def _whole_steps(flag: str, value: float, step: float, step_name: str, unit: str, limit: float) -> int:
+    """``value`` as a whole number of ``step``s; a UsageError naming the option, the value, the
+    step (``step_name``) and the nearest valid values when it is not one (within
+    ``WHOLE_TOLERANCE``), or when that many steps exceed ``limit``."""
+    n = round(value / step)
+    if abs(value - n * step) > WHOLE_TOLERANCE * max(abs(value), step):
+        below, above = math.floor(value / step), math.floor(value / step) + 1
+        near = [f"{k * step:.10g}" for k in (below, above) if k >= 1 and k * step <= limit * (1 + WHOLE_TOLERANCE)]
+        valid = f"the nearest valid value is {near[0]}" if len(near) == 1 else f"the nearest valid values are {' and '.join(near)}"
+        raise UsageError(f"{flag} {value:g} {unit} is not a whole multiple of {step_name}; {valid} {unit}")
+    if n * step > limit * (1 + WHOLE_TOLERANCE):
+        raise UsageError(f"{flag} must be at most {limit:g} {unit}, got {value:g} ({n} steps of {step:g} {unit})")
+    return int(n)
 
 
 @dataclass
