@@ -782,3 +782,52 @@ def test_a_file_as_output_and_a_damaged_normalized_file_say_what_they_are(demo_o
     assert str(victim) in err and "cannot be decoded" in err and "rerun `midisift run`" in err
     assert "cut off during download" not in err
 
+
+# the pedal across a program change, the roll's length ---------------------------------------
+def _program_change_under_pedal() -> bytes:
+    """120 bpm, 480 ticks a beat (a frame of 0.05 s is 48 ticks), all on track 1, channel 0:
+    note 55 (frame 0, ended before the pedal); pedal down at frame 1; notes 60 (frames 0-1) and
+    62 (frame 3) on program 0, the program changed to 40 at frame 5, note 64 (frame 6); pedal up
+    at frame 10; then a controller at frame 30, after the last note. (pretty_midi gives a
+    controller to the instrument of the channel's current program once that instrument has a
+    finished note: note 55 makes the pedal-down program 0's.)"""
+    import mido  # reference writer: mido
+    mid = mido.MidiFile(type=1, ticks_per_beat=480)
+    mid.tracks.append(mido.MidiTrack([mido.MetaMessage("set_tempo", tempo=500_000, time=0)]))
+    mid.tracks.append(mido.MidiTrack([
+        mido.Message("program_change", channel=0, program=0, time=0),
+        mido.Message("note_on", channel=0, note=55, velocity=80, time=0),
+        mido.Message("note_on", channel=0, note=60, velocity=80, time=0),
+        mido.Message("note_off", channel=0, note=55, time=48),
+        mido.Message("control_change", channel=0, control=64, value=127, time=0),
+        mido.Message("note_off", channel=0, note=60, time=48),
+        mido.Message("note_on", channel=0, note=62, velocity=80, time=48),
+        mido.Message("note_off", channel=0, note=62, time=48),
+        mido.Message("program_change", channel=0, program=40, time=48),
+        mido.Message("note_on", channel=0, note=64, velocity=80, time=48),
+        mido.Message("note_off", channel=0, note=64, time=48),
+        mido.Message("control_change", channel=0, control=64, value=0, time=144),
+        mido.Message("control_change", channel=0, control=7, value=90, time=960)]))
+    buf = io.BytesIO()
+    mid.save(file=buf)
+    return buf.getvalue()
+
+
+def test_the_pedal_is_the_tracks_and_channels_whatever_the_program_and_the_roll_ends_at_the_last_note():
+    # README, Training arrays: kept behaviour, documented where pretty_midi differs (audit s17)
+    data = _program_change_under_pedal()
+    piece = decode(data)
+    held, _ = pianoroll(piece, step=0.05, sustain=True)
+    plain, _ = pianoroll(piece, step=0.05)
+    expected_held = {55: (0, 1), 60: (0, 10), 62: (3, 10), 64: (6, 10)}
+    expected_plain = {55: (0, 1), 60: (0, 2), 62: (3, 4), 64: (6, 7)}
+    for p, (a, b) in expected_held.items():
+        assert np.flatnonzero(held[:, p]).tolist() == list(range(a, b)), p
+    for p, (a, b) in expected_plain.items():
+        assert np.flatnonzero(plain[:, p]).tolist() == list(range(a, b)), p
+    assert held.shape == (10, 128) and plain.shape == (7, 128)  # ends with the last note (as held)
+    pretty_midi = pytest.importorskip("pretty_midi")  # reference: its pedal is an instrument's
+    ref = pretty_midi.PrettyMIDI(io.BytesIO(data)).get_piano_roll(fs=20).T
+    for p, (a, b) in expected_plain.items():  # its pedal holds nothing here
+        assert np.flatnonzero(ref[:, p]).tolist() == list(range(a, b)), p
+    assert len(ref) == 30  # its roll reaches the controller after the last note (1.5 s)
