@@ -658,6 +658,9 @@ def test_index_and_export_json_of_two_exports_are_an_error_not_a_misreading(demo
     (folder / "export.json").write_text(stale)
     with pytest.raises(MidisiftError, match="of different exports"):
         open_export(folder)
+    (folder / "export.json").unlink()  # a first export stopped right after its index
+    with pytest.raises(MidisiftError, match="export.json is missing beside index.jsonl"):
+        open_export(folder)
 
 
 # configured parts, formats, drum keys ------------------------------------------------------

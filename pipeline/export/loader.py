@@ -37,7 +37,11 @@ class ExportFolder:
                              file=str(self.folder))
         with open(index, encoding="utf-8") as fh:
             self.entries: list[dict[str, Any]] = [json.loads(line) for line in fh if line.strip()]
-        self.meta: dict[str, Any] = self._json("export.json") or {}
+        meta = self._json("export.json")
+        if meta is None:
+            raise MidisiftError(f"export.json is missing beside index.jsonl (an export was stopped before "
+                                f"writing it); {RERUN}", file=str(self.folder))
+        self.meta: dict[str, Any] = meta
         self.vocabulary: dict[str, Any] | None = self._json("vocabulary.json")
         self._check_consistent()
         self._by_key = {e["key"]: e for e in self.entries}
