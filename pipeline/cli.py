@@ -94,9 +94,11 @@ def _parser() -> argparse.ArgumentParser:
     x.add_argument("--drums", default="omit", metavar="omit|apart", help="omit (default): leave the drum channel out; "
                    "apart: write it as its own array beside each piece's")
     x.add_argument("--window", type=float, metavar="W", help="pianoroll: fixed windows of this length (seconds, "
-                   "or beats with --per-beat)")
-    x.add_argument("--hop", type=float, metavar="H", help="pianoroll: a window starts every HOP (default: the window)")
-    x.add_argument("--max-shift", type=float, metavar="S", help="events: longest time shift, seconds (default 1)")
+                   "or beats with --per-beat; a whole number of frames)")
+    x.add_argument("--hop", type=float, metavar="H", help="pianoroll: a window starts every HOP (default: the window; "
+                   "a whole number of frames)")
+    x.add_argument("--max-shift", type=float, metavar="S", help="events: longest time shift, seconds (default 1; "
+                   "a whole number of steps)")
     x.add_argument("--velocity-bins", type=int, metavar="N", help="events: velocity bins (default 32)")
     x.add_argument("--previews", type=int, metavar="N", help="pianoroll: PNG previews of the first N pieces")
     x.add_argument("--sustain", action="store_const", const=True, help="pianoroll: the sustain pedal "

@@ -11,6 +11,7 @@ from __future__ import annotations
 import io
 import json
 import math
+import re
 import shutil
 from pathlib import Path
 
@@ -19,6 +20,7 @@ import pytest
 
 from pipeline.cli import main
 from pipeline.config import load_config
+from pipeline.errors import MidisiftError, UsageError
 from pipeline.export import ExportOptions, export_output, open_export
 from pipeline.export.encodings import decode_events, encode_events, pianoroll, vocabulary, windows
 from pipeline.export.png import png_bytes, roll_image
@@ -530,3 +532,305 @@ def test_png_writer_round_trips_through_pillow():
         assert im.size == (13, 7) and np.array_equal(np.asarray(im), gray)
     img = roll_image(np.array([[0, 100], [0, 0]], dtype=np.uint8), row_px=1)
     assert img.shape[1] == 2 and (img < 255).sum() == 1
+
+
+# an export never damages the one that is there (audit s17) ------------------------------------
+def _arrays(folder: Path) -> dict[str, np.ndarray]:
+    return dict(open_export(folder).iter_part())
+
+
+def _copy_run(demo_out: Path, tmp_path: Path) -> Path:
+    out = tmp_path / "out"
+    shutil.copytree(demo_out, out, ignore=shutil.ignore_patterns("export"))
+    return out
+
+
+class _Stopped(BaseException):
+    """Stands for the kill of an export process (nothing after it runs, as with SIGKILL)."""
+
+
+def test_an_export_stopped_before_its_index_leaves_the_previous_export_intact(demo_out, tmp_path, monkeypatch):
+    # before: an export with other options numbered its shards from 00000 again and wrote over
+    # the previous export's shards; stopped before its index, the old index served its arrays
+    # (wrong shapes, KeyErrors) and a rerun of the old options "reused" them
+    from pipeline.export import build
+    out = _copy_run(demo_out, tmp_path)
+    folder = out / "export" / "pianoroll"
+    export_output(out, ExportOptions("pianoroll", shard_mb=0.05))
+    before = _arrays(folder)
+    index = (folder / "index.jsonl").read_bytes()
+    real, saved = build._save_shard, []
+
+    def save_then_stop(path: Path, arrays: dict) -> tuple[int, str]:
+        signature = real(path, arrays)
+        saved.append(path)
+        if len(saved) == 2:
+            raise _Stopped
+        return signature
+    monkeypatch.setattr(build, "_save_shard", save_then_stop)
+    with pytest.raises(_Stopped):
+        export_output(out, ExportOptions("pianoroll", step=0.1, shard_mb=0.05))
+    monkeypatch.undo()
+    assert len(saved) == 2 and all(p.is_file() for p in saved)
+    assert (folder / "index.jsonl").read_bytes() == index
+    after = _arrays(folder)  # the previous export, untouched
+    assert after.keys() == before.keys() and all(np.array_equal(after[k], before[k]) for k in before)
+    again = export_output(out, ExportOptions("pianoroll", shard_mb=0.05))
+    assert again.computed == 0 and again.shards_removed == 2  # the stopped export's shards
+    assert not any(p.exists() for p in saved)
+    after = _arrays(folder)
+    assert all(np.array_equal(after[k], before[k]) for k in before)
+    # the other options' completed export names its shards apart, then removes the old ones
+    other = export_output(out, ExportOptions("pianoroll", step=0.1, shard_mb=0.05))
+    names = {e["file"] for e in open_export(folder).entries}
+    assert other.shards_removed == again.shards_kept and {p.name for p in folder.glob("*/*.npz")} == {
+        n.split("/")[1] for n in names}
+
+
+def test_a_shard_that_is_not_the_one_the_index_describes_is_refused_and_recomputed(demo_out, tmp_path):
+    # before: reuse checked only that the shard file existed; the loader served what it held
+    out = _copy_run(demo_out, tmp_path)
+    folder = out / "export" / "pianoroll"
+    export_output(out, ExportOptions("pianoroll", step=0.1, shard_mb=0.05))
+    other = {p.name: p.read_bytes() for p in folder.glob("train/*.npz")}
+    export_output(out, ExportOptions("pianoroll", shard_mb=0.05))
+    before = _arrays(folder)
+    entries = open_export(folder).entries
+    first = entries[0]
+    # the same members at step 0.1 (the arrays of other options) in the shard's place
+    shard = folder / first["file"]
+    with np.load(shard) as z:
+        members = list(z.files)
+    with np.load(io.BytesIO(next(iter(other.values())))) as z:
+        shrunk = {k: z[k] for k in z.files}
+    fake = {k: shrunk.get(k, np.zeros((3, 128), np.uint8)) for k in members}
+    np.savez(shard, **fake)
+    with pytest.raises(MidisiftError, match="index.jsonl says") as err:
+        open_export(folder).load(first["key"])
+    assert str(shard) in str(err.value) and "rerun `midisift export`" in str(err.value)
+    r = export_output(out, ExportOptions("pianoroll", shard_mb=0.05))
+    assert r.computed == len(members) and r.shards_written == 1 and r.shards_removed == 1
+    after = _arrays(folder)
+    assert all(np.array_equal(after[k], before[k]) for k in before)
+    # a deleted shard: a clear error naming it (before: a bare FileNotFoundError)
+    gone = folder / open_export(folder).entries[-1]["file"]
+    gone.unlink()
+    with pytest.raises(MidisiftError, match="a shard index.jsonl names is missing") as err:
+        list(open_export(folder).iter_part())
+    assert str(gone) in str(err.value)
+
+
+def test_an_export_of_the_older_layout_is_refused_by_the_loader_and_rewritten(demo_out, tmp_path):
+    # the layout before audit s17: shards <part>-00000.npz, no fingerprint nor shard sha256 in
+    # the index lines, no "layout" in export.json
+    out = _copy_run(demo_out, tmp_path)
+    folder = out / "export" / "events"
+    export_output(out, ExportOptions("events"))
+    before = _arrays(folder)
+    lines = []
+    for n, e in enumerate(open_export(folder).entries):
+        old = f"{e['part']}/{e['part']}-00000.npz"
+        if (folder / e["file"]).exists():
+            (folder / e["file"]).rename(folder / old)
+        for name in ("fingerprint", "shard_bytes", "shard_sha256", "no_pitched_note"):
+            e.pop(name)
+        lines.append(json.dumps({**e, "file": old}) + "\n")
+    (folder / "index.jsonl").write_text("".join(lines))
+    meta = json.loads((folder / "export.json").read_text())
+    del meta["layout"]
+    (folder / "export.json").write_text(json.dumps(meta))
+    with pytest.raises(UsageError, match="older midisift"):
+        open_export(folder)
+    r = export_output(out, ExportOptions("events"))
+    assert r.computed == r.pieces and r.shards_removed == 3
+    assert not any(p.name.endswith("-00000.npz") and p.name.count("-") == 1 for p in folder.glob("*/*.npz"))
+    after = _arrays(folder)
+    assert after.keys() == before.keys() and all(np.array_equal(after[k], before[k]) for k in before)
+
+
+def test_index_and_export_json_of_two_exports_are_an_error_not_a_misreading(demo_out, tmp_path):
+    # an export stopped between replacing index.jsonl and export.json
+    out = _copy_run(demo_out, tmp_path)
+    folder = out / "export" / "events"
+    export_output(out, ExportOptions("events"))
+    stale = (folder / "export.json").read_text()
+    export_output(out, ExportOptions("events", step=0.02))
+    (folder / "export.json").write_text(stale)
+    with pytest.raises(MidisiftError, match="of different exports"):
+        open_export(folder)
+    (folder / "export.json").unlink()  # a first export stopped right after its index
+    with pytest.raises(MidisiftError, match="export.json is missing beside index.jsonl"):
+        open_export(folder)
+
+
+# configured parts, formats, drum keys ------------------------------------------------------
+def test_empty_configured_parts_are_listed_and_give_nothing(tmp_path):
+    # before: export.json listed only parts with pieces; iter_part("valid") raised
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    for seed in (1, 2):
+        (corpus / f"piece{seed}.mid").write_bytes(random_midi(seed, n_notes=60, n_tracks=2))
+    config = tmp_path / "two.yaml"
+    config.write_text("input: in\noutput: out\nworkers: 1\nstages:\n  - validate: {}\n"
+                      "  - split: {ratios: {train: 0.8, valid: 0.1, test: 0.1}}\n")
+    out = tmp_path / "out"
+    _run(out, corpus, config)
+    assert (out / "splits" / "valid.txt").read_text() == "" == (out / "splits" / "test.txt").read_text()
+    export_output(out, ExportOptions("pianoroll"))
+    meta = json.loads((out / "export" / "pianoroll" / "export.json").read_text())
+    assert meta["parts"] == {"train": 2, "valid": 0, "test": 0}
+    ex = open_export(out, "pianoroll")
+    assert ex.parts == ["train", "valid", "test"]
+    assert list(ex.iter_part("valid")) == [] == list(ex.iter_part("test"))
+    assert len(list(ex.iter_part("train"))) == 2
+    with pytest.raises(UsageError, match="no part 'nope'"):
+        list(ex.iter_part("nope"))
+
+
+def test_open_export_refuses_another_format_and_load_gives_drum_arrays(demo_out, tmp_path):
+    out = _copy_run(demo_out, tmp_path)
+    export_output(out, ExportOptions("events", drums="apart"))
+    events_folder = out / "export" / "events"
+    with pytest.raises(UsageError, match="of format 'events', not 'pianoroll'"):
+        open_export(events_folder, "pianoroll")
+    ex = open_export(out, "events")
+    drums = dict(ex.iter_part(drums=True))
+    e = next(e for e in ex.entries if drums[e["key"]].size)
+    assert np.array_equal(ex.load(f"{e['key']}.drums"), drums[e["key"]])
+    assert list(ex.load(e["key"]).shape) == e["shape"]
+    with pytest.raises(KeyError):
+        ex.load("0123456789abcdef.drums")
+    export_output(out, ExportOptions("events"))
+    with pytest.raises(UsageError, match="no drum arrays"):
+        open_export(out, "events").load(f"{e['key']}.drums")
+
+
+# time options are whole steps --------------------------------------------------------------
+@pytest.mark.parametrize("args, message", [
+    # before: --step 6 --max-shift 10 made 12 s shifts; windows and hops were rounded to frames
+    (["--format", "events", "--step", "6", "--max-shift", "10"],
+     "--max-shift 10 s is not a whole multiple of the step (--step 6 s); the nearest valid value is 6 s"),
+    (["--format", "events", "--step", "0.025", "--max-shift", "0.04"],
+     "--max-shift 0.04 s is not a whole multiple of the step (--step 0.025 s); the nearest valid values "
+     "are 0.025 and 0.05 s"),
+    (["--format", "events", "--step", "0.03", "--max-shift", "0.1"], "the nearest valid values are 0.09 and 0.12 s"),
+    (["--format", "pianoroll", "--window", "1.03", "--hop", "0.1"],
+     "--window 1.03 seconds is not a whole multiple of the frame (--step 0.05 s); the nearest valid values "
+     "are 1 and 1.05 seconds"),
+    (["--format", "pianoroll", "--window", "1", "--hop", "0.125"], "--hop 0.125 seconds is not a whole multiple"),
+    (["--format", "pianoroll", "--per-beat", "4", "--window", "1.1"],
+     "--window 1.1 beats is not a whole multiple of the frame (--per-beat 4: 0.25 beats); the nearest valid "
+     "values are 1 and 1.25 beats"),
+])
+def test_time_options_that_are_not_whole_steps_exit_2(tmp_path, capsys, args, message):
+    assert main(["export", str(tmp_path / "nowhere"), *args]) == 2
+    assert message in capsys.readouterr().err
+
+
+def test_whole_step_time_options_are_accepted_despite_float_error_and_recorded_in_frames():
+    opts = ExportOptions("pianoroll", step=0.1, window=0.3, hop=0.7).checked()  # 0.3 / 0.1 = 2.9999...
+    assert (opts.recorded()["window_frames"], opts.recorded()["hop_frames"]) == (3, 7)
+    opts = ExportOptions("events", step=0.03, max_shift=0.09).checked()
+    assert opts.max_shift_steps == 3
+    assert ExportOptions("events", step=0.001, max_shift=10).checked().max_shift_steps == 10_000
+    assert ExportOptions("pianoroll", per_beat=3, window=1 / 3 * 5).checked().recorded()["window_frames"] == 5
+
+
+# pieces with no pitched note, error texts ----------------------------------------------------
+def _drums_only_midi() -> bytes:
+    import mido  # reference writer: mido
+    mid = mido.MidiFile(type=1, ticks_per_beat=480)
+    tr = mido.MidiTrack()
+    for i in range(64):
+        tr.append(mido.Message("note_on", channel=9, note=36 + i % 5, velocity=100, time=0 if i == 0 else 120))
+        tr.append(mido.Message("note_off", channel=9, note=36 + i % 5, velocity=0, time=120))
+    mid.tracks.append(tr)
+    buf = io.BytesIO()
+    mid.save(file=buf)
+    return buf.getvalue()
+
+
+def test_pieces_with_no_pitched_note_are_counted(tmp_path, capsys):
+    # before: a drum-only file exported as an empty array without a word
+    corpus = tmp_path / "in"
+    corpus.mkdir()
+    (corpus / "drums.mid").write_bytes(_drums_only_midi())
+    (corpus / "tune.mid").write_bytes(random_midi(3, n_notes=80, n_tracks=2))
+    config = tmp_path / "plain.yaml"
+    config.write_text("input: in\noutput: out\nworkers: 1\nstages:\n  - validate: {}\n")
+    out = tmp_path / "out"
+    _run(out, corpus, config)
+    for fmt, empty_shape in (("pianoroll", [0, 128]), ("events", [0])):
+        assert main(["export", str(out), "--format", fmt]) == 0
+        assert re.search(r"pieces with no pitched note\s+1\n", capsys.readouterr().out)
+        folder = out / "export" / fmt
+        assert json.loads((folder / "export.json").read_text())["no_pitched_note"] == 1
+        shapes = sorted(e["shape"] for e in open_export(folder).entries)
+        assert shapes[0] == empty_shape and shapes[1] != empty_shape
+    assert main(["export", str(out), "--format", "pianoroll", "--window", "2", "--quiet"]) == 0
+    ex = open_export(out, "pianoroll")
+    assert ex.meta["no_pitched_note"] == 1
+    assert sorted(e["shape"] for e in ex.entries)[0] == [1, 40, 128]  # one silent window
+
+
+def test_a_file_as_output_and_a_damaged_normalized_file_say_what_they_are(demo_out, tmp_path, capsys):
+    (tmp_path / "afile").write_text("x")
+    assert main(["export", str(tmp_path / "afile"), "--format", "events"]) == 2
+    assert "this is a file, not an output folder" in capsys.readouterr().err
+    out = _copy_run(demo_out, tmp_path)
+    victim = out / next(iter(_kept_outputs(out)))
+    victim.write_bytes(victim.read_bytes()[:40])
+    assert main(["export", str(out), "--format", "events"]) == 1
+    err = capsys.readouterr().err
+    assert str(victim) in err and "cannot be decoded" in err and "rerun `midisift run`" in err
+    assert "cut off during download" not in err
+
+
+# the pedal across a program change, the roll's length ---------------------------------------
+def _program_change_under_pedal() -> bytes:
+    """120 bpm, 480 ticks a beat (a frame of 0.05 s is 48 ticks), all on track 1, channel 0:
+    note 55 (frame 0, ended before the pedal); pedal down at frame 1; notes 60 (frames 0-1) and
+    62 (frame 3) on program 0, the program changed to 40 at frame 5, note 64 (frame 6); pedal up
+    at frame 10; then a controller at frame 30, after the last note. (pretty_midi gives a
+    controller to the instrument of the channel's current program once that instrument has a
+    finished note: note 55 makes the pedal-down program 0's.)"""
+    import mido  # reference writer: mido
+    mid = mido.MidiFile(type=1, ticks_per_beat=480)
+    mid.tracks.append(mido.MidiTrack([mido.MetaMessage("set_tempo", tempo=500_000, time=0)]))
+    mid.tracks.append(mido.MidiTrack([
+        mido.Message("program_change", channel=0, program=0, time=0),
+        mido.Message("note_on", channel=0, note=55, velocity=80, time=0),
+        mido.Message("note_on", channel=0, note=60, velocity=80, time=0),
+        mido.Message("note_off", channel=0, note=55, time=48),
+        mido.Message("control_change", channel=0, control=64, value=127, time=0),
+        mido.Message("note_off", channel=0, note=60, time=48),
+        mido.Message("note_on", channel=0, note=62, velocity=80, time=48),
+        mido.Message("note_off", channel=0, note=62, time=48),
+        mido.Message("program_change", channel=0, program=40, time=48),
+        mido.Message("note_on", channel=0, note=64, velocity=80, time=48),
+        mido.Message("note_off", channel=0, note=64, time=48),
+        mido.Message("control_change", channel=0, control=64, value=0, time=144),
+        mido.Message("control_change", channel=0, control=7, value=90, time=960)]))
+    buf = io.BytesIO()
+    mid.save(file=buf)
+    return buf.getvalue()
+
+
+def test_the_pedal_is_the_tracks_and_channels_whatever_the_program_and_the_roll_ends_at_the_last_note():
+    # README, Training arrays: kept behaviour, documented where pretty_midi differs (audit s17)
+    data = _program_change_under_pedal()
+    piece = decode(data)
+    held, _ = pianoroll(piece, step=0.05, sustain=True)
+    plain, _ = pianoroll(piece, step=0.05)
+    expected_held = {55: (0, 1), 60: (0, 10), 62: (3, 10), 64: (6, 10)}
+    expected_plain = {55: (0, 1), 60: (0, 2), 62: (3, 4), 64: (6, 7)}
+    for p, (a, b) in expected_held.items():
+        assert np.flatnonzero(held[:, p]).tolist() == list(range(a, b)), p
+    for p, (a, b) in expected_plain.items():
+        assert np.flatnonzero(plain[:, p]).tolist() == list(range(a, b)), p
+    assert held.shape == (10, 128) and plain.shape == (7, 128)  # ends with the last note (as held)
+    pretty_midi = pytest.importorskip("pretty_midi")  # reference: its pedal is an instrument's
+    ref = pretty_midi.PrettyMIDI(io.BytesIO(data)).get_piano_roll(fs=20).T
+    for p, (a, b) in expected_plain.items():  # its pedal holds nothing here
+        assert np.flatnonzero(ref[:, p]).tolist() == list(range(a, b)), p
+    assert len(ref) == 30  # its roll reaches the controller after the last note (1.5 s)

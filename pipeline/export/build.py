@@ -5,20 +5,28 @@ Layout of ``OUTPUT/export/<format>/``::
     index.jsonl          one line per exported file, in part order then key order
     export.json          the options used, their fingerprint, the encoding version
     vocabulary.json      (events) the token table
-    <part>/<part>-00000.npz  shards: many pieces' arrays by key, about ``shard_mb`` each
+    <part>/<part>-<fp>-00000.npz  shards: many pieces' arrays by key, about ``shard_mb`` each;
+                         ``<fp>`` is the start of the options' fingerprint
     previews/<key>.png   (pianoroll, with --previews N) time x pitch images of the first N pieces
 
 The files exported are those the split lists name (augmentation copies included, in the part
 of their file); ``key`` is the file's name without ``.mid`` (its id, plus the copy's suffix).
 
 Reruns write only what changed: a shard is kept untouched when every piece in it is still
-wanted, in the same part, with the same normalized bytes (sha256) and the same options;
-the pieces of every other shard, and new pieces, go into new shards.
+wanted, in the same part, with the same normalized bytes (sha256) and the same options, and
+the shard file still has the size and sha256 its index lines record; the pieces of every
+other shard, and new pieces, go into new shards.
+
+An export never writes over a shard its folder's index names: new shards take names no index
+line uses (another options' shards carry another fingerprint in their name), the index is
+replaced atomically once they are all written, and only then are the shards it no longer
+names removed. An export stopped at any point leaves the previous one readable as it was.
 """
 from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import time
 import zipfile
@@ -28,7 +36,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import MidisiftError, UsageError
+from ..errors import DecodeError, MidisiftError, UsageError
 from ..store.lock import OutputLock
 from ..store.atomic import write_atomic
 from ..midi.decode import decode_file
@@ -117,17 +125,22 @@ class ExportOptions:
         for flag, value in (("--window", window), ("--hop", hop)):
             if value is not None and not value <= MAX_WINDOW:  # NaN and inf fail too
                 raise UsageError(f"{flag} must be at most {MAX_WINDOW:g} {unit}, got {value}")
+        frame_name = (f"the {'frame' if roll else 'step'} (--step {step:g} s)" if step is not None
+                      else f"the frame (--per-beat {self.per_beat}: {frame:g} beats)")
         if window is not None:
             if window < frame - 1e-12:
                 raise UsageError(f"--window ({window} {unit}) is shorter than one frame ({frame:g} {unit})")
             hop = window if hop is None else hop
             if hop < frame - 1e-12:
                 raise UsageError(f"--hop ({hop} {unit}) is shorter than one frame ({frame:g} {unit})")
+            _whole_steps("--window", window, frame, frame_name, unit, MAX_WINDOW)
+            _whole_steps("--hop", hop, frame, frame_name, unit, MAX_WINDOW)
         if not roll:
             if not self.max_shift >= step:  # type: ignore[operator]
                 raise UsageError(f"--max-shift ({self.max_shift} s) must be at least one step ({step} s)")
             if not self.max_shift <= MAX_SHIFT_S:  # inf fails too
                 raise UsageError(f"--max-shift must be at most {MAX_SHIFT_S:g} seconds, got {self.max_shift}")
+            _whole_steps("--max-shift", self.max_shift, step, frame_name, "s", MAX_SHIFT_S)  # type: ignore[arg-type]
             if not 1 <= self.velocity_bins <= 128:
                 raise UsageError(f"--velocity-bins must be from 1 to 128, got {self.velocity_bins}")
         if self.previews < 0:
@@ -146,6 +159,8 @@ class ExportOptions:
         if self.format == "pianoroll":
             for name in ("max_shift", "velocity_bins"):
                 d.pop(name)
+            if self.window is not None:  # the frame counts the windows are cut with
+                d["window_frames"], d["hop_frames"] = self.frames(self.window), self.frames(self.hop)  # type: ignore[arg-type]
             if not self.sustain:  # recorded only when asked for: an export without it keeps
                 d.pop("sustain")  # the options (and fingerprint) it had before the option existed
         else:
@@ -162,6 +177,25 @@ class ExportOptions:
         """A length in seconds (or beats with per_beat) as a whole number of frames (>= 1)."""
         per = self.per_beat if self.per_beat is not None else 1.0 / self.step  # type: ignore[operator]
         return max(1, int(round(length * per)))
+
+
+#: Relative tolerance for "a whole number of steps": float error of values such as 0.3 / 0.1.
+WHOLE_TOLERANCE = 1e-9
+
+
+def _whole_steps(flag: str, value: float, step: float, step_name: str, unit: str, limit: float) -> int:
+    """``value`` as a whole number of ``step``s; a UsageError naming the option, the value, the
+    step (``step_name``) and the nearest valid values when it is not one (within
+    ``WHOLE_TOLERANCE``), or when that many steps exceed ``limit``."""
+    n = round(value / step)
+    if abs(value - n * step) > WHOLE_TOLERANCE * max(abs(value), step):
+        below, above = math.floor(value / step), math.floor(value / step) + 1
+        near = [f"{k * step:.10g}" for k in (below, above) if k >= 1 and k * step <= limit * (1 + WHOLE_TOLERANCE)]
+        valid = f"the nearest valid value is {near[0]}" if len(near) == 1 else f"the nearest valid values are {' and '.join(near)}"
+        raise UsageError(f"{flag} {value:g} {unit} is not a whole multiple of {step_name}; {valid} {unit}")
+    if n * step > limit * (1 + WHOLE_TOLERANCE):
+        raise UsageError(f"{flag} must be at most {limit:g} {unit}, got {value:g} ({n} steps of {step:g} {unit})")
+    return int(n)
 
 
 @dataclass
@@ -187,10 +221,12 @@ class ExportResult:
     shards_removed: int = 0
     seconds: float = 0.0
     parts: dict[str, int] = field(default_factory=dict)
+    no_pitched_note: int = 0  # pieces whose array holds no note (empty, or all silence)
 
     def table(self) -> str:
         lines = [f"{'pieces exported':<28}{self.pieces:>8}"]
         lines += [f"{'  ' + part:<28}{n:>8}" for part, n in self.parts.items()]
+        lines += [f"{'pieces with no pitched note':<28}{self.no_pitched_note:>8}"]
         lines += [f"{'computed / reused':<28}{self.computed:>8} / {self.reused}",
                   f"{'shards written / kept':<28}{self.shards_written:>8} / {self.shards_kept}",
                   f"{'shards removed':<28}{self.shards_removed:>8}",
@@ -201,6 +237,9 @@ class ExportResult:
 
 def finished_run(out_dir: Path) -> dict:
     """The summary of the output folder's last finished run; a clear error when there is none."""
+    if out_dir.exists() and not out_dir.is_dir():
+        raise UsageError("this is a file, not an output folder; give the folder a `midisift run` wrote",
+                         file=str(out_dir))
     if not out_dir.is_dir():
         raise UsageError("no such output folder; give the folder a `midisift run` wrote", file=str(out_dir))
     missing = [n for n in ("summary.json", "manifest.jsonl") if not (out_dir / n).is_file()]
@@ -219,8 +258,9 @@ def part_order(summary: dict, parts: Any) -> list[str]:
     return configured + sorted(p for p in parts if p not in configured)
 
 
-def wanted_files(out_dir: Path, summary: dict) -> list[Wanted]:
-    """Every normalized file of the run (split lists), with its id, source and part (manifest)."""
+def wanted_files(out_dir: Path, summary: dict) -> tuple[list[Wanted], list[str]]:
+    """Every normalized file of the run (split lists), with its id, source and part (manifest),
+    and every part that has a split list (empty ones included), in the config's order."""
     parts: dict[str, list[str]] = {}
     splits = out_dir / "splits"
     for p in sorted(splits.glob("*.txt")) if splits.is_dir() else ():
@@ -237,28 +277,57 @@ def wanted_files(out_dir: Path, summary: dict) -> list[Wanted]:
                 if rel:
                     source_of.setdefault(rel, row["source"])
     out: list[Wanted] = []
-    for part in part_order(summary, parts):
+    order = part_order(summary, parts)
+    for part in order:
         for rel in sorted(parts[part]):
             key = rel.rsplit("/", 1)[-1][:-len(".mid")]
             out.append(Wanted(key, key[:16], source_of.get(rel, ""), part, rel))
-    return out
+    return out, order
 
 
-def _read_index(folder: Path, fingerprint: str) -> list[dict]:
-    """The previous export's index lines when it was made with the same options, else []."""
+#: The on-disk layout of an export folder, recorded in export.json. Layout 2: shard names carry
+#: the fingerprint, index lines record their fingerprint and their shard's size and sha256.
+#: An export without it (layout 1) is never reused and the loader refuses it.
+LAYOUT = 2
+
+
+def _read_index(folder: Path) -> list[dict]:
+    """The index lines of the export in ``folder`` (whatever its options), [] when unreadable."""
     try:
-        meta = json.loads((folder / "export.json").read_text(encoding="utf-8"))
-        if meta.get("fingerprint") != fingerprint:
-            return []
         with open(folder / "index.jsonl", encoding="utf-8") as fh:
             return [json.loads(line) for line in fh if line.strip()]
     except (OSError, ValueError):
         return []
 
 
+def file_sha256(path: Path) -> str:
+    """The sha256 (hex) of a file's bytes, read in chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(1 << 20):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _shard_intact(folder: Path, shard: str, line: dict) -> bool:
+    """Whether the shard file is the one the index line describes (its size, then sha256)."""
+    path = folder / shard
+    try:
+        return (line.get("shard_bytes") == path.stat().st_size
+                and line.get("shard_sha256") == file_sha256(path))
+    except OSError:
+        return False
+
+
 def arrays_of(path: Path, opts: ExportOptions) -> tuple[np.ndarray, np.ndarray | None]:
     """The arrays of one normalized file: (piece, drums or None)."""
-    piece = decode_file(path)
+    try:
+        piece = decode_file(path)
+    except DecodeError as e:  # midisift wrote it whole: it changed after the run
+        where = "".join(f", {w}" for w in (f"track {e.track}" if e.track is not None else "",
+                                           f"byte {e.offset}" if e.offset is not None else "") if w)
+        raise MidisiftError(f"this normalized file cannot be decoded ({e.code}{where}); the output folder "
+                            "changed since its last finished run: rerun `midisift run`", file=str(path)) from None
     if opts.format == "events":
         return events(piece, step=opts.step, max_shift_steps=opts.max_shift_steps,  # type: ignore[arg-type]
                       velocity_bins=opts.velocity_bins, drums=opts.drums)
@@ -271,11 +340,11 @@ def arrays_of(path: Path, opts: ExportOptions) -> tuple[np.ndarray, np.ndarray |
     return roll, drums
 
 
-def _save_shard(path: Path, arrays: dict[str, np.ndarray]) -> None:
+def _save_shard(path: Path, arrays: dict[str, np.ndarray]) -> tuple[int, str]:
     """Write an .npz atomically (a temporary name, then rename): a zip of ``<key>.npy``
     members as ``np.savez_compressed`` writes them, but at deflate level 1 instead of 6: on
     piano rolls a third of the time, for files twice as large (on the synthetic corpus still
-    about 35 times smaller than the arrays)."""
+    about 35 times smaller than the arrays). Returns the file's size and sha256."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp")
     try:
@@ -283,10 +352,12 @@ def _save_shard(path: Path, arrays: dict[str, np.ndarray]) -> None:
             for key, arr in arrays.items():
                 with zf.open(f"{key}.npy", "w", force_zip64=True) as fh:
                     np.lib.format.write_array(fh, np.asanyarray(arr), allow_pickle=False)
+        signature = tmp.stat().st_size, file_sha256(tmp)
         os.replace(tmp, path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
         raise MidisiftError(f"cannot write a shard ({e.strerror})", file=str(path)) from None
+    return signature
 
 
 def export_output(out_dir: Path | str, opts: ExportOptions, *,
@@ -298,7 +369,7 @@ def export_output(out_dir: Path | str, opts: ExportOptions, *,
     summary = finished_run(out_dir)
     folder = out_dir / "export" / opts.format
     with OutputLock(out_dir):  # no run may move the files while they are read
-        wanted = wanted_files(out_dir, summary)
+        wanted, parts = wanted_files(out_dir, summary)
         for w in wanted:
             try:
                 w.digest = hashlib.sha256((out_dir / w.midi).read_bytes()).hexdigest()[:16]
@@ -306,7 +377,7 @@ def export_output(out_dir: Path | str, opts: ExportOptions, *,
                 raise MidisiftError(f"a file of the split lists cannot be read ({e.strerror}); the "
                                     "output folder changed since its last finished run: rerun "
                                     "`midisift run`", file=str(out_dir / w.midi)) from None
-        result = _write(out_dir, folder, wanted, opts, progress)
+        result = _write(out_dir, folder, wanted, parts, opts, progress)
     result.seconds = time.perf_counter() - t0
     return result
 
@@ -316,52 +387,52 @@ def _fingerprint(opts: ExportOptions) -> str:
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
-def _write(out_dir: Path, folder: Path, wanted: list[Wanted], opts: ExportOptions, progress: Any) -> ExportResult:
+def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], opts: ExportOptions,
+           progress: Any) -> ExportResult:
     fp = _fingerprint(opts)
     recorded = opts.recorded()
-    old = _read_index(folder, fp)
+    index = _read_index(folder)
+    taken = {line.get("file") for line in index}  # names a new shard must not take
     want = {w.key: w for w in wanted}
     by_shard: dict[str, list[dict]] = {}
-    for line in old:
-        by_shard.setdefault(line["file"], []).append(line)
+    for line in index:
+        if line.get("fingerprint") == fp:  # same options (and layout: older lines have none)
+            by_shard.setdefault(line["file"], []).append(line)
     kept_lines: dict[str, dict] = {}
-    kept_shards, gone_shards = set(), set()
+    kept_shards: set[str] = set()
     for shard, lines in by_shard.items():
-        ok = (folder / shard).is_file() and all(
-            (w := want.get(line["key"])) is not None and w.part == line["part"] and w.digest == line["digest"]
-            and w.source == line["source"] for line in lines)
+        ok = all((w := want.get(line["key"])) is not None and w.part == line["part"] and w.digest == line["digest"]
+                 and w.source == line["source"] for line in lines) and _shard_intact(folder, shard, lines[0])
         if ok:
             kept_shards.add(shard)
             kept_lines.update((line["key"], line) for line in lines)
-        else:
-            gone_shards.add(shard)
     result = ExportResult(folder, pieces=len(wanted), reused=len(kept_lines))
     todo = [w for w in wanted if w.key not in kept_lines]
     result.computed = len(todo)
-    numbers: dict[str, int] = {}
-    for shard in kept_shards | gone_shards:
-        part, _, name = shard.partition("/")
-        try:
-            numbers[part] = max(numbers.get(part, -1), int(name.rsplit("-", 1)[-1].split(".")[0]))
-        except ValueError:
-            pass
     limit = opts.shard_mb * (1 << 20)
     new_lines: dict[str, dict] = {}
     arrays: dict[str, np.ndarray] = {}
     pending: list[dict] = []
     size = 0
     current_part = None
+    numbers: dict[str, int] = {}
+
+    def fresh_name(part: str) -> str:
+        """The next shard name of ``part`` under these options that no index line uses."""
+        while True:
+            numbers[part] = numbers.get(part, -1) + 1
+            name = f"{part}/{part}-{fp[:8]}-{numbers[part]:05d}.npz"
+            if name not in taken:
+                return name
 
     def flush() -> None:
         nonlocal arrays, pending, size
         if not pending:
             return
-        part = pending[0]["part"]
-        numbers[part] = numbers.get(part, -1) + 1
-        shard = f"{part}/{part}-{numbers[part]:05d}.npz"
-        _save_shard(folder / shard, arrays)
+        shard = fresh_name(pending[0]["part"])
+        nbytes, sha = _save_shard(folder / shard, arrays)
         for line in pending:
-            line["file"] = shard
+            line.update(file=shard, shard_bytes=nbytes, shard_sha256=sha)
             new_lines[line["key"]] = line
         result.shards_written += 1
         arrays, pending, size = {}, [], 0
@@ -373,7 +444,7 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], opts: ExportOption
         arr, drums = arrays_of(out_dir / w.midi, opts)
         line = {"id": w.id, "source": w.source, "part": w.part, "file": None, "key": w.key,
                 "shape": list(arr.shape), "dtype": str(arr.dtype), "options": recorded,
-                "midi": w.midi, "digest": w.digest}
+                "midi": w.midi, "digest": w.digest, "fingerprint": fp, "no_pitched_note": not arr.any()}
         nbytes = arr.nbytes + (drums.nbytes if drums is not None else 0)
         if pending and size + nbytes > limit:  # this piece starts the next shard
             flush()
@@ -387,24 +458,28 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], opts: ExportOption
         if progress is not None:
             progress(1)
     flush()
-    for shard in sorted(gone_shards):
-        (folder / shard).unlink(missing_ok=True)
-    result.shards_kept = len(kept_shards)
-    result.shards_removed = len(gone_shards)
-    _remove_strays(folder, kept_shards | {line["file"] for line in new_lines.values()})
 
     lines = [kept_lines.get(w.key) or new_lines[w.key] for w in wanted]
+    result.parts = {part: 0 for part in parts}
     for line in lines:
         result.parts[line["part"]] = result.parts.get(line["part"], 0) + 1
+    result.no_pitched_note = sum(bool(line.get("no_pitched_note")) for line in lines)
+    # the new export takes over here: its index first (the loader checks export.json and the
+    # vocabulary against the index's fingerprint), then the files that describe it
     _write_if_changed(folder / "index.jsonl", "".join(json.dumps(line) + "\n" for line in lines))
     meta = {"format": opts.format, "options": recorded, "fingerprint": fp, "encoding_version": ENCODING_VERSION,
-            "pieces": len(lines), "parts": result.parts}
+            "layout": LAYOUT, "pieces": len(lines), "parts": result.parts,
+            "no_pitched_note": result.no_pitched_note}
     _write_if_changed(folder / "export.json", json.dumps(meta, indent=2) + "\n")
     if opts.format == "events":
-        _write_if_changed(folder / "vocabulary.json",
-                          json.dumps(vocabulary(opts.max_shift_steps, opts.velocity_bins, opts.step), indent=1) + "\n")
-    else:
-        _previews(out_dir, folder, wanted[:opts.previews], {w.key for w in todo}, opts)
+        vocab = vocabulary(opts.max_shift_steps, opts.velocity_bins, opts.step)  # type: ignore[arg-type]
+        _write_if_changed(folder / "vocabulary.json", json.dumps({**vocab, "fingerprint": fp}, indent=1) + "\n")
+    # only now, with the new index in place, the shards it does not name go
+    names = {line["file"] for line in lines}
+    result.shards_kept = len(kept_shards)
+    result.shards_removed = _remove_strays(folder, names)
+    if opts.format == "pianoroll":
+        _previews(out_dir, folder, wanted[:opts.previews], {w.key for w in todo}, opts)  # type: ignore[index]
     return result
 
 
@@ -419,12 +494,18 @@ def _write_if_changed(path: Path, text: str) -> None:
     write_atomic(path, text)
 
 
-def _remove_strays(folder: Path, shards: set[str]) -> None:
-    """Remove .npz files under the part folders that the index does not name (e.g. left by an
-    export killed between writing its shards and its index)."""
+def _remove_strays(folder: Path, shards: set[str]) -> int:
+    """Remove the .npz files under the part folders that the index does not name (the shards
+    of the previous export or of other options, a stopped export's, an older layout's), and
+    temporary files a stopped export left; returns how many shards were removed."""
+    removed = 0
     for path in folder.glob("*/*.npz"):
         if path.relative_to(folder).as_posix() not in shards:
-            path.unlink()
+            path.unlink(missing_ok=True)
+            removed += 1
+    for path in folder.glob("*/.*.npz.tmp"):
+        path.unlink(missing_ok=True)
+    return removed
 
 
 def _previews(out_dir: Path, folder: Path, first: list[Wanted], computed: set[str], opts: ExportOptions) -> None:

@@ -2,18 +2,23 @@
 
 **Piano roll**: a time x pitch array of velocities (uint8, 0 = silent). A frame is ``step``
 seconds, or ``1/per_beat`` of a quarter-note beat (counted in ticks, so tempo changes move the
-frames with the music). A note covers the frames from the one holding its start up to, not
+frames with the music). The roll ends with the note that ends last (its end frame, exclusive;
+held by the pedal with ``sustain``); pretty_midi's ends at the last event of any kind. A note covers the frames from the one holding its start up to, not
 including, the one holding its end (as pretty_midi's ``get_piano_roll`` does), and at least
 the frame of its start, so no note vanishes; where notes overlap a cell keeps the loudest.
 The sustain pedal (control change 64) is ignored unless asked for (``sustain=True``): then a
 note sounding in the frame where its track's pedal on its channel goes down (a value of 64 or
 more after one below) or struck while it is down sounds on up to the frame where it comes up
-(a value below 64), exclusive, as pretty_midi's ``get_piano_roll`` holds it (its default
-``pedal_threshold=64``: the running maximum of each pitch between pedal-down and pedal-up, per
-instrument, i.e. per track, channel and program). A pedal is a track's and channel's, not the
-channel's alone as a synthesizer would merge it: in some POP909 files the MELODY and BRIDGE
-tracks share the PIANO track's channel and carry pedal values that never come up, and merged
-they cut its pedal short. A pedal that never comes up holds nothing, as in pretty_midi (files
+(a value below 64), exclusive, as pretty_midi's ``get_piano_roll`` holds it with its default
+``pedal_threshold=64`` (the running maximum of each pitch between pedal-down and pedal-up). A
+pedal is a track's and channel's, whatever the program: pretty_midi's belongs to an instrument
+(track, channel and program), so where the program changes while the pedal is down the two
+differ: here the pedal-up lifts the pedal that went down before the change; in pretty_midi the
+pedal-down stays with the old program's instrument and the pedal-up goes to the new one's, and
+neither holds a note (where each instrument already has an ended note: pretty_midi gives the
+controllers before that to every instrument of the track and channel). Nor is it the channel's alone as a synthesizer would merge it: in some
+POP909 files the MELODY and BRIDGE tracks share the PIANO track's channel and carry pedal
+values that never come up, and merged they cut its pedal short. A pedal that never comes up holds nothing, as in pretty_midi (files
 whose pedal events are all pedal-down exist: held, every note would sound to the end). The drum
 channel is never sustained.
 

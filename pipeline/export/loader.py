@@ -6,17 +6,24 @@
         print(key, roll.shape)                       # (frames, pitches) uint8 velocities
 
 ``np.load`` of an ``.npz`` reads an array only when it is asked for, so memory holds one
-piece's array at a time (plus the index, a few hundred bytes a piece).
+piece's array at a time (plus the index, a few hundred bytes a piece). Every array served is
+checked against its index line (shape and dtype): a shard that is not the one the index
+describes is an error naming it, never a silently wrong array.
 """
 from __future__ import annotations
 
 import json
+import zipfile
 from pathlib import Path
 from typing import Any, Iterator
 
 import numpy as np
 
-from ..errors import UsageError
+from ..errors import MidisiftError, UsageError
+from .build import FORMATS, LAYOUT
+
+DRUMS_SUFFIX = ".drums"
+RERUN = "rerun `midisift export` to write it again"
 
 
 class ExportFolder:
@@ -30,11 +37,37 @@ class ExportFolder:
                              file=str(self.folder))
         with open(index, encoding="utf-8") as fh:
             self.entries: list[dict[str, Any]] = [json.loads(line) for line in fh if line.strip()]
-        meta = self.folder / "export.json"
-        self.meta: dict[str, Any] = json.loads(meta.read_text(encoding="utf-8")) if meta.is_file() else {}
-        vocab = self.folder / "vocabulary.json"
-        self.vocabulary: dict[str, Any] | None = (json.loads(vocab.read_text(encoding="utf-8"))
-                                                  if vocab.is_file() else None)
+        meta = self._json("export.json")
+        if meta is None:
+            raise MidisiftError(f"export.json is missing beside index.jsonl (an export was stopped before "
+                                f"writing it); {RERUN}", file=str(self.folder))
+        self.meta: dict[str, Any] = meta
+        self.vocabulary: dict[str, Any] | None = self._json("vocabulary.json")
+        self._check_consistent()
+        self._by_key = {e["key"]: e for e in self.entries}
+
+    def _json(self, name: str) -> dict[str, Any] | None:
+        path = self.folder / name
+        if not path.is_file():
+            return None
+        try:
+            return json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as e:
+            raise MidisiftError(f"cannot read {name} ({e}); {RERUN}", file=str(path)) from None
+
+    def _check_consistent(self) -> None:
+        """The index, export.json and vocabulary.json are of one export, in the current layout."""
+        if self.meta.get("layout") != LAYOUT:
+            raise UsageError(f"this export was written by an older midisift (layout {self.meta.get('layout', 1)}, "
+                             f"now {LAYOUT}) and cannot be checked against its shards; {RERUN}",
+                             file=str(self.folder))
+        fp = self.meta.get("fingerprint")
+        others = {e.get("fingerprint") for e in self.entries} - {fp}
+        if self.vocabulary is not None and self.vocabulary.get("fingerprint") != fp:
+            others.add(self.vocabulary.get("fingerprint"))
+        if others:
+            raise MidisiftError("index.jsonl, export.json and vocabulary.json are of different exports (an "
+                                f"export was stopped while it replaced them); {RERUN}", file=str(self.folder))
 
     @property
     def format(self) -> str:
@@ -46,15 +79,17 @@ class ExportFolder:
 
     @property
     def parts(self) -> list[str]:
-        """The parts in index order (the config's order)."""
-        return list(dict.fromkeys(e["part"] for e in self.entries))
+        """Every configured part in the config's order, empty ones included (export.json)."""
+        listed = list(self.meta.get("parts") or ())
+        return listed + [p for p in dict.fromkeys(e["part"] for e in self.entries) if p not in listed]
 
     def __len__(self) -> int:
         return len(self.entries)
 
     def iter_part(self, part: str | None = None, *, drums: bool = False) -> Iterator[tuple[str, np.ndarray]]:
         """``(key, array)`` for every piece of ``part`` (every part when None), in index order;
-        ``drums=True`` gives the drum arrays instead (an export made with ``--drums apart``)."""
+        ``drums=True`` gives the drum arrays instead (an export made with ``--drums apart``).
+        A configured part with no piece gives nothing; an unknown part is a UsageError."""
         if part is not None and part not in self.parts:
             raise UsageError(f"no part {part!r} in this export; parts: {', '.join(self.parts) or 'none'}",
                              file=str(self.folder))
@@ -65,23 +100,63 @@ class ExportFolder:
         for e in chosen:
             by_file.setdefault(e["file"], []).append(e)
         for shard, group in by_file.items():
-            with np.load(self.folder / shard) as z:
+            with self._open(shard) as z:
                 for e in group:
-                    yield e["key"], z[e["drums_key"] if drums else e["key"]]
+                    yield (e["key"], self._array(z, shard, e, drums))
 
     def load(self, key: str) -> np.ndarray:
-        """One piece's array by its key."""
-        for e in self.entries:
-            if e["key"] == key:
-                with np.load(self.folder / e["file"]) as z:
-                    return z[key]
-        raise KeyError(key)
+        """One piece's array by its key; ``<key>.drums`` gives its drum array (``--drums apart``)."""
+        e = self._by_key.get(key)
+        drums = False
+        if e is None and key.endswith(DRUMS_SUFFIX):
+            e = self._by_key.get(key[:-len(DRUMS_SUFFIX)])
+            drums = True
+            if e is not None and "drums_key" not in e:
+                raise UsageError("this export has no drum arrays (made without --drums apart)",
+                                 file=str(self.folder))
+        if e is None:
+            raise KeyError(key)
+        with self._open(e["file"]) as z:
+            return self._array(z, e["file"], e, drums)
+
+    def _open(self, shard: str) -> Any:
+        path = self.folder / shard
+        try:
+            return np.load(path)
+        except FileNotFoundError:
+            raise MidisiftError(f"a shard index.jsonl names is missing; {RERUN}", file=str(path)) from None
+        except (OSError, ValueError, zipfile.BadZipFile) as e:
+            raise MidisiftError(f"cannot read this shard ({e}); {RERUN}", file=str(path)) from None
+
+    def _array(self, z: Any, shard: str, e: dict[str, Any], drums: bool) -> np.ndarray:
+        """The array of index line ``e`` from the open shard, checked against the line."""
+        name = e["drums_key"] if drums else e["key"]
+        shape = e["drums_shape"] if drums else e["shape"]
+        where = str(self.folder / shard)
+        try:
+            arr = z[name]
+        except KeyError:
+            raise MidisiftError(f"the shard has no array {name!r}, which index.jsonl places there; {RERUN}",
+                                file=where) from None
+        except (OSError, ValueError, zipfile.BadZipFile) as e:
+            raise MidisiftError(f"cannot read array {name!r} ({e}); {RERUN}", file=where) from None
+        if list(arr.shape) != list(shape) or str(arr.dtype) != e["dtype"]:
+            raise MidisiftError(f"array {name!r} is {list(arr.shape)} {arr.dtype} where index.jsonl says "
+                                f"{list(shape)} {e['dtype']}: the shard is not the one the index describes; "
+                                f"{RERUN}", file=where)
+        return arr
 
 
 def open_export(path: Path | str, format: str | None = None) -> ExportFolder:
     """Open an export: ``path`` is the format folder itself, or the output folder with
-    ``format`` ("pianoroll" or "events")."""
+    ``format`` ("pianoroll" or "events"); a folder holding another format is a UsageError."""
     path = Path(path)
+    if format is not None and format not in FORMATS:
+        raise UsageError(f"unknown format {format!r}; use one of: {', '.join(FORMATS)}")
     if format is not None and not (path / "index.jsonl").is_file():
         path = path / "export" / format
-    return ExportFolder(path)
+    ex = ExportFolder(path)
+    if format is not None and ex.format != format:
+        raise UsageError(f"this export is of format {ex.format!r}, not {format!r}; open "
+                         f"{path.parent / format} or run `midisift export --format {format}`", file=str(path))
+    return ex
