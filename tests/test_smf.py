@@ -361,6 +361,31 @@ def test_hanging_notes_closed_at_last_event():
     assert piece.repairs == {"hanging_notes_closed": 1}
 
 
+@pytest.mark.parametrize("body,repairs", [
+    # an orphan note-off, then the note-on at the same tick, never closed: a zero-length note
+    # written note-off first (writers that put the offs of a tick before its ons do so)
+    ("00 90 3c 64  60 80 40 40  00 90 40 64  60 80 3c 40  60 ff 2f 00", {"zero_length_notes_dropped": 1}),
+    # a repeated note (off, then on at the same tick) whose second note never ends, as
+    # music21's MIDI writer leaves some: dropped, not held to the track's end
+    ("00 90 3c 64  00 90 40 64  60 80 40 40  00 90 40 64  60 80 3c 40  60 ff 2f 00",
+     {"zero_length_notes_dropped": 1}),
+])
+def test_a_note_left_open_after_its_own_note_off_is_zero_length(body, repairs):
+    """pretty_midi drops both such notes (it drops every note left open); the decoder drops
+    these as zero-length notes and still closes, at the track's end, a note left open with no
+    note-off at its tick (test_hanging_notes_closed_at_last_event)."""
+    data = smf(mtrk(body))
+    piece = decode(data)
+    assert piece.repairs == repairs
+    assert_same_as_pretty_midi(data, piece)
+    # the same rule in the compiled and the pure-Python loop (tests/test_smf_accel.py holds
+    # them equal on every file; here on these)
+    from pipeline.midi import track
+    cols: list = []
+    out = track.read_track(parse_hexdump(body), 0, 0, True, "x", cols, [], [], [], [], [])
+    assert out[5] == 1 and out[6] == 0  # zero-length, not hanging
+
+
 def test_running_status_and_velocity_zero_note_off():
     piece = decode(smf(mtrk("00 90 3c 64  00 40 50  60 3c 00  00 40 00  00 ff 2f 00")))
     assert rows(piece) == [(0, 96, 60, 100, 0, 0), (0, 96, 64, 80, 0, 0)]

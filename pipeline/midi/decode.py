@@ -33,7 +33,10 @@ Policies (chosen to match pretty_midi 0.2.x ``_load_instruments``, the reference
   closes every open note of that key that started at an earlier tick, and a note that started
   at the note-off's own tick stays open if another note was closed by it.
 * Zero-length notes (note-off at the note-on's tick, nothing else to close) are dropped and
-  counted as ``zero_length_notes_dropped`` (pretty_midi drops them silently).
+  counted as ``zero_length_notes_dropped`` (pretty_midi drops them silently); so is a note still
+  open at the end of its track whose key had a note-off at the note-on's own tick: a zero-length
+  note written note-off first (``track.OFF_FIRST``; pretty_midi drops every note left open).
+  Any other note left open is closed at the track's last event (``hanging_notes_closed``).
 * Note-offs with no open note are ignored (as pretty_midi does).
 * ``program`` is the program in force on the channel *at note-on*, reset to 0 at the start of
   every track (pretty_midi also resets per track but reads the program at note-off).
@@ -90,7 +93,8 @@ REPAIRS: dict[str, tuple[str, str]] = {
                              "{n} track{s} had no end-of-track event"),
     "hanging_notes_closed": ("notes still sounding at the end of a track, closed at the "
                              "track's last event tick", "closed {n} hanging note{s}"),
-    "zero_length_notes_dropped": ("note-off at the note-on's own tick; the note is dropped "
+    "zero_length_notes_dropped": ("note-off at the note-on's own tick, or just before it and "
+                                  "no other (written note-off first); the note is dropped "
                                   "(pretty_midi's behaviour)", "dropped {n} zero-length note{s}"),
     "unknown_meta_skipped": ("meta events of a type the SMF 1.0 spec does not define",
                              "skipped {n} unknown meta event{s}"),

@@ -13,6 +13,13 @@ from .piece import TEXT_METAS
 _KNOWN_META = frozenset(list(range(0x00, 0x10)) + [0x20, 0x21, 0x2F, 0x51, 0x54, 0x58, 0x59, 0x7F])
 
 
+#: Flag of an open note's info: its key had a note-off at the note-on's own tick. Such a note
+#: still open at the end of its track is a zero-length note written note-off first (writers that
+#: order the events of one tick offs before ons do so; music21's MIDI writer does it for some
+#: notes): dropped as zero-length, as pretty_midi drops it, rather than held to the track's end.
+OFF_FIRST = 1 << 25
+
+
 def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, cols: list,
                 tempos: list, meters: list, keys: list, ctl: list, texts: list) -> tuple:
     """Parse one MTrk body ``t`` (starting at absolute byte ``base``) in one tight loop.
@@ -31,6 +38,7 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
     eot = False
     progs = [0] * 16
     opened: list = [None] * 2048  # open notes per key = channel << 7 | pitch
+    last_off: dict[int, int] = {}  # key -> tick of its last note-off (OFF_FIRST)
     name = None
     ev_start = p
     try:
@@ -140,26 +148,31 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
                     raise _bad_data(source, base + p - 2, ti, st, a, v)
                 key = ((st & 0x0F) << 7) | a
                 if v and st > 0x8F:
-                    # info packs pitch | channel << 7 | velocity << 11 | program << 18
+                    # info packs pitch | channel << 7 | velocity << 11 | program << 18, and
+                    # OFF_FIRST when the key had a note-off at this very tick
+                    info = key | (v << 11) | (progs[st & 0x0F] << 18)
+                    if last_off.get(key) == tick:
+                        info |= OFF_FIRST
                     cur = opened[key]
                     if cur is None:
-                        opened[key] = [tick, key | (v << 11) | (progs[st & 0x0F] << 18)]
+                        opened[key] = [tick, info]
                     else:
-                        cur += (tick, key | (v << 11) | (progs[st & 0x0F] << 18))
+                        cur += (tick, info)
                 else:
+                    last_off[key] = tick
                     cur = opened[key]
                     if cur is not None:
                         opened[key] = None
                         if len(cur) == 2:
                             if cur[0] != tick:
-                                cols += (cur[0], tick, cur[1])
+                                cols += (cur[0], tick, cur[1] & ~OFF_FIRST)
                             else:
                                 zero += 1
                         else:
                             keep = []
                             for j in range(0, len(cur), 2):
                                 if cur[j] != tick:
-                                    cols += (cur[j], tick, cur[j + 1])
+                                    cols += (cur[j], tick, cur[j + 1] & ~OFF_FIRST)
                                 else:
                                     keep += (cur[j], cur[j + 1])
                             if keep:
@@ -200,10 +213,10 @@ def read_track(t: bytes, base: int, ti: int, at_file_end: bool, source: str, col
     if opened.count(None) < 2048:
         for cur in filter(None, opened):
             for j in range(0, len(cur), 2):
-                if cur[j] != tick:
+                if cur[j] != tick and not cur[j + 1] & OFF_FIRST:
                     cols += (cur[j], tick, cur[j + 1])
                     hanging += 1
-                else:
+                else:  # its note-off came first, at its own tick: a zero-length note
                     zero += 1
     return tick, eot, name, text, n_events, zero, hanging, unknown_meta
 

@@ -23,6 +23,7 @@ from typing import Any, Callable, ClassVar, NamedTuple
 import numpy as np
 
 
+from ..midi import DECODER_VERSION
 from ..midi.piece import Piece
 from ..store.codec import canonical_json
 from ..store.records import Result
@@ -250,8 +251,10 @@ class Variant(NamedTuple):
 
 
 def options_fingerprint(name: str, version: int, opts: dict[str, Any]) -> str:
-    """A stable 16-hex-digit hash of a stage's identity and options."""
-    blob = canonical_json({"stage": name, "version": version, "options": opts})
+    """A stable 16-hex-digit hash of a stage's identity and options, and of the decoder's rules
+    (``midi.DECODER_VERSION``: every result is made from decoded notes)."""
+    blob = canonical_json({"stage": name, "version": version, "options": opts,
+                           "decoder": DECODER_VERSION})
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 

@@ -18,7 +18,12 @@ typedef struct {
     int64_t tick0, info0;
     int64_t *more; /* pairs 2..n as (tick, info), capacity ``cap`` pairs */
     int64_t n, cap; /* 64-bit: a damaged file may stack millions of notes on one key */
+    int64_t off1;   /* 1 + the tick of the key's last note-off in this track, 0: none */
 } OpenKey;
+
+/* track.OFF_FIRST: an open note's key had a note-off at the note-on's own tick; such a note
+ * still open at the end of its track is a zero-length note written note-off first (dropped). */
+#define OFF_FIRST ((int64_t)1 << 25)
 
 typedef struct {
     int64_t *v;
@@ -70,14 +75,14 @@ static int key_close(OpenKey *k, int64_t tick, Vec *cols, int64_t *zero) {
     int64_t n = k->n, kept = 0;
     if (n == 1) {
         k->n = 0;
-        if (k->tick0 != tick) return vec_push(cols, k->tick0, tick, k->info0, 3);
+        if (k->tick0 != tick) return vec_push(cols, k->tick0, tick, k->info0 & ~OFF_FIRST, 3);
         (*zero)++;
         return 0;
     }
     for (int64_t j = 0; j < n; j++) {
         int64_t s = key_tick(k, j), info = key_info(k, j);
         if (s != tick) {
-            if (vec_push(cols, s, tick, info, 3) < 0) return -1;
+            if (vec_push(cols, s, tick, info & ~OFF_FIRST, 3) < 0) return -1;
         } else {
             /* compact kept pairs to the front, in order (j >= kept, so no overwrite ahead) */
             if (kept == 0) {
@@ -163,6 +168,7 @@ static void table_reset(OpenTable *o) {
             bits &= bits - 1;
             OpenKey *k = &o->key[key];
             k->n = 0;
+            k->off1 = 0;
             if (k->cap > 64) { /* do not keep a huge stack from one damaged file */
                 PyMem_Free(k->more);
                 k->more = NULL;
@@ -303,10 +309,13 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
                 /* info packs pitch | channel << 7 | velocity << 11 | program << 18 */
                 any_note_on = 1;
                 table->touched[key >> 6] |= (uint64_t)1 << (key & 63);
-                if (key_push(k, tick, (int64_t)key | ((int64_t)v << 11) | (progs[st & 0x0F] << 18)) < 0)
-                    return -1;
-            } else if (k->n) {
-                if (key_close(k, tick, &r->cols, &r->zero) < 0) return -1;
+                int64_t info = (int64_t)key | ((int64_t)v << 11) | (progs[st & 0x0F] << 18);
+                if (k->off1 == tick + 1) info |= OFF_FIRST;
+                if (key_push(k, tick, info) < 0) return -1;
+            } else {
+                table->touched[key >> 6] |= (uint64_t)1 << (key & 63); /* the reset clears off1 */
+                k->off1 = tick + 1;
+                if (k->n && key_close(k, tick, &r->cols, &r->zero) < 0) return -1;
             }
             continue;
         }
@@ -340,11 +349,11 @@ static int parse_track(const unsigned char *t, Py_ssize_t nt, Track *r, OpenTabl
             OpenKey *k = &opened[w * 64 + ctz64(bits)];
             bits &= bits - 1;
             for (int64_t j = 0; j < k->n; j++) {
-                int64_t s = key_tick(k, j);
-                if (s != tick) {
-                    if (vec_push(&r->cols, s, tick, key_info(k, j), 3) < 0) return -1;
+                int64_t s = key_tick(k, j), info = key_info(k, j);
+                if (s != tick && !(info & OFF_FIRST)) {
+                    if (vec_push(&r->cols, s, tick, info, 3) < 0) return -1;
                     r->hanging++;
-                } else {
+                } else { /* at the last tick, or its note-off came first: zero-length */
                     r->zero++;
                 }
             }
