@@ -288,7 +288,10 @@ def plain_shingle_hashes(piece, spec):
     for v, onsets in voices.items():
         pitches = sorted(p for _, p in onsets)
         stats[v] = (pitches[(len(pitches) - 1) // 2], len(onsets), len({q for q, _ in onsets}))
-    upper = [v for v in sorted(voices) if stats[v][0] >= spec.bass_below]
+    every = sorted(p for onsets in voices.values() for _, p in onsets)
+    limit = (spec.bass_below if spec.bass_below is not None
+             else every[(len(every) - 1) // 2] - spec.bass_gap if every else 0)
+    upper = [v for v in sorted(voices) if stats[v][0] >= limit]
     lead = plain_lead_voice(upper, stats, piece.track_names, spec)
     hashes, first_line, pitch_hashes, lead_hashes = [], None, [], []
     for v in upper:

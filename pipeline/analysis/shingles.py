@@ -7,8 +7,12 @@ hash of ``ngram`` consecutive tokens of one *line*, tagged by the line's kind:
   being a (track, channel) stream (so a format-0 file's channels and a format-1 file's tracks
   give the same voices), following the voice's highest note at each onset. A melody keeps its
   shingles whatever the accompaniment beside it, and a melody-only or chords-only file holds a
-  subset of its full arrangement's shingles. Bass voices (median pitch below ``bass_below``)
-  make none: bass lines over common progressions are shared by many distinct pieces.
+  subset of its full arrangement's shingles. Bass voices (median pitch more than ``bass_gap``
+  semitones below the median of all the piece's pitched notes) make none: bass lines over
+  common progressions are shared by many distinct pieces. The register is the piece's own, so
+  a transposed copy has the same bass voices (a fixed pitch, MIDI 48, made voices near it
+  bass or not by the key a file was in, and the normalized outputs' sets other than their
+  sources'; found by an audit through ``midisift leakage``).
 * **Contours** (kind ``pitch``): the same lines' intervals alone, repeated notes left out, in
   windows ``pitch_extra`` tokens longer: a tune re-notated with other note values keeps them.
 * **The lead** (kind ``lead``): the line shingles of the voice that carries the tune
@@ -39,7 +43,7 @@ import functools
 import hashlib
 import re
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -63,8 +67,9 @@ class ShingleSpec:
     token; ``min_distinct``:
     windows with at most this many distinct tokens are dropped (generic figures; at most
     ``ngram - 2``, so short windows are all kept); ``pitch_extra``: pitch-only windows are this
-    many tokens longer; ``bass_below``: voices whose median pitch lies below it (the bass
-    register) make no line shingles;
+    many tokens longer; ``bass_gap``: voices whose median pitch lies more than this many
+    semitones below the piece's median pitch (the bass register) make no line shingles
+    (``bass_below``, when set, is that pitch limit itself, absolute: tests and tools);
     ``max_shingles``: at most this many shingles are kept (the smallest hashes, a consistent
     sample); ``kinds``: the line kinds emitted."""
 
@@ -74,7 +79,8 @@ class ShingleSpec:
     max_interval: int = 24
     min_distinct: int = 2
     pitch_extra: int = 2
-    bass_below: int = 48
+    bass_gap: int = 12
+    bass_below: int | None = None
     lead_monophony: float = 0.9
     max_shingles: int = 4096
     kinds: tuple[str, ...] = ("line", "pitch", "lead")
@@ -228,7 +234,8 @@ LEAD_NAMES = ("melody", "melodie", "lead", "vocal", "vocals", "voice", "soprano"
 
 def lead_voice(stats: dict[str, np.ndarray], spec: ShingleSpec,
                track_names: tuple[str, ...] = ()) -> int | None:
-    """The voice that carries the tune, or None.
+    """The voice that carries the tune, or None (``spec.bass_below``: the piece's bass limit,
+    ``bass_limit``; bass voices never carry it).
 
     A track named like the tune's (``LEAD_NAMES``) wins when one of its voices has more than
     ``ngram`` onsets (the first such track; its busiest voice). Otherwise: among the voices
@@ -332,6 +339,25 @@ def _seed(n: int, kind: str) -> np.uint64:
     return np.uint64((n + KIND_TAGS[kind] * 0x632BE59BD9B4E019) & 0xFFFFFFFFFFFFFFFF)
 
 
+def bass_limit(pitch: np.ndarray, spec: ShingleSpec) -> int:
+    """The median pitch below which a voice is a bass voice: ``spec.bass_below`` when set, else
+    ``spec.bass_gap`` semitones below the lower middle of ``pitch`` (the piece's pitched notes),
+    so it moves with a transposition."""
+    if spec.bass_below is not None:
+        return int(spec.bass_below)
+    if not len(pitch):
+        return 0
+    return int(np.partition(pitch, (len(pitch) - 1) // 2)[(len(pitch) - 1) // 2]) - spec.bass_gap
+
+
+def for_piece(piece: Piece, spec: ShingleSpec) -> ShingleSpec:
+    """``spec`` with ``bass_below`` set to the piece's bass limit (``bass_limit``), as
+    ``lead_voice`` and the line rules read it."""
+    if spec.bass_below is not None:
+        return spec
+    return replace(spec, bass_below=bass_limit(_pitched(piece, "pitch")[0], spec))
+
+
 def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarray:
     """The piece's shingle set: sorted unique uint64 hashes of the windows of every line kind
     in ``spec.kinds`` (see the module docstring).
@@ -340,6 +366,7 @@ def shingle_hashes(piece: Piece, spec: ShingleSpec = ShingleSpec()) -> np.ndarra
     tokens (if any), so short pieces still compare; a piece with none (drums only, one onset)
     gets an empty set.
     """
+    spec = for_piece(piece, spec)
     got = _compiled_shingles(piece, spec)
     if got is not None:  # the same hashes (tests/test_smf_accel.py)
         return got

@@ -148,7 +148,8 @@ class Dedup(Stage):
     #: The version of what ``prepare`` computes (content hash, shingles, signature): it keys the
     #: stored artifacts and the split's signatures, so a change of the corpus step alone
     #: (``version``) re-decodes no file. Bump it when ``prepare`` or what it calls changes.
-    signature_version = 3
+    #: 4: the bass register relative to the piece's median pitch (``ShingleSpec.bass_gap``)
+    signature_version = 4
     doc = ("Drop exact and near duplicates (MinHash LSH over shingles of every voice, invariant to "
            "transposition, tempo, double/half time, instrumentation and layout).")
     #: shingle sets are read for the members in candidate pairs and in clusters of several

@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from ..analysis.shingles import ShingleSpec, _grid, _pitched, lead_voice, line_tokens, voice_stats
+from ..analysis.shingles import ShingleSpec, _grid, _pitched, for_piece, lead_voice, line_tokens, voice_stats
 
 #: Links whose value is below this (and rests on the leads) count as weak: near the split's
 #: 0.2 and dedup's 0.3 thresholds.
@@ -36,6 +36,7 @@ WEAK_BELOW = 0.3
 def lead_tokens(piece: Any, spec: ShingleSpec = ShingleSpec()) -> np.ndarray:
     """The tokens of the piece's lead line in time order (``lead_voice`` chooses the voice the
     shingles mark as the lead; empty when there is none)."""
+    spec = for_piece(piece, spec)
     start, pitch, track, channel = _pitched(piece, "start", "pitch", "track", "channel")
     q = _grid(start, int(piece.ticks_per_beat), 2 * spec.grid)
     voice = track.astype(np.int64) * 16 + channel
