@@ -153,8 +153,10 @@ def _synth(args: argparse.Namespace) -> int:
     from .tools.synth import main_synth
     if args.count < 1:
         raise UsageError(f"--count must be at least 1, got {args.count}")
-    main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming, planted=args.planted,
-               force=args.force)
+    made = main_synth(Path(args.dir), args.count, args.seed, args.profile, naming=args.naming,
+                      planted=args.planted, force=args.force)
+    expected = ", ".join(f"{n:,} {what}" for what, n in sorted(made["expect"].items()))
+    print(f"wrote {made['files']:,} files and truth.json to {made['out_dir']} (expected verdicts: {expected})")
     return 0
 
 

@@ -103,3 +103,17 @@ def test_after_a_run_that_stopped_the_changes_are_the_last_completed_runs(tmp_pa
     changes = summary["changes_since_last_run"]
     assert (changes["files_added"], changes["files_changed"], changes["files_removed"]) == (1, 0, 1)
     assert "since the last run: files 1 added, 0 changed, 1 removed" in table
+
+
+def test_the_page_says_how_many_changes_it_does_not_list():
+    """report.html lists the first EXAMPLES of each kind and says how many more there are (an
+    audit found 20 of 49 newly kept files listed as if they were all). Our own contract."""
+    from pipeline.outputs.changes import EXAMPLES
+    from pipeline.outputs.page import _changes_section
+    c = {"files_added": 0, "files_changed": 0, "files_removed": 60, "now_kept": 49, "now_dropped": 0,
+         "moved": 0, "examples": {"now_kept": [{"source": f"s{i}.mid", "split": "train"} for i in range(EXAMPLES)],
+                                  "now_dropped": [], "moved": []}}
+    html = _changes_section({"changes_since_last_run": c})
+    assert html.count("kept now:") == EXAMPLES and f"{49 - EXAMPLES:,} more" in html
+    c["now_kept"] = EXAMPLES
+    assert "more are in" not in _changes_section({"changes_since_last_run": c})

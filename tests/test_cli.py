@@ -68,10 +68,12 @@ def test_an_output_path_that_is_a_file_exits_2_and_writes_nothing(below, tmp_pat
     assert afile.read_text() == "mine\n" and sorted(tmp_path.iterdir()) == [afile]
 
 
-def test_synth_writes_files_and_truth(tmp_path):
+def test_synth_writes_files_and_truth(tmp_path, capsys):
     assert main(["synth", str(tmp_path / "c"), "--count", "12", "--seed", "3"]) == 0
     truth = json.loads((tmp_path / "c" / "truth.json").read_text())
     assert len(truth["files"]) == 12
+    # it says what it wrote (an audit: nothing was printed on success)
+    assert "wrote 12 files and truth.json" in capsys.readouterr().out
     for rel in truth["files"]:
         assert (tmp_path / "c" / rel).is_file()
 

@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from ..store.atomic import write_atomic
+from .changes import EXAMPLES
 from .table import folder_rule_text
 from ..reasons import REASONS
 
@@ -585,8 +586,13 @@ def _changes_section(summary: dict) -> str:
             + [f"<li>dropped now: <code>{esc(src)}</code></li>" for src in ex.get("now_dropped", [])]
             + [f"<li>moved: <code>{esc(e['source'])}</code> ({esc(e['from'])} &rarr; {esc(e['to'])})</li>"
                for e in ex.get("moved", [])])
+    # the lists hold the first few of each kind: say how many more there are (an audit found
+    # 20 of 49 newly kept files listed as if they were all)
+    unlisted = sum(max(0, int(c.get(k, 0)) - len(ex.get(k, []))) for k in ("now_kept", "now_dropped", "moved"))
+    more = (f"<p>The first {EXAMPLES} of each kind are listed; {unlisted:,} more are in manifest.jsonl "
+            "(<code>midisift explain PATH</code> for any file).</p>" if unlisted else "")
     return (f"<h2>Since the last run</h2><p>{counts}.</p>"
-            + (f"<ul>{''.join(rows)}</ul>" if rows else ""))
+            + (f"<ul>{''.join(rows)}</ul>" if rows else "") + more)
 
 
 def rewrite_run_tail(out_dir: Path | str, summary: dict) -> bool:
