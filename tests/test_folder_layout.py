@@ -48,6 +48,23 @@ def test_a_folder_per_piece_is_found_at_its_depth():
     assert piece_folders(_piece_per_folder(5, stray=1)).depth == 1
 
 
+def test_a_collection_laid_out_by_piece_beside_others_is_found_on_its_own():
+    """A song collection copied beside folders of mixed files: the input as a whole is not laid
+    out by piece, but its top-level folder of songs is, and its songs are tied (an audit: pop909
+    beside 25 folders of generated files had its versions leak again). Our own rule."""
+    songs = [(f"songs/{p}", g) for p, g in _piece_per_folder(5)]
+    mixed = [(f"gen/d{k % 2}/f{k}.mid", f"x{k}") for k in range(80)]
+    layout = piece_folders(songs + mixed)
+    assert layout.depth is None and layout.share < FOLDER_SHARE
+    assert [(top, found.depth, found.folders) for top, found in layout.collections] == [("songs", 2, 5)]
+    assert layout.depth_of("songs/song3/versions/v0.mid") == 2 and layout.depth_of("gen/d0/f0.mid") is None
+    assert layout.as_dict()["collections"]["songs"]["depth"] == 2
+    from pipeline.stages.split import _piece_folder
+    assert _piece_folder("songs/song3/versions/v0.mid", {"songs": 2}) == "songs/song3"
+    assert _piece_folder("songs/loose.mid", {"songs": 2}) is None  # right in the collection's folder
+    assert _piece_folder("gen/d0/f0.mid", {"songs": 2}) is None
+
+
 def test_folders_that_mix_pieces_are_not_pieces():
     # by composer or session: each folder holds several pieces, one file each
     mixed = [(f"composer{k % 4}/work{k}.mid", f"piece{k}") for k in range(40)]
@@ -179,6 +196,31 @@ def test_pop909_versions_added_later_join_their_songs_part(tmp_path):
     assert {r["split"] for r in again if r["status"] == "kept" and _song(r["source"]) == "703"} == part_703
     before = {r["source"]: r["split"] for r in first}
     assert all(r["split"] == before[r["source"]] for r in again if r["source"] in before)
+
+
+def test_pop909_beside_a_folder_of_other_music_keeps_its_songs_together(tmp_path):
+    """The twelve POP909 files under pop909/, beside gen/ (generated pieces, one folder of many):
+    the input as a whole is not laid out by piece, pop909/ is, and its songs' files share a
+    part (an audit: pop909-dev beside 25 folders of generated files leaked two songs)."""
+    from pipeline.tools.synth import generate
+    corpus = tmp_path / "mixed"
+    shutil.copytree(POP, corpus / "pop909")
+    generate(corpus / "gen", 60, seed=4)
+    rows, summary = _run(tmp_path, corpus, "mixed_out")
+    rule = summary["group_by_folder"]
+    assert rule["applied"] == {"pop909": 2} and rule["depth"] is None
+    assert rule["collections"]["pop909"]["folders"] == 4
+    parts: dict[str, set] = {}
+    for r in rows:
+        if r["status"] == "kept" and r["source"].startswith("pop909/"):
+            parts.setdefault(_song(r["source"]), set()).add(r["split"])
+    assert len(parts) == 4 and all(len(p) == 1 for p in parts.values())
+    assert split_lines(summary)[0].startswith(
+        "split  files under the same folder share a part within 1 top-level folder laid out one "
+        "folder per piece (group_by_folder: auto: not the input as a whole")
+    assert "pop909/ at depth 2 (90.9% of the files in 4 folders)" in split_lines(summary)[0]
+    page = (tmp_path / "mixed_out" / "report.html").read_text(encoding="utf-8")
+    assert 'data-key="split.stage.group_by_folder.applied" data-value="{&quot;pop909&quot;: 2}"' in page
 
 
 def test_pop909_files_in_folders_that_mix_songs_are_not_grouped_by_folder(tmp_path):

@@ -432,7 +432,7 @@ def _split_section(summary: dict, facts: Facts) -> str:
     rule = folder_rule_text(stage.get("group_by_folder"))
     if rule:
         applied = stage["group_by_folder"]["applied"]
-        extra += (f'<p data-key="split.stage.group_by_folder.applied" data-value="{json.dumps(applied)}">'
+        extra += (f'<p data-key="split.stage.group_by_folder.applied" data-value="{esc(json.dumps(applied))}">'
                   f'{esc(rule[0].upper() + rule[1:])}.</p>')
     groups = [(f"{k} file{'s' if k > 1 else ''}", v // k if v % k == 0 else round(v / k, 1))
               for k, v in sorted(facts.group_sizes.items())]

@@ -50,6 +50,14 @@ def folder_rule_text(rule: dict | None) -> str | None:
     as a sentence; None when it tied no files by folder and ``auto`` did not judge the layout
     (another option, grouping by the notes off)."""
     applied = (rule or {}).get("applied")
+    if isinstance(applied, dict):  # per top-level folder (grouping.FolderLayout.collections)
+        found = rule.get("collections", {})
+        each = "; ".join(f"{top}/ at depth {d} ({found.get(top, {}).get('share', 0):.1%} of the files in "
+                         f"{found.get(top, {}).get('folders')} folders)" for top, d in sorted(applied.items()))
+        return (f"files under the same folder share a part within {len(applied)} top-level "
+                f"folder{'s' if len(applied) != 1 else ''} laid out one folder per piece (group_by_folder: "
+                f"auto: not the input as a whole, at best {rule.get('share', 0):.1%} of its files in their "
+                f"folder's largest near-duplicate group; {each})")
     if not applied:
         if (rule or {}).get("option") != "auto" or rule.get("judged_depth") is None:
             return None

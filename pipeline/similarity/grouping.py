@@ -90,10 +90,24 @@ class FolderLayout:
     at: int | None
     share: float
     folders: int
+    #: when no depth qualifies over the whole input: the top-level folders whose own files are
+    #: laid out one folder per piece, each with what was found in it (a collection of pieces
+    #: beside others that are not, e.g. a song collection beside a folder of generated files)
+    collections: tuple[tuple[str, "FolderLayout"], ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
-        return {"depth": self.depth, "judged_depth": self.at, "share": round(self.share, 4),
-                "folders": self.folders}
+        out: dict[str, Any] = {"depth": self.depth, "judged_depth": self.at,
+                               "share": round(self.share, 4), "folders": self.folders}
+        if self.collections:
+            out["collections"] = {top: found.as_dict() for top, found in self.collections}
+        return out
+
+    def depth_of(self, path: str) -> int | None:
+        """The folder depth that ties ``path`` to its piece's other files, or None."""
+        if self.depth is not None:
+            return self.depth
+        top = path.partition("/")[0]
+        return next((found.depth for t, found in self.collections if t == top), None)
 
 
 def piece_folders(files: Iterable[tuple[str, Hashable]], depths: Sequence[int] = FOLDER_DEPTHS,
@@ -112,6 +126,28 @@ def piece_folders(files: Iterable[tuple[str, Hashable]], depths: Sequence[int] =
         parent = path.rpartition("/")[0]
         if parent:
             by_parent[parent][group] += 1
+    found = _judged(by_parent, depths, share, min_folders)
+    if found.depth is not None:
+        return found
+    # no depth qualifies over the whole input: each top-level folder is judged as a collection
+    # of its own, one level deeper (an audit: a song collection copied beside 25 folders of
+    # generated files was no longer grouped by song, and its versions leaked)
+    tops: dict[str, dict[str, Counter]] = defaultdict(dict)
+    for parent, counts in by_parent.items():
+        top = parent.partition("/")[0]
+        if parent != top:  # files right in the top folder, as files at the top, are not counted
+            tops[top][parent] = counts
+    collections = []
+    for top in sorted(tops):
+        inner = _judged(tops[top], tuple(d + 1 for d in depths), share, min_folders)
+        if inner.depth is not None:
+            collections.append((top, inner))
+    return FolderLayout(None, found.at, found.share, found.folders, tuple(collections))
+
+
+def _judged(by_parent: Mapping[str, Counter], depths: Sequence[int], share: float,
+            min_folders: int) -> FolderLayout:
+    """``piece_folders``'s judgment of the files counted by parent folder, at ``depths``."""
     best = FolderLayout(None, None, 0.0, 0)
     if not by_parent:  # every file at the top: no folder to judge
         return best

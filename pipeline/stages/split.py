@@ -123,6 +123,17 @@ def folder_of(source: str, depth: int | None = None) -> str | None:
     return "/".join(parts) if parts else None
 
 
+def _piece_folder(source: str, depths: dict[str, int]) -> str | None:
+    """The folder that ties ``source`` to its piece's other files under a per-collection folder
+    rule (top-level folder -> depth): its first ``depth`` folder levels, None when its top folder
+    has no rule or it lies less deep (files right in a collection's folder are not pieces)."""
+    top = source.partition("/")[0]
+    if top not in depths:
+        return None
+    folder = folder_of(source, depths[top])
+    return folder if folder is not None and folder.count("/") + 1 >= depths[top] else None
+
+
 def _value(result: StageResult, name: str) -> Any:
     """One value of an upstream result (read without parsing the others)."""
     return result.value(name)
@@ -200,7 +211,9 @@ class Split(Stage):
                "at the shallowest folder depth (1 to 3) where at least 3 folders hold two or more "
                "files and 80% of those files lie in their folder's largest near-duplicate group "
                "(dedup's clusters, its dropped files included, and the split's links; off with "
-               "group_threshold: null); true: "
+               "group_threshold: null); when the input as a whole is not, each top-level folder "
+               "is judged the same way as a collection of its own (depths 2 to 4), and the "
+               "folders of those laid out by piece are tied; true: "
                "files in the same folder share a part; a number N: files under the same first N "
                "folder levels share a part (1: one top-level folder per piece, its subfolders "
                "included); false: folders are not read. Files at the top of the input folder "
@@ -464,8 +477,9 @@ class Split(Stage):
         return links
 
     def _folder_rule(self, members: Sequence[Member], links: list[tuple[str, str]], state: CorpusState,
-                     cluster_of: dict[str, Any]) -> tuple[bool | int, FolderLayout | None]:
-        """The folder grouping to apply (False, True or a depth) and, for ``auto``, what
+                     cluster_of: dict[str, Any]) -> tuple[bool | int | dict[str, int], FolderLayout | None]:
+        """The folder grouping to apply (False, True, a depth, or a depth per top-level folder
+        that ``auto`` found laid out by piece when the whole input is not) and, for ``auto``, what
         ``grouping.piece_folders`` found. ``auto`` judges every file the corpus steps saw: a
         dedup stage's members (the files it dropped are the best evidence that a folder holds
         one piece) with dedup's clusters (``cluster_of``), else the split's members; identities
@@ -499,11 +513,16 @@ class Split(Stage):
         # the run's table, report.html and explain say what was found (summary.json,
         # ``outputs.table.folder_rule_text``)
         layout = piece_folders((path, identity(mid)) for mid, path in files)
-        return (False if layout.depth is None else layout.depth), layout
+        if layout.depth is not None:
+            return layout.depth, layout
+        # else the top-level folders laid out by piece on their own, each at its depth
+        return {top: found.depth for top, found in layout.collections} or False, layout
 
-    def _forced(self, members: Sequence[Member], by_folder: bool | int) -> list[list[str]]:
+    def _forced(self, members: Sequence[Member], by_folder: bool | int | dict[str, int]) -> list[list[str]]:
         forced: list[list[str]] = []
-        if by_folder:
+        if isinstance(by_folder, dict):  # per top-level folder (``_folder_rule``)
+            forced += group_by_key({m.id: _piece_folder(m.source, by_folder) for m in members})
+        elif by_folder:
             depth = None if by_folder is True else by_folder
             forced += group_by_key({m.id: folder_of(m.source, depth) for m in members})
         fields = list(self.opts["group_fields"])
