@@ -966,3 +966,32 @@ def test_a_damaged_old_shard_is_not_read_from_its_pieces_are_computed(tmp_path, 
     after, fresh = _arrays(folder), _fresh_arrays(out, tmp_path, opts)
     assert after.keys() == fresh.keys() and all(np.array_equal(after[k], fresh[k]) for k in fresh)
     assert all(after[k].any() for k in damaged_left)  # not the silent arrays of the damaged shard
+
+
+def test_when_every_shard_lost_a_piece_the_rerun_writes_a_fresh_exports_shards(tmp_path, monkeypatch):
+    # the layout depends on history (kept shards stay as they are, the other pieces are packed
+    # into new shards after them); with no shard kept, it is a fresh export's, byte for byte
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    out = tmp_path / "out"
+    _run(out, corpus)
+    opts = ExportOptions("events", shard_mb=0.02)
+    export_output(out, opts)
+    folder = out / "export" / "events"
+    by_shard: dict[str, list[dict]] = {}
+    for e in open_export(folder).entries:
+        by_shard.setdefault(e["file"], []).append(e)
+    for lines in by_shard.values():
+        (corpus / lines[-1]["source"]).unlink()
+    _run(out, corpus)
+    calls = _counting_arrays_of(monkeypatch)
+    r = export_output(out, opts)
+    assert r.shards_kept == 0 and r.carried > 0 and len(calls) == r.computed < r.carried
+    fresh = tmp_path / "fresh"
+    shutil.copytree(out, fresh, ignore=shutil.ignore_patterns("export"))
+    export_output(fresh, opts)
+
+    def shards(root: Path) -> list[bytes]:
+        entries = open_export(root / "export" / "events").entries
+        return [(root / "export" / "events" / f).read_bytes() for f in dict.fromkeys(e["file"] for e in entries)]
+    assert shards(out) == shards(fresh)
