@@ -834,3 +834,164 @@ def test_the_pedal_is_the_tracks_and_channels_whatever_the_program_and_the_roll_
     for p, (a, b) in expected_plain.items():  # its pedal holds nothing here
         assert np.flatnonzero(ref[:, p]).tolist() == list(range(a, b)), p
     assert len(ref) == 30  # its roll reaches the controller after the last note (1.5 s)
+
+
+# a shard that lost pieces: the survivors' arrays carried from it, not decoded again ------------
+def _counting_arrays_of(monkeypatch) -> list[str]:
+    """Count the calls of the array function (each one decodes a normalized file)."""
+    from pipeline.export import build
+    calls: list[str] = []
+    real = build.arrays_of
+
+    def counted(path: Path, opts: ExportOptions):
+        calls.append(Path(path).stem)
+        return real(path, opts)
+    monkeypatch.setattr(build, "arrays_of", counted)
+    return calls
+
+
+def _remove_spread(corpus: Path, out: Path, folder: Path) -> dict[str, list[dict]]:
+    """Remove one kept source from every other shard of the export in ``folder`` (its first
+    piece's), rerun; the index lines of the shards that lost a piece, by shard."""
+    by_shard: dict[str, list[dict]] = {}
+    for e in open_export(folder).entries:
+        by_shard.setdefault(e["file"], []).append(e)
+    hit = {shard: lines for n, (shard, lines) in enumerate(sorted(by_shard.items())) if n % 2 == 0}
+    for lines in hit.values():
+        (corpus / lines[0]["source"]).unlink()
+    _run(out, corpus)
+    return hit
+
+
+def _new_or_changed(old: dict[str, dict], entries: list[dict]) -> set[str]:
+    """Keys of the index lines that are new, or whose part, source or normalized bytes changed
+    (a byte-identical copy's first path removed: its source is the next one's)."""
+    fields = ("part", "source", "digest")
+    return {e["key"] for e in entries
+            if e["key"] not in old or any(old[e["key"]][f] != e[f] for f in fields)}
+
+
+def _fresh_arrays(out: Path, tmp_path: Path, opts: ExportOptions) -> dict[str, np.ndarray]:
+    fresh = tmp_path / "fresh"
+    shutil.copytree(out, fresh, ignore=shutil.ignore_patterns("export"))
+    export_output(fresh, opts)
+    return _arrays(fresh / "export" / opts.format)
+
+
+@pytest.mark.parametrize("fmt", ["pianoroll", "events"])
+def test_a_rerun_after_removals_reads_the_survivors_arrays_from_their_old_shards(tmp_path, monkeypatch, fmt):
+    # before: a shard that lost one piece was rebuilt by decoding every other piece of it again
+    # (an audit: 300 of 26,505 files removed, all 17,491 pieces recomputed)
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    out = tmp_path / "out"
+    _run(out, corpus)
+    opts = ExportOptions(fmt, shard_mb=0.5 if fmt == "pianoroll" else 0.02, drums="apart")
+    first = export_output(out, opts)
+    folder = out / "export" / fmt
+    old = {e["key"]: e for e in open_export(folder).entries}
+    assert first.shards_written >= 4
+    hit = _remove_spread(corpus, out, folder)
+    assert len(hit) >= 2
+    before_rerun = tmp_path / "before_rerun"  # the same folder, for a rerun that carries nothing
+    shutil.copytree(out, before_rerun)
+
+    calls = _counting_arrays_of(monkeypatch)
+    r = export_output(out, opts)
+    entries = open_export(folder).entries
+    new_keys = _new_or_changed(old, entries)  # e.g. a copy kept now that its kept file went
+    survivors = [e["key"] for lines in hit.values() for e in lines[1:] if e["key"] in {x["key"] for x in entries}
+                 and e["key"] not in new_keys]
+    assert sorted(calls) == sorted(new_keys)  # no survivor decoded again
+    assert (r.computed, r.carried) == (len(new_keys), len(survivors)) and r.carried > 0
+    assert r.reused == r.pieces - r.computed - r.carried and r.shards_kept == first.shards_written - len(hit)
+    assert r.shards_removed == len(hit)
+    written = json.loads((folder / "export.json").read_text())["written"]
+    assert written == {"computed": r.computed, "carried": r.carried, "reused": r.reused,
+                       "shards_written": r.shards_written, "shards_kept": r.shards_kept}
+    assert re.search(rf"computed / carried / reused\s+{r.computed} / {r.carried} / {r.reused}\n", r.table())
+
+    # array for array what a fresh export writes (drum arrays too)
+    after, fresh = _arrays(folder), _fresh_arrays(out, tmp_path, opts)
+    assert after.keys() == fresh.keys() and all(np.array_equal(after[k], fresh[k]) for k in fresh)
+    ex, ref = open_export(folder), open_export(tmp_path / "fresh" / "export" / fmt)
+    for e in ex.entries:
+        assert np.array_equal(ex.load(e["drums_key"]), ref.load(e["drums_key"]))
+    assert [{k: v for k, v in e.items() if k not in ("file", "shard_bytes", "shard_sha256")} for e in ex.entries] == [
+        {k: v for k, v in e.items() if k not in ("file", "shard_bytes", "shard_sha256")} for e in ref.entries]
+
+    # the new shards hold the bytes the same rerun writes when it decodes every piece again
+    from pipeline.export import build
+    monkeypatch.setattr(build._Carried, "take", lambda self, key: None)
+    again = export_output(before_rerun, opts)
+    assert again.computed == r.computed + r.carried and again.carried == 0
+    new_shards = {e["file"] for e in entries} - {e["file"] for e in old.values()}
+    assert new_shards and all((folder / s).read_bytes() == (before_rerun / "export" / fmt / s).read_bytes()
+                              for s in new_shards)
+
+    # nothing changed since: nothing written, export.json keeps the counts of the export that wrote it
+    files = {p: p.stat().st_mtime_ns for p in folder.rglob("*") if p.is_file()}
+    quiet = export_output(out, opts)
+    assert (quiet.computed, quiet.carried, quiet.shards_written) == (0, 0, 0)
+    assert {p: p.stat().st_mtime_ns for p in folder.rglob("*") if p.is_file()} == files
+
+
+def test_a_damaged_old_shard_is_not_read_from_its_pieces_are_computed(tmp_path, monkeypatch):
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    out = tmp_path / "out"
+    _run(out, corpus)
+    opts = ExportOptions("pianoroll", shard_mb=0.5)
+    export_output(out, opts)
+    folder = out / "export" / "pianoroll"
+    old = {e["key"]: e for e in open_export(folder).entries}
+    hit = _remove_spread(corpus, out, folder)
+    damaged, intact = sorted(hit)[:2]
+    # its bytes changed: a readable shard of the same members and shapes, every array silent
+    with np.load(folder / damaged) as z:
+        silent = {k: np.zeros_like(z[k]) for k in z.files}
+    np.savez_compressed(folder / damaged, **silent)
+
+    calls = _counting_arrays_of(monkeypatch)
+    r = export_output(out, opts)
+    listed = open_export(folder).entries
+    entries = {e["key"] for e in listed}
+    new_keys = _new_or_changed(old, listed)
+    damaged_left = ({e["key"] for e in hit[damaged][1:]} & entries) - new_keys
+    assert damaged_left and sorted(calls) == sorted(damaged_left | new_keys)
+    assert r.computed == len(damaged_left | new_keys)
+    assert r.carried == sum(len(({e["key"] for e in lines[1:]} & entries) - new_keys)
+                            for s, lines in hit.items() if s != damaged)
+    assert {e["key"] for e in hit[intact][1:]} & entries and not set(calls) & {e["key"] for e in hit[intact]}
+    after, fresh = _arrays(folder), _fresh_arrays(out, tmp_path, opts)
+    assert after.keys() == fresh.keys() and all(np.array_equal(after[k], fresh[k]) for k in fresh)
+    assert all(after[k].any() for k in damaged_left)  # not the silent arrays of the damaged shard
+
+
+def test_when_every_shard_lost_a_piece_the_rerun_writes_a_fresh_exports_shards(tmp_path, monkeypatch):
+    # the layout depends on history (kept shards stay as they are, the other pieces are packed
+    # into new shards after them); with no shard kept, it is a fresh export's, byte for byte
+    corpus = tmp_path / "corpus"
+    shutil.copytree(DEMO, corpus)
+    out = tmp_path / "out"
+    _run(out, corpus)
+    opts = ExportOptions("events", shard_mb=0.02)
+    export_output(out, opts)
+    folder = out / "export" / "events"
+    by_shard: dict[str, list[dict]] = {}
+    for e in open_export(folder).entries:
+        by_shard.setdefault(e["file"], []).append(e)
+    for lines in by_shard.values():
+        (corpus / lines[-1]["source"]).unlink()
+    _run(out, corpus)
+    calls = _counting_arrays_of(monkeypatch)
+    r = export_output(out, opts)
+    assert r.shards_kept == 0 and r.carried > 0 and len(calls) == r.computed < r.carried
+    fresh = tmp_path / "fresh"
+    shutil.copytree(out, fresh, ignore=shutil.ignore_patterns("export"))
+    export_output(fresh, opts)
+
+    def shards(root: Path) -> list[bytes]:
+        entries = open_export(root / "export" / "events").entries
+        return [(root / "export" / "events" / f).read_bytes() for f in dict.fromkeys(e["file"] for e in entries)]
+    assert shards(out) == shards(fresh)

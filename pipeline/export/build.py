@@ -15,7 +15,10 @@ of their file); ``key`` is the file's name without ``.mid`` (its id, plus the co
 Reruns write only what changed: a shard is kept untouched when every piece in it is still
 wanted, in the same part, with the same normalized bytes (sha256) and the same options, and
 the shard file still has the size and sha256 its index lines record; the pieces of every
-other shard, and new pieces, go into new shards.
+other shard, and new pieces, go into new shards. Of those, a piece still wanted unchanged
+whose old shard has the size and sha256 its index lines record (a shard that lost a piece)
+has its arrays read from that shard ("carried") rather than computed again from its
+normalized file; the new shards hold the same bytes either way.
 
 An export never writes over a shard its folder's index names: new shards take names no index
 line uses (another options' shards carry another fingerprint in their name), the index is
@@ -25,6 +28,7 @@ names removed. An export stopped at any point leaves the previous one readable a
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import math
 import os
@@ -214,8 +218,9 @@ class Wanted:
 class ExportResult:
     folder: Path
     pieces: int = 0
-    computed: int = 0
-    reused: int = 0
+    computed: int = 0  # pieces whose arrays were computed from their normalized file
+    carried: int = 0  # pieces whose arrays were read from an old shard into a new one
+    reused: int = 0  # pieces of the shards kept untouched
     shards_written: int = 0
     shards_kept: int = 0
     shards_removed: int = 0
@@ -227,7 +232,7 @@ class ExportResult:
         lines = [f"{'pieces exported':<28}{self.pieces:>8}"]
         lines += [f"{'  ' + part:<28}{n:>8}" for part, n in self.parts.items()]
         lines += [f"{'pieces with no pitched note':<28}{self.no_pitched_note:>8}"]
-        lines += [f"{'computed / reused':<28}{self.computed:>8} / {self.reused}",
+        lines += [f"{'computed / carried / reused':<28}{self.computed:>8} / {self.carried} / {self.reused}",
                   f"{'shards written / kept':<28}{self.shards_written:>8} / {self.shards_kept}",
                   f"{'shards removed':<28}{self.shards_removed:>8}",
                   f"{'seconds':<28}{self.seconds:>8.2f}",
@@ -387,6 +392,73 @@ def _fingerprint(opts: ExportOptions) -> str:
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
+def _unchanged(w: Wanted | None, line: dict) -> bool:
+    """Whether the index line (of these options) describes the wanted piece as it is now: the
+    same key, part, source and normalized bytes (digest)."""
+    return (w is not None and w.part == line.get("part") and w.digest == line.get("digest")
+            and w.source == line.get("source"))
+
+
+class _Carried:
+    """The arrays of pieces still wanted unchanged whose old shard cannot be kept (it lost a
+    piece, or holds one that changed), read from that shard instead of computed again.
+
+    Each old shard is read once, when its first such piece is asked for: its bytes are checked
+    against the size and sha256 its index lines record (a shard that is not the one the index
+    describes gives nothing: its pieces are computed), then its members are read from those
+    very bytes as they are asked for, each checked against its line's shape and dtype; the
+    shard is let go after its last piece. Asked in index order, as the new shards are written,
+    one or two old shards are held at a time (their compressed bytes)."""
+
+    def __init__(self, folder: Path, lines: dict[str, list[dict]]):
+        self.folder = folder
+        self.line_of = {line["key"]: line for group in lines.values() for line in group}
+        self.left = {shard: len(group) for shard, group in lines.items()}
+        self.shards: dict[str, Any] = {}  # shard -> its open NpzFile, or None when not intact
+
+    def take(self, key: str) -> tuple[np.ndarray, np.ndarray | None] | None:
+        """The piece's (array, drums or None) from its old shard; None when there is none to
+        read (not a carried piece, or its shard or member is not the one its line describes)."""
+        line = self.line_of.pop(key, None)
+        if line is None:
+            return None
+        shard = line["file"]
+        z = self.shards[shard] if shard in self.shards else self._open(shard, line)
+        got = None
+        if z is not None:
+            try:
+                arr = z[key]
+                drums = z[line["drums_key"]] if "drums_key" in line else None
+                if (list(arr.shape) == list(line["shape"]) and str(arr.dtype) == line["dtype"]
+                        and (drums is None or (list(drums.shape) == list(line["drums_shape"])
+                                               and str(drums.dtype) == line["dtype"]))):
+                    got = arr, drums
+            except (KeyError, OSError, ValueError, EOFError, zipfile.BadZipFile):
+                pass
+        self.left[shard] -= 1
+        if not self.left[shard]:
+            self.close(shard)
+        return got
+
+    def _open(self, shard: str, line: dict) -> Any:
+        z = None
+        try:
+            data = (self.folder / shard).read_bytes()
+            if len(data) == line.get("shard_bytes") and hashlib.sha256(data).hexdigest() == line.get("shard_sha256"):
+                z = np.load(io.BytesIO(data), allow_pickle=False)
+        except (OSError, ValueError, EOFError, zipfile.BadZipFile):
+            z = None
+        self.shards[shard] = z
+        return z
+
+    def close(self, shard: str | None = None) -> None:
+        for name in [shard] if shard is not None else list(self.shards):
+            z = self.shards.get(name)
+            if z is not None:
+                z.close()
+            self.shards[name] = None
+
+
 def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], opts: ExportOptions,
            progress: Any) -> ExportResult:
     fp = _fingerprint(opts)
@@ -400,15 +472,17 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], 
             by_shard.setdefault(line["file"], []).append(line)
     kept_lines: dict[str, dict] = {}
     kept_shards: set[str] = set()
+    carry: dict[str, list[dict]] = {}  # shard that cannot be kept -> its pieces still wanted unchanged
     for shard, lines in by_shard.items():
-        ok = all((w := want.get(line["key"])) is not None and w.part == line["part"] and w.digest == line["digest"]
-                 and w.source == line["source"] for line in lines) and _shard_intact(folder, shard, lines[0])
-        if ok:
+        same = [line for line in lines if _unchanged(want.get(line["key"]), line)]
+        if len(same) == len(lines) and _shard_intact(folder, shard, lines[0]):
             kept_shards.add(shard)
             kept_lines.update((line["key"], line) for line in lines)
+        elif same and len(same) < len(lines):  # (all unchanged but not intact: nothing to read)
+            carry[shard] = same
     result = ExportResult(folder, pieces=len(wanted), reused=len(kept_lines))
     todo = [w for w in wanted if w.key not in kept_lines]
-    result.computed = len(todo)
+    carried = _Carried(folder, carry)
     limit = opts.shard_mb * (1 << 20)
     new_lines: dict[str, dict] = {}
     arrays: dict[str, np.ndarray] = {}
@@ -437,27 +511,38 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], 
         result.shards_written += 1
         arrays, pending, size = {}, [], 0
 
-    for w in todo:
-        if w.part != current_part:
-            flush()
-            current_part = w.part
-        arr, drums = arrays_of(out_dir / w.midi, opts)
-        line = {"id": w.id, "source": w.source, "part": w.part, "file": None, "key": w.key,
-                "shape": list(arr.shape), "dtype": str(arr.dtype), "options": recorded,
-                "midi": w.midi, "digest": w.digest, "fingerprint": fp, "no_pitched_note": not arr.any()}
-        nbytes = arr.nbytes + (drums.nbytes if drums is not None else 0)
-        if pending and size + nbytes > limit:  # this piece starts the next shard
-            flush()
-        arrays[w.key] = arr
-        if drums is not None:
-            line["drums_key"] = f"{w.key}.drums"
-            line["drums_shape"] = list(drums.shape)
-            arrays[line["drums_key"]] = drums
-        pending.append(line)
-        size += nbytes
-        if progress is not None:
-            progress(1)
-    flush()
+    computed: set[str] = set()  # keys of the pieces computed from their normalized file
+    try:
+        for w in todo:
+            if w.part != current_part:
+                flush()
+                current_part = w.part
+            got = carried.take(w.key)
+            if got is not None:
+                result.carried += 1
+            else:
+                got = arrays_of(out_dir / w.midi, opts)
+                computed.add(w.key)
+            arr, drums = got
+            line = {"id": w.id, "source": w.source, "part": w.part, "file": None, "key": w.key,
+                    "shape": list(arr.shape), "dtype": str(arr.dtype), "options": recorded,
+                    "midi": w.midi, "digest": w.digest, "fingerprint": fp, "no_pitched_note": not arr.any()}
+            nbytes = arr.nbytes + (drums.nbytes if drums is not None else 0)
+            if pending and size + nbytes > limit:  # this piece starts the next shard
+                flush()
+            arrays[w.key] = arr
+            if drums is not None:
+                line["drums_key"] = f"{w.key}.drums"
+                line["drums_shape"] = list(drums.shape)
+                arrays[line["drums_key"]] = drums
+            pending.append(line)
+            size += nbytes
+            if progress is not None:
+                progress(1)
+        flush()
+    finally:
+        carried.close()
+    result.computed = len(computed)
 
     lines = [kept_lines.get(w.key) or new_lines[w.key] for w in wanted]
     result.parts = {part: 0 for part in parts}
@@ -466,32 +551,48 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], 
     result.no_pitched_note = sum(bool(line.get("no_pitched_note")) for line in lines)
     # the new export takes over here: its index first (the loader checks export.json and the
     # vocabulary against the index's fingerprint), then the files that describe it
-    _write_if_changed(folder / "index.jsonl", "".join(json.dumps(line) + "\n" for line in lines))
+    index_written = _write_if_changed(folder / "index.jsonl", "".join(json.dumps(line) + "\n" for line in lines))
     meta = {"format": opts.format, "options": recorded, "fingerprint": fp, "encoding_version": ENCODING_VERSION,
             "layout": LAYOUT, "pieces": len(lines), "parts": result.parts,
             "no_pitched_note": result.no_pitched_note}
-    _write_if_changed(folder / "export.json", json.dumps(meta, indent=2) + "\n")
+    result.shards_kept = len(kept_shards)
+    # how the export that wrote this index got its pieces: a rerun that leaves the index as it
+    # was leaves export.json too (its counts then still describe the export that wrote both)
+    old_meta = _read_json(folder / "export.json")
+    if index_written or old_meta is None or {k: v for k, v in old_meta.items() if k != "written"} != meta:
+        meta["written"] = {"computed": result.computed, "carried": result.carried, "reused": result.reused,
+                           "shards_written": result.shards_written, "shards_kept": result.shards_kept}
+        _write_if_changed(folder / "export.json", json.dumps(meta, indent=2) + "\n")
     if opts.format == "events":
         vocab = vocabulary(opts.max_shift_steps, opts.velocity_bins, opts.step)  # type: ignore[arg-type]
         _write_if_changed(folder / "vocabulary.json", json.dumps({**vocab, "fingerprint": fp}, indent=1) + "\n")
     # only now, with the new index in place, the shards it does not name go
     names = {line["file"] for line in lines}
-    result.shards_kept = len(kept_shards)
     result.shards_removed = _remove_strays(folder, names)
     if opts.format == "pianoroll":
-        _previews(out_dir, folder, wanted[:opts.previews], {w.key for w in todo}, opts)  # type: ignore[index]
+        _previews(out_dir, folder, wanted[:opts.previews], computed, opts)  # type: ignore[index]
     return result
 
 
-def _write_if_changed(path: Path, text: str) -> None:
+def _write_if_changed(path: Path, text: str) -> bool:
     """Write ``text`` atomically unless the file already holds it (a rerun with nothing new
-    leaves every file of the export untouched)."""
+    leaves every file of the export untouched); whether it was written."""
     try:
         if path.read_text(encoding="utf-8") == text:
-            return
+            return False
     except (OSError, UnicodeDecodeError):
         pass
     write_atomic(path, text)
+    return True
+
+
+def _read_json(path: Path) -> dict | None:
+    """A JSON object file's contents, None when it is missing or unreadable."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
 
 
 def _remove_strays(folder: Path, shards: set[str]) -> int:
