@@ -57,7 +57,6 @@ def test_a_collection_laid_out_by_piece_beside_others_is_found_on_its_own():
     layout = piece_folders(songs + mixed)
     assert layout.depth is None and layout.share < FOLDER_SHARE
     assert [(top, found.depth, found.folders) for top, found in layout.collections] == [("songs", 2, 5)]
-    assert layout.depth_of("songs/song3/versions/v0.mid") == 2 and layout.depth_of("gen/d0/f0.mid") is None
     assert layout.as_dict()["collections"]["songs"]["depth"] == 2
     from pipeline.stages.split import _piece_folder
     assert _piece_folder("songs/song3/versions/v0.mid", {"songs": 2}) == "songs/song3"

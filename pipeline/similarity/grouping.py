@@ -102,13 +102,6 @@ class FolderLayout:
             out["collections"] = {top: found.as_dict() for top, found in self.collections}
         return out
 
-    def depth_of(self, path: str) -> int | None:
-        """The folder depth that ties ``path`` to its piece's other files, or None."""
-        if self.depth is not None:
-            return self.depth
-        top = path.partition("/")[0]
-        return next((found.depth for t, found in self.collections if t == top), None)
-
 
 def piece_folders(files: Iterable[tuple[str, Hashable]], depths: Sequence[int] = FOLDER_DEPTHS,
                   share: float = FOLDER_SHARE, min_folders: int = FOLDER_MIN) -> FolderLayout:

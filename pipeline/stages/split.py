@@ -173,11 +173,11 @@ def off_target_warnings(files: dict[str, int], ratios: dict[str, float], freeze:
         n = files.get(part, 0)
         share = n / total
         if n and abs(share - target) > max(OFF_TARGET, target / 2):
-            merged = (f"'{freeze}' (freeze)" if freeze else "the part holding most of their files")
+            merged = f"'{freeze}' (freeze)" if freeze else "the part holding most of their files"
             out.append(f"part '{part}' holds {share:.1%} of the kept files ({n:,} of {total:,}), "
                        f"its target {float(target):.0%}: the groups are few or large (folders, "
-                       f"group fields), or reruns joined groups linked across parts to {merged}; `midisift run --reassign` places every group "
-                       "again (files may change part)")
+                       f"group fields), or reruns joined groups linked across parts to {merged}; "
+                       "`midisift run --reassign` places every group again (files may change part)")
     return out
 
 @register
