@@ -94,8 +94,13 @@ def _mates(out_dir: Path, wanted: dict[str, Any]) -> dict[str, list[dict]]:
     found: dict[str, list[dict]] = {k: [] for k in wanted}
     if not wanted or not manifest.is_file():
         return found
+    # speed: a line is parsed only when it holds one of the values as JSON writes it (a scale
+    # audit: every line parsed, each explain took a third of a second at 26,505 files)
+    needles = [json.dumps(v, ensure_ascii=False) for v in wanted.values()]
     with open(manifest, encoding="utf-8") as fh:
         for line in fh:
+            if not any(n in line for n in needles):
+                continue
             row = json.loads(line)
             for field, value in wanted.items():
                 if row.get(field) == value:
