@@ -748,3 +748,29 @@ def test_a_run_without_the_compiled_decoder_says_so(tmp_path, monkeypatch):
     monkeypatch.setattr(runner_module, "HAVE_ACCEL", True)
     report = _run(tmp_path / "out2", inp)
     assert not any("compiled decoder" in n for n in report.notes)
+
+
+def test_progress_bars_on_a_terminal_that_reports_no_width(monkeypatch, tmp_path):
+    """A pty without a window size reports 0 columns; tqdm's dynamic width then drew empty
+    bars for a whole run (an audit): such a terminal gets 80 columns, a sized one its own."""
+    import io
+    import os
+    import sys
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output=str(tmp_path / "out"))
+    runner = Runner(cfg, quiet=False)
+    fake = io.StringIO()
+    fake.isatty = lambda: True  # type: ignore[method-assign]
+    fake.fileno = lambda: 2  # type: ignore[method-assign]
+    monkeypatch.setattr(sys, "stderr", fake)
+    for cols, expect in ((0, 80), (132, "its own")):
+        monkeypatch.setattr(os, "get_terminal_size", lambda fd=2, c=cols: os.terminal_size((c, 24)))
+        bar = runner._bar("decode", 10)
+        try:
+            assert bar.ncols == 80 if expect == 80 else 80 < bar.ncols <= cols
+            bar.update(5)
+            bar.refresh()
+            if expect == 80:  # a bar drawn, 80 columns wide
+                line = fake.getvalue().rsplit("\r", 1)[-1]
+                assert "5/10" in line and "#" in line and len(line) <= 80
+        finally:
+            bar.close()

@@ -22,6 +22,7 @@ from __future__ import annotations
 import gc
 import hashlib
 import json
+import os
 import sqlite3
 import sys
 import time
@@ -91,9 +92,15 @@ class Runner:
         if self.quiet or not sys.stderr.isatty():
             return _NoBar()  # a disabled tqdm still starts its monitor thread
         from tqdm import tqdm
+        # a terminal that reports no width (a pty without a window size, as some CI runners
+        # give) gets bars 80 columns wide: tqdm's dynamic width drew them empty (an audit)
+        try:
+            width = os.get_terminal_size(sys.stderr.fileno()).columns
+        except (OSError, ValueError):
+            width = 0
         # the per-file pass works once per distinct content (the table's "contents decoded")
         return tqdm(total=total, desc=f"{desc:<17}", unit="content", position=position,
-                    leave=True, dynamic_ncols=True)
+                    leave=True, dynamic_ncols=width > 0, ncols=None if width > 0 else 80)
 
     def run(self) -> RunReport:
         t_start = time.perf_counter()
