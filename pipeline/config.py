@@ -192,21 +192,21 @@ def parse_config(raw: Any, *, source: str | None = None) -> Config:
     except ConfigError as e:
         problems.append(e)
     stages = _parse_stages(raw.get("stages"), problems)
-    metadata: Metadata | None = Metadata()
+    metadata = Metadata()
+    table_read = True  # else its columns are unknown: names are not checked against them (an
+    # audit: one mistake in the table also gave a false "not a column" error)
     if raw.get("metadata") is not None:
         if not isinstance(raw["metadata"], str) or not raw["metadata"]:
             problems.append(ConfigError(f"'metadata' must be the path of a CSV table, got "
                                         f"{raw['metadata']!r}", location="metadata"))
-            metadata = None
+            table_read = False
         else:
             try:
                 metadata = load_metadata(raw["metadata"])
             except ConfigError as e:
                 problems.append(e)
-                metadata = None  # its columns are unknown: names are not checked against them
-    if metadata is None:
-        metadata = Metadata()
-    else:  # an audit: one mistake in the table also gave a false "not a column" error
+                table_read = False
+    if table_read:
         problems.extend(_check_field_names(stages, metadata))
     for p in problems:
         p.file = p.file or source
