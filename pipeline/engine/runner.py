@@ -46,6 +46,7 @@ from . import uptodate
 from .executor import Limits, run_tasks
 from .heap import release_free_memory
 from .plan import Everything, Planner
+from .rejudge import judge_stages_again
 from .sources import Contents, Discovery, SourceFile, check_folders, discover, fingerprint, source_path
 from .walk import StageWalk, last_run_fingerprint
 from .worker import FileTask, fault_outcome, process_file, warm_before_fork
@@ -205,6 +206,10 @@ class Runner:
                                                stored)
                      for name, source in self._values.items()}
         del stored
+        # a changed filter limit reads no file: its verdicts are judged from stored measures
+        for name, n in judge_stages_again(ledger, self.stages, cache, order, self._recomputed.mark).items():
+            notes.append(f"{name}: {n} verdicts judged again from the values stored under earlier "
+                         "options (no file read for them)")
         # a corpus stage without a prepare step (the split reading dedup's signatures) has
         # nothing to store per file
         art_keys = {s.name: ledger.artifact_keys(s.name, s.artifact_fingerprint) if s.has_prepare()

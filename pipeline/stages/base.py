@@ -167,6 +167,16 @@ class Stage:
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:  # pragma: no cover
         raise NotImplementedError
 
+    #: True when the verdict is a function of the values the stage records and its options
+    #: alone (``judge_values``): a rerun with other options judges stored values again
+    #: instead of decoding the files (``engine.rejudge``).
+    judges_values = False
+
+    def judge_values(self, values: dict[str, Any]) -> StageResult | None:
+        """The verdict ``process`` gives a piece whose result recorded ``values`` (under any
+        options of this stage's version), or None when they do not suffice."""
+        return None
+
     def bind(self, earlier: list["Stage"]) -> None:
         """Called once by whoever runs a config, with the stages configured before this one
         (e.g. the split reads dedup's signatures when they are the ones it needs)."""

@@ -298,6 +298,17 @@ class Filter(Stage):
         stats = ctx.analysis("stats", piece_stats)
         return judge(stats, self.opts, self._thresholds())
 
+    judges_values = True
+
+    def judge_values(self, values: dict[str, Any]) -> StageResult | None:
+        """``judge`` on the measures a result recorded (``values``: every measure, and the
+        programs with ``drums`` for the drum channel); None for a fault's empty values."""
+        programs = values.get("programs")
+        if not isinstance(programs, list) or any(m not in values for m in MEASURES):
+            return None
+        stats = dict(values, programs=[p for p in programs if p != DRUMS], has_drums=DRUMS in programs)
+        return judge(stats, self.opts, self._thresholds())
+
     def _thresholds(self) -> dict[str, Any]:
         """``thresholds_of(self.opts)``, built once per option setting instead of once per
         file (results treat it as read-only, as ``records`` does when it shares equal ones)."""

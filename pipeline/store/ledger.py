@@ -221,6 +221,12 @@ class Ledger:
         into ``order`` (sha256s)."""
         return StoredValues(self.db, stage, fingerprint, order)
 
+    def stored_values(self, stage: str, fingerprint: str, shas: list[str]) -> Iterator[tuple[str, str]]:
+        """(sha256, values JSON text) of the stage's results under ``fingerprint`` for those of
+        ``shas`` that have one."""
+        return rows_of_contents(self.db, "SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=?",
+                                (stage, fingerprint), shas)
+
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
         (``stored_result``: what the workers send, values already JSON text)."""
@@ -410,6 +416,15 @@ class Ledger:
     def finish_run(self, run_id: int, counts: dict) -> None:
         self.db.execute("UPDATE runs SET finished=?, status='complete', counts=? WHERE id=?",
                         (time.time(), canonical_json(counts), run_id))
+
+    def run_stage_options(self, latest: int) -> list[list]:
+        """The ``stages`` ([name, options] pairs) of the ``latest`` runs, most recent first."""
+        out = []
+        for (text,) in self.db.execute("SELECT config FROM runs ORDER BY id DESC LIMIT ?", (latest,)):
+            stages = json.loads(text).get("stages")
+            if isinstance(stages, list):
+                out.append([pair for pair in stages if isinstance(pair, list) and len(pair) == 2])
+        return out
 
     def runs_unfinished(self, after: int, before: int) -> int:
         """How many runs started after run ``after`` and before run ``before`` did not complete."""

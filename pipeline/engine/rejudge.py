@@ -1,0 +1,82 @@
+"""Verdicts judged again from stored values: a changed limit reads no file.
+
+A per-file stage whose verdict depends only on the values it records (the filter: its limits
+held against the measures of a piece) can give its verdict under new options from a result it
+stored under old ones (``Stage.judge_values``). The old results are found by the fingerprints
+that earlier runs' options have under this code (``Stage.fingerprint`` hashes the stage's
+version and the decoder's rules, so a fingerprint this code computes names only results this
+code's measures made). A content with no such result is decoded as before.
+"""
+from __future__ import annotations
+
+import json
+from typing import Any, Callable, Iterator
+
+from ..stages import Stage
+from ..store.codec import stored_result
+from ..store.ledger import Ledger
+
+#: The latest runs whose options are looked at for stored results to judge again.
+RUNS_LOOKED_AT = 20
+
+
+def earlier_fingerprints(ledger: Ledger, stage: Stage) -> list[str]:
+    """The fingerprints, other than the stage's own, that its options in the latest runs have
+    under this code (most recent first, each once)."""
+    out: list[str] = []
+    for stages in ledger.run_stage_options(RUNS_LOOKED_AT):
+        for name, opts in stages:
+            if name != stage.name or not isinstance(opts, dict):
+                continue
+            fp = type(stage)(opts).fingerprint
+            if fp != stage.fingerprint and fp not in out:
+                out.append(fp)
+    return out
+
+
+def judge_again(ledger: Ledger, stage: Stage, earlier: list[str],
+                missing: list[str]) -> Iterator[tuple[str, tuple]]:
+    """(sha256, stored result) for each of the ``missing`` contents (no verdict under the
+    stage's options) that the stage can judge from values it stored under the ``earlier``
+    fingerprints (tried in their order)."""
+    left = set(missing)
+    for fp in earlier:
+        if not left:
+            return
+        for sha, vals in ledger.stored_values(stage.name, fp, sorted(left)):
+            result = stage.judge_values(json.loads(vals))
+            if result is None:
+                continue
+            left.discard(sha)
+            yield sha, stored_result(result.to_json())
+
+
+def judge_stages_again(ledger: Ledger, stages: list[Stage], cache: dict[str, Any],
+                       order: list[str], mark: Callable[[int], None]) -> dict[str, int]:
+    """Fill each judging stage's verdict columns (``cache``, ``records.Verdicts``) for the
+    contents that have none under its options, from its earlier results; the new results are
+    stored under its fingerprint and their contents marked (``mark``: their rows are made
+    again). Returns stage -> contents judged again."""
+    counts: dict[str, int] = {}
+    for st in stages:
+        if st.kind != "file" or not st.judges_values:
+            continue
+        earlier = earlier_fingerprints(ledger, st)
+        if not earlier:
+            continue
+        verdicts = cache[st.name]
+        missing = [order[i] for i in range(len(order)) if verdicts.kept_at(i) is None]
+        if not missing:
+            continue
+        rows = []
+        for sha, stored in judge_again(ledger, st, earlier, missing):
+            i = verdicts.index[sha]
+            verdicts.put_stored(i, stored)
+            mark(i)
+            rows.append((sha, st.name, st.fingerprint, stored))
+        if rows:
+            with ledger.batch():
+                ledger.put_results(rows)
+            verdicts.source.rows_added()
+            counts[st.name] = len(rows)
+    return counts
