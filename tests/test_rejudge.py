@@ -21,10 +21,11 @@ from test_stats import make_piece
 
 import pipeline.engine.runner as runner_module
 from pipeline.config import load_config
-from pipeline.engine.rejudge import earlier_fingerprints
+from pipeline.engine.rejudge import earlier_options
 from pipeline.engine.runner import Runner
 from pipeline.stages.base import FileContext
 from pipeline.stages.filter import Filter
+from pipeline.stages.validate import Validate
 from pipeline.store.ledger import Ledger
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -103,7 +104,7 @@ def test_results_of_another_version_are_not_judged_again(base, tmp_path):
     assert not any(n.startswith("filter: ") for n in report.notes)
 
 
-def test_earlier_fingerprints_come_from_earlier_runs_options(base, tmp_path):
+def test_earlier_options_come_from_earlier_runs(base, tmp_path):
     out = tmp_path / "out"
     shutil.copytree(base, out)
     _run(out, STRICT)
@@ -111,9 +112,9 @@ def test_earlier_fingerprints_come_from_earlier_runs_options(base, tmp_path):
     default = Filter(next(s.options for s in cfg.stages if s.name == "filter"))
     strict = Filter({**default.opts, **STRICT})
     with Ledger(out / "state.sqlite") as ledger:
-        assert earlier_fingerprints(ledger, strict) == [default.fingerprint]
+        assert earlier_options(ledger, strict) == [(default.fingerprint, default.opts)]
         loose = Filter({**default.opts, **LOOSE})
-        assert earlier_fingerprints(ledger, loose) == [strict.fingerprint, default.fingerprint]
+        assert [fp for fp, _ in earlier_options(ledger, loose)] == [strict.fingerprint, default.fingerprint]
 
 
 @pytest.mark.parametrize("rows, opts", [
@@ -128,12 +129,103 @@ def test_judging_stored_values_gives_the_verdict_of_the_piece(rows, opts):
     # piece itself gets, under the default limits and under others
     piece = make_piece(rows, T120)
     first = Filter({}).process(piece, FileContext(piece))
-    values = json.loads(json.dumps(first.to_json()["values"]))
+    stored = json.loads(json.dumps(first.to_json()))
     for judge_opts in ({}, opts, {"min_seconds": 40.0}):
         stage = Filter(judge_opts)
-        assert stage.judge_values(values).to_json() == stage.process(piece, FileContext(piece)).to_json()
+        judged = stage.judge_stored(stored, Filter({}).opts)
+        assert judged.to_json() == stage.process(piece, FileContext(piece)).to_json()
 
 
 def test_a_fault_without_measures_is_not_judged():
-    assert Filter({}).judge_values({}) is None
-    assert Filter({}).judge_values({"programs": []}) is None
+    fault = {"kept": False, "reason": "timeout", "detail": "", "values": {}, "thresholds": {}}
+    assert Filter({}).judge_stored(fault, Filter({}).opts) is None
+    assert Filter({}).judge_stored({**fault, "values": {"programs": []}}, Filter({}).opts) is None
+
+
+# validate: worker limits and allow_repairs ------------------------------------------------
+
+def _demo_files() -> list[tuple[str, bytes]]:
+    return [(p.relative_to(DEMO).as_posix(), p.read_bytes()) for p in sorted(DEMO.rglob("*"))
+            if p.is_file() and p.suffix.lower() in (".mid", ".midi", ".kar", ".rmi")]
+
+
+@pytest.mark.parametrize("before, after", [
+    ({}, {"allow_repairs": False}), ({"allow_repairs": False}, {}),
+    ({}, {"timeout_s": 5.0}), ({}, {"max_memory_mb": 256}), ({"timeout_s": 300.0}, {})])
+def test_validate_judges_every_demo_file_as_reading_it_does(before, after):
+    # every demo file (damaged ones, repaired ones, one without notes): the verdict judged
+    # from the stored result under the earlier options is the one reading the file gives
+    first, then = Validate(before), Validate(after)
+    files = _demo_files()
+    reasons = set()
+    for source, data in files:
+        stored = json.loads(json.dumps(first.read(data, source)[0].to_json()))
+        judged = then.judge_stored(stored, first.opts)
+        expected = then.read(data, source)[0].to_json()
+        reasons.add(expected["reason"])
+        assert judged is not None and judged.to_json() == expected, source
+    assert {"not_midi", "truncated", "no_notes", None} <= reasons
+    assert ("needs_repair" in reasons) == (after.get("allow_repairs") is False)
+
+
+def test_validate_reads_again_under_other_reading_limits_or_after_a_fault():
+    first = Validate({})
+    source, data = _demo_files()[0]
+    stored = json.loads(json.dumps(first.read(data, source)[0].to_json()))
+    for opts in ({"max_bytes": 1000}, {"max_events": 50}, {"max_tracks": 2}):
+        assert Validate(opts).judge_stored(stored, first.opts) is None
+    for reason, thresholds in (("timeout", {"timeout_s": 60.0}), ("decoder_crash", {}),
+                               ("too_large", {"max_memory_mb": 2048}), ("stage_error", {})):
+        fault = {"kept": False, "reason": reason, "detail": "x", "values": {}, "thresholds": thresholds}
+        assert Validate({"timeout_s": 120.0}).judge_stored(fault, first.opts) is None
+
+
+@pytest.mark.parametrize("opts", [{"allow_repairs": False}, {"timeout_s": 120.0}],
+                         ids=["allow_repairs", "timeout"])
+def test_a_changed_validate_option_decodes_no_file_and_writes_what_decoding_writes(base, tmp_path,
+                                                                                    monkeypatch, opts):
+    judged, decoded = tmp_path / "judged", tmp_path / "decoded"
+    shutil.copytree(base, judged)
+    shutil.copytree(base, decoded)
+    report = _run_validate(judged, opts)
+    assert report.computed == 0
+    assert any(n.startswith("validate: ") and "judged again" in n for n in report.notes)
+    monkeypatch.setattr(runner_module, "judge_stages_again", lambda *a, **k: {})
+    assert _run_validate(decoded, opts).computed > 0
+    a, b = _written(judged), _written(decoded)
+    a["summary"].pop("notes"), b["summary"].pop("notes")
+    for counts in (a["summary"]["counts"], b["summary"]["counts"]):
+        counts.pop("computed"), counts.pop("reused")
+    for key in a:
+        assert a[key] == b[key], key
+    if "allow_repairs" in opts:  # the three repaired demo files now drop
+        rows = [json.loads(line) for line in a["manifest"].splitlines()]
+        assert sorted(r["source"] for r in rows if r["reason"] == "needs_repair") == [
+            "sessions/2017/late_avenue.mid", "sessions/2021/Midnight Sketch.mid",
+            "sessions/2022/blue_lantern.rmi"]
+
+
+def test_a_stored_timeout_is_read_again_when_the_limit_changes(base, tmp_path):
+    out = tmp_path / "out"
+    shutil.copytree(base, out)
+    db = sqlite3.connect(out / "state.sqlite")
+    with db:  # one kept file's verdict as a timeout of the last run (its columns forgotten)
+        sha = db.execute("SELECT sha256 FROM results WHERE stage='validate' AND kept=1 "
+                         "ORDER BY sha256 LIMIT 1").fetchone()[0]
+        db.execute("UPDATE results SET kept=0, reason='timeout', detail='took longer than 60 s', "
+                   "vals='{}', thresholds='{\"timeout_s\": 60.0}' WHERE stage='validate' AND sha256=?", (sha,))
+        db.execute("DELETE FROM run_columns")
+    db.close()
+    report = _run_validate(out, {"timeout_s": 120.0})
+    assert report.computed == 1  # the timed-out file alone is read
+    with Ledger(out / "state.sqlite") as ledger:
+        fp = Validate({**Validate({}).opts, "max_bytes": 16000000, "max_events": 2000000,
+                       "timeout_s": 120.0}).fingerprint
+        (_, result), = ledger.results_of("validate", fp, [sha])
+    assert result["kept"] is True
+
+
+def _run_validate(out: Path, opts: dict):
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output=str(out), workers=1)
+    cfg.stages[0].options.update(opts)
+    return Runner(cfg, quiet=True).run()

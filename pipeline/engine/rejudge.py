@@ -1,15 +1,15 @@
-"""Verdicts judged again from stored values: a changed limit reads no file.
+"""Verdicts judged again from stored results: a changed limit reads no file.
 
-A per-file stage whose verdict depends only on the values it records (the filter: its limits
-held against the measures of a piece) can give its verdict under new options from a result it
-stored under old ones (``Stage.judge_values``). The old results are found by the fingerprints
-that earlier runs' options have under this code (``Stage.fingerprint`` hashes the stage's
-version and the decoder's rules, so a fingerprint this code computes names only results this
-code's measures made). A content with no such result is decoded as before.
+A per-file stage that can give its verdict under new options from the result it stored under
+old ones (``Stage.judge_stored``: the filter's limits held against the measures it recorded;
+validate's worker limits and ``allow_repairs``) is asked to, before any file is planned. The
+old results are found by the fingerprints that earlier runs' options have under this code
+(``Stage.fingerprint`` hashes the stage's version and the decoder's rules, so a fingerprint
+this code computes names only results this code made). A content the stage cannot judge so
+is decoded as before.
 """
 from __future__ import annotations
 
-import json
 from typing import Any, Callable, Iterator
 
 from ..stages import Stage
@@ -20,31 +20,31 @@ from ..store.ledger import Ledger
 RUNS_LOOKED_AT = 20
 
 
-def earlier_fingerprints(ledger: Ledger, stage: Stage) -> list[str]:
-    """The fingerprints, other than the stage's own, that its options in the latest runs have
-    under this code (most recent first, each once)."""
-    out: list[str] = []
+def earlier_options(ledger: Ledger, stage: Stage) -> list[tuple[str, dict[str, Any]]]:
+    """(fingerprint, options) of the stage in the latest runs, other than its own options,
+    fingerprinted by this code (most recent first, each fingerprint once)."""
+    out: dict[str, dict[str, Any]] = {}
     for stages in ledger.run_stage_options(RUNS_LOOKED_AT):
         for name, opts in stages:
             if name != stage.name or not isinstance(opts, dict):
                 continue
-            fp = type(stage)(opts).fingerprint
-            if fp != stage.fingerprint and fp not in out:
-                out.append(fp)
-    return out
+            earlier = type(stage)(opts)
+            if earlier.fingerprint != stage.fingerprint:
+                out.setdefault(earlier.fingerprint, earlier.opts)
+    return list(out.items())
 
 
-def judge_again(ledger: Ledger, stage: Stage, earlier: list[str],
+def judge_again(ledger: Ledger, stage: Stage, earlier: list[tuple[str, dict[str, Any]]],
                 missing: list[str]) -> Iterator[tuple[str, tuple]]:
     """(sha256, stored result) for each of the ``missing`` contents (no verdict under the
-    stage's options) that the stage can judge from values it stored under the ``earlier``
-    fingerprints (tried in their order)."""
+    stage's options) that the stage can judge from its result under one of the ``earlier``
+    options (tried in their order)."""
     left = set(missing)
-    for fp in earlier:
+    for fp, opts in earlier:
         if not left:
             return
-        for sha, vals in ledger.stored_values(stage.name, fp, sorted(left)):
-            result = stage.judge_values(json.loads(vals))
+        for sha, stored in ledger.results_of(stage.name, fp, sorted(left)):
+            result = stage.judge_stored(stored, opts)
             if result is None:
                 continue
             left.discard(sha)
@@ -59,9 +59,9 @@ def judge_stages_again(ledger: Ledger, stages: list[Stage], cache: dict[str, Any
     again). Returns stage -> contents judged again."""
     counts: dict[str, int] = {}
     for st in stages:
-        if st.kind != "file" or not st.judges_values:
+        if st.kind != "file" or not st.judges_stored:
             continue
-        earlier = earlier_fingerprints(ledger, st)
+        earlier = earlier_options(ledger, st)
         if not earlier:
             continue
         verdicts = cache[st.name]

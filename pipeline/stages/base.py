@@ -167,14 +167,15 @@ class Stage:
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:  # pragma: no cover
         raise NotImplementedError
 
-    #: True when the verdict is a function of the values the stage records and its options
-    #: alone (``judge_values``): a rerun with other options judges stored values again
-    #: instead of decoding the files (``engine.rejudge``).
-    judges_values = False
+    #: True when the stage can give its verdict under new options from the result it stored
+    #: under earlier ones (``judge_stored``): a rerun with other options then reads no file for
+    #: the contents it judges (``engine.rejudge``).
+    judges_stored = False
 
-    def judge_values(self, values: dict[str, Any]) -> StageResult | None:
-        """The verdict ``process`` gives a piece whose result recorded ``values`` (under any
-        options of this stage's version), or None when they do not suffice."""
+    def judge_stored(self, stored: dict[str, Any], earlier: dict[str, Any]) -> StageResult | None:
+        """The verdict ``process`` gives a content whose result under the stage's ``earlier``
+        options (of this version) was ``stored`` (kept, reason, detail, values, thresholds),
+        or None when the piece must be seen again."""
         return None
 
     def bind(self, earlier: list["Stage"]) -> None:

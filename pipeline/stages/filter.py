@@ -298,11 +298,13 @@ class Filter(Stage):
         stats = ctx.analysis("stats", piece_stats)
         return judge(stats, self.opts, self._thresholds())
 
-    judges_values = True
+    judges_stored = True
 
-    def judge_values(self, values: dict[str, Any]) -> StageResult | None:
-        """``judge`` on the measures a result recorded (``values``: every measure, and the
-        programs with ``drums`` for the drum channel); None for a fault's empty values."""
+    def judge_stored(self, stored: dict[str, Any], earlier: dict[str, Any]) -> StageResult | None:
+        """``judge`` on the measures the result recorded (every measure, and the programs with
+        ``drums`` for the drum channel), whatever the limits were; None for a fault's empty
+        values."""
+        values = stored["values"]
         programs = values.get("programs")
         if not isinstance(programs, list) or any(m not in values for m in MEASURES):
             return None

@@ -31,6 +31,11 @@ def _track_count(value: int) -> str | None:
     return None
 
 
+#: The reason codes of a file the decoder refused (``DecodeError.code``); ``too_large`` is also
+#: the worker's memory fault, told apart by its ``max_memory_mb`` threshold.
+DECODE_REASONS = ("not_midi", "truncated", "bad_chunk", "bad_event", "unsupported_format", "too_large")
+
+
 @register
 class Validate(Stage):
     """Decode each file; drop unreadable, empty, oversized (or, if asked, repaired) files."""
@@ -49,14 +54,18 @@ class Validate(Stage):
                "integers)", _track_count),
         Option("allow_repairs", bool, True,
                "accept the decoder's named repairs (hanging notes closed, missing end-of-track, "
-               "...); when false such files drop as needs_repair"),
+               "...); when false such files drop as needs_repair (a rerun that changes it "
+               "reads no file: the recorded repairs are judged again)"),
         # reliability options: enforced by the supervised worker pool (pipeline.engine.executor)
         Option("timeout_s", float, 60.0,
                "most seconds one file may take (decode and per-file stages); a file that takes "
-               "longer is dropped as timeout and its worker replaced", _positive_seconds),
+               "longer is dropped as timeout and its worker replaced (a rerun with another "
+               "value reads again only the files that faulted)", _positive_seconds),
         Option("max_memory_mb", int, 2048,
                "most memory (MB, above the worker's size at start) one file may need; a file "
-               "that needs more is dropped as too_large and its worker replaced", positive),
+               "that needs more is dropped as too_large and its worker replaced (as "
+               "timeout_s, a rerun with another value reads again only the files that faulted)",
+               positive),
     )
 
     reads_bytes = True
@@ -91,12 +100,17 @@ class Validate(Stage):
                   "repairs": dict(sorted(piece.repairs.items())),
                   # the manifest's ``title`` falls back to the file name when this is empty
                   "file_title": " ".join(piece.title.split())[:200]}
-        timing = ("SMPTE timing (nominal " if piece.smpte else "") + \
-            f"{piece.ticks_per_beat} ticks per beat" + (")" if piece.smpte else "")
-        detail = f"SMF format {piece.format}, {piece.n_tracks} tracks, {timing}"
-        fixes = describe_repairs(piece.repairs)
-        if len(piece.notes) == 0:
-            zero = piece.repairs.get("zero_length_notes_dropped", 0)
+        return self._verdict(values, has_notes=len(piece.notes) > 0)
+
+    def _verdict(self, values: dict[str, Any], has_notes: bool) -> StageResult:
+        """The verdict on a decoded piece described by ``values`` (``judge``'s)."""
+        timing = ("SMPTE timing (nominal " if values["smpte"] else "") + \
+            f"{values['ticks_per_beat']} ticks per beat" + (")" if values["smpte"] else "")
+        detail = f"SMF format {values['format']}, {values['track_chunks']} tracks, {timing}"
+        repairs = values["repairs"]
+        fixes = describe_repairs(repairs)
+        if not has_notes:
+            zero = repairs.get("zero_length_notes_dropped", 0)
             why = (f"its {zero} note(s) all end at the tick they start (zero length, dropped)"
                    if zero else "a file needs at least one note-on with its note-off to be used")
             return StageResult.drop("no_notes", f"{detail}, but no notes: {why}", values,
@@ -107,6 +121,24 @@ class Validate(Stage):
                                     values, self._thresholds())
         return StageResult.keep(f"{detail}; {fixes}" if fixes else detail, values,
                                 self._thresholds())
+
+    judges_stored = True
+
+    def judge_stored(self, stored: dict[str, Any], earlier: dict[str, Any]) -> StageResult | None:
+        """The verdict under other worker limits (``timeout_s``, ``max_memory_mb``) or another
+        ``allow_repairs`` from the one stored, when the reading limits are the same: a file the
+        decoder refused is refused again, a decoded one is judged on its recorded values. A
+        fault (timeout, crash, memory) is read again: new limits are what it waits for."""
+        if any(earlier[k] != self.opts[k] for k in ("max_bytes", "max_events", "max_tracks")):
+            return None
+        reason, values = stored["reason"], stored["values"]
+        if reason in ("no_notes", "needs_repair") or stored["kept"]:
+            if not {"format", "track_chunks", "ticks_per_beat", "smpte", "repairs"} <= values.keys():
+                return None
+            return self._verdict(values, has_notes=reason != "no_notes")
+        if reason in DECODE_REASONS and "max_memory_mb" not in (stored["thresholds"] or {}):
+            return StageResult.drop(reason, stored["detail"], values, self._thresholds())
+        return None
 
     def _thresholds(self) -> dict[str, Any]:
         return {k: self.opts[k] for k in ("max_bytes", "max_events", "max_tracks")}

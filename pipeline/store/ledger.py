@@ -221,11 +221,13 @@ class Ledger:
         into ``order`` (sha256s)."""
         return StoredValues(self.db, stage, fingerprint, order)
 
-    def stored_values(self, stage: str, fingerprint: str, shas: list[str]) -> Iterator[tuple[str, str]]:
-        """(sha256, values JSON text) of the stage's results under ``fingerprint`` for those of
-        ``shas`` that have one."""
-        return rows_of_contents(self.db, "SELECT sha256, vals FROM results WHERE stage=? AND fingerprint=?",
-                                (stage, fingerprint), shas)
+    def results_of(self, stage: str, fingerprint: str, shas: list[str]) -> Iterator[tuple[str, dict]]:
+        """(sha256, result dict: kept, reason, detail, values, thresholds) of the stage's
+        results under ``fingerprint`` for those of ``shas`` that have one."""
+        select = "SELECT sha256, kept, reason, detail, vals, thresholds FROM results WHERE stage=? AND fingerprint=?"
+        for sha, kept, reason, detail, vals, thr in rows_of_contents(self.db, select, (stage, fingerprint), shas):
+            yield sha, {"kept": bool(kept), "reason": reason, "detail": detail,
+                        "values": json.loads(vals), "thresholds": thresholds_from_json(thr)}
 
     def put_results(self, rows: Iterable[tuple[str, str, str, Any]]) -> None:
         """rows of (sha256, stage, fingerprint, result): a result dict, or its stored form
