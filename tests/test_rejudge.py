@@ -229,3 +229,17 @@ def _run_validate(out: Path, opts: dict):
     cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output=str(out), workers=1)
     cfg.stages[0].options.update(opts)
     return Runner(cfg, quiet=True).run()
+
+
+def test_judged_results_stored_in_several_transactions_are_the_same(base, tmp_path, monkeypatch):
+    import pipeline.engine.rejudge as rejudge
+    one, several = tmp_path / "one", tmp_path / "several"
+    shutil.copytree(base, one)
+    shutil.copytree(base, several)
+    _run(one, STRICT)
+    monkeypatch.setattr(rejudge, "BATCH", 7)
+    report = _run(several, STRICT)
+    assert report.computed == 0
+    a, b = _written(one), _written(several)
+    for key in ("manifest", "splits", "midi", "tables"):
+        assert a[key] == b[key], key

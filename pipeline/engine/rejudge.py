@@ -68,15 +68,31 @@ def judge_stages_again(ledger: Ledger, stages: list[Stage], cache: dict[str, Any
         missing = [order[i] for i in range(len(order)) if verdicts.kept_at(i) is None]
         if not missing:
             continue
-        rows = []
+        rows: list[tuple] = []
+        n = 0
         for sha, stored in judge_again(ledger, st, earlier, missing):
             i = verdicts.index[sha]
             verdicts.put_stored(i, stored)
             mark(i)
             rows.append((sha, st.name, st.fingerprint, stored))
-        if rows:
-            with ledger.batch():
-                ledger.put_results(rows)
+            if len(rows) >= BATCH:  # memory: a result's values text each, not every file's at once
+                n += _store(ledger, rows)
+        n += _store(ledger, rows)
+        if n:
             verdicts.source.rows_added()
-            counts[st.name] = len(rows)
+            counts[st.name] = n
     return counts
+
+
+#: Judged results stored per transaction.
+BATCH = 4096
+
+
+def _store(ledger: Ledger, rows: list[tuple]) -> int:
+    """Store ``rows`` (``Ledger.put_results``' form) and empty the list; returns how many."""
+    n = len(rows)
+    if n:
+        with ledger.batch():
+            ledger.put_results(rows)
+        rows.clear()
+    return n
