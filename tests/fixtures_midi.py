@@ -12,6 +12,13 @@ import numpy as np
 from pipeline.tools.fuzz import reference_rows
 
 
+def smf_bytes(mid: mido.MidiFile) -> bytes:
+    """The bytes mido writes for ``mid`` (a Standard MIDI File)."""
+    buf = io.BytesIO()
+    mid.save(file=buf)
+    return buf.getvalue()
+
+
 def parse_hexdump(hexdump: str) -> bytes:
     """Bytes from an inline commented hexdump (mido's test style: '4d 54 68 64  # MThd')."""
     out = bytearray()
@@ -74,9 +81,7 @@ def random_midi(seed: int, n_notes: int = 500, n_tracks: int = 3, tpb: int = 480
             tr.append(msg.copy(time=t - last))
             last = t
         mid.tracks.append(tr)
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 #: Column order of the comparable note rows used by the reference checks.

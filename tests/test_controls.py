@@ -19,7 +19,7 @@ import numpy as np
 import pretty_midi
 import pytest
 
-from fixtures_midi import random_midi
+from fixtures_midi import random_midi, smf_bytes
 from pipeline.midi import accel
 from pipeline.midi import decode as smf
 from pipeline.midi.encode import encode
@@ -95,9 +95,7 @@ def rich_midi(seed: int, tpb: int = 480, fps: int | None = None) -> bytes:
             tr.append(msg.copy(time=t - last))
             last = t
         mid.tracks.append(tr)
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    data = bytearray(buf.getvalue())
+    data = bytearray(smf_bytes(mid))
     if fps is not None:  # SMPTE division: -fps in the high byte, ticks per frame in the low
         data[12:14] = bytes(((256 - fps) & 0xFF, 40))
     return bytes(data)
@@ -305,9 +303,7 @@ def test_compiled_encoder_with_controls_equals_numpy():
     mf = mido.MidiFile(file=io.BytesIO(rich_midi(7)))
     zero = mido.MidiFile(type=0, ticks_per_beat=mf.ticks_per_beat)
     zero.tracks.append(mido.merge_tracks(mf.tracks))
-    buf = io.BytesIO()
-    zero.save(file=buf)
-    for data in (buf.getvalue(), rich_midi(8, fps=25)):
+    for data in (smf_bytes(zero), rich_midi(8, fps=25)):
         p = smf.decode(data)
         out = encode(p, accelerated=True)
         assert out == encode(p, accelerated=False)

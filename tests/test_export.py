@@ -27,7 +27,7 @@ from pipeline.export.png import png_bytes, roll_image
 from pipeline.engine.runner import Runner
 from pipeline.midi.decode import decode
 
-from fixtures_midi import random_midi
+from fixtures_midi import random_midi, smf_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_corpus"
@@ -164,9 +164,7 @@ def _pedal_case() -> bytes:
                    track(0, [(192, 240, 72)], []),
                    # the drum channel is never held
                    track(9, [(192, 240, 38)], [(48, 127), (480, 0)])]
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 def test_sustain_holds_a_note_sounding_at_pedal_down_or_struck_before_pedal_up():
@@ -745,9 +743,7 @@ def _drums_only_midi() -> bytes:
         tr.append(mido.Message("note_on", channel=9, note=36 + i % 5, velocity=100, time=0 if i == 0 else 120))
         tr.append(mido.Message("note_off", channel=9, note=36 + i % 5, velocity=0, time=120))
     mid.tracks.append(tr)
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 def test_pieces_with_no_pitched_note_are_counted(tmp_path, capsys):
@@ -811,9 +807,7 @@ def _program_change_under_pedal() -> bytes:
         mido.Message("note_off", channel=0, note=64, time=48),
         mido.Message("control_change", channel=0, control=64, value=0, time=144),
         mido.Message("control_change", channel=0, control=7, value=90, time=960)]))
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 def test_the_pedal_is_the_tracks_and_channels_whatever_the_program_and_the_roll_ends_at_the_last_note():

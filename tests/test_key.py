@@ -1,12 +1,12 @@
 """Key detection checked against published profiles, music21's analyzers and Bach chorales."""
 from __future__ import annotations
 
-import io
 
 import mido
 import numpy as np
 import pytest
 
+from fixtures_midi import smf_bytes
 from pipeline.analysis import key as keymod
 from pipeline.analysis import key_profiles
 from pipeline.tools.evaluate_key import (agreement_with_music21, key_table, mirex_score,
@@ -148,9 +148,7 @@ def test_declared_key_from_key_signature_event(mido_key, declared):
                          mido.Message("note_on", note=60, velocity=80, time=0),
                          mido.Message("note_off", note=60, velocity=0, time=480)])
     mf.tracks.append(tr)
-    buf = io.BytesIO()
-    mf.save(file=buf)
-    assert keymod.declared_key(decode(buf.getvalue())) == declared
+    assert keymod.declared_key(decode(smf_bytes(mf))) == declared
 
 
 def test_drums_and_empty_pieces(works):

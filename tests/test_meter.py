@@ -13,6 +13,7 @@ import mido
 import numpy as np
 import pytest
 
+from fixtures_midi import smf_bytes
 from pipeline.tools import evaluate_meter as ev
 from pipeline.analysis import meter as metermod
 from pipeline.analysis import timing
@@ -41,9 +42,7 @@ def _midi(messages, ticks_per_beat=480) -> bytes:
     """A one-track file written by mido (the reference writer)."""
     mf = mido.MidiFile(ticks_per_beat=ticks_per_beat)
     mf.tracks.append(mido.MidiTrack(messages))
-    buf = io.BytesIO()
-    mf.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mf)
 
 
 def _notes(onsets_ticks, dur=240, pitch=60):

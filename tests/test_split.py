@@ -10,6 +10,7 @@ import random
 import numpy as np
 import pytest
 
+from fixtures_midi import smf_bytes
 from pipeline.errors import ConfigError
 from pipeline.similarity.minhash import minhash
 from pipeline.similarity.sets import set_similarity
@@ -380,8 +381,6 @@ def test_split_without_dedup_groups_planted_near_duplicates():
 def _midi_bytes(rows, tpb=480, tempos=((0, 500_000),)) -> bytes:
     """A format-1 SMF written with mido (the outside writer): one track per row track index,
     notes as note_on / note_off pairs, a program change per channel, the tempo map."""
-    import io
-
     import mido
     mid = mido.MidiFile(type=1, ticks_per_beat=tpb)
     cond = mido.MidiTrack()
@@ -404,9 +403,7 @@ def _midi_bytes(rows, tpb=480, tempos=((0, 500_000),)) -> bytes:
             track.append(msg.copy(time=t - now))
             now = t
         mid.tracks.append(track)
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 def test_a_run_without_dedup_keeps_planted_variants_in_one_part(tmp_path):

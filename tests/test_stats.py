@@ -13,6 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from fixtures_midi import smf_bytes
 from pipeline.analysis.stats import MEASURES, piece_stats
 from pipeline.midi.piece import (KEY_DTYPE, METER_DTYPE, TEMPO_DTYPE, Piece, empty_notes,
                                  sort_notes, ticks_to_seconds)
@@ -153,9 +154,7 @@ def _midi_bytes() -> bytes:
             msgs.append(m.copy(time=t - last))
             last = t
         mid.tracks.append(mido.MidiTrack(msgs))
-    buf = io.BytesIO()
-    mid.save(file=buf)
-    return buf.getvalue()
+    return smf_bytes(mid)
 
 
 def test_worked_example_seconds_agree_with_pretty_midi():
