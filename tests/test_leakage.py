@@ -195,3 +195,22 @@ def test_an_audit_that_could_not_read_a_listed_file_does_not_pass(tmp_path):
     assert f"unreadable (test): {gone}: " in text and f"unreadable (train): {gone}: " in text
     assert text.rstrip().endswith("2 file(s) could not be read (listed above), so the audit is "
                                   "incomplete (exit 3)")
+
+
+def test_our_output_is_audited_with_the_splits_signatures_whatever_dedups_options(corpus, tmp_path, monkeypatch):
+    # the split signs at dedup's default settings (split.signature_options), on which its
+    # group_threshold is measured; an audit that signed with the run's dedup options (ngram 3)
+    # reported pairs at 0.217-0.249 the split never measured (an option-change audit)
+    import pipeline.audit.leakage as leakage
+    from pipeline.stages.split import signature_options
+    root, truth = corpus
+    _our_output(root, truth, tmp_path)
+    summary = json.loads((tmp_path / "summary.json").read_text())
+    summary["options"] = {"dedup": {"ngram": 3, "num_perm": 64}}
+    (tmp_path / "summary.json").write_text(json.dumps(summary))
+    used = []
+    real = leakage._default_signer
+    monkeypatch.setattr(leakage, "_default_signer", lambda opts: used.append(opts) or real(opts))
+    report = audit_output(tmp_path)
+    assert used == [signature_options()] and signature_options()["ngram"] != 3
+    assert report.leaks == [] and report.exit_code == 0

@@ -243,3 +243,74 @@ def test_judged_results_stored_in_several_transactions_are_the_same(base, tmp_pa
     a, b = _written(one), _written(several)
     for key in ("manifest", "splits", "midi", "tables"):
         assert a[key] == b[key], key
+
+
+def test_dedup_stores_its_links_unrounded_so_a_rerun_prints_the_first_runs_similarity(base, tmp_path):
+    # a rerun that rebuilds dedup's results from its stored links printed round(round(s, 6), 4)
+    # (0.98895x -> 0.98895 -> 0.9889 where the first run printed 0.989): the links keep the value
+    db = sqlite3.connect(base / "state.sqlite")
+    links = json.loads(db.execute("SELECT value FROM state WHERE stage='dedup' AND key='links'").fetchone()[0])
+    db.close()
+    assert links and any(round(sim, 6) != sim for _, _, sim in links)
+    rows = {r["id"]: r for r in map(json.loads, (base / "manifest.jsonl").open())}
+    by_pair = {frozenset((a, b)): sim for a, b, sim in links}
+    near = [r for r in rows.values() if r["reason"] == "near_duplicate"]
+    assert near
+    for r in near:
+        assert r["similarity"] == round(by_pair[frozenset((r["id"], r["duplicate_of"]))], 4)
+    out = tmp_path / "out"
+    shutil.copytree(base, out)
+    _run_validate(out, {"timeout_s": 30.0})  # dedup rebuilds its results from the stored links
+    again = {r["id"]: r["similarity"] for r in map(json.loads, (out / "manifest.jsonl").open())}
+    assert again == {i: r["similarity"] for i, r in rows.items()}
+
+
+# options without effect under the others ------------------------------------------------
+
+def test_options_without_effect_leave_the_fingerprint_as_it_is():
+    from pipeline.stages.key_meter import KeyMeter
+    from pipeline.stages.transpose import Transpose
+    for cls in (KeyMeter, Transpose):  # the learned method reads neither profile weight
+        assert cls({"bass_weight": 3.0, "final_weight": 0.0}).fingerprint == cls({}).fingerprint
+        kk = {"profile": "krumhansl_kessler"}
+        assert cls({**kk, "bass_weight": 3.0}).fingerprint != cls(kk).fingerprint
+        assert cls({"trust_file_key": True}).fingerprint != cls({}).fingerprint
+    # below_confidence acts only under a min_key_confidence above 0
+    assert Transpose({"below_confidence": "drop"}).fingerprint == Transpose({}).fingerprint
+    guard = {"min_key_confidence": 0.5}
+    assert Transpose({**guard, "below_confidence": "drop"}).fingerprint != Transpose(guard).fingerprint
+
+
+def test_the_learned_key_estimate_reads_no_profile_weight():
+    # the premise of the fingerprint above, on every decodable demo file
+    from pipeline.analysis.key import estimate_key
+    from pipeline.midi.decode import decode
+    checked = 0
+    for source, data in _demo_files():
+        try:
+            piece = decode(data)
+        except Exception:
+            continue
+        if len(piece.notes) == 0:
+            continue
+        plain = estimate_key(piece, "learned")
+        weighted = estimate_key(piece, "learned", bass_weight=5.0, final_weight=0.0)
+        assert (plain.tonic_pc, plain.mode, plain.confidence) == \
+            (weighted.tonic_pc, weighted.mode, weighted.confidence), source
+        checked += 1
+    assert checked > 60
+
+
+def test_a_rerun_with_an_option_without_effect_reads_no_file_and_writes_the_same(base, tmp_path):
+    out = tmp_path / "out"
+    shutil.copytree(base, out)
+    first = _written(out)
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output=str(out), workers=1)
+    names = [s.name for s in cfg.stages]
+    cfg.stages[names.index("key_meter")].options["bass_weight"] = 4.0
+    cfg.stages[names.index("transpose")].options["below_confidence"] = "drop"
+    report = Runner(cfg, quiet=True).run()
+    assert report.computed == 0
+    again = _written(out)
+    for key in ("manifest", "splits", "midi", "tables"):
+        assert again[key] == first[key], key

@@ -190,8 +190,9 @@ def audit_output(output_dir: Path, threshold: float | None = None, **kwargs: Any
     """Audit one of our output folders: ``splits/<part>.txt`` (paths relative to the folder).
 
     ``threshold`` defaults to the ``group_threshold`` recorded in ``summary.json``, else
-    ``DEFAULT_THRESHOLD``; files are signed with the run's dedup options from ``summary.json``
-    (``options.dedup``) when present. The manifest maps output paths back to sources.
+    ``DEFAULT_THRESHOLD``; files are signed as the split signs them (dedup's default signature
+    settings, ``split.signature_options``, whatever the run's dedup options: the grouping
+    threshold is measured on them). The manifest maps output paths back to sources.
     """
     output_dir = Path(output_dir)
     lists = sorted((output_dir / "splits").glob("*.txt"))
@@ -201,9 +202,9 @@ def audit_output(output_dir: Path, threshold: float | None = None, **kwargs: Any
     summary = _read_json(output_dir / "summary.json")
     if threshold is None:
         threshold = _find_key(summary, "group_threshold") or DEFAULT_THRESHOLD
-    if "sig_opts" not in kwargs:   # sign as the run's dedup stage did (shingle and MinHash settings)
-        dedup_opts = _find_key(_find_key(summary, "options"), "dedup")
-        kwargs["sig_opts"] = dedup_opts if isinstance(dedup_opts, dict) else None
+    if "sig_opts" not in kwargs:  # sign as the split did, not as a dedup of other settings
+        from ..stages.split import signature_options
+        kwargs["sig_opts"] = signature_options()
     parts = {f.stem: read_list(f, base=output_dir) for f in lists}
     report = audit(parts, float(threshold),
                    display=lambda p: _relative(p, output_dir), **kwargs)

@@ -241,11 +241,13 @@ def _place(key: str, ids: list[str], target: str, w: float, current: dict[str, f
         if old not in parts:
             reason = f"part {old!r} is no longer configured; placed with its group in {target!r}"
         elif target == freeze and freeze in spanned:
-            reason = (f"its group (key {key}) now spans parts {', '.join(spanned)}; a new link "
-                      f"merged them and the frozen part {target!r} keeps the whole group")
+            reason = (f"its group (key {key}) now holds files of parts {', '.join(spanned)} (a "
+                      f"link, or a grouping option such as a title, folder or field, joined "
+                      f"them); the frozen part {target!r} keeps the whole group")
         else:
-            reason = (f"its group (key {key}) now spans parts {', '.join(spanned)}; a new link "
-                      f"merged them into {target!r}, which held most of the members")
+            reason = (f"its group (key {key}) now holds files of parts {', '.join(spanned)} (a "
+                      f"link, or a grouping option such as a title, folder or field, joined "
+                      f"them); placed in {target!r}, which held most of the members")
         moves.append((m, old, target, reason))
 
 

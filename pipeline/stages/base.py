@@ -135,8 +135,15 @@ class Stage:
 
     @property
     def fingerprint(self) -> str:
-        """Hash of the stage name, version and options: the cache key of its results."""
-        return options_fingerprint(self.name, self.version, self.opts)
+        """Hash of the stage name, version and options as they act (``effective_options``):
+        the cache key of its results."""
+        return options_fingerprint(self.name, self.version, self.effective_options())
+
+    def effective_options(self) -> dict[str, Any]:
+        """The options with each one that has no effect under the others at its default, so
+        that changing it reuses every result (a published profile's weight under the learned
+        key method). The options themselves by default."""
+        return self.opts
 
     @property
     def uses_source_fields(self) -> bool:

@@ -144,7 +144,7 @@ _LINK_OPTIONS = ("threshold", "num_perm", "bands", "ngram", "grid", "seed", "min
 class Dedup(Stage):
     name = "dedup"
     kind = "corpus"
-    version = 5
+    version = 6  # 6: links stored at full precision (a rerun rounded their 6-decimal values again)
     #: The version of what ``prepare`` computes (content hash, shingles, signature): it keys the
     #: stored artifacts and the split's signatures, so a change of the corpus step alone
     #: (``version``) re-decodes no file. Bump it when ``prepare`` or what it calls changes.
@@ -180,8 +180,9 @@ class Dedup(Stage):
                "(a stock bass or accompaniment figure) and are left out when files are compared; "
                "1 keeps every shingle. They are counted when every pair is searched (a first run, "
                "--fresh, other dedup options) and kept while a rerun reuses the stored links, with "
-               "files added or removed, so the pairs a rerun compares are compared as the stored "
-               "ones were.", unit_interval),
+               "files added or removed (by the input, or by other options of the stages before "
+               "dedup), so the pairs a rerun compares are compared as the stored ones were; "
+               "--fresh counts them again.", unit_interval),
         Option("keep_policy", str, "most_notes",
                "Order in which a cluster's members are kept (the first always; a later one unless "
                "it is a direct duplicate of one kept before it), after the files that the "
@@ -361,7 +362,7 @@ class Dedup(Stage):
         for a, b, sim in verified:
             near.add(a, b, sim)
             uf.union(a, b)
-            near_links.append([a, b, round(sim, 6)])
+            near_links.append([a, b, float(sim)])  # rounded once, in the result
         state.report(f"dedup: {n_new} of {len(searched)} searched files compared "
                      f"({len(rep_ids)} distinct note contents + {len(searched) - len(rep_ids)} "
                      f"members of a content with shingles of their own), "

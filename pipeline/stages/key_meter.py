@@ -58,6 +58,19 @@ KEY_OPTIONS: tuple[Option, ...] = (
 )
 
 
+def key_effective_options(opts: dict[str, Any], options: tuple[Option, ...]) -> dict[str, Any]:
+    """``opts`` with the published profiles' weights at their defaults under the learned
+    method, which reads neither (``Stage.effective_options``)."""
+    try:
+        learned = keymod.resolve_profile(opts["profile"]) == keymod.LEARNED
+    except (KeyError, ValueError):  # options of another version: as they are
+        return opts
+    if not learned:
+        return opts
+    defaults = {o.name: o.default for o in options}
+    return {**opts, "bass_weight": defaults["bass_weight"], "final_weight": defaults["final_weight"]}
+
+
 def key_memo_name(opts: dict[str, Any]) -> str:
     """The ``FileContext.analysis`` name of the key estimate for these options."""
     return (f"key:{keymod.resolve_profile(opts['profile'])}:"
@@ -121,6 +134,9 @@ class KeyMeter(Stage):
                "two key signatures for at least this share of the piece each.",
                in_range(0, 1)),
     )
+    def effective_options(self) -> dict[str, Any]:
+        return key_effective_options(self.opts, self.options)
+
     doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles), whether "
            "the piece modulates (a windowed key estimate) and meter "
            "(a classifier over onset accent autocorrelation and position features), records what the file declares and "

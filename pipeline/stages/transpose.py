@@ -18,7 +18,7 @@ from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
 from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, Variant, register
-from .key_meter import KEY_OPTIONS, key_fields, reported_key, shared_key_estimate
+from .key_meter import KEY_OPTIONS, key_effective_options, key_fields, reported_key, shared_key_estimate
 
 
 def _check_note(value: Any) -> str | None:
@@ -112,6 +112,15 @@ class Transpose(Stage):
            "untouched; notes beyond 0..127 folded by octaves and counted. A key estimated with "
            "a confidence below min_key_confidence is not applied: the file is kept untransposed "
            "or dropped, as below_confidence says.")
+
+    def effective_options(self) -> dict[str, Any]:
+        """The key options as they act (``key_effective_options``), and ``below_confidence``
+        at its default when ``min_key_confidence`` is 0 (every estimate is applied)."""
+        opts = key_effective_options(self.opts, self.options)
+        if opts["min_key_confidence"] == 0:
+            default = next(o.default for o in self.options if o.name == "below_confidence")
+            opts = {**opts, "below_confidence": default}
+        return opts
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         est = shared_key_estimate(ctx, self.opts)
