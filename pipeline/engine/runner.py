@@ -206,7 +206,7 @@ class Runner:
                                                stored)
                      for name, source in self._values.items()}
         del stored
-        # a changed filter limit reads no file: its verdicts are judged from stored measures
+        # a changed limit reads no file where the stage judges its stored results again
         for name, n in judge_stages_again(ledger, self.stages, cache, order, self._recomputed.mark).items():
             notes.append(f"{name}: {n} verdicts judged again from the values stored under earlier "
                          "options (no file read for them)")

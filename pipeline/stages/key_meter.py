@@ -134,14 +134,15 @@ class KeyMeter(Stage):
                "two key signatures for at least this share of the piece each.",
                in_range(0, 1)),
     )
-    def effective_options(self) -> dict[str, Any]:
-        return key_effective_options(self.opts, self.options)
-
     doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles), whether "
            "the piece modulates (a windowed key estimate) and meter "
            "(a classifier over onset accent autocorrelation and position features), records what the file declares and "
            "flags declared values that look like sequencer defaults, the average tempo and the "
            "fraction of onsets on a 16th/triplet grid. Never drops a file.")
+
+    def effective_options(self) -> dict[str, Any]:
+        """The options as they act (``key_effective_options``)."""
+        return key_effective_options(self.opts, self.options)
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         est = shared_key_estimate(ctx, self.opts)
