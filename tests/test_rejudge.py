@@ -151,28 +151,36 @@ def _demo_files() -> list[tuple[str, bytes]]:
 
 @pytest.mark.parametrize("before, after", [
     ({}, {"allow_repairs": False}), ({"allow_repairs": False}, {}),
-    ({}, {"timeout_s": 5.0}), ({}, {"max_memory_mb": 256}), ({"timeout_s": 300.0}, {})])
+    ({}, {"timeout_s": 5.0}), ({}, {"max_memory_mb": 256}), ({"timeout_s": 300.0}, {}),
+    ({"max_bytes": 3000}, {}), ({"max_events": 300, "max_tracks": 3}, {"allow_repairs": False}),
+    ({}, {"max_bytes": 32_000_000, "max_events": 4_000_000})])
 def test_validate_judges_every_demo_file_as_reading_it_does(before, after):
-    # every demo file (damaged ones, repaired ones, one without notes): the verdict judged
-    # from the stored result under the earlier options is the one reading the file gives
+    # every demo file (damaged ones, repaired ones, one without notes, and under low reading
+    # limits files over them): the verdict judged from the stored result under the earlier
+    # options is the one reading the file gives; only a file refused for a limit since raised
+    # is read again
     first, then = Validate(before), Validate(after)
-    files = _demo_files()
-    reasons = set()
-    for source, data in files:
+    reasons, read_again = set(), 0
+    for source, data in _demo_files():
         stored = json.loads(json.dumps(first.read(data, source)[0].to_json()))
         judged = then.judge_stored(stored, first.opts)
         expected = then.read(data, source)[0].to_json()
         reasons.add(expected["reason"])
-        assert judged is not None and judged.to_json() == expected, source
+        if judged is None:
+            assert stored["reason"] == "too_large" and first.opts != then.opts, source
+            read_again += 1
+            continue
+        assert judged.to_json() == expected, source
     assert {"not_midi", "truncated", "no_notes", None} <= reasons
     assert ("needs_repair" in reasons) == (after.get("allow_repairs") is False)
+    assert (read_again > 0) == bool(set(before) & {"max_bytes", "max_events", "max_tracks"})
 
 
 def test_validate_reads_again_under_other_reading_limits_or_after_a_fault():
     first = Validate({})
     source, data = _demo_files()[0]
     stored = json.loads(json.dumps(first.read(data, source)[0].to_json()))
-    for opts in ({"max_bytes": 1000}, {"max_events": 50}, {"max_tracks": 2}):
+    for opts in ({"max_bytes": 1000}, {"max_events": 50}, {"max_tracks": 2}):  # lowered
         assert Validate(opts).judge_stored(stored, first.opts) is None
     for reason, thresholds in (("timeout", {"timeout_s": 60.0}), ("decoder_crash", {}),
                                ("too_large", {"max_memory_mb": 2048}), ("stage_error", {})):
@@ -314,3 +322,20 @@ def test_a_rerun_with_an_option_without_effect_reads_no_file_and_writes_the_same
     again = _written(out)
     for key in ("manifest", "splits", "midi", "tables"):
         assert again[key] == first[key], key
+
+
+def test_raising_a_reading_limit_reads_only_the_files_over_the_old_one(base, tmp_path, monkeypatch):
+    judged, decoded = tmp_path / "judged", tmp_path / "decoded"
+    shutil.copytree(base, judged)
+    assert _run_validate(judged, {"max_bytes": 3000}).computed > 0  # lowered: every file read
+    over = {json.loads(line)["sha256"] for line in (judged / "manifest.jsonl").open()
+            if json.loads(line)["reason"] == "too_large"}
+    assert over
+    shutil.copytree(judged, decoded)
+    raised = _run_validate(judged, {"max_bytes": 5000})
+    assert raised.computed == len(over)  # the files refused under 3000 bytes, and no other
+    monkeypatch.setattr(runner_module, "judge_stages_again", lambda *a, **k: {})
+    assert _run_validate(decoded, {"max_bytes": 5000}).computed > len(over)
+    a, b = _written(judged), _written(decoded)
+    for key in ("manifest", "splits", "midi", "tables"):
+        assert a[key] == b[key], key

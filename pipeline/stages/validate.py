@@ -34,6 +34,8 @@ def _track_count(value: int) -> str | None:
 #: The reason codes of a file the decoder refused (``DecodeError.code``); ``too_large`` is also
 #: the worker's memory fault, told apart by its ``max_memory_mb`` threshold.
 DECODE_REASONS = ("not_midi", "truncated", "bad_chunk", "bad_event", "unsupported_format", "too_large")
+#: The options that bound what the decoder reads.
+READING_LIMITS = ("max_bytes", "max_events", "max_tracks")
 
 
 @register
@@ -46,7 +48,9 @@ class Validate(Stage):
     doc = ("Decodes every file with the project's SMF reader and drops files that are not MIDI, "
            "cut off, damaged, of an unsupported format, over the size limits, or without notes.")
     options = (
-        Option("max_bytes", int, DEFAULT_LIMITS["max_bytes"], "largest file size read, in bytes", positive),
+        Option("max_bytes", int, DEFAULT_LIMITS["max_bytes"], "largest file size read, in bytes (a "
+               "rerun that raises a reading limit reads only the files the old one refused)",
+               positive),
         Option("max_events", int, DEFAULT_LIMITS["max_events"], "most MIDI events read from one file",
                positive),
         Option("max_tracks", int, DEFAULT_LIMITS["max_tracks"], "most track chunks a file may "
@@ -125,20 +129,25 @@ class Validate(Stage):
     judges_stored = True
 
     def judge_stored(self, stored: dict[str, Any], earlier: dict[str, Any]) -> StageResult | None:
-        """The verdict under other worker limits (``timeout_s``, ``max_memory_mb``) or another
-        ``allow_repairs`` from the one stored, when the reading limits are the same: a file the
-        decoder refused is refused again, a decoded one is judged on its recorded values. A
-        fault (timeout, crash, memory) is read again: new limits are what it waits for."""
-        if any(earlier[k] != self.opts[k] for k in ("max_bytes", "max_events", "max_tracks")):
+        """The verdict under other options from the one stored under ``earlier``, when no
+        reading limit (``max_bytes``, ``max_events``, ``max_tracks``) was lowered: a decoded
+        file is judged on its recorded values (``allow_repairs``), one the decoder refused is
+        refused again, unless for being over a limit that was raised. None (read the file
+        again) for a fault (timeout, crash, memory: new worker limits are what it waits for),
+        a file over a raised limit, or any file under a lowered one. Sound because the decoder
+        checks each limit only where it would refuse the file for it."""
+        if any(self.opts[k] < earlier[k] for k in READING_LIMITS):
             return None
         reason, values = stored["reason"], stored["values"]
         if reason in ("no_notes", "needs_repair") or stored["kept"]:
             if not {"format", "track_chunks", "ticks_per_beat", "smpte", "repairs"} <= values.keys():
                 return None
             return self._verdict(values, has_notes=reason != "no_notes")
-        if reason in DECODE_REASONS and "max_memory_mb" not in (stored["thresholds"] or {}):
-            return StageResult.drop(reason, stored["detail"], values, self._thresholds())
-        return None
+        if reason not in DECODE_REASONS or "max_memory_mb" in (stored["thresholds"] or {}):
+            return None
+        if reason == "too_large" and any(self.opts[k] != earlier[k] for k in READING_LIMITS):
+            return None
+        return StageResult.drop(reason, stored["detail"], values, self._thresholds())
 
     def _thresholds(self) -> dict[str, Any]:
-        return {k: self.opts[k] for k in ("max_bytes", "max_events", "max_tracks")}
+        return {k: self.opts[k] for k in READING_LIMITS}
