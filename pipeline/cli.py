@@ -49,7 +49,8 @@ def _parser() -> argparse.ArgumentParser:
                         "scheduler's address (overrides the config; needs the dask extra)")
     r.add_argument("--fresh", action="store_true", help="ignore cached results and recompute everything")
     r.add_argument("--quiet", action="store_true", help="no progress bars and no summary table")
-    r.add_argument("--reassign", action="store_true", help="recompute the split from scratch (files may change part)")
+    r.add_argument("--reassign", action="store_true", help="place every group again (files may change part); "
+                   "with --fresh, the split of a first run over the same files")
     r.add_argument("--retry-failed", action="store_true",
                    help=f"recompute files that failed in an earlier run with {', '.join(RETRYABLE)} "
                         "or too_large against the per-file memory limit max_memory_mb (such "

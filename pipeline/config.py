@@ -234,12 +234,25 @@ def _check_field_names(stages: list[StageConfig], metadata: Metadata) -> list[Co
     split = next((s for s in stages if s.name == "split"), None)
     if split is None:
         return problems
-    known = _once(*CONTRACT_FIELDS, *columns)
+    known = _once(*(f for f in CONTRACT_FIELDS if f not in SPLIT_WRITES), *columns)
     where = f"stages[{split.index}].split.group_fields"
     hint = "" if metadata.columns else " (add a 'metadata: TABLE.csv' with such a column)"
-    return problems + [ConfigError(f"'{f}' is neither a manifest field nor a metadata column"
-                                   f"{suggest(str(f), known)}{hint}", location=where)
-                       for f in split.options.get("group_fields", []) if f not in known]
+    for f in split.options.get("group_fields", []):
+        if f in SPLIT_WRITES and f not in columns:
+            problems.append(ConfigError(
+                f"'{f}' is written by the split itself (or after it), so it cannot tie files "
+                "before they are placed; name a field measured before the split (e.g. title) or "
+                "a metadata column", location=where))
+        elif f not in known:
+            problems.append(ConfigError(f"'{f}' is neither a manifest field nor a metadata "
+                                        f"column{suggest(str(f), known)}{hint}", location=where))
+    return problems
+
+
+#: Manifest fields the split writes (or the output step after it): ``group_fields`` cannot
+#: name them (an audit: ``[split]`` grouped nothing, ``[group]`` was refused with a hint to
+#: ``output``).
+SPLIT_WRITES = ("split", "group", "group_size", "moved_from", "output")
 
 
 def _once(*names: str) -> list[str]:

@@ -214,3 +214,15 @@ def test_our_output_is_audited_with_the_splits_signatures_whatever_dedups_option
     report = audit_output(tmp_path)
     assert used == [signature_options()] and signature_options()["ngram"] != 3
     assert report.leaks == [] and report.exit_code == 0
+
+
+def test_part_lists_of_our_own_output_folder_are_read_relative_to_it(corpus, tmp_path):
+    # our splits/<part>.txt name files relative to the output folder (a split audit: --part
+    # resolved them against splits/ and reported every file unreadable, exit 3)
+    root, truth = corpus
+    _our_output(root, truth, tmp_path)
+    (tmp_path / "manifest.jsonl").write_text("")
+    argv = [arg for f in sorted((tmp_path / "splits").glob("*.txt")) for arg in ("--part", f"{f.stem}={f}")]
+    out = io.StringIO()
+    assert main_leakage(parse(argv), out=out) == 0
+    assert "unreadable" not in out.getvalue()

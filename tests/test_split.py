@@ -135,6 +135,27 @@ def test_folder_title_and_field_grouping():
     assert normalize_text("...") is None
 
 
+def test_a_byte_identical_copy_ties_the_folders_and_fields_of_each_of_its_paths():
+    # Without a dedup stage byte-identical copies are one member with several paths; each
+    # path's folder and metadata row ties it (a split audit: a copy of one song filed under
+    # another song's folder, or carrying another composer, left that piece's files in two parts)
+    from dataclasses import replace
+    c = Corpus(7)
+    ids = [c.fresh() for _ in range(40)]
+    for seed in range(8):
+        members = [c.member(m, source=f"song{i % 10}/{m}.mid") for i, m in enumerate(ids)]
+        members[0] = replace(members[0], copies=(("song1/versions/copy.mid", {}),))
+        got = parts(run(members, group_by_folder=1, group_threshold=None, seed=seed,
+                        ratios={"x": 0.5, "y": 0.5})[0])
+        assert len({got[m] for i, m in enumerate(ids) if i % 10 in (0, 1)}) == 1, seed
+        members = [replace(c.member(m, source=f"f{i}/{m}.mid"),
+                           meta={"composer": "Bee" if 1 <= i <= 4 else f"c{i}"}) for i, m in enumerate(ids)]
+        members[0] = replace(members[0], copies=(("g/copy.mid", {"composer": "Bee"}),))
+        got = parts(run(members, group_fields=["composer"], group_threshold=None, seed=seed,
+                        ratios={"x": 0.5, "y": 0.5})[0])
+        assert len({got[m] for m in ids[:5]}) == 1, seed
+
+
 def test_folder_depth_ties_a_piece_and_its_subfolders():
     # A collection laid out as one folder per piece with a subfolder of other versions (the
     # layout of the POP909 collection: NNN/NNN.mid and NNN/versions/NNN-vK.mid).
@@ -217,10 +238,16 @@ def test_incremental_rerun():
     assert cross_part_pairs(c, second) == []
     achieved = s2.current["summary"]["achieved"]
     assert all(abs(achieved[p] - RATIOS[p]) <= 0.02 for p in RATIOS), achieved
-    # --reassign: from scratch, equal to a run without history, nothing reported as moved.
+    # --reassign: from scratch, equal to a run without history; each file now in another
+    # part is reported as moved, by the reassignment (a split audit: such moves showed in
+    # the run's changes only, not in explain, the manifest or the counts)
     r3, s3 = run(members, previous=s2.current, flags={"reassign": True})
     assert parts(r3) == parts(run(members)[0])
-    assert not any("moved_from" in r.values for r in r3.values())
+    changed = {m for m in r3 if parts(r3)[m] != second[m]}
+    assert changed
+    assert {m for m, r in r3.items() if "moved_from" in r.values} == changed
+    assert all("--reassign" in r3[m].detail for m in changed)
+    assert s3.current["summary"]["moved"] == len(changed)
 
 
 def test_freeze_null_joins_majority_part():
@@ -643,6 +670,25 @@ def test_group_fields_must_exist_and_suggest_the_nearest(tmp_path):
                   "stages": ["validate", {"split": {"group_fields": ["composer"]}}]})
 
 
+@pytest.mark.parametrize("field", ["split", "group", "group_size", "output"])
+def test_group_fields_cannot_name_what_the_split_writes(field):
+    # a split audit: [split] and [output] were accepted and grouped nothing, [group] was
+    # refused with a hint to 'output'; our own contract
+    from pipeline.config import parse_config
+    from pipeline.errors import ConfigError
+    raw = {"input": "in", "output": "out", "stages": ["validate", {"split": {"group_fields": [field]}}]}
+    with pytest.raises(ConfigError, match=f"'{field}' is written by the split itself") as e:
+        parse_config(raw)
+    assert "did you mean" not in str(e.value)
+
+
+def test_part_names_differing_only_in_case_are_refused():
+    # a split audit: {train, Train} wrote midi/train/ and midi/Train/, one folder on a file
+    # system that ignores case (macOS, Windows); common practice, no source
+    assert "differ only in case" in check_ratios({"train": 0.5, "Train": 0.5})
+    assert check_ratios({"train": 0.5, "train2": 0.5}) is None
+
+
 def test_the_valid_names_listed_by_a_field_error_are_each_named_once(tmp_path):
     """The list after "valid names are:" names each field once: ``title`` is a manifest field,
     and a metadata table may have a title column of its own (before, it was listed twice, or
@@ -779,3 +825,47 @@ def test_parts_far_from_their_targets_are_warned_about():
     assert off_target_warnings({"train": 2, "valid": 0, "test": 20}, ratios, "test") == []
     assert "the part holding most" in off_target_warnings({"train": 60, "test": 40},
                                                           {"train": 0.9, "test": 0.1}, None)[0]
+
+
+def test_a_run_ties_the_folder_of_every_path_of_a_byte_identical_copy(tmp_path):
+    # the run's members carry their contents' other paths (engine: Contents.copies): a copy of
+    # song 0's file filed under song 1's folder puts both songs in one part, with every seed
+    from fixtures_midi import random_midi
+    corpus = tmp_path / "in"
+    for s in range(8):  # two large songs, which the split's greedy fill puts in two parts
+        (corpus / f"song{s}").mkdir(parents=True)
+        for k in range(6 if s < 2 else 1):
+            (corpus / f"song{s}" / f"v{k}.mid").write_bytes(random_midi(100 * s + k, n_notes=60))
+    (corpus / "song1" / "copy.mid").write_bytes((corpus / "song0" / "v0.mid").read_bytes())
+    for seed in range(2):
+        rc, rows = _run_cfg(tmp_path, corpus, {"group_by_folder": 1, "group_threshold": None,
+                                               "seed": seed}, name=f"out{seed}")
+        assert rc == 0
+        assert len({r["split"] for src, r in rows.items() if src.startswith(("song0/", "song1/"))}) == 1
+    # explain counts the group's files and contents apart (group_size counts contents)
+    from pipeline.audit.explain import explain
+    trail = explain(tmp_path / "out0", "song1/copy.mid")
+    assert "group members (13 files, 12 contents: byte-identical files share an id" in trail
+
+
+def test_changed_ratios_are_said_and_moves_are_listed_up_to_a_bound():
+    # a split audit: new ratios on a rerun were applied to nothing without a word, and renaming
+    # a part printed one line per moved file (143 on 2,000 files); our own contract
+    from pipeline.stages.split import MOVES_LISTED
+    c = Corpus(11)
+    members = [c.member(c.fresh()) for _ in range(300)]
+    first, s1 = run(members, ratios={"train": 0.8, "valid": 0.1, "test": 0.1})
+    _, s2 = run(members, previous=s1.current, ratios={"train": 0.6, "valid": 0.2, "test": 0.2})
+    assert any("the ratios changed since the last run (train 0.8, valid 0.1, test 0.1 -> "
+               "train 0.6, valid 0.2, test 0.2)" in n for n in s2.notes)
+    summary: dict = {"split": {}}
+    Split({"ratios": {"train": 0.6, "valid": 0.2, "test": 0.2}}).add_to_summary(summary, s2.current)
+    assert any(w.startswith("split ratios changed since the last run") for w in summary["warnings"])
+    _, s3 = run(members, previous=s2.current, ratios={"train": 0.6, "valid": 0.2, "test": 0.2})
+    assert not any("ratios changed" in n for n in s3.notes)  # said once, on the run that changed them
+    renamed, s4 = run(members, previous=s1.current, ratios={"train": 0.8, "dev": 0.1, "test": 0.1})
+    moved = [m for m, r in renamed.items() if "moved_from" in r.values]
+    assert len(moved) == sum(1 for p in parts(first).values() if p == "valid") > MOVES_LISTED
+    listed = [n for n in s4.notes if " moved from valid to " in n]
+    assert len(listed) == MOVES_LISTED
+    assert any(f"{len(moved) - MOVES_LISTED} more files moved" in n for n in s4.notes)

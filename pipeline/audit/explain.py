@@ -195,7 +195,11 @@ def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
         if step["stage"] == "split":
             members = mates.get("group", [])
             if len(members) > 1:
-                lines.append(f"    group members ({len(members)}): near-duplicates at the group "
+                contents = len({m["id"] for m in members})
+                counted = (f"{len(members)} files, {contents} contents: byte-identical files share "
+                           "an id and count once in group_size" if contents < len(members)
+                           else f"{len(members)}")
+                lines.append(f"    group members ({counted}): near-duplicates at the group "
                              "threshold, dedup cluster-mates and the ties the split was given")
                 for m in members:
                     lines.append(f"      {m['id']}  {m['source']}  ({m.get('split')})")

@@ -152,8 +152,13 @@ def read_list(list_file: Path, base: Path | None = None) -> list[Path]:
     """Paths listed one per line ('#' comments and blank lines skipped).
 
     Relative paths resolve against ``base`` if given, else against the list file's folder,
-    falling back to the current directory when the file is not found there.
+    falling back to the current directory when the file is not found there; a list of one of
+    our output folders (``OUTPUT/splits/<part>.txt`` beside ``OUTPUT/manifest.jsonl``) names
+    its files relative to OUTPUT (an audit: ``--part`` found none of our own lists' files).
     """
+    folder = Path(list_file).parent
+    if base is None and folder.name == "splits" and (folder.parent / "manifest.jsonl").is_file():
+        base = folder.parent
     try:
         lines = Path(list_file).read_text(encoding="utf-8").splitlines()
     except OSError as e:

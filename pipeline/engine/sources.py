@@ -162,19 +162,28 @@ class Contents(Mapping[str, str]):
     per content, shared by every map of the run), ``index`` gives each its content index.
     Memory: no path string nor dict entry per content beside ``index``."""
 
-    __slots__ = ("order", "index", "_first", "_files")
+    __slots__ = ("order", "index", "_first", "_files", "_copies")
 
     def __init__(self, files: SourceTable):
         self._files = files
         self.order: list[str] = []
         self.index: dict[str, int] = {}  # sha256 -> content index (position in ``order``)
         self._first = array("q")  # content index -> its first source's file index
+        # content index -> the file indices of its other sources (byte-identical copies: few)
+        self._copies: dict[int, list[int]] = {}
         for i in range(len(files)):
             sha = files.sha256(i)
-            if sha not in self.index:
+            ci = self.index.get(sha)
+            if ci is None:
                 self.index[sha] = len(self.order)
                 self.order.append(sha)
                 self._first.append(i)
+            else:
+                self._copies.setdefault(ci, []).append(i)
+
+    def copies(self, sha: str) -> list[str]:
+        """The paths of the content's sources after its first (its byte-identical copies)."""
+        return [self._files.rel(i) for i in self._copies.get(self.index[sha], ())]
 
     def __getitem__(self, sha: str) -> str:
         return self._files.rel(self._first[self.index[sha]])

@@ -512,6 +512,18 @@ class StepMembers(Sequence):
         walk = self.walk
         return source_fields(walk.rep[sha], ContentValues(walk, sha).get("file_title"), self.metadata)
 
+    def copies(self, sha: str) -> tuple[tuple[str, Mapping[str, Any]], ...]:
+        """The content's other sources (byte-identical copies), each with its own fields when
+        the stage reads them."""
+        copies = getattr(self.walk.rep, "copies", None)  # a plain mapping has no copies
+        rels = copies(sha) if copies is not None else ()
+        if not rels:
+            return ()
+        if not self.stage.uses_source_fields:
+            return tuple((rel, _NOTHING) for rel in rels)
+        title = ContentValues(self.walk, sha).get("file_title")
+        return tuple((rel, source_fields(rel, title, self.metadata)) for rel in rels)
+
 
 class WalkMember(Member):
     """Member ``i`` of a corpus step (``StepMembers``): its ``id`` and ``sha256`` are the
@@ -539,6 +551,10 @@ class WalkMember(Member):
     @property
     def meta(self) -> Mapping[str, Any]:  # type: ignore[override]
         return self._members.meta(self.sha256)
+
+    @property
+    def copies(self) -> tuple[tuple[str, Mapping[str, Any]], ...]:  # type: ignore[override]
+        return self._members.copies(self.sha256)
 
 
 _NAMES: dict[tuple[str, ...], tuple[str, ...]] = {}  # the distinct name tuples, shared

@@ -18,7 +18,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Callable, ClassVar, NamedTuple
+from typing import Any, Callable, ClassVar, Mapping, NamedTuple
 
 import numpy as np
 
@@ -88,6 +88,13 @@ class Member:
     outputs: list[str] = field(default_factory=list)
     #: per-source fields beside the measured values: ``title`` and the metadata table's columns
     meta: dict[str, Any] = field(default_factory=dict)
+    #: the other sources of its content (byte-identical copies), each with its own fields
+    copies: tuple[tuple[str, Mapping[str, Any]], ...] = ()
+
+    def sources(self) -> list[tuple[str, Mapping[str, Any]]]:
+        """Every source of the member with its own fields: the first (``source``, ``meta``),
+        then its byte-identical copies. A grouping by folder or field ties each of them."""
+        return [(self.source, self.meta), *self.copies]
 
 
 class CorpusState:

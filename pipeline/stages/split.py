@@ -39,13 +39,14 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Sequence
+from collections import defaultdict
+from collections.abc import Callable, Sequence
 from pathlib import PurePosixPath
 from typing import Any
 
 from ..errors import ConfigError
 from ..similarity.grouping import (GROUP_RECALL, FolderLayout, achieved_ratios, assign_groups,
-                                   build_groups, group_by_key, near_links_of, piece_folders)
+                                   build_groups, near_links_of, piece_folders)
 from ..similarity.links import UnionFind
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
@@ -66,6 +67,14 @@ def signature_options() -> dict[str, Any]:
     return {k: defaults[k] for k in Dedup.prepare_options}
 
 
+#: Moves a run lists one by one in its notes (the rest are counted; every row names its own).
+MOVES_LISTED = 20
+
+
+def _ratio_text(ratios: dict[str, Any]) -> str:
+    return ", ".join(f"{p} {float(r):g}" for p, r in ratios.items())
+
+
 def check_ratios(v: Any) -> str | None:
     """Error sentence for a bad ``ratios`` mapping, else None."""
     if not isinstance(v, dict) or not v:
@@ -76,6 +85,12 @@ def check_ratios(v: Any) -> str | None:
                     "'.'), since it names splits/<part>.txt and midi/<part>/")
         if isinstance(share, bool) or not isinstance(share, (int, float)) or share <= 0:
             return f"ratio of part {name!r} must be a number > 0, got {share!r}"
+    folded: dict[str, str] = {}
+    for name in v:  # one folder and list per part on a file system that ignores case too
+        other = folded.setdefault(name.casefold(), name)
+        if other != name:
+            return (f"part names {other!r} and {name!r} differ only in case: on macOS and Windows "
+                    "they would be one folder (midi/<part>/) and one list; rename one")
     total = sum(v.values())
     if abs(total - 1.0) > 1e-6:
         return f"ratios must sum to 1 (within 1e-6) but sum to {total:.6g}; rescale them"
@@ -304,6 +319,12 @@ class Split(Stage):
             section["stage"] = saved["summary"]
         summary.setdefault("warnings", []).extend(
             off_target_warnings(section.get("files", {}), self.opts["ratios"], self._freeze()))
+        before = (saved.get("summary") or {}).get("ratios_before")
+        if before:  # an audit: new ratios on a rerun were applied to nothing, and nothing said so
+            summary["warnings"].append(
+                f"split ratios changed since the last run ({_ratio_text(before)} -> "
+                f"{_ratio_text(self.opts['ratios'])}): files placed before keep their parts; "
+                "`midisift run --reassign` places every group again (files may change part)")
 
     def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
@@ -326,6 +347,22 @@ class Split(Stage):
                                           self._freeze(), sizes)
         real = set(ids)
         moved = {m: (old, new, why) for m, old, new, why in moves if m in real}
+        if reassign:  # every group placed again: a file now elsewhere moved (an audit: 463
+            # such files went unreported in explain, the manifest and the page)
+            last_parts = state.previous.get("assignments", {})
+            for m in ids:
+                old = last_parts.get(m)
+                if old is not None and old != assignment[m]:
+                    moved[m] = (old, assignment[m], "every group was placed again (--reassign)")
+        last_ratios = state.previous.get("ratios")
+        state.save("ratios", ratios)
+        ratios_changed = (not reassign and isinstance(last_ratios, dict) and last_ratios != ratios
+                          and bool(previous))
+        if ratios_changed:
+            state.report(f"split: the ratios changed since the last run ({_ratio_text(last_ratios)} "
+                         f"-> {_ratio_text(ratios)}); files placed before keep their parts and new "
+                         "groups fill toward the new ratios; `midisift run --reassign` places "
+                         "every group again")
         group_of: dict[str, tuple[str, int]] = {}   # member -> (smallest member id, size)
         for grp in groups.values():
             inside = [m for m in grp if m in real]
@@ -335,6 +372,7 @@ class Split(Stage):
         # is returned as it is (see the runner's reuse of corpus-stage results)
         last = state.flags.get("previous_results")
         results: dict[str, Any] = {}
+        reported = 0
         for m in ids:
             key, size = group_of[m]
             if last is not None and m not in moved:
@@ -348,8 +386,13 @@ class Split(Stage):
                 old, new, why = moved[m]
                 values["moved_from"] = old
                 detail = f"moved from {old} to {new}: {why}"
-                state.report(f"split: {m} moved from {old} to {new}: {why}")
+                reported += 1
+                if reported <= MOVES_LISTED:
+                    state.report(f"split: {m} moved from {old} to {new}: {why}")
             results[m] = StageResult.keep(detail=detail, values=values)
+        if reported > MOVES_LISTED:
+            state.report(f"split: {reported - MOVES_LISTED} more files moved to another part "
+                         "(each one's row, and `midisift explain FILE`, give its reason)")
         grouping = self.opts["group_threshold"] is not None
         if grouping and members and not signed:
             grouping = False
@@ -364,6 +407,8 @@ class Split(Stage):
                                 len(groups), grouping, signed)
         summary["group_by_folder"] = {"option": self.opts["group_by_folder"], "applied": by_folder,
                                       **(layout.as_dict() if layout is not None else {})}
+        if ratios_changed:
+            summary["ratios_before"] = last_ratios
         state.save("summary", summary)
         return results
 
@@ -519,20 +564,37 @@ class Split(Stage):
         return {top: found.depth for top, found in layout.collections} or False, layout
 
     def _forced(self, members: Sequence[Member], by_folder: bool | int | dict[str, int]) -> list[list[str]]:
-        forced: list[list[str]] = []
-        if isinstance(by_folder, dict):  # per top-level folder (``_folder_rule``)
-            forced += group_by_key({m.id: _piece_folder(m.source, by_folder) for m in members})
-        elif by_folder:
-            depth = None if by_folder is True else by_folder
-            forced += group_by_key({m.id: folder_of(m.source, depth) for m in members})
+        """Groups tied by folder and by field. Every source of a member counts: a content
+        filed twice (byte-identical copies) ties the groups of both its folders and of both
+        its rows' fields (an audit: a copy under another song's folder split that folder)."""
         fields = list(self.opts["group_fields"])
         if self.opts["group_by_title"] and "title" not in fields:
             fields.insert(0, "title")
-        if fields:
-            metas = [m.meta for m in members]  # made on each read
-        for f in fields:  # a source's own fields (title, metadata columns) first
-            forced += group_by_key({m.id: normalize_text(meta[f] if f in meta else m.values.get(f))
-                                    for m, meta in zip(members, metas)})
+        if not by_folder and not fields:
+            return []
+        if isinstance(by_folder, dict):  # per top-level folder (``_folder_rule``)
+            folder: Callable[[str], Any] | None = lambda rel: _piece_folder(rel, by_folder)
+        elif by_folder:
+            depth = None if by_folder is True else by_folder
+            folder = lambda rel: folder_of(rel, depth)  # noqa: E731
+        else:
+            folder = None
+        by_folder_key: dict[Any, set[str]] = defaultdict(set)
+        by_field: dict[str, dict[Any, set[str]]] = {f: defaultdict(set) for f in fields}
+        for m in members:  # each made on this read
+            values = m.values if fields else None
+            for rel, meta in m.sources():
+                if folder is not None:
+                    key = folder(rel)
+                    if key is not None:
+                        by_folder_key[key].add(m.id)
+                for f in fields:  # a source's own fields (title, metadata columns) first
+                    key = normalize_text(meta[f] if f in meta else values.get(f))
+                    if key is not None:
+                        by_field[f][key].add(m.id)
+        forced = [sorted(ids) for ids in by_folder_key.values() if len(ids) > 1]
+        for f in fields:
+            forced += [sorted(ids) for ids in by_field[f].values() if len(ids) > 1]
         return forced
 
 
