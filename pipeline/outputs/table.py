@@ -67,6 +67,10 @@ def folder_rule_text(rule: dict | None) -> str | None:
             why = (f"at best {rule.get('share', 0):.1%} of the files in {rule.get('folders')} folders "
                    f"of two or more lie in their folder's largest near-duplicate group, below "
                    f"{FOLDER_SHARE:.0%}")
+            if rule.get("alike", 0) >= FOLDER_SHARE * rule.get("folders", 0):
+                why += (f"; yet {rule['alike']} of those {rule['folders']} folders hold one piece "
+                        f"each: if the folders are pieces, set group_by_folder: "
+                        f"{rule.get('judged_depth')}")
         return f"folders are not taken as pieces (group_by_folder: auto: {why})"
     where = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
              else f"the same first {applied} folder levels")

@@ -94,10 +94,14 @@ class FolderLayout:
     #: laid out one folder per piece, each with what was found in it (a collection of pieces
     #: beside others that are not, e.g. a song collection beside a folder of generated files)
     collections: tuple[tuple[str, "FolderLayout"], ...] = ()
+    #: of the ``folders`` at ``at``, those holding ``share`` of their own files in one group
+    alike: int = 0
 
     def as_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"depth": self.depth, "judged_depth": self.at,
                                "share": round(self.share, 4), "folders": self.folders}
+        if self.depth is None:  # why the folders were not taken as pieces
+            out["alike"] = self.alike
         if self.collections:
             out["collections"] = {top: found.as_dict() for top, found in self.collections}
         return out
@@ -135,7 +139,7 @@ def piece_folders(files: Iterable[tuple[str, Hashable]], depths: Sequence[int] =
         inner = _judged(tops[top], tuple(d + 1 for d in depths), share, min_folders)
         if inner.depth is not None:
             collections.append((top, inner))
-    return FolderLayout(None, found.at, found.share, found.folders, tuple(collections))
+    return FolderLayout(None, found.at, found.share, found.folders, tuple(collections), found.alike)
 
 
 def _judged(by_parent: Mapping[str, Counter], depths: Sequence[int], share: float,
@@ -156,7 +160,8 @@ def _judged(by_parent: Mapping[str, Counter], depths: Sequence[int], share: floa
         several = [c for c in folders.values() if sum(c.values()) >= 2]
         total = sum(sum(c.values()) for c in several)
         together = sum(max(c.values()) for c in several)
-        found = FolderLayout(None, depth, together / total if total else 0.0, len(several))
+        alike = sum(1 for c in several if max(c.values()) >= share * sum(c.values()))
+        found = FolderLayout(None, depth, together / total if total else 0.0, len(several), alike=alike)
         if found.folders >= min_folders and found.share >= share:
             return FolderLayout(depth, depth, found.share, found.folders)
         if found.share > best.share or best.at is None:

@@ -45,8 +45,9 @@ from pathlib import PurePosixPath
 from typing import Any
 
 from ..errors import ConfigError
-from ..similarity.grouping import (GROUP_RECALL, FolderLayout, achieved_ratios, assign_groups,
-                                   build_groups, near_links_of, piece_folders)
+from ..similarity.grouping import (FOLDER_MIN, FOLDER_SHARE, GROUP_RECALL, FolderLayout,
+                                   achieved_ratios, assign_groups, build_groups, near_links_of,
+                                   piece_folders)
 from ..similarity.links import UnionFind
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
@@ -319,6 +320,16 @@ class Split(Stage):
             section["stage"] = saved["summary"]
         summary.setdefault("warnings", []).extend(
             off_target_warnings(section.get("files", {}), self.opts["ratios"], self._freeze()))
+        rule = (saved.get("summary") or {}).get("group_by_folder") or {}
+        if (rule.get("option") == "auto" and not rule.get("applied") and not rule.get("collections")
+                and rule.get("folders", 0) >= FOLDER_MIN
+                and rule.get("alike", 0) >= FOLDER_SHARE * rule["folders"]):
+            summary["warnings"].append(
+                f"group_by_folder: auto tied no folders, yet {rule['alike']} of {rule['folders']} "
+                "folders of two or more files hold one piece each (a few larger ones hold most of "
+                "the files): if the folders are pieces, set group_by_folder: "
+                f"{rule.get('judged_depth')}, or the versions of a piece that its notes do not link "
+                "may land in two parts")
         before = (saved.get("summary") or {}).get("ratios_before")
         if before:  # an audit: new ratios on a rerun were applied to nothing, and nothing said so
             summary["warnings"].append(
