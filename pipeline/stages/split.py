@@ -72,8 +72,11 @@ def signature_options() -> dict[str, Any]:
 MOVES_LISTED = 20
 
 
-def _ratio_text(ratios: dict[str, Any]) -> str:
-    return ", ".join(f"{p} {float(r):g}" for p, r in ratios.items())
+def _ratio_text(ratios: dict[str, Any], order: list[str] | None = None) -> str:
+    """``train 0.8, valid 0.1, test 0.1``: the parts in ``order`` (the config's), then the rest
+    (a saved state's mapping comes back with its keys sorted)."""
+    first = [p for p in order or () if p in ratios]
+    return ", ".join(f"{p} {float(ratios[p]):g}" for p in first + [p for p in ratios if p not in first])
 
 
 def check_ratios(v: Any) -> str | None:
@@ -333,7 +336,7 @@ class Split(Stage):
         before = (saved.get("summary") or {}).get("ratios_before")
         if before:  # an audit: new ratios on a rerun were applied to nothing, and nothing said so
             summary["warnings"].append(
-                f"split ratios changed since the last run ({_ratio_text(before)} -> "
+                f"split ratios changed since the last run ({_ratio_text(before, self.parts())} -> "
                 f"{_ratio_text(self.opts['ratios'])}): files placed before keep their parts; "
                 "`midisift run --reassign` places every group again (files may change part)")
 
@@ -370,7 +373,8 @@ class Split(Stage):
         ratios_changed = (not reassign and isinstance(last_ratios, dict) and last_ratios != ratios
                           and bool(previous))
         if ratios_changed:
-            state.report(f"split: the ratios changed since the last run ({_ratio_text(last_ratios)} "
+            was = _ratio_text(last_ratios, list(ratios))
+            state.report(f"split: the ratios changed since the last run ({was} "
                          f"-> {_ratio_text(ratios)}); files placed before keep their parts and new "
                          "groups fill toward the new ratios; `midisift run --reassign` places "
                          "every group again")
