@@ -283,8 +283,12 @@ def test_options_without_effect_leave_the_fingerprint_as_it_is():
         kk = {"profile": "krumhansl_kessler"}
         assert cls({**kk, "bass_weight": 3.0}).fingerprint != cls(kk).fingerprint
         assert cls({"trust_file_key": True}).fingerprint != cls({}).fingerprint
-    # below_confidence acts only under a min_key_confidence above 0
+    # below_confidence acts only under a min_key_confidence above 0 (0 or 0.0)
     assert Transpose({"below_confidence": "drop"}).fingerprint == Transpose({}).fingerprint
+    assert Transpose({"min_key_confidence": 0}).fingerprint == Transpose({}).fingerprint
+    # a profile's alias is the profile (a regression audit: tkp decoded every file again)
+    for cls in (KeyMeter, Transpose):
+        assert cls({"profile": "tkp"}).fingerprint == cls({"profile": "temperley_kostka_payne"}).fingerprint
     guard = {"min_key_confidence": 0.5}
     assert Transpose({**guard, "below_confidence": "drop"}).fingerprint != Transpose(guard).fingerprint
 
@@ -322,6 +326,9 @@ def test_a_rerun_with_an_option_without_effect_reads_no_file_and_writes_the_same
     again = _written(out)
     for key in ("manifest", "splits", "midi", "tables"):
         assert again[key] == first[key], key
+    # summary.json gives the options as configured (a regression audit: the last run's)
+    options = json.loads((out / "summary.json").read_text())["options"]
+    assert options["key_meter"]["bass_weight"] == 4.0 and options["transpose"]["below_confidence"] == "drop"
 
 
 def test_raising_a_reading_limit_reads_only_the_files_over_the_old_one(base, tmp_path, monkeypatch):

@@ -862,7 +862,8 @@ def test_changed_ratios_are_said_and_moves_are_listed_up_to_a_bound():
                "train 0.6, valid 0.2, test 0.2)" in n for n in s2.notes)
     summary: dict = {"split": {}}
     Split({"ratios": {"train": 0.6, "valid": 0.2, "test": 0.2}}).add_to_summary(summary, s2.current)
-    assert any(w.startswith("split ratios changed since the last run") for w in summary["warnings"])
+    assert any(w.startswith("the split's ratios were changed (train 0.8, valid 0.1, test 0.1 -> "
+                            "train 0.6, valid 0.2, test 0.2) on a rerun") for w in summary["warnings"])
     _, s3 = run(members, previous=s2.current, ratios={"train": 0.6, "valid": 0.2, "test": 0.2})
     assert not any("ratios changed" in n for n in s3.notes)  # said once, on the run that changed them
     renamed, s4 = run(members, previous=s1.current, ratios={"train": 0.8, "dev": 0.1, "test": 0.1})
@@ -870,4 +871,5 @@ def test_changed_ratios_are_said_and_moves_are_listed_up_to_a_bound():
     assert len(moved) == sum(1 for p in parts(first).values() if p == "valid") > MOVES_LISTED
     listed = [n for n in s4.notes if " moved from valid to " in n]
     assert len(listed) == MOVES_LISTED
+    assert all(n.startswith("split: ") and ".mid (" in n for n in listed)  # named by path, then id
     assert any(f"{len(moved) - MOVES_LISTED} more files moved" in n for n in s4.notes)

@@ -16,7 +16,7 @@ from ..stages import Stage
 from ..store.codec import stored_result
 from ..store.ledger import Ledger
 
-#: The latest runs whose options are looked at for stored results to judge again.
+#: The latest distinct run configs whose options are looked at for stored results to judge again.
 RUNS_LOOKED_AT = 20
 
 

@@ -182,6 +182,8 @@ class Runner:
         del files_h
         unchanged = self._unchanged(ledger, state_key)
         if unchanged is not None:  # same files, same options, outputs in place: nothing to do
+            # the options as configured (one without effect changes no fingerprint: an audit)
+            unchanged["options"] = {s.name: s.opts for s in self.stages}
             uptodate.record_unchanged(ledger, cfg.output, unchanged, run_id, qkey,
                                       timings["discover"], t_start, files.skipped)
             return uptodate.report_from(unchanged, cfg.output, time.perf_counter() - t_start, notes)

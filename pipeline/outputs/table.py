@@ -69,8 +69,7 @@ def folder_rule_text(rule: dict | None) -> str | None:
                    f"{FOLDER_SHARE:.0%}")
             if rule.get("alike", 0) >= FOLDER_SHARE * rule.get("folders", 0):
                 why += (f"; yet {rule['alike']} of those {rule['folders']} folders hold one piece "
-                        f"each: if the folders are pieces, set group_by_folder: "
-                        f"{rule.get('judged_depth')}")
+                        "each: see the warning")
         return f"folders are not taken as pieces (group_by_folder: auto: {why})"
     where = ("the same folder" if applied is True else "the same top-level folder" if applied == 1
              else f"the same first {applied} folder levels")

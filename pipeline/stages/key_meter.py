@@ -59,16 +59,18 @@ KEY_OPTIONS: tuple[Option, ...] = (
 
 
 def key_effective_options(opts: dict[str, Any], options: tuple[Option, ...]) -> dict[str, Any]:
-    """``opts`` with the published profiles' weights at their defaults under the learned
-    method, which reads neither (``Stage.effective_options``)."""
+    """``opts`` with the profile by its canonical name (``tkp`` is ``temperley_kostka_payne``)
+    and the published profiles' weights at their defaults under the learned method, which
+    reads neither (``Stage.effective_options``)."""
     try:
-        learned = keymod.resolve_profile(opts["profile"]) == keymod.LEARNED
+        profile = keymod.resolve_profile(opts["profile"])
     except (KeyError, ValueError):  # options of another version: as they are
         return opts
-    if not learned:
-        return opts
+    out = {**opts, "profile": profile} if profile != opts["profile"] else opts
+    if profile != keymod.LEARNED:
+        return out
     defaults = {o.name: o.default for o in options}
-    return {**opts, "bass_weight": defaults["bass_weight"], "final_weight": defaults["final_weight"]}
+    return {**out, "bass_weight": defaults["bass_weight"], "final_weight": defaults["final_weight"]}
 
 
 def key_memo_name(opts: dict[str, Any]) -> str:

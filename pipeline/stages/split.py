@@ -330,15 +330,17 @@ class Split(Stage):
             summary["warnings"].append(
                 f"group_by_folder: auto tied no folders, yet {rule['alike']} of {rule['folders']} "
                 "folders of two or more files hold one piece each (a few larger ones hold most of "
-                "the files): if the folders are pieces, set group_by_folder: "
-                f"{rule.get('judged_depth')}, or the versions of a piece that its notes do not link "
-                "may land in two parts")
+                "the files), and the versions of a piece that its notes do not link may land in "
+                "two parts: move the piece folders under one folder of their own (auto then judges "
+                "each top-level folder as a collection), or set group_by_folder: "
+                f"{rule.get('judged_depth')} only if every folder, the large ones too, is one piece")
         before = (saved.get("summary") or {}).get("ratios_before")
         if before:  # an audit: new ratios on a rerun were applied to nothing, and nothing said so
-            summary["warnings"].append(
-                f"split ratios changed since the last run ({_ratio_text(before, self.parts())} -> "
-                f"{_ratio_text(self.opts['ratios'])}): files placed before keep their parts; "
-                "`midisift run --reassign` places every group again (files may change part)")
+            summary["warnings"].append(  # true as well when a nothing-changed rerun replays it
+                f"the split's ratios were changed ({_ratio_text(before, self.parts())} -> "
+                f"{_ratio_text(self.opts['ratios'])}) on a rerun: files placed before kept their "
+                "parts (but those of a part no longer configured); `midisift run --reassign` "
+                "places every group again (files may change part)")
 
     def run_corpus(self, members: Sequence[Member], state: CorpusState) -> dict[str, StageResult]:
         ratios = {p: float(r) for p, r in self.opts["ratios"].items()}
@@ -375,9 +377,9 @@ class Split(Stage):
         if ratios_changed:
             was = _ratio_text(last_ratios, list(ratios))
             state.report(f"split: the ratios changed since the last run ({was} "
-                         f"-> {_ratio_text(ratios)}); files placed before keep their parts and new "
-                         "groups fill toward the new ratios; `midisift run --reassign` places "
-                         "every group again")
+                         f"-> {_ratio_text(ratios)}); files placed before keep their parts (but "
+                         "those of a part no longer configured) and new groups fill toward the "
+                         "new ratios; `midisift run --reassign` places every group again")
         group_of: dict[str, tuple[str, int]] = {}   # member -> (smallest member id, size)
         for grp in groups.values():
             inside = [m for m in grp if m in real]
@@ -388,6 +390,7 @@ class Split(Stage):
         last = state.flags.get("previous_results")
         results: dict[str, Any] = {}
         reported = 0
+        listed: list[tuple[str, str, str, str]] = []
         for m in ids:
             key, size = group_of[m]
             if last is not None and m not in moved:
@@ -403,8 +406,12 @@ class Split(Stage):
                 detail = f"moved from {old} to {new}: {why}"
                 reported += 1
                 if reported <= MOVES_LISTED:
-                    state.report(f"split: {m} moved from {old} to {new}: {why}")
+                    listed.append((m, old, new, why))
             results[m] = StageResult.keep(detail=detail, values=values)
+        if listed:  # named by path (the members read once more, only when files moved)
+            source_of = {mem.id: mem.source for mem in members if mem.id in moved}
+            for m, old, new, why in listed:
+                state.report(f"split: {source_of.get(m, m)} ({m}) moved from {old} to {new}: {why}")
         if reported > MOVES_LISTED:
             state.report(f"split: {reported - MOVES_LISTED} more files moved to another part "
                          "(each one's row, and `midisift explain FILE`, give its reason)")

@@ -117,9 +117,9 @@ class Transpose(Stage):
         """The key options as they act (``key_effective_options``), and ``below_confidence``
         at its default when ``min_key_confidence`` is 0 (every estimate is applied)."""
         opts = key_effective_options(self.opts, self.options)
-        if opts["min_key_confidence"] == 0:
+        if opts["min_key_confidence"] == 0:  # 0 and 0.0 alike (an audit: 0 decoded every file)
             default = next(o.default for o in self.options if o.name == "below_confidence")
-            opts = {**opts, "below_confidence": default}
+            opts = {**opts, "below_confidence": default, "min_key_confidence": 0.0}
         return opts
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:

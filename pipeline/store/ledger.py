@@ -420,9 +420,11 @@ class Ledger:
                         (time.time(), canonical_json(counts), run_id))
 
     def run_stage_options(self, latest: int) -> list[list]:
-        """The ``stages`` ([name, options] pairs) of the ``latest`` runs, most recent first."""
+        """The ``stages`` ([name, options] pairs) of the ``latest`` distinct run configs, most
+        recent first (a rerun of the same config, nothing changed or stopped, counts once)."""
         out = []
-        for (text,) in self.db.execute("SELECT config FROM runs ORDER BY id DESC LIMIT ?", (latest,)):
+        for (text,) in self.db.execute("SELECT config FROM runs GROUP BY config ORDER BY MAX(id) DESC "
+                                       "LIMIT ?", (latest,)):
             stages = json.loads(text).get("stages")
             if isinstance(stages, list):
                 out.append([pair for pair in stages if isinstance(pair, list) and len(pair) == 2])
