@@ -40,7 +40,7 @@ from __future__ import annotations
 import re
 import unicodedata
 from collections import defaultdict
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import PurePosixPath
 from typing import Any
 
@@ -594,20 +594,13 @@ class Split(Stage):
             fields.insert(0, "title")
         if not by_folder and not fields:
             return []
-        if isinstance(by_folder, dict):  # per top-level folder (``_folder_rule``)
-            folder: Callable[[str], Any] | None = lambda rel: _piece_folder(rel, by_folder)
-        elif by_folder:
-            depth = None if by_folder is True else by_folder
-            folder = lambda rel: folder_of(rel, depth)  # noqa: E731
-        else:
-            folder = None
         by_folder_key: dict[Any, set[str]] = defaultdict(set)
         by_field: dict[str, dict[Any, set[str]]] = {f: defaultdict(set) for f in fields}
         for m in members:  # each made on this read
             values = m.values if fields else None
             for rel, meta in m.sources():
-                if folder is not None:
-                    key = folder(rel)
+                if by_folder:
+                    key = _folder_key(rel, by_folder)
                     if key is not None:
                         by_folder_key[key].add(m.id)
                 for f in fields:  # a source's own fields (title, metadata columns) first
@@ -618,6 +611,14 @@ class Split(Stage):
         for f in fields:
             forced += [sorted(ids) for ids in by_field[f].values() if len(ids) > 1]
         return forced
+
+
+def _folder_key(rel: str, by_folder: bool | int | dict[str, int]) -> str | None:
+    """The folder that ties ``rel`` under ``group_by_folder`` as applied: a depth per top-level
+    folder (``_folder_rule``), a depth, or true (the file's own folder)."""
+    if isinstance(by_folder, dict):
+        return _piece_folder(rel, by_folder)
+    return folder_of(rel, None if by_folder is True else by_folder)
 
 
 def _dedup_clusters(state: CorpusState) -> dict[str, Any]:
