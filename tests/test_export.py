@@ -453,14 +453,18 @@ def test_shards_are_bounded_and_the_loader_reads_them_in_index_order(demo_out, t
     assert ex.parts == ["train", "valid", "test"]
 
 
-def test_rerun_writes_only_what_changed(tmp_path):
+def _exported_demo(tmp_path: Path, opts: ExportOptions):
+    """The demo corpus copied under ``tmp_path``, run and exported with ``opts``: (corpus, the
+    output folder, opts, the export's report, the export's folder)."""
     corpus = tmp_path / "corpus"
     shutil.copytree(DEMO, corpus)
     out = tmp_path / "out"
     _run(out, corpus)
-    opts = ExportOptions("events", shard_mb=0.02)
-    first = export_output(out, opts)
-    folder = out / "export" / "events"
+    return corpus, out, opts, export_output(out, opts), out / "export" / opts.format
+
+
+def test_rerun_writes_only_what_changed(tmp_path):
+    corpus, out, opts, first, folder = _exported_demo(tmp_path, ExportOptions("events", shard_mb=0.02))
     shards = {p: p.stat().st_mtime_ns for p in folder.glob("*/*.npz")}
     assert first.computed == first.pieces and len(shards) > 3
 
@@ -876,13 +880,8 @@ def _fresh_arrays(out: Path, tmp_path: Path, opts: ExportOptions) -> dict[str, n
 def test_a_rerun_after_removals_reads_the_survivors_arrays_from_their_old_shards(tmp_path, monkeypatch, fmt):
     # before: a shard that lost one piece was rebuilt by decoding every other piece of it again
     # (an audit: 300 of 26,505 files removed, all 17,491 pieces recomputed)
-    corpus = tmp_path / "corpus"
-    shutil.copytree(DEMO, corpus)
-    out = tmp_path / "out"
-    _run(out, corpus)
     opts = ExportOptions(fmt, shard_mb=0.5 if fmt == "pianoroll" else 0.02, drums="apart")
-    first = export_output(out, opts)
-    folder = out / "export" / fmt
+    corpus, out, opts, first, folder = _exported_demo(tmp_path, opts)
     old = {e["key"]: e for e in open_export(folder).entries}
     assert first.shards_written >= 4
     hit = _remove_spread(corpus, out, folder)
@@ -931,13 +930,7 @@ def test_a_rerun_after_removals_reads_the_survivors_arrays_from_their_old_shards
 
 
 def test_a_damaged_old_shard_is_not_read_from_its_pieces_are_computed(tmp_path, monkeypatch):
-    corpus = tmp_path / "corpus"
-    shutil.copytree(DEMO, corpus)
-    out = tmp_path / "out"
-    _run(out, corpus)
-    opts = ExportOptions("pianoroll", shard_mb=0.5)
-    export_output(out, opts)
-    folder = out / "export" / "pianoroll"
+    corpus, out, opts, _, folder = _exported_demo(tmp_path, ExportOptions("pianoroll", shard_mb=0.5))
     old = {e["key"]: e for e in open_export(folder).entries}
     hit = _remove_spread(corpus, out, folder)
     damaged, intact = sorted(hit)[:2]
@@ -965,13 +958,7 @@ def test_a_damaged_old_shard_is_not_read_from_its_pieces_are_computed(tmp_path, 
 def test_when_every_shard_lost_a_piece_the_rerun_writes_a_fresh_exports_shards(tmp_path, monkeypatch):
     # the layout depends on history (kept shards stay as they are, the other pieces are packed
     # into new shards after them); with no shard kept, it is a fresh export's, byte for byte
-    corpus = tmp_path / "corpus"
-    shutil.copytree(DEMO, corpus)
-    out = tmp_path / "out"
-    _run(out, corpus)
-    opts = ExportOptions("events", shard_mb=0.02)
-    export_output(out, opts)
-    folder = out / "export" / "events"
+    corpus, out, opts, _, folder = _exported_demo(tmp_path, ExportOptions("events", shard_mb=0.02))
     by_shard: dict[str, list[dict]] = {}
     for e in open_export(folder).entries:
         by_shard.setdefault(e["file"], []).append(e)

@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.similarity.grouping import (achieved_ratios, assign_groups, band_codes,
-                                          build_groups, group_by_key, lsh_rows, near_links)
+                                          build_groups, group_by_keys, lsh_rows, near_links)
 
 RATIOS = {"train": 0.8, "valid": 0.1, "test": 0.1}
 
@@ -146,8 +146,8 @@ def test_seed_changes_placement_and_sizes_weigh():
     assert all(abs(got[p] - RATIOS[p]) <= 8 / 207 for p in RATIOS)
 
 
-def test_group_by_key_skips_none():
-    assert group_by_key({"a": "x", "b": "x", "c": None, "d": None, "e": "y"}) == [["a", "b"]]
+def test_group_by_keys_skips_none():
+    assert group_by_keys({"a": "x", "b": "x", "c": None, "d": None, "e": "y"}.items()) == [["a", "b"]]
 
 
 def test_lsh_rows_meets_recall():

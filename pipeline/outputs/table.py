@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
-from ..similarity.grouping import FOLDER_MIN, FOLDER_SHARE
+from ..similarity.grouping import FOLDER_MIN, FOLDER_SHARE, folders_mostly_pieces
 
 
 def stdout_gone() -> None:
@@ -67,7 +67,7 @@ def folder_rule_text(rule: dict | None) -> str | None:
             why = (f"at best {rule.get('share', 0):.1%} of the files in {rule.get('folders')} folders "
                    f"of two or more lie in their folder's largest near-duplicate group, below "
                    f"{FOLDER_SHARE:.0%}")
-            if rule.get("alike", 0) >= FOLDER_SHARE * rule.get("folders", 0):
+            if folders_mostly_pieces(rule):
                 why += (f"; yet {rule['alike']} of those {rule['folders']} folders hold one piece "
                         "each: see the warning")
         return f"folders are not taken as pieces (group_by_folder: auto: {why})"

@@ -60,12 +60,14 @@ def build_groups(members: Iterable[str], links: Iterable[tuple[str, str]] = (),
     return {g[0]: g for g in uf.groups()}
 
 
-def group_by_key(member_keys: Mapping[str, Hashable | None]) -> list[list[str]]:
-    """Forced groupings from a per-member key (folder, normalized title); None keys stay alone."""
-    by: dict[Hashable, list[str]] = defaultdict(list)
-    for m, k in member_keys.items():
+def group_by_keys(pairs: Iterable[tuple[str, Hashable | None]]) -> list[list[str]]:
+    """Forced groupings from (member, key) pairs (folder, normalized title), in the order the
+    keys first appear: a member may come with several keys (one per path of a content), each
+    tying it; None ties nothing."""
+    by: dict[Hashable, set[str]] = defaultdict(set)
+    for m, k in pairs:
         if k is not None:
-            by[k].append(m)
+            by[k].add(m)
     return [sorted(v) for v in by.values() if len(v) > 1]
 
 
@@ -77,6 +79,16 @@ FOLDER_DEPTHS = (1, 2, 3)
 FOLDER_SHARE = 0.8
 #: Folders of two or more files needed before ``auto`` judges a depth at all.
 FOLDER_MIN = 3
+
+
+def folders_mostly_pieces(rule: Mapping[str, Any]) -> bool:
+    """Whether ``auto`` tied no folder (``rule``: summary.json's ``split.stage.group_by_folder``)
+    although most folders of two or more files, by count, hold one piece each: a few large
+    folders of other files hold most of the files (a split audit: POP909's song folders beside
+    two folders of 1,000 generated files leaked songs with nothing said)."""
+    folders = rule.get("folders", 0)
+    return (rule.get("option") == "auto" and not rule.get("applied") and not rule.get("collections")
+            and folders >= FOLDER_MIN and rule.get("alike", 0) >= FOLDER_SHARE * folders)
 
 
 @dataclass(frozen=True)

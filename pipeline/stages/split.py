@@ -39,15 +39,14 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections import defaultdict
 from collections.abc import Sequence
 from pathlib import PurePosixPath
 from typing import Any
 
 from ..errors import ConfigError
-from ..similarity.grouping import (FOLDER_MIN, FOLDER_SHARE, GROUP_RECALL, FolderLayout,
-                                   achieved_ratios, assign_groups, build_groups, near_links_of,
-                                   piece_folders)
+from ..similarity.grouping import (GROUP_RECALL, FolderLayout, achieved_ratios, assign_groups,
+                                   build_groups, folders_mostly_pieces, group_by_keys,
+                                   near_links_of, piece_folders)
 from ..similarity.links import UnionFind
 from ..midi.piece import Piece
 from ..similarity.minhash import signature_of
@@ -172,7 +171,6 @@ def output_count(m: Member) -> float:
     return float(max(1, len(m.outputs), 1 + len(augment)))
 
 
-
 #: A part's share of the kept files is reported (a run warning) when it lies further than this
 #: from its target, absolutely, and than half its target; and only from this many kept files
 #: (with fewer, whole groups move shares more than that). Common practice, no source.
@@ -198,6 +196,7 @@ def off_target_warnings(files: dict[str, int], ratios: dict[str, float], freeze:
                        f"group fields), or reruns joined groups linked across parts to {merged}; "
                        "`midisift run --reassign` places every group again (files may change part)")
     return out
+
 
 @register
 class Split(Stage):
@@ -324,9 +323,7 @@ class Split(Stage):
         summary.setdefault("warnings", []).extend(
             off_target_warnings(section.get("files", {}), self.opts["ratios"], self._freeze()))
         rule = (saved.get("summary") or {}).get("group_by_folder") or {}
-        if (rule.get("option") == "auto" and not rule.get("applied") and not rule.get("collections")
-                and rule.get("folders", 0) >= FOLDER_MIN
-                and rule.get("alike", 0) >= FOLDER_SHARE * rule["folders"]):
+        if folders_mostly_pieces(rule):
             summary["warnings"].append(
                 f"group_by_folder: auto tied no folders, yet {rule['alike']} of {rule['folders']} "
                 "folders of two or more files hold one piece each (a few larger ones hold most of "
@@ -594,22 +591,18 @@ class Split(Stage):
             fields.insert(0, "title")
         if not by_folder and not fields:
             return []
-        by_folder_key: dict[Any, set[str]] = defaultdict(set)
-        by_field: dict[str, dict[Any, set[str]]] = {f: defaultdict(set) for f in fields}
+        folder_keys: list[tuple[str, Any]] = []
+        field_keys: dict[str, list[tuple[str, Any]]] = {f: [] for f in fields}
         for m in members:  # each made on this read
             values = m.values if fields else None
             for rel, meta in m.sources():
                 if by_folder:
-                    key = _folder_key(rel, by_folder)
-                    if key is not None:
-                        by_folder_key[key].add(m.id)
+                    folder_keys.append((m.id, _folder_key(rel, by_folder)))
                 for f in fields:  # a source's own fields (title, metadata columns) first
-                    key = normalize_text(meta[f] if f in meta else values.get(f))
-                    if key is not None:
-                        by_field[f][key].add(m.id)
-        forced = [sorted(ids) for ids in by_folder_key.values() if len(ids) > 1]
+                    field_keys[f].append((m.id, normalize_text(meta[f] if f in meta else values.get(f))))
+        forced = group_by_keys(folder_keys)
         for f in fields:
-            forced += [sorted(ids) for ids in by_field[f].values() if len(ids) > 1]
+            forced += group_by_keys(field_keys[f])
         return forced
 
 
@@ -658,7 +651,7 @@ def same_content_links(arts: dict[str, Any]) -> list[tuple[str, str]]:
     first: dict[str, str] = {}  # content hash -> its first member
     links: list[tuple[str, str]] = []
     # speed, memory: one pass keeping each hash's first member (as dedup's exact step), not a
-    # list per content (group_by_key)
+    # list per content (group_by_keys)
     for k, h in zip(held, column_of(rows, "content_hash")):
         rep = first.setdefault(str(h), k)
         if rep != k:
