@@ -345,6 +345,15 @@ def _kind(mode: int) -> str:
     return "not a plain file"
 
 
+def file_sha256(path: str | Path) -> str:
+    """The sha256 (hex) of a file's bytes, read in 1 MiB blocks (OSError when it cannot be read)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(1 << 20):
+            h.update(block)
+    return h.hexdigest()
+
+
 def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
                 notes: list[str] | None = None, *, rehash: bool = False) -> list[tuple[str, int, int, str]]:
     """Set the sha256 of each file; hash only files whose size or mtime changed (every file
@@ -361,11 +370,8 @@ def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
         if not rehash and rec is not None and rec[0] == size and rec[1] == mtime_ns:
             files.set_sha256(i, rec[2])
             continue
-        h = hashlib.sha256()
         try:
-            with open(source_path(files.root, rel), "rb") as fh:
-                for block in iter(lambda: fh.read(1 << 20), b""):
-                    h.update(block)
+            sha = file_sha256(source_path(files.root, rel))
         except OSError as e:  # reliability: removed or made unreadable during the run
             gone.append(i)
             why = f"it could not be read to hash it ({e.strerror or e})"
@@ -373,7 +379,6 @@ def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],
             if notes is not None:
                 notes.append(f"note: skipped {rel}: {why}")
             continue
-        sha = h.hexdigest()
         files.set_sha256(i, sha)
         changed.append((rel, size, mtime_ns, sha))
     if gone:

@@ -43,6 +43,7 @@ import numpy as np
 from ..errors import DecodeError, MidisiftError, UsageError
 from ..store.lock import OutputLock
 from ..store.atomic import write_atomic
+from ..engine.sources import file_sha256
 from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
 from .png import png_bytes, roll_image
@@ -303,15 +304,6 @@ def _read_index(folder: Path) -> list[dict]:
             return [json.loads(line) for line in fh if line.strip()]
     except (OSError, ValueError):
         return []
-
-
-def file_sha256(path: Path) -> str:
-    """The sha256 (hex) of a file's bytes, read in chunks."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while chunk := fh.read(1 << 20):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _shard_intact(folder: Path, shard: str, line: dict) -> bool:
