@@ -22,6 +22,7 @@ from typing import Any, Callable
 
 from ..errors import MidisiftError, UsageError
 from ..outputs.table import stdout_gone
+from ..store.atomic import read_json_object
 
 #: The grouping threshold of the split stage's default config (used when an output folder does
 #: not record its own).
@@ -204,7 +205,7 @@ def audit_output(output_dir: Path, threshold: float | None = None, **kwargs: Any
     if not (output_dir / "splits").is_dir():
         raise UsageError(f"no split lists under {output_dir / 'splits'}; is this a midisift "
                          "output folder of a run with a split stage?", file=str(output_dir))
-    summary = _read_json(output_dir / "summary.json")
+    summary = read_json_object(output_dir / "summary.json")
     if threshold is None:
         threshold = _find_key(summary, "group_threshold") or DEFAULT_THRESHOLD
     if "sig_opts" not in kwargs:  # sign as the split did, not as a dedup of other settings
@@ -222,13 +223,6 @@ def _relative(p: Path, base: Path) -> str:
         return Path(p).relative_to(base).as_posix()
     except ValueError:
         return str(p)
-
-
-def _read_json(path: Path) -> Any:
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
 
 
 def _sources(manifest: Path) -> dict[str, str]:

@@ -42,7 +42,7 @@ import numpy as np
 
 from ..errors import DecodeError, MidisiftError, UsageError
 from ..store.lock import OutputLock
-from ..store.atomic import write_atomic
+from ..store.atomic import read_json_object, write_atomic
 from ..engine.sources import file_sha256
 from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
@@ -550,7 +550,7 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], 
     result.shards_kept = len(kept_shards)
     # how the export that wrote this index got its pieces: a rerun that leaves the index as it
     # was leaves export.json too (its counts then still describe the export that wrote both)
-    old_meta = _read_json(folder / "export.json")
+    old_meta = read_json_object(folder / "export.json")
     if index_written or old_meta is None or {k: v for k, v in old_meta.items() if k != "written"} != meta:
         meta["written"] = {"computed": result.computed, "carried": result.carried, "reused": result.reused,
                            "shards_written": result.shards_written, "shards_kept": result.shards_kept}
@@ -576,15 +576,6 @@ def _write_if_changed(path: Path, text: str) -> bool:
         pass
     write_atomic(path, text)
     return True
-
-
-def _read_json(path: Path) -> dict | None:
-    """A JSON object file's contents, None when it is missing or unreadable."""
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-    return data if isinstance(data, dict) else None
 
 
 def _remove_strays(folder: Path, shards: set[str]) -> int:

@@ -1,7 +1,9 @@
-"""Atomic file writes: a reader sees the old file or the new one, never a part."""
+"""Atomic file writes: a reader sees the old file or the new one, never a part; and the read of
+a JSON object file so written (``read_json_object``)."""
 from __future__ import annotations
 
 import functools
+import json
 import os
 import tempfile
 from pathlib import Path
@@ -75,3 +77,12 @@ def write_atomic(path: Path, data: bytes | str | Iterable[str | bytes], *, fsync
     except OSError as e:
         raise OutputError(f"cannot write ({e.strerror}); check free space and permissions of the output folder",
                           file=str(path)) from None
+
+
+def read_json_object(path: Path) -> dict | None:
+    """A JSON object file's contents; None when it is missing, unreadable or not an object."""
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
