@@ -5,6 +5,8 @@ checks that every code the stages can produce is listed here.
 """
 from __future__ import annotations
 
+from typing import Any
+
 #: code -> (stage, meaning). Order: as a file meets them along the default config.
 REASONS: dict[str, tuple[str, str]] = {
     "not_midi": ("validate", "not a MIDI file at all: empty, an HTML page, an image, text, a RIFF file that is not RMID"),
@@ -46,3 +48,13 @@ REASONS: dict[str, tuple[str, str]] = {
 #: Reasons that ``--retry-failed`` recomputes (faults of the environment, not of the file),
 #: besides ``too_large`` against the per-file memory limit ``max_memory_mb``.
 RETRYABLE = ("timeout", "decoder_crash", "stage_error")
+
+
+def is_fault(result: Any) -> bool:
+    """A cached drop caused by the environment (time, memory, a crash, a stage's error), not
+    by the file's bytes: ``--retry-failed`` recomputes it, and new worker limits read it again."""
+    if result["kept"]:
+        return False
+    if result["reason"] in RETRYABLE:
+        return True
+    return result["reason"] == "too_large" and "max_memory_mb" in (result.get("thresholds") or {})

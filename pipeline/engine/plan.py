@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any, Container
 
-from ..reasons import RETRYABLE
+from ..reasons import is_fault
 from ..stages import Stage
 from .worker import FileTask, StagePlan
 
@@ -19,15 +19,6 @@ class Everything:
 
     def __contains__(self, sha: object) -> bool:
         return True
-
-
-def is_retryable(result: Any) -> bool:
-    """A cached drop caused by the environment (time, memory, a crash), not by the file's bytes."""
-    if result["kept"]:
-        return False
-    if result["reason"] in RETRYABLE:
-        return True
-    return result["reason"] == "too_large" and "max_memory_mb" in (result.get("thresholds") or {})
 
 
 class Planner:
@@ -105,7 +96,7 @@ class Planner:
 
     def _cached(self, st: Stage, sha: str) -> Any:
         cached = self.cache[st.name].get(sha)
-        if cached is not None and self.retry_failed and is_retryable(cached):
+        if cached is not None and self.retry_failed and is_fault(cached):
             return None
         return cached
 

@@ -391,6 +391,13 @@ def _unchanged(w: Wanted | None, line: dict) -> bool:
             and w.source == line.get("source"))
 
 
+def array_matches(arr: np.ndarray, line: dict, *, drums: bool = False) -> bool:
+    """Whether an array read from a shard is the one index line ``line`` describes: its shape
+    (``drums``: the line's drum array's) and dtype."""
+    shape = line["drums_shape"] if drums else line["shape"]
+    return list(arr.shape) == list(shape) and str(arr.dtype) == line["dtype"]
+
+
 class _Carried:
     """The arrays of pieces still wanted unchanged whose old shard cannot be kept (it lost a
     piece, or holds one that changed), read from that shard instead of computed again.
@@ -421,9 +428,7 @@ class _Carried:
             try:
                 arr = z[key]
                 drums = z[line["drums_key"]] if "drums_key" in line else None
-                if (list(arr.shape) == list(line["shape"]) and str(arr.dtype) == line["dtype"]
-                        and (drums is None or (list(drums.shape) == list(line["drums_shape"])
-                                               and str(drums.dtype) == line["dtype"]))):
+                if array_matches(arr, line) and (drums is None or array_matches(drums, line, drums=True)):
                     got = arr, drums
             except (KeyError, OSError, ValueError, EOFError, zipfile.BadZipFile):
                 pass

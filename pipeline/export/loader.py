@@ -20,7 +20,7 @@ from typing import Any, Iterator
 import numpy as np
 
 from ..errors import MidisiftError, UsageError
-from .build import FORMATS, LAYOUT
+from .build import FORMATS, LAYOUT, array_matches
 
 DRUMS_SUFFIX = ".drums"
 RERUN = "rerun `midisift export` to write it again"
@@ -138,9 +138,9 @@ class ExportFolder:
         except KeyError:
             raise MidisiftError(f"the shard has no array {name!r}, which index.jsonl places there; {RERUN}",
                                 file=where) from None
-        except (OSError, ValueError, zipfile.BadZipFile) as e:
-            raise MidisiftError(f"cannot read array {name!r} ({e}); {RERUN}", file=where) from None
-        if list(arr.shape) != list(shape) or str(arr.dtype) != e["dtype"]:
+        except (OSError, ValueError, zipfile.BadZipFile) as err:  # ``e`` is the index line
+            raise MidisiftError(f"cannot read array {name!r} ({err}); {RERUN}", file=where) from None
+        if not array_matches(arr, e, drums=drums):
             raise MidisiftError(f"array {name!r} is {list(arr.shape)} {arr.dtype} where index.jsonl says "
                                 f"{list(shape)} {e['dtype']}: the shard is not the one the index describes; "
                                 f"{RERUN}", file=where)

@@ -15,6 +15,7 @@ from __future__ import annotations
 from typing import Any
 
 from ..errors import DecodeError
+from ..reasons import is_fault
 from ..midi.piece import Piece
 from ..midi.decode import DEFAULT_LIMITS, MOST_TRACKS, decode, describe_repairs
 from .base import FileContext, Option, Stage, StageResult, positive, register
@@ -143,7 +144,7 @@ class Validate(Stage):
             if not {"format", "track_chunks", "ticks_per_beat", "smpte", "repairs"} <= values.keys():
                 return None
             return self._verdict(values, has_notes=reason != "no_notes")
-        if reason not in DECODE_REASONS or "max_memory_mb" in (stored["thresholds"] or {}):
+        if reason not in DECODE_REASONS or is_fault(stored):
             return None
         if reason == "too_large" and any(self.opts[k] != earlier[k] for k in READING_LIMITS):
             return None
