@@ -160,3 +160,42 @@ def test_a_rerun_over_a_version_2_ledger_migrates_it_and_reuses_its_artifacts(ba
     db.close()
     for key in a:
         assert a[key] == b[key], key
+
+
+def test_a_kept_file_edited_in_place_keeps_its_part(tmp_path):
+    """Found by an audit: a kept file edited in place (here its tempo, so its bytes and its
+    member id change) was placed as a new piece, into the part furthest below its share, and
+    the run reported no move. Its path's part now carries over (``split._prior_parts``); the
+    same edit under a new name is a new piece (what the check guards: the fill would move it)."""
+    import mido
+
+    corpus, out = tmp_path / "corpus", tmp_path / "out"
+    shutil.copytree(DEMO, corpus)
+    _run(corpus, out)
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    pointed = {r["duplicate_of"] for r in rows} | {r["cluster"] for r in rows if r["status"] != "kept"}
+    lone = [r for r in rows if r["status"] == "kept" and r["group_size"] == 1 and r["id"] not in pointed]
+    edited = next(r for r in lone if r["split"] != "train")
+    for r in [r for r in lone if r["split"] == "train"][:12]:  # train falls furthest below its share
+        (corpus / r["source"]).unlink()
+    mf = mido.MidiFile(corpus / edited["source"])
+    for track in mf.tracks:
+        for msg in track:
+            if msg.type == "set_tempo":
+                msg.tempo = int(msg.tempo * 0.8)
+    renamed = tmp_path / "renamed"
+    shutil.copytree(corpus, renamed)
+    mf.save(corpus / edited["source"])
+    mf.save(renamed / edited["source"].replace(".mid", " (edited).mid"))
+    (renamed / edited["source"]).unlink()
+    again = tmp_path / "again"
+    shutil.copytree(out, again)
+    _run(corpus, out)
+    row = next(json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()
+               if json.loads(line)["source"] == edited["source"])
+    assert row["sha256"] != edited["sha256"] and row["status"] == "kept"
+    assert row["split"] == edited["split"] and "moved_from" not in row
+    _run(renamed, again)
+    new = next(json.loads(line) for line in (again / "manifest.jsonl").read_text().splitlines()
+               if json.loads(line)["source"].endswith(" (edited).mid"))
+    assert new["status"] == "kept" and new["split"] == "train"

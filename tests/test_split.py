@@ -283,11 +283,9 @@ def test_dedup_replacement_inherits_the_part():
 
 
 
-def test_a_dropped_duplicate_that_becomes_kept_keeps_its_pieces_part():
-    """Found by an audit on POP909 (README, Split): a song's main file, dropped by dedup as a
-    copy of a version sitting in test, became kept in train when that version was removed
-    together with some train songs (the new member went to the part furthest below its share).
-    A file dedup dropped carries its cluster's part to the next run, so it stays in test."""
+def _a_test_file_and_its_dropped_copy():
+    """50 members run once; one in test (``old``) then run again with a near copy of it that
+    dedup drops (``copy``, carrying the part): (corpus, members, first parts, old, copy, state)."""
     c = Corpus(6)
     base = [c.fresh() for _ in range(50)]
     first = parts(run([c.member(m) for m in base])[0])
@@ -297,6 +295,15 @@ def test_a_dropped_duplicate_that_becomes_kept_keeps_its_pieces_part():
     dedup1[copy] = StageResult.drop("near_duplicate", "", values={"cluster": old, "duplicate_of": old})
     r1, s1 = run([c.member(m) for m in base], upstream={"dedup": dedup1})
     assert parts(r1)[old] == "test" and s1.current["inherited"][copy] == "test"
+    return c, base, first, old, copy, s1
+
+
+def test_a_dropped_duplicate_that_becomes_kept_keeps_its_pieces_part():
+    """Found by an audit on POP909 (README, Split): a song's main file, dropped by dedup as a
+    copy of a version sitting in test, became kept in train when that version was removed
+    together with some train songs (the new member went to the part furthest below its share).
+    A file dedup dropped carries its cluster's part to the next run, so it stays in test."""
+    c, base, first, old, copy, s1 = _a_test_file_and_its_dropped_copy()
     # the test file and ten train files removed: train is now the part furthest below its share
     gone = {old} | set([m for m in base if first[m] == "train"][:10])
     left = [m for m in base if m not in gone] + [copy]
@@ -308,6 +315,53 @@ def test_a_dropped_duplicate_that_becomes_kept_keeps_its_pieces_part():
     r3, _ = run([c.member(m) for m in left], previous={**s1.current, "inherited": {}},
                 upstream={"dedup": dedup2})
     assert parts(r3)[copy] == "train"
+
+def test_a_new_representative_takes_the_part_its_dropped_cluster_mates_carry():
+    """Found by an audit (a kept file edited in place): its unchanged copies, dropped by dedup
+    in every run and so never assigned a part of their own, carried their cluster's part
+    (``inherited``) but did not hold the cluster's new representative in it; it went to the
+    part furthest below its share. They now tie it as ghosts, with the part they carry."""
+    c, base, first, old, copy, s1 = _a_test_file_and_its_dropped_copy()
+    # ``old`` replaced by ``new`` (its edited bytes), which dedup keeps over the copy; ten train
+    # files removed, so train is the part furthest below its share
+    new = c.near(old, 0.9)
+    gone = {old} | set([m for m in base if first[m] == "train"][:10])
+    left = [m for m in base if m not in gone] + [new]
+    dedup2 = {m: StageResult.keep(values={"cluster": m}) for m in left}
+    dedup2[new] = StageResult.keep(values={"cluster": new})
+    dedup2[copy] = StageResult.drop("near_duplicate", "", values={"cluster": new, "duplicate_of": new})
+    r2, s2 = run([c.member(m) for m in left], previous=s1.current, upstream={"dedup": dedup2})
+    assert parts(r2)[new] == "test" and "moved_from" not in r2[new].values
+    assert s2.current["inherited"][copy] == "test"
+    # without the part the copy carries the new file would have gone to train
+    r3, _ = run([c.member(m) for m in left], previous={**s1.current, "inherited": {}},
+                upstream={"dedup": dedup2})
+    assert parts(r3)[new] == "train"
+
+
+def test_a_file_edited_in_place_keeps_its_part():
+    """Found by an audit: the new content of a file edited in place (a tempo change, a fixed
+    note) is a new member; without its path's history it was placed as a new piece, into the
+    part furthest below its share, so fixing a test piece could move it into train unreported.
+    The runner names the content each edited path held (``flags["edited"]``) and the new
+    member starts from that content's part."""
+    c = Corpus(7)
+    base = [c.fresh() for _ in range(50)]
+    r1, s1 = run([c.member(m) for m in base])
+    first = parts(r1)
+    old = next(m for m in base if first[m] == "test")
+    new = c.fresh()  # unlike the old bytes in shingles: only the path ties them
+    gone = {old} | set([m for m in base if first[m] == "train"][:10])
+    left = [m for m in base if m not in gone] + [new]
+    r2, _ = run([c.member(m) for m in left], previous=s1.current, flags={"edited": {new: old}})
+    assert parts(r2)[new] == "test" and "moved_from" not in r2[new].values
+    r3, _ = run([c.member(m) for m in left], previous=s1.current)
+    assert parts(r3)[new] == "train"  # what the test guards: without the path, a new piece
+    # --reassign places every group afresh, edits included
+    r4, _ = run([c.member(m) for m in left], previous=s1.current,
+                flags={"edited": {new: old}, "reassign": True})
+    assert parts(r4) == parts(run([c.member(m) for m in left])[0])
+
 
 def test_last_run_results_are_returned_for_members_whose_split_did_not_change():
     """With the last run's results at hand (as the runner hands them over), a member whose

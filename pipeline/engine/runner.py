@@ -158,6 +158,7 @@ class Runner:
         # have changed: their rows are not settled, ``RowReuse.settle``); none to list on a
         # first run, which reuses no row
         touched = _touched_contents(changed, gone, known) if known else None
+        edited = _edited_contents(changed, known)  # for the split: a file keeps its part across an edit
         # files added, changed and removed since the last completed run (``outputs.changes``):
         # the sources table holds those of the last run started, which may have stopped early
         last_done = ledger.last_run()
@@ -240,7 +241,7 @@ class Runner:
         t = time.perf_counter()
         with _bulk_data():
             walk = StageWalk(self.stages, cfg.metadata, self._compactor, self._bar, self._chains,
-                             fresh=self.fresh, reassign=self.reassign).run(ledger, rep, cache, timings,
+                             fresh=self.fresh, reassign=self.reassign, edited=edited).run(ledger, rep, cache, timings,
                                                                            self._staged, self._index,
                                                                            unread=self._unread)
         timings["corpus"] = time.perf_counter() - t
@@ -517,6 +518,20 @@ def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
     added = sum(1 for row in changed if row[0] not in known)
     edited = sum(1 for row in changed if row[0] in known and known[row[0]][2] != row[3])
     return added, edited, len(gone)
+
+
+def _edited_contents(changed: list[tuple[str, int, int, str]],
+                     known: dict[str, tuple[int, int, str]]) -> dict[str, str]:
+    """For each source whose bytes changed since the last run started (``changed``: the
+    fingerprinted rows; ``known``: the last run's sources by path), its new member id -> the
+    id of the content the path held then (member ids are ``sha256[:16]``); the first path in
+    source order when several changed to one content."""
+    out: dict[str, str] = {}
+    for row in changed:
+        old = known.get(row[0])
+        if old is not None and old[2] != row[3]:
+            out.setdefault(row[3][:16], old[2][:16])
+    return out
 
 
 def _file_changes_since(files: Any, last: dict[str, str]) -> tuple[int, int, int]:

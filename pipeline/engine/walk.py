@@ -29,10 +29,13 @@ from .heap import release_free_memory
 class StageWalk:
     """One run's stage walk; ``run`` does it. ``compactor(stage)`` gives the stage's maker of
     compact records, ``bar(label, total)`` a progress bar, ``chains[stage]`` the fingerprint of
-    the stage and every stage before it (the key of its stored last-run results)."""
+    the stage and every stage before it (the key of its stored last-run results); ``edited``
+    (new member id -> the id of the content its path held in the last run, for files edited in
+    place) reaches the corpus stages as ``state.flags["edited"]``."""
 
     def __init__(self, stages: list[Stage], metadata: Metadata | None, compactor: Callable[[str], Compactor],
-                 bar: Callable[..., Any], chains: dict[str, str], *, fresh: bool, reassign: bool):
+                 bar: Callable[..., Any], chains: dict[str, str], *, fresh: bool, reassign: bool,
+                 edited: Mapping[str, str] | None = None):
         self.stages = stages
         self.metadata = metadata
         self.compactor = compactor
@@ -40,6 +43,7 @@ class StageWalk:
         self.chains = chains
         self.fresh = fresh
         self.reassign = reassign
+        self.edited = edited or {}  # new member id -> the id its path's content had last run
 
     def run(self, ledger: Ledger, rep: Mapping[str, str], cache: dict, timings: dict,
             staged: dict[str, tuple[str, ...]], index: dict[str, int], *,
@@ -106,6 +110,7 @@ class StageWalk:
                     last = _last_results(ledger, st.name, st.fingerprint, self.compactor(st.name))
                 state = CorpusState(saved, upstream, {
                     "fresh": self.fresh, "reassign": self.reassign, "previous_results": last,
+                    "edited": self.edited,
                     "sources_of": lambda name: _member_sources(stepped.get(name), rep),
                     "dropped_later": _later_drops(self.stages, st, cache, index),
                     # the stage's options, or those of the stages its results depend on, differ

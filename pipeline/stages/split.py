@@ -347,15 +347,15 @@ class Split(Stage):
         inherited = {} if reassign else state.previous.get("inherited", {})
         ids = sorted(m.id for m in members)
         sizes = self._output_counts(members, state)
-        links, ghosts, signed, cluster_of = self._links(members, state, previous)
+        links, ghosts, signed, cluster_of = self._links(members, state, {**inherited, **previous})
         for g in ghosts:
             sizes[g] = 0.0
         by_folder, layout = self._folder_rule(members, links, state, cluster_of)
         heirs = _heirs(cluster_of, ids)
         del cluster_of
         groups = build_groups(ids + sorted(ghosts), links, self._forced(members, by_folder))
-        # a member new to the split that dedup dropped last run starts from its cluster's part
-        prior = {**{m: inherited[m] for m in ids if m not in previous and m in inherited}, **previous}
+        prior = _prior_parts(ids, ghosts, previous, inherited,
+                             {} if reassign else state.flags.get("edited") or {})
         assignment, moves = assign_groups(groups, ratios, self.opts["seed"], prior,
                                           self._freeze(), sizes)
         real = set(ids)
@@ -448,11 +448,12 @@ class Split(Stage):
         state.save("output_counts", {k: v for k, v in sizes.items() if v != 1.0})
         return sizes
 
-    def _links(self, members: Sequence[Member], state: CorpusState, previous: dict[str, str]
+    def _links(self, members: Sequence[Member], state: CorpusState, carried: dict[str, str]
                ) -> tuple[list[tuple[str, str]], set[str], str | None, dict[str, Any]]:
         """Near-duplicate links among members (and links between members of one note
-        content, ``same_content_links``), and links to dedup cluster-mates that left the split
-        but carry a previous part (the ghosts); the stage whose signatures were compared (None
+        content, ``same_content_links``), and links to dedup cluster-mates that are not members
+        but carry a part from the last run (``carried``: their own, or the one a dropped file
+        took from its cluster; the ghosts); the stage whose signatures were compared (None
         when grouping is off or no member has one); and each dedup member's cluster
         (``_dedup_clusters``, read after the search: memory, it is not held beside it)."""
         links: list[tuple[str, str]] = []
@@ -504,7 +505,7 @@ class Split(Stage):
             if not inside:
                 continue
             for x in mates:
-                if x not in here and x in previous:
+                if x not in here and x in carried:
                     ghosts.add(x)
                 if x != inside[0] and (x in here or x in ghosts):
                     links.append((inside[0], x))
@@ -623,6 +624,24 @@ def _dedup_clusters(state: CorpusState) -> dict[str, Any]:
         if c is not None:
             out[mid] = c
     return out
+
+
+def _prior_parts(ids: list[str], ghosts: set[str], previous: dict[str, str],
+                 inherited: dict[str, str], edited: dict[str, str]) -> dict[str, str]:
+    """The part each member and ghost starts from (``assign_groups``' ``prior``): its own from
+    the last run; else, for a member or ghost dedup dropped last run, the part it took from its
+    cluster (``inherited``); else, for the new content of a file edited in place (``edited``:
+    new member id -> the id of the content its path held in the last run), the part of that
+    content, so a file keeps its part across an edit, as across a rerun (an audit: a kept
+    file whose tempo was edited was placed as a new piece, into another part, unreported)."""
+    prior = {m: inherited[m] for m in [*ids, *ghosts] if m not in previous and m in inherited}
+    for m in ids:
+        old = edited.get(m)
+        if m not in previous and m not in prior and old is not None:
+            part = previous.get(old, inherited.get(old))
+            if part is not None:
+                prior[m] = part
+    return {**prior, **previous}
 
 
 def _heirs(cluster_of: dict[str, Any], ids: list[str]) -> dict[str, str]:
