@@ -41,6 +41,10 @@ class _ArrayColumn:
         self.place: np.ndarray | None = None  # row -> its matrix row (None: the same)
         self.spilled: tuple | None = None  # (file, shape, dtype) while the matrix is in a file
 
+    def __del__(self) -> None:
+        if self.spilled is not None:  # closed with the column, not by the collector (which warns)
+            self.spilled[0].close()
+
     def _at(self, i: Any) -> Any:
         return i if self.place is None else self.place[i]
 

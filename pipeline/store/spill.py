@@ -31,6 +31,9 @@ def spill_file(chunks: Iterable[bytes | tuple[int, bytes]], folder: str | os.Pat
         raise OutputError(f"cannot write the signatures to a temporary file ({e.strerror}): the "
                           "corpus steps move them out of memory there; free space on that disk "
                           "and rerun (finished work is kept)", file=where) from None
+    except BaseException:  # e.g. blocks of the wrong shape: the file goes with the error
+        f.close()
+        raise
     return f
 
 
