@@ -463,6 +463,39 @@ def _exported_demo(tmp_path: Path, opts: ExportOptions):
     return corpus, out, opts, export_output(out, opts), out / "export" / opts.format
 
 
+def test_an_export_made_before_the_last_run_is_refused_until_exported_again(tmp_path):
+    """Found by an audit: after a run that removed a kept file (or moved a piece between
+    parts), the loader served the old export as it was: the removed file's array, a moved
+    piece in its old part. The loader now holds export.json's recorded state of the output
+    folder against the folder's (``freshness``); the run names the export it left behind."""
+    corpus, out, opts, _, folder = _exported_demo(tmp_path, ExportOptions("events"))
+    ex = open_export(out, "events")
+    assert len(ex) == sum(len(p.read_text().split()) for p in (out / "splits").glob("*.txt"))
+    # a run with nothing changed leaves the export current
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(corpus), output=str(out), workers=1)
+    Runner(cfg, quiet=True).run()
+    assert len(open_export(out, "events")) == len(ex)
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    gone = next(r for r in rows if r["status"] == "kept" and r["group_size"] == 1)
+    (corpus / gone["source"]).unlink()
+    report = Runner(cfg, quiet=True).run()
+    assert any(str(folder) in w and "midisift export" in w for w in report.warnings)
+    with pytest.raises(MidisiftError, match=r"made before the output folder's last run.*midisift export"):
+        open_export(out, "events")
+    assert gone["id"] in {key for key, _ in open_export(out, "events", stale_ok=True).iter_part()}
+    export_output(out, opts)
+    assert gone["id"] not in {key for key, _ in open_export(out, "events").iter_part()}
+    # an export folder copied away from its output folder has nothing to be held against
+    shutil.copytree(folder, tmp_path / "copied")
+    assert len(open_export(tmp_path / "copied")) == len(ex) - 1
+    # an export of a midisift that did not record the state is refused, with the reason
+    meta = json.loads((folder / "export.json").read_text())
+    del meta["output_state"]
+    (folder / "export.json").write_text(json.dumps(meta))
+    with pytest.raises(MidisiftError, match="did not record the run it was made from"):
+        open_export(out, "events")
+
+
 def test_rerun_writes_only_what_changed(tmp_path):
     corpus, out, opts, first, folder = _exported_demo(tmp_path, ExportOptions("events", shard_mb=0.02))
     shards = {p: p.stat().st_mtime_ns for p in folder.glob("*/*.npz")}

@@ -32,6 +32,7 @@ from typing import Any
 
 from ..config import Config
 from ..errors import LedgerError
+from ..export.freshness import stale_exports
 from ..midi.accel import HAVE_ACCEL
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
 from ..outputs.changes import change_lines, changes_since, last_parts
@@ -336,7 +337,8 @@ class Runner:
         parts = in_part_order(dict(summary["split"]["outputs"]), summary["split"].get("part_order"))
         return RunReport(cfg.output, len(files), facts.kept, facts.dropped_by, timings, computed,
                          len(rep) - computed, parts, change_lines(changes) + notes + walk.notes,
-                         summary.get("warnings", []),
+                         # printed, not stored: an export made after this run is not stale
+                         summary.get("warnings", []) + stale_exports(cfg.output),
                          split_lines=split_lines(summary["split"].get("stage")))
 
     def _prefetch(self, shas: list[str]) -> None:

@@ -3,7 +3,8 @@
 Layout of ``OUTPUT/export/<format>/``::
 
     index.jsonl          one line per exported file, in part order then key order
-    export.json          the options used, their fingerprint, the encoding version
+    export.json          the options used, their fingerprint, the encoding version, the
+                         state of the output folder it was made from (``freshness``)
     vocabulary.json      (events) the token table
     <part>/<part>-<fp>-00000.npz  shards: many pieces' arrays by key, about ``shard_mb`` each;
                          ``<fp>`` is the start of the options' fingerprint
@@ -46,6 +47,7 @@ from ..store.atomic import read_json_object, write_atomic
 from ..engine.sources import file_sha256
 from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
+from .freshness import output_state
 from .png import png_bytes, roll_image
 
 FORMATS = ("pianoroll", "events")
@@ -551,7 +553,7 @@ def _write(out_dir: Path, folder: Path, wanted: list[Wanted], parts: list[str], 
     index_written = _write_if_changed(folder / "index.jsonl", "".join(json.dumps(line) + "\n" for line in lines))
     meta = {"format": opts.format, "options": recorded, "fingerprint": fp, "encoding_version": ENCODING_VERSION,
             "layout": LAYOUT, "pieces": len(lines), "parts": result.parts,
-            "no_pitched_note": result.no_pitched_note}
+            "no_pitched_note": result.no_pitched_note, "output_state": output_state(out_dir)}
     result.shards_kept = len(kept_shards)
     # how the export that wrote this index got its pieces: a rerun that leaves the index as it
     # was leaves export.json too (its counts then still describe the export that wrote both)

@@ -8,7 +8,8 @@
 ``np.load`` of an ``.npz`` reads an array only when it is asked for, so memory holds one
 piece's array at a time (plus the index, a few hundred bytes a piece). Every array served is
 checked against its index line (shape and dtype): a shard that is not the one the index
-describes is an error naming it, never a silently wrong array.
+describes is an error naming it, never a silently wrong array. An export made before its output
+folder's last run is refused (``freshness``): that run may have moved files between parts.
 """
 from __future__ import annotations
 
@@ -21,6 +22,7 @@ import numpy as np
 
 from ..errors import MidisiftError, UsageError
 from .build import FORMATS, LAYOUT, array_matches
+from .freshness import REEXPORT, output_folder_of, output_state
 
 DRUMS_SUFFIX = ".drums"
 RERUN = "rerun `midisift export` to write it again"
@@ -29,7 +31,7 @@ RERUN = "rerun `midisift export` to write it again"
 class ExportFolder:
     """An ``OUTPUT/export/<format>/`` folder: its index, options and (events) vocabulary."""
 
-    def __init__(self, folder: Path | str):
+    def __init__(self, folder: Path | str, *, stale_ok: bool = False):
         self.folder = Path(folder)
         index = self.folder / "index.jsonl"
         if not index.is_file():
@@ -44,6 +46,8 @@ class ExportFolder:
         self.meta: dict[str, Any] = meta
         self.vocabulary: dict[str, Any] | None = self._json("vocabulary.json")
         self._check_consistent()
+        if not stale_ok:
+            self._check_current()
         self._by_key = {e["key"]: e for e in self.entries}
 
     def _json(self, name: str) -> dict[str, Any] | None:
@@ -68,6 +72,21 @@ class ExportFolder:
         if others:
             raise MidisiftError("index.jsonl, export.json and vocabulary.json are of different exports (an "
                                 f"export was stopped while it replaced them); {RERUN}", file=str(self.folder))
+
+    def _check_current(self) -> None:
+        """The export describes its output folder as the folder's last run left it
+        (``freshness``): a run since may have moved files between parts or removed them."""
+        out_dir = output_folder_of(self.folder)
+        if out_dir is None or not (out_dir / "summary.json").is_file():
+            return  # an export moved away from its output folder: nothing to hold it against
+        if self.meta.get("output_state") != output_state(out_dir):
+            why = ("was written by a midisift before 0.4.8, which did not record the run it was made from"
+                   if "output_state" not in self.meta else
+                   "was made before the output folder's last run, which may have added, removed or "
+                   "moved files between parts")
+            raise MidisiftError(f"this export {why}; "
+                                + REEXPORT.format(out=out_dir, fmt=self.meta.get("format", self.folder.name))
+                                + ", or open it with stale_ok=True to read it as it is", file=str(self.folder))
 
     @property
     def format(self) -> str:
@@ -147,15 +166,17 @@ class ExportFolder:
         return arr
 
 
-def open_export(path: Path | str, format: str | None = None) -> ExportFolder:
+def open_export(path: Path | str, format: str | None = None, *, stale_ok: bool = False) -> ExportFolder:
     """Open an export: ``path`` is the format folder itself, or the output folder with
-    ``format`` ("pianoroll" or "events"); a folder holding another format is a UsageError."""
+    ``format`` ("pianoroll" or "events"); a folder holding another format is a UsageError.
+    An export made before its output folder's last run is refused (``freshness``) unless
+    ``stale_ok``."""
     path = Path(path)
     if format is not None and format not in FORMATS:
         raise UsageError(f"unknown format {format!r}; use one of: {', '.join(FORMATS)}")
     if format is not None and not (path / "index.jsonl").is_file():
         path = path / "export" / format
-    ex = ExportFolder(path)
+    ex = ExportFolder(path, stale_ok=stale_ok)
     if format is not None and ex.format != format:
         raise UsageError(f"this export is of format {ex.format!r}, not {format!r}; open "
                          f"{path.parent / format} or run `midisift export --format {format}`", file=str(path))
