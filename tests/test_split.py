@@ -230,6 +230,11 @@ def test_incremental_rerun():
     assert moved == {train_file}
     assert r2[train_file].values["moved_from"] == "train"
     assert "frozen part 'test'" in r2[train_file].detail
+    # the reason names the files that tied it: the test file it joins and the new file linking
+    # them (an audit: explain named no file), by their paths
+    assert f"in 'test' it joins {test_file}.mid ({test_file})" in r2[train_file].detail
+    assert "through files new to this run: " in r2[train_file].detail
+    assert f"{link}.mid ({link})" in r2[train_file].detail
     assert any(train_file in line and "moved from train to test" in line for line in s2.notes)
     assert s2.current["summary"]["moved"] == 1
     for m, p in first.items():

@@ -360,6 +360,9 @@ class Split(Stage):
                                           self._freeze(), sizes)
         real = set(ids)
         moved = {m: (old, new, why) for m, old, new, why in moves if m in real}
+        if moved and not reassign:
+            ties = _tie_texts(moved, groups, prior, members)
+            moved = {m: (old, new, why + ties.get(m, "")) for m, (old, new, why) in moved.items()}
         if reassign:  # every group placed again: a file now elsewhere moved (an audit: 463
             # such files went unreported in explain, the manifest and the page)
             last_parts = state.previous.get("assignments", {})
@@ -623,6 +626,40 @@ def _dedup_clusters(state: CorpusState) -> dict[str, Any]:
         c = _value(res, "cluster") if res is not None else None
         if c is not None:
             out[mid] = c
+    return out
+
+
+def _tie_texts(moved: dict[str, tuple[str, str, str]], groups: dict[str, list[str]],
+               prior: dict[str, str], members: Sequence[Member]) -> dict[str, str]:
+    """For each member moved into the part of another member of its group: that member and
+    the group's files new to this run (those that can have joined the groups), named by their
+    paths, so the move's reason says which files tied it (an audit: a stray byte copy of a test
+    file in another song's folder moved that song to test, and explain named no file)."""
+    named: dict[str, tuple[str, list[str]]] = {}  # moved member -> (anchor, new members)
+    for grp in groups.values():
+        inside = [m for m in grp if m in moved]
+        if not inside:
+            continue
+        fresh = [x for x in grp if x not in prior][:2]
+        for m in inside:
+            anchor = next((x for x in grp if x != m and prior.get(x) == moved[m][1]), None)
+            if anchor is not None:
+                named[m] = (anchor, [x for x in fresh if x != m])
+    wanted = {x for anchor, fresh in named.values() for x in (anchor, *fresh)}
+    paths = {mem.id: [s for s, _ in mem.sources()] for mem in members if mem.id in wanted}
+
+    def name(x: str) -> str:
+        if x not in paths:
+            return f"{x} (a file dedup dropped)"
+        shown = ", ".join(paths[x][:3]) + (f" and {len(paths[x]) - 3} more" if len(paths[x]) > 3 else "")
+        return f"{shown} ({x})"
+
+    out = {}
+    for m, (anchor, fresh) in named.items():
+        text = f"; in {moved[m][1]!r} it joins {name(anchor)}"
+        if fresh:
+            text += ", through files new to this run: " + "; ".join(name(x) for x in fresh)
+        out[m] = text
     return out
 
 
