@@ -10,7 +10,9 @@ from typing import Any
 #: code -> (stage, meaning). Order: as a file meets them along the default config.
 REASONS: dict[str, tuple[str, str]] = {
     "not_midi": ("validate", "not a MIDI file at all: empty, an HTML page, an image, text, a RIFF file that is not RMID"),
-    "bad_chunk": ("validate", "bad header (length, format fields, division 0) or garbage where a track chunk should be"),
+    "bad_chunk": ("validate", "bad header (length, format fields, division 0), garbage where a track chunk "
+                  "should be, or fewer track chunks than the header declares beside chunks of other "
+                  "names (a damaged track name)"),
     "truncated": ("validate", "the file ends inside a chunk or an event, or a chunk length points past the end"),
     "bad_event": ("validate", "an invalid status or data byte, running status with no status, a meta/sysex length past its chunk"),
     "unsupported_format": ("validate", "SMF format 2 (independent sequences) or a format number above 2"),

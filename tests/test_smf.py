@@ -242,6 +242,20 @@ def test_truncated_missing_tracks():
     assert exc.value.code == "truncated" and exc.value.track == 1
 
 
+def test_a_damaged_track_name_is_a_bad_chunk_not_a_file_cut_off():
+    # Standard MIDI File spec 1.0 (chunks): a reader skips chunks of unknown names, so a track
+    # whose 'MTrk' name is damaged reads as such a chunk, and the file then holds fewer tracks
+    # than its header declares although it ends where its last chunk does (an audit: reported
+    # `truncated`, "cut off during download", at the end of the file)
+    header = "4d 54 68 64 00 00 00 06  00 01 00 02 00 60  # declares 2 tracks"
+    data = smf(mtrk(ONE_NOTE), mtrk(ONE_NOTE), header=header)
+    damaged = data[:14] + b"XXXX" + data[18:]
+    with pytest.raises(DecodeError, match=r"holds 1 track chunks and 1 chunk\(s\) of other names, the "
+                       r"first 'XXXX' at byte 14, which a reader skips; a damaged 'MTrk' name") as exc:
+        decode(damaged)
+    assert exc.value.code == "bad_chunk" and exc.value.offset == 14
+
+
 def test_truncated_inside_event():
     # the chunk length matches the bytes present, but the last event is cut in half
     data = smf(mtrk("00 90 3c 64  60 80 3c"))
