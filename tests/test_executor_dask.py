@@ -216,6 +216,41 @@ def test_the_shared_folder_check_names_what_a_worker_does_not_see(tmp_path):
     assert "cannot read" in executor_dask._worker_sees(str(tmp_path), str(tmp_path / "gone"), "token")
 
 
+def test_the_shared_folder_check_reads_input_files_as_the_client_does(tmp_path):
+    """Found by an audit: a worker given an empty folder, or a stale copy of the input under the
+    same path, passed a check of the folder alone, and the run dropped most of the corpus as
+    unreadable or changed during the run. A few input files must hold the client's bytes."""
+    inp = tmp_path / "in"
+    for rel in ("a/1.mid", "a/2.MID", "b/3.midi", "b/4.mid", "b/notes.txt", "c/5.mid"):
+        (inp / rel).parent.mkdir(parents=True, exist_ok=True)
+        (inp / rel).write_bytes(rel.encode())
+    samples = executor_dask.input_samples(str(inp))
+    # the first and last MIDI file of each folder in sorted walk order, up to SAMPLE_FILES
+    assert [Path(p).relative_to(inp).as_posix() for p, _ in samples] == ["a/1.mid", "a/2.MID", "b/3.midi", "b/4.mid"]
+    probe = tmp_path / "probe"
+    probe.write_text("token")
+    assert executor_dask._worker_sees(str(inp), str(probe), "token", samples) == ""
+    (inp / "b" / "3.midi").write_bytes(b"other bytes")  # a stale copy on the worker
+    why = executor_dask._worker_sees(str(inp), str(probe), "token", samples)
+    assert "3.midi" in why and "holds other bytes" in why and socket.gethostname() in why
+    (inp / "a" / "1.mid").unlink()  # an empty folder of that name on the worker
+    assert "cannot read the input file" in executor_dask._worker_sees(str(inp), str(probe), "token", samples)
+
+
+def test_a_failed_shared_folder_check_leaves_no_output_folder(cluster, corpus, tmp_path, monkeypatch, capsys):
+    """Found by an audit: the output folder was made before the check, and left empty."""
+    address, _ = cluster
+
+    def not_shared(self, input_folder: str, output_folder: str) -> None:
+        raise executor_dask.MidisiftError("Dask workers do not share this machine's folders (test)",
+                                          location=self.address)
+
+    monkeypatch.setattr(executor_dask.DaskExecutor, "check_shared", not_shared)
+    out = tmp_path / "new" / "out"
+    assert _run(_config(tmp_path), corpus, out, "--executor", address) == 1
+    assert "do not share" in capsys.readouterr().err and not out.exists()
+
+
 def test_executor_values_are_checked_with_the_other_config_errors():
     base = {"input": "in", "output": "out", "stages": ["validate"]}
     assert parse_config({**base, "executor": "tcp://127.0.0.1:8786"}).executor == "tcp://127.0.0.1:8786"

@@ -24,7 +24,8 @@ Workers read the input files and write the normalized outputs by path: the input
 folders must be the same paths on every worker (a shared filesystem). Relative paths are taken
 from the client's working folder, which must exist on the workers too. ``connect`` checks that
 the scheduler answers and that every worker runs this midisift version; ``check_shared`` checks
-that each worker sees the input folder and a file the client just wrote in the output folder.
+that each worker sees the input folder, a few of its files with the client's bytes, and a file
+the client just wrote in the output folder.
 """
 from __future__ import annotations
 
@@ -113,14 +114,18 @@ class DaskExecutor:
 
     def check_shared(self, input_folder: str, output_folder: str) -> None:
         """Every worker must see the input folder and the output folder as this process does:
-        a probe file written here must be read back, with the same content, by each worker."""
+        a probe file written here must be read back, with the same content, by each worker, and
+        a few input files must hold there the bytes they hold here (an audit: a worker given an
+        empty folder, or a stale copy, at the input path passed a check of the folder alone,
+        and the run dropped three quarters of the corpus as unreadable or changed)."""
         token = secrets.token_hex(16)
         output_folder = os.path.abspath(output_folder)
+        samples = input_samples(os.path.abspath(input_folder))
         probe = os.path.join(output_folder, f".midisift-probe-{token}")
         with open(probe, "w", encoding="ascii") as fh:
             fh.write(token)
         try:
-            seen = self.client.run(_worker_sees, os.path.abspath(input_folder), probe, token)
+            seen = self.client.run(_worker_sees, os.path.abspath(input_folder), probe, token, samples)
         finally:
             os.unlink(probe)
         bad = {addr: why for addr, why in seen.items() if why}
@@ -241,11 +246,44 @@ def _worker_version() -> str:
     return v
 
 
-def _worker_sees(input_folder: str, probe: str, token: str) -> str:
-    """'' when this worker sees the input folder and reads ``token`` from ``probe``; else why."""
+#: Input files whose bytes every worker must read as the client does (``input_samples``).
+SAMPLE_FILES = 4
+
+
+def input_samples(input_folder: str, count: int = SAMPLE_FILES) -> list[tuple[str, str]]:
+    """(path, sha256) of up to ``count`` input files: the first and the last MIDI file of each
+    folder in walk order (folders sorted) until ``count`` are found, without listing the whole
+    tree (the run lists it next)."""
+    from .sources import MIDI_SUFFIXES, file_sha256
+    found: list[str] = []
+    for root, dirs, files in os.walk(input_folder):
+        dirs.sort()
+        midi = sorted(f for f in files if f.lower().endswith(MIDI_SUFFIXES))
+        found += [os.path.join(root, f) for f in (midi[:1] + midi[-1:] if len(midi) > 1 else midi)]
+        if len(found) >= count:
+            break
+    out = []
+    for path in found[:count]:
+        try:
+            out.append((path, file_sha256(path)))
+        except OSError:  # unreadable here too: the run says so for that file
+            continue
+    return out
+
+
+def _worker_sees(input_folder: str, probe: str, token: str, samples: list[tuple[str, str]] = ()) -> str:
+    """'' when this worker sees the input folder, reads ``token`` from ``probe`` and each of
+    ``samples`` (path, sha256) with the client's bytes; else why."""
     host = socket.gethostname()
     if not os.path.isdir(input_folder):
         return f"no folder {input_folder} on host {host}"
+    from .sources import file_sha256
+    for path, digest in samples:
+        try:
+            if file_sha256(path) != digest:
+                return f"{path} on host {host} holds other bytes than on the client (a copy of the input folder?)"
+        except OSError as e:
+            return f"cannot read the input file {path} on host {host} ({e.strerror})"
     try:
         with open(probe, encoding="ascii") as fh:
             if fh.read() != token:

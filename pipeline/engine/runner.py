@@ -112,12 +112,21 @@ class Runner:
         # a Dask scheduler is reached (and its workers checked) before anything is written
         self._remote = _connect(cfg.executor)
         try:
+            created = not out.exists()
             try:
                 out.mkdir(parents=True, exist_ok=True)
             except OSError as e:
                 raise LedgerError(f"cannot create the output folder ({e.strerror})", file=str(out)) from None
             if self._remote is not None:
-                self._remote.check_shared(str(cfg.input), str(out))
+                try:
+                    self._remote.check_shared(str(cfg.input), str(out))
+                except BaseException:
+                    if created:  # nothing written: no empty folder left behind (an audit)
+                        try:
+                            out.rmdir()
+                        except OSError:
+                            pass
+                    raise
             with OutputLock(out):
                 with Ledger(out / "state.sqlite") as ledger:
                     try:
