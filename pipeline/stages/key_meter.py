@@ -57,16 +57,17 @@ KEY_OPTIONS: tuple[Option, ...] = (
            _check_weight),
     Option("trust_file_key", bool, False,
            "Report the key-signature event of the file instead of the estimate when the file "
-           "declares one; key_confidence is then the estimate's probability of that key and "
-           "key_runner_up the most likely other key. Transpose's own trust_file_key decides "
-           "the shift (transpose_key)."),
+           "declares one; key_confidence then describes that key (the estimate's probability "
+           "of it; a published profile: its correlation margin) and key_runner_up is the most "
+           "likely other key. Transpose's own trust_file_key decides the shift "
+           "(transpose_key)."),
 )
 
 #: transpose's text of ``trust_file_key`` (the same option, acting on the shift).
 TRUST_FILE_KEY_TRANSPOSE = (
     "Transpose by (and report) the key-signature event of the file instead of the estimate "
-    "when the file declares one (not held back by min_key_confidence); key_confidence is then "
-    "the estimate's probability of that key.")
+    "when the file declares one (not held back by min_key_confidence); key_confidence then "
+    "describes that key, as in key_meter.")
 
 
 def key_effective_options(opts: dict[str, Any], options: tuple[Option, ...]) -> dict[str, Any]:
