@@ -208,3 +208,19 @@ def test_the_guard_compares_the_recorded_confidence(monkeypatch, chorale_in_anot
     detail = _kept_detail(trail, "train")
     assert detail.startswith("kept: passed validate, transpose; placed in train")
     assert "not transposed: key " in detail and "below min_key_confidence 0.8701" in detail
+
+
+def test_the_page_counts_the_normalized_key_from_the_key_transpose_shifted(chorale_in_another_key):
+    # key_meter trusting the file's C major, transpose shifting by the estimate: the page's
+    # "normalized" key is the estimate moved to its target (an audit's POP909 033.mid: E minor
+    # estimated, C major declared, shifted +5; music21's analyze('key') read the output as
+    # A minor), not the reported C major moved by +5 (F major)
+    from pipeline.outputs.page import Facts
+    piece, est = chorale_in_another_key
+    t = Transpose().process(piece, FileContext(piece)).values
+    k = KeyMeter({"trust_file_key": True}).process(piece, FileContext(piece)).values
+    facts = Facts()
+    facts.add({**t, **k, "status": "kept"})
+    target = 0 if est.mode == "major" else 12 + 9  # C major / A minor
+    assert facts.key_after[target] == 1 and sum(facts.key_after) == 1
+    assert facts.key_before[0] == 1  # the reported source key: C major
