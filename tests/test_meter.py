@@ -228,17 +228,19 @@ def test_a_1_4_signature_is_a_default_and_the_estimate_is_used():
 
 
 def test_a_contradicted_declared_meter_is_replaced():
-    # a waltz declared 4/4 (the usual sequencer default): the estimate rules out duple meter
-    v = _stage(_with_meta(waltz(), meter="4/4"))
+    # a waltz declared 4/4 (the usual sequencer default): with meter_contradiction set, the
+    # estimate rules out duple meter
+    v = _stage(_with_meta(waltz(), meter="4/4"), meter_contradiction=0.01)
     assert v["meter_declared_suspect"] == "contradicted"
     assert (v["meter"], v["meter_source"]) == ("3/4", "estimated")
     # the same waltz declared 3/4 is kept; 2/4 on the 4/4 march is an editor's choice within
     # one family (common practice) and is kept too
-    assert _stage(_with_meta(waltz(), meter="3/4"))["meter_source"] == "file"
-    v = _stage(_with_meta(march(), meter="2/4"))
+    assert _stage(_with_meta(waltz(), meter="3/4"), meter_contradiction=0.01)["meter_source"] == "file"
+    v = _stage(_with_meta(march(), meter="2/4"), meter_contradiction=0.01)
     assert (v["meter"], v["meter_source"], v["meter_declared_suspect"]) == ("2/4", "file", None)
-    # the option at 0 keeps every declared meter that is not a default
-    v = _stage(_with_meta(waltz(), meter="4/4"), meter_contradiction=0)
+    # the option at 0, its default (README, Declared meters), keeps every declared meter that
+    # is not a default
+    v = _stage(_with_meta(waltz(), meter="4/4"))
     assert (v["meter"], v["meter_source"]) == ("4/4", "file")
 
 
@@ -340,10 +342,11 @@ def test_empty_piece(chorale_works):
     empty = Piece(**{**piece.__dict__, "notes": piece.notes[:0],
                      "time_signatures": np.zeros(0, dtype=METER_DTYPE)})
     est = metermod.estimate_meter(empty)
-    assert est.meter == "4/4" and est.confidence == 0.0
+    assert est.meter is None and est.confidence == 0.0 and est.probabilities == ()
     assert timing.grid_fraction(empty) == 1.0
     values = KeyMeter().process(empty, FileContext(empty)).values
-    assert values["meter_source"] == "estimated"
+    assert values["meter"] is None and values["meter_source"] is None
+    assert values["tonic"] is None and values["key_confidence"] is None
 
 
 def test_a_long_silence_does_not_blow_up_the_accent_function():

@@ -146,8 +146,8 @@ def _plain_fold_phase(acc, spec):
 
 def plain_estimate_meter(piece):
     acc = plain_accent_function(piece)
-    if len(acc) == 0 or not acc.any():
-        return metermod.MeterEstimate("4/4", 0.0, 0.0, "3/4", 0.0, ())
+    if np.count_nonzero(acc) < metermod.MIN_ONSETS:  # too few onset positions: no estimate
+        return metermod.MeterEstimate(None, 0.0, 0.0, None, 0.0, ())
     r = _plain_autocorrs(acc, metermod._LAG_BINS)
     onsets = np.unique(piece.pitched["start"])
     ioi = np.diff(onsets) / float(piece.ticks_per_beat)

@@ -211,17 +211,20 @@ def test_guard_holds_back_below_threshold_and_records_why():
 
 def test_a_confidence_just_below_the_limit_prints_apart_from_it(monkeypatch):
     # found by an audit: "confidence 0.300, below min_key_confidence 0.3" for 0.29996 (the
-    # sentence now prints enough digits to tell the two apart; pipeline.printed)
+    # sentence now prints enough digits to tell the two apart; pipeline.printed). The guard
+    # compares the recorded value (rounded to 4 digits): 0.29996 is 0.3, not below; 0.29994
+    # is 0.2999, and prints so
     import dataclasses
 
     from pipeline.stages import transpose as tr
     real = tr.shared_key_estimate
-    monkeypatch.setattr(tr, "shared_key_estimate",
-                        lambda ctx, opts: dataclasses.replace(real(ctx, opts), confidence=0.29996))
-    _, chromatic = _ambiguous_and_clear()
-    held = Transpose({"min_key_confidence": 0.3}).process(chromatic, FileContext(chromatic))
-    assert held.values["transpose_held_back"]
-    assert "with confidence 0.29996, below min_key_confidence 0.3" in held.detail, held.detail
+    for value, held_back in ((0.29996, False), (0.29994, True)):
+        monkeypatch.setattr(tr, "shared_key_estimate",
+                            lambda ctx, opts: dataclasses.replace(real(ctx, opts), confidence=value))
+        _, chromatic = _ambiguous_and_clear()
+        res = Transpose({"min_key_confidence": 0.3}).process(chromatic, FileContext(chromatic))
+        assert res.values["transpose_held_back"] is held_back
+    assert "with confidence 0.2999, below min_key_confidence 0.3" in res.detail, res.detail
 
 
 def test_guard_drops_with_reason_when_asked():

@@ -95,6 +95,20 @@ class KeyEstimate:
     def name(self) -> str:
         return f"{self.tonic} {self.mode}"
 
+    def confidence_of(self, index: int) -> float:
+        """``confidence`` as it would read for key ``index`` (0-23, as ``scores``): for the
+        learned method its probability; for a published profile its correlation minus the
+        best other key's (negative when another key correlates better). The estimate's own
+        key gives ``confidence``."""
+        others = max(s for i, s in enumerate(self.scores) if i != index)
+        return self.scores[index] if self.profile == LEARNED else self.scores[index] - others
+
+    def runner_up_to(self, index: int) -> str:
+        """The most likely key other than key ``index`` (the first on a tie): ``runner_up``
+        for the estimate's own key, else the estimate's key."""
+        best = max((i for i in range(24) if i != index), key=self.scores.__getitem__)
+        return key_name(best % 12, MODES[best // 12])
+
 
 def pitch_class_histogram(piece: Piece, bass_weight: float = 0.0, final_weight: float = 0.0,
                           final_beats: float = FINAL_BEATS) -> np.ndarray:

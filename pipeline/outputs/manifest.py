@@ -21,9 +21,13 @@ CONTRACT_FIELDS = (
 
 
 def _kept_detail(trail: list, part: str | None) -> str:
+    """The detail of a kept file: the stages it passed and its part, and why a stage held
+    its work back (transpose below ``min_key_confidence``: ``not transposed: key ...``)."""
     stages = ", ".join(s["stage"] for s in trail)
     where = f"; placed in {part}" if part else ""
-    return f"kept: passed {stages}{where}"
+    held = "".join(f"; {s['detail']}" for s in trail
+                   if (s.get("values") or {}).get("transpose_held_back") and s.get("detail"))
+    return f"kept: passed {stages}{where}{held}"
 
 
 def source_fields(rel: str, file_title: Any, metadata: Any) -> dict[str, Any]:

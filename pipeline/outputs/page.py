@@ -15,6 +15,7 @@ import time
 from pathlib import Path
 from typing import Any, Iterable
 
+from ..analysis.key_profiles import note_name_to_pc
 from ..store.atomic import write_atomic
 from .changes import EXAMPLES
 from .table import folder_rule_text
@@ -214,6 +215,10 @@ class Facts:
         if pc is not None and mode in ("major", "minor"):
             off = 0 if mode == "major" else 12
             self.key_before[off + pc % 12] += sign
+            moved = r.get("transpose_key")  # the key transpose shifted (its own key options)
+            if moved:
+                name, mode = moved.split()
+                pc, off = note_name_to_pc(name), 0 if mode == "major" else 12
             self.key_after[off + (pc + (r.get("transpose") or 0)) % 12] += sign
         meter, est = r.get("meter"), r.get("meter_estimated")
         if r.get("meter_source") == "file" and meter:

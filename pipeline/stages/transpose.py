@@ -18,7 +18,8 @@ from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
 from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, Variant, register
-from .key_meter import KEY_OPTIONS, key_effective_options, key_fields, reported_key, shared_key_estimate
+from .key_meter import (KEY_OPTIONS, TRUST_FILE_KEY_TRANSPOSE, key_effective_options, key_fields,
+                        reported_key, shared_key_estimate)
 
 
 def _check_note(value: Any) -> str | None:
@@ -83,7 +84,9 @@ class Transpose(Stage):
     name = "transpose"
     kind = "file"
     #: 5: its results carry the key it read (``key_fields``), as key_meter's do
-    version = 5
+    #: 6: and the key the shift used (``transpose_key``, ``transpose_key_confidence``); the
+    #: guard compares the recorded (rounded) confidence; no key without pitched notes
+    version = 6
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),
@@ -107,7 +110,8 @@ class Transpose(Stage):
                "What to do below min_key_confidence: keep (write the file untransposed, "
                "transpose 0, transpose_held_back true) or drop (reason key_uncertain).",
                _check_below),
-    ) + KEY_OPTIONS
+    ) + tuple(replace(o, doc=TRUST_FILE_KEY_TRANSPOSE) if o.name == "trust_file_key" else o
+              for o in KEY_OPTIONS)
     doc = ("Shifts pitched notes so the estimated tonic becomes major_to/minor_to; drum channel "
            "untouched; notes beyond 0..127 folded by octaves and counted. A key estimated with "
            "a confidence below min_key_confidence is not applied: the file is kept untransposed "
@@ -124,23 +128,34 @@ class Transpose(Stage):
 
     def process(self, piece: Piece, ctx: FileContext) -> StageResult:
         est = shared_key_estimate(ctx, self.opts)
-        pc, mode, source = reported_key(piece, est, bool(self.opts["trust_file_key"]))
+        reported = reported_key(piece, est, bool(self.opts["trust_file_key"]))
         extra = augment_shifts(self.opts["augment"])
         limit = float(self.opts["min_key_confidence"])
-        # a key declared by the file (trust_file_key) is not an estimate: no guard
-        uncertain = source == "estimated" and est.confidence < limit
+        found = key_fields(reported, est)
+        if reported is None:  # no pitched note: nothing to move, no key to guard
+            values = {**found, "transpose": 0, "transpose_held_back": False, "transpose_folded": 0,
+                      "transpose_key": None, "transpose_key_confidence": None,
+                      "augment": extra, "augment_folded": 0}
+            return StageResult.keep(detail="no pitched notes: not transposed", values=values)
+        pc, mode, source = reported
         key = keymod.key_name(pc, mode)
-        found = key_fields(pc, mode, source, est)
+        # the key the shift (or the guard) used, recorded apart from the key fields, which a
+        # later key_meter with other key options replaces: every row can be checked
+        confidence = found["key_confidence"]
+        used = {"transpose_key": key, "transpose_key_confidence": confidence}
+        # a key declared by the file (trust_file_key) is not an estimate: no guard; the guard
+        # compares the recorded (rounded) confidence, so the row and the decision agree
+        uncertain = source == "estimated" and confidence < limit
         if uncertain:
-            shown, bar = compared(est.confidence, limit)  # never "0.300, below 0.3"
+            shown, bar = compared(confidence, limit)  # never "0.300, below 0.3"
             why = f"key {key} estimated with confidence {shown}, below min_key_confidence {bar}"
             thresholds = {"key_confidence": limit}
             if self.opts["below_confidence"] == "drop":
                 return StageResult.drop("key_uncertain", why,
-                                        values={**found, "transpose_held_back": True},
+                                        values={**found, **used, "transpose_held_back": True},
                                         thresholds=thresholds)
-            values = {**found, "transpose": 0, "transpose_held_back": True, "transpose_folded": 0,
-                      "augment": extra,
+            values = {**found, **used, "transpose": 0, "transpose_held_back": True,
+                      "transpose_folded": 0, "augment": extra,
                       "augment_folded": sum(fold_count(piece.notes, e) for e in extra)}
             return StageResult.keep(detail=f"not transposed: {why}", values=values,
                                     thresholds=thresholds)
@@ -148,8 +163,8 @@ class Transpose(Stage):
         shift = smallest_shift(pc, target, self.opts["direction"])
         folded = fold_count(piece.notes, shift)
         folded_aug = sum(fold_count(piece.notes, shift + e) for e in extra)
-        values = {**found, "transpose": shift, "transpose_held_back": False, "transpose_folded": folded,
-                  "augment": extra, "augment_folded": folded_aug}
+        values = {**found, **used, "transpose": shift, "transpose_held_back": False,
+                  "transpose_folded": folded, "augment": extra, "augment_folded": folded_aug}
         detail = f"{key} shifted {shift:+d} semitones"
         if folded:
             detail += f", {folded} notes folded by octaves"

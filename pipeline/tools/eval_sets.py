@@ -629,6 +629,30 @@ def meter_pop(folder: str | Path, split: str) -> list[dict[str, Any]]:
     return out
 
 
+def meter_truth_corpus(folder: str | Path) -> list[dict[str, Any]]:
+    """The files of a generated corpus (``midisift synth``, the shipped demo) whose
+    ``truth.json`` names a meter, decoded as they are (their time signatures too: the estimate
+    does not read them), with the declared meter of the file (None when it declares none).
+    Files that do not decode, or without notes, are left out."""
+    from ..midi.decode import decode
+    from ..errors import MidisiftError
+    folder = Path(folder)
+    truth = json.loads((folder / "truth.json").read_text(encoding="utf-8"))["files"]
+    out = []
+    for rel, t in sorted(truth.items()):
+        if not t.get("meter"):
+            continue
+        try:
+            piece = decode((folder / rel).read_bytes())
+        except (MidisiftError, OSError):
+            continue
+        if len(piece.notes) == 0:
+            continue
+        out.append({"name": rel, "meter": t["meter"], "piece": piece,
+                    "declared": metermod.meter_from_file(piece)})
+    return out
+
+
 def file_time_meter(label: dict[str, Any]) -> str:
     """The pop set's meter in the file's own time base. Its 6/8 songs carry the dotted-quarter
     beat on the file's quarter note and their annotated downbeats fall every

@@ -48,7 +48,7 @@ from ..analysis import meter as metermod
 from .eval_sets import (CLASSICAL_DIRS, FOLK_BOOKS, RESERVED, TPB,  # noqa: F401 (the loaders
                         _abc_book, _corpus_file, _distinct, _normal_meter,  # live in eval_sets)
                         _without_meter, chorale_paths, classical_paths, file_time_meter,
-                        piece_from_notes, score_record)
+                        meter_truth_corpus, piece_from_notes, score_record)
 from .eval_sets import METER_SETS as ALL_SETS
 from .eval_sets import load_meter_sets as load_sets
 from .eval_sets import meter_cache_dir as cache_dir  # noqa: F401
@@ -104,22 +104,95 @@ def declared_table(works: list[dict[str, Any]],
     """What key_meter does with declared meters: how many are defaults or contradicted, and
     how often the declared meter and the reported ``meter`` equal the truth. A music21 work
     declares its notated meter (the truth); a pop file declares what its file says."""
-    n = kept = default = contradicted = declared_right = reported_right = 0
-    for w, piece in zip(works, pieces_of(works)):
-        declared = w.get("declared", w["meter"])
-        if declared is None:
-            continue
-        est = metermod.estimate_meter(piece)
-        issue = metermod.declared_meter_issue(declared, est, min_family_probability)
-        reported = declared if issue is None else est.meter
-        n += 1
-        kept += issue is None
-        default += issue == "default"
-        contradicted += issue == "contradicted"
-        declared_right += declared == w["meter"]
-        reported_right += reported == w["meter"]
-    return {"n": n, "kept": kept, "default": default, "contradicted": contradicted,
-            "declared_exact": declared_right / max(1, n), "reported_exact": reported_right / max(1, n)}
+    return declared_tables(works, (min_family_probability,))[0]
+
+
+def declared_tables(works: list[dict[str, Any]], thresholds: Iterable[float],
+                    estimates: list | None = None) -> list[dict[str, Any]]:
+    """``declared_table`` at each of several ``meter_contradiction`` values (one estimate per
+    piece), with the overrules split: ``overruled_right`` (the declaration was wrong and the
+    estimate right), ``overruled_wrong`` (the declaration was the truth)."""
+    thresholds = list(thresholds)
+    if estimates is None:
+        estimates = [metermod.estimate_meter(p) for p in pieces_of(works)]
+    out = []
+    for t in thresholds:
+        n = kept = default = contradicted = declared_right = reported_right = 0
+        over_right = over_wrong = 0
+        for w, est in zip(works, estimates):
+            declared = w.get("declared", w["meter"])
+            if declared is None:
+                continue
+            issue = metermod.declared_meter_issue(declared, est, t)
+            reported = declared if issue is None else est.meter
+            n += 1
+            kept += issue is None
+            default += issue == "default"
+            contradicted += issue == "contradicted"
+            declared_right += declared == w["meter"]
+            reported_right += reported == w["meter"]
+            if issue == "contradicted":
+                over_right += est.meter == w["meter"]
+                over_wrong += declared == w["meter"]
+        out.append({"threshold": t, "n": n, "kept": kept, "default": default,
+                    "contradicted": contradicted, "overruled_right": over_right,
+                    "overruled_wrong": over_wrong, "declared_right": declared_right,
+                    "reported_right": reported_right,
+                    "declared_exact": declared_right / max(1, n),
+                    "reported_exact": reported_right / max(1, n)})
+    return out
+
+
+#: ``meter_contradiction`` values ``--sweep`` compares.
+SWEEP = (0.01, 1e-3, 1e-4, 1e-5, 1e-6, 1e-7, 0.0)
+
+
+def print_sweep(sets: dict[str, list[dict[str, Any]]], thresholds: Iterable[float] = SWEEP) -> None:
+    """Per set and ``meter_contradiction`` value: declarations overruled, of which right and
+    wrong, and the reported ``meter`` right."""
+    thresholds = list(thresholds)
+    print("\ndeclared meters by meter_contradiction: overruled (right / wrong), reported right")
+    print(f"{'set':<16} {'n':>5} " + " ".join(f"{t:>16g}" for t in thresholds))
+    for name, works in sets.items():
+        rows = declared_tables(works, thresholds)
+        cells = [f"{r['contradicted']:>3} ({r['overruled_right']}/{r['overruled_wrong']}) "
+                 f"{r['reported_right']:>4}" for r in rows]
+        print(f"{name:<16} {rows[0]['n']:>5} " + " ".join(f"{c:>16}" for c in cells))
+
+
+def onset_prefixes(sets: dict[str, list[dict[str, Any]]],
+                   counts: Iterable[int] = (1, 2, 3, 4, 6, 8, 12, 16, 24)) -> None:
+    """How the estimate fares on the first k distinct pitched onsets of each piece (with the
+    evidence rule off): the share whose family (``compatible_meters`` of the truth) is right,
+    and the share that would overrule a true declaration (compatible support below 0.01): the
+    evidence ``MIN_ONSETS`` needs."""
+    from ..midi.piece import DRUM_CHANNEL
+    counts = list(counts)
+    print("\nfirst k onsets: family right / would overrule the true meter (at 0.01)")
+    print(f"{'set':<16} " + " ".join(f"{k:>13}" for k in counts))
+    saved = metermod.MIN_ONSETS
+    metermod.MIN_ONSETS = 0
+    try:
+        for name, works in sets.items():
+            cells = []
+            for k in counts:
+                right = over = m = 0
+                for w, piece in zip(works, pieces_of(works)):
+                    notes = piece.notes
+                    pitched = notes[notes["channel"] != DRUM_CHANNEL]
+                    starts = np.unique(pitched["start"])
+                    if len(starts) < k:
+                        continue
+                    cut = notes[notes["start"] <= starts[k - 1]]
+                    est = metermod.estimate_meter(Piece(**{**piece.__dict__, "notes": cut}))
+                    ok = metermod.compatible_meters(w["meter"])
+                    m += 1
+                    right += est.meter in ok
+                    over += bool(est.probabilities) and est.support(ok) < 0.01
+                cells.append(f"{right / max(1, m):.2f}/{over / max(1, m):.3f}")
+            print(f"{name:<16} " + " ".join(f"{c:>13}" for c in cells))
+    finally:
+        metermod.MIN_ONSETS = saved
 
 
 def key_flag_table(works: list[dict[str, Any]]) -> dict[str, int]:
@@ -375,6 +448,11 @@ def main(argv: list[str] | None = None) -> None:
                     help="time a 500-note piece with this tree and with another checkout (its "
                          "extension built in place) in alternating rounds, and stop")
     ap.add_argument("--rounds", type=int, default=6, help="rounds of --speed-base (default 6)")
+    ap.add_argument("--corpus", action="append", default=[], metavar="NAME=FOLDER",
+                    help="also a generated corpus with truth.json (midisift synth, the demo)")
+    ap.add_argument("--sweep", action="store_true",
+                    help="declared meters at several meter_contradiction values, and the "
+                         "estimate on each piece's first k onsets")
     ap.add_argument("--train", action="store_true",
                     help="retrain the classifier on the development sets and write meter_weights.py")
     args = ap.parse_args(argv)
@@ -403,6 +481,13 @@ def main(argv: list[str] | None = None) -> None:
         importlib.reload(metermod._weights)
         importlib.reload(metermod)
     sets = load_sets(args.sets, args.pop)
+    for spec in args.corpus:
+        name, _, folder = spec.partition("=")
+        sets[name] = meter_truth_corpus(folder)
+    if args.sweep:
+        print_sweep(sets)
+        onset_prefixes(sets)
+        return
     results = {name: evaluate(works) for name, works in sets.items()}
     print_table(results)
     print("\ndeclared meters in key_meter (contradiction below family probability "
