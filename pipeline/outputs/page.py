@@ -315,10 +315,11 @@ class RowFacts:
     parsed every reused line for the facts, about 10 us each, and counted the summary's figures
     of each from the walk. ``facts()`` is None when the old lines seen do not add up to the last
     run's ``old_rows`` (then read the manifest). Facts saved in another form
-    (``FACTS_VERSION``) are not used."""
+    (``FACTS_VERSION``) or without the summary's counts are not used."""
 
     def __init__(self, stages: Iterable[str], last: dict[str, Any] | None = None, old_rows: int = 0):
-        self.from_last = last is not None and last.get("version") == FACTS_VERSION
+        self.from_last = (last is not None and last.get("version") == FACTS_VERSION
+                          and "files" in last)
         self.counted = Facts.from_state(last, stages) if self.from_last else Facts(stages)
         self.old_rows = old_rows
         self.old_seen = 0
