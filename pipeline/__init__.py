@@ -1,2 +1,2 @@
 """midisift: prepare MIDI training corpora (import package ``pipeline``)."""
-__version__ = "0.4.7"
+__version__ = "0.4.8"

@@ -643,24 +643,29 @@ def _skipped_section(summary: dict) -> str:
 
 def _changes_section(summary: dict) -> str:
     """What a rerun changed against the last run (summary.json's ``changes_since_last_run``,
-    ``outputs.changes``; nothing on a first run), with the sources it names."""
+    ``outputs.changes``; nothing on a first run), with the first sources of each kind."""
     c = summary.get("changes_since_last_run")
     if not c:
         return ""
     key = "changes_since_last_run."
     counts = "; ".join(f"{label} {cell_inline(c[k], key + k)}" for label, k in (
         ("files added", "files_added"), ("changed", "files_changed"), ("removed", "files_removed"),
-        ("contents kept now", "now_kept"), ("dropped now", "now_dropped"), ("moved to another part", "moved")))
+        ("files kept now", "now_kept"), ("dropped now", "now_dropped"), ("moved to another part", "moved")))
     ex = c.get("examples", {})
-    rows = ([f"<li>kept now: <code>{esc(e['source'])}</code> ({esc(e['split'])})</li>" for e in ex.get("now_kept", [])]
+    rows = ([f"<li>{label}: <code>{esc(src)}</code></li>" for label, k in (
+                ("added", "files_added"), ("changed", "files_changed"), ("removed", "files_removed"))
+             for src in ex.get(k, [])]
+            + [f"<li>kept now: <code>{esc(e['source'])}</code> ({esc(e['split'])})</li>" for e in ex.get("now_kept", [])]
             + [f"<li>dropped now: <code>{esc(src)}</code></li>" for src in ex.get("now_dropped", [])]
             + [f"<li>moved: <code>{esc(e['source'])}</code> ({esc(e['from'])} &rarr; {esc(e['to'])})</li>"
                for e in ex.get("moved", [])])
     # the lists hold the first few of each kind: say how many more there are (an audit found
     # 20 of 49 newly kept files listed as if they were all)
-    unlisted = sum(max(0, int(c.get(k, 0)) - len(ex.get(k, []))) for k in ("now_kept", "now_dropped", "moved"))
-    more = (f"<p>The first {EXAMPLES} of each kind are listed; {unlisted:,} more are in manifest.jsonl "
-            "(<code>midisift explain PATH</code> for any file).</p>" if unlisted else "")
+    # (a summary.json written before 0.4.8 lists no files added, changed or removed)
+    unlisted = sum(max(0, int(c.get(k, 0)) - len(ex[k])) for k in (
+        "files_added", "files_changed", "files_removed", "now_kept", "now_dropped", "moved") if k in ex)
+    more = (f"<p>The first {EXAMPLES} of each kind are listed, {unlisted:,} more are not (the counts are "
+            "complete; <code>midisift explain PATH</code> for any file of this run).</p>" if unlisted else "")
     return (f"<h2>Since the last run</h2><p>{counts}.</p>"
             + (f"<ul>{''.join(rows)}</ul>" if rows else "") + more)
 
