@@ -204,6 +204,9 @@ def test_a_cluster_the_filter_dropped_whole_shows_no_kept_member(tmp_path):
     assert shown and "<b>kept</b>" not in section
     for cid, n in shown:
         assert int(n) == sum(r["cluster"] == cid for r in rows)
+        head = next(r for r in rows if r["id"] == cid and r["duplicate_of"] is None)
+        assert re.search(rf"<b>dedup kept, dropped later</b> \(dropped by filter: {head['reason']}\)<br>"
+                         rf"<code>{re.escape(head['source'])}</code>", section)
 
 
 def test_the_meter_sentence_counts_the_manifest_s_declared_meters(demo_out):

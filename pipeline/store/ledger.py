@@ -11,7 +11,8 @@ Tables
   artifact_data (stage, fingerprint, sha256, name) -> those bytes (the shingle sets), so reading
              the small artifacts and the keys of a stage does not page through them
   state      (stage, key) -> JSON saved by a corpus stage in the last completed run
-  decisions  source -> the whole decision trail of the last completed run (for ``explain``)
+  decisions  source -> the whole decision trail of the last completed run (for ``explain``), and
+             its verdict (a rerun compares each file's with it: ``outputs.changes``)
   row_digests source -> digest of what its manifest row and trail were made from in the last
              completed run (a rerun reuses the rows whose digest is unchanged)
   outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
