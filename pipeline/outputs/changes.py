@@ -12,6 +12,7 @@ kept file edited in place into an empty or drum-only one was a new content, and 
 from __future__ import annotations
 
 import heapq
+import itertools
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -78,9 +79,9 @@ def file_changes(added: Iterable[str], changed: Iterable[str], removed: Iterable
     counted, and the first of each by source kept as examples."""
     out = Changes()
     for kind, sources in zip(FILE_KINDS, (added, changed, removed)):
-        sources = list(sources)
-        setattr(out, kind[len("files_"):], len(sources))
-        out.examples[kind] = heapq.nsmallest(EXAMPLES, sources)
+        tally = itertools.count()  # memory: the sources streamed and counted, not listed
+        out.examples[kind] = heapq.nsmallest(EXAMPLES, (s for s, _ in zip(sources, tally)))
+        setattr(out, kind[len("files_"):], next(tally))
     return out
 
 

@@ -542,7 +542,7 @@ def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
         title = f"{files} files" + (f", {size} contents (cluster_size: byte-identical files count once)"
                                      if size != files else "")
         title += f"; keeps {len(kept)}" if kept else "; keeps none: every member is dropped"
-        head_label = "kept" if head is not None and head["status"] == "kept" else "dedup kept, dropped later"
+        head_label = "dedup kept, dropped later" if head is not None and head["status"] != "kept" else "kept"
         also = [m for m in kept if m is not head]
         more = ("<p class=\"muted\">Also kept: " + ", ".join(f"<code>{esc(m['source'])}</code>" for m in also[:5])
                 + (f" and {len(also) - 5:,} more" if len(also) > 5 else "") + "</p>") if also else ""
