@@ -9,27 +9,40 @@ import re
 import shutil
 from pathlib import Path
 
+import pytest
 import yaml
 
 from pipeline.config import load_config
 from pipeline.engine.runner import Runner
-from pipeline.outputs.changes import Changes, change_lines, changes_since, last_parts
+from pipeline.outputs.changes import Changes, change_lines, file_changes, last_parts
 
 POP = Path(__file__).parent / "data" / "pop909"
 
 
 def test_changes_against_the_last_runs_verdicts_and_parts():
-    last_status = {"a": "kept", "b": "dropped", "c": "kept", "d": "kept"}
+    """Each file's row against its verdict in the last run (``before``: (sha256, status)) and
+    the part its content's outputs lay in."""
     recorded = {"midi/train/a.mid": ("a", "fp"), "midi/test/c.mid": ("c", "fp"), "midi/test/c.t+1.mid": ("c", "fp"),
-                "midi/valid/d.mid": ("d", "fp")}
-    rep = {"a": "a.mid", "b": "b.mid", "c": "c.mid", "d": "d.mid", "n": "new.mid"}
-    status = {"a": ("filter", "too_short"), "b": None, "c": None, "d": None, "n": None}
-    part_of = {"b": "valid", "c": "train", "d": "valid", "n": "train"}
-    got = changes_since(last_status, last_parts(recorded), rep, status, part_of, 1, 0, 2)
-    assert got.now_dropped == ["a.mid"] and got.now_kept == [("b.mid", "valid")]
-    assert got.moved == [("c.mid", "test", "train")]  # d stayed in valid; the new file is only added
+                "midi/valid/d.mid": ("d", "fp"), "midi/valid/e.mid": ("e", "fp")}
+    got = file_changes(["new.mid"], [], ["x.mid", "w.mid"])
+    for source, before, part in (
+            ("a.mid", ("a", "kept"), None),  # dropped now
+            ("b.mid", ("b", "dropped"), "valid"),  # kept now
+            ("c.mid", ("c", "kept"), "train"),  # moved
+            ("d.mid", ("d", "kept"), "valid"),  # stayed
+            ("e.mid", ("e", "kept"), "train"),  # edited in place, kept in another part: moved
+            ("f.mid", ("f", "kept"), None),  # edited in place into a file a stage drops
+            ("new.mid", None, "train")):  # only added
+        got.verdict(source, before, part, last_parts(recorded))
+    c = got.as_dict()
+    assert (c["now_kept"], c["now_dropped"], c["moved"]) == (1, 2, 2)
+    assert c["examples"]["now_dropped"] == ["a.mid", "f.mid"]
+    assert c["examples"]["now_kept"] == [{"source": "b.mid", "split": "valid"}]
+    assert c["examples"]["moved"] == [{"source": "c.mid", "from": "test", "to": "train"},
+                                      {"source": "e.mid", "from": "valid", "to": "train"}]
+    assert c["examples"]["files_removed"] == ["w.mid", "x.mid"]  # the first by source
     assert change_lines(got) == ["since the last run: files 1 added, 0 changed, 2 removed; 1 now kept "
-                                 "(e.g. b.mid), 1 now dropped (e.g. a.mid), 1 moved to another part (e.g. c.mid)"]
+                                 "(e.g. b.mid), 2 now dropped (e.g. a.mid), 2 moved to another part (e.g. c.mid)"]
     assert change_lines(Changes()) == [] and change_lines(None) == []
 
 
@@ -64,6 +77,69 @@ def test_a_rerun_names_the_copy_kept_now_in_its_songs_part(tmp_path):
     keyed = dict(re.findall(r'data-key="changes_since_last_run\.([a-z_]+)" data-value="(\d+)"', page))
     assert keyed == {k: str(v) for k, v in changes.items() if k != "examples"}
     assert f"kept now: <code>051/versions/051-v1.mid</code> ({kept['split']})" in page
+    assert "removed: <code>051/051.mid</code>" in page and changes["examples"]["files_removed"] == ["051/051.mid"]
+
+
+def test_kept_files_edited_into_ones_a_stage_drops_are_named_now_dropped(tmp_path):
+    """Found by an audit: a rerun after kept files were edited in place (one emptied, one made
+    drums-only) said "0 now dropped", as verdicts were compared by content and an edited file
+    is a new content. They are compared file by file: both are named, in the table, summary.json
+    and the page. The drum-only file is written with mido (the reference writer)."""
+    mido = pytest.importorskip("mido")
+    corpus = tmp_path / "in"
+    shutil.copytree(POP, corpus, ignore=shutil.ignore_patterns("LICENSE", "README.md"))
+    cfg = tmp_path / "c.yaml"
+    stages = [{"validate": {}}, {"key_meter": {}}, {"dedup": {}}, {"filter": {}},
+              {"split": {"ratios": {"train": 0.5, "valid": 0.25, "test": 0.25}}}]
+    cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1,
+                                   "stages": stages}))
+    Runner(load_config(cfg), quiet=True).run()
+    rows = {r["source"]: r for r in map(json.loads, (tmp_path / "out" / "manifest.jsonl").read_text().splitlines())}
+    emptied, drums = "089/versions/089-v1.mid", "145/145.mid"
+    assert rows[emptied]["status"] == rows[drums]["status"] == "kept"
+    (corpus / emptied).write_bytes(b"")
+    song = mido.MidiFile(corpus / drums)
+    for track in song.tracks:
+        for msg in track:
+            if msg.type in ("note_on", "note_off"):
+                msg.channel = 9
+    song.save(corpus / drums)
+    report = Runner(load_config(cfg), quiet=True).run()
+    rows = {r["source"]: r for r in map(json.loads, (tmp_path / "out" / "manifest.jsonl").read_text().splitlines())}
+    assert rows[emptied]["reason"] == "not_midi" and rows[drums]["reason"] == "drums_only"
+    changes = json.loads((tmp_path / "out" / "summary.json").read_text())["changes_since_last_run"]
+    assert changes["now_dropped"] == 2 and changes["examples"]["now_dropped"] == [emptied, drums]
+    assert changes["files_changed"] == 2 and changes["examples"]["files_changed"] == [emptied, drums]
+    assert "2 now dropped (e.g. 089/versions/089-v1.mid)" in report.table()
+    page = (tmp_path / "out" / "report.html").read_text()
+    assert f"dropped now: <code>{emptied}</code>" in page and f"dropped now: <code>{drums}</code>" in page
+
+
+def test_a_changed_option_names_every_file_it_drops(tmp_path):
+    """A rerun with another filter limit writes every row and trail again (the decisions are
+    replaced whole): the verdicts it turns are still compared file by file, with the last run's
+    read before they are replaced (``Ledger.set_verdicts_aside``)."""
+    corpus = tmp_path / "in"
+    shutil.copytree(POP, corpus, ignore=shutil.ignore_patterns("LICENSE", "README.md"))
+    cfg = tmp_path / "c.yaml"
+    stages = [{"validate": {}}, {"dedup": {}}, {"filter": {"min_seconds": 1}}, {"split": {}}]
+
+    def run() -> dict[str, dict]:
+        cfg.write_text(yaml.safe_dump({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1,
+                                       "stages": stages}))
+        Runner(load_config(cfg), quiet=True).run()
+        return {r["source"]: r for r in map(json.loads, (tmp_path / "out" / "manifest.jsonl").read_text().splitlines())}
+
+    before = run()
+    kept = sorted(s for s, r in before.items() if r["status"] == "kept")
+    stages[2] = {"filter": {"min_seconds": sorted(before[s]["duration_s"] for s in kept)[len(kept) // 2]}}
+    after = run()
+    turned = sorted(s for s in kept if after[s]["status"] == "dropped")
+    back = sorted((s, after[s]["split"]) for s in after if after[s]["status"] == "kept" and before[s]["status"] != "kept")
+    assert turned
+    changes = json.loads((tmp_path / "out" / "summary.json").read_text())["changes_since_last_run"]
+    assert changes["now_dropped"] == len(turned) and changes["examples"]["now_dropped"] == turned
+    assert changes["examples"]["now_kept"] == [{"source": s, "split": p} for s, p in back]
 
 
 def test_the_page_lists_what_the_listing_left_out(tmp_path):
@@ -115,5 +191,8 @@ def test_the_page_says_how_many_changes_it_does_not_list():
                                   "now_dropped": [], "moved": []}}
     html = _changes_section({"changes_since_last_run": c})
     assert html.count("kept now:") == EXAMPLES and f"{49 - EXAMPLES:,} more" in html
-    c["now_kept"] = EXAMPLES
-    assert "more are in" not in _changes_section({"changes_since_last_run": c})
+    c["examples"]["files_removed"] = [f"r{i}.mid" for i in range(EXAMPLES)]
+    html = _changes_section({"changes_since_last_run": c})
+    assert html.count("removed: <code>") == EXAMPLES and f"{49 + 60 - 2 * EXAMPLES:,} more" in html
+    c["now_kept"], c["files_removed"] = EXAMPLES, EXAMPLES
+    assert "more are not" not in _changes_section({"changes_since_last_run": c})

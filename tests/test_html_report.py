@@ -129,7 +129,7 @@ def test_the_page_is_self_contained_and_its_thumbnails_are_png(demo_out):
 def test_clusters_show_the_kept_member_and_a_dropped_one_with_its_similarity(demo_out):
     page = (demo_out / "report.html").read_text(encoding="utf-8")
     rows = [json.loads(line) for line in (demo_out / "manifest.jsonl").read_text().splitlines()]
-    clusters = re.findall(r"<h4>cluster ([0-9a-f]{16}): (\d+) files</h4>(.*?)</div></div>", page, re.S)
+    clusters = re.findall(r"<h4>cluster ([0-9a-f]{16}): (\d+) files[^<]*</h4>(.*?)</div></div>", page, re.S)
     assert len(clusters) == 6
     every = {}
     for r in rows:
@@ -144,6 +144,93 @@ def test_clusters_show_the_kept_member_and_a_dropped_one_with_its_similarity(dem
         assert f"<code>{kept['source']}</code>" in body.replace("&#x27;", "'")
         sims = {f"{r['similarity']:.2f}" for r in members if r["duplicate_of"]}
         assert re.search(r"similarity (\d\.\d\d)", body).group(1) in sims
+
+
+def _cluster_row(source: str, rid: str, cluster: str, size: int, status: str = "dropped", **fields) -> dict:
+    row = {"id": rid, "source": source, "status": status, "stage": None, "reason": None, "transpose": 0,
+           "output": None, "cluster": cluster, "cluster_size": size, "duplicate_of": None,
+           "duplicate_kind": None, "similarity": None}
+    return row | fields
+
+
+def test_the_page_s_clusters_are_the_manifest_s(tmp_path):
+    """Found by an audit: the page grouped rows by ``duplicate_of``, so a cluster that keeps two
+    files (none directly similar to the other: dedup keeps both) was shown as two smaller ones,
+    and the member dedup kept of a cluster a later stage dropped whole was labelled kept. The
+    page's clusters, sizes and kept members are the manifest's ``cluster``, ``cluster_size`` and
+    ``status`` (the reference here: the manifest the test writes)."""
+    from pipeline.outputs.page import _clusters_section
+    a, b, c, d, e = (ch * 16 for ch in "abcde")
+    rows = [  # cluster a: three contents, a and c kept, b a near duplicate of a
+        _cluster_row("a.mid", a, a, 3, "kept"),
+        _cluster_row("b.mid", b, a, 3, stage="dedup", reason="near_duplicate", duplicate_of=a,
+                     duplicate_kind="near", similarity=0.9),
+        _cluster_row("c.mid", c, a, 3, "kept"),
+        # cluster d: dedup kept d, which the filter dropped; e its near duplicate
+        _cluster_row("d.mid", d, d, 2, stage="filter", reason="long_silence"),
+        _cluster_row("e.mid", e, d, 2, stage="dedup", reason="near_duplicate", duplicate_of=d,
+                     duplicate_kind="near", similarity=0.8),
+        # a byte-identical copy of a lone file: a cluster of one content and two files
+        _cluster_row("f.mid", "f" * 16, "f" * 16, 1, "kept"),
+        _cluster_row("g.mid", "f" * 16, "f" * 16, 1, stage="dedup", reason="exact_duplicate",
+                     duplicate_of="f" * 16, duplicate_kind="bytes", similarity=1.0),
+        _cluster_row("h.mid", "1" * 16, "1" * 16, 1, "kept"),  # alone
+    ]
+    manifest = tmp_path / "manifest.jsonl"
+    manifest.write_text("".join(json.dumps(r) + "\n" for r in rows))
+    text = html.unescape(re.sub(r"<[^>]+>", " ", _clusters_section(read_manifest(manifest), tmp_path, tmp_path)))
+    text = re.sub(r"\s+", " ", text.replace("file not available", ""))
+    assert "3 clusters of two or more files" in text and "sizes in files: 2 of 2, 1 of 3." in text
+    assert f"cluster {a}: 3 files; keeps 2 Also kept: c.mid kept a.mid dropped (near duplicate), similarity 0.90 b.mid" in text
+    assert (f"cluster {d}: 2 files; keeps none: every member is dropped dedup kept, dropped later "
+            "(dropped by filter: long_silence) d.mid dropped (near duplicate), similarity 0.80 e.mid") in text
+    assert f"cluster {'f' * 16}: 2 files, 1 contents (cluster_size: byte-identical files count once); keeps 1 kept f.mid" in text
+    assert "1111111111111111" not in text
+
+
+def test_a_cluster_the_filter_dropped_whole_shows_no_kept_member(tmp_path):
+    """The real-data side of the test above: POP909 songs (tests/data/pop909) with a filter no
+    file passes; every cluster's member dedup kept is dropped, and the page says so."""
+    corpus = ROOT / "tests" / "data" / "pop909"
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text(json.dumps({"input": str(corpus), "output": str(tmp_path / "out"), "workers": 1, "stages": [
+        {"validate": {}}, {"key_meter": {}}, {"dedup": {}}, {"filter": {"min_notes": 1000000}}, {"split": {}}]}))
+    Runner(load_config(cfg), quiet=True).run()
+    rows = [json.loads(line) for line in (tmp_path / "out" / "manifest.jsonl").read_text().splitlines()]
+    assert not any(r["status"] == "kept" for r in rows)
+    page = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
+    section = page[page.index("<h2>Near-duplicate clusters"):page.index("<h2>Timings")]
+    shown = re.findall(r"<h4>cluster ([0-9a-f]{16}): (\d+) files[^<]*keeps none[^<]*</h4>", section)
+    assert shown and "<b>kept</b>" not in section
+    for cid, n in shown:
+        assert int(n) == sum(r["cluster"] == cid for r in rows)
+        head = next(r for r in rows if r["id"] == cid and r["duplicate_of"] is None)
+        assert re.search(rf"<b>dedup kept, dropped later</b> \(dropped by filter: {head['reason']}\)<br>"
+                         rf"<code>{re.escape(head['source'])}</code>", section)
+
+
+def test_the_meter_sentence_counts_the_manifest_s_declared_meters(demo_out):
+    """Found by an audit: the page said "89 of 104 kept files with a declared meter" while every
+    kept row had a ``meter_declared``: it counted only the rows whose meter_source was file."""
+    rows = [json.loads(line) for line in (demo_out / "manifest.jsonl").read_text().splitlines()]
+    kept = [r for r in rows if r["status"] == "kept" and r.get("meter_declared")]
+    both = [r for r in kept if r.get("meter_estimated")]
+    assert any(r["meter_source"] != "file" for r in both)  # the demo has declared meters not used
+    agree = sum(r["meter_declared"] == r["meter_estimated"] for r in both)
+    unused = sum(1 for r in kept if r.get("meter_declared_suspect"))
+    page = html.unescape((demo_out / "report.html").read_text(encoding="utf-8"))
+    assert (f"{agree} of {len(both)} kept files with a declared meter (meter_declared) have the same "
+            "estimate (meter_estimated).") in page
+    assert f"The declared meter was not used for {unused} of them" in page
+
+
+def test_the_median_is_the_middle_of_an_even_count():
+    """An audit found the upper middle value printed as the median; the reference: statistics."""
+    import statistics
+    from pipeline.outputs.page import histogram
+    values = [4.0, 1.0, 3.0, 2.0, 10.0, 7.5]
+    assert f"median {statistics.median(values):g} s" in histogram(values, "Duration", "s")
+    assert f"median {statistics.median(values[:5]):g} s" in histogram(values[:5], "Duration", "s")
 
 
 def test_facts_with_rows_taken_back_equal_facts_of_the_rows_left(demo_out):

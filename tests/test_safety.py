@@ -120,6 +120,36 @@ def test_skipped_entries_are_in_the_summary_and_explained(tmp_path):
         explain(out, "never_there.mid")
 
 
+def test_explain_says_why_a_file_of_the_input_has_no_row(tmp_path):
+    """Found by an audit: a MIDI file saved as other.smf got the words of a path that does not
+    exist ("no such file in the last run"). explain tells, from the input folder as it is now, a
+    file not listed because of its name, one added since the run, a folder, and a path that is
+    nowhere; a file removed since the run still has its trail, with a note."""
+    from pipeline.audit.explain import explain
+    inp = tmp_path / "in"
+    main_synth(inp / "synth", 6, seed=3)
+    first, second = sorted((inp / "synth").rglob("*.mid"))[:2]
+    (inp / "other.smf").write_bytes(first.read_bytes())
+    out = tmp_path / "out"
+    run(inp, out)
+    rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
+    assert "other.smf" not in {r["source"] for r in rows}
+    with pytest.raises(UsageError, match=r"not read: the run lists only the files named \.mid \.midi \.kar "
+                                         r"\.rmi \(in any case\), and this one ends in \.smf"):
+        explain(out, "other.smf")
+    (inp / "new.MID").write_bytes(first.read_bytes())
+    with pytest.raises(UsageError, match="it was added or renamed since"):
+        explain(out, str(inp / "new.MID"))
+    with pytest.raises(UsageError, match=r"a folder of the input \(synth/\)"):
+        explain(out, "synth")
+    with pytest.raises(UsageError, match="no such file in the last run, nor in its input folder now"):
+        explain(out, "never_there.mid")
+    gone = second.relative_to(inp).as_posix()
+    assert "no longer in the input folder" not in explain(out, gone)
+    second.unlink()
+    assert "note     no longer in the input folder (removed or renamed since the last run)" in explain(out, gone)
+
+
 def test_output_inside_input_is_not_searched(tmp_path):
     inp = tmp_path / "in"
     main_synth(inp, 20, seed=5)

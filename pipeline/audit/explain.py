@@ -7,6 +7,7 @@ import re
 from pathlib import Path
 from typing import Any
 
+from ..engine.sources import MIDI_SUFFIXES
 from ..errors import UsageError
 from ..outputs.table import folder_rule_text
 from ..printed import digits_apart, number
@@ -86,6 +87,45 @@ def skipped(ledger: Ledger, query: str, input_dir: Path | None) -> tuple[str, st
     return None
 
 
+def in_input(query: str, input_dir: Path | None) -> tuple[str, Path] | None:
+    """(path relative to the input folder, full path) of the entry the query names there now,
+    or None (no input folder known, or nothing there by that name)."""
+    if input_dir is None or not input_dir.is_dir():
+        return None
+    for c in _candidates(query, input_dir):
+        full = input_dir / c
+        if not Path(c).is_absolute() and ".." not in Path(c).parts and (full.exists() or full.is_symlink()):
+            return c, full
+    return None
+
+
+def not_found(query: str, input_dir: Path | None, out_dir: Path) -> str:
+    """Why the last run has no trail of what ``query`` names, from what the input folder holds
+    now: a file not listed because of its name (an audit found it told, as a path that does not
+    exist, "no such file in the last run"), one added since, a folder, or nothing at all."""
+    where = in_input(query, input_dir)
+    listed = " ".join(MIDI_SUFFIXES)
+    if where is not None:
+        rel, full = where
+        if out_dir.resolve() in full.resolve().parents:
+            return f"in the output folder {out_dir}, which the run does not read"
+        if full.is_dir():
+            return (f"a folder of the input ({rel}/): explain takes one of its files (the manifest's "
+                    "'source' column lists them)")
+        if not rel.lower().endswith(MIDI_SUFFIXES):
+            suffix = Path(rel).suffix
+            return (f"not read: the run lists only the files named {listed} (in any case), and this "
+                    f"one {f'ends in {suffix}' if suffix else 'has no extension'}; rename it to have it read")
+        return ("not in the last run, though it is in the input folder now: it was added or renamed "
+                "since (run again to have it judged)")
+    hint = ("give the path as in the manifest's 'source', a path under the input folder, or an id "
+            "of at least 6 hex digits")
+    if input_dir is not None and input_dir.is_dir() and not re.fullmatch(r"[0-9a-fA-F]{6,64}", query):
+        return (f"no such file in the last run, nor in its input folder now (a file removed before "
+                f"the last run is not known to it: its ledger keeps the files of that run only; {hint})")
+    return f"no such file in the last run ({hint})"
+
+
 def _mates(out_dir: Path, wanted: dict[str, Any]) -> dict[str, list[dict]]:
     """For each field of ``wanted`` (``cluster``: a dedup cluster, ``group``: a split group),
     the manifest rows holding its value; the manifest read once."""
@@ -146,12 +186,11 @@ def explain(out_dir: Path, query: str, *, as_json: bool = False) -> str:
         return (f"{query}{inside}: skipped when the last run listed the input folder, so it has "
                 f"no manifest row: {why}")
     if not hits:
-        raise UsageError("no such file in the last run (give the path as in the manifest's 'source', "
-                            "a path under the input folder, or an id of at least 6 hex digits)", file=query)
+        raise UsageError(not_found(query, input_dir, out_dir), file=query)
     if as_json:
         return json.dumps([_as_data(src, sha, trail) for src, sha, trail in hits], indent=1,
                           ensure_ascii=False)
-    return "\n\n".join(_one(out_dir, src, sha, trail) for src, sha, trail in hits)
+    return "\n\n".join(_one(out_dir, src, sha, trail, input_dir) for src, sha, trail in hits)
 
 
 def _as_data(source: str, sha: str | None, trail: list) -> dict:
@@ -167,8 +206,11 @@ def _as_data(source: str, sha: str | None, trail: list) -> dict:
 _MATES_OF = {"cluster": "dedup", "group": "split"}
 
 
-def _one(out_dir: Path, source: str, sha: str | None, trail: list) -> str:
+def _one(out_dir: Path, source: str, sha: str | None, trail: list, input_dir: Path | None = None) -> str:
     lines = [f"source   {source}", f"id       {(sha or '')[:16]}", f"sha256   {sha}"]
+    if input_dir is not None and input_dir.is_dir() and not (input_dir / source).exists():
+        lines.append("note     no longer in the input folder (removed or renamed since the last run): "
+                     "this is that run's verdict")
     final = next((s for s in trail if not s["kept"]), None)
     if final is None:
         split = next((s["values"].get("split") for s in trail if s["stage"] == "split"), None)

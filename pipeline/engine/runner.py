@@ -35,7 +35,7 @@ from ..errors import LedgerError
 from ..export.freshness import stale_exports
 from ..midi.accel import HAVE_ACCEL
 from ..outputs import files as outfiles, manifest, render as rendering, summary as summaries
-from ..outputs.changes import change_lines, changes_since, last_parts
+from ..outputs.changes import Changes, change_lines, file_changes, last_parts
 from ..outputs.rowreuse import STATE as ROWS_STATE, ManifestCheck, RowReuse
 from ..outputs.table import RunReport, in_part_order, split_lines
 from ..stages import Stage
@@ -173,11 +173,11 @@ class Runner:
         # the sources table holds those of the last run started, which may have stopped early
         last_done = ledger.last_run()
         if last_done is None:
-            moved_files = None
+            changes = None
         elif ledger.runs_unfinished(last_done["id"], run_id) == 0:
-            moved_files = _file_changes(changed, gone, known)
+            changes = _file_changes(changed, gone, known)
         else:
-            moved_files = _file_changes_since(files, ledger.decision_sources())
+            changes = _file_changes_since(files, ledger.decision_sources(), present)
         del known, changed, gone  # memory: a row per file, written
         timings["discover"] = time.perf_counter() - t
         unknown = cfg.metadata.unknown_sources(present)
@@ -270,8 +270,8 @@ class Runner:
         # could not read (kept, without an output in this run)
         unread_late = sum(1 for sha in missing if sha in self._unread)
         placed = outfiles.place(cfg.output, walk, rep, existing_out, self.output_fp)
-        changes = (changes_since(last_status, last_parts(recorded_out), rep, walk.status, placed.part_of,
-                                 *moved_files) if moved_files is not None else None)
+        # the files whose verdict or part turned are counted as their rows pass (``_DecisionSink``)
+        last_part = last_parts(recorded_out) if changes is not None else {}
         del last_status
         if recorded_out != placed.recorded:  # write only what changed (a rerun adds a few outputs)
             with ledger.batch():
@@ -302,6 +302,7 @@ class Runner:
             summary["warnings"].extend(unread_warnings(self._unread, unread_late))
             summary["skipped"] = summaries.skipped_summary(files.skipped)
             if changes is not None:
+                decisions.flush()  # the last rows' verdicts compared
                 summary["changes_since_last_run"] = changes.as_dict()
             return summary
 
@@ -316,7 +317,7 @@ class Runner:
         corpus_positions = tuple(i for i, st in enumerate(self.stages) if st.kind == "corpus")
         with ledger.batch():
             decisions = _DecisionSink(ledger, reuse.gone(files) if reuse.usable else None,
-                                      walk.trail_json)
+                                      walk.trail_json, changes, last_part)
             check = ManifestCheck()
             summary = manifest.write_all(
                 cfg.output, _seen(manifest.manifest_rows(files, walk, placed, decisions.add,
@@ -522,13 +523,13 @@ def _bulk_data() -> Iterator[None]:
 
 
 def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
-                  known: dict[str, tuple[int, int, str]]) -> tuple[int, int, int]:
-    """(added, changed, removed) source files: ``changed`` the fingerprinted rows that are new
-    or differ in size or time from ``known`` (the last run's sources by path; a file counts as
-    changed when its bytes did), ``gone`` the paths no longer there."""
-    added = sum(1 for row in changed if row[0] not in known)
-    edited = sum(1 for row in changed if row[0] in known and known[row[0]][2] != row[3])
-    return added, edited, len(gone)
+                  known: dict[str, tuple[int, int, str]]) -> Changes:
+    """The source files added, changed and removed: ``changed`` the fingerprinted rows that are
+    new or differ in size or time from ``known`` (the last run's sources by path; a file counts
+    as changed when its bytes did), ``gone`` the paths no longer there."""
+    return file_changes((row[0] for row in changed if row[0] not in known),
+                        (row[0] for row in changed if row[0] in known and known[row[0]][2] != row[3]),
+                        gone)
 
 
 def _edited_contents(changed: list[tuple[str, int, int, str]],
@@ -545,17 +546,18 @@ def _edited_contents(changed: list[tuple[str, int, int, str]],
     return out
 
 
-def _file_changes_since(files: Any, last: dict[str, str]) -> tuple[int, int, int]:
-    """(added, changed, removed) source files against ``last`` (source -> sha256 of the last
-    completed run's files), after a run that stopped early rewrote the sources table."""
-    added = edited = 0
+def _file_changes_since(files: Any, last: dict[str, str], present: set[str]) -> Changes:
+    """The source files added, changed and removed against ``last`` (source -> sha256 of the
+    last completed run's files; ``present``: this run's sources), after a run that stopped
+    early rewrote the sources table."""
+    added, edited = [], []
     for i in range(len(files)):
         old = last.get(files.rel(i))
         if old is None:
-            added += 1
+            added.append(files.rel(i))
         elif old != files.sha256(i):
-            edited += 1
-    return added, edited, len(last) - (len(files) - added)
+            edited.append(files.rel(i))
+    return file_changes(added, edited, (p for p in last if p not in present))
 
 
 def unread_warnings(unread: dict[str, tuple[str, str]], late: int) -> list[str]:
@@ -632,23 +634,33 @@ class _DecisionSink:
 
     Without ``gone`` the first chunk replaces the previous run's rows; with it (the list of the
     previous run's sources that are gone), only the rows passed in are replaced, those sources
-    are forgotten, and every other row stays as the previous run wrote it (``rowreuse``)."""
+    are forgotten, and every other row stays as the previous run wrote it (``rowreuse``). With
+    ``changes`` (a rerun's), each chunk's verdicts are compared with the last run's before they
+    replace them (``Changes.verdict``; ``last_part``: sha256 -> the last run's part of each
+    kept content); a row not built again is the last run's, its verdict and part unchanged."""
 
     CHUNK = 2000
 
-    def __init__(self, ledger: Ledger, gone: list[str] | None, trail_json: Any):
+    def __init__(self, ledger: Ledger, gone: list[str] | None, trail_json: Any,
+                 changes: Changes | None = None, last_part: dict[str, str] | None = None):
         self.ledger = ledger
         self.trail_json = trail_json  # (source, sha256) -> the trail's stored JSON text
         self.rows: list[tuple[str, str, str, str]] = []
         self.digests: list[tuple[str, str]] = []
+        self.parts: list[str | None] = []  # each row's part, None for a dropped file (``changes``)
         self.gone = gone
         self.first = True
+        self.changes = changes
+        self.last_part = last_part or {}
 
     def add(self, f: SourceFile, row: dict, trail: list, digest: str | None = None) -> None:
         """Record one built row's trail (``trail`` is the manifest's list form; the stored text
         comes from ``trail_json``)."""
-        self.rows.append((f.rel, f.sha256, "kept" if row["status"] == "kept" else "dropped",
+        kept = row["status"] == "kept"
+        self.rows.append((f.rel, f.sha256, "kept" if kept else "dropped",
                           self.trail_json(f.rel, f.sha256)))
+        if self.changes is not None:
+            self.parts.append(row["split"] if kept else None)
         if digest is not None:
             self.digests.append((f.rel, digest))
         if len(self.rows) >= self.CHUNK:
@@ -657,6 +669,13 @@ class _DecisionSink:
     def flush(self) -> None:
         if not (self.rows or self.first):
             return
+        if self.changes is not None and self.rows:
+            replacing = self.gone is None
+            if replacing and self.first:  # every trail is replaced: read the verdicts from a copy
+                self.ledger.set_verdicts_aside()
+            before = self.ledger.last_verdicts([r[0] for r in self.rows], aside=replacing)
+            for (source, _, _, _), part in zip(self.rows, self.parts):
+                self.changes.verdict(source, before.get(source), part, self.last_part)
         if self.gone is None:
             self.ledger.put_decisions(self.rows, replace=self.first)
             self.ledger.put_row_digests(self.digests, replace=self.first)
@@ -667,4 +686,5 @@ class _DecisionSink:
         self.first = False
         self.rows = []
         self.digests = []
+        self.parts = []
 

@@ -1,68 +1,100 @@
 """What a rerun changed against the last completed run: source files added, changed and
-removed, contents whose verdict turned (kept now, dropped before, or the reverse) and kept
-contents that landed in another part. The run's table prints it in one line and summary.json
-keeps it (``changes_since_last_run``, with a few sources of each kind to ``explain``): a
-verdict or a part that moves on a rerun is what a user comparing corpus versions must see (an
-audit found a test song's file turning up in train with nothing saying so)."""
+removed, files whose verdict turned (kept now, dropped before, or the reverse) and kept files
+that landed in another part. The run's table prints it in one line and summary.json keeps it
+(``changes_since_last_run``, with the first sources of each kind to ``explain``): a verdict or
+a part that moves on a rerun is what a user comparing corpus versions must see (an audit found
+a test song's file turning up in train with nothing saying so).
+
+Verdicts are compared file by file (source path): a file's verdict in the last run (the
+ledger's decisions) against its row in this one. An audit found them compared by content, so a
+kept file edited in place into an empty or drum-only one was a new content, and the rerun said
+"0 now dropped"."""
 from __future__ import annotations
 
+import heapq
+import itertools
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 #: Sources listed in summary.json for each kind of change (the counts are complete).
 EXAMPLES = 20
+#: The kinds of change that name files, in the order the table, summary.json and page give them.
+FILE_KINDS = ("files_added", "files_changed", "files_removed")
+TURN_KINDS = ("now_kept", "now_dropped", "moved")
 
 
 @dataclass
 class Changes:
-    """Counts of changed source files, and the first source of each content whose verdict or
-    part changed (``now_kept`` and ``now_dropped``: sources; ``moved``: (source, old part, new
-    part))."""
+    """Counts of the files added, changed and removed, and of the files whose verdict or part
+    turned, with the first sources of each kind (``examples``, in source order: ``now_kept``
+    (source, part), ``now_dropped`` source, ``moved`` (source, old part, new part), the file
+    kinds sources)."""
 
     added: int = 0
     changed: int = 0
     removed: int = 0
-    now_kept: list[tuple[str, str]] = field(default_factory=list)  # (source, part)
-    now_dropped: list[str] = field(default_factory=list)
-    moved: list[tuple[str, str, str]] = field(default_factory=list)
+    turned: dict[str, int] = field(default_factory=lambda: dict.fromkeys(TURN_KINDS, 0))
+    examples: dict[str, list[Any]] = field(
+        default_factory=lambda: {k: [] for k in FILE_KINDS + TURN_KINDS})
+
+    def note(self, kind: str, example: Any) -> None:
+        """One more file of a kind of turn (``TURN_KINDS``)."""
+        self.turned[kind] += 1
+        if len(self.examples[kind]) < EXAMPLES:
+            self.examples[kind].append(example)
+
+    def verdict(self, source: str, before: tuple[str | None, str] | None, part: str | None,
+                last_part: Mapping[str, str]) -> None:
+        """Compare one file's row of this run (``part``: its part when kept, else None) with
+        its verdict in the last run (``before``: (sha256, 'kept' | 'dropped'), None for a file
+        the last run did not have: it counts only as added); ``last_part``: sha256 -> the part
+        of each content the last run kept. Rows come in source order."""
+        if before is None:
+            return
+        sha, status = before
+        if part is None:
+            if status == "kept":
+                self.note("now_dropped", source)
+        elif status != "kept":
+            self.note("now_kept", (source, part))
+        else:
+            old = last_part.get(sha or "")
+            if old is not None and old != part:
+                self.note("moved", (source, old, part))
 
     def as_dict(self) -> dict[str, Any]:
         """summary.json's ``changes_since_last_run``."""
+        ex = self.examples
         return {"files_added": self.added, "files_changed": self.changed, "files_removed": self.removed,
-                "now_kept": len(self.now_kept), "now_dropped": len(self.now_dropped),
-                "moved": len(self.moved),
-                "examples": {"now_kept": [{"source": s, "split": p} for s, p in self.now_kept[:EXAMPLES]],
-                             "now_dropped": self.now_dropped[:EXAMPLES],
-                             "moved": [{"source": s, "from": a, "to": b} for s, a, b in self.moved[:EXAMPLES]]}}
+                **self.turned,
+                "examples": {**{k: list(ex[k]) for k in FILE_KINDS},
+                             "now_kept": [{"source": s, "split": p} for s, p in ex["now_kept"]],
+                             "now_dropped": list(ex["now_dropped"]),
+                             "moved": [{"source": s, "from": a, "to": b} for s, a, b in ex["moved"]]}}
+
+
+def file_changes(added: Iterable[str], changed: Iterable[str], removed: Iterable[str]) -> Changes:
+    """The changes with the files added, changed and removed (their sources, in any order)
+    counted, and the first of each by source kept as examples."""
+    out = Changes()
+    for kind, sources in zip(FILE_KINDS, (added, changed, removed)):
+        tally = itertools.count()  # memory: the sources streamed and counted, not listed
+        out.examples[kind] = heapq.nsmallest(EXAMPLES, (s for s, _ in zip(sources, tally)))
+        setattr(out, kind[len("files_"):], next(tally))
+    return out
 
 
 def last_parts(recorded: Mapping[str, tuple[str, str]]) -> dict[str, str]:
     """Content (sha256) -> the part its outputs lay in after the last run (``recorded``: the
     ledger's outputs, path ``midi/<part>/<id>...`` -> (sha256, output fingerprint))."""
-    return {sha: path.split("/")[1] for path, (sha, _) in recorded.items() if path.count("/") >= 2}
-
-
-def changes_since(last_status: Mapping[str, str], last_part: Mapping[str, str], rep: Mapping[str, str],
-                  status: Mapping[str, Any], part_of: Mapping[str, str], added: int, changed: int,
-                  removed: int) -> Changes:
-    """The changes of this run (``rep``: sha256 -> first source; ``status``: sha256 -> None when
-    kept, else (stage, reason); ``part_of``: sha256 -> part of each kept content) against the
-    last run's verdicts (``last_status``: sha256 -> 'kept' | 'dropped') and parts. Contents new
-    to this run count only as files added."""
-    out = Changes(added, changed, removed)
-    for sha, source in rep.items():
-        before = last_status.get(sha)
-        if before is None:
-            continue
-        kept = status.get(sha) is None
-        if kept and before == "dropped":
-            out.now_kept.append((source, part_of.get(sha, "")))
-        elif not kept and before == "kept":
-            out.now_dropped.append(source)
-        elif kept and sha in last_part and last_part[sha] != part_of.get(sha):
-            out.moved.append((source, last_part[sha], part_of.get(sha, "")))
-    return out
+    parts: dict[str, str] = {}
+    names: dict[str, str] = {}  # memory: one string per part, kept through the manifest's pass
+    for path, (sha, _) in recorded.items():
+        if path.count("/") >= 2:
+            part = path.split("/")[1]
+            parts[sha] = names.setdefault(part, part)
+    return parts
 
 
 def change_lines(changes: Changes | None) -> list[str]:
@@ -70,12 +102,13 @@ def change_lines(changes: Changes | None) -> list[str]:
     if changes is None:
         return []
     c = changes
-    if not (c.added or c.changed or c.removed or c.now_kept or c.now_dropped or c.moved):
+    if not (c.added or c.changed or c.removed or any(c.turned.values())):
         return []
     parts = [f"{c.added:,} added, {c.changed:,} changed, {c.removed:,} removed"]
-    turned = [f"{len(c.now_kept):,} now kept" + _first(s for s, _ in c.now_kept),
-              f"{len(c.now_dropped):,} now dropped" + _first(c.now_dropped),
-              f"{len(c.moved):,} moved to another part" + _first(s for s, _, _ in c.moved)]
+    ex = c.examples
+    turned = [f"{c.turned['now_kept']:,} now kept" + _first(s for s, _ in ex["now_kept"]),
+              f"{c.turned['now_dropped']:,} now dropped" + _first(ex["now_dropped"]),
+              f"{c.turned['moved']:,} moved to another part" + _first(s for s, _, _ in ex["moved"])]
     return [f"since the last run: files {parts[0]}; " + ", ".join(turned)]
 
 

@@ -91,10 +91,17 @@ def histogram(values: list[float], title: str, unit: str, *, bins: int = 24, wid
             f'<text x="30" y="{height - 4}">{esc(fmt(lo))}</text>'
             f'<text x="{30 + pw}" y="{height - 4}" text-anchor="end">{esc(fmt(hi))} {esc(unit)}</text>'
             f'<text x="26" y="18" text-anchor="end">{top}</text>')
-    median = vs[len(vs) // 2]
+    median = median_of(vs)
     note = f"{len(vs):,} files, median {fmt(median)} {unit}" + (f"; {above} above {fmt(hi)} in the last bin" if above else "")
     return (f'<div class="hist"><h4>{esc(title)}</h4><svg width="{width}" height="{height}" class="fig">'
             f'{rects}{axis}</svg><p class="muted">{esc(note)}</p></div>')
+
+
+def median_of(vs: list[float]) -> float:
+    """The median of sorted values: the middle one, or the mean of the two middle ones for an
+    even count (an audit found the upper middle value printed as the median)."""
+    n = len(vs)
+    return vs[n // 2] if n % 2 else (vs[n // 2 - 1] + vs[n // 2]) / 2
 
 
 def paired_bars(labels: list[str], a: list[int], b: list[int], names: tuple[str, str], *,
@@ -153,7 +160,9 @@ class Facts:
     rows are not kept: at 100,000 files they would hold about 150 MB): files, kept, drops by
     (stage, reason), the stages each row reached (every stage up to the one that dropped it,
     all for a kept row: ``stages`` in run order), files per part, and the page's histograms,
-    keys, meters, groups and clusters."""
+    keys, meters, groups and clusters (the manifest's ``cluster``: the files of each cluster
+    of two or more files and its ``cluster_size``; the rows of the clusters the page shows are
+    read afterwards, ``read_manifest``)."""
 
     def __init__(self, stages: Iterable[str] = ()) -> None:
         self.stages = list(stages)
@@ -165,12 +174,16 @@ class Facts:
         self.values: dict[str, list[float]] = {f: [] for f, _, _ in HISTOGRAMS}
         self.key_before = [0] * 24
         self.key_after = [0] * 24
-        self.declared: dict[str, int] = {}
-        self.estimated: dict[str, int] = {}
-        self.meter_both = self.meter_agree = 0
+        self.declared: dict[str, int] = {}  # meter_declared -> kept files
+        self.estimated: dict[str, int] = {}  # meter_estimated -> kept files
+        self.meter_both = self.meter_agree = 0  # kept files with both; of them, the same meter
+        self.suspect: dict[str, int] = {}  # meter_declared_suspect -> kept files
         self.group_sizes: dict[int, int] = {}  # group size -> kept files in groups of that size
-        self.clusters: dict[str, list[dict]] = {}  # kept member's id -> its dropped duplicates
-        self.representatives: dict[str, dict] = {}  # kept member's id -> its row (shown clusters only)
+        #: cluster id -> [its rows counted, its cluster_size]: the rows of clusters of two or more
+        #: contents, and the copies (``duplicate_of``) in a cluster of one content, whose first
+        #: file is not counted (``cluster_files``)
+        self.clusters: dict[str, list[int]] = {}
+        self.members: dict[str, list[dict]] = {}  # cluster id -> its rows (shown clusters only)
         self._gone: dict[str, dict[float, int]] = {}  # field -> removed values and their counts
 
     def add(self, r: dict[str, Any]) -> None:
@@ -192,15 +205,18 @@ class Facts:
             reached = self._position.get(r.get("stage"), -1) + 1
         for name in self.stages[:reached]:
             _tally(self.reached, name, sign)
-        if r.get("duplicate_of"):
-            entry = {k: r.get(k) for k in CLUSTER_FIELDS}
+        cid = r.get("cluster")
+        if cid and ((r.get("cluster_size") or 0) > 1 or r.get("duplicate_of")):
+            entry = self.clusters.get(cid)
+            if entry is None:
+                if sign < 0:
+                    raise KeyError(cid)  # not a row these facts counted (``RowFacts.unused``)
+                entry = self.clusters[cid] = [0, 1]
+            entry[0] += sign
             if sign > 0:
-                self.clusters.setdefault(r["duplicate_of"], []).append(entry)
-            else:
-                members = self.clusters[r["duplicate_of"]]
-                members.remove(entry)
-                if not members:
-                    del self.clusters[r["duplicate_of"]]
+                entry[1] = r.get("cluster_size") or 1
+            if entry[0] <= 0:
+                del self.clusters[cid]
         if r.get("status") != "kept":
             return
         for f, vs in self.values.items():
@@ -220,12 +236,16 @@ class Facts:
                 name, mode = moved.split()
                 pc, off = note_name_to_pc(name), 0 if mode == "major" else 12
             self.key_after[off + (pc + (r.get("transpose") or 0)) % 12] += sign
-        meter, est = r.get("meter"), r.get("meter_estimated")
-        if r.get("meter_source") == "file" and meter:
-            _tally(self.declared, meter, sign)
+        # the manifest's meter_declared and meter_estimated (an audit found the declared meters
+        # counted only where meter_source was file, against a sentence about declared meters)
+        declared, est = r.get("meter_declared"), r.get("meter_estimated")
+        if declared:
+            _tally(self.declared, declared, sign)
             if est:
                 self.meter_both += sign
-                self.meter_agree += sign * (est == meter)
+                self.meter_agree += sign * (est == declared)
+            if r.get("meter_declared_suspect"):
+                _tally(self.suspect, r["meter_declared_suspect"], sign)
         if est:
             _tally(self.estimated, est, sign)
         g = r.get("group_size")
@@ -233,8 +253,7 @@ class Facts:
             _tally(self.group_sizes, g, sign)
 
     def settle(self) -> bool:
-        """Apply the removed values to the value lists (one pass over each) and put each
-        cluster's members in manifest (source) order, as a fresh count has them. False when a
+        """Apply the removed values to the value lists (one pass over each). False when a
         removed value was not in its list (a NaN never is: then count afresh)."""
         found = True
         for f, gone in self._gone.items():
@@ -248,19 +267,25 @@ class Facts:
             self.values[f] = kept
             found = found and not any(gone.values())
         self._gone = {}
-        for members in self.clusters.values():
-            members.sort(key=lambda e: e["source"])
         return found
 
+    def cluster_files(self, cid: str) -> int:
+        """The files (manifest rows) of a counted cluster: those counted, and for a cluster of
+        one content its first file, which is no copy (``duplicate_of`` null) and is not
+        counted (every file dedup sees is in a cluster: the lone ones are not kept here)."""
+        counted, size = self.clusters[cid]
+        return counted + (size == 1)
+
     def to_state(self) -> dict[str, Any]:
-        """The facts as JSON (without the representatives, read from the manifest each time)."""
+        """The facts as JSON (without the shown clusters' rows, read from the manifest each time)."""
         self.settle()
-        return {"files": self.files, "kept": self.kept,
+        return {"version": FACTS_VERSION, "files": self.files, "kept": self.kept,
                 "dropped_by": [[stage, reason, n] for (stage, reason), n in self.dropped_by.items()],
                 "reached": self.reached, "parts": self.parts,
                 "values": self.values, "key_before": self.key_before, "key_after": self.key_after,
                 "declared": self.declared, "estimated": self.estimated, "meter_both": self.meter_both,
-                "meter_agree": self.meter_agree, "group_sizes": list(self.group_sizes.items()),
+                "meter_agree": self.meter_agree, "suspect": self.suspect,
+                "group_sizes": list(self.group_sizes.items()),
                 "clusters": self.clusters}
 
     @classmethod
@@ -273,8 +298,9 @@ class Facts:
         facts.key_before, facts.key_after = saved["key_before"], saved["key_after"]
         facts.declared, facts.estimated = saved["declared"], saved["estimated"]
         facts.meter_both, facts.meter_agree = saved["meter_both"], saved["meter_agree"]
+        facts.suspect = saved["suspect"]
         facts.group_sizes = {g: n for g, n in saved["group_sizes"]}
-        facts.clusters = saved["clusters"]
+        facts.clusters = {cid: list(entry) for cid, entry in saved["clusters"].items()}
         return facts
 
 
@@ -292,11 +318,12 @@ class RowFacts:
     lines not reused are taken back (``unused``) and the built rows added. Speed: a rerun
     parsed every reused line for the facts, about 10 us each, and counted the summary's figures
     of each from the walk. ``facts()`` is None when the old lines seen do not add up to the last
-    run's ``old_rows`` (then read the manifest). Facts saved before they held the summary's
-    counts are not used."""
+    run's ``old_rows`` (then read the manifest). Facts saved in another form
+    (``FACTS_VERSION``) or without the summary's counts are not used."""
 
     def __init__(self, stages: Iterable[str], last: dict[str, Any] | None = None, old_rows: int = 0):
-        self.from_last = last is not None and "files" in last
+        self.from_last = (last is not None and last.get("version") == FACTS_VERSION
+                          and "files" in last)
         self.counted = Facts.from_state(last, stages) if self.from_last else Facts(stages)
         self.old_rows = old_rows
         self.old_seen = 0
@@ -336,13 +363,19 @@ class RowFacts:
 
 
 #: The fields of a near-duplicate cluster member that the page shows.
-CLUSTER_FIELDS = ("id", "source", "status", "transpose", "output", "duplicate_of", "duplicate_kind", "similarity")
+CLUSTER_FIELDS = ("id", "source", "status", "stage", "reason", "transpose", "output", "duplicate_of",
+                  "duplicate_kind", "similarity", "cluster_size")
+#: The form of ``Facts.to_state``: 2 counts clusters by the manifest's ``cluster`` and meters by
+#: ``meter_declared`` (1, unnamed, grouped rows by ``duplicate_of`` and counted the meters of
+#: ``meter_source`` file only).
+FACTS_VERSION = 2
 
 
 def read_manifest(path: Path, facts: Facts | None = None, stages: Iterable[str] = ()) -> Facts:
     """The facts of a manifest.jsonl, read one line at a time (or ``facts`` already gathered
     from its rows, as the run writes them; ``stages``: the run's stage names, in order); then,
-    in a second quick pass, the rows of the kept members of the clusters the page shows."""
+    in a second quick pass, the rows of the clusters the page shows (a line is parsed only when
+    it holds one of their ids)."""
     loads = json.loads
     if facts is None:
         facts = Facts(stages)
@@ -351,21 +384,27 @@ def read_manifest(path: Path, facts: Facts | None = None, stages: Iterable[str] 
             for line in fh:
                 add(loads(line))
     facts.settle()
-    shown = {cid for cid, _ in largest_clusters(facts)}
+    shown = set(largest_clusters(facts))
+    facts.members = {}
     if shown:
-        prefix = len('{"id": "')  # every line starts with its id (outputs.CONTRACT_FIELDS)
+        # speed: only the id after the cluster key, as the manifest writes it, is compared (a
+        # search of the ids in the whole line is slower: DEVELOPERS.md, Bench notes)
+        key = json.dumps({"cluster": ""}, separators=(", ", ": "))[1:-2]
+        at = len(key)
         with open(path, encoding="utf-8") as fh:
             for line in fh:
-                if line[prefix:prefix + 16] in shown:
+                i = line.find(key)
+                if i >= 0 and line[i + at:i + at + 16] in shown:
                     r = loads(line)
-                    if not r.get("duplicate_of"):  # not a byte-identical copy of the kept file
-                        facts.representatives.setdefault(r["id"], {k: r.get(k) for k in CLUSTER_FIELDS})
+                    if r.get("cluster") in shown:
+                        facts.members.setdefault(r["cluster"], []).append({k: r.get(k) for k in CLUSTER_FIELDS})
     return facts
 
 
-def largest_clusters(facts: Facts) -> list[tuple[str, list[dict]]]:
-    """The clusters the page shows: the largest (most dropped members), then by id."""
-    return sorted(facts.clusters.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:CLUSTERS_SHOWN]
+def largest_clusters(facts: Facts) -> list[str]:
+    """The clusters the page shows: the most files, then the largest ``cluster_size``, then by id."""
+    return sorted(facts.clusters, key=lambda cid: (-facts.cluster_files(cid), -facts.clusters[cid][1],
+                                                   cid))[:CLUSTERS_SHOWN]
 
 
 def stage_order(summary: dict, stages: Iterable[str] | None) -> list[str]:
@@ -407,8 +446,19 @@ def _key_section(facts: Facts) -> str:
 def _meter_section(facts: Facts) -> str:
     declared, estimated = facts.declared, facts.estimated
     labels = sorted(set(declared) | set(estimated), key=lambda m: (-(declared.get(m, 0) + estimated.get(m, 0)), m))[:16]
-    note = (f"{facts.meter_agree} of {facts.meter_both} kept files with a declared meter have the same estimate."
-            if facts.meter_both else "No kept file declares its meter.")
+    if facts.meter_both:
+        note = (f"{facts.meter_agree:,} of {facts.meter_both:,} kept files with a declared meter "
+                "(meter_declared) have the same estimate (meter_estimated).")
+    elif sum(declared.values()):
+        note = "No kept file with a declared meter has an estimate."
+    else:
+        note = "No kept file declares its meter."
+    suspect = facts.suspect
+    if suspect:
+        why = {"default": "a one-beat default such as 1/4", "contradicted": "contradicted by the notes"}
+        note += (f" The declared meter was not used for {sum(suspect.values()):,} of them, whose meter is "
+                 "the estimate (meter_declared_suspect): " + ", ".join(
+                     f"{n:,} {why.get(k, k)}" for k, n in sorted(suspect.items())) + ".")
     return ("<h3>Meters of the kept files: declared in the file vs estimated</h3>"
             + paired_bars(labels, [declared.get(m, 0) for m in labels], [estimated.get(m, 0) for m in labels],
                           ("declared", "estimated"), width=max(300, 60 * len(labels) + 60))
@@ -450,21 +500,35 @@ def _split_section(summary: dict, facts: Facts) -> str:
 
 
 def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
+    """The manifest's near-duplicate clusters (``cluster``) of two or more files: how many, their
+    sizes in files, and the largest, each with the member dedup kept (the one the cluster is
+    named after: dropped when a later stage dropped it) beside one dropped member. An audit
+    found clusters grouped by ``duplicate_of`` instead: a cluster that keeps two files split in
+    two, and the member of a fully dropped cluster labelled kept."""
     if not facts.clusters:
         return "<h2>Near-duplicate clusters</h2><p class=\"muted\">No cluster of two or more files.</p>"
     sizes: dict[int, int] = {}
-    for dropped in facts.clusters.values():
-        sizes[len(dropped) + 1] = sizes.get(len(dropped) + 1, 0) + 1
+    for cid in facts.clusters:
+        n = facts.cluster_files(cid)
+        sizes[n] = sizes.get(n, 0) + 1
     out = ["<h2>Near-duplicate clusters</h2>",
-           f'<p>{fmt(len(facts.clusters))} clusters of two or more files (exact and near duplicates); sizes: '
-           + ", ".join(f"{fmt(n)} of {k}" for k, n in sorted(sizes.items())) + ". The largest, each with "
-           "its kept member and one dropped member, each moved by the transposition normalization applied to "
-           "it (so both stand in the common key):</p>"]
-    for cid, dropped in largest_clusters(facts):
-        kept = facts.representatives.get(cid)
-        dropped = sorted(dropped, key=lambda m: (m["similarity"] or 0, m["source"]))
-        near = [m for m in dropped if m["duplicate_kind"] == "near"] or dropped
-        other = near[0]
+           f'<p>{fmt(len(facts.clusters))} clusters of two or more files (the manifest\'s <code>cluster</code>: '
+           "exact and near duplicates); sizes in files: "
+           + ", ".join(f"{fmt(n)} of {k}" for k, n in sorted(sizes.items())) + ". A cluster may keep several "
+           "files (none directly similar to another), or none when a later stage drops the member dedup kept. "
+           "The largest, each with the member dedup kept and one dropped member, each moved by the "
+           "transposition normalization applied to it (so both stand in the common key):</p>"]
+    for cid in largest_clusters(facts):
+        members = facts.members.get(cid) or []
+        files, size = (len(members), members[0]["cluster_size"]) if members else \
+            (facts.cluster_files(cid), facts.clusters[cid][1])
+        kept = [m for m in members if m["status"] == "kept"]
+        head = next((m for m in members if m["id"] == cid and not m["duplicate_of"]), kept[0] if kept else None)
+        dropped = sorted((m for m in members if m["duplicate_of"] and m["status"] != "kept"),
+                         key=lambda m: (m["similarity"] or 0, m["source"]))
+        near = [m for m in dropped if m["duplicate_kind"] == "near"] or dropped or \
+            [m for m in members if m["status"] != "kept" and m is not head]
+        other = near[0] if near else None
 
         def show(m: dict | None, label: str) -> str:
             if m is None:
@@ -476,10 +540,19 @@ def _clusters_section(facts: Facts, input_dir: Path, out_dir: Path) -> str:
                 shift = m["transpose"] or 0
             sim = f", similarity {m['similarity']:.2f}" if m["similarity"] is not None else ""
             kind = f" ({m['duplicate_kind']} duplicate)" if m["duplicate_kind"] else ""
-            return (f'<div class="thumb"><b>{label}</b>{esc(kind + sim)}<br><code>{esc(m["source"])}</code><br>'
+            if m["status"] != "kept" and not m["duplicate_of"]:
+                kind = f" (dropped by {m['stage']}: {m['reason']})"
+            return (f'<div class="thumb"><b>{esc(label)}</b>{esc(kind + sim)}<br><code>{esc(m["source"])}</code><br>'
                     f'{thumbnail(path, shift)}</div>')
-        out.append(f'<div class="cluster"><h4>cluster {esc(cid)}: {len(dropped) + 1} files</h4><div class="row">'
-                   f'{show(kept, "kept")}{show(other, "dropped")}</div></div>')
+        title = f"{files} files" + (f", {size} contents (cluster_size: byte-identical files count once)"
+                                     if size != files else "")
+        title += f"; keeps {len(kept)}" if kept else "; keeps none: every member is dropped"
+        head_label = "dedup kept, dropped later" if head is not None and head["status"] != "kept" else "kept"
+        also = [m for m in kept if m is not head]
+        more = ("<p class=\"muted\">Also kept: " + ", ".join(f"<code>{esc(m['source'])}</code>" for m in also[:5])
+                + (f" and {len(also) - 5:,} more" if len(also) > 5 else "") + "</p>") if also else ""
+        out.append(f'<div class="cluster"><h4>cluster {esc(cid)}: {esc(title)}</h4>{more}<div class="row">'
+                   f'{show(head, head_label)}{show(other, "dropped")}</div></div>')
     return "".join(out)
 
 
@@ -578,24 +651,29 @@ def _skipped_section(summary: dict) -> str:
 
 def _changes_section(summary: dict) -> str:
     """What a rerun changed against the last run (summary.json's ``changes_since_last_run``,
-    ``outputs.changes``; nothing on a first run), with the sources it names."""
+    ``outputs.changes``; nothing on a first run), with the first sources of each kind."""
     c = summary.get("changes_since_last_run")
     if not c:
         return ""
     key = "changes_since_last_run."
     counts = "; ".join(f"{label} {cell_inline(c[k], key + k)}" for label, k in (
         ("files added", "files_added"), ("changed", "files_changed"), ("removed", "files_removed"),
-        ("contents kept now", "now_kept"), ("dropped now", "now_dropped"), ("moved to another part", "moved")))
+        ("files kept now", "now_kept"), ("dropped now", "now_dropped"), ("moved to another part", "moved")))
     ex = c.get("examples", {})
-    rows = ([f"<li>kept now: <code>{esc(e['source'])}</code> ({esc(e['split'])})</li>" for e in ex.get("now_kept", [])]
+    rows = ([f"<li>{label}: <code>{esc(src)}</code></li>" for label, k in (
+                ("added", "files_added"), ("changed", "files_changed"), ("removed", "files_removed"))
+             for src in ex.get(k, [])]
+            + [f"<li>kept now: <code>{esc(e['source'])}</code> ({esc(e['split'])})</li>" for e in ex.get("now_kept", [])]
             + [f"<li>dropped now: <code>{esc(src)}</code></li>" for src in ex.get("now_dropped", [])]
             + [f"<li>moved: <code>{esc(e['source'])}</code> ({esc(e['from'])} &rarr; {esc(e['to'])})</li>"
                for e in ex.get("moved", [])])
     # the lists hold the first few of each kind: say how many more there are (an audit found
     # 20 of 49 newly kept files listed as if they were all)
-    unlisted = sum(max(0, int(c.get(k, 0)) - len(ex.get(k, []))) for k in ("now_kept", "now_dropped", "moved"))
-    more = (f"<p>The first {EXAMPLES} of each kind are listed; {unlisted:,} more are in manifest.jsonl "
-            "(<code>midisift explain PATH</code> for any file).</p>" if unlisted else "")
+    # (a summary.json written before 0.4.8 lists no files added, changed or removed)
+    unlisted = sum(max(0, int(c.get(k, 0)) - len(ex[k])) for k in (
+        "files_added", "files_changed", "files_removed", "now_kept", "now_dropped", "moved") if k in ex)
+    more = (f"<p>The first {EXAMPLES} of each kind are listed, {unlisted:,} more are not (the counts are "
+            "complete; <code>midisift explain PATH</code> for any file of this run).</p>" if unlisted else "")
     return (f"<h2>Since the last run</h2><p>{counts}.</p>"
             + (f"<ul>{''.join(rows)}</ul>" if rows else "") + more)
 

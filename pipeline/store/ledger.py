@@ -11,7 +11,8 @@ Tables
   artifact_data (stage, fingerprint, sha256, name) -> those bytes (the shingle sets), so reading
              the small artifacts and the keys of a stage does not page through them
   state      (stage, key) -> JSON saved by a corpus stage in the last completed run
-  decisions  source -> the whole decision trail of the last completed run (for ``explain``)
+  decisions  source -> the whole decision trail of the last completed run (for ``explain``), and
+             its verdict (a rerun compares each file's with it: ``outputs.changes``)
   row_digests source -> digest of what its manifest row and trail were made from in the last
              completed run (a rerun reuses the rows whose digest is unchanged)
   outputs    path (relative to OUTPUT) -> sha256, fingerprint of the written normalized file
@@ -377,6 +378,28 @@ class Ledger:
         """(sha256, 'kept'|'dropped') of the last completed run; 'kept' wins for shared contents."""
         return self.db.execute(
             "SELECT sha256, MAX(status) FROM decisions GROUP BY sha256")  # 'kept' > 'dropped'
+
+    def set_verdicts_aside(self) -> None:
+        """Copy the last completed run's verdicts, (source, sha256, status), to a temporary
+        table before ``put_decisions`` replaces every trail: ``last_verdicts(aside=True)`` reads
+        them there (the trails, the bulk of the table, are not copied)."""
+        self.db.execute("DROP TABLE IF EXISTS temp.last_verdicts")
+        self.db.execute("CREATE TEMP TABLE last_verdicts (source TEXT PRIMARY KEY, sha256 TEXT, "
+                        "status TEXT NOT NULL) WITHOUT ROWID")
+        self.db.execute("INSERT INTO temp.last_verdicts SELECT source, sha256, status FROM decisions")
+
+    def last_verdicts(self, sources: list[str], *, aside: bool = False) -> dict[str, tuple[str | None, str]]:
+        """Source -> (sha256, 'kept' | 'dropped') in the last completed run, for those of
+        ``sources`` it had: from its decisions (read before this run replaces theirs), or
+        ``aside``, from the copy ``set_verdicts_aside`` made."""
+        table = "temp.last_verdicts" if aside else "decisions"
+        out: dict[str, tuple[str | None, str]] = {}
+        for chunk in iter_chunks(sources, 500):
+            marks = ",".join("?" * len(chunk))
+            for source, sha, status in self.db.execute(
+                    f"SELECT source, sha256, status FROM {table} WHERE source IN ({marks})", chunk):
+                out[source] = (sha, status)
+        return out
 
     def decision_sources(self) -> dict[str, str]:
         """Source -> sha256 of every file of the last completed run (its trails' rows)."""
