@@ -209,9 +209,15 @@ def test_a_cluster_the_filter_dropped_whole_shows_no_kept_member(tmp_path):
                          rf"<code>{re.escape(head['source'])}</code>", section)
 
 
-def test_the_meter_sentence_counts_the_manifest_s_declared_meters(demo_out):
+def test_the_meter_sentence_counts_the_manifest_s_declared_meters(tmp_path):
     """Found by an audit: the page said "89 of 104 kept files with a declared meter" while every
-    kept row had a ``meter_declared``: it counted only the rows whose meter_source was file."""
+    kept row had a ``meter_declared``: it counted only the rows whose meter_source was file.
+    (Run with ``meter_contradiction: 0.01``, the default before 0.4.8, so the demo has declared
+    meters that were not used.)"""
+    cfg = load_config(ROOT / "configs" / "default.yaml", input=str(DEMO), output=str(tmp_path / "out"), workers=1)
+    next(s for s in cfg.stages if s.name == "key_meter").options["meter_contradiction"] = 0.01
+    Runner(cfg, quiet=True).run()
+    demo_out = tmp_path / "out"
     rows = [json.loads(line) for line in (demo_out / "manifest.jsonl").read_text().splitlines()]
     kept = [r for r in rows if r["status"] == "kept" and r.get("meter_declared")]
     both = [r for r in kept if r.get("meter_estimated")]
