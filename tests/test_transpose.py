@@ -171,6 +171,35 @@ def test_written_file_decodes_to_shifted_notes():
                 assert np.array_equal(back[f], notes[f]), f
 
 
+def test_outputs_leave_out_declarations_flagged_as_sequencer_defaults():
+    """Found by an audit: a C major key signature on a piece in another key (the manifest's
+    ``key_declared_suspect``) and a 1/4 time signature (``meter_declared_suspect: default``)
+    were written into the normalized file, shifted with the notes. Real chorales (music21's
+    corpus; truth: key signature and final bass, its ``truth``) given those declarations: the
+    written file, read with mido, has neither; given their true signature and a 4/4 bar, it
+    keeps both (the key moved with the notes)."""
+    encode = pytest.importorskip("pipeline.midi.encode").encode
+    import io
+    import mido
+    from dataclasses import replace
+    works = [w for w in chorales()[:10] if w["truth"] and tuple(w["truth"]) in ((7, "major"), (2, "major"))][:2]
+    assert works
+    for work in works:
+        piece = decode(work["midi"])
+        sharps = {7: 1, 2: 2}[work["truth"][0]]
+        for ks, ts, kept in (((0, 0, 0), (0, 1, 4), False), ((0, sharps, 0), (0, 4, 4), True)):
+            given = replace(piece, key_signatures=np.array([ks], dtype=KEY_DTYPE),
+                            time_signatures=np.array([ts], dtype=METER_DTYPE))
+            stage = Transpose()
+            values = stage.process(given, FileContext(given)).values
+            assert values["transpose_key"] == keymod.key_name(*work["truth"])
+            (variant,) = stage.output_variants(given, values, [])
+            out = mido.MidiFile(file=io.BytesIO(encode(variant.piece, variant.notes)))
+            keys = [m.key for tr in out.tracks for m in tr if m.type == "key_signature"]
+            meters = [(m.numerator, m.denominator) for tr in out.tracks for m in tr if m.type == "time_signature"]
+            assert keys == (["C"] if kept else []) and meters == ([(4, 4)] if kept else [])
+
+
 # --- the confidence guard ------------------------------------------------------------------
 
 def _ambiguous_and_clear():

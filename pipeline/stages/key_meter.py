@@ -113,9 +113,15 @@ def key_declared_suspect(declared: str | None, estimate: keymod.KeyEstimate | No
     file declares no key, or has no estimate to compare it with."""
     if declared is None or estimate is None:
         return None
+    return default_signature_on(declared, estimate.tonic_pc, estimate.mode)
+
+
+def default_signature_on(declared: str, tonic_pc: int, mode: str) -> bool:
+    """Whether ``declared`` is a C major signature on a piece in the key (``tonic_pc``,
+    ``mode``) of another signature (``key_declared_suspect``'s rule)."""
     if keymod.parse_key(declared) != (0, "major"):
         return False
-    relative_major = estimate.tonic_pc if estimate.mode == "major" else (estimate.tonic_pc + 3) % 12
+    relative_major = tonic_pc if mode == "major" else (tonic_pc + 3) % 12
     return relative_major != 0
 
 

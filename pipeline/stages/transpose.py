@@ -12,14 +12,15 @@ from typing import Any
 import numpy as np
 
 from ..analysis import key as keymod
+from ..analysis import meter as metermod
 from ..analysis.transpose import (DIRECTIONS, fold_count, in_canonical_order, shift_controls,
                                   shift_key_signatures, shift_notes, smallest_shift)
 from ..midi.accel import compiled_analyses
 from ..midi.piece import DRUM_CHANNEL, Piece, sort_notes
 from ..printed import compared
 from .base import FileContext, Option, Stage, StageResult, Variant, register
-from .key_meter import (KEY_OPTIONS, TRUST_FILE_KEY_TRANSPOSE, key_effective_options, key_fields,
-                        reported_key, shared_key_estimate)
+from .key_meter import (KEY_OPTIONS, TRUST_FILE_KEY_TRANSPOSE, default_signature_on,
+                        key_effective_options, key_fields, reported_key, shared_key_estimate)
 
 
 def _check_note(value: Any) -> str | None:
@@ -86,7 +87,8 @@ class Transpose(Stage):
     #: 5: its results carry the key it read (``key_fields``), as key_meter's do
     #: 6: and the key the shift used (``transpose_key``, ``transpose_key_confidence``); the
     #: guard compares the recorded (rounded) confidence; no key without pitched notes
-    version = 6
+    #: 7: the outputs leave out declarations flagged as sequencer defaults (``output_variants``)
+    version = 7
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),
@@ -206,9 +208,12 @@ class Transpose(Stage):
         """The normalized piece and one copy per ``augment`` shift (``output_notes``); a
         transposition moves only notes, the key numbers of polyphonic aftertouch on pitched
         channels and key signatures. With ``notes_only`` the outputs drop the control,
-        pitch-bend, aftertouch and program-change events and the text-like metas."""
+        pitch-bend, aftertouch and program-change events and the text-like metas. The outputs
+        leave out the declarations the manifest flags as sequencer defaults
+        (``without_default_declarations``)."""
         if self.opts["notes_only"]:
             piece = replace(piece, controls=piece.controls[:0], texts=())
+        piece = without_default_declarations(piece, values.get("transpose_key"))
         out = []
         for suffix, notes, semitones in self.output_notes(piece, values):
             shifted = piece if semitones == 0 else replace(
@@ -216,3 +221,22 @@ class Transpose(Stage):
                 controls=shift_controls(piece.controls, semitones))
             out.append(Variant(suffix, shifted, notes))
         return out
+
+
+def without_default_declarations(piece: Piece, key: str | None) -> Piece:
+    """The piece without the time signatures of a one-beat bar (``meter.is_default_meter``:
+    1/4 is what many sequencers write when no meter was set) and, when its declared key is a C
+    major signature on a piece in ``key`` (the key the shift used) of another signature
+    (``key_meter.default_signature_on``), without its C major key signatures: a normalized
+    file would otherwise carry a declaration the manifest flags as wrong (an audit: 59 of 67
+    POP909 outputs with a key signature, and 349 of 453 with the 1/4 time signature)."""
+    ts, ks = piece.time_signatures, piece.key_signatures
+    keep_ts = np.array([not metermod.is_default_meter(f"{n}/{d}")
+                        for n, d in zip(ts["numerator"].tolist(), ts["denominator"].tolist())], dtype=bool)
+    declared = keymod.declared_key(piece)
+    keep_ks = np.ones(len(ks), dtype=bool)
+    if declared is not None and key is not None and default_signature_on(declared, *keymod.parse_key(key)):
+        keep_ks = (ks["sharps"] != 0) | (ks["minor"] != 0)
+    if keep_ts.all() and keep_ks.all():
+        return piece
+    return replace(piece, time_signatures=ts[keep_ts], key_signatures=ks[keep_ks])
