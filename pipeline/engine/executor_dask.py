@@ -254,7 +254,8 @@ def input_samples(input_folder: str, count: int = SAMPLE_FILES) -> list[tuple[st
     """(path, sha256) of up to ``count`` input files: the first and the last MIDI file of each
     folder in walk order (folders sorted) until ``count`` are found, without listing the whole
     tree (the run lists it next)."""
-    from .sources import MIDI_SUFFIXES, file_sha256
+    from ..store.atomic import file_sha256
+    from .sources import MIDI_SUFFIXES
     found: list[str] = []
     for root, dirs, files in os.walk(input_folder):
         dirs.sort()
@@ -277,7 +278,7 @@ def _worker_sees(input_folder: str, probe: str, token: str, samples: list[tuple[
     host = socket.gethostname()
     if not os.path.isdir(input_folder):
         return f"no folder {input_folder} on host {host}"
-    from .sources import file_sha256
+    from ..store.atomic import file_sha256
     for path, digest in samples:
         try:
             if file_sha256(path) != digest:

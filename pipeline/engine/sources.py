@@ -6,7 +6,6 @@ the ledger keeps its recorded sha256, any other is hashed.
 """
 from __future__ import annotations
 
-import hashlib
 import os
 import stat as stat_mod
 from array import array
@@ -16,6 +15,7 @@ from pathlib import Path
 from typing import overload
 
 from ..errors import UsageError
+from ..store.atomic import file_sha256
 from ..store.ledger import LEDGER_NAME
 from ..store.lock import LOCK_NAME
 
@@ -343,15 +343,6 @@ def _kind(mode: int) -> str:
         if test(mode):
             return name
     return "not a plain file"
-
-
-def file_sha256(path: str | Path) -> str:
-    """The sha256 (hex) of a file's bytes, read in 1 MiB blocks (OSError when it cannot be read)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(1 << 20):
-            h.update(block)
-    return h.hexdigest()
 
 
 def fingerprint(files: SourceTable, known: dict[str, tuple[int, int, str]],

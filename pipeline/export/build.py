@@ -43,8 +43,7 @@ import numpy as np
 
 from ..errors import DecodeError, MidisiftError, UsageError
 from ..store.lock import OutputLock
-from ..store.atomic import read_json_object, write_atomic
-from ..engine.sources import file_sha256
+from ..store.atomic import file_sha256, read_json_object, write_atomic
 from ..midi.decode import decode_file
 from .encodings import ENCODING_VERSION, events, pianoroll, vocabulary, windows
 from .freshness import output_state

@@ -3,6 +3,7 @@ a JSON object file so written (``read_json_object``)."""
 from __future__ import annotations
 
 import functools
+import hashlib
 import json
 import os
 import tempfile
@@ -86,3 +87,12 @@ def read_json_object(path: Path) -> dict | None:
     except (OSError, ValueError):
         return None
     return data if isinstance(data, dict) else None
+
+
+def file_sha256(path: str | Path) -> str:
+    """The sha256 (hex) of a file's bytes, read in 1 MiB blocks (OSError when it cannot be read)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(1 << 20):
+            h.update(block)
+    return h.hexdigest()
