@@ -187,6 +187,41 @@ def test_an_unreachable_scheduler_stops_the_run_before_anything_is_written(
     assert not out.exists()
 
 
+def test_an_address_where_another_service_answers_is_an_error_in_bounded_time(
+        corpus, tmp_path, monkeypatch, capsys):
+    """Found by an audit: at the port of an HTTP server ``distributed.Client`` waited without
+    end, its own timeout notwithstanding. Here a standard-library HTTP server answers."""
+    import http.server
+    import threading
+    import time
+    monkeypatch.setattr(executor_dask, "CONNECT_TIMEOUT_S", 1.0)
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), http.server.BaseHTTPRequestHandler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        out = tmp_path / "out"
+        start = time.monotonic()
+        assert _run(_config(tmp_path), corpus, out, "--executor",
+                    f"tcp://127.0.0.1:{server.server_address[1]}") == 1
+        assert time.monotonic() - start < 30  # bounded: 1 s and the margin, far below any hang
+        err = capsys.readouterr().err
+        assert "cannot reach the Dask scheduler" in err and "another service" in err
+        assert not out.exists()
+    finally:
+        server.shutdown()  # the handler threads (waiting on the client) are daemons
+        server.server_close()
+
+
+def test_a_workers_address_is_refused_as_not_a_scheduler(cluster, corpus, tmp_path, capsys):
+    """Found by an audit: a Dask worker's address ended in two tracebacks of Dask's own."""
+    _, client = cluster
+    worker = sorted(client.scheduler_info()["workers"])[0]
+    out = tmp_path / "out"
+    assert _run(_config(tmp_path), corpus, out, "--executor", worker) == 1
+    err = capsys.readouterr().err
+    assert "answers, but not as a Dask scheduler" in err and "not a worker's" in err and "Traceback" not in err
+    assert not out.exists()
+
+
 def test_workers_of_another_version_are_refused(cluster, corpus, tmp_path, capsys):
     address, client = cluster
 

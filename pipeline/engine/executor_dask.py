@@ -34,6 +34,7 @@ import os
 import secrets
 import signal
 import socket
+import threading
 from collections import deque
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
@@ -82,23 +83,27 @@ class DaskExecutor:
         except ImportError:
             raise _dask_missing() from None
         try:
-            client = Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
+            client = _client_within(Client, address, CONNECT_TIMEOUT_S)
         except (OSError, TimeoutError) as e:
             raise MidisiftError(f"cannot reach the Dask scheduler ({type(e).__name__}: {e}); start "
                                 "one with 'dask scheduler' and workers with 'dask worker ADDRESS', "
                                 "or check the address and the firewall", location=address) from None
+        except Exception as e:  # noqa: BLE001 - e.g. a Dask worker's address, which answers otherwise
+            raise _not_a_scheduler(address, e) from None
         ex = cls(address, client)
         try:
             client.wait_for_workers(1, timeout=WORKERS_TIMEOUT_S)
+            ex.check_versions()
         except (OSError, TimeoutError):
             ex.close()
             raise MidisiftError(f"the Dask scheduler has no workers after {WORKERS_TIMEOUT_S:g} s; "
                                 "start some with 'dask worker ADDRESS'", location=address) from None
-        try:
-            ex.check_versions()
-        except BaseException:
+        except MidisiftError:
             ex.close()
             raise
+        except Exception as e:  # noqa: BLE001 - as above
+            ex.close()
+            raise _not_a_scheduler(address, e) from None
         return ex
 
     def check_versions(self) -> None:
@@ -223,6 +228,40 @@ class DaskExecutor:
             for fut in list(in_flight):
                 fut.cancel()
             in_flight.clear()
+
+
+def _not_a_scheduler(address: str, e: BaseException) -> MidisiftError:
+    return MidisiftError(f"the address answers, but not as a Dask scheduler ({type(e).__name__}: {e}); "
+                         "give the scheduler's address ('dask scheduler' prints it, tcp://HOST:8786 "
+                         "by default), not a worker's", location=address)
+
+
+#: Seconds a connection may take beyond ``CONNECT_TIMEOUT_S`` before it is given up.
+CONNECT_MARGIN_S = 2.0
+
+
+def _client_within(client_class: Any, address: str, seconds: float) -> Any:
+    """``client_class(address)`` (a ``distributed.Client``), made in a thread of its own and
+    given up after ``seconds`` plus ``CONNECT_MARGIN_S`` (an audit: an address where another
+    service answers, an HTTP server, kept ``Client`` waiting without end, its own timeout
+    notwithstanding); a ``TimeoutError`` then, or the error the connection raised."""
+    box: dict[str, Any] = {}
+
+    def connect() -> None:
+        try:
+            box["client"] = client_class(address, timeout=f"{seconds}s", set_as_default=False)
+        except BaseException as e:  # noqa: BLE001 - handed to the caller's thread
+            box["error"] = e
+
+    thread = threading.Thread(target=connect, name="midisift-dask-connect", daemon=True)
+    thread.start()
+    thread.join(seconds + CONNECT_MARGIN_S)
+    if thread.is_alive():
+        raise TimeoutError(f"no answer as a Dask scheduler within {seconds + CONNECT_MARGIN_S:g} s "
+                           "(is another service listening there?)")
+    if "error" in box:
+        raise box["error"]
+    return box["client"]
 
 
 def _takes_n_workers(client: Any) -> bool:
