@@ -344,6 +344,20 @@ def test_a_new_representative_takes_the_part_its_dropped_cluster_mates_carry():
     assert parts(r3)[new] == "train"
 
 
+def test_a_dropped_files_carried_part_never_moves_a_member_that_has_one():
+    """The part a dropped file took from its cluster places a cluster's new kept file, but when
+    dedup links that file to a member placed before (its old cluster's kept file removed), the
+    member keeps its part and the dropped file's part follows it."""
+    c, base, first, old, copy, s1 = _a_test_file_and_its_dropped_copy()
+    member = next(m for m in base if first[m] == "train")
+    left = [m for m in base if m != old]
+    dedup2 = {m: StageResult.keep(values={"cluster": m}) for m in left}
+    dedup2[copy] = StageResult.drop("near_duplicate", "", values={"cluster": member, "duplicate_of": member})
+    r2, s2 = run([c.member(m) for m in left], previous=s1.current, upstream={"dedup": dedup2})
+    assert parts(r2)[member] == "train" and "moved_from" not in r2[member].values
+    assert s2.current["inherited"][copy] == "train"
+
+
 def test_a_file_edited_in_place_keeps_its_part():
     """Found by an audit: the new content of a file edited in place (a tempo change, a fixed
     note) is a new member; without its path's history it was placed as a new piece, into the

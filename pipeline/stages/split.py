@@ -354,7 +354,7 @@ class Split(Stage):
         heirs = _heirs(cluster_of, ids)
         del cluster_of
         groups = build_groups(ids + sorted(ghosts), links, self._forced(members, by_folder))
-        prior = _prior_parts(ids, ghosts, previous, inherited,
+        prior = _prior_parts(ids, ghosts, groups, previous, inherited,
                              {} if reassign else state.flags.get("edited") or {})
         assignment, moves = assign_groups(groups, ratios, self.opts["seed"], prior,
                                           self._freeze(), sizes)
@@ -663,21 +663,29 @@ def _tie_texts(moved: dict[str, tuple[str, str, str]], groups: dict[str, list[st
     return out
 
 
-def _prior_parts(ids: list[str], ghosts: set[str], previous: dict[str, str],
-                 inherited: dict[str, str], edited: dict[str, str]) -> dict[str, str]:
+def _prior_parts(ids: list[str], ghosts: set[str], groups: dict[str, list[str]],
+                 previous: dict[str, str], inherited: dict[str, str],
+                 edited: dict[str, str]) -> dict[str, str]:
     """The part each member and ghost starts from (``assign_groups``' ``prior``): its own from
-    the last run; else, for a member or ghost dedup dropped last run, the part it took from its
-    cluster (``inherited``); else, for the new content of a file edited in place (``edited``:
-    new member id -> the id of the content its path held in the last run), the part of that
+    the last run; else, for a member dedup dropped last run, the part it took from its cluster
+    (``inherited``); else, for the new content of a file edited in place (``edited``: new
+    member id -> the id of the content its path held in the last run), the part of that
     content, so a file keeps its part across an edit, as across a rerun (an audit: a kept
-    file whose tempo was edited was placed as a new piece, into another part, unreported)."""
-    prior = {m: inherited[m] for m in [*ids, *ghosts] if m not in previous and m in inherited}
+    file whose tempo was edited was placed as a new piece, into another part, unreported).
+    A ghost that carries only the part it took from its cluster places a group none of whose
+    members has a part (a cluster's new kept file stays where its piece was), and never moves
+    a member that has one."""
+    prior = {m: inherited[m] for m in ids if m not in previous and m in inherited}
     for m in ids:
         old = edited.get(m)
         if m not in previous and m not in prior and old is not None:
             part = previous.get(old, inherited.get(old))
             if part is not None:
                 prior[m] = part
+    for grp in groups.values():
+        carried = [g for g in grp if g in ghosts and g not in previous and g in inherited]
+        if carried and not any(m in previous or m in prior for m in grp if m not in ghosts):
+            prior.update((g, inherited[g]) for g in carried)
     return {**prior, **previous}
 
 
