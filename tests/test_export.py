@@ -471,10 +471,14 @@ def test_an_export_made_before_the_last_run_is_refused_until_exported_again(tmp_
     corpus, out, opts, _, folder = _exported_demo(tmp_path, ExportOptions("events"))
     ex = open_export(out, "events")
     assert len(ex) == sum(len(p.read_text().split()) for p in (out / "splits").glob("*.txt"))
-    # a run with nothing changed leaves the export current
+    # a run with nothing changed leaves the export current, as does one that only drops a new
+    # file (the split lists and the normalized files unchanged; a second audit found it refused)
     cfg = load_config(ROOT / "configs" / "default.yaml", input=str(corpus), output=str(out), workers=1)
     Runner(cfg, quiet=True).run()
     assert len(open_export(out, "events")) == len(ex)
+    (corpus / "not a song.mid").write_bytes(b"<html>a page saved as .mid</html>")
+    report = Runner(cfg, quiet=True).run()
+    assert len(open_export(out, "events")) == len(ex) and not any("export" in w for w in report.warnings)
     rows = [json.loads(line) for line in (out / "manifest.jsonl").read_text().splitlines()]
     gone = next(r for r in rows if r["status"] == "kept" and r["group_size"] == 1)
     (corpus / gone["source"]).unlink()

@@ -247,13 +247,15 @@ def test_a_damaged_track_name_is_a_bad_chunk_not_a_file_cut_off():
     # whose 'MTrk' name is damaged reads as such a chunk, and the file then holds fewer tracks
     # than its header declares although it ends where its last chunk does (an audit: reported
     # `truncated`, "cut off during download", at the end of the file)
-    header = "4d 54 68 64 00 00 00 06  00 01 00 02 00 60  # declares 2 tracks"
-    data = smf(mtrk(ONE_NOTE), mtrk(ONE_NOTE), header=header)
-    damaged = data[:14] + b"XXXX" + data[18:]
-    with pytest.raises(DecodeError, match=r"holds 1 track chunks and 1 chunk\(s\) of other names, the "
-                       r"first 'XXXX' at byte 14, which a reader skips; a damaged 'MTrk' name") as exc:
+    header = "4d 54 68 64 00 00 00 06  00 01 00 03 00 60  # declares 3 tracks"
+    data = smf(mtrk(ONE_NOTE), mtrk(ONE_NOTE), mtrk(ONE_NOTE), header=header)
+    second = 14 + len(parse_hexdump(mtrk(ONE_NOTE)))  # the second track's chunk
+    damaged = data[:second] + b"XXXX" + data[second + 4:]
+    with pytest.raises(DecodeError, match=r"holds 2 track chunks and 1 chunk\(s\) of other names, the "
+                       rf"first 'XXXX' at byte {second} where track 1 would be, which a reader skips; "
+                       r"a damaged 'MTrk' name") as exc:
         decode(damaged)
-    assert exc.value.code == "bad_chunk" and exc.value.offset == 14
+    assert exc.value.code == "bad_chunk" and exc.value.offset == second and exc.value.track == 1
 
 
 def test_truncated_inside_event():

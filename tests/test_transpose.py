@@ -198,6 +198,21 @@ def test_outputs_leave_out_declarations_flagged_as_sequencer_defaults():
             keys = [m.key for tr in out.tracks for m in tr if m.type == "key_signature"]
             meters = [(m.numerator, m.denominator) for tr in out.tracks for m in tr if m.type == "time_signature"]
             assert keys == (["C"] if kept else []) and meters == ([(4, 4)] if kept else [])
+        # the music's own declarations stay (a second audit): a pickup's one-beat bar before a
+        # 4/4 piece (declared meter 4/4, not flagged), and a return to C major after a G major
+        # passage (only the C major before the first other signature is the flagged default)
+        tpb = int(piece.ticks_per_beat)
+        given = replace(piece, key_signatures=np.array([(0, 0, 0), (32 * tpb, sharps, 0), (96 * tpb, 0, 0)],
+                                                       dtype=KEY_DTYPE),
+                        time_signatures=np.array([(0, 1, 4), (tpb, 4, 4)], dtype=METER_DTYPE))
+        stage = Transpose()
+        values = stage.process(given, FileContext(given)).values
+        (variant,) = stage.output_variants(given, values, [])
+        out = mido.MidiFile(file=io.BytesIO(encode(variant.piece, variant.notes)))
+        keys = [m.key for tr in out.tracks for m in tr if m.type == "key_signature"]
+        meters = [(m.numerator, m.denominator) for tr in out.tracks for m in tr if m.type == "time_signature"]
+        moved_c = keymod.key_name((values["transpose"]) % 12, "major").split()[0]
+        assert keys == ["C", moved_c] and meters == [(1, 4), (4, 4)]
 
 
 # --- the confidence guard ------------------------------------------------------------------

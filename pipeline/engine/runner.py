@@ -299,6 +299,9 @@ class Runner:
             # it reads them again
             summary["counts"]["state_key"] = None if self._unread else state_key
             summary["counts"]["quick_key"] = None if self._unread else qkey
+            # what the normalized files' bytes depend on beyond their sources (an export's
+            # freshness check, ``export.freshness``)
+            summary["counts"]["output_key"] = self.output_fp
             summary["warnings"].extend(unread_warnings(self._unread, unread_late))
             summary["skipped"] = summaries.skipped_summary(files.skipped)
             if changes is not None:

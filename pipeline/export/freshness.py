@@ -2,12 +2,14 @@
 
 An export holds the normalized files of one state of its output folder: a later run may add,
 drop or move files between parts (and an export read then would hand test material to a
-training loop, or files removed from the input). ``output_state`` names that state: the last
-run's state key (summary.json's ``counts.state_key``: every source and the options) and the
-bytes of its split lists (a ``--reassign`` run changes the parts under the same key).
+training loop, or files removed from the input). ``output_state`` names that state.
 ``midisift export`` records it in export.json (``output_state``); the loader refuses an export
 whose recorded state is not the folder's, and ``midisift run`` names the exports it left
-behind.
+behind. The state is what the exported arrays depend on: the split lists' bytes (which
+normalized file is in which part; a file's name holds its content's id) and the output key
+(summary.json's ``counts.output_key``: what the normalized bytes depend on beyond their
+sources, the encoder and the options of the stages that shape the outputs). A run that only
+adds a file it drops, or changes a filter limit that drops nothing, leaves an export current.
 """
 from __future__ import annotations
 
@@ -27,7 +29,7 @@ def output_state(out_dir: Path) -> str | None:
     summary = read_json_object(out_dir / "summary.json")
     if summary is None:
         return None
-    h = hashlib.sha256(f"state {(summary.get('counts') or {}).get('state_key')}".encode())
+    h = hashlib.sha256(f"output {(summary.get('counts') or {}).get('output_key')}".encode())
     splits = out_dir / "splits"
     for path in sorted(splits.glob("*.txt")) if splits.is_dir() else ():
         h.update(b"\0" + path.name.encode("utf-8", "surrogateescape") + b"\0" + path.read_bytes())
@@ -53,6 +55,7 @@ def stale_exports(out_dir: Path) -> list[str]:
         if meta.get("output_state") != now:
             fmt = meta_path.parent.name
             lines.append(f"export: {meta_path.parent} describes an earlier state of this folder "
-                         f"(this run changed its files or parts); its loader refuses it until you "
+                         f"(this run changed which normalized files are in which part, or how they "
+                         f"are written); its loader refuses it until you "
                          + REEXPORT.format(out=out_dir, fmt=fmt))
     return lines

@@ -271,17 +271,19 @@ def decode(data: bytes, *, source: str = "", size: int | None = None,
     n_events = 0
     zero = hanging = unknown_meta = no_eot = unknown_chunks = 0
     ti = 0
-    first_unknown: tuple[int, str] | None = None  # where the first chunk of another name began
+    first_unknown: tuple[int, str, int] | None = None  # the first chunk of another name: byte, name, track
     while ti < ntrks:
         if pos + 8 > end:
             if first_unknown is not None and pos == end:
                 # whole chunks, but some named otherwise: more likely a damaged 'MTrk' tag than a
                 # file cut off (an audit: such a file was said to be cut off during download)
-                at, name = first_unknown
+                at, name, where = first_unknown
                 raise DecodeError("bad_chunk", f"the header declares {ntrks} tracks but the file holds "
                                   f"{ti} track chunks and {unknown_chunks} chunk(s) of other names, "
-                                  f"the first {name!r} at byte {at}, which a reader skips; a damaged "
-                                  "'MTrk' name is likely", file=source, offset=at, track=ti)
+                                  f"the first {name!r} at byte {at} where track {where} would be, "
+                                  "which a reader skips; a damaged 'MTrk' name is likely (or the file "
+                                  "was cut off after its last whole chunk)", file=source, offset=at,
+                                  track=where)
             raise DecodeError("truncated", f"the header declares {ntrks} tracks but the file ends "
                               f"after {ti} (at byte {end}); it was probably cut off during download",
                               file=source, offset=min(pos, end), track=ti)
@@ -296,7 +298,7 @@ def decode(data: bytes, *, source: str = "", size: int | None = None,
                                       track=ti)
                 unknown_chunks += 1
                 if first_unknown is None:
-                    first_unknown = (pos, cid.decode("ascii"))
+                    first_unknown = (pos, cid.decode("ascii"), ti)
                 pos += 8 + clen
                 continue
             raise DecodeError("bad_chunk", f"expected track chunk 'MTrk' but found bytes "

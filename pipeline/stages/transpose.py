@@ -224,19 +224,28 @@ class Transpose(Stage):
 
 
 def without_default_declarations(piece: Piece, key: str | None) -> Piece:
-    """The piece without the time signatures of a one-beat bar (``meter.is_default_meter``:
-    1/4 is what many sequencers write when no meter was set) and, when its declared key is a C
-    major signature on a piece in ``key`` (the key the shift used) of another signature
-    (``key_meter.default_signature_on``), without its C major key signatures: a normalized
-    file would otherwise carry a declaration the manifest flags as wrong (an audit: 59 of 67
-    POP909 outputs with a key signature, and 349 of 453 with the 1/4 time signature)."""
+    """The piece without the declarations the manifest flags as sequencer defaults: when its
+    declared meter (the longest-lasting, ``meter.meter_from_file``) is a one-beat bar
+    (``meter.is_default_meter``: 1/4 is what many sequencers write when no meter was set), its
+    one-beat time signatures; when its declared key is a C major signature on a piece in
+    ``key`` (the key the shift used) of another signature (``key_meter.default_signature_on``),
+    the C major signatures before its first other one. A normalized file would otherwise carry
+    a declaration the manifest flags as wrong (an audit: 59 of 67 POP909 outputs with a key
+    signature, 349 of 453 with the 1/4 time signature); a pickup's 1/4 bar before a 4/4
+    piece, or a later return to C major, is the music's and stays (a second audit)."""
     ts, ks = piece.time_signatures, piece.key_signatures
-    keep_ts = np.array([not metermod.is_default_meter(f"{n}/{d}")
-                        for n, d in zip(ts["numerator"].tolist(), ts["denominator"].tolist())], dtype=bool)
-    declared = keymod.declared_key(piece)
+    keep_ts = np.ones(len(ts), dtype=bool)
+    declared_meter = metermod.meter_from_file(piece)
+    if declared_meter is not None and metermod.is_default_meter(declared_meter):
+        keep_ts = np.array([not metermod.is_default_meter(f"{n}/{d}")
+                            for n, d in zip(ts["numerator"].tolist(), ts["denominator"].tolist())], dtype=bool)
     keep_ks = np.ones(len(ks), dtype=bool)
+    declared = keymod.declared_key(piece)
     if declared is not None and key is not None and default_signature_on(declared, *keymod.parse_key(key)):
-        keep_ks = (ks["sharps"] != 0) | (ks["minor"] != 0)
+        c_major = (ks["sharps"] == 0) & (ks["minor"] == 0)
+        other = ks["tick"][~c_major]
+        first_other = int(other.min()) if len(other) else None
+        keep_ks = ~c_major if first_other is None else ~(c_major & (ks["tick"] < first_other))
     if keep_ts.all() and keep_ks.all():
         return piece
     return replace(piece, time_signatures=ts[keep_ts], key_signatures=ks[keep_ks])
