@@ -140,6 +140,8 @@ def test_stage_targets_and_augment_copies():
     ({"direction": "sideways"}, "nearest, up, down"),
     ({"augment": [1, 2.5]}, "whole numbers"),
     ({"augment": 3}, "must be a list"),
+    ({"augment": [12, 0]}, r"got \[12\]; and 0 is the normalized file itself"),  # every fault at once
+    ({"augment": [0, 2]}, "0 is the normalized file itself"),
     ({"profile": "nonesuch"}, "valid profiles: learned, aarden_essen"),
 ])
 def test_option_checks_name_the_rule(opts, match):

@@ -190,8 +190,8 @@ class KeyMeter(Stage):
                "higher values overruled more true declarations than wrong ones).",
                in_range(0, 1)),
         Option("modulation_share", (int, float), modmod.MIN_SHARE,
-               "key_modulates is true when the windowed key estimate (8-beat segments) holds "
-               "two key signatures for at least this share of the piece each.",
+               "key_modulates is true when the windowed key estimate holds two key signatures, "
+               "each on at least this share of the 8-beat segments in which a note starts.",
                in_range(0, 1)),
     )
     doc = ("Estimates key (a trained key classifier, or Krumhansl-Schmuckler key profiles), whether "

@@ -41,9 +41,11 @@ def _check_augment(value: Any) -> str | None:
     if not isinstance(value, (list, tuple)):
         return f"must be a list of whole semitone shifts, e.g. [-5, -4, 1, 2], not {value!r}"
     bad = [v for v in value if isinstance(v, bool) or not isinstance(v, int) or not -11 <= v <= 11]
-    if bad:
-        return f"shifts must be whole numbers in -11..11, got {bad!r}"
-    if 0 in value:
+    zero = 0 in [v for v in value if not isinstance(v, bool)]
+    if bad:  # every wrong value at once (an audit: [12, 0] named 12, then 0 on the next try)
+        also = "; and 0 is the normalized file itself, written anyway: remove it" if zero else ""
+        return f"shifts must be whole numbers in -11..11, got {bad!r}{also}"
+    if zero:
         return "0 is the normalized file itself, written anyway; remove it from augment"
     twice = sorted({v for v in value if value.count(v) > 1})
     if twice:
