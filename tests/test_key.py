@@ -151,6 +151,19 @@ def test_declared_key_from_key_signature_event(mido_key, declared):
     assert keymod.declared_key(decode(smf_bytes(mf))) == declared
 
 
+def test_the_declared_key_is_the_last_signature_at_the_start():
+    # a sequencer's C major written before the real D major at tick 0 (an audit): a player
+    # applies the events in file order, so the later one is in force (common practice); mido
+    # writes the file, our decoder reads it
+    mf = mido.MidiFile(ticks_per_beat=480)
+    mf.tracks.append(mido.MidiTrack([mido.MetaMessage("key_signature", key="C", time=0),
+                                     mido.MetaMessage("key_signature", key="D", time=0),
+                                     mido.Message("note_on", note=62, velocity=80, time=0),
+                                     mido.Message("note_off", note=62, velocity=0, time=480),
+                                     mido.MetaMessage("key_signature", key="G", time=0)]))
+    assert keymod.declared_key(decode(smf_bytes(mf))) == "D major"
+
+
 def test_drums_and_empty_pieces(works):
     piece = decode(works[0]["midi"])
     drums = piece.notes.copy()

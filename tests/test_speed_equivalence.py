@@ -87,7 +87,7 @@ def plain_declared_key(piece):
     ks = piece.key_signatures
     if len(ks) == 0:
         return None
-    first = ks[np.argmin(ks["tick"])]
+    first = ks[np.flatnonzero(ks["tick"] == ks["tick"].min())[-1]]  # the last at the first tick
     sharps = int(np.clip(first["sharps"], -7, 7))
     if first["minor"]:
         return f"{keymod.MINOR_BY_SHARPS[sharps]} minor"

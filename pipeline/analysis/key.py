@@ -210,7 +210,10 @@ def estimate_key(piece: Piece, profile: str = DEFAULT_PROFILE,
 
 
 def declared_key(piece: Piece) -> str | None:
-    """The key the file declares in its first key-signature event, e.g. ``"Eb major"``.
+    """The key the file declares at its start, e.g. ``"Eb major"``: of the key-signature
+    events at the earliest tick, the last in file order (it supersedes the others, as a player
+    applies them in order: an audit found a sequencer's C major written before the real D major
+    at tick 0 reported as the declared key).
 
     None when the file has no key-signature event. Note that a sequencer default (C major,
     zero sharps) is reported as declared: only comparison with the estimate can tell.
@@ -219,7 +222,8 @@ def declared_key(piece: Piece) -> str | None:
     if len(ks) == 0:
         return None
     ticks = ks["tick"].tolist()
-    first = ks[ticks.index(min(ticks))]  # the first earliest, like argmin
+    earliest = min(ticks)
+    first = ks[len(ticks) - 1 - ticks[::-1].index(earliest)]  # the last at the earliest tick
     sharps = min(max(int(first["sharps"]), -7), 7)
     if first["minor"]:
         return f"{MINOR_BY_SHARPS[sharps]} minor"

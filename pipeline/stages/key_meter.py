@@ -180,7 +180,8 @@ class KeyMeter(Stage):
     kind = "file"
     #: 6: contradiction by compatible meters, no meter estimate from too few onsets, no key
     #: without pitched notes, key fields of the reported key with trust_file_key
-    version = 6
+    #: 7: the declared key is the last of the key signatures at the earliest tick
+    version = 7
     options = KEY_OPTIONS + (
         Option("meter_contradiction", (int, float), metermod.CONTRADICTION_PROBABILITY,
                "The declared meter is replaced by the estimate when the estimate gives the "

@@ -90,7 +90,8 @@ class Transpose(Stage):
     #: 6: and the key the shift used (``transpose_key``, ``transpose_key_confidence``); the
     #: guard compares the recorded (rounded) confidence; no key without pitched notes
     #: 7: the outputs leave out declarations flagged as sequencer defaults (``output_variants``)
-    version = 7
+    #: 8: the declared key is the last of the key signatures at the earliest tick
+    version = 8
     options = (
         Option("major_to", str, "C", "Target tonic for major pieces (note name, e.g. C, Eb, F#).",
                _check_note),
