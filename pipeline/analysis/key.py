@@ -31,6 +31,7 @@ choice: "favor F#", "favor eb minor").
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -100,14 +101,20 @@ class KeyEstimate:
         learned method its probability; for a published profile its correlation minus the
         best other key's (negative when another key correlates better). The estimate's own
         key gives ``confidence``."""
-        others = max(s for i, s in enumerate(self.scores) if i != index)
-        return self.scores[index] if self.profile == LEARNED else self.scores[index] - others
+        if self.profile == LEARNED:
+            return self.scores[index]
+        return self.scores[index] - self.scores[best_other(self.scores, index)]
 
     def runner_up_to(self, index: int) -> str:
         """The most likely key other than key ``index`` (the first on a tie): ``runner_up``
         for the estimate's own key, else the estimate's key."""
-        best = max((i for i in range(24) if i != index), key=self.scores.__getitem__)
+        best = best_other(self.scores, index)
         return key_name(best % 12, MODES[best // 12])
+
+
+def best_other(scores: Sequence[float], index: int) -> int:
+    """The index of the highest of the 24 ``scores`` other than ``index`` (the first on a tie)."""
+    return max((i for i in range(24) if i != index), key=scores.__getitem__)
 
 
 def pitch_class_histogram(piece: Piece, bass_weight: float = 0.0, final_weight: float = 0.0,
@@ -476,7 +483,7 @@ def estimate_from_probabilities(probs: np.ndarray) -> KeyEstimate:
     its probability as confidence."""
     scores = probs.tolist()
     best = scores.index(max(scores))
-    second = max((i for i in range(24) if i != best), key=scores.__getitem__)
+    second = best_other(scores, best)
     mode = MODES[best // 12]
     pc = best % 12
     names = MAJOR_TONIC_NAMES if mode == "major" else MINOR_TONIC_NAMES

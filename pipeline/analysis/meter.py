@@ -162,11 +162,6 @@ class MeterEstimate:
     phase_beats: float  # offset of the first downbeat from tick 0, in quarter-note beats
     probabilities: tuple[float, ...] = field(default=(), repr=False)  # per ``CLASSES``
 
-    def family_probability(self, family: str) -> float:
-        """Probability the classifier gives to the meters of one family (0.0 without an
-        estimate)."""
-        return sum(p for c, p in zip(CLASSES, self.probabilities) if meter_family(c) == family)
-
     def support(self, meters: frozenset[str]) -> float:
         """Probability the classifier gives to these meters together (0.0 without an
         estimate)."""
