@@ -531,21 +531,27 @@ def _file_changes(changed: list[tuple[str, int, int, str]], gone: list[str],
     new or differ in size or time from ``known`` (the last run's sources by path; a file counts
     as changed when its bytes did), ``gone`` the paths no longer there."""
     return file_changes((row[0] for row in changed if row[0] not in known),
-                        (row[0] for row in changed if row[0] in known and known[row[0]][2] != row[3]),
-                        gone)
+                        (rel for rel, _, _ in _edited(changed, known)), gone)
+
+
+def _edited(changed: list[tuple[str, int, int, str]],
+            known: dict[str, tuple[int, int, str]]) -> Iterator[tuple[str, str, str]]:
+    """(source, sha256 then, sha256 now) of each source whose bytes changed since the last run
+    started (``changed``: the fingerprinted rows; ``known``: the last run's sources by path)."""
+    for rel, _size, _mtime, sha in changed:
+        old = known.get(rel)
+        if old is not None and old[2] != sha:
+            yield rel, old[2], sha
 
 
 def _edited_contents(changed: list[tuple[str, int, int, str]],
                      known: dict[str, tuple[int, int, str]]) -> dict[str, str]:
-    """For each source whose bytes changed since the last run started (``changed``: the
-    fingerprinted rows; ``known``: the last run's sources by path), its new member id -> the
-    id of the content the path held then (member ids are ``sha256[:16]``); the first path in
-    source order when several changed to one content."""
+    """For each source whose bytes changed (``_edited``), its new member id -> the id of the
+    content the path held then (member ids are ``sha256[:16]``); the first path in source
+    order when several changed to one content."""
     out: dict[str, str] = {}
-    for row in changed:
-        old = known.get(row[0])
-        if old is not None and old[2] != row[3]:
-            out.setdefault(row[3][:16], old[2][:16])
+    for _, then, now in _edited(changed, known):
+        out.setdefault(now[:16], then[:16])
     return out
 
 
